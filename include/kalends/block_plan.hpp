@@ -1,0 +1,35 @@
+// Splitting a raster into blocks that fit a memory budget.
+#pragma once
+
+#include <cstdint>
+#include <vector>
+
+namespace kalends {
+
+struct Window {
+  int x = 0, y = 0, width = 0, height = 0;
+  std::int64_t pixels() const { return std::int64_t(width) * height; }
+  bool operator==(const Window&) const = default;
+};
+
+/// A block: the `core` it is responsible for, and the `read` window (core plus halo, clipped to
+/// the raster) a method sees.
+struct Block {
+  int index = 0;
+  Window core;
+  Window read;
+};
+
+struct BlockPlan {
+  int tile = 256;
+  int block_width = 0, block_height = 0;
+  std::vector<Block> blocks;
+
+  /// Blocks are whole tiles (so writes never share a tile) and as large as `max_read_pixels`
+  /// allows, preferring full-width strips (cheap to read from strip-organised files).
+  /// Throws UsageError when not even one tile plus halo fits.
+  static BlockPlan make(int width, int height, int halo, std::int64_t max_read_pixels,
+                        int tile = 256);
+};
+
+}  // namespace kalends

@@ -1,0 +1,58 @@
+// Filling a whole stack: stack -> blocks -> method -> writer.
+#pragma once
+
+#include <cstdint>
+#include <functional>
+#include <optional>
+#include <string>
+
+#include "kalends/fill_method.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+/// A regular calendar for extra outputs: every N days from 1 January, or every calendar month.
+struct CalendarPeriod {
+  enum class Kind { days, month } kind = Kind::month;
+  int days = 0;
+  static CalendarPeriod parse(const std::string& text);  // "8d", "16d", "1M"; UsageError
+  std::string label() const;
+};
+
+enum class Compression { deflate, zstd, lzw, none };
+Compression parse_compression(const std::string& text);
+
+struct FillRequest {
+  std::string input;
+  ValueRules rules;
+  std::string qa_input;  // empty = no QA stack
+  std::string qa_keep;   // keep rule, required with qa_input
+  MethodOptions method;
+  std::string out_dir;
+  std::string name;  // empty = from the input
+  bool smooth = false;
+  std::optional<CalendarPeriod> every;
+  std::int64_t memory_bytes = std::int64_t(1) << 30;
+  int threads = 0;  // 0 = all cores
+  Compression compression = Compression::deflate;
+  std::string command_line;  // recorded in metadata
+};
+
+struct FillSummary {
+  int dates = 0, width = 0, height = 0, blocks = 0;
+  int calendar_outputs = 0;
+  std::int64_t pixel_dates = 0, observed = 0, missing = 0, rejected = 0, filled = 0,
+               unfilled = 0;
+  std::int64_t pixels_never_observed = 0;
+  double seconds = 0, kernel_seconds = 0;
+  std::int64_t block_width = 0, block_height = 0;
+  std::string out_dir;
+};
+
+using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;
+
+/// Runs the fill. Inputs are all checked before anything is written; outputs appear under
+/// their final names only when every one of them is complete.
+FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress = {});
+
+}  // namespace kalends

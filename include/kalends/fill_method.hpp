@@ -1,0 +1,97 @@
+// The interface every gap-filling method implements. A method sees one block of a regular time
+// grid with weights and returns values, sd and flags; it knows nothing of files.
+#pragma once
+
+#include <cstdint>
+#include <map>
+#include <memory>
+#include <optional>
+#include <span>
+#include <string>
+#include <vector>
+
+#include "kalends/block_plan.hpp"
+#include "kalends/time_grid.hpp"
+
+namespace kalends {
+
+/// Flags written with every value.
+enum class Flag : std::uint8_t {
+  observed = 0,    // observed and kept
+  rejected = 1,    // observed but rejected as an outlier
+  filled = 2,      // no usable observation: value from the fit
+  unfilled = 3,    // could not be filled: value is NaN
+};
+
+/// A block handed to a method. Series are pixel-major: series(p)[slot].
+struct BlockInput {
+  const TimeGrid* grid = nullptr;
+  Window read;   // the pixels present (core plus halo)
+  Window core;   // the pixels whose results are wanted
+  std::span<const float> values;   // read.pixels() * grid->size; NaN where nothing observed
+  std::span<const float> weights;  // same shape; 0 where nothing observed
+  std::span<const float> series(std::int64_t pixel) const {
+    return values.subspan(pixel * grid->size, grid->size);
+  }
+  std::span<const float> series_weights(std::int64_t pixel) const {
+    return weights.subspan(pixel * grid->size, grid->size);
+  }
+};
+
+/// Results for the core pixels, pixel-major like the input.
+struct BlockOutput {
+  std::vector<float> fitted;            // the curve at every slot (NaN where not fillable)
+  std::vector<float> sd;                // its standard error
+  std::vector<std::uint8_t> rejected;   // 1 where an observation was rejected as an outlier
+  void resize(std::size_t n) {
+    fitted.assign(n, 0.0f);
+    sd.assign(n, 0.0f);
+    rejected.assign(n, 0);
+  }
+};
+
+/// Parameters as text, written into output metadata.
+using MethodParameters = std::map<std::string, std::string>;
+
+class FillMethod {
+ public:
+  virtual ~FillMethod() = default;
+  virtual std::string name() const = 0;
+  virtual MethodParameters parameters() const = 0;
+  /// Pixels of context needed on each side (0 for methods that look at one pixel at a time).
+  virtual int halo() const { return 0; }
+  /// Scratch bytes a method needs per read pixel, beyond the block's own buffers (for the
+  /// memory budget).
+  virtual std::size_t scratch_bytes_per_pixel(const TimeGrid&) const { return 0; }
+  /// Fills `out` (already sized to core.pixels() * grid.size). Must be safe to call from
+  /// several threads at once on different blocks.
+  virtual void fill(const BlockInput& in, BlockOutput& out) const = 0;
+};
+
+/// Options shared by the command line and the job file; each method reads what it needs.
+struct MethodOptions {
+  std::string method = "whittaker";
+  // whittaker
+  std::optional<double> lambda;  // unset = chosen per pixel by GCV
+  int order = 2;
+  double lambda_min = 1e-2, lambda_max = 1e6;
+  bool envelope_upper = false;
+  bool robust = false;
+  int iterations = 4;
+  // harmonic
+  int harmonics = 3;
+  bool trend = false;
+  double reject_below = 2.0;  // residual sd units
+  int min_observations_per_coefficient = 2;
+  // temporal methods
+  double max_gap_days = 0;             // longer gaps stay unfilled; 0 = no limit
+  double max_extrapolation_days = 32;  // past the first/last observation; < 0 = no limit
+  std::optional<double> clamp_min, clamp_max;
+};
+
+/// The registry: one line per method in registry.cpp. Throws UsageError for unknown names or
+/// options out of range.
+std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options);
+std::vector<std::string> fill_method_names();
+
+}  // namespace kalends

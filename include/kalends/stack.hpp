@@ -1,0 +1,91 @@
+// A time-ordered set of rasters on one grid, read window by window.
+#pragma once
+
+#include <array>
+#include <cstdint>
+#include <memory>
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "kalends/block_plan.hpp"
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+/// How raw numbers become physical values. Unset fields come from each file.
+struct ValueRules {
+  std::optional<double> scale, offset, nodata;
+  std::optional<double> valid_min, valid_max;  // in physical units; outside -> missing
+  int band = 1;                                // for stacks of single-date files
+};
+
+struct Grid {
+  int width = 0, height = 0;
+  std::array<double, 6> geotransform{0, 1, 0, 0, 0, 1};
+  bool has_geotransform = false;
+  std::string crs_wkt;  // empty where the source has none
+};
+
+/// One date of a stack: a band of a file.
+struct Layer {
+  std::string path;  // as given to GDAL (a file name or a connection string)
+  int band = 1;
+  TimePoint time;
+  double scale = 1.0, offset = 0.0;
+  std::optional<double> nodata;
+  std::string unit;
+};
+
+class StackReader;
+
+class Stack {
+ public:
+  /// `input` is a glob of single-date files (dates from their names), or one multi-band
+  /// raster (dates from band descriptions, CF time metadata or GRIB valid times).
+  /// Every file is opened and checked here, before any work: unreadable files, mismatched
+  /// grids, unparsable or duplicate dates raise InputError naming the file.
+  static Stack open(const std::string& input, const ValueRules& rules = {});
+
+  const std::string& input() const noexcept { return input_; }
+  const Grid& grid() const noexcept { return grid_; }
+  const std::vector<Layer>& layers() const noexcept { return layers_; }
+  std::vector<TimePoint> times() const;
+  /// A name for outputs: what file names share before their date ("ndvi"), or the variable.
+  const std::string& name() const noexcept { return name_; }
+  const ValueRules& rules() const noexcept { return rules_; }
+
+  /// A reader owns its GDAL handles; use one per thread.
+  std::unique_ptr<StackReader> reader() const;
+
+ private:
+  std::string input_;
+  Grid grid_;
+  std::vector<Layer> layers_;
+  std::string name_;
+  ValueRules rules_;
+};
+
+class StackReader {
+ public:
+  explicit StackReader(const Stack& stack);
+  ~StackReader();
+  StackReader(const StackReader&) = delete;
+  StackReader& operator=(const StackReader&) = delete;
+
+  /// Physical values of one date in a window, row-major; NaN where missing (nodata, NaN,
+  /// outside the valid range).
+  void read_values(std::size_t layer, const Window& window, float* out);
+  /// Raw integer values (for QA layers).
+  void read_integers(std::size_t layer, const Window& window, std::uint32_t* out);
+
+ private:
+  struct Handles;
+  const Stack& stack_;
+  std::unique_ptr<Handles> handles_;
+};
+
+/// Fails with InputError unless both grids are the same (size, geotransform, CRS).
+void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where);
+
+}  // namespace kalends

@@ -1,0 +1,27 @@
+// The regular time axis on which the temporal methods work.
+#pragma once
+
+#include <vector>
+
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+/// Dates placed on a regular grid of the stack's typical step. Slots without a date carry zero
+/// weight, so long gaps and year breaks keep their true length.
+struct TimeGrid {
+  TimePoint start;
+  double step_days = 1.0;
+  int size = 0;
+  std::vector<int> slot_of_date;   // for each input date (sorted), its slot
+  std::vector<double> slot_days;   // days since `start`: the true date where a slot holds one,
+                                   // else start + slot * step
+
+  /// `times` must be sorted and distinct. The step is the median spacing, in whole days where
+  /// it is a day or more. A date is put in its nearest slot; a date whose nearest slot is
+  /// taken (a composite calendar restarting on 1 January) moves to the next free one.
+  static TimeGrid build(const std::vector<TimePoint>& times);
+  TimePoint slot_time(int slot) const;
+};
+
+}  // namespace kalends

@@ -1,0 +1,24 @@
+// Each subcommand registers its options on the app and returns the action to run.
+#pragma once
+
+#include <CLI/CLI.hpp>
+#include <functional>
+#include <string>
+
+namespace kalends::cli {
+
+struct GlobalOptions {
+  bool quiet = false;
+  bool verbose = false;
+  std::string command_line;
+};
+
+using Action = std::function<void()>;
+
+/// `kalends fill`.
+Action add_fill_command(CLI::App& app, GlobalOptions& global);
+
+/// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.
+std::int64_t parse_memory(const std::string& text);
+
+}  // namespace kalends::cli

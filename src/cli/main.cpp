@@ -1,0 +1,66 @@
+// The command line: a thin layer over the library. Errors are caught here, once, and become one
+// line on stderr and an exit code (0 done, 1 failed, 2 bad input or options).
+#include <sys/resource.h>
+
+#include <CLI/CLI.hpp>
+#include <cstdio>
+#include <iostream>
+#include <map>
+
+#include "cli/commands.hpp"
+#include "kalends/error.hpp"
+
+namespace {
+
+// Each worker opens every date of the stack; a large stack with many threads needs more file
+// descriptors than the usual soft limit of 1024.
+void raise_open_file_limit() {
+  rlimit limit{};
+  if (getrlimit(RLIMIT_NOFILE, &limit) == 0 && limit.rlim_cur < limit.rlim_max) {
+    limit.rlim_cur = limit.rlim_max;
+    setrlimit(RLIMIT_NOFILE, &limit);
+  }
+}
+
+}  // namespace
+
+int main(int argc, char** argv) {
+  using namespace kalends;
+  raise_open_file_limit();
+  CLI::App app{"kalends: gap-filled, quality-flagged covariate layers from satellite time series"};
+  app.require_subcommand(1);
+  app.set_version_flag("--version", KALENDS_VERSION);
+  cli::GlobalOptions global;
+  for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + std::string(argv[i]);
+  app.add_flag("-q,--quiet", global.quiet, "Print only errors");
+  app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
+  std::map<CLI::App*, cli::Action> actions;
+  CLI::App* fill = nullptr;
+  {
+    cli::Action action = cli::add_fill_command(app, global);
+    fill = app.get_subcommands({}).back();
+    actions[fill] = std::move(action);
+  }
+  try {
+    app.parse(argc, argv);
+  } catch (const CLI::ParseError& e) {
+    return app.exit(e) == 0 ? 0 : 2;
+  }
+  try {
+    for (auto& [command, action] : actions)
+      if (command->parsed()) action();
+    return 0;
+  } catch (const InputError& e) {
+    std::cerr << "kalends: " << e.what() << "\n";
+    return 2;
+  } catch (const UsageError& e) {
+    std::cerr << "kalends: " << e.what() << "\n";
+    return 2;
+  } catch (const Error& e) {
+    std::cerr << "kalends: " << e.what() << "\n";
+    return 1;
+  } catch (const std::exception& e) {
+    std::cerr << "kalends: " << e.what() << "\n";
+    return 1;
+  }
+}

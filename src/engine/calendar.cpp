@@ -1,0 +1,97 @@
+#include "engine/calendar.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <map>
+
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+CalendarPeriod CalendarPeriod::parse(const std::string& text) {
+  CalendarPeriod p;
+  if (text == "1M" || text == "1m" || text == "month") {
+    p.kind = Kind::month;
+    return p;
+  }
+  if (text.size() >= 2 && text.back() == 'd') {
+    try {
+      std::size_t used = 0;
+      const int days = std::stoi(text.substr(0, text.size() - 1), &used);
+      if (used == text.size() - 1 && days >= 1 && days <= 366) {
+        p.kind = Kind::days;
+        p.days = days;
+        return p;
+      }
+    } catch (const std::exception&) {
+    }
+  }
+  throw UsageError("--every '" + text + "'", "expected 1M or a number of days such as 8d or 16d");
+}
+
+std::string CalendarPeriod::label() const {
+  return kind == Kind::month ? "1M" : std::to_string(days) + "d";
+}
+
+namespace detail {
+
+namespace {
+
+// The period holding day `day` (days since 1970): its first day and its first day after.
+std::pair<std::int64_t, std::int64_t> period_of(std::int64_t day, const CalendarPeriod& p) {
+  const CivilDate d = civil_from_days(day);
+  if (p.kind == CalendarPeriod::Kind::month) {
+    const std::int64_t first = days_from_civil(d.year, d.month, 1);
+    return {first, first + days_in_month(d.year, d.month)};
+  }
+  const std::int64_t jan1 = days_from_civil(d.year, 1, 1);
+  const std::int64_t next_jan1 = days_from_civil(d.year + 1, 1, 1);
+  const std::int64_t first = jan1 + (day - jan1) / p.days * p.days;
+  return {first, std::min(first + p.days, next_jan1)};
+}
+
+}  // namespace
+
+std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period) {
+  std::vector<PeriodMean> periods;
+  if (grid.size == 0) return periods;
+  const double start_day = grid.start.seconds / 86400.0;
+  const double first_day = start_day + grid.slot_days.front();
+  const double last_day = start_day + grid.slot_days.back();
+  std::int64_t day = std::int64_t(std::floor(first_day));
+  while (day <= std::int64_t(std::floor(last_day))) {
+    const auto [begin, end] = period_of(day, period);
+    PeriodMean mean;
+    mean.start = TimePoint{begin * 86400};
+    std::map<int, double> weight;
+    for (std::int64_t d = begin; d < end; ++d) {
+      const double t = double(d) + 0.5 - start_day;  // middle of the day, days since grid start
+      if (t < grid.slot_days.front() || t > grid.slot_days.back()) continue;
+      const auto upper = std::upper_bound(grid.slot_days.begin(), grid.slot_days.end(), t);
+      const int hi = std::min<int>(grid.size - 1, int(upper - grid.slot_days.begin()));
+      const int lo = std::max(0, hi - 1);
+      const double span = grid.slot_days[hi] - grid.slot_days[lo];
+      const double f = span > 0 ? (t - grid.slot_days[lo]) / span : 0.0;
+      weight[lo] += 1.0 - f;
+      weight[hi] += f;
+      ++mean.days;
+    }
+    if (mean.days > 0) {
+      for (const auto& [slot, w] : weight)
+        if (w > 0) {
+          mean.slots.push_back(slot);
+          mean.weights.push_back(w / mean.days);
+        }
+      for (int s = 0; s < grid.size; ++s) {
+        const double t = start_day + grid.slot_days[s];
+        if (t >= double(begin) && t < double(end)) mean.slots_inside.push_back(s);
+      }
+      periods.push_back(std::move(mean));
+    }
+    day = end;
+  }
+  return periods;
+}
+
+}  // namespace detail
+}  // namespace kalends

@@ -1,0 +1,44 @@
+#include "engine/memory_budget.hpp"
+
+#include <sys/resource.h>
+
+#include <algorithm>
+
+#include "kalends/error.hpp"
+
+namespace kalends::detail {
+
+namespace {
+constexpr std::int64_t MiB = 1 << 20;
+// Measured on Debian 12 with GDAL 3.6: resident size of the loaded libraries before any
+// block is read.
+constexpr std::int64_t library_footprint = 48 * MiB;
+// libtiff keeps about a tile of raw buffer per open file; GDAL's dataset objects add a little.
+constexpr std::int64_t per_read_file = 160 * 1024;
+constexpr std::int64_t per_write_file = 3 * 256 * 1024;
+}  // namespace
+
+MemoryShare share_memory(std::int64_t budget, int workers, std::int64_t bytes_per_pixel,
+                         int read_files_per_worker, int write_files) {
+  MemoryShare share;
+  share.gdal_cache = std::clamp<std::int64_t>(budget / 16, 8 * MiB, 128 * MiB);
+  share.fixed = library_footprint + std::int64_t(workers) * read_files_per_worker * per_read_file +
+                std::int64_t(write_files) * per_write_file;
+  const std::int64_t left = budget - share.gdal_cache - share.fixed;
+  if (left <= 0)
+    throw UsageError("--memory", "budget of " + std::to_string(budget / MiB) +
+                                     " MiB does not cover the fixed overheads (" +
+                                     std::to_string((share.gdal_cache + share.fixed) / MiB) +
+                                     " MiB for this stack); give more memory or fewer threads");
+  share.per_worker = left / std::max(1, workers);
+  share.max_read_pixels = share.per_worker / std::max<std::int64_t>(1, bytes_per_pixel);
+  return share;
+}
+
+std::int64_t peak_resident_bytes() {
+  rusage usage{};
+  getrusage(RUSAGE_SELF, &usage);
+  return std::int64_t(usage.ru_maxrss) * 1024;
+}
+
+}  // namespace kalends::detail

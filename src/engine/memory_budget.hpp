@@ -1,0 +1,24 @@
+// How the --memory budget is shared out: GDAL's block cache, fixed overheads, and the blocks
+// the workers hold at once.
+#pragma once
+
+#include <cstdint>
+
+namespace kalends::detail {
+
+struct MemoryShare {
+  std::int64_t gdal_cache = 0;
+  std::int64_t fixed = 0;           // libraries, open datasets
+  std::int64_t per_worker = 0;      // what one worker's block may use
+  std::int64_t max_read_pixels = 0; // pixels of one block's read window
+};
+
+/// `bytes_per_pixel`: a worker's buffers per read pixel (all dates); `open_files`: datasets
+/// held open for reading (per worker) and writing (shared).
+MemoryShare share_memory(std::int64_t budget, int workers, std::int64_t bytes_per_pixel,
+                         int read_files_per_worker, int write_files);
+
+/// Peak resident memory of this process so far (bytes), from getrusage.
+std::int64_t peak_resident_bytes();
+
+}  // namespace kalends::detail

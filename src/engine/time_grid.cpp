@@ -1,0 +1,48 @@
+#include "kalends/time_grid.hpp"
+
+#include <algorithm>
+#include <cmath>
+
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
+  TimeGrid grid;
+  if (times.empty()) return grid;
+  grid.start = times.front();
+  if (times.size() == 1) {
+    grid.size = 1;
+    grid.slot_of_date = {0};
+    grid.slot_days = {0.0};
+    return grid;
+  }
+  std::vector<double> steps;
+  for (std::size_t i = 1; i < times.size(); ++i) steps.push_back((times[i].seconds - times[i - 1].seconds) / 86400.0);
+  std::nth_element(steps.begin(), steps.begin() + steps.size() / 2, steps.end());
+  double step = steps[steps.size() / 2];
+  if (step >= 1.0) step = std::round(step);
+  grid.step_days = step;
+
+  int previous = -1;
+  grid.slot_of_date.reserve(times.size());
+  for (const TimePoint& t : times) {
+    const double offset = (t.seconds - grid.start.seconds) / 86400.0;
+    int slot = int(std::lround(offset / step));
+    if (slot <= previous) slot = previous + 1;
+    grid.slot_of_date.push_back(slot);
+    previous = slot;
+  }
+  grid.size = previous + 1;
+  grid.slot_days.resize(grid.size);
+  for (int s = 0; s < grid.size; ++s) grid.slot_days[s] = s * step;
+  for (std::size_t i = 0; i < times.size(); ++i)
+    grid.slot_days[grid.slot_of_date[i]] = (times[i].seconds - grid.start.seconds) / 86400.0;
+  return grid;
+}
+
+TimePoint TimeGrid::slot_time(int slot) const {
+  return TimePoint{start.seconds + std::int64_t(std::llround(slot_days.at(slot) * 86400.0))};
+}
+
+}  // namespace kalends

@@ -1,0 +1,38 @@
+// Every gap-filling method, one line each.
+#include <algorithm>
+
+#include "fill/harmonic.hpp"
+#include "fill/whittaker.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace {
+
+struct Entry {
+  const char* name;
+  std::unique_ptr<FillMethod> (*make)(const MethodOptions&);
+};
+
+constexpr Entry registry[] = {
+    {"whittaker", &make_whittaker},
+    {"harmonic", &make_harmonic},
+};
+
+}  // namespace
+
+std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
+  for (const Entry& entry : registry)
+    if (options.method == entry.name) return entry.make(options);
+  std::string known;
+  for (const Entry& entry : registry) known += std::string(known.empty() ? "" : ", ") + entry.name;
+  throw UsageError("--method", "unknown method '" + options.method + "' (known: " + known + ")");
+}
+
+std::vector<std::string> fill_method_names() {
+  std::vector<std::string> names;
+  for (const Entry& entry : registry) names.emplace_back(entry.name);
+  return names;
+}
+
+}  // namespace kalends

@@ -1,0 +1,208 @@
+#include "fill/whittaker.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <limits>
+
+#include "fill/banded_kernels.hpp"
+#include "fill/gap_limit.hpp"
+#include "fill/robust_weights.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace {
+
+std::string number(double v) {
+  char text[32];
+  std::snprintf(text, sizeof text, "%g", v);
+  return text;
+}
+
+// An observation whose final robustness weight is below this is reported as rejected.
+constexpr double rejection_weight = 0.5;
+
+}  // namespace
+
+WhittakerMethod::WhittakerMethod(const MethodOptions& options) : options_(options) {
+  if (options.order < 1 || options.order > 3)
+    throw UsageError("--order", "difference order must be 1, 2 or 3");
+  if (options.lambda && !(*options.lambda > 0))
+    throw UsageError("--lambda", "must be positive or 'auto'");
+  if (!(options.lambda_min > 0) || !(options.lambda_max >= options.lambda_min))
+    throw UsageError("--lambda-range", "needs 0 < min <= max");
+  if (options.iterations < 0 || options.iterations > 50)
+    throw UsageError("--iterations", "must be 0..50");
+}
+
+MethodParameters WhittakerMethod::parameters() const {
+  MethodParameters p;
+  p["lambda"] = options_.lambda ? number(*options_.lambda) : "auto";
+  if (!options_.lambda)
+    p["lambda_range"] = number(options_.lambda_min) + "," + number(options_.lambda_max);
+  p["order"] = std::to_string(options_.order);
+  p["envelope"] = options_.envelope_upper ? "upper" : "none";
+  p["robust"] = options_.robust ? "yes" : "no";
+  if (options_.envelope_upper || options_.robust) p["iterations"] = std::to_string(options_.iterations);
+  p["max_gap_days"] = number(options_.max_gap_days);
+  return p;
+}
+
+template <int B>
+WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float> y,
+                                                          std::span<const float> w,
+                                                          std::span<float> fitted,
+                                                          std::span<float> sd,
+                                                          std::span<std::uint8_t> rejected,
+                                                          Workspace& ws) const {
+  const int n = int(y.size());
+  SeriesFit fit;
+  if (ws.n != n) {
+    ws.penalty = difference_penalty(n, B);
+    ws.system.resize(n, B);
+    for (auto* v : {&ws.weight, &ws.base_weight, &ws.robust, &ws.rhs, &ws.z, &ws.residual,
+                    &ws.leverage, &ws.scratch})
+      v->assign(n, 0.0);
+    ws.observed.assign(n, 0.0f);
+    ws.n = n;
+  }
+  int m = 0;
+  for (int i = 0; i < n; ++i) {
+    const bool ok = w[i] > 0 && std::isfinite(y[i]);
+    ws.base_weight[i] = ok ? w[i] : 0.0;
+    ws.observed[i] = ok ? 1.0f : 0.0f;
+    m += ok;
+  }
+  std::fill(rejected.begin(), rejected.end(), 0);
+  fit.observations = m;
+  // With m <= d the curve is an interpolating polynomial with nothing left to estimate noise.
+  if (m < B + 1) {
+    std::fill(fitted.begin(), fitted.end(), NAN);
+    std::fill(sd.begin(), sd.end(), NAN);
+    return fit;
+  }
+  std::copy(ws.base_weight.begin(), ws.base_weight.end(), ws.weight.begin());
+
+  // One penalised solve with the current weights; returns GCV, leaves z and the inverse band.
+  auto solve = [&](double lambda) {
+    for (int k = 0; k <= B; ++k)
+      for (int i = 0; i < n; ++i) ws.system.at(k, i) = lambda * ws.penalty.at(k, i);
+    for (int i = 0; i < n; ++i) {
+      ws.system.at(0, i) += ws.weight[i];
+      ws.rhs[i] = ws.weight[i] > 0 ? ws.weight[i] * double(y[i]) : 0.0;
+    }
+    if (!detail::factorize_ldlt<B>(ws.system)) return std::numeric_limits<double>::infinity();
+    std::copy(ws.rhs.begin(), ws.rhs.end(), ws.z.begin());
+    detail::solve_ldlt<B>(ws.system, ws.z);
+    detail::band_of_inverse<B>(ws.system, ws.inverse);
+    double trace = 0, rss = 0;
+    int active = 0;
+    for (int i = 0; i < n; ++i) {
+      if (!(ws.weight[i] > 0)) continue;
+      trace += ws.weight[i] * ws.inverse.at(0, i);
+      const double r = double(y[i]) - ws.z[i];
+      rss += ws.weight[i] * r * r;
+      ++active;
+    }
+    fit.trace = trace;
+    fit.lambda = lambda;
+    const double dof = active - trace;
+    fit.sigma = dof > 1e-9 ? std::sqrt(rss / dof) : NAN;
+    fit.gcv = dof > 1e-9 ? active * rss / (dof * dof) : std::numeric_limits<double>::infinity();
+    return fit.gcv;
+  };
+
+  double lambda;
+  if (options_.lambda) {
+    lambda = *options_.lambda;
+  } else {
+    // Coarse log grid in steps of 10^0.5, then the two quarter steps around the best.
+    const double lo = std::log10(options_.lambda_min), hi = std::log10(options_.lambda_max);
+    double best_log = lo, best = std::numeric_limits<double>::infinity();
+    for (double e = lo; e <= hi + 1e-9; e += 0.5) {
+      const double g = solve(std::pow(10.0, e));
+      if (g < best) best = g, best_log = e;
+    }
+    for (const double e : {best_log - 0.25, best_log + 0.25}) {
+      if (e < lo - 1e-9 || e > hi + 1e-9) continue;
+      const double g = solve(std::pow(10.0, e));
+      if (g < best) best = g, best_log = e;
+    }
+    lambda = std::pow(10.0, best_log);
+  }
+  solve(lambda);
+
+  const bool reweight = options_.robust || options_.envelope_upper;
+  if (reweight) {
+    std::fill(ws.robust.begin(), ws.robust.end(), 1.0);
+    for (int it = 0; it < options_.iterations; ++it) {
+      for (int i = 0; i < n; ++i) {
+        ws.residual[i] = ws.observed[i] > 0 ? double(y[i]) - ws.z[i] : 0.0;
+        ws.leverage[i] = ws.weight[i] * ws.inverse.at(0, i);
+      }
+      const bool below_only = options_.envelope_upper && !options_.robust;
+      if (!detail::bisquare_weights(ws.residual, ws.leverage, ws.observed, below_only,
+                                    detail::bisquare_constant, ws.robust, ws.scratch))
+        break;
+      int kept = 0;
+      for (int i = 0; i < n; ++i) {
+        ws.weight[i] = ws.base_weight[i] * ws.robust[i];
+        kept += ws.weight[i] > 0;
+      }
+      if (kept < B + 1) {  // too few left to fit: keep the last good fit
+        for (int i = 0; i < n; ++i) ws.weight[i] = ws.base_weight[i];
+        std::fill(ws.robust.begin(), ws.robust.end(), 1.0);
+        solve(lambda);
+        break;
+      }
+      solve(lambda);
+    }
+    for (int i = 0; i < n; ++i)
+      rejected[i] = ws.observed[i] > 0 && ws.robust[i] < rejection_weight ? 1 : 0;
+  }
+
+  const double low = options_.clamp_min.value_or(-INFINITY);
+  const double high = options_.clamp_max.value_or(INFINITY);
+  for (int i = 0; i < n; ++i) {
+    fitted[i] = float(std::clamp(ws.z[i], low, high));
+    sd[i] = float(fit.sigma * std::sqrt(std::max(0.0, ws.inverse.at(0, i))));
+  }
+  fit.fitted = true;
+  return fit;
+}
+
+WhittakerMethod::SeriesFit WhittakerMethod::smooth(std::span<const float> y,
+                                                   std::span<const float> w,
+                                                   std::span<float> fitted, std::span<float> sd,
+                                                   std::span<std::uint8_t> rejected,
+                                                   Workspace& ws) const {
+  switch (options_.order) {
+    case 1: return smooth_banded<1>(y, w, fitted, sd, rejected, ws);
+    case 2: return smooth_banded<2>(y, w, fitted, sd, rejected, ws);
+    default: return smooth_banded<3>(y, w, fitted, sd, rejected, ws);
+  }
+}
+
+void WhittakerMethod::fill(const BlockInput& in, BlockOutput& out) const {
+  const int n = in.grid->size;
+  Workspace ws;
+  for (int cy = 0; cy < in.core.height; ++cy)
+    for (int cx = 0; cx < in.core.width; ++cx) {
+      const std::int64_t core_pixel = std::int64_t(cy) * in.core.width + cx;
+      const std::int64_t read_pixel =
+          std::int64_t(cy + in.core.y - in.read.y) * in.read.width + (cx + in.core.x - in.read.x);
+      const std::size_t at = std::size_t(core_pixel) * n;
+      const auto fitted = std::span(out.fitted).subspan(at, n);
+      const auto sd = std::span(out.sd).subspan(at, n);
+      const auto rejected = std::span(out.rejected).subspan(at, n);
+      smooth(in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected, ws);
+      detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
+                         options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
+    }
+}
+
+std::unique_ptr<FillMethod> make_whittaker(const MethodOptions& options) {
+  return std::make_unique<WhittakerMethod>(options);
+}
+
+}  // namespace kalends

@@ -1,0 +1,230 @@
+// Calendar arithmetic: H. Hinnant, "chrono-Compatible Low-Level Date Algorithms" (public
+// domain), days_from_civil / civil_from_days.
+#include <cctype>
+#include <charconv>
+#include <cmath>
+#include <stdexcept>
+#include <string>
+
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+std::int64_t days_from_civil(int year, int month, int day) {
+  const std::int64_t y = std::int64_t(year) - (month <= 2);
+  const std::int64_t era = (y >= 0 ? y : y - 399) / 400;
+  const std::int64_t yoe = y - era * 400;
+  const std::int64_t mp = (month + 9) % 12;
+  const std::int64_t doy = (153 * mp + 2) / 5 + day - 1;
+  const std::int64_t doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
+  return era * 146097 + doe - 719468;
+}
+
+CivilDate civil_from_days(std::int64_t z) {
+  z += 719468;
+  const std::int64_t era = (z >= 0 ? z : z - 146096) / 146097;
+  const std::int64_t doe = z - era * 146097;
+  const std::int64_t yoe = (doe - doe / 1460 + doe / 36524 - doe / 146096) / 365;
+  const std::int64_t doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+  const std::int64_t mp = (5 * doy + 2) / 153;
+  const int day = int(doy - (153 * mp + 2) / 5 + 1);
+  const int month = int(mp < 10 ? mp + 3 : mp - 9);
+  const int year = int(yoe + era * 400 + (month <= 2));
+  return {year, month, day};
+}
+
+bool is_leap_year(int year) { return (year % 4 == 0 && year % 100 != 0) || year % 400 == 0; }
+
+int days_in_month(int year, int month) {
+  static constexpr int days[] = {31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31};
+  return month == 2 && is_leap_year(year) ? 29 : days[month - 1];
+}
+
+bool is_valid_date(int year, int month, int day) {
+  return year >= 1000 && year <= 9999 && month >= 1 && month <= 12 && day >= 1 &&
+         day <= days_in_month(year, month);
+}
+
+int day_of_year(const CivilDate& d) {
+  return int(days_from_civil(d.year, d.month, d.day) - days_from_civil(d.year, 1, 1)) + 1;
+}
+
+TimePoint TimePoint::from_date(const CivilDate& d) {
+  return {days_from_civil(d.year, d.month, d.day) * 86400};
+}
+
+static std::int64_t floor_div(std::int64_t a, std::int64_t b) {
+  return a / b - ((a % b != 0) && ((a < 0) != (b < 0)));
+}
+
+CivilDate TimePoint::date() const { return civil_from_days(floor_div(seconds, 86400)); }
+
+bool TimePoint::is_midnight() const { return seconds - floor_div(seconds, 86400) * 86400 == 0; }
+
+std::string TimePoint::label() const {
+  const CivilDate d = date();
+  char text[32];
+  if (is_midnight()) {
+    std::snprintf(text, sizeof text, "%04d-%02d-%02d", d.year, d.month, d.day);
+  } else {
+    const std::int64_t s = seconds - floor_div(seconds, 86400) * 86400;
+    std::snprintf(text, sizeof text, "%04d-%02d-%02dT%02d%02d", d.year, d.month, d.day,
+                  int(s / 3600), int(s / 60 % 60));
+  }
+  return text;
+}
+
+std::string TimePoint::iso() const {
+  const CivilDate d = date();
+  const std::int64_t s = seconds - floor_div(seconds, 86400) * 86400;
+  char text[32];
+  std::snprintf(text, sizeof text, "%04d-%02d-%02dT%02d:%02d:%02dZ", d.year, d.month, d.day,
+                int(s / 3600), int(s / 60 % 60), int(s % 60));
+  return text;
+}
+
+namespace {
+
+int digits_to_int(std::string_view s) {
+  int v = 0;
+  std::from_chars(s.data(), s.data() + s.size(), v);
+  return v;
+}
+
+std::optional<TimePoint> date_from_digits(std::string_view run) {
+  if (run.size() == 8) {  // YYYYMMDD
+    const int y = digits_to_int(run.substr(0, 4)), m = digits_to_int(run.substr(4, 2)),
+              d = digits_to_int(run.substr(6, 2));
+    if (is_valid_date(y, m, d)) return TimePoint::from_date({y, m, d});
+  } else if (run.size() == 7) {  // YYYYDDD
+    const int y = digits_to_int(run.substr(0, 4)), doy = digits_to_int(run.substr(4, 3));
+    if (y >= 1000 && doy >= 1 && doy <= (is_leap_year(y) ? 366 : 365))
+      return TimePoint{(days_from_civil(y, 1, 1) + doy - 1) * 86400};
+  }
+  return std::nullopt;
+}
+
+bool is_digit(char c) { return std::isdigit(static_cast<unsigned char>(c)) != 0; }
+
+}  // namespace
+
+std::optional<TimePoint> date_from_name(std::string_view name) {
+  if (auto found = find_date_in_name(name)) return found->time;
+  return std::nullopt;
+}
+
+std::optional<DateInName> find_date_in_name(std::string_view name) {
+  // Only the last path component: folder names often carry other numbers.
+  if (const auto slash = name.find_last_of('/'); slash != std::string_view::npos)
+    name = name.substr(slash + 1);
+  std::size_t i = 0;
+  while (i < name.size()) {
+    if (!is_digit(name[i])) {
+      ++i;
+      continue;
+    }
+    std::size_t j = i;
+    while (j < name.size() && is_digit(name[j])) ++j;
+    const std::string_view run = name.substr(i, j - i);
+    // YYYY-MM-DD: a run of 4, '-', 2 digits, '-', 2 digits, then no further digit.
+    if (run.size() == 4 && j + 6 <= name.size() && name[j] == '-' && is_digit(name[j + 1]) &&
+        is_digit(name[j + 2]) && name[j + 3] == '-' && is_digit(name[j + 4]) &&
+        is_digit(name[j + 5]) && (j + 6 == name.size() || !is_digit(name[j + 6]))) {
+      const int y = digits_to_int(run), m = digits_to_int(name.substr(j + 1, 2)),
+                d = digits_to_int(name.substr(j + 4, 2));
+      if (is_valid_date(y, m, d)) return DateInName{TimePoint::from_date({y, m, d}), i, 10};
+    }
+    if (auto t = date_from_digits(run)) return DateInName{*t, i, run.size()};
+    i = j;
+  }
+  return std::nullopt;
+}
+
+std::optional<TimePoint> parse_iso_time(std::string_view text) {
+  while (!text.empty() && std::isspace(static_cast<unsigned char>(text.front())))
+    text.remove_prefix(1);
+  while (!text.empty() && std::isspace(static_cast<unsigned char>(text.back())))
+    text.remove_suffix(1);
+  auto number = [&](std::size_t pos, std::size_t len, int& out) {
+    if (pos + len > text.size()) return false;
+    for (std::size_t k = pos; k < pos + len; ++k)
+      if (!is_digit(text[k])) return false;
+    out = digits_to_int(text.substr(pos, len));
+    return true;
+  };
+  int y, m, d;
+  // Years may be written with fewer digits in CF units ("1-1-1"); accept 1 to 4.
+  std::size_t p = 0;
+  while (p < text.size() && is_digit(text[p])) ++p;
+  if (p == 0 || p > 4 || !number(0, p, y)) return std::nullopt;
+  std::size_t q = p + 1;
+  if (p >= text.size() || text[p] != '-') return std::nullopt;
+  std::size_t e = q;
+  while (e < text.size() && is_digit(text[e])) ++e;
+  if (e == q || e - q > 2 || !number(q, e - q, m)) return std::nullopt;
+  if (e >= text.size() || text[e] != '-') return std::nullopt;
+  q = e + 1;
+  e = q;
+  while (e < text.size() && is_digit(text[e])) ++e;
+  if (e == q || e - q > 2 || !number(q, e - q, d)) return std::nullopt;
+  if (m < 1 || m > 12 || d < 1 || d > days_in_month(y, m)) return std::nullopt;
+  std::int64_t seconds = days_from_civil(y, m, d) * 86400;
+  if (e < text.size()) {
+    if (text[e] != 'T' && text[e] != ' ') return std::nullopt;
+    std::string_view rest = text.substr(e + 1);
+    int hh = 0, mm = 0, ss = 0;
+    std::size_t h = 0;
+    while (h < rest.size() && is_digit(rest[h])) ++h;
+    if (h == 0 || h > 2) return std::nullopt;
+    hh = digits_to_int(rest.substr(0, h));
+    if (h < rest.size() && rest[h] == ':') {
+      std::size_t k = h + 1, k2 = k;
+      while (k2 < rest.size() && is_digit(rest[k2])) ++k2;
+      if (k2 == k) return std::nullopt;
+      mm = digits_to_int(rest.substr(k, k2 - k));
+      if (k2 < rest.size() && rest[k2] == ':') {
+        std::size_t s1 = k2 + 1, s2 = s1;
+        while (s2 < rest.size() && (is_digit(rest[s2]) || rest[s2] == '.')) ++s2;
+        ss = int(std::floor(std::stod(std::string(rest.substr(s1, s2 - s1)))));
+        k2 = s2;
+      }
+      rest = rest.substr(k2);
+    } else {
+      rest = rest.substr(h);
+    }
+    if (!(rest.empty() || rest == "Z" || rest == "UTC" || rest == " UTC" || rest == "+00:00" ||
+          rest == " +00:00"))
+      return std::nullopt;
+    if (hh > 23 || mm > 59 || ss > 60) return std::nullopt;
+    seconds += hh * 3600 + mm * 60 + ss;
+  }
+  return TimePoint{seconds};
+}
+
+TimePoint cf_time(double value, std::string_view units, std::string_view calendar) {
+  if (!(calendar.empty() || calendar == "standard" || calendar == "gregorian" ||
+        calendar == "proleptic_gregorian"))
+    throw std::invalid_argument("calendar '" + std::string(calendar) +
+                                "' is not supported (standard, gregorian, proleptic_gregorian)");
+  const auto since = units.find(" since ");
+  if (since == std::string_view::npos)
+    throw std::invalid_argument("time units '" + std::string(units) + "' lack 'since'");
+  std::string unit(units.substr(0, since));
+  for (char& c : unit) c = char(std::tolower(static_cast<unsigned char>(c)));
+  double seconds_per_unit;
+  if (unit == "days" || unit == "day" || unit == "d")
+    seconds_per_unit = 86400;
+  else if (unit == "hours" || unit == "hour" || unit == "h" || unit == "hr")
+    seconds_per_unit = 3600;
+  else if (unit == "minutes" || unit == "minute" || unit == "min")
+    seconds_per_unit = 60;
+  else if (unit == "seconds" || unit == "second" || unit == "s" || unit == "sec")
+    seconds_per_unit = 1;
+  else
+    throw std::invalid_argument("time unit '" + unit + "' is not supported");
+  const auto origin = parse_iso_time(units.substr(since + 7));
+  if (!origin) throw std::invalid_argument("time origin in '" + std::string(units) + "' unreadable");
+  return TimePoint{origin->seconds + std::int64_t(std::llround(value * seconds_per_unit))};
+}
+
+}  // namespace kalends

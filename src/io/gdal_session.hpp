@@ -1,0 +1,24 @@
+// GDAL set-up and small helpers shared by the readers and writers.
+#pragma once
+
+#include <gdal_priv.h>
+
+#include <cstdint>
+#include <string>
+
+namespace kalends::detail {
+
+/// Registers drivers once and routes GDAL's messages into its per-thread last-error slot
+/// instead of stderr, so errors reach the user once, as kalends errors.
+void start_gdal();
+
+/// Sets GDAL's block cache size (bytes); part of the memory budget.
+void set_gdal_cache(std::int64_t bytes);
+
+/// The last GDAL error message of this thread, or `fallback`.
+std::string gdal_message(const std::string& fallback);
+
+/// Opens a raster read-only; InputError naming `path` if it cannot.
+GDALDatasetUniquePtr open_raster(const std::string& path);
+
+}  // namespace kalends::detail

@@ -1,0 +1,160 @@
+#include "io/output_set.hpp"
+
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <cmath>
+#include <cstdio>
+#include <filesystem>
+#include <fstream>
+
+#include "io/gdal_session.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends::detail {
+
+namespace fs = std::filesystem;
+
+std::string temporary_name(const std::string& final_path) {
+  const fs::path p(final_path);
+  return (p.parent_path() / ("." + p.filename().string() + ".partial")).string();
+}
+
+namespace {
+
+void sync_path(const std::string& path, bool directory) {
+  const int fd = ::open(path.c_str(), directory ? O_RDONLY | O_DIRECTORY : O_RDONLY);
+  if (fd < 0) return;
+  ::fsync(fd);
+  ::close(fd);
+}
+
+void publish(const std::string& temporary, const std::string& final_path) {
+  sync_path(temporary, false);
+  std::error_code ec;
+  fs::rename(temporary, final_path, ec);
+  if (ec) throw OutputError(final_path, "cannot rename the finished file into place: " + ec.message());
+}
+
+const char* compression_name(Compression c) {
+  switch (c) {
+    case Compression::deflate: return "DEFLATE";
+    case Compression::zstd: return "ZSTD";
+    case Compression::lzw: return "LZW";
+    case Compression::none: return "NONE";
+  }
+  return "NONE";
+}
+
+}  // namespace
+
+void write_text_atomically(const std::string& path, const std::string& text) {
+  const std::string temporary = temporary_name(path);
+  {
+    std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
+    out << text;
+    out.flush();
+    if (!out) throw OutputError(path, "cannot write");
+  }
+  publish(temporary, path);
+  sync_path(fs::path(path).parent_path().string(), true);
+}
+
+OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression,
+                     int tile)
+    : tile_(tile) {
+  start_gdal();
+  GDALDriver* driver = GetGDALDriverManager()->GetDriverByName("GTiff");
+  if (!driver) throw OutputError("GTiff", "GDAL has no GeoTIFF driver");
+  const std::string block = std::to_string(tile);
+  CPLStringList options;
+  options.SetNameValue("TILED", "YES");
+  options.SetNameValue("BLOCKXSIZE", block.c_str());
+  options.SetNameValue("BLOCKYSIZE", block.c_str());
+  options.SetNameValue("INTERLEAVE", "BAND");
+  options.SetNameValue("COMPRESS", compression_name(compression));
+  if (compression != Compression::none) options.SetNameValue("PREDICTOR", "3");
+  options.SetNameValue("BIGTIFF", "IF_SAFER");
+
+  OGRSpatialReference srs;
+  const bool has_crs = !grid.crs_wkt.empty() && srs.importFromWkt(grid.crs_wkt.c_str()) == OGRERR_NONE;
+  files_.reserve(specs.size());
+  for (OutputSpec& spec : specs) {
+    auto file = std::make_unique<File>();
+    file->temporary = temporary_name(spec.path);
+    CPLErrorReset();
+    file->dataset.reset(driver->Create(file->temporary.c_str(), grid.width, grid.height, 3,
+                                       GDT_Float32, options.List()));
+    if (!file->dataset)
+      throw OutputError(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
+    GDALDataset& ds = *file->dataset;
+    if (grid.has_geotransform) {
+      std::array<double, 6> gt = grid.geotransform;
+      ds.SetGeoTransform(gt.data());
+    }
+    if (has_crs) ds.SetSpatialRef(&srs);
+    for (const auto& [key, value] : spec.metadata) ds.SetMetadataItem(key.c_str(), value.c_str());
+    static constexpr const char* names[] = {"value", "sd", "flag"};
+    for (int b = 1; b <= 3; ++b) {
+      GDALRasterBand* band = ds.GetRasterBand(b);
+      band->SetDescription(names[b - 1]);
+      if (b < 3) {
+        band->SetNoDataValue(std::nan(""));
+        if (!spec.unit.empty()) band->SetUnitType(spec.unit.c_str());
+      }
+    }
+    ds.GetRasterBand(3)->SetMetadataItem(
+        "FLAG_MEANINGS", "0=observed and kept, 1=observed but rejected as an outlier, 2=filled, 3=could not be filled");
+    file->spec = std::move(spec);
+    files_.push_back(std::move(file));
+  }
+}
+
+OutputSet::~OutputSet() {
+  if (committed_) return;
+  for (auto& file : files_) {
+    file->dataset.reset();
+    std::error_code ec;
+    fs::remove(file->temporary, ec);
+  }
+}
+
+void OutputSet::write(std::size_t index, const Window& core, const float* value, const float* sd,
+                      const float* flag, std::vector<float>& scratch) {
+  File& file = *files_.at(index);
+  const std::size_t tile_pixels = std::size_t(tile_) * tile_;
+  scratch.resize(tile_pixels);
+  const float* planes[3] = {value, sd, flag};
+  std::lock_guard lock(file.mutex);
+  for (int ty = core.y; ty < core.y + core.height; ty += tile_)
+    for (int tx = core.x; tx < core.x + core.width; tx += tile_) {
+      const int w = std::min(tile_, core.x + core.width - tx);
+      const int h = std::min(tile_, core.y + core.height - ty);
+      for (int b = 0; b < 3; ++b) {
+        // Padding past the raster's edge is never read back; NaN keeps it honest.
+        if (w < tile_ || h < tile_) std::fill(scratch.begin(), scratch.end(), b < 2 ? NAN : 3.0f);
+        for (int row = 0; row < h; ++row) {
+          const float* src = planes[b] + std::size_t(ty - core.y + row) * core.width + (tx - core.x);
+          std::copy(src, src + w, scratch.data() + std::size_t(row) * tile_);
+        }
+        CPLErrorReset();
+        if (file.dataset->GetRasterBand(b + 1)->WriteBlock(tx / tile_, ty / tile_, scratch.data()) !=
+            CE_None)
+          throw OutputError(file.spec.path, "write failed (" + gdal_message("disk full?") + ")");
+      }
+    }
+}
+
+void OutputSet::commit() {
+  for (auto& file : files_) {
+    CPLErrorReset();
+    file->dataset.reset();  // closing writes the remaining directory entries
+    if (CPLGetLastErrorType() == CE_Failure)
+      throw OutputError(file->spec.path, "closing failed (" + gdal_message("disk full?") + ")");
+  }
+  for (auto& file : files_) publish(file->temporary, file->spec.path);
+  if (!files_.empty()) sync_path(fs::path(files_.front()->spec.path).parent_path().string(), true);
+  committed_ = true;
+}
+
+}  // namespace kalends::detail

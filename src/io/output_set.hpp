@@ -1,0 +1,62 @@
+// A set of GeoTIFFs written block by block and published all at once: each is written under a
+// hidden temporary name and renamed only when every one is complete.
+#pragma once
+
+#include <gdal_priv.h>
+
+#include <map>
+#include <memory>
+#include <mutex>
+#include <string>
+#include <vector>
+
+#include "kalends/fill.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends::detail {
+
+struct OutputSpec {
+  std::string path;  // final name
+  std::map<std::string, std::string> metadata;
+  std::string unit;
+};
+
+class OutputSet {
+ public:
+  /// Creates every file (under its temporary name) with three float32 bands value, sd, flag:
+  /// tiled `tile` x `tile`, band-interleaved, compressed, georeferenced as `grid`.
+  OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression, int tile);
+  ~OutputSet();  // removes the temporaries unless commit() succeeded
+  OutputSet(const OutputSet&) = delete;
+  OutputSet& operator=(const OutputSet&) = delete;
+
+  std::size_t size() const noexcept { return files_.size(); }
+
+  /// Writes the three bands of `core` (tile-aligned) of output `index`. Thread-safe; tiles are
+  /// written whole, past GDAL's block cache, so no dirty block is ever shared between threads.
+  /// `scratch` is the caller's tile buffer.
+  void write(std::size_t index, const Window& core, const float* value, const float* sd,
+             const float* flag, std::vector<float>& scratch);
+
+  /// Closes, syncs and renames every file to its final name.
+  void commit();
+
+ private:
+  struct File {
+    OutputSpec spec;
+    std::string temporary;
+    GDALDatasetUniquePtr dataset;
+    std::mutex mutex;
+  };
+  std::vector<std::unique_ptr<File>> files_;
+  int tile_ = 256;
+  bool committed_ = false;
+};
+
+/// The hidden name a file is written under before it is published.
+std::string temporary_name(const std::string& final_path);
+
+/// Writes `text` to `path` atomically (temporary, fsync, rename).
+void write_text_atomically(const std::string& path, const std::string& text);
+
+}  // namespace kalends::detail

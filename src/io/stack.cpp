@@ -1,0 +1,302 @@
+#include "kalends/stack.hpp"
+
+#include <glob.h>
+#include <ogr_spatialref.h>
+
+#include <algorithm>
+#include <cmath>
+#include <cstring>
+#include <filesystem>
+#include <map>
+
+#include "io/gdal_session.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace {
+
+namespace fs = std::filesystem;
+
+bool has_glob_characters(const std::string& s) {
+  return s.find_first_of("*?[") != std::string::npos;
+}
+
+std::vector<std::string> expand_glob(const std::string& pattern) {
+  glob_t result{};
+  const int status = ::glob(pattern.c_str(), GLOB_ERR, nullptr, &result);
+  std::vector<std::string> paths;
+  if (status == 0)
+    for (std::size_t i = 0; i < result.gl_pathc; ++i) paths.emplace_back(result.gl_pathv[i]);
+  globfree(&result);
+  if (status == GLOB_NOMATCH || (status == 0 && paths.empty()))
+    throw InputError(pattern, "no file matches this pattern");
+  if (status != 0) throw InputError(pattern, "cannot list the files of this pattern");
+  std::sort(paths.begin(), paths.end());
+  return paths;
+}
+
+Grid grid_of(GDALDataset& dataset) {
+  Grid grid;
+  grid.width = dataset.GetRasterXSize();
+  grid.height = dataset.GetRasterYSize();
+  grid.has_geotransform = dataset.GetGeoTransform(grid.geotransform.data()) == CE_None;
+  if (!grid.has_geotransform) grid.geotransform = {0, 1, 0, 0, 0, 1};
+  if (const OGRSpatialReference* srs = dataset.GetSpatialRef()) {
+    char* wkt = nullptr;
+    const char* options[] = {"FORMAT=WKT2_2018", nullptr};
+    if (srs->exportToWkt(&wkt, options) == OGRERR_NONE && wkt) grid.crs_wkt = wkt;
+    CPLFree(wkt);
+  }
+  return grid;
+}
+
+Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, TimePoint time,
+               const ValueRules& rules) {
+  GDALRasterBand* band = dataset.GetRasterBand(band_index);
+  Layer layer;
+  layer.path = path;
+  layer.band = band_index;
+  layer.time = time;
+  int has = 0;
+  const double scale = band->GetScale(&has);
+  layer.scale = rules.scale.value_or(has ? scale : 1.0);
+  const double offset = band->GetOffset(&has);
+  layer.offset = rules.offset.value_or(has ? offset : 0.0);
+  const double nodata = band->GetNoDataValue(&has);
+  if (rules.nodata)
+    layer.nodata = rules.nodata;
+  else if (has)
+    layer.nodata = nodata;
+  if (const char* unit = band->GetUnitType()) layer.unit = unit;
+  return layer;
+}
+
+// What the file names share before their date: "ndvi_2004-05-24.tif" -> "ndvi",
+// "MOD13A1.A2004145.h12v04.hdf" -> "MOD13A1".
+std::string name_from_file(const std::string& path) {
+  const std::string base = fs::path(path).filename().string();
+  const auto date = find_date_in_name(base);
+  std::string prefix = date ? base.substr(0, date->position) : fs::path(base).stem().string();
+  if (date && prefix.size() >= 2 && std::isalpha(static_cast<unsigned char>(prefix.back())) &&
+      std::strchr("_-. ", prefix[prefix.size() - 2]))
+    prefix.pop_back();  // the "A" of "A2004145"
+  while (!prefix.empty() && std::strchr("_-. ", prefix.back())) prefix.pop_back();
+  return prefix.empty() ? "filled" : prefix;
+}
+
+std::string band_where(const std::string& path, int band) {
+  return path + " band " + std::to_string(band);
+}
+
+std::optional<TimePoint> time_from_text(const char* text) {
+  if (text == nullptr || *text == '\0') return std::nullopt;
+  if (auto t = parse_iso_time(text)) return t;
+  return date_from_name(text);
+}
+
+// The date of one band of a multi-band raster: GRIB valid time, CF time axis, band
+// description, or a date item in the band's metadata.
+TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_index) {
+  GDALRasterBand* band = dataset.GetRasterBand(band_index);
+  if (const char* valid = band->GetMetadataItem("GRIB_VALID_TIME")) {
+    char* end = nullptr;
+    const long long seconds = std::strtoll(valid, &end, 10);
+    if (end != valid) return TimePoint{seconds};
+  }
+  if (char** items = band->GetMetadata()) {
+    for (int i = 0; items[i]; ++i) {
+      const std::string item = items[i];
+      if (item.rfind("NETCDF_DIM_", 0) != 0) continue;
+      const auto eq = item.find('=');
+      if (eq == std::string::npos) continue;
+      const std::string dim = item.substr(11, eq - 11);
+      const char* units = dataset.GetMetadataItem((dim + "#units").c_str());
+      if (units == nullptr || std::strstr(units, " since ") == nullptr) continue;
+      const char* calendar = dataset.GetMetadataItem((dim + "#calendar").c_str());
+      try {
+        return cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");
+      } catch (const std::invalid_argument& e) {
+        throw InputError(band_where(path, band_index), std::string("time axis: ") + e.what());
+      }
+    }
+  }
+  if (auto t = time_from_text(band->GetDescription())) return *t;
+  for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"})
+    if (auto t = time_from_text(band->GetMetadataItem(key))) return *t;
+  throw InputError(band_where(path, band_index),
+                   "no date found (looked for a GRIB valid time, a CF time axis, a date in the "
+                   "band description or in DATE/TIME metadata)");
+}
+
+bool same_crs(const std::string& a, const std::string& b) {
+  if (a == b) return true;
+  if (a.empty() || b.empty()) return false;
+  OGRSpatialReference sa, sb;
+  if (sa.importFromWkt(a.c_str()) != OGRERR_NONE || sb.importFromWkt(b.c_str()) != OGRERR_NONE)
+    return false;
+  return sa.IsSame(&sb) != 0;
+}
+
+
+}  // namespace
+
+void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where) {
+  if (expected.width != actual.width || expected.height != actual.height)
+    throw InputError(where, "grid is " + std::to_string(actual.width) + " x " +
+                                std::to_string(actual.height) + " px, the stack's is " +
+                                std::to_string(expected.width) + " x " +
+                                std::to_string(expected.height));
+  const double pixel = std::max(std::abs(expected.geotransform[1]), std::abs(expected.geotransform[5]));
+  for (int i = 0; i < 6; ++i)
+    if (std::abs(expected.geotransform[i] - actual.geotransform[i]) > 1e-6 * std::max(pixel, 1e-12))
+      throw InputError(where, "georeferencing (origin or pixel size) differs from the rest of the stack");
+  if (!same_crs(expected.crs_wkt, actual.crs_wkt))
+    throw InputError(where, "coordinate reference system differs from the rest of the stack");
+}
+
+Stack Stack::open(const std::string& input, const ValueRules& rules) {
+  detail::start_gdal();
+  Stack stack;
+  stack.input_ = input;
+  stack.rules_ = rules;
+  if (rules.valid_min && rules.valid_max && *rules.valid_min > *rules.valid_max)
+    throw UsageError("--valid-range", "minimum is above maximum");
+
+  const bool pattern = has_glob_characters(input) && !fs::exists(input);
+  if (pattern) {
+    bool first = true;
+    for (const std::string& path : expand_glob(input)) {
+      const auto time = date_from_name(path);
+      if (!time)
+        throw InputError(path, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
+      GDALDatasetUniquePtr dataset = detail::open_raster(path);
+      if (rules.band > dataset->GetRasterCount())
+        throw InputError(path, "has no band " + std::to_string(rules.band));
+      const Grid grid = grid_of(*dataset);
+      if (first) {
+        stack.grid_ = grid;
+        stack.name_ = name_from_file(path);
+        first = false;
+      } else {
+        require_same_grid(stack.grid_, grid, path);
+      }
+      stack.layers_.push_back(layer_of(*dataset, path, rules.band, *time, rules));
+    }
+  } else {
+    if (fs::is_directory(input))
+      throw InputError(input, "is a folder; give a pattern such as '" + input + "/*.tif'");
+    GDALDatasetUniquePtr dataset;
+    try {
+      dataset = detail::open_raster(input);
+    } catch (const InputError&) {
+      // A NetCDF/HDF file with several variables opens with no band but lists subdatasets.
+      detail::start_gdal();
+      GDALDatasetUniquePtr any(GDALDataset::Open(input.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      if (any) {
+        if (char** sub = any->GetMetadata("SUBDATASETS"); sub && sub[0]) {
+          std::string names;
+          for (int i = 0; sub[i]; ++i) {
+            const std::string item = sub[i];
+            if (item.find("_NAME=") == std::string::npos) continue;
+            names += (names.empty() ? "" : ", ") + item.substr(item.find('=') + 1);
+          }
+          throw InputError(input, "holds several variables; choose one of: " + names);
+        }
+      }
+      if (!fs::exists(input) && !has_glob_characters(input) && input.find(':') == std::string::npos)
+        throw InputError(input, "no such file");
+      throw;
+    }
+    stack.grid_ = grid_of(*dataset);
+    const int bands = dataset->GetRasterCount();
+    if (bands == 1) {
+      const auto time = date_from_name(input);
+      TimePoint t;
+      if (time)
+        t = *time;
+      else
+        t = band_time(*dataset, input, 1);
+      stack.layers_.push_back(layer_of(*dataset, input, 1, t, rules));
+    } else {
+      for (int b = 1; b <= bands; ++b)
+        stack.layers_.push_back(layer_of(*dataset, input, b, band_time(*dataset, input, b), rules));
+    }
+    // NETCDF:"file.nc":tas -> "tas"; file.grib -> "file".
+    const auto colon = input.rfind(':');
+    if (input.rfind("NETCDF:", 0) == 0 && colon != std::string::npos && colon + 1 < input.size())
+      stack.name_ = input.substr(colon + 1);
+    else
+      stack.name_ = name_from_file(input);
+  }
+
+  std::stable_sort(stack.layers_.begin(), stack.layers_.end(),
+                   [](const Layer& a, const Layer& b) { return a.time < b.time; });
+  for (std::size_t i = 1; i < stack.layers_.size(); ++i)
+    if (stack.layers_[i].time == stack.layers_[i - 1].time) {
+      const Layer& a = stack.layers_[i - 1];
+      const Layer& b = stack.layers_[i];
+      const std::string where_b = b.path == a.path ? band_where(b.path, b.band) : b.path;
+      const std::string where_a = b.path == a.path ? "band " + std::to_string(a.band) : a.path;
+      throw InputError(where_b, "duplicate date " + b.time.label() + " (also " + where_a + ")");
+    }
+  return stack;
+}
+
+std::vector<TimePoint> Stack::times() const {
+  std::vector<TimePoint> t;
+  t.reserve(layers_.size());
+  for (const Layer& layer : layers_) t.push_back(layer.time);
+  return t;
+}
+
+std::unique_ptr<StackReader> Stack::reader() const { return std::make_unique<StackReader>(*this); }
+
+struct StackReader::Handles {
+  std::map<std::string, GDALDatasetUniquePtr> open;
+  GDALRasterBand& band(const Layer& layer) {
+    auto it = open.find(layer.path);
+    if (it == open.end()) it = open.emplace(layer.path, detail::open_raster(layer.path)).first;
+    return *it->second->GetRasterBand(layer.band);
+  }
+};
+
+StackReader::StackReader(const Stack& stack) : stack_(stack), handles_(std::make_unique<Handles>()) {}
+StackReader::~StackReader() = default;
+
+static void read_window(GDALRasterBand& band, const Layer& layer, const Window& w, void* out,
+                        GDALDataType type) {
+  CPLErrorReset();
+  if (band.RasterIO(GF_Read, w.x, w.y, w.width, w.height, out, w.width, w.height, type, 0, 0,
+                    nullptr) != CE_None)
+    throw InputError(layer.path, "cannot read pixels (" + detail::gdal_message("read failed") +
+                                     "); the file may be truncated or corrupt");
+}
+
+void StackReader::read_values(std::size_t index, const Window& w, float* out) {
+  const Layer& layer = stack_.layers()[index];
+  read_window(handles_->band(layer), layer, w, out, GDT_Float32);
+  const ValueRules& rules = stack_.rules();
+  const bool has_nodata = layer.nodata.has_value();
+  const float nodata = has_nodata ? float(*layer.nodata) : 0.0f;
+  const bool nodata_is_nan = has_nodata && std::isnan(*layer.nodata);
+  const float low = rules.valid_min ? float(*rules.valid_min) : -INFINITY;
+  const float high = rules.valid_max ? float(*rules.valid_max) : INFINITY;
+  const float scale = float(layer.scale), offset = float(layer.offset);
+  const std::int64_t n = w.pixels();
+  for (std::int64_t i = 0; i < n; ++i) {
+    const float raw = out[i];
+    float v = raw * scale + offset;
+    if ((has_nodata && !nodata_is_nan && raw == nodata) || !(v >= low && v <= high) ||
+        !std::isfinite(v))
+      v = NAN;
+    out[i] = v;
+  }
+}
+
+void StackReader::read_integers(std::size_t index, const Window& w, std::uint32_t* out) {
+  const Layer& layer = stack_.layers()[index];
+  read_window(handles_->band(layer), layer, w, out, GDT_UInt32);
+}
+
+}  // namespace kalends
