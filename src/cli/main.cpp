@@ -29,6 +29,7 @@ int main(int argc, char** argv) {
   raise_open_file_limit();
   CLI::App app{"kalends: gap-filled, quality-flagged covariate layers from satellite time series"};
   app.require_subcommand(1);
+  app.fallthrough();  // -q and -v may also follow the subcommand
   app.set_version_flag("--version", KALENDS_VERSION);
   cli::GlobalOptions global;
   for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + std::string(argv[i]);

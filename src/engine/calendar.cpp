@@ -65,7 +65,7 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
     mean.start = TimePoint{begin * 86400};
     std::map<int, double> weight;
     for (std::int64_t d = begin; d < end; ++d) {
-      const double t = double(d) + 0.5 - start_day;  // middle of the day, days since grid start
+      const double t = double(d) - start_day;  // days since grid start
       if (t < grid.slot_days.front() || t > grid.slot_days.back()) continue;
       const auto upper = std::upper_bound(grid.slot_days.begin(), grid.slot_days.end(), t);
       const int hi = std::min<int>(grid.size - 1, int(upper - grid.slot_days.begin()));

@@ -104,13 +104,16 @@ rm -rf "$workdir/out-floor" "$workdir/out-kalends"   # several GB at full size
 echo "bench: scipy reference" >&2
 "$py" "$root/tools/bench/scipy_whittaker.py" "$stack/ndvi_*.tif" --pixels 2000 --lambda 1000 \
   > "$workdir/scipy.json"
+"$py" "$root/tools/bench/scipy_whittaker.py" "$stack/ndvi_*.tif" --pixels 500 --lambda 1000 --with-sd \
+  > "$workdir/scipy_sd.json"
 
 "$py" - "$runs" "$workdir/scipy.json" "$workdir/fill-bench.json" \
-  "$width" "$height" "$dates" "$threads" "$repeats" "$kalends" <<'PY'
+  "$width" "$height" "$dates" "$threads" "$repeats" "$kalends" "$workdir/scipy_sd.json" <<'PY'
 import json, os, platform, statistics, subprocess, sys
 runs_path, scipy_path, out_path = sys.argv[1:4]
 width, height, dates, threads, repeats = map(int, sys.argv[4:9])
 kalends = sys.argv[9]
+scipy_sd = json.load(open(sys.argv[10]))
 pd = width * height * dates
 
 rows = {}
@@ -153,6 +156,8 @@ ratios = {
     f"kalends_fixed_T{T}_over_floor_time": ratio(get(kfixT, "median_s"), get("floor", "median_s")),
     "kalends_fixed_1t_over_scipy_throughput": ratio(get(kfix1, "pixel_dates_per_s"), scipy["pixel_dates_per_s"]),
     "kalends_kernel_1t_over_scipy_throughput": ratio(get(kfix1, "kernel_pixel_dates_per_s"), scipy["pixel_dates_per_s"]),
+    "kalends_fixed_1t_over_scipy_z_and_sd_throughput": ratio(get(kfix1, "pixel_dates_per_s"), scipy_sd["pixel_dates_per_s"]),
+    "kalends_kernel_1t_over_scipy_z_and_sd_throughput": ratio(get(kfix1, "kernel_pixel_dates_per_s"), scipy_sd["pixel_dates_per_s"]),
     f"speedup_fixed_T{T}_vs_1t": ratio(get(kfix1, "median_s"), get(kfixT, "median_s")) if T > 1 else None,
     f"speedup_auto_T{T}_vs_1t": ratio(get(kauto1, "median_s"), get(kautoT, "median_s")) if T > 1 else None,
     "peak_rss_over_1GiB_budget": max(rss_k) / 1024.0 if rss_k else None,
@@ -172,7 +177,7 @@ doc = dict(benchmark="kalends fill", synthetic_stack=True, width=width, height=h
            gdal=version(["gdal-config", "--version"]),
            kalends=version([kalends, "--version"]) if os.access(kalends, os.X_OK) else None,
            commit=version(["git", "-C", os.path.dirname(os.path.abspath(out_path)), "rev-parse", "--short", "HEAD"]),
-           results=res, scipy_reference=scipy, ratios=ratios, rss_within_budget_plus_15pct=budget_ok)
+           results=res, scipy_reference=scipy, scipy_reference_z_and_sd=scipy_sd, ratios=ratios, rss_within_budget_plus_15pct=budget_ok)
 with open(out_path, "w") as f:
     json.dump(doc, f, indent=1)
 
@@ -195,11 +200,15 @@ for key, label in labels.items():
           f"{fmt(r['kernel_pixel_dates_per_s'], '.3e'):>12}")
 print(f"{'scipy solveh_banded, solves only, 1 core':<40} {'-':>9} {scipy['pixel_dates_per_s']:>14.3e} "
       f"{'-':>13} {'-':>12}   ({scipy['pixels']} px x {scipy['dates']} dates)")
+print(f"{'scipy solveh_banded, z and sd, 1 core':<40} {'-':>9} {scipy_sd['pixel_dates_per_s']:>14.3e} "
+      f"{'-':>13} {'-':>12}   ({scipy_sd['pixels']} px x {scipy_sd['dates']} dates)")
 b = ratios["peak_rss_over_1GiB_budget"]
 lines = [
     (f"kalends lambda=1000, {T} threads / I/O floor (time)", fmt(ratios[f"kalends_fixed_T{T}_over_floor_time"], ".2f")),
     ("kalends 1 thread / scipy per core (end to end)", fmt(ratios["kalends_fixed_1t_over_scipy_throughput"], ".2f")),
     ("kalends kernel 1 thread / scipy per core", fmt(ratios["kalends_kernel_1t_over_scipy_throughput"], ".2f")),
+    ("kalends 1 thread / scipy z+sd per core (end to end)", fmt(ratios["kalends_fixed_1t_over_scipy_z_and_sd_throughput"], ".2f")),
+    ("kalends kernel 1 thread / scipy z+sd per core", fmt(ratios["kalends_kernel_1t_over_scipy_z_and_sd_throughput"], ".2f")),
 ]
 if T > 1:
     lines.append((f"speed-up {T} threads vs 1, lambda=1000 / auto",

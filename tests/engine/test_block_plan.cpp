@@ -1,0 +1,60 @@
+#include <catch2/catch.hpp>
+
+#include <set>
+
+#include "kalends/block_plan.hpp"
+#include "kalends/error.hpp"
+#include "kalends/time_grid.hpp"
+
+using namespace kalends;
+
+namespace {
+// Every pixel lies in exactly one core; reads hold their core plus the halo, clipped.
+void check_cover(const BlockPlan& plan, int width, int height, int halo) {
+  std::vector<int> count(std::size_t(width) * height, 0);
+  for (const Block& b : plan.blocks) {
+    CHECK(b.core.x % plan.tile == 0);
+    CHECK(b.core.y % plan.tile == 0);
+    for (int y = b.core.y; y < b.core.y + b.core.height; ++y)
+      for (int x = b.core.x; x < b.core.x + b.core.width; ++x) ++count[std::size_t(y) * width + x];
+    CHECK(b.read.x == std::max(0, b.core.x - halo));
+    CHECK(b.read.y == std::max(0, b.core.y - halo));
+    CHECK(b.read.x + b.read.width == std::min(width, b.core.x + b.core.width + halo));
+    CHECK(b.read.y + b.read.height == std::min(height, b.core.y + b.core.height + halo));
+  }
+  for (int c : count) REQUIRE(c == 1);
+}
+}  // namespace
+
+TEST_CASE("blocks cover the raster once and respect the pixel budget", "[engine][blocks]") {
+  for (auto [w, h, halo, budget] : std::vector<std::tuple<int, int, int, std::int64_t>>{
+           {1000, 700, 0, 256 * 256}, {1000, 700, 0, 1000 * 512}, {1000, 700, 8, 300 * 300},
+           {100, 100, 0, 1 << 20}, {2048, 2048, 0, 2048 * 768}, {513, 257, 16, 600 * 600}}) {
+    INFO(w << "x" << h << " halo " << halo << " budget " << budget);
+    const BlockPlan plan = BlockPlan::make(w, h, halo, budget);
+    check_cover(plan, w, h, halo);
+    for (const Block& b : plan.blocks) CHECK(b.read.pixels() <= budget);
+  }
+  // A roomy budget gives full-width strips; a tight one, single tiles.
+  CHECK(BlockPlan::make(2048, 2048, 0, 2048 * 768).block_width == 2048);
+  CHECK(BlockPlan::make(2048, 2048, 0, 2048 * 768).block_height == 768);
+  CHECK(BlockPlan::make(2048, 2048, 0, 256 * 256).blocks.size() == 64);
+  CHECK_THROWS_AS(BlockPlan::make(2048, 2048, 8, 256 * 256), UsageError);
+}
+
+TEST_CASE("time grid keeps true spacing and resolves composite-calendar collisions", "[engine][grid]") {
+  auto day = [](int y, int m, int d) { return TimePoint::from_date({y, m, d}); };
+  // MODIS 16-day: DOY 337, 353, then 1 January restarts after 13 days.
+  const std::vector<TimePoint> times{day(2021, 12, 3), day(2021, 12, 19), day(2022, 1, 1),
+                                     day(2022, 1, 17), day(2022, 3, 22)};
+  const TimeGrid g = TimeGrid::build(times);
+  CHECK(g.step_days == 16);
+  CHECK(g.slot_of_date == std::vector<int>{0, 1, 2, 3, 7});  // a 64-day gap keeps its 4 slots
+  CHECK(g.size == 8);
+  CHECK(g.slot_days[2] == 29);   // true date kept for the slot
+  CHECK(g.slot_days[5] == 80);   // empty slot on the grid
+  // Two dates nearest the same slot: the later moves to the next slot.
+  const TimeGrid c = TimeGrid::build({day(2020, 1, 1), day(2020, 1, 17), day(2020, 1, 26),
+                                      day(2020, 2, 2), day(2020, 2, 18)});
+  CHECK(c.slot_of_date == std::vector<int>{0, 1, 2, 3, 4});
+}

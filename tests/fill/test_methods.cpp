@@ -1,0 +1,117 @@
+#include <catch2/catch.hpp>
+
+#include <cmath>
+#include <random>
+
+#include "fill/gap_limit.hpp"
+#include "fill/harmonic.hpp"
+#include "fill/whittaker.hpp"
+#include "kalends/error.hpp"
+
+using namespace kalends;
+
+TEST_CASE("Whittaker reproduces what its penalty cannot see", "[fill][whittaker]") {
+  // A straight line has zero second differences: any lambda returns it unchanged (Eilers 2003).
+  MethodOptions options;
+  options.lambda = 1e5;
+  WhittakerMethod method(options);
+  WhittakerMethod::Workspace ws;
+  const int n = 30;
+  std::vector<float> y(n), w(n, 1.0f), z(n), sd(n);
+  std::vector<std::uint8_t> rejected(n);
+  for (int i = 0; i < n; ++i) y[i] = 0.1f + 0.02f * i;
+  for (int i : {3, 4, 5, 17}) w[i] = 0, y[i] = NAN;
+  method.smooth(y, w, z, sd, rejected, ws);
+  for (int i = 0; i < n; ++i) CHECK(z[i] == Approx(0.1 + 0.02 * i).margin(1e-5));
+}
+
+TEST_CASE("Whittaker marks too-short series unfillable and envelope rejects low values", "[fill][whittaker]") {
+  MethodOptions options;
+  WhittakerMethod method(options);
+  WhittakerMethod::Workspace ws;
+  std::vector<float> y(12, NAN), w(12, 0.0f), z(12), sd(12);
+  std::vector<std::uint8_t> rejected(12);
+  y[4] = 0.5f, w[4] = 1, y[9] = 0.6f, w[9] = 1;  // 2 observations < order + 1
+  CHECK_FALSE(method.smooth(y, w, z, sd, rejected, ws).fitted);
+  CHECK(std::isnan(z[0]));
+
+  options.envelope_upper = true;
+  options.lambda = 10;
+  WhittakerMethod envelope(options);
+  const int n = 46;
+  std::vector<float> s(n), ones(n, 1.0f), fit(n), err(n);
+  std::vector<std::uint8_t> rej(n);
+  std::mt19937 rng(3);
+  std::normal_distribution<float> noise(0.0f, 0.01f);
+  for (int i = 0; i < n; ++i) s[i] = 0.5f + 0.3f * std::sin(2 * 3.14159f * i / 23) + noise(rng);
+  for (int i : {6, 20, 33}) s[i] -= 0.3f;  // cloud: far below
+  envelope.smooth(s, ones, fit, err, rej, ws);
+  for (int i : {6, 20, 33}) {
+    CHECK(rej[i] == 1);
+    CHECK(fit[i] > s[i] + 0.2f);
+  }
+  int others = 0;
+  for (int i = 0; i < n; ++i) others += rej[i];
+  CHECK(others <= 3 + 2);  // common practice: a handful of false alarms at most
+}
+
+TEST_CASE("gap limit leaves long gaps and far ends unfilled", "[fill][gaps]") {
+  const std::vector<TimePoint> times = [] {
+    std::vector<TimePoint> t;
+    for (int i = 0; i < 20; ++i) t.push_back(TimePoint{std::int64_t(i) * 16 * 86400});
+    return t;
+  }();
+  const TimeGrid grid = TimeGrid::build(times);
+  std::vector<float> w(20, 1.0f), fitted(20, 1.0f), sd(20, 0.1f);
+  std::vector<std::uint8_t> rejected(20, 0);
+  for (int i : {0, 1, 2, 8, 9, 10, 11, 12, 13, 19}) w[i] = 0;
+  detail::limit_gaps(grid, w, rejected, 100, 20, fitted, sd);
+  CHECK(std::isnan(fitted[0]));  // 48 days before the first observation > 20
+  CHECK(std::isnan(fitted[1]));  // 32 days > 20
+  CHECK(fitted[2] == 1.0f);      // 16 days
+  for (int i = 8; i <= 13; ++i) CHECK(std::isnan(fitted[i]));  // gap 7..14 = 112 days > 100
+  CHECK(fitted[19] == 1.0f);     // 16 days after the last
+  rejected[18] = 1;              // a rejected observation does not anchor the curve
+  fitted.assign(20, 1.0f);
+  detail::limit_gaps(grid, w, rejected, 0, 20, fitted, sd);
+  CHECK(std::isnan(fitted[19]));
+  CHECK(fitted[10] == 1.0f);     // no gap limit
+}
+
+TEST_CASE("method registry and option checks", "[fill][registry]") {
+  MethodOptions options;
+  CHECK(make_fill_method(options)->name() == "whittaker");
+  options.method = "harmonic";
+  CHECK(make_fill_method(options)->name() == "harmonic");
+  options.method = "kriging";
+  CHECK_THROWS_AS(make_fill_method(options), UsageError);
+  options.method = "whittaker";
+  options.order = 4;
+  CHECK_THROWS_AS(make_fill_method(options), UsageError);
+  options.order = 2;
+  options.lambda = -1;
+  CHECK_THROWS_AS(make_fill_method(options), UsageError);
+}
+
+TEST_CASE("harmonic fit recovers a pure annual cycle", "[fill][harmonic]") {
+  MethodOptions options;
+  options.harmonics = 2;
+  HarmonicMethod method(options);
+  std::vector<double> days;
+  std::vector<float> y, w;
+  for (int i = 0; i < 69; ++i) {
+    days.push_back(16.0 * i);
+    y.push_back(float(0.4 + 0.2 * std::cos(2 * M_PI * days.back() / 365.25 - 1.0)));
+    w.push_back(i % 5 == 0 ? 0.0f : 1.0f);
+  }
+  const auto x = method.design(days);
+  std::vector<float> z(69), sd(69);
+  std::vector<std::uint8_t> rejected(69);
+  const auto fit = method.fit(x, y, w, z, sd, rejected);
+  REQUIRE(fit.fitted);
+  CHECK(fit.coefficients[0] == Approx(0.4).margin(1e-6));
+  // cos(a - 1) = cos a cos 1 + sin a sin 1
+  CHECK(fit.coefficients[1] == Approx(0.2 * std::cos(1.0)).margin(1e-6));
+  CHECK(fit.coefficients[2] == Approx(0.2 * std::sin(1.0)).margin(1e-6));
+  for (int i = 0; i < 69; ++i) CHECK(z[i] == Approx(y[i]).margin(1e-5));
+}

@@ -1,0 +1,66 @@
+#include <catch2/catch.hpp>
+
+#include "kalends/time.hpp"
+
+using namespace kalends;
+
+TEST_CASE("civil date round trip and known day numbers", "[io][dates]") {
+  // 1970-01-01 is day 0; 2000-03-01 is day 11017 (checkable with `date -d 2000-03-01 +%s` / 86400).
+  CHECK(days_from_civil(1970, 1, 1) == 0);
+  CHECK(days_from_civil(2000, 3, 1) == 11017);
+  CHECK(days_from_civil(1950, 1, 1) == -7305);
+  for (std::int64_t d = -800000; d < 800000; d += 997) {
+    const CivilDate c = civil_from_days(d);
+    CHECK(days_from_civil(c.year, c.month, c.day) == d);
+  }
+  CHECK(is_leap_year(2000));
+  CHECK_FALSE(is_leap_year(1900));
+  CHECK(day_of_year({2004, 12, 31}) == 366);
+  CHECK(day_of_year({2005, 3, 1}) == 60);
+}
+
+TEST_CASE("dates in file names", "[io][dates]") {
+  struct Row {
+    const char* name;
+    const char* expected;  // label, or "" for none
+  };
+  // Table: input, expected date.
+  const Row rows[] = {
+      {"ndvi_2004-05-24.tif", "2004-05-24"},
+      {"ndvi_20040524.tif", "2004-05-24"},
+      {"MOD13A1.A2004145.h12v04.006.2015154134511.hdf", "2004-05-24"},  // DOY 145 of a leap year
+      {"lst_2005001.tif", "2005-01-01"},
+      {"A2004366.tif", "2004-12-31"},
+      {"A2005366.tif", ""},          // 2005 has 365 days
+      {"ndvi_2004-13-01.tif", ""},   // month 13
+      {"ndvi_20040230.tif", ""},     // 30 February
+      {"/data/2020-01-01/ndvi_v6.tif", ""},  // folders are not searched
+      {"ndvi.tif", ""},
+      {"x_12345678901_2004-02-29.tif", "2004-02-29"},  // long digit runs are skipped
+  };
+  for (const Row& row : rows) {
+    INFO(row.name);
+    const auto t = date_from_name(row.name);
+    if (*row.expected == '\0') {
+      CHECK_FALSE(t.has_value());
+    } else {
+      REQUIRE(t.has_value());
+      CHECK(t->label() == row.expected);
+    }
+  }
+}
+
+TEST_CASE("ISO and CF times", "[io][dates]") {
+  REQUIRE(parse_iso_time("1950-01-01 00:00:00"));
+  CHECK(parse_iso_time("2019-03-01T06:30:00Z")->label() == "2019-03-01T0630");
+  CHECK_FALSE(parse_iso_time("2019-02-30"));
+  CHECK_FALSE(parse_iso_time("yesterday"));
+  // bcsd_obs_1999.nc's first time value; (date(1999,1,31) - date(1950,1,1)).days == 17927 by
+  // Python's datetime.
+  CHECK(cf_time(17927, "days since 1950-01-01 00:00:00").label() == "1999-01-31");
+  CHECK(cf_time(36, "hours since 2000-01-01").label() == "2000-01-02T1200");
+  CHECK(cf_time(90, "minutes since 2000-01-01 00:00").label() == "2000-01-01T0130");
+  CHECK_THROWS_AS(cf_time(1, "days since 2000-01-01", "360_day"), std::invalid_argument);
+  CHECK_THROWS_AS(cf_time(1, "fortnights since 2000-01-01"), std::invalid_argument);
+  CHECK_THROWS_AS(cf_time(1, "days"), std::invalid_argument);
+}
