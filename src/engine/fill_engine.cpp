@@ -246,7 +246,11 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         float value;
         Flag flag;
         if (observed && w.out.rejected[at]) {
-          value = fit, flag = Flag::rejected;
+          // A rejected observation beyond the method's reach has nothing to replace it.
+          if (std::isfinite(fit))
+            value = fit, flag = Flag::rejected;
+          else
+            value = NAN, flag = Flag::unfilled;
         } else if (observed) {
           value = request.smooth && std::isfinite(fit) ? fit : y, flag = Flag::observed;
         } else if (std::isfinite(fit)) {

@@ -280,17 +280,17 @@ void StackReader::read_values(std::size_t index, const Window& w, float* out) {
   const bool has_nodata = layer.nodata.has_value();
   const float nodata = has_nodata ? float(*layer.nodata) : 0.0f;
   const bool nodata_is_nan = has_nodata && std::isnan(*layer.nodata);
-  const float low = rules.valid_min ? float(*rules.valid_min) : -INFINITY;
-  const float high = rules.valid_max ? float(*rules.valid_max) : INFINITY;
-  const float scale = float(layer.scale), offset = float(layer.offset);
+  const double low = rules.valid_min.value_or(-INFINITY);
+  const double high = rules.valid_max.value_or(INFINITY);
   const std::int64_t n = w.pixels();
   for (std::int64_t i = 0; i < n; ++i) {
     const float raw = out[i];
-    float v = raw * scale + offset;
-    if ((has_nodata && !nodata_is_nan && raw == nodata) || !(v >= low && v <= high) ||
-        !std::isfinite(v))
-      v = NAN;
-    out[i] = v;
+    // In double, rounded once: float32 arithmetic would be one ulp off for a third of scaled
+    // integers (raw * 0.0001f).
+    const double v = double(raw) * layer.scale + layer.offset;
+    const bool missing = (has_nodata && !nodata_is_nan && raw == nodata) ||
+                         !(v >= low && v <= high) || !std::isfinite(v);
+    out[i] = missing ? NAN : float(v);
   }
 }
 

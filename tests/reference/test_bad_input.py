@@ -1,0 +1,218 @@
+"""kalends fill on bad input: exit code 2, one clear line on stderr, nothing written.
+
+Each case runs twice: into a fresh output folder (no final *.tif and no fill-summary.json may
+appear there), and into a folder holding the outputs of an earlier good run (they must stay
+byte-identical, and no file may be added). The message must be one line starting
+`kalends: `, name the offending file (its base name at least) or option, and say what is wrong
+(one of a few keywords per case). The messages are printed for the record.
+
+The inputs are small invented GeoTIFFs written with Python GDAL (mechanics only).
+
+Run: /usr/bin/python3 -m unittest -v tests/reference/test_bad_input.py
+"""
+
+import glob
+import os
+import shutil
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+WIDTH, HEIGHT = 64, 48
+GEOTRANSFORM = (500000.0, 30.0, 0.0, 7000000.0, 0.0, -30.0)
+EPSG = 32736
+DATES = ["2020-01-01", "2020-01-17", "2020-02-02", "2020-02-18", "2020-03-05"]
+
+
+def write_layer(path, seed, width=WIDTH, height=HEIGHT, geotransform=GEOTRANSFORM, epsg=EPSG):
+    rng = np.random.default_rng(seed)
+    values = (0.3 + 0.1 * rng.random((height, width))).astype(np.float32)
+    values[rng.random((height, width)) < 0.2] = np.nan
+    kt.write_raster(path, values, geotransform=geotransform, epsg=epsg, nodata=float("nan"))
+
+
+def write_stack(folder, dates=DATES, prefix="ndvi_"):
+    os.makedirs(folder, exist_ok=True)
+    for i, date in enumerate(dates):
+        write_layer(os.path.join(folder, "%s%s.tif" % (prefix, date)), seed=i)
+
+
+def write_qa(folder, dates=DATES):
+    os.makedirs(folder, exist_ok=True)
+    for i, date in enumerate(dates):
+        qa = np.random.default_rng(100 + i).integers(0, 4, (HEIGHT, WIDTH)).astype(np.uint8)
+        kt.write_raster(os.path.join(folder, "qa_%s.tif" % date), qa,
+                        geotransform=GEOTRANSFORM, epsg=EPSG)
+
+
+def snapshot(folder):
+    """{relative path: bytes} of every file under folder."""
+    files = {}
+    for root, _, names in os.walk(folder):
+        for name in names:
+            path = os.path.join(root, name)
+            with open(path, "rb") as f:
+                files[os.path.relpath(path, folder)] = f.read()
+    return files
+
+
+class BadInput(kt.TempDirTestCase):
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        cls.good = os.path.join(cls.tmp, "good")
+        write_stack(cls.good)
+        cls.qa = os.path.join(cls.tmp, "qa")
+        write_qa(cls.qa)
+        # An earlier good run: its outputs must survive every failed run into the same folder.
+        cls.previous = os.path.join(cls.tmp, "previous")
+        cls.previous_done = kt.run_kalends(["-q", "fill", os.path.join(cls.good, "*.tif"),
+                                            "--out", cls.previous, "--lambda", "10"])
+        cls.previous_files = snapshot(cls.previous) if cls.previous_done.returncode == 0 else {}
+        cls.counter = 0
+
+    def setUp(self):
+        self.assertEqual(self.previous_done.returncode, 0, self.previous_done.stderr)
+        self.assertGreater(len([p for p in self.previous_files if p.endswith(".tif")]), 0)
+
+    def variant(self, name):
+        """A copy of the good stack to spoil."""
+        folder = os.path.join(self.tmp, name)
+        shutil.copytree(self.good, folder)
+        return folder
+
+    def check_fails(self, args, names, keywords, label):
+        """Runs `kalends fill ARGS --out DIR` into a fresh and into a used folder."""
+        type(self).counter += 1
+        fresh = os.path.join(self.tmp, "out-fresh-%d" % self.counter)
+        used = os.path.join(self.tmp, "out-used-%d" % self.counter)
+        shutil.copytree(self.previous, used)
+        messages = []
+        for out in (fresh, used):
+            done = kt.run_kalends(["fill"] + list(args) + ["--out", out])
+            print("\n[%s] rc %d stderr: %s" % (label, done.returncode, done.stderr.rstrip("\n")))
+            self.assertEqual(done.returncode, 2, "%s: stderr %r" % (label, done.stderr))
+            lines = done.stderr.rstrip("\n").split("\n")
+            self.assertEqual(len(lines), 1, "%s: stderr is not one line: %r" % (label, done.stderr))
+            line = lines[0]
+            self.assertTrue(line.startswith("kalends: "), "%s: %r" % (label, line))
+            self.assertTrue(any(n in line for n in names),
+                            "%s: message names none of %s: %r" % (label, names, line))
+            self.assertTrue(any(k.lower() in line.lower() for k in keywords),
+                            "%s: message has none of %s: %r" % (label, keywords, line))
+            messages.append(line)
+        # Fresh folder: nothing under a final name (and no temporary left behind).
+        if os.path.isdir(fresh):
+            finals = glob.glob(os.path.join(fresh, "**", "*.tif"), recursive=True)
+            self.assertEqual(finals, [], "%s: outputs written" % label)
+            self.assertFalse(os.path.exists(os.path.join(fresh, "fill-summary.json")), label)
+            leftovers = [f for f in snapshot(fresh) if f.endswith(".partial")]
+            self.assertEqual(leftovers, [], "%s: temporaries left behind" % label)
+        # Used folder: the earlier outputs are byte-identical and nothing was added.
+        after = snapshot(used)
+        self.assertEqual(sorted(after), sorted(self.previous_files), "%s: files changed" % label)
+        for path, content in self.previous_files.items():
+            self.assertTrue(after[path] == content, "%s: %s was modified" % (label, path))
+        return messages
+
+    # -----------------------------------------------------------------------------------------
+
+    def test_grid_size_mismatch(self):
+        folder = self.variant("size")
+        write_layer(os.path.join(folder, "ndvi_2020-02-02.tif"), 7, width=WIDTH + 1)
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-02.tif"],
+                         ["grid", "size", "px"], "grid size")
+
+    def test_geotransform_mismatch(self):
+        folder = self.variant("geotransform")
+        shifted = (GEOTRANSFORM[0] + 30.0,) + GEOTRANSFORM[1:]
+        write_layer(os.path.join(folder, "ndvi_2020-02-18.tif"), 7, geotransform=shifted)
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-18.tif"],
+                         ["georeferenc", "geotransform", "origin", "pixel size"], "geotransform")
+
+    def test_crs_mismatch(self):
+        folder = self.variant("crs")
+        write_layer(os.path.join(folder, "ndvi_2020-01-17.tif"), 7, epsg=32735)  # zone 35S
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
+                         ["coordinate reference", "crs", "projection", "spatial reference"], "crs")
+
+    def test_duplicate_dates(self):
+        folder = self.variant("duplicate")
+        write_layer(os.path.join(folder, "ndvi_20200101.tif"), 7)  # also 2020-01-01
+        self.check_fails([os.path.join(folder, "*.tif")],
+                         ["ndvi_20200101.tif", "ndvi_2020-01-01.tif"], ["duplicate"],
+                         "duplicate dates")
+
+    def test_unparsable_date(self):
+        folder = self.variant("nodate")
+        write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_latest.tif"], ["date"],
+                         "no date in name")
+
+    def test_unreadable_file(self):
+        folder = self.variant("garbage")
+        with open(os.path.join(folder, "ndvi_2020-03-21.tif"), "wb") as f:
+            f.write(np.random.default_rng(1).integers(0, 256, 5000, dtype=np.uint8).tobytes())
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-03-21.tif"],
+                         ["open", "read", "recogni", "format", "corrupt"], "random bytes")
+
+    def test_truncated_geotiff_half(self):
+        # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
+        # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
+        folder = self.variant("truncated")
+        path = os.path.join(folder, "ndvi_2020-02-02.tif")
+        with open(path, "rb") as f:
+            data = f.read()
+        with open(path, "wb") as f:
+            f.write(data[:len(data) // 2])
+        gdal = kt.gdal()
+        ds = gdal.Open(path)
+        self.assertEqual((ds.RasterXSize, ds.RasterYSize), (WIDTH, HEIGHT))
+        with self.assertRaises(RuntimeError):
+            ds.GetRasterBand(1).ReadAsArray()
+        ds = None
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-02.tif"],
+                         ["read", "truncat", "corrupt"], "truncated (opens, pixels unreadable)")
+
+    def test_truncated_geotiff_header(self):
+        # Cut inside the header: the file no longer opens.
+        folder = self.variant("truncated-header")
+        path = os.path.join(folder, "ndvi_2020-01-17.tif")
+        with open(path, "rb") as f:
+            data = f.read()
+        with open(path, "wb") as f:
+            f.write(data[:60])
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
+                         ["open", "read", "truncat", "corrupt", "recogni"],
+                         "truncated (header cut)")
+
+    def test_missing_qa_partner(self):
+        qa = os.path.join(self.tmp, "qa-missing")
+        shutil.copytree(self.qa, qa)
+        os.remove(os.path.join(qa, "qa_2020-02-18.tif"))
+        self.check_fails([os.path.join(self.good, "*.tif"), "--qa", os.path.join(qa, "*.tif"),
+                          "--keep", "bits0-1 in 0,1"], ["ndvi_2020-02-18.tif", "2020-02-18"],
+                         ["qa"], "missing QA partner")
+
+    def test_bad_keep_rule(self):
+        self.check_fails([os.path.join(self.good, "*.tif"), "--qa", os.path.join(self.qa, "*.tif"),
+                          "--keep", "bits0-1 between 0,1"], ["--keep"],
+                         ["expected", "rule", "keep"], "bad keep rule")
+
+    def test_pattern_matches_nothing(self):
+        self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
+                         ["no file", "match"], "empty pattern")
+
+    def test_unknown_method(self):
+        self.check_fails([os.path.join(self.good, "*.tif"), "--method", "kriging"],
+                         ["--method", "kriging"], ["unknown", "method"], "unknown method")
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)

@@ -1,0 +1,374 @@
+"""kalends fill on a small georeferenced stack, checked with Python GDAL and numpy.
+
+The stack is invented (this file tests mechanics, not accuracy): 300 x 260 px, so that the
+256 px tiles and the blocks have ragged edges; UTM zone 36S (EPSG:32736), 250 m pixels; int16
+with scale 0.0001 and nodata -3000 (the MODIS MOD13 NDVI convention: Didan, K. (2015),
+MOD13A1 V006 user guide -- cited from memory); 30 dates 16 days apart named the MODIS way
+(`ndvi_A2020145.tif`, year and day of year), crossing a year boundary where the day of year
+restarts at 001 (so one step is 14 days).
+
+Expected values come from the input as read with GDAL and numpy, from Python's datetime for
+the dates, from osr for the CRS, and from scipy for the Whittaker curve of a few pixels
+[Eilers, P.H.C. (2003), Anal. Chem. 75:3631-3636].
+
+Run: /usr/bin/python3 -m unittest -v tests/reference/test_outputs_gdal.py
+"""
+
+import datetime
+import os
+import sys
+import unittest
+
+import numpy as np
+import scipy.sparse
+import scipy.sparse.linalg
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+WIDTH, HEIGHT = 300, 260
+EPSG = 32736
+GEOTRANSFORM = (300000.0, 250.0, 0.0, 8500000.0, 0.0, -250.0)
+SCALE, NODATA = 0.0001, -3000
+LAMBDA = 10.0
+
+
+def modis_dates():
+    """(year, day of year) of 30 MODIS 16-day composites from 2020-145 to 2021-241."""
+    dates = [(2020, doy) for doy in range(145, 366, 16)]  # 145 .. 353
+    dates += [(2021, doy) for doy in range(1, 366, 16)]
+    return dates[:30]
+
+
+def to_date(year, doy):
+    return datetime.date(year, 1, 1) + datetime.timedelta(days=doy - 1)
+
+
+def make_stack(folder, width=WIDTH, height=HEIGHT, seed=1):
+    """Writes the stack; returns (raw int16 array [date, row, col], list of dates)."""
+    rng = np.random.default_rng(seed)
+    dates = [to_date(y, d) for y, d in modis_dates()]
+    days = np.array([(d - dates[0]).days for d in dates], dtype=float)
+    rows, cols = np.mgrid[0:height, 0:width]
+    peak = 60.0 + 0.3 * cols + 0.2 * rows  # spatially varying timing of the green-up peak
+    amplitude = 0.3 + 0.3 * rows / height
+    raw = np.empty((len(dates), height, width), dtype=np.int16)
+    for i, t in enumerate(days):
+        season = np.exp(-(((t % 365.0) - peak) / 50.0) ** 2)
+        ndvi = 0.15 + amplitude * season + 0.02 * rng.standard_normal((height, width))
+        raw[i] = np.round(ndvi / SCALE).astype(np.int16)
+    missing = rng.random(raw.shape) < 0.25          # scattered cloud
+    missing[:, 100:110, 50:60] = True                # never observed
+    missing[:5, 200:210, 280:290] = True             # first observation on the 6th date
+    missing[5, 200:210, 280:290] = False
+    missing[10:20, 30:40, 150:170] = True            # a long gap of 10 dates
+    raw[missing] = NODATA
+    for i, (year, doy) in enumerate(modis_dates()):
+        kt.write_raster(os.path.join(folder, "ndvi_A%04d%03d.tif" % (year, doy)), raw[i],
+                        geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
+    return raw, dates
+
+
+def whittaker_reference(y, lam, order=2):
+    """scipy solve of (W + lambda D'D) z = W y on the regular slot grid; y NaN = missing."""
+    n = len(y)
+    w = np.isfinite(y).astype(float)
+    d = scipy.sparse.csc_matrix(np.diff(np.eye(n), n=order, axis=0))
+    a = (scipy.sparse.diags(w) + lam * (d.T @ d)).tocsc()
+    return scipy.sparse.linalg.spsolve(a, w * np.where(np.isfinite(y), y, 0.0))
+
+
+def read_all(out_dir, dates, name="ndvi"):
+    outs = [kt.read_output(os.path.join(out_dir, "%s_%s.tif" % (name, d.isoformat())))
+            for d in dates]
+    return {key: np.stack([o[key] for o in outs]) for key in ("value", "sd", "flag")}, outs
+
+
+class OutputsAgainstGdal(kt.TempDirTestCase):
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        cls.stack_dir = os.path.join(cls.tmp, "stack")
+        os.makedirs(cls.stack_dir)
+        cls.raw, cls.dates = make_stack(cls.stack_dir)
+        cls.pattern = os.path.join(cls.stack_dir, "ndvi_A*.tif")
+        cls.valid = cls.raw != NODATA
+        # Reference physical values: raw * scale in double, then rounded once to float32.
+        cls.physical = (cls.raw.astype(np.float64) * SCALE).astype(np.float32)
+
+        # One default run (fixed lambda, 1 GiB, 2 threads, with a monthly calendar) ...
+        cls.out_a = os.path.join(cls.tmp, "a")
+        cls.done_a = kt.run_kalends(["-q", "fill", cls.pattern, "--out", cls.out_a, "--lambda",
+                                     str(LAMBDA), "--memory", "1G", "--threads", "2",
+                                     "--every", "1M"])
+        cls.a = read_all(cls.out_a, cls.dates) if cls.done_a.returncode == 0 else None
+
+    def setUp(self):
+        self.assertEqual(self.done_a.returncode, 0, self.done_a.stderr)
+
+    def test_every_date_has_an_output(self):
+        expected = sorted("ndvi_%s.tif" % d.isoformat() for d in self.dates)
+        self.assertEqual(kt.final_outputs(self.out_a), expected)
+        self.assertEqual(len(expected), 30)
+        # The year boundary: 2020 day 353 is 18 December, 2021 day 001 is 1 January.
+        self.assertIn("ndvi_2020-12-18.tif", expected)
+        self.assertIn("ndvi_2021-01-01.tif", expected)
+        # No temporary left behind.
+        self.assertEqual([f for f in os.listdir(self.out_a) if f.endswith(".partial")], [])
+
+    def test_grid_crs_bands_and_layout(self):
+        from osgeo import osr
+        expected_srs = osr.SpatialReference()
+        expected_srs.ImportFromEPSG(EPSG)
+        gdal = kt.gdal()
+        for out in self.a[1]:
+            self.assertEqual(out["size"], (WIDTH, HEIGHT, 3))
+            for got, want in zip(out["geotransform"], GEOTRANSFORM):
+                self.assertAlmostEqual(got, want, delta=1e-9 * max(1.0, abs(want)))
+            srs = osr.SpatialReference()
+            srs.ImportFromWkt(out["wkt"])
+            self.assertTrue(srs.IsSame(expected_srs), out["wkt"][:200])
+            self.assertEqual(out["descriptions"], ["value", "sd", "flag"])
+            self.assertEqual(out["types"], [gdal.GDT_Float32] * 3)
+            self.assertTrue(np.isnan(out["nodata"][0]) and np.isnan(out["nodata"][1]))
+            self.assertEqual(out["block"], [256, 256])
+            self.assertEqual(out["compression"], "DEFLATE")
+
+    def test_metadata_items(self):
+        for date, out in zip(self.dates, self.a[1]):
+            md = out["metadata"]
+            self.assertEqual(md.get("KALENDS_METHOD"), "whittaker")
+            self.assertIn("lambda=10", md.get("KALENDS_PARAMETERS", ""))
+            self.assertTrue(md.get("KALENDS_DATE", "").startswith(date.isoformat()))
+            doy = date.timetuple().tm_yday
+            self.assertIn("ndvi_A%04d%03d.tif" % (date.year, doy), md.get("KALENDS_SOURCE", ""))
+            self.assertTrue(md.get("KALENDS_VERSION"))
+
+    def test_observed_values_equal_physical_input(self):
+        arrays = self.a[0]
+        flag0 = arrays["flag"] == 0
+        # Flag 0 exactly where the input has a value (no outlier rejection in this run).
+        np.testing.assert_array_equal(flag0, self.valid)
+        got = arrays["value"][flag0]
+        want = self.physical[flag0]
+        differ = int(np.sum(got != want))
+        self.assertEqual(differ, 0,
+                         "%d of %d observed values differ from float32(raw * %g); largest "
+                         "difference %.3g" % (differ, got.size, SCALE,
+                                              float(np.max(np.abs(got.astype(float) - want)))))
+
+    def test_flags_and_nan(self):
+        arrays = self.a[0]
+        flag, value, sd = arrays["flag"], arrays["value"], arrays["sd"]
+        self.assertTrue(set(np.unique(flag)).issubset({0.0, 2.0, 3.0}), np.unique(flag))
+        # NaN only with flag 3, and flag 3 always NaN.
+        np.testing.assert_array_equal(np.isnan(value), flag == 3)
+        np.testing.assert_array_equal(np.isnan(sd), flag == 3)
+        # Missing input -> filled (2) or unfillable (3); the never-observed block is all 3.
+        self.assertTrue(np.all(np.isin(flag[~self.valid], (2.0, 3.0))))
+        self.assertTrue(np.all(flag[:, 100:110, 50:60] == 3))
+        # Default --max-extrapolation 32 days: first observation on the 6th date (day 80), so
+        # dates 0..2 (80, 64, 48 days before) stay unfilled, dates 3 and 4 (32, 16) are filled.
+        block = flag[:, 200:210, 280:290]
+        self.assertTrue(np.all(block[:3] == 3))
+        self.assertTrue(np.all(block[3:5] == 2))
+        # The 10-date gap is filled (no --max-gap by default).
+        self.assertTrue(np.all(flag[10:20, 30:40, 150:170] == 2))
+
+    def test_summary_counts(self):
+        s = kt.read_summary(self.out_a)
+        flag = self.a[0]["flag"]
+        self.assertEqual((s["dates"], s["width"], s["height"]), (30, WIDTH, HEIGHT))
+        self.assertEqual(s["pixel_dates"], self.raw.size)
+        self.assertEqual(s["observed"], int(self.valid.sum()))
+        self.assertEqual(s["missing"], int((~self.valid).sum()))
+        self.assertEqual(s["filled"], int((flag == 2).sum()))
+        self.assertEqual(s["unfilled"], int((flag == 3).sum()))
+        self.assertEqual(s["rejected"], 0)
+        self.assertEqual(s["masked_by_qa"], 0)
+        self.assertEqual(s["pixels_never_observed"], int((~self.valid.any(axis=0)).sum()))
+
+    def test_filled_values_follow_the_whittaker_solution(self):
+        # A few pixels, including ones at tile/block edges: the filled values equal the scipy
+        # solve on the regular 16-day slot grid (the 14-day step at the new year falls on the
+        # next slot).
+        arrays = self.a[0]
+        for row, col in ((0, 0), (255, 255), (256, 256), (259, 299), (35, 160), (130, 17)):
+            y = np.where(self.valid[:, row, col], self.physical[:, row, col].astype(float), np.nan)
+            z = whittaker_reference(y, LAMBDA)
+            flag = arrays["flag"][:, row, col]
+            filled = flag == 2
+            self.assertTrue(filled.any())
+            got = arrays["value"][filled, row, col]
+            self.assertLess(kt.rel_diff(got, z[filled]), 1e-5, "pixel %d,%d" % (row, col))
+
+    def test_monthly_calendar(self):
+        cal = os.path.join(self.out_a, "calendar-1M")
+        first, last = self.dates[0], self.dates[-1]
+        months = []
+        y, m = first.year, first.month
+        while (y, m) <= (last.year, last.month):
+            months.append("ndvi_%04d-%02d-01.tif" % (y, m))
+            y, m = (y + 1, 1) if m == 12 else (y, m + 1)
+        self.assertEqual(len(months), 16)  # May 2020 .. August 2021
+        self.assertEqual(kt.final_outputs(cal), months)
+        out = kt.read_output(os.path.join(cal, months[3]))
+        self.assertEqual(out["size"], (WIDTH, HEIGHT, 3))
+        np.testing.assert_array_equal(np.isnan(out["value"]), out["flag"] == 3)
+        self.assertEqual(kt.read_summary(self.out_a)["calendar_outputs"], 16)
+
+    def test_block_size_and_threads_do_not_change_results(self):
+        # The same fill in small blocks on one thread. kalends refuses a budget below its fixed
+        # overheads or below one 256 x 256 block, and this raster is barely larger than one
+        # block, so the smallest budget that runs is searched for (8 MiB steps, then 1 MiB;
+        # refusals are quick): it gives the plan with the most blocks (asserted below).
+        out_b = os.path.join(self.tmp, "b")
+        refusals = {}
+
+        def runs(mib):
+            done = kt.run_kalends(["-q", "fill", self.pattern, "--out", out_b, "--lambda",
+                                   str(LAMBDA), "--memory", "%dM" % mib, "--threads", "1",
+                                   "--every", "1M"])
+            if done.returncode != 0:
+                self.assertEqual(done.returncode, 2, done.stderr)
+                self.assertEqual(kt.final_outputs(out_b) if os.path.isdir(out_b) else [], [])
+                refusals.setdefault("".join(c for c in done.stderr if not c.isdigit()).strip(),
+                                    mib)
+            return done.returncode == 0
+
+        coarse = next((mib for mib in range(64, 1025, 8) if runs(mib)), None)
+        self.assertIsNotNone(coarse, "no budget up to 1 GiB ran on one thread: %s" % refusals)
+        mib = next((m for m in range(max(64, coarse - 7), coarse) if runs(m)), coarse)
+        if mib == coarse:
+            self.assertTrue(runs(coarse))  # the outputs of the chosen budget
+        print("\nsmallest budget that runs: %d MiB; refusals (first budget each): %s" % (
+            mib, sorted(refusals.items(), key=lambda kv: kv[1])))
+        sa, sb = kt.read_summary(self.out_a), kt.read_summary(out_b)
+        print("blocks: %s of %s (1G, 2 threads) vs %s of %s (%d MiB, 1 thread)" % (
+            sa["blocks"], sa["block_size"], sb["blocks"], sb["block_size"], mib))
+        self.assertGreater(sb["blocks"], sa["blocks"], "the small budget did not split the work")
+        gdal = kt.gdal()
+        names = kt.final_outputs(self.out_a)
+        self.assertEqual(kt.final_outputs(out_b), names)
+        cal = "calendar-1M"
+        self.assertEqual(kt.final_outputs(os.path.join(out_b, cal)),
+                         kt.final_outputs(os.path.join(self.out_a, cal)))
+        pairs = [(os.path.join(self.out_a, n), os.path.join(out_b, n)) for n in names]
+        pairs += [(os.path.join(self.out_a, cal, n), os.path.join(out_b, cal, n))
+                  for n in kt.final_outputs(os.path.join(self.out_a, cal))]
+        for path_a, path_b in pairs:
+            da, db = gdal.Open(path_a), gdal.Open(path_b)
+            for b in (1, 2, 3):
+                # Raw bytes of the decoded pixels: identical including NaN payloads.
+                ba = da.GetRasterBand(b).ReadRaster()
+                bb = db.GetRasterBand(b).ReadRaster()
+                self.assertTrue(ba == bb, "%s band %d differs" % (os.path.basename(path_a), b))
+            da = db = None
+
+    def test_smooth_changes_only_values(self):
+        out_s = os.path.join(self.tmp, "smooth")
+        kt.run_fill_ok(self, [self.pattern, "--out", out_s, "--lambda", str(LAMBDA),
+                              "--threads", "2", "--smooth"])
+        smooth, _ = read_all(out_s, self.dates)
+        plain = self.a[0]
+        np.testing.assert_array_equal(smooth["flag"], plain["flag"])
+        np.testing.assert_array_equal(smooth["sd"], plain["sd"])
+        not_observed = plain["flag"] != 0
+        np.testing.assert_array_equal(smooth["value"][not_observed], plain["value"][not_observed])
+        observed = ~not_observed
+        changed = smooth["value"][observed] != plain["value"][observed]
+        self.assertGreater(changed.mean(), 0.9, "--smooth left observed values unchanged")
+        # The smooth value at an observed cell is the curve: for a few pixels, the scipy solve.
+        for row, col in ((0, 0), (259, 299), (128, 140)):
+            y = np.where(self.valid[:, row, col], self.physical[:, row, col].astype(float), np.nan)
+            z = whittaker_reference(y, LAMBDA)
+            finite = smooth["flag"][:, row, col] != 3
+            self.assertLess(kt.rel_diff(smooth["value"][finite, row, col], z[finite]), 1e-5)
+
+
+class QaMask(kt.TempDirTestCase):
+    """A QA stack with bit fields; --keep 'bits0-1 in 0,1' removes QA 2 and 3."""
+
+    def test_qa_bits(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        width, height = 70, 40
+        data_dir = os.path.join(self.tmp, "data")
+        qa_dir = os.path.join(self.tmp, "qa")
+        os.makedirs(data_dir)
+        os.makedirs(qa_dir)
+        raw, dates = make_stack(data_dir, width, height, seed=9)
+        rng = np.random.default_rng(10)
+        # Bits 0-1: 0 good, 1 marginal, 2 snow, 3 cloud (the MOD13 "pixel reliability" codes,
+        # cited from memory); higher bits carry other flags that the rule must ignore.
+        low = rng.choice(4, size=raw.shape, p=[0.55, 0.2, 0.1, 0.15]).astype(np.uint16)
+        high = rng.integers(0, 64, size=raw.shape).astype(np.uint16) << 2
+        qa = (low | high).astype(np.uint16)
+        for i, (year, doy) in enumerate(modis_dates()):
+            kt.write_raster(os.path.join(qa_dir, "qa_A%04d%03d.tif" % (year, doy)), qa[i],
+                            geotransform=GEOTRANSFORM, epsg=EPSG)
+        out = os.path.join(self.tmp, "out")
+        kt.run_fill_ok(self, [os.path.join(data_dir, "*.tif"), "--out", out, "--lambda", "10",
+                              "--qa", os.path.join(qa_dir, "*.tif"), "--keep", "bits0-1 in 0,1",
+                              "--threads", "2"])
+        arrays, _ = read_all(out, dates)
+        flag = arrays["flag"]
+        bad_qa = (qa & 3) >= 2
+        valid = raw != NODATA
+        self.assertTrue(bad_qa.any() and (valid & bad_qa).any())
+        # Cells whose QA bits 0-1 are 2 or 3 are never kept as observed.
+        self.assertTrue(np.all(flag[bad_qa] >= 2), "a cell with QA 2/3 kept as observed")
+        # Cells with a value and QA 0/1 are observed (flag 0; no outlier rejection here).
+        self.assertTrue(np.all(flag[valid & ~bad_qa] == 0))
+        s = kt.read_summary(out)
+        self.assertEqual(s["masked_by_qa"], int((valid & bad_qa).sum()))
+        self.assertEqual(s["observed"], int((valid & ~bad_qa).sum()))
+
+
+class RejectedNearTheEnd(kt.TempDirTestCase):
+    """A low outlier after the last kept observation, beyond --max-extrapolation (32 days).
+
+    Mechanics with invented data: 25 clean dates, two missing, one value far below the curve
+    (rejected as an outlier: flag 1), two missing. The rejected value lies 48 days after the
+    last kept one: beyond the reach of the fit, so it cannot be replaced and is flag 3
+    (docs/outputs.md). The invariant holds: a value is NaN only with flag 3.
+    """
+
+    def test_flag_1_never_nan(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        width, height = 8, 8
+        folder = os.path.join(self.tmp, "stack")
+        os.makedirs(folder)
+        rng = np.random.default_rng(12)
+        dates = [to_date(y, d) for y, d in modis_dates()]
+        days = np.array([(d - dates[0]).days for d in dates], dtype=float)
+        ndvi = 0.45 + 0.25 * np.cos(2 * np.pi * (days - 60.0) / 365.25)
+        raw = np.empty((30, height, width), dtype=np.int16)
+        for i in range(30):
+            raw[i] = np.round((ndvi[i] + 0.005 * rng.standard_normal((height, width))) / SCALE)
+        raw[27] = np.round((ndvi[27] - 0.5) / SCALE)  # cloud: far below the curve
+        raw[[25, 26, 28, 29]] = NODATA
+        for i, (year, doy) in enumerate(modis_dates()):
+            kt.write_raster(os.path.join(folder, "ndvi_A%04d%03d.tif" % (year, doy)), raw[i],
+                            geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
+        for label, args in (("harmonic", ["--method", "harmonic", "--harmonics", "2"]),
+                            ("whittaker envelope", ["--lambda", "10", "--envelope", "upper"])):
+            with self.subTest(label):
+                out = os.path.join(self.tmp, label.replace(" ", "-"))
+                kt.run_fill_ok(self, [os.path.join(folder, "*.tif"), "--out", out] + args)
+                arrays, _ = read_all(out, dates)
+                flag, value = arrays["flag"], arrays["value"]
+                # The low value is rejected, and with nothing in reach to replace it: flag 3.
+                self.assertTrue(np.all(flag[27] == 3), "%s: flags at the low value %s" %
+                                (label, np.unique(flag[27])))
+                self.assertTrue(np.all(np.isin(flag[:25][raw[:25] != NODATA], (0.0, 1.0))), label)
+                wrong = np.isnan(value) != (flag == 3)
+                self.assertEqual(int(wrong.sum()), 0,
+                                 "%s: NaN value with flags %s (dates %s)" % (
+                                     label, np.unique(flag[wrong]),
+                                     sorted(set(int(t) for t in np.argwhere(wrong)[:, 0]))))
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
