@@ -155,7 +155,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         layer.path + (layer.band != 1 || stack.layers().size() > 1 && stack.layers()[0].path == stack.layers()[1].path
                           ? " band " + std::to_string(layer.band)
                           : "");
-    spec.unit = unit;
+    spec.bands = detail::fill_bands(unit);
     specs.push_back(std::move(spec));
   }
   for (const detail::PeriodMean& period : periods) {
@@ -166,7 +166,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     spec.metadata["KALENDS_PERIOD"] = request.every->label();
     spec.metadata["KALENDS_PERIOD_DAYS_COVERED"] = std::to_string(period.days);
     spec.metadata["KALENDS_VALUES"] = "period mean of the fitted curve";
-    spec.unit = unit;
+    spec.bands = detail::fill_bands(unit);
     specs.push_back(std::move(spec));
   }
 

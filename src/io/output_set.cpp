@@ -7,6 +7,8 @@
 #include <cstdio>
 #include <filesystem>
 #include <fstream>
+#include <set>
+#include <stdexcept>
 
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
@@ -48,6 +50,14 @@ const char* compression_name(Compression c) {
 
 }  // namespace
 
+std::vector<BandSpec> fill_bands(const std::string& unit) {
+  return {{"value", unit, {}},
+          {"sd", unit, {}},
+          {"flag", "",
+           {{"FLAG_MEANINGS", "0=observed and kept, 1=observed but rejected as an outlier, "
+                              "2=filled, 3=could not be filled"}}}};
+}
+
 void write_text_atomically(const std::string& path, const std::string& text) {
   const std::string temporary = temporary_name(path);
   {
@@ -83,8 +93,8 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
     auto file = std::make_unique<File>();
     file->temporary = temporary_name(spec.path);
     CPLErrorReset();
-    file->dataset.reset(driver->Create(file->temporary.c_str(), grid.width, grid.height, 3,
-                                       GDT_Float32, options.List()));
+    file->dataset.reset(driver->Create(file->temporary.c_str(), grid.width, grid.height,
+                                       int(spec.bands.size()), GDT_Float32, options.List()));
     if (!file->dataset)
       throw OutputError(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
     GDALDataset& ds = *file->dataset;
@@ -94,17 +104,15 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
     }
     if (has_crs) ds.SetSpatialRef(&srs);
     for (const auto& [key, value] : spec.metadata) ds.SetMetadataItem(key.c_str(), value.c_str());
-    static constexpr const char* names[] = {"value", "sd", "flag"};
-    for (int b = 1; b <= 3; ++b) {
-      GDALRasterBand* band = ds.GetRasterBand(b);
-      band->SetDescription(names[b - 1]);
-      if (b < 3) {
-        band->SetNoDataValue(std::nan(""));
-        if (!spec.unit.empty()) band->SetUnitType(spec.unit.c_str());
-      }
+    for (std::size_t b = 0; b < spec.bands.size(); ++b) {
+      const BandSpec& band_spec = spec.bands[b];
+      GDALRasterBand* band = ds.GetRasterBand(int(b) + 1);
+      band->SetDescription(band_spec.description.c_str());
+      band->SetNoDataValue(std::nan(""));
+      if (!band_spec.unit.empty()) band->SetUnitType(band_spec.unit.c_str());
+      for (const auto& [key, value] : band_spec.metadata)
+        band->SetMetadataItem(key.c_str(), value.c_str());
     }
-    ds.GetRasterBand(3)->SetMetadataItem(
-        "FLAG_MEANINGS", "0=observed and kept, 1=observed but rejected as an outlier, 2=filled, 3=could not be filled");
     file->spec = std::move(spec);
     files_.push_back(std::move(file));
   }
@@ -119,26 +127,27 @@ OutputSet::~OutputSet() {
   }
 }
 
-void OutputSet::write(std::size_t index, const Window& core, const float* value, const float* sd,
-                      const float* flag, std::vector<float>& scratch) {
+void OutputSet::write(std::size_t index, const Window& core, std::span<const float* const> planes,
+                      std::vector<float>& scratch) {
   File& file = *files_.at(index);
+  if (planes.size() != file.spec.bands.size())
+    throw std::logic_error("output " + file.spec.path + ": wrong number of bands");
   const std::size_t tile_pixels = std::size_t(tile_) * tile_;
   scratch.resize(tile_pixels);
-  const float* planes[3] = {value, sd, flag};
   std::lock_guard lock(file.mutex);
   for (int ty = core.y; ty < core.y + core.height; ty += tile_)
     for (int tx = core.x; tx < core.x + core.width; tx += tile_) {
       const int w = std::min(tile_, core.x + core.width - tx);
       const int h = std::min(tile_, core.y + core.height - ty);
-      for (int b = 0; b < 3; ++b) {
+      for (std::size_t b = 0; b < planes.size(); ++b) {
         // Padding past the raster's edge is never read back; NaN keeps it honest.
-        if (w < tile_ || h < tile_) std::fill(scratch.begin(), scratch.end(), b < 2 ? NAN : 3.0f);
+        if (w < tile_ || h < tile_) std::fill(scratch.begin(), scratch.end(), NAN);
         for (int row = 0; row < h; ++row) {
           const float* src = planes[b] + std::size_t(ty - core.y + row) * core.width + (tx - core.x);
           std::copy(src, src + w, scratch.data() + std::size_t(row) * tile_);
         }
         CPLErrorReset();
-        if (file.dataset->GetRasterBand(b + 1)->WriteBlock(tx / tile_, ty / tile_, scratch.data()) !=
+        if (file.dataset->GetRasterBand(int(b) + 1)->WriteBlock(tx / tile_, ty / tile_, scratch.data()) !=
             CE_None)
           throw OutputError(file.spec.path, "write failed (" + gdal_message("disk full?") + ")");
       }
@@ -152,8 +161,12 @@ void OutputSet::commit() {
     if (CPLGetLastErrorType() == CE_Failure)
       throw OutputError(file->spec.path, "closing failed (" + gdal_message("disk full?") + ")");
   }
-  for (auto& file : files_) publish(file->temporary, file->spec.path);
-  if (!files_.empty()) sync_path(fs::path(files_.front()->spec.path).parent_path().string(), true);
+  std::set<std::string> folders;
+  for (auto& file : files_) {
+    publish(file->temporary, file->spec.path);
+    folders.insert(fs::path(file->spec.path).parent_path().string());
+  }
+  for (const std::string& folder : folders) sync_path(folder, true);
   committed_ = true;
 }
 

@@ -7,6 +7,7 @@
 #include <map>
 #include <memory>
 #include <mutex>
+#include <span>
 #include <string>
 #include <vector>
 
@@ -15,15 +16,24 @@
 
 namespace kalends::detail {
 
+struct BandSpec {
+  std::string description;
+  std::string unit;
+  std::map<std::string, std::string> metadata;
+};
+
+/// The bands `kalends fill` writes: value, sd, flag.
+std::vector<BandSpec> fill_bands(const std::string& unit);
+
 struct OutputSpec {
   std::string path;  // final name
   std::map<std::string, std::string> metadata;
-  std::string unit;
+  std::vector<BandSpec> bands;  // float32, nodata NaN
 };
 
 class OutputSet {
  public:
-  /// Creates every file (under its temporary name) with three float32 bands value, sd, flag:
+  /// Creates every file (under its temporary name) with its float32 bands (nodata NaN):
   /// tiled `tile` x `tile`, band-interleaved, compressed, georeferenced as `grid`.
   OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression, int tile);
   ~OutputSet();  // removes the temporaries unless commit() succeeded
@@ -35,8 +45,13 @@ class OutputSet {
   /// Writes the three bands of `core` (tile-aligned) of output `index`. Thread-safe; tiles are
   /// written whole, past GDAL's block cache, so no dirty block is ever shared between threads.
   /// `scratch` is the caller's tile buffer.
+  void write(std::size_t index, const Window& core, std::span<const float* const> planes,
+             std::vector<float>& scratch);
   void write(std::size_t index, const Window& core, const float* value, const float* sd,
-             const float* flag, std::vector<float>& scratch);
+             const float* flag, std::vector<float>& scratch) {
+    const float* planes[3] = {value, sd, flag};
+    write(index, core, planes, scratch);
+  }
 
   /// Closes, syncs and renames every file to its final name.
   void commit();
