@@ -14,11 +14,11 @@ tools/build.sh
 [ -x build/kalends ] || { echo "demo: build/kalends was not built" >&2; exit 1; }
 
 # synth.json is written last, so its presence means a complete stack from an earlier run.
-if [ ! -f "$out/input/ndvi/synth.json" ]; then
+if ! grep -q '"drought_year": 2022' "$out/input/ndvi/synth.json" 2>/dev/null; then
   rm -rf "$out/input"
   echo "demo: generating the synthetic stack in $out/input" >&2
   "$py" tools/synth_stack.py --scenario demo --out "$out/input/ndvi" --qa --qa-out "$out/input/qa" \
-    --truth "$out/input/truth"
+    --truth "$out/input/truth" --drought-year 2022
 fi
 
 rm -rf "$out/filled"
@@ -27,3 +27,11 @@ build/kalends fill "$out/input/ndvi/ndvi_*.tif" --qa "$out/input/qa/qa_*.tif" --
 
 echo
 "$py" demo/summarise.py --filled "$out/filled" --input "$out/input/ndvi" --truth "$out/input/truth"
+
+echo
+rm -rf "$out/seasons" "$out/compare"
+build/kalends seasons "$out/filled" --out "$out/seasons"
+build/kalends compare "$out/seasons" --out "$out/compare"
+echo
+"$py" demo/summarise_seasons.py --seasons "$out/seasons" --compare "$out/compare" \
+  --manifest "$out/input/ndvi/synth.json"

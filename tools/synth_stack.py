@@ -161,7 +161,8 @@ def _rain_bi(tau):
 class Scene:
     """Static per-pixel fields, deterministic in (seed, size, scenario)."""
 
-    def __init__(self, width, height, seed=1, scenario="demo", start_year=2021, years=3):
+    def __init__(self, width, height, seed=1, scenario="demo", start_year=2021, years=3,
+                 drought_year=None):
         self.width, self.height = width, height
         self.seed, self.scenario = seed, scenario
         self.start_year, self.years = start_year, years
@@ -212,6 +213,13 @@ class Scene:
         self._year_nodes = np.arange(-1, years + 2, dtype=np.float64) + 0.5
         self._f_uni = 1.0 + 0.10 * yrng.standard_normal(self._year_nodes.size)
         self._f_bi = 1.0 + 0.10 * yrng.standard_normal(self._year_nodes.size)
+        # An invented drought: both rainy seasons of the south fail in that year, so its
+        # vegetation reaches a third of the usual seasonal amplitude.
+        self.drought_year = drought_year
+        if drought_year is not None:
+            k = drought_year - start_year + 1      # node at mid-year of drought_year
+            if 0 <= k < self._f_bi.size:
+                self._f_bi[k] = 0.35
 
     def tau(self, day):
         """Time in years since 1 January of start_year (continuous)."""
@@ -314,7 +322,8 @@ def _write(path, array, dtype, predictor, day, nodata=None, scale=None, desc="ND
 
 
 def make_stack(out_dir, width=512, height=512, years=3, start_year=2021, step=16, seed=1,
-               scenario="demo", qa_dir=None, truth_dir=None, dates=None, verbose=False):
+               scenario="demo", qa_dir=None, truth_dir=None, dates=None, verbose=False,
+               drought_year=None):
     """Write a synthetic stack; returns a dict of counts and the file list.
     `dates` (an int) overrides `years`: that many composites from start_year."""
     if scenario not in ("demo", "bench"):
@@ -328,7 +337,7 @@ def make_stack(out_dir, width=512, height=512, years=3, start_year=2021, step=16
     if os.path.exists(manifest):
         os.remove(manifest)          # rewritten last: its presence means complete
 
-    scene = Scene(width, height, seed, scenario, start_year, n_years)
+    scene = Scene(width, height, seed, scenario, start_year, n_years, drought_year)
     counts = dict(pixel_dates=0, masked=0, contaminated=0, dropout=0)
     files = []
     t0 = time.time()
@@ -358,7 +367,7 @@ def make_stack(out_dir, width=512, height=512, years=3, start_year=2021, step=16
     info = dict(generator="kalends tools/synth_stack.py", synthetic=True,
                 district="Lower Tamsin district (fictional)" if scenario == "demo" else None,
                 width=width, height=height, start_year=start_year, years=n_years, step=step,
-                seed=seed, scenario=scenario, dates=[d.isoformat() for d in days],
+                seed=seed, scenario=scenario, drought_year=drought_year, dates=[d.isoformat() for d in days],
                 scale=SCALE, nodata=NODATA, epsg=EPSG, pixel_m=PIXEL,
                 qa=bool(qa_dir), counts=counts, seconds=round(time.time() - t0, 2))
     with open(manifest, "w") as f:
@@ -372,7 +381,8 @@ def truth_at(manifest_path, days):
     (for outputs on dates other than the composite dates). Yields float32 arrays."""
     with open(manifest_path) as f:
         m = json.load(f)
-    scene = Scene(m["width"], m["height"], m["seed"], m["scenario"], m["start_year"], m["years"])
+    scene = Scene(m["width"], m["height"], m["seed"], m["scenario"], m["start_year"], m["years"],
+                  m.get("drought_year"))
     for day in days:
         yield scene.truth(day)
 
@@ -391,11 +401,13 @@ def main(argv=None):
     ap.add_argument("--qa", action="store_true", help="also write a QA stack; clouds stay as values")
     ap.add_argument("--qa-out", default=None, help="QA folder (default OUT/../qa)")
     ap.add_argument("--truth", default=None, help="folder for the float32 cloud-free truth")
+    ap.add_argument("--drought-year", type=int, default=None,
+                    help="an invented drought year: the south's rainy seasons fail")
     ap.add_argument("--quiet", action="store_true")
     a = ap.parse_args(argv)
     qa_dir = (a.qa_out or os.path.join(os.path.dirname(os.path.abspath(a.out)), "qa")) if a.qa else None
     info = make_stack(a.out, a.width, a.height, a.years, a.start_year, a.step, a.seed, a.scenario,
-                      qa_dir, a.truth, a.dates, verbose=not a.quiet)
+                      qa_dir, a.truth, a.dates, verbose=not a.quiet, drought_year=a.drought_year)
     c = info["counts"]
     n = c["pixel_dates"]
     if not a.quiet:

@@ -18,6 +18,8 @@ struct ValueRules {
   std::optional<double> scale, offset, nodata;
   std::optional<double> valid_min, valid_max;  // in physical units; outside -> missing
   int band = 1;                                // for stacks of single-date files
+  bool one_date_per_file = false;  // a single multi-band file is one date, not a time series
+  std::optional<TimePoint> date;   // the date of files whose names carry none
 };
 
 struct Grid {

@@ -36,11 +36,10 @@ int main(int argc, char** argv) {
   app.add_flag("-q,--quiet", global.quiet, "Print only errors");
   app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
   std::map<CLI::App*, cli::Action> actions;
-  CLI::App* fill = nullptr;
-  {
-    cli::Action action = cli::add_fill_command(app, global);
-    fill = app.get_subcommands({}).back();
-    actions[fill] = std::move(action);
+  for (auto add : {&cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
+                   &cli::add_compare_command}) {
+    cli::Action action = add(app, global);
+    actions[app.get_subcommands({}).back()] = std::move(action);
   }
   try {
     app.parse(argc, argv);

@@ -167,7 +167,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   if (pattern) {
     bool first = true;
     for (const std::string& path : expand_glob(input)) {
-      const auto time = date_from_name(path);
+      auto time = date_from_name(path);
+      if (!time) time = rules.date;
       if (!time)
         throw InputError(path, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
       GDALDatasetUniquePtr dataset = detail::open_raster(path);
@@ -210,14 +211,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     }
     stack.grid_ = grid_of(*dataset);
     const int bands = dataset->GetRasterCount();
-    if (bands == 1) {
-      const auto time = date_from_name(input);
-      TimePoint t;
-      if (time)
-        t = *time;
-      else
-        t = band_time(*dataset, input, 1);
-      stack.layers_.push_back(layer_of(*dataset, input, 1, t, rules));
+    if (bands == 1 || rules.one_date_per_file) {
+      if (rules.band > bands) throw InputError(input, "has no band " + std::to_string(rules.band));
+      auto time = date_from_name(input);
+      if (!time) time = rules.date;
+      const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
+      stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {
       for (int b = 1; b <= bands; ++b)
         stack.layers_.push_back(layer_of(*dataset, input, b, band_time(*dataset, input, b), rules));

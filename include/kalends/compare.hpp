@@ -1,0 +1,24 @@
+// Where synoptic layers mislead: summaries of `kalends seasons` outputs.
+#pragma once
+
+#include <string>
+
+namespace kalends {
+
+struct CompareRequest {
+  std::string seasons_dir;
+  std::string out_dir;
+  std::string name;   // empty = the one name found in seasons_dir
+  std::string zones;  // optional integer raster on the same grid
+  int top = 10;       // largest anomalies listed
+};
+
+struct CompareSummary {
+  std::string json_path, markdown_path, class_path;
+  double median_rmse = 0, median_explained = 0;
+  std::string year_most_below, year_most_above;  // most pixel-periods beyond -1 / +1 sd
+};
+
+CompareSummary run_compare(const CompareRequest& request);
+
+}  // namespace kalends

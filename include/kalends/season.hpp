@@ -1,0 +1,95 @@
+// Seasonal descriptors of one pixel's regular series: period means, harmonics, growing
+// seasons. The kernels know nothing of files; run_seasons (seasons.hpp) applies them to stacks.
+#pragma once
+
+#include <array>
+#include <complex>
+#include <memory>
+#include <span>
+#include <vector>
+
+#include "kalends/fill.hpp"
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+/// Which part of a composite's interval its date marks: MODIS dates mark the first day, many
+/// monthly NetCDF files the middle or the last day.
+enum class DateMarks { start, middle, end };
+
+/// The periods of one year on a calendar: their first day (days since 1970) and length.
+struct Period {
+  std::int64_t first_day = 0;
+  int days = 0;
+};
+std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar);
+
+/// For each period of `periods`, the composites that overlap it and by how many days. Each
+/// composite covers `step_days` from where its date marks (a shorter span when the next
+/// composite starts sooner). Value of a period = overlap-weighted mean of its composites.
+struct PeriodSources {
+  std::vector<int> composite;
+  std::vector<double> days;
+};
+std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
+                                          const std::vector<Period>& periods, DateMarks marks);
+
+/// A local maximum with its prominence, as scipy.signal.find_peaks / peak_prominences define
+/// them (flat tops: the middle sample, rounded down; no window length).
+struct Peak {
+  int index = 0;
+  double prominence = 0;
+  int left_base = 0, right_base = 0;
+};
+std::vector<Peak> find_peaks(std::span<const double> x, double min_prominence);
+
+/// Amplitude and the day of year of the first peak of one harmonic.
+struct Harmonic {
+  double amplitude = 0;
+  double peak_doy = 0;
+};
+
+/// Annual and semi-annual harmonics of a year's regular series by FFTW's real transform. The
+/// plan is made once, for one series length; `analyse` may then be called from any thread.
+class HarmonicAnalysis {
+ public:
+  explicit HarmonicAnalysis(int length);
+  ~HarmonicAnalysis();
+  HarmonicAnalysis(const HarmonicAnalysis&) = delete;
+  HarmonicAnalysis& operator=(const HarmonicAnalysis&) = delete;
+  int length() const { return length_; }
+  /// `series` (length()) -> the annual (k = 1) and semi-annual (k = 2) harmonics. Period k's
+  /// centre is taken as day of year 1 + (k + 0.5) * 365.25 / length.
+  std::array<Harmonic, 2> analyse(std::span<const double> series, std::span<double> scratch_real,
+                                  std::span<std::complex<double>> scratch_spectrum) const;
+
+ private:
+  int length_;
+  void* plan_ = nullptr;
+};
+
+struct CycleOptions {
+  double prominence_share = 0.2;  // peaks count as seasons above this share of the amplitude
+  double threshold_share = 0.5;   // season start/end where the curve crosses base + share (peak - base)
+};
+
+struct SeasonTiming {
+  double start_doy = NAN, end_doy = NAN, length_days = NAN, integral = NAN;
+};
+
+struct CycleDescriptors {
+  double mean = NAN, min = NAN, max = NAN, amplitude = NAN;
+  Harmonic annual{NAN, NAN}, semiannual{NAN, NAN};
+  int seasons = 0;
+  double main_peak_doy = NAN;
+  std::array<SeasonTiming, 2> season;  // the first two seasons of the year, by peak date
+};
+
+/// Describes one year given `padded` = [previous cycle | the year | next cycle], each of
+/// `periods` values (use the year itself cyclically where a neighbouring year is missing).
+/// Peaks and season edges are searched on the padded series, so a season that spans
+/// 1 January is not cut; a season belongs to the year that holds its peak.
+CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
+                                const CycleOptions& options, const HarmonicAnalysis& harmonics);
+
+}  // namespace kalends

@@ -1,0 +1,46 @@
+// Seasonal covariates from a filled stack: synoptic and year-specific layers, anomalies, cycle
+// descriptors and where the synoptic cycle misleads.
+#pragma once
+
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "kalends/fill.hpp"
+#include "kalends/season.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+struct SeasonsRequest {
+  std::string input;  // a folder of `kalends fill` outputs, a glob, or a multi-band raster
+  ValueRules rules;
+  std::string out_dir;
+  std::string name;  // empty = from the input
+  CalendarPeriod period;  // default: calendar months
+  std::optional<int> first_year, last_year;
+  DateMarks marks = DateMarks::start;
+  CycleOptions cycle;
+  std::int64_t memory_bytes = std::int64_t(1) << 30;
+  int threads = 0;
+  Compression compression = Compression::deflate;
+  std::string command_line;
+};
+
+struct SeasonsSummary {
+  int years = 0, periods = 0, files = 0, width = 0, height = 0;
+  int first_year = 0, last_year = 0;
+  double seconds = 0;
+  std::vector<std::string> outputs;
+};
+
+/// The names of the cycle descriptor bands, in order.
+const std::vector<std::string>& cycle_band_names();
+
+SeasonsSummary run_seasons(const SeasonsRequest& request);
+
+/// The folder-or-glob convention shared by commands that read earlier outputs: a folder means
+/// its `*.tif` files.
+std::string stack_input(const std::string& input);
+
+}  // namespace kalends

@@ -1,0 +1,41 @@
+// Vegetation indices from band stacks.
+#pragma once
+
+#include <optional>
+#include <string>
+
+#include "kalends/fill.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+enum class SpectralIndex { ndvi, evi };
+
+/// NDVI = (NIR - red) / (NIR + red) (Tucker 1979, Remote Sens. Environ. 8:127; reference from
+/// memory).
+/// EVI = 2.5 (NIR - red) / (NIR + 6 red - 7.5 blue + 1) on reflectances (Huete et al. 2002,
+/// Remote Sens. Environ. 83:195). A zero denominator or a result outside [-1, 1] is missing.
+float spectral_index(SpectralIndex kind, float red, float nir, float blue);
+
+struct IndexRequest {
+  std::string red, nir, blue;  // stacks (globs or files); blue only for EVI
+  int red_band = 1, nir_band = 1, blue_band = 1;
+  SpectralIndex kind = SpectralIndex::ndvi;
+  ValueRules rules;       // scale, offset, nodata overrides for all bands
+  std::string qa;         // QA stack to pass through to out_dir/qa/
+  std::string out_dir;
+  std::string name;       // default "ndvi" / "evi"
+  int threads = 0;
+  Compression compression = Compression::deflate;
+  std::string command_line;
+};
+
+struct IndexSummary {
+  int dates = 0;
+  std::int64_t pixels = 0, missing = 0;
+  std::string out_dir;
+};
+
+IndexSummary run_index(const IndexRequest& request);
+
+}  // namespace kalends

@@ -1,0 +1,136 @@
+// kalends index, kalends seasons, kalends compare
+#include <fmt/format.h>
+
+#include "cli/commands.hpp"
+#include "kalends/compare.hpp"
+#include "kalends/error.hpp"
+#include "kalends/seasons.hpp"
+#include "kalends/spectral_index.hpp"
+
+namespace kalends::cli {
+
+namespace {
+
+std::optional<double> number_option(const std::string& text, const std::string& option) {
+  if (text.empty()) return std::nullopt;
+  try {
+    std::size_t used = 0;
+    const double v = std::stod(text, &used);
+    if (used == text.size()) return v;
+  } catch (const std::exception&) {
+  }
+  throw UsageError(option + " '" + text + "'", "expected a number");
+}
+
+}  // namespace
+
+Action add_index_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("index", "Compute NDVI or EVI from red, near-infrared (and blue) stacks");
+  struct Options {
+    IndexRequest request;
+    std::string kind = "ndvi", scale, offset, nodata, date, compression = "deflate";
+  };
+  auto o = std::make_shared<Options>();
+  IndexRequest& r = o->request;
+  sub->add_option("--red", r.red, "Red band: quoted glob of single-date rasters, or one file")->required();
+  sub->add_option("--nir", r.nir, "Near-infrared band, paired with red by date")->required();
+  sub->add_option("--blue", r.blue, "Blue band (EVI)");
+  sub->add_option("--red-band", r.red_band, "Band of each red file")->capture_default_str();
+  sub->add_option("--nir-band", r.nir_band, "Band of each near-infrared file")->capture_default_str();
+  sub->add_option("--blue-band", r.blue_band, "Band of each blue file")->capture_default_str();
+  sub->add_option("--kind", o->kind, "ndvi or evi")->check(CLI::IsMember({"ndvi", "evi"}))->capture_default_str();
+  sub->add_option("--qa", r.qa, "QA stack to pass through (copied to OUT/qa/, named by date)");
+  sub->add_option("--out", r.out_dir, "Output folder")->required();
+  sub->add_option("--name", r.name, "Output name prefix (default: the kind)");
+  sub->add_option("--scale", o->scale, "Override the files' scale factor");
+  sub->add_option("--offset", o->offset, "Override the files' offset");
+  sub->add_option("--nodata", o->nodata, "Override the files' nodata value");
+  sub->add_option("--date", o->date, "Date of files whose names carry none (YYYY-MM-DD)");
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
+  return [o, &global] {
+    IndexRequest& r = o->request;
+    r.kind = o->kind == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
+    r.rules.scale = number_option(o->scale, "--scale");
+    r.rules.offset = number_option(o->offset, "--offset");
+    r.rules.nodata = number_option(o->nodata, "--nodata");
+    if (!o->date.empty()) {
+      r.rules.date = parse_iso_time(o->date);
+      if (!r.rules.date) throw UsageError("--date '" + o->date + "'", "expected YYYY-MM-DD");
+    }
+    r.compression = parse_compression(o->compression);
+    r.command_line = global.command_line;
+    const IndexSummary s = run_index(r);
+    if (!global.quiet)
+      fmt::print("kalends index: {} dates -> {} ({:.1f} % of values missing: nodata, zero denominator or out of range)\n",
+                 s.dates, s.out_dir, s.pixels ? 100.0 * double(s.missing) / double(s.pixels) : 0.0);
+  };
+}
+
+Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("seasons", "Synoptic and year-specific layers, anomalies, cycle descriptors");
+  struct Options {
+    SeasonsRequest request;
+    std::string period = "1M", years, marks = "start", memory = "1G", compression = "deflate";
+  };
+  auto o = std::make_shared<Options>();
+  SeasonsRequest& r = o->request;
+  sub->add_option("input", r.input, "Folder of `kalends fill` outputs, a quoted glob, or a multi-band raster")->required();
+  sub->add_option("--out", r.out_dir, "Output folder")->required();
+  sub->add_option("--period", o->period, "Calendar: 1M (months), 16d or 8d")->capture_default_str();
+  sub->add_option("--years", o->years, "Years to use, e.g. 2004-2009 or 2006");
+  sub->add_option("--date-marks", o->marks, "What an input date marks in its composite: start, middle or end")
+      ->check(CLI::IsMember({"start", "middle", "end"}))
+      ->capture_default_str();
+  sub->add_option("--prominence", r.cycle.prominence_share, "A peak is a season above this share of the amplitude")
+      ->capture_default_str();
+  sub->add_option("--threshold", r.cycle.threshold_share, "Season start/end at this share between base and peak")
+      ->capture_default_str();
+  sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
+  sub->add_option("--band", r.rules.band, "Band of each input file (1 = value of fill outputs)")->capture_default_str();
+  sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
+  return [o, &global] {
+    SeasonsRequest& r = o->request;
+    r.period = CalendarPeriod::parse(o->period);
+    if (!o->years.empty()) {
+      int a = 0, b = 0;
+      char dash = 0;
+      if (std::sscanf(o->years.c_str(), "%d%c%d", &a, &dash, &b) == 3 && dash == '-')
+        r.first_year = a, r.last_year = b;
+      else if (std::sscanf(o->years.c_str(), "%d", &a) == 1 && o->years.find('-') == std::string::npos)
+        r.first_year = r.last_year = a;
+      else
+        throw UsageError("--years '" + o->years + "'", "expected YYYY or YYYY-YYYY");
+    }
+    r.marks = o->marks == "end" ? DateMarks::end : o->marks == "middle" ? DateMarks::middle : DateMarks::start;
+    r.memory_bytes = parse_memory(o->memory);
+    r.compression = parse_compression(o->compression);
+    r.command_line = global.command_line;
+    const SeasonsSummary s = run_seasons(r);
+    if (!global.quiet)
+      fmt::print("kalends seasons: {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
+                 s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds, r.out_dir, s.files);
+  };
+}
+
+Action add_compare_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("compare", "Where synoptic layers mislead: summaries of `kalends seasons` outputs");
+  auto r = std::make_shared<CompareRequest>();
+  sub->add_option("seasons", r->seasons_dir, "Folder of `kalends seasons` outputs")->required();
+  sub->add_option("--out", r->out_dir, "Output folder")->required();
+  sub->add_option("--zones", r->zones, "Integer zone raster on the same grid");
+  sub->add_option("--name", r->name, "Layer set, where the folder holds several");
+  sub->add_option("--top", r->top, "How many of the largest anomalies to list")->capture_default_str();
+  return [r, &global] {
+    const CompareSummary s = run_compare(*r);
+    if (!global.quiet)
+      fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; most pixel-periods "
+                 "below -1 sd in {}, above +1 sd in {}\n  {}\n  {}\n  {}\n",
+                 s.median_rmse, s.median_explained, s.year_most_below.empty() ? "n/a" : s.year_most_below,
+                 s.year_most_above.empty() ? "n/a" : s.year_most_above, s.markdown_path, s.json_path, s.class_path);
+  };
+}
+
+}  // namespace kalends::cli

@@ -1,0 +1,152 @@
+#include "kalends/spectral_index.hpp"
+
+#include <tbb/parallel_for.h>
+#include <tbb/task_arena.h>
+
+#include <atomic>
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+float spectral_index(SpectralIndex kind, float red, float nir, float blue) {
+  double numerator, denominator;
+  if (kind == SpectralIndex::ndvi) {
+    numerator = double(nir) - red;
+    denominator = double(nir) + red;
+  } else {
+    numerator = 2.5 * (double(nir) - red);
+    denominator = double(nir) + 6.0 * red - 7.5 * blue + 1.0;
+  }
+  if (!(denominator != 0) || !std::isfinite(numerator)) return NAN;
+  const double v = numerator / denominator;
+  return v >= -1.0 && v <= 1.0 ? float(v) : NAN;
+}
+
+namespace {
+
+constexpr int tile_size = 256;
+
+std::vector<std::size_t> pair_by_date(const Stack& base, const Stack& other, const std::string& what) {
+  require_same_grid(base.grid(), other.grid(), other.layers().front().path);
+  std::vector<std::size_t> index;
+  for (const Layer& layer : base.layers()) {
+    const auto& layers = other.layers();
+    const auto it = std::find_if(layers.begin(), layers.end(), [&](const Layer& l) { return l.time == layer.time; });
+    if (it == layers.end())
+      throw InputError(layer.path, "no " + what + " layer for " + layer.time.label() + " in '" + other.input() + "'");
+    index.push_back(std::size_t(it - layers.begin()));
+  }
+  return index;
+}
+
+}  // namespace
+
+IndexSummary run_index(const IndexRequest& request) {
+  detail::start_gdal();
+  if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  if (request.red.empty() || request.nir.empty()) throw UsageError("--red/--nir", "both are required");
+  const bool evi = request.kind == SpectralIndex::evi;
+  if (evi && request.blue.empty()) throw UsageError("--blue", "EVI needs the blue band");
+  auto rules_for = [&](int band) {
+    ValueRules r = request.rules;
+    r.band = band;
+    r.one_date_per_file = true;
+    return r;
+  };
+  const Stack red = Stack::open(request.red, rules_for(request.red_band));
+  const Stack nir = Stack::open(request.nir, rules_for(request.nir_band));
+  const std::vector<std::size_t> nir_of = pair_by_date(red, nir, "near-infrared");
+  std::optional<Stack> blue;
+  std::vector<std::size_t> blue_of;
+  if (evi) {
+    blue = Stack::open(request.blue, rules_for(request.blue_band));
+    blue_of = pair_by_date(red, *blue, "blue");
+  }
+  std::optional<Stack> qa;
+  std::vector<std::size_t> qa_of;
+  if (!request.qa.empty()) {
+    qa = Stack::open(request.qa, ValueRules{});
+    qa_of = pair_by_date(red, *qa, "QA");
+  }
+  const std::string name = request.name.empty() ? (evi ? "evi" : "ndvi") : request.name;
+  std::error_code ec;
+  fs::create_directories(request.out_dir, ec);
+  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+
+  std::vector<detail::OutputSpec> specs;
+  for (const Layer& layer : red.layers()) {
+    detail::OutputSpec spec;
+    spec.path = (fs::path(request.out_dir) / (name + "_" + layer.time.label() + ".tif")).string();
+    spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
+                     {"KALENDS_INDEX", evi ? "EVI = 2.5 (NIR - red) / (NIR + 6 red - 7.5 blue + 1)"
+                                           : "NDVI = (NIR - red) / (NIR + red)"},
+                     {"KALENDS_DATE", layer.time.iso()},
+                     {"KALENDS_RED", layer.path + " band " + std::to_string(layer.band)}};
+    if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
+    spec.bands = {{name, "", {}}};
+    specs.push_back(std::move(spec));
+  }
+  const Grid& grid = red.grid();
+  detail::set_gdal_cache(64 << 20);
+  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+  std::atomic<std::int64_t> missing{0};
+  const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
+  tbb::task_arena arena(threads);
+  arena.execute([&] {
+    tbb::parallel_for(std::size_t(0), red.layers().size(), [&](std::size_t i) {
+      auto red_reader = red.reader(), nir_reader = nir.reader();
+      std::unique_ptr<StackReader> blue_reader = blue ? blue->reader() : nullptr;
+      std::vector<float> r, n, b, out, scratch;
+      std::int64_t local_missing = 0;
+      for (int y = 0; y < grid.height; y += tile_size) {
+        const Window w{0, y, grid.width, std::min(tile_size, grid.height - y)};
+        r.resize(w.pixels()), n.resize(w.pixels()), out.resize(w.pixels());
+        red_reader->read_values(i, w, r.data());
+        nir_reader->read_values(nir_of[i], w, n.data());
+        if (blue_reader) {
+          b.resize(w.pixels());
+          blue_reader->read_values(blue_of[i], w, b.data());
+        }
+        for (std::int64_t p = 0; p < w.pixels(); ++p) {
+          out[p] = spectral_index(request.kind, r[p], n[p], blue_reader ? b[p] : 0.0f);
+          local_missing += std::isnan(out[p]);
+        }
+        const float* planes[] = {out.data()};
+        outputs.write(i, w, planes, scratch);
+      }
+      missing += local_missing;
+    });
+  });
+  outputs.commit();
+  // QA layers travel with the index so that `kalends fill --qa` finds them by date.
+  if (qa) {
+    const fs::path qa_dir = fs::path(request.out_dir) / "qa";
+    fs::create_directories(qa_dir, ec);
+    if (ec) throw OutputError(qa_dir.string(), "cannot create the folder: " + ec.message());
+    for (std::size_t i = 0; i < red.layers().size(); ++i) {
+      const Layer& q = qa->layers()[qa_of[i]];
+      const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + fs::path(q.path).extension().string());
+      const std::string temporary = detail::temporary_name(target.string());
+      fs::copy_file(q.path, temporary, fs::copy_options::overwrite_existing, ec);
+      if (ec) throw OutputError(target.string(), "cannot copy the QA layer: " + ec.message());
+      fs::rename(temporary, target, ec);
+      if (ec) throw OutputError(target.string(), "cannot rename into place: " + ec.message());
+    }
+  }
+  IndexSummary summary;
+  summary.dates = int(red.layers().size());
+  summary.pixels = std::int64_t(grid.width) * grid.height * summary.dates;
+  summary.missing = missing;
+  summary.out_dir = request.out_dir;
+  return summary;
+}
+
+}  // namespace kalends

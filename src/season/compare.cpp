@@ -1,0 +1,283 @@
+// kalends compare: quantiles and histograms of synoptic miss, per zone on request, the largest
+// anomalies, a per-year summary, and a class raster of how year-specific each pixel is.
+//
+// Years are summarised by the share of pixel-periods beyond +-1 standardised anomaly: with n
+// years a standardised anomaly (sd with ddof 1) cannot exceed (n - 1) / sqrt(n) in size, 1.15
+// for three years, so the usual +-1.5 or +-2 would never trigger on short records. The largest
+// anomalies are ranked by size in the variable's units, for the same reason.
+#include "kalends/compare.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+#include <map>
+#include <regex>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+std::vector<float> read_band(GDALDataset& ds, int band, const std::string& path) {
+  std::vector<float> data(std::size_t(ds.GetRasterXSize()) * ds.GetRasterYSize());
+  CPLErrorReset();
+  if (ds.GetRasterBand(band)->RasterIO(GF_Read, 0, 0, ds.GetRasterXSize(), ds.GetRasterYSize(),
+                                       data.data(), ds.GetRasterXSize(), ds.GetRasterYSize(),
+                                       GDT_Float32, 0, 0, nullptr) != CE_None)
+    throw InputError(path, "cannot read band " + std::to_string(band) + " (" +
+                               detail::gdal_message("read failed") + ")");
+  return data;
+}
+
+// Linear interpolation between order statistics (numpy.quantile's default).
+double quantile(std::vector<float>& sorted, double q) {
+  if (sorted.empty()) return NAN;
+  const double pos = q * double(sorted.size() - 1);
+  const std::size_t lo = std::size_t(std::floor(pos)), hi = std::min(lo + 1, sorted.size() - 1);
+  return sorted[lo] + (pos - double(lo)) * (sorted[hi] - sorted[lo]);
+}
+
+std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{:.6g}", v) : "null"; }
+
+struct Distribution {
+  std::vector<double> quantiles;  // 5, 25, 50, 75, 95 %
+  double mean = NAN;
+  std::size_t count = 0;
+};
+
+Distribution describe(std::vector<float> values) {
+  values.erase(std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }),
+               values.end());
+  std::sort(values.begin(), values.end());
+  Distribution d;
+  d.count = values.size();
+  for (double q : {0.05, 0.25, 0.5, 0.75, 0.95}) d.quantiles.push_back(quantile(values, q));
+  double s = 0;
+  for (float v : values) s += v;
+  d.mean = values.empty() ? NAN : s / double(values.size());
+  return d;
+}
+
+std::string distribution_json(const Distribution& d) {
+  return fmt::format("{{\"count\": {}, \"mean\": {}, \"p05\": {}, \"p25\": {}, \"p50\": {}, \"p75\": {}, \"p95\": {}}}",
+                     d.count, json_number(d.mean), json_number(d.quantiles[0]), json_number(d.quantiles[1]),
+                     json_number(d.quantiles[2]), json_number(d.quantiles[3]), json_number(d.quantiles[4]));
+}
+
+struct Anomaly {
+  double standardised = 0, raw = 0;
+  int x = 0, y = 0, year = 0;
+  std::string period;
+};
+
+}  // namespace
+
+CompareSummary run_compare(const CompareRequest& request) {
+  detail::start_gdal();
+  if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  if (!fs::is_directory(request.seasons_dir))
+    throw InputError(request.seasons_dir, "is not a folder of `kalends seasons` outputs");
+  std::string name = request.name;
+  if (name.empty()) {
+    std::vector<std::string> names;
+    for (const auto& entry : fs::directory_iterator(request.seasons_dir)) {
+      const std::string f = entry.path().filename().string();
+      const std::string suffix = "_synoptic_miss.tif";
+      if (f.size() > suffix.size() && f.compare(f.size() - suffix.size(), suffix.size(), suffix) == 0)
+        names.push_back(f.substr(0, f.size() - suffix.size()));
+    }
+    if (names.empty()) throw InputError(request.seasons_dir, "holds no *_synoptic_miss.tif (run `kalends seasons` first)");
+    if (names.size() > 1) throw UsageError("--name", "the folder holds several layer sets; choose one with --name");
+    name = names.front();
+  }
+  const std::string miss_path = (fs::path(request.seasons_dir) / (name + "_synoptic_miss.tif")).string();
+  GDALDatasetUniquePtr miss = detail::open_raster(miss_path);
+  const int width = miss->GetRasterXSize(), height = miss->GetRasterYSize();
+  const std::vector<float> rmse = read_band(*miss, 1, miss_path);
+  const std::vector<float> explained = read_band(*miss, 2, miss_path);
+  const std::vector<float> year_share = read_band(*miss, 3, miss_path);
+  Grid grid;
+  grid.width = width;
+  grid.height = height;
+  grid.has_geotransform = miss->GetGeoTransform(grid.geotransform.data()) == CE_None;
+  if (const OGRSpatialReference* srs = miss->GetSpatialRef()) {
+    char* wkt = nullptr;
+    srs->exportToWkt(&wkt);
+    if (wkt) grid.crs_wkt = wkt;
+    CPLFree(wkt);
+  }
+
+  // Histogram of RMSE over 20 equal bins up to the 99th percentile (the rest in the last bin).
+  std::vector<float> finite_rmse;
+  for (float v : rmse)
+    if (std::isfinite(v)) finite_rmse.push_back(v);
+  std::sort(finite_rmse.begin(), finite_rmse.end());
+  const double top_edge = finite_rmse.empty() ? 1.0 : std::max(1e-12, quantile(finite_rmse, 0.99));
+  constexpr int bins = 20;
+  std::vector<std::size_t> histogram(bins, 0);
+  for (float v : finite_rmse) histogram[std::min(bins - 1, int(v / top_edge * bins))]++;
+
+  // Zones.
+  std::map<long, std::pair<std::vector<float>, std::vector<float>>> zones;
+  if (!request.zones.empty()) {
+    GDALDatasetUniquePtr z = detail::open_raster(request.zones);
+    if (z->GetRasterXSize() != width || z->GetRasterYSize() != height)
+      throw InputError(request.zones, "zone raster is not on the grid of " + miss_path);
+    const std::vector<float> zone = read_band(*z, 1, request.zones);
+    int has_nodata = 0;
+    const double nodata = z->GetRasterBand(1)->GetNoDataValue(&has_nodata);
+    for (std::size_t i = 0; i < zone.size(); ++i) {
+      if (!std::isfinite(zone[i]) || (has_nodata && zone[i] == float(nodata))) continue;
+      auto& [r, e] = zones[std::lround(zone[i])];
+      r.push_back(rmse[i]);
+      e.push_back(explained[i]);
+    }
+  }
+
+  // Largest standardised anomalies and a per-year summary.
+  std::vector<Anomaly> top;
+  struct YearStats {
+    double sum = 0;
+    std::size_t count = 0, below = 0, above = 0;
+  };
+  std::map<int, YearStats> per_year;
+  const std::regex year_file(std::regex_replace(name, std::regex(R"([.^$|()\[\]{}*+?\\])"), R"(\$&)") +
+                             R"(_anomaly_standardised_(\d{4})\.tif)");
+  std::vector<std::pair<int, std::string>> anomaly_files;
+  for (const auto& entry : fs::directory_iterator(request.seasons_dir)) {
+    std::smatch m;
+    const std::string f = entry.path().filename().string();
+    if (std::regex_match(f, m, year_file)) anomaly_files.emplace_back(std::stoi(m[1]), entry.path().string());
+  }
+  std::sort(anomaly_files.begin(), anomaly_files.end());
+  for (const auto& [year, path] : anomaly_files) {
+    GDALDatasetUniquePtr ds = detail::open_raster(path);
+    const std::string raw_path = (fs::path(request.seasons_dir) / fmt::format("{}_anomaly_{}.tif", name, year)).string();
+    GDALDatasetUniquePtr raw = detail::open_raster(raw_path);
+    YearStats& ys = per_year[year];
+    for (int b = 1; b <= ds->GetRasterCount(); ++b) {
+      const std::vector<float> z = read_band(*ds, b, path);
+      const std::vector<float> a = read_band(*raw, b, raw_path);
+      const std::string period = ds->GetRasterBand(b)->GetDescription();
+      for (std::size_t i = 0; i < z.size(); ++i) {
+        if (std::isfinite(a[i])) ys.sum += a[i], ys.count++;
+        if (!std::isfinite(z[i])) continue;
+        ys.below += z[i] < -1.0f;
+        ys.above += z[i] > 1.0f;
+        if (top.size() < std::size_t(request.top) || std::abs(a[i]) > std::abs(top.back().raw)) {
+          top.push_back({z[i], a[i], int(i % width), int(i / width), year, period});
+          std::sort(top.begin(), top.end(), [](const Anomaly& l, const Anomaly& r) {
+            return std::abs(l.raw) > std::abs(r.raw);
+          });
+          if (top.size() > std::size_t(request.top)) top.pop_back();
+        }
+      }
+    }
+  }
+
+  // Class raster: how much of each pixel's variance is year-specific.
+  std::error_code ec;
+  fs::create_directories(request.out_dir, ec);
+  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  CompareSummary summary;
+  summary.class_path = (fs::path(request.out_dir) / (name + "_year_specific_class.tif")).string();
+  {
+    detail::OutputSpec spec;
+    spec.path = summary.class_path;
+    spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION}, {"KALENDS_INPUT", miss_path}};
+    spec.bands = {{"year_specific_class", "",
+                   {{"CLASS_MEANINGS", "0: under 25 % of the variance is year-specific, 1: 25-50 %, "
+                                       "2: 50-75 %, 3: 75 % or more"}}}};
+    std::vector<detail::OutputSpec> specs{spec};
+    detail::OutputSet out(std::move(specs), grid, Compression::deflate, 256);
+    std::vector<float> plane, scratch;
+    for (int y = 0; y < height; y += 256) {
+      const Window core{0, y, width, std::min(256, height - y)};
+      plane.resize(core.pixels());
+      for (std::int64_t i = 0; i < core.pixels(); ++i) {
+        const float s = year_share[std::size_t(y) * width + i];
+        plane[i] = !std::isfinite(s) ? NAN : s < 0.25f ? 0.0f : s < 0.5f ? 1.0f : s < 0.75f ? 2.0f : 3.0f;
+      }
+      const float* planes[] = {plane.data()};
+      out.write(0, core, planes, scratch);
+    }
+    out.commit();
+  }
+
+  const Distribution r = describe(rmse), e = describe(explained);
+  summary.median_rmse = r.quantiles[2];
+  summary.median_explained = e.quantiles[2];
+  std::string json = "{\n";
+  json += fmt::format("  \"layers\": \"{}\",\n  \"width\": {},\n  \"height\": {},\n", name, width, height);
+  json += "  \"synoptic_rmse\": " + distribution_json(r) + ",\n";
+  json += "  \"explained_share\": " + distribution_json(e) + ",\n";
+  json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [", json_number(top_edge / bins));
+  for (int b = 0; b < bins; ++b) json += (b ? ", " : "") + std::to_string(histogram[b]);
+  json += "]},\n  \"zones\": [";
+  bool first = true;
+  for (auto& [zone, values] : zones) {
+    json += fmt::format("{}\n    {{\"zone\": {}, \"synoptic_rmse\": {}, \"explained_share\": {}}}", first ? "" : ",",
+                        zone, distribution_json(describe(values.first)), distribution_json(describe(values.second)));
+    first = false;
+  }
+  json += "],\n  \"years\": [";
+  first = true;
+  double most_below = -1, most_above = -1;
+  for (const auto& [year, s] : per_year) {
+    const double mean = s.count ? s.sum / double(s.count) : NAN;
+    json += fmt::format("{}\n    {{\"year\": {}, \"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
+                        first ? "" : ",", year, json_number(mean), json_number(s.count ? double(s.below) / s.count : NAN),
+                        json_number(s.count ? double(s.above) / s.count : NAN));
+    first = false;
+    const double below = s.count ? double(s.below) / s.count : 0, above = s.count ? double(s.above) / s.count : 0;
+    if (below > most_below) most_below = below, summary.year_most_below = std::to_string(year);
+    if (above > most_above) most_above = above, summary.year_most_above = std::to_string(year);
+  }
+  json += "],\n  \"largest_anomalies\": [";
+  for (std::size_t i = 0; i < top.size(); ++i)
+    json += fmt::format("{}\n    {{\"x\": {}, \"y\": {}, \"year\": {}, \"period\": \"{}\", \"standardised\": {}, \"anomaly\": {}}}",
+                        i ? "," : "", top[i].x, top[i].y, top[i].year, top[i].period,
+                        json_number(top[i].standardised), json_number(top[i].raw));
+  json += fmt::format("],\n  \"year_most_below\": {},\n  \"year_most_above\": {},\n",
+                      summary.year_most_below.empty() ? "null" : summary.year_most_below,
+                      summary.year_most_above.empty() ? "null" : summary.year_most_above);
+  json += fmt::format("  \"class_raster\": \"{}\"\n}}\n", summary.class_path);
+  summary.json_path = (fs::path(request.out_dir) / "compare.json").string();
+  detail::write_text_atomically(summary.json_path, json);
+
+  std::string md = fmt::format("# Where the synoptic layers of `{}` mislead\n\n", name);
+  md += "Synoptic miss per pixel: RMSE between the year-specific and the synoptic values, and the share of the "
+        "year-specific variance the synoptic cycle explains.\n\n";
+  md += "| statistic | mean | 5 % | 25 % | median | 75 % | 95 % |\n|---|---|---|---|---|---|---|\n";
+  for (const auto& [label, d] : {std::pair{"synoptic RMSE", r}, std::pair{"explained share", e}})
+    md += fmt::format("| {} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} |\n", label, d.mean, d.quantiles[0],
+                      d.quantiles[1], d.quantiles[2], d.quantiles[3], d.quantiles[4]);
+  md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
+  for (const auto& [year, s] : per_year)
+    md += fmt::format("| {} | {:+.4f} | {:.1f} % | {:.1f} % |\n", year, s.count ? s.sum / double(s.count) : NAN,
+                      s.count ? 100.0 * double(s.below) / s.count : NAN, s.count ? 100.0 * double(s.above) / s.count : NAN);
+  if (!zones.empty()) {
+    md += "\n## Zones\n\n| zone | pixels | median synoptic RMSE | median explained share |\n|---|---|---|---|\n";
+    for (auto& [zone, values] : zones) {
+      const Distribution zr = describe(values.first), ze = describe(values.second);
+      md += fmt::format("| {} | {} | {:.4g} | {:.4g} |\n", zone, zr.count, zr.quantiles[2], ze.quantiles[2]);
+    }
+  }
+  md += "\n## Largest anomalies\n\n| x | y | year | period | standardised | anomaly |\n|---|---|---|---|---|---|\n";
+  for (const Anomaly& a : top)
+    md += fmt::format("| {} | {} | {} | {} | {:+.2f} | {:+.4f} |\n", a.x, a.y, a.year, a.period, a.standardised, a.raw);
+  md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more).\n",
+                    summary.class_path);
+  summary.markdown_path = (fs::path(request.out_dir) / "compare.md").string();
+  detail::write_text_atomically(summary.markdown_path, md);
+  return summary;
+}
+
+}  // namespace kalends

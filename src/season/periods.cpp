@@ -1,0 +1,62 @@
+// Calendar periods and the composites that feed them.
+#include <algorithm>
+#include <cmath>
+
+#include "kalends/season.hpp"
+
+namespace kalends {
+
+std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar) {
+  std::vector<Period> periods;
+  const std::int64_t jan1 = days_from_civil(year, 1, 1), next = days_from_civil(year + 1, 1, 1);
+  if (calendar.kind == CalendarPeriod::Kind::month) {
+    for (int m = 1; m <= 12; ++m) periods.push_back({days_from_civil(year, m, 1), days_in_month(year, m)});
+  } else {
+    for (std::int64_t d = jan1; d < next; d += calendar.days)
+      periods.push_back({d, int(std::min<std::int64_t>(calendar.days, next - d))});
+  }
+  return periods;
+}
+
+std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
+                                          const std::vector<Period>& periods, DateMarks marks) {
+  std::vector<PeriodSources> sources(periods.size());
+  const std::size_t n = dates.size();
+  if (n == 0) return sources;
+  std::vector<std::int64_t> day(n);
+  for (std::size_t i = 0; i < n; ++i) day[i] = std::int64_t(std::floor(dates[i].days()));
+  std::int64_t step = 1;
+  if (n > 1) {
+    std::vector<std::int64_t> gaps;
+    for (std::size_t i = 1; i < n; ++i) gaps.push_back(day[i] - day[i - 1]);
+    std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
+    step = std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
+  }
+  for (std::size_t i = 0; i < n; ++i) {
+    // [first, last) days the composite stands for; never past its neighbours.
+    std::int64_t first, last;
+    if (marks == DateMarks::start) {
+      first = day[i];
+      last = first + (i + 1 < n ? std::min(step, day[i + 1] - day[i]) : step);
+    } else if (marks == DateMarks::end) {
+      last = day[i] + 1;
+      first = last - (i > 0 ? std::min(step, day[i] - day[i - 1]) : step);
+    } else {
+      const std::int64_t half = step / 2;
+      first = i > 0 ? std::max(day[i] - half, (day[i - 1] + day[i] + 1) / 2) : day[i] - half;
+      last = i + 1 < n ? std::min(day[i] + (step - half), (day[i] + day[i + 1] + 1) / 2)
+                       : day[i] + (step - half);
+    }
+    for (std::size_t p = 0; p < periods.size(); ++p) {
+      const std::int64_t a = std::max(first, periods[p].first_day);
+      const std::int64_t b = std::min(last, periods[p].first_day + periods[p].days);
+      if (b > a) {
+        sources[p].composite.push_back(int(i));
+        sources[p].days.push_back(double(b - a));
+      }
+    }
+  }
+  return sources;
+}
+
+}  // namespace kalends

@@ -1,0 +1,274 @@
+// run_seasons: stack -> blocks -> period means -> synoptic, year-specific, anomalies, cycle
+// descriptors, synoptic miss -> GeoTIFFs.
+#include <tbb/enumerable_thread_specific.h>
+#include <tbb/parallel_for.h>
+#include <tbb/task_arena.h>
+
+#include <chrono>
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+#include <set>
+
+#include "engine/memory_budget.hpp"
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/seasons.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+const std::vector<std::string>& cycle_band_names() {
+  static const std::vector<std::string> names{
+      "mean",           "min",           "max",           "amplitude",
+      "annual_amplitude", "annual_peak_doy", "semiannual_amplitude", "semiannual_peak_doy",
+      "seasons",        "main_peak_doy", "season1_start_doy", "season1_end_doy",
+      "season1_length_days", "season1_integral", "season2_start_doy", "season2_end_doy",
+      "season2_length_days", "season2_integral"};
+  return names;
+}
+
+std::string stack_input(const std::string& input) {
+  if (fs::is_directory(input)) return (fs::path(input) / "*.tif").string();
+  return input;
+}
+
+namespace {
+
+constexpr int tile_size = 256;
+
+std::vector<std::string> period_labels(int year, const CalendarPeriod& calendar) {
+  std::vector<std::string> labels;
+  for (const Period& p : periods_of_year(year, calendar)) {
+    const CivilDate d = civil_from_days(p.first_day);
+    labels.push_back(calendar.kind == CalendarPeriod::Kind::month
+                         ? fmt::format("month {:02d}", d.month)
+                         : fmt::format("doy {:03d}", day_of_year(d)));
+  }
+  return labels;
+}
+
+struct Worker {
+  std::unique_ptr<StackReader> reader;
+  std::vector<float> plane;
+  std::vector<float> layers;  // [layer][pixel]
+  std::vector<std::vector<float>> bands;  // one plane per output band
+  std::vector<double> padded;
+  std::vector<float> tile;
+};
+
+}  // namespace
+
+SeasonsSummary run_seasons(const SeasonsRequest& request) {
+  const auto started = std::chrono::steady_clock::now();
+  if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  if (!(request.cycle.prominence_share > 0 && request.cycle.prominence_share < 1))
+    throw UsageError("--prominence", "must be between 0 and 1");
+  if (!(request.cycle.threshold_share > 0 && request.cycle.threshold_share < 1))
+    throw UsageError("--threshold", "must be between 0 and 1");
+  const Stack stack = Stack::open(stack_input(request.input), request.rules);
+  const std::vector<TimePoint> times = stack.times();
+  int first_year = times.front().date().year, last_year = times.back().date().year;
+  if (request.first_year) first_year = std::max(first_year, *request.first_year);
+  if (request.last_year) last_year = std::min(last_year, *request.last_year);
+  if (first_year > last_year)
+    throw UsageError("--years", "no year of the stack (" + std::to_string(times.front().date().year) +
+                                    "-" + std::to_string(times.back().date().year) + ") is in the range");
+  const int years = last_year - first_year + 1;
+  const int P = int(periods_of_year(2001, request.period).size());  // same count every year
+  std::vector<Period> periods;
+  for (int y = first_year; y <= last_year; ++y)
+    for (const Period& p : periods_of_year(y, request.period)) periods.push_back(p);
+  const std::vector<PeriodSources> sources = period_sources(times, periods, request.marks);
+  std::vector<char> used(times.size(), 0);
+  for (const PeriodSources& s : sources)
+    for (int c : s.composite) used[c] = 1;
+
+  const Grid& grid = stack.grid();
+  const std::string name = request.name.empty() ? stack.name() : request.name;
+  std::error_code ec;
+  fs::create_directories(request.out_dir, ec);
+  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+
+  // Output layout: index of each file, its bands.
+  const std::string unit = stack.layers().front().unit;
+  std::vector<detail::OutputSpec> specs;
+  auto add = [&](const std::string& suffix, const std::vector<std::string>& band_names,
+                 const std::map<std::string, std::string>& extra) {
+    detail::OutputSpec spec;
+    spec.path = (fs::path(request.out_dir) / (name + "_" + suffix + ".tif")).string();
+    spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
+                     {"KALENDS_INPUT", request.input},
+                     {"KALENDS_PERIOD", request.period.label()},
+                     {"KALENDS_YEARS", fmt::format("{}-{}", first_year, last_year)},
+                     {"KALENDS_PROMINENCE_SHARE", fmt::format("{:g}", request.cycle.prominence_share)},
+                     {"KALENDS_THRESHOLD_SHARE", fmt::format("{:g}", request.cycle.threshold_share)}};
+    if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
+    for (const auto& [k, v] : extra) spec.metadata[k] = v;
+    for (const std::string& b : band_names) spec.bands.push_back({b, "", {}});
+    specs.push_back(std::move(spec));
+    return specs.size() - 1;
+  };
+  const auto labels = period_labels(2001, request.period);
+  const std::size_t synoptic_mean = add("synoptic_mean", labels, {{"KALENDS_LAYER", "long-term mean per period"}});
+  const std::size_t synoptic_sd = add("synoptic_sd", labels, {{"KALENDS_LAYER", "standard deviation over years (ddof 1)"}});
+  const std::size_t synoptic_years = add("synoptic_years", labels, {{"KALENDS_LAYER", "number of years with a value"}});
+  std::vector<std::size_t> year_file, anomaly_file, standardised_file, cycle_file;
+  for (int y = first_year; y <= last_year; ++y) {
+    const std::string ys = std::to_string(y);
+    year_file.push_back(add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}}));
+    anomaly_file.push_back(add("anomaly_" + ys, labels, {{"KALENDS_LAYER", "year-specific minus synoptic"}, {"KALENDS_YEAR", ys}}));
+    standardised_file.push_back(add("anomaly_standardised_" + ys, labels,
+                                    {{"KALENDS_LAYER", "anomaly / synoptic sd"}, {"KALENDS_YEAR", ys}}));
+  }
+  for (int y = first_year; y <= last_year; ++y)
+    cycle_file.push_back(add("cycle_" + std::to_string(y), cycle_band_names(),
+                             {{"KALENDS_LAYER", "cycle descriptors of the year"}, {"KALENDS_YEAR", std::to_string(y)}}));
+  const std::size_t cycle_synoptic = add("cycle_synoptic", cycle_band_names(), {{"KALENDS_LAYER", "cycle descriptors of the synoptic cycle"}});
+  const std::size_t miss = add("synoptic_miss", {"rmse", "explained_share", "year_specific_share"},
+                               {{"KALENDS_LAYER", "where the synoptic cycle misleads"}});
+  std::vector<std::size_t> first_band(specs.size());
+  std::size_t total_bands = 0;
+  for (std::size_t f = 0; f < specs.size(); ++f) first_band[f] = total_bands, total_bands += specs[f].bands.size();
+  for (std::size_t f : year_file) for (auto& b : specs[f].bands) b.unit = unit;
+  for (std::size_t f : {synoptic_mean, synoptic_sd}) for (auto& b : specs[f].bands) b.unit = unit;
+
+  const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
+  const std::int64_t bytes_per_pixel = std::int64_t(times.size()) * 4 + 4 + std::int64_t(total_bands) * 4;
+  std::set<std::string> files;
+  for (const Layer& l : stack.layers()) files.insert(l.path);
+  const detail::MemoryShare share = detail::share_memory(request.memory_bytes, threads, bytes_per_pixel,
+                                                         int(files.size()), int(specs.size()));
+  detail::set_gdal_cache(share.gdal_cache);
+  const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size);
+  std::vector<std::string> output_paths;
+  for (const auto& s : specs) output_paths.push_back(s.path);
+  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+  const HarmonicAnalysis harmonics(P);
+
+  tbb::enumerable_thread_specific<Worker> workers([&] {
+    Worker w;
+    w.reader = stack.reader();
+    return w;
+  });
+  auto process = [&](const Block& block, Worker& w) {
+    const Window& core = block.core;
+    const std::int64_t n = core.pixels();
+    w.layers.assign(times.size() * n, NAN);
+    w.plane.resize(n);
+    for (std::size_t i = 0; i < times.size(); ++i) {
+      if (!used[i]) continue;
+      w.reader->read_values(i, core, w.plane.data());
+      std::copy(w.plane.begin(), w.plane.end(), w.layers.begin() + i * n);
+    }
+    w.bands.resize(total_bands);
+    for (auto& b : w.bands) b.assign(n, NAN);
+    auto band = [&](std::size_t file, std::size_t b) -> std::vector<float>& { return w.bands[first_band[file] + b]; };
+    std::vector<double> value(std::size_t(years) * P), mean(P);
+    w.padded.resize(3 * P);
+    auto put_cycle = [&](std::size_t file, std::int64_t p, const CycleDescriptors& d) {
+      const double v[] = {d.mean, d.min, d.max, d.amplitude, d.annual.amplitude, d.annual.peak_doy,
+                          d.semiannual.amplitude, d.semiannual.peak_doy,
+                          std::isfinite(d.mean) ? double(d.seasons) : NAN, d.main_peak_doy,
+                          d.season[0].start_doy, d.season[0].end_doy, d.season[0].length_days, d.season[0].integral,
+                          d.season[1].start_doy, d.season[1].end_doy, d.season[1].length_days, d.season[1].integral};
+      for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = float(v[b]);
+    };
+    for (std::int64_t p = 0; p < n; ++p) {
+      for (std::size_t k = 0; k < periods.size(); ++k) {
+        double sum = 0, days = 0;
+        for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
+          const float v = w.layers[std::size_t(sources[k].composite[j]) * n + p];
+          if (std::isfinite(v)) sum += sources[k].days[j] * v, days += sources[k].days[j];
+        }
+        value[k] = days > 0 ? sum / days : NAN;
+      }
+      double all_sum = 0;
+      int all_count = 0;
+      for (int q = 0; q < P; ++q) {
+        double s = 0, ss = 0;
+        int count = 0;
+        for (int y = 0; y < years; ++y) {
+          const double v = value[std::size_t(y) * P + q];
+          if (std::isfinite(v)) s += v, ++count;
+        }
+        mean[q] = count > 0 ? s / count : NAN;
+        for (int y = 0; y < years; ++y) {
+          const double v = value[std::size_t(y) * P + q];
+          if (std::isfinite(v)) ss += (v - mean[q]) * (v - mean[q]);
+        }
+        const double sd = count > 1 ? std::sqrt(ss / (count - 1)) : NAN;
+        band(synoptic_mean, q)[p] = float(mean[q]);
+        band(synoptic_sd, q)[p] = float(sd);
+        band(synoptic_years, q)[p] = float(count);
+        for (int y = 0; y < years; ++y) {
+          const double v = value[std::size_t(y) * P + q];
+          band(year_file[y], q)[p] = float(v);
+          band(anomaly_file[y], q)[p] = float(v - mean[q]);
+          band(standardised_file[y], q)[p] = sd > 0 ? float((v - mean[q]) / sd) : NAN;
+          if (std::isfinite(v)) all_sum += v, ++all_count;
+        }
+      }
+      // Cycle descriptors: each year with its neighbours; the synoptic cycle with itself.
+      for (int y = 0; y < years; ++y) {
+        for (int q = 0; q < 3 * P; ++q) {
+          const int yy = y + q / P - 1;
+          w.padded[q] = yy >= 0 && yy < years ? value[std::size_t(yy) * P + q % P] : NAN;
+        }
+        put_cycle(cycle_file[y], p, describe_cycle(w.padded, P, request.cycle, harmonics));
+      }
+      for (int q = 0; q < 3 * P; ++q) w.padded[q] = mean[q % P];
+      put_cycle(cycle_synoptic, p, describe_cycle(w.padded, P, request.cycle, harmonics));
+      // Synoptic miss: RMSE of year-specific against synoptic, and the share of the
+      // year-specific variance the synoptic cycle explains (1 - SS_res / SS_tot).
+      double res = 0, tot = 0;
+      int count = 0;
+      const double overall = all_count > 0 ? all_sum / all_count : NAN;
+      for (int y = 0; y < years; ++y)
+        for (int q = 0; q < P; ++q) {
+          const double v = value[std::size_t(y) * P + q];
+          if (!std::isfinite(v)) continue;
+          res += (v - mean[q]) * (v - mean[q]);
+          tot += (v - overall) * (v - overall);
+          ++count;
+        }
+      band(miss, 0)[p] = count > 0 ? float(std::sqrt(res / count)) : NAN;
+      const double explained = tot > 0 ? 1.0 - res / tot : NAN;
+      band(miss, 1)[p] = float(explained);
+      band(miss, 2)[p] = float(1.0 - explained);
+    }
+    std::vector<const float*> planes;
+    for (std::size_t f = 0; f < outputs.size(); ++f) {
+      const std::size_t count = (f + 1 < outputs.size() ? first_band[f + 1] : total_bands) - first_band[f];
+      planes.clear();
+      for (std::size_t b = 0; b < count; ++b) planes.push_back(w.bands[first_band[f] + b].data());
+      outputs.write(f, core, planes, w.tile);
+    }
+  };
+  tbb::task_arena arena(threads);
+  arena.execute([&] {
+    tbb::parallel_for(tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
+                      [&](const tbb::blocked_range<std::size_t>& r) {
+                        Worker& w = workers.local();
+                        for (std::size_t b = r.begin(); b < r.end(); ++b) process(plan.blocks[b], w);
+                      },
+                      tbb::simple_partitioner());
+  });
+  outputs.commit();
+
+  SeasonsSummary summary;
+  summary.years = years;
+  summary.periods = P;
+  summary.files = int(output_paths.size());
+  summary.width = grid.width;
+  summary.height = grid.height;
+  summary.first_year = first_year;
+  summary.last_year = last_year;
+  summary.outputs = output_paths;
+  summary.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+  return summary;
+}
+
+}  // namespace kalends

@@ -1,0 +1,281 @@
+#!/usr/bin/python3
+"""Seasonal kernels and `kalends seasons` / `kalends index` checked against numpy and scipy.
+
+References:
+- peaks and prominences: scipy.signal.find_peaks / peak_prominences (SciPy 1.10), the
+  definition kalends implements (src/season/peaks.cpp);
+- harmonics: numpy.fft.rfft, X_k = sum_n x_n exp(-2 pi i k n / N); amplitude 2|X_k|/N, the
+  first peak of harmonic k at n* = (-arg X_k / (2 pi k) mod 1) N / k;
+- period means and synoptic statistics: a direct numpy computation of the same day-weighted
+  means (each composite stands for the 16 days from its date, cut at the next composite);
+- NDVI = (NIR - red)/(NIR + red); EVI = 2.5 (NIR - red)/(NIR + 6 red - 7.5 blue + 1)
+  (Huete et al. 2002, Remote Sens. Environ. 83:195) on ../shared/data/landsat7-bands;
+- the real NetCDF stack ../shared/data/monthly-temperature (Maurer et al. 2002): amplitude and
+  month of maximum per cell.
+"""
+import datetime as dt
+import json
+import os
+import subprocess
+import sys
+import unittest
+
+import numpy as np
+from scipy.signal import find_peaks
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+SEASON_PROBE = os.environ.get("KALENDS_SEASON_PROBE",
+                              os.path.join(kt.REPO_ROOT, "build", "tests", "kalends_season_probe"))
+YEAR = 365.25
+
+
+def season_probe(text):
+    kt.require_binary(SEASON_PROBE)
+    done = subprocess.run([SEASON_PROBE], input=text, capture_output=True, text=True, timeout=60)
+    if done.returncode != 0:
+        raise AssertionError("season probe failed: " + done.stderr)
+    return json.loads(done.stdout)
+
+
+def series_text(x):
+    return " ".join("nan" if not np.isfinite(v) else repr(float(v)) for v in x)
+
+
+class Peaks(unittest.TestCase):
+    def test_peaks_and_prominences_equal_scipy(self):
+        rng = np.random.default_rng(5)
+        checked = 0
+        for case in range(400):
+            n = int(rng.integers(3, 60))
+            x = rng.standard_normal(n)
+            if case % 3 == 0:
+                x = np.round(x * 2) / 2          # plateaus: many equal neighbours
+            if case % 5 == 0:
+                x[0] = x.max() + 1               # a maximum on the series edge (never a peak)
+            if case % 7 == 0:
+                x[-1] = x.max() + 1
+            prominence = float(rng.choice([0.0, 0.3, 1.0, 2.0]))
+            ours = season_probe("peaks %r %d\n%s\n" % (prominence, n, series_text(x)))
+            idx, props = find_peaks(x, prominence=prominence)
+            self.assertEqual(ours["index"], idx.tolist(), "series %s" % x.tolist())
+            np.testing.assert_allclose(ours["prominence"], props["prominences"], rtol=0, atol=1e-12)
+            checked += len(idx)
+        self.assertGreater(checked, 300)
+
+    def test_seasons_count_the_peaks_of_the_middle_of_three_cycles(self):
+        # Wrap-around rule (docs/methods.md): a cycle's seasons are the scipy peaks of
+        # [cycle, cycle, cycle] that fall in the middle copy, with prominence >= 20 % of the
+        # cycle's amplitude.
+        rng = np.random.default_rng(9)
+        for case in range(200):
+            p = int(rng.choice([12, 23]))
+            t = np.arange(p) / p
+            x = (rng.uniform(0.2, 1) * np.cos(2 * np.pi * (t - rng.uniform()))
+                 + rng.uniform(0, 1) * np.cos(4 * np.pi * (t - rng.uniform()))
+                 + 0.1 * rng.standard_normal(p))
+            tiled = np.tile(x, 3)
+            ours = season_probe("cycle 0.2 0.5 %d\n%s\n" % (p, series_text(tiled)))
+            idx, _ = find_peaks(tiled, prominence=0.2 * (x.max() - x.min()))
+            expected = int(np.sum((idx >= p) & (idx < 2 * p)))
+            self.assertEqual(ours["seasons"], expected, "series %s" % x.tolist())
+            self.assertAlmostEqual(ours["amplitude"], x.max() - x.min(), places=12)
+
+    def test_a_season_across_new_year_is_not_cut(self):
+        # A southern-summer season peaking on 1 January: start in the previous December-ish,
+        # end in February; the length runs across the turn of the year.
+        p = 12
+        months = np.arange(p)
+        x = np.cos(2 * np.pi * (months + 0.5) / p)     # peak between December and January
+        out = season_probe("cycle 0.2 0.5 %d\n%s\n" % (p, series_text(np.tile(x, 3))))
+        self.assertEqual(out["seasons"], 1)
+        start, end, length, _ = out["season1"]
+        self.assertGreater(start, end)                   # starts late in the year, ends early
+        self.assertAlmostEqual(length, 0.5 * YEAR, delta=YEAR / p)  # above half-amplitude half the year
+
+
+class Harmonics(unittest.TestCase):
+    def test_amplitude_and_peak_day_equal_numpy_rfft(self):
+        rng = np.random.default_rng(2)
+        for n in (12, 23, 46):
+            for _ in range(30):
+                x = rng.standard_normal(n)
+                ours = season_probe("harmonics %d\n%s\n" % (n, series_text(x)))
+                spectrum = np.fft.rfft(x)
+                for k, key in ((1, "annual"), (2, "semiannual")):
+                    amplitude = 2 * np.abs(spectrum[k]) / n
+                    turn = (-np.angle(spectrum[k]) / (2 * np.pi * k)) % 1.0
+                    peak_doy = 1 + (turn * n / k + 0.5) * YEAR / n
+                    self.assertLess(abs(ours[key + "_amplitude"] - amplitude), 1e-9 * max(1, amplitude))
+                    self.assertLess(abs(ours[key + "_peak_doy"] - peak_doy), 1e-6 * peak_doy)
+
+    def test_a_pure_cosine_peaks_where_it_should(self):
+        n = 12
+        x = 3.0 * np.cos(2 * np.pi * (np.arange(n) - 5) / n)   # maximum in period 5 (June)
+        ours = season_probe("harmonics %d\n%s\n" % (n, series_text(x)))
+        self.assertAlmostEqual(ours["annual_amplitude"], 3.0, places=9)
+        self.assertAlmostEqual(ours["annual_peak_doy"], 1 + 5.5 * YEAR / 12, places=6)
+
+
+def modis_dates(years, start=2010):
+    return [dt.date(y, 1, 1) + dt.timedelta(days=d) for y in range(start, start + years)
+            for d in range(0, 365, 16)]
+
+
+def month_means(dates, values):
+    """Numpy reference: day-weighted mean of the composites overlapping each month.
+    values: (dates, ...) -> dict (year, month) -> array."""
+    days = np.array([(d - dt.date(1970, 1, 1)).days for d in dates])
+    step = int(np.median(np.diff(days)))
+    first = days
+    last = np.append(np.minimum(days[:-1] + step, days[1:]), days[-1] + step)
+    out = {}
+    for year in range(dates[0].year, dates[-1].year + 1):
+        for month in range(1, 13):
+            m0 = (dt.date(year, month, 1) - dt.date(1970, 1, 1)).days
+            m1 = ((dt.date(year + (month == 12), month % 12 + 1, 1)) - dt.date(1970, 1, 1)).days
+            overlap = np.clip(np.minimum(last, m1) - np.maximum(first, m0), 0, None).astype(float)
+            w = overlap[:, None, None] * np.isfinite(values)
+            v = np.where(np.isfinite(values), values, 0.0)
+            with np.errstate(invalid="ignore"):
+                out[(year, month)] = (w * v).sum(0) / w.sum(0)
+    return out
+
+
+class SeasonsCommand(kt.TempDirTestCase):
+    def read(self, name):
+        g = kt.gdal()
+        ds = g.Open(os.path.join(self.out, name))
+        data = ds.ReadAsArray().astype(np.float64)
+        return data if data.ndim == 3 else data[None]
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        rng = np.random.default_rng(4)
+        cls.dates = modis_dates(3)
+        h, w = 20, 30
+        t = np.array([(d - cls.dates[0]).days for d in cls.dates], float)[:, None, None]
+        phase = rng.uniform(0, 1, (h, w))
+        values = (0.4 + 0.3 * np.cos(2 * np.pi * (t / YEAR - phase))
+                  + 0.02 * rng.standard_normal((len(cls.dates), h, w)))
+        values[5, 3, 4] = np.nan                       # one unfilled value
+        cls.values = values
+        folder = os.path.join(cls.tmp, "filled")
+        os.makedirs(folder)
+        for d, v in zip(cls.dates, values):
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % d.isoformat()), v.astype(np.float32),
+                            geotransform=(500000, 250, 0, 9000000, 0, -250), epsg=32736, nodata=float("nan"))
+        cls.out = os.path.join(cls.tmp, "seasons")
+        done = kt.run_kalends(["-q", "seasons", folder, "--out", cls.out])
+        assert done.returncode == 0, done.stderr
+        cls.reference = month_means(cls.dates, values.astype(np.float32).astype(np.float64))
+
+    def test_year_specific_synoptic_and_anomalies_equal_numpy(self):
+        years = [2010, 2011, 2012]
+        ref = np.array([[self.reference[(y, m)] for m in range(1, 13)] for y in years])  # (3, 12, h, w)
+        for i, y in enumerate(years):
+            np.testing.assert_allclose(self.read("ndvi_year_%d.tif" % y), ref[i], rtol=1e-5, atol=1e-6)
+        mean = np.nanmean(ref, axis=0)
+        sd = np.nanstd(ref, axis=0, ddof=1)
+        count = np.isfinite(ref).sum(0)
+        np.testing.assert_allclose(self.read("ndvi_synoptic_mean.tif"), mean, rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(self.read("ndvi_synoptic_sd.tif"), sd, rtol=1e-4, atol=1e-6)
+        np.testing.assert_array_equal(self.read("ndvi_synoptic_years.tif"), count)
+        for i, y in enumerate(years):
+            np.testing.assert_allclose(self.read("ndvi_anomaly_%d.tif" % y), ref[i] - mean, atol=1e-6)
+            np.testing.assert_allclose(self.read("ndvi_anomaly_standardised_%d.tif" % y),
+                                       (ref[i] - mean) / sd, rtol=1e-4, atol=1e-5)
+        res = np.nansum((ref - mean) ** 2, axis=(0, 1))
+        tot = np.nansum((ref - np.nanmean(ref, axis=(0, 1))) ** 2, axis=(0, 1))
+        miss = self.read("ndvi_synoptic_miss.tif")
+        np.testing.assert_allclose(miss[0], np.sqrt(res / np.isfinite(ref).sum((0, 1))), rtol=1e-4)
+        np.testing.assert_allclose(miss[1], 1 - res / tot, rtol=1e-4, atol=1e-5)
+
+    def test_cycle_descriptors_equal_numpy(self):
+        g = kt.gdal()
+        ds = g.Open(os.path.join(self.out, "ndvi_cycle_2011.tif"))
+        names = [ds.GetRasterBand(b).GetDescription() for b in range(1, ds.RasterCount + 1)]
+        data = ds.ReadAsArray().astype(np.float64)
+        year = np.array([self.reference[(2011, m)] for m in range(1, 13)])
+        np.testing.assert_allclose(data[names.index("mean")], year.mean(0), rtol=1e-5)
+        np.testing.assert_allclose(data[names.index("amplitude")], year.max(0) - year.min(0), rtol=1e-4, atol=1e-6)
+        spectrum = np.fft.rfft(year, axis=0)
+        np.testing.assert_allclose(data[names.index("annual_amplitude")], 2 * np.abs(spectrum[1]) / 12, rtol=1e-4)
+        # One cosine a year: one season per pixel.
+        self.assertGreater(np.mean(data[names.index("seasons")] == 1), 0.95)
+
+    def test_outputs_keep_the_grid(self):
+        g = kt.gdal()
+        ds = g.Open(os.path.join(self.out, "ndvi_synoptic_mean.tif"))
+        self.assertEqual(ds.GetGeoTransform(), (500000, 250, 0, 9000000, 0, -250))
+        self.assertEqual([ds.GetRasterBand(b).GetDescription() for b in (1, 12)], ["month 01", "month 12"])
+
+
+class RealData(kt.TempDirTestCase):
+    def test_netcdf_amplitude_and_month_of_maximum(self):
+        path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        g = kt.gdal()
+        source = 'NETCDF:"%s":tas' % path
+        ds = g.Open(source)
+        tas = ds.ReadAsArray().astype(np.float64)
+        tas[tas > 1e19] = np.nan                       # _FillValue 1e20 (ocean)
+        out = os.path.join(self.tmp, "tas")
+        # The file's time values fall on the last day of each month.
+        done = kt.run_kalends(["-q", "seasons", source, "--out", out, "--date-marks", "end"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        cycle = g.Open(os.path.join(out, "tas_cycle_1999.tif"))
+        names = [cycle.GetRasterBand(b).GetDescription() for b in range(1, cycle.RasterCount + 1)]
+        data = cycle.ReadAsArray().astype(np.float64)
+        land = np.all(np.isfinite(tas), axis=0)
+        self.assertGreater(land.sum(), 1000)
+        np.testing.assert_allclose(data[names.index("amplitude")][land],
+                                   (tas.max(0) - tas.min(0))[land], rtol=1e-5)
+        peak_doy = data[names.index("main_peak_doy")][land]
+        month_of_max = np.floor((peak_doy - 1) / (YEAR / 12)).astype(int)
+        np.testing.assert_array_equal(month_of_max, np.argmax(tas[:, land], axis=0))
+        self.assertTrue(np.all(np.isnan(data[names.index("amplitude")][~land])))
+
+    def test_ndvi_and_evi_from_landsat_equal_numpy(self):
+        path = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        g = kt.gdal()
+        bands = g.Open(path).ReadAsArray().astype(np.float64)   # DN of bands 1-5, 7
+        blue, red, nir = bands[0], bands[2], bands[3]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ndvi = (nir - red) / (nir + red)
+            evi = 2.5 * (nir - red) / (nir + 6 * red - 7.5 * blue + 1)
+        for kind, ref in (("ndvi", ndvi), ("evi", evi)):
+            ref = np.where(np.isfinite(ref) & (ref >= -1) & (ref <= 1), ref, np.nan)
+            out = os.path.join(self.tmp, kind)
+            args = ["-q", "index", "--red", path, "--red-band", "3", "--nir", path, "--nir-band", "4",
+                    "--kind", kind, "--date", "2000-01-01", "--out", out]
+            if kind == "evi":
+                args += ["--blue", path, "--blue-band", "1"]
+            done = kt.run_kalends(args)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            ds = g.Open(os.path.join(out, "%s_2000-01-01.tif" % kind))
+            got = ds.ReadAsArray().astype(np.float64)
+            np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
+            np.testing.assert_allclose(got[np.isfinite(ref)], ref[np.isfinite(ref)], rtol=1e-6, atol=1e-7)
+            self.assertGreater(np.isfinite(got).mean(), 0.5)
+            self.assertEqual(ds.GetProjectionRef(), g.Open(path).GetProjectionRef())
+
+    def test_index_refuses_unpaired_dates(self):
+        folder = os.path.join(self.tmp, "bands")
+        os.makedirs(folder)
+        for band, dates in (("red", ["2020-01-01", "2020-01-17"]), ("nir", ["2020-01-01"])):
+            for d in dates:
+                kt.write_raster(os.path.join(folder, "%s_%s.tif" % (band, d)), np.ones((4, 4), np.float32))
+        out = os.path.join(self.tmp, "index-out")
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("red_2020-01-17.tif", done.stderr)
+        self.assertIn("no near-infrared layer", done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1)
+        self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
