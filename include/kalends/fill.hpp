@@ -44,6 +44,7 @@ struct FillSummary {
   std::int64_t pixel_dates = 0, observed = 0, missing = 0, rejected = 0, filled = 0,
                unfilled = 0;
   std::int64_t pixels_never_observed = 0;
+  std::int64_t pixels_without_value = 0;  // flag 3 on every date (nothing within reach)
   double seconds = 0, kernel_seconds = 0;
   std::int64_t block_width = 0, block_height = 0;
   std::string out_dir;

@@ -83,6 +83,14 @@ struct MethodOptions {
   bool trend = false;
   double reject_below = 2.0;  // residual sd units
   int min_observations_per_coefficient = 2;
+  // spacetime (smoothing of the DCT-PLS fits: anomaly in space / time, climatology in space /
+  // across season bins; see src/fill/spacetime.hpp)
+  double spacetime_space_smoothing = 3.0;
+  double spacetime_time_smoothing = 0.3;
+  double spacetime_climate_smoothing = 3.0;
+  double spacetime_season_smoothing = 1.0;
+  int spacetime_halo = 32;              // pixels of context on each side of a block
+  double spacetime_tolerance = 1e-4;    // relative residual of the conjugate-gradient solves
   // temporal methods
   double max_gap_days = 0;             // longer gaps stay unfilled; 0 = no limit
   double max_extrapolation_days = 32;  // past the first/last observation; < 0 = no limit

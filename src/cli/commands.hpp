@@ -21,6 +21,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global);
 Action add_index_command(CLI::App& app, GlobalOptions& global);
 Action add_seasons_command(CLI::App& app, GlobalOptions& global);
 Action add_compare_command(CLI::App& app, GlobalOptions& global);
+/// `kalends validate`.
+Action add_validate_command(CLI::App& app, GlobalOptions& global);
 
 /// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.
 std::int64_t parse_memory(const std::string& text);

@@ -85,7 +85,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                   "Quoted glob of single-date rasters ('ndvi/*.tif'), or one multi-band raster")
       ->required();
   sub->add_option("--out", r.out_dir, "Output folder")->required();
-  sub->add_option("--method", r.method.method, "whittaker or harmonic")->capture_default_str();
+  sub->add_option("--method", r.method.method, "whittaker, harmonic or spacetime")->capture_default_str();
   sub->add_option("--lambda", o->lambda, "Whittaker smoothing: a number, or auto (GCV per pixel)")
       ->capture_default_str();
   sub->add_option("--lambda-range", o->lambda_range, "MIN,MAX searched by --lambda auto (default 0.01,1e6)");
@@ -101,6 +101,24 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--trend", r.method.trend, "Harmonic method: add a linear trend");
   sub->add_option("--reject-below", r.method.reject_below,
                   "Harmonic method: reject values this many residual sd below the curve")
+      ->capture_default_str();
+  sub->add_option("--space-smoothing", r.method.spacetime_space_smoothing,
+                  "Spacetime method: smoothing of the anomaly across pixels")
+      ->capture_default_str();
+  sub->add_option("--time-smoothing", r.method.spacetime_time_smoothing,
+                  "Spacetime method: smoothing of the anomaly along time")
+      ->capture_default_str();
+  sub->add_option("--climate-smoothing", r.method.spacetime_climate_smoothing,
+                  "Spacetime method: smoothing of the seasonal climatology across pixels")
+      ->capture_default_str();
+  sub->add_option("--season-smoothing", r.method.spacetime_season_smoothing,
+                  "Spacetime method: smoothing of the climatology across the year")
+      ->capture_default_str();
+  sub->add_option("--halo", r.method.spacetime_halo,
+                  "Spacetime method: pixels of context around each block; farther pixels are not used")
+      ->capture_default_str();
+  sub->add_option("--tolerance", r.method.spacetime_tolerance,
+                  "Spacetime method: relative residual at which the solver stops")
       ->capture_default_str();
   sub->add_option("--max-gap", r.method.max_gap_days,
                   "Leave gaps between observations longer than this many days unfilled; 0 = no limit")
@@ -155,9 +173,13 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),
                  percent(s.rejected, pd));
-      if (s.pixels_never_observed > 0)
+      if (s.pixels_never_observed > 0 && s.pixels_never_observed == s.pixels_without_value)
         fmt::print("  {} pixels have no observation on any date (flag 3 throughout)\n",
                    s.pixels_never_observed);
+      else if (s.pixels_never_observed > 0)
+        fmt::print("  {} pixels have no observation on any date; {} pixels could not be filled on "
+                   "any date, not even from neighbours (flag 3 throughout)\n",
+                   s.pixels_never_observed, s.pixels_without_value);
       if (s.calendar_outputs > 0)
         fmt::print("  {} regular-calendar layers in {}/calendar-{}\n", s.calendar_outputs, s.out_dir,
                    r.every->label());

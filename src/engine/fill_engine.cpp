@@ -16,6 +16,7 @@
 #include "engine/calendar.hpp"
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
+#include "io/json_text.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
@@ -38,7 +39,7 @@ constexpr int tile_size = 256;
 
 struct Counters {
   std::int64_t pixel_dates = 0, observed = 0, masked_by_qa = 0, rejected = 0, filled = 0,
-               unfilled = 0, never_observed = 0;
+               unfilled = 0, never_observed = 0, never_filled = 0;
   double kernel_seconds = 0;
 };
 
@@ -47,7 +48,7 @@ struct Worker {
   std::vector<float> plane;
   std::vector<std::uint32_t> qa_plane;
   std::vector<float> values, weights;
-  std::vector<int> observations;
+  std::vector<int> observations, valued;
   BlockOutput out;
   std::vector<float> value_plane, sd_plane, flag_plane, tile;
   Counters counters;
@@ -59,18 +60,6 @@ std::string join_parameters(const MethodParameters& p) {
   return text;
 }
 
-std::string json_escape(const std::string& s) {
-  std::string out;
-  for (char c : s) {
-    if (c == '"' || c == '\\') out += '\\';
-    if (static_cast<unsigned char>(c) < 0x20) {
-      out += fmt::format("\\u{:04x}", int(c));
-      continue;
-    }
-    out += c;
-  }
-  return out;
-}
 
 }  // namespace
 
@@ -232,6 +221,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     w.sd_plane.resize(core_pixels);
     w.flag_plane.resize(core_pixels);
     w.observations.assign(core_pixels, 0);
+    w.valued.assign(core_pixels, 0);
     // Stagger the order of files so workers seldom wait on the same file's lock.
     const std::size_t total = outputs.size();
     for (std::size_t k = 0; k < std::size_t(layers); ++k) {
@@ -262,6 +252,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         w.sd_plane[cp] = w.out.sd[at];
         w.flag_plane[cp] = float(flag);
         w.observations[cp] += observed;
+        w.valued[cp] += flag != Flag::unfilled;
         Counters& c = w.counters;
         c.observed += observed;
         c.rejected += flag == Flag::rejected;
@@ -272,6 +263,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     }
     w.counters.pixel_dates += core_pixels * layers;
     for (int count : w.observations) w.counters.never_observed += count == 0;
+    for (int count : w.valued) w.counters.never_filled += count == 0;
     if (keep) {
       // Counted apart so the summary can say how much the QA rule removed.
       for (std::size_t i = 0; i < std::size_t(layers); ++i) {
@@ -341,6 +333,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     summary.filled += w.counters.filled;
     summary.unfilled += w.counters.unfilled;
     summary.pixels_never_observed += w.counters.never_observed;
+    summary.pixels_without_value += w.counters.never_filled;
     summary.kernel_seconds += w.counters.kernel_seconds;
     masked_by_qa += w.counters.masked_by_qa;
   }
@@ -351,17 +344,18 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
 
   std::string json = "{\n";
   json += fmt::format("  \"method\": \"{}\",\n  \"parameters\": \"{}\",\n", method->name(),
-                      json_escape(parameters));
-  json += fmt::format("  \"input\": \"{}\",\n", json_escape(request.input));
+                      detail::json_escape(parameters));
+  json += fmt::format("  \"input\": \"{}\",\n", detail::json_escape(request.input));
   json += fmt::format(
       "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"pixel_dates\": {},\n"
       "  \"observed\": {},\n  \"missing\": {},\n  \"masked_by_qa\": {},\n  \"rejected\": {},\n"
       "  \"filled\": {},\n  \"unfilled\": {},\n  \"pixels_never_observed\": {},\n"
+      "  \"pixels_without_value\": {},\n"
       "  \"time_step_days\": {:g},\n  \"calendar_outputs\": {},\n  \"blocks\": {},\n"
       "  \"block_size\": [{}, {}],\n  \"threads\": {},\n  \"seconds\": {:.3f}\n}}\n",
       summary.dates, summary.width, summary.height, summary.pixel_dates, summary.observed,
       summary.missing, masked_by_qa, summary.rejected, summary.filled, summary.unfilled,
-      summary.pixels_never_observed, grid.step_days, summary.calendar_outputs, summary.blocks,
+      summary.pixels_never_observed, summary.pixels_without_value, grid.step_days, summary.calendar_outputs, summary.blocks,
       summary.block_width, summary.block_height, threads, summary.seconds);
   detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
   return summary;

@@ -2,6 +2,7 @@
 #include <algorithm>
 
 #include "fill/harmonic.hpp"
+#include "fill/spacetime.hpp"
 #include "fill/whittaker.hpp"
 #include "kalends/error.hpp"
 
@@ -17,6 +18,7 @@ struct Entry {
 constexpr Entry registry[] = {
     {"whittaker", &make_whittaker},
     {"harmonic", &make_harmonic},
+    {"spacetime", &make_spacetime},
 };
 
 }  // namespace

@@ -15,6 +15,7 @@
 #include <regex>
 
 #include "io/gdal_session.hpp"
+#include "io/json_text.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/stack.hpp"
@@ -44,7 +45,6 @@ double quantile(std::vector<float>& sorted, double q) {
   return sorted[lo] + (pos - double(lo)) * (sorted[hi] - sorted[lo]);
 }
 
-std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{:.6g}", v) : "null"; }
 
 struct Distribution {
   std::vector<double> quantiles;  // 5, 25, 50, 75, 95 %
@@ -67,8 +67,8 @@ Distribution describe(std::vector<float> values) {
 
 std::string distribution_json(const Distribution& d) {
   return fmt::format("{{\"count\": {}, \"mean\": {}, \"p05\": {}, \"p25\": {}, \"p50\": {}, \"p75\": {}, \"p95\": {}}}",
-                     d.count, json_number(d.mean), json_number(d.quantiles[0]), json_number(d.quantiles[1]),
-                     json_number(d.quantiles[2]), json_number(d.quantiles[3]), json_number(d.quantiles[4]));
+                     d.count, detail::json_number(d.mean), detail::json_number(d.quantiles[0]), detail::json_number(d.quantiles[1]),
+                     detail::json_number(d.quantiles[2]), detail::json_number(d.quantiles[3]), detail::json_number(d.quantiles[4]));
 }
 
 struct Anomaly {
@@ -218,7 +218,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   json += fmt::format("  \"layers\": \"{}\",\n  \"width\": {},\n  \"height\": {},\n", name, width, height);
   json += "  \"synoptic_rmse\": " + distribution_json(r) + ",\n";
   json += "  \"explained_share\": " + distribution_json(e) + ",\n";
-  json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [", json_number(top_edge / bins));
+  json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [", detail::json_number(top_edge / bins));
   for (int b = 0; b < bins; ++b) json += (b ? ", " : "") + std::to_string(histogram[b]);
   json += "]},\n  \"zones\": [";
   bool first = true;
@@ -233,8 +233,8 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const auto& [year, s] : per_year) {
     const double mean = s.count ? s.sum / double(s.count) : NAN;
     json += fmt::format("{}\n    {{\"year\": {}, \"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
-                        first ? "" : ",", year, json_number(mean), json_number(s.count ? double(s.below) / s.count : NAN),
-                        json_number(s.count ? double(s.above) / s.count : NAN));
+                        first ? "" : ",", year, detail::json_number(mean), detail::json_number(s.count ? double(s.below) / s.count : NAN),
+                        detail::json_number(s.count ? double(s.above) / s.count : NAN));
     first = false;
     const double below = s.count ? double(s.below) / s.count : 0, above = s.count ? double(s.above) / s.count : 0;
     if (below > most_below) most_below = below, summary.year_most_below = std::to_string(year);
@@ -244,7 +244,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (std::size_t i = 0; i < top.size(); ++i)
     json += fmt::format("{}\n    {{\"x\": {}, \"y\": {}, \"year\": {}, \"period\": \"{}\", \"standardised\": {}, \"anomaly\": {}}}",
                         i ? "," : "", top[i].x, top[i].y, top[i].year, top[i].period,
-                        json_number(top[i].standardised), json_number(top[i].raw));
+                        detail::json_number(top[i].standardised), detail::json_number(top[i].raw));
   json += fmt::format("],\n  \"year_most_below\": {},\n  \"year_most_above\": {},\n",
                       summary.year_most_below.empty() ? "null" : summary.year_most_below,
                       summary.year_most_above.empty() ? "null" : summary.year_most_above);

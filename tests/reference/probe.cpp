@@ -3,11 +3,15 @@
 //
 //   whittaker LAMBDA|auto ORDER ROBUST ENVELOPE N   then N values of y (nan = missing), N of w
 //   harmonic K TREND REJECT_BELOW N                 then N days, N values of y, N of w
+//   dct INVERSE N0 N1 N2                            then N0*N1*N2 values (row-major); ortho DCT-II
+//                                                   (INVERSE 0) or DCT-III (INVERSE 1)
+//   pls S_SPACE S_TIME N0 N1 N2                     then the values y and the weights w
 #include <cmath>
 #include <iostream>
 #include <string>
 #include <vector>
 
+#include "fill/dct_pls.hpp"
 #include "fill/harmonic.hpp"
 #include "fill/whittaker.hpp"
 
@@ -85,6 +89,40 @@ int main() {
     print_array("rejected", rejected);
     print_array("coefficients", fit.coefficients);
     std::cout << "\"sigma\": " << fit.sigma << "}\n";
+  } else if (kind == "dct") {
+    int inverse = 0;
+    detail::Shape3 shape;
+    std::cin >> inverse >> shape[0] >> shape[1] >> shape[2];
+    const int n = shape[0] * shape[1] * shape[2];
+    const auto x = read_floats(n);
+    detail::DctPlanCache plans;
+    detail::DctBuffer data(n);
+    for (int i = 0; i < n; ++i) data[i] = x[i];
+    if (inverse)
+      plans.inverse_ortho(shape, data.data());
+    else
+      plans.forward_ortho(shape, data.data());
+    std::cout << "{";
+    print_array("y", std::vector<double>(data.data(), data.data() + n), true);
+    std::cout << "}\n";
+  } else if (kind == "pls") {
+    detail::PlsSettings settings;
+    detail::Shape3 shape;
+    std::cin >> settings.s_space >> settings.s_time >> shape[0] >> shape[1] >> shape[2];
+    settings.tolerance = 1e-12;
+    settings.max_iterations = 5000;
+    const int n = shape[0] * shape[1] * shape[2];
+    const auto yf = read_floats(n), wf = read_floats(n);
+    std::vector<double> y(yf.begin(), yf.end()), w(wf.begin(), wf.end()), z(n, 0.0);
+    for (int i = 0; i < n; ++i)
+      if (!(w[i] > 0)) y[i] = 0;
+    detail::DctPlanCache plans;
+    detail::PlsWorkspace ws;
+    const auto result = detail::solve_pls(plans, shape, y, w, settings, z, ws);
+    std::cout << "{";
+    print_array("z", z);
+    std::cout << "\"iterations\": " << result.iterations << ", \"converged\": "
+              << (result.converged ? "true" : "false") << "}\n";
   } else {
     std::cerr << "probe: unknown problem '" << kind << "'\n";
     return 2;

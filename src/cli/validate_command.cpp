@@ -1,0 +1,58 @@
+// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE]
+#include <fmt/format.h>
+
+#include "cli/commands.hpp"
+#include "kalends/error.hpp"
+#include "validate/validate.hpp"
+
+namespace kalends::cli {
+
+Action add_validate_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand(
+      "validate", "Withhold observed values along real cloud patterns and score each method");
+  struct Options {
+    ValidateRequest request;
+    std::string methods = "whittaker,harmonic,spacetime", memory = "1G";
+  };
+  auto o = std::make_shared<Options>();
+  ValidateRequest& r = o->request;
+  sub->add_option("input", r.input, "Quoted glob of single-date rasters, or one multi-band raster")
+      ->required();
+  sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md)")->required();
+  sub->add_option("--methods", o->methods, "Comma-separated methods to score")->capture_default_str();
+  sub->add_option("--seed", r.seed, "Seed of the mask transplant (same seed, same cells)")
+      ->capture_default_str();
+  sub->add_option("--withhold", r.withhold, "Share of the observed values to withhold")
+      ->capture_default_str();
+  sub->add_option("--radius", r.neighbourhood_radius,
+                  "Neighbourhood radius (pixels) for the breakdown by missing neighbours")
+      ->capture_default_str();
+  sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
+  return [o, &global] {
+    ValidateRequest& r = o->request;
+    r.methods.clear();
+    std::string rest = o->methods;
+    while (!rest.empty()) {
+      const auto comma = rest.find(',');
+      const std::string name = rest.substr(0, comma);
+      if (name.empty()) throw UsageError("--methods '" + o->methods + "'", "empty method name");
+      r.methods.push_back(name);
+      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+    }
+    r.memory_bytes = parse_memory(o->memory);
+    const ValidateReport report = run_validate(r);
+    if (!global.quiet) {
+      fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
+                 report.withheld, report.observed, report.transplanted_masks);
+      for (const Score& s : report.scores)
+        fmt::print("  {:<46} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
+                   s.name + (s.baseline ? " (baseline)" : ""), s.rmse, s.mae, s.bias, s.r2,
+                   100 * s.coverage);
+      fmt::print("  -> {}/report.json, {}/report.md\n", r.out_dir, r.out_dir);
+    }
+  };
+}
+
+}  // namespace kalends::cli

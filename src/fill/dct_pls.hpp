@@ -1,0 +1,142 @@
+// Penalised least squares on a regular 1-, 2- or 3-D grid, solved in the discrete cosine
+// transform domain.
+//
+// [G10] Garcia, D. (2010), Robust smoothing of gridded data in one and higher dimensions with
+//       missing values, Comput. Stat. Data Anal. 54:1167-1178.
+// [W12] Wang, G., Garcia, D., Liu, Y., de Jeu, R. & Dolman, A.J. (2012), A three-dimensional
+//       gap filling method for large geophysical datasets: application to global satellite
+//       soil moisture observations, Environ. Model. Softw. 30:139-142 (pages from memory).
+// [S99] Strang, G. (1999), The discrete cosine transform, SIAM Review 41:135-147 (the DCT-II
+//       diagonalises the second-difference matrix with reflecting ends).
+// [FJ05] Frigo, M. & Johnson, S.G. (2005), The design and implementation of FFTW3, Proc. IEEE
+//       93:216-231 (REDFT10 = DCT-II, REDFT01 = DCT-III, both unnormalised).
+// [HS52] Hestenes, M.R. & Stiefel, E. (1952), Methods of conjugate gradients for solving linear
+//       systems, J. Res. Natl. Bur. Stand. 49:409-436.
+//
+// The problem, on an array of shape n0 x n1 x n2 (axes 0 and 1 are space, axis 2 is time or
+// season; a smaller rank uses shape 1 on the leading axes):
+//
+//   minimise  sum_i w_i (y_i - z_i)^2 + s_space ||(L_0 + L_1) z||^2 + s_time ||L_2 z||^2
+//
+// with L_k the second-difference matrix along axis k with reflecting ends (rows [-1 1 ...],
+// [1 -2 1], ..., [... 1 -1]). [G10] uses one smoothing s for the sum of all axes; we give space
+// and time their own, since they are different physical quantities. Every L_k is diagonalised
+// by the DCT-II [S99] with eigenvalues lambda_k(j) = -2 + 2 cos(pi j / n_k), j = 0..n_k-1 (the
+// Lambda of [G10], there summed over all dimensions), so the penalty matrix
+//   P = s_space (L_0 + L_1)^2 + s_time L_2^2
+// is diagonal in the DCT domain: P = C^T diag(s_space (lambda_0 + lambda_1)^2 + s_time lambda_2^2) C.
+// With all weights 1 the solution is z = C^T Gamma C y, Gamma = 1 / (1 + p) ([G10]); with
+// missing values (w_i = 0) and weights [G10] iterates z <- C^T Gamma C (W (y - z) + z). We solve
+// the same normal equations (W + P) z = W y by preconditioned conjugate gradients [HS52] with the preconditioner (omega I + P)^-1, omega = max w, which
+// is [G10]'s iteration operator; it needs far fewer iterations than the fixed-point scheme.
+#pragma once
+
+#include <array>
+#include <cstddef>
+#include <map>
+#include <memory>
+#include <mutex>
+#include <span>
+#include <vector>
+
+namespace kalends::detail {
+
+using Shape3 = std::array<int, 3>;
+
+/// FFTW plans for the DCT-II and DCT-III of each array shape, made once and shared. The FFTW
+/// planner is not thread-safe, so plans are made and destroyed under one mutex; executing a
+/// plan on other (equally aligned) arrays is thread-safe (fftw_execute_r2r). One instance per
+/// method object; arrays passed to it must come from `DctBuffer` (FFTW's alignment).
+class DctPlanCache {
+ public:
+  DctPlanCache();
+  ~DctPlanCache();
+  DctPlanCache(const DctPlanCache&) = delete;
+  DctPlanCache& operator=(const DctPlanCache&) = delete;
+
+  /// Unnormalised in-place DCT-II (forward) or DCT-III (inverse) of a row-major array.
+  /// inverse(forward(x)) = 8 n0 n1 n2 x (a factor 2 n_k per axis; [FJ05]).
+  void forward(const Shape3& shape, double* data) const;
+  void inverse(const Shape3& shape, double* data) const;
+  /// Orthonormal versions (scipy.fft.dctn / idctn with norm='ortho').
+  void forward_ortho(const Shape3& shape, double* data) const;
+  void inverse_ortho(const Shape3& shape, double* data) const;
+  std::size_t plans() const;
+
+ private:
+  const void* plan(const Shape3& shape, bool inverse) const;
+  mutable std::mutex mutex_;
+  mutable std::map<std::pair<Shape3, bool>, void*> plans_;
+};
+
+/// A double array with FFTW's alignment.
+class DctBuffer {
+ public:
+  DctBuffer() = default;
+  explicit DctBuffer(std::size_t n) { resize(n); }
+  ~DctBuffer();
+  DctBuffer(DctBuffer&& other) noexcept;
+  DctBuffer& operator=(DctBuffer&& other) noexcept;
+  DctBuffer(const DctBuffer&) = delete;
+  DctBuffer& operator=(const DctBuffer&) = delete;
+  void resize(std::size_t n);  // contents undefined after a growth
+  double* data() { return data_; }
+  const double* data() const { return data_; }
+  std::size_t size() const { return size_; }
+  double& operator[](std::size_t i) { return data_[i]; }
+  double operator[](std::size_t i) const { return data_[i]; }
+  std::span<double> span() { return {data_, size_}; }
+
+ private:
+  double* data_ = nullptr;
+  std::size_t size_ = 0, capacity_ = 0;
+};
+
+struct PlsSettings {
+  double s_space = 1.0;  // smoothing across axes 0 and 1
+  double s_time = 1.0;   // smoothing along axis 2
+  double tolerance = 1e-5;  // relative residual ||b - A z|| / ||b|| of the normal equations
+  int max_iterations = 500;
+  // Pad the time axis (axis 2) with zero-weight cells to a length whose only prime factors are
+  // 2, 3 and 5, where FFTW is fastest. The padded problem has the same data and a free far end,
+  // so its solution differs from the unpadded one only near the end of the series. Space is not
+  // padded: blocks of one stack have different widths, and padding would give each its own
+  // boundary condition at the raster's edge (results would depend on the block size).
+  bool pad = false;
+};
+
+struct PlsResult {
+  int iterations = 0;
+  double relative_residual = 0;
+  bool converged = false;
+};
+
+/// Scratch for one solve; reused across blocks by one thread.
+struct PlsWorkspace {
+  DctBuffer residual, direction, preconditioned, product, eigen;
+  Shape3 eigen_shape{0, 0, 0};
+  double eigen_s_space = -1, eigen_s_time = -1;
+};
+
+/// The penalty's eigenvalues p_j in the DCT domain, row-major like the data.
+void penalty_eigenvalues(const Shape3& shape, double s_space, double s_time, std::span<double> out);
+
+/// Solves (W + P) z = W y for z (size n0 n1 n2). `z` holds the start value on entry (zeros are
+/// fine). Where w = 0, y is not read. At least one weight must be positive unless P is
+/// positive definite, which it never is (constants are free), so an all-zero w gives z = start.
+PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
+                    std::span<const double> w, const PlsSettings& settings, std::span<double> z,
+                    PlsWorkspace& ws);
+
+/// z = C^T (1 / (omega + p)) C x: the preconditioner, also a quick "support" smoother.
+void apply_inverse_shifted(const DctPlanCache& plans, const Shape3& shape,
+                           std::span<const double> eigen, double omega, std::span<double> x);
+
+/// The same filter with the penalty of `settings` (padded as the solve would be), in place.
+void filter_shifted(const DctPlanCache& plans, const Shape3& shape, const PlsSettings& settings,
+                    double omega, std::span<double> x);
+
+/// The smallest length >= n whose only prime factors are 2, 3 and 5.
+int smooth_length(int n);
+
+}  // namespace kalends::detail

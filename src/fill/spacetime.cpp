@@ -1,0 +1,318 @@
+#include "fill/spacetime.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <fmt/format.h>
+#include <vector>
+
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace {
+
+constexpr double min_bin_days = 8.0;
+constexpr int backfitting_rounds = 2;
+// Bisquare constant for 95 % efficiency under Gaussian noise [HM07].
+constexpr double bisquare_c = 4.685;
+// Neighbouring-bin kernel for a pixel's own seasonal deviation (common practice).
+constexpr double bin_kernel[] = {0.25, 0.5, 1.0, 0.5, 0.25};
+constexpr int bin_kernel_half = 2;
+
+std::string number(double v) { return fmt::format("{:g}", v); }
+
+// Median of the values (reordered).
+double median(std::vector<double>& v) {
+  if (v.empty()) return 0;
+  const auto mid = v.begin() + std::ptrdiff_t(v.size() / 2);
+  std::nth_element(v.begin(), mid, v.end());
+  return *mid;
+}
+
+}  // namespace
+
+SpacetimeMethod::SpacetimeMethod(const MethodOptions& options) : options_(options) {
+  if (!(options.spacetime_space_smoothing > 0))
+    throw UsageError("--space-smoothing", "must be positive");
+  if (!(options.spacetime_time_smoothing > 0))
+    throw UsageError("--time-smoothing", "must be positive");
+  if (!(options.spacetime_climate_smoothing > 0))
+    throw UsageError("--climate-smoothing", "must be positive");
+  if (options.spacetime_halo < 0 || options.spacetime_halo > 1024)
+    throw UsageError("--halo", "must be 0..1024 pixels");
+  if (!(options.spacetime_tolerance > 0 && options.spacetime_tolerance < 1))
+    throw UsageError("--tolerance", "must be between 0 and 1");
+  if (options.robust && options.iterations < 1) throw UsageError("--iterations", "must be >= 1");
+}
+
+MethodParameters SpacetimeMethod::parameters() const {
+  return {{"space_smoothing", number(options_.spacetime_space_smoothing)},
+          {"time_smoothing", number(options_.spacetime_time_smoothing)},
+          {"climate_smoothing", number(options_.spacetime_climate_smoothing)},
+          {"season_smoothing", number(options_.spacetime_season_smoothing)},
+          {"halo", std::to_string(options_.spacetime_halo)},
+          {"tolerance", number(options_.spacetime_tolerance)},
+          {"robust", options_.robust ? "yes" : "no"}};
+}
+
+int SpacetimeMethod::season_bins(const TimeGrid& grid, std::vector<int>& bin_of_slot) {
+  const double width = std::max(grid.step_days, min_bin_days);
+  const int bins = std::max(1, int(std::ceil(366.0 / width)));
+  bin_of_slot.resize(grid.size);
+  for (int s = 0; s < grid.size; ++s) {
+    const int doy = day_of_year(grid.slot_time(s).date());
+    bin_of_slot[s] = std::min(bins - 1, int((doy - 1) / width));
+  }
+  return bins;
+}
+
+std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const {
+  std::vector<int> bins;
+  const int n_bins = season_bins(grid, bins);
+  // Doubles: per slot y, w, A, target, support + 5 solver arrays; per bin 14 arrays.
+  return sizeof(double) * (10 * std::size_t(grid.size) + 14 * std::size_t(n_bins)) + 16;
+}
+
+void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
+  const TimeGrid& grid = *in.grid;
+  const int rows = in.read.height, cols = in.read.width, n_slots = grid.size;
+  const std::size_t pixels = std::size_t(rows) * cols;
+  const std::size_t cells = pixels * n_slots;
+  std::vector<int> bin_of_slot;
+  const int n_bins = season_bins(grid, bin_of_slot);
+  const std::size_t bin_cells = pixels * n_bins;
+  const detail::Shape3 anomaly_shape{rows, cols, n_slots};
+  const detail::Shape3 climate_shape{rows, cols, n_bins};
+
+  // Observations and their weights (robust weights multiply in later).
+  std::vector<double> y(cells, 0.0), base_weight(cells, 0.0), weight(cells, 0.0);
+  std::vector<int> observations(pixels, 0);
+  for (std::size_t i = 0; i < cells; ++i) {
+    const float v = in.values[i], w = in.weights[i];
+    if (w > 0 && std::isfinite(v)) {
+      y[i] = v;
+      base_weight[i] = weight[i] = w;
+      ++observations[i / n_slots];
+    }
+  }
+
+  // Pixels with no observation within the halo on any date: nothing to fill them from. A
+  // summed-area table of observation counts makes the window test O(1) per pixel.
+  const int radius = options_.spacetime_halo;
+  std::vector<std::int64_t> table(std::size_t(rows + 1) * (cols + 1), 0);
+  for (int r = 0; r < rows; ++r)
+    for (int c = 0; c < cols; ++c)
+      table[std::size_t(r + 1) * (cols + 1) + c + 1] = observations[std::size_t(r) * cols + c] +
+                                                       table[std::size_t(r) * (cols + 1) + c + 1] +
+                                                       table[std::size_t(r + 1) * (cols + 1) + c] -
+                                                       table[std::size_t(r) * (cols + 1) + c];
+  auto reachable = [&](int r, int c) {
+    const int r0 = std::max(0, r - radius), r1 = std::min(rows, r + radius + 1);
+    const int c0 = std::max(0, c - radius), c1 = std::min(cols, c + radius + 1);
+    const auto at = [&](int a, int b) { return table[std::size_t(a) * (cols + 1) + b]; };
+    return at(r1, c1) - at(r0, c1) - at(r1, c0) + at(r0, c0) > 0;
+  };
+
+  std::vector<double> anomaly(cells, 0.0), target(cells, 0.0);
+  std::vector<double> bin_sum(bin_cells), bin_weight(bin_cells), bin_mean(bin_cells);
+  std::vector<double> climate_smooth(bin_cells, 0.0), climate(bin_cells);
+  std::vector<double> own_sum(bin_cells), own_weight(bin_cells);
+  std::vector<double> level(pixels), pixel_weight(pixels);
+  std::vector<std::uint8_t> rejected(cells, 0);
+  detail::PlsWorkspace climate_ws, anomaly_ws;
+  detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
+                                       options_.spacetime_season_smoothing,
+                                       options_.spacetime_tolerance, 500, true};
+  detail::PlsSettings anomaly_settings{options_.spacetime_space_smoothing,
+                                       options_.spacetime_time_smoothing,
+                                       options_.spacetime_tolerance, 500, true};
+  double shrink = 1.0, between = 0.0;
+  bool climate_started = false;
+
+  auto fit_round = [&] {
+    // S: bin means of y - A, smoothed in space and across bins, weighted by their counts.
+    std::fill(bin_sum.begin(), bin_sum.end(), 0.0);
+    std::fill(bin_weight.begin(), bin_weight.end(), 0.0);
+    for (std::size_t p = 0; p < pixels; ++p)
+      for (int s = 0; s < n_slots; ++s) {
+        const std::size_t i = p * n_slots + s;
+        if (!(weight[i] > 0)) continue;
+        const std::size_t b = p * n_bins + bin_of_slot[s];
+        bin_sum[b] += weight[i] * (y[i] - anomaly[i]);
+        bin_weight[b] += weight[i];
+      }
+    double total = 0, total_weight = 0;
+    for (std::size_t b = 0; b < bin_cells; ++b) {
+      bin_mean[b] = bin_weight[b] > 0 ? bin_sum[b] / bin_weight[b] : 0.0;
+      total += bin_sum[b];
+      total_weight += bin_weight[b];
+    }
+    if (!(total_weight > 0)) return false;
+    // Start from the previous round's S, or the block mean: fewer iterations than from 0.
+    if (!climate_started)
+      std::fill(climate_smooth.begin(), climate_smooth.end(), total / total_weight);
+    climate_started = true;
+    detail::solve_pls(plans_, climate_shape, bin_mean, bin_weight, climate_settings, climate_smooth,
+                      climate_ws);
+
+    // d: the pixel's level, shrunk by k = within / between variance [M83].
+    std::fill(level.begin(), level.end(), 0.0);
+    std::fill(pixel_weight.begin(), pixel_weight.end(), 0.0);
+    for (std::size_t p = 0; p < pixels; ++p)
+      for (int s = 0; s < n_slots; ++s) {
+        const std::size_t i = p * n_slots + s;
+        if (!(weight[i] > 0)) continue;
+        level[p] += weight[i] * (y[i] - anomaly[i] - climate_smooth[p * n_bins + bin_of_slot[s]]);
+        pixel_weight[p] += weight[i];
+      }
+    double within_ss = 0, within_dof = 0;
+    for (std::size_t p = 0; p < pixels; ++p) {
+      if (!(pixel_weight[p] > 0)) continue;
+      const double mean = level[p] / pixel_weight[p];
+      for (int s = 0; s < n_slots; ++s) {
+        const std::size_t i = p * n_slots + s;
+        if (!(weight[i] > 0)) continue;
+        const double r = y[i] - anomaly[i] - climate_smooth[p * n_bins + bin_of_slot[s]] - mean;
+        within_ss += weight[i] * r * r;
+      }
+      within_dof += std::max(0.0, pixel_weight[p] - 1.0);
+    }
+    const double within = within_dof > 0 ? within_ss / within_dof : 0.0;
+    double sum = 0, sum2 = 0, noise = 0;
+    int counted = 0;
+    for (std::size_t p = 0; p < pixels; ++p) {
+      if (pixel_weight[p] < 3) continue;
+      const double mean = level[p] / pixel_weight[p];
+      sum += mean;
+      sum2 += mean * mean;
+      noise += within / pixel_weight[p];
+      ++counted;
+    }
+    between = counted > 1 ? std::max(0.0, (sum2 - sum * sum / counted) / (counted - 1) -
+                                              noise / counted)
+                          : 0.0;
+    // Bounded so that neither extreme (no pooling, complete pooling) is reached on a block
+    // with too few pixels to estimate the two variances.
+    shrink = std::clamp(between > 0 ? within / between : 100.0, 0.1, 100.0);
+    for (std::size_t p = 0; p < pixels; ++p) level[p] /= pixel_weight[p] + shrink;
+
+    // f: the pixel's own seasonal deviation, pooled over neighbouring bins, shrunk the same way.
+    std::fill(own_sum.begin(), own_sum.end(), 0.0);
+    std::fill(own_weight.begin(), own_weight.end(), 0.0);
+    for (std::size_t p = 0; p < pixels; ++p)
+      for (int s = 0; s < n_slots; ++s) {
+        const std::size_t i = p * n_slots + s;
+        if (!(weight[i] > 0)) continue;
+        const std::size_t b = p * n_bins + bin_of_slot[s];
+        own_sum[b] += weight[i] * (y[i] - anomaly[i] - climate_smooth[b] - level[p]);
+        own_weight[b] += weight[i];
+      }
+    for (std::size_t p = 0; p < pixels; ++p)
+      for (int b = 0; b < n_bins; ++b) {
+        double sum_k = 0, weight_k = 0;
+        for (int o = -bin_kernel_half; o <= bin_kernel_half; ++o) {
+          const int bb = ((b + o) % n_bins + n_bins) % n_bins;  // the year wraps around
+          if (n_bins < 2 * bin_kernel_half + 1 && o != 0) continue;
+          sum_k += bin_kernel[o + bin_kernel_half] * own_sum[p * n_bins + bb];
+          weight_k += bin_kernel[o + bin_kernel_half] * own_weight[p * n_bins + bb];
+        }
+        const std::size_t at = p * n_bins + b;
+        climate[at] = climate_smooth[at] + level[p] + sum_k / (weight_k + shrink);
+      }
+
+    // A: the anomaly y - C, smoothed in space and time.
+    for (std::size_t p = 0; p < pixels; ++p)
+      for (int s = 0; s < n_slots; ++s) {
+        const std::size_t i = p * n_slots + s;
+        target[i] = weight[i] > 0 ? y[i] - climate[p * n_bins + bin_of_slot[s]] : 0.0;
+      }
+    detail::solve_pls(plans_, anomaly_shape, target, weight, anomaly_settings, anomaly, anomaly_ws);
+    return true;
+  };
+
+  const std::size_t core_pixels = std::size_t(in.core.pixels());
+  auto core_to_read = [&](std::size_t cp) {
+    const std::size_t cy = cp / in.core.width, cx = cp % in.core.width;
+    return (cy + in.core.y - in.read.y) * in.read.width + (cx + in.core.x - in.read.x);
+  };
+  std::fill(out.rejected.begin(), out.rejected.end(), 0);
+  bool any = false;
+  for (int round = 0; round < backfitting_rounds; ++round) any = fit_round();
+  if (!any) {
+    std::fill(out.fitted.begin(), out.fitted.end(), NAN);
+    std::fill(out.sd.begin(), out.sd.end(), NAN);
+    return;
+  }
+  auto residual_at = [&](std::size_t p, int s) {
+    const std::size_t i = p * n_slots + s;
+    return y[i] - climate[p * n_bins + bin_of_slot[s]] - anomaly[i];
+  };
+  if (options_.robust) {
+    std::vector<double> scratch;
+    for (int it = 0; it < options_.iterations; ++it) {
+      scratch.clear();
+      for (std::size_t p = 0; p < pixels; ++p)
+        for (int s = 0; s < n_slots; ++s)
+          if (base_weight[p * n_slots + s] > 0) scratch.push_back(std::abs(residual_at(p, s)));
+      const double scale = 1.4826 * median(scratch);
+      if (!(scale > 0)) break;
+      for (std::size_t p = 0; p < pixels; ++p)
+        for (int s = 0; s < n_slots; ++s) {
+          const std::size_t i = p * n_slots + s;
+          if (!(base_weight[i] > 0)) continue;
+          const double u = residual_at(p, s) / (bisquare_c * scale);
+          const double bw = std::abs(u) < 1 ? (1 - u * u) * (1 - u * u) : 0.0;
+          weight[i] = base_weight[i] * bw;
+          rejected[i] = bw == 0.0;
+        }
+      fit_round();
+    }
+  }
+
+  // Variances for the standard error.
+  double ss = 0, ws_sum = 0, target_ss = 0;
+  for (std::size_t i = 0; i < cells; ++i) {
+    if (!(weight[i] > 0)) continue;
+    const std::size_t p = i / n_slots;
+    const int s = int(i % n_slots);
+    const double r = residual_at(p, s);
+    ss += weight[i] * r * r;
+    target_ss += weight[i] * target[i] * target[i];
+    ws_sum += weight[i];
+  }
+  const double noise_var = ws_sum > 0 ? ss / ws_sum : 0.0;
+  const double anomaly_var = ws_sum > 0 ? std::max(0.0, target_ss / ws_sum - noise_var) : 0.0;
+  // h: the observation indicator smoothed by 1 / (1 + p), i.e. how much observed support a cell
+  // has nearby in space and time.
+  std::vector<double> support(cells);
+  for (std::size_t i = 0; i < cells; ++i) support[i] = base_weight[i] > 0 ? 1.0 : 0.0;
+  detail::filter_shifted(plans_, anomaly_shape, anomaly_settings, 1.0, support);
+
+  const double lo = options_.clamp_min ? *options_.clamp_min : -INFINITY;
+  const double hi = options_.clamp_max ? *options_.clamp_max : INFINITY;
+  for (std::size_t cp = 0; cp < core_pixels; ++cp) {
+    const std::size_t p = core_to_read(cp);
+    const int r = int(p / cols), c = int(p % cols);
+    const bool fillable = reachable(r, c);
+    const double own = between * shrink / (pixel_weight[p] + shrink);
+    for (int s = 0; s < n_slots; ++s) {
+      const std::size_t o = cp * n_slots + s, i = p * n_slots + s;
+      out.rejected[o] = rejected[i];
+      if (!fillable) {
+        out.fitted[o] = NAN;
+        out.sd[o] = NAN;
+        continue;
+      }
+      const double fit = climate[p * n_bins + bin_of_slot[s]] + anomaly[i];
+      out.fitted[o] = float(std::clamp(fit, lo, hi));
+      const double h = std::clamp(support[i], 0.0, 1.0);
+      out.sd[o] = float(std::sqrt(noise_var + own + anomaly_var * (1.0 - h)));
+    }
+  }
+}
+
+std::unique_ptr<FillMethod> make_spacetime(const MethodOptions& options) {
+  return std::make_unique<SpacetimeMethod>(options);
+}
+
+}  // namespace kalends

@@ -1,0 +1,27 @@
+// Small pieces for writing JSON by hand (reports, summaries): kalends writes, never parses, JSON.
+#pragma once
+
+#include <cmath>
+#include <fmt/format.h>
+#include <string>
+
+namespace kalends::detail {
+
+/// `text` with quotes, backslashes and control characters escaped, for use inside "...".
+inline std::string json_escape(const std::string& text) {
+  std::string out;
+  for (char c : text) {
+    if (c == '"' || c == '\\') out += '\\';
+    if (static_cast<unsigned char>(c) < 0x20) {
+      out += fmt::format("\\u{:04x}", int(c));
+      continue;
+    }
+    out += c;
+  }
+  return out;
+}
+
+/// A number, or null where it is not finite (JSON has no NaN).
+inline std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{:.6g}", v) : "null"; }
+
+}  // namespace kalends::detail

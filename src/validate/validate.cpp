@@ -1,0 +1,427 @@
+#include "validate/validate.hpp"
+
+#include <gdal_alg.h>
+#include <gdal_priv.h>
+
+#include <algorithm>
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+#include <numeric>
+#include <random>
+
+#include "io/gdal_session.hpp"
+#include "io/json_text.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/fill.hpp"
+#include "kalends/time_grid.hpp"
+
+namespace kalends {
+
+namespace {
+
+namespace fs = std::filesystem;
+
+// A date x row x col cube of floats, NaN = missing.
+struct Cube {
+  int dates = 0, height = 0, width = 0;
+  std::vector<float> v;
+  std::size_t plane() const { return std::size_t(height) * width; }
+  float* at(int t) { return v.data() + std::size_t(t) * plane(); }
+  const float* at(int t) const { return v.data() + std::size_t(t) * plane(); }
+};
+
+// GDALFillNodata (inverse-distance interpolation from the edges of each hole, then no
+// smoothing) of one plane, search distance the whole raster: GDAL's spatial-only fill.
+std::vector<float> gdal_fill_nodata(const float* plane, int width, int height) {
+  GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+  GDALDatasetUniquePtr ds(mem->Create("", width, height, 1, GDT_Float32, nullptr));
+  GDALRasterBand* band = ds->GetRasterBand(1);
+  band->SetNoDataValue(NAN);
+  std::vector<float> out(plane, plane + std::size_t(width) * height);
+  if (band->RasterIO(GF_Write, 0, 0, width, height, out.data(), width, height, GDT_Float32, 0, 0,
+                     nullptr) != CE_None)
+    throw Error("validate", "GDAL could not write a memory raster");
+  if (std::none_of(out.begin(), out.end(), [](float x) { return std::isfinite(x); })) return out;
+  GDALFillNodata(band, nullptr, double(std::max(width, height)), 0, 0, nullptr, nullptr, nullptr);
+  if (band->RasterIO(GF_Read, 0, 0, width, height, out.data(), width, height, GDT_Float32, 0, 0,
+                     nullptr) != CE_None)
+    throw Error("validate", "GDAL could not read a memory raster");
+  return out;
+}
+
+void write_plane(const std::string& path, const float* plane, const Grid& grid, const std::string& date) {
+  GDALDriver* gtiff = GetGDALDriverManager()->GetDriverByName("GTiff");
+  char** options = nullptr;
+  options = CSLSetNameValue(options, "COMPRESS", "DEFLATE");
+  GDALDatasetUniquePtr ds(gtiff->Create(path.c_str(), grid.width, grid.height, 1, GDT_Float32, options));
+  CSLDestroy(options);
+  if (!ds) throw OutputError(path, detail::gdal_message("cannot create"));
+  if (grid.has_geotransform) {
+    double gt[6];
+    std::copy(grid.geotransform.begin(), grid.geotransform.end(), gt);
+    ds->SetGeoTransform(gt);
+  }
+  if (!grid.crs_wkt.empty()) ds->SetProjection(grid.crs_wkt.c_str());
+  ds->SetMetadataItem("KALENDS_DATE", date.c_str());
+  GDALRasterBand* band = ds->GetRasterBand(1);
+  band->SetNoDataValue(NAN);
+  if (band->RasterIO(GF_Write, 0, 0, grid.width, grid.height, const_cast<float*>(plane), grid.width,
+                     grid.height, GDT_Float32, 0, 0, nullptr) != CE_None)
+    throw OutputError(path, detail::gdal_message("cannot write"));
+}
+
+Cube read_band(const std::vector<std::string>& paths, int band, int width, int height) {
+  Cube c{int(paths.size()), height, width, {}};
+  c.v.resize(std::size_t(c.dates) * c.plane());
+  for (int t = 0; t < c.dates; ++t) {
+    GDALDatasetUniquePtr ds = detail::open_raster(paths[t]);
+    if (ds->GetRasterBand(band)->RasterIO(GF_Read, 0, 0, width, height, c.at(t), width, height,
+                                          GDT_Float32, 0, 0, nullptr) != CE_None)
+      throw InputError(paths[t], detail::gdal_message("cannot read"));
+  }
+  return c;
+}
+
+struct Accumulator {
+  std::int64_t cells = 0, covered = 0, within = 0;
+  double se = 0, ae = 0, e = 0, t = 0, t2 = 0;
+  bool has_sd = false;
+  void add(double estimate, double truth, double sd) {
+    ++cells;
+    if (!std::isfinite(estimate)) return;
+    ++covered;
+    const double err = estimate - truth;
+    se += err * err;
+    ae += std::abs(err);
+    e += err;
+    t += truth;
+    t2 += truth * truth;
+    if (std::isfinite(sd)) has_sd = true, within += std::abs(err) <= sd;
+  }
+  Score score(const std::string& name) const {
+    Score s;
+    s.name = name;
+    s.cells = cells;
+    s.covered = covered;
+    s.coverage = cells ? double(covered) / double(cells) : 0;
+    if (covered > 0) {
+      const double n = double(covered);
+      s.rmse = std::sqrt(se / n);
+      s.mae = ae / n;
+      s.bias = e / n;
+      const double sst = t2 - t * t / n;
+      s.r2 = sst > 0 ? 1.0 - se / sst : NAN;
+      s.within_one_sd = has_sd ? double(within) / n : -1;
+    } else {
+      s.rmse = s.mae = s.bias = s.r2 = NAN;
+    }
+    return s;
+  }
+};
+
+const char* gap_classes[] = {"gap <= 48 days", "gap 49-96 days", "gap 97-365 days",
+                             "gap > 365 days or open-ended", "pixel never observed"};
+const char* neighbourhood_classes[] = {"neighbourhood < 25 % missing", "25-50 % missing",
+                                       "50-75 % missing", "75-99 % missing", "100 % missing"};
+
+
+
+std::string score_json(const Score& s, const std::string& indent) {
+  std::string j = fmt::format(
+      "{{\"name\": \"{}\", \"baseline\": {}, \"cells\": {}, \"covered\": {}, \"coverage\": {}, "
+      "\"rmse\": {}, \"mae\": {}, \"bias\": {}, \"r2\": {}",
+      detail::json_escape(s.name), s.baseline ? "true" : "false", s.cells, s.covered, detail::json_number(s.coverage),
+      detail::json_number(s.rmse), detail::json_number(s.mae), detail::json_number(s.bias), detail::json_number(s.r2));
+  if (s.within_one_sd >= 0) j += fmt::format(", \"within_one_sd\": {}", detail::json_number(s.within_one_sd));
+  for (const auto* part : {&s.by_gap, &s.by_neighbourhood}) {
+    if (part->empty()) continue;
+    j += fmt::format(",\n{}  \"{}\": [", indent, part == &s.by_gap ? "by_gap_length" : "by_neighbourhood_missing");
+    for (std::size_t i = 0; i < part->size(); ++i)
+      j += fmt::format("{}\n{}    {}", i ? "," : "", indent,
+                       score_json((*part)[i].second, indent + "    "));
+    j += "]";
+  }
+  return j + "}";
+}
+
+}  // namespace
+
+ValidateReport run_validate(const ValidateRequest& request) {
+  detail::start_gdal();
+  if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  if (!(request.withhold > 0 && request.withhold < 1))
+    throw UsageError("--withhold", "must be between 0 and 1");
+  if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
+  for (const std::string& m : request.methods) {
+    MethodOptions o = request.method;
+    o.method = m;
+    make_fill_method(o);  // unknown names and bad options fail here, before any work
+  }
+  const Stack stack = Stack::open(request.input, request.rules);
+  const int dates = int(stack.layers().size());
+  if (dates < 3) throw InputError(request.input, "validation needs at least 3 dates");
+  const Grid& grid = stack.grid();
+  Cube truth{dates, grid.height, grid.width, {}};
+  if (double(dates) * truth.plane() > 4e8)
+    throw InputError(request.input, "too large to validate in memory (over 4e8 pixel-dates); "
+                                    "validate a subset of the area");
+  truth.v.resize(std::size_t(dates) * truth.plane());
+  {
+    auto reader = stack.reader();
+    const Window all{0, 0, grid.width, grid.height};
+    for (int t = 0; t < dates; ++t) reader->read_values(std::size_t(t), all, truth.at(t));
+  }
+  const std::size_t plane = truth.plane();
+
+  // Transplant: the missing-value mask of a random other date j over date k, until the share
+  // of observed cells asked for is withheld.
+  std::mt19937_64 rng(request.seed);
+  std::vector<std::int64_t> missing_of(dates, 0);
+  std::int64_t observed = 0;
+  for (int t = 0; t < dates; ++t)
+    for (std::size_t i = 0; i < plane; ++i) {
+      const bool ok = std::isfinite(truth.at(t)[i]);
+      observed += ok;
+      missing_of[t] += !ok;
+    }
+  if (std::all_of(missing_of.begin(), missing_of.end(), [](std::int64_t m) { return m == 0; }))
+    throw InputError(request.input, "no date has missing values: there is no cloud pattern to "
+                                    "transplant");
+  Cube held = truth;
+  std::vector<std::uint8_t> withheld(truth.v.size(), 0);
+  const std::int64_t goal = std::int64_t(request.withhold * double(observed));
+  std::int64_t count = 0;
+  int masks = 0;
+  std::vector<int> order(dates);
+  std::iota(order.begin(), order.end(), 0);
+  for (int pass = 0; pass < 50 && count < goal; ++pass) {
+    std::shuffle(order.begin(), order.end(), rng);
+    for (int k : order) {
+      if (count >= goal) break;
+      std::uniform_int_distribution<int> pick(0, dates - 2);
+      int j = pick(rng);
+      if (j >= k) ++j;
+      if (missing_of[j] == 0) continue;
+      ++masks;
+      for (std::size_t i = 0; i < plane && count < goal; ++i)
+        if (!std::isfinite(truth.at(j)[i]) && std::isfinite(held.at(k)[i])) {
+          held.at(k)[i] = NAN;
+          withheld[std::size_t(k) * plane + i] = 1;
+          ++count;
+        }
+    }
+  }
+
+  // The withheld stack on disk, for the methods (run as `kalends fill` would run them).
+  const fs::path work = fs::path(request.out_dir) / "work";
+  std::error_code ec;
+  fs::remove_all(work, ec);
+  fs::create_directories(work / "input", ec);
+  if (ec) throw OutputError(work.string(), "cannot create: " + ec.message());
+  const std::string name = stack.name().empty() ? "layer" : stack.name();
+  for (int t = 0; t < dates; ++t) {
+    const std::string label = stack.layers()[t].time.label();
+    write_plane((work / "input" / (name + "_" + label + ".tif")).string(), held.at(t), grid,
+                stack.layers()[t].time.iso());
+  }
+
+  // Breakdown classes of every withheld cell.
+  std::vector<double> days(dates);
+  for (int t = 0; t < dates; ++t) days[t] = stack.layers()[t].time.days();
+  std::vector<std::uint8_t> gap_class(truth.v.size(), 0), hood_class(truth.v.size(), 0);
+  {
+    const int r = request.neighbourhood_radius;
+    for (int t = 0; t < dates; ++t) {
+      // Summed-area table of missing cells on this date of the withheld stack.
+      std::vector<std::int64_t> sat(std::size_t(grid.height + 1) * (grid.width + 1), 0);
+      const auto S = [&](int a, int b) -> std::int64_t& { return sat[std::size_t(a) * (grid.width + 1) + b]; };
+      for (int y = 0; y < grid.height; ++y)
+        for (int x = 0; x < grid.width; ++x)
+          S(y + 1, x + 1) = !std::isfinite(held.at(t)[std::size_t(y) * grid.width + x]) + S(y, x + 1) +
+                            S(y + 1, x) - S(y, x);
+      for (int y = 0; y < grid.height; ++y)
+        for (int x = 0; x < grid.width; ++x) {
+          const std::size_t i = std::size_t(t) * plane + std::size_t(y) * grid.width + x;
+          if (!withheld[i]) continue;
+          const int y0 = std::max(0, y - r), y1 = std::min(grid.height, y + r + 1);
+          const int x0 = std::max(0, x - r), x1 = std::min(grid.width, x + r + 1);
+          const double share = double(S(y1, x1) - S(y0, x1) - S(y1, x0) + S(y0, x0)) /
+                               double((y1 - y0) * (x1 - x0));
+          hood_class[i] = share >= 1.0 ? 4 : share >= 0.75 ? 3 : share >= 0.5 ? 2 : share >= 0.25 ? 1 : 0;
+        }
+    }
+    for (std::size_t p = 0; p < plane; ++p) {
+      int previous = -1;
+      std::vector<int> next(dates, -1);
+      for (int t = dates - 1, n = -1; t >= 0; --t) {
+        next[t] = n;
+        if (std::isfinite(held.at(t)[p])) n = t;
+      }
+      bool any = false;
+      for (int t = 0; t < dates; ++t) any |= std::isfinite(held.at(t)[p]) != 0;
+      for (int t = 0; t < dates; ++t) {
+        const std::size_t i = std::size_t(t) * plane + p;
+        if (withheld[i]) {
+          if (!any) {
+            gap_class[i] = 4;
+          } else if (previous < 0 || next[t] < 0) {
+            gap_class[i] = 3;
+          } else {
+            const double g = days[next[t]] - days[previous];
+            gap_class[i] = g <= 48 ? 0 : g <= 96 ? 1 : g <= 365 ? 2 : 3;
+          }
+        }
+        if (std::isfinite(held.at(t)[p])) previous = t;
+      }
+    }
+  }
+
+  auto score_cube = [&](const std::string& label, const Cube& estimate, const Cube* sd, bool baseline) {
+    Accumulator all, gap[5], hood[5];
+    for (std::size_t i = 0; i < truth.v.size(); ++i) {
+      if (!withheld[i]) continue;
+      const double s = sd ? double(sd->v[i]) : NAN;
+      all.add(estimate.v[i], truth.v[i], s);
+      gap[gap_class[i]].add(estimate.v[i], truth.v[i], s);
+      hood[hood_class[i]].add(estimate.v[i], truth.v[i], s);
+    }
+    Score score = all.score(label);
+    score.baseline = baseline;
+    for (int c = 0; c < 5; ++c) {
+      score.by_gap.emplace_back(gap_classes[c], gap[c].score(gap_classes[c]));
+      score.by_neighbourhood.emplace_back(neighbourhood_classes[c], hood[c].score(neighbourhood_classes[c]));
+    }
+    return score;
+  };
+
+  ValidateReport report;
+  report.observed = observed;
+  report.withheld = count;
+  report.cells = std::int64_t(truth.v.size());
+  report.dates = dates;
+  report.width = grid.width;
+  report.height = grid.height;
+  report.transplanted_masks = masks;
+
+  for (const std::string& method : request.methods) {
+    FillRequest fill;
+    fill.input = (work / "input" / "*.tif").string();
+    fill.method = request.method;
+    fill.method.method = method;
+    fill.rules.valid_min = request.rules.valid_min;
+    fill.rules.valid_max = request.rules.valid_max;
+    fill.out_dir = (work / method).string();
+    fill.memory_bytes = request.memory_bytes;
+    fill.threads = request.threads;
+    fill.compression = Compression::none;
+    run_fill(fill);
+    std::vector<std::string> paths;
+    for (int t = 0; t < dates; ++t)
+      paths.push_back((work / method / (name + "_" + stack.layers()[t].time.label() + ".tif")).string());
+    const Cube value = read_band(paths, 1, grid.width, grid.height);
+    const Cube sd = read_band(paths, 2, grid.width, grid.height);
+    report.scores.push_back(score_cube(method, value, &sd, false));
+    if (!request.keep_work) fs::remove_all(work / method, ec);
+  }
+
+  // Baselines, from the withheld stack only.
+  const TimeGrid tgrid = TimeGrid::build(stack.times());
+  Cube linear = held, climate = held, climate_anomaly = held, spatial = held, combined = held;
+  for (int t = 0; t < dates; ++t) {
+    const CivilDate date_t = stack.layers()[t].time.date();
+    const int doy_t = day_of_year(date_t);
+    std::vector<int> same;
+    for (int j = 0; j < dates; ++j) {
+      const CivilDate date_j = stack.layers()[j].time.date();
+      int diff = std::abs(day_of_year(date_j) - doy_t);
+      diff = std::min(diff, 365 - diff);
+      if (date_j.year != date_t.year && diff <= tgrid.step_days / 2) same.push_back(j);
+    }
+    std::vector<float> anomaly(plane, NAN);
+    for (std::size_t p = 0; p < plane; ++p) {
+      double s = 0;
+      int n = 0;
+      for (int j : same)
+        if (std::isfinite(held.at(j)[p])) s += held.at(j)[p], ++n;
+      climate.at(t)[p] = n ? float(s / n) : NAN;
+      if (std::isfinite(held.at(t)[p]) && n) anomaly[p] = held.at(t)[p] - climate.at(t)[p];
+    }
+    const std::vector<float> anomaly_filled = gdal_fill_nodata(anomaly.data(), grid.width, grid.height);
+    const std::vector<float> spatial_filled = gdal_fill_nodata(held.at(t), grid.width, grid.height);
+    for (std::size_t p = 0; p < plane; ++p) {
+      climate_anomaly.at(t)[p] = climate.at(t)[p] + anomaly_filled[p];
+      spatial.at(t)[p] = spatial_filled[p];
+      combined.at(t)[p] = std::isfinite(climate_anomaly.at(t)[p]) ? climate_anomaly.at(t)[p] : spatial_filled[p];
+    }
+  }
+  for (std::size_t p = 0; p < plane; ++p) {
+    int previous = -1;
+    for (int t = 0; t < dates; ++t) {
+      if (std::isfinite(held.at(t)[p])) {
+        previous = t;
+        continue;
+      }
+      int next = t + 1;
+      while (next < dates && !std::isfinite(held.at(next)[p])) ++next;
+      float v = NAN;
+      if (previous >= 0 && next < dates) {
+        const double f = (days[t] - days[previous]) / (days[next] - days[previous]);
+        v = float(held.at(previous)[p] + f * (held.at(next)[p] - held.at(previous)[p]));
+      }
+      linear.at(t)[p] = v;
+    }
+  }
+  report.scores.push_back(score_cube("linear interpolation in time", linear, nullptr, true));
+  report.scores.push_back(score_cube("same day-of-year mean, other years", climate, nullptr, true));
+  report.scores.push_back(score_cube("that mean + spatially interpolated anomaly", climate_anomaly, nullptr, true));
+  report.scores.push_back(score_cube("GDAL FillNodata, date by date", spatial, nullptr, true));
+  report.scores.push_back(score_cube("combined baseline", combined, nullptr, true));
+  if (!request.keep_work) fs::remove_all(work, ec);
+
+  // Reports.
+  std::string json = "{\n";
+  json += fmt::format("  \"input\": \"{}\",\n  \"seed\": {},\n  \"withhold\": {},\n", detail::json_escape(request.input),
+                      request.seed, detail::json_number(request.withhold));
+  json += fmt::format(
+      "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"observed\": {},\n"
+      "  \"withheld\": {},\n  \"transplanted_masks\": {},\n  \"neighbourhood_radius\": {},\n",
+      dates, grid.width, grid.height, observed, count, masks, request.neighbourhood_radius);
+  json += "  \"scores\": [\n";
+  for (std::size_t i = 0; i < report.scores.size(); ++i)
+    json += "    " + score_json(report.scores[i], "    ") + (i + 1 < report.scores.size() ? ",\n" : "\n");
+  json += "  ]\n}\n";
+
+  std::string md = fmt::format(
+      "# kalends validate\n\n`{}`: {} dates of {} x {} px, {} observed cells; {} withheld "
+      "({:.1f} %) along {} transplanted cloud masks (seed {}).\n\n",
+      request.input, dates, grid.width, grid.height, observed, count,
+      100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
+  md += "| method | RMSE | MAE | bias | R² | coverage | within ±1 sd |\n|---|---|---|---|---|---|---|\n";
+  auto row = [&](const Score& s) {
+    return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {:.1f} % | {} |\n", s.name,
+                       s.baseline ? " (baseline)" : "", s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage,
+                       s.within_one_sd >= 0 ? fmt::format("{:.1f} %", 100 * s.within_one_sd) : "-");
+  };
+  for (const Score& s : report.scores) md += row(s);
+  for (int part = 0; part < 2; ++part) {
+    md += part == 0 ? "\n## RMSE (coverage) by gap length in time\n\n"
+                    : fmt::format("\n## RMSE (coverage) by share of the {0}x{0} neighbourhood missing\n\n",
+                                  2 * request.neighbourhood_radius + 1);
+    md += "| method |";
+    for (int c = 0; c < 5; ++c) md += fmt::format(" {} |", part == 0 ? gap_classes[c] : neighbourhood_classes[c]);
+    md += "\n|---|---|---|---|---|---|\n";
+    for (const Score& s : report.scores) {
+      md += "| " + s.name + " |";
+      for (const auto& [label, sub] : part == 0 ? s.by_gap : s.by_neighbourhood)
+        md += sub.cells == 0 ? " - |" : fmt::format(" {:.4f} ({:.0f} %, n={}) |", sub.rmse, 100 * sub.coverage, sub.cells);
+      md += "\n";
+    }
+  }
+  detail::write_text_atomically((fs::path(request.out_dir) / "report.json").string(), json);
+  detail::write_text_atomically((fs::path(request.out_dir) / "report.md").string(), md);
+  return report;
+}
+
+}  // namespace kalends

@@ -1,0 +1,47 @@
+// `kalends validate`: scores gap-filling methods on the user's own stack by withholding more
+// observed values along real cloud patterns of the same stack, and compares them with simple
+// baselines computed in the same run.
+#pragma once
+
+#include <cstdint>
+#include <string>
+#include <vector>
+
+#include "kalends/fill_method.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+struct ValidateRequest {
+  std::string input;
+  ValueRules rules;
+  std::vector<std::string> methods{"whittaker", "harmonic", "spacetime"};
+  MethodOptions method;          // options for every method (the name is replaced)
+  std::string out_dir;
+  std::uint64_t seed = 1;
+  double withhold = 0.2;         // share of the observed cells to withhold
+  int neighbourhood_radius = 5;  // pixels; for the "neighbourhood missing" breakdown
+  std::int64_t memory_bytes = std::int64_t(1) << 30;
+  int threads = 0;
+  bool keep_work = false;        // keep the withheld stack and the fills under OUT/work
+};
+
+struct Score {
+  std::string name;
+  bool baseline = false;
+  std::int64_t cells = 0, covered = 0;
+  double rmse = 0, mae = 0, bias = 0, r2 = 0, coverage = 0;
+  double within_one_sd = -1;  // share of covered cells with |error| <= sd; < 0 where no sd
+  std::vector<std::pair<std::string, Score>> by_gap, by_neighbourhood;
+};
+
+struct ValidateReport {
+  std::int64_t observed = 0, withheld = 0, cells = 0;
+  int dates = 0, width = 0, height = 0, transplanted_masks = 0;
+  std::vector<Score> scores;
+};
+
+/// Runs the validation and writes OUT/report.json and OUT/report.md (atomically).
+ValidateReport run_validate(const ValidateRequest& request);
+
+}  // namespace kalends

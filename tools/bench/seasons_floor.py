@@ -1,0 +1,67 @@
+#!/usr/bin/python3
+"""The GDAL I/O floor of `kalends seasons`: read every input and write the same set of outputs
+(same files, band counts, tiling and compression as a kalends run left in LAYOUT_DIR) with GDAL
+alone, no computation. Each output band receives a float32 copy of an input plane, so it
+compresses like real data rather than like zeros. Run --of N processes with --share 0..N-1 to
+split inputs and outputs between them (tools/bench/seasons.sh does).
+usage: seasons_floor.py 'STACK/ndvi_*.tif' LAYOUT_DIR OUT_DIR [--share 0 --of 1]
+"""
+import argparse
+import glob
+import os
+import sys
+
+import numpy as np
+from osgeo import gdal
+
+gdal.UseExceptions()
+OPTIONS = ["TILED=YES", "BLOCKXSIZE=256", "BLOCKYSIZE=256", "INTERLEAVE=BAND", "COMPRESS=DEFLATE",
+           "PREDICTOR=3", "BIGTIFF=IF_SAFER"]
+
+
+def read_inputs(files, share, workers):
+    """Reads this worker's share of the inputs, whole, as float32; returns one plane."""
+    plane = None
+    for f in files[share::workers]:
+        ds = gdal.Open(f)          # the dataset must outlive its band
+        plane = ds.GetRasterBand(1).ReadAsArray().astype(np.float32)
+    return plane
+
+
+def work(args):
+    files, layout, out_dir, share, workers = args
+    gdal.SetCacheMax(64 << 20)
+    plane = read_inputs(files, share, workers)
+    ref = gdal.Open(files[0])
+    if plane is None:
+        plane = ref.GetRasterBand(1).ReadAsArray().astype(np.float32)
+    for name, bands in layout[share::workers]:
+        ds = gdal.GetDriverByName("GTiff").Create(os.path.join(out_dir, name), ref.RasterXSize,
+                                                  ref.RasterYSize, bands, gdal.GDT_Float32, OPTIONS)
+        ds.SetGeoTransform(ref.GetGeoTransform())
+        ds.SetProjection(ref.GetProjection())
+        for b in range(1, bands + 1):
+            ds.GetRasterBand(b).WriteArray(plane)
+        ds = None
+    return 0
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("pattern")
+    ap.add_argument("layout_dir")
+    ap.add_argument("out_dir")
+    ap.add_argument("--share", type=int, default=0)
+    ap.add_argument("--of", type=int, default=1)
+    a = ap.parse_args()
+    files = sorted(glob.glob(a.pattern))
+    layout = []
+    for p in sorted(glob.glob(os.path.join(a.layout_dir, "*.tif"))):
+        ds = gdal.Open(p)
+        layout.append((os.path.basename(p), ds.RasterCount))
+    os.makedirs(a.out_dir, exist_ok=True)
+    return work((files, layout, a.out_dir, a.share, a.of))
+
+
+if __name__ == "__main__":
+    sys.exit(main())
