@@ -81,7 +81,8 @@ def main(argv=None):
 
     manifest = os.path.join(a.input, "synth.json")
     m = json.load(open(manifest))
-    scene = synth_stack.Scene(m["width"], m["height"], m["seed"], m["scenario"], m["start_year"], m["years"])
+    scene = synth_stack.Scene(m["width"], m["height"], m["seed"], m["scenario"], m["start_year"], m["years"],
+                              m.get("drought_year"))
     outs = sorted(glob.glob(os.path.join(a.filled, "ndvi_*.tif")))
     if not outs:
         print(f"no outputs ndvi_*.tif in {a.filled}")

@@ -21,17 +21,30 @@ if ! grep -q '"drought_year": 2022' "$out/input/ndvi/synth.json" 2>/dev/null; th
     --truth "$out/input/truth" --drought-year 2022
 fi
 
-rm -rf "$out/filled"
-build/kalends fill "$out/input/ndvi/ndvi_*.tif" --qa "$out/input/qa/qa_*.tif" --keep 'bits0-1 in 0,1' \
-  --out "$out/filled" --method whittaker --lambda auto --envelope upper --every 1M
+# The NDVI pipeline is the demo's job file: fill, seasons, compare (demo/job.toml). A second
+# run of the demo finds nothing new and does nothing.
+build/kalends run demo/job.toml
 
 echo
-"$py" demo/summarise.py --filled "$out/filled" --input "$out/input/ndvi" --truth "$out/input/truth"
-
+"$py" demo/summarise.py --filled "$out/job/fill" --input "$out/input/ndvi" --truth "$out/input/truth"
 echo
-rm -rf "$out/seasons" "$out/compare"
-build/kalends seasons "$out/filled" --out "$out/seasons"
-build/kalends compare "$out/seasons" --out "$out/compare"
-echo
-"$py" demo/summarise_seasons.py --seasons "$out/seasons" --compare "$out/compare" \
+"$py" demo/summarise_seasons.py --seasons "$out/job/seasons" --compare "$out/job/compare" \
   --manifest "$out/input/ndvi/synth.json"
+
+# Temperature suitability for malaria transmission (issue #5): invented day and night
+# land-surface temperature (kelvin x 50), cloud gaps filled, then relative R0 (Mordecai 2013).
+if ! grep -q '"invented": true' "$out/input/lst/synth.json" 2>/dev/null; then
+  rm -rf "$out/input/lst"
+  echo "demo: generating the synthetic land-surface temperature stacks in $out/input/lst" >&2
+  "$py" tools/synth_lst.py --out "$out/input/lst"
+fi
+echo
+rm -rf "$out/lst_filled" "$out/suitability"
+for pass in day night; do
+  build/kalends fill "$out/input/lst/$pass/lst_${pass}_*.tif" --out "$out/lst_filled/$pass" \
+    --method harmonic --harmonics 2
+done
+build/kalends suitability --day "$out/lst_filled/day" --night "$out/lst_filled/night" \
+  --model r0-2013 --out "$out/suitability"
+echo
+"$py" demo/summarise_suitability.py --suitability "$out/suitability"

@@ -19,6 +19,9 @@ struct CalendarPeriod {
   std::string label() const;
 };
 
+/// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.
+std::int64_t parse_memory_size(const std::string& text);
+
 enum class Compression { deflate, zstd, lzw, none };
 Compression parse_compression(const std::string& text);
 
@@ -36,6 +39,7 @@ struct FillRequest {
   int threads = 0;  // 0 = all cores
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata
+  bool keep_unchanged = false;  // leave outputs that would not change as they are
 };
 
 struct FillSummary {
@@ -48,6 +52,7 @@ struct FillSummary {
   double seconds = 0, kernel_seconds = 0;
   std::int64_t block_width = 0, block_height = 0;
   std::string out_dir;
+  int outputs_written = 0, outputs_unchanged = 0;
 };
 
 using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;

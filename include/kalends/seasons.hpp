@@ -25,9 +25,11 @@ struct SeasonsRequest {
   int threads = 0;
   Compression compression = Compression::deflate;
   std::string command_line;
+  bool keep_unchanged = false;
 };
 
 struct SeasonsSummary {
+  int outputs_written = 0, outputs_unchanged = 0;
   int years = 0, periods = 0, files = 0, width = 0, height = 0;
   int first_year = 0, last_year = 0;
   double seconds = 0;

@@ -28,9 +28,11 @@ struct IndexRequest {
   int threads = 0;
   Compression compression = Compression::deflate;
   std::string command_line;
+  bool keep_unchanged = false;
 };
 
 struct IndexSummary {
+  int outputs_written = 0, outputs_unchanged = 0;
   int dates = 0;
   std::int64_t pixels = 0, missing = 0;
   std::string out_dir;

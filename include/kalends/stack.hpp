@@ -20,6 +20,7 @@ struct ValueRules {
   int band = 1;                                // for stacks of single-date files
   bool one_date_per_file = false;  // a single multi-band file is one date, not a time series
   std::optional<TimePoint> date;   // the date of files whose names carry none
+  std::vector<std::string> exclude;  // files of a pattern to leave out (skipped bad inputs)
 };
 
 struct Grid {
@@ -76,8 +77,8 @@ class StackReader {
   StackReader& operator=(const StackReader&) = delete;
 
   /// Physical values of one date in a window, row-major; NaN where missing (nodata, NaN,
-  /// outside the valid range).
-  void read_values(std::size_t layer, const Window& window, float* out);
+  /// outside the valid range). Returns how many values the valid range removed.
+  std::int64_t read_values(std::size_t layer, const Window& window, float* out);
   /// Raw integer values (for QA layers).
   void read_integers(std::size_t layer, const Window& window, std::uint32_t* out);
 

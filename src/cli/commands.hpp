@@ -11,6 +11,7 @@ struct GlobalOptions {
   bool quiet = false;
   bool verbose = false;
   std::string command_line;
+  int exit_code = 0;  // an action may set it (kalends run: 3 = partly done)
 };
 
 using Action = std::function<void()>;
@@ -24,7 +25,15 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global);
 /// `kalends validate`.
 Action add_validate_command(CLI::App& app, GlobalOptions& global);
 
+/// `kalends diurnal`, `kalends suitability`.
+Action add_diurnal_command(CLI::App& app, GlobalOptions& global);
+Action add_suitability_command(CLI::App& app, GlobalOptions& global);
+
 /// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.
 std::int64_t parse_memory(const std::string& text);
+
+/// `kalends run`, `kalends status`.
+Action add_run_command(CLI::App& app, GlobalOptions& global);
+Action add_status_command(CLI::App& app, GlobalOptions& global);
 
 }  // namespace kalends::cli

@@ -37,7 +37,9 @@ int main(int argc, char** argv) {
   app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
   std::map<CLI::App*, cli::Action> actions;
   for (auto add : {&cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
-                   &cli::add_compare_command, &cli::add_validate_command}) {
+                   &cli::add_compare_command, &cli::add_validate_command, &cli::add_run_command,
+                   &cli::add_status_command,
+                   &cli::add_diurnal_command, &cli::add_suitability_command}) {
     cli::Action action = add(app, global);
     actions[app.get_subcommands({}).back()] = std::move(action);
   }
@@ -49,7 +51,7 @@ int main(int argc, char** argv) {
   try {
     for (auto& [command, action] : actions)
       if (command->parsed()) action();
-    return 0;
+    return global.exit_code;
   } catch (const InputError& e) {
     std::cerr << "kalends: " << e.what() << "\n";
     return 2;

@@ -125,6 +125,7 @@ IndexSummary run_index(const IndexRequest& request) {
       missing += local_missing;
     });
   });
+  outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
   // QA layers travel with the index so that `kalends fill --qa` finds them by date.
   if (qa) {
@@ -134,6 +135,9 @@ IndexSummary run_index(const IndexRequest& request) {
     for (std::size_t i = 0; i < red.layers().size(); ++i) {
       const Layer& q = qa->layers()[qa_of[i]];
       const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + fs::path(q.path).extension().string());
+      if (fs::exists(target) && fs::file_size(target) == fs::file_size(q.path) &&
+          detail::file_checksum_equal(target.string(), q.path))
+        continue;  // already there: keep its bytes and time
       const std::string temporary = detail::temporary_name(target.string());
       fs::copy_file(q.path, temporary, fs::copy_options::overwrite_existing, ec);
       if (ec) throw OutputError(target.string(), "cannot copy the QA layer: " + ec.message());
@@ -142,6 +146,8 @@ IndexSummary run_index(const IndexRequest& request) {
     }
   }
   IndexSummary summary;
+  summary.outputs_written = outputs.written();
+  summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(red.layers().size());
   summary.pixels = std::int64_t(grid.width) * grid.height * summary.dates;
   summary.missing = missing;

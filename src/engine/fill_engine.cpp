@@ -87,7 +87,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::optional<Stack> qa_stack;
   std::vector<std::size_t> qa_of_layer;
   if (keep) {
-    qa_stack = Stack::open(request.qa_input, ValueRules{});
+    ValueRules qa_rules;
+    qa_rules.exclude = request.rules.exclude;
+    qa_stack = Stack::open(request.qa_input, qa_rules);
     require_same_grid(stack.grid(), qa_stack->grid(), qa_stack->layers().front().path);
     for (const Layer& layer : stack.layers()) {
       const auto& qa_layers = qa_stack->layers();
@@ -183,6 +185,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     if (qa_stack) w.qa = qa_stack->reader();
     return w;
   });
+  // Per date: values kept and values the valid range removed, to catch a wrong scale factor.
+  std::vector<std::atomic<std::int64_t>> in_range(layers), out_of_range(layers);
   std::atomic<int> blocks_done{0};
   std::mutex progress_mutex;
 
@@ -195,9 +199,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     w.values.assign(read_pixels * n_slots, NAN);
     w.weights.assign(read_pixels * n_slots, 0.0f);
     for (std::size_t i = 0; i < std::size_t(layers); ++i) {
-      w.data->read_values(i, read, w.plane.data());
+      out_of_range[i] += w.data->read_values(i, read, w.plane.data());
       if (keep) w.qa->read_integers(qa_of_layer[i], read, w.qa_plane.data());
       const int slot = grid.slot_of_date[i];
+      std::int64_t valid = 0;
+      for (std::int64_t p = 0; p < read_pixels; ++p) valid += !std::isnan(w.plane[p]);
+      in_range[i] += valid;
       for (std::int64_t p = 0; p < read_pixels; ++p) {
         const float v = w.plane[p];
         if (std::isnan(v)) continue;
@@ -315,9 +322,17 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         },
         tbb::simple_partitioner());
   });
+  for (std::size_t i = 0; i < std::size_t(layers); ++i)
+    if (in_range[i] == 0 && out_of_range[i] > 0)
+      throw InputError(stack.layers()[i].path,
+                       fmt::format("every value is outside the valid range {:g} to {:g} (wrong scale factor or range?)",
+                                   request.rules.valid_min.value_or(-INFINITY), request.rules.valid_max.value_or(INFINITY)));
+  outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 
   FillSummary summary;
+  summary.outputs_written = outputs.written();
+  summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(layers);
   summary.width = raster.width;
   summary.height = raster.height;
@@ -352,11 +367,11 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       "  \"filled\": {},\n  \"unfilled\": {},\n  \"pixels_never_observed\": {},\n"
       "  \"pixels_without_value\": {},\n"
       "  \"time_step_days\": {:g},\n  \"calendar_outputs\": {},\n  \"blocks\": {},\n"
-      "  \"block_size\": [{}, {}],\n  \"threads\": {},\n  \"seconds\": {:.3f}\n}}\n",
+      "  \"block_size\": [{}, {}]\n}}\n",
       summary.dates, summary.width, summary.height, summary.pixel_dates, summary.observed,
       summary.missing, masked_by_qa, summary.rejected, summary.filled, summary.unfilled,
       summary.pixels_never_observed, summary.pixels_without_value, grid.step_days, summary.calendar_outputs, summary.blocks,
-      summary.block_width, summary.block_height, threads, summary.seconds);
+      summary.block_width, summary.block_height);
   detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
   return summary;
 }

@@ -5,6 +5,7 @@
 #include <algorithm>
 
 #include "kalends/error.hpp"
+#include "kalends/fill.hpp"
 
 namespace kalends::detail {
 
@@ -34,6 +35,41 @@ MemoryShare share_memory(std::int64_t budget, int workers, std::int64_t bytes_pe
   share.max_read_pixels = share.per_worker / std::max<std::int64_t>(1, bytes_per_pixel);
   return share;
 }
+
+}  // namespace kalends::detail
+
+namespace kalends {
+
+std::int64_t parse_memory_size(const std::string& text) {
+  std::size_t used = 0;
+  double value = 0;
+  try {
+    value = std::stod(text, &used);
+  } catch (const std::exception&) {
+    throw UsageError("--memory '" + text + "'", "expected a size such as 512M or 2G");
+  }
+  std::string unit = text.substr(used);
+  for (char& c : unit) c = char(std::toupper(static_cast<unsigned char>(c)));
+  double factor;
+  if (unit.empty() || unit == "B")
+    factor = 1;
+  else if (unit == "K" || unit == "KB" || unit == "KIB")
+    factor = 1024.0;
+  else if (unit == "M" || unit == "MB" || unit == "MIB")
+    factor = 1024.0 * 1024;
+  else if (unit == "G" || unit == "GB" || unit == "GIB")
+    factor = 1024.0 * 1024 * 1024;
+  else if (unit == "T" || unit == "TB" || unit == "TIB")
+    factor = 1024.0 * 1024 * 1024 * 1024;
+  else
+    throw UsageError("--memory '" + text + "'", "unknown unit '" + unit + "' (use K, M, G or T)");
+  if (!(value > 0)) throw UsageError("--memory '" + text + "'", "must be positive");
+  return std::int64_t(value * factor);
+}
+
+}  // namespace kalends
+
+namespace kalends::detail {
 
 std::int64_t peak_resident_bytes() {
   rusage usage{};

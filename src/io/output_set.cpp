@@ -5,8 +5,10 @@
 
 #include <cmath>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <iterator>
 #include <set>
 #include <stdexcept>
 
@@ -58,7 +60,27 @@ std::vector<BandSpec> fill_bands(const std::string& unit) {
                               "2=filled, 3=could not be filled"}}}};
 }
 
+bool file_checksum_equal(const std::string& a, const std::string& b) {
+  std::ifstream x(a, std::ios::binary), y(b, std::ios::binary);
+  if (!x || !y) return false;
+  std::vector<char> bx(1 << 16), by(1 << 16);
+  while (true) {
+    x.read(bx.data(), std::streamsize(bx.size()));
+    y.read(by.data(), std::streamsize(by.size()));
+    if (x.gcount() != y.gcount()) return false;
+    if (std::memcmp(bx.data(), by.data(), std::size_t(x.gcount())) != 0) return false;
+    if (x.gcount() == 0 || !x) return !y || y.peek() == EOF;
+  }
+}
+
 void write_text_atomically(const std::string& path, const std::string& text) {
+  {
+    std::ifstream existing(path, std::ios::binary);
+    if (existing) {
+      const std::string old((std::istreambuf_iterator<char>(existing)), std::istreambuf_iterator<char>());
+      if (old == text) return;
+    }
+  }
   const std::string temporary = temporary_name(path);
   {
     std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
@@ -154,6 +176,38 @@ void OutputSet::write(std::size_t index, const Window& core, std::span<const flo
     }
 }
 
+bool same_raster_content(const std::string& a, const std::string& b) {
+  start_gdal();
+  GDALDatasetUniquePtr x(GDALDataset::Open(a.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  GDALDatasetUniquePtr y(GDALDataset::Open(b.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (!x || !y) return false;
+  const int w = x->GetRasterXSize(), h = x->GetRasterYSize(), n = x->GetRasterCount();
+  if (w != y->GetRasterXSize() || h != y->GetRasterYSize() || n != y->GetRasterCount()) return false;
+  {
+    // Copies: CPLStringList takes ownership of what it is given.
+    CPLStringList mx(CSLDuplicate(x->GetMetadata())), my(CSLDuplicate(y->GetMetadata()));
+    mx.Sort();
+    my.Sort();
+    if (mx.size() != my.size()) return false;
+    for (int i = 0; i < mx.size(); ++i)
+      if (std::string(mx[i]) != my[i]) return false;
+  }
+  std::vector<float> row_x(std::size_t(w) * 64), row_y(std::size_t(w) * 64);
+  for (int b = 1; b <= n; ++b) {
+    GDALRasterBand* bx = x->GetRasterBand(b);
+    GDALRasterBand* by = y->GetRasterBand(b);
+    if (std::string(bx->GetDescription()) != by->GetDescription()) return false;
+    for (int r = 0; r < h; r += 64) {
+      const int rows = std::min(64, h - r);
+      if (bx->RasterIO(GF_Read, 0, r, w, rows, row_x.data(), w, rows, GDT_Float32, 0, 0, nullptr) != CE_None ||
+          by->RasterIO(GF_Read, 0, r, w, rows, row_y.data(), w, rows, GDT_Float32, 0, 0, nullptr) != CE_None)
+        return false;
+      if (std::memcmp(row_x.data(), row_y.data(), std::size_t(w) * rows * sizeof(float)) != 0) return false;
+    }
+  }
+  return true;
+}
+
 void OutputSet::commit() {
   for (auto& file : files_) {
     CPLErrorReset();
@@ -163,7 +217,15 @@ void OutputSet::commit() {
   }
   std::set<std::string> folders;
   for (auto& file : files_) {
+    if (keep_unchanged_ && fs::exists(file->spec.path) &&
+        same_raster_content(file->temporary, file->spec.path)) {
+      std::error_code ec;
+      fs::remove(file->temporary, ec);
+      ++unchanged_;
+      continue;
+    }
     publish(file->temporary, file->spec.path);
+    ++written_;
     folders.insert(fs::path(file->spec.path).parent_path().string());
   }
   for (const std::string& folder : folders) sync_path(folder, true);

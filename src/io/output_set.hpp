@@ -53,8 +53,14 @@ class OutputSet {
     write(index, core, planes, scratch);
   }
 
-  /// Closes, syncs and renames every file to its final name.
+  /// Closes, syncs and renames every file to its final name. With keep_unchanged, a file whose
+  /// final name already holds the same pixels, band descriptions and metadata is left as it
+  /// is (same bytes, same modification time) and the new copy is dropped.
   void commit();
+  void set_keep_unchanged(bool keep) { keep_unchanged_ = keep; }
+  /// After commit: how many files were written and how many were left unchanged.
+  int written() const { return written_; }
+  int unchanged() const { return unchanged_; }
 
  private:
   struct File {
@@ -66,12 +72,22 @@ class OutputSet {
   std::vector<std::unique_ptr<File>> files_;
   int tile_ = 256;
   bool committed_ = false;
+  bool keep_unchanged_ = false;
+  int written_ = 0, unchanged_ = 0;
 };
+
+/// True when two rasters hold the same size, bands (pixels bit for bit, descriptions) and
+/// dataset metadata.
+bool same_raster_content(const std::string& a, const std::string& b);
 
 /// The hidden name a file is written under before it is published.
 std::string temporary_name(const std::string& final_path);
 
-/// Writes `text` to `path` atomically (temporary, fsync, rename).
+/// True when two files hold the same bytes.
+bool file_checksum_equal(const std::string& a, const std::string& b);
+
+/// Writes `text` to `path` atomically (temporary, fsync, rename); leaves `path` untouched when
+/// it already holds exactly `text`.
 void write_text_atomically(const std::string& path, const std::string& text);
 
 }  // namespace kalends::detail

@@ -167,6 +167,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   if (pattern) {
     bool first = true;
     for (const std::string& path : expand_glob(input)) {
+      if (std::find(rules.exclude.begin(), rules.exclude.end(), path) != rules.exclude.end()) continue;
       auto time = date_from_name(path);
       if (!time) time = rules.date;
       if (!time)
@@ -229,6 +230,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       stack.name_ = name_from_file(input);
   }
 
+  if (stack.layers_.empty()) throw InputError(input, "every file of this pattern was left out");
   std::stable_sort(stack.layers_.begin(), stack.layers_.end(),
                    [](const Layer& a, const Layer& b) { return a.time < b.time; });
   for (std::size_t i = 1; i < stack.layers_.size(); ++i)
@@ -272,7 +274,7 @@ static void read_window(GDALRasterBand& band, const Layer& layer, const Window& 
                                      "); the file may be truncated or corrupt");
 }
 
-void StackReader::read_values(std::size_t index, const Window& w, float* out) {
+std::int64_t StackReader::read_values(std::size_t index, const Window& w, float* out) {
   const Layer& layer = stack_.layers()[index];
   read_window(handles_->band(layer), layer, w, out, GDT_Float32);
   const ValueRules& rules = stack_.rules();
@@ -282,15 +284,18 @@ void StackReader::read_values(std::size_t index, const Window& w, float* out) {
   const double low = rules.valid_min.value_or(-INFINITY);
   const double high = rules.valid_max.value_or(INFINITY);
   const std::int64_t n = w.pixels();
+  std::int64_t out_of_range = 0;
   for (std::int64_t i = 0; i < n; ++i) {
     const float raw = out[i];
     // In double, rounded once: float32 arithmetic would be one ulp off for a third of scaled
     // integers (raw * 0.0001f).
     const double v = double(raw) * layer.scale + layer.offset;
-    const bool missing = (has_nodata && !nodata_is_nan && raw == nodata) ||
-                         !(v >= low && v <= high) || !std::isfinite(v);
-    out[i] = missing ? NAN : float(v);
+    const bool nodata_value = (has_nodata && !nodata_is_nan && raw == nodata) || !std::isfinite(v);
+    const bool outside = !nodata_value && !(v >= low && v <= high);
+    out_of_range += outside;
+    out[i] = nodata_value || outside ? NAN : float(v);
   }
+  return out_of_range;
 }
 
 void StackReader::read_integers(std::size_t index, const Window& w, std::uint32_t* out) {

@@ -248,7 +248,8 @@ CompareSummary run_compare(const CompareRequest& request) {
   json += fmt::format("],\n  \"year_most_below\": {},\n  \"year_most_above\": {},\n",
                       summary.year_most_below.empty() ? "null" : summary.year_most_below,
                       summary.year_most_above.empty() ? "null" : summary.year_most_above);
-  json += fmt::format("  \"class_raster\": \"{}\"\n}}\n", summary.class_path);
+  // The file name alone, so the folder can be moved.
+  json += fmt::format("  \"class_raster\": \"{}\"\n}}\n", fs::path(summary.class_path).filename().string());
   summary.json_path = (fs::path(request.out_dir) / "compare.json").string();
   detail::write_text_atomically(summary.json_path, json);
 
@@ -274,7 +275,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const Anomaly& a : top)
     md += fmt::format("| {} | {} | {} | {} | {:+.2f} | {:+.4f} |\n", a.x, a.y, a.year, a.period, a.standardised, a.raw);
   md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more).\n",
-                    summary.class_path);
+                    fs::path(summary.class_path).filename().string());
   summary.markdown_path = (fs::path(request.out_dir) / "compare.md").string();
   detail::write_text_atomically(summary.markdown_path, md);
   return summary;

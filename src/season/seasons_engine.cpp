@@ -256,9 +256,12 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                       },
                       tbb::simple_partitioner());
   });
+  outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 
   SeasonsSummary summary;
+  summary.outputs_written = outputs.written();
+  summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;
   summary.periods = P;
   summary.files = int(output_paths.size());

@@ -72,7 +72,7 @@ class DemoSeasons(kt.TempDirTestCase):
             report = json.load(f)
         self.assertEqual(report["year_most_below"], 2022)
         self.assertTrue(os.path.exists(os.path.join(self.compare, "compare.md")))
-        classes = g.Open(report["class_raster"]).ReadAsArray()
+        classes = g.Open(os.path.join(self.compare, report["class_raster"])).ReadAsArray()
         self.assertTrue(set(np.unique(classes[np.isfinite(classes)])) <= {0.0, 1.0, 2.0, 3.0})
 
 

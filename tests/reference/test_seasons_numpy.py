@@ -206,6 +206,34 @@ class SeasonsCommand(kt.TempDirTestCase):
         # One cosine a year: one season per pixel.
         self.assertGreater(np.mean(data[names.index("seasons")] == 1), 0.95)
 
+    def test_compare_quantiles_and_zones_equal_numpy(self):
+        g = kt.gdal()
+        miss = self.read("ndvi_synoptic_miss.tif")
+        zones = np.zeros(miss.shape[1:], np.int16)
+        zones[:, 15:] = 2                               # two invented zones: west 0, east 2
+        zone_path = os.path.join(self.tmp, "zones.tif")
+        kt.write_raster(zone_path, zones, geotransform=(500000, 250, 0, 9000000, 0, -250), epsg=32736)
+        out = os.path.join(self.tmp, "compare")
+        done = kt.run_kalends(["-q", "compare", self.out, "--out", out, "--zones", zone_path])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "compare.json")) as f:
+            report = json.load(f)
+        rmse = miss[0][np.isfinite(miss[0])]
+        for key, q in (("p05", 0.05), ("p50", 0.5), ("p95", 0.95)):
+            self.assertAlmostEqual(report["synoptic_rmse"][key], float(np.quantile(rmse, q)), places=5)
+        self.assertEqual(sum(report["rmse_histogram"]["counts"]), rmse.size)
+        by_zone = {z["zone"]: z for z in report["zones"]}
+        self.assertEqual(sorted(by_zone), [0, 2])
+        for zone in (0, 2):
+            values = miss[0][(zones == zone) & np.isfinite(miss[0])]
+            self.assertAlmostEqual(by_zone[zone]["synoptic_rmse"]["p50"], float(np.median(values)), places=5)
+            self.assertEqual(by_zone[zone]["synoptic_rmse"]["count"], values.size)
+        classes = g.Open(os.path.join(out, report["class_raster"])).ReadAsArray()
+        share = miss[2]
+        expected = np.where(share < 0.25, 0, np.where(share < 0.5, 1, np.where(share < 0.75, 2, 3)))
+        ok = np.isfinite(share)
+        np.testing.assert_array_equal(classes[ok], expected[ok])
+
     def test_outputs_keep_the_grid(self):
         g = kt.gdal()
         ds = g.Open(os.path.join(self.out, "ndvi_synoptic_mean.tif"))

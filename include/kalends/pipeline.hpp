@@ -1,0 +1,59 @@
+// Jobs: a TOML file of inputs and steps, run incrementally against a state database in the
+// output folder.
+#pragma once
+
+#include <functional>
+#include <string>
+#include <vector>
+
+namespace kalends {
+
+struct RunOptions {
+  std::string job_file;
+  std::string out_dir;   // overrides the job's [job] out
+  bool dry_run = false;
+  bool skip_bad = false;  // skip unreadable or mismatched inputs, list them, exit 3
+  bool wait_for_lock = false;
+};
+
+/// What happened to one step.
+struct StepReport {
+  std::string id, kind;
+  enum class Action { ran, up_to_date, would_run, failed, not_reached } action = Action::up_to_date;
+  std::string reason;    // why it ran (or would run)
+  double seconds = 0;
+  int outputs_written = 0, outputs_unchanged = 0;
+  std::string caution;  // a reminder to show with the step's outputs (suitability)
+};
+
+struct RunReport {
+  std::vector<StepReport> steps;
+  std::vector<std::string> skipped_inputs;  // "path: reason"
+  double seconds = 0;
+  long long peak_memory_bytes = 0;
+  std::string out_dir;
+  std::string error;  // first failure, one line
+  int exit_code = 0;  // 0 done, 1 failed, 2 bad input or job file, 3 partly done (--skip-bad)
+};
+
+/// Events for a progress display or a log: step start/end and block progress.
+struct RunEvents {
+  std::function<void(const std::string& step, const std::string& kind, const std::string& reason)> step_started;
+  std::function<void(const std::string& step, int done, int total)> progress;
+  std::function<void(const StepReport&)> step_finished;
+};
+
+/// Runs (or with dry_run, plans) the job. Job-file errors throw UsageError with the file and
+/// line; step failures are reported in the RunReport (exit_code), with the state database left
+/// consistent so that the next run resumes.
+RunReport run_job(const RunOptions& options, const RunEvents& events = {});
+
+/// What is done, stale or failed, from the state database, without running anything.
+struct StepStatus {
+  std::string id, kind, state;  // done, stale, failed, never run
+  std::string detail;           // when it finished, or the failure, or what changed
+  int outputs = 0;
+};
+std::vector<StepStatus> job_status(const RunOptions& options);
+
+}  // namespace kalends

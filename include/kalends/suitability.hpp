@@ -1,0 +1,111 @@
+// Temperature suitability for malaria transmission from stacks: the diurnal cycle rebuilt
+// from daily extremes or two overpasses (run_diurnal), its parameters fitted to hourly records
+// (run_calibration), and thermal-response models applied hour by hour and summarised per
+// period and year (run_suitability).
+//
+// A temperature-suitability index describes temperature alone: it is not malaria risk,
+// incidence or a case forecast. Land-surface temperature is not air temperature.
+#pragma once
+
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "kalends/fill.hpp"
+#include "kalends/season.hpp"
+#include "kalends/stack.hpp"
+#include "kalends/thermal.hpp"
+
+namespace kalends {
+
+/// The one-line reminder printed whenever suitability layers are written.
+extern const char* const suitability_caution;
+
+enum class TemperatureUnit { automatic, kelvin, celsius };
+TemperatureUnit parse_temperature_unit(const std::string& text);  // UsageError naming --units
+
+/// Where temperatures come from: daily extremes (`tmin` + `tmax`), two overpasses a day
+/// (`day` + `night`, paired by date), or temperatures used as they are (`temperature`:
+/// monthly means, hourly records). Inputs are globs, folders of `kalends fill` outputs or
+/// multi-band rasters.
+struct TemperatureInputs {
+  std::string tmin, tmax, day, night, temperature;
+  ValueRules rules;
+  TemperatureUnit unit = TemperatureUnit::automatic;
+  double day_hour = 13.5, night_hour = 1.5;  // local solar time of the overpasses
+  DateMarks marks = DateMarks::start;        // what a composite's date marks
+};
+
+struct DiurnalRequest {
+  TemperatureInputs inputs;
+  std::string parameters_file;  // TOML overriding the table (e.g. from --calibrate)
+  std::string out_dir, name;    // name: default "diurnal"
+  std::int64_t memory_bytes = std::int64_t(1) << 30;
+  int threads = 0;
+  Compression compression = Compression::deflate;
+  std::string command_line;
+};
+
+struct DiurnalSummary {
+  int days = 0, width = 0, height = 0;
+  std::int64_t implausible = 0;
+  DiurnalParameters parameters;
+  double seconds = 0;
+  std::vector<std::string> outputs;
+};
+
+/// One GeoTIFF per input date, `<name>_YYYY-MM-DD.tif`, 24 float32 bands `hour 00` ..
+/// `hour 23` (UTC), deg C.
+DiurnalSummary run_diurnal(const DiurnalRequest& request);
+
+struct CalibrationRequest {
+  std::string reference;  // hourly (sub-daily) temperatures: a multi-band raster or a glob
+  ValueRules rules;
+  TemperatureUnit unit = TemperatureUnit::automatic;
+  std::optional<TimePoint> first_day, last_day;  // local solar days to fit on (inclusive)
+  std::string parameters_file;                   // starting values (default: the table)
+  std::string out_file;                          // TOML with the fitted [diurnal] a, b, c
+  std::string command_line;
+};
+
+struct CalibrationSummary {
+  DiurnalParameters initial, fitted;
+  // K (= deg C); mid_range: each day constant at (Tmin + Tmax) / 2, the naive baseline.
+  double rmse_initial = NAN, rmse_fitted = NAN, rmse_mid_range = NAN;
+  std::int64_t hours = 0;
+  int pixel_days = 0, iterations = 0;
+};
+
+/// Fits a, b and c by least squares to every complete local solar day of the reference (each
+/// day rebuilt from its own minimum and maximum, as run_diurnal does) and writes them to
+/// `out_file` atomically.
+CalibrationSummary run_calibration(const CalibrationRequest& request);
+
+struct SuitabilityRequest {
+  TemperatureInputs inputs;
+  ThermalModelKind model = ThermalModelKind::r0_2013;
+  Parasite parasite = Parasite::falciparum;
+  double window_low = NAN, window_high = NAN;  // NaN = from the table
+  std::string parameters_file;
+  CalendarPeriod period;  // default: calendar months
+  std::optional<int> first_year, last_year;
+  double threshold = 0;       // a period is suitable where its suitability is above this
+  std::string out_dir, name;  // name: default the model's tag
+  std::int64_t memory_bytes = std::int64_t(1) << 30;
+  int threads = 0;
+  Compression compression = Compression::deflate;
+  std::string command_line;
+};
+
+struct SuitabilitySummary {
+  int years = 0, periods = 0, files = 0, width = 0, height = 0, first_year = 0, last_year = 0;
+  std::string model;
+  double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value
+  std::int64_t implausible = 0;        // values outside -100..100 deg C, taken as missing
+  double seconds = 0;
+  std::vector<std::string> outputs;
+};
+
+SuitabilitySummary run_suitability(const SuitabilityRequest& request);
+
+}  // namespace kalends

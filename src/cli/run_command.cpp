@@ -1,0 +1,121 @@
+// kalends run JOB, kalends status JOB
+#include <unistd.h>
+
+#include <chrono>
+#include <cstdio>
+#include <fmt/format.h>
+
+#include "cli/commands.hpp"
+#include "io/json_text.hpp"
+#include "kalends/pipeline.hpp"
+
+namespace kalends::cli {
+
+namespace {
+
+const char* action_name(StepReport::Action a) {
+  switch (a) {
+    case StepReport::Action::ran: return "ran";
+    case StepReport::Action::up_to_date: return "up to date";
+    case StepReport::Action::would_run: return "would run";
+    case StepReport::Action::failed: return "failed";
+    case StepReport::Action::not_reached: return "not reached";
+  }
+  return "?";
+}
+
+}  // namespace
+
+Action add_run_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("run", "Run a job file: only the steps whose inputs or parameters changed");
+  struct Options {
+    RunOptions run;
+    std::string log = "text";
+  };
+  auto o = std::make_shared<Options>();
+  sub->add_option("job", o->run.job_file, "The job file (TOML)")->required();
+  sub->add_option("--out", o->run.out_dir, "Output folder (overrides the job file's)");
+  sub->add_flag("--dry-run", o->run.dry_run, "Say what would be done, and why; change nothing");
+  sub->add_flag("--skip-bad", o->run.skip_bad, "Leave out bad input files, list them, exit 3");
+  sub->add_flag("--wait", o->run.wait_for_lock, "Wait for another run on the same output folder to end");
+  sub->add_option("--log", o->log, "text or json (one JSON object per line)")
+      ->check(CLI::IsMember({"text", "json"}))
+      ->capture_default_str();
+  return [o, &global] {
+    const bool json = o->log == "json";
+    const bool terminal = !json && !global.quiet && isatty(STDERR_FILENO);
+    RunEvents events;
+    auto started = std::make_shared<std::chrono::steady_clock::time_point>();
+    events.step_started = [=, &global](const std::string& step, const std::string& kind, const std::string& reason) {
+      *started = std::chrono::steady_clock::now();
+      if (json)
+        fmt::print("{{\"event\": \"step_started\", \"step\": \"{}\", \"kind\": \"{}\", \"reason\": \"{}\"}}\n",
+                   detail::json_escape(step), kind, detail::json_escape(reason));
+      else if (!global.quiet)
+        fmt::print("{}: {} ({})\n", step, kind, reason);
+    };
+    events.progress = [=](const std::string& step, int done, int total) {
+      if (!terminal) return;
+      const double seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - *started).count();
+      const double rate = seconds > 0 ? done / seconds : 0;
+      const int width = 30, filled = total > 0 ? width * done / total : width;
+      std::fprintf(stderr, "\r  %s [%s%s] %d/%d blocks, %.1f blocks/s, %.0f s left ", step.c_str(),
+                   std::string(filled, '#').c_str(), std::string(width - filled, '.').c_str(), done, total, rate,
+                   rate > 0 ? (total - done) / rate : 0.0);
+      if (done == total) std::fprintf(stderr, "\n");
+    };
+    events.step_finished = [=](const StepReport& r) {
+      if (json)
+        fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
+                   "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}}}\n",
+                   detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
+                   r.outputs_written, r.outputs_unchanged);
+    };
+    const RunReport report = run_job(o->run, events);
+    if (json) {
+      fmt::print("{{\"event\": \"finished\", \"exit_code\": {}, \"seconds\": {:.3f}, \"peak_memory_mib\": {:.0f}, "
+                 "\"skipped\": [",
+                 report.exit_code, report.seconds, report.peak_memory_bytes / 1048576.0);
+      for (std::size_t i = 0; i < report.skipped_inputs.size(); ++i)
+        fmt::print("{}\"{}\"", i ? ", " : "", detail::json_escape(report.skipped_inputs[i]));
+      fmt::print("], \"error\": \"{}\"}}\n", detail::json_escape(report.error));
+    } else if (!global.quiet || report.exit_code != 0) {
+      int ran = 0;
+      for (const StepReport& r : report.steps) ran += r.action == StepReport::Action::ran;
+      const bool nothing = ran == 0 && report.exit_code == 0 && !o->run.dry_run;
+      fmt::print("kalends run: {}{} -> {}\n", o->run.dry_run ? "dry run, nothing changed" : nothing ? "nothing new, nothing done" : "done",
+                 report.exit_code ? " with problems" : "", report.out_dir);
+      for (const StepReport& r : report.steps) {
+        fmt::print("  {:<12} {:<10} {}", r.id, action_name(r.action), r.reason);
+        if (r.action == StepReport::Action::ran)
+          fmt::print(" — {:.1f} s, {} files written, {} unchanged", r.seconds, r.outputs_written, r.outputs_unchanged);
+        fmt::print("\n");
+        if (!r.caution.empty()) fmt::print("  {}\n", r.caution);
+      }
+      for (const std::string& s : report.skipped_inputs) fmt::print("  skipped input: {}\n", s);
+      fmt::print("  {:.1f} s, peak memory {:.0f} MiB\n", report.seconds, report.peak_memory_bytes / 1048576.0);
+      if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
+    }
+    global.exit_code = report.exit_code;
+  };
+}
+
+Action add_status_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("status", "What is done, stale or failed for a job file");
+  auto o = std::make_shared<RunOptions>();
+  sub->add_option("job", o->job_file, "The job file (TOML)")->required();
+  sub->add_option("--out", o->out_dir, "Output folder (overrides the job file's)");
+  return [o, &global] {
+    const auto list = job_status(*o);
+    int not_done = 0;
+    for (const StepStatus& s : list) {
+      fmt::print("{:<12} {:<8} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
+                 s.outputs ? fmt::format(" ({} files)", s.outputs) : "");
+      not_done += s.state != "done";
+    }
+    (void)global;
+    (void)not_done;
+  };
+}
+
+}  // namespace kalends::cli

@@ -1,0 +1,239 @@
+// kalends diurnal, kalends suitability
+#include <fmt/format.h>
+
+#include <cstdio>
+
+#include "cli/commands.hpp"
+#include "kalends/error.hpp"
+#include "kalends/suitability.hpp"
+
+namespace kalends::cli {
+
+namespace {
+
+std::optional<double> optional_number(const std::string& text, const std::string& option) {
+  if (text.empty()) return std::nullopt;
+  try {
+    std::size_t used = 0;
+    const double v = std::stod(text, &used);
+    if (used == text.size()) return v;
+  } catch (const std::exception&) {
+  }
+  throw UsageError(option + " '" + text + "'", "expected a number");
+}
+
+std::pair<std::string, std::string> split_pair(const std::string& text, const std::string& option,
+                                               const std::string& expected) {
+  const auto comma = text.find(',');
+  if (comma == std::string::npos || comma == 0 || comma + 1 == text.size())
+    throw UsageError(option + " '" + text + "'", "expected " + expected);
+  return {text.substr(0, comma), text.substr(comma + 1)};
+}
+
+DateMarks parse_marks(const std::string& text) {
+  return text == "end" ? DateMarks::end : text == "middle" ? DateMarks::middle : DateMarks::start;
+}
+
+// The options every temperature command shares: where the temperatures come from and how to
+// read them.
+struct InputOptions {
+  TemperatureInputs inputs;
+  std::string units = "auto", scale, offset, nodata, marks = "start";
+
+  void add(CLI::App* sub, bool with_temperature) {
+    sub->add_option("--tmin", inputs.tmin,
+                    "Daily minimum temperature: quoted glob, folder or multi-band raster");
+    sub->add_option("--tmax", inputs.tmax, "Daily maximum temperature, paired with --tmin by date");
+    sub->add_option("--day", inputs.day,
+                    "Daytime overpass temperature (e.g. land-surface temperature)");
+    sub->add_option("--night", inputs.night,
+                    "Night-time overpass temperature, paired with --day by date");
+    if (with_temperature)
+      sub->add_option(
+          "--temperature", inputs.temperature,
+          "Temperatures used as given, no diurnal cycle (monthly means, hourly records)");
+    sub->add_option("--day-time", inputs.day_hour, "Local solar time of the day overpass, hours")
+        ->capture_default_str();
+    sub->add_option("--night-time", inputs.night_hour,
+                    "Local solar time of the night overpass, hours")
+        ->capture_default_str();
+    sub->add_option("--units", units, "auto (from the files), kelvin or celsius")
+        ->check(CLI::IsMember({"auto", "kelvin", "celsius"}))
+        ->capture_default_str();
+    sub->add_option("--scale", scale,
+                    "Override the files' scale factor (e.g. 0.02 for kelvin x 50)");
+    sub->add_option("--offset", offset, "Override the files' offset");
+    sub->add_option("--nodata", nodata, "Override the files' nodata value");
+    sub->add_option("--band", inputs.rules.band,
+                    "Band of each single-date file (1 = value of fill outputs)")
+        ->capture_default_str();
+    sub->add_option("--date-marks", marks,
+                    "What an input date marks in its composite: start, middle or end")
+        ->check(CLI::IsMember({"start", "middle", "end"}))
+        ->capture_default_str();
+  }
+
+  void resolve() {
+    inputs.unit = parse_temperature_unit(units);
+    inputs.rules.scale = optional_number(scale, "--scale");
+    inputs.rules.offset = optional_number(offset, "--offset");
+    inputs.rules.nodata = optional_number(nodata, "--nodata");
+    inputs.marks = parse_marks(marks);
+  }
+};
+
+}  // namespace
+
+Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("diurnal",
+                                     "Hourly temperature (Parton & Logan 1981) from daily extremes "
+                                     "or two overpasses; fit its parameters");
+  struct Options {
+    InputOptions in;
+    DiurnalRequest request;
+    std::string calibrate, save_parameters, fit_days, memory = "1G", compression = "deflate";
+  };
+  auto o = std::make_shared<Options>();
+  o->in.add(sub, false);
+  DiurnalRequest& r = o->request;
+  sub->add_option("--out", r.out_dir, "Output folder (one 24-band GeoTIFF per day)");
+  sub->add_option("--name", r.name, "Output name prefix (default: diurnal)");
+  sub->add_option("--parameters", r.parameters_file,
+                  "TOML file overriding the parameter table (e.g. from --calibrate)");
+  sub->add_option(
+      "--calibrate", o->calibrate,
+      "Fit a, b and c by least squares to these hourly records (a multi-band raster or glob)");
+  sub->add_option("--save-parameters", o->save_parameters,
+                  "With --calibrate: the TOML file to write");
+  sub->add_option("--fit-days", o->fit_days,
+                  "With --calibrate: FIRST,LAST local solar days to fit on (YYYY-MM-DD)");
+  sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")
+      ->capture_default_str();
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")
+      ->capture_default_str();
+  return [o, &global] {
+    o->in.resolve();
+    if (!o->calibrate.empty()) {
+      CalibrationRequest c;
+      c.reference = o->calibrate;
+      c.rules = o->in.inputs.rules;
+      c.unit = o->in.inputs.unit;
+      c.parameters_file = o->request.parameters_file;
+      c.out_file = o->save_parameters;
+      c.command_line = global.command_line;
+      if (!o->fit_days.empty()) {
+        const auto [first, last] =
+            split_pair(o->fit_days, "--fit-days", "FIRST,LAST as YYYY-MM-DD,YYYY-MM-DD");
+        c.first_day = parse_iso_time(first);
+        c.last_day = parse_iso_time(last);
+        if (!c.first_day || !c.last_day)
+          throw UsageError("--fit-days '" + o->fit_days + "'", "expected YYYY-MM-DD,YYYY-MM-DD");
+      }
+      const CalibrationSummary s = run_calibration(c);
+      if (!global.quiet)
+        fmt::print(
+            "kalends diurnal --calibrate: a={:.4f} b={:.4f} c={:.4f} fitted on {} pixel-days ({} "
+            "hours) in {} "
+            "iterations\n  RMSE {:.3f} K fitted, {:.3f} K with a={:g} b={:g} c={:g}, {:.3f} K for "
+            "the constant (min + max) / 2 -> {}\n",
+            s.fitted.a, s.fitted.b, s.fitted.c, s.pixel_days, s.hours, s.iterations, s.rmse_fitted,
+            s.rmse_initial, s.initial.a, s.initial.b, s.initial.c, s.rmse_mid_range, c.out_file);
+      return;
+    }
+    DiurnalRequest& r = o->request;
+    r.inputs = o->in.inputs;
+    if (r.out_dir.empty())
+      throw UsageError("--out", "an output folder is required (or --calibrate)");
+    r.memory_bytes = parse_memory(o->memory);
+    r.compression = parse_compression(o->compression);
+    r.command_line = global.command_line;
+    const DiurnalSummary s = run_diurnal(r);
+    if (!global.quiet) {
+      fmt::print(
+          "kalends diurnal: {} days of {} x {} px, 24 UTC hours each (a={:g} b={:g} c={:g}) in "
+          "{:.1f} s -> {}\n",
+          s.days, s.width, s.height, s.parameters.a, s.parameters.b, s.parameters.c, s.seconds,
+          r.out_dir);
+      if (s.implausible > 0)
+        fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
+    }
+  };
+}
+
+Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("suitability",
+                                     "Temperature suitability for malaria transmission (r0-2013, "
+                                     "degree-day, window): per period and year");
+  struct Options {
+    InputOptions in;
+    SuitabilityRequest request;
+    std::string model = "r0-2013", parasite = "falciparum", window, period = "1M", years,
+                memory = "1G", compression = "deflate";
+  };
+  auto o = std::make_shared<Options>();
+  o->in.add(sub, true);
+  SuitabilityRequest& r = o->request;
+  sub->add_option("--out", r.out_dir, "Output folder")->required();
+  sub->add_option("--model", o->model, "r0-2013, degree-day or window")->capture_default_str();
+  sub->add_option("--parasite", o->parasite, "degree-day model: falciparum or vivax")
+      ->capture_default_str();
+  sub->add_option("--window", o->window, "window model: LOW,HIGH deg C (default 18,34)");
+  sub->add_option("--threshold", r.threshold,
+                  "A period is suitable where its suitability is above this")
+      ->capture_default_str();
+  sub->add_option("--period", o->period, "Calendar: 1M (months), 16d or 8d")->capture_default_str();
+  sub->add_option("--years", o->years, "Years to use, e.g. 2021-2023 or 2022");
+  sub->add_option("--parameters", r.parameters_file, "TOML file overriding the parameter table");
+  sub->add_option("--name", r.name, "Output name prefix (default: the model)");
+  sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")
+      ->capture_default_str();
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")
+      ->capture_default_str();
+  return [o, &global] {
+    o->in.resolve();
+    SuitabilityRequest& r = o->request;
+    r.inputs = o->in.inputs;
+    r.model = parse_model_kind(o->model);
+    r.parasite = parse_parasite(o->parasite);
+    if (!o->window.empty()) {
+      const auto [low, high] = split_pair(o->window, "--window", "LOW,HIGH in deg C");
+      r.window_low = *optional_number(low, "--window");
+      r.window_high = *optional_number(high, "--window");
+    }
+    r.period = CalendarPeriod::parse(o->period);
+    if (!o->years.empty()) {
+      int a = 0, b = 0;
+      char dash = 0;
+      if (std::sscanf(o->years.c_str(), "%d%c%d", &a, &dash, &b) == 3 && dash == '-')
+        r.first_year = a, r.last_year = b;
+      else if (std::sscanf(o->years.c_str(), "%d", &a) == 1 &&
+               o->years.find('-') == std::string::npos)
+        r.first_year = r.last_year = a;
+      else
+        throw UsageError("--years '" + o->years + "'", "expected YYYY or YYYY-YYYY");
+    }
+    r.memory_bytes = parse_memory(o->memory);
+    r.compression = parse_compression(o->compression);
+    r.command_line = global.command_line;
+    const SuitabilitySummary s = run_suitability(r);
+    if (!global.quiet) {
+      fmt::print(
+          "kalends suitability: {}\n  {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> "
+          "{} ({} files)\n",
+          s.model, s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
+          r.out_dir, s.files);
+      fmt::print(
+          "  synoptic cycle: {:.2f} suitable {} per pixel on average (suitability above {:g})\n",
+          s.mean_suitable_periods,
+          r.period.kind == CalendarPeriod::Kind::month ? "months" : "periods", r.threshold);
+      if (s.implausible > 0)
+        fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
+      std::fflush(stdout);
+    }
+    std::fprintf(stderr, "%s\n", suitability_caution);
+  };
+}
+
+}  // namespace kalends::cli

@@ -1,0 +1,554 @@
+// kalends run / status: a job's steps in order, each skipped when its fingerprint (program
+// version, parameters, and the checksums of what it reads) matches the state database.
+#include <fcntl.h>
+#include <glob.h>
+#include <sys/file.h>
+#include <sys/stat.h>
+#include <unistd.h>
+
+#include <chrono>
+#include <filesystem>
+#include <fmt/format.h>
+#include <set>
+
+#include "engine/memory_budget.hpp"
+#include "kalends/compare.hpp"
+#include "kalends/error.hpp"
+#include "kalends/fill.hpp"
+#include "kalends/pipeline.hpp"
+#include "kalends/seasons.hpp"
+#include "kalends/spectral_index.hpp"
+#include "kalends/suitability.hpp"
+#include "pipeline/job_file.hpp"
+#include "pipeline/state.hpp"
+
+namespace kalends {
+
+namespace {
+
+namespace fs = std::filesystem;
+using detail::Job;
+using detail::JobInput;
+using detail::JobStep;
+
+// ---- files of an input -------------------------------------------------------------------
+
+std::vector<std::string> files_of(const std::string& pattern) {
+  std::string path = pattern;
+  // NETCDF:"file.nc":var -> file.nc
+  if (const auto q1 = path.find('"'); q1 != std::string::npos) {
+    const auto q2 = path.find('"', q1 + 1);
+    if (q2 != std::string::npos) return {path.substr(q1 + 1, q2 - q1 - 1)};
+  }
+  if (path.find_first_of("*?[") == std::string::npos) return {path};
+  glob_t g{};
+  std::vector<std::string> files;
+  if (::glob(path.c_str(), 0, nullptr, &g) == 0)
+    for (std::size_t i = 0; i < g.gl_pathc; ++i) files.emplace_back(g.gl_pathv[i]);
+  globfree(&g);
+  std::sort(files.begin(), files.end());
+  return files;
+}
+
+struct Scan {
+  std::vector<detail::InputRecord> records;  // to remember
+  std::map<std::string, std::string> checksum;
+  int new_files = 0, changed_files = 0;
+  std::set<std::string> known_before;
+};
+
+// Checksums, reused from the database while size and modification time are unchanged.
+std::string checksum_of(const std::string& path, const detail::StateDatabase* db, Scan& scan) {
+  if (auto it = scan.checksum.find(path); it != scan.checksum.end()) return it->second;
+  struct stat st {};
+  if (::stat(path.c_str(), &st) != 0) throw InputError(path, "no such file");
+  const std::int64_t mtime = std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec;
+  const auto known = db ? db->input(path) : std::nullopt;
+  std::string sum;
+  if (known && known->size == st.st_size && known->mtime_ns == mtime) {
+    sum = known->checksum;
+  } else {
+    sum = detail::file_checksum(path);
+    if (!known) ++scan.new_files;
+    else if (known->checksum != sum) ++scan.changed_files;
+  }
+  scan.records.push_back({path, std::int64_t(st.st_size), mtime, sum});
+  scan.checksum[path] = sum;
+  return sum;
+}
+
+// ---- the lock ----------------------------------------------------------------------------
+
+class FolderLock {
+ public:
+  FolderLock(const std::string& folder, bool wait) {
+    const std::string path = (fs::path(folder) / "lock").string();
+    fd_ = ::open(path.c_str(), O_RDWR | O_CREAT, 0644);
+    if (fd_ < 0) throw OutputError(path, "cannot create the lock file");
+    if (::flock(fd_, LOCK_EX | (wait ? 0 : LOCK_NB)) != 0) {
+      char pid[32] = {0};
+      (void)!::pread(fd_, pid, sizeof pid - 1, 0);
+      ::close(fd_);
+      fd_ = -1;
+      throw OutputError(folder, fmt::format("another kalends run (pid {}) is working on this output folder; "
+                                            "try again when it ends, or use --wait",
+                                            std::string(pid).empty() ? "?" : std::string(pid)));
+    }
+    const std::string me = std::to_string(::getpid());
+    (void)!::ftruncate(fd_, 0);
+    (void)!::pwrite(fd_, me.data(), me.size(), 0);
+  }
+  ~FolderLock() {
+    if (fd_ >= 0) ::close(fd_);  // closing releases the lock, also when the process dies
+  }
+
+ private:
+  int fd_ = -1;
+};
+
+// ---- options -----------------------------------------------------------------------------
+
+struct Options {
+  const detail::StepOptions& o;
+  const std::string& where;
+  bool has(const char* k) const { return o.count(k) != 0; }
+  std::string text(const char* k, const std::string& fallback = "") const {
+    const auto it = o.find(k);
+    return it == o.end() ? fallback : it->second;
+  }
+  double number(const char* k, double fallback) const { return has(k) ? std::stod(o.at(k)) : fallback; }
+  int integer(const char* k, int fallback) const { return has(k) ? std::stoi(o.at(k)) : fallback; }
+  bool flag(const char* k) const { return text(k) == "true"; }
+};
+
+ValueRules rules_of(const JobInput& input) {
+  ValueRules r;
+  r.scale = input.scale;
+  r.offset = input.offset;
+  r.nodata = input.nodata;
+  r.valid_min = input.valid_min;
+  r.valid_max = input.valid_max;
+  r.band = input.band;
+  return r;
+}
+
+std::string step_folder(const std::string& out, const std::string& id) { return (fs::path(out) / id).string(); }
+
+void remove_partials(const std::string& folder) {
+  std::error_code ec;
+  if (!fs::exists(folder)) return;
+  for (const auto& entry : fs::recursive_directory_iterator(folder, ec)) {
+    const std::string name = entry.path().filename().string();
+    if (entry.is_regular_file() && name.size() > 8 && name.front() == '.' &&
+        name.compare(name.size() - 8, 8, ".partial") == 0)
+      fs::remove(entry.path(), ec);
+  }
+}
+
+std::vector<std::string> outputs_in(const std::string& folder) {
+  std::vector<std::string> files;
+  std::error_code ec;
+  if (!fs::exists(folder)) return files;
+  for (const auto& entry : fs::recursive_directory_iterator(folder, ec))
+    if (entry.is_regular_file() && entry.path().filename().string().front() != '.')
+      files.push_back(entry.path().string());
+  std::sort(files.begin(), files.end());
+  return files;
+}
+
+struct Resolved {
+  std::string pattern;     // what the step reads
+  std::string qa, keep;    // QA for fill steps
+  ValueRules rules;
+  std::string fingerprint;  // of what it reads
+};
+
+class Runner {
+ public:
+  Runner(const RunOptions& options, const RunEvents& events) : options_(options), events_(events) {}
+
+  RunReport run() {
+    const auto started = std::chrono::steady_clock::now();
+    job_ = detail::read_job(options_.job_file);
+    out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
+    if (out_.empty()) throw UsageError(options_.job_file, "no output folder: set 'out' in [job] or give --out");
+    report_.out_dir = out_;
+    const fs::path state_dir = fs::path(out_) / ".kalends";
+    std::error_code ec;
+    fs::create_directories(state_dir, ec);
+    if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
+    FolderLock lock(state_dir.string(), options_.wait_for_lock);
+    db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
+    memory_ = job_.memory;
+    bool failed = false;
+    for (const JobStep& step : job_.steps) {
+      StepReport r;
+      r.id = step.id;
+      r.kind = step.kind;
+      if (failed) {
+        r.action = StepReport::Action::not_reached;
+        report_.steps.push_back(r);
+        continue;
+      }
+      try {
+        run_step(step, r);
+      } catch (const Error& e) {
+        r.action = StepReport::Action::failed;
+        r.reason = e.what();
+        if (!options_.dry_run) {
+          try {
+            db_->step_failed(step.id, step.kind, e.what());
+          } catch (const Error&) {
+            // A full disk can refuse this too; the step then simply has no 'done' record.
+          }
+        }
+        report_.error = e.what();
+        report_.exit_code = dynamic_cast<const InputError*>(&e) ? 2 : 1;
+        failed = true;
+      }
+      if (events_.step_finished) events_.step_finished(r);
+      report_.steps.push_back(r);
+    }
+    if (!options_.dry_run) {
+      try {
+        db_->remember_inputs(scan_.records);
+        db_->remember_skipped(report_.skipped_inputs);
+      } catch (const Error& e) {
+        // The steps' own records are already safe; the checksums are only a cache.
+        if (report_.error.empty()) report_.error = e.what();
+        if (report_.exit_code == 0) report_.exit_code = 1;
+      }
+    }
+    if (report_.exit_code == 0 && !report_.skipped_inputs.empty()) report_.exit_code = 3;
+    report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+    report_.peak_memory_bytes = detail::peak_resident_bytes();
+    return report_;
+  }
+
+  std::vector<StepStatus> status() {
+    job_ = detail::read_job(options_.job_file);
+    out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
+    const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
+    if (fs::exists(state)) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
+    std::vector<StepStatus> list;
+    for (const JobStep& step : job_.steps) {
+      StepStatus s;
+      s.id = step.id;
+      s.kind = step.kind;
+      std::string fingerprint;
+      try {
+        fingerprint = fingerprint_of(step);
+      } catch (const Error& e) {
+        s.state = "stale";
+        s.detail = std::string("an input cannot be read: ") + e.what();
+        list.push_back(s);
+        continue;
+      }
+      const auto record = db_ ? db_->step(step.id) : std::nullopt;
+      if (!record) {
+        s.state = "never run";
+      } else if (record->status == "failed") {
+        s.state = "failed";
+        s.detail = record->finished + " UTC: " + record->message;
+      } else {
+        s.outputs = int(record->outputs.size());
+        const bool complete = std::all_of(record->outputs.begin(), record->outputs.end(),
+                                          [](const std::string& p) { return fs::exists(p); });
+        if (record->fingerprint == fingerprint && complete) {
+          s.state = "done";
+          s.detail = fmt::format("{} UTC, {:.1f} s", record->finished, record->seconds);
+        } else {
+          s.state = "stale";
+          s.detail = !complete ? "outputs missing" : why_changed(record->fingerprint, fingerprint);
+        }
+      }
+      list.push_back(s);
+    }
+    return list;
+  }
+
+ private:
+  // Fingerprints: "<parameters>:<what it reads>", so a change can be explained.
+  std::string fingerprint_of(const JobStep& step) {
+    if (auto it = fingerprints_.find(step.id); it != fingerprints_.end()) return it->second;
+    std::string params = std::string(KALENDS_VERSION) + "|" + step.kind;
+    for (const auto& [k, v] : step.options) params += "|" + k + "=" + v;
+    std::string reads;
+    for (const std::string& name : step.inputs) reads += "|" + name + "=" + source_fingerprint(name);
+    const std::string fp = detail::text_checksum(params) + ":" + detail::text_checksum(reads);
+    fingerprints_[step.id] = fp;
+    return fp;
+  }
+
+  std::string source_fingerprint(const std::string& name) {
+    if (auto in = job_.inputs.find(name); in != job_.inputs.end()) {
+      const JobInput& input = in->second;
+      std::string text = input.stack + "|" + input.qa + "|" + input.keep;
+      for (const auto& v : {input.scale, input.offset, input.nodata, input.valid_min, input.valid_max})
+        text += "|" + (v ? fmt::format("{:.17g}", *v) : std::string("-"));
+      text += "|" + std::to_string(input.band);
+      for (const std::string& pattern : {input.stack, input.qa}) {
+        if (pattern.empty()) continue;
+        const auto files = files_of(pattern);
+        if (files.empty()) throw InputError(pattern, "no file matches this pattern");
+        for (const std::string& f : files) {
+          if (std::find(excluded_.begin(), excluded_.end(), f) != excluded_.end()) continue;
+          text += "|" + f + "=" + checksum_of(f, db_.get(), scan_);
+        }
+      }
+      return detail::text_checksum(text);
+    }
+    for (const JobStep& s : job_.steps)
+      if (s.id == name) return fingerprint_of(s);
+    throw UsageError(options_.job_file, "unknown input '" + name + "'");
+  }
+
+  std::string why_changed(const std::string& before, const std::string& now) const {
+    if (before.empty()) return "failed last time";
+    const bool params = before.substr(0, 16) != now.substr(0, 16);
+    const bool reads = before.substr(17) != now.substr(17);
+    std::string why;
+    if (params) why = "parameters or program version changed";
+    if (reads) {
+      std::string what = "its inputs changed";
+      if (scan_.new_files || scan_.changed_files)
+        what = fmt::format("its inputs changed ({} new, {} changed files)", scan_.new_files, scan_.changed_files);
+      why += (why.empty() ? "" : "; ") + what;
+    }
+    return why.empty() ? "outputs missing" : why;
+  }
+
+  Resolved resolve(const std::string& name) {
+    Resolved r;
+    if (auto in = job_.inputs.find(name); in != job_.inputs.end()) {
+      r.pattern = in->second.stack;
+      r.qa = in->second.qa;
+      r.keep = in->second.keep;
+      r.rules = rules_of(in->second);
+    } else {
+      const std::string folder = step_folder(out_, name);
+      r.pattern = (fs::path(folder) / "*.tif").string();
+      if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
+    }
+    r.rules.exclude = excluded_;
+    return r;
+  }
+
+  void run_step(const JobStep& step, StepReport& report) {
+    const std::string fingerprint = fingerprint_of(step);
+    const auto record = db_->step(step.id);
+    const bool complete = record && std::all_of(record->outputs.begin(), record->outputs.end(),
+                                                [](const std::string& p) { return fs::exists(p); });
+    if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
+      report.action = StepReport::Action::up_to_date;
+      report.reason = "up to date";
+      return;
+    }
+    report.reason = !record ? "never run" : record->status == "failed" ? "failed last time"
+                                                 : !complete ? "outputs missing"
+                                                             : why_changed(record->fingerprint, fingerprint);
+    if (options_.dry_run) {
+      report.action = StepReport::Action::would_run;
+      return;
+    }
+    if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
+    const auto started = std::chrono::steady_clock::now();
+    const std::string folder = step_folder(out_, step.id);
+    remove_partials(folder);
+    // With --skip-bad, a bad input file is left out and the step tried again.
+    for (int attempt = 0;; ++attempt) {
+      try {
+        execute(step, folder, report);
+        break;
+      } catch (const InputError& e) {
+        if (!options_.skip_bad || attempt > 1000 || e.where().empty() || !fs::is_regular_file(e.where()) ||
+            std::find(excluded_.begin(), excluded_.end(), e.where()) != excluded_.end())
+          throw;
+        excluded_.push_back(e.where());
+        report_.skipped_inputs.push_back(e.where() + ": " + e.reason());
+        fingerprints_.clear();
+      }
+    }
+    report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+    report.action = StepReport::Action::ran;
+    detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
+                            outputs_in(folder)};
+    db_->step_done(done);
+  }
+
+  void execute(const JobStep& step, const std::string& folder, StepReport& report) {
+    const Options o{step.options, job_.path};
+    const std::string command = "kalends run " + fs::path(job_.path).filename().string() + " (step " + step.id + ")";
+    auto progress = [&](int done, int total) {
+      if (events_.progress) events_.progress(step.id, done, total);
+    };
+    if (step.kind == "fill") {
+      const Resolved in = resolve(o.text("input"));
+      FillRequest r;
+      r.input = in.pattern;
+      r.rules = in.rules;
+      r.qa_input = in.qa;
+      r.qa_keep = o.text("keep", in.keep);
+      if (r.qa_input.empty()) r.qa_keep.clear();
+      MethodOptions& m = r.method;
+      m.method = o.text("method", m.method);
+      if (o.has("lambda") && o.text("lambda") != "auto") m.lambda = o.number("lambda", 0);
+      if (o.has("lambda_range")) {
+        const std::string range = o.text("lambda_range");
+        m.lambda_min = std::stod(range.substr(0, range.find(',')));
+        m.lambda_max = std::stod(range.substr(range.find(',') + 1));
+      }
+      m.order = o.integer("order", m.order);
+      m.envelope_upper = o.text("envelope", "none") == "upper";
+      m.robust = o.flag("robust");
+      m.iterations = o.integer("iterations", m.iterations);
+      m.harmonics = o.integer("harmonics", m.harmonics);
+      m.trend = o.flag("trend");
+      m.reject_below = o.number("reject_below", m.reject_below);
+      m.max_gap_days = o.number("max_gap", m.max_gap_days);
+      m.max_extrapolation_days = o.number("max_extrapolation", m.max_extrapolation_days);
+      m.spacetime_space_smoothing = o.number("space_smoothing", m.spacetime_space_smoothing);
+      m.spacetime_time_smoothing = o.number("time_smoothing", m.spacetime_time_smoothing);
+      m.spacetime_climate_smoothing = o.number("climate_smoothing", m.spacetime_climate_smoothing);
+      m.spacetime_season_smoothing = o.number("season_smoothing", m.spacetime_season_smoothing);
+      m.spacetime_halo = o.integer("halo", m.spacetime_halo);
+      m.spacetime_tolerance = o.number("tolerance", m.spacetime_tolerance);
+      r.smooth = o.flag("smooth");
+      if (o.has("every")) r.every = CalendarPeriod::parse(o.text("every"));
+      r.name = o.text("name");
+      r.out_dir = folder;
+      r.memory_bytes = cli_memory();
+      r.threads = job_.threads;
+      r.compression = parse_compression(o.text("compress", "deflate"));
+      r.command_line = command;
+      r.keep_unchanged = true;
+      const FillSummary s = run_fill(r, progress);
+      report.outputs_written = s.outputs_written;
+      report.outputs_unchanged = s.outputs_unchanged;
+    } else if (step.kind == "seasons") {
+      const Resolved in = resolve(o.text("input"));
+      SeasonsRequest r;
+      r.input = in.pattern;
+      r.rules = in.rules;
+      r.out_dir = folder;
+      r.name = o.text("name");
+      r.period = CalendarPeriod::parse(o.text("period", "1M"));
+      if (o.has("years")) {
+        const std::string y = o.text("years");
+        const auto dash = y.find('-');
+        r.first_year = std::stoi(y.substr(0, dash));
+        r.last_year = dash == std::string::npos ? *r.first_year : std::stoi(y.substr(dash + 1));
+      }
+      const std::string marks = o.text("date_marks", "start");
+      r.marks = marks == "end" ? DateMarks::end : marks == "middle" ? DateMarks::middle : DateMarks::start;
+      r.cycle.prominence_share = o.number("prominence", r.cycle.prominence_share);
+      r.cycle.threshold_share = o.number("threshold", r.cycle.threshold_share);
+      r.memory_bytes = cli_memory();
+      r.threads = job_.threads;
+      r.compression = parse_compression(o.text("compress", "deflate"));
+      r.command_line = command;
+      r.keep_unchanged = true;
+      const SeasonsSummary s = run_seasons(r);
+      report.outputs_written = s.outputs_written;
+      report.outputs_unchanged = s.outputs_unchanged;
+    } else if (step.kind == "compare") {
+      CompareRequest r;
+      r.seasons_dir = step_folder(out_, o.text("input"));
+      r.out_dir = folder;
+      r.zones = o.text("zones");
+      r.top = o.integer("top", r.top);
+      run_compare(r);
+      report.outputs_written = int(outputs_in(folder).size());
+    } else if (step.kind == "suitability") {
+      SuitabilityRequest r;
+      TemperatureInputs& t = r.inputs;
+      const char* names[] = {"day", "night", "tmin", "tmax", "temperature"};
+      std::string* fields[] = {&t.day, &t.night, &t.tmin, &t.tmax, &t.temperature};
+      for (int k = 0; k < 5; ++k)
+        if (o.has(names[k])) {
+          const Resolved in = resolve(o.text(names[k]));
+          *fields[k] = in.pattern;
+          t.rules = in.rules;
+        }
+      t.unit = parse_temperature_unit(o.text("units", "auto"));
+      t.day_hour = o.number("day_hour", t.day_hour);
+      t.night_hour = o.number("night_hour", t.night_hour);
+      const std::string marks = o.text("date_marks", "start");
+      t.marks = marks == "end" ? DateMarks::end : marks == "middle" ? DateMarks::middle : DateMarks::start;
+      r.model = parse_model_kind(o.text("model", "r0-2013"));
+      r.parasite = parse_parasite(o.text("parasite", "falciparum"));
+      if (o.has("window")) {
+        const std::string w = o.text("window");
+        r.window_low = std::stod(w.substr(0, w.find(',')));
+        r.window_high = std::stod(w.substr(w.find(',') + 1));
+      }
+      r.parameters_file = o.text("parameters");
+      r.period = CalendarPeriod::parse(o.text("period", "1M"));
+      if (o.has("years")) {
+        const std::string y = o.text("years");
+        const auto dash = y.find('-');
+        r.first_year = std::stoi(y.substr(0, dash));
+        r.last_year = dash == std::string::npos ? *r.first_year : std::stoi(y.substr(dash + 1));
+      }
+      r.threshold = o.number("threshold", r.threshold);
+      r.out_dir = folder;
+      r.name = o.text("name");
+      r.memory_bytes = cli_memory();
+      r.threads = job_.threads;
+      r.compression = parse_compression(o.text("compress", "deflate"));
+      r.command_line = command;
+      const SuitabilitySummary s = run_suitability(r);
+      report.outputs_written = int(s.outputs.size());
+      report.caution = suitability_caution;
+    } else if (step.kind == "index") {
+      IndexRequest r;
+      const Resolved red = resolve(o.text("red")), nir = resolve(o.text("nir"));
+      r.red = red.pattern;
+      r.nir = nir.pattern;
+      r.rules = red.rules;
+      if (o.has("blue")) r.blue = resolve(o.text("blue")).pattern;
+      r.red_band = o.integer("red_band", 1);
+      r.nir_band = o.integer("nir_band", 1);
+      r.blue_band = o.integer("blue_band", 1);
+      r.kind = o.text("index", "ndvi") == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
+      r.qa = red.qa;
+      r.name = o.text("name");
+      r.out_dir = folder;
+      r.threads = job_.threads;
+      r.compression = parse_compression(o.text("compress", "deflate"));
+      r.command_line = command;
+      r.keep_unchanged = true;
+      const IndexSummary s = run_index(r);
+      report.outputs_written = s.outputs_written;
+      report.outputs_unchanged = s.outputs_unchanged;
+    }
+  }
+
+  std::int64_t cli_memory() const;
+
+  RunOptions options_;
+  RunEvents events_;
+  Job job_;
+  std::string out_, memory_;
+  std::unique_ptr<detail::StateDatabase> db_;
+  Scan scan_;
+  std::map<std::string, std::string> fingerprints_;
+  std::vector<std::string> excluded_;
+  RunReport report_;
+};
+
+std::int64_t Runner::cli_memory() const { return parse_memory_size(memory_); }
+
+}  // namespace
+
+RunReport run_job(const RunOptions& options, const RunEvents& events) {
+  Runner runner(options, events);
+  return runner.run();
+}
+
+std::vector<StepStatus> job_status(const RunOptions& options) {
+  Runner runner(options, {});
+  return runner.status();
+}
+
+}  // namespace kalends

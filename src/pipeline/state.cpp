@@ -1,0 +1,204 @@
+#include "pipeline/state.hpp"
+
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <fmt/format.h>
+
+#include "kalends/error.hpp"
+
+namespace kalends::detail {
+
+namespace {
+
+// FNV-1a, 64-bit (Fowler, Noll & Vo; offset basis and prime as published by its authors).
+constexpr std::uint64_t fnv_offset = 14695981039346656037ull;
+constexpr std::uint64_t fnv_prime = 1099511628211ull;
+
+std::uint64_t fnv(std::uint64_t h, const unsigned char* data, std::size_t n) {
+  for (std::size_t i = 0; i < n; ++i) {
+    h ^= data[i];
+    h *= fnv_prime;
+  }
+  return h;
+}
+
+class Statement {
+ public:
+  Statement(sqlite3* db, const char* sql, const std::string& where) : where_(where) {
+    if (sqlite3_prepare_v2(db, sql, -1, &stmt_, nullptr) != SQLITE_OK)
+      throw OutputError(where, std::string("state database: ") + sqlite3_errmsg(db));
+  }
+  ~Statement() { sqlite3_finalize(stmt_); }
+  Statement& bind(int i, const std::string& v) {
+    sqlite3_bind_text(stmt_, i, v.c_str(), int(v.size()), SQLITE_TRANSIENT);
+    return *this;
+  }
+  Statement& bind(int i, std::int64_t v) {
+    sqlite3_bind_int64(stmt_, i, v);
+    return *this;
+  }
+  Statement& bind(int i, double v) {
+    sqlite3_bind_double(stmt_, i, v);
+    return *this;
+  }
+  bool step() {
+    const int rc = sqlite3_step(stmt_);
+    if (rc == SQLITE_ROW) return true;
+    if (rc == SQLITE_DONE) return false;
+    throw OutputError(where_, std::string("state database: ") + sqlite3_errmsg(sqlite3_db_handle(stmt_)));
+  }
+  std::string text(int c) const {
+    const unsigned char* t = sqlite3_column_text(stmt_, c);
+    return t ? reinterpret_cast<const char*>(t) : "";
+  }
+  std::int64_t integer(int c) const { return sqlite3_column_int64(stmt_, c); }
+  double real(int c) const { return sqlite3_column_double(stmt_, c); }
+
+ private:
+  sqlite3_stmt* stmt_ = nullptr;
+  std::string where_;
+};
+
+}  // namespace
+
+std::string text_checksum(const std::string& text) {
+  return fmt::format("{:016x}", fnv(fnv_offset, reinterpret_cast<const unsigned char*>(text.data()), text.size()));
+}
+
+std::string file_checksum(const std::string& path) {
+  const int fd = ::open(path.c_str(), O_RDONLY);
+  if (fd < 0) throw InputError(path, "cannot read the file");
+  std::uint64_t h = fnv_offset;
+  std::vector<unsigned char> buffer(1 << 20);
+  for (;;) {
+    const ssize_t n = ::read(fd, buffer.data(), buffer.size());
+    if (n < 0) {
+      ::close(fd);
+      throw InputError(path, "read failed while computing its checksum");
+    }
+    if (n == 0) break;
+    h = fnv(h, buffer.data(), std::size_t(n));
+  }
+  ::close(fd);
+  return fmt::format("{:016x}", h);
+}
+
+StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(path) {
+  const int flags = read_only ? SQLITE_OPEN_READONLY : SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE;
+  if (sqlite3_open_v2(path.c_str(), &db_, flags, nullptr) != SQLITE_OK) {
+    const std::string message = db_ ? sqlite3_errmsg(db_) : "cannot open";
+    sqlite3_close(db_);
+    db_ = nullptr;
+    throw OutputError(path, "state database: " + message);
+  }
+  sqlite3_busy_timeout(db_, 10000);
+  if (!read_only) {
+    // Rollback journal with full sync: a kill or power cut leaves the last committed state.
+    exec("PRAGMA synchronous = FULL");
+    exec("CREATE TABLE IF NOT EXISTS inputs (path TEXT PRIMARY KEY, size INTEGER, mtime_ns INTEGER, checksum TEXT)");
+    exec("CREATE TABLE IF NOT EXISTS steps (id TEXT PRIMARY KEY, kind TEXT, fingerprint TEXT, status TEXT,"
+         " finished TEXT, seconds REAL, message TEXT)");
+    exec("CREATE TABLE IF NOT EXISTS outputs (path TEXT PRIMARY KEY, step TEXT)");
+    exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
+  }
+}
+
+StateDatabase::~StateDatabase() { sqlite3_close(db_); }
+
+void StateDatabase::rollback() const {
+  // After a failed COMMIT (a full disk) SQLite may have rolled back already.
+  sqlite3_exec(db_, "ROLLBACK", nullptr, nullptr, nullptr);
+}
+
+void StateDatabase::exec(const std::string& sql) const {
+  char* error = nullptr;
+  if (sqlite3_exec(db_, sql.c_str(), nullptr, nullptr, &error) != SQLITE_OK) {
+    const std::string message = error ? error : "error";
+    sqlite3_free(error);
+    throw OutputError(path_, "state database: " + message);
+  }
+}
+
+std::optional<InputRecord> StateDatabase::input(const std::string& path) const {
+  Statement s(db_, "SELECT size, mtime_ns, checksum FROM inputs WHERE path = ?", path_);
+  s.bind(1, path);
+  if (!s.step()) return std::nullopt;
+  return InputRecord{path, s.integer(0), s.integer(1), s.text(2)};
+}
+
+void StateDatabase::remember_inputs(const std::vector<InputRecord>& records) {
+  exec("BEGIN IMMEDIATE");
+  try {
+    for (const InputRecord& r : records) {
+      Statement one(db_, "INSERT OR REPLACE INTO inputs (path, size, mtime_ns, checksum) VALUES (?, ?, ?, ?)", path_);
+      one.bind(1, r.path).bind(2, r.size).bind(3, r.mtime_ns).bind(4, r.checksum);
+      one.step();
+    }
+    exec("COMMIT");
+  } catch (...) {
+    rollback();
+    throw;
+  }
+}
+
+std::optional<StepRecord> StateDatabase::step(const std::string& id) const {
+  Statement s(db_, "SELECT kind, fingerprint, status, finished, seconds, message FROM steps WHERE id = ?", path_);
+  s.bind(1, id);
+  if (!s.step()) return std::nullopt;
+  StepRecord r{id, s.text(0), s.text(1), s.text(2), s.text(3), s.text(5), s.real(4), {}};
+  Statement o(db_, "SELECT path FROM outputs WHERE step = ? ORDER BY path", path_);
+  o.bind(1, id);
+  while (o.step()) r.outputs.push_back(o.text(0));
+  return r;
+}
+
+void StateDatabase::step_done(const StepRecord& record) {
+  exec("BEGIN IMMEDIATE");
+  try {
+    Statement s(db_, "INSERT OR REPLACE INTO steps (id, kind, fingerprint, status, finished, seconds, message)"
+                     " VALUES (?, ?, ?, 'done', datetime('now'), ?, '')", path_);
+    s.bind(1, record.id).bind(2, record.kind).bind(3, record.fingerprint).bind(4, record.seconds);
+    s.step();
+    Statement d(db_, "DELETE FROM outputs WHERE step = ?", path_);
+    d.bind(1, record.id);
+    d.step();
+    for (const std::string& out : record.outputs) {
+      Statement o(db_, "INSERT OR REPLACE INTO outputs (path, step) VALUES (?, ?)", path_);
+      o.bind(1, out).bind(2, record.id);
+      o.step();
+    }
+    exec("COMMIT");
+  } catch (...) {
+    rollback();
+    throw;
+  }
+}
+
+void StateDatabase::step_failed(const std::string& id, const std::string& kind, const std::string& message) {
+  Statement s(db_, "INSERT INTO steps (id, kind, fingerprint, status, finished, seconds, message)"
+                   " VALUES (?, ?, '', 'failed', datetime('now'), 0, ?)"
+                   " ON CONFLICT(id) DO UPDATE SET status = 'failed', fingerprint = '', finished = datetime('now'),"
+                   " message = excluded.message", path_);
+  s.bind(1, id).bind(2, kind).bind(3, message);
+  s.step();
+}
+
+void StateDatabase::remember_skipped(const std::vector<std::string>& skipped) {
+  exec("BEGIN IMMEDIATE");
+  try {
+    exec("DELETE FROM skipped");
+    for (const std::string& entry : skipped) {
+      Statement s(db_, "INSERT OR REPLACE INTO skipped (path, reason, seen) VALUES (?, ?, datetime('now'))", path_);
+      const auto colon = entry.find(": ");
+      s.bind(1, entry.substr(0, colon)).bind(2, colon == std::string::npos ? "" : entry.substr(colon + 2));
+      s.step();
+    }
+    exec("COMMIT");
+  } catch (...) {
+    rollback();
+    throw;
+  }
+}
+
+}  // namespace kalends::detail

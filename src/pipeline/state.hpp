@@ -1,0 +1,55 @@
+// The state database of a job's output folder (SQLite): what every input was when last seen,
+// and what every step made from what.
+#pragma once
+
+#include <sqlite3.h>
+
+#include <cstdint>
+#include <optional>
+#include <string>
+#include <vector>
+
+namespace kalends::detail {
+
+struct InputRecord {
+  std::string path;
+  std::int64_t size = 0, mtime_ns = 0;
+  std::string checksum;
+};
+
+struct StepRecord {
+  std::string id, kind, fingerprint, status, finished, message;
+  double seconds = 0;
+  std::vector<std::string> outputs;
+};
+
+class StateDatabase {
+ public:
+  /// Opens (creating) `path`. Every change is a transaction: a run killed at any moment leaves
+  /// the database as it was before the change.
+  explicit StateDatabase(const std::string& path, bool read_only = false);
+  ~StateDatabase();
+  StateDatabase(const StateDatabase&) = delete;
+  StateDatabase& operator=(const StateDatabase&) = delete;
+
+  std::optional<InputRecord> input(const std::string& path) const;
+  void remember_inputs(const std::vector<InputRecord>& records);
+  std::optional<StepRecord> step(const std::string& id) const;
+  /// Marks a step done with its outputs, or failed with a message (outputs kept from before).
+  void step_done(const StepRecord& record);
+  void step_failed(const std::string& id, const std::string& kind, const std::string& message);
+  void remember_skipped(const std::vector<std::string>& skipped);
+
+ private:
+  void exec(const std::string& sql) const;
+  void rollback() const;
+  sqlite3* db_ = nullptr;
+  std::string path_;
+};
+
+/// FNV-1a 64-bit over a file's bytes, as 16 hex digits (a change detector, not a security hash).
+std::string file_checksum(const std::string& path);
+/// FNV-1a 64-bit of a text, as 16 hex digits.
+std::string text_checksum(const std::string& text);
+
+}  // namespace kalends::detail

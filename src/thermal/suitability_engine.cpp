@@ -1,0 +1,314 @@
+// run_suitability: temperatures -> blocks -> hourly thermal response (Parton-Logan hours from
+// daily extremes or overpasses, or the temperatures as given) -> daily means -> period means
+// -> synoptic and year-specific layers and their suitable-period counts -> GeoTIFFs.
+#include <fmt/format.h>
+#include <tbb/enumerable_thread_specific.h>
+#include <tbb/parallel_for.h>
+#include <tbb/task_arena.h>
+
+#include <algorithm>
+#include <chrono>
+#include <cmath>
+#include <filesystem>
+#include <set>
+
+#include "engine/memory_budget.hpp"
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/suitability.hpp"
+#include "thermal/temperature_source.hpp"
+
+namespace kalends {
+
+const char* const suitability_caution =
+    "Caution: temperature suitability describes temperature alone - not malaria risk, incidence "
+    "or a case forecast; land-surface temperature is not air temperature; decisions belong with "
+    "national programme data, entomological surveillance and local expertise.";
+
+namespace {
+
+namespace fs = std::filesystem;
+constexpr int tile_size = 256;
+
+std::vector<std::string> period_labels(const CalendarPeriod& calendar) {
+  std::vector<std::string> labels;
+  for (const Period& p : periods_of_year(2001, calendar)) {
+    const CivilDate d = civil_from_days(p.first_day);
+    labels.push_back(calendar.kind == CalendarPeriod::Kind::month
+                         ? fmt::format("month {:02d}", d.month)
+                         : fmt::format("doy {:03d}", day_of_year(d)));
+  }
+  return labels;
+}
+
+std::string parameter_text(const ThermalParameters& table,
+                           const std::vector<std::string>& sections) {
+  std::string out;
+  for (const ThermalParameter& e : table.entries()) {
+    if (std::find(sections.begin(), sections.end(), e.section) == sections.end()) continue;
+    out += fmt::format("{}{}.{}=", out.empty() ? "" : ";", e.section, e.key);
+    for (std::size_t i = 0; i < e.values.size(); ++i)
+      out += fmt::format("{}{:g}", i ? "," : "", e.values[i]);
+  }
+  return out;
+}
+
+struct Worker {
+  std::unique_ptr<detail::TemperatureBlock> block;
+  std::unique_ptr<detail::PixelLocator> locator;
+  std::unique_ptr<detail::PixelDays> days;
+  std::vector<double> latitude, longitude, daily, value, mean;
+  std::vector<std::vector<float>> bands;
+  std::vector<float> tile;
+  double count_sum = 0;
+  std::int64_t count_pixels = 0;
+};
+
+}  // namespace
+
+SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
+  const auto started = std::chrono::steady_clock::now();
+  if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  if (!(request.threshold >= 0 && request.threshold < 1))
+    throw UsageError("--threshold", "must lie in [0, 1): a period is suitable above it");
+  ThermalParameters table = ThermalParameters::defaults();
+  if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
+  const ThermalModel model(request.model, request.parasite, table, request.window_low,
+                           request.window_high);
+  const DiurnalParameters diurnal = DiurnalParameters::from(table);
+  const detail::TemperatureSource source = detail::TemperatureSource::open(request.inputs);
+  using Mode = detail::TemperatureSource::Mode;
+
+  const std::vector<TimePoint>& times = source.times;
+  int first_year = times.front().date().year, last_year = times.back().date().year;
+  if (request.first_year) first_year = std::max(first_year, *request.first_year);
+  if (request.last_year) last_year = std::min(last_year, *request.last_year);
+  if (first_year > last_year)
+    throw UsageError("--years", fmt::format("no year of the inputs ({}-{}) is in the range",
+                                            times.front().date().year, times.back().date().year));
+  const int years = last_year - first_year + 1;
+  const int P = int(periods_of_year(2001, request.period).size());
+  std::vector<Period> periods;
+  for (int y = first_year; y <= last_year; ++y)
+    for (const Period& p : periods_of_year(y, request.period)) periods.push_back(p);
+  // Which dates feed each period, with their weights: composites and days by their overlap in
+  // days (as `kalends seasons`); sub-daily records each count once in the period holding them.
+  std::vector<PeriodSources> sources;
+  if (source.sub_daily) {
+    sources.resize(periods.size());
+    for (std::size_t i = 0; i < times.size(); ++i)
+      for (std::size_t k = 0; k < periods.size(); ++k)
+        if (source.days[i] >= periods[k].first_day &&
+            source.days[i] < periods[k].first_day + periods[k].days) {
+          sources[k].composite.push_back(int(i));
+          sources[k].days.push_back(1.0);
+        }
+  } else {
+    sources = period_sources(times, periods, request.inputs.marks);
+  }
+  std::vector<char> used(times.size(), 0);
+  for (const PeriodSources& s : sources)
+    for (int c : s.composite) used[c] = 1;
+
+  const Grid& grid = source.grid;
+  const std::string name = request.name.empty() ? model.tag() : request.name;
+  std::error_code ec;
+  fs::create_directories(request.out_dir, ec);
+  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+
+  std::string inputs_text, temperature_text;
+  for (const Stack& s : source.stacks) inputs_text += (inputs_text.empty() ? "" : " ") + s.input();
+  if (source.mode == Mode::extremes)
+    temperature_text =
+        fmt::format("hours from daily minimum and maximum, Parton-Logan a={:g} b={:g} c={:g}",
+                    diurnal.a, diurnal.b, diurnal.c);
+  else if (source.mode == Mode::overpasses)
+    temperature_text = fmt::format(
+        "hours from day and night overpasses at {:g} h and {:g} h local solar time, Parton-Logan "
+        "a={:g} b={:g} c={:g}",
+        source.day_hour, source.night_hour, diurnal.a, diurnal.b, diurnal.c);
+  else
+    temperature_text = "temperatures as given (no diurnal cycle)";
+  const std::vector<std::string> sections = request.model == ThermalModelKind::r0_2013
+                                                ? std::vector<std::string>{"diurnal", "r0-2013"}
+                                            : request.model == ThermalModelKind::degree_day
+                                                ? std::vector<std::string>{"diurnal", "degree-day"}
+                                                : std::vector<std::string>{"diurnal", "window"};
+
+  std::vector<detail::OutputSpec> specs;
+  auto add = [&](const std::string& suffix, const std::vector<std::string>& band_names,
+                 const std::string& layer, const std::string& year) {
+    detail::OutputSpec spec;
+    spec.path = (fs::path(request.out_dir) / (name + "_" + suffix + ".tif")).string();
+    spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
+                     {"KALENDS_LAYER", layer},
+                     {"KALENDS_MODEL", model.description()},
+                     {"KALENDS_PARAMETERS", parameter_text(table, sections)},
+                     {"KALENDS_TEMPERATURE", temperature_text},
+                     {"KALENDS_THRESHOLD", fmt::format("{:g}", request.threshold)},
+                     {"KALENDS_PERIOD", request.period.label()},
+                     {"KALENDS_YEARS", fmt::format("{}-{}", first_year, last_year)},
+                     {"KALENDS_INPUT", inputs_text},
+                     {"KALENDS_CAUTION", suitability_caution}};
+    if (!year.empty()) spec.metadata["KALENDS_YEAR"] = year;
+    if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
+    for (const std::string& b : band_names) spec.bands.push_back({b, "", {}});
+    specs.push_back(std::move(spec));
+    return specs.size() - 1;
+  };
+  const auto labels = period_labels(request.period);
+  const std::vector<std::string> summary_bands{
+      request.period.kind == CalendarPeriod::Kind::month ? "suitable_months" : "suitable_periods",
+      "longest_suitable_run", "mean_suitability"};
+  const std::size_t synoptic =
+      add("synoptic", labels, "relative suitability 0-1, mean over years", "");
+  const std::size_t synoptic_summary =
+      add("summary_synoptic", summary_bands,
+          "suitable periods of the synoptic cycle (runs wrap over the year)", "");
+  std::vector<std::size_t> year_file, summary_file;
+  for (int y = first_year; y <= last_year; ++y) {
+    const std::string ys = std::to_string(y);
+    year_file.push_back(add("year_" + ys, labels, "relative suitability 0-1 of the year", ys));
+    summary_file.push_back(add("summary_" + ys, summary_bands, "suitable periods of the year", ys));
+  }
+  std::vector<std::size_t> first_band(specs.size());
+  std::size_t total_bands = 0;
+  for (std::size_t f = 0; f < specs.size(); ++f)
+    first_band[f] = total_bands, total_bands += specs[f].bands.size();
+
+  const int threads =
+      request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
+  const std::int64_t bytes_per_pixel =
+      std::int64_t(times.size()) * (4 * std::int64_t(source.stacks.size()) + 8) +
+      std::int64_t(total_bands) * 4 + 16;
+  std::set<std::string> files;
+  for (const Stack& s : source.stacks)
+    for (const Layer& l : s.layers()) files.insert(l.path);
+  const detail::MemoryShare share = detail::share_memory(
+      request.memory_bytes, threads, bytes_per_pixel, int(files.size()), int(specs.size()));
+  detail::set_gdal_cache(share.gdal_cache);
+  const BlockPlan plan = BlockPlan::make(
+      grid.width, grid.height, 0, detail::parallel_block_pixels(grid, share, threads), tile_size);
+  std::vector<std::string> output_paths;
+  for (const auto& s : specs) output_paths.push_back(s.path);
+  // Fail on missing georeferencing before any file is created.
+  if (source.mode != Mode::constant)
+    detail::PixelLocator check(grid, source.stacks.front().input());
+  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+
+  tbb::enumerable_thread_specific<Worker> workers([&] {
+    Worker w;
+    w.block = std::make_unique<detail::TemperatureBlock>(source);
+    if (source.mode != Mode::constant) {
+      w.locator = std::make_unique<detail::PixelLocator>(grid, source.stacks.front().input());
+      w.days = std::make_unique<detail::PixelDays>(source, diurnal);
+    }
+    return w;
+  });
+  const double threshold = request.threshold;
+  auto process = [&](const Block& block, Worker& w) {
+    const Window& core = block.core;
+    const std::int64_t n = core.pixels();
+    w.block->read(core, 0, times.size());
+    if (w.locator) w.locator->locate(core, w.latitude, w.longitude);
+    w.bands.resize(total_bands);
+    for (auto& b : w.bands) b.assign(n, NAN);
+    auto band = [&](std::size_t file, std::size_t b) -> std::vector<float>& {
+      return w.bands[first_band[file] + b];
+    };
+    w.daily.assign(times.size(), NAN);
+    w.value.assign(periods.size(), NAN);
+    w.mean.assign(P, NAN);
+    for (std::int64_t p = 0; p < n; ++p) {
+      if (w.days) w.days->build(*w.block, p, w.latitude[p], 0, times.size());
+      for (std::size_t i = 0; i < times.size(); ++i) {
+        if (!used[i]) continue;
+        w.daily[i] =
+            w.days ? w.days->daily_mean(i, model) : model.relative(w.block->values(0, i)[p]);
+      }
+      for (std::size_t k = 0; k < periods.size(); ++k) {
+        double sum = 0, weight = 0;
+        for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
+          const double v = w.daily[sources[k].composite[j]];
+          if (std::isfinite(v)) sum += sources[k].days[j] * v, weight += sources[k].days[j];
+        }
+        w.value[k] = weight > 0 ? sum / weight : NAN;
+      }
+      for (int q = 0; q < P; ++q) {
+        double sum = 0;
+        int count = 0;
+        for (int y = 0; y < years; ++y) {
+          const double v = w.value[std::size_t(y) * P + q];
+          band(year_file[y], q)[p] = float(v);
+          if (std::isfinite(v)) sum += v, ++count;
+        }
+        w.mean[q] = count > 0 ? sum / count : NAN;
+        band(synoptic, q)[p] = float(w.mean[q]);
+      }
+      auto put = [&](std::size_t file, const SuitableRun& r) {
+        band(file, 0)[p] = float(r.count);
+        band(file, 1)[p] = float(r.longest);
+        band(file, 2)[p] = float(r.mean);
+      };
+      for (int y = 0; y < years; ++y)
+        put(summary_file[y],
+            suitable_runs(w.value.data() + std::size_t(y) * P, P, threshold, false));
+      const SuitableRun cycle = suitable_runs(w.mean.data(), P, threshold, true);
+      put(synoptic_summary, cycle);
+      if (std::isfinite(cycle.count)) w.count_sum += cycle.count, ++w.count_pixels;
+    }
+    std::vector<const float*> planes;
+    for (std::size_t f = 0; f < outputs.size(); ++f) {
+      const std::size_t count =
+          (f + 1 < outputs.size() ? first_band[f + 1] : total_bands) - first_band[f];
+      planes.clear();
+      for (std::size_t b = 0; b < count; ++b) planes.push_back(w.bands[first_band[f] + b].data());
+      outputs.write(f, core, planes, w.tile);
+    }
+  };
+  tbb::task_arena arena(threads);
+  arena.execute([&] {
+    tbb::parallel_for(
+        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
+        [&](const tbb::blocked_range<std::size_t>& r) {
+          Worker& w = workers.local();
+          for (std::size_t b = r.begin(); b < r.end(); ++b) process(plan.blocks[b], w);
+        },
+        tbb::simple_partitioner());
+  });
+  std::int64_t implausible = 0, finite = 0, count_pixels = 0;
+  double count_sum = 0;
+  for (const Worker& w : workers) {
+    implausible += w.block->implausible;
+    finite += w.block->finite;
+    count_sum += w.count_sum;
+    count_pixels += w.count_pixels;
+  }
+  if (implausible > finite)
+    throw InputError(
+        inputs_text,
+        fmt::format("{} of {} values lie outside {:g}..{:g} deg C after unit conversion: "
+                    "the unit (--units) or scale factor (--scale) is probably wrong",
+                    implausible, implausible + finite, detail::plausible_low_celsius,
+                    detail::plausible_high_celsius));
+  outputs.commit();
+
+  SuitabilitySummary summary;
+  summary.years = years;
+  summary.periods = P;
+  summary.files = int(output_paths.size());
+  summary.width = grid.width;
+  summary.height = grid.height;
+  summary.first_year = first_year;
+  summary.last_year = last_year;
+  summary.model = model.description();
+  summary.mean_suitable_periods = count_pixels > 0 ? count_sum / double(count_pixels) : NAN;
+  summary.implausible = implausible;
+  summary.outputs = output_paths;
+  summary.seconds =
+      std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+  return summary;
+}
+
+}  // namespace kalends

@@ -1,0 +1,296 @@
+#include "thermal/temperature_source.hpp"
+
+#include <fmt/format.h>
+
+#include <algorithm>
+#include <cctype>
+#include <cmath>
+
+#include "io/gdal_session.hpp"
+#include "kalends/error.hpp"
+#include "kalends/seasons.hpp"
+
+namespace kalends::detail {
+
+namespace {
+
+std::string normalised_unit(std::string unit) {
+  std::string out;
+  for (std::size_t i = 0; i < unit.size(); ++i) {
+    const unsigned char c = static_cast<unsigned char>(unit[i]);
+    if (c == 0xC2 && i + 1 < unit.size() && static_cast<unsigned char>(unit[i + 1]) == 0xB0) {
+      ++i;  // the degree sign in UTF-8
+      continue;
+    }
+    if (std::isspace(c) || c == '[' || c == ']' || c == '_' || c == '.') continue;
+    out += char(std::tolower(c));
+  }
+  for (const char* word : {"degrees", "degree", "deg"})
+    if (out.rfind(word, 0) == 0) {
+      out.erase(0, std::string(word).size());
+      break;
+    }
+  return out;
+}
+
+// The median of the first layer's values (a central window of at most 1024 x 1024 pixels).
+double first_layer_median(const Stack& stack) {
+  const Grid& g = stack.grid();
+  const int w = std::min(g.width, 1024), h = std::min(g.height, 1024);
+  const Window window{(g.width - w) / 2, (g.height - h) / 2, w, h};
+  std::vector<float> values(window.pixels());
+  stack.reader()->read_values(0, window, values.data());
+  values.erase(
+      std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }),
+      values.end());
+  if (values.empty()) return NAN;
+  std::nth_element(values.begin(), values.begin() + values.size() / 2, values.end());
+  return values[values.size() / 2];
+}
+
+}  // namespace
+
+TemperatureUnit unit_of(const Stack& stack, TemperatureUnit unit, const std::string& option) {
+  if (unit != TemperatureUnit::automatic) return unit;
+  const Layer& layer = stack.layers().front();
+  std::string stated = layer.unit;
+  if (stated.empty()) {
+    // GRIB files carry the unit in their metadata, not the band's unit type.
+    GDALDatasetUniquePtr dataset = open_raster(layer.path);
+    if (GDALRasterBand* band = dataset->GetRasterBand(layer.band))
+      if (const char* grib = band->GetMetadataItem("GRIB_UNIT")) stated = grib;
+  }
+  const std::string u = normalised_unit(stated);
+  TemperatureUnit found = TemperatureUnit::automatic;
+  if (u == "k" || u == "kelvin") found = TemperatureUnit::kelvin;
+  if (u == "c" || u == "celsius") found = TemperatureUnit::celsius;
+  if (found != TemperatureUnit::automatic) {
+    // A stated unit must agree with the values: no temperature on Earth is above 150 in
+    // degrees C or below 150 in kelvin. (GDAL 3.6 labels GRIB1 temperatures "[C]" while still
+    // returning kelvin.)
+    const double median = first_layer_median(stack);
+    const bool looks_kelvin = median > 150;
+    if (std::isfinite(median) && looks_kelvin != (found == TemperatureUnit::kelvin))
+      throw UsageError(option + " " + layer.path,
+                       fmt::format("the file states unit '{}' but its values (median {:.1f}) look "
+                                   "like {}; give --units kelvin or --units celsius",
+                                   stated, median, looks_kelvin ? "kelvin" : "degrees Celsius"));
+    return found;
+  }
+  throw UsageError(option + " " + layer.path,
+                   (stated.empty() ? std::string("the file states no unit")
+                                   : "unit '" + stated + "' is not kelvin or degrees Celsius") +
+                       "; give --units kelvin or --units celsius");
+}
+
+}  // namespace kalends::detail
+
+namespace kalends {
+TemperatureUnit parse_temperature_unit(const std::string& text) {
+  if (text == "auto") return TemperatureUnit::automatic;
+  if (text == "kelvin" || text == "K") return TemperatureUnit::kelvin;
+  if (text == "celsius" || text == "C") return TemperatureUnit::celsius;
+  throw UsageError("--units '" + text + "'", "expected auto, kelvin or celsius");
+}
+}  // namespace kalends
+
+namespace kalends::detail {
+
+TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
+  TemperatureSource s;
+  const bool extremes = !in.tmin.empty() || !in.tmax.empty();
+  const bool overpasses = !in.day.empty() || !in.night.empty();
+  const bool constant = !in.temperature.empty();
+  if (int(extremes) + int(overpasses) + int(constant) != 1)
+    throw UsageError("inputs",
+                     "give either --tmin and --tmax, or --day and --night, or --temperature");
+  std::vector<std::pair<std::string, std::string>> inputs;  // option, input
+  if (extremes) {
+    if (in.tmin.empty() || in.tmax.empty()) throw UsageError("--tmin/--tmax", "give both");
+    s.mode = Mode::extremes;
+    inputs = {{"--tmin", in.tmin}, {"--tmax", in.tmax}};
+  } else if (overpasses) {
+    if (in.day.empty() || in.night.empty()) throw UsageError("--day/--night", "give both");
+    if (!(in.day_hour >= 0 && in.day_hour < 24 && in.night_hour >= 0 && in.night_hour < 24))
+      throw UsageError("--day-time/--night-time", "local solar hours must lie in [0, 24)");
+    s.mode = Mode::overpasses;
+    s.day_hour = in.day_hour;
+    s.night_hour = in.night_hour;
+    inputs = {{"--day", in.day}, {"--night", in.night}};
+  } else {
+    s.mode = Mode::constant;
+    inputs = {{"--temperature", in.temperature}};
+  }
+  for (const auto& [option, input] : inputs) {
+    s.stacks.push_back(Stack::open(stack_input(input), in.rules));
+    const TemperatureUnit unit = unit_of(s.stacks.back(), in.unit, option);
+    s.to_celsius.push_back(unit == TemperatureUnit::kelvin ? -273.15 : 0.0);
+  }
+  s.grid = s.stacks.front().grid();
+  s.times = s.stacks.front().times();
+  for (std::size_t k = 1; k < s.stacks.size(); ++k) {
+    const Stack& other = s.stacks[k];
+    require_same_grid(s.grid, other.grid(), other.input());
+    const std::vector<TimePoint> times = other.times();
+    for (const TimePoint& t : s.times)
+      if (!std::binary_search(times.begin(), times.end(), t))
+        throw InputError(other.input(), "has no layer for " + t.label() + ", which " +
+                                            s.stacks.front().input() + " has");
+    for (const TimePoint& t : times)
+      if (!std::binary_search(s.times.begin(), s.times.end(), t))
+        throw InputError(s.stacks.front().input(),
+                         "has no layer for " + t.label() + ", which " + other.input() + " has");
+  }
+  s.name = s.stacks.front().name();
+  const std::size_t n = s.times.size();
+  s.days.resize(n);
+  for (std::size_t i = 0; i < n; ++i) s.days[i] = std::int64_t(std::floor(s.times[i].days()));
+  std::vector<std::int64_t> gaps;
+  for (std::size_t i = 1; i < n; ++i) {
+    if (s.days[i] == s.days[i - 1]) s.sub_daily = true;
+    gaps.push_back(s.days[i] - s.days[i - 1]);
+  }
+  std::int64_t step = 1;
+  if (!gaps.empty() && !s.sub_daily) {
+    std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
+    step = std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
+  }
+  // The sun of a composite is that of the middle of the days it stands for.
+  const std::int64_t shift = in.marks == DateMarks::start ? step / 2
+                             : in.marks == DateMarks::end ? -(step / 2)
+                                                          : 0;
+  s.day_of_year.resize(n);
+  s.adjacent_before.assign(n, 0);
+  for (std::size_t i = 0; i < n; ++i) {
+    s.day_of_year[i] = kalends::day_of_year(civil_from_days(s.days[i] + shift));
+    if (i > 0 && s.days[i] - s.days[i - 1] == 1) s.adjacent_before[i] = 1;
+  }
+  return s;
+}
+
+TemperatureBlock::TemperatureBlock(const TemperatureSource& source) : source_(source) {
+  for (const Stack& stack : source.stacks) readers_.push_back(stack.reader());
+  planes_.resize(source.stacks.size());
+}
+
+void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t last) {
+  first_ = first;
+  pixels_ = window.pixels();
+  for (std::size_t k = 0; k < readers_.size(); ++k) {
+    std::vector<float>& plane = planes_[k];
+    plane.resize((last - first) * pixels_);
+    const double offset = source_.to_celsius[k];
+    for (std::size_t i = first; i < last; ++i) {
+      float* out = plane.data() + (i - first) * pixels_;
+      readers_[k]->read_values(i, window, out);
+      for (std::int64_t p = 0; p < pixels_; ++p) {
+        if (!std::isfinite(out[p])) continue;
+        const double c = double(out[p]) + offset;
+        if (c < plausible_low_celsius || c > plausible_high_celsius) {
+          out[p] = NAN;
+          ++implausible;
+        } else {
+          out[p] = float(c);
+          ++finite;
+        }
+      }
+    }
+  }
+}
+
+PixelLocator::PixelLocator(const Grid& grid, const std::string& where) : grid_(grid) {
+  if (!grid.has_geotransform || grid.crs_wkt.empty())
+    throw InputError(where,
+                     "has no georeferencing (geotransform and CRS); the diurnal cycle needs "
+                     "each pixel's latitude and longitude");
+  OGRSpatialReference source, target;
+  if (source.importFromWkt(grid.crs_wkt.c_str()) != OGRERR_NONE)
+    throw InputError(where, "its coordinate reference system cannot be read");
+  target.importFromEPSG(4326);
+  source.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+  target.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+  transform_.reset(OGRCreateCoordinateTransformation(&source, &target));
+  if (!transform_)
+    throw InputError(where, "its coordinates cannot be transformed to latitude and longitude");
+}
+
+void PixelLocator::locate(const Window& window, std::vector<double>& latitude,
+                          std::vector<double>& longitude) {
+  const auto& g = grid_.geotransform;
+  const std::int64_t n = window.pixels();
+  longitude.resize(n);
+  latitude.resize(n);
+  for (int r = 0; r < window.height; ++r)
+    for (int c = 0; c < window.width; ++c) {
+      const double col = window.x + c + 0.5, row = window.y + r + 0.5;
+      longitude[std::size_t(r) * window.width + c] = g[0] + col * g[1] + row * g[2];
+      latitude[std::size_t(r) * window.width + c] = g[3] + col * g[4] + row * g[5];
+    }
+  std::vector<int> ok(n, 0);
+  if (!transform_->Transform(int(n), longitude.data(), latitude.data(), nullptr, ok.data()) ||
+      std::find(ok.begin(), ok.end(), 0) != ok.end())
+    throw InputError("georeferencing",
+                     "some pixel centres cannot be transformed to latitude and longitude");
+  for (double& lon : longitude) lon = std::remainder(lon, 360.0);  // [-180, 180]
+}
+
+PixelDays::PixelDays(const TemperatureSource& source, const DiurnalParameters& parameters)
+    : source_(source), parameters_(parameters), days_(source.dates(), DiurnalDay{NAN, NAN, {}}) {}
+
+void PixelDays::build(const TemperatureBlock& block, std::int64_t pixel, double latitude,
+                      std::size_t first, std::size_t last) {
+  const bool overpasses = source_.mode == TemperatureSource::Mode::overpasses;
+  for (std::size_t i = built_first_; i < built_last_; ++i) days_[i].tmin = days_[i].tmax = NAN;
+  last = std::min(last, days_.size());
+  built_first_ = first;
+  built_last_ = last;
+  for (std::size_t i = first; i < last; ++i) {
+    const SunTimes sun = sun_times(latitude, source_.day_of_year[i]);
+    const double a = block.values(0, i)[pixel], b = block.values(1, i)[pixel];
+    if (overpasses) {
+      days_[i] =
+          extremes_from_samples(parameters_, sun, a, source_.day_hour, b, source_.night_hour);
+    } else if (std::isfinite(a) && std::isfinite(b) && a <= b) {
+      days_[i] = {a, b, sun};
+    } else {
+      days_[i] = {NAN, NAN, sun};
+    }
+  }
+}
+
+const DiurnalDay& PixelDays::yesterday(std::size_t i) const {
+  if (source_.mode == TemperatureSource::Mode::extremes && source_.adjacent_before[i] && has(i - 1))
+    return days_[i - 1];
+  return days_[i];
+}
+
+const DiurnalDay& PixelDays::tomorrow(std::size_t i) const {
+  if (source_.mode == TemperatureSource::Mode::extremes && i + 1 < days_.size() &&
+      source_.adjacent_before[i + 1] && has(i + 1))
+    return days_[i + 1];
+  return days_[i];
+}
+
+double PixelDays::at(std::size_t i, double local_hour) const {
+  if (!has(i)) return NAN;
+  std::size_t day = i;
+  if (local_hour < 0) {
+    local_hour += 24;
+    if (&yesterday(i) != &days_[i]) day = i - 1;
+  } else if (local_hour >= 24) {
+    local_hour -= 24;
+    if (&tomorrow(i) != &days_[i]) day = i + 1;
+  }
+  return diurnal_temperature(parameters_, yesterday(day), days_[day], tomorrow(day), local_hour);
+}
+
+double PixelDays::daily_mean(std::size_t i, const ThermalModel& model) const {
+  if (!has(i)) return NAN;
+  double sum = 0;
+  for (int h = 0; h < 24; ++h)
+    sum += model.relative(
+        diurnal_temperature(parameters_, yesterday(i), days_[i], tomorrow(i), h + 0.5));
+  return sum / 24;
+}
+
+}  // namespace kalends::detail

@@ -1,0 +1,381 @@
+#!/usr/bin/python3
+"""`kalends run` / `kalends status`: job-file checks, incremental runs, kills at random moments,
+two runs at once, bad inputs, a failing disk.
+
+Invented data (tools/synth_stack.py, the fictional demo district at a small size): these are
+checks of the mechanics, not of accuracy. "Identical" compares what a user reads: every band's
+pixels bit for bit, band descriptions and dataset metadata.
+"""
+import glob
+import json
+import os
+import random
+import resource
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "..", "tools"))
+import kalends_testlib as kt  # noqa: E402
+import synth_stack  # noqa: E402
+
+JOB = """
+[job]
+name = "test"
+out = "out"
+memory = "256M"
+
+[inputs.ndvi]
+stack = "stack/ndvi/ndvi_*.tif"
+qa = "stack/qa/qa_*.tif"
+keep = "bits0-1 in 0,1"
+valid_range = [-0.2, 1.0]
+
+[[step]]
+id = "fill"
+do = "fill"
+input = "ndvi"
+lambda = "{lam}"
+envelope = "upper"
+every = "1M"
+
+[[step]]
+do = "seasons"
+input = "fill"
+
+[[step]]
+do = "compare"
+input = "seasons"
+"""
+
+
+def make_job(folder, lam="auto", years=2, size=96):
+    os.makedirs(folder, exist_ok=True)
+    if not os.path.exists(os.path.join(folder, "stack", "ndvi", "synth.json")):
+        synth_stack.make_stack(os.path.join(folder, "stack", "ndvi"), width=size, height=size, years=years,
+                               qa_dir=os.path.join(folder, "stack", "qa"))
+    path = os.path.join(folder, "job.toml")
+    with open(path, "w") as f:
+        f.write(JOB.format(lam=lam))
+    return path
+
+
+def run(job, *args, env=None, preexec=None, timeout=300):
+    return subprocess.run([kt.KALENDS_BIN, "run", job] + list(args), capture_output=True, text=True,
+                          timeout=timeout, env=env, preexec_fn=preexec)
+
+
+def content(out):
+    """Everything a user reads from the outputs: {relative path: (metadata, descriptions, pixels)}.
+    Provenance metadata names files inside the output folder; those names are written relative
+    to it here, so that runs into two folders can be compared."""
+    g = kt.gdal()
+    result = {}
+    for path in sorted(glob.glob(os.path.join(out, "**", "*"), recursive=True)):
+        rel = os.path.relpath(path, out)
+        if os.path.isdir(path) or rel.startswith(".kalends"):
+            continue
+        if path.endswith(".tif"):
+            ds = g.Open(path)
+            bands = [ds.GetRasterBand(b) for b in range(1, ds.RasterCount + 1)]
+            metadata = sorted((k, v.replace(os.path.abspath(out), "<out>").replace(out, "<out>"))
+                              for k, v in ds.GetMetadata().items())
+            result[rel] = (metadata, [b.GetDescription() for b in bands],
+                           ds.ReadAsArray().tobytes())
+        else:
+            with open(path, "rb") as f:
+                result[rel] = f.read().replace(os.path.abspath(out).encode(), b"<out>")
+    return result
+
+
+def mtimes(out):
+    return {p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(out, "**", "*.tif"), recursive=True)}
+
+
+class JobFile(kt.TempDirTestCase):
+    def check_refused(self, text, expected_line, words):
+        path = os.path.join(self.tmp, "bad.toml")
+        with open(path, "w") as f:
+            f.write(text)
+        done = run(path)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        lines = done.stderr.strip().splitlines()
+        self.assertEqual(len(lines), 1, done.stderr)
+        print("\n  " + lines[0])
+        self.assertIn("bad.toml:%d" % expected_line if expected_line else "bad.toml", lines[0])
+        for w in words:
+            self.assertIn(w, lines[0])
+
+    def test_mistakes_are_named_with_their_line(self):
+        good = JOB.format(lam="auto")
+        self.check_refused(good.replace("envelope =", "envelop ="), good.split("\n").index('envelope = "upper"') + 1,
+                           ["unknown key 'envelop'"])
+        self.check_refused(good.replace('memory = "256M"', "memory = 256"), 5, ["'memory' must be a string"])
+        self.check_refused(good.replace('do = "compare"', 'do = "compere"'),
+                           good.split("\n").index('do = "compare"') + 1, ["unknown step 'compere'"])
+        self.check_refused(good.replace('input = "fill"', 'input = "fil"'),
+                           good.split("\n").index('input = "fill"') + 1, ["'fil' is neither an input nor an earlier step"])
+        self.check_refused(good.replace("[job]", "[job"), 2, [])
+        self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
+                           good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or a string"])
+
+
+class Incremental(kt.TempDirTestCase):
+    def test_second_run_does_nothing_and_keeps_every_file(self):
+        job = make_job(os.path.join(self.tmp, "a"))
+        out = os.path.join(self.tmp, "a", "out")
+        first = run(job)
+        self.assertEqual(first.returncode, 0, first.stdout + first.stderr)
+        before = mtimes(out)
+        self.assertGreater(len(before), 10)
+        t0 = time.monotonic()
+        second = run(job)
+        elapsed = time.monotonic() - t0
+        self.assertEqual(second.returncode, 0, second.stderr)
+        self.assertIn("nothing new, nothing done", second.stdout)
+        self.assertEqual(mtimes(out), before)
+        print("\n  second run with nothing new: %.2f s" % elapsed)
+        # A file touched but not changed is recognised by its checksum.
+        first_input = sorted(glob.glob(os.path.join(self.tmp, "a", "stack", "ndvi", "*.tif")))[0]
+        os.utime(first_input, None)
+        third = run(job)
+        self.assertIn("nothing new, nothing done", third.stdout)
+        # A changed parameter reruns the steps it reaches; dry run says so first.
+        make_job(os.path.join(self.tmp, "a"), lam="100")
+        dry = run(job, "--dry-run")
+        self.assertIn("would run", dry.stdout)
+        self.assertIn("parameters", dry.stdout)
+        self.assertEqual(mtimes(out), before)
+        fourth = run(job)
+        self.assertEqual(fourth.returncode, 0, fourth.stderr)
+        self.assertRegex(fourth.stdout, r"fill\s+ran")
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertEqual([l.split()[2] for l in status.stdout.splitlines()], ["done", "done", "done"])
+
+    def test_adding_composites_one_at_a_time_equals_a_run_from_scratch(self):
+        folder = os.path.join(self.tmp, "b")
+        job = make_job(folder)
+        source = os.path.join(folder, "stack")
+        arrived = os.path.join(folder, "arrived")
+        files = sorted(glob.glob(os.path.join(source, "ndvi", "ndvi_*.tif")))
+        live = os.path.join(folder, "live")
+        os.makedirs(os.path.join(live, "ndvi"))
+        os.makedirs(os.path.join(live, "qa"))
+        with open(job) as f:
+            text = f.read().replace('"stack/', '"live/')
+        with open(job, "w") as f:
+            f.write(text)
+        # The last three composites arrive one night at a time.
+        for path in files[:-3]:
+            name = os.path.basename(path)
+            shutil.copy(path, os.path.join(live, "ndvi", name))
+            shutil.copy(os.path.join(source, "qa", name.replace("ndvi_", "qa_")), os.path.join(live, "qa"))
+        self.assertEqual(run(job).returncode, 0)
+        for path in files[-3:]:
+            name = os.path.basename(path)
+            shutil.copy(path, os.path.join(live, "ndvi", name))
+            shutil.copy(os.path.join(source, "qa", name.replace("ndvi_", "qa_")), os.path.join(live, "qa"))
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("2 new", done.stdout)   # the composite and its QA layer
+        incremental = content(os.path.join(folder, "out"))
+        scratch = run(job, "--out", os.path.join(folder, "scratch"))
+        self.assertEqual(scratch.returncode, 0, scratch.stderr)
+        fresh = content(os.path.join(folder, "scratch"))
+        self.assertEqual(sorted(incremental), sorted(fresh))
+        for key in fresh:
+            self.assertEqual(incremental[key], fresh[key], key)
+
+
+class Faults(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.job = make_job(os.path.join(cls.tmp, "job"))
+        done = run(cls.job, "--out", os.path.join(cls.tmp, "reference"))
+        assert done.returncode == 0, done.stderr
+        cls.reference = content(os.path.join(cls.tmp, "reference"))
+        t0 = time.monotonic()
+        run(cls.job, "--out", os.path.join(cls.tmp, "timing"))
+        cls.duration = time.monotonic() - t0
+
+    def test_killed_at_random_moments_then_rerun_gives_the_same_outputs(self):
+        rng = random.Random(11)
+        out = os.path.join(self.tmp, "killed")
+        g = kt.gdal()
+        for attempt in range(8):
+            process = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],
+                                       stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            time.sleep(rng.uniform(0.05, max(0.1, self.duration)))
+            process.send_signal(signal.SIGKILL)
+            process.wait()
+            # No file under a final name is partial: each one opens and reads whole.
+            for path in glob.glob(os.path.join(out, "**", "*.tif"), recursive=True):
+                ds = g.Open(path)
+                self.assertIsNotNone(ds.ReadAsArray(), path)
+        done = run(self.job, "--out", out)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(glob.glob(os.path.join(out, "**", ".*.partial"), recursive=True), [])
+        got = content(out)
+        self.assertEqual(sorted(got), sorted(self.reference))
+        for key in got:
+            self.assertEqual(got[key], self.reference[key], key)
+
+    def test_a_second_run_on_the_same_folder_is_refused(self):
+        out = os.path.join(self.tmp, "locked")
+        first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],
+                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        for _ in range(100):   # until the first run holds the lock
+            if os.path.exists(os.path.join(out, ".kalends", "lock")):
+                break
+            time.sleep(0.02)
+        time.sleep(0.1)
+        second = run(self.job, "--out", out)
+        first.wait()
+        self.assertEqual(second.returncode, 1, second.stderr)
+        self.assertIn("another kalends run", second.stderr)
+        self.assertEqual(len(second.stderr.strip().splitlines()), 1)
+
+    def test_a_failing_disk_stops_cleanly_and_the_next_run_resumes(self):
+        out = os.path.join(self.tmp, "full")
+
+        def small_disk():
+            # Writes past 40 kB in one file fail with EFBIG instead of killing the process
+            # (SIGXFSZ ignored): the outputs (about 100 kB each) cannot be written.
+            signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+            resource.setrlimit(resource.RLIMIT_FSIZE, (40 << 10, 40 << 10))
+
+        failed = run(self.job, "--out", out, preexec=small_disk)
+        self.assertEqual(failed.returncode, 1, failed.stdout + failed.stderr)
+        print("\n  " + failed.stderr.strip().splitlines()[-1])
+        self.assertIn("kalends: ", failed.stderr)
+        db = sqlite3.connect(os.path.join(out, ".kalends", "state.sqlite"))
+        self.assertEqual(db.execute("SELECT status FROM steps WHERE id = 'fill'").fetchone()[0], "failed")
+        db.close()
+        done = run(self.job, "--out", out)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        got = content(out)
+        for key in self.reference:
+            self.assertEqual(got[key], self.reference[key], key)
+
+
+class BadInput(kt.TempDirTestCase):
+    """Each bad input: exit 2, one line naming the file and the problem, earlier outputs untouched;
+    with --skip-bad: exit 3, the file listed and recorded in the state database."""
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.folder = os.path.join(cls.tmp, "job")
+        cls.job = make_job(cls.folder, years=1, size=64)
+        done = run(cls.job)
+        assert done.returncode == 0, done.stderr
+        cls.out = os.path.join(cls.folder, "out")
+
+    def check(self, break_input, words, skippable=True):
+        stack = os.path.join(self.folder, "stack")
+        backup = os.path.join(self.tmp, "backup")
+        shutil.rmtree(backup, ignore_errors=True)
+        shutil.copytree(stack, backup)
+        before = content(self.out)
+        times = mtimes(self.out)
+        try:
+            culprit = break_input(stack)
+            done = run(self.job)
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            line = done.stderr.strip().splitlines()
+            self.assertEqual(len(line), 1, done.stderr)
+            print("\n  " + line[0])
+            self.assertIn(os.path.basename(culprit), line[0])
+            for w in words:
+                self.assertIn(w, line[0])
+            self.assertEqual(content(self.out), before)
+            self.assertEqual(mtimes(self.out), times)
+            if skippable:
+                skipped = run(self.job, "--skip-bad", "--out", os.path.join(self.tmp, "skip"))
+                self.assertEqual(skipped.returncode, 3, skipped.stdout + skipped.stderr)
+                self.assertIn("skipped input", skipped.stdout)
+                self.assertIn(os.path.basename(culprit), skipped.stdout)
+                db = sqlite3.connect(os.path.join(self.tmp, "skip", ".kalends", "state.sqlite"))
+                rows = db.execute("SELECT path FROM skipped").fetchall()
+                db.close()
+                self.assertIn(culprit, [r[0] for r in rows])
+        finally:
+            shutil.rmtree(stack)
+            shutil.copytree(backup, stack)
+            shutil.rmtree(os.path.join(self.tmp, "skip"), ignore_errors=True)
+
+    def ndvi(self, stack, i):
+        return sorted(glob.glob(os.path.join(stack, "ndvi", "ndvi_*.tif")))[i]
+
+    def test_corrupt_geotiff(self):
+        def corrupt(stack):
+            path = self.ndvi(stack, 5)
+            with open(path, "r+b") as f:
+                f.truncate(os.path.getsize(path) // 2)
+            return path
+        self.check(corrupt, ["corrupt"])
+
+    def test_grid_differs(self):
+        def regrid(stack):
+            path = self.ndvi(stack, 3)
+            kt.write_raster(path, np.zeros((10, 10), np.int16), geotransform=(0, 250, 0, 0, 0, -250), epsg=32736)
+            return path
+        self.check(regrid, ["grid"])
+
+    def test_crs_differs(self):
+        def reproject(stack):
+            path = self.ndvi(stack, 4)
+            g = kt.gdal()
+            ds = g.Open(path, 1)
+            from osgeo import osr
+            srs = osr.SpatialReference()
+            srs.ImportFromEPSG(32636)
+            ds.SetProjection(srs.ExportToWkt())
+            ds = None
+            return path
+        self.check(reproject, ["coordinate reference system"])
+
+    def test_missing_qa_partner(self):
+        def drop_qa(stack):
+            path = self.ndvi(stack, 6)
+            os.remove(os.path.join(stack, "qa", os.path.basename(path).replace("ndvi_", "qa_")))
+            return path
+        self.check(drop_qa, ["no QA layer"])
+
+    def test_duplicate_date(self):
+        def duplicate(stack):
+            path = self.ndvi(stack, 2)
+            copy = os.path.join(os.path.dirname(path), os.path.basename(path).replace("-", ""))  # ndvi_YYYYMMDD.tif
+            shutil.copy(path, copy)
+            return copy
+        self.check(duplicate, ["duplicate date"])
+
+    def test_values_all_outside_the_valid_range(self):
+        def rescale(stack):
+            path = self.ndvi(stack, 7)
+            g = kt.gdal()
+            ds = g.Open(path, 1)
+            ds.GetRasterBand(1).SetScale(1.0)   # a forgotten scale factor
+            ds = None
+            return path
+        self.check(rescale, ["outside the valid range"])
+
+    def test_unparsable_date(self):
+        def rename(stack):
+            path = self.ndvi(stack, 1)
+            bad = os.path.join(os.path.dirname(path), "ndvi_2021-13-40.tif")
+            os.rename(path, bad)
+            return bad
+        self.check(rename, ["no date"])
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)

@@ -1,0 +1,97 @@
+#!/usr/bin/python3
+"""`kalends suitability` on real monthly mean air temperature: the gridded observations of
+Maurer et al. (2002), J. Climate 15:3237, 1999, 81 x 33 cells (../shared/data/monthly-temperature).
+Time values fall on the last day of each month (--date-marks end).
+
+Monthly means are used as given (--temperature: no diurnal cycle). The relative suitability
+of every month and the number of suitable months per cell must equal an independent numpy
+computation from the published trait table (tests/pylib/thermal_numpy.py; Mordecai et al.
+2013 for r0-2013, Detinova 1962 / Martens 1997 for degree-day, Bayoh & Lindsay 2003 for window).
+"""
+import os
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+import thermal_numpy as tn  # noqa: E402
+
+
+def read_bands(path):
+    ds = kt.gdal().Open(path)
+    out = ds.ReadAsArray().astype(np.float64), [ds.GetRasterBand(b + 1).GetDescription() for b in range(ds.RasterCount)]
+    ds = None
+    return out
+
+
+def longest_run(suitable, cyclic):
+    series = np.concatenate([suitable, suitable], axis=0) if cyclic else suitable
+    best = np.zeros(suitable.shape[1:])
+    run = np.zeros(suitable.shape[1:])
+    for s in series:
+        run = np.where(s, run + 1, 0)
+        best = np.maximum(best, run)
+    return np.minimum(best, suitable.shape[0])
+
+
+class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        cls.input = 'NETCDF:"%s":tas' % path
+        ds = kt.gdal().Open(cls.input)
+        tas = ds.ReadAsArray().astype(np.float64)
+        nodata = ds.GetRasterBand(1).GetNoDataValue()
+        ds = None
+        cls.tas = np.where(tas == np.float32(nodata), np.nan, tas)
+        cls.land = np.all(np.isfinite(cls.tas), axis=0)
+        assert cls.land.sum() > 1000
+
+    def run_model(self, name, *extra):
+        out = os.path.join(self.tmp, name)
+        done = kt.run_kalends(["suitability", "--temperature", self.input, "--date-marks", "end", "--out", out]
+                              + list(extra))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("not malaria risk", done.stderr)  # the caution line
+        return out, done
+
+    def check(self, out, prefix, expected, threshold):
+        year, names = read_bands(os.path.join(out, prefix + "_year_1999.tif"))
+        self.assertEqual(names, ["month %02d" % m for m in range(1, 13)])
+        land = self.land
+        self.assertLess(np.max(np.abs(year[:, land] - expected[:, land])), 1e-6)
+        self.assertTrue(np.all(np.isnan(year[:, ~land])))
+        summary, names = read_bands(os.path.join(out, prefix + "_summary_1999.tif"))
+        self.assertEqual(names, ["suitable_months", "longest_suitable_run", "mean_suitability"])
+        suitable = expected > threshold
+        np.testing.assert_array_equal(summary[0][land], suitable.sum(axis=0)[land])
+        np.testing.assert_array_equal(summary[1][land], longest_run(suitable, False)[land])
+        np.testing.assert_allclose(summary[2][land], expected.mean(axis=0)[land], atol=1e-6)
+        synoptic, _ = read_bands(os.path.join(out, prefix + "_summary_synoptic.tif"))
+        np.testing.assert_array_equal(synoptic[1][land], longest_run(suitable, True)[land])
+        return summary[0][land]
+
+    def test_r0_2013_suitable_months(self):
+        out, _ = self.run_model("r0")
+        expected = tn.relative("r0-2013", self.tas.ravel()).reshape(self.tas.shape)
+        months = self.check(out, "r0-2013", expected, 0.0)
+        print("\nMaurer 1999, r0-2013: suitable months per cell %d..%d, mean %.2f"
+              % (months.min(), months.max(), months.mean()), file=sys.stderr)
+        self.assertGreater(months.max(), months.min())  # the data spans more than one answer
+
+    def test_degree_day_vivax_threshold(self):
+        out, _ = self.run_model("dd", "--model", "degree-day", "--parasite", "vivax", "--threshold", "0.5")
+        expected = tn.relative("degree-day", self.tas.ravel(), "vivax").reshape(self.tas.shape)
+        self.check(out, "degree-day-vivax", expected, 0.5)
+
+    def test_window(self):
+        out, _ = self.run_model("window", "--model", "window", "--window", "20,30")
+        expected = tn.relative("window", self.tas.ravel(), window=(20.0, 30.0)).reshape(self.tas.shape)
+        self.check(out, "window", expected, 0.0)
+
+
+if __name__ == "__main__":
+    unittest.main()

@@ -1,0 +1,217 @@
+#!/usr/bin/python3
+"""`kalends suitability` end to end on a small invented land-surface temperature stack (day and
+night overpasses, kelvin x 50 in uint16 with scale 0.02, as LST products store it), checked
+against a numpy computation of every step: pixel latitude and longitude from the georeferencing
+(GDAL's osr), Cooper's declination, the extremes inferred from the 13:30 and 01:30 samples, the
+Parton & Logan (1981) hours, the Mordecai et al. (2013) relative R0 averaged over 24 hourly
+midpoints, day-weighted monthly means (each composite stands for the 16 days from its date)
+and the suitable-month counts. Invented data: mechanics only, no accuracy claim.
+
+Also: bad input gives one line naming the file, a non-zero exit and no output.
+"""
+import datetime as dt
+import glob
+import os
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+import thermal_numpy as tn  # noqa: E402
+
+EPSG = 32736
+GT = (420000.0, 250.0, 0.0, 9650000.0, 0.0, -250.0)
+WIDTH, HEIGHT = 9, 7
+DATES = [dt.date(2021, 1, 1) + dt.timedelta(days=16 * i) for i in range(23)]
+
+
+def write_lst(path, kelvin, unit="K", scale=0.02, epsg=EPSG):
+    raw = np.where(np.isfinite(kelvin), np.round(kelvin * 50), 0).astype(np.uint16)
+    kt.write_raster(path, raw, geotransform=GT if epsg else None, epsg=epsg, scale=scale, nodata=0)
+    if unit:
+        ds = kt.gdal().Open(path, 1)
+        ds.GetRasterBand(1).SetUnitType(unit)
+        ds = None
+
+
+def make_stack(folder, rng, **kwargs):
+    os.makedirs(os.path.join(folder, "day"), exist_ok=True)
+    os.makedirs(os.path.join(folder, "night"), exist_ok=True)
+    cols, rows = np.meshgrid(np.arange(WIDTH), np.arange(HEIGHT))
+    for i, d in enumerate(DATES):
+        season = np.cos(2 * np.pi * (d.timetuple().tm_yday - 30) / 365.0)
+        day = 300.0 + 8 * season + 0.8 * cols - 0.5 * rows + rng.normal(0, 0.5, cols.shape)
+        night = 284.0 + 5 * season + 0.3 * cols + rng.normal(0, 0.5, cols.shape)
+        day[rng.random(cols.shape) < 0.08] = np.nan  # cloud gaps
+        night[rng.random(cols.shape) < 0.08] = np.nan
+        write_lst(os.path.join(folder, "day", "lst_day_%s.tif" % d.isoformat()), day, **kwargs)
+        write_lst(os.path.join(folder, "night", "lst_night_%s.tif" % d.isoformat()), night, **kwargs)
+
+
+def pixel_lat_lon():
+    from osgeo import osr
+    src, dst = osr.SpatialReference(), osr.SpatialReference()
+    src.ImportFromEPSG(EPSG)
+    dst.ImportFromEPSG(4326)
+    src.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+    dst.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+    t = osr.CoordinateTransformation(src, dst)
+    lat, lon = np.empty((HEIGHT, WIDTH)), np.empty((HEIGHT, WIDTH))
+    for r in range(HEIGHT):
+        for c in range(WIDTH):
+            x, y, _ = t.TransformPoint(GT[0] + (c + 0.5) * GT[1], GT[3] + (r + 0.5) * GT[5])
+            lon[r, c], lat[r, c] = x, y
+    return lat, lon
+
+
+def read_celsius(path):
+    ds = kt.gdal().Open(path)
+    band = ds.GetRasterBand(1)
+    raw = band.ReadAsArray().astype(np.float64)
+    physical = np.where(raw == band.GetNoDataValue(), np.nan, (raw * band.GetScale()).astype(np.float32))
+    ds = None
+    return (physical.astype(np.float64) - 273.15).astype(np.float32).astype(np.float64)
+
+
+def read_bands(path):
+    ds = kt.gdal().Open(path)
+    out = ds.ReadAsArray().astype(np.float64)
+    meta = ds.GetMetadata()
+    ds = None
+    return out, meta
+
+
+class SuitabilityOverpasses(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.stack = os.path.join(cls.tmp, "lst")
+        make_stack(cls.stack, np.random.default_rng(2))
+        cls.out = os.path.join(cls.tmp, "suit")
+        cls.done = kt.run_kalends(["suitability", "--day", os.path.join(cls.stack, "day", "*.tif"),
+                                   "--night", os.path.join(cls.stack, "night", "*.tif"),
+                                   "--model", "r0-2013", "--out", cls.out])
+
+    def expected_months(self):
+        lat, _ = pixel_lat_lon()
+        daily = []
+        for d in DATES:
+            day = read_celsius(os.path.join(self.stack, "day", "lst_day_%s.tif" % d.isoformat()))
+            night = read_celsius(os.path.join(self.stack, "night", "lst_night_%s.tif" % d.isoformat()))
+            doy = (d + dt.timedelta(days=8)).timetuple().tm_yday  # the middle of the composite
+            rise, _, length = tn.sun(lat, doy)
+            tmin, tmax = tn.extremes_from_samples(day, 13.5, night, 1.5, rise, length)
+            hours = [tn.parton_logan(h + 0.5, tmin, tmax, rise, length, tmin, tmax, rise, length, tmin, rise)
+                     for h in range(24)]
+            r = np.mean([tn.relative("r0-2013", x.ravel()).reshape(x.shape) for x in hours], axis=0)
+            daily.append(np.where(np.isfinite(tmin), r, np.nan))
+        daily = np.array(daily)
+        months = np.full((12, HEIGHT, WIDTH), np.nan)
+        for m in range(12):
+            first = dt.date(2021, m + 1, 1)
+            last = dt.date(2021 + (m == 11), (m + 1) % 12 + 1, 1)
+            total = np.zeros((HEIGHT, WIDTH))
+            weight = np.zeros((HEIGHT, WIDTH))
+            for i, d in enumerate(DATES):
+                end = DATES[i + 1] if i + 1 < len(DATES) else d + dt.timedelta(days=16)
+                overlap = (min(end, last) - max(d, first)).days
+                if overlap > 0:
+                    ok = np.isfinite(daily[i])
+                    total += np.where(ok, overlap * np.nan_to_num(daily[i]), 0)
+                    weight += np.where(ok, overlap, 0)
+            months[m] = np.where(weight > 0, total / np.where(weight > 0, weight, 1), np.nan)
+        return months
+
+    def test_layers_equal_numpy(self):
+        self.assertEqual(self.done.returncode, 0, self.done.stderr)
+        expected = self.expected_months()
+        year, meta = read_bands(os.path.join(self.out, "r0-2013_year_2021.tif"))
+        self.assertIn("not malaria risk", meta["KALENDS_CAUTION"])
+        ok = np.isfinite(expected)
+        np.testing.assert_array_equal(np.isfinite(year), ok)
+        self.assertLess(np.max(np.abs(year[ok] - expected[ok])), 2e-5)
+        self.assertGreater(np.nanmax(expected) - np.nanmin(expected), 0.2)  # the months differ
+        synoptic, _ = read_bands(os.path.join(self.out, "r0-2013_synoptic.tif"))
+        np.testing.assert_allclose(synoptic[ok], year[ok], atol=1e-7)  # one year: synoptic = the year
+        summary, _ = read_bands(os.path.join(self.out, "r0-2013_summary_2021.tif"))
+        full = np.all(ok, axis=0)
+        np.testing.assert_array_equal(summary[0][full], (expected > 0).sum(axis=0)[full])
+        self.assertTrue(np.all(np.isnan(summary[0][~full])))
+
+    def test_diurnal_hours_from_overpasses_equal_numpy(self):
+        out = os.path.join(self.tmp, "hours")
+        done = kt.run_kalends(["-q", "diurnal", "--day", os.path.join(self.stack, "day", "*.tif"),
+                               "--night", os.path.join(self.stack, "night", "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        lat, lon = pixel_lat_lon()
+        for d in (DATES[0], DATES[11]):
+            got, meta = read_bands(os.path.join(out, "diurnal_%s.tif" % d.isoformat()))
+            day = read_celsius(os.path.join(self.stack, "day", "lst_day_%s.tif" % d.isoformat()))
+            night = read_celsius(os.path.join(self.stack, "night", "lst_night_%s.tif" % d.isoformat()))
+            rise, _, length = tn.sun(lat, (d + dt.timedelta(days=8)).timetuple().tm_yday)
+            tmin, tmax = tn.extremes_from_samples(day, 13.5, night, 1.5, rise, length)
+            for h in range(24):
+                t = np.mod(h + lon / 15.0, 24)  # UTC -> local solar time; the same typical day
+                expected = tn.parton_logan(t, tmin, tmax, rise, length, tmin, tmax, rise, length, tmin, rise)
+                ok = np.isfinite(expected)
+                np.testing.assert_array_equal(np.isfinite(got[h]), ok)
+                self.assertLess(np.max(np.abs(got[h][ok] - expected[ok])), 1e-4, "hour %d" % h)
+
+    def test_caution_is_printed(self):
+        self.assertEqual(self.done.returncode, 0, self.done.stderr)
+        lines = [l for l in self.done.stderr.splitlines() if "not malaria risk" in l]
+        self.assertEqual(len(lines), 1)
+        self.assertIn("land-surface temperature is not air temperature", lines[0])
+
+
+class BadInput(kt.TempDirTestCase):
+    def run_bad(self, args, must_name):
+        out = os.path.join(self.tmp, "out-%d" % len(os.listdir(self.tmp)))
+        done = kt.run_kalends(["suitability"] + args + ["--out", out])
+        self.assertNotEqual(done.returncode, 0)
+        lines = done.stderr.strip().splitlines()
+        self.assertEqual(len(lines), 1, done.stderr)
+        self.assertIn(must_name, lines[0])
+        self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+        return lines[0]
+
+    def test_missing_scale_factor(self):
+        folder = os.path.join(self.tmp, "noscale")
+        make_stack(folder, np.random.default_rng(1), scale=None)
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "noscale")
+        self.assertIn("scale", line)
+
+    def test_unknown_unit(self):
+        folder = os.path.join(self.tmp, "nounit")
+        make_stack(folder, np.random.default_rng(1), unit=None)
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "nounit")
+        self.assertIn("--units", line)
+
+    def test_unpaired_dates(self):
+        folder = os.path.join(self.tmp, "unpaired")
+        make_stack(folder, np.random.default_rng(1))
+        os.remove(os.path.join(folder, "night", "lst_night_%s.tif" % DATES[5].isoformat()))
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "night")
+        self.assertIn(DATES[5].isoformat(), line)
+
+    def test_no_georeferencing(self):
+        folder = os.path.join(self.tmp, "nocrs")
+        make_stack(folder, np.random.default_rng(1), epsg=None)
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "nocrs")
+        self.assertIn("latitude", line)
+
+    def test_bad_parameter_file(self):
+        folder = os.path.join(self.tmp, "params")
+        make_stack(folder, np.random.default_rng(1))
+        params = os.path.join(self.tmp, "bad.toml")
+        with open(params, "w") as f:
+            f.write("[r0-2013]\nbiting_rate = [1, 2]\n")
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                             "--parameters", params], "bad.toml")
+        self.assertIn("biting_rate", line)
+
+
+if __name__ == "__main__":
+    unittest.main()
