@@ -21,16 +21,6 @@ if ! grep -q '"drought_year": 2022' "$out/input/ndvi/synth.json" 2>/dev/null; th
     --truth "$out/input/truth" --drought-year 2022
 fi
 
-# The NDVI pipeline is the demo's job file: fill, seasons, compare (demo/job.toml). A second
-# run of the demo finds nothing new and does nothing.
-build/kalends run demo/job.toml
-
-echo
-"$py" demo/summarise.py --filled "$out/job/fill" --input "$out/input/ndvi" --truth "$out/input/truth"
-echo
-"$py" demo/summarise_seasons.py --seasons "$out/job/seasons" --compare "$out/job/compare" \
-  --manifest "$out/input/ndvi/synth.json"
-
 # Temperature suitability for malaria transmission (issue #5): invented day and night
 # land-surface temperature (kelvin x 50), cloud gaps filled, then relative R0 (Mordecai 2013).
 if ! grep -q '"invented": true' "$out/input/lst/synth.json" 2>/dev/null; then
@@ -38,13 +28,15 @@ if ! grep -q '"invented": true' "$out/input/lst/synth.json" 2>/dev/null; then
   echo "demo: generating the synthetic land-surface temperature stacks in $out/input/lst" >&2
   "$py" tools/synth_lst.py --out "$out/input/lst"
 fi
+# The whole pipeline is the demo's job file (demo/job.toml): NDVI fill, seasons, compare;
+# land-surface temperature fill, day and night, and temperature suitability. A second run of
+# the demo finds nothing new and does nothing.
+build/kalends run demo/job.toml
+
 echo
-rm -rf "$out/lst_filled" "$out/suitability"
-for pass in day night; do
-  build/kalends fill "$out/input/lst/$pass/lst_${pass}_*.tif" --out "$out/lst_filled/$pass" \
-    --method harmonic --harmonics 2
-done
-build/kalends suitability --day "$out/lst_filled/day" --night "$out/lst_filled/night" \
-  --model r0-2013 --out "$out/suitability"
+"$py" demo/summarise.py --filled "$out/job/fill" --input "$out/input/ndvi" --truth "$out/input/truth"
 echo
-"$py" demo/summarise_suitability.py --suitability "$out/suitability"
+"$py" demo/summarise_seasons.py --seasons "$out/job/seasons" --compare "$out/job/compare" \
+  --manifest "$out/input/ndvi/synth.json"
+echo
+"$py" demo/summarise_suitability.py --suitability "$out/job/suitability"

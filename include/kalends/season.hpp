@@ -6,6 +6,8 @@
 #include <complex>
 #include <memory>
 #include <span>
+#include <string>
+#include <utility>
 #include <vector>
 
 #include "kalends/fill.hpp"
@@ -16,6 +18,10 @@ namespace kalends {
 /// Which part of a composite's interval its date marks: MODIS dates mark the first day, many
 /// monthly NetCDF files the middle or the last day.
 enum class DateMarks { start, middle, end };
+DateMarks parse_date_marks(const std::string& text);  // "start", "middle", "end"; UsageError
+
+/// "2004-2009" or "2006" -> first and last year; UsageError otherwise.
+std::pair<int, int> parse_years(const std::string& text);
 
 /// The periods of one year on a calendar: their first day (days since 1970) and length.
 struct Period {

@@ -94,17 +94,8 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     SeasonsRequest& r = o->request;
     r.period = CalendarPeriod::parse(o->period);
-    if (!o->years.empty()) {
-      int a = 0, b = 0;
-      char dash = 0;
-      if (std::sscanf(o->years.c_str(), "%d%c%d", &a, &dash, &b) == 3 && dash == '-')
-        r.first_year = a, r.last_year = b;
-      else if (std::sscanf(o->years.c_str(), "%d", &a) == 1 && o->years.find('-') == std::string::npos)
-        r.first_year = r.last_year = a;
-      else
-        throw UsageError("--years '" + o->years + "'", "expected YYYY or YYYY-YYYY");
-    }
-    r.marks = o->marks == "end" ? DateMarks::end : o->marks == "middle" ? DateMarks::middle : DateMarks::start;
+    if (!o->years.empty()) std::tie(r.first_year, r.last_year) = parse_years(o->years);
+    r.marks = parse_date_marks(o->marks);
     r.memory_bytes = parse_memory(o->memory);
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;

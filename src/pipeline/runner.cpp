@@ -433,14 +433,8 @@ class Runner {
       r.out_dir = folder;
       r.name = o.text("name");
       r.period = CalendarPeriod::parse(o.text("period", "1M"));
-      if (o.has("years")) {
-        const std::string y = o.text("years");
-        const auto dash = y.find('-');
-        r.first_year = std::stoi(y.substr(0, dash));
-        r.last_year = dash == std::string::npos ? *r.first_year : std::stoi(y.substr(dash + 1));
-      }
-      const std::string marks = o.text("date_marks", "start");
-      r.marks = marks == "end" ? DateMarks::end : marks == "middle" ? DateMarks::middle : DateMarks::start;
+      if (o.has("years")) std::tie(r.first_year, r.last_year) = parse_years(o.text("years"));
+      r.marks = parse_date_marks(o.text("date_marks", "start"));
       r.cycle.prominence_share = o.number("prominence", r.cycle.prominence_share);
       r.cycle.threshold_share = o.number("threshold", r.cycle.threshold_share);
       r.memory_bytes = cli_memory();
@@ -473,8 +467,7 @@ class Runner {
       t.unit = parse_temperature_unit(o.text("units", "auto"));
       t.day_hour = o.number("day_hour", t.day_hour);
       t.night_hour = o.number("night_hour", t.night_hour);
-      const std::string marks = o.text("date_marks", "start");
-      t.marks = marks == "end" ? DateMarks::end : marks == "middle" ? DateMarks::middle : DateMarks::start;
+      t.marks = parse_date_marks(o.text("date_marks", "start"));
       r.model = parse_model_kind(o.text("model", "r0-2013"));
       r.parasite = parse_parasite(o.text("parasite", "falciparum"));
       if (o.has("window")) {
@@ -484,12 +477,7 @@ class Runner {
       }
       r.parameters_file = o.text("parameters");
       r.period = CalendarPeriod::parse(o.text("period", "1M"));
-      if (o.has("years")) {
-        const std::string y = o.text("years");
-        const auto dash = y.find('-');
-        r.first_year = std::stoi(y.substr(0, dash));
-        r.last_year = dash == std::string::npos ? *r.first_year : std::stoi(y.substr(dash + 1));
-      }
+      if (o.has("years")) std::tie(r.first_year, r.last_year) = parse_years(o.text("years"));
       r.threshold = o.number("threshold", r.threshold);
       r.out_dir = folder;
       r.name = o.text("name");

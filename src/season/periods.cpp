@@ -1,10 +1,28 @@
 // Calendar periods and the composites that feed them.
 #include <algorithm>
 #include <cmath>
+#include <cstdio>
+
+#include "kalends/error.hpp"
 
 #include "kalends/season.hpp"
 
 namespace kalends {
+
+DateMarks parse_date_marks(const std::string& text) {
+  if (text == "start") return DateMarks::start;
+  if (text == "middle") return DateMarks::middle;
+  if (text == "end") return DateMarks::end;
+  throw UsageError("--date-marks '" + text + "'", "expected start, middle or end");
+}
+
+std::pair<int, int> parse_years(const std::string& text) {
+  int a = 0, b = 0;
+  char dash = 0, extra = 0;
+  if (std::sscanf(text.c_str(), "%d%c%d%c", &a, &dash, &b, &extra) == 3 && dash == '-' && a <= b) return {a, b};
+  if (std::sscanf(text.c_str(), "%d%c", &a, &extra) == 1) return {a, a};
+  throw UsageError("--years '" + text + "'", "expected YYYY or YYYY-YYYY (first year first)");
+}
 
 std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar) {
   std::vector<Period> periods;
