@@ -3,6 +3,7 @@
 
 #include <CLI/CLI.hpp>
 #include <functional>
+#include <optional>
 #include <string>
 
 namespace kalends::cli {
@@ -31,6 +32,11 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global);
 
 /// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.
 std::int64_t parse_memory(const std::string& text);
+
+/// The whole of `text` as a number; UsageError naming `option` otherwise. Empty text is no
+/// value (std::nullopt), for options that override something only when given.
+std::optional<double> optional_number(const std::string& text, const std::string& option);
+double parse_number(const std::string& text, const std::string& option);
 
 /// `kalends run`, `kalends status`.
 Action add_run_command(CLI::App& app, GlobalOptions& global);

@@ -15,6 +15,22 @@ namespace kalends::cli {
 
 std::int64_t parse_memory(const std::string& text) { return parse_memory_size(text); }
 
+std::optional<double> optional_number(const std::string& text, const std::string& option) {
+  if (text.empty()) return std::nullopt;
+  try {
+    std::size_t used = 0;
+    const double v = std::stod(text, &used);
+    if (used == text.size()) return v;
+  } catch (const std::exception&) {
+  }
+  throw UsageError(option + " '" + text + "'", "expected a number");
+}
+
+double parse_number(const std::string& text, const std::string& option) {
+  if (text.empty()) throw UsageError(option, "expected a number");
+  return *optional_number(text, option);
+}
+
 namespace {
 
 std::pair<double, double> parse_range(const std::string& text, const std::string& option) {
@@ -31,15 +47,6 @@ std::pair<double, double> parse_range(const std::string& text, const std::string
   throw UsageError(option + " '" + text + "'", "expected MIN,MAX");
 }
 
-double parse_number(const std::string& text, const std::string& option) {
-  try {
-    std::size_t used = 0;
-    const double v = std::stod(text, &used);
-    if (used == text.size()) return v;
-  } catch (const std::exception&) {
-  }
-  throw UsageError(option + " '" + text + "'", "expected a number");
-}
 
 std::string percent(std::int64_t part, std::int64_t whole) {
   return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";

@@ -9,20 +9,6 @@
 
 namespace kalends::cli {
 
-namespace {
-
-std::optional<double> number_option(const std::string& text, const std::string& option) {
-  if (text.empty()) return std::nullopt;
-  try {
-    std::size_t used = 0;
-    const double v = std::stod(text, &used);
-    if (used == text.size()) return v;
-  } catch (const std::exception&) {
-  }
-  throw UsageError(option + " '" + text + "'", "expected a number");
-}
-
-}  // namespace
 
 Action add_index_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("index", "Compute NDVI or EVI from red, near-infrared (and blue) stacks");
@@ -51,9 +37,9 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     IndexRequest& r = o->request;
     r.kind = o->kind == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
-    r.rules.scale = number_option(o->scale, "--scale");
-    r.rules.offset = number_option(o->offset, "--offset");
-    r.rules.nodata = number_option(o->nodata, "--nodata");
+    r.rules.scale = optional_number(o->scale, "--scale");
+    r.rules.offset = optional_number(o->offset, "--offset");
+    r.rules.nodata = optional_number(o->nodata, "--nodata");
     if (!o->date.empty()) {
       r.rules.date = parse_iso_time(o->date);
       if (!r.rules.date) throw UsageError("--date '" + o->date + "'", "expected YYYY-MM-DD");

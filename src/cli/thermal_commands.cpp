@@ -11,16 +11,6 @@ namespace kalends::cli {
 
 namespace {
 
-std::optional<double> optional_number(const std::string& text, const std::string& option) {
-  if (text.empty()) return std::nullopt;
-  try {
-    std::size_t used = 0;
-    const double v = std::stod(text, &used);
-    if (used == text.size()) return v;
-  } catch (const std::exception&) {
-  }
-  throw UsageError(option + " '" + text + "'", "expected a number");
-}
 
 std::pair<std::string, std::string> split_pair(const std::string& text, const std::string& option,
                                                const std::string& expected) {
