@@ -95,9 +95,11 @@ struct SuitabilityRequest {
   int threads = 0;
   Compression compression = Compression::deflate;
   std::string command_line;
+  bool keep_unchanged = false;  // leave outputs that would not change as they are
 };
 
 struct SuitabilitySummary {
+  int outputs_written = 0, outputs_unchanged = 0;
   int years = 0, periods = 0, files = 0, width = 0, height = 0, first_year = 0, last_year = 0;
   std::string model;
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value

@@ -485,8 +485,10 @@ class Runner {
       r.threads = job_.threads;
       r.compression = parse_compression(o.text("compress", "deflate"));
       r.command_line = command;
+      r.keep_unchanged = true;
       const SuitabilitySummary s = run_suitability(r);
-      report.outputs_written = int(s.outputs.size());
+      report.outputs_written = s.outputs_written;
+      report.outputs_unchanged = s.outputs_unchanged;
       report.caution = suitability_caution;
     } else if (step.kind == "index") {
       IndexRequest r;

@@ -292,9 +292,12 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                     "the unit (--units) or scale factor (--scale) is probably wrong",
                     implausible, implausible + finite, detail::plausible_low_celsius,
                     detail::plausible_high_celsius));
+  outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 
   SuitabilitySummary summary;
+  summary.outputs_written = outputs.written();
+  summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;
   summary.periods = P;
   summary.files = int(output_paths.size());
