@@ -13,6 +13,7 @@
 #include <mutex>
 #include <set>
 
+#include "engine/block_runner.hpp"
 #include "engine/calendar.hpp"
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
@@ -312,16 +313,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     }
   };
 
-  tbb::task_arena arena(threads);
-  arena.execute([&] {
-    tbb::parallel_for(
-        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
-        [&](const tbb::blocked_range<std::size_t>& range) {
-          Worker& w = workers.local();
-          for (std::size_t b = range.begin(); b < range.end(); ++b) process(plan.blocks[b], w);
-        },
-        tbb::simple_partitioner());
-  });
+  detail::run_blocks(plan, threads, workers, process);
   for (std::size_t i = 0; i < std::size_t(layers); ++i)
     if (in_range[i] == 0 && out_of_range[i] > 0)
       throw InputError(stack.layers()[i].path,

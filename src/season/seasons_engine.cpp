@@ -10,6 +10,7 @@
 #include <fmt/format.h>
 #include <set>
 
+#include "engine/block_runner.hpp"
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
@@ -247,15 +248,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       outputs.write(f, core, planes, w.tile);
     }
   };
-  tbb::task_arena arena(threads);
-  arena.execute([&] {
-    tbb::parallel_for(tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
-                      [&](const tbb::blocked_range<std::size_t>& r) {
-                        Worker& w = workers.local();
-                        for (std::size_t b = r.begin(); b < r.end(); ++b) process(plan.blocks[b], w);
-                      },
-                      tbb::simple_partitioner());
-  });
+  detail::run_blocks(plan, threads, workers, process);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 

@@ -14,6 +14,7 @@
 #include <map>
 #include <set>
 
+#include "engine/block_runner.hpp"
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
@@ -141,16 +142,7 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
       }
     }
   };
-  tbb::task_arena arena(threads);
-  arena.execute([&] {
-    tbb::parallel_for(
-        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
-        [&](const tbb::blocked_range<std::size_t>& r) {
-          DiurnalWorker& w = workers.local();
-          for (std::size_t b = r.begin(); b < r.end(); ++b) process(plan.blocks[b], w);
-        },
-        tbb::simple_partitioner());
-  });
+  detail::run_blocks(plan, threads, workers, process);
   std::int64_t implausible = 0, finite = 0;
   for (const DiurnalWorker& w : workers)
     implausible += w.block->implausible, finite += w.block->finite;

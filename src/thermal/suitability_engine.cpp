@@ -12,6 +12,7 @@
 #include <filesystem>
 #include <set>
 
+#include "engine/block_runner.hpp"
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
@@ -267,16 +268,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
       outputs.write(f, core, planes, w.tile);
     }
   };
-  tbb::task_arena arena(threads);
-  arena.execute([&] {
-    tbb::parallel_for(
-        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
-        [&](const tbb::blocked_range<std::size_t>& r) {
-          Worker& w = workers.local();
-          for (std::size_t b = r.begin(); b < r.end(); ++b) process(plan.blocks[b], w);
-        },
-        tbb::simple_partitioner());
-  });
+  detail::run_blocks(plan, threads, workers, process);
   std::int64_t implausible = 0, finite = 0, count_pixels = 0;
   double count_sum = 0;
   for (const Worker& w : workers) {

@@ -1,0 +1,31 @@
+// Running a plan's blocks in parallel: each worker thread takes blocks one at a time with its
+// own state (readers, buffers), so nothing is shared but the outputs' locks.
+#pragma once
+
+#include <tbb/enumerable_thread_specific.h>
+#include <tbb/parallel_for.h>
+#include <tbb/task_arena.h>
+
+#include "kalends/block_plan.hpp"
+
+namespace kalends::detail {
+
+/// Calls process(block, worker) for every block of `plan` on `threads` threads; `worker` is the
+/// calling thread's own element of `workers`. Exceptions stop the run and reach the caller.
+template <typename Worker, typename Process>
+void run_blocks(const BlockPlan& plan, int threads, tbb::enumerable_thread_specific<Worker>& workers,
+                Process&& process) {
+  tbb::task_arena arena(threads);
+  arena.execute([&] {
+    // Grain 1 and a simple partitioner: blocks are large and few, one task each.
+    tbb::parallel_for(
+        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
+        [&](const tbb::blocked_range<std::size_t>& range) {
+          Worker& worker = workers.local();
+          for (std::size_t b = range.begin(); b < range.end(); ++b) process(plan.blocks[b], worker);
+        },
+        tbb::simple_partitioner());
+  });
+}
+
+}  // namespace kalends::detail
