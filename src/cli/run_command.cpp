@@ -106,15 +106,10 @@ Action add_status_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("job", o->job_file, "The job file (TOML)")->required();
   sub->add_option("--out", o->out_dir, "Output folder (overrides the job file's)");
   return [o, &global] {
-    const auto list = job_status(*o);
-    int not_done = 0;
-    for (const StepStatus& s : list) {
-      fmt::print("{:<12} {:<8} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
-                 s.outputs ? fmt::format(" ({} files)", s.outputs) : "");
-      not_done += s.state != "done";
-    }
-    (void)global;
-    (void)not_done;
+    for (const StepStatus& s : job_status(*o))
+      if (!global.quiet || s.state != "done")
+        fmt::print("{:<12} {:<8} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
+                   s.outputs ? fmt::format(" ({} files)", s.outputs) : "");
   };
 }
 

@@ -231,7 +231,6 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     w.observations.assign(core_pixels, 0);
     w.valued.assign(core_pixels, 0);
     // Stagger the order of files so workers seldom wait on the same file's lock.
-    const std::size_t total = outputs.size();
     for (std::size_t k = 0; k < std::size_t(layers); ++k) {
       const std::size_t i = (k + std::size_t(block.index) * 7) % std::size_t(layers);
       const int slot = grid.slot_of_date[i];
@@ -305,7 +304,6 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       outputs.write(std::size_t(layers) + k, core, w.value_plane.data(), w.sd_plane.data(),
                     w.flag_plane.data(), w.tile);
     }
-    (void)total;
     const int done = ++blocks_done;
     if (progress) {
       std::lock_guard lock(progress_mutex);
