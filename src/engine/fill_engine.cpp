@@ -143,10 +143,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       throw InputError(layer.path, "two dates give the same output name " + spec.path);
     spec.metadata = common_metadata();
     spec.metadata["KALENDS_DATE"] = layer.time.iso();
+    const bool one_file = stack.layers().size() > 1 && stack.layers()[0].path == stack.layers()[1].path;
     spec.metadata["KALENDS_SOURCE"] =
-        layer.path + (layer.band != 1 || stack.layers().size() > 1 && stack.layers()[0].path == stack.layers()[1].path
-                          ? " band " + std::to_string(layer.band)
-                          : "");
+        layer.path + (layer.band != 1 || one_file ? " band " + std::to_string(layer.band) : "");
     spec.bands = detail::fill_bands(unit);
     specs.push_back(std::move(spec));
   }
