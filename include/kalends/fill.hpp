@@ -4,6 +4,7 @@
 #include <cstdint>
 #include <functional>
 #include <optional>
+#include <vector>
 #include <string>
 
 #include "kalends/fill_method.hpp"
@@ -40,6 +41,9 @@ struct FillRequest {
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata
   bool keep_unchanged = false;  // leave outputs that would not change as they are
+  /// With method.reach_days > 0: compute and write only the outputs of these years; the rest
+  /// stay as an earlier run left them (fill-years.tsv keeps their counts).
+  std::optional<std::vector<int>> only_years;
 };
 
 struct FillSummary {

@@ -94,6 +94,9 @@ struct MethodOptions {
   // temporal methods
   double max_gap_days = 0;             // longer gaps stay unfilled; 0 = no limit
   double max_extrapolation_days = 32;  // past the first/last observation; < 0 = no limit
+  // > 0: each calendar year is filled from the dates within this many days of it, so a new
+  // date changes only the years it reaches (whittaker, harmonic); 0 = the whole series at once.
+  double reach_days = 0;
   std::optional<double> clamp_min, clamp_max;
 };
 

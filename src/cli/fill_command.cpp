@@ -108,6 +108,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--max-extrapolation", r.method.max_extrapolation_days,
                   "Fill at most this many days before the first or after the last observation; -1 = no limit")
       ->capture_default_str();
+  sub->add_option("--reach", r.method.reach_days,
+                  "Fill each calendar year from the dates within this many days of it (a new date then "
+                  "changes only the years it reaches); 0 = the whole series at once")
+      ->capture_default_str();
   sub->add_flag("--smooth", r.smooth, "Write the fitted curve everywhere, not only in gaps");
   sub->add_option("--every", o->every, "Also write a regular calendar: 8d, 16d or 1M");
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
@@ -155,7 +159,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),
                  percent(s.rejected, pd));
-      if (s.pixels_never_observed > 0 && s.pixels_never_observed == s.pixels_without_value)
+      if (s.pixels_never_observed > 0 &&
+          (s.pixels_without_value < 0 || s.pixels_never_observed == s.pixels_without_value))
         fmt::print("  {} pixels have no observation on any date (flag 3 throughout)\n",
                    s.pixels_never_observed);
       else if (s.pixels_never_observed > 0)

@@ -11,6 +11,8 @@
 #include <filesystem>
 #include <fmt/format.h>
 #include <mutex>
+#include <fstream>
+#include <map>
 #include <set>
 
 #include "engine/block_runner.hpp"
@@ -44,15 +46,32 @@ struct Counters {
   double kernel_seconds = 0;
 };
 
+// Counts of one year's dates, kept in fill-years.tsv so a run that recomputes some years
+// (FillRequest::only_years) can report the whole stack.
+struct YearCounts {
+  std::int64_t pixel_dates = 0, observed = 0, rejected = 0, filled = 0, unfilled = 0;
+};
+
+// With a reach, each year is filled on its own slice of the grid.
+struct Segment {
+  int year = 0;
+  int first_slot = 0;          // the slice: full-grid slots first_slot .. first_slot + grid.size - 1
+  TimeGrid grid;
+  int own_first = 0, own_last = -1;  // full-grid slots inside the year
+  std::vector<std::size_t> periods;  // calendar periods starting in the year
+};
+
 struct Worker {
   std::unique_ptr<StackReader> data, qa;
   std::vector<float> plane;
   std::vector<std::uint32_t> qa_plane;
   std::vector<float> values, weights;
   std::vector<int> observations, valued;
-  BlockOutput out;
+  BlockOutput out, segment_out;
+  std::vector<float> segment_values, segment_weights;
   std::vector<float> value_plane, sd_plane, flag_plane, tile;
   Counters counters;
+  std::map<int, YearCounts> years;
 };
 
 std::string join_parameters(const MethodParameters& p) {
@@ -119,9 +138,74 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     fs::create_directories(calendar_dir, ec);
     if (ec) throw OutputError(calendar_dir, "cannot create the output folder: " + ec.message());
   }
+  // Years: with a reach, each is filled from its own slice of the grid, and a run may redo
+  // only some of them.
+  const double reach = request.method.reach_days;
+  if (reach > 0 && reach < 2 * grid.step_days)
+    throw UsageError("--reach", fmt::format("must be at least two time steps ({:g} days)", 2 * grid.step_days));
+  if (reach > 0 && method->halo() > 0)
+    throw UsageError("--reach", "applies to the temporal methods (whittaker, harmonic), not to " + method->name());
+  if (request.only_years && !(reach > 0)) throw UsageError("--reach", "recomputing some years needs a reach");
+  const std::string years_file = (fs::path(request.out_dir) / "fill-years.tsv").string();
+  const std::string grid_label = fmt::format("{} {:g}", grid.start.iso(), grid.step_days);
+  std::map<int, YearCounts> earlier_years;
+  std::optional<std::set<int>> only;
+  if (request.only_years) {
+    // Earlier counts are usable only if they were made on the same grid.
+    std::ifstream in(years_file);
+    std::string header;
+    if (std::getline(in, header) && header == "# grid " + grid_label) {
+      std::string line;
+      while (std::getline(in, line)) {
+        YearCounts c;
+        int year = 0;
+        if (std::sscanf(line.c_str(), "%d %lld %lld %lld %lld %lld", &year, (long long*)&c.pixel_dates,
+                        (long long*)&c.observed, (long long*)&c.rejected, (long long*)&c.filled,
+                        (long long*)&c.unfilled) == 6)
+          earlier_years[year] = c;
+      }
+      only = std::set<int>(request.only_years->begin(), request.only_years->end());
+    }
+  }
+  auto written_year = [&](int year) { return !only || only->count(year) > 0; };
+  std::vector<Segment> segments;
+  if (reach > 0) {
+    const double start_day = grid.start.seconds / 86400.0;
+    auto day_of_slot = [&](int s) { return start_day + grid.slot_days[s]; };
+    for (int year = grid.start.date().year; year <= grid.slot_time(grid.size - 1).date().year; ++year) {
+      if (!written_year(year)) continue;
+      const double jan1 = double(days_from_civil(year, 1, 1)), next = double(days_from_civil(year + 1, 1, 1));
+      Segment seg;
+      seg.year = year;
+      int first = -1, last = -1;
+      for (int s = 0; s < grid.size; ++s) {
+        const double d = day_of_slot(s);
+        if (d >= jan1 - reach && d < next + reach) {
+          if (first < 0) first = s;
+          last = s;
+        }
+        if (d >= jan1 && d < next) {
+          if (seg.own_last < 0) seg.own_first = s;
+          seg.own_last = s;
+        }
+      }
+      if (seg.own_last < 0) continue;
+      seg.first_slot = first;
+      seg.grid.start = grid.slot_time(first);
+      seg.grid.step_days = grid.step_days;
+      seg.grid.size = last - first + 1;
+      for (int s = first; s <= last; ++s) seg.grid.slot_days.push_back(grid.slot_days[s] - grid.slot_days[first]);
+      for (int slot : grid.slot_of_date)
+        if (slot >= first && slot <= last) seg.grid.slot_of_date.push_back(slot - first);
+      for (std::size_t k = 0; k < periods.size(); ++k)
+        if (periods[k].start.date().year == year) seg.periods.push_back(k);
+      segments.push_back(std::move(seg));
+    }
+  }
   const std::string parameters = join_parameters(method->parameters());
   const std::string unit = stack.layers().front().unit;
   std::vector<detail::OutputSpec> specs;
+  std::vector<int> layer_output(stack.layers().size(), -1), period_output(periods.size(), -1);
   std::set<std::string> taken;
   auto common_metadata = [&]() {
     std::map<std::string, std::string> m{
@@ -130,13 +214,17 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         {"KALENDS_PARAMETERS", parameters},
         {"KALENDS_INPUT", request.input},
         {"KALENDS_TIME_STEP_DAYS", fmt::format("{:g}", grid.step_days)},
+        {"KALENDS_REACH_DAYS", reach > 0 ? fmt::format("{:g}", reach) : "whole series"},
         {"KALENDS_VALUES", request.smooth ? "fitted curve everywhere"
                                           : "observed values kept, gaps and outliers filled"}};
     if (keep) m["KALENDS_QA"] = request.qa_input + " keep: " + keep->text();
     if (!request.command_line.empty()) m["KALENDS_COMMAND"] = request.command_line;
     return m;
   };
-  for (const Layer& layer : stack.layers()) {
+  for (std::size_t i = 0; i < stack.layers().size(); ++i) {
+    const Layer& layer = stack.layers()[i];
+    if (!written_year(layer.time.date().year)) continue;
+    layer_output[i] = int(specs.size());
     detail::OutputSpec spec;
     spec.path = (fs::path(request.out_dir) / (name + "_" + layer.time.label() + ".tif")).string();
     if (!taken.insert(spec.path).second)
@@ -149,7 +237,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     spec.bands = detail::fill_bands(unit);
     specs.push_back(std::move(spec));
   }
-  for (const detail::PeriodMean& period : periods) {
+  for (std::size_t k = 0; k < periods.size(); ++k) {
+    const detail::PeriodMean& period = periods[k];
+    if (!written_year(period.start.date().year)) continue;
+    period_output[k] = int(specs.size());
     detail::OutputSpec spec;
     spec.path = (fs::path(calendar_dir) / (name + "_" + period.start.label() + ".tif")).string();
     spec.metadata = common_metadata();
@@ -165,7 +256,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
   const std::int64_t layers = std::int64_t(stack.layers().size());
   const std::int64_t bytes_per_pixel =
-      n_slots * (4 + 4 + 4 + 4 + 1) + 4 + (keep ? 4 : 0) + 3 * 4 + 4 +
+      n_slots * (4 + 4 + 4 + 4 + 1) * (reach > 0 ? 2 : 1) + 4 + (keep ? 4 : 0) + 3 * 4 + 4 +
       std::int64_t(method->scratch_bytes_per_pixel(grid));
   std::set<std::string> read_files;
   for (const Layer& l : stack.layers()) read_files.insert(l.path);
@@ -177,6 +268,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const BlockPlan plan =
       BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size);
 
+  std::vector<std::string> output_paths;
+  for (const auto& spec : specs) output_paths.push_back(spec.path);
   detail::OutputSet outputs(std::move(specs), raster, request.compression, tile_size);
 
   tbb::enumerable_thread_specific<Worker> workers([&] {
@@ -213,13 +306,6 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         w.weights[p * n_slots + slot] = 1.0f;
       }
     }
-    w.out.resize(std::size_t(core_pixels) * n_slots);
-    BlockInput in{&grid, read, core, w.values, w.weights};
-    const auto kernel_start = std::chrono::steady_clock::now();
-    method->fill(in, w.out);
-    w.counters.kernel_seconds +=
-        std::chrono::duration<double>(std::chrono::steady_clock::now() - kernel_start).count();
-
     auto read_index = [&](std::int64_t cp) {
       const std::int64_t cy = cp / core.width, cx = cp % core.width;
       return (cy + core.y - read.y) * read.width + (cx + core.x - read.x);
@@ -227,12 +313,69 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     w.value_plane.resize(core_pixels);
     w.sd_plane.resize(core_pixels);
     w.flag_plane.resize(core_pixels);
+    // A calendar period from a curve on slots offset .. offset + stride - 1 of the full grid.
+    auto write_period = [&](std::size_t k, const BlockOutput& out, int offset, int stride) {
+      const detail::PeriodMean& period = periods[k];
+      for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
+        const std::int64_t rp = read_index(cp);
+        double value = 0, sd = 0;
+        for (std::size_t j = 0; j < period.slots.size(); ++j) {
+          const std::size_t at = std::size_t(cp) * stride + (period.slots[j] - offset);
+          value += period.weights[j] * out.fitted[at];
+          sd += period.weights[j] * out.sd[at];
+        }
+        bool observed_inside = false;
+        for (int slot : period.slots_inside)
+          if (w.weights[rp * n_slots + slot] > 0 && !out.rejected[std::size_t(cp) * stride + (slot - offset)])
+            observed_inside = true;
+        const bool ok = std::isfinite(value);
+        w.value_plane[cp] = ok ? float(value) : NAN;
+        w.sd_plane[cp] = ok ? float(sd) : NAN;
+        w.flag_plane[cp] = float(!ok ? Flag::unfilled : observed_inside ? Flag::observed : Flag::filled);
+      }
+      outputs.write(std::size_t(period_output[k]), core, w.value_plane.data(), w.sd_plane.data(),
+                    w.flag_plane.data(), w.tile);
+    };
+    w.out.resize(std::size_t(core_pixels) * n_slots);
+    const auto kernel_start = std::chrono::steady_clock::now();
+    if (segments.empty()) {
+      method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
+    } else {
+      std::fill(w.out.fitted.begin(), w.out.fitted.end(), NAN);
+      std::fill(w.out.sd.begin(), w.out.sd.end(), NAN);
+      for (const Segment& seg : segments) {
+        const int n = seg.grid.size;
+        w.segment_values.resize(std::size_t(read_pixels) * n);
+        w.segment_weights.resize(std::size_t(read_pixels) * n);
+        for (std::int64_t p = 0; p < read_pixels; ++p) {
+          std::copy_n(w.values.begin() + p * n_slots + seg.first_slot, n, w.segment_values.begin() + p * n);
+          std::copy_n(w.weights.begin() + p * n_slots + seg.first_slot, n, w.segment_weights.begin() + p * n);
+        }
+        w.segment_out.resize(std::size_t(core_pixels) * n);
+        method->fill(BlockInput{&seg.grid, read, core, w.segment_values, w.segment_weights}, w.segment_out);
+        for (std::int64_t cp = 0; cp < core_pixels; ++cp)
+          for (int slot = seg.own_first; slot <= seg.own_last; ++slot) {
+            const std::size_t from = std::size_t(cp) * n + (slot - seg.first_slot);
+            const std::size_t to = std::size_t(cp) * n_slots + slot;
+            w.out.fitted[to] = w.segment_out.fitted[from];
+            w.out.sd[to] = w.segment_out.sd[from];
+            w.out.rejected[to] = w.segment_out.rejected[from];
+          }
+        // The year's calendar periods come from the year's own curve, margins included.
+        for (std::size_t k : seg.periods) write_period(k, w.segment_out, seg.first_slot, n);
+      }
+    }
+    w.counters.kernel_seconds +=
+        std::chrono::duration<double>(std::chrono::steady_clock::now() - kernel_start).count();
     w.observations.assign(core_pixels, 0);
     w.valued.assign(core_pixels, 0);
     // Stagger the order of files so workers seldom wait on the same file's lock.
     for (std::size_t k = 0; k < std::size_t(layers); ++k) {
       const std::size_t i = (k + std::size_t(block.index) * 7) % std::size_t(layers);
       const int slot = grid.slot_of_date[i];
+      const bool written = layer_output[i] >= 0;
+      YearCounts& year = w.years[stack.layers()[i].time.date().year];
+      if (written) year.pixel_dates += core_pixels;
       for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
         const std::int64_t rp = read_index(cp);
         const float y = w.values[rp * n_slots + slot];
@@ -261,11 +404,16 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         w.valued[cp] += flag != Flag::unfilled;
         Counters& c = w.counters;
         c.observed += observed;
-        c.rejected += flag == Flag::rejected;
-        c.filled += flag == Flag::filled;
-        c.unfilled += flag == Flag::unfilled;
+        if (written) {
+          year.observed += observed;
+          year.rejected += flag == Flag::rejected;
+          year.filled += flag == Flag::filled;
+          year.unfilled += flag == Flag::unfilled;
+        }
       }
-      outputs.write(i, core, w.value_plane.data(), w.sd_plane.data(), w.flag_plane.data(), w.tile);
+      if (written)
+        outputs.write(std::size_t(layer_output[i]), core, w.value_plane.data(), w.sd_plane.data(),
+                      w.flag_plane.data(), w.tile);
     }
     w.counters.pixel_dates += core_pixels * layers;
     for (int count : w.observations) w.counters.never_observed += count == 0;
@@ -281,28 +429,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         }
       }
     }
-    for (std::size_t k = 0; k < periods.size(); ++k) {
-      const detail::PeriodMean& period = periods[k];
-      for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
-        const std::int64_t rp = read_index(cp);
-        double value = 0, sd = 0;
-        for (std::size_t j = 0; j < period.slots.size(); ++j) {
-          const std::size_t at = std::size_t(cp) * n_slots + period.slots[j];
-          value += period.weights[j] * w.out.fitted[at];
-          sd += period.weights[j] * w.out.sd[at];
-        }
-        bool observed_inside = false;
-        for (int s : period.slots_inside)
-          if (w.weights[rp * n_slots + s] > 0 && !w.out.rejected[std::size_t(cp) * n_slots + s])
-            observed_inside = true;
-        const bool ok = std::isfinite(value);
-        w.value_plane[cp] = ok ? float(value) : NAN;
-        w.sd_plane[cp] = ok ? float(sd) : NAN;
-        w.flag_plane[cp] = float(!ok ? Flag::unfilled : observed_inside ? Flag::observed : Flag::filled);
-      }
-      outputs.write(std::size_t(layers) + k, core, w.value_plane.data(), w.sd_plane.data(),
-                    w.flag_plane.data(), w.tile);
-    }
+    if (segments.empty())
+      for (std::size_t k = 0; k < periods.size(); ++k) write_period(k, w.out, 0, n_slots);
     const int done = ++blocks_done;
     if (progress) {
       std::lock_guard lock(progress_mutex);
@@ -318,6 +446,22 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
                                    request.rules.valid_min.value_or(-INFINITY), request.rules.valid_max.value_or(INFINITY)));
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
+  // Outputs of dates no longer in the stack (a composite removed or replaced) would otherwise
+  // linger beside the new ones; only this run's years are cleaned.
+  {
+    std::set<std::string> current;
+    for (const std::string& path : output_paths) current.insert(fs::path(path).lexically_normal().string());
+    for (const std::string& folder : {request.out_dir, calendar_dir}) {
+      if (folder.empty() || !fs::exists(folder)) continue;
+      for (const auto& entry : fs::directory_iterator(folder)) {
+        const std::string file = entry.path().filename().string();
+        if (file.rfind(name + "_", 0) != 0 || entry.path().extension() != ".tif") continue;
+        const auto date = find_date_in_name(file.substr(name.size() + 1));
+        if (!date || date->position != 0 || !written_year(date->time.date().year)) continue;
+        if (!current.count(entry.path().lexically_normal().string())) fs::remove(entry.path(), ec);
+      }
+    }
+  }
 
   FillSummary summary;
   summary.outputs_written = outputs.written();
@@ -330,17 +474,33 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.block_height = plan.block_height;
   summary.calendar_outputs = int(periods.size());
   std::int64_t masked_by_qa = 0;
+  std::map<int, YearCounts> years;
   for (const Worker& w : workers) {
-    summary.pixel_dates += w.counters.pixel_dates;
-    summary.observed += w.counters.observed;
-    summary.rejected += w.counters.rejected;
-    summary.filled += w.counters.filled;
-    summary.unfilled += w.counters.unfilled;
     summary.pixels_never_observed += w.counters.never_observed;
     summary.pixels_without_value += w.counters.never_filled;
     summary.kernel_seconds += w.counters.kernel_seconds;
     masked_by_qa += w.counters.masked_by_qa;
+    for (const auto& [year, c] : w.years) {
+      YearCounts& t = years[year];
+      t.pixel_dates += c.pixel_dates, t.observed += c.observed, t.rejected += c.rejected;
+      t.filled += c.filled, t.unfilled += c.unfilled;
+    }
   }
+  // Years this run left alone keep the counts of the run that made their outputs.
+  for (auto& [year, c] : years)
+    if (!written_year(year)) c = earlier_years[year];
+  std::string table = "# grid " + grid_label + "\n";
+  for (const auto& [year, c] : years) {
+    summary.pixel_dates += c.pixel_dates;
+    summary.observed += c.observed;
+    summary.rejected += c.rejected;
+    summary.filled += c.filled;
+    summary.unfilled += c.unfilled;
+    table += fmt::format("{} {} {} {} {} {}\n", year, c.pixel_dates, c.observed, c.rejected, c.filled, c.unfilled);
+  }
+  // Whether a pixel has a value on some date spans all years: not known after a partial run.
+  if (reach > 0) summary.pixels_without_value = -1;
+  if (reach > 0) detail::write_text_atomically(years_file, table);
   summary.missing = summary.pixel_dates - summary.observed;
   summary.out_dir = request.out_dir;
   summary.seconds =
@@ -359,7 +519,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       "  \"block_size\": [{}, {}]\n}}\n",
       summary.dates, summary.width, summary.height, summary.pixel_dates, summary.observed,
       summary.missing, masked_by_qa, summary.rejected, summary.filled, summary.unfilled,
-      summary.pixels_never_observed, summary.pixels_without_value, grid.step_days, summary.calendar_outputs, summary.blocks,
+      summary.pixels_never_observed,
+      summary.pixels_without_value < 0 ? std::string("null") : std::to_string(summary.pixels_without_value),
+      grid.step_days, summary.calendar_outputs, summary.blocks,
       summary.block_width, summary.block_height);
   detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
   return summary;

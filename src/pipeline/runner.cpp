@@ -303,6 +303,46 @@ class Runner {
     throw UsageError(options_.job_file, "unknown input '" + name + "'");
   }
 
+  // The files a step reads directly from the job's inputs, with their checksums.
+  std::map<std::string, std::string> inputs_of(const JobStep& step) {
+    std::map<std::string, std::string> files;
+    for (const std::string& name : step.inputs) {
+      const auto in = job_.inputs.find(name);
+      if (in == job_.inputs.end()) continue;
+      for (const std::string& pattern : {in->second.stack, in->second.qa}) {
+        if (pattern.empty()) continue;
+        for (const std::string& f : files_of(pattern))
+          if (std::find(excluded_.begin(), excluded_.end(), f) == excluded_.end())
+            files[f] = checksum_of(f, db_.get(), scan_);
+      }
+    }
+    return files;
+  }
+
+  // With a reach, the years that files added, changed or removed since the last run reach;
+  // nothing when that cannot be told (a file without a date in its name, a multi-band file).
+  std::optional<std::vector<int>> years_reached(const std::map<std::string, std::string>& before,
+                                                const std::map<std::string, std::string>& now,
+                                                double reach) const {
+    std::set<std::string> changed;
+    for (const auto& [f, sum] : now)
+      if (auto it = before.find(f); it == before.end() || it->second != sum) changed.insert(f);
+    for (const auto& [f, sum] : before)
+      if (!now.count(f)) changed.insert(f);
+    std::set<int> years;
+    for (const std::string& f : changed) {
+      const auto date = date_from_name(f);
+      if (!date) return std::nullopt;
+      const double day = date->days();
+      const int year = date->date().year;
+      years.insert(year);
+      if (day - double(days_from_civil(year, 1, 1)) < reach) years.insert(year - 1);
+      if (double(days_from_civil(year + 1, 1, 1)) - day <= reach) years.insert(year + 1);
+    }
+    if (years.empty()) return std::nullopt;
+    return std::vector<int>(years.begin(), years.end());
+  }
+
   std::string why_changed(const std::string& before, const std::string& now) const {
     if (before.empty()) return "failed last time";
     const bool params = before.substr(0, 16) != now.substr(0, 16);
@@ -351,6 +391,17 @@ class Runner {
       report.action = StepReport::Action::would_run;
       return;
     }
+    only_years_.reset();
+    const double reach = step.kind == "fill" && step.options.count("reach") ? std::stod(step.options.at("reach")) : 0;
+    if (reach > 0 && record && record->status == "done" && complete && !record->inputs.empty() &&
+        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+      only_years_ = years_reached(record->inputs, inputs_of(step), reach);
+      if (only_years_) {
+        std::string list;
+        for (int y : *only_years_) list += (list.empty() ? "" : ", ") + std::to_string(y);
+        report.reason += "; recomputing the years it reaches: " + list;
+      }
+    }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
     const std::string folder = step_folder(out_, step.id);
@@ -372,7 +423,7 @@ class Runner {
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
-                            outputs_in(folder)};
+                            outputs_in(folder), inputs_of(step)};
     db_->step_done(done);
   }
 
@@ -407,6 +458,8 @@ class Runner {
       m.reject_below = o.number("reject_below", m.reject_below);
       m.max_gap_days = o.number("max_gap", m.max_gap_days);
       m.max_extrapolation_days = o.number("max_extrapolation", m.max_extrapolation_days);
+      m.reach_days = o.number("reach", m.reach_days);
+      r.only_years = only_years_;
       m.spacetime_space_smoothing = o.number("space_smoothing", m.spacetime_space_smoothing);
       m.spacetime_time_smoothing = o.number("time_smoothing", m.spacetime_time_smoothing);
       m.spacetime_climate_smoothing = o.number("climate_smoothing", m.spacetime_climate_smoothing);
@@ -524,6 +577,7 @@ class Runner {
   Scan scan_;
   std::map<std::string, std::string> fingerprints_;
   std::vector<std::string> excluded_;
+  std::optional<std::vector<int>> only_years_;  // for the fill step being run
   RunReport report_;
 };
 

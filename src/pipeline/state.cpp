@@ -101,6 +101,7 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
          " finished TEXT, seconds REAL, message TEXT)");
     exec("CREATE TABLE IF NOT EXISTS outputs (path TEXT PRIMARY KEY, step TEXT)");
     exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
+    exec("CREATE TABLE IF NOT EXISTS step_inputs (step TEXT, path TEXT, checksum TEXT, PRIMARY KEY (step, path))");
   }
 }
 
@@ -150,6 +151,12 @@ std::optional<StepRecord> StateDatabase::step(const std::string& id) const {
   Statement o(db_, "SELECT path FROM outputs WHERE step = ? ORDER BY path", path_);
   o.bind(1, id);
   while (o.step()) r.outputs.push_back(o.text(0));
+  // Databases written before this table existed have no rows: the step then reruns whole.
+  if (sqlite3_exec(db_, "SELECT 1 FROM step_inputs LIMIT 0", nullptr, nullptr, nullptr) == SQLITE_OK) {
+    Statement i(db_, "SELECT path, checksum FROM step_inputs WHERE step = ?", path_);
+    i.bind(1, id);
+    while (i.step()) r.inputs[i.text(0)] = i.text(1);
+  }
   return r;
 }
 
@@ -167,6 +174,14 @@ void StateDatabase::step_done(const StepRecord& record) {
       Statement o(db_, "INSERT OR REPLACE INTO outputs (path, step) VALUES (?, ?)", path_);
       o.bind(1, out).bind(2, record.id);
       o.step();
+    }
+    Statement di(db_, "DELETE FROM step_inputs WHERE step = ?", path_);
+    di.bind(1, record.id);
+    di.step();
+    for (const auto& [file, checksum] : record.inputs) {
+      Statement in(db_, "INSERT INTO step_inputs (step, path, checksum) VALUES (?, ?, ?)", path_);
+      in.bind(1, record.id).bind(2, file).bind(3, checksum);
+      in.step();
     }
     exec("COMMIT");
   } catch (...) {

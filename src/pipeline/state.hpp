@@ -5,6 +5,7 @@
 #include <sqlite3.h>
 
 #include <cstdint>
+#include <map>
 #include <optional>
 #include <string>
 #include <vector>
@@ -21,6 +22,7 @@ struct StepRecord {
   std::string id, kind, fingerprint, status, finished, message;
   double seconds = 0;
   std::vector<std::string> outputs;
+  std::map<std::string, std::string> inputs;  // input files read directly -> checksum
 };
 
 class StateDatabase {

@@ -45,6 +45,7 @@ input = "ndvi"
 lambda = "{lam}"
 envelope = "upper"
 every = "1M"
+{extra}
 
 [[step]]
 do = "seasons"
@@ -56,14 +57,14 @@ input = "seasons"
 """
 
 
-def make_job(folder, lam="auto", years=2, size=96):
+def make_job(folder, lam="auto", years=2, size=96, extra=""):
     os.makedirs(folder, exist_ok=True)
     if not os.path.exists(os.path.join(folder, "stack", "ndvi", "synth.json")):
         synth_stack.make_stack(os.path.join(folder, "stack", "ndvi"), width=size, height=size, years=years,
                                qa_dir=os.path.join(folder, "stack", "qa"))
     path = os.path.join(folder, "job.toml")
     with open(path, "w") as f:
-        f.write(JOB.format(lam=lam))
+        f.write(JOB.format(lam=lam, extra=extra))
     return path
 
 
@@ -114,7 +115,7 @@ class JobFile(kt.TempDirTestCase):
             self.assertIn(w, lines[0])
 
     def test_mistakes_are_named_with_their_line(self):
-        good = JOB.format(lam="auto")
+        good = JOB.format(lam="auto", extra="")
         self.check_refused(good.replace("envelope =", "envelop ="), good.split("\n").index('envelope = "upper"') + 1,
                            ["unknown key 'envelop'"])
         self.check_refused(good.replace('memory = "256M"', "memory = 256"), 5, ["'memory' must be a string"])
@@ -160,8 +161,10 @@ class Incremental(kt.TempDirTestCase):
         self.assertEqual([l.split()[2] for l in status.stdout.splitlines()], ["done", "done", "done"])
 
     def test_adding_composites_one_at_a_time_equals_a_run_from_scratch(self):
+        # With a reach of 120 days each year is filled from the dates within 120 days of it, so
+        # composites arriving in late 2022 recompute 2022 (and 2023) but leave 2021 alone.
         folder = os.path.join(self.tmp, "b")
-        job = make_job(folder)
+        job = make_job(folder, extra="reach = 120")
         source = os.path.join(folder, "stack")
         arrived = os.path.join(folder, "arrived")
         files = sorted(glob.glob(os.path.join(source, "ndvi", "ndvi_*.tif")))
@@ -178,6 +181,10 @@ class Incremental(kt.TempDirTestCase):
             shutil.copy(path, os.path.join(live, "ndvi", name))
             shutil.copy(os.path.join(source, "qa", name.replace("ndvi_", "qa_")), os.path.join(live, "qa"))
         self.assertEqual(run(job).returncode, 0)
+        out = os.path.join(folder, "out")
+        first_year = {p: t for p, t in mtimes(out).items() if "2021-" in os.path.basename(p)
+                      and "/fill/" in p}
+        self.assertGreater(len(first_year), 20)
         for path in files[-3:]:
             name = os.path.basename(path)
             shutil.copy(path, os.path.join(live, "ndvi", name))
@@ -185,6 +192,9 @@ class Incremental(kt.TempDirTestCase):
             done = run(job)
             self.assertEqual(done.returncode, 0, done.stderr)
             self.assertIn("2 new", done.stdout)   # the composite and its QA layer
+            self.assertIn("recomputing the years it reaches: 2022", done.stdout)
+        now = mtimes(out)
+        self.assertEqual({p: now[p] for p in first_year}, first_year)   # 2021 untouched
         incremental = content(os.path.join(folder, "out"))
         scratch = run(job, "--out", os.path.join(folder, "scratch"))
         self.assertEqual(scratch.returncode, 0, scratch.stderr)
@@ -198,7 +208,8 @@ class Faults(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
         super().setUpClass()
-        cls.job = make_job(os.path.join(cls.tmp, "job"))
+        # 160 px: each output GeoTIFF is larger than the whole state database (the disk test).
+        cls.job = make_job(os.path.join(cls.tmp, "job"), size=160)
         done = run(cls.job, "--out", os.path.join(cls.tmp, "reference"))
         assert done.returncode == 0, done.stderr
         cls.reference = content(os.path.join(cls.tmp, "reference"))
@@ -245,12 +256,19 @@ class Faults(kt.TempDirTestCase):
 
     def test_a_failing_disk_stops_cleanly_and_the_next_run_resumes(self):
         out = os.path.join(self.tmp, "full")
+        # A file-size limit above the whole state database of a finished run but below every
+        # output GeoTIFF: the outputs cannot be written, the database can.
+        reference = os.path.join(self.tmp, "reference")
+        database = os.path.getsize(os.path.join(reference, ".kalends", "state.sqlite"))
+        smallest = min(os.path.getsize(p) for p in glob.glob(os.path.join(reference, "fill", "*.tif")))
+        limit = database + (16 << 10)
+        if smallest <= limit:
+            self.skipTest("outputs (%d bytes) too small to fail before the database (%d)" % (smallest, database))
 
         def small_disk():
-            # Writes past 40 kB in one file fail with EFBIG instead of killing the process
-            # (SIGXFSZ ignored): the outputs (about 100 kB each) cannot be written.
+            # Writes past the limit fail with EFBIG instead of killing the process (SIGXFSZ ignored).
             signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
-            resource.setrlimit(resource.RLIMIT_FSIZE, (40 << 10, 40 << 10))
+            resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
 
         failed = run(self.job, "--out", out, preexec=small_disk)
         self.assertEqual(failed.returncode, 1, failed.stdout + failed.stderr)
