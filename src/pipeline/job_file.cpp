@@ -8,6 +8,7 @@
 #include <set>
 
 #include "kalends/error.hpp"
+#include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
 
@@ -15,46 +16,7 @@ namespace {
 
 namespace fs = std::filesystem;
 
-enum class Type { text, number, integer, boolean, text_or_number, pair, texts };
-
-struct Key {
-  const char* name;
-  Type type;
-};
-
-// Every key a step of each kind accepts (docs/job-file.md documents them).
-const std::map<std::string, std::vector<Key>>& step_keys() {
-  static const std::map<std::string, std::vector<Key>> keys{
-      {"fill",
-       {{"input", Type::text}, {"method", Type::text}, {"lambda", Type::text_or_number},
-        {"lambda_range", Type::pair}, {"order", Type::integer}, {"envelope", Type::text},
-        {"robust", Type::boolean}, {"iterations", Type::integer}, {"harmonics", Type::integer},
-        {"trend", Type::boolean}, {"reject_below", Type::number}, {"smooth", Type::boolean},
-        {"every", Type::text}, {"name", Type::text}, {"max_gap", Type::number},
-        {"max_extrapolation", Type::number}, {"reach", Type::number}, {"compress", Type::text},
-        {"keep", Type::text},
-        {"space_smoothing", Type::number}, {"time_smoothing", Type::number},
-        {"climate_smoothing", Type::number}, {"season_smoothing", Type::number},
-        {"halo", Type::integer}, {"tolerance", Type::number}}},
-      {"seasons",
-       {{"input", Type::text}, {"period", Type::text}, {"years", Type::text},
-        {"date_marks", Type::text}, {"prominence", Type::number}, {"threshold", Type::number},
-        {"name", Type::text}, {"compress", Type::text}}},
-      {"compare", {{"input", Type::text}, {"zones", Type::text}, {"top", Type::integer}}},
-      {"suitability",
-       {{"day", Type::text}, {"night", Type::text}, {"tmin", Type::text}, {"tmax", Type::text},
-        {"temperature", Type::text}, {"model", Type::text}, {"parasite", Type::text},
-        {"window", Type::pair}, {"period", Type::text}, {"years", Type::text},
-        {"threshold", Type::number}, {"units", Type::text}, {"day_hour", Type::number},
-        {"night_hour", Type::number}, {"date_marks", Type::text}, {"parameters", Type::text},
-        {"name", Type::text}, {"compress", Type::text}}},
-      {"index",
-       {{"red", Type::text}, {"nir", Type::text}, {"blue", Type::text}, {"red_band", Type::integer},
-        {"nir_band", Type::integer}, {"blue_band", Type::integer}, {"index", Type::text},
-        {"name", Type::text}, {"compress", Type::text}}},
-  };
-  return keys;
-}
+using Type = KeyType;
 
 [[noreturn]] void fail(const std::string& path, const toml::source_region& where, const std::string& reason) {
   throw UsageError(fmt::format("{}:{}", path, where.begin.line), reason);
@@ -197,11 +159,11 @@ Job read_job(const std::string& path) {
     JobStep step;
     step.line = int(node.source().begin.line);
     const toml::node* kind = t->get("do");
-    if (!kind || !kind->is_string()) fail(path, node.source(), "a [[step]] needs 'do' = index, fill, seasons, compare or suitability");
+    if (!kind || !kind->is_string())
+      fail(path, node.source(), "a [[step]] needs 'do' = " + step_kind_names());
     step.kind = *kind->value<std::string>();
-    const auto spec = step_keys().find(step.kind);
-    if (spec == step_keys().end())
-      fail(path, kind->source(), "unknown step '" + step.kind + "' (index, fill, seasons, compare, suitability)");
+    const StepKind* spec = find_step_kind(step.kind);
+    if (!spec) fail(path, kind->source(), "unknown step '" + step.kind + "' (" + step_kind_names() + ")");
     const toml::node* id = t->get("id");
     step.id = id && id->is_string() ? *id->value<std::string>() : step.kind;
     if (step.id.empty() || step.id.find_first_of("/\\. ") != std::string::npos)
@@ -210,28 +172,24 @@ Job read_job(const std::string& path) {
     for (auto&& [key, value] : *t) {
       const std::string k(key.str());
       if (k == "do" || k == "id") continue;
-      const auto found = std::find_if(spec->second.begin(), spec->second.end(),
-                                      [&](const Key& key_spec) { return k == key_spec.name; });
-      if (found == spec->second.end()) {
+      const auto found = std::find_if(spec->keys.begin(), spec->keys.end(),
+                                      [&](const StepKey& key_spec) { return k == key_spec.name; });
+      if (found == spec->keys.end()) {
         std::string allowed;
-        for (const Key& key_spec : spec->second) allowed += std::string(allowed.empty() ? "" : ", ") + key_spec.name;
+        for (const StepKey& key_spec : spec->keys) allowed += std::string(allowed.empty() ? "" : ", ") + key_spec.name;
         fail(path, key.source(), "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")");
       }
       step.options[k] = checked_text(path, k, value, found->type);
-      if (k == "input" || k == "red" || k == "nir" || k == "blue" || k == "day" || k == "night" ||
-          k == "tmin" || k == "tmax" || k == "temperature") {
+      if (found->role == StepKey::Role::reads) {
         if (!known.count(step.options[k]))
           fail(path, value.source(), "'" + step.options[k] + "' is neither an input nor an earlier step");
         step.inputs.push_back(step.options[k]);
       }
-      if (k == "zones" || k == "parameters") step.options[k] = resolve(job.folder, step.options[k]);
+      if (found->role == StepKey::Role::path) step.options[k] = resolve(job.folder, step.options[k]);
     }
-    if (step.kind == "index" && (!step.options.count("red") || !step.options.count("nir")))
-      fail(path, node.source(), "an 'index' step needs 'red' and 'nir'");
-    if (step.kind == "suitability" && step.inputs.empty())
-      fail(path, node.source(), "a 'suitability' step needs 'day' and 'night', 'tmin' and 'tmax', or 'temperature'");
-    if (step.kind != "index" && step.kind != "suitability" && !step.options.count("input"))
-      fail(path, node.source(), "a '" + step.kind + "' step needs 'input'");
+    if (spec->check)
+      if (const std::string mistake = spec->check(step.options); !mistake.empty())
+        fail(path, node.source(), mistake);
     known.insert(step.id);
     job.steps.push_back(std::move(step));
   }

@@ -12,15 +12,12 @@
 #include <set>
 
 #include "engine/memory_budget.hpp"
-#include "kalends/compare.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/pipeline.hpp"
-#include "kalends/seasons.hpp"
-#include "kalends/spectral_index.hpp"
-#include "kalends/suitability.hpp"
 #include "pipeline/job_file.hpp"
 #include "pipeline/state.hpp"
+#include "pipeline/step_kind.hpp"
 
 namespace kalends {
 
@@ -106,21 +103,6 @@ class FolderLock {
   int fd_ = -1;
 };
 
-// ---- options -----------------------------------------------------------------------------
-
-struct Options {
-  const detail::StepOptions& o;
-  const std::string& where;
-  bool has(const char* k) const { return o.count(k) != 0; }
-  std::string text(const char* k, const std::string& fallback = "") const {
-    const auto it = o.find(k);
-    return it == o.end() ? fallback : it->second;
-  }
-  double number(const char* k, double fallback) const { return has(k) ? std::stod(o.at(k)) : fallback; }
-  int integer(const char* k, int fallback) const { return has(k) ? std::stoi(o.at(k)) : fallback; }
-  bool flag(const char* k) const { return text(k) == "true"; }
-};
-
 ValueRules rules_of(const JobInput& input) {
   ValueRules r;
   r.scale = input.scale;
@@ -155,13 +137,6 @@ std::vector<std::string> outputs_in(const std::string& folder) {
   std::sort(files.begin(), files.end());
   return files;
 }
-
-struct Resolved {
-  std::string pattern;     // what the step reads
-  std::string qa, keep;    // QA for fill steps
-  ValueRules rules;
-  std::string fingerprint;  // of what it reads
-};
 
 class Runner {
  public:
@@ -358,8 +333,8 @@ class Runner {
     return why.empty() ? "outputs missing" : why;
   }
 
-  Resolved resolve(const std::string& name) {
-    Resolved r;
+  detail::ResolvedInput resolve(const std::string& name) {
+    detail::ResolvedInput r;
     if (auto in = job_.inputs.find(name); in != job_.inputs.end()) {
       r.pattern = in->second.stack;
       r.qa = in->second.qa;
@@ -367,6 +342,7 @@ class Runner {
       r.rules = rules_of(in->second);
     } else {
       const std::string folder = step_folder(out_, name);
+      r.folder = folder;
       r.pattern = (fs::path(folder) / "*.tif").string();
       if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
     }
@@ -392,7 +368,9 @@ class Runner {
       return;
     }
     only_years_.reset();
-    const double reach = step.kind == "fill" && step.options.count("reach") ? std::stod(step.options.at("reach")) : 0;
+    const detail::StepKind* kind = detail::find_step_kind(step.kind);
+    const double reach =
+        kind && kind->years_by_reach && step.options.count("reach") ? std::stod(step.options.at("reach")) : 0;
     if (reach > 0 && record && record->status == "done" && complete && !record->inputs.empty() &&
         record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
       only_years_ = years_reached(record->inputs, inputs_of(step), reach);
@@ -428,143 +406,24 @@ class Runner {
   }
 
   void execute(const JobStep& step, const std::string& folder, StepReport& report) {
-    const Options o{step.options, job_.path};
-    const std::string command = "kalends run " + fs::path(job_.path).filename().string() + " (step " + step.id + ")";
-    auto progress = [&](int done, int total) {
+    const detail::StepKind* kind = detail::find_step_kind(step.kind);
+    if (!kind) throw UsageError(job_.path, "unknown step '" + step.kind + "'");
+    detail::StepContext context{step.options};
+    context.job_path = job_.path;
+    context.folder = folder;
+    context.out = out_;
+    context.command_line = "kalends run " + fs::path(job_.path).filename().string() + " (step " + step.id + ")";
+    context.memory_bytes = cli_memory();
+    context.threads = job_.threads;
+    context.only_years = only_years_;
+    context.resolve = [this](const std::string& name) { return resolve(name); };
+    context.progress = [&](int done, int total) {
       if (events_.progress) events_.progress(step.id, done, total);
     };
-    if (step.kind == "fill") {
-      const Resolved in = resolve(o.text("input"));
-      FillRequest r;
-      r.input = in.pattern;
-      r.rules = in.rules;
-      r.qa_input = in.qa;
-      r.qa_keep = o.text("keep", in.keep);
-      if (r.qa_input.empty()) r.qa_keep.clear();
-      MethodOptions& m = r.method;
-      m.method = o.text("method", m.method);
-      if (o.has("lambda") && o.text("lambda") != "auto") m.lambda = o.number("lambda", 0);
-      if (o.has("lambda_range")) {
-        const std::string range = o.text("lambda_range");
-        m.lambda_min = std::stod(range.substr(0, range.find(',')));
-        m.lambda_max = std::stod(range.substr(range.find(',') + 1));
-      }
-      m.order = o.integer("order", m.order);
-      m.envelope_upper = o.text("envelope", "none") == "upper";
-      m.robust = o.flag("robust");
-      m.iterations = o.integer("iterations", m.iterations);
-      m.harmonics = o.integer("harmonics", m.harmonics);
-      m.trend = o.flag("trend");
-      m.reject_below = o.number("reject_below", m.reject_below);
-      m.max_gap_days = o.number("max_gap", m.max_gap_days);
-      m.max_extrapolation_days = o.number("max_extrapolation", m.max_extrapolation_days);
-      m.reach_days = o.number("reach", m.reach_days);
-      r.only_years = only_years_;
-      m.spacetime_space_smoothing = o.number("space_smoothing", m.spacetime_space_smoothing);
-      m.spacetime_time_smoothing = o.number("time_smoothing", m.spacetime_time_smoothing);
-      m.spacetime_climate_smoothing = o.number("climate_smoothing", m.spacetime_climate_smoothing);
-      m.spacetime_season_smoothing = o.number("season_smoothing", m.spacetime_season_smoothing);
-      m.spacetime_halo = o.integer("halo", m.spacetime_halo);
-      m.spacetime_tolerance = o.number("tolerance", m.spacetime_tolerance);
-      r.smooth = o.flag("smooth");
-      if (o.has("every")) r.every = CalendarPeriod::parse(o.text("every"));
-      r.name = o.text("name");
-      r.out_dir = folder;
-      r.memory_bytes = cli_memory();
-      r.threads = job_.threads;
-      r.compression = parse_compression(o.text("compress", "deflate"));
-      r.command_line = command;
-      r.keep_unchanged = true;
-      const FillSummary s = run_fill(r, progress);
-      report.outputs_written = s.outputs_written;
-      report.outputs_unchanged = s.outputs_unchanged;
-    } else if (step.kind == "seasons") {
-      const Resolved in = resolve(o.text("input"));
-      SeasonsRequest r;
-      r.input = in.pattern;
-      r.rules = in.rules;
-      r.out_dir = folder;
-      r.name = o.text("name");
-      r.period = CalendarPeriod::parse(o.text("period", "1M"));
-      if (o.has("years")) std::tie(r.first_year, r.last_year) = parse_years(o.text("years"));
-      r.marks = parse_date_marks(o.text("date_marks", "start"));
-      r.cycle.prominence_share = o.number("prominence", r.cycle.prominence_share);
-      r.cycle.threshold_share = o.number("threshold", r.cycle.threshold_share);
-      r.memory_bytes = cli_memory();
-      r.threads = job_.threads;
-      r.compression = parse_compression(o.text("compress", "deflate"));
-      r.command_line = command;
-      r.keep_unchanged = true;
-      const SeasonsSummary s = run_seasons(r);
-      report.outputs_written = s.outputs_written;
-      report.outputs_unchanged = s.outputs_unchanged;
-    } else if (step.kind == "compare") {
-      CompareRequest r;
-      r.seasons_dir = step_folder(out_, o.text("input"));
-      r.out_dir = folder;
-      r.zones = o.text("zones");
-      r.top = o.integer("top", r.top);
-      run_compare(r);
-      report.outputs_written = int(outputs_in(folder).size());
-    } else if (step.kind == "suitability") {
-      SuitabilityRequest r;
-      TemperatureInputs& t = r.inputs;
-      const char* names[] = {"day", "night", "tmin", "tmax", "temperature"};
-      std::string* fields[] = {&t.day, &t.night, &t.tmin, &t.tmax, &t.temperature};
-      for (int k = 0; k < 5; ++k)
-        if (o.has(names[k])) {
-          const Resolved in = resolve(o.text(names[k]));
-          *fields[k] = in.pattern;
-          t.rules = in.rules;
-        }
-      t.unit = parse_temperature_unit(o.text("units", "auto"));
-      t.day_hour = o.number("day_hour", t.day_hour);
-      t.night_hour = o.number("night_hour", t.night_hour);
-      t.marks = parse_date_marks(o.text("date_marks", "start"));
-      r.model = parse_model_kind(o.text("model", "r0-2013"));
-      r.parasite = parse_parasite(o.text("parasite", "falciparum"));
-      if (o.has("window")) {
-        const std::string w = o.text("window");
-        r.window_low = std::stod(w.substr(0, w.find(',')));
-        r.window_high = std::stod(w.substr(w.find(',') + 1));
-      }
-      r.parameters_file = o.text("parameters");
-      r.period = CalendarPeriod::parse(o.text("period", "1M"));
-      if (o.has("years")) std::tie(r.first_year, r.last_year) = parse_years(o.text("years"));
-      r.threshold = o.number("threshold", r.threshold);
-      r.out_dir = folder;
-      r.name = o.text("name");
-      r.memory_bytes = cli_memory();
-      r.threads = job_.threads;
-      r.compression = parse_compression(o.text("compress", "deflate"));
-      r.command_line = command;
-      r.keep_unchanged = true;
-      const SuitabilitySummary s = run_suitability(r);
-      report.outputs_written = s.outputs_written;
-      report.outputs_unchanged = s.outputs_unchanged;
-      report.caution = suitability_caution;
-    } else if (step.kind == "index") {
-      IndexRequest r;
-      const Resolved red = resolve(o.text("red")), nir = resolve(o.text("nir"));
-      r.red = red.pattern;
-      r.nir = nir.pattern;
-      r.rules = red.rules;
-      if (o.has("blue")) r.blue = resolve(o.text("blue")).pattern;
-      r.red_band = o.integer("red_band", 1);
-      r.nir_band = o.integer("nir_band", 1);
-      r.blue_band = o.integer("blue_band", 1);
-      r.kind = o.text("index", "ndvi") == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
-      r.qa = red.qa;
-      r.name = o.text("name");
-      r.out_dir = folder;
-      r.threads = job_.threads;
-      r.compression = parse_compression(o.text("compress", "deflate"));
-      r.command_line = command;
-      r.keep_unchanged = true;
-      const IndexSummary s = run_index(r);
-      report.outputs_written = s.outputs_written;
-      report.outputs_unchanged = s.outputs_unchanged;
-    }
+    const detail::StepOutcome outcome = kind->run(context);
+    report.outputs_written = outcome.outputs_written;
+    report.outputs_unchanged = outcome.outputs_unchanged;
+    report.caution = outcome.caution;
   }
 
   std::int64_t cli_memory() const;

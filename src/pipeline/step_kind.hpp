@@ -1,0 +1,82 @@
+// The kinds of step a job file can declare. Each kind lives in its own file under steps/ and
+// says which keys it accepts and how it runs; the job reader and the runner know nothing else
+// of it. Adding a kind is one file and one line in step_registry.cpp.
+#pragma once
+
+#include <cstdint>
+#include <functional>
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "kalends/stack.hpp"
+#include "pipeline/job_file.hpp"
+
+namespace kalends::detail {
+
+enum class KeyType { text, number, integer, boolean, text_or_number, pair, texts };
+
+struct StepKey {
+  const char* name;
+  KeyType type;
+  /// reads: names an input or an earlier step; path: a file resolved against the job's folder.
+  enum class Role { plain, reads, path } role = Role::plain;
+};
+
+/// What a step reads from one named input or earlier step.
+struct ResolvedInput {
+  std::string pattern;   // the stack pattern (an earlier step: its folder's *.tif)
+  std::string qa, keep;  // QA stack and rule, where the input has them
+  std::string folder;    // an earlier step's output folder; empty for a job input
+  ValueRules rules;
+};
+
+/// Everything a step may use while it runs; it writes only under `folder`.
+struct StepContext {
+  const StepOptions& options;
+  std::string job_path;
+  std::string folder;        // this step's output folder
+  std::string out;           // the job's output folder
+  std::string command_line;  // recorded in the outputs' metadata
+  std::int64_t memory_bytes = 0;
+  int threads = 0;
+  std::optional<std::vector<int>> only_years;  // years to recompute, when the runner knows them
+  std::function<ResolvedInput(const std::string& name)> resolve;
+  std::function<void(int done, int total)> progress;
+
+  bool has(const char* key) const { return options.count(key) != 0; }
+  std::string text(const char* key, const std::string& fallback = "") const;
+  double number(const char* key, double fallback) const;
+  int integer(const char* key, int fallback) const;
+  bool flag(const char* key) const { return text(key) == "true"; }
+  std::pair<double, double> pair(const char* key) const;  // "a,b"
+};
+
+struct StepOutcome {
+  int outputs_written = 0, outputs_unchanged = 0;
+  std::string caution;  // shown with the step's outputs
+};
+
+struct StepKind {
+  std::string name;
+  std::vector<StepKey> keys;
+  /// A job-file mistake the keys alone cannot catch (a required key missing), or "".
+  std::function<std::string(const StepOptions&)> check;
+  std::function<StepOutcome(const StepContext&)> run;
+  /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
+  /// recompute those alone.
+  bool years_by_reach = false;
+};
+
+const std::vector<StepKind>& step_kinds();
+const StepKind* find_step_kind(const std::string& name);
+std::string step_kind_names();  // "index, fill, ..." for messages
+
+// One function per kind, each in steps/<kind>_step.cpp.
+StepKind index_step_kind();
+StepKind fill_step_kind();
+StepKind seasons_step_kind();
+StepKind compare_step_kind();
+StepKind suitability_step_kind();
+
+}  // namespace kalends::detail

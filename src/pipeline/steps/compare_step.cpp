@@ -1,0 +1,35 @@
+// Step 'compare': where a synoptic layer misleads (kalends compare).
+#include <filesystem>
+
+#include "kalends/compare.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+StepKind compare_step_kind() {
+  using T = KeyType;
+  StepKind kind;
+  kind.name = "compare";
+  kind.keys = {{"input", T::text, StepKey::Role::reads},
+               {"zones", T::text, StepKey::Role::path},
+               {"top", T::integer}};
+  kind.check = [](const StepOptions& o) {
+    return o.count("input") ? std::string() : std::string("a 'compare' step needs 'input'");
+  };
+  kind.run = [](const StepContext& c) {
+    CompareRequest r;
+    r.seasons_dir = c.resolve(c.text("input")).folder;
+    r.out_dir = c.folder;
+    r.zones = c.text("zones");
+    r.top = c.integer("top", r.top);
+    run_compare(r);
+    int written = 0;
+    std::error_code ec;
+    for (const auto& entry : std::filesystem::recursive_directory_iterator(c.folder, ec))
+      if (entry.is_regular_file() && entry.path().filename().string().front() != '.') ++written;
+    return StepOutcome{written, 0, ""};
+  };
+  return kind;
+}
+
+}  // namespace kalends::detail

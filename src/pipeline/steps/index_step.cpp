@@ -1,0 +1,43 @@
+// Step 'index': NDVI or EVI from band stacks (kalends index).
+#include "kalends/fill.hpp"
+#include "kalends/spectral_index.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+StepKind index_step_kind() {
+  using T = KeyType;
+  const auto reads = StepKey::Role::reads;
+  StepKind kind;
+  kind.name = "index";
+  kind.keys = {{"red", T::text, reads}, {"nir", T::text, reads}, {"blue", T::text, reads},
+               {"red_band", T::integer}, {"nir_band", T::integer}, {"blue_band", T::integer},
+               {"index", T::text}, {"name", T::text}, {"compress", T::text}};
+  kind.check = [](const StepOptions& o) {
+    return o.count("red") && o.count("nir") ? std::string() : std::string("an 'index' step needs 'red' and 'nir'");
+  };
+  kind.run = [](const StepContext& c) {
+    IndexRequest r;
+    const ResolvedInput red = c.resolve(c.text("red")), nir = c.resolve(c.text("nir"));
+    r.red = red.pattern;
+    r.nir = nir.pattern;
+    r.rules = red.rules;
+    if (c.has("blue")) r.blue = c.resolve(c.text("blue")).pattern;
+    r.red_band = c.integer("red_band", 1);
+    r.nir_band = c.integer("nir_band", 1);
+    r.blue_band = c.integer("blue_band", 1);
+    r.kind = c.text("index", "ndvi") == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
+    r.qa = red.qa;
+    r.name = c.text("name");
+    r.out_dir = c.folder;
+    r.threads = c.threads;
+    r.compression = parse_compression(c.text("compress", "deflate"));
+    r.command_line = c.command_line;
+    r.keep_unchanged = true;
+    const IndexSummary s = run_index(r);
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
+  };
+  return kind;
+}
+
+}  // namespace kalends::detail

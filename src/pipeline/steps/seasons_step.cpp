@@ -1,0 +1,42 @@
+// Step 'seasons': synoptic and year-specific seasonal layers (kalends seasons).
+#include "kalends/fill.hpp"
+#include "kalends/seasons.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+StepKind seasons_step_kind() {
+  using T = KeyType;
+  StepKind kind;
+  kind.name = "seasons";
+  kind.keys = {{"input", T::text, StepKey::Role::reads},
+               {"period", T::text}, {"years", T::text}, {"date_marks", T::text},
+               {"prominence", T::number}, {"threshold", T::number}, {"name", T::text},
+               {"compress", T::text}};
+  kind.check = [](const StepOptions& o) {
+    return o.count("input") ? std::string() : std::string("a 'seasons' step needs 'input'");
+  };
+  kind.run = [](const StepContext& c) {
+    const ResolvedInput in = c.resolve(c.text("input"));
+    SeasonsRequest r;
+    r.input = in.pattern;
+    r.rules = in.rules;
+    r.out_dir = c.folder;
+    r.name = c.text("name");
+    r.period = CalendarPeriod::parse(c.text("period", "1M"));
+    if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
+    r.marks = parse_date_marks(c.text("date_marks", "start"));
+    r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
+    r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
+    r.memory_bytes = c.memory_bytes;
+    r.threads = c.threads;
+    r.compression = parse_compression(c.text("compress", "deflate"));
+    r.command_line = c.command_line;
+    r.keep_unchanged = true;
+    const SeasonsSummary s = run_seasons(r);
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
+  };
+  return kind;
+}
+
+}  // namespace kalends::detail

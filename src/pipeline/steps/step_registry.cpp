@@ -1,0 +1,48 @@
+#include <fmt/format.h>
+
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+const std::vector<StepKind>& step_kinds() {
+  static const std::vector<StepKind> kinds{
+      index_step_kind(),
+      fill_step_kind(),
+      seasons_step_kind(),
+      compare_step_kind(),
+      suitability_step_kind(),
+  };
+  return kinds;
+}
+
+const StepKind* find_step_kind(const std::string& name) {
+  for (const StepKind& kind : step_kinds())
+    if (kind.name == name) return &kind;
+  return nullptr;
+}
+
+std::string step_kind_names() {
+  std::string names;
+  for (const StepKind& kind : step_kinds()) names += (names.empty() ? "" : ", ") + kind.name;
+  return names;
+}
+
+std::string StepContext::text(const char* key, const std::string& fallback) const {
+  const auto it = options.find(key);
+  return it == options.end() ? fallback : it->second;
+}
+
+double StepContext::number(const char* key, double fallback) const {
+  return has(key) ? std::stod(options.at(key)) : fallback;
+}
+
+int StepContext::integer(const char* key, int fallback) const {
+  return has(key) ? std::stoi(options.at(key)) : fallback;
+}
+
+std::pair<double, double> StepContext::pair(const char* key) const {
+  const std::string v = text(key);
+  return {std::stod(v.substr(0, v.find(','))), std::stod(v.substr(v.find(',') + 1))};
+}
+
+}  // namespace kalends::detail

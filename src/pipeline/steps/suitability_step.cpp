@@ -1,0 +1,59 @@
+// Step 'suitability': temperature suitability for malaria transmission (kalends suitability).
+#include "kalends/fill.hpp"
+#include "kalends/suitability.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+StepKind suitability_step_kind() {
+  using T = KeyType;
+  const auto reads = StepKey::Role::reads;
+  StepKind kind;
+  kind.name = "suitability";
+  kind.keys = {{"day", T::text, reads}, {"night", T::text, reads}, {"tmin", T::text, reads},
+               {"tmax", T::text, reads}, {"temperature", T::text, reads},
+               {"model", T::text}, {"parasite", T::text}, {"window", T::pair}, {"period", T::text},
+               {"years", T::text}, {"threshold", T::number}, {"units", T::text},
+               {"day_hour", T::number}, {"night_hour", T::number}, {"date_marks", T::text},
+               {"parameters", T::text, StepKey::Role::path}, {"name", T::text}, {"compress", T::text}};
+  kind.check = [](const StepOptions& o) {
+    for (const char* k : {"day", "night", "tmin", "tmax", "temperature"})
+      if (o.count(k)) return std::string();
+    return std::string("a 'suitability' step needs 'day' and 'night', 'tmin' and 'tmax', or 'temperature'");
+  };
+  kind.run = [](const StepContext& c) {
+    SuitabilityRequest r;
+    TemperatureInputs& t = r.inputs;
+    const char* names[] = {"day", "night", "tmin", "tmax", "temperature"};
+    std::string* fields[] = {&t.day, &t.night, &t.tmin, &t.tmax, &t.temperature};
+    for (int k = 0; k < 5; ++k)
+      if (c.has(names[k])) {
+        const ResolvedInput in = c.resolve(c.text(names[k]));
+        *fields[k] = in.pattern;
+        t.rules = in.rules;
+      }
+    t.unit = parse_temperature_unit(c.text("units", "auto"));
+    t.day_hour = c.number("day_hour", t.day_hour);
+    t.night_hour = c.number("night_hour", t.night_hour);
+    t.marks = parse_date_marks(c.text("date_marks", "start"));
+    r.model = parse_model_kind(c.text("model", "r0-2013"));
+    r.parasite = parse_parasite(c.text("parasite", "falciparum"));
+    if (c.has("window")) std::tie(r.window_low, r.window_high) = c.pair("window");
+    r.parameters_file = c.text("parameters");
+    r.period = CalendarPeriod::parse(c.text("period", "1M"));
+    if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
+    r.threshold = c.number("threshold", r.threshold);
+    r.out_dir = c.folder;
+    r.name = c.text("name");
+    r.memory_bytes = c.memory_bytes;
+    r.threads = c.threads;
+    r.compression = parse_compression(c.text("compress", "deflate"));
+    r.command_line = c.command_line;
+    r.keep_unchanged = true;
+    const SuitabilitySummary s = run_suitability(r);
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution};
+  };
+  return kind;
+}
+
+}  // namespace kalends::detail
