@@ -2,6 +2,8 @@
 #pragma once
 
 #include <cstdint>
+#include <optional>
+#include <string>
 #include <vector>
 
 namespace kalends {
@@ -28,8 +30,14 @@ struct BlockPlan {
   /// Blocks are whole tiles (so writes never share a tile) and as large as `max_read_pixels`
   /// allows, preferring full-width strips (cheap to read from strip-organised files).
   /// Throws UsageError when not even one tile plus halo fits.
+  /// With a `region`, blocks cover only that window of the raster (tiles counted from its
+  /// corner), while their read windows still reach into the rest of the raster for the halo.
   static BlockPlan make(int width, int height, int halo, std::int64_t max_read_pixels,
-                        int tile = 256);
+                        int tile = 256, const std::optional<Window>& region = std::nullopt);
 };
+
+/// The window `region` of a raster of `width` x `height`, or the whole raster when there is no
+/// region; UsageError when the region is empty or reaches outside the raster.
+Window area_of(int width, int height, const std::optional<Window>& region, const std::string& where);
 
 }  // namespace kalends

@@ -41,6 +41,9 @@ struct FillRequest {
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata
   bool keep_unchanged = false;  // leave outputs that would not change as they are
+  /// Compute only this window of the input's pixel grid (a tile of a mosaic, a shard's strip):
+  /// outputs cover the window and are georeferenced as it; halos are read from beyond it.
+  std::optional<Window> region;
   /// With method.reach_days > 0: compute and write only the outputs of these years; the rest
   /// stay as an earlier run left them (fill-years.tsv keeps their counts).
   std::optional<std::vector<int>> only_years;

@@ -29,6 +29,9 @@ struct IndexRequest {
   Compression compression = Compression::deflate;
   std::string command_line;
   bool keep_unchanged = false;
+  /// Compute only this window of the input's pixel grid (a tile, a shard's strip): outputs
+  /// cover the window and are georeferenced as it.
+  std::optional<Window> region;
 };
 
 struct IndexSummary {

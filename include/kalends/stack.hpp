@@ -30,6 +30,9 @@ struct Grid {
   std::string crs_wkt;  // empty where the source has none
 };
 
+/// The grid of a window of `grid`: its size, and the geotransform moved to its corner.
+Grid window_grid(const Grid& grid, const Window& window);
+
 /// One date of a stack: a band of a file.
 struct Layer {
   std::string path;  // as given to GDAL (a file name or a connection string)

@@ -96,6 +96,9 @@ struct SuitabilityRequest {
   Compression compression = Compression::deflate;
   std::string command_line;
   bool keep_unchanged = false;  // leave outputs that would not change as they are
+  /// Compute only this window of the input's pixel grid (a tile, a shard's strip): outputs
+  /// cover the window and are georeferenced as it.
+  std::optional<Window> region;
 };
 
 struct SuitabilitySummary {

@@ -95,8 +95,10 @@ IndexSummary run_index(const IndexRequest& request) {
     specs.push_back(std::move(spec));
   }
   const Grid& grid = red.grid();
+  const Window area = area_of(grid.width, grid.height, request.region, request.red);
   detail::set_gdal_cache(64 << 20);
-  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+  detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);
+  outputs.set_origin(area.x, area.y);
   std::atomic<std::int64_t> missing{0};
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
   tbb::task_arena arena(threads);
@@ -106,8 +108,8 @@ IndexSummary run_index(const IndexRequest& request) {
       std::unique_ptr<StackReader> blue_reader = blue ? blue->reader() : nullptr;
       std::vector<float> r, n, b, out, scratch;
       std::int64_t local_missing = 0;
-      for (int y = 0; y < grid.height; y += tile_size) {
-        const Window w{0, y, grid.width, std::min(tile_size, grid.height - y)};
+      for (int y = area.y; y < area.y + area.height; y += tile_size) {
+        const Window w{area.x, y, area.width, std::min(tile_size, area.y + area.height - y)};
         r.resize(w.pixels()), n.resize(w.pixels()), out.resize(w.pixels());
         red_reader->read_values(i, w, r.data());
         nir_reader->read_values(nir_of[i], w, n.data());
@@ -135,12 +137,21 @@ IndexSummary run_index(const IndexRequest& request) {
     for (std::size_t i = 0; i < red.layers().size(); ++i) {
       const Layer& q = qa->layers()[qa_of[i]];
       const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + fs::path(q.path).extension().string());
-      if (fs::exists(target) && fs::file_size(target) == fs::file_size(q.path) &&
-          detail::file_checksum_equal(target.string(), q.path))
-        continue;  // already there: keep its bytes and time
       const std::string temporary = detail::temporary_name(target.string());
-      fs::copy_file(q.path, temporary, fs::copy_options::overwrite_existing, ec);
-      if (ec) throw OutputError(target.string(), "cannot copy the QA layer: " + ec.message());
+      if (request.region) {
+        // A region's QA is the same window of the QA layer, so that it lines up with the index.
+        detail::crop_raster(q.path, area, temporary);
+        if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
+          fs::remove(temporary, ec);
+          continue;
+        }
+      } else {
+        if (fs::exists(target) && fs::file_size(target) == fs::file_size(q.path) &&
+            detail::file_checksum_equal(target.string(), q.path))
+          continue;  // already there: keep its bytes and time
+        fs::copy_file(q.path, temporary, fs::copy_options::overwrite_existing, ec);
+        if (ec) throw OutputError(target.string(), "cannot copy the QA layer: " + ec.message());
+      }
       fs::rename(temporary, target, ec);
       if (ec) throw OutputError(target.string(), "cannot rename into place: " + ec.message());
     }
@@ -149,7 +160,7 @@ IndexSummary run_index(const IndexRequest& request) {
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(red.layers().size());
-  summary.pixels = std::int64_t(grid.width) * grid.height * summary.dates;
+  summary.pixels = area.pixels() * summary.dates;
   summary.missing = missing;
   summary.out_dir = request.out_dir;
   return summary;

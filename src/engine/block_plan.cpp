@@ -6,12 +6,26 @@
 
 namespace kalends {
 
-BlockPlan BlockPlan::make(int width, int height, int halo, std::int64_t max_read_pixels, int tile) {
+Window area_of(int width, int height, const std::optional<Window>& region, const std::string& where) {
+  if (!region) return Window{0, 0, width, height};
+  const Window& r = *region;
+  if (r.width <= 0 || r.height <= 0 || r.x < 0 || r.y < 0 || r.x + r.width > width || r.y + r.height > height)
+    throw UsageError(where, "region " + std::to_string(r.x) + "," + std::to_string(r.y) + " " +
+                                std::to_string(r.width) + "x" + std::to_string(r.height) +
+                                " lies outside the raster of " + std::to_string(width) + "x" +
+                                std::to_string(height) + " px");
+  return r;
+}
+
+BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
+                          const std::optional<Window>& region) {
   BlockPlan plan;
   plan.tile = tile;
-  if (width <= 0 || height <= 0) return plan;
+  if (raster_width <= 0 || raster_height <= 0) return plan;
+  const Window area = area_of(raster_width, raster_height, region, "region");
+  const int width = area.width, height = area.height;
   auto read_pixels = [&](int bw, int bh) {
-    return std::int64_t(std::min(width, bw + 2 * halo)) * std::min(height, bh + 2 * halo);
+    return std::int64_t(std::min(raster_width, bw + 2 * halo)) * std::min(raster_height, bh + 2 * halo);
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
   if (read_pixels(tile, tile) > max_read_pixels)
@@ -35,10 +49,10 @@ BlockPlan BlockPlan::make(int width, int height, int halo, std::int64_t max_read
     for (int x = 0; x < width; x += bw) {
       Block b;
       b.index = index++;
-      b.core = {x, y, std::min(bw, width - x), std::min(bh, height - y)};
-      const int rx = std::max(0, x - halo), ry = std::max(0, y - halo);
-      b.read = {rx, ry, std::min(width, x + b.core.width + halo) - rx,
-                std::min(height, y + b.core.height + halo) - ry};
+      b.core = {area.x + x, area.y + y, std::min(bw, width - x), std::min(bh, height - y)};
+      const int rx = std::max(0, b.core.x - halo), ry = std::max(0, b.core.y - halo);
+      b.read = {rx, ry, std::min(raster_width, b.core.x + b.core.width + halo) - rx,
+                std::min(raster_height, b.core.y + b.core.height + halo) - ry};
       plan.blocks.push_back(b);
     }
   return plan;

@@ -124,6 +124,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const TimeGrid grid = TimeGrid::build(stack.times());
   const int n_slots = grid.size;
   const Grid& raster = stack.grid();
+  const Window area = area_of(raster.width, raster.height, request.region, request.input);
   const std::string name = request.name.empty() ? stack.name() : request.name;
 
   // Output names: one per input date, plus the regular calendar.
@@ -266,11 +267,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       request.memory_bytes, threads, bytes_per_pixel, int(read_files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan =
-      BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size);
+      BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size, request.region);
 
   std::vector<std::string> output_paths;
   for (const auto& spec : specs) output_paths.push_back(spec.path);
-  detail::OutputSet outputs(std::move(specs), raster, request.compression, tile_size);
+  detail::OutputSet outputs(std::move(specs), window_grid(raster, area), request.compression, tile_size);
+  outputs.set_origin(area.x, area.y);
 
   tbb::enumerable_thread_specific<Worker> workers([&] {
     Worker w;
@@ -467,8 +469,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(layers);
-  summary.width = raster.width;
-  summary.height = raster.height;
+  summary.width = area.width;
+  summary.height = area.height;
   summary.blocks = int(plan.blocks.size());
   summary.block_width = plan.block_width;
   summary.block_height = plan.block_height;

@@ -1,5 +1,7 @@
 #include "io/output_set.hpp"
 
+#include <gdal_utils.h>
+
 #include <fcntl.h>
 #include <unistd.h>
 
@@ -149,8 +151,9 @@ OutputSet::~OutputSet() {
   }
 }
 
-void OutputSet::write(std::size_t index, const Window& core, std::span<const float* const> planes,
+void OutputSet::write(std::size_t index, const Window& input_core, std::span<const float* const> planes,
                       std::vector<float>& scratch) {
+  const Window core{input_core.x - origin_x_, input_core.y - origin_y_, input_core.width, input_core.height};
   File& file = *files_.at(index);
   if (planes.size() != file.spec.bands.size())
     throw std::logic_error("output " + file.spec.path + ": wrong number of bands");
@@ -174,6 +177,30 @@ void OutputSet::write(std::size_t index, const Window& core, std::span<const flo
           throw OutputError(file.spec.path, "write failed (" + gdal_message("disk full?") + ")");
       }
     }
+}
+
+void crop_raster(const std::string& source, const Window& window, const std::string& path) {
+  start_gdal();
+  GDALDatasetUniquePtr in(GDALDataset::Open(source.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (!in) throw InputError(source, "cannot open (" + gdal_message("unknown reason") + ")");
+  CPLStringList args;
+  for (const std::string& a :
+       {std::string("-srcwin"), std::to_string(window.x), std::to_string(window.y), std::to_string(window.width),
+        std::to_string(window.height), std::string("-of"), std::string("GTiff"), std::string("-co"),
+        std::string("COMPRESS=DEFLATE"), std::string("-co"), std::string("TILED=YES")})
+    args.AddString(a.c_str());
+  GDALTranslateOptions* options = GDALTranslateOptionsNew(args.List(), nullptr);
+  int failed = 0;
+  CPLErrorReset();
+  GDALDatasetH out = GDALTranslate(path.c_str(), GDALDataset::ToHandle(in.get()), options, &failed);
+  GDALTranslateOptionsFree(options);
+  if (!out || failed) {
+    if (out) GDALClose(out);
+    throw OutputError(path, "cannot write the window of " + source + " (" + gdal_message("unknown reason") + ")");
+  }
+  CPLErrorReset();
+  GDALClose(out);
+  if (CPLGetLastErrorType() >= CE_Failure) throw OutputError(path, "write failed (" + gdal_message("disk full?") + ")");
 }
 
 bool same_raster_content(const std::string& a, const std::string& b) {

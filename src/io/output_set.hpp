@@ -42,6 +42,13 @@ class OutputSet {
 
   std::size_t size() const noexcept { return files_.size(); }
 
+  /// Where the outputs' corner lies in the pixel grid that write() is given windows of (a
+  /// region of a larger input raster); 0,0 by default.
+  void set_origin(int x, int y) {
+    origin_x_ = x;
+    origin_y_ = y;
+  }
+
   /// Writes the three bands of `core` (tile-aligned) of output `index`. Thread-safe; tiles are
   /// written whole, past GDAL's block cache, so no dirty block is ever shared between threads.
   /// `scratch` is the caller's tile buffer.
@@ -71,6 +78,7 @@ class OutputSet {
   };
   std::vector<std::unique_ptr<File>> files_;
   int tile_ = 256;
+  int origin_x_ = 0, origin_y_ = 0;
   bool committed_ = false;
   bool keep_unchanged_ = false;
   int written_ = 0, unchanged_ = 0;
@@ -79,6 +87,10 @@ class OutputSet {
 /// True when two rasters hold the same size, bands (pixels bit for bit, descriptions) and
 /// dataset metadata.
 bool same_raster_content(const std::string& a, const std::string& b);
+
+/// Writes `window` of raster `source` (all bands, types kept) to GeoTIFF `path`, which the
+/// caller then renames into place.
+void crop_raster(const std::string& source, const Window& window, const std::string& path);
 
 /// The hidden name a file is written under before it is published.
 std::string temporary_name(const std::string& final_path);

@@ -141,6 +141,16 @@ bool same_crs(const std::string& a, const std::string& b) {
 
 }  // namespace
 
+Grid window_grid(const Grid& grid, const Window& window) {
+  Grid g = grid;
+  g.width = window.width;
+  g.height = window.height;
+  const auto& t = grid.geotransform;
+  g.geotransform[0] = t[0] + window.x * t[1] + window.y * t[2];
+  g.geotransform[3] = t[3] + window.x * t[4] + window.y * t[5];
+  return g;
+}
+
 void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where) {
   if (expected.width != actual.width || expected.height != actual.height)
     throw InputError(where, "grid is " + std::to_string(actual.width) + " x " +

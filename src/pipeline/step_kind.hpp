@@ -41,6 +41,7 @@ struct StepContext {
   std::int64_t memory_bytes = 0;
   int threads = 0;
   std::optional<std::vector<int>> only_years;  // years to recompute, when the runner knows them
+  std::optional<Window> region;  // compute only this window of the inputs' grid (a shard)
   std::function<ResolvedInput(const std::string& name)> resolve;
   std::function<void(int done, int total)> progress;
 

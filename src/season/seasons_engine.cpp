@@ -88,6 +88,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     for (int c : s.composite) used[c] = 1;
 
   const Grid& grid = stack.grid();
+  const Window area = area_of(grid.width, grid.height, request.region, request.input);
   const std::string name = request.name.empty() ? stack.name() : request.name;
   std::error_code ec;
   fs::create_directories(request.out_dir, ec);
@@ -143,10 +144,11 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const detail::MemoryShare share = detail::share_memory(request.memory_bytes, threads, bytes_per_pixel,
                                                          int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
-  const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size);
+  const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
   std::vector<std::string> output_paths;
   for (const auto& s : specs) output_paths.push_back(s.path);
-  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+  detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);
+  outputs.set_origin(area.x, area.y);
   const HarmonicAnalysis harmonics(P);
 
   tbb::enumerable_thread_specific<Worker> workers([&] {
@@ -258,8 +260,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.years = years;
   summary.periods = P;
   summary.files = int(output_paths.size());
-  summary.width = grid.width;
-  summary.height = grid.height;
+  summary.width = area.width;
+  summary.height = area.height;
   summary.first_year = first_year;
   summary.last_year = last_year;
   summary.outputs = output_paths;

@@ -113,6 +113,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     for (int c : s.composite) used[c] = 1;
 
   const Grid& grid = source.grid;
+  const Window area = area_of(grid.width, grid.height, request.region, "region");
   const std::string name = request.name.empty() ? model.tag() : request.name;
   std::error_code ec;
   fs::create_directories(request.out_dir, ec);
@@ -190,13 +191,15 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
       request.memory_bytes, threads, bytes_per_pixel, int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(
-      grid.width, grid.height, 0, detail::parallel_block_pixels(grid, share, threads), tile_size);
+      grid.width, grid.height, 0, detail::parallel_block_pixels(window_grid(grid, area), share, threads), tile_size,
+      request.region);
   std::vector<std::string> output_paths;
   for (const auto& s : specs) output_paths.push_back(s.path);
   // Fail on missing georeferencing before any file is created.
   if (source.mode != Mode::constant)
     detail::PixelLocator check(grid, source.stacks.front().input());
-  detail::OutputSet outputs(std::move(specs), grid, request.compression, tile_size);
+  detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);
+  outputs.set_origin(area.x, area.y);
 
   tbb::enumerable_thread_specific<Worker> workers([&] {
     Worker w;
@@ -293,8 +296,8 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.years = years;
   summary.periods = P;
   summary.files = int(output_paths.size());
-  summary.width = grid.width;
-  summary.height = grid.height;
+  summary.width = area.width;
+  summary.height = area.height;
   summary.first_year = first_year;
   summary.last_year = last_year;
   summary.model = model.description();

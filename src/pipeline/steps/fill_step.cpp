@@ -60,6 +60,7 @@ StepKind fill_step_kind() {
     r.compression = parse_compression(c.text("compress", "deflate"));
     r.command_line = c.command_line;
     r.keep_unchanged = true;
+    r.region = c.region;
     const FillSummary s = run_fill(r, c.progress);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };

@@ -34,6 +34,7 @@ StepKind index_step_kind() {
     r.compression = parse_compression(c.text("compress", "deflate"));
     r.command_line = c.command_line;
     r.keep_unchanged = true;
+    r.region = c.region;
     const IndexSummary s = run_index(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };

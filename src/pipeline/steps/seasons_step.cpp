@@ -33,6 +33,7 @@ StepKind seasons_step_kind() {
     r.compression = parse_compression(c.text("compress", "deflate"));
     r.command_line = c.command_line;
     r.keep_unchanged = true;
+    r.region = c.region;
     const SeasonsSummary s = run_seasons(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };

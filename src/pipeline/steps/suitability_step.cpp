@@ -50,6 +50,7 @@ StepKind suitability_step_kind() {
     r.compression = parse_compression(c.text("compress", "deflate"));
     r.command_line = c.command_line;
     r.keep_unchanged = true;
+    r.region = c.region;
     const SuitabilitySummary s = run_suitability(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution};
   };
