@@ -10,6 +10,7 @@
 #include "engine/memory_budget.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
+#include "kalends/tiles.hpp"
 
 namespace kalends::cli {
 
@@ -58,6 +59,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("fill", "Fill gaps in time and write value, sd and flag layers");
   struct Options {
     FillRequest request;
+    std::string tiles;
+    bool mosaic = false;
     std::string lambda = "auto", lambda_range, envelope = "none", memory = "1G", every,
                 compression = "deflate", scale, offset, nodata, valid_range;
   };
@@ -122,6 +125,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--nodata", o->nodata, "Override the files' nodata value");
   sub->add_option("--valid-range", o->valid_range, "MIN,MAX in physical units; outside = missing");
   sub->add_option("--band", r.rules.band, "Band to read from each single-date file")->capture_default_str();
+  sub->add_option("--tiles", o->tiles,
+                  "The input is a tile set: where the tile's name sits in each path, e.g. 'tiles/{tile}/'; "
+                  "outputs go to OUT/<tile>/");
+  sub->add_flag("--mosaic", o->mosaic, "With --tiles: also write OUT/mosaic/, one VRT per date over all tiles");
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
@@ -151,6 +158,17 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
         std::fprintf(stderr, "\rfill: %d/%d blocks", done, total);
         if (done == total) std::fprintf(stderr, "\n");
       };
+    if (o->mosaic && o->tiles.empty()) throw UsageError("--mosaic", "needs --tiles");
+    if (!o->tiles.empty()) {
+      const TiledFillSummary tiled = run_tiled_fill(r, o->tiles, o->mosaic, progress);
+      if (!global.quiet) {
+        for (const FillSummary& s : tiled.tiles)
+          fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}\n", s.dates, s.width, s.height,
+                     s.seconds, s.out_dir);
+        if (!tiled.mosaic_dir.empty()) fmt::print("  mosaic of every date in {}\n", tiled.mosaic_dir);
+      }
+      return;
+    }
     const FillSummary s = run_fill(r, progress);
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;

@@ -1,0 +1,51 @@
+// Tile sets: several stacks on one sensor grid (same CRS and pixel size, adjacent extents),
+// processed as one mosaic so that spatial methods see across tile edges.
+#pragma once
+
+#include <string>
+#include <vector>
+
+#include "kalends/block_plan.hpp"
+#include "kalends/fill.hpp"
+#include "kalends/stack.hpp"
+
+namespace kalends {
+
+struct Tile {
+  std::string name;                // what the {tile} field matched, e.g. "h10v05"
+  std::vector<std::string> files;  // its single-date rasters
+  Window window;                   // where it lies in the mosaic's pixel grid
+};
+
+struct TileSet {
+  Grid mosaic;              // the grid that holds every tile
+  std::vector<Tile> tiles;  // in name order
+  std::string pattern;      // glob of the per-date mosaic VRTs
+
+  /// Groups the files of `pattern` into tiles by the {tile} field of `tile_field` (e.g.
+  /// "tiles/{tile}/": the text between the field's neighbours names the tile), checks that the
+  /// tiles fit one grid (same CRS, pixel size, aligned pixels; overlaps only with equal values)
+  /// and writes one VRT mosaic per date into `mosaic_dir`. InputError names the tile that does
+  /// not fit.
+  static TileSet open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir);
+};
+
+/// The tile name a path holds according to `tile_field`, or "" when it does not match.
+std::string tile_name_in(const std::string& path, const std::string& tile_field);
+
+struct TiledFillSummary {
+  std::vector<FillSummary> tiles;  // one per tile, in the tile set's order
+  int tiles_skipped = 0;           // left as they were: nothing they depend on changed
+  std::string mosaic_dir;          // VRT mosaics of the per-tile outputs, when asked for
+};
+
+/// Fills every tile of a tile set over the mosaic (halos cross tile edges), writing the
+/// outputs of tile T into out_dir/T/; with `mosaic`, also out_dir/mosaic/ as one VRT per date.
+/// `request.input` and `request.qa_input` are the tile patterns; `tile_field` as above.
+TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& tile_field, bool mosaic,
+                                const ProgressCallback& progress = {});
+
+/// Writes one VRT per output date in `mosaic_dir` over the same-named files in `folders`.
+void write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir);
+
+}  // namespace kalends

@@ -1,0 +1,48 @@
+// Filling a tile set: each tile is one region of the tiles' mosaic, so a block at a tile edge
+// reads its halo from the neighbouring tile and the values equal those of a run on the mosaic.
+#include <filesystem>
+
+#include "kalends/error.hpp"
+#include "kalends/tiles.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& tile_field, bool mosaic,
+                                const ProgressCallback& progress) {
+  const fs::path out(request.out_dir);
+  // The per-date mosaics of the inputs live beside the outputs, hidden: they are only a view.
+  const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string());
+  std::optional<TileSet> qa;
+  if (!request.qa_input.empty()) {
+    qa = TileSet::open(request.qa_input, tile_field, (out / ".mosaic" / "qa").string());
+    if (qa->mosaic.width != data.mosaic.width || qa->mosaic.height != data.mosaic.height ||
+        qa->mosaic.geotransform != data.mosaic.geotransform)
+      throw InputError(request.qa_input, "the QA tiles do not cover the same grid as the data tiles");
+  }
+  TiledFillSummary summary;
+  std::vector<std::string> folders;
+  const int total = int(data.tiles.size());
+  for (int t = 0; t < total; ++t) {
+    const Tile& tile = data.tiles[std::size_t(t)];
+    FillRequest r = request;
+    r.input = data.pattern;
+    if (qa) r.qa_input = qa->pattern;
+    r.region = tile.window;
+    r.out_dir = (out / tile.name).string();
+    if (r.name.empty()) r.name = Stack::open(data.pattern, request.rules).name();
+    ProgressCallback tile_progress;
+    if (progress)
+      tile_progress = [&, t](int done, int blocks) { progress(t * 1000 + done * 1000 / std::max(blocks, 1), total * 1000); };
+    summary.tiles.push_back(run_fill(r, tile_progress));
+    folders.push_back(r.out_dir);
+  }
+  if (mosaic) {
+    summary.mosaic_dir = (out / "mosaic").string();
+    write_mosaics(folders, summary.mosaic_dir);
+  }
+  return summary;
+}
+
+}  // namespace kalends

@@ -1,0 +1,328 @@
+// Tile sets and mosaics. A mosaic is a GDAL VRT per date that places each tile's raster at its
+// pixel offset in a grid holding them all (GDAL's VRT format: https://gdal.org/drivers/raster/vrt.html);
+// nothing is resampled, so a pixel read from the mosaic is the tile's pixel, bit for bit.
+#include "kalends/tiles.hpp"
+
+#include <cpl_string.h>
+#include <glob.h>
+#include <ogr_spatialref.h>
+
+#include <algorithm>
+#include <cstring>
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+#include <map>
+#include <regex>
+#include <set>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+struct Placed {
+  std::string path;
+  Window window;
+};
+
+Grid header_of(const std::string& path) {
+  GDALDatasetUniquePtr ds = detail::open_raster(path);
+  Grid g;
+  g.width = ds->GetRasterXSize();
+  g.height = ds->GetRasterYSize();
+  g.has_geotransform = ds->GetGeoTransform(g.geotransform.data()) == CE_None;
+  if (const char* wkt = ds->GetProjectionRef()) g.crs_wkt = wkt;
+  return g;
+}
+
+bool same_crs(const std::string& a, const std::string& b) {
+  if (a == b) return true;
+  if (a.empty() || b.empty()) return false;
+  OGRSpatialReference sa, sb;
+  if (sa.importFromWkt(a.c_str()) != OGRERR_NONE || sb.importFromWkt(b.c_str()) != OGRERR_NONE) return false;
+  return sa.IsSame(&sb) != 0;
+}
+
+// The grid holding every raster of `grids`, and where each lies in it. Rasters must share the
+// CRS and pixel size, have no rotation, and sit on the same pixel lattice.
+Grid union_grid(const std::vector<std::pair<std::string, Grid>>& grids, std::vector<Window>& windows,
+                const std::string& what) {
+  const auto& [first_name, first] = grids.front();
+  if (!first.has_geotransform)
+    throw InputError(first_name, "has no georeferencing, so its place among the " + what + " is unknown");
+  const auto& t0 = first.geotransform;
+  if (t0[2] != 0 || t0[4] != 0) throw InputError(first_name, "is rotated; tiles must be north-up");
+  double min_col = 0, min_row = 0, max_col = first.width, max_row = first.height;
+  std::vector<std::pair<double, double>> offsets;
+  for (const auto& [name, g] : grids) {
+    const auto& t = g.geotransform;
+    if (!g.has_geotransform) throw InputError(name, "has no georeferencing");
+    if (!same_crs(g.crs_wkt, first.crs_wkt))
+      throw InputError(name, "has a different CRS from " + first_name);
+    if (t[2] != 0 || t[4] != 0) throw InputError(name, "is rotated; tiles must be north-up");
+    if (std::abs(t[1] - t0[1]) > 1e-9 * std::abs(t0[1]) || std::abs(t[5] - t0[5]) > 1e-9 * std::abs(t0[5]))
+      throw InputError(name, fmt::format("has pixels of {:g} x {:g}, unlike {} ({:g} x {:g})", t[1], -t[5],
+                                         first_name, t0[1], -t0[5]));
+    const double col = (t[0] - t0[0]) / t0[1], row = (t[3] - t0[3]) / t0[5];
+    if (std::abs(col - std::round(col)) > 1e-6 || std::abs(row - std::round(row)) > 1e-6)
+      throw InputError(name, fmt::format("is not aligned with the pixels of {} (offset {:.3f}, {:.3f} px)",
+                                         first_name, col - std::round(col), row - std::round(row)));
+    offsets.emplace_back(std::round(col), std::round(row));
+    min_col = std::min(min_col, std::round(col));
+    min_row = std::min(min_row, std::round(row));
+    max_col = std::max(max_col, std::round(col) + g.width);
+    max_row = std::max(max_row, std::round(row) + g.height);
+  }
+  Grid mosaic = first;
+  mosaic.width = int(max_col - min_col);
+  mosaic.height = int(max_row - min_row);
+  mosaic.geotransform[0] = t0[0] + min_col * t0[1];
+  mosaic.geotransform[3] = t0[3] + min_row * t0[5];
+  windows.clear();
+  for (std::size_t i = 0; i < grids.size(); ++i)
+    windows.push_back(Window{int(offsets[i].first - min_col), int(offsets[i].second - min_row),
+                             grids[i].second.width, grids[i].second.height});
+  return mosaic;
+}
+
+std::string xml(const std::string& text) {
+  char* escaped = CPLEscapeString(text.c_str(), -1, CPLES_XML);
+  std::string s(escaped);
+  CPLFree(escaped);
+  return s;
+}
+
+// VRT text placing `sources` in `mosaic`; bands, types, nodata, scale, offset, descriptions,
+// units and dataset metadata are those of the first source. Source paths are written relative to
+// the VRT so a folder can be moved as a whole.
+std::string vrt_text(const Grid& mosaic, const std::vector<Placed>& sources, const std::string& vrt_path) {
+  GDALDatasetUniquePtr first = detail::open_raster(sources.front().path);
+  std::string s = fmt::format("<VRTDataset rasterXSize=\"{}\" rasterYSize=\"{}\">\n", mosaic.width, mosaic.height);
+  if (!mosaic.crs_wkt.empty()) s += "  <SRS>" + xml(mosaic.crs_wkt) + "</SRS>\n";
+  const auto& t = mosaic.geotransform;
+  s += fmt::format("  <GeoTransform>{:.17g}, {:.17g}, {:.17g}, {:.17g}, {:.17g}, {:.17g}</GeoTransform>\n", t[0],
+                   t[1], t[2], t[3], t[4], t[5]);
+  if (char** md = first->GetMetadata()) {
+    s += "  <Metadata>\n";
+    for (int i = 0; md[i]; ++i) {
+      char* key = nullptr;
+      const char* value = CPLParseNameValue(md[i], &key);
+      if (key && value) s += "    <MDI key=\"" + xml(key) + "\">" + xml(value) + "</MDI>\n";
+      CPLFree(key);
+    }
+    s += "  </Metadata>\n";
+  }
+  const fs::path vrt_folder = fs::absolute(vrt_path).parent_path();
+  for (int b = 1; b <= first->GetRasterCount(); ++b) {
+    GDALRasterBand* band = first->GetRasterBand(b);
+    s += fmt::format("  <VRTRasterBand dataType=\"{}\" band=\"{}\">\n",
+                     GDALGetDataTypeName(band->GetRasterDataType()), b);
+    if (const char* d = band->GetDescription(); d && *d) s += "    <Description>" + xml(d) + "</Description>\n";
+    int has = 0;
+    const double nodata = band->GetNoDataValue(&has);
+    if (has) s += fmt::format("    <NoDataValue>{}</NoDataValue>\n", std::isnan(nodata) ? "nan" : fmt::format("{:.17g}", nodata));
+    if (const char* u = band->GetUnitType(); u && *u) s += "    <UnitType>" + xml(u) + "</UnitType>\n";
+    const double offset = band->GetOffset(&has);
+    if (has && offset != 0) s += fmt::format("    <Offset>{:.17g}</Offset>\n", offset);
+    const double scale = band->GetScale(&has);
+    if (has && scale != 1) s += fmt::format("    <Scale>{:.17g}</Scale>\n", scale);
+    if (char** md = band->GetMetadata(); md && md[0]) {
+      s += "    <Metadata>\n";
+      for (int i = 0; md[i]; ++i) {
+        char* key = nullptr;
+        const char* value = CPLParseNameValue(md[i], &key);
+        if (key && value) s += "      <MDI key=\"" + xml(key) + "\">" + xml(value) + "</MDI>\n";
+        CPLFree(key);
+      }
+      s += "    </Metadata>\n";
+    }
+    for (const Placed& p : sources) {
+      const std::string relative = fs::absolute(p.path).lexically_relative(vrt_folder).string();
+      const Window& w = p.window;
+      s += "    <SimpleSource>\n";
+      s += "      <SourceFilename relativeToVRT=\"1\">" + xml(relative) + "</SourceFilename>\n";
+      s += fmt::format("      <SourceBand>{}</SourceBand>\n", b);
+      s += fmt::format("      <SrcRect xOff=\"0\" yOff=\"0\" xSize=\"{}\" ySize=\"{}\"/>\n", w.width, w.height);
+      s += fmt::format("      <DstRect xOff=\"{}\" yOff=\"{}\" xSize=\"{}\" ySize=\"{}\"/>\n", w.x, w.y, w.width,
+                       w.height);
+      s += "    </SimpleSource>\n";
+    }
+    s += "  </VRTRasterBand>\n";
+  }
+  s += "</VRTDataset>\n";
+  return s;
+}
+
+// Values of `a` and `b` (placed at `wa`, `wb` in one grid) where they overlap; true when equal.
+bool overlap_agrees(const std::string& a, const Window& wa, const std::string& b, const Window& wb) {
+  const int x0 = std::max(wa.x, wb.x), y0 = std::max(wa.y, wb.y);
+  const int x1 = std::min(wa.x + wa.width, wb.x + wb.width), y1 = std::min(wa.y + wa.height, wb.y + wb.height);
+  if (x1 <= x0 || y1 <= y0) return true;
+  GDALDatasetUniquePtr da = detail::open_raster(a), db = detail::open_raster(b);
+  const int w = x1 - x0, h = y1 - y0;
+  std::vector<double> va(std::size_t(w) * h), vb(va.size());
+  for (int band = 1; band <= std::min(da->GetRasterCount(), db->GetRasterCount()); ++band) {
+    if (da->GetRasterBand(band)->RasterIO(GF_Read, x0 - wa.x, y0 - wa.y, w, h, va.data(), w, h, GDT_Float64, 0, 0) !=
+            CE_None ||
+        db->GetRasterBand(band)->RasterIO(GF_Read, x0 - wb.x, y0 - wb.y, w, h, vb.data(), w, h, GDT_Float64, 0, 0) !=
+            CE_None)
+      throw InputError(a, "cannot read the overlap with " + b);
+    for (std::size_t i = 0; i < va.size(); ++i)
+      if (va[i] != vb[i] && !(std::isnan(va[i]) && std::isnan(vb[i]))) return false;
+  }
+  return true;
+}
+
+std::vector<std::string> glob_files(const std::string& pattern) {
+  glob_t g{};
+  std::vector<std::string> files;
+  if (::glob(pattern.c_str(), 0, nullptr, &g) == 0)
+    for (std::size_t i = 0; i < g.gl_pathc; ++i) files.emplace_back(g.gl_pathv[i]);
+  globfree(&g);
+  std::sort(files.begin(), files.end());
+  return files;
+}
+
+// Replaces the VRTs in `folder` by `wanted` (name -> text): writes new and changed ones,
+// removes those no longer wanted.
+void publish_vrts(const std::string& folder, const std::map<std::string, std::string>& wanted) {
+  std::error_code ec;
+  fs::create_directories(folder, ec);
+  if (ec) throw OutputError(folder, "cannot create the folder: " + ec.message());
+  for (const auto& entry : fs::directory_iterator(folder, ec))
+    if (entry.path().extension() == ".vrt" && !wanted.count(entry.path().filename().string()))
+      fs::remove(entry.path(), ec);
+  for (const auto& [name, text] : wanted) detail::write_text_atomically((fs::path(folder) / name).string(), text);
+}
+
+}  // namespace
+
+std::string tile_name_in(const std::string& path, const std::string& tile_field) {
+  const auto field = tile_field.find("{tile}");
+  if (field == std::string::npos) return "";
+  auto literal = [](const std::string& text) {
+    static const std::regex special(R"([.^$|()\[\]{}*+?\\])");
+    return std::regex_replace(text, special, R"(\$&)");
+  };
+  const std::regex re(literal(tile_field.substr(0, field)) + "([^/]+?)" + literal(tile_field.substr(field + 6)));
+  std::smatch m;
+  if (!std::regex_search(path, m, re)) return "";
+  return m[1].str();
+}
+
+TileSet TileSet::open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir) {
+  detail::start_gdal();
+  if (tile_field.find("{tile}") == std::string::npos)
+    throw UsageError("--tiles '" + tile_field + "'", "needs a {tile} field, e.g. 'tiles/{tile}/'");
+  const std::vector<std::string> files = glob_files(pattern);
+  if (files.empty()) throw InputError(pattern, "no file matches this pattern");
+  std::map<std::string, Tile> by_name;
+  for (const std::string& path : files) {
+    const std::string name = tile_name_in(path, tile_field);
+    if (name.empty()) throw InputError(path, "does not match the tile pattern '" + tile_field + "'");
+    by_name[name].name = name;
+    by_name[name].files.push_back(path);
+  }
+  TileSet set;
+  std::vector<std::pair<std::string, Grid>> grids;
+  for (auto& [name, tile] : by_name) {
+    const Grid g = header_of(tile.files.front());
+    for (const std::string& f : tile.files) {
+      const Grid other = header_of(f);
+      if (other.width != g.width || other.height != g.height || other.geotransform != g.geotransform)
+        throw InputError(f, "lies on a different grid from the other files of tile " + name + " (" +
+                                tile.files.front() + ")");
+    }
+    grids.emplace_back(tile.files.front(), g);
+    set.tiles.push_back(tile);
+  }
+  if (set.tiles.empty()) throw InputError(pattern, "no file matches this pattern");
+  std::vector<Window> windows;
+  set.mosaic = union_grid(grids, windows, "tiles");
+  for (std::size_t i = 0; i < set.tiles.size(); ++i) set.tiles[i].window = windows[i];
+  // Dates: each tile at most once per date.
+  std::map<std::string, std::vector<Placed>> by_date;  // label -> sources
+  std::map<std::string, std::string> vrt_name;         // label -> file name
+  for (std::size_t i = 0; i < set.tiles.size(); ++i) {
+    std::set<std::string> seen;
+    for (const std::string& f : set.tiles[i].files) {
+      const std::string base = fs::path(f).filename().string();
+      const auto date = find_date_in_name(base);
+      if (!date) throw InputError(f, "has no date in its name");
+      const std::string label = date->time.label();
+      if (!seen.insert(label).second)
+        throw InputError(f, "is a second file for " + label + " in tile " + set.tiles[i].name);
+      by_date[label].push_back({f, set.tiles[i].window});
+      if (!vrt_name.count(label)) {
+        std::string stem = fs::path(base).stem().string();
+        if (const auto at = stem.find(set.tiles[i].name); at != std::string::npos) {
+          stem.erase(at, set.tiles[i].name.size());
+          for (const char* twice : {"__", "--", ".."})
+            if (const auto dup = stem.find(twice); dup != std::string::npos) stem.erase(dup, 1);
+          while (!stem.empty() && std::strchr("_-.", stem.front())) stem.erase(0, 1);
+        }
+        vrt_name[label] = stem + ".vrt";
+      }
+    }
+  }
+  // Overlapping tiles must agree where they overlap (checked on the first date they share).
+  for (std::size_t i = 0; i < set.tiles.size(); ++i)
+    for (std::size_t j = i + 1; j < set.tiles.size(); ++j) {
+      const Window &a = set.tiles[i].window, &b = set.tiles[j].window;
+      if (a.x >= b.x + b.width || b.x >= a.x + a.width || a.y >= b.y + b.height || b.y >= a.y + a.height) continue;
+      for (const auto& [label, sources] : by_date) {
+        const auto fa = std::find_if(sources.begin(), sources.end(), [&](const Placed& p) { return p.window == a; });
+        const auto fb = std::find_if(sources.begin(), sources.end(), [&](const Placed& p) { return p.window == b; });
+        if (fa == sources.end() || fb == sources.end()) continue;
+        if (!overlap_agrees(fa->path, a, fb->path, b))
+          throw InputError(fb->path, "overlaps tile " + set.tiles[i].name + " with different values (" + fa->path + ")");
+        break;
+      }
+    }
+  std::map<std::string, std::string> wanted;
+  for (const auto& [label, sources] : by_date) {
+    const std::string path = (fs::path(mosaic_dir) / vrt_name[label]).string();
+    if (wanted.count(vrt_name[label]))
+      throw InputError(sources.front().path, "two dates give the same mosaic name " + vrt_name[label]);
+    wanted[vrt_name[label]] = vrt_text(set.mosaic, sources, path);
+  }
+  publish_vrts(mosaic_dir, wanted);
+  set.pattern = (fs::path(mosaic_dir) / "*.vrt").string();
+  return set;
+}
+
+void write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir) {
+  detail::start_gdal();
+  if (folders.empty()) return;
+  // Every raster below the first folder (calendar subfolders too), matched by relative path.
+  std::map<std::string, std::map<std::string, std::string>> wanted;  // subfolder -> name -> text
+  std::error_code ec;
+  for (const auto& entry : fs::recursive_directory_iterator(folders.front(), ec)) {
+    if (!entry.is_regular_file() || entry.path().extension() != ".tif") continue;
+    const std::string name = entry.path().filename().string();
+    if (name.front() == '.') continue;
+    const fs::path relative = entry.path().lexically_relative(folders.front());
+    std::vector<std::pair<std::string, Grid>> grids;
+    for (const std::string& folder : folders) {
+      const fs::path p = fs::path(folder) / relative;
+      if (fs::exists(p)) grids.emplace_back(p.string(), header_of(p.string()));
+    }
+    std::vector<Window> windows;
+    const Grid mosaic = union_grid(grids, windows, "tiles");
+    std::vector<Placed> sources;
+    for (std::size_t i = 0; i < grids.size(); ++i) sources.push_back({grids[i].first, windows[i]});
+    const fs::path target_dir = fs::path(mosaic_dir) / relative.parent_path();
+    const std::string vrt = (fs::path(relative.stem().string() + ".vrt")).string();
+    wanted[target_dir.string()][vrt] = vrt_text(mosaic, sources, (target_dir / vrt).string());
+  }
+  for (const auto& [folder, vrts] : wanted) publish_vrts(folder, vrts);
+}
+
+}  // namespace kalends
