@@ -75,6 +75,11 @@ bool file_checksum_equal(const std::string& a, const std::string& b) {
   }
 }
 
+void publish_file(const std::string& temporary, const std::string& final_path) {
+  publish(temporary, final_path);
+  sync_path(fs::path(final_path).parent_path().string(), true);
+}
+
 void write_text_atomically(const std::string& path, const std::string& text) {
   {
     std::ifstream existing(path, std::ios::binary);

@@ -92,6 +92,9 @@ bool same_raster_content(const std::string& a, const std::string& b);
 /// caller then renames into place.
 void crop_raster(const std::string& source, const Window& window, const std::string& path);
 
+/// Publishes a finished temporary file under its final name (fsync, rename, fsync the folder).
+void publish_file(const std::string& temporary, const std::string& final_path);
+
 /// The hidden name a file is written under before it is published.
 std::string temporary_name(const std::string& final_path);
 

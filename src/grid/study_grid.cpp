@@ -1,0 +1,267 @@
+// kalends grid: layers onto the analyst's grid with GDAL's warper (gdalwarp's library form,
+// GDALWarp), then written by GDAL's COG driver. Area-weighted means come from the warper's
+// "average" resampling, which weights each source cell by the share of it inside the target
+// cell and skips cells without data (GDAL documentation, gdalwarp -r average).
+#include "kalends/study_grid.hpp"
+
+#include <cpl_string.h>
+#include <gdal_utils.h>
+#include <gdal_priv.h>
+
+#include <cmath>
+#include <filesystem>
+#include <fmt/format.h>
+#include <glob.h>
+#include <map>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+using DatasetPtr = GDALDatasetUniquePtr;
+
+struct Source {
+  std::string path, relative;  // relative: the output's name below out_dir
+};
+
+std::vector<Source> sources_of(const std::vector<std::string>& inputs) {
+  std::vector<Source> sources;
+  for (const std::string& input : inputs) {
+    if (fs::is_directory(input)) {
+      std::vector<Source> found;
+      for (auto it = fs::recursive_directory_iterator(input); it != fs::recursive_directory_iterator(); ++it) {
+        const std::string name = it->path().filename().string();
+        if (name.front() == '.') {
+          if (it->is_directory()) it.disable_recursion_pending();
+          continue;
+        }
+        const std::string ext = it->path().extension().string();
+        if (it->is_regular_file() && (ext == ".tif" || ext == ".vrt"))
+          found.push_back({it->path().string(), it->path().lexically_relative(input).replace_extension(".tif").string()});
+      }
+      std::sort(found.begin(), found.end(), [](const Source& a, const Source& b) { return a.relative < b.relative; });
+      if (found.empty()) throw InputError(input, "holds no raster (.tif or .vrt)");
+      sources.insert(sources.end(), found.begin(), found.end());
+    } else if (input.find_first_of("*?[") != std::string::npos) {
+      glob_t g{};
+      if (::glob(input.c_str(), 0, nullptr, &g) == 0)
+        for (std::size_t i = 0; i < g.gl_pathc; ++i)
+          sources.push_back({g.gl_pathv[i], fs::path(g.gl_pathv[i]).filename().replace_extension(".tif").string()});
+      globfree(&g);
+      if (sources.empty()) throw InputError(input, "no file matches this pattern");
+    } else {
+      if (!fs::exists(input)) throw InputError(input, "no such file or folder");
+      sources.push_back({input, fs::path(input).filename().replace_extension(".tif").string()});
+    }
+  }
+  return sources;
+}
+
+// Runs GDALWarp on `source` into an in-memory dataset with `args` (gdalwarp's options).
+DatasetPtr warp(GDALDataset& source, const std::vector<std::string>& args, const std::string& where) {
+  CPLStringList list;
+  for (const std::string& a : args) list.AddString(a.c_str());
+  GDALWarpAppOptions* options = GDALWarpAppOptionsNew(list.List(), nullptr);
+  if (!options) throw UsageError(where, "GDAL refused the warp options (" + detail::gdal_message("?") + ")");
+  GDALDatasetH handle = GDALDataset::ToHandle(&source);
+  int usage_error = 0;
+  CPLErrorReset();
+  GDALDatasetH out = GDALWarp("", nullptr, 1, &handle, options, &usage_error);
+  GDALWarpAppOptionsFree(options);
+  if (!out || usage_error)
+    throw InputError(where, "cannot warp (" + detail::gdal_message("unknown reason") + ")");
+  return DatasetPtr(GDALDataset::FromHandle(out));
+}
+
+// An in-memory view of some bands of `source` (gdal_translate -of VRT -b ...).
+DatasetPtr band_subset(GDALDataset& source, const std::vector<int>& bands, const std::string& where) {
+  CPLStringList list;
+  list.AddString("-of");
+  list.AddString("VRT");
+  for (int b : bands) {
+    list.AddString("-b");
+    list.AddString(std::to_string(b).c_str());
+  }
+  GDALTranslateOptions* options = GDALTranslateOptionsNew(list.List(), nullptr);
+  int failed = 0;
+  GDALDatasetH out = GDALTranslate("", GDALDataset::ToHandle(&source), options, &failed);
+  GDALTranslateOptionsFree(options);
+  if (!out || failed) throw InputError(where, "cannot select bands (" + detail::gdal_message("?") + ")");
+  return DatasetPtr(GDALDataset::FromHandle(out));
+}
+
+}  // namespace
+
+StudyGridSummary run_study_grid(const StudyGridRequest& request) {
+  detail::start_gdal();
+  if (request.crs.empty()) throw UsageError("--crs", "the study grid needs a CRS, e.g. EPSG:4326");
+  {
+    OGRSpatialReference srs;
+    if (srs.SetFromUserInput(request.crs.c_str()) != OGRERR_NONE)
+      throw UsageError("--crs '" + request.crs + "'", "not a CRS GDAL knows");
+  }
+  if (request.resolution < 0) throw UsageError("--resolution", "must be positive");
+  if (request.extent && (request.extent->size() != 4 || (*request.extent)[0] >= (*request.extent)[2] ||
+                         (*request.extent)[1] >= (*request.extent)[3]))
+    throw UsageError("--extent", "expected XMIN,YMIN,XMAX,YMAX with XMIN < XMAX and YMIN < YMAX");
+  if (!request.clip.empty()) {
+    GDALDatasetUniquePtr vector(GDALDataset::Open(request.clip.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
+    if (!vector || vector->GetLayerCount() == 0)
+      throw InputError(request.clip, "cannot be read as a vector source with a layer (" +
+                                         detail::gdal_message("no layer") + ")");
+  }
+  const std::vector<Source> sources = sources_of(request.inputs);
+  // Every input is opened before anything is written: a bad one leaves the outputs as they were.
+  std::vector<DatasetPtr> datasets;
+  for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
+
+  std::vector<std::string> common{"-of", "MEM", "-t_srs", request.crs, "-ot", "Float32", "-dstnodata", "nan"};
+  if (request.resolution > 0) {
+    const std::string r = fmt::format("{:.17g}", request.resolution);
+    common.insert(common.end(), {"-tr", r, r});
+    if (!request.extent && request.clip.empty()) common.push_back("-tap");
+  }
+  if (request.extent)
+    for (const std::string& v : {std::string("-te"), fmt::format("{:.17g}", (*request.extent)[0]),
+                                 fmt::format("{:.17g}", (*request.extent)[1]), fmt::format("{:.17g}", (*request.extent)[2]),
+                                 fmt::format("{:.17g}", (*request.extent)[3])})
+      common.push_back(v);
+  if (!request.clip.empty()) {
+    common.insert(common.end(), {"-cutline", request.clip});
+    if (!request.extent) common.push_back("-crop_to_cutline");
+  }
+
+  StudyGridSummary summary;
+  std::error_code ec;
+  for (std::size_t i = 0; i < sources.size(); ++i) {
+    GDALDataset& in = *datasets[i];
+    const std::string& where = sources[i].path;
+    std::vector<int> continuous, classes;
+    int flag_band = 0;
+    for (int b = 1; b <= in.GetRasterCount(); ++b) {
+      const std::string d = in.GetRasterBand(b)->GetDescription();
+      if (d == "flag") {
+        classes.push_back(b);
+        flag_band = b;
+      } else {
+        continuous.push_back(b);
+      }
+    }
+    // Each group of bands warped with its own resampling, then laid out in the input's order.
+    std::vector<std::pair<int, GDALRasterBand*>> placed;  // input band -> warped band
+    std::vector<DatasetPtr> keep;
+    auto warp_bands = [&](const std::vector<int>& bands, const std::string& method) {
+      if (bands.empty()) return;
+      std::vector<std::string> args = common;
+      args.insert(args.end(), {"-r", method});
+      DatasetPtr view = bands.size() == std::size_t(in.GetRasterCount()) ? nullptr : band_subset(in, bands, where);
+      DatasetPtr out = warp(view ? *view : in, args, where);
+      for (std::size_t k = 0; k < bands.size(); ++k) placed.emplace_back(bands[k], out->GetRasterBand(int(k) + 1));
+      keep.push_back(std::move(view));
+      keep.push_back(std::move(out));
+    };
+    warp_bands(continuous, request.resample);
+    warp_bands(classes, "mode");
+    // The share of filled cells: an indicator of the flag band (1 filled, 0 observed, no value
+    // otherwise) averaged like the values.
+    DatasetPtr indicator;
+    GDALRasterBand* share = nullptr;
+    if (flag_band) {
+      GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+      indicator.reset(mem->Create("", in.GetRasterXSize(), in.GetRasterYSize(), 1, GDT_Float32, nullptr));
+      double gt[6];
+      if (in.GetGeoTransform(gt) == CE_None) indicator->SetGeoTransform(gt);
+      indicator->SetProjection(in.GetProjectionRef());
+      std::vector<float> row(std::size_t(in.GetRasterXSize()));
+      for (int y = 0; y < in.GetRasterYSize(); ++y) {
+        if (in.GetRasterBand(flag_band)->RasterIO(GF_Read, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
+                                                  GDT_Float32, 0, 0) != CE_None)
+          throw InputError(where, "cannot read the flag band (" + detail::gdal_message("?") + ")");
+        for (float& f : row) f = (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN;
+        if (indicator->GetRasterBand(1)->RasterIO(GF_Write, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
+                                                  GDT_Float32, 0, 0) != CE_None)
+          throw OutputError(where, "out of memory for the filled share");
+      }
+      indicator->GetRasterBand(1)->SetNoDataValue(NAN);
+      std::vector<std::string> args = common;
+      args.insert(args.end(), {"-r", "average"});
+      keep.push_back(warp(*indicator, args, where));
+      share = keep.back()->GetRasterBand(1);
+    }
+    std::sort(placed.begin(), placed.end(), [](const auto& a, const auto& b) { return a.first < b.first; });
+    GDALDataset& first = *keep.back();
+    const int width = first.GetRasterXSize(), height = first.GetRasterYSize();
+    const int bands = int(placed.size()) + (share ? 1 : 0);
+    GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+    DatasetPtr result(mem->Create("", width, height, bands, GDT_Float32, nullptr));
+    double gt[6];
+    first.GetGeoTransform(gt);
+    result->SetGeoTransform(gt);
+    result->SetProjection(first.GetProjectionRef());
+    result->SetMetadata(in.GetMetadata());
+    std::vector<float> plane(std::size_t(width) * height);
+    auto copy_band = [&](GDALRasterBand* from, int to, const std::string& description, const std::string& unit,
+                         const std::string& how) {
+      if (from->RasterIO(GF_Read, 0, 0, width, height, plane.data(), width, height, GDT_Float32, 0, 0) != CE_None ||
+          result->GetRasterBand(to)->RasterIO(GF_Write, 0, 0, width, height, plane.data(), width, height, GDT_Float32,
+                                              0, 0) != CE_None)
+        throw OutputError(sources[i].relative, "cannot assemble the warped bands");
+      GDALRasterBand* band = result->GetRasterBand(to);
+      band->SetNoDataValue(NAN);
+      if (!description.empty()) band->SetDescription(description.c_str());
+      if (!unit.empty()) band->SetUnitType(unit.c_str());
+      band->SetMetadataItem("KALENDS_RESAMPLING", how.c_str());
+    };
+    int to = 1;
+    for (const auto& [from_band, warped] : placed) {
+      GDALRasterBand* src = in.GetRasterBand(from_band);
+      const bool is_class = std::find(classes.begin(), classes.end(), from_band) != classes.end();
+      copy_band(warped, to++, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "",
+                is_class ? "mode" : request.resample);
+    }
+    if (share) copy_band(share, to++, "filled_share", "1", "average of (flag 1 or 2) over cells with a value");
+    result->SetMetadataItem("KALENDS_GRID_CRS", request.crs.c_str());
+    result->SetMetadataItem("KALENDS_GRID_SOURCE", where.c_str());
+    if (!request.clip.empty()) result->SetMetadataItem("KALENDS_GRID_CLIP", request.clip.c_str());
+    if (!request.command_line.empty()) result->SetMetadataItem("KALENDS_COMMAND", request.command_line.c_str());
+
+    const fs::path target = fs::path(request.out_dir) / sources[i].relative;
+    fs::create_directories(target.parent_path(), ec);
+    if (ec) throw OutputError(target.parent_path().string(), "cannot create the folder: " + ec.message());
+    const std::string temporary = detail::temporary_name(target.string());
+    CPLStringList cog;
+    cog.SetNameValue("COMPRESS", "DEFLATE");
+    cog.SetNameValue("PREDICTOR", "YES");
+    cog.SetNameValue("OVERVIEWS", "AUTO");
+    // One overview resampling serves every band: nearest where a class band would be averaged.
+    cog.SetNameValue("RESAMPLING", classes.empty() ? "AVERAGE" : "NEAREST");
+    GDALDriver* driver = GetGDALDriverManager()->GetDriverByName("COG");
+    if (!driver) throw OutputError(target.string(), "GDAL has no COG driver");
+    CPLErrorReset();
+    GDALDatasetUniquePtr written(driver->CreateCopy(temporary.c_str(), result.get(), false, cog.List(), nullptr, nullptr));
+    if (!written) {
+      fs::remove(temporary, ec);
+      throw OutputError(target.string(), "cannot write (" + detail::gdal_message("disk full?") + ")");
+    }
+    written.reset();
+    if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
+      fs::remove(temporary, ec);
+      ++summary.outputs_unchanged;
+    } else {
+      detail::publish_file(temporary, target.string());
+      ++summary.outputs_written;
+    }
+    summary.outputs.push_back(target.string());
+    summary.width = width;
+    summary.height = height;
+  }
+  return summary;
+}
+
+}  // namespace kalends

@@ -1,0 +1,161 @@
+"""kalends grid against Python GDAL and numpy.
+
+- On the real projected raster ../shared/data/landsat7-bands/L7_ETMs.tif (Landsat 7 ETM+, UTM
+  25S): kalends grid to EPSG:4326 at a coarser resolution equals gdal.Warp with the same
+  options (average resampling, float32, NaN nodata), cell for cell.
+- Area-weighted means: aggregating by an integer factor on the raster's own grid equals a
+  numpy block mean of the cells with data (gdalwarp -r average skips nodata; GDAL docs).
+- A kalends fill output: the flag band takes the mode, filled_share is the share of cells with
+  a value whose flag is 1 or 2 (numpy on the same blocks).
+- Clipping to a polygon (GeoJSON, read by OGR): cells outside are NaN, inside unchanged.
+- The output is a Cloud Optimized GeoTIFF with overviews and the band descriptions.
+Run: /usr/bin/python3 -m unittest -v tests/reference/test_grid_gdal.py
+"""
+
+import glob
+import json
+import os
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+
+def run_grid_ok(testcase, args):
+    done = kt.run_kalends(["-q", "grid"] + list(args))
+    testcase.assertEqual(done.returncode, 0, done.stderr)
+
+
+class GridAgainstGdalWarp(kt.TempDirTestCase):
+    def test_landsat_to_geographic_equals_gdal_warp(self):
+        g = kt.gdal()
+        source = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        extent = [-34.93, -8.07, -34.83, -7.98]  # covers the scene (about 35 W, 8 S)
+        resolution = 0.001  # about 110 m, ~4 source pixels
+        out = os.path.join(self.tmp, "landsat")
+        run_grid_ok(self, [source, "--out", out, "--crs", "EPSG:4326", "--resolution", str(resolution),
+                           "--extent", ",".join(str(v) for v in extent)])
+        mine = g.Open(os.path.join(out, "L7_ETMs.tif"))
+        ref = g.Warp("", source, format="MEM", dstSRS="EPSG:4326", xRes=resolution, yRes=resolution,
+                     outputBounds=extent, resampleAlg="average", outputType=g.GDT_Float32,
+                     dstNodata=float("nan"))
+        self.assertEqual((mine.RasterXSize, mine.RasterYSize, mine.RasterCount),
+                         (ref.RasterXSize, ref.RasterYSize, ref.RasterCount))
+        np.testing.assert_allclose(mine.GetGeoTransform(), ref.GetGeoTransform(), rtol=0, atol=1e-12)
+        cells = 0
+        for b in range(1, ref.RasterCount + 1):
+            a, r = mine.GetRasterBand(b).ReadAsArray(), ref.GetRasterBand(b).ReadAsArray()
+            np.testing.assert_array_equal(a, r)  # NaN where both have no data
+            cells += int(np.isfinite(r).sum())
+        self.assertGreater(cells, 6 * 1000)
+        self.assertEqual(mine.GetMetadata("IMAGE_STRUCTURE").get("LAYOUT"), "COG")
+
+
+class AreaWeightedMeans(kt.TempDirTestCase):
+    def test_integer_factor_equals_numpy_block_means(self):
+        g = kt.gdal()
+        rng = np.random.default_rng(7)
+        values = rng.normal(0.5, 0.2, size=(1040, 1100)).astype(np.float32)
+        values[rng.random(values.shape) < 0.2] = np.nan
+        values[:40, :40] = np.nan  # blocks without any data
+        path = os.path.join(self.tmp, "layer.tif")
+        pixel = 250.0
+        kt.write_raster(path, values, geotransform=(500000.0, pixel, 0, 9000000.0, 0, -pixel), epsg=32736,
+                        nodata=float("nan"), description="value")
+        out = os.path.join(self.tmp, "coarse")
+        extent = [500000.0, 9000000.0 - 1040 * pixel, 500000.0 + 1100 * pixel, 9000000.0]
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", str(2 * pixel),
+                           "--extent", ",".join(repr(v) for v in extent)])
+        ds = g.Open(os.path.join(out, "layer.tif"))
+        mine = ds.GetRasterBand(1).ReadAsArray()
+        with np.errstate(all="ignore"):
+            import warnings
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                expected = np.nanmean(values.reshape(520, 2, 550, 2), axis=(1, 3))
+        np.testing.assert_array_equal(np.isnan(mine), np.isnan(expected))
+        np.testing.assert_allclose(mine[np.isfinite(mine)], expected[np.isfinite(expected)], rtol=1e-6)
+        self.assertEqual(ds.GetRasterBand(1).GetDescription(), "value")
+        self.assertGreaterEqual(ds.GetRasterBand(1).GetOverviewCount(), 1)  # a COG with overviews
+
+    def test_flags_take_the_mode_and_filled_share_is_written(self):
+        g = kt.gdal()
+        rng = np.random.default_rng(3)
+        h, w, f = 60, 90, 3
+        # Each 3 x 3 block has one majority flag (5 or more of 9 cells), so the mode is unique.
+        major = rng.integers(0, 4, size=(h // f, w // f))
+        flags = np.repeat(np.repeat(major, f, 0), f, 1).astype(np.float32)
+        minority = rng.integers(0, 4, size=flags.shape).astype(np.float32)
+        pick = np.zeros((f, f), bool)
+        pick[0, :] = True
+        pick[1, 0] = True  # 4 of 9 cells may differ
+        flags = np.where(np.tile(pick, (h // f, w // f)), minority, flags)
+        value = np.where(flags == 3, np.nan, rng.random((h, w))).astype(np.float32)
+        sd = np.where(flags == 3, np.nan, 0.01).astype(np.float32)
+        path = os.path.join(self.tmp, "ndvi_2020-01-01.tif")
+        ds = g.GetDriverByName("GTiff").Create(path, w, h, 3, g.GDT_Float32)
+        ds.SetGeoTransform((300000.0, 100.0, 0, 8000000.0, 0, -100.0))
+        from osgeo import osr
+        srs = osr.SpatialReference()
+        srs.ImportFromEPSG(32736)
+        ds.SetProjection(srs.ExportToWkt())
+        for b, (name, array) in enumerate((("value", value), ("sd", sd), ("flag", flags)), 1):
+            ds.GetRasterBand(b).WriteArray(array)
+            ds.GetRasterBand(b).SetDescription(name)
+            ds.GetRasterBand(b).SetNoDataValue(float("nan"))
+        ds = None
+        out = os.path.join(self.tmp, "flags")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "300",
+                           "--extent", "300000,%r,%r,8000000" % (8000000.0 - h * 100, 300000.0 + w * 100)])
+        ds = g.Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        names = [ds.GetRasterBand(b).GetDescription() for b in range(1, ds.RasterCount + 1)]
+        self.assertEqual(names, ["value", "sd", "flag", "filled_share"])
+        blocks = flags.reshape(h // f, f, w // f, f).transpose(0, 2, 1, 3).reshape(h // f, w // f, f * f)
+        mode = np.array([[np.bincount(c.astype(int), minlength=4).argmax() for c in row] for row in blocks])
+        np.testing.assert_array_equal(ds.GetRasterBand(3).ReadAsArray(), mode)
+        with_value = (blocks <= 2).sum(axis=2)
+        filled = ((blocks == 1) | (blocks == 2)).sum(axis=2)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            share = np.where(with_value > 0, filled / np.maximum(with_value, 1), np.nan)
+        np.testing.assert_allclose(ds.GetRasterBand(4).ReadAsArray(), share, rtol=1e-6)
+
+
+class Clipping(kt.TempDirTestCase):
+    def test_cells_outside_the_study_area_are_nodata(self):
+        g = kt.gdal()
+        values = np.arange(100 * 80, dtype=np.float32).reshape(80, 100)
+        path = os.path.join(self.tmp, "layer.tif")
+        kt.write_raster(path, values, geotransform=(0.0, 1000.0, 0, 80000.0, 0, -1000.0), epsg=32736)
+        area = os.path.join(self.tmp, "area.geojson")
+        # The left half of the raster: x from 0 to 50 km (an invented study area).
+        with open(area, "w") as f:
+            json.dump({"type": "FeatureCollection",
+                       "crs": {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32736"}},
+                       "features": [{"type": "Feature", "properties": {"name": "invented"},
+                                     "geometry": {"type": "Polygon", "coordinates": [[
+                                         [0, 0], [50000, 0], [50000, 80000], [0, 80000], [0, 0]]]}}]}, f)
+        out = os.path.join(self.tmp, "clipped")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "1000",
+                           "--extent", "0,0,100000,80000", "--clip", area])
+        ds = g.Open(os.path.join(out, "layer.tif"))  # kept open while its band is read
+        mine = ds.GetRasterBand(1).ReadAsArray()
+        self.assertTrue(np.isnan(mine[:, 50:]).all())
+        np.testing.assert_array_equal(mine[:, :50], values[:, :50])
+
+    def test_a_missing_study_area_is_refused(self):
+        path = os.path.join(self.tmp, "small.tif")
+        kt.write_raster(path, np.ones((10, 10), np.float32), geotransform=(0, 1, 0, 10, 0, -1), epsg=32736)
+        out = os.path.join(self.tmp, "refused")
+        done = kt.run_kalends(["grid", path, "--out", out, "--crs", "EPSG:4326", "--clip",
+                               os.path.join(self.tmp, "no-such-area.gpkg")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("no-such-area.gpkg", done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertFalse(glob.glob(os.path.join(out, "*.tif")))
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
