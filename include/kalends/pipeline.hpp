@@ -14,12 +14,20 @@ struct RunOptions {
   bool dry_run = false;
   bool skip_bad = false;  // skip unreadable or mismatched inputs, list them, exit 3
   bool wait_for_lock = false;
+  int threads = 0;        // overrides the job's threads (a cluster task: the cores it was given)
+  /// Cluster runs (docs/cluster.md), after `kalends plan`: compute shard `shard` (1..N) of the
+  /// plan alone, into its own folder and state; `shard_count` N as given, checked against the
+  /// plan (0: the plan's).
+  int shard = 0, shard_count = 0;
+  /// Stitch the shards' outputs and run the steps that need the whole area; refused (exit 4)
+  /// while a shard is missing, failed or stale.
+  bool finalize = false;
 };
 
 /// What happened to one step.
 struct StepReport {
   std::string id, kind;
-  enum class Action { ran, up_to_date, would_run, failed, not_reached } action = Action::up_to_date;
+  enum class Action { ran, up_to_date, would_run, failed, not_reached, at_finalize } action = Action::up_to_date;
   std::string reason;    // why it ran (or would run)
   double seconds = 0;
   int outputs_written = 0, outputs_unchanged = 0;
@@ -33,7 +41,8 @@ struct RunReport {
   long long peak_memory_bytes = 0;
   std::string out_dir;
   std::string error;  // first failure, one line
-  int exit_code = 0;  // 0 done, 1 failed, 2 bad input or job file, 3 partly done (--skip-bad)
+  int exit_code = 0;  // 0 done, 1 failed, 2 bad input or job file, 3 partly done (--skip-bad),
+                     // 4 finalize refused: shards missing, failed or stale
 };
 
 /// Events for a progress display or a log: step start/end and block progress.
@@ -47,6 +56,19 @@ struct RunEvents {
 /// line; step failures are reported in the RunReport (exit_code), with the state database left
 /// consistent so that the next run resumes.
 RunReport run_job(const RunOptions& options, const RunEvents& events = {});
+
+/// `kalends plan JOB --shards N`: splits the job for a cluster and writes the plan
+/// (OUT/.kalends/plan.tsv). UsageError when the grid has fewer 256-row strips than shards.
+struct PlanReport {
+  std::string plan_file, out_dir;
+  int shards = 0, threads = 0;
+  long long memory_mib = 0;
+  std::vector<std::string> split_steps;                           // computed by every shard
+  std::vector<std::pair<std::string, std::string>> whole_steps;  // id, why: run in --finalize
+  std::vector<std::string> shard_rows;                            // "1: ndvi rows 0-256", ...
+  std::string sbatch;                                             // the command line to submit
+};
+PlanReport plan_job(const RunOptions& options, int shards);
 
 /// What is done, stale or failed, from the state database, without running anything.
 struct StepStatus {

@@ -26,6 +26,9 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global);
 /// `kalends validate`.
 Action add_validate_command(CLI::App& app, GlobalOptions& global);
 
+/// `kalends plan`: a job split into shards for a cluster.
+Action add_plan_command(CLI::App& app, GlobalOptions& global);
+
 /// `kalends diurnal`, `kalends suitability`.
 Action add_diurnal_command(CLI::App& app, GlobalOptions& global);
 Action add_suitability_command(CLI::App& app, GlobalOptions& global);

@@ -7,6 +7,7 @@
 
 #include "cli/commands.hpp"
 #include "io/json_text.hpp"
+#include "kalends/error.hpp"
 #include "kalends/pipeline.hpp"
 
 namespace kalends::cli {
@@ -20,6 +21,7 @@ const char* action_name(StepReport::Action a) {
     case StepReport::Action::would_run: return "would run";
     case StepReport::Action::failed: return "failed";
     case StepReport::Action::not_reached: return "not reached";
+    case StepReport::Action::at_finalize: return "later";
   }
   return "?";
 }
@@ -31,6 +33,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
   struct Options {
     RunOptions run;
     std::string log = "text";
+    std::string shard;
   };
   auto o = std::make_shared<Options>();
   sub->add_option("job", o->run.job_file, "The job file (TOML)")->required();
@@ -38,10 +41,24 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--dry-run", o->run.dry_run, "Say what would be done, and why; change nothing");
   sub->add_flag("--skip-bad", o->run.skip_bad, "Leave out bad input files, list them, exit 3");
   sub->add_flag("--wait", o->run.wait_for_lock, "Wait for another run on the same output folder to end");
+  sub->add_option("--shard", o->shard,
+                  "K or K/N: compute shard K of the plan (kalends plan) alone, into its own folder and state");
+  sub->add_flag("--finalize", o->run.finalize,
+                "Stitch the shards' outputs and run the steps that need the whole area (exit 4 while a shard "
+                "is missing, failed or stale)");
+  sub->add_option("--threads", o->run.threads, "Threads (overrides the job file's; 0 = the job's)")
+      ->check(CLI::NonNegativeNumber);
   sub->add_option("--log", o->log, "text or json (one JSON object per line)")
       ->check(CLI::IsMember({"text", "json"}))
       ->capture_default_str();
   return [o, &global] {
+    if (!o->shard.empty()) {
+      const auto slash = o->shard.find('/');
+      o->run.shard = int(parse_number(o->shard.substr(0, slash), "--shard"));
+      if (slash != std::string::npos) o->run.shard_count = int(parse_number(o->shard.substr(slash + 1), "--shard"));
+      if (o->run.shard < 1 || (slash != std::string::npos && o->run.shard_count < o->run.shard))
+        throw UsageError("--shard", "'" + o->shard + "': give K or K/N with 1 <= K <= N");
+    }
     const bool json = o->log == "json";
     const bool terminal = !json && !global.quiet && isatty(STDERR_FILENO);
     RunEvents events;

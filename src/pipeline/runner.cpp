@@ -9,13 +9,18 @@
 #include <chrono>
 #include <filesystem>
 #include <fmt/format.h>
+#include <fstream>
+#include <iterator>
 #include <set>
 
 #include "engine/memory_budget.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/pipeline.hpp"
+#include "io/output_set.hpp"
 #include "pipeline/job_file.hpp"
+#include "pipeline/shard_plan.hpp"
+#include "pipeline/shard_stitch.hpp"
 #include "pipeline/state.hpp"
 #include "pipeline/step_kind.hpp"
 
@@ -148,13 +153,29 @@ class Runner {
     out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
     if (out_.empty()) throw UsageError(options_.job_file, "no output folder: set 'out' in [job] or give --out");
     report_.out_dir = out_;
-    const fs::path state_dir = fs::path(out_) / ".kalends";
+    base_ = out_;
+    if (options_.shard && options_.finalize)
+      throw UsageError("--finalize", "a shard's run and the finalize are separate runs: give one of --shard, --finalize");
+    if (options_.shard || options_.finalize) load_plan();
+    if (options_.shard) {
+      if (options_.shard < 1 || options_.shard > plan_->shards)
+        throw UsageError("--shard", fmt::format("{}: the plan has shards 1 to {}", options_.shard, plan_->shards));
+      shard_ = options_.shard;
+      base_ = plan_->shard_folder(shard_);
+    }
+    const fs::path state_dir = fs::path(base_) / ".kalends";
     std::error_code ec;
     fs::create_directories(state_dir, ec);
     if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
     FolderLock lock(state_dir.string(), options_.wait_for_lock);
     db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
     memory_ = job_.memory;
+    if (options_.finalize && !shards_ready()) {
+      report_.exit_code = 4;
+      report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+      report_.peak_memory_bytes = detail::peak_resident_bytes();
+      return report_;
+    }
     bool failed = false;
     for (const JobStep& step : job_.steps) {
       StepReport r;
@@ -165,8 +186,16 @@ class Runner {
         report_.steps.push_back(r);
         continue;
       }
+      const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
+      if (shard_ && !planned->split) {
+        r.action = StepReport::Action::at_finalize;
+        r.reason = "in --finalize: " + planned->why_whole;
+        report_.steps.push_back(r);
+        continue;
+      }
       try {
-        run_step(step, r);
+        if (options_.finalize && planned->split) stitch_step(step, *planned, r);
+        else run_step(step, r);
       } catch (const Error& e) {
         r.action = StepReport::Action::failed;
         r.reason = e.what();
@@ -203,6 +232,7 @@ class Runner {
   std::vector<StepStatus> status() {
     job_ = detail::read_job(options_.job_file);
     out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
+    base_ = out_;
     const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
     if (fs::exists(state)) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
     std::vector<StepStatus> list;
@@ -243,11 +273,110 @@ class Runner {
   }
 
  private:
-  // Fingerprints: "<parameters>:<what it reads>", so a change can be explained.
+  // The plan of `kalends plan`, made again from the job: a job or grid changed since is refused.
+  void load_plan() {
+    const int shards = detail::planned_shard_count(out_);
+    if (shards == 0)
+      throw UsageError(out_, "no shard plan in this output folder: run 'kalends plan " + options_.job_file +
+                                 " --shards N' first");
+    if (options_.shard_count && options_.shard_count != shards)
+      throw UsageError("--shard", fmt::format("{}/{}: the plan has {} shards (run kalends plan again to change it)",
+                                              options_.shard, options_.shard_count, shards));
+    int threads = 0;
+    std::ifstream in(fs::path(out_) / ".kalends" / "plan.tsv");
+    std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    if (const auto at = text.find("\nthreads\t"); at != std::string::npos) threads = std::atoi(text.c_str() + at + 9);
+    plan_ = detail::make_shard_plan(job_, out_, shards, threads);
+    if (plan_->text() != text)
+      throw UsageError(plan_->file(), "out of date: the job file or its inputs' grids changed since it was made; "
+                                      "run kalends plan again (and the shards)");
+  }
+
+  // Whether every shard holds every split step done and up to date; otherwise the error names
+  // the shards and what they lack.
+  bool shards_ready() {
+    std::string problems;
+    std::vector<int> indices;
+    for (int k = 1; k <= plan_->shards; ++k) {
+      shard_ = k;
+      fingerprints_.clear();
+      const fs::path path = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
+      std::string what;
+      std::unique_ptr<detail::StateDatabase> db;
+      if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
+      for (const JobStep& step : job_.steps) {
+        if (!plan_->step(step.id)->split) continue;
+        const auto record = db ? db->step(step.id) : std::nullopt;
+        std::string why;
+        if (!record) why = "never run";
+        else if (record->status == "failed") why = "failed";
+        else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(record->fingerprint, fingerprint_of(step));
+        else if (!std::all_of(record->outputs.begin(), record->outputs.end(), [](const std::string& p) { return fs::exists(p); }))
+          why = "outputs missing";
+        if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
+      }
+      if (!db) what = "never run";
+      if (!what.empty()) {
+        problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
+        indices.push_back(k);
+      }
+    }
+    shard_ = 0;
+    fingerprints_.clear();
+    if (problems.empty()) return true;
+    std::string list;
+    for (int k : indices) list += (list.empty() ? "" : ",") + std::to_string(k);
+    report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
+                                "or kalends run {} --shard K), then --finalize",
+                                indices.size(), plan_->shards, problems, list, options_.job_file);
+    return false;
+  }
+
+  // A split step in --finalize: the shards' strips stitched into the step's folder.
+  void stitch_step(const JobStep& step, const detail::PlannedStep& planned, StepReport& report) {
+    const std::string fingerprint = fingerprint_of(step);
+    const auto record = db_->step(step.id);
+    const bool complete = record && std::all_of(record->outputs.begin(), record->outputs.end(),
+                                                [](const std::string& p) { return fs::exists(p); });
+    if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
+      report.action = StepReport::Action::up_to_date;
+      report.reason = "up to date";
+      return;
+    }
+    report.reason = fmt::format("stitching {} shards", plan_->shards);
+    if (options_.dry_run) {
+      report.action = StepReport::Action::would_run;
+      return;
+    }
+    if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
+    const auto started = std::chrono::steady_clock::now();
+    const std::string folder = step_folder(out_, step.id);
+    remove_partials(folder);
+    std::vector<detail::ShardPart> parts;
+    for (int k = 1; k <= plan_->shards; ++k)
+      parts.push_back({step_folder(plan_->shard_folder(k), step.id), plan_->shard_folder(k), plan_->window(planned.root, k)});
+    const Grid& grid = plan_->grids.at(planned.root);
+    const detail::StitchOutcome outcome =
+        detail::stitch_parts(parts, grid.width, grid.height, folder, out_, *detail::find_step_kind(step.kind),
+                             options_.threads > 0 ? options_.threads : job_.threads);
+    report.outputs_written = outcome.written;
+    report.outputs_unchanged = outcome.unchanged;
+    report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+    report.action = StepReport::Action::ran;
+    db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, outputs_in(folder), inputs_of(step)});
+  }
+
+  // Fingerprints: "<parameters>:<what it reads>", so a change can be explained. A shard's
+  // include its rows, so that a new plan makes them stale.
   std::string fingerprint_of(const JobStep& step) {
     if (auto it = fingerprints_.find(step.id); it != fingerprints_.end()) return it->second;
     std::string params = std::string(KALENDS_VERSION) + "|" + step.kind;
     for (const auto& [k, v] : step.options) params += "|" + k + "=" + v;
+    if (shard_) {
+      const detail::PlannedStep* planned = plan_->step(step.id);
+      const Window w = plan_->window(planned->root, shard_);
+      params += fmt::format("|shard {}/{} of {}: rows {}-{}", shard_, plan_->shards, planned->root, w.y, w.y + w.height);
+    }
     std::string reads;
     for (const std::string& name : step.inputs) reads += "|" + name + "=" + source_fingerprint(name);
     const std::string fp = detail::text_checksum(params) + ":" + detail::text_checksum(reads);
@@ -341,7 +470,7 @@ class Runner {
       r.keep = in->second.keep;
       r.rules = rules_of(in->second);
     } else {
-      const std::string folder = step_folder(out_, name);
+      const std::string folder = step_folder(base_, name);
       r.folder = folder;
       r.pattern = (fs::path(folder) / "*.tif").string();
       if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
@@ -382,7 +511,7 @@ class Runner {
     }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
-    const std::string folder = step_folder(out_, step.id);
+    const std::string folder = step_folder(base_, step.id);
     remove_partials(folder);
     // With --skip-bad, a bad input file is left out and the step tried again.
     for (int attempt = 0;; ++attempt) {
@@ -414,7 +543,12 @@ class Runner {
     context.out = out_;
     context.command_line = "kalends run " + fs::path(job_.path).filename().string() + " (step " + step.id + ")";
     context.memory_bytes = cli_memory();
-    context.threads = job_.threads;
+    context.threads = options_.threads > 0 ? options_.threads : job_.threads;
+    if (shard_) {
+      const detail::PlannedStep* planned = plan_->step(step.id);
+      // An earlier step's strip is already only the shard's rows.
+      if (planned->reads_inputs) context.region = plan_->window(planned->root, shard_);
+    }
     context.only_years = only_years_;
     context.resolve = [this](const std::string& name) { return resolve(name); };
     context.progress = [&](int done, int total) {
@@ -432,6 +566,9 @@ class Runner {
   RunEvents events_;
   Job job_;
   std::string out_, memory_;
+  std::string base_;  // where step folders and the state lie: out_, or a shard's folder
+  std::optional<detail::ShardPlan> plan_;
+  int shard_ = 0;  // the shard whose fingerprints and folders are meant; 0: the whole job
   std::unique_ptr<detail::StateDatabase> db_;
   Scan scan_;
   std::map<std::string, std::string> fingerprints_;
@@ -447,6 +584,48 @@ std::int64_t Runner::cli_memory() const { return parse_memory_size(memory_); }
 RunReport run_job(const RunOptions& options, const RunEvents& events) {
   Runner runner(options, events);
   return runner.run();
+}
+
+PlanReport plan_job(const RunOptions& options, int shards) {
+  const Job job = detail::read_job(options.job_file);
+  const std::string out = options.out_dir.empty() ? job.out : options.out_dir;
+  if (out.empty()) throw UsageError(options.job_file, "no output folder: set 'out' in [job] or give --out");
+  const detail::ShardPlan plan = detail::make_shard_plan(job, out, shards, options.threads);
+  std::error_code ec;
+  fs::create_directories(fs::path(out) / ".kalends", ec);
+  if (ec) throw OutputError(out, "cannot create: " + ec.message());
+  detail::write_text_atomically(plan.file(), plan.text());
+  PlanReport report;
+  report.plan_file = plan.file();
+  report.out_dir = out;
+  report.shards = plan.shards;
+  report.threads = plan.threads;
+  report.memory_mib = (plan.memory_bytes + 1048575) / 1048576;
+  for (const detail::PlannedStep& s : plan.steps)
+    if (s.split) report.split_steps.push_back(s.id);
+    else report.whole_steps.emplace_back(s.id, s.why_whole);
+  for (int k = 1; k <= plan.shards; ++k) {
+    std::map<std::pair<int, int>, std::string> rows;  // the same rows of several inputs, said once
+    for (const auto& [root, grid] : plan.grids) {
+      const Window w = plan.window(root, k);
+      std::string& roots = rows[{w.y, w.y + w.height}];
+      roots += (roots.empty() ? "" : ", ") + root;
+    }
+    std::string text;
+    for (const auto& [range, roots] : rows)
+      text += fmt::format("{}rows {}-{} of {}", text.empty() ? "" : "; ", range.first, range.second, roots);
+    report.shard_rows.push_back(fmt::format("{}: {}", k, text));
+  }
+  std::string name;
+  for (char c : job.name.empty() ? fs::path(job.path).stem().string() : job.name)
+    name += std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '_' ? c : '-';
+  const std::string sbatch_template = fs::exists(KALENDS_CLUSTER_TEMPLATE) ? KALENDS_CLUSTER_TEMPLATE
+                                                                           : "tools/cluster/kalends-array.sbatch";
+  report.sbatch = fmt::format("sbatch --array=1-{} --cpus-per-task={} --mem={}M --job-name=kalends-{} {} {}",
+                              plan.shards, plan.threads, report.memory_mib, name, sbatch_template,
+                              fs::absolute(job.path).string());
+  if (!options.out_dir.empty()) report.sbatch += " --out " + fs::absolute(out).string();
+  return report;
 }
 
 std::vector<StepStatus> job_status(const RunOptions& options) {

@@ -67,6 +67,17 @@ struct StepKind {
   /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
   /// recompute those alone.
   bool years_by_reach = false;
+  /// Per-pixel work (each output pixel from the same pixel of the inputs, or from a halo the
+  /// engine reads itself): a shard of a cluster run may compute its strip of the grid alone.
+  bool splits_by_area = false;
+  /// Whether the step, so configured, needs neighbours beyond a pixel (a halo). Such a step
+  /// can be split only where it reads a job input, whose whole grid every shard sees.
+  std::function<bool(const StepOptions&)> reads_neighbours;
+  /// Merges the shards' copies of one of the step's files other than its rasters (a summary)
+  /// into `path`, for a grid of `width` x `height`; false when the file is not one it knows.
+  std::function<bool(const std::string& name, const std::vector<std::string>& shard_files,
+                     const std::string& path, int width, int height)>
+      merge_file;
 };
 
 const std::vector<StepKind>& step_kinds();

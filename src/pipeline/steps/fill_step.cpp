@@ -1,13 +1,96 @@
 // Step 'fill': gap filling of one stack (kalends fill).
+#include <fmt/format.h>
+
+#include <array>
+#include <cstdio>
+#include <fstream>
+#include <map>
+#include <set>
+#include <optional>
+
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
 
+namespace {
+
+std::vector<std::string> lines_of(const std::string& path) {
+  std::ifstream in(path);
+  if (!in) throw InputError(path, "cannot read");
+  std::vector<std::string> lines;
+  for (std::string line; std::getline(in, line);) lines.push_back(line);
+  return lines;
+}
+
+// fill-years.tsv: the per-year counts of the shards' strips add up to the whole grid's.
+void merge_years(const std::vector<std::string>& files, const std::string& path) {
+  std::string header;
+  std::map<int, std::array<long long, 5>> years;
+  for (const std::string& file : files) {
+    const auto lines = lines_of(file);
+    if (lines.empty()) throw InputError(file, "empty");
+    if (header.empty()) header = lines[0];
+    if (lines[0] != header) throw InputError(file, "made on another time grid than the other shards' (" + lines[0] + ")");
+    for (std::size_t i = 1; i < lines.size(); ++i) {
+      int year = 0;
+      long long c[5] = {0};
+      if (std::sscanf(lines[i].c_str(), "%d %lld %lld %lld %lld %lld", &year, &c[0], &c[1], &c[2], &c[3], &c[4]) != 6)
+        throw InputError(file, "unreadable line " + std::to_string(i + 1));
+      auto& total = years[year];
+      for (int k = 0; k < 5; ++k) total[k] += c[k];
+    }
+  }
+  std::string text = header + "\n";
+  for (const auto& [year, c] : years) text += fmt::format("{} {} {} {} {} {}\n", year, c[0], c[1], c[2], c[3], c[4]);
+  write_text_atomically(path, text);
+}
+
+// fill-summary.json: counts add up; the size is the whole grid's; the rest (method, dates,
+// block size) is the first shard's. 'blocks' is the number of blocks all shards computed.
+void merge_summary(const std::vector<std::string>& files, const std::string& path, int width, int height) {
+  static const std::set<std::string> additive = {"pixel_dates", "observed", "missing", "masked_by_qa", "rejected",
+                                                 "filled", "unfilled", "pixels_never_observed",
+                                                 "pixels_without_value", "blocks"};
+  std::vector<std::string> lines = lines_of(files.front());
+  std::map<std::string, long long> totals;
+  std::set<std::string> unknown;  // null in some shard: not known for the whole grid either
+  for (const std::string& file : files)
+    for (const std::string& line : lines_of(file)) {
+      const auto q1 = line.find('"'), q2 = line.find('"', q1 + 1), colon = line.find(':', q2);
+      if (q1 == std::string::npos || q2 == std::string::npos || colon == std::string::npos) continue;
+      const std::string key = line.substr(q1 + 1, q2 - q1 - 1);
+      if (!additive.count(key)) continue;
+      const std::string value = line.substr(colon + 1);
+      if (value.find("null") != std::string::npos) unknown.insert(key);
+      else totals[key] += std::stoll(value);
+    }
+  std::string text;
+  for (std::string line : lines) {
+    const auto q1 = line.find('"'), q2 = line.find('"', q1 + 1), colon = line.find(':', q2);
+    if (q1 != std::string::npos && q2 != std::string::npos && colon != std::string::npos) {
+      const std::string key = line.substr(q1 + 1, q2 - q1 - 1);
+      const bool comma = !line.empty() && line.back() == ',';
+      std::optional<std::string> value;
+      if (key == "width") value = std::to_string(width);
+      if (key == "height") value = std::to_string(height);
+      if (additive.count(key)) value = unknown.count(key) ? "null" : std::to_string(totals[key]);
+      if (value) line = line.substr(0, colon + 1) + " " + *value + (comma ? "," : "");
+    }
+    text += line + "\n";
+  }
+  write_text_atomically(path, text);
+}
+
+}  // namespace
+
 StepKind fill_step_kind() {
   using T = KeyType;
   StepKind kind;
   kind.name = "fill";
+  kind.splits_by_area = true;
   kind.years_by_reach = true;
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"method", T::text}, {"lambda", T::text_or_number}, {"lambda_range", T::pair},
@@ -21,6 +104,17 @@ StepKind fill_step_kind() {
                {"halo", T::integer}, {"tolerance", T::number}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'fill' step needs 'input'");
+  };
+  kind.reads_neighbours = [](const StepOptions& o) {
+    const auto method = o.find("method");
+    return method != o.end() && method->second == "spacetime";
+  };
+  kind.merge_file = [](const std::string& name, const std::vector<std::string>& files, const std::string& path,
+                       int width, int height) {
+    if (name == "fill-years.tsv") merge_years(files, path);
+    else if (name == "fill-summary.json") merge_summary(files, path, width, height);
+    else return false;
+    return true;
   };
   kind.run = [](const StepContext& c) {
     const ResolvedInput in = c.resolve(c.text("input"));

@@ -10,6 +10,7 @@ StepKind index_step_kind() {
   const auto reads = StepKey::Role::reads;
   StepKind kind;
   kind.name = "index";
+  kind.splits_by_area = true;
   kind.keys = {{"red", T::text, reads}, {"nir", T::text, reads}, {"blue", T::text, reads},
                {"red_band", T::integer}, {"nir_band", T::integer}, {"blue_band", T::integer},
                {"index", T::text}, {"name", T::text}, {"compress", T::text}};

@@ -9,6 +9,7 @@ StepKind seasons_step_kind() {
   using T = KeyType;
   StepKind kind;
   kind.name = "seasons";
+  kind.splits_by_area = true;
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"period", T::text}, {"years", T::text}, {"date_marks", T::text},
                {"prominence", T::number}, {"threshold", T::number}, {"name", T::text},

@@ -10,6 +10,7 @@ StepKind suitability_step_kind() {
   const auto reads = StepKey::Role::reads;
   StepKind kind;
   kind.name = "suitability";
+  kind.splits_by_area = true;
   kind.keys = {{"day", T::text, reads}, {"night", T::text, reads}, {"tmin", T::text, reads},
                {"tmax", T::text, reads}, {"temperature", T::text, reads},
                {"model", T::text}, {"parasite", T::text}, {"window", T::pair}, {"period", T::text},

@@ -1,0 +1,51 @@
+// kalends plan JOB --shards N: the job split for a Slurm job array, and the command to submit it.
+#include <unistd.h>
+
+#include <climits>
+#include <fmt/format.h>
+
+#include "cli/commands.hpp"
+#include "kalends/pipeline.hpp"
+
+namespace kalends::cli {
+
+namespace {
+
+// This program's own path, so that the array tasks run the same binary.
+std::string own_path() {
+  char buffer[PATH_MAX];
+  const ssize_t n = ::readlink("/proc/self/exe", buffer, sizeof buffer - 1);
+  return n > 0 ? std::string(buffer, std::size_t(n)) : std::string("kalends");
+}
+
+}  // namespace
+
+Action add_plan_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand("plan", "Split a job into shards for a cluster (a Slurm job array)");
+  struct Options {
+    RunOptions run;
+    int shards = 0;
+  };
+  auto o = std::make_shared<Options>();
+  sub->add_option("job", o->run.job_file, "The job file (TOML)")->required();
+  sub->add_option("--shards", o->shards, "Number of shards (array tasks)")->required()->check(CLI::PositiveNumber);
+  sub->add_option("--out", o->run.out_dir, "Output folder (overrides the job file's)");
+  sub->add_option("--threads", o->run.threads, "Threads per task (default: the job's; 4 where it says all cores)")
+      ->check(CLI::NonNegativeNumber);
+  return [o, &global] {
+    const PlanReport plan = plan_job(o->run, o->shards);
+    if (!global.quiet) {
+      fmt::print("kalends plan: {} shards, {} threads and {} MiB per task -> {}\n", plan.shards, plan.threads,
+                 plan.memory_mib, plan.plan_file);
+      std::string split;
+      for (const std::string& s : plan.split_steps) split += (split.empty() ? "" : ", ") + s;
+      fmt::print("  split by rows: {}\n", split.empty() ? "(none)" : split);
+      for (const auto& [id, why] : plan.whole_steps) fmt::print("  at --finalize: {} ({})\n", id, why);
+      for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
+      fmt::print("submit with:\n");
+    }
+    fmt::print("{}{}\n", plan.sbatch.substr(0, 7), "--export=ALL,KALENDS_BIN=" + own_path() + " " + plan.sbatch.substr(7));
+  };
+}
+
+}  // namespace kalends::cli

@@ -1,0 +1,29 @@
+// Stitching a split step's outputs: the shards' strips of every raster into one raster of the
+// whole grid, written like the engines write theirs (tiled, compressed, atomically).
+#pragma once
+
+#include <string>
+#include <vector>
+
+#include "kalends/block_plan.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+struct ShardPart {
+  std::string folder;  // the step's folder in the shard
+  std::string base;    // the shard's folder: provenance naming it names the job's out folder instead
+  Window window;       // the rows it covers
+};
+
+struct StitchOutcome {
+  int written = 0, unchanged = 0;
+};
+
+/// Stitches `parts` (in row order, covering `width` x `height`) into `folder`. Every shard must
+/// hold the same files; rasters must cover their windows; other files are merged by the step
+/// kind or must be the same in every shard. OutputError or InputError names the file otherwise.
+StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int height, const std::string& folder,
+                           const std::string& out, const StepKind& kind, int threads);
+
+}  // namespace kalends::detail
