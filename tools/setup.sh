@@ -9,6 +9,7 @@ packages=(
   catch2 libcli11-dev libfmt-dev libtomlplusplus-dev libsqlite3-dev
   python3-numpy python3-scipy python3-gdal
   time
+  slurm-wlm munge   # the cluster test starts a one-node Slurm on localhost
 )
 
 missing=()

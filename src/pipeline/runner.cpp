@@ -302,6 +302,7 @@ class Runner {
       fingerprints_.clear();
       const fs::path path = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
       std::string what;
+      std::set<std::string> reasons;  // one per split step, "" where it is done
       std::unique_ptr<detail::StateDatabase> db;
       if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
       for (const JobStep& step : job_.steps) {
@@ -314,8 +315,10 @@ class Runner {
         else if (!std::all_of(record->outputs.begin(), record->outputs.end(), [](const std::string& p) { return fs::exists(p); }))
           why = "outputs missing";
         if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
+        reasons.insert(why);
       }
       if (!db) what = "never run";
+      else if (reasons.size() == 1 && !what.empty()) what = "every step " + *reasons.begin();
       if (!what.empty()) {
         problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
         indices.push_back(k);

@@ -1,0 +1,515 @@
+#!/usr/bin/python3
+"""Cluster runs: `kalends plan`, `kalends run --shard K`, `kalends run --finalize`, first without a
+workload manager, then as a job array on a real one-node Slurm cluster started here on localhost.
+
+Invented data (tools/synth_stack.py and tools/synth_lst.py, the fictional demo district at a
+small size): checks of the mechanics. "Identical" compares what a user reads: every band's pixels
+bit for bit, band descriptions, georeferencing and dataset metadata of every raster, and every
+other file byte for byte, except the fill summary's 'blocks' and 'block_size', which say how the
+work was cut into blocks (docs/cluster.md).
+
+The Slurm part installs Debian's slurm-wlm and munge when missing (tools/setup.sh does it too),
+needs root to start slurmd, and is skipped, saying why, only where the cluster cannot start.
+"""
+import glob
+import json
+import os
+import shlex
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+import unittest
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "..", "tools"))
+import kalends_testlib as kt  # noqa: E402
+import synth_lst  # noqa: E402
+import synth_stack  # noqa: E402
+
+# The demo job (demo/job.toml) with its inputs at a small size; 1024 rows are 4 strips of 256.
+DEMO_JOB = """
+[job]
+name = "lower-tamsin-cluster"
+out = "out"
+memory = "512M"
+threads = 1
+
+[inputs.ndvi]
+stack = "stack/ndvi/ndvi_*.tif"
+qa = "stack/qa/qa_*.tif"
+keep = "bits0-1 in 0,1"
+valid_range = [-0.2, 1.0]
+
+[inputs.lst_day]
+stack = "stack/lst/day/lst_day_*.tif"
+
+[inputs.lst_night]
+stack = "stack/lst/night/lst_night_*.tif"
+
+[[step]]
+id = "fill"
+do = "fill"
+input = "ndvi"
+method = "whittaker"
+lambda = "auto"
+envelope = "upper"
+every = "1M"
+reach = 183
+
+[[step]]
+id = "seasons"
+do = "seasons"
+input = "fill"
+period = "1M"
+
+[[step]]
+id = "compare"
+do = "compare"
+input = "seasons"
+
+[[step]]
+id = "day_fill"
+do = "fill"
+input = "lst_day"
+method = "harmonic"
+harmonics = 2
+
+[[step]]
+id = "night_fill"
+do = "fill"
+input = "lst_night"
+method = "harmonic"
+harmonics = 2
+
+[[step]]
+id = "suitability"
+do = "suitability"
+day = "day_fill"
+night = "night_fill"
+model = "r0-2013"
+"""
+
+# A quicker job for the checks that need no cluster: 512 rows, 2 strips.
+SMALL_JOB = """
+[job]
+name = "small"
+out = "out"
+memory = "256M"
+threads = 2
+
+[inputs.ndvi]
+stack = "stack/ndvi/ndvi_*.tif"
+qa = "stack/qa/qa_*.tif"
+keep = "bits0-1 in 0,1"
+
+[[step]]
+id = "fill"
+do = "fill"
+input = "ndvi"
+lambda = "10"
+every = "1M"
+
+[[step]]
+id = "seasons"
+do = "seasons"
+input = "fill"
+
+[[step]]
+id = "compare"
+do = "compare"
+input = "seasons"
+"""
+
+VOLATILE_SUMMARY_KEYS = ("blocks", "block_size")  # how the work was cut, not what it made
+
+
+def kalends(*args, timeout=600, cwd=None):
+    return subprocess.run([kt.KALENDS_BIN] + list(args), capture_output=True, text=True, timeout=timeout, cwd=cwd)
+
+
+def read(path):
+    with open(path) as f:
+        return f.read()
+
+
+def outputs(out):
+    return sorted(os.path.relpath(p, out) for p in glob.glob(os.path.join(out, "**", "*"), recursive=True)
+                  if os.path.isfile(p) and not os.path.relpath(p, out).startswith(".kalends"))
+
+
+class Compare:
+    def assert_same_outputs(self, single, sharded):
+        """Every output of `sharded` as in `single` (see the module's docstring)."""
+        import numpy as np
+        g = kt.gdal()
+        files = outputs(single)
+        self.assertEqual(files, outputs(sharded))
+        rasters = 0
+        for rel in files:
+            a, b = os.path.join(single, rel), os.path.join(sharded, rel)
+            if rel.endswith(".tif"):
+                x, y = g.Open(a), g.Open(b)
+                self.assertEqual((x.RasterXSize, x.RasterYSize, x.RasterCount),
+                                 (y.RasterXSize, y.RasterYSize, y.RasterCount), rel)
+                self.assertEqual({k: v.replace(single, "<out>") for k, v in x.GetMetadata().items()},
+                                 {k: v.replace(sharded, "<out>") for k, v in y.GetMetadata().items()}, rel)
+                self.assertEqual(x.GetGeoTransform(), y.GetGeoTransform(), rel)
+                self.assertEqual(x.GetProjection(), y.GetProjection(), rel)
+                for band in range(1, x.RasterCount + 1):
+                    bx, by = x.GetRasterBand(band), y.GetRasterBand(band)
+                    self.assertEqual(bx.GetDescription(), by.GetDescription(), rel)
+                    px, py = bx.ReadAsArray(), by.ReadAsArray()
+                    # Bit for bit, NaN included.
+                    self.assertTrue(np.array_equal(px.view(np.uint32), py.view(np.uint32)),
+                                    "%s band %d: %d pixels differ" % (rel, band, int((px.view(np.uint32) != py.view(np.uint32)).sum())))
+                rasters += 1
+            elif rel.endswith("fill-summary.json"):
+                with open(a) as f, open(b) as h:
+                    sa, sb = json.load(f), json.load(h)
+                for k in VOLATILE_SUMMARY_KEYS:
+                    sa.pop(k), sb.pop(k)
+                self.assertEqual(sa, sb, rel)
+            else:
+                with open(a, "rb") as f, open(b, "rb") as h:
+                    self.assertEqual(f.read().replace(single.encode(), b"<out>"),
+                                     h.read().replace(sharded.encode(), b"<out>"), rel)
+        self.assertGreater(rasters, 10)
+        return len(files)
+
+
+# ---- without a workload manager ---------------------------------------------------------------
+
+class ShardsByHand(kt.TempDirTestCase, Compare):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        synth_stack.make_stack(os.path.join(cls.tmp, "stack", "ndvi"), width=64, height=512, years=2,
+                               qa_dir=os.path.join(cls.tmp, "stack", "qa"))
+        cls.job = os.path.join(cls.tmp, "job.toml")
+        with open(cls.job, "w") as f:
+            f.write(SMALL_JOB)
+        cls.single = os.path.join(cls.tmp, "single")
+        done = kalends("run", cls.job, "--out", cls.single, "-q")
+        assert done.returncode == 0, done.stderr
+
+    def out(self, name):
+        return os.path.join(self.tmp, name)
+
+    def test_plan_refuses_more_shards_than_strips(self):
+        done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        line = done.stderr.strip()
+        print("\n  " + line)
+        self.assertEqual(len(line.splitlines()), 1)
+        self.assertIn("'ndvi' has 512 rows", line)
+        self.assertIn("at most 2 shards", line)
+
+    def test_shard_needs_a_plan_and_a_shard_of_it(self):
+        done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("no shard plan", done.stderr)
+        self.assertEqual(kalends("plan", self.job, "--out", self.out("no-plan"), "--shards", "2", "-q").returncode, 0)
+        for wrong, words in (("3", "the plan has shards 1 to 2"), ("1/4", "the plan has 2 shards"),
+                             ("0/2", "1 <= K <= N")):
+            done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", wrong)
+            self.assertEqual(done.returncode, 2, wrong)
+            self.assertIn(words, done.stderr)
+
+    def test_shards_then_finalize_equal_one_run_and_stale_shards_are_named(self):
+        out = self.out("by-hand")
+        plan = kalends("plan", self.job, "--out", out, "--shards", "2")
+        self.assertEqual(plan.returncode, 0, plan.stderr)
+        self.assertIn("at --finalize: compare", plan.stdout)
+        self.assertIn("sbatch ", plan.stdout.strip().splitlines()[-1])
+        self.assertIn("--array=1-2", plan.stdout)
+        # Nothing done: finalize refuses, names both shards, writes nothing.
+        done = kalends("run", self.job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
+        self.assertIn("1/2 (never run)", done.stderr)
+        self.assertIn("2/2 (never run)", done.stderr)
+        self.assertEqual(outputs(out), [])
+        self.assertEqual(kalends("run", self.job, "--out", out, "--shard", "1/2", "-q").returncode, 0)
+        done = kalends("run", self.job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 4)
+        self.assertIn("2/2", done.stderr)
+        self.assertNotIn("1/2", done.stderr)
+        done = kalends("run", self.job, "--out", out, "--shard", "2")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertRegex(done.stdout, r"compare\s+later")
+        # Each shard holds only its strip.
+        g = kt.gdal()
+        for k, rows in ((1, 256), (2, 256)):
+            tif = sorted(glob.glob(os.path.join(out, ".kalends", "shards", "%d-of-2" % k, "fill", "ndvi_*.tif")))[0]
+            self.assertEqual((g.Open(tif).RasterXSize, g.Open(tif).RasterYSize), (64, rows))
+        done = kalends("run", self.job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assert_same_outputs(self.single, out)
+        # The stitched steps are recorded like a single-machine run's: a plain run does nothing.
+        done = kalends("run", self.job, "--out", out)
+        self.assertIn("nothing new, nothing done", done.stdout)
+        # A changed composite makes every shard stale; finalize says so.
+        first = sorted(glob.glob(os.path.join(self.tmp, "stack", "ndvi", "ndvi_*.tif")))[3]
+        backup = first + ".bak"
+        shutil.copy2(first, backup)
+        try:
+            ds = g.Open(first, 1)
+            band = ds.GetRasterBand(1)
+            values = band.ReadAsArray()
+            values[0, 0] = values[0, 0] + 7
+            band.WriteArray(values)
+            ds = None
+            done = kalends("run", self.job, "--out", out, "--finalize")
+            self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
+            print("\n  " + done.stderr.strip())
+            self.assertIn("1/2 (every step stale: its inputs changed (0 new, 1 changed files))", done.stderr)
+            self.assertIn("2/2 (every step stale", done.stderr)
+        finally:
+            shutil.move(backup, first)
+
+
+# ---- a real Slurm -----------------------------------------------------------------------------
+
+def free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+class LocalSlurm:
+    """A one-node Slurm cluster on localhost, its configuration, keys and state in `folder`."""
+
+    def __init__(self, folder):
+        self.folder = folder
+        self.env = dict(os.environ, SLURM_CONF=os.path.join(folder, "slurm.conf"))
+        self.pids = []  # (pid, daemon) in start order
+
+    def install(self):
+        if shutil.which("slurmctld") or os.path.exists("/usr/sbin/slurmctld"):
+            return
+        if os.geteuid() != 0:
+            raise unittest.SkipTest("Slurm is not installed and installing it needs root (apt-get install slurm-wlm munge)")
+        print("\n  installing slurm-wlm and munge", flush=True)
+        env = dict(os.environ, DEBIAN_FRONTEND="noninteractive")
+        subprocess.run(["apt-get", "update", "-qq"], env=env, capture_output=True, timeout=600)
+        done = subprocess.run(["apt-get", "install", "-y", "-qq", "--no-install-recommends", "slurm-wlm", "munge"],
+                              env=env, capture_output=True, text=True, timeout=900)
+        if done.returncode != 0:
+            raise unittest.SkipTest("cannot install slurm-wlm and munge: " + done.stderr.strip()[-300:])
+
+    def start(self):
+        if os.geteuid() != 0:
+            raise unittest.SkipTest("slurmd needs root to start jobs as their user; this test runs as uid %d" % os.geteuid())
+        self.install()
+        f = self.folder
+        munge = os.path.join(f, "munge")
+        for d in ("munge", "state", "spool", "log"):
+            os.makedirs(os.path.join(f, d), mode=0o700, exist_ok=True)
+        os.chmod(f, 0o700)
+        key = os.path.join(munge, "munge.key")
+        with open(key, "wb") as out:
+            out.write(os.urandom(1024))
+        os.chmod(key, 0o600)
+        self.socket = os.path.join(munge, "munge.socket")
+        self.daemon(["/usr/sbin/munged", "--key-file=" + key, "--socket=" + self.socket,
+                     "--pid-file=" + os.path.join(munge, "munged.pid"), "--log-file=" + os.path.join(munge, "munged.log"),
+                     "--seed-file=" + os.path.join(munge, "munged.seed"), "--force"],
+                    os.path.join(munge, "munged.pid"), os.path.join(munge, "munged.log"))
+        cpus = min(2, os.cpu_count() or 1)
+        with open("/proc/meminfo") as m:
+            total_mib = int(m.readline().split()[1]) // 1024
+        memory = min(4096, total_mib - 512)
+        conf = f"""
+ClusterName=kalendstest
+SlurmctldHost=localhost(127.0.0.1)
+SlurmctldPort={free_port()}
+SlurmdPort={free_port()}
+SlurmUser=root
+SlurmdUser=root
+AuthType=auth/munge
+CredType=cred/munge
+AuthInfo=socket={self.socket}
+StateSaveLocation={f}/state
+SlurmdSpoolDir={f}/spool
+SlurmctldPidFile={f}/slurmctld.pid
+SlurmdPidFile={f}/slurmd.pid
+SlurmctldLogFile={f}/log/slurmctld.log
+SlurmdLogFile={f}/log/slurmd.log
+ProctrackType=proctrack/linuxproc
+TaskPlugin=task/none
+SelectType=select/cons_tres
+SelectTypeParameters=CR_Core_Memory
+SchedulerType=sched/backfill
+MpiDefault=none
+ReturnToService=2
+JobAcctGatherType=jobacct_gather/none
+AccountingStorageType=accounting_storage/none
+JobCompType=jobcomp/none
+InactiveLimit=0
+MinJobAge=600
+KillWait=5
+NodeName=localhost NodeAddr=127.0.0.1 CPUs={cpus} RealMemory={memory} State=UNKNOWN
+PartitionName=debug Nodes=localhost Default=YES MaxTime=INFINITE State=UP
+"""
+        with open(self.env["SLURM_CONF"], "w") as out:
+            out.write(conf)
+        self.daemon(["/usr/sbin/slurmctld", "-i"], os.path.join(f, "slurmctld.pid"), os.path.join(f, "log", "slurmctld.log"))
+        self.daemon(["/usr/sbin/slurmd", "-N", "localhost"], os.path.join(f, "slurmd.pid"), os.path.join(f, "log", "slurmd.log"))
+        deadline = time.time() + 60
+        state = ""
+        while time.time() < deadline:
+            state = self.command("sinfo", "-h", "-o", "%t").stdout.strip()
+            if state == "idle":
+                return
+            time.sleep(1)
+        raise unittest.SkipTest("the Slurm node did not come up (state '%s'); slurmd log: %s"
+                                % (state, self.tail(os.path.join(f, "log", "slurmd.log"))))
+
+    def daemon(self, argv, pid_file, log):
+        done = subprocess.run(argv, env=self.env, capture_output=True, text=True, timeout=60)
+        deadline = time.time() + 20
+        while time.time() < deadline and not os.path.exists(pid_file):
+            time.sleep(0.2)
+        if done.returncode != 0 or not os.path.exists(pid_file):
+            raise unittest.SkipTest("%s did not start (exit %d): %s %s" % (os.path.basename(argv[0]), done.returncode,
+                                                                           done.stderr.strip(), self.tail(log)))
+        with open(pid_file) as f:
+            self.pids.append((int(f.read().strip()), os.path.basename(argv[0])))
+
+    @staticmethod
+    def tail(path):
+        try:
+            with open(path) as f:
+                return " | ".join(f.read().strip().splitlines()[-4:])
+        except OSError:
+            return "(no log)"
+
+    def command(self, *argv, cwd=None):
+        return subprocess.run(list(argv), env=self.env, capture_output=True, text=True, timeout=60, cwd=cwd)
+
+    def submit(self, argv, cwd):
+        """Runs an sbatch command line; returns the job id."""
+        done = subprocess.run([argv[0], "--parsable"] + argv[1:], env=self.env, capture_output=True, text=True,
+                              timeout=60, cwd=cwd)
+        if done.returncode != 0:
+            raise AssertionError("sbatch failed: " + done.stderr)
+        return done.stdout.strip().split(";")[0]
+
+    def wait(self, job, timeout=900):
+        deadline = time.time() + timeout
+        while time.time() < deadline:
+            if not self.command("squeue", "-h", "-j", job, "-o", "%i").stdout.strip():
+                return
+            time.sleep(1)
+        raise AssertionError("job %s still queued or running after %d s" % (job, timeout))
+
+    def stop(self):
+        """Stops the daemons, whatever state the tests left them in."""
+        if os.path.exists(self.env["SLURM_CONF"]):
+            self.command("scancel", "--full", "-u", "root")
+            self.command("scontrol", "shutdown")
+        for pid, name in reversed(self.pids):
+            if name == "munged":
+                self.signal(pid, signal.SIGTERM)
+            deadline = time.time() + 15
+            while time.time() < deadline and self.signal(pid, 0):
+                time.sleep(0.3)
+            self.signal(pid, signal.SIGKILL)
+
+    @staticmethod
+    def signal(pid, number):
+        try:
+            os.kill(pid, number)
+            return True
+        except ProcessLookupError:
+            return False
+
+
+class SlurmArray(kt.TempDirTestCase, Compare):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        # A short path: munged's socket must fit in a socket address.
+        cls.cluster = LocalSlurm(tempfile.mkdtemp(prefix="kalends-slurm-"))
+        cls.addClassCleanup(shutil.rmtree, cls.cluster.folder, ignore_errors=True)
+        cls.addClassCleanup(cls.cluster.stop)
+        cls.cluster.start()
+        stack = os.path.join(cls.tmp, "stack")
+        synth_stack.make_stack(os.path.join(stack, "ndvi"), width=128, height=1024, years=2,
+                               qa_dir=os.path.join(stack, "qa"))
+        synth_lst.make_lst(os.path.join(stack, "lst"), width=128, height=1024, years=2, quiet=True)
+        cls.job = os.path.join(cls.tmp, "job.toml")
+        with open(cls.job, "w") as f:
+            f.write(DEMO_JOB)
+        cls.single = os.path.join(cls.tmp, "single")
+        started = time.time()
+        done = kalends("run", cls.job, "--out", cls.single, "-q")
+        assert done.returncode == 0, done.stderr
+        print("\n  single machine: %.0f s" % (time.time() - started), flush=True)
+
+    def plan(self, out):
+        done = kalends("plan", self.job, "--out", out, "--shards", "4", "--threads", "1")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        line = done.stdout.strip().splitlines()[-1]
+        print("\n  " + line, flush=True)
+        argv = shlex.split(line)
+        self.assertEqual(argv[0], "sbatch")
+        self.assertIn("--array=1-4", argv)
+        self.assertIn("--mem=640M", argv)  # the job's 512M and a quarter
+        return argv
+
+    def finalize(self, out):
+        return kalends("run", self.job, "--out", out, "--finalize")
+
+    def test_1_array_of_4_equals_one_machine(self):
+        out = os.path.join(self.tmp, "array")
+        argv = self.plan(out)
+        started = time.time()
+        job = self.cluster.submit(argv, self.tmp)
+        self.cluster.wait(job)
+        print("  array of 4 on %d CPUs: %.0f s" % (min(2, os.cpu_count() or 1), time.time() - started), flush=True)
+        logs = sorted(glob.glob(os.path.join(self.tmp, "kalends-%s_*.log" % job)))
+        self.assertEqual(len(logs), 4, "one log per array task")
+        done = self.finalize(out)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr + "".join(map(read, logs)))
+        n = self.assert_same_outputs(self.single, out)
+        print("  finalize: %d outputs identical to the single-machine run" % n)
+
+    def test_2_a_killed_task_is_rerun_alone(self):
+        out = os.path.join(self.tmp, "killed")
+        argv = self.plan(out)
+        job = self.cluster.submit(argv, self.tmp)
+        # Kill task 2 midway: once its fill has begun writing.
+        shard = os.path.join(out, ".kalends", "shards", "2-of-4")
+        deadline = time.time() + 300
+        while time.time() < deadline and not glob.glob(os.path.join(shard, "fill", ".*.partial")):
+            time.sleep(0.2)
+        self.assertTrue(glob.glob(os.path.join(shard, "fill", ".*.partial")), "task 2 never started writing")
+        self.assertEqual(self.cluster.command("scancel", "%s_2" % job).returncode, 0)
+        self.cluster.wait(job)
+        done = self.finalize(out)
+        self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
+        print("  " + done.stderr.strip())
+        self.assertIn("1 of 4 shards not done: 2/4 (", done.stderr)
+        self.assertIn("--array=2", done.stderr)
+        self.assertEqual([p for p in outputs(out)], [], "a refused finalize writes nothing")
+        # Only that task again.
+        again = [a if not a.startswith("--array=") else "--array=2" for a in argv]
+        job = self.cluster.submit(again, self.tmp)
+        self.cluster.wait(job)
+        logs = glob.glob(os.path.join(self.tmp, "kalends-%s_*.log" % job))
+        self.assertEqual(len(logs), 1)
+        log = read(logs[0])
+        self.assertIn("shard 2 of job", log)
+        done = self.finalize(out)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr + log)
+        self.assert_same_outputs(self.single, out)
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
