@@ -97,8 +97,8 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
     if (!kind || !kind->splits_by_area) why = "needs the whole area";
     else if (why.empty() && root.empty()) why = "reads nothing a shard could split";
     else if (why.empty() && from_inputs && from_steps) why = "reads both a job input and an earlier step";
-    else if (why.empty() && from_steps && kind->reads_neighbours && kind->reads_neighbours(js.options))
-      why = "needs neighbours beyond a shard's rows of an earlier step";
+    else if (kind->reads_neighbours && kind->reads_neighbours(js.options))
+      why = "couples neighbouring pixels: strips would differ from a one-machine run along their edges";
     s.split = why.empty();
     s.why_whole = why;
     if (s.split) {

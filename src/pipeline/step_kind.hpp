@@ -70,8 +70,8 @@ struct StepKind {
   /// Per-pixel work (each output pixel from the same pixel of the inputs, or from a halo the
   /// engine reads itself): a shard of a cluster run may compute its strip of the grid alone.
   bool splits_by_area = false;
-  /// Whether the step, so configured, needs neighbours beyond a pixel (a halo). Such a step
-  /// can be split only where it reads a job input, whose whole grid every shard sees.
+  /// Whether the step, so configured, couples neighbouring pixels (a halo): its values along a
+  /// strip's edge would depend on where the strip ends, so it is never split.
   std::function<bool(const StepOptions&)> reads_neighbours;
   /// Merges the shards' copies of one of the step's files other than its rasters (a summary)
   /// into `path`, for a grid of `width` x `height`; false when the file is not one it knows.

@@ -209,6 +209,20 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("'ndvi' has 512 rows", line)
         self.assertIn("at most 2 shards", line)
 
+    def test_plan_keeps_coupled_and_whole_area_steps_for_finalize(self):
+        job = os.path.join(self.tmp, "spacetime.toml")
+        with open(job, "w") as f:
+            f.write(SMALL_JOB.replace('lambda = "10"', 'method = "spacetime"'))
+        done = kalends("plan", job, "--out", self.out("spacetime"), "--shards", "2")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("split by rows: (none)", done.stdout)
+        self.assertIn("at --finalize: fill (couples neighbouring pixels", done.stdout)
+        self.assertIn("at --finalize: seasons (reads 'fill', which is computed in --finalize)", done.stdout)
+        self.assertIn("at --finalize: compare (needs the whole area)", done.stdout)
+        with open(os.path.join(self.out("spacetime"), ".kalends", "plan.tsv")) as f:
+            plan = f.read()
+        self.assertIn("step\tfill\tfill\tfinalize\t", plan)
+
     def test_shard_needs_a_plan_and_a_shard_of_it(self):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
         self.assertEqual(done.returncode, 2)
