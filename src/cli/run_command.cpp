@@ -100,8 +100,12 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       int ran = 0;
       for (const StepReport& r : report.steps) ran += r.action == StepReport::Action::ran;
       const bool nothing = ran == 0 && report.exit_code == 0 && !o->run.dry_run;
-      fmt::print("kalends run: {}{} -> {}\n", o->run.dry_run ? "dry run, nothing changed" : nothing ? "nothing new, nothing done" : "done",
-                 report.exit_code ? " with problems" : "", report.out_dir);
+      if (report.exit_code == 4)
+        fmt::print("kalends run: finalize refused, nothing changed -> {}\n", report.out_dir);
+      else
+        fmt::print("kalends run: {}{} -> {}\n",
+                   o->run.dry_run ? "dry run, nothing changed" : nothing ? "nothing new, nothing done" : "done",
+                   report.exit_code ? " with problems" : "", report.out_dir);
       for (const StepReport& r : report.steps) {
         fmt::print("  {:<12} {:<10} {}", r.id, action_name(r.action), r.reason);
         if (r.action == StepReport::Action::ran)

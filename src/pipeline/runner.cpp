@@ -162,6 +162,7 @@ class Runner {
         throw UsageError("--shard", fmt::format("{}: the plan has shards 1 to {}", options_.shard, plan_->shards));
       shard_ = options_.shard;
       base_ = plan_->shard_folder(shard_);
+      report_.out_dir = base_;
     }
     const fs::path state_dir = fs::path(base_) / ".kalends";
     std::error_code ec;
@@ -269,6 +270,27 @@ class Runner {
       }
       list.push_back(s);
     }
+    // A cluster run's shards, after the steps: what each still lacks before --finalize.
+    if (detail::planned_shard_count(out_) > 0) {
+      try {
+        load_plan();
+        for (int k = 1; k <= plan_->shards; ++k) {
+          StepStatus s;
+          s.id = fmt::format("{}/{}", k, plan_->shards);
+          s.kind = "shard";
+          s.detail = shard_lacks(k);
+          s.state = s.detail.empty() ? "done" : "not done";
+          list.push_back(s);
+        }
+      } catch (const UsageError& e) {
+        StepStatus s;
+        s.id = "plan";
+        s.kind = "shards";
+        s.state = "stale";
+        s.detail = e.what();
+        list.push_back(s);
+      }
+    }
     return list;
   }
 
@@ -292,46 +314,50 @@ class Runner {
                                       "run kalends plan again (and the shards)");
   }
 
+  // What shard `k` lacks ("" when every split step is done and up to date).
+  std::string shard_lacks(int k) {
+    shard_ = k;
+    fingerprints_.clear();
+    const fs::path path = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
+    std::string what;
+    std::set<std::string> reasons;  // one per split step, "" where it is done
+    std::unique_ptr<detail::StateDatabase> db;
+    if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
+    for (const JobStep& step : job_.steps) {
+      if (!plan_->step(step.id)->split) continue;
+      const auto record = db ? db->step(step.id) : std::nullopt;
+      std::string why;
+      if (!record) why = "never run";
+      else if (record->status == "failed") why = "failed";
+      else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(record->fingerprint, fingerprint_of(step));
+      else if (!std::all_of(record->outputs.begin(), record->outputs.end(), [](const std::string& p) { return fs::exists(p); }))
+        why = "outputs missing";
+      if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
+      reasons.insert(why);
+    }
+    if (!db) what = "never run";
+    else if (reasons.size() == 1 && !what.empty()) what = "every step " + *reasons.begin();
+    shard_ = 0;
+    fingerprints_.clear();
+    return what;
+  }
+
   // Whether every shard holds every split step done and up to date; otherwise the error names
   // the shards and what they lack.
   bool shards_ready() {
-    std::string problems;
-    std::vector<int> indices;
+    std::string problems, list;
+    int missing = 0;
     for (int k = 1; k <= plan_->shards; ++k) {
-      shard_ = k;
-      fingerprints_.clear();
-      const fs::path path = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
-      std::string what;
-      std::set<std::string> reasons;  // one per split step, "" where it is done
-      std::unique_ptr<detail::StateDatabase> db;
-      if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
-      for (const JobStep& step : job_.steps) {
-        if (!plan_->step(step.id)->split) continue;
-        const auto record = db ? db->step(step.id) : std::nullopt;
-        std::string why;
-        if (!record) why = "never run";
-        else if (record->status == "failed") why = "failed";
-        else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(record->fingerprint, fingerprint_of(step));
-        else if (!std::all_of(record->outputs.begin(), record->outputs.end(), [](const std::string& p) { return fs::exists(p); }))
-          why = "outputs missing";
-        if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
-        reasons.insert(why);
-      }
-      if (!db) what = "never run";
-      else if (reasons.size() == 1 && !what.empty()) what = "every step " + *reasons.begin();
-      if (!what.empty()) {
-        problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
-        indices.push_back(k);
-      }
+      const std::string what = shard_lacks(k);
+      if (what.empty()) continue;
+      problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
+      list += (list.empty() ? "" : ",") + std::to_string(k);
+      ++missing;
     }
-    shard_ = 0;
-    fingerprints_.clear();
     if (problems.empty()) return true;
-    std::string list;
-    for (int k : indices) list += (list.empty() ? "" : ",") + std::to_string(k);
     report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
                                 "or kalends run {} --shard K), then --finalize",
-                                indices.size(), plan_->shards, problems, list, options_.job_file);
+                                missing, plan_->shards, problems, list, options_.job_file);
     return false;
   }
 
@@ -361,7 +387,7 @@ class Runner {
     const Grid& grid = plan_->grids.at(planned.root);
     const detail::StitchOutcome outcome =
         detail::stitch_parts(parts, grid.width, grid.height, folder, out_, *detail::find_step_kind(step.kind),
-                             options_.threads > 0 ? options_.threads : job_.threads);
+                             options_.threads > 0 ? options_.threads : job_.threads, cli_memory());
     report.outputs_written = outcome.written;
     report.outputs_unchanged = outcome.unchanged;
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();

@@ -53,7 +53,7 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
   ShardPlan plan;
   plan.shards = shards;
   plan.job_path = fs::absolute(job.path).lexically_normal().string();
-  plan.out = out;
+  plan.out = fs::absolute(out).lexically_normal().string();
   // Room above the job's memory budget for what it does not count (common practice: a quarter).
   plan.memory_bytes = parse_memory_size(job.memory) * 5 / 4;
   plan.threads = threads > 0 ? threads : job.threads > 0 ? job.threads : 4;

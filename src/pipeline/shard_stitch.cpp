@@ -4,6 +4,7 @@
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
 
+#include <algorithm>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fstream>
@@ -130,8 +131,12 @@ Layout layout_of(const std::string& name, const std::vector<ShardPart>& parts, i
 }  // namespace
 
 StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int height, const std::string& folder,
-                           const std::string& out, const StepKind& kind, int threads) {
+                           const std::string& out, const StepKind& kind, int threads,
+                           std::int64_t memory_bytes) {
   start_gdal();
+  // Every strip is read once, a row of tiles at a time: the cache needs little, and GDAL's
+  // default (a share of the machine's memory) would let it grow with the area.
+  set_gdal_cache(std::clamp<std::int64_t>(memory_bytes / 16, std::int64_t(8) << 20, std::int64_t(128) << 20));
   const std::set<std::string> names = files_in(parts.front().folder);
   for (std::size_t p = 1; p < parts.size(); ++p) {
     const std::set<std::string> other = files_in(parts[p].folder);

@@ -2,6 +2,7 @@
 // whole grid, written like the engines write theirs (tiled, compressed, atomically).
 #pragma once
 
+#include <cstdint>
 #include <string>
 #include <vector>
 
@@ -23,7 +24,9 @@ struct StitchOutcome {
 /// Stitches `parts` (in row order, covering `width` x `height`) into `folder`. Every shard must
 /// hold the same files; rasters must cover their windows; other files are merged by the step
 /// kind or must be the same in every shard. OutputError or InputError names the file otherwise.
+/// GDAL's block cache takes a sixteenth of `memory_bytes`, between 8 and 128 MiB, as in the engines.
 StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int height, const std::string& folder,
-                           const std::string& out, const StepKind& kind, int threads);
+                           const std::string& out, const StepKind& kind, int threads,
+                           std::int64_t memory_bytes);
 
 }  // namespace kalends::detail

@@ -250,8 +250,12 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(kalends("run", self.job, "--out", out, "--shard", "1/2", "-q").returncode, 0)
         done = kalends("run", self.job, "--out", out, "--finalize")
         self.assertEqual(done.returncode, 4)
+        self.assertIn("finalize refused, nothing changed", done.stdout)
         self.assertIn("2/2", done.stderr)
         self.assertNotIn("1/2", done.stderr)
+        status = kalends("status", self.job, "--out", out).stdout
+        self.assertRegex(status, r"1/2\s+shard\s+done")
+        self.assertRegex(status, r"2/2\s+shard\s+not done\s+never run")
         done = kalends("run", self.job, "--out", out, "--shard", "2")
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertRegex(done.stdout, r"compare\s+later")
