@@ -181,9 +181,15 @@ Job read_job(const std::string& path) {
       }
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {
-        if (!known.count(step.options[k]))
-          fail(path, value.source(), "'" + step.options[k] + "' is neither an input nor an earlier step");
-        step.inputs.push_back(step.options[k]);
+        // One name, or a list of names (texts: "a,b,c").
+        std::string names = step.options[k];
+        for (std::size_t start = 0; start <= names.size();) {
+          const std::size_t comma = std::min(names.find(',', start), names.size());
+          const std::string name = names.substr(start, comma - start);
+          if (!known.count(name)) fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");
+          step.inputs.push_back(name);
+          start = comma + 1;
+        }
       }
       if (found->role == StepKey::Role::path) step.options[k] = resolve(job.folder, step.options[k]);
     }

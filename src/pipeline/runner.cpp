@@ -341,9 +341,12 @@ class Runner {
       r.keep = in->second.keep;
       r.rules = rules_of(in->second);
     } else {
-      const std::string folder = step_folder(out_, name);
+      std::string folder = step_folder(out_, name);
+      // A tiled fill is read through its mosaic: one VRT per date over the tiles.
+      for (const JobStep& s : job_.steps)
+        if (s.id == name && s.options.count("tiles")) folder = (fs::path(folder) / "mosaic").string();
       r.folder = folder;
-      r.pattern = (fs::path(folder) / "*.tif").string();
+      r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
       if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
     }
     r.rules.exclude = excluded_;

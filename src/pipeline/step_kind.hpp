@@ -79,5 +79,6 @@ StepKind fill_step_kind();
 StepKind seasons_step_kind();
 StepKind compare_step_kind();
 StepKind suitability_step_kind();
+StepKind grid_step_kind();
 
 }  // namespace kalends::detail
