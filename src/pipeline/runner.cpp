@@ -361,6 +361,7 @@ class Runner {
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";
+      years_redone_[step.id] = std::vector<int>{};
       return;
     }
     report.reason = !record ? "never run" : record->status == "failed" ? "failed last time"
@@ -383,6 +384,27 @@ class Runner {
         report.reason += "; recomputing the years it reaches: " + list;
       }
     }
+    if (kind && kind->years_from_inputs && record && record->status == "done" && complete &&
+        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+      // Only earlier steps that redid some years: those years, and the next (its first period
+      // may take a composite from the end of a redone year).
+      std::set<int> years;
+      bool known = true;
+      for (const std::string& name : step.inputs) {
+        const auto it = years_redone_.find(name);
+        if (it == years_redone_.end() || !it->second) {
+          known = false;
+          break;
+        }
+        for (int y : *it->second) years.insert({y, y + 1});
+      }
+      if (known && !years.empty()) {
+        only_years_ = std::vector<int>(years.begin(), years.end());
+        std::string list;
+        for (int y : *only_years_) list += (list.empty() ? "" : ", ") + std::to_string(y);
+        report.reason += "; redoing the year layers of " + list + " and the synoptic layers";
+      }
+    }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
     const std::string folder = step_folder(out_, step.id);
@@ -403,6 +425,7 @@ class Runner {
     }
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
+    years_redone_[step.id] = only_years_;
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
                             outputs_in(folder), inputs_of(step)};
     db_->step_done(done);
@@ -439,7 +462,8 @@ class Runner {
   Scan scan_;
   std::map<std::string, std::string> fingerprints_;
   std::vector<std::string> excluded_;
-  std::optional<std::vector<int>> only_years_;  // for the fill step being run
+  std::optional<std::vector<int>> only_years_;  // for the step being run
+  std::map<std::string, std::optional<std::vector<int>>> years_redone_;  // by steps of this run; nullopt: all
   RunReport report_;
 };
 

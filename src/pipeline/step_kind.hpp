@@ -67,6 +67,9 @@ struct StepKind {
   /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
   /// recompute those alone.
   bool years_by_reach = false;
+  /// Whether the step can redo only the years its input steps redid (seasons: a year's own
+  /// layers depend on that year's values alone).
+  bool years_from_inputs = false;
 };
 
 const std::vector<StepKind>& step_kinds();

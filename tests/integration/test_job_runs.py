@@ -185,6 +185,10 @@ class Incremental(kt.TempDirTestCase):
         first_year = {p: t for p, t in mtimes(out).items() if "2021-" in os.path.basename(p)
                       and "/fill/" in p}
         self.assertGreater(len(first_year), 20)
+        # Seasons: the year-specific layer of 2021 depends on 2021 alone, so it stays too.
+        seasons_2021 = {p: t for p, t in mtimes(out).items() if os.path.basename(p).endswith("_year_2021.tif")}
+        self.assertEqual(len(seasons_2021), 1)
+        first_year.update(seasons_2021)
         for path in files[-3:]:
             name = os.path.basename(path)
             shutil.copy(path, os.path.join(live, "ndvi", name))
@@ -193,6 +197,7 @@ class Incremental(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 0, done.stderr)
             self.assertIn("2 new", done.stdout)   # the composite and its QA layer
             self.assertIn("recomputing the years it reaches: 2022", done.stdout)
+            self.assertIn("redoing the year layers of 2022, ", done.stdout)  # not 2021
         now = mtimes(out)
         self.assertEqual({p: now[p] for p in first_year}, first_year)   # 2021 untouched
         incremental = content(os.path.join(folder, "out"))
