@@ -38,6 +38,10 @@ std::int64_t parse_memory(const std::string& text);
 std::optional<double> optional_number(const std::string& text, const std::string& option);
 double parse_number(const std::string& text, const std::string& option);
 
+/// `kalends extract`, `kalends report`.
+Action add_extract_command(CLI::App& app, GlobalOptions& global);
+Action add_report_command(CLI::App& app, GlobalOptions& global);
+
 /// `kalends run`, `kalends status`.
 Action add_run_command(CLI::App& app, GlobalOptions& global);
 Action add_status_command(CLI::App& app, GlobalOptions& global);
