@@ -40,7 +40,7 @@ int main(int argc, char** argv) {
                    &cli::add_compare_command, &cli::add_validate_command, &cli::add_run_command,
                    &cli::add_status_command,
                    &cli::add_diurnal_command, &cli::add_suitability_command,
-                   &cli::add_extract_command}) {
+                   &cli::add_extract_command, &cli::add_report_command}) {
     cli::Action action = add(app, global);
     actions[app.get_subcommands({}).back()] = std::move(action);
   }
