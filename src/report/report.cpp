@@ -199,7 +199,10 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
       if (other.kind == SeriesKind::synoptic_period && other.name.size() >= 13 &&
           other.name.compare(other.name.size() - 13, 13, "synoptic_mean") == 0) {
         const std::string input = metadata_item(other.files.front().path, "KALENDS_INPUT");
-        if (canonical_text(fs::path(input).parent_path()) == folder) synoptic = &other;
+        // the seasons input is the fill folder itself or a pattern inside it
+        std::error_code ec;
+        const fs::path read = fs::is_directory(input, ec) ? fs::path(input) : fs::path(input).parent_path();
+        if (canonical_text(read) == folder) synoptic = &other;
       }
     const auto pixels = sample_pixels(request, s.grid);
     std::vector<std::vector<PlotDate>> series(pixels.size());
