@@ -49,8 +49,11 @@ struct CovariateSeries {
 /// raster files). Rasters that are summaries with no single value per time (cycle
 /// descriptors) are kept as fixed bands only when `include_descriptors`. InputError naming the
 /// path when a path does not exist or holds no raster.
+/// `prefixes`, when given, one per path, start the names of that path's series ("fill" makes
+/// "fill.ndvi" of a fill step's folder, as if its parent had been searched).
 std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
-                                             bool include_descriptors = false);
+                                             bool include_descriptors = false,
+                                             const std::vector<std::string>& prefixes = {});
 
 /// The period (0-based) of the calendar year that holds `date`, for a periodic series.
 int period_index(const CalendarPeriod& period, const CivilDate& date);

@@ -45,6 +45,7 @@ enum class Sampling { nearest, bilinear };
 
 struct ExtractRequest {
   std::vector<std::string> covariates;  // folders or raster files
+  std::vector<std::string> name_prefixes;  // optional, one per covariate path (find_covariates)
   PointsSource points;
   std::string out;  // CSV path
   Sampling sampling = Sampling::nearest;

@@ -66,10 +66,10 @@ Grid grid_of(GDALDataset& ds) {
   return g;
 }
 
-void collect(const fs::path& root, std::vector<Scanned>& out) {
+void collect(const fs::path& root, const std::string& prefix, std::vector<Scanned>& out) {
   std::error_code ec;
   if (fs::is_regular_file(root, ec)) {
-    out.push_back({root.string(), "", root.stem().string()});
+    out.push_back({root.string(), prefix, root.stem().string()});
     return;
   }
   if (!fs::is_directory(root, ec)) throw InputError(root.string(), "no such file or folder");
@@ -86,7 +86,7 @@ void collect(const fs::path& root, std::vector<Scanned>& out) {
   }
   std::sort(files.begin(), files.end());
   for (const fs::path& f : files) {
-    std::string group;
+    std::string group = prefix;
     for (const auto& part : fs::relative(f.parent_path(), root))
       if (part != ".") group += (group.empty() ? "" : ".") + part.string();
     out.push_back({f.string(), group, f.stem().string()});
@@ -96,9 +96,11 @@ void collect(const fs::path& root, std::vector<Scanned>& out) {
 }  // namespace
 
 std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
-                                             bool include_descriptors) {
+                                             bool include_descriptors,
+                                             const std::vector<std::string>& prefixes) {
   std::vector<Scanned> scanned;
-  for (const std::string& p : paths) collect(fs::path(p), scanned);
+  for (std::size_t i = 0; i < paths.size(); ++i)
+    collect(fs::path(paths[i]), i < prefixes.size() ? prefixes[i] : "", scanned);
   std::map<std::string, CovariateSeries> by_name;
   std::vector<std::string> order;
   auto series_for = [&](const std::string& name) -> CovariateSeries& {

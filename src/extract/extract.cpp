@@ -335,7 +335,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
     if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
   ExtractResult r;
   r.points = read_survey_points(request.points);
-  r.series = select(find_covariates(request.covariates, request.include_descriptors), request.layers);
+  r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());
   points_crs.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);

@@ -78,5 +78,7 @@ StepKind fill_step_kind();
 StepKind seasons_step_kind();
 StepKind compare_step_kind();
 StepKind suitability_step_kind();
+StepKind extract_step_kind();
+StepKind report_step_kind();
 
 }  // namespace kalends::detail
