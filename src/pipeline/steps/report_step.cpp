@@ -12,7 +12,7 @@ StepKind report_step_kind() {
   StepKind kind;
   kind.name = "report";
   // 'after' names the steps the page shows, so that it is redone when they change.
-  kind.keys = {{"after", T::texts, StepKey::Role::reads}, {"html", T::text, StepKey::Role::path},
+  kind.keys = {{"after", T::texts, StepKey::Role::reads}, {"html", T::text},
                {"pixels", T::texts}, {"samples", T::integer}, {"map_size", T::integer}, {"title", T::text}};
   kind.check = [](const StepOptions& o) {
     return o.count("after") ? std::string() : std::string("a 'report' step needs 'after' (the steps it shows)");
@@ -21,7 +21,11 @@ StepKind report_step_kind() {
     ReportRequest r;
     r.folder = c.out;
     std::filesystem::create_directories(c.folder);
-    r.html = c.has("html") ? c.text("html") : (std::filesystem::path(c.folder) / "report.html").string();
+    // 'html' is written, not read, so it is no path key (those are checksummed as inputs).
+    const std::filesystem::path html(c.text("html"));
+    r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
+             : html.is_absolute() ? html.string()
+                                  : (std::filesystem::path(c.job_path).parent_path() / html).string();
     std::string rest = c.text("pixels");  // "column row" pairs, e.g. ["100 200", "40 80"]
     while (!rest.empty()) {
       const auto comma = rest.find(',');
