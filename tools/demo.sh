@@ -36,6 +36,10 @@ if ! grep -q '"invented": true' "$out/input/lst/synth.json" 2>/dev/null; then
   echo "demo: generating the synthetic land-surface temperature stacks in $out/input/lst" >&2
   "$py" tools/synth_lst.py --out "$out/input/lst"
 fi
+# Invented survey clusters for the extract step (issue #8).
+if [ ! -s "$out/input/surveys/surveys.csv" ]; then
+  "$py" tools/synth_surveys.py --grid "$out/input/ndvi/ndvi_*.tif" --out "$out/input/surveys/surveys.csv"
+fi
 # The whole pipeline is the demo's job file (demo/job.toml): NDVI fill, seasons, compare;
 # land-surface temperature fill, day and night, and temperature suitability. A second run of
 # the demo finds nothing new and does nothing.
@@ -48,3 +52,6 @@ echo
   --manifest "$out/input/ndvi/synth.json"
 echo
 "$py" demo/summarise_suitability.py --suitability "$out/job/suitability"
+echo
+echo "demo: covariates at the invented survey clusters: $out/job/extract/table.csv"
+echo "demo: the report to look at: $out/report.html"

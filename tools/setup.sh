@@ -9,6 +9,7 @@ packages=(
   catch2 libcli11-dev libfmt-dev libtomlplusplus-dev libsqlite3-dev
   python3-numpy python3-scipy python3-gdal
   time
+  chromium            # headless browser for the report test (tests/integration/test_report_browser.py)
 )
 
 missing=()

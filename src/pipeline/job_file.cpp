@@ -181,14 +181,20 @@ Job read_job(const std::string& path) {
       }
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {
-        // One name, or a list of names (texts: "a,b,c").
-        std::string names = step.options[k];
-        for (std::size_t start = 0; start <= names.size();) {
-          const std::size_t comma = std::min(names.find(',', start), names.size());
-          const std::string name = names.substr(start, comma - start);
-          if (!known.count(name)) fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");
+        // a texts key names several inputs or steps (joined by ',' above)
+        std::vector<std::string> names;
+        std::string rest = step.options[k];
+        if (found->type != Type::texts) names.push_back(rest);
+        else
+          while (!rest.empty()) {
+            const auto comma = rest.find(',');
+            names.push_back(rest.substr(0, comma));
+            rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+          }
+        for (const std::string& name : names) {
+          if (!known.count(name))
+            fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");
           step.inputs.push_back(name);
-          start = comma + 1;
         }
       }
       if (found->role == StepKey::Role::path) step.options[k] = resolve(job.folder, step.options[k]);

@@ -250,6 +250,15 @@ class Runner {
     for (const auto& [k, v] : step.options) params += "|" + k + "=" + v;
     std::string reads;
     for (const std::string& name : step.inputs) reads += "|" + name + "=" + source_fingerprint(name);
+    // Files named by path keys (a zones raster, survey points) are read too: their content counts.
+    if (const detail::StepKind* kind = detail::find_step_kind(step.kind))
+      for (const detail::StepKey& key : kind->keys)
+        if (key.role == detail::StepKey::Role::path && step.options.count(key.name)) {
+          const std::string& file = step.options.at(key.name);
+          std::error_code ec;
+          if (std::filesystem::is_regular_file(file, ec))
+            reads += "|" + std::string(key.name) + "=" + checksum_of(file, db_.get(), scan_);
+        }
     const std::string fp = detail::text_checksum(params) + ":" + detail::text_checksum(reads);
     fingerprints_[step.id] = fp;
     return fp;

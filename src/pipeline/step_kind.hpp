@@ -83,5 +83,7 @@ StepKind seasons_step_kind();
 StepKind compare_step_kind();
 StepKind suitability_step_kind();
 StepKind grid_step_kind();
+StepKind extract_step_kind();
+StepKind report_step_kind();
 
 }  // namespace kalends::detail

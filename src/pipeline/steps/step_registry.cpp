@@ -12,6 +12,8 @@ const std::vector<StepKind>& step_kinds() {
       compare_step_kind(),
       suitability_step_kind(),
       grid_step_kind(),
+      extract_step_kind(),
+      report_step_kind(),
   };
   return kinds;
 }
