@@ -80,6 +80,11 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
       if (it->is_directory()) it.disable_recursion_pending();
       continue;
     }
+    // A tiled fill: its mosaic stands for the tile folders beside it.
+    if (it->is_directory() && name != "mosaic" && fs::is_directory(it->path().parent_path() / "mosaic")) {
+      it.disable_recursion_pending();
+      continue;
+    }
     const std::string ext = it->path().extension().string();
     if (it->is_regular_file() && (ext == ".tif" || ext == ".tiff" || ext == ".TIF" || ext == ".vrt" || ext == ".nc"))
       files.push_back(it->path());
@@ -88,7 +93,7 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
   for (const fs::path& f : files) {
     std::string group = prefix;
     for (const auto& part : fs::relative(f.parent_path(), root))
-      if (part != ".") group += (group.empty() ? "" : ".") + part.string();
+      if (part != "." && part != "mosaic") group += (group.empty() ? "" : ".") + part.string();
     out.push_back({f.string(), group, f.stem().string()});
   }
 }
