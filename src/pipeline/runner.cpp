@@ -18,6 +18,7 @@
 #include "pipeline/job_file.hpp"
 #include "pipeline/state.hpp"
 #include "pipeline/step_kind.hpp"
+#include "kalends/tiles.hpp"
 
 namespace kalends {
 
@@ -393,6 +394,35 @@ class Runner {
         report.reason += "; recomputing the years it reaches: " + list;
       }
     }
+    only_tiles_.reset();
+    if (step.options.count("tiles") && record && record->status == "done" && complete && !record->inputs.empty() &&
+        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+      // A tile set: only the tiles whose files changed (the fill adds the neighbours its halo
+      // reaches) - unless the set of dates changed, which changes every tile's time grid.
+      const auto now = inputs_of(step);
+      std::set<std::string> tiles, dates_before, dates_now;
+      bool known = true;
+      for (const auto& [f, sum] : record->inputs)
+        if (const auto d = date_from_name(f)) dates_before.insert(d->label());
+      for (const auto& [f, sum] : now)
+        if (const auto d = date_from_name(f)) dates_now.insert(d->label());
+      if (dates_before != dates_now) known = false;
+      auto note = [&](const std::string& f) {
+        const std::string tile = tile_name_in(f, step.options.at("tiles"));
+        if (tile.empty()) known = false;
+        tiles.insert(tile);
+      };
+      for (const auto& [f, sum] : now)
+        if (auto it = record->inputs.find(f); it == record->inputs.end() || it->second != sum) note(f);
+      for (const auto& [f, sum] : record->inputs)
+        if (!now.count(f)) note(f);
+      if (known && !tiles.empty()) {
+        only_tiles_ = std::vector<std::string>(tiles.begin(), tiles.end());
+        std::string list;
+        for (const std::string& t : *only_tiles_) list += (list.empty() ? "" : ", ") + t;
+        report.reason += "; tiles with new data: " + list;
+      }
+    }
     if (kind && kind->years_from_inputs && record && record->status == "done" && complete &&
         record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
       // Only earlier steps that redid some years: those years, and the next (its first period
@@ -451,6 +481,7 @@ class Runner {
     context.memory_bytes = cli_memory();
     context.threads = job_.threads;
     context.only_years = only_years_;
+    context.only_tiles = only_tiles_;
     context.resolve = [this](const std::string& name) { return resolve(name); };
     context.progress = [&](int done, int total) {
       if (events_.progress) events_.progress(step.id, done, total);
@@ -472,6 +503,7 @@ class Runner {
   std::map<std::string, std::string> fingerprints_;
   std::vector<std::string> excluded_;
   std::optional<std::vector<int>> only_years_;  // for the step being run
+  std::optional<std::vector<std::string>> only_tiles_;  // for a tiled fill being run
   std::map<std::string, std::optional<std::vector<int>>> years_redone_;  // by steps of this run; nullopt: all
   RunReport report_;
 };

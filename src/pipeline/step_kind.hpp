@@ -42,6 +42,7 @@ struct StepContext {
   int threads = 0;
   std::optional<std::vector<int>> only_years;  // years to recompute, when the runner knows them
   std::optional<Window> region;  // compute only this window of the inputs' grid (a shard)
+  std::optional<std::vector<std::string>> only_tiles;  // a tiled fill: tiles whose files changed
   std::function<ResolvedInput(const std::string& name)> resolve;
   std::function<void(int done, int total)> progress;
 

@@ -65,7 +65,7 @@ StepKind fill_step_kind() {
     r.region = c.region;
     if (c.has("tiles")) {
       // Outputs per tile, and the mosaic VRTs later steps read (see the runner's resolve).
-      const TiledFillSummary tiled = run_tiled_fill(r, c.text("tiles"), true, c.progress);
+      const TiledFillSummary tiled = run_tiled_fill(r, c.text("tiles"), true, c.progress, c.only_tiles);
       StepOutcome outcome;
       for (const FillSummary& s : tiled.tiles) {
         outcome.outputs_written += s.outputs_written;
