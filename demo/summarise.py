@@ -83,7 +83,7 @@ def main(argv=None):
     m = json.load(open(manifest))
     scene = synth_stack.Scene(m["width"], m["height"], m["seed"], m["scenario"], m["start_year"], m["years"],
                               m.get("drought_year"))
-    outs = sorted(glob.glob(os.path.join(a.filled, "ndvi_*.tif")))
+    outs = sorted(glob.glob(os.path.join(a.filled, "ndvi_*.tif")) + glob.glob(os.path.join(a.filled, "ndvi_*.vrt")))
     if not outs:
         print(f"no outputs ndvi_*.tif in {a.filled}")
         return 1

@@ -10,6 +10,7 @@ packages=(
   python3-numpy python3-scipy python3-gdal
   time
   slurm-wlm munge   # the cluster test starts a one-node Slurm on localhost
+  chromium            # headless browser for the report test (tests/integration/test_report_browser.py)
 )
 
 missing=()

@@ -29,6 +29,11 @@ struct SeasonsRequest {
   /// Compute only this window of the input's pixel grid (a tile, a shard's strip): outputs
   /// cover the window and are georeferenced as it.
   std::optional<Window> region;
+  /// Years whose input changed since an earlier run into the same folder: only their
+  /// year-specific layers and cycle descriptors (and those of their neighbours, which a cycle
+  /// reads) are computed and written; the other years' stay as they are. Synoptic layers and
+  /// anomalies, which every year shares, are always redone.
+  std::optional<std::vector<int>> only_years;
 };
 
 struct SeasonsSummary {

@@ -99,6 +99,10 @@ struct SuitabilityRequest {
   /// Compute only this window of the input's pixel grid (a tile, a shard's strip): outputs
   /// cover the window and are georeferenced as it.
   std::optional<Window> region;
+  /// Years whose temperatures changed since an earlier run into the same folder: only their
+  /// layers are computed and written; the synoptic layers take the other years' values from
+  /// their existing year layers (a year whose layer is missing is computed).
+  std::optional<std::vector<int>> only_years;
 };
 
 struct SuitabilitySummary {

@@ -42,8 +42,12 @@ struct TiledFillSummary {
 /// Fills every tile of a tile set over the mosaic (halos cross tile edges), writing the
 /// outputs of tile T into out_dir/T/; with `mosaic`, also out_dir/mosaic/ as one VRT per date.
 /// `request.input` and `request.qa_input` are the tile patterns; `tile_field` as above.
+/// With `only_tiles` (after an earlier run into the same folder, same parameters): only those
+/// tiles, and the tiles within the method's halo of them, are filled; the others are left as
+/// they are (counted in tiles_skipped).
 TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& tile_field, bool mosaic,
-                                const ProgressCallback& progress = {});
+                                const ProgressCallback& progress = {},
+                                const std::optional<std::vector<std::string>>& only_tiles = std::nullopt);
 
 /// Writes one VRT per output date in `mosaic_dir` over the same-named files in `folders`.
 void write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir);

@@ -44,6 +44,9 @@ double parse_number(const std::string& text, const std::string& option);
 /// `kalends grid`.
 Action add_grid_command(CLI::App& app, GlobalOptions& global);
 std::vector<double> parse_extent(const std::string& text);
+/// `kalends extract`, `kalends report`.
+Action add_extract_command(CLI::App& app, GlobalOptions& global);
+Action add_report_command(CLI::App& app, GlobalOptions& global);
 
 /// `kalends run`, `kalends status`.
 Action add_run_command(CLI::App& app, GlobalOptions& global);

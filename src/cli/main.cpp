@@ -39,7 +39,8 @@ int main(int argc, char** argv) {
   for (auto add : {&cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
                    &cli::add_compare_command, &cli::add_grid_command, &cli::add_validate_command, &cli::add_run_command,
                    &cli::add_status_command, &cli::add_plan_command,
-                   &cli::add_diurnal_command, &cli::add_suitability_command}) {
+                   &cli::add_diurnal_command, &cli::add_suitability_command,
+                   &cli::add_extract_command, &cli::add_report_command}) {
     cli::Action action = add(app, global);
     actions[app.get_subcommands({}).back()] = std::move(action);
   }

@@ -1,5 +1,6 @@
 // Filling a tile set: each tile is one region of the tiles' mosaic, so a block at a tile edge
 // reads its halo from the neighbouring tile and the values equal those of a run on the mosaic.
+#include <algorithm>
 #include <filesystem>
 
 #include "kalends/error.hpp"
@@ -10,7 +11,8 @@ namespace kalends {
 namespace fs = std::filesystem;
 
 TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& tile_field, bool mosaic,
-                                const ProgressCallback& progress) {
+                                const ProgressCallback& progress,
+                                const std::optional<std::vector<std::string>>& only_tiles) {
   const fs::path out(request.out_dir);
   // The per-date mosaics of the inputs live beside the outputs, hidden: they are only a view.
   const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string());
@@ -21,11 +23,30 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
         qa->mosaic.geotransform != data.mosaic.geotransform)
       throw InputError(request.qa_input, "the QA tiles do not cover the same grid as the data tiles");
   }
+  // Tiles to fill: all, or those with new data and those whose halo reaches one of them.
+  const int halo = make_fill_method(request.method)->halo();
+  auto touched = [&](const Tile& tile) {
+    if (!only_tiles) return true;
+    for (const Tile& other : data.tiles) {
+      if (std::find(only_tiles->begin(), only_tiles->end(), other.name) == only_tiles->end()) continue;
+      const Window& a = tile.window;
+      const Window& b = other.window;
+      if (a.x - halo < b.x + b.width && b.x < a.x + a.width + halo && a.y - halo < b.y + b.height &&
+          b.y < a.y + a.height + halo)
+        return true;
+    }
+    return false;
+  };
   TiledFillSummary summary;
   std::vector<std::string> folders;
   const int total = int(data.tiles.size());
   for (int t = 0; t < total; ++t) {
     const Tile& tile = data.tiles[std::size_t(t)];
+    folders.push_back((out / tile.name).string());
+    if (!touched(tile) && fs::exists(out / tile.name)) {
+      ++summary.tiles_skipped;
+      continue;
+    }
     FillRequest r = request;
     r.input = data.pattern;
     if (qa) r.qa_input = qa->pattern;
@@ -36,7 +57,6 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     if (progress)
       tile_progress = [&, t](int done, int blocks) { progress(t * 1000 + done * 1000 / std::max(blocks, 1), total * 1000); };
     summary.tiles.push_back(run_fill(r, tile_progress));
-    folders.push_back(r.out_dir);
   }
   if (mosaic) {
     summary.mosaic_dir = (out / "mosaic").string();

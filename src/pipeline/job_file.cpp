@@ -181,9 +181,21 @@ Job read_job(const std::string& path) {
       }
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {
-        if (!known.count(step.options[k]))
-          fail(path, value.source(), "'" + step.options[k] + "' is neither an input nor an earlier step");
-        step.inputs.push_back(step.options[k]);
+        // a texts key names several inputs or steps (joined by ',' above)
+        std::vector<std::string> names;
+        std::string rest = step.options[k];
+        if (found->type != Type::texts) names.push_back(rest);
+        else
+          while (!rest.empty()) {
+            const auto comma = rest.find(',');
+            names.push_back(rest.substr(0, comma));
+            rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+          }
+        for (const std::string& name : names) {
+          if (!known.count(name))
+            fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");
+          step.inputs.push_back(name);
+        }
       }
       if (found->role == StepKey::Role::path) step.options[k] = resolve(job.folder, step.options[k]);
     }

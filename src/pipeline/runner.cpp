@@ -23,6 +23,7 @@
 #include "pipeline/shard_stitch.hpp"
 #include "pipeline/state.hpp"
 #include "pipeline/step_kind.hpp"
+#include "kalends/tiles.hpp"
 
 namespace kalends {
 
@@ -408,6 +409,15 @@ class Runner {
     }
     std::string reads;
     for (const std::string& name : step.inputs) reads += "|" + name + "=" + source_fingerprint(name);
+    // Files named by path keys (a zones raster, survey points) are read too: their content counts.
+    if (const detail::StepKind* kind = detail::find_step_kind(step.kind))
+      for (const detail::StepKey& key : kind->keys)
+        if (key.role == detail::StepKey::Role::path && step.options.count(key.name)) {
+          const std::string& file = step.options.at(key.name);
+          std::error_code ec;
+          if (std::filesystem::is_regular_file(file, ec))
+            reads += "|" + std::string(key.name) + "=" + checksum_of(file, db_.get(), scan_);
+        }
     const std::string fp = detail::text_checksum(params) + ":" + detail::text_checksum(reads);
     fingerprints_[step.id] = fp;
     return fp;
@@ -499,9 +509,12 @@ class Runner {
       r.keep = in->second.keep;
       r.rules = rules_of(in->second);
     } else {
-      const std::string folder = step_folder(base_, name);
+      std::string folder = step_folder(base_, name);
+      // A tiled fill is read through its mosaic: one VRT per date over the tiles.
+      for (const JobStep& s : job_.steps)
+        if (s.id == name && s.options.count("tiles")) folder = (fs::path(folder) / "mosaic").string();
       r.folder = folder;
-      r.pattern = (fs::path(folder) / "*.tif").string();
+      r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
       if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
     }
     r.rules.exclude = excluded_;
@@ -516,6 +529,7 @@ class Runner {
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";
+      years_redone_[step.id] = std::vector<int>{};
       return;
     }
     report.reason = !record ? "never run" : record->status == "failed" ? "failed last time"
@@ -538,6 +552,56 @@ class Runner {
         report.reason += "; recomputing the years it reaches: " + list;
       }
     }
+    only_tiles_.reset();
+    if (step.options.count("tiles") && record && record->status == "done" && complete && !record->inputs.empty() &&
+        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+      // A tile set: only the tiles whose files changed (the fill adds the neighbours its halo
+      // reaches) - unless the set of dates changed, which changes every tile's time grid.
+      const auto now = inputs_of(step);
+      std::set<std::string> tiles, dates_before, dates_now;
+      bool known = true;
+      for (const auto& [f, sum] : record->inputs)
+        if (const auto d = date_from_name(f)) dates_before.insert(d->label());
+      for (const auto& [f, sum] : now)
+        if (const auto d = date_from_name(f)) dates_now.insert(d->label());
+      if (dates_before != dates_now) known = false;
+      auto note = [&](const std::string& f) {
+        const std::string tile = tile_name_in(f, step.options.at("tiles"));
+        if (tile.empty()) known = false;
+        tiles.insert(tile);
+      };
+      for (const auto& [f, sum] : now)
+        if (auto it = record->inputs.find(f); it == record->inputs.end() || it->second != sum) note(f);
+      for (const auto& [f, sum] : record->inputs)
+        if (!now.count(f)) note(f);
+      if (known && !tiles.empty()) {
+        only_tiles_ = std::vector<std::string>(tiles.begin(), tiles.end());
+        std::string list;
+        for (const std::string& t : *only_tiles_) list += (list.empty() ? "" : ", ") + t;
+        report.reason += "; tiles with new data: " + list;
+      }
+    }
+    if (kind && kind->years_from_inputs && record && record->status == "done" && complete &&
+        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+      // Only earlier steps that redid some years: those years, and the next (its first period
+      // may take a composite from the end of a redone year).
+      std::set<int> years;
+      bool known = true;
+      for (const std::string& name : step.inputs) {
+        const auto it = years_redone_.find(name);
+        if (it == years_redone_.end() || !it->second) {
+          known = false;
+          break;
+        }
+        for (int y : *it->second) years.insert({y, y + 1});
+      }
+      if (known && !years.empty()) {
+        only_years_ = std::vector<int>(years.begin(), years.end());
+        std::string list;
+        for (int y : *only_years_) list += (list.empty() ? "" : ", ") + std::to_string(y);
+        report.reason += "; redoing the year layers of " + list + " and the synoptic layers";
+      }
+    }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
     const std::string folder = step_folder(base_, step.id);
@@ -558,6 +622,7 @@ class Runner {
     }
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
+    years_redone_[step.id] = only_years_;
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
                             outputs_in(folder), inputs_of(step)};
     db_->step_done(done);
@@ -579,6 +644,7 @@ class Runner {
       if (planned->reads_inputs) context.region = plan_->window(planned->root, shard_);
     }
     context.only_years = only_years_;
+    context.only_tiles = only_tiles_;
     context.resolve = [this](const std::string& name) { return resolve(name); };
     context.progress = [&](int done, int total) {
       if (events_.progress) events_.progress(step.id, done, total);
@@ -602,7 +668,9 @@ class Runner {
   Scan scan_;
   std::map<std::string, std::string> fingerprints_;
   std::vector<std::string> excluded_;
-  std::optional<std::vector<int>> only_years_;  // for the fill step being run
+  std::optional<std::vector<int>> only_years_;  // for the step being run
+  std::optional<std::vector<std::string>> only_tiles_;  // for a tiled fill being run
+  std::map<std::string, std::optional<std::vector<int>>> years_redone_;  // by steps of this run; nullopt: all
   RunReport report_;
 };
 

@@ -64,7 +64,12 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
     const StepKind* kind = find_step_kind(js.kind);
     bool from_inputs = false, from_steps = false;
     std::string root, why;
-    for (const std::string& name : js.inputs) {
+    // Decided by the kind alone first: only candidates have their inputs' grids opened.
+    if (!kind || !kind->splits_by_area) why = "needs the whole area";
+    else if (js.options.count("tiles")) why = "a tile set: its tiles are its own windows";
+    else if (kind->reads_neighbours && kind->reads_neighbours(js.options))
+      why = "couples neighbouring pixels: strips would differ from a one-machine run along their edges";
+    for (const std::string& name : why.empty() ? js.inputs : std::vector<std::string>{}) {
       std::string this_root;
       if (job.inputs.count(name)) {
         from_inputs = true;
@@ -94,11 +99,8 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
         root = this_root;
       }
     }
-    if (!kind || !kind->splits_by_area) why = "needs the whole area";
-    else if (why.empty() && root.empty()) why = "reads nothing a shard could split";
+    if (why.empty() && root.empty()) why = "reads nothing a shard could split";
     else if (why.empty() && from_inputs && from_steps) why = "reads both a job input and an earlier step";
-    else if (kind->reads_neighbours && kind->reads_neighbours(js.options))
-      why = "couples neighbouring pixels: strips would differ from a one-machine run along their edges";
     s.split = why.empty();
     s.why_whole = why;
     if (s.split) {

@@ -42,6 +42,7 @@ struct StepContext {
   int threads = 0;
   std::optional<std::vector<int>> only_years;  // years to recompute, when the runner knows them
   std::optional<Window> region;  // compute only this window of the inputs' grid (a shard)
+  std::optional<std::vector<std::string>> only_tiles;  // a tiled fill: tiles whose files changed
   std::function<ResolvedInput(const std::string& name)> resolve;
   std::function<void(int done, int total)> progress;
 
@@ -67,6 +68,9 @@ struct StepKind {
   /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
   /// recompute those alone.
   bool years_by_reach = false;
+  /// Whether the step can redo only the years its input steps redid (seasons: a year's own
+  /// layers depend on that year's values alone).
+  bool years_from_inputs = false;
   /// Per-pixel work (each output pixel from the same pixel of the inputs, or from a halo the
   /// engine reads itself): a shard of a cluster run may compute its strip of the grid alone.
   bool splits_by_area = false;
@@ -90,5 +94,8 @@ StepKind fill_step_kind();
 StepKind seasons_step_kind();
 StepKind compare_step_kind();
 StepKind suitability_step_kind();
+StepKind grid_step_kind();
+StepKind extract_step_kind();
+StepKind report_step_kind();
 
 }  // namespace kalends::detail

@@ -104,14 +104,21 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
                      {"KALENDS_INPUT", request.input},
                      {"KALENDS_PERIOD", request.period.label()},
-                     {"KALENDS_YEARS", fmt::format("{}-{}", first_year, last_year)},
                      {"KALENDS_PROMINENCE_SHARE", fmt::format("{:g}", request.cycle.prominence_share)},
                      {"KALENDS_THRESHOLD_SHARE", fmt::format("{:g}", request.cycle.threshold_share)}};
     if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
     for (const auto& [k, v] : extra) spec.metadata[k] = v;
+    // The span of years only where a layer depends on every year, so that a year's own layers
+    // stay valid when another year is added.
+    if (!spec.metadata.count("KALENDS_YEAR")) spec.metadata["KALENDS_YEARS"] = fmt::format("{}-{}", first_year, last_year);
     for (const std::string& b : band_names) spec.bands.push_back({b, "", {}});
     specs.push_back(std::move(spec));
     return specs.size() - 1;
+  };
+  constexpr std::size_t not_written = std::size_t(-1);
+  auto redo = [&](int y) {
+    return !request.only_years ||
+           std::find(request.only_years->begin(), request.only_years->end(), y) != request.only_years->end();
   };
   const auto labels = period_labels(2001, request.period);
   const std::size_t synoptic_mean = add("synoptic_mean", labels, {{"KALENDS_LAYER", "long-term mean per period"}});
@@ -120,21 +127,26 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   std::vector<std::size_t> year_file, anomaly_file, standardised_file, cycle_file;
   for (int y = first_year; y <= last_year; ++y) {
     const std::string ys = std::to_string(y);
-    year_file.push_back(add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}}));
+    year_file.push_back(redo(y) ? add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}})
+                                : not_written);
     anomaly_file.push_back(add("anomaly_" + ys, labels, {{"KALENDS_LAYER", "year-specific minus synoptic"}, {"KALENDS_YEAR", ys}}));
     standardised_file.push_back(add("anomaly_standardised_" + ys, labels,
                                     {{"KALENDS_LAYER", "anomaly / synoptic sd"}, {"KALENDS_YEAR", ys}}));
   }
   for (int y = first_year; y <= last_year; ++y)
-    cycle_file.push_back(add("cycle_" + std::to_string(y), cycle_band_names(),
-                             {{"KALENDS_LAYER", "cycle descriptors of the year"}, {"KALENDS_YEAR", std::to_string(y)}}));
+    cycle_file.push_back(redo(y - 1) || redo(y) || redo(y + 1)
+                             ? add("cycle_" + std::to_string(y), cycle_band_names(),
+                                   {{"KALENDS_LAYER", "cycle descriptors of the year"}, {"KALENDS_YEAR", std::to_string(y)}})
+                             : not_written);
   const std::size_t cycle_synoptic = add("cycle_synoptic", cycle_band_names(), {{"KALENDS_LAYER", "cycle descriptors of the synoptic cycle"}});
   const std::size_t miss = add("synoptic_miss", {"rmse", "explained_share", "year_specific_share"},
                                {{"KALENDS_LAYER", "where the synoptic cycle misleads"}});
   std::vector<std::size_t> first_band(specs.size());
   std::size_t total_bands = 0;
   for (std::size_t f = 0; f < specs.size(); ++f) first_band[f] = total_bands, total_bands += specs[f].bands.size();
-  for (std::size_t f : year_file) for (auto& b : specs[f].bands) b.unit = unit;
+  for (std::size_t f : year_file)
+    if (f != not_written)
+      for (auto& b : specs[f].bands) b.unit = unit;
   for (std::size_t f : {synoptic_mean, synoptic_sd}) for (auto& b : specs[f].bands) b.unit = unit;
 
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
@@ -208,7 +220,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         band(synoptic_years, q)[p] = float(count);
         for (int y = 0; y < years; ++y) {
           const double v = value[std::size_t(y) * P + q];
-          band(year_file[y], q)[p] = float(v);
+          if (year_file[y] != not_written) band(year_file[y], q)[p] = float(v);
           band(anomaly_file[y], q)[p] = float(v - mean[q]);
           band(standardised_file[y], q)[p] = sd > 0 ? float((v - mean[q]) / sd) : NAN;
           if (std::isfinite(v)) all_sum += v, ++all_count;
@@ -216,6 +228,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       }
       // Cycle descriptors: each year with its neighbours; the synoptic cycle with itself.
       for (int y = 0; y < years; ++y) {
+        if (cycle_file[y] == not_written) continue;
         for (int q = 0; q < 3 * P; ++q) {
           const int yy = y + q / P - 1;
           w.padded[q] = yy >= 0 && yy < years ? value[std::size_t(yy) * P + q % P] : NAN;

@@ -60,6 +60,7 @@ struct Worker {
   std::unique_ptr<detail::PixelLocator> locator;
   std::unique_ptr<detail::PixelDays> days;
   std::vector<double> latitude, longitude, daily, value, mean;
+  std::vector<std::vector<float>> kept;  // [year][period][pixel] of years read back
   std::vector<std::vector<float>> bands;
   std::vector<float> tile;
   double count_sum = 0;
@@ -150,10 +151,12 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                      {"KALENDS_TEMPERATURE", temperature_text},
                      {"KALENDS_THRESHOLD", fmt::format("{:g}", request.threshold)},
                      {"KALENDS_PERIOD", request.period.label()},
-                     {"KALENDS_YEARS", fmt::format("{}-{}", first_year, last_year)},
                      {"KALENDS_INPUT", inputs_text},
                      {"KALENDS_CAUTION", suitability_caution}};
+    // The span of years only on layers that depend on every year, so that a year's own
+    // layers stay valid when another year is added.
     if (!year.empty()) spec.metadata["KALENDS_YEAR"] = year;
+    else spec.metadata["KALENDS_YEARS"] = fmt::format("{}-{}", first_year, last_year);
     if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
     for (const std::string& b : band_names) spec.bands.push_back({b, "", {}});
     specs.push_back(std::move(spec));
@@ -169,10 +172,32 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
       add("summary_synoptic", summary_bands,
           "suitable periods of the synoptic cycle (runs wrap over the year)", "");
   std::vector<std::size_t> year_file, summary_file;
+  constexpr std::size_t kept = std::size_t(-1);
+  std::vector<std::string> kept_year_path(static_cast<std::size_t>(years));  // years read back, not computed
   for (int y = first_year; y <= last_year; ++y) {
     const std::string ys = std::to_string(y);
-    year_file.push_back(add("year_" + ys, labels, "relative suitability 0-1 of the year", ys));
-    summary_file.push_back(add("summary_" + ys, summary_bands, "suitable periods of the year", ys));
+    const std::string path = (fs::path(request.out_dir) / (name + "_year_" + ys + ".tif")).string();
+    const bool redo = !request.only_years || !fs::exists(path) ||
+                      std::find(request.only_years->begin(), request.only_years->end(), y) != request.only_years->end();
+    if (!redo) kept_year_path[std::size_t(y - first_year)] = path;
+    year_file.push_back(redo ? add("year_" + ys, labels, "relative suitability 0-1 of the year", ys) : kept);
+    summary_file.push_back(redo ? add("summary_" + ys, summary_bands, "suitable periods of the year", ys) : kept);
+  }
+  // The dates the computed years need (and two more each side: a day's cycle reads its
+  // neighbours); the kept years' values come from their files.
+  std::size_t first_date = times.size(), last_date = 0;
+  for (std::size_t k = 0; k < periods.size(); ++k) {
+    if (year_file[k / std::size_t(P)] == kept) continue;
+    for (int c : sources[k].composite) {
+      first_date = std::min(first_date, std::size_t(c));
+      last_date = std::max(last_date, std::size_t(c) + 1);
+    }
+  }
+  if (first_date < last_date) {
+    first_date = first_date >= 2 ? first_date - 2 : 0;
+    last_date = std::min(times.size(), last_date + 2);
+  } else {
+    first_date = last_date = 0;
   }
   std::vector<std::size_t> first_band(specs.size());
   std::size_t total_bands = 0;
@@ -214,7 +239,22 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   auto process = [&](const Block& block, Worker& w) {
     const Window& core = block.core;
     const std::int64_t n = core.pixels();
-    w.block->read(core, 0, times.size());
+    if (last_date > first_date) w.block->read(core, first_date, last_date);
+    // Kept years: their values as the earlier run wrote them.
+    w.kept.assign(std::size_t(years), {});
+    for (int y = 0; y < years; ++y) {
+      const std::string& path = kept_year_path[std::size_t(y)];
+      if (path.empty()) continue;
+      GDALDatasetUniquePtr ds = detail::open_raster(path);
+      if (ds->GetRasterCount() != P || ds->GetRasterXSize() != area.width || ds->GetRasterYSize() != area.height)
+        throw InputError(path, "does not match the layout of this run; remove it to have it recomputed");
+      w.kept[std::size_t(y)].resize(std::size_t(P) * std::size_t(n));
+      for (int q = 0; q < P; ++q)
+        if (ds->GetRasterBand(q + 1)->RasterIO(GF_Read, core.x - area.x, core.y - area.y, core.width, core.height,
+                                               w.kept[std::size_t(y)].data() + std::size_t(q) * std::size_t(n),
+                                               core.width, core.height, GDT_Float32, 0, 0) != CE_None)
+          throw InputError(path, "cannot be read (" + detail::gdal_message("unknown reason") + ")");
+    }
     if (w.locator) w.locator->locate(core, w.latitude, w.longitude);
     w.bands.resize(total_bands);
     for (auto& b : w.bands) b.assign(n, NAN);
@@ -225,13 +265,17 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     w.value.assign(periods.size(), NAN);
     w.mean.assign(P, NAN);
     for (std::int64_t p = 0; p < n; ++p) {
-      if (w.days) w.days->build(*w.block, p, w.latitude[p], 0, times.size());
-      for (std::size_t i = 0; i < times.size(); ++i) {
+      if (w.days && last_date > first_date) w.days->build(*w.block, p, w.latitude[p], first_date, last_date);
+      for (std::size_t i = first_date; i < last_date; ++i) {
         if (!used[i]) continue;
         w.daily[i] =
             w.days ? w.days->daily_mean(i, model) : model.relative(w.block->values(0, i)[p]);
       }
       for (std::size_t k = 0; k < periods.size(); ++k) {
+        if (const auto& kept_values = w.kept[k / std::size_t(P)]; !kept_values.empty()) {
+          w.value[k] = kept_values[(k % std::size_t(P)) * std::size_t(n) + std::size_t(p)];
+          continue;
+        }
         double sum = 0, weight = 0;
         for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
           const double v = w.daily[sources[k].composite[j]];
@@ -243,8 +287,9 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
         double sum = 0;
         int count = 0;
         for (int y = 0; y < years; ++y) {
-          const double v = w.value[std::size_t(y) * P + q];
-          band(year_file[y], q)[p] = float(v);
+          // As stored (float), so that a year read back gives the same synoptic mean.
+          const double v = double(float(w.value[std::size_t(y) * P + q]));
+          if (year_file[y] != kept) band(year_file[y], q)[p] = float(v);
           if (std::isfinite(v)) sum += v, ++count;
         }
         w.mean[q] = count > 0 ? sum / count : NAN;
@@ -256,7 +301,8 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
         band(file, 2)[p] = float(r.mean);
       };
       for (int y = 0; y < years; ++y)
-        put(summary_file[y],
+        if (summary_file[y] != kept)
+          put(summary_file[y],
             suitable_runs(w.value.data() + std::size_t(y) * P, P, threshold, false));
       const SuitableRun cycle = suitable_runs(w.mean.data(), P, threshold, true);
       put(synoptic_summary, cycle);

@@ -185,6 +185,10 @@ class Incremental(kt.TempDirTestCase):
         first_year = {p: t for p, t in mtimes(out).items() if "2021-" in os.path.basename(p)
                       and "/fill/" in p}
         self.assertGreater(len(first_year), 20)
+        # Seasons: the year-specific layer of 2021 depends on 2021 alone, so it stays too.
+        seasons_2021 = {p: t for p, t in mtimes(out).items() if os.path.basename(p).endswith("_year_2021.tif")}
+        self.assertEqual(len(seasons_2021), 1)
+        first_year.update(seasons_2021)
         for path in files[-3:]:
             name = os.path.basename(path)
             shutil.copy(path, os.path.join(live, "ndvi", name))
@@ -193,12 +197,88 @@ class Incremental(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 0, done.stderr)
             self.assertIn("2 new", done.stdout)   # the composite and its QA layer
             self.assertIn("recomputing the years it reaches: 2022", done.stdout)
+            self.assertIn("redoing the year layers of 2022, ", done.stdout)  # not 2021
         now = mtimes(out)
         self.assertEqual({p: now[p] for p in first_year}, first_year)   # 2021 untouched
         incremental = content(os.path.join(folder, "out"))
         scratch = run(job, "--out", os.path.join(folder, "scratch"))
         self.assertEqual(scratch.returncode, 0, scratch.stderr)
         fresh = content(os.path.join(folder, "scratch"))
+        self.assertEqual(sorted(incremental), sorted(fresh))
+        for key in fresh:
+            self.assertEqual(incremental[key], fresh[key], key)
+
+
+LST_JOB = """
+[job]
+out = "out"
+memory = "256M"
+
+[inputs.day]
+stack = "live/day/lst_day_*.tif"
+
+[inputs.night]
+stack = "live/night/lst_night_*.tif"
+
+[[step]]
+id = "day_fill"
+do = "fill"
+input = "day"
+method = "harmonic"
+harmonics = 2
+reach = 120
+
+[[step]]
+id = "night_fill"
+do = "fill"
+input = "night"
+method = "harmonic"
+harmonics = 2
+reach = 120
+
+[[step]]
+do = "suitability"
+day = "day_fill"
+night = "night_fill"
+"""
+
+
+class IncrementalSuitability(kt.TempDirTestCase):
+    def test_new_composites_redo_only_their_years_and_equal_scratch(self):
+        # Invented LST (tools/synth_lst.py), 3 years: composites arriving in late 2023 redo
+        # the 2023 year layers (and 2024's, which do not exist); 2021's stay, and the synoptic
+        # layers, which take 2021 and 2022 from their files, equal a run from scratch.
+        folder = os.path.join(self.tmp, "lst")
+        done = subprocess.run(["/usr/bin/python3", os.path.join(kt.REPO_ROOT, "tools", "synth_lst.py"), "--out",
+                               os.path.join(folder, "source"), "--width", "48", "--height", "40", "--years", "3",
+                               "--quiet"], capture_output=True, text=True, timeout=120)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for kind in ("day", "night"):
+            os.makedirs(os.path.join(folder, "live", kind))
+        files = {kind: sorted(glob.glob(os.path.join(folder, "source", kind, "*.tif"))) for kind in ("day", "night")}
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write(LST_JOB)
+        def arrive(k):
+            for kind in ("day", "night"):
+                shutil.copy(files[kind][k], os.path.join(folder, "live", kind))
+        for k in range(len(files["day"]) - 2):
+            arrive(k)
+        self.assertEqual(run(job).returncode, 0)
+        out = os.path.join(folder, "out")
+        kept = {p: t for p, t in mtimes(out).items() if "/suitability/" in p and "_2021" in os.path.basename(p)}
+        self.assertEqual(len(kept), 2)  # year and summary layers of 2021
+        for k in range(len(files["day"]) - 2, len(files["day"])):
+            arrive(k)
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("redoing the year layers of 2023, 2024", done.stdout)
+        now = mtimes(out)
+        self.assertEqual({p: now[p] for p in kept}, kept)
+        scratch = run(job, "--out", os.path.join(folder, "scratch"))
+        self.assertEqual(scratch.returncode, 0, scratch.stderr)
+        incremental = {k: v for k, v in content(out).items() if k.startswith("suitability")}
+        fresh = {k: v for k, v in content(os.path.join(folder, "scratch")).items() if k.startswith("suitability")}
         self.assertEqual(sorted(incremental), sorted(fresh))
         for key in fresh:
             self.assertEqual(incremental[key], fresh[key], key)

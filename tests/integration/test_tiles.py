@@ -166,6 +166,49 @@ class TiledFill(kt.TempDirTestCase):
         self.assertIn("overlaps tile h00v00 with different values", done.stderr)
 
 
+    def test_in_a_job_only_the_changed_tile_is_refilled(self):
+        # A tile whose files changed is refilled alone (Whittaker: no halo); equal to scratch.
+        import shutil
+        import subprocess
+        job_dir = os.path.join(self.tmp, "job")
+        tiles = os.path.join(job_dir, "tiles")
+        shutil.copytree(self.tiles, tiles)
+        job = os.path.join(job_dir, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
+                    'qa = "tiles/h*v*/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
+                    'tiles = "tiles/{tile}/"\n')
+        run = lambda *a: subprocess.run([kt.KALENDS_BIN, "run", job] + list(a), capture_output=True, text=True)
+        done = run()
+        self.assertEqual(done.returncode, 0, done.stderr)
+        before = {p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(job_dir, "out", "fill", "h*", "*.tif"))}
+        # A reprocessed composite for one tile: same date, new values.
+        g = kt.gdal()
+        path = sorted(glob.glob(os.path.join(tiles, "h01v01", "ndvi_*.tif")))[5]
+        ds = g.Open(path, g.GA_Update)
+        band = ds.GetRasterBand(1)
+        values = band.ReadAsArray()
+        values[:20, :20] = 5000
+        band.WriteArray(values)
+        ds = None
+        done = run()
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("tiles with new data: h01v01", done.stdout)
+        after = {p: os.stat(p).st_mtime_ns for p in before}
+        for p in before:
+            if "/h01v01/" not in p:
+                self.assertEqual(after[p], before[p], p)
+        self.assertTrue(any(after[p] != before[p] for p in before if "/h01v01/" in p))
+        scratch = run("--out", os.path.join(job_dir, "scratch"))
+        self.assertEqual(scratch.returncode, 0, scratch.stderr)
+        for p in before:
+            q = p.replace(os.path.join(job_dir, "out"), os.path.join(job_dir, "scratch"))
+            a, b = kt.read_output(p), kt.read_output(q)
+            for k in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[k], b[k], err_msg=p)
+
+
 class TiledAlaska(kt.TempDirTestCase):
     """Real NDVI with real cloud patterns, as 4 tiles with an invented georeferencing."""
 

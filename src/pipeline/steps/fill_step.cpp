@@ -11,6 +11,7 @@
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
+#include "kalends/tiles.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
@@ -101,7 +102,8 @@ StepKind fill_step_kind() {
                {"reach", T::number}, {"compress", T::text}, {"keep", T::text},
                {"space_smoothing", T::number}, {"time_smoothing", T::number},
                {"climate_smoothing", T::number}, {"season_smoothing", T::number},
-               {"halo", T::integer}, {"tolerance", T::number}};
+               {"halo", T::integer}, {"tolerance", T::number},
+               {"tiles", T::text, StepKey::Role::path}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'fill' step needs 'input'");
   };
@@ -155,6 +157,16 @@ StepKind fill_step_kind() {
     r.command_line = c.command_line;
     r.keep_unchanged = true;
     r.region = c.region;
+    if (c.has("tiles")) {
+      // Outputs per tile, and the mosaic VRTs later steps read (see the runner's resolve).
+      const TiledFillSummary tiled = run_tiled_fill(r, c.text("tiles"), true, c.progress, c.only_tiles);
+      StepOutcome outcome;
+      for (const FillSummary& s : tiled.tiles) {
+        outcome.outputs_written += s.outputs_written;
+        outcome.outputs_unchanged += s.outputs_unchanged;
+      }
+      return outcome;
+    }
     const FillSummary s = run_fill(r, c.progress);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };

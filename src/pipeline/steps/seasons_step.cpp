@@ -10,6 +10,7 @@ StepKind seasons_step_kind() {
   StepKind kind;
   kind.name = "seasons";
   kind.splits_by_area = true;
+  kind.years_from_inputs = true;
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"period", T::text}, {"years", T::text}, {"date_marks", T::text},
                {"prominence", T::number}, {"threshold", T::number}, {"name", T::text},
@@ -35,6 +36,7 @@ StepKind seasons_step_kind() {
     r.command_line = c.command_line;
     r.keep_unchanged = true;
     r.region = c.region;
+    r.only_years = c.only_years;
     const SeasonsSummary s = run_seasons(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };

@@ -11,6 +11,9 @@ const std::vector<StepKind>& step_kinds() {
       seasons_step_kind(),
       compare_step_kind(),
       suitability_step_kind(),
+      grid_step_kind(),
+      extract_step_kind(),
+      report_step_kind(),
   };
   return kinds;
 }

@@ -11,6 +11,7 @@ StepKind suitability_step_kind() {
   StepKind kind;
   kind.name = "suitability";
   kind.splits_by_area = true;
+  kind.years_from_inputs = true;
   kind.keys = {{"day", T::text, reads}, {"night", T::text, reads}, {"tmin", T::text, reads},
                {"tmax", T::text, reads}, {"temperature", T::text, reads},
                {"model", T::text}, {"parasite", T::text}, {"window", T::pair}, {"period", T::text},
@@ -52,6 +53,7 @@ StepKind suitability_step_kind() {
     r.command_line = c.command_line;
     r.keep_unchanged = true;
     r.region = c.region;
+    r.only_years = c.only_years;
     const SuitabilitySummary s = run_suitability(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution};
   };

@@ -1,0 +1,63 @@
+// The covariate layers found in folders written by kalends (fill, seasons, suitability and
+// the other steps), or in any raster: grouped into series that share a name, each with the
+// rule by which a survey date picks its file and band.
+#pragma once
+
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "kalends/fill.hpp"
+#include "kalends/stack.hpp"
+#include "kalends/time.hpp"
+
+namespace kalends {
+
+enum class SeriesKind {
+  dated,            // one file per date (fill outputs, calendar period means): the date's file
+  year_period,      // one file per year, one band per period (seasons, suitability year layers)
+  synoptic_period,  // one file, one band per period of the calendar year (synoptic layers)
+  fixed,            // one band with no time (any other raster band)
+};
+
+struct SeriesFile {
+  std::string path;
+  TimePoint time;  // dated: the file's date (the start of its period)
+  int year = 0;    // year_period: the year
+};
+
+struct CovariateSeries {
+  /// Unique, documented in docs/extract.md: the folder below the searched root joined by '.',
+  /// then the file stem without its date or year ("fill.ndvi", "seasons.ndvi_year"); a fixed
+  /// band adds ".bN" when its file has several bands.
+  std::string name;
+  SeriesKind kind = SeriesKind::fixed;
+  std::vector<SeriesFile> files;  // dated: by time; year_period: by year
+  int band = 1;                   // the value band (fixed: the band)
+  bool has_sd_and_flag = false;   // fill outputs: bands 2 (sd) and 3 (flag)
+  /// dated: how long the last file's period lasts (its successor's start for the others);
+  /// periodic kinds: the period of the bands.
+  std::optional<CalendarPeriod> period;
+  double step_days = 0;  // dated fill outputs on the time grid: the grid step
+  int period_count = 0;  // periodic kinds: bands per year
+  std::string unit, description;
+  std::string caution;  // KALENDS_CAUTION where the layers carry one (suitability)
+  Grid grid;
+};
+
+/// Every series under `paths` (folders searched recursively, hidden entries skipped, or single
+/// raster files). Rasters that are summaries with no single value per time (cycle
+/// descriptors) are kept as fixed bands only when `include_descriptors`. InputError naming the
+/// path when a path does not exist or holds no raster.
+/// `prefixes`, when given, one per path, start the names of that path's series ("fill" makes
+/// "fill.ndvi" of a fill step's folder, as if its parent had been searched).
+std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
+                                             bool include_descriptors = false,
+                                             const std::vector<std::string>& prefixes = {});
+
+/// The period (0-based) of the calendar year that holds `date`, for a periodic series.
+int period_index(const CalendarPeriod& period, const CivilDate& date);
+/// The start of the period after the one starting at `start`.
+TimePoint next_period_start(const CalendarPeriod& period, TimePoint start);
+
+}  // namespace kalends

@@ -1,0 +1,75 @@
+// kalends extract COVARIATES... --points FILE --out TABLE.csv [--sampling bilinear]
+//   [--buffer METRES] [--lags 1,2,3] [--layers 'fill.*,seasons.ndvi_synoptic_mean'] [--long]
+#include <fmt/format.h>
+
+#include "cli/commands.hpp"
+#include "kalends/error.hpp"
+#include "kalends/extract.hpp"
+
+namespace kalends::cli {
+
+namespace {
+
+std::vector<std::string> split_list(const std::string& text) {
+  std::vector<std::string> items;
+  std::string rest = text;
+  while (!rest.empty()) {
+    const auto comma = rest.find(',');
+    items.push_back(rest.substr(0, comma));
+    rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+  }
+  return items;
+}
+
+}  // namespace
+
+Action add_extract_command(CLI::App& app, GlobalOptions& global) {
+  CLI::App* sub = app.add_subcommand(
+      "extract", "Covariate values at survey points and dates, with flags, errors and reasons");
+  struct Options {
+    ExtractRequest request;
+    std::string sampling = "nearest", lags, layers, buffer;
+  };
+  auto o = std::make_shared<Options>();
+  ExtractRequest& r = o->request;
+  sub->add_option("covariates", r.covariates, "Folders written by kalends (a job's out/ or a step's), or rasters")
+      ->required();
+  sub->add_option("--points", r.points.path, "Survey points: CSV, or any vector format OGR reads")->required();
+  sub->add_option("--out", r.out, "Table to write (CSV)")->required();
+  sub->add_option("--sampling", o->sampling, "nearest or bilinear")->capture_default_str();
+  sub->add_option("--buffer", o->buffer, "Also the mean within this radius (metres) of cells with a value");
+  sub->add_option("--lags", o->lags, "Periods before the survey's, e.g. 1,2,3");
+  sub->add_option("--layers", o->layers, "Comma-separated layer names or globs (default: all)");
+  sub->add_flag("--long", r.long_format, "One row per point, layer and lag instead of one per point");
+  sub->add_flag("--descriptors", r.include_descriptors,
+                "Also the descriptor layers (cycle, summaries), each band as a fixed layer");
+  sub->add_option("--id-column", r.points.id_column, "Column of the point identifier")->capture_default_str();
+  sub->add_option("--x-column", r.points.x_column, "CSV column of the longitude or easting")->capture_default_str();
+  sub->add_option("--y-column", r.points.y_column, "CSV column of the latitude or northing")->capture_default_str();
+  sub->add_option("--date-column", r.points.date_column, "Column of the survey date (YYYY-MM-DD or YYYY-MM)")
+      ->capture_default_str();
+  sub->add_option("--crs", r.points.crs, "CRS of CSV coordinates (EPSG code, WKT or PROJ string)")
+      ->capture_default_str();
+  return [o, &global] {
+    ExtractRequest& r = o->request;
+    if (o->sampling == "nearest") r.sampling = Sampling::nearest;
+    else if (o->sampling == "bilinear") r.sampling = Sampling::bilinear;
+    else throw UsageError("--sampling '" + o->sampling + "'", "use nearest or bilinear");
+    r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
+    if (!o->buffer.empty() && r.buffer_metres <= 0) throw UsageError("--buffer", "the radius must be positive (metres)");
+    for (const std::string& lag : split_list(o->lags)) {
+      const double v = parse_number(lag, "--lags");
+      if (v != static_cast<int>(v) || v < 1) throw UsageError("--lags '" + o->lags + "'", "lags are whole periods: 1, 2, ...");
+      r.lags.push_back(static_cast<int>(v));
+    }
+    r.layers = split_list(o->layers);
+    const ExtractResult result = run_extract(r);
+    if (!global.quiet)
+      fmt::print("kalends extract: {} points x {} layers{}: {} values, {} missing (see the reason columns) -> {}\n",
+                 result.points.points.size(), result.series.size(),
+                 r.lags.empty() ? "" : fmt::format(" with {} lags", r.lags.size()), result.values.size(),
+                 result.missing, r.out);
+  };
+}
+
+}  // namespace kalends::cli

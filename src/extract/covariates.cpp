@@ -1,0 +1,201 @@
+// Finding covariate series in folders: the metadata kalends writes (KALENDS_DATE,
+// KALENDS_PERIOD, KALENDS_YEAR, band descriptions "month 01" / "doy 001") says how each file is
+// matched to a date; a raster without it is a set of fixed bands.
+#include "kalends/covariates.hpp"
+
+#include <algorithm>
+#include <filesystem>
+#include <map>
+#include <regex>
+
+#include "io/gdal_session.hpp"
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+
+int period_index(const CalendarPeriod& period, const CivilDate& date) {
+  if (period.kind == CalendarPeriod::Kind::month) return date.month - 1;
+  return (day_of_year(date) - 1) / period.days;
+}
+
+TimePoint next_period_start(const CalendarPeriod& period, TimePoint start) {
+  const CivilDate d = start.date();
+  if (period.kind == CalendarPeriod::Kind::month)
+    return TimePoint::from_date(d.month == 12 ? CivilDate{d.year + 1, 1, 1} : CivilDate{d.year, d.month + 1, 1});
+  // N-day periods restart on 1 January; the last one of a year is shorter.
+  const std::int64_t next = days_from_civil(d.year, d.month, d.day) + period.days;
+  const std::int64_t new_year = days_from_civil(d.year + 1, 1, 1);
+  return TimePoint{std::min(next, new_year) * 86400};
+}
+
+namespace {
+
+std::string item(GDALDataset& ds, const char* key) {
+  const char* v = ds.GetMetadataItem(key);
+  return v ? v : "";
+}
+
+bool is_period_label(const std::string& d) {
+  static const std::regex label(R"((month \d\d|doy \d\d\d))");
+  return std::regex_match(d, label);
+}
+
+struct Scanned {
+  std::string path, group;  // group: the folder part of the name
+  std::string stem;
+};
+
+std::string trim_separators(std::string s) {
+  while (!s.empty() && (s.back() == '_' || s.back() == '-' || s.back() == '.')) s.pop_back();
+  return s;
+}
+
+Grid grid_of(GDALDataset& ds) {
+  Grid g;
+  g.width = ds.GetRasterXSize();
+  g.height = ds.GetRasterYSize();
+  g.has_geotransform = ds.GetGeoTransform(g.geotransform.data()) == CE_None;
+  if (const OGRSpatialReference* srs = ds.GetSpatialRef()) {
+    char* wkt = nullptr;
+    srs->exportToWkt(&wkt);
+    g.crs_wkt = wkt ? wkt : "";
+    CPLFree(wkt);
+  }
+  return g;
+}
+
+void collect(const fs::path& root, const std::string& prefix, std::vector<Scanned>& out) {
+  std::error_code ec;
+  if (fs::is_regular_file(root, ec)) {
+    out.push_back({root.string(), prefix, root.stem().string()});
+    return;
+  }
+  if (!fs::is_directory(root, ec)) throw InputError(root.string(), "no such file or folder");
+  std::vector<fs::path> files;
+  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
+    const std::string name = it->path().filename().string();
+    if (!name.empty() && name.front() == '.') {
+      if (it->is_directory()) it.disable_recursion_pending();
+      continue;
+    }
+    // A tiled fill: its mosaic stands for the tile folders beside it.
+    if (it->is_directory() && name != "mosaic" && fs::is_directory(it->path().parent_path() / "mosaic")) {
+      it.disable_recursion_pending();
+      continue;
+    }
+    const std::string ext = it->path().extension().string();
+    if (it->is_regular_file() && (ext == ".tif" || ext == ".tiff" || ext == ".TIF" || ext == ".vrt" || ext == ".nc"))
+      files.push_back(it->path());
+  }
+  std::sort(files.begin(), files.end());
+  for (const fs::path& f : files) {
+    std::string group = prefix;
+    for (const auto& part : fs::relative(f.parent_path(), root))
+      if (part != "." && part != "mosaic") group += (group.empty() ? "" : ".") + part.string();
+    out.push_back({f.string(), group, f.stem().string()});
+  }
+}
+
+}  // namespace
+
+std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
+                                             bool include_descriptors,
+                                             const std::vector<std::string>& prefixes) {
+  std::vector<Scanned> scanned;
+  for (std::size_t i = 0; i < paths.size(); ++i)
+    collect(fs::path(paths[i]), i < prefixes.size() ? prefixes[i] : "", scanned);
+  std::map<std::string, CovariateSeries> by_name;
+  std::vector<std::string> order;
+  auto series_for = [&](const std::string& name) -> CovariateSeries& {
+    auto [it, added] = by_name.try_emplace(name);
+    if (added) {
+      it->second.name = name;
+      order.push_back(name);
+    }
+    return it->second;
+  };
+  for (const Scanned& s : scanned) {
+    GDALDatasetUniquePtr ds = detail::open_raster(s.path);
+    const std::string prefix = s.group.empty() ? "" : s.group + ".";
+    const std::string date_text = item(*ds, "KALENDS_DATE");
+    const std::string period_text = item(*ds, "KALENDS_PERIOD");
+    const std::string year_text = item(*ds, "KALENDS_YEAR");
+    const int bands = ds->GetRasterCount();
+    std::vector<std::string> descriptions;
+    for (int b = 1; b <= bands; ++b) descriptions.push_back(ds->GetRasterBand(b)->GetDescription());
+    auto fill_common = [&](CovariateSeries& c) {
+      c.grid = grid_of(*ds);
+      c.unit = ds->GetRasterBand(c.band)->GetUnitType();
+      c.caution = item(*ds, "KALENDS_CAUTION");
+      c.description = item(*ds, "KALENDS_LAYER");
+      if (c.description.empty()) c.description = descriptions[c.band - 1];
+    };
+    const bool fill_bands = bands == 3 && descriptions[0] == "value" && descriptions[1] == "sd" &&
+                            descriptions[2] == "flag";
+    const bool periodic = !period_text.empty() && std::all_of(descriptions.begin(), descriptions.end(), is_period_label);
+    if (!date_text.empty()) {
+      const auto time = parse_iso_time(date_text);
+      const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
+      if (!time) throw InputError(s.path, "KALENDS_DATE '" + date_text + "' is not a date");
+      std::string stem = in_name ? trim_separators(s.stem.substr(0, in_name->position)) : s.stem;
+      CovariateSeries& c = series_for(prefix + (stem.empty() ? "layer" : stem));
+      c.kind = SeriesKind::dated;
+      c.has_sd_and_flag = fill_bands;
+      if (!period_text.empty()) c.period = CalendarPeriod::parse(period_text);
+      const std::string step = item(*ds, "KALENDS_TIME_STEP_DAYS");
+      if (!step.empty()) c.step_days = std::stod(step);
+      c.files.push_back({s.path, *time, 0});
+      if (c.files.size() == 1) fill_common(c);
+      else require_same_grid(c.grid, grid_of(*ds), s.path);
+    } else if (periodic) {
+      const CalendarPeriod period = CalendarPeriod::parse(period_text);
+      std::string stem = s.stem;
+      const std::string year_suffix = "_" + year_text;
+      if (!year_text.empty() && stem.size() > year_suffix.size() &&
+          stem.compare(stem.size() - year_suffix.size(), year_suffix.size(), year_suffix) == 0)
+        stem.resize(stem.size() - year_suffix.size());
+      CovariateSeries& c = series_for(prefix + stem);
+      c.kind = year_text.empty() ? SeriesKind::synoptic_period : SeriesKind::year_period;
+      c.period = period;
+      c.period_count = bands;
+      c.files.push_back({s.path, {}, year_text.empty() ? 0 : std::stoi(year_text)});
+      if (c.kind == SeriesKind::synoptic_period && c.files.size() > 1)
+        throw InputError(s.path, "a second synoptic file for the series '" + c.name + "'");
+      if (c.files.size() == 1) fill_common(c);
+      else require_same_grid(c.grid, grid_of(*ds), s.path);
+    } else if ((period_text.empty() && year_text.empty()) || include_descriptors) {
+      for (int b = 1; b <= bands; ++b) {
+        std::string name = prefix + s.stem;
+        // Plain rasters: bands by number; kalends descriptors by their description.
+        const bool by_description = !(period_text.empty() && year_text.empty()) && !descriptions[b - 1].empty();
+        if (bands > 1) name += "." + (by_description ? descriptions[b - 1] : "b" + std::to_string(b));
+        CovariateSeries& c = series_for(name);
+        c.kind = SeriesKind::fixed;
+        c.band = b;
+        c.files = {{s.path, {}, 0}};
+        fill_common(c);
+      }
+    }
+  }
+  std::vector<CovariateSeries> result;
+  for (const std::string& name : order) {
+    CovariateSeries c = std::move(by_name[name]);
+    std::sort(c.files.begin(), c.files.end(), [](const SeriesFile& a, const SeriesFile& b) {
+      return a.time < b.time || (a.time == b.time && a.year < b.year);
+    });
+    for (std::size_t i = 1; i < c.files.size(); ++i)
+      if (c.kind == SeriesKind::dated ? c.files[i].time == c.files[i - 1].time : c.files[i].year == c.files[i - 1].year)
+        throw InputError(c.files[i].path, "the same date or year as " + c.files[i - 1].path);
+    result.push_back(std::move(c));
+  }
+  if (result.empty()) {
+    std::string all;
+    for (const auto& p : paths) all += (all.empty() ? "" : ", ") + p;
+    throw InputError(all, "no raster layers found");
+  }
+  return result;
+}
+
+}  // namespace kalends

@@ -1,0 +1,380 @@
+// kalends extract: covariate values at survey points. Coordinates go into each layer's CRS with
+// OGRCoordinateTransformation (PROJ), in longitude-latitude / easting-northing order
+// (OAMS_TRADITIONAL_GIS_ORDER). Pixel positions come from the inverse geotransform; cell (c, r)
+// covers [c, c+1) x [r, r+1) in pixel coordinates and its centre is at (c + 0.5, r + 0.5).
+//   nearest:  the cell holding the point.
+//   bilinear: the four cell centres around the point, weights (1-fx)(1-fy) ... (the usual
+//             bilinear interpolation); beyond the outermost centres the edge cells are repeated.
+//             Missing when a cell with a non-zero weight has no value.
+//   buffer:   mean of the cells with a value whose centre lies within the radius (projected CRS:
+//             distance on the grid, in metres through the CRS's linear unit; geographic CRS:
+//             great-circle distance on a sphere of radius 6 371 008.8 m, the IUGG mean radius).
+#include <fmt/format.h>
+#include <fnmatch.h>
+#include <ogr_spatialref.h>
+
+#include <algorithm>
+#include <cmath>
+#include <map>
+#include <memory>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/error.hpp"
+#include "kalends/extract.hpp"
+
+namespace kalends {
+
+namespace {
+
+constexpr double earth_radius_m = 6371008.8;
+constexpr double pi = 3.14159265358979323846;
+
+double haversine_m(double lon1, double lat1, double lon2, double lat2) {
+  const double r = pi / 180;
+  const double a = std::pow(std::sin((lat2 - lat1) * r / 2), 2) +
+                   std::cos(lat1 * r) * std::cos(lat2 * r) * std::pow(std::sin((lon2 - lon1) * r / 2), 2);
+  return 2 * earth_radius_m * std::asin(std::min(1.0, std::sqrt(a)));
+}
+
+struct Cell {
+  double value = NAN, sd = NAN, flag = NAN;
+};
+
+// The open files of a run, each read cell by cell through GDAL's block cache.
+class Files {
+ public:
+  GDALDataset& get(const std::string& path) {
+    auto it = open_.find(path);
+    if (it == open_.end()) it = open_.emplace(path, detail::open_raster(path)).first;
+    return *it->second;
+  }
+
+  // Physical values of a window of one band (scale and offset applied; nodata -> NaN).
+  std::vector<double> read(const std::string& path, int band, int col, int row, int cols, int rows) {
+    GDALDataset& ds = get(path);
+    if (band > ds.GetRasterCount()) throw InputError(path, fmt::format("has no band {}", band));
+    GDALRasterBand* b = ds.GetRasterBand(band);
+    std::vector<double> v(static_cast<std::size_t>(cols) * rows);
+    if (b->RasterIO(GF_Read, col, row, cols, rows, v.data(), cols, rows, GDT_Float64, 0, 0) != CE_None)
+      throw InputError(path, detail::gdal_message("cannot read"));
+    int has_nodata = 0;
+    const double nodata = b->GetNoDataValue(&has_nodata);
+    const double scale = b->GetScale(), offset = b->GetOffset();
+    for (double& x : v) {
+      if (std::isnan(x) || (has_nodata && x == nodata)) x = NAN;
+      else x = x * scale + offset;
+    }
+    return v;
+  }
+
+ private:
+  std::map<std::string, GDALDatasetUniquePtr> open_;
+};
+
+// Where a point lies in one series' grid.
+struct Placement {
+  bool inside = false;
+  double px = 0, py = 0;   // pixel coordinates
+  double x = 0, y = 0;     // in the layer's CRS
+  std::string reason;
+};
+
+class SeriesGeometry {
+ public:
+  SeriesGeometry(const CovariateSeries& s, const OGRSpatialReference& points_crs, double buffer_m)
+      : series_(s), buffer_m_(buffer_m) {
+    const std::string& where = s.files.front().path;
+    if (!s.grid.has_geotransform || s.grid.crs_wkt.empty())
+      throw InputError(where, "has no georeferencing (geotransform and CRS); points cannot be placed on it");
+    layer_crs_.importFromWkt(s.grid.crs_wkt.c_str());
+    layer_crs_.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+    transform_.reset(OGRCreateCoordinateTransformation(&points_crs, &layer_crs_));
+    if (!transform_) throw InputError(where, "no transformation from the points' CRS into this layer's CRS");
+    if (!GDALInvGeoTransform(const_cast<double*>(s.grid.geotransform.data()), inverse_))
+      throw InputError(where, "its geotransform cannot be inverted");
+    geographic_ = layer_crs_.IsGeographic();
+    metres_per_unit_ = geographic_ ? 1.0 : layer_crs_.GetLinearUnits();
+  }
+
+  Placement place(const SurveyPoint& p) const {
+    Placement out;
+    if (!p.has_coordinates) {
+      out.reason = "no coordinates";
+      return out;
+    }
+    double x = p.x, y = p.y;
+    if (!transform_->Transform(1, &x, &y) || !std::isfinite(x) || !std::isfinite(y)) {
+      out.reason = "the point cannot be transformed into the layer's CRS";
+      return out;
+    }
+    out.x = x;
+    out.y = y;
+    out.px = inverse_[0] + x * inverse_[1] + y * inverse_[2];
+    out.py = inverse_[3] + x * inverse_[4] + y * inverse_[5];
+    if (!(out.px >= 0 && out.px < series_.grid.width && out.py >= 0 && out.py < series_.grid.height)) {
+      out.reason = "outside the layer";
+      return out;
+    }
+    out.inside = true;
+    return out;
+  }
+
+  // The cells whose centre lies within the buffer: a bounding window, then the distance test.
+  std::vector<std::pair<int, int>> buffer_cells(const Placement& at) const {
+    const auto& gt = series_.grid.geotransform;
+    double half_x, half_y;  // half-extent of the search box in CRS units
+    if (geographic_) {
+      half_y = buffer_m_ / (earth_radius_m * pi / 180) * 1.01;
+      half_x = half_y / std::max(1e-6, std::cos(at.y * pi / 180));
+    } else {
+      half_x = half_y = buffer_m_ / metres_per_unit_;
+    }
+    double cmin = 1e300, cmax = -1e300, rmin = 1e300, rmax = -1e300;
+    for (double dx : {-half_x, half_x})
+      for (double dy : {-half_y, half_y}) {
+        const double c = inverse_[0] + (at.x + dx) * inverse_[1] + (at.y + dy) * inverse_[2];
+        const double r = inverse_[3] + (at.x + dx) * inverse_[4] + (at.y + dy) * inverse_[5];
+        cmin = std::min(cmin, c), cmax = std::max(cmax, c), rmin = std::min(rmin, r), rmax = std::max(rmax, r);
+      }
+    std::vector<std::pair<int, int>> cells;
+    const int c0 = std::max(0, static_cast<int>(std::floor(cmin)) - 1);
+    const int c1 = std::min(series_.grid.width - 1, static_cast<int>(std::floor(cmax)) + 1);
+    const int r0 = std::max(0, static_cast<int>(std::floor(rmin)) - 1);
+    const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(rmax)) + 1);
+    for (int r = r0; r <= r1; ++r)
+      for (int c = c0; c <= c1; ++c) {
+        const double cx = gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2];
+        const double cy = gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5];
+        const double d = geographic_ ? haversine_m(at.x, at.y, cx, cy)
+                                     : std::hypot(cx - at.x, cy - at.y) * metres_per_unit_;
+        if (d <= buffer_m_) cells.emplace_back(c, r);
+      }
+    return cells;
+  }
+
+ private:
+  const CovariateSeries& series_;
+  double buffer_m_;
+  OGRSpatialReference layer_crs_;
+  std::unique_ptr<OGRCoordinateTransformation> transform_;
+  double inverse_[6]{};
+  bool geographic_ = false;
+  double metres_per_unit_ = 1;
+};
+
+void sample(Files& files, const CovariateSeries& s, const std::string& path, int band, const Placement& at,
+            Sampling sampling, ExtractedValue& out) {
+  const int w = s.grid.width, h = s.grid.height;
+  auto read_cells = [&](int col, int row, int cols, int rows) {
+    std::vector<Cell> cells(static_cast<std::size_t>(cols) * rows);
+    const auto v = files.read(path, band, col, row, cols, rows);
+    for (std::size_t i = 0; i < cells.size(); ++i) cells[i].value = v[i];
+    if (s.has_sd_and_flag) {
+      const auto sd = files.read(path, 2, col, row, cols, rows);
+      const auto flag = files.read(path, 3, col, row, cols, rows);
+      for (std::size_t i = 0; i < cells.size(); ++i) cells[i].sd = sd[i], cells[i].flag = flag[i];
+    }
+    return cells;
+  };
+  if (sampling == Sampling::nearest) {
+    const Cell c = read_cells(static_cast<int>(at.px), static_cast<int>(at.py), 1, 1)[0];
+    if (s.has_sd_and_flag && !std::isnan(c.flag)) out.flag = c.flag;
+    if (std::isnan(c.value)) {
+      out.reason = "nodata";
+      return;
+    }
+    out.value = c.value;
+    if (!std::isnan(c.sd)) out.sd = c.sd;
+    return;
+  }
+  const double u = at.px - 0.5, v = at.py - 0.5;
+  const int cu = static_cast<int>(std::floor(u)), rv = static_cast<int>(std::floor(v));
+  const double fx = u - cu, fy = v - rv;
+  const int cols[2] = {std::clamp(cu, 0, w - 1), std::clamp(cu + 1, 0, w - 1)};
+  const int rows[2] = {std::clamp(rv, 0, h - 1), std::clamp(rv + 1, 0, h - 1)};
+  const int col0 = cols[0], row0 = rows[0];
+  const auto cells = read_cells(col0, row0, cols[1] - col0 + 1, rows[1] - row0 + 1);
+  const int stride = cols[1] - col0 + 1;
+  double value = 0, sd = 0, flag = -1;
+  bool missing = false, sd_missing = false;
+  for (int j = 0; j < 2; ++j)
+    for (int i = 0; i < 2; ++i) {
+      const double weight = (i ? fx : 1 - fx) * (j ? fy : 1 - fy);
+      if (weight <= 0) continue;
+      const Cell& c = cells[(rows[j] - row0) * stride + (cols[i] - col0)];
+      if (std::isnan(c.value)) missing = true;
+      value += weight * c.value;
+      if (s.has_sd_and_flag) {
+        if (std::isnan(c.sd)) sd_missing = true;
+        sd += weight * c.sd;
+        if (!std::isnan(c.flag)) flag = std::max(flag, c.flag);
+      }
+    }
+  if (s.has_sd_and_flag && flag >= 0) out.flag = flag;
+  if (missing) {
+    out.reason = "nodata in the bilinear neighbourhood";
+    return;
+  }
+  out.value = value;
+  if (s.has_sd_and_flag && !sd_missing) out.sd = sd;
+}
+
+void buffer_mean(Files& files, const CovariateSeries& s, const std::string& path, int band,
+                 const std::vector<std::pair<int, int>>& cells, ExtractedValue& out) {
+  if (cells.empty()) return;
+  int c0 = cells.front().first, c1 = c0, r0 = cells.front().second, r1 = r0;
+  for (auto [c, r] : cells) c0 = std::min(c0, c), c1 = std::max(c1, c), r0 = std::min(r0, r), r1 = std::max(r1, r);
+  const int cols = c1 - c0 + 1, rows = r1 - r0 + 1;
+  const auto values = files.read(path, band, c0, r0, cols, rows);
+  std::vector<double> flags;
+  if (s.has_sd_and_flag) flags = files.read(path, 3, c0, r0, cols, rows);
+  double sum = 0;
+  for (auto [c, r] : cells) {
+    const std::size_t i = static_cast<std::size_t>(r - r0) * cols + (c - c0);
+    if (std::isnan(values[i])) continue;
+    sum += values[i];
+    ++out.buffer_cells;
+    if (!flags.empty() && flags[i] == 2) ++out.buffer_filled;
+  }
+  if (out.buffer_cells > 0) out.buffer_mean = sum / out.buffer_cells;
+}
+
+std::string csv_field(const std::string& s) {
+  if (s.find_first_of(",\"\n\r") == std::string::npos) return s;
+  std::string q = "\"";
+  for (char c : s) q += c == '"' ? std::string("\"\"") : std::string(1, c);
+  return q + "\"";
+}
+
+std::string number(const std::optional<double>& v) { return v ? fmt::format("{:.9g}", *v) : ""; }
+
+std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std::vector<std::string>& patterns) {
+  if (patterns.empty()) return all;
+  std::vector<CovariateSeries> chosen;
+  for (const std::string& p : patterns) {
+    bool any = false;
+    for (const CovariateSeries& s : all)
+      if (fnmatch(p.c_str(), s.name.c_str(), 0) == 0) {
+        any = true;
+        if (std::none_of(chosen.begin(), chosen.end(), [&](const CovariateSeries& c) { return c.name == s.name; }))
+          chosen.push_back(s);
+      }
+    if (!any) {
+      std::string names;
+      for (const CovariateSeries& s : all) names += (names.empty() ? "" : ", ") + s.name;
+      throw UsageError("--layers '" + p + "'", "matches no layer; the layers are: " + names);
+    }
+  }
+  return chosen;
+}
+
+std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
+  const PointsSource& src = request.points;
+  const bool csv = r.points.from_columns;
+  const std::string xname = csv ? src.x_column : "x", yname = csv ? src.y_column : "y";
+  std::string text = fmt::format("{},{},{},{}", csv_field(src.id_column), csv_field(xname), csv_field(yname),
+                                 csv_field(src.date_column.empty() ? "date" : src.date_column));
+  const bool buffer = request.buffer_metres > 0;
+  auto lag_count = [&](const CovariateSeries& s) { return s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size()); };
+  if (request.long_format) {
+    text += ",layer,lag,matched,value,sd,flag";
+    if (buffer) text += ",buffer_mean,buffer_cells,buffer_filled";
+    text += ",reason\n";
+  } else {
+    for (const CovariateSeries& s : r.series)
+      for (int l = 0; l <= lag_count(s); ++l) {
+        const std::string base = s.name + (l ? ".lag" + std::to_string(request.lags[l - 1]) : "");
+        text += "," + csv_field(base) + "," + csv_field(base + ".matched");
+        if (s.has_sd_and_flag) text += "," + csv_field(base + ".sd") + "," + csv_field(base + ".flag");
+        if (buffer) {
+          text += "," + csv_field(base + ".buffer_mean") + "," + csv_field(base + ".buffer_cells");
+          if (s.has_sd_and_flag) text += "," + csv_field(base + ".buffer_filled");
+        }
+        text += "," + csv_field(base + ".reason");
+      }
+    text += "\n";
+  }
+  auto point_fields = [&](const SurveyPoint& p) {
+    return fmt::format("{},{},{},{}", csv_field(p.id), p.has_coordinates ? fmt::format("{:.10g}", p.x) : "",
+                       p.has_coordinates ? fmt::format("{:.10g}", p.y) : "", csv_field(p.date_text));
+  };
+  std::size_t k = 0;
+  for (std::size_t i = 0; i < r.points.points.size(); ++i) {
+    const std::string pf = point_fields(r.points.points[i]);
+    if (!request.long_format) text += pf;
+    for (const CovariateSeries& s : r.series)
+      for (int l = 0; l <= lag_count(s); ++l) {
+        const ExtractedValue& v = r.values[k++];
+        const std::string cells = std::to_string(v.buffer_cells), filled = std::to_string(v.buffer_filled);
+        if (request.long_format) {
+          text += pf + "," + csv_field(s.name) + "," + std::to_string(v.lag) + "," + csv_field(v.matched) + "," +
+                  number(v.value) + "," + number(v.sd) + "," + number(v.flag);
+          if (buffer) text += "," + number(v.buffer_mean) + "," + cells + "," + (s.has_sd_and_flag ? filled : "");
+          text += "," + csv_field(v.reason) + "\n";
+        } else {
+          text += "," + number(v.value) + "," + csv_field(v.matched);
+          if (s.has_sd_and_flag) text += "," + number(v.sd) + "," + number(v.flag);
+          if (buffer) {
+            text += "," + number(v.buffer_mean) + "," + cells;
+            if (s.has_sd_and_flag) text += "," + filled;
+          }
+          text += "," + csv_field(v.reason);
+        }
+      }
+    if (!request.long_format) text += "\n";
+  }
+  return text;
+}
+
+}  // namespace
+
+ExtractResult run_extract(const ExtractRequest& request) {
+  if (request.buffer_metres < 0) throw UsageError("--buffer", "the radius must be positive (metres)");
+  for (int lag : request.lags)
+    if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
+  ExtractResult r;
+  r.points = read_survey_points(request.points);
+  r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);
+  OGRSpatialReference points_crs;
+  points_crs.importFromWkt(r.points.crs_wkt.c_str());
+  points_crs.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+  std::vector<std::unique_ptr<SeriesGeometry>> geometry;
+  for (const CovariateSeries& s : r.series)
+    geometry.push_back(std::make_unique<SeriesGeometry>(s, points_crs, request.buffer_metres));
+  Files files;
+  for (std::size_t i = 0; i < r.points.points.size(); ++i) {
+    const SurveyPoint& p = r.points.points[i];
+    for (std::size_t si = 0; si < r.series.size(); ++si) {
+      const CovariateSeries& s = r.series[si];
+      const Placement at = geometry[si]->place(p);
+      std::vector<std::pair<int, int>> cells;
+      if (at.inside && request.buffer_metres > 0) cells = geometry[si]->buffer_cells(at);
+      const int lags = s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size());
+      for (int l = 0; l <= lags; ++l) {
+        ExtractedValue v;
+        v.point = i;
+        v.series = si;
+        v.lag = l ? request.lags[l - 1] : 0;
+        const TimeMatch m = match_time(s, p, v.lag);
+        v.matched = m.label;
+        if (!at.inside) v.reason = at.reason;
+        else if (m.file < 0) v.reason = m.reason;
+        else {
+          const std::string& path = s.files[m.file].path;
+          sample(files, s, path, m.band, at, request.sampling, v);
+          if (request.buffer_metres > 0) {
+            buffer_mean(files, s, path, m.band, cells, v);
+            if (!v.value && !v.buffer_mean) v.reason += " (and no cell with a value in the buffer)";
+          }
+        }
+        if (!v.value) ++r.missing;
+        r.values.push_back(std::move(v));
+      }
+    }
+  }
+  if (!request.out.empty()) detail::write_text_atomically(request.out, write_table(request, r));
+  return r;
+}
+
+}  // namespace kalends

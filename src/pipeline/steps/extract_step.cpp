@@ -1,0 +1,71 @@
+// Step 'extract': covariates at survey points (kalends extract). `input` names the steps (or
+// inputs) whose layers are sampled; the table is `<step folder>/<table>` (default table.csv).
+#include <filesystem>
+
+#include "kalends/error.hpp"
+#include "kalends/extract.hpp"
+#include "pipeline/step_kind.hpp"
+
+namespace kalends::detail {
+
+StepKind extract_step_kind() {
+  using T = KeyType;
+  StepKind kind;
+  kind.name = "extract";
+  kind.keys = {{"input", T::texts, StepKey::Role::reads},
+               {"points", T::text, StepKey::Role::path},
+               {"table", T::text}, {"sampling", T::text}, {"buffer", T::number},
+               {"lags", T::text}, {"layers", T::texts}, {"long", T::boolean}, {"descriptors", T::boolean},
+               {"id_column", T::text}, {"x_column", T::text}, {"y_column", T::text},
+               {"date_column", T::text}, {"crs", T::text}};
+  kind.check = [](const StepOptions& o) {
+    if (!o.count("input")) return std::string("an 'extract' step needs 'input' (the steps to sample)");
+    if (!o.count("points")) return std::string("an 'extract' step needs 'points' (the survey table)");
+    return std::string();
+  };
+  kind.run = [](const StepContext& c) {
+    ExtractRequest r;
+    std::string rest = c.text("input");
+    while (!rest.empty()) {
+      const auto comma = rest.find(',');
+      const std::string name = rest.substr(0, comma);
+      const ResolvedInput in = c.resolve(name);
+      if (in.folder.empty())
+        throw UsageError(c.job_path, "an 'extract' step reads earlier steps, and '" + name + "' is a job input");
+      r.covariates.push_back(in.folder);
+      r.name_prefixes.push_back(name);  // layers are named as in 'kalends extract OUT/': "fill.ndvi"
+      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+    }
+    r.points.path = c.text("points");
+    r.points.id_column = c.text("id_column", r.points.id_column);
+    r.points.x_column = c.text("x_column", r.points.x_column);
+    r.points.y_column = c.text("y_column", r.points.y_column);
+    r.points.date_column = c.text("date_column", r.points.date_column);
+    r.points.crs = c.text("crs", r.points.crs);
+    const std::string sampling = c.text("sampling", "nearest");
+    if (sampling == "bilinear") r.sampling = Sampling::bilinear;
+    else if (sampling != "nearest") throw UsageError(c.job_path, "'sampling' is nearest or bilinear, not '" + sampling + "'");
+    r.buffer_metres = c.number("buffer", 0);
+    rest = c.text("lags");
+    while (!rest.empty()) {
+      const auto comma = rest.find(',');
+      r.lags.push_back(std::stoi(rest.substr(0, comma)));
+      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+    }
+    rest = c.text("layers");
+    while (!rest.empty()) {
+      const auto comma = rest.find(',');
+      r.layers.push_back(rest.substr(0, comma));
+      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+    }
+    r.long_format = c.flag("long");
+    r.include_descriptors = c.flag("descriptors");
+    std::filesystem::create_directories(c.folder);
+    r.out = (std::filesystem::path(c.folder) / c.text("table", "table.csv")).string();
+    run_extract(r);
+    return StepOutcome{1, 0, ""};
+  };
+  return kind;
+}
+
+}  // namespace kalends::detail

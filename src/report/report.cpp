@@ -1,0 +1,374 @@
+// kalends report: the page is built from what the folder holds. Layers come from
+// find_covariates (covariates.hpp); validation reports are the report.md files `kalends
+// validate` writes beside report.json; fill statistics are the fill-summary.json files; the
+// time series read each fill output's value, sd and flag at a pixel, the observation from the
+// file named in KALENDS_SOURCE, and the synoptic mean of a seasons step whose KALENDS_INPUT is
+// that fill folder.
+#include "kalends/report.hpp"
+
+#include <fmt/format.h>
+
+#include <cmath>
+#include <filesystem>
+#include <fstream>
+#include <map>
+#include <regex>
+#include <sstream>
+
+#include "io/gdal_session.hpp"
+#include "io/output_set.hpp"
+#include "kalends/covariates.hpp"
+#include "kalends/error.hpp"
+#include "report/colour_ramp.hpp"
+#include "report/quicklook.hpp"
+#include "report/time_series_plot.hpp"
+
+namespace kalends {
+
+namespace fs = std::filesystem;
+using namespace detail;
+
+namespace {
+
+std::string escape(const std::string& s) {
+  std::string out;
+  for (char c : s) {
+    switch (c) {
+      case '&': out += "&amp;"; break;
+      case '<': out += "&lt;"; break;
+      case '>': out += "&gt;"; break;
+      case '"': out += "&quot;"; break;
+      default: out += c;
+    }
+  }
+  return out;
+}
+
+std::string read_file(const fs::path& p) {
+  std::ifstream in(p);
+  std::stringstream s;
+  s << in.rdbuf();
+  return s.str();
+}
+
+std::string metadata_item(const std::string& path, const char* key) {
+  GDALDatasetUniquePtr ds = open_raster(path);
+  const char* v = ds->GetMetadataItem(key);
+  return v ? v : "";
+}
+
+std::string canonical_text(const fs::path& p) {
+  std::error_code ec;
+  const fs::path c = fs::weakly_canonical(p, ec);
+  return ec ? p.lexically_normal().string() : c.string();
+}
+
+std::string legend_svg(const Quicklook& q, const std::string& unit) {
+  std::string stops;
+  for (int i = 0; i <= 10; ++i)
+    stops += fmt::format("<stop offset=\"{}%\" stop-color=\"{}\"/>", i * 10, hex(viridis(i / 10.0)));
+  const std::string id = fmt::format("ramp{}", static_cast<const void*>(&q));
+  return fmt::format(
+      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"34\" class=\"legend\" role=\"img\">"
+      "<defs><linearGradient id=\"{0}\">{1}</linearGradient></defs>"
+      "<rect x=\"5\" y=\"2\" width=\"250\" height=\"12\" fill=\"url(#{0})\" stroke=\"#999\"/>"
+      "<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\"><text x=\"5\" y=\"28\">{2:.4g}</text>"
+      "<text x=\"130\" y=\"28\" text-anchor=\"middle\">{4}</text>"
+      "<text x=\"255\" y=\"28\" text-anchor=\"end\">{3:.4g}</text></g></svg>",
+      id, stops, q.low, q.high, escape(unit.empty() ? "(no unit)" : unit));
+}
+
+std::string flag_legend() {
+  const char* names[4] = {"observed, kept", "observed, rejected", "filled", "not filled"};
+  std::string out = "<div class=\"flag-legend\">";
+  for (int f = 0; f < 4; ++f)
+    out += fmt::format("<span><i style=\"background:{}\"></i>{} {}</span>", hex(flag_colour(f)), f, names[f]);
+  return out + "</div>";
+}
+
+std::string image(const Quicklook& q, const std::string& alt) {
+  return fmt::format("<img class=\"map\" width=\"{}\" height=\"{}\" alt=\"{}\" src=\"data:image/png;base64,{}\">",
+                     q.width, q.height, escape(alt), q.png_base64);
+}
+
+// Markdown tables, headings and paragraphs of a validate report, as HTML.
+std::string markdown_to_html(const std::string& md) {
+  std::string out, line;
+  std::istringstream in(md);
+  bool in_table = false, header_row = false;
+  auto cells = [](const std::string& row) {
+    std::vector<std::string> c;
+    std::string rest = row.substr(1);
+    while (!rest.empty()) {
+      const auto bar = rest.find('|');
+      std::string cell = rest.substr(0, bar);
+      const auto a = cell.find_first_not_of(' '), b = cell.find_last_not_of(' ');
+      c.push_back(a == std::string::npos ? "" : cell.substr(a, b - a + 1));
+      if (bar == std::string::npos) break;
+      rest = rest.substr(bar + 1);
+    }
+    if (!c.empty() && c.back().empty()) c.pop_back();
+    return c;
+  };
+  while (std::getline(in, line)) {
+    if (!line.empty() && line[0] == '|') {
+      if (!in_table) out += "<table>\n", in_table = true, header_row = true;
+      if (line.find("---") != std::string::npos) continue;
+      out += "<tr>";
+      for (const std::string& c : cells(line)) out += (header_row ? "<th>" : "<td>") + escape(c) + (header_row ? "</th>" : "</td>");
+      out += "</tr>\n";
+      header_row = false;
+      continue;
+    }
+    if (in_table) out += "</table>\n", in_table = false;
+    if (line.empty()) continue;
+    int level = 0;
+    while (level < int(line.size()) && line[level] == '#') ++level;
+    if (level > 0) out += fmt::format("<h4>{}</h4>\n", escape(line.substr(level + (line.size() > std::size_t(level) ? 1 : 0))));
+    else out += "<p>" + escape(line) + "</p>\n";
+  }
+  if (in_table) out += "</table>\n";
+  return out;
+}
+
+std::string fill_statistics_html(const fs::path& summary, const fs::path& root) {
+  const std::string text = read_file(summary);
+  static const std::regex pair(R"re("([a-z_]+)":\s*("[^"]*"|-?[0-9.eE+-]+|null))re");
+  std::map<std::string, std::string> v;
+  std::vector<std::string> order;
+  for (auto it = std::sregex_iterator(text.begin(), text.end(), pair); it != std::sregex_iterator(); ++it) {
+    std::string value = (*it)[2];
+    if (!value.empty() && value.front() == '"') value = value.substr(1, value.size() - 2);
+    if (!v.count((*it)[1])) order.push_back((*it)[1]);
+    v[(*it)[1]] = value;
+  }
+  const double total = v.count("pixel_dates") ? std::atof(v["pixel_dates"].c_str()) : 0;
+  std::string out = fmt::format("<h3>{}</h3>\n<table class=\"stats\"><tr><th>item</th><th>value</th><th>share of pixel-dates</th></tr>\n",
+                                escape(fs::relative(summary, root).string()));
+  for (const std::string& key : order) {
+    std::string share;
+    if (total > 0 && (key == "observed" || key == "missing" || key == "masked_by_qa" || key == "rejected" ||
+                      key == "filled" || key == "unfilled"))
+      share = fmt::format("{:.1f} %", 100 * std::atof(v[key].c_str()) / total);
+    out += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td></tr>\n", escape(key), escape(v[key]), share);
+  }
+  return out + "</table>\n";
+}
+
+// The pixels to plot: the user's, or `count` spread over the grid on a k x k lattice.
+std::vector<std::pair<int, int>> sample_pixels(const ReportRequest& r, const Grid& grid) {
+  if (!r.pixels.empty()) {
+    for (auto [c, row] : r.pixels)
+      if (c < 0 || row < 0 || c >= grid.width || row >= grid.height)
+        throw UsageError(fmt::format("--pixels {},{}", c, row),
+                         fmt::format("outside the {} x {} grid", grid.width, grid.height));
+    return r.pixels;
+  }
+  int k = 1;
+  while (k * k < r.samples) ++k;
+  std::vector<std::pair<int, int>> out;
+  for (int j = 0; j < k && int(out.size()) < r.samples; ++j)
+    for (int i = 0; i < k && int(out.size()) < r.samples; ++i)
+      out.emplace_back(int((i + 0.5) / k * grid.width), int((j + 0.5) / k * grid.height));
+  return out;
+}
+
+double read_pixel(GDALDataset& ds, int band, int col, int row) {
+  GDALRasterBand* b = ds.GetRasterBand(band);
+  if (!b) return NAN;
+  double v = NAN;
+  if (b->RasterIO(GF_Read, col, row, 1, 1, &v, 1, 1, GDT_Float64, 0, 0) != CE_None) return NAN;
+  int has_nodata = 0;
+  const double nodata = b->GetNoDataValue(&has_nodata);
+  if (std::isnan(v) || (has_nodata && v == nodata)) return NAN;
+  return v * b->GetScale() + b->GetOffset();
+}
+
+struct Plots {
+  std::string html;
+  int count = 0;
+};
+
+Plots time_series_html(const ReportRequest& request, const std::vector<CovariateSeries>& all) {
+  Plots plots;
+  for (const CovariateSeries& s : all) {
+    if (s.kind != SeriesKind::dated || !s.has_sd_and_flag || s.period) continue;
+    const std::string folder = canonical_text(fs::path(s.files.front().path).parent_path());
+    const CovariateSeries* synoptic = nullptr;
+    for (const CovariateSeries& other : all)
+      if (other.kind == SeriesKind::synoptic_period && other.name.size() >= 13 &&
+          other.name.compare(other.name.size() - 13, 13, "synoptic_mean") == 0) {
+        const std::string input = metadata_item(other.files.front().path, "KALENDS_INPUT");
+        // the seasons input is the fill folder itself or a pattern inside it
+        std::error_code ec;
+        const fs::path read = fs::is_directory(input, ec) ? fs::path(input) : fs::path(input).parent_path();
+        if (canonical_text(read) == folder) synoptic = &other;
+      }
+    const auto pixels = sample_pixels(request, s.grid);
+    std::vector<std::vector<PlotDate>> series(pixels.size());
+    std::vector<std::vector<double>> cycle(pixels.size());
+    if (synoptic) {
+      GDALDatasetUniquePtr ds = open_raster(synoptic->files.front().path);
+      for (std::size_t p = 0; p < pixels.size(); ++p)
+        for (int b = 1; b <= synoptic->period_count; ++b)
+          cycle[p].push_back(read_pixel(*ds, b, pixels[p].first, pixels[p].second));
+    }
+    int raw_missing = 0;
+    for (const SeriesFile& f : s.files) {
+      GDALDatasetUniquePtr ds = open_raster(f.path);
+      const char* source_item = ds->GetMetadataItem("KALENDS_SOURCE");
+      std::string source = source_item ? source_item : "";
+      int source_band = 1;
+      static const std::regex band_suffix(R"((.*) band (\d+))");
+      std::smatch m;
+      if (std::regex_match(source, m, band_suffix)) source = m[1], source_band = std::stoi(m[2]);
+      GDALDatasetUniquePtr raw;
+      if (!source.empty()) {
+        CPLErrorReset();
+        raw.reset(GDALDataset::Open(source.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      }
+      if (!raw) ++raw_missing;
+      for (std::size_t p = 0; p < pixels.size(); ++p) {
+        const auto [c, r] = pixels[p];
+        PlotDate d;
+        d.day = f.time.days();
+        d.value = read_pixel(*ds, 1, c, r);
+        d.sd = read_pixel(*ds, 2, c, r);
+        const double flag = read_pixel(*ds, 3, c, r);
+        d.flag = std::isnan(flag) ? 3 : int(flag);
+        d.raw = raw && (d.flag == 0 || d.flag == 1) ? read_pixel(*raw, source_band, c, r) : NAN;
+        d.synoptic = NAN;
+        if (synoptic) {
+          const int k = period_index(*synoptic->period, f.time.date());
+          if (k < int(cycle[p].size())) d.synoptic = cycle[p][k];
+        }
+        series[p].push_back(d);
+      }
+    }
+    plots.html += fmt::format("<h3>{}</h3>\n<p class=\"note\">{} dates{}{}.</p>\n", escape(s.name), s.files.size(),
+                              synoptic ? "; synoptic cycle from " + escape(synoptic->name) : "; no seasons step read this fill, so no synoptic cycle",
+                              raw_missing ? fmt::format("; the raw input of {} dates was not found, so their observations are not shown", raw_missing) : "");
+    for (std::size_t p = 0; p < pixels.size(); ++p) {
+      int kept = 0, rejected = 0, filled = 0;
+      for (const PlotDate& d : series[p]) kept += d.flag == 0, rejected += d.flag == 1, filled += d.flag == 2;
+      plots.html += fmt::format(
+          "<figure class=\"series\"><figcaption>pixel column {}, row {}: {} observations kept, {} rejected, {} filled</figcaption>\n{}</figure>\n",
+          pixels[p].first, pixels[p].second, kept, rejected, filled, time_series_svg(series[p], s.unit));
+      ++plots.count;
+    }
+  }
+  if (plots.count == 0) plots.html = "<p>No fill outputs (value, sd and flag bands with their source) in this folder.</p>\n";
+  return plots;
+}
+
+const char* style = R"css(
+body{font-family:sans-serif;margin:24px auto;max-width:1120px;color:#222;line-height:1.35}
+h1{font-size:1.5em}h2{border-bottom:2px solid #0072b2;padding-bottom:3px;margin-top:32px}
+h3{font-size:1.05em;margin:18px 0 6px}
+.maps{display:flex;flex-wrap:wrap;gap:18px}
+figure{margin:0}figure.map-card{width:340px}
+img.map{background:#d9d9d9;border:1px solid #999;image-rendering:pixelated;max-width:100%;height:auto}
+figcaption{font-size:.85em;margin:3px 0}
+.caution{border-left:4px solid #d55e00;background:#fff3e8;padding:6px 9px;font-size:.85em}
+.flag-legend span{display:inline-block;margin-right:10px;font-size:.8em}
+.flag-legend i{display:inline-block;width:11px;height:11px;margin-right:4px;vertical-align:middle;border:1px solid #666}
+table{border-collapse:collapse;font-size:.85em;margin:6px 0 14px}td,th{border:1px solid #ccc;padding:2px 7px;text-align:right}
+th{background:#eef3f8}td:first-child,th:first-child{text-align:left}
+.note{font-size:.85em;color:#555}svg.plot{border:1px solid #ddd;max-width:100%;height:auto}
+)css";
+
+}  // namespace
+
+ReportSummary run_report(const ReportRequest& request) {
+  const fs::path root(request.folder);
+  std::error_code ec;
+  if (!fs::is_directory(root, ec)) throw InputError(request.folder, "not a folder");
+  if (request.samples < 1 || request.samples > 64) throw UsageError("--samples", "between 1 and 64 pixels");
+  const std::vector<CovariateSeries> all = find_covariates({request.folder});
+  ReportSummary summary;
+  const std::string title = request.title.empty() ? canonical_text(root) : request.title;
+
+  // Maps
+  std::string maps;
+  for (const CovariateSeries& s : all) {
+    const SeriesFile& file = s.files.back();
+    std::vector<int> bands;
+    std::string shown;
+    switch (s.kind) {
+      case SeriesKind::dated: bands = {1}; shown = "value of " + file.time.label() + " (the last date)"; break;
+      case SeriesKind::year_period:
+        for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
+        shown = fmt::format("mean of the {} periods of {} (the last year)", s.period_count, file.year);
+        break;
+      case SeriesKind::synoptic_period:
+        for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
+        shown = fmt::format("mean of the {} periods", s.period_count);
+        break;
+      case SeriesKind::fixed: bands = {s.band}; shown = "band " + std::to_string(s.band); break;
+    }
+    const Quicklook q = continuous_quicklook(file.path, bands, request.map_size);
+    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {} files; ramp from the 2nd to the 98th percentile</figcaption>{}",
+                        image(q, s.name), escape(s.name), escape(s.description), escape(shown), s.files.size(),
+                        legend_svg(q, s.unit));
+    if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
+    maps += "</figure>\n";
+    ++summary.maps;
+    if (s.has_sd_and_flag) {
+      const Quicklook f = flag_quicklook(file.path, 3, request.map_size);
+      maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{} flag</b>: {}</figcaption>{}</figure>\n",
+                          image(f, s.name + " flag"), escape(s.name), escape("flags of " + file.time.label()), flag_legend());
+      ++summary.maps;
+    }
+  }
+
+  // Validation reports and fill statistics
+  std::string validation, statistics;
+  std::vector<fs::path> found;
+  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
+    const std::string name = it->path().filename().string();
+    if (!name.empty() && name.front() == '.') {
+      if (it->is_directory()) it.disable_recursion_pending();
+      continue;
+    }
+    if (it->is_regular_file()) found.push_back(it->path());
+  }
+  std::sort(found.begin(), found.end());
+  for (const fs::path& p : found) {
+    if (p.filename() == "report.md" && fs::exists(p.parent_path() / "report.json") &&
+        read_file(p.parent_path() / "report.json").find("\"scores\"") != std::string::npos) {
+      validation += fmt::format("<h3>{}</h3>\n", escape(fs::relative(p, root).string())) + markdown_to_html(read_file(p));
+      ++summary.validation_reports;
+    }
+    if (p.filename() == "fill-summary.json") {
+      statistics += fill_statistics_html(p, root);
+      ++summary.fill_summaries;
+    }
+  }
+  if (validation.empty())
+    validation = "<p>No validation report in this folder (run <code>kalends validate STACK --out DIR</code> with DIR "
+                 "inside it).</p>\n";
+  if (statistics.empty()) statistics = "<p>No fill summary in this folder.</p>\n";
+
+  const Plots plots = time_series_html(request, all);
+  summary.plots = plots.count;
+
+  std::string html = fmt::format(
+      "<!DOCTYPE html>\n<html lang=\"en\">\n<head><meta charset=\"utf-8\"><title>kalends report: {0}</title>\n"
+      "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
+      "{3} layers.</p></header>\n",
+      escape(title), style, KALENDS_VERSION, all.size());
+  html += "<section id=\"maps\"><h2>Layers</h2>\n<div class=\"maps\">\n" + maps + "</div></section>\n";
+  html += "<section id=\"validation\"><h2>Validation</h2>\n" + validation + "</section>\n";
+  html += "<section id=\"fill-statistics\"><h2>Fill statistics</h2>\n" + statistics + "</section>\n";
+  html += "<section id=\"time-series\"><h2>Time series of sample pixels</h2>\n"
+          "<p class=\"note\">Observations kept (flag 0) and rejected as outliers (flag 1) are the raw input values; "
+          "the curve is the filled value with a band of &#177;1 standard error; the dashed line is the synoptic "
+          "mean of each date's period. Observations removed by the QA rule are not shown.</p>\n" +
+          plots.html + "</section>\n";
+  html += "</body>\n</html>\n";
+  write_text_atomically(request.html, html);
+  summary.bytes = html.size();
+  return summary;
+}
+
+}  // namespace kalends

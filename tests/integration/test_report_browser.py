@@ -1,0 +1,112 @@
+#!/usr/bin/python3
+"""kalends report in a real browser, on the real Alaska NDVI stack.
+
+Data: ../shared/data/alaska-ndvi/masked20 (MODIS/Terra MOD13A1 V006 NDVI, Didan 2015, with
+extra cloud-pattern gaps; see the data README). The stack is filled (whittaker), its seasons
+derived on 16-day periods, and validated against withheld values; then `kalends report` writes
+the page. Debian's headless Chromium opens it with no network: a copy of the page with a small
+probe script added (only here, never in the report) records how many images decoded and which
+sections exist; a screenshot must show a page that is not blank. Skipped, with the reason, only
+where chromium is not installed (tools/setup.sh installs it).
+"""
+import glob
+import os
+import re
+import shutil
+import subprocess
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+SECTIONS = ["maps", "validation", "fill-statistics", "time-series"]
+PROBE = """<script>
+window.addEventListener('load', function () {
+  var images = Array.prototype.slice.call(document.images);
+  var loaded = images.filter(function (i) { return i.complete && i.naturalWidth > 0; }).length;
+  var sections = Array.prototype.map.call(document.querySelectorAll('section'), function (s) { return s.id; });
+  document.body.setAttribute('data-probe', loaded + '/' + images.length + ';' + sections.join(',') + ';' +
+                             document.querySelectorAll('svg.plot').length);
+});
+</script>"""
+
+
+def chromium():
+    for name in ("chromium", "chromium-browser"):
+        path = shutil.which(name)
+        if path:
+            return path
+    raise unittest.SkipTest("chromium is not installed (tools/setup.sh installs Debian's chromium)")
+
+
+def browser(args, timeout=120):
+    return subprocess.run([chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--hide-scrollbars",
+                           "--no-first-run", "--disable-extensions", "--disable-background-networking"] + args,
+                          capture_output=True, text=True, timeout=timeout)
+
+
+class ReportInBrowser(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        stack = os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "ndvi_*.tif")
+        cls.out = os.path.join(cls.tmp, "out")
+        for step in (["fill", stack, "--out", os.path.join(cls.out, "fill"), "--lambda", "auto"],
+                     ["seasons", os.path.join(cls.out, "fill"), "--out", os.path.join(cls.out, "seasons"),
+                      "--period", "16d"],
+                     ["validate", stack, "--out", os.path.join(cls.out, "validate"), "--methods", "whittaker"]):
+            done = kt.run_kalends(["-q"] + step)
+            assert done.returncode == 0, "%s: %s" % (step[0], done.stderr)
+        cls.html = os.path.join(cls.tmp, "report.html")
+        done = kt.run_kalends(["report", cls.out, "--html", cls.html, "--pixels", "10,10;50,60;90,30"])
+        assert done.returncode == 0, done.stderr
+        cls.stdout = done.stdout
+        with open(cls.html) as f:
+            cls.page = f.read()
+
+    def test_page_is_self_contained(self):
+        self.assertNotRegex(self.page, r'(src|href)="(https?:)?//')
+        self.assertNotIn("<script", self.page)
+        images = re.findall(r'<img [^>]*src="data:image/png;base64,', self.page)
+        self.assertGreaterEqual(len(images), 4)
+        # every section, the validation table and the fill statistics are there
+        for section in SECTIONS:
+            self.assertIn('<section id="%s">' % section, self.page)
+        self.assertTrue("validate/report.md" in self.page, "no validation report")
+        self.assertIn("whittaker", self.page.split('id="validation"')[1].split("</section>")[0])
+        self.assertTrue("fill/fill-summary.json" in self.page, "no fill statistics")
+        self.assertEqual(self.page.count('<svg xmlns="http://www.w3.org/2000/svg" width="760"'), 3)
+        self.assertTrue("synoptic cycle from seasons.ndvi_synoptic_mean" in self.page, "no synoptic cycle")
+
+    def test_every_image_loads_and_every_section_shows_in_chromium(self):
+        probe = os.path.join(self.tmp, "probe.html")
+        with open(probe, "w") as f:
+            f.write(self.page.replace("</body>", PROBE + "</body>"))
+        done = browser(["--virtual-time-budget=10000", "--dump-dom", "file://" + probe])
+        self.assertEqual(done.returncode, 0, done.stderr[-2000:])
+        found = re.search(r'data-probe="(\d+)/(\d+);([^;"]*);(\d+)"', done.stdout)
+        self.assertIsNotNone(found, "the probe did not run: " + done.stdout[:500])
+        loaded, total, sections, plots = int(found[1]), int(found[2]), found[3].split(","), int(found[4])
+        print("\nchromium: %d of %d images decoded; sections %s; %d plots" % (loaded, total, sections, plots))
+        self.assertGreaterEqual(total, 4)
+        self.assertEqual(loaded, total)
+        self.assertEqual(sections, SECTIONS)
+        self.assertEqual(plots, 3)
+
+    def test_screenshot_shows_a_page(self):
+        shot = os.path.join(self.tmp, "shot.png")
+        done = browser(["--window-size=1200,1400", "--screenshot=" + shot, "file://" + self.html])
+        self.assertEqual(done.returncode, 0, done.stderr[-2000:])
+        ds = kt.gdal().Open(shot)
+        self.assertEqual((ds.RasterXSize, ds.RasterYSize), (1200, 1400))
+        pixels = ds.ReadAsArray()[:3].astype(float)
+        # a blank or failed page is one colour; the maps make many
+        self.assertGreater(pixels.std(), 20)
+        self.assertGreater(len(np.unique(pixels.reshape(3, -1), axis=1)[0]), 50)
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
