@@ -41,7 +41,10 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
       for (const std::string& s : plan.split_steps) split += (split.empty() ? "" : ", ") + s;
       fmt::print("  split by rows: {}\n", split.empty() ? "(none)" : split);
       for (const auto& [id, why] : plan.whole_steps) fmt::print("  at --finalize: {} ({})\n", id, why);
-      for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
+      if (plan.split_steps.empty())
+        fmt::print("  nothing to split: every step runs in --finalize, as in a plain kalends run on one machine\n");
+      else
+        for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
       fmt::print("submit with:\n");
     }
     fmt::print("{}{}\n", plan.sbatch.substr(0, 7), "--export=ALL,KALENDS_BIN=" + own_path() + " " + plan.sbatch.substr(7));
