@@ -11,9 +11,9 @@
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
-#include <glob.h>
 #include <map>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
@@ -49,12 +49,8 @@ std::vector<Source> sources_of(const std::vector<std::string>& inputs) {
       if (found.empty()) throw InputError(input, "holds no raster (.tif or .vrt)");
       sources.insert(sources.end(), found.begin(), found.end());
     } else if (input.find_first_of("*?[") != std::string::npos) {
-      glob_t g{};
-      if (::glob(input.c_str(), 0, nullptr, &g) == 0)
-        for (std::size_t i = 0; i < g.gl_pathc; ++i)
-          sources.push_back({g.gl_pathv[i], fs::path(g.gl_pathv[i]).filename().replace_extension(".tif").string()});
-      globfree(&g);
-      if (sources.empty()) throw InputError(input, "no file matches this pattern");
+      for (const std::string& path : detail::expand_glob(input))
+        sources.push_back({path, fs::path(path).filename().replace_extension(".tif").string()});
     } else {
       if (!fs::exists(input)) throw InputError(input, "no such file or folder");
       sources.push_back({input, fs::path(input).filename().replace_extension(".tif").string()});

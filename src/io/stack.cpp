@@ -9,18 +9,13 @@
 #include <filesystem>
 #include <map>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends {
 
-namespace {
-
-namespace fs = std::filesystem;
-
-bool has_glob_characters(const std::string& s) {
-  return s.find_first_of("*?[") != std::string::npos;
-}
+namespace detail {
 
 std::vector<std::string> expand_glob(const std::string& pattern) {
   glob_t result{};
@@ -35,6 +30,17 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   std::sort(paths.begin(), paths.end());
   return paths;
 }
+
+}  // namespace detail
+
+namespace {
+
+namespace fs = std::filesystem;
+
+bool has_glob_characters(const std::string& s) {
+  return s.find_first_of("*?[") != std::string::npos;
+}
+
 
 Grid grid_of(GDALDataset& dataset) {
   Grid grid;
@@ -176,7 +182,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   const bool pattern = has_glob_characters(input) && !fs::exists(input);
   if (pattern) {
     bool first = true;
-    for (const std::string& path : expand_glob(input)) {
+    for (const std::string& path : detail::expand_glob(input)) {
       if (std::find(rules.exclude.begin(), rules.exclude.end(), path) != rules.exclude.end()) continue;
       auto time = date_from_name(path);
       if (!time) time = rules.date;

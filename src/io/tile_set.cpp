@@ -4,7 +4,6 @@
 #include "kalends/tiles.hpp"
 
 #include <cpl_string.h>
-#include <glob.h>
 #include <ogr_spatialref.h>
 
 #include <algorithm>
@@ -16,6 +15,7 @@
 #include <regex>
 #include <set>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
@@ -99,6 +99,19 @@ std::string xml(const std::string& text) {
   return s;
 }
 
+// A <Metadata> element of the default domain's items, or "" when there are none.
+std::string metadata_xml(char** items, const std::string& indent) {
+  if (!items || !items[0]) return "";
+  std::string s = indent + "<Metadata>\n";
+  for (int i = 0; items[i]; ++i) {
+    char* key = nullptr;
+    const char* value = CPLParseNameValue(items[i], &key);
+    if (key && value) s += indent + "  <MDI key=\"" + xml(key) + "\">" + xml(value) + "</MDI>\n";
+    CPLFree(key);
+  }
+  return s + indent + "</Metadata>\n";
+}
+
 // VRT text placing `sources` in `mosaic`; bands, types, nodata, scale, offset, descriptions,
 // units and dataset metadata are those of the first source. Source paths are written relative to
 // the VRT so a folder can be moved as a whole.
@@ -109,16 +122,7 @@ std::string vrt_text(const Grid& mosaic, const std::vector<Placed>& sources, con
   const auto& t = mosaic.geotransform;
   s += fmt::format("  <GeoTransform>{:.17g}, {:.17g}, {:.17g}, {:.17g}, {:.17g}, {:.17g}</GeoTransform>\n", t[0],
                    t[1], t[2], t[3], t[4], t[5]);
-  if (char** md = first->GetMetadata()) {
-    s += "  <Metadata>\n";
-    for (int i = 0; md[i]; ++i) {
-      char* key = nullptr;
-      const char* value = CPLParseNameValue(md[i], &key);
-      if (key && value) s += "    <MDI key=\"" + xml(key) + "\">" + xml(value) + "</MDI>\n";
-      CPLFree(key);
-    }
-    s += "  </Metadata>\n";
-  }
+  s += metadata_xml(first->GetMetadata(), "  ");
   const fs::path vrt_folder = fs::absolute(vrt_path).parent_path();
   for (int b = 1; b <= first->GetRasterCount(); ++b) {
     GDALRasterBand* band = first->GetRasterBand(b);
@@ -133,16 +137,7 @@ std::string vrt_text(const Grid& mosaic, const std::vector<Placed>& sources, con
     if (has && offset != 0) s += fmt::format("    <Offset>{:.17g}</Offset>\n", offset);
     const double scale = band->GetScale(&has);
     if (has && scale != 1) s += fmt::format("    <Scale>{:.17g}</Scale>\n", scale);
-    if (char** md = band->GetMetadata(); md && md[0]) {
-      s += "    <Metadata>\n";
-      for (int i = 0; md[i]; ++i) {
-        char* key = nullptr;
-        const char* value = CPLParseNameValue(md[i], &key);
-        if (key && value) s += "      <MDI key=\"" + xml(key) + "\">" + xml(value) + "</MDI>\n";
-        CPLFree(key);
-      }
-      s += "    </Metadata>\n";
-    }
+    s += metadata_xml(band->GetMetadata(), "    ");
     for (const Placed& p : sources) {
       const std::string relative = fs::absolute(p.path).lexically_relative(vrt_folder).string();
       const Window& w = p.window;
@@ -180,16 +175,6 @@ bool overlap_agrees(const std::string& a, const Window& wa, const std::string& b
   return true;
 }
 
-std::vector<std::string> glob_files(const std::string& pattern) {
-  glob_t g{};
-  std::vector<std::string> files;
-  if (::glob(pattern.c_str(), 0, nullptr, &g) == 0)
-    for (std::size_t i = 0; i < g.gl_pathc; ++i) files.emplace_back(g.gl_pathv[i]);
-  globfree(&g);
-  std::sort(files.begin(), files.end());
-  return files;
-}
-
 // Replaces the VRTs in `folder` by `wanted` (name -> text): writes new and changed ones,
 // removes those no longer wanted.
 void publish_vrts(const std::string& folder, const std::map<std::string, std::string>& wanted) {
@@ -221,8 +206,7 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   detail::start_gdal();
   if (tile_field.find("{tile}") == std::string::npos)
     throw UsageError("--tiles '" + tile_field + "'", "needs a {tile} field, e.g. 'tiles/{tile}/'");
-  const std::vector<std::string> files = glob_files(pattern);
-  if (files.empty()) throw InputError(pattern, "no file matches this pattern");
+  const std::vector<std::string> files = detail::expand_glob(pattern);
   std::map<std::string, Tile> by_name;
   for (const std::string& path : files) {
     const std::string name = tile_name_in(path, tile_field);

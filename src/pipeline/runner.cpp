@@ -9,6 +9,7 @@
 #include <chrono>
 #include <filesystem>
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <fstream>
 #include <iterator>
 #include <set>
@@ -131,6 +132,22 @@ void remove_partials(const std::string& folder) {
         name.compare(name.size() - 8, 8, ".partial") == 0)
       fs::remove(entry.path(), ec);
   }
+}
+
+// Whether every output a step recorded is still there.
+bool outputs_exist(const detail::StepRecord& record) {
+  return std::all_of(record.outputs.begin(), record.outputs.end(), [](const std::string& p) { return fs::exists(p); });
+}
+
+// Input files added, changed or removed between two runs (path -> checksum).
+std::set<std::string> changed_files(const std::map<std::string, std::string>& before,
+                                    const std::map<std::string, std::string>& now) {
+  std::set<std::string> changed;
+  for (const auto& [f, sum] : now)
+    if (auto it = before.find(f); it == before.end() || it->second != sum) changed.insert(f);
+  for (const auto& [f, sum] : before)
+    if (!now.count(f)) changed.insert(f);
+  return changed;
 }
 
 std::vector<std::string> outputs_in(const std::string& folder) {
@@ -259,8 +276,7 @@ class Runner {
         s.detail = record->finished + " UTC: " + record->message;
       } else {
         s.outputs = int(record->outputs.size());
-        const bool complete = std::all_of(record->outputs.begin(), record->outputs.end(),
-                                          [](const std::string& p) { return fs::exists(p); });
+        const bool complete = outputs_exist(*record);
         if (record->fingerprint == fingerprint && complete) {
           s.state = "done";
           s.detail = fmt::format("{} UTC, {:.1f} s", record->finished, record->seconds);
@@ -331,8 +347,7 @@ class Runner {
       if (!record) why = "never run";
       else if (record->status == "failed") why = "failed";
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(record->fingerprint, fingerprint_of(step));
-      else if (!std::all_of(record->outputs.begin(), record->outputs.end(), [](const std::string& p) { return fs::exists(p); }))
-        why = "outputs missing";
+      else if (!outputs_exist(*record)) why = "outputs missing";
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
       reasons.insert(why);
     }
@@ -366,8 +381,7 @@ class Runner {
   void stitch_step(const JobStep& step, const detail::PlannedStep& planned, StepReport& report) {
     const std::string fingerprint = fingerprint_of(step);
     const auto record = db_->step(step.id);
-    const bool complete = record && std::all_of(record->outputs.begin(), record->outputs.end(),
-                                                [](const std::string& p) { return fs::exists(p); });
+    const bool complete = record && outputs_exist(*record);
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";
@@ -462,16 +476,9 @@ class Runner {
     return files;
   }
 
-  // With a reach, the years that files added, changed or removed since the last run reach;
+  // With a reach, the years that the files added, changed or removed since the last run reach;
   // nothing when that cannot be told (a file without a date in its name, a multi-band file).
-  std::optional<std::vector<int>> years_reached(const std::map<std::string, std::string>& before,
-                                                const std::map<std::string, std::string>& now,
-                                                double reach) const {
-    std::set<std::string> changed;
-    for (const auto& [f, sum] : now)
-      if (auto it = before.find(f); it == before.end() || it->second != sum) changed.insert(f);
-    for (const auto& [f, sum] : before)
-      if (!now.count(f)) changed.insert(f);
+  std::optional<std::vector<int>> years_reached(const std::set<std::string>& changed, double reach) const {
     std::set<int> years;
     for (const std::string& f : changed) {
       const auto date = date_from_name(f);
@@ -524,8 +531,7 @@ class Runner {
   void run_step(const JobStep& step, StepReport& report) {
     const std::string fingerprint = fingerprint_of(step);
     const auto record = db_->step(step.id);
-    const bool complete = record && std::all_of(record->outputs.begin(), record->outputs.end(),
-                                                [](const std::string& p) { return fs::exists(p); });
+    const bool complete = record && outputs_exist(*record);
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";
@@ -543,46 +549,42 @@ class Runner {
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
     const double reach =
         kind && kind->years_by_reach && step.options.count("reach") ? std::stod(step.options.at("reach")) : 0;
-    if (reach > 0 && record && record->status == "done" && complete && !record->inputs.empty() &&
-        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
-      only_years_ = years_reached(record->inputs, inputs_of(step), reach);
-      if (only_years_) {
-        std::string list;
-        for (int y : *only_years_) list += (list.empty() ? "" : ", ") + std::to_string(y);
-        report.reason += "; recomputing the years it reaches: " + list;
-      }
+    // A rerun with the same parameters after a complete run may redo only part of the step.
+    const bool same_parameters = record && record->status == "done" && complete &&
+                                 record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16);
+    const bool tiled = step.options.count("tiles") != 0;
+    const bool compared = same_parameters && !record->inputs.empty() && (reach > 0 || tiled);
+    std::map<std::string, std::string> now;
+    std::set<std::string> changed;
+    if (compared) {
+      now = inputs_of(step);
+      changed = changed_files(record->inputs, now);
+    }
+    if (reach > 0 && compared) {
+      only_years_ = years_reached(changed, reach);
+      if (only_years_) report.reason += fmt::format("; recomputing the years it reaches: {}", fmt::join(*only_years_, ", "));
     }
     only_tiles_.reset();
-    if (step.options.count("tiles") && record && record->status == "done" && complete && !record->inputs.empty() &&
-        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+    if (tiled && compared) {
       // A tile set: only the tiles whose files changed (the fill adds the neighbours its halo
       // reaches) - unless the set of dates changed, which changes every tile's time grid.
-      const auto now = inputs_of(step);
       std::set<std::string> tiles, dates_before, dates_now;
-      bool known = true;
       for (const auto& [f, sum] : record->inputs)
         if (const auto d = date_from_name(f)) dates_before.insert(d->label());
       for (const auto& [f, sum] : now)
         if (const auto d = date_from_name(f)) dates_now.insert(d->label());
-      if (dates_before != dates_now) known = false;
-      auto note = [&](const std::string& f) {
+      bool known = dates_before == dates_now;
+      for (const std::string& f : changed) {
         const std::string tile = tile_name_in(f, step.options.at("tiles"));
         if (tile.empty()) known = false;
         tiles.insert(tile);
-      };
-      for (const auto& [f, sum] : now)
-        if (auto it = record->inputs.find(f); it == record->inputs.end() || it->second != sum) note(f);
-      for (const auto& [f, sum] : record->inputs)
-        if (!now.count(f)) note(f);
+      }
       if (known && !tiles.empty()) {
         only_tiles_ = std::vector<std::string>(tiles.begin(), tiles.end());
-        std::string list;
-        for (const std::string& t : *only_tiles_) list += (list.empty() ? "" : ", ") + t;
-        report.reason += "; tiles with new data: " + list;
+        report.reason += fmt::format("; tiles with new data: {}", fmt::join(*only_tiles_, ", "));
       }
     }
-    if (kind && kind->years_from_inputs && record && record->status == "done" && complete &&
-        record->fingerprint.substr(0, 16) == fingerprint.substr(0, 16)) {
+    if (kind && kind->years_from_inputs && same_parameters) {
       // Only earlier steps that redid some years: those years, and the next (its first period
       // may take a composite from the end of a redone year).
       std::set<int> years;
@@ -597,9 +599,7 @@ class Runner {
       }
       if (known && !years.empty()) {
         only_years_ = std::vector<int>(years.begin(), years.end());
-        std::string list;
-        for (int y : *only_years_) list += (list.empty() ? "" : ", ") + std::to_string(y);
-        report.reason += "; redoing the year layers of " + list + " and the synoptic layers";
+        report.reason += fmt::format("; redoing the year layers of {} and the synoptic layers", fmt::join(*only_years_, ", "));
       }
     }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
