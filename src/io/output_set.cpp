@@ -184,6 +184,17 @@ void OutputSet::write(std::size_t index, const Window& input_core, std::span<con
     }
 }
 
+void OutputSet::write_all(const Window& core, const std::vector<std::vector<float>>& bands,
+                          std::vector<float>& scratch) {
+  std::vector<const float*> planes;
+  std::size_t next = 0;
+  for (std::size_t f = 0; f < files_.size(); ++f) {
+    planes.clear();
+    for (std::size_t b = 0; b < files_[f]->spec.bands.size(); ++b) planes.push_back(bands.at(next++).data());
+    write(f, core, planes, scratch);
+  }
+}
+
 void crop_raster(const std::string& source, const Window& window, const std::string& path) {
   start_gdal();
   GDALDatasetUniquePtr in(GDALDataset::Open(source.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));

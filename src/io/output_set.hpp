@@ -60,6 +60,10 @@ class OutputSet {
     write(index, core, planes, scratch);
   }
 
+  /// Writes `core` of every output from `bands`: the bands of all files, file after file, each
+  /// a plane of core.pixels() values.
+  void write_all(const Window& core, const std::vector<std::vector<float>>& bands, std::vector<float>& scratch);
+
   /// Closes, syncs and renames every file to its final name. With keep_unchanged, a file whose
   /// final name already holds the same pixels, band descriptions and metadata is left as it
   /// is (same bytes, same modification time) and the new copy is dropped.

@@ -255,13 +255,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       band(miss, 1)[p] = float(explained);
       band(miss, 2)[p] = float(1.0 - explained);
     }
-    std::vector<const float*> planes;
-    for (std::size_t f = 0; f < outputs.size(); ++f) {
-      const std::size_t count = (f + 1 < outputs.size() ? first_band[f + 1] : total_bands) - first_band[f];
-      planes.clear();
-      for (std::size_t b = 0; b < count; ++b) planes.push_back(w.bands[first_band[f] + b].data());
-      outputs.write(f, core, planes, w.tile);
-    }
+    outputs.write_all(core, w.bands, w.tile);
   };
   detail::run_blocks(plan, threads, workers, process);
   outputs.set_keep_unchanged(request.keep_unchanged);

@@ -308,14 +308,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
       put(synoptic_summary, cycle);
       if (std::isfinite(cycle.count)) w.count_sum += cycle.count, ++w.count_pixels;
     }
-    std::vector<const float*> planes;
-    for (std::size_t f = 0; f < outputs.size(); ++f) {
-      const std::size_t count =
-          (f + 1 < outputs.size() ? first_band[f + 1] : total_bands) - first_band[f];
-      planes.clear();
-      for (std::size_t b = 0; b < count; ++b) planes.push_back(w.bands[first_band[f] + b].data());
-      outputs.write(f, core, planes, w.tile);
-    }
+    outputs.write_all(core, w.bands, w.tile);
   };
   detail::run_blocks(plan, threads, workers, process);
   std::int64_t implausible = 0, finite = 0, count_pixels = 0;
