@@ -182,15 +182,8 @@ Job read_job(const std::string& path) {
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {
         // a texts key names several inputs or steps (joined by ',' above)
-        std::vector<std::string> names;
-        std::string rest = step.options[k];
-        if (found->type != Type::texts) names.push_back(rest);
-        else
-          while (!rest.empty()) {
-            const auto comma = rest.find(',');
-            names.push_back(rest.substr(0, comma));
-            rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
-          }
+        const std::vector<std::string> names =
+            found->type == Type::texts ? split_list(step.options[k]) : std::vector<std::string>{step.options[k]};
         for (const std::string& name : names) {
           if (!known.count(name))
             fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");

@@ -52,6 +52,7 @@ struct StepContext {
   int integer(const char* key, int fallback) const;
   bool flag(const char* key) const { return text(key) == "true"; }
   std::pair<double, double> pair(const char* key) const;  // "a,b"
+  std::vector<std::string> list(const char* key) const;    // a texts key's items
 };
 
 struct StepOutcome {
@@ -83,6 +84,9 @@ struct StepKind {
                      const std::string& path, int width, int height)>
       merge_file;
 };
+
+/// The items of a texts value as the job reader stores it ("a,b,c"); none for "".
+std::vector<std::string> split_list(const std::string& text);
 
 const std::vector<StepKind>& step_kinds();
 const StepKind* find_step_kind(const std::string& name);

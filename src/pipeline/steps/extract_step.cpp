@@ -25,16 +25,12 @@ StepKind extract_step_kind() {
   };
   kind.run = [](const StepContext& c) {
     ExtractRequest r;
-    std::string rest = c.text("input");
-    while (!rest.empty()) {
-      const auto comma = rest.find(',');
-      const std::string name = rest.substr(0, comma);
+    for (const std::string& name : c.list("input")) {
       const ResolvedInput in = c.resolve(name);
       if (in.folder.empty())
         throw UsageError(c.job_path, "an 'extract' step reads earlier steps, and '" + name + "' is a job input");
       r.covariates.push_back(in.folder);
       r.name_prefixes.push_back(name);  // layers are named as in 'kalends extract OUT/': "fill.ndvi"
-      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
     }
     r.points.path = c.text("points");
     r.points.id_column = c.text("id_column", r.points.id_column);
@@ -46,18 +42,8 @@ StepKind extract_step_kind() {
     if (sampling == "bilinear") r.sampling = Sampling::bilinear;
     else if (sampling != "nearest") throw UsageError(c.job_path, "'sampling' is nearest or bilinear, not '" + sampling + "'");
     r.buffer_metres = c.number("buffer", 0);
-    rest = c.text("lags");
-    while (!rest.empty()) {
-      const auto comma = rest.find(',');
-      r.lags.push_back(std::stoi(rest.substr(0, comma)));
-      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
-    }
-    rest = c.text("layers");
-    while (!rest.empty()) {
-      const auto comma = rest.find(',');
-      r.layers.push_back(rest.substr(0, comma));
-      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
-    }
+    for (const std::string& lag : c.list("lags")) r.lags.push_back(std::stoi(lag));
+    r.layers = c.list("layers");
     r.long_format = c.flag("long");
     r.include_descriptors = c.flag("descriptors");
     std::filesystem::create_directories(c.folder);

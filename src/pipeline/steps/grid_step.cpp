@@ -19,11 +19,7 @@ StepKind grid_step_kind() {
   };
   kind.run = [](const StepContext& c) {
     StepOutcome outcome;
-    const std::string layers = c.text("layers");
-    for (std::size_t start = 0; start <= layers.size();) {
-      const std::size_t comma = std::min(layers.find(',', start), layers.size());
-      const std::string name = layers.substr(start, comma - start);
-      start = comma + 1;
+    for (const std::string& name : c.list("layers")) {
       const ResolvedInput in = c.resolve(name);
       StudyGridRequest r;
       r.inputs = {in.folder.empty() ? in.pattern : in.folder};
@@ -32,12 +28,7 @@ StepKind grid_step_kind() {
       r.resolution = c.number("resolution", 0);
       if (c.has("extent")) {
         std::vector<double> extent;
-        const std::string e = c.text("extent");
-        for (std::size_t s = 0; s <= e.size();) {
-          const std::size_t k = std::min(e.find(',', s), e.size());
-          extent.push_back(std::stod(e.substr(s, k - s)));
-          s = k + 1;
-        }
+        for (const std::string& v : c.list("extent")) extent.push_back(std::stod(v));
         r.extent = extent;
       }
       r.clip = c.text("clip");

@@ -26,13 +26,9 @@ StepKind report_step_kind() {
     r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
              : html.is_absolute() ? html.string()
                                   : (std::filesystem::path(c.job_path).parent_path() / html).string();
-    std::string rest = c.text("pixels");  // "column row" pairs, e.g. ["100 200", "40 80"]
-    while (!rest.empty()) {
-      const auto comma = rest.find(',');
-      const std::string pair = rest.substr(0, comma);
+    for (const std::string& pair : c.list("pixels")) {  // "column row" pairs, e.g. ["100 200", "40 80"]
       const auto space = pair.find(' ');
       r.pixels.emplace_back(std::stoi(pair.substr(0, space)), std::stoi(pair.substr(space + 1)));
-      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
     }
     r.samples = c.integer("samples", r.samples);
     r.map_size = c.integer("map_size", r.map_size);

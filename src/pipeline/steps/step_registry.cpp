@@ -43,6 +43,18 @@ int StepContext::integer(const char* key, int fallback) const {
   return has(key) ? std::stoi(options.at(key)) : fallback;
 }
 
+std::vector<std::string> split_list(const std::string& text) {
+  std::vector<std::string> items;
+  for (std::string rest = text; !rest.empty();) {
+    const auto comma = rest.find(',');
+    items.push_back(rest.substr(0, comma));
+    rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
+  }
+  return items;
+}
+
+std::vector<std::string> StepContext::list(const char* key) const { return split_list(text(key)); }
+
 std::pair<double, double> StepContext::pair(const char* key) const {
   const std::string v = text(key);
   return {std::stod(v.substr(0, v.find(','))), std::stod(v.substr(v.find(',') + 1))};
