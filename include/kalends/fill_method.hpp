@@ -90,6 +90,7 @@ struct MethodOptions {
   double spacetime_climate_smoothing = 3.0;
   double spacetime_season_smoothing = 1.0;
   int spacetime_halo = 32;              // pixels of context on each side of a block
+  int spacetime_neighbour_radius = 6;   // analogue neighbours; 0 = the smooth model alone
   double spacetime_tolerance = 1e-4;    // relative residual of the conjugate-gradient solves
   // temporal methods
   double max_gap_days = 0;             // longer gaps stay unfilled; 0 = no limit

@@ -102,6 +102,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--halo", r.method.spacetime_halo,
                   "Spacetime method: pixels of context around each block; farther pixels are not used")
       ->capture_default_str();
+  sub->add_option("--neighbour-radius", r.method.spacetime_neighbour_radius,
+                  "Spacetime method: pixels searched for neighbours whose steady difference predicts "
+                  "a gap; 0 = the smooth model alone")
+      ->capture_default_str();
   sub->add_option("--tolerance", r.method.spacetime_tolerance,
                   "Spacetime method: relative residual at which the solver stops")
       ->capture_default_str();

@@ -1,0 +1,64 @@
+// Neighbour analogues and normalised convolution: the two local stages of the spacetime method
+// (spacetime.hpp), for the gaps its smooth anomaly cannot resolve.
+//
+// [KW93] Knutsson, H. & Westin, C.-F. (1993), Normalized and differential convolution, Proc.
+//       IEEE CVPR, 515-523 (convolve the values times a certainty, divide by the convolved
+//       certainty; pages from memory).
+//
+// Analogues (learning each pixel's relation to its neighbours from the dates on which both were
+// observed; common practice, no single source). NDVI changes sharply from one pixel to the next, but the difference between two
+// neighbouring pixels is steady through a season. So a gap at pixel p, date t, is predicted from
+// each neighbour q (within `radius` pixels) that has a value at t:
+//
+//   y(p, t) ~ y(q, t) + D(p, q, t),   D = sum_s k(s, t) (y(p, s) - y(q, s)) / sum_s k(s, t)
+//
+// over the dates s on which both were observed, with k a Gaussian in day-of-year distance
+// (sd `season_days`, the year wraps around). Its error variance is the spread of the differences,
+// shrunk toward a prior (the pair's spread over all dates, two pseudo-dates), times (1 + 1/n_eff),
+// n_eff = (sum k)^2 / sum k^2 (the variance of a new difference around an estimated mean).
+// Predictions from all neighbours are combined by inverse variance. Rounds grow the filled area
+// like rings: round r also uses round r-1's predictions as y(q, t), adding their variance.
+// Pixels never observed have no differences to learn from and get no analogue.
+//
+// Normalised convolution [KW93] fills what is left, date by date: the Gaussian-weighted mean of
+// the known values around a cell, at the smallest sd of `scales` with enough known neighbours.
+#pragma once
+
+#include <cstdint>
+#include <span>
+#include <vector>
+
+namespace kalends::detail {
+
+struct AnalogueSettings {
+  int radius = 6;             // neighbours in a (2 radius + 1)^2 window
+  double season_days = 20;    // sd of the day-of-year kernel
+  int rounds = 8;             // rings of predictions built on predictions
+  double min_pairs = 2;       // least effective number of co-observed dates for a pair
+  double min_pairs_in_all = 3;  // least co-observed dates (weights summed) for a pair at all
+};
+
+/// A block's cells, pixel-major with the slot fastest: cell = (row * cols + col) * slots + slot.
+struct CellGrid {
+  int rows = 0, cols = 0, slots = 0;
+  std::span<const int> bin_of_slot;  // day-of-year bin of each slot
+  int bins = 1;
+  double bin_days = 8;
+};
+
+/// Predicts unobserved cells (weight 0) from neighbour analogues. On return `estimate` holds
+/// the prediction or NaN, `variance` its error variance (the mean of the combined predictions'
+/// variances: they share p's own errors, so they are not independent).
+void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
+                          std::span<const double> weight, const AnalogueSettings& settings,
+                          std::vector<double>& estimate, std::vector<double>& variance);
+
+/// Fills the cells of `field` (NaN = unknown) that `wanted` marks, date by date, by normalised
+/// convolution with the Gaussian sds of `scales` (pixels, smallest first). A scale is used where
+/// the kernel weight on known cells is at least `min_support` (of 1); the largest scale takes
+/// any support. Cells no scale reaches stay NaN.
+void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& field,
+                                    std::span<const std::uint8_t> wanted,
+                                    std::span<const double> scales, double min_support);
+
+}  // namespace kalends::detail

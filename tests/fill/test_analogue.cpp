@@ -1,0 +1,109 @@
+// Mechanics of the spacetime method's local stages (fill/analogue.hpp), on invented cubes.
+
+#include <catch2/catch.hpp>
+
+#include <cmath>
+#include <random>
+#include <vector>
+
+#include "fill/analogue.hpp"
+
+using namespace kalends::detail;
+
+namespace {
+
+struct Cube {
+  int rows, cols, slots;
+  std::vector<int> bins;
+  std::vector<double> y, weight;
+  std::size_t at(int r, int c, int s) const { return (std::size_t(r) * cols + c) * slots + s; }
+  CellGrid grid() const { return {rows, cols, slots, bins, 23, 16.0}; }
+};
+
+// y = level(pixel) + season(slot): every pair of pixels differs by a constant, so an analogue
+// must give back the withheld value exactly.
+Cube offset_cube(int rows, int cols, int years) {
+  Cube cube{rows, cols, 8 * years, {}, {}, {}};
+  std::mt19937 rng(3);
+  std::uniform_real_distribution<double> uniform(0.0, 1.0);
+  std::vector<double> level(std::size_t(rows) * cols), season(cube.slots);
+  for (double& l : level) l = uniform(rng);
+  for (double& s : season) s = uniform(rng);
+  for (int s = 0; s < cube.slots; ++s) cube.bins.push_back(9 + s % 8);  // days 145..257 in 16-day bins
+  cube.y.resize(std::size_t(rows) * cols * cube.slots);
+  cube.weight.assign(cube.y.size(), 1.0);
+  for (int r = 0; r < rows; ++r)
+    for (int c = 0; c < cols; ++c)
+      for (int s = 0; s < cube.slots; ++s) cube.y[cube.at(r, c, s)] = level[std::size_t(r) * cols + c] + season[s];
+  return cube;
+}
+
+}  // namespace
+
+TEST_CASE("analogues give back a value withheld from pixels with steady differences", "[fill][analogue]") {
+  Cube cube = offset_cube(9, 9, 3);
+  const std::vector<double> truth = cube.y;
+  // A 5 x 5 cloud on slot 10: its centre has no observed neighbour within radius 2 on that date,
+  // so it is reached only in a second round, from the first round's predictions.
+  for (int r = 2; r <= 6; ++r)
+    for (int c = 2; c <= 6; ++c) cube.weight[cube.at(r, c, 10)] = 0.0;
+  cube.weight[cube.at(0, 0, 3)] = 0.0;
+  AnalogueSettings settings;
+  settings.radius = 2;
+  std::vector<double> estimate, variance;
+
+  settings.rounds = 1;
+  predict_by_analogues(cube.grid(), cube.y, cube.weight, settings, estimate, variance);
+  CHECK(std::isnan(estimate[cube.at(4, 4, 10)]));
+  CHECK(estimate[cube.at(2, 2, 10)] == Approx(truth[cube.at(2, 2, 10)]).margin(1e-9));
+
+  settings.rounds = 2;
+  predict_by_analogues(cube.grid(), cube.y, cube.weight, settings, estimate, variance);
+  for (int r = 2; r <= 6; ++r)
+    for (int c = 2; c <= 6; ++c) {
+      CHECK(estimate[cube.at(r, c, 10)] == Approx(truth[cube.at(r, c, 10)]).margin(1e-9));
+      CHECK(variance[cube.at(r, c, 10)] >= 0.0);
+    }
+  CHECK(estimate[cube.at(0, 0, 3)] == Approx(truth[cube.at(0, 0, 3)]).margin(1e-9));
+  // Observed cells are not predicted.
+  CHECK(std::isnan(estimate[cube.at(0, 0, 4)]));
+}
+
+TEST_CASE("a pixel never observed gets no analogue; normalised convolution fills it", "[fill][analogue]") {
+  Cube cube = offset_cube(7, 7, 2);
+  for (int s = 0; s < cube.slots; ++s) cube.weight[cube.at(3, 3, s)] = 0.0;
+  AnalogueSettings settings;
+  settings.radius = 2;
+  std::vector<double> estimate, variance;
+  predict_by_analogues(cube.grid(), cube.y, cube.weight, settings, estimate, variance);
+  for (int s = 0; s < cube.slots; ++s) CHECK(std::isnan(estimate[cube.at(3, 3, s)]));
+
+  // A field linear in the column: a Gaussian mean of a symmetric neighbourhood is its centre.
+  std::vector<double> field(cube.y.size());
+  std::vector<std::uint8_t> wanted(cube.y.size(), 0);
+  for (int r = 0; r < 7; ++r)
+    for (int c = 0; c < 7; ++c)
+      for (int s = 0; s < cube.slots; ++s) field[cube.at(r, c, s)] = 0.5 + 0.1 * c + 0.01 * s;
+  for (int s = 0; s < cube.slots; ++s) {
+    field[cube.at(3, 3, s)] = NAN;
+    wanted[cube.at(3, 3, s)] = 1;
+  }
+  const std::vector<double> scales{1.0, 2.0};
+  fill_by_normalised_convolution(cube.grid(), field, wanted, scales, 0.05);
+  for (int s = 0; s < cube.slots; ++s)
+    CHECK(field[cube.at(3, 3, s)] == Approx(0.5 + 0.3 + 0.01 * s).margin(1e-12));
+}
+
+TEST_CASE("normalised convolution leaves cells beyond its largest kernel unknown", "[fill][analogue]") {
+  const int rows = 1, cols = 40, slots = 1;
+  std::vector<int> bins{0};
+  const CellGrid grid{rows, cols, slots, bins, 1, 16.0};
+  std::vector<double> field(cols, NAN);
+  std::vector<std::uint8_t> wanted(cols, 1);
+  field[0] = 2.0;
+  wanted[0] = 0;
+  const std::vector<double> scales{1.0, 2.0};  // 2 sd x 3 = 6 px of reach
+  fill_by_normalised_convolution(grid, field, wanted, scales, 0.05);
+  for (int c = 1; c <= 6; ++c) CHECK(field[c] == Approx(2.0));
+  for (int c = 7; c < cols; ++c) CHECK(std::isnan(field[c]));
+}
