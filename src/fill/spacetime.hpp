@@ -1,5 +1,5 @@
 // The spacetime method: a pixel's own seasonal climatology plus an anomaly that is smooth in
-// space and time, both estimated on the whole block.
+// space and time, both estimated on the whole block, then refined by neighbour analogues.
 //
 // [G10] Garcia, D. (2010), Robust smoothing of gridded data in one and higher dimensions with
 //       missing values, Comput. Stat. Data Anal. 54:1167-1178.
@@ -38,6 +38,12 @@
 // sigma_e^2 the weighted residual variance, sigma_A^2 the anomaly variance beyond the noise,
 // and h in [0, 1] the weights smoothed by the PLS filter 1 / (1 + p) (1 at an observed cell
 // surrounded by observations, 0 far from any).
+//
+// The model is then refined locally (analogue.hpp): gaps of observed pixels take neighbour
+// analogues, blended 0.7 / 0.3 with the model (the share chosen on transplanted masks, not on
+// the files accuracy is claimed on); pixels never observed take the normalised convolution of
+// the completed field; cells neither stage reaches keep the model. The sd of an analogue value
+// is 0.7 x the analogues' variance + 0.3 x the model's.
 //
 // Pixels with no observation within `halo` pixels on any date are not filled (flag 3). The
 // engine hands the method blocks with that halo; results then do not depend on block size to
