@@ -168,6 +168,8 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
   const std::size_t pixels = std::size_t(rows) * cols;
   std::vector<double> values(pixels), support(pixels), scratch;
   std::vector<std::uint8_t> open(pixels);
+  std::vector<std::vector<double>> taps;
+  for (double scale : scales) taps.push_back(gaussian_taps(scale));
   for (int s = 0; s < slots; ++s) {
     std::size_t left = 0;
     for (std::size_t p = 0; p < pixels; ++p) {
@@ -185,9 +187,8 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
         values[p] = known ? v : 0.0;
         support[p] = known ? 1.0 : 0.0;
       }
-      const std::vector<double> taps = gaussian_taps(scales[k]);
-      convolve_plane(rows, cols, taps, values, scratch);
-      convolve_plane(rows, cols, taps, support, scratch);
+      convolve_plane(rows, cols, taps[k], values, scratch);
+      convolve_plane(rows, cols, taps[k], support, scratch);
       for (std::size_t p = 0; p < pixels; ++p) {
         if (open[p] != 1) continue;
         if (support[p] >= min_support || (last && support[p] > 1e-9)) {

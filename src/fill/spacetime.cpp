@@ -67,8 +67,12 @@ MethodParameters SpacetimeMethod::parameters() const {
           {"robust", options_.robust ? "yes" : "no"}};
 }
 
+double SpacetimeMethod::season_bin_days(const TimeGrid& grid) {
+  return std::max(grid.step_days, min_bin_days);
+}
+
 int SpacetimeMethod::season_bins(const TimeGrid& grid, std::vector<int>& bin_of_slot) {
-  const double width = std::max(grid.step_days, min_bin_days);
+  const double width = season_bin_days(grid);
   const int bins = std::max(1, int(std::ceil(366.0 / width)));
   bin_of_slot.resize(grid.size);
   for (int s = 0; s < grid.size; ++s) {
@@ -257,10 +261,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     std::fill(out.sd.begin(), out.sd.end(), NAN);
     return;
   }
-  auto residual_at = [&](std::size_t p, int s) {
-    const std::size_t i = p * n_slots + s;
-    return y[i] - climate[p * n_bins + bin_of_slot[s]] - anomaly[i];
+  auto model_at = [&](std::size_t p, int s) {
+    return climate[p * n_bins + bin_of_slot[s]] + anomaly[p * n_slots + s];
   };
+  auto residual_at = [&](std::size_t p, int s) { return y[p * n_slots + s] - model_at(p, s); };
   if (options_.robust) {
     std::vector<double> scratch;
     for (int it = 0; it < options_.iterations; ++it) {
@@ -304,8 +308,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
 
   // The local stages: neighbour analogues for the gaps of observed pixels, blended with the
   // model; normalised convolution of the completed field for what is left (analogue.hpp).
-  const detail::CellGrid cell_grid{rows, cols, n_slots, bin_of_slot, n_bins,
-                                   std::max(grid.step_days, min_bin_days)};
+  const detail::CellGrid cell_grid{rows, cols, n_slots, bin_of_slot, n_bins, season_bin_days(grid)};
   detail::AnalogueSettings analogue_settings;
   analogue_settings.radius = options_.spacetime_neighbour_radius;
   // Each round reaches `radius` pixels farther; within the halo, a block's core does not depend
@@ -328,15 +331,15 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   std::vector<std::uint8_t> wanted(cells, 0);
   for (std::size_t i = 0; i < cells; ++i) {
     const std::size_t p = i / n_slots;
-    const double fit = climate[p * n_bins + bin_of_slot[i % n_slots]] + anomaly[i];
+    const double model = model_at(p, int(i % n_slots));
     if (weight[i] > 0) {
       completed[i] = y[i];
     } else if (!std::isnan(analogue[i])) {
-      completed[i] = (1.0 - model_share) * analogue[i] + model_share * fit;
+      completed[i] = (1.0 - model_share) * analogue[i] + model_share * model;
     } else if (observations[p] > 0) {
       // Observed on other dates but out of the analogues' reach: the model knows this pixel's
       // own climatology, which a spatial average would lose.
-      completed[i] = fit;
+      completed[i] = model;
     } else {
       completed[i] = NAN;
       wanted[i] = 1;
@@ -360,16 +363,13 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
         out.sd[o] = NAN;
         continue;
       }
+      // Observed cells report the model and its variance (the engine keeps the observation);
+      // gaps the local stages' value where they gave one.
       const double model_variance = model_variance_at(p, i);
-      double fit = climate[p * n_bins + bin_of_slot[s]] + anomaly[i], variance = model_variance;
-      if (weight[i] > 0) {
-        // Observed: the model's value (the engine keeps the observation) and its variance.
-      } else if (!std::isnan(analogue[i])) {
-        fit = completed[i];
+      double fit = model_at(p, s), variance = model_variance;
+      if (!(weight[i] > 0) && !std::isnan(completed[i])) fit = completed[i];
+      if (!(weight[i] > 0) && !std::isnan(analogue[i]))
         variance = (1.0 - model_share) * analogue_variance[i] + model_share * model_variance;
-      } else if (!std::isnan(completed[i])) {
-        fit = completed[i];
-      }
       out.fitted[o] = float(std::clamp(fit, lo, hi));
       out.sd[o] = float(std::sqrt(variance));
     }

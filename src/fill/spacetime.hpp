@@ -68,6 +68,8 @@ class SpacetimeMethod final : public FillMethod {
 
   /// Season bins of the grid's slots; returns the number of bins.
   static int season_bins(const TimeGrid& grid, std::vector<int>& bin_of_slot);
+  /// Width of a season bin: the grid step, at least 8 days.
+  static double season_bin_days(const TimeGrid& grid);
   const detail::DctPlanCache& plans() const { return plans_; }
 
  private:

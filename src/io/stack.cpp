@@ -31,6 +31,17 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   return paths;
 }
 
+std::vector<std::string> files_below(const std::string& folder) {
+  std::vector<std::string> files;
+  std::error_code ec;
+  if (!std::filesystem::exists(folder)) return files;
+  for (const auto& entry : std::filesystem::recursive_directory_iterator(folder, ec))
+    if (entry.is_regular_file() && entry.path().filename().string().front() != '.')
+      files.push_back(entry.path().string());
+  std::sort(files.begin(), files.end());
+  return files;
+}
+
 }  // namespace detail
 
 namespace {

@@ -18,6 +18,7 @@
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/pipeline.hpp"
+#include "io/file_glob.hpp"
 #include "io/output_set.hpp"
 #include "pipeline/job_file.hpp"
 #include "pipeline/shard_plan.hpp"
@@ -148,17 +149,6 @@ std::set<std::string> changed_files(const std::map<std::string, std::string>& be
   for (const auto& [f, sum] : before)
     if (!now.count(f)) changed.insert(f);
   return changed;
-}
-
-std::vector<std::string> outputs_in(const std::string& folder) {
-  std::vector<std::string> files;
-  std::error_code ec;
-  if (!fs::exists(folder)) return files;
-  for (const auto& entry : fs::recursive_directory_iterator(folder, ec))
-    if (entry.is_regular_file() && entry.path().filename().string().front() != '.')
-      files.push_back(entry.path().string());
-  std::sort(files.begin(), files.end());
-  return files;
 }
 
 class Runner {
@@ -407,7 +397,7 @@ class Runner {
     report.outputs_unchanged = outcome.unchanged;
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
-    db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, outputs_in(folder), inputs_of(step)});
+    db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, detail::files_below(folder), inputs_of(step)});
   }
 
   // Fingerprints: "<parameters>:<what it reads>", so a change can be explained. A shard's
@@ -624,7 +614,7 @@ class Runner {
     report.action = StepReport::Action::ran;
     years_redone_[step.id] = only_years_;
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
-                            outputs_in(folder), inputs_of(step)};
+                            detail::files_below(folder), inputs_of(step)};
     db_->step_done(done);
   }
 

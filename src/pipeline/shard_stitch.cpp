@@ -11,6 +11,7 @@
 #include <iterator>
 #include <set>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
@@ -23,11 +24,7 @@ namespace {
 
 std::set<std::string> files_in(const std::string& folder) {
   std::set<std::string> files;
-  std::error_code ec;
-  if (!fs::exists(folder)) return files;
-  for (const auto& entry : fs::recursive_directory_iterator(folder, ec))
-    if (entry.is_regular_file() && entry.path().filename().string().front() != '.')
-      files.insert(fs::relative(entry.path(), folder).string());
+  for (const std::string& path : files_below(folder)) files.insert(fs::relative(path, folder).string());
   return files;
 }
 
