@@ -92,6 +92,9 @@ struct MethodOptions {
   int spacetime_halo = 32;              // pixels of context on each side of a block
   int spacetime_neighbour_radius = 6;   // analogue neighbours; 0 = the smooth model alone
   double spacetime_tolerance = 1e-4;    // relative residual of the conjugate-gradient solves
+  // FFTW planning: "auto" times the transforms once per shape and keeps the result in the user
+  // cache (see detail::default_wisdom_file), a path keeps it there, "none" plans by estimate.
+  std::string spacetime_fft_wisdom = "auto";
   // temporal methods
   double max_gap_days = 0;             // longer gaps stay unfilled; 0 = no limit
   double max_extrapolation_days = 32;  // past the first/last observation; < 0 = no limit

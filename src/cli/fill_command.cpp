@@ -109,6 +109,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--tolerance", r.method.spacetime_tolerance,
                   "Spacetime method: relative residual at which the solver stops")
       ->capture_default_str();
+  sub->add_option("--fft-wisdom", r.method.spacetime_fft_wisdom,
+                  "Spacetime method: auto = time the transforms once per block shape and keep the "
+                  "result in the user cache, FILE = keep it there, none = plan without timing")
+      ->capture_default_str();
   sub->add_option("--max-gap", r.method.max_gap_days,
                   "Leave gaps between observations longer than this many days unfilled; 0 = no limit")
       ->capture_default_str();

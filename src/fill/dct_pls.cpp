@@ -1,9 +1,14 @@
 #include "fill/dct_pls.hpp"
 
+#include <unistd.h>
+
 #include <fftw3.h>
 
 #include <algorithm>
 #include <cmath>
+#include <cstdlib>
+#include <filesystem>
+#include <fstream>
 #include <new>
 #include <numbers>
 #include <numeric>
@@ -48,7 +53,47 @@ void DctBuffer::resize(std::size_t n) {
 // ---------------------------------------------------------------------------------------------
 // Plans
 
-DctPlanCache::DctPlanCache() = default;
+namespace {
+
+// Writes FFTW's accumulated wisdom atomically; a cache that cannot be written is skipped.
+void save_wisdom(const std::string& file) {
+  char* text = fftw_export_wisdom_to_string();
+  if (!text) return;
+  const std::string wisdom(text);
+  fftw_free(text);
+  // Runs in parallel (a test suite, array jobs) may save at once: each writes its own
+  // temporary, and the last rename wins with a complete file.
+  namespace fs = std::filesystem;
+  std::error_code ec;
+  fs::create_directories(fs::path(file).parent_path(), ec);
+  const std::string temporary = file + "." + std::to_string(::getpid()) + ".partial";
+  {
+    std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
+    out << wisdom;
+    out.flush();
+    if (!out) {
+      fs::remove(temporary, ec);
+      return;
+    }
+  }
+  fs::rename(temporary, file, ec);
+  if (ec) fs::remove(temporary, ec);
+}
+
+}  // namespace
+
+std::string default_wisdom_file() {
+  auto set = [](const char* name) -> std::string {
+    const char* v = std::getenv(name);
+    return v && *v ? v : "";
+  };
+  std::string folder = set("KALENDS_CACHE_DIR");
+  if (folder.empty() && !set("XDG_CACHE_HOME").empty()) folder = set("XDG_CACHE_HOME") + "/kalends";
+  if (folder.empty() && !set("HOME").empty()) folder = set("HOME") + "/.cache/kalends";
+  return folder.empty() ? "" : folder + "/fftw-wisdom";
+}
+
+DctPlanCache::DctPlanCache(DctPlanning planning) : planning_(std::move(planning)) {}
 
 DctPlanCache::~DctPlanCache() {
   std::lock_guard lock(mutex_);
@@ -60,16 +105,16 @@ std::size_t DctPlanCache::plans() const {
   return plans_.size();
 }
 
-const void* DctPlanCache::plan(const Shape3& shape, bool inverse) const {
+const void* DctPlanCache::plan(const Shape3& shape, bool inverse, bool space_only) const {
   std::lock_guard lock(mutex_);
-  const auto key = std::make_pair(shape, inverse);
+  const auto key = std::make_tuple(shape, inverse, space_only);
   auto it = plans_.find(key);
   if (it != plans_.end()) return it->second;
   // Axes of length 1 are left out: FFTW's r2r of length 1 is the identity times 2, which the
   // normalisation below would have to undo for nothing.
   int n[3], kinds_n = 0;
   fftw_r2r_kind kinds[3];
-  for (int k = 0; k < 3; ++k)
+  for (int k = 0; k < (space_only ? 2 : 3); ++k)
     if (shape[k] > 1) {
       n[kinds_n] = shape[k];
       kinds[kinds_n] = inverse ? FFTW_REDFT01 : FFTW_REDFT10;
@@ -77,11 +122,32 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse) const {
     }
   void* made = nullptr;
   if (kinds_n > 0) {
-    // FFTW_ESTIMATE never touches the array, so a scratch buffer of the right alignment will do;
-    // plans are later executed on other arrays of the same alignment (fftw_malloc).
+    // Planning overwrites the array (FFTW_MEASURE) or never touches it (FFTW_ESTIMATE), so a
+    // scratch buffer of the right alignment will do; plans are later executed on other arrays
+    // of the same alignment (fftw_malloc).
     const std::size_t size = std::size_t(shape[0]) * shape[1] * shape[2];
     DctBuffer scratch(size);
-    made = fftw_plan_r2r(kinds_n, n, scratch.data(), scratch.data(), kinds, FFTW_ESTIMATE);
+    // Space only: one 2-D transform per slot of the (fastest) time axis, strided by its length.
+    const int batch = space_only ? shape[2] : 1, stride = space_only ? shape[2] : 1;
+    auto plan_r2r = [&](unsigned flags) {
+      return fftw_plan_many_r2r(kinds_n, n, batch, scratch.data(), nullptr, stride, 1,
+                                scratch.data(), nullptr, stride, 1, kinds, flags);
+    };
+    if (planning_.measure) {
+      const bool keep = !planning_.wisdom_file.empty();
+      if (keep && !wisdom_read_) {
+        // A missing or unreadable file is an empty cache, not an error.
+        fftw_import_wisdom_from_filename(planning_.wisdom_file.c_str());
+        wisdom_read_ = true;
+      }
+      made = plan_r2r(FFTW_MEASURE | FFTW_WISDOM_ONLY);
+      if (!made) {
+        made = plan_r2r(FFTW_MEASURE);
+        if (made && keep) save_wisdom(planning_.wisdom_file);
+      }
+    } else {
+      made = plan_r2r(FFTW_ESTIMATE);
+    }
     if (!made) throw std::runtime_error("FFTW could not plan a DCT");
   }
   plans_.emplace(key, made);
@@ -89,11 +155,21 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse) const {
 }
 
 void DctPlanCache::forward(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, false)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  if (auto p = plan(shape, false, false)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
 }
 
 void DctPlanCache::inverse(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, true)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  if (auto p = plan(shape, true, false)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+}
+
+void DctPlanCache::forward_space(const Shape3& shape, double* data) const {
+  if (auto p = plan(shape, false, true))
+    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+}
+
+void DctPlanCache::inverse_space(const Shape3& shape, double* data) const {
+  if (auto p = plan(shape, true, true))
+    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
 }
 
 namespace {
@@ -223,10 +299,6 @@ void copy_back(const Shape3& big, const double* src, const Shape3& small, double
                   dst + (std::size_t(a) * small[1] + b) * small[2]);
 }
 
-PlsResult solve_unpadded(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
-                         std::span<const double> w, const PlsSettings& settings,
-                         std::span<double> z, PlsWorkspace& ws);
-
 }  // namespace
 
 void filter_shifted(const DctPlanCache& plans, const Shape3& shape, const PlsSettings& settings,
@@ -240,68 +312,173 @@ void filter_shifted(const DctPlanCache& plans, const Shape3& shape, const PlsSet
   copy_back(big, data.data(), shape, x.data());
 }
 
+// ---------------------------------------------------------------------------------------------
+// The solve in the space-DCT, time domain
+//
+// With C_s the DCT-II over axes 0 and 1 (for every slot), the penalty becomes, for each spatial
+// frequency (a, b) with sigma = lambda_0(a) + lambda_1(b), the pentadiagonal matrix
+//   P_ab = s_space sigma^2 I + s_time L_2^2
+// acting along time. The preconditioner replaces W by its mean over the pixels of each slot,
+// wbar(t), which is exact for the spatial mean and keeps whole dates without data (winters,
+// cloudy dates) in the preconditioner:
+//   M = C_s^T blockdiag(diag(wbar) + P_ab)^-1 C_s,
+// one pentadiagonal LDL^T solve per spatial frequency. Whole-date gaps are what made the
+// (omega I + P)^-1 preconditioner of [G10] slow; this one leaves mostly the spatial gaps.
 PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
                     std::span<const double> w, const PlsSettings& settings, std::span<double> z,
                     PlsWorkspace& ws) {
-  const Shape3 big = settings.pad ? padded_shape(shape) : shape;
-  if (big == shape) return solve_unpadded(plans, shape, y, w, settings, z, ws);
-  const std::size_t n = std::size_t(big[0]) * big[1] * big[2];
-  std::vector<double> yb(n), wb(n), zb(n);
-  copy_into(shape, y.data(), big, yb.data());
-  copy_into(shape, w.data(), big, wb.data());
-  copy_into(shape, z.data(), big, zb.data());
-  const PlsResult result = solve_unpadded(plans, big, yb, wb, settings, zb, ws);
-  copy_back(big, zb.data(), shape, z.data());
-  return result;
-}
-
-namespace {
-
-PlsResult solve_unpadded(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
-                         std::span<const double> w, const PlsSettings& settings,
-                         std::span<double> z, PlsWorkspace& ws) {
-  const std::size_t n = std::size_t(shape[0]) * shape[1] * shape[2];
+  const int n0 = shape[0], n1 = shape[1], nt = shape[2];
+  const std::size_t frequencies = std::size_t(n0) * n1;
+  const std::size_t n = frequencies * nt;
   PlsResult result;
-  if (ws.eigen_shape != shape || ws.eigen_s_space != settings.s_space ||
-      ws.eigen_s_time != settings.s_time) {
-    ws.eigen.resize(n);
-    penalty_eigenvalues(shape, settings.s_space, settings.s_time, ws.eigen.span());
-    ws.eigen_shape = shape;
-    ws.eigen_s_space = settings.s_space;
-    ws.eigen_s_time = settings.s_time;
-  }
-  const std::span<const double> eigen(ws.eigen.data(), n);
-  ws.residual.resize(n);
-  ws.direction.resize(n);
-  ws.preconditioned.resize(n);
-  ws.product.resize(n);
-  double* r = ws.residual.data();
-  double* d = ws.direction.data();
-  double* q = ws.preconditioned.data();
-  double* ad = ws.product.data();
-  const double scale = unnormalised_scale(shape);
   double omega = 0;
   for (std::size_t i = 0; i < n; ++i) omega = std::max(omega, w[i]);
   if (omega <= 0) return result;  // nothing observed: z stays at its start value
 
-  // A x = W x + P x.
-  auto apply_system = [&](const double* x, double* out) {
-    std::copy(x, x + n, out);
-    apply_diagonal(plans, shape, eigen, [&](double p) { return p / scale; }, out);
-    for (std::size_t i = 0; i < n; ++i) out[i] += w[i] * x[i];
+  // s_space sigma^2 per spatial frequency; the bands of s_time L^2 (L: Neumann second
+  // difference along time, diagonal -1, -2, ..., -2, -1 and off-diagonals 1).
+  std::vector<double> space_term(frequencies);
+  {
+    std::vector<double> l0(n0), l1(n1);
+    for (int a = 0; a < n0; ++a) l0[a] = -2.0 + 2.0 * std::cos(std::numbers::pi * a / n0);
+    for (int b = 0; b < n1; ++b) l1[b] = -2.0 + 2.0 * std::cos(std::numbers::pi * b / n1);
+    for (int a = 0; a < n0; ++a)
+      for (int b = 0; b < n1; ++b) {
+        const double sigma = l0[a] + l1[b];
+        space_term[std::size_t(a) * n1 + b] = settings.s_space * sigma * sigma;
+      }
+  }
+  std::vector<double> band0(nt, 0.0), band1(nt, 0.0), band2(nt, 0.0);  // (t,t), (t+1,t), (t+2,t)
+  if (nt > 1) {
+    std::vector<double> diag(nt, -2.0);
+    diag[0] = diag[nt - 1] = -1.0;
+    // (L^2)(i,j) = sum_k L(i,k) L(k,j), L tridiagonal with unit off-diagonals.
+    for (int t = 0; t < nt; ++t) {
+      band0[t] = diag[t] * diag[t] + (t > 0 ? 1.0 : 0.0) + (t + 1 < nt ? 1.0 : 0.0);
+      if (t + 1 < nt) band1[t] = diag[t] + diag[t + 1];
+      if (t + 2 < nt) band2[t] = 1.0;
+    }
+    for (int t = 0; t < nt; ++t) {
+      band0[t] *= settings.s_time;
+      band1[t] *= settings.s_time;
+      band2[t] *= settings.s_time;
+    }
+  }
+  std::vector<double> mean_weight(nt, 0.0);
+  for (std::size_t f = 0; f < frequencies; ++f)
+    for (int t = 0; t < nt; ++t) mean_weight[t] += w[f * nt + t];
+  for (int t = 0; t < nt; ++t) mean_weight[t] /= double(frequencies);
+  // A floor keeps every factor positive definite where sigma = 0 and wbar is zero.
+  const double floor = 1e-9 * omega;
+
+  // The LDL^T factors of diag(wbar) + P_ab for every frequency, made once per solve.
+  ws.factor_d.resize(n);
+  ws.factor_l1.resize(n);
+  ws.factor_l2.resize(n);
+  for (std::size_t f = 0; f < frequencies; ++f) {
+    double* d = ws.factor_d.data() + f * nt;
+    double* l1 = ws.factor_l1.data() + f * nt;
+    double* l2 = ws.factor_l2.data() + f * nt;
+    const double extra = space_term[f];
+    for (int t = 0; t < nt; ++t) {
+      // Row t: A(t,t) = band0 + wbar + extra, A(t,t-1) = band1[t-1], A(t,t-2) = band2[t-2].
+      double dt = band0[t] + mean_weight[t] + extra + floor;
+      if (t >= 2) {
+        l2[t - 2] = band2[t - 2] / d[t - 2];
+        dt -= l2[t - 2] * l2[t - 2] * d[t - 2];
+      }
+      if (t >= 1) {
+        double s1 = band1[t - 1];
+        if (t >= 2) s1 -= l2[t - 2] * l1[t - 2] * d[t - 2];
+        l1[t - 1] = s1 / d[t - 1];
+        dt -= l1[t - 1] * l1[t - 1] * d[t - 1];
+      }
+      d[t] = dt;
+    }
+  }
+  // x <- (LDL^T)^-1 x for frequency f (x contiguous along time); factor_d holds 1 / D.
+  for (double& v : ws.factor_d) v = 1.0 / v;
+  auto solve_frequency = [&](std::size_t f, double* x) {
+    const double* inverse_d = ws.factor_d.data() + f * nt;
+    const double* l1 = ws.factor_l1.data() + f * nt;
+    const double* l2 = ws.factor_l2.data() + f * nt;
+    if (nt > 1) x[1] -= l1[0] * x[0];
+    for (int t = 2; t < nt; ++t) x[t] -= l1[t - 1] * x[t - 1] + l2[t - 2] * x[t - 2];
+    for (int t = 0; t < nt; ++t) x[t] *= inverse_d[t];
+    if (nt > 1) x[nt - 2] -= l1[nt - 2] * x[nt - 1];
+    for (int t = nt - 3; t >= 0; --t) x[t] -= l1[t] * x[t + 1] + l2[t] * x[t + 2];
   };
-  // r = W y - A z.
-  apply_system(z.data(), ad);
+  // out <- P_ab x / scale for frequency f: the bands and space terms are divided once here.
+  double scale = 1.0;
+  for (int k = 0; k < 2; ++k)
+    if (shape[k] > 1) scale *= 2.0 * shape[k];
+  std::vector<double> scaled0(nt), scaled1(nt + 1, 0.0), scaled2(nt + 2, 0.0);
+  for (int t = 0; t < nt; ++t) {
+    scaled0[t] = band0[t] / scale;
+    scaled1[t] = band1[t] / scale;
+    scaled2[t] = band2[t] / scale;
+  }
+  auto penalty_frequency = [&](std::size_t f, const double* x, double* out) {
+    const double extra = space_term[f] / scale;
+    if (nt < 5) {
+      for (int t = 0; t < nt; ++t) {
+        double v = (scaled0[t] + extra) * x[t];
+        if (t >= 1) v += scaled1[t - 1] * x[t - 1];
+        if (t + 1 < nt) v += scaled1[t] * x[t + 1];
+        if (t >= 2) v += scaled2[t - 2] * x[t - 2];
+        if (t + 2 < nt) v += scaled2[t] * x[t + 2];
+        out[t] = v;
+      }
+      return;
+    }
+    out[0] = (scaled0[0] + extra) * x[0] + scaled1[0] * x[1] + scaled2[0] * x[2];
+    out[1] = (scaled0[1] + extra) * x[1] + scaled1[0] * x[0] + scaled1[1] * x[2] +
+             scaled2[1] * x[3];
+    for (int t = 2; t < nt - 2; ++t)
+      out[t] = (scaled0[t] + extra) * x[t] + scaled1[t - 1] * x[t - 1] + scaled1[t] * x[t + 1] +
+               scaled2[t - 2] * x[t - 2] + scaled2[t] * x[t + 2];
+    const int a = nt - 2, b = nt - 1;
+    out[a] = (scaled0[a] + extra) * x[a] + scaled1[a - 1] * x[a - 1] + scaled1[a] * x[b] +
+             scaled2[a - 2] * x[a - 2];
+    out[b] = (scaled0[b] + extra) * x[b] + scaled1[b - 1] * x[a] + scaled2[b - 2] * x[b - 2];
+  };
+
+  ws.residual.resize(n);
+  ws.direction.resize(n);
+  ws.direction_spectrum.resize(n);
+  ws.preconditioned.resize(n);
+  ws.product.resize(n);
+  double* r = ws.residual.data();
+  double* d = ws.direction.data();
+  double* d_hat = ws.direction_spectrum.data();
+  double* q = ws.preconditioned.data();
+  double* ad = ws.product.data();
+
+  // r = W y - (W + P) z.
+  std::copy(z.data(), z.data() + n, q);
+  plans.forward_space(shape, q);
+  for (std::size_t f = 0; f < frequencies; ++f) penalty_frequency(f, q + f * nt, ad + f * nt);
+  plans.inverse_space(shape, ad);
   double b_norm = 0;
   for (std::size_t i = 0; i < n; ++i) {
     const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
     b_norm += b * b;
-    r[i] = b - ad[i];
+    r[i] = b - ad[i] - w[i] * z[i];
   }
   b_norm = std::sqrt(b_norm);
   if (b_norm == 0) b_norm = 1;
-  std::copy(r, r + n, q);
-  apply_inverse_shifted(plans, shape, eigen, omega, {q, n});
+  // q <- M r, and its spectrum C_s q to `q_hat` (the solve's output before the inverse).
+  auto precondition = [&](double* q_hat) {
+    std::copy(r, r + n, q_hat);
+    plans.forward_space(shape, q_hat);
+    for (std::size_t f = 0; f < frequencies; ++f) solve_frequency(f, q_hat + f * nt);
+    const double inverse_scale = 1.0 / scale;
+    for (std::size_t i = 0; i < n; ++i) q[i] = q_hat[i] * inverse_scale;
+    plans.inverse_space(shape, q);
+  };
+  // Three 2-D transforms per iteration: the direction is kept in both domains (C_s d =
+  // C_s q + beta C_s d_old), so P d needs only an inverse transform.
+  precondition(d_hat);
   std::copy(q, q + n, d);
   double rq = dot(r, q, n);
   for (int it = 0; it < settings.max_iterations; ++it) {
@@ -310,7 +487,9 @@ PlsResult solve_unpadded(const DctPlanCache& plans, const Shape3& shape, std::sp
       result.converged = true;
       break;
     }
-    apply_system(d, ad);
+    for (std::size_t f = 0; f < frequencies; ++f) penalty_frequency(f, d_hat + f * nt, ad + f * nt);
+    plans.inverse_space(shape, ad);
+    for (std::size_t i = 0; i < n; ++i) ad[i] += w[i] * d[i];
     const double dad = dot(d, ad, n);
     if (!(dad > 0)) break;
     const double alpha = rq / dad;
@@ -318,12 +497,14 @@ PlsResult solve_unpadded(const DctPlanCache& plans, const Shape3& shape, std::sp
       z[i] += alpha * d[i];
       r[i] -= alpha * ad[i];
     }
-    std::copy(r, r + n, q);
-    apply_inverse_shifted(plans, shape, eigen, omega, {q, n});
+    precondition(ad);  // `ad` is free until the next product
     const double rq_next = dot(r, q, n);
     const double beta = rq_next / rq;
     rq = rq_next;
-    for (std::size_t i = 0; i < n; ++i) d[i] = q[i] + beta * d[i];
+    for (std::size_t i = 0; i < n; ++i) {
+      d[i] = q[i] + beta * d[i];
+      d_hat[i] = ad[i] + beta * d_hat[i];
+    }
     result.iterations = it + 1;
   }
   if (!result.converged) {
@@ -332,7 +513,5 @@ PlsResult solve_unpadded(const DctPlanCache& plans, const Shape3& shape, std::sp
   }
   return result;
 }
-
-}  // namespace
 
 }  // namespace kalends::detail

@@ -40,7 +40,20 @@ double median(std::vector<double>& v) {
 
 }  // namespace
 
-SpacetimeMethod::SpacetimeMethod(const MethodOptions& options) : options_(options) {
+namespace {
+
+detail::DctPlanning planning_of(const std::string& wisdom) {
+  if (wisdom == "none") return {false, ""};
+  if (wisdom == "auto") return {true, detail::default_wisdom_file()};
+  return {true, wisdom};
+}
+
+}  // namespace
+
+SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
+    : options_(options), plans_(planning_of(options.spacetime_fft_wisdom)) {
+  if (options.spacetime_fft_wisdom.empty())
+    throw UsageError("--fft-wisdom", "must be auto, none or a file");
   if (!(options.spacetime_space_smoothing > 0))
     throw UsageError("--space-smoothing", "must be positive");
   if (!(options.spacetime_time_smoothing > 0))
@@ -85,9 +98,9 @@ int SpacetimeMethod::season_bins(const TimeGrid& grid, std::vector<int>& bin_of_
 std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const {
   std::vector<int> bins;
   const int n_bins = season_bins(grid, bins);
-  // Doubles: per slot y, w, A, target, support, 5 solver arrays, 4 analogue arrays and the
-  // completed field, plus a byte; per bin 14 arrays.
-  return sizeof(double) * (15 * std::size_t(grid.size) + 14 * std::size_t(n_bins)) +
+  // Doubles: per slot y, w, A, target, support, 8 solver arrays (5 vectors, 3 factor bands),
+  // 4 analogue arrays and the completed field, plus a byte; per bin 17 arrays.
+  return sizeof(double) * (18 * std::size_t(grid.size) + 17 * std::size_t(n_bins)) +
          std::size_t(grid.size) + 16;
 }
 

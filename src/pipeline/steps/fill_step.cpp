@@ -103,6 +103,7 @@ StepKind fill_step_kind() {
                {"space_smoothing", T::number}, {"time_smoothing", T::number},
                {"climate_smoothing", T::number}, {"season_smoothing", T::number},
                {"halo", T::integer}, {"tolerance", T::number}, {"neighbour_radius", T::integer},
+               {"fft_wisdom", T::text},
                {"tiles", T::text, StepKey::Role::path}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'fill' step needs 'input'");
@@ -146,6 +147,7 @@ StepKind fill_step_kind() {
     m.spacetime_season_smoothing = c.number("season_smoothing", m.spacetime_season_smoothing);
     m.spacetime_halo = c.integer("halo", m.spacetime_halo);
     m.spacetime_tolerance = c.number("tolerance", m.spacetime_tolerance);
+    m.spacetime_fft_wisdom = c.text("fft_wisdom", m.spacetime_fft_wisdom);
     m.spacetime_neighbour_radius = c.integer("neighbour_radius", m.spacetime_neighbour_radius);
     r.only_years = c.only_years;
     r.smooth = c.flag("smooth");

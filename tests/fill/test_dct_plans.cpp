@@ -1,0 +1,115 @@
+// Mechanics of the DCT plan cache (fill/dct_pls.hpp): timed plans kept as FFTW wisdom, and the
+// space-only transforms the solver uses. The transforms themselves are checked against
+// scipy.fft in tests/reference/test_spacetime_scipy.py.
+
+#include <catch2/catch.hpp>
+
+#include <cmath>
+#include <filesystem>
+#include <fstream>
+#include <random>
+#include <string>
+#include <unistd.h>
+#include <vector>
+
+#include "fill/dct_pls.hpp"
+
+using namespace kalends::detail;
+
+namespace {
+
+std::vector<double> random_values(std::size_t n, unsigned seed) {
+  std::mt19937 rng(seed);
+  std::normal_distribution<double> normal(0.0, 1.0);
+  std::vector<double> v(n);
+  for (double& x : v) x = normal(rng);
+  return v;
+}
+
+std::string read_file(const std::filesystem::path& path) {
+  std::ifstream in(path, std::ios::binary);
+  return {std::istreambuf_iterator<char>(in), std::istreambuf_iterator<char>()};
+}
+
+// A folder of its own under the system temporary folder, removed at the end.
+struct TemporaryFolder {
+  std::filesystem::path path = std::filesystem::temp_directory_path() /
+                               ("kalends-dct-" + std::to_string(::getpid()));
+  TemporaryFolder() { std::filesystem::remove_all(path); }
+  ~TemporaryFolder() { std::filesystem::remove_all(path); }
+};
+
+}  // namespace
+
+TEST_CASE("timed plans give the estimated plans' transforms and keep their wisdom in a file") {
+  TemporaryFolder folder;
+  const std::string wisdom = (folder.path / "cache" / "fftw-wisdom").string();
+  const Shape3 shape{12, 10, 9};
+  const std::size_t n = 12 * 10 * 9;
+  const auto x = random_values(n, 7);
+
+  DctBuffer estimated(n), timed(n);
+  std::copy(x.begin(), x.end(), estimated.data());
+  std::copy(x.begin(), x.end(), timed.data());
+  DctPlanCache by_estimate(DctPlanning{false, ""});
+  by_estimate.forward(shape, estimated.data());
+  {
+    DctPlanCache measured(DctPlanning{true, wisdom});
+    measured.forward(shape, timed.data());
+    for (std::size_t i = 0; i < n; ++i) REQUIRE(timed[i] == Approx(estimated[i]).margin(1e-9));
+  }
+  // The wisdom file was created (with its folder) and holds FFTW's text format.
+  REQUIRE(std::filesystem::exists(wisdom));
+  const std::string text = read_file(wisdom);
+  REQUIRE(text.rfind("(fftw-3", 0) == 0);
+  // A second cache reads it and plans the same shape without error.
+  DctPlanCache again(DctPlanning{true, wisdom});
+  std::copy(x.begin(), x.end(), timed.data());
+  again.inverse(shape, timed.data());
+  std::copy(x.begin(), x.end(), estimated.data());
+  by_estimate.inverse(shape, estimated.data());
+  for (std::size_t i = 0; i < n; ++i) REQUIRE(timed[i] == Approx(estimated[i]).margin(1e-9));
+}
+
+TEST_CASE("a wisdom file that cannot be written or read is no error") {
+  TemporaryFolder folder;
+  std::filesystem::create_directories(folder.path);
+  // A file where the cache folder should be: nothing can be created below it.
+  const auto blocker = folder.path / "not-a-folder";
+  std::ofstream(blocker) << "x";
+  const std::string wisdom = (blocker / "fftw-wisdom").string();
+  const Shape3 shape{4, 5, 6};
+  DctBuffer data(120);
+  for (int i = 0; i < 120; ++i) data[i] = i;
+  DctPlanCache plans(DctPlanning{true, wisdom});
+  plans.forward(shape, data.data());
+  plans.inverse(shape, data.data());
+  // inverse(forward(x)) = 8 n0 n1 n2 x.
+  for (int i = 0; i < 120; ++i) REQUIRE(data[i] == Approx(8.0 * 120 * i).margin(1e-6));
+  REQUIRE_FALSE(std::filesystem::exists(wisdom));
+  // Garbage in the file is ignored too.
+  const auto garbled = folder.path / "garbled";
+  std::ofstream(garbled) << "(not wisdom";
+  DctPlanCache reads_garbage(DctPlanning{true, garbled.string()});
+  reads_garbage.forward(shape, data.data());
+}
+
+TEST_CASE("space-only transforms act on axes 0 and 1 of every slot") {
+  const Shape3 shape{6, 5, 7};
+  const std::size_t n = 6 * 5 * 7;
+  const auto x = random_values(n, 11);
+  DctPlanCache plans;
+  DctBuffer mixed(n);
+  std::copy(x.begin(), x.end(), mixed.data());
+  plans.forward_space(shape, mixed.data());
+  // Each slot's plane alone, through the transform of a 6 x 5 x 1 array.
+  for (int s = 0; s < shape[2]; ++s) {
+    DctBuffer plane(30);
+    for (int p = 0; p < 30; ++p) plane[p] = x[std::size_t(p) * 7 + s];
+    plans.forward({6, 5, 1}, plane.data());
+    for (int p = 0; p < 30; ++p) REQUIRE(mixed[std::size_t(p) * 7 + s] == Approx(plane[p]).margin(1e-10));
+  }
+  plans.inverse_space(shape, mixed.data());
+  // inverse_space(forward_space(x)) = 4 n0 n1 x.
+  for (std::size_t i = 0; i < n; ++i) REQUIRE(mixed[i] == Approx(4.0 * 30 * x[i]).margin(1e-9));
+}
