@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <cstdint>
 
 namespace kalends::detail {
 
@@ -52,6 +53,43 @@ void convolve_plane(int rows, int cols, const std::vector<double>& taps, std::ve
     }
 }
 
+// counts[p, s] = number of the listed cells (p', s) with p' in the (2 radius + 1)^2 window
+// around p: a box sum per slot, done as two running sums over whole slot vectors.
+void count_in_windows(int rows, int cols, int slots, int radius, const std::vector<std::size_t>& listed,
+                      std::vector<std::uint16_t>& counts) {
+  const std::size_t plane = std::size_t(cols) * slots;
+  std::vector<std::uint16_t> marks(std::size_t(rows) * plane, 0), across(marks.size(), 0);
+  for (std::size_t i : listed) marks[i] = 1;
+  std::vector<int> running(slots);
+  // Along each row.
+  for (int r = 0; r < rows; ++r) {
+    const std::uint16_t* in = &marks[std::size_t(r) * plane];
+    std::uint16_t* out = &across[std::size_t(r) * plane];
+    std::fill(running.begin(), running.end(), 0);
+    for (int c = 0; c < std::min(cols, radius); ++c)
+      for (int s = 0; s < slots; ++s) running[s] += in[std::size_t(c) * slots + s];
+    for (int c = 0; c < cols; ++c) {
+      if (c + radius < cols)
+        for (int s = 0; s < slots; ++s) running[s] += in[std::size_t(c + radius) * slots + s];
+      if (c - radius - 1 >= 0)
+        for (int s = 0; s < slots; ++s) running[s] -= in[std::size_t(c - radius - 1) * slots + s];
+      for (int s = 0; s < slots; ++s) out[std::size_t(c) * slots + s] = std::uint16_t(running[s]);
+    }
+  }
+  // Down each column: rows are whole planes, so running sums of planes.
+  counts.assign(marks.size(), 0);
+  std::vector<int> column(plane, 0);
+  for (int r = 0; r < std::min(rows, radius); ++r)
+    for (std::size_t j = 0; j < plane; ++j) column[j] += across[std::size_t(r) * plane + j];
+  for (int r = 0; r < rows; ++r) {
+    if (r + radius < rows)
+      for (std::size_t j = 0; j < plane; ++j) column[j] += across[std::size_t(r + radius) * plane + j];
+    if (r - radius - 1 >= 0)
+      for (std::size_t j = 0; j < plane; ++j) column[j] -= across[std::size_t(r - radius - 1) * plane + j];
+    for (std::size_t j = 0; j < plane; ++j) counts[std::size_t(r) * plane + j] = std::uint16_t(column[j]);
+  }
+}
+
 }  // namespace
 
 void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
@@ -64,6 +102,12 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   int half = 0;
   const std::vector<double> kernel = season_kernel(grid, settings.season_days, half);
   const int radius = settings.radius;
+  // The bins under the kernel centred on each bin; the year wraps around.
+  const int taps = 2 * half + 1;
+  std::vector<int> wrapped(std::size_t(bins) * taps);
+  for (int b = 0; b < bins; ++b)
+    for (int j = -half; j <= half; ++j)
+      wrapped[std::size_t(b) * taps + (j + half)] = ((b + j) % bins + bins) % bins;
 
   // Known values: observed cells (variance 0), then each round's predictions. A round writes
   // its predictions to `estimate` and their propagation variance to `known_variance` (read only
@@ -82,7 +126,12 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   std::vector<double> b0(bins), b1(bins), b2(bins);
   std::vector<int> pending;
   std::vector<std::size_t> predicted;
+  // After the first round a gap can gain a prediction only from a neighbour predicted in the
+  // round before: the others were already tried, and whether a pair qualifies depends only on
+  // observed dates. `near_new` counts, per cell, the window's cells predicted last round.
+  std::vector<std::uint16_t> near_new;
   for (int round = 0; round < settings.rounds; ++round) {
+    if (round > 0) count_in_windows(rows, cols, slots, radius, predicted, near_new);
     predicted.clear();
     for (int r = 0; r < rows; ++r)
       for (int c = 0; c < cols; ++c) {
@@ -90,7 +139,8 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
         if (observations[p] == 0) continue;
         pending.clear();
         for (int s = 0; s < slots; ++s)
-          if (std::isnan(value[p * slots + s])) pending.push_back(s);
+          if (std::isnan(value[p * slots + s]) && (round == 0 || near_new[p * slots + s] > 0))
+            pending.push_back(s);
         if (pending.empty()) continue;
         std::fill(sum_w.begin(), sum_w.end(), 0.0);
         std::fill(sum_wx.begin(), sum_wx.end(), 0.0);
@@ -108,15 +158,20 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
             std::fill(b1.begin(), b1.end(), 0.0);
             std::fill(b2.begin(), b2.end(), 0.0);
             bool shared = false;  // any co-observed date
+            // Without branches: a third of the dates or more may be missing, at random.
+            const double* wp_row = &weight[p * slots];
+            const double* wq_row = &weight[q * slots];
+            const double* yp_row = &y[p * slots];
+            const double* yq_row = &y[q * slots];
             for (int s = 0; s < slots; ++s) {
-              const double wp = weight[p * slots + s], wq = weight[q * slots + s];
-              if (!(wp > 0 && wq > 0)) continue;
-              const double m = wp * wq, d = y[p * slots + s] - y[q * slots + s];
+              const bool both = wp_row[s] > 0 && wq_row[s] > 0;
+              const double m = both ? wp_row[s] * wq_row[s] : 0.0;
+              const double d = both ? yp_row[s] - yq_row[s] : 0.0;
               const int b = grid.bin_of_slot[std::size_t(s)];
               b0[b] += m;
               b1[b] += m * d;
               b2[b] += m * d * d;
-              shared = true;
+              shared |= both;
             }
             if (!shared) continue;
             // The prior of the seasonal spread: the pair's spread over all its dates.
@@ -126,11 +181,11 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
             const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
             for (int s : pending) {
               if (std::isnan(vq[s])) continue;
-              const int b = grid.bin_of_slot[std::size_t(s)];
+              const int* around = &wrapped[std::size_t(grid.bin_of_slot[std::size_t(s)]) * taps];
               double s0 = 0, s1 = 0, s2 = 0, k2 = 0;
-              for (int j = -half; j <= half; ++j) {
-                const int bb = ((b + j) % bins + bins) % bins;
-                const double k = kernel[std::size_t(j + half)];
+              for (int j = 0; j < taps; ++j) {
+                const int bb = around[j];
+                const double k = kernel[std::size_t(j)];
                 s0 += k * b0[bb];
                 s1 += k * b1[bb];
                 s2 += k * b2[bb];
