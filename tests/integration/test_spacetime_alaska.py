@@ -94,6 +94,36 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         self.assertEqual(spacetime["cells"], report["withheld"])
         self.assertGreater(report["withheld"], 0.29 * report["observed"])
 
+    def test_validate_scores_match_numpy(self):
+        """validate's scores, recomputed with numpy from the withheld stack and the fill it kept."""
+        out = os.path.join(self.tmp, "validation-kept")
+        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                               "--methods", "spacetime", "--out", out, "--seed", "5",
+                               "--withhold", "0.1", "--threads", "2", "--keep-work"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            score = {s["name"]: s for s in json.load(f)["scores"]}["spacetime"]
+        observed = self.stack("observed")
+        gdal = kt.gdal()
+        withheld_input, value, sd = [], [], []
+        for p in sorted(glob.glob(os.path.join(self.root, "observed", "ndvi_*.tif"))):
+            name = os.path.basename(p)
+            ds = gdal.Open(os.path.join(out, "work", "input", name))
+            withheld_input.append(ds.GetRasterBand(1).ReadAsArray().astype(np.float64))
+            ds = gdal.Open(os.path.join(out, "work", "spacetime", name))
+            value.append(ds.GetRasterBand(1).ReadAsArray().astype(np.float64))
+            sd.append(ds.GetRasterBand(2).ReadAsArray().astype(np.float64))
+            ds = None
+        withheld_input, value, sd = map(np.stack, (withheld_input, value, sd))
+        held = np.isfinite(observed) & ~np.isfinite(withheld_input)
+        self.assertEqual(int(held.sum()), score["cells"])
+        err = (value - observed)[held]
+        z = err / sd[held]
+        np.testing.assert_allclose(score["rmse"], np.sqrt(np.mean(err ** 2)), rtol=1e-6)
+        np.testing.assert_allclose(score["within_one_sd"], np.mean(np.abs(err) <= sd[held]),
+                                   atol=1e-6)
+        np.testing.assert_allclose(score["rms_error_over_sd"], np.sqrt(np.mean(z ** 2)), rtol=1e-5)
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)

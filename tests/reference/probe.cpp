@@ -6,6 +6,7 @@
 //   dct INVERSE N0 N1 N2                            then N0*N1*N2 values (row-major); ortho DCT-II
 //                                                   (INVERSE 0) or DCT-III (INVERSE 1)
 //   pls S_SPACE S_TIME N0 N1 N2                     then the values y and the weights w
+#include <chrono>
 #include <cmath>
 #include <iostream>
 #include <string>
@@ -123,6 +124,35 @@ int main() {
     print_array("z", z);
     std::cout << "\"iterations\": " << result.iterations << ", \"converged\": "
               << (result.converged ? "true" : "false") << "}\n";
+  } else if (kind == "pls_timed") {
+    // For tools/bench/pls_reference.py: one solve at a given tolerance with timed plans, the
+    // planning done before the clock starts; prints the solve's seconds.
+    detail::PlsSettings settings;
+    detail::Shape3 shape;
+    std::cin >> settings.s_space >> settings.s_time >> settings.tolerance >> shape[0] >> shape[1] >>
+        shape[2];
+    settings.max_iterations = 5000;
+    const std::size_t n = std::size_t(shape[0]) * shape[1] * shape[2];
+    const auto yf = read_floats(int(n)), wf = read_floats(int(n));
+    std::vector<double> y(yf.begin(), yf.end()), w(wf.begin(), wf.end()), z(n, 0.0);
+    for (std::size_t i = 0; i < n; ++i)
+      if (!(w[i] > 0)) y[i] = 0;
+    detail::DctPlanCache plans(detail::DctPlanning{true, detail::default_wisdom_file()});
+    {
+      detail::DctBuffer warm(n);
+      std::fill(warm.data(), warm.data() + n, 0.0);
+      plans.forward_space(shape, warm.data());
+      plans.inverse_space(shape, warm.data());
+    }
+    detail::PlsWorkspace ws;
+    const auto start = std::chrono::steady_clock::now();
+    const auto result = detail::solve_pls(plans, shape, y, w, settings, z, ws);
+    const double seconds =
+        std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+    std::cout << "{";
+    print_array("z", z);
+    std::cout << "\"iterations\": " << result.iterations << ", \"seconds\": " << seconds
+              << ", \"converged\": " << (result.converged ? "true" : "false") << "}\n";
   } else {
     std::cerr << "probe: unknown problem '" << kind << "'\n";
     return 2;

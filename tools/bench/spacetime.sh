@@ -3,7 +3,9 @@
 # passes or fails). In one run: the GDAL I/O floor (gdal_translate of every date into the same
 # output layout) and kalends spacetime at 1 and N threads; medians of --repeats runs, peak RSS
 # from GNU time, kernel throughput from --verbose. Targets (issue 3): >= 5e6 pixel-dates/s per
-# core in the kernel, whole fill <= 3 x the I/O floor. Writes WORKDIR/spacetime-bench.json.
+# core in the kernel, whole fill <= 3 x the I/O floor. Then one PLS solve by kalends and by an
+# independent numpy/scipy implementation (tools/bench/pls_reference.py). Writes
+# WORKDIR/spacetime-bench.json and WORKDIR/pls-reference.json.
 # Warm cache.
 #
 # usage: tools/bench/spacetime.sh [--width 512] [--height 512] [--dates 46] [--threads 2]
@@ -21,7 +23,7 @@ while [ $# -gt 0 ]; do
     --width|--height|--dates|--threads|--repeats|--workdir)
       [ $# -ge 2 ] || { echo "spacetime.sh: $1 needs a value" >&2; exit 2; }
       v=$2; k=${1#--}; printf -v "$k" '%s' "$v"; shift 2 ;;
-    -h|--help) sed -n '2,12p' "${BASH_SOURCE[0]}"; exit 0 ;;
+    -h|--help) sed -n '2,13p' "${BASH_SOURCE[0]}"; exit 0 ;;
     *) echo "spacetime.sh: unknown argument $1" >&2; exit 2 ;;
   esac
 done
@@ -82,6 +84,10 @@ for r in $(seq 1 "$repeats"); do
   done
 done
 rm -rf "$workdir/out-floor" "$workdir/out-kalends"
+# The solver alone against an independent numpy/scipy implementation of the same problem.
+echo "bench: one PLS solve, kalends against numpy/scipy" >&2
+"$py" "$root/tools/bench/pls_reference.py" "$stack/ndvi_*.tif" --repeats "$repeats" \
+  --json "$workdir/pls-reference.json" || echo "bench: the PLS reference failed" >&2
 
 "$py" - "$runs" "$workdir/spacetime-bench.json" "$width" "$height" "$dates" "$threads" "$repeats" <<'PY'
 import json, statistics, sys
