@@ -358,9 +358,14 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       wanted[i] = 1;
     }
   }
-  if (analogue_settings.radius > 0)
+  std::vector<double> spatial_variance;
+  if (analogue_settings.radius > 0) {
     detail::fill_by_normalised_convolution(cell_grid, completed, wanted, convolution_scales,
                                            convolution_support);
+    // A convolved value is as uncertain as the difference between values this far apart: the
+    // observations' semivariogram at the distance to the nearest known cell (analogue.hpp).
+    spatial_variance = detail::interpolation_variance(cell_grid, y, weight, wanted, completed);
+  }
 
   const double lo = options_.clamp_min ? *options_.clamp_min : -INFINITY;
   const double hi = options_.clamp_max ? *options_.clamp_max : INFINITY;
@@ -383,6 +388,8 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       if (!(weight[i] > 0) && !std::isnan(completed[i])) fit = completed[i];
       if (!(weight[i] > 0) && !std::isnan(analogue[i]))
         variance = (1.0 - model_share) * analogue_variance[i] + model_share * model_variance;
+      else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
+        variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));
       out.sd[o] = float(std::sqrt(variance));
     }

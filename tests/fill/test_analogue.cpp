@@ -3,6 +3,7 @@
 #include <catch2/catch.hpp>
 
 #include <cmath>
+#include <cstdint>
 #include <random>
 #include <vector>
 
@@ -106,4 +107,39 @@ TEST_CASE("normalised convolution leaves cells beyond its largest kernel unknown
   fill_by_normalised_convolution(grid, field, wanted, scales, 0.05);
   for (int c = 1; c <= 6; ++c) CHECK(field[c] == Approx(2.0));
   for (int c = 7; c < cols; ++c) CHECK(std::isnan(field[c]));
+}
+
+TEST_CASE("interpolation variance is twice the semivariogram at the distance to known cells") {
+  // Observations rise linearly along rows (slope a per pixel) and are constant down columns, so
+  // the pooled semivariogram is gamma(h) = (a^2 h^2 / 2 + 0) / 2 = a^2 h^2 / 4 (as many pairs
+  // along rows as down columns on a square grid with a square hole in its middle).
+  const int n = 40, slots = 2, hole0 = 15, hole1 = 25;  // hole rows/cols 15..25
+  const double a = 0.01;
+  const std::size_t cells = std::size_t(n) * n * slots;
+  std::vector<double> y(cells, 0.0), weight(cells, 0.0), field(cells, NAN);
+  std::vector<std::uint8_t> wanted(cells, 0);
+  std::vector<int> bins(slots, 0);
+  for (int r = 0; r < n; ++r)
+    for (int c = 0; c < n; ++c)
+      for (int s = 0; s < slots; ++s) {
+        const std::size_t i = (std::size_t(r) * n + c) * slots + s;
+        const bool in_hole = r >= hole0 && r <= hole1 && c >= hole0 && c <= hole1;
+        if (in_hole) {
+          wanted[i] = 1;
+          field[i] = 0.5;  // as if the convolution had filled it
+        } else {
+          y[i] = a * c;
+          weight[i] = 1;
+          field[i] = y[i];
+        }
+      }
+  const CellGrid grid{n, n, slots, bins, 1, 16.0};
+  const auto variance = interpolation_variance(grid, y, weight, wanted, field);
+  auto at = [&](int r, int c) { return variance[(std::size_t(r) * n + c) * slots + 1]; };
+  // The hole's centre is 6 px from the nearest known cell, its edge cells 1 px.
+  CHECK(at(20, 20) == Approx(2.0 * a * a * 36 / 4).epsilon(1e-9));
+  CHECK(at(15, 20) == Approx(2.0 * a * a * 1 / 4).epsilon(1e-9));
+  CHECK(at(17, 20) == Approx(2.0 * a * a * 9 / 4).epsilon(1e-9));
+  // Known cells get none.
+  CHECK(std::isnan(at(5, 5)));
 }
