@@ -293,7 +293,7 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
   }
   if (std::isnan(gamma[max_lag])) return out;
   // Distance to the nearest known cell, per date: two-pass chamfer transform (weights 1 and
-  // sqrt 2; Borgefors 1986, Comput. Vision Graph. Image Process. 34:344-371).
+  // sqrt 2; [B86]).
   const double diagonal = std::sqrt(2.0), far = 1e9;
   std::vector<double> distance(pixels);
   for (int s = 0; s < slots; ++s) {

@@ -4,6 +4,10 @@
 // [KW93] Knutsson, H. & Westin, C.-F. (1993), Normalized and differential convolution, Proc.
 //       IEEE CVPR, 515-523 (convolve the values times a certainty, divide by the convolved
 //       certainty; pages from memory).
+// [M63] Matheron, G. (1963), Principles of geostatistics, Economic Geology 58:1246-1266 (the
+//       semivariogram; pages from memory).
+// [B86] Borgefors, G. (1986), Distance transformations in digital images, Comput. Vision Graph.
+//       Image Process. 34:344-371 (the two-pass chamfer transform; pages from memory).
 //
 // Analogues (learning each pixel's relation to its neighbours from the dates on which both were
 // observed; common practice, no single source). NDVI changes sharply from one pixel to the next, but the difference between two
@@ -65,7 +69,7 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
 /// observations (pooled over the block's dates, along rows and columns) and h the distance, in
 /// pixels, from the cell to the nearest cell of the same date that was known before the
 /// convolution (observed, or a value the convolution did not make). NaN elsewhere.
-/// Matheron (1963), Economic Geology 58:1246-1266: gamma(h) = E[(Z(x + h) - Z(x))^2] / 2, so
+/// [M63]: gamma(h) = E[(Z(x + h) - Z(x))^2] / 2, so
 /// 2 gamma(h) is the mean square error of taking the value of a cell h away. The convolution
 /// averages several such cells, which would lower it toward gamma(h); on transplanted masks with
 /// holes (never the masked files) gamma(h) gave too small an sd and 2 gamma(h) about the right
