@@ -263,8 +263,46 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
   const int rows = grid.rows, cols = grid.cols, slots = grid.slots;
   const std::size_t pixels = std::size_t(rows) * cols, cells = pixels * slots;
   std::vector<double> out(cells, NAN);
-  // Semivariogram of the observations at lags 1..max_lag along rows and columns.
-  const int max_lag = std::max(1, std::min(32, std::max(rows, cols) - 1));
+  bool any = false;
+  for (std::size_t i = 0; i < cells && !any; ++i) any = wanted[i] && !std::isnan(field[i]);
+  if (!any) return out;
+  // Distance to the nearest known cell, per date, kept in `out` for now: two-pass chamfer
+  // transform (weights 1 and sqrt 2; [B86]).
+  const double diagonal = std::sqrt(2.0), far = 1e9;
+  std::vector<double> distance(pixels);
+  double farthest = 0;
+  for (int s = 0; s < slots; ++s) {
+    for (std::size_t p = 0; p < pixels; ++p) {
+      const std::size_t i = p * slots + s;
+      distance[p] = (!wanted[i] && !std::isnan(field[i])) ? 0.0 : far;
+    }
+    auto relax = [&](int r, int c, int dr, int dc, double step) {
+      const int rr = r + dr, cc = c + dc;
+      if (rr < 0 || rr >= rows || cc < 0 || cc >= cols) return;
+      double& here = distance[std::size_t(r) * cols + c];
+      here = std::min(here, distance[std::size_t(rr) * cols + cc] + step);
+    };
+    for (int r = 0; r < rows; ++r)
+      for (int c = 0; c < cols; ++c) {
+        relax(r, c, -1, 0, 1.0), relax(r, c, 0, -1, 1.0);
+        relax(r, c, -1, -1, diagonal), relax(r, c, -1, 1, diagonal);
+      }
+    for (int r = rows - 1; r >= 0; --r)
+      for (int c = cols - 1; c >= 0; --c) {
+        relax(r, c, 1, 0, 1.0), relax(r, c, 0, 1, 1.0);
+        relax(r, c, 1, 1, diagonal), relax(r, c, 1, -1, diagonal);
+      }
+    for (std::size_t p = 0; p < pixels; ++p) {
+      const std::size_t i = p * slots + s;
+      if (!wanted[i] || std::isnan(field[i]) || distance[p] >= far) continue;
+      out[i] = distance[p];
+      farthest = std::max(farthest, distance[p]);
+    }
+  }
+  // Semivariogram of the observations at lags 1..max_lag along rows and columns, no farther
+  // than the distances need.
+  const int max_lag = std::max(
+      1, std::min({32, std::max(rows, cols) - 1, int(std::ceil(farthest)) + 1}));
   std::vector<double> sum(max_lag + 1, 0.0), count(max_lag + 1, 0.0);
   auto add_pair = [&](std::size_t a, std::size_t b, int h) {
     if (!(weight[a] > 0 && weight[b] > 0)) return;
@@ -291,42 +329,18 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
     if (count[h] >= 30) last = std::max(std::isnan(last) ? 0.0 : last, 0.5 * sum[h] / count[h]);
     gamma[h] = last;
   }
-  if (std::isnan(gamma[max_lag])) return out;
-  // Distance to the nearest known cell, per date: two-pass chamfer transform (weights 1 and
-  // sqrt 2; [B86]).
-  const double diagonal = std::sqrt(2.0), far = 1e9;
-  std::vector<double> distance(pixels);
-  for (int s = 0; s < slots; ++s) {
-    for (std::size_t p = 0; p < pixels; ++p) {
-      const std::size_t i = p * slots + s;
-      distance[p] = (!wanted[i] && !std::isnan(field[i])) ? 0.0 : far;
+  for (double& v : out) {
+    if (std::isnan(v)) continue;
+    if (std::isnan(gamma[max_lag])) {
+      v = NAN;
+      continue;
     }
-    auto relax = [&](int r, int c, int dr, int dc, double step) {
-      const int rr = r + dr, cc = c + dc;
-      if (rr < 0 || rr >= rows || cc < 0 || cc >= cols) return;
-      double& here = distance[std::size_t(r) * cols + c];
-      here = std::min(here, distance[std::size_t(rr) * cols + cc] + step);
-    };
-    for (int r = 0; r < rows; ++r)
-      for (int c = 0; c < cols; ++c) {
-        relax(r, c, -1, 0, 1.0), relax(r, c, 0, -1, 1.0);
-        relax(r, c, -1, -1, diagonal), relax(r, c, -1, 1, diagonal);
-      }
-    for (int r = rows - 1; r >= 0; --r)
-      for (int c = cols - 1; c >= 0; --c) {
-        relax(r, c, 1, 0, 1.0), relax(r, c, 0, 1, 1.0);
-        relax(r, c, 1, 1, diagonal), relax(r, c, 1, -1, diagonal);
-      }
-    for (std::size_t p = 0; p < pixels; ++p) {
-      const std::size_t i = p * slots + s;
-      if (!wanted[i] || std::isnan(field[i]) || distance[p] >= far) continue;
-      const double h = std::min(distance[p], double(max_lag));
-      // Linear between the integer lags.
-      const int lo = std::max(1, int(std::floor(h)));
-      const int hi = std::min(max_lag, lo + 1);
-      const double f = std::clamp(h - lo, 0.0, 1.0);
-      out[i] = 2.0 * ((1 - f) * gamma[lo] + f * gamma[hi]);
-    }
+    const double h = std::min(v, double(max_lag));
+    // Linear between the integer lags.
+    const int lo = std::max(1, int(std::floor(h)));
+    const int hi = std::min(max_lag, lo + 1);
+    const double f = std::clamp(h - lo, 0.0, 1.0);
+    v = 2.0 * ((1 - f) * gamma[lo] + f * gamma[hi]);
   }
   return out;
 }
