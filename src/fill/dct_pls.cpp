@@ -1,6 +1,6 @@
 #include "fill/dct_pls.hpp"
 
-#include <unistd.h>
+#include "io/text_file.hpp"
 
 #include <fftw3.h>
 
@@ -8,7 +8,6 @@
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
-#include <fstream>
 #include <new>
 #include <numbers>
 #include <numeric>
@@ -55,29 +54,18 @@ void DctBuffer::resize(std::size_t n) {
 
 namespace {
 
-// Writes FFTW's accumulated wisdom atomically; a cache that cannot be written is skipped.
+// Adds FFTW's accumulated wisdom to the cache file; a cache that cannot be written is skipped.
 void save_wisdom(const std::string& file) {
   char* text = fftw_export_wisdom_to_string();
   if (!text) return;
   const std::string wisdom(text);
   fftw_free(text);
-  // Runs in parallel (a test suite, array jobs) may save at once: each writes its own
-  // temporary, and the last rename wins with a complete file.
-  namespace fs = std::filesystem;
   std::error_code ec;
-  fs::create_directories(fs::path(file).parent_path(), ec);
-  const std::string temporary = file + "." + std::to_string(::getpid()) + ".partial";
-  {
-    std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
-    out << wisdom;
-    out.flush();
-    if (!out) {
-      fs::remove(temporary, ec);
-      return;
-    }
+  std::filesystem::create_directories(std::filesystem::path(file).parent_path(), ec);
+  try {
+    write_text_atomically(file, wisdom);
+  } catch (const std::exception&) {
   }
-  fs::rename(temporary, file, ec);
-  if (ec) fs::remove(temporary, ec);
 }
 
 }  // namespace
@@ -335,19 +323,11 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   for (std::size_t i = 0; i < n; ++i) omega = std::max(omega, w[i]);
   if (omega <= 0) return result;  // nothing observed: z stays at its start value
 
-  // s_space sigma^2 per spatial frequency; the bands of s_time L^2 (L: Neumann second
-  // difference along time, diagonal -1, -2, ..., -2, -1 and off-diagonals 1).
+  // s_space sigma^2 per spatial frequency (the penalty's eigenvalues of a one-slot array); the
+  // bands of s_time L^2 (L: Neumann second difference along time, diagonal -1, -2, ..., -2, -1
+  // and off-diagonals 1).
   std::vector<double> space_term(frequencies);
-  {
-    std::vector<double> l0(n0), l1(n1);
-    for (int a = 0; a < n0; ++a) l0[a] = -2.0 + 2.0 * std::cos(std::numbers::pi * a / n0);
-    for (int b = 0; b < n1; ++b) l1[b] = -2.0 + 2.0 * std::cos(std::numbers::pi * b / n1);
-    for (int a = 0; a < n0; ++a)
-      for (int b = 0; b < n1; ++b) {
-        const double sigma = l0[a] + l1[b];
-        space_term[std::size_t(a) * n1 + b] = settings.s_space * sigma * sigma;
-      }
-  }
+  penalty_eigenvalues({n0, n1, 1}, settings.s_space, 0.0, space_term);
   std::vector<double> band0(nt, 0.0), band1(nt, 0.0), band2(nt, 0.0);  // (t,t), (t+1,t), (t+2,t)
   if (nt > 1) {
     std::vector<double> diag(nt, -2.0);
@@ -412,7 +392,7 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   double scale = 1.0;
   for (int k = 0; k < 2; ++k)
     if (shape[k] > 1) scale *= 2.0 * shape[k];
-  std::vector<double> scaled0(nt), scaled1(nt + 1, 0.0), scaled2(nt + 2, 0.0);
+  std::vector<double> scaled0(nt), scaled1(nt), scaled2(nt);
   for (int t = 0; t < nt; ++t) {
     scaled0[t] = band0[t] / scale;
     scaled1[t] = band1[t] / scale;

@@ -21,9 +21,13 @@ namespace kalends::detail {
 
 namespace fs = std::filesystem;
 
-std::string temporary_name(const std::string& final_path) {
+std::string temporary_name(const std::string& final_path, const std::string& tag) {
   const fs::path p(final_path);
-  return (p.parent_path() / ("." + p.filename().string() + ".partial")).string();
+  std::string name = ".";
+  name += p.filename().string();
+  if (!tag.empty()) name.append(".").append(tag);
+  name += ".partial";
+  return (p.parent_path() / name).string();
 }
 
 namespace {
@@ -88,12 +92,18 @@ void write_text_atomically(const std::string& path, const std::string& text) {
       if (old == text) return;
     }
   }
-  const std::string temporary = temporary_name(path);
+  // One temporary per process: runs in parallel (a test suite, array jobs, caches shared
+  // between runs) may write the same file at once, and the last rename wins with a whole file.
+  const std::string temporary = temporary_name(path, std::to_string(::getpid()));
   {
     std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
     out << text;
     out.flush();
-    if (!out) throw OutputError(path, "cannot write");
+    if (!out) {
+      std::error_code ec;
+      fs::remove(temporary, ec);
+      throw OutputError(path, "cannot write");
+    }
   }
   publish(temporary, path);
   sync_path(fs::path(path).parent_path().string(), true);

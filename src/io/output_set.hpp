@@ -2,6 +2,8 @@
 // hidden temporary name and renamed only when every one is complete.
 #pragma once
 
+#include "io/text_file.hpp"
+
 #include <gdal_priv.h>
 
 #include <map>
@@ -100,13 +102,9 @@ void crop_raster(const std::string& source, const Window& window, const std::str
 void publish_file(const std::string& temporary, const std::string& final_path);
 
 /// The hidden name a file is written under before it is published.
-std::string temporary_name(const std::string& final_path);
+std::string temporary_name(const std::string& final_path, const std::string& tag = "");
 
 /// True when two files hold the same bytes.
 bool file_checksum_equal(const std::string& a, const std::string& b);
-
-/// Writes `text` to `path` atomically (temporary, fsync, rename); leaves `path` untouched when
-/// it already holds exactly `text`.
-void write_text_atomically(const std::string& path, const std::string& text);
 
 }  // namespace kalends::detail
