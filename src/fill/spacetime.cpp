@@ -38,10 +38,6 @@ double median(std::vector<double>& v) {
   return *mid;
 }
 
-}  // namespace
-
-namespace {
-
 detail::DctPlanning planning_of(const std::string& wisdom) {
   if (wisdom == "none") return {false, ""};
   if (wisdom == "auto") return {true, detail::default_wisdom_file()};

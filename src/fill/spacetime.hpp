@@ -43,7 +43,8 @@
 // analogues, blended 0.7 / 0.3 with the model (the share chosen on transplanted masks, not on
 // the files accuracy is claimed on); pixels never observed take the normalised convolution of
 // the completed field; cells neither stage reaches keep the model. The sd of an analogue value
-// is 0.7 x the analogues' variance + 0.3 x the model's.
+// is 0.7 x the analogues' variance + 0.3 x the model's; that of a convolved value at least
+// 2 gamma(d), the observations' semivariogram at its distance to the nearest known cell.
 //
 // Pixels with no observation within `halo` pixels on any date are not filled (flag 3). The
 // engine hands the method blocks with that halo; results then do not depend on block size to
