@@ -389,14 +389,21 @@ PartitionName=debug Nodes=localhost Default=YES MaxTime=INFINITE State=UP
 
     def daemon(self, argv, pid_file, log):
         done = subprocess.run(argv, env=self.env, capture_output=True, text=True, timeout=60)
+        # The daemon creates its pid file before it writes the pid: wait for the number.
+        def pid():
+            try:
+                with open(pid_file) as f:
+                    text = f.read().strip()
+            except OSError:
+                return None
+            return int(text) if text.isdigit() else None
         deadline = time.time() + 20
-        while time.time() < deadline and not os.path.exists(pid_file):
+        while time.time() < deadline and pid() is None:
             time.sleep(0.2)
-        if done.returncode != 0 or not os.path.exists(pid_file):
+        if done.returncode != 0 or pid() is None:
             raise unittest.SkipTest("%s did not start (exit %d): %s %s" % (os.path.basename(argv[0]), done.returncode,
                                                                            done.stderr.strip(), self.tail(log)))
-        with open(pid_file) as f:
-            self.pids.append((int(f.read().strip()), os.path.basename(argv[0])))
+        self.pids.append((pid(), os.path.basename(argv[0])))
 
     @staticmethod
     def tail(path):
