@@ -3,6 +3,9 @@
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
+#include <mutex>
+
+#include "fill/parallel.hpp"
 
 namespace kalends::detail {
 
@@ -122,10 +125,8 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
       ++observations[i / slots];
     }
 
-  std::vector<double> sum_w(slots), sum_wx(slots), count(slots);
-  std::vector<double> b0(bins), b1(bins), b2(bins);
-  std::vector<int> pending;
   std::vector<std::size_t> predicted;
+  std::mutex predicted_mutex;
   // After the first round a gap can gain a prediction only from a neighbour predicted in the
   // round before: the others were already tried, and whether a pair qualifies depends only on
   // observed dates. `near_new` counts, per cell, the window's cells predicted last round.
@@ -133,84 +134,95 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   for (int round = 0; round < settings.rounds; ++round) {
     if (round > 0) count_in_windows(rows, cols, slots, radius, predicted, near_new);
     predicted.clear();
-    for (int r = 0; r < rows; ++r)
-      for (int c = 0; c < cols; ++c) {
-        const std::size_t p = std::size_t(r) * cols + c;
-        if (observations[p] == 0) continue;
-        pending.clear();
-        for (int s = 0; s < slots; ++s)
-          if (std::isnan(value[p * slots + s]) && (round == 0 || near_new[p * slots + s] > 0))
-            pending.push_back(s);
-        if (pending.empty()) continue;
-        std::fill(sum_w.begin(), sum_w.end(), 0.0);
-        std::fill(sum_wx.begin(), sum_wx.end(), 0.0);
-        std::fill(count.begin(), count.end(), 0.0);
-        for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
-          for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
-            const std::size_t q = std::size_t(rr) * cols + cc;
-            if (q == p || observations[q] == 0) continue;
-            const double* vq = &value[q * slots];
-            bool useful = false;
-            for (int s : pending) useful |= !std::isnan(vq[s]);
-            if (!useful) continue;
-            // Differences on co-observed dates, summed per season bin.
-            std::fill(b0.begin(), b0.end(), 0.0);
-            std::fill(b1.begin(), b1.end(), 0.0);
-            std::fill(b2.begin(), b2.end(), 0.0);
-            bool shared = false;  // any co-observed date
-            // Without branches: a third of the dates or more may be missing, at random.
-            const double* wp_row = &weight[p * slots];
-            const double* wq_row = &weight[q * slots];
-            const double* yp_row = &y[p * slots];
-            const double* yq_row = &y[q * slots];
-            for (int s = 0; s < slots; ++s) {
-              const bool both = wp_row[s] > 0 && wq_row[s] > 0;
-              const double m = both ? wp_row[s] * wq_row[s] : 0.0;
-              const double d = both ? yp_row[s] - yq_row[s] : 0.0;
-              const int b = grid.bin_of_slot[std::size_t(s)];
-              b0[b] += m;
-              b1[b] += m * d;
-              b2[b] += m * d * d;
-              shared |= both;
-            }
-            if (!shared) continue;
-            // The prior of the seasonal spread: the pair's spread over all its dates.
-            double t0 = 0, t1 = 0, t2 = 0;
-            for (int b = 0; b < bins; ++b) t0 += b0[b], t1 += b1[b], t2 += b2[b];
-            if (t0 < settings.min_pairs_in_all) continue;
-            const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
-            for (int s : pending) {
-              if (std::isnan(vq[s])) continue;
-              const int* around = &wrapped[std::size_t(grid.bin_of_slot[std::size_t(s)]) * taps];
-              double s0 = 0, s1 = 0, s2 = 0, k2 = 0;
-              for (int j = 0; j < taps; ++j) {
-                const int bb = around[j];
-                const double k = kernel[std::size_t(j)];
-                s0 += k * b0[bb];
-                s1 += k * b1[bb];
-                s2 += k * b2[bb];
-                k2 += k * k * b0[bb];
+    // Rows in parallel: a round reads only cells known before it and writes only p's own
+    // unknown cells, so the rows are independent.
+    parallel_ranges(std::size_t(rows), 2, [&](std::size_t row_begin, std::size_t row_end) {
+      std::vector<double> sum_w(slots), sum_wx(slots), count(slots);
+      std::vector<double> b0(bins), b1(bins), b2(bins);
+      std::vector<int> pending;
+      std::vector<std::size_t> mine;
+      for (int r = int(row_begin); r < int(row_end); ++r)
+        for (int c = 0; c < cols; ++c) {
+          const std::size_t p = std::size_t(r) * cols + c;
+          if (observations[p] == 0) continue;
+          pending.clear();
+          for (int s = 0; s < slots; ++s)
+            if (std::isnan(value[p * slots + s]) && (round == 0 || near_new[p * slots + s] > 0))
+              pending.push_back(s);
+          if (pending.empty()) continue;
+          std::fill(sum_w.begin(), sum_w.end(), 0.0);
+          std::fill(sum_wx.begin(), sum_wx.end(), 0.0);
+          std::fill(count.begin(), count.end(), 0.0);
+          for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
+            for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
+              const std::size_t q = std::size_t(rr) * cols + cc;
+              if (q == p || observations[q] == 0) continue;
+              const double* vq = &value[q * slots];
+              bool useful = false;
+              for (int s : pending) useful |= !std::isnan(vq[s]);
+              if (!useful) continue;
+              // Differences on co-observed dates, summed per season bin.
+              std::fill(b0.begin(), b0.end(), 0.0);
+              std::fill(b1.begin(), b1.end(), 0.0);
+              std::fill(b2.begin(), b2.end(), 0.0);
+              bool shared = false;  // any co-observed date
+              // Without branches: a third of the dates or more may be missing, at random.
+              const double* wp_row = &weight[p * slots];
+              const double* wq_row = &weight[q * slots];
+              const double* yp_row = &y[p * slots];
+              const double* yq_row = &y[q * slots];
+              for (int s = 0; s < slots; ++s) {
+                const bool both = wp_row[s] > 0 && wq_row[s] > 0;
+                const double m = both ? wp_row[s] * wq_row[s] : 0.0;
+                const double d = both ? yp_row[s] - yq_row[s] : 0.0;
+                const int b = grid.bin_of_slot[std::size_t(s)];
+                b0[b] += m;
+                b1[b] += m * d;
+                b2[b] += m * d * d;
+                shared |= both;
               }
-              if (!(s0 > 0) || !(k2 > 0)) continue;
-              const double n_eff = s0 * s0 / k2;
-              if (n_eff < settings.min_pairs) continue;
-              const double mean = s1 / s0, spread = std::max(0.0, s2 / s0 - mean * mean);
-              const double v = (spread * n_eff + 2.0 * prior) / (n_eff + 2.0) * (1.0 + 1.0 / n_eff) +
-                               known_variance[q * slots + s];
-              sum_w[s] += 1.0 / v;
-              sum_wx[s] += (vq[s] + mean) / v;
-              count[s] += 1.0;
+              if (!shared) continue;
+              // The prior of the seasonal spread: the pair's spread over all its dates.
+              double t0 = 0, t1 = 0, t2 = 0;
+              for (int b = 0; b < bins; ++b) t0 += b0[b], t1 += b1[b], t2 += b2[b];
+              if (t0 < settings.min_pairs_in_all) continue;
+              const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
+              for (int s : pending) {
+                if (std::isnan(vq[s])) continue;
+                const int* around = &wrapped[std::size_t(grid.bin_of_slot[std::size_t(s)]) * taps];
+                double s0 = 0, s1 = 0, s2 = 0, k2 = 0;
+                for (int j = 0; j < taps; ++j) {
+                  const int bb = around[j];
+                  const double k = kernel[std::size_t(j)];
+                  s0 += k * b0[bb];
+                  s1 += k * b1[bb];
+                  s2 += k * b2[bb];
+                  k2 += k * k * b0[bb];
+                }
+                if (!(s0 > 0) || !(k2 > 0)) continue;
+                const double n_eff = s0 * s0 / k2;
+                if (n_eff < settings.min_pairs) continue;
+                const double mean = s1 / s0, spread = std::max(0.0, s2 / s0 - mean * mean);
+                const double v =
+                    (spread * n_eff + 2.0 * prior) / (n_eff + 2.0) * (1.0 + 1.0 / n_eff) +
+                    known_variance[q * slots + s];
+                sum_w[s] += 1.0 / v;
+                sum_wx[s] += (vq[s] + mean) / v;
+                count[s] += 1.0;
+              }
             }
+          for (int s : pending) {
+            if (!(sum_w[s] > 0)) continue;
+            const std::size_t i = p * slots + s;
+            estimate[i] = sum_wx[s] / sum_w[s];
+            known_variance[i] = 1.0 / sum_w[s];
+            variance[i] = count[s] / sum_w[s];
+            mine.push_back(i);
           }
-        for (int s : pending) {
-          if (!(sum_w[s] > 0)) continue;
-          const std::size_t i = p * slots + s;
-          estimate[i] = sum_wx[s] / sum_w[s];
-          known_variance[i] = 1.0 / sum_w[s];
-          variance[i] = count[s] / sum_w[s];
-          predicted.push_back(i);
         }
-      }
+      std::lock_guard lock(predicted_mutex);
+      predicted.insert(predicted.end(), mine.begin(), mine.end());
+    });
     if (predicted.empty()) break;
     for (std::size_t i : predicted) value[i] = estimate[i];
   }
@@ -221,39 +233,42 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
                                     std::span<const double> scales, double min_support) {
   const int rows = grid.rows, cols = grid.cols, slots = grid.slots;
   const std::size_t pixels = std::size_t(rows) * cols;
-  std::vector<double> values(pixels), support(pixels), scratch;
-  std::vector<std::uint8_t> open(pixels);
   std::vector<std::vector<double>> taps;
   for (double scale : scales) taps.push_back(gaussian_taps(scale));
-  for (int s = 0; s < slots; ++s) {
-    std::size_t left = 0;
-    for (std::size_t p = 0; p < pixels; ++p) {
-      const std::size_t i = p * slots + s;
-      open[p] = wanted[i] && std::isnan(field[i]);
-      left += open[p];
-    }
-    for (std::size_t k = 0; k < scales.size() && left > 0; ++k) {
-      const bool last = k + 1 == scales.size();
+  // Dates in parallel: each reads and writes only its own slot.
+  parallel_ranges(std::size_t(slots), 1, [&](std::size_t slot_begin, std::size_t slot_end) {
+    std::vector<double> values(pixels), support(pixels), scratch;
+    std::vector<std::uint8_t> open(pixels);
+    for (int s = int(slot_begin); s < int(slot_end); ++s) {
+      std::size_t left = 0;
       for (std::size_t p = 0; p < pixels; ++p) {
-        const double v = field[p * slots + s];
-        // Only values known before this date's pass: cells filled at a smaller scale do not
-        // feed a larger one.
-        const bool known = !std::isnan(v) && open[p] != 2;
-        values[p] = known ? v : 0.0;
-        support[p] = known ? 1.0 : 0.0;
+        const std::size_t i = p * slots + s;
+        open[p] = wanted[i] && std::isnan(field[i]);
+        left += open[p];
       }
-      convolve_plane(rows, cols, taps[k], values, scratch);
-      convolve_plane(rows, cols, taps[k], support, scratch);
-      for (std::size_t p = 0; p < pixels; ++p) {
-        if (open[p] != 1) continue;
-        if (support[p] >= min_support || (last && support[p] > 1e-9)) {
-          field[p * slots + s] = values[p] / support[p];
-          open[p] = 2;
-          --left;
+      for (std::size_t k = 0; k < scales.size() && left > 0; ++k) {
+        const bool last = k + 1 == scales.size();
+        for (std::size_t p = 0; p < pixels; ++p) {
+          const double v = field[p * slots + s];
+          // Only values known before this date's pass: cells filled at a smaller scale do not
+          // feed a larger one.
+          const bool known = !std::isnan(v) && open[p] != 2;
+          values[p] = known ? v : 0.0;
+          support[p] = known ? 1.0 : 0.0;
+        }
+        convolve_plane(rows, cols, taps[k], values, scratch);
+        convolve_plane(rows, cols, taps[k], support, scratch);
+        for (std::size_t p = 0; p < pixels; ++p) {
+          if (open[p] != 1) continue;
+          if (support[p] >= min_support || (last && support[p] > 1e-9)) {
+            field[p * slots + s] = values[p] / support[p];
+            open[p] = 2;
+            --left;
+          }
         }
       }
     }
-  }
+  });
 }
 
 std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const double> y,

@@ -1,7 +1,5 @@
 #include "fill/dct_pls.hpp"
 
-#include "io/text_file.hpp"
-
 #include <fftw3.h>
 
 #include <algorithm>
@@ -11,6 +9,9 @@
 #include <new>
 #include <numbers>
 #include <numeric>
+
+#include "fill/parallel.hpp"
+#include "io/text_file.hpp"
 
 namespace kalends::detail {
 
@@ -93,33 +94,44 @@ std::size_t DctPlanCache::plans() const {
   return plans_.size();
 }
 
-const void* DctPlanCache::plan(const Shape3& shape, bool inverse, bool space_only) const {
+const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, bool aligned) const {
   std::lock_guard lock(mutex_);
-  const auto key = std::make_tuple(shape, inverse, space_only);
+  const auto key = std::make_tuple(shape, inverse, int(pass), aligned);
   auto it = plans_.find(key);
   if (it != plans_.end()) return it->second;
   // Axes of length 1 are left out: FFTW's r2r of length 1 is the identity times 2, which the
   // normalisation below would have to undo for nothing.
-  int n[3], kinds_n = 0;
+  int n[3], kinds_n = 0, batch = 1, stride = 1;
   fftw_r2r_kind kinds[3];
-  for (int k = 0; k < (space_only ? 2 : 3); ++k)
-    if (shape[k] > 1) {
-      n[kinds_n] = shape[k];
-      kinds[kinds_n] = inverse ? FFTW_REDFT01 : FFTW_REDFT10;
-      ++kinds_n;
+  const fftw_r2r_kind kind = inverse ? FFTW_REDFT01 : FFTW_REDFT10;
+  if (pass == Pass::whole) {
+    for (int k = 0; k < 3; ++k)
+      if (shape[k] > 1) {
+        n[kinds_n] = shape[k];
+        kinds[kinds_n++] = kind;
+      }
+  } else {
+    // One row (axis 1) or one column (axis 0) of the space axes, for every slot at once: the
+    // slots are the fastest axis, so the batch is the slot run, at distance 1.
+    const int axis = pass == Pass::along_rows ? 1 : 0;
+    if (shape[axis] > 1) {
+      n[kinds_n] = shape[axis];
+      kinds[kinds_n++] = kind;
     }
+    batch = shape[2];
+    stride = pass == Pass::along_rows ? shape[2] : shape[1] * shape[2];
+  }
   void* made = nullptr;
   if (kinds_n > 0) {
     // Planning overwrites the array (FFTW_MEASURE) or never touches it (FFTW_ESTIMATE), so a
     // scratch buffer of the right alignment will do; plans are later executed on other arrays
-    // of the same alignment (fftw_malloc).
+    // of the same alignment (fftw_malloc), or were made FFTW_UNALIGNED.
     const std::size_t size = std::size_t(shape[0]) * shape[1] * shape[2];
     DctBuffer scratch(size);
-    // Space only: one 2-D transform per slot of the (fastest) time axis, strided by its length.
-    const int batch = space_only ? shape[2] : 1, stride = space_only ? shape[2] : 1;
+    const unsigned alignment = aligned ? 0u : unsigned(FFTW_UNALIGNED);
     auto plan_r2r = [&](unsigned flags) {
       return fftw_plan_many_r2r(kinds_n, n, batch, scratch.data(), nullptr, stride, 1,
-                                scratch.data(), nullptr, stride, 1, kinds, flags);
+                                scratch.data(), nullptr, stride, 1, kinds, flags | alignment);
     };
     if (planning_.measure) {
       const bool keep = !planning_.wisdom_file.empty();
@@ -143,21 +155,47 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse, bool space_onl
 }
 
 void DctPlanCache::forward(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, false, false)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  if (auto p = plan(shape, false, Pass::whole, true))
+    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
 }
 
 void DctPlanCache::inverse(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, true, false)) fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  if (auto p = plan(shape, true, Pass::whole, true))
+    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+}
+
+// The space transform as two passes of one-dimensional transforms, rows then columns, each
+// spread over the threads. Every row (column) uses the same plan whatever the number of
+// threads, so the result does not depend on it; and this is as fast as FFTW's own
+// two-dimensional plan on 256 x 256 x 48 (23.0 against 24.2 ms, FFTW 3.3.10, measured once).
+void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse) const {
+  const std::size_t row = std::size_t(shape[1]) * shape[2];
+  for (Pass pass : {Pass::along_rows, Pass::along_columns}) {
+    const bool rows = pass == Pass::along_rows;
+    const std::size_t count = rows ? std::size_t(shape[0]) : std::size_t(shape[1]);
+    const std::size_t step = rows ? row : std::size_t(shape[2]);
+    // A plan made on an aligned array must run on one of the same alignment [FFTW 3.3 manual,
+    // "New-array Execute Functions"]; offsets of an odd length need the unaligned plan.
+    bool all_aligned = fftw_alignment_of(data) == 0;
+    for (std::size_t k = 0; k < count && all_aligned; ++k)
+      all_aligned = fftw_alignment_of(data + k * step) == 0;
+    auto* p = static_cast<fftw_plan>(const_cast<void*>(plan(shape, inverse, pass, all_aligned)));
+    if (!p) continue;
+    const std::size_t values_per_item = rows ? row : std::size_t(shape[0]) * shape[2];
+    parallel_ranges(count, std::max<std::size_t>(1, (std::size_t(1) << 15) / values_per_item),
+                    [&](std::size_t a, std::size_t b) {
+                      for (std::size_t k = a; k < b; ++k)
+                        fftw_execute_r2r(p, data + k * step, data + k * step);
+                    });
+  }
 }
 
 void DctPlanCache::forward_space(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, false, true))
-    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  space_passes(shape, data, false);
 }
 
 void DctPlanCache::inverse_space(const Shape3& shape, double* data) const {
-  if (auto p = plan(shape, true, true))
-    fftw_execute_r2r(static_cast<fftw_plan>(const_cast<void*>(p)), data, data);
+  space_passes(shape, data, true);
 }
 
 namespace {
@@ -224,6 +262,9 @@ void penalty_eigenvalues(const Shape3& shape, double s_space, double s_time, std
 
 namespace {
 
+// Elements per piece of the solver's parallel loops and sums (a few hundred KiB of doubles).
+constexpr std::size_t vector_chunk = std::size_t(1) << 14;
+
 double unnormalised_scale(const Shape3& shape) {
   double scale = 1.0;
   for (int k = 0; k < 3; ++k)
@@ -239,12 +280,6 @@ void apply_diagonal(const DctPlanCache& plans, const Shape3& shape, std::span<co
   const std::size_t n = eigen.size();
   for (std::size_t i = 0; i < n; ++i) x[i] *= f(eigen[i]);
   plans.inverse(shape, x);
-}
-
-double dot(const double* a, const double* b, std::size_t n) {
-  double s = 0;
-  for (std::size_t i = 0; i < n; ++i) s += a[i] * b[i];
-  return s;
 }
 
 }  // namespace
@@ -355,7 +390,13 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   ws.factor_d.resize(n);
   ws.factor_l1.resize(n);
   ws.factor_l2.resize(n);
-  for (std::size_t f = 0; f < frequencies; ++f) {
+  const std::size_t frequency_grain = std::max<std::size_t>(1, vector_chunk / std::size_t(nt));
+  auto each_frequency = [&](auto&& body) {
+    parallel_ranges(frequencies, frequency_grain, [&](std::size_t a, std::size_t b) {
+      for (std::size_t f = a; f < b; ++f) body(f);
+    });
+  };
+  each_frequency([&](std::size_t f) {
     double* d = ws.factor_d.data() + f * nt;
     double* l1 = ws.factor_l1.data() + f * nt;
     double* l2 = ws.factor_l2.data() + f * nt;
@@ -375,9 +416,9 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       }
       d[t] = dt;
     }
-  }
-  // x <- (LDL^T)^-1 x for frequency f (x contiguous along time); factor_d holds 1 / D.
-  for (double& v : ws.factor_d) v = 1.0 / v;
+    for (int t = 0; t < nt; ++t) d[t] = 1.0 / d[t];  // factor_d holds 1 / D
+  });
+  // x <- (LDL^T)^-1 x for frequency f (x contiguous along time).
   auto solve_frequency = [&](std::size_t f, double* x) {
     const double* inverse_d = ws.factor_d.data() + f * nt;
     const double* l1 = ws.factor_l1.data() + f * nt;
@@ -433,62 +474,89 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   double* d_hat = ws.direction_spectrum.data();
   double* q = ws.preconditioned.data();
   double* ad = ws.product.data();
+  auto in_chunks = [&](auto&& body) { parallel_ranges(n, vector_chunk, body); };
 
   // r = W y - (W + P) z.
   std::copy(z.data(), z.data() + n, q);
   plans.forward_space(shape, q);
-  for (std::size_t f = 0; f < frequencies; ++f) penalty_frequency(f, q + f * nt, ad + f * nt);
+  each_frequency([&](std::size_t f) { penalty_frequency(f, q + f * nt, ad + f * nt); });
   plans.inverse_space(shape, ad);
-  double b_norm = 0;
-  for (std::size_t i = 0; i < n; ++i) {
-    const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
-    b_norm += b * b;
-    r[i] = b - ad[i] - w[i] * z[i];
-  }
-  b_norm = std::sqrt(b_norm);
+  double b_norm = std::sqrt(deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
+    double sum = 0;
+    for (std::size_t i = a; i < e; ++i) {
+      const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
+      sum += b * b;
+      r[i] = b - ad[i] - w[i] * z[i];
+    }
+    return sum;
+  }));
   if (b_norm == 0) b_norm = 1;
   // q <- M r, and its spectrum C_s q to `q_hat` (the solve's output before the inverse).
   auto precondition = [&](double* q_hat) {
-    std::copy(r, r + n, q_hat);
+    in_chunks([&](std::size_t a, std::size_t e) { std::copy(r + a, r + e, q_hat + a); });
     plans.forward_space(shape, q_hat);
-    for (std::size_t f = 0; f < frequencies; ++f) solve_frequency(f, q_hat + f * nt);
     const double inverse_scale = 1.0 / scale;
-    for (std::size_t i = 0; i < n; ++i) q[i] = q_hat[i] * inverse_scale;
+    each_frequency([&](std::size_t f) {
+      double* x = q_hat + f * nt;
+      solve_frequency(f, x);
+      for (int t = 0; t < nt; ++t) q[f * nt + t] = x[t] * inverse_scale;
+    });
     plans.inverse_space(shape, q);
+  };
+  auto dot = [&](const double* a, const double* b) {
+    return deterministic_sum(n, vector_chunk, [&](std::size_t lo, std::size_t hi) {
+      double sum = 0;
+      for (std::size_t i = lo; i < hi; ++i) sum += a[i] * b[i];
+      return sum;
+    });
   };
   // Three 2-D transforms per iteration: the direction is kept in both domains (C_s d =
   // C_s q + beta C_s d_old), so P d needs only an inverse transform.
   precondition(d_hat);
-  std::copy(q, q + n, d);
-  double rq = dot(r, q, n);
+  in_chunks([&](std::size_t a, std::size_t e) { std::copy(q + a, q + e, d + a); });
+  double rq = dot(r, q);
+  double rr = dot(r, r);
   for (int it = 0; it < settings.max_iterations; ++it) {
-    result.relative_residual = std::sqrt(dot(r, r, n)) / b_norm;
+    result.relative_residual = std::sqrt(rr) / b_norm;
     if (result.relative_residual <= settings.tolerance) {
       result.converged = true;
       break;
     }
-    for (std::size_t f = 0; f < frequencies; ++f) penalty_frequency(f, d_hat + f * nt, ad + f * nt);
+    each_frequency([&](std::size_t f) { penalty_frequency(f, d_hat + f * nt, ad + f * nt); });
     plans.inverse_space(shape, ad);
-    for (std::size_t i = 0; i < n; ++i) ad[i] += w[i] * d[i];
-    const double dad = dot(d, ad, n);
+    const double dad = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
+      double sum = 0;
+      for (std::size_t i = a; i < e; ++i) {
+        ad[i] += w[i] * d[i];
+        sum += d[i] * ad[i];
+      }
+      return sum;
+    });
     if (!(dad > 0)) break;
     const double alpha = rq / dad;
-    for (std::size_t i = 0; i < n; ++i) {
-      z[i] += alpha * d[i];
-      r[i] -= alpha * ad[i];
-    }
+    rr = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
+      double sum = 0;
+      for (std::size_t i = a; i < e; ++i) {
+        z[i] += alpha * d[i];
+        r[i] -= alpha * ad[i];
+        sum += r[i] * r[i];
+      }
+      return sum;
+    });
     precondition(ad);  // `ad` is free until the next product
-    const double rq_next = dot(r, q, n);
+    const double rq_next = dot(r, q);
     const double beta = rq_next / rq;
     rq = rq_next;
-    for (std::size_t i = 0; i < n; ++i) {
-      d[i] = q[i] + beta * d[i];
-      d_hat[i] = ad[i] + beta * d_hat[i];
-    }
+    in_chunks([&](std::size_t a, std::size_t e) {
+      for (std::size_t i = a; i < e; ++i) {
+        d[i] = q[i] + beta * d[i];
+        d_hat[i] = ad[i] + beta * d_hat[i];
+      }
+    });
     result.iterations = it + 1;
   }
   if (!result.converged) {
-    result.relative_residual = std::sqrt(dot(r, r, n)) / b_norm;
+    result.relative_residual = std::sqrt(rr) / b_norm;
     result.converged = result.relative_residual <= settings.tolerance;
   }
   return result;

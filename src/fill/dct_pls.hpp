@@ -93,11 +93,13 @@ class DctPlanCache {
   std::size_t plans() const;
 
  private:
-  const void* plan(const Shape3& shape, bool inverse, bool space_only) const;
+  enum class Pass { whole, along_rows, along_columns };
+  const void* plan(const Shape3& shape, bool inverse, Pass pass, bool aligned) const;
+  void space_passes(const Shape3& shape, double* data, bool inverse) const;
   DctPlanning planning_;
   mutable bool wisdom_read_ = false;
   mutable std::mutex mutex_;
-  mutable std::map<std::tuple<Shape3, bool, bool>, void*> plans_;
+  mutable std::map<std::tuple<Shape3, bool, int, bool>, void*> plans_;
 };
 
 /// A double array with FFTW's alignment.

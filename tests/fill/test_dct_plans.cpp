@@ -4,7 +4,10 @@
 
 #include <catch2/catch.hpp>
 
+#include <tbb/task_arena.h>
+
 #include <cmath>
+#include <cstring>
 #include <filesystem>
 #include <fstream>
 #include <random>
@@ -112,4 +115,26 @@ TEST_CASE("space-only transforms act on axes 0 and 1 of every slot") {
   plans.inverse_space(shape, mixed.data());
   // inverse_space(forward_space(x)) = 4 n0 n1 x.
   for (std::size_t i = 0; i < n; ++i) REQUIRE(mixed[i] == Approx(4.0 * 30 * x[i]).margin(1e-9));
+}
+
+TEST_CASE("the solve gives the same doubles on one thread and on two") {
+  // Its loops and sums are cut in pieces that do not depend on the threads (fill/parallel.hpp).
+  // 37 x 41 x 23 is larger than one piece of the sums and has odd lengths (unaligned rows).
+  const Shape3 shape{37, 41, 23};
+  const std::size_t n = std::size_t(37) * 41 * 23;
+  const auto y = random_values(n, 3), coin = random_values(n, 4);
+  std::vector<double> w(n);
+  for (std::size_t i = 0; i < n; ++i) w[i] = coin[i] > 0.3 ? 1.0 : 0.0;
+  DctPlanCache plans;
+  auto run = [&](int threads) {
+    std::vector<double> z(n, 0.0);
+    PlsWorkspace ws;
+    PlsResult result;
+    tbb::task_arena(threads).execute(
+        [&] { result = solve_pls(plans, shape, y, w, PlsSettings{2.0, 0.5, 1e-8, 500, false}, z, ws); });
+    REQUIRE(result.converged);
+    return z;
+  };
+  const auto one = run(1), two = run(2);
+  REQUIRE(std::memcmp(one.data(), two.data(), n * sizeof(double)) == 0);
 }

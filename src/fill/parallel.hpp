@@ -1,0 +1,47 @@
+// Parallel loops inside one block's fill. The engine already runs blocks as tasks of its arena
+// (--threads); these loops share that arena's threads, so a stack of one block still uses them
+// all. `isolate` keeps a thread that waits for its loop from starting another block, whose
+// worker buffers are its own (engine/block_runner.hpp).
+//
+// Results do not depend on the number of threads: loops write disjoint parts, and sums are
+// made of fixed chunks added in order.
+#pragma once
+
+#include <tbb/blocked_range.h>
+#include <tbb/parallel_for.h>
+#include <tbb/task_arena.h>
+
+#include <algorithm>
+#include <cstddef>
+#include <vector>
+
+namespace kalends::detail {
+
+/// f(begin, end) over [0, n) in pieces of at least `grain`, in parallel.
+template <typename F>
+void parallel_ranges(std::size_t n, std::size_t grain, F&& f) {
+  if (n == 0) return;
+  if (n <= grain) {
+    f(std::size_t(0), n);
+    return;
+  }
+  tbb::this_task_arena::isolate([&] {
+    tbb::parallel_for(tbb::blocked_range<std::size_t>(0, n, std::max<std::size_t>(1, grain)),
+                      [&](const tbb::blocked_range<std::size_t>& r) { f(r.begin(), r.end()); });
+  });
+}
+
+/// The sum over [0, n) of partial(begin, end) on chunks of `chunk`, added in chunk order.
+template <typename F>
+double deterministic_sum(std::size_t n, std::size_t chunk, F&& partial) {
+  const std::size_t chunks = (n + chunk - 1) / chunk;
+  std::vector<double> parts(chunks, 0.0);
+  parallel_ranges(chunks, 1, [&](std::size_t a, std::size_t b) {
+    for (std::size_t k = a; k < b; ++k) parts[k] = partial(k * chunk, std::min(n, (k + 1) * chunk));
+  });
+  double sum = 0;
+  for (double v : parts) sum += v;
+  return sum;
+}
+
+}  // namespace kalends::detail
