@@ -85,8 +85,9 @@ struct MethodOptions {
   int min_observations_per_coefficient = 2;
   // spacetime (smoothing of the DCT-PLS fits: anomaly in space / time, climatology in space /
   // across season bins; see src/fill/spacetime.hpp)
-  double spacetime_space_smoothing = 3.0;
-  double spacetime_time_smoothing = 0.3;
+  // unset = chosen per block by generalised cross-validation (src/fill/pls_gcv.hpp)
+  std::optional<double> spacetime_space_smoothing = 3.0;
+  std::optional<double> spacetime_time_smoothing = 0.3;
   double spacetime_climate_smoothing = 3.0;
   double spacetime_season_smoothing = 1.0;
   int spacetime_halo = 32;              // pixels of context on each side of a block

@@ -61,7 +61,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     FillRequest request;
     std::string tiles;
     bool mosaic = false;
-    std::string lambda = "auto", lambda_range, envelope = "none", memory = "1G", every,
+    std::string lambda = "auto", space_smoothing = "3", time_smoothing = "0.3", lambda_range, envelope = "none", memory = "1G", every,
                 compression = "deflate", scale, offset, nodata, valid_range;
   };
   auto o = std::make_shared<Options>();
@@ -87,11 +87,11 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--reject-below", r.method.reject_below,
                   "Harmonic method: reject values this many residual sd below the curve")
       ->capture_default_str();
-  sub->add_option("--space-smoothing", r.method.spacetime_space_smoothing,
-                  "Spacetime method: smoothing of the anomaly across pixels")
+  sub->add_option("--space-smoothing", o->space_smoothing,
+                  "Spacetime method: smoothing of the anomaly across pixels: a number, or auto (GCV per block)")
       ->capture_default_str();
-  sub->add_option("--time-smoothing", r.method.spacetime_time_smoothing,
-                  "Spacetime method: smoothing of the anomaly along time")
+  sub->add_option("--time-smoothing", o->time_smoothing,
+                  "Spacetime method: smoothing of the anomaly along time: a number, or auto (GCV per block)")
       ->capture_default_str();
   sub->add_option("--climate-smoothing", r.method.spacetime_climate_smoothing,
                   "Spacetime method: smoothing of the seasonal climatology across pixels")
@@ -144,6 +144,14 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     FillRequest& r = o->request;
     if (o->lambda != "auto") r.method.lambda = parse_number(o->lambda, "--lambda");
+    r.method.spacetime_space_smoothing =
+        o->space_smoothing == "auto"
+            ? std::nullopt
+            : std::optional<double>(parse_number(o->space_smoothing, "--space-smoothing"));
+    r.method.spacetime_time_smoothing =
+        o->time_smoothing == "auto"
+            ? std::nullopt
+            : std::optional<double>(parse_number(o->time_smoothing, "--time-smoothing"));
     if (!o->lambda_range.empty())
       std::tie(r.method.lambda_min, r.method.lambda_max) = parse_range(o->lambda_range, "--lambda-range");
     r.method.envelope_upper = o->envelope == "upper";

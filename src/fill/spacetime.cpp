@@ -1,6 +1,7 @@
 #include "fill/spacetime.hpp"
 
 #include "fill/analogue.hpp"
+#include "fill/pls_gcv.hpp"
 
 #include <algorithm>
 #include <cmath>
@@ -29,6 +30,10 @@ constexpr double convolution_scales[] = {2.0, 4.0, 8.0};
 constexpr double convolution_support = 0.05;
 
 std::string number(double v) { return fmt::format("{:g}", v); }
+std::string number_or_auto(const std::optional<double>& v) { return v ? number(*v) : "auto (GCV)"; }
+
+// Where GCV starts when a smoothing is auto: the defaults of MethodOptions.
+constexpr double gcv_start_space = 3.0, gcv_start_time = 0.3;
 
 // Median of the values (reordered).
 double median(std::vector<double>& v) {
@@ -50,10 +55,10 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
     : options_(options), plans_(planning_of(options.spacetime_fft_wisdom)) {
   if (options.spacetime_fft_wisdom.empty())
     throw UsageError("--fft-wisdom", "must be auto, none or a file");
-  if (!(options.spacetime_space_smoothing > 0))
-    throw UsageError("--space-smoothing", "must be positive");
-  if (!(options.spacetime_time_smoothing > 0))
-    throw UsageError("--time-smoothing", "must be positive");
+  if (options.spacetime_space_smoothing && !(*options.spacetime_space_smoothing > 0))
+    throw UsageError("--space-smoothing", "must be positive or auto");
+  if (options.spacetime_time_smoothing && !(*options.spacetime_time_smoothing > 0))
+    throw UsageError("--time-smoothing", "must be positive or auto");
   if (!(options.spacetime_climate_smoothing > 0))
     throw UsageError("--climate-smoothing", "must be positive");
   if (options.spacetime_neighbour_radius < 0 || options.spacetime_neighbour_radius > 32)
@@ -66,8 +71,8 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
 }
 
 MethodParameters SpacetimeMethod::parameters() const {
-  return {{"space_smoothing", number(options_.spacetime_space_smoothing)},
-          {"time_smoothing", number(options_.spacetime_time_smoothing)},
+  return {{"space_smoothing", number_or_auto(options_.spacetime_space_smoothing)},
+          {"time_smoothing", number_or_auto(options_.spacetime_time_smoothing)},
           {"climate_smoothing", number(options_.spacetime_climate_smoothing)},
           {"season_smoothing", number(options_.spacetime_season_smoothing)},
           {"halo", std::to_string(options_.spacetime_halo)},
@@ -150,9 +155,12 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
                                        options_.spacetime_season_smoothing,
                                        options_.spacetime_tolerance, 500, true};
-  detail::PlsSettings anomaly_settings{options_.spacetime_space_smoothing,
-                                       options_.spacetime_time_smoothing,
-                                       options_.spacetime_tolerance, 500, true};
+  detail::PlsSettings anomaly_settings{
+      options_.spacetime_space_smoothing.value_or(gcv_start_space),
+      options_.spacetime_time_smoothing.value_or(gcv_start_time), options_.spacetime_tolerance,
+      500, true};
+  // With an auto smoothing, GCV chooses it on the first round's anomaly; later rounds keep it.
+  bool choose_smoothing = !options_.spacetime_space_smoothing || !options_.spacetime_time_smoothing;
   double shrink = 1.0, between = 0.0;
   bool climate_started = false;
 
@@ -253,6 +261,17 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
         const std::size_t i = p * n_slots + s;
         target[i] = weight[i] > 0 ? y[i] - climate[p * n_bins + bin_of_slot[s]] : 0.0;
       }
+    if (choose_smoothing) {
+      detail::GcvSearch search;
+      search.space_free = !options_.spacetime_space_smoothing;
+      search.time_free = !options_.spacetime_time_smoothing;
+      const auto probe = detail::trace_probe(anomaly_shape, weight, in.read.y, in.read.x);
+      const detail::GcvChoice choice = detail::choose_smoothing_by_gcv(
+          plans_, anomaly_shape, target, weight, probe, anomaly_settings, search, anomaly_ws);
+      anomaly_settings.s_space = choice.best.s_space;
+      anomaly_settings.s_time = choice.best.s_time;
+      choose_smoothing = false;
+    }
     detail::solve_pls(plans_, anomaly_shape, target, weight, anomaly_settings, anomaly, anomaly_ws);
     return true;
   };

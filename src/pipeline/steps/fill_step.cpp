@@ -100,7 +100,7 @@ StepKind fill_step_kind() {
                {"reject_below", T::number}, {"smooth", T::boolean}, {"every", T::text},
                {"name", T::text}, {"max_gap", T::number}, {"max_extrapolation", T::number},
                {"reach", T::number}, {"compress", T::text}, {"keep", T::text},
-               {"space_smoothing", T::number}, {"time_smoothing", T::number},
+               {"space_smoothing", T::text_or_number}, {"time_smoothing", T::text_or_number},
                {"climate_smoothing", T::number}, {"season_smoothing", T::number},
                {"halo", T::integer}, {"tolerance", T::number}, {"neighbour_radius", T::integer},
                {"fft_wisdom", T::text},
@@ -141,8 +141,14 @@ StepKind fill_step_kind() {
     m.max_gap_days = c.number("max_gap", m.max_gap_days);
     m.max_extrapolation_days = c.number("max_extrapolation", m.max_extrapolation_days);
     m.reach_days = c.number("reach", m.reach_days);
-    m.spacetime_space_smoothing = c.number("space_smoothing", m.spacetime_space_smoothing);
-    m.spacetime_time_smoothing = c.number("time_smoothing", m.spacetime_time_smoothing);
+    if (c.has("space_smoothing"))
+      m.spacetime_space_smoothing = c.text("space_smoothing") == "auto"
+                                        ? std::nullopt
+                                        : std::optional<double>(c.number("space_smoothing", 0));
+    if (c.has("time_smoothing"))
+      m.spacetime_time_smoothing = c.text("time_smoothing") == "auto"
+                                       ? std::nullopt
+                                       : std::optional<double>(c.number("time_smoothing", 0));
     m.spacetime_climate_smoothing = c.number("climate_smoothing", m.spacetime_climate_smoothing);
     m.spacetime_season_smoothing = c.number("season_smoothing", m.spacetime_season_smoothing);
     m.spacetime_halo = c.integer("halo", m.spacetime_halo);
