@@ -40,6 +40,8 @@ std::int64_t parse_memory(const std::string& text);
 /// value (std::nullopt), for options that override something only when given.
 std::optional<double> optional_number(const std::string& text, const std::string& option);
 double parse_number(const std::string& text, const std::string& option);
+/// "auto" is no value (std::nullopt); anything else must be a number.
+std::optional<double> number_or_auto(const std::string& text, const std::string& option);
 
 /// `kalends grid`.
 Action add_grid_command(CLI::App& app, GlobalOptions& global);

@@ -32,7 +32,17 @@ double parse_number(const std::string& text, const std::string& option) {
   return *optional_number(text, option);
 }
 
+std::optional<double> number_or_auto(const std::string& text, const std::string& option) {
+  if (text == "auto") return std::nullopt;
+  return parse_number(text, option);
+}
+
 namespace {
+
+// How an auto-or-number option shows its default in --help.
+std::string auto_or_number_text(const std::optional<double>& v) {
+  return v ? fmt::format("{:g}", *v) : std::string("auto");
+}
 
 std::pair<double, double> parse_range(const std::string& text, const std::string& option) {
   const auto comma = text.find(',');
@@ -61,8 +71,11 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     FillRequest request;
     std::string tiles;
     bool mosaic = false;
-    std::string lambda = "auto", space_smoothing = "3", time_smoothing = "0.3", lambda_range, envelope = "none", memory = "1G", every,
-                compression = "deflate", scale, offset, nodata, valid_range;
+    std::string lambda = auto_or_number_text(MethodOptions{}.lambda),
+                space_smoothing = auto_or_number_text(MethodOptions{}.spacetime_space_smoothing),
+                time_smoothing = auto_or_number_text(MethodOptions{}.spacetime_time_smoothing),
+                lambda_range, envelope = "none", memory = "1G", every, compression = "deflate",
+                scale, offset, nodata, valid_range;
   };
   auto o = std::make_shared<Options>();
   FillRequest& r = o->request;
@@ -143,15 +156,9 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
 
   return [o, &global] {
     FillRequest& r = o->request;
-    if (o->lambda != "auto") r.method.lambda = parse_number(o->lambda, "--lambda");
-    r.method.spacetime_space_smoothing =
-        o->space_smoothing == "auto"
-            ? std::nullopt
-            : std::optional<double>(parse_number(o->space_smoothing, "--space-smoothing"));
-    r.method.spacetime_time_smoothing =
-        o->time_smoothing == "auto"
-            ? std::nullopt
-            : std::optional<double>(parse_number(o->time_smoothing, "--time-smoothing"));
+    r.method.lambda = number_or_auto(o->lambda, "--lambda");
+    r.method.spacetime_space_smoothing = number_or_auto(o->space_smoothing, "--space-smoothing");
+    r.method.spacetime_time_smoothing = number_or_auto(o->time_smoothing, "--time-smoothing");
     if (!o->lambda_range.empty())
       std::tie(r.method.lambda_min, r.method.lambda_max) = parse_range(o->lambda_range, "--lambda-range");
     r.method.envelope_upper = o->envelope == "upper";

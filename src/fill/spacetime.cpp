@@ -32,8 +32,6 @@ constexpr double convolution_support = 0.05;
 std::string number(double v) { return fmt::format("{:g}", v); }
 std::string number_or_auto(const std::optional<double>& v) { return v ? number(*v) : "auto (GCV)"; }
 
-// Where GCV starts when a smoothing is auto: the defaults of MethodOptions.
-constexpr double gcv_start_space = 3.0, gcv_start_time = 0.3;
 
 // Median of the values (reordered).
 double median(std::vector<double>& v) {
@@ -155,10 +153,12 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
                                        options_.spacetime_season_smoothing,
                                        options_.spacetime_tolerance, 500, true};
+  // An auto smoothing starts GCV's search from MethodOptions' default.
+  const MethodOptions defaults;
   detail::PlsSettings anomaly_settings{
-      options_.spacetime_space_smoothing.value_or(gcv_start_space),
-      options_.spacetime_time_smoothing.value_or(gcv_start_time), options_.spacetime_tolerance,
-      500, true};
+      options_.spacetime_space_smoothing.value_or(*defaults.spacetime_space_smoothing),
+      options_.spacetime_time_smoothing.value_or(*defaults.spacetime_time_smoothing),
+      options_.spacetime_tolerance, 500, true};
   // With an auto smoothing, GCV chooses it on the first round's anomaly; later rounds keep it.
   bool choose_smoothing = !options_.spacetime_space_smoothing || !options_.spacetime_time_smoothing;
   double shrink = 1.0, between = 0.0;

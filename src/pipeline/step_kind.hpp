@@ -49,6 +49,8 @@ struct StepContext {
   bool has(const char* key) const { return options.count(key) != 0; }
   std::string text(const char* key, const std::string& fallback = "") const;
   double number(const char* key, double fallback) const;
+  /// A text_or_number key: "auto" is no value (std::nullopt), a number is that number.
+  std::optional<double> number_or_auto(const char* key, std::optional<double> fallback) const;
   int integer(const char* key, int fallback) const;
   bool flag(const char* key) const { return text(key) == "true"; }
   std::pair<double, double> pair(const char* key) const;  // "a,b"

@@ -129,7 +129,7 @@ StepKind fill_step_kind() {
     if (r.qa_input.empty()) r.qa_keep.clear();
     MethodOptions& m = r.method;
     m.method = c.text("method", m.method);
-    if (c.has("lambda") && c.text("lambda") != "auto") m.lambda = c.number("lambda", 0);
+    m.lambda = c.number_or_auto("lambda", m.lambda);
     if (c.has("lambda_range")) std::tie(m.lambda_min, m.lambda_max) = c.pair("lambda_range");
     m.order = c.integer("order", m.order);
     m.envelope_upper = c.text("envelope", "none") == "upper";
@@ -141,14 +141,8 @@ StepKind fill_step_kind() {
     m.max_gap_days = c.number("max_gap", m.max_gap_days);
     m.max_extrapolation_days = c.number("max_extrapolation", m.max_extrapolation_days);
     m.reach_days = c.number("reach", m.reach_days);
-    if (c.has("space_smoothing"))
-      m.spacetime_space_smoothing = c.text("space_smoothing") == "auto"
-                                        ? std::nullopt
-                                        : std::optional<double>(c.number("space_smoothing", 0));
-    if (c.has("time_smoothing"))
-      m.spacetime_time_smoothing = c.text("time_smoothing") == "auto"
-                                       ? std::nullopt
-                                       : std::optional<double>(c.number("time_smoothing", 0));
+    m.spacetime_space_smoothing = c.number_or_auto("space_smoothing", m.spacetime_space_smoothing);
+    m.spacetime_time_smoothing = c.number_or_auto("time_smoothing", m.spacetime_time_smoothing);
     m.spacetime_climate_smoothing = c.number("climate_smoothing", m.spacetime_climate_smoothing);
     m.spacetime_season_smoothing = c.number("season_smoothing", m.spacetime_season_smoothing);
     m.spacetime_halo = c.integer("halo", m.spacetime_halo);

@@ -39,6 +39,13 @@ double StepContext::number(const char* key, double fallback) const {
   return has(key) ? std::stod(options.at(key)) : fallback;
 }
 
+std::optional<double> StepContext::number_or_auto(const char* key,
+                                                  std::optional<double> fallback) const {
+  if (!has(key)) return fallback;
+  if (text(key) == "auto") return std::nullopt;
+  return number(key, 0);
+}
+
 int StepContext::integer(const char* key, int fallback) const {
   return has(key) ? std::stoi(options.at(key)) : fallback;
 }
