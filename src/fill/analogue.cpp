@@ -118,12 +118,28 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   // on the order in which pixels are visited.
   std::vector<double> value(cells, NAN), known_variance(cells, NAN);
   std::vector<int> observations(pixels, 0);
+  // Slots with an observation somewhere in the block: on the others (winters, wholly cloudy
+  // dates) no neighbour can ever give a prediction.
+  std::vector<std::uint8_t> slot_observed(slots, 0);
   for (std::size_t i = 0; i < cells; ++i)
     if (weight[i] > 0) {
       value[i] = y[i];
       known_variance[i] = 0;
       ++observations[i / slots];
+      slot_observed[i % slots] = 1;
     }
+  // Each pixel's observed slots, in order, with their season bins: a pair's differences need
+  // only p's observed dates, often a small part of the regular grid (16-day composites of a
+  // summer season on an all-year grid: a third of the slots or less).
+  std::vector<std::size_t> first_observed(pixels + 1, 0);
+  for (std::size_t p = 0; p < pixels; ++p) first_observed[p + 1] = first_observed[p] + observations[p];
+  std::vector<int> observed_slot(first_observed[pixels]), observed_bin(first_observed[pixels]);
+  for (std::size_t p = 0, k = 0; p < pixels; ++p)
+    for (int s = 0; s < slots; ++s)
+      if (weight[p * slots + s] > 0) {
+        observed_slot[k] = s;
+        observed_bin[k++] = grid.bin_of_slot[std::size_t(s)];
+      }
 
   std::vector<std::size_t> predicted;
   std::mutex predicted_mutex;
@@ -147,7 +163,8 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
           if (observations[p] == 0) continue;
           pending.clear();
           for (int s = 0; s < slots; ++s)
-            if (std::isnan(value[p * slots + s]) && (round == 0 || near_new[p * slots + s] > 0))
+            if (slot_observed[s] && std::isnan(value[p * slots + s]) &&
+                (round == 0 || near_new[p * slots + s] > 0))
               pending.push_back(s);
           if (pending.empty()) continue;
           std::fill(sum_w.begin(), sum_w.end(), 0.0);
@@ -161,21 +178,22 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
               bool useful = false;
               for (int s : pending) useful |= !std::isnan(vq[s]);
               if (!useful) continue;
-              // Differences on co-observed dates, summed per season bin.
+              // Differences on co-observed dates, summed per season bin, over p's observed
+              // slots. Without branches: a third of q's dates or more may be missing, at random.
               std::fill(b0.begin(), b0.end(), 0.0);
               std::fill(b1.begin(), b1.end(), 0.0);
               std::fill(b2.begin(), b2.end(), 0.0);
               bool shared = false;  // any co-observed date
-              // Without branches: a third of the dates or more may be missing, at random.
               const double* wp_row = &weight[p * slots];
               const double* wq_row = &weight[q * slots];
               const double* yp_row = &y[p * slots];
               const double* yq_row = &y[q * slots];
-              for (int s = 0; s < slots; ++s) {
-                const bool both = wp_row[s] > 0 && wq_row[s] > 0;
+              for (std::size_t k = first_observed[p]; k < first_observed[p + 1]; ++k) {
+                const int s = observed_slot[k];
+                const bool both = wq_row[s] > 0;
                 const double m = both ? wp_row[s] * wq_row[s] : 0.0;
                 const double d = both ? yp_row[s] - yq_row[s] : 0.0;
-                const int b = grid.bin_of_slot[std::size_t(s)];
+                const int b = observed_bin[k];
                 b0[b] += m;
                 b1[b] += m * d;
                 b2[b] += m * d * d;
