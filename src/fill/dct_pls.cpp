@@ -94,9 +94,11 @@ std::size_t DctPlanCache::plans() const {
   return plans_.size();
 }
 
-const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, bool aligned) const {
+const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, bool aligned,
+                               int batch_slots) const {
+  if (pass == Pass::whole || batch_slots <= 0) batch_slots = shape[2];
   std::lock_guard lock(mutex_);
-  const auto key = std::make_tuple(shape, inverse, int(pass), aligned);
+  const auto key = std::make_tuple(shape, inverse, int(pass), aligned, batch_slots);
   auto it = plans_.find(key);
   if (it != plans_.end()) return it->second;
   // Axes of length 1 are left out: FFTW's r2r of length 1 is the identity times 2, which the
@@ -118,7 +120,7 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, boo
       n[kinds_n] = shape[axis];
       kinds[kinds_n++] = kind;
     }
-    batch = shape[2];
+    batch = batch_slots;
     stride = pass == Pass::along_rows ? shape[2] : shape[1] * shape[2];
   }
   void* made = nullptr;
@@ -168,34 +170,62 @@ void DctPlanCache::inverse(const Shape3& shape, double* data) const {
 // spread over the threads. Every row (column) uses the same plan whatever the number of
 // threads, so the result does not depend on it; and this is as fast as FFTW's own
 // two-dimensional plan on 256 x 256 x 48 (23.0 against 24.2 ms, FFTW 3.3.10, measured once).
-void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse) const {
+// With `runs`, only those slots are transformed: one plan per run length, executed at the run's
+// offset in each row (column).
+void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse,
+                                std::span<const SlotRun> runs) const {
   const std::size_t row = std::size_t(shape[1]) * shape[2];
+  std::vector<fftw_plan> run_plans(runs.size());
+  std::size_t slots = 0;
+  for (const SlotRun& run : runs) slots += std::size_t(run.count);
+  if (slots == 0) return;
   for (Pass pass : {Pass::along_rows, Pass::along_columns}) {
     const bool rows = pass == Pass::along_rows;
     const std::size_t count = rows ? std::size_t(shape[0]) : std::size_t(shape[1]);
     const std::size_t step = rows ? row : std::size_t(shape[2]);
-    // A plan made on an aligned array must run on one of the same alignment [FFTW 3.3 manual,
-    // "New-array Execute Functions"]; offsets of an odd length need the unaligned plan.
-    bool all_aligned = fftw_alignment_of(data) == 0;
-    for (std::size_t k = 0; k < count && all_aligned; ++k)
-      all_aligned = fftw_alignment_of(data + k * step) == 0;
-    auto* p = static_cast<fftw_plan>(const_cast<void*>(plan(shape, inverse, pass, all_aligned)));
-    if (!p) continue;
-    const std::size_t values_per_item = rows ? row : std::size_t(shape[0]) * shape[2];
+    bool any = false;
+    for (std::size_t j = 0; j < runs.size(); ++j) {
+      // A plan made on an aligned array must run on one of the same alignment [FFTW 3.3
+      // manual, "New-array Execute Functions"]; offsets of an odd length need the unaligned
+      // plan.
+      bool all_aligned = true;
+      for (std::size_t k = 0; k < count && all_aligned; ++k)
+        all_aligned = fftw_alignment_of(data + k * step + runs[j].first) == 0;
+      run_plans[j] = static_cast<fftw_plan>(
+          const_cast<void*>(plan(shape, inverse, pass, all_aligned, runs[j].count)));
+      any |= run_plans[j] != nullptr;
+    }
+    if (!any) continue;
+    const std::size_t values_per_item = (rows ? std::size_t(shape[1]) : std::size_t(shape[0])) * slots;
     parallel_ranges(count, std::max<std::size_t>(1, (std::size_t(1) << 15) / values_per_item),
                     [&](std::size_t a, std::size_t b) {
                       for (std::size_t k = a; k < b; ++k)
-                        fftw_execute_r2r(p, data + k * step, data + k * step);
+                        for (std::size_t j = 0; j < runs.size(); ++j) {
+                          double* at = data + k * step + runs[j].first;
+                          if (run_plans[j]) fftw_execute_r2r(run_plans[j], at, at);
+                        }
                     });
   }
 }
 
 void DctPlanCache::forward_space(const Shape3& shape, double* data) const {
-  space_passes(shape, data, false);
+  const SlotRun all{0, shape[2]};
+  space_passes(shape, data, false, {&all, 1});
 }
 
 void DctPlanCache::inverse_space(const Shape3& shape, double* data) const {
-  space_passes(shape, data, true);
+  const SlotRun all{0, shape[2]};
+  space_passes(shape, data, true, {&all, 1});
+}
+
+void DctPlanCache::forward_space(const Shape3& shape, double* data,
+                                 std::span<const SlotRun> runs) const {
+  space_passes(shape, data, false, runs);
+}
+
+void DctPlanCache::inverse_space(const Shape3& shape, double* data,
+                                 std::span<const SlotRun> runs) const {
+  space_passes(shape, data, true, runs);
 }
 
 namespace {
@@ -383,6 +413,32 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   for (std::size_t f = 0; f < frequencies; ++f)
     for (int t = 0; t < nt; ++t) mean_weight[t] += w[f * nt + t];
   for (int t = 0; t < nt; ++t) mean_weight[t] /= double(frequencies);
+
+  // Slots with no weight anywhere (winters of a summer-only stack, wholly cloudy dates): W is 0
+  // there, so the solve never needs their values in space. Their parts of the vectors below stay
+  // in the orthonormal space-DCT domain from start to end (the dot products are the same in
+  // both domains), and only the slots with data are transformed.
+  std::vector<std::uint8_t> has_data(nt, 0);
+  for (int t = 0; t < nt; ++t) has_data[t] = mean_weight[t] > 0;
+  std::vector<SlotRun> data_runs, empty_runs;
+  for (int t = 0; t < nt; ++t) {
+    auto& runs = has_data[t] ? data_runs : empty_runs;
+    if (t > 0 && has_data[t] == has_data[t - 1]) ++runs.back().count;
+    else runs.push_back({t, 1});
+  }
+  std::vector<int> empty_slots;
+  for (int t = 0; t < nt; ++t)
+    if (!has_data[t]) empty_slots.push_back(t);
+  // sqrt of the orthonormal factors of each spatial frequency: the orthonormal DCT-II is
+  // root_factor times FFTW's REDFT10 (scale_axes above, per axis).
+  std::vector<double> root_factor;
+  if (!empty_slots.empty()) {
+    root_factor.resize(frequencies);
+    for (int a = 0; a < n0; ++a)
+      for (int b = 0; b < n1; ++b)
+        root_factor[std::size_t(a) * n1 + b] = (n0 > 1 ? ortho_factor(a, n0) : 1.0) *
+                                               (n1 > 1 ? ortho_factor(b, n1) : 1.0);
+  }
   // A floor keeps every factor positive definite where sigma = 0 and wbar is zero.
   const double floor = 1e-9 * omega;
 
@@ -476,11 +532,24 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   double* ad = ws.product.data();
   auto in_chunks = [&](auto&& body) { parallel_ranges(n, vector_chunk, body); };
 
+  // Empty slots hold orthonormal spectra: x_hat = root_factor C_s x (C_s: FFTW's unnormalised
+  // transform), and their share of a product P x is root_factor (P_ab C_s x).
+  auto to_spectra_of_empty = [&](std::size_t f, const double* spectrum, double* out) {
+    for (int t : empty_slots) out[t] = spectrum[t] * root_factor[f];
+  };
+  auto penalty_product = [&](std::size_t f, const double* x_hat, double* out) {
+    penalty_frequency(f, x_hat, out);
+    for (int t : empty_slots) out[t] *= scale * root_factor[f];
+  };
+
   // r = W y - (W + P) z.
   std::copy(z.data(), z.data() + n, q);
   plans.forward_space(shape, q);
-  each_frequency([&](std::size_t f) { penalty_frequency(f, q + f * nt, ad + f * nt); });
-  plans.inverse_space(shape, ad);
+  each_frequency([&](std::size_t f) {
+    penalty_product(f, q + f * nt, ad + f * nt);
+    to_spectra_of_empty(f, q + f * nt, z.data() + f * nt);
+  });
+  plans.inverse_space(shape, ad, data_runs);
   double b_norm = std::sqrt(deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
     double sum = 0;
     for (std::size_t i = a; i < e; ++i) {
@@ -494,14 +563,16 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   // q <- M r, and its spectrum C_s q to `q_hat` (the solve's output before the inverse).
   auto precondition = [&](double* q_hat) {
     in_chunks([&](std::size_t a, std::size_t e) { std::copy(r + a, r + e, q_hat + a); });
-    plans.forward_space(shape, q_hat);
+    plans.forward_space(shape, q_hat, data_runs);
     const double inverse_scale = 1.0 / scale;
     each_frequency([&](std::size_t f) {
       double* x = q_hat + f * nt;
+      for (int t : empty_slots) x[t] /= root_factor[f];
       solve_frequency(f, x);
       for (int t = 0; t < nt; ++t) q[f * nt + t] = x[t] * inverse_scale;
+      to_spectra_of_empty(f, x, q + f * nt);
     });
-    plans.inverse_space(shape, q);
+    plans.inverse_space(shape, q, data_runs);
   };
   auto dot = [&](const double* a, const double* b) {
     return deterministic_sum(n, vector_chunk, [&](std::size_t lo, std::size_t hi) {
@@ -522,8 +593,8 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       result.converged = true;
       break;
     }
-    each_frequency([&](std::size_t f) { penalty_frequency(f, d_hat + f * nt, ad + f * nt); });
-    plans.inverse_space(shape, ad);
+    each_frequency([&](std::size_t f) { penalty_product(f, d_hat + f * nt, ad + f * nt); });
+    plans.inverse_space(shape, ad, data_runs);
     const double dad = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
       double sum = 0;
       for (std::size_t i = a; i < e; ++i) {
@@ -558,6 +629,12 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   if (!result.converged) {
     result.relative_residual = std::sqrt(rr) / b_norm;
     result.converged = result.relative_residual <= settings.tolerance;
+  }
+  if (!empty_slots.empty()) {
+    each_frequency([&](std::size_t f) {
+      for (int t : empty_slots) z[f * nt + t] /= root_factor[f] * scale;
+    });
+    plans.inverse_space(shape, z.data(), empty_runs);
   }
   return result;
 }
