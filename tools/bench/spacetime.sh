@@ -10,6 +10,8 @@
 #
 # usage: tools/bench/spacetime.sh [--width 512] [--height 512] [--dates 46] [--threads 2]
 #                                 [--repeats 3] [--workdir /tmp/kalends-bench-spacetime]
+#                                 [--stack DIR]   (its ndvi_*.tif instead of a synthetic stack,
+#                                                  e.g. ../shared/data/alaska-ndvi/masked50)
 # env:   KALENDS=path/to/kalends (default build/kalends), PYTHON (default /usr/bin/python3)
 set -euo pipefail
 
@@ -17,13 +19,17 @@ root=$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)
 py=${PYTHON:-/usr/bin/python3}
 kalends=${KALENDS:-$root/build/kalends}
 width=512 height=512 dates=46 threads=2 repeats=3 workdir=/tmp/kalends-bench-spacetime
+given_stack=
 
 while [ $# -gt 0 ]; do
   case "$1" in
     --width|--height|--dates|--threads|--repeats|--workdir)
       [ $# -ge 2 ] || { echo "spacetime.sh: $1 needs a value" >&2; exit 2; }
       v=$2; k=${1#--}; printf -v "$k" '%s' "$v"; shift 2 ;;
-    -h|--help) sed -n '2,13p' "${BASH_SOURCE[0]}"; exit 0 ;;
+    --stack)
+      [ $# -ge 2 ] || { echo "spacetime.sh: $1 needs a value" >&2; exit 2; }
+      given_stack=$2; shift 2 ;;
+    -h|--help) sed -n '2,15p' "${BASH_SOURCE[0]}"; exit 0 ;;
     *) echo "spacetime.sh: unknown argument $1" >&2; exit 2 ;;
   esac
 done
@@ -36,10 +42,25 @@ done
 mkdir -p "$workdir"
 workdir=$(cd "$workdir" && pwd)
 stack=$workdir/stack-${width}x${height}x${dates}/ndvi
+synthetic=True
+if [ -n "$given_stack" ]; then
+  stack=$(cd "$given_stack" && pwd) || { echo "spacetime.sh: $given_stack: no such folder" >&2; exit 2; }
+  read -r width height dates < <("$py" - "$stack" <<'PY'
+import glob, sys
+from osgeo import gdal
+files = sorted(glob.glob(sys.argv[1] + "/ndvi_*.tif"))
+if not files:
+    sys.exit("spacetime.sh: %s: no ndvi_*.tif files" % sys.argv[1])
+ds = gdal.Open(files[0])
+print(ds.RasterXSize, ds.RasterYSize, len(files))
+PY
+  ) || exit 2
+  synthetic=False
+fi
 runs=$workdir/runs.tsv log=$workdir/logs
 mkdir -p "$log"
 : > "$runs"
-if [ ! -f "$stack/synth.json" ]; then
+if [ -z "$given_stack" ] && [ ! -f "$stack/synth.json" ]; then
   rm -rf "$stack"
   "$py" "$root/tools/synth_stack.py" --scenario bench --out "$stack" --width "$width" \
     --height "$height" --dates "$dates" --quiet
@@ -89,10 +110,12 @@ echo "bench: one PLS solve, kalends against numpy/scipy" >&2
 "$py" "$root/tools/bench/pls_reference.py" "$stack/ndvi_*.tif" --repeats "$repeats" \
   --json "$workdir/pls-reference.json" || echo "bench: the PLS reference failed" >&2
 
-"$py" - "$runs" "$workdir/spacetime-bench.json" "$width" "$height" "$dates" "$threads" "$repeats" <<'PY'
+"$py" - "$runs" "$workdir/spacetime-bench.json" "$width" "$height" "$dates" "$threads" "$repeats" \
+  "$synthetic" "$stack" <<'PY'
 import json, statistics, sys
 runs_path, out_path = sys.argv[1:3]
 width, height, dates, threads, repeats = map(int, sys.argv[3:8])
+synthetic, stack = sys.argv[8] == "True", sys.argv[9]
 pd = width * height * dates
 rows = {}
 for line in open(runs_path):
@@ -115,10 +138,12 @@ ratios = {
     f"spacetime_T{threads}_over_floor_time": top["median_s"] / floor if top and floor else None,
     "kernel_1t_pixel_dates_per_s_per_core": one["kernel_pixel_dates_per_s"] if one else None,
     "kernel_target_per_core": 5e6, "floor_ratio_target": 3.0}
-json.dump(dict(benchmark="kalends fill --method spacetime", synthetic_stack=True, width=width,
+json.dump(dict(benchmark="kalends fill --method spacetime", synthetic_stack=synthetic,
+               stack=stack, width=width,
                height=height, dates=dates, pixel_dates=pd, threads=threads, repeats=repeats,
                results=res, ratios=ratios), open(out_path, "w"), indent=1)
-print(f"\nspacetime benchmark: {width}x{height}x{dates} = {pd:,} pixel-dates, median of {repeats}")
+print(f"\nspacetime benchmark: {'synthetic ' if synthetic else ''}{width}x{height}x{dates} = "
+      f"{pd:,} pixel-dates ({stack}), median of {repeats}")
 print(f"{'case':<32} {'median s':>9} {'pixel-dates/s':>14} {'peak RSS MiB':>13} {'kernel pd/s':>12}")
 for k, r in res.items():
     if r is None:
