@@ -21,7 +21,8 @@
 // shrunk toward a prior (the pair's spread over all dates, two pseudo-dates), times (1 + 1/n_eff),
 // n_eff = (sum k)^2 / sum k^2 (the variance of a new difference around an estimated mean).
 // Predictions from all neighbours are combined by inverse variance. Rounds grow the filled area
-// like rings: round r also uses round r-1's predictions as y(q, t), adding their variance.
+// like rings: round r also uses round r-1's predictions as y(q, t), adding their variance (the
+// variance each reports, below).
 // Pixels never observed have no differences to learn from and get no analogue.
 //
 // Normalised convolution [KW93] fills what is left, date by date: the Gaussian-weighted mean of
