@@ -43,10 +43,14 @@ struct BlockOutput {
   std::vector<float> fitted;            // the curve at every slot (NaN where not fillable)
   std::vector<float> sd;                // its standard error
   std::vector<std::uint8_t> rejected;   // 1 where an observation was rejected as an outlier
+  // Parameters the method chose for this block from its data (smoothing by GCV, say), by name;
+  // the engine lists them per block in fill-summary.json.
+  std::map<std::string, double> chosen;
   void resize(std::size_t n) {
     fitted.assign(n, 0.0f);
     sd.assign(n, 0.0f);
     rejected.assign(n, 0);
+    chosen.clear();
   }
 };
 

@@ -5,6 +5,7 @@
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
 
+#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <cmath>
@@ -14,6 +15,7 @@
 #include <fstream>
 #include <map>
 #include <set>
+#include <tuple>
 
 #include "engine/block_runner.hpp"
 #include "engine/calendar.hpp"
@@ -61,6 +63,13 @@ struct Segment {
   std::vector<std::size_t> periods;  // calendar periods starting in the year
 };
 
+// Parameters a method chose for one block (one year's segment with a reach).
+struct BlockChoice {
+  int block = 0, year = 0;
+  Window core;
+  std::map<std::string, double> values;
+};
+
 struct Worker {
   std::unique_ptr<StackReader> data, qa;
   std::vector<float> plane;
@@ -72,6 +81,7 @@ struct Worker {
   std::vector<float> value_plane, sd_plane, flag_plane, tile;
   Counters counters;
   std::map<int, YearCounts> years;
+  std::vector<BlockChoice> chosen;
 };
 
 std::string join_parameters(const MethodParameters& p) {
@@ -342,6 +352,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     const auto kernel_start = std::chrono::steady_clock::now();
     if (segments.empty()) {
       method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
+      if (!w.out.chosen.empty()) w.chosen.push_back({block.index, 0, core, w.out.chosen});
     } else {
       std::fill(w.out.fitted.begin(), w.out.fitted.end(), NAN);
       std::fill(w.out.sd.begin(), w.out.sd.end(), NAN);
@@ -355,6 +366,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         }
         w.segment_out.resize(std::size_t(core_pixels) * n);
         method->fill(BlockInput{&seg.grid, read, core, w.segment_values, w.segment_weights}, w.segment_out);
+        if (!w.segment_out.chosen.empty())
+          w.chosen.push_back({block.index, seg.year, core, w.segment_out.chosen});
         for (std::int64_t cp = 0; cp < core_pixels; ++cp)
           for (int slot = seg.own_first; slot <= seg.own_last; ++slot) {
             const std::size_t from = std::size_t(cp) * n + (slot - seg.first_slot);
@@ -477,7 +490,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.calendar_outputs = int(periods.size());
   std::int64_t masked_by_qa = 0;
   std::map<int, YearCounts> years;
+  std::vector<BlockChoice> chosen;
   for (const Worker& w : workers) {
+    chosen.insert(chosen.end(), w.chosen.begin(), w.chosen.end());
     summary.pixels_never_observed += w.counters.never_observed;
     summary.pixels_without_value += w.counters.never_filled;
     summary.kernel_seconds += w.counters.kernel_seconds;
@@ -518,13 +533,32 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       "  \"filled\": {},\n  \"unfilled\": {},\n  \"pixels_never_observed\": {},\n"
       "  \"pixels_without_value\": {},\n"
       "  \"time_step_days\": {:g},\n  \"calendar_outputs\": {},\n  \"blocks\": {},\n"
-      "  \"block_size\": [{}, {}]\n}}\n",
+      "  \"block_size\": [{}, {}]",
       summary.dates, summary.width, summary.height, summary.pixel_dates, summary.observed,
       summary.missing, masked_by_qa, summary.rejected, summary.filled, summary.unfilled,
       summary.pixels_never_observed,
       summary.pixels_without_value < 0 ? std::string("null") : std::to_string(summary.pixels_without_value),
       grid.step_days, summary.calendar_outputs, summary.blocks,
       summary.block_width, summary.block_height);
+  // What the method chose per block, in block order: window [x, y, width, height] of the core.
+  if (!chosen.empty()) {
+    std::sort(chosen.begin(), chosen.end(), [](const BlockChoice& a, const BlockChoice& b) {
+      return std::tie(a.block, a.year) < std::tie(b.block, b.year);
+    });
+    json += ",\n  \"chosen\": [";
+    for (std::size_t k = 0; k < chosen.size(); ++k) {
+      const BlockChoice& c = chosen[k];
+      json += fmt::format("{}\n    {{\"block\": {}, ", k ? "," : "", c.block);
+      if (c.year) json += fmt::format("\"year\": {}, ", c.year);
+      json += fmt::format("\"window\": [{}, {}, {}, {}]", c.core.x, c.core.y, c.core.width,
+                          c.core.height);
+      for (const auto& [name, value] : c.values)
+        json += fmt::format(", \"{}\": {}", detail::json_escape(name), detail::json_number(value));
+      json += "}";
+    }
+    json += "\n  ]";
+  }
+  json += "\n}\n";
   detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
   return summary;
 }

@@ -270,6 +270,8 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
           plans_, anomaly_shape, target, weight, probe, anomaly_settings, search, anomaly_ws);
       anomaly_settings.s_space = choice.best.s_space;
       anomaly_settings.s_time = choice.best.s_time;
+      if (search.space_free) out.chosen["space_smoothing"] = choice.best.s_space;
+      if (search.time_free) out.chosen["time_smoothing"] = choice.best.s_time;
       choose_smoothing = false;
     }
     detail::solve_pls(plans_, anomaly_shape, target, weight, anomaly_settings, anomaly, anomaly_ws);

@@ -21,7 +21,8 @@ inline std::string json_escape(const std::string& text) {
   return out;
 }
 
-/// A number, or null where it is not finite (JSON has no NaN).
-inline std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{:.6g}", v) : "null"; }
+/// A number, or null where it is not finite (JSON has no NaN). The shortest text that reads back
+/// as the same double: scores can be checked to any tolerance, and a choice given back exactly.
+inline std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{}", v) : "null"; }
 
 }  // namespace kalends::detail

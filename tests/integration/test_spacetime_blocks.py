@@ -47,5 +47,45 @@ class BlockSizeIndependence(kt.TempDirTestCase):
         self.assertLessEqual(diff, 0.004)
 
 
+class SmoothingChoiceRecorded(kt.TempDirTestCase):
+    """--space-smoothing/--time-smoothing auto: fill-summary.json lists the values GCV chose per
+    block, and giving them back as fixed values reproduces the fill exactly."""
+
+    def test_chosen_values_reproduce_the_fill(self):
+        stack = os.path.join(self.tmp, "ndvi")
+        done = kt.subprocess.run(
+            ["/usr/bin/python3", os.path.join(kt.REPO_ROOT, "tools", "synth_stack.py"), "--out",
+             stack, "--width", "60", "--height", "40", "--years", "1", "--quiet"],
+            capture_output=True, text=True, timeout=120)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        common = [os.path.join(stack, "ndvi_*.tif"), "--method", "spacetime", "--threads", "2",
+                  "--fft-wisdom", "none"]
+        auto = os.path.join(self.tmp, "auto")
+        kt.run_fill_ok(self, common + ["--out", auto, "--space-smoothing", "auto",
+                                       "--time-smoothing", "auto"])
+        summary = kt.read_summary(auto)
+        self.assertEqual(len(summary["chosen"]), summary["blocks"])
+        choice = summary["chosen"][0]
+        self.assertEqual(choice["window"], [0, 0, 60, 40])
+        # The search walks quarter decades from the defaults 3 and 0.3, within 1e-3..1e4
+        # (src/fill/pls_gcv.hpp).
+        for key, start in (("space_smoothing", 3.0), ("time_smoothing", 0.3)):
+            value = choice[key]
+            self.assertTrue(1e-3 <= value <= 1e4, "%s %g" % (key, value))
+            if value not in (1e-3, 1e4):
+                steps = np.log10(value / start) / 0.25
+                self.assertAlmostEqual(steps, round(steps), places=9, msg=key)
+        fixed = os.path.join(self.tmp, "fixed")
+        kt.run_fill_ok(self, common + ["--out", fixed,
+                                       "--space-smoothing", repr(choice["space_smoothing"]),
+                                       "--time-smoothing", repr(choice["time_smoothing"])])
+        self.assertNotIn("chosen", kt.read_summary(fixed))
+        for a, b in zip(sorted(glob.glob(os.path.join(auto, "*.tif"))),
+                        sorted(glob.glob(os.path.join(fixed, "*.tif")))):
+            oa, ob = kt.read_output(a), kt.read_output(b)
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(oa[band], ob[band], err_msg=a + " " + band)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
