@@ -25,11 +25,7 @@ class BlockSizeIndependence(kt.TempDirTestCase):
 
     def test_small_and_large_blocks_agree(self):
         stack = os.path.join(self.tmp, "ndvi")
-        done = kt.subprocess.run(
-            ["/usr/bin/python3", os.path.join(kt.REPO_ROOT, "tools", "synth_stack.py"), "--out",
-             stack, "--width", "400", "--height", "200", "--years", "1", "--quiet"],
-            capture_output=True, text=True, timeout=120)
-        self.assertEqual(done.returncode, 0, done.stderr)
+        kt.make_synthetic_stack(stack, 400, 200)
         results = {}
         for memory in ("600M", "4G"):
             out = os.path.join(self.tmp, "out-" + memory)
@@ -53,11 +49,7 @@ class SmoothingChoiceRecorded(kt.TempDirTestCase):
 
     def test_chosen_values_reproduce_the_fill(self):
         stack = os.path.join(self.tmp, "ndvi")
-        done = kt.subprocess.run(
-            ["/usr/bin/python3", os.path.join(kt.REPO_ROOT, "tools", "synth_stack.py"), "--out",
-             stack, "--width", "60", "--height", "40", "--years", "1", "--quiet"],
-            capture_output=True, text=True, timeout=120)
-        self.assertEqual(done.returncode, 0, done.stderr)
+        kt.make_synthetic_stack(stack, 60, 40)
         common = [os.path.join(stack, "ndvi_*.tif"), "--method", "spacetime", "--threads", "2",
                   "--fft-wisdom", "none"]
         auto = os.path.join(self.tmp, "auto")

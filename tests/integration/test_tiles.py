@@ -61,11 +61,7 @@ class TiledFill(kt.TempDirTestCase):
     def setUpClass(cls):
         super().setUpClass()
         cls.stack = os.path.join(cls.tmp, "ndvi")
-        done = kt.subprocess.run(
-            ["/usr/bin/python3", os.path.join(kt.REPO_ROOT, "tools", "synth_stack.py"), "--out",
-             cls.stack, "--width", "300", "--height", "260", "--years", "1", "--qa", "--quiet"],
-            capture_output=True, text=True, timeout=120)
-        assert done.returncode == 0, done.stderr
+        kt.make_synthetic_stack(cls.stack, 300, 260, "--years", "1", "--qa")
         cls.files = sorted(glob.glob(os.path.join(cls.stack, "ndvi_*.tif")))
         cls.qa_files = sorted(glob.glob(os.path.join(cls.tmp, "qa", "qa_*.tif")))
         cls.tiles = os.path.join(cls.tmp, "tiles")

@@ -112,6 +112,16 @@ def run_fill_ok(testcase, args, timeout=300):
     return done
 
 
+def make_synthetic_stack(out, width, height, *options):
+    """Writes an invented stack with tools/synth_stack.py (one year unless OPTIONS say otherwise)."""
+    done = subprocess.run(
+        ["/usr/bin/python3", os.path.join(REPO_ROOT, "tools", "synth_stack.py"), "--out", out,
+         "--width", str(width), "--height", str(height), "--quiet"] +
+        (list(options) or ["--years", "1"]), capture_output=True, text=True, timeout=120)
+    if done.returncode != 0:
+        raise RuntimeError("synth_stack.py failed: " + done.stderr)
+
+
 def read_summary(out_dir):
     with open(os.path.join(out_dir, "fill-summary.json")) as f:
         return json.load(f)
