@@ -418,17 +418,15 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   // there, so the solve never needs their values in space. Their parts of the vectors below stay
   // in the orthonormal space-DCT domain from start to end (the dot products are the same in
   // both domains), and only the slots with data are transformed.
-  std::vector<std::uint8_t> has_data(nt, 0);
-  for (int t = 0; t < nt; ++t) has_data[t] = mean_weight[t] > 0;
   std::vector<SlotRun> data_runs, empty_runs;
-  for (int t = 0; t < nt; ++t) {
-    auto& runs = has_data[t] ? data_runs : empty_runs;
-    if (t > 0 && has_data[t] == has_data[t - 1]) ++runs.back().count;
-    else runs.push_back({t, 1});
-  }
   std::vector<int> empty_slots;
-  for (int t = 0; t < nt; ++t)
-    if (!has_data[t]) empty_slots.push_back(t);
+  for (int t = 0; t < nt; ++t) {
+    const bool has_data = mean_weight[t] > 0;
+    auto& runs = has_data ? data_runs : empty_runs;
+    if (t > 0 && has_data == (mean_weight[t - 1] > 0)) ++runs.back().count;
+    else runs.push_back({t, 1});
+    if (!has_data) empty_slots.push_back(t);
+  }
   // sqrt of the orthonormal factors of each spatial frequency: the orthonormal DCT-II is
   // root_factor times FFTW's REDFT10 (scale_axes above, per axis).
   std::vector<double> root_factor;

@@ -61,7 +61,7 @@ class TiledFill(kt.TempDirTestCase):
     def setUpClass(cls):
         super().setUpClass()
         cls.stack = os.path.join(cls.tmp, "ndvi")
-        kt.make_synthetic_stack(cls.stack, 300, 260, "--years", "1", "--qa")
+        kt.make_synthetic_stack(cls.stack, 300, 260, "--qa")
         cls.files = sorted(glob.glob(os.path.join(cls.stack, "ndvi_*.tif")))
         cls.qa_files = sorted(glob.glob(os.path.join(cls.tmp, "qa", "qa_*.tif")))
         cls.tiles = os.path.join(cls.tmp, "tiles")

@@ -112,12 +112,12 @@ def run_fill_ok(testcase, args, timeout=300):
     return done
 
 
-def make_synthetic_stack(out, width, height, *options):
-    """Writes an invented stack with tools/synth_stack.py (one year unless OPTIONS say otherwise)."""
+def make_synthetic_stack(out, width, height, *options, years=1):
+    """Writes an invented stack with tools/synth_stack.py; OPTIONS are passed on (say "--qa")."""
     done = subprocess.run(
         ["/usr/bin/python3", os.path.join(REPO_ROOT, "tools", "synth_stack.py"), "--out", out,
-         "--width", str(width), "--height", str(height), "--quiet"] +
-        (list(options) or ["--years", "1"]), capture_output=True, text=True, timeout=120)
+         "--width", str(width), "--height", str(height), "--years", str(years), "--quiet"] +
+        list(options), capture_output=True, text=True, timeout=120)
     if done.returncode != 0:
         raise RuntimeError("synth_stack.py failed: " + done.stderr)
 

@@ -20,19 +20,12 @@ Usage: python3 tools/accuracy/neighbour_oracle.py [--data ../shared/data/alaska-
 import argparse
 import glob
 import os
+import sys
 
 import numpy as np
-from osgeo import gdal
 from scipy.ndimage import gaussian_filter
 
-
-def read_stack(folder, names):
-    planes = []
-    for name in names:
-        ds = gdal.Open(os.path.join(folder, name))  # keep the dataset alive while reading
-        planes.append(ds.GetRasterBand(1).ReadAsArray().astype(float))
-        ds = None
-    return np.stack(planes)
+from error_anatomy import read_stack  # its neighbour in tools/accuracy: one-line errors
 
 
 def shifted(stack, dy, dx):
@@ -94,6 +87,8 @@ def main():
     parser.add_argument("--sd", type=float, default=3.0)
     args = parser.parse_args()
     names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(args.data, "observed", "*.tif")))
+    if not names:
+        sys.exit("neighbour_oracle: %s: no .tif files" % os.path.join(args.data, "observed"))
     truth = read_stack(os.path.join(args.data, "observed"), names)
     analogue = analogue_oracle(truth, args.radius)
     print("| variant | withheld cells | of pixels never observed | analogue oracle | convolution oracle "
