@@ -5,6 +5,10 @@
 #include <functional>
 #include <optional>
 #include <string>
+#include <utility>
+
+#include "kalends/fill_method.hpp"
+#include "kalends/stack.hpp"
 
 namespace kalends::cli {
 
@@ -42,6 +46,25 @@ std::optional<double> optional_number(const std::string& text, const std::string
 double parse_number(const std::string& text, const std::string& option);
 /// "auto" is no value (std::nullopt); anything else must be a number.
 std::optional<double> number_or_auto(const std::string& text, const std::string& option);
+
+/// MIN,MAX; UsageError naming `option` otherwise.
+std::pair<double, double> parse_range(const std::string& text, const std::string& option);
+
+/// The gap-filling method's options (all but --method), shared by fill and validate. The texts
+/// hold what is parsed after the command line is read (numbers or "auto", ranges).
+struct MethodOptionTexts {
+  MethodOptionTexts();
+  std::string lambda, space_smoothing, time_smoothing, lambda_range, envelope = "none";
+};
+void add_method_options(CLI::App* sub, MethodOptions& method, MethodOptionTexts& texts);
+void apply_method_options(MethodOptions& method, const MethodOptionTexts& texts);
+
+/// --scale, --offset, --nodata, --valid-range and --band.
+struct ValueRuleTexts {
+  std::string scale, offset, nodata, valid_range;
+};
+void add_value_rule_options(CLI::App* sub, ValueRules& rules, ValueRuleTexts& texts);
+void apply_value_rule_options(ValueRules& rules, const ValueRuleTexts& texts);
 
 /// `kalends grid`.
 Action add_grid_command(CLI::App& app, GlobalOptions& global);

@@ -1,4 +1,4 @@
-// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE]
+// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [method options]
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -13,6 +13,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   struct Options {
     ValidateRequest request;
     std::string methods = "whittaker,harmonic,spacetime", memory = "1G";
+    MethodOptionTexts method_texts;
+    ValueRuleTexts rule_texts;
   };
   auto o = std::make_shared<Options>();
   ValidateRequest& r = o->request;
@@ -30,8 +32,13 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
+  // Each method is scored with the settings it would fill with: the options of `kalends fill`.
+  add_method_options(sub, r.method, o->method_texts);
+  add_value_rule_options(sub, r.rules, o->rule_texts);
   return [o, &global] {
     ValidateRequest& r = o->request;
+    apply_method_options(r.method, o->method_texts);
+    apply_value_rule_options(r.rules, o->rule_texts);
     r.methods.clear();
     std::string rest = o->methods;
     while (!rest.empty()) {
@@ -47,7 +54,10 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);
       for (const Score& s : report.scores)
-        fmt::print("  {:<46} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
+        if (s.covered == 0)
+          fmt::print("  {:<46} no value on any withheld cell\n", s.name + (s.baseline ? " (baseline)" : ""));
+        else
+          fmt::print("  {:<46} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
                    s.name + (s.baseline ? " (baseline)" : ""), s.rmse, s.mae, s.bias, s.r2,
                    100 * s.coverage);
       fmt::print("  -> {}/report.json, {}/report.md\n", r.out_dir, r.out_dir);

@@ -7,6 +7,7 @@
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
+#include <map>
 #include <numeric>
 #include <random>
 
@@ -139,6 +140,15 @@ std::string score_json(const Score& s, const std::string& indent) {
   if (s.within_one_sd >= 0) j += fmt::format(", \"within_one_sd\": {}", detail::json_number(s.within_one_sd));
   if (s.rms_error_over_sd >= 0)
     j += fmt::format(", \"rms_error_over_sd\": {}", detail::json_number(s.rms_error_over_sd));
+  if (!s.parameters.empty()) {
+    j += ", \"parameters\": {";
+    bool first = true;
+    for (const auto& [key, value] : s.parameters) {
+      j += fmt::format("{}\"{}\": \"{}\"", first ? "" : ", ", detail::json_escape(key), detail::json_escape(value));
+      first = false;
+    }
+    j += "}";
+  }
   for (const auto* part : {&s.by_gap, &s.by_neighbourhood}) {
     if (part->empty()) continue;
     j += fmt::format(",\n{}  \"{}\": [", indent, part == &s.by_gap ? "by_gap_length" : "by_neighbourhood_missing");
@@ -158,10 +168,12 @@ ValidateReport run_validate(const ValidateRequest& request) {
   if (!(request.withhold > 0 && request.withhold < 1))
     throw UsageError("--withhold", "must be between 0 and 1");
   if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
+  std::map<std::string, MethodParameters> parameters;
   for (const std::string& m : request.methods) {
     MethodOptions o = request.method;
     o.method = m;
-    make_fill_method(o);  // unknown names and bad options fail here, before any work
+    // Unknown names and bad options fail here, before any work.
+    parameters[m] = make_fill_method(o)->parameters();
   }
   const Stack stack = Stack::open(request.input, request.rules);
   const int dates = int(stack.layers().size());
@@ -327,6 +339,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
     const Cube value = read_band(paths, 1, grid.width, grid.height);
     const Cube sd = read_band(paths, 2, grid.width, grid.height);
     report.scores.push_back(score_cube(method, value, &sd, false));
+    report.scores.back().parameters = parameters[method];
     if (!request.keep_work) fs::remove_all(work / method, ec);
   }
 
@@ -405,12 +418,25 @@ ValidateReport run_validate(const ValidateRequest& request) {
   md += "| method | RMSE | MAE | bias | R² | coverage | within ±1 sd | RMS of error / sd |\n"
         "|---|---|---|---|---|---|---|---|\n";
   auto row = [&](const Score& s) {
+    if (s.covered == 0)  // nothing to score: the method gave no value on any withheld cell
+      return fmt::format("| {}{} | - | - | - | - | 0.0 % | - | - |\n", s.name, s.baseline ? " (baseline)" : "");
     return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {:.1f} % | {} | {} |\n", s.name,
                        s.baseline ? " (baseline)" : "", s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage,
                        s.within_one_sd >= 0 ? fmt::format("{:.1f} %", 100 * s.within_one_sd) : "-",
                        s.rms_error_over_sd >= 0 ? fmt::format("{:.2f}", s.rms_error_over_sd) : "-");
   };
   for (const Score& s : report.scores) md += row(s);
+  md += "\nSettings:";
+  for (const Score& s : report.scores) {
+    if (s.parameters.empty()) continue;
+    md += "\n- " + s.name + ":";
+    bool first = true;
+    for (const auto& [key, value] : s.parameters) {
+      md += fmt::format("{} {} {}", first ? "" : ",", key, value);
+      first = false;
+    }
+  }
+  md += "\n";
   for (int part = 0; part < 2; ++part) {
     md += part == 0 ? "\n## RMSE (coverage) by gap length in time\n\n"
                     : fmt::format("\n## RMSE (coverage) by share of the {0}x{0} neighbourhood missing\n\n",
@@ -421,7 +447,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
     for (const Score& s : report.scores) {
       md += "| " + s.name + " |";
       for (const auto& [label, sub] : part == 0 ? s.by_gap : s.by_neighbourhood)
-        md += sub.cells == 0 ? " - |" : fmt::format(" {:.4f} ({:.0f} %, n={}) |", sub.rmse, 100 * sub.coverage, sub.cells);
+        md += sub.cells == 0     ? std::string(" - |")
+              : sub.covered == 0 ? fmt::format(" - (0 %, n={}) |", sub.cells)
+                                 : fmt::format(" {:.4f} ({:.0f} %, n={}) |", sub.rmse, 100 * sub.coverage, sub.cells);
       md += "\n";
     }
   }

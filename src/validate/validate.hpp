@@ -34,6 +34,7 @@ struct Score {
   double within_one_sd = -1;  // share of covered cells with |error| <= sd; < 0 where no sd
   double rms_error_over_sd = -1;  // sqrt(mean((error / sd)^2)); 1 = calibrated; < 0 where no sd
   std::vector<std::pair<std::string, Score>> by_gap, by_neighbourhood;
+  MethodParameters parameters;  // the settings a method was scored with (none for baselines)
 };
 
 struct ValidateReport {

@@ -124,6 +124,34 @@ class AlaskaSpacetime(kt.TempDirTestCase):
                                    atol=1e-6)
         np.testing.assert_allclose(score["rms_error_over_sd"], np.sqrt(np.mean(z ** 2)), rtol=1e-5)
 
+    def test_validate_takes_the_fill_options(self):
+        """validate scores a method with the options given, as kalends fill would run it, and
+        records them in report.json."""
+        out = os.path.join(self.tmp, "validation-options")
+        options = ["--neighbour-radius", "0", "--time-smoothing", "0.05"]
+        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                               "--methods", "spacetime", "--out", out, "--seed", "7",
+                               "--withhold", "0.1", "--threads", "2", "--keep-work"] + options)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            score = {s["name"]: s for s in json.load(f)["scores"]}["spacetime"]
+        self.assertEqual(score["parameters"]["neighbour_radius"], "0")
+        self.assertEqual(score["parameters"]["time_smoothing"], "0.05")
+        refill = os.path.join(self.tmp, "refill")
+        kt.run_fill_ok(self, [os.path.join(out, "work", "input", "*.tif"), "--out", refill,
+                              "--method", "spacetime", "--threads", "2"] + options)
+        gdal = kt.gdal()
+        for p in sorted(glob.glob(os.path.join(out, "work", "spacetime", "*.tif"))):
+            kept, again = gdal.Open(p), gdal.Open(os.path.join(refill, os.path.basename(p)))
+            np.testing.assert_array_equal(kept.GetRasterBand(1).ReadAsArray(),
+                                          again.GetRasterBand(1).ReadAsArray(), p)
+        # A bad option value fails before any work, naming the option.
+        bad = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                              "--out", os.path.join(self.tmp, "bad"), "--time-smoothing", "x"])
+        self.assertNotEqual(bad.returncode, 0)
+        self.assertIn("--time-smoothing", bad.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "bad")))
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
