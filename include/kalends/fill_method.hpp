@@ -56,6 +56,8 @@ struct BlockOutput {
 
 /// Parameters as text, written into output metadata.
 using MethodParameters = std::map<std::string, std::string>;
+/// "key=value key=value", as in fill-summary.json, the outputs' metadata and validate's report.
+std::string join_parameters(const MethodParameters& parameters);
 
 class FillMethod {
  public:

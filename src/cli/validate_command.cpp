@@ -53,13 +53,14 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);
-      for (const Score& s : report.scores)
+      for (const Score& s : report.scores) {
+        const std::string label = s.name + (s.baseline ? " (baseline)" : "");
         if (s.covered == 0)
-          fmt::print("  {:<46} no value on any withheld cell\n", s.name + (s.baseline ? " (baseline)" : ""));
+          fmt::print("  {:<46} no value on any withheld cell\n", label);
         else
           fmt::print("  {:<46} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
-                   s.name + (s.baseline ? " (baseline)" : ""), s.rmse, s.mae, s.bias, s.r2,
-                   100 * s.coverage);
+                     label, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
+      }
       fmt::print("  -> {}/report.json, {}/report.md\n", r.out_dir, r.out_dir);
     }
   };

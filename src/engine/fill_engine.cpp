@@ -84,13 +84,6 @@ struct Worker {
   std::vector<BlockChoice> chosen;
 };
 
-std::string join_parameters(const MethodParameters& p) {
-  std::string text;
-  for (const auto& [key, value] : p) text += (text.empty() ? "" : " ") + key + "=" + value;
-  return text;
-}
-
-
 }  // namespace
 
 FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress) {

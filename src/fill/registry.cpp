@@ -23,6 +23,12 @@ constexpr Entry registry[] = {
 
 }  // namespace
 
+std::string join_parameters(const MethodParameters& parameters) {
+  std::string text;
+  for (const auto& [key, value] : parameters) text += (text.empty() ? "" : " ") + key + "=" + value;
+  return text;
+}
+
 std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
   for (const Entry& entry : registry)
     if (options.method == entry.name) return entry.make(options);

@@ -427,15 +427,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
   };
   for (const Score& s : report.scores) md += row(s);
   md += "\nSettings:";
-  for (const Score& s : report.scores) {
-    if (s.parameters.empty()) continue;
-    md += "\n- " + s.name + ":";
-    bool first = true;
-    for (const auto& [key, value] : s.parameters) {
-      md += fmt::format("{} {} {}", first ? "" : ",", key, value);
-      first = false;
-    }
-  }
+  for (const Score& s : report.scores)
+    if (!s.parameters.empty()) md += "\n- " + s.name + ": " + join_parameters(s.parameters);
   md += "\n";
   for (int part = 0; part < 2; ++part) {
     md += part == 0 ? "\n## RMSE (coverage) by gap length in time\n\n"
