@@ -119,7 +119,10 @@ HarmonicMethod::SeriesFit HarmonicMethod::fit(std::span<const double> x, std::sp
   for (int i = 0; i < n; ++i) {
     Eigen::Map<const Vector> row(x.data() + std::size_t(i) * p, p);
     fitted[i] = float(std::clamp(row.dot(beta), low, high));
-    sd[i] = float(result.sigma * std::sqrt(std::max(0.0, row.dot(covariance * row))));
+    // Where the value stands in for an observation (a gap, a rejected one), its error is the
+    // curve's plus the scatter of observations about it.
+    const double scatter = use[i] ? 0.0 : 1.0;
+    sd[i] = float(result.sigma * std::sqrt(std::max(0.0, row.dot(covariance * row)) + scatter));
   }
   result.coefficients.assign(beta.data(), beta.data() + p);
   result.fitted = true;

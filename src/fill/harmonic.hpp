@@ -8,7 +8,9 @@
 //       composites using Fourier analysis of time series, Int. J. Remote Sens. 21:1911-1917:
 //       the fit-reject-refit loop that drops observations below the curve (cloud). We reject
 //       those more than `reject_below` residual sd under the curve, until none is left. The standard error of the fitted value at t
-// is sigma sqrt(x(t)^T (X^T W X)^-1 x(t)), sigma^2 = RSS / (m - p).
+// is sigma sqrt(x(t)^T (X^T W X)^-1 x(t)), sigma^2 = RSS / (m - p); where no observation was used
+// (a gap, a rejected one) the value stands in for one, and its prediction standard error is
+// sigma sqrt(1 + x(t)^T (X^T W X)^-1 x(t)) (the textbook prediction interval of least squares).
 #pragma once
 
 #include <memory>

@@ -5,6 +5,7 @@
 #include <limits>
 
 #include "fill/banded_kernels.hpp"
+#include "fill/difference_noise.hpp"
 #include "fill/gap_limit.hpp"
 #include "fill/robust_weights.hpp"
 #include "kalends/error.hpp"
@@ -23,6 +24,20 @@ std::string number(double v) {
 constexpr double rejection_weight = 0.5;
 
 }  // namespace
+
+double WhittakerMethod::noise_for_sd(const SeriesFit& fit, std::span<const float> y,
+                                     std::span<const double> weight) {
+  // RSS / (m - tr H) collapses when GCV picks a nearly interpolating curve: on the Alaska NDVI
+  // stack it does for most pixels (median m - tr H about 0.5), and a pixel with 3 observations
+  // on a line gets sigma near 0. The difference-based estimate does not depend on the fit.
+  const auto differences = detail::difference_noise(y, weight);
+  double sigma = std::sqrt(differences.variance);
+  if (std::isfinite(fit.sigma) && !(fit.sigma <= sigma)) sigma = fit.sigma;
+  // A variance estimated from nu terms: scale by the sd of Student's t with nu degrees of
+  // freedom, sqrt(nu / (nu - 2)); with nu <= 2 that sd is infinite and no sd is given.
+  const double nu = differences.terms;
+  return nu > 2 ? sigma * std::sqrt(nu / (nu - 2)) : NAN;
+}
 
 WhittakerMethod::WhittakerMethod(const MethodOptions& options) : options_(options) {
   if (options.order < 1 || options.order > 3)
@@ -163,9 +178,10 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
 
   const double low = options_.clamp_min.value_or(-INFINITY);
   const double high = options_.clamp_max.value_or(INFINITY);
+  const double sigma = noise_for_sd(fit, y, ws.weight);
   for (int i = 0; i < n; ++i) {
     fitted[i] = float(std::clamp(ws.z[i], low, high));
-    sd[i] = float(fit.sigma * std::sqrt(std::max(0.0, ws.inverse.at(0, i))));
+    sd[i] = float(sigma * std::sqrt(std::max(0.0, ws.inverse.at(0, i))));
   }
   fit.fitted = true;
   return fit;

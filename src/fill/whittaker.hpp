@@ -16,7 +16,9 @@
 // that minimises GCV(lambda) = m RSS / (m - tr H)^2 [CW79], m the number of observations, the
 // trace of H = (W + lambda P)^-1 W taken from the band of the inverse [HdH85]. The standard
 // error of z_i is sigma sqrt((W + lambda P)^-1_ii), the Bayesian posterior sd of [W83], with
-// sigma^2 = RSS / (m - tr H).
+// sigma^2 = RSS / (m - tr H), floored by the difference-based variance of Gasser, Sroka &
+// Jennen-Steinmetz (1986, Biometrika 73:625-633) and scaled by the sd of Student's t with
+// m - 2 degrees of freedom (no sd with fewer than 5 observations).
 #pragma once
 
 #include <memory>
@@ -57,6 +59,9 @@ class WhittakerMethod final : public FillMethod {
   SeriesFit smooth_banded(std::span<const float> y, std::span<const float> w,
                           std::span<float> fitted, std::span<float> sd,
                           std::span<std::uint8_t> rejected, Workspace& ws) const;
+  // The sigma of the sd: see the header comment.
+  static double noise_for_sd(const SeriesFit& fit, std::span<const float> y,
+                             std::span<const double> weight);
   MethodOptions options_;
 };
 

@@ -2,8 +2,9 @@
 
 Model, as documented for kalends: columns [1, (t - mean(t))/365.25 if trend,
 cos(2 pi j t / 365.25), sin(2 pi j t / 365.25), j = 1..K], mean(t) over all given days; weighted
-least squares; sd = sigma sqrt(x' (X'WX)^-1 x), sigma^2 = RSS / (m - p) (the textbook
-standard error of a fitted value of weighted least squares, e.g. Draper & Smith, Applied
+least squares; sd = sigma sqrt(x' (X'WX)^-1 x) where the observation was used, sigma sqrt(1 +
+x' (X'WX)^-1 x) where not, sigma^2 = RSS / (m - p) (the textbook
+standard errors of a fitted value and of a prediction, weighted least squares, e.g. Draper & Smith, Applied
 Regression Analysis, 3rd ed. 1998, ch. 3 -- cited from memory). Rejection: observations whose
 residual is below -REJECT_BELOW * sigma are dropped and the fit repeated until none is (the
 fit-reject-refit loop for cloud-lowered values of Roerink, Menenti & Verhoef 2000, Int. J.
@@ -51,7 +52,8 @@ def weighted_lstsq(days, y, w, k, trend, use=None):
     rss = float(np.sum(w[ok] * (y[ok] - x[ok] @ beta) ** 2))
     sigma = np.sqrt(rss / (m - p))
     cov = np.linalg.inv((x[ok] * w[ok][:, None]).T @ x[ok])
-    sd = sigma * np.sqrt(np.einsum("ij,jk,ik->i", x, cov, x))
+    # Where no observation was used, the prediction standard error (Draper & Smith, as above).
+    sd = sigma * np.sqrt(np.einsum("ij,jk,ik->i", x, cov, x) + np.where(ok, 0.0, 1.0))
     return {"coefficients": beta, "z": x @ beta, "sd": sd, "sigma": sigma, "use": ok}
 
 
