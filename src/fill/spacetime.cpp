@@ -352,10 +352,12 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
                                  analogue_variance);
   else
     analogue.assign(cells, NAN);
+  auto unsupported_anomaly_variance = [&](std::size_t i) {
+    return anomaly_var * (1.0 - std::clamp(support[i], 0.0, 1.0));
+  };
   auto model_variance_at = [&](std::size_t p, std::size_t i) {
     const double own = between * shrink / (pixel_weight[p] + shrink);
-    const double h = std::clamp(support[i], 0.0, 1.0);
-    return noise_var + own + anomaly_var * (1.0 - h);
+    return noise_var + own + unsupported_anomaly_variance(i);
   };
   std::vector<double> completed(cells);
   std::vector<std::uint8_t> wanted(cells, 0);
@@ -405,6 +407,11 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       if (!(weight[i] > 0) && !std::isnan(completed[i])) fit = completed[i];
       if (!(weight[i] > 0) && !std::isnan(analogue[i]))
         variance = (1.0 - model_share) * analogue_variance[i] + model_share * model_variance;
+      else if (!(weight[i] > 0) && observations[p] > 0)
+        // Beyond the analogues' reach the model's anomaly is carried from far away; like a
+        // value copied from far off (2 gamma at long lags, 2 sigma_A^2), its error counts the
+        // true anomaly's variance and that of the anomaly carried in: the term once more.
+        variance = model_variance + unsupported_anomaly_variance(i);
       else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
         variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));

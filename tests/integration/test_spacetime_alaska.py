@@ -93,6 +93,12 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         # The withheld cells were observed in the input and are counted once per method.
         self.assertEqual(spacetime["cells"], report["withheld"])
         self.assertGreater(report["withheld"], 0.29 * report["observed"])
+        # The sd is about the size of the error (RMS of error / sd 1 when calibrated; measured
+        # 0.81 for spacetime, 0.98 for whittaker, whose sigma used to collapse: 10 or more before
+        # version 0.3.2, docs/methods.md). Loose bounds around the measured figures.
+        self.assertTrue(0.6 < spacetime["rms_error_over_sd"] < 1.3, spacetime["rms_error_over_sd"])
+        whittaker = scores["whittaker"]
+        self.assertTrue(0.5 < whittaker["rms_error_over_sd"] < 2.0, whittaker["rms_error_over_sd"])
 
     def test_validate_scores_match_numpy(self):
         """validate's scores, recomputed with numpy from the withheld stack and the fill it kept."""
