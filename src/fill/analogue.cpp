@@ -297,7 +297,8 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
 std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const double> y,
                                            std::span<const double> weight,
                                            std::span<const std::uint8_t> wanted,
-                                           std::span<const double> field) {
+                                           std::span<const double> field,
+                                           std::span<const double> known_variance) {
   const int rows = grid.rows, cols = grid.cols, slots = grid.slots;
   const std::size_t pixels = std::size_t(rows) * cols, cells = pixels * slots;
   std::vector<double> out(cells, NAN);
@@ -307,18 +308,24 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
   // Distance to the nearest known cell, per date, kept in `out` for now: two-pass chamfer
   // transform (weights 1 and sqrt 2; [B86]).
   const double diagonal = std::sqrt(2.0), far = 1e9;
-  std::vector<double> distance(pixels);
+  std::vector<double> distance(pixels), source(pixels);
+  std::vector<double> source_variance(cells, 0.0);
   double farthest = 0;
   for (int s = 0; s < slots; ++s) {
     for (std::size_t p = 0; p < pixels; ++p) {
       const std::size_t i = p * slots + s;
-      distance[p] = (!wanted[i] && !std::isnan(field[i])) ? 0.0 : far;
+      const bool known = !wanted[i] && !std::isnan(field[i]);
+      distance[p] = known ? 0.0 : far;
+      source[p] = known ? known_variance[i] : 0.0;
     }
     auto relax = [&](int r, int c, int dr, int dc, double step) {
       const int rr = r + dr, cc = c + dc;
       if (rr < 0 || rr >= rows || cc < 0 || cc >= cols) return;
-      double& here = distance[std::size_t(r) * cols + c];
-      here = std::min(here, distance[std::size_t(rr) * cols + cc] + step);
+      const std::size_t here = std::size_t(r) * cols + c, there = std::size_t(rr) * cols + cc;
+      if (distance[there] + step < distance[here]) {
+        distance[here] = distance[there] + step;
+        source[here] = source[there];
+      }
     };
     for (int r = 0; r < rows; ++r)
       for (int c = 0; c < cols; ++c) {
@@ -334,6 +341,7 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
       const std::size_t i = p * slots + s;
       if (!wanted[i] || std::isnan(field[i]) || distance[p] >= far) continue;
       out[i] = distance[p];
+      source_variance[i] = source[p];
       farthest = std::max(farthest, distance[p]);
     }
   }
@@ -367,7 +375,8 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
     if (count[h] >= 30) last = std::max(std::isnan(last) ? 0.0 : last, 0.5 * sum[h] / count[h]);
     gamma[h] = last;
   }
-  for (double& v : out) {
+  for (std::size_t i = 0; i < cells; ++i) {
+    double& v = out[i];
     if (std::isnan(v)) continue;
     if (std::isnan(gamma[max_lag])) {
       v = NAN;
@@ -378,7 +387,7 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
     const int lo = std::max(1, int(std::floor(h)));
     const int hi = std::min(max_lag, lo + 1);
     const double f = std::clamp(h - lo, 0.0, 1.0);
-    v = 2.0 * ((1 - f) * gamma[lo] + f * gamma[hi]);
+    v = 2.0 * ((1 - f) * gamma[lo] + f * gamma[hi]) + source_variance[i];
   }
   return out;
 }

@@ -66,10 +66,12 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
                                     std::span<const std::uint8_t> wanted,
                                     std::span<const double> scales, double min_support);
 
-/// For each `wanted` cell with a value in `field`: 2 gamma(h), gamma the semivariogram of the
-/// observations (pooled over the block's dates, along rows and columns) and h the distance, in
+/// For each `wanted` cell with a value in `field`: 2 gamma(h) + v, gamma the semivariogram of
+/// the observations (pooled over the block's dates, along rows and columns), h the distance, in
 /// pixels, from the cell to the nearest cell of the same date that was known before the
-/// convolution (observed, or a value the convolution did not make). NaN elsewhere.
+/// convolution (observed, or a value the convolution did not make) and v that cell's own
+/// `known_variance` (0 for an observation): a copy of an estimate carries its error too. NaN
+/// elsewhere.
 /// [M63]: gamma(h) = E[(Z(x + h) - Z(x))^2] / 2, so
 /// 2 gamma(h) is the mean square error of taking the value of a cell h away. The convolution
 /// averages several such cells, which would lower it toward gamma(h); on transplanted masks with
@@ -78,6 +80,7 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
 std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const double> y,
                                            std::span<const double> weight,
                                            std::span<const std::uint8_t> wanted,
-                                           std::span<const double> field);
+                                           std::span<const double> field,
+                                           std::span<const double> known_variance);
 
 }  // namespace kalends::detail

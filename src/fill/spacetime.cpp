@@ -359,6 +359,16 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     const double own = between * shrink / (pixel_weight[p] + shrink);
     return noise_var + own + unsupported_anomaly_variance(i);
   };
+  // A gap of a pixel observed on other dates: the blend of analogue and model where the
+  // analogues reached it. Beyond their reach the model's anomaly is carried from far away; like
+  // a value copied from far off (2 gamma at long lags, 2 sigma_A^2), its error counts the true
+  // anomaly's variance and that of the anomaly carried in: the term once more.
+  auto observed_pixel_gap_variance = [&](std::size_t p, std::size_t i) {
+    const double model_variance = model_variance_at(p, i);
+    return !std::isnan(analogue[i])
+               ? (1.0 - model_share) * analogue_variance[i] + model_share * model_variance
+               : model_variance + unsupported_anomaly_variance(i);
+  };
   std::vector<double> completed(cells);
   std::vector<std::uint8_t> wanted(cells, 0);
   for (std::size_t i = 0; i < cells; ++i) {
@@ -383,7 +393,14 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
                                            convolution_support);
     // A convolved value is as uncertain as the difference between values this far apart: the
     // observations' semivariogram at the distance to the nearest known cell (analogue.hpp).
-    spatial_variance = detail::interpolation_variance(cell_grid, y, weight, wanted, completed);
+    // The variance of each known cell: 0 for an observation, the local stages' or the model's
+    // for a value made before the convolution.
+    std::vector<double> known_variance(cells, 0.0);
+    for (std::size_t i = 0; i < cells; ++i)
+      if (!(weight[i] > 0) && !wanted[i] && !std::isnan(completed[i]))
+        known_variance[i] = observed_pixel_gap_variance(i / n_slots, i);
+    spatial_variance =
+        detail::interpolation_variance(cell_grid, y, weight, wanted, completed, known_variance);
   }
 
   const double lo = options_.clamp_min ? *options_.clamp_min : -INFINITY;
@@ -402,16 +419,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       }
       // Observed cells report the model and its variance (the engine keeps the observation);
       // gaps the local stages' value where they gave one.
-      const double model_variance = model_variance_at(p, i);
-      double fit = model_at(p, s), variance = model_variance;
+      double fit = model_at(p, s), variance = model_variance_at(p, i);
       if (!(weight[i] > 0) && !std::isnan(completed[i])) fit = completed[i];
-      if (!(weight[i] > 0) && !std::isnan(analogue[i]))
-        variance = (1.0 - model_share) * analogue_variance[i] + model_share * model_variance;
-      else if (!(weight[i] > 0) && observations[p] > 0)
-        // Beyond the analogues' reach the model's anomaly is carried from far away; like a
-        // value copied from far off (2 gamma at long lags, 2 sigma_A^2), its error counts the
-        // true anomaly's variance and that of the anomaly carried in: the term once more.
-        variance = model_variance + unsupported_anomaly_variance(i);
+      if (!(weight[i] > 0) && observations[p] > 0)
+        variance = observed_pixel_gap_variance(p, i);
       else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
         variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));

@@ -134,7 +134,7 @@ TEST_CASE("normalised convolution leaves cells beyond its largest kernel unknown
   for (int c = 7; c < cols; ++c) CHECK(std::isnan(field[c]));
 }
 
-TEST_CASE("interpolation variance is twice the semivariogram at the distance to known cells") {
+TEST_CASE("interpolation variance is twice the semivariogram at the distance to known cells, plus their own") {
   // Observations rise linearly along rows (slope a per pixel) and are constant down columns, so
   // the pooled semivariogram is gamma(h) = (a^2 h^2 / 2 + 0) / 2 = a^2 h^2 / 4 (as many pairs
   // along rows as down columns on a square grid with a square hole in its middle).
@@ -159,7 +159,8 @@ TEST_CASE("interpolation variance is twice the semivariogram at the distance to 
         }
       }
   const CellGrid grid{n, n, slots, bins, 1, 16.0};
-  const auto variance = interpolation_variance(grid, y, weight, wanted, field);
+  const std::vector<double> exact(cells, 0.0);
+  const auto variance = interpolation_variance(grid, y, weight, wanted, field, exact);
   auto at = [&](int r, int c) { return variance[(std::size_t(r) * n + c) * slots + 1]; };
   // The hole's centre is 6 px from the nearest known cell, its edge cells 1 px.
   CHECK(at(20, 20) == Approx(2.0 * a * a * 36 / 4).epsilon(1e-9));
@@ -167,4 +168,23 @@ TEST_CASE("interpolation variance is twice the semivariogram at the distance to 
   CHECK(at(17, 20) == Approx(2.0 * a * a * 9 / 4).epsilon(1e-9));
   // Known cells get none.
   CHECK(std::isnan(at(5, 5)));
+
+  SECTION("a known cell that is itself an estimate adds its variance") {
+    // The ring of known cells around the hole (rows and columns 14 and 26) carries variance v;
+    // every cell of the hole takes its distance, and its source, from that ring.
+    const double v = 0.004;
+    std::vector<double> known(cells, 0.0);
+    for (int r = 0; r < n; ++r)
+      for (int c = 0; c < n; ++c) {
+        const bool ring = (r == hole0 - 1 || r == hole1 + 1 || c == hole0 - 1 || c == hole1 + 1) &&
+                          r >= hole0 - 1 && r <= hole1 + 1 && c >= hole0 - 1 && c <= hole1 + 1;
+        if (ring) known[(std::size_t(r) * n + c) * slots + 1] = v;
+      }
+    const auto with_source = interpolation_variance(grid, y, weight, wanted, field, known);
+    auto at2 = [&](int r, int c) { return with_source[(std::size_t(r) * n + c) * slots + 1]; };
+    CHECK(at2(20, 20) == Approx(2.0 * a * a * 36 / 4 + v).epsilon(1e-9));
+    CHECK(at2(15, 20) == Approx(2.0 * a * a * 1 / 4 + v).epsilon(1e-9));
+    // The other date's ring has no variance.
+    CHECK(with_source[(std::size_t(20) * n + 20) * slots] == Approx(2.0 * a * a * 36 / 4).epsilon(1e-9));
+  }
 }
