@@ -71,6 +71,7 @@ GcvChoice choose_smoothing_by_gcv(const DctPlanCache& plans, const Shape3& shape
     const auto k = std::make_pair(key(e_space), key(e_time));
     if (const auto it = scored.find(k); it != scored.end()) return it->second;
     PlsSettings settings = start;
+    settings.tolerance = std::min(0.1, start.tolerance * search.candidate_tolerance_factor);
     settings.s_space = std::pow(10.0, e_space);
     settings.s_time = std::pow(10.0, e_time);
     // Each solve starts from the last one's solution: the candidates are neighbours.

@@ -123,6 +123,15 @@ TEST_CASE("GCV picks a smoothing that recovers the truth better than either extr
   // Far better than the noise itself (sd 0.3).
   CHECK(chosen < 0.15);
 
+  SECTION("candidates solved loosely choose as candidates solved to the full tolerance") {
+    GcvSearch exact;
+    exact.candidate_tolerance_factor = 1;
+    const GcvChoice full = choose_smoothing_by_gcv(plans, c.shape, c.y, c.w, u, start, exact, ws);
+    CHECK(full.best.s_space == Approx(choice.best.s_space));
+    CHECK(full.best.s_time == Approx(choice.best.s_time));
+    CHECK(full.best.gcv == Approx(choice.best.gcv).epsilon(1e-3));
+  }
+
   SECTION("a fixed axis stays where it was set") {
     GcvSearch space_only;
     space_only.time_free = false;
