@@ -3,6 +3,7 @@
 
 #include <cstdint>
 #include <functional>
+#include <map>
 #include <optional>
 #include <vector>
 #include <string>
@@ -56,6 +57,9 @@ struct FillSummary {
                unfilled = 0;
   std::int64_t pixels_never_observed = 0;
   std::int64_t pixels_without_value = 0;  // flag 3 on every date (nothing within reach)
+  /// Pixels (pixel-years with a reach) with observations that the method could not fit, by
+  /// the method's reason.
+  std::map<std::string, std::int64_t> series_not_fitted;
   double seconds = 0, kernel_seconds = 0;
   std::int64_t block_width = 0, block_height = 0;
   std::string out_dir;

@@ -46,11 +46,15 @@ struct BlockOutput {
   // Parameters the method chose for this block from its data (smoothing by GCV, say), by name;
   // the engine lists them per block in fill-summary.json.
   std::map<std::string, double> chosen;
+  // Core pixels with observations that the method could not fit, by the reason it gives (a
+  // sentence a user can act on); the engine sums them for the summary.
+  std::map<std::string, std::int64_t> not_fitted;
   void resize(std::size_t n) {
     fitted.assign(n, 0.0f);
     sd.assign(n, 0.0f);
     rejected.assign(n, 0);
     chosen.clear();
+    not_fitted.clear();
   }
 };
 

@@ -119,6 +119,9 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
         fmt::print("  {} pixels have no observation on any date; {} pixels could not be filled on "
                    "any date, not even from neighbours (flag 3 throughout)\n",
                    s.pixels_never_observed, s.pixels_without_value);
+      for (const auto& [reason, n] : s.series_not_fitted)
+        fmt::print("  {} {} not fitted: {}\n", n, r.method.reach_days > 0 ? "pixel-years" : "pixels",
+                   reason);
       if (s.calendar_outputs > 0)
         fmt::print("  {} regular-calendar layers in {}/calendar-{}\n", s.calendar_outputs, s.out_dir,
                    r.every->label());

@@ -46,6 +46,7 @@ struct Counters {
   std::int64_t pixel_dates = 0, observed = 0, masked_by_qa = 0, rejected = 0, filled = 0,
                unfilled = 0, never_observed = 0, never_filled = 0;
   double kernel_seconds = 0;
+  std::map<std::string, std::int64_t> not_fitted;  // series, by the method's reason
 };
 
 // Counts of one year's dates, kept in fill-years.tsv so a run that recomputes some years
@@ -346,6 +347,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     if (segments.empty()) {
       method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
       if (!w.out.chosen.empty()) w.chosen.push_back({block.index, 0, core, w.out.chosen});
+      for (const auto& [reason, n] : w.out.not_fitted) w.counters.not_fitted[reason] += n;
     } else {
       std::fill(w.out.fitted.begin(), w.out.fitted.end(), NAN);
       std::fill(w.out.sd.begin(), w.out.sd.end(), NAN);
@@ -361,6 +363,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         method->fill(BlockInput{&seg.grid, read, core, w.segment_values, w.segment_weights}, w.segment_out);
         if (!w.segment_out.chosen.empty())
           w.chosen.push_back({block.index, seg.year, core, w.segment_out.chosen});
+        for (const auto& [reason, n] : w.segment_out.not_fitted) w.counters.not_fitted[reason] += n;
         for (std::int64_t cp = 0; cp < core_pixels; ++cp)
           for (int slot = seg.own_first; slot <= seg.own_last; ++slot) {
             const std::size_t from = std::size_t(cp) * n + (slot - seg.first_slot);
@@ -490,6 +493,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     summary.pixels_without_value += w.counters.never_filled;
     summary.kernel_seconds += w.counters.kernel_seconds;
     masked_by_qa += w.counters.masked_by_qa;
+    for (const auto& [reason, n] : w.counters.not_fitted) summary.series_not_fitted[reason] += n;
     for (const auto& [year, c] : w.years) {
       YearCounts& t = years[year];
       t.pixel_dates += c.pixel_dates, t.observed += c.observed, t.rejected += c.rejected;
@@ -533,6 +537,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       summary.pixels_without_value < 0 ? std::string("null") : std::to_string(summary.pixels_without_value),
       grid.step_days, summary.calendar_outputs, summary.blocks,
       summary.block_width, summary.block_height);
+  // Series (pixels; pixel-years with a reach) with observations that the method could not fit.
+  json += ",\n  \"series_not_fitted\": {";
+  for (auto it = summary.series_not_fitted.begin(); it != summary.series_not_fitted.end(); ++it)
+    json += fmt::format("{}\n    \"{}\": {}", it == summary.series_not_fitted.begin() ? "" : ",",
+                        detail::json_escape(it->first), it->second);
+  json += summary.series_not_fitted.empty() ? "}" : "\n  }";
   // What the method chose per block, in block order: window [x, y, width, height] of the core.
   if (!chosen.empty()) {
     std::sort(chosen.begin(), chosen.end(), [](const BlockChoice& a, const BlockChoice& b) {

@@ -1,6 +1,7 @@
 #include "fill/harmonic.hpp"
 
 #include <Eigen/Dense>
+#include <fmt/format.h>
 #include <cmath>
 #include <numbers>
 
@@ -85,7 +86,10 @@ HarmonicMethod::SeriesFit HarmonicMethod::fit(std::span<const double> x, std::sp
     if (m < std::max(p + 1, options_.min_observations_per_coefficient * p)) return unfillable();
     normal = normal.selfadjointView<Eigen::Lower>();
     ldlt.compute(normal);
-    if (ldlt.info() != Eigen::Success || ldlt.rcond() < 1e-6) return unfillable();
+    if (ldlt.info() != Eigen::Success || ldlt.rcond() < 1e-6) {
+      result.ill_conditioned = true;
+      return unfillable();
+    }
     beta = ldlt.solve(rhs);
     double rss = 0;
     for (int i = 0; i < n; ++i) {
@@ -132,6 +136,12 @@ HarmonicMethod::SeriesFit HarmonicMethod::fit(std::span<const double> x, std::sp
 void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const int n = in.grid->size;
   const std::vector<double> x = design(in.grid->slot_days);
+  const int p = coefficients();
+  const std::string too_few = fmt::format(
+      "fewer than {} observations for {} coefficients", std::max(p + 1, options_.min_observations_per_coefficient * p), p);
+  const std::string ill_conditioned = fmt::format(
+      "observations cover too little of the year to determine {} harmonics (fewer with --harmonics)",
+      options_.harmonics);
   for (int cy = 0; cy < in.core.height; ++cy)
     for (int cx = 0; cx < in.core.width; ++cx) {
       const std::int64_t core_pixel = std::int64_t(cy) * in.core.width + cx;
@@ -141,7 +151,8 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
       const auto fitted = std::span(out.fitted).subspan(at, n);
       const auto sd = std::span(out.sd).subspan(at, n);
       const auto rejected = std::span(out.rejected).subspan(at, n);
-      fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
+      const SeriesFit f = fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
+      if (!f.fitted && f.observations > 0) ++out.not_fitted[f.ill_conditioned ? ill_conditioned : too_few];
       detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
                          options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
     }

@@ -36,6 +36,7 @@ class HarmonicMethod final : public FillMethod {
     double sigma = 0;
     int observations = 0, rejected = 0;
     bool fitted = false;
+    bool ill_conditioned = false;  // enough observations, but they do not determine the curve
   };
   /// Fits one series given its design rows; writes the curve and sd at every row.
   SeriesFit fit(std::span<const double> design, std::span<const float> y, std::span<const float> w,

@@ -1,5 +1,7 @@
 #include "fill/whittaker.hpp"
 
+#include <fmt/format.h>
+
 #include <algorithm>
 #include <cmath>
 #include <limits>
@@ -201,6 +203,8 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth(std::span<const float> y,
 
 void WhittakerMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const int n = in.grid->size;
+  const std::string too_few = fmt::format("fewer than {} observations for a difference order of {}",
+                                          options_.order + 1, options_.order);
   Workspace ws;
   for (int cy = 0; cy < in.core.height; ++cy)
     for (int cx = 0; cx < in.core.width; ++cx) {
@@ -211,7 +215,9 @@ void WhittakerMethod::fill(const BlockInput& in, BlockOutput& out) const {
       const auto fitted = std::span(out.fitted).subspan(at, n);
       const auto sd = std::span(out.sd).subspan(at, n);
       const auto rejected = std::span(out.rejected).subspan(at, n);
-      smooth(in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected, ws);
+      const SeriesFit f =
+          smooth(in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected, ws);
+      if (!f.fitted && f.observations > 0) ++out.not_fitted[too_few];
       detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
                          options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
     }

@@ -34,17 +34,17 @@ struct ResolvedInput {
 /// Everything a step may use while it runs; it writes only under `folder`.
 struct StepContext {
   const StepOptions& options;
-  std::string job_path;
-  std::string folder;        // this step's output folder
-  std::string out;           // the job's output folder
-  std::string command_line;  // recorded in the outputs' metadata
+  std::string job_path{};
+  std::string folder{};        // this step's output folder
+  std::string out{};           // the job's output folder
+  std::string command_line{};  // recorded in the outputs' metadata
   std::int64_t memory_bytes = 0;
   int threads = 0;
-  std::optional<std::vector<int>> only_years;  // years to recompute, when the runner knows them
-  std::optional<Window> region;  // compute only this window of the inputs' grid (a shard)
-  std::optional<std::vector<std::string>> only_tiles;  // a tiled fill: tiles whose files changed
-  std::function<ResolvedInput(const std::string& name)> resolve;
-  std::function<void(int done, int total)> progress;
+  std::optional<std::vector<int>> only_years{};  // years to recompute, when the runner knows them
+  std::optional<Window> region{};  // compute only this window of the inputs' grid (a shard)
+  std::optional<std::vector<std::string>> only_tiles{};  // a tiled fill: tiles whose files changed
+  std::function<ResolvedInput(const std::string& name)> resolve{};
+  std::function<void(int done, int total)> progress{};
 
   bool has(const char* key) const { return options.count(key) != 0; }
   std::string text(const char* key, const std::string& fallback = "") const;

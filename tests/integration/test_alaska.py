@@ -18,6 +18,7 @@ Run: /usr/bin/python3 -m unittest -v tests/integration/test_alaska.py
 
 import datetime
 import glob
+import json
 import os
 import sys
 import unittest
@@ -143,6 +144,31 @@ class AlaskaNdvi(kt.TempDirTestCase):
         # The same loose sanity bounds; the figures are printed for the record.
         self.assertLess(m["rmse"], 0.15)
         self.assertGreater(m["coverage"], 0.8)
+
+    def test_harmonics_the_summers_cannot_determine_are_explained(self):
+        # Observations only from late May to mid September (day of year 145-257): three
+        # harmonics of a year are not determined there (docs/methods.md). The fill says why it
+        # left the pixels unfitted, on the terminal and in fill-summary.json.
+        out = os.path.join(self.tmp, "harmonic3")
+        done = kt.run_kalends(["fill", os.path.join(self.masked_dir, "*.tif"), "--out", out,
+                               "--method", "harmonic", "--threads", "2"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "fill-summary.json")) as f:
+            summary = json.load(f)
+        reasons = summary["series_not_fitted"]
+        cover = [n for reason, n in reasons.items() if "too little of the year" in reason]
+        self.assertEqual(len(cover), 1, reasons)
+        observed_pixels = int(np.isfinite(self.masked).any(axis=0).sum())
+        self.assertGreater(cover[0], 0.9 * observed_pixels)
+        # Every pixel with an observation is either fitted or counted under a reason.
+        self.assertLessEqual(sum(reasons.values()), observed_pixels)
+        self.assertIn("too little of the year to determine 3 harmonics", done.stdout)
+        # With two harmonics (test_harmonic_two) most pixels are fitted: far fewer reasons.
+        two = os.path.join(self.tmp, "harmonic2-reasons")
+        kt.run_fill_ok(self, [os.path.join(self.masked_dir, "*.tif"), "--out", two,
+                              "--method", "harmonic", "--harmonics", "2", "--threads", "2"])
+        with open(os.path.join(two, "fill-summary.json")) as f:
+            self.assertLess(sum(json.load(f)["series_not_fitted"].values()), 0.2 * observed_pixels)
 
 
 if __name__ == "__main__":
