@@ -140,7 +140,7 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const std::string too_few = fmt::format(
       "fewer than {} observations for {} coefficients", std::max(p + 1, options_.min_observations_per_coefficient * p), p);
   const std::string ill_conditioned = fmt::format(
-      "observations cover too little of the year to determine {} harmonics (fewer with --harmonics)",
+      "observations cover too little of the year to determine {} harmonics; try fewer with --harmonics",
       options_.harmonics);
   for (int cy = 0; cy < in.core.height; ++cy)
     for (int cx = 0; cx < in.core.width; ++cx) {

@@ -149,6 +149,13 @@ std::string score_json(const Score& s, const std::string& indent) {
     }
     j += "}";
   }
+  if (!s.baseline) {
+    j += ", \"series_not_fitted\": {";
+    for (auto it = s.not_fitted.begin(); it != s.not_fitted.end(); ++it)
+      j += fmt::format("{}\"{}\": {}", it == s.not_fitted.begin() ? "" : ", ", detail::json_escape(it->first),
+                       it->second);
+    j += "}";
+  }
   for (const auto* part : {&s.by_gap, &s.by_neighbourhood}) {
     if (part->empty()) continue;
     j += fmt::format(",\n{}  \"{}\": [", indent, part == &s.by_gap ? "by_gap_length" : "by_neighbourhood_missing");
@@ -332,7 +339,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
     fill.memory_bytes = request.memory_bytes;
     fill.threads = request.threads;
     fill.compression = Compression::none;
-    run_fill(fill);
+    const FillSummary filled = run_fill(fill);
     std::vector<std::string> paths;
     for (int t = 0; t < dates; ++t)
       paths.push_back((work / method / (name + "_" + stack.layers()[t].time.label() + ".tif")).string());
@@ -340,6 +347,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
     const Cube sd = read_band(paths, 2, grid.width, grid.height);
     report.scores.push_back(score_cube(method, value, &sd, false));
     report.scores.back().parameters = parameters[method];
+    report.scores.back().not_fitted = filled.series_not_fitted;
     if (!request.keep_work) fs::remove_all(work / method, ec);
   }
 
@@ -430,6 +438,10 @@ ValidateReport run_validate(const ValidateRequest& request) {
   for (const Score& s : report.scores)
     if (!s.parameters.empty()) md += "\n- " + s.name + ": " + join_parameters(s.parameters);
   md += "\n";
+  std::string not_fitted;
+  for (const Score& s : report.scores)
+    for (const auto& [reason, n] : s.not_fitted) not_fitted += fmt::format("\n- {}: {} ({})", s.name, n, reason);
+  if (!not_fitted.empty()) md += "\nPixels with observations that a method could not fit:" + not_fitted + "\n";
   for (int part = 0; part < 2; ++part) {
     md += part == 0 ? "\n## RMSE (coverage) by gap length in time\n\n"
                     : fmt::format("\n## RMSE (coverage) by share of the {0}x{0} neighbourhood missing\n\n",

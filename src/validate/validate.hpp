@@ -4,6 +4,7 @@
 #pragma once
 
 #include <cstdint>
+#include <map>
 #include <string>
 #include <vector>
 
@@ -35,6 +36,7 @@ struct Score {
   double rms_error_over_sd = -1;  // sqrt(mean((error / sd)^2)); 1 = calibrated; < 0 where no sd
   std::vector<std::pair<std::string, Score>> by_gap, by_neighbourhood;
   MethodParameters parameters;  // the settings a method was scored with (none for baselines)
+  std::map<std::string, std::int64_t> not_fitted;  // the fill's series_not_fitted (methods)
 };
 
 struct ValidateReport {

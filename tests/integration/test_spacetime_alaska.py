@@ -100,6 +100,22 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         whittaker = scores["whittaker"]
         self.assertTrue(0.5 < whittaker["rms_error_over_sd"] < 2.0, whittaker["rms_error_over_sd"])
 
+    def test_validate_says_why_a_method_scored_nothing(self):
+        # Three harmonics are not determined by summer-only observations: harmonic scores no
+        # cell, and the report says why (the fill's series_not_fitted).
+        out = os.path.join(self.tmp, "validation-harmonic")
+        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                               "--methods", "harmonic", "--out", out, "--seed", "3",
+                               "--withhold", "0.05", "--threads", "2"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            harmonic = {s["name"]: s for s in json.load(f)["scores"]}["harmonic"]
+        self.assertEqual(harmonic["covered"], 0)
+        reasons = harmonic["series_not_fitted"]
+        self.assertTrue(any("too little of the year" in r for r in reasons), reasons)
+        with open(os.path.join(out, "report.md")) as f:
+            self.assertIn("too little of the year to determine 3 harmonics", f.read())
+
     def test_validate_scores_match_numpy(self):
         """validate's scores, recomputed with numpy from the withheld stack and the fill it kept."""
         out = os.path.join(self.tmp, "validation-kept")
