@@ -48,6 +48,15 @@ class AlaskaSpacetime(kt.TempDirTestCase):
             ds = None
         return np.stack(arrays)
 
+    def validate_observed(self, out, methods, seed, withhold, *extra):
+        """Runs kalends validate on observed/; returns the finished process and report.json."""
+        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                               "--methods", methods, "--out", out, "--seed", str(seed),
+                               "--withhold", str(withhold), "--threads", "2"] + list(extra))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            return done, json.load(f)
+
     def test_masked_variants(self):
         observed = self.stack("observed")
         figures = {}
@@ -77,13 +86,8 @@ class AlaskaSpacetime(kt.TempDirTestCase):
 
     def test_validate_fresh_masks(self):
         out = os.path.join(self.tmp, "validation")
-        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
-                               "--methods", "whittaker,spacetime", "--out", out, "--seed", "1",
-                               "--withhold", "0.3", "--threads", "2"])
-        self.assertEqual(done.returncode, 0, done.stderr)
+        done, report = self.validate_observed(out, "whittaker,spacetime", 1, 0.3)
         print("\n" + done.stdout)
-        with open(os.path.join(out, "report.json")) as f:
-            report = json.load(f)
         self.assertTrue(os.path.isfile(os.path.join(out, "report.md")))
         scores = {s["name"]: s for s in report["scores"]}
         self.assertFalse(os.path.exists(os.path.join(out, "work")))
@@ -104,12 +108,8 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         # Three harmonics are not determined by summer-only observations: harmonic scores no
         # cell, and the report says why (the fill's series_not_fitted).
         out = os.path.join(self.tmp, "validation-harmonic")
-        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
-                               "--methods", "harmonic", "--out", out, "--seed", "3",
-                               "--withhold", "0.05", "--threads", "2"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        with open(os.path.join(out, "report.json")) as f:
-            harmonic = {s["name"]: s for s in json.load(f)["scores"]}["harmonic"]
+        _, report = self.validate_observed(out, "harmonic", 3, 0.05)
+        harmonic = {s["name"]: s for s in report["scores"]}["harmonic"]
         self.assertEqual(harmonic["covered"], 0)
         reasons = harmonic["series_not_fitted"]
         self.assertTrue(any("too little of the year" in r for r in reasons), reasons)
@@ -119,12 +119,8 @@ class AlaskaSpacetime(kt.TempDirTestCase):
     def test_validate_scores_match_numpy(self):
         """validate's scores, recomputed with numpy from the withheld stack and the fill it kept."""
         out = os.path.join(self.tmp, "validation-kept")
-        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
-                               "--methods", "spacetime", "--out", out, "--seed", "5",
-                               "--withhold", "0.1", "--threads", "2", "--keep-work"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        with open(os.path.join(out, "report.json")) as f:
-            score = {s["name"]: s for s in json.load(f)["scores"]}["spacetime"]
+        _, report = self.validate_observed(out, "spacetime", 5, 0.1, "--keep-work")
+        score = {s["name"]: s for s in report["scores"]}["spacetime"]
         observed = self.stack("observed")
         gdal = kt.gdal()
         withheld_input, value, sd = [], [], []
@@ -151,12 +147,8 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         records them in report.json."""
         out = os.path.join(self.tmp, "validation-options")
         options = ["--neighbour-radius", "0", "--time-smoothing", "0.05"]
-        done = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
-                               "--methods", "spacetime", "--out", out, "--seed", "7",
-                               "--withhold", "0.1", "--threads", "2", "--keep-work"] + options)
-        self.assertEqual(done.returncode, 0, done.stderr)
-        with open(os.path.join(out, "report.json")) as f:
-            score = {s["name"]: s for s in json.load(f)["scores"]}["spacetime"]
+        _, report = self.validate_observed(out, "spacetime", 7, 0.1, "--keep-work", *options)
+        score = {s["name"]: s for s in report["scores"]}["spacetime"]
         self.assertEqual(score["parameters"]["neighbour_radius"], "0")
         self.assertEqual(score["parameters"]["time_smoothing"], "0.05")
         refill = os.path.join(self.tmp, "refill")
