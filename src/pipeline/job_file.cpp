@@ -68,7 +68,8 @@ std::string checked_text(const std::string& path, const std::string& key, const 
       std::string text;
       for (const toml::node& e : *a) {
         if (!e.is_string()) wrong();
-        text += (text.empty() ? "" : ",") + *e.value<std::string>();
+        if (!text.empty()) text += ',';
+        text += *e.value<std::string>();
       }
       return text;
     }

@@ -21,8 +21,8 @@ struct InputRecord {
 struct StepRecord {
   std::string id, kind, fingerprint, status, finished, message;
   double seconds = 0;
-  std::vector<std::string> outputs;
-  std::map<std::string, std::string> inputs;  // input files read directly -> checksum
+  std::vector<std::string> outputs{};
+  std::map<std::string, std::string> inputs{};  // input files read directly -> checksum
 };
 
 class StateDatabase {
