@@ -179,8 +179,14 @@ ValidateReport run_validate(const ValidateRequest& request) {
   for (const std::string& m : request.methods) {
     MethodOptions o = request.method;
     o.method = m;
-    // Unknown names and bad options fail here, before any work.
-    parameters[m] = make_fill_method(o)->parameters();
+    // Unknown names and bad options fail here, before any work. The method is named by
+    // --methods here, not fill's --method.
+    try {
+      parameters[m] = make_fill_method(o)->parameters();
+    } catch (const UsageError& e) {
+      if (e.where() != "--method") throw;
+      throw UsageError("--methods", e.reason());
+    }
   }
   const Stack stack = Stack::open(request.input, request.rules);
   const int dates = int(stack.layers().size());

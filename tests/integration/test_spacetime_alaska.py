@@ -165,6 +165,13 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         self.assertNotEqual(bad.returncode, 0)
         self.assertIn("--time-smoothing", bad.stderr)
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "bad")))
+        # An unknown method is named with validate's own option.
+        unknown = kt.run_kalends(["validate", os.path.join(self.root, "observed", "*.tif"),
+                                  "--out", os.path.join(self.tmp, "bad"), "--methods", "kriging"])
+        self.assertEqual(unknown.returncode, 2)
+        self.assertEqual(unknown.stderr.count("\n"), 1, unknown.stderr)
+        self.assertIn("--methods: unknown method 'kriging'", unknown.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "bad")))
 
 
 if __name__ == "__main__":
