@@ -137,8 +137,8 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const int n = in.grid->size;
   const std::vector<double> x = design(in.grid->slot_days);
   const int p = coefficients();
-  const std::string too_few = fmt::format(
-      "fewer than {} observations for {} coefficients", std::max(p + 1, options_.min_observations_per_coefficient * p), p);
+  const int least = std::max(p + 1, options_.min_observations_per_coefficient * p);
+  const std::string too_few = fmt::format("fewer than {} observations for {} coefficients", least, p);
   const std::string ill_conditioned = fmt::format(
       "observations cover too little of the year to determine {} harmonics; try fewer with --harmonics",
       options_.harmonics);
@@ -151,8 +151,10 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
       const auto fitted = std::span(out.fitted).subspan(at, n);
       const auto sd = std::span(out.sd).subspan(at, n);
       const auto rejected = std::span(out.rejected).subspan(at, n);
-      const SeriesFit f = fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
-      if (!f.fitted && f.observations > 0) ++out.not_fitted[f.ill_conditioned ? ill_conditioned : too_few];
+      const SeriesFit f =
+          fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
+      if (!f.fitted && f.observations > 0)
+        ++out.not_fitted[f.ill_conditioned ? ill_conditioned : too_few];
       detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
                          options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
     }
