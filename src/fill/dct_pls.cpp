@@ -427,16 +427,6 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     else runs.push_back({t, 1});
     if (!has_data) empty_slots.push_back(t);
   }
-  // sqrt of the orthonormal factors of each spatial frequency: the orthonormal DCT-II is
-  // root_factor times FFTW's REDFT10 (scale_axes above, per axis).
-  std::vector<double> root_factor;
-  if (!empty_slots.empty()) {
-    root_factor.resize(frequencies);
-    for (int a = 0; a < n0; ++a)
-      for (int b = 0; b < n1; ++b)
-        root_factor[std::size_t(a) * n1 + b] = (n0 > 1 ? ortho_factor(a, n0) : 1.0) *
-                                               (n1 > 1 ? ortho_factor(b, n1) : 1.0);
-  }
   // A floor keeps every factor positive definite where sigma = 0 and wbar is zero.
   const double floor = 1e-9 * omega;
 
@@ -483,39 +473,54 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     if (nt > 1) x[nt - 2] -= l1[nt - 2] * x[nt - 1];
     for (int t = nt - 3; t >= 0; --t) x[t] -= l1[t] * x[t + 1] + l2[t] * x[t + 2];
   };
-  // out <- P_ab x / scale for frequency f: the bands and space terms are divided once here.
+  // Orthonormal spectra: x_hat = R C_s x, C_s FFTW's unnormalised two-dimensional transform
+  // and R the orthonormal factors of each spatial frequency (scale_axes above, per axis); back,
+  // x = C_s^T R^-1 x_hat / scale, FFTW's inverse undoing C_s up to `scale`.
   double scale = 1.0;
   for (int k = 0; k < 2; ++k)
     if (shape[k] > 1) scale *= 2.0 * shape[k];
-  std::vector<double> scaled0(nt), scaled1(nt), scaled2(nt);
-  for (int t = 0; t < nt; ++t) {
-    scaled0[t] = band0[t] / scale;
-    scaled1[t] = band1[t] / scale;
-    scaled2[t] = band2[t] / scale;
-  }
-  auto penalty_frequency = [&](std::size_t f, const double* x, double* out) {
-    const double extra = space_term[f] / scale;
-    if (nt < 5) {
-      for (int t = 0; t < nt; ++t) {
-        double v = (scaled0[t] + extra) * x[t];
-        if (t >= 1) v += scaled1[t - 1] * x[t - 1];
-        if (t + 1 < nt) v += scaled1[t] * x[t + 1];
-        if (t >= 2) v += scaled2[t - 2] * x[t - 2];
-        if (t + 2 < nt) v += scaled2[t] * x[t + 2];
-        out[t] = v;
-      }
-      return;
+  std::vector<double> root_factor(frequencies), back_factor(frequencies);
+  for (int a = 0; a < n0; ++a)
+    for (int b = 0; b < n1; ++b) {
+      const std::size_t f = std::size_t(a) * n1 + b;
+      root_factor[f] = (n0 > 1 ? ortho_factor(a, n0) : 1.0) * (n1 > 1 ? ortho_factor(b, n1) : 1.0);
+      back_factor[f] = 1.0 / (root_factor[f] * scale);
     }
-    out[0] = (scaled0[0] + extra) * x[0] + scaled1[0] * x[1] + scaled2[0] * x[2];
-    out[1] = (scaled0[1] + extra) * x[1] + scaled1[0] * x[0] + scaled1[1] * x[2] +
-             scaled2[1] * x[3];
-    for (int t = 2; t < nt - 2; ++t)
-      out[t] = (scaled0[t] + extra) * x[t] + scaled1[t - 1] * x[t - 1] + scaled1[t] * x[t + 1] +
-               scaled2[t - 2] * x[t - 2] + scaled2[t] * x[t + 2];
-    const int a = nt - 2, b = nt - 1;
-    out[a] = (scaled0[a] + extra) * x[a] + scaled1[a - 1] * x[a - 1] + scaled1[a] * x[b] +
-             scaled2[a - 2] * x[a - 2];
-    out[b] = (scaled0[b] + extra) * x[b] + scaled1[b - 1] * x[a] + scaled2[b - 2] * x[b - 2];
+  std::vector<std::uint8_t> slot_has_data(nt);
+  for (int t = 0; t < nt; ++t) slot_has_data[t] = mean_weight[t] > 0;
+  auto scale_data_slots = [&](double* x, const std::vector<double>& factor) {
+    each_frequency([&](std::size_t f) {
+      double* row = x + f * nt;
+      for (const SlotRun& run : data_runs)
+        for (int t = run.first; t < run.first + run.count; ++t) row[t] *= factor[f];
+    });
+  };
+  // Only the slots with data are transformed; the empty ones hold spectra throughout.
+  auto to_spectrum = [&](double* x) {
+    plans.forward_space(shape, x, data_runs);
+    scale_data_slots(x, root_factor);
+  };
+  auto from_spectrum = [&](double* x) {
+    scale_data_slots(x, back_factor);
+    plans.inverse_space(shape, x, data_runs);
+  };
+  // out += P_ab x_hat for frequency f (orthonormal spectra: P is s_space sigma^2 + s_time L^2).
+  auto add_penalty = [&](std::size_t f, const double* x, double* out) {
+    const double extra = space_term[f];
+    auto edge = [&](int t) {
+      double v = (band0[t] + extra) * x[t];
+      if (t >= 1) v += band1[t - 1] * x[t - 1];
+      if (t + 1 < nt) v += band1[t] * x[t + 1];
+      if (t >= 2) v += band2[t - 2] * x[t - 2];
+      if (t + 2 < nt) v += band2[t] * x[t + 2];
+      out[t] += v;
+    };
+    const int inner_end = std::max(2, nt - 2);
+    for (int t = 0; t < std::min(2, nt); ++t) edge(t);
+    for (int t = 2; t < inner_end; ++t)  // no ends to test for
+      out[t] += (band0[t] + extra) * x[t] + band1[t - 1] * x[t - 1] + band1[t] * x[t + 1] +
+                band2[t - 2] * x[t - 2] + band2[t] * x[t + 2];
+    for (int t = inner_end; t < nt; ++t) edge(t);
   };
 
   ws.residual.resize(n);
@@ -523,55 +528,12 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   ws.direction_spectrum.resize(n);
   ws.preconditioned.resize(n);
   ws.product.resize(n);
-  double* r = ws.residual.data();
-  double* d = ws.direction.data();
-  double* d_hat = ws.direction_spectrum.data();
-  double* q = ws.preconditioned.data();
-  double* ad = ws.product.data();
+  double* r_hat = ws.residual.data();            // the residual's spectrum
+  double* d = ws.direction.data();               // the direction, on the slots with data
+  double* d_hat = ws.direction_spectrum.data();  // its spectrum
+  double* q_hat = ws.preconditioned.data();      // M r, as a spectrum
+  double* ad_hat = ws.product.data();            // (W + P) d, as a spectrum
   auto in_chunks = [&](auto&& body) { parallel_ranges(n, vector_chunk, body); };
-
-  // Empty slots hold orthonormal spectra: x_hat = root_factor C_s x (C_s: FFTW's unnormalised
-  // transform), and their share of a product P x is root_factor (P_ab C_s x).
-  auto to_spectra_of_empty = [&](std::size_t f, const double* spectrum, double* out) {
-    for (int t : empty_slots) out[t] = spectrum[t] * root_factor[f];
-  };
-  auto penalty_product = [&](std::size_t f, const double* x_hat, double* out) {
-    penalty_frequency(f, x_hat, out);
-    for (int t : empty_slots) out[t] *= scale * root_factor[f];
-  };
-
-  // r = W y - (W + P) z.
-  std::copy(z.data(), z.data() + n, q);
-  plans.forward_space(shape, q);
-  each_frequency([&](std::size_t f) {
-    penalty_product(f, q + f * nt, ad + f * nt);
-    to_spectra_of_empty(f, q + f * nt, z.data() + f * nt);
-  });
-  plans.inverse_space(shape, ad, data_runs);
-  double b_norm = std::sqrt(deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
-    double sum = 0;
-    for (std::size_t i = a; i < e; ++i) {
-      const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
-      sum += b * b;
-      r[i] = b - ad[i] - w[i] * z[i];
-    }
-    return sum;
-  }));
-  if (b_norm == 0) b_norm = 1;
-  // q <- M r, and its spectrum C_s q to `q_hat` (the solve's output before the inverse).
-  auto precondition = [&](double* q_hat) {
-    in_chunks([&](std::size_t a, std::size_t e) { std::copy(r + a, r + e, q_hat + a); });
-    plans.forward_space(shape, q_hat, data_runs);
-    const double inverse_scale = 1.0 / scale;
-    each_frequency([&](std::size_t f) {
-      double* x = q_hat + f * nt;
-      for (int t : empty_slots) x[t] /= root_factor[f];
-      solve_frequency(f, x);
-      for (int t = 0; t < nt; ++t) q[f * nt + t] = x[t] * inverse_scale;
-      to_spectra_of_empty(f, x, q + f * nt);
-    });
-    plans.inverse_space(shape, q, data_runs);
-  };
   auto dot = [&](const double* a, const double* b) {
     return deterministic_sum(n, vector_chunk, [&](std::size_t lo, std::size_t hi) {
       double sum = 0;
@@ -579,49 +541,84 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       return sum;
     });
   };
-  // Three 2-D transforms per iteration: the direction is kept in both domains (C_s d =
-  // C_s q + beta C_s d_old), so P d needs only an inverse transform.
-  precondition(d_hat);
-  in_chunks([&](std::size_t a, std::size_t e) { std::copy(q + a, q + e, d + a); });
-  double rq = dot(r, q);
-  double rr = dot(r, r);
+
+  // r = W y - (W + P) z, as a spectrum. The empty slots of z become spectra here.
+  in_chunks([&](std::size_t a, std::size_t e) { std::copy(z.data() + a, z.data() + e, ad_hat + a); });
+  plans.forward_space(shape, ad_hat);
+  each_frequency([&](std::size_t f) {
+    double* z_hat = ad_hat + f * nt;
+    for (int t = 0; t < nt; ++t) z_hat[t] *= root_factor[f];
+    for (int t : empty_slots) z[f * nt + t] = z_hat[t];
+  });
+  double b_norm = std::sqrt(deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
+    double sum = 0;
+    for (std::size_t i = a; i < e; ++i) {
+      const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
+      sum += b * b;
+      r_hat[i] = w[i] > 0 ? b - w[i] * z[i] : 0.0;
+    }
+    return sum;
+  }));
+  if (b_norm == 0) b_norm = 1;
+  to_spectrum(r_hat);
+  each_frequency([&](std::size_t f) {
+    double* row = r_hat + f * nt;
+    for (int t = 0; t < nt; ++t) q_hat[f * nt + t] = 0.0;
+    add_penalty(f, ad_hat + f * nt, q_hat + f * nt);
+    for (int t = 0; t < nt; ++t) row[t] -= q_hat[f * nt + t];
+  });
+  // q_hat <- M r_hat, one banded solve per spatial frequency.
+  auto precondition = [&] {
+    each_frequency([&](std::size_t f) {
+      std::copy(r_hat + f * nt, r_hat + (f + 1) * nt, q_hat + f * nt);
+      solve_frequency(f, q_hat + f * nt);
+    });
+  };
+  auto direction_to_space = [&] {
+    in_chunks([&](std::size_t a, std::size_t e) { std::copy(d_hat + a, d_hat + e, d + a); });
+    from_spectrum(d);
+  };
+  // Two 2-D transforms per iteration: the residual lives in the spectral domain (the dot
+  // products are the same in both, the transform being orthonormal), so (W + P) d needs the
+  // spectrum of W d only, and the direction goes back to space once for W d and z.
+  precondition();
+  in_chunks([&](std::size_t a, std::size_t e) { std::copy(q_hat + a, q_hat + e, d_hat + a); });
+  direction_to_space();
+  double rq = dot(r_hat, q_hat);
+  double rr = dot(r_hat, r_hat);
   for (int it = 0; it < settings.max_iterations; ++it) {
     result.relative_residual = std::sqrt(rr) / b_norm;
     if (result.relative_residual <= settings.tolerance) {
       result.converged = true;
       break;
     }
-    each_frequency([&](std::size_t f) { penalty_product(f, d_hat + f * nt, ad + f * nt); });
-    plans.inverse_space(shape, ad, data_runs);
-    const double dad = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
-      double sum = 0;
-      for (std::size_t i = a; i < e; ++i) {
-        ad[i] += w[i] * d[i];
-        sum += d[i] * ad[i];
-      }
-      return sum;
+    in_chunks([&](std::size_t a, std::size_t e) {
+      for (std::size_t i = a; i < e; ++i) ad_hat[i] = w[i] * d[i];  // 0 on the empty slots
     });
+    to_spectrum(ad_hat);
+    each_frequency([&](std::size_t f) { add_penalty(f, d_hat + f * nt, ad_hat + f * nt); });
+    const double dad = dot(d_hat, ad_hat);
     if (!(dad > 0)) break;
     const double alpha = rq / dad;
     rr = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
       double sum = 0;
+      std::size_t t = a % std::size_t(nt);
       for (std::size_t i = a; i < e; ++i) {
-        z[i] += alpha * d[i];
-        r[i] -= alpha * ad[i];
-        sum += r[i] * r[i];
+        z[i] += alpha * (slot_has_data[t] ? d[i] : d_hat[i]);
+        r_hat[i] -= alpha * ad_hat[i];
+        sum += r_hat[i] * r_hat[i];
+        if (++t == std::size_t(nt)) t = 0;
       }
       return sum;
     });
-    precondition(ad);  // `ad` is free until the next product
-    const double rq_next = dot(r, q);
+    precondition();
+    const double rq_next = dot(r_hat, q_hat);
     const double beta = rq_next / rq;
     rq = rq_next;
     in_chunks([&](std::size_t a, std::size_t e) {
-      for (std::size_t i = a; i < e; ++i) {
-        d[i] = q[i] + beta * d[i];
-        d_hat[i] = ad[i] + beta * d_hat[i];
-      }
+      for (std::size_t i = a; i < e; ++i) d_hat[i] = q_hat[i] + beta * d_hat[i];
     });
+    direction_to_space();
     result.iterations = it + 1;
   }
   if (!result.converged) {

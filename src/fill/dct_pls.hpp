@@ -37,11 +37,11 @@
 // at all (winters, wholly cloudy dates), which made [G10]'s (omega I + P)^-1 converge slowly,
 // cost few iterations: on the Alaska masked50 block the four solves of a fill took 142, 145,
 // 81 and 114 iterations with (omega I + P)^-1 and 36, 68, 11 and 50 with this one. Time is not
-// transformed, so it needs no padding. Three 2-D transforms per iteration (the search direction
-// is kept in both domains), of the slots with data only: where no pixel of a slot has weight,
-// W is 0 and the solve never needs that slot in space, so its parts of the vectors stay in the
-// orthonormal space-DCT domain (dot products are equal in both) and are transformed back once,
-// at the end. On a summer-only stack on an all-year grid (Alaska: 48 of 138 slots with data)
+// transformed, so it needs no padding. Two 2-D transforms per iteration (the residual is kept
+// as a spectrum, the direction in both domains), of the slots with data only: where no pixel of
+// a slot has weight, W is 0 and the solve never needs that slot in space, so its parts of the
+// vectors stay in the orthonormal space-DCT domain (dot products are equal in both) and are
+// transformed back once, at the end. On a summer-only stack on an all-year grid (Alaska: 48 of 138 slots with data)
 // this cuts the transforms by about 3.
 #pragma once
 
