@@ -567,11 +567,24 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     add_penalty(f, ad_hat + f * nt, q_hat + f * nt);
     for (int t = 0; t < nt; ++t) row[t] -= q_hat[f * nt + t];
   });
-  // q_hat <- M r_hat, one banded solve per spatial frequency.
+  // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
+  auto over_frequencies = [&](auto&& body) {
+    return deterministic_sum(frequencies, frequency_grain, [&](std::size_t a, std::size_t b) {
+      double sum = 0;
+      for (std::size_t f = a; f < b; ++f) sum += body(f);
+      return sum;
+    });
+  };
+  // q_hat <- M r_hat, one banded solve per spatial frequency; returns r_hat . q_hat.
   auto precondition = [&] {
-    each_frequency([&](std::size_t f) {
-      std::copy(r_hat + f * nt, r_hat + (f + 1) * nt, q_hat + f * nt);
-      solve_frequency(f, q_hat + f * nt);
+    return over_frequencies([&](std::size_t f) {
+      const double* r = r_hat + f * nt;
+      double* q = q_hat + f * nt;
+      std::copy(r, r + nt, q);
+      solve_frequency(f, q);
+      double sum = 0;
+      for (int t = 0; t < nt; ++t) sum += r[t] * q[t];
+      return sum;
     });
   };
   auto direction_to_space = [&] {
@@ -581,10 +594,9 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   // Two 2-D transforms per iteration: the residual lives in the spectral domain (the dot
   // products are the same in both, the transform being orthonormal), so (W + P) d needs the
   // spectrum of W d only, and the direction goes back to space once for W d and z.
-  precondition();
+  double rq = precondition();
   in_chunks([&](std::size_t a, std::size_t e) { std::copy(q_hat + a, q_hat + e, d_hat + a); });
   direction_to_space();
-  double rq = dot(r_hat, q_hat);
   double rr = dot(r_hat, r_hat);
   for (int it = 0; it < settings.max_iterations; ++it) {
     result.relative_residual = std::sqrt(rr) / b_norm;
@@ -595,9 +607,17 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     in_chunks([&](std::size_t a, std::size_t e) {
       for (std::size_t i = a; i < e; ++i) ad_hat[i] = w[i] * d[i];  // 0 on the empty slots
     });
-    to_spectrum(ad_hat);
-    each_frequency([&](std::size_t f) { add_penalty(f, d_hat + f * nt, ad_hat + f * nt); });
-    const double dad = dot(d_hat, ad_hat);
+    plans.forward_space(shape, ad_hat, data_runs);
+    // One pass per frequency: to the orthonormal spectrum, plus P d, and d . (W + P) d.
+    const double dad = over_frequencies([&](std::size_t f) {
+      double* row = ad_hat + f * nt;
+      for (const SlotRun& run : data_runs)
+        for (int t = run.first; t < run.first + run.count; ++t) row[t] *= root_factor[f];
+      add_penalty(f, d_hat + f * nt, row);
+      double sum = 0;
+      for (int t = 0; t < nt; ++t) sum += d_hat[f * nt + t] * row[t];
+      return sum;
+    });
     if (!(dad > 0)) break;
     const double alpha = rq / dad;
     rr = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
@@ -611,14 +631,19 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       }
       return sum;
     });
-    precondition();
-    const double rq_next = dot(r_hat, q_hat);
+    const double rq_next = precondition();
     const double beta = rq_next / rq;
     rq = rq_next;
-    in_chunks([&](std::size_t a, std::size_t e) {
-      for (std::size_t i = a; i < e; ++i) d_hat[i] = q_hat[i] + beta * d_hat[i];
+    // The next direction, as a spectrum and (slots with data) back to space in one pass.
+    each_frequency([&](std::size_t f) {
+      double* spectrum = d_hat + f * nt;
+      double* space = d + f * nt;
+      for (int t = 0; t < nt; ++t) {
+        spectrum[t] = q_hat[f * nt + t] + beta * spectrum[t];
+        space[t] = spectrum[t] * back_factor[f];
+      }
     });
-    direction_to_space();
+    plans.inverse_space(shape, d, data_runs);
     result.iterations = it + 1;
   }
   if (!result.converged) {
