@@ -105,12 +105,14 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   int half = 0;
   const std::vector<double> kernel = season_kernel(grid, settings.season_days, half);
   const int radius = settings.radius;
-  // The bins under the kernel centred on each bin; the year wraps around.
+  // A pair's sums per bin are kept with `half` wrapped copies on each side (the year wraps
+  // around), so the kernel centred on bin b reads entries b .. b + 2 half in a row.
   const int taps = 2 * half + 1;
-  std::vector<int> wrapped(std::size_t(bins) * taps);
-  for (int b = 0; b < bins; ++b)
-    for (int j = -half; j <= half; ++j)
-      wrapped[std::size_t(b) * taps + (j + half)] = ((b + j) % bins + bins) % bins;
+  const int padded = bins + 2 * half;
+  std::vector<int> margin_source(std::size_t(padded), 0);
+  for (int k = 0; k < padded; ++k) margin_source[std::size_t(k)] = half + ((k - half) % bins + bins) % bins;
+  std::vector<double> kernel_squared(kernel.size());
+  for (std::size_t j = 0; j < kernel.size(); ++j) kernel_squared[j] = kernel[j] * kernel[j];
 
   // Known values: observed cells (variance 0), then each round's predictions. A round writes
   // its predictions to `estimate` and their propagation variance to `known_variance` (read only
@@ -154,7 +156,10 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
     // unknown cells, so the rows are independent.
     parallel_ranges(std::size_t(rows), 2, [&](std::size_t row_begin, std::size_t row_end) {
       std::vector<double> sum_w(slots), sum_wx(slots), count(slots);
-      std::vector<double> b0(bins), b1(bins), b2(bins);
+      struct BinSums {
+        double weight = 0, difference = 0, square = 0;  // sums of m, m d, m d^2
+      };
+      std::vector<BinSums> sums(static_cast<std::size_t>(padded));
       std::vector<int> pending;
       std::vector<std::size_t> mine;
       for (int r = int(row_begin); r < int(row_end); ++r)
@@ -180,9 +185,8 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
               if (!useful) continue;
               // Differences on co-observed dates, summed per season bin, over p's observed
               // slots. Without branches: a third of q's dates or more may be missing, at random.
-              std::fill(b0.begin(), b0.end(), 0.0);
-              std::fill(b1.begin(), b1.end(), 0.0);
-              std::fill(b2.begin(), b2.end(), 0.0);
+              BinSums* core = sums.data() + half;
+              std::fill(core, core + bins, BinSums{});
               bool shared = false;  // any co-observed date
               const double* wp_row = &weight[p * slots];
               const double* wq_row = &weight[q * slots];
@@ -193,29 +197,31 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
                 const bool both = wq_row[s] > 0;
                 const double m = both ? wp_row[s] * wq_row[s] : 0.0;
                 const double d = both ? yp_row[s] - yq_row[s] : 0.0;
-                const int b = observed_bin[k];
-                b0[b] += m;
-                b1[b] += m * d;
-                b2[b] += m * d * d;
+                BinSums& bin = core[observed_bin[k]];
+                bin.weight += m;
+                bin.difference += m * d;
+                bin.square += m * d * d;
                 shared |= both;
               }
               if (!shared) continue;
+              for (int k = 0; k < half; ++k) sums[std::size_t(k)] = sums[std::size_t(margin_source[std::size_t(k)])];
+              for (int k = half + bins; k < padded; ++k)
+                sums[std::size_t(k)] = sums[std::size_t(margin_source[std::size_t(k)])];
               // The prior of the seasonal spread: the pair's spread over all its dates.
               double t0 = 0, t1 = 0, t2 = 0;
-              for (int b = 0; b < bins; ++b) t0 += b0[b], t1 += b1[b], t2 += b2[b];
+              for (int b = 0; b < bins; ++b) t0 += core[b].weight, t1 += core[b].difference, t2 += core[b].square;
               if (t0 < settings.min_pairs_in_all) continue;
               const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
               for (int s : pending) {
                 if (std::isnan(vq[s])) continue;
-                const int* around = &wrapped[std::size_t(grid.bin_of_slot[std::size_t(s)]) * taps];
+                const BinSums* around = sums.data() + grid.bin_of_slot[std::size_t(s)];
                 double s0 = 0, s1 = 0, s2 = 0, k2 = 0;
                 for (int j = 0; j < taps; ++j) {
-                  const int bb = around[j];
                   const double k = kernel[std::size_t(j)];
-                  s0 += k * b0[bb];
-                  s1 += k * b1[bb];
-                  s2 += k * b2[bb];
-                  k2 += k * k * b0[bb];
+                  s0 += k * around[j].weight;
+                  s1 += k * around[j].difference;
+                  s2 += k * around[j].square;
+                  k2 += kernel_squared[std::size_t(j)] * around[j].weight;
                 }
                 if (!(s0 > 0) || !(k2 > 0)) continue;
                 const double n_eff = s0 * s0 / k2;
