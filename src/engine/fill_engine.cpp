@@ -538,11 +538,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       grid.step_days, summary.calendar_outputs, summary.blocks,
       summary.block_width, summary.block_height);
   // Series (pixels; pixel-years with a reach) with observations that the method could not fit.
-  json += ",\n  \"series_not_fitted\": {";
-  for (auto it = summary.series_not_fitted.begin(); it != summary.series_not_fitted.end(); ++it)
-    json += fmt::format("{}\n    \"{}\": {}", it == summary.series_not_fitted.begin() ? "" : ",",
-                        detail::json_escape(it->first), it->second);
-  json += summary.series_not_fitted.empty() ? "}" : "\n  }";
+  json += ",\n  \"series_not_fitted\": " + detail::json_counts(summary.series_not_fitted, "  ");
   // What the method chose per block, in block order: window [x, y, width, height] of the core.
   if (!chosen.empty()) {
     std::sort(chosen.begin(), chosen.end(), [](const BlockChoice& a, const BlockChoice& b) {

@@ -109,8 +109,10 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   // around), so the kernel centred on bin b reads entries b .. b + 2 half in a row.
   const int taps = 2 * half + 1;
   const int padded = bins + 2 * half;
-  std::vector<int> margin_source(std::size_t(padded), 0);
-  for (int k = 0; k < padded; ++k) margin_source[std::size_t(k)] = half + ((k - half) % bins + bins) % bins;
+  // Each margin entry and the core entry it copies.
+  std::vector<std::pair<int, int>> margin;
+  for (int k = 0; k < padded; ++k)
+    if (k < half || k >= half + bins) margin.emplace_back(k, half + ((k - half) % bins + bins) % bins);
   std::vector<double> kernel_squared(kernel.size());
   for (std::size_t j = 0; j < kernel.size(); ++j) kernel_squared[j] = kernel[j] * kernel[j];
 
@@ -204,12 +206,11 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
                 shared |= both;
               }
               if (!shared) continue;
-              for (int k = 0; k < half; ++k) sums[std::size_t(k)] = sums[std::size_t(margin_source[std::size_t(k)])];
-              for (int k = half + bins; k < padded; ++k)
-                sums[std::size_t(k)] = sums[std::size_t(margin_source[std::size_t(k)])];
+              for (const auto& [to, from] : margin) sums[std::size_t(to)] = sums[std::size_t(from)];
               // The prior of the seasonal spread: the pair's spread over all its dates.
               double t0 = 0, t1 = 0, t2 = 0;
-              for (int b = 0; b < bins; ++b) t0 += core[b].weight, t1 += core[b].difference, t2 += core[b].square;
+              for (int b = 0; b < bins; ++b)
+                t0 += core[b].weight, t1 += core[b].difference, t2 += core[b].square;
               if (t0 < settings.min_pairs_in_all) continue;
               const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
               for (int s : pending) {

@@ -488,21 +488,11 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     }
   std::vector<std::uint8_t> slot_has_data(nt);
   for (int t = 0; t < nt; ++t) slot_has_data[t] = mean_weight[t] > 0;
-  auto scale_data_slots = [&](double* x, const std::vector<double>& factor) {
-    each_frequency([&](std::size_t f) {
-      double* row = x + f * nt;
-      for (const SlotRun& run : data_runs)
-        for (int t = run.first; t < run.first + run.count; ++t) row[t] *= factor[f];
-    });
-  };
-  // Only the slots with data are transformed; the empty ones hold spectra throughout.
-  auto to_spectrum = [&](double* x) {
-    plans.forward_space(shape, x, data_runs);
-    scale_data_slots(x, root_factor);
-  };
-  auto from_spectrum = [&](double* x) {
-    scale_data_slots(x, back_factor);
-    plans.inverse_space(shape, x, data_runs);
+  // FFTW's spectrum of one frequency's slots with data to the orthonormal one. Only those slots
+  // are transformed; the empty ones hold orthonormal spectra throughout.
+  auto to_orthonormal = [&](std::size_t f, double* row) {
+    for (const SlotRun& run : data_runs)
+      for (int t = run.first; t < run.first + run.count; ++t) row[t] *= root_factor[f];
   };
   // out += P_ab x_hat for frequency f (orthonormal spectra: P is s_space sigma^2 + s_time L^2).
   auto add_penalty = [&](std::size_t f, const double* x, double* out) {
@@ -560,9 +550,10 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     return sum;
   }));
   if (b_norm == 0) b_norm = 1;
-  to_spectrum(r_hat);
+  plans.forward_space(shape, r_hat, data_runs);
   each_frequency([&](std::size_t f) {
     double* row = r_hat + f * nt;
+    to_orthonormal(f, row);
     for (int t = 0; t < nt; ++t) q_hat[f * nt + t] = 0.0;
     add_penalty(f, ad_hat + f * nt, q_hat + f * nt);
     for (int t = 0; t < nt; ++t) row[t] -= q_hat[f * nt + t];
@@ -587,16 +578,24 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       return sum;
     });
   };
-  auto direction_to_space = [&] {
-    in_chunks([&](std::size_t a, std::size_t e) { std::copy(d_hat + a, d_hat + e, d + a); });
-    from_spectrum(d);
+  // d_hat <- q_hat + beta d_hat (q_hat alone on the first), and d <- its slots with data in
+  // space, in one pass and one inverse transform.
+  auto next_direction = [&](double beta, bool first) {
+    each_frequency([&](std::size_t f) {
+      double* spectrum = d_hat + f * nt;
+      double* space = d + f * nt;
+      for (int t = 0; t < nt; ++t) {
+        spectrum[t] = first ? q_hat[f * nt + t] : q_hat[f * nt + t] + beta * spectrum[t];
+        space[t] = spectrum[t] * back_factor[f];
+      }
+    });
+    plans.inverse_space(shape, d, data_runs);
   };
   // Two 2-D transforms per iteration: the residual lives in the spectral domain (the dot
   // products are the same in both, the transform being orthonormal), so (W + P) d needs the
   // spectrum of W d only, and the direction goes back to space once for W d and z.
   double rq = precondition();
-  in_chunks([&](std::size_t a, std::size_t e) { std::copy(q_hat + a, q_hat + e, d_hat + a); });
-  direction_to_space();
+  next_direction(0.0, true);
   double rr = dot(r_hat, r_hat);
   for (int it = 0; it < settings.max_iterations; ++it) {
     result.relative_residual = std::sqrt(rr) / b_norm;
@@ -611,8 +610,7 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     // One pass per frequency: to the orthonormal spectrum, plus P d, and d . (W + P) d.
     const double dad = over_frequencies([&](std::size_t f) {
       double* row = ad_hat + f * nt;
-      for (const SlotRun& run : data_runs)
-        for (int t = run.first; t < run.first + run.count; ++t) row[t] *= root_factor[f];
+      to_orthonormal(f, row);
       add_penalty(f, d_hat + f * nt, row);
       double sum = 0;
       for (int t = 0; t < nt; ++t) sum += d_hat[f * nt + t] * row[t];
@@ -634,16 +632,7 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     const double rq_next = precondition();
     const double beta = rq_next / rq;
     rq = rq_next;
-    // The next direction, as a spectrum and (slots with data) back to space in one pass.
-    each_frequency([&](std::size_t f) {
-      double* spectrum = d_hat + f * nt;
-      double* space = d + f * nt;
-      for (int t = 0; t < nt; ++t) {
-        spectrum[t] = q_hat[f * nt + t] + beta * spectrum[t];
-        space[t] = spectrum[t] * back_factor[f];
-      }
-    });
-    plans.inverse_space(shape, d, data_runs);
+    next_direction(beta, false);
     result.iterations = it + 1;
   }
   if (!result.converged) {

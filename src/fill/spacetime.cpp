@@ -359,17 +359,9 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     const double own = between * shrink / (pixel_weight[p] + shrink);
     return noise_var + own + unsupported_anomaly_variance(i);
   };
-  // A gap of a pixel observed on other dates: the blend of analogue and model where the
-  // analogues reached it. Beyond their reach the model's anomaly is carried from far away; like
-  // a value copied from far off (2 gamma at long lags, 2 sigma_A^2), its error counts the true
-  // anomaly's variance and that of the anomaly carried in: the term once more.
-  auto observed_pixel_gap_variance = [&](std::size_t p, std::size_t i) {
-    const double model_variance = model_variance_at(p, i);
-    return !std::isnan(analogue[i])
-               ? (1.0 - model_share) * analogue_variance[i] + model_share * model_variance
-               : model_variance + unsupported_anomaly_variance(i);
-  };
-  std::vector<double> completed(cells);
+  // Each cell's value before the convolution, and its error variance where it is a gap of a
+  // pixel observed on other dates (0 for an observation).
+  std::vector<double> completed(cells), gap_variance(cells, 0.0);
   std::vector<std::uint8_t> wanted(cells, 0);
   for (std::size_t i = 0; i < cells; ++i) {
     const std::size_t p = i / n_slots;
@@ -378,10 +370,16 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       completed[i] = y[i];
     } else if (!std::isnan(analogue[i])) {
       completed[i] = (1.0 - model_share) * analogue[i] + model_share * model;
+      gap_variance[i] =
+          (1.0 - model_share) * analogue_variance[i] + model_share * model_variance_at(p, i);
     } else if (observations[p] > 0) {
       // Observed on other dates but out of the analogues' reach: the model knows this pixel's
-      // own climatology, which a spatial average would lose.
+      // own climatology, which a spatial average would lose. Its anomaly here is carried from
+      // far away; like a value copied from far off (2 gamma at long lags, 2 sigma_A^2), its
+      // error counts the true anomaly's variance and that of the anomaly carried in: the term
+      // once more.
       completed[i] = model;
+      gap_variance[i] = model_variance_at(p, i) + unsupported_anomaly_variance(i);
     } else {
       completed[i] = NAN;
       wanted[i] = 1;
@@ -392,15 +390,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     detail::fill_by_normalised_convolution(cell_grid, completed, wanted, convolution_scales,
                                            convolution_support);
     // A convolved value is as uncertain as the difference between values this far apart: the
-    // observations' semivariogram at the distance to the nearest known cell (analogue.hpp).
-    // The variance of each known cell: 0 for an observation, the local stages' or the model's
-    // for a value made before the convolution.
-    std::vector<double> known_variance(cells, 0.0);
-    for (std::size_t i = 0; i < cells; ++i)
-      if (!(weight[i] > 0) && !wanted[i] && !std::isnan(completed[i]))
-        known_variance[i] = observed_pixel_gap_variance(i / n_slots, i);
+    // observations' semivariogram at the distance to the nearest known cell, plus that cell's
+    // own variance when it is an estimate (analogue.hpp).
     spatial_variance =
-        detail::interpolation_variance(cell_grid, y, weight, wanted, completed, known_variance);
+        detail::interpolation_variance(cell_grid, y, weight, wanted, completed, gap_variance);
   }
 
   const double lo = options_.clamp_min ? *options_.clamp_min : -INFINITY;
@@ -422,7 +415,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       double fit = model_at(p, s), variance = model_variance_at(p, i);
       if (!(weight[i] > 0) && !std::isnan(completed[i])) fit = completed[i];
       if (!(weight[i] > 0) && observations[p] > 0)
-        variance = observed_pixel_gap_variance(p, i);
+        variance = gap_variance[i];
       else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
         variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));

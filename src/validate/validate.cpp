@@ -149,13 +149,7 @@ std::string score_json(const Score& s, const std::string& indent) {
     }
     j += "}";
   }
-  if (!s.baseline) {
-    j += ", \"series_not_fitted\": {";
-    for (auto it = s.not_fitted.begin(); it != s.not_fitted.end(); ++it)
-      j += fmt::format("{}\"{}\": {}", it == s.not_fitted.begin() ? "" : ", ", detail::json_escape(it->first),
-                       it->second);
-    j += "}";
-  }
+  if (!s.baseline) j += ", \"series_not_fitted\": " + detail::json_counts(s.not_fitted);
   for (const auto* part : {&s.by_gap, &s.by_neighbourhood}) {
     if (part->empty()) continue;
     j += fmt::format(",\n{}  \"{}\": [", indent, part == &s.by_gap ? "by_gap_length" : "by_neighbourhood_missing");
