@@ -33,8 +33,7 @@ double WhittakerMethod::noise_for_sd(const SeriesFit& fit, std::span<const float
   // stack it does for most pixels (median m - tr H about 0.5), and a pixel with 3 observations
   // on a line gets sigma near 0. The difference-based estimate does not depend on the fit.
   const auto differences = detail::difference_noise(y, weight);
-  double sigma = std::sqrt(differences.variance);
-  if (std::isfinite(fit.sigma) && !(fit.sigma <= sigma)) sigma = fit.sigma;
+  const double sigma = std::fmax(fit.sigma, std::sqrt(differences.variance));  // NaN-ignoring
   // A variance estimated from nu terms: scale by the sd of Student's t with nu degrees of
   // freedom, sqrt(nu / (nu - 2)); with nu <= 2 that sd is infinite and no sd is given.
   const double nu = differences.terms;
