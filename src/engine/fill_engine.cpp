@@ -20,6 +20,7 @@
 #include "engine/block_runner.hpp"
 #include "engine/calendar.hpp"
 #include "engine/memory_budget.hpp"
+#include "engine/parallel.hpp"
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
@@ -378,43 +379,42 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     }
     w.counters.kernel_seconds +=
         std::chrono::duration<double>(std::chrono::steady_clock::now() - kernel_start).count();
+    // Each cell's output value and flag.
+    auto cell = [&](std::int64_t cp, int slot, float& value, Flag& flag) {
+      const std::int64_t rp = read_index(cp);
+      const float y = w.values[rp * n_slots + slot];
+      const bool observed = w.weights[rp * n_slots + slot] > 0;
+      const std::size_t at = std::size_t(cp) * n_slots + slot;
+      const float fit = w.out.fitted[at];
+      if (observed && w.out.rejected[at]) {
+        // A rejected observation beyond the method's reach has nothing to replace it.
+        if (std::isfinite(fit))
+          value = fit, flag = Flag::rejected;
+        else
+          value = NAN, flag = Flag::unfilled;
+      } else if (observed) {
+        value = request.smooth && std::isfinite(fit) ? fit : y, flag = Flag::observed;
+      } else if (std::isfinite(fit)) {
+        value = fit, flag = Flag::filled;
+      } else {
+        value = NAN, flag = Flag::unfilled;
+      }
+    };
     w.observations.assign(core_pixels, 0);
     w.valued.assign(core_pixels, 0);
-    // Stagger the order of files so workers seldom wait on the same file's lock.
-    for (std::size_t k = 0; k < std::size_t(layers); ++k) {
-      const std::size_t i = (k + std::size_t(block.index) * 7) % std::size_t(layers);
+    for (std::size_t i = 0; i < std::size_t(layers); ++i) {
       const int slot = grid.slot_of_date[i];
       const bool written = layer_output[i] >= 0;
       YearCounts& year = w.years[stack.layers()[i].time.date().year];
       if (written) year.pixel_dates += core_pixels;
       for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
-        const std::int64_t rp = read_index(cp);
-        const float y = w.values[rp * n_slots + slot];
-        const bool observed = w.weights[rp * n_slots + slot] > 0;
-        const std::size_t at = std::size_t(cp) * n_slots + slot;
-        const float fit = w.out.fitted[at];
         float value;
         Flag flag;
-        if (observed && w.out.rejected[at]) {
-          // A rejected observation beyond the method's reach has nothing to replace it.
-          if (std::isfinite(fit))
-            value = fit, flag = Flag::rejected;
-          else
-            value = NAN, flag = Flag::unfilled;
-        } else if (observed) {
-          value = request.smooth && std::isfinite(fit) ? fit : y, flag = Flag::observed;
-        } else if (std::isfinite(fit)) {
-          value = fit, flag = Flag::filled;
-        } else {
-          value = NAN, flag = Flag::unfilled;
-        }
-        w.value_plane[cp] = value;
-        w.sd_plane[cp] = w.out.sd[at];
-        w.flag_plane[cp] = float(flag);
+        cell(cp, slot, value, flag);
+        const bool observed = w.weights[read_index(cp) * n_slots + slot] > 0;
         w.observations[cp] += observed;
         w.valued[cp] += flag != Flag::unfilled;
-        Counters& c = w.counters;
-        c.observed += observed;
+        w.counters.observed += observed;
         if (written) {
           year.observed += observed;
           year.rejected += flag == Flag::rejected;
@@ -422,10 +422,26 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
           year.unfilled += flag == Flag::unfilled;
         }
       }
-      if (written)
-        outputs.write(std::size_t(layer_output[i]), core, w.value_plane.data(), w.sd_plane.data(),
-                      w.flag_plane.data(), w.tile);
     }
+    // Dates in parallel: each is its own file with its own lock, and a stack of fewer blocks
+    // than threads (one block: a small stack) would otherwise compress and write on one thread.
+    // The order of files is staggered so that blocks seldom wait on the same file's lock.
+    detail::parallel_ranges(std::size_t(layers), 1, [&](std::size_t k_begin, std::size_t k_end) {
+      std::vector<float> value_plane(core_pixels), sd_plane(core_pixels), flag_plane(core_pixels), tile;
+      for (std::size_t k = k_begin; k < k_end; ++k) {
+        const std::size_t i = (k + std::size_t(block.index) * 7) % std::size_t(layers);
+        if (layer_output[i] < 0) continue;
+        const int slot = grid.slot_of_date[i];
+        for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
+          Flag flag;
+          cell(cp, slot, value_plane[cp], flag);
+          sd_plane[cp] = w.out.sd[std::size_t(cp) * n_slots + slot];
+          flag_plane[cp] = float(flag);
+        }
+        outputs.write(std::size_t(layer_output[i]), core, value_plane.data(), sd_plane.data(),
+                      flag_plane.data(), tile);
+      }
+    });
     w.counters.pixel_dates += core_pixels * layers;
     for (int count : w.observations) w.counters.never_observed += count == 0;
     for (int count : w.valued) w.counters.never_filled += count == 0;

@@ -10,7 +10,7 @@
 #include <numbers>
 #include <numeric>
 
-#include "fill/parallel.hpp"
+#include "engine/parallel.hpp"
 #include "io/text_file.hpp"
 
 namespace kalends::detail {

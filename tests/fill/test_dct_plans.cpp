@@ -118,7 +118,7 @@ TEST_CASE("space-only transforms act on axes 0 and 1 of every slot") {
 }
 
 TEST_CASE("the solve gives the same doubles on one thread and on two") {
-  // Its loops and sums are cut in pieces that do not depend on the threads (fill/parallel.hpp).
+  // Its loops and sums are cut in pieces that do not depend on the threads (engine/parallel.hpp).
   // 37 x 41 x 23 is larger than one piece of the sums and has odd lengths (unaligned rows).
   const Shape3 shape{37, 41, 23};
   const std::size_t n = std::size_t(37) * 41 * 23;

@@ -121,7 +121,7 @@ TEST_CASE("harmonic fit recovers a pure annual cycle", "[fill][harmonic]") {
 }
 
 TEST_CASE("spacetime gives the same values whatever the number of threads", "[fill][spacetime]") {
-  // A block's own loops run on the engine's threads (fill/parallel.hpp); their pieces and sums
+  // A block's own loops run on the engine's threads (engine/parallel.hpp); their pieces and sums
   // are fixed, so one thread and two must agree to the last bit. Mechanics only: invented data.
   std::vector<TimePoint> times;
   for (int i = 0; i < 46; ++i) times.push_back(TimePoint{std::int64_t(i) * 16 * 86400});
