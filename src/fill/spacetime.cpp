@@ -164,7 +164,14 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   double shrink = 1.0, between = 0.0;
   bool climate_started = false;
 
+  // The first backfitting round is solved to 10 x the tolerance: the second starts from it and
+  // solves to the full one. Same RMSE to five decimals on four development mask sets; the
+  // bench fill 4.2 -> 3.9 s (2 threads); the block test's largest difference 0.0027 -> 0.0031.
+  int rounds_done = 0;
   auto fit_round = [&] {
+    const double looser = rounds_done++ == 0 && backfitting_rounds > 1 ? 10.0 : 1.0;
+    climate_settings.tolerance = options_.spacetime_tolerance * looser;
+    anomaly_settings.tolerance = options_.spacetime_tolerance * looser;
     // S: bin means of y - A, smoothed in space and across bins, weighted by their counts.
     std::fill(bin_sum.begin(), bin_sum.end(), 0.0);
     std::fill(bin_weight.begin(), bin_weight.end(), 0.0);
@@ -266,8 +273,11 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       search.space_free = !options_.spacetime_space_smoothing;
       search.time_free = !options_.spacetime_time_smoothing;
       const auto probe = detail::trace_probe(anomaly_shape, weight, in.read.y, in.read.x);
+      // GCV's candidates at its own tolerances (pls_gcv.hpp), whatever this round's.
+      detail::PlsSettings search_settings = anomaly_settings;
+      search_settings.tolerance = options_.spacetime_tolerance;
       const detail::GcvChoice choice = detail::choose_smoothing_by_gcv(
-          plans_, anomaly_shape, target, weight, probe, anomaly_settings, search, anomaly_ws);
+          plans_, anomaly_shape, target, weight, probe, search_settings, search, anomaly_ws);
       anomaly_settings.s_space = choice.best.s_space;
       anomaly_settings.s_time = choice.best.s_time;
       if (search.space_free) out.chosen["space_smoothing"] = choice.best.s_space;
