@@ -162,6 +162,12 @@ struct PlsResult {
 struct PlsWorkspace {
   DctBuffer residual, direction, direction_spectrum, preconditioned, product;
   std::vector<double> factor_d, factor_l1, factor_l2;  // the preconditioner's LDL^T factors
+  /// Room for solves of up to n cells: buffers only grow, so solves of several shapes can then
+  /// share it without allocating again.
+  void reserve(std::size_t n) {
+    for (DctBuffer* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product}) b->resize(std::max(n, b->size()));
+    for (auto* v : {&factor_d, &factor_l1, &factor_l2}) v->reserve(n);
+  }
 };
 
 /// The penalty's eigenvalues p_j in the DCT domain, row-major like the data.

@@ -97,9 +97,10 @@ int SpacetimeMethod::season_bins(const TimeGrid& grid, std::vector<int>& bin_of_
 std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const {
   std::vector<int> bins;
   const int n_bins = season_bins(grid, bins);
-  // Doubles: per slot y, w, A, target, support, 8 solver arrays (5 vectors, 3 factor bands),
-  // 4 analogue arrays and the completed field, plus a byte; per bin 17 arrays.
-  return sizeof(double) * (18 * std::size_t(grid.size) + 17 * std::size_t(n_bins)) +
+  // Doubles: per slot y, w, A, target, support, 8 solver arrays (5 vectors, 3 factor bands;
+  // the climatology's solve shares them), 4 analogue arrays and the completed field, plus a
+  // byte; per bin 9 arrays.
+  return sizeof(double) * (18 * std::size_t(grid.size) + 9 * std::size_t(n_bins)) +
          std::size_t(grid.size) + 16;
 }
 
@@ -149,7 +150,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   std::vector<double> own_sum(bin_cells), own_weight(bin_cells);
   std::vector<double> level(pixels), pixel_weight(pixels);
   std::vector<std::uint8_t> rejected(cells, 0);
-  detail::PlsWorkspace climate_ws, anomaly_ws;
+  // One solver workspace for both solves: it keeps its buffers, grown to the larger shape, and
+  // holds nothing from one solve to the next.
+  detail::PlsWorkspace workspace;
+  workspace.reserve(cells);
   detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
                                        options_.spacetime_season_smoothing,
                                        options_.spacetime_tolerance, 500, true};
@@ -195,7 +199,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       std::fill(climate_smooth.begin(), climate_smooth.end(), total / total_weight);
     climate_started = true;
     detail::solve_pls(plans_, climate_shape, bin_mean, bin_weight, climate_settings, climate_smooth,
-                      climate_ws);
+                      workspace);
 
     // d: the pixel's level, shrunk by k = within / between variance [M83].
     std::fill(level.begin(), level.end(), 0.0);
@@ -277,14 +281,14 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       detail::PlsSettings search_settings = anomaly_settings;
       search_settings.tolerance = options_.spacetime_tolerance;
       const detail::GcvChoice choice = detail::choose_smoothing_by_gcv(
-          plans_, anomaly_shape, target, weight, probe, search_settings, search, anomaly_ws);
+          plans_, anomaly_shape, target, weight, probe, search_settings, search, workspace);
       anomaly_settings.s_space = choice.best.s_space;
       anomaly_settings.s_time = choice.best.s_time;
       if (search.space_free) out.chosen["space_smoothing"] = choice.best.s_space;
       if (search.time_free) out.chosen["time_smoothing"] = choice.best.s_time;
       choose_smoothing = false;
     }
-    detail::solve_pls(plans_, anomaly_shape, target, weight, anomaly_settings, anomaly, anomaly_ws);
+    detail::solve_pls(plans_, anomaly_shape, target, weight, anomaly_settings, anomaly, workspace);
     return true;
   };
 
