@@ -258,11 +258,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     specs.push_back(std::move(spec));
   }
 
-  // Memory: a worker's buffers per read pixel, then blocks as large as the share allows.
+  // Memory: a worker's buffers per read pixel, then blocks as large as the share allows. The
+  // three output planes twice: the worker's, and a date writer's while dates go out in parallel.
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
   const std::int64_t layers = std::int64_t(stack.layers().size());
   const std::int64_t bytes_per_pixel =
-      n_slots * (4 + 4 + 4 + 4 + 1) * (reach > 0 ? 2 : 1) + 4 + (keep ? 4 : 0) + 3 * 4 + 4 +
+      n_slots * (4 + 4 + 4 + 4 + 1) * (reach > 0 ? 2 : 1) + 4 + (keep ? 4 : 0) + 2 * 3 * 4 + 4 +
       std::int64_t(method->scratch_bytes_per_pixel(grid));
   std::set<std::string> read_files;
   for (const Layer& l : stack.layers()) read_files.insert(l.path);

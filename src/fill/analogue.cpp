@@ -268,7 +268,7 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
                 if (!(s0 > 0) || !(k2 > 0)) continue;
                 const double n_eff = s0 * s0 / k2;
                 if (n_eff < settings.min_pairs) continue;
-                // Four divisions where seven would do: they bound this loop.
+                // Four divisions, not seven.
                 const double inverse_s0 = 1.0 / s0;
                 const double mean = s1 * inverse_s0;
                 const double spread = std::max(0.0, s2 * inverse_s0 - mean * mean);

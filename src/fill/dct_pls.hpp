@@ -165,7 +165,8 @@ struct PlsWorkspace {
   /// Room for solves of up to n cells: buffers only grow, so solves of several shapes can then
   /// share it without allocating again.
   void reserve(std::size_t n) {
-    for (DctBuffer* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product}) b->resize(std::max(n, b->size()));
+    for (DctBuffer* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product})
+      b->resize(std::max(n, b->size()));
     for (auto* v : {&factor_d, &factor_l1, &factor_l2}) v->reserve(n);
   }
 };
