@@ -44,4 +44,23 @@ double deterministic_sum(std::size_t n, std::size_t chunk, F&& partial) {
   return sum;
 }
 
+/// body(k) for every k in [0, n), in parallel pieces of at least `grain`.
+template <typename F>
+void parallel_each(std::size_t n, std::size_t grain, F&& body) {
+  parallel_ranges(n, grain, [&](std::size_t a, std::size_t b) {
+    for (std::size_t k = a; k < b; ++k) body(k);
+  });
+}
+
+/// The sum of term(k) over [0, n), in chunks of `chunk` added in order: the same whatever the
+/// threads.
+template <typename F>
+double deterministic_sum_of(std::size_t n, std::size_t chunk, F&& term) {
+  return deterministic_sum(n, chunk, [&](std::size_t a, std::size_t b) {
+    double sum = 0;
+    for (std::size_t k = a; k < b; ++k) sum += term(k);
+    return sum;
+  });
+}
+
 }  // namespace kalends::detail

@@ -435,11 +435,7 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   ws.factor_l1.resize(n);
   ws.factor_l2.resize(n);
   const std::size_t frequency_grain = std::max<std::size_t>(1, vector_chunk / std::size_t(nt));
-  auto each_frequency = [&](auto&& body) {
-    parallel_ranges(frequencies, frequency_grain, [&](std::size_t a, std::size_t b) {
-      for (std::size_t f = a; f < b; ++f) body(f);
-    });
-  };
+  auto each_frequency = [&](auto&& body) { parallel_each(frequencies, frequency_grain, body); };
   each_frequency([&](std::size_t f) {
     double* d = ws.factor_d.data() + f * nt;
     double* l1 = ws.factor_l1.data() + f * nt;
@@ -560,11 +556,7 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   });
   // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
   auto over_frequencies = [&](auto&& body) {
-    return deterministic_sum(frequencies, frequency_grain, [&](std::size_t a, std::size_t b) {
-      double sum = 0;
-      for (std::size_t f = a; f < b; ++f) sum += body(f);
-      return sum;
-    });
+    return deterministic_sum_of(frequencies, frequency_grain, body);
   };
   // q_hat <- M r_hat, one banded solve per spatial frequency; returns r_hat . q_hat.
   auto precondition = [&] {

@@ -172,17 +172,9 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   // The model's loops run over pixels in parallel; their sums in fixed chunks, so the result does
   // not depend on the threads (engine/parallel.hpp).
   constexpr std::size_t pixel_grain = 512, sum_chunk = 1 << 14;
-  auto each_pixel = [&](auto&& body) {
-    detail::parallel_ranges(pixels, pixel_grain, [&](std::size_t a, std::size_t b) {
-      for (std::size_t p = a; p < b; ++p) body(p);
-    });
-  };
+  auto each_pixel = [&](auto&& body) { detail::parallel_each(pixels, pixel_grain, body); };
   auto sum_over = [&](std::size_t n, auto&& term) {
-    return detail::deterministic_sum(n, sum_chunk, [&](std::size_t a, std::size_t b) {
-      double sum = 0;
-      for (std::size_t k = a; k < b; ++k) sum += term(k);
-      return sum;
-    });
+    return detail::deterministic_sum_of(n, sum_chunk, term);
   };
   std::vector<double> pixel_squares(pixels);
 
