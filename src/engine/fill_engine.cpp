@@ -380,7 +380,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     }
     w.counters.kernel_seconds +=
         std::chrono::duration<double>(std::chrono::steady_clock::now() - kernel_start).count();
-    // Each cell's output value and flag.
+    // Each cell's output value and flag; returns whether it was observed.
     auto cell = [&](std::int64_t cp, int slot, float& value, Flag& flag) {
       const std::int64_t rp = read_index(cp);
       const float y = w.values[rp * n_slots + slot];
@@ -400,6 +400,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       } else {
         value = NAN, flag = Flag::unfilled;
       }
+      return observed;
     };
     w.observations.assign(core_pixels, 0);
     w.valued.assign(core_pixels, 0);
@@ -411,8 +412,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
         float value;
         Flag flag;
-        cell(cp, slot, value, flag);
-        const bool observed = w.weights[read_index(cp) * n_slots + slot] > 0;
+        const bool observed = cell(cp, slot, value, flag);
         w.observations[cp] += observed;
         w.valued[cp] += flag != Flag::unfilled;
         w.counters.observed += observed;
