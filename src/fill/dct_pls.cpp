@@ -18,17 +18,20 @@ namespace kalends::detail {
 // ---------------------------------------------------------------------------------------------
 // Buffers
 
-DctBuffer::~DctBuffer() {
+template <typename Real>
+BasicDctBuffer<Real>::~BasicDctBuffer() {
   if (data_) fftw_free(data_);
 }
 
-DctBuffer::DctBuffer(DctBuffer&& other) noexcept
+template <typename Real>
+BasicDctBuffer<Real>::BasicDctBuffer(BasicDctBuffer&& other) noexcept
     : data_(other.data_), size_(other.size_), capacity_(other.capacity_) {
   other.data_ = nullptr;
   other.size_ = other.capacity_ = 0;
 }
 
-DctBuffer& DctBuffer::operator=(DctBuffer&& other) noexcept {
+template <typename Real>
+BasicDctBuffer<Real>& BasicDctBuffer<Real>::operator=(BasicDctBuffer&& other) noexcept {
   if (this != &other) {
     if (data_) fftw_free(data_);
     data_ = other.data_;
@@ -40,24 +43,29 @@ DctBuffer& DctBuffer::operator=(DctBuffer&& other) noexcept {
   return *this;
 }
 
-void DctBuffer::resize(std::size_t n) {
+template <typename Real>
+void BasicDctBuffer<Real>::resize(std::size_t n) {
   if (n > capacity_) {
     if (data_) fftw_free(data_);
-    data_ = static_cast<double*>(fftw_malloc(std::max<std::size_t>(1, n) * sizeof(double)));
+    data_ = static_cast<Real*>(fftw_malloc(std::max<std::size_t>(1, n) * sizeof(Real)));
     if (!data_) throw std::bad_alloc();
     capacity_ = n;
   }
   size_ = n;
 }
 
+template class BasicDctBuffer<double>;
+template class BasicDctBuffer<float>;
+
 // ---------------------------------------------------------------------------------------------
 // Plans
 
 namespace {
 
-// Adds FFTW's accumulated wisdom to the cache file; a cache that cannot be written is skipped.
-void save_wisdom(const std::string& file) {
-  char* text = fftw_export_wisdom_to_string();
+// Adds FFTW's accumulated wisdom (of one precision) to the cache file; a cache that cannot be
+// written is skipped.
+void save_wisdom(const std::string& file, bool single) {
+  char* text = single ? fftwf_export_wisdom_to_string() : fftw_export_wisdom_to_string();
   if (!text) return;
   const std::string wisdom(text);
   fftw_free(text);
@@ -86,7 +94,11 @@ DctPlanCache::DctPlanCache(DctPlanning planning) : planning_(std::move(planning)
 
 DctPlanCache::~DctPlanCache() {
   std::lock_guard lock(mutex_);
-  for (auto& [key, plan] : plans_) fftw_destroy_plan(static_cast<fftw_plan>(plan));
+  for (auto& [key, plan] : plans_) {
+    if (!plan) continue;
+    if (std::get<5>(key)) fftwf_destroy_plan(static_cast<fftwf_plan>(plan));
+    else fftw_destroy_plan(static_cast<fftw_plan>(plan));
+  }
 }
 
 std::size_t DctPlanCache::plans() const {
@@ -95,10 +107,10 @@ std::size_t DctPlanCache::plans() const {
 }
 
 const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, bool aligned,
-                               int batch_slots) const {
+                               int batch_slots, bool single) const {
   if (pass == Pass::whole || batch_slots <= 0) batch_slots = shape[2];
   std::lock_guard lock(mutex_);
-  const auto key = std::make_tuple(shape, inverse, int(pass), aligned, batch_slots);
+  const auto key = std::make_tuple(shape, inverse, int(pass), aligned, batch_slots, single);
   auto it = plans_.find(key);
   if (it != plans_.end()) return it->second;
   // Axes of length 1 are left out: FFTW's r2r of length 1 is the identity times 2, which the
@@ -129,23 +141,31 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, boo
     // scratch buffer of the right alignment will do; plans are later executed on other arrays
     // of the same alignment (fftw_malloc), or were made FFTW_UNALIGNED.
     const std::size_t size = std::size_t(shape[0]) * shape[1] * shape[2];
-    DctBuffer scratch(size);
     const unsigned alignment = aligned ? 0u : unsigned(FFTW_UNALIGNED);
-    auto plan_r2r = [&](unsigned flags) {
+    // fftw_r2r_kind and fftwf_r2r_kind are the same enumeration.
+    BasicDctBuffer<double> scratch(single ? 0 : size);
+    BasicDctBuffer<float> scratch_single(single ? size : 0);
+    auto plan_r2r = [&](unsigned flags) -> void* {
+      if (single)
+        return fftwf_plan_many_r2r(kinds_n, n, batch, scratch_single.data(), nullptr, stride, 1,
+                                   scratch_single.data(), nullptr, stride, 1, kinds,
+                                   flags | alignment);
       return fftw_plan_many_r2r(kinds_n, n, batch, scratch.data(), nullptr, stride, 1,
                                 scratch.data(), nullptr, stride, 1, kinds, flags | alignment);
     };
     if (planning_.measure) {
       const bool keep = !planning_.wisdom_file.empty();
-      if (keep && !wisdom_read_) {
+      const std::string file = planning_.wisdom_file + (single ? ".single" : "");
+      if (keep && !wisdom_read_[single]) {
         // A missing or unreadable file is an empty cache, not an error.
-        fftw_import_wisdom_from_filename(planning_.wisdom_file.c_str());
-        wisdom_read_ = true;
+        if (single) fftwf_import_wisdom_from_filename(file.c_str());
+        else fftw_import_wisdom_from_filename(file.c_str());
+        wisdom_read_[single] = true;
       }
       made = plan_r2r(FFTW_MEASURE | FFTW_WISDOM_ONLY);
       if (!made) {
         made = plan_r2r(FFTW_MEASURE);
-        if (made && keep) save_wisdom(planning_.wisdom_file);
+        if (made && keep) save_wisdom(file, single);
       }
     } else {
       made = plan_r2r(FFTW_ESTIMATE);
@@ -172,10 +192,12 @@ void DctPlanCache::inverse(const Shape3& shape, double* data) const {
 // two-dimensional plan on 256 x 256 x 48 (23.0 against 24.2 ms, FFTW 3.3.10, measured once).
 // With `runs`, only those slots are transformed: one plan per run length, executed at the run's
 // offset in each row (column).
-void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse,
+template <typename Real>
+void DctPlanCache::space_passes(const Shape3& shape, Real* data, bool inverse,
                                 std::span<const SlotRun> runs) const {
+  constexpr bool single = std::is_same_v<Real, float>;
   const std::size_t row = std::size_t(shape[1]) * shape[2];
-  std::vector<fftw_plan> run_plans(runs.size());
+  std::vector<void*> run_plans(runs.size());
   std::size_t slots = 0;
   for (const SlotRun& run : runs) slots += std::size_t(run.count);
   if (slots == 0) return;
@@ -189,10 +211,12 @@ void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse,
       // manual, "New-array Execute Functions"]; offsets of an odd length need the unaligned
       // plan.
       bool all_aligned = true;
-      for (std::size_t k = 0; k < count && all_aligned; ++k)
-        all_aligned = fftw_alignment_of(data + k * step + runs[j].first) == 0;
-      run_plans[j] = static_cast<fftw_plan>(
-          const_cast<void*>(plan(shape, inverse, pass, all_aligned, runs[j].count)));
+      for (std::size_t k = 0; k < count && all_aligned; ++k) {
+        Real* at = data + k * step + runs[j].first;
+        if constexpr (single) all_aligned = fftwf_alignment_of(at) == 0;
+        else all_aligned = fftw_alignment_of(at) == 0;
+      }
+      run_plans[j] = const_cast<void*>(plan(shape, inverse, pass, all_aligned, runs[j].count, single));
       any |= run_plans[j] != nullptr;
     }
     if (!any) continue;
@@ -201,8 +225,12 @@ void DctPlanCache::space_passes(const Shape3& shape, double* data, bool inverse,
                     [&](std::size_t a, std::size_t b) {
                       for (std::size_t k = a; k < b; ++k)
                         for (std::size_t j = 0; j < runs.size(); ++j) {
-                          double* at = data + k * step + runs[j].first;
-                          if (run_plans[j]) fftw_execute_r2r(run_plans[j], at, at);
+                          Real* at = data + k * step + runs[j].first;
+                          if (!run_plans[j]) continue;
+                          if constexpr (single)
+                            fftwf_execute_r2r(static_cast<fftwf_plan>(run_plans[j]), at, at);
+                          else
+                            fftw_execute_r2r(static_cast<fftw_plan>(run_plans[j]), at, at);
                         }
                     });
   }
@@ -224,6 +252,16 @@ void DctPlanCache::forward_space(const Shape3& shape, double* data,
 }
 
 void DctPlanCache::inverse_space(const Shape3& shape, double* data,
+                                 std::span<const SlotRun> runs) const {
+  space_passes(shape, data, true, runs);
+}
+
+void DctPlanCache::forward_space(const Shape3& shape, float* data,
+                                 std::span<const SlotRun> runs) const {
+  space_passes(shape, data, false, runs);
+}
+
+void DctPlanCache::inverse_space(const Shape3& shape, float* data,
                                  std::span<const SlotRun> runs) const {
   space_passes(shape, data, true, runs);
 }
@@ -377,9 +415,14 @@ void filter_shifted(const DctPlanCache& plans, const Shape3& shape, const PlsSet
 //   M = C_s^T blockdiag(diag(wbar) + P_ab)^-1 C_s,
 // one pentadiagonal LDL^T solve per spatial frequency. Whole-date gaps are what made the
 // (omega I + P)^-1 preconditioner of [G10] slow; this one leaves mostly the spatial gaps.
-PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
-                    std::span<const double> w, const PlsSettings& settings, std::span<double> z,
-                    PlsWorkspace& ws) {
+namespace {
+
+// The solve with its vectors in precision Real (PlsSettings::single_precision). Whatever Real,
+// the factorisation, the banded solves, the dot products and z are in double.
+template <typename Real>
+PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
+                       std::span<const double> w, const PlsSettings& settings, std::span<double> z,
+                       PlsBuffers<Real>& ws) {
   const int n0 = shape[0], n1 = shape[1], nt = shape[2];
   const std::size_t frequencies = std::size_t(n0) * n1;
   const std::size_t n = frequencies * nt;
@@ -430,44 +473,70 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   // A floor keeps every factor positive definite where sigma = 0 and wbar is zero.
   const double floor = 1e-9 * omega;
 
-  // The LDL^T factors of diag(wbar) + P_ab for every frequency, made once per solve.
-  ws.factor_d.resize(n);
-  ws.factor_l1.resize(n);
-  ws.factor_l2.resize(n);
-  const std::size_t frequency_grain = std::max<std::size_t>(1, vector_chunk / std::size_t(nt));
+  // The LDL^T factors of diag(wbar) + P_ab for every frequency, made once per solve, in double
+  // (only the last two rows are needed) and kept in Real. The solves run `lanes` frequencies in
+  // lockstep (see precondition below), so the factors are stored for that: group g = f / lanes,
+  // time t, lane f % lanes at ((g nt + t) lanes + f % lanes); the last group's unused lanes hold 0.
+  constexpr int lanes = 4;
+  const std::size_t groups = (frequencies + lanes - 1) / lanes;
+  const std::size_t factor_size = groups * std::size_t(nt) * lanes;
+  ws.factor_d.assign(factor_size, Real(0));
+  ws.factor_l1.assign(factor_size, Real(0));
+  ws.factor_l2.assign(factor_size, Real(0));
+  // Pieces of whole groups, so that each piece's solves run in full groups.
+  const std::size_t frequency_grain =
+      std::max<std::size_t>(1, vector_chunk / std::size_t(nt) / lanes) * lanes;
   auto each_frequency = [&](auto&& body) { parallel_each(frequencies, frequency_grain, body); };
+  auto factor_at = [&](std::size_t f, int t) {
+    return ((f / lanes) * std::size_t(nt) + std::size_t(t)) * lanes + f % lanes;
+  };
   each_frequency([&](std::size_t f) {
-    double* d = ws.factor_d.data() + f * nt;
-    double* l1 = ws.factor_l1.data() + f * nt;
-    double* l2 = ws.factor_l2.data() + f * nt;
     const double extra = space_term[f];
+    double d1 = 0, d2 = 0, l1_2 = 0;  // d[t-1], d[t-2], l1[t-2]
     for (int t = 0; t < nt; ++t) {
       // Row t: A(t,t) = band0 + wbar + extra, A(t,t-1) = band1[t-1], A(t,t-2) = band2[t-2].
       double dt = band0[t] + mean_weight[t] + extra + floor;
+      double l2_2 = 0, l1_1 = 0;
       if (t >= 2) {
-        l2[t - 2] = band2[t - 2] / d[t - 2];
-        dt -= l2[t - 2] * l2[t - 2] * d[t - 2];
+        l2_2 = band2[t - 2] / d2;
+        dt -= l2_2 * l2_2 * d2;
+        ws.factor_l2[factor_at(f, t - 2)] = Real(l2_2);
       }
       if (t >= 1) {
         double s1 = band1[t - 1];
-        if (t >= 2) s1 -= l2[t - 2] * l1[t - 2] * d[t - 2];
-        l1[t - 1] = s1 / d[t - 1];
-        dt -= l1[t - 1] * l1[t - 1] * d[t - 1];
+        if (t >= 2) s1 -= l2_2 * l1_2 * d2;
+        l1_1 = s1 / d1;
+        dt -= l1_1 * l1_1 * d1;
+        ws.factor_l1[factor_at(f, t - 1)] = Real(l1_1);
       }
-      d[t] = dt;
+      ws.factor_d[factor_at(f, t)] = Real(1.0 / dt);  // 1 / D
+      d2 = d1;
+      d1 = dt;
+      l1_2 = l1_1;
     }
-    for (int t = 0; t < nt; ++t) d[t] = 1.0 / d[t];  // factor_d holds 1 / D
   });
-  // x <- (LDL^T)^-1 x for frequency f (x contiguous along time).
-  auto solve_frequency = [&](std::size_t f, double* x) {
-    const double* inverse_d = ws.factor_d.data() + f * nt;
-    const double* l1 = ws.factor_l1.data() + f * nt;
-    const double* l2 = ws.factor_l2.data() + f * nt;
-    if (nt > 1) x[1] -= l1[0] * x[0];
-    for (int t = 2; t < nt; ++t) x[t] -= l1[t - 1] * x[t - 1] + l2[t - 2] * x[t - 2];
-    for (int t = 0; t < nt; ++t) x[t] *= inverse_d[t];
-    if (nt > 1) x[nt - 2] -= l1[nt - 2] * x[nt - 1];
-    for (int t = nt - 3; t >= 0; --t) x[t] -= l1[t] * x[t + 1] + l2[t] * x[t + 2];
+  // x <- (LDL^T)^-1 x for the `lanes` frequencies of group g, in double; x is nt x lanes, the
+  // frequency fastest. Each solve is a chain of dependent operations along time; a group in
+  // lockstep keeps the processor busy and vectorises (the preconditioner took 10 % of a bench
+  // fill one frequency at a time). Each frequency's operations are the same as alone.
+  auto solve_group = [&](std::size_t g, double* x) {
+    const std::size_t base = g * std::size_t(nt) * lanes;
+    const Real* inverse_d = ws.factor_d.data() + base;
+    const Real* l1 = ws.factor_l1.data() + base;
+    const Real* l2 = ws.factor_l2.data() + base;
+    auto at = [&](int t, int k) { return std::size_t(t) * lanes + k; };
+    if (nt > 1)
+      for (int k = 0; k < lanes; ++k) x[at(1, k)] -= double(l1[at(0, k)]) * x[at(0, k)];
+    for (int t = 2; t < nt; ++t)
+      for (int k = 0; k < lanes; ++k)
+        x[at(t, k)] -= double(l1[at(t - 1, k)]) * x[at(t - 1, k)] + double(l2[at(t - 2, k)]) * x[at(t - 2, k)];
+    for (int t = 0; t < nt; ++t)
+      for (int k = 0; k < lanes; ++k) x[at(t, k)] *= double(inverse_d[at(t, k)]);
+    if (nt > 1)
+      for (int k = 0; k < lanes; ++k) x[at(nt - 2, k)] -= double(l1[at(nt - 2, k)]) * x[at(nt - 1, k)];
+    for (int t = nt - 3; t >= 0; --t)
+      for (int k = 0; k < lanes; ++k)
+        x[at(t, k)] -= double(l1[at(t, k)]) * x[at(t + 1, k)] + double(l2[at(t, k)]) * x[at(t + 2, k)];
   };
   // Orthonormal spectra: x_hat = R C_s x, C_s FFTW's unnormalised two-dimensional transform
   // and R the orthonormal factors of each spatial frequency (scale_axes above, per axis); back,
@@ -486,12 +555,12 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   for (int t = 0; t < nt; ++t) slot_has_data[t] = mean_weight[t] > 0;
   // FFTW's spectrum of one frequency's slots with data to the orthonormal one. Only those slots
   // are transformed; the empty ones hold orthonormal spectra throughout.
-  auto to_orthonormal = [&](std::size_t f, double* row) {
+  auto to_orthonormal = [&](std::size_t f, Real* row) {
     for (const SlotRun& run : data_runs)
       for (int t = run.first; t < run.first + run.count; ++t) row[t] *= root_factor[f];
   };
   // out += P_ab x_hat for frequency f (orthonormal spectra: P is s_space sigma^2 + s_time L^2).
-  auto add_penalty = [&](std::size_t f, const double* x, double* out) {
+  auto add_penalty = [&](std::size_t f, const Real* x, Real* out) {
     const double extra = space_term[f];
     auto edge = [&](int t) {
       double v = (band0[t] + extra) * x[t];
@@ -514,25 +583,39 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   ws.direction_spectrum.resize(n);
   ws.preconditioned.resize(n);
   ws.product.resize(n);
-  double* r_hat = ws.residual.data();            // the residual's spectrum
-  double* d = ws.direction.data();               // the direction, on the slots with data
-  double* d_hat = ws.direction_spectrum.data();  // its spectrum
-  double* q_hat = ws.preconditioned.data();      // M r, as a spectrum
-  double* ad_hat = ws.product.data();            // (W + P) d, as a spectrum
+  Real* r_hat = ws.residual.data();            // the residual's spectrum
+  Real* d = ws.direction.data();               // the direction, on the slots with data
+  Real* d_hat = ws.direction_spectrum.data();  // its spectrum
+  Real* q_hat = ws.preconditioned.data();      // M r, as a spectrum
+  Real* ad_hat = ws.product.data();            // (W + P) d, as a spectrum
   auto in_chunks = [&](auto&& body) { parallel_ranges(n, vector_chunk, body); };
-  auto dot = [&](const double* a, const double* b) {
+  auto dot = [&](const Real* a, const Real* b) {
     return deterministic_sum(n, vector_chunk, [&](std::size_t lo, std::size_t hi) {
       double sum = 0;
-      for (std::size_t i = lo; i < hi; ++i) sum += a[i] * b[i];
+      for (std::size_t i = lo; i < hi; ++i) sum += double(a[i]) * double(b[i]);
       return sum;
     });
   };
+  // The weights read in each iteration, in Real.
+  const Real* weight = nullptr;
+  if constexpr (std::is_same_v<Real, double>) {
+    weight = w.data();
+  } else {
+    ws.weight.resize(n);
+    in_chunks([&](std::size_t a, std::size_t e) {
+      for (std::size_t i = a; i < e; ++i) ws.weight[i] = Real(w[i]);
+    });
+    weight = ws.weight.data();
+  }
 
   // r = W y - (W + P) z, as a spectrum. The empty slots of z become spectra here.
-  in_chunks([&](std::size_t a, std::size_t e) { std::copy(z.data() + a, z.data() + e, ad_hat + a); });
-  plans.forward_space(shape, ad_hat);
+  in_chunks([&](std::size_t a, std::size_t e) {
+    for (std::size_t i = a; i < e; ++i) ad_hat[i] = Real(z[i]);
+  });
+  const SlotRun all_slots{0, nt};
+  plans.forward_space(shape, ad_hat, {&all_slots, 1});
   each_frequency([&](std::size_t f) {
-    double* z_hat = ad_hat + f * nt;
+    Real* z_hat = ad_hat + f * nt;
     for (int t = 0; t < nt; ++t) z_hat[t] *= root_factor[f];
     for (int t : empty_slots) z[f * nt + t] = z_hat[t];
   });
@@ -541,16 +624,16 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     for (std::size_t i = a; i < e; ++i) {
       const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
       sum += b * b;
-      r_hat[i] = w[i] > 0 ? b - w[i] * z[i] : 0.0;
+      r_hat[i] = Real(w[i] > 0 ? b - w[i] * z[i] : 0.0);
     }
     return sum;
   }));
   if (b_norm == 0) b_norm = 1;
   plans.forward_space(shape, r_hat, data_runs);
   each_frequency([&](std::size_t f) {
-    double* row = r_hat + f * nt;
+    Real* row = r_hat + f * nt;
     to_orthonormal(f, row);
-    for (int t = 0; t < nt; ++t) q_hat[f * nt + t] = 0.0;
+    for (int t = 0; t < nt; ++t) q_hat[f * nt + t] = 0;
     add_penalty(f, ad_hat + f * nt, q_hat + f * nt);
     for (int t = 0; t < nt; ++t) row[t] -= q_hat[f * nt + t];
   });
@@ -558,27 +641,41 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
   auto over_frequencies = [&](auto&& body) {
     return deterministic_sum_of(frequencies, frequency_grain, body);
   };
-  // q_hat <- M r_hat, one banded solve per spatial frequency; returns r_hat . q_hat.
+  // q_hat <- M r_hat, one banded solve per spatial frequency (in double, a group at a time);
+  // returns r_hat . q_hat, added frequency by frequency in order.
   auto precondition = [&] {
-    return over_frequencies([&](std::size_t f) {
-      const double* r = r_hat + f * nt;
-      double* q = q_hat + f * nt;
-      std::copy(r, r + nt, q);
-      solve_frequency(f, q);
-      double sum = 0;
-      for (int t = 0; t < nt; ++t) sum += r[t] * q[t];
-      return sum;
+    return deterministic_sum(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
+      std::vector<double> x(std::size_t(nt) * lanes);
+      double total = 0;
+      for (std::size_t f0 = a; f0 < e; f0 += lanes) {
+        const int used = int(std::min<std::size_t>(lanes, frequencies - f0));
+        for (int k = 0; k < lanes; ++k)
+          for (int t = 0; t < nt; ++t)
+            x[std::size_t(t) * lanes + k] = k < used ? double(r_hat[(f0 + k) * nt + t]) : 0.0;
+        solve_group(f0 / lanes, x.data());
+        for (int k = 0; k < used; ++k) {
+          const Real* r = r_hat + (f0 + k) * nt;
+          Real* q = q_hat + (f0 + k) * nt;
+          double sum = 0;
+          for (int t = 0; t < nt; ++t) {
+            q[t] = Real(x[std::size_t(t) * lanes + k]);
+            sum += double(r[t]) * double(q[t]);
+          }
+          total += sum;
+        }
+      }
+      return total;
     });
   };
   // d_hat <- q_hat + beta d_hat (q_hat alone on the first), and d <- its slots with data in
   // space, in one pass and one inverse transform.
   auto next_direction = [&](double beta, bool first) {
     each_frequency([&](std::size_t f) {
-      double* spectrum = d_hat + f * nt;
-      double* space = d + f * nt;
+      Real* spectrum = d_hat + f * nt;
+      Real* space = d + f * nt;
       for (int t = 0; t < nt; ++t) {
-        spectrum[t] = first ? q_hat[f * nt + t] : q_hat[f * nt + t] + beta * spectrum[t];
-        space[t] = spectrum[t] * back_factor[f];
+        spectrum[t] = first ? q_hat[f * nt + t] : Real(q_hat[f * nt + t] + beta * spectrum[t]);
+        space[t] = Real(spectrum[t] * back_factor[f]);
       }
     });
     plans.inverse_space(shape, d, data_runs);
@@ -596,16 +693,16 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       break;
     }
     in_chunks([&](std::size_t a, std::size_t e) {
-      for (std::size_t i = a; i < e; ++i) ad_hat[i] = w[i] * d[i];  // 0 on the empty slots
+      for (std::size_t i = a; i < e; ++i) ad_hat[i] = weight[i] * d[i];  // 0 on the empty slots
     });
     plans.forward_space(shape, ad_hat, data_runs);
     // One pass per frequency: to the orthonormal spectrum, plus P d, and d . (W + P) d.
     const double dad = over_frequencies([&](std::size_t f) {
-      double* row = ad_hat + f * nt;
+      Real* row = ad_hat + f * nt;
       to_orthonormal(f, row);
       add_penalty(f, d_hat + f * nt, row);
       double sum = 0;
-      for (int t = 0; t < nt; ++t) sum += d_hat[f * nt + t] * row[t];
+      for (int t = 0; t < nt; ++t) sum += double(d_hat[f * nt + t]) * double(row[t]);
       return sum;
     });
     if (!(dad > 0)) break;
@@ -615,8 +712,8 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
       std::size_t t = a % std::size_t(nt);
       for (std::size_t i = a; i < e; ++i) {
         z[i] += alpha * (slot_has_data[t] ? d[i] : d_hat[i]);
-        r_hat[i] -= alpha * ad_hat[i];
-        sum += r_hat[i] * r_hat[i];
+        r_hat[i] = Real(r_hat[i] - alpha * ad_hat[i]);
+        sum += double(r_hat[i]) * double(r_hat[i]);
         if (++t == std::size_t(nt)) t = 0;
       }
       return sum;
@@ -638,6 +735,15 @@ PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<co
     plans.inverse_space(shape, z.data(), empty_runs);
   }
   return result;
+}
+
+}  // namespace
+
+PlsResult solve_pls(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
+                    std::span<const double> w, const PlsSettings& settings, std::span<double> z,
+                    PlsWorkspace& ws) {
+  return settings.single_precision ? solve_pls_in(plans, shape, y, w, settings, z, ws.narrow)
+                                   : solve_pls_in(plans, shape, y, w, settings, z, ws.wide);
 }
 
 }  // namespace kalends::detail

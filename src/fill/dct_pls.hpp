@@ -52,6 +52,7 @@
 #include <mutex>
 #include <span>
 #include <tuple>
+#include <type_traits>
 #include <string>
 #include <vector>
 
@@ -99,6 +100,9 @@ class DctPlanCache {
   /// The same for the indices of axis 2 in `runs` only; the others are left as they are.
   void forward_space(const Shape3& shape, double* data, std::span<const SlotRun> runs) const;
   void inverse_space(const Shape3& shape, double* data, std::span<const SlotRun> runs) const;
+  /// The same in single precision (FFTW's fftwf plans; their wisdom in `wisdom_file`.single).
+  void forward_space(const Shape3& shape, float* data, std::span<const SlotRun> runs) const;
+  void inverse_space(const Shape3& shape, float* data, std::span<const SlotRun> runs) const;
   /// Orthonormal versions (scipy.fft.dctn / idctn with norm='ortho').
   void forward_ortho(const Shape3& shape, double* data) const;
   void inverse_ortho(const Shape3& shape, double* data) const;
@@ -107,37 +111,44 @@ class DctPlanCache {
  private:
   enum class Pass { whole, along_rows, along_columns };
   // `batch`: the number of consecutive axis-2 indices a space pass transforms at once.
-  const void* plan(const Shape3& shape, bool inverse, Pass pass, bool aligned, int batch = 0) const;
-  void space_passes(const Shape3& shape, double* data, bool inverse,
+  const void* plan(const Shape3& shape, bool inverse, Pass pass, bool aligned, int batch = 0,
+                   bool single = false) const;
+  template <typename Real>
+  void space_passes(const Shape3& shape, Real* data, bool inverse,
                     std::span<const SlotRun> runs) const;
   DctPlanning planning_;
-  mutable bool wisdom_read_ = false;
+  mutable bool wisdom_read_[2] = {false, false};  // double, single
   mutable std::mutex mutex_;
-  mutable std::map<std::tuple<Shape3, bool, int, bool, int>, void*> plans_;
+  // (shape, inverse, pass, aligned, batch, single)
+  mutable std::map<std::tuple<Shape3, bool, int, bool, int, bool>, void*> plans_;
 };
 
-/// A double array with FFTW's alignment.
-class DctBuffer {
+/// An array with FFTW's alignment.
+template <typename Real>
+class BasicDctBuffer {
  public:
-  DctBuffer() = default;
-  explicit DctBuffer(std::size_t n) { resize(n); }
-  ~DctBuffer();
-  DctBuffer(DctBuffer&& other) noexcept;
-  DctBuffer& operator=(DctBuffer&& other) noexcept;
-  DctBuffer(const DctBuffer&) = delete;
-  DctBuffer& operator=(const DctBuffer&) = delete;
+  BasicDctBuffer() = default;
+  explicit BasicDctBuffer(std::size_t n) { resize(n); }
+  ~BasicDctBuffer();
+  BasicDctBuffer(BasicDctBuffer&& other) noexcept;
+  BasicDctBuffer& operator=(BasicDctBuffer&& other) noexcept;
+  BasicDctBuffer(const BasicDctBuffer&) = delete;
+  BasicDctBuffer& operator=(const BasicDctBuffer&) = delete;
   void resize(std::size_t n);  // contents undefined after a growth
-  double* data() { return data_; }
-  const double* data() const { return data_; }
+  Real* data() { return data_; }
+  const Real* data() const { return data_; }
   std::size_t size() const { return size_; }
-  double& operator[](std::size_t i) { return data_[i]; }
-  double operator[](std::size_t i) const { return data_[i]; }
-  std::span<double> span() { return {data_, size_}; }
+  Real& operator[](std::size_t i) { return data_[i]; }
+  Real operator[](std::size_t i) const { return data_[i]; }
+  std::span<Real> span() { return {data_, size_}; }
 
  private:
-  double* data_ = nullptr;
+  Real* data_ = nullptr;
   std::size_t size_ = 0, capacity_ = 0;
 };
+using DctBuffer = BasicDctBuffer<double>;
+extern template class BasicDctBuffer<double>;
+extern template class BasicDctBuffer<float>;
 
 struct PlsSettings {
   double s_space = 1.0;  // smoothing across axes 0 and 1
@@ -150,6 +161,11 @@ struct PlsSettings {
   // padded: blocks of one stack have different widths, and padding would give each its own
   // boundary condition at the raster's edge (results would depend on the block size).
   bool pad = false;
+  // The solver's vectors in single precision (the solution z, the dot products and the
+  // preconditioner's factorisation stay in double): half the memory traffic of an iteration,
+  // which is what its sweeps are bound by. Relative residuals below about 1e-6 are out of its
+  // reach; for tolerances of 1e-5 and coarser.
+  bool single_precision = false;
 };
 
 struct PlsResult {
@@ -158,16 +174,29 @@ struct PlsResult {
   bool converged = false;
 };
 
+/// One precision's vectors of a solve.
+template <typename Real>
+struct PlsBuffers {
+  BasicDctBuffer<Real> residual, direction, direction_spectrum, preconditioned, product, weight;
+  std::vector<Real> factor_d, factor_l1, factor_l2;  // the preconditioner's LDL^T factors
+  void reserve(std::size_t n) {
+    for (auto* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product})
+      b->resize(std::max(n, b->size()));
+    // A double solve reads the caller's weights; a single one a copy in its own precision.
+    if constexpr (!std::is_same_v<Real, double>) weight.resize(std::max(n, weight.size()));
+    for (auto* v : {&factor_d, &factor_l1, &factor_l2}) v->reserve(n);
+  }
+};
+
 /// Scratch for one solve; reused across blocks by one thread.
 struct PlsWorkspace {
-  DctBuffer residual, direction, direction_spectrum, preconditioned, product;
-  std::vector<double> factor_d, factor_l1, factor_l2;  // the preconditioner's LDL^T factors
-  /// Room for solves of up to n cells: buffers only grow, so solves of several shapes can then
-  /// share it without allocating again.
-  void reserve(std::size_t n) {
-    for (DctBuffer* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product})
-      b->resize(std::max(n, b->size()));
-    for (auto* v : {&factor_d, &factor_l1, &factor_l2}) v->reserve(n);
+  PlsBuffers<double> wide;
+  PlsBuffers<float> narrow;
+  /// Room for solves of up to n cells in the given precision: buffers only grow, so solves of
+  /// several shapes can then share it without allocating again.
+  void reserve(std::size_t n, bool single_precision = false) {
+    if (single_precision) narrow.reserve(n);
+    else wide.reserve(n);
   }
 };
 

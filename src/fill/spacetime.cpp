@@ -17,6 +17,8 @@ namespace {
 
 constexpr double min_bin_days = 8.0;
 constexpr int backfitting_rounds = 2;
+// The finest --tolerance solved in single precision; finer ones in double (dct_pls.hpp).
+constexpr double single_precision_tolerance = 1e-5;
 // Bisquare constant for 95 % efficiency under Gaussian noise [HM07].
 constexpr double bisquare_c = 4.685;
 // Neighbouring-bin kernel for a pixel's own seasonal deviation (common practice).
@@ -98,10 +100,13 @@ int SpacetimeMethod::season_bins(const TimeGrid& grid, std::vector<int>& bin_of_
 std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const {
   std::vector<int> bins;
   const int n_bins = season_bins(grid, bins);
-  // Doubles: per slot y, w, A, target, support, 8 solver arrays (5 vectors, 3 factor bands;
-  // the climatology's solve shares them), 4 analogue arrays and the completed field, plus a
-  // byte; per bin 9 arrays.
-  return sizeof(double) * (18 * std::size_t(grid.size) + 9 * std::size_t(n_bins)) +
+  // Per slot: doubles y, w, A, target, support, 4 analogue arrays and the completed field; the
+  // solver's 5 vectors and 3 factor bands (the climatology's solve shares them), in single
+  // precision with a copy of the weights (9 floats), else 8 doubles; a byte. Per bin 9 doubles.
+  const bool single = options_.spacetime_tolerance >= single_precision_tolerance;
+  const std::size_t solver = single ? 9 * sizeof(float) : 8 * sizeof(double);
+  return (10 * sizeof(double) + solver) * std::size_t(grid.size) +
+         sizeof(double) * 9 * std::size_t(n_bins) +
          std::size_t(grid.size) + 16;
 }
 
@@ -153,17 +158,19 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   std::vector<std::uint8_t> rejected(cells, 0);
   // One solver workspace for both solves: it keeps its buffers, grown to the larger shape, and
   // holds nothing from one solve to the next.
+  // The solves' vectors in single precision (dct_pls.hpp) where the tolerance is within its reach.
+  const bool single_precision = options_.spacetime_tolerance >= single_precision_tolerance;
   detail::PlsWorkspace workspace;
-  workspace.reserve(cells);
+  workspace.reserve(cells, single_precision);
   detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
                                        options_.spacetime_season_smoothing,
-                                       options_.spacetime_tolerance, 500, true};
+                                       options_.spacetime_tolerance, 500, true, single_precision};
   // An auto smoothing starts GCV's search from MethodOptions' default.
   const MethodOptions defaults;
   detail::PlsSettings anomaly_settings{
       options_.spacetime_space_smoothing.value_or(*defaults.spacetime_space_smoothing),
       options_.spacetime_time_smoothing.value_or(*defaults.spacetime_time_smoothing),
-      options_.spacetime_tolerance, 500, true};
+      options_.spacetime_tolerance, 500, true, single_precision};
   // With an auto smoothing, GCV chooses it on the first round's anomaly; later rounds keep it.
   bool choose_smoothing = !options_.spacetime_space_smoothing || !options_.spacetime_time_smoothing;
   double shrink = 1.0, between = 0.0;

@@ -108,11 +108,15 @@ int main() {
     std::cout << "{";
     print_array("y", std::vector<double>(data.data(), data.data() + n), true);
     std::cout << "}\n";
-  } else if (kind == "pls") {
+  } else if (kind == "pls" || kind == "pls_single") {
+    // pls: double precision, solved to 1e-12. pls_single: single precision (as the spacetime
+    // fill solves), to the tolerance given after the shape.
     detail::PlsSettings settings;
     detail::Shape3 shape;
     std::cin >> settings.s_space >> settings.s_time >> shape[0] >> shape[1] >> shape[2];
     settings.tolerance = 1e-12;
+    settings.single_precision = kind == "pls_single";
+    if (settings.single_precision) std::cin >> settings.tolerance;
     settings.max_iterations = 5000;
     const int n = shape[0] * shape[1] * shape[2];
     const auto yf = read_floats(n), wf = read_floats(n);
@@ -125,7 +129,8 @@ int main() {
     std::cout << "{";
     print_array("z", z);
     std::cout << "\"iterations\": " << result.iterations << ", \"converged\": "
-              << (result.converged ? "true" : "false") << "}\n";
+              << (result.converged ? "true" : "false")
+              << ", \"relative_residual\": " << result.relative_residual << "}\n";
   } else if (kind == "pls_timed") {
     // For tools/bench/pls_reference.py: one solve at a given tolerance with timed plans, the
     // planning done before the clock starts; prints the solve's seconds.
