@@ -12,6 +12,10 @@
 //       93:216-231 (REDFT10 = DCT-II, REDFT01 = DCT-III, both unnormalised).
 // [HS52] Hestenes, M.R. & Stiefel, E. (1952), Methods of conjugate gradients for solving linear
 //       systems, J. Res. Natl. Bur. Stand. 49:409-436.
+// [M80] Makhoul, J. (1980), A fast cosine transform in one and two dimensions, IEEE Trans.
+//       Acoust. Speech Signal Process. 28:27-34 (the DCT-II of even length N as a real FFT of
+//       the reordered sequence v(n) = x(2n), v(N-1-n) = x(2n+1), times exp(-i pi k / 2N); pages
+//       from memory).
 //
 // The problem, on an array of shape n0 x n1 x n2 (axes 0 and 1 are space, axis 2 is time or
 // season; a smaller rank uses shape 1 on the leading axes):
@@ -109,7 +113,9 @@ class DctPlanCache {
   std::size_t plans() const;
 
  private:
-  enum class Pass { whole, along_rows, along_columns };
+  // halfcomplex: a real FFT (r2c forward, c2r inverse) of length shape[0] on a contiguous
+  // buffer of shape[0] x batch values, the batch fastest (the DCT of an even length by [M80]).
+  enum class Pass { whole, along_rows, along_columns, halfcomplex };
   // `batch`: the number of consecutive axis-2 indices a space pass transforms at once.
   const void* plan(const Shape3& shape, bool inverse, Pass pass, bool aligned, int batch = 0,
                    bool single = false) const;

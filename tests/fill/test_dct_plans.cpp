@@ -98,23 +98,43 @@ TEST_CASE("a wisdom file that cannot be written or read is no error") {
 }
 
 TEST_CASE("space-only transforms act on axes 0 and 1 of every slot") {
-  const Shape3 shape{6, 5, 7};
-  const std::size_t n = 6 * 5 * 7;
-  const auto x = random_values(n, 11);
-  DctPlanCache plans;
-  DctBuffer mixed(n);
-  std::copy(x.begin(), x.end(), mixed.data());
-  plans.forward_space(shape, mixed.data());
-  // Each slot's plane alone, through the transform of a 6 x 5 x 1 array.
-  for (int s = 0; s < shape[2]; ++s) {
-    DctBuffer plane(30);
-    for (int p = 0; p < 30; ++p) plane[p] = x[std::size_t(p) * 7 + s];
-    plans.forward({6, 5, 1}, plane.data());
-    for (int p = 0; p < 30; ++p) REQUIRE(mixed[std::size_t(p) * 7 + s] == Approx(plane[p]).margin(1e-10));
+  // Even lengths go through a real FFT (Makhoul's reordering), odd ones through FFTW's r2r
+  // plans; each against FFTW's r2r transform of every slot's plane alone.
+  for (const Shape3 shape : {Shape3{6, 5, 7}, Shape3{8, 2, 3}, Shape3{5, 9, 4}, Shape3{4, 6, 1},
+                             Shape3{1, 8, 5}, Shape3{2, 2, 2}, Shape3{16, 12, 9}}) {
+    CAPTURE(shape[0], shape[1], shape[2]);
+    const std::size_t plane_size = std::size_t(shape[0]) * shape[1];
+    const std::size_t n = plane_size * shape[2];
+    const auto x = random_values(n, 11);
+    DctPlanCache plans;
+    DctBuffer mixed(n);
+    std::copy(x.begin(), x.end(), mixed.data());
+    plans.forward_space(shape, mixed.data());
+    for (int s = 0; s < shape[2]; ++s) {
+      DctBuffer plane(plane_size), back(plane_size);
+      for (std::size_t p = 0; p < plane_size; ++p) plane[p] = back[p] = x[p * shape[2] + s];
+      plans.forward({shape[0], shape[1], 1}, plane.data());
+      for (std::size_t p = 0; p < plane_size; ++p)
+        REQUIRE(mixed[p * shape[2] + s] == Approx(plane[p]).margin(1e-10));
+    }
+    // The inverse of each plane's values (as if they were a spectrum).
+    DctBuffer inverse(n);
+    std::copy(x.begin(), x.end(), inverse.data());
+    plans.inverse_space(shape, inverse.data());
+    for (int s = 0; s < shape[2]; ++s) {
+      DctBuffer plane(plane_size);
+      for (std::size_t p = 0; p < plane_size; ++p) plane[p] = x[p * shape[2] + s];
+      plans.inverse({shape[0], shape[1], 1}, plane.data());
+      for (std::size_t p = 0; p < plane_size; ++p)
+        REQUIRE(inverse[p * shape[2] + s] == Approx(plane[p]).margin(1e-10));
+    }
+    plans.inverse_space(shape, mixed.data());
+    // inverse_space(forward_space(x)) = 4 n0 n1 x (a factor 2 n per axis longer than 1).
+    double factor = 1;
+    for (int k = 0; k < 2; ++k)
+      if (shape[k] > 1) factor *= 2.0 * shape[k];
+    for (std::size_t i = 0; i < n; ++i) REQUIRE(mixed[i] == Approx(factor * x[i]).margin(1e-9));
   }
-  plans.inverse_space(shape, mixed.data());
-  // inverse_space(forward_space(x)) = 4 n0 n1 x.
-  for (std::size_t i = 0; i < n; ++i) REQUIRE(mixed[i] == Approx(4.0 * 30 * x[i]).margin(1e-9));
 }
 
 TEST_CASE("the solve gives the same doubles on one thread and on two") {
@@ -151,25 +171,33 @@ TEST_CASE("the solve gives the same doubles on one thread and on two") {
 TEST_CASE("single-precision space transforms match the double ones and keep their own wisdom") {
   TemporaryFolder folder;
   const std::string wisdom = (folder.path / "fftw-wisdom").string();
-  const Shape3 shape{12, 10, 9};
-  const std::size_t n = 12 * 10 * 9;
-  const auto x = random_values(n, 11);
-  DctBuffer wide(n);
-  BasicDctBuffer<float> narrow(n);
-  for (std::size_t i = 0; i < n; ++i) {
-    wide[i] = x[i];
-    narrow[i] = float(x[i]);
-  }
-  // Slots 1..3 and 6..8 only, at odd offsets.
+  // Slots 1..3 and 6..8 only, at odd offsets; even (real FFT) and odd (r2r) lengths.
   const SlotRun runs[] = {{1, 3}, {6, 3}};
   DctPlanCache plans(DctPlanning{true, wisdom});
-  plans.forward_space(shape, wide.data(), runs);
-  plans.forward_space(shape, narrow.data(), runs);
-  for (std::size_t i = 0; i < n; ++i) {
-    // Unnormalised: entries up to about 4 n0 n1 |x|; float keeps 7 digits.
-    REQUIRE(narrow[i] == Approx(wide[i]).margin(1e-3));
-    const std::size_t slot = i % 9;
-    if (slot == 0 || slot == 4 || slot == 5) REQUIRE(narrow[i] == float(x[i]));  // untouched
+  for (const Shape3 shape : {Shape3{12, 10, 9}, Shape3{7, 9, 9}}) {
+    const std::size_t n = std::size_t(shape[0]) * shape[1] * shape[2];
+    const auto x = random_values(n, 11);
+    DctBuffer wide(n);
+    BasicDctBuffer<float> narrow(n);
+    for (std::size_t i = 0; i < n; ++i) {
+      wide[i] = x[i];
+      narrow[i] = float(x[i]);
+    }
+    for (bool inverse : {false, true}) {
+      if (inverse) {
+        plans.inverse_space(shape, wide.data(), runs);
+        plans.inverse_space(shape, narrow.data(), runs);
+      } else {
+        plans.forward_space(shape, wide.data(), runs);
+        plans.forward_space(shape, narrow.data(), runs);
+      }
+      for (std::size_t i = 0; i < n; ++i) {
+        // Unnormalised: up to 4 n0 n1 |x| (480 |x| here) after both; float keeps 7 digits.
+        REQUIRE(narrow[i] == Approx(wide[i]).margin(inverse ? 1e-2 : 1e-3));
+        const std::size_t slot = i % 9;
+        if (slot == 0 || slot == 4 || slot == 5) REQUIRE(narrow[i] == float(x[i]));  // untouched
+      }
+    }
   }
   REQUIRE(std::filesystem::exists(wisdom + ".single"));
   REQUIRE(read_file(wisdom + ".single").rfind("(fftw-3", 0) == 0);

@@ -132,12 +132,15 @@ int main() {
               << (result.converged ? "true" : "false")
               << ", \"relative_residual\": " << result.relative_residual << "}\n";
   } else if (kind == "pls_timed") {
-    // For tools/bench/pls_reference.py: one solve at a given tolerance with timed plans, the
-    // planning done before the clock starts; prints the solve's seconds.
+    // For tools/bench/pls_reference.py: one solve at a given tolerance and precision (1: single,
+    // as the spacetime fill solves) with timed plans, the planning done before the clock
+    // starts; prints the solve's seconds.
     detail::PlsSettings settings;
     detail::Shape3 shape;
+    int single = 0;
     std::cin >> settings.s_space >> settings.s_time >> settings.tolerance >> shape[0] >> shape[1] >>
-        shape[2];
+        shape[2] >> single;
+    settings.single_precision = single != 0;
     settings.max_iterations = 5000;
     const std::size_t n = std::size_t(shape[0]) * shape[1] * shape[2];
     const auto yf = read_floats(int(n)), wf = read_floats(int(n));
@@ -146,10 +149,15 @@ int main() {
       if (!(w[i] > 0)) y[i] = 0;
     detail::DctPlanCache plans(detail::DctPlanning{true, detail::default_wisdom_file()});
     {
+      const detail::SlotRun all{0, shape[2]};
       detail::DctBuffer warm(n);
       std::fill(warm.data(), warm.data() + n, 0.0);
       plans.forward_space(shape, warm.data());
       plans.inverse_space(shape, warm.data());
+      detail::BasicDctBuffer<float> warm_single(n);
+      std::fill(warm_single.data(), warm_single.data() + n, 0.0f);
+      plans.forward_space(shape, warm_single.data(), {&all, 1});
+      plans.inverse_space(shape, warm_single.data(), {&all, 1});
     }
     detail::PlsWorkspace ws;
     // One thread, as the numpy/scipy reference (scipy.fft with workers=1): a per-core ratio.

@@ -8,7 +8,8 @@ twice, to the same relative residual:
     Data Anal. 54:1167-1178: the DCT diagonalises P; his iteration operator used as the
     preconditioner), written independently of kalends;
   - kalends: detail::solve_pls through build/tests/kalends_probe ("pls_timed"), plans made
-    before the clock starts.
+    before the clock starts; in single precision (as `kalends fill --method spacetime` solves at
+    tolerances of 1e-5 and coarser) and in double.
 Prints the medians of --repeats solves and their ratio, and the largest difference between the
 two solutions; --json writes them.
 
@@ -88,8 +89,9 @@ def solve_numpy(y, w, s_space, s_time, tolerance, max_iterations=5000):
     return z, iterations
 
 
-def solve_kalends(y, w, s_space, s_time, tolerance):
-    header = "pls_timed %r %r %r %d %d %d" % ((s_space, s_time, tolerance) + y.shape)
+def solve_kalends(y, w, s_space, s_time, tolerance, single):
+    header = "pls_timed %r %r %r %d %d %d %d" % ((s_space, s_time, tolerance) + y.shape +
+                                                 (1 if single else 0,))
     text = "\n".join([header, " ".join("%.9g" % v for v in y.ravel()),
                       " ".join("%g" % v for v in w.ravel())]) + "\n"
     done = subprocess.run([PROBE], input=text, capture_output=True, text=True)
@@ -111,27 +113,35 @@ def main():
     if not os.access(PROBE, os.X_OK):
         sys.exit("pls_reference.py: %s not found (tools/build.sh)" % PROBE)
     y, w = read_stack(a.stack)
-    numpy_s, kalends_s = [], []
+    numpy_s, kalends_s, double_s = [], [], []
     for _ in range(a.repeats):
         t0 = time.perf_counter()
         z_numpy, it_numpy = solve_numpy(y, w, a.space, a.time, a.tolerance)
         numpy_s.append(time.perf_counter() - t0)
-        z_kalends, it_kalends, s = solve_kalends(y, w, a.space, a.time, a.tolerance)
+        z_kalends, it_kalends, s = solve_kalends(y, w, a.space, a.time, a.tolerance, True)
         kalends_s.append(s)
+        z_double, it_double, s = solve_kalends(y, w, a.space, a.time, a.tolerance, False)
+        double_s.append(s)
     result = dict(shape=list(y.shape), observed_share=float(w.mean()), tolerance=a.tolerance,
                   s_space=a.space, s_time=a.time, repeats=a.repeats,
                   numpy_median_s=statistics.median(numpy_s), numpy_iterations=it_numpy,
                   kalends_median_s=statistics.median(kalends_s), kalends_iterations=it_kalends,
                   numpy_over_kalends=statistics.median(numpy_s) / statistics.median(kalends_s),
                   max_abs_difference=float(np.max(np.abs(z_numpy - z_kalends))),
+                  kalends_double_median_s=statistics.median(double_s),
+                  kalends_double_iterations=it_double,
+                  numpy_over_kalends_double=statistics.median(numpy_s) / statistics.median(double_s),
+                  double_max_abs_difference=float(np.max(np.abs(z_numpy - z_double))),
                   data_sd=float(np.std(y[w > 0])))
     print("PLS solve %s, %.0f %% observed, tolerance %g: numpy/scipy %.2f s (%d iterations), "
-          "kalends %.2f s (%d iterations), numpy / kalends = %.1f, largest difference %.2g "
-          "(%.2g data sd)"
+          "kalends single precision %.2f s (%d iterations), numpy / kalends = %.1f, largest "
+          "difference %.2g (%.2g data sd); kalends double precision %.2f s (%d iterations), "
+          "numpy / kalends = %.1f"
           % ("x".join(map(str, y.shape)), 100 * result["observed_share"], a.tolerance,
              result["numpy_median_s"], it_numpy, result["kalends_median_s"], it_kalends,
              result["numpy_over_kalends"], result["max_abs_difference"],
-             result["max_abs_difference"] / result["data_sd"]))
+             result["max_abs_difference"] / result["data_sd"], result["kalends_double_median_s"],
+             it_double, result["numpy_over_kalends_double"]))
     if a.json:
         with open(a.json, "w") as f:
             json.dump(result, f, indent=1)
