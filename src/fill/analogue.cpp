@@ -128,18 +128,19 @@ void kernel_sums(const Sums4* sums, const int* at, int n, const Sums4* taps4, in
 }
 
 // Adds each co-observed date's {m, m d, m d^2, m} to its bin, over p's observed slots `slot`
-// (bins `bin`), and to `all`. Without branches: a third of q's dates or more may be missing, at
-// random. Returns whether any date was co-observed.
+// (bins `bin`; p's weights and values there, in the same order, `wp` and `yp`), and to `all`.
+// Without branches: a third of q's dates or more may be missing, at random. Returns whether any
+// date was co-observed.
 KALENDS_VECTOR_CLONES
-bool pair_sums(const double* wp, const double* wq, const double* yp, const double* yq,
+bool pair_sums(const double* wp, const double* yp, const double* wq, const double* yq,
                const int* slot, const int* bin, std::size_t n, Sums4* core, Sums4& all) {
   bool shared = false;
   Lanes total = {0, 0, 0, 0};
   for (std::size_t k = 0; k < n; ++k) {
     const int s = slot[k];
     const bool both = wq[s] > 0;
-    const double m = both ? wp[s] * wq[s] : 0.0;
-    const double d = both ? yp[s] - yq[s] : 0.0;
+    const double m = both ? wp[k] * wq[s] : 0.0;
+    const double d = both ? yp[k] - yq[s] : 0.0;
     const double md = m * d;
     const Lanes add = {m, md, md * d, m};
     core[bin[k]].lanes += add;
@@ -218,6 +219,7 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
       std::vector<double> sum_w(slots), sum_wx(slots), count(slots);
       std::vector<Sums4> sums(static_cast<std::size_t>(padded)), around(static_cast<std::size_t>(slots));
       std::vector<int> pending, usable, usable_bin;
+      std::vector<double> own_weight, own_value;  // p's, on its observed slots
       std::vector<std::size_t> mine;
       for (int r = int(row_begin); r < int(row_end); ++r)
         for (int c = 0; c < cols; ++c) {
@@ -232,6 +234,13 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
           std::fill(sum_w.begin(), sum_w.end(), 0.0);
           std::fill(sum_wx.begin(), sum_wx.end(), 0.0);
           std::fill(count.begin(), count.end(), 0.0);
+          const std::size_t first = first_observed[p], observed_count = first_observed[p + 1] - first;
+          own_weight.resize(observed_count);
+          own_value.resize(observed_count);
+          for (std::size_t k = 0; k < observed_count; ++k) {
+            own_weight[k] = weight[p * slots + observed_slot[first + k]];
+            own_value[k] = y[p * slots + observed_slot[first + k]];
+          }
           for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
             for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
               const std::size_t q = std::size_t(rr) * cols + cc;
@@ -249,10 +258,8 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
               Sums4* core = sums.data() + half;
               std::fill(core, core + bins, Sums4{});
               Sums4 all;
-              const std::size_t first = first_observed[p];
-              if (!pair_sums(&weight[p * slots], &weight[q * slots], &y[p * slots], &y[q * slots],
-                             &observed_slot[first], &observed_bin[first],
-                             first_observed[p + 1] - first, core, all))
+              if (!pair_sums(own_weight.data(), own_value.data(), &weight[q * slots], &y[q * slots],
+                             &observed_slot[first], &observed_bin[first], observed_count, core, all))
                 continue;
               for (const auto& [to, from] : margin) sums[std::size_t(to)] = sums[std::size_t(from)];
               // The prior of the seasonal spread: the pair's spread over all its dates.
@@ -265,17 +272,18 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
                 const int s = usable[u];
                 const Lanes& sum = around[u].lanes;
                 const double s0 = sum[0], s1 = sum[1], s2 = sum[2], k2 = sum[3];
-                if (!(s0 > 0) || !(k2 > 0)) continue;
-                const double n_eff = s0 * s0 / k2;
-                if (n_eff < settings.min_pairs) continue;
-                // Four divisions, not seven.
-                const double inverse_s0 = 1.0 / s0;
-                const double mean = s1 * inverse_s0;
-                const double spread = std::max(0.0, s2 * inverse_s0 - mean * mean);
-                const double v = (spread * n_eff + 2.0 * prior) / (n_eff + 2.0) *
-                                     (1.0 + k2 * inverse_s0 * inverse_s0) +
-                                 known_variance[q * slots + s];
-                const double inverse_v = 1.0 / v;
+                // n_eff = s0^2 / k2 must reach min_pairs.
+                if (!(s0 > 0) || !(k2 > 0) || !(s0 * s0 >= settings.min_pairs * k2)) continue;
+                // The variance (spread n_eff + 2 prior) / (n_eff + 2) (1 + 1 / n_eff) + the
+                // neighbour's own, spread = s2 / s0 - mean^2, as one fraction over s0^2 and k2:
+                // two divisions instead of four (they were a third of the analogue loop's time).
+                const double s0_squared = s0 * s0;
+                const double spread_s0_squared = std::max(0.0, s2 * s0 - s1 * s1);
+                const double numerator = (spread_s0_squared + 2.0 * prior * k2) * (s0_squared + k2);
+                const double denominator = (s0_squared + 2.0 * k2) * s0_squared;
+                const double inverse_v =
+                    denominator / (numerator + known_variance[q * slots + s] * denominator);
+                const double mean = s1 / s0;
                 sum_w[s] += inverse_v;
                 sum_wx[s] += (vq[s] + mean) * inverse_v;
                 count[s] += 1.0;
