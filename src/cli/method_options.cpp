@@ -72,11 +72,13 @@ void add_method_options(CLI::App* sub, MethodOptions& m, MethodOptionTexts& t) {
                   "a gap; 0 = the smooth model alone")
       ->capture_default_str();
   sub->add_option("--tolerance", m.spacetime_tolerance,
-                  "Spacetime method: relative residual at which the solver stops")
+                  "Spacetime method: relative residual at which the solver stops (1e-5 and coarser: "
+                  "solved in single precision)")
       ->capture_default_str();
   sub->add_option("--fft-wisdom", m.spacetime_fft_wisdom,
                   "Spacetime method: auto = time the transforms once per block shape and keep the "
-                  "result in the user cache, FILE = keep it there, none = plan without timing")
+                  "result in the user cache, FILE = keep it there (and in FILE.single), none = plan "
+                  "without timing")
       ->capture_default_str();
   sub->add_option("--max-gap", m.max_gap_days,
                   "Leave gaps between observations longer than this many days unfilled; 0 = no limit")
