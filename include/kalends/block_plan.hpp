@@ -34,6 +34,10 @@ struct BlockPlan {
   /// corner), while their read windows still reach into the rest of the raster for the halo.
   static BlockPlan make(int width, int height, int halo, std::int64_t max_read_pixels,
                         int tile = 256, const std::optional<Window>& region = std::nullopt);
+
+  /// The read pixels of the smallest block `make` can plan: one tile plus halo, clipped to the
+  /// raster.
+  static std::int64_t smallest_read_pixels(int width, int height, int halo, int tile = 256);
 };
 
 /// The window `region` of a raster of `width` x `height`, or the whole raster when there is no

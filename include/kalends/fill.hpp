@@ -62,6 +62,7 @@ struct FillSummary {
   std::map<std::string, std::int64_t> series_not_fitted;
   double seconds = 0, kernel_seconds = 0;
   std::int64_t block_width = 0, block_height = 0;
+  int blocks_at_once = 0;  // fewer than the threads when the budget allows no more
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
 };

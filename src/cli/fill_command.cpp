@@ -127,8 +127,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    r.every->label());
     }
     if (global.verbose) {
-      std::fprintf(stderr, "blocks: %d of %lld x %lld px\n", s.blocks, (long long)s.block_width,
-                   (long long)s.block_height);
+      std::fprintf(stderr, "blocks: %d of %lld x %lld px, %d at a time\n", s.blocks,
+                   (long long)s.block_width, (long long)s.block_height, s.blocks_at_once);
       if (s.kernel_seconds > 0)
         std::fprintf(stderr, "kernel: %.0f pixel-dates/s\n", double(s.pixel_dates) / s.kernel_seconds);
       std::fprintf(stderr, "peak memory: %.0f MiB\n", detail::peak_resident_bytes() / 1048576.0);

@@ -17,6 +17,10 @@ Window area_of(int width, int height, const std::optional<Window>& region, const
   return r;
 }
 
+std::int64_t BlockPlan::smallest_read_pixels(int width, int height, int halo, int tile) {
+  return std::int64_t(std::min(width, tile + 2 * halo)) * std::min(height, tile + 2 * halo);
+}
+
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
                           const std::optional<Window>& region) {
   BlockPlan plan;
@@ -28,7 +32,7 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
     return std::int64_t(std::min(raster_width, bw + 2 * halo)) * std::min(raster_height, bh + 2 * halo);
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
-  if (read_pixels(tile, tile) > max_read_pixels)
+  if (smallest_read_pixels(raster_width, raster_height, halo, tile) > max_read_pixels)
     throw UsageError("--memory", "too small for one block of " + std::to_string(tile) + " x " +
                                      std::to_string(tile) + " px; give more memory");
   // Full-width strips of as many tile rows as fit; otherwise as many tile columns as fit.

@@ -10,19 +10,37 @@
 
 namespace kalends::detail {
 
-/// Calls process(block, worker) for every block of `plan` on `threads` threads; `worker` is the
-/// calling thread's own element of `workers`. Exceptions stop the run and reach the caller.
+/// Calls process(block, worker) for every block of `plan` on `threads` threads, at most
+/// `at_once` blocks at a time (0: `threads`); `worker` is the calling thread's own element of
+/// `workers`. With fewer blocks at once than threads (a memory budget too small for a block per
+/// thread), the other threads work inside the blocks' parallel loops (engine/parallel.hpp).
+/// Exceptions stop the run and reach the caller.
 template <typename Worker, typename Process>
 void run_blocks(const BlockPlan& plan, int threads, tbb::enumerable_thread_specific<Worker>& workers,
-                Process&& process) {
+                Process&& process, int at_once = 0) {
+  const std::size_t lanes = std::size_t(at_once > 0 && at_once < threads ? at_once : threads);
   tbb::task_arena arena(threads);
   arena.execute([&] {
-    // Grain 1 and a simple partitioner: blocks are large and few, one task each.
+    if (lanes >= std::size_t(threads)) {
+      // Grain 1 and a simple partitioner: blocks are large and few, one task each.
+      tbb::parallel_for(
+          tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
+          [&](const tbb::blocked_range<std::size_t>& range) {
+            Worker& worker = workers.local();
+            for (std::size_t b = range.begin(); b < range.end(); ++b) process(plan.blocks[b], worker);
+          },
+          tbb::simple_partitioner());
+      return;
+    }
+    // One task per lane, each taking every lanes-th block in turn: never more than `lanes`
+    // blocks (and workers' buffers) at once.
     tbb::parallel_for(
-        tbb::blocked_range<std::size_t>(0, plan.blocks.size(), 1),
+        tbb::blocked_range<std::size_t>(0, lanes, 1),
         [&](const tbb::blocked_range<std::size_t>& range) {
-          Worker& worker = workers.local();
-          for (std::size_t b = range.begin(); b < range.end(); ++b) process(plan.blocks[b], worker);
+          for (std::size_t lane = range.begin(); lane < range.end(); ++lane) {
+            Worker& worker = workers.local();
+            for (std::size_t b = lane; b < plan.blocks.size(); b += lanes) process(plan.blocks[b], worker);
+          }
         },
         tbb::simple_partitioner());
   });

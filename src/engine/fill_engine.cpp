@@ -269,8 +269,22 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   for (const Layer& l : stack.layers()) read_files.insert(l.path);
   if (qa_stack)
     for (const Layer& l : qa_stack->layers()) read_files.insert(l.path);
-  const detail::MemoryShare share = detail::share_memory(
-      request.memory_bytes, threads, bytes_per_pixel, int(read_files.size()), int(specs.size()));
+  // A block per thread at once when the budget gives each at least one tile and its halo; else
+  // fewer, down to one, whose parallel loops the other threads then share (a method with a
+  // large halo and many dates, such as spacetime, on a machine with many cores).
+  const std::int64_t smallest_block =
+      BlockPlan::smallest_read_pixels(raster.width, raster.height, method->halo(), tile_size);
+  int at_once = threads;
+  detail::MemoryShare share;
+  for (;; --at_once) {
+    try {
+      share = detail::share_memory(request.memory_bytes, at_once, bytes_per_pixel,
+                                   int(read_files.size()), int(specs.size()));
+      if (share.max_read_pixels >= smallest_block || at_once == 1) break;
+    } catch (const UsageError&) {
+      if (at_once == 1) throw;
+    }
+  }
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan =
       BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size, request.region);
@@ -466,7 +480,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     }
   };
 
-  detail::run_blocks(plan, threads, workers, process);
+  detail::run_blocks(plan, threads, workers, process, at_once);
   for (std::size_t i = 0; i < std::size_t(layers); ++i)
     if (in_range[i] == 0 && out_of_range[i] > 0)
       throw InputError(stack.layers()[i].path,
@@ -500,6 +514,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.blocks = int(plan.blocks.size());
   summary.block_width = plan.block_width;
   summary.block_height = plan.block_height;
+  summary.blocks_at_once = std::min(at_once, int(plan.blocks.size()));
   summary.calendar_outputs = int(periods.size());
   std::int64_t masked_by_qa = 0;
   std::map<int, YearCounts> years;

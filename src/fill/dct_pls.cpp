@@ -534,8 +534,9 @@ void filter_shifted(const DctPlanCache& plans, const Shape3& shape, const PlsSet
 // (omega I + P)^-1 preconditioner of [G10] slow; this one leaves mostly the spatial gaps.
 namespace {
 
-// The solve with its vectors in precision Real (PlsSettings::single_precision). Whatever Real,
-// the factorisation, the banded solves, the dot products and z are in double.
+// The solve with its vectors and the preconditioner's stored factors in precision Real
+// (PlsSettings::single_precision). Whatever Real, the factorisation, the banded solves, the dot
+// products and z are computed in double.
 template <typename Real>
 PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
                        std::span<const double> w, const PlsSettings& settings, std::span<double> z,

@@ -167,10 +167,10 @@ struct PlsSettings {
   // padded: blocks of one stack have different widths, and padding would give each its own
   // boundary condition at the raster's edge (results would depend on the block size).
   bool pad = false;
-  // The solver's vectors in single precision (the solution z, the dot products and the
-  // preconditioner's factorisation stay in double): half the memory traffic of an iteration,
-  // which is what its sweeps are bound by. Relative residuals below about 1e-6 are out of its
-  // reach; for tolerances of 1e-5 and coarser.
+  // The solver's vectors and the preconditioner's stored factors in single precision (the
+  // solution z, the dot products, the factorisation and the banded solves are computed in
+  // double): half the memory traffic of an iteration's sweeps. The vectors carry about seven
+  // digits; spacetime uses it for tolerances of 1e-5 and coarser.
   bool single_precision = false;
 };
 

@@ -1,7 +1,13 @@
 #include <catch2/catch.hpp>
 
-#include <set>
+#include <tbb/enumerable_thread_specific.h>
 
+#include <atomic>
+#include <set>
+#include <vector>
+
+#include "engine/block_runner.hpp"
+#include "engine/parallel.hpp"
 #include "kalends/block_plan.hpp"
 #include "kalends/error.hpp"
 #include "kalends/time_grid.hpp"
@@ -40,6 +46,40 @@ TEST_CASE("blocks cover the raster once and respect the pixel budget", "[engine]
   CHECK(BlockPlan::make(2048, 2048, 0, 2048 * 768).block_height == 768);
   CHECK(BlockPlan::make(2048, 2048, 0, 256 * 256).blocks.size() == 64);
   CHECK_THROWS_AS(BlockPlan::make(2048, 2048, 8, 256 * 256), UsageError);
+  // The smallest plan: one tile and its halo, clipped to the raster.
+  CHECK(BlockPlan::smallest_read_pixels(2048, 2048, 8) == 272 * 272);
+  CHECK(BlockPlan::smallest_read_pixels(100, 300, 32) == 100 * 300);
+  CHECK_NOTHROW(BlockPlan::make(2048, 2048, 8, BlockPlan::smallest_read_pixels(2048, 2048, 8)));
+  CHECK_THROWS_AS(BlockPlan::make(2048, 2048, 8, BlockPlan::smallest_read_pixels(2048, 2048, 8) - 1),
+                  UsageError);
+}
+
+TEST_CASE("blocks run at most `at_once` at a time, each once, with every thread", "[engine][blocks]") {
+  const BlockPlan plan = BlockPlan::make(2048, 1024, 0, 256 * 256);
+  REQUIRE(plan.blocks.size() == 32);
+  for (int at_once : {0, 1, 2, 3}) {
+    INFO("at_once " << at_once);
+    std::atomic<int> running{0}, most{0};
+    std::vector<std::atomic<int>> seen(plan.blocks.size());
+    tbb::enumerable_thread_specific<int> workers;
+    kalends::detail::run_blocks(
+        plan, 3, workers,
+        [&](const Block& b, int&) {
+          const int now = ++running;
+          int before = most.load();
+          while (now > before && !most.compare_exchange_weak(before, now)) {
+          }
+          ++seen[std::size_t(b.index)];
+          // Some work with a parallel loop inside, as a method's block has.
+          std::atomic<long> sum{0};
+          kalends::detail::parallel_each(20000, 100, [&](std::size_t k) { sum += long(k % 7); });
+          CHECK(sum == 59997);
+          --running;
+        },
+        at_once);
+    for (const auto& n : seen) CHECK(n == 1);
+    CHECK(most <= (at_once > 0 ? at_once : 3));
+  }
 }
 
 TEST_CASE("time grid keeps true spacing and resolves composite-calendar collisions", "[engine][grid]") {

@@ -43,6 +43,40 @@ class BlockSizeIndependence(kt.TempDirTestCase):
         self.assertLessEqual(diff, 0.004)
 
 
+class FewerBlocksThanThreads(kt.TempDirTestCase):
+    """A --memory budget that holds one spacetime block but not one per thread: the blocks then
+    run one at a time (the other threads work inside them) instead of the run being refused,
+    and the files equal those of one thread with the same budget."""
+
+    def test_one_block_at_a_time(self):
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 600, 200)  # three tiles across
+        common = [os.path.join(stack, "ndvi_*.tif"), "--method", "spacetime", "--verbose"]
+        one = os.path.join(self.tmp, "one")
+        # The smallest budget (16 MiB steps) that runs on one thread; refusals are quick.
+        budget = None
+        for mib in range(128, 2049, 16):
+            done = kt.run_kalends(["fill"] + common + ["--out", one, "--threads", "1",
+                                                       "--memory", "%dM" % mib])
+            if done.returncode == 0:
+                budget = mib
+                break
+            self.assertIn("--memory", done.stderr)
+        self.assertIsNotNone(budget, "no budget up to 2 GiB ran on one thread")
+        two = os.path.join(self.tmp, "two")
+        done = kt.run_kalends(["fill"] + common + ["--out", two, "--threads", "2",
+                                                   "--memory", "%dM" % budget])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("1 at a time", done.stderr)
+        self.assertGreater(kt.read_summary(two)["blocks"], 1)
+        print("\nbudget %d MiB: %s" % (budget, [l for l in done.stderr.splitlines()
+                                                if l.startswith("blocks:")]))
+        for name in kt.final_outputs(one):
+            a, b = kt.read_output(os.path.join(one, name)), kt.read_output(os.path.join(two, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+
+
 class SmoothingChoiceRecorded(kt.TempDirTestCase):
     """--space-smoothing/--time-smoothing auto: fill-summary.json lists the values GCV chose per
     block, and giving them back as fixed values reproduces the fill exactly."""
