@@ -17,8 +17,9 @@ namespace {
 
 constexpr double min_bin_days = 8.0;
 constexpr int backfitting_rounds = 2;
-// The finest --tolerance solved in single precision; finer ones in double (dct_pls.hpp).
-constexpr double single_precision_tolerance = 1e-5;
+// The solves' vectors in single precision (dct_pls.hpp) where the tolerance is within its reach:
+// 1e-5 and coarser; finer ones in double.
+bool solves_in_single_precision(double tolerance) { return tolerance >= 1e-5; }
 // Bisquare constant for 95 % efficiency under Gaussian noise [HM07].
 constexpr double bisquare_c = 4.685;
 // Neighbouring-bin kernel for a pixel's own seasonal deviation (common practice).
@@ -31,6 +32,31 @@ constexpr double model_share = 0.3;
 // smaller ones (common practice: about one known cell in twenty).
 constexpr double convolution_scales[] = {2.0, 4.0, 8.0};
 constexpr double convolution_support = 0.05;
+
+// Sums of a per-pixel quantity over the window of `radius` pixels around each pixel, clipped to
+// the block: a summed-area table, one lookup per window.
+class WindowSums {
+ public:
+  template <typename Value>
+  WindowSums(int rows, int cols, Value&& value_at_pixel)
+      : rows_(rows), cols_(cols), table_(std::size_t(rows + 1) * (cols + 1), 0.0) {
+    for (int r = 0; r < rows; ++r)
+      for (int c = 0; c < cols; ++c)
+        at(r + 1, c + 1) = value_at_pixel(std::size_t(r) * cols + c) + at(r, c + 1) + at(r + 1, c) -
+                           at(r, c);
+  }
+  double around(int r, int c, int radius) const {
+    const int r0 = std::max(0, r - radius), r1 = std::min(rows_, r + radius + 1);
+    const int c0 = std::max(0, c - radius), c1 = std::min(cols_, c + radius + 1);
+    return at(r1, c1) - at(r0, c1) - at(r1, c0) + at(r0, c0);
+  }
+
+ private:
+  double& at(int r, int c) { return table_[std::size_t(r) * (cols_ + 1) + c]; }
+  double at(int r, int c) const { return table_[std::size_t(r) * (cols_ + 1) + c]; }
+  int rows_, cols_;
+  std::vector<double> table_;
+};
 
 std::string number(double v) { return fmt::format("{:g}", v); }
 std::string number_or_auto(const std::optional<double>& v) { return v ? number(*v) : "auto (GCV)"; }
@@ -104,7 +130,7 @@ std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const
   // solver's 5 vectors and 3 factor bands (the climatology's solve shares them), in single
   // precision with a copy of the weights (9 floats), else 8 doubles; a byte. Per bin 9 doubles.
   // Per pixel 8 doubles: the variance components and their summed-area tables.
-  const bool single = options_.spacetime_tolerance >= single_precision_tolerance;
+  const bool single = solves_in_single_precision(options_.spacetime_tolerance);
   const std::size_t solver = single ? 9 * sizeof(float) : 8 * sizeof(double);
   return (10 * sizeof(double) + solver) * std::size_t(grid.size) +
          sizeof(double) * (9 * std::size_t(n_bins) + 8) +
@@ -137,19 +163,8 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   // Pixels with no observation within the halo on any date: nothing to fill them from. A
   // summed-area table of observation counts makes the window test O(1) per pixel.
   const int radius = options_.spacetime_halo;
-  std::vector<std::int64_t> table(std::size_t(rows + 1) * (cols + 1), 0);
-  for (int r = 0; r < rows; ++r)
-    for (int c = 0; c < cols; ++c)
-      table[std::size_t(r + 1) * (cols + 1) + c + 1] = observations[std::size_t(r) * cols + c] +
-                                                       table[std::size_t(r) * (cols + 1) + c + 1] +
-                                                       table[std::size_t(r + 1) * (cols + 1) + c] -
-                                                       table[std::size_t(r) * (cols + 1) + c];
-  auto reachable = [&](int r, int c) {
-    const int r0 = std::max(0, r - radius), r1 = std::min(rows, r + radius + 1);
-    const int c0 = std::max(0, c - radius), c1 = std::min(cols, c + radius + 1);
-    const auto at = [&](int a, int b) { return table[std::size_t(a) * (cols + 1) + b]; };
-    return at(r1, c1) - at(r0, c1) - at(r1, c0) + at(r0, c0) > 0;
-  };
+  const WindowSums observations_near(rows, cols, [&](std::size_t p) { return double(observations[p]); });
+  auto reachable = [&](int r, int c) { return observations_near.around(r, c, radius) > 0; };
 
   std::vector<double> anomaly(cells, 0.0), target(cells, 0.0);
   std::vector<double> bin_sum(bin_cells), bin_weight(bin_cells), bin_mean(bin_cells);
@@ -159,8 +174,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   std::vector<std::uint8_t> rejected(cells, 0);
   // One solver workspace for both solves: it keeps its buffers, grown to the larger shape, and
   // holds nothing from one solve to the next.
-  // The solves' vectors in single precision (dct_pls.hpp) where the tolerance is within its reach.
-  const bool single_precision = options_.spacetime_tolerance >= single_precision_tolerance;
+  const bool single_precision = solves_in_single_precision(options_.spacetime_tolerance);
   detail::PlsWorkspace workspace;
   workspace.reserve(cells, single_precision);
   detail::PlsSettings climate_settings{options_.spacetime_climate_smoothing,
@@ -249,32 +263,24 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     });
     // Within-pixel variance (pooled), and the variance between the pixels' means beyond their
     // noise [M83], over each pixel's window: box sums of per-pixel terms by summed-area tables.
-    enum Term { squares, dof, counted, mean, mean_squared, inverse_weight, terms };
-    std::vector<double> table(std::size_t(terms) * (rows + 1) * (cols + 1), 0.0);
-    auto at = [&](int term, int r, int c) -> double& {
-      return table[(std::size_t(term) * (rows + 1) + r) * (cols + 1) + c];
-    };
-    for (int r = 0; r < rows; ++r)
-      for (int c = 0; c < cols; ++c) {
-        const std::size_t p = std::size_t(r) * cols + c;
-        const bool enough = pixel_weight[p] >= 3;
-        const double m = enough ? level[p] / pixel_weight[p] : 0.0;
-        const double values[terms] = {pixel_squares[p], std::max(0.0, pixel_weight[p] - 1.0),
-                                      enough ? 1.0 : 0.0, m, m * m,
-                                      enough ? 1.0 / pixel_weight[p] : 0.0};
-        for (int k = 0; k < terms; ++k)
-          at(k, r + 1, c + 1) = values[k] + at(k, r, c + 1) + at(k, r + 1, c) - at(k, r, c);
-      }
+    auto has_mean = [&](std::size_t p) { return pixel_weight[p] >= 3; };
+    auto mean_of = [&](std::size_t p) { return has_mean(p) ? level[p] / pixel_weight[p] : 0.0; };
+    const WindowSums squares(rows, cols, [&](std::size_t p) { return pixel_squares[p]; });
+    const WindowSums dof(rows, cols, [&](std::size_t p) { return std::max(0.0, pixel_weight[p] - 1.0); });
+    const WindowSums counted(rows, cols, [&](std::size_t p) { return has_mean(p) ? 1.0 : 0.0; });
+    const WindowSums means(rows, cols, mean_of);
+    const WindowSums squared_means(rows, cols, [&](std::size_t p) { return mean_of(p) * mean_of(p); });
+    const WindowSums inverse_weights(
+        rows, cols, [&](std::size_t p) { return has_mean(p) ? 1.0 / pixel_weight[p] : 0.0; });
     each_pixel([&](std::size_t p) {
-      const int r = int(p / cols), c = int(p % cols);
-      const int r0 = std::max(0, r - components_window), r1 = std::min(rows, r + components_window + 1);
-      const int c0 = std::max(0, c - components_window), c1 = std::min(cols, c + components_window + 1);
-      double box[terms];
-      for (int k = 0; k < terms; ++k) box[k] = at(k, r1, c1) - at(k, r0, c1) - at(k, r1, c0) + at(k, r0, c0);
-      const double within = box[dof] > 0 ? box[squares] / box[dof] : 0.0;
-      const double n = std::round(box[counted]);
-      between[p] = n > 1 ? std::max(0.0, (box[mean_squared] - box[mean] * box[mean] / n) / (n - 1) -
-                                             within * box[inverse_weight] / n)
+      const int r = int(p / cols), c = int(p % cols), window = components_window;
+      const double squares_sum = squares.around(r, c, window), dof_sum = dof.around(r, c, window);
+      const double mean_sum = means.around(r, c, window);
+      const double within = dof_sum > 0 ? squares_sum / dof_sum : 0.0;
+      const double n = std::round(counted.around(r, c, window));
+      between[p] = n > 1 ? std::max(0.0, (squared_means.around(r, c, window) - mean_sum * mean_sum / n) /
+                                                 (n - 1) -
+                                             within * inverse_weights.around(r, c, window) / n)
                          : 0.0;
       // Bounded so that neither extreme (no pooling, complete pooling) is reached where too few
       // pixels estimate the two variances.
