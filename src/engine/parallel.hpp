@@ -12,6 +12,7 @@
 #include <tbb/task_arena.h>
 
 #include <algorithm>
+#include <array>
 #include <cstddef>
 #include <vector>
 
@@ -41,6 +42,20 @@ double deterministic_sum(std::size_t n, std::size_t chunk, F&& partial) {
   });
   double sum = 0;
   for (double v : parts) sum += v;
+  return sum;
+}
+
+/// The same for N sums at once: partial returns std::array<double, N>.
+template <std::size_t N, typename F>
+std::array<double, N> deterministic_sums(std::size_t n, std::size_t chunk, F&& partial) {
+  const std::size_t chunks = (n + chunk - 1) / chunk;
+  std::vector<std::array<double, N>> parts(chunks);
+  parallel_ranges(chunks, 1, [&](std::size_t a, std::size_t b) {
+    for (std::size_t k = a; k < b; ++k) parts[k] = partial(k * chunk, std::min(n, (k + 1) * chunk));
+  });
+  std::array<double, N> sum{};
+  for (const auto& part : parts)
+    for (std::size_t j = 0; j < N; ++j) sum[j] += part[j];
   return sum;
 }
 

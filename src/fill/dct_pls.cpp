@@ -3,6 +3,7 @@
 #include <fftw3.h>
 
 #include <algorithm>
+#include <array>
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
@@ -699,21 +700,15 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
   ws.residual.resize(n);
   ws.direction.resize(n);
   ws.direction_spectrum.resize(n);
-  ws.preconditioned.resize(n);
   ws.product.resize(n);
   Real* r_hat = ws.residual.data();            // the residual's spectrum
   Real* d = ws.direction.data();               // the direction, on the slots with data
   Real* d_hat = ws.direction_spectrum.data();  // its spectrum
-  Real* q_hat = ws.preconditioned.data();      // M r, as a spectrum
-  Real* ad_hat = ws.product.data();            // (W + P) d, as a spectrum
+  // (W + P) d as a spectrum; once the residual is updated from it, M r (as a spectrum) in its
+  // place, so that a frequency's rows are read and written in one pass.
+  Real* ad_hat = ws.product.data();
+  Real* q_hat = ad_hat;
   auto in_chunks = [&](auto&& body) { parallel_ranges(n, vector_chunk, body); };
-  auto dot = [&](const Real* a, const Real* b) {
-    return deterministic_sum(n, vector_chunk, [&](std::size_t lo, std::size_t hi) {
-      double sum = 0;
-      for (std::size_t i = lo; i < hi; ++i) sum += double(a[i]) * double(b[i]);
-      return sum;
-    });
-  };
   // The weights read in each iteration, in Real.
   const Real* weight = nullptr;
   if constexpr (std::is_same_v<Real, double>) {
@@ -748,41 +743,60 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
   }));
   if (b_norm == 0) b_norm = 1;
   plans.forward_space(shape, r_hat, data_runs);
-  each_frequency([&](std::size_t f) {
-    Real* row = r_hat + f * nt;
-    to_orthonormal(f, row);
-    for (int t = 0; t < nt; ++t) q_hat[f * nt + t] = 0;
-    add_penalty(f, ad_hat + f * nt, q_hat + f * nt);
-    for (int t = 0; t < nt; ++t) row[t] -= q_hat[f * nt + t];
+  parallel_ranges(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
+    std::vector<Real> penalty(nt);
+    for (std::size_t f = a; f < e; ++f) {
+      Real* row = r_hat + f * nt;
+      to_orthonormal(f, row);
+      std::fill(penalty.begin(), penalty.end(), Real(0));
+      add_penalty(f, ad_hat + f * nt, penalty.data());
+      for (int t = 0; t < nt; ++t) row[t] -= penalty[t];
+    }
   });
   // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
   auto over_frequencies = [&](auto&& body) {
     return deterministic_sum_of(frequencies, frequency_grain, body);
   };
-  // q_hat <- M r_hat, one banded solve per spatial frequency (in double, a group at a time);
-  // returns r_hat . q_hat, added frequency by frequency in order.
-  auto precondition = [&] {
-    return deterministic_sum(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
-      std::vector<double> x(std::size_t(nt) * lanes);
-      double total = 0;
-      for (std::size_t f0 = a; f0 < e; f0 += lanes) {
-        const int used = int(std::min<std::size_t>(lanes, frequencies - f0));
-        for (int k = 0; k < lanes; ++k)
-          for (int t = 0; t < nt; ++t)
-            x[std::size_t(t) * lanes + k] = k < used ? double(r_hat[(f0 + k) * nt + t]) : 0.0;
-        solve_group(f0 / lanes, x.data());
-        for (int k = 0; k < used; ++k) {
-          const Real* r = r_hat + (f0 + k) * nt;
-          Real* q = q_hat + (f0 + k) * nt;
-          double sum = 0;
-          for (int t = 0; t < nt; ++t) {
-            q[t] = Real(x[std::size_t(t) * lanes + k]);
-            sum += double(r[t]) * double(q[t]);
-          }
-          total += sum;
-        }
+  // q_hat <- M r_hat for the frequencies of the group starting at f0, by their banded solves in
+  // double (x: room for nt x lanes values); `update(f)`, if given, first brings frequency f's
+  // rows up to date. Returns (r_hat . r_hat, r_hat . q_hat) over the group.
+  auto precondition_group = [&](std::size_t f0, double* x, auto&& update) {
+    const int used = int(std::min<std::size_t>(lanes, frequencies - f0));
+    double rr_sum = 0, rq_sum = 0;
+    for (int k = 0; k < lanes; ++k) {
+      if (k >= used) {
+        for (int t = 0; t < nt; ++t) x[std::size_t(t) * lanes + k] = 0.0;
+        continue;
       }
-      return total;
+      update(f0 + k);
+      const Real* r = r_hat + (f0 + k) * nt;
+      for (int t = 0; t < nt; ++t) {
+        rr_sum += double(r[t]) * double(r[t]);
+        x[std::size_t(t) * lanes + k] = double(r[t]);
+      }
+    }
+    solve_group(f0 / lanes, x);
+    for (int k = 0; k < used; ++k) {
+      const Real* r = r_hat + (f0 + k) * nt;
+      Real* q = q_hat + (f0 + k) * nt;
+      for (int t = 0; t < nt; ++t) {
+        q[t] = Real(x[std::size_t(t) * lanes + k]);
+        rq_sum += double(r[t]) * double(q[t]);
+      }
+    }
+    return std::array<double, 2>{rr_sum, rq_sum};
+  };
+  // Over all groups, in pieces of whole groups added in order.
+  auto precondition = [&](auto&& update) {
+    return deterministic_sums<2>(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
+      std::vector<double> x(std::size_t(nt) * lanes);
+      std::array<double, 2> sums{0.0, 0.0};
+      for (std::size_t f0 = a; f0 < e; f0 += lanes) {
+        const auto group = precondition_group(f0, x.data(), update);
+        sums[0] += group[0];
+        sums[1] += group[1];
+      }
+      return sums;
     });
   };
   // d_hat <- q_hat + beta d_hat (q_hat alone on the first), and d <- its slots with data in
@@ -800,10 +814,11 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
   };
   // Two 2-D transforms per iteration: the residual lives in the spectral domain (the dot
   // products are the same in both, the transform being orthonormal), so (W + P) d needs the
-  // spectrum of W d only, and the direction goes back to space once for W d and z.
-  double rq = precondition();
+  // spectrum of W d only, and the direction goes back to space once for W d and z. The updates
+  // of z and r, the preconditioner and the next direction's dot products are one pass over each
+  // frequency's rows.
+  auto [rr, rq] = precondition([](std::size_t) {});
   next_direction(0.0, true);
-  double rr = dot(r_hat, r_hat);
   for (int it = 0; it < settings.max_iterations; ++it) {
     result.relative_residual = std::sqrt(rr) / b_norm;
     if (result.relative_residual <= settings.tolerance) {
@@ -825,19 +840,19 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
     });
     if (!(dad > 0)) break;
     const double alpha = rq / dad;
-    rr = deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
-      double sum = 0;
-      std::size_t t = a % std::size_t(nt);
-      for (std::size_t i = a; i < e; ++i) {
-        z[i] += alpha * (slot_has_data[t] ? d[i] : d_hat[i]);
-        r_hat[i] = Real(r_hat[i] - alpha * ad_hat[i]);
-        sum += double(r_hat[i]) * double(r_hat[i]);
-        if (++t == std::size_t(nt)) t = 0;
+    const auto [rr_next, rq_next] = precondition([&](std::size_t f) {
+      double* z_row = z.data() + f * nt;
+      const Real* d_row = d + f * nt;
+      const Real* d_hat_row = d_hat + f * nt;
+      const Real* ad_row = ad_hat + f * nt;
+      Real* r_row = r_hat + f * nt;
+      for (int t = 0; t < nt; ++t) {
+        z_row[t] += alpha * (slot_has_data[t] ? d_row[t] : d_hat_row[t]);
+        r_row[t] = Real(r_row[t] - alpha * ad_row[t]);
       }
-      return sum;
     });
-    const double rq_next = precondition();
     const double beta = rq_next / rq;
+    rr = rr_next;
     rq = rq_next;
     next_direction(beta, false);
     result.iterations = it + 1;

@@ -183,10 +183,10 @@ struct PlsResult {
 /// One precision's vectors of a solve.
 template <typename Real>
 struct PlsBuffers {
-  BasicDctBuffer<Real> residual, direction, direction_spectrum, preconditioned, product, weight;
+  BasicDctBuffer<Real> residual, direction, direction_spectrum, product, weight;
   std::vector<Real> factor_d, factor_l1, factor_l2;  // the preconditioner's LDL^T factors
   void reserve(std::size_t n) {
-    for (auto* b : {&residual, &direction, &direction_spectrum, &preconditioned, &product})
+    for (auto* b : {&residual, &direction, &direction_spectrum, &product})
       b->resize(std::max(n, b->size()));
     // A double solve reads the caller's weights; a single one a copy in its own precision.
     if constexpr (!std::is_same_v<Real, double>) weight.resize(std::max(n, weight.size()));
