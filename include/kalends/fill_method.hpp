@@ -102,10 +102,12 @@ struct MethodOptions {
   double spacetime_season_smoothing = 1.0;
   int spacetime_halo = 32;              // pixels of context on each side of a block
   int spacetime_neighbour_radius = 6;   // analogue neighbours; 0 = the smooth model alone
-  // Relative residual of the conjugate-gradient solves. 1e-5 since version 0.3.4: at 1e-4 a
-  // 512 x 512 x 46 stack in 4 blocks and in 1 differed by up to 0.023 (0.0021 at 1e-5; the
-  // issue's limit is 0.004), the smoothest components of a large block being the last to settle.
-  double spacetime_tolerance = 1e-5;
+  // Relative residual of the conjugate-gradient solves; their coarse-grid starts are solved to
+  // a tenth of it (detail::PlsSettings). At 1e-4 with those starts a 512 x 512 x 46 stack in 4
+  // blocks and in 1 differs by up to 0.0008 (the limit is 0.004); without them
+  // (version 0.3.4) the smoothest components of a large block were the last to settle and
+  // needed 1e-5 (0.0021; 0.023 at 1e-4).
+  double spacetime_tolerance = 1e-4;
   // FFTW planning: "auto" times the transforms once per shape and keeps the result in the user
   // cache (see detail::default_wisdom_file), a path keeps it there, "none" plans by estimate.
   std::string spacetime_fft_wisdom = "auto";

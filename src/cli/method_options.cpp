@@ -72,8 +72,8 @@ void add_method_options(CLI::App* sub, MethodOptions& m, MethodOptionTexts& t) {
                   "a gap; 0 = the smooth model alone")
       ->capture_default_str();
   sub->add_option("--tolerance", m.spacetime_tolerance,
-                  "Spacetime method: relative residual at which the solver stops (1e-5 and coarser: "
-                  "solved in single precision)")
+                  "Spacetime method: relative residual at which the solver stops (its coarse-grid "
+                  "starts: a tenth of it; 1e-5 and coarser: solved in single precision)")
       ->capture_default_str();
   sub->add_option("--fft-wisdom", m.spacetime_fft_wisdom,
                   "Spacetime method: auto = time the transforms once per block shape and keep the "

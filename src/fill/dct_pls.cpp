@@ -537,11 +537,11 @@ namespace {
 
 // The solve with its vectors and the preconditioner's stored factors in precision Real
 // (PlsSettings::single_precision). Whatever Real, the factorisation, the banded solves, the dot
-// products and z are computed in double.
+// products and z are computed in double. `rhs`, when given, replaces W y (y is then not read).
 template <typename Real>
 PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span<const double> y,
                        std::span<const double> w, const PlsSettings& settings, std::span<double> z,
-                       PlsBuffers<Real>& ws) {
+                       PlsBuffers<Real>& ws, const double* rhs = nullptr) {
   const int n0 = shape[0], n1 = shape[1], nt = shape[2];
   const std::size_t frequencies = std::size_t(n0) * n1;
   const std::size_t n = frequencies * nt;
@@ -735,24 +735,120 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
   double b_norm = std::sqrt(deterministic_sum(n, vector_chunk, [&](std::size_t a, std::size_t e) {
     double sum = 0;
     for (std::size_t i = a; i < e; ++i) {
-      const double b = w[i] > 0 ? w[i] * y[i] : 0.0;
+      const double b = rhs ? rhs[i] : w[i] > 0 ? w[i] * y[i] : 0.0;
       sum += b * b;
-      r_hat[i] = Real(w[i] > 0 ? b - w[i] * z[i] : 0.0);
+      r_hat[i] = Real(w[i] > 0 ? b - w[i] * z[i] : b);
     }
     return sum;
   }));
   if (b_norm == 0) b_norm = 1;
-  plans.forward_space(shape, r_hat, data_runs);
+  // A right-hand side of the caller's (a coarse grid's residual) may have values on every slot.
+  plans.forward_space(shape, r_hat, rhs ? std::span<const SlotRun>(&all_slots, 1)
+                                        : std::span<const SlotRun>(data_runs));
   parallel_ranges(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
     std::vector<Real> penalty(nt);
     for (std::size_t f = a; f < e; ++f) {
       Real* row = r_hat + f * nt;
-      to_orthonormal(f, row);
+      if (rhs)
+        for (int t = 0; t < nt; ++t) row[t] *= root_factor[f];
+      else
+        to_orthonormal(f, row);
       std::fill(penalty.begin(), penalty.end(), Real(0));
       add_penalty(f, ad_hat + f * nt, penalty.data());
       for (int t = 0; t < nt; ++t) row[t] -= penalty[t];
     }
   });
+  // The start, corrected on a coarser grid [B77; BHM00, ch. 3]: the residual equation
+  // (W + P) e = r restricted to a grid of half the resolution in space (2 x 2 means), with the
+  // weights' means, s_space / 16 (the second differences of a grid twice as coarse are 4 times
+  // larger) and s_time as it is, solved by this same solve (itself corrected on a coarser grid,
+  // down to 16 px), then interpolated bilinearly and added. The smooth parts of the solution,
+  // the values deep inside long gaps of many pixels, are the ones this preconditioner resolves
+  // slowly; solved tightly on the coarse grids, where they cost a quarter or less per iteration,
+  // the fine iterations are left with the detail.
+  if (settings.coarse_start && n0 >= 32 && n1 >= 32) {
+    // r in space, on every slot (in d, free until the first direction).
+    parallel_ranges(frequencies, frequency_grain, [&](std::size_t a, std::size_t e) {
+      for (std::size_t f = a; f < e; ++f)
+        for (int t = 0; t < nt; ++t) d[f * nt + t] = Real(r_hat[f * nt + t] * back_factor[f]);
+    });
+    plans.inverse_space(shape, d, {&all_slots, 1});
+    const int m0 = (n0 + 1) / 2, m1 = (n1 + 1) / 2;
+    const std::size_t coarse_cells = std::size_t(m0) * m1 * nt;
+    std::vector<double> coarse_r(coarse_cells, 0.0), coarse_w(coarse_cells, 0.0), coarse_e(coarse_cells, 0.0);
+    parallel_ranges(std::size_t(m0), 1, [&](std::size_t a, std::size_t e) {
+      for (int i = int(a); i < int(e); ++i)
+        for (int j = 0; j < m1; ++j) {
+          double* r_sum = &coarse_r[(std::size_t(i) * m1 + j) * nt];
+          double* w_sum = &coarse_w[(std::size_t(i) * m1 + j) * nt];
+          int count = 0;
+          for (int fi = 2 * i; fi < std::min(n0, 2 * i + 2); ++fi)
+            for (int fj = 2 * j; fj < std::min(n1, 2 * j + 2); ++fj, ++count)
+              for (int t = 0; t < nt; ++t) {
+                r_sum[t] += d[(std::size_t(fi) * n1 + fj) * nt + t];
+                w_sum[t] += w[(std::size_t(fi) * n1 + fj) * nt + t];
+              }
+          for (int t = 0; t < nt; ++t) {
+            r_sum[t] /= count;
+            w_sum[t] /= count;
+          }
+        }
+    });
+    PlsSettings coarse = settings;
+    coarse.s_space = settings.s_space / 16.0;
+    coarse.tolerance = settings.tolerance * settings.coarse_tightening;
+    coarse.coarse_tightening = 1.0;  // coarser grids: the same tolerance
+    PlsBuffers<Real> coarse_ws;
+    solve_pls_in(plans, {m0, m1, nt}, y, coarse_w, coarse, coarse_e, coarse_ws, coarse_r.data());
+    coarse_ws = {};
+    // e, interpolated bilinearly between the coarse cells' centres (constant beyond the outer
+    // ones), into d.
+    auto neighbours = [](int i, int m, int& low, int& high, double& low_weight) {
+      const double at = (i - 0.5) / 2.0;  // fine cell i's centre in coarse cells
+      low = int(std::floor(at));
+      low_weight = low + 1 - at;
+      high = std::min(m - 1, low + 1);
+      low = std::max(0, low);
+    };
+    parallel_ranges(std::size_t(n0), 1, [&](std::size_t a, std::size_t e) {
+      for (int i = int(a); i < int(e); ++i) {
+        int i0, i1;
+        double u;
+        neighbours(i, m0, i0, i1, u);
+        for (int j = 0; j < n1; ++j) {
+          int j0, j1;
+          double v;
+          neighbours(j, m1, j0, j1, v);
+          auto at = [&](int ci, int cj) { return &coarse_e[(std::size_t(ci) * m1 + cj) * nt]; };
+          const double *e00 = at(i0, j0), *e01 = at(i0, j1), *e10 = at(i1, j0), *e11 = at(i1, j1);
+          Real* out = d + (std::size_t(i) * n1 + j) * nt;
+          for (int t = 0; t < nt; ++t)
+            out[t] = Real(u * (v * e00[t] + (1 - v) * e01[t]) + (1 - u) * (v * e10[t] + (1 - v) * e11[t]));
+        }
+      }
+    });
+    // z += e and r -= (W + P) e: e's spectrum on every slot in d_hat (z's empty slots are
+    // spectra), that of W e in ad_hat.
+    in_chunks([&](std::size_t a, std::size_t e) {
+      for (std::size_t i = a; i < e; ++i) {
+        d_hat[i] = d[i];
+        ad_hat[i] = weight[i] * d[i];
+      }
+    });
+    plans.forward_space(shape, d_hat, {&all_slots, 1});
+    plans.forward_space(shape, ad_hat, data_runs);
+    each_frequency([&](std::size_t f) {
+      Real* e_hat = d_hat + f * nt;
+      Real* row = ad_hat + f * nt;
+      for (int t = 0; t < nt; ++t) e_hat[t] *= root_factor[f];
+      to_orthonormal(f, row);
+      add_penalty(f, e_hat, row);
+      for (int t = 0; t < nt; ++t) {
+        r_hat[f * nt + t] -= row[t];
+        z[f * nt + t] += slot_has_data[t] ? double(d[f * nt + t]) : double(e_hat[t]);
+      }
+    });
+  }
   // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
   auto over_frequencies = [&](auto&& body) {
     return deterministic_sum_of(frequencies, frequency_grain, body);

@@ -12,6 +12,11 @@
 //       93:216-231 (REDFT10 = DCT-II, REDFT01 = DCT-III, both unnormalised).
 // [HS52] Hestenes, M.R. & Stiefel, E. (1952), Methods of conjugate gradients for solving linear
 //       systems, J. Res. Natl. Bur. Stand. 49:409-436.
+// [B77] Brandt, A. (1977), Multi-level adaptive solutions to boundary-value problems, Math.
+//       Comput. 31:333-390 (nested iteration: a coarse grid's solution as the fine grid's start;
+//       pages from memory).
+// [BHM00] Briggs, W.L., Henson, V.E. & McCormick, S.F. (2000), A Multigrid Tutorial, 2nd ed.,
+//       SIAM (ch. 3: restriction by full weighting or means, bilinear interpolation).
 // [M80] Makhoul, J. (1980), A fast cosine transform in one and two dimensions, IEEE Trans.
 //       Acoust. Speech Signal Process. 28:27-34 (the DCT-II of even length N as a real FFT of
 //       the reordered sequence v(n) = x(2n), v(N-1-n) = x(2n+1), times exp(-i pi k / 2N); pages
@@ -172,6 +177,12 @@ struct PlsSettings {
   // double): half the memory traffic of an iteration's sweeps. The vectors carry about seven
   // digits; spacetime uses it for tolerances of 1e-5 and coarser.
   bool single_precision = false;
+  // Correct the start by the same problem on grids of half, a quarter, ... the resolution in
+  // space (nested iteration [B77], see the solve), each solved to tolerance x coarse_tightening.
+  // A 512 x 512 x 46 stack filled in 4 blocks and in 1 then agrees within 0.001 at a tolerance
+  // of 1e-4 (0.023 without), and its fill takes 18 s instead of 30 s at 1e-5 without.
+  bool coarse_start = true;
+  double coarse_tightening = 0.1;
 };
 
 struct PlsResult {

@@ -127,11 +127,13 @@ std::size_t SpacetimeMethod::scratch_bytes_per_pixel(const TimeGrid& grid) const
   std::vector<int> bins;
   const int n_bins = season_bins(grid, bins);
   // Per slot: doubles y, w, A, target, support, 4 analogue arrays and the completed field; the
-  // solver's 5 vectors and 3 factor bands (the climatology's solve shares them), in single
-  // precision with a copy of the weights (9 floats), else 8 doubles; a byte. Per bin 9 doubles.
-  // Per pixel 8 doubles: the variance components and their summed-area tables.
+  // solver's 4 vectors and 3 factor bands (the climatology's solve shares them), in single
+  // precision with a copy of the weights (8 floats), else 7 doubles, and while its coarse-grid
+  // start runs, the same plus 3 doubles for a quarter of the cells, a sixteenth, ... (about 5
+  // floats or 4 doubles more); a byte. Per bin 9 doubles. Per pixel 8 doubles: the variance
+  // components and their summed-area tables.
   const bool single = solves_in_single_precision(options_.spacetime_tolerance);
-  const std::size_t solver = single ? 9 * sizeof(float) : 8 * sizeof(double);
+  const std::size_t solver = single ? 13 * sizeof(float) : 11 * sizeof(double);
   return (10 * sizeof(double) + solver) * std::size_t(grid.size) +
          sizeof(double) * (9 * std::size_t(n_bins) + 8) +
          std::size_t(grid.size) + 16;

@@ -232,3 +232,51 @@ TEST_CASE("the single-precision solve agrees with the double one and does not de
   REQUIRE(worst < 1e-4);
   REQUIRE(worst > 0);  // it is the single-precision path
 }
+
+TEST_CASE("the coarse-grid start changes where the solve starts, not its solution") {
+  // A smooth field with a 40 x 40 px hole over half the slots (the values deep inside it are
+  // the smooth parts the coarse grids resolve), scattered gaps and two slots without data; odd
+  // and even lengths so that the coarse grids have edge cells of one fine row.
+  const Shape3 shape{96, 83, 24};
+  const std::size_t n = std::size_t(96) * 83 * 24;
+  const auto noise = random_values(n, 7), coin = random_values(n, 8);
+  std::vector<double> y(n), w(n);
+  for (int i = 0; i < 96; ++i)
+    for (int j = 0; j < 83; ++j)
+      for (int t = 0; t < 24; ++t) {
+        const std::size_t k = (std::size_t(i) * 83 + j) * 24 + t;
+        y[k] = std::sin(i / 9.0) * std::cos(j / 7.0) + 0.5 * std::sin(t / 3.0) + 0.1 * noise[k];
+        const bool hole = i >= 30 && i < 70 && j >= 20 && j < 60 && t >= 6 && t < 18;
+        w[k] = hole || coin[k] < -1.0 || t == 3 || t == 20 ? 0.0 : 1.0;
+      }
+  DctPlanCache plans;
+  auto run = [&](bool coarse, double tolerance, PlsResult& result) {
+    std::vector<double> z(n, 0.0);
+    PlsWorkspace ws;
+    PlsSettings settings{3.0, 0.3, tolerance, 2000, false, false};
+    settings.coarse_start = coarse;
+    result = solve_pls(plans, shape, y, w, settings, z, ws);
+    REQUIRE(result.converged);
+    return z;
+  };
+  PlsResult with, without;
+  const auto exact_with = run(true, 1e-11, with), exact_without = run(false, 1e-11, without);
+  double differs = 0;
+  for (std::size_t i = 0; i < n; ++i) differs = std::max(differs, std::abs(exact_with[i] - exact_without[i]));
+  REQUIRE(differs < 1e-7);
+  // At a loose tolerance the fine solve stops with the hole's inside closer to the solution with
+  // the coarse start than without, after fewer than half the iterations.
+  const auto loose_with = run(true, 1e-4, with), loose_without = run(false, 1e-4, without);
+  double error_with = 0, error_without = 0;
+  for (int i = 40; i < 60; ++i)
+    for (int j = 30; j < 50; ++j)
+      for (int t = 8; t < 16; ++t) {
+        const std::size_t k = (std::size_t(i) * 83 + j) * 24 + t;
+        error_with = std::max(error_with, std::abs(loose_with[k] - exact_with[k]));
+        error_without = std::max(error_without, std::abs(loose_without[k] - exact_with[k]));
+      }
+  CAPTURE(error_with, error_without, with.iterations, without.iterations);
+  // Measured: 0.0090 against 0.0157, after 15 iterations against 37.
+  REQUIRE(error_with < error_without);
+  REQUIRE(2 * with.iterations < without.iterations);
+}
