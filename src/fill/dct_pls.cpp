@@ -799,7 +799,7 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
     coarse.tolerance = settings.tolerance * settings.coarse_tightening;
     coarse.coarse_tightening = 1.0;  // coarser grids: the same tolerance
     PlsBuffers<Real> coarse_ws;
-    solve_pls_in(plans, {m0, m1, nt}, y, coarse_w, coarse, coarse_e, coarse_ws, coarse_r.data());
+    solve_pls_in(plans, {m0, m1, nt}, {}, coarse_w, coarse, coarse_e, coarse_ws, coarse_r.data());
     coarse_ws = {};
     // e, interpolated bilinearly between the coarse cells' centres (constant beyond the outer
     // ones), into d.
