@@ -79,11 +79,13 @@ class DctMatchesScipy(unittest.TestCase):
 
 class PlsMatchesDirectSolve(unittest.TestCase):
 
-    def check(self, shape, s_space, s_time, missing, seed, empty_slots=()):
+    def check(self, shape, s_space, s_time, missing, seed, empty_slots=(), hole=None):
         rng = np.random.default_rng(seed)
         y = kt.f32(rng.normal(size=shape) + np.linspace(0, 2, shape[-1]))
         w = (rng.random(shape) >= missing).astype(np.float64)
         w[..., list(empty_slots)] = 0.0
+        if hole is not None:
+            w[hole] = 0.0
         w[w > 0] = kt.f32(rng.uniform(0.3, 1.0, size=int(w.sum())))
         y_in = np.where(w > 0, y, np.nan)
         expected = direct_pls(y, w, s_space, s_time)
@@ -114,6 +116,13 @@ class PlsMatchesDirectSolve(unittest.TestCase):
         self.check((6, 5, 20), 3.0, 0.3, 0.3, 6, empty_slots=[0, 1, 2, 8, 9, 10, 11, 18, 19])
         self.check((7, 9, 13), 1.0, 2.0, 0.5, 7, empty_slots=[3, 5, 6, 12])
         self.check((1, 1, 15), 1.0, 5.0, 0.2, 8, empty_slots=[0, 7, 8, 14])
+
+    def test_large_holes_solved_from_coarse_grids(self):
+        # 32 px and more on both space axes: the solve starts from its coarse grids (a 20 x 19
+        # grid here, dct_pls.cpp), which must leave the solution the same. A hole of 20 x 18 px
+        # over five slots, scattered gaps and two slots without data.
+        hole = (slice(10, 30), slice(12, 30), slice(3, 8))
+        self.check((40, 37, 10), 3.0, 0.3, 0.3, 9, empty_slots=[0, 9], hole=hole)
 
     def test_fully_observed_small_smoothing_returns_input(self):
         # With w = 1 everywhere and s -> 0 the minimiser is y itself.
