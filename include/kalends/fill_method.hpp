@@ -104,7 +104,7 @@ struct MethodOptions {
   int spacetime_neighbour_radius = 6;   // analogue neighbours; 0 = the smooth model alone
   // Relative residual of the conjugate-gradient solves; their coarse-grid starts are solved to
   // a tenth of it (detail::PlsSettings). At 1e-4 with those starts a 512 x 512 x 46 stack in 4
-  // blocks and in 1 differs by up to 0.0008 (the limit is 0.004); without them
+  // blocks and in 1 differs by up to 0.001 (the limit is 0.004); without them
   // (version 0.3.4) the smoothest components of a large block were the last to settle and
   // needed 1e-5 (0.0021; 0.023 at 1e-4).
   double spacetime_tolerance = 1e-4;

@@ -32,20 +32,8 @@ void parallel_ranges(std::size_t n, std::size_t grain, F&& f) {
   });
 }
 
-/// The sum over [0, n) of partial(begin, end) on chunks of `chunk`, added in chunk order.
-template <typename F>
-double deterministic_sum(std::size_t n, std::size_t chunk, F&& partial) {
-  const std::size_t chunks = (n + chunk - 1) / chunk;
-  std::vector<double> parts(chunks, 0.0);
-  parallel_ranges(chunks, 1, [&](std::size_t a, std::size_t b) {
-    for (std::size_t k = a; k < b; ++k) parts[k] = partial(k * chunk, std::min(n, (k + 1) * chunk));
-  });
-  double sum = 0;
-  for (double v : parts) sum += v;
-  return sum;
-}
-
-/// The same for N sums at once: partial returns std::array<double, N>.
+/// N sums over [0, n) at once: partial(begin, end) returns std::array<double, N> for a chunk of
+/// `chunk`; the chunks are added in order.
 template <std::size_t N, typename F>
 std::array<double, N> deterministic_sums(std::size_t n, std::size_t chunk, F&& partial) {
   const std::size_t chunks = (n + chunk - 1) / chunk;
@@ -57,6 +45,14 @@ std::array<double, N> deterministic_sums(std::size_t n, std::size_t chunk, F&& p
   for (const auto& part : parts)
     for (std::size_t j = 0; j < N; ++j) sum[j] += part[j];
   return sum;
+}
+
+/// The sum over [0, n) of partial(begin, end) on chunks of `chunk`, added in chunk order.
+template <typename F>
+double deterministic_sum(std::size_t n, std::size_t chunk, F&& partial) {
+  return deterministic_sums<1>(n, chunk, [&](std::size_t a, std::size_t b) {
+    return std::array<double, 1>{partial(a, b)};
+  })[0];
 }
 
 /// body(k) for every k in [0, n), in parallel pieces of at least `grain`.
