@@ -17,8 +17,17 @@ Window area_of(int width, int height, const std::optional<Window>& region, const
   return r;
 }
 
+namespace {
+
+// The pixels a block of bw x bh px reads with its halo, clipped to the raster.
+std::int64_t clipped_read_pixels(int raster_width, int raster_height, int halo, int bw, int bh) {
+  return std::int64_t(std::min(raster_width, bw + 2 * halo)) * std::min(raster_height, bh + 2 * halo);
+}
+
+}  // namespace
+
 std::int64_t BlockPlan::smallest_read_pixels(int width, int height, int halo, int tile) {
-  return std::int64_t(std::min(width, tile + 2 * halo)) * std::min(height, tile + 2 * halo);
+  return clipped_read_pixels(width, height, halo, tile, tile);
 }
 
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
@@ -29,7 +38,7 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
   const Window area = area_of(raster_width, raster_height, region, "region");
   const int width = area.width, height = area.height;
   auto read_pixels = [&](int bw, int bh) {
-    return std::int64_t(std::min(raster_width, bw + 2 * halo)) * std::min(raster_height, bh + 2 * halo);
+    return clipped_read_pixels(raster_width, raster_height, halo, bw, bh);
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
   if (smallest_read_pixels(raster_width, raster_height, halo, tile) > max_read_pixels)

@@ -758,6 +758,25 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
       for (int t = 0; t < nt; ++t) row[t] -= penalty[t];
     }
   });
+  // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
+  auto over_frequencies = [&](auto&& body) {
+    return deterministic_sum_of(frequencies, frequency_grain, body);
+  };
+  // ad_hat <- (W + P) x as an orthonormal spectrum, from x on the slots with data in space (in
+  // d) and its spectrum on every slot (in d_hat): W x needs a transform, P x none. One pass per
+  // frequency finishes its row, then `row_done(f)` (its term is summed in order and returned).
+  auto apply_operator = [&](auto&& row_done) {
+    in_chunks([&](std::size_t a, std::size_t e) {
+      for (std::size_t i = a; i < e; ++i) ad_hat[i] = weight[i] * d[i];  // 0 on the empty slots
+    });
+    plans.forward_space(shape, ad_hat, data_runs);
+    return over_frequencies([&](std::size_t f) {
+      Real* row = ad_hat + f * nt;
+      to_orthonormal(f, row);
+      add_penalty(f, d_hat + f * nt, row);
+      return row_done(f);
+    });
+  };
   // The start, corrected on a coarser grid [B77; BHM00, ch. 3]: the residual equation
   // (W + P) e = r restricted to a grid of half the resolution in space (2 x 2 means), with the
   // weights' means, s_space / 16 (the second differences of a grid twice as coarse are 4 times
@@ -827,32 +846,22 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
         }
       }
     });
-    // z += e and r -= (W + P) e: e's spectrum on every slot in d_hat (z's empty slots are
-    // spectra), that of W e in ad_hat.
-    in_chunks([&](std::size_t a, std::size_t e) {
-      for (std::size_t i = a; i < e; ++i) {
-        d_hat[i] = d[i];
-        ad_hat[i] = weight[i] * d[i];
-      }
-    });
+    // e's spectrum on every slot in d_hat (z's empty slots are spectra); then z += e and
+    // r -= (W + P) e.
+    in_chunks([&](std::size_t a, std::size_t e) { std::copy(d + a, d + e, d_hat + a); });
     plans.forward_space(shape, d_hat, {&all_slots, 1});
-    plans.forward_space(shape, ad_hat, data_runs);
     each_frequency([&](std::size_t f) {
-      Real* e_hat = d_hat + f * nt;
-      Real* row = ad_hat + f * nt;
-      for (int t = 0; t < nt; ++t) e_hat[t] *= root_factor[f];
-      to_orthonormal(f, row);
-      add_penalty(f, e_hat, row);
+      for (int t = 0; t < nt; ++t) d_hat[f * nt + t] *= root_factor[f];
+    });
+    apply_operator([&](std::size_t f) {
       for (int t = 0; t < nt; ++t) {
-        r_hat[f * nt + t] -= row[t];
-        z[f * nt + t] += slot_has_data[t] ? double(d[f * nt + t]) : double(e_hat[t]);
+        const std::size_t i = f * nt + t;
+        r_hat[i] -= ad_hat[i];
+        z[i] += slot_has_data[t] ? double(d[i]) : double(d_hat[i]);
       }
+      return 0.0;
     });
   }
-  // Sums over the frequencies in pieces fixed by the grain alone: the same whatever the threads.
-  auto over_frequencies = [&](auto&& body) {
-    return deterministic_sum_of(frequencies, frequency_grain, body);
-  };
   // q_hat <- M r_hat for the frequencies of the group starting at f0, by their banded solves in
   // double (x: room for nt x lanes values); `update(f)`, if given, first brings frequency f's
   // rows up to date. Returns (r_hat . r_hat, r_hat . q_hat) over the group.
@@ -921,17 +930,10 @@ PlsResult solve_pls_in(const DctPlanCache& plans, const Shape3& shape, std::span
       result.converged = true;
       break;
     }
-    in_chunks([&](std::size_t a, std::size_t e) {
-      for (std::size_t i = a; i < e; ++i) ad_hat[i] = weight[i] * d[i];  // 0 on the empty slots
-    });
-    plans.forward_space(shape, ad_hat, data_runs);
-    // One pass per frequency: to the orthonormal spectrum, plus P d, and d . (W + P) d.
-    const double dad = over_frequencies([&](std::size_t f) {
-      Real* row = ad_hat + f * nt;
-      to_orthonormal(f, row);
-      add_penalty(f, d_hat + f * nt, row);
+    // (W + P) d and d . (W + P) d, in the same pass.
+    const double dad = apply_operator([&](std::size_t f) {
       double sum = 0;
-      for (int t = 0; t < nt; ++t) sum += double(d_hat[f * nt + t]) * double(row[t]);
+      for (int t = 0; t < nt; ++t) sum += double(d_hat[f * nt + t]) * double(ad_hat[f * nt + t]);
       return sum;
     });
     if (!(dad > 0)) break;
