@@ -210,8 +210,16 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   // round before: the others were already tried, and whether a pair qualifies depends only on
   // observed dates. `near_new` counts, per cell, the window's cells predicted last round.
   std::vector<std::uint16_t> near_new;
+  // For the same reason a pending gap (p, s) of a later round needs only the neighbours whose
+  // value at s is new (predicted last round): every pair with an older value there was tried
+  // before and failed. `fresh` marks last round's predictions.
+  std::vector<std::uint8_t> fresh;
   for (int round = 0; round < settings.rounds; ++round) {
-    if (round > 0) count_in_windows(rows, cols, slots, radius, predicted, near_new);
+    if (round > 0) {
+      count_in_windows(rows, cols, slots, radius, predicted, near_new);
+      fresh.assign(cells, 0);
+      for (std::size_t i : predicted) fresh[i] = 1;
+    }
     predicted.clear();
     // Rows in parallel: a round reads only cells known before it and writes only p's own
     // unknown cells, so the rows are independent.
@@ -246,10 +254,11 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
               const std::size_t q = std::size_t(rr) * cols + cc;
               if (q == p || observations[q] == 0) continue;
               const double* vq = &value[q * slots];
+              const std::uint8_t* new_at_q = round > 0 ? &fresh[q * slots] : nullptr;
               usable.clear();
               usable_bin.clear();
               for (int s : pending)
-                if (!std::isnan(vq[s])) {
+                if (new_at_q ? new_at_q[s] != 0 : !std::isnan(vq[s])) {
                   usable.push_back(s);
                   usable_bin.push_back(grid.bin_of_slot[std::size_t(s)]);
                 }
