@@ -36,6 +36,11 @@ struct BlockInput {
   std::span<const float> series_weights(std::int64_t pixel) const {
     return weights.subspan(pixel * grid->size, grid->size);
   }
+  /// The read pixel of a core pixel (each row-major in its own window).
+  std::int64_t read_pixel_of(std::int64_t core_pixel) const {
+    const std::int64_t cy = core_pixel / core.width, cx = core_pixel % core.width;
+    return (cy + core.y - read.y) * read.width + (cx + core.x - read.x);
+  }
 };
 
 /// Results for the core pixels, pixel-major like the input.
@@ -49,6 +54,16 @@ struct BlockOutput {
   // Core pixels with observations that the method could not fit, by the reason it gives (a
   // sentence a user can act on); the engine sums them for the summary.
   std::map<std::string, std::int64_t> not_fitted;
+  /// One core pixel's results, `slots` long.
+  struct Series {
+    std::span<float> fitted, sd;
+    std::span<std::uint8_t> rejected;
+  };
+  Series series(std::int64_t core_pixel, int slots) {
+    const std::size_t at = std::size_t(core_pixel) * std::size_t(slots), n = std::size_t(slots);
+    return {std::span(fitted).subspan(at, n), std::span(sd).subspan(at, n),
+            std::span(rejected).subspan(at, n)};
+  }
   void resize(std::size_t n) {
     fitted.assign(n, 0.0f);
     sd.assign(n, 0.0f);

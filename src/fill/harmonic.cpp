@@ -142,22 +142,16 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const std::string ill_conditioned = fmt::format(
       "observations cover too little of the year to determine {} harmonics; try fewer with --harmonics",
       options_.harmonics);
-  for (int cy = 0; cy < in.core.height; ++cy)
-    for (int cx = 0; cx < in.core.width; ++cx) {
-      const std::int64_t core_pixel = std::int64_t(cy) * in.core.width + cx;
-      const std::int64_t read_pixel =
-          std::int64_t(cy + in.core.y - in.read.y) * in.read.width + (cx + in.core.x - in.read.x);
-      const std::size_t at = std::size_t(core_pixel) * n;
-      const auto fitted = std::span(out.fitted).subspan(at, n);
-      const auto sd = std::span(out.sd).subspan(at, n);
-      const auto rejected = std::span(out.rejected).subspan(at, n);
-      const SeriesFit f =
-          fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
-      if (!f.fitted && f.observations > 0)
-        ++out.not_fitted[f.ill_conditioned ? ill_conditioned : too_few];
-      detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
-                         options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
-    }
+  for (std::int64_t core_pixel = 0; core_pixel < in.core.pixels(); ++core_pixel) {
+    const std::int64_t read_pixel = in.read_pixel_of(core_pixel);
+    const auto [fitted, sd, rejected] = out.series(core_pixel, n);
+    const SeriesFit f =
+        fit(x, in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected);
+    if (!f.fitted && f.observations > 0)
+      ++out.not_fitted[f.ill_conditioned ? ill_conditioned : too_few];
+    detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
+                       options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
+  }
 }
 
 std::unique_ptr<FillMethod> make_harmonic(const MethodOptions& options) {

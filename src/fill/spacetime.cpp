@@ -341,10 +341,6 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   };
 
   const std::size_t core_pixels = std::size_t(in.core.pixels());
-  auto core_to_read = [&](std::size_t cp) {
-    const std::size_t cy = cp / in.core.width, cx = cp % in.core.width;
-    return (cy + in.core.y - in.read.y) * in.read.width + (cx + in.core.x - in.read.x);
-  };
   std::fill(out.rejected.begin(), out.rejected.end(), 0);
   bool any = false;
   for (int round = 0; round < backfitting_rounds; ++round)
@@ -462,7 +458,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const double lo = options_.clamp_min ? *options_.clamp_min : -INFINITY;
   const double hi = options_.clamp_max ? *options_.clamp_max : INFINITY;
   for (std::size_t cp = 0; cp < core_pixels; ++cp) {
-    const std::size_t p = core_to_read(cp);
+    const std::size_t p = std::size_t(in.read_pixel_of(std::int64_t(cp)));
     const int r = int(p / cols), c = int(p % cols);
     const bool fillable = reachable(r, c);
     for (int s = 0; s < n_slots; ++s) {
