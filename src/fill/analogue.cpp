@@ -363,6 +363,37 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
   });
 }
 
+void carry_nearest(int rows, int cols, std::span<const std::uint8_t> known,
+                   std::vector<double>& distance, std::vector<double>& carried) {
+  const std::size_t pixels = std::size_t(rows) * cols;
+  distance.resize(pixels);
+  carried.resize(pixels);
+  const double diagonal = std::sqrt(2.0);
+  for (std::size_t p = 0; p < pixels; ++p) {
+    distance[p] = known[p] ? 0.0 : INFINITY;
+    if (!known[p]) carried[p] = NAN;
+  }
+  auto relax = [&](int r, int c, int dr, int dc, double step) {
+    const int rr = r + dr, cc = c + dc;
+    if (rr < 0 || rr >= rows || cc < 0 || cc >= cols) return;
+    const std::size_t here = std::size_t(r) * cols + c, there = std::size_t(rr) * cols + cc;
+    if (distance[there] + step < distance[here]) {
+      distance[here] = distance[there] + step;
+      carried[here] = carried[there];
+    }
+  };
+  for (int r = 0; r < rows; ++r)
+    for (int c = 0; c < cols; ++c) {
+      relax(r, c, -1, 0, 1.0), relax(r, c, 0, -1, 1.0);
+      relax(r, c, -1, -1, diagonal), relax(r, c, -1, 1, diagonal);
+    }
+  for (int r = rows - 1; r >= 0; --r)
+    for (int c = cols - 1; c >= 0; --c) {
+      relax(r, c, 1, 0, 1.0), relax(r, c, 0, 1, 1.0);
+      relax(r, c, 1, 1, diagonal), relax(r, c, 1, -1, diagonal);
+    }
+}
+
 std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const double> y,
                                            std::span<const double> weight,
                                            std::span<const std::uint8_t> wanted,
@@ -374,43 +405,23 @@ std::vector<double> interpolation_variance(const CellGrid& grid, std::span<const
   bool any = false;
   for (std::size_t i = 0; i < cells && !any; ++i) any = wanted[i] && !std::isnan(field[i]);
   if (!any) return out;
-  // Distance to the nearest known cell, per date, kept in `out` for now: two-pass chamfer
-  // transform (weights 1 and sqrt 2; [B86]).
-  const double diagonal = std::sqrt(2.0), far = 1e9;
-  std::vector<double> distance(pixels), source(pixels);
-  std::vector<double> source_variance(cells, 0.0);
+  // Distance to the nearest known cell, per date, kept in `out` for now, and that cell's
+  // variance.
+  std::vector<double> distance(pixels), carried(pixels), source_variance(cells, 0.0);
+  std::vector<std::uint8_t> known(pixels);
   double farthest = 0;
   for (int s = 0; s < slots; ++s) {
     for (std::size_t p = 0; p < pixels; ++p) {
       const std::size_t i = p * slots + s;
-      const bool known = !wanted[i] && !std::isnan(field[i]);
-      distance[p] = known ? 0.0 : far;
-      source[p] = known ? known_variance[i] : 0.0;
+      known[p] = !wanted[i] && !std::isnan(field[i]);
+      carried[p] = known[p] ? known_variance[i] : 0.0;
     }
-    auto relax = [&](int r, int c, int dr, int dc, double step) {
-      const int rr = r + dr, cc = c + dc;
-      if (rr < 0 || rr >= rows || cc < 0 || cc >= cols) return;
-      const std::size_t here = std::size_t(r) * cols + c, there = std::size_t(rr) * cols + cc;
-      if (distance[there] + step < distance[here]) {
-        distance[here] = distance[there] + step;
-        source[here] = source[there];
-      }
-    };
-    for (int r = 0; r < rows; ++r)
-      for (int c = 0; c < cols; ++c) {
-        relax(r, c, -1, 0, 1.0), relax(r, c, 0, -1, 1.0);
-        relax(r, c, -1, -1, diagonal), relax(r, c, -1, 1, diagonal);
-      }
-    for (int r = rows - 1; r >= 0; --r)
-      for (int c = cols - 1; c >= 0; --c) {
-        relax(r, c, 1, 0, 1.0), relax(r, c, 0, 1, 1.0);
-        relax(r, c, 1, 1, diagonal), relax(r, c, 1, -1, diagonal);
-      }
+    carry_nearest(rows, cols, known, distance, carried);
     for (std::size_t p = 0; p < pixels; ++p) {
       const std::size_t i = p * slots + s;
-      if (!wanted[i] || std::isnan(field[i]) || distance[p] >= far) continue;
+      if (!wanted[i] || std::isnan(field[i]) || std::isinf(distance[p])) continue;
       out[i] = distance[p];
-      source_variance[i] = source[p];
+      source_variance[i] = carried[p];
       farthest = std::max(farthest, distance[p]);
     }
   }

@@ -444,6 +444,31 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       wanted[i] = 1;
     }
   }
+  // A gap beyond the rings' reach is no better known than the nearest cell the rings reached
+  // on its date: uncertainty does not fall deeper into a cloud. Without this its sd was too small
+  // (development masks: RMS of error / sd 1.18-1.29 for such cells 30-45 px from their date's
+  // nearest observation, 0.92-1.13 with it).
+  if (analogue_settings.radius > 0) {
+    const std::size_t pixels = std::size_t(rows) * cols;
+    std::vector<std::uint8_t> reached(pixels);
+    std::vector<double> distance, carried(pixels);
+    for (int s = 0; s < n_slots; ++s) {
+      bool any_beyond = false;
+      for (std::size_t p = 0; p < pixels; ++p) {
+        const std::size_t i = p * n_slots + s;
+        reached[p] = !std::isnan(analogue[i]);
+        carried[p] = reached[p] ? gap_variance[i] : 0.0;
+        any_beyond |= !reached[p] && observations[p] > 0 && !(weight[i] > 0);
+      }
+      if (!any_beyond) continue;
+      detail::carry_nearest(rows, cols, reached, distance, carried);
+      for (std::size_t p = 0; p < pixels; ++p) {
+        const std::size_t i = p * n_slots + s;
+        if (!reached[p] && observations[p] > 0 && !(weight[i] > 0) && !std::isnan(carried[p]))
+          gap_variance[i] = std::max(gap_variance[i], carried[p]);
+      }
+    }
+  }
   std::vector<double> spatial_variance;
   if (analogue_settings.radius > 0) {
     detail::fill_by_normalised_convolution(cell_grid, completed, wanted, convolution_scales,

@@ -188,3 +188,32 @@ TEST_CASE("interpolation variance is twice the semivariogram at the distance to 
     CHECK(with_source[(std::size_t(20) * n + 20) * slots] == Approx(2.0 * a * a * 36 / 4).epsilon(1e-9));
   }
 }
+
+TEST_CASE("carry_nearest gives each pixel the chamfer distance to the nearest known pixel and its value",
+          "[fill][analogue]") {
+  // Two known pixels on a 9 x 12 plane. Chamfer weights 1 and sqrt 2 [B86]: exact along rows,
+  // columns and diagonals.
+  const int rows = 9, cols = 12;
+  std::vector<std::uint8_t> known(std::size_t(rows) * cols, 0);
+  std::vector<double> distance, carried(known.size(), -1.0);
+  auto at = [&](int r, int c) { return std::size_t(r) * cols + c; };
+  known[at(2, 2)] = 1, carried[at(2, 2)] = 10.0;
+  known[at(6, 10)] = 1, carried[at(6, 10)] = 20.0;
+  carry_nearest(rows, cols, known, distance, carried);
+  CHECK(distance[at(2, 2)] == 0.0);
+  CHECK(carried[at(2, 2)] == 10.0);
+  CHECK(distance[at(2, 7)] == Approx(5.0));
+  CHECK(carried[at(2, 7)] == 10.0);
+  CHECK(distance[at(5, 5)] == Approx(3 * std::sqrt(2.0)));
+  CHECK(carried[at(5, 5)] == 10.0);
+  CHECK(distance[at(8, 10)] == Approx(2.0));
+  CHECK(carried[at(8, 10)] == 20.0);
+  CHECK(carried[at(4, 11)] == 20.0);  // 2.4 px (chamfer) from (6, 10), 9.8 from (2, 2)
+
+  SECTION("a plane with nothing known carries nothing") {
+    std::vector<std::uint8_t> none(known.size(), 0);
+    carry_nearest(rows, cols, none, distance, carried);
+    CHECK(std::isinf(distance[at(4, 4)]));
+    CHECK(std::isnan(carried[at(4, 4)]));
+  }
+}

@@ -166,3 +166,51 @@ TEST_CASE("spacetime gives the same values whatever the number of threads", "[fi
   }
   CHECK(filled > cells / 4);  // the gaps were filled, not left NaN on both
 }
+
+TEST_CASE("spacetime's sd does not fall deeper into a cloud than its rings reach", "[fill][spacetime]") {
+  // One date lies under a 40 x 40 px cloud; the rings of analogues reach halo / radius = 2
+  // rounds of 6 px into it, the model alone fills the rest. A value there is no better known
+  // than the reached cells nearest to it. Mechanics only: invented data.
+  std::vector<TimePoint> times;
+  for (int i = 0; i < 46; ++i) times.push_back(TimePoint{std::int64_t(i) * 16 * 86400});
+  const TimeGrid grid = TimeGrid::build(times);
+  const int rows = 60, cols = 60, cloudy = 20, edge0 = 10, edge1 = 49;
+  const std::size_t cells = std::size_t(rows) * cols * grid.size;
+  std::mt19937 random(7);
+  std::normal_distribution<double> noise(0.0, 0.03);
+  std::uniform_real_distribution<double> uniform(0.0, 1.0);
+  std::vector<double> level(std::size_t(rows) * cols);
+  for (double& l : level) l = 0.2 + 0.3 * uniform(random);
+  std::vector<float> values(cells), weights(cells);
+  auto depth = [&](int r, int c) {  // Chebyshev distance to the nearest cell outside the cloud
+    return std::min({r - edge0 + 1, edge1 + 1 - r, c - edge0 + 1, edge1 + 1 - c});
+  };
+  for (int r = 0; r < rows; ++r)
+    for (int c = 0; c < cols; ++c)
+      for (int s = 0; s < grid.size; ++s) {
+        const std::size_t i = (std::size_t(r) * cols + c) * grid.size + s;
+        const bool cloud = (s == cloudy && depth(r, c) > 0) || uniform(random) < 0.1;
+        values[i] = cloud ? NAN
+                          : float(level[std::size_t(r) * cols + c] +
+                                  0.25 * std::sin(2 * M_PI * s * 16 / 365.25) + noise(random));
+        weights[i] = cloud ? 0.0f : 1.0f;
+      }
+  MethodOptions options;
+  options.spacetime_fft_wisdom = "none";
+  options.spacetime_halo = 12;
+  options.spacetime_neighbour_radius = 6;
+  const auto method = make_spacetime(options);
+  const Window all{0, 0, cols, rows};
+  BlockOutput out;
+  out.resize(cells);
+  method->fill(BlockInput{&grid, all, all, values, weights}, out);
+  double deepest_reached = INFINITY, beyond = INFINITY;
+  for (int r = edge0; r <= edge1; ++r)
+    for (int c = edge0; c <= edge1; ++c) {
+      const double sd = out.sd[(std::size_t(r) * cols + c) * grid.size + cloudy];
+      REQUIRE(std::isfinite(sd));
+      if (depth(r, c) > 12) beyond = std::min(beyond, sd);
+      else if (depth(r, c) > 6) deepest_reached = std::min(deepest_reached, sd);
+    }
+  CHECK(beyond >= deepest_reached);
+}
