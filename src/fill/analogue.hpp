@@ -71,6 +71,7 @@ void fill_by_normalised_convolution(const CellGrid& grid, std::vector<double>& f
 /// value it has at that pixel (read only where `known`; NaN where none).
 void carry_nearest(int rows, int cols, std::span<const std::uint8_t> known,
                    std::vector<double>& distance, std::vector<double>& carried);
+
 /// For each `wanted` cell with a value in `field`: 2 gamma(h) + v, gamma the semivariogram of
 /// the observations (pooled over the block's dates, along rows and columns), h the distance, in
 /// pixels, from the cell to the nearest cell of the same date that was known before the
