@@ -449,7 +449,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   // (four development mask sets: RMS of error / sd 1.18-1.31 for gaps of observed pixels more
   // than 30 px from their date's nearest observation, 0.82-1.08 with it).
   if (analogue_settings.radius > 0) {
-    const std::size_t pixels = std::size_t(rows) * cols;
+    // The model-only gaps of the loop above.
+    auto beyond_reach = [&](std::size_t p, std::size_t i) {
+      return observations[p] > 0 && !(weight[i] > 0) && std::isnan(analogue[i]);
+    };
     std::vector<std::uint8_t> reached(pixels);
     std::vector<double> distance, carried(pixels);
     for (int s = 0; s < n_slots; ++s) {
@@ -458,13 +461,13 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
         const std::size_t i = p * n_slots + s;
         reached[p] = !std::isnan(analogue[i]);
         carried[p] = reached[p] ? gap_variance[i] : 0.0;
-        any_beyond |= !reached[p] && observations[p] > 0 && !(weight[i] > 0);
+        any_beyond |= beyond_reach(p, i);
       }
       if (!any_beyond) continue;
       detail::carry_nearest(rows, cols, reached, distance, carried);
       for (std::size_t p = 0; p < pixels; ++p) {
         const std::size_t i = p * n_slots + s;
-        if (!reached[p] && observations[p] > 0 && !(weight[i] > 0) && !std::isnan(carried[p]))
+        if (beyond_reach(p, i) && !std::isnan(carried[p]))
           gap_variance[i] = std::max(gap_variance[i], carried[p]);
       }
     }
