@@ -42,8 +42,11 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
   if (smallest_read_pixels(raster_width, raster_height, halo, tile) > max_read_pixels)
-    throw UsageError("--memory", "too small for one block of " + std::to_string(tile) + " x " +
-                                     std::to_string(tile) + " px; give more memory");
+    throw UsageError("--memory", "too small for one block: it reads " +
+                                     std::to_string(std::min(raster_width, tile + 2 * halo)) + " x " +
+                                     std::to_string(std::min(raster_height, tile + 2 * halo)) + " px (a " +
+                                     std::to_string(tile) + " px tile and its " + std::to_string(halo) +
+                                     " px halo, within the raster); give more memory");
   // Full-width strips of as many tile rows as fit; otherwise as many tile columns as fit.
   int bw = tiles_x * tile, bh = tile;
   if (read_pixels(bw, bh) <= max_read_pixels) {

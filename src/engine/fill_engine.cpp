@@ -285,6 +285,13 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       if (at_once == 1) throw;
     }
   }
+  if (share.max_read_pixels < smallest_block)
+    throw UsageError("--memory", fmt::format(
+        "budget of {} MiB is too small for one block (it reads {} x {} px with its halo); {} MiB would do",
+        request.memory_bytes >> 20, std::min(raster.width, tile_size + 2 * method->halo()),
+        std::min(raster.height, tile_size + 2 * method->halo()),
+        detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel, int(read_files.size()),
+                                       int(specs.size())) >> 20));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan =
       BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size, request.region);

@@ -18,6 +18,11 @@ struct MemoryShare {
 MemoryShare share_memory(std::int64_t budget, int workers, std::int64_t bytes_per_pixel,
                          int read_files_per_worker, int write_files);
 
+/// The smallest budget (whole MiB) whose share_memory gives each of `workers` a block of at
+/// least `read_pixels` pixels: the inverse of share_memory, for messages that say what would do.
+std::int64_t budget_for_read_pixels(std::int64_t read_pixels, int workers, std::int64_t bytes_per_pixel,
+                                    int read_files_per_worker, int write_files);
+
 /// Peak resident memory of this process so far (bytes), from getrusage.
 std::int64_t peak_resident_bytes();
 

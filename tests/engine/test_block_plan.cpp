@@ -52,6 +52,10 @@ TEST_CASE("blocks cover the raster once and respect the pixel budget", "[engine]
   CHECK_NOTHROW(BlockPlan::make(2048, 2048, 8, BlockPlan::smallest_read_pixels(2048, 2048, 8)));
   CHECK_THROWS_AS(BlockPlan::make(2048, 2048, 8, BlockPlan::smallest_read_pixels(2048, 2048, 8) - 1),
                   UsageError);
+  // The refusal names what one block reads, not a tile larger than the raster.
+  CHECK_THROWS_WITH(BlockPlan::make(100, 300, 32, 100 * 300 - 1),
+                    Catch::Matchers::Contains("it reads 100 x 300 px"));
+  CHECK_THROWS_WITH(BlockPlan::make(2048, 2048, 8, 256 * 256), Catch::Matchers::Contains("it reads 272 x 272 px"));
 }
 
 TEST_CASE("blocks run at most `at_once` at a time, each once, with every thread", "[engine][blocks]") {

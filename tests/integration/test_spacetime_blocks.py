@@ -6,6 +6,7 @@ within 0.004 (the issue's tolerance). Invented data: mechanics only.
 import glob
 import json
 import os
+import re
 import sys
 import unittest
 
@@ -76,14 +77,27 @@ class FewerBlocksThanThreads(kt.TempDirTestCase):
         one = os.path.join(self.tmp, "one")
         # The smallest budget (16 MiB steps) that runs on one thread; refusals are quick.
         budget = None
+        named = set()
         for mib in range(128, 2049, 16):
             done = kt.run_kalends(["fill"] + common + ["--out", one, "--threads", "1",
                                                        "--memory", "%dM" % mib])
             if done.returncode == 0:
                 budget = mib
                 break
+            self.assertEqual(done.returncode, 2, done.stderr)
             self.assertIn("--memory", done.stderr)
+            found = re.search(r"(\d+) MiB would do", done.stderr)
+            if found:
+                named.add(int(found.group(1)))
         self.assertIsNotNone(budget, "no budget up to 2 GiB ran on one thread")
+        # A refusal for want of room for one block names the smallest budget that holds one:
+        # the same in every refusal, above the last refused step, and enough.
+        self.assertEqual(len(named), 1, "refusals named %s" % sorted(named))
+        least = named.pop()
+        self.assertTrue(budget - 16 < least <= budget, "named %d MiB, found %d" % (least, budget))
+        done = kt.run_kalends(["fill"] + common + ["--out", os.path.join(self.tmp, "least"),
+                                                   "--threads", "1", "--memory", "%dM" % least])
+        self.assertEqual(done.returncode, 0, done.stderr)
         two = os.path.join(self.tmp, "two")
         done = kt.run_kalends(["fill"] + common + ["--out", two, "--threads", "2",
                                                    "--memory", "%dM" % budget])
