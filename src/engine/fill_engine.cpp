@@ -274,6 +274,15 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // large halo and many dates, such as spacetime, on a machine with many cores).
   const std::int64_t smallest_block =
       BlockPlan::smallest_read_pixels(raster.width, raster.height, method->halo(), tile_size);
+  // Too little for one block, or not even for the fixed overheads: say what would do.
+  auto refuse = [&] {
+    throw UsageError("--memory", fmt::format(
+        "budget of {} MiB is too small for one block (it reads {} x {} px{}); {} MiB would do",
+        request.memory_bytes >> 20, std::min(raster.width, tile_size + 2 * method->halo()),
+        std::min(raster.height, tile_size + 2 * method->halo()), method->halo() > 0 ? " with its halo" : "",
+        detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel, int(read_files.size()),
+                                       int(specs.size())) >> 20));
+  };
   int at_once = threads;
   detail::MemoryShare share;
   for (;; --at_once) {
@@ -282,16 +291,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
                                    int(read_files.size()), int(specs.size()));
       if (share.max_read_pixels >= smallest_block || at_once == 1) break;
     } catch (const UsageError&) {
-      if (at_once == 1) throw;
+      if (at_once == 1) refuse();
     }
   }
-  if (share.max_read_pixels < smallest_block)
-    throw UsageError("--memory", fmt::format(
-        "budget of {} MiB is too small for one block (it reads {} x {} px with its halo); {} MiB would do",
-        request.memory_bytes >> 20, std::min(raster.width, tile_size + 2 * method->halo()),
-        std::min(raster.height, tile_size + 2 * method->halo()),
-        detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel, int(read_files.size()),
-                                       int(specs.size())) >> 20));
+  if (share.max_read_pixels < smallest_block) refuse();
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan =
       BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size, request.region);
