@@ -35,9 +35,13 @@ struct BlockPlan {
   static BlockPlan make(int width, int height, int halo, std::int64_t max_read_pixels,
                         int tile = 256, const std::optional<Window>& region = std::nullopt);
 
-  /// The read pixels of the smallest block `make` can plan: one tile plus halo, clipped to the
-  /// raster.
-  static std::int64_t smallest_read_pixels(int width, int height, int halo, int tile = 256);
+  /// The read window of the smallest block `make` can plan: one tile plus halo, clipped to the
+  /// raster (its size; x and y 0).
+  static Window smallest_read_window(int width, int height, int halo, int tile = 256);
+  /// Its pixels.
+  static std::int64_t smallest_read_pixels(int width, int height, int halo, int tile = 256) {
+    return smallest_read_window(width, height, halo, tile).pixels();
+  }
 };
 
 /// The window `region` of a raster of `width` x `height`, or the whole raster when there is no

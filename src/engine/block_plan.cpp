@@ -19,15 +19,15 @@ Window area_of(int width, int height, const std::optional<Window>& region, const
 
 namespace {
 
-// The pixels a block of bw x bh px reads with its halo, clipped to the raster.
-std::int64_t clipped_read_pixels(int raster_width, int raster_height, int halo, int bw, int bh) {
-  return std::int64_t(std::min(raster_width, bw + 2 * halo)) * std::min(raster_height, bh + 2 * halo);
+// The window a block of bw x bh px reads with its halo, clipped to the raster (its size).
+Window clipped_read_window(int raster_width, int raster_height, int halo, int bw, int bh) {
+  return Window{0, 0, std::min(raster_width, bw + 2 * halo), std::min(raster_height, bh + 2 * halo)};
 }
 
 }  // namespace
 
-std::int64_t BlockPlan::smallest_read_pixels(int width, int height, int halo, int tile) {
-  return clipped_read_pixels(width, height, halo, tile, tile);
+Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile) {
+  return clipped_read_window(width, height, halo, tile, tile);
 }
 
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
@@ -38,13 +38,13 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
   const Window area = area_of(raster_width, raster_height, region, "region");
   const int width = area.width, height = area.height;
   auto read_pixels = [&](int bw, int bh) {
-    return clipped_read_pixels(raster_width, raster_height, halo, bw, bh);
+    return clipped_read_window(raster_width, raster_height, halo, bw, bh).pixels();
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
-  if (smallest_read_pixels(raster_width, raster_height, halo, tile) > max_read_pixels)
-    throw UsageError("--memory", "too small for one block: it reads " +
-                                     std::to_string(std::min(raster_width, tile + 2 * halo)) + " x " +
-                                     std::to_string(std::min(raster_height, tile + 2 * halo)) + " px (a " +
+  const Window smallest = smallest_read_window(raster_width, raster_height, halo, tile);
+  if (smallest.pixels() > max_read_pixels)
+    throw UsageError("--memory", "too small for one block: it reads " + std::to_string(smallest.width) +
+                                     " x " + std::to_string(smallest.height) + " px (a " +
                                      std::to_string(tile) + " px tile and its " + std::to_string(halo) +
                                      " px halo, within the raster); give more memory");
   // Full-width strips of as many tile rows as fit; otherwise as many tile columns as fit.

@@ -272,14 +272,15 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // A block per thread at once when the budget gives each at least one tile and its halo; else
   // fewer, down to one, whose parallel loops the other threads then share (a method with a
   // large halo and many dates, such as spacetime, on a machine with many cores).
-  const std::int64_t smallest_block =
-      BlockPlan::smallest_read_pixels(raster.width, raster.height, method->halo(), tile_size);
+  const Window smallest_read =
+      BlockPlan::smallest_read_window(raster.width, raster.height, method->halo(), tile_size);
+  const std::int64_t smallest_block = smallest_read.pixels();
   // Too little for one block, or not even for the fixed overheads: say what would do.
   auto refuse = [&] {
     throw UsageError("--memory", fmt::format(
         "budget of {} MiB is too small for one block (it reads {} x {} px{}); {} MiB would do",
-        request.memory_bytes >> 20, std::min(raster.width, tile_size + 2 * method->halo()),
-        std::min(raster.height, tile_size + 2 * method->halo()), method->halo() > 0 ? " with its halo" : "",
+        request.memory_bytes >> 20, smallest_read.width, smallest_read.height,
+        method->halo() > 0 ? " with its halo" : "",
         detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel, int(read_files.size()),
                                        int(specs.size())) >> 20));
   };
