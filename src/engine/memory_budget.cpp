@@ -40,18 +40,22 @@ MemoryShare share_memory(std::int64_t budget, int workers, std::int64_t bytes_pe
 
 std::int64_t budget_for_read_pixels(std::int64_t read_pixels, int workers, std::int64_t bytes_per_pixel,
                                     int read_files_per_worker, int write_files) {
-  // Budget - cache(budget) must cover the fixed part and the blocks; the cache is budget / 16
-  // within its bounds, so the inverse is piecewise linear. Start from a lower bound and step up
-  // by whole MiB, a few steps at most.
+  // The fixed part, the blocks and the smallest GDAL cache are a lower bound; the cache grows
+  // with the budget up to 128 MiB, so whole-MiB steps from there take about 120 at most.
   const MemoryShare probe = share_memory(std::int64_t(1) << 40, workers, bytes_per_pixel,
                                          read_files_per_worker, write_files);
-  const std::int64_t needed = probe.fixed + std::int64_t(std::max(1, workers)) *
-                                                std::max<std::int64_t>(1, bytes_per_pixel) * read_pixels;
-  std::int64_t budget = (needed + 8 * MiB + MiB - 1) / MiB * MiB;
-  if (budget / 16 > 8 * MiB) budget = std::max(budget, (needed * 16 / 15 + MiB - 1) / MiB * MiB);
-  if (budget / 16 > 128 * MiB) budget = (needed + 128 * MiB + MiB - 1) / MiB * MiB;
-  while (share_memory(budget, workers, bytes_per_pixel, read_files_per_worker, write_files).max_read_pixels < read_pixels)
-    budget += MiB;
+  const std::int64_t needed = probe.fixed + 8 * MiB + std::int64_t(std::max(1, workers)) *
+                                                          std::max<std::int64_t>(1, bytes_per_pixel) * read_pixels;
+  auto holds = [&](std::int64_t budget) {
+    try {
+      return share_memory(budget, workers, bytes_per_pixel, read_files_per_worker, write_files)
+                 .max_read_pixels >= read_pixels;
+    } catch (const UsageError&) {  // a larger cache left nothing above the fixed part
+      return false;
+    }
+  };
+  std::int64_t budget = (needed + MiB - 1) / MiB * MiB;
+  while (!holds(budget)) budget += MiB;
   return budget;
 }
 
