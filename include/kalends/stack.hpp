@@ -27,7 +27,9 @@ struct Grid {
   int width = 0, height = 0;
   std::array<double, 6> geotransform{0, 1, 0, 0, 0, 1};
   bool has_geotransform = false;
-  std::string crs_wkt;  // empty where the source has none
+  // Empty where the source has none; WGS 84 (EPSG:4326) for a NetCDF grid whose axes CF declares
+  // longitude and latitude but that names no grid mapping.
+  std::string crs_wkt;
 };
 
 /// The grid of a window of `grid`: its size, and the geotransform moved to its corner.

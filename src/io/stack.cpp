@@ -53,6 +53,51 @@ bool has_glob_characters(const std::string& s) {
 }
 
 
+std::string wkt_of(const OGRSpatialReference& srs) {
+  std::string out;
+  char* wkt = nullptr;
+  const char* options[] = {"FORMAT=WKT2_2018", nullptr};
+  if (srs.exportToWkt(&wkt, options) == OGRERR_NONE && wkt) out = wkt;
+  CPLFree(wkt);
+  return out;
+}
+
+// CF conventions (section 4.1 and 4.2; section 5.6: a grid whose coordinate variables are
+// longitude and latitude needs no grid mapping) declare such axes by standard_name or by units.
+// GDAL's netCDF driver reads them into a geotransform but, without a grid_mapping variable,
+// gives no CRS. The datum is then unstated; WGS 84 is the usual reading (common practice).
+bool has_cf_longitude_latitude_axes(GDALDataset& dataset, const Grid& grid) {
+  if (!grid.has_geotransform || grid.geotransform[2] != 0 || grid.geotransform[4] != 0)
+    return false;
+  static const char* longitude_units[] = {"degrees_east", "degree_east", "degrees_E", "degree_E",
+                                          "degreesE", "degreeE"};
+  static const char* latitude_units[] = {"degrees_north", "degree_north", "degrees_N", "degree_N",
+                                         "degreesN", "degreeN"};
+  bool longitude = false, latitude = false;
+  if (char** items = dataset.GetMetadata())
+    for (int i = 0; items[i]; ++i) {
+      const std::string item = items[i];
+      const auto hash = item.find('#'), equals = item.find('=');
+      if (hash == std::string::npos || equals == std::string::npos || equals < hash) continue;
+      const std::string key = item.substr(hash + 1, equals - hash - 1), value = item.substr(equals + 1);
+      if (key == "standard_name") {
+        longitude = longitude || value == "longitude";
+        latitude = latitude || value == "latitude";
+      } else if (key == "units") {
+        for (const char* u : longitude_units) longitude = longitude || value == u;
+        for (const char* u : latitude_units) latitude = latitude || value == u;
+      }
+    }
+  if (!longitude || !latitude) return false;
+  // Projected x, y in metres would lie outside these ranges; 2-D auxiliary lat/lon variables
+  // beside such axes must not make the grid geographic.
+  const auto& g = grid.geotransform;
+  const double x0 = g[0], x1 = g[0] + g[1] * grid.width, y0 = g[3], y1 = g[3] + g[5] * grid.height;
+  const auto within = [](double v, double low, double high) { return v >= low && v <= high; };
+  return within(x0, -360, 360) && within(x1, -360, 360) && within(y0, -90.5, 90.5) &&
+         within(y1, -90.5, 90.5);
+}
+
 Grid grid_of(GDALDataset& dataset) {
   Grid grid;
   grid.width = dataset.GetRasterXSize();
@@ -60,10 +105,10 @@ Grid grid_of(GDALDataset& dataset) {
   grid.has_geotransform = dataset.GetGeoTransform(grid.geotransform.data()) == CE_None;
   if (!grid.has_geotransform) grid.geotransform = {0, 1, 0, 0, 0, 1};
   if (const OGRSpatialReference* srs = dataset.GetSpatialRef()) {
-    char* wkt = nullptr;
-    const char* options[] = {"FORMAT=WKT2_2018", nullptr};
-    if (srs->exportToWkt(&wkt, options) == OGRERR_NONE && wkt) grid.crs_wkt = wkt;
-    CPLFree(wkt);
+    grid.crs_wkt = wkt_of(*srs);
+  } else if (has_cf_longitude_latitude_axes(dataset, grid)) {
+    OGRSpatialReference wgs84;
+    if (wgs84.importFromEPSG(4326) == OGRERR_NONE) grid.crs_wkt = wkt_of(wgs84);
   }
   return grid;
 }

@@ -54,12 +54,13 @@ def same_srs(wkt_a, wkt_b):
 
 class RealFormats(kt.TempDirTestCase):
 
-    def check_grid(self, out, ds):
+    def check_grid(self, out, ds, expected_wkt=None):
         self.assertEqual(out["size"], (ds.RasterXSize, ds.RasterYSize, 3))
         for got, want in zip(out["geotransform"], ds.GetGeoTransform()):
             self.assertAlmostEqual(got, want, delta=1e-9 * max(1.0, abs(want)))
-        self.assertTrue(same_srs(out["wkt"], ds.GetProjectionRef()),
-                        "CRS differs: %r vs %r" % (out["wkt"][:120], ds.GetProjectionRef()[:120]))
+        want = ds.GetProjectionRef() if expected_wkt is None else expected_wkt
+        self.assertTrue(same_srs(out["wkt"], want),
+                        "CRS differs: %r vs %r" % (out["wkt"][:120], want[:120]))
 
     def check_values(self, out, band, where):
         """Flag 0 cells hold the band's physical value as float32; NaN only with flag 3."""
@@ -91,6 +92,14 @@ class RealFormats(kt.TempDirTestCase):
         moments = [t.astype(datetime.datetime) for t in times]
         expected = ["tas_%s.tif" % label(m) for m in moments]
         self.assertEqual(len(expected), ds.RasterCount)
+        # The file names no grid mapping, so GDAL gives no CRS; its axes are CF longitude and
+        # latitude (CF Conventions 4.1, 4.2 and 5.6), which kalends reads as WGS 84 longitude /
+        # latitude (the datum is unstated; WGS 84 is common practice).
+        self.assertEqual(ds.GetProjectionRef(), "")
+        self.assertEqual((md["longitude#standard_name"], md["latitude#units"]), ("longitude", "degrees_north"))
+        from osgeo import osr
+        wgs84 = osr.SpatialReference()
+        wgs84.ImportFromEPSG(4326)
 
         out_dir = os.path.join(self.tmp, "nc")
         kt.run_fill_ok(self, [source, "--out", out_dir, "--threads", "2"])
@@ -103,7 +112,7 @@ class RealFormats(kt.TempDirTestCase):
             band_time = origin + np.timedelta64(int(round(band_value * 86400)), "s")
             self.assertEqual(band_time.astype(datetime.datetime), moment, name)
             self.assertTrue(out["metadata"]["KALENDS_DATE"].startswith(moment.strftime("%Y-%m-%d")))
-            self.check_grid(out, ds)
+            self.check_grid(out, ds, wgs84.ExportToWkt())
             self.check_values(out, ds.GetRasterBand(b), name)
         ds = None
 

@@ -92,6 +92,23 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         expected = tn.relative("window", self.tas.ravel(), window=(20.0, 30.0)).reshape(self.tas.shape)
         self.check(out, "window", expected, 0.0)
 
+    def test_longitude_latitude_axes_place_the_diurnal_cycle(self):
+        # The file names no grid mapping, so GDAL gives it no CRS, but CF declares its axes
+        # longitude and latitude (CF Conventions 4.1, 4.2, 5.6): the diurnal cycle can find each
+        # cell's latitude. Monthly means given as both minimum and maximum make a flat day, so
+        # the result must equal the run that takes them as given.
+        out = os.path.join(self.tmp, "extremes")
+        done = kt.run_kalends(["suitability", "--tmin", self.input, "--tmax", self.input,
+                               "--date-marks", "end", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        expected = tn.relative("r0-2013", self.tas.ravel()).reshape(self.tas.shape)
+        self.check(out, "r0-2013", expected, 0.0)
+        ds = kt.gdal().Open(os.path.join(out, "r0-2013_year_1999.tif"))
+        from osgeo import osr
+        srs = osr.SpatialReference(wkt=ds.GetProjectionRef())
+        ds = None
+        self.assertEqual(srs.GetAuthorityCode(None), "4326")
+
 
 if __name__ == "__main__":
     unittest.main()
