@@ -17,7 +17,8 @@ namespace kalends {
 struct CalendarPeriod {
   enum class Kind { days, month } kind = Kind::month;
   int days = 0;
-  static CalendarPeriod parse(const std::string& text);  // "8d", "16d", "1M"; UsageError
+  /// "8d", "16d", "1M"; UsageError naming `option` otherwise.
+  static CalendarPeriod parse(const std::string& text, const std::string& option = "--every");
   std::string label() const;
 };
 

@@ -26,6 +26,13 @@ struct StudyGridSummary {
   std::vector<std::string> outputs;
 };
 
+/// The resampling methods a continuous band may take (GDAL's warper names).
+const std::vector<std::string>& study_grid_resampling_names();
+
+/// Checks the options that need no file (CRS, resolution, extent, resampling); UsageError
+/// naming the option. run_study_grid calls it first.
+void check_study_grid_options(const StudyGridRequest& request);
+
 /// Warps every raster. Bands named "flag" take the mode (a class layer); the others
 /// `resample`. For kalends fill outputs a band "filled_share" is added: the share of the
 /// input cells with a value that were filled (flags 1 and 2), so users see how much of a coarse

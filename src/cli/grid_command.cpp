@@ -36,8 +36,7 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--resample", r.resample,
                   "For continuous bands: average (area-weighted mean), nearest, bilinear, cubic, min, max, med; "
                   "flag bands always take the mode")
-      ->check(CLI::IsMember({"average", "nearest", "bilinear", "cubic", "cubicspline", "lanczos", "min", "max",
-                             "med", "mode", "sum", "rms"}))
+      ->check(CLI::IsMember(study_grid_resampling_names()))
       ->capture_default_str();
   return [o, &global] {
     StudyGridRequest& r = o->request;

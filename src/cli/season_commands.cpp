@@ -79,7 +79,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
   return [o, &global] {
     SeasonsRequest& r = o->request;
-    r.period = CalendarPeriod::parse(o->period);
+    r.period = CalendarPeriod::parse(o->period, "--period");
     if (!o->years.empty()) std::tie(r.first_year, r.last_year) = parse_years(o->years);
     r.marks = parse_date_marks(o->marks);
     r.memory_bytes = parse_memory(o->memory);

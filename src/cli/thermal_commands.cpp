@@ -192,7 +192,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
       r.window_low = *optional_number(low, "--window");
       r.window_high = *optional_number(high, "--window");
     }
-    r.period = CalendarPeriod::parse(o->period);
+    r.period = CalendarPeriod::parse(o->period, "--period");
     if (!o->years.empty()) {
       int a = 0, b = 0;
       char dash = 0;

@@ -8,7 +8,7 @@
 
 namespace kalends {
 
-CalendarPeriod CalendarPeriod::parse(const std::string& text) {
+CalendarPeriod CalendarPeriod::parse(const std::string& text, const std::string& option) {
   CalendarPeriod p;
   if (text == "1M" || text == "1m" || text == "month") {
     p.kind = Kind::month;
@@ -26,7 +26,7 @@ CalendarPeriod CalendarPeriod::parse(const std::string& text) {
     } catch (const std::exception&) {
     }
   }
-  throw UsageError("--every '" + text + "'", "expected 1M or a number of days such as 8d or 16d");
+  throw UsageError(option + " '" + text + "'", "expected 1M or a number of days such as 8d or 16d");
 }
 
 std::string CalendarPeriod::label() const {

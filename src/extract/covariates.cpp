@@ -4,6 +4,7 @@
 #include "kalends/covariates.hpp"
 
 #include <algorithm>
+#include <cstdlib>
 #include <filesystem>
 #include <map>
 #include <regex>
@@ -122,6 +123,14 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     const std::string date_text = item(*ds, "KALENDS_DATE");
     const std::string period_text = item(*ds, "KALENDS_PERIOD");
     const std::string year_text = item(*ds, "KALENDS_YEAR");
+    // The metadata a kalends command wrote; another tool's edits make the file unusable here.
+    const auto period_of_file = [&] {
+      try {
+        return CalendarPeriod::parse(period_text);
+      } catch (const UsageError&) {
+        throw InputError(s.path, "KALENDS_PERIOD '" + period_text + "' is not a period (1M or Nd)");
+      }
+    };
     const int bands = ds->GetRasterCount();
     std::vector<std::string> descriptions;
     for (int b = 1; b <= bands; ++b) descriptions.push_back(ds->GetRasterBand(b)->GetDescription());
@@ -143,14 +152,19 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       CovariateSeries& c = series_for(prefix + (stem.empty() ? "layer" : stem));
       c.kind = SeriesKind::dated;
       c.has_sd_and_flag = fill_bands;
-      if (!period_text.empty()) c.period = CalendarPeriod::parse(period_text);
+      if (!period_text.empty()) c.period = period_of_file();
       const std::string step = item(*ds, "KALENDS_TIME_STEP_DAYS");
-      if (!step.empty()) c.step_days = std::stod(step);
+      if (!step.empty()) {
+        char* end = nullptr;
+        c.step_days = std::strtod(step.c_str(), &end);
+        if (end == step.c_str() || *end != '\0' || !(c.step_days > 0))
+          throw InputError(s.path, "KALENDS_TIME_STEP_DAYS '" + step + "' is not a number of days");
+      }
       c.files.push_back({s.path, *time, 0});
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, grid_of(*ds), s.path);
     } else if (periodic) {
-      const CalendarPeriod period = CalendarPeriod::parse(period_text);
+      const CalendarPeriod period = period_of_file();
       std::string stem = s.stem;
       const std::string year_suffix = "_" + year_text;
       if (!year_text.empty() && stem.size() > year_suffix.size() &&

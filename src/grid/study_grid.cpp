@@ -8,9 +8,11 @@
 #include <gdal_utils.h>
 #include <gdal_priv.h>
 
+#include <algorithm>
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <map>
 
 #include "io/file_glob.hpp"
@@ -94,7 +96,13 @@ DatasetPtr band_subset(GDALDataset& source, const std::vector<int>& bands, const
 
 }  // namespace
 
-StudyGridSummary run_study_grid(const StudyGridRequest& request) {
+const std::vector<std::string>& study_grid_resampling_names() {
+  static const std::vector<std::string> names{"average", "nearest", "bilinear", "cubic", "cubicspline", "lanczos",
+                                              "min",     "max",     "med",      "mode",  "sum",         "rms"};
+  return names;
+}
+
+void check_study_grid_options(const StudyGridRequest& request) {
   detail::start_gdal();
   if (request.crs.empty()) throw UsageError("--crs", "the study grid needs a CRS, e.g. EPSG:4326");
   {
@@ -106,6 +114,13 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   if (request.extent && (request.extent->size() != 4 || (*request.extent)[0] >= (*request.extent)[2] ||
                          (*request.extent)[1] >= (*request.extent)[3]))
     throw UsageError("--extent", "expected XMIN,YMIN,XMAX,YMAX with XMIN < XMAX and YMIN < YMAX");
+  const auto& names = study_grid_resampling_names();
+  if (std::find(names.begin(), names.end(), request.resample) == names.end())
+    throw UsageError("--resample '" + request.resample + "'", "expected one of " + fmt::format("{}", fmt::join(names, ", ")));
+}
+
+StudyGridSummary run_study_grid(const StudyGridRequest& request) {
+  check_study_grid_options(request);
   if (!request.clip.empty()) {
     GDALDatasetUniquePtr vector(GDALDataset::Open(request.clip.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
     if (!vector || vector->GetLayerCount() == 0)

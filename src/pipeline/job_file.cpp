@@ -3,6 +3,8 @@
 #include <toml++/toml.h>
 
 #include <algorithm>
+#include <cmath>
+#include <cstdlib>
 #include <filesystem>
 #include <fmt/format.h>
 #include <set>
@@ -28,7 +30,7 @@ const char* type_name(Type t) {
     case Type::number: return "a number";
     case Type::integer: return "an integer";
     case Type::boolean: return "true or false";
-    case Type::text_or_number: return "a number or a string";
+    case Type::number_or_auto: return "a number or \"auto\"";
     case Type::pair: return "an array of two numbers";
     case Type::texts: return "an array of strings";
   }
@@ -36,6 +38,38 @@ const char* type_name(Type t) {
 }
 
 std::string number_text(double v) { return fmt::format("{:.17g}", v); }
+
+// Reads the step's values as it would run them, with every input resolved to its own name, so
+// that a value it cannot use fails here, naming the key and its line. The kinds name options
+// as the command line does ("--date-marks 'x'"); the key is the same with '_' for '-'.
+void check_values(const std::string& path, const StepKind& kind, const JobStep& step, const toml::table& table,
+                  const Job& job) {
+  StepContext context{step.options};
+  context.job_path = path;
+  context.folder = (std::filesystem::path(job.out) / step.id).string();
+  context.out = job.out;
+  context.resolve = [&job](const std::string& name) {
+    ResolvedInput in;
+    in.pattern = name;
+    if (!job.inputs.count(name)) in.folder = name;  // an earlier step
+    return in;
+  };
+  try {
+    kind.check_values(context);
+  } catch (const UsageError& e) {
+    const std::string& where = e.where();
+    if (where.rfind("--", 0) == 0) {
+      const auto space = where.find(' ');
+      std::string key = where.substr(2, space == std::string::npos ? std::string::npos : space - 2);
+      std::replace(key.begin(), key.end(), '-', '_');
+      if (const toml::node* value = table.get(key)) {
+        const std::string shown = space == std::string::npos ? "" : where.substr(space);
+        fail(path, value->source(), "'" + key + "'" + shown + ": " + e.reason());
+      }
+    }
+    fail(path, table.source(), "step '" + step.id + "': " + e.what());
+  }
+}
 
 // The value as canonical text, after checking its type.
 std::string checked_text(const std::string& path, const std::string& key, const toml::node& node, Type type) {
@@ -53,8 +87,15 @@ std::string checked_text(const std::string& path, const std::string& key, const 
     case Type::boolean:
       if (!node.is_boolean()) wrong();
       return *node.value<bool>() ? "true" : "false";
-    case Type::text_or_number:
-      if (node.is_string()) return *node.value<std::string>();
+    case Type::number_or_auto:
+      if (node.is_string()) {  // "auto", or a number written as a string ("10")
+        const std::string text = *node.value<std::string>();
+        if (text == "auto") return text;
+        char* end = nullptr;
+        const double v = std::strtod(text.c_str(), &end);
+        if (text.empty() || *end != '\0' || !std::isfinite(v)) wrong();
+        return number_text(v);
+      }
       if (!node.is_number()) wrong();
       return number_text(*node.value<double>());
     case Type::pair: {
@@ -196,6 +237,7 @@ Job read_job(const std::string& path) {
     if (spec->check)
       if (const std::string mistake = spec->check(step.options); !mistake.empty())
         fail(path, node.source(), mistake);
+    if (spec->check_values) check_values(path, *spec, step, *t, job);
     known.insert(step.id);
     job.steps.push_back(std::move(step));
   }

@@ -14,7 +14,7 @@
 
 namespace kalends::detail {
 
-enum class KeyType { text, number, integer, boolean, text_or_number, pair, texts };
+enum class KeyType { text, number, integer, boolean, number_or_auto, pair, texts };
 
 struct StepKey {
   const char* name;
@@ -49,12 +49,15 @@ struct StepContext {
   bool has(const char* key) const { return options.count(key) != 0; }
   std::string text(const char* key, const std::string& fallback = "") const;
   double number(const char* key, double fallback) const;
-  /// A text_or_number key: "auto" is no value (std::nullopt), a number is that number.
+  /// A number_or_auto key: "auto" is no value (std::nullopt), a number is that number.
   std::optional<double> number_or_auto(const char* key, std::optional<double> fallback) const;
   int integer(const char* key, int fallback) const;
   bool flag(const char* key) const { return text(key) == "true"; }
   std::pair<double, double> pair(const char* key) const;  // "a,b"
   std::vector<std::string> list(const char* key) const;    // a texts key's items
+  /// A texts key whose items are numbers; UsageError("--key 'item'") for one that is not.
+  std::vector<double> numbers(const char* key) const;
+  std::vector<int> integers(const char* key) const;
 };
 
 struct StepOutcome {
@@ -67,6 +70,11 @@ struct StepKind {
   std::vector<StepKey> keys;
   /// A job-file mistake the keys alone cannot catch (a required key missing), or "".
   std::function<std::string(const StepOptions&)> check;
+  /// Reads every value as `run` would, without reading or writing any file, and throws
+  /// UsageError naming the option ("--every '2W'") for one it cannot use. The job reader calls
+  /// it with each input resolved to its own name, so that a bad value fails the job file when
+  /// it is read (and `--dry-run`), not hours into an unattended run.
+  std::function<void(const StepContext&)> check_values;
   std::function<StepOutcome(const StepContext&)> run;
   /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
   /// recompute those alone.

@@ -125,7 +125,56 @@ class JobFile(kt.TempDirTestCase):
                            good.split("\n").index('input = "fill"') + 1, ["'fil' is neither an input nor an earlier step"])
         self.check_refused(good.replace("[job]", "[job"), 2, [])
         self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
-                           good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or a string"])
+                           good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or \"auto\""])
+
+    def test_values_a_step_cannot_use_are_refused_when_the_file_is_read(self):
+        # Before any step runs (and by --dry-run): a nightly run must not fail hours in.
+        good = JOB.format(lam="auto", extra="")
+        lines = good.split("\n")
+        lam = lines.index('lambda = "auto"') + 1
+        cases = [
+            (good.replace('lambda = "auto"', 'lambda = "sometimes"'), lam, ["'lambda' must be a number or \"auto\""]),
+            (good.replace('lambda = "auto"', "lambda = -3"), lam, ["'lambda'", "must be positive"]),
+            (good.replace('envelope = "upper"', 'envelope = "uper"'), lines.index('envelope = "upper"') + 1,
+             ["'envelope' 'uper'", "none or upper"]),
+            (good.replace('every = "1M"', 'every = "2W"'), lines.index('every = "1M"') + 1,
+             ["'every' '2W'", "1M or a number of days"]),
+            (good.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nperiod = "fortnight"'),
+             lines.index('do = "seasons"') + 3, ["'period' 'fortnight'"]),
+            (good.replace('every = "1M"', 'every = "1M"\ncompress = "zip"'), lines.index('every = "1M"') + 2,
+             ["'compress'", "'zip'"]),
+        ]
+        n = len(lines)
+        grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'
+        cases += [
+            (good + grid + 'extent = ["1", "2", "three", "4"]\n', n + 5, ["'extent' 'three'", "expected a number"]),
+            (good + grid + 'resample = "avg"\n', n + 5, ["'resample' 'avg'", "average"]),
+            (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),
+            (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
+             ["'pixels' 'ten 20'", "COLUMN ROW"]),
+        ]
+        for text, line, words in cases:
+            for extra in ([], ["--dry-run"]):
+                with self.subTest(words=words, extra=extra):
+                    path = os.path.join(self.tmp, "bad.toml")
+                    with open(path, "w") as f:
+                        f.write(text)
+                    done = run(path, *extra)
+                    self.assertEqual(done.returncode, 2, done.stderr)
+                    message = done.stderr.strip().splitlines()
+                    self.assertEqual(len(message), 1, done.stderr)
+                    self.assertIn("bad.toml:%d:" % line, message[0])
+                    for w in words:
+                        self.assertIn(w, message[0])
+                    self.assertFalse(os.path.exists(os.path.join(self.tmp, "out")), "a step ran")
+        # A number written as a string is still a number: the file is read, and the dry run
+        # goes on to the inputs (which this test does not make).
+        path = os.path.join(self.tmp, "quoted.toml")
+        with open(path, "w") as f:
+            f.write(good.replace('lambda = "auto"', 'lambda = "10"'))
+        done = run(path, "--dry-run")
+        self.assertIn("no file matches this pattern", done.stderr)
+        self.assertNotIn("lambda", done.stderr)
 
 
 class Incremental(kt.TempDirTestCase):

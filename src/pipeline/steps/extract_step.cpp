@@ -8,6 +8,38 @@
 
 namespace kalends::detail {
 
+namespace {
+
+// The request an 'extract' step runs, from its keys; reads no file.
+ExtractRequest extract_request(const StepContext& c) {
+  ExtractRequest r;
+  for (const std::string& name : c.list("input")) {
+    const ResolvedInput in = c.resolve(name);
+    if (in.folder.empty())
+      throw UsageError("--input '" + name + "'", "an 'extract' step reads earlier steps, and this is a job input");
+    r.covariates.push_back(in.folder);
+    r.name_prefixes.push_back(name);  // layers are named as in 'kalends extract OUT/': "fill.ndvi"
+  }
+  r.points.path = c.text("points");
+  r.points.id_column = c.text("id_column", r.points.id_column);
+  r.points.x_column = c.text("x_column", r.points.x_column);
+  r.points.y_column = c.text("y_column", r.points.y_column);
+  r.points.date_column = c.text("date_column", r.points.date_column);
+  r.points.crs = c.text("crs", r.points.crs);
+  const std::string sampling = c.text("sampling", "nearest");
+  if (sampling == "bilinear") r.sampling = Sampling::bilinear;
+  else if (sampling != "nearest") throw UsageError("--sampling '" + sampling + "'", "expected nearest or bilinear");
+  r.buffer_metres = c.number("buffer", 0);
+  r.lags = c.integers("lags");
+  r.layers = c.list("layers");
+  r.long_format = c.flag("long");
+  r.include_descriptors = c.flag("descriptors");
+  r.out = (std::filesystem::path(c.folder) / c.text("table", "table.csv")).string();
+  return r;
+}
+
+}  // namespace
+
 StepKind extract_step_kind() {
   using T = KeyType;
   StepKind kind;
@@ -23,31 +55,10 @@ StepKind extract_step_kind() {
     if (!o.count("points")) return std::string("an 'extract' step needs 'points' (the survey table)");
     return std::string();
   };
+  kind.check_values = [](const StepContext& c) { extract_request(c); };
   kind.run = [](const StepContext& c) {
-    ExtractRequest r;
-    for (const std::string& name : c.list("input")) {
-      const ResolvedInput in = c.resolve(name);
-      if (in.folder.empty())
-        throw UsageError(c.job_path, "an 'extract' step reads earlier steps, and '" + name + "' is a job input");
-      r.covariates.push_back(in.folder);
-      r.name_prefixes.push_back(name);  // layers are named as in 'kalends extract OUT/': "fill.ndvi"
-    }
-    r.points.path = c.text("points");
-    r.points.id_column = c.text("id_column", r.points.id_column);
-    r.points.x_column = c.text("x_column", r.points.x_column);
-    r.points.y_column = c.text("y_column", r.points.y_column);
-    r.points.date_column = c.text("date_column", r.points.date_column);
-    r.points.crs = c.text("crs", r.points.crs);
-    const std::string sampling = c.text("sampling", "nearest");
-    if (sampling == "bilinear") r.sampling = Sampling::bilinear;
-    else if (sampling != "nearest") throw UsageError(c.job_path, "'sampling' is nearest or bilinear, not '" + sampling + "'");
-    r.buffer_metres = c.number("buffer", 0);
-    for (const std::string& lag : c.list("lags")) r.lags.push_back(std::stoi(lag));
-    r.layers = c.list("layers");
-    r.long_format = c.flag("long");
-    r.include_descriptors = c.flag("descriptors");
+    const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);
-    r.out = (std::filesystem::path(c.folder) / c.text("table", "table.csv")).string();
     run_extract(r);
     return StepOutcome{1, 0, ""};
   };

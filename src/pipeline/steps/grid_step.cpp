@@ -6,6 +6,25 @@
 
 namespace kalends::detail {
 
+namespace {
+
+// The request for one layer of a 'grid' step, from its keys; reads no file.
+StudyGridRequest grid_request(const StepContext& c, const std::string& layer) {
+  const ResolvedInput in = c.resolve(layer);
+  StudyGridRequest r;
+  r.inputs = {in.folder.empty() ? in.pattern : in.folder};
+  r.out_dir = (std::filesystem::path(c.folder) / layer).string();
+  r.crs = c.text("crs");
+  r.resolution = c.number("resolution", 0);
+  if (c.has("extent")) r.extent = c.numbers("extent");
+  r.clip = c.text("clip");
+  r.resample = c.text("resample", r.resample);
+  r.command_line = c.command_line;
+  return r;
+}
+
+}  // namespace
+
 StepKind grid_step_kind() {
   using T = KeyType;
   StepKind kind;
@@ -17,24 +36,13 @@ StepKind grid_step_kind() {
     if (!o.count("crs")) return std::string("a 'grid' step needs 'crs', e.g. \"EPSG:4326\"");
     return std::string();
   };
+  kind.check_values = [](const StepContext& c) {
+    for (const std::string& name : c.list("layers")) check_study_grid_options(grid_request(c, name));
+  };
   kind.run = [](const StepContext& c) {
     StepOutcome outcome;
     for (const std::string& name : c.list("layers")) {
-      const ResolvedInput in = c.resolve(name);
-      StudyGridRequest r;
-      r.inputs = {in.folder.empty() ? in.pattern : in.folder};
-      r.out_dir = (std::filesystem::path(c.folder) / name).string();
-      r.crs = c.text("crs");
-      r.resolution = c.number("resolution", 0);
-      if (c.has("extent")) {
-        std::vector<double> extent;
-        for (const std::string& v : c.list("extent")) extent.push_back(std::stod(v));
-        r.extent = extent;
-      }
-      r.clip = c.text("clip");
-      r.resample = c.text("resample", r.resample);
-      r.command_line = c.command_line;
-      const StudyGridSummary s = run_study_grid(r);
+      const StudyGridSummary s = run_study_grid(grid_request(c, name));
       outcome.outputs_written += s.outputs_written;
       outcome.outputs_unchanged += s.outputs_unchanged;
     }

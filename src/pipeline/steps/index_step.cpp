@@ -1,9 +1,20 @@
 // Step 'index': NDVI or EVI from band stacks (kalends index).
+#include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/spectral_index.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
+
+namespace {
+
+SpectralIndex index_kind(const StepContext& c) {
+  const std::string index = c.text("index", "ndvi");
+  if (index != "ndvi" && index != "evi") throw UsageError("--index '" + index + "'", "expected ndvi or evi");
+  return index == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
+}
+
+}  // namespace
 
 StepKind index_step_kind() {
   using T = KeyType;
@@ -17,6 +28,10 @@ StepKind index_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("red") && o.count("nir") ? std::string() : std::string("an 'index' step needs 'red' and 'nir'");
   };
+  kind.check_values = [](const StepContext& c) {
+    index_kind(c);
+    parse_compression(c.text("compress", "deflate"));
+  };
   kind.run = [](const StepContext& c) {
     IndexRequest r;
     const ResolvedInput red = c.resolve(c.text("red")), nir = c.resolve(c.text("nir"));
@@ -27,7 +42,7 @@ StepKind index_step_kind() {
     r.red_band = c.integer("red_band", 1);
     r.nir_band = c.integer("nir_band", 1);
     r.blue_band = c.integer("blue_band", 1);
-    r.kind = c.text("index", "ndvi") == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
+    r.kind = index_kind(c);
     r.qa = red.qa;
     r.name = c.text("name");
     r.out_dir = c.folder;

@@ -1,11 +1,39 @@
 // Step 'report': the HTML page of the job's outputs (kalends report), written as
 // `<step folder>/report.html`, or where 'html' says (a path resolved against the job file).
 #include <filesystem>
+#include <regex>
 
+#include "kalends/error.hpp"
 #include "kalends/report.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
+
+namespace {
+
+// The request a 'report' step runs, from its keys; reads no file.
+ReportRequest report_request(const StepContext& c) {
+  ReportRequest r;
+  r.folder = c.out;
+  // 'html' is written, not read, so it is no path key (those are checksummed as inputs).
+  const std::filesystem::path html(c.text("html"));
+  r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
+           : html.is_absolute() ? html.string()
+                                : (std::filesystem::path(c.job_path).parent_path() / html).string();
+  static const std::regex column_row(R"(\s*(\d{1,9})\s+(\d{1,9})\s*)");
+  for (const std::string& pair : c.list("pixels")) {  // "column row" pairs, e.g. ["100 200", "40 80"]
+    std::smatch m;
+    if (!std::regex_match(pair, m, column_row))
+      throw UsageError("--pixels '" + pair + "'", "expected \"COLUMN ROW\", two whole numbers");
+    r.pixels.emplace_back(std::stoi(m[1]), std::stoi(m[2]));
+  }
+  r.samples = c.integer("samples", r.samples);
+  r.map_size = c.integer("map_size", r.map_size);
+  r.title = c.text("title");
+  return r;
+}
+
+}  // namespace
 
 StepKind report_step_kind() {
   using T = KeyType;
@@ -17,22 +45,10 @@ StepKind report_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("after") ? std::string() : std::string("a 'report' step needs 'after' (the steps it shows)");
   };
+  kind.check_values = [](const StepContext& c) { report_request(c); };
   kind.run = [](const StepContext& c) {
-    ReportRequest r;
-    r.folder = c.out;
+    const ReportRequest r = report_request(c);
     std::filesystem::create_directories(c.folder);
-    // 'html' is written, not read, so it is no path key (those are checksummed as inputs).
-    const std::filesystem::path html(c.text("html"));
-    r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
-             : html.is_absolute() ? html.string()
-                                  : (std::filesystem::path(c.job_path).parent_path() / html).string();
-    for (const std::string& pair : c.list("pixels")) {  // "column row" pairs, e.g. ["100 200", "40 80"]
-      const auto space = pair.find(' ');
-      r.pixels.emplace_back(std::stoi(pair.substr(0, space)), std::stoi(pair.substr(space + 1)));
-    }
-    r.samples = c.integer("samples", r.samples);
-    r.map_size = c.integer("map_size", r.map_size);
-    r.title = c.text("title");
     run_report(r);
     return StepOutcome{1, 0, ""};
   };

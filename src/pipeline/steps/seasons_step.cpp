@@ -5,6 +5,33 @@
 
 namespace kalends::detail {
 
+namespace {
+
+// The request a 'seasons' step runs, from its keys; reads no file.
+SeasonsRequest seasons_request(const StepContext& c) {
+  const ResolvedInput in = c.resolve(c.text("input"));
+  SeasonsRequest r;
+  r.input = in.pattern;
+  r.rules = in.rules;
+  r.out_dir = c.folder;
+  r.name = c.text("name");
+  r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
+  if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
+  r.marks = parse_date_marks(c.text("date_marks", "start"));
+  r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
+  r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
+  r.memory_bytes = c.memory_bytes;
+  r.threads = c.threads;
+  r.compression = parse_compression(c.text("compress", "deflate"));
+  r.command_line = c.command_line;
+  r.keep_unchanged = true;
+  r.region = c.region;
+  r.only_years = c.only_years;
+  return r;
+}
+
+}  // namespace
+
 StepKind seasons_step_kind() {
   using T = KeyType;
   StepKind kind;
@@ -18,26 +45,9 @@ StepKind seasons_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'seasons' step needs 'input'");
   };
+  kind.check_values = [](const StepContext& c) { seasons_request(c); };
   kind.run = [](const StepContext& c) {
-    const ResolvedInput in = c.resolve(c.text("input"));
-    SeasonsRequest r;
-    r.input = in.pattern;
-    r.rules = in.rules;
-    r.out_dir = c.folder;
-    r.name = c.text("name");
-    r.period = CalendarPeriod::parse(c.text("period", "1M"));
-    if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
-    r.marks = parse_date_marks(c.text("date_marks", "start"));
-    r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
-    r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
-    r.memory_bytes = c.memory_bytes;
-    r.threads = c.threads;
-    r.compression = parse_compression(c.text("compress", "deflate"));
-    r.command_line = c.command_line;
-    r.keep_unchanged = true;
-    r.region = c.region;
-    r.only_years = c.only_years;
-    const SeasonsSummary s = run_seasons(r);
+    const SeasonsSummary s = run_seasons(seasons_request(c));
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };
   return kind;

@@ -1,5 +1,9 @@
 #include <fmt/format.h>
 
+#include <algorithm>
+#include <cmath>
+
+#include "kalends/error.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
@@ -61,6 +65,50 @@ std::vector<std::string> split_list(const std::string& text) {
 }
 
 std::vector<std::string> StepContext::list(const char* key) const { return split_list(text(key)); }
+
+namespace {
+
+// "--date-marks" for the key date_marks: the job reader turns it back into the key.
+std::string option_of(const char* key) {
+  std::string option = std::string("--") + key;
+  std::replace(option.begin(), option.end(), '_', '-');
+  return option;
+}
+
+}  // namespace
+
+namespace {
+
+// Each item of a texts key read whole by `read` (std::stod, std::stoi), or UsageError.
+template <class Value, class Read>
+std::vector<Value> read_items(const StepContext& c, const char* key, Read read, const char* expected) {
+  std::vector<Value> values;
+  for (const std::string& item : c.list(key)) {
+    std::size_t used = 0;
+    Value v{};
+    try {
+      v = read(item, &used);
+    } catch (const std::exception&) {
+      used = 0;
+    }
+    if (used == 0 || item.find_first_not_of(' ', used) != std::string::npos || !std::isfinite(double(v)))
+      throw UsageError(option_of(key) + " '" + item + "'", expected);
+    values.push_back(v);
+  }
+  return values;
+}
+
+}  // namespace
+
+std::vector<double> StepContext::numbers(const char* key) const {
+  return read_items<double>(*this, key, [](const std::string& s, std::size_t* used) { return std::stod(s, used); },
+                            "expected a number");
+}
+
+std::vector<int> StepContext::integers(const char* key) const {
+  return read_items<int>(*this, key, [](const std::string& s, std::size_t* used) { return std::stoi(s, used); },
+                         "expected a whole number");
+}
 
 std::pair<double, double> StepContext::pair(const char* key) const {
   const std::string v = text(key);

@@ -5,6 +5,45 @@
 
 namespace kalends::detail {
 
+namespace {
+
+// The request a 'suitability' step runs, from its keys; reads no file.
+SuitabilityRequest suitability_request(const StepContext& c) {
+  SuitabilityRequest r;
+  TemperatureInputs& t = r.inputs;
+  const char* names[] = {"day", "night", "tmin", "tmax", "temperature"};
+  std::string* fields[] = {&t.day, &t.night, &t.tmin, &t.tmax, &t.temperature};
+  for (int k = 0; k < 5; ++k)
+    if (c.has(names[k])) {
+      const ResolvedInput in = c.resolve(c.text(names[k]));
+      *fields[k] = in.pattern;
+      t.rules = in.rules;
+    }
+  t.unit = parse_temperature_unit(c.text("units", "auto"));
+  t.day_hour = c.number("day_hour", t.day_hour);
+  t.night_hour = c.number("night_hour", t.night_hour);
+  t.marks = parse_date_marks(c.text("date_marks", "start"));
+  r.model = parse_model_kind(c.text("model", "r0-2013"));
+  r.parasite = parse_parasite(c.text("parasite", "falciparum"));
+  if (c.has("window")) std::tie(r.window_low, r.window_high) = c.pair("window");
+  r.parameters_file = c.text("parameters");
+  r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
+  if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
+  r.threshold = c.number("threshold", r.threshold);
+  r.out_dir = c.folder;
+  r.name = c.text("name");
+  r.memory_bytes = c.memory_bytes;
+  r.threads = c.threads;
+  r.compression = parse_compression(c.text("compress", "deflate"));
+  r.command_line = c.command_line;
+  r.keep_unchanged = true;
+  r.region = c.region;
+  r.only_years = c.only_years;
+  return r;
+}
+
+}  // namespace
+
 StepKind suitability_step_kind() {
   using T = KeyType;
   const auto reads = StepKey::Role::reads;
@@ -23,37 +62,9 @@ StepKind suitability_step_kind() {
       if (o.count(k)) return std::string();
     return std::string("a 'suitability' step needs 'day' and 'night', 'tmin' and 'tmax', or 'temperature'");
   };
+  kind.check_values = [](const StepContext& c) { suitability_request(c); };
   kind.run = [](const StepContext& c) {
-    SuitabilityRequest r;
-    TemperatureInputs& t = r.inputs;
-    const char* names[] = {"day", "night", "tmin", "tmax", "temperature"};
-    std::string* fields[] = {&t.day, &t.night, &t.tmin, &t.tmax, &t.temperature};
-    for (int k = 0; k < 5; ++k)
-      if (c.has(names[k])) {
-        const ResolvedInput in = c.resolve(c.text(names[k]));
-        *fields[k] = in.pattern;
-        t.rules = in.rules;
-      }
-    t.unit = parse_temperature_unit(c.text("units", "auto"));
-    t.day_hour = c.number("day_hour", t.day_hour);
-    t.night_hour = c.number("night_hour", t.night_hour);
-    t.marks = parse_date_marks(c.text("date_marks", "start"));
-    r.model = parse_model_kind(c.text("model", "r0-2013"));
-    r.parasite = parse_parasite(c.text("parasite", "falciparum"));
-    if (c.has("window")) std::tie(r.window_low, r.window_high) = c.pair("window");
-    r.parameters_file = c.text("parameters");
-    r.period = CalendarPeriod::parse(c.text("period", "1M"));
-    if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
-    r.threshold = c.number("threshold", r.threshold);
-    r.out_dir = c.folder;
-    r.name = c.text("name");
-    r.memory_bytes = c.memory_bytes;
-    r.threads = c.threads;
-    r.compression = parse_compression(c.text("compress", "deflate"));
-    r.command_line = c.command_line;
-    r.keep_unchanged = true;
-    r.region = c.region;
-    r.only_years = c.only_years;
+    const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution};
   };
