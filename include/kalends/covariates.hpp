@@ -8,6 +8,7 @@
 #include <vector>
 
 #include "kalends/fill.hpp"
+#include "kalends/season.hpp"
 #include "kalends/stack.hpp"
 #include "kalends/time.hpp"
 
@@ -39,6 +40,8 @@ struct CovariateSeries {
   /// periodic kinds: the period of the bands.
   std::optional<CalendarPeriod> period;
   double step_days = 0;  // dated fill outputs on the time grid: the grid step
+  /// dated: the times [from, until) each file stands for (set_date_marks).
+  std::vector<std::pair<TimePoint, TimePoint>> spans;
   int period_count = 0;  // periodic kinds: bands per year
   std::string unit, description;
   std::string caution;  // KALENDS_CAUTION where the layers carry one (suitability)
@@ -54,6 +57,14 @@ struct CovariateSeries {
 std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
                                              bool include_descriptors = false,
                                              const std::vector<std::string>& prefixes = {});
+
+/// Sets the spans of a dated series from what its dates mark in each composite. A file stands
+/// for one step (the grid step of fill outputs, else the median spacing of its dates) from its
+/// date (start), up to it (end) or around it (middle), never past its neighbours' dates: the
+/// rule `kalends seasons` applies to composites (docs/methods.md). Calendar outputs
+/// (`--every`, KALENDS_PERIOD) are dated at their period's start whatever `marks` says.
+/// find_covariates sets start.
+void set_date_marks(CovariateSeries& series, DateMarks marks);
 
 /// The period (0-based) of the calendar year that holds `date`, for a periodic series.
 int period_index(const CalendarPeriod& period, const CivilDate& date);

@@ -28,7 +28,7 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
       "extract", "Covariate values at survey points and dates, with flags, errors and reasons");
   struct Options {
     ExtractRequest request;
-    std::string sampling = "nearest", lags, layers, buffer;
+    std::string sampling = "nearest", lags, layers, buffer, marks = "start";
   };
   auto o = std::make_shared<Options>();
   ExtractRequest& r = o->request;
@@ -50,6 +50,10 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
       ->capture_default_str();
   sub->add_option("--crs", r.points.crs, "CRS of CSV coordinates (EPSG code, WKT or PROJ string)")
       ->capture_default_str();
+  sub->add_option("--date-marks", o->marks,
+                  "What a dated layer's date marks in its composite: start, middle or end (e.g. end for "
+                  "monthly means stamped on the month's last day)")
+      ->capture_default_str();
   return [o, &global] {
     ExtractRequest& r = o->request;
     if (o->sampling == "nearest") r.sampling = Sampling::nearest;
@@ -63,12 +67,13 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
       r.lags.push_back(static_cast<int>(v));
     }
     r.layers = split_list(o->layers);
+    r.marks = parse_date_marks(o->marks);
     const ExtractResult result = run_extract(r);
     if (!global.quiet)
       fmt::print("kalends extract: {} points x {} layers{}: {} values, {} missing (see the reason columns) -> {}\n",
                  result.points.points.size(), result.series.size(),
-                 r.lags.empty() ? "" : fmt::format(" with {} lags", r.lags.size()), result.values.size(),
-                 result.missing, r.out);
+                 r.lags.empty() ? "" : fmt::format(" with {} lags", r.lags.size()),
+                 result.values.size() - result.missing, result.missing, r.out);
   };
 }
 

@@ -202,6 +202,7 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     for (std::size_t i = 1; i < c.files.size(); ++i)
       if (c.kind == SeriesKind::dated ? c.files[i].time == c.files[i - 1].time : c.files[i].year == c.files[i - 1].year)
         throw InputError(c.files[i].path, "the same date or year as " + c.files[i - 1].path);
+    set_date_marks(c, DateMarks::start);
     result.push_back(std::move(c));
   }
   if (result.empty()) {

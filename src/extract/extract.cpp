@@ -336,6 +336,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);
+  for (CovariateSeries& s : r.series) set_date_marks(s, request.marks);
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());
   points_crs.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);

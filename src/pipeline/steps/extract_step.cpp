@@ -31,6 +31,7 @@ ExtractRequest extract_request(const StepContext& c) {
   else if (sampling != "nearest") throw UsageError("--sampling '" + sampling + "'", "expected nearest or bilinear");
   r.buffer_metres = c.number("buffer", 0);
   r.lags = c.integers("lags");
+  r.marks = parse_date_marks(c.text("date_marks", "start"));
   r.layers = c.list("layers");
   r.long_format = c.flag("long");
   r.include_descriptors = c.flag("descriptors");
@@ -49,7 +50,7 @@ StepKind extract_step_kind() {
                {"table", T::text}, {"sampling", T::text}, {"buffer", T::number},
                {"lags", T::text}, {"layers", T::texts}, {"long", T::boolean}, {"descriptors", T::boolean},
                {"id_column", T::text}, {"x_column", T::text}, {"y_column", T::text},
-               {"date_column", T::text}, {"crs", T::text}};
+               {"date_column", T::text}, {"crs", T::text}, {"date_marks", T::text}};
   kind.check = [](const StepOptions& o) {
     if (!o.count("input")) return std::string("an 'extract' step needs 'input' (the steps to sample)");
     if (!o.count("points")) return std::string("an 'extract' step needs 'points' (the survey table)");

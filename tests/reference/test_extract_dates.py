@@ -1,0 +1,134 @@
+#!/usr/bin/python3
+"""Which date of a dated layer a survey day reads (kalends extract --date-marks), on real data.
+
+Data (../shared/data, see its README):
+  monthly-temperature/bcsd_obs_1999.nc: monthly mean air temperature of 1999 from the gridded
+    observations of Maurer, E.P. et al. (2002), J. Climate 15(22):3237-3251. Its CF time values
+    (days since 1950-01-01) fall on the last day of each month: the mean of a month is stamped
+    at its end.
+  alaska-ndvi/observed: MODIS NDVI 16-day composites (Didan 2015, MOD13A1 V006), 8 a year,
+    day of year 145 to 257, 2004-2009: summers only, with the winters between.
+
+Expected values are read here with Python GDAL: the band of the survey's month, at the cell
+holding the point (gdal.InvGeoTransform), for cells observed in the file (flag 0, value as
+stored). With --date-marks end a survey on 15 June reads the June mean (stamped 30 June); with
+the default, start, it reads the file dated on or before the day, the May mean, which is what
+a user who forgot the option would get.
+"""
+import csv
+import datetime
+import os
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+
+def read_table(path):
+    with open(path, newline="") as f:
+        return list(csv.DictReader(f))
+
+
+class ExtractMonthEndDates(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        source = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        g = kt.gdal()
+        ds = g.Open(source)
+        md = ds.GetMetadata()
+        origin = datetime.date(1950, 1, 1)
+        cls.stamps = [origin + datetime.timedelta(days=int(v))
+                      for v in md["NETCDF_DIM_time_VALUES"].strip("{}").split(",")]
+        # Each stamp is the last day of its month (the premise of this test).
+        assert all((s + datetime.timedelta(days=1)).day == 1 for s in cls.stamps), cls.stamps
+        tas = ds.ReadAsArray().astype(np.float64)
+        nodata = ds.GetRasterBand(1).GetNoDataValue()
+        cls.tas = np.where(tas == np.float32(nodata), np.nan, tas)
+        cls.gt = ds.GetGeoTransform()
+        ds = None
+        cls.filled = os.path.join(cls.tmp, "filled")
+        done = kt.run_kalends(["-q", "fill", source, "--out", cls.filled, "--method", "harmonic", "--harmonics", "2"])
+        assert done.returncode == 0, done.stderr
+        # Points at land cells, surveyed on a random day of a random month of 1999.
+        rng = np.random.default_rng(19990615)
+        land = np.argwhere(np.all(np.isfinite(cls.tas), axis=0))
+        picks = land[rng.choice(len(land), 30, replace=False)]
+        cls.points = []
+        for i, (r, c) in enumerate(picks):
+            month = int(rng.integers(2, 13))  # from February, so that 'start' has a month before
+            day = int(rng.integers(1, 29))
+            lon = cls.gt[0] + (c + rng.uniform(0.1, 0.9)) * cls.gt[1]
+            lat = cls.gt[3] + (r + rng.uniform(0.1, 0.9)) * cls.gt[5]
+            cls.points.append(("p%d" % i, lon, lat, datetime.date(1999, month, day), r, c))
+        cls.csv = os.path.join(cls.tmp, "points.csv")
+        with open(cls.csv, "w", newline="") as f:
+            w = csv.writer(f)
+            w.writerow(["id", "longitude", "latitude", "date"])
+            for pid, lon, lat, day, _, _ in cls.points:
+                w.writerow([pid, "%.6f" % lon, "%.6f" % lat, day.isoformat()])
+
+    def extract(self, *options):
+        out = os.path.join(self.tmp, "table-%s.csv" % "-".join(options or ("default",)))
+        done = kt.run_kalends(["extract", self.filled, "--points", self.csv, "--out", out] + list(options))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        return {row["id"]: row for row in read_table(out)}
+
+    def check(self, rows, month_of):
+        for pid, _, _, day, r, c in self.points:
+            row = rows[pid]
+            month = month_of(day)
+            stamp = self.stamps[month - 1]
+            self.assertEqual(row["tas.matched"], stamp.isoformat(), pid)
+            self.assertEqual(row["tas.flag"], "0", pid)
+            self.assertAlmostEqual(float(row["tas"]), self.tas[month - 1, r, c], delta=1e-5, msg=pid)
+
+    def test_end_marks_read_the_survey_month(self):
+        self.check(self.extract("--date-marks", "end"), lambda day: day.month)
+
+    def test_start_marks_read_the_month_before(self):
+        # The file dated on or before the survey day: the previous month's mean (its stamp is the
+        # previous month's last day), unless the survey is on the last day of a month.
+        self.check(self.extract(), lambda day: day.month if day == self.stamps[day.month - 1] else day.month - 1)
+
+
+class ExtractBetweenSeasons(kt.TempDirTestCase):
+    """A winter survey day is covered by no 16-day composite of the Alaska summers."""
+
+    def test_a_day_between_composites_reads_nothing_and_says_why(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        folder = kt.shared_path("alaska-ndvi", "observed")
+        files = sorted(f for f in os.listdir(folder) if f.endswith(".tif"))
+        # The summers of 2004 and 2005, given a geographic grid (the files have none) so that
+        # points can be placed: 0.01 degree cells from 150 W, 65 N.
+        stack = os.path.join(self.tmp, "stack")
+        os.makedirs(stack)
+        g = kt.gdal()
+        for name in files:
+            if name.startswith("ndvi_2004") or name.startswith("ndvi_2005"):
+                g.Translate(os.path.join(stack, name), os.path.join(folder, name), outputSRS="EPSG:4326",
+                            outputBounds=[-150.0, 65.0, -149.0, 64.0])
+        filled = os.path.join(self.tmp, "filled")
+        kt.run_fill_ok(self, [os.path.join(stack, "*.tif"), "--out", filled, "--method", "harmonic", "--harmonics", "1"])
+        last_2004 = [f for f in files if f.startswith("ndvi_2004")][-1][5:15]
+        first_2005 = [f for f in files if f.startswith("ndvi_2005")][0][5:15]
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\nwinter,-149.495,64.505,2005-01-15\n"
+                    "summer,-149.495,64.505,%s\n" % first_2005)
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["extract", filled, "--points", points, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {row["id"]: row for row in read_table(out)}
+        self.assertEqual(rows["winter"]["ndvi"], "")
+        self.assertIn("between %s and %s" % (last_2004, first_2005), rows["winter"]["ndvi.reason"])
+        self.assertEqual(rows["summer"]["ndvi.matched"], first_2005)
+        self.assertEqual(rows["summer"]["ndvi.reason"], "")
+
+
+if __name__ == "__main__":
+    unittest.main()
