@@ -237,6 +237,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
     }
   }
 
+  if (count == 0)
+    throw InputError(request.input, "every date misses the same cells (a fixed mask such as sea or "
+                                    "the area outside a boundary), so no other date's mask withholds an "
+                                    "observed value: there is nothing to score");
+
   // The withheld stack on disk, for the methods (run as `kalends fill` would run them).
   const fs::path work = fs::path(request.out_dir) / "work";
   std::error_code ec;

@@ -214,5 +214,37 @@ class BadInput(kt.TempDirTestCase):
                          ["--method", "kriging"], ["unknown", "method"], "unknown method")
 
 
+class ValidateWithNothingToWithhold(kt.TempDirTestCase):
+    """kalends validate transplants one date's missing cells onto another: a stack whose dates
+    all miss the same cells (sea, the outside of a boundary) or none gives it nothing to score."""
+
+    def refused(self, mask, keywords):
+        folder = os.path.join(self.tmp, "stack-%d" % int(mask.sum()))
+        os.makedirs(folder)
+        for i, date in enumerate(DATES):
+            values = (0.3 + 0.1 * np.random.default_rng(i).random((HEIGHT, WIDTH))).astype(np.float32)
+            values[mask] = np.nan
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date), values, geotransform=GEOTRANSFORM,
+                            epsg=EPSG, nodata=float("nan"))
+        out = os.path.join(self.tmp, "validation-%d" % int(mask.sum()))
+        pattern = os.path.join(folder, "*.tif")
+        done = kt.run_kalends(["validate", pattern, "--out", out, "--methods", "whittaker"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        lines = done.stderr.rstrip("\n").split("\n")
+        self.assertEqual(len(lines), 1, done.stderr)
+        self.assertIn(pattern, lines[0])
+        for k in keywords:
+            self.assertIn(k, lines[0])
+        self.assertFalse(os.path.exists(os.path.join(out, "report.json")))
+
+    def test_the_same_mask_on_every_date(self):
+        sea = np.zeros((HEIGHT, WIDTH), dtype=bool)
+        sea[:, :20] = True
+        self.refused(sea, ["every date misses the same cells", "nothing to score"])
+
+    def test_no_missing_value(self):
+        self.refused(np.zeros((HEIGHT, WIDTH), dtype=bool), ["no date has missing values"])
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
