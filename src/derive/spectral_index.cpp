@@ -3,6 +3,7 @@
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
 
+#include <algorithm>
 #include <atomic>
 #include <cmath>
 #include <filesystem>
@@ -47,6 +48,28 @@ std::vector<std::size_t> pair_by_date(const Stack& base, const Stack& other, con
   return index;
 }
 
+// EVI's constants (L = 1, C1 = 6, C2 = 7.5; Huete et al. 2002, Remote Sens. Environ. 83:195-213)
+// are for surface reflectance in 0..1: on digital numbers or unscaled integers (MODIS stores
+// reflectance x 10000) the formula gives meaningless values, most of them outside -1..1. The
+// median of the first date's values, over a window of at most 512 x 512 px at the centre,
+// tells them apart (reflectance of bright snow or cloud reaches about 1.2; from memory).
+void require_reflectance(const Stack& stack, const std::string& option) {
+  const Grid& grid = stack.grid();
+  const int width = std::min(grid.width, 512), height = std::min(grid.height, 512);
+  const Window window{(grid.width - width) / 2, (grid.height - height) / 2, width, height};
+  std::vector<float> values(window.pixels());
+  stack.reader()->read_values(0, window, values.data());
+  values.erase(std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }), values.end());
+  if (values.empty()) return;
+  auto middle = values.begin() + values.size() / 2;
+  std::nth_element(values.begin(), middle, values.end());
+  if (*middle > 1.5f)
+    throw UsageError(option + " " + stack.layers().front().path,
+                     fmt::format("values (median {:g}) are not reflectances in 0..1, which EVI's constants "
+                                 "assume; give --scale (0.0001 for MODIS surface reflectance)",
+                                 double(*middle)));
+}
+
 }  // namespace
 
 IndexSummary run_index(const IndexRequest& request) {
@@ -69,6 +92,9 @@ IndexSummary run_index(const IndexRequest& request) {
   if (evi) {
     blue = Stack::open(request.blue, rules_for(request.blue_band));
     blue_of = pair_by_date(red, *blue, "blue");
+    require_reflectance(red, "--red");
+    require_reflectance(nir, "--nir");
+    require_reflectance(*blue, "--blue");
   }
   std::optional<Stack> qa;
   std::vector<std::size_t> qa_of;

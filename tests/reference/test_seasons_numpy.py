@@ -270,9 +270,14 @@ class RealData(kt.TempDirTestCase):
         g = kt.gdal()
         bands = g.Open(path).ReadAsArray().astype(np.float64)   # DN of bands 1-5, 7
         blue, red, nir = bands[0], bands[2], bands[3]
+        # EVI's constants are for reflectance in 0..1 (Huete et al. 2002), and kalends refuses
+        # digital numbers for it; 0.004 maps DN 0..255 into 0..1.02. It is no radiometric
+        # calibration, only a scale under which the formula can be checked.
+        scale = 0.004
         with np.errstate(divide="ignore", invalid="ignore"):
             ndvi = (nir - red) / (nir + red)
-            evi = 2.5 * (nir - red) / (nir + 6 * red - 7.5 * blue + 1)
+            b, r, n = ((v * scale).astype(np.float32).astype(np.float64) for v in (blue, red, nir))
+            evi = 2.5 * (n - r) / (n + 6 * r - 7.5 * b + 1)
         for kind, ref in (("ndvi", ndvi), ("evi", evi)):
             ref = np.where(np.isfinite(ref) & (ref >= -1) & (ref <= 1), ref, np.nan)
             out = os.path.join(self.tmp, kind)
@@ -280,6 +285,11 @@ class RealData(kt.TempDirTestCase):
                     "--kind", kind, "--date", "2000-01-01", "--out", out]
             if kind == "evi":
                 args += ["--blue", path, "--blue-band", "1"]
+                refused = kt.run_kalends([a if a != out else out + "-dn" for a in args])
+                self.assertEqual(refused.returncode, 2, refused.stderr)
+                self.assertIn("not reflectances", refused.stderr)
+                self.assertIn("L7_ETMs.tif", refused.stderr)
+                args += ["--scale", str(scale)]
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 0, done.stderr)
             ds = g.Open(os.path.join(out, "%s_2000-01-01.tif" % kind))
