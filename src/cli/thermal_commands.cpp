@@ -1,6 +1,7 @@
 // kalends diurnal, kalends suitability
 #include <fmt/format.h>
 
+#include <cmath>
 #include <cstdio>
 
 #include "cli/commands.hpp"
@@ -214,10 +215,12 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
           "{} ({} files)\n",
           s.model, s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
           r.out_dir, s.files);
-      fmt::print(
-          "  synoptic cycle: {:.2f} suitable {} per pixel on average (suitability above {:g})\n",
-          s.mean_suitable_periods,
-          r.period.kind == CalendarPeriod::Kind::month ? "months" : "periods", r.threshold);
+      const char* periods = r.period.kind == CalendarPeriod::Kind::month ? "months" : "periods";
+      if (std::isfinite(s.mean_suitable_periods))
+        fmt::print("  synoptic cycle: {:.2f} suitable {} per pixel on average (suitability above {:g})\n",
+                   s.mean_suitable_periods, periods, r.threshold);
+      else
+        fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
       if (s.implausible > 0)
         fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
       std::fflush(stdout);

@@ -1,5 +1,6 @@
 #include "io/gdal_session.hpp"
 
+#include <cpl_conv.h>
 #include <cpl_error.h>
 
 #include <mutex>
@@ -16,6 +17,9 @@ void start_gdal() {
   static std::once_flag once;
   std::call_once(once, [] {
     GDALAllRegister();
+    // GRIB in the file's own units, labelled as such: GDAL 3.6 labels GRIB1 temperatures "[C]"
+    // while still returning kelvin when it "normalises" them. A user's own setting wins.
+    if (!CPLGetConfigOption("GRIB_NORMALIZE_UNITS", nullptr)) CPLSetConfigOption("GRIB_NORMALIZE_UNITS", "NO");
     // The last error is still recorded per thread (CPLGetLastErrorMsg) with a quiet handler.
     CPLSetErrorHandler(quiet_handler);
   });

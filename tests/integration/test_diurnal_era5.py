@@ -157,14 +157,39 @@ class DiurnalEra5(kt.TempDirTestCase):
         print("\nERA5 March 2019, share of hours in 5-10 C: rebuilt from daily extremes vs true hours, "
               "mean absolute difference %.3f" % np.mean(np.abs(march - truth)), file=sys.stderr)
 
+    def test_the_grib_unit_is_read_without_units(self):
+        # kalends reads GRIB in the file's own units (GRIB_NORMALIZE_UNITS=NO): this GRIB1 file
+        # then says "[K]" and holds kelvin, so --units is not needed. (With GDAL 3.6's default
+        # normalisation the label says "[C]" while the values stay kelvin.)
+        runs = {}
+        for name, extra in (("auto", []), ("kelvin", ["--units", "kelvin"])):
+            out = os.path.join(self.tmp, "units-" + name)
+            done = kt.run_kalends(["suitability", "--temperature", self.grib, "--model", "window", "--window",
+                                   "5,10", "--out", out] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            ds = kt.gdal().Open(os.path.join(out, "window_year_2019.tif"))
+            runs[name] = ds.ReadAsArray()
+            ds = None
+        np.testing.assert_array_equal(runs["auto"], runs["kelvin"])
+
     def test_unit_label_that_contradicts_the_values_is_refused(self):
-        # GDAL 3.6 reports GRIB_UNIT "[C]" for this GRIB1 file but returns kelvin: kalends
-        # must not take 280 for degrees Celsius.
+        # A band whose unit says degrees Celsius but which holds kelvin (these hours, as float32):
+        # kalends must not take 280 for degrees Celsius.
+        folder = os.path.join(self.tmp, "mislabelled")
+        os.makedirs(folder)
+        g = kt.gdal()
+        for d in range(3):
+            path = os.path.join(folder, "t2m_2019-03-%02d.tif" % (d + 1))
+            kt.write_raster(path, (self.hours[24 * d] + 273.15).astype(np.float32), geotransform=self.gt,
+                            epsg=4326)
+            ds = g.Open(path, 1)
+            ds.GetRasterBand(1).SetUnitType("C")
+            ds = None
         out = os.path.join(self.tmp, "contradiction")
-        done = kt.run_kalends(["suitability", "--temperature", self.grib, "--out", out])
+        done = kt.run_kalends(["suitability", "--temperature", os.path.join(folder, "*.tif"), "--out", out])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("look like kelvin", done.stderr)
-        self.assertIn("era5-2mt-2019-03-uk.grib", done.stderr)
+        self.assertIn("t2m_2019-03-01.tif", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, "r0-2013_synoptic.tif")))
 
     def test_calibrated_parameters_lower_the_error_on_unseen_days(self):
