@@ -19,6 +19,10 @@ namespace kalends {
 /// monthly NetCDF files the middle or the last day.
 enum class DateMarks { start, middle, end };
 DateMarks parse_date_marks(const std::string& text);  // "start", "middle", "end"; UsageError
+/// Whether the dates (two or more) all fall on the last day of their month, a month apart or
+/// more: the way CF files commonly stamp monthly means, which `DateMarks::end` reads as each
+/// month's own. Commands say so when they read such dates as starts.
+bool dates_at_month_ends(const std::vector<TimePoint>& dates);
 
 /// "2004-2009" or "2006" -> first and last year; UsageError otherwise.
 std::pair<int, int> parse_years(const std::string& text);

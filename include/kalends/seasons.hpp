@@ -41,6 +41,7 @@ struct SeasonsSummary {
   int years = 0, periods = 0, files = 0, width = 0, height = 0;
   int first_year = 0, last_year = 0;
   double seconds = 0;
+  bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
   std::vector<std::string> outputs;
 };
 

@@ -112,6 +112,7 @@ struct SuitabilitySummary {
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value
   std::int64_t implausible = 0;        // values outside -100..100 deg C, taken as missing
   double seconds = 0;
+  bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
   std::vector<std::string> outputs;
 };
 

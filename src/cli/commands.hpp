@@ -8,6 +8,7 @@
 #include <utility>
 
 #include "kalends/fill_method.hpp"
+#include "kalends/season.hpp"
 #include "kalends/stack.hpp"
 
 namespace kalends::cli {
@@ -49,6 +50,10 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
 
 /// MIN,MAX; UsageError naming `option` otherwise.
 std::pair<double, double> parse_range(const std::string& text, const std::string& option);
+
+/// A note on stderr where the inputs' dates all fall on month ends but are read as starts:
+/// monthly means stamped at their end then stand for the month after.
+void note_month_end_dates(bool dates_at_month_ends, DateMarks marks);
 
 /// The gap-filling method's options (all but --method), shared by fill and validate. The texts
 /// hold what is parsed after the command line is read (numbers or "auto", ranges).

@@ -1,6 +1,8 @@
 // kalends index, kalends seasons, kalends compare
 #include <fmt/format.h>
 
+#include <cstdio>
+
 #include "cli/commands.hpp"
 #include "kalends/compare.hpp"
 #include "kalends/error.hpp"
@@ -53,6 +55,13 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   };
 }
 
+void note_month_end_dates(bool dates_at_month_ends, DateMarks marks) {
+  if (!dates_at_month_ends || marks != DateMarks::start) return;
+  std::fprintf(stderr,
+               "Note: every input date is the last day of its month. If they stamp monthly means (as CF "
+               "files often do), give --date-marks end: read as starts, each stands for the month after.\n");
+}
+
 Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("seasons", "Synoptic and year-specific layers, anomalies, cycle descriptors");
   struct Options {
@@ -89,6 +98,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
     if (!global.quiet)
       fmt::print("kalends seasons: {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
                  s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds, r.out_dir, s.files);
+    note_month_end_dates(s.dates_at_month_ends, r.marks);
   };
 }
 

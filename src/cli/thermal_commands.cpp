@@ -225,6 +225,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
         fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
       std::fflush(stdout);
     }
+    note_month_end_dates(s.dates_at_month_ends, r.inputs.marks);
     std::fprintf(stderr, "%s\n", suitability_caution);
   };
 }

@@ -9,6 +9,16 @@
 
 namespace kalends {
 
+bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
+  if (dates.size() < 2) return false;
+  for (std::size_t i = 0; i < dates.size(); ++i) {
+    const CivilDate d = dates[i].date();
+    if (d.day != days_in_month(d.year, d.month)) return false;
+    if (i > 0 && dates[i].days() - dates[i - 1].days() < 28) return false;
+  }
+  return true;
+}
+
 DateMarks parse_date_marks(const std::string& text) {
   if (text == "start") return DateMarks::start;
   if (text == "middle") return DateMarks::middle;

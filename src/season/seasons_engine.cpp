@@ -271,6 +271,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.height = area.height;
   summary.first_year = first_year;
   summary.last_year = last_year;
+  summary.dates_at_month_ends = dates_at_month_ends(times);
   summary.outputs = output_paths;
   summary.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
   return summary;

@@ -330,6 +330,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   outputs.commit();
 
   SuitabilitySummary summary;
+  summary.dates_at_month_ends = dates_at_month_ends(times);
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;

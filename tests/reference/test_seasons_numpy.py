@@ -253,6 +253,22 @@ class RealData(kt.TempDirTestCase):
         # The file's time values fall on the last day of each month.
         done = kt.run_kalends(["-q", "seasons", source, "--out", out, "--date-marks", "end"])
         self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("last day of its month", done.stderr)
+        # Read as starts (the default), the same dates draw a note suggesting --date-marks end,
+        # and the year layer is then about a month late: 'end' gives June's own mean, 'start'
+        # lets the mean stamped 31 May stand for 31 May - 29 June (30 days, its gap to the next
+        # date) and the one stamped 30 June for 30 June on, so June is 29 days of May's mean and
+        # one of June's.
+        starts = os.path.join(self.tmp, "tas-starts")
+        as_starts = kt.run_kalends(["-q", "seasons", source, "--out", starts])
+        self.assertEqual(as_starts.returncode, 0, as_starts.stderr)
+        self.assertIn("every input date is the last day of its month", as_starts.stderr)
+        self.assertIn("--date-marks end", as_starts.stderr)
+        year_end = g.Open(os.path.join(out, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
+        year_start = g.Open(os.path.join(starts, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
+        land_cells = np.all(np.isfinite(tas), axis=0)
+        np.testing.assert_allclose(year_end[5][land_cells], tas[5][land_cells], rtol=1e-6)
+        np.testing.assert_allclose(year_start[5][land_cells], ((29 * tas[4] + tas[5]) / 30)[land_cells], rtol=1e-5)
         cycle = g.Open(os.path.join(out, "tas_cycle_1999.tif"))
         names = [cycle.GetRasterBand(b).GetDescription() for b in range(1, cycle.RasterCount + 1)]
         data = cycle.ReadAsArray().astype(np.float64)
