@@ -3,7 +3,15 @@
 #include <cpl_conv.h>
 #include <cpl_error.h>
 
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <cctype>
+#include <cstdio>
+#include <filesystem>
 #include <mutex>
+#include <optional>
 
 #include "kalends/error.hpp"
 
@@ -36,11 +44,58 @@ std::string gdal_message(const std::string& fallback) {
   return text;
 }
 
+namespace {
+
+bool looks_like_grib(const std::string& path) {
+  std::string extension = std::filesystem::path(path).extension().string();
+  std::transform(extension.begin(), extension.end(), extension.begin(),
+                 [](unsigned char c) { return char(std::tolower(c)); });
+  return extension == ".grib" || extension == ".grb" || extension == ".grib2" || extension == ".grb2";
+}
+
+// degrib, GDAL's GRIB decoder, printf()s a warning to standard output when a file ends in
+// trailing bytes (common in ERA5 downloads), which would mix into kalends' own output (the
+// summaries, `kalends run --events` JSON). While a GRIB file opens, standard output points to
+// /dev/null; one open at a time, since the descriptor is the process's. Nothing else writes to
+// standard output while steps run (progress goes to standard error).
+class QuietStandardOutput {
+ public:
+  QuietStandardOutput() : lock_(mutex()) {
+    std::fflush(stdout);
+    saved_ = ::dup(STDOUT_FILENO);
+    const int null = ::open("/dev/null", O_WRONLY);
+    if (saved_ >= 0 && null >= 0) ::dup2(null, STDOUT_FILENO);
+    if (null >= 0) ::close(null);
+  }
+  ~QuietStandardOutput() {
+    std::fflush(stdout);
+    if (saved_ >= 0) {
+      ::dup2(saved_, STDOUT_FILENO);
+      ::close(saved_);
+    }
+  }
+  QuietStandardOutput(const QuietStandardOutput&) = delete;
+  QuietStandardOutput& operator=(const QuietStandardOutput&) = delete;
+
+ private:
+  static std::mutex& mutex() {
+    static std::mutex m;
+    return m;
+  }
+  std::lock_guard<std::mutex> lock_;
+  int saved_ = -1;
+};
+
+}  // namespace
+
 GDALDatasetUniquePtr open_raster(const std::string& path) {
   start_gdal();
   CPLErrorReset();
+  std::optional<QuietStandardOutput> quiet;
+  if (looks_like_grib(path)) quiet.emplace();
   GDALDatasetUniquePtr dataset(
       GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY | GDAL_OF_VERBOSE_ERROR));
+  quiet.reset();
   if (!dataset) throw InputError(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
   return dataset;
