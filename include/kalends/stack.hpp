@@ -96,4 +96,9 @@ class StackReader {
 /// Fails with InputError unless both grids are the same (size, geotransform, CRS).
 void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where);
 
+/// For each layer of `base`, the index of the layer of `other` (a QA stack, a band partner) with
+/// the same time. InputError when the grids differ, or naming the base layer's file when it
+/// has no partner ("no QA layer for 2004-05-24 in 'qa/*.tif'"; `what` is "QA").
+std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what);
+
 }  // namespace kalends

@@ -28,6 +28,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global);
 Action add_index_command(CLI::App& app, GlobalOptions& global);
 Action add_seasons_command(CLI::App& app, GlobalOptions& global);
 Action add_compare_command(CLI::App& app, GlobalOptions& global);
+/// `kalends inspect`: how a stack is read.
+Action add_inspect_command(CLI::App& app, GlobalOptions& global);
 /// `kalends validate`.
 Action add_validate_command(CLI::App& app, GlobalOptions& global);
 

@@ -36,7 +36,7 @@ int main(int argc, char** argv) {
   app.add_flag("-q,--quiet", global.quiet, "Print only errors");
   app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
   std::map<CLI::App*, cli::Action> actions;
-  for (auto add : {&cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
+  for (auto add : {&cli::add_inspect_command, &cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
                    &cli::add_compare_command, &cli::add_grid_command, &cli::add_validate_command, &cli::add_run_command,
                    &cli::add_status_command, &cli::add_plan_command,
                    &cli::add_diurnal_command, &cli::add_suitability_command,

@@ -35,19 +35,6 @@ namespace {
 
 constexpr int tile_size = 256;
 
-std::vector<std::size_t> pair_by_date(const Stack& base, const Stack& other, const std::string& what) {
-  require_same_grid(base.grid(), other.grid(), other.layers().front().path);
-  std::vector<std::size_t> index;
-  for (const Layer& layer : base.layers()) {
-    const auto& layers = other.layers();
-    const auto it = std::find_if(layers.begin(), layers.end(), [&](const Layer& l) { return l.time == layer.time; });
-    if (it == layers.end())
-      throw InputError(layer.path, "no " + what + " layer for " + layer.time.label() + " in '" + other.input() + "'");
-    index.push_back(std::size_t(it - layers.begin()));
-  }
-  return index;
-}
-
 // EVI's constants (L = 1, C1 = 6, C2 = 7.5; Huete et al. 2002, Remote Sens. Environ. 83:195-213)
 // are for surface reflectance in 0..1: on digital numbers or unscaled integers (MODIS stores
 // reflectance x 10000) the formula gives meaningless values, most of them outside -1..1. The
@@ -86,12 +73,12 @@ IndexSummary run_index(const IndexRequest& request) {
   };
   const Stack red = Stack::open(request.red, rules_for(request.red_band));
   const Stack nir = Stack::open(request.nir, rules_for(request.nir_band));
-  const std::vector<std::size_t> nir_of = pair_by_date(red, nir, "near-infrared");
+  const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {
     blue = Stack::open(request.blue, rules_for(request.blue_band));
-    blue_of = pair_by_date(red, *blue, "blue");
+    blue_of = partners_by_date(red, *blue, "blue");
     require_reflectance(red, "--red");
     require_reflectance(nir, "--nir");
     require_reflectance(*blue, "--blue");
@@ -100,7 +87,7 @@ IndexSummary run_index(const IndexRequest& request) {
   std::vector<std::size_t> qa_of;
   if (!request.qa.empty()) {
     qa = Stack::open(request.qa, ValueRules{});
-    qa_of = pair_by_date(red, *qa, "QA");
+    qa_of = partners_by_date(red, *qa, "QA");
   }
   const std::string name = request.name.empty() ? (evi ? "evi" : "ndvi") : request.name;
   std::error_code ec;

@@ -115,16 +115,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     ValueRules qa_rules;
     qa_rules.exclude = request.rules.exclude;
     qa_stack = Stack::open(request.qa_input, qa_rules);
-    require_same_grid(stack.grid(), qa_stack->grid(), qa_stack->layers().front().path);
-    for (const Layer& layer : stack.layers()) {
-      const auto& qa_layers = qa_stack->layers();
-      const auto it = std::find_if(qa_layers.begin(), qa_layers.end(),
-                                   [&](const Layer& q) { return q.time == layer.time; });
-      if (it == qa_layers.end())
-        throw InputError(layer.path, "no QA layer for " + layer.time.label() + " in '" +
-                                         request.qa_input + "'");
-      qa_of_layer.push_back(std::size_t(it - qa_layers.begin()));
-    }
+    qa_of_layer = partners_by_date(stack, *qa_stack, "QA");
   }
   const TimeGrid grid = TimeGrid::build(stack.times());
   const int n_slots = grid.size;

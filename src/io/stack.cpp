@@ -26,7 +26,14 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   globfree(&result);
   if (status == GLOB_NOMATCH || (status == 0 && paths.empty()))
     throw InputError(pattern, "no file matches this pattern");
-  if (status != 0) throw InputError(pattern, "cannot list the files of this pattern");
+  if (status != 0) {
+    // GLOB_ERR stops at a folder it cannot read: say which, when the pattern's folder is missing.
+    const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
+    if (!folder.empty() && folder.string().find_first_of("*?[") == std::string::npos &&
+        !std::filesystem::exists(folder))
+      throw InputError(pattern, "no file matches this pattern: the folder " + folder.string() + " does not exist");
+    throw InputError(pattern, "cannot list the files of this pattern");
+  }
   std::sort(paths.begin(), paths.end());
   return paths;
 }
@@ -225,6 +232,19 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
       throw InputError(where, "georeferencing (origin or pixel size) differs from the rest of the stack");
   if (!same_crs(expected.crs_wkt, actual.crs_wkt))
     throw InputError(where, "coordinate reference system differs from the rest of the stack");
+}
+
+std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {
+  require_same_grid(base.grid(), other.grid(), other.layers().front().path);
+  std::vector<std::size_t> index;
+  const auto& layers = other.layers();
+  for (const Layer& layer : base.layers()) {
+    const auto it = std::find_if(layers.begin(), layers.end(), [&](const Layer& l) { return l.time == layer.time; });
+    if (it == layers.end())
+      throw InputError(layer.path, "no " + what + " layer for " + layer.time.label() + " in '" + other.input() + "'");
+    index.push_back(std::size_t(it - layers.begin()));
+  }
+  return index;
 }
 
 Stack Stack::open(const std::string& input, const ValueRules& rules) {

@@ -1,0 +1,126 @@
+#!/usr/bin/python3
+"""kalends inspect: how a stack is read, checked with Python GDAL and numpy.
+
+Data (../shared/data, see its README):
+  alaska-ndvi/masked50: MODIS NDVI 16-day composites (Didan 2015, MOD13A1 V006), NaN = missing,
+    dates in the file names (ndvi_YYYY-MM-DD.tif).
+  monthly-temperature/bcsd_obs_1999.nc: Maurer et al. (2002), J. Climate 15:3237; CF time axis
+    "days since 1950-01-01", _FillValue 1e20 over the sea, longitude/latitude axes.
+A synthetic stack with a QA stack (tools/synth_stack.py; invented data, for the mechanics of
+the QA count only).
+
+Expected values are computed here: dates from the names with a regular expression or from the
+CF time values (CF Conventions 4.4: origin + value x unit), observed cells with numpy on
+what GDAL reads, the QA rule "bits0-1 in 0,1" as (qa & 3) <= 1.
+"""
+import datetime
+import glob
+import json
+import os
+import re
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "..", "tools"))
+import kalends_testlib as kt  # noqa: E402
+import synth_stack  # noqa: E402
+
+
+def inspect(*args):
+    done = kt.run_kalends(["inspect"] + list(args) + ["--json"])
+    assert done.returncode == 0, done.stderr
+    return json.loads(done.stdout)
+
+
+class InspectRealData(kt.TempDirTestCase):
+    def test_alaska_dates_from_names_and_observed_cells(self):
+        folder = kt.shared_path("alaska-ndvi", "masked50")
+        report = inspect(os.path.join(folder, "*.tif"))
+        files = sorted(glob.glob(os.path.join(folder, "*.tif")))
+        names = [re.search(r"(\d{4}-\d{2}-\d{2})", os.path.basename(f)).group(1) for f in files]
+        self.assertEqual([d["date"][:10] for d in report["dates"]], names)
+        self.assertTrue(all(d["from"] == "file name" for d in report["dates"]))
+        self.assertIsNone(report["crs"])
+        self.assertIsNone(report["geotransform"])
+        g = kt.gdal()
+        ever = np.zeros((100, 100), dtype=bool)
+        for f, d in zip(files, report["dates"]):
+            values = g.Open(f).ReadAsArray()
+            finite = np.isfinite(values)
+            ever |= finite
+            self.assertEqual(d["observed"], int(finite.sum()), f)
+            self.assertEqual(d["nodata"], "NaN")
+            self.assertAlmostEqual(d["mean"], float(values[finite].astype(np.float64).mean()), places=6)
+            self.assertAlmostEqual(d["min"], float(values[finite].min()), places=7)
+        self.assertEqual(report["pixels_never_observed"], int((~ever).sum()))
+        # 16-day composites: the median spacing.
+        days = [datetime.date.fromisoformat(n) for n in names]
+        self.assertEqual(report["time_grid"]["step_days"], float(np.median(np.diff([d.toordinal() for d in days]))))
+        self.assertEqual(report["time_grid"]["slots_with_data"], len(files))
+
+    def test_netcdf_time_axis_crs_and_fill_value(self):
+        path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        source = 'NETCDF:"%s":tas' % path
+        report = inspect(source)
+        g = kt.gdal()
+        ds = g.Open(source)
+        md = ds.GetMetadata()
+        origin = datetime.date(1950, 1, 1)
+        expected = [(origin + datetime.timedelta(days=int(v))).isoformat()
+                    for v in md["NETCDF_DIM_time_VALUES"].strip("{}").split(",")]
+        self.assertEqual([d["date"][:10] for d in report["dates"]], expected)
+        self.assertTrue(all(d["from"] == "band metadata" for d in report["dates"]))
+        self.assertIn("EPSG:4326", report["crs"])  # CF longitude/latitude axes, no grid mapping
+        tas = ds.ReadAsArray()
+        for k, d in enumerate(report["dates"]):
+            self.assertEqual(d["observed"], int((tas[k] < 1e19).sum()))
+            self.assertEqual(d["band"], k + 1)
+        ds = None
+        # Month-end stamps: the text report points to --date-marks end.
+        done = kt.run_kalends(["inspect", source])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("--date-marks end", done.stdout)
+
+    def test_quick_reads_no_value(self):
+        report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
+        self.assertFalse(report["values_read"])
+        self.assertIsNone(report["pixels_never_observed"])
+        self.assertTrue(all(d["observed"] is None for d in report["dates"]))
+        self.assertEqual(len(report["dates"]), 48)
+
+
+class InspectQa(kt.TempDirTestCase):
+    def test_qa_rejections_equal_numpy(self):
+        ndvi, qa = os.path.join(self.tmp, "ndvi"), os.path.join(self.tmp, "qa")
+        synth_stack.make_stack(ndvi, width=64, height=48, years=1, qa_dir=qa)
+        report = inspect(os.path.join(ndvi, "ndvi_*.tif"), "--qa", os.path.join(qa, "qa_*.tif"),
+                         "--keep", "bits0-1 in 0,1")
+        g = kt.gdal()
+        values = sorted(glob.glob(os.path.join(ndvi, "ndvi_*.tif")))
+        masks = sorted(glob.glob(os.path.join(qa, "qa_*.tif")))
+        self.assertEqual(len(report["dates"]), len(values))
+        rejected_total = 0
+        for v, q, d in zip(values, masks, report["dates"]):
+            ds = g.Open(v)
+            band = ds.GetRasterBand(1)
+            raw = band.ReadAsArray()
+            has_value = raw != band.GetNoDataValue()
+            kept = (g.Open(q).ReadAsArray().astype(np.int64) & 3) <= 1
+            self.assertEqual(d["rejected_by_qa"], int((has_value & ~kept).sum()), v)
+            self.assertEqual(d["observed"], int((has_value & kept).sum()), v)
+            self.assertAlmostEqual(d["scale"], band.GetScale())
+            rejected_total += d["rejected_by_qa"]
+        self.assertGreater(rejected_total, 0)
+
+    def test_bad_input_is_one_line_and_exit_2(self):
+        done = kt.run_kalends(["inspect", os.path.join(self.tmp, "nothing", "*.tif")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("no file matches", done.stderr)
+
+
+if __name__ == "__main__":
+    unittest.main()
