@@ -55,7 +55,7 @@ bool looks_like_grib(const std::string& path) {
 
 // degrib, GDAL's GRIB decoder, printf()s a warning to standard output when a file ends in
 // trailing bytes (common in ERA5 downloads), which would mix into kalends' own output (the
-// summaries, `kalends run --events` JSON). While a GRIB file opens, standard output points to
+// summaries, `kalends run --log json`). While a GRIB file opens, standard output points to
 // /dev/null; one open at a time, since the descriptor is the process's. Nothing else writes to
 // standard output while steps run (progress goes to standard error).
 class QuietStandardOutput {
