@@ -28,6 +28,11 @@ std::int64_t parse_memory_size(const std::string& text);
 enum class Compression { deflate, zstd, lzw, none };
 Compression parse_compression(const std::string& text);
 
+/// What a date marks in the composite it names: its first day (MODIS), its middle, or its
+/// last day (monthly means stamped at the month's end, as CF files often do).
+enum class DateMarks { start, middle, end };
+DateMarks parse_date_marks(const std::string& text);  // "start", "middle", "end"; UsageError
+
 struct FillRequest {
   std::string input;
   ValueRules rules;
@@ -38,6 +43,9 @@ struct FillRequest {
   std::string name;  // empty = from the input
   bool smooth = false;
   std::optional<CalendarPeriod> every;
+  /// For the calendar (`every`): a date's value stands for the middle of its composite, half a
+  /// step after a start mark and before an end mark.
+  DateMarks marks = DateMarks::start;
   std::int64_t memory_bytes = std::int64_t(1) << 30;
   int threads = 0;  // 0 = all cores
   Compression compression = Compression::deflate;

@@ -17,8 +17,6 @@ namespace kalends {
 
 /// Which part of a composite's interval its date marks: MODIS dates mark the first day, many
 /// monthly NetCDF files the middle or the last day.
-enum class DateMarks { start, middle, end };
-DateMarks parse_date_marks(const std::string& text);  // "start", "middle", "end"; UsageError
 /// Whether the dates (two or more) all fall on the last day of their month, a month apart or
 /// more: the way CF files commonly stamp monthly means, which `DateMarks::end` reads as each
 /// month's own. Commands say so when they read such dates as starts.

@@ -53,7 +53,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     bool mosaic = false;
     MethodOptionTexts method_texts;
     ValueRuleTexts rule_texts;
-    std::string memory = "1G", every, compression = "deflate";
+    std::string memory = "1G", every, compression = "deflate", marks = "start";
   };
   auto o = std::make_shared<Options>();
   FillRequest& r = o->request;
@@ -65,6 +65,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   add_method_options(sub, r.method, o->method_texts);
   sub->add_flag("--smooth", r.smooth, "Write the fitted curve everywhere, not only in gaps");
   sub->add_option("--every", o->every, "Also write a regular calendar: 8d, 16d or 1M");
+  sub->add_option("--date-marks", o->marks,
+                  "For --every: what an input date marks in its composite: start (MODIS), middle or end")
+      ->check(CLI::IsMember({"start", "middle", "end"}))
+      ->capture_default_str();
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date");
   sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");
@@ -82,6 +86,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
     if (!o->every.empty()) r.every = CalendarPeriod::parse(o->every);
+    r.marks = parse_date_marks(o->marks);
     r.memory_bytes = parse_memory(o->memory);
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;

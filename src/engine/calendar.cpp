@@ -52,10 +52,12 @@ std::pair<std::int64_t, std::int64_t> period_of(std::int64_t day, const Calendar
 
 }  // namespace
 
-std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period) {
+std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period, DateMarks marks) {
   std::vector<PeriodMean> periods;
   if (grid.size == 0) return periods;
-  const double start_day = grid.start.seconds / 86400.0;
+  // Calendar day d reads the curve at d - shift: slot times are moved to their composites' middles.
+  const double shift = marks == DateMarks::start ? grid.step_days / 2 : marks == DateMarks::end ? -grid.step_days / 2 : 0.0;
+  const double start_day = grid.start.seconds / 86400.0 + shift;
   const double first_day = start_day + grid.slot_days.front();
   const double last_day = start_day + grid.slot_days.back();
   std::int64_t day = std::int64_t(std::floor(first_day));

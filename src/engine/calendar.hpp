@@ -17,9 +17,11 @@ struct PeriodMean {
   std::vector<int> slots_inside;  // slots whose date falls inside the period
 };
 
-/// Periods from the one holding the first grid date to the one holding the last. Each
+/// Periods from the one holding the first composite to the one holding the last. Each
 /// period's value is the day-weighted mean of the curve interpolated linearly between slots,
-/// over the days the grid covers.
-std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period);
+/// over the days the grid covers. A slot's value stands for the middle of its composite: half
+/// a step after its date when the dates mark starts, half a step before when they mark ends.
+std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period,
+                                     DateMarks marks = DateMarks::middle);
 
 }  // namespace kalends::detail

@@ -130,7 +130,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::vector<detail::PeriodMean> periods;
   std::string calendar_dir;
   if (request.every) {
-    periods = detail::period_means(grid, *request.every);
+    periods = detail::period_means(grid, *request.every, request.marks);
     calendar_dir = (fs::path(request.out_dir) / ("calendar-" + request.every->label())).string();
     fs::create_directories(calendar_dir, ec);
     if (ec) throw OutputError(calendar_dir, "cannot create the output folder: " + ec.message());
@@ -245,6 +245,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     spec.metadata["KALENDS_PERIOD"] = request.every->label();
     spec.metadata["KALENDS_PERIOD_DAYS_COVERED"] = std::to_string(period.days);
     spec.metadata["KALENDS_VALUES"] = "period mean of the fitted curve";
+    spec.metadata["KALENDS_DATE_MARKS"] = request.marks == DateMarks::start ? "start"
+                                          : request.marks == DateMarks::end ? "end"
+                                                                              : "middle";
     spec.bands = detail::fill_bands(unit);
     specs.push_back(std::move(spec));
   }

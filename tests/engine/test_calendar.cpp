@@ -28,6 +28,29 @@ TEST_CASE("monthly period means are day-weighted and cover the grid", "[engine][
   CHECK(mean == Approx(15.0 / 16));
 }
 
+TEST_CASE("a date marking a composite's start stands for its middle", "[engine][calendar]") {
+  // 16-day composites dated at their first day from 2021-01-01: each value stands for the
+  // composite's middle, 8 days later. The calendar then starts on 9 January (23 days of
+  // January) and calendar day d reads the curve at d - 8: January's mean of z = slot is the
+  // curve's mean over days 0 .. 22, slot 11 / 16 (worked by hand).
+  std::vector<TimePoint> times;
+  for (int i = 0; i < 10; ++i) times.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * i) * 86400});
+  const TimeGrid grid = TimeGrid::build(times);
+  const auto starts = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::start);
+  REQUIRE(starts.size() == 6);
+  CHECK(starts[0].days == 23);
+  double mean = 0;
+  for (std::size_t j = 0; j < starts[0].slots.size(); ++j) mean += starts[0].weights[j] * starts[0].slots[j];
+  CHECK(mean == Approx(11.0 / 16));
+  // The last composite (2021-05-25) stands for 2 June: June is covered to the 2nd.
+  CHECK(starts[5].start.label() == "2021-06-01");
+  CHECK(starts[5].days == 2);
+  const auto ends = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::end);
+  // Dated at their last day: each stands for 8 days earlier, so December 2020 comes first.
+  CHECK(ends.front().start.label() == "2020-12-01");
+  CHECK(ends.front().days == 8);  // 24 .. 31 December
+}
+
 TEST_CASE("N-day periods restart on 1 January", "[engine][calendar]") {
   std::vector<TimePoint> times{TimePoint{days_from_civil(2021, 12, 1) * 86400},
                                TimePoint{days_from_civil(2022, 1, 20) * 86400}};

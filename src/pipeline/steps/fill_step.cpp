@@ -122,6 +122,7 @@ FillRequest fill_request(const StepContext& c) {
   r.only_years = c.only_years;
   r.smooth = c.flag("smooth");
   if (c.has("every")) r.every = CalendarPeriod::parse(c.text("every"));
+  r.marks = parse_date_marks(c.text("date_marks", "start"));
   r.name = c.text("name");
   r.out_dir = c.folder;
   r.memory_bytes = c.memory_bytes;
@@ -151,7 +152,7 @@ StepKind fill_step_kind() {
                {"space_smoothing", T::number_or_auto}, {"time_smoothing", T::number_or_auto},
                {"climate_smoothing", T::number}, {"season_smoothing", T::number},
                {"halo", T::integer}, {"tolerance", T::number}, {"neighbour_radius", T::integer},
-               {"fft_wisdom", T::text},
+               {"fft_wisdom", T::text}, {"date_marks", T::text},
                {"tiles", T::text, StepKey::Role::path}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'fill' step needs 'input'");

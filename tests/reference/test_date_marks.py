@@ -1,5 +1,6 @@
 #!/usr/bin/python3
-"""Which date of a dated layer a survey day reads (kalends extract --date-marks), on real data.
+"""What a date marks in its composite (--date-marks), on real data: which date of a dated layer
+a survey day reads (kalends extract), and the monthly calendar of kalends fill --every 1M.
 
 Data (../shared/data, see its README):
   monthly-temperature/bcsd_obs_1999.nc: monthly mean air temperature of 1999 from the gridded
@@ -128,6 +129,50 @@ class ExtractBetweenSeasons(kt.TempDirTestCase):
         self.assertIn("between %s and %s" % (last_2004, first_2005), rows["winter"]["ndvi.reason"])
         self.assertEqual(rows["summer"]["ndvi.matched"], first_2005)
         self.assertEqual(rows["summer"]["ndvi.reason"], "")
+
+
+class FillCalendarMonthEnds(kt.TempDirTestCase):
+    """kalends fill --every 1M on monthly means stamped at their month's end (Maurer 1999).
+
+    A value stands for the middle of its composite: with --date-marks end the curve's value at
+    31 January stands for mid-January, and each calendar month's mean of the curve is close to
+    that month's own mean in the file; read as starts it stands for mid-February, a month late.
+    Compared here with the file's values read by GDAL (RMS over land cells and months)."""
+
+    def test_end_marks_put_each_month_in_its_own_month(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        source = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        g = kt.gdal()
+        ds = g.Open(source)
+        tas = ds.ReadAsArray().astype(np.float64)
+        ds = None
+        tas[tas > 1e19] = np.nan  # _FillValue over the sea
+        rms, months = {}, {}
+        for marks in ("start", "end"):
+            out = os.path.join(self.tmp, marks)
+            done = kt.run_kalends(["-q", "fill", source, "--out", out, "--method", "whittaker", "--lambda", "0.01",
+                                   "--every", "1M", "--date-marks", marks])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            calendar = os.path.join(out, "calendar-1M")
+            names = sorted(os.listdir(calendar))
+            months[marks] = [n[4:11] for n in names]
+            errors = []
+            for n in names:
+                year, month = int(n[4:8]), int(n[9:11])
+                if year != 1999:
+                    continue
+                cal = g.Open(os.path.join(calendar, n))
+                self.assertEqual(cal.GetMetadataItem("KALENDS_DATE_MARKS"), marks)
+                value = cal.ReadAsArray()[0].astype(np.float64)
+                cal = None
+                errors.append(np.nanmean((value - tas[month - 1]) ** 2))
+            rms[marks] = float(np.sqrt(np.mean(errors)))
+        print("\nMaurer 1999, fill --every 1M against the file's monthly means: RMS %.2f C with "
+              "--date-marks end, %.2f C read as starts" % (rms["end"], rms["start"]), file=sys.stderr)
+        self.assertEqual(months["end"], ["1999-%02d" % m for m in range(1, 13)])
+        self.assertEqual(months["start"], ["1999-%02d" % m for m in range(2, 13)] + ["2000-01"])
+        self.assertLess(rms["end"], 1.0)
+        self.assertLess(rms["end"], 0.25 * rms["start"])
 
 
 if __name__ == "__main__":
