@@ -362,8 +362,12 @@ static void read_window(GDALRasterBand& band, const Layer& layer, const Window& 
   CPLErrorReset();
   if (band.RasterIO(GF_Read, w.x, w.y, w.width, w.height, out, w.width, w.height, type, 0, 0,
                     nullptr) != CE_None)
-    throw InputError(layer.path, "cannot read pixels (" + detail::gdal_message("read failed") +
-                                     "); the file may be truncated or corrupt");
+  {
+    // GDAL's message often starts with the file's name, which the error names already.
+    std::string message = detail::gdal_message("read failed");
+    if (message.rfind(layer.path + ", ", 0) == 0) message.erase(0, layer.path.size() + 2);
+    throw InputError(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
+  }
 }
 
 std::int64_t StackReader::read_values(std::size_t index, const Window& w, float* out) {
