@@ -75,6 +75,10 @@ struct ExtractResult {
   int missing = 0;
 };
 
+/// The checks that need no file (buffer, lags); UsageError naming the option. run_extract calls
+/// it first.
+void check_extract_options(const ExtractRequest& request);
+
 /// Samples every point in every selected series; writes `request.out` atomically when set.
 ExtractResult run_extract(const ExtractRequest& request);
 

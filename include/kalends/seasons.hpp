@@ -48,6 +48,10 @@ struct SeasonsSummary {
 /// The names of the cycle descriptor bands, in order.
 const std::vector<std::string>& cycle_band_names();
 
+/// The checks that need no input (prominence, threshold); UsageError naming the option.
+/// run_seasons calls it first.
+void check_seasons_options(const SeasonsRequest& request);
+
 SeasonsSummary run_seasons(const SeasonsRequest& request);
 
 /// The folder-or-glob convention shared by commands that read earlier outputs: a folder means

@@ -116,6 +116,10 @@ struct SuitabilitySummary {
   std::vector<std::string> outputs;
 };
 
+/// The checks that need no input stack (threshold, kinds of input, model and window, the
+/// parameters file); UsageError naming the option. run_suitability calls it first.
+void check_suitability_options(const SuitabilityRequest& request);
+
 SuitabilitySummary run_suitability(const SuitabilityRequest& request);
 
 }  // namespace kalends

@@ -329,10 +329,14 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
 
 }  // namespace
 
-ExtractResult run_extract(const ExtractRequest& request) {
+void check_extract_options(const ExtractRequest& request) {
   if (request.buffer_metres < 0) throw UsageError("--buffer", "the radius must be positive (metres)");
   for (int lag : request.lags)
     if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
+}
+
+ExtractResult run_extract(const ExtractRequest& request) {
+  check_extract_options(request);
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);

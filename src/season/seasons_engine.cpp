@@ -62,13 +62,17 @@ struct Worker {
 
 }  // namespace
 
-SeasonsSummary run_seasons(const SeasonsRequest& request) {
-  const auto started = std::chrono::steady_clock::now();
+void check_seasons_options(const SeasonsRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!(request.cycle.prominence_share > 0 && request.cycle.prominence_share < 1))
     throw UsageError("--prominence", "must be between 0 and 1");
   if (!(request.cycle.threshold_share > 0 && request.cycle.threshold_share < 1))
     throw UsageError("--threshold", "must be between 0 and 1");
+}
+
+SeasonsSummary run_seasons(const SeasonsRequest& request) {
+  const auto started = std::chrono::steady_clock::now();
+  check_seasons_options(request);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   const std::vector<TimePoint> times = stack.times();
   int first_year = times.front().date().year, last_year = times.back().date().year;

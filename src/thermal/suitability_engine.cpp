@@ -69,11 +69,20 @@ struct Worker {
 
 }  // namespace
 
-SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
-  const auto started = std::chrono::steady_clock::now();
+void check_suitability_options(const SuitabilityRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!(request.threshold >= 0 && request.threshold < 1))
     throw UsageError("--threshold", "must lie in [0, 1): a period is suitable above it");
+  detail::TemperatureSource::mode_of(request.inputs);
+  ThermalParameters table = ThermalParameters::defaults();
+  if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
+  const ThermalModel model(request.model, request.parasite, table, request.window_low, request.window_high);
+  (void)model;  // its constructor checks the model, the window and the parameters
+}
+
+SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
+  const auto started = std::chrono::steady_clock::now();
+  check_suitability_options(request);
   ThermalParameters table = ThermalParameters::defaults();
   if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
   const ThermalModel model(request.model, request.parasite, table, request.window_low,

@@ -96,29 +96,37 @@ TemperatureUnit parse_temperature_unit(const std::string& text) {
 
 namespace kalends::detail {
 
-TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
-  TemperatureSource s;
+TemperatureSource::Mode TemperatureSource::mode_of(const TemperatureInputs& in) {
   const bool extremes = !in.tmin.empty() || !in.tmax.empty();
   const bool overpasses = !in.day.empty() || !in.night.empty();
   const bool constant = !in.temperature.empty();
   if (int(extremes) + int(overpasses) + int(constant) != 1)
     throw UsageError("inputs",
                      "give either --tmin and --tmax, or --day and --night, or --temperature");
-  std::vector<std::pair<std::string, std::string>> inputs;  // option, input
   if (extremes) {
     if (in.tmin.empty() || in.tmax.empty()) throw UsageError("--tmin/--tmax", "give both");
-    s.mode = Mode::extremes;
-    inputs = {{"--tmin", in.tmin}, {"--tmax", in.tmax}};
-  } else if (overpasses) {
+    return Mode::extremes;
+  }
+  if (overpasses) {
     if (in.day.empty() || in.night.empty()) throw UsageError("--day/--night", "give both");
     if (!(in.day_hour >= 0 && in.day_hour < 24 && in.night_hour >= 0 && in.night_hour < 24))
       throw UsageError("--day-time/--night-time", "local solar hours must lie in [0, 24)");
-    s.mode = Mode::overpasses;
+    return Mode::overpasses;
+  }
+  return Mode::constant;
+}
+
+TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
+  TemperatureSource s;
+  s.mode = mode_of(in);
+  std::vector<std::pair<std::string, std::string>> inputs;  // option, input
+  if (s.mode == Mode::extremes) {
+    inputs = {{"--tmin", in.tmin}, {"--tmax", in.tmax}};
+  } else if (s.mode == Mode::overpasses) {
     s.day_hour = in.day_hour;
     s.night_hour = in.night_hour;
     inputs = {{"--day", in.day}, {"--night", in.night}};
   } else {
-    s.mode = Mode::constant;
     inputs = {{"--temperature", in.temperature}};
   }
   for (const auto& [option, input] : inputs) {

@@ -49,6 +49,9 @@ struct TemperatureSource {
   /// Opens and checks everything: exactly one kind of input, stacks on one grid with the same
   /// dates (InputError naming the file and the date otherwise), known units.
   static TemperatureSource open(const TemperatureInputs& inputs);
+  /// The kind of input given, and the checks that need no file (exactly one kind, both halves
+  /// of a pair, overpass hours); UsageError otherwise.
+  static Mode mode_of(const TemperatureInputs& inputs);
   std::size_t dates() const { return times.size(); }
 };
 

@@ -152,6 +152,10 @@ class JobFile(kt.TempDirTestCase):
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
              ["'pixels' 'ten 20'", "COLUMN ROW"]),
+            (good.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nprominence = 1.5'),
+             lines.index('do = "seasons"') + 3, ["'prominence'", "between 0 and 1"]),
+            (good + '\n[[step]]\ndo = "suitability"\ntemperature = "fill"\nmodel = "window"\nwindow = [30.0, 20.0]\n',
+             n + 5, ["'window'", "must be below"]),
         ]
         for text, line, words in cases:
             for extra in ([], ["--dry-run"]):

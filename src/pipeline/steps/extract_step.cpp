@@ -56,7 +56,7 @@ StepKind extract_step_kind() {
     if (!o.count("points")) return std::string("an 'extract' step needs 'points' (the survey table)");
     return std::string();
   };
-  kind.check_values = [](const StepContext& c) { extract_request(c); };
+  kind.check_values = [](const StepContext& c) { check_extract_options(extract_request(c)); };
   kind.run = [](const StepContext& c) {
     const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);

@@ -45,7 +45,7 @@ StepKind seasons_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'seasons' step needs 'input'");
   };
-  kind.check_values = [](const StepContext& c) { seasons_request(c); };
+  kind.check_values = [](const StepContext& c) { check_seasons_options(seasons_request(c)); };
   kind.run = [](const StepContext& c) {
     const SeasonsSummary s = run_seasons(seasons_request(c));
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};

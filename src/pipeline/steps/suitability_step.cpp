@@ -62,7 +62,7 @@ StepKind suitability_step_kind() {
       if (o.count(k)) return std::string();
     return std::string("a 'suitability' step needs 'day' and 'night', 'tmin' and 'tmax', or 'temperature'");
   };
-  kind.check_values = [](const StepContext& c) { suitability_request(c); };
+  kind.check_values = [](const StepContext& c) { check_suitability_options(suitability_request(c)); };
   kind.run = [](const StepContext& c) {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
