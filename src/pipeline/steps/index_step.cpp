@@ -29,7 +29,7 @@ StepKind index_step_kind() {
     return o.count("red") && o.count("nir") ? std::string() : std::string("an 'index' step needs 'red' and 'nir'");
   };
   kind.check_values = [](const StepContext& c) {
-    index_kind(c);
+    if (index_kind(c) == SpectralIndex::evi && !c.has("blue")) throw UsageError("--blue", "EVI needs the blue band");
     parse_compression(c.text("compress", "deflate"));
   };
   kind.run = [](const StepContext& c) {
