@@ -37,7 +37,7 @@ std::string rule_text(const char* name, const std::optional<double>& given, doub
 void print_text(const InspectReport& r, const ValueRules& rules, const std::string& keep, bool dates) {
   const auto& layers = r.layers;
   const Layer& first = layers.front().layer;
-  fmt::print("kalends inspect: {}: {} dates of '{}'\n", r.input, layers.size(), r.name);
+  fmt::print("kalends inspect: {}: {} date{} of '{}'\n", r.input, layers.size(), layers.size() == 1 ? "" : "s", r.name);
   fmt::print("  grid      {}\n", grid_text(r));
   std::map<std::string, int> sources;
   for (const InspectedLayer& l : layers) ++sources[l.date_source];
@@ -53,8 +53,11 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("            every date is the last day of its month: if they stamp monthly means, give\n"
                "            --date-marks end to seasons, suitability and extract\n");
   const TimeGrid& t = r.time_grid;
-  fmt::print("  time grid step {:g} days (the median spacing), {} slots, {} with a date\n", t.step_days, t.size,
-             r.slots_with_data);
+  if (layers.size() > 1)
+    fmt::print("  time grid step {:g} days (the median spacing), {} slots, {} with a date\n", t.step_days, t.size,
+               r.slots_with_data);
+  else
+    fmt::print("  time grid none: a single date (filling in time needs several)\n");
   const auto nodata = [&](const Layer& l) { return l.nodata ? fmt::format("{:g}", *l.nodata) : std::string("none"); };
   fmt::print("  values    {}, {}, nodata {}{}{}\n", rule_text("scale", rules.scale, first.scale),
              rule_text("offset", rules.offset, first.offset),
