@@ -1,6 +1,7 @@
 // kalends inspect STACK [--qa QA --keep RULE] [--dates] [--quick] [--json]
 #include <fmt/format.h>
 
+#include <algorithm>
 #include <cmath>
 #include <map>
 
@@ -86,9 +87,21 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("  observed  {} of pixel-dates; least {} on {}, most {} on {}\n", percent(observed, pixels),
                percent(least->observed, least->pixels), least->layer.time.label(),
                percent(most->observed, most->pixels), most->layer.time.label());
+    // The range of what was observed, in physical units: a forgotten scale factor shows here
+    // (NDVI of 8000, temperatures of 14000).
+    double low = INFINITY, high = -INFINITY, sum = 0;
+    for (const InspectedLayer& l : layers)
+      if (l.minimum) {
+        low = std::min(low, *l.minimum);
+        high = std::max(high, *l.maximum);
+        sum += *l.mean * double(l.observed);
+      }
+    if (observed > 0)
+      fmt::print("  range     {:.4g} .. {:.4g}, mean {:.4g} (physical values observed)\n", low, high,
+                 sum / double(observed));
     if (!keep.empty())
       fmt::print("  QA        {} of pixel-dates with a value rejected by '{}'\n", percent(rejected, pixels), keep);
-    if (rules.valid_min) fmt::print("  range     {} of pixel-dates outside the valid range\n", percent(outside, pixels));
+    if (rules.valid_min) fmt::print("            {} of pixel-dates outside the valid range\n", percent(outside, pixels));
     fmt::print("  pixels never observed: {} of {}\n", r.pixels_never_observed,
                std::int64_t(r.grid.width) * r.grid.height);
   }

@@ -83,6 +83,9 @@ class InspectRealData(kt.TempDirTestCase):
         done = kt.run_kalends(["inspect", source])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("--date-marks end", done.stdout)
+        # The range of the observed physical values, where a forgotten scale factor would show.
+        land = tas[tas < 1e19].astype(np.float64)
+        self.assertIn("range     %.4g .. %.4g," % (land.min(), land.max()), done.stdout)
 
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
