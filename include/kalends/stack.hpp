@@ -96,6 +96,10 @@ class StackReader {
 /// Fails with InputError unless both grids are the same (size, geotransform, CRS).
 void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where);
 
+/// The median of the first date's physical values over a central window of at most side x side
+/// pixels; NaN where none is finite. A cheap look at what a stack holds (its unit, its scale).
+double first_date_median(const Stack& stack, int side);
+
 /// For each layer of `base`, the index of the layer of `other` (a QA stack, a band partner) with
 /// the same time. InputError when the grids differ, or naming the base layer's file when it
 /// has no partner ("no QA layer for 2004-05-24 in 'qa/*.tif'"; `what` is "QA").

@@ -41,20 +41,12 @@ constexpr int tile_size = 256;
 // median of the first date's values, over a window of at most 512 x 512 px at the centre,
 // tells them apart (reflectance of bright snow or cloud reaches about 1.2; from memory).
 void require_reflectance(const Stack& stack, const std::string& option) {
-  const Grid& grid = stack.grid();
-  const int width = std::min(grid.width, 512), height = std::min(grid.height, 512);
-  const Window window{(grid.width - width) / 2, (grid.height - height) / 2, width, height};
-  std::vector<float> values(window.pixels());
-  stack.reader()->read_values(0, window, values.data());
-  values.erase(std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }), values.end());
-  if (values.empty()) return;
-  auto middle = values.begin() + values.size() / 2;
-  std::nth_element(values.begin(), middle, values.end());
-  if (*middle > 1.5f)
+  const double median = first_date_median(stack, 512);
+  if (median > 1.5)  // false for NaN: nothing finite to judge by
     throw UsageError(option + " " + stack.layers().front().path,
                      fmt::format("values (median {:g}) are not reflectances in 0..1, which EVI's constants "
                                  "assume; give --scale (0.0001 for MODIS surface reflectance)",
-                                 double(*middle)));
+                                 median));
 }
 
 }  // namespace

@@ -234,6 +234,19 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
     throw InputError(where, "coordinate reference system differs from the rest of the stack");
 }
 
+double first_date_median(const Stack& stack, int side) {
+  const Grid& g = stack.grid();
+  const int w = std::min(g.width, side), h = std::min(g.height, side);
+  const Window window{(g.width - w) / 2, (g.height - h) / 2, w, h};
+  std::vector<float> values(window.pixels());
+  stack.reader()->read_values(0, window, values.data());
+  values.erase(std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }),
+               values.end());
+  if (values.empty()) return NAN;
+  std::nth_element(values.begin(), values.begin() + values.size() / 2, values.end());
+  return values[values.size() / 2];
+}
+
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {
   require_same_grid(base.grid(), other.grid(), other.layers().front().path);
   std::vector<std::size_t> index;

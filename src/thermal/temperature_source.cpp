@@ -33,21 +33,6 @@ std::string normalised_unit(std::string unit) {
   return out;
 }
 
-// The median of the first layer's values (a central window of at most 1024 x 1024 pixels).
-double first_layer_median(const Stack& stack) {
-  const Grid& g = stack.grid();
-  const int w = std::min(g.width, 1024), h = std::min(g.height, 1024);
-  const Window window{(g.width - w) / 2, (g.height - h) / 2, w, h};
-  std::vector<float> values(window.pixels());
-  stack.reader()->read_values(0, window, values.data());
-  values.erase(
-      std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }),
-      values.end());
-  if (values.empty()) return NAN;
-  std::nth_element(values.begin(), values.begin() + values.size() / 2, values.end());
-  return values[values.size() / 2];
-}
-
 }  // namespace
 
 TemperatureUnit unit_of(const Stack& stack, TemperatureUnit unit, const std::string& option) {
@@ -68,7 +53,7 @@ TemperatureUnit unit_of(const Stack& stack, TemperatureUnit unit, const std::str
     // A stated unit must agree with the values: no temperature on Earth is above 150 in
     // degrees C or below 150 in kelvin. (GDAL 3.6 labels GRIB1 temperatures "[C]" while still
     // returning kelvin.)
-    const double median = first_layer_median(stack);
+    const double median = first_date_median(stack, 1024);
     const bool looks_kelvin = median > 150;
     if (std::isfinite(median) && looks_kelvin != (found == TemperatureUnit::kelvin))
       throw UsageError(option + " " + layer.path,
