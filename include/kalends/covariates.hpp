@@ -40,7 +40,8 @@ struct CovariateSeries {
   /// periodic kinds: the period of the bands.
   std::optional<CalendarPeriod> period;
   double step_days = 0;  // dated fill outputs on the time grid: the grid step
-  /// dated: the times [from, until) each file stands for (set_date_marks).
+  /// dated: the times [from, until) each file stands for (set_date_marks; find_covariates sets
+  /// them for start marks). match_time reads them.
   std::vector<std::pair<TimePoint, TimePoint>> spans;
   int period_count = 0;  // periodic kinds: bands per year
   std::string unit, description;

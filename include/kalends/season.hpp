@@ -15,8 +15,6 @@
 
 namespace kalends {
 
-/// Which part of a composite's interval its date marks: MODIS dates mark the first day, many
-/// monthly NetCDF files the middle or the last day.
 /// Whether the dates (two or more) all fall on the last day of their month, a month apart or
 /// more: the way CF files commonly stamp monthly means, which `DateMarks::end` reads as each
 /// month's own. Commands say so when they read such dates as starts.
@@ -31,6 +29,17 @@ struct Period {
   int days = 0;
 };
 std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar);
+
+/// The median spacing of sorted times `at` (in their own unit: days, seconds), at least 1;
+/// `fallback` for fewer than two times.
+std::int64_t median_spacing(const std::vector<std::int64_t>& at, std::int64_t fallback);
+
+/// The [first, last) each composite dated `at` (sorted, in any unit) stands for, by what its
+/// date marks (DateMarks, fill.hpp): `step` from its date (start), up to and including its date's
+/// unit (end), or around it (middle); never past its neighbours' dates. One rule for seasons,
+/// extract and the rest.
+std::vector<std::pair<std::int64_t, std::int64_t>> composite_spans(const std::vector<std::int64_t>& at,
+                                                                   std::int64_t step, DateMarks marks);
 
 /// For each period of `periods`, the composites that overlap it and by how many days. Each
 /// composite covers `step_days` from where its date marks (a shorter span when the next

@@ -18,46 +18,24 @@ std::string period_label(const CalendarPeriod& period, int index) {
   return fmt::format("doy {:03d}", 1 + index * period.days);
 }
 
-// One step of the series, in seconds: the grid step of fill outputs, else the median spacing
-// of the dates (a day for a single file).
-std::int64_t step_seconds(const CovariateSeries& s) {
-  if (s.step_days > 0) return std::max<std::int64_t>(1, std::llround(s.step_days * 86400));
-  std::vector<std::int64_t> gaps;
-  for (std::size_t i = 1; i < s.files.size(); ++i) gaps.push_back(s.files[i].time.seconds - s.files[i - 1].time.seconds);
-  if (gaps.empty()) return 86400;
-  std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
-  return std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
-}
 
 }  // namespace
 
 void set_date_marks(CovariateSeries& s, DateMarks marks) {
   s.spans.clear();
   if (s.kind != SeriesKind::dated || s.files.empty()) return;
-  const std::size_t n = s.files.size();
-  const auto at = [&](std::size_t i) { return s.files[i].time.seconds; };
   if (s.period) {  // kalends calendar outputs: each file is its period, dated at the start
-    for (std::size_t i = 0; i < n; ++i)
-      s.spans.push_back({s.files[i].time, next_period_start(*s.period, s.files[i].time)});
+    for (const SeriesFile& f : s.files) s.spans.push_back({f.time, next_period_start(*s.period, f.time)});
     return;
   }
-  // As period_sources (src/season/periods.cpp) does in days; here in seconds, for sub-daily series.
-  const std::int64_t step = step_seconds(s);
-  for (std::size_t i = 0; i < n; ++i) {
-    std::int64_t first, last;
-    if (marks == DateMarks::start) {
-      first = at(i);
-      last = first + (i + 1 < n ? std::min(step, at(i + 1) - at(i)) : step);
-    } else if (marks == DateMarks::end) {
-      last = at(i) + 1;  // the dated second itself, so that the day it names reads it
-      first = last - (i > 0 ? std::min(step, at(i) - at(i - 1)) : step);
-    } else {
-      const std::int64_t half = step / 2;
-      first = i > 0 ? std::max(at(i) - half, (at(i - 1) + at(i) + 1) / 2) : at(i) - half;
-      last = i + 1 < n ? std::min(at(i) + (step - half), (at(i) + at(i + 1) + 1) / 2) : at(i) + (step - half);
-    }
-    s.spans.push_back({TimePoint{first}, TimePoint{last}});
-  }
+  // The rule of period_sources, in seconds (sub-daily series); with 'end' a span ends with the
+  // dated second itself, so the day it names reads it. One step: the fill's grid step, else the
+  // median spacing of the dates (a day for a single file).
+  std::vector<std::int64_t> at;
+  for (const SeriesFile& f : s.files) at.push_back(f.time.seconds);
+  const std::int64_t step =
+      s.step_days > 0 ? std::max<std::int64_t>(1, std::llround(s.step_days * 86400)) : median_spacing(at, 86400);
+  for (const auto& [first, last] : composite_spans(at, step, marks)) s.spans.push_back({TimePoint{first}, TimePoint{last}});
 }
 
 TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, int lag) {
@@ -74,12 +52,7 @@ TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, in
   }
   const CivilDate day = *point.date;
   if (series.kind == SeriesKind::dated) {
-    CovariateSeries marked;  // a series made by hand, without spans: the default marks
-    if (series.spans.size() != series.files.size()) {
-      marked = series;
-      set_date_marks(marked, DateMarks::start);
-    }
-    const auto& spans = series.spans.size() == series.files.size() ? series.spans : marked.spans;
+    const auto& spans = series.spans;  // set by find_covariates and run_extract (set_date_marks)
     const TimePoint t = TimePoint::from_date(day);
     // The survey day is the midnight that starts it: the span holding that moment.
     const auto after = std::upper_bound(spans.begin(), spans.end(), t,

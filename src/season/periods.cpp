@@ -46,6 +46,36 @@ std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar) {
   return periods;
 }
 
+std::int64_t median_spacing(const std::vector<std::int64_t>& at, std::int64_t fallback) {
+  if (at.size() < 2) return fallback;
+  std::vector<std::int64_t> gaps;
+  for (std::size_t i = 1; i < at.size(); ++i) gaps.push_back(at[i] - at[i - 1]);
+  std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
+  return std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
+}
+
+std::vector<std::pair<std::int64_t, std::int64_t>> composite_spans(const std::vector<std::int64_t>& at,
+                                                                   std::int64_t step, DateMarks marks) {
+  const std::size_t n = at.size();
+  std::vector<std::pair<std::int64_t, std::int64_t>> spans(n);
+  for (std::size_t i = 0; i < n; ++i) {
+    std::int64_t first, last;
+    if (marks == DateMarks::start) {
+      first = at[i];
+      last = first + (i + 1 < n ? std::min(step, at[i + 1] - at[i]) : step);
+    } else if (marks == DateMarks::end) {
+      last = at[i] + 1;
+      first = last - (i > 0 ? std::min(step, at[i] - at[i - 1]) : step);
+    } else {
+      const std::int64_t half = step / 2;
+      first = i > 0 ? std::max(at[i] - half, (at[i - 1] + at[i] + 1) / 2) : at[i] - half;
+      last = i + 1 < n ? std::min(at[i] + (step - half), (at[i] + at[i + 1] + 1) / 2) : at[i] + (step - half);
+    }
+    spans[i] = {first, last};
+  }
+  return spans;
+}
+
 std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
                                           const std::vector<Period>& periods, DateMarks marks) {
   std::vector<PeriodSources> sources(periods.size());
@@ -53,28 +83,9 @@ std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
   if (n == 0) return sources;
   std::vector<std::int64_t> day(n);
   for (std::size_t i = 0; i < n; ++i) day[i] = std::int64_t(std::floor(dates[i].days()));
-  std::int64_t step = 1;
-  if (n > 1) {
-    std::vector<std::int64_t> gaps;
-    for (std::size_t i = 1; i < n; ++i) gaps.push_back(day[i] - day[i - 1]);
-    std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
-    step = std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
-  }
+  const auto spans = composite_spans(day, median_spacing(day, 1), marks);
   for (std::size_t i = 0; i < n; ++i) {
-    // [first, last) days the composite stands for; never past its neighbours.
-    std::int64_t first, last;
-    if (marks == DateMarks::start) {
-      first = day[i];
-      last = first + (i + 1 < n ? std::min(step, day[i + 1] - day[i]) : step);
-    } else if (marks == DateMarks::end) {
-      last = day[i] + 1;
-      first = last - (i > 0 ? std::min(step, day[i] - day[i - 1]) : step);
-    } else {
-      const std::int64_t half = step / 2;
-      first = i > 0 ? std::max(day[i] - half, (day[i - 1] + day[i] + 1) / 2) : day[i] - half;
-      last = i + 1 < n ? std::min(day[i] + (step - half), (day[i] + day[i + 1] + 1) / 2)
-                       : day[i] + (step - half);
-    }
+    const auto [first, last] = spans[i];  // the days [first, last) the composite stands for
     for (std::size_t p = 0; p < periods.size(); ++p) {
       const std::int64_t a = std::max(first, periods[p].first_day);
       const std::int64_t b = std::min(last, periods[p].first_day + periods[p].days);

@@ -138,16 +138,9 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   const std::size_t n = s.times.size();
   s.days.resize(n);
   for (std::size_t i = 0; i < n; ++i) s.days[i] = std::int64_t(std::floor(s.times[i].days()));
-  std::vector<std::int64_t> gaps;
-  for (std::size_t i = 1; i < n; ++i) {
+  for (std::size_t i = 1; i < n; ++i)
     if (s.days[i] == s.days[i - 1]) s.sub_daily = true;
-    gaps.push_back(s.days[i] - s.days[i - 1]);
-  }
-  std::int64_t step = 1;
-  if (!gaps.empty() && !s.sub_daily) {
-    std::nth_element(gaps.begin(), gaps.begin() + gaps.size() / 2, gaps.end());
-    step = std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
-  }
+  const std::int64_t step = s.sub_daily ? 1 : median_spacing(s.days, 1);
   // The sun of a composite is that of the middle of the days it stands for.
   const std::int64_t shift = in.marks == DateMarks::start ? step / 2
                              : in.marks == DateMarks::end ? -(step / 2)
