@@ -67,26 +67,32 @@ struct Worker {
   std::int64_t count_pixels = 0;
 };
 
-}  // namespace
+// The checks that need no input stack, and what they build: the parameter table (defaults,
+// overridden by the parameters file) and the model, whose constructor checks the model, the
+// window and the parameters.
+struct CheckedOptions {
+  ThermalParameters table;
+  ThermalModel model;
+};
 
-void check_suitability_options(const SuitabilityRequest& request) {
+CheckedOptions checked_options(const SuitabilityRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!(request.threshold >= 0 && request.threshold < 1))
     throw UsageError("--threshold", "must lie in [0, 1): a period is suitable above it");
   detail::TemperatureSource::mode_of(request.inputs);
   ThermalParameters table = ThermalParameters::defaults();
   if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
-  const ThermalModel model(request.model, request.parasite, table, request.window_low, request.window_high);
-  (void)model;  // its constructor checks the model, the window and the parameters
+  ThermalModel model(request.model, request.parasite, table, request.window_low, request.window_high);
+  return {std::move(table), std::move(model)};
 }
+
+}  // namespace
+
+void check_suitability_options(const SuitabilityRequest& request) { checked_options(request); }
 
 SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const auto started = std::chrono::steady_clock::now();
-  check_suitability_options(request);
-  ThermalParameters table = ThermalParameters::defaults();
-  if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
-  const ThermalModel model(request.model, request.parasite, table, request.window_low,
-                           request.window_high);
+  const auto [table, model] = checked_options(request);
   const DiurnalParameters diurnal = DiurnalParameters::from(table);
   const detail::TemperatureSource source = detail::TemperatureSource::open(request.inputs);
   using Mode = detail::TemperatureSource::Mode;
