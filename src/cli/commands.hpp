@@ -2,6 +2,7 @@
 #pragma once
 
 #include <CLI/CLI.hpp>
+#include <cstdint>
 #include <functional>
 #include <optional>
 #include <string>
@@ -52,6 +53,9 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
 
 /// MIN,MAX; UsageError naming `option` otherwise.
 std::pair<double, double> parse_range(const std::string& text, const std::string& option);
+
+/// "12.3 %" of `whole`, or "n/a" when it is 0.
+std::string percent(std::int64_t part, std::int64_t whole);
 
 /// A note on stderr where the inputs' dates all fall on month ends but are read as starts:
 /// monthly means stamped at their end then stand for the month after.

@@ -37,13 +37,9 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
   return parse_number(text, option);
 }
 
-namespace {
-
 std::string percent(std::int64_t part, std::int64_t whole) {
   return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";
 }
-
-}  // namespace
 
 Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("fill", "Fill gaps in time and write value, sd and flag layers");

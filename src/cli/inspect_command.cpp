@@ -14,10 +14,6 @@ namespace kalends::cli {
 
 namespace {
 
-std::string percent(std::int64_t part, std::int64_t whole) {
-  return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";
-}
-
 std::string optional_text(const std::optional<double>& v) { return v ? fmt::format("{:.4g}", *v) : "-"; }
 
 std::string grid_text(const InspectReport& r) {

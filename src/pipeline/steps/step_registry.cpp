@@ -75,10 +75,6 @@ std::string option_of(const char* key) {
   return option;
 }
 
-}  // namespace
-
-namespace {
-
 // Each item of a texts key read whole by `read` (std::stod, std::stoi), or UsageError.
 template <class Value, class Read>
 std::vector<Value> read_items(const StepContext& c, const char* key, Read read, const char* expected) {
