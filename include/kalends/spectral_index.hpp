@@ -41,6 +41,10 @@ struct IndexSummary {
   std::string out_dir;
 };
 
+/// The checks that need no file (an output folder, red and near-infrared, blue for EVI);
+/// UsageError naming the option. run_index calls it first.
+void check_index_options(const IndexRequest& request);
+
 IndexSummary run_index(const IndexRequest& request);
 
 }  // namespace kalends

@@ -51,12 +51,16 @@ void require_reflectance(const Stack& stack, const std::string& option) {
 
 }  // namespace
 
-IndexSummary run_index(const IndexRequest& request) {
-  detail::start_gdal();
+void check_index_options(const IndexRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (request.red.empty() || request.nir.empty()) throw UsageError("--red/--nir", "both are required");
+  if (request.kind == SpectralIndex::evi && request.blue.empty()) throw UsageError("--blue", "EVI needs the blue band");
+}
+
+IndexSummary run_index(const IndexRequest& request) {
+  detail::start_gdal();
+  check_index_options(request);
   const bool evi = request.kind == SpectralIndex::evi;
-  if (evi && request.blue.empty()) throw UsageError("--blue", "EVI needs the blue band");
   auto rules_for = [&](int band) {
     ValueRules r = request.rules;
     r.band = band;

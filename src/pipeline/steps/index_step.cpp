@@ -14,6 +14,29 @@ SpectralIndex index_kind(const StepContext& c) {
   return index == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
 }
 
+// The request an 'index' step runs, from its keys; reads no file.
+IndexRequest index_request(const StepContext& c) {
+  IndexRequest r;
+  const ResolvedInput red = c.resolve(c.text("red")), nir = c.resolve(c.text("nir"));
+  r.red = red.pattern;
+  r.nir = nir.pattern;
+  r.rules = red.rules;
+  if (c.has("blue")) r.blue = c.resolve(c.text("blue")).pattern;
+  r.red_band = c.integer("red_band", 1);
+  r.nir_band = c.integer("nir_band", 1);
+  r.blue_band = c.integer("blue_band", 1);
+  r.kind = index_kind(c);
+  r.qa = red.qa;
+  r.name = c.text("name");
+  r.out_dir = c.folder;
+  r.threads = c.threads;
+  r.compression = parse_compression(c.text("compress", "deflate"));
+  r.command_line = c.command_line;
+  r.keep_unchanged = true;
+  r.region = c.region;
+  return r;
+}
+
 }  // namespace
 
 StepKind index_step_kind() {
@@ -28,30 +51,9 @@ StepKind index_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("red") && o.count("nir") ? std::string() : std::string("an 'index' step needs 'red' and 'nir'");
   };
-  kind.check_values = [](const StepContext& c) {
-    if (index_kind(c) == SpectralIndex::evi && !c.has("blue")) throw UsageError("--blue", "EVI needs the blue band");
-    parse_compression(c.text("compress", "deflate"));
-  };
+  kind.check_values = [](const StepContext& c) { check_index_options(index_request(c)); };
   kind.run = [](const StepContext& c) {
-    IndexRequest r;
-    const ResolvedInput red = c.resolve(c.text("red")), nir = c.resolve(c.text("nir"));
-    r.red = red.pattern;
-    r.nir = nir.pattern;
-    r.rules = red.rules;
-    if (c.has("blue")) r.blue = c.resolve(c.text("blue")).pattern;
-    r.red_band = c.integer("red_band", 1);
-    r.nir_band = c.integer("nir_band", 1);
-    r.blue_band = c.integer("blue_band", 1);
-    r.kind = index_kind(c);
-    r.qa = red.qa;
-    r.name = c.text("name");
-    r.out_dir = c.folder;
-    r.threads = c.threads;
-    r.compression = parse_compression(c.text("compress", "deflate"));
-    r.command_line = c.command_line;
-    r.keep_unchanged = true;
-    r.region = c.region;
-    const IndexSummary s = run_index(r);
+    const IndexSummary s = run_index(index_request(c));
     return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
   };
   return kind;
