@@ -42,6 +42,8 @@ struct SurveyPoints {
 SurveyPoints read_survey_points(const PointsSource& source);
 
 enum class Sampling { nearest, bilinear };
+/// "nearest" or "bilinear"; UsageError naming --sampling otherwise.
+Sampling parse_sampling(const std::string& text);
 
 struct ExtractRequest {
   std::vector<std::string> covariates;  // folders or raster files

@@ -56,9 +56,7 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
       ->capture_default_str();
   return [o, &global] {
     ExtractRequest& r = o->request;
-    if (o->sampling == "nearest") r.sampling = Sampling::nearest;
-    else if (o->sampling == "bilinear") r.sampling = Sampling::bilinear;
-    else throw UsageError("--sampling '" + o->sampling + "'", "use nearest or bilinear");
+    r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
     if (!o->buffer.empty() && r.buffer_metres <= 0) throw UsageError("--buffer", "the radius must be positive (metres)");
     for (const std::string& lag : split_list(o->lags)) {

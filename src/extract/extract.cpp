@@ -329,6 +329,12 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
 
 }  // namespace
 
+Sampling parse_sampling(const std::string& text) {
+  if (text == "nearest") return Sampling::nearest;
+  if (text == "bilinear") return Sampling::bilinear;
+  throw UsageError("--sampling '" + text + "'", "expected nearest or bilinear");
+}
+
 void check_extract_options(const ExtractRequest& request) {
   if (request.buffer_metres < 0) throw UsageError("--buffer", "the radius must be positive (metres)");
   for (int lag : request.lags)

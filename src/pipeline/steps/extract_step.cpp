@@ -26,9 +26,7 @@ ExtractRequest extract_request(const StepContext& c) {
   r.points.y_column = c.text("y_column", r.points.y_column);
   r.points.date_column = c.text("date_column", r.points.date_column);
   r.points.crs = c.text("crs", r.points.crs);
-  const std::string sampling = c.text("sampling", "nearest");
-  if (sampling == "bilinear") r.sampling = Sampling::bilinear;
-  else if (sampling != "nearest") throw UsageError("--sampling '" + sampling + "'", "expected nearest or bilinear");
+  r.sampling = parse_sampling(c.text("sampling", "nearest"));
   r.buffer_metres = c.number("buffer", 0);
   r.lags = c.integers("lags");
   r.marks = parse_date_marks(c.text("date_marks", "start"));
