@@ -21,10 +21,6 @@ std::pair<std::string, std::string> split_pair(const std::string& text, const st
   return {text.substr(0, comma), text.substr(comma + 1)};
 }
 
-DateMarks parse_marks(const std::string& text) {
-  return text == "end" ? DateMarks::end : text == "middle" ? DateMarks::middle : DateMarks::start;
-}
-
 // The options every temperature command shares: where the temperatures come from and how to
 // read them.
 struct InputOptions {
@@ -69,7 +65,7 @@ struct InputOptions {
     inputs.rules.scale = optional_number(scale, "--scale");
     inputs.rules.offset = optional_number(offset, "--offset");
     inputs.rules.nodata = optional_number(nodata, "--nodata");
-    inputs.marks = parse_marks(marks);
+    inputs.marks = parse_date_marks(marks);
   }
 };
 
