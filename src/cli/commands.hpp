@@ -7,6 +7,7 @@
 #include <optional>
 #include <string>
 #include <utility>
+#include <vector>
 
 #include "kalends/fill_method.hpp"
 #include "kalends/season.hpp"
@@ -50,6 +51,11 @@ std::optional<double> optional_number(const std::string& text, const std::string
 double parse_number(const std::string& text, const std::string& option);
 /// "auto" is no value (std::nullopt); anything else must be a number.
 std::optional<double> number_or_auto(const std::string& text, const std::string& option);
+
+/// "a,b,c" as its items; UsageError naming `option` for an empty item ("a,,b", "a,").
+std::vector<std::string> split_list(const std::string& text, const std::string& option);
+/// "1,2,3" as whole numbers; UsageError naming `option` and the item otherwise.
+std::vector<int> parse_whole_numbers(const std::string& text, const std::string& option);
 
 /// MIN,MAX; UsageError naming `option` otherwise.
 std::pair<double, double> parse_range(const std::string& text, const std::string& option);

@@ -8,21 +8,6 @@
 
 namespace kalends::cli {
 
-namespace {
-
-std::vector<std::string> split_list(const std::string& text) {
-  std::vector<std::string> items;
-  std::string rest = text;
-  while (!rest.empty()) {
-    const auto comma = rest.find(',');
-    items.push_back(rest.substr(0, comma));
-    rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
-  }
-  return items;
-}
-
-}  // namespace
-
 Action add_extract_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand(
       "extract", "Covariate values at survey points and dates, with flags, errors and reasons");
@@ -59,12 +44,8 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
     if (!o->buffer.empty() && r.buffer_metres <= 0) throw UsageError("--buffer", "the radius must be positive (metres)");
-    for (const std::string& lag : split_list(o->lags)) {
-      const double v = parse_number(lag, "--lags");
-      if (v != static_cast<int>(v) || v < 1) throw UsageError("--lags '" + o->lags + "'", "lags are whole periods: 1, 2, ...");
-      r.lags.push_back(static_cast<int>(v));
-    }
-    r.layers = split_list(o->layers);
+    r.lags = parse_whole_numbers(o->lags, "--lags");
+    r.layers = split_list(o->layers, "--layers");
     r.marks = parse_date_marks(o->marks);
     const ExtractResult result = run_extract(r);
     if (!global.quiet)

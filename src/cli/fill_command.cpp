@@ -37,6 +37,28 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
   return parse_number(text, option);
 }
 
+std::vector<std::string> split_list(const std::string& text, const std::string& option) {
+  std::vector<std::string> items;
+  if (text.empty()) return items;
+  for (std::size_t start = 0;;) {
+    const auto comma = text.find(',', start);
+    items.push_back(text.substr(start, comma == std::string::npos ? std::string::npos : comma - start));
+    if (items.back().empty()) throw UsageError(option + " '" + text + "'", "an empty item between commas");
+    if (comma == std::string::npos) return items;
+    start = comma + 1;
+  }
+}
+
+std::vector<int> parse_whole_numbers(const std::string& text, const std::string& option) {
+  std::vector<int> numbers;
+  for (const std::string& item : split_list(text, option)) {
+    const double v = parse_number(item, option);
+    if (v != std::floor(v) || std::abs(v) > 1e9) throw UsageError(option + " '" + item + "'", "expected a whole number");
+    numbers.push_back(static_cast<int>(v));
+  }
+  return numbers;
+}
+
 std::string percent(std::int64_t part, std::int64_t whole) {
   return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";
 }

@@ -12,7 +12,6 @@ namespace kalends::cli {
 
 namespace {
 
-
 std::pair<std::string, std::string> split_pair(const std::string& text, const std::string& option,
                                                const std::string& expected) {
   const auto comma = text.find(',');

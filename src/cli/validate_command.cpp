@@ -39,15 +39,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     ValidateRequest& r = o->request;
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
-    r.methods.clear();
-    std::string rest = o->methods;
-    while (!rest.empty()) {
-      const auto comma = rest.find(',');
-      const std::string name = rest.substr(0, comma);
-      if (name.empty()) throw UsageError("--methods '" + o->methods + "'", "empty method name");
-      r.methods.push_back(name);
-      rest = comma == std::string::npos ? "" : rest.substr(comma + 1);
-    }
+    r.methods = split_list(o->methods, "--methods");
     r.memory_bytes = parse_memory(o->memory);
     const ValidateReport report = run_validate(r);
     if (!global.quiet) {

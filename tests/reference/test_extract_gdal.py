@@ -157,6 +157,20 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2)
         self.assertIn("no column 'id'", done.stderr)
 
+    def test_bad_lists_name_the_option_and_the_item(self):
+        out = os.path.join(self.tmp, "lists.csv")
+        base = ["extract", self.raster, "--points", self.csv, "--out", out, "--id-column", "site",
+                "--x-column", "lon", "--y-column", "lat", "--date-column", ""]
+        for extra, expected in ((["--lags", "1,,2"], "--lags '1,,2': an empty item"),
+                                (["--lags", "1.5"], "--lags '1.5': expected a whole number"),
+                                (["--lags", "0"], "--lags"),
+                                (["--layers", "b1,"], "--layers 'b1,': an empty item")):
+            done = kt.run_kalends(base + extra)
+            self.assertEqual(done.returncode, 2, extra)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn(expected, done.stderr)
+            self.assertFalse(os.path.exists(out))
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
