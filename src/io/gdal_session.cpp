@@ -2,6 +2,7 @@
 
 #include <cpl_conv.h>
 #include <cpl_error.h>
+#include <cpl_vsi.h>
 
 #include <fcntl.h>
 #include <unistd.h>
@@ -12,6 +13,8 @@
 #include <filesystem>
 #include <mutex>
 #include <optional>
+#include <string>
+#include <string_view>
 
 #include "kalends/error.hpp"
 
@@ -50,7 +53,15 @@ bool looks_like_grib(const std::string& path) {
   std::string extension = std::filesystem::path(path).extension().string();
   std::transform(extension.begin(), extension.end(), extension.begin(),
                  [](unsigned char c) { return char(std::tolower(c)); });
-  return extension == ".grib" || extension == ".grb" || extension == ".grib2" || extension == ".grb2";
+  if (extension == ".grib" || extension == ".grb" || extension == ".grib2" || extension == ".grb2") return true;
+  // Any other name: GDAL's GRIB driver looks for the "GRIB" mark near the start, so do we
+  // (through VSI, so that /vsizip/ and the like are read the same way).
+  VSILFILE* file = VSIFOpenL(path.c_str(), "rb");
+  if (file == nullptr) return false;
+  char head[256] = {};
+  const std::size_t read = VSIFReadL(head, 1, sizeof head, file);
+  VSIFCloseL(file);
+  return std::string_view(head, read).find("GRIB") != std::string_view::npos;
 }
 
 // degrib, GDAL's GRIB decoder, printf()s a warning to standard output when a file ends in

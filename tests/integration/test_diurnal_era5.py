@@ -176,6 +176,18 @@ class DiurnalEra5(kt.TempDirTestCase):
             ds = None
         np.testing.assert_array_equal(runs["auto"], runs["kelvin"])
 
+    def test_grib_under_another_name_keeps_standard_output_clean(self):
+        # GRIB is recognised by its "GRIB" mark as GDAL does, not only by the extension.
+        renamed = os.path.join(self.tmp, "era5-march.dat")
+        if not os.path.exists(renamed):
+            os.symlink(self.grib, renamed)
+        out = os.path.join(self.tmp, "renamed")
+        done = kt.run_kalends(["suitability", "--temperature", renamed, "--model", "window", "--window",
+                               "5,10", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("GRIB2Inventory", done.stdout)
+        self.assertTrue(done.stdout.startswith("kalends suitability:"), done.stdout)
+
     def test_unit_label_that_contradicts_the_values_is_refused(self):
         # A band whose unit says degrees Celsius but which holds kelvin (these hours, as float32):
         # kalends must not take 280 for degrees Celsius.
