@@ -9,6 +9,7 @@
 #include <string>
 #include <vector>
 
+#include "kalends/fill.hpp"
 #include "kalends/stack.hpp"
 #include "pipeline/job_file.hpp"
 
@@ -59,6 +60,22 @@ struct StepContext {
   std::vector<double> numbers(const char* key) const;
   std::vector<int> integers(const char* key) const;
 };
+
+/// What a raster-writing step's request takes from the run rather than from its own keys: its
+/// folder, threads and memory, which years and area to compute, the command line recorded in
+/// its files; and the two keys every such step has (name, compress).
+template <class Request>
+void take_run_settings(Request& r, const StepContext& c) {
+  r.out_dir = c.folder;
+  r.name = c.text("name");
+  r.threads = c.threads;
+  r.compression = parse_compression(c.text("compress", "deflate"));
+  r.command_line = c.command_line;
+  r.keep_unchanged = true;  // a rerun leaves identical files untouched
+  r.region = c.region;
+  if constexpr (requires { r.memory_bytes; }) r.memory_bytes = c.memory_bytes;
+  if constexpr (requires { r.only_years; }) r.only_years = c.only_years;
+}
 
 struct StepOutcome {
   int outputs_written = 0, outputs_unchanged = 0;

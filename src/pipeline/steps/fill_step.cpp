@@ -119,18 +119,10 @@ FillRequest fill_request(const StepContext& c) {
   m.spacetime_tolerance = c.number("tolerance", m.spacetime_tolerance);
   m.spacetime_fft_wisdom = c.text("fft_wisdom", m.spacetime_fft_wisdom);
   m.spacetime_neighbour_radius = c.integer("neighbour_radius", m.spacetime_neighbour_radius);
-  r.only_years = c.only_years;
   r.smooth = c.flag("smooth");
   if (c.has("every")) r.every = CalendarPeriod::parse(c.text("every"));
   r.marks = parse_date_marks(c.text("date_marks", "start"));
-  r.name = c.text("name");
-  r.out_dir = c.folder;
-  r.memory_bytes = c.memory_bytes;
-  r.threads = c.threads;
-  r.compression = parse_compression(c.text("compress", "deflate"));
-  r.command_line = c.command_line;
-  r.keep_unchanged = true;
-  r.region = c.region;
+  take_run_settings(r, c);
   return r;
 }
 

@@ -27,13 +27,7 @@ IndexRequest index_request(const StepContext& c) {
   r.blue_band = c.integer("blue_band", 1);
   r.kind = index_kind(c);
   r.qa = red.qa;
-  r.name = c.text("name");
-  r.out_dir = c.folder;
-  r.threads = c.threads;
-  r.compression = parse_compression(c.text("compress", "deflate"));
-  r.command_line = c.command_line;
-  r.keep_unchanged = true;
-  r.region = c.region;
+  take_run_settings(r, c);
   return r;
 }
 

@@ -13,20 +13,12 @@ SeasonsRequest seasons_request(const StepContext& c) {
   SeasonsRequest r;
   r.input = in.pattern;
   r.rules = in.rules;
-  r.out_dir = c.folder;
-  r.name = c.text("name");
   r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
   if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
   r.marks = parse_date_marks(c.text("date_marks", "start"));
   r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
   r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
-  r.memory_bytes = c.memory_bytes;
-  r.threads = c.threads;
-  r.compression = parse_compression(c.text("compress", "deflate"));
-  r.command_line = c.command_line;
-  r.keep_unchanged = true;
-  r.region = c.region;
-  r.only_years = c.only_years;
+  take_run_settings(r, c);
   return r;
 }
 

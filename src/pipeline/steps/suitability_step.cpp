@@ -30,15 +30,7 @@ SuitabilityRequest suitability_request(const StepContext& c) {
   r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
   if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
   r.threshold = c.number("threshold", r.threshold);
-  r.out_dir = c.folder;
-  r.name = c.text("name");
-  r.memory_bytes = c.memory_bytes;
-  r.threads = c.threads;
-  r.compression = parse_compression(c.text("compress", "deflate"));
-  r.command_line = c.command_line;
-  r.keep_unchanged = true;
-  r.region = c.region;
-  r.only_years = c.only_years;
+  take_run_settings(r, c);
   return r;
 }
 
