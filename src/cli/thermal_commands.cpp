@@ -6,6 +6,7 @@
 
 #include "cli/commands.hpp"
 #include "kalends/error.hpp"
+#include "kalends/season.hpp"
 #include "kalends/suitability.hpp"
 
 namespace kalends::cli {
@@ -189,17 +190,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
       r.window_high = *optional_number(high, "--window");
     }
     r.period = CalendarPeriod::parse(o->period, "--period");
-    if (!o->years.empty()) {
-      int a = 0, b = 0;
-      char dash = 0;
-      if (std::sscanf(o->years.c_str(), "%d%c%d", &a, &dash, &b) == 3 && dash == '-')
-        r.first_year = a, r.last_year = b;
-      else if (std::sscanf(o->years.c_str(), "%d", &a) == 1 &&
-               o->years.find('-') == std::string::npos)
-        r.first_year = r.last_year = a;
-      else
-        throw UsageError("--years '" + o->years + "'", "expected YYYY or YYYY-YYYY");
-    }
+    if (!o->years.empty()) std::tie(r.first_year, r.last_year) = parse_years(o->years);
     r.memory_bytes = parse_memory(o->memory);
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;

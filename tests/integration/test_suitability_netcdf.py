@@ -92,6 +92,19 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         expected = tn.relative("window", self.tas.ravel(), window=(20.0, 30.0)).reshape(self.tas.shape)
         self.check(out, "window", expected, 0.0)
 
+    def test_years_outside_or_reversed(self):
+        # --years selects the years written; a range given backwards or with trailing text is
+        # refused the way `kalends seasons` refuses it, before anything is written.
+        out, _ = self.run_model("years", "--model", "window", "--window", "20,30", "--years", "1999")
+        self.assertTrue(os.path.exists(os.path.join(out, "window_year_1999.tif")))
+        for years in ("1999-1998", "1999x"):
+            out = os.path.join(self.tmp, "years-" + years)
+            done = kt.run_kalends(["suitability", "--temperature", self.input, "--date-marks", "end",
+                                   "--model", "window", "--window", "20,30", "--years", years, "--out", out])
+            self.assertEqual(done.returncode, 2, years)
+            self.assertIn("--years '%s': expected YYYY or YYYY-YYYY" % years, done.stderr)
+            self.assertFalse(os.path.exists(out))
+
     def test_longitude_latitude_axes_place_the_diurnal_cycle(self):
         # The file names no grid mapping, so GDAL gives it no CRS, but CF declares its axes
         # longitude and latitude (CF Conventions 4.1, 4.2, 5.6): the diurnal cycle can find each
