@@ -1,6 +1,7 @@
 // Expanding a file pattern, the one way every reader does it; listing a folder's files.
 #pragma once
 
+#include <optional>
 #include <string>
 #include <vector>
 
@@ -8,6 +9,19 @@ namespace kalends::detail {
 
 /// The files matching a shell pattern, sorted; InputError naming the pattern when none does.
 std::vector<std::string> expand_glob(const std::string& pattern);
+
+/// A GDAL connection string whose file part is a pattern, one variable of many files:
+/// NETCDF:"daily/*.nc":tas, HDF4_EOS:EOS_GRID:"MOD13A1/*.hdf":MODIS_Grid_16DAY_500m_VI:"500m 16
+/// days NDVI". `prefix` ends with the opening quote, `suffix` starts with the closing one.
+struct ConnectionPattern {
+  std::string prefix, files, suffix;
+  std::string connection(const std::string& file) const { return prefix + file + suffix; }
+  /// The variable's name, fit for file names: "tas", "500m_16_days_NDVI".
+  std::string variable() const;
+};
+/// The pattern inside `input`, or nothing when `input` is not a connection string or names one
+/// existing file.
+std::optional<ConnectionPattern> connection_pattern(const std::string& input);
 
 /// Every regular file below `folder` whose name does not start with '.' (partial writes and
 /// state files), sorted; empty when the folder does not exist.

@@ -38,6 +38,29 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   return paths;
 }
 
+std::optional<ConnectionPattern> connection_pattern(const std::string& input) {
+  const auto open = input.find('"');
+  if (open == std::string::npos || open == 0 || input[open - 1] != ':') return std::nullopt;
+  const auto close = input.find('"', open + 1);
+  if (close == std::string::npos) return std::nullopt;
+  std::string files = input.substr(open + 1, close - open - 1);
+  if (files.find_first_of("*?[") == std::string::npos || std::filesystem::exists(files)) return std::nullopt;
+  return ConnectionPattern{input.substr(0, open + 1), std::move(files), input.substr(close)};
+}
+
+std::string ConnectionPattern::variable() const {
+  std::string last = suffix.substr(suffix.rfind(':') == std::string::npos ? suffix.size() : suffix.rfind(':') + 1);
+  std::string name;
+  for (char c : last) {
+    if (std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '.')
+      name += c;
+    else if (c != '"' && !name.empty() && name.back() != '_')
+      name += '_';
+  }
+  while (!name.empty() && name.back() == '_') name.pop_back();
+  return name;
+}
+
 std::vector<std::string> files_below(const std::string& folder) {
   std::vector<std::string> files;
   std::error_code ec;
@@ -154,6 +177,26 @@ std::string name_from_file(const std::string& path) {
   return prefix.empty() ? "filled" : prefix;
 }
 
+// The subdatasets of a container file with several variables (NetCDF, HDF4, HDF5), which opens
+// with no band of its own; none for any other file.
+std::vector<std::string> subdatasets_of(const std::string& path) {
+  detail::start_gdal();
+  std::vector<std::string> names;
+  GDALDatasetUniquePtr any(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (char** items = any ? any->GetMetadata("SUBDATASETS") : nullptr)
+    for (int i = 0; items[i]; ++i) {
+      const std::string item = items[i];
+      if (item.find("_NAME=") != std::string::npos) names.push_back(item.substr(item.find('=') + 1));
+    }
+  return names;
+}
+
+std::string join(const std::vector<std::string>& items) {
+  std::string text;
+  for (const std::string& item : items) text += (text.empty() ? "" : ", ") + item;
+  return text;
+}
+
 std::string band_where(const std::string& path, int band) {
   return path + " band " + std::to_string(band);
 }
@@ -268,25 +311,40 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   if (rules.valid_min && rules.valid_max && *rules.valid_min > *rules.valid_max)
     throw UsageError("--valid-range", "minimum is above maximum");
 
-  const bool pattern = has_glob_characters(input) && !fs::exists(input);
+  // 'ndvi/*.tif', or one variable of many container files: 'NETCDF:"daily/*.nc":tas'.
+  const auto connection = detail::connection_pattern(input);
+  const bool pattern = connection || (has_glob_characters(input) && !fs::exists(input));
   if (pattern) {
     bool first = true;
-    for (const std::string& path : detail::expand_glob(input)) {
-      if (std::find(rules.exclude.begin(), rules.exclude.end(), path) != rules.exclude.end()) continue;
-      auto time = date_from_name(path);
+    for (const std::string& file : detail::expand_glob(connection ? connection->files : input)) {
+      if (std::find(rules.exclude.begin(), rules.exclude.end(), file) != rules.exclude.end()) continue;
+      auto time = date_from_name(file);
       if (!time) time = rules.date;
       if (!time)
-        throw InputError(path, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
-      GDALDatasetUniquePtr dataset = detail::open_raster(path);
+        throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
+      const std::string path = connection ? connection->connection(file) : file;
+      GDALDatasetUniquePtr dataset;
+      try {
+        dataset = detail::open_raster(path);
+      } catch (const InputError& e) {
+        // Errors name the file itself, so that `kalends run --skip-bad` can leave it out.
+        if (connection) throw InputError(file, e.reason() + "; read as " + path);
+        const std::vector<std::string> variables = subdatasets_of(file);
+        if (variables.empty()) throw;
+        std::string example = variables.front();
+        if (const auto at = example.find(file); at != std::string::npos) example.replace(at, file.size(), input);
+        throw InputError(file, "holds several variables; read one from every file with a pattern such as '" +
+                                   example + "' (this file's: " + join(variables) + ")");
+      }
       if (rules.band > dataset->GetRasterCount())
-        throw InputError(path, "has no band " + std::to_string(rules.band));
+        throw InputError(file, "has no band " + std::to_string(rules.band));
       const Grid grid = grid_of(*dataset);
       if (first) {
         stack.grid_ = grid;
-        stack.name_ = name_from_file(path);
+        stack.name_ = connection && !connection->variable().empty() ? connection->variable() : name_from_file(file);
         first = false;
       } else {
-        require_same_grid(stack.grid_, grid, path);
+        require_same_grid(stack.grid_, grid, file);
       }
       stack.layers_.push_back(layer_of(*dataset, path, rules.band, *time, rules));
     }
@@ -297,20 +355,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     try {
       dataset = detail::open_raster(input);
     } catch (const InputError&) {
-      // A NetCDF/HDF file with several variables opens with no band but lists subdatasets.
-      detail::start_gdal();
-      GDALDatasetUniquePtr any(GDALDataset::Open(input.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-      if (any) {
-        if (char** sub = any->GetMetadata("SUBDATASETS"); sub && sub[0]) {
-          std::string names;
-          for (int i = 0; sub[i]; ++i) {
-            const std::string item = sub[i];
-            if (item.find("_NAME=") == std::string::npos) continue;
-            names += (names.empty() ? "" : ", ") + item.substr(item.find('=') + 1);
-          }
-          throw InputError(input, "holds several variables; choose one of: " + names);
-        }
-      }
+      if (const std::vector<std::string> variables = subdatasets_of(input); !variables.empty())
+        throw InputError(input, "holds several variables; choose one of: " + join(variables));
       if (!fs::exists(input) && !has_glob_characters(input) && input.find(':') == std::string::npos)
         throw InputError(input, "no such file");
       throw;

@@ -1,0 +1,146 @@
+"""One variable of many container files as a stack: 'NETCDF:"nc/*.nc":ndvi'.
+
+Distributors often deliver one NetCDF (or HDF) file per date holding several variables, the
+index and its QA side by side. kalends reads one variable of every file of a pattern written
+inside GDAL's own connection string. The check: the real Alaska NDVI (observed/, MOD13A1) and a
+QA layer, written once per date as NetCDF files with both variables and once as GeoTIFF pairs
+by GDAL, fill to identical outputs; a `kalends run` job over the NetCDF files reruns nothing
+when nothing changed and reruns when a file arrives; bad containers give one line naming the
+file.
+"""
+import glob
+import os
+import subprocess
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+
+def write_netcdf(path, variables):
+    """One NetCDF file holding each 2-D array of `variables` (name -> array) on a lon/lat grid,
+    written with GDAL's multidimensional API (the classic API writes one variable per file)."""
+    g = kt.gdal()
+    ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path)
+    root = ds.GetRootGroup()
+    height, width = next(iter(variables.values())).shape
+    axes = []
+    for name, size, first, step, units in (("lat", height, 64.995, -0.01, "degrees_north"),
+                                           ("lon", width, -147.995, 0.01, "degrees_east")):
+        dim = root.CreateDimension(name, None, None, size)
+        axis = root.CreateMDArray(name, [dim], g.ExtendedDataType.Create(g.GDT_Float64))
+        axis.Write(np.array([first + step * k for k in range(size)]))
+        axis.CreateAttribute("units", [], g.ExtendedDataType.CreateString()).Write(units)
+        axes.append(dim)
+    for name, array in variables.items():
+        gdal_type = g.GDT_Float32 if array.dtype == np.float32 else g.GDT_Byte
+        var = root.CreateMDArray(name, axes, g.ExtendedDataType.Create(gdal_type))
+        var.Write(array)
+    ds = None
+
+
+class ContainerStacks(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        observed = sorted(glob.glob(os.path.join(kt.shared_path("alaska-ndvi", "observed"), "ndvi_*.tif")))[:16]
+        assert len(observed) == 16
+        g = kt.gdal()
+        rng = np.random.default_rng(5)
+        cls.nc = os.path.join(cls.tmp, "nc")
+        cls.tif = os.path.join(cls.tmp, "tif")
+        for folder in (cls.nc, os.path.join(cls.tif, "ndvi"), os.path.join(cls.tif, "qa")):
+            os.makedirs(folder)
+        cls.dates = []
+        for path in observed:
+            date = os.path.basename(path)[len("ndvi_"):-len(".tif")]
+            cls.dates.append(date)
+            ds = g.Open(path)
+            ndvi = ds.GetRasterBand(1).ReadAsArray().astype(np.float32)
+            ds = None
+            # QA: bit 0 set on a tenth of the cells (invented: a check of the mechanics).
+            qa = (rng.random(ndvi.shape) < 0.1).astype(np.uint8)
+            write_netcdf(os.path.join(cls.nc, "veg_%s.nc" % date.replace("-", "")), {"ndvi": ndvi, "qa": qa})
+        # The GeoTIFF pairs are what GDAL itself reads from each NetCDF variable.
+        for path in sorted(glob.glob(os.path.join(cls.nc, "*.nc"))):
+            date = os.path.basename(path)[4:12]
+            for var in ("ndvi", "qa"):
+                g.Translate(os.path.join(cls.tif, var, "%s_%s.tif" % (var, date)), 'NETCDF:"%s":%s' % (path, var))
+        cls.pattern = 'NETCDF:"%s":ndvi' % os.path.join(cls.nc, "*.nc")
+        cls.qa_pattern = 'NETCDF:"%s":qa' % os.path.join(cls.nc, "*.nc")
+
+    def test_fill_equals_the_same_values_as_geotiffs(self):
+        from_nc = os.path.join(self.tmp, "out-nc")
+        from_tif = os.path.join(self.tmp, "out-tif")
+        kt.run_fill_ok(self, [self.pattern, "--qa", self.qa_pattern, "--keep", "bit 0 == 0", "--out", from_nc])
+        kt.run_fill_ok(self, [os.path.join(self.tif, "ndvi", "*.tif"), "--qa", os.path.join(self.tif, "qa", "*.tif"),
+                              "--keep", "bit 0 == 0", "--out", from_tif, "--name", "ndvi"])
+        names = kt.final_outputs(from_nc)
+        self.assertEqual(names, ["ndvi_%s.tif" % d for d in self.dates])  # named after the variable
+        self.assertEqual(kt.final_outputs(from_tif), names)
+        for name in names:
+            a = kt.read_output(os.path.join(from_nc, name))
+            b = kt.read_output(os.path.join(from_tif, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+            self.assertEqual(a["geotransform"], b["geotransform"])
+        # The QA of the NetCDF files was read: a tenth of the observed values masked.
+        summary = kt.read_summary(from_nc)
+        self.assertGreater(summary["masked_by_qa"], 0.05 * summary["observed"])
+
+    def test_a_job_reruns_only_when_a_file_arrives(self):
+        folder = os.path.join(self.tmp, "job")
+        live = os.path.join(folder, "nc")
+        os.makedirs(live)
+        files = sorted(glob.glob(os.path.join(self.nc, "*.nc")))
+        for path in files[:-1]:
+            os.symlink(path, os.path.join(live, os.path.basename(path)))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = \'NETCDF:"nc/*.nc":ndvi\'\n'
+                    'qa = \'NETCDF:"nc/*.nc":qa\'\nkeep = "bit 0 == 0"\n\n[[step]]\ndo = "fill"\ninput = "ndvi"\n')
+
+        def run():
+            done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=300)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            return done.stdout
+
+        first = run()
+        self.assertRegex(first, r"fill\s+ran")
+        self.assertEqual(len(kt.final_outputs(os.path.join(folder, "out", "fill"))), len(files) - 1)
+        self.assertIn("nothing new, nothing done", run())
+        os.symlink(files[-1], os.path.join(live, os.path.basename(files[-1])))
+        self.assertRegex(run(), r"fill\s+ran")
+        self.assertEqual(len(kt.final_outputs(os.path.join(folder, "out", "fill"))), len(files))
+
+    def test_bad_containers_are_one_line_naming_the_file(self):
+        out = os.path.join(self.tmp, "bad")
+        # A plain pattern over files with several variables: the line shows the form to use.
+        done = kt.run_kalends(["fill", os.path.join(self.nc, "*.nc"), "--out", out])
+        self.assertEqual(done.returncode, 2)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("holds several variables; read one from every file with a pattern such as 'NETCDF:\"%s\":ndvi'"
+                      % os.path.join(self.nc, "*.nc"), done.stderr)
+        # A variable one of the files lacks: the line names that file.
+        odd = os.path.join(self.tmp, "odd")
+        os.makedirs(odd)
+        for path in sorted(glob.glob(os.path.join(self.nc, "*.nc")))[:3]:
+            os.symlink(path, os.path.join(odd, os.path.basename(path)))
+        write_netcdf(os.path.join(odd, "veg_20990101.nc"), {"evi": np.zeros((100, 100), np.float32),
+                                                            "qa": np.zeros((100, 100), np.uint8)})
+        done = kt.run_kalends(["fill", 'NETCDF:"%s":ndvi' % os.path.join(odd, "*.nc"), "--out", out])
+        self.assertEqual(done.returncode, 2)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertTrue(done.stderr.startswith("kalends: %s: " % os.path.join(odd, "veg_20990101.nc")), done.stderr)
+        # No file matches.
+        done = kt.run_kalends(["fill", 'NETCDF:"%s":ndvi' % os.path.join(self.tmp, "none", "*.nc"), "--out", out])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("no file matches this pattern", done.stderr)
+        self.assertFalse(os.path.exists(out))
+
+
+if __name__ == "__main__":
+    unittest.main(verbosity=2)
