@@ -38,6 +38,7 @@ struct FillRequest {
   ValueRules rules;
   std::string qa_input;  // empty = no QA stack
   std::string qa_keep;   // keep rule, required with qa_input
+  int qa_band = 1;       // band of each QA file (QA beside the value in one file per date)
   MethodOptions method;
   std::string out_dir;
   std::string name;  // empty = from the input

@@ -18,6 +18,7 @@ struct InspectRequest {
   std::string input;
   ValueRules rules;
   std::string qa_input, qa_keep;  // both or neither
+  int qa_band = 1;
   bool read_values = true;        // false: dates, grid and rules only, no pixel is read
 };
 

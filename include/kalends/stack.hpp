@@ -105,4 +105,7 @@ double first_date_median(const Stack& stack, int side);
 /// has no partner ("no QA layer for 2004-05-24 in 'qa/*.tif'"; `what` is "QA").
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what);
 
+/// UsageError naming `option` ("--qa-band 0") unless `band` is 1 or more (GDAL counts from 1).
+void check_band(int band, const std::string& option);
+
 }  // namespace kalends

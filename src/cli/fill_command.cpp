@@ -90,6 +90,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date");
   sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");
+  sub->add_option("--qa-band", r.qa_band, "Band of each QA file (e.g. 2 where each date's file holds the value and its QA)")
+      ->capture_default_str();
   add_value_rule_options(sub, r.rules, o->rule_texts);
   sub->add_option("--tiles", o->tiles,
                   "The input is a tile set: where the tile's name sits in each path, e.g. 'tiles/{tile}/'; "

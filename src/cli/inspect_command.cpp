@@ -162,6 +162,7 @@ Action add_inspect_command(CLI::App& app, GlobalOptions& global) {
       ->required();
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date");
   sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");
+  sub->add_option("--qa-band", r.qa_band, "Band of each QA file")->capture_default_str();
   add_value_rule_options(sub, r.rules, o->rule_texts);
   sub->add_option("--date", o->date, "Date of files whose names carry none (YYYY-MM-DD)");
   sub->add_flag("--dates", o->dates, "Also a line per date: source of the date, observed share, min, mean, max");

@@ -55,6 +55,9 @@ void check_index_options(const IndexRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (request.red.empty() || request.nir.empty()) throw UsageError("--red/--nir", "both are required");
   if (request.kind == SpectralIndex::evi && request.blue.empty()) throw UsageError("--blue", "EVI needs the blue band");
+  check_band(request.red_band, "--red-band");
+  check_band(request.nir_band, "--nir-band");
+  check_band(request.blue_band, "--blue-band");
 }
 
 IndexSummary run_index(const IndexRequest& request) {

@@ -99,6 +99,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   if (request.qa_input.empty() && !request.qa_keep.empty())
     throw UsageError("--keep", "given without a QA stack (--qa)");
   if (request.name.find('/') != std::string::npos) throw UsageError("--name", "must not contain '/'");
+  check_band(request.rules.band, "--band");
+  check_band(request.qa_band, "--qa-band");
   MethodOptions method_options = request.method;
   method_options.clamp_min = request.rules.valid_min;
   method_options.clamp_max = request.rules.valid_max;
@@ -113,6 +115,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::vector<std::size_t> qa_of_layer;
   if (keep) {
     ValueRules qa_rules;
+    qa_rules.band = request.qa_band;
     qa_rules.exclude = request.rules.exclude;
     qa_stack = Stack::open(request.qa_input, qa_rules);
     qa_of_layer = partners_by_date(stack, *qa_stack, "QA");

@@ -49,13 +49,16 @@ InspectReport inspect_stack(const InspectRequest& request) {
   if (request.qa_input.empty() != request.qa_keep.empty())
     throw UsageError("--keep", request.qa_input.empty() ? "given without a QA stack (--qa)"
                                                         : "a keep rule is required with --qa");
+  check_band(request.qa_band, "--qa-band");
   std::optional<QaRule> keep;
   if (!request.qa_keep.empty()) keep = QaRule::parse(request.qa_keep);
   const Stack stack = Stack::open(request.input, request.rules);
   std::optional<Stack> qa_stack;
   std::vector<std::size_t> qa_of;
   if (keep) {
-    qa_stack = Stack::open(request.qa_input, ValueRules{});
+    ValueRules qa_rules;
+    qa_rules.band = request.qa_band;
+    qa_stack = Stack::open(request.qa_input, qa_rules);
     qa_of = partners_by_date(stack, *qa_stack, "QA");
   }
 

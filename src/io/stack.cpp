@@ -303,8 +303,13 @@ std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other,
   return index;
 }
 
+void check_band(int band, const std::string& option) {
+  if (band < 1) throw UsageError(option + " " + std::to_string(band), "bands are numbered from 1");
+}
+
 Stack Stack::open(const std::string& input, const ValueRules& rules) {
   detail::start_gdal();
+  check_band(rules.band, "--band");
   Stack stack;
   stack.input_ = input;
   stack.rules_ = rules;

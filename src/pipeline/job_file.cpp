@@ -175,6 +175,7 @@ Job read_job(const std::string& path) {
         else if (k == "offset") input.offset = std::stod(checked_text(path, k, value, Type::number));
         else if (k == "nodata") input.nodata = std::stod(checked_text(path, k, value, Type::number));
         else if (k == "band") input.band = std::stoi(checked_text(path, k, value, Type::integer));
+        else if (k == "qa_band") input.qa_band = std::stoi(checked_text(path, k, value, Type::integer));
         else if (k == "valid_range") {
           const std::string pair = checked_text(path, k, value, Type::pair);
           input.valid_min = std::stod(pair.substr(0, pair.find(',')));
@@ -182,10 +183,12 @@ Job read_job(const std::string& path) {
         } else {
           fail(path, key.source(),
                "unknown key '" + k + "' in [inputs." + input.name +
-                   "] (stack, qa, keep, scale, offset, nodata, valid_range, band)");
+                   "] (stack, qa, keep, scale, offset, nodata, valid_range, band, qa_band)");
         }
       }
       if (input.stack.empty()) fail(path, node.source(), "[inputs." + input.name + "] needs 'stack'");
+      if (input.band < 1 || input.qa_band < 1)
+        fail(path, node.source(), "[inputs." + input.name + "]: bands are numbered from 1");
       if (!input.qa.empty() && input.keep.empty())
         fail(path, node.source(), "[inputs." + input.name + "] has 'qa' but no 'keep' rule");
       job.inputs[input.name] = input;

@@ -17,7 +17,7 @@ struct JobInput {
   std::string stack;  // pattern or raster, resolved against the job file's folder
   std::string qa, keep;
   std::optional<double> scale, offset, nodata, valid_min, valid_max;
-  int band = 1;
+  int band = 1, qa_band = 1;
 };
 
 struct JobStep {

@@ -435,6 +435,7 @@ class Runner {
       for (const auto& v : {input.scale, input.offset, input.nodata, input.valid_min, input.valid_max})
         text += "|" + (v ? fmt::format("{:.17g}", *v) : std::string("-"));
       text += "|" + std::to_string(input.band);
+      if (input.qa_band != 1) text += "|qa band " + std::to_string(input.qa_band);  // older states stay valid
       for (const std::string& pattern : {input.stack, input.qa}) {
         if (pattern.empty()) continue;
         const auto files = files_of(pattern);
@@ -505,6 +506,7 @@ class Runner {
       r.pattern = in->second.stack;
       r.qa = in->second.qa;
       r.keep = in->second.keep;
+      r.qa_band = in->second.qa_band;
       r.rules = rules_of(in->second);
     } else {
       std::string folder = step_folder(base_, name);

@@ -28,6 +28,7 @@ struct StepKey {
 struct ResolvedInput {
   std::string pattern;   // the stack pattern (an earlier step: its folder's *.tif)
   std::string qa, keep;  // QA stack and rule, where the input has them
+  int qa_band = 1;
   std::string folder;    // an earlier step's output folder; empty for a job input
   ValueRules rules;
 };

@@ -1,12 +1,13 @@
-"""One variable of many container files as a stack: 'NETCDF:"nc/*.nc":ndvi'.
+"""Stacks whose files hold the value and its QA together.
 
 Distributors often deliver one NetCDF (or HDF) file per date holding several variables, the
-index and its QA side by side. kalends reads one variable of every file of a pattern written
-inside GDAL's own connection string. The check: the real Alaska NDVI (observed/, MOD13A1) and a
-QA layer, written once per date as NetCDF files with both variables and once as GeoTIFF pairs
-by GDAL, fill to identical outputs; a `kalends run` job over the NetCDF files reruns nothing
-when nothing changed and reruns when a file arrives; bad containers give one line naming the
-file.
+index and its QA side by side; exports from other tools deliver one GeoTIFF per date with the
+QA as a second band. kalends reads one variable of every file of a pattern written inside
+GDAL's own connection string ('NETCDF:"nc/*.nc":ndvi'), and the QA from any band (--qa-band).
+The check: the real Alaska NDVI (observed/, MOD13A1) and a QA layer, written once per date as
+NetCDF files with both variables, once as two-band GeoTIFFs and once as GeoTIFF pairs by GDAL,
+fill to identical outputs; a `kalends run` job over the NetCDF files reruns nothing when
+nothing changed and reruns when a file arrives; bad containers give one line naming the file.
 """
 import glob
 import os
@@ -69,6 +70,16 @@ class ContainerStacks(kt.TempDirTestCase):
             date = os.path.basename(path)[4:12]
             for var in ("ndvi", "qa"):
                 g.Translate(os.path.join(cls.tif, var, "%s_%s.tif" % (var, date)), 'NETCDF:"%s":%s' % (path, var))
+        # Two-band GeoTIFFs: the value in band 1, its QA in band 2.
+        cls.two_band = os.path.join(cls.tmp, "two-band")
+        os.makedirs(cls.two_band)
+        for path in sorted(glob.glob(os.path.join(cls.nc, "*.nc"))):
+            date = os.path.basename(path)[4:12]
+            g.BuildVRT(os.path.join(cls.tmp, "pair.vrt"),
+                       [os.path.join(cls.tif, var, "%s_%s.tif" % (var, date)) for var in ("ndvi", "qa")],
+                       separate=True)
+            g.Translate(os.path.join(cls.two_band, "ndvi_%s.tif" % date), os.path.join(cls.tmp, "pair.vrt"),
+                        outputType=g.GDT_Float32)
         cls.pattern = 'NETCDF:"%s":ndvi' % os.path.join(cls.nc, "*.nc")
         cls.qa_pattern = 'NETCDF:"%s":qa' % os.path.join(cls.nc, "*.nc")
 
@@ -90,6 +101,28 @@ class ContainerStacks(kt.TempDirTestCase):
         # The QA of the NetCDF files was read: a tenth of the observed values masked.
         summary = kt.read_summary(from_nc)
         self.assertGreater(summary["masked_by_qa"], 0.05 * summary["observed"])
+
+    def test_qa_in_a_second_band_equals_the_geotiff_pairs(self):
+        two = os.path.join(self.tmp, "out-two-band")
+        pairs = os.path.join(self.tmp, "out-pairs")
+        both = os.path.join(self.two_band, "*.tif")
+        kt.run_fill_ok(self, [both, "--band", "1", "--qa", both, "--qa-band", "2", "--keep", "bit 0 == 0", "--out", two])
+        kt.run_fill_ok(self, [os.path.join(self.tif, "ndvi", "*.tif"), "--qa", os.path.join(self.tif, "qa", "*.tif"),
+                              "--keep", "bit 0 == 0", "--out", pairs])
+        names = kt.final_outputs(two)
+        self.assertEqual(names, kt.final_outputs(pairs))
+        for name in names:
+            a, b = kt.read_output(os.path.join(two, name)), kt.read_output(os.path.join(pairs, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+        self.assertGreater(kt.read_summary(two)["masked_by_qa"], 0)
+        # Band 0 is refused by name, before anything is written.
+        for option in ("--band", "--qa-band"):
+            out = os.path.join(self.tmp, "band0")
+            done = kt.run_kalends(["fill", both, "--qa", both, "--keep", "bit 0 == 0", option, "0", "--out", out])
+            self.assertEqual(done.returncode, 2, option)
+            self.assertIn("%s 0: bands are numbered from 1" % option, done.stderr)
+            self.assertFalse(os.path.exists(out))
 
     def test_a_job_reruns_only_when_a_file_arrives(self):
         folder = os.path.join(self.tmp, "job")
@@ -115,6 +148,26 @@ class ContainerStacks(kt.TempDirTestCase):
         os.symlink(files[-1], os.path.join(live, os.path.basename(files[-1])))
         self.assertRegex(run(), r"fill\s+ran")
         self.assertEqual(len(kt.final_outputs(os.path.join(folder, "out", "fill"))), len(files))
+
+    def test_a_job_reads_the_qa_band(self):
+        folder = os.path.join(self.tmp, "job-two-band")
+        os.makedirs(folder)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "%s"\nqa = "%s"\nqa_band = 2\nkeep = "bit 0 == 0"\n\n'
+                    '[[step]]\ndo = "fill"\ninput = "ndvi"\n' % (os.path.join(self.two_band, "*.tif"),
+                                                                   os.path.join(self.two_band, "*.tif")))
+        done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=300)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        summary = kt.read_summary(os.path.join(folder, "out", "fill"))
+        self.assertGreater(summary["masked_by_qa"], 0.05 * summary["observed"])
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace("qa_band = 2", "qa_band = 0"))
+        done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=300)
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("bands are numbered from 1", done.stderr)
 
     def test_bad_containers_are_one_line_naming_the_file(self):
         out = os.path.join(self.tmp, "bad")

@@ -93,6 +93,7 @@ FillRequest fill_request(const StepContext& c) {
   r.rules = in.rules;
   r.qa_input = in.qa;
   r.qa_keep = c.text("keep", in.keep);
+  r.qa_band = in.qa_band;
   if (r.qa_input.empty()) r.qa_keep.clear();
   MethodOptions& m = r.method;
   m.method = c.text("method", m.method);
