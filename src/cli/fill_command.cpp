@@ -98,7 +98,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                   "outputs go to OUT/<tile>/");
   sub->add_flag("--mosaic", o->mosaic, "With --tiles: also write OUT/mosaic/, one VRT per date over all tiles");
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
 
   return [o, &global] {

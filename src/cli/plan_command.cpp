@@ -31,7 +31,7 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--shards", o->shards, "Number of shards (array tasks)")->required()->check(CLI::PositiveNumber);
   sub->add_option("--out", o->run.out_dir, "Output folder (overrides the job file's)");
   sub->add_option("--threads", o->run.threads, "Threads per task (default: the job's; 4 where it says all cores)")
-      ->check(CLI::NonNegativeNumber);
+      ->check(CLI::Range(0, 4096));
   return [o, &global] {
     const PlanReport plan = plan_job(o->run, o->shards);
     if (!global.quiet) {

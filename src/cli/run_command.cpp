@@ -47,7 +47,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
                 "Stitch the shards' outputs and run the steps that need the whole area (exit 4 while a shard "
                 "is missing, failed or stale)");
   sub->add_option("--threads", o->run.threads, "Threads (overrides the job file's; 0 = the job's)")
-      ->check(CLI::NonNegativeNumber);
+      ->check(CLI::Range(0, 4096));
   sub->add_option("--log", o->log, "text or json (one JSON object per line)")
       ->check(CLI::IsMember({"text", "json"}))
       ->capture_default_str();

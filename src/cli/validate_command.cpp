@@ -30,7 +30,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
                   "Neighbourhood radius (pixels) for the breakdown by missing neighbours")
       ->capture_default_str();
   sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)");
+  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
   // Each method is scored with the settings it would fill with: the options of `kalends fill`.
   add_method_options(sub, r.method, o->method_texts);

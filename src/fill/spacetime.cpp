@@ -88,6 +88,8 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
     throw UsageError("--time-smoothing", "must be positive or auto");
   if (!(options.spacetime_climate_smoothing > 0))
     throw UsageError("--climate-smoothing", "must be positive");
+  if (!(options.spacetime_season_smoothing >= 0))
+    throw UsageError("--season-smoothing", "must be 0 or more");
   if (options.spacetime_neighbour_radius < 0 || options.spacetime_neighbour_radius > 32)
     throw UsageError("--neighbour-radius", "must be 0..32 pixels");
   if (options.spacetime_halo < 0 || options.spacetime_halo > 1024)

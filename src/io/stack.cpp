@@ -310,6 +310,7 @@ void check_band(int band, const std::string& option) {
 Stack Stack::open(const std::string& input, const ValueRules& rules) {
   detail::start_gdal();
   check_band(rules.band, "--band");
+  if (rules.scale && *rules.scale == 0) throw UsageError("--scale 0", "a scale factor of 0 makes every value 0");
   Stack stack;
   stack.input_ = input;
   stack.rules_ = rules;

@@ -153,7 +153,10 @@ Job read_job(const std::string& path) {
       const std::string k(key.str());
       if (k == "name") job.name = checked_text(path, k, node, Type::text);
       else if (k == "out") job.out = resolve(job.folder, checked_text(path, k, node, Type::text));
-      else if (k == "threads") job.threads = std::stoi(checked_text(path, k, node, Type::integer));
+      else if (k == "threads") {
+        job.threads = std::stoi(checked_text(path, k, node, Type::integer));
+        if (job.threads < 0) fail(path, node.source(), "'threads' must be 0 (all cores) or more");
+      }
       else if (k == "memory") job.memory = checked_text(path, k, node, Type::text);
       else fail(path, key.source(), "unknown key '" + k + "' in [job] (name, out, threads, memory)");
     }

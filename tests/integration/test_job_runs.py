@@ -124,6 +124,10 @@ class JobFile(kt.TempDirTestCase):
         self.check_refused(good.replace('input = "fill"', 'input = "fil"'),
                            good.split("\n").index('input = "fill"') + 1, ["'fil' is neither an input nor an earlier step"])
         self.check_refused(good.replace("[job]", "[job"), 2, [])
+        self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = -2'), 6,
+                           ["'threads' must be 0 (all cores) or more"])
+        self.check_refused(good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [-0.2, 1.0]\nband = 0'), 7,
+                           ["[inputs.ndvi]: bands are numbered from 1"])
         self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
                            good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or \"auto\""])
 
@@ -135,6 +139,7 @@ class JobFile(kt.TempDirTestCase):
         cases = [
             (good.replace('lambda = "auto"', 'lambda = "sometimes"'), lam, ["'lambda' must be a number or \"auto\""]),
             (good.replace('lambda = "auto"', "lambda = -3"), lam, ["'lambda'", "must be positive"]),
+            (good.replace('lambda = "auto"', 'lambda = "auto"\nmax_gap = -10'), lam + 1, ["'max_gap'", "no limit"]),
             (good.replace('envelope = "upper"', 'envelope = "uper"'), lines.index('envelope = "upper"') + 1,
              ["'envelope' 'uper'", "none or upper"]),
             (good.replace('every = "1M"', 'every = "2W"'), lines.index('every = "1M"') + 1,
