@@ -81,6 +81,11 @@ struct CalibrationSummary {
 /// `out_file` atomically.
 CalibrationSummary run_calibration(const CalibrationRequest& request);
 
+struct SuitabilityRequest;
+/// The window model's limits as given (--window LOW,HIGH); UsageError unless both are finite
+/// (NaN in the request means "from the parameter table").
+void set_window(SuitabilityRequest& request, double low, double high);
+
 struct SuitabilityRequest {
   TemperatureInputs inputs;
   ThermalModelKind model = ThermalModelKind::r0_2013;

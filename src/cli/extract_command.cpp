@@ -43,7 +43,7 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     ExtractRequest& r = o->request;
     r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
-    if (!o->buffer.empty() && r.buffer_metres <= 0) throw UsageError("--buffer", "the radius must be positive (metres)");
+    if (!o->buffer.empty() && !(r.buffer_metres > 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
     r.lags = parse_whole_numbers(o->lags, "--lags");
     r.layers = split_list(o->layers, "--layers");
     r.marks = parse_date_marks(o->marks);

@@ -28,7 +28,7 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
   };
   auto o = std::make_shared<Options>();
   sub->add_option("job", o->run.job_file, "The job file (TOML)")->required();
-  sub->add_option("--shards", o->shards, "Number of shards (array tasks)")->required()->check(CLI::PositiveNumber);
+  sub->add_option("--shards", o->shards, "Number of shards (array tasks)")->required()->check(CLI::Range(1, 100000));
   sub->add_option("--out", o->run.out_dir, "Output folder (overrides the job file's)");
   sub->add_option("--threads", o->run.threads, "Threads per task (default: the job's; 4 where it says all cores)")
       ->check(CLI::Range(0, 4096));

@@ -116,6 +116,8 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
         c.last_day = parse_iso_time(last);
         if (!c.first_day || !c.last_day)
           throw UsageError("--fit-days '" + o->fit_days + "'", "expected YYYY-MM-DD,YYYY-MM-DD");
+        if (*c.last_day < *c.first_day)
+          throw UsageError("--fit-days '" + o->fit_days + "'", "the first day is after the last (FIRST,LAST)");
       }
       const CalibrationSummary s = run_calibration(c);
       if (!global.quiet)
@@ -186,8 +188,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
     r.parasite = parse_parasite(o->parasite);
     if (!o->window.empty()) {
       const auto [low, high] = split_pair(o->window, "--window", "LOW,HIGH in deg C");
-      r.window_low = *optional_number(low, "--window");
-      r.window_high = *optional_number(high, "--window");
+      set_window(r, *optional_number(low, "--window"), *optional_number(high, "--window"));
     }
     r.period = CalendarPeriod::parse(o->period, "--period");
     if (!o->years.empty()) std::tie(r.first_year, r.last_year) = parse_years(o->years);

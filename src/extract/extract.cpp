@@ -336,7 +336,7 @@ Sampling parse_sampling(const std::string& text) {
 }
 
 void check_extract_options(const ExtractRequest& request) {
-  if (request.buffer_metres < 0) throw UsageError("--buffer", "the radius must be positive (metres)");
+  if (!(request.buffer_metres >= 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
   for (int lag : request.lags)
     if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
 }

@@ -110,9 +110,9 @@ void check_study_grid_options(const StudyGridRequest& request) {
     if (srs.SetFromUserInput(request.crs.c_str()) != OGRERR_NONE)
       throw UsageError("--crs '" + request.crs + "'", "not a CRS GDAL knows");
   }
-  if (request.resolution < 0) throw UsageError("--resolution", "must be positive");
-  if (request.extent && (request.extent->size() != 4 || (*request.extent)[0] >= (*request.extent)[2] ||
-                         (*request.extent)[1] >= (*request.extent)[3]))
+  if (!(request.resolution >= 0)) throw UsageError("--resolution", "must be positive");
+  if (request.extent && (request.extent->size() != 4 || !((*request.extent)[0] < (*request.extent)[2]) ||
+                         !((*request.extent)[1] < (*request.extent)[3])))
     throw UsageError("--extent", "expected XMIN,YMIN,XMAX,YMAX with XMIN < XMAX and YMIN < YMAX");
   const auto& names = study_grid_resampling_names();
   if (std::find(names.begin(), names.end(), request.resample) == names.end())

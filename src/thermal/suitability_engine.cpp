@@ -90,6 +90,13 @@ CheckedOptions checked_options(const SuitabilityRequest& request) {
 
 void check_suitability_options(const SuitabilityRequest& request) { checked_options(request); }
 
+void set_window(SuitabilityRequest& request, double low, double high) {
+  if (!std::isfinite(low) || !std::isfinite(high))
+    throw UsageError("--window", "expected two temperatures LOW,HIGH in deg C");
+  request.window_low = low;
+  request.window_high = high;
+}
+
 SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const auto started = std::chrono::steady_clock::now();
   const auto [table, model] = checked_options(request);

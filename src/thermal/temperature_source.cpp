@@ -96,6 +96,9 @@ TemperatureSource::Mode TemperatureSource::mode_of(const TemperatureInputs& in) 
     if (in.day.empty() || in.night.empty()) throw UsageError("--day/--night", "give both");
     if (!(in.day_hour >= 0 && in.day_hour < 24 && in.night_hour >= 0 && in.night_hour < 24))
       throw UsageError("--day-time/--night-time", "local solar hours must lie in [0, 24)");
+    // Two samples at one hour cannot tell the day's minimum from its maximum.
+    if (in.day_hour == in.night_hour)
+      throw UsageError("--day-time/--night-time", "the two overpasses must be at different hours");
     return Mode::overpasses;
   }
   return Mode::constant;

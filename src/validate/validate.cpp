@@ -171,6 +171,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
   std::map<std::string, MethodParameters> parameters;
   for (const std::string& m : request.methods) {
+    if (parameters.count(m)) throw UsageError("--methods", "'" + m + "' is named twice");
     MethodOptions o = request.method;
     o.method = m;
     // Unknown names and bad options fail here, before any work. The method is named by

@@ -230,6 +230,18 @@ class DiurnalEra5(kt.TempDirTestCase):
               % (before, after, text), file=sys.stderr)
         self.assertLess(after, before)
 
+    def test_impossible_hours_and_day_ranges_are_refused(self):
+        for args, expected in (
+                (["--calibrate", self.grib, "--save-parameters", os.path.join(self.tmp, "x.toml"),
+                  "--fit-days", "2019-03-15,2019-03-01"], "the first day is after the last"),
+                (["--day", os.path.join(self.input, "tmax_*.tif"), "--night", os.path.join(self.input, "tmin_*.tif"),
+                  "--day-time", "1.5", "--night-time", "1.5", "--out", os.path.join(self.tmp, "same")],
+                 "the two overpasses must be at different hours")):
+            done = kt.run_kalends(["diurnal"] + args)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn(expected, done.stderr)
+
 
 if __name__ == "__main__":
     unittest.main()

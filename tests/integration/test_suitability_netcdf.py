@@ -104,6 +104,11 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, years)
             self.assertIn("--years '%s': expected YYYY or YYYY-YYYY" % years, done.stderr)
             self.assertFalse(os.path.exists(out))
+        # A window limit that is not a number (NaN once meant "the table's", silently).
+        done = kt.run_kalends(["suitability", "--temperature", self.input, "--date-marks", "end", "--model",
+                               "window", "--window", "nan,30", "--out", os.path.join(self.tmp, "nan")])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("--window: expected two temperatures", done.stderr)
 
     def test_longitude_latitude_axes_place_the_diurnal_cycle(self):
         # The file names no grid mapping, so GDAL gives it no CRS, but CF declares its axes

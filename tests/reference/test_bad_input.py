@@ -213,6 +213,20 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(self.good, "*.tif"), "--method", "kriging"],
                          ["--method", "kriging"], ["unknown", "method"], "unknown method")
 
+    def test_option_values_out_of_range(self):
+        # Each was once taken silently (or, --band 0, crashed): now refused by the option's name.
+        stack = os.path.join(self.good, "*.tif")
+        cases = [(["--max-gap", "-1"], "--max-gap", "no limit"),
+                 (["--reach", "-1"], "--reach", "whole series"),
+                 (["--scale", "0"], "--scale", "every value 0"),
+                 (["--band", "0"], "--band", "numbered from 1"),
+                 (["--qa", os.path.join(self.qa, "*.tif"), "--keep", "bits0-1 in 0,1", "--qa-band", "0"],
+                  "--qa-band", "numbered from 1"),
+                 (["--method", "spacetime", "--season-smoothing", "-1"], "--season-smoothing", "0 or more")]
+        for extra, name, keyword in cases:
+            with self.subTest(option=name):
+                self.check_fails([stack] + extra, [name], [keyword], name)
+
 
 class ValidateWithNothingToWithhold(kt.TempDirTestCase):
     """kalends validate transplants one date's missing cells onto another: a stack whose dates
@@ -236,6 +250,12 @@ class ValidateWithNothingToWithhold(kt.TempDirTestCase):
         for k in keywords:
             self.assertIn(k, lines[0])
         self.assertFalse(os.path.exists(os.path.join(out, "report.json")))
+
+    def test_a_method_named_twice(self):
+        done = kt.run_kalends(["validate", os.path.join(self.tmp, "*.nope"), "--out", os.path.join(self.tmp, "v"),
+                               "--methods", "whittaker,harmonic,whittaker"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--methods: 'whittaker' is named twice", done.stderr)
 
     def test_the_same_mask_on_every_date(self):
         sea = np.zeros((HEIGHT, WIDTH), dtype=bool)

@@ -164,7 +164,8 @@ class ExtractLandsat(kt.TempDirTestCase):
         for extra, expected in ((["--lags", "1,,2"], "--lags '1,,2': an empty item"),
                                 (["--lags", "1.5"], "--lags '1.5': expected a whole number"),
                                 (["--lags", "0"], "--lags"),
-                                (["--layers", "b1,"], "--layers 'b1,': an empty item")):
+                                (["--layers", "b1,"], "--layers 'b1,': an empty item"),
+                                (["--buffer", "nan"], "--buffer: the radius must be positive")):
             done = kt.run_kalends(base + extra)
             self.assertEqual(done.returncode, 2, extra)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)

@@ -155,6 +155,12 @@ class Clipping(kt.TempDirTestCase):
         self.assertIn("no-such-area.gpkg", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertFalse(glob.glob(os.path.join(out, "*.tif")))
+        # Not-a-number cell sizes and extents are refused by name (they passed the old checks).
+        for extra, option in ((["--resolution", "nan"], "--resolution"),
+                              (["--extent", "nan,0,10,10"], "--extent")):
+            done = kt.run_kalends(["grid", path, "--out", out, "--crs", "EPSG:4326"] + extra)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertTrue(done.stderr.startswith("kalends: " + option), done.stderr)
 
 
 if __name__ == "__main__":

@@ -25,7 +25,10 @@ SuitabilityRequest suitability_request(const StepContext& c) {
   t.marks = parse_date_marks(c.text("date_marks", "start"));
   r.model = parse_model_kind(c.text("model", "r0-2013"));
   r.parasite = parse_parasite(c.text("parasite", "falciparum"));
-  if (c.has("window")) std::tie(r.window_low, r.window_high) = c.pair("window");
+  if (c.has("window")) {
+    const auto [low, high] = c.pair("window");
+    set_window(r, low, high);
+  }
   r.parameters_file = c.text("parameters");
   r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
   if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
