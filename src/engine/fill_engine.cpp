@@ -217,7 +217,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         {"KALENDS_REACH_DAYS", reach > 0 ? fmt::format("{:g}", reach) : "whole series"},
         {"KALENDS_VALUES", request.smooth ? "fitted curve everywhere"
                                           : "observed values kept, gaps and outliers filled"}};
-    if (keep) m["KALENDS_QA"] = request.qa_input + " keep: " + keep->text();
+    if (keep)
+      m["KALENDS_QA"] = request.qa_input + (request.qa_band != 1 ? " band " + std::to_string(request.qa_band) : "") +
+                        " keep: " + keep->text();
     if (!request.command_line.empty()) m["KALENDS_COMMAND"] = request.command_line;
     return m;
   };

@@ -116,6 +116,8 @@ class ContainerStacks(kt.TempDirTestCase):
             for band in ("value", "sd", "flag"):
                 np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
         self.assertGreater(kt.read_summary(two)["masked_by_qa"], 0)
+        self.assertEqual(kt.read_output(os.path.join(two, names[0]))["metadata"]["KALENDS_QA"],
+                         both + " band 2 keep: bit 0 == 0")
         # Band 0 is refused by name, before anything is written.
         for option in ("--band", "--qa-band"):
             out = os.path.join(self.tmp, "band0")
