@@ -19,6 +19,13 @@ struct ConnectionPattern {
   /// The variable's name, fit for file names: "tas", "500m_16_days_NDVI".
   std::string variable() const;
 };
+/// A GDAL connection string split around its (first) quoted file name, or nothing.
+std::optional<ConnectionPattern> connection_parts(const std::string& input);
+
+/// The file a GDAL connection string reads (NETCDF:"f.nc":tas -> f.nc; HDF5:"f.h5"://ndvi ->
+/// f.h5), or `path` itself.
+std::string file_in_connection(const std::string& path);
+
 /// The pattern inside `input`, or nothing when `input` is not a connection string or names one
 /// existing file.
 std::optional<ConnectionPattern> connection_pattern(const std::string& input);

@@ -6,6 +6,7 @@
 #include <cmath>
 #include <map>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 #include "kalends/qa_rule.hpp"
@@ -36,7 +37,7 @@ std::string crs_name_of(const std::string& wkt) {
 // from its bands.
 std::string date_source_of(const Layer& layer, const ValueRules& rules, int layers_in_file) {
   if (layers_in_file > 1) return "band metadata";
-  const auto in_name = date_from_name(layer.path);
+  const auto in_name = date_from_name(detail::file_in_connection(layer.path));
   if (in_name && *in_name == layer.time) return "file name";
   if (rules.date && *rules.date == layer.time) return "--date";
   return "band metadata";

@@ -38,14 +38,24 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   return paths;
 }
 
-std::optional<ConnectionPattern> connection_pattern(const std::string& input) {
+std::optional<ConnectionPattern> connection_parts(const std::string& input) {
   const auto open = input.find('"');
   if (open == std::string::npos || open == 0 || input[open - 1] != ':') return std::nullopt;
   const auto close = input.find('"', open + 1);
   if (close == std::string::npos) return std::nullopt;
-  std::string files = input.substr(open + 1, close - open - 1);
-  if (files.find_first_of("*?[") == std::string::npos || std::filesystem::exists(files)) return std::nullopt;
-  return ConnectionPattern{input.substr(0, open + 1), std::move(files), input.substr(close)};
+  return ConnectionPattern{input.substr(0, open + 1), input.substr(open + 1, close - open - 1), input.substr(close)};
+}
+
+std::string file_in_connection(const std::string& path) {
+  const auto parts = connection_parts(path);
+  return parts ? parts->files : path;
+}
+
+std::optional<ConnectionPattern> connection_pattern(const std::string& input) {
+  auto parts = connection_parts(input);
+  if (!parts || parts->files.find_first_of("*?[") == std::string::npos || std::filesystem::exists(parts->files))
+    return std::nullopt;
+  return parts;
 }
 
 std::string ConnectionPattern::variable() const {
@@ -371,7 +381,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     const int bands = dataset->GetRasterCount();
     if (bands == 1 || rules.one_date_per_file) {
       if (rules.band > bands) throw InputError(input, "has no band " + std::to_string(rules.band));
-      auto time = date_from_name(input);
+      auto time = date_from_name(detail::file_in_connection(input));
       if (!time) time = rules.date;
       const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
@@ -379,12 +389,9 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       for (int b = 1; b <= bands; ++b)
         stack.layers_.push_back(layer_of(*dataset, input, b, band_time(*dataset, input, b), rules));
     }
-    // NETCDF:"file.nc":tas -> "tas"; file.grib -> "file".
-    const auto colon = input.rfind(':');
-    if (input.rfind("NETCDF:", 0) == 0 && colon != std::string::npos && colon + 1 < input.size())
-      stack.name_ = input.substr(colon + 1);
-    else
-      stack.name_ = name_from_file(input);
+    // NETCDF:"file.nc":tas -> "tas"; HDF5:"f.h5"://ndvi -> "ndvi"; file.grib -> "file".
+    const auto parts = detail::connection_parts(input);
+    stack.name_ = parts && !parts->variable().empty() ? parts->variable() : name_from_file(input);
   }
 
   if (stack.layers_.empty()) throw InputError(input, "every file of this pattern was left out");

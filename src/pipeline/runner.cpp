@@ -42,10 +42,8 @@ std::vector<std::string> files_of(const std::string& pattern) {
   std::string path = pattern;
   // NETCDF:"daily/*.nc":var -> the files of daily/*.nc; NETCDF:"file.nc":var -> file.nc
   if (const auto connection = detail::connection_pattern(pattern)) path = connection->files;
-  else if (const auto q1 = path.find('"'); q1 != std::string::npos) {
-    const auto q2 = path.find('"', q1 + 1);
-    if (q2 != std::string::npos) return {path.substr(q1 + 1, q2 - q1 - 1)};
-  }
+  else if (detail::file_in_connection(path) != path)
+    return {detail::file_in_connection(path)};
   if (path.find_first_of("*?[") == std::string::npos) return {path};
   glob_t g{};
   std::vector<std::string> files;

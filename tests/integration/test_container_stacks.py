@@ -21,11 +21,12 @@ sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."
 import kalends_testlib as kt  # noqa: E402
 
 
-def write_netcdf(path, variables):
+def write_netcdf(path, variables, options=()):
     """One NetCDF file holding each 2-D array of `variables` (name -> array) on a lon/lat grid,
-    written with GDAL's multidimensional API (the classic API writes one variable per file)."""
+    written with GDAL's multidimensional API (the classic API writes one variable per file).
+    options=["FORMAT=NC4"]: a NetCDF-4 file, which is HDF5 inside."""
     g = kt.gdal()
-    ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path)
+    ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path, [], list(options))
     root = ds.GetRootGroup()
     height, width = next(iter(variables.values())).shape
     axes = []
@@ -53,7 +54,8 @@ class ContainerStacks(kt.TempDirTestCase):
         rng = np.random.default_rng(5)
         cls.nc = os.path.join(cls.tmp, "nc")
         cls.tif = os.path.join(cls.tmp, "tif")
-        for folder in (cls.nc, os.path.join(cls.tif, "ndvi"), os.path.join(cls.tif, "qa")):
+        cls.h5 = os.path.join(cls.tmp, "h5")
+        for folder in (cls.nc, cls.h5, os.path.join(cls.tif, "ndvi"), os.path.join(cls.tif, "qa")):
             os.makedirs(folder)
         cls.dates = []
         for path in observed:
@@ -65,6 +67,8 @@ class ContainerStacks(kt.TempDirTestCase):
             # QA: bit 0 set on a tenth of the cells (invented: a check of the mechanics).
             qa = (rng.random(ndvi.shape) < 0.1).astype(np.uint8)
             write_netcdf(os.path.join(cls.nc, "veg_%s.nc" % date.replace("-", "")), {"ndvi": ndvi, "qa": qa})
+            write_netcdf(os.path.join(cls.h5, "veg_%s.h5" % date.replace("-", "")), {"ndvi": ndvi, "qa": qa},
+                         ["FORMAT=NC4"])
         # The GeoTIFF pairs are what GDAL itself reads from each NetCDF variable.
         for path in sorted(glob.glob(os.path.join(cls.nc, "*.nc"))):
             date = os.path.basename(path)[4:12]
@@ -83,6 +87,14 @@ class ContainerStacks(kt.TempDirTestCase):
         cls.pattern = 'NETCDF:"%s":ndvi' % os.path.join(cls.nc, "*.nc")
         cls.qa_pattern = 'NETCDF:"%s":qa' % os.path.join(cls.nc, "*.nc")
 
+    def assert_same_outputs(self, folder, reference, names, georeferencing=False):
+        for name in names:
+            a, b = kt.read_output(os.path.join(folder, name)), kt.read_output(os.path.join(reference, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+            if georeferencing:
+                self.assertEqual(a["geotransform"], b["geotransform"])
+
     def test_fill_equals_the_same_values_as_geotiffs(self):
         from_nc = os.path.join(self.tmp, "out-nc")
         from_tif = os.path.join(self.tmp, "out-tif")
@@ -92,15 +104,26 @@ class ContainerStacks(kt.TempDirTestCase):
         names = kt.final_outputs(from_nc)
         self.assertEqual(names, ["ndvi_%s.tif" % d for d in self.dates])  # named after the variable
         self.assertEqual(kt.final_outputs(from_tif), names)
-        for name in names:
-            a = kt.read_output(os.path.join(from_nc, name))
-            b = kt.read_output(os.path.join(from_tif, name))
-            for band in ("value", "sd", "flag"):
-                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
-            self.assertEqual(a["geotransform"], b["geotransform"])
+        self.assert_same_outputs(from_nc, from_tif, names, georeferencing=True)
         # The QA of the NetCDF files was read: a tenth of the observed values masked.
         summary = kt.read_summary(from_nc)
         self.assertGreater(summary["masked_by_qa"], 0.05 * summary["observed"])
+
+    def test_the_hdf5_form_reads_the_same_values(self):
+        # GDAL's HDF5 driver names a variable HDF5:"f.h5"://ndvi; the date is still the file's.
+        pattern = 'HDF5:"%s"://%%s' % os.path.join(self.h5, "*.h5")
+        done = kt.run_kalends(["inspect", pattern % "ndvi", "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("16 dates of 'ndvi'", done.stdout)
+        self.assertIn("from file name", done.stdout)
+        from_h5 = os.path.join(self.tmp, "out-h5")
+        from_tif = os.path.join(self.tmp, "out-tif-h5")
+        kt.run_fill_ok(self, [pattern % "ndvi", "--qa", pattern % "qa", "--keep", "bit 0 == 0", "--out", from_h5])
+        kt.run_fill_ok(self, [os.path.join(self.tif, "ndvi", "*.tif"), "--qa", os.path.join(self.tif, "qa", "*.tif"),
+                              "--keep", "bit 0 == 0", "--out", from_tif])
+        names = kt.final_outputs(from_h5)
+        self.assertEqual(names, kt.final_outputs(from_tif))
+        self.assert_same_outputs(from_h5, from_tif, names)  # the HDF5 driver reads no lon/lat grid
 
     def test_qa_in_a_second_band_equals_the_geotiff_pairs(self):
         two = os.path.join(self.tmp, "out-two-band")
@@ -111,10 +134,7 @@ class ContainerStacks(kt.TempDirTestCase):
                               "--keep", "bit 0 == 0", "--out", pairs])
         names = kt.final_outputs(two)
         self.assertEqual(names, kt.final_outputs(pairs))
-        for name in names:
-            a, b = kt.read_output(os.path.join(two, name)), kt.read_output(os.path.join(pairs, name))
-            for band in ("value", "sd", "flag"):
-                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+        self.assert_same_outputs(two, pairs, names)
         self.assertGreater(kt.read_summary(two)["masked_by_qa"], 0)
         self.assertEqual(kt.read_output(os.path.join(two, names[0]))["metadata"]["KALENDS_QA"],
                          both + " band 2 keep: bit 0 == 0")

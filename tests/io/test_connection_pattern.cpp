@@ -28,3 +28,13 @@ TEST_CASE("plain patterns, single files and unquoted strings are not connection 
   CHECK_FALSE(connection_pattern(R"("quoted/*.tif")"));  // no driver before the quote
   CHECK_FALSE(connection_pattern(R"(NETCDF:"daily/*.nc)"));  // no closing quote
 }
+
+TEST_CASE("the file inside a connection string", "[io]") {
+  using kalends::detail::file_in_connection;
+  CHECK(file_in_connection(R"(NETCDF:"a/f_20200101.nc":tas)") == "a/f_20200101.nc");
+  CHECK(file_in_connection(R"(HDF5:"f_20200101.h5"://ndvi)") == "f_20200101.h5");
+  CHECK(file_in_connection("ndvi/ndvi_2020-01-01.tif") == "ndvi/ndvi_2020-01-01.tif");
+  const auto h5 = kalends::detail::connection_parts(R"(HDF5:"f.h5"://ndvi)");
+  REQUIRE(h5);
+  CHECK(h5->variable() == "ndvi");
+}
