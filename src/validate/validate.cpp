@@ -86,7 +86,7 @@ Cube read_band(const std::vector<std::string>& paths, int band, int width, int h
 }
 
 struct Accumulator {
-  std::int64_t cells = 0, covered = 0, within = 0, with_sd = 0;
+  std::int64_t cells = 0, covered = 0, within = 0, within_95 = 0, with_sd = 0;
   double se = 0, ae = 0, e = 0, t = 0, t2 = 0, z2 = 0;
   bool has_sd = false;
   void add(double estimate, double truth, double sd) {
@@ -99,7 +99,11 @@ struct Accumulator {
     e += err;
     t += truth;
     t2 += truth * truth;
-    if (std::isfinite(sd)) has_sd = true, within += std::abs(err) <= sd;
+    if (std::isfinite(sd)) {
+      has_sd = true;
+      within += std::abs(err) <= sd;
+      within_95 += std::abs(err) <= 1.959964 * sd;  // the normal distribution's 97.5 % quantile
+    }
     if (std::isfinite(sd) && sd > 0) ++with_sd, z2 += (err / sd) * (err / sd);
   }
   Score score(const std::string& name) const {
@@ -116,6 +120,7 @@ struct Accumulator {
       const double sst = t2 - t * t / n;
       s.r2 = sst > 0 ? 1.0 - se / sst : NAN;
       s.within_one_sd = has_sd ? double(within) / n : -1;
+      s.within_95_interval = has_sd ? double(within_95) / n : -1;
       s.rms_error_over_sd = with_sd > 0 ? std::sqrt(z2 / double(with_sd)) : -1;
     } else {
       s.rmse = s.mae = s.bias = s.r2 = NAN;
@@ -138,6 +143,8 @@ std::string score_json(const Score& s, const std::string& indent) {
       detail::json_escape(s.name), s.baseline ? "true" : "false", s.cells, s.covered, detail::json_number(s.coverage),
       detail::json_number(s.rmse), detail::json_number(s.mae), detail::json_number(s.bias), detail::json_number(s.r2));
   if (s.within_one_sd >= 0) j += fmt::format(", \"within_one_sd\": {}", detail::json_number(s.within_one_sd));
+  if (s.within_95_interval >= 0)
+    j += fmt::format(", \"within_95_interval\": {}", detail::json_number(s.within_95_interval));
   if (s.rms_error_over_sd >= 0)
     j += fmt::format(", \"rms_error_over_sd\": {}", detail::json_number(s.rms_error_over_sd));
   if (!s.parameters.empty()) {
@@ -429,14 +436,15 @@ ValidateReport run_validate(const ValidateRequest& request) {
       "({:.1f} %) along {} transplanted cloud masks (seed {}).\n\n",
       request.input, dates, grid.width, grid.height, observed, count,
       100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
-  md += "| method | RMSE | MAE | bias | R² | coverage | within ±1 sd | RMS of error / sd |\n"
-        "|---|---|---|---|---|---|---|---|\n";
+  md += "| method | RMSE | MAE | bias | R² | coverage | within ±1 sd | within ±1.96 sd | RMS of error / sd |\n"
+        "|---|---|---|---|---|---|---|---|---|\n";
   auto row = [&](const Score& s) {
     if (s.covered == 0)  // nothing to score: the method gave no value on any withheld cell
-      return fmt::format("| {}{} | - | - | - | - | 0.0 % | - | - |\n", s.name, s.baseline ? " (baseline)" : "");
-    return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {:.1f} % | {} | {} |\n", s.name,
+      return fmt::format("| {}{} | - | - | - | - | 0.0 % | - | - | - |\n", s.name, s.baseline ? " (baseline)" : "");
+    const auto share = [](double v) { return v >= 0 ? fmt::format("{:.1f} %", 100 * v) : std::string("-"); };
+    return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {:.1f} % | {} | {} | {} |\n", s.name,
                        s.baseline ? " (baseline)" : "", s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage,
-                       s.within_one_sd >= 0 ? fmt::format("{:.1f} %", 100 * s.within_one_sd) : "-",
+                       share(s.within_one_sd), share(s.within_95_interval),
                        s.rms_error_over_sd >= 0 ? fmt::format("{:.2f}", s.rms_error_over_sd) : "-");
   };
   for (const Score& s : report.scores) md += row(s);

@@ -33,6 +33,7 @@ struct Score {
   std::int64_t cells = 0, covered = 0;
   double rmse = 0, mae = 0, bias = 0, r2 = 0, coverage = 0;
   double within_one_sd = -1;  // share of covered cells with |error| <= sd; < 0 where no sd
+  double within_95_interval = -1;  // ... with |error| <= 1.96 sd (a normal error's 95 % interval)
   double rms_error_over_sd = -1;  // sqrt(mean((error / sd)^2)); 1 = calibrated; < 0 where no sd
   std::vector<std::pair<std::string, Score>> by_gap, by_neighbourhood;
   MethodParameters parameters;  // the settings a method was scored with (none for baselines)

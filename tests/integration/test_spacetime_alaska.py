@@ -140,6 +140,10 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         np.testing.assert_allclose(score["rmse"], np.sqrt(np.mean(err ** 2)), rtol=1e-6)
         np.testing.assert_allclose(score["within_one_sd"], np.mean(np.abs(err) <= sd[held]),
                                    atol=1e-6)
+        # 1.959964: the standard normal's 97.5 % quantile (scipy.stats.norm.ppf(0.975)).
+        from scipy.stats import norm
+        np.testing.assert_allclose(score["within_95_interval"],
+                                   np.mean(np.abs(err) <= norm.ppf(0.975) * sd[held]), atol=1e-4)
         np.testing.assert_allclose(score["rms_error_over_sd"], np.sqrt(np.mean(z ** 2)), rtol=1e-5)
 
     def test_validate_takes_the_fill_options(self):
