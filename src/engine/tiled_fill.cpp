@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <filesystem>
 
+#include "io/file_glob.hpp"
 #include "kalends/error.hpp"
 #include "kalends/tiles.hpp"
 
@@ -52,7 +53,12 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     if (qa) r.qa_input = qa->pattern;
     r.region = tile.window;
     r.out_dir = (out / tile.name).string();
-    if (r.name.empty()) r.name = Stack::open(data.pattern, request.rules).name();
+    if (r.name.empty()) {
+      // Named as a fill of the input would be: after the variable of container files.
+      const auto connection = detail::connection_pattern(request.input);
+      r.name = connection && !connection->variable().empty() ? connection->variable()
+                                                              : Stack::open(data.pattern, request.rules).name();
+    }
     ProgressCallback tile_progress;
     if (progress)
       tile_progress = [&, t](int done, int blocks) { progress(t * 1000 + done * 1000 / std::max(blocks, 1), total * 1000); };

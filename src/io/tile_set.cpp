@@ -139,10 +139,15 @@ std::string vrt_text(const Grid& mosaic, const std::vector<Placed>& sources, con
     if (has && scale != 1) s += fmt::format("    <Scale>{:.17g}</Scale>\n", scale);
     s += metadata_xml(band->GetMetadata(), "    ");
     for (const Placed& p : sources) {
-      const std::string relative = fs::absolute(p.path).lexically_relative(vrt_folder).string();
+      // A variable of a container file (NETCDF:"f.nc":ndvi) is named by its connection string,
+      // which GDAL reads only as written: the file in it is made absolute instead.
+      const auto connection = detail::connection_parts(p.path);
+      const std::string source = connection ? connection->connection(fs::absolute(connection->files).string())
+                                            : fs::absolute(p.path).lexically_relative(vrt_folder).string();
       const Window& w = p.window;
       s += "    <SimpleSource>\n";
-      s += "      <SourceFilename relativeToVRT=\"1\">" + xml(relative) + "</SourceFilename>\n";
+      s += fmt::format("      <SourceFilename relativeToVRT=\"{}\">", connection ? 0 : 1) + xml(source) +
+           "</SourceFilename>\n";
       s += fmt::format("      <SourceBand>{}</SourceBand>\n", b);
       s += fmt::format("      <SrcRect xOff=\"0\" yOff=\"0\" xSize=\"{}\" ySize=\"{}\"/>\n", w.width, w.height);
       s += fmt::format("      <DstRect xOff=\"{}\" yOff=\"{}\" xSize=\"{}\" ySize=\"{}\"/>\n", w.x, w.y, w.width,
@@ -206,13 +211,15 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   detail::start_gdal();
   if (tile_field.find("{tile}") == std::string::npos)
     throw UsageError("--tiles '" + tile_field + "'", "needs a {tile} field, e.g. 'tiles/{tile}/'");
-  const std::vector<std::string> files = detail::expand_glob(pattern);
+  // 'tiles/*/ndvi_*.tif', or one variable of container files: 'NETCDF:"tiles/*/*.nc":ndvi'.
+  const auto connection = detail::connection_pattern(pattern);
+  const std::vector<std::string> files = detail::expand_glob(connection ? connection->files : pattern);
   std::map<std::string, Tile> by_name;
   for (const std::string& path : files) {
     const std::string name = tile_name_in(path, tile_field);
     if (name.empty()) throw InputError(path, "does not match the tile pattern '" + tile_field + "'");
     by_name[name].name = name;
-    by_name[name].files.push_back(path);
+    by_name[name].files.push_back(connection ? connection->connection(path) : path);
   }
   TileSet set;
   std::vector<std::pair<std::string, Grid>> grids;
@@ -237,7 +244,7 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   for (std::size_t i = 0; i < set.tiles.size(); ++i) {
     std::set<std::string> seen;
     for (const std::string& f : set.tiles[i].files) {
-      const std::string base = fs::path(f).filename().string();
+      const std::string base = fs::path(detail::file_in_connection(f)).filename().string();
       const auto date = find_date_in_name(base);
       if (!date) throw InputError(f, "has no date in its name");
       const std::string label = date->time.label();

@@ -21,17 +21,18 @@ sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."
 import kalends_testlib as kt  # noqa: E402
 
 
-def write_netcdf(path, variables, options=()):
+def write_netcdf(path, variables, options=(), column0=0):
     """One NetCDF file holding each 2-D array of `variables` (name -> array) on a lon/lat grid,
     written with GDAL's multidimensional API (the classic API writes one variable per file).
-    options=["FORMAT=NC4"]: a NetCDF-4 file, which is HDF5 inside."""
+    options=["FORMAT=NC4"]: a NetCDF-4 file, which is HDF5 inside. column0: the grid's first column
+    in the whole (for tiles)."""
     g = kt.gdal()
     ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path, [], list(options))
     root = ds.GetRootGroup()
     height, width = next(iter(variables.values())).shape
     axes = []
     for name, size, first, step, units in (("lat", height, 64.995, -0.01, "degrees_north"),
-                                           ("lon", width, -147.995, 0.01, "degrees_east")):
+                                           ("lon", width, -147.995 + 0.01 * column0, 0.01, "degrees_east")):
         dim = root.CreateDimension(name, None, None, size)
         axis = root.CreateMDArray(name, [dim], g.ExtendedDataType.Create(g.GDT_Float64))
         axis.Write(np.array([first + step * k for k in range(size)]))
@@ -84,6 +85,20 @@ class ContainerStacks(kt.TempDirTestCase):
                        separate=True)
             g.Translate(os.path.join(cls.two_band, "ndvi_%s.tif" % date), os.path.join(cls.tmp, "pair.vrt"),
                         outputType=g.GDT_Float32)
+        # The same files cut into two tiles, west and east of column 50.
+        cls.tiles = os.path.join(cls.tmp, "tiles")
+        for path in sorted(glob.glob(os.path.join(cls.tif, "ndvi", "*.tif"))):
+            date = os.path.basename(path)[5:13]
+            arrays = {}
+            for var in ("ndvi", "qa"):
+                ds = g.Open(os.path.join(cls.tif, var, "%s_%s.tif" % (var, date)))
+                arrays[var] = ds.GetRasterBand(1).ReadAsArray()
+                ds = None
+            for tile, columns in (("h01", slice(0, 50)), ("h02", slice(50, 100))):
+                os.makedirs(os.path.join(cls.tiles, tile), exist_ok=True)
+                write_netcdf(os.path.join(cls.tiles, tile, "veg_%s.nc" % date),
+                             {var: np.ascontiguousarray(a[:, columns]) for var, a in arrays.items()},
+                             column0=columns.start)
         cls.pattern = 'NETCDF:"%s":ndvi' % os.path.join(cls.nc, "*.nc")
         cls.qa_pattern = 'NETCDF:"%s":qa' % os.path.join(cls.nc, "*.nc")
 
@@ -145,6 +160,22 @@ class ContainerStacks(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, option)
             self.assertIn("%s 0: bands are numbered from 1" % option, done.stderr)
             self.assertFalse(os.path.exists(out))
+
+    def test_tiles_of_container_files_equal_the_whole(self):
+        tiled = os.path.join(self.tmp, "out-tiles")
+        whole = os.path.join(self.tmp, "out-whole")
+        files = os.path.join(self.tiles, "h*", "*.nc")
+        kt.run_fill_ok(self, ['NETCDF:"%s":ndvi' % files, "--qa", 'NETCDF:"%s":qa' % files, "--keep", "bit 0 == 0",
+                              "--tiles", os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", tiled])
+        kt.run_fill_ok(self, [self.pattern, "--qa", self.qa_pattern, "--keep", "bit 0 == 0", "--out", whole])
+        names = kt.final_outputs(whole)
+        for tile, columns in (("h01", slice(0, 50)), ("h02", slice(50, 100))):
+            self.assertEqual(kt.final_outputs(os.path.join(tiled, tile)), names)  # named after the variable
+            for name in names:
+                a = kt.read_output(os.path.join(tiled, tile, name))
+                b = kt.read_output(os.path.join(whole, name))
+                for band in ("value", "sd", "flag"):
+                    np.testing.assert_array_equal(a[band], b[band][:, columns], err_msg=tile + " " + name)
 
     def test_a_job_reruns_only_when_a_file_arrives(self):
         folder = os.path.join(self.tmp, "job")
