@@ -76,7 +76,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   auto o = std::make_shared<Options>();
   FillRequest& r = o->request;
   sub->add_option("input", r.input,
-                  "Quoted glob of single-date rasters ('ndvi/*.tif'), or one multi-band raster")
+                  "Quoted glob of single-date rasters ('ndvi/*.tif'), one variable of many files "
+                  "('NETCDF:\"nc/*.nc\":ndvi'), or one multi-band raster")
       ->required();
   sub->add_option("--out", r.out_dir, "Output folder")->required();
   sub->add_option("--method", r.method.method, "whittaker, harmonic or spacetime")->capture_default_str();

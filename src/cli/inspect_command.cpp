@@ -158,7 +158,8 @@ Action add_inspect_command(CLI::App& app, GlobalOptions& global) {
   };
   auto o = std::make_shared<Options>();
   InspectRequest& r = o->request;
-  sub->add_option("input", r.input, "Quoted glob of single-date rasters ('ndvi/*.tif'), or one multi-band raster")
+  sub->add_option("input", r.input, "Quoted glob of single-date rasters ('ndvi/*.tif'), one variable of many files "
+                  "('NETCDF:\"nc/*.nc\":ndvi'), or one multi-band raster")
       ->required();
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date");
   sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");

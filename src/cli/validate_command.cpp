@@ -18,7 +18,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   };
   auto o = std::make_shared<Options>();
   ValidateRequest& r = o->request;
-  sub->add_option("input", r.input, "Quoted glob of single-date rasters, or one multi-band raster")
+  sub->add_option("input", r.input, "Quoted glob of single-date rasters, one variable of many files "
+                  "('NETCDF:\"nc/*.nc\":ndvi'), or one multi-band raster")
       ->required();
   sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md)")->required();
   sub->add_option("--methods", o->methods, "Comma-separated methods to score")->capture_default_str();
