@@ -336,8 +336,6 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (std::find(rules.exclude.begin(), rules.exclude.end(), file) != rules.exclude.end()) continue;
       auto time = date_from_name(file);
       if (!time) time = rules.date;
-      if (!time)
-        throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
       const std::string path = connection ? connection->connection(file) : file;
       GDALDatasetUniquePtr dataset;
       try {
@@ -352,17 +350,41 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         throw InputError(file, "holds several variables; read one from every file with a pattern such as '" +
                                    example + "' (this file's: " + join(variables) + ")");
       }
-      if (rules.band > dataset->GetRasterCount())
+      // A file without a date in its name may hold several dates, each band dated by its own
+      // metadata (a year of daily bands in one NetCDF or GRIB file): all its bands are read.
+      std::vector<std::pair<int, TimePoint>> bands;
+      if (time) {
+        bands.emplace_back(rules.band, *time);
+      } else {
+        const int count = rules.one_date_per_file ? 0 : dataset->GetRasterCount();
+        try {
+          for (int b = 1; b <= count; ++b) bands.emplace_back(b, band_time(*dataset, path, b));
+        } catch (const InputError&) {
+          bands.clear();
+        }
+        if (bands.empty())
+          throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in "
+                                 "its bands' metadata; give --date for a file of one date");
+      }
+      if (bands.front().first > dataset->GetRasterCount())
         throw InputError(file, "has no band " + std::to_string(rules.band));
       const Grid grid = grid_of(*dataset);
       if (first) {
         stack.grid_ = grid;
         stack.name_ = connection && !connection->variable().empty() ? connection->variable() : name_from_file(file);
+        // Files of several dates each, named by the period they hold ("tmax_2019.nc"): the
+        // name without that number.
+        if (!time && !(connection && !connection->variable().empty())) {
+          std::string name = stack.name_;
+          while (!name.empty() && (std::isdigit(static_cast<unsigned char>(name.back())) || std::strchr("_-. ", name.back())))
+            name.pop_back();
+          if (!name.empty()) stack.name_ = name;
+        }
         first = false;
       } else {
         require_same_grid(stack.grid_, grid, file);
       }
-      stack.layers_.push_back(layer_of(*dataset, path, rules.band, *time, rules));
+      for (const auto& [band, band_date] : bands) stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
     }
   } else {
     if (fs::is_directory(input))

@@ -92,6 +92,30 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         expected = tn.relative("window", self.tas.ravel(), window=(20.0, 30.0)).reshape(self.tas.shape)
         self.check(out, "window", expected, 0.0)
 
+    def test_a_pattern_over_files_of_several_dates(self):
+        # Daily or monthly data often comes as one file per year or season, each band dated by
+        # the CF time axis. The Maurer year cut into two files of six months (GDAL's
+        # multidimensional translate) reads as the whole file does.
+        halves = os.path.join(self.tmp, "halves")
+        os.makedirs(halves)
+        g = kt.gdal()
+        path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        for name, first, last in (("tas_h1.nc", 17927, 18077), ("tas_h2.nc", 18108, 18261)):
+            g.MultiDimTranslate(os.path.join(halves, name), path, format="netCDF", arraySpecs=["tas"],
+                                subsetSpecs=["time(%d,%d)" % (first, last)])
+        whole, _ = self.run_model("whole", "--model", "window", "--window", "20,30", "--name", "tas")
+        parts = os.path.join(self.tmp, "parts")
+        done = kt.run_kalends(["suitability", "--temperature", os.path.join(halves, "*.nc"), "--date-marks", "end",
+                               "--model", "window", "--window", "20,30", "--name", "tas", "--out", parts])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for name in ("tas_year_1999.tif", "tas_summary_1999.tif", "tas_synoptic.tif"):
+            a, _ = read_bands(os.path.join(parts, name))
+            b, _ = read_bands(os.path.join(whole, name))
+            np.testing.assert_array_equal(a, b, err_msg=name)
+        done = kt.run_kalends(["inspect", os.path.join(halves, "*.nc"), "--quick"])
+        self.assertIn("12 dates of 'tas_h'", done.stdout)  # the file names without their number
+        self.assertIn("from band metadata", done.stdout)
+
     def test_years_outside_or_reversed(self):
         # --years selects the years written; a range given backwards or with trailing text is
         # refused the way `kalends seasons` refuses it, before anything is written.
