@@ -41,6 +41,9 @@ struct InspectReport {
   int slots_with_data = 0;
   bool values_read = false;
   std::int64_t pixels_never_observed = 0;  // when values_read
+  /// "scale_factor=10000, add_offset=0" where the first date's metadata states a scaling that
+  /// GDAL does not apply (HDF-EOS grids, for one) and none is given; "" otherwise.
+  std::string unapplied_scaling;
 };
 
 /// Opens the stack (and QA stack) as `kalends fill` does, with the same errors, and reads every

@@ -69,6 +69,10 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     mixed = mixed || l.layer.scale != first.scale || l.layer.offset != first.offset ||
             !same_nodata(l.layer.nodata, first.nodata);
   if (mixed) fmt::print("            (scale, offset or nodata differ between dates: see --dates)\n");
+  if (!r.unapplied_scaling.empty())
+    fmt::print("            the file states {}, which GDAL leaves unapplied:\n"
+               "            conventions differ (CF multiplies, MODIS HDF divides); give --scale and --offset\n",
+               r.unapplied_scaling);
   if (!r.values_read) {
     fmt::print("  (values not read: --quick)\n");
   } else {
@@ -128,6 +132,8 @@ void print_json(const InspectReport& r) {
              r.crs_name.empty() ? "null" : "\"" + json_escape(r.crs_name) + "\"");
   fmt::print("  \"time_grid\": {{\"step_days\": {}, \"slots\": {}, \"slots_with_data\": {}}},\n",
              detail::json_number(r.time_grid.step_days), r.time_grid.size, r.slots_with_data);
+  fmt::print("  \"unapplied_scaling\": {},\n",
+             r.unapplied_scaling.empty() ? "null" : "\"" + json_escape(r.unapplied_scaling) + "\"");
   fmt::print("  \"values_read\": {},\n  \"pixels_never_observed\": {},\n  \"dates\": [\n", r.values_read,
              r.values_read ? std::to_string(r.pixels_never_observed) : "null");
   for (std::size_t i = 0; i < r.layers.size(); ++i) {

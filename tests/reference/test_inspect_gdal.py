@@ -118,6 +118,28 @@ class InspectQa(kt.TempDirTestCase):
             rejected_total += d["rejected_by_qa"]
         self.assertGreater(rejected_total, 0)
 
+    def test_a_stated_scaling_gdal_leaves_unapplied_is_named(self):
+        # Files whose metadata states scale_factor/add_offset that GDAL does not turn into a band
+        # scale (HDF-EOS grids; here GeoTIFF metadata items, invented values): the report names
+        # them, unless --scale is given. The Maurer NetCDF (CF, applied by GDAL) states none.
+        folder = os.path.join(self.tmp, "stated")
+        os.makedirs(folder)
+        g = kt.gdal()
+        for date in ("2020-01-01", "2020-01-17"):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "ndvi_%s.tif" % date), 8, 6, 1, g.GDT_Int16)
+            band = ds.GetRasterBand(1)
+            band.WriteArray(np.full((6, 8), 5000, np.int16))
+            band.SetMetadataItem("scale_factor", "10000")
+            band.SetMetadataItem("add_offset", "0")
+            ds = None
+        pattern = os.path.join(folder, "*.tif")
+        self.assertEqual(inspect(pattern, "--quick")["unapplied_scaling"], "scale_factor=10000, add_offset=0")
+        self.assertIsNone(inspect(pattern, "--quick", "--scale", "0.0001")["unapplied_scaling"])
+        text = kt.run_kalends(["inspect", pattern, "--quick"]).stdout
+        self.assertIn("the file states scale_factor=10000, add_offset=0, which GDAL leaves unapplied", text)
+        maurer = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        self.assertIsNone(inspect(maurer, "--quick")["unapplied_scaling"])
+
     def test_bad_input_is_one_line_and_exit_2(self):
         done = kt.run_kalends(["inspect", os.path.join(self.tmp, "nothing", "*.tif")])
         self.assertEqual(done.returncode, 2, done.stderr)
