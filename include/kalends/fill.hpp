@@ -75,6 +75,7 @@ struct FillSummary {
   int blocks_at_once = 0;  // fewer than the threads when the budget allows no more
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
+  std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
 };
 
 using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;

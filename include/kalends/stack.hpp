@@ -105,6 +105,11 @@ double first_date_median(const Stack& stack, int side);
 /// has no partner ("no QA layer for 2004-05-24 in 'qa/*.tif'"; `what` is "QA").
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what);
 
+/// "scale_factor=10000, add_offset=0" where the stack's first file states a scaling in its
+/// metadata that GDAL leaves unapplied (HDF-EOS grids, for one) and no --scale or --offset is
+/// given; "" otherwise. Conventions differ (CF multiplies, MODIS HDF divides), so it is only named.
+std::string unapplied_scaling(const Stack& stack);
+
 /// UsageError naming `option` ("--qa-band 0") unless `band` is 1 or more (GDAL counts from 1).
 void check_band(int band, const std::string& option);
 

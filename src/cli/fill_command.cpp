@@ -130,6 +130,12 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       return;
     }
     const FillSummary s = run_fill(r, progress);
+    // A note, not an error: the scaling may be applied already or belong to another convention.
+    if (!s.unapplied_scaling.empty())
+      std::fprintf(stderr,
+                   "note: %s states %s, which GDAL leaves unapplied: the values were filled as stored; "
+                   "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
+                   r.input.c_str(), s.unapplied_scaling.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;
       fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}\n", s.dates, s.width,

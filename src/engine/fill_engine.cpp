@@ -516,6 +516,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   }
 
   FillSummary summary;
+  summary.unapplied_scaling = unapplied_scaling(stack);
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(layers);

@@ -43,20 +43,6 @@ std::string date_source_of(const Layer& layer, const ValueRules& rules, int laye
   return "band metadata";
 }
 
-// The scale_factor and add_offset a file's metadata states (band first, then dataset), which
-// GDAL applies for some formats (CF NetCDF) and not for others; "" where it states none.
-std::string stated_scaling(const Layer& layer) {
-  GDALDatasetUniquePtr dataset = detail::open_raster(layer.path);
-  GDALRasterBand* band = dataset->GetRasterBand(layer.band);
-  std::string text;
-  for (const char* key : {"scale_factor", "add_offset"}) {
-    const char* value = band ? band->GetMetadataItem(key) : nullptr;
-    if (!value) value = dataset->GetMetadataItem(key);
-    if (value) text += (text.empty() ? "" : ", ") + std::string(key) + "=" + value;
-  }
-  return text;
-}
-
 }  // namespace
 
 InspectReport inspect_stack(const InspectRequest& request) {
@@ -90,9 +76,7 @@ InspectReport inspect_stack(const InspectRequest& request) {
   for (const Layer& layer : stack.layers()) ++layers_in_file[layer.path];
   for (const Layer& layer : stack.layers())
     report.layers.push_back({layer, date_source_of(layer, request.rules, layers_in_file[layer.path])});
-  if (const Layer& first = stack.layers().front();
-      first.scale == 1 && first.offset == 0 && !request.rules.scale && !request.rules.offset)
-    report.unapplied_scaling = stated_scaling(first);
+  report.unapplied_scaling = unapplied_scaling(stack);
   if (!request.read_values) return report;
 
   // Strips of rows, date by date: the working set is one strip and a byte per pixel.

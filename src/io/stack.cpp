@@ -313,6 +313,20 @@ std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other,
   return index;
 }
 
+std::string unapplied_scaling(const Stack& stack) {
+  const Layer& first = stack.layers().front();
+  if (first.scale != 1 || first.offset != 0 || stack.rules().scale || stack.rules().offset) return "";
+  GDALDatasetUniquePtr dataset = detail::open_raster(first.path);
+  GDALRasterBand* band = dataset->GetRasterBand(first.band);
+  std::string text;
+  for (const char* key : {"scale_factor", "add_offset"}) {
+    const char* value = band ? band->GetMetadataItem(key) : nullptr;
+    if (!value) value = dataset->GetMetadataItem(key);
+    if (value) text += (text.empty() ? "" : ", ") + std::string(key) + "=" + value;
+  }
+  return text;
+}
+
 void check_band(int band, const std::string& option) {
   if (band < 1) throw UsageError(option + " " + std::to_string(band), "bands are numbered from 1");
 }

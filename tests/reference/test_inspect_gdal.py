@@ -137,6 +137,12 @@ class InspectQa(kt.TempDirTestCase):
         self.assertIsNone(inspect(pattern, "--quick", "--scale", "0.0001")["unapplied_scaling"])
         text = kt.run_kalends(["inspect", pattern, "--quick"]).stdout
         self.assertIn("the file states scale_factor=10000, add_offset=0, which GDAL leaves unapplied", text)
+        # kalends fill fills the values as stored and says so on standard error.
+        for extra, noted in (([], True), (["--scale", "0.0001"], False)):
+            done = kt.run_kalends(["-q", "fill", pattern, "--out", os.path.join(self.tmp, "filled-%s" % noted)] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertEqual("states scale_factor=10000, add_offset=0, which GDAL leaves unapplied" in done.stderr,
+                             noted, done.stderr)
         maurer = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
         self.assertIsNone(inspect(maurer, "--quick")["unapplied_scaling"])
 
