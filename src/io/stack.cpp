@@ -319,12 +319,16 @@ std::string unapplied_scaling(const Stack& stack) {
   GDALDatasetUniquePtr dataset = detail::open_raster(first.path);
   GDALRasterBand* band = dataset->GetRasterBand(first.band);
   std::string text;
+  bool identity = true;  // scale_factor=1, add_offset=0 change nothing
   for (const char* key : {"scale_factor", "add_offset"}) {
     const char* value = band ? band->GetMetadataItem(key) : nullptr;
     if (!value) value = dataset->GetMetadataItem(key);
-    if (value) text += (text.empty() ? "" : ", ") + std::string(key) + "=" + value;
+    if (!value) continue;
+    text += (text.empty() ? "" : ", ") + std::string(key) + "=" + value;
+    const double number = std::strtod(value, nullptr);
+    identity = identity && number == (std::strcmp(key, "scale_factor") == 0 ? 1.0 : 0.0);
   }
-  return text;
+  return identity ? "" : text;
 }
 
 void check_band(int band, const std::string& option) {
