@@ -360,7 +360,9 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         dataset = detail::open_raster(path);
       } catch (const InputError& e) {
         // Errors name the file itself, so that `kalends run --skip-bad` can leave it out.
-        if (connection) throw InputError(file, e.reason() + "; read as " + path);
+        if (connection)
+          throw InputError(file, (e.reason().find(path) != std::string::npos ? e.reason() : e.reason() + " as " + path) +
+                                     "; the file may be damaged or lack this variable");
         const std::vector<std::string> variables = subdatasets_of(file);
         if (variables.empty()) throw;
         std::string example = variables.front();
