@@ -1,6 +1,7 @@
 // kalends fill PATTERN --out DIR [options]
 #include <unistd.h>
 
+#include <algorithm>
 #include <cmath>
 #include <cstdio>
 #include <fmt/format.h>
@@ -8,6 +9,7 @@
 
 #include "cli/commands.hpp"
 #include "engine/memory_budget.hpp"
+#include "pipeline/step_kind.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/tiles.hpp"
@@ -38,15 +40,12 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
 }
 
 std::vector<std::string> split_list(const std::string& text, const std::string& option) {
-  std::vector<std::string> items;
-  if (text.empty()) return items;
-  for (std::size_t start = 0;;) {
-    const auto comma = text.find(',', start);
-    items.push_back(text.substr(start, comma == std::string::npos ? std::string::npos : comma - start));
-    if (items.back().empty()) throw UsageError(option + " '" + text + "'", "an empty item between commas");
-    if (comma == std::string::npos) return items;
-    start = comma + 1;
-  }
+  // The job reader's splitter, which keeps an empty item between commas but drops a last one.
+  std::vector<std::string> items = detail::split_list(text);
+  if (std::any_of(items.begin(), items.end(), [](const std::string& item) { return item.empty(); }) ||
+      (!text.empty() && text.back() == ','))
+    throw UsageError(option + " '" + text + "'", "an empty item between commas");
+  return items;
 }
 
 std::vector<int> parse_whole_numbers(const std::string& text, const std::string& option) {
