@@ -50,7 +50,7 @@ std::vector<Source> sources_of(const std::vector<std::string>& inputs) {
       std::sort(found.begin(), found.end(), [](const Source& a, const Source& b) { return a.relative < b.relative; });
       if (found.empty()) throw InputError(input, "holds no raster (.tif or .vrt)");
       sources.insert(sources.end(), found.begin(), found.end());
-    } else if (input.find_first_of("*?[") != std::string::npos) {
+    } else if (detail::has_glob_characters(input)) {
       for (const std::string& path : detail::expand_glob(input))
         sources.push_back({path, fs::path(path).filename().replace_extension(".tif").string()});
     } else {

@@ -7,6 +7,9 @@
 
 namespace kalends::detail {
 
+/// Whether `text` holds a shell pattern's wildcards (*, ?, [).
+bool has_glob_characters(const std::string& text);
+
 /// The files matching a shell pattern, sorted; InputError naming the pattern when none does.
 std::vector<std::string> expand_glob(const std::string& pattern);
 

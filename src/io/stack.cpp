@@ -17,6 +17,8 @@ namespace kalends {
 
 namespace detail {
 
+bool has_glob_characters(const std::string& text) { return text.find_first_of("*?[") != std::string::npos; }
+
 std::vector<std::string> expand_glob(const std::string& pattern) {
   glob_t result{};
   const int status = ::glob(pattern.c_str(), GLOB_ERR, nullptr, &result);
@@ -29,7 +31,7 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   if (status != 0) {
     // GLOB_ERR stops at a folder it cannot read: say which, when the pattern's folder is missing.
     const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
-    if (!folder.empty() && folder.string().find_first_of("*?[") == std::string::npos &&
+    if (!folder.empty() && !has_glob_characters(folder.string()) &&
         !std::filesystem::exists(folder))
       throw InputError(pattern, "no file matches this pattern: the folder " + folder.string() + " does not exist");
     throw InputError(pattern, "cannot list the files of this pattern");
@@ -53,7 +55,7 @@ std::string file_in_connection(const std::string& path) {
 
 std::optional<ConnectionPattern> connection_pattern(const std::string& input) {
   auto parts = connection_parts(input);
-  if (!parts || parts->files.find_first_of("*?[") == std::string::npos || std::filesystem::exists(parts->files))
+  if (!parts || !has_glob_characters(parts->files) || std::filesystem::exists(parts->files))
     return std::nullopt;
   return parts;
 }
@@ -87,11 +89,6 @@ std::vector<std::string> files_below(const std::string& folder) {
 namespace {
 
 namespace fs = std::filesystem;
-
-bool has_glob_characters(const std::string& s) {
-  return s.find_first_of("*?[") != std::string::npos;
-}
-
 
 std::string wkt_of(const OGRSpatialReference& srs) {
   std::string out;
@@ -347,7 +344,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
 
   // 'ndvi/*.tif', or one variable of many container files: 'NETCDF:"daily/*.nc":tas'.
   const auto connection = detail::connection_pattern(input);
-  const bool pattern = connection || (has_glob_characters(input) && !fs::exists(input));
+  const bool pattern = connection || (detail::has_glob_characters(input) && !fs::exists(input));
   if (pattern) {
     bool first = true;
     for (const std::string& file : detail::expand_glob(connection ? connection->files : input)) {
@@ -415,7 +412,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     } catch (const InputError&) {
       if (const std::vector<std::string> variables = subdatasets_of(input); !variables.empty())
         throw InputError(input, "holds several variables; choose one of: " + join(variables));
-      if (!fs::exists(input) && !has_glob_characters(input) && input.find(':') == std::string::npos)
+      if (!fs::exists(input) && !detail::has_glob_characters(input) && input.find(':') == std::string::npos)
         throw InputError(input, "no such file");
       throw;
     }

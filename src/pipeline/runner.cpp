@@ -44,7 +44,7 @@ std::vector<std::string> files_of(const std::string& pattern) {
   if (const auto connection = detail::connection_pattern(pattern)) path = connection->files;
   else if (detail::file_in_connection(path) != path)
     return {detail::file_in_connection(path)};
-  if (path.find_first_of("*?[") == std::string::npos) return {path};
+  if (!detail::has_glob_characters(path)) return {path};
   glob_t g{};
   std::vector<std::string> files;
   if (::glob(path.c_str(), 0, nullptr, &g) == 0)
