@@ -248,6 +248,21 @@ TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_inde
                    "band description or in DATE/TIME metadata)");
 }
 
+// Every band of a multi-band raster with the date its own metadata gives (band_time's errors).
+std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const std::string& path) {
+  std::vector<std::pair<int, TimePoint>> dates;
+  for (int b = 1; b <= dataset.GetRasterCount(); ++b) dates.emplace_back(b, band_time(dataset, path, b));
+  return dates;
+}
+
+// "tmax_2019" -> "tmax": a file of several dates is named by the period it holds.
+std::string without_trailing_number(const std::string& name) {
+  std::string stem = name;
+  while (!stem.empty() && (std::isdigit(static_cast<unsigned char>(stem.back())) || std::strchr("_-. ", stem.back())))
+    stem.pop_back();
+  return stem.empty() ? name : stem;
+}
+
 bool same_crs(const std::string& a, const std::string& b) {
   if (a == b) return true;
   if (a.empty() || b.empty()) return false;
@@ -344,6 +359,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
 
   // 'ndvi/*.tif', or one variable of many container files: 'NETCDF:"daily/*.nc":tas'.
   const auto connection = detail::connection_pattern(input);
+  const std::string variable = connection ? connection->variable() : "";
   const bool pattern = connection || (detail::has_glob_characters(input) && !fs::exists(input));
   if (pattern) {
     bool first = true;
@@ -373,9 +389,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (time) {
         bands.emplace_back(rules.band, *time);
       } else {
-        const int count = rules.one_date_per_file ? 0 : dataset->GetRasterCount();
         try {
-          for (int b = 1; b <= count; ++b) bands.emplace_back(b, band_time(*dataset, path, b));
+          if (!rules.one_date_per_file) bands = band_dates(*dataset, path);
         } catch (const InputError&) {
           bands.clear();
         }
@@ -388,15 +403,9 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       const Grid grid = grid_of(*dataset);
       if (first) {
         stack.grid_ = grid;
-        stack.name_ = connection && !connection->variable().empty() ? connection->variable() : name_from_file(file);
-        // Files of several dates each, named by the period they hold ("tmax_2019.nc"): the
-        // name without that number.
-        if (!time && !(connection && !connection->variable().empty())) {
-          std::string name = stack.name_;
-          while (!name.empty() && (std::isdigit(static_cast<unsigned char>(name.back())) || std::strchr("_-. ", name.back())))
-            name.pop_back();
-          if (!name.empty()) stack.name_ = name;
-        }
+        stack.name_ = !variable.empty() ? variable
+                      : time            ? name_from_file(file)
+                                        : without_trailing_number(name_from_file(file));
         first = false;
       } else {
         require_same_grid(stack.grid_, grid, file);
@@ -425,8 +434,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {
-      for (int b = 1; b <= bands; ++b)
-        stack.layers_.push_back(layer_of(*dataset, input, b, band_time(*dataset, input, b), rules));
+      for (const auto& [band, date] : band_dates(*dataset, input))
+        stack.layers_.push_back(layer_of(*dataset, input, band, date, rules));
     }
     // NETCDF:"file.nc":tas -> "tas"; HDF5:"f.h5"://ndvi -> "ndvi"; file.grib -> "file".
     const auto parts = detail::connection_parts(input);
