@@ -9,7 +9,6 @@ that calendar month. The expected file and band are worked out here with Python'
 and read with GDAL at the cell holding the point (its centre, transformed with osr); nothing
 is taken from kalends but the table it writes. Mechanics on invented data, not accuracy.
 """
-import csv
 import datetime
 import glob
 import os
@@ -25,11 +24,6 @@ import synth_stack  # noqa: E402
 
 SIZE = 64
 LAGS = (1, 2, 3)
-
-
-def read_table(path):
-    with open(path, newline="") as f:
-        return list(csv.DictReader(f))
 
 
 class DemoExtract(kt.TempDirTestCase):
@@ -82,7 +76,7 @@ class DemoExtract(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "extract", cls.out, "--points", cls.csv, "--out", cls.table,
                                "--lags", ",".join(map(str, LAGS))])
         assert done.returncode == 0, done.stderr
-        cls.rows = {r["id"]: r for r in read_table(cls.table)}
+        cls.rows = {r["id"]: r for r in kt.read_table(cls.table)}
         cls.fill_dates = sorted(datetime.date.fromisoformat(os.path.basename(p)[5:15])
                                 for p in glob.glob(os.path.join(fill, "ndvi_*.tif")))
         cls.fill = fill
@@ -171,7 +165,7 @@ class DemoExtract(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "extract", self.out, "--points", self.csv, "--out", out, "--long",
                                "--lags", "1", "--layers", "fill.ndvi,seasons.ndvi_synoptic_mean"])
         self.assertEqual(done.returncode, 0, done.stderr)
-        rows = read_table(out)
+        rows = kt.read_table(out)
         self.assertEqual(len(rows), len(self.points) * 2 * 2)
         for r in rows:
             column = r["layer"] + (".lag%s" % r["lag"] if r["lag"] != "0" else "")

@@ -10,6 +10,7 @@ Paths come from the environment, with defaults relative to the repository root:
   KALENDS_SHARED_DATA  ../shared/data
 """
 
+import csv
 import glob
 import json
 import os
@@ -125,6 +126,12 @@ def make_synthetic_stack(out, width, height, *options, years=1):
 def read_summary(out_dir):
     with open(os.path.join(out_dir, "fill-summary.json")) as f:
         return json.load(f)
+
+
+def read_table(path):
+    """The rows of a CSV table (kalends extract's), as dicts keyed by the header."""
+    with open(path, newline="") as f:
+        return list(csv.DictReader(f))
 
 
 def final_outputs(out_dir):

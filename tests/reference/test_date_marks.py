@@ -28,11 +28,6 @@ sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."
 import kalends_testlib as kt  # noqa: E402
 
 
-def read_table(path):
-    with open(path, newline="") as f:
-        return list(csv.DictReader(f))
-
-
 class ExtractMonthEndDates(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
@@ -77,7 +72,7 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
         out = os.path.join(self.tmp, "table-%s.csv" % "-".join(options or ("default",)))
         done = kt.run_kalends(["extract", self.filled, "--points", self.csv, "--out", out] + list(options))
         self.assertEqual(done.returncode, 0, done.stderr)
-        return {row["id"]: row for row in read_table(out)}
+        return {row["id"]: row for row in kt.read_table(out)}
 
     def check(self, rows, month_of):
         for pid, _, _, day, r, c in self.points:
@@ -124,7 +119,7 @@ class ExtractBetweenSeasons(kt.TempDirTestCase):
         out = os.path.join(self.tmp, "table.csv")
         done = kt.run_kalends(["extract", filled, "--points", points, "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
-        rows = {row["id"]: row for row in read_table(out)}
+        rows = {row["id"]: row for row in kt.read_table(out)}
         self.assertEqual(rows["winter"]["ndvi"], "")
         self.assertIn("between %s and %s" % (last_2004, first_2005), rows["winter"]["ndvi.reason"])
         self.assertEqual(rows["summer"]["ndvi.matched"], first_2005)

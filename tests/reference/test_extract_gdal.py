@@ -13,7 +13,6 @@ For WGS 84 points, the expected values are computed here, independently of kalen
 - buffer mean = numpy mean of the cells whose centre is within the radius (grid distance in
   metres, the CRS's unit).
 """
-import csv
 import os
 import sys
 import unittest
@@ -22,11 +21,6 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
 import kalends_testlib as kt  # noqa: E402
-
-
-def read_table(path):
-    with open(path, newline="") as f:
-        return list(csv.DictReader(f))
 
 
 def value(text):
@@ -75,7 +69,7 @@ class ExtractLandsat(kt.TempDirTestCase):
                                    "--sampling", sampling, "--buffer", "100", "--id-column", "site",
                                    "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
             assert done.returncode == 0, done.stderr
-            cls.tables[sampling] = read_table(out)
+            cls.tables[sampling] = kt.read_table(out)
 
     def pixel(self, lon, lat):
         x, y, _ = self.to_layer.TransformPoint(lon, lat)
