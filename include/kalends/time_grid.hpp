@@ -24,4 +24,11 @@ struct TimeGrid {
   TimePoint slot_time(int slot) const;
 };
 
+/// With a reach of D days, calendar year Y is filled from the days [1 Jan Y - D, 1 Jan Y+1 + D):
+/// whether `day` (days since 1970-01-01) lies in that slice.
+bool in_year_slice(int year, double day, double reach_days);
+
+/// The years whose slices hold `day`: those a composite of that day changes.
+std::vector<int> years_reached(double day, double reach_days);
+
 }  // namespace kalends

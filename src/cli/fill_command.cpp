@@ -142,8 +142,15 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),
                  percent(s.rejected, pd));
-      if (s.pixels_never_observed > 0 &&
-          (s.pixels_without_value < 0 || s.pixels_never_observed == s.pixels_without_value))
+      // A method that looks at neighbours (a halo) fills pixels never observed; with a reach the
+      // run does not count those it could not fill (pixels_without_value < 0).
+      const bool spatial = make_fill_method(r.method)->halo() > 0;
+      if (s.pixels_never_observed > 0 && s.pixels_without_value < 0 && spatial)
+        fmt::print("  {} pixels have no observation on any date (filled from their neighbours where "
+                   "the halo holds observations; flag 3 elsewhere)\n",
+                   s.pixels_never_observed);
+      else if (s.pixels_never_observed > 0 &&
+               (s.pixels_without_value < 0 || s.pixels_never_observed == s.pixels_without_value))
         fmt::print("  {} pixels have no observation on any date (flag 3 throughout)\n",
                    s.pixels_never_observed);
       else if (s.pixels_never_observed > 0)

@@ -143,8 +143,6 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const double reach = request.method.reach_days;
   if (reach > 0 && reach < 2 * grid.step_days)
     throw UsageError("--reach", fmt::format("must be at least two time steps ({:g} days)", 2 * grid.step_days));
-  if (reach > 0 && method->halo() > 0)
-    throw UsageError("--reach", "applies to the temporal methods (whittaker, harmonic), not to " + method->name());
   if (request.only_years && !(reach > 0)) throw UsageError("--reach", "recomputing some years needs a reach");
   const std::string years_file = (fs::path(request.out_dir) / "fill-years.tsv").string();
   const std::string grid_label = fmt::format("{} {:g}", grid.start.iso(), grid.step_days);
@@ -180,7 +178,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       int first = -1, last = -1;
       for (int s = 0; s < grid.size; ++s) {
         const double d = day_of_slot(s);
-        if (d >= jan1 - reach && d < next + reach) {
+        if (in_year_slice(year, d, reach)) {
           if (first < 0) first = s;
           last = s;
         }
@@ -261,9 +259,13 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // three output planes twice: the worker's, and a date writer's while dates go out in parallel.
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
   const std::int64_t layers = std::int64_t(stack.layers().size());
+  // With a reach, a year's slice is copied in and out, and the method works on the longest one.
+  const TimeGrid* widest = &grid;
+  for (const Segment& seg : segments)
+    if (widest == &grid || seg.grid.size > widest->size) widest = &seg.grid;
   const std::int64_t bytes_per_pixel =
-      n_slots * (4 + 4 + 4 + 4 + 1) * (reach > 0 ? 2 : 1) + 4 + (keep ? 4 : 0) + 2 * 3 * 4 + 4 +
-      std::int64_t(method->scratch_bytes_per_pixel(grid));
+      (n_slots + (segments.empty() ? 0 : widest->size)) * (4 + 4 + 4 + 4 + 1) + 4 + (keep ? 4 : 0) +
+      2 * 3 * 4 + 4 + std::int64_t(method->scratch_bytes_per_pixel(*widest));
   std::set<std::string> read_files;
   for (const Layer& l : stack.layers()) read_files.insert(l.path);
   if (qa_stack)
@@ -370,7 +372,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     };
     w.out.resize(std::size_t(core_pixels) * n_slots);
     const auto kernel_start = std::chrono::steady_clock::now();
-    if (segments.empty()) {
+    if (!(reach > 0)) {
       method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
       if (!w.out.chosen.empty()) w.chosen.push_back({block.index, 0, core, w.out.chosen});
       for (const auto& [reason, n] : w.out.not_fitted) w.counters.not_fitted[reason] += n;
@@ -481,7 +483,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         }
       }
     }
-    if (segments.empty())
+    if (!(reach > 0))
       for (std::size_t k = 0; k < periods.size(); ++k) write_period(k, w.out, 0, n_slots);
     const int done = ++blocks_done;
     if (progress) {
@@ -555,7 +557,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     summary.unfilled += c.unfilled;
     table += fmt::format("{} {} {} {} {} {}\n", year, c.pixel_dates, c.observed, c.rejected, c.filled, c.unfilled);
   }
-  // Whether a pixel has a value on some date spans all years: not known after a partial run.
+  // Whether a pixel has a value on some date spans all years: not known after a partial run
+  // (null in every run with a reach, so that a partial run writes what a whole one would).
   if (reach > 0) summary.pixels_without_value = -1;
   if (reach > 0) detail::write_text_atomically(years_file, table);
   summary.missing = summary.pixel_dates - summary.observed;

@@ -45,4 +45,18 @@ TimePoint TimeGrid::slot_time(int slot) const {
   return TimePoint{start.seconds + std::int64_t(std::llround(slot_days.at(slot) * 86400.0))};
 }
 
+bool in_year_slice(int year, double day, double reach_days) {
+  return day >= double(days_from_civil(year, 1, 1)) - reach_days &&
+         day < double(days_from_civil(year + 1, 1, 1)) + reach_days;
+}
+
+std::vector<int> years_reached(double day, double reach_days) {
+  const int first = civil_from_days(std::int64_t(std::floor(day - reach_days))).year - 1;
+  const int last = civil_from_days(std::int64_t(std::floor(day + reach_days))).year + 1;
+  std::vector<int> years;
+  for (int year = first; year <= last; ++year)
+    if (in_year_slice(year, day, reach_days)) years.push_back(year);
+  return years;
+}
+
 }  // namespace kalends

@@ -12,6 +12,7 @@
 #include <fmt/ranges.h>
 #include <fstream>
 #include <iterator>
+#include <limits>
 #include <set>
 
 #include "engine/memory_budget.hpp"
@@ -26,6 +27,7 @@
 #include "pipeline/state.hpp"
 #include "pipeline/step_kind.hpp"
 #include "kalends/tiles.hpp"
+#include "kalends/time_grid.hpp"
 
 namespace kalends {
 
@@ -466,18 +468,25 @@ class Runner {
     return files;
   }
 
-  // With a reach, the years that the files added, changed or removed since the last run reach;
-  // nothing when that cannot be told (a file without a date in its name, a multi-band file).
-  std::optional<std::vector<int>> years_reached(const std::set<std::string>& changed, double reach) const {
+  // With a reach, the years that the files added, changed or removed since the last run reach,
+  // within the years of the files before and now; nothing when that cannot be told (a file
+  // without a date in its name, a multi-band file).
+  std::optional<std::vector<int>> years_reached(const std::set<std::string>& changed, double reach,
+                                                const std::map<std::string, std::string>& before,
+                                                const std::map<std::string, std::string>& now) const {
+    int first = std::numeric_limits<int>::max(), last = std::numeric_limits<int>::min();
+    for (const auto* files : {&before, &now})
+      for (const auto& [f, sum] : *files)
+        if (const auto date = date_from_name(f)) {
+          first = std::min(first, date->date().year);
+          last = std::max(last, date->date().year);
+        }
     std::set<int> years;
     for (const std::string& f : changed) {
       const auto date = date_from_name(f);
       if (!date) return std::nullopt;
-      const double day = date->days();
-      const int year = date->date().year;
-      years.insert(year);
-      if (day - double(days_from_civil(year, 1, 1)) < reach) years.insert(year - 1);
-      if (double(days_from_civil(year + 1, 1, 1)) - day <= reach) years.insert(year + 1);
+      for (int year : kalends::years_reached(date->days(), reach))
+        if (year >= first && year <= last) years.insert(year);
     }
     if (years.empty()) return std::nullopt;
     return std::vector<int>(years.begin(), years.end());
@@ -552,7 +561,7 @@ class Runner {
       changed = changed_files(record->inputs, now);
     }
     if (reach > 0 && compared) {
-      only_years_ = years_reached(changed, reach);
+      only_years_ = years_reached(changed, reach, record->inputs, now);
       if (only_years_) report.reason += fmt::format("; recomputing the years it reaches: {}", fmt::join(*only_years_, ", "));
     }
     only_tiles_.reset();

@@ -72,3 +72,28 @@ TEST_CASE("memory sizes", "[cli]") {
   CHECK_THROWS_AS(cli::parse_memory("5Q"), UsageError);
   CHECK_THROWS_AS(cli::parse_memory("-1G"), UsageError);
 }
+
+TEST_CASE("a composite reaches the years whose slices hold it, however long the reach", "[engine][reach]") {
+  const auto day = [](int y, int m, int d) { return double(days_from_civil(y, m, d)); };
+  // 2022-11-15 with a reach of 60 days: 2022 and 2023 (its slice starts 2022-11-02).
+  CHECK(years_reached(day(2022, 11, 15), 60) == std::vector<int>{2022, 2023});
+  CHECK(years_reached(day(2022, 6, 15), 60) == std::vector<int>{2022});
+  // The slice of year Y is [1 Jan Y - D, 1 Jan Y+1 + D): closed at its start, open at its end.
+  CHECK(in_year_slice(2023, day(2023, 1, 1) - 30, 30));
+  CHECK_FALSE(in_year_slice(2021, day(2022, 1, 1) + 30, 30));
+  CHECK(years_reached(day(2022, 1, 30), 30) == std::vector<int>{2021, 2022});
+  CHECK(years_reached(day(2022, 1, 31), 30) == std::vector<int>{2022});
+  // Reaches of more than a year touch two years or more on either side (a spacetime fill
+  // learns its seasons from several years): 2022-07-01 with 800 days reaches 2020 .. 2024.
+  CHECK(years_reached(day(2022, 7, 1), 800) == std::vector<int>{2020, 2021, 2022, 2023, 2024});
+  // Every year listed holds the day, and the years just outside do not.
+  for (double reach : {16.0, 183.0, 365.0, 366.0, 730.0, 1200.0})
+    for (double d = day(2019, 1, 1); d < day(2025, 1, 1); d += 13) {
+      const auto years = years_reached(d, reach);
+      REQUIRE_FALSE(years.empty());
+      for (int y : years) CHECK(in_year_slice(y, d, reach));
+      CHECK_FALSE(in_year_slice(years.front() - 1, d, reach));
+      CHECK_FALSE(in_year_slice(years.back() + 1, d, reach));
+      for (std::size_t k = 1; k < years.size(); ++k) CHECK(years[k] == years[k - 1] + 1);
+    }
+}

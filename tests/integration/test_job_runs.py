@@ -218,6 +218,16 @@ class Incremental(kt.TempDirTestCase):
         status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
         self.assertEqual([l.split()[2] for l in status.stdout.splitlines()], ["done", "done", "done"])
 
+    def assert_same_as_from_scratch(self, job, out, scratch_out):
+        """The job's outputs in `out` are what a run from scratch into `scratch_out` writes."""
+        incremental = content(out)
+        scratch = run(job, "--out", scratch_out)
+        self.assertEqual(scratch.returncode, 0, scratch.stderr)
+        fresh = content(scratch_out)
+        self.assertEqual(sorted(incremental), sorted(fresh))
+        for key in fresh:
+            self.assertEqual(incremental[key], fresh[key], key)
+
     def test_adding_composites_one_at_a_time_equals_a_run_from_scratch(self):
         # With a reach of 120 days each year is filled from the dates within 120 days of it, so
         # composites arriving in late 2022 recompute 2022 (and 2023) but leave 2021 alone.
@@ -258,13 +268,52 @@ class Incremental(kt.TempDirTestCase):
             self.assertIn("redoing the year layers of 2022, ", done.stdout)  # not 2021
         now = mtimes(out)
         self.assertEqual({p: now[p] for p in first_year}, first_year)   # 2021 untouched
-        incremental = content(os.path.join(folder, "out"))
-        scratch = run(job, "--out", os.path.join(folder, "scratch"))
-        self.assertEqual(scratch.returncode, 0, scratch.stderr)
-        fresh = content(os.path.join(folder, "scratch"))
-        self.assertEqual(sorted(incremental), sorted(fresh))
-        for key in fresh:
-            self.assertEqual(incremental[key], fresh[key], key)
+        self.assert_same_as_from_scratch(job, os.path.join(folder, "out"), os.path.join(folder, "scratch"))
+
+    def test_spacetime_by_year_adding_composites_equals_a_run_from_scratch(self):
+        # spacetime with a reach of 400 days: each year learns its seasons from its slice of
+        # the grid, 400 days on either side. A composite of mid-January 2023 then reaches 2021
+        # too (its slice runs to 5 February 2023), not only the year before, but not 2020.
+        folder = os.path.join(self.tmp, "st")
+        source = os.path.join(folder, "stack")
+        synth_stack.make_stack(source, width=40, height=40, start_year=2020, dates=3 * 23 + 2)
+        files = sorted(glob.glob(os.path.join(source, "ndvi_*.tif")))
+        self.assertIn("2023-01", os.path.basename(files[-1]))
+        live = os.path.join(folder, "live")
+        os.makedirs(live)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nmemory = "256M"\n\n[inputs.ndvi]\nstack = "live/ndvi_*.tif"\n\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n'
+                    'halo = 8\nreach = 400\n')
+        for path in files[:-1]:
+            shutil.copy(path, live)
+        first = run(job)
+        self.assertEqual(first.returncode, 0, first.stderr)
+        out = os.path.join(folder, "out")
+        year_2020 = {p: t for p, t in mtimes(out).items() if os.path.basename(p).startswith("ndvi_2020-")}
+        self.assertEqual(len(year_2020), 23)
+        shutil.copy(files[-1], live)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("recomputing the years it reaches: 2021, 2022, 2023)", done.stdout)
+        now = mtimes(out)
+        self.assertEqual({p: now[p] for p in year_2020}, year_2020)   # 2020 untouched
+        self.assert_same_as_from_scratch(job, out, os.path.join(folder, "scratch"))
+        # Filled year by year, 2020 learns from its slice alone, so its gaps differ from a
+        # whole-series fill's; its observed values (flag 0) pass through in both.
+        whole = os.path.join(folder, "whole")
+        done = subprocess.run([kt.KALENDS_BIN, "fill", os.path.join(live, "ndvi_*.tif"), "--method", "spacetime",
+                               "--halo", "8", "--out", whole, "--quiet"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        g = kt.gdal()
+        name = os.path.basename(sorted(year_2020)[10])
+        by_year = g.Open(os.path.join(out, "fill", name)).ReadAsArray()
+        at_once = g.Open(os.path.join(whole, name)).ReadAsArray()
+        observed = by_year[2] == 0
+        self.assertTrue(observed.any() and (~observed).any())
+        np.testing.assert_array_equal(by_year[0][observed], at_once[0][observed])
+        self.assertGreater(np.abs(by_year[0][~observed] - at_once[0][~observed]).max(), 1e-4)
 
 
 LST_JOB = """
