@@ -29,7 +29,7 @@ struct InspectedLayer {
   std::int64_t observed = 0;       // a value after nodata, the valid range and the QA rule
   std::int64_t rejected_by_qa = 0;
   std::int64_t outside_valid_range = 0;
-  std::optional<double> minimum, mean, maximum;  // of the observed values
+  std::optional<double> minimum{}, mean{}, maximum{};  // of the observed values
 };
 
 struct InspectReport {

@@ -1,4 +1,5 @@
-// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [method options]
+// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [--qa QA --keep RULE]
+// [method options]
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -33,6 +34,10 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
+  sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date; values the "
+                  "keep rule rejects count as missing");
+  sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");
+  sub->add_option("--qa-band", r.qa_band, "Band of each QA file")->capture_default_str();
   // Each method is scored with the settings it would fill with: the options of `kalends fill`.
   add_method_options(sub, r.method, o->method_texts);
   add_value_rule_options(sub, r.rules, o->rule_texts);

@@ -26,6 +26,7 @@
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
+#include "io/qa_pairing.hpp"
 #include "kalends/qa_rule.hpp"
 
 namespace kalends {
@@ -94,32 +95,20 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
 
   // Options first, then every input, before anything is created.
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
-  if (!request.qa_input.empty() && request.qa_keep.empty())
-    throw UsageError("--keep", "a keep rule is required with --qa");
-  if (request.qa_input.empty() && !request.qa_keep.empty())
-    throw UsageError("--keep", "given without a QA stack (--qa)");
   if (request.name.find('/') != std::string::npos) throw UsageError("--name", "must not contain '/'");
   check_band(request.rules.band, "--band");
-  check_band(request.qa_band, "--qa-band");
+  std::optional<QaRule> keep_rule = qa_rule_of(request.qa_input, request.qa_keep, request.qa_band);
   MethodOptions method_options = request.method;
   method_options.clamp_min = request.rules.valid_min;
   method_options.clamp_max = request.rules.valid_max;
   const std::unique_ptr<FillMethod> method = make_fill_method(method_options);
-  std::optional<QaRule> keep;
-  if (!request.qa_keep.empty()) keep = QaRule::parse(request.qa_keep);
 
   const Stack stack = Stack::open(request.input, request.rules);
   if (stack.layers().size() < 2)
     throw InputError(request.input, "holds a single date; filling in time needs several");
-  std::optional<Stack> qa_stack;
-  std::vector<std::size_t> qa_of_layer;
-  if (keep) {
-    ValueRules qa_rules;
-    qa_rules.band = request.qa_band;
-    qa_rules.exclude = request.rules.exclude;
-    qa_stack = Stack::open(request.qa_input, qa_rules);
-    qa_of_layer = partners_by_date(stack, *qa_stack, "QA");
-  }
+  std::optional<QaPairing> qa;
+  if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
+  const QaRule* keep = qa ? &qa->rule : nullptr;
   const TimeGrid grid = TimeGrid::build(stack.times());
   const int n_slots = grid.size;
   const Grid& raster = stack.grid();
@@ -268,8 +257,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       2 * 3 * 4 + 4 + std::int64_t(method->scratch_bytes_per_pixel(*widest));
   std::set<std::string> read_files;
   for (const Layer& l : stack.layers()) read_files.insert(l.path);
-  if (qa_stack)
-    for (const Layer& l : qa_stack->layers()) read_files.insert(l.path);
+  if (qa)
+    for (const Layer& l : qa->stack.layers()) read_files.insert(l.path);
   // A block per thread at once when the budget gives each at least one tile and its halo; else
   // fewer, down to one, whose parallel loops the other threads then share (a method with a
   // large halo and many dates, such as spacetime, on a machine with many cores).
@@ -309,7 +298,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   tbb::enumerable_thread_specific<Worker> workers([&] {
     Worker w;
     w.data = stack.reader();
-    if (qa_stack) w.qa = qa_stack->reader();
+    if (qa) w.qa = qa->stack.reader();
     return w;
   });
   // Per date: values kept and values the valid range removed, to catch a wrong scale factor.
@@ -327,7 +316,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     w.weights.assign(read_pixels * n_slots, 0.0f);
     for (std::size_t i = 0; i < std::size_t(layers); ++i) {
       out_of_range[i] += w.data->read_values(i, read, w.plane.data());
-      if (keep) w.qa->read_integers(qa_of_layer[i], read, w.qa_plane.data());
+      if (keep) w.qa->read_integers(qa->layer_of[i], read, w.qa_plane.data());
       const int slot = grid.slot_of_date[i];
       std::int64_t valid = 0;
       for (std::int64_t p = 0; p < read_pixels; ++p) valid += !std::isnan(w.plane[p]);
@@ -476,7 +465,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       // Counted apart so the summary can say how much the QA rule removed.
       for (std::size_t i = 0; i < std::size_t(layers); ++i) {
         w.data->read_values(i, read, w.plane.data());
-        w.qa->read_integers(qa_of_layer[i], read, w.qa_plane.data());
+        w.qa->read_integers(qa->layer_of[i], read, w.qa_plane.data());
         for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
           const std::int64_t rp = read_index(cp);
           w.counters.masked_by_qa += !std::isnan(w.plane[rp]) && !keep->keep(w.qa_plane[rp]);

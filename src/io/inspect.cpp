@@ -8,6 +8,7 @@
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
+#include "io/qa_pairing.hpp"
 #include "kalends/error.hpp"
 #include "kalends/qa_rule.hpp"
 
@@ -47,21 +48,10 @@ std::string date_source_of(const Layer& layer, const ValueRules& rules, int laye
 
 InspectReport inspect_stack(const InspectRequest& request) {
   detail::start_gdal();
-  if (request.qa_input.empty() != request.qa_keep.empty())
-    throw UsageError("--keep", request.qa_input.empty() ? "given without a QA stack (--qa)"
-                                                        : "a keep rule is required with --qa");
-  check_band(request.qa_band, "--qa-band");
-  std::optional<QaRule> keep;
-  if (!request.qa_keep.empty()) keep = QaRule::parse(request.qa_keep);
+  std::optional<QaRule> keep_rule = qa_rule_of(request.qa_input, request.qa_keep, request.qa_band);
   const Stack stack = Stack::open(request.input, request.rules);
-  std::optional<Stack> qa_stack;
-  std::vector<std::size_t> qa_of;
-  if (keep) {
-    ValueRules qa_rules;
-    qa_rules.band = request.qa_band;
-    qa_stack = Stack::open(request.qa_input, qa_rules);
-    qa_of = partners_by_date(stack, *qa_stack, "QA");
-  }
+  std::optional<QaPairing> qa;
+  if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
 
   InspectReport report;
   report.input = request.input;
@@ -84,9 +74,9 @@ InspectReport inspect_stack(const InspectRequest& request) {
   const int strip_rows = std::max(1, int(std::min<std::int64_t>(grid.height, (1 << 22) / std::max(1, grid.width))));
   std::vector<std::uint8_t> ever_observed(std::size_t(grid.width) * grid.height, 0);
   std::vector<float> values;
-  std::vector<std::uint32_t> qa;
+  std::vector<std::uint32_t> qa_values;
   auto reader = stack.reader();
-  std::unique_ptr<StackReader> qa_reader = qa_stack ? qa_stack->reader() : nullptr;
+  std::unique_ptr<StackReader> qa_reader = qa ? qa->stack.reader() : nullptr;
   for (std::size_t k = 0; k < report.layers.size(); ++k) {
     InspectedLayer& out = report.layers[k];
     double sum = 0, low = INFINITY, high = -INFINITY;
@@ -95,13 +85,13 @@ InspectReport inspect_stack(const InspectRequest& request) {
       values.resize(w.pixels());
       out.outside_valid_range += reader->read_values(k, w, values.data());
       if (qa_reader) {
-        qa.resize(w.pixels());
-        qa_reader->read_integers(qa_of[k], w, qa.data());
+        qa_values.resize(w.pixels());
+        qa_reader->read_integers(qa->layer_of[k], w, qa_values.data());
       }
       for (std::int64_t p = 0; p < w.pixels(); ++p) {
         const float v = values[p];
         if (!std::isfinite(v)) continue;
-        if (qa_reader && !keep->keep(qa[p])) {
+        if (qa_reader && !qa->rule.keep(qa_values[p])) {
           ++out.rejected_by_qa;
           continue;
         }

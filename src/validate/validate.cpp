@@ -14,6 +14,7 @@
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
+#include "io/qa_pairing.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/time_grid.hpp"
@@ -190,7 +191,10 @@ ValidateReport run_validate(const ValidateRequest& request) {
       throw UsageError("--methods", e.reason());
     }
   }
+  const std::optional<QaRule> keep_rule = qa_rule_of(request.qa_input, request.qa_keep, request.qa_band);
   const Stack stack = Stack::open(request.input, request.rules);
+  std::optional<QaPairing> qa;
+  if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
   const int dates = int(stack.layers().size());
   if (dates < 3) throw InputError(request.input, "validation needs at least 3 dates");
   const Grid& grid = stack.grid();
@@ -199,12 +203,27 @@ ValidateReport run_validate(const ValidateRequest& request) {
     throw InputError(request.input, "too large to validate in memory (over 4e8 pixel-dates); "
                                     "validate a subset of the area");
   truth.v.resize(std::size_t(dates) * truth.plane());
+  const std::size_t plane = truth.plane();
+  // A value the QA rule rejects is missing, as in a fill with the same rule: never scored, and
+  // part of its date's cloud pattern.
+  std::int64_t masked_by_qa = 0;
   {
     auto reader = stack.reader();
+    auto qa_reader = qa ? qa->stack.reader() : nullptr;
+    std::vector<std::uint32_t> qa_plane(qa ? plane : 0);
     const Window all{0, 0, grid.width, grid.height};
-    for (int t = 0; t < dates; ++t) reader->read_values(std::size_t(t), all, truth.at(t));
+    for (int t = 0; t < dates; ++t) {
+      float* values = truth.at(t);
+      reader->read_values(std::size_t(t), all, values);
+      if (!qa) continue;
+      qa_reader->read_integers(qa->layer_of[std::size_t(t)], all, qa_plane.data());
+      for (std::size_t i = 0; i < plane; ++i)
+        if (std::isfinite(values[i]) && !qa->rule.keep(qa_plane[i])) {
+          values[i] = NAN;
+          ++masked_by_qa;
+        }
+    }
   }
-  const std::size_t plane = truth.plane();
 
   // Transplant: the missing-value mask of a random other date j over date k, until the share
   // of observed cells asked for is withheld.
@@ -334,6 +353,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
 
   ValidateReport report;
   report.observed = observed;
+  report.masked_by_qa = masked_by_qa;
   report.withheld = count;
   report.cells = std::int64_t(truth.v.size());
   report.dates = dates;
@@ -422,6 +442,10 @@ ValidateReport run_validate(const ValidateRequest& request) {
   std::string json = "{\n";
   json += fmt::format("  \"input\": \"{}\",\n  \"seed\": {},\n  \"withhold\": {},\n", detail::json_escape(request.input),
                       request.seed, detail::json_number(request.withhold));
+  if (qa)
+    json += fmt::format("  \"qa\": \"{}\",\n  \"qa_band\": {},\n  \"keep\": \"{}\",\n  \"masked_by_qa\": {},\n",
+                        detail::json_escape(request.qa_input), request.qa_band, detail::json_escape(qa->rule.text()),
+                        masked_by_qa);
   json += fmt::format(
       "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"observed\": {},\n"
       "  \"withheld\": {},\n  \"transplanted_masks\": {},\n  \"neighbourhood_radius\": {},\n",
@@ -436,6 +460,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
       "({:.1f} %) along {} transplanted cloud masks (seed {}).\n\n",
       request.input, dates, grid.width, grid.height, observed, count,
       100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
+  if (qa)
+    md += fmt::format("QA: `{}`{}, keep `{}`: {} values rejected before any was withheld (they count as "
+                      "missing, as in a fill with the same rule).\n\n",
+                      request.qa_input, request.qa_band != 1 ? fmt::format(" band {}", request.qa_band) : "",
+                      qa->rule.text(), masked_by_qa);
   md += "| method | RMSE | MAE | bias | R² | coverage | within ±1 sd | within ±1.96 sd | RMS of error / sd |\n"
         "|---|---|---|---|---|---|---|---|---|\n";
   auto row = [&](const Score& s) {

@@ -16,6 +16,8 @@ namespace kalends {
 struct ValidateRequest {
   std::string input;
   ValueRules rules;
+  std::string qa_input, qa_keep;  // QA stack paired by date, and its keep rule (as for fill)
+  int qa_band = 1;
   std::vector<std::string> methods{"whittaker", "harmonic", "spacetime"};
   MethodOptions method;          // options for every method (the name is replaced)
   std::string out_dir;
@@ -42,6 +44,7 @@ struct Score {
 
 struct ValidateReport {
   std::int64_t observed = 0, withheld = 0, cells = 0;
+  std::int64_t masked_by_qa = 0;  // values the QA rule removed before anything was withheld
   int dates = 0, width = 0, height = 0, transplanted_masks = 0;
   std::vector<Score> scores;
 };

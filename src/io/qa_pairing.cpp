@@ -1,0 +1,24 @@
+#include "io/qa_pairing.hpp"
+
+#include "kalends/error.hpp"
+
+namespace kalends {
+
+std::optional<QaRule> qa_rule_of(const std::string& qa_input, const std::string& keep, int qa_band) {
+  if (!qa_input.empty() && keep.empty()) throw UsageError("--keep", "a keep rule is required with --qa");
+  if (qa_input.empty() && !keep.empty()) throw UsageError("--keep", "given without a QA stack (--qa)");
+  check_band(qa_band, "--qa-band");
+  if (keep.empty()) return std::nullopt;
+  return QaRule::parse(keep);
+}
+
+QaPairing pair_qa(const Stack& values, QaRule rule, const std::string& qa_input, int qa_band) {
+  ValueRules qa_rules;
+  qa_rules.band = qa_band;
+  qa_rules.exclude = values.rules().exclude;
+  Stack stack = Stack::open(qa_input, qa_rules);
+  std::vector<std::size_t> layer_of = partners_by_date(values, stack, "QA");
+  return QaPairing{std::move(rule), std::move(stack), std::move(layer_of)};
+}
+
+}  // namespace kalends

@@ -1,0 +1,91 @@
+#!/usr/bin/python3
+"""`kalends validate --qa --keep`: values the QA rule rejects count as missing, exactly as if the
+files had held no value there.
+
+Invented data (tools/synth_stack.py with --qa: clouds keep contaminated NDVI and the QA layer
+marks them). These are checks of the mechanics, not of accuracy: the same validation run on a
+copy of the stack whose rejected values were set to nodata beforehand (with numpy and GDAL)
+must withhold the same cells and give the same scores.
+
+Run: /usr/bin/python3 -m unittest -v tests/integration/test_validate_qa.py
+"""
+import glob
+import json
+import os
+import shutil
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+KEEP = "bits0-1 in 0,1"   # the synthetic QA: 0 clear, 1 marginal, 2 cloudy, 3 other
+
+
+def validate(testcase, stack, out, *extra):
+    done = kt.run_kalends(["-q", "validate", stack, "--out", out, "--methods", "whittaker",
+                           "--seed", "7", "--withhold", "0.25"] + list(extra))
+    testcase.assertEqual(done.returncode, 0, done.stderr)
+    with open(os.path.join(out, "report.json")) as f:
+        return json.load(f)
+
+
+class ValidateWithQa(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.stack = os.path.join(cls.tmp, "stack", "ndvi")
+        kt.make_synthetic_stack(cls.stack, 48, 40, "--qa", years=2)
+        # The same stack with every value the rule rejects set to the files' nodata value.
+        g = kt.gdal()
+        cls.premasked = os.path.join(cls.tmp, "premasked")
+        os.makedirs(cls.premasked)
+        cls.rejected = 0
+        for path in sorted(glob.glob(os.path.join(cls.stack, "ndvi_*.tif"))):
+            name = os.path.basename(path)
+            qa = g.Open(os.path.join(cls.tmp, "stack", "qa", name.replace("ndvi_", "qa_"))).ReadAsArray()
+            copy = os.path.join(cls.premasked, name)
+            shutil.copy(path, copy)
+            ds = g.Open(copy, g.GA_Update)
+            band = ds.GetRasterBand(1)
+            raw = band.ReadAsArray()
+            nodata = band.GetNoDataValue()
+            reject = ((qa & 3) > 1) & (raw != nodata)
+            cls.rejected += int(reject.sum())
+            raw[reject] = nodata
+            band.WriteArray(raw)
+            ds = None
+
+    def test_rejected_values_count_as_missing(self):
+        with_qa = validate(self, os.path.join(self.stack, "ndvi_*.tif"), os.path.join(self.tmp, "v_qa"),
+                           "--qa", os.path.join(self.tmp, "stack", "qa", "qa_*.tif"), "--keep", KEEP)
+        premasked = validate(self, os.path.join(self.premasked, "ndvi_*.tif"), os.path.join(self.tmp, "v_pre"))
+        self.assertGreater(self.rejected, 0)
+        self.assertEqual(with_qa["masked_by_qa"], self.rejected)
+        self.assertEqual(with_qa["keep"], KEEP)
+        for key in ("observed", "withheld", "transplanted_masks"):
+            self.assertEqual(with_qa[key], premasked[key], key)
+        self.assertEqual([s["name"] for s in with_qa["scores"]], [s["name"] for s in premasked["scores"]])
+        for a, b in zip(with_qa["scores"], premasked["scores"]):
+            for key in ("cells", "covered", "rmse", "mae", "bias"):
+                self.assertEqual(a[key], b[key], (a["name"], key))
+        with open(os.path.join(self.tmp, "v_qa", "report.md")) as f:
+            self.assertIn("keep `%s`: %d values rejected" % (KEEP, self.rejected), f.read())
+        # Without the rule the cloudy values are observations: more of them, other scores.
+        plain = validate(self, os.path.join(self.stack, "ndvi_*.tif"), os.path.join(self.tmp, "v_plain"))
+        self.assertEqual(plain["observed"], with_qa["observed"] + self.rejected)
+        self.assertNotIn("masked_by_qa", plain)
+
+    def test_a_rule_without_a_qa_stack_is_refused(self):
+        done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--out",
+                               os.path.join(self.tmp, "v_bad"), "--keep", KEEP])
+        self.assertEqual(done.returncode, 2)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("--keep", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "v_bad", "report.json")))
+
+
+if __name__ == "__main__":
+    unittest.main()
