@@ -56,6 +56,8 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
 std::vector<std::string> split_list(const std::string& text, const std::string& option);
 /// "1,2,3" as whole numbers; UsageError naming `option` and the item otherwise.
 std::vector<int> parse_whole_numbers(const std::string& text, const std::string& option);
+/// "--subset COLUMN,ROW,WIDTH,HEIGHT" (pixels, as gdal_translate -srcwin); nothing when empty.
+std::optional<Window> parse_subset(const std::string& text);
 
 /// MIN,MAX; UsageError naming `option` otherwise.
 std::pair<double, double> parse_range(const std::string& text, const std::string& option);

@@ -58,6 +58,13 @@ std::vector<int> parse_whole_numbers(const std::string& text, const std::string&
   return numbers;
 }
 
+std::optional<Window> parse_subset(const std::string& text) {
+  if (text.empty()) return std::nullopt;
+  const std::vector<int> v = parse_whole_numbers(text, "--subset");
+  if (v.size() != 4) throw UsageError("--subset '" + text + "'", "expected COLUMN,ROW,WIDTH,HEIGHT in pixels");
+  return Window{v[0], v[1], v[2], v[3]};
+}
+
 std::string percent(std::int64_t part, std::int64_t whole) {
   return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";
 }
@@ -70,7 +77,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     bool mosaic = false;
     MethodOptionTexts method_texts;
     ValueRuleTexts rule_texts;
-    std::string memory = "1G", every, compression = "deflate", marks = "start";
+    std::string memory = "1G", every, compression = "deflate", marks = "start", subset;
   };
   auto o = std::make_shared<Options>();
   FillRequest& r = o->request;
@@ -97,6 +104,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                   "The input is a tile set: where the tile's name sits in each path, e.g. 'tiles/{tile}/'; "
                   "outputs go to OUT/<tile>/");
   sub->add_flag("--mosaic", o->mosaic, "With --tiles: also write OUT/mosaic/, one VRT per date over all tiles");
+  sub->add_option("--subset", o->subset, "Fill these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
+                  "gdal_translate -srcwin); a method with a halo still reads the pixels around them");
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
@@ -117,6 +126,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
         std::fprintf(stderr, "\rfill: %d/%d blocks", done, total);
         if (done == total) std::fprintf(stderr, "\n");
       };
+    r.region = parse_subset(o->subset);
+    if (r.region && !o->tiles.empty()) throw UsageError("--subset", "does not apply to a tile set (--tiles)");
     if (o->mosaic && o->tiles.empty()) throw UsageError("--mosaic", "needs --tiles");
     if (!o->tiles.empty()) {
       const TiledFillSummary tiled = run_tiled_fill(r, o->tiles, o->mosaic, progress);

@@ -1,4 +1,4 @@
-// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [--qa QA --keep RULE]
+// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [--qa QA --keep RULE] [--subset C,R,W,H]
 // [method options]
 #include <fmt/format.h>
 
@@ -13,7 +13,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
       "validate", "Withhold observed values along real cloud patterns and score each method");
   struct Options {
     ValidateRequest request;
-    std::string methods = "whittaker,harmonic,spacetime", memory = "1G";
+    std::string methods = "whittaker,harmonic,spacetime", memory = "1G", subset;
     MethodOptionTexts method_texts;
     ValueRuleTexts rule_texts;
   };
@@ -34,6 +34,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
+  sub->add_option("--subset", o->subset, "Validate these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
+                  "gdal_translate -srcwin), for an area too large to validate whole");
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date; values the "
                   "keep rule rejects count as missing");
   sub->add_option("--keep", r.qa_keep, "QA keep rule, e.g. 'bits0-1 in 0,1'");
@@ -47,6 +49,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     apply_value_rule_options(r.rules, o->rule_texts);
     r.methods = split_list(o->methods, "--methods");
     r.memory_bytes = parse_memory(o->memory);
+    r.subset = parse_subset(o->subset);
     const ValidateReport report = run_validate(r);
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",

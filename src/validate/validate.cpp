@@ -197,11 +197,13 @@ ValidateReport run_validate(const ValidateRequest& request) {
   if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
   const int dates = int(stack.layers().size());
   if (dates < 3) throw InputError(request.input, "validation needs at least 3 dates");
-  const Grid& grid = stack.grid();
+  const Window area = area_of(stack.grid().width, stack.grid().height, request.subset, "--subset");
+  const Grid grid = window_grid(stack.grid(), area);
   Cube truth{dates, grid.height, grid.width, {}};
   if (double(dates) * truth.plane() > 4e8)
-    throw InputError(request.input, "too large to validate in memory (over 4e8 pixel-dates); "
-                                    "validate a subset of the area");
+    throw InputError(request.input, fmt::format("too large to validate in memory ({} dates of {} x {} px, over 4e8 "
+                                                "pixel-dates); validate a part of the area with --subset",
+                                                dates, grid.width, grid.height));
   truth.v.resize(std::size_t(dates) * truth.plane());
   const std::size_t plane = truth.plane();
   // A value the QA rule rejects is missing, as in a fill with the same rule: never scored, and
@@ -211,12 +213,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
     auto reader = stack.reader();
     auto qa_reader = qa ? qa->stack.reader() : nullptr;
     std::vector<std::uint32_t> qa_plane(qa ? plane : 0);
-    const Window all{0, 0, grid.width, grid.height};
     for (int t = 0; t < dates; ++t) {
       float* values = truth.at(t);
-      reader->read_values(std::size_t(t), all, values);
+      reader->read_values(std::size_t(t), area, values);
       if (!qa) continue;
-      qa_reader->read_integers(qa->layer_of[std::size_t(t)], all, qa_plane.data());
+      qa_reader->read_integers(qa->layer_of[std::size_t(t)], area, qa_plane.data());
       for (std::size_t i = 0; i < plane; ++i)
         if (std::isfinite(values[i]) && !qa->rule.keep(qa_plane[i])) {
           values[i] = NAN;
@@ -442,6 +443,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
   std::string json = "{\n";
   json += fmt::format("  \"input\": \"{}\",\n  \"seed\": {},\n  \"withhold\": {},\n", detail::json_escape(request.input),
                       request.seed, detail::json_number(request.withhold));
+  if (request.subset)
+    json += fmt::format("  \"subset\": [{}, {}, {}, {}],\n", area.x, area.y, area.width, area.height);
   if (qa)
     json += fmt::format("  \"qa\": \"{}\",\n  \"qa_band\": {},\n  \"keep\": \"{}\",\n  \"masked_by_qa\": {},\n",
                         detail::json_escape(request.qa_input), request.qa_band, detail::json_escape(qa->rule.text()),
@@ -456,9 +459,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
   json += "  ]\n}\n";
 
   std::string md = fmt::format(
-      "# kalends validate\n\n`{}`: {} dates of {} x {} px, {} observed cells; {} withheld "
+      "# kalends validate\n\n`{}`{}: {} dates of {} x {} px, {} observed cells; {} withheld "
       "({:.1f} %) along {} transplanted cloud masks (seed {}).\n\n",
-      request.input, dates, grid.width, grid.height, observed, count,
+      request.input,
+      request.subset ? fmt::format(" (the pixels from column {}, row {})", area.x, area.y) : std::string(),
+      dates, grid.width, grid.height, observed, count,
       100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
   if (qa)
     md += fmt::format("QA: `{}`{}, keep `{}`: {} values rejected before any was withheld (they count as "

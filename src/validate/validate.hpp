@@ -5,6 +5,7 @@
 
 #include <cstdint>
 #include <map>
+#include <optional>
 #include <string>
 #include <vector>
 
@@ -18,6 +19,7 @@ struct ValidateRequest {
   ValueRules rules;
   std::string qa_input, qa_keep;  // QA stack paired by date, and its keep rule (as for fill)
   int qa_band = 1;
+  std::optional<Window> subset;  // validate these pixels only (column, row, width, height)
   std::vector<std::string> methods{"whittaker", "harmonic", "spacetime"};
   MethodOptions method;          // options for every method (the name is replaced)
   std::string out_dir;

@@ -222,7 +222,10 @@ class BadInput(kt.TempDirTestCase):
                  (["--band", "0"], "--band", "numbered from 1"),
                  (["--qa", os.path.join(self.qa, "*.tif"), "--keep", "bits0-1 in 0,1", "--qa-band", "0"],
                   "--qa-band", "numbered from 1"),
-                 (["--method", "spacetime", "--season-smoothing", "-1"], "--season-smoothing", "0 or more")]
+                 (["--method", "spacetime", "--season-smoothing", "-1"], "--season-smoothing", "0 or more"),
+                 (["--subset", "0,0,5"], "--subset", "COLUMN,ROW,WIDTH,HEIGHT"),
+                 (["--subset", "0,0,5,5", "--tiles", "x/{tile}/"], "--subset", "tile set"),
+                 (["--subset", "2,2,0,5"], "region", "outside")]
         for extra, name, keyword in cases:
             with self.subTest(option=name):
                 self.check_fails([stack] + extra, [name], [keyword], name)

@@ -1,13 +1,16 @@
 #!/usr/bin/python3
-"""`kalends validate --qa --keep`: values the QA rule rejects count as missing, exactly as if the
-files had held no value there.
+"""`kalends validate --qa --keep` and `--subset`, each against the same validation of files that
+GDAL and numpy prepared beforehand.
+
+- With a QA rule, rejected values count as missing, exactly as if the files had held no value
+  there: a copy of the stack with those values set to nodata must give the same cells withheld
+  and the same scores.
+- `--subset C,R,W,H` validates what `gdal_translate -srcwin C R W H` of every date would.
 
 Invented data (tools/synth_stack.py with --qa: clouds keep contaminated NDVI and the QA layer
-marks them). These are checks of the mechanics, not of accuracy: the same validation run on a
-copy of the stack whose rejected values were set to nodata beforehand (with numpy and GDAL)
-must withhold the same cells and give the same scores.
+marks them). These are checks of the mechanics, not of accuracy.
 
-Run: /usr/bin/python3 -m unittest -v tests/integration/test_validate_qa.py
+Run: /usr/bin/python3 -m unittest -v tests/integration/test_validate_options.py
 """
 import glob
 import json
@@ -32,7 +35,7 @@ def validate(testcase, stack, out, *extra):
         return json.load(f)
 
 
-class ValidateWithQa(kt.TempDirTestCase):
+class ValidateOptions(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
         super().setUpClass()
@@ -77,6 +80,31 @@ class ValidateWithQa(kt.TempDirTestCase):
         plain = validate(self, os.path.join(self.stack, "ndvi_*.tif"), os.path.join(self.tmp, "v_plain"))
         self.assertEqual(plain["observed"], with_qa["observed"] + self.rejected)
         self.assertNotIn("masked_by_qa", plain)
+
+    def test_subset_validates_what_gdal_cuts(self):
+        g = kt.gdal()
+        cut = os.path.join(self.tmp, "cut")
+        os.makedirs(cut)
+        for path in sorted(glob.glob(os.path.join(self.premasked, "ndvi_*.tif"))):
+            g.Translate(os.path.join(cut, os.path.basename(path)), path, srcWin=[7, 5, 30, 28])
+        subset = validate(self, os.path.join(self.premasked, "ndvi_*.tif"), os.path.join(self.tmp, "v_sub"),
+                          "--subset", "7,5,30,28")
+        whole_cut = validate(self, os.path.join(cut, "ndvi_*.tif"), os.path.join(self.tmp, "v_cut"))
+        self.assertEqual(subset["subset"], [7, 5, 30, 28])
+        self.assertEqual((subset["width"], subset["height"]), (30, 28))
+        for key in ("observed", "withheld", "transplanted_masks"):
+            self.assertEqual(subset[key], whole_cut[key], key)
+        for a, b in zip(subset["scores"], whole_cut["scores"]):
+            self.assertEqual(a["name"], b["name"])
+            for key in ("cells", "covered", "rmse", "bias"):
+                self.assertEqual(a[key], b[key], (a["name"], key))
+        # A subset outside the raster, or not four numbers: one line naming the option.
+        for bad in ("40,5,30,28", "7,5,30"):
+            done = kt.run_kalends(["validate", os.path.join(self.premasked, "ndvi_*.tif"), "--out",
+                                   os.path.join(self.tmp, "v_bad_subset"), "--subset", bad])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn("--subset", done.stderr)
 
     def test_a_rule_without_a_qa_stack_is_refused(self):
         done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--out",
