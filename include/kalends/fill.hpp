@@ -48,6 +48,9 @@ struct FillRequest {
   /// step after a start mark and before an end mark.
   DateMarks marks = DateMarks::start;
   std::int64_t memory_bytes = std::int64_t(1) << 30;
+  /// Where memory_bytes holds no block, use what one block needs if that is at most this (0:
+  /// refuse instead). For a budget the user did not choose; FillSummary says when it was used.
+  std::int64_t memory_ceiling = 0;
   int threads = 0;  // 0 = all cores
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata
@@ -76,6 +79,7 @@ struct FillSummary {
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
+  std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
 };
 
 using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;

@@ -56,6 +56,9 @@ std::optional<double> number_or_auto(const std::string& text, const std::string&
 std::vector<std::string> split_list(const std::string& text, const std::string& option);
 /// "1,2,3" as whole numbers; UsageError naming `option` and the item otherwise.
 std::vector<int> parse_whole_numbers(const std::string& text, const std::string& option);
+/// The note on standard error when a fill took more than the default --memory (memory_ceiling).
+void print_memory_note(std::int64_t default_bytes, std::int64_t used_bytes);
+
 /// "--subset COLUMN,ROW,WIDTH,HEIGHT" (pixels, as gdal_translate -srcwin); nothing when empty.
 std::optional<Window> parse_subset(const std::string& text);
 

@@ -65,6 +65,13 @@ std::optional<Window> parse_subset(const std::string& text) {
   return Window{v[0], v[1], v[2], v[3]};
 }
 
+void print_memory_note(std::int64_t default_bytes, std::int64_t used_bytes) {
+  std::fprintf(stderr,
+               "note: one block of this stack needs %lld MiB, more than the default --memory of %lld MiB; "
+               "used %lld MiB (at most half this machine's memory is taken unasked; --memory sets it)\n",
+               (long long)(used_bytes >> 20), (long long)(default_bytes >> 20), (long long)(used_bytes >> 20));
+}
+
 std::string percent(std::int64_t part, std::int64_t whole) {
   return whole > 0 ? fmt::format("{:.1f} %", 100.0 * double(part) / double(whole)) : "n/a";
 }
@@ -106,17 +113,20 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--mosaic", o->mosaic, "With --tiles: also write OUT/mosaic/, one VRT per date over all tiles");
   sub->add_option("--subset", o->subset, "Fill these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
                   "gdal_translate -srcwin); a method with a halo still reads the pixels around them");
-  sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
+  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G; "
+                                        "without it, more where one block needs more, up to half the machine's memory")
+                            ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
 
-  return [o, &global] {
+  return [o, memory, &global] {
     FillRequest& r = o->request;
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
     if (!o->every.empty()) r.every = CalendarPeriod::parse(o->every);
     r.marks = parse_date_marks(o->marks);
     r.memory_bytes = parse_memory(o->memory);
+    if (memory->count() == 0) r.memory_ceiling = detail::usable_memory_bytes() / 2;
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;
     const bool terminal = isatty(STDERR_FILENO) && !global.quiet;
@@ -140,6 +150,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       return;
     }
     const FillSummary s = run_fill(r, progress);
+    if (s.memory_raised_to > 0) print_memory_note(r.memory_bytes, s.memory_raised_to);
     // A note, not an error: the scaling may be applied already or belong to another convention.
     if (!s.unapplied_scaling.empty())
       std::fprintf(stderr,

@@ -3,6 +3,7 @@
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
+#include "engine/memory_budget.hpp"
 #include "kalends/error.hpp"
 #include "validate/validate.hpp"
 
@@ -31,7 +32,9 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--radius", r.neighbourhood_radius,
                   "Neighbourhood radius (pixels) for the breakdown by missing neighbours")
       ->capture_default_str();
-  sub->add_option("--memory", o->memory, "Working-set budget of each fill")->capture_default_str();
+  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget of each fill; without it, "
+                                        "more where one block needs more, up to half the machine's memory")
+                            ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
   sub->add_option("--subset", o->subset, "Validate these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
@@ -43,14 +46,16 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   // Each method is scored with the settings it would fill with: the options of `kalends fill`.
   add_method_options(sub, r.method, o->method_texts);
   add_value_rule_options(sub, r.rules, o->rule_texts);
-  return [o, &global] {
+  return [o, memory, &global] {
     ValidateRequest& r = o->request;
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
     r.methods = split_list(o->methods, "--methods");
     r.memory_bytes = parse_memory(o->memory);
+    if (memory->count() == 0) r.memory_ceiling = detail::usable_memory_bytes() / 2;
     r.subset = parse_subset(o->subset);
     const ValidateReport report = run_validate(r);
+    if (report.memory_raised_to > 0) print_memory_note(r.memory_bytes, report.memory_raised_to);
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);

@@ -265,27 +265,32 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const Window smallest_read =
       BlockPlan::smallest_read_window(raster.width, raster.height, method->halo(), tile_size);
   const std::int64_t smallest_block = smallest_read.pixels();
-  // Too little for one block, or not even for the fixed overheads: say what would do.
+  // Too little for one block, or not even for the fixed overheads: say what would do, or take
+  // it where the caller allows (a budget the user did not choose).
+  const std::int64_t one_block = detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel,
+                                                                int(read_files.size()), int(specs.size()));
   auto refuse = [&] {
     throw UsageError("--memory", fmt::format(
         "budget of {} MiB is too small for one block (it reads {} x {} px{}); {} MiB would do",
         request.memory_bytes >> 20, smallest_read.width, smallest_read.height,
-        method->halo() > 0 ? " with its halo" : "",
-        detail::budget_for_read_pixels(smallest_block, 1, bytes_per_pixel, int(read_files.size()),
-                                       int(specs.size())) >> 20));
+        method->halo() > 0 ? " with its halo" : "", one_block >> 20));
   };
+  std::int64_t budget = request.memory_bytes;
   int at_once = threads;
   detail::MemoryShare share;
   for (;; --at_once) {
     try {
-      share = detail::share_memory(request.memory_bytes, at_once, bytes_per_pixel,
-                                   int(read_files.size()), int(specs.size()));
+      share = detail::share_memory(budget, at_once, bytes_per_pixel, int(read_files.size()), int(specs.size()));
       if (share.max_read_pixels >= smallest_block || at_once == 1) break;
     } catch (const UsageError&) {
-      if (at_once == 1) refuse();
+      if (at_once == 1) break;
     }
   }
-  if (share.max_read_pixels < smallest_block) refuse();
+  if (share.max_read_pixels < smallest_block) {
+    if (one_block > request.memory_ceiling) refuse();
+    budget = one_block;
+    share = detail::share_memory(budget, 1, bytes_per_pixel, int(read_files.size()), int(specs.size()));
+  }
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan =
       BlockPlan::make(raster.width, raster.height, method->halo(), share.max_read_pixels, tile_size, request.region);
@@ -508,6 +513,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
 
   FillSummary summary;
   summary.unapplied_scaling = unapplied_scaling(stack);
+  if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.dates = int(layers);

@@ -1,8 +1,10 @@
 #include "engine/memory_budget.hpp"
 
 #include <sys/resource.h>
+#include <unistd.h>
 
 #include <algorithm>
+#include <fstream>
 
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
@@ -98,6 +100,19 @@ std::int64_t peak_resident_bytes() {
   rusage usage{};
   getrusage(RUSAGE_SELF, &usage);
   return std::int64_t(usage.ru_maxrss) * 1024;
+}
+
+std::int64_t usable_memory_bytes() {
+  const long pages = sysconf(_SC_PHYS_PAGES), page = sysconf(_SC_PAGESIZE);
+  std::int64_t usable = pages > 0 && page > 0 ? std::int64_t(pages) * page : 0;
+  // A container's limit (cgroup v2, then v1) where it is lower: "max" or a huge v1 value
+  // means none.
+  for (const char* limit_file : {"/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory/memory.limit_in_bytes"}) {
+    std::ifstream in(limit_file);
+    long long limit = 0;
+    if (in >> limit && limit > 0 && (usable == 0 || limit < usable)) usable = limit;
+  }
+  return usable;
 }
 
 }  // namespace kalends::detail

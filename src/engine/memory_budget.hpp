@@ -26,4 +26,8 @@ std::int64_t budget_for_read_pixels(std::int64_t read_pixels, int workers, std::
 /// Peak resident memory of this process so far (bytes), from getrusage.
 std::int64_t peak_resident_bytes();
 
+/// The machine's physical memory, or its container's limit where lower (bytes); 0 where
+/// neither can be told.
+std::int64_t usable_memory_bytes();
+
 }  // namespace kalends::detail

@@ -371,9 +371,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
     fill.rules.valid_max = request.rules.valid_max;
     fill.out_dir = (work / method).string();
     fill.memory_bytes = request.memory_bytes;
+    fill.memory_ceiling = request.memory_ceiling;
     fill.threads = request.threads;
     fill.compression = Compression::none;
     const FillSummary filled = run_fill(fill);
+    report.memory_raised_to = std::max(report.memory_raised_to, filled.memory_raised_to);
     std::vector<std::string> paths;
     for (int t = 0; t < dates; ++t)
       paths.push_back((work / method / (name + "_" + stack.layers()[t].time.label() + ".tif")).string());

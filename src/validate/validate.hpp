@@ -27,6 +27,7 @@ struct ValidateRequest {
   double withhold = 0.2;         // share of the observed cells to withhold
   int neighbourhood_radius = 5;  // pixels; for the "neighbourhood missing" breakdown
   std::int64_t memory_bytes = std::int64_t(1) << 30;
+  std::int64_t memory_ceiling = 0;  // as FillRequest::memory_ceiling, for each fill
   int threads = 0;
   bool keep_work = false;        // keep the withheld stack and the fills under OUT/work
 };
@@ -47,6 +48,7 @@ struct Score {
 struct ValidateReport {
   std::int64_t observed = 0, withheld = 0, cells = 0;
   std::int64_t masked_by_qa = 0;  // values the QA rule removed before anything was withheld
+  std::int64_t memory_raised_to = 0;  // the largest budget a fill took beyond memory_bytes; 0 if none
   int dates = 0, width = 0, height = 0, transplanted_masks = 0;
   std::vector<Score> scores;
 };

@@ -147,6 +147,38 @@ class SubsetIsAWindowOfTheWhole(kt.TempDirTestCase):
                                                  gt_whole[3] + row * gt_whole[5], 0, gt_whole[5]])
 
 
+class DefaultBudgetGrowsToOneBlock(kt.TempDirTestCase):
+    """Without --memory, a stack whose one block needs more than the default 1 GiB (here 80
+    dates of 320 x 320 px) is filled with what one block needs, up to half the machine's memory,
+    with a note; the values are those of a run given that budget. An explicit --memory 1G is
+    refused and names the same figure."""
+
+    def test_default_budget_grows(self):
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 320, 320, "--dates", "80")
+        common = ["fill", os.path.join(stack, "ndvi_*.tif"), "--method", "spacetime", "--threads", "2"]
+        refused = kt.run_kalends(common + ["--out", os.path.join(self.tmp, "refused"), "--memory", "1G"])
+        self.assertEqual(refused.returncode, 2, refused.stderr)
+        need = int(re.search(r"(\d+) MiB would do", refused.stderr).group(1))
+        self.assertGreater(need, 1024)
+        with open("/proc/meminfo") as f:
+            physical_mib = int(f.readline().split()[1]) // 1024
+        if need > physical_mib // 2:
+            self.skipTest("this machine has %d MiB; the test needs %d MiB" % (physical_mib, 2 * need))
+        grown = os.path.join(self.tmp, "grown")
+        done = kt.run_kalends(common + ["--out", grown])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: one block of this stack needs %d MiB" % need, done.stderr)
+        given = os.path.join(self.tmp, "given")
+        done = kt.run_kalends(common + ["--out", given, "--memory", "%dM" % need])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("note:", done.stderr)
+        for name in kt.final_outputs(given):
+            a, b = kt.read_output(os.path.join(grown, name)), kt.read_output(os.path.join(given, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band], b[band], err_msg=name + " " + band)
+
+
 class SmoothingChoiceRecorded(kt.TempDirTestCase):
     """--space-smoothing/--time-smoothing auto: fill-summary.json lists the values GCV chose per
     block, and giving them back as fixed values reproduces the fill exactly."""
