@@ -206,7 +206,11 @@ class Runner {
       try {
         if (options_.finalize && planned->split) stitch_step(step, *planned, r);
         else run_step(step, r);
-      } catch (const Error& e) {
+      } catch (const Error& caught) {
+        // The engines name the command's option; in a job the budget is the job file's.
+        const Error e = dynamic_cast<const UsageError*>(&caught) && caught.where() == "--memory"
+                            ? UsageError(job_.path + ": [job] memory", caught.reason())
+                            : caught;
         r.action = StepReport::Action::failed;
         r.reason = e.what();
         if (!options_.dry_run) {
@@ -217,7 +221,7 @@ class Runner {
           }
         }
         report_.error = e.what();
-        report_.exit_code = dynamic_cast<const InputError*>(&e) ? 2 : 1;
+        report_.exit_code = dynamic_cast<const InputError*>(&caught) ? 2 : 1;
         failed = true;
       }
       if (events_.step_finished) events_.step_finished(r);

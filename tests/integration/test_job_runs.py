@@ -10,6 +10,7 @@ import glob
 import json
 import os
 import random
+import re
 import resource
 import shutil
 import signal
@@ -113,6 +114,24 @@ class JobFile(kt.TempDirTestCase):
         self.assertIn("bad.toml:%d" % expected_line if expected_line else "bad.toml", lines[0])
         for w in words:
             self.assertIn(w, lines[0])
+
+    def test_a_budget_too_small_names_the_job_key_and_what_would_do(self):
+        folder = os.path.join(self.tmp, "small")
+        make_job(folder)
+        job = os.path.join(folder, "small.toml")
+        text = ('[job]\nout = "out"\nmemory = "{}"\n\n[inputs.ndvi]\nstack = "stack/ndvi/ndvi_*.tif"\n\n'
+                '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n')
+        with open(job, "w") as f:
+            f.write(text.format("8M"))
+        done = run(job)
+        self.assertEqual(done.returncode, 1, done.stderr)
+        line = done.stderr.strip().splitlines()[-1]
+        self.assertIn("small.toml: [job] memory: budget of 8 MiB is too small", line)
+        need = re.search(r"(\d+) MiB would do", line).group(1)
+        with open(job, "w") as f:
+            f.write(text.format(need + "M"))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
 
     def test_mistakes_are_named_with_their_line(self):
         good = JOB.format(lam="auto", extra="")
