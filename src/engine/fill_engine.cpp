@@ -24,9 +24,9 @@
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
+#include "io/qa_pairing.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
-#include "io/qa_pairing.hpp"
 #include "kalends/qa_rule.hpp"
 
 namespace kalends {
