@@ -47,8 +47,8 @@
 // 2 gamma(d), the observations' semivariogram at its distance to the nearest known cell.
 //
 // Pixels with no observation within `halo` pixels on any date are not filled (flag 3). The
-// engine hands the method blocks with that halo; results then do not depend on block size to
-// within the solver's tolerance (tested).
+// engine hands the method one output tile at a time with that halo, so the seams between tiles
+// stay within the solver's tolerance (tested against blocks cut elsewhere).
 #pragma once
 
 #include <memory>

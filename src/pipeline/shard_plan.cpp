@@ -67,8 +67,6 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
     // Decided by the kind alone first: only candidates have their inputs' grids opened.
     if (!kind || !kind->splits_by_area) why = "needs the whole area";
     else if (js.options.count("tiles")) why = "a tile set: its tiles are its own windows";
-    else if (kind->reads_neighbours && kind->reads_neighbours(js.options))
-      why = "couples neighbouring pixels: strips would differ from a one-machine run along their edges";
     for (const std::string& name : why.empty() ? js.inputs : std::vector<std::string>{}) {
       std::string this_root;
       if (job.inputs.count(name)) {

@@ -101,11 +101,9 @@ struct StepKind {
   /// layers depend on that year's values alone).
   bool years_from_inputs = false;
   /// Per-pixel work (each output pixel from the same pixel of the inputs, or from a halo the
-  /// engine reads itself): a shard of a cluster run may compute its strip of the grid alone.
+  /// engine reads itself, on tiles fixed by the grid, so that a strip of whole tile rows gives
+  /// what the whole grid gives): a shard of a cluster run may compute its strip alone.
   bool splits_by_area = false;
-  /// Whether the step, so configured, couples neighbouring pixels (a halo): its values along a
-  /// strip's edge would depend on where the strip ends, so it is never split.
-  std::function<bool(const StepOptions&)> reads_neighbours;
   /// Merges the shards' copies of one of the step's files other than its rasters (a summary)
   /// into `path`, for a grid of `width` x `height`; false when the file is not one it knows.
   std::function<bool(const std::string& name, const std::vector<std::string>& shard_files,

@@ -209,19 +209,28 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("'ndvi' has 512 rows", line)
         self.assertIn("at most 2 shards", line)
 
-    def test_plan_keeps_coupled_and_whole_area_steps_for_finalize(self):
+    def test_spacetime_shards_equal_one_run(self):
+        # spacetime fills single 256 px tiles with their halo whatever the budget, and shards
+        # take whole 256-row strips, so each tile is filled from the same pixels in a shard as on
+        # one machine: the stitched outputs are the one-machine run's, bit for bit.
         job = os.path.join(self.tmp, "spacetime.toml")
         with open(job, "w") as f:
-            f.write(SMALL_JOB.replace('lambda = "10"', 'method = "spacetime"'))
-        done = kalends("plan", job, "--out", self.out("spacetime"), "--shards", "2")
+            f.write(SMALL_JOB.replace('lambda = "10"', 'method = "spacetime"').replace('"256M"', '"512M"'))
+        single = self.out("spacetime-single")
+        done = kalends("run", job, "--out", single, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("split by rows: (none)", done.stdout)
-        self.assertIn("at --finalize: fill (couples neighbouring pixels", done.stdout)
-        self.assertIn("at --finalize: seasons (reads 'fill', which is computed in --finalize)", done.stdout)
+        out = self.out("spacetime")
+        done = kalends("plan", job, "--out", out, "--shards", "2")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("split by rows: fill, seasons", done.stdout)
         self.assertIn("at --finalize: compare (needs the whole area)", done.stdout)
-        with open(os.path.join(self.out("spacetime"), ".kalends", "plan.tsv")) as f:
-            plan = f.read()
-        self.assertIn("step\tfill\tfill\tfinalize\t", plan)
+        for shard in ("1/2", "2/2"):
+            done = kalends("run", job, "--out", out, "--shard", shard)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        done = kalends("run", job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        n = self.assert_same_outputs(single, out)
+        print("\n  spacetime: %d outputs of 2 shards identical to the single-machine run" % n)
 
     def test_shard_needs_a_plan_and_a_shard_of_it(self):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")

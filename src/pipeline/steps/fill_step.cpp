@@ -150,10 +150,6 @@ StepKind fill_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'fill' step needs 'input'");
   };
-  kind.reads_neighbours = [](const StepOptions& o) {
-    const auto method = o.find("method");
-    return method != o.end() && method->second == "spacetime";
-  };
   kind.merge_file = [](const std::string& name, const std::vector<std::string>& files, const std::string& path,
                        int width, int height) {
     if (name == "fill-years.tsv") merge_years(files, path);
