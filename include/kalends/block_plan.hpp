@@ -32,8 +32,11 @@ struct BlockPlan {
   /// Throws UsageError when not even one tile plus halo fits.
   /// With a `region`, blocks cover only that window of the raster (tiles counted from its
   /// corner), while their read windows still reach into the rest of the raster for the halo.
+  /// `max_tile_rows` > 0 caps a block's height at that many tile rows, so that a strip of
+  /// whole tile rows is planned as the same blocks as the whole raster.
   static BlockPlan make(int width, int height, int halo, std::int64_t max_read_pixels,
-                        int tile = 256, const std::optional<Window>& region = std::nullopt);
+                        int tile = 256, const std::optional<Window>& region = std::nullopt,
+                        int max_tile_rows = 0);
 
   /// The read window of the smallest block `make` can plan: one tile plus halo, clipped to the
   /// raster (its size; x and y 0).

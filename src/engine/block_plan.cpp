@@ -31,7 +31,7 @@ Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile
 }
 
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
-                          const std::optional<Window>& region) {
+                          const std::optional<Window>& region, int max_tile_rows) {
   BlockPlan plan;
   plan.tile = tile;
   if (raster_width <= 0 || raster_height <= 0) return plan;
@@ -51,7 +51,8 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
   int bw = tiles_x * tile, bh = tile;
   if (read_pixels(bw, bh) <= max_read_pixels) {
     int rows = 1;
-    while (rows < tiles_y && read_pixels(bw, (rows + 1) * tile) <= max_read_pixels) ++rows;
+    const int most_rows = max_tile_rows > 0 ? std::min(tiles_y, max_tile_rows) : tiles_y;
+    while (rows < most_rows && read_pixels(bw, (rows + 1) * tile) <= max_read_pixels) ++rows;
     bh = rows * tile;
   } else {
     int cols = 1;

@@ -296,9 +296,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // row where the raster is narrower than a tile and its halo), however large the budget: its
   // values then depend on neither --memory nor the threads nor the rows a cluster shard takes.
   // Larger blocks were no faster (512 x 512 px, 2 threads: 19.1 s in one block, 17.4 s in four).
-  const std::int64_t block_read_pixels = method->halo() > 0 ? smallest_block : share.max_read_pixels;
-  const BlockPlan plan =
-      BlockPlan::make(raster.width, raster.height, method->halo(), block_read_pixels, tile_size, request.region);
+  const bool by_tile = method->halo() > 0;
+  const BlockPlan plan = BlockPlan::make(raster.width, raster.height, method->halo(),
+                                         by_tile ? smallest_block : share.max_read_pixels, tile_size,
+                                         request.region, by_tile ? 1 : 0);
 
   std::vector<std::string> output_paths;
   for (const auto& spec : specs) output_paths.push_back(spec.path);

@@ -102,3 +102,26 @@ TEST_CASE("time grid keeps true spacing and resolves composite-calendar collisio
                                       day(2020, 2, 2), day(2020, 2, 18)});
   CHECK(c.slot_of_date == std::vector<int>{0, 1, 2, 3, 4});
 }
+
+TEST_CASE("blocks capped at one tile row are the same for a strip of tile rows and the whole raster",
+          "[engine][blocks]") {
+  // 300 x 300 px, halo 32: one block reading the whole raster fits the smallest budget (a tile
+  // and its halo clipped to the raster is 300 x 300), so without the cap the plan takes all
+  // rows in one block, and a cluster shard's first strip (rows 0-255) would not be that block.
+  const std::int64_t smallest = BlockPlan::smallest_read_pixels(300, 300, 32);
+  CHECK(smallest == 300 * 300);
+  CHECK(BlockPlan::make(300, 300, 32, smallest).blocks.size() == 1);
+  const BlockPlan whole = BlockPlan::make(300, 300, 32, smallest, 256, std::nullopt, 1);
+  REQUIRE(whole.blocks.size() == 2);
+  CHECK(whole.blocks[0].core == Window{0, 0, 300, 256});
+  CHECK(whole.blocks[0].read == Window{0, 0, 300, 288});
+  CHECK(whole.blocks[1].core == Window{0, 256, 300, 44});
+  CHECK(whole.blocks[1].read == Window{0, 224, 300, 76});
+  for (const Window& strip : {Window{0, 0, 300, 256}, Window{0, 256, 300, 44}}) {
+    const BlockPlan part = BlockPlan::make(300, 300, 32, smallest, 256, strip, 1);
+    REQUIRE(part.blocks.size() == 1);
+    const Block& same = whole.blocks[strip.y == 0 ? 0 : 1];
+    CHECK(part.blocks[0].core == same.core);
+    CHECK(part.blocks[0].read == same.read);
+  }
+}

@@ -210,27 +210,34 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("at most 2 shards", line)
 
     def test_spacetime_shards_equal_one_run(self):
-        # spacetime fills single 256 px tiles with their halo whatever the budget, and shards
-        # take whole 256-row strips, so each tile is filled from the same pixels in a shard as on
-        # one machine: the stitched outputs are the one-machine run's, bit for bit.
-        job = os.path.join(self.tmp, "spacetime.toml")
-        with open(job, "w") as f:
-            f.write(SMALL_JOB.replace('lambda = "10"', 'method = "spacetime"').replace('"256M"', '"512M"'))
-        single = self.out("spacetime-single")
-        done = kalends("run", job, "--out", single, "-q")
-        self.assertEqual(done.returncode, 0, done.stderr)
-        out = self.out("spacetime")
-        done = kalends("plan", job, "--out", out, "--shards", "2")
-        self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("split by rows: fill, seasons", done.stdout)
-        self.assertIn("at --finalize: compare (needs the whole area)", done.stdout)
-        for shard in ("1/2", "2/2"):
-            done = kalends("run", job, "--out", out, "--shard", shard)
+        # spacetime fills one tile row of 256 px at a time with its halo, whatever the budget,
+        # and shards take whole 256-row strips, so each tile is filled from the same pixels in a
+        # shard as on one machine: the stitched outputs are the one-machine run's, bit for bit.
+        # Also for a grid of 300 rows, which one block of tile and halo (320 rows) would hold.
+        short = os.path.join(self.tmp, "short")
+        synth_stack.make_stack(os.path.join(short, "stack", "ndvi"), width=64, height=300, years=2,
+                               qa_dir=os.path.join(short, "stack", "qa"))
+        text = SMALL_JOB.replace('lambda = "10"', 'method = "spacetime"').replace('"256M"', '"512M"')
+        for folder in (self.tmp, short):
+            job = os.path.join(folder, "spacetime.toml")
+            with open(job, "w") as f:
+                f.write(text)
+            single = os.path.join(folder, "spacetime-single")
+            done = kalends("run", job, "--out", single, "-q")
             self.assertEqual(done.returncode, 0, done.stderr)
-        done = kalends("run", job, "--out", out, "--finalize")
-        self.assertEqual(done.returncode, 0, done.stderr)
-        n = self.assert_same_outputs(single, out)
-        print("\n  spacetime: %d outputs of 2 shards identical to the single-machine run" % n)
+            out = os.path.join(folder, "spacetime-sharded")
+            done = kalends("plan", job, "--out", out, "--shards", "2")
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("split by rows: fill, seasons", done.stdout)
+            self.assertIn("at --finalize: compare (needs the whole area)", done.stdout)
+            for shard in ("1/2", "2/2"):
+                done = kalends("run", job, "--out", out, "--shard", shard)
+                self.assertEqual(done.returncode, 0, done.stderr)
+            done = kalends("run", job, "--out", out, "--finalize")
+            self.assertEqual(done.returncode, 0, done.stderr)
+            n = self.assert_same_outputs(single, out)
+            print("\n  spacetime, %s: %d outputs of 2 shards identical to the single-machine run"
+                  % (os.path.basename(folder), n))
 
     def test_shard_needs_a_plan_and_a_shard_of_it(self):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
