@@ -1,5 +1,5 @@
-// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE] [--qa QA --keep RULE] [--subset C,R,W,H]
-// [method options]
+// kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE]
+//                  [--qa QA --keep RULE] [--subset C,R,W,H] [method options]
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
