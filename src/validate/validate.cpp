@@ -186,6 +186,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
     // --methods here, not fill's --method.
     try {
       parameters[m] = make_fill_method(o)->parameters();
+      // The engine's year-by-year filling changes what a method scores, so the report names it.
+      if (o.reach_days > 0) parameters[m]["reach"] = fmt::format("{:g}", o.reach_days);
     } catch (const UsageError& e) {
       if (e.where() != "--method") throw;
       throw UsageError("--methods", e.reason());
