@@ -7,6 +7,8 @@
 #include <cmath>
 #include <cstring>
 #include <filesystem>
+#include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <map>
 
 #include "io/file_glob.hpp"
@@ -198,12 +200,6 @@ std::vector<std::string> subdatasets_of(const std::string& path) {
   return names;
 }
 
-std::string join(const std::vector<std::string>& items) {
-  std::string text;
-  for (const std::string& item : items) text += (text.empty() ? "" : ", ") + item;
-  return text;
-}
-
 std::string band_where(const std::string& path, int band) {
   return path + " band " + std::to_string(band);
 }
@@ -381,7 +377,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         std::string example = variables.front();
         if (const auto at = example.find(file); at != std::string::npos) example.replace(at, file.size(), input);
         throw InputError(file, "holds several variables; read one from every file with a pattern such as '" +
-                                   example + "' (this file's: " + join(variables) + ")");
+                                   example + "' (this file's: " + fmt::format("{}", fmt::join(variables, ", ")) + ")");
       }
       // A file without a date in its name may hold several dates, each band dated by its own
       // metadata (a year of daily bands in one NetCDF or GRIB file): all its bands are read.
@@ -420,7 +416,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       dataset = detail::open_raster(input);
     } catch (const InputError&) {
       if (const std::vector<std::string> variables = subdatasets_of(input); !variables.empty())
-        throw InputError(input, "holds several variables; choose one of: " + join(variables));
+        throw InputError(input, "holds several variables; choose one of: " + fmt::format("{}", fmt::join(variables, ", ")));
       if (!fs::exists(input) && !detail::has_glob_characters(input) && input.find(':') == std::string::npos)
         throw InputError(input, "no such file");
       throw;
