@@ -1,5 +1,7 @@
 // kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE]
 //                  [--qa QA --keep RULE] [--subset C,R,W,H] [method options]
+#include <algorithm>
+
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -59,13 +61,23 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);
+      const auto label = [](const Score& s) { return s.name + (s.baseline ? " (baseline)" : ""); };
+      std::size_t width = 0;
+      for (const Score& s : report.scores) width = std::max(width, label(s).size());
       for (const Score& s : report.scores) {
-        const std::string label = s.name + (s.baseline ? " (baseline)" : "");
-        if (s.covered == 0)
-          fmt::print("  {:<46} no value on any withheld cell\n", label);
-        else
-          fmt::print("  {:<46} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
-                     label, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
+        if (s.covered == 0) {
+          // Say why, as `kalends fill` does: the commonest reason a series was not fitted.
+          std::string why;
+          const auto commonest = std::max_element(
+              s.not_fitted.begin(), s.not_fitted.end(),
+              [](const auto& a, const auto& b) { return a.second < b.second; });
+          if (commonest != s.not_fitted.end())
+            why = fmt::format(" ({} pixels not fitted: {})", commonest->second, commonest->first);
+          fmt::print("  {:<{}} no value on any withheld cell{}\n", label(s), width, why);
+        } else {
+          fmt::print("  {:<{}} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
+                     label(s), width, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
+        }
       }
       fmt::print("  -> {}/report.json, {}/report.md\n", r.out_dir, r.out_dir);
     }

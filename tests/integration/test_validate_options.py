@@ -114,6 +114,23 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertIn("--keep", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "v_bad", "report.json")))
 
+    def test_a_method_that_fills_nothing_says_why(self):
+        # 12 harmonics need 25 coefficients; two years of this stack give no pixel enough
+        # observations, so harmonic scores nothing. The console names the reason, as `kalends
+        # fill` does, and the aligned table still lists the method that did fill.
+        done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--out",
+                               os.path.join(self.tmp, "v_nothing"), "--methods", "harmonic,whittaker",
+                               "--harmonics", "12", "--qa", os.path.join(self.tmp, "stack", "qa", "qa_*.tif"),
+                               "--keep", KEEP, "--seed", "7"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        lines = {line.split()[0]: line for line in done.stdout.splitlines() if line.startswith("  ")}
+        self.assertIn("no value on any withheld cell", lines["harmonic"])
+        self.assertIn("for 25 coefficients", lines["harmonic"])
+        self.assertIn("RMSE", lines["whittaker"])
+        # The figures start in the same column on every row.
+        columns = {line.find(" RMSE ") for line in done.stdout.splitlines() if " RMSE " in line}
+        self.assertEqual(len(columns), 1, done.stdout)
+
 
 if __name__ == "__main__":
     unittest.main()
