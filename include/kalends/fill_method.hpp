@@ -132,6 +132,10 @@ struct MethodOptions {
   // > 0: each calendar year is filled from the dates within this many days of it, so a new
   // date changes only the years it reaches (whittaker, harmonic); 0 = the whole series at once.
   double reach_days = 0;
+  // Pixels with no observation on any date of the stack: a method with a halo (spacetime)
+  // fills them from their neighbours; false leaves them empty (flag 3), for sea, lakes or
+  // the area outside a boundary, which a stack never observes.
+  bool fill_never_observed = true;
   std::optional<double> clamp_min, clamp_max;
 };
 

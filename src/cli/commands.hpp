@@ -76,7 +76,8 @@ void note_month_end_dates(bool dates_at_month_ends, DateMarks marks);
 /// hold what is parsed after the command line is read (numbers or "auto", ranges).
 struct MethodOptionTexts {
   MethodOptionTexts();
-  std::string lambda, space_smoothing, time_smoothing, lambda_range, envelope = "none";
+  std::string lambda, space_smoothing, time_smoothing, lambda_range, envelope = "none",
+      never_observed = "fill";
 };
 void add_method_options(CLI::App* sub, MethodOptions& method, MethodOptionTexts& texts);
 void apply_method_options(MethodOptions& method, const MethodOptionTexts& texts);

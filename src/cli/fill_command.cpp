@@ -164,21 +164,27 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),
                  percent(s.rejected, pd));
-      // A method that looks at neighbours (a halo) fills pixels never observed; with a reach the
-      // run does not count those it could not fill (pixels_without_value < 0).
+      // A method that looks at neighbours (a halo) fills pixels never observed unless told to
+      // leave them; with a reach the run does not count those it could not fill
+      // (pixels_without_value < 0).
       const bool spatial = make_fill_method(r.method)->halo() > 0;
-      if (s.pixels_never_observed > 0 && s.pixels_without_value < 0 && spatial)
+      const std::int64_t never = s.pixels_never_observed;
+      const char* hint = "--never-observed leave keeps such pixels empty (sea, lakes, outside a boundary)";
+      if (never > 0 && spatial && !r.method.fill_never_observed)
+        fmt::print("  {} pixels have no observation on any date: left empty (--never-observed leave; "
+                   "flag 3 throughout)\n", never);
+      else if (never > 0 && s.pixels_without_value < 0 && spatial)
         fmt::print("  {} pixels have no observation on any date (filled from their neighbours where "
-                   "the halo holds observations; flag 3 elsewhere)\n",
-                   s.pixels_never_observed);
-      else if (s.pixels_never_observed > 0 &&
-               (s.pixels_without_value < 0 || s.pixels_never_observed == s.pixels_without_value))
-        fmt::print("  {} pixels have no observation on any date (flag 3 throughout)\n",
-                   s.pixels_never_observed);
-      else if (s.pixels_never_observed > 0)
-        fmt::print("  {} pixels have no observation on any date; {} pixels could not be filled on "
-                   "any date, not even from neighbours (flag 3 throughout)\n",
-                   s.pixels_never_observed, s.pixels_without_value);
+                   "the halo holds observations; flag 3 elsewhere); {}\n", never, hint);
+      else if (never > 0 && (s.pixels_without_value < 0 || never == s.pixels_without_value))
+        fmt::print("  {} pixels have no observation on any date (flag 3 throughout)\n", never);
+      else if (never > 0 && s.pixels_without_value == 0)
+        fmt::print("  {} pixels have no observation on any date, filled from their neighbours; {}\n",
+                   never, hint);
+      else if (never > 0)
+        fmt::print("  {} pixels have no observation on any date, filled from their neighbours except "
+                   "{} with none within the halo (flag 3 throughout); {}\n",
+                   never, s.pixels_without_value, hint);
       for (const auto& [reason, n] : s.series_not_fitted)
         fmt::print("  {} {} not fitted: {}\n", n, r.method.reach_days > 0 ? "pixel-years" : "pixels",
                    reason);

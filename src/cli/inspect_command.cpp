@@ -102,8 +102,12 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     if (!keep.empty())
       fmt::print("  QA        {} of pixel-dates with a value rejected by '{}'\n", percent(rejected, pixels), keep);
     if (rules.valid_min) fmt::print("            {} of pixel-dates outside the valid range\n", percent(outside, pixels));
-    fmt::print("  pixels never observed: {} of {}\n", r.pixels_never_observed,
-               std::int64_t(r.grid.width) * r.grid.height);
+    fmt::print("  pixels never observed: {} of {}{}\n", r.pixels_never_observed,
+               std::int64_t(r.grid.width) * r.grid.height,
+               r.pixels_never_observed > 0
+                   ? " (spacetime fills them from their neighbours; if they are sea or outside a "
+                     "boundary, --never-observed leave keeps them empty)"
+                   : "");
   }
   if (!dates) return;
   fmt::print("\n  {:<16} {:<13} {:>9} {:>9} {:>9} {:>9} {:>9}  {}\n", "date", "from", "observed", "QA out",

@@ -86,6 +86,11 @@ void add_method_options(CLI::App* sub, MethodOptions& m, MethodOptionTexts& t) {
   sub->add_option("--max-extrapolation", m.max_extrapolation_days,
                   "Fill at most this many days before the first or after the last observation; -1 = no limit")
       ->capture_default_str();
+  sub->add_option("--never-observed", t.never_observed,
+                  "Pixels with no observation on any date: fill (spacetime fills them from their "
+                  "neighbours) or leave (empty, flag 3: sea, lakes, outside a boundary)")
+      ->check(CLI::IsMember({"fill", "leave"}))
+      ->capture_default_str();
   sub->add_option("--reach", m.reach_days,
                   "Fill each calendar year from the dates within this many days of it (a new date then "
                   "changes only the years it reaches); 0 = the whole series at once")
@@ -99,6 +104,7 @@ void apply_method_options(MethodOptions& m, const MethodOptionTexts& t) {
   if (!t.lambda_range.empty())
     std::tie(m.lambda_min, m.lambda_max) = parse_range(t.lambda_range, "--lambda-range");
   m.envelope_upper = t.envelope == "upper";
+  m.fill_never_observed = t.never_observed == "fill";
 }
 
 void add_value_rule_options(CLI::App* sub, ValueRules& rules, ValueRuleTexts& t) {

@@ -79,6 +79,7 @@ struct Worker {
   std::vector<std::uint32_t> qa_plane;
   std::vector<float> values, weights;
   std::vector<int> observations, valued;
+  std::vector<std::int64_t> unobserved;  // core pixels with no observation on any date
   BlockOutput out, segment_out;
   std::vector<float> segment_values, segment_weights;
   std::vector<float> value_plane, sd_plane, flag_plane, tile;
@@ -371,9 +372,24 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
                     w.flag_plane.data(), w.tile);
     };
     w.out.resize(std::size_t(core_pixels) * n_slots);
+    // Pixels the whole stack never observes, to be left empty: the method still sees them
+    // (they hold nothing it could use), and its values for them are dropped.
+    w.unobserved.clear();
+    if (!request.method.fill_never_observed)
+      for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
+        const float* weight = &w.weights[read_index(cp) * n_slots];
+        if (std::all_of(weight, weight + n_slots, [](float x) { return x == 0; })) w.unobserved.push_back(cp);
+      }
+    auto leave_unobserved = [&](BlockOutput& out, int stride) {
+      for (std::int64_t cp : w.unobserved) {
+        std::fill_n(out.fitted.begin() + cp * stride, stride, NAN);
+        std::fill_n(out.sd.begin() + cp * stride, stride, NAN);
+      }
+    };
     const auto kernel_start = std::chrono::steady_clock::now();
     if (!(reach > 0)) {
       method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
+      leave_unobserved(w.out, n_slots);
       if (!w.out.chosen.empty()) w.chosen.push_back({block.index, 0, core, w.out.chosen});
       for (const auto& [reason, n] : w.out.not_fitted) w.counters.not_fitted[reason] += n;
     } else {
@@ -389,6 +405,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         }
         w.segment_out.resize(std::size_t(core_pixels) * n);
         method->fill(BlockInput{&seg.grid, read, core, w.segment_values, w.segment_weights}, w.segment_out);
+        leave_unobserved(w.segment_out, n);
         if (!w.segment_out.chosen.empty())
           w.chosen.push_back({block.index, seg.year, core, w.segment_out.chosen});
         for (const auto& [reason, n] : w.segment_out.not_fitted) w.counters.not_fitted[reason] += n;

@@ -107,7 +107,8 @@ MethodParameters SpacetimeMethod::parameters() const {
           {"halo", std::to_string(options_.spacetime_halo)},
           {"neighbour_radius", std::to_string(options_.spacetime_neighbour_radius)},
           {"tolerance", number(options_.spacetime_tolerance)},
-          {"robust", options_.robust ? "yes" : "no"}};
+          {"robust", options_.robust ? "yes" : "no"},
+          {"never_observed", options_.fill_never_observed ? "fill" : "leave"}};
 }
 
 double SpacetimeMethod::season_bin_days(const TimeGrid& grid) {

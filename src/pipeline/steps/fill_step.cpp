@@ -112,6 +112,10 @@ FillRequest fill_request(const StepContext& c) {
   m.max_gap_days = c.number("max_gap", m.max_gap_days);
   m.max_extrapolation_days = c.number("max_extrapolation", m.max_extrapolation_days);
   m.reach_days = c.number("reach", m.reach_days);
+  const std::string never_observed = c.text("never_observed", "fill");
+  if (never_observed != "fill" && never_observed != "leave")
+    throw UsageError("never_observed '" + never_observed + "'", "expected fill or leave");
+  m.fill_never_observed = never_observed == "fill";
   m.spacetime_space_smoothing = c.number_or_auto("space_smoothing", m.spacetime_space_smoothing);
   m.spacetime_time_smoothing = c.number_or_auto("time_smoothing", m.spacetime_time_smoothing);
   m.spacetime_climate_smoothing = c.number("climate_smoothing", m.spacetime_climate_smoothing);
@@ -141,7 +145,7 @@ StepKind fill_step_kind() {
                {"iterations", T::integer}, {"harmonics", T::integer}, {"trend", T::boolean},
                {"reject_below", T::number}, {"smooth", T::boolean}, {"every", T::text},
                {"name", T::text}, {"max_gap", T::number}, {"max_extrapolation", T::number},
-               {"reach", T::number}, {"compress", T::text}, {"keep", T::text},
+               {"reach", T::number}, {"never_observed", T::text}, {"compress", T::text}, {"keep", T::text},
                {"space_smoothing", T::number_or_auto}, {"time_smoothing", T::number_or_auto},
                {"climate_smoothing", T::number}, {"season_smoothing", T::number},
                {"halo", T::integer}, {"tolerance", T::number}, {"neighbour_radius", T::integer},
