@@ -94,6 +94,77 @@ DatasetPtr band_subset(GDALDataset& source, const std::vector<int>& bands, const
   return DatasetPtr(GDALDataset::FromHandle(out));
 }
 
+// How a band is carried to the study grid.
+enum class BandKind {
+  continuous,   // --resample (area-weighted mean by default)
+  classes,      // mode: a class is not averaged
+  flag,         // kalends' flag band: mode over the cells with a value (flags 0-2), else 3
+  day_of_year,  // circular mean: days 360 and 5 average to about 1, not 182
+};
+
+BandKind kind_of(GDALRasterBand& band) {
+  const std::string d = band.GetDescription();
+  if (d == "flag") return BandKind::flag;
+  if (d.size() > 4 && d.ends_with("_doy")) return BandKind::day_of_year;
+  // Counts of seasons, and any band that says what its classes mean (CF's flag_meanings as
+  // GDAL reports it from NetCDF, kalends' CLASS_MEANINGS).
+  if (d == "seasons" || band.GetMetadataItem("CLASS_MEANINGS") || band.GetMetadataItem("FLAG_MEANINGS") ||
+      band.GetMetadataItem("flag_meanings") || band.GetMetadataItem("flag_values"))
+    return BandKind::classes;
+  return BandKind::continuous;
+}
+
+// A one-band in-memory copy of `band` of `in`, each value mapped by `map` (NaN = no data).
+template <class Map>
+DatasetPtr mapped_band(GDALDataset& in, int band, Map map, const std::string& where) {
+  GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+  DatasetPtr out(mem->Create("", in.GetRasterXSize(), in.GetRasterYSize(), 1, GDT_Float32, nullptr));
+  if (!out) throw OutputError(where, "out of memory for a derived band");
+  double gt[6];
+  if (in.GetGeoTransform(gt) == CE_None) out->SetGeoTransform(gt);
+  out->SetProjection(in.GetProjectionRef());
+  GDALRasterBand* from = in.GetRasterBand(band);
+  int has_nodata = 0;
+  const double nodata = from->GetNoDataValue(&has_nodata);
+  std::vector<float> row(std::size_t(in.GetRasterXSize()));
+  for (int y = 0; y < in.GetRasterYSize(); ++y) {
+    if (from->RasterIO(GF_Read, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1, GDT_Float32, 0, 0) != CE_None)
+      throw InputError(where, fmt::format("cannot read band {} ({})", band, detail::gdal_message("?")));
+    for (float& v : row) v = (has_nodata && v == float(nodata)) || std::isnan(v) ? NAN : map(v);
+    if (out->GetRasterBand(1)->RasterIO(GF_Write, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
+                                        GDT_Float32, 0, 0) != CE_None)
+      throw OutputError(where, "out of memory for a derived band");
+  }
+  out->GetRasterBand(1)->SetNoDataValue(NAN);
+  return out;
+}
+
+// A one-band in-memory raster on the grid of `like`, each cell combine(a, b) of two warped bands.
+template <class Combine>
+DatasetPtr combined_band(GDALDataset& like, GDALRasterBand& a, GDALRasterBand& b, Combine combine,
+                         const std::string& where) {
+  const int width = like.GetRasterXSize(), height = like.GetRasterYSize();
+  std::vector<float> pa(std::size_t(width) * height), pb(pa.size());
+  if (a.RasterIO(GF_Read, 0, 0, width, height, pa.data(), width, height, GDT_Float32, 0, 0) != CE_None ||
+      b.RasterIO(GF_Read, 0, 0, width, height, pb.data(), width, height, GDT_Float32, 0, 0) != CE_None)
+    throw OutputError(where, "cannot read the warped bands");
+  for (std::size_t i = 0; i < pa.size(); ++i) pa[i] = combine(pa[i], pb[i]);
+  GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+  DatasetPtr out(mem->Create("", width, height, 1, GDT_Float32, nullptr));
+  double gt[6];
+  like.GetGeoTransform(gt);
+  out->SetGeoTransform(gt);
+  out->SetProjection(like.GetProjectionRef());
+  if (out->GetRasterBand(1)->RasterIO(GF_Write, 0, 0, width, height, pa.data(), width, height, GDT_Float32, 0, 0) !=
+      CE_None)
+    throw OutputError(where, "out of memory for a combined band");
+  out->GetRasterBand(1)->SetNoDataValue(NAN);
+  return out;
+}
+
+constexpr double days_per_year = 365.25;
+constexpr double two_pi = 6.283185307179586;
+
 }  // namespace
 
 const std::vector<std::string>& study_grid_resampling_names() {
@@ -153,60 +224,73 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   for (std::size_t i = 0; i < sources.size(); ++i) {
     GDALDataset& in = *datasets[i];
     const std::string& where = sources[i].path;
-    std::vector<int> continuous, classes;
+    std::vector<int> continuous, classes, days;
     int flag_band = 0;
+    std::map<int, std::string> how;  // input band -> what KALENDS_RESAMPLING says
     for (int b = 1; b <= in.GetRasterCount(); ++b) {
-      const std::string d = in.GetRasterBand(b)->GetDescription();
-      if (d == "flag") {
-        classes.push_back(b);
-        flag_band = b;
-      } else {
-        continuous.push_back(b);
+      switch (kind_of(*in.GetRasterBand(b))) {
+        case BandKind::flag: flag_band = b; break;
+        case BandKind::classes: classes.push_back(b), how[b] = "mode"; break;
+        case BandKind::day_of_year: days.push_back(b), how[b] = "circular mean of the day of year"; break;
+        case BandKind::continuous: continuous.push_back(b), how[b] = request.resample; break;
       }
     }
     // Each group of bands warped with its own resampling, then laid out in the input's order.
     std::vector<std::pair<int, GDALRasterBand*>> placed;  // input band -> warped band
     std::vector<DatasetPtr> keep;
-    auto warp_bands = [&](const std::vector<int>& bands, const std::string& method) {
-      if (bands.empty()) return;
+    GDALDataset* warped_grid = nullptr;  // any warp's output: they all share the study grid
+    auto warp_with = [&](GDALDataset& source, const std::string& method) -> GDALDataset& {
       std::vector<std::string> args = common;
       args.insert(args.end(), {"-r", method});
+      keep.push_back(warp(source, args, where));
+      warped_grid = keep.back().get();
+      return *keep.back();
+    };
+    auto warp_bands = [&](const std::vector<int>& bands, const std::string& method) {
+      if (bands.empty()) return;
       DatasetPtr view = bands.size() == std::size_t(in.GetRasterCount()) ? nullptr : band_subset(in, bands, where);
-      DatasetPtr out = warp(view ? *view : in, args, where);
-      for (std::size_t k = 0; k < bands.size(); ++k) placed.emplace_back(bands[k], out->GetRasterBand(int(k) + 1));
+      GDALDataset& source = view ? *view : in;
       keep.push_back(std::move(view));
-      keep.push_back(std::move(out));
+      GDALDataset& out = warp_with(source, method);
+      for (std::size_t k = 0; k < bands.size(); ++k) placed.emplace_back(bands[k], out.GetRasterBand(int(k) + 1));
     };
     warp_bands(continuous, request.resample);
     warp_bands(classes, "mode");
-    // The share of filled cells: an indicator of the flag band (1 filled, 0 observed, no value
-    // otherwise) averaged like the values.
+    // A day of year as an angle: the mean of its sine and cosine, turned back into a day.
+    for (int b : days) {
+      DatasetPtr sine = mapped_band(in, b, [](float d) { return float(std::sin(two_pi * (d - 1) / days_per_year)); }, where);
+      DatasetPtr cosine = mapped_band(in, b, [](float d) { return float(std::cos(two_pi * (d - 1) / days_per_year)); }, where);
+      GDALDataset& s = warp_with(*sine, "average");
+      GDALDataset& c = warp_with(*cosine, "average");
+      keep.push_back(combined_band(s, *s.GetRasterBand(1), *c.GetRasterBand(1), [](float y, float x) {
+        if (std::isnan(y) || std::isnan(x)) return NAN;
+        const double angle = std::atan2(double(y), double(x));
+        return float(1 + days_per_year * (angle < 0 ? angle + two_pi : angle) / two_pi);
+      }, where));
+      placed.emplace_back(b, keep.back()->GetRasterBand(1));
+    }
+    // The flag: the mode among the cells with a value, so that a study cell with a value never
+    // says "could not be filled"; 3 where no cell has a value (the mode of all cells is then 3).
     DatasetPtr indicator;
     GDALRasterBand* share = nullptr;
     if (flag_band) {
-      GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
-      indicator.reset(mem->Create("", in.GetRasterXSize(), in.GetRasterYSize(), 1, GDT_Float32, nullptr));
-      double gt[6];
-      if (in.GetGeoTransform(gt) == CE_None) indicator->SetGeoTransform(gt);
-      indicator->SetProjection(in.GetProjectionRef());
-      std::vector<float> row(std::size_t(in.GetRasterXSize()));
-      for (int y = 0; y < in.GetRasterYSize(); ++y) {
-        if (in.GetRasterBand(flag_band)->RasterIO(GF_Read, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
-                                                  GDT_Float32, 0, 0) != CE_None)
-          throw InputError(where, "cannot read the flag band (" + detail::gdal_message("?") + ")");
-        for (float& f : row) f = (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN;
-        if (indicator->GetRasterBand(1)->RasterIO(GF_Write, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
-                                                  GDT_Float32, 0, 0) != CE_None)
-          throw OutputError(where, "out of memory for the filled share");
-      }
-      indicator->GetRasterBand(1)->SetNoDataValue(NAN);
-      std::vector<std::string> args = common;
-      args.insert(args.end(), {"-r", "average"});
-      keep.push_back(warp(*indicator, args, where));
-      share = keep.back()->GetRasterBand(1);
+      how[flag_band] = "mode of the cells with a value (flags 0-2); 3 where none has one";
+      DatasetPtr valued = mapped_band(in, flag_band, [](float f) { return f <= 2 ? f : NAN; }, where);
+      DatasetPtr all = mapped_band(in, flag_band, [](float f) { return f; }, where);
+      GDALDataset& valued_mode = warp_with(*valued, "mode");
+      GDALDataset& all_mode = warp_with(*all, "mode");
+      keep.push_back(combined_band(valued_mode, *valued_mode.GetRasterBand(1), *all_mode.GetRasterBand(1),
+                                   [](float with_value, float any) { return std::isnan(with_value) ? any : with_value; },
+                                   where));
+      placed.emplace_back(flag_band, keep.back()->GetRasterBand(1));
+      // The share of filled cells: an indicator of the flag band (1 filled, 0 observed, no
+      // value otherwise) averaged like the values.
+      indicator = mapped_band(in, flag_band, [](float f) { return (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN; },
+                              where);
+      share = warp_with(*indicator, "average").GetRasterBand(1);
     }
     std::sort(placed.begin(), placed.end(), [](const auto& a, const auto& b) { return a.first < b.first; });
-    GDALDataset& first = *keep.back();
+    GDALDataset& first = *warped_grid;
     const int width = first.GetRasterXSize(), height = first.GetRasterYSize();
     const int bands = int(placed.size()) + (share ? 1 : 0);
     GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
@@ -232,9 +316,11 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     int to = 1;
     for (const auto& [from_band, warped] : placed) {
       GDALRasterBand* src = in.GetRasterBand(from_band);
-      const bool is_class = std::find(classes.begin(), classes.end(), from_band) != classes.end();
-      copy_band(warped, to++, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "",
-                is_class ? "mode" : request.resample);
+      copy_band(warped, to, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "", how[from_band]);
+      // What the band's classes mean (CLASS_MEANINGS, FLAG_MEANINGS) travels with it.
+      for (const char* item : {"CLASS_MEANINGS", "FLAG_MEANINGS"})
+        if (const char* text = src->GetMetadataItem(item)) result->GetRasterBand(to)->SetMetadataItem(item, text);
+      ++to;
     }
     if (share) copy_band(share, to++, "filled_share", "1", "average of (flag 1 or 2) over cells with a value");
     result->SetMetadataItem("KALENDS_GRID_CRS", request.crs.c_str());
@@ -251,7 +337,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     cog.SetNameValue("PREDICTOR", "YES");
     cog.SetNameValue("OVERVIEWS", "AUTO");
     // One overview resampling serves every band: nearest where a class band would be averaged.
-    cog.SetNameValue("RESAMPLING", classes.empty() ? "AVERAGE" : "NEAREST");
+    cog.SetNameValue("RESAMPLING", classes.empty() && days.empty() && !flag_band ? "AVERAGE" : "NEAREST");
     GDALDriver* driver = GetGDALDriverManager()->GetDriverByName("COG");
     if (!driver) throw OutputError(target.string(), "GDAL has no COG driver");
     CPLErrorReset();
