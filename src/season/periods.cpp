@@ -83,6 +83,20 @@ std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
   if (n == 0) return sources;
   std::vector<std::int64_t> day(n);
   for (std::size_t i = 0; i < n; ++i) day[i] = std::int64_t(std::floor(dates[i].days()));
+  // Sub-daily records (two on one day: hourly temperature) are instants, not composites: each
+  // counts once, equally, in the period holding it. Spans of whole days would give a day to its
+  // last record alone.
+  bool sub_daily = false;
+  for (std::size_t i = 1; i < n; ++i) sub_daily = sub_daily || day[i] == day[i - 1];
+  if (sub_daily) {
+    for (std::size_t i = 0; i < n; ++i)
+      for (std::size_t p = 0; p < periods.size(); ++p)
+        if (day[i] >= periods[p].first_day && day[i] < periods[p].first_day + periods[p].days) {
+          sources[p].composite.push_back(int(i));
+          sources[p].days.push_back(1.0);
+        }
+    return sources;
+  }
   const auto spans = composite_spans(day, median_spacing(day, 1), marks);
   for (std::size_t i = 0; i < n; ++i) {
     const auto [first, last] = spans[i];  // the days [first, last) the composite stands for

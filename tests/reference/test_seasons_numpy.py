@@ -281,6 +281,27 @@ class RealData(kt.TempDirTestCase):
         np.testing.assert_array_equal(month_of_max, np.argmax(tas[:, land], axis=0))
         self.assertTrue(np.all(np.isnan(data[names.index("amplitude")][~land])))
 
+    def test_hourly_grib_month_is_the_mean_of_every_hour(self):
+        # ERA5 2 m temperature, 744 hourly records of March 2019 (Hersbach et al. 2020; the
+        # shared data README): each record is an instant and counts once, so March is the
+        # plain mean of all 744 hours (numpy). Before version 0.3.10 a day stood for its last
+        # record alone (23 UTC), up to 1.49 K away.
+        path = kt.shared_path("hourly-temperature", "era5-2mt-2019-03-uk.grib")
+        g = kt.gdal()
+        g.SetConfigOption("GRIB_NORMALIZE_UNITS", "NO")   # kelvin as stored, as kalends reads it
+        try:
+            hours = g.Open(path).ReadAsArray().astype(np.float64)
+        finally:
+            g.SetConfigOption("GRIB_NORMALIZE_UNITS", None)
+        self.assertEqual(hours.shape[0], 744)
+        out = os.path.join(self.tmp, "hourly")
+        done = kt.run_kalends(["-q", "seasons", path, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        year = g.Open(os.path.join(out, "era5-2mt-2019-03-uk_year_2019.tif")).ReadAsArray().astype(np.float64)
+        np.testing.assert_allclose(year[2], hours.mean(axis=0), atol=1e-3)
+        self.assertGreater(np.abs(year[2] - hours[23::24].mean(axis=0)).max(), 0.1)
+        self.assertTrue(np.all(np.isnan(year[[0, 1, 3]])))   # no record in February or April
+
     def test_ndvi_and_evi_from_landsat_equal_numpy(self):
         path = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
         g = kt.gdal()
