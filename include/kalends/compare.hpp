@@ -2,6 +2,7 @@
 #pragma once
 
 #include <string>
+#include <vector>
 
 namespace kalends {
 
@@ -16,7 +17,9 @@ struct CompareRequest {
 struct CompareSummary {
   std::string json_path, markdown_path, class_path;
   double median_rmse = 0, median_explained = 0;
-  std::string year_most_below, year_most_above;  // most pixel-periods beyond -1 / +1 sd
+  std::string year_most_below, year_most_above;  // most pixel-periods beyond -1 / +1 sd; "" if none
+  std::string synoptic_years;                    // the synoptic's KALENDS_YEARS, e.g. 2004-2009
+  std::vector<int> stale_years;  // anomaly files outside the synoptic's years, left out
 };
 
 CompareSummary run_compare(const CompareRequest& request);

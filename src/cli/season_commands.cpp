@@ -1,5 +1,6 @@
 // kalends index, kalends seasons, kalends compare
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 
 #include <cstdio>
 
@@ -112,6 +113,11 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--top", r->top, "How many of the largest anomalies to list")->capture_default_str();
   return [r, &global] {
     const CompareSummary s = run_compare(*r);
+    if (!s.stale_years.empty())
+      std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): an earlier "
+                           "`kalends seasons` run left them there\n",
+                   r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.stale_years, ", ")).c_str(),
+                   s.synoptic_years.c_str());
     if (!global.quiet)
       fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; most pixel-periods "
                  "below -1 sd in {}, above +1 sd in {}\n  {}\n  {}\n  {}\n",

@@ -11,13 +11,16 @@
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <map>
+#include <optional>
 #include <regex>
 
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
+#include "kalends/season.hpp"
 #include "kalends/stack.hpp"
 
 namespace kalends {
@@ -84,6 +87,8 @@ CompareSummary run_compare(const CompareRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!fs::is_directory(request.seasons_dir))
     throw InputError(request.seasons_dir, "is not a folder of `kalends seasons` outputs");
+  if (request.top < 0) throw UsageError("--top", "must be 0 or more");
+  CompareSummary summary;
   std::string name = request.name;
   if (name.empty()) {
     std::vector<std::string> names;
@@ -103,6 +108,17 @@ CompareSummary run_compare(const CompareRequest& request) {
   const std::vector<float> rmse = read_band(*miss, 1, miss_path);
   const std::vector<float> explained = read_band(*miss, 2, miss_path);
   const std::vector<float> year_share = read_band(*miss, 3, miss_path);
+  // The years the synoptic was made from: year files outside them were left by an earlier
+  // `kalends seasons` run into the same folder and are anomalies from another synoptic.
+  std::optional<std::pair<int, int>> synoptic_years;
+  if (const char* years = miss->GetMetadataItem("KALENDS_YEARS")) {
+    try {
+      synoptic_years = parse_years(years);
+      summary.synoptic_years = years;
+    } catch (const UsageError&) {
+      throw InputError(miss_path, fmt::format("KALENDS_YEARS '{}' is not YYYY-YYYY", years));
+    }
+  }
   Grid grid;
   grid.width = width;
   grid.height = height;
@@ -154,9 +170,15 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const auto& entry : fs::directory_iterator(request.seasons_dir)) {
     std::smatch m;
     const std::string f = entry.path().filename().string();
-    if (std::regex_match(f, m, year_file)) anomaly_files.emplace_back(std::stoi(m[1]), entry.path().string());
+    if (!std::regex_match(f, m, year_file)) continue;
+    const int year = std::stoi(m[1]);
+    if (synoptic_years && (year < synoptic_years->first || year > synoptic_years->second))
+      summary.stale_years.push_back(year);
+    else
+      anomaly_files.emplace_back(year, entry.path().string());
   }
   std::sort(anomaly_files.begin(), anomaly_files.end());
+  std::sort(summary.stale_years.begin(), summary.stale_years.end());
   for (const auto& [year, path] : anomaly_files) {
     GDALDatasetUniquePtr ds = detail::open_raster(path);
     const std::string raw_path = (fs::path(request.seasons_dir) / fmt::format("{}_anomaly_{}.tif", name, year)).string();
@@ -186,7 +208,6 @@ CompareSummary run_compare(const CompareRequest& request) {
   std::error_code ec;
   fs::create_directories(request.out_dir, ec);
   if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
-  CompareSummary summary;
   summary.class_path = (fs::path(request.out_dir) / (name + "_year_specific_class.tif")).string();
   {
     detail::OutputSpec spec;
@@ -216,6 +237,9 @@ CompareSummary run_compare(const CompareRequest& request) {
   summary.median_explained = e.quantiles[2];
   std::string json = "{\n";
   json += fmt::format("  \"layers\": \"{}\",\n  \"width\": {},\n  \"height\": {},\n", name, width, height);
+  json += fmt::format("  \"synoptic_years\": {},\n  \"stale_years_left_out\": [{}],\n",
+                      summary.synoptic_years.empty() ? "null" : "\"" + summary.synoptic_years + "\"",
+                      fmt::join(summary.stale_years, ", "));
   json += "  \"synoptic_rmse\": " + distribution_json(r) + ",\n";
   json += "  \"explained_share\": " + distribution_json(e) + ",\n";
   json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [", detail::json_number(top_edge / bins));
@@ -237,8 +261,9 @@ CompareSummary run_compare(const CompareRequest& request) {
                         detail::json_number(s.count ? double(s.above) / s.count : NAN));
     first = false;
     const double below = s.count ? double(s.below) / s.count : 0, above = s.count ? double(s.above) / s.count : 0;
-    if (below > most_below) most_below = below, summary.year_most_below = std::to_string(year);
-    if (above > most_above) most_above = above, summary.year_most_above = std::to_string(year);
+    // A year is named only where some pixel-period lies beyond 1 sd (none can with two years).
+    if (below > std::max(most_below, 0.0)) most_below = below, summary.year_most_below = std::to_string(year);
+    if (above > std::max(most_above, 0.0)) most_above = above, summary.year_most_above = std::to_string(year);
   }
   json += "],\n  \"largest_anomalies\": [";
   for (std::size_t i = 0; i < top.size(); ++i)
@@ -260,6 +285,10 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const auto& [label, d] : {std::pair{"synoptic RMSE", r}, std::pair{"explained share", e}})
     md += fmt::format("| {} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} |\n", label, d.mean, d.quantiles[0],
                       d.quantiles[1], d.quantiles[2], d.quantiles[3], d.quantiles[4]);
+  if (!summary.stale_years.empty())
+    md += fmt::format("\nLeft out: the anomaly files of {}, outside the synoptic's years ({}), left in the folder by "
+                      "an earlier `kalends seasons` run.\n",
+                      fmt::join(summary.stale_years, ", "), summary.synoptic_years);
   md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
   for (const auto& [year, s] : per_year)
     md += fmt::format("| {} | {:+.4f} | {:.1f} % | {:.1f} % |\n", year, s.count ? s.sum / double(s.count) : NAN,

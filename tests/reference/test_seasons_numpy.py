@@ -281,6 +281,39 @@ class RealData(kt.TempDirTestCase):
         np.testing.assert_array_equal(month_of_max, np.argmax(tas[:, land], axis=0))
         self.assertTrue(np.all(np.isnan(data[names.index("amplitude")][~land])))
 
+    def test_compare_leaves_out_year_files_of_an_earlier_run(self):
+        # Real MODIS NDVI (alaska-ndvi/observed, 2004-2009). A second `seasons` run into the same
+        # folder with --years 2006-2007 leaves the first run's 2004, 2005, 2008 and 2009 anomaly
+        # files, made against another synoptic; compare must use 2006 and 2007 only, and with two
+        # years no standardised anomaly can pass 1 sd ((n - 1)/sqrt(n) = 0.71), so no year is
+        # named as most below or above.
+        g = kt.gdal()
+        stack = os.path.join(kt.shared_path("alaska-ndvi", "observed"), "*.tif")
+        out = os.path.join(self.tmp, "ak")
+        for extra in ([], ["--years", "2006-2007"]):
+            done = kt.run_kalends(["-q", "seasons", stack, "--out", out, "--period", "16d"] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertTrue(os.path.exists(os.path.join(out, "ndvi_anomaly_standardised_2004.tif")))
+        compare = os.path.join(self.tmp, "akc")
+        done = kt.run_kalends(["compare", out, "--out", compare])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2004, 2005, 2008, 2009", done.stderr)
+        with open(os.path.join(compare, "compare.json")) as f:
+            report = json.load(f)
+        self.assertEqual(report["synoptic_years"], "2006-2007")
+        self.assertEqual(report["stale_years_left_out"], [2004, 2005, 2008, 2009])
+        self.assertEqual([y["year"] for y in report["years"]], [2006, 2007])
+        for entry in report["years"]:
+            raw = g.Open(os.path.join(out, "ndvi_anomaly_%d.tif" % entry["year"])).ReadAsArray().astype(np.float64)
+            self.assertAlmostEqual(entry["mean_anomaly"], float(np.nanmean(raw)), places=6)
+            self.assertEqual(entry["share_below_minus_1_sd"], 0)
+        self.assertIsNone(report["year_most_below"])
+        self.assertIsNone(report["year_most_above"])
+        # A negative --top is refused.
+        done = kt.run_kalends(["compare", out, "--out", compare, "--top", "-3"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--top", done.stderr)
+
     def test_hourly_grib_month_is_the_mean_of_every_hour(self):
         # ERA5 2 m temperature, 744 hourly records of March 2019 (Hersbach et al. 2020; the
         # shared data README): each record is an instant and counts once, so March is the
