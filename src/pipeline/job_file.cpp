@@ -10,6 +10,7 @@
 #include <set>
 
 #include "kalends/error.hpp"
+#include "kalends/fill.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
@@ -157,7 +158,15 @@ Job read_job(const std::string& path) {
         job.threads = std::stoi(checked_text(path, k, node, Type::integer));
         if (job.threads < 0) fail(path, node.source(), "'threads' must be 0 (all cores) or more");
       }
-      else if (k == "memory") job.memory = checked_text(path, k, node, Type::text);
+      else if (k == "memory") {
+        job.memory = checked_text(path, k, node, Type::text);
+        // Checked here, so that --dry-run and `kalends plan` catch it, naming the line.
+        try {
+          parse_memory_size(job.memory);
+        } catch (const UsageError& e) {
+          fail(path, node.source(), "'memory' = '" + job.memory + "': " + e.reason());
+        }
+      }
       else fail(path, key.source(), "unknown key '" + k + "' in [job] (name, out, threads, memory)");
     }
   } else if (root.contains("job")) {
@@ -183,6 +192,9 @@ Job read_job(const std::string& path) {
           const std::string pair = checked_text(path, k, value, Type::pair);
           input.valid_min = std::stod(pair.substr(0, pair.find(',')));
           input.valid_max = std::stod(pair.substr(pair.find(',') + 1));
+          if (!(*input.valid_min < *input.valid_max))
+            fail(path, value.source(), fmt::format("'valid_range' = [{:g}, {:g}]: the minimum must be below the maximum",
+                                                   *input.valid_min, *input.valid_max));
         } else {
           fail(path, key.source(),
                "unknown key '" + k + "' in [inputs." + input.name +

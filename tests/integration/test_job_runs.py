@@ -167,6 +167,9 @@ class JobFile(kt.TempDirTestCase):
              lines.index('do = "seasons"') + 3, ["'period' 'fortnight'"]),
             (good.replace('every = "1M"', 'every = "1M"\ncompress = "zip"'), lines.index('every = "1M"') + 2,
              ["'compress'", "'zip'"]),
+            (good.replace('memory = "256M"', 'memory = "lots"'), 5, ["'memory' = 'lots'", "512M or 2G"]),
+            (good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [1.0, -0.2]'),
+             lines.index('valid_range = [-0.2, 1.0]') + 1, ["'valid_range' = [1, -0.2]", "below the maximum"]),
         ]
         n = len(lines)
         grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'
