@@ -14,6 +14,7 @@
 #include <ogr_spatialref.h>
 
 #include <algorithm>
+#include <filesystem>
 #include <cmath>
 #include <map>
 #include <memory>
@@ -339,6 +340,8 @@ void check_extract_options(const ExtractRequest& request) {
   if (!(request.buffer_metres >= 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
   for (int lag : request.lags)
     if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
+  if (!request.out.empty() && std::filesystem::is_directory(request.out))
+    throw UsageError("--out '" + request.out + "'", "is a folder; give the table's file name, e.g. table.csv");
 }
 
 ExtractResult run_extract(const ExtractRequest& request) {

@@ -159,8 +159,12 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--lags", "1.5"], "--lags '1.5': expected a whole number"),
                                 (["--lags", "0"], "--lags"),
                                 (["--layers", "b1,"], "--layers 'b1,': an empty item"),
-                                (["--buffer", "nan"], "--buffer: the radius must be positive")):
-            done = kt.run_kalends(base + extra)
+                                (["--buffer", "nan"], "--buffer: the radius must be positive"),
+                                (["--out", self.tmp], "is a folder; give the table's file name")):
+            command = base + extra
+            if extra[0] == "--out":  # the folder replaces the table's name
+                command = [a for i, a in enumerate(base) if a != "--out" and (i == 0 or base[i - 1] != "--out")] + extra
+            done = kt.run_kalends(command)
             self.assertEqual(done.returncode, 2, extra)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
             self.assertIn(expected, done.stderr)
