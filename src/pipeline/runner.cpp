@@ -180,6 +180,7 @@ class Runner {
     FolderLock lock(state_dir.string(), options_.wait_for_lock);
     db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
     memory_ = job_.memory;
+    if (options_.skip_bad) leave_out_known_bad_inputs();
     if (options_.finalize && !shards_ready()) {
       report_.exit_code = 4;
       report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
@@ -243,6 +244,26 @@ class Runner {
     return report_;
   }
 
+  // Inputs the last run left out as bad and that have not changed since (same size and
+  // modification time as then) are left out again without being read: otherwise every run
+  // and status would find "inputs changed" in the file that is not used. Returns them as
+  // "path: reason".
+  std::vector<std::string> leave_out_known_bad_inputs() {
+    std::vector<std::string> left_out;
+    if (!db_) return left_out;
+    for (const auto& [path, reason] : db_->skipped()) {
+      struct stat st {};
+      const auto known = db_->input(path);
+      if (!known || ::stat(path.c_str(), &st) != 0 || known->size != st.st_size ||
+          known->mtime_ns != std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec)
+        continue;
+      excluded_.push_back(path);
+      left_out.push_back(path + ": " + reason);
+      report_.skipped_inputs.push_back(left_out.back());
+    }
+    return left_out;
+  }
+
   std::vector<StepStatus> status() {
     job_ = detail::read_job(options_.job_file);
     out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
@@ -250,6 +271,9 @@ class Runner {
     const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
     if (fs::exists(state)) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
     std::vector<StepStatus> list;
+    // Steps are judged as the nightly --skip-bad run will see them: without the bad files it
+    // left out, while those are unchanged. Each is listed after the steps.
+    const std::vector<std::string> left_out = leave_out_known_bad_inputs();
     for (const JobStep& step : job_.steps) {
       StepStatus s;
       s.id = step.id;
@@ -282,6 +306,9 @@ class Runner {
       }
       list.push_back(s);
     }
+    for (const std::string& input : left_out)
+      list.push_back({"input", "bad", "left out",
+                      input + " (unchanged since the run that found it; a run without --skip-bad stops on it)"});
     // A cluster run's shards, after the steps: what each still lacks before --finalize.
     if (detail::planned_shard_count(out_) > 0) {
       try {

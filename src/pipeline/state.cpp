@@ -199,6 +199,13 @@ void StateDatabase::step_failed(const std::string& id, const std::string& kind, 
   s.step();
 }
 
+std::vector<std::pair<std::string, std::string>> StateDatabase::skipped() const {
+  std::vector<std::pair<std::string, std::string>> list;
+  Statement s(db_, "SELECT path, reason FROM skipped ORDER BY path", path_);
+  while (s.step()) list.emplace_back(s.text(0), s.text(1));
+  return list;
+}
+
 void StateDatabase::remember_skipped(const std::vector<std::string>& skipped) {
   exec("BEGIN IMMEDIATE");
   try {

@@ -41,6 +41,8 @@ class StateDatabase {
   void step_done(const StepRecord& record);
   void step_failed(const std::string& id, const std::string& kind, const std::string& message);
   void remember_skipped(const std::vector<std::string>& skipped);
+  /// The inputs the last run left out as bad (--skip-bad): path and reason.
+  std::vector<std::pair<std::string, std::string>> skipped() const;
 
  private:
   void exec(const std::string& sql) const;

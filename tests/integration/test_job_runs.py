@@ -534,6 +534,18 @@ class BadInput(kt.TempDirTestCase):
                 rows = db.execute("SELECT path FROM skipped").fetchall()
                 db.close()
                 self.assertIn(culprit, [r[0] for r in rows])
+                # While the bad file is unchanged, status and the next nightly run see every
+                # step done (not "its inputs changed"), and still name the file.
+                skip = os.path.join(self.tmp, "skip")
+                status = kt.run_kalends(["status", self.job, "--out", skip])
+                self.assertEqual(status.returncode, 0, status.stderr)
+                steps = [l for l in status.stdout.splitlines() if not l.startswith("input ")]
+                self.assertTrue(steps and all(" done " in l for l in steps), status.stdout)
+                self.assertIn(os.path.basename(culprit), status.stdout)
+                again = run(self.job, "--skip-bad", "--out", skip)
+                self.assertEqual(again.returncode, 3, again.stdout + again.stderr)
+                self.assertNotIn(" ran ", again.stdout)
+                self.assertIn(os.path.basename(culprit), again.stdout)
         finally:
             shutil.rmtree(stack)
             shutil.copytree(backup, stack)
