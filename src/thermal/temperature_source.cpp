@@ -262,15 +262,25 @@ const DiurnalDay& PixelDays::tomorrow(std::size_t i) const {
 
 double PixelDays::at(std::size_t i, double local_hour) const {
   if (!has(i)) return NAN;
-  std::size_t day = i;
+  const DiurnalDay& today = days_[i];
   if (local_hour < 0) {
-    local_hour += 24;
-    if (&yesterday(i) != &days_[i]) day = i - 1;
-  } else if (local_hour >= 24) {
-    local_hour -= 24;
-    if (&tomorrow(i) != &days_[i]) day = i + 1;
+    if (&yesterday(i) != &today)
+      return diurnal_temperature(parameters_, yesterday(i - 1), days_[i - 1], today,
+                                 local_hour + 24);
+    // No previous day (first date, gap): it is taken as a copy of today, so its evening
+    // falls from today's own sunset value to today's minimum, as today's own morning does.
+    // Today's evening instead would decay toward tomorrow's minimum and jump at dawn.
+    return diurnal_temperature(parameters_, today, today, today, local_hour + 24);
   }
-  return diurnal_temperature(parameters_, yesterday(day), days_[day], tomorrow(day), local_hour);
+  if (local_hour >= 24) {
+    if (&tomorrow(i) != &today)
+      return diurnal_temperature(parameters_, today, days_[i + 1], tomorrow(i + 1),
+                                 local_hour - 24);
+    // No next day (last date, gap): a copy of today, its morning the night after today's
+    // sunset, not the night before today.
+    return diurnal_temperature(parameters_, today, today, today, local_hour - 24);
+  }
+  return diurnal_temperature(parameters_, yesterday(i), today, tomorrow(i), local_hour);
 }
 
 double PixelDays::daily_mean(std::size_t i, const ThermalModel& model) const {

@@ -98,6 +98,8 @@ class PixelDays {
   void build(const TemperatureBlock& block, std::int64_t pixel, double latitude, std::size_t first,
              std::size_t last);
   /// Temperature at `local_hour` (may be below 0 or past 24: the neighbouring day) of date i.
+  /// A neighbouring day missing from the input (before the first date, after the last, in a
+  /// gap) is taken as a copy of day i, as its own night is (docs/methods.md).
   double at(std::size_t i, double local_hour) const;
   bool has(std::size_t i) const { return std::isfinite(days_[i].tmin); }
   /// Mean of the thermal model over 24 hourly midpoints (local solar time) of date i.

@@ -78,16 +78,21 @@ class DiurnalEra5(kt.TempDirTestCase):
         sun = [tn.sun(lat, doy[d]) for d in range(31)]
         out = np.empty((31, 24, rows, cols))
 
-        def at(k, t):
-            y, n = max(k - 1, 0), min(k + 1, 30)
+        def at(k, t, y=None, n=None):
+            # Day k with the previous night from day y and the coming night toward day n:
+            # by default its neighbours, or itself at the ends of the month (docs/methods.md).
+            y = max(k - 1, 0) if y is None else y
+            n = min(k + 1, 30) if n is None else n
             return tn.parton_logan(t, self.tmin[k], self.tmax[k], sun[k][0], sun[k][2], self.tmin[y], self.tmax[y],
                                    sun[y][0], sun[y][2], self.tmin[n], sun[n][0], params)
 
         for d in range(31):
             for h in range(24):
                 t = h + lon / 15.0
-                # A UTC hour may fall on the previous local day (west of Greenwich).
-                prev = at(max(d - 1, 0), t + 24) if d > 0 else at(0, t + 24)
+                # A UTC hour may fall on the previous local day (west of Greenwich). Before 1
+                # March that day is missing and taken as 1 March itself: its night falls from
+                # 1 March's own sunset value to 1 March's minimum.
+                prev = at(d - 1, t + 24) if d > 0 else at(0, t + 24, y=0, n=0)
                 out[d, h] = np.where(t < 0, prev, at(d, np.clip(t, 0, 24)))
         return out
 
