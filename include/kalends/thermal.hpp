@@ -32,8 +32,9 @@ class ThermalParameters {
   static ThermalParameters defaults();
 
   /// Overrides entries from a TOML file: `[section]` tables of `key = number` or
-  /// `key = [numbers]`. Unknown sections or keys and wrong value counts raise InputError
-  /// naming the file and the key; nothing is changed then.
+  /// `key = [numbers]`. Unknown sections or keys, wrong value counts, diurnal a, b, c outside
+  /// their ranges and window limits not in order raise InputError naming the file and the
+  /// key; nothing is changed then.
   void override_from_file(const std::string& path);
 
   const std::vector<double>& values(std::string_view section, std::string_view key) const;
@@ -72,6 +73,17 @@ struct DiurnalParameters {
   double a = 1.86, b = 2.20, c = -0.17;
   static DiurnalParameters from(const ThermalParameters& table);
 };
+
+/// The range of one diurnal parameter: where --calibrate searches, and all a parameter file
+/// may set. Outside them the curve stops being a day and a night: a < 0 shortens the sine's
+/// half period Y + 2a, so the day oscillates; b < 0 turns the night's decay into a late
+/// plunge toward dawn.
+struct ParameterRange {
+  double low, high;
+  bool contains(double v) const { return v >= low && v <= high; }
+};
+inline constexpr ParameterRange diurnal_a_range{0.0, 6.0}, diurnal_b_range{0.01, 20.0},
+    diurnal_c_range{-3.0, 3.0};
 
 /// One local solar day: its extremes and its sun.
 struct DiurnalDay {

@@ -201,10 +201,11 @@ double sum_of_squares(const std::vector<double>& r) {
   return s;
 }
 
-// Plausible bounds for the search (hours, dimensionless, hours): keep the sine's half period
-// and the night positive.
+// The search stays within the ranges a parameter file may set (thermal.hpp).
 Eigen::Vector3d clamp_parameters(const Eigen::Vector3d& x) {
-  return {std::clamp(x[0], 0.0, 6.0), std::clamp(x[1], 0.01, 20.0), std::clamp(x[2], -3.0, 3.0)};
+  return {std::clamp(x[0], diurnal_a_range.low, diurnal_a_range.high),
+          std::clamp(x[1], diurnal_b_range.low, diurnal_b_range.high),
+          std::clamp(x[2], diurnal_c_range.low, diurnal_c_range.high)};
 }
 
 DiurnalParameters as_parameters(const Eigen::Vector3d& x) { return {x[0], x[1], x[2]}; }

@@ -158,6 +158,31 @@ void ThermalParameters::set(std::string_view section, std::string_view key,
   e.source = std::move(source);
 }
 
+namespace {
+
+// Values a model cannot use, found where they are read so that the error names the file and
+// the key rather than an option the user did not give.
+void check_range(const std::string& path, const ThermalParameter& entry,
+                 const std::vector<double>& values) {
+  const std::string where = entry.section + "." + entry.key;
+  if (entry.section == "diurnal") {
+    const ParameterRange range = entry.key == "a"   ? diurnal_a_range
+                                 : entry.key == "b" ? diurnal_b_range
+                                                    : diurnal_c_range;
+    if (!range.contains(values[0]))
+      throw InputError(
+          path,
+          fmt::format("'{}' = {:g} is outside {:g}..{:g} ({}; the range --calibrate searches)",
+                      where, values[0], range.low, range.high, entry.meaning));
+  } else if (entry.section == "window" && !(values[0] < values[1])) {
+    throw InputError(path, fmt::format("'{}' = [{:g}, {:g}]: the low limit must be below the "
+                                       "high limit",
+                                       where, values[0], values[1]));
+  }
+}
+
+}  // namespace
+
 void ThermalParameters::override_from_file(const std::string& path) {
   toml::table file;
   try {
@@ -192,6 +217,7 @@ void ThermalParameters::override_from_file(const std::string& path) {
       if (numbers.size() != entry->values.size())
         throw InputError(path, fmt::format("'{}' expects {} value(s), found {}", where,
                                            entry->values.size(), numbers.size()));
+      check_range(path, *entry, numbers);
       entry->values = std::move(numbers);
       entry->source = "overridden by " + path;
     }

@@ -212,6 +212,32 @@ class BadInput(kt.TempDirTestCase):
                              "--parameters", params], "bad.toml")
         self.assertIn("biting_rate", line)
 
+    def test_parameter_values_out_of_range(self):
+        # Diurnal a, b, c outside the ranges --calibrate searches, or window limits out of
+        # order, are refused naming the file and the key (not an option that was not given),
+        # exit 2, by diurnal and suitability alike, before any output.
+        folder = os.path.join(self.tmp, "ranges")
+        make_stack(folder, np.random.default_rng(1))
+        inputs = ["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"]
+        for name, text, key, model in (("a.toml", "[diurnal]\na = -5\n", "diurnal.a", "r0-2013"),
+                                       ("b.toml", "[diurnal]\nb = -3\n", "diurnal.b", "r0-2013"),
+                                       ("window.toml", "[window]\nlimits = [30, 20]\n", "window.limits",
+                                        "window")):
+            params = os.path.join(self.tmp, name)
+            with open(params, "w") as f:
+                f.write(text)
+            line = self.run_bad(inputs + ["--model", model, "--parameters", params], params)
+            self.assertIn(key, line)
+            self.assertNotIn("--window", line)
+            if key.startswith("diurnal"):
+                out = os.path.join(self.tmp, "diurnal-" + name)
+                done = kt.run_kalends(["diurnal"] + inputs + ["--parameters", params, "--out", out])
+                self.assertEqual(done.returncode, 2, done.stderr)
+                self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+                self.assertIn(params, done.stderr)
+                self.assertIn(key, done.stderr)
+                self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+
 
 if __name__ == "__main__":
     unittest.main()

@@ -173,6 +173,42 @@ TEST_CASE("parameter table: every entry has a source; a TOML file overrides it",
   for (const std::string& f : {good, written, unknown, count, broken}) std::remove(f.c_str());
 }
 
+TEST_CASE("parameter files: diurnal a, b, c within the calibration's ranges, window in order",
+          "[thermal][parameters]") {
+  // The edges are accepted (the ranges --calibrate searches: 0..6 h, 0.01..20, -3..3 h).
+  const std::string edges = temp_file("[diurnal]\na = 0\nb = 20\nc = -3\n");
+  ThermalParameters table = ThermalParameters::defaults();
+  table.override_from_file(edges);
+  CHECK(table.value("diurnal", "a") == 0);
+  CHECK(table.value("diurnal", "b") == 20);
+  CHECK(table.value("diurnal", "c") == -3);
+  std::vector<std::string> files{edges};
+  for (const auto& [text, key] : std::vector<std::pair<std::string, std::string>>{
+           {"[diurnal]\na = -5\n", "'diurnal.a' = -5"},
+           {"[diurnal]\na = 6.5\n", "'diurnal.a' = 6.5"},
+           {"[diurnal]\nb = -3\n", "'diurnal.b' = -3"},
+           {"[diurnal]\nb = 0\n", "'diurnal.b' = 0"},
+           {"[diurnal]\nc = 3.5\n", "'diurnal.c' = 3.5"},
+           {"[diurnal]\na = 2\nb = 0.001\n", "'diurnal.b' = 0.001"},
+           {"[window]\nlimits = [30, 20]\n", "'window.limits' = [30, 20]"},
+           {"[window]\nlimits = [20, 20]\n", "'window.limits' = [20, 20]"}}) {
+    const std::string bad = temp_file(text);
+    files.push_back(bad);
+    ThermalParameters t = ThermalParameters::defaults();
+    try {
+      t.override_from_file(bad);
+      FAIL("expected an InputError for " << text);
+    } catch (const InputError& e) {
+      CHECK(e.where() == bad);
+      CHECK_THAT(e.reason(), Catch::Contains(key));
+    }
+    // Nothing changed, not even the keys before the bad one.
+    CHECK(t.value("diurnal", "a") == 1.86);
+    CHECK(t.values("window", "limits") == std::vector<double>{18, 34});
+  }
+  for (const std::string& f : files) std::remove(f.c_str());
+}
+
 TEST_CASE("suitable runs: counts, longest run with and without wrap-around", "[thermal][runs]") {
   const double v[12] = {0.5, 0.2, 0, 0, 0, 0.1, 0, 0, 0, 0, 0.3, 0.4};
   const SuitableRun year = suitable_runs(v, 12, 0.0, false);
