@@ -49,6 +49,7 @@ struct DiurnalRequest {
 struct DiurnalSummary {
   int days = 0, width = 0, height = 0;
   std::int64_t implausible = 0;
+  std::int64_t tmin_above_tmax = 0;  // pixel-days taken as missing (a majority is an error)
   DiurnalParameters parameters;
   double seconds = 0;
   std::vector<std::string> outputs;
@@ -116,6 +117,7 @@ struct SuitabilitySummary {
   std::string model;
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value
   std::int64_t implausible = 0;        // values outside -100..100 deg C, taken as missing
+  std::int64_t tmin_above_tmax = 0;    // pixel-days taken as missing (a majority is an error)
   double seconds = 0;
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
   std::vector<std::string> outputs;

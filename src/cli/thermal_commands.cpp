@@ -146,6 +146,9 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
           r.out_dir);
       if (s.implausible > 0)
         fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
+      if (s.tmin_above_tmax > 0)
+        fmt::print("  {} pixel-day(s) with tmin above tmax were taken as missing\n",
+                   s.tmin_above_tmax);
     }
   };
 }
@@ -210,6 +213,9 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
         fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
       if (s.implausible > 0)
         fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
+      if (s.tmin_above_tmax > 0)
+        fmt::print("  {} pixel-day(s) with tmin above tmax were taken as missing\n",
+                   s.tmin_above_tmax);
       std::fflush(stdout);
     }
     note_month_end_dates(s.dates_at_month_ends, r.inputs.marks);

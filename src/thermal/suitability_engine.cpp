@@ -333,11 +333,14 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     outputs.write_all(core, w.bands, w.tile);
   };
   detail::run_blocks(plan, threads, workers, process);
-  std::int64_t implausible = 0, finite = 0, count_pixels = 0;
+  std::int64_t implausible = 0, finite = 0, count_pixels = 0, tmin_above_tmax = 0,
+               extreme_pairs = 0;
   double count_sum = 0;
   for (const Worker& w : workers) {
     implausible += w.block->implausible;
     finite += w.block->finite;
+    tmin_above_tmax += w.block->tmin_above_tmax;
+    extreme_pairs += w.block->extreme_pairs;
     count_sum += w.count_sum;
     count_pixels += w.count_pixels;
   }
@@ -348,6 +351,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                     "the unit (--units) or scale factor (--scale) is probably wrong",
                     implausible, implausible + finite, detail::plausible_low_celsius,
                     detail::plausible_high_celsius));
+  detail::check_extremes_order(source, tmin_above_tmax, extreme_pairs);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 
@@ -365,6 +369,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.model = model.description();
   summary.mean_suitable_periods = count_pixels > 0 ? count_sum / double(count_pixels) : NAN;
   summary.implausible = implausible;
+  summary.tmin_above_tmax = tmin_above_tmax;
   summary.outputs = output_paths;
   summary.seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();

@@ -185,6 +185,27 @@ void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t
       }
     }
   }
+  if (source_.mode != TemperatureSource::Mode::extremes) return;
+  const std::size_t values = (last - first) * std::size_t(pixels_);
+  for (std::size_t v = 0; v < values; ++v) {
+    const float tmin = planes_[0][v], tmax = planes_[1][v];
+    if (!std::isfinite(tmin) || !std::isfinite(tmax)) continue;
+    ++extreme_pairs;
+    if (tmin > tmax) ++tmin_above_tmax;
+  }
+}
+
+void check_extremes_order(const TemperatureSource& source, std::int64_t tmin_above_tmax,
+                          std::int64_t extreme_pairs) {
+  if (extreme_pairs == 0 ||
+      double(tmin_above_tmax) <= swapped_extremes_share * double(extreme_pairs))
+    return;
+  throw InputError(
+      fmt::format("--tmin {}, --tmax {}", source.stacks[0].input(), source.stacks[1].input()),
+      fmt::format("tmin is above tmax on {:.0f} % of pixel-days ({} of {}): are --tmin and "
+                  "--tmax swapped?",
+                  100.0 * double(tmin_above_tmax) / double(extreme_pairs), tmin_above_tmax,
+                  extreme_pairs));
 }
 
 PixelLocator::PixelLocator(const Grid& grid, const std::string& where) : grid_(grid) {

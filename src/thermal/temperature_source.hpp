@@ -21,6 +21,12 @@ namespace kalends::detail {
 /// to a wrong unit or a missing scale factor rather than a temperature.
 constexpr double plausible_low_celsius = -100, plausible_high_celsius = 100;
 
+/// Above this share of pixel-days with tmin above tmax the inputs are taken to be swapped and
+/// the run stops; below it those pixel-days are taken as missing and counted. Common practice
+/// (no source): a majority rule, since swapped inputs invert nearly every pixel-day and sound
+/// ones invert few or none.
+constexpr double swapped_extremes_share = 0.5;
+
 /// Pixels per block: what the memory budget allows, but small enough that every worker gets
 /// blocks (about two per thread), never below one tile.
 inline std::int64_t parallel_block_pixels(const Grid& grid, const MemoryShare& share, int threads,
@@ -59,12 +65,14 @@ struct TemperatureSource {
 class TemperatureBlock {
  public:
   explicit TemperatureBlock(const TemperatureSource& source);
-  /// Reads dates [first, last) of every stack for `window`; counts implausible values.
+  /// Reads dates [first, last) of every stack for `window`; counts implausible values and,
+  /// for daily extremes, the pixel-days with both values and those with tmin above tmax.
   void read(const Window& window, std::size_t first, std::size_t last);
   const float* values(std::size_t stack, std::size_t date) const {
     return planes_[stack].data() + (date - first_) * pixels_;
   }
   std::int64_t implausible = 0, finite = 0;
+  std::int64_t extreme_pairs = 0, tmin_above_tmax = 0;
 
  private:
   const TemperatureSource& source_;
@@ -73,6 +81,12 @@ class TemperatureBlock {
   std::size_t first_ = 0;
   std::int64_t pixels_ = 0;
 };
+
+/// After every block is read: InputError naming both inputs when tmin is above tmax on more
+/// than `swapped_extremes_share` of the pixel-days that have both (--tmin and --tmax are
+/// swapped). Fewer are left to the caller to report; they are missing in the outputs.
+void check_extremes_order(const TemperatureSource& source, std::int64_t tmin_above_tmax,
+                          std::int64_t extreme_pairs);
 
 /// Latitude and longitude (degrees, WGS 84) of pixel centres. Owns its transformation; use
 /// one per thread.

@@ -213,6 +213,60 @@ class DiurnalEra5(kt.TempDirTestCase):
         self.assertIn("t2m_2019-03-01.tif", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, "r0-2013_synoptic.tif")))
 
+    def test_swapped_extremes_are_refused(self):
+        # --tmin given the maxima and --tmax the minima: tmin is above tmax on nearly every
+        # pixel-day (numpy: wherever the day's range is not zero). One line naming both inputs,
+        # exit 2, and no file (not even a temporary) in the output folder.
+        tmins, tmaxs = os.path.join(self.input, "tmin_*.tif"), os.path.join(self.input, "tmax_*.tif")
+        share = 100 * np.mean(self.tmax.astype(np.float32) > self.tmin.astype(np.float32))
+        self.assertGreater(share, 99)
+        for command in (["diurnal"], ["suitability", "--model", "window"]):
+            out = os.path.join(self.tmp, "swapped-" + command[0])
+            done = kt.run_kalends(command + ["--tmin", tmaxs, "--tmax", tmins, "--units", "celsius", "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            lines = done.stderr.strip().splitlines()
+            self.assertEqual(len(lines), 1, done.stderr)
+            self.assertIn("--tmin " + tmaxs, lines[0])
+            self.assertIn("--tmax " + tmins, lines[0])
+            self.assertIn("tmin is above tmax on %.0f %% of pixel-days" % share, lines[0])
+            self.assertIn("swapped", lines[0])
+            self.assertEqual(os.listdir(out) if os.path.isdir(out) else [], [])
+
+    def test_a_few_inverted_pixel_days_are_counted_and_left_empty(self):
+        # Real extremes with tmin raised above tmax on a few pixel-days: the run goes on, says
+        # how many (counted here with numpy) and leaves exactly those pixel-days empty.
+        folder = os.path.join(self.tmp, "few-inverted")
+        os.makedirs(folder)
+        tmin = self.tmin.astype(np.float32)
+        tmax = self.tmax.astype(np.float32)
+        rng = np.random.default_rng(7)
+        chosen = rng.random(tmin.shape) < 0.01
+        tmin = np.where(chosen, tmax + 1, tmin)
+        inverted = tmin > tmax
+        self.assertTrue(0 < inverted.sum() < 0.05 * inverted.size)
+        ds = kt.gdal().Open(os.path.join(self.input, "tmin_2019-03-01.tif"))
+        wkt = ds.GetProjection()
+        ds = None
+        for d in range(31):
+            date = "2019-03-%02d" % (d + 1)
+            for name, values in (("tmin", tmin[d]), ("tmax", tmax[d])):
+                kt.write_raster(os.path.join(folder, "%s_%s.tif" % (name, date)), values, geotransform=self.gt,
+                                wkt=wkt)
+        args = ["--tmin", os.path.join(folder, "tmin_*.tif"), "--tmax", os.path.join(folder, "tmax_*.tif"),
+                "--units", "celsius"]
+        message = "%d pixel-day(s) with tmin above tmax were taken as missing" % inverted.sum()
+        out = os.path.join(self.tmp, "few-inverted-hours")
+        done = kt.run_kalends(["diurnal"] + args + ["--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(message, done.stdout)
+        hours = self.read_hours(out)  # (31, 24, rows, cols)
+        np.testing.assert_array_equal(np.all(np.isnan(hours), axis=1), inverted)
+        self.assertFalse(np.any(np.isnan(hours[:, :, ~inverted.any(axis=0)])))
+        done = kt.run_kalends(["suitability", "--model", "window", "--window", "5,10"] + args
+                              + ["--out", os.path.join(self.tmp, "few-inverted-window")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(message, done.stdout)
+
     def test_calibrated_parameters_lower_the_error_on_unseen_days(self):
         params = os.path.join(self.tmp, "fitted.toml")
         done = kt.run_kalends(["diurnal", "--calibrate", self.grib, "--units", "kelvin", "--fit-days",

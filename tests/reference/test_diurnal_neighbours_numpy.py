@@ -10,6 +10,9 @@ Invented extremes on a 2 x 2 grid in EPSG:4326 (longitudes -80.75 and +80.75, la
 -20), 10, 11, 12, 14 and 15 June 2019: mechanics only, no accuracy claim. West of Greenwich the
 first UTC hours of a date are the evening of the previous local day; east, the last UTC hours
 are the morning of the next.
+
+Also: tmin above tmax on most pixel-days (--tmin and --tmax swapped) is refused; on fewer it is
+counted.
 """
 import datetime as dt
 import os
@@ -120,6 +123,41 @@ class DiurnalNeighbours(kt.TempDirTestCase):
         self.assertTrue(np.all(evening > EXTREMES[-1][0]), evening)
         # UTC 19-23 of 14 June are the same local hours of 15 June's morning.
         self.assertFalse(np.allclose(last[t >= 24], self.hours[-2][t >= 24, 0, 1]), last)
+
+
+class InvertedExtremes(kt.TempDirTestCase):
+    """tmin above tmax on most pixel-days (swapped inputs) stops the run; on fewer they are
+    counted and left empty. The line is drawn at half the pixel-days (docs/methods.md)."""
+
+    def run_with_inverted_dates(self, inverted_dates, command):
+        folder = os.path.join(self.tmp, "inverted-%d-%s" % (inverted_dates, command[0]))
+        os.makedirs(folder)
+        for k, d in enumerate(DATES):
+            lo, hi = EXTREMES[k][0] + SHIFT, EXTREMES[k][1] + SHIFT
+            if k < inverted_dates:
+                lo, hi = hi, lo
+            for name, values in (("tmin", lo), ("tmax", hi)):
+                kt.write_raster(os.path.join(folder, "%s_%s.tif" % (name, d.isoformat())),
+                                values.astype(np.float32), geotransform=GT, epsg=4326)
+        out = os.path.join(folder, "out")
+        done = kt.run_kalends(command + ["--tmin", os.path.join(folder, "tmin_*.tif"), "--tmax",
+                                         os.path.join(folder, "tmax_*.tif"), "--units", "celsius", "--out", out])
+        return done, out
+
+    def test_majority_is_refused_minority_counted(self):
+        for command in (["diurnal"], ["suitability"]):
+            # 3 of 5 dates on all 4 pixels: 60 % of the pixel-days.
+            done, out = self.run_with_inverted_dates(3, command)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            lines = done.stderr.strip().splitlines()
+            self.assertEqual(len(lines), 1, done.stderr)
+            self.assertIn("tmin is above tmax on 60 % of pixel-days (12 of 20)", lines[0])
+            self.assertIn("tmin_*.tif", lines[0])
+            self.assertEqual(os.listdir(out) if os.path.isdir(out) else [], [])
+            # 2 of 5: 40 %, below the line.
+            done, out = self.run_with_inverted_dates(2, command)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("8 pixel-day(s) with tmin above tmax were taken as missing", done.stdout)
 
 
 if __name__ == "__main__":
