@@ -141,7 +141,8 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       c.description = item(*ds, "KALENDS_LAYER");
       if (c.description.empty()) c.description = descriptions[c.band - 1];
     };
-    const bool fill_bands = bands == 3 && descriptions[0] == "value" && descriptions[1] == "sd" &&
+    // A fill output, or one carried to a study grid by `kalends grid` (which adds filled_share).
+    const bool fill_bands = bands >= 3 && descriptions[0] == "value" && descriptions[1] == "sd" &&
                             descriptions[2] == "flag";
     const bool periodic = !period_text.empty() && std::all_of(descriptions.begin(), descriptions.end(), is_period_label);
     if (!date_text.empty()) {

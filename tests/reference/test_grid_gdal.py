@@ -106,6 +106,7 @@ class AreaWeightedMeans(kt.TempDirTestCase):
             ds.GetRasterBand(b).WriteArray(array)
             ds.GetRasterBand(b).SetDescription(name)
             ds.GetRasterBand(b).SetNoDataValue(float("nan"))
+        ds.SetMetadataItem("KALENDS_DATE", "2020-01-01")   # as kalends fill writes it
         ds = None
         out = os.path.join(self.tmp, "flags")
         run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "300",
@@ -137,6 +138,27 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         with np.errstate(invalid="ignore", divide="ignore"):
             share = np.where(with_value > 0, filled / np.maximum(with_value, 1), np.nan)
         np.testing.assert_allclose(ds.GetRasterBand(4).ReadAsArray(), share, rtol=1e-6)
+        # kalends extract reads the study grid's value, sd and flag as those of a fill output.
+        points = os.path.join(self.tmp, "points.csv")
+        cells = [(2, 3), (10, 7), (19, 29)]
+        with open(points, "w") as f:
+            f.write("id,x,y,date\n")
+            for k, (row, col) in enumerate(cells):
+                f.write("p%d,%r,%r,2020-01-01\n" % (k, 300000.0 + (col + 0.5) * 300, 8000000.0 - (row + 0.5) * 300))
+        table = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["-q", "extract", out, "--points", points, "--out", table, "--x-column", "x",
+                               "--y-column", "y", "--crs", "EPSG:32736"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = kt.read_table(table)
+        bands = [ds.GetRasterBand(b).ReadAsArray() for b in (1, 2, 3)]
+        for k, (row, col) in enumerate(cells):
+            got = rows[k]
+            if np.isnan(bands[0][row, col]):
+                self.assertEqual(got["ndvi"], "")
+            else:
+                self.assertAlmostEqual(float(got["ndvi"]), float(bands[0][row, col]), places=5)
+                self.assertAlmostEqual(float(got["ndvi.sd"]), float(bands[1][row, col]), places=6)
+            self.assertEqual(float(got["ndvi.flag"]), float(bands[2][row, col]))
 
     def test_classes_take_the_mode_and_days_of_year_a_circular_mean(self):
         # Seasons' and compare's layers: a class band (CLASS_MEANINGS), the number of seasons and
