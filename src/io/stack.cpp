@@ -423,10 +423,13 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     }
     stack.grid_ = grid_of(*dataset);
     const int bands = dataset->GetRasterCount();
-    if (bands == 1 || rules.one_date_per_file) {
-      if (rules.band > bands) throw InputError(input, "has no band " + std::to_string(rules.band));
-      auto time = date_from_name(detail::file_in_connection(input));
-      if (!time) time = rules.date;
+    // One band of a multi-band raster where the user names it (--band) or gives the file one
+    // date (--date); otherwise every band, each with its own date.
+    if (bands == 1 || rules.one_date_per_file || rules.date || rules.band != 1) {
+      if (rules.band > bands)
+        throw InputError(input, fmt::format("has no band {} (it has {})", rules.band, bands));
+      auto time = rules.date;
+      if (!time) time = date_from_name(detail::file_in_connection(input));
       const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {

@@ -87,6 +87,35 @@ class InspectRealData(kt.TempDirTestCase):
         land = tas[tas < 1e19].astype(np.float64)
         self.assertIn("range     %.4g .. %.4g," % (land.min(), land.max()), done.stdout)
 
+    def test_one_band_of_a_multi_band_raster(self):
+        # --band picks one band of a multi-band raster, dated by its own metadata or by --date
+        # (docs/inputs.md); before version 0.3.10 a single file ignored both and read every band.
+        g = kt.gdal()
+        path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        source = 'NETCDF:"%s":tas' % path
+        ds = g.Open(source)
+        may = ds.GetRasterBand(5).ReadAsArray()
+        md = ds.GetMetadata()
+        ds = None
+        report = inspect(source, "--band", "5")
+        self.assertEqual(len(report["dates"]), 1)
+        day = int(md["NETCDF_DIM_time_VALUES"].strip("{}").split(",")[4])
+        self.assertEqual(report["dates"][0]["date"][:10],
+                         (datetime.date(1950, 1, 1) + datetime.timedelta(days=day)).isoformat())
+        self.assertEqual(report["dates"][0]["observed"], int((may < 1e19).sum()))
+        # Landsat 7 bands (no dates): band 3 (red) as one date.
+        landsat = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        report = inspect(landsat, "--band", "3", "--date", "2000-07-01")
+        self.assertEqual([d["date"][:10] for d in report["dates"]], ["2000-07-01"])
+        self.assertEqual(report["dates"][0]["band"], 3)
+        ds = g.Open(landsat)
+        red = ds.GetRasterBand(3).ReadAsArray().astype(np.float64)
+        ds = None
+        self.assertAlmostEqual(report["dates"][0]["mean"], float(red.mean()), places=3)
+        done = kt.run_kalends(["inspect", source, "--band", "13"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("has no band 13 (it has 12)", done.stderr)
+
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
         self.assertFalse(report["values_read"])
