@@ -25,6 +25,7 @@ struct PointsSource {
 struct SurveyPoint {
   std::string id;
   double x = 0, y = 0;     // as given, in the points' CRS
+  std::string x_text, y_text;  // a CSV's coordinates as written, echoed in the table
   std::string date_text;   // as given
   std::optional<CivilDate> date;
   bool month_only = false;  // a year-month: matched at the middle of the month (day 15)

@@ -297,6 +297,7 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
     text += "\n";
   }
   auto point_fields = [&](const SurveyPoint& p) {
+    if (csv) return fmt::format("{},{},{},{}", csv_field(p.id), csv_field(p.x_text), csv_field(p.y_text), csv_field(p.date_text));
     return fmt::format("{},{},{},{}", csv_field(p.id), p.has_coordinates ? fmt::format("{:.10g}", p.x) : "",
                        p.has_coordinates ? fmt::format("{:.10g}", p.y) : "", csv_field(p.date_text));
   };

@@ -6,6 +6,8 @@
 #include <filesystem>
 #include <regex>
 
+#include <fmt/format.h>
+
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 #include "kalends/extract.hpp"
@@ -96,6 +98,13 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     p.id = feature->GetFieldAsString(id);
     if (csv) {
       const std::string xs = trim(feature->GetFieldAsString(x)), ys = trim(feature->GetFieldAsString(y));
+      p.x_text = xs;
+      p.y_text = ys;
+      // Both empty: a point not yet located (its values say so). One alone is a mistake, such
+      // as a row cut short.
+      if (xs.empty() != ys.empty())
+        throw InputError(where, fmt::format("has {} '{}' but no {}", xs.empty() ? source.y_column : source.x_column,
+                                            xs.empty() ? ys : xs, xs.empty() ? source.x_column : source.y_column));
       if (xs.empty() || ys.empty()) p.has_coordinates = false;
       else {
         p.x = coordinate(xs, where);

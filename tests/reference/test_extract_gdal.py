@@ -150,6 +150,28 @@ class ExtractLandsat(kt.TempDirTestCase):
         done = kt.run_kalends(["extract", self.raster, "--points", self.csv, "--out", os.path.join(self.tmp, "x.csv")])
         self.assertEqual(done.returncode, 2)
         self.assertIn("no column 'id'", done.stderr)
+        # A row cut short (a longitude, no latitude) is refused by its row, not taken as a point
+        # without coordinates.
+        with open(bad, "w") as f:
+            f.write("site,lon,lat\np1,-34.87,-7.98\np2,-34.87\n")
+        done = kt.run_kalends(["extract", self.raster, "--points", bad, "--out", os.path.join(self.tmp, "x.csv"),
+                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("bad.csv:3: has lon '-34.87' but no lat", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "x.csv")))
+
+    def test_coordinates_are_echoed_as_written(self):
+        points = os.path.join(self.tmp, "echo.csv")
+        with open(points, "w") as f:
+            f.write("site,lon,lat\np1,-34.875000001,-7.98\np2,,\n")
+        out = os.path.join(self.tmp, "echo_table.csv")
+        done = kt.run_kalends(["-q", "extract", self.raster, "--points", points, "--out", out, "--id-column", "site",
+                               "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = kt.read_table(out)
+        self.assertEqual((rows[0]["lon"], rows[0]["lat"]), ("-34.875000001", "-7.98"))
+        self.assertEqual((rows[1]["lon"], rows[1]["lat"]), ("", ""))
+        self.assertEqual(rows[1]["L7_ETMs.b1.reason"], "no coordinates")
 
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
