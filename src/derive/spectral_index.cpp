@@ -58,6 +58,18 @@ void check_index_options(const IndexRequest& request) {
   check_band(request.red_band, "--red-band");
   check_band(request.nir_band, "--nir-band");
   check_band(request.blue_band, "--blue-band");
+  // The same band twice gives an index of 0 (or a ratio of a band with itself) everywhere.
+  auto same = [](const std::string& a, int band_a, const std::string& b, int band_b) {
+    return a == b && band_a == band_b;
+  };
+  if (same(request.red, request.red_band, request.nir, request.nir_band))
+    throw UsageError("--nir-band", fmt::format("reads the same band as --red ({} band {}); give each its own band",
+                                               request.red, request.red_band));
+  if (request.kind == SpectralIndex::evi &&
+      (same(request.blue, request.blue_band, request.red, request.red_band) ||
+       same(request.blue, request.blue_band, request.nir, request.nir_band)))
+    throw UsageError("--blue-band", fmt::format("reads the same band as --red or --nir ({} band {})", request.blue,
+                                                request.blue_band));
 }
 
 IndexSummary run_index(const IndexRequest& request) {

@@ -384,6 +384,18 @@ class RealData(kt.TempDirTestCase):
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
 
+    def test_index_refuses_one_band_read_twice(self):
+        landsat = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        out = os.path.join(self.tmp, "same-band")
+        for extra, option in ((["--nir-band", "3"], "--nir-band"),
+                              (["--nir-band", "4", "--kind", "evi", "--blue", landsat, "--blue-band", "4"], "--blue-band")):
+            done = kt.run_kalends(["index", "--red", landsat, "--red-band", "3", "--nir", landsat, "--date",
+                                   "2000-07-01", "--out", out] + extra)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn(option + ": reads the same band", done.stderr)
+            self.assertFalse(os.path.exists(out))
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
