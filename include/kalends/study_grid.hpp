@@ -24,6 +24,9 @@ struct StudyGridSummary {
   int outputs_written = 0, outputs_unchanged = 0;
   int width = 0, height = 0;
   std::vector<std::string> outputs;
+  /// Layers with no value anywhere on the study grid: an extent or clip beside the data, or a
+  /// layer empty there. Written all the same (a nightly set keeps its dates).
+  std::vector<std::string> without_value;
 };
 
 /// The resampling methods a continuous band may take (GDAL's warper names).

@@ -1,6 +1,7 @@
 // kalends grid INPUT... --out DIR --crs CRS [--resolution R] [--extent ...] [--clip AREA]
 #include <fmt/format.h>
 
+#include <cstdio>
 #include <sstream>
 
 #include "cli/commands.hpp"
@@ -43,6 +44,10 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
     if (!o->extent.empty()) r.extent = parse_extent(o->extent);
     r.command_line = global.command_line;
     const StudyGridSummary s = run_study_grid(r);
+    if (!s.without_value.empty())
+      std::fprintf(stderr, "note: %zu of %zu layers have no value on the study grid (first: %s): does the extent or clip "
+                           "lie beside the data, or --crs differ from the extent's?\n",
+                   s.without_value.size(), s.outputs.size(), s.without_value.front().c_str());
     if (!global.quiet)
       fmt::print("kalends grid: {} layers on a {} x {} grid -> {} ({} written, {} unchanged)\n", s.outputs.size(),
                  s.width, s.height, r.out_dir, s.outputs_written, s.outputs_unchanged);

@@ -64,6 +64,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   detail::start_gdal();
   const std::string path = source.path;
   const bool csv = lower(std::filesystem::path(path).extension().string()) == ".csv";
+  if (!std::filesystem::exists(path)) throw InputError(path, "no such file");
   CPLErrorReset();
   GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
   if (!ds || ds->GetLayerCount() < 1)

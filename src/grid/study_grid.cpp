@@ -7,6 +7,7 @@
 #include <cpl_string.h>
 #include <gdal_utils.h>
 #include <gdal_priv.h>
+#include <ogrsf_frmts.h>
 
 #include <algorithm>
 #include <cmath>
@@ -193,10 +194,13 @@ void check_study_grid_options(const StudyGridRequest& request) {
 StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   check_study_grid_options(request);
   if (!request.clip.empty()) {
+    if (!fs::exists(request.clip) && request.clip.find(':') == std::string::npos)
+      throw InputError(request.clip, "no such file");
     GDALDatasetUniquePtr vector(GDALDataset::Open(request.clip.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
     if (!vector || vector->GetLayerCount() == 0)
       throw InputError(request.clip, "cannot be read as a vector source with a layer (" +
                                          detail::gdal_message("no layer") + ")");
+    if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
   }
   const std::vector<Source> sources = sources_of(request.inputs);
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
@@ -323,6 +327,14 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       ++to;
     }
     if (share) copy_band(share, to++, "filled_share", "1", "average of (flag 1 or 2) over cells with a value");
+    {
+      // Whether the study grid holds any value of the layer's first band.
+      std::vector<float> first_band(std::size_t(width) * height);
+      if (result->GetRasterBand(1)->RasterIO(GF_Read, 0, 0, width, height, first_band.data(), width, height,
+                                             GDT_Float32, 0, 0) == CE_None &&
+          std::none_of(first_band.begin(), first_band.end(), [](float v) { return std::isfinite(v); }))
+        summary.without_value.push_back(sources[i].relative);
+    }
     result->SetMetadataItem("KALENDS_GRID_CRS", request.crs.c_str());
     result->SetMetadataItem("KALENDS_GRID_SOURCE", where.c_str());
     if (!request.clip.empty()) result->SetMetadataItem("KALENDS_GRID_CLIP", request.clip.c_str());

@@ -150,6 +150,10 @@ class ExtractLandsat(kt.TempDirTestCase):
         done = kt.run_kalends(["extract", self.raster, "--points", self.csv, "--out", os.path.join(self.tmp, "x.csv")])
         self.assertEqual(done.returncode, 2)
         self.assertIn("no column 'id'", done.stderr)
+        done = kt.run_kalends(["extract", self.raster, "--points", os.path.join(self.tmp, "none.csv"), "--out",
+                               os.path.join(self.tmp, "x.csv")])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("none.csv: no such file", done.stderr)
         # A row cut short (a longitude, no latitude) is refused by its row, not taken as a point
         # without coordinates.
         with open(bad, "w") as f:

@@ -249,6 +249,18 @@ class Clipping(kt.TempDirTestCase):
         self.assertIn("no-such-area.gpkg", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertFalse(glob.glob(os.path.join(out, "*.tif")))
+        # A study area without a feature: refused, naming the file (not the raster).
+        empty = os.path.join(self.tmp, "empty.geojson")
+        with open(empty, "w") as f:
+            json.dump({"type": "FeatureCollection", "features": []}, f)
+        done = kt.run_kalends(["grid", path, "--out", out, "--crs", "EPSG:4326", "--clip", empty])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("empty.geojson: holds no feature", done.stderr)
+        # An extent beside the data is written, with a note saying so.
+        done = kt.run_kalends(["grid", path, "--out", out, "--crs", "EPSG:4326", "--extent", "10,10,11,11",
+                               "--resolution", "0.1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("1 of 1 layers have no value on the study grid", done.stderr)
         # Not-a-number cell sizes and extents are refused by name (they passed the old checks).
         for extra, option in ((["--resolution", "nan"], "--resolution"),
                               (["--extent", "nan,0,10,10"], "--extent")):
