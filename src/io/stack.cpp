@@ -419,6 +419,19 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         throw InputError(input, "holds several variables; choose one of: " + fmt::format("{}", fmt::join(variables, ", ")));
       if (!fs::exists(input) && !detail::has_glob_characters(input) && input.find(':') == std::string::npos)
         throw InputError(input, "no such file");
+      // NETCDF:"file.nc":var and the like: say which part is wrong, the file or the variable.
+      if (const auto parts = detail::connection_parts(input)) {
+        if (!fs::exists(parts->files)) throw InputError(parts->files, "no such file");
+        const std::vector<std::string> variables = subdatasets_of(parts->files);
+        if (!variables.empty())
+          throw InputError(input, "the file has no such variable; its variables: " +
+                                      fmt::format("{}", fmt::join(variables, ", ")));
+        GDALDatasetUniquePtr plain(GDALDataset::Open(parts->files.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+        if (plain)
+          throw InputError(input, "the file has no such variable (GDAL reads it as '" + parts->files + "' alone)");
+        throw InputError(parts->files, "cannot be read as " + parts->prefix.substr(0, parts->prefix.size() - 2) +
+                                           " (damaged, or another format?)");
+      }
       throw;
     }
     stack.grid_ = grid_of(*dataset);

@@ -162,6 +162,23 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-03-21.tif"],
                          ["open", "read", "recogni", "format", "corrupt"], "random bytes")
 
+    def test_netcdf_connection_names_the_wrong_part(self):
+        # NETCDF:"file":variable: a missing file, a variable the file lacks (its variables
+        # listed), and a file that is not NetCDF each say which part is wrong.
+        folder = self.variant("netcdf")
+        nc = os.path.join(folder, "two.nc")
+        g = kt.gdal()
+        src = os.path.join(folder, "ndvi_2020-01-01.tif")
+        g.Translate(nc, src, format="netCDF")
+        self.check_fails(['NETCDF:"%s":ndvi' % os.path.join(folder, "none.nc")], ["none.nc"], ["no such file"],
+                         "netcdf: missing file")
+        self.check_fails(['NETCDF:"%s":tas' % nc], ["two.nc"], ["no such variable"], "netcdf: missing variable")
+        garbage = os.path.join(folder, "garbage.nc")
+        with open(garbage, "wb") as f:
+            f.write(np.random.default_rng(2).integers(0, 256, 300, dtype=np.uint8).tobytes())
+        self.check_fails(['NETCDF:"%s":tas' % garbage], ["garbage.nc"], ["cannot be read as NETCDF"],
+                         "netcdf: not a NetCDF file")
+
     def test_truncated_geotiff_half(self):
         # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
         # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
