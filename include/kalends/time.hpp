@@ -49,6 +49,9 @@ struct DateInName {
   std::size_t position = 0, length = 0;
 };
 std::optional<DateInName> find_date_in_name(std::string_view name);
+/// A YYYY-MM-DD in a file name that is no calendar date ("2004-02-30"), for the error that
+/// would otherwise say the name has no date.
+std::optional<std::string> impossible_date_in_name(std::string_view name);
 
 /// Parses "YYYY-MM-DD" optionally followed by "[T ]hh:mm[:ss][Z]".
 std::optional<TimePoint> parse_iso_time(std::string_view text);

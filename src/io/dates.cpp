@@ -1,5 +1,6 @@
 // Calendar arithmetic: H. Hinnant, "chrono-Compatible Low-Level Date Algorithms" (public
 // domain), days_from_civil / civil_from_days.
+#include <algorithm>
 #include <cctype>
 #include <charconv>
 #include <cmath>
@@ -136,6 +137,20 @@ std::optional<DateInName> find_date_in_name(std::string_view name) {
     }
     if (auto t = date_from_digits(run)) return DateInName{*t, i, run.size()};
     i = j;
+  }
+  return std::nullopt;
+}
+
+std::optional<std::string> impossible_date_in_name(std::string_view name) {
+  if (const auto slash = name.find_last_of('/'); slash != std::string_view::npos) name = name.substr(slash + 1);
+  for (std::size_t i = 0; i + 10 <= name.size(); ++i) {
+    const std::string_view t = name.substr(i, 10);
+    const bool shape = t[4] == '-' && t[7] == '-' &&
+                       std::all_of(t.begin(), t.end(), [](char c) { return c == '-' || is_digit(c); }) &&
+                       (i == 0 || !is_digit(name[i - 1])) && (i + 10 == name.size() || !is_digit(name[i + 10]));
+    if (shape && !is_valid_date(digits_to_int(t.substr(0, 4)), digits_to_int(t.substr(5, 2)),
+                                digits_to_int(t.substr(8, 2))))
+      return std::string(t);
   }
   return std::nullopt;
 }

@@ -390,6 +390,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         } catch (const InputError&) {
           bands.clear();
         }
+        if (bands.empty() && impossible_date_in_name(file))
+          throw InputError(file, "'" + *impossible_date_in_name(file) + "' in the file name is not a calendar date");
         if (bands.empty())
           throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in "
                                  "its bands' metadata; give --date for a file of one date");
@@ -443,6 +445,9 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         throw InputError(input, fmt::format("has no band {} (it has {})", rules.band, bands));
       auto time = rules.date;
       if (!time) time = date_from_name(detail::file_in_connection(input));
+      if (!time && impossible_date_in_name(detail::file_in_connection(input)))
+        throw InputError(input, "'" + *impossible_date_in_name(detail::file_in_connection(input)) +
+                                    "' in the file name is not a calendar date");
       const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {

@@ -50,6 +50,15 @@ TEST_CASE("dates in file names", "[io][dates]") {
   }
 }
 
+TEST_CASE("a YYYY-MM-DD in a name that is no calendar date is found for the error", "[io][dates]") {
+  CHECK(impossible_date_in_name("ndvi_2004-02-30.tif") == "2004-02-30");
+  CHECK(impossible_date_in_name("/data/x/ndvi_2005-13-01_v2.tif") == "2005-13-01");
+  CHECK_FALSE(impossible_date_in_name("ndvi_2004-02-29.tif"));      // a leap day
+  CHECK_FALSE(impossible_date_in_name("/data/2004-02-30/ndvi.tif"));  // folders are not searched
+  CHECK_FALSE(impossible_date_in_name("ndvi_12004-02-30.tif"));     // part of a longer number
+  CHECK_FALSE(impossible_date_in_name("ndvi.tif"));
+}
+
 TEST_CASE("ISO and CF times", "[io][dates]") {
   REQUIRE(parse_iso_time("1950-01-01 00:00:00"));
   CHECK(parse_iso_time("2019-03-01T06:30:00Z")->label() == "2019-03-01T0630");
