@@ -151,6 +151,9 @@ CompareSummary run_compare(const CompareRequest& request) {
     const double nodata = z->GetRasterBand(1)->GetNoDataValue(&has_nodata);
     for (std::size_t i = 0; i < zone.size(); ++i) {
       if (!std::isfinite(zone[i]) || (has_nodata && zone[i] == float(nodata))) continue;
+      if (zone[i] != std::round(zone[i]))
+        throw InputError(request.zones, fmt::format("zones are whole numbers; found {:g} at column {}, row {}", zone[i],
+                                                    i % std::size_t(width), i / std::size_t(width)));
       auto& [r, e] = zones[std::lround(zone[i])];
       r.push_back(rmse[i]);
       e.push_back(explained[i]);

@@ -228,6 +228,13 @@ class SeasonsCommand(kt.TempDirTestCase):
             values = miss[0][(zones == zone) & np.isfinite(miss[0])]
             self.assertAlmostEqual(by_zone[zone]["synoptic_rmse"]["p50"], float(np.median(values)), places=5)
             self.assertEqual(by_zone[zone]["synoptic_rmse"]["count"], values.size)
+        # A zone raster of fractions (a share, not zones) is refused, not rounded into zones.
+        fractions = os.path.join(self.tmp, "fractions.tif")
+        kt.write_raster(fractions, np.full(miss.shape[1:], 0.37, np.float32),
+                        geotransform=(500000, 250, 0, 9000000, 0, -250), epsg=32736)
+        done = kt.run_kalends(["-q", "compare", self.out, "--out", out + "-f", "--zones", fractions])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("fractions.tif: zones are whole numbers; found 0.37", done.stderr)
         classes = g.Open(os.path.join(out, report["class_raster"])).ReadAsArray()
         share = miss[2]
         expected = np.where(share < 0.25, 0, np.where(share < 0.5, 1, np.where(share < 0.75, 2, 3)))
