@@ -75,6 +75,7 @@ class Files {
 
 // Where a point lies in one series' grid.
 struct Placement {
+  bool located = false;  // in the layer's CRS (possibly outside the layer)
   bool inside = false;
   double px = 0, py = 0;   // pixel coordinates
   double x = 0, y = 0;     // in the layer's CRS
@@ -109,6 +110,7 @@ class SeriesGeometry {
       out.reason = "the point cannot be transformed into the layer's CRS";
       return out;
     }
+    out.located = true;
     out.x = x;
     out.y = y;
     out.px = inverse_[0] + x * inverse_[1] + y * inverse_[2];
@@ -364,7 +366,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
       const CovariateSeries& s = r.series[si];
       const Placement at = geometry[si]->place(p);
       std::vector<std::pair<int, int>> cells;
-      if (at.inside && request.buffer_metres > 0) cells = geometry[si]->buffer_cells(at);
+      // A point just outside the layer still has the cells of its buffer inside it.
+      if (at.located && request.buffer_metres > 0) cells = geometry[si]->buffer_cells(at);
       const int lags = s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size());
       for (int l = 0; l <= lags; ++l) {
         ExtractedValue v;
@@ -373,11 +376,12 @@ ExtractResult run_extract(const ExtractRequest& request) {
         v.lag = l ? request.lags[l - 1] : 0;
         const TimeMatch m = match_time(s, p, v.lag);
         v.matched = m.label;
-        if (!at.inside) v.reason = at.reason;
+        if (!at.located || (!at.inside && (m.file < 0 || cells.empty()))) v.reason = at.reason;
         else if (m.file < 0) v.reason = m.reason;
         else {
           const std::string& path = s.files[m.file].path;
-          sample(files, s, path, m.band, at, request.sampling, v);
+          if (at.inside) sample(files, s, path, m.band, at, request.sampling, v);
+          else v.reason = at.reason;
           if (request.buffer_metres > 0) {
             buffer_mean(files, s, path, m.band, cells, v);
             if (!v.value && !v.buffer_mean) v.reason += " (and no cell with a value in the buffer)";

@@ -48,8 +48,8 @@ class ExtractLandsat(kt.TempDirTestCase):
         rows, cols = cls.bands.shape[1:]
         rng = np.random.default_rng(20250608)
         # Points drawn in pixel space (inside, at the edges, a few outside) and taken to WGS 84.
-        px = np.concatenate([rng.uniform(0, cols, 40), [0.01, cols - 0.01, 0.3, cols - 0.4, -3, cols + 5]])
-        py = np.concatenate([rng.uniform(0, rows, 40), [0.01, rows - 0.01, rows - 0.2, 0.45, 10, 20]])
+        px = np.concatenate([rng.uniform(0, cols, 40), [0.01, cols - 0.01, 0.3, cols - 0.4, -3, cols + 5, -1]])
+        py = np.concatenate([rng.uniform(0, rows, 40), [0.01, rows - 0.01, rows - 0.2, 0.45, 10, 20, 30.5]])
         cls.points = []
         for i, (c, r) in enumerate(zip(px, py)):
             x = cls.gt[0] + c * cls.gt[1] + r * cls.gt[2]
@@ -122,13 +122,20 @@ class ExtractLandsat(kt.TempDirTestCase):
         cc, rr = np.meshgrid(np.arange(cols) + 0.5, np.arange(rows) + 0.5)
         cx = self.gt[0] + cc * self.gt[1] + rr * self.gt[2]
         cy = self.gt[3] + cc * self.gt[4] + rr * self.gt[5]
-        checked = 0
+        checked = outside_with_cells = 0
         for row, (pid, lon, lat) in zip(self.tables["nearest"], self.points):
             x, y, c, r = self.pixel(lon, lat)
-            if not self.inside(c, r):
-                continue
             within = np.hypot(cx - x, cy - y) <= 100.0
             self.assertEqual(int(row["L7_ETMs.b1.buffer_cells"]), int(within.sum()), pid)
+            if not self.inside(c, r):
+                # Outside the layer: no value of its own, but the buffer's cells inside it count
+                # (docs/extract.md: the cells whose centre lies within the radius).
+                self.assertEqual(row["L7_ETMs.b1"], "", pid)
+                self.assertEqual(row["L7_ETMs.b1.reason"], "outside the layer", pid)
+                if not within.any():
+                    self.assertEqual(row["L7_ETMs.b1.buffer_mean"], "", pid)
+                    continue
+                outside_with_cells += 1
             # a 100 m radius on 28.5 m cells holds about 38 cells; fewer only at the edges
             for b in range(6):
                 expected = self.bands[b][within].mean()
@@ -136,6 +143,7 @@ class ExtractLandsat(kt.TempDirTestCase):
                                        delta=1e-6 * expected)
                 checked += 1
         self.assertGreaterEqual(checked, 6 * 40)
+        self.assertGreaterEqual(outside_with_cells, 1)   # the last point, 1 px (28.5 m) west of the scene
 
     def test_bad_points_file_is_one_clear_line(self):
         bad = os.path.join(self.tmp, "bad.csv")
