@@ -613,7 +613,7 @@ class BadInput(kt.TempDirTestCase):
             bad = os.path.join(os.path.dirname(path), "ndvi_2021-13-40.tif")
             os.rename(path, bad)
             return bad
-        self.check(rename, ["no date"])
+        self.check(rename, ["'2021-13-40' in the file name is not a calendar date"])
 
 
 if __name__ == "__main__":
