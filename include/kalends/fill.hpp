@@ -66,6 +66,8 @@ struct FillRequest {
 struct FillSummary {
   int dates = 0, width = 0, height = 0, blocks = 0;
   int calendar_outputs = 0;
+  int calendar_outside_season = 0;  // periods no composite of any year stands for: left empty
+  CivilDate first_outside_season{};
   std::int64_t pixel_dates = 0, observed = 0, missing = 0, rejected = 0, filled = 0,
                unfilled = 0;
   std::int64_t pixels_never_observed = 0;

@@ -191,6 +191,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       if (s.calendar_outputs > 0)
         fmt::print("  {} regular-calendar layers in {}/calendar-{}\n", s.calendar_outputs, s.out_dir,
                    r.every->label());
+      if (s.calendar_outside_season > 0)
+        fmt::print("  {} of them (from {}-{:02d}) lie where no composite of any year stands, outside the stack's "
+                   "season: left empty (flag 3)\n",
+                   s.calendar_outside_season, s.first_outside_season.year, s.first_outside_season.month);
     }
     if (global.verbose) {
       std::fprintf(stderr, "blocks: %d of %lld x %lld px, %d at a time\n", s.blocks,

@@ -60,11 +60,24 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
   const double start_day = grid.start.seconds / 86400.0 + shift;
   const double first_day = start_day + grid.slot_days.front();
   const double last_day = start_day + grid.slot_days.back();
+  // The days of the year (0..365) some composite stands for: from its date on (start marks),
+  // up to it (end) or around it (middle), one step long.
+  std::vector<char> season(366, 0);
+  const double span_from = marks == DateMarks::start ? 0.0 : marks == DateMarks::end ? 1.0 - grid.step_days
+                                                                                      : -grid.step_days / 2;
+  for (int slot : grid.slot_of_date) {
+    const double date = grid.start.seconds / 86400.0 + grid.slot_days[slot];
+    for (double d = std::floor(date + span_from); d < std::floor(date + span_from) + std::max(1.0, grid.step_days); ++d)
+      season[std::size_t(day_of_year(civil_from_days(std::int64_t(d))) - 1)] = 1;
+  }
   std::int64_t day = std::int64_t(std::floor(first_day));
   while (day <= std::int64_t(std::floor(last_day))) {
     const auto [begin, end] = period_of(day, period);
     PeriodMean mean;
     mean.start = TimePoint{begin * 86400};
+    mean.in_season = false;
+    for (std::int64_t d = begin; d < end && !mean.in_season; ++d)
+      mean.in_season = season[std::size_t(day_of_year(civil_from_days(d)) - 1)] != 0;
     std::map<int, double> weight;
     for (std::int64_t d = begin; d < end; ++d) {
       const double t = double(d) - start_day;  // days since grid start

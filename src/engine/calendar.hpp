@@ -15,6 +15,10 @@ struct PeriodMean {
   std::vector<int> slots;    // slots the mean draws on
   std::vector<double> weights;  // summing to 1
   std::vector<int> slots_inside;  // slots whose date falls inside the period
+  /// Whether some composite, of any year, stands for a day of the year this period covers. A
+  /// stack of summers alone has no winter: its winter periods are left empty, not filled from
+  /// the curve across the gap.
+  bool in_season = true;
 };
 
 /// Periods from the one holding the first composite to the one holding the last. Each

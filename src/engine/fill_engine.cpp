@@ -359,6 +359,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
           value += period.weights[j] * out.fitted[at];
           sd += period.weights[j] * out.sd[at];
         }
+        if (!period.in_season) value = NAN;  // no composite of any year stands for these days
         bool observed_inside = false;
         for (int slot : period.slots_inside)
           if (w.weights[rp * n_slots + slot] > 0 && !out.rejected[std::size_t(cp) * stride + (slot - offset)])
@@ -547,6 +548,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.block_height = plan.block_height;
   summary.blocks_at_once = std::min(at_once, int(plan.blocks.size()));
   summary.calendar_outputs = int(periods.size());
+  for (const detail::PeriodMean& period : periods)
+    if (!period.in_season) {
+      if (summary.calendar_outside_season++ == 0) summary.first_outside_season = period.start.date();
+    }
   std::int64_t masked_by_qa = 0;
   std::map<int, YearCounts> years;
   std::vector<BlockChoice> chosen;

@@ -63,6 +63,33 @@ TEST_CASE("N-day periods restart on 1 January", "[engine][calendar]") {
   CHECK_THROWS_AS(CalendarPeriod::parse("0d"), UsageError);
 }
 
+TEST_CASE("calendar periods of a season no composite covers are out of season", "[engine][calendar]") {
+  // Summers only, as the Alaska MODIS stack: 8 composites a year from day of year 145 (24 May;
+  // 2004 is a leap year) every 16 days, two years. With start marks a composite stands for 16
+  // days from its date, so the last of a year (day 257) covers up to day 272 (28/29 September):
+  // May to September are in season, October to April are not (dates worked by hand).
+  std::vector<TimePoint> times;
+  for (int year : {2004, 2005})
+    for (int k = 0; k < 8; ++k)
+      times.push_back(TimePoint{(days_from_civil(year, 1, 1) + 144 + 16 * k) * 86400});
+  const TimeGrid grid = TimeGrid::build(times);
+  for (DateMarks marks : {DateMarks::start, DateMarks::middle, DateMarks::end}) {
+    const auto periods = detail::period_means(grid, CalendarPeriod::parse("1M"), marks);
+    REQUIRE(periods.size() > 12);
+    for (const auto& p : periods) {
+      const int month = p.start.date().month;
+      INFO(p.start.label());
+      // Every mark covers June to August; May and September by at least a week either way.
+      CHECK(p.in_season == (month >= 5 && month <= 9));
+    }
+  }
+  // A stack covering the whole year leaves every period in season, 8-day ones included.
+  std::vector<TimePoint> all_year;
+  for (int k = 0; k < 46; ++k) all_year.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * (k % 23) + 365 * (k / 23)) * 86400});
+  const auto eight = detail::period_means(TimeGrid::build(all_year), CalendarPeriod::parse("8d"), DateMarks::start);
+  for (const auto& p : eight) CHECK(p.in_season);
+}
+
 TEST_CASE("memory sizes", "[cli]") {
   CHECK(cli::parse_memory("1G") == (std::int64_t(1) << 30));
   CHECK(cli::parse_memory("512M") == (std::int64_t(512) << 20));
