@@ -598,13 +598,14 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       "  \"observed\": {},\n  \"missing\": {},\n  \"masked_by_qa\": {},\n  \"rejected\": {},\n"
       "  \"filled\": {},\n  \"unfilled\": {},\n  \"pixels_never_observed\": {},\n"
       "  \"pixels_without_value\": {},\n"
-      "  \"time_step_days\": {:g},\n  \"calendar_outputs\": {},\n  \"blocks\": {},\n"
+      "  \"time_step_days\": {:g},\n  \"calendar_outputs\": {},\n  \"calendar_outside_season\": {},\n"
+      "  \"blocks\": {},\n"
       "  \"block_size\": [{}, {}]",
       summary.dates, summary.width, summary.height, summary.pixel_dates, summary.observed,
       summary.missing, masked_by_qa, summary.rejected, summary.filled, summary.unfilled,
       summary.pixels_never_observed,
       summary.pixels_without_value < 0 ? std::string("null") : std::to_string(summary.pixels_without_value),
-      grid.step_days, summary.calendar_outputs, summary.blocks,
+      grid.step_days, summary.calendar_outputs, summary.calendar_outside_season, summary.blocks,
       summary.block_width, summary.block_height);
   // Series (pixels; pixel-years with a reach) with observations that the method could not fit.
   json += ",\n  \"series_not_fitted\": " + detail::json_counts(summary.series_not_fitted, "  ");

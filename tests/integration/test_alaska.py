@@ -170,6 +170,29 @@ class AlaskaNdvi(kt.TempDirTestCase):
         with open(os.path.join(two, "fill-summary.json")) as f:
             self.assertLess(sum(json.load(f)["series_not_fitted"].values()), 0.2 * observed_pixels)
 
+    def test_calendar_leaves_the_winters_empty(self):
+        # The stack holds summers only: its composites (16 days from each date, day of year
+        # 145-257, so up to 28/29 September) cover May to September. The monthly calendar has
+        # values there and none, with flag 3, from October to April.
+        out = os.path.join(self.tmp, "calendar")
+        kt.run_fill_ok(self, [os.path.join(self.masked_dir, "*.tif"), "--out", out, "--lambda", "10",
+                              "--every", "1M", "--threads", "2"])
+        files = sorted(glob.glob(os.path.join(out, "calendar-1M", "*.tif")))
+        winter = 0
+        g = kt.gdal()
+        for path in files:
+            month = int(os.path.basename(path)[-9:-7])
+            ds = g.Open(path)
+            value, flag = ds.GetRasterBand(1).ReadAsArray(), ds.GetRasterBand(3).ReadAsArray()
+            ds = None
+            if month >= 10 or month <= 4:
+                winter += 1
+                self.assertTrue(np.isnan(value).all() and (flag == 3).all(), path)
+            else:
+                self.assertGreater(np.isfinite(value).mean(), 0.5, path)
+        self.assertGreater(winter, 30)
+        self.assertEqual(kt.read_summary(out)["calendar_outside_season"], winter)
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
