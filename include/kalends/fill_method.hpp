@@ -143,5 +143,8 @@ struct MethodOptions {
 /// options out of range.
 std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options);
 std::vector<std::string> fill_method_names();
+/// UsageError naming the option (as --option) when one of `given` (job keys: "harmonics",
+/// "space_smoothing") is read by none of `methods`: it would be silently ignored.
+void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& given);
 
 }  // namespace kalends

@@ -81,6 +81,9 @@ struct MethodOptionTexts {
 };
 void add_method_options(CLI::App* sub, MethodOptions& method, MethodOptionTexts& texts);
 void apply_method_options(MethodOptions& method, const MethodOptionTexts& texts);
+/// The options given on the command line, as job keys ("--lambda-range" -> "lambda_range"),
+/// for check_options_apply.
+std::vector<std::string> options_given(const CLI::App& sub);
 
 /// --scale, --offset, --nodata, --valid-range and --band.
 struct ValueRuleTexts {

@@ -119,9 +119,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
 
-  return [o, memory, &global] {
+  return [o, memory, sub, &global] {
     FillRequest& r = o->request;
     apply_method_options(r.method, o->method_texts);
+    check_options_apply({r.method.method}, options_given(*sub));
     apply_value_rule_options(r.rules, o->rule_texts);
     if (!o->every.empty()) r.every = CalendarPeriod::parse(o->every);
     r.marks = parse_date_marks(o->marks);

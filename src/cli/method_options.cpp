@@ -1,5 +1,7 @@
 // The gap-filling method's options and the value rules, shared by `kalends fill` and
 // `kalends validate` (a method is scored with the settings it would fill with).
+#include <algorithm>
+
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -105,6 +107,17 @@ void apply_method_options(MethodOptions& m, const MethodOptionTexts& t) {
     std::tie(m.lambda_min, m.lambda_max) = parse_range(t.lambda_range, "--lambda-range");
   m.envelope_upper = t.envelope == "upper";
   m.fill_never_observed = t.never_observed == "fill";
+}
+
+std::vector<std::string> options_given(const CLI::App& sub) {
+  std::vector<std::string> keys;
+  for (const CLI::Option* option : sub.get_options())
+    if (option->count() > 0 && !option->get_lnames().empty()) {
+      std::string key = option->get_lnames().front();
+      std::replace(key.begin(), key.end(), '-', '_');
+      keys.push_back(key);
+    }
+  return keys;
 }
 
 void add_value_rule_options(CLI::App* sub, ValueRules& rules, ValueRuleTexts& t) {

@@ -48,11 +48,12 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   // Each method is scored with the settings it would fill with: the options of `kalends fill`.
   add_method_options(sub, r.method, o->method_texts);
   add_value_rule_options(sub, r.rules, o->rule_texts);
-  return [o, memory, &global] {
+  return [o, memory, sub, &global] {
     ValidateRequest& r = o->request;
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
     r.methods = split_list(o->methods, "--methods");
+    check_options_apply(r.methods, options_given(*sub));
     r.memory_bytes = parse_memory(o->memory);
     if (memory->count() == 0) r.memory_ceiling = detail::usable_memory_bytes() / 2;
     r.subset = parse_subset(o->subset);

@@ -13,12 +13,16 @@ namespace {
 struct Entry {
   const char* name;
   std::unique_ptr<FillMethod> (*make)(const MethodOptions&);
+  // Options (job keys) only this method reads; given for another method they would do nothing.
+  std::initializer_list<const char*> own_options;
 };
 
-constexpr Entry registry[] = {
-    {"whittaker", &make_whittaker},
-    {"harmonic", &make_harmonic},
-    {"spacetime", &make_spacetime},
+const Entry registry[] = {
+    {"whittaker", &make_whittaker, {"lambda", "lambda_range", "order", "envelope"}},
+    {"harmonic", &make_harmonic, {"harmonics", "trend", "reject_below"}},
+    {"spacetime", &make_spacetime,
+     {"space_smoothing", "time_smoothing", "climate_smoothing", "season_smoothing", "halo", "neighbour_radius",
+      "tolerance", "fft_wisdom", "never_observed"}},
 };
 
 }  // namespace
@@ -38,6 +42,20 @@ std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
   std::string known;
   for (const Entry& entry : registry) known += std::string(known.empty() ? "" : ", ") + entry.name;
   throw UsageError("--method", "unknown method '" + options.method + "' (known: " + known + ")");
+}
+
+void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& given) {
+  for (const Entry& entry : registry)
+    for (const char* option : entry.own_options) {
+      if (std::find(given.begin(), given.end(), option) == given.end() ||
+          std::find(methods.begin(), methods.end(), entry.name) != methods.end())
+        continue;
+      std::string cli = std::string("--") + option;
+      std::replace(cli.begin(), cli.end(), '_', '-');
+      std::string chosen;
+      for (const std::string& m : methods) chosen += (chosen.empty() ? "" : ", ") + m;
+      throw UsageError(cli, std::string("applies to the ") + entry.name + " method only; the methods here: " + chosen);
+    }
 }
 
 std::vector<std::string> fill_method_names() {

@@ -168,6 +168,8 @@ class JobFile(kt.TempDirTestCase):
             (good.replace('every = "1M"', 'every = "1M"\ncompress = "zip"'), lines.index('every = "1M"') + 2,
              ["'compress'", "'zip'"]),
             (good.replace('memory = "256M"', 'memory = "lots"'), 5, ["'memory' = 'lots'", "512M or 2G"]),
+            (good.replace('lambda = "auto"', 'lambda = "auto"\nharmonics = 2'), lam + 1,
+             ["'harmonics'", "applies to the harmonic method only"]),
             (good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [1.0, -0.2]'),
              lines.index('valid_range = [-0.2, 1.0]') + 1, ["'valid_range' = [1, -0.2]", "below the maximum"]),
         ]

@@ -162,7 +162,11 @@ StepKind fill_step_kind() {
     return true;
   };
   kind.check_values = [](const StepContext& c) {
-    make_fill_method(fill_request(c).method);  // each method checks its own options
+    const FillRequest r = fill_request(c);
+    std::vector<std::string> given;
+    for (const auto& [key, value] : c.options) given.push_back(key);
+    check_options_apply({r.method.method}, given);
+    make_fill_method(r.method);  // each method checks its own options
   };
   kind.run = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
