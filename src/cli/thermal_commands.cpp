@@ -101,6 +101,11 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
       ->capture_default_str();
   return [o, &global] {
     o->in.resolve();
+    if (!o->calibrate.empty() && !(o->request.out_dir.empty() && o->in.inputs.tmin.empty() &&
+                                    o->in.inputs.tmax.empty() && o->in.inputs.day.empty() &&
+                                    o->in.inputs.night.empty()))
+      throw UsageError("--calibrate", "fits a, b and c alone; write the hourly layers in a second run with "
+                                      "--parameters and the file --save-parameters wrote");
     if (!o->calibrate.empty()) {
       CalibrationRequest c;
       c.reference = o->calibrate;
@@ -168,8 +173,8 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
   SuitabilityRequest& r = o->request;
   sub->add_option("--out", r.out_dir, "Output folder")->required();
   sub->add_option("--model", o->model, "r0-2013, degree-day or window")->capture_default_str();
-  sub->add_option("--parasite", o->parasite, "degree-day model: falciparum or vivax")
-      ->capture_default_str();
+  CLI::Option* parasite = sub->add_option("--parasite", o->parasite, "degree-day model: falciparum or vivax")
+                              ->capture_default_str();
   sub->add_option("--window", o->window, "window model: LOW,HIGH deg C (default 18,34)");
   sub->add_option("--threshold", r.threshold,
                   "A period is suitable where its suitability is above this")
@@ -183,12 +188,17 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")
       ->capture_default_str();
-  return [o, &global] {
+  return [o, parasite, &global] {
     o->in.resolve();
     SuitabilityRequest& r = o->request;
     r.inputs = o->in.inputs;
     r.model = parse_model_kind(o->model);
     r.parasite = parse_parasite(o->parasite);
+    // A model's own option given for another model would do nothing.
+    if (!o->window.empty() && o->model != "window")
+      throw UsageError("--window", "applies to --model window only (the model here: " + o->model + ")");
+    if (parasite->count() > 0 && o->model != "degree-day")
+      throw UsageError("--parasite", "applies to --model degree-day only (the model here: " + o->model + ")");
     if (!o->window.empty()) {
       const auto [low, high] = split_pair(o->window, "--window", "LOW,HIGH in deg C");
       set_window(r, *optional_number(low, "--window"), *optional_number(high, "--window"));

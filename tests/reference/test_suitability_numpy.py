@@ -238,6 +238,22 @@ class BadInput(kt.TempDirTestCase):
                 self.assertIn(key, done.stderr)
                 self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
 
+    def test_options_of_another_model_or_mode_are_refused(self):
+        # Each would do nothing: --window and --parasite belong to their own models, and
+        # --calibrate fits parameters without writing hourly layers.
+        folder = os.path.join(self.tmp, "others")
+        make_stack(folder, np.random.default_rng(1))
+        inputs = ["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"]
+        for extra, option in ((["--window", "10,20"], "--window"),
+                              (["--parasite", "vivax"], "--parasite"),
+                              (["--model", "window", "--parasite", "vivax"], "--parasite")):
+            line = self.run_bad(inputs + extra, option)
+            self.assertIn("applies to --model", line)
+        done = kt.run_kalends(["diurnal"] + inputs + ["--out", os.path.join(self.tmp, "d"), "--calibrate",
+                                                      folder + "/day/*.tif"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--calibrate: fits a, b and c alone", done.stderr)
+
 
 if __name__ == "__main__":
     unittest.main()
