@@ -89,6 +89,8 @@ std::int64_t parse_memory_size(const std::string& text) {
   else
     throw UsageError("--memory '" + text + "'", "unknown unit '" + unit + "' (use K, M, G or T)");
   if (!(value > 0)) throw UsageError("--memory '" + text + "'", "must be positive");
+  if (value * factor < 1024.0 * 1024)
+    throw UsageError("--memory '" + text + "'", "below 1 MiB, which holds no block; give a size such as 512M or 2G");
   return std::int64_t(value * factor);
 }
 

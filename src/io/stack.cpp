@@ -347,6 +347,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   detail::start_gdal();
   check_band(rules.band, "--band");
   if (rules.scale && *rules.scale == 0) throw UsageError("--scale 0", "a scale factor of 0 makes every value 0");
+  if (input.empty()) throw UsageError("the input", "is empty; give a quoted glob such as 'ndvi/*.tif' or a raster");
   Stack stack;
   stack.input_ = input;
   stack.rules_ = rules;

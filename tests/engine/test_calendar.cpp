@@ -94,7 +94,9 @@ TEST_CASE("memory sizes", "[cli]") {
   CHECK(cli::parse_memory("1G") == (std::int64_t(1) << 30));
   CHECK(cli::parse_memory("512M") == (std::int64_t(512) << 20));
   CHECK(cli::parse_memory("1.5GiB") == (std::int64_t(3) << 29));
-  CHECK(cli::parse_memory("4096") == 4096);
+  CHECK(cli::parse_memory("1M") == (std::int64_t(1) << 20));
+  CHECK_THROWS_AS(cli::parse_memory("4096"), UsageError);  // below 1 MiB: no block fits
+  CHECK_THROWS_AS(cli::parse_memory("1K"), UsageError);
   CHECK_THROWS_AS(cli::parse_memory("lots"), UsageError);
   CHECK_THROWS_AS(cli::parse_memory("5Q"), UsageError);
   CHECK_THROWS_AS(cli::parse_memory("-1G"), UsageError);

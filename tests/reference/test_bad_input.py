@@ -226,6 +226,9 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
 
+    def test_empty_input(self):
+        self.check_fails([""], ["the input"], ["is empty"], "empty input")
+
     def test_unknown_method(self):
         self.check_fails([os.path.join(self.good, "*.tif"), "--method", "kriging"],
                          ["--method", "kriging"], ["unknown", "method"], "unknown method")
@@ -246,7 +249,8 @@ class BadInput(kt.TempDirTestCase):
                  # An option of another method would do nothing (the default method is whittaker).
                  (["--harmonics", "2"], "--harmonics", "applies to the harmonic method only"),
                  (["--method", "harmonic", "--lambda", "10"], "--lambda", "applies to the whittaker method only"),
-                 (["--never-observed", "leave"], "--never-observed", "applies to the spacetime method only")]
+                 (["--never-observed", "leave"], "--never-observed", "applies to the spacetime method only"),
+                 (["--memory", "1K"], "--memory", "below 1 MiB")]
         for extra, name, keyword in cases:
             with self.subTest(option=name):
                 self.check_fails([stack] + extra, [name], [keyword], name)
