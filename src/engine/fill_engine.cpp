@@ -462,9 +462,11 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         w.counters.observed += observed;
         if (written) {
           year.observed += observed;
-          year.rejected += flag == Flag::rejected;
+          // An observation rejected where nothing replaces it (flag 3) still counts as rejected,
+          // so that observed = kept + rejected and missing = filled + unfilled.
+          year.rejected += flag == Flag::rejected || (observed && flag == Flag::unfilled);
           year.filled += flag == Flag::filled;
-          year.unfilled += flag == Flag::unfilled;
+          year.unfilled += flag == Flag::unfilled && !observed;
         }
       }
     }

@@ -190,6 +190,21 @@ class OutputsAgainstGdal(kt.TempDirTestCase):
         self.assertEqual(s["masked_by_qa"], 0)
         self.assertEqual(s["pixels_never_observed"], int((~self.valid.any(axis=0)).sum()))
 
+    def test_summary_counts_add_up_when_rejected_values_have_no_replacement(self):
+        # --envelope upper rejects low values; where the first kept observation lies more than
+        # --max-extrapolation (32 days) after them, nothing replaces them and they get flag 3.
+        # They still count as rejected: observed = flag 0 + rejected, missing = filled + unfilled.
+        out = os.path.join(self.tmp, "envelope")
+        kt.run_fill_ok(self, [self.pattern, "--out", out, "--lambda", str(LAMBDA), "--envelope", "upper"])
+        s = kt.read_summary(out)
+        flag = read_all(out, self.dates)[0]["flag"]
+        observed_flag3 = int(((flag == 3) & self.valid).sum())
+        self.assertGreater(observed_flag3, 0)
+        self.assertEqual(s["observed"], int((flag == 0).sum()) + s["rejected"])
+        self.assertEqual(s["rejected"], int((flag == 1).sum()) + observed_flag3)
+        self.assertEqual(s["missing"], s["filled"] + s["unfilled"])
+        self.assertEqual(s["unfilled"], int(((flag == 3) & ~self.valid).sum()))
+
     def test_filled_values_follow_the_whittaker_solution(self):
         # A few pixels, including ones at tile/block edges: the filled values equal the scipy
         # solve on the regular 16-day slot grid (the 14-day step at the new year falls on the
