@@ -3,6 +3,8 @@
 
 #include <chrono>
 #include <cstdio>
+#include <algorithm>
+
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -41,7 +43,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--dry-run", o->run.dry_run, "Say what would be done, and why; change nothing");
   sub->add_flag("--skip-bad", o->run.skip_bad, "Leave out bad input files, list them, exit 3");
   sub->add_flag("--wait", o->run.wait_for_lock, "Wait for another run on the same output folder to end");
-  sub->add_option("--shard", o->shard,
+  CLI::Option* shard_option = sub->add_option("--shard", o->shard,
                   "K or K/N: compute shard K of the plan (kalends plan) alone, into its own folder and state");
   sub->add_flag("--finalize", o->run.finalize,
                 "Stitch the shards' outputs and run the steps that need the whole area (exit 4 while a shard "
@@ -51,11 +53,18 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--log", o->log, "text or json (one JSON object per line)")
       ->check(CLI::IsMember({"text", "json"}))
       ->capture_default_str();
-  return [o, &global] {
-    if (!o->shard.empty()) {
+  return [o, shard_option, &global] {
+    // Given at all, --shard must name one shard: an empty or fractional value (an unset
+    // $SLURM_ARRAY_TASK_ID) must not turn an array task into a whole run.
+    if (shard_option->count() > 0) {
+      const auto whole = [&](const std::string& text) {
+        if (text.empty() || text.size() > 6 || !std::all_of(text.begin(), text.end(), [](char c) { return c >= '0' && c <= '9'; }))
+          throw UsageError("--shard", "'" + o->shard + "': give K or K/N with 1 <= K <= N");
+        return std::stoi(text);
+      };
       const auto slash = o->shard.find('/');
-      o->run.shard = int(parse_number(o->shard.substr(0, slash), "--shard"));
-      if (slash != std::string::npos) o->run.shard_count = int(parse_number(o->shard.substr(slash + 1), "--shard"));
+      o->run.shard = whole(o->shard.substr(0, slash));
+      if (slash != std::string::npos) o->run.shard_count = whole(o->shard.substr(slash + 1));
       if (o->run.shard < 1 || (slash != std::string::npos && o->run.shard_count < o->run.shard))
         throw UsageError("--shard", "'" + o->shard + "': give K or K/N with 1 <= K <= N");
     }

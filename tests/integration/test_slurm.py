@@ -244,11 +244,15 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(done.returncode, 2)
         self.assertIn("no shard plan", done.stderr)
         self.assertEqual(kalends("plan", self.job, "--out", self.out("no-plan"), "--shards", "2", "-q").returncode, 0)
+        # An empty value (an unset $SLURM_ARRAY_TASK_ID) or a fraction must not run anything,
+        # least of all the whole job.
         for wrong, words in (("3", "the plan has shards 1 to 2"), ("1/4", "the plan has 2 shards"),
-                             ("0/2", "1 <= K <= N")):
+                             ("0/2", "1 <= K <= N"), ("", "1 <= K <= N"), ("1.9", "1 <= K <= N"),
+                             ("1/2.5", "1 <= K <= N")):
             done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", wrong)
             self.assertEqual(done.returncode, 2, wrong)
             self.assertIn(words, done.stderr)
+        self.assertFalse(glob.glob(os.path.join(self.out("no-plan"), "*", "*.tif")))
 
     def test_shards_then_finalize_equal_one_run_and_stale_shards_are_named(self):
         out = self.out("by-hand")
