@@ -100,12 +100,15 @@ struct Accumulator {
     e += err;
     t += truth;
     t2 += truth * truth;
-    if (std::isfinite(sd)) {
+    // The three calibration figures share one denominator: the cells given a value and an sd
+    // (whittaker gives none where a pixel has fewer than 5 observations).
+    if (std::isfinite(sd) && sd > 0) {
       has_sd = true;
+      ++with_sd;
       within += std::abs(err) <= sd;
       within_95 += std::abs(err) <= 1.959964 * sd;  // the normal distribution's 97.5 % quantile
+      z2 += (err / sd) * (err / sd);
     }
-    if (std::isfinite(sd) && sd > 0) ++with_sd, z2 += (err / sd) * (err / sd);
   }
   Score score(const std::string& name) const {
     Score s;
@@ -120,8 +123,8 @@ struct Accumulator {
       s.bias = e / n;
       const double sst = t2 - t * t / n;
       s.r2 = sst > 0 ? 1.0 - se / sst : NAN;
-      s.within_one_sd = has_sd ? double(within) / n : -1;
-      s.within_95_interval = has_sd ? double(within_95) / n : -1;
+      s.within_one_sd = has_sd ? double(within) / double(with_sd) : -1;
+      s.within_95_interval = has_sd ? double(within_95) / double(with_sd) : -1;
       s.rms_error_over_sd = with_sd > 0 ? std::sqrt(z2 / double(with_sd)) : -1;
     } else {
       s.rmse = s.mae = s.bias = s.r2 = NAN;
