@@ -5,7 +5,9 @@
 #include <CLI/CLI.hpp>
 #include <cstdio>
 #include <iostream>
+#include <filesystem>
 #include <map>
+#include <set>
 
 #include "cli/commands.hpp"
 #include "kalends/error.hpp"
@@ -50,8 +52,19 @@ int main(int argc, char** argv) {
     return app.exit(e) == 0 ? 0 : 2;
   }
   try {
-    for (auto& [command, action] : actions)
-      if (command->parsed()) action();
+    for (auto& [command, action] : actions) {
+      if (!command->parsed()) continue;
+      // Commands that write a folder of layers: an --out naming an existing file is a slip
+      // of the user's, not a failure to write.
+      static const std::set<std::string> folder_outputs{"fill", "index", "seasons", "compare", "grid",
+                                                         "validate", "diurnal", "suitability"};
+      if (folder_outputs.count(command->get_name()) && command->count("--out") > 0) {
+        const std::string out = command->get_option("--out")->as<std::string>();
+        if (std::filesystem::exists(out) && !std::filesystem::is_directory(out))
+          throw UsageError("--out '" + out + "'", "is a file; give a folder for the outputs");
+      }
+      action();
+    }
     return global.exit_code;
   } catch (const InputError& e) {
     std::cerr << "kalends: " << e.what() << "\n";

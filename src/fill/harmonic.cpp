@@ -139,9 +139,12 @@ void HarmonicMethod::fill(const BlockInput& in, BlockOutput& out) const {
   const int p = coefficients();
   const int least = std::max(p + 1, options_.min_observations_per_coefficient * p);
   const std::string too_few = fmt::format("fewer than {} observations for {} coefficients", least, p);
-  const std::string ill_conditioned = fmt::format(
-      "observations cover too little of the year to determine {} harmonics; try fewer with --harmonics",
-      options_.harmonics);
+  const std::string ill_conditioned =
+      options_.harmonics > 1
+          ? fmt::format("observations cover too little of the year to determine {} harmonics; try fewer with "
+                        "--harmonics",
+                        options_.harmonics)
+          : std::string("observations cover too little of the year to determine even 1 harmonic");
   for (std::int64_t core_pixel = 0; core_pixel < in.core.pixels(); ++core_pixel) {
     const std::int64_t read_pixel = in.read_pixel_of(core_pixel);
     const auto [fitted, sd, rejected] = out.series(core_pixel, n);

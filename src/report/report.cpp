@@ -295,7 +295,7 @@ ReportSummary run_report(const ReportRequest& request) {
     std::vector<int> bands;
     std::string shown;
     switch (s.kind) {
-      case SeriesKind::dated: bands = {1}; shown = "value of " + file.time.label() + " (the last date)"; break;
+      case SeriesKind::dated: bands = {1}; shown = "map of " + file.time.label() + " (the last date)"; break;
       case SeriesKind::year_period:
         for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
         shown = fmt::format("mean of the {} periods of {} (the last year)", s.period_count, file.year);

@@ -131,6 +131,18 @@ class ValidateOptions(kt.TempDirTestCase):
         columns = {line.find(" RMSE ") for line in done.stdout.splitlines() if " RMSE " in line}
         self.assertEqual(len(columns), 1, done.stdout)
 
+    def test_out_naming_a_file_is_refused(self):
+        # A slip of the user's (exit 2, naming --out), not a failure to write (exit 1).
+        path = os.path.join(self.tmp, "a-file")
+        with open(path, "w") as f:
+            f.write("keep me\n")
+        for command in ("validate", "fill", "seasons"):
+            done = kt.run_kalends([command, os.path.join(self.stack, "ndvi_*.tif"), "--out", path])
+            self.assertEqual(done.returncode, 2, (command, done.stderr))
+            self.assertIn("--out '%s': is a file" % path, done.stderr)
+        with open(path) as f:
+            self.assertEqual(f.read(), "keep me\n")
+
 
 if __name__ == "__main__":
     unittest.main()
