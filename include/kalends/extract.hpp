@@ -76,6 +76,7 @@ struct ExtractResult {
   std::vector<CovariateSeries> series;
   std::vector<ExtractedValue> values;  // point-major, then series, then lag
   int missing = 0;
+  std::vector<std::string> repeated_ids;  // ids given to more than one point (kept, each its row)
 };
 
 /// The checks that need no file (buffer, lags); UsageError naming the option. run_extract calls

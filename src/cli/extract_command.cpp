@@ -2,6 +2,8 @@
 //   [--buffer METRES] [--lags 1,2,3] [--layers 'fill.*,seasons.ndvi_synoptic_mean'] [--long]
 #include <fmt/format.h>
 
+#include <cstdio>
+
 #include "cli/commands.hpp"
 #include "kalends/error.hpp"
 #include "kalends/extract.hpp"
@@ -48,6 +50,9 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     r.layers = split_list(o->layers, "--layers");
     r.marks = parse_date_marks(o->marks);
     const ExtractResult result = run_extract(r);
+    if (!result.repeated_ids.empty())
+      std::fprintf(stderr, "note: %s: %zu ids name more than one point (first: '%s'); each point keeps its own row\n",
+                   r.points.path.c_str(), result.repeated_ids.size(), result.repeated_ids.front().c_str());
     if (!global.quiet)
       fmt::print("kalends extract: {} points x {} layers{}: {} values, {} missing (see the reason columns) -> {}\n",
                  result.points.points.size(), result.series.size(),

@@ -351,6 +351,11 @@ ExtractResult run_extract(const ExtractRequest& request) {
   check_extract_options(request);
   ExtractResult r;
   r.points = read_survey_points(request.points);
+  {
+    std::map<std::string, int> seen;
+    for (const SurveyPoint& p : r.points.points)
+      if (++seen[p.id] == 2) r.repeated_ids.push_back(p.id);
+  }
   r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);
   for (CovariateSeries& s : r.series) set_date_marks(s, request.marks);
   OGRSpatialReference points_crs;

@@ -184,6 +184,15 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual((rows[0]["lon"], rows[0]["lat"]), ("-34.875000001", "-7.98"))
         self.assertEqual((rows[1]["lon"], rows[1]["lat"]), ("", ""))
         self.assertEqual(rows[1]["L7_ETMs.b1.reason"], "no coordinates")
+        self.assertNotIn("more than one point", done.stderr)
+        # An id used twice: both points keep their rows, and a note says so.
+        with open(points, "a") as f:
+            f.write("p1,-34.88,-7.99\n")
+        done = kt.run_kalends(["-q", "extract", self.raster, "--points", points, "--out", out, "--id-column", "site",
+                               "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p1"])
+        self.assertIn("1 ids name more than one point (first: 'p1')", done.stderr)
 
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
