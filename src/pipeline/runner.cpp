@@ -334,12 +334,15 @@ class Runner {
   }
 
  private:
+  // " --out FOLDER" where the user gave one, for the commands an error suggests.
+  std::string out_option() const { return options_.out_dir.empty() ? "" : " --out " + options_.out_dir; }
+
   // The plan of `kalends plan`, made again from the job: a job or grid changed since is refused.
   void load_plan() {
     const int shards = detail::planned_shard_count(out_);
     if (shards == 0)
       throw UsageError(out_, "no shard plan in this output folder: run 'kalends plan " + options_.job_file +
-                                 " --shards N' first");
+                                 out_option() + " --shards N' first");
     if (options_.shard_count && options_.shard_count != shards)
       throw UsageError("--shard", fmt::format("{}/{}: the plan has {} shards (run kalends plan again to change it)",
                                               options_.shard, options_.shard_count, shards));
@@ -348,9 +351,15 @@ class Runner {
     std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
     if (const auto at = text.find("\nthreads\t"); at != std::string::npos) threads = std::atoi(text.c_str() + at + 9);
     plan_ = detail::make_shard_plan(job_, out_, shards, threads);
-    if (plan_->text() != text)
+    if (plan_->text() != text) {
+      const auto planned_job = text.find("\njob\t");
+      const std::string job_line = planned_job == std::string::npos ? "" : text.substr(planned_job + 5, text.find('\n', planned_job + 5) - planned_job - 5);
+      if (!job_line.empty() && job_line != plan_->job_path)
+        throw UsageError(plan_->file(), "made for another job file (" + job_line + "); give that one, or run kalends plan " +
+                                            options_.job_file + out_option() + " again");
       throw UsageError(plan_->file(), "out of date: the job file or its inputs' grids changed since it was made; "
                                       "run kalends plan again (and the shards)");
+    }
   }
 
   // What shard `k` lacks ("" when every split step is done and up to date).
@@ -394,8 +403,8 @@ class Runner {
     }
     if (problems.empty()) return true;
     report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
-                                "or kalends run {} --shard K), then --finalize",
-                                missing, plan_->shards, problems, list, options_.job_file);
+                                "or kalends run {}{} --shard K), then --finalize",
+                                missing, plan_->shards, problems, list, options_.job_file, out_option());
     return false;
   }
 

@@ -243,6 +243,7 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
         self.assertEqual(done.returncode, 2)
         self.assertIn("no shard plan", done.stderr)
+        self.assertIn("--out " + self.out("no-plan") + " --shards N", done.stderr)  # the command to run
         self.assertEqual(kalends("plan", self.job, "--out", self.out("no-plan"), "--shards", "2", "-q").returncode, 0)
         # An empty value (an unset $SLURM_ARRAY_TASK_ID) or a fraction must not run anything,
         # least of all the whole job.
@@ -253,6 +254,12 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
             self.assertEqual(done.returncode, 2, wrong)
             self.assertIn(words, done.stderr)
         self.assertFalse(glob.glob(os.path.join(self.out("no-plan"), "*", "*.tif")))
+        # The same job under another file name: the plan names the job file it was made for.
+        copy = os.path.join(os.path.dirname(self.job), "copy-of-job.toml")
+        shutil.copy(self.job, copy)
+        done = kalends("run", copy, "--out", self.out("no-plan"), "--shard", "1/2")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("made for another job file (%s)" % os.path.abspath(self.job), done.stderr)
 
     def test_shards_then_finalize_equal_one_run_and_stale_shards_are_named(self):
         out = self.out("by-hand")
