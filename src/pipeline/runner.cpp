@@ -125,15 +125,24 @@ ValueRules rules_of(const JobInput& input) {
 
 std::string step_folder(const std::string& out, const std::string& id) { return (fs::path(out) / id).string(); }
 
-void remove_partials(const std::string& folder) {
+// The hidden .partial files a run writes before renaming them into place; a killed run
+// leaves them behind.
+std::vector<fs::path> partials(const std::string& folder) {
+  std::vector<fs::path> found;
   std::error_code ec;
-  if (!fs::exists(folder)) return;
+  if (!fs::exists(folder)) return found;
   for (const auto& entry : fs::recursive_directory_iterator(folder, ec)) {
     const std::string name = entry.path().filename().string();
     if (entry.is_regular_file() && name.size() > 8 && name.front() == '.' &&
         name.compare(name.size() - 8, 8, ".partial") == 0)
-      fs::remove(entry.path(), ec);
+      found.push_back(entry.path());
   }
+  return found;
+}
+
+void remove_partials(const std::string& folder) {
+  std::error_code ec;
+  for (const fs::path& p : partials(folder)) fs::remove(p, ec);
 }
 
 // Whether every output a step recorded is still there.
@@ -288,7 +297,11 @@ class Runner {
         continue;
       }
       const auto record = db_ ? db_->step(step.id) : std::nullopt;
-      if (!record) {
+      const bool interrupted = !partials(step_folder(out_, step.id)).empty();
+      if (!record && interrupted) {
+        s.state = "interrupted";
+        s.detail = "a run stopped while writing it (hidden .partial files); the next run does it";
+      } else if (!record) {
         s.state = "never run";
       } else if (record->status == "failed") {
         s.state = "failed";

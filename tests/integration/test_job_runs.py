@@ -133,6 +133,23 @@ class JobFile(kt.TempDirTestCase):
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_status_tells_an_interrupted_step_from_one_never_run(self):
+        # A run killed while writing a step's first outputs leaves only hidden .partial files
+        # (test_killed_at_random_moments...); status then says so rather than "never run".
+        folder = os.path.join(self.tmp, "interrupted")
+        job = make_job(folder, years=1, size=32)
+        os.makedirs(os.path.join(folder, "out", "fill"))
+        with open(os.path.join(folder, "out", "fill", ".ndvi_2021-01-01.tif.partial"), "wb") as f:
+            f.write(b"II*\x00")
+        done = kt.run_kalends(["status", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        fill = [l for l in done.stdout.splitlines() if l.startswith("fill ")][0]
+        self.assertIn("interrupted", fill)
+        later = [l for l in done.stdout.splitlines() if l.startswith("seasons ")]
+        self.assertTrue(later and "never run" in later[0], done.stdout)
+        self.assertEqual(run(job).returncode, 0)
+        self.assertEqual(glob.glob(os.path.join(folder, "out", "**", ".*.partial"), recursive=True), [])
+
     def test_mistakes_are_named_with_their_line(self):
         good = JOB.format(lam="auto", extra="")
         self.check_refused(good.replace("envelope =", "envelop ="), good.split("\n").index('envelope = "upper"') + 1,
