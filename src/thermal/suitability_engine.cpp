@@ -117,20 +117,9 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   for (int y = first_year; y <= last_year; ++y)
     for (const Period& p : periods_of_year(y, request.period)) periods.push_back(p);
   // Which dates feed each period, with their weights: composites and days by their overlap in
-  // days (as `kalends seasons`); sub-daily records each count once in the period holding them.
-  std::vector<PeriodSources> sources;
-  if (source.sub_daily) {
-    sources.resize(periods.size());
-    for (std::size_t i = 0; i < times.size(); ++i)
-      for (std::size_t k = 0; k < periods.size(); ++k)
-        if (source.days[i] >= periods[k].first_day &&
-            source.days[i] < periods[k].first_day + periods[k].days) {
-          sources[k].composite.push_back(int(i));
-          sources[k].days.push_back(1.0);
-        }
-  } else {
-    sources = period_sources(times, periods, request.inputs.marks);
-  }
+  // days, sub-daily records once each in the period holding them (period_sources, as `kalends
+  // seasons`).
+  const std::vector<PeriodSources> sources = period_sources(times, periods, request.inputs.marks);
   std::vector<char> used(times.size(), 0);
   for (const PeriodSources& s : sources)
     for (int c : s.composite) used[c] = 1;
