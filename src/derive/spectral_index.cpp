@@ -28,7 +28,9 @@ float spectral_index(SpectralIndex kind, float red, float nir, float blue) {
   }
   if (!(denominator != 0) || !std::isfinite(numerator)) return NAN;
   const double v = numerator / denominator;
-  return v >= -1.0 && v <= 1.0 ? float(v) : NAN;
+  // Float reflectances put an index of exactly -1 or 1 up to about 1e-6 beyond it.
+  constexpr double rounding = 1e-5;
+  return v >= -1.0 - rounding && v <= 1.0 + rounding ? float(std::clamp(v, -1.0, 1.0)) : NAN;
 }
 
 namespace {
