@@ -2,6 +2,7 @@
 // WGS 84 by default) or from any OGR vector source with point geometries (its own CRS).
 #include <ogrsf_frmts.h>
 
+#include <cmath>
 #include <cstdlib>
 #include <filesystem>
 #include <regex>
@@ -110,6 +111,12 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       else {
         p.x = coordinate(xs, where);
         p.y = coordinate(ys, where);
+        // In degrees, a latitude beyond the poles is a typing slip or swapped columns.
+        if (crs.IsGeographic() && std::abs(p.y) > 90)
+          throw InputError(where, fmt::format("{} {} is beyond ±90 degrees (a slip, or {} and {} swapped?)",
+                                              source.y_column, ys, source.x_column, source.y_column));
+        if (crs.IsGeographic() && std::abs(p.x) > 360)
+          throw InputError(where, fmt::format("{} {} is beyond ±360 degrees", source.x_column, xs));
       }
     } else {
       const OGRGeometry* g = feature->GetGeometryRef();

@@ -171,6 +171,13 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("bad.csv:3: has lon '-34.87' but no lat", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "x.csv")))
+        # A latitude beyond the poles (WGS 84 points) is a slip, refused by its row.
+        with open(bad, "w") as f:
+            f.write("site,lon,lat\np1,-34.87,-97.98\n")
+        done = kt.run_kalends(["extract", self.raster, "--points", bad, "--out", os.path.join(self.tmp, "x.csv"),
+                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("bad.csv:2: lat -97.98 is beyond ±90 degrees", done.stderr)
 
     def test_coordinates_are_echoed_as_written(self):
         points = os.path.join(self.tmp, "echo.csv")
