@@ -104,8 +104,7 @@ IndexSummary run_index(const IndexRequest& request) {
   }
   const std::string name = request.name.empty() ? (evi ? "evi" : "ndvi") : request.name;
   std::error_code ec;
-  fs::create_directories(request.out_dir, ec);
-  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   std::vector<detail::OutputSpec> specs;
   for (const Layer& layer : red.layers()) {

@@ -118,8 +118,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
 
   // Output names: one per input date, plus the regular calendar.
   std::error_code ec;
-  fs::create_directories(request.out_dir, ec);
-  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   std::vector<detail::PeriodMean> periods;
   std::string calendar_dir;
   if (request.every) {

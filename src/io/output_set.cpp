@@ -109,6 +109,22 @@ void write_text_atomically(const std::string& path, const std::string& text) {
   sync_path(fs::path(path).parent_path().string(), true);
 }
 
+OutputFolder::OutputFolder(const std::string& path) {
+  std::error_code ec;
+  for (fs::path p = fs::absolute(path, ec); !p.empty() && !fs::exists(p, ec); p = p.parent_path()) {
+    created_.insert(created_.begin(), p.string());
+    if (p == p.parent_path()) break;
+  }
+  fs::create_directories(path, ec);
+  if (ec) throw OutputError(path, "cannot create the output folder: " + ec.message());
+}
+
+OutputFolder::~OutputFolder() {
+  std::error_code ec;
+  for (auto it = created_.rbegin(); it != created_.rend(); ++it)
+    if (!fs::is_empty(*it, ec) || ec || !fs::remove(*it, ec)) break;
+}
+
 OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression,
                      int tile)
     : tile_(tile) {

@@ -33,6 +33,20 @@ struct OutputSpec {
   std::vector<BandSpec> bands;  // float32, nodata NaN
 };
 
+/// A run's output folder: created, with any missing parents, at once; on destruction the
+/// folders it created are removed again if the run left them empty (a run that failed before
+/// writing), so that a failed run leaves the disk as it found it.
+class OutputFolder {
+ public:
+  explicit OutputFolder(const std::string& path);
+  ~OutputFolder();
+  OutputFolder(const OutputFolder&) = delete;
+  OutputFolder& operator=(const OutputFolder&) = delete;
+
+ private:
+  std::vector<std::string> created_;  // outermost first
+};
+
 class OutputSet {
  public:
   /// Creates every file (under its temporary name) with its float32 bands (nodata NaN):

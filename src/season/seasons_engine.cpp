@@ -95,8 +95,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const Window area = area_of(grid.width, grid.height, request.region, request.input);
   const std::string name = request.name.empty() ? stack.name() : request.name;
   std::error_code ec;
-  fs::create_directories(request.out_dir, ec);
-  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   // Output layout: index of each file, its bands.
   const std::string unit = stack.layers().front().unit;

@@ -62,8 +62,7 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
 
   const std::string name = request.name.empty() ? "diurnal" : request.name;
   std::error_code ec;
-  fs::create_directories(request.out_dir, ec);
-  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   const std::string how = source.mode == detail::TemperatureSource::Mode::extremes
                               ? "from the daily minimum and maximum"
                               : fmt::format(

@@ -128,8 +128,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const Window area = area_of(grid.width, grid.height, request.region, "region");
   const std::string name = request.name.empty() ? model.tag() : request.name;
   std::error_code ec;
-  fs::create_directories(request.out_dir, ec);
-  if (ec) throw OutputError(request.out_dir, "cannot create the output folder: " + ec.message());
+  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   std::string inputs_text, temperature_text;
   for (const Stack& s : source.stacks) inputs_text += (inputs_text.empty() ? "" : " ") + s.input();

@@ -90,7 +90,7 @@ class BadInput(kt.TempDirTestCase):
     def check_fails(self, args, names, keywords, label):
         """Runs `kalends fill ARGS --out DIR` into a fresh and into a used folder."""
         type(self).counter += 1
-        fresh = os.path.join(self.tmp, "out-fresh-%d" % self.counter)
+        fresh = os.path.join(self.tmp, "out-fresh-%d" % self.counter, "nested")
         used = os.path.join(self.tmp, "out-used-%d" % self.counter)
         shutil.copytree(self.previous, used)
         messages = []
@@ -107,6 +107,8 @@ class BadInput(kt.TempDirTestCase):
             self.assertTrue(any(k.lower() in line.lower() for k in keywords),
                             "%s: message has none of %s: %r" % (label, keywords, line))
             messages.append(line)
+        # Fresh folder: not even created, or removed again with the parent the run created.
+        self.assertFalse(os.path.exists(os.path.dirname(fresh)), "%s: output folder left behind" % label)
         # Fresh folder: nothing under a final name (and no temporary left behind).
         if os.path.isdir(fresh):
             finals = glob.glob(os.path.join(fresh, "**", "*.tif"), recursive=True)
