@@ -117,15 +117,14 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const std::string name = request.name.empty() ? stack.name() : request.name;
 
   // Output names: one per input date, plus the regular calendar.
-  std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   std::vector<detail::PeriodMean> periods;
   std::string calendar_dir;
+  std::optional<detail::OutputFolder> calendar_folder;  // inside output_folder, so removed before it
   if (request.every) {
     periods = detail::period_means(grid, *request.every, request.marks);
     calendar_dir = (fs::path(request.out_dir) / ("calendar-" + request.every->label())).string();
-    fs::create_directories(calendar_dir, ec);
-    if (ec) throw OutputError(calendar_dir, "cannot create the output folder: " + ec.message());
+    calendar_folder.emplace(calendar_dir);
   }
   // Years: with a reach, each is filled from its own slice of the grid, and a run may redo
   // only some of them.
@@ -522,6 +521,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // Outputs of dates no longer in the stack (a composite removed or replaced) would otherwise
   // linger beside the new ones; only this run's years are cleaned.
   {
+    std::error_code ec;  // a file that cannot be removed stays; the new outputs are complete
     std::set<std::string> current;
     for (const std::string& path : output_paths) current.insert(fs::path(path).lexically_normal().string());
     for (const std::string& folder : {request.out_dir, calendar_dir}) {

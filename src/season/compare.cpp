@@ -208,7 +208,6 @@ CompareSummary run_compare(const CompareRequest& request) {
   }
 
   // Class raster: how much of each pixel's variance is year-specific.
-  std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   summary.class_path = (fs::path(request.out_dir) / (name + "_year_specific_class.tif")).string();
   {

@@ -94,7 +94,6 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const Grid& grid = stack.grid();
   const Window area = area_of(grid.width, grid.height, request.region, request.input);
   const std::string name = request.name.empty() ? stack.name() : request.name;
-  std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   // Output layout: index of each file, its bands.

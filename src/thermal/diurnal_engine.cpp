@@ -61,7 +61,6 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   }  // fails before any file is made
 
   const std::string name = request.name.empty() ? "diurnal" : request.name;
-  std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   const std::string how = source.mode == detail::TemperatureSource::Mode::extremes
                               ? "from the daily minimum and maximum"

@@ -127,7 +127,6 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const Grid& grid = source.grid;
   const Window area = area_of(grid.width, grid.height, request.region, "region");
   const std::string name = request.name.empty() ? model.tag() : request.name;
-  std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   std::string inputs_text, temperature_text;

@@ -198,6 +198,9 @@ class BadInput(kt.TempDirTestCase):
         ds = None
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-02.tif"],
                          ["read", "truncat", "corrupt"], "truncated (opens, pixels unreadable)")
+        # With a calendar its folder is made too, and removed with the output folder.
+        self.check_fails([os.path.join(folder, "*.tif"), "--every", "1M"], ["ndvi_2020-02-02.tif"],
+                         ["read", "truncat", "corrupt"], "truncated, with a calendar")
 
     def test_truncated_geotiff_header(self):
         # Cut inside the header: the file no longer opens.
