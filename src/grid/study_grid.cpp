@@ -280,9 +280,10 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (flag_band) {
       how[flag_band] = "mode of the cells with a value (flags 0-2); 3 where none has one";
       DatasetPtr valued = mapped_band(in, flag_band, [](float f) { return f <= 2 ? f : NAN; }, where);
-      DatasetPtr all = mapped_band(in, flag_band, [](float f) { return f; }, where);
+      keep.push_back(band_subset(in, {flag_band}, where));  // the flag as it is, without a copy
+      GDALDataset& all = *keep.back();
       GDALDataset& valued_mode = warp_with(*valued, "mode");
-      GDALDataset& all_mode = warp_with(*all, "mode");
+      GDALDataset& all_mode = warp_with(all, "mode");
       keep.push_back(combined_band(valued_mode, *valued_mode.GetRasterBand(1), *all_mode.GetRasterBand(1),
                                    [](float with_value, float any) { return std::isnan(with_value) ? any : with_value; },
                                    where));
