@@ -391,8 +391,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         } catch (const InputError&) {
           bands.clear();
         }
-        if (bands.empty() && impossible_date_in_name(file))
-          throw InputError(file, "'" + *impossible_date_in_name(file) + "' in the file name is not a calendar date");
+        if (const auto impossible = impossible_date_in_name(file); bands.empty() && impossible)
+          throw InputError(file, "'" + *impossible + "' in the file name is not a calendar date");
         if (bands.empty())
           throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in "
                                  "its bands' metadata; give --date for a file of one date");
@@ -444,11 +444,11 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     if (bands == 1 || rules.one_date_per_file || rules.date || rules.band != 1) {
       if (rules.band > bands)
         throw InputError(input, fmt::format("has no band {} (it has {})", rules.band, bands));
+      const std::string file = detail::file_in_connection(input);
       auto time = rules.date;
-      if (!time) time = date_from_name(detail::file_in_connection(input));
-      if (!time && impossible_date_in_name(detail::file_in_connection(input)))
-        throw InputError(input, "'" + *impossible_date_in_name(detail::file_in_connection(input)) +
-                                    "' in the file name is not a calendar date");
+      if (!time) time = date_from_name(file);
+      if (const auto impossible = impossible_date_in_name(file); !time && impossible)
+        throw InputError(input, "'" + *impossible + "' in the file name is not a calendar date");
       const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {

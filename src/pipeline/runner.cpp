@@ -63,12 +63,17 @@ struct Scan {
   std::set<std::string> known_before;
 };
 
+// A file's modification time in nanoseconds, as the state database records it.
+std::int64_t mtime_ns(const struct stat& st) {
+  return std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec;
+}
+
 // Checksums, reused from the database while size and modification time are unchanged.
 std::string checksum_of(const std::string& path, const detail::StateDatabase* db, Scan& scan) {
   if (auto it = scan.checksum.find(path); it != scan.checksum.end()) return it->second;
   struct stat st {};
   if (::stat(path.c_str(), &st) != 0) throw InputError(path, "no such file");
-  const std::int64_t mtime = std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec;
+  const std::int64_t mtime = mtime_ns(st);
   const auto known = db ? db->input(path) : std::nullopt;
   std::string sum;
   if (known && known->size == st.st_size && known->mtime_ns == mtime) {
@@ -263,8 +268,7 @@ class Runner {
     for (const auto& [path, reason] : db_->skipped()) {
       struct stat st {};
       const auto known = db_->input(path);
-      if (!known || ::stat(path.c_str(), &st) != 0 || known->size != st.st_size ||
-          known->mtime_ns != std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec)
+      if (!known || ::stat(path.c_str(), &st) != 0 || known->size != st.st_size || known->mtime_ns != mtime_ns(st))
         continue;
       excluded_.push_back(path);
       left_out.push_back(path + ": " + reason);
