@@ -89,7 +89,6 @@ Cube read_band(const std::vector<std::string>& paths, int band, int width, int h
 struct Accumulator {
   std::int64_t cells = 0, covered = 0, within = 0, within_95 = 0, with_sd = 0;
   double se = 0, ae = 0, e = 0, t = 0, t2 = 0, z2 = 0;
-  bool has_sd = false;
   void add(double estimate, double truth, double sd) {
     ++cells;
     if (!std::isfinite(estimate)) return;
@@ -103,7 +102,6 @@ struct Accumulator {
     // The three calibration figures share one denominator: the cells given a value and an sd
     // (whittaker gives none where a pixel has fewer than 5 observations).
     if (std::isfinite(sd) && sd > 0) {
-      has_sd = true;
       ++with_sd;
       within += std::abs(err) <= sd;
       within_95 += std::abs(err) <= 1.959964 * sd;  // the normal distribution's 97.5 % quantile
@@ -123,8 +121,8 @@ struct Accumulator {
       s.bias = e / n;
       const double sst = t2 - t * t / n;
       s.r2 = sst > 0 ? 1.0 - se / sst : NAN;
-      s.within_one_sd = has_sd ? double(within) / double(with_sd) : -1;
-      s.within_95_interval = has_sd ? double(within_95) / double(with_sd) : -1;
+      s.within_one_sd = with_sd > 0 ? double(within) / double(with_sd) : -1;
+      s.within_95_interval = with_sd > 0 ? double(within_95) / double(with_sd) : -1;
       s.rms_error_over_sd = with_sd > 0 ? std::sqrt(z2 / double(with_sd)) : -1;
     } else {
       s.rmse = s.mae = s.bias = s.r2 = NAN;
