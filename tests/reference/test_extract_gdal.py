@@ -145,12 +145,17 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertGreaterEqual(checked, 6 * 40)
         self.assertGreaterEqual(outside_with_cells, 1)   # the last point, 1 px (28.5 m) west of the scene
 
+    def extract_site_table(self, points, out, *extra):
+        """`kalends extract` of the Landsat scene at a table with columns site, lon, lat and no date."""
+        return kt.run_kalends(list(extra) + ["extract", self.raster, "--points", points, "--out", out,
+                                             "--id-column", "site", "--x-column", "lon", "--y-column", "lat",
+                                             "--date-column", ""])
+
     def test_bad_points_file_is_one_clear_line(self):
         bad = os.path.join(self.tmp, "bad.csv")
         with open(bad, "w") as f:
             f.write("site,lon,lat\np1,-34.87,minus eight\n")
-        done = kt.run_kalends(["extract", self.raster, "--points", bad, "--out", os.path.join(self.tmp, "x.csv"),
-                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        done = self.extract_site_table(bad, os.path.join(self.tmp, "x.csv"))
         self.assertEqual(done.returncode, 2)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("bad.csv:2", done.stderr)
@@ -166,16 +171,14 @@ class ExtractLandsat(kt.TempDirTestCase):
         # without coordinates.
         with open(bad, "w") as f:
             f.write("site,lon,lat\np1,-34.87,-7.98\np2,-34.87\n")
-        done = kt.run_kalends(["extract", self.raster, "--points", bad, "--out", os.path.join(self.tmp, "x.csv"),
-                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        done = self.extract_site_table(bad, os.path.join(self.tmp, "x.csv"))
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("bad.csv:3: has lon '-34.87' but no lat", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "x.csv")))
         # A latitude beyond the poles (WGS 84 points) is a slip, refused by its row.
         with open(bad, "w") as f:
             f.write("site,lon,lat\np1,-34.87,-97.98\n")
-        done = kt.run_kalends(["extract", self.raster, "--points", bad, "--out", os.path.join(self.tmp, "x.csv"),
-                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        done = self.extract_site_table(bad, os.path.join(self.tmp, "x.csv"))
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("bad.csv:2: lat -97.98 is beyond ±90 degrees", done.stderr)
 
@@ -184,8 +187,7 @@ class ExtractLandsat(kt.TempDirTestCase):
         with open(points, "w") as f:
             f.write("site,lon,lat\np1,-34.875000001,-7.98\np2,,\n")
         out = os.path.join(self.tmp, "echo_table.csv")
-        done = kt.run_kalends(["-q", "extract", self.raster, "--points", points, "--out", out, "--id-column", "site",
-                               "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        done = self.extract_site_table(points, out, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
         rows = kt.read_table(out)
         self.assertEqual((rows[0]["lon"], rows[0]["lat"]), ("-34.875000001", "-7.98"))
@@ -195,8 +197,7 @@ class ExtractLandsat(kt.TempDirTestCase):
         # An id used twice: both points keep their rows, and a note says so.
         with open(points, "a") as f:
             f.write("p1,-34.88,-7.99\n")
-        done = kt.run_kalends(["-q", "extract", self.raster, "--points", points, "--out", out, "--id-column", "site",
-                               "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        done = self.extract_site_table(points, out, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p1"])
         self.assertIn("1 ids name more than one point (first: 'p1')", done.stderr)
