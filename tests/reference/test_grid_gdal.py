@@ -29,6 +29,29 @@ def run_grid_ok(testcase, args):
     testcase.assertEqual(done.returncode, 0, done.stderr)
 
 
+def write_named_bands(path, named_arrays, metadata=None, band_metadata=None):
+    """A float32 GeoTIFF on an invented UTM 36S grid (100 m cells), one named band per array,
+    NaN nodata, as kalends writes its layers."""
+    g = kt.gdal()
+    from osgeo import osr
+    h, w = named_arrays[0][1].shape
+    ds = g.GetDriverByName("GTiff").Create(path, w, h, len(named_arrays), g.GDT_Float32)
+    ds.SetGeoTransform((300000.0, 100.0, 0, 8000000.0, 0, -100.0))
+    srs = osr.SpatialReference()
+    srs.ImportFromEPSG(32736)
+    ds.SetProjection(srs.ExportToWkt())
+    for b, (name, array) in enumerate(named_arrays, 1):
+        band = ds.GetRasterBand(b)
+        band.WriteArray(array)
+        band.SetDescription(name)
+        band.SetNoDataValue(float("nan"))
+        for key, value in (band_metadata or {}).get(b, {}).items():
+            band.SetMetadataItem(key, value)
+    for key, value in (metadata or {}).items():
+        ds.SetMetadataItem(key, value)
+    ds = None
+
+
 class GridAgainstGdalWarp(kt.TempDirTestCase):
     def test_landsat_to_geographic_equals_gdal_warp(self):
         g = kt.gdal()
@@ -96,18 +119,8 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         value = np.where(flags == 3, np.nan, rng.random((h, w))).astype(np.float32)
         sd = np.where(flags == 3, np.nan, 0.01).astype(np.float32)
         path = os.path.join(self.tmp, "ndvi_2020-01-01.tif")
-        ds = g.GetDriverByName("GTiff").Create(path, w, h, 3, g.GDT_Float32)
-        ds.SetGeoTransform((300000.0, 100.0, 0, 8000000.0, 0, -100.0))
-        from osgeo import osr
-        srs = osr.SpatialReference()
-        srs.ImportFromEPSG(32736)
-        ds.SetProjection(srs.ExportToWkt())
-        for b, (name, array) in enumerate((("value", value), ("sd", sd), ("flag", flags)), 1):
-            ds.GetRasterBand(b).WriteArray(array)
-            ds.GetRasterBand(b).SetDescription(name)
-            ds.GetRasterBand(b).SetNoDataValue(float("nan"))
-        ds.SetMetadataItem("KALENDS_DATE", "2020-01-01")   # as kalends fill writes it
-        ds = None
+        write_named_bands(path, (("value", value), ("sd", sd), ("flag", flags)),
+                          {"KALENDS_DATE": "2020-01-01"})   # as kalends fill writes it
         out = os.path.join(self.tmp, "flags")
         run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "300",
                            "--extent", "300000,%r,%r,8000000" % (8000000.0 - h * 100, 300000.0 + w * 100)])
@@ -168,7 +181,6 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         # the mean offset from the year's turn (day 366.25 = day 1 on a 365.25-day circle):
         # (-6.25 - 4.25 + 2 + 4) / 4 = -1.125, so day 365.125; an arithmetic mean says 182.5.
         g = kt.gdal()
-        from osgeo import osr
         rng = np.random.default_rng(5)
         h, w, f = 40, 60, 2
         days = rng.uniform(1, 366, size=(h, w)).astype(np.float32)
@@ -177,19 +189,8 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         classes = rng.integers(0, 4, size=(h, w)).astype(np.float32)
         seasons = rng.integers(0, 3, size=(h, w)).astype(np.float32)
         path = os.path.join(self.tmp, "ndvi_cycle_2020.tif")
-        ds = g.GetDriverByName("GTiff").Create(path, w, h, 3, g.GDT_Float32)
-        ds.SetGeoTransform((300000.0, 100.0, 0, 8000000.0, 0, -100.0))
-        srs = osr.SpatialReference()
-        srs.ImportFromEPSG(32736)
-        ds.SetProjection(srs.ExportToWkt())
-        for b, (name, array) in enumerate((("main_peak_doy", days), ("year_specific_class", classes),
-                                           ("seasons", seasons)), 1):
-            band = ds.GetRasterBand(b)
-            band.WriteArray(array)
-            band.SetDescription(name)
-            band.SetNoDataValue(float("nan"))
-        ds.GetRasterBand(2).SetMetadataItem("CLASS_MEANINGS", "0: low, 1: 2: 3: high")
-        ds = None
+        write_named_bands(path, (("main_peak_doy", days), ("year_specific_class", classes), ("seasons", seasons)),
+                          band_metadata={2: {"CLASS_MEANINGS": "0: low, 1: 2: 3: high"}})
         out = os.path.join(self.tmp, "cycle")
         run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "200",
                            "--extent", "300000,%r,%r,8000000" % (8000000.0 - h * 100, 300000.0 + w * 100)])
