@@ -16,6 +16,8 @@
 #include <string>
 #include <string_view>
 
+#include "io/file_glob.hpp"
+#include "io/netcdf_header.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends::detail {
@@ -99,6 +101,16 @@ class QuietStandardOutput {
 
 }  // namespace
 
+void require_not_cut_short(const std::string& file) {
+  const auto promised = classic_netcdf_promised_size(file);
+  if (!promised) return;
+  VSIStatBufL status;
+  if (VSIStatL(file.c_str(), &status) == 0 && std::uint64_t(status.st_size) < *promised)
+    throw InputError(file, "is cut short: its header promises " + std::to_string(*promised) +
+                               " bytes, the file has " + std::to_string(status.st_size) +
+                               " (an incomplete download or copy?)");
+}
+
 GDALDatasetUniquePtr open_raster(const std::string& path) {
   start_gdal();
   CPLErrorReset();
@@ -109,6 +121,7 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   quiet.reset();
   if (!dataset) throw InputError(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
+  require_not_cut_short(file_in_connection(path));
   return dataset;
 }
 

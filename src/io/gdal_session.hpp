@@ -18,6 +18,9 @@ void set_gdal_cache(std::int64_t bytes);
 /// The last GDAL error message of this thread, or `fallback`.
 std::string gdal_message(const std::string& fallback);
 
+/// InputError naming `file` if it is a classic NetCDF file shorter than its header says.
+void require_not_cut_short(const std::string& file);
+
 /// Opens a raster read-only; InputError naming `path` if it cannot.
 GDALDatasetUniquePtr open_raster(const std::string& path);
 

@@ -365,6 +365,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       auto time = date_from_name(file);
       if (!time) time = rules.date;
       const std::string path = connection ? connection->connection(file) : file;
+      detail::require_not_cut_short(file);  // before the open, whose errors are explained below
       GDALDatasetUniquePtr dataset;
       try {
         dataset = detail::open_raster(path);
@@ -414,6 +415,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   } else {
     if (fs::is_directory(input))
       throw InputError(input, "is a folder; give a pattern such as '" + input + "/*.tif'");
+    // Before the open: a damaged file must not read as "no such variable" below.
+    detail::require_not_cut_short(detail::file_in_connection(input));
     GDALDatasetUniquePtr dataset;
     try {
       dataset = detail::open_raster(input);

@@ -181,6 +181,68 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails(['NETCDF:"%s":tas' % garbage], ["garbage.nc"], ["cannot be read as NETCDF"],
                          "netcdf: not a NetCDF file")
 
+    def test_truncated_netcdf(self):
+        # The netCDF library reads the missing end of a cut classic file as zeros and says
+        # nothing: GDAL then gives band times of 0 (the time origin) and pixels of 0. Files
+        # written by another library (scipy.io.netcdf_file: classic and 64-bit offset, record
+        # dimension, one or two record variables, float and byte) are read whole, and refused
+        # once cut by a few bytes; so is the real NetCDF of ../shared/data cut anywhere.
+        import scipy.io
+        folder = os.path.join(self.tmp, "netcdf-cut")
+        os.makedirs(folder)
+        files = []
+        for version in (1, 2):
+            for kind in ("f4", "b"):
+                for with_time in (True, False):
+                    path = os.path.join(folder, "v%d_%s_%s.nc" % (version, kind, "t" if with_time else "n"))
+                    nc = scipy.io.netcdf_file(path, "w", version=version)
+                    nc.createDimension("time", None)
+                    nc.createDimension("y", 6)
+                    nc.createDimension("x", 5)
+                    if with_time:
+                        t = nc.createVariable("time", "f8", ("time",))
+                        t.units = "days since 2001-01-01"
+                        t.standard_name = "time"
+                        t[:7] = np.arange(7) * 16.0
+                    v = nc.createVariable("ndvi", kind, ("time", "y", "x"))
+                    v[:7] = (np.random.default_rng(version).random((7, 6, 5)) * 100).astype(kind)
+                    nc.close()
+                    files.append((path, with_time))
+        for path, with_time in files:
+            # Without a time variable the file is one record variable alone, whose byte records
+            # carry no padding; it has no dates, so only `inspect`'s reason is looked at.
+            done = kt.run_kalends(["inspect", 'NETCDF:"%s":ndvi' % path])
+            self.assertNotIn("cut short", done.stderr, path)
+            if with_time:
+                self.assertEqual(done.returncode, 0, "%s whole: %s" % (path, done.stderr))
+            with open(path, "rb") as f:
+                data = f.read()
+            # Float data ends unpadded, so 4 bytes fewer is short; byte records may end in padding.
+            cut = path.replace(".nc", "-cut.nc")
+            with open(cut, "wb") as f:
+                f.write(data[:len(data) - (4 if "_f4_" in path else 8)])
+            name = os.path.basename(cut)
+            if with_time:
+                self.check_fails(['NETCDF:"%s":ndvi' % cut], [name], ["cut short"], "cut " + name)
+            else:
+                done = kt.run_kalends(["inspect", 'NETCDF:"%s":ndvi' % cut])
+                self.assertEqual(done.returncode, 2, done.stderr)
+                self.assertEqual(done.stderr.count("\n"), 1, done.stderr)
+                self.assertIn(name + ": is cut short", done.stderr)
+        real = os.path.join(kt.SHARED_DATA, "monthly-temperature", "bcsd_obs_1999.nc")
+        if os.path.exists(real):
+            with open(real, "rb") as f:
+                data = f.read()
+            for keep in (20000, 60000, len(data) - 100):
+                cut = os.path.join(folder, "bcsd-%d.nc" % keep)
+                with open(cut, "wb") as f:
+                    f.write(data[:keep])
+                self.check_fails(['NETCDF:"%s":tas' % cut], [os.path.basename(cut)], ["cut short"],
+                                 "real NetCDF cut at %d" % keep)
+                # A pattern of such files names the damaged one, not a missing variable.
+                self.check_fails(['NETCDF:"%s":tas' % os.path.join(folder, "bcsd-%d*.nc" % keep)],
+                                 [os.path.basename(cut)], ["cut short"], "pattern, cut at %d" % keep)
+
     def test_truncated_geotiff_half(self):
         # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
         # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
