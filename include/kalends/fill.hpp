@@ -90,4 +90,8 @@ using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;
 /// their final names only when every one of them is complete.
 FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress = {});
 
+/// The lines a job's fill step shows about its input (pixels the method could not fit, a
+/// scale factor left unapplied); `kalends fill` says the same in its own words.
+std::vector<std::string> fill_notes(const FillRequest& request, const FillSummary& summary);
+
 }  // namespace kalends

@@ -32,6 +32,7 @@ struct StepReport {
   double seconds = 0;
   int outputs_written = 0, outputs_unchanged = 0;
   std::string caution;  // a reminder to show with the step's outputs (suitability)
+  std::vector<std::string> notes;  // about the step's input data: values taken as missing, pixels not fitted
 };
 
 struct RunReport {

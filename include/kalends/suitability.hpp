@@ -129,4 +129,9 @@ void check_suitability_options(const SuitabilityRequest& request);
 
 SuitabilitySummary run_suitability(const SuitabilityRequest& request);
 
+/// What a user should know about the input temperatures (values taken as missing), one line
+/// each; empty when there is nothing to say. `kalends diurnal`, `kalends suitability` and a
+/// job's suitability step show the same lines.
+std::vector<std::string> temperature_notes(std::int64_t implausible, std::int64_t tmin_above_tmax);
+
 }  // namespace kalends

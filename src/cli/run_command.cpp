@@ -91,11 +91,13 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       if (done == total) std::fprintf(stderr, "\n");
     };
     events.step_finished = [=](const StepReport& r) {
-      if (json)
-        fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
-                   "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}}}\n",
-                   detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
-                   r.outputs_written, r.outputs_unchanged);
+      if (!json) return;
+      std::string notes;
+      for (const std::string& note : r.notes) notes += (notes.empty() ? "\"" : ", \"") + detail::json_escape(note) + "\"";
+      fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
+                 "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"notes\": [{}]}}\n",
+                 detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
+                 r.outputs_written, r.outputs_unchanged, notes);
     };
     const RunReport report = run_job(o->run, events);
     if (json) {
@@ -120,6 +122,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
         if (r.action == StepReport::Action::ran)
           fmt::print(" — {:.1f} s, {} files written, {} unchanged", r.seconds, r.outputs_written, r.outputs_unchanged);
         fmt::print("\n");
+        for (const std::string& note : r.notes) fmt::print("  note: {}\n", note);
         if (!r.caution.empty()) fmt::print("  {}\n", r.caution);
       }
       for (const std::string& s : report.skipped_inputs) fmt::print("  skipped input: {}\n", s);

@@ -149,11 +149,8 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
           "{:.1f} s -> {}\n",
           s.days, s.width, s.height, s.parameters.a, s.parameters.b, s.parameters.c, s.seconds,
           r.out_dir);
-      if (s.implausible > 0)
-        fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
-      if (s.tmin_above_tmax > 0)
-        fmt::print("  {} pixel-day(s) with tmin above tmax were taken as missing\n",
-                   s.tmin_above_tmax);
+      for (const std::string& note : temperature_notes(s.implausible, s.tmin_above_tmax))
+        fmt::print("  {}\n", note);
     }
   };
 }
@@ -221,11 +218,8 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
                    s.mean_suitable_periods, periods, r.threshold);
       else
         fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
-      if (s.implausible > 0)
-        fmt::print("  {} values outside -100..100 deg C were taken as missing\n", s.implausible);
-      if (s.tmin_above_tmax > 0)
-        fmt::print("  {} pixel-day(s) with tmin above tmax were taken as missing\n",
-                   s.tmin_above_tmax);
+      for (const std::string& note : temperature_notes(s.implausible, s.tmin_above_tmax))
+        fmt::print("  {}\n", note);
       std::fflush(stdout);
     }
     note_month_end_dates(s.dates_at_month_ends, r.inputs.marks);

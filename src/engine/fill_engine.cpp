@@ -90,6 +90,18 @@ struct Worker {
 
 }  // namespace
 
+std::vector<std::string> fill_notes(const FillRequest& request, const FillSummary& summary) {
+  std::vector<std::string> notes;
+  for (const auto& [reason, n] : summary.series_not_fitted)
+    notes.push_back(fmt::format("{} {} not fitted: {}", n, request.method.reach_days > 0 ? "pixel-years" : "pixels",
+                                reason));
+  if (!summary.unapplied_scaling.empty())
+    notes.push_back("the input states " + summary.unapplied_scaling +
+                    ", which GDAL leaves unapplied: the values were filled as stored (set 'scale' and "
+                    "'offset' if they are not in physical units)");
+  return notes;
+}
+
 FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress) {
   const auto started = std::chrono::steady_clock::now();
   detail::start_gdal();

@@ -710,6 +710,7 @@ class Runner {
     report.outputs_written = outcome.outputs_written;
     report.outputs_unchanged = outcome.outputs_unchanged;
     report.caution = outcome.caution;
+    report.notes = outcome.notes;
   }
 
   std::int64_t cli_memory() const;

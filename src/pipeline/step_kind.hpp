@@ -81,6 +81,7 @@ void take_run_settings(Request& r, const StepContext& c) {
 struct StepOutcome {
   int outputs_written = 0, outputs_unchanged = 0;
   std::string caution;  // shown with the step's outputs
+  std::vector<std::string> notes;  // what the step's command would print about its input data
 };
 
 struct StepKind {

@@ -22,6 +22,15 @@
 
 namespace kalends {
 
+std::vector<std::string> temperature_notes(std::int64_t implausible, std::int64_t tmin_above_tmax) {
+  std::vector<std::string> notes;
+  if (implausible > 0)
+    notes.push_back(fmt::format("{} values outside -100..100 deg C were taken as missing", implausible));
+  if (tmin_above_tmax > 0)
+    notes.push_back(fmt::format("{} pixel-day(s) with tmin above tmax were taken as missing", tmin_above_tmax));
+  return notes;
+}
+
 const char* const suitability_caution =
     "Caution: temperature suitability describes temperature alone - not malaria risk, incidence "
     "or a case forecast; land-surface temperature is not air temperature; decisions belong with "

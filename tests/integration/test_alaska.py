@@ -163,6 +163,15 @@ class AlaskaNdvi(kt.TempDirTestCase):
         # Every pixel with an observation is either fitted or counted under a reason.
         self.assertLessEqual(sum(reasons.values()), observed_pixels)
         self.assertIn("too little of the year to determine 3 harmonics", done.stdout)
+        # A job's fill step says the same in its run summary, with the same count.
+        job = os.path.join(self.tmp, "harmonic3.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "%s"\nthreads = 2\n[inputs.ndvi]\nstack = "%s"\n[[step]]\nid = "fill"\n'
+                    'do = "fill"\ninput = "ndvi"\nmethod = "harmonic"\n'
+                    % (os.path.join(self.tmp, "harmonic3-job"), os.path.join(self.masked_dir, "*.tif")))
+        done = kt.run_kalends(["run", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: %d pixels not fitted: observations cover too little of the year" % cover[0], done.stdout)
         # With two harmonics (test_harmonic_two) most pixels are fitted: far fewer reasons.
         two = os.path.join(self.tmp, "harmonic2-reasons")
         kt.run_fill_ok(self, [os.path.join(self.masked_dir, "*.tif"), "--out", two,

@@ -12,7 +12,9 @@ of the same equations (tests/pylib/thermal_numpy.py); parameters fitted with
 """
 import datetime as dt
 import glob
+import json
 import os
+import shutil
 import sys
 import unittest
 
@@ -266,6 +268,20 @@ class DiurnalEra5(kt.TempDirTestCase):
                               + ["--out", os.path.join(self.tmp, "few-inverted-window")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn(message, done.stdout)
+        # The same step in a job says the same, in its summary and in the JSON log.
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "job-out"\n[inputs.tmin]\nstack = "tmin_*.tif"\n[inputs.tmax]\n'
+                    'stack = "tmax_*.tif"\n[[step]]\nid = "window"\ndo = "suitability"\ntmin = "tmin"\n'
+                    'tmax = "tmax"\nunits = "celsius"\nmodel = "window"\nwindow = [5, 10]\n')
+        done = kt.run_kalends(["run", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: " + message, done.stdout)
+        shutil.rmtree(os.path.join(folder, "job-out"))
+        done = kt.run_kalends(["run", job, "--log", "json"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        finished = [json.loads(line) for line in done.stdout.splitlines() if '"step_finished"' in line]
+        self.assertEqual([e["notes"] for e in finished], [[message]])
 
     def test_calibrated_parameters_lower_the_error_on_unseen_days(self):
         params = os.path.join(self.tmp, "fitted.toml")

@@ -177,11 +177,12 @@ StepKind fill_step_kind() {
       for (const FillSummary& s : tiled.tiles) {
         outcome.outputs_written += s.outputs_written;
         outcome.outputs_unchanged += s.outputs_unchanged;
+        for (const std::string& note : fill_notes(r, s)) outcome.notes.push_back(note);
       }
       return outcome;
     }
     const FillSummary s = run_fill(r, c.progress);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", fill_notes(r, s)};
   };
   return kind;
 }

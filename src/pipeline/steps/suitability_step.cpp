@@ -61,7 +61,8 @@ StepKind suitability_step_kind() {
   kind.run = [](const StepContext& c) {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution};
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution,
+                       temperature_notes(s.implausible, s.tmin_above_tmax)};
   };
   return kind;
 }
