@@ -654,6 +654,12 @@ class Runner {
         }
         for (int y : *it->second) years.insert({y, y + 1});
       }
+      // The year after the last one with data has nothing to redo.
+      int last = std::numeric_limits<int>::min();
+      for (const std::string& name : step.inputs)
+        for (const std::string& f : detail::files_below(step_folder(base_, name)))
+          if (const auto date = date_from_name(f)) last = std::max(last, date->date().year);
+      years.erase(years.upper_bound(last), years.end());
       if (known && !years.empty()) {
         only_years_ = std::vector<int>(years.begin(), years.end());
         report.reason += fmt::format("; redoing the year layers of {} and the synoptic layers", fmt::join(*only_years_, ", "));
