@@ -61,13 +61,20 @@ TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, in
       m.reason = "survey date before the layers (first " + series.files.front().time.label() + ")";
       return m;
     }
-    const int own = static_cast<int>(after - spans.begin()) - 1;
+    int own = static_cast<int>(after - spans.begin()) - 1;
     if (!(t < spans[own].second)) {
-      m.reason = after == spans.end()
-                     ? "survey date after the layers (last " + series.files.back().time.label() + ")"
-                     : "no layer stands for the survey date (between " + series.files[own].time.label() +
-                           " and " + series.files[own + 1].time.label() + ")";
-      return m;
+      if (after == spans.end()) {
+        m.reason = "survey date after the layers (last " + series.files.back().time.label() + ")";
+        return m;
+      }
+      // Between two seasons of composites: the day itself reads nothing, and its lags read the
+      // composites before the gap, lag 1 the last of them.
+      if (lag == 0) {
+        m.reason = "no layer stands for the survey date (between " + series.files[own].time.label() + " and " +
+                   series.files[own + 1].time.label() + ")";
+        return m;
+      }
+      ++own;
     }
     if (own - lag < 0) {
       m.reason = "lag before the layers (first " + series.files.front().time.label() + ")";

@@ -117,13 +117,24 @@ class ExtractBetweenSeasons(kt.TempDirTestCase):
             f.write("id,longitude,latitude,date\nwinter,-149.495,64.505,2005-01-15\n"
                     "summer,-149.495,64.505,%s\n" % first_2005)
         out = os.path.join(self.tmp, "table.csv")
-        done = kt.run_kalends(["extract", filled, "--points", points, "--out", out])
+        done = kt.run_kalends(["extract", filled, "--points", points, "--out", out, "--lags", "1,2"])
         self.assertEqual(done.returncode, 0, done.stderr)
         rows = {row["id"]: row for row in kt.read_table(out)}
         self.assertEqual(rows["winter"]["ndvi"], "")
         self.assertIn("between %s and %s" % (last_2004, first_2005), rows["winter"]["ndvi.reason"])
         self.assertEqual(rows["summer"]["ndvi.matched"], first_2005)
         self.assertEqual(rows["summer"]["ndvi.reason"], "")
+        # Lags read the composites before the gap on purpose (docs/extract.md): lag 1 the last
+        # of 2004, lag 2 the one before, with the values GDAL reads from those files.
+        dates_2004 = [f[5:15] for f in files if f.startswith("ndvi_2004")]
+        for lag, date in ((1, dates_2004[-1]), (2, dates_2004[-2])):
+            self.assertEqual(rows["winter"]["ndvi.lag%d.matched" % lag], date)
+            ds = g.Open(os.path.join(filled, "ndvi_%s.tif" % date))
+            expected = ds.GetRasterBand(1).ReadAsArray()[49, 50]  # -149.495, 64.505 at 0.01 degrees
+            ds = None
+            self.assertAlmostEqual(float(rows["winter"]["ndvi.lag%d" % lag]), expected, delta=1e-6)
+        # In season, lag 1 is the composite before the one that stands for the day.
+        self.assertEqual(rows["summer"]["ndvi.lag1.matched"], dates_2004[-1])
 
 
 class FillCalendarMonthEnds(kt.TempDirTestCase):
