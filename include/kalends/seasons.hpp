@@ -43,7 +43,15 @@ struct SeasonsSummary {
   double seconds = 0;
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
   std::vector<std::string> outputs;
+  /// Pixels with a synoptic value in some period, and those whose synoptic cycle has
+  /// descriptors (a value in every period); the periods (0-based) with no value anywhere.
+  std::int64_t pixels_with_values = 0, pixels_with_cycle = 0;
+  std::vector<int> periods_without_value;
 };
+
+/// What a user should know about a seasons run's outputs (cycle layers left empty because
+/// periods have no value), one line each; `kalends seasons` and a job's seasons step show them.
+std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary);
 
 /// The names of the cycle descriptor bands, in order.
 const std::vector<std::string>& cycle_band_names();

@@ -99,6 +99,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
     if (!global.quiet)
       fmt::print("kalends seasons: {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
                  s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds, r.out_dir, s.files);
+    for (const std::string& note : seasons_notes(r, s)) std::fprintf(stderr, "note: %s\n", note.c_str());
     note_month_end_dates(s.dates_at_month_ends, r.marks);
   };
 }

@@ -4,10 +4,12 @@
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
 
+#include <atomic>
 #include <chrono>
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <set>
 
 #include "engine/block_runner.hpp"
@@ -68,6 +70,28 @@ void check_seasons_options(const SeasonsRequest& request) {
     throw UsageError("--prominence", "must be between 0 and 1");
   if (!(request.cycle.threshold_share > 0 && request.cycle.threshold_share < 1))
     throw UsageError("--threshold", "must be between 0 and 1");
+}
+
+std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary) {
+  std::vector<std::string> notes;
+  if (summary.pixels_with_values == 0 || summary.pixels_with_cycle == summary.pixels_with_values) return notes;
+  if (summary.pixels_with_cycle == 0 && !summary.periods_without_value.empty()) {
+    static const char* const months[] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
+                                         "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"};
+    std::vector<std::string> names;
+    for (int q : summary.periods_without_value)
+      names.push_back(request.period.kind == CalendarPeriod::Kind::month ? std::string(months[q % 12])
+                                                                         : fmt::format("day {}", 1 + q * request.period.days));
+    notes.push_back(fmt::format("the cycle layers are empty: their descriptors need a value in every period, and {} of "
+                                "the {} periods have none anywhere ({}); the year and synoptic layers hold the "
+                                "periods with data",
+                                summary.periods_without_value.size(), summary.periods, fmt::join(names, ", ")));
+  } else {
+    notes.push_back(fmt::format("{} of the {} pixels with data lack a value in some period of the synoptic cycle: "
+                                "their cycle descriptors are empty",
+                                summary.pixels_with_values - summary.pixels_with_cycle, summary.pixels_with_values));
+  }
+  return notes;
 }
 
 SeasonsSummary run_seasons(const SeasonsRequest& request) {
@@ -170,8 +194,14 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     w.reader = stack.reader();
     return w;
   });
+  // Pixels with any synoptic value, pixels with synoptic cycle descriptors, and the periods that
+  // have a value anywhere: a stack of one season has no cycle descriptors, and says why.
+  std::atomic<std::int64_t> pixels_with_values{0}, pixels_with_cycle{0};
+  std::vector<std::atomic<bool>> period_has_value(P);
   auto process = [&](const Block& block, Worker& w) {
     const Window& core = block.core;
+    std::int64_t with_values = 0, with_cycle = 0;
+    std::vector<char> has_value(P, 0);
     const std::int64_t n = core.pixels();
     w.layers.assign(times.size() * n, NAN);
     w.plane.resize(n);
@@ -238,7 +268,13 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         put_cycle(cycle_file[y], p, describe_cycle(w.padded, P, request.cycle, harmonics));
       }
       for (int q = 0; q < 3 * P; ++q) w.padded[q] = mean[q % P];
-      put_cycle(cycle_synoptic, p, describe_cycle(w.padded, P, request.cycle, harmonics));
+      const CycleDescriptors synoptic_cycle = describe_cycle(w.padded, P, request.cycle, harmonics);
+      put_cycle(cycle_synoptic, p, synoptic_cycle);
+      bool any = false;
+      for (int q = 0; q < P; ++q)
+        if (std::isfinite(mean[q])) any = true, has_value[q] = 1;
+      with_values += any;
+      with_cycle += std::isfinite(synoptic_cycle.mean);
       // Synoptic miss: RMSE of year-specific against synoptic, and the share of the
       // year-specific variance the synoptic cycle explains (1 - SS_res / SS_tot).
       double res = 0, tot = 0;
@@ -258,6 +294,10 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       band(miss, 2)[p] = float(1.0 - explained);
     }
     outputs.write_all(core, w.bands, w.tile);
+    pixels_with_values += with_values;
+    pixels_with_cycle += with_cycle;
+    for (int q = 0; q < P; ++q)
+      if (has_value[q]) period_has_value[q] = true;
   };
   detail::run_blocks(plan, threads, workers, process);
   outputs.set_keep_unchanged(request.keep_unchanged);
@@ -274,6 +314,10 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.first_year = first_year;
   summary.last_year = last_year;
   summary.dates_at_month_ends = dates_at_month_ends(times);
+  summary.pixels_with_values = pixels_with_values;
+  summary.pixels_with_cycle = pixels_with_cycle;
+  for (int q = 0; q < P; ++q)
+    if (!period_has_value[q]) summary.periods_without_value.push_back(q);
   summary.outputs = output_paths;
   summary.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
   return summary;

@@ -179,6 +179,26 @@ class AlaskaNdvi(kt.TempDirTestCase):
         with open(os.path.join(two, "fill-summary.json")) as f:
             self.assertLess(sum(json.load(f)["series_not_fitted"].values()), 0.2 * observed_pixels)
 
+    def test_seasons_of_summers_have_no_cycle_descriptors_and_say_why(self):
+        # The composites cover late May to September (day of year 145-257 plus 16 days): the
+        # months October to April have no value anywhere, so no pixel has the complete year the
+        # cycle descriptors need (docs/outputs.md). Those layers are empty and the run says why;
+        # the synoptic means hold May to September.
+        filled = os.path.join(self.tmp, "seasons-fill")
+        kt.run_fill_ok(self, [os.path.join(self.masked_dir, "*.tif"), "--out", filled, "--lambda", "10",
+                              "--subset", "0,0,30,30", "--threads", "2"])
+        out = os.path.join(self.tmp, "seasons")
+        done = kt.run_kalends(["seasons", filled, "--out", out, "--period", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: the cycle layers are empty", done.stderr)
+        self.assertIn("7 of the 12 periods have none anywhere (Jan, Feb, Mar, Apr, Oct, Nov, Dec)", done.stderr)
+        g = kt.gdal()
+        cycle = g.Open(glob.glob(os.path.join(out, "*_cycle_synoptic.tif"))[0]).ReadAsArray()
+        self.assertFalse(np.isfinite(cycle).any())
+        mean = g.Open(glob.glob(os.path.join(out, "*_synoptic_mean.tif"))[0]).ReadAsArray()
+        with_values = [m + 1 for m in range(12) if np.isfinite(mean[m]).any()]
+        self.assertEqual(with_values, [5, 6, 7, 8, 9])
+
     def test_calendar_leaves_the_winters_empty(self):
         # The stack holds summers only: its composites (16 days from each date, day of year
         # 145-257, so up to 28/29 September) cover May to September. The monthly calendar has

@@ -39,8 +39,9 @@ StepKind seasons_step_kind() {
   };
   kind.check_values = [](const StepContext& c) { check_seasons_options(seasons_request(c)); };
   kind.run = [](const StepContext& c) {
-    const SeasonsSummary s = run_seasons(seasons_request(c));
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, ""};
+    const SeasonsRequest r = seasons_request(c);
+    const SeasonsSummary s = run_seasons(r);
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", seasons_notes(r, s)};
   };
   return kind;
 }
