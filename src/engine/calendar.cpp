@@ -82,6 +82,9 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
     for (std::int64_t d = begin; d < end; ++d) {
       const double t = double(d) - start_day;  // days since grid start
       if (t < grid.slot_days.front() || t > grid.slot_days.back()) continue;
+      // A month at the edge of the season: only its days that some composite stands for, not
+      // the curve across the gap between seasons.
+      if (mean.in_season && !season[std::size_t(day_of_year(civil_from_days(d)) - 1)]) continue;
       const auto upper = std::upper_bound(grid.slot_days.begin(), grid.slot_days.end(), t);
       const int hi = std::min<int>(grid.size - 1, int(upper - grid.slot_days.begin()));
       const int lo = std::max(0, hi - 1);

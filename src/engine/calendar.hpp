@@ -11,7 +11,7 @@ namespace kalends::detail {
 
 struct PeriodMean {
   TimePoint start;           // first day of the period
-  int days = 0;              // days of the period covered by the grid
+  int days = 0;              // days of the period the mean is over (covered by the grid, in season)
   std::vector<int> slots;    // slots the mean draws on
   std::vector<double> weights;  // summing to 1
   std::vector<int> slots_inside;  // slots whose date falls inside the period
@@ -23,7 +23,7 @@ struct PeriodMean {
 
 /// Periods from the one holding the first composite to the one holding the last. Each
 /// period's value is the day-weighted mean of the curve interpolated linearly between slots,
-/// over the days the grid covers. A slot's value stands for the middle of its composite: half
+/// over the days the grid covers and, at the edges of a season, that some composite stands for. A slot's value stands for the middle of its composite: half
 /// a step after its date when the dates mark starts, half a step before when they mark ends.
 std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period,
                                      DateMarks marks = DateMarks::middle);

@@ -83,6 +83,20 @@ TEST_CASE("calendar periods of a season no composite covers are out of season", 
       CHECK(p.in_season == (month >= 5 && month <= 9));
     }
   }
+  // The edge months average only their days in season (start marks): May 2005 from the first
+  // composite's date, 25 May (day 145 of 2005), to the 31st, 7 days; September 2004 from the
+  // 1st to day 257 + 15 = 272, the 28th in a leap year; September 2005 to the 22nd, where the
+  // grid ends (the last composite's middle). Their weights still sum to one.
+  const auto starts = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::start);
+  for (const auto& p : starts) {
+    double sum = 0;
+    for (double w : p.weights) sum += w;
+    if (p.in_season) CHECK(sum == Approx(1.0));
+    if (p.start.label() == "2005-05-01") CHECK(p.days == 7);
+    if (p.start.label() == "2004-09-01") CHECK(p.days == 28);
+    if (p.start.label() == "2005-09-01") CHECK(p.days == 22);
+    if (p.start.label() == "2005-07-01") CHECK(p.days == 31);
+  }
   // A stack covering the whole year leaves every period in season, 8-day ones included.
   std::vector<TimePoint> all_year;
   for (int k = 0; k < 46; ++k) all_year.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * (k % 23) + 365 * (k / 23)) * 86400});
