@@ -79,6 +79,8 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
                    detail::json_escape(step), kind, detail::json_escape(reason));
       else if (!global.quiet)
         fmt::print("{}: {} ({})\n", step, kind, reason);
+      // Each line reaches a log file as it happens: a run killed later leaves what it did.
+      std::fflush(stdout);
     };
     events.progress = [=](const std::string& step, int done, int total) {
       if (!terminal) return;
@@ -98,6 +100,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
                  "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"notes\": [{}]}}\n",
                  detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
                  r.outputs_written, r.outputs_unchanged, notes);
+      std::fflush(stdout);
     };
     const RunReport report = run_job(o->run, events);
     if (json) {

@@ -63,11 +63,13 @@ std::string canonical_text(const fs::path& p) {
   return ec ? p.lexically_normal().string() : c.string();
 }
 
-std::string legend_svg(const Quicklook& q, const std::string& unit) {
+// `number` makes the gradient's id unique in the page, and the same from run to run, so that a
+// report of unchanged outputs is the same file.
+std::string legend_svg(const Quicklook& q, const std::string& unit, int number) {
   std::string stops;
   for (int i = 0; i <= 10; ++i)
     stops += fmt::format("<stop offset=\"{}%\" stop-color=\"{}\"/>", i * 10, hex(viridis(i / 10.0)));
-  const std::string id = fmt::format("ramp{}", static_cast<const void*>(&q));
+  const std::string id = fmt::format("ramp{}", number);
   return fmt::format(
       "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"34\" class=\"legend\" role=\"img\">"
       "<defs><linearGradient id=\"{0}\">{1}</linearGradient></defs>"
@@ -309,7 +311,7 @@ ReportSummary run_report(const ReportRequest& request) {
     const Quicklook q = continuous_quicklook(file.path, bands, request.map_size);
     maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {} files; ramp from the 2nd to the 98th percentile</figcaption>{}",
                         image(q, s.name), escape(s.name), escape(s.description), escape(shown), s.files.size(),
-                        legend_svg(q, s.unit));
+                        legend_svg(q, s.unit, summary.maps));
     if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
     maps += "</figure>\n";
     ++summary.maps;

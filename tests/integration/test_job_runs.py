@@ -468,6 +468,35 @@ class Faults(kt.TempDirTestCase):
         for key in got:
             self.assertEqual(got[key], self.reference[key], key)
 
+    def test_a_killed_run_leaves_its_log_lines(self):
+        # Each event line is written out as it happens (a log file is not a terminal, so
+        # standard output is block-buffered): when the first step's line appears the run is
+        # still going, and after SIGKILL every line in the file is whole JSON. Without the
+        # flush the file stayed empty until the run ended, and a killed run left nothing.
+        out = os.path.join(self.tmp, "logged")
+        log = os.path.join(self.tmp, "run.jsonl")
+        with open(log, "w") as f:
+            process = subprocess.Popen([kt.KALENDS_BIN, "run", self.job, "--out", out, "--log", "json"],
+                                       stdout=f, stderr=subprocess.DEVNULL)
+        seen_while_running = None
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            with open(log) as f:
+                text = f.read()
+            if '"step_finished"' in text:
+                seen_while_running = process.poll() is None
+                break
+            if process.poll() is not None:
+                break
+            time.sleep(0.005)
+        process.send_signal(signal.SIGKILL)
+        process.wait()
+        self.assertTrue(seen_while_running, "no step_finished line while the run was going")
+        with open(log) as f:
+            events = [json.loads(line) for line in f.read().splitlines()]
+        self.assertEqual(events[0]["event"], "step_started")
+        self.assertIn({"fill": "step_finished"}, [{e["step"]: e["event"]} for e in events])
+
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
         first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],

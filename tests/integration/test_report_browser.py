@@ -81,6 +81,19 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertEqual(self.page.count('<svg xmlns="http://www.w3.org/2000/svg" width="760"'), 3)
         self.assertTrue("synoptic cycle from seasons.ndvi_synoptic_mean" in self.page, "no synoptic cycle")
 
+    def test_the_same_outputs_give_the_same_page(self):
+        # Every id in the page is unique (HTML), and a second report of the same outputs is the
+        # same file byte for byte, so that a nightly job leaves it unchanged. Ids had been memory
+        # addresses: different every run, and repeated.
+        ids = re.findall(r' id="([^"]+)"', self.page)
+        self.assertGreater(len(ids), 4)
+        self.assertEqual(len(ids), len(set(ids)), sorted(i for i in ids if ids.count(i) > 1))
+        again = os.path.join(self.tmp, "again.html")
+        done = kt.run_kalends(["report", self.out, "--html", again, "--pixels", "10,10;50,60;90,30"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(again) as f:
+            self.assertTrue(f.read() == self.page, "a second report of the same outputs differs")
+
     def test_every_image_loads_and_every_section_shows_in_chromium(self):
         probe = os.path.join(self.tmp, "probe.html")
         with open(probe, "w") as f:
