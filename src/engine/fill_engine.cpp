@@ -55,7 +55,12 @@ struct Counters {
 // (FillRequest::only_years) can report the whole stack.
 struct YearCounts {
   std::int64_t pixel_dates = 0, observed = 0, rejected = 0, filled = 0, unfilled = 0;
+  std::map<std::string, std::int64_t> not_fitted;  // pixel-years, by the method's reason
 };
+
+// fill-years.tsv: "# grid START STEP", then per year "YEAR PIXEL_DATES OBSERVED REJECTED FILLED
+// UNFILLED", then per year and reason "not-fitted<TAB>YEAR<TAB>COUNT<TAB>REASON".
+constexpr const char* not_fitted_tag = "not-fitted\t";
 
 // With a reach, each year is filled on its own slice of the grid.
 struct Segment {
@@ -157,10 +162,17 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       while (std::getline(in, line)) {
         YearCounts c;
         int year = 0;
-        if (std::sscanf(line.c_str(), "%d %lld %lld %lld %lld %lld", &year, (long long*)&c.pixel_dates,
-                        (long long*)&c.observed, (long long*)&c.rejected, (long long*)&c.filled,
-                        (long long*)&c.unfilled) == 6)
-          earlier_years[year] = c;
+        long long count = 0;
+        int reason_at = 0;
+        if (line.starts_with(not_fitted_tag)) {
+          if (std::sscanf(line.c_str() + 11, "%d\t%lld\t%n", &year, &count, &reason_at) == 2 && reason_at > 0)
+            earlier_years[year].not_fitted[line.substr(11 + reason_at)] += count;
+        } else if (std::sscanf(line.c_str(), "%d %lld %lld %lld %lld %lld", &year, (long long*)&c.pixel_dates,
+                               (long long*)&c.observed, (long long*)&c.rejected, (long long*)&c.filled,
+                               (long long*)&c.unfilled) == 6) {
+          c.not_fitted = std::move(earlier_years[year].not_fitted);
+          earlier_years[year] = std::move(c);
+        }
       }
       only = std::set<int>(request.only_years->begin(), request.only_years->end());
     }
@@ -419,7 +431,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         leave_unobserved(w.segment_out, n);
         if (!w.segment_out.chosen.empty())
           w.chosen.push_back({block.index, seg.year, core, w.segment_out.chosen});
-        for (const auto& [reason, n] : w.segment_out.not_fitted) w.counters.not_fitted[reason] += n;
+        for (const auto& [reason, n] : w.segment_out.not_fitted) w.years[seg.year].not_fitted[reason] += n;
         for (std::int64_t cp = 0; cp < core_pixels; ++cp)
           for (int slot = seg.own_first; slot <= seg.own_last; ++slot) {
             const std::size_t from = std::size_t(cp) * n + (slot - seg.first_slot);
@@ -579,6 +591,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       YearCounts& t = years[year];
       t.pixel_dates += c.pixel_dates, t.observed += c.observed, t.rejected += c.rejected;
       t.filled += c.filled, t.unfilled += c.unfilled;
+      for (const auto& [reason, n] : c.not_fitted) t.not_fitted[reason] += n;
     }
   }
   // Years this run left alone keep the counts of the run that made their outputs.
@@ -592,7 +605,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     summary.filled += c.filled;
     summary.unfilled += c.unfilled;
     table += fmt::format("{} {} {} {} {} {}\n", year, c.pixel_dates, c.observed, c.rejected, c.filled, c.unfilled);
+    for (const auto& [reason, n] : c.not_fitted) summary.series_not_fitted[reason] += n;
   }
+  for (const auto& [year, c] : years)
+    for (const auto& [reason, n] : c.not_fitted) table += fmt::format("{}{}\t{}\t{}\n", not_fitted_tag, year, n, reason);
   // Whether a pixel has a value on some date spans all years: not known after a partial run
   // (null in every run with a reach, so that a partial run writes what a whole one would).
   if (reach > 0) summary.pixels_without_value = -1;

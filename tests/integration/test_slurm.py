@@ -24,6 +24,8 @@ import tempfile
 import time
 import unittest
 
+import numpy as np
+
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "..", "tools"))
 import kalends_testlib as kt  # noqa: E402
@@ -208,6 +210,42 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(len(line.splitlines()), 1)
         self.assertIn("'ndvi' has 512 rows", line)
         self.assertIn("at most 2 shards", line)
+
+    def test_counts_of_pixels_not_fitted_add_up_over_shards(self):
+        # Real gaps: the Alaska masked30 NDVI (see the data README) repeated six times down a
+        # 100 x 600 px grid, so that two 256-row strips exist; whittaker by year (reach) leaves
+        # some pixel-years with too few observations unfitted. fill-summary.json's reasons and
+        # fill-years.tsv (per year and reason) after --finalize are those of one machine: they
+        # had been the first shard's alone.
+        folder = os.path.join(self.tmp, "not-fitted")
+        stack = os.path.join(folder, "stack")
+        os.makedirs(stack)
+        g = kt.gdal()
+        source = kt.shared_path("alaska-ndvi", "masked30")
+        for name in sorted(os.listdir(source)):
+            if name.endswith(".tif"):
+                values = g.Open(os.path.join(source, name)).ReadAsArray()
+                kt.write_raster(os.path.join(stack, name), np.tile(values, (6, 1)))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nmemory = "256M"\n[inputs.ndvi]\nstack = "stack/ndvi_*.tif"\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = "10"\nreach = 183\n')
+        single = os.path.join(folder, "single")
+        self.assertEqual(kalends("run", job, "--out", single, "-q").returncode, 0)
+        with open(os.path.join(single, "fill", "fill-summary.json")) as f:
+            reasons = json.load(f)["series_not_fitted"]
+        self.assertGreater(sum(reasons.values()), 0)
+        out = os.path.join(folder, "sharded")
+        self.assertEqual(kalends("plan", job, "--out", out, "--shards", "2").returncode, 0)
+        for shard in ("1/2", "2/2"):
+            done = kalends("run", job, "--out", out, "--shard", shard)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        done = kalends("run", job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assert_same_outputs(single, out)
+        with open(os.path.join(out, "fill", "fill-years.tsv")) as f:
+            per_year = [line.split("\t") for line in f if line.startswith("not-fitted\t")]
+        self.assertEqual(sum(int(fields[2]) for fields in per_year), sum(reasons.values()))
 
     def test_spacetime_shards_equal_one_run(self):
         # spacetime fills one tile row of 256 px at a time with its halo, whatever the budget,

@@ -30,6 +30,7 @@ std::vector<std::string> lines_of(const std::string& path) {
 void merge_years(const std::vector<std::string>& files, const std::string& path) {
   std::string header;
   std::map<int, std::array<long long, 5>> years;
+  std::map<std::pair<int, std::string>, long long> not_fitted;  // (year, reason): pixel-years
   for (const std::string& file : files) {
     const auto lines = lines_of(file);
     if (lines.empty()) throw InputError(file, "empty");
@@ -38,6 +39,13 @@ void merge_years(const std::vector<std::string>& files, const std::string& path)
     for (std::size_t i = 1; i < lines.size(); ++i) {
       int year = 0;
       long long c[5] = {0};
+      int reason_at = 0;
+      if (lines[i].starts_with("not-fitted\t")) {
+        if (std::sscanf(lines[i].c_str() + 11, "%d\t%lld\t%n", &year, &c[0], &reason_at) != 2 || reason_at == 0)
+          throw InputError(file, "unreadable line " + std::to_string(i + 1));
+        not_fitted[{year, lines[i].substr(11 + reason_at)}] += c[0];
+        continue;
+      }
       if (std::sscanf(lines[i].c_str(), "%d %lld %lld %lld %lld %lld", &year, &c[0], &c[1], &c[2], &c[3], &c[4]) != 6)
         throw InputError(file, "unreadable line " + std::to_string(i + 1));
       auto& total = years[year];
@@ -46,6 +54,7 @@ void merge_years(const std::vector<std::string>& files, const std::string& path)
   }
   std::string text = header + "\n";
   for (const auto& [year, c] : years) text += fmt::format("{} {} {} {} {} {}\n", year, c[0], c[1], c[2], c[3], c[4]);
+  for (const auto& [key, n] : not_fitted) text += fmt::format("not-fitted\t{}\t{}\t{}\n", key.first, n, key.second);
   write_text_atomically(path, text);
 }
 
@@ -58,6 +67,26 @@ void merge_summary(const std::vector<std::string>& files, const std::string& pat
   std::vector<std::string> lines = lines_of(files.front());
   std::map<std::string, long long> totals;
   std::set<std::string> unknown;  // null in some shard: not known for the whole grid either
+  // "series_not_fitted": {"reason": count, ...} over several lines: the counts add up by reason
+  // (the reasons are kept as written, escapes and all).
+  std::map<std::string, long long> not_fitted;
+  const std::string nested = "\"series_not_fitted\": {";
+  for (const std::string& file : files) {
+    bool inside = false;
+    for (const std::string& line : lines_of(file)) {
+      if (line.find(nested) != std::string::npos) {
+        inside = line.find('}') == std::string::npos;
+        continue;
+      }
+      if (!inside) continue;
+      const auto close = line.rfind("\":");
+      if (close == std::string::npos) {
+        inside = false;  // the closing brace
+        continue;
+      }
+      not_fitted[line.substr(line.find('"') + 1, close - line.find('"') - 1)] += std::stoll(line.substr(close + 2));
+    }
+  }
   for (const std::string& file : files)
     for (const std::string& line : lines_of(file)) {
       const auto q1 = line.find('"'), q2 = line.find('"', q1 + 1), colon = line.find(':', q2);
@@ -68,8 +97,31 @@ void merge_summary(const std::vector<std::string>& files, const std::string& pat
       if (value.find("null") != std::string::npos) unknown.insert(key);
       else totals[key] += std::stoll(value);
     }
-  std::string text;
+  // The summed reasons in the layout of a single run's summary (json_counts with an indent).
+  auto not_fitted_block = [&](const std::string& lead, bool comma) {
+    std::string block = lead + nested;
+    std::size_t k = 0;
+    for (const auto& [reason, n] : not_fitted) block += fmt::format("{}\n    \"{}\": {}", k++ ? "," : "", reason, n);
+    return block + (not_fitted.empty() ? "}" : "\n  }") + (comma ? "," : "") + "\n";
+  };
+  std::string text, lead;
+  bool skipping = false;
   for (std::string line : lines) {
+    if (skipping) {  // the first shard's own reasons, up to its closing brace
+      if (line.rfind("\":") == std::string::npos) {
+        text += not_fitted_block(lead, !line.empty() && line.back() == ',');
+        skipping = false;
+      }
+      continue;
+    }
+    if (const auto at = line.find(nested); at != std::string::npos) {
+      lead = line.substr(0, at);
+      if (line.find('}') != std::string::npos)
+        text += not_fitted_block(lead, !line.empty() && line.back() == ',');
+      else
+        skipping = true;
+      continue;
+    }
     const auto q1 = line.find('"'), q2 = line.find('"', q1 + 1), colon = line.find(':', q2);
     if (q1 != std::string::npos && q2 != std::string::npos && colon != std::string::npos) {
       const std::string key = line.substr(q1 + 1, q2 - q1 - 1);
