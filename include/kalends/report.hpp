@@ -13,6 +13,9 @@ namespace kalends {
 
 struct ReportRequest {
   std::string folder;  // a job's out/ (or a step's folder)
+  /// Only these subfolders of `folder` (a job's steps: what a report step's 'after' names);
+  /// every one when empty. A folder an earlier version of the job left is then not shown.
+  std::vector<std::string> steps;
   std::string html;    // the page to write
   std::vector<std::pair<int, int>> pixels;  // (column, row) to plot; empty = spread over the grid
   int samples = 4;     // pixels spread over the grid when none are given

@@ -558,6 +558,23 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         if (!current.count(entry.path().lexically_normal().string())) fs::remove(entry.path(), ec);
       }
     }
+    // A whole run also drops what this fill no longer makes: the calendar of another period
+    // (an earlier --every) and the per-year counts of a run by years. Later steps would read
+    // them as current.
+    if (!only) {
+      if (!(reach > 0)) fs::remove(years_file, ec);
+      for (const auto& entry : fs::directory_iterator(request.out_dir, ec)) {
+        const std::string folder = entry.path().filename().string();
+        if (!entry.is_directory() || !folder.starts_with("calendar-") ||
+            (request.every && folder == "calendar-" + request.every->label()))
+          continue;
+        for (const auto& file : fs::directory_iterator(entry.path(), ec)) {
+          const std::string f = file.path().filename().string();
+          if (f.starts_with(name + "_") && file.path().extension() == ".tif") fs::remove(file.path(), ec);
+        }
+        if (fs::is_empty(entry.path(), ec)) fs::remove(entry.path(), ec);
+      }
+    }
   }
 
   FillSummary summary;

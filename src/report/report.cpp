@@ -286,7 +286,14 @@ ReportSummary run_report(const ReportRequest& request) {
   std::error_code ec;
   if (!fs::is_directory(root, ec)) throw InputError(request.folder, "not a folder");
   if (request.samples < 1 || request.samples > 64) throw UsageError("--samples", "between 1 and 64 pixels");
-  const std::vector<CovariateSeries> all = find_covariates({request.folder});
+  std::vector<std::string> searched{request.folder}, prefixes;
+  if (!request.steps.empty()) {
+    searched.clear();
+    for (const std::string& step : request.steps)
+      if (fs::is_directory(root / step, ec)) searched.push_back((root / step).string()), prefixes.push_back(step);
+    if (searched.empty()) throw InputError(request.folder, "none of the steps shown has a folder here");
+  }
+  const std::vector<CovariateSeries> all = find_covariates(searched, false, prefixes);
   ReportSummary summary;
   const std::string title = request.title.empty() ? canonical_text(root) : request.title;
 
@@ -334,6 +341,11 @@ ReportSummary run_report(const ReportRequest& request) {
     }
     if (it->is_regular_file()) found.push_back(it->path());
   }
+  if (!request.steps.empty())
+    std::erase_if(found, [&](const fs::path& p) {
+      const std::string first = fs::relative(p, root).begin()->string();
+      return std::find(request.steps.begin(), request.steps.end(), first) == request.steps.end();
+    });
   std::sort(found.begin(), found.end());
   for (const fs::path& p : found) {
     if (p.filename() == "report.md" && fs::exists(p.parent_path() / "report.json") &&

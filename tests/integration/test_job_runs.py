@@ -392,6 +392,52 @@ night = "night_fill"
 """
 
 
+class EditedJob(kt.TempDirTestCase):
+    def test_outputs_the_job_no_longer_makes_are_not_read(self):
+        # A monthly calendar and a seasons step, then the job edited: no 'every', another
+        # lambda, the seasons step gone. The stale calendar (made with the old lambda) had stayed
+        # in the fill folder and gone on into the survey table; the report showed the removed
+        # step's layers. Now the calendar is removed and the report shows what 'after' names.
+        folder = os.path.join(self.tmp, "edited")
+        job = make_job(folder, lam="100", size=48)
+        with open(job) as f:
+            text = f.read()
+        points = os.path.join(folder, "points.csv")
+        g = kt.gdal()
+        ds = g.Open(sorted(glob.glob(os.path.join(folder, "stack", "ndvi", "*.tif")))[0])
+        x0, dx, _, y0, _, dy = ds.GetGeoTransform()
+        ds = None
+        with open(points, "w") as f:
+            f.write("id,x,y,date\nA,%r,%r,2021-06-15\n" % (x0 + 10.5 * dx, y0 + 10.5 * dy))
+        extra = ('[[step]]\nid = "extract"\ndo = "extract"\ninput = ["fill"]\npoints = "points.csv"\n'
+                 'x_column = "x"\ny_column = "y"\ncrs = "EPSG:%d"\n' % synth_stack.EPSG +
+                 '[[step]]\nid = "report"\ndo = "report"\nafter = ["fill", "seasons"]\n')
+        with open(job, "w") as f:
+            f.write(text + extra)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        out = os.path.join(folder, "out")
+        self.assertTrue(glob.glob(os.path.join(out, "fill", "calendar-1M", "*.tif")))
+        with open(os.path.join(out, "extract", "table.csv")) as f:
+            self.assertIn("fill.calendar-1M.ndvi", f.readline())
+        with open(os.path.join(out, "report", "report.html")) as f:
+            self.assertIn("seasons.ndvi_synoptic_mean", f.read())
+        edited = text.replace('every = "1M"\n', "").replace('lambda = "100"', 'lambda = "1000"')
+        edited = edited[:edited.index("[[step]]\ndo = \"seasons\"")]
+        with open(job, "w") as f:
+            f.write(edited + extra.replace('["fill", "seasons"]', '["fill"]'))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "fill", "calendar-1M")))
+        with open(os.path.join(out, "extract", "table.csv")) as f:
+            self.assertNotIn("calendar", f.readline())
+        with open(os.path.join(out, "report", "report.html")) as f:
+            page = f.read()
+        self.assertIn("fill.ndvi", page)
+        self.assertNotIn("seasons.", page)
+        self.assertTrue(os.path.isdir(os.path.join(out, "seasons")))  # left, not shown
+
+
 class IncrementalCountsOfRealGaps(kt.TempDirTestCase):
     def test_pixels_not_fitted_are_counted_for_every_year_after_a_partial_run(self):
         # The Alaska masked30 NDVI (real cloud patterns; data README): whittaker by year leaves

@@ -15,6 +15,7 @@ namespace {
 ReportRequest report_request(const StepContext& c) {
   ReportRequest r;
   r.folder = c.out;
+  r.steps = c.list("after");
   // 'html' is written, not read, so it is no path key (those are checksummed as inputs).
   const std::filesystem::path html(c.text("html"));
   r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
