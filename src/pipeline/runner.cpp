@@ -318,7 +318,7 @@ class Runner {
           s.detail = fmt::format("{} UTC, {:.1f} s", record->finished, record->seconds);
         } else {
           s.state = "stale";
-          s.detail = !complete ? "outputs missing" : why_changed(record->fingerprint, fingerprint);
+          s.detail = !complete ? "outputs missing" : why_changed(*record, step, fingerprint);
         }
       }
       list.push_back(s);
@@ -394,7 +394,7 @@ class Runner {
       std::string why;
       if (!record) why = "never run";
       else if (record->status == "failed") why = "failed";
-      else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(record->fingerprint, fingerprint_of(step));
+      else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
       else if (!outputs_exist(*record)) why = "outputs missing";
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
       reasons.insert(why);
@@ -549,7 +549,10 @@ class Runner {
     return std::vector<int>(years.begin(), years.end());
   }
 
-  std::string why_changed(const std::string& before, const std::string& now) const {
+  // Why a step with a record is stale: its parameters, or what it reads. The file counts are
+  // the step's own inputs' (not the whole job's), from the checksums its last run recorded.
+  std::string why_changed(const detail::StepRecord& record, const JobStep& step, const std::string& now) {
+    const std::string& before = record.fingerprint;
     if (before.empty()) return "failed last time";
     const bool params = before.substr(0, 16) != now.substr(0, 16);
     const bool reads = before.substr(17) != now.substr(17);
@@ -557,8 +560,17 @@ class Runner {
     if (params) why = "parameters or program version changed";
     if (reads) {
       std::string what = "its inputs changed";
-      if (scan_.new_files || scan_.changed_files)
-        what = fmt::format("its inputs changed ({} new, {} changed files)", scan_.new_files, scan_.changed_files);
+      if (!record.inputs.empty()) {
+        const std::map<std::string, std::string> files = inputs_of(step);
+        int added = 0, changed = 0, removed = 0;
+        for (const auto& [f, sum] : files)
+          if (auto it = record.inputs.find(f); it == record.inputs.end()) ++added;
+          else if (it->second != sum) ++changed;
+        for (const auto& [f, sum] : record.inputs) removed += files.count(f) == 0;
+        if (added || changed || removed)
+          what = fmt::format("its inputs changed ({} new, {} changed{} files)", added, changed,
+                             removed ? fmt::format(", {} removed", removed) : "");
+      }
       why += (why.empty() ? "" : "; ") + what;
     }
     return why.empty() ? "outputs missing" : why;
@@ -597,7 +609,7 @@ class Runner {
     }
     report.reason = !record ? "never run" : record->status == "failed" ? "failed last time"
                                                  : !complete ? "outputs missing"
-                                                             : why_changed(record->fingerprint, fingerprint);
+                                                             : why_changed(*record, step, fingerprint);
     if (options_.dry_run) {
       report.action = StepReport::Action::would_run;
       return;

@@ -438,6 +438,34 @@ class EditedJob(kt.TempDirTestCase):
         self.assertTrue(os.path.isdir(os.path.join(out, "seasons")))  # left, not shown
 
 
+class StaleReasons(kt.TempDirTestCase):
+    def test_each_step_counts_its_own_new_changed_and_removed_files(self):
+        # Two inputs, a fill each: one date added to both and one removed from the second.
+        # Each step counts its own input's files; they had been added up over the whole job
+        # ("2 new" for each step).
+        source = kt.shared_path("alaska-ndvi", "masked30")
+        folder = os.path.join(self.tmp, "reasons")
+        for name in ("a", "b"):
+            os.makedirs(os.path.join(folder, name))
+            for path in sorted(glob.glob(os.path.join(source, "ndvi_200[45]*.tif"))):
+                shutil.copy(path, os.path.join(folder, name))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.a]\nstack = "a/ndvi_*.tif"\n[inputs.b]\nstack = "b/ndvi_*.tif"\n'
+                    '[[step]]\nid = "fill_a"\ndo = "fill"\ninput = "a"\n'
+                    '[[step]]\nid = "fill_b"\ndo = "fill"\ninput = "b"\n')
+        self.assertEqual(run(job, "-q").returncode, 0)
+        for name in ("a", "b"):
+            shutil.copy(os.path.join(source, "ndvi_2006-05-25.tif"), os.path.join(folder, name))
+        os.remove(os.path.join(folder, "b", "ndvi_2004-05-24.tif"))
+        for args in (("--dry-run",), ()):
+            done = run(job, *args)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertRegex(done.stdout, r"fill_a +(would run|ran) +its inputs changed \(1 new, 0 changed files\)")
+            self.assertRegex(done.stdout,
+                             r"fill_b +(would run|ran) +its inputs changed \(1 new, 0 changed, 1 removed files\)")
+
+
 class IncrementalCountsOfRealGaps(kt.TempDirTestCase):
     def test_pixels_not_fitted_are_counted_for_every_year_after_a_partial_run(self):
         # The Alaska masked30 NDVI (real cloud patterns; data README): whittaker by year leaves
