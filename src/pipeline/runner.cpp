@@ -188,11 +188,17 @@ class Runner {
       report_.out_dir = base_;
     }
     const fs::path state_dir = fs::path(base_) / ".kalends";
-    std::error_code ec;
-    fs::create_directories(state_dir, ec);
-    if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
-    FolderLock lock(state_dir.string(), options_.wait_for_lock);
-    db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
+    std::optional<FolderLock> lock;
+    if (options_.dry_run && !fs::exists(state_dir / "state.sqlite")) {
+      // A dry run of a job never run changes nothing: not even the output folder is made.
+      db_ = std::make_unique<detail::StateDatabase>(":memory:");
+    } else {
+      std::error_code ec;
+      fs::create_directories(state_dir, ec);
+      if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
+      lock.emplace(state_dir.string(), options_.wait_for_lock);
+      db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
+    }
     memory_ = job_.memory;
     if (options_.skip_bad) leave_out_known_bad_inputs();
     if (options_.finalize && !shards_ready()) {
@@ -236,7 +242,8 @@ class Runner {
           }
         }
         report_.error = e.what();
-        report_.exit_code = dynamic_cast<const InputError*>(&caught) ? 2 : 1;
+        // 2 for bad input or options (a job's memory too small for one block), as the commands.
+        report_.exit_code = dynamic_cast<const InputError*>(&caught) || dynamic_cast<const UsageError*>(&caught) ? 2 : 1;
         failed = true;
       }
       if (events_.step_finished) events_.step_finished(r);

@@ -231,6 +231,11 @@ class Incremental(kt.TempDirTestCase):
     def test_second_run_does_nothing_and_keeps_every_file(self):
         job = make_job(os.path.join(self.tmp, "a"))
         out = os.path.join(self.tmp, "a", "out")
+        # A dry run of a job never run says what would run and makes nothing, not the folder.
+        dry = run(job, "--dry-run")
+        self.assertEqual(dry.returncode, 0, dry.stderr)
+        self.assertRegex(dry.stdout, r"fill\s+would run\s+never run")
+        self.assertFalse(os.path.exists(out))
         first = run(job)
         self.assertEqual(first.returncode, 0, first.stdout + first.stderr)
         before = mtimes(out)
