@@ -179,8 +179,9 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const std::int64_t bytes_per_pixel = std::int64_t(times.size()) * 4 + 4 + std::int64_t(total_bands) * 4;
   std::set<std::string> files;
   for (const Layer& l : stack.layers()) files.insert(l.path);
-  const detail::MemoryShare share = detail::share_memory(request.memory_bytes, threads, bytes_per_pixel,
-                                                         int(files.size()), int(specs.size()));
+  const auto [share, at_once] = detail::share_for_blocks(
+      request.memory_bytes, threads, std::min(grid.width, tile_size), std::min(grid.height, tile_size), bytes_per_pixel,
+      int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
   std::vector<std::string> output_paths;
@@ -299,7 +300,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     for (int q = 0; q < P; ++q)
       if (has_value[q]) period_has_value[q] = true;
   };
-  detail::run_blocks(plan, threads, workers, process);
+  detail::run_blocks(plan, threads, workers, process, at_once);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
 

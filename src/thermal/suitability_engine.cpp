@@ -230,8 +230,9 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   std::set<std::string> files;
   for (const Stack& s : source.stacks)
     for (const Layer& l : s.layers()) files.insert(l.path);
-  const detail::MemoryShare share = detail::share_memory(
-      request.memory_bytes, threads, bytes_per_pixel, int(files.size()), int(specs.size()));
+  const auto [share, at_once] = detail::share_for_blocks(
+      request.memory_bytes, threads, std::min(grid.width, tile_size), std::min(grid.height, tile_size), bytes_per_pixel,
+      int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(
       grid.width, grid.height, 0, detail::parallel_block_pixels(window_grid(grid, area), share, threads), tile_size,
@@ -328,7 +329,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     }
     outputs.write_all(core, w.bands, w.tile);
   };
-  detail::run_blocks(plan, threads, workers, process);
+  detail::run_blocks(plan, threads, workers, process, at_once);
   std::int64_t implausible = 0, finite = 0, count_pixels = 0, tmin_above_tmax = 0,
                extreme_pairs = 0;
   double count_sum = 0;

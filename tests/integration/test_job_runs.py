@@ -116,22 +116,26 @@ class JobFile(kt.TempDirTestCase):
             self.assertIn(w, lines[0])
 
     def test_a_budget_too_small_names_the_job_key_and_what_would_do(self):
+        # A spacetime fill and a seasons step (which had said only "give more memory"); exit 2,
+        # as for a bad option, and the budget named then runs.
         folder = os.path.join(self.tmp, "small")
         make_job(folder)
         job = os.path.join(folder, "small.toml")
-        text = ('[job]\nout = "out"\nmemory = "{}"\n\n[inputs.ndvi]\nstack = "stack/ndvi/ndvi_*.tif"\n\n'
-                '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n')
-        with open(job, "w") as f:
-            f.write(text.format("8M"))
-        done = run(job)
-        self.assertEqual(done.returncode, 1, done.stderr)
-        line = done.stderr.strip().splitlines()[-1]
-        self.assertIn("small.toml: [job] memory: budget of 8 MiB is too small", line)
-        need = re.search(r"(\d+) MiB would do", line).group(1)
-        with open(job, "w") as f:
-            f.write(text.format(need + "M"))
-        done = run(job)
-        self.assertEqual(done.returncode, 0, done.stderr)
+        for step in ('id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n',
+                     'id = "seasons"\ndo = "seasons"\ninput = "ndvi"\n'):
+            text = ('[job]\nout = "out"\nmemory = "{}"\nthreads = 2\n\n[inputs.ndvi]\n'
+                    'stack = "stack/ndvi/ndvi_*.tif"\n\n[[step]]\n' + step)
+            with open(job, "w") as f:
+                f.write(text.format("8M"))
+            done = run(job)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            line = done.stderr.strip().splitlines()[-1]
+            self.assertIn("small.toml: [job] memory: budget of 8 MiB is too small", line)
+            need = re.search(r"(\d+) MiB would do", line).group(1)
+            with open(job, "w") as f:
+                f.write(text.format(need + "M"))
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stderr)
 
     def test_status_tells_an_interrupted_step_from_one_never_run(self):
         # A run killed while writing a step's first outputs leaves only hidden .partial files
