@@ -9,6 +9,7 @@
 #include <filesystem>
 #include <fmt/format.h>
 
+#include "engine/block_runner.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
@@ -126,7 +127,7 @@ IndexSummary run_index(const IndexRequest& request) {
   outputs.set_origin(area.x, area.y);
   std::atomic<std::int64_t> missing{0};
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
-  tbb::task_arena arena(threads);
+  tbb::task_arena arena(detail::arena_threads(threads));
   arena.execute([&] {
     tbb::parallel_for(std::size_t(0), red.layers().size(), [&](std::size_t i) {
       auto red_reader = red.reader(), nir_reader = nir.reader();

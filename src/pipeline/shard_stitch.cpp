@@ -1,5 +1,7 @@
 #include "pipeline/shard_stitch.hpp"
 
+#include "engine/block_runner.hpp"
+
 #include <gdal_priv.h>
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
@@ -165,7 +167,7 @@ StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int h
   if (!rasters.empty()) {
     OutputSet set(std::move(specs), layouts.front().grid, layouts.front().compression, layouts.front().tile);
     set.set_keep_unchanged(true);
-    tbb::task_arena arena(threads > 0 ? threads : tbb::task_arena::automatic);
+    tbb::task_arena arena(threads > 0 ? arena_threads(threads) : tbb::task_arena::automatic);
     arena.execute([&] {
       tbb::parallel_for(std::size_t(0), rasters.size(), [&](std::size_t i) {
         const int tile = layouts[i].tile;

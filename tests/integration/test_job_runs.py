@@ -621,6 +621,23 @@ class Faults(kt.TempDirTestCase):
         self.assertEqual(events[0]["event"], "step_started")
         self.assertIn({"fill": "step_finished"}, [{e["step"]: e["event"]} for e in events])
 
+    def test_more_threads_than_cores_keep_the_json_log_clean(self):
+        # threads = 64 on a machine with fewer cores: TBB had warned on standard error in every
+        # run ("the number of workers is currently limited"), which a cron line's 2>&1 put into
+        # the JSON log. Every line of standard output and error together is now JSON, and the
+        # outputs are those of the default threads (they never depend on the threads).
+        if (os.cpu_count() or 1) >= 64:
+            self.skipTest("64 or more cores: no oversubscription to check")
+        out = os.path.join(self.tmp, "threads64")
+        done = run(self.job, "--out", out, "--log", "json", "--threads", "64")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.stderr, "")
+        for line in done.stdout.splitlines():
+            json.loads(line)
+        got = content(out)
+        for key in self.reference:
+            self.assertEqual(got[key], self.reference[key], key)
+
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
         first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],
