@@ -357,7 +357,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     GDALDatasetUniquePtr written(driver->CreateCopy(temporary.c_str(), result.get(), false, cog.List(), nullptr, nullptr));
     if (!written) {
       fs::remove(temporary, ec);
-      throw OutputError(target.string(), "cannot write (" + detail::gdal_message("disk full?") + ")");
+      throw detail::write_failure(target.string(), "cannot write (" + detail::gdal_message("unknown reason") + ")");
     }
     written.reset();
     if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {

@@ -3,6 +3,7 @@
 #include <gdal_utils.h>
 
 #include <fcntl.h>
+#include <sys/statvfs.h>
 #include <unistd.h>
 
 #include <cmath>
@@ -20,6 +21,17 @@
 namespace kalends::detail {
 
 namespace fs = std::filesystem;
+
+OutputError write_failure(const std::string& path, const std::string& what) {
+  struct statvfs device{};
+  const std::string folder = fs::path(path).parent_path().string();
+  if (::statvfs(folder.empty() ? "." : folder.c_str(), &device) == 0) {
+    const unsigned long long free_bytes = static_cast<unsigned long long>(device.f_bavail) * device.f_frsize;
+    if (free_bytes < (4ull << 20))
+      return OutputError(path, "no space left on the device (" + std::to_string(free_bytes >> 10) + " KiB free); " + what);
+  }
+  return OutputError(path, what);
+}
 
 std::string temporary_name(const std::string& final_path, const std::string& tag) {
   const fs::path p(final_path);
@@ -102,7 +114,7 @@ void write_text_atomically(const std::string& path, const std::string& text) {
     if (!out) {
       std::error_code ec;
       fs::remove(temporary, ec);
-      throw OutputError(path, "cannot write");
+      throw write_failure(path, "cannot write");
     }
   }
   publish(temporary, path);
@@ -151,7 +163,7 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
     file->dataset.reset(driver->Create(file->temporary.c_str(), grid.width, grid.height,
                                        int(spec.bands.size()), GDT_Float32, options.List()));
     if (!file->dataset)
-      throw OutputError(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
+      throw write_failure(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
     GDALDataset& ds = *file->dataset;
     if (grid.has_geotransform) {
       std::array<double, 6> gt = grid.geotransform;
@@ -205,7 +217,7 @@ void OutputSet::write(std::size_t index, const Window& input_core, std::span<con
         CPLErrorReset();
         if (file.dataset->GetRasterBand(int(b) + 1)->WriteBlock(tx / tile_, ty / tile_, scratch.data()) !=
             CE_None)
-          throw OutputError(file.spec.path, "write failed (" + gdal_message("disk full?") + ")");
+          throw write_failure(file.spec.path, "write failed (" + gdal_message("unknown reason") + ")");
       }
     }
 }
@@ -238,11 +250,11 @@ void crop_raster(const std::string& source, const Window& window, const std::str
   GDALTranslateOptionsFree(options);
   if (!out || failed) {
     if (out) GDALClose(out);
-    throw OutputError(path, "cannot write the window of " + source + " (" + gdal_message("unknown reason") + ")");
+    throw write_failure(path, "cannot write the window of " + source + " (" + gdal_message("unknown reason") + ")");
   }
   CPLErrorReset();
   GDALClose(out);
-  if (CPLGetLastErrorType() >= CE_Failure) throw OutputError(path, "write failed (" + gdal_message("disk full?") + ")");
+  if (CPLGetLastErrorType() >= CE_Failure) throw write_failure(path, "write failed (" + gdal_message("unknown reason") + ")");
 }
 
 bool same_raster_content(const std::string& a, const std::string& b) {
@@ -282,7 +294,7 @@ void OutputSet::commit() {
     CPLErrorReset();
     file->dataset.reset();  // closing writes the remaining directory entries
     if (CPLGetLastErrorType() == CE_Failure)
-      throw OutputError(file->spec.path, "closing failed (" + gdal_message("disk full?") + ")");
+      throw write_failure(file->spec.path, "closing failed (" + gdal_message("unknown reason") + ")");
   }
   std::set<std::string> folders;
   for (auto& file : files_) {

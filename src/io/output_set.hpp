@@ -13,10 +13,16 @@
 #include <string>
 #include <vector>
 
+#include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/stack.hpp"
 
 namespace kalends::detail {
+
+/// The error for a failed write of `path`: says the device is full when it has (almost) no
+/// space left, the likeliest reason, which GDAL's own message ("TIFFRewriteDirectory: Error
+/// fetching directory count") does not say; `what` follows.
+OutputError write_failure(const std::string& path, const std::string& what);
 
 struct BandSpec {
   std::string description;

@@ -638,6 +638,24 @@ class Faults(kt.TempDirTestCase):
         for key in self.reference:
             self.assertEqual(got[key], self.reference[key], key)
 
+    def test_a_full_device_is_named(self):
+        # A 1 MiB tmpfs (needs root to mount; skipped otherwise): the write fails, and the one
+        # line says the device is full, not only GDAL's "TIFFAppendToStrip: Write error".
+        small = os.path.join(self.tmp, "small-device")
+        os.makedirs(small)
+        mounted = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1M", "tmpfs", small],
+                                 capture_output=True, text=True)
+        if mounted.returncode != 0:
+            self.skipTest("cannot mount a small tmpfs here: " + mounted.stderr.strip())
+        try:
+            done = run(self.job, "--out", os.path.join(small, "out"))
+        finally:
+            subprocess.run(["umount", small], capture_output=True)
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        line = done.stderr.strip().splitlines()[-1]
+        print("\n  " + line)
+        self.assertIn("no space left on the device", line)
+
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
         first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],
