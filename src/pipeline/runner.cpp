@@ -117,6 +117,20 @@ class FolderLock {
   int fd_ = -1;
 };
 
+// The pid of the run that holds `folder`'s lock now, or "" when none does.
+std::string running_pid(const std::string& folder) {
+  const int fd = ::open((fs::path(folder) / "lock").c_str(), O_RDONLY);
+  if (fd < 0) return "";
+  std::string pid;
+  if (::flock(fd, LOCK_SH | LOCK_NB) != 0) {
+    char text[32] = {0};
+    (void)!::pread(fd, text, sizeof text - 1, 0);
+    pid = std::string(text).empty() ? "?" : std::string(text);
+  }
+  ::close(fd);
+  return pid;
+}
+
 ValueRules rules_of(const JobInput& input) {
   ValueRules r;
   r.scale = input.scale;
@@ -290,6 +304,8 @@ class Runner {
     base_ = out_;
     const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
     if (fs::exists(state)) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
+    // A run going now: the steps it has not finished are being (re)made, not merely stale.
+    const std::string running = running_pid((fs::path(out_) / ".kalends").string());
     std::vector<StepStatus> list;
     // Steps are judged as the nightly --skip-bad run will see them: without the bad files it
     // left out, while those are unchanged. Each is listed after the steps.
@@ -327,6 +343,13 @@ class Runner {
           s.state = "stale";
           s.detail = !complete ? "outputs missing" : why_changed(*record, step, fingerprint);
         }
+      }
+      if (!running.empty() && s.state != "done") {
+        // Its hidden .partial files are the running run's own, so "interrupted" is not said.
+        const bool had_record = s.state == "stale" || s.state == "failed";
+        s.detail = fmt::format("a run (pid {}) is going now; before it: {}", running,
+                               had_record ? s.state + (s.detail.empty() ? "" : " (" + s.detail + ")") : "never done");
+        s.state = "running";
       }
       list.push_back(s);
     }
@@ -460,6 +483,7 @@ class Runner {
                              options_.threads > 0 ? options_.threads : job_.threads, cli_memory());
     report.outputs_written = outcome.written;
     report.outputs_unchanged = outcome.unchanged;
+    if (const char* caution = detail::find_step_kind(step.kind)->caution) report.caution = caution;
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
     db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, detail::files_below(folder), inputs_of(step)});

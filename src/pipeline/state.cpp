@@ -93,6 +93,13 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     throw OutputError(path, "state database: " + message);
   }
   sqlite3_busy_timeout(db_, 10000);
+  // SQLite opens a write-protected file read-only without a word; the run would then replace
+  // outputs and fail only when it records them.
+  if (!read_only && sqlite3_db_readonly(db_, "main") == 1) {
+    sqlite3_close(db_);
+    db_ = nullptr;
+    throw OutputError(path, "the state database cannot be written (permissions?); nothing was run");
+  }
   if (!read_only) {
     // Rollback journal with full sync: a kill or power cut leaves the last committed state.
     exec("PRAGMA synchronous = FULL");

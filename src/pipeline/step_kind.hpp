@@ -95,6 +95,9 @@ struct StepKind {
   /// it is read (and `--dry-run`), not hours into an unattended run.
   std::function<void(const StepContext&)> check_values;
   std::function<StepOutcome(const StepContext&)> run;
+  /// A reminder shown with the step's outputs however they were made (run, or stitched from
+  /// shards): suitability's; nullptr for most kinds.
+  const char* caution = nullptr;
   /// Whether a new composite reaches only some years (the 'reach' key), so the runner may
   /// recompute those alone.
   bool years_by_reach = false;

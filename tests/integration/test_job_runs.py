@@ -151,6 +151,18 @@ class JobFile(kt.TempDirTestCase):
         self.assertIn("interrupted", fill)
         later = [l for l in done.stdout.splitlines() if l.startswith("seasons ")]
         self.assertTrue(later and "never run" in later[0], done.stdout)
+        # While a run holds the folder's lock (taken here as a run takes it), its steps are
+        # "running", not stale or interrupted.
+        import fcntl
+        os.makedirs(os.path.join(folder, "out", ".kalends"))
+        with open(os.path.join(folder, "out", ".kalends", "lock"), "w") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            lock.write("4242")
+            lock.flush()
+            done = kt.run_kalends(["status", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for line in done.stdout.splitlines():
+            self.assertRegex(line, r"^\w+ +\w+ +running +a run \(pid 4242\) is going now; before it: never done")
         self.assertEqual(run(job).returncode, 0)
         self.assertEqual(glob.glob(os.path.join(folder, "out", "**", ".*.partial"), recursive=True), [])
 

@@ -567,6 +567,8 @@ class SlurmArray(kt.TempDirTestCase, Compare):
         self.assertEqual(len(logs), 4, "one log per array task")
         done = self.finalize(out)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr + "".join(map(read, logs)))
+        # The stitched suitability step shows its caution, as a plain run does.
+        self.assertRegex(done.stdout, r"suitability +ran .*\n +Caution: temperature suitability describes temperature alone")
         n = self.assert_same_outputs(self.single, out)
         print("  finalize: %d outputs identical to the single-machine run" % n)
 

@@ -58,6 +58,7 @@ StepKind suitability_step_kind() {
     return std::string("a 'suitability' step needs 'day' and 'night', 'tmin' and 'tmax', or 'temperature'");
   };
   kind.check_values = [](const StepContext& c) { check_suitability_options(suitability_request(c)); };
+  kind.caution = suitability_caution;
   kind.run = [](const StepContext& c) {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
