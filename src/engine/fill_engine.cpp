@@ -675,6 +675,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   }
   json += "\n}\n";
   detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
+  // The two summaries are rewritten every run: counted, so that a run's file counts add up to
+  // what `kalends status` lists.
+  summary.outputs_written += 1 + (reach > 0 ? 1 : 0);
   return summary;
 }
 
