@@ -23,8 +23,9 @@ struct PeriodMean {
 
 /// Periods from the one holding the first composite to the one holding the last. Each
 /// period's value is the day-weighted mean of the curve interpolated linearly between slots,
-/// over the days the grid covers and, at the edges of a season, that some composite stands for. A slot's value stands for the middle of its composite: half
-/// a step after its date when the dates mark starts, half a step before when they mark ends.
+/// over the days the grid covers and, at the edges of a season, that some composite stands
+/// for. A slot's value stands for the middle of its composite: half a step after its date when
+/// the dates mark starts, half a step before when they mark ends.
 std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period,
                                      DateMarks marks = DateMarks::middle);
 

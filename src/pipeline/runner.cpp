@@ -59,8 +59,6 @@ std::vector<std::string> files_of(const std::string& pattern) {
 struct Scan {
   std::vector<detail::InputRecord> records;  // to remember
   std::map<std::string, std::string> checksum;
-  int new_files = 0, changed_files = 0;
-  std::set<std::string> known_before;
 };
 
 // A file's modification time in nanoseconds, as the state database records it.
@@ -80,8 +78,6 @@ std::string checksum_of(const std::string& path, const detail::StateDatabase* db
     sum = known->checksum;
   } else {
     sum = detail::file_checksum(path);
-    if (!known) ++scan.new_files;
-    else if (known->checksum != sum) ++scan.changed_files;
   }
   scan.records.push_back({path, std::int64_t(st.st_size), mtime, sum});
   scan.checksum[path] = sum;
