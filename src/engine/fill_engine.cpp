@@ -21,6 +21,7 @@
 #include "engine/calendar.hpp"
 #include "engine/memory_budget.hpp"
 #include "engine/parallel.hpp"
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
@@ -107,6 +108,32 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
   return notes;
 }
 
+namespace {
+
+// Whether `file` is a raster an earlier fill wrote (its metadata names the method): only such
+// files are ever removed as outputs the fill no longer makes, never a user's own.
+bool written_by_a_fill(const fs::path& file) {
+  GDALDatasetUniquePtr ds(GDALDataset::Open(file.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  return ds && ds->GetMetadataItem("KALENDS_METHOD") != nullptr;
+}
+
+// The outputs go beside no input: a fill into the folder of its own stack (or of its QA
+// layers) would replace the inputs, or remove them as outputs of dates no longer in the stack.
+void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option) {
+  std::error_code ec;
+  const fs::path out = fs::weakly_canonical(out_dir, ec);
+  if (ec) return;
+  for (const Layer& layer : stack.layers()) {
+    const fs::path file(detail::file_in_connection(layer.path));
+    const fs::path folder = fs::weakly_canonical(fs::absolute(file, ec).parent_path(), ec);
+    if (!ec && folder == out)
+      throw UsageError("--out", "'" + out_dir + "' holds the " + option + " files themselves (" + file.filename().string() +
+                                    "): the outputs would replace them; give another folder");
+  }
+}
+
+}  // namespace
+
 FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress) {
   const auto started = std::chrono::steady_clock::now();
   detail::start_gdal();
@@ -127,6 +154,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::optional<QaPairing> qa;
   if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
   const QaRule* keep = qa ? &qa->rule : nullptr;
+  require_out_apart_from(stack, request.out_dir, "input");
+  if (qa) require_out_apart_from(qa->stack, request.out_dir, "QA");
   const TimeGrid grid = TimeGrid::build(stack.times());
   const int n_slots = grid.size;
   const Grid& raster = stack.grid();
@@ -555,7 +584,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         if (file.rfind(name + "_", 0) != 0 || entry.path().extension() != ".tif") continue;
         const auto date = find_date_in_name(file.substr(name.size() + 1));
         if (!date || date->position != 0 || !written_year(date->time.date().year)) continue;
-        if (!current.count(entry.path().lexically_normal().string())) fs::remove(entry.path(), ec);
+        if (!current.count(entry.path().lexically_normal().string()) && written_by_a_fill(entry.path()))
+          fs::remove(entry.path(), ec);
       }
     }
     // A whole run also drops what this fill no longer makes: the calendar of another period
@@ -570,7 +600,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
           continue;
         for (const auto& file : fs::directory_iterator(entry.path(), ec)) {
           const std::string f = file.path().filename().string();
-          if (f.starts_with(name + "_") && file.path().extension() == ".tif") fs::remove(file.path(), ec);
+          if (f.starts_with(name + "_") && file.path().extension() == ".tif" && written_by_a_fill(file.path()))
+            fs::remove(file.path(), ec);
         }
         if (fs::is_empty(entry.path(), ec)) fs::remove(entry.path(), ec);
       }

@@ -274,11 +274,18 @@ ValidateReport run_validate(const ValidateRequest& request) {
                                     "observed value: there is nothing to score");
 
   // The withheld stack on disk, for the methods (run as `kalends fill` would run them).
+  // OUT/work is validate's own (a marker file says so): an earlier run's is replaced, a folder of
+  // that name the user keeps there is not touched.
   const fs::path work = fs::path(request.out_dir) / "work";
+  const fs::path marker = work / ".made-by-kalends-validate";
   std::error_code ec;
+  if (fs::exists(work, ec) && !fs::exists(marker, ec) && !fs::is_empty(work, ec))
+    throw UsageError("--out", "'" + work.string() + "' exists and was not made by kalends validate, which works "
+                              "there: move it, or give another --out");
   fs::remove_all(work, ec);
   fs::create_directories(work / "input", ec);
   if (ec) throw OutputError(work.string(), "cannot create: " + ec.message());
+  detail::write_text_atomically(marker.string(), "kalends validate works in this folder and removes it\n");
   const std::string name = stack.name().empty() ? "layer" : stack.name();
   for (int t = 0; t < dates; ++t) {
     const std::string label = stack.layers()[t].time.label();

@@ -144,5 +144,26 @@ class ValidateOptions(kt.TempDirTestCase):
             self.assertEqual(f.read(), "keep me\n")
 
 
+    def test_a_work_folder_of_the_users_is_left_alone(self):
+        # validate works in OUT/work and removes it; a 'work' folder the user already keeps in
+        # OUT (not marked as validate's) is refused and left as it was. It had been removed.
+        out = os.path.join(self.tmp, "users-work")
+        os.makedirs(os.path.join(out, "work"))
+        with open(os.path.join(out, "work", "notes.txt"), "w") as f:
+            f.write("mine\n")
+        done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
+                               "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("was not made by kalends validate", done.stderr)
+        with open(os.path.join(out, "work", "notes.txt")) as f:
+            self.assertEqual(f.read(), "mine\n")
+        # Its own work folder, kept by --keep-work, is replaced by the next run and removed.
+        own = os.path.join(self.tmp, "own-work")
+        for extra in (["--keep-work"], []):
+            done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
+                                   "--out", own] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(own, "work")))
+
 if __name__ == "__main__":
     unittest.main()

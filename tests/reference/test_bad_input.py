@@ -243,6 +243,36 @@ class BadInput(kt.TempDirTestCase):
                 self.check_fails(['NETCDF:"%s":tas' % os.path.join(folder, "bcsd-%d*.nc" % keep)],
                                  [os.path.basename(cut)], ["cut short"], "pattern, cut at %d" % keep)
 
+    def test_out_in_the_inputs_folder_is_refused_and_users_files_are_kept(self):
+        # --out naming the stack's own folder: the outputs would have replaced the inputs (and
+        # removed the other years' inputs as outputs of dates no longer in the stack). Refused,
+        # exit 2, naming --out; the folder is unchanged.
+        folder = self.variant("in-place")
+        before = snapshot(folder)
+        done = kt.run_kalends(["fill", os.path.join(folder, "ndvi_2020-0[12]*.tif"), "--out", folder])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--out: '%s' holds the input files themselves" % folder, done.stderr)
+        self.assertEqual(snapshot(folder), before)
+        # The same for the QA layers' folder.
+        done = kt.run_kalends(["fill", os.path.join(self.good, "*.tif"), "--qa", os.path.join(self.qa, "*.tif"),
+                               "--keep", "bits0-1 in 0,1", "--out", self.qa])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("holds the QA files themselves", done.stderr)
+        # A raster of the user's in the output folder, named like an output of a date the stack
+        # does not hold, is no output of a fill (no kalends metadata): it stays. A former
+        # output of such a date goes.
+        out = os.path.join(self.tmp, "users-raster")
+        shutil.copytree(self.previous, out)
+        mine = os.path.join(out, "ndvi_2019-12-31.tif")
+        write_layer(mine, seed=5)
+        fewer = self.variant("fewer-dates")
+        dropped = sorted(glob.glob(os.path.join(fewer, "ndvi_*.tif")))[-1]
+        os.remove(dropped)
+        done = kt.run_kalends(["-q", "fill", os.path.join(fewer, "*.tif"), "--out", out, "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertTrue(os.path.exists(mine))
+        self.assertFalse(os.path.exists(os.path.join(out, os.path.basename(dropped))))
+
     def test_truncated_geotiff_half(self):
         # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
         # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
