@@ -13,7 +13,7 @@ struct StudyGridRequest {
   std::vector<std::string> inputs;  // folders (their rasters, calendar subfolders too) or rasters
   std::string out_dir;
   std::string crs;                  // anything GDAL reads: EPSG:4326, a WKT or PROJ string
-  double resolution = 0;            // in the target CRS's units; 0 = GDAL's choice
+  std::optional<double> resolution;  // in the target CRS's units; none = GDAL's choice
   std::optional<std::vector<double>> extent;  // xmin, ymin, xmax, ymax in the target CRS
   std::string clip;                 // OGR vector source of the study area; cells outside: nodata
   std::string resample = "average";  // for continuous bands: average (area-weighted), nearest, bilinear, ...

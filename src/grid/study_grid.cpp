@@ -33,14 +33,18 @@ struct Source {
   std::string path, relative;  // relative: the output's name below out_dir
 };
 
-std::vector<Source> sources_of(const std::vector<std::string>& inputs) {
+// The rasters of the inputs; a folder is searched below, except for the output folder (which
+// may lie inside it: the next run would grid its own outputs again, one level deeper).
+std::vector<Source> sources_of(const std::vector<std::string>& inputs, const std::string& out_dir) {
   std::vector<Source> sources;
+  std::error_code ec;
+  const fs::path out = fs::weakly_canonical(out_dir, ec);
   for (const std::string& input : inputs) {
     if (fs::is_directory(input)) {
       std::vector<Source> found;
       for (auto it = fs::recursive_directory_iterator(input); it != fs::recursive_directory_iterator(); ++it) {
         const std::string name = it->path().filename().string();
-        if (name.front() == '.') {
+        if (name.front() == '.' || (it->is_directory() && fs::weakly_canonical(it->path(), ec) == out)) {
           if (it->is_directory()) it.disable_recursion_pending();
           continue;
         }
@@ -182,7 +186,8 @@ void check_study_grid_options(const StudyGridRequest& request) {
     if (srs.SetFromUserInput(request.crs.c_str()) != OGRERR_NONE)
       throw UsageError("--crs '" + request.crs + "'", "not a CRS GDAL knows");
   }
-  if (!(request.resolution >= 0)) throw UsageError("--resolution", "must be positive");
+  if (request.resolution && !(*request.resolution > 0 && std::isfinite(*request.resolution)))
+    throw UsageError("--resolution", "must be positive");
   if (request.extent && (request.extent->size() != 4 || !((*request.extent)[0] < (*request.extent)[2]) ||
                          !((*request.extent)[1] < (*request.extent)[3])))
     throw UsageError("--extent", "expected XMIN,YMIN,XMAX,YMAX with XMIN < XMAX and YMIN < YMAX");
@@ -202,16 +207,18 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
                                          detail::gdal_message("no layer") + ")");
     if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
   }
-  const std::vector<Source> sources = sources_of(request.inputs);
+  const std::vector<Source> sources = sources_of(request.inputs, request.out_dir);
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
   std::vector<DatasetPtr> datasets;
   for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
 
   std::vector<std::string> common{"-of", "MEM", "-t_srs", request.crs, "-ot", "Float32", "-dstnodata", "nan"};
-  if (request.resolution > 0) {
-    const std::string r = fmt::format("{:.17g}", request.resolution);
+  if (request.resolution) {
+    const std::string r = fmt::format("{:.17g}", *request.resolution);
     common.insert(common.end(), {"-tr", r, r});
-    if (!request.extent && request.clip.empty()) common.push_back("-tap");
+    // Cells on multiples of the resolution, clipped or not, so that layers delivered with
+    // another clip (or none) stack cell on cell; an --extent is taken as given.
+    if (!request.extent) common.push_back("-tap");
   }
   if (request.extent)
     for (const std::string& v : {std::string("-te"), fmt::format("{:.17g}", (*request.extent)[0]),
@@ -230,8 +237,10 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     const std::string& where = sources[i].path;
     std::vector<int> continuous, classes, days;
     int flag_band = 0;
+    bool has_share = false;  // a layer gridded before: its filled_share is averaged like the values
     std::map<int, std::string> how;  // input band -> what KALENDS_RESAMPLING says
     for (int b = 1; b <= in.GetRasterCount(); ++b) {
+      has_share = has_share || std::string(in.GetRasterBand(b)->GetDescription()) == "filled_share";
       switch (kind_of(*in.GetRasterBand(b))) {
         case BandKind::flag: flag_band = b; break;
         case BandKind::classes: classes.push_back(b), how[b] = "mode"; break;
@@ -289,10 +298,13 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
                                    where));
       placed.emplace_back(flag_band, keep.back()->GetRasterBand(1));
       // The share of filled cells: an indicator of the flag band (1 filled, 0 observed, no
-      // value otherwise) averaged like the values.
-      indicator = mapped_band(in, flag_band, [](float f) { return (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN; },
-                              where);
-      share = warp_with(*indicator, "average").GetRasterBand(1);
+      // value otherwise) averaged like the values; from the flags of fill outputs only, not from
+      // the modes of a layer gridded before.
+      if (!has_share) {
+        indicator = mapped_band(in, flag_band, [](float f) { return (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN; },
+                                where);
+        share = warp_with(*indicator, "average").GetRasterBand(1);
+      }
     }
     std::sort(placed.begin(), placed.end(), [](const auto& a, const auto& b) { return a.first < b.first; });
     GDALDataset& first = *warped_grid;

@@ -240,6 +240,71 @@ class Clipping(kt.TempDirTestCase):
         self.assertTrue(np.isnan(mine[:, 50:]).all())
         np.testing.assert_array_equal(mine[:, :50], values[:, :50])
 
+    def test_a_clip_keeps_the_cells_on_multiples_of_the_resolution(self):
+        # Without --extent the cells lie on multiples of the resolution (gdalwarp -tap), with a
+        # clip too, so that layers clipped to different areas (or not) stack cell on cell. With a
+        # clip the grid had started at the polygon's corner. Compared with GDAL's own warp.
+        g = kt.gdal()
+        path = os.path.join(self.tmp, "utm.tif")
+        kt.write_raster(path, np.arange(50 * 50, dtype=np.float32).reshape(50, 50),
+                        geotransform=(400000.0, 1000.0, 0, 7000000.0, 0, -1000.0), epsg=32606)
+        area = os.path.join(self.tmp, "quad.geojson")
+        with open(area, "w") as f:
+            json.dump({"type": "FeatureCollection",
+                       "crs": {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32606"}},
+                       "features": [{"type": "Feature", "properties": {"name": "invented"},
+                                     "geometry": {"type": "Polygon", "coordinates": [[
+                                         [410000, 6955000], [440000, 6960000], [435000, 6990000],
+                                         [412000, 6985000], [410000, 6955000]]]}}]}, f)
+        out = os.path.join(self.tmp, "aligned")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.01", "--clip", area])
+        mine = g.Open(os.path.join(out, "utm.tif"))
+        x0, dx, _, y0, _, dy = mine.GetGeoTransform()
+        for v in (x0, y0):
+            self.assertAlmostEqual(v / 0.01, round(v / 0.01), places=6)
+        ref = g.Warp("", path, format="MEM", dstSRS="EPSG:4326", xRes=0.01, yRes=0.01, targetAlignedPixels=True,
+                     cutlineDSName=area, cropToCutline=True, resampleAlg="average", outputType=g.GDT_Float32,
+                     dstNodata=float("nan"))
+        self.assertEqual((mine.RasterXSize, mine.RasterYSize), (ref.RasterXSize, ref.RasterYSize))
+        np.testing.assert_allclose(mine.GetGeoTransform(), ref.GetGeoTransform(), rtol=0, atol=1e-12)
+        np.testing.assert_array_equal(mine.GetRasterBand(1).ReadAsArray(), ref.GetRasterBand(1).ReadAsArray())
+        # A resolution of 0 is a slip, not GDAL's choice.
+        done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "zero"), "--crs", "EPSG:4326",
+                               "--resolution", "0"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--resolution: must be positive", done.stderr)
+
+    def test_an_output_folder_inside_the_input_folder_is_not_read_again(self):
+        # grid FOLDER --out FOLDER/study, run twice (a nightly job): the second run grids the
+        # same layers into the same files, not its own outputs into FOLDER/study/study; and a
+        # layer gridded before keeps its one filled_share band (averaged), with no second one
+        # made from its mode flags.
+        folder = os.path.join(self.tmp, "layers")
+        os.makedirs(folder)
+        rng = np.random.default_rng(3)
+        flags = rng.integers(0, 3, (40, 80)).astype(np.float32)
+        write_named_bands(os.path.join(folder, "ndvi_2021-03-01.tif"),
+                          [("value", rng.random((40, 80), dtype=np.float32)), ("sd", np.full((40, 80), 0.1, np.float32)),
+                           ("flag", flags)])
+        out = os.path.join(folder, "study")
+        for _ in range(2):
+            done = kt.run_kalends(["grid", folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "400"])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("1 layers", done.stdout)
+        self.assertEqual(sorted(os.listdir(out)), ["ndvi_2021-03-01.tif"])
+        g = kt.gdal()
+        once = g.Open(os.path.join(out, "ndvi_2021-03-01.tif"))
+        names = [once.GetRasterBand(b).GetDescription() for b in range(1, once.RasterCount + 1)]
+        self.assertEqual(names, ["value", "sd", "flag", "filled_share"])
+        twice = os.path.join(self.tmp, "coarser")
+        run_grid_ok(self, [out, "--out", twice, "--crs", "EPSG:32736", "--resolution", "800"])
+        again = g.Open(os.path.join(twice, "ndvi_2021-03-01.tif"))
+        self.assertEqual([again.GetRasterBand(b).GetDescription() for b in range(1, again.RasterCount + 1)], names)
+        # 800 m cells hold 2 x 2 of the 400 m ones: their filled_share is the mean of those.
+        fine = once.GetRasterBand(4).ReadAsArray().astype(np.float64)
+        coarse = again.GetRasterBand(4).ReadAsArray()
+        np.testing.assert_allclose(coarse, fine.reshape(5, 2, 10, 2).mean(axis=(1, 3)), rtol=0, atol=1e-6)
+
     def test_a_missing_study_area_is_refused(self):
         path = os.path.join(self.tmp, "small.tif")
         kt.write_raster(path, np.ones((10, 10), np.float32), geotransform=(0, 1, 0, 10, 0, -1), epsg=32736)

@@ -15,7 +15,7 @@ StudyGridRequest grid_request(const StepContext& c, const std::string& layer) {
   r.inputs = {in.folder.empty() ? in.pattern : in.folder};
   r.out_dir = (std::filesystem::path(c.folder) / layer).string();
   r.crs = c.text("crs");
-  r.resolution = c.number("resolution", 0);
+  if (c.has("resolution")) r.resolution = c.number("resolution", 0);
   if (c.has("extent")) r.extent = c.numbers("extent");
   r.clip = c.text("clip");
   r.resample = c.text("resample", r.resample);
