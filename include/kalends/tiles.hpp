@@ -21,6 +21,9 @@ struct TileSet {
   Grid mosaic;              // the grid that holds every tile
   std::vector<Tile> tiles;  // in name order
   std::string pattern;      // glob of the per-date mosaic VRTs
+  /// "TILE DATE" for each date some tile has and this one lacks: the mosaic has no data there,
+  /// so a fill treats that tile's date as a gap (a download that failed, say).
+  std::vector<std::string> missing;
 
   /// Groups the files of `pattern` into tiles by the {tile} field of `tile_field` (e.g.
   /// "tiles/{tile}/": the text between the field's neighbours names the tile), checks that the
@@ -37,7 +40,11 @@ struct TiledFillSummary {
   std::vector<FillSummary> tiles;  // one per tile, in the tile set's order
   int tiles_skipped = 0;           // left as they were: nothing they depend on changed
   std::string mosaic_dir;          // VRT mosaics of the per-tile outputs, when asked for
+  std::vector<std::string> missing;  // "TILE DATE" of the input (TileSet::missing)
 };
+
+/// The notes of a tiled fill: dates some tiles lack, then each tile's fill_notes.
+std::vector<std::string> tiled_fill_notes(const FillRequest& request, const TiledFillSummary& summary);
 
 /// Fills every tile of a tile set over the mosaic (halos cross tile edges), writing the
 /// outputs of tile T into out_dir/T/; with `mosaic`, also out_dir/mosaic/ as one VRT per date.

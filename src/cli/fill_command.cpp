@@ -148,6 +148,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                      s.seconds, s.out_dir);
         if (!tiled.mosaic_dir.empty()) fmt::print("  mosaic of every date in {}\n", tiled.mosaic_dir);
       }
+      for (const std::string& note : tiled_fill_notes(r, tiled)) std::fprintf(stderr, "note: %s\n", note.c_str());
       return;
     }
     const FillSummary s = run_fill(r, progress);

@@ -3,6 +3,9 @@
 #include <algorithm>
 #include <filesystem>
 
+#include <fmt/format.h>
+#include <fmt/ranges.h>
+
 #include "io/file_glob.hpp"
 #include "kalends/error.hpp"
 #include "kalends/tiles.hpp"
@@ -10,6 +13,19 @@
 namespace kalends {
 
 namespace fs = std::filesystem;
+
+std::vector<std::string> tiled_fill_notes(const FillRequest& request, const TiledFillSummary& summary) {
+  std::vector<std::string> notes;
+  if (!summary.missing.empty())
+    notes.push_back(fmt::format("{} tile-date(s) have no input file, so the fill took them as gaps: {}{}",
+                                summary.missing.size(),
+                                fmt::join(summary.missing.begin(),
+                                          summary.missing.begin() + std::min<std::size_t>(summary.missing.size(), 5), ", "),
+                                summary.missing.size() > 5 ? ", ..." : ""));
+  for (const FillSummary& s : summary.tiles)
+    for (const std::string& note : fill_notes(request, s)) notes.push_back(s.out_dir + ": " + note);
+  return notes;
+}
 
 TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& tile_field, bool mosaic,
                                 const ProgressCallback& progress,
@@ -39,6 +55,7 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     return false;
   };
   TiledFillSummary summary;
+  summary.missing = data.missing;
   std::vector<std::string> folders;
   const int total = int(data.tiles.size());
   for (int t = 0; t < total; ++t) {

@@ -230,6 +230,8 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
       if (other.width != g.width || other.height != g.height || other.geotransform != g.geotransform)
         throw InputError(f, "lies on a different grid from the other files of tile " + name + " (" +
                                 tile.files.front() + ")");
+      if (!same_crs(other.crs_wkt, g.crs_wkt))
+        throw InputError(f, "has a different CRS from the other files of tile " + name + " (" + tile.files.front() + ")");
     }
     grids.emplace_back(tile.files.front(), g);
     set.tiles.push_back(tile);
@@ -263,6 +265,11 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
       }
     }
   }
+  for (const auto& [label, sources] : by_date)
+    if (sources.size() < set.tiles.size())
+      for (const Tile& tile : set.tiles)
+        if (std::none_of(sources.begin(), sources.end(), [&](const Placed& p) { return p.window == tile.window; }))
+          set.missing.push_back(tile.name + " " + label);
   // Overlapping tiles must agree where they overlap (checked on the first date they share).
   for (std::size_t i = 0; i < set.tiles.size(); ++i)
     for (std::size_t j = i + 1; j < set.tiles.size(); ++j) {

@@ -14,6 +14,7 @@ Run: /usr/bin/python3 -m unittest -v tests/integration/test_tiles.py
 
 import glob
 import os
+import shutil
 import sys
 import unittest
 
@@ -160,6 +161,39 @@ class TiledFill(kt.TempDirTestCase):
                                os.path.join(bad, "{tile}", ""), "--out", out])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("overlaps tile h00v00 with different values", done.stderr)
+        # One file of a tile in another CRS (its neighbours and the grid unchanged): refused as an
+        # untiled stack refuses it. It had passed.
+        odd = os.path.join(self.tmp, "odd-crs")
+        os.makedirs(os.path.join(odd, "h00v00"))
+        for path in sorted(glob.glob(os.path.join(self.tiles, "h00v00", "ndvi_*.tif")))[:3]:
+            g.Translate(os.path.join(odd, "h00v00", os.path.basename(path)), path)
+        last = sorted(glob.glob(os.path.join(odd, "h00v00", "*.tif")))[-1]
+        from osgeo import osr
+        other = osr.SpatialReference()
+        other.ImportFromEPSG(32735)  # the neighbouring UTM zone
+        ds = g.Open(last, g.GA_Update)
+        ds.SetProjection(other.ExportToWkt())
+        ds = None
+        done = kt.run_kalends(["fill", os.path.join(odd, "h*v*", "ndvi_*.tif"), "--tiles",
+                               os.path.join(odd, "{tile}", ""), "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn(os.path.basename(last) + ": has a different CRS from the other files of tile h00v00",
+                      done.stderr)
+
+    def test_a_date_a_tile_lacks_is_named(self):
+        # A date missing from one tile (a failed download) is a gap there, filled; the fill
+        # now says which tile and date, on the console and in a job's notes.
+        some = os.path.join(self.tmp, "some-missing")
+        shutil.copytree(self.tiles, some)
+        dropped = sorted(glob.glob(os.path.join(some, "h01v01", "ndvi_*.tif")))[5]
+        os.remove(dropped)
+        date = os.path.basename(dropped)[5:15]
+        done = kt.run_kalends(["fill", os.path.join(some, "h*v*", "ndvi_*.tif"), "--tiles",
+                               os.path.join(some, "{tile}", ""), "--out", os.path.join(self.tmp, "some-out"),
+                               "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: 1 tile-date(s) have no input file, so the fill took them as gaps: h01v01 " + date,
+                      done.stderr)
 
 
     def test_in_a_job_only_the_changed_tile_is_refilled(self):

@@ -229,8 +229,8 @@ StepKind fill_step_kind() {
       for (const FillSummary& s : tiled.tiles) {
         outcome.outputs_written += s.outputs_written;
         outcome.outputs_unchanged += s.outputs_unchanged;
-        for (const std::string& note : fill_notes(r, s)) outcome.notes.push_back(note);
       }
+      outcome.notes = tiled_fill_notes(r, tiled);
       return outcome;
     }
     const FillSummary s = run_fill(r, c.progress);
