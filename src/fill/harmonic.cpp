@@ -28,7 +28,8 @@ MethodParameters HarmonicMethod::parameters() const {
           {"trend", options_.trend ? "yes" : "no"},
           {"reject_below", reject},
           {"period_days", "365.25"},
-          {"max_gap_days", std::to_string(int(options_.max_gap_days))}};
+          {"max_gap_days", std::to_string(int(options_.max_gap_days))},
+          {"max_extrapolation_days", std::to_string(int(options_.max_extrapolation_days))}};
 }
 
 std::vector<double> HarmonicMethod::design(std::span<const double> days) const {

@@ -25,6 +25,32 @@ const Entry registry[] = {
       "tolerance", "fft_wisdom", "never_observed"}},
 };
 
+// Options (job keys) that some methods read and others do not.
+struct SharedOption {
+  const char* option;
+  std::initializer_list<const char*> methods;
+};
+const SharedOption shared_options[] = {
+    {"max_gap", {"whittaker", "harmonic"}},
+    {"max_extrapolation", {"whittaker", "harmonic"}},
+};
+
+bool given(const std::vector<std::string>& options, const char* option) {
+  return std::find(options.begin(), options.end(), option) != options.end();
+}
+
+std::string option_name(const char* option) {
+  std::string cli = std::string("--") + option;
+  std::replace(cli.begin(), cli.end(), '_', '-');
+  return cli;
+}
+
+std::string joined(const std::vector<std::string>& methods) {
+  std::string text;
+  for (const std::string& m : methods) text += (text.empty() ? "" : ", ") + m;
+  return text;
+}
+
 }  // namespace
 
 std::string join_parameters(const MethodParameters& parameters) {
@@ -44,18 +70,25 @@ std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
   throw UsageError("--method", "unknown method '" + options.method + "' (known: " + known + ")");
 }
 
-void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& given) {
+void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& options) {
   for (const Entry& entry : registry)
     for (const char* option : entry.own_options) {
-      if (std::find(given.begin(), given.end(), option) == given.end() ||
-          std::find(methods.begin(), methods.end(), entry.name) != methods.end())
-        continue;
-      std::string cli = std::string("--") + option;
-      std::replace(cli.begin(), cli.end(), '_', '-');
-      std::string chosen;
-      for (const std::string& m : methods) chosen += (chosen.empty() ? "" : ", ") + m;
-      throw UsageError(cli, std::string("applies to the ") + entry.name + " method only; the methods here: " + chosen);
+      if (!given(options, option) || std::find(methods.begin(), methods.end(), entry.name) != methods.end()) continue;
+      throw UsageError(option_name(option), std::string("applies to the ") + entry.name +
+                                                " method only; the methods here: " + joined(methods));
     }
+  for (const SharedOption& shared : shared_options) {
+    if (!given(options, shared.option)) continue;
+    std::string readers;
+    bool read = false;
+    for (const char* m : shared.methods) {
+      readers += (readers.empty() ? "" : " and ") + std::string(m);
+      read = read || std::find(methods.begin(), methods.end(), m) != methods.end();
+    }
+    if (!read)
+      throw UsageError(option_name(shared.option),
+                       "applies to the " + readers + " methods only; the methods here: " + joined(methods));
+  }
 }
 
 std::vector<std::string> fill_method_names() {

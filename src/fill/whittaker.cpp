@@ -61,6 +61,7 @@ MethodParameters WhittakerMethod::parameters() const {
   p["robust"] = options_.robust ? "yes" : "no";
   if (options_.envelope_upper || options_.robust) p["iterations"] = std::to_string(options_.iterations);
   p["max_gap_days"] = number(options_.max_gap_days);
+  p["max_extrapolation_days"] = number(options_.max_extrapolation_days);
   return p;
 }
 

@@ -347,6 +347,11 @@ class BadInput(kt.TempDirTestCase):
                  (["--harmonics", "2"], "--harmonics", "applies to the harmonic method only"),
                  (["--method", "harmonic", "--lambda", "10"], "--lambda", "applies to the whittaker method only"),
                  (["--never-observed", "leave"], "--never-observed", "applies to the spacetime method only"),
+                 # Read by whittaker and harmonic; spacetime had taken and ignored them.
+                 (["--method", "spacetime", "--max-gap", "20"], "--max-gap",
+                  "applies to the whittaker and harmonic methods only"),
+                 (["--method", "spacetime", "--max-extrapolation", "0"], "--max-extrapolation",
+                  "applies to the whittaker and harmonic methods only"),
                  (["--memory", "1K"], "--memory", "below 1 MiB")]
         for extra, name, keyword in cases:
             with self.subTest(option=name):

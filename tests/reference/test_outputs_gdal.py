@@ -141,6 +141,10 @@ class OutputsAgainstGdal(kt.TempDirTestCase):
             md = out["metadata"]
             self.assertEqual(md.get("KALENDS_METHOD"), "whittaker")
             self.assertIn("lambda=10", md.get("KALENDS_PARAMETERS", ""))
+            # Every parameter that changes the values, the limits on gaps and extrapolation too
+            # (the defaults: no gap limit, 32 days past the first and last observation).
+            self.assertIn("max_gap_days=0", md.get("KALENDS_PARAMETERS", ""))
+            self.assertIn("max_extrapolation_days=32", md.get("KALENDS_PARAMETERS", ""))
             self.assertTrue(md.get("KALENDS_DATE", "").startswith(date.isoformat()))
             doy = date.timetuple().tm_yday
             self.assertIn("ndvi_A%04d%03d.tif" % (date.year, doy), md.get("KALENDS_SOURCE", ""))
