@@ -9,6 +9,7 @@
 #include <fmt/format.h>
 #include <set>
 
+#include "io/file_glob.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "pipeline/step_kind.hpp"
@@ -250,7 +251,16 @@ Job read_job(const std::string& path) {
           step.inputs.push_back(name);
         }
       }
-      if (found->role == StepKey::Role::path) step.options[k] = resolve(job.folder, step.options[k]);
+      if (found->role == StepKey::Role::path) {
+        step.options[k] = resolve(job.folder, step.options[k]);
+        // A file the step reads (survey points, a study area, zones): missing, the run would
+        // stop at this step after the earlier ones. A pattern ('tiles/{tile}/') is not a file.
+        const std::string& file = step.options[k];
+        std::error_code ec;
+        if (file.find('{') == std::string::npos && !detail::has_glob_characters(file) &&
+            !std::filesystem::exists(file, ec))
+          fail(path, value.source(), "'" + k + "': no such file: " + file);
+      }
     }
     if (spec->check)
       if (const std::string mistake = spec->check(step.options); !mistake.empty())

@@ -218,6 +218,13 @@ class JobFile(kt.TempDirTestCase):
              lines.index('do = "seasons"') + 3, ["'prominence'", "between 0 and 1"]),
             (good + '\n[[step]]\ndo = "suitability"\ntemperature = "fill"\nmodel = "window"\nwindow = [30.0, 20.0]\n',
              n + 5, ["'window'", "must be below"]),
+            # Files a step reads and a points CRS: they had failed only when the step ran, after
+            # the steps before it (and passed --dry-run).
+            (good + grid + 'clip = "no-such-area.gpkg"\n', n + 5, ["'clip': no such file", "no-such-area.gpkg"]),
+            (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "no-such-points.csv"\n', n + 4,
+             ["'points': no such file", "no-such-points.csv"]),
+            (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "bad.toml"\ncrs = "EPSG:999999"\n',
+             n + 5, ["'crs' 'EPSG:999999'", "not a CRS"]),
         ]
         for text, line, words in cases:
             for extra in ([], ["--dry-run"]):
