@@ -157,14 +157,14 @@ std::string fill_statistics_html(const fs::path& summary, const fs::path& root) 
   return out + "</table>\n";
 }
 
-// The pixels to plot: the user's, or `count` spread over the grid on a k x k lattice.
+// The pixels to plot: the user's that lie on the grid, or `count` spread over the grid on a
+// k x k lattice.
 std::vector<std::pair<int, int>> sample_pixels(const ReportRequest& r, const Grid& grid) {
   if (!r.pixels.empty()) {
+    std::vector<std::pair<int, int>> inside;
     for (auto [c, row] : r.pixels)
-      if (c < 0 || row < 0 || c >= grid.width || row >= grid.height)
-        throw UsageError(fmt::format("--pixels {},{}", c, row),
-                         fmt::format("outside the {} x {} grid", grid.width, grid.height));
-    return r.pixels;
+      if (c >= 0 && row >= 0 && c < grid.width && row < grid.height) inside.emplace_back(c, row);
+    return inside;
   }
   int k = 1;
   while (k * k < r.samples) ++k;
@@ -193,8 +193,14 @@ struct Plots {
 
 Plots time_series_html(const ReportRequest& request, const std::vector<CovariateSeries>& all) {
   Plots plots;
+  int largest_width = 0, largest_height = 0;
   for (const CovariateSeries& s : all) {
     if (s.kind != SeriesKind::dated || !s.has_sd_and_flag || s.period) continue;
+    // Fill outputs on their own grid: a copy on a study grid (kalends grid) has other columns
+    // and rows, so the same pixel numbers would be another place.
+    if (!metadata_item(s.files.front().path, "KALENDS_GRID_CRS").empty()) continue;
+    if (s.grid.width * std::int64_t(s.grid.height) > largest_width * std::int64_t(largest_height))
+      largest_width = s.grid.width, largest_height = s.grid.height;
     const std::string folder = canonical_text(fs::path(s.files.front().path).parent_path());
     const CovariateSeries* synoptic = nullptr;
     for (const CovariateSeries& other : all)
@@ -207,6 +213,7 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
         if (canonical_text(read) == folder) synoptic = &other;
       }
     const auto pixels = sample_pixels(request, s.grid);
+    if (pixels.empty()) continue;  // the user's pixels lie beyond this layer (another tile)
     std::vector<std::vector<PlotDate>> series(pixels.size());
     std::vector<std::vector<double>> cycle(pixels.size());
     if (synoptic) {
@@ -259,6 +266,9 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
       ++plots.count;
     }
   }
+  if (plots.count == 0 && !request.pixels.empty() && largest_width > 0)
+    throw UsageError(fmt::format("--pixels {},{}", request.pixels.front().first, request.pixels.front().second),
+                     fmt::format("outside every fill output (the largest grid is {} x {})", largest_width, largest_height));
   if (plots.count == 0) plots.html = "<p>No fill outputs (value, sd and flag bands with their source) in this folder.</p>\n";
   return plots;
 }

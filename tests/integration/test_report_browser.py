@@ -121,5 +121,38 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertGreater(len(np.unique(pixels.reshape(3, -1), axis=1)[0]), 50)
 
 
+
+class ReportBesideAStudyGrid(kt.TempDirTestCase):
+    def test_pixels_are_the_fill_grids_and_study_copies_get_no_time_series(self):
+        # A job folder with a fill and its copy on a coarser study grid (kalends grid): the
+        # pixels of --pixels are the fill's columns and rows. The copy had been plotted at the
+        # same numbers (another place), and a pixel beyond its smaller grid refused the whole
+        # report. Alaska masked30, 2004, with an invented UTM 6N georeference (data README).
+        g = kt.gdal()
+        stack = os.path.join(self.tmp, "in")
+        os.makedirs(stack)
+        source = kt.shared_path("alaska-ndvi", "masked30")
+        for name in sorted(os.listdir(source)):
+            if name.startswith("ndvi_2004"):
+                g.Translate(os.path.join(stack, name), os.path.join(source, name), outputSRS="EPSG:32606",
+                            outputBounds=[400000, 7000000, 450000, 6950000])
+        out = os.path.join(self.tmp, "out")
+        for step in (["fill", os.path.join(stack, "*.tif"), "--out", os.path.join(out, "fill"), "--lambda", "10"],
+                     ["grid", os.path.join(out, "fill"), "--out", os.path.join(out, "study"), "--crs", "EPSG:32606",
+                      "--resolution", "5000"]):
+            done = kt.run_kalends(["-q"] + step)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        html = os.path.join(self.tmp, "report.html")
+        done = kt.run_kalends(["report", out, "--html", html, "--pixels", "60,70"])  # beyond the 10 x 10 copy
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            page = f.read()
+        series = page.split('id="time-series"')[1]
+        self.assertEqual(re.findall(r"<h3>([^<]*)</h3>", series), ["fill.ndvi"])
+        self.assertEqual(series.count("pixel column 60, row 70"), 1)
+        done = kt.run_kalends(["report", out, "--html", html, "--pixels", "160,70"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("outside every fill output (the largest grid is 100 x 100)", done.stderr)
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
