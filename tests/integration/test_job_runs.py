@@ -137,6 +137,21 @@ class JobFile(kt.TempDirTestCase):
             done = run(job)
             self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_a_compare_step_takes_the_layer_set_by_name(self):
+        # 'name' as compare's --name (it had been an unknown key): the set the seasons step
+        # made is compared; another name is looked for, and missing.
+        folder = os.path.join(self.tmp, "compare-name")
+        job = make_job(folder, years=2, size=32)
+        with open(job) as f:
+            text = f.read()
+        for name, code in (("ndvi", 0), ("evi", 2)):
+            with open(job, "w") as f:
+                f.write(text.replace('do = "compare"\ninput = "seasons"', 'do = "compare"\ninput = "seasons"\nname = "%s"' % name))
+            done = run(job)
+            self.assertEqual(done.returncode, code, done.stdout + done.stderr)
+            if code:
+                self.assertIn("evi_synoptic_miss.tif", done.stderr)
+
     def test_status_tells_an_interrupted_step_from_one_never_run(self):
         # A run killed while writing a step's first outputs leaves only hidden .partial files
         # (test_killed_at_random_moments...); status then says so rather than "never run".

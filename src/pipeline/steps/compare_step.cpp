@@ -12,7 +12,7 @@ StepKind compare_step_kind() {
   kind.name = "compare";
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"zones", T::text, StepKey::Role::path},
-               {"top", T::integer}};
+               {"top", T::integer}, {"name", T::text}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'compare' step needs 'input'");
   };
@@ -22,6 +22,7 @@ StepKind compare_step_kind() {
     r.out_dir = c.folder;
     r.zones = c.text("zones");
     r.top = c.integer("top", r.top);
+    r.name = c.text("name");  // the layer set, where the seasons folder holds several
     run_compare(r);
     int written = 0;
     std::error_code ec;
