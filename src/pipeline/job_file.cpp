@@ -248,6 +248,13 @@ Job read_job(const std::string& path) {
         for (const std::string& name : names) {
           if (!known.count(name))
             fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");
+          if (found->step_kind) {
+            const auto earlier = std::find_if(job.steps.begin(), job.steps.end(),
+                                              [&](const JobStep& s) { return s.id == name; });
+            if (earlier == job.steps.end() || earlier->kind != found->step_kind)
+              fail(path, value.source(), "'" + k + "' must name a '" + found->step_kind + "' step; '" + name +
+                                             "' is " + (earlier == job.steps.end() ? "an input" : "a '" + earlier->kind + "' step"));
+          }
           step.inputs.push_back(name);
         }
       }

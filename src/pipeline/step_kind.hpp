@@ -22,6 +22,8 @@ struct StepKey {
   KeyType type;
   /// reads: names an input or an earlier step; path: a file resolved against the job's folder.
   enum class Role { plain, reads, path } role = Role::plain;
+  /// For a reads key: the kind of step it must name (compare reads a seasons step), or nullptr.
+  const char* step_kind = nullptr;
 };
 
 /// What a step reads from one named input or earlier step.

@@ -190,6 +190,9 @@ class JobFile(kt.TempDirTestCase):
                            good.split("\n").index('do = "compare"') + 1, ["unknown step 'compere'"])
         self.check_refused(good.replace('input = "fill"', 'input = "fil"'),
                            good.split("\n").index('input = "fill"') + 1, ["'fil' is neither an input nor an earlier step"])
+        self.check_refused(good.replace('do = "compare"\ninput = "seasons"', 'do = "compare"\ninput = "fill"'),
+                           good.split("\n").index('do = "compare"') + 2,
+                           ["'input' must name a 'seasons' step; 'fill' is a 'fill' step"])
         self.check_refused(good.replace("[job]", "[job"), 2, [])
         self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = -2'), 6,
                            ["'threads' must be 0 (all cores) or more"])

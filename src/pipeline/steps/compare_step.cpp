@@ -10,7 +10,7 @@ StepKind compare_step_kind() {
   using T = KeyType;
   StepKind kind;
   kind.name = "compare";
-  kind.keys = {{"input", T::text, StepKey::Role::reads},
+  kind.keys = {{"input", T::text, StepKey::Role::reads, "seasons"},
                {"zones", T::text, StepKey::Role::path},
                {"top", T::integer}, {"name", T::text}};
   kind.check = [](const StepOptions& o) {
