@@ -28,7 +28,7 @@ StepKind compare_step_kind() {
     std::error_code ec;
     for (const auto& entry : std::filesystem::recursive_directory_iterator(c.folder, ec))
       if (entry.is_regular_file() && entry.path().filename().string().front() != '.') ++written;
-    return StepOutcome{written, 0, ""};
+    return StepOutcome{written, 0, "", {}};
   };
   return kind;
 }

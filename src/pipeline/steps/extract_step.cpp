@@ -59,7 +59,7 @@ StepKind extract_step_kind() {
     const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);
     run_extract(r);
-    return StepOutcome{1, 0, ""};
+    return StepOutcome{1, 0, "", {}};
   };
   return kind;
 }

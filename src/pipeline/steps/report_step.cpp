@@ -51,7 +51,7 @@ StepKind report_step_kind() {
     const ReportRequest r = report_request(c);
     std::filesystem::create_directories(c.folder);
     run_report(r);
-    return StepOutcome{1, 0, ""};
+    return StepOutcome{1, 0, "", {}};
   };
   return kind;
 }
