@@ -328,17 +328,14 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         method->halo() > 0 ? " with its halo" : "", one_block >> 20));
   };
   std::int64_t budget = request.memory_bytes;
-  int at_once = threads;
+  int at_once = 1;
   detail::MemoryShare share;
-  for (;; --at_once) {
-    try {
-      share = detail::share_memory(budget, at_once, bytes_per_pixel, int(read_files.size()), int(specs.size()));
-      if (share.max_read_pixels >= smallest_block || at_once == 1) break;
-    } catch (const UsageError&) {
-      if (at_once == 1) break;
-    }
-  }
-  if (share.max_read_pixels < smallest_block) {
+  try {
+    const detail::BlockShare fitted = detail::share_for_blocks(budget, threads, smallest_read, bytes_per_pixel,
+                                                               int(read_files.size()), int(specs.size()));
+    share = fitted.share;
+    at_once = fitted.at_once;
+  } catch (const UsageError&) {
     if (one_block > request.memory_ceiling) refuse();
     budget = one_block;
     share = detail::share_memory(budget, 1, bytes_per_pixel, int(read_files.size()), int(specs.size()));

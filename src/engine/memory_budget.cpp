@@ -61,9 +61,9 @@ std::int64_t budget_for_read_pixels(std::int64_t read_pixels, int workers, std::
   return budget;
 }
 
-BlockShare share_for_blocks(std::int64_t budget, int threads, int block_width, int block_height, std::int64_t bytes_per_pixel,
+BlockShare share_for_blocks(std::int64_t budget, int threads, const Window& smallest, std::int64_t bytes_per_pixel,
                             int read_files_per_worker, int write_files) {
-  const std::int64_t smallest_read = std::int64_t(block_width) * block_height;
+  const std::int64_t smallest_read = smallest.pixels();
   for (int at_once = std::max(1, threads); at_once >= 1; --at_once) {
     try {
       const MemoryShare share = share_memory(budget, at_once, bytes_per_pixel, read_files_per_worker, write_files);
@@ -75,7 +75,7 @@ BlockShare share_for_blocks(std::int64_t budget, int threads, int block_width, i
   const std::int64_t would_do =
       budget_for_read_pixels(smallest_read, 1, bytes_per_pixel, read_files_per_worker, write_files);
   throw UsageError("--memory", "budget of " + std::to_string(budget / MiB) + " MiB is too small for one block (" +
-                                   std::to_string(block_width) + " x " + std::to_string(block_height) +
+                                   std::to_string(smallest.width) + " x " + std::to_string(smallest.height) +
                                    " px of every date); " +
                                    std::to_string(would_do / MiB) + " MiB would do");
 }

@@ -4,6 +4,8 @@
 
 #include <cstdint>
 
+#include "kalends/block_plan.hpp"
+
 namespace kalends::detail {
 
 struct MemoryShare {
@@ -24,14 +26,14 @@ std::int64_t budget_for_read_pixels(std::int64_t read_pixels, int workers, std::
                                     int read_files_per_worker, int write_files);
 
 /// How many of `threads` workers can hold a block at once, and the share that gives each a
-/// block of at least block_width x block_height pixels: all of them where the budget allows, else fewer
-/// (the others then wait). UsageError naming --memory, with the budget that would do, when
-/// not even one block fits.
+/// block reading at least `smallest` (BlockPlan::smallest_read_window): all of them where the
+/// budget allows, else fewer (the others then wait). UsageError naming --memory, with the
+/// budget that would do, when not even one block fits.
 struct BlockShare {
   MemoryShare share;
   int at_once = 1;
 };
-BlockShare share_for_blocks(std::int64_t budget, int threads, int block_width, int block_height, std::int64_t bytes_per_pixel,
+BlockShare share_for_blocks(std::int64_t budget, int threads, const Window& smallest, std::int64_t bytes_per_pixel,
                             int read_files_per_worker, int write_files);
 
 /// Peak resident memory of this process so far (bytes), from getrusage.

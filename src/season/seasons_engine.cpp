@@ -180,8 +180,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   std::set<std::string> files;
   for (const Layer& l : stack.layers()) files.insert(l.path);
   const auto [share, at_once] = detail::share_for_blocks(
-      request.memory_bytes, threads, std::min(grid.width, tile_size), std::min(grid.height, tile_size), bytes_per_pixel,
-      int(files.size()), int(specs.size()));
+      request.memory_bytes, threads, BlockPlan::smallest_read_window(grid.width, grid.height, 0, tile_size),
+      bytes_per_pixel, int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
   std::vector<std::string> output_paths;

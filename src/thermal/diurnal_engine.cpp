@@ -99,8 +99,8 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   for (const Stack& s : source.stacks)
     for (const Layer& l : s.layers()) files.insert(l.path);
   const auto [share, at_once] = detail::share_for_blocks(
-      request.memory_bytes, threads, std::min(grid.width, tile_size), std::min(grid.height, tile_size), bytes_per_pixel,
-      int(files.size()), int(specs.size()));
+      request.memory_bytes, threads, BlockPlan::smallest_read_window(grid.width, grid.height, 0, tile_size),
+      bytes_per_pixel, int(files.size()), int(specs.size()));
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(
       grid.width, grid.height, 0, detail::parallel_block_pixels(grid, share, threads), tile_size);
