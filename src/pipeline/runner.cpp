@@ -86,6 +86,13 @@ std::string checksum_of(const std::string& path, const detail::StateDatabase* db
 
 // ---- the lock ----------------------------------------------------------------------------
 
+// The pid a run wrote into the lock file open as `fd`, or "?".
+std::string pid_in_lock(int fd) {
+  char text[32] = {0};
+  (void)!::pread(fd, text, sizeof text - 1, 0);
+  return std::string(text).empty() ? "?" : std::string(text);
+}
+
 class FolderLock {
  public:
   FolderLock(const std::string& folder, bool wait) {
@@ -93,13 +100,12 @@ class FolderLock {
     fd_ = ::open(path.c_str(), O_RDWR | O_CREAT, 0644);
     if (fd_ < 0) throw OutputError(path, "cannot create the lock file");
     if (::flock(fd_, LOCK_EX | (wait ? 0 : LOCK_NB)) != 0) {
-      char pid[32] = {0};
-      (void)!::pread(fd_, pid, sizeof pid - 1, 0);
+      const std::string pid = pid_in_lock(fd_);
       ::close(fd_);
       fd_ = -1;
       throw OutputError(folder, fmt::format("another kalends run (pid {}) is working on this output folder; "
                                             "try again when it ends, or use --wait",
-                                            std::string(pid).empty() ? "?" : std::string(pid)));
+                                            pid));
     }
     const std::string me = std::to_string(::getpid());
     (void)!::ftruncate(fd_, 0);
@@ -117,12 +123,7 @@ class FolderLock {
 std::string running_pid(const std::string& folder) {
   const int fd = ::open((fs::path(folder) / "lock").c_str(), O_RDONLY);
   if (fd < 0) return "";
-  std::string pid;
-  if (::flock(fd, LOCK_SH | LOCK_NB) != 0) {
-    char text[32] = {0};
-    (void)!::pread(fd, text, sizeof text - 1, 0);
-    pid = std::string(text).empty() ? "?" : std::string(text);
-  }
+  const std::string pid = ::flock(fd, LOCK_SH | LOCK_NB) != 0 ? pid_in_lock(fd) : "";
   ::close(fd);
   return pid;
 }
@@ -693,15 +694,18 @@ class Runner {
         }
         for (int y : *it->second) years.insert({y, y + 1});
       }
-      // The year after the last one with data has nothing to redo.
-      int last = std::numeric_limits<int>::min();
-      for (const std::string& name : step.inputs)
-        for (const std::string& f : detail::files_below(step_folder(base_, name)))
-          if (const auto date = date_from_name(f)) last = std::max(last, date->date().year);
-      years.erase(years.upper_bound(last), years.end());
       if (known && !years.empty()) {
-        only_years_ = std::vector<int>(years.begin(), years.end());
-        report.reason += fmt::format("; redoing the year layers of {} and the synoptic layers", fmt::join(*only_years_, ", "));
+        // The year after the last one with data has nothing to redo.
+        int last = std::numeric_limits<int>::min();
+        for (const std::string& name : step.inputs)
+          for (const std::string& f : detail::files_below(step_folder(base_, name)))
+            if (const auto date = date_from_name(f)) last = std::max(last, date->date().year);
+        years.erase(years.upper_bound(last), years.end());
+        if (!years.empty()) {
+          only_years_ = std::vector<int>(years.begin(), years.end());
+          report.reason += fmt::format("; redoing the year layers of {} and the synoptic layers",
+                                       fmt::join(*only_years_, ", "));
+        }
       }
     }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
