@@ -365,11 +365,11 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       auto time = date_from_name(file);
       if (!time) time = rules.date;
       const std::string path = connection ? connection->connection(file) : file;
-      detail::require_not_cut_short(file);  // before the open, whose errors are explained below
       GDALDatasetUniquePtr dataset;
       try {
         dataset = detail::open_raster(path);
       } catch (const InputError& e) {
+        detail::require_not_cut_short(file);  // a damaged file is named so, not explained below
         // Errors name the file itself, so that `kalends run --skip-bad` can leave it out.
         if (connection)
           throw InputError(file, (e.reason().find(path) != std::string::npos ? e.reason() : e.reason() + " as " + path) +
@@ -415,12 +415,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   } else {
     if (fs::is_directory(input))
       throw InputError(input, "is a folder; give a pattern such as '" + input + "/*.tif'");
-    // Before the open: a damaged file must not read as "no such variable" below.
-    detail::require_not_cut_short(detail::file_in_connection(input));
     GDALDatasetUniquePtr dataset;
     try {
       dataset = detail::open_raster(input);
     } catch (const InputError&) {
+      // A damaged file is named so, not read as "no such variable" below.
+      detail::require_not_cut_short(detail::file_in_connection(input));
       if (const std::vector<std::string> variables = subdatasets_of(input); !variables.empty())
         throw InputError(input, "holds several variables; choose one of: " + fmt::format("{}", fmt::join(variables, ", ")));
       if (!fs::exists(input) && !detail::has_glob_characters(input) && input.find(':') == std::string::npos)
