@@ -52,6 +52,15 @@ def write_named_bands(path, named_arrays, metadata=None, band_metadata=None):
     ds = None
 
 
+def write_study_area(path, epsg, ring):
+    """A GeoJSON study area (invented): one polygon, its ring in the coordinates of EPSG:epsg."""
+    with open(path, "w") as f:
+        json.dump({"type": "FeatureCollection",
+                   "crs": {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::%d" % epsg}},
+                   "features": [{"type": "Feature", "properties": {"name": "invented"},
+                                 "geometry": {"type": "Polygon", "coordinates": [ring]}}]}, f)
+
+
 class GridAgainstGdalWarp(kt.TempDirTestCase):
     def test_landsat_to_geographic_equals_gdal_warp(self):
         g = kt.gdal()
@@ -226,12 +235,7 @@ class Clipping(kt.TempDirTestCase):
         kt.write_raster(path, values, geotransform=(0.0, 1000.0, 0, 80000.0, 0, -1000.0), epsg=32736)
         area = os.path.join(self.tmp, "area.geojson")
         # The left half of the raster: x from 0 to 50 km (an invented study area).
-        with open(area, "w") as f:
-            json.dump({"type": "FeatureCollection",
-                       "crs": {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32736"}},
-                       "features": [{"type": "Feature", "properties": {"name": "invented"},
-                                     "geometry": {"type": "Polygon", "coordinates": [[
-                                         [0, 0], [50000, 0], [50000, 80000], [0, 80000], [0, 0]]]}}]}, f)
+        write_study_area(area, 32736, [[0, 0], [50000, 0], [50000, 80000], [0, 80000], [0, 0]])
         out = os.path.join(self.tmp, "clipped")
         run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "1000",
                            "--extent", "0,0,100000,80000", "--clip", area])
@@ -249,13 +253,8 @@ class Clipping(kt.TempDirTestCase):
         kt.write_raster(path, np.arange(50 * 50, dtype=np.float32).reshape(50, 50),
                         geotransform=(400000.0, 1000.0, 0, 7000000.0, 0, -1000.0), epsg=32606)
         area = os.path.join(self.tmp, "quad.geojson")
-        with open(area, "w") as f:
-            json.dump({"type": "FeatureCollection",
-                       "crs": {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32606"}},
-                       "features": [{"type": "Feature", "properties": {"name": "invented"},
-                                     "geometry": {"type": "Polygon", "coordinates": [[
-                                         [410000, 6955000], [440000, 6960000], [435000, 6990000],
-                                         [412000, 6985000], [410000, 6955000]]]}}]}, f)
+        write_study_area(area, 32606, [[410000, 6955000], [440000, 6960000], [435000, 6990000],
+                                       [412000, 6985000], [410000, 6955000]])
         out = os.path.join(self.tmp, "aligned")
         run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.01", "--clip", area])
         mine = g.Open(os.path.join(out, "utm.tif"))
