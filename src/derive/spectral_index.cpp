@@ -155,7 +155,9 @@ IndexSummary run_index(const IndexRequest& request) {
   });
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
-  // QA layers travel with the index so that `kalends fill --qa` finds them by date.
+  // QA layers travel with the index so that `kalends fill --qa` finds them by date; they count
+  // among the outputs written or unchanged.
+  int qa_written = 0, qa_unchanged = 0;
   if (qa) {
     const fs::path qa_dir = fs::path(request.out_dir) / "qa";
     fs::create_directories(qa_dir, ec);
@@ -169,22 +171,26 @@ IndexSummary run_index(const IndexRequest& request) {
         detail::crop_raster(q.path, area, temporary);
         if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
           fs::remove(temporary, ec);
+          ++qa_unchanged;
           continue;
         }
       } else {
         if (fs::exists(target) && fs::file_size(target) == fs::file_size(q.path) &&
-            detail::file_checksum_equal(target.string(), q.path))
-          continue;  // already there: keep its bytes and time
+            detail::file_checksum_equal(target.string(), q.path)) {
+          ++qa_unchanged;  // already there: keep its bytes and time
+          continue;
+        }
         fs::copy_file(q.path, temporary, fs::copy_options::overwrite_existing, ec);
         if (ec) throw OutputError(target.string(), "cannot copy the QA layer: " + ec.message());
       }
       fs::rename(temporary, target, ec);
       if (ec) throw OutputError(target.string(), "cannot rename into place: " + ec.message());
+      ++qa_written;
     }
   }
   IndexSummary summary;
-  summary.outputs_written = outputs.written();
-  summary.outputs_unchanged = outputs.unchanged();
+  summary.outputs_written = outputs.written() + qa_written;
+  summary.outputs_unchanged = outputs.unchanged() + qa_unchanged;
   summary.dates = int(red.layers().size());
   summary.pixels = area.pixels() * summary.dates;
   summary.missing = missing;

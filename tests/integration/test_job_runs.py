@@ -512,6 +512,42 @@ class StaleReasons(kt.TempDirTestCase):
                              r"fill_b +(would run|ran) +its inputs changed \(1 new, 0 changed, 1 removed files\)")
 
 
+class IndexStepCopiesQA(kt.TempDirTestCase):
+    def test_the_qa_copies_count_among_the_files_written(self):
+        # An index step copies each date's QA layer beside the index. A QA file changed alone
+        # leaves every index raster the same, so the step had said "0 files written" while it
+        # replaced a copy. Invented bands (mechanics only).
+        folder = os.path.join(self.tmp, "bands")
+        dates = ["2031-03-06", "2031-03-22", "2031-04-07"]
+        rng = np.random.default_rng(5)
+        for sub in ("red", "nir", "qa"):
+            os.makedirs(os.path.join(folder, sub))
+        for date in dates:
+            kt.write_raster(os.path.join(folder, "red", "red_%s.tif" % date), rng.uniform(0.02, 0.1, (8, 8)).astype(np.float32))
+            kt.write_raster(os.path.join(folder, "nir", "nir_%s.tif" % date), rng.uniform(0.2, 0.5, (8, 8)).astype(np.float32))
+            kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % date), np.zeros((8, 8), np.uint16))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.red]\nstack = "red/red_*.tif"\nqa = "qa/qa_*.tif"\n'
+                    'keep = "bit 0 == 0"\n[inputs.nir]\nstack = "nir/nir_*.tif"\n'
+                    '[[step]]\ndo = "index"\nred = "red"\nnir = "nir"\n')
+
+        def finished(done):
+            self.assertEqual(done.returncode, 0, done.stderr)
+            events = [json.loads(line) for line in done.stdout.splitlines()]
+            return [e for e in events if e["event"] == "step_finished"][0]
+
+        first = finished(run(job, "--log", "json"))
+        self.assertEqual((first["written"], first["unchanged"]), (6, 0))   # three NDVI, three QA
+        copy = os.path.join(folder, "out", "index", "qa", "qa_2031-03-22.tif")
+        with open(copy, "rb") as f, open(os.path.join(folder, "qa", "qa_2031-03-22.tif"), "rb") as g:
+            self.assertEqual(f.read(), g.read())
+        kt.write_raster(os.path.join(folder, "qa", "qa_2031-03-22.tif"), np.ones((8, 8), np.uint16))
+        second = finished(run(job, "--log", "json"))
+        self.assertEqual((second["written"], second["unchanged"]), (1, 5))
+        self.assertTrue(np.all(kt.gdal().Open(copy).ReadAsArray() == 1))
+
+
 class IncrementalCountsOfRealGaps(kt.TempDirTestCase):
     def test_pixels_not_fitted_are_counted_for_every_year_after_a_partial_run(self):
         # The Alaska masked30 NDVI (real cloud patterns; data README): whittaker by year leaves
