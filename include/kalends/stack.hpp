@@ -94,7 +94,8 @@ class StackReader {
 };
 
 /// Fails with InputError unless both grids are the same (size, geotransform, CRS).
-void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where);
+void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where,
+                       const std::string& expected_from = "the rest of the stack");
 
 /// The median of the first date's physical values over a central window of at most side x side
 /// pixels; NaN where none is finite. A cheap look at what a stack holds (its unit, its scale).

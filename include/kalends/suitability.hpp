@@ -48,8 +48,11 @@ struct DiurnalRequest {
 
 struct DiurnalSummary {
   int days = 0, width = 0, height = 0;
-  std::int64_t implausible = 0;
-  std::int64_t tmin_above_tmax = 0;  // pixel-days taken as missing (a majority is an error)
+  std::int64_t implausible = 0;  // values outside -100..100 deg C, taken as missing
+  /// Pixel-days with tmin above tmax (taken as missing) or a day sample not warmer than the
+  /// night one (taken as flat); a majority is an error.
+  std::int64_t inverted = 0;
+  std::vector<std::string> notes;  // what a user should know about the inputs, a line each
   DiurnalParameters parameters;
   double seconds = 0;
   std::vector<std::string> outputs;
@@ -117,7 +120,8 @@ struct SuitabilitySummary {
   std::string model;
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value
   std::int64_t implausible = 0;        // values outside -100..100 deg C, taken as missing
-  std::int64_t tmin_above_tmax = 0;    // pixel-days taken as missing (a majority is an error)
+  std::int64_t inverted = 0;           // as in DiurnalSummary
+  std::vector<std::string> notes;      // as in DiurnalSummary
   double seconds = 0;
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
   std::vector<std::string> outputs;
@@ -129,9 +133,5 @@ void check_suitability_options(const SuitabilityRequest& request);
 
 SuitabilitySummary run_suitability(const SuitabilityRequest& request);
 
-/// What a user should know about the input temperatures (values taken as missing), one line
-/// each; empty when there is nothing to say. `kalends diurnal`, `kalends suitability` and a
-/// job's suitability step show the same lines.
-std::vector<std::string> temperature_notes(std::int64_t implausible, std::int64_t tmin_above_tmax);
 
 }  // namespace kalends

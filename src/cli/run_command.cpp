@@ -3,6 +3,7 @@
 
 #include <chrono>
 #include <cstdio>
+#include <set>
 #include <algorithm>
 
 #include <fmt/format.h>
@@ -97,9 +98,10 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       std::string notes;
       for (const std::string& note : r.notes) notes += (notes.empty() ? "\"" : ", \"") + detail::json_escape(note) + "\"";
       fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
-                 "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"notes\": [{}]}}\n",
+                 "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"notes\": [{}]{}}}\n",
                  detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
-                 r.outputs_written, r.outputs_unchanged, notes);
+                 r.outputs_written, r.outputs_unchanged, notes,
+                 r.caution.empty() ? "" : ", \"caution\": \"" + detail::json_escape(r.caution) + "\"");
       std::fflush(stdout);
     };
     const RunReport report = run_job(o->run, events);
@@ -131,6 +133,12 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const std::string& s : report.skipped_inputs) fmt::print("  skipped input: {}\n", s);
       fmt::print("  {:.1f} s, peak memory {:.0f} MiB\n", report.seconds, report.peak_memory_bytes / 1048576.0);
       if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
+    } else {
+      // Quiet still shows each caution once, as `kalends suitability -q` does: the outputs could
+      // be misread without it.
+      std::set<std::string> shown;
+      for (const StepReport& r : report.steps)
+        if (!r.caution.empty() && shown.insert(r.caution).second) fmt::print(stderr, "{}\n", r.caution);
     }
     global.exit_code = report.exit_code;
   };

@@ -149,7 +149,7 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
           "{:.1f} s -> {}\n",
           s.days, s.width, s.height, s.parameters.a, s.parameters.b, s.parameters.c, s.seconds,
           r.out_dir);
-      for (const std::string& note : temperature_notes(s.implausible, s.tmin_above_tmax))
+      for (const std::string& note : s.notes)
         fmt::print("  {}\n", note);
     }
   };
@@ -218,7 +218,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
                    s.mean_suitable_periods, periods, r.threshold);
       else
         fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
-      for (const std::string& note : temperature_notes(s.implausible, s.tmin_above_tmax))
+      for (const std::string& note : s.notes)
         fmt::print("  {}\n", note);
       std::fflush(stdout);
     }

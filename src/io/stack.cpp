@@ -281,18 +281,18 @@ Grid window_grid(const Grid& grid, const Window& window) {
   return g;
 }
 
-void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where) {
+void require_same_grid(const Grid& expected, const Grid& actual, const std::string& where,
+                       const std::string& expected_from) {
   if (expected.width != actual.width || expected.height != actual.height)
-    throw InputError(where, "grid is " + std::to_string(actual.width) + " x " +
-                                std::to_string(actual.height) + " px, the stack's is " +
-                                std::to_string(expected.width) + " x " +
+    throw InputError(where, "grid is " + std::to_string(actual.width) + " x " + std::to_string(actual.height) +
+                                " px, that of " + expected_from + " is " + std::to_string(expected.width) + " x " +
                                 std::to_string(expected.height));
   const double pixel = std::max(std::abs(expected.geotransform[1]), std::abs(expected.geotransform[5]));
   for (int i = 0; i < 6; ++i)
     if (std::abs(expected.geotransform[i] - actual.geotransform[i]) > 1e-6 * std::max(pixel, 1e-12))
-      throw InputError(where, "georeferencing (origin or pixel size) differs from the rest of the stack");
+      throw InputError(where, "georeferencing (origin or pixel size) differs from that of " + expected_from);
   if (!same_crs(expected.crs_wkt, actual.crs_wkt))
-    throw InputError(where, "coordinate reference system differs from the rest of the stack");
+    throw InputError(where, "coordinate reference system differs from that of " + expected_from);
 }
 
 double first_date_median(const Stack& stack, int side) {
@@ -309,7 +309,7 @@ double first_date_median(const Stack& stack, int side) {
 }
 
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {
-  require_same_grid(base.grid(), other.grid(), other.layers().front().path);
+  require_same_grid(base.grid(), other.grid(), other.layers().front().path, base.input());
   std::vector<std::size_t> index;
   const auto& layers = other.layers();
   for (const Layer& layer : base.layers()) {

@@ -142,26 +142,17 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
     }
   };
   detail::run_blocks(plan, threads, workers, process, at_once);
-  std::int64_t implausible = 0, finite = 0, tmin_above_tmax = 0, extreme_pairs = 0;
-  for (const DiurnalWorker& w : workers) {
-    implausible += w.block->implausible, finite += w.block->finite;
-    tmin_above_tmax += w.block->tmin_above_tmax, extreme_pairs += w.block->extreme_pairs;
-  }
-  if (implausible > finite)
-    throw InputError(
-        source.stacks.front().input(),
-        fmt::format("{} of {} values lie outside {:g}..{:g} deg C after unit conversion: the unit "
-                    "(--units) or scale factor (--scale) is probably wrong",
-                    implausible, implausible + finite, detail::plausible_low_celsius,
-                    detail::plausible_high_celsius));
-  detail::check_extremes_order(source, tmin_above_tmax, extreme_pairs);
+  detail::TemperatureCounts counts;
+  for (const DiurnalWorker& w : workers) counts.add(w.block->counts);
+  detail::check_temperature_counts(source, counts);
   outputs.commit();
   DiurnalSummary summary;
   summary.days = int(dates);
   summary.width = grid.width;
   summary.height = grid.height;
-  summary.implausible = implausible;
-  summary.tmin_above_tmax = tmin_above_tmax;
+  summary.implausible = counts.total_implausible();
+  summary.inverted = counts.inverted;
+  summary.notes = detail::temperature_notes(source, counts);
   summary.parameters = parameters;
   summary.outputs = output_paths;
   summary.seconds =

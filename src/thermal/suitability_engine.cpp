@@ -2,6 +2,7 @@
 // daily extremes or overpasses, or the temperatures as given) -> daily means -> period means
 // -> synoptic and year-specific layers and their suitable-period counts -> GeoTIFFs.
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 #include <tbb/enumerable_thread_specific.h>
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
@@ -22,21 +23,37 @@
 
 namespace kalends {
 
-std::vector<std::string> temperature_notes(std::int64_t implausible, std::int64_t tmin_above_tmax) {
-  std::vector<std::string> notes;
-  if (implausible > 0)
-    notes.push_back(fmt::format("{} values outside -100..100 deg C were taken as missing", implausible));
-  if (tmin_above_tmax > 0)
-    notes.push_back(fmt::format("{} pixel-day(s) with tmin above tmax were taken as missing", tmin_above_tmax));
-  return notes;
-}
-
 const char* const suitability_caution =
     "Caution: temperature suitability describes temperature alone - not malaria risk, incidence "
     "or a case forecast; land-surface temperature is not air temperature; decisions belong with "
     "national programme data, entomological surveillance and local expertise.";
 
 namespace {
+
+// The year layers of an earlier run into the same folder whose years this run does not cover
+// (a narrower --years): later steps would read them with the new synoptic layers as one set.
+// Only files a suitability run wrote (KALENDS_MODEL) are removed. Returns the years removed.
+std::vector<int> remove_years_outside(const std::string& out_dir, const std::string& name, int first_year,
+                                      int last_year) {
+  std::set<int> removed;
+  std::error_code ec;
+  for (const auto& entry : std::filesystem::directory_iterator(out_dir, ec)) {
+    const std::string file = entry.path().filename().string();
+    for (const std::string kind : {"_year_", "_summary_"}) {
+      const std::string prefix = name + kind;
+      if (!file.starts_with(prefix) || file.size() != prefix.size() + 8 || !file.ends_with(".tif")) continue;
+      const std::string digits = file.substr(prefix.size(), 4);
+      if (!std::all_of(digits.begin(), digits.end(), [](char c) { return c >= '0' && c <= '9'; })) continue;
+      const int year = std::stoi(digits);
+      if (year >= first_year && year <= last_year) continue;
+      GDALDatasetUniquePtr ds(GDALDataset::Open(entry.path().c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      const bool ours = ds && ds->GetMetadataItem("KALENDS_MODEL") != nullptr;
+      ds.reset();
+      if (ours && std::filesystem::remove(entry.path(), ec)) removed.insert(year);
+    }
+  }
+  return {removed.begin(), removed.end()};
+}
 
 namespace fs = std::filesystem;
 constexpr int tile_size = 256;
@@ -300,18 +317,19 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
           const double v = w.daily[sources[k].composite[j]];
           if (std::isfinite(v)) sum += sources[k].days[j] * v, weight += sources[k].days[j];
         }
-        w.value[k] = weight > 0 ? sum / weight : NAN;
+        // As stored (float): a value too small for a float is written as 0, and the summaries
+        // count what is written.
+        w.value[k] = weight > 0 ? double(float(sum / weight)) : NAN;
       }
       for (int q = 0; q < P; ++q) {
         double sum = 0;
         int count = 0;
         for (int y = 0; y < years; ++y) {
-          // As stored (float), so that a year read back gives the same synoptic mean.
-          const double v = double(float(w.value[std::size_t(y) * P + q]));
+          const double v = w.value[std::size_t(y) * P + q];
           if (year_file[y] != kept) band(year_file[y], q)[p] = float(v);
           if (std::isfinite(v)) sum += v, ++count;
         }
-        w.mean[q] = count > 0 ? sum / count : NAN;
+        w.mean[q] = count > 0 ? double(float(sum / count)) : NAN;
         band(synoptic, q)[p] = float(w.mean[q]);
       }
       auto put = [&](std::size_t file, const SuitableRun& r) {
@@ -330,27 +348,18 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     outputs.write_all(core, w.bands, w.tile);
   };
   detail::run_blocks(plan, threads, workers, process, at_once);
-  std::int64_t implausible = 0, finite = 0, count_pixels = 0, tmin_above_tmax = 0,
-               extreme_pairs = 0;
+  std::int64_t count_pixels = 0;
   double count_sum = 0;
+  detail::TemperatureCounts counts;
   for (const Worker& w : workers) {
-    implausible += w.block->implausible;
-    finite += w.block->finite;
-    tmin_above_tmax += w.block->tmin_above_tmax;
-    extreme_pairs += w.block->extreme_pairs;
+    counts.add(w.block->counts);
     count_sum += w.count_sum;
     count_pixels += w.count_pixels;
   }
-  if (implausible > finite)
-    throw InputError(
-        inputs_text,
-        fmt::format("{} of {} values lie outside {:g}..{:g} deg C after unit conversion: "
-                    "the unit (--units) or scale factor (--scale) is probably wrong",
-                    implausible, implausible + finite, detail::plausible_low_celsius,
-                    detail::plausible_high_celsius));
-  detail::check_extremes_order(source, tmin_above_tmax, extreme_pairs);
+  detail::check_temperature_counts(source, counts);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
+  const std::vector<int> stale = remove_years_outside(request.out_dir, name, first_year, last_year);
 
   SuitabilitySummary summary;
   summary.dates_at_month_ends = dates_at_month_ends(times);
@@ -365,8 +374,12 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.last_year = last_year;
   summary.model = model.description();
   summary.mean_suitable_periods = count_pixels > 0 ? count_sum / double(count_pixels) : NAN;
-  summary.implausible = implausible;
-  summary.tmin_above_tmax = tmin_above_tmax;
+  summary.implausible = counts.total_implausible();
+  summary.inverted = counts.inverted;
+  summary.notes = detail::temperature_notes(source, counts);
+  if (!stale.empty())
+    summary.notes.push_back(fmt::format("removed the layers of {} from an earlier run: outside this run's years",
+                                        fmt::join(stale, ", ")));
   summary.outputs = output_paths;
   summary.seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();

@@ -126,7 +126,8 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   s.times = s.stacks.front().times();
   for (std::size_t k = 1; k < s.stacks.size(); ++k) {
     const Stack& other = s.stacks[k];
-    require_same_grid(s.grid, other.grid(), other.input());
+    require_same_grid(s.grid, other.grid(), inputs[k].first + " " + other.input(),
+                      inputs.front().first + " " + s.stacks.front().input());
     const std::vector<TimePoint> times = other.times();
     for (const TimePoint& t : s.times)
       if (!std::binary_search(times.begin(), times.end(), t))
@@ -157,9 +158,26 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   return s;
 }
 
+void TemperatureCounts::add(const TemperatureCounts& other) {
+  implausible.resize(std::max(implausible.size(), other.implausible.size()), 0);
+  finite.resize(implausible.size(), 0);
+  for (std::size_t k = 0; k < other.implausible.size(); ++k)
+    implausible[k] += other.implausible[k], finite[k] += other.finite[k];
+  pairs += other.pairs;
+  inverted += other.inverted;
+}
+
+std::int64_t TemperatureCounts::total_implausible() const {
+  std::int64_t sum = 0;
+  for (std::int64_t n : implausible) sum += n;
+  return sum;
+}
+
 TemperatureBlock::TemperatureBlock(const TemperatureSource& source) : source_(source) {
   for (const Stack& stack : source.stacks) readers_.push_back(stack.reader());
   planes_.resize(source.stacks.size());
+  counts.implausible.assign(source.stacks.size(), 0);
+  counts.finite.assign(source.stacks.size(), 0);
 }
 
 void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t last) {
@@ -177,35 +195,62 @@ void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t
         const double c = double(out[p]) + offset;
         if (c < plausible_low_celsius || c > plausible_high_celsius) {
           out[p] = NAN;
-          ++implausible;
+          ++counts.implausible[k];
         } else {
           out[p] = float(c);
-          ++finite;
+          ++counts.finite[k];
         }
       }
     }
   }
-  if (source_.mode != TemperatureSource::Mode::extremes) return;
+  if (source_.mode == TemperatureSource::Mode::constant) return;
+  const bool extremes = source_.mode == TemperatureSource::Mode::extremes;
   const std::size_t values = (last - first) * std::size_t(pixels_);
   for (std::size_t v = 0; v < values; ++v) {
-    const float tmin = planes_[0][v], tmax = planes_[1][v];
-    if (!std::isfinite(tmin) || !std::isfinite(tmax)) continue;
-    ++extreme_pairs;
-    if (tmin > tmax) ++tmin_above_tmax;
+    const float a = planes_[0][v], b = planes_[1][v];  // tmin, tmax | day, night
+    if (!std::isfinite(a) || !std::isfinite(b)) continue;
+    ++counts.pairs;
+    if (extremes ? a > b : a <= b) ++counts.inverted;
   }
 }
 
-void check_extremes_order(const TemperatureSource& source, std::int64_t tmin_above_tmax,
-                          std::int64_t extreme_pairs) {
-  if (extreme_pairs == 0 ||
-      double(tmin_above_tmax) <= swapped_extremes_share * double(extreme_pairs))
+void check_temperature_counts(const TemperatureSource& source, const TemperatureCounts& counts) {
+  static const char* const options[3][2] = {{"--tmin", "--tmax"}, {"--day", "--night"}, {"--temperature", ""}};
+  const int mode = int(source.mode);
+  for (std::size_t k = 0; k < counts.implausible.size(); ++k)
+    if (counts.implausible[k] > counts.finite[k])
+      throw InputError(
+          std::string(options[mode][k]) + " " + source.stacks[k].input(),
+          fmt::format("{} of {} values lie outside {:g}..{:g} deg C after unit conversion: the unit "
+                      "(--units) or scale factor (--scale) is probably wrong",
+                      counts.implausible[k], counts.implausible[k] + counts.finite[k],
+                      plausible_low_celsius, plausible_high_celsius));
+  if (counts.pairs == 0 || double(counts.inverted) <= swapped_extremes_share * double(counts.pairs))
     return;
-  throw InputError(
-      fmt::format("--tmin {}, --tmax {}", source.stacks[0].input(), source.stacks[1].input()),
-      fmt::format("tmin is above tmax on {:.0f} % of pixel-days ({} of {}): are --tmin and "
-                  "--tmax swapped?",
-                  100.0 * double(tmin_above_tmax) / double(extreme_pairs), tmin_above_tmax,
-                  extreme_pairs));
+  const std::string inputs = fmt::format("{} {}, {} {}", options[mode][0], source.stacks[0].input(),
+                                         options[mode][1], source.stacks[1].input());
+  const double percent = 100.0 * double(counts.inverted) / double(counts.pairs);
+  if (source.mode == TemperatureSource::Mode::extremes)
+    throw InputError(inputs, fmt::format("tmin is above tmax on {:.0f} % of pixel-days ({} of {}): are "
+                                         "--tmin and --tmax swapped?",
+                                         percent, counts.inverted, counts.pairs));
+  throw InputError(inputs, fmt::format("the day sample is not warmer than the night sample on {:.0f} % of "
+                                       "pixel-days ({} of {}): are --day and --night swapped?",
+                                       percent, counts.inverted, counts.pairs));
+}
+
+std::vector<std::string> temperature_notes(const TemperatureSource& source, const TemperatureCounts& counts) {
+  std::vector<std::string> notes;
+  if (const std::int64_t implausible = counts.total_implausible(); implausible > 0)
+    notes.push_back(fmt::format("{} values outside {:g}..{:g} deg C were taken as missing", implausible,
+                                plausible_low_celsius, plausible_high_celsius));
+  if (counts.inverted > 0 && source.mode == TemperatureSource::Mode::extremes)
+    notes.push_back(fmt::format("{} pixel-day(s) with tmin above tmax were taken as missing", counts.inverted));
+  if (counts.inverted > 0 && source.mode == TemperatureSource::Mode::overpasses)
+    notes.push_back(fmt::format("{} pixel-day(s) with the day sample not warmer than the night sample were "
+                                "taken as flat at their mean",
+                                counts.inverted));
+  return notes;
 }
 
 PixelLocator::PixelLocator(const Grid& grid, const std::string& where) : grid_(grid) {

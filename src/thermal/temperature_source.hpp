@@ -21,10 +21,10 @@ namespace kalends::detail {
 /// to a wrong unit or a missing scale factor rather than a temperature.
 constexpr double plausible_low_celsius = -100, plausible_high_celsius = 100;
 
-/// Above this share of pixel-days with tmin above tmax the inputs are taken to be swapped and
-/// the run stops; below it those pixel-days are taken as missing and counted. Common practice
-/// (no source): a majority rule, since swapped inputs invert nearly every pixel-day and sound
-/// ones invert few or none.
+/// Above this share of pixel-days with tmin above tmax (or a day overpass not warmer than the
+/// night one) the inputs are taken to be swapped and the run stops; below it those pixel-days
+/// are taken as missing (flat) and counted. Common practice (no source): a majority rule, since
+/// swapped inputs invert nearly every pixel-day and sound ones invert few or none.
 constexpr double swapped_extremes_share = 0.5;
 
 /// Pixels per block: what the memory budget allows, but small enough that every worker gets
@@ -61,18 +61,26 @@ struct TemperatureSource {
   std::size_t dates() const { return times.size(); }
 };
 
+/// What the reading of temperatures found, summed over blocks and checked once at the end.
+struct TemperatureCounts {
+  std::vector<std::int64_t> implausible, finite;  // per stack: values outside / inside the range
+  /// Pixel-dates with both values of a pair (tmin and tmax, or day and night), and those whose
+  /// order is wrong: tmin above tmax, or a day sample not warmer than the night sample.
+  std::int64_t pairs = 0, inverted = 0;
+  void add(const TemperatureCounts& other);
+  std::int64_t total_implausible() const;
+};
+
 /// One worker's view: its readers and buffers. Values are deg C, [date][pixel].
 class TemperatureBlock {
  public:
   explicit TemperatureBlock(const TemperatureSource& source);
-  /// Reads dates [first, last) of every stack for `window`; counts implausible values and,
-  /// for daily extremes, the pixel-days with both values and those with tmin above tmax.
+  /// Reads dates [first, last) of every stack for `window` and counts what it finds.
   void read(const Window& window, std::size_t first, std::size_t last);
   const float* values(std::size_t stack, std::size_t date) const {
     return planes_[stack].data() + (date - first_) * pixels_;
   }
-  std::int64_t implausible = 0, finite = 0;
-  std::int64_t extreme_pairs = 0, tmin_above_tmax = 0;
+  TemperatureCounts counts;
 
  private:
   const TemperatureSource& source_;
@@ -82,11 +90,17 @@ class TemperatureBlock {
   std::int64_t pixels_ = 0;
 };
 
-/// After every block is read: InputError naming both inputs when tmin is above tmax on more
-/// than `swapped_extremes_share` of the pixel-days that have both (--tmin and --tmax are
-/// swapped). Fewer are left to the caller to report; they are missing in the outputs.
-void check_extremes_order(const TemperatureSource& source, std::int64_t tmin_above_tmax,
-                          std::int64_t extreme_pairs);
+/// After every block is read, before anything is published: InputError naming the input when
+/// most of one stack's values are implausible (a wrong unit or scale factor: each stack on its
+/// own, since one wrong stack of two is only half of the values), and naming both inputs when
+/// more than `swapped_extremes_share` of the pairs are inverted (the inputs are swapped).
+/// Fewer are left to the caller to report; they are missing (or flat) in the outputs.
+void check_temperature_counts(const TemperatureSource& source, const TemperatureCounts& counts);
+
+/// What a user should know about the input temperatures (values taken as missing, inverted
+/// pairs), one line each; empty when there is nothing to say. `kalends diurnal`, `kalends
+/// suitability` and a job's suitability step show the same lines.
+std::vector<std::string> temperature_notes(const TemperatureSource& source, const TemperatureCounts& counts);
 
 /// Latitude and longitude (degrees, WGS 84) of pixel centres. Owns its transformation; use
 /// one per thread.

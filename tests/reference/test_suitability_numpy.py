@@ -254,6 +254,125 @@ class BadInput(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("--calibrate: fits a, b and c alone", done.stderr)
 
+    def test_day_and_night_swapped(self):
+        # Given the other way round, every day sample is colder than its night sample: each day
+        # would be taken as flat at their mean, a plausible but wrong layer (docs/methods.md).
+        folder = os.path.join(self.tmp, "swapped")
+        make_stack(folder, np.random.default_rng(1))
+        for command in ("suitability", "diurnal"):
+            out = os.path.join(self.tmp, "swapped-" + command)
+            done = kt.run_kalends([command, "--day", folder + "/night/*.tif", "--night", folder + "/day/*.tif",
+                                   "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            lines = done.stderr.strip().splitlines()
+            self.assertEqual(len(lines), 1, done.stderr)
+            self.assertIn("--day %s/night/*.tif, --night %s/day/*.tif" % (folder, folder), lines[0])
+            self.assertIn("the day sample is not warmer than the night sample on 100 % of pixel-days", lines[0])
+            self.assertIn("are --day and --night swapped?", lines[0])
+            self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+
+    def test_day_colder_than_night_on_a_few_pixel_days_is_counted(self):
+        folder = os.path.join(self.tmp, "few")
+        make_stack(folder, np.random.default_rng(1))
+        # Two dates' night samples raised above their day samples: 2 x 63 pixel-days, less
+        # the cloud gaps of either sample.
+        expected = 0
+        for d in DATES[:2]:
+            day = read_celsius(os.path.join(folder, "day", "lst_day_%s.tif" % d.isoformat())) + 273.15
+            night = os.path.join(folder, "night", "lst_night_%s.tif" % d.isoformat())
+            old = read_celsius(night) + 273.15
+            write_lst(night, np.where(np.isfinite(old), day + 1, np.nan))
+            expected += int(np.sum(np.isfinite(old) & np.isfinite(day)))
+        done = kt.run_kalends(["suitability", "--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                               "--out", os.path.join(self.tmp, "few-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("%d pixel-day(s) with the day sample not warmer than the night sample were taken as flat "
+                      "at their mean" % expected, done.stdout)
+
+    def test_one_stack_without_its_scale_factor(self):
+        # The night stack alone lost its scale (raw kelvin x 50 read as kelvin): half of all
+        # values are implausible, which a test over both stacks together let through, and the
+        # layers came out empty with exit 0.
+        folder = os.path.join(self.tmp, "halfscale")
+        make_stack(folder, np.random.default_rng(1))
+        for path in glob.glob(os.path.join(folder, "night", "*.tif")):
+            ds = kt.gdal().Open(path, 1)
+            ds.GetRasterBand(1).SetScale(1.0)
+            ds = None
+        for command in ("suitability", "diurnal"):
+            out = os.path.join(self.tmp, "halfscale-" + command)
+            done = kt.run_kalends([command, "--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                                   "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            lines = done.stderr.strip().splitlines()
+            self.assertEqual(len(lines), 1, done.stderr)
+            self.assertIn("--night %s/night/*.tif" % folder, lines[0])
+            self.assertNotIn("--day", lines[0])
+            self.assertIn("scale factor", lines[0])
+            self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+
+    def test_the_other_input_on_another_grid_is_named(self):
+        # The night stack is consistent in itself; it is the day stack whose grid it misses.
+        folder = os.path.join(self.tmp, "shifted")
+        make_stack(folder, np.random.default_rng(1))
+        for path in glob.glob(os.path.join(folder, "night", "*.tif")):
+            ds = kt.gdal().Open(path, 1)
+            ds.SetGeoTransform((GT[0] + 1000,) + GT[1:])
+            ds = None
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"],
+                            "--night %s/night/*.tif" % folder)
+        self.assertIn("differs from that of --day %s/day/*.tif" % folder, line)
+
+
+class MonthlySummariesAndReruns(kt.TempDirTestCase):
+    """Monthly mean temperatures as given (--temperature), three invented years."""
+
+    def write_months(self, folder, years, celsius):
+        os.makedirs(folder, exist_ok=True)
+        for year in years:
+            for month in range(1, 13):
+                path = os.path.join(folder, "tas_%d-%02d-01.tif" % (year, month))
+                kt.write_raster(path, np.full((3, 4), celsius, np.float32), geotransform=(30, 0.1, 0, 0, 0, -0.1),
+                                epsg=4326)
+                ds = kt.gdal().Open(path, 1)
+                ds.GetRasterBand(1).SetUnitType("C")
+                ds = None
+
+    def test_summaries_count_the_values_as_written(self):
+        # At 16.1 C the degree-day model's falciparum value is about 1e-51 (111 degree-days
+        # above 16 C take 1110 days, survival 0.9 per day; Detinova 1962 and Martens, from
+        # memory): below float32's range, written as 0. The year summary had counted 12
+        # suitable months where the layer shows none; the synoptic summary, 0.
+        folder = os.path.join(self.tmp, "cool")
+        self.write_months(folder, [2031], 16.1)
+        out = os.path.join(self.tmp, "cool-out")
+        done = kt.run_kalends(["suitability", "--temperature", folder + "/*.tif", "--model", "degree-day",
+                               "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        year, _ = read_bands(os.path.join(out, "degree-day-falciparum_year_2031.tif"))
+        self.assertTrue(np.all(year == 0))
+        for layer in ("summary_2031", "summary_synoptic"):
+            bands, _ = read_bands(os.path.join(out, "degree-day-falciparum_%s.tif" % layer))
+            self.assertTrue(np.all(bands[0] == 0), layer)   # suitable months
+            self.assertTrue(np.all(bands[1] == 0), layer)   # longest run
+
+    def test_a_narrower_span_of_years_removes_the_others(self):
+        folder = os.path.join(self.tmp, "warm")
+        self.write_months(folder, [2031, 2032, 2033], 24.0)
+        out = os.path.join(self.tmp, "warm-out")
+        args = ["suitability", "--temperature", folder + "/*.tif", "--out", out]
+        self.assertEqual(kt.run_kalends(args).returncode, 0)
+        # A file of the user's with a name like the layers' (no KALENDS_MODEL) is not touched.
+        own = os.path.join(out, "r0-2013_year_2030.tif")
+        kt.write_raster(own, np.zeros((3, 4), np.float32))
+        done = kt.run_kalends(args + ["--years", "2032-2033"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("removed the layers of 2031 from an earlier run: outside this run's years", done.stdout)
+        names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "*.tif")))
+        self.assertEqual(names, ["r0-2013_summary_2032.tif", "r0-2013_summary_2033.tif",
+                                 "r0-2013_summary_synoptic.tif", "r0-2013_synoptic.tif", "r0-2013_year_2030.tif",
+                                 "r0-2013_year_2032.tif", "r0-2013_year_2033.tif"])
+
 
 if __name__ == "__main__":
     unittest.main()

@@ -63,7 +63,7 @@ StepKind suitability_step_kind() {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
     return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution,
-                       temperature_notes(s.implausible, s.tmin_above_tmax)};
+                       s.notes};
   };
   return kind;
 }
