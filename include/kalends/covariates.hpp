@@ -25,6 +25,9 @@ struct SeriesFile {
   std::string path;
   TimePoint time;  // dated: the file's date (the start of its period)
   int year = 0;    // year_period: the year
+  /// A calendar period of a fill that no composite of any year stands for (the stack's
+  /// off-season: KALENDS_PERIOD_DAYS_COVERED 0); its values are empty by design.
+  bool outside_season = false;
 };
 
 struct CovariateSeries {

@@ -77,6 +77,8 @@ struct ExtractResult {
   std::vector<ExtractedValue> values;  // point-major, then series, then lag
   int missing = 0;
   std::vector<std::string> repeated_ids;  // ids given to more than one point (kept, each its row)
+  std::vector<std::string> notes;         // what a user should know, a line each (repeated ids)
+  std::vector<std::string> cautions;      // the selected layers' KALENDS_CAUTION, each once
 };
 
 /// The checks that need no file (buffer, lags); UsageError naming the option. run_extract calls

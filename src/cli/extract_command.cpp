@@ -50,9 +50,10 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     r.layers = split_list(o->layers, "--layers");
     r.marks = parse_date_marks(o->marks);
     const ExtractResult result = run_extract(r);
-    if (!result.repeated_ids.empty())
-      std::fprintf(stderr, "note: %s: %zu ids name more than one point (first: '%s'); each point keeps its own row\n",
-                   r.points.path.c_str(), result.repeated_ids.size(), result.repeated_ids.front().c_str());
+    for (const std::string& note : result.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
+    // Shown even with -q, as `kalends suitability` shows it: a value in a survey table is
+    // where it is most easily read as a risk.
+    for (const std::string& caution : result.cautions) std::fprintf(stderr, "%s\n", caution.c_str());
     if (!global.quiet)
       fmt::print("kalends extract: {} points x {} layers{}: {} values, {} missing (see the reason columns) -> {}\n",
                  result.points.points.size(), result.series.size(),

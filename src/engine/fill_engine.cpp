@@ -287,7 +287,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     spec.metadata = common_metadata();
     spec.metadata["KALENDS_DATE"] = period.start.iso();
     spec.metadata["KALENDS_PERIOD"] = request.every->label();
-    spec.metadata["KALENDS_PERIOD_DAYS_COVERED"] = std::to_string(period.days);
+    // Outside the season no composite stands for any day: 0 days, which `extract` reads as
+    // the reason for the empty values.
+    spec.metadata["KALENDS_PERIOD_DAYS_COVERED"] = std::to_string(period.in_season ? period.days : 0);
     spec.metadata["KALENDS_VALUES"] = "period mean of the fitted curve";
     spec.metadata["KALENDS_DATE_MARKS"] = request.marks == DateMarks::start ? "start"
                                           : request.marks == DateMarks::end ? "end"

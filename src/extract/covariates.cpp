@@ -161,7 +161,7 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         if (end == step.c_str() || *end != '\0' || !(c.step_days > 0))
           throw InputError(s.path, "KALENDS_TIME_STEP_DAYS '" + step + "' is not a number of days");
       }
-      c.files.push_back({s.path, *time, 0});
+      c.files.push_back({s.path, *time, 0, item(*ds, "KALENDS_PERIOD_DAYS_COVERED") == "0"});
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, grid_of(*ds), s.path);
     } else if (periodic) {

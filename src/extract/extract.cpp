@@ -362,7 +362,21 @@ ExtractResult run_extract(const ExtractRequest& request) {
     for (const SurveyPoint& p : r.points.points)
       if (++seen[p.id] == 2) r.repeated_ids.push_back(p.id);
   }
-  r.series = select(find_covariates(request.covariates, request.include_descriptors, request.name_prefixes), request.layers);
+  std::vector<CovariateSeries> found = find_covariates(request.covariates, request.include_descriptors, request.name_prefixes);
+  // The table replaces neither the points it reads nor a layer: both would be lost.
+  if (!request.out.empty() && std::filesystem::exists(request.out)) {
+    auto same = [&](const std::string& path) {
+      std::error_code ec;
+      return std::filesystem::equivalent(request.out, path, ec);
+    };
+    if (same(request.points.path))
+      throw UsageError("--out '" + request.out + "'", "is the points file itself; give the table another name");
+    for (const CovariateSeries& s : found)
+      for (const auto& f : s.files)
+        if (same(f.path))
+          throw UsageError("--out '" + request.out + "'", "is a file of the layer " + s.name + "; give the table another name");
+  }
+  r.series = select(std::move(found), request.layers);
   for (CovariateSeries& s : r.series) set_date_marks(s, request.marks);
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());
@@ -392,6 +406,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
         else {
           const std::string& path = s.files[m.file].path;
           if (at.inside) sample(files, s, path, m.band, at, request.sampling, v);
+          if (!v.value && at.inside && s.files[m.file].outside_season)
+            v.reason = "outside the stack's season (no composite stands for these days)";
           else v.reason = at.reason;
           if (request.buffer_metres > 0) {
             buffer_mean(files, s, path, m.band, cells, v);
@@ -403,6 +419,12 @@ ExtractResult run_extract(const ExtractRequest& request) {
       }
     }
   }
+  if (!r.repeated_ids.empty())
+    r.notes.push_back(fmt::format("{}: {} ids name more than one point (first: '{}'); each point keeps its own row",
+                                  request.points.path, r.repeated_ids.size(), r.repeated_ids.front()));
+  for (const CovariateSeries& s : r.series)
+    if (!s.caution.empty() && std::find(r.cautions.begin(), r.cautions.end(), s.caution) == r.cautions.end())
+      r.cautions.push_back(s.caution);
   if (!request.out.empty()) detail::write_text_atomically(request.out, write_table(request, r));
   return r;
 }

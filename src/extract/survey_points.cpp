@@ -5,6 +5,8 @@
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
+#include <fstream>
+#include <iterator>
 #include <regex>
 
 #include <fmt/format.h>
@@ -45,6 +47,77 @@ double coordinate(const std::string& text, const std::string& where) {
   return v;
 }
 
+// The data rows of a CSV as GDAL's reader returns them (lines that are empty are skipped; a
+// quoted field may span lines): each row's line number and field count. GDAL fills a short row
+// with nulls and drops a long row's extra fields, so a decimal comma in an unquoted field would
+// shift the columns unseen; the counts let such a row be refused. `fields` is the header's
+// field count, which picks the separator GDAL chose.
+struct CsvRow {
+  int line = 0, fields = 0;
+  bool blank = false;  // every field empty or spaces (a spreadsheet's leftover separators)
+};
+
+// Reads the record that starts at `pos` (a quoted field may span lines) and moves `pos` past
+// it; counts its fields and the line ends inside quotes.
+CsvRow read_record(const std::string& text, std::size_t& pos, char separator, int& extra_lines) {
+  CsvRow row{0, 1, true};
+  bool quoted = false;
+  for (; pos < text.size(); ++pos) {
+    const char c = text[pos];
+    const bool space = std::isspace(static_cast<unsigned char>(c));
+    if (quoted) {
+      if (c == '"' && pos + 1 < text.size() && text[pos + 1] == '"') ++pos, row.blank = false;
+      else if (c == '"') quoted = false;
+      else extra_lines += c == '\n', row.blank = row.blank && space;
+    } else if (c == '"') {
+      quoted = true;
+    } else if (c == separator) {
+      ++row.fields;
+    } else if (c == '\n') {
+      ++pos;
+      break;
+    } else if (!space) {
+      row.blank = false;
+    }
+  }
+  return row;
+}
+
+std::vector<CsvRow> csv_rows(const std::string& path, int fields) {
+  std::ifstream in(path, std::ios::binary);
+  std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+  if (text.starts_with("\xEF\xBB\xBF")) text.erase(0, 3);
+  std::size_t data = 0;
+  int lines = 0;
+  char separator = ',';
+  for (char candidate : {',', ';', '\t', '|', ' '}) {
+    std::size_t pos = 0;
+    lines = 0;
+    if (read_record(text, pos, candidate, lines).fields == fields) {
+      separator = candidate;
+      data = pos;
+      break;
+    }
+  }
+  if (data == 0) {  // no separator gives the header's count: take GDAL's word for the rows
+    std::size_t pos = 0;
+    read_record(text, pos, separator, lines);
+    data = pos;
+  }
+  std::vector<CsvRow> rows;
+  int line = 2 + lines;
+  for (std::size_t pos = data; pos < text.size();) {
+    const std::size_t start = pos;
+    int extra = 0;
+    CsvRow row = read_record(text, pos, separator, extra);
+    row.line = line;
+    line += 1 + extra;
+    if (text.find_first_not_of("\r\n", start) >= pos) continue;  // an empty line
+    rows.push_back(row);
+  }
+  return rows;
+}
+
 // YYYY-MM-DD or YYYY-MM (also with '/', as OGR prints date fields), optionally a time after.
 void read_date(SurveyPoint& p, const std::string& where) {
   static const std::regex pattern(R"((\d{4})[-/](\d{1,2})(?:[-/](\d{1,2}))?(?:[T ].*)?)");
@@ -64,14 +137,24 @@ void read_date(SurveyPoint& p, const std::string& where) {
 SurveyPoints read_survey_points(const PointsSource& source) {
   detail::start_gdal();
   const std::string path = source.path;
-  const bool csv = lower(std::filesystem::path(path).extension().string()) == ".csv";
   if (!std::filesystem::exists(path)) throw InputError(path, "no such file");
+  std::error_code ec;
+  if (std::filesystem::is_regular_file(path, ec) && std::filesystem::file_size(path, ec) == 0)
+    throw InputError(path, "is empty");
   CPLErrorReset();
   GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
+  const std::string extension = lower(std::filesystem::path(path).extension().string());
+  if (!ds && (extension == ".txt" || extension == ".tsv" || extension == ".tab" || extension == ".dat")) {
+    // A delimited text file by another name: GDAL's CSV reader takes it when asked by name.
+    CPLErrorReset();
+    ds.reset(GDALDataset::Open(("CSV:" + path).c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
+  }
   if (!ds || ds->GetLayerCount() < 1)
     throw InputError(path, "cannot open as a table of points (" + detail::gdal_message("unknown format") + ")");
+  const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
   OGRLayer* layer = ds->GetLayer(0);
   OGRFeatureDefn& defn = *layer->GetLayerDefn();
+  if (layer->GetFeatureCount() == 0) throw InputError(path, "holds no points");
   const int id = field_index(defn, source.id_column, "--id-column", path);
   const int date = source.date_column.empty() ? -1 : field_index(defn, source.date_column, "--date-column", path);
   int x = -1, y = -1;
@@ -92,10 +175,19 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   result.crs_wkt = wkt ? wkt : "";
   CPLFree(wkt);
   layer->ResetReading();
-  int row = 1;  // the header is row 1 of a CSV
+  const std::vector<CsvRow> rows = csv ? csv_rows(path, defn.GetFieldCount()) : std::vector<CsvRow>{};
+  std::size_t row = 0;
   for (auto& feature : *layer) {
+    const CsvRow raw = row < rows.size() ? rows[row] : CsvRow{int(row) + 2, defn.GetFieldCount(), false};
     ++row;
-    const std::string where = path + (csv ? ":" + std::to_string(row) : " feature " + std::to_string(feature->GetFID()));
+    const std::string where = path + (csv ? ":" + std::to_string(raw.line) : " feature " + std::to_string(feature->GetFID()));
+    if (csv && raw.blank) continue;  // only separators or spaces: nothing was written there
+    if (csv && raw.fields != defn.GetFieldCount())
+      throw InputError(where, fmt::format("has {} fields where the header has {} ({})", raw.fields,
+                                          defn.GetFieldCount(),
+                                          raw.fields > defn.GetFieldCount()
+                                              ? "a decimal comma or a separator inside an unquoted field?"
+                                              : "a row cut short?"));
     SurveyPoint p;
     p.id = feature->GetFieldAsString(id);
     if (csv) {
@@ -134,7 +226,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     }
     result.points.push_back(std::move(p));
   }
-  if (result.points.empty()) throw InputError(path, "no points");
+  if (result.points.empty()) throw InputError(path, "holds no points");
   return result;
 }
 

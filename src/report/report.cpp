@@ -291,11 +291,20 @@ th{background:#eef3f8}td:first-child,th:first-child{text-align:left}
 
 }  // namespace
 
+// How every page begins (and how an earlier page is recognised).
+constexpr const char* page_start =
+    "<!DOCTYPE html>\n<html lang=\"en\">\n<head><meta charset=\"utf-8\"><title>kalends report: ";
+
 ReportSummary run_report(const ReportRequest& request) {
   const fs::path root(request.folder);
   std::error_code ec;
   if (!fs::is_directory(root, ec)) throw InputError(request.folder, "not a folder");
   if (request.samples < 1 || request.samples > 64) throw UsageError("--samples", "between 1 and 64 pixels");
+  // A page replaces only an earlier page: a mistyped --html naming a layer or a table would
+  // otherwise be lost.
+  if (fs::is_regular_file(request.html, ec) && !read_file(request.html).starts_with(page_start))
+    throw UsageError("--html '" + request.html + "'",
+                     "the file exists and is not a kalends report; give a new name or remove it first");
   std::vector<std::string> searched{request.folder}, prefixes;
   if (!request.steps.empty()) {
     searched.clear();
@@ -376,8 +385,8 @@ ReportSummary run_report(const ReportRequest& request) {
   const Plots plots = time_series_html(request, all);
   summary.plots = plots.count;
 
-  std::string html = fmt::format(
-      "<!DOCTYPE html>\n<html lang=\"en\">\n<head><meta charset=\"utf-8\"><title>kalends report: {0}</title>\n"
+  std::string html = std::string(page_start) + fmt::format(
+      "{0}</title>\n"
       "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
       "{3} layers.</p></header>\n",
       escape(title), style, KALENDS_VERSION, all.size());

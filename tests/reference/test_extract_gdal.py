@@ -14,6 +14,7 @@ For WGS 84 points, the expected values are computed here, independently of kalen
   metres, the CRS's unit).
 """
 import os
+import shutil
 import sys
 import unittest
 
@@ -168,9 +169,14 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2)
         self.assertIn("none.csv: no such file", done.stderr)
         # A row cut short (a longitude, no latitude) is refused by its row, not taken as a point
-        # without coordinates.
+        # without coordinates: with its field missing, or empty.
         with open(bad, "w") as f:
             f.write("site,lon,lat\np1,-34.87,-7.98\np2,-34.87\n")
+        done = self.extract_site_table(bad, os.path.join(self.tmp, "x.csv"))
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("bad.csv:3: has 2 fields where the header has 3 (a row cut short?)", done.stderr)
+        with open(bad, "w") as f:
+            f.write("site,lon,lat\np1,-34.87,-7.98\np2,-34.87,\n")
         done = self.extract_site_table(bad, os.path.join(self.tmp, "x.csv"))
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("bad.csv:3: has lon '-34.87' but no lat", done.stderr)
@@ -202,6 +208,83 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p1"])
         self.assertIn("1 ids name more than one point (first: 'p1')", done.stderr)
 
+    def test_rows_whose_fields_do_not_match_the_header_are_refused(self):
+        bad = os.path.join(self.tmp, "fields.csv")
+        out = os.path.join(self.tmp, "fields_table.csv")
+        lon, lat = self.points[0][1], self.points[0][2]
+        # A decimal comma in an unquoted field shifts the columns: refused by its line (4: the
+        # empty line 3 counts), not read as a point at longitude 5.
+        with open(bad, "w") as f:
+            f.write("site,weight,lon,lat\np1,1.5,%.8f,%.8f\n\np2,1,5,%.8f,%.8f\n" % (lon, lat, lon, lat))
+        done = self.extract_site_table(bad, out)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("fields.csv:4: has 5 fields where the header has 4 (a decimal comma", done.stderr)
+        self.assertFalse(os.path.exists(out))
+        with open(bad, "w") as f:
+            f.write("site;note;lon;lat\np1;\"two\nlines; quoted\";%.8f;%.8f\np2;x;%.8f\n" % (lon, lat, lon))
+        done = self.extract_site_table(bad, out)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("fields.csv:4: has 3 fields where the header has 4 (a row cut short?)", done.stderr)
+        # Rows of separators and spaces (a spreadsheet's leftovers) are skipped like empty lines.
+        with open(bad, "w") as f:
+            f.write("site,lon,lat\r\np1,%.8f,%.8f\r\n,,\r\n  \r\n,, \r\n" % (lon, lat))
+        done = self.extract_site_table(bad, out, "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1"])
+        self.assertEqual(done.stderr, "")
+
+    def test_empty_and_renamed_tables(self):
+        empty = os.path.join(self.tmp, "empty.csv")
+        open(empty, "w").close()
+        done = self.extract_site_table(empty, os.path.join(self.tmp, "e.csv"))
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("empty.csv: is empty", done.stderr)
+        collection = os.path.join(self.tmp, "none.geojson")
+        with open(collection, "w") as f:
+            f.write('{"type": "FeatureCollection", "features": []}')
+        done = kt.run_kalends(["extract", self.raster, "--points", collection, "--out", os.path.join(self.tmp, "e.csv")])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("none.geojson: holds no points", done.stderr)
+        # The same table named .txt and tab-separated reads as the CSV does.
+        text = os.path.join(self.tmp, "sites.txt")
+        with open(self.csv) as f, open(text, "w") as g:
+            g.write(f.read().replace(",", "\t"))
+        out = os.path.join(self.tmp, "from_text.csv")
+        done = self.extract_site_table(text, out, "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        from_csv = os.path.join(self.tmp, "from_csv.csv")
+        self.assertEqual(self.extract_site_table(self.csv, from_csv, "-q").returncode, 0)
+        self.assertEqual(kt.read_table(out), kt.read_table(from_csv))
+        self.assertEqual(len(kt.read_table(out)), len(self.points))
+
+    def test_the_table_and_the_page_replace_no_input(self):
+        # A copy of the scene: the shared data itself is never written to, even by a failure.
+        layer = os.path.join(self.tmp, "scene", "L7_ETMs.tif")
+        os.makedirs(os.path.dirname(layer))
+        shutil.copy(self.raster, layer)
+        points = os.path.join(self.tmp, "keep.csv")
+        shutil.copy(self.csv, points)
+        before = {path: open(path, "rb").read() for path in (layer, points)}
+        for out, expected in ((points, "is the points file itself"), (layer, "is a file of the layer")):
+            done = kt.run_kalends(["extract", os.path.dirname(layer), "--points", points, "--out", out,
+                                   "--id-column", "site", "--x-column", "lon", "--y-column", "lat",
+                                   "--date-column", ""])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn(expected, done.stderr)
+        done = kt.run_kalends(["report", os.path.dirname(layer), "--html", layer])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("the file exists and is not a kalends report", done.stderr)
+        for path, content in before.items():
+            with open(path, "rb") as f:
+                self.assertEqual(f.read(), content, path)
+        # An earlier page is replaced.
+        page = os.path.join(self.tmp, "page.html")
+        for _ in range(2):
+            done = kt.run_kalends(["-q", "report", os.path.dirname(layer), "--html", page])
+            self.assertEqual(done.returncode, 0, done.stderr)
+
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
         base = ["extract", self.raster, "--points", self.csv, "--out", out, "--id-column", "site",
@@ -221,6 +304,39 @@ class ExtractLandsat(kt.TempDirTestCase):
             self.assertIn(expected, done.stderr)
             self.assertFalse(os.path.exists(out))
 
+
+
+class SummersOnly(kt.TempDirTestCase):
+    def test_a_month_outside_the_season_says_so(self):
+        # Invented summers (8 composites of 16 days from day 145, as the Alaska stack has) of
+        # 2031 and 2032 on a small UTM grid: the calendar months of the winter between them have
+        # no composite of any year, so their values are empty by design, not "nodata".
+        import datetime as dt
+        stack = os.path.join(self.tmp, "stack")
+        os.makedirs(stack)
+        for year in (2031, 2032):
+            for k in range(8):
+                day = dt.date(year, 1, 1) + dt.timedelta(days=144 + 16 * k)
+                kt.write_raster(os.path.join(stack, "ndvi_%s.tif" % day.isoformat()),
+                                np.full((4, 5), 0.4 + 0.02 * k, np.float32), geotransform=(400000, 250, 0, 7200000, 0, -250),
+                                epsg=32606)
+        job = os.path.join(self.tmp, "job")
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "*.tif"), "--out", os.path.join(job, "fill"),
+                               "--every", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\nwinter,400600,7199400,2032-01-15\nsummer,400600,7199400,2031-07-15\n")
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["-q", "extract", job, "--points", points, "--crs", "EPSG:32606", "--x-column", "x",
+                               "--y-column", "y", "--layers", "fill.calendar-1M.ndvi", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {r["id"]: r for r in kt.read_table(out)}
+        self.assertEqual(rows["winter"]["fill.calendar-1M.ndvi"], "")
+        self.assertTrue(rows["winter"]["fill.calendar-1M.ndvi.reason"].startswith("outside the stack's season"),
+                        rows["winter"])
+        self.assertNotEqual(rows["summer"]["fill.calendar-1M.ndvi"], "")
+        self.assertEqual(rows["summer"]["fill.calendar-1M.ndvi.reason"], "")
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)

@@ -356,6 +356,19 @@ class MonthlySummariesAndReruns(kt.TempDirTestCase):
             self.assertTrue(np.all(bands[0] == 0), layer)   # suitable months
             self.assertTrue(np.all(bands[1] == 0), layer)   # longest run
 
+    def test_extracting_suitability_shows_the_caution(self):
+        # A survey table is where a suitability value is most easily read as a risk.
+        folder = os.path.join(self.tmp, "extract")
+        self.write_months(folder, [2031], 24.0)
+        out = os.path.join(self.tmp, "extract-out")
+        self.assertEqual(kt.run_kalends(["-q", "suitability", "--temperature", folder + "/*.tif", "--out", out]).returncode, 0)
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\nA,30.15,-0.15,2031-06-15\n")
+        done = kt.run_kalends(["-q", "extract", out, "--points", points, "--out", os.path.join(self.tmp, "t.csv")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.stderr.count("not malaria risk"), 1, done.stderr)
+
     def test_a_narrower_span_of_years_removes_the_others(self):
         folder = os.path.join(self.tmp, "warm")
         self.write_months(folder, [2031, 2032, 2033], 24.0)

@@ -58,8 +58,10 @@ StepKind extract_step_kind() {
   kind.run = [](const StepContext& c) {
     const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);
-    run_extract(r);
-    return StepOutcome{1, 0, "", {}};
+    const ExtractResult result = run_extract(r);
+    std::string caution;
+    for (const std::string& text : result.cautions) caution += (caution.empty() ? "" : "\n  ") + text;
+    return StepOutcome{1, 0, caution, result.notes};
   };
   return kind;
 }
