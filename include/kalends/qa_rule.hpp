@@ -20,6 +20,9 @@ class QaRule {
   static QaRule parse(std::string_view text);  // throws UsageError
   bool keep(std::uint32_t qa) const noexcept;
   const std::string& text() const noexcept { return text_; }
+  /// The highest bit a `bit` or `bits` clause reads (-1 when only `value` clauses), so that a
+  /// rule can be checked against the QA layers' width.
+  int highest_bit() const noexcept;
 
  private:
   struct Range {

@@ -1,5 +1,8 @@
 #include "io/qa_pairing.hpp"
 
+#include <fmt/format.h>
+
+#include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends {
@@ -18,6 +21,16 @@ QaPairing pair_qa(const Stack& values, QaRule rule, const std::string& qa_input,
   qa_rules.exclude = values.rules().exclude;
   Stack stack = Stack::open(qa_input, qa_rules);
   std::vector<std::size_t> layer_of = partners_by_date(values, stack, "QA");
+  // A bit beyond the layers' width is always 0: a rule on it keeps or drops everything (a slip
+  // for bit 15 on 16-bit QA).
+  const Layer& first = stack.layers().front();
+  GDALDatasetUniquePtr dataset = detail::open_raster(first.path);
+  const GDALDataType type = dataset->GetRasterBand(first.band)->GetRasterDataType();
+  const int bits = GDALGetDataTypeSizeBits(type);
+  if (!GDALDataTypeIsFloating(type) && rule.highest_bit() >= bits)
+    throw UsageError("--keep '" + rule.text() + "'",
+                     fmt::format("reads bit {}, beyond the {}-bit QA values of {} (bits 0-{})", rule.highest_bit(),
+                                 bits, first.path, bits - 1));
   return QaPairing{std::move(rule), std::move(stack), std::move(layer_of)};
 }
 

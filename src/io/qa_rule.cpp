@@ -1,3 +1,4 @@
+#include <algorithm>
 #include <cctype>
 #include <charconv>
 #include <string>
@@ -113,6 +114,18 @@ QaRule QaRule::parse(std::string_view text) {
   } while (c.word("and"));
   if (!c.done()) c.fail("unexpected text");
   return rule;
+}
+
+int QaRule::highest_bit() const noexcept {
+  int highest = -1;
+  for (const Clause& clause : clauses_)
+    if (clause.mask != 0xffffffffu || clause.shift != 0)
+      for (int b = 31; b >= 0; --b)
+        if ((clause.mask << clause.shift) >> b & 1u) {
+          highest = std::max(highest, b);
+          break;
+        }
+  return highest;
 }
 
 bool QaRule::keep(std::uint32_t qa) const noexcept {

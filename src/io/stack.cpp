@@ -537,7 +537,33 @@ std::int64_t StackReader::read_values(std::size_t index, const Window& w, float*
 
 void StackReader::read_integers(std::size_t index, const Window& w, std::uint32_t* out) {
   const Layer& layer = stack_.layers()[index];
-  read_window(handles_->band(layer), layer, w, out, GDT_UInt32);
+  GDALRasterBand& band = handles_->band(layer);
+  const GDALDataType type = band.GetRasterDataType();
+  const std::size_t n = std::size_t(w.pixels());
+  if (GDALDataTypeIsFloating(type)) {
+    // A QA value is a bit pattern: a NaN or a fraction (a QA layer resampled by averaging) has
+    // none, and rounding it would invent one.
+    std::vector<double> values(n);
+    read_window(band, layer, w, values.data(), GDT_Float64);
+    for (std::size_t i = 0; i < n; ++i) {
+      const double v = values[i];
+      if (!(v >= 0 && v <= 4294967295.0 && v == std::floor(v)))
+        throw InputError(layer.path, fmt::format("QA value {} is not a whole number from 0 (a QA layer holds bit "
+                                                 "patterns; was it resampled, or given NaN for nodata?)",
+                                                 v));
+      out[i] = std::uint32_t(v);
+    }
+  } else if (GDALDataTypeIsSigned(type)) {
+    // Signed storage (a QA band beside int16 values): the bits as stored, so that bit 15 of
+    // -32768 is set. GDAL would clamp a negative value to 0 on the way to an unsigned type.
+    std::vector<std::int32_t> values(n);
+    read_window(band, layer, w, values.data(), GDT_Int32);
+    const int bits = GDALGetDataTypeSizeBits(type);
+    const std::uint32_t mask = bits >= 32 ? 0xffffffffu : (1u << bits) - 1u;
+    for (std::size_t i = 0; i < n; ++i) out[i] = std::uint32_t(values[i]) & mask;
+  } else {
+    read_window(band, layer, w, out, GDT_UInt32);
+  }
 }
 
 }  // namespace kalends

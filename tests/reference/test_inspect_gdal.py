@@ -147,6 +147,41 @@ class InspectQa(kt.TempDirTestCase):
             rejected_total += d["rejected_by_qa"]
         self.assertGreater(rejected_total, 0)
 
+    def test_signed_qa_is_read_as_its_bits(self):
+        # QA stored as int16 (as a QA band beside int16 values must be): bit 15 set is a
+        # negative number, which had been clamped to 0 and so passed every rule. Expected with
+        # numpy on the stored bits (view as uint16). Invented values: mechanics only.
+        values, masks = os.path.join(self.tmp, "signed", "v"), os.path.join(self.tmp, "signed", "q")
+        os.makedirs(values)
+        os.makedirs(masks)
+        qa = np.array([[-32768, -32766, -1, 0, 1, 2]], np.int16)   # 0x8000 0x8002 0xFFFF 0 1 2
+        for day in ("2031-01-01", "2031-01-17", "2031-02-02"):
+            kt.write_raster(os.path.join(values, "v_%s.tif" % day), np.full((1, 6), 5000, np.int16),
+                            geotransform=(0, 1, 0, 0, 0, -1))
+            kt.write_raster(os.path.join(masks, "q_%s.tif" % day), qa, geotransform=(0, 1, 0, 0, 0, -1))
+        bits = qa.view(np.uint16).astype(np.int64)
+        for rule, kept in (("bit 15 == 0", (bits >> 15) & 1 == 0), ("bits0-1 in 0,1", bits & 3 <= 1),
+                           ("bit 15 == 0 and bits0-1 in 0,1", ((bits >> 15) & 1 == 0) & (bits & 3 <= 1))):
+            report = inspect(os.path.join(values, "*.tif"), "--qa", os.path.join(masks, "*.tif"), "--keep", rule)
+            for d in report["dates"]:
+                self.assertEqual(d["observed"], int(kept.sum()), rule)
+                self.assertEqual(d["rejected_by_qa"], int((~kept).sum()), rule)
+        # A bit beyond the 16-bit values is a slip, refused before anything is read.
+        done = kt.run_kalends(["inspect", os.path.join(values, "*.tif"), "--qa", os.path.join(masks, "*.tif"),
+                               "--keep", "bit 16 == 0"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("reads bit 16, beyond the 16-bit QA values", done.stderr)
+        # A float QA layer holding a fraction (resampled by averaging) has no bits to test.
+        kt.write_raster(os.path.join(masks, "q_2031-01-17.tif"), np.array([[0, 1.5, 2, 0, 1, 2]], np.float32),
+                        geotransform=(0, 1, 0, 0, 0, -1))
+        for command in ("inspect", "fill"):
+            args = [command, os.path.join(values, "*.tif"), "--qa", os.path.join(masks, "*.tif"), "--keep",
+                    "bits0-1 in 0,1"] + (["--out", os.path.join(self.tmp, "signed", "out")] if command == "fill" else [])
+            done = kt.run_kalends(args)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn("q_2031-01-17.tif: QA value 1.5 is not a whole number", done.stderr)
+
     def test_a_stated_scaling_gdal_leaves_unapplied_is_named(self):
         # Files whose metadata states scale_factor/add_offset that GDAL does not turn into a band
         # scale (HDF-EOS grids; here GeoTIFF metadata items, invented values): the report names
