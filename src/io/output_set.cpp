@@ -3,6 +3,7 @@
 #include <gdal_utils.h>
 
 #include <fcntl.h>
+#include <sys/file.h>
 #include <sys/statvfs.h>
 #include <unistd.h>
 
@@ -129,9 +130,18 @@ OutputFolder::OutputFolder(const std::string& path) {
   }
   fs::create_directories(path, ec);
   if (ec) throw OutputError(path, "cannot create the output folder: " + ec.message());
+  // flock on the folder itself leaves no lock file behind; it is released when the process
+  // ends, however it ends.
+  lock_ = ::open(path.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+  if (lock_ >= 0 && ::flock(lock_, LOCK_EX | LOCK_NB) != 0) {
+    ::close(lock_);
+    lock_ = -1;
+    throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
+  }
 }
 
 OutputFolder::~OutputFolder() {
+  if (lock_ >= 0) ::close(lock_);
   std::error_code ec;
   for (auto it = created_.rbegin(); it != created_.rend(); ++it)
     if (!fs::is_empty(*it, ec) || ec || !fs::remove(*it, ec)) break;
@@ -153,6 +163,17 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
   if (compression != Compression::none) options.SetNameValue("PREDICTOR", "3");
   options.SetNameValue("BIGTIFF", "IF_SAFER");
 
+  // An output replaces only an earlier kalends output (all carry KALENDS_VERSION): a user's own
+  // raster that happens to have an output's name would be lost.
+  for (const OutputSpec& spec : specs) {
+    std::error_code ec;
+    if (!fs::exists(spec.path, ec)) continue;
+    CPLErrorReset();
+    GDALDatasetUniquePtr existing(GDALDataset::Open(spec.path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+    if (!existing || !existing->GetMetadataItem("KALENDS_VERSION"))
+      throw OutputError(spec.path, "exists and was not written by kalends; move it away or choose another output "
+                                   "folder (nothing was replaced)");
+  }
   OGRSpatialReference srs;
   const bool has_crs = !grid.crs_wkt.empty() && srs.importFromWkt(grid.crs_wkt.c_str()) == OGRERR_NONE;
   files_.reserve(specs.size());

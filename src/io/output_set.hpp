@@ -39,9 +39,11 @@ struct OutputSpec {
   std::vector<BandSpec> bands;  // float32, nodata NaN
 };
 
-/// A run's output folder: created, with any missing parents, at once; on destruction the
-/// folders it created are removed again if the run left them empty (a run that failed before
-/// writing), so that a failed run leaves the disk as it found it.
+/// A run's output folder: created, with any missing parents, at once, and held for this run
+/// alone (an exclusive lock on the folder itself, released on destruction): a second command
+/// writing into the same folder is refused (OutputError), since both would publish the same
+/// names. On destruction the folders it created are removed again if the run left them empty
+/// (a run that failed before writing), so that a failed run leaves the disk as it found it.
 class OutputFolder {
  public:
   explicit OutputFolder(const std::string& path);
@@ -51,6 +53,7 @@ class OutputFolder {
 
  private:
   std::vector<std::string> created_;  // outermost first
+  int lock_ = -1;                     // the folder, open and locked
 };
 
 class OutputSet {

@@ -273,6 +273,40 @@ class BadInput(kt.TempDirTestCase):
         self.assertTrue(os.path.exists(mine))
         self.assertFalse(os.path.exists(os.path.join(out, os.path.basename(dropped))))
 
+    def test_a_users_raster_under_an_output_name_is_not_replaced(self):
+        # A raster of the user's that happens to carry an output's name (no KALENDS_VERSION):
+        # replacing it would lose it. Refused, exit 1 (an output problem), nothing written.
+        out = os.path.join(self.tmp, "users-named")
+        os.makedirs(out)
+        mine = os.path.join(out, "ndvi_2020-01-01.tif")
+        kt.write_raster(mine, np.full((3, 3), 7, np.uint8))
+        before = snapshot(out)
+        done = kt.run_kalends(["fill", os.path.join(self.good, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("ndvi_2020-01-01.tif: exists and was not written by kalends", done.stderr)
+        self.assertEqual(snapshot(out), before)
+
+    def test_a_folder_another_command_writes_into_is_refused(self):
+        # Two commands publishing the same names into one folder would mix their outputs. The
+        # folder is held (flock, as kalends holds it) by this test while kalends tries.
+        import fcntl
+        out = os.path.join(self.tmp, "held")
+        shutil.copytree(self.previous, out)
+        holder = os.open(out, os.O_RDONLY)
+        try:
+            fcntl.flock(holder, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            for command in (["fill", os.path.join(self.good, "*.tif"), "--lambda", "10"],
+                            ["seasons", self.previous]):
+                done = kt.run_kalends(command + ["--out", out])
+                self.assertEqual(done.returncode, 1, done.stderr)
+                self.assertIn("another kalends command is writing into this folder", done.stderr)
+                self.assertEqual(snapshot(out), self.previous_files)
+        finally:
+            os.close(holder)
+        done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--lambda", "10", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
     def test_truncated_geotiff_half(self):
         # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
         # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
