@@ -81,6 +81,7 @@ struct FillSummary {
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
+  std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
   std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
 };
 

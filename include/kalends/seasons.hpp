@@ -47,6 +47,7 @@ struct SeasonsSummary {
   /// descriptors (a value in every period); the periods (0-based) with no value anywhere.
   std::int64_t pixels_with_values = 0, pixels_with_cycle = 0;
   std::vector<int> periods_without_value;
+  std::vector<int> stale_years_removed;  // an earlier run's year layers outside this run's years
 };
 
 /// What a user should know about a seasons run's outputs (cycle layers left empty because

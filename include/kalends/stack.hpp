@@ -111,6 +111,12 @@ std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other,
 /// given; "" otherwise. Conventions differ (CF multiplies, MODIS HDF divides), so it is only named.
 std::string unapplied_scaling(const Stack& stack);
 
+/// Where the files' own scale, offset or nodata differ between dates (each file is read by its
+/// own, which is right for a product whose encoding changed, and wrong where one file's
+/// metadata is a slip): the first date that differs from the first date, described for a
+/// note; "" where all agree or the rules override them.
+std::string mixed_value_rules(const Stack& stack);
+
 /// UsageError naming `option` ("--qa-band 0") unless `band` is 1 or more (GDAL counts from 1).
 void check_band(int band, const std::string& option);
 

@@ -159,6 +159,10 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    "note: %s states %s, which GDAL leaves unapplied: the values were filled as stored; "
                    "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
                    r.input.c_str(), s.unapplied_scaling.c_str());
+    if (!s.mixed_value_rules.empty())
+      std::fprintf(stderr, "note: %s: the inputs' value rules differ: %s (give --scale, --offset or --nodata for all "
+                           "if one file's metadata is wrong; see kalends inspect --dates)\n",
+                   r.input.c_str(), s.mixed_value_rules.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;
       fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}\n", s.dates, s.width,

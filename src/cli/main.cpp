@@ -10,6 +10,7 @@
 #include <set>
 
 #include "cli/commands.hpp"
+#include "io/shell_word.hpp"
 #include "kalends/error.hpp"
 
 namespace {
@@ -34,7 +35,7 @@ int main(int argc, char** argv) {
   app.fallthrough();  // -q and -v may also follow the subcommand
   app.set_version_flag("--version", KALENDS_VERSION);
   cli::GlobalOptions global;
-  for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + std::string(argv[i]);
+  for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + detail::shell_word(argv[i]);
   app.add_flag("-q,--quiet", global.quiet, "Print only errors");
   app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
   std::map<CLI::App*, cli::Action> actions;

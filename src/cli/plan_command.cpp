@@ -4,6 +4,7 @@
 #include <climits>
 #include <fmt/format.h>
 
+#include "io/shell_word.hpp"
 #include "cli/commands.hpp"
 #include "kalends/pipeline.hpp"
 
@@ -35,7 +36,7 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     const PlanReport plan = plan_job(o->run, o->shards);
     if (!global.quiet) {
-      fmt::print("kalends plan: {} shards, {} threads and {} MiB per task -> {}\n", plan.shards, plan.threads,
+      fmt::print("kalends plan: {} shard{}, {} threads and {} MiB per task -> {}\n", plan.shards, plan.shards == 1 ? "" : "s", plan.threads,
                  plan.memory_mib, plan.plan_file);
       std::string split;
       for (const std::string& s : plan.split_steps) split += (split.empty() ? "" : ", ") + s;
@@ -47,7 +48,8 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
         for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
       fmt::print("submit with:\n");
     }
-    fmt::print("{}{}\n", plan.sbatch.substr(0, 7), "--export=ALL,KALENDS_BIN=" + own_path() + " " + plan.sbatch.substr(7));
+    fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + own_path()),
+               plan.sbatch.substr(7));
   };
 }
 

@@ -104,6 +104,11 @@ IndexSummary run_index(const IndexRequest& request) {
     qa_of = partners_by_date(red, *qa, "QA");
   }
   const std::string name = request.name.empty() ? (evi ? "evi" : "ndvi") : request.name;
+  // Among the band files, the index would be read back as one of them by the next run.
+  detail::require_out_apart_from(red, request.out_dir, "red");
+  detail::require_out_apart_from(nir, request.out_dir, "near-infrared");
+  if (blue) detail::require_out_apart_from(*blue, request.out_dir, "blue");
+  if (qa) detail::require_out_apart_from(*qa, request.out_dir, "QA");
   std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 

@@ -105,6 +105,9 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
     notes.push_back("the input states " + summary.unapplied_scaling +
                     ", which GDAL leaves unapplied: the values were filled as stored (set 'scale' and "
                     "'offset' if they are not in physical units)");
+  if (!summary.mixed_value_rules.empty())
+    notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
+                    " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
   return notes;
 }
 
@@ -117,20 +120,6 @@ bool written_by_a_fill(const fs::path& file) {
   return ds && ds->GetMetadataItem("KALENDS_METHOD") != nullptr;
 }
 
-// The outputs go beside no input: a fill into the folder of its own stack (or of its QA
-// layers) would replace the inputs, or remove them as outputs of dates no longer in the stack.
-void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option) {
-  std::error_code ec;
-  const fs::path out = fs::weakly_canonical(out_dir, ec);
-  if (ec) return;
-  for (const Layer& layer : stack.layers()) {
-    const fs::path file(detail::file_in_connection(layer.path));
-    const fs::path folder = fs::weakly_canonical(fs::absolute(file, ec).parent_path(), ec);
-    if (!ec && folder == out)
-      throw UsageError("--out", "'" + out_dir + "' holds the " + option + " files themselves (" + file.filename().string() +
-                                    "): the outputs would replace them; give another folder");
-  }
-}
 
 }  // namespace
 
@@ -154,8 +143,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::optional<QaPairing> qa;
   if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
   const QaRule* keep = qa ? &qa->rule : nullptr;
-  require_out_apart_from(stack, request.out_dir, "input");
-  if (qa) require_out_apart_from(qa->stack, request.out_dir, "QA");
+  detail::require_out_apart_from(stack, request.out_dir, "input");
+  if (qa) detail::require_out_apart_from(qa->stack, request.out_dir, "QA");
   const TimeGrid grid = TimeGrid::build(stack.times());
   const int n_slots = grid.size;
   const Grid& raster = stack.grid();
@@ -609,6 +598,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
 
   FillSummary summary;
   summary.unapplied_scaling = unapplied_scaling(stack);
+  summary.mixed_value_rules = mixed_value_rules(stack);
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();

@@ -16,6 +16,7 @@
 #include <set>
 #include <stdexcept>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 
@@ -145,6 +146,39 @@ OutputFolder::~OutputFolder() {
   std::error_code ec;
   for (auto it = created_.rbegin(); it != created_.rend(); ++it)
     if (!fs::is_empty(*it, ec) || ec || !fs::remove(*it, ec)) break;
+}
+
+void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option) {
+  std::error_code ec;
+  const fs::path out = fs::weakly_canonical(out_dir, ec);
+  if (ec) return;
+  for (const Layer& layer : stack.layers()) {
+    const fs::path file(file_in_connection(layer.path));
+    const fs::path folder = fs::weakly_canonical(fs::absolute(file, ec).parent_path(), ec);
+    if (!ec && folder == out)
+      throw UsageError("--out", "'" + out_dir + "' holds the " + option + " files themselves (" + file.filename().string() +
+                                    "): the outputs would replace them; give another folder");
+  }
+}
+
+std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name, int first_year,
+                                            int last_year) {
+  std::set<int> removed;
+  std::error_code ec;
+  for (const auto& entry : fs::directory_iterator(folder, ec)) {
+    const std::string file = entry.path().filename().string();
+    if (!entry.is_regular_file() || !file.starts_with(name + "_") || entry.path().extension() != ".tif") continue;
+    int year = 0;
+    {
+      GDALDatasetUniquePtr ds(GDALDataset::Open(entry.path().c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      const char* text = ds ? ds->GetMetadataItem("KALENDS_YEAR") : nullptr;
+      if (!text || !ds->GetMetadataItem("KALENDS_VERSION")) continue;
+      year = std::atoi(text);
+    }
+    if (year >= first_year && year <= last_year) continue;
+    if (fs::remove(entry.path(), ec)) removed.insert(year);
+  }
+  return {removed.begin(), removed.end()};
 }
 
 OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression,

@@ -56,6 +56,19 @@ class OutputFolder {
   int lock_ = -1;                     // the folder, open and locked
 };
 
+/// UsageError naming --out when `out_dir` is the folder of `stack`'s own files (`option`: what
+/// they are, "input" or "QA"): the outputs would replace them, or a later run would remove
+/// them as outputs it no longer makes.
+void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option);
+
+/// After a run that wrote the year-specific layers of [first_year, last_year] into `folder`:
+/// removes the rasters `<name>_*.tif` there whose KALENDS_YEAR lies outside that span, an
+/// earlier run's years that are no longer in the input (or in --years). Later steps would read
+/// them with the new layers as one set. Only kalends outputs carry KALENDS_YEAR. Returns the
+/// years removed.
+std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name, int first_year,
+                                            int last_year);
+
 class OutputSet {
  public:
   /// Creates every file (under its temporary name) with its float32 bands (nodata NaN):

@@ -10,6 +10,7 @@
 #include <fmt/format.h>
 #include <fmt/ranges.h>
 #include <map>
+#include <optional>
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
@@ -328,15 +329,52 @@ std::string unapplied_scaling(const Stack& stack) {
   GDALRasterBand* band = dataset->GetRasterBand(first.band);
   std::string text;
   bool identity = true;  // scale_factor=1, add_offset=0 change nothing
+  // As netCDF names them, or as GDAL's HDF5 driver prefixes them with the variable's name
+  // (ndvi_scale_factor).
+  auto stated = [&](const std::string& key) -> std::optional<std::string> {
+    for (GDALMajorObject* object : {static_cast<GDALMajorObject*>(band), static_cast<GDALMajorObject*>(dataset.get())}) {
+      if (!object) continue;
+      CSLConstList items = object->GetMetadata();
+      for (int i = 0; items && items[i]; ++i) {
+        const std::string item = items[i];
+        const auto eq = item.find('=');
+        if (eq == std::string::npos) continue;
+        const std::string name = item.substr(0, eq);
+        if (name == key || name.ends_with("_" + key)) return item.substr(eq + 1);
+      }
+    }
+    return std::nullopt;
+  };
   for (const char* key : {"scale_factor", "add_offset"}) {
-    const char* value = band ? band->GetMetadataItem(key) : nullptr;
-    if (!value) value = dataset->GetMetadataItem(key);
-    if (!value) continue;
+    const std::optional<std::string> found = stated(key);
+    if (!found) continue;
+    const char* value = found->c_str();
     text += (text.empty() ? "" : ", ") + std::string(key) + "=" + value;
     const double number = std::strtod(value, nullptr);
     identity = identity && number == (std::strcmp(key, "scale_factor") == 0 ? 1.0 : 0.0);
   }
   return identity ? "" : text;
+}
+
+std::string mixed_value_rules(const Stack& stack) {
+  const ValueRules& rules = stack.rules();
+  const Layer& first = stack.layers().front();
+  const auto nodata = [](const std::optional<double>& v) { return v ? fmt::format("{:g}", *v) : std::string("none"); };
+  for (const Layer& layer : stack.layers()) {
+    std::vector<std::string> differ;
+    if (!rules.scale && layer.scale != first.scale)
+      differ.push_back(fmt::format("scale {:g} (first date {:g})", layer.scale, first.scale));
+    if (!rules.offset && layer.offset != first.offset)
+      differ.push_back(fmt::format("offset {:g} (first date {:g})", layer.offset, first.offset));
+    const bool same_nodata = layer.nodata.has_value() == first.nodata.has_value() &&
+                             (!layer.nodata || *layer.nodata == *first.nodata ||
+                              (std::isnan(*layer.nodata) && std::isnan(*first.nodata)));
+    if (!rules.nodata && !same_nodata)
+      differ.push_back(fmt::format("nodata {} (first date {})", nodata(layer.nodata), nodata(first.nodata)));
+    if (!differ.empty())
+      return fmt::format("{} has {}; each file was read with its own", layer.time.label(), fmt::join(differ, ", "));
+  }
+  return "";
 }
 
 void check_band(int band, const std::string& option) {

@@ -70,6 +70,9 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
       }
     }
     fail(path, table.source(), "step '" + step.id + "': " + e.what());
+  } catch (const InputError& e) {
+    // A file the step reads at check time (the survey points): named, at the step's line.
+    fail(path, table.source(), "step '" + step.id + "': " + e.what());
   }
 }
 

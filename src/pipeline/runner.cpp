@@ -21,6 +21,7 @@
 #include "kalends/pipeline.hpp"
 #include "io/file_glob.hpp"
 #include "io/output_set.hpp"
+#include "io/shell_word.hpp"
 #include "pipeline/job_file.hpp"
 #include "pipeline/shard_plan.hpp"
 #include "pipeline/shard_stitch.hpp"
@@ -92,6 +93,9 @@ std::string pid_in_lock(int fd) {
   (void)!::pread(fd, text, sizeof text - 1, 0);
   return std::string(text).empty() ? "?" : std::string(text);
 }
+
+// Where a shard's step keeps the notes it printed, for --finalize (hidden: no output).
+constexpr const char* shard_notes_file = ".kalends-notes";
 
 class FolderLock {
  public:
@@ -420,7 +424,7 @@ class Runner {
       const auto record = db ? db->step(step.id) : std::nullopt;
       std::string why;
       if (!record) why = "never run";
-      else if (record->status == "failed") why = "failed";
+      else if (record->status == "failed") why = "failed" + (record->message.empty() ? "" : ": " + record->message);
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
       else if (!outputs_exist(*record)) why = "outputs missing";
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
@@ -428,6 +432,9 @@ class Runner {
     }
     if (!db) what = "never run";
     else if (reasons.size() == 1 && !what.empty()) what = "every step " + *reasons.begin();
+    // A shard still at work is not to be submitted again.
+    if (const std::string pid = running_pid((fs::path(plan_->shard_folder(k)) / ".kalends").string()); !pid.empty())
+      what = "running (pid " + pid + ")" + (what.empty() ? "" : ": " + what);
     shard_ = 0;
     fingerprints_.clear();
     return what;
@@ -442,14 +449,42 @@ class Runner {
       const std::string what = shard_lacks(k);
       if (what.empty()) continue;
       problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
-      list += (list.empty() ? "" : ",") + std::to_string(k);
+      if (!what.starts_with("running")) list += (list.empty() ? "" : ",") + std::to_string(k);
       ++missing;
     }
     if (problems.empty()) return true;
-    report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
-                                "or kalends run {}{} --shard K), then --finalize",
-                                missing, plan_->shards, problems, list, options_.job_file, out_option());
+    report_.error =
+        list.empty()
+            ? fmt::format("finalize refused: {} of {} shards not done: {}; wait for them to end, then --finalize",
+                          missing, plan_->shards, problems)
+            : fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
+                          "or kalends run {}{} --shard K), then --finalize",
+                          missing, plan_->shards, problems, list, options_.job_file, out_option());
     return false;
+  }
+
+  // The notes each shard's step left: one line where every shard said the same, else each
+  // shard's own, named.
+  std::vector<std::string> shard_notes(const std::vector<detail::ShardPart>& parts) const {
+    std::vector<std::vector<std::string>> by_shard;
+    for (const detail::ShardPart& part : parts) {
+      std::ifstream in(fs::path(part.folder) / shard_notes_file);
+      std::vector<std::string> lines;
+      for (std::string line; std::getline(in, line);)
+        if (!line.empty()) lines.push_back(line);
+      by_shard.push_back(std::move(lines));
+    }
+    std::vector<std::string> notes;
+    std::set<std::string> shown;
+    for (std::size_t k = 0; k < by_shard.size(); ++k)
+      for (const std::string& line : by_shard[k]) {
+        const bool everywhere = std::all_of(by_shard.begin(), by_shard.end(), [&](const std::vector<std::string>& other) {
+          return std::find(other.begin(), other.end(), line) != other.end();
+        });
+        if (!everywhere) notes.push_back(fmt::format("shard {}/{}: {}", k + 1, by_shard.size(), line));
+        else if (shown.insert(line).second) notes.push_back(line);
+      }
+    return notes;
   }
 
   // A split step in --finalize: the shards' strips stitched into the step's folder.
@@ -462,7 +497,7 @@ class Runner {
       report.reason = "up to date";
       return;
     }
-    report.reason = fmt::format("stitching {} shards", plan_->shards);
+    report.reason = fmt::format("stitching {} shard{}", plan_->shards, plan_->shards == 1 ? "" : "s");
     if (options_.dry_run) {
       report.action = StepReport::Action::would_run;
       return;
@@ -480,6 +515,9 @@ class Runner {
                              options_.threads > 0 ? options_.threads : job_.threads, cli_memory());
     report.outputs_written = outcome.written;
     report.outputs_unchanged = outcome.unchanged;
+    report.notes = shard_notes(parts);
+    if (outcome.removed > 0)
+      report.notes.push_back(fmt::format("removed {} stitched file(s) that no shard makes any more", outcome.removed));
     if (const char* caution = detail::find_step_kind(step.kind)->caution) report.caution = caution;
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
@@ -760,6 +798,13 @@ class Runner {
     report.outputs_unchanged = outcome.outputs_unchanged;
     report.caution = outcome.caution;
     report.notes = outcome.notes;
+    // A shard keeps its step's notes beside its strip (hidden: not an output), for --finalize
+    // to show; the shard's own log is seldom read.
+    if (shard_ && fs::is_directory(context.folder)) {
+      std::string text;
+      for (const std::string& note : outcome.notes) text += note + "\n";
+      detail::write_text_atomically((fs::path(context.folder) / shard_notes_file).string(), text);
+    }
   }
 
   std::int64_t cli_memory() const;
@@ -817,7 +862,7 @@ PlanReport plan_job(const RunOptions& options, int shards) {
     }
     std::string text;
     for (const auto& [range, roots] : rows)
-      text += fmt::format("{}rows {}-{} of {}", text.empty() ? "" : "; ", range.first, range.second, roots);
+      text += fmt::format("{}rows {}-{} of {}", text.empty() ? "" : "; ", range.first, range.second - 1, roots);
     report.shard_rows.push_back(fmt::format("{}: {}", k, text));
   }
   std::string name;
@@ -826,9 +871,9 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   const std::string sbatch_template = fs::exists(KALENDS_CLUSTER_TEMPLATE) ? KALENDS_CLUSTER_TEMPLATE
                                                                            : "tools/cluster/kalends-array.sbatch";
   report.sbatch = fmt::format("sbatch --array=1-{} --cpus-per-task={} --mem={}M --job-name=kalends-{} {} {}",
-                              plan.shards, plan.threads, report.memory_mib, name, sbatch_template,
-                              fs::absolute(job.path).string());
-  if (!options.out_dir.empty()) report.sbatch += " --out " + fs::absolute(out).string();
+                              plan.shards, plan.threads, report.memory_mib, name, detail::shell_word(sbatch_template),
+                              detail::shell_word(fs::absolute(job.path).string()));
+  if (!options.out_dir.empty()) report.sbatch += " --out " + detail::shell_word(fs::absolute(out).string());
   return report;
 }
 

@@ -213,6 +213,23 @@ StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int h
     write_text_atomically(path, first);
     ++outcome.written;
   }
+  // What the shards no longer make (outputs of a date gone from the input, a calendar of
+  // another period) goes from the stitched folder too, as a run on one machine removes it:
+  // later steps would read it as current. Only kalends rasters and the fill's own text files.
+  for (const std::string& n : files_in(folder)) {
+    if (names.count(n)) continue;
+    const fs::path path = fs::path(folder) / n;
+    bool ours = n.ends_with("fill-summary.json") || n.ends_with("fill-years.tsv");
+    if (path.extension() == ".tif") {
+      GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      ours = ds && ds->GetMetadataItem("KALENDS_VERSION");
+    }
+    if (ours && fs::remove(path, ec)) {
+      ++outcome.removed;
+      const fs::path parent = path.parent_path();
+      if (parent != fs::path(folder) && fs::is_empty(parent, ec)) fs::remove(parent, ec);
+    }
+  }
   return outcome;
 }
 

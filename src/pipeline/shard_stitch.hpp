@@ -18,12 +18,13 @@ struct ShardPart {
 };
 
 struct StitchOutcome {
-  int written = 0, unchanged = 0;
+  int written = 0, unchanged = 0, removed = 0;  // removed: stitched files no shard makes any more
 };
 
 /// Stitches `parts` (in row order, covering `width` x `height`) into `folder`. Every shard must
 /// hold the same files; rasters must cover their windows; other files are merged by the step
 /// kind or must be the same in every shard. OutputError or InputError names the file otherwise.
+/// Stitched files of an earlier finalize that the shards no longer hold are removed.
 /// GDAL's block cache takes a sixteenth of `memory_bytes`, between 8 and 128 MiB, as in the engines.
 StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int height, const std::string& folder,
                            const std::string& out, const StepKind& kind, int threads,

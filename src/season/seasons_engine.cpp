@@ -74,6 +74,9 @@ void check_seasons_options(const SeasonsRequest& request) {
 
 std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary) {
   std::vector<std::string> notes;
+  if (!summary.stale_years_removed.empty())
+    notes.push_back(fmt::format("removed the layers of {} from an earlier run: outside this run's years",
+                                fmt::join(summary.stale_years_removed, ", ")));
   if (summary.pixels_with_values == 0 || summary.pixels_with_cycle == summary.pixels_with_values) return notes;
   if (summary.pixels_with_cycle == 0 && !summary.periods_without_value.empty()) {
     static const char* const months[] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
@@ -305,6 +308,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   outputs.commit();
 
   SeasonsSummary summary;
+  summary.stale_years_removed = detail::remove_year_layers_outside(request.out_dir, name, first_year, last_year);
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;

@@ -30,30 +30,6 @@ const char* const suitability_caution =
 
 namespace {
 
-// The year layers of an earlier run into the same folder whose years this run does not cover
-// (a narrower --years): later steps would read them with the new synoptic layers as one set.
-// Only files a suitability run wrote (KALENDS_MODEL) are removed. Returns the years removed.
-std::vector<int> remove_years_outside(const std::string& out_dir, const std::string& name, int first_year,
-                                      int last_year) {
-  std::set<int> removed;
-  std::error_code ec;
-  for (const auto& entry : std::filesystem::directory_iterator(out_dir, ec)) {
-    const std::string file = entry.path().filename().string();
-    for (const std::string kind : {"_year_", "_summary_"}) {
-      const std::string prefix = name + kind;
-      if (!file.starts_with(prefix) || file.size() != prefix.size() + 8 || !file.ends_with(".tif")) continue;
-      const std::string digits = file.substr(prefix.size(), 4);
-      if (!std::all_of(digits.begin(), digits.end(), [](char c) { return c >= '0' && c <= '9'; })) continue;
-      const int year = std::stoi(digits);
-      if (year >= first_year && year <= last_year) continue;
-      GDALDatasetUniquePtr ds(GDALDataset::Open(entry.path().c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-      const bool ours = ds && ds->GetMetadataItem("KALENDS_MODEL") != nullptr;
-      ds.reset();
-      if (ours && std::filesystem::remove(entry.path(), ec)) removed.insert(year);
-    }
-  }
-  return {removed.begin(), removed.end()};
-}
 
 namespace fs = std::filesystem;
 constexpr int tile_size = 256;
@@ -359,7 +335,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   detail::check_temperature_counts(source, counts);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
-  const std::vector<int> stale = remove_years_outside(request.out_dir, name, first_year, last_year);
+  const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, first_year, last_year);
 
   SuitabilitySummary summary;
   summary.dates_at_month_ends = dates_at_month_ends(times);

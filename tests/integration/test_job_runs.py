@@ -243,7 +243,12 @@ class JobFile(kt.TempDirTestCase):
              ["'points': no such file", "no-such-points.csv"]),
             (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "bad.toml"\ncrs = "EPSG:999999"\n',
              n + 5, ["'crs' 'EPSG:999999'", "not a CRS"]),
+            # The survey table's columns are read at read time too.
+            (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "sites.csv"\n', n + 1,
+             ["step 'extract'", "sites.csv: no column 'id' (--id-column); the columns are: site, lon, lat"]),
         ]
+        with open(os.path.join(self.tmp, "sites.csv"), "w") as f:
+            f.write("site,lon,lat\ns1,10,20\n")
         for text, line, words in cases:
             for extra in ([], ["--dry-run"]):
                 with self.subTest(words=words, extra=extra):

@@ -277,6 +277,71 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
             print("\n  spacetime, %s: %d outputs of 2 shards identical to the single-machine run"
                   % (os.path.basename(folder), n))
 
+    def test_a_removed_date_goes_and_block_choices_and_notes_come_through(self):
+        # Invented 20 x 300 px stack (two 256-row strips), 12 dates; spacetime with GCV, which
+        # lists its choice per block in fill-summary.json. --finalize had kept only the first
+        # shard's choices, had kept a stitched date the shards no longer make after the date
+        # left the input, and showed none of the notes the shards' steps printed.
+        import numpy as np
+        folder = os.path.join(self.tmp, "removed-date")
+        stack = os.path.join(folder, "stack")
+        os.makedirs(stack)
+        rng = np.random.default_rng(3)
+        for k in range(12):
+            values = (0.5 + 0.2 * np.sin(k / 2) + rng.normal(0, 0.02, (300, 20))).astype(np.float32)
+            values[rng.random((300, 20)) < 0.2] = np.nan
+            values[:, :2] = np.nan  # two columns never observed: a note with --never-observed leave
+            kt.write_raster(os.path.join(stack, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
+                            geotransform=(0, 1, 0, 300, 0, -1), nodata=float("nan"))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nmemory = "512M"\nthreads = 1\n[inputs.ndvi]\nstack = "stack/ndvi_*.tif"\n'
+                    '[[step]]\nid = "st"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n'
+                    'time_smoothing = "auto"\n[[step]]\nid = "h"\ndo = "fill"\ninput = "ndvi"\n'
+                    'method = "harmonic"\nharmonics = 3\n')
+        out = os.path.join(folder, "sharded")
+
+        def both(single):
+            self.assertEqual(kalends("run", job, "--out", single, "-q").returncode, 0)
+            self.assertEqual(kalends("plan", job, "--out", out, "--shards", "2", "-q").returncode, 0)
+            for shard in ("1/2", "2/2"):
+                done = kalends("run", job, "--out", out, "--shard", shard, "-q")
+                self.assertEqual(done.returncode, 0, done.stderr)
+            done = kalends("run", job, "--out", out, "--finalize")
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assert_same_outputs(single, out)   # fill-summary.json's "chosen" included
+            return done
+
+        done = both(os.path.join(folder, "single"))
+        with open(os.path.join(out, "st", "fill-summary.json")) as f:
+            self.assertEqual([c["block"] for c in json.load(f)["chosen"]], [0, 1])
+        # 12 dates are too few for 3 harmonics where a fifth is cloud: each shard says how many
+        # of its pixels were not fitted, and --finalize shows both lines.
+        self.assertRegex(done.stdout, r"note: shard 1/2: \d+ pixels not fitted")
+        self.assertRegex(done.stdout, r"note: shard 2/2: \d+ pixels not fitted")
+        os.remove(os.path.join(stack, "ndvi_2031-12-01.tif"))
+        done = both(os.path.join(folder, "single-without-december"))
+        self.assertFalse(os.path.exists(os.path.join(out, "st", "ndvi_2031-12-01.tif")))
+        self.assertEqual(done.stdout.count("note: removed 1 stitched file(s) that no shard makes any more"), 2)  # a step each
+
+    def test_the_printed_submission_survives_spaces(self):
+        import shlex
+        folder = os.path.join(self.tmp, "with space")
+        os.makedirs(folder)
+        job = os.path.join(folder, "job x.toml")
+        shutil.copy(self.job, job)
+        with open(job) as f:
+            text = f.read().replace('"stack/', '"%s/stack/' % self.tmp)
+        with open(job, "w") as f:
+            f.write(text)
+        out = os.path.join(folder, "o ut")
+        done = kalends("plan", job, "--out", out, "--shards", "2", "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        words = shlex.split(done.stdout.strip())
+        self.assertEqual(words[0], "sbatch")
+        self.assertEqual(words[-3:], [os.path.abspath(job), "--out", os.path.abspath(out)])
+        self.assertTrue(any(w.startswith("--export=ALL,KALENDS_BIN=") for w in words))
+
     def test_shard_needs_a_plan_and_a_shard_of_it(self):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
         self.assertEqual(done.returncode, 2)

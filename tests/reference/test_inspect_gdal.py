@@ -209,6 +209,40 @@ class InspectQa(kt.TempDirTestCase):
                              noted, done.stderr)
         maurer = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
         self.assertIsNone(inspect(maurer, "--quick")["unapplied_scaling"])
+        # GDAL's HDF5 driver names the attributes after their variable (ndvi_scale_factor).
+        h5 = os.path.join(self.tmp, "stated-h5")
+        os.makedirs(h5)
+        for date in ("20200101", "20200117"):
+            ds = g.GetDriverByName("netCDF").CreateMultiDimensional(os.path.join(h5, "veg_%s.h5" % date), [],
+                                                                    ["FORMAT=NC4"])
+            root = ds.GetRootGroup()
+            dims = [root.CreateDimension(n, None, None, 4) for n in ("y", "x")]
+            var = root.CreateMDArray("ndvi", dims, g.ExtendedDataType.Create(g.GDT_Int16))
+            var.Write(np.full((4, 4), 5000, np.int16))
+            attr = var.CreateAttribute("scale_factor", [], g.ExtendedDataType.Create(g.GDT_Float64))
+            attr.Write(0.0001)
+            ds = None
+        stated = inspect('HDF5:"%s"://ndvi' % os.path.join(h5, "*.h5"), "--quick")["unapplied_scaling"]
+        self.assertIsNotNone(stated)
+        self.assertIn("scale_factor=", stated)
+
+    def test_value_rules_that_differ_between_dates_are_noted_by_fill(self):
+        # Each file is read with its own nodata; where one date's differs (a slip in one file's
+        # metadata, or a product whose encoding changed), fill says so, as inspect does.
+        folder = os.path.join(self.tmp, "mixed")
+        os.makedirs(folder)
+        for k, date in enumerate(("2020-01-01", "2020-01-17", "2020-02-02")):
+            values = np.full((4, 4), 5000, np.int16)
+            values[:2] = -3000
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date), values, scale=0.0001,
+                            nodata=-2000 if k == 2 else -3000)
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", os.path.join(self.tmp, "mixed-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("the inputs' value rules differ: 2020-02-02 has nodata -2000 (first date -3000)", done.stderr)
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--nodata", "-3000", "--out",
+                               os.path.join(self.tmp, "mixed-given")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("value rules differ", done.stderr)
 
     def test_bad_input_is_one_line_and_exit_2(self):
         done = kt.run_kalends(["inspect", os.path.join(self.tmp, "nothing", "*.tif")])

@@ -14,8 +14,10 @@ References:
   month of maximum per cell.
 """
 import datetime as dt
+import glob
 import json
 import os
+import shutil
 import subprocess
 import sys
 import unittest
@@ -290,17 +292,26 @@ class RealData(kt.TempDirTestCase):
 
     def test_compare_leaves_out_year_files_of_an_earlier_run(self):
         # Real MODIS NDVI (alaska-ndvi/observed, 2004-2009). A second `seasons` run into the same
-        # folder with --years 2006-2007 leaves the first run's 2004, 2005, 2008 and 2009 anomaly
-        # files, made against another synoptic; compare must use 2006 and 2007 only, and with two
-        # years no standardised anomaly can pass 1 sd ((n - 1)/sqrt(n) = 0.71), so no year is
-        # named as most below or above.
+        # folder with --years 2006-2007 removes the first run's 2004, 2005, 2008 and 2009 year
+        # layers (made against another synoptic) and says so. Year files of another run copied
+        # in by hand are still there for compare to meet: it must use 2006 and 2007 only, and
+        # with two years no standardised anomaly can pass 1 sd ((n - 1)/sqrt(n) = 0.71), so no
+        # year is named as most below or above.
         g = kt.gdal()
         stack = os.path.join(kt.shared_path("alaska-ndvi", "observed"), "*.tif")
         out = os.path.join(self.tmp, "ak")
         for extra in ([], ["--years", "2006-2007"]):
-            done = kt.run_kalends(["-q", "seasons", stack, "--out", out, "--period", "16d"] + extra)
+            done = kt.run_kalends(["seasons", stack, "--out", out, "--period", "16d"] + extra)
             self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertTrue(os.path.exists(os.path.join(out, "ndvi_anomaly_standardised_2004.tif")))
+        self.assertIn("removed the layers of 2004, 2005, 2008, 2009 from an earlier run", done.stdout + done.stderr)
+        self.assertEqual(sorted(glob.glob(os.path.join(out, "*_2004.tif"))), [])
+        self.assertTrue(os.path.exists(os.path.join(out, "ndvi_anomaly_standardised_2006.tif")))
+        whole = os.path.join(self.tmp, "ak-whole")
+        done = kt.run_kalends(["-q", "seasons", stack, "--out", whole, "--period", "16d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for year in (2004, 2005, 2008, 2009):
+            for layer in ("anomaly", "anomaly_standardised"):
+                shutil.copy(os.path.join(whole, "ndvi_%s_%d.tif" % (layer, year)), out)
         compare = os.path.join(self.tmp, "akc")
         done = kt.run_kalends(["compare", out, "--out", compare])
         self.assertEqual(done.returncode, 0, done.stderr)
@@ -394,6 +405,19 @@ class RealData(kt.TempDirTestCase):
         self.assertIn("no near-infrared layer", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
+
+    def test_index_refuses_an_out_among_its_band_files(self):
+        # The index written among the red files would be read back as a red layer of the same
+        # date by the next run (duplicate date), as a fill's --out among its inputs would.
+        folder = os.path.join(self.tmp, "bands-here")
+        for band in ("red", "nir"):
+            os.makedirs(os.path.join(folder, band))
+            kt.write_raster(os.path.join(folder, band, "%s_2020-01-01.tif" % band), np.full((4, 4), 0.2, np.float32))
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red", "*.tif"), "--nir",
+                               os.path.join(folder, "nir", "*.tif"), "--out", os.path.join(folder, "red")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("holds the red files themselves", done.stderr)
+        self.assertEqual(os.listdir(os.path.join(folder, "red")), ["red_2020-01-01.tif"])
 
     def test_index_refuses_one_band_read_twice(self):
         landsat = kt.shared_path("landsat7-bands", "L7_ETMs.tif")

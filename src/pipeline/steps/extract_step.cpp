@@ -54,7 +54,14 @@ StepKind extract_step_kind() {
     if (!o.count("points")) return std::string("an 'extract' step needs 'points' (the survey table)");
     return std::string();
   };
-  kind.check_values = [](const StepContext& c) { check_extract_options(extract_request(c)); };
+  kind.check_values = [](const StepContext& c) {
+    const ExtractRequest r = extract_request(c);
+    check_extract_options(r);
+    // The survey table is small and the user's own: its columns, coordinates and dates are
+    // read now, so that a wrong column name fails at read time (and in --dry-run), not after
+    // the steps before it.
+    read_survey_points(r.points);
+  };
   kind.run = [](const StepContext& c) {
     const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);

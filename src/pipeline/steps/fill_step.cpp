@@ -97,6 +97,30 @@ void merge_summary(const std::vector<std::string>& files, const std::string& pat
       if (value.find("null") != std::string::npos) unknown.insert(key);
       else totals[key] += std::stoll(value);
     }
+  // "chosen": one entry a line, per block of each shard's strip; the strips' blocks are
+  // numbered on from the shards before, as one run numbers the blocks of the whole grid.
+  std::vector<std::string> chosen;
+  int block_offset = 0;
+  for (const std::string& file : files) {
+    bool inside = false;
+    int blocks_here = 0;
+    for (const std::string& line : lines_of(file)) {
+      if (line.find("\"chosen\": [") != std::string::npos) {
+        inside = true;
+        continue;
+      }
+      if (!inside) continue;
+      const auto at = line.find("{\"block\": ");
+      if (at == std::string::npos) break;  // the closing bracket
+      const auto number = at + 10, end = line.find(',', number);
+      const int block = std::stoi(line.substr(number, end - number));
+      blocks_here = std::max(blocks_here, block + 1);
+      std::string entry = line.substr(0, number) + std::to_string(block + block_offset) + line.substr(end);
+      if (!entry.empty() && entry.back() == ',') entry.pop_back();
+      chosen.push_back(entry);
+    }
+    block_offset += blocks_here;
+  }
   // The summed reasons in the layout of a single run's summary (json_counts with an indent).
   auto not_fitted_block = [&](const std::string& lead, bool comma) {
     std::string block = lead + nested;
@@ -105,8 +129,18 @@ void merge_summary(const std::vector<std::string>& files, const std::string& pat
     return block + (not_fitted.empty() ? "}" : "\n  }") + (comma ? "," : "") + "\n";
   };
   std::string text, lead;
-  bool skipping = false;
+  bool skipping = false, skipping_chosen = false;
   for (std::string line : lines) {
+    if (skipping_chosen) {  // the first shard's own entries, up to the closing bracket
+      if (line.find("{\"block\": ") != std::string::npos) continue;
+      skipping_chosen = false;
+      for (std::size_t k = 0; k < chosen.size(); ++k) text += chosen[k] + (k + 1 < chosen.size() ? ",\n" : "\n");
+    }
+    if (line.find("\"chosen\": [") != std::string::npos) {
+      text += line + "\n";
+      skipping_chosen = true;
+      continue;
+    }
     if (skipping) {  // the first shard's own reasons, up to its closing brace
       if (line.rfind("\":") == std::string::npos) {
         text += not_fitted_block(lead, !line.empty() && line.back() == ',');
