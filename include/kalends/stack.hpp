@@ -117,6 +117,11 @@ std::string unapplied_scaling(const Stack& stack);
 /// note; "" where all agree or the rules override them.
 std::string mixed_value_rules(const Stack& stack);
 
+/// InputError naming `folder` when a kalends run was killed while renaming its outputs into it
+/// (the marker it keeps meanwhile is there): the folder holds some new and some old outputs,
+/// which no step should read as one set until the run is done again.
+void require_not_half_published(const std::string& folder);
+
 /// UsageError naming `option` ("--qa-band 0") unless `band` is 1 or more (GDAL counts from 1).
 void check_band(int band, const std::string& option);
 

@@ -351,6 +351,19 @@ void OutputSet::commit() {
     if (CPLGetLastErrorType() == CE_Failure)
       throw write_failure(file->spec.path, "closing failed (" + gdal_message("unknown reason") + ")");
   }
+  // The renames below are one at a time: a run killed among them would leave some outputs new
+  // and some old under their final names. A marker in each folder says so until the last
+  // rename, and readers refuse a folder that holds one (require_not_half_published).
+  std::set<std::string> marked;
+  for (auto& file : files_) marked.insert(fs::path(file->spec.path).parent_path().string());
+  for (const std::string& folder : marked) {
+    const std::string marker = (fs::path(folder) / half_published_marker).string();
+    if (FILE* f = std::fopen(marker.c_str(), "w")) {
+      std::fputs("kalends: outputs of this folder are being replaced; a run killed meanwhile left them mixed\n", f);
+      std::fclose(f);
+    }
+    sync_path(folder, true);
+  }
   std::set<std::string> folders;
   for (auto& file : files_) {
     if (keep_unchanged_ && fs::exists(file->spec.path) &&
@@ -365,6 +378,11 @@ void OutputSet::commit() {
     folders.insert(fs::path(file->spec.path).parent_path().string());
   }
   for (const std::string& folder : folders) sync_path(folder, true);
+  for (const std::string& folder : marked) {
+    std::error_code ec;
+    fs::remove(fs::path(folder) / half_published_marker, ec);
+    sync_path(folder, true);
+  }
   committed_ = true;
 }
 

@@ -10,6 +10,7 @@
 #include <fmt/format.h>
 #include <fmt/ranges.h>
 #include <map>
+#include <set>
 #include <optional>
 
 #include "io/file_glob.hpp"
@@ -356,6 +357,14 @@ std::string unapplied_scaling(const Stack& stack) {
   return identity ? "" : text;
 }
 
+void require_not_half_published(const std::string& folder) {
+  std::error_code ec;
+  if (fs::exists(fs::path(folder.empty() ? "." : folder) / ".kalends-publishing", ec))
+    throw InputError(folder.empty() ? "." : folder,
+                     "a kalends run was stopped while replacing its outputs here, so they are part new and part "
+                     "old; run the command (or the job) that writes this folder again");
+}
+
 std::string mixed_value_rules(const Stack& stack) {
   const ValueRules& rules = stack.rules();
   const Layer& first = stack.layers().front();
@@ -502,6 +511,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   }
 
   if (stack.layers_.empty()) throw InputError(input, "every file of this pattern was left out");
+  {
+    std::set<std::string> folders;
+    for (const Layer& layer : stack.layers_)
+      folders.insert(fs::path(detail::file_in_connection(layer.path)).parent_path().string());
+    for (const std::string& folder : folders) require_not_half_published(folder);
+  }
   std::stable_sort(stack.layers_.begin(), stack.layers_.end(),
                    [](const Layer& a, const Layer& b) { return a.time < b.time; });
   for (std::size_t i = 1; i < stack.layers_.size(); ++i)

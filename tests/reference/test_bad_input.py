@@ -307,6 +307,29 @@ class BadInput(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--lambda", "10", "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_a_folder_left_half_published_is_refused_until_written_again(self):
+        # An OutputSet renames its finished files one at a time; a run killed among the renames
+        # leaves some outputs new and some old. Its marker stays, and readers refuse the folder
+        # (the kill itself, milliseconds wide, is not timed here: the marker is placed by hand).
+        out = os.path.join(self.tmp, "half")
+        shutil.copytree(self.previous, out)
+        self.assertFalse(os.path.exists(os.path.join(out, ".kalends-publishing")))  # a finished run's
+        open(os.path.join(out, ".kalends-publishing"), "w").close()
+        points = os.path.join(self.tmp, "half-points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\nA,0,0,2020-03-01\n")
+        for command in (["seasons", out, "--out", os.path.join(self.tmp, "half-seasons")],
+                        ["extract", out, "--points", points, "--out", os.path.join(self.tmp, "half.csv")]):
+            done = kt.run_kalends(command)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn("%s: a kalends run was stopped while replacing its outputs here" % out, done.stderr)
+        done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--out", out, "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, ".kalends-publishing")))
+        done = kt.run_kalends(["-q", "seasons", out, "--out", os.path.join(self.tmp, "half-seasons")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
     def test_truncated_geotiff_half(self):
         # The header (IFD at the start, as GDAL writes it) survives: the file opens, and the
         # pixels cannot be read. Checked here with GDAL, so the case is the one intended.
