@@ -357,6 +357,22 @@ std::string unapplied_scaling(const Stack& stack) {
   return identity ? "" : text;
 }
 
+// --date on a file whose bands are dated by their own metadata would read one band as that
+// date and drop the others' dates without a word.
+static void require_undated_bands(GDALDataset& dataset, const std::string& path, const std::string& file,
+                           const ValueRules& rules) {
+  if (!rules.date || dataset.GetRasterCount() < 2) return;
+  std::size_t dated = 0;
+  try {
+    dated = band_dates(dataset, path).size();
+  } catch (const InputError&) {
+  }
+  if (dated > 1)
+    throw InputError(file, fmt::format("its {} bands carry their own dates; --date would read band {} alone as {} "
+                                       "(leave --date out to read every band by its date)",
+                                       dated, rules.band, rules.date->label()));
+}
+
 void require_not_half_published(const std::string& folder) {
   std::error_code ec;
   if (fs::exists(fs::path(folder.empty() ? "." : folder) / ".kalends-publishing", ec))
@@ -431,6 +447,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       // A file without a date in its name may hold several dates, each band dated by its own
       // metadata (a year of daily bands in one NetCDF or GRIB file): all its bands are read.
       std::vector<std::pair<int, TimePoint>> bands;
+      if (time && !date_from_name(file)) require_undated_bands(*dataset, path, file, rules);
       if (time) {
         bands.emplace_back(rules.band, *time);
       } else {
@@ -494,6 +511,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     if (bands == 1 || rules.one_date_per_file || rules.date || rules.band != 1) {
       if (rules.band > bands)
         throw InputError(input, fmt::format("has no band {} (it has {})", rules.band, bands));
+      if (rules.date && !rules.one_date_per_file) require_undated_bands(*dataset, input, input, rules);
       const std::string file = detail::file_in_connection(input);
       auto time = rules.date;
       if (!time) time = date_from_name(file);

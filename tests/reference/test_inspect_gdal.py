@@ -115,6 +115,11 @@ class InspectRealData(kt.TempDirTestCase):
         done = kt.run_kalends(["inspect", source, "--band", "13"])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("has no band 13 (it has 12)", done.stderr)
+        # --date on the NetCDF, whose 12 bands carry their dates, would have read band 1 alone
+        # under that date and dropped the other eleven without a word.
+        done = kt.run_kalends(["inspect", source, "--date", "1999-05-01"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("its 12 bands carry their own dates; --date would read band 1 alone", done.stderr)
 
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
