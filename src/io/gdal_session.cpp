@@ -3,6 +3,7 @@
 #include <cpl_conv.h>
 #include <cpl_error.h>
 #include <cpl_vsi.h>
+#include <ogr_spatialref.h>
 
 #include <fcntl.h>
 #include <unistd.h>
@@ -123,6 +124,23 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
   require_not_cut_short(file_in_connection(path));
   return dataset;
+}
+
+std::string crs_name_of(const std::string& wkt) {
+  if (wkt.empty()) return "";
+  OGRSpatialReference srs;
+  if (srs.importFromWkt(wkt.c_str()) != OGRERR_NONE) return "(unreadable CRS)";
+  std::string name = srs.GetName() ? srs.GetName() : "unnamed CRS";
+  const char* authority = srs.GetAuthorityName(nullptr);
+  const char* code = srs.GetAuthorityCode(nullptr);
+  if (!authority || !code) {
+    // A CRS read from WKT without an identifier may still be one the EPSG database knows.
+    srs.AutoIdentifyEPSG();
+    authority = srs.GetAuthorityName(nullptr);
+    code = srs.GetAuthorityCode(nullptr);
+  }
+  if (authority && code) name += std::string(" (") + authority + ":" + code + ")";
+  return name;
 }
 
 }  // namespace kalends::detail

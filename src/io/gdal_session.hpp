@@ -18,6 +18,10 @@ void set_gdal_cache(std::int64_t bytes);
 /// The last GDAL error message of this thread, or `fallback`.
 std::string gdal_message(const std::string& fallback);
 
+/// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
+/// zone 25S (EPSG:31985)"); "" without a CRS.
+std::string crs_name_of(const std::string& wkt);
+
 /// InputError naming `file` if it is a classic NetCDF file shorter than its header says.
 void require_not_cut_short(const std::string& file);
 

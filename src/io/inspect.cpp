@@ -16,23 +16,6 @@ namespace kalends {
 
 namespace {
 
-std::string crs_name_of(const std::string& wkt) {
-  if (wkt.empty()) return "";
-  OGRSpatialReference srs;
-  if (srs.importFromWkt(wkt.c_str()) != OGRERR_NONE) return "(unreadable CRS)";
-  std::string name = srs.GetName() ? srs.GetName() : "unnamed CRS";
-  const char* authority = srs.GetAuthorityName(nullptr);
-  const char* code = srs.GetAuthorityCode(nullptr);
-  if (!authority || !code) {
-    // A CRS read from WKT without an identifier may still be one the EPSG database knows.
-    srs.AutoIdentifyEPSG();
-    authority = srs.GetAuthorityName(nullptr);
-    code = srs.GetAuthorityCode(nullptr);
-  }
-  if (authority && code) name += std::string(" (") + authority + ":" + code + ")";
-  return name;
-}
-
 // Stack::open's order: a date in the file name, else --date, else the band's own metadata
 // (NetCDF time axis, GRIB valid time, description); a file that gives several dates has them
 // from its bands.
@@ -57,7 +40,7 @@ InspectReport inspect_stack(const InspectRequest& request) {
   report.input = request.input;
   report.name = stack.name();
   report.grid = stack.grid();
-  report.crs_name = crs_name_of(report.grid.crs_wkt);
+  report.crs_name = detail::crs_name_of(report.grid.crs_wkt);
   report.time_grid = TimeGrid::build(stack.times());
   std::vector<int> slots = report.time_grid.slot_of_date;
   std::sort(slots.begin(), slots.end());

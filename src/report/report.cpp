@@ -258,11 +258,18 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
                               synoptic ? "; synoptic cycle from " + escape(synoptic->name) : "; no seasons step read this fill, so no synoptic cycle",
                               raw_missing ? fmt::format("; the raw input of {} dates was not found, so their observations are not shown", raw_missing) : "");
     for (std::size_t p = 0; p < pixels.size(); ++p) {
-      int kept = 0, rejected = 0, filled = 0;
-      for (const PlotDate& d : series[p]) kept += d.flag == 0, rejected += d.flag == 1, filled += d.flag == 2;
+      int kept = 0, rejected = 0, filled = 0, unfilled = 0;
+      for (const PlotDate& d : series[p])
+        kept += d.flag == 0, rejected += d.flag == 1, filled += d.flag == 2, unfilled += d.flag == 3;
+      std::string counts = fmt::format("{} observations kept, {} rejected, {} filled", kept, rejected, filled);
+      if (unfilled > 0) counts += fmt::format(", {} without a value", unfilled);
+      // A pixel never observed is filled from its neighbours alone, or not at all: say so.
+      if (kept + rejected == 0)
+        counts += filled > 0 ? " (never observed: every value comes from neighbouring pixels)"
+                             : " (never observed, and nothing filled it)";
       plots.html += fmt::format(
-          "<figure class=\"series\"><figcaption>pixel column {}, row {}: {} observations kept, {} rejected, {} filled</figcaption>\n{}</figure>\n",
-          pixels[p].first, pixels[p].second, kept, rejected, filled, time_series_svg(series[p], s.unit));
+          "<figure class=\"series\"><figcaption>pixel column {}, row {}: {}</figcaption>\n{}</figure>\n",
+          pixels[p].first, pixels[p].second, counts, time_series_svg(series[p], s.unit));
       ++plots.count;
     }
   }
@@ -335,9 +342,22 @@ ReportSummary run_report(const ReportRequest& request) {
       case SeriesKind::fixed: bands = {s.band}; shown = "band " + std::to_string(s.band); break;
     }
     const Quicklook q = continuous_quicklook(file.path, bands, request.map_size);
-    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {} files; ramp from the 2nd to the 98th percentile</figcaption>{}",
+    // Where and when the layer is: what a reader needs before reading values off it.
+    std::string where = fmt::format("{} x {} px", s.grid.width, s.grid.height);
+    if (s.grid.has_geotransform) {
+      const std::string crs = crs_name_of(s.grid.crs_wkt);
+      where += fmt::format(", cells {:.6g} x {:.6g}, {}", s.grid.geotransform[1], -s.grid.geotransform[5],
+                           crs.empty() ? "no CRS" : crs);
+    } else {
+      where += ", no georeferencing";
+    }
+    if (s.kind == SeriesKind::dated)
+      where += fmt::format("; {} to {}", s.files.front().time.label(), s.files.back().time.label());
+    if (s.kind == SeriesKind::year_period)
+      where += fmt::format("; years {} to {}", s.files.front().year, s.files.back().year);
+    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {} files; ramp from the 2nd to the 98th percentile<br><span class=\"note\">{}</span></figcaption>{}",
                         image(q, s.name), escape(s.name), escape(s.description), escape(shown), s.files.size(),
-                        legend_svg(q, s.unit, summary.maps));
+                        escape(where), legend_svg(q, s.unit, summary.maps));
     if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
     maps += "</figure>\n";
     ++summary.maps;

@@ -80,6 +80,11 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertTrue("fill/fill-summary.json" in self.page, "no fill statistics")
         self.assertEqual(self.page.count('<svg xmlns="http://www.w3.org/2000/svg" width="760"'), 3)
         self.assertTrue("synoptic cycle from seasons.ndvi_synoptic_mean" in self.page, "no synoptic cycle")
+        # Each map says where and when it is: the grid, and the dates or years it spans.
+        dates = sorted(os.path.basename(p)[5:15] for p in glob.glob(os.path.join(
+            kt.shared_path("alaska-ndvi", "masked20"), "ndvi_*.tif")))
+        self.assertIn("100 x 100 px, no georeferencing; %s to %s" % (dates[0], dates[-1]), self.page)
+        self.assertIn("100 x 100 px, no georeferencing; years %s to %s" % (dates[0][:4], dates[-1][:4]), self.page)
 
     def test_the_same_outputs_give_the_same_page(self):
         # Every id in the page is unique (HTML), and a second report of the same outputs is the
