@@ -100,7 +100,8 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
       fmt::print("  range     {:.4g} .. {:.4g}, mean {:.4g} (physical values observed)\n", low, high,
                  sum / double(observed));
     if (!keep.empty())
-      fmt::print("  QA        {} of pixel-dates with a value rejected by '{}'\n", percent(rejected, pixels), keep);
+      fmt::print("  QA        {} of all pixel-dates ({} of those with a value) rejected by '{}'\n",
+                 percent(rejected, pixels), percent(rejected, observed + rejected), keep);
     if (rules.valid_min) fmt::print("            {} of pixel-dates outside the valid range\n", percent(outside, pixels));
     fmt::print("  pixels never observed: {} of {}{}\n", r.pixels_never_observed,
                std::int64_t(r.grid.width) * r.grid.height,

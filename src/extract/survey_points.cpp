@@ -39,6 +39,15 @@ int field_index(OGRFeatureDefn& defn, const std::string& column, const std::stri
   throw InputError(path, "no column '" + column + "' (" + option + "); the columns are: " + names);
 }
 
+// A field as the table means it: trimmed, and empty where it holds a missing-value marker as
+// statistics packages write them (R's NA, pandas' NaN, SQL's NULL). Common practice, no source.
+std::string field_text(const std::string& raw) {
+  const std::string text = trim(raw);
+  for (const char* marker : {"NA", "N/A", "NaN", "nan", "NULL", "null"})
+    if (text == marker) return "";
+  return text;
+}
+
 double coordinate(const std::string& text, const std::string& where) {
   char* end = nullptr;
   const double v = std::strtod(text.c_str(), &end);
@@ -191,9 +200,9 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     SurveyPoint p;
     p.id = feature->GetFieldAsString(id);
     if (csv) {
-      const std::string xs = trim(feature->GetFieldAsString(x)), ys = trim(feature->GetFieldAsString(y));
-      p.x_text = xs;
-      p.y_text = ys;
+      const std::string xs = field_text(feature->GetFieldAsString(x)), ys = field_text(feature->GetFieldAsString(y));
+      p.x_text = trim(feature->GetFieldAsString(x));  // echoed as written, NA included
+      p.y_text = trim(feature->GetFieldAsString(y));
       // Both empty: a point not yet located (its values say so). One alone is a mistake, such
       // as a row cut short.
       if (xs.empty() != ys.empty())
@@ -222,7 +231,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     }
     if (date >= 0 && feature->IsFieldSetAndNotNull(date)) {
       p.date_text = trim(feature->GetFieldAsString(date));
-      if (!p.date_text.empty()) read_date(p, where);
+      if (!field_text(p.date_text).empty()) read_date(p, where);
     }
     result.points.push_back(std::move(p));
   }

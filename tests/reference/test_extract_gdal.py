@@ -191,7 +191,7 @@ class ExtractLandsat(kt.TempDirTestCase):
     def test_coordinates_are_echoed_as_written(self):
         points = os.path.join(self.tmp, "echo.csv")
         with open(points, "w") as f:
-            f.write("site,lon,lat\np1,-34.875000001,-7.98\np2,,\n")
+            f.write("site,lon,lat\np1,-34.875000001,-7.98\np2,,\np3,NA,NA\n")
         out = os.path.join(self.tmp, "echo_table.csv")
         done = self.extract_site_table(points, out, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
@@ -199,13 +199,15 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual((rows[0]["lon"], rows[0]["lat"]), ("-34.875000001", "-7.98"))
         self.assertEqual((rows[1]["lon"], rows[1]["lat"]), ("", ""))
         self.assertEqual(rows[1]["L7_ETMs.b1.reason"], "no coordinates")
+        # R's missing marker: no coordinates either, echoed as written.
+        self.assertEqual((rows[2]["lon"], rows[2]["lat"], rows[2]["L7_ETMs.b1.reason"]), ("NA", "NA", "no coordinates"))
         self.assertNotIn("more than one point", done.stderr)
         # An id used twice: both points keep their rows, and a note says so.
         with open(points, "a") as f:
             f.write("p1,-34.88,-7.99\n")
         done = self.extract_site_table(points, out, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p1"])
+        self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p3", "p1"])
         self.assertIn("1 ids name more than one point (first: 'p1')", done.stderr)
 
     def test_rows_whose_fields_do_not_match_the_header_are_refused(self):
@@ -326,7 +328,8 @@ class SummersOnly(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
         points = os.path.join(self.tmp, "points.csv")
         with open(points, "w") as f:
-            f.write("id,x,y,date\nwinter,400600,7199400,2032-01-15\nsummer,400600,7199400,2031-07-15\n")
+            f.write("id,x,y,date\nwinter,400600,7199400,2032-01-15\nsummer,400600,7199400,2031-07-15\n"
+                    "undated,400600,7199400,NA\n")
         out = os.path.join(self.tmp, "table.csv")
         done = kt.run_kalends(["-q", "extract", job, "--points", points, "--crs", "EPSG:32606", "--x-column", "x",
                                "--y-column", "y", "--layers", "fill.calendar-1M.ndvi", "--out", out])
@@ -337,6 +340,7 @@ class SummersOnly(kt.TempDirTestCase):
                         rows["winter"])
         self.assertNotEqual(rows["summer"]["fill.calendar-1M.ndvi"], "")
         self.assertEqual(rows["summer"]["fill.calendar-1M.ndvi.reason"], "")
+        self.assertEqual(rows["undated"]["fill.calendar-1M.ndvi.reason"], "no survey date")
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
