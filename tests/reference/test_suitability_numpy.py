@@ -254,22 +254,27 @@ class BadInput(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("--calibrate: fits a, b and c alone", done.stderr)
 
+    def refused_by_both(self, inputs):
+        """The one-line refusals of `suitability` and `diurnal` given `inputs` (exit 2, no output)."""
+        lines = []
+        for command in ("suitability", "diurnal"):
+            out = os.path.join(self.tmp, "refused-%d" % len(os.listdir(self.tmp)))
+            done = kt.run_kalends([command] + inputs + ["--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+            lines.append(done.stderr.strip())
+        return lines
+
     def test_day_and_night_swapped(self):
         # Given the other way round, every day sample is colder than its night sample: each day
         # would be taken as flat at their mean, a plausible but wrong layer (docs/methods.md).
         folder = os.path.join(self.tmp, "swapped")
         make_stack(folder, np.random.default_rng(1))
-        for command in ("suitability", "diurnal"):
-            out = os.path.join(self.tmp, "swapped-" + command)
-            done = kt.run_kalends([command, "--day", folder + "/night/*.tif", "--night", folder + "/day/*.tif",
-                                   "--out", out])
-            self.assertEqual(done.returncode, 2, done.stderr)
-            lines = done.stderr.strip().splitlines()
-            self.assertEqual(len(lines), 1, done.stderr)
-            self.assertIn("--day %s/night/*.tif, --night %s/day/*.tif" % (folder, folder), lines[0])
-            self.assertIn("the day sample is not warmer than the night sample on 100 % of pixel-days", lines[0])
-            self.assertIn("are --day and --night swapped?", lines[0])
-            self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+        for line in self.refused_by_both(["--day", folder + "/night/*.tif", "--night", folder + "/day/*.tif"]):
+            self.assertIn("--day %s/night/*.tif, --night %s/day/*.tif" % (folder, folder), line)
+            self.assertIn("the day sample is not warmer than the night sample on 100 % of pixel-days", line)
+            self.assertIn("are --day and --night swapped?", line)
 
     def test_day_colder_than_night_on_a_few_pixel_days_is_counted(self):
         folder = os.path.join(self.tmp, "few")
@@ -299,17 +304,10 @@ class BadInput(kt.TempDirTestCase):
             ds = kt.gdal().Open(path, 1)
             ds.GetRasterBand(1).SetScale(1.0)
             ds = None
-        for command in ("suitability", "diurnal"):
-            out = os.path.join(self.tmp, "halfscale-" + command)
-            done = kt.run_kalends([command, "--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
-                                   "--out", out])
-            self.assertEqual(done.returncode, 2, done.stderr)
-            lines = done.stderr.strip().splitlines()
-            self.assertEqual(len(lines), 1, done.stderr)
-            self.assertIn("--night %s/night/*.tif" % folder, lines[0])
-            self.assertNotIn("--day", lines[0])
-            self.assertIn("scale factor", lines[0])
-            self.assertEqual(glob.glob(os.path.join(out, "*.tif")), [])
+        for line in self.refused_by_both(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"]):
+            self.assertIn("--night %s/night/*.tif" % folder, line)
+            self.assertNotIn("--day", line)
+            self.assertIn("scale factor", line)
 
     def test_the_other_input_on_another_grid_is_named(self):
         # The night stack is consistent in itself; it is the day stack whose grid it misses.
