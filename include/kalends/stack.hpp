@@ -117,6 +117,9 @@ std::string unapplied_scaling(const Stack& stack);
 /// note; "" where all agree or the rules override them.
 std::string mixed_value_rules(const Stack& stack);
 
+/// The hidden file a run keeps in each folder while it renames its outputs into place.
+inline constexpr const char* half_published_marker = ".kalends-publishing";
+
 /// InputError naming `folder` when a kalends run was killed while renaming its outputs into it
 /// (the marker it keeps meanwhile is there): the folder holds some new and some old outputs,
 /// which no step should read as one set until the run is done again.

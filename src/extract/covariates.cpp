@@ -77,7 +77,7 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
   std::vector<fs::path> files;
   for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
     const std::string name = it->path().filename().string();
-    if (name == ".kalends-publishing") require_not_half_published(it->path().parent_path().string());
+    if (name == half_published_marker) require_not_half_published(it->path().parent_path().string());
     if (!name.empty() && name.front() == '.') {
       if (it->is_directory()) it.disable_recursion_pending();
       continue;

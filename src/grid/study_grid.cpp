@@ -44,7 +44,7 @@ std::vector<Source> sources_of(const std::vector<std::string>& inputs, const std
       std::vector<Source> found;
       for (auto it = fs::recursive_directory_iterator(input); it != fs::recursive_directory_iterator(); ++it) {
         const std::string name = it->path().filename().string();
-        if (name == ".kalends-publishing") require_not_half_published(it->path().parent_path().string());
+        if (name == half_published_marker) require_not_half_published(it->path().parent_path().string());
         if (name.front() == '.' || (it->is_directory() && fs::weakly_canonical(it->path(), ec) == out)) {
           if (it->is_directory()) it.disable_recursion_pending();
           continue;

@@ -56,9 +56,6 @@ class OutputFolder {
   int lock_ = -1;                     // the folder, open and locked
 };
 
-/// The hidden file an OutputSet keeps in each folder while it renames its outputs into place.
-constexpr const char* half_published_marker = ".kalends-publishing";
-
 /// UsageError naming --out when `out_dir` is the folder of `stack`'s own files (`option`: what
 /// they are, "input" or "QA"): the outputs would replace them, or a later run would remove
 /// them as outputs it no longer makes.

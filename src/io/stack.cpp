@@ -375,7 +375,7 @@ static void require_undated_bands(GDALDataset& dataset, const std::string& path,
 
 void require_not_half_published(const std::string& folder) {
   std::error_code ec;
-  if (fs::exists(fs::path(folder.empty() ? "." : folder) / ".kalends-publishing", ec))
+  if (fs::exists(fs::path(folder.empty() ? "." : folder) / half_published_marker, ec))
     throw InputError(folder.empty() ? "." : folder,
                      "a kalends run was stopped while replacing its outputs here, so they are part new and part "
                      "old; run the command (or the job) that writes this folder again");
