@@ -7,6 +7,7 @@
 #include <sys/statvfs.h>
 #include <unistd.h>
 
+#include <cerrno>
 #include <cmath>
 #include <cstdio>
 #include <cstring>
@@ -135,9 +136,11 @@ OutputFolder::OutputFolder(const std::string& path) {
   // ends, however it ends.
   lock_ = ::open(path.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
   if (lock_ >= 0 && ::flock(lock_, LOCK_EX | LOCK_NB) != 0) {
+    const bool held = errno == EWOULDBLOCK;
     ::close(lock_);
     lock_ = -1;
-    throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
+    // A file system without locks (some network mounts) runs unguarded, as before.
+    if (held) throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
   }
 }
 
