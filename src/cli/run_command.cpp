@@ -152,7 +152,7 @@ Action add_status_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     for (const StepStatus& s : job_status(*o))
       if (!global.quiet || s.state != "done")
-        fmt::print("{:<12} {:<8} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
+        fmt::print("{:<12} {:<11} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
                    s.outputs ? fmt::format(" ({} files)", s.outputs) : "");
   };
 }
