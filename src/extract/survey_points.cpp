@@ -33,6 +33,12 @@ std::string trim(const std::string& s) {
 int field_index(OGRFeatureDefn& defn, const std::string& column, const std::string& option,
                 const std::string& path) {
   const int i = defn.GetFieldIndex(column.c_str());
+  // Two columns of one name (a table pasted together): which one is meant cannot be told.
+  if (i >= 0)
+    for (int k = i + 1; k < defn.GetFieldCount(); ++k)
+      if (lower(defn.GetFieldDefn(k)->GetNameRef()) == lower(column))
+        throw InputError(path, fmt::format("has two columns named '{}' (columns {} and {}); rename one ({})", column,
+                                           i + 1, k + 1, option));
   if (i >= 0) return i;
   std::string names;
   for (int k = 0; k < defn.GetFieldCount(); ++k) names += (k ? ", " : "") + std::string(defn.GetFieldDefn(k)->GetNameRef());

@@ -236,6 +236,16 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1"])
         self.assertEqual(done.stderr, "")
 
+    def test_two_columns_of_one_name_are_refused(self):
+        # A table pasted together from two sheets: which 'site' is meant cannot be told (the
+        # first had been taken without a word).
+        dup = os.path.join(self.tmp, "dup.csv")
+        with open(dup, "w") as f:
+            f.write("site,lon,lat,site\np1,%.8f,%.8f,p9\n" % (self.points[0][1], self.points[0][2]))
+        done = self.extract_site_table(dup, os.path.join(self.tmp, "dup_table.csv"))
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("dup.csv: has two columns named 'site' (columns 1 and 4)", done.stderr)
+
     def test_empty_and_renamed_tables(self):
         empty = os.path.join(self.tmp, "empty.csv")
         open(empty, "w").close()
