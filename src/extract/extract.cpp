@@ -341,10 +341,8 @@ Sampling parse_sampling(const std::string& text) {
 
 void check_extract_options(const ExtractRequest& request) {
   if (!request.points.crs.empty()) {
-    detail::start_gdal();  // PROJ's own message goes to GDAL's error slot, not to the terminal
     OGRSpatialReference crs;
-    if (crs.SetFromUserInput(request.points.crs.c_str()) != OGRERR_NONE)
-      throw UsageError("--crs '" + request.points.crs + "'", "not a CRS PROJ knows");
+    detail::set_crs_from_user(crs, request.points.crs, "--crs");
   }
   if (!(request.buffer_metres >= 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
   for (int lag : request.lags)

@@ -182,8 +182,8 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   }
   if (!csv && layer->GetSpatialRef()) {
     crs = *layer->GetSpatialRef();
-  } else if (crs.SetFromUserInput(source.crs.c_str()) != OGRERR_NONE) {
-    throw UsageError("--crs '" + source.crs + "'", "not a CRS PROJ knows");
+  } else {
+    detail::set_crs_from_user(crs, source.crs, "--crs");
   }
   char* wkt = nullptr;
   crs.exportToWkt(&wkt);

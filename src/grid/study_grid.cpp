@@ -184,8 +184,7 @@ void check_study_grid_options(const StudyGridRequest& request) {
   if (request.crs.empty()) throw UsageError("--crs", "the study grid needs a CRS, e.g. EPSG:4326");
   {
     OGRSpatialReference srs;
-    if (srs.SetFromUserInput(request.crs.c_str()) != OGRERR_NONE)
-      throw UsageError("--crs '" + request.crs + "'", "not a CRS GDAL knows");
+    detail::set_crs_from_user(srs, request.crs, "--crs");
   }
   if (request.resolution && !(*request.resolution > 0 && std::isfinite(*request.resolution)))
     throw UsageError("--resolution", "must be positive");

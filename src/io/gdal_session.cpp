@@ -143,4 +143,14 @@ std::string crs_name_of(const std::string& wkt) {
   return name;
 }
 
+void set_crs_from_user(OGRSpatialReference& srs, const std::string& text, const std::string& option) {
+  start_gdal();  // PROJ's own message goes to GDAL's error slot, not to the terminal
+  std::string upper;
+  for (char c : text) upper += char(std::toupper(static_cast<unsigned char>(c)));
+  const bool epsg = upper.rfind("EPSG:", 0) == 0;
+  const bool digits = text.size() > 5 && std::all_of(text.begin() + 5, text.end(), [](char c) { return c >= '0' && c <= '9'; });
+  if ((epsg && !digits) || srs.SetFromUserInput(text.c_str()) != OGRERR_NONE)
+    throw UsageError(option + " '" + text + "'", "not a CRS PROJ knows");
+}
+
 }  // namespace kalends::detail

@@ -1,6 +1,8 @@
 // GDAL set-up and small helpers shared by the readers and writers.
 #pragma once
 
+#include <ogr_spatialref.h>
+
 #include <gdal_priv.h>
 
 #include <cstdint>
@@ -21,6 +23,11 @@ std::string gdal_message(const std::string& fallback);
 /// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
 /// zone 25S (EPSG:31985)"); "" without a CRS.
 std::string crs_name_of(const std::string& wkt);
+
+/// `srs` set from what a user typed for `option` (EPSG:32736, WKT, a PROJ string); UsageError
+/// when PROJ does not know it, or when an EPSG code has anything after its digits (PROJ reads
+/// "EPSG:4326x" as EPSG:4326: a slip would go unseen).
+void set_crs_from_user(OGRSpatialReference& srs, const std::string& text, const std::string& option);
 
 /// InputError naming `file` if it is a classic NetCDF file shorter than its header says.
 void require_not_cut_short(const std::string& file);

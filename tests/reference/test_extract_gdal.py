@@ -306,6 +306,8 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--lags", "0"], "--lags"),
                                 (["--layers", "b1,"], "--layers 'b1,': an empty item"),
                                 (["--buffer", "nan"], "--buffer: the radius must be positive"),
+                                # PROJ alone reads this as EPSG:4326: a slip would go unseen.
+                                (["--crs", "EPSG:4326x"], "--crs 'EPSG:4326x': not a CRS PROJ knows"),
                                 (["--out", self.tmp], "is a folder; give the table's file name")):
             command = base + extra
             if extra[0] == "--out":  # the folder replaces the table's name
