@@ -383,6 +383,21 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("finalize refused, nothing changed", done.stdout)
         self.assertIn("2/2", done.stderr)
         self.assertNotIn("1/2", done.stderr)
+        # Shard 2 at work (its folder's lock held, as a running shard holds it): named as
+        # running, and not offered for resubmission.
+        import fcntl
+        lock_path = os.path.join(out, ".kalends", "shards", "2-of-2", ".kalends", "lock")
+        os.makedirs(os.path.dirname(lock_path), exist_ok=True)
+        with open(lock_path, "a+") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            lock.truncate(0)
+            lock.write(str(os.getpid()))
+            lock.flush()
+            done = kalends("run", self.job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 4)
+        self.assertIn("2/2 (running (pid %d)" % os.getpid(), done.stderr)
+        self.assertIn("wait for them to end", done.stderr)
+        self.assertNotIn("sbatch --array", done.stderr)
         status = kalends("status", self.job, "--out", out).stdout
         self.assertRegex(status, r"1/2\s+shard\s+done")
         self.assertRegex(status, r"2/2\s+shard\s+not done\s+never run")
