@@ -403,10 +403,13 @@ ExtractResult run_extract(const ExtractRequest& request) {
         else if (m.file < 0) v.reason = m.reason;
         else {
           const std::string& path = s.files[m.file].path;
-          if (at.inside) sample(files, s, path, m.band, at, request.sampling, v);
-          if (!v.value && at.inside && s.files[m.file].outside_season)
-            v.reason = "outside the stack's season (no composite stands for these days)";
-          else v.reason = at.reason;
+          if (at.inside) {
+            sample(files, s, path, m.band, at, request.sampling, v);
+            if (!v.value && s.files[m.file].outside_season)
+              v.reason = "outside the stack's season (no composite stands for these days)";
+          } else {
+            v.reason = at.reason;
+          }
           if (request.buffer_metres > 0) {
             buffer_mean(files, s, path, m.band, cells, v);
             if (!v.value && !v.buffer_mean) v.reason += " (and no cell with a value in the buffer)";

@@ -321,6 +321,26 @@ class ExtractLandsat(kt.TempDirTestCase):
 
 
 class SummersOnly(kt.TempDirTestCase):
+    def test_an_empty_cell_says_nodata(self):
+        # A point on a cell without a value, and one beside it on a cell with one (invented
+        # layer, mechanics only). The reason had been lost when the season's reason was added.
+        folder = os.path.join(self.tmp, "fixed")
+        os.makedirs(folder)
+        values = np.full((4, 5), 0.5, np.float32)
+        values[1, 1] = np.nan
+        kt.write_raster(os.path.join(folder, "cover.tif"), values, geotransform=(400000, 250, 0, 7200000, 0, -250),
+                        epsg=32606, nodata=float("nan"))
+        points = os.path.join(self.tmp, "cells.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y\nempty,400375,7199625\nfull,400625,7199625\n")
+        out = os.path.join(self.tmp, "cells_table.csv")
+        done = kt.run_kalends(["-q", "extract", folder, "--points", points, "--crs", "EPSG:32606", "--x-column", "x",
+                               "--y-column", "y", "--date-column", "", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {r["id"]: r for r in kt.read_table(out)}
+        self.assertEqual((rows["empty"]["cover"], rows["empty"]["cover.reason"]), ("", "nodata"))
+        self.assertEqual((rows["full"]["cover"], rows["full"]["cover.reason"]), ("0.5", ""))
+
     def test_a_month_outside_the_season_says_so(self):
         # Invented summers (8 composites of 16 days from day 145, as the Alaska stack has) of
         # 2031 and 2032 on a small UTM grid: the calendar months of the winter between them have
