@@ -290,7 +290,7 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         for k in range(12):
             values = (0.5 + 0.2 * np.sin(k / 2) + rng.normal(0, 0.02, (300, 20))).astype(np.float32)
             values[rng.random((300, 20)) < 0.2] = np.nan
-            values[:, :2] = np.nan  # two columns never observed: a note with --never-observed leave
+            values[:, :2] = np.nan  # two columns never observed: harmonic cannot fit them
             kt.write_raster(os.path.join(stack, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
                             geotransform=(0, 1, 0, 300, 0, -1), nodata=float("nan"))
         job = os.path.join(folder, "job.toml")
