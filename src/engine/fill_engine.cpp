@@ -115,11 +115,7 @@ namespace {
 
 // Whether `file` is a raster an earlier fill wrote (its metadata names the method): only such
 // files are ever removed as outputs the fill no longer makes, never a user's own.
-bool written_by_a_fill(const fs::path& file) {
-  GDALDatasetUniquePtr ds(GDALDataset::Open(file.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-  return ds && ds->GetMetadataItem("KALENDS_METHOD") != nullptr;
-}
-
+bool written_by_a_fill(const fs::path& file) { return detail::raster_metadata(file.string()).count("KALENDS_METHOD") > 0; }
 
 }  // namespace
 

@@ -143,6 +143,19 @@ std::string crs_name_of(const std::string& wkt) {
   return name;
 }
 
+std::map<std::string, std::string> raster_metadata(const std::string& path) {
+  std::map<std::string, std::string> items;
+  CPLErrorReset();
+  GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (!ds) return items;
+  CSLConstList list = ds->GetMetadata();
+  for (int i = 0; list && list[i]; ++i) {
+    const std::string item = list[i];
+    if (const auto eq = item.find('='); eq != std::string::npos) items[item.substr(0, eq)] = item.substr(eq + 1);
+  }
+  return items;
+}
+
 void set_crs_from_user(OGRSpatialReference& srs, const std::string& text, const std::string& option) {
   start_gdal();  // PROJ's own message goes to GDAL's error slot, not to the terminal
   std::string upper;

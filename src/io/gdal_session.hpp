@@ -6,6 +6,7 @@
 #include <gdal_priv.h>
 
 #include <cstdint>
+#include <map>
 #include <string>
 
 namespace kalends::detail {
@@ -23,6 +24,11 @@ std::string gdal_message(const std::string& fallback);
 /// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
 /// zone 25S (EPSG:31985)"); "" without a CRS.
 std::string crs_name_of(const std::string& wkt);
+
+/// The dataset-level metadata of the raster at `path`, key -> value; empty when GDAL cannot
+/// open it as a raster. Tells kalends' own outputs (KALENDS_VERSION, KALENDS_METHOD,
+/// KALENDS_YEAR) from files a user keeps beside them.
+std::map<std::string, std::string> raster_metadata(const std::string& path);
 
 /// `srs` set from what a user typed for `option` (EPSG:32736, WKT, a PROJ string); UsageError
 /// when PROJ does not know it, or when an EPSG code has anything after its digits (PROJ reads

@@ -171,13 +171,10 @@ std::vector<int> remove_year_layers_outside(const std::string& folder, const std
   for (const auto& entry : fs::directory_iterator(folder, ec)) {
     const std::string file = entry.path().filename().string();
     if (!entry.is_regular_file() || !file.starts_with(name + "_") || entry.path().extension() != ".tif") continue;
-    int year = 0;
-    {
-      GDALDatasetUniquePtr ds(GDALDataset::Open(entry.path().c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-      const char* text = ds ? ds->GetMetadataItem("KALENDS_YEAR") : nullptr;
-      if (!text || !ds->GetMetadataItem("KALENDS_VERSION")) continue;
-      year = std::atoi(text);
-    }
+    const std::map<std::string, std::string> metadata = raster_metadata(entry.path().string());
+    const auto text = metadata.find("KALENDS_YEAR");
+    if (text == metadata.end() || !metadata.count("KALENDS_VERSION")) continue;
+    const int year = std::atoi(text->second.c_str());
     if (year >= first_year && year <= last_year) continue;
     if (fs::remove(entry.path(), ec)) removed.insert(year);
   }
@@ -205,9 +202,7 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
   for (const OutputSpec& spec : specs) {
     std::error_code ec;
     if (!fs::exists(spec.path, ec)) continue;
-    CPLErrorReset();
-    GDALDatasetUniquePtr existing(GDALDataset::Open(spec.path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-    if (!existing || !existing->GetMetadataItem("KALENDS_VERSION"))
+    if (!raster_metadata(spec.path).count("KALENDS_VERSION"))
       throw OutputError(spec.path, "exists and was not written by kalends; move it away or choose another output "
                                    "folder (nothing was replaced)");
   }

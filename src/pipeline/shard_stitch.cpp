@@ -220,10 +220,7 @@ StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int h
     if (names.count(n)) continue;
     const fs::path path = fs::path(folder) / n;
     bool ours = n.ends_with("fill-summary.json") || n.ends_with("fill-years.tsv");
-    if (path.extension() == ".tif") {
-      GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-      ours = ds && ds->GetMetadataItem("KALENDS_VERSION");
-    }
+    if (path.extension() == ".tif") ours = raster_metadata(path.string()).count("KALENDS_VERSION") > 0;
     if (ours && fs::remove(path, ec)) {
       ++outcome.removed;
       const fs::path parent = path.parent_path();
