@@ -24,7 +24,7 @@ struct ReportRequest {
 };
 
 struct ReportSummary {
-  int maps = 0, plots = 0, validation_reports = 0, fill_summaries = 0;
+  int maps = 0, plots = 0, validation_reports = 0, validation_plots = 0, fill_summaries = 0;
   std::size_t bytes = 0;
 };
 

@@ -36,8 +36,9 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
     if (r.map_size < 16 || r.map_size > 4096) throw UsageError("--map-size", "between 16 and 4096 pixels");
     const ReportSummary s = run_report(r);
     if (!global.quiet)
-      fmt::print("kalends report: {} maps, {} time series, {} validation reports, {} fill summaries -> {} ({:.0f} kB)\n",
-                 s.maps, s.plots, s.validation_reports, s.fill_summaries, r.html, s.bytes / 1024.0);
+      fmt::print("kalends report: {} maps, {} time series, {} validation reports ({} pixel plots), {} fill summaries "
+                 "-> {} ({:.0f} kB)\n",
+                 s.maps, s.plots, s.validation_reports, s.validation_plots, s.fill_summaries, r.html, s.bytes / 1024.0);
   };
 }
 

@@ -25,7 +25,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("input", r.input, "Quoted glob of single-date rasters, one variable of many files "
                   "('NETCDF:\"nc/*.nc\":ndvi'), or one multi-band raster")
       ->required();
-  sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md)")->required();
+  sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md, series.csv)")->required();
   sub->add_option("--methods", o->methods, "Comma-separated methods to score")->capture_default_str();
   sub->add_option("--seed", r.seed, "Seed of the mask transplant (same seed, same cells)")
       ->capture_default_str();
@@ -38,6 +38,9 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
                                         "more where one block needs more, up to half the machine's memory")
                             ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--series", r.series_pixels, "Pixels (those with the most withheld values) whose truth and "
+                  "fills go to OUT/series.csv, for the report's plots")
+      ->capture_default_str()->check(CLI::Range(0, 1000));
   sub->add_flag("--keep-work", r.keep_work, "Keep the withheld stack and the fills in OUT/work");
   sub->add_option("--subset", o->subset, "Validate these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
                   "gdal_translate -srcwin), for an area too large to validate whole");

@@ -191,6 +191,70 @@ struct Plots {
   int count = 0;
 };
 
+// The pixels of a validation's series.csv (written by kalends validate beside its report.md):
+// one plot each of the truth, kept and withheld, and every scored curve, with the RMSE of each
+// on that pixel's withheld values. A file not in validate's layout is named, not drawn.
+Plots validation_series_html(const fs::path& csv, const fs::path& root) {
+  Plots plots;
+  std::istringstream in(read_file(csv));
+  std::string line;
+  std::getline(in, line);
+  auto split = [](const std::string& text) {
+    std::vector<std::string> cells;
+    std::size_t start = 0;
+    for (std::size_t comma; (comma = text.find(',', start)) != std::string::npos; start = comma + 1)
+      cells.push_back(text.substr(start, comma - start));
+    cells.push_back(text.substr(start));
+    return cells;
+  };
+  const std::vector<std::string> header = split(line);
+  const std::string name = escape(fs::relative(csv, root).string());
+  if (header.size() < 6 || header[0] != "column" || header[1] != "row" || header[2] != "date" || header[3] != "truth" ||
+      header[4] != "withheld")
+    return {fmt::format("<p class=\"note\">{}: not the layout kalends validate writes; not drawn.</p>\n", name), 0};
+  std::vector<std::size_t> curve_columns;  // values, not their sd
+  for (std::size_t c = 5; c < header.size(); ++c)
+    if (!header[c].ends_with("_sd")) curve_columns.push_back(c);
+  auto number = [](const std::string& cell) { return cell.empty() ? NAN : std::strtod(cell.c_str(), nullptr); };
+  std::vector<std::pair<std::pair<int, int>, ValidationPlot>> pixels;
+  while (std::getline(in, line)) {
+    const std::vector<std::string> cells = split(line);
+    const std::optional<TimePoint> when = date_from_name(cells[std::min<std::size_t>(2, cells.size() - 1)]);
+    if (cells.size() != header.size() || !when) continue;
+    const std::pair<int, int> at{std::atoi(cells[0].c_str()), std::atoi(cells[1].c_str())};
+    if (pixels.empty() || pixels.back().first != at) {
+      pixels.push_back({at, {}});
+      for (std::size_t c : curve_columns) pixels.back().second.curves.push_back({header[c], {}});
+    }
+    ValidationPlot& plot = pixels.back().second;
+    plot.days.push_back(when->days());
+    plot.truth.push_back(number(cells[3]));
+    plot.withheld.push_back(cells[4] == "1");
+    for (std::size_t k = 0; k < curve_columns.size(); ++k) plot.curves[k].second.push_back(number(cells[curve_columns[k]]));
+  }
+  for (const auto& [at, plot] : pixels) {
+    int withheld = 0;
+    for (std::size_t t = 0; t < plot.days.size(); ++t) withheld += plot.withheld[t] && std::isfinite(plot.truth[t]);
+    std::string scores;
+    for (const auto& [label, values] : plot.curves) {
+      double squares = 0;
+      int covered = 0;
+      for (std::size_t t = 0; t < plot.days.size(); ++t)
+        if (plot.withheld[t] && std::isfinite(plot.truth[t]) && std::isfinite(values[t]))
+          squares += (values[t] - plot.truth[t]) * (values[t] - plot.truth[t]), ++covered;
+      scores += fmt::format("{}{} {}", scores.empty() ? "" : ", ", escape(label),
+                            covered ? fmt::format("{:.4f}", std::sqrt(squares / covered)) : std::string("-"));
+      if (covered > 0 && covered < withheld) scores += fmt::format(" ({} of them)", covered);
+    }
+    plots.html += fmt::format("<figure class=\"series\"><figcaption>{}, pixel column {}, row {}: {} value{} "
+                              "withheld; RMSE on them: {}</figcaption>\n{}</figure>\n",
+                              name, at.first, at.second, withheld, withheld == 1 ? "" : "s", scores,
+                              validation_svg(plot, ""));
+    ++plots.count;
+  }
+  return plots;
+}
+
 Plots time_series_html(const ReportRequest& request, const std::vector<CovariateSeries>& all) {
   Plots plots;
   int largest_width = 0, largest_height = 0;
@@ -391,6 +455,11 @@ ReportSummary run_report(const ReportRequest& request) {
         read_file(p.parent_path() / "report.json").find("\"scores\"") != std::string::npos) {
       validation += fmt::format("<h3>{}</h3>\n", escape(fs::relative(p, root).string())) + markdown_to_html(read_file(p));
       ++summary.validation_reports;
+      if (fs::exists(p.parent_path() / "series.csv")) {
+        const Plots series = validation_series_html(p.parent_path() / "series.csv", root);
+        validation += "<h4>The withheld values at a few pixels</h4>\n" + series.html;
+        summary.validation_plots += series.count;
+      }
     }
     if (p.filename() == "fill-summary.json") {
       statistics += fill_statistics_html(p, root);

@@ -21,46 +21,82 @@ double nice_step(double span, int count) {
   return 10 * power;
 }
 
+// The frame of a plot: white ground, value grid lines and labels, year ticks, the axis title;
+// and the scales from day and value to pixels. The value range gets 5 % of room each side.
+struct Frame {
+  double left = 58, right = 12, top = 26, bottom = 28;
+  int width, height;
+  double t0, t1, lo, hi;
+  Frame(int w, int h, double first_day, double last_day, double low, double high)
+      : width(w), height(h), t0(first_day), t1(std::max(last_day, first_day + 1)), lo(low), hi(high) {
+    if (hi - lo < 1e-12) lo -= 0.5, hi += 0.5;
+    const double pad = 0.05 * (hi - lo);
+    lo -= pad, hi += pad;
+  }
+  double x(double t) const { return left + (t - t0) / (t1 - t0) * (width - left - right); }
+  double y(double v) const { return top + (hi - v) / (hi - lo) * (height - top - bottom); }
+  std::string axes(const std::string& unit) const {
+    std::string svg = "<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\" stroke=\"none\">\n";
+    const double step = nice_step(hi - lo, 5);
+    for (double v = std::ceil(lo / step) * step; v <= hi; v += step) {
+      svg += fmt::format("<line x1=\"{:.1f}\" x2=\"{:.1f}\" y1=\"{:.1f}\" y2=\"{:.1f}\" stroke=\"#e3e3e3\"/>", left,
+                         width - right, y(v), y(v));
+      svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\" text-anchor=\"end\">{:g}</text>\n", left - 4, y(v) + 4,
+                         std::abs(v) < step * 1e-6 ? 0.0 : v);
+    }
+    for (int year = civil_from_days(std::int64_t(t0)).year;; ++year) {
+      const double t = double(days_from_civil(year, 1, 1));
+      if (t > t1) break;
+      if (t < t0) continue;
+      svg += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.1f}\" y2=\"{2:.1f}\" stroke=\"#bbbbbb\"/>", x(t),
+                         top, height - bottom);
+      svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\">{}</text>\n", x(t) + 3, height - bottom + 14, year);
+    }
+    svg += fmt::format("<text x=\"12\" y=\"{:.1f}\" transform=\"rotate(-90 12 {:.1f})\" text-anchor=\"middle\">{}</text>\n",
+                       (top + height - bottom) / 2, (top + height - bottom) / 2, unit.empty() ? "value" : unit);
+    return svg + "</g>\n";
+  }
+};
+
+std::string svg_start(int width, int height) {
+  return fmt::format(
+      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{0}\" height=\"{1}\" viewBox=\"0 0 {0} {1}\" "
+      "role=\"img\" class=\"plot\">\n<rect width=\"{0}\" height=\"{1}\" fill=\"#ffffff\"/>\n",
+      width, height);
+}
+
+// Polylines through the finite values of one curve, broken where it has none.
+template <typename Get>
+std::string broken_line(std::size_t count, Get point, const std::string& attributes) {
+  std::string out, points;
+  auto flush = [&] {
+    if (!points.empty()) out += "<polyline fill=\"none\" stroke-width=\"1.6\" " + attributes + " points=\"" + points + "\"/>\n";
+    points.clear();
+  };
+  for (std::size_t i = 0; i < count; ++i) {
+    const auto [px, py] = point(i);
+    if (std::isfinite(py)) points += fmt::format("{:.1f},{:.1f} ", px, py);
+    else flush();
+  }
+  flush();
+  return out;
+}
+
 }  // namespace
 
 std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit, int width, int height) {
-  const double left = 58, right = 12, top = 26, bottom = 28;
   double lo = INFINITY, hi = -INFINITY;
   for (const PlotDate& d : dates) {
     for (double v : {d.value - d.sd, d.value + d.sd, d.raw, d.synoptic, d.value})
       if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
   }
-  std::string svg = fmt::format(
-      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{0}\" height=\"{1}\" viewBox=\"0 0 {0} {1}\" "
-      "role=\"img\" class=\"plot\">\n<rect width=\"{0}\" height=\"{1}\" fill=\"#ffffff\"/>\n",
-      width, height);
+  std::string svg = svg_start(width, height);
   if (dates.empty() || !std::isfinite(lo)) return svg + "<text x=\"10\" y=\"20\">no values at this pixel</text></svg>\n";
-  if (hi - lo < 1e-12) lo -= 0.5, hi += 0.5;
-  const double pad = 0.05 * (hi - lo);
-  lo -= pad, hi += pad;
-  const double t0 = dates.front().day, t1 = std::max(dates.back().day, t0 + 1);
-  auto sx = [&](double t) { return left + (t - t0) / (t1 - t0) * (width - left - right); };
-  auto sy = [&](double v) { return top + (hi - v) / (hi - lo) * (height - top - bottom); };
-  // axes and ticks
-  svg += fmt::format("<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\" stroke=\"none\">\n");
-  const double step = nice_step(hi - lo, 5);
-  for (double v = std::ceil(lo / step) * step; v <= hi; v += step) {
-    svg += fmt::format("<line x1=\"{:.1f}\" x2=\"{:.1f}\" y1=\"{:.1f}\" y2=\"{:.1f}\" stroke=\"#e3e3e3\"/>", left,
-                       width - right, sy(v), sy(v));
-    svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\" text-anchor=\"end\">{:g}</text>\n", left - 4, sy(v) + 4,
-                       std::abs(v) < step * 1e-6 ? 0.0 : v);
-  }
-  for (int year = civil_from_days(std::int64_t(t0)).year; ; ++year) {
-    const double t = double(days_from_civil(year, 1, 1));
-    if (t > t1) break;
-    if (t < t0) continue;
-    svg += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.1f}\" y2=\"{2:.1f}\" stroke=\"#bbbbbb\"/>", sx(t),
-                       top, height - bottom);
-    svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\">{}</text>\n", sx(t) + 3, height - bottom + 14, year);
-  }
-  svg += fmt::format("<text x=\"12\" y=\"{:.1f}\" transform=\"rotate(-90 12 {:.1f})\" text-anchor=\"middle\">{}</text>\n",
-                     (top + height - bottom) / 2, (top + height - bottom) / 2, unit.empty() ? "value" : unit);
-  svg += "</g>\n";
+  const Frame frame(width, height, dates.front().day, dates.back().day, lo, hi);
+  const double left = frame.left;
+  auto sx = [&](double t) { return frame.x(t); };
+  auto sy = [&](double v) { return frame.y(v); };
+  svg += frame.axes(unit);
   // +-1 sd band: upper edge forward, lower edge back, over each run of dates with a curve
   std::vector<std::vector<const PlotDate*>> runs(1);
   for (const PlotDate& d : dates) {
@@ -76,20 +112,8 @@ std::string time_series_svg(const std::vector<PlotDate>& dates, const std::strin
     svg += "<polygon class=\"sd-band\" fill=\"#56b4e9\" fill-opacity=\"0.3\" stroke=\"none\" points=\"" + points + "\"/>\n";
   }
   auto polyline = [&](auto get, const char* cls, const char* colour, const char* dash) {
-    std::string out, points;
-    auto flush = [&] {
-      if (!points.empty())
-        out += fmt::format("<polyline class=\"{}\" fill=\"none\" stroke=\"{}\" stroke-width=\"1.6\" {} points=\"{}\"/>\n",
-                           cls, colour, dash, points);
-      points.clear();
-    };
-    for (const PlotDate& d : dates) {
-      const double v = get(d);
-      if (std::isfinite(v)) points += fmt::format("{:.1f},{:.1f} ", sx(d.day), sy(v));
-      else flush();
-    }
-    flush();
-    return out;
+    return broken_line(dates.size(), [&](std::size_t i) { return std::pair(sx(dates[i].day), sy(get(dates[i]))); },
+                       fmt::format("class=\"{}\" stroke=\"{}\" {}", cls, colour, dash));
   };
   svg += polyline([](const PlotDate& d) { return d.synoptic; }, "synoptic", "#666666", "stroke-dasharray=\"5 3\"");
   svg += polyline([](const PlotDate& d) { return d.value; }, "filled", "#0072b2", "");
@@ -114,6 +138,60 @@ std::string time_series_svg(const std::vector<PlotDate>& dates, const std::strin
       "<line x1=\"{11}\" x2=\"{12}\" y1=\"12\" y2=\"12\" stroke=\"#666\" stroke-dasharray=\"5 3\" stroke-width=\"1.6\"/><text x=\"{13}\" y=\"16\">synoptic cycle</text></g>\n",
       left + 4, kept, left + 11, left + 110, rejected, left + 120, left + 180, left + 198, left + 202, left + 280,
       left + 300, left + 350, left + 372, left + 376);
+  return svg + "</svg>\n";
+}
+
+std::string validation_svg(const ValidationPlot& plot, const std::string& unit, int width, int height) {
+  double lo = INFINITY, hi = -INFINITY;
+  for (double v : plot.truth)
+    if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
+  for (const auto& [label, values] : plot.curves)
+    for (double v : values)
+      if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
+  std::string svg = svg_start(width, height + 16);
+  if (plot.days.empty() || !std::isfinite(lo)) return svg + "<text x=\"10\" y=\"20\">no values at this pixel</text></svg>\n";
+  Frame frame(width, height + 16, plot.days.front(), plot.days.back(), lo, hi);
+  frame.top += 16;  // two legend rows
+  svg += frame.axes(unit);
+  // Methods in the Okabe-Ito colours not used for the points and not too pale on white (blue,
+  // reddish purple, orange, sky blue), then again dashed; baselines grey and dashed.
+  static const char* colours[] = {"#0072b2", "#cc79a7", "#e69f00", "#56b4e9"};
+  // The legend in rows of 16 px above the plot, wrapping where the next entry would not fit.
+  std::string legend;
+  double legend_x = frame.left + 4, legend_y = 0;
+  auto legend_item = [&](const std::string& mark, const std::string& text) {
+    const double entry = 28 + 6.2 * double(text.size());
+    if (legend_x + entry > width - frame.right && legend_x > frame.left + 4) legend_x = frame.left + 4, legend_y += 16;
+    legend += fmt::format("<g transform=\"translate({:.0f} {:.0f})\">{}<text x=\"20\" y=\"16\">{}</text></g>",
+                          legend_x, legend_y, mark, text);
+    legend_x += entry;
+  };
+  const std::string kept = hex(flag_colour(0)), withheld = hex(flag_colour(1));
+  legend_item(fmt::format("<circle cx=\"8\" cy=\"12\" r=\"3\" fill=\"{}\"/>", kept), "observed, kept");
+  legend_item(fmt::format("<circle cx=\"8\" cy=\"12\" r=\"3.5\" fill=\"none\" stroke=\"{}\" stroke-width=\"1.6\"/>",
+                          withheld),
+              "withheld (the truth)");
+  int method = 0;
+  for (const auto& [label, values] : plot.curves) {
+    const bool baseline = label.size() >= 8 && label.compare(label.size() - 8, 8, "baseline") == 0;
+    const std::string colour = baseline ? "#666666" : colours[method % 4];
+    const std::string dash = baseline || method >= 4 ? "stroke-dasharray=\"5 3\"" : "";
+    if (!baseline) ++method;
+    const std::string attributes = fmt::format("class=\"curve\" stroke=\"{}\" {}", colour, dash);
+    svg += broken_line(values.size(), [&](std::size_t i) { return std::pair(frame.x(plot.days[i]), frame.y(values[i])); },
+                       attributes);
+    legend_item(fmt::format("<line x1=\"0\" x2=\"16\" y1=\"12\" y2=\"12\" stroke-width=\"2\" {}/>", attributes), label);
+  }
+  for (std::size_t i = 0; i < plot.days.size(); ++i) {
+    if (!std::isfinite(plot.truth[i])) continue;
+    if (plot.withheld[i])
+      svg += fmt::format("<circle class=\"withheld\" cx=\"{:.1f}\" cy=\"{:.1f}\" r=\"3.5\" fill=\"none\" stroke=\"{}\" "
+                         "stroke-width=\"1.6\"/>", frame.x(plot.days[i]), frame.y(plot.truth[i]), withheld);
+    else
+      svg += fmt::format("<circle class=\"observed\" cx=\"{:.1f}\" cy=\"{:.1f}\" r=\"2.6\" fill=\"{}\"/>",
+                         frame.x(plot.days[i]), frame.y(plot.truth[i]), kept);
+  }
+  svg += "\n<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\">" + legend + "</g>\n";
   return svg + "</svg>\n";
 }
 

@@ -1,5 +1,6 @@
 // Time-series plots of one pixel as inline SVG: observations kept and rejected, the filled
-// curve with its +-1 sd band, and the synoptic cycle.
+// curve with its +-1 sd band, and the synoptic cycle; or, for a validation, the truth kept and
+// withheld beside each method's curve.
 #pragma once
 
 #include <string>
@@ -18,5 +19,17 @@ struct PlotDate {
 /// An SVG element (width x height px) with axes, year ticks and a legend.
 std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit, int width = 760,
                             int height = 240);
+
+/// One pixel of a validation: what the input held on each date, and the curves scored on it.
+struct ValidationPlot {
+  std::vector<double> days;      // days since 1970-01-01
+  std::vector<double> truth;     // the input value (NaN where none)
+  std::vector<bool> withheld;    // withheld by the validation (truth is then the answer)
+  std::vector<std::pair<std::string, std::vector<double>>> curves;  // label, value per date
+};
+
+/// An SVG element with the kept observations as dots, the withheld ones as rings, one line per
+/// curve (methods solid, a label ending in "baseline" dashed grey) and a legend.
+std::string validation_svg(const ValidationPlot& plot, const std::string& unit, int width = 760, int height = 240);
 
 }  // namespace kalends::detail

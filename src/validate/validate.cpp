@@ -6,6 +6,7 @@
 #include <algorithm>
 #include <cmath>
 #include <filesystem>
+#include <fstream>
 #include <fmt/format.h>
 #include <map>
 #include <numeric>
@@ -170,6 +171,40 @@ std::string score_json(const Score& s, const std::string& indent) {
   return j + "}";
 }
 
+// A CSV cell: the shortest text that reads back as the same float; empty where none.
+std::string csv_number(float v) { return std::isfinite(v) ? fmt::format("{}", v) : std::string(); }
+
+// The pixels shown in OUT/series.csv: most withheld values first (ties in raster order), each at
+// least a quarter of the shorter side from those taken, so that they show different places;
+// closer ones only when too few are that far apart. Every one keeps an observation, so a curve
+// has something to fit.
+std::vector<std::size_t> series_pixels(const std::vector<std::uint8_t>& withheld, const Cube& held, int wanted) {
+  const std::size_t plane = held.plane();
+  std::vector<std::pair<int, std::size_t>> ranked;  // (-withheld count, pixel)
+  for (std::size_t p = 0; p < plane; ++p) {
+    int count = 0;
+    bool kept = false;
+    for (int t = 0; t < held.dates; ++t) {
+      count += withheld[std::size_t(t) * plane + p];
+      kept |= std::isfinite(held.at(t)[p]) != 0;
+    }
+    if (count > 0 && kept) ranked.emplace_back(-count, p);
+  }
+  std::sort(ranked.begin(), ranked.end());
+  std::vector<std::size_t> chosen;
+  const int apart = std::min(held.width, held.height) / 4;
+  for (int spacing : {apart, 0})
+    for (const auto& [count, p] : ranked) {
+      if (int(chosen.size()) >= wanted) return chosen;
+      const int x = int(p % held.width), y = int(p / held.width);
+      const bool far = std::all_of(chosen.begin(), chosen.end(), [&](std::size_t q) {
+        return q != p && std::max(std::abs(int(q % held.width) - x), std::abs(int(q / held.width) - y)) >= spacing;
+      });
+      if (far && std::find(chosen.begin(), chosen.end(), p) == chosen.end()) chosen.push_back(p);
+    }
+  return chosen;
+}
+
 }  // namespace
 
 ValidateReport run_validate(const ValidateRequest& request) {
@@ -178,6 +213,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   if (!(request.withhold > 0 && request.withhold < 1))
     throw UsageError("--withhold", "must be between 0 and 1");
   if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
+  if (request.series_pixels < 0) throw UsageError("--series", "must be 0 or more");
   std::map<std::string, MethodParameters> parameters;
   for (const std::string& m : request.methods) {
     if (parameters.count(m)) throw UsageError("--methods", "'" + m + "' is named twice");
@@ -272,6 +308,20 @@ ValidateReport run_validate(const ValidateRequest& request) {
     throw InputError(request.input, "every date misses the same cells (a fixed mask such as sea or "
                                     "the area outside a boundary), so no other date's mask withholds an "
                                     "observed value: there is nothing to score");
+
+  const std::vector<std::size_t> shown = series_pixels(withheld, held, request.series_pixels);
+  // Each curve of OUT/series.csv: the values and sds of the shown pixels, date by date.
+  std::vector<std::pair<std::string, std::vector<float>>> curves;
+  auto keep_curve = [&](const std::string& label, const Cube& estimate, const Cube* sd) {
+    std::vector<float> v, s;
+    for (std::size_t p : shown)
+      for (int t = 0; t < dates; ++t) {
+        v.push_back(estimate.at(t)[p]);
+        s.push_back(sd ? sd->at(t)[p] : NAN);
+      }
+    curves.emplace_back(label, std::move(v));
+    if (sd) curves.emplace_back(label + "_sd", std::move(s));
+  };
 
   // The withheld stack on disk, for the methods (run as `kalends fill` would run them).
   // OUT/work is validate's own (a marker file says so): an earlier run's is replaced, a folder of
@@ -392,6 +442,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
     const Cube value = read_band(paths, 1, grid.width, grid.height);
     const Cube sd = read_band(paths, 2, grid.width, grid.height);
     report.scores.push_back(score_cube(method, value, &sd, false));
+    keep_curve(method, value, &sd);
     report.scores.back().parameters = parameters[method];
     report.scores.back().not_fitted = filled.series_not_fitted;
     if (!request.keep_work) fs::remove_all(work / method, ec);
@@ -449,6 +500,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   report.scores.push_back(score_cube("that mean + spatially interpolated anomaly", climate_anomaly, nullptr, true));
   report.scores.push_back(score_cube("GDAL FillNodata, date by date", spatial, nullptr, true));
   report.scores.push_back(score_cube("combined baseline", combined, nullptr, true));
+  keep_curve("combined_baseline", combined, nullptr);
   if (!request.keep_work) fs::remove_all(work, ec);
 
   // Reports.
@@ -465,6 +517,13 @@ ValidateReport run_validate(const ValidateRequest& request) {
       "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"observed\": {},\n"
       "  \"withheld\": {},\n  \"transplanted_masks\": {},\n  \"neighbourhood_radius\": {},\n",
       dates, grid.width, grid.height, observed, count, masks, request.neighbourhood_radius);
+  json += "  \"series_pixels\": [";
+  for (std::size_t i = 0; i < shown.size(); ++i) {
+    const int column = area.x + int(shown[i] % grid.width), row = area.y + int(shown[i] / grid.width);
+    report.series_pixels.emplace_back(column, row);
+    json += fmt::format("{}[{}, {}]", i ? ", " : "", column, row);
+  }
+  json += "],\n";
   json += "  \"scores\": [\n";
   for (std::size_t i = 0; i < report.scores.size(); ++i)
     json += "    " + score_json(report.scores[i], "    ") + (i + 1 < report.scores.size() ? ",\n" : "\n");
@@ -517,6 +576,34 @@ ValidateReport run_validate(const ValidateRequest& request) {
                                  : fmt::format(" {:.4f} ({:.0f} %, n={}) |", sub.rmse, 100 * sub.coverage, sub.cells);
       md += "\n";
     }
+  }
+  // The truth beside each method's fill at the shown pixels: empty `truth` where the input has no
+  // (QA-kept) value, `withheld` 1 where validation removed it.
+  std::string csv = "column,row,date,truth,withheld";
+  for (const auto& [label, values] : curves) {
+    csv += ',';
+    csv += label;
+  }
+  csv += "\n";
+  for (std::size_t i = 0; i < shown.size(); ++i)
+    for (int t = 0; t < dates; ++t) {
+      const std::size_t cell = std::size_t(t) * plane + shown[i];
+      csv += fmt::format("{},{},{},{},{}", report.series_pixels[i].first, report.series_pixels[i].second,
+                         stack.layers()[t].time.label(), csv_number(truth.v[cell]), int(withheld[cell]));
+      for (const auto& [label, values] : curves) {
+        csv += ',';
+        csv += csv_number(values[i * dates + t]);
+      }
+      csv += "\n";
+    }
+  const fs::path series_file = fs::path(request.out_dir) / "series.csv";
+  if (!shown.empty()) {
+    detail::write_text_atomically(series_file.string(), csv);
+  } else if (fs::exists(series_file, ec)) {  // an earlier run's, no longer true; not a file of the user's
+    std::ifstream earlier(series_file);
+    std::string header;
+    std::getline(earlier, header);
+    if (header.rfind("column,row,date,truth,withheld", 0) == 0) fs::remove(series_file, ec);
   }
   detail::write_text_atomically((fs::path(request.out_dir) / "report.json").string(), json);
   detail::write_text_atomically((fs::path(request.out_dir) / "report.md").string(), md);

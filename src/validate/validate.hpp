@@ -30,6 +30,7 @@ struct ValidateRequest {
   std::int64_t memory_ceiling = 0;  // as FillRequest::memory_ceiling, for each fill
   int threads = 0;
   bool keep_work = false;        // keep the withheld stack and the fills under OUT/work
+  int series_pixels = 3;         // pixels whose truth and fills go to OUT/series.csv (0: none)
 };
 
 struct Score {
@@ -51,9 +52,11 @@ struct ValidateReport {
   std::int64_t memory_raised_to = 0;  // the largest budget a fill took beyond memory_bytes; 0 if none
   int dates = 0, width = 0, height = 0, transplanted_masks = 0;
   std::vector<Score> scores;
+  std::vector<std::pair<int, int>> series_pixels;  // column, row of the input grid, in OUT/series.csv
 };
 
-/// Runs the validation and writes OUT/report.json and OUT/report.md (atomically).
+/// Runs the validation and writes OUT/report.json, OUT/report.md and, for a few pixels with many
+/// withheld values, OUT/series.csv (atomically).
 ValidateReport run_validate(const ValidateRequest& request);
 
 }  // namespace kalends

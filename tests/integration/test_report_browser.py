@@ -78,7 +78,10 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertTrue("validate/report.md" in self.page, "no validation report")
         self.assertIn("whittaker", self.page.split('id="validation"')[1].split("</section>")[0])
         self.assertTrue("fill/fill-summary.json" in self.page, "no fill statistics")
-        self.assertEqual(self.page.count('<svg xmlns="http://www.w3.org/2000/svg" width="760"'), 3)
+        # Three pixels' time series, and the three pixels of the validation's series.csv.
+        svg = '<svg xmlns="http://www.w3.org/2000/svg" width="760"'
+        self.assertEqual(self.page.split('id="time-series"')[1].count(svg), 3)
+        self.assertEqual(self.page.split('id="validation"')[1].split("</section>")[0].count(svg), 3)
         self.assertTrue("synoptic cycle from seasons.ndvi_synoptic_mean" in self.page, "no synoptic cycle")
         # Each map says where and when it is: the grid, and the dates or years it spans.
         dates = sorted(os.path.basename(p)[5:15] for p in glob.glob(os.path.join(
@@ -112,7 +115,7 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertGreaterEqual(total, 4)
         self.assertEqual(loaded, total)
         self.assertEqual(sections, SECTIONS)
-        self.assertEqual(plots, 3)
+        self.assertEqual(plots, 3 + 3)  # the --pixels time series, the validation's pixels
 
     def test_screenshot_shows_a_page(self):
         shot = os.path.join(self.tmp, "shot.png")

@@ -12,8 +12,10 @@ marks them). These are checks of the mechanics, not of accuracy.
 
 Run: /usr/bin/python3 -m unittest -v tests/integration/test_validate_options.py
 """
+import csv
 import glob
 import json
+import re
 import os
 import shutil
 import sys
@@ -164,6 +166,87 @@ class ValidateOptions(kt.TempDirTestCase):
                                    "--out", own] + extra)
             self.assertEqual(done.returncode, 0, done.stderr)
         self.assertFalse(os.path.exists(os.path.join(own, "work")))
+
+    def test_series_csv_holds_the_truth_and_each_fill_at_the_most_withheld_pixels(self):
+        # OUT/series.csv: for the pixels with the most withheld values, every date's input value
+        # (read here with GDAL), whether validation withheld it (the withheld stack it keeps in
+        # OUT/work) and each method's value and sd (its fill in OUT/work). With --subset, columns
+        # and rows are those of the input grid.
+        g = kt.gdal()
+        out = os.path.join(self.tmp, "v_series")
+        report = validate(self, os.path.join(self.premasked, "ndvi_*.tif"), out, "--subset", "7,5,30,28",
+                          "--keep-work", "--series", "2")
+        with open(os.path.join(out, "series.csv")) as f:
+            rows = list(csv.DictReader(f))
+        self.assertEqual(list(rows[0].keys()),
+                         ["column", "row", "date", "truth", "withheld", "whittaker", "whittaker_sd",
+                          "combined_baseline"])
+        pixels = sorted({(int(r["column"]), int(r["row"])) for r in rows})
+        self.assertEqual(len(pixels), 2)
+        self.assertEqual(sorted(map(tuple, report["series_pixels"])), pixels)
+        originals = sorted(glob.glob(os.path.join(self.premasked, "ndvi_*.tif")))
+        held = sorted(glob.glob(os.path.join(out, "work", "input", "*.tif")))
+        fills = sorted(glob.glob(os.path.join(out, "work", "whittaker", "*.tif")))
+        self.assertEqual(len(rows), 2 * len(originals))
+
+        def as_float(ds_path, band=1):
+            ds = g.Open(ds_path)
+            b = ds.GetRasterBand(band)
+            a = b.ReadAsArray().astype(np.float64)
+            if b.GetNoDataValue() is not None:
+                a[a == b.GetNoDataValue()] = np.nan
+            return a * (b.GetScale() or 1) + (b.GetOffset() or 0)
+
+        truth = np.stack([as_float(p)[5:33, 7:37] for p in originals])
+        withheld = np.isfinite(truth) & ~np.isfinite(np.stack([as_float(p) for p in held]))
+        value = np.stack([as_float(p, 1) for p in fills])
+        sd = np.stack([as_float(p, 2) for p in fills])
+        counts = withheld.sum(axis=0)
+        kept = (np.isfinite(truth) & ~withheld).any(axis=0)
+        first_column, first_row = report["series_pixels"][0]
+        self.assertEqual(counts[first_row - 5, first_column - 7], counts[kept].max())
+        self.assertGreater(counts[kept].max(), 0)
+        for r in rows:
+            c, y = int(r["column"]) - 7, int(r["row"]) - 5
+            t = originals.index(next(p for p in originals if r["date"] in os.path.basename(p)))
+            if np.isfinite(truth[t, y, c]):
+                self.assertAlmostEqual(float(r["truth"]), truth[t, y, c], places=6)
+            else:
+                self.assertEqual(r["truth"], "")
+            self.assertEqual(r["withheld"], "1" if withheld[t, y, c] else "0")
+            for column, cube in (("whittaker", value), ("whittaker_sd", sd)):
+                if np.isfinite(cube[t, y, c]):
+                    self.assertEqual(np.float32(r[column]), np.float32(cube[t, y, c]), (r, column))
+                else:
+                    self.assertEqual(r[column], "")
+        # --series 0 writes none and removes the earlier run's.
+        validate(self, os.path.join(self.premasked, "ndvi_*.tif"), out, "--series", "0")
+        self.assertFalse(os.path.exists(os.path.join(out, "series.csv")))
+
+    def test_report_draws_the_withheld_values(self):
+        # kalends report shows each series.csv pixel: one ring per withheld value with a truth,
+        # and in the caption the RMSE of each curve on them (recomputed here with numpy).
+        site = os.path.join(self.tmp, "site")
+        stack = os.path.join(self.premasked, "ndvi_*.tif")
+        done = kt.run_kalends(["-q", "fill", stack, "--out", os.path.join(site, "filled")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        validate(self, stack, os.path.join(site, "validation"))
+        done = kt.run_kalends(["report", site, "--html", os.path.join(site, "report.html")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("(3 pixel plots)", done.stdout)
+        with open(os.path.join(site, "report.html")) as f:
+            html = f.read()
+        with open(os.path.join(site, "validation", "series.csv")) as f:
+            rows = list(csv.DictReader(f))
+        scored = [r for r in rows if r["withheld"] == "1" and r["truth"] != ""]
+        self.assertEqual(html.count('class="withheld"'), len(scored))
+        for (c, y) in sorted({(r["column"], r["row"]) for r in rows}):
+            mine = [r for r in scored if (r["column"], r["row"]) == (c, y)]
+            errors = [float(r["whittaker"]) - float(r["truth"]) for r in mine if r["whittaker"] != ""]
+            caption = re.search(r"pixel column %s, row %s: %d values? withheld; RMSE on them: whittaker ([0-9.]+)"
+                                % (c, y, len(mine)), html)
+            self.assertIsNotNone(caption, (c, y))
+            self.assertAlmostEqual(float(caption.group(1)), float(np.sqrt(np.mean(np.square(errors)))), places=4)
 
 if __name__ == "__main__":
     unittest.main()
