@@ -219,8 +219,12 @@ Plots validation_series_html(const fs::path& csv, const fs::path& root) {
   std::vector<std::pair<std::pair<int, int>, ValidationPlot>> pixels;
   while (std::getline(in, line)) {
     const std::vector<std::string> cells = split(line);
-    const std::optional<TimePoint> when = date_from_name(cells[std::min<std::size_t>(2, cells.size() - 1)]);
-    if (cells.size() != header.size() || !when) continue;
+    if (cells.size() != header.size()) continue;
+    // A date label, "YYYY-MM-DD" or, off midnight, "YYYY-MM-DDTHHMM".
+    std::optional<TimePoint> when = date_from_name(cells[2]);
+    if (!when) continue;
+    if (cells[2].size() == 15 && cells[2][10] == 'T')
+      when->seconds += 3600 * std::atoi(cells[2].substr(11, 2).c_str()) + 60 * std::atoi(cells[2].substr(13, 2).c_str());
     const std::pair<int, int> at{std::atoi(cells[0].c_str()), std::atoi(cells[1].c_str())};
     if (pixels.empty() || pixels.back().first != at) {
       pixels.push_back({at, {}});

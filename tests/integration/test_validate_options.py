@@ -248,5 +248,34 @@ class ValidateOptions(kt.TempDirTestCase):
             self.assertIsNotNone(caption, (c, y))
             self.assertAlmostEqual(float(caption.group(1)), float(np.sqrt(np.mean(np.square(errors)))), places=4)
 
+    def test_report_places_hourly_dates_at_their_hour(self):
+        # A stack of hourly layers labels its dates "YYYY-MM-DDTHHMM": the report places each at
+        # its hour, not all at midnight. The series.csv of a daily validation, relabelled as
+        # consecutive hours, must give rings and dots at increasing x, one per hour.
+        site = os.path.join(self.tmp, "hourly-site")
+        stack = os.path.join(self.premasked, "ndvi_*.tif")
+        done = kt.run_kalends(["-q", "fill", stack, "--out", os.path.join(site, "filled")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        validate(self, stack, os.path.join(site, "validation"), "--series", "1")
+        path = os.path.join(site, "validation", "series.csv")
+        with open(path) as f:
+            lines = f.read().splitlines()
+        relabelled = [lines[0]]
+        for hour, line in enumerate(lines[1:25]):
+            cells = line.split(",")
+            cells[2] = "2031-03-04T%02d00" % hour
+            relabelled.append(",".join(cells))
+        with open(path, "w") as f:
+            f.write("\n".join(relabelled) + "\n")
+        html_path = os.path.join(site, "report.html")
+        done = kt.run_kalends(["-q", "report", site, "--html", html_path])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html_path) as f:
+            validation = f.read().split('id="validation"')[1].split("</section>")[0]
+        xs = [float(x) for x in re.findall(r'<circle class="(?:withheld|observed)" cx="([0-9.]+)"', validation)]
+        shown = sum(1 for line in relabelled[1:] if line.split(",")[3] != "")
+        self.assertEqual(len(xs), shown)
+        self.assertEqual(len(set(xs)), shown, xs)
+
 if __name__ == "__main__":
     unittest.main()
