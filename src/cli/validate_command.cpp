@@ -83,7 +83,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
                      label(s), width, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
         }
       }
-      fmt::print("  -> {}/report.json, {}/report.md\n", r.out_dir, r.out_dir);
+      fmt::print("  -> {0}/report.json, {0}/report.md{1}\n", r.out_dir,
+                 report.series_pixels.empty() ? "" : fmt::format(", {}/series.csv", r.out_dir));
     }
   };
 }

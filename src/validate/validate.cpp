@@ -553,6 +553,12 @@ ValidateReport run_validate(const ValidateRequest& request) {
                        s.rms_error_over_sd >= 0 ? fmt::format("{:.2f}", s.rms_error_over_sd) : "-");
   };
   for (const Score& s : report.scores) md += row(s);
+  if (!shown.empty()) {
+    md += "\nseries.csv holds every date's truth and each fill at the pixels (column, row)";
+    for (std::size_t i = 0; i < report.series_pixels.size(); ++i)
+      md += fmt::format("{} {}, {}", i ? ";" : "", report.series_pixels[i].first, report.series_pixels[i].second);
+    md += ": those with the most withheld values.\n";
+  }
   md += "\nSettings:";
   for (const Score& s : report.scores)
     if (!s.parameters.empty()) md += "\n- " + s.name + ": " + join_parameters(s.parameters);

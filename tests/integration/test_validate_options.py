@@ -219,6 +219,9 @@ class ValidateOptions(kt.TempDirTestCase):
                     self.assertEqual(np.float32(r[column]), np.float32(cube[t, y, c]), (r, column))
                 else:
                     self.assertEqual(r[column], "")
+        with open(os.path.join(out, "report.md")) as f:
+            self.assertIn("at the pixels (column, row) %d, %d; %d, %d: those with the most withheld values"
+                          % tuple(report["series_pixels"][0] + report["series_pixels"][1]), f.read())
         # --series 0 writes none and removes the earlier run's.
         validate(self, os.path.join(self.premasked, "ndvi_*.tif"), out, "--series", "0")
         self.assertFalse(os.path.exists(os.path.join(out, "series.csv")))
