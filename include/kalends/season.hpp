@@ -60,7 +60,31 @@ struct Peak {
 };
 std::vector<Peak> find_peaks(std::span<const double> x, double min_prominence);
 
-/// Amplitude and the day of year of the first peak of one harmonic.
+/// Where a year's periods lie in days: each period's middle day as a day of year (1 January
+/// = 1; January's middle is day 16, the 16-day period from day 193 has its middle at 200.5), on
+/// a 365-day year. A fractional position between two periods (a harmonic's peak, a season's
+/// edge) lies between their middles, linearly; positions before or after the year continue
+/// into the neighbouring years.
+class PeriodDays {
+ public:
+  /// The periods of a calendar in a year of 365 days.
+  static PeriodDays of_calendar(const CalendarPeriod& calendar);
+  /// `count` equal periods of 365 / count days.
+  static PeriodDays equal(int count);
+  int count() const { return int(first_.size()); }
+  /// Day of year of a position (period index, fractional, any sign), not wrapped.
+  double day(double position) const;
+  /// The same wrapped into [1, 366).
+  double day_of_year(double position) const;
+  /// Days of period `index` (wrapped into the year).
+  double length(int index) const;
+
+ private:
+  std::vector<double> first_, days_;  // first day of year (1-based) and length of each period
+};
+
+/// Amplitude and the day of year of the first peak of one harmonic (NaN where the amplitude is
+/// nil: the phase of a zero harmonic is rounding noise).
 struct Harmonic {
   double amplitude = 0;
   double peak_doy = 0;
@@ -75,9 +99,10 @@ class HarmonicAnalysis {
   HarmonicAnalysis(const HarmonicAnalysis&) = delete;
   HarmonicAnalysis& operator=(const HarmonicAnalysis&) = delete;
   int length() const { return length_; }
-  /// `series` (length()) -> the annual (k = 1) and semi-annual (k = 2) harmonics. Period k's
-  /// centre is taken as day of year 1 + (k + 0.5) * 365.25 / length.
-  std::array<Harmonic, 2> analyse(std::span<const double> series, std::span<double> scratch_real,
+  /// `series` (length()) -> the annual (k = 1) and semi-annual (k = 2) harmonics, peak days
+  /// placed by `days` (of length() periods).
+  std::array<Harmonic, 2> analyse(std::span<const double> series, const PeriodDays& days,
+                                  std::span<double> scratch_real,
                                   std::span<std::complex<double>> scratch_spectrum) const;
 
  private:
@@ -103,10 +128,10 @@ struct CycleDescriptors {
 };
 
 /// Describes one year given `padded` = [previous cycle | the year | next cycle], each of
-/// `periods` values (use the year itself cyclically where a neighbouring year is missing).
+/// `days.count()` values (use the year itself cyclically where a neighbouring year is missing).
 /// Peaks and season edges are searched on the padded series, so a season that spans
 /// 1 January is not cut; a season belongs to the year that holds its peak.
-CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
+CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays& days,
                                 const CycleOptions& options, const HarmonicAnalysis& harmonics);
 
 }  // namespace kalends

@@ -2,8 +2,12 @@
 //
 // Harmonics: the discrete Fourier transform X_k = sum_n x_n exp(-2 pi i k n / N) of the year's
 // N regular values (FFTW's r2c transform, which computes exactly this sum); harmonic k has
-// amplitude 2 |X_k| / N and, as x_n ~ A cos(2 pi k n / N + arg X_k), its first peak at
-// n* = (-arg X_k / (2 pi k) mod 1) * N / k.
+// amplitude 2 |X_k| / N and, as x_n ~ A cos(2 pi k n / N + arg X_k), its first peak where
+// 2 pi k n / N + arg X_k = 0 (mod 2 pi): n* = (-arg X_k / (2 pi) mod 1) * N / k.
+//
+// Days: a position n (a period index, fractional between periods) becomes a day of year through
+// the periods' middle days (PeriodDays), so that 16-day periods, whose last one is shorter, and
+// months of unequal length are placed where they are.
 //
 // Seasons: peaks whose prominence (peaks.cpp) is at least `prominence_share` of the year's
 // amplitude (max - min). For each, the base on either side is the lowest value between it and
@@ -11,7 +15,7 @@
 // through base + threshold_share (peak - base) and ends where it falls through it, linearly
 // interpolated between periods. This amplitude-threshold rule is common practice; no single
 // published standard fixes the share (default 50 %). The integral sums (value - base) over the
-// periods inside the season, times the period length in days.
+// periods inside the season, times each period's length in days.
 #include <fftw3.h>
 
 #include <algorithm>
@@ -30,8 +34,51 @@ std::mutex& planner_mutex() {
   static std::mutex mutex;
   return mutex;
 }
-constexpr double year_days = 365.25;
+constexpr double year_days = 365;  // the year PeriodDays places periods in
 }  // namespace
+
+PeriodDays PeriodDays::of_calendar(const CalendarPeriod& calendar) {
+  PeriodDays d;
+  const std::int64_t jan1 = days_from_civil(2001, 1, 1);  // a year of 365 days
+  for (const Period& p : periods_of_year(2001, calendar)) {
+    d.first_.push_back(double(p.first_day - jan1 + 1));
+    d.days_.push_back(p.days);
+  }
+  return d;
+}
+
+PeriodDays PeriodDays::equal(int count) {
+  PeriodDays d;
+  for (int k = 0; k < count; ++k) {
+    d.first_.push_back(1.0 + k * year_days / count);
+    d.days_.push_back(year_days / count);
+  }
+  return d;
+}
+
+double PeriodDays::length(int index) const {
+  const int n = count();
+  return days_[std::size_t(((index % n) + n) % n)];
+}
+
+double PeriodDays::day(double position) const {
+  // The middle day of period k, continued into the neighbouring years.
+  const int n = count();
+  auto middle = [&](int k) {
+    const int cycles = int(std::floor(double(k) / n));
+    const std::size_t i = std::size_t(k - cycles * n);
+    return first_[i] + (days_[i] - 1) / 2 + cycles * year_days;
+  };
+  const int below = int(std::floor(position));
+  const double f = position - below;
+  return middle(below) + f * (middle(below + 1) - middle(below));
+}
+
+double PeriodDays::day_of_year(double position) const {
+  double d = std::fmod(day(position) - 1.0, year_days);
+  if (d < 0) d += year_days;
+  return d + 1.0;
+}
 
 HarmonicAnalysis::HarmonicAnalysis(int length) : length_(length) {
   if (length < 4) throw std::invalid_argument("harmonic analysis needs at least 4 periods a year");
@@ -46,7 +93,7 @@ HarmonicAnalysis::~HarmonicAnalysis() {
   fftw_destroy_plan(static_cast<fftw_plan>(plan_));
 }
 
-std::array<Harmonic, 2> HarmonicAnalysis::analyse(std::span<const double> series,
+std::array<Harmonic, 2> HarmonicAnalysis::analyse(std::span<const double> series, const PeriodDays& days,
                                                   std::span<double> real,
                                                   std::span<std::complex<double>> spectrum) const {
   std::copy(series.begin(), series.end(), real.begin());
@@ -54,35 +101,27 @@ std::array<Harmonic, 2> HarmonicAnalysis::analyse(std::span<const double> series
                        reinterpret_cast<fftw_complex*>(spectrum.data()));
   std::array<Harmonic, 2> result;
   const double n = length_;
+  double largest = 0;
+  for (double v : series) largest = std::max(largest, std::abs(v));
   for (int k = 1; k <= 2; ++k) {
     const std::complex<double> x = spectrum[k];
     result[k - 1].amplitude = 2.0 * std::abs(x) / n;
-    double turn = -std::arg(x) / (2 * std::numbers::pi * k);
+    // A harmonic lost in the rounding of the values (a flat series) has no peak.
+    if (!(result[k - 1].amplitude > 1e-12 * std::max(1.0, largest))) {
+      result[k - 1].peak_doy = NAN;
+      continue;
+    }
+    double turn = -std::arg(x) / (2 * std::numbers::pi);
     turn -= std::floor(turn);  // in [0, 1)
-    const double n_peak = turn * n / k;
-    result[k - 1].peak_doy = 1.0 + (n_peak + 0.5) * year_days / n;
+    result[k - 1].peak_doy = days.day_of_year(turn * n / k);
   }
   return result;
 }
 
-namespace {
-
-double doy_of_position(double position, int periods) {
-  return 1.0 + (position + 0.5) * year_days / periods;
-}
-
-double wrap_doy(double doy) {
-  double d = std::fmod(doy - 1.0, year_days);
-  if (d < 0) d += year_days;
-  return d + 1.0;
-}
-
-}  // namespace
-
-CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
+CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays& days,
                                 const CycleOptions& options, const HarmonicAnalysis& harmonics) {
   CycleDescriptors d;
-  const int P = periods;
+  const int P = days.count();
   const auto year = padded.subspan(P, P);
   for (double v : year)
     if (!std::isfinite(v)) return d;
@@ -94,7 +133,7 @@ CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
   d.amplitude = d.max - d.min;
   std::vector<double> real(P);
   std::vector<std::complex<double>> spectrum(P / 2 + 1);
-  const auto h = harmonics.analyse(year, real, spectrum);
+  const auto h = harmonics.analyse(year, days, real, spectrum);
   d.annual = h[0];
   d.semiannual = h[1];
   if (!(d.amplitude > 0)) return d;
@@ -112,9 +151,8 @@ CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
   std::size_t main = in_year.front();
   for (std::size_t k : in_year)
     if (x[all[k].index] > x[all[main].index]) main = k;
-  d.main_peak_doy = doy_of_position(all[main].index - P, P);
+  d.main_peak_doy = days.day_of_year(all[main].index - P);
 
-  const double period_days = year_days / P;
   for (std::size_t s = 0; s < std::min<std::size_t>(2, in_year.size()); ++s) {
     const std::size_t k = in_year[s];
     const int peak = all[k].index;
@@ -139,11 +177,11 @@ CycleDescriptors describe_cycle(std::span<const double> padded, int periods,
     const double base = std::min(left_base, right_base);
     double integral = 0;
     for (int j = int(std::ceil(start)); j <= int(std::floor(end)); ++j)
-      integral += std::max(0.0, x[j] - base) * period_days;
+      integral += std::max(0.0, x[j] - base) * days.length(j);
     SeasonTiming& t = d.season[s];
-    t.start_doy = wrap_doy(doy_of_position(start - P, P));
-    t.end_doy = wrap_doy(doy_of_position(end - P, P));
-    t.length_days = (end - start) * period_days;
+    t.start_doy = days.day_of_year(start - P);
+    t.end_doy = days.day_of_year(end - P);
+    t.length_days = days.day(end - P) - days.day(start - P);
     t.integral = integral;
   }
   return d;

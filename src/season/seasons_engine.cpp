@@ -177,6 +177,20 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     if (f != not_written)
       for (auto& b : specs[f].bands) b.unit = unit;
   for (std::size_t f : {synoptic_mean, synoptic_sd}) for (auto& b : specs[f].bands) b.unit = unit;
+  // Cycle bands: values in the input's unit, days of year, lengths in days, integrals in
+  // unit x days; the season count has none.
+  std::vector<std::size_t> cycles{cycle_synoptic};
+  for (std::size_t f : cycle_file)
+    if (f != not_written) cycles.push_back(f);
+  for (std::size_t f : cycles)
+    for (auto& b : specs[f].bands) {
+      const std::string& n = b.description;
+      b.unit = n.ends_with("_doy")     ? "day of year"
+               : n.ends_with("_days")  ? "days"
+               : n.ends_with("integral") ? (unit.empty() ? "days" : unit + " days")
+               : n == "seasons"        ? ""
+                                       : unit;
+    }
 
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
   const std::int64_t bytes_per_pixel = std::int64_t(times.size()) * 4 + 4 + std::int64_t(total_bands) * 4;
@@ -192,6 +206,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);
   outputs.set_origin(area.x, area.y);
   const HarmonicAnalysis harmonics(P);
+  const PeriodDays period_days = PeriodDays::of_calendar(request.period);
 
   tbb::enumerable_thread_specific<Worker> workers([&] {
     Worker w;
@@ -269,10 +284,10 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
           const int yy = y + q / P - 1;
           w.padded[q] = yy >= 0 && yy < years ? value[std::size_t(yy) * P + q % P] : NAN;
         }
-        put_cycle(cycle_file[y], p, describe_cycle(w.padded, P, request.cycle, harmonics));
+        put_cycle(cycle_file[y], p, describe_cycle(w.padded, period_days, request.cycle, harmonics));
       }
       for (int q = 0; q < 3 * P; ++q) w.padded[q] = mean[q % P];
-      const CycleDescriptors synoptic_cycle = describe_cycle(w.padded, P, request.cycle, harmonics);
+      const CycleDescriptors synoptic_cycle = describe_cycle(w.padded, period_days, request.cycle, harmonics);
       put_cycle(cycle_synoptic, p, synoptic_cycle);
       bool any = false;
       for (int q = 0; q < P; ++q)

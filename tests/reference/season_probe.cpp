@@ -3,6 +3,7 @@
 //
 //   peaks PROMINENCE N x...            -> indices and prominences (find_peaks)
 //   harmonics N x...                   -> annual and semi-annual amplitude and peak day of year
+//                                         (N equal periods of 365 / N days)
 //   cycle PROMINENCE THRESHOLD P x...  -> describe_cycle on 3P padded values
 #include <cmath>
 #include <iostream>
@@ -51,7 +52,7 @@ int main() {
     const HarmonicAnalysis analysis(n);
     std::vector<double> real(n);
     std::vector<std::complex<double>> spectrum(n / 2 + 1);
-    const auto h = analysis.analyse(x, real, spectrum);
+    const auto h = analysis.analyse(x, PeriodDays::equal(n), real, spectrum);
     std::cout << "{\"annual_amplitude\": " << number(h[0].amplitude) << ", \"annual_peak_doy\": "
               << number(h[0].peak_doy) << ", \"semiannual_amplitude\": " << number(h[1].amplitude)
               << ", \"semiannual_peak_doy\": " << number(h[1].peak_doy) << "}\n";
@@ -61,7 +62,7 @@ int main() {
     std::cin >> options.prominence_share >> options.threshold_share >> p;
     const auto x = read_values(3 * p);
     const HarmonicAnalysis analysis(p);
-    const CycleDescriptors d = describe_cycle(x, p, options, analysis);
+    const CycleDescriptors d = describe_cycle(x, PeriodDays::equal(p), options, analysis);
     std::cout << "{\"mean\": " << number(d.mean) << ", \"min\": " << number(d.min) << ", \"max\": "
               << number(d.max) << ", \"amplitude\": " << number(d.amplitude) << ", \"seasons\": " << d.seasons
               << ", \"main_peak_doy\": " << number(d.main_peak_doy);

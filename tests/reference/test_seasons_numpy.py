@@ -4,8 +4,11 @@
 References:
 - peaks and prominences: scipy.signal.find_peaks / peak_prominences (SciPy 1.10), the
   definition kalends implements (src/season/peaks.cpp);
-- harmonics: numpy.fft.rfft, X_k = sum_n x_n exp(-2 pi i k n / N); amplitude 2|X_k|/N, the
-  first peak of harmonic k at n* = (-arg X_k / (2 pi k) mod 1) N / k;
+- harmonics: numpy.fft.rfft, X_k = sum_n x_n exp(-2 pi i k n / N); amplitude 2|X_k|/N; as
+  A cos(2 pi k (n - n0) / N) has X_k = (N A / 2) exp(-2 pi i k n0 / N) (the DFT definition of
+  the numpy.fft documentation), the first peak of harmonic k is at
+  n* = (-arg X_k / (2 pi) mod 1) N / k; positions become days through the periods' middle days
+  (January: day 16), computed here with datetime;
 - period means and synoptic statistics: a direct numpy computation of the same day-weighted
   means (each composite stands for the 16 days from its date, cut at the next composite);
 - NDVI = (NIR - red)/(NIR + red); EVI = 2.5 (NIR - red)/(NIR + 6 red - 7.5 blue + 1)
@@ -107,8 +110,10 @@ class Harmonics(unittest.TestCase):
                 spectrum = np.fft.rfft(x)
                 for k, key in ((1, "annual"), (2, "semiannual")):
                     amplitude = 2 * np.abs(spectrum[k]) / n
-                    turn = (-np.angle(spectrum[k]) / (2 * np.pi * k)) % 1.0
-                    peak_doy = 1 + (turn * n / k + 0.5) * YEAR / n
+                    turn = (-np.angle(spectrum[k]) / (2 * np.pi)) % 1.0
+                    # n equal periods of 365 / n days: period j's middle day is
+                    # 1 + j 365/n + (365/n - 1)/2, and days run linearly between middles.
+                    peak_doy = (0.5 + (turn * n / k + 0.5) * 365 / n - 1) % 365 + 1
                     self.assertLess(abs(ours[key + "_amplitude"] - amplitude), 1e-9 * max(1, amplitude))
                     self.assertLess(abs(ours[key + "_peak_doy"] - peak_doy), 1e-6 * peak_doy)
 
@@ -117,7 +122,16 @@ class Harmonics(unittest.TestCase):
         x = 3.0 * np.cos(2 * np.pi * (np.arange(n) - 5) / n)   # maximum in period 5 (June)
         ours = season_probe("harmonics %d\n%s\n" % (n, series_text(x)))
         self.assertAlmostEqual(ours["annual_amplitude"], 3.0, places=9)
-        self.assertAlmostEqual(ours["annual_peak_doy"], 1 + 5.5 * YEAR / 12, places=6)
+        self.assertAlmostEqual(ours["annual_peak_doy"], 0.5 + 5.5 * 365 / 12, places=6)  # period 5's middle
+        # Two peaks a year, in periods 2 and 8: the first is period 2's middle. (Before 0.3.13 the
+        # phase was divided by k twice, putting it in period 1.)
+        x = 2.0 * np.cos(2 * np.pi * 2 * (np.arange(n) - 2) / n)
+        ours = season_probe("harmonics %d\n%s\n" % (n, series_text(x)))
+        self.assertAlmostEqual(ours["semiannual_amplitude"], 2.0, places=9)
+        self.assertAlmostEqual(ours["semiannual_peak_doy"], 0.5 + 2.5 * 365 / 12, places=6)
+        # A flat series has no harmonic peak (its phase would be rounding noise).
+        ours = season_probe("harmonics %d\n%s\n" % (n, series_text(np.full(n, 0.3))))
+        self.assertTrue(np.isnan(ours["annual_peak_doy"]) and np.isnan(ours["semiannual_peak_doy"]), ours)
 
 
 def modis_dates(years, start=2010):
@@ -250,6 +264,62 @@ class SeasonsCommand(kt.TempDirTestCase):
         self.assertEqual([ds.GetRasterBand(b).GetDescription() for b in (1, 12)], ["month 01", "month 12"])
 
 
+class PeakDays(kt.TempDirTestCase):
+    """Harmonic and season peak days of `kalends seasons --period 16d` on composites that are the
+    periods themselves (dated 1 January + 16 k): a pure semi-annual wave, a pure annual wave
+    peaking just after 1 January, a flat series, and a single bump in period 'doy 193'."""
+
+    def test_peak_days_equal_numpy_on_the_periods_middle_days(self):
+        firsts = list(range(1, 366, 16))                        # 23 periods of a 365-day year
+        lengths = [min(16, 366 - f) for f in firsts]            # the last one 13 days
+        middles = np.array([f + (n - 1) / 2 for f, n in zip(firsts, lengths)])
+
+        def day_of_year(position):
+            # linear between the middles, around the year (numpy's interp with period)
+            x = np.append(np.arange(23), 23)
+            y = np.append(middles, middles[0] + 365)
+            return (np.interp(position % 23, x, y) - 1) % 365 + 1
+
+        folder = os.path.join(self.tmp, "stack")
+        os.makedirs(folder)
+        for year in (2019, 2020, 2021):
+            for j, first in enumerate(firsts):
+                day = middles[j]
+                v = [0.5 + 0.2 * np.cos(2 * np.pi * 2 * (day - 100) / 365),
+                     0.5 + 0.2 * np.cos(2 * np.pi * (day - 5) / 365),
+                     0.3,
+                     0.2 + (0.6 if j == 12 else 0.0)]
+                date = dt.date(year, 1, 1) + dt.timedelta(days=first - 1)
+                kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()),
+                                np.array([v], np.float32), geotransform=(0, 250, 0, 0, 0, -250), epsg=32736,
+                                nodata=float("nan"))
+        out = os.path.join(self.tmp, "seasons")
+        done = kt.run_kalends(["-q", "seasons", folder, "--out", out, "--period", "16d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_cycle_2020.tif"))
+        names = [ds.GetRasterBand(b).GetDescription() for b in range(1, ds.RasterCount + 1)]
+        data = ds.ReadAsArray().astype(np.float64)[:, 0, :]
+        year = np.array([[float(np.float32(0.5 + 0.2 * np.cos(2 * np.pi * k * (d - p) / 365)))
+                          for d in middles] for k, p in ((2, 100), (1, 5))])
+        for pixel, k, key in ((0, 2, "semiannual_peak_doy"), (1, 1, "annual_peak_doy")):
+            spectrum = np.fft.rfft(year[pixel])
+            turn = (-np.angle(spectrum[k]) / (2 * np.pi)) % 1.0
+            expected = day_of_year(turn * 23 / k)
+            self.assertAlmostEqual(data[names.index(key)][pixel], expected, places=3, msg=key)
+        # The semi-annual wave peaks near day 100 (its first peak), the annual one near day 5:
+        # within the spacing of the periods of the true days, and a day of year in [1, 366).
+        self.assertLess(abs(data[names.index("semiannual_peak_doy")][0] - 100), 8)
+        self.assertLess(abs(data[names.index("annual_peak_doy")][1] - 5), 8)
+        peaks = data[[names.index("annual_peak_doy"), names.index("semiannual_peak_doy")]]
+        self.assertTrue(np.all((peaks[np.isfinite(peaks)] >= 1) & (peaks[np.isfinite(peaks)] < 366)), peaks)
+        # A flat series: amplitudes 0 and no peak day.
+        self.assertLess(data[names.index("annual_amplitude")][2], 1e-9)
+        self.assertTrue(np.isnan(data[names.index("annual_peak_doy")][2]))
+        self.assertTrue(np.isnan(data[names.index("semiannual_peak_doy")][2]))
+        # The bump in the period from day 193 (to 208) peaks on its middle day.
+        self.assertEqual(data[names.index("main_peak_doy")][3], 200.5)
+
+
 class RealData(kt.TempDirTestCase):
     def test_netcdf_amplitude_and_month_of_maximum(self):
         path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
@@ -285,9 +355,21 @@ class RealData(kt.TempDirTestCase):
         self.assertGreater(land.sum(), 1000)
         np.testing.assert_allclose(data[names.index("amplitude")][land],
                                    (tas.max(0) - tas.min(0))[land], rtol=1e-5)
+        # Cycle bands carry units: the variable's for values, days of year, days, unit x days.
+        year_layer = g.Open(os.path.join(out, "tas_year_1999.tif"))   # held: a band needs its dataset
+        unit = year_layer.GetRasterBand(1).GetUnitType()
+        self.assertNotEqual(unit, "")
+        units = {n: cycle.GetRasterBand(b + 1).GetUnitType() for b, n in enumerate(names)}
+        self.assertEqual((units["mean"], units["amplitude"], units["annual_amplitude"]), (unit, unit, unit))
+        self.assertEqual((units["main_peak_doy"], units["season1_start_doy"]), ("day of year", "day of year"))
+        self.assertEqual((units["season1_length_days"], units["season1_integral"], units["seasons"]),
+                         ("days", unit + " days", ""))
+        # The main peak is the middle day of the warmest month (January: day 16, on a 365-day year).
+        middles = np.array([(dt.date(2001, m, 1).timetuple().tm_yday
+                             + (dt.date(2001 + (m == 12), m % 12 + 1, 1) - dt.timedelta(1)).timetuple().tm_yday) / 2
+                            for m in range(1, 13)])
         peak_doy = data[names.index("main_peak_doy")][land]
-        month_of_max = np.floor((peak_doy - 1) / (YEAR / 12)).astype(int)
-        np.testing.assert_array_equal(month_of_max, np.argmax(tas[:, land], axis=0))
+        np.testing.assert_array_equal(peak_doy, middles[np.argmax(tas[:, land], axis=0)])
         self.assertTrue(np.all(np.isnan(data[names.index("amplitude")][~land])))
 
     def test_compare_leaves_out_year_files_of_an_earlier_run(self):
