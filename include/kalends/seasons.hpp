@@ -48,6 +48,8 @@ struct SeasonsSummary {
   std::int64_t pixels_with_values = 0, pixels_with_cycle = 0;
   std::vector<int> periods_without_value;
   std::vector<int> stale_years_removed;  // an earlier run's year layers outside this run's years
+  /// Years whose cycle layer is empty at some pixels that have a synoptic cycle, and how many.
+  std::vector<std::pair<int, std::int64_t>> years_with_cycle_gaps;
 };
 
 /// What a user should know about a seasons run's outputs (cycle layers left empty because

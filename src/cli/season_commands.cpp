@@ -1,5 +1,7 @@
 // kalends index, kalends seasons, kalends compare
 #include <fmt/format.h>
+
+#include <cmath>
 #include <fmt/ranges.h>
 
 #include <cstdio>
@@ -116,9 +118,13 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
     const CompareSummary s = run_compare(*r);
     if (!s.stale_years.empty())
       std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): an earlier "
-                           "`kalends seasons` run left them there\n",
+                           "they are not this synoptic's\n",
                    r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.stale_years, ", ")).c_str(),
                    s.synoptic_years.c_str());
+    if (std::isnan(s.median_rmse))
+      std::fprintf(stderr, "note: %s: no pixel has a synoptic miss: it needs values of one period in two years or "
+                           "more (a synoptic of one year is that year)\n",
+                   r->seasons_dir.c_str());
     if (!global.quiet)
       fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; most pixel-periods "
                  "below -1 sd in {}, above +1 sd in {}\n  {}\n  {}\n  {}\n",

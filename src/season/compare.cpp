@@ -164,7 +164,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   std::vector<Anomaly> top;
   struct YearStats {
     double sum = 0;
-    std::size_t count = 0, below = 0, above = 0;
+    std::size_t count = 0, defined = 0, below = 0, above = 0;  // defined: a standardised anomaly
   };
   std::map<int, YearStats> per_year;
   const std::regex year_file(std::regex_replace(name, std::regex(R"([.^$|()\[\]{}*+?\\])"), R"(\$&)") +
@@ -194,9 +194,10 @@ CompareSummary run_compare(const CompareRequest& request) {
       for (std::size_t i = 0; i < z.size(); ++i) {
         if (std::isfinite(a[i])) ys.sum += a[i], ys.count++;
         if (!std::isfinite(z[i])) continue;
+        ++ys.defined;
         ys.below += z[i] < -1.0f;
         ys.above += z[i] > 1.0f;
-        if (top.size() < std::size_t(request.top) || std::abs(a[i]) > std::abs(top.back().raw)) {
+        if (request.top > 0 && (top.size() < std::size_t(request.top) || std::abs(a[i]) > std::abs(top.back().raw))) {
           top.push_back({z[i], a[i], int(i % width), int(i / width), year, period});
           std::sort(top.begin(), top.end(), [](const Anomaly& l, const Anomaly& r) {
             return std::abs(l.raw) > std::abs(r.raw);
@@ -258,10 +259,10 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const auto& [year, s] : per_year) {
     const double mean = s.count ? s.sum / double(s.count) : NAN;
     json += fmt::format("{}\n    {{\"year\": {}, \"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
-                        first ? "" : ",", year, detail::json_number(mean), detail::json_number(s.count ? double(s.below) / s.count : NAN),
-                        detail::json_number(s.count ? double(s.above) / s.count : NAN));
+                        first ? "" : ",", year, detail::json_number(mean), detail::json_number(s.defined ? double(s.below) / s.defined : NAN),
+                        detail::json_number(s.defined ? double(s.above) / s.defined : NAN));
     first = false;
-    const double below = s.count ? double(s.below) / s.count : 0, above = s.count ? double(s.above) / s.count : 0;
+    const double below = s.defined ? double(s.below) / s.defined : 0, above = s.defined ? double(s.above) / s.defined : 0;
     // A year is named only where some pixel-period lies beyond 1 sd (none can with two years).
     if (below > std::max(most_below, 0.0)) most_below = below, summary.year_most_below = std::to_string(year);
     if (above > std::max(most_above, 0.0)) most_above = above, summary.year_most_above = std::to_string(year);
@@ -293,7 +294,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
   for (const auto& [year, s] : per_year)
     md += fmt::format("| {} | {:+.4f} | {:.1f} % | {:.1f} % |\n", year, s.count ? s.sum / double(s.count) : NAN,
-                      s.count ? 100.0 * double(s.below) / s.count : NAN, s.count ? 100.0 * double(s.above) / s.count : NAN);
+                      s.defined ? 100.0 * double(s.below) / s.defined : NAN, s.defined ? 100.0 * double(s.above) / s.defined : NAN);
   if (!zones.empty()) {
     md += "\n## Zones\n\n| zone | pixels | median synoptic RMSE | median explained share |\n|---|---|---|---|\n";
     for (auto& [zone, values] : zones) {

@@ -60,6 +60,7 @@ struct Worker {
   std::vector<std::vector<float>> bands;  // one plane per output band
   std::vector<double> padded;
   std::vector<float> tile;
+  std::vector<char> year_cycle_empty;  // per year, for the pixel at hand
 };
 
 }  // namespace
@@ -77,6 +78,15 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
   if (!summary.stale_years_removed.empty())
     notes.push_back(fmt::format("removed the layers of {} from an earlier run: outside this run's years",
                                 fmt::join(summary.stale_years_removed, ", ")));
+  if (summary.years == 1 && summary.pixels_with_values > 0)
+    notes.push_back(fmt::format("one year ({}): the synoptic layers are that year's own values, so synoptic_sd, the "
+                                "standardised anomalies and synoptic_miss are empty; a synoptic needs two years or more",
+                                summary.first_year));
+  for (const auto& [year, pixels] : summary.years_with_cycle_gaps)
+    notes.push_back(fmt::format("the {} cycle layer is empty at {} of the {} pixels whose synoptic cycle has one: {} "
+                                "lacks a value in some period there (a stack that starts or ends within the year, or "
+                                "dates without data); fill the gaps first with kalends fill",
+                                year, pixels, summary.pixels_with_cycle, year));
   if (summary.pixels_with_values == 0 || summary.pixels_with_cycle == summary.pixels_with_values) return notes;
   if (summary.pixels_with_cycle == 0 && !summary.periods_without_value.empty()) {
     static const char* const months[] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
@@ -217,6 +227,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   // have a value anywhere: a stack of one season has no cycle descriptors, and says why.
   std::atomic<std::int64_t> pixels_with_values{0}, pixels_with_cycle{0};
   std::vector<std::atomic<bool>> period_has_value(P);
+  // Per year, pixels whose synoptic cycle has descriptors but whose year's has none.
+  std::vector<std::atomic<std::int64_t>> year_cycle_missing(years);
   auto process = [&](const Block& block, Worker& w) {
     const Window& core = block.core;
     std::int64_t with_values = 0, with_cycle = 0;
@@ -274,21 +286,27 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
           if (year_file[y] != not_written) band(year_file[y], q)[p] = float(v);
           band(anomaly_file[y], q)[p] = float(v - mean[q]);
           band(standardised_file[y], q)[p] = sd > 0 ? float((v - mean[q]) / sd) : NAN;
-          if (std::isfinite(v)) all_sum += v, ++all_count;
+          if (std::isfinite(v) && count >= 2) all_sum += v, ++all_count;  // as the synoptic miss below
         }
       }
       // Cycle descriptors: each year with its neighbours; the synoptic cycle with itself.
+      w.year_cycle_empty.assign(years, 0);
       for (int y = 0; y < years; ++y) {
         if (cycle_file[y] == not_written) continue;
         for (int q = 0; q < 3 * P; ++q) {
           const int yy = y + q / P - 1;
           w.padded[q] = yy >= 0 && yy < years ? value[std::size_t(yy) * P + q % P] : NAN;
         }
-        put_cycle(cycle_file[y], p, describe_cycle(w.padded, period_days, request.cycle, harmonics));
+        const CycleDescriptors d = describe_cycle(w.padded, period_days, request.cycle, harmonics);
+        w.year_cycle_empty[y] = !std::isfinite(d.mean);
+        put_cycle(cycle_file[y], p, d);
       }
       for (int q = 0; q < 3 * P; ++q) w.padded[q] = mean[q % P];
       const CycleDescriptors synoptic_cycle = describe_cycle(w.padded, period_days, request.cycle, harmonics);
       put_cycle(cycle_synoptic, p, synoptic_cycle);
+      if (std::isfinite(synoptic_cycle.mean))
+        for (int y = 0; y < years; ++y)
+          if (w.year_cycle_empty[y]) ++year_cycle_missing[y];
       bool any = false;
       for (int q = 0; q < P; ++q)
         if (std::isfinite(mean[q])) any = true, has_value[q] = 1;
@@ -296,13 +314,15 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       with_cycle += std::isfinite(synoptic_cycle.mean);
       // Synoptic miss: RMSE of year-specific against synoptic, and the share of the
       // year-specific variance the synoptic cycle explains (1 - SS_res / SS_tot).
+      // Only periods with values in two years or more: a synoptic of one year is that year, and
+      // would 'explain' it perfectly.
       double res = 0, tot = 0;
       int count = 0;
       const double overall = all_count > 0 ? all_sum / all_count : NAN;
       for (int y = 0; y < years; ++y)
         for (int q = 0; q < P; ++q) {
           const double v = value[std::size_t(y) * P + q];
-          if (!std::isfinite(v)) continue;
+          if (!std::isfinite(v) || !(band(synoptic_years, q)[p] >= 2)) continue;
           res += (v - mean[q]) * (v - mean[q]);
           tot += (v - overall) * (v - overall);
           ++count;
@@ -335,6 +355,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.last_year = last_year;
   summary.dates_at_month_ends = dates_at_month_ends(times);
   summary.pixels_with_values = pixels_with_values;
+  for (int y = 0; y < years; ++y)
+    if (year_cycle_missing[y] > 0) summary.years_with_cycle_gaps.emplace_back(first_year + y, year_cycle_missing[y]);
   summary.pixels_with_cycle = pixels_with_cycle;
   for (int q = 0; q < P; ++q)
     if (!period_has_value[q]) summary.periods_without_value.push_back(q);

@@ -320,6 +320,68 @@ class PeakDays(kt.TempDirTestCase):
         self.assertEqual(data[names.index("main_peak_doy")][3], 200.5)
 
 
+class ShortAndGappyStacks(kt.TempDirTestCase):
+    """What seasons and compare say where the data cannot give a synoptic miss or a year's cycle:
+    one year (a synoptic of one year is that year), and a date without data inside a year."""
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.folder = os.path.join(cls.tmp, "stack")
+        os.makedirs(cls.folder)
+        rng = np.random.default_rng(3)
+        for year in (2019, 2020, 2021):
+            for first in range(1, 366, 16):
+                date = dt.date(year, 1, 1) + dt.timedelta(days=first - 1)
+                v = 0.5 + 0.3 * np.cos(2 * np.pi * (first - 180) / 365) + 0.05 * rng.standard_normal((2, 3))
+                if date == dt.date(2020, 6, 9):
+                    v[:] = np.nan                                  # a date without data
+                kt.write_raster(os.path.join(cls.folder, "ndvi_%s.tif" % date.isoformat()), v.astype(np.float32),
+                                geotransform=(0, 250, 0, 0, 0, -250), epsg=32736, nodata=float("nan"))
+
+    def test_one_year_has_no_synoptic_miss_and_compare_says_so(self):
+        one = os.path.join(self.tmp, "one")
+        os.makedirs(one)
+        for path in glob.glob(os.path.join(self.folder, "ndvi_2019-*.tif")):
+            shutil.copy(path, one)
+        out = os.path.join(self.tmp, "s-one")
+        done = kt.run_kalends(["seasons", one, "--out", out, "--period", "16d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("one year (2019): the synoptic layers are that year's own values", done.stderr)
+        miss = kt.gdal().Open(os.path.join(out, "ndvi_synoptic_miss.tif")).ReadAsArray()
+        self.assertTrue(np.all(np.isnan(miss)), miss)        # had been RMSE 0, explained share 1
+        done = kt.run_kalends(["compare", out, "--out", os.path.join(self.tmp, "c-one")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("no pixel has a synoptic miss", done.stderr)
+        with open(os.path.join(self.tmp, "c-one", "compare.json")) as f:
+            report = json.load(f)
+        year = report["years"][0]
+        self.assertIsNone(year["share_below_minus_1_sd"])    # no standardised anomaly is defined
+        self.assertIsNone(year["share_above_1_sd"])
+
+    def test_a_date_without_data_is_named_and_top_0_lists_none(self):
+        out = os.path.join(self.tmp, "s-gap")
+        done = kt.run_kalends(["seasons", self.folder, "--out", out, "--period", "16d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        cycle = kt.gdal().Open(os.path.join(out, "ndvi_cycle_2020.tif")).ReadAsArray()
+        self.assertTrue(np.all(np.isnan(cycle[0])))          # the 2020 cycle needs every period
+        self.assertIn("the 2020 cycle layer is empty at 6 of the 6 pixels", done.stderr)
+        self.assertNotIn("2019 cycle layer", done.stderr)
+        # --top 0: no largest anomalies (it had crashed).
+        done = kt.run_kalends(["compare", out, "--out", os.path.join(self.tmp, "c-gap"), "--top", "0"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(self.tmp, "c-gap", "compare.json")) as f:
+            report = json.load(f)
+        self.assertEqual(report["largest_anomalies"], [])
+        # Shares beyond 1 sd count the pixel-periods with a standardised anomaly (numpy).
+        g = kt.gdal()
+        for year in report["years"]:
+            z = g.Open(os.path.join(out, "ndvi_anomaly_standardised_%d.tif" % year["year"])).ReadAsArray()
+            defined = z[np.isfinite(z)]
+            self.assertAlmostEqual(year["share_below_minus_1_sd"], float(np.mean(defined < -1)), places=12)
+            self.assertAlmostEqual(year["share_above_1_sd"], float(np.mean(defined > 1)), places=12)
+
+
 class RealData(kt.TempDirTestCase):
     def test_netcdf_amplitude_and_month_of_maximum(self):
         path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
