@@ -10,6 +10,7 @@
 #include <ogrsf_frmts.h>
 
 #include <algorithm>
+#include <array>
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
@@ -132,15 +133,33 @@ DatasetPtr mapped_band(GDALDataset& in, int band, Map map, const std::string& wh
   GDALRasterBand* from = in.GetRasterBand(band);
   int has_nodata = 0;
   const double nodata = from->GetNoDataValue(&has_nodata);
+  const double scale = from->GetScale(), offset = from->GetOffset();  // to the physical value
   std::vector<float> row(std::size_t(in.GetRasterXSize()));
   for (int y = 0; y < in.GetRasterYSize(); ++y) {
     if (from->RasterIO(GF_Read, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1, GDT_Float32, 0, 0) != CE_None)
       throw InputError(where, fmt::format("cannot read band {} ({})", band, detail::gdal_message("?")));
-    for (float& v : row) v = (has_nodata && v == float(nodata)) || std::isnan(v) ? NAN : map(v);
+    for (float& v : row)
+      v = (has_nodata && v == float(nodata)) || std::isnan(v) ? NAN : map(float(v * scale + offset));
     if (out->GetRasterBand(1)->RasterIO(GF_Write, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1,
                                         GDT_Float32, 0, 0) != CE_None)
       throw OutputError(where, "out of memory for a derived band");
   }
+  out->GetRasterBand(1)->SetNoDataValue(NAN);
+  return out;
+}
+
+// A one-band in-memory raster on the grid of `like` holding `plane`.
+DatasetPtr plane_dataset(GDALDataset& like, std::vector<float>& plane, const std::string& where) {
+  const int width = like.GetRasterXSize(), height = like.GetRasterYSize();
+  GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
+  DatasetPtr out(mem->Create("", width, height, 1, GDT_Float32, nullptr));
+  double gt[6];
+  like.GetGeoTransform(gt);
+  out->SetGeoTransform(gt);
+  out->SetProjection(like.GetProjectionRef());
+  if (out->GetRasterBand(1)->RasterIO(GF_Write, 0, 0, width, height, plane.data(), width, height, GDT_Float32, 0, 0) !=
+      CE_None)
+    throw OutputError(where, "out of memory for a derived band");
   out->GetRasterBand(1)->SetNoDataValue(NAN);
   return out;
 }
@@ -155,17 +174,7 @@ DatasetPtr combined_band(GDALDataset& like, GDALRasterBand& a, GDALRasterBand& b
       b.RasterIO(GF_Read, 0, 0, width, height, pb.data(), width, height, GDT_Float32, 0, 0) != CE_None)
     throw OutputError(where, "cannot read the warped bands");
   for (std::size_t i = 0; i < pa.size(); ++i) pa[i] = combine(pa[i], pb[i]);
-  GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
-  DatasetPtr out(mem->Create("", width, height, 1, GDT_Float32, nullptr));
-  double gt[6];
-  like.GetGeoTransform(gt);
-  out->SetGeoTransform(gt);
-  out->SetProjection(like.GetProjectionRef());
-  if (out->GetRasterBand(1)->RasterIO(GF_Write, 0, 0, width, height, pa.data(), width, height, GDT_Float32, 0, 0) !=
-      CE_None)
-    throw OutputError(where, "out of memory for a combined band");
-  out->GetRasterBand(1)->SetNoDataValue(NAN);
-  return out;
+  return plane_dataset(like, pa, where);
 }
 
 constexpr double days_per_year = 365.25;
@@ -185,6 +194,20 @@ void check_study_grid_options(const StudyGridRequest& request) {
   {
     OGRSpatialReference srs;
     detail::set_crs_from_user(srs, request.crs, "--crs");
+    // An extent is in the --crs's units: metres given for a geographic CRS would be a grid
+    // beside the earth.
+    if (srs.IsGeographic() && request.extent && request.extent->size() == 4) {
+      const auto& e = *request.extent;
+      for (double latitude : {e[1], e[3]})
+        if (std::abs(latitude) > 90)
+          throw UsageError("--extent", fmt::format("latitude {:g} is beyond ±90 degrees: give the extent in the units of "
+                                                   "--crs '{}' (degrees, as XMIN,YMIN,XMAX,YMAX = west,south,east,north)",
+                                                   latitude, request.crs));
+      for (double longitude : {e[0], e[2]})
+        if (longitude < -180 || longitude > 360)
+          throw UsageError("--extent", fmt::format("longitude {:g} is beyond -180 to 360 degrees: give the extent in "
+                                                   "the units of --crs '{}'", longitude, request.crs));
+    }
   }
   if (request.resolution && !(*request.resolution > 0 && std::isfinite(*request.resolution)))
     throw UsageError("--resolution", "must be positive");
@@ -212,7 +235,10 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   std::vector<DatasetPtr> datasets;
   for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
 
-  std::vector<std::string> common{"-of", "MEM", "-t_srs", request.crs, "-ot", "Float32", "-dstnodata", "nan"};
+  // INIT_DEST: cells no source cell reaches are nodata, not the 0 a new MEM raster holds (an
+  // extent beside the data had come out as a field of zeros).
+  std::vector<std::string> common{"-of", "MEM", "-t_srs", request.crs, "-ot", "Float32", "-dstnodata", "nan",
+                                  "-wo", "INIT_DEST=NO_DATA"};
   if (request.resolution) {
     const std::string r = fmt::format("{:.17g}", *request.resolution);
     common.insert(common.end(), {"-tr", r, r});
@@ -282,28 +308,47 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       }, where));
       placed.emplace_back(b, keep.back()->GetRasterBand(1));
     }
-    // The flag: the mode among the cells with a value, so that a study cell with a value never
-    // says "could not be filled"; 3 where no cell has a value (the mode of all cells is then 3).
-    DatasetPtr indicator;
+    // The flag: among the cells with a value (flags 0-2), the one covering most of the study
+    // cell, each source cell counted by the share of it inside (the average of an indicator per
+    // flag); ties go to the higher flag, so that a cell half observed is not called observed. A
+    // study cell with a value thus never says "could not be filled"; 3 where no cell has a value
+    // (the mode of all cells, which is then 3). GDAL's mode would give a sliver of a cell a
+    // whole vote.
     GDALRasterBand* share = nullptr;
     if (flag_band) {
-      how[flag_band] = "mode of the cells with a value (flags 0-2); 3 where none has one";
-      DatasetPtr valued = mapped_band(in, flag_band, [](float f) { return f <= 2 ? f : NAN; }, where);
+      how[flag_band] = "the flag (0-2) covering most of the cell; 3 where no cell has a value";
+      std::array<GDALRasterBand*, 3> covering{};
+      for (int f = 0; f < 3; ++f) {
+        DatasetPtr indicator = mapped_band(in, flag_band, [f](float v) { return v <= 2 ? float(v == f) : NAN; }, where);
+        covering[f] = warp_with(*indicator, "average").GetRasterBand(1);
+        keep.push_back(std::move(indicator));
+      }
       keep.push_back(band_subset(in, {flag_band}, where));  // the flag as it is, without a copy
-      GDALDataset& all = *keep.back();
-      GDALDataset& valued_mode = warp_with(*valued, "mode");
-      GDALDataset& all_mode = warp_with(all, "mode");
-      keep.push_back(combined_band(valued_mode, *valued_mode.GetRasterBand(1), *all_mode.GetRasterBand(1),
-                                   [](float with_value, float any) { return std::isnan(with_value) ? any : with_value; },
-                                   where));
+      GDALDataset& all_mode = warp_with(*keep.back(), "mode");
+      const int w = all_mode.GetRasterXSize(), h = all_mode.GetRasterYSize();
+      std::array<std::vector<float>, 4> planes;
+      for (int f = 0; f < 4; ++f) {
+        planes[f].resize(std::size_t(w) * h);
+        GDALRasterBand* b = f < 3 ? covering[f] : all_mode.GetRasterBand(1);
+        if (b->RasterIO(GF_Read, 0, 0, w, h, planes[f].data(), w, h, GDT_Float32, 0, 0) != CE_None)
+          throw OutputError(where, "cannot read the warped flag shares");
+      }
+      std::vector<float> flag(planes[3]), filled(std::size_t(w) * h, NAN);
+      for (std::size_t c = 0; c < flag.size(); ++c) {
+        if (std::isnan(planes[0][c])) continue;  // no cell with a value: the mode of all cells
+        int best = 0;
+        for (int f = 1; f < 3; ++f)
+          if (planes[f][c] >= planes[best][c]) best = f;
+        flag[c] = float(best);
+        filled[c] = planes[1][c] + planes[2][c];
+      }
+      keep.push_back(plane_dataset(all_mode, flag, where));
       placed.emplace_back(flag_band, keep.back()->GetRasterBand(1));
-      // The share of filled cells: an indicator of the flag band (1 filled, 0 observed, no
-      // value otherwise) averaged like the values; from the flags of fill outputs only, not from
-      // the modes of a layer gridded before.
+      // The share of filled cells (flag 1 or 2) among those with a value, by area as the values
+      // are averaged; from the flags of fill outputs only, not from those of a layer gridded before.
       if (!has_share) {
-        indicator = mapped_band(in, flag_band, [](float f) { return (f == 1 || f == 2) ? 1.0f : f == 0 ? 0.0f : NAN; },
-                                where);
-        share = warp_with(*indicator, "average").GetRasterBand(1);
+        keep.push_back(plane_dataset(all_mode, filled, where));
+        share = keep.back()->GetRasterBand(1);
       }
     }
     std::sort(placed.begin(), placed.end(), [](const auto& a, const auto& b) { return a.first < b.first; });
@@ -318,10 +363,15 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     result->SetProjection(first.GetProjectionRef());
     result->SetMetadata(in.GetMetadata());
     std::vector<float> plane(std::size_t(width) * height);
+    // Values leave as physical values: a band warped as stored gets its scale and offset here
+    // (linear, so after the average as before it), and the output has none.
     auto copy_band = [&](GDALRasterBand* from, int to, const std::string& description, const std::string& unit,
-                         const std::string& how) {
-      if (from->RasterIO(GF_Read, 0, 0, width, height, plane.data(), width, height, GDT_Float32, 0, 0) != CE_None ||
-          result->GetRasterBand(to)->RasterIO(GF_Write, 0, 0, width, height, plane.data(), width, height, GDT_Float32,
+                         const std::string& how, double scale = 1, double offset = 0) {
+      if (from->RasterIO(GF_Read, 0, 0, width, height, plane.data(), width, height, GDT_Float32, 0, 0) != CE_None)
+        throw OutputError(sources[i].relative, "cannot assemble the warped bands");
+      if (scale != 1 || offset != 0)
+        for (float& v : plane) v = float(v * scale + offset);
+      if (result->GetRasterBand(to)->RasterIO(GF_Write, 0, 0, width, height, plane.data(), width, height, GDT_Float32,
                                               0, 0) != CE_None)
         throw OutputError(sources[i].relative, "cannot assemble the warped bands");
       GDALRasterBand* band = result->GetRasterBand(to);
@@ -333,7 +383,10 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     int to = 1;
     for (const auto& [from_band, warped] : placed) {
       GDALRasterBand* src = in.GetRasterBand(from_band);
-      copy_band(warped, to, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "", how[from_band]);
+      const bool as_stored = std::count(continuous.begin(), continuous.end(), from_band) > 0 ||
+                             std::count(classes.begin(), classes.end(), from_band) > 0;
+      copy_band(warped, to, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "", how[from_band],
+                as_stored ? src->GetScale() : 1.0, as_stored ? src->GetOffset() : 0.0);
       // What the band's classes mean (CLASS_MEANINGS, FLAG_MEANINGS) travels with it.
       for (const char* item : {"CLASS_MEANINGS", "FLAG_MEANINGS"})
         if (const char* text = src->GetMetadataItem(item)) result->GetRasterBand(to)->SetMetadataItem(item, text);
