@@ -38,8 +38,9 @@ struct TimePoint {
   auto operator<=>(const TimePoint&) const = default;
 };
 
-/// Finds a date in a file name: YYYY-MM-DD, YYYYMMDD, or year and day of year YYYYDDD (also
-/// after a letter, as in "A2004145"). The first valid date wins. Digit runs of other lengths
+/// Finds a date in a file name: YYYY-MM-DD (with the time of day where "THHMM" follows, as
+/// TimePoint::label writes it), YYYYMMDD, or year and day of year YYYYDDD (also after a letter,
+/// as in "A2004145"). The first valid date wins. Digit runs of other lengths
 /// (versions, production time stamps) are ignored.
 std::optional<TimePoint> date_from_name(std::string_view name);
 

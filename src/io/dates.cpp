@@ -133,7 +133,20 @@ std::optional<DateInName> find_date_in_name(std::string_view name) {
         is_digit(name[j + 5]) && (j + 6 == name.size() || !is_digit(name[j + 6]))) {
       const int y = digits_to_int(run), m = digits_to_int(name.substr(j + 1, 2)),
                 d = digits_to_int(name.substr(j + 4, 2));
-      if (is_valid_date(y, m, d)) return DateInName{TimePoint::from_date({y, m, d}), i, 10};
+      if (is_valid_date(y, m, d)) {
+        DateInName found{TimePoint::from_date({y, m, d}), i, 10};
+        // A time of day as kalends labels sub-daily outputs: "THHMM", then no further digit.
+        const std::size_t t = j + 6;
+        if (t + 5 <= name.size() && name[t] == 'T' && is_digit(name[t + 1]) && is_digit(name[t + 2]) &&
+            is_digit(name[t + 3]) && is_digit(name[t + 4]) && (t + 5 == name.size() || !is_digit(name[t + 5]))) {
+          const int hours = digits_to_int(name.substr(t + 1, 2)), minutes = digits_to_int(name.substr(t + 3, 2));
+          if (hours < 24 && minutes < 60) {
+            found.time.seconds += hours * 3600 + minutes * 60;
+            found.length = 15;
+          }
+        }
+        return found;
+      }
     }
     if (auto t = date_from_digits(run)) return DateInName{*t, i, run.size()};
     i = j;

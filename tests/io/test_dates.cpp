@@ -37,6 +37,12 @@ TEST_CASE("dates in file names", "[io][dates]") {
       {"/data/2020-01-01/ndvi_v6.tif", ""},  // folders are not searched
       {"ndvi.tif", ""},
       {"x_12345678901_2004-02-29.tif", "2004-02-29"},  // long digit runs are skipped
+      // Sub-daily outputs are labelled with the time of day (TimePoint::label); read back as
+      // such, not as midnight, where 24 hours of one day had been 'duplicate dates'.
+      {"t2m_2019-03-01T0100.tif", "2019-03-01T0100"},
+      {"t2m_2019-03-01T2330.tif", "2019-03-01T2330"},
+      {"t2m_2019-03-01T2500.tif", "2019-03-01"},        // no hour 25: the date alone
+      {"t2m_2019-03-01T01000.tif", "2019-03-01"},       // five digits: not a time
   };
   for (const Row& row : rows) {
     INFO(row.name);

@@ -496,6 +496,17 @@ class RealData(kt.TempDirTestCase):
         np.testing.assert_allclose(year[2], hours.mean(axis=0), atol=1e-3)
         self.assertGreater(np.abs(year[2] - hours[23::24].mean(axis=0)).max(), 0.1)
         self.assertTrue(np.all(np.isnan(year[[0, 1, 3]])))   # no record in February or April
+        # The same hours filled (the record is complete: each value is its own observation) and
+        # read back from kalends' own outputs, named <name>_2019-03-01T0100.tif and so on. They
+        # had been read as 24 'duplicate dates' a day, so no later step could use them.
+        filled = os.path.join(self.tmp, "hourly-filled")
+        done = kt.run_kalends(["-q", "fill", path, "--out", filled, "--lambda", "1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        again = os.path.join(self.tmp, "hourly-from-fill")
+        done = kt.run_kalends(["-q", "seasons", filled, "--out", again])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        year = g.Open(os.path.join(again, "era5-2mt-2019-03-uk_year_2019.tif")).ReadAsArray().astype(np.float64)
+        np.testing.assert_allclose(year[2], hours.mean(axis=0), atol=1e-3)
 
     def test_ndvi_and_evi_from_landsat_equal_numpy(self):
         path = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
