@@ -423,6 +423,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   const bool pattern = connection || (detail::has_glob_characters(input) && !fs::exists(input));
   if (pattern) {
     bool first = true;
+    std::vector<std::pair<std::string, Grid>> file_grids;  // each file and its grid, checked at the end
     for (const std::string& file : detail::expand_glob(connection ? connection->files : input)) {
       if (std::find(rules.exclude.begin(), rules.exclude.end(), file) != rules.exclude.end()) continue;
       auto time = date_from_name(file);
@@ -471,10 +472,36 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
                       : time            ? name_from_file(file)
                                         : without_trailing_number(name_from_file(file));
         first = false;
-      } else {
-        require_same_grid(stack.grid_, grid, file);
       }
+      file_grids.emplace_back(file, grid);
       for (const auto& [band, band_date] : bands) stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
+    }
+    // Every file on the grid most of them share (the first file's where none has a majority):
+    // judged by the first file, an oldest composite delivered on another grid had every good
+    // file named as the odd one, and `kalends run --skip-bad` left out the good files.
+    auto matches = [](const Grid& a, const Grid& b) {
+      try {
+        require_same_grid(a, b, "", "");
+        return true;
+      } catch (const InputError&) {
+        return false;
+      }
+    };
+    std::size_t best = 0, best_count = 0;
+    for (std::size_t i = 0; i < file_grids.size() && best_count * 2 <= file_grids.size(); ++i) {
+      if (i > 0 && matches(file_grids[i - 1].second, file_grids[i].second)) continue;  // counted with a neighbour
+      std::size_t count = 0;
+      for (const auto& [f, g] : file_grids) count += matches(file_grids[i].second, g);
+      if (count > best_count) best = i, best_count = count;
+    }
+    if (!file_grids.empty()) {
+      stack.grid_ = file_grids[best].second;
+      const std::string rest = best_count * 2 > file_grids.size()
+                                   ? fmt::format("the rest of the stack ({} of its {} files)", best_count,
+                                                 file_grids.size())
+                                   : file_grids[best].first;
+      for (const auto& [f, g] : file_grids)
+        if (f != file_grids[best].first) require_same_grid(stack.grid_, g, f, rest);
     }
   } else {
     if (fs::is_directory(input))

@@ -864,6 +864,15 @@ class BadInput(kt.TempDirTestCase):
             return path
         self.check(regrid, ["grid"])
 
+    def test_grid_of_the_oldest_composite_differs(self):
+        # The stack is judged by the grid most of its files share, not by its first file: an
+        # oldest composite on another grid is the one named (and skipped), not every good one.
+        def regrid(stack):
+            path = self.ndvi(stack, 0)
+            kt.write_raster(path, np.zeros((10, 10), np.int16), geotransform=(0, 250, 0, 0, 0, -250), epsg=32736)
+            return path
+        self.check(regrid, ["grid is 10 x 10 px, that of the rest of the stack"])
+
     def test_crs_differs(self):
         def reproject(stack):
             path = self.ndvi(stack, 4)
