@@ -223,6 +223,9 @@ class Runner {
       return report_;
     }
     bool failed = false;
+    for (const JobStep& step : job_.steps)
+      if (const auto record = db_->step(step.id); record && record->status == "done")
+        recorded_at_start_[step.id] = record->fingerprint;
     for (const JobStep& step : job_.steps) {
       StepReport r;
       r.id = step.id;
@@ -528,6 +531,27 @@ class Runner {
   // include its rows, so that a new plan makes them stale.
   std::string fingerprint_of(const JobStep& step) {
     if (auto it = fingerprints_.find(step.id); it != fingerprints_.end()) return it->second;
+    const std::string fp = fingerprint_with(step, [this](const std::string& name) { return source_fingerprint(name); });
+    fingerprints_[step.id] = fp;
+    return fp;
+  }
+
+  // Whether the step was up to date when this run began: its record against what the earlier
+  // steps had then recorded (before this run redid any of them). Only then may it redo just
+  // the years those steps redo now; after a run stopped between them it must redo them all.
+  bool current_at_start(const JobStep& step, const detail::StepRecord& record) {
+    bool known = true;
+    const std::string then = fingerprint_with(step, [&](const std::string& name) -> std::string {
+      if (job_.inputs.count(name)) return source_fingerprint(name);
+      const auto it = recorded_at_start_.find(name);
+      if (it == recorded_at_start_.end()) known = false;
+      return it == recorded_at_start_.end() ? std::string() : it->second;
+    });
+    return known && then == record.fingerprint;
+  }
+
+  template <class Upstream>
+  std::string fingerprint_with(const JobStep& step, Upstream upstream) {
     std::string params = std::string(KALENDS_VERSION) + "|" + step.kind;
     for (const auto& [k, v] : step.options) params += "|" + k + "=" + v;
     if (shard_) {
@@ -536,7 +560,7 @@ class Runner {
       params += fmt::format("|shard {}/{} of {}: rows {}-{}", shard_, plan_->shards, planned->root, w.y, w.y + w.height);
     }
     std::string reads;
-    for (const std::string& name : step.inputs) reads += "|" + name + "=" + source_fingerprint(name);
+    for (const std::string& name : step.inputs) reads += "|" + name + "=" + upstream(name);
     // Files named by path keys (a zones raster, survey points) are read too: their content counts.
     if (const detail::StepKind* kind = detail::find_step_kind(step.kind))
       for (const detail::StepKey& key : kind->keys)
@@ -546,9 +570,7 @@ class Runner {
           if (std::filesystem::is_regular_file(file, ec))
             reads += "|" + std::string(key.name) + "=" + checksum_of(file, db_.get(), scan_);
         }
-    const std::string fp = detail::text_checksum(params) + ":" + detail::text_checksum(reads);
-    fingerprints_[step.id] = fp;
-    return fp;
+    return detail::text_checksum(params) + ":" + detail::text_checksum(reads);
   }
 
   std::string source_fingerprint(const std::string& name) {
@@ -719,7 +741,7 @@ class Runner {
         report.reason += fmt::format("; tiles with new data: {}", fmt::join(*only_tiles_, ", "));
       }
     }
-    if (kind && kind->years_from_inputs && same_parameters) {
+    if (kind && kind->years_from_inputs && same_parameters && current_at_start(step, *record)) {
       // Only earlier steps that redid some years: those years, and the next (its first period
       // may take a composite from the end of a redone year).
       std::set<int> years;
@@ -823,6 +845,7 @@ class Runner {
   std::optional<std::vector<int>> only_years_;  // for the step being run
   std::optional<std::vector<std::string>> only_tiles_;  // for a tiled fill being run
   std::map<std::string, std::optional<std::vector<int>>> years_redone_;  // by steps of this run; nullopt: all
+  std::map<std::string, std::string> recorded_at_start_;  // each step's fingerprint when last done, as the run began
   RunReport report_;
 };
 

@@ -644,6 +644,46 @@ class IncrementalSuitability(kt.TempDirTestCase):
             self.assertEqual(incremental[key], fresh[key], key)
 
 
+class StoppedBetweenSteps(kt.TempDirTestCase):
+    def test_a_run_stopped_after_the_fill_leaves_no_stale_year_layers(self):
+        # Real MODIS NDVI (alaska-ndvi/observed, 2004-2006). Night 2 changes a 2005 composite and
+        # stops after the fill (a job file with the fill step alone stands for a run killed
+        # between the steps); night 3 brings a 2007 composite. The seasons step must then redo
+        # 2005 too, not only the years the fill redid on night 3: its year layers had stayed
+        # those of night 1 for good (up to 0.6 NDVI off).
+        g = kt.gdal()
+        source = kt.shared_path("alaska-ndvi", "observed")
+        inputs = os.path.join(self.tmp, "inputs")
+        os.makedirs(inputs)
+        for path in sorted(glob.glob(os.path.join(source, "ndvi_200[456]-*.tif"))):
+            shutil.copy(path, inputs)
+        fill = ('[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nreach = 183\n')
+        seasons = '[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\nperiod = "16d"\n'
+        head = '[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n'
+        whole, fill_only = os.path.join(self.tmp, "job.toml"), os.path.join(self.tmp, "fill-only.toml")
+        with open(whole, "w") as f:
+            f.write(head + fill + seasons)
+        with open(fill_only, "w") as f:
+            f.write(head + fill)
+        self.assertEqual(run(whole).returncode, 0)
+        ds = g.Open(os.path.join(inputs, "ndvi_2005-08-13.tif"), g.GA_Update)
+        a = ds.ReadAsArray()
+        a[50:90, 50:90] *= 0.7
+        ds.GetRasterBand(1).WriteArray(a)
+        ds = None
+        self.assertEqual(run(fill_only).returncode, 0)
+        shutil.copy(os.path.join(source, "ndvi_2007-05-25.tif"), inputs)
+        night3 = run(whole)
+        self.assertEqual(night3.returncode, 0, night3.stderr)
+        self.assertNotIn("redoing the year layers of 2006, 2007", night3.stdout)
+        done = run(whole, "--out", os.path.join(self.tmp, "scratch"))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for name in ("ndvi_year_2005.tif", "ndvi_year_2006.tif", "ndvi_synoptic_mean.tif"):
+            mine = g.Open(os.path.join(self.tmp, "out", "seasons", name)).ReadAsArray()
+            fresh = g.Open(os.path.join(self.tmp, "scratch", "seasons", name)).ReadAsArray()
+            np.testing.assert_array_equal(mine, fresh, name)
+
+
 class Faults(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
