@@ -633,6 +633,29 @@ class Runner {
       for (int year : kalends::years_reached(date->days(), reach))
         if (year >= first && year <= last) years.insert(year);
     }
+    // A composite also moves the time grid other years are filled on: past the last date (or
+    // before the first) new empty slots enter the slices that reach that far, and a new step or
+    // a date pushed to the next slot moves slots. Each year whose slice, the days of its
+    // slots, is not the same on the grid before and now is redone too.
+    auto slices = [&](const std::map<std::string, std::string>& files) {
+      std::set<TimePoint> dates;
+      for (const auto& [f, sum] : files)
+        if (const auto date = date_from_name(f)) dates.insert(*date);
+      const TimeGrid grid = TimeGrid::build(std::vector<TimePoint>(dates.begin(), dates.end()));
+      std::map<int, std::vector<double>> by_year;
+      const double start = grid.start.seconds / 86400.0;
+      for (int year = first; year <= last; ++year)
+        for (int slot = 0; slot < grid.size; ++slot)
+          if (const double day = start + grid.slot_days[slot]; in_year_slice(year, day, reach))
+            by_year[year].push_back(day);
+      return by_year;
+    };
+    const auto slices_before = slices(before), slices_now = slices(now);
+    for (int year = first; year <= last; ++year) {
+      const auto a = slices_before.find(year), b = slices_now.find(year);
+      const bool had = a != slices_before.end(), has = b != slices_now.end();
+      if (had != has || (had && a->second != b->second)) years.insert(year);
+    }
     if (years.empty()) return std::nullopt;
     return std::vector<int>(years.begin(), years.end());
   }

@@ -684,6 +684,38 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             np.testing.assert_array_equal(mine, fresh, name)
 
 
+class ReachAcrossTheWinter(kt.TempDirTestCase):
+    def test_a_composite_after_the_winter_redoes_every_year_whose_slice_it_moves(self):
+        # Real MODIS NDVI (alaska-ndvi/observed, summers of 2004-2006), then the first composite
+        # of 2007. It lies more than D days from 2006's composites, but it lengthens the time
+        # grid: every year whose slice reaches past the old last date gets new empty slots, and
+        # its fill changes. Those years must be redone too, so that the result equals a run from
+        # scratch (they had been left as they were: up to 0.015 NDVI off with spacetime).
+        g = kt.gdal()
+        source = kt.shared_path("alaska-ndvi", "observed")
+        for reach, redone in ((60, "2006, 2007"), (730, "2004, 2005, 2006, 2007")):
+            folder = os.path.join(self.tmp, "reach-%d" % reach)
+            inputs = os.path.join(folder, "inputs")
+            os.makedirs(inputs)
+            for path in sorted(glob.glob(os.path.join(source, "ndvi_200[456]-*.tif"))):
+                shutil.copy(path, inputs)
+            job = os.path.join(folder, "job.toml")
+            with open(job, "w") as f:
+                f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                        'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nreach = %d\n' % reach)
+            self.assertEqual(run(job).returncode, 0)
+            shutil.copy(os.path.join(source, "ndvi_2007-05-25.tif"), inputs)
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("recomputing the years it reaches: %s" % redone, done.stdout)
+            done = run(job, "--out", os.path.join(folder, "scratch"))
+            self.assertEqual(done.returncode, 0, done.stderr)
+            for path in sorted(glob.glob(os.path.join(folder, "out", "fill", "ndvi_*.tif"))):
+                mine = g.Open(path).ReadAsArray()
+                fresh = g.Open(path.replace(os.path.join(folder, "out"), os.path.join(folder, "scratch"))).ReadAsArray()
+                np.testing.assert_array_equal(mine, fresh, "%s (reach %d)" % (path, reach))
+
+
 class Faults(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
