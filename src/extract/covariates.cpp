@@ -188,6 +188,10 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         const bool by_description = !(period_text.empty() && year_text.empty()) && !descriptions[b - 1].empty();
         if (bands > 1) name += "." + (by_description ? descriptions[b - 1] : "b" + std::to_string(b));
         CovariateSeries& c = series_for(name);
+        // The same name from two inputs (layer.tif in two folders given): one would be lost.
+        if (!c.files.empty())
+          throw InputError(s.path, "would be the series '" + name + "', as " + c.files.front().path +
+                                       " is: give the folders' parent folder, or rename one of the files");
         c.kind = SeriesKind::fixed;
         c.band = b;
         c.files = {{s.path, {}, 0}};

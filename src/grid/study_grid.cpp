@@ -231,6 +231,16 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
   }
   const std::vector<Source> sources = sources_of(request.inputs, request.out_dir);
+  // Two inputs under one output name (the same file name in two folders given): the second
+  // would replace the first's output. Refused before anything is written.
+  {
+    std::map<std::string, std::string> by_name;
+    for (const Source& s : sources)
+      if (const auto [it, added] = by_name.emplace(s.relative, s.path); !added)
+        throw UsageError(s.path, fmt::format("would be written as '{}', as '{}' is: grid the two folders into "
+                                             "separate --out folders, or give their parent folder",
+                                             s.relative, it->second));
+  }
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
   std::vector<DatasetPtr> datasets;
   for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));

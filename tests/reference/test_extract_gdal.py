@@ -236,6 +236,38 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1"])
         self.assertEqual(done.stderr, "")
 
+    def test_two_layers_of_one_series_name_are_refused(self):
+        # layer.tif in two folders given to one run: both would be the series 'layer', and one
+        # was silently dropped. Refused, naming both; their parent folder names them a.layer
+        # and b.layer.
+        from osgeo import osr
+        g = kt.gdal()
+        srs = osr.SpatialReference()
+        srs.ImportFromEPSG(32736)
+        for name, value in (("a", 1.0), ("b", 2.0)):
+            os.makedirs(os.path.join(self.tmp, "two", name))
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(self.tmp, "two", name, "layer.tif"), 10, 10, 1,
+                                                   g.GDT_Float32)
+            ds.SetGeoTransform((420000, 250, 0, 9650000, 0, -250))
+            ds.SetProjection(srs.ExportToWkt())
+            ds.GetRasterBand(1).WriteArray(np.full((10, 10), value, np.float32))
+            ds = None
+        points = os.path.join(self.tmp, "two-points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\np1,421000,9649000,2020-01-01\n")
+        table = os.path.join(self.tmp, "two.csv")
+        base = ["extract", "--points", points, "--out", table, "--x-column", "x", "--y-column", "y",
+                "--crs", "EPSG:32736"]
+        done = kt.run_kalends(base[:1] + [os.path.join(self.tmp, "two", "a"), os.path.join(self.tmp, "two", "b")] +
+                              base[1:])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("would be the series 'layer'", done.stderr)
+        self.assertFalse(os.path.exists(table))
+        done = kt.run_kalends(base[:1] + [os.path.join(self.tmp, "two")] + base[1:])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        row = kt.read_table(table)[0]
+        self.assertEqual((float(row["a.layer"]), float(row["b.layer"])), (1.0, 2.0))
+
     def test_two_columns_of_one_name_are_refused(self):
         # A table pasted together from two sheets: which 'site' is meant cannot be told (the
         # first had been taken without a word).

@@ -129,6 +129,27 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "degrees")))
 
 
+    def test_two_inputs_under_one_output_name_are_refused(self):
+        # layer.tif in two folders given to one run: the second had replaced the first's output,
+        # and the run said it wrote both. Refused before anything is written; their parent
+        # folder keeps the two apart (a/layer.tif, b/layer.tif).
+        for name, value in (("a", 1.0), ("b", 2.0)):
+            os.makedirs(os.path.join(self.tmp, "two", name))
+            write_named_bands(os.path.join(self.tmp, "two", name, "layer.tif"),
+                              (("value", np.full((10, 10), value, np.float32)),))
+        out = os.path.join(self.tmp, "two-out")
+        done = kt.run_kalends(["grid", os.path.join(self.tmp, "two", "a"), os.path.join(self.tmp, "two", "b"),
+                               "--out", out, "--crs", "EPSG:4326", "--resolution", "0.01"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("would be written as 'layer.tif'", done.stderr)
+        self.assertFalse(os.path.exists(out))
+        run_grid_ok(self, [os.path.join(self.tmp, "two"), "--out", out, "--crs", "EPSG:4326", "--resolution", "0.0005"])
+        g = kt.gdal()
+        for name, value in (("a", 1.0), ("b", 2.0)):
+            a = g.Open(os.path.join(out, name, "layer.tif")).ReadAsArray()
+            self.assertEqual(float(np.nanmax(a)), value)
+
+
 class AreaWeightedMeans(kt.TempDirTestCase):
     def test_integer_factor_equals_numpy_block_means(self):
         g = kt.gdal()
