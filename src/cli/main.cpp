@@ -10,6 +10,7 @@
 #include <set>
 
 #include "cli/commands.hpp"
+#include "cli/stop_signals.hpp"
 #include "io/shell_word.hpp"
 #include "kalends/error.hpp"
 
@@ -29,6 +30,7 @@ void raise_open_file_limit() {
 
 int main(int argc, char** argv) {
   using namespace kalends;
+  cli::install_stop_signals();
   raise_open_file_limit();
   CLI::App app{"kalends: gap-filled, quality-flagged covariate layers from satellite time series"};
   app.require_subcommand(1);

@@ -10,6 +10,8 @@
 
 #include "cli/commands.hpp"
 #include "io/json_text.hpp"
+#include "cli/stop_signals.hpp"
+#include "kalends/error.hpp"
 #include "kalends/error.hpp"
 #include "kalends/pipeline.hpp"
 
@@ -104,7 +106,20 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
                  r.caution.empty() ? "" : ", \"caution\": \"" + detail::json_escape(r.caution) + "\"");
       std::fflush(stdout);
     };
-    const RunReport report = run_job(o->run, events);
+    if (json) stop_signals_write_json();
+    RunReport report;
+    try {
+      report = run_job(o->run, events);
+    } catch (const Error& e) {
+      // A job file it cannot use, a folder another run holds: with a JSON log still one
+      // `finished` event, so that a log of JSON lines says why the night failed.
+      if (!json) throw;
+      const int code = dynamic_cast<const InputError*>(&e) || dynamic_cast<const UsageError*>(&e) ? 2 : 1;
+      fmt::print("{{\"event\": \"finished\", \"exit_code\": {}, \"error\": \"{}\"}}\n", code,
+                 detail::json_escape(e.what()));
+      global.exit_code = code;
+      return;
+    }
     if (json) {
       fmt::print("{{\"event\": \"finished\", \"exit_code\": {}, \"seconds\": {:.3f}, \"peak_memory_mib\": {:.0f}, "
                  "\"skipped\": [",
@@ -119,9 +134,14 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       if (report.exit_code == 4)
         fmt::print("kalends run: finalize refused, nothing changed -> {}\n", report.out_dir);
       else
-        fmt::print("kalends run: {}{} -> {}\n",
-                   o->run.dry_run ? "dry run, nothing changed" : nothing ? "nothing new, nothing done" : "done",
-                   report.exit_code ? " with problems" : "", report.out_dir);
+        // Exit 3 (inputs skipped) still did what it could; 1 and 2 stopped at a step.
+        fmt::print("kalends run: {} -> {}\n",
+                   o->run.dry_run                  ? "dry run, nothing changed"
+                   : report.exit_code == 3         ? "done, bad inputs left out"
+                   : report.exit_code != 0         ? "failed"
+                   : nothing                       ? "nothing new, nothing done"
+                                                   : "done",
+                   report.out_dir);
       for (const StepReport& r : report.steps) {
         fmt::print("  {:<12} {:<10} {}", r.id, action_name(r.action), r.reason);
         if (r.action == StepReport::Action::ran)

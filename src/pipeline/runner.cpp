@@ -307,9 +307,23 @@ class Runner {
     out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
     base_ = out_;
     const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
-    if (fs::exists(state)) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
     // A run going now: the steps it has not finished are being (re)made, not merely stale.
     const std::string running = running_pid((fs::path(out_) / ".kalends").string());
+    if (fs::exists(state)) {
+      // A run killed inside a transaction leaves a journal that a read-only reader cannot roll
+      // back ("attempt to write a readonly database"); with no run going, recover it as the
+      // next run would, which restores the last committed state.
+      std::error_code ec;
+      const bool hot_journal = running.empty() && fs::exists(state.string() + "-journal", ec);
+      if (hot_journal) {
+        try {
+          db_ = std::make_unique<detail::StateDatabase>(state.string(), false);
+        } catch (const Error&) {
+          db_.reset();  // not writable here: read it as it is
+        }
+      }
+      if (!db_) db_ = std::make_unique<detail::StateDatabase>(state.string(), true);
+    }
     std::vector<StepStatus> list;
     // Steps are judged as the nightly --skip-bad run will see them: without the bad files it
     // left out, while those are unchanged. Each is listed after the steps.
@@ -328,7 +342,8 @@ class Runner {
         continue;
       }
       const auto record = db_ ? db_->step(step.id) : std::nullopt;
-      const bool interrupted = !partials(step_folder(out_, step.id)).empty();
+      const std::string folder = step_folder(out_, step.id);
+      const bool interrupted = !partials(folder).empty() || fs::exists(fs::path(folder) / half_published_marker);
       if (!record && interrupted) {
         s.state = "interrupted";
         s.detail = "a run stopped while writing it (hidden .partial files); the next run does it";
@@ -346,6 +361,12 @@ class Runner {
         } else {
           s.state = "stale";
           s.detail = !complete ? "outputs missing" : why_changed(*record, step, fingerprint);
+        }
+        // Stopped while redoing it (not new inputs since a finished run): say so first.
+        if (interrupted && s.state != "done") {
+          s.state = "interrupted";
+          s.detail = "a run stopped while rewriting it (hidden .partial files); the next run redoes it; before that: " +
+                     s.detail;
         }
       }
       if (!running.empty() && s.state != "done") {

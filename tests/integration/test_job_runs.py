@@ -201,6 +201,24 @@ class JobFile(kt.TempDirTestCase):
         self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
                            good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or \"auto\""])
 
+    def test_a_refused_job_file_and_a_held_folder_leave_json_in_a_json_log(self):
+        # With --log json (the documented cron line sends stdout and stderr to one .jsonl file),
+        # a job file the run cannot use still ends in one `finished` event naming the problem,
+        # and nothing else is printed; it had printed only a plain line on stderr.
+        good = JOB.format(lam="auto", extra="")
+        folder = os.path.join(self.tmp, "json-refused")
+        os.makedirs(folder)
+        path = os.path.join(folder, "job.toml")
+        with open(path, "w") as f:
+            f.write(good.replace("envelope =", "envelop ="))
+        done = run(path, "--log", "json")
+        self.assertEqual(done.returncode, 2)
+        self.assertEqual(done.stderr, "")
+        events = [json.loads(line) for line in done.stdout.splitlines()]
+        self.assertEqual(len(events), 1, done.stdout)
+        self.assertEqual((events[0]["event"], events[0]["exit_code"]), ("finished", 2))
+        self.assertIn("unknown key 'envelop'", events[0]["error"])
+
     def test_values_a_step_cannot_use_are_refused_when_the_file_is_read(self):
         # Before any step runs (and by --dry-run): a nightly run must not fail hours in.
         good = JOB.format(lam="auto", extra="")
@@ -780,6 +798,52 @@ class Faults(kt.TempDirTestCase):
         self.assertEqual(events[0]["event"], "step_started")
         self.assertIn({"fill": "step_finished"}, [{e["step"]: e["event"]} for e in events])
 
+    def test_a_stopped_run_says_so_and_status_says_interrupted(self):
+        # SIGTERM (a service stop, `timeout`) during the fill: one line on stderr, a last JSON
+        # `finished` event with exit code 143, and the process dies of the signal; the next run
+        # equals a run from scratch. A stopped run had left no trace in the log.
+        out = os.path.join(self.tmp, "stopped")
+        self.assertEqual(run(self.job, "--out", out).returncode, 0)
+        with open(self.job) as f:
+            text = f.read()
+        self.assertIn('"auto"', text)
+        edited = os.path.join(os.path.dirname(self.job), "stopped-job.toml")   # its paths are relative
+        with open(edited, "w") as f:   # another lambda, so that the fill is redone
+            f.write(text.replace('"auto"', "2.5", 1))
+        log = os.path.join(self.tmp, "stopped.jsonl")
+        with open(log, "w") as f:
+            process = subprocess.Popen([kt.KALENDS_BIN, "run", edited, "--out", out, "--log", "json"],
+                                       stdout=f, stderr=subprocess.PIPE, text=True)
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and process.poll() is None:
+            with open(log) as f:
+                if '"step_started"' in f.read():
+                    break
+            time.sleep(0.005)
+        time.sleep(min(0.3, self.duration / 10))
+        if process.poll() is not None:
+            self.skipTest("the run ended before it could be stopped")
+        process.send_signal(signal.SIGTERM)
+        _, stderr = process.communicate(timeout=60)
+        self.assertEqual(process.returncode, -signal.SIGTERM, stderr)
+        self.assertIn("kalends: stopped by SIGTERM", stderr)
+        with open(log) as f:
+            events = [json.loads(line) for line in f.read().splitlines()]
+        self.assertEqual(events[-1], {"event": "finished", "exit_code": 143, "error": "stopped by SIGTERM"})
+        done = run(edited, "--out", out)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        scratch = os.path.join(self.tmp, "stopped-scratch")
+        self.assertEqual(run(edited, "--out", scratch).returncode, 0)
+        self.assertEqual(content(out), content(scratch))
+        # A run stopped while it wrote a step leaves hidden .partial files (made here by hand, as
+        # the window is short): `status` says the step was interrupted, not that inputs changed.
+        with open(os.path.join(out, "fill", ".ndvi_2021-01-01.tif.partial"), "w") as f:
+            f.write("half")
+        status = kt.run_kalends(["status", self.job, "--out", out])
+        line = [l for l in status.stdout.splitlines() if l.startswith("fill")][0]
+        self.assertIn("interrupted", line)
+        self.assertIn("before that: parameters or program version changed", line)
+
     def test_more_threads_than_cores_keep_the_json_log_clean(self):
         # threads = 64 on a machine with fewer cores: TBB had warned on standard error in every
         # run ("the number of workers is currently limited"), which a cron line's 2>&1 put into
@@ -842,8 +906,9 @@ class Faults(kt.TempDirTestCase):
             self.skipTest("outputs (%d bytes) too small to fail before the database (%d)" % (smallest, database))
 
         def small_disk():
-            # Writes past the limit fail with EFBIG instead of killing the process (SIGXFSZ ignored).
-            signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+            # SIGXFSZ at its default (subprocess restores it), which kills a process writing past
+            # the limit: kalends ignores it itself, so the write fails with EFBIG like a full disk
+            # (it had died of the signal without a word).
             resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
 
         failed = run(self.job, "--out", out, preexec=small_disk)
@@ -884,6 +949,9 @@ class BadInput(kt.TempDirTestCase):
             culprit = break_input(stack)
             done = run(self.job)
             self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            # The headline tells a failed night from one that left bad inputs out (both had
+            # said "done with problems").
+            self.assertIn("kalends run: failed ->", done.stdout)
             line = done.stderr.strip().splitlines()
             self.assertEqual(len(line), 1, done.stderr)
             print("\n  " + line[0])
@@ -895,6 +963,7 @@ class BadInput(kt.TempDirTestCase):
             if skippable:
                 skipped = run(self.job, "--skip-bad", "--out", os.path.join(self.tmp, "skip"))
                 self.assertEqual(skipped.returncode, 3, skipped.stdout + skipped.stderr)
+                self.assertIn("kalends run: done, bad inputs left out ->", skipped.stdout)
                 self.assertIn("skipped input", skipped.stdout)
                 self.assertIn(os.path.basename(culprit), skipped.stdout)
                 db = sqlite3.connect(os.path.join(self.tmp, "skip", ".kalends", "state.sqlite"))
