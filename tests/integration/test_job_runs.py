@@ -844,6 +844,30 @@ class Faults(kt.TempDirTestCase):
         self.assertIn("interrupted", line)
         self.assertIn("before that: parameters or program version changed", line)
 
+    def test_status_reads_a_state_left_mid_transaction(self):
+        # A process killed inside a transaction of the state database leaves a hot journal,
+        # which a read-only reader cannot roll back: `status` had failed with "attempt to write a
+        # readonly database" until the next run. With no run going it recovers the journal.
+        out = os.path.join(self.tmp, "hot-journal")
+        self.assertEqual(run(self.job, "--out", out).returncode, 0)
+        database = os.path.join(out, ".kalends", "state.sqlite")
+        killed = subprocess.run(["/usr/bin/python3", "-c",
+                                 "import os, sqlite3\n"
+                                 "db = sqlite3.connect(%r, isolation_level=None)\n"
+                                 "db.execute('PRAGMA cache_size = 1')\n"   # pages spill to the file
+                                 "db.execute('BEGIN IMMEDIATE')\n"
+                                 "db.execute(\"UPDATE steps SET status = 'half' WHERE id = 'fill'\")\n"
+                                 "for i in range(200):\n"
+                                 "    db.execute(\"INSERT INTO inputs VALUES ('x' || hex(randomblob(3000)), 1, 1, 'x')\")\n"
+                                 "os._exit(0)\n" % database], capture_output=True, text=True)
+        self.assertEqual(killed.returncode, 0, killed.stderr)
+        if not os.path.exists(database + "-journal"):
+            self.skipTest("SQLite left no journal here")
+        status = kt.run_kalends(["status", self.job, "--out", out])
+        self.assertEqual(status.returncode, 0, status.stderr)
+        line = [l for l in status.stdout.splitlines() if l.startswith("fill")][0]
+        self.assertIn(" done ", line)   # the last committed state, not 'half'
+
     def test_more_threads_than_cores_keep_the_json_log_clean(self):
         # threads = 64 on a machine with fewer cores: TBB had warned on standard error in every
         # run ("the number of workers is currently limited"), which a cron line's 2>&1 put into
