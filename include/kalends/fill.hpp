@@ -80,6 +80,7 @@ struct FillSummary {
   int blocks_at_once = 0;  // fewer than the threads when the budget allows no more
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
+  int outputs_removed = 0;  // earlier outputs of dates (or a calendar) this fill no longer makes
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
   std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none

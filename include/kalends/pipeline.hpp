@@ -30,7 +30,7 @@ struct StepReport {
   enum class Action { ran, up_to_date, would_run, failed, not_reached, at_finalize } action = Action::up_to_date;
   std::string reason;    // why it ran (or would run)
   double seconds = 0;
-  int outputs_written = 0, outputs_unchanged = 0;
+  int outputs_written = 0, outputs_unchanged = 0, outputs_removed = 0;
   std::string caution;  // a reminder to show with the step's outputs (suitability)
   std::vector<std::string> notes;  // about the step's input data: values taken as missing, pixels not fitted
 };

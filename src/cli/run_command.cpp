@@ -100,9 +100,9 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       std::string notes;
       for (const std::string& note : r.notes) notes += (notes.empty() ? "\"" : ", \"") + detail::json_escape(note) + "\"";
       fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
-                 "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"notes\": [{}]{}}}\n",
+                 "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"removed\": {}, \"notes\": [{}]{}}}\n",
                  detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
-                 r.outputs_written, r.outputs_unchanged, notes,
+                 r.outputs_written, r.outputs_unchanged, r.outputs_removed, notes,
                  r.caution.empty() ? "" : ", \"caution\": \"" + detail::json_escape(r.caution) + "\"");
       std::fflush(stdout);
     };
@@ -145,7 +145,8 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const StepReport& r : report.steps) {
         fmt::print("  {:<12} {:<10} {}", r.id, action_name(r.action), r.reason);
         if (r.action == StepReport::Action::ran)
-          fmt::print(" — {:.1f} s, {} files written, {} unchanged", r.seconds, r.outputs_written, r.outputs_unchanged);
+          fmt::print(" — {:.1f} s, {} files written, {} unchanged{}", r.seconds, r.outputs_written, r.outputs_unchanged,
+                     r.outputs_removed ? fmt::format(", {} removed (no longer made)", r.outputs_removed) : "");
         fmt::print("\n");
         for (const std::string& note : r.notes) fmt::print("  note: {}\n", note);
         if (!r.caution.empty()) fmt::print("  {}\n", r.caution);
@@ -170,10 +171,13 @@ Action add_status_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("job", o->job_file, "The job file (TOML)")->required();
   sub->add_option("--out", o->out_dir, "Output folder (overrides the job file's)");
   return [o, &global] {
-    for (const StepStatus& s : job_status(*o))
+    for (const StepStatus& s : job_status(*o)) {
       if (!global.quiet || s.state != "done")
-        fmt::print("{:<12} {:<11} {:<10} {}{}\n", s.id, s.kind, s.state, s.detail,
+        fmt::print("{:<12} {:<11} {:<11} {}{}\n", s.id, s.kind, s.state, s.detail,
                    s.outputs ? fmt::format(" ({} files)", s.outputs) : "");
+      // For a monitoring script: 1 where the last run failed a step or was stopped in one.
+      if (s.state == "failed" || s.state == "interrupted") global.exit_code = 1;
+    }
   };
 }
 

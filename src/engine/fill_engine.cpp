@@ -557,6 +557,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   outputs.commit();
   // Outputs of dates no longer in the stack (a composite removed or replaced) would otherwise
   // linger beside the new ones; only this run's years are cleaned.
+  int removed = 0;
   {
     std::error_code ec;  // a file that cannot be removed stays; the new outputs are complete
     std::set<std::string> current;
@@ -568,8 +569,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         if (file.rfind(name + "_", 0) != 0 || entry.path().extension() != ".tif") continue;
         const auto date = find_date_in_name(file.substr(name.size() + 1));
         if (!date || date->position != 0 || !written_year(date->time.date().year)) continue;
-        if (!current.count(entry.path().lexically_normal().string()) && written_by_a_fill(entry.path()))
-          fs::remove(entry.path(), ec);
+        if (!current.count(entry.path().lexically_normal().string()) && written_by_a_fill(entry.path()) &&
+            fs::remove(entry.path(), ec))
+          ++removed;
       }
     }
     // A whole run also drops what this fill no longer makes: the calendar of another period
@@ -584,8 +586,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
           continue;
         for (const auto& file : fs::directory_iterator(entry.path(), ec)) {
           const std::string f = file.path().filename().string();
-          if (f.starts_with(name + "_") && file.path().extension() == ".tif" && written_by_a_fill(file.path()))
-            fs::remove(file.path(), ec);
+          if (f.starts_with(name + "_") && file.path().extension() == ".tif" && written_by_a_fill(file.path()) &&
+              fs::remove(file.path(), ec))
+            ++removed;
         }
         if (fs::is_empty(entry.path(), ec)) fs::remove(entry.path(), ec);
       }
@@ -598,6 +601,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
+  summary.outputs_removed = removed;
   summary.dates = int(layers);
   summary.width = area.width;
   summary.height = area.height;

@@ -862,6 +862,7 @@ class Runner {
     const detail::StepOutcome outcome = kind->run(context);
     report.outputs_written = outcome.outputs_written;
     report.outputs_unchanged = outcome.outputs_unchanged;
+    report.outputs_removed = outcome.outputs_removed;
     report.caution = outcome.caution;
     report.notes = outcome.notes;
     // A shard keeps its step's notes beside its strip (hidden: not an output), for --finalize

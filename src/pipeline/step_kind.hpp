@@ -84,6 +84,7 @@ struct StepOutcome {
   int outputs_written = 0, outputs_unchanged = 0;
   std::string caution;  // shown with the step's outputs
   std::vector<std::string> notes;  // what the step's command would print about its input data
+  int outputs_removed = 0;  // earlier outputs the step no longer makes, removed
 };
 
 struct StepKind {

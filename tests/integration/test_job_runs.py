@@ -161,9 +161,10 @@ class JobFile(kt.TempDirTestCase):
         with open(os.path.join(folder, "out", "fill", ".ndvi_2021-01-01.tif.partial"), "wb") as f:
             f.write(b"II*\x00")
         done = kt.run_kalends(["status", job])
-        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.returncode, 1, done.stderr)   # a step interrupted: for a monitoring script
         fill = [l for l in done.stdout.splitlines() if l.startswith("fill ")][0]
         self.assertIn("interrupted", fill)
+        self.assertRegex(fill, r"^fill +fill +interrupted +a run stopped")   # the column holds the word
         later = [l for l in done.stdout.splitlines() if l.startswith("seasons ")]
         self.assertTrue(later and "never run" in later[0], done.stdout)
         # While a run holds the folder's lock (taken here as a run takes it), its steps are
@@ -702,6 +703,35 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             np.testing.assert_array_equal(mine, fresh, name)
 
 
+class RemovedOutputs(kt.TempDirTestCase):
+    def test_outputs_of_composites_withdrawn_are_counted_as_removed(self):
+        # Composites withdrawn from the input: the fill removes their outputs, and the run's
+        # summary (text and JSON) counts them; it had counted only files written and unchanged.
+        source = kt.shared_path("alaska-ndvi", "observed")
+        inputs = os.path.join(self.tmp, "inputs")
+        os.makedirs(inputs)
+        for path in sorted(glob.glob(os.path.join(source, "ndvi_2004-*.tif"))):
+            shutil.copy(path, inputs)
+        job = os.path.join(self.tmp, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                    'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\n')
+        self.assertEqual(run(job).returncode, 0)
+        withdrawn = sorted(glob.glob(os.path.join(inputs, "*.tif")))[-3:]
+        for path in withdrawn:
+            os.remove(path)
+        done = run(job, "--log", "json")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        step = [json.loads(l) for l in done.stdout.splitlines() if '"step_finished"' in l][0]
+        self.assertEqual(step["removed"], 3)
+        for path in withdrawn:
+            self.assertFalse(os.path.exists(os.path.join(self.tmp, "out", "fill", os.path.basename(path))))
+        shutil.copy(os.path.join(source, "ndvi_2005-05-25.tif"), inputs)
+        os.remove(sorted(glob.glob(os.path.join(inputs, "*.tif")))[0])
+        done = run(job)
+        self.assertIn("1 removed (no longer made)", done.stdout)
+
+
 class ReachAcrossTheWinter(kt.TempDirTestCase):
     def test_a_composite_after_the_winter_redoes_every_year_whose_slice_it_moves(self):
         # Real MODIS NDVI (alaska-ndvi/observed, summers of 2004-2006), then the first composite
@@ -984,6 +1014,9 @@ class BadInput(kt.TempDirTestCase):
                 self.assertIn(w, line[0])
             self.assertEqual(content(self.out), before)
             self.assertEqual(mtimes(self.out), times)
+            status = kt.run_kalends(["status", self.job])
+            self.assertEqual(status.returncode, 1, status.stdout)   # a step failed
+            self.assertIn(" failed ", status.stdout)
             if skippable:
                 skipped = run(self.job, "--skip-bad", "--out", os.path.join(self.tmp, "skip"))
                 self.assertEqual(skipped.returncode, 3, skipped.stdout + skipped.stderr)

@@ -263,12 +263,13 @@ StepKind fill_step_kind() {
       for (const FillSummary& s : tiled.tiles) {
         outcome.outputs_written += s.outputs_written;
         outcome.outputs_unchanged += s.outputs_unchanged;
+        outcome.outputs_removed += s.outputs_removed;
       }
       outcome.notes = tiled_fill_notes(r, tiled);
       return outcome;
     }
     const FillSummary s = run_fill(r, c.progress);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", fill_notes(r, s)};
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", fill_notes(r, s), s.outputs_removed};
   };
   return kind;
 }
