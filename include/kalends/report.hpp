@@ -28,6 +28,10 @@ struct ReportSummary {
   std::size_t bytes = 0;
 };
 
+/// A pixel as the command line and the job file give it: "COLUMN,ROW" or "COLUMN ROW", whole
+/// numbers; UsageError naming `where` otherwise.
+std::pair<int, int> parse_pixel(const std::string& text, const std::string& where);
+
 /// Writes request.html atomically. InputError when the folder holds no layer.
 ReportSummary run_report(const ReportRequest& request);
 

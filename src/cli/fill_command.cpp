@@ -96,7 +96,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--method", r.method.method, "whittaker, harmonic or spacetime")->capture_default_str();
   add_method_options(sub, r.method, o->method_texts);
   sub->add_flag("--smooth", r.smooth, "Write the fitted curve everywhere, not only in gaps");
-  sub->add_option("--every", o->every, "Also write a regular calendar: 8d, 16d or 1M");
+  sub->add_option("--every", o->every, "Also write a regular calendar: 1M (months) or N days from 1 January, such as 16d or 8d");
   sub->add_option("--date-marks", o->marks,
                   "For --every: what an input date marks in its composite: start (MODIS), middle or end")
       ->check(CLI::IsMember({"start", "middle", "end"}))

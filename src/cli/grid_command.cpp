@@ -44,10 +44,17 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
     if (!o->extent.empty()) r.extent = parse_extent(o->extent);
     r.command_line = global.command_line;
     const StudyGridSummary s = run_study_grid(r);
-    if (!s.without_value.empty())
-      std::fprintf(stderr, "note: %zu of %zu layers have no value on the study grid (first: %s): does the extent or clip "
-                           "lie beside the data, or --crs differ from the extent's?\n",
-                   s.without_value.size(), s.outputs.size(), s.without_value.front().c_str());
+    if (!s.without_value.empty()) {
+      // The likely causes of what was given: an extent or clip beside the data, or, with
+      // neither, cells so large that the data covers too little of any (GDAL's average then
+      // leaves it empty).
+      const std::string why = r.extent || !r.clip.empty()
+                                  ? "does the extent or clip lie beside the data, or --crs differ from the extent's?"
+                                  : "are the cells too large for the data (--resolution in the units of --crs)? A "
+                                    "layer covering too little of each cell gets no average";
+      std::fprintf(stderr, "note: %zu of %zu layers have no value on the study grid (first: %s): %s\n",
+                   s.without_value.size(), s.outputs.size(), s.without_value.front().c_str(), why.c_str());
+    }
     if (!global.quiet)
       fmt::print("kalends grid: {} layers on a {} x {} grid -> {} ({} written, {} unchanged)\n", s.outputs.size(),
                  s.width, s.height, r.out_dir, s.outputs_written, s.outputs_unchanged);

@@ -3,6 +3,7 @@
 #include <sys/resource.h>
 
 #include <CLI/CLI.hpp>
+#include <cctype>
 #include <cstdio>
 #include <iostream>
 #include <filesystem>
@@ -24,6 +25,35 @@ void raise_open_file_limit() {
     limit.rlim_cur = limit.rlim_max;
     setrlimit(RLIMIT_NOFILE, &limit);
   }
+}
+
+// A command-line mistake as one line naming it: an unknown command or option rather than
+// CLI11's "A subcommand is required" or "The following arguments were not expected: 3 --lamda".
+std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, char** argv) {
+  CLI::App* command = nullptr;
+  for (CLI::App* sub : app.get_subcommands({}))
+    if (sub->parsed()) command = sub;
+  std::string commands;
+  for (CLI::App* sub : app.get_subcommands({})) commands += (commands.empty() ? "" : ", ") + sub->get_name();
+  if (!command) {
+    for (int i = 1; i < argc; ++i)
+      if (argv[i][0] != '-') return "unknown command '" + std::string(argv[i]) + "'; the commands: " + commands;
+    return "give a command: " + commands + " (kalends --help says what each does)";
+  }
+  const std::string name = command->get_name();
+  // An unknown option first: a missing required option is often its consequence (--outt).
+  for (int i = 1; i < argc; ++i) {
+      const std::string arg = argv[i];
+      // Not options: values such as --offset -0.1.
+      if (arg.size() < 2 || arg[0] != '-' || std::isdigit(static_cast<unsigned char>(arg[1])) || arg[1] == '.') continue;
+      const std::string option = arg.substr(0, arg.find('='));
+      if (!command->get_option_no_throw(option) && !app.get_option_no_throw(option))
+        return name + ": unknown option '" + option + "' (kalends " + name + " --help lists them)";
+  }
+  std::string text = e.what();
+  for (char& c : text)
+    if (c == '\n') c = ' ';
+  return name + ": " + text;
 }
 
 }  // namespace
@@ -52,7 +82,9 @@ int main(int argc, char** argv) {
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
-    return app.exit(e) == 0 ? 0 : 2;
+    if (e.get_exit_code() == 0) return app.exit(e);  // --help, --version
+    std::cerr << "kalends: " << parse_error_line(app, e, argc, argv) << "\n";
+    return 2;
   }
   try {
     for (auto& [command, action] : actions) {

@@ -17,7 +17,7 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
   ReportRequest& r = o->request;
   sub->add_option("folder", r.folder, "A job's output folder, or a step's")->required();
   sub->add_option("--html", r.html, "The page to write")->required();
-  sub->add_option("--pixels", o->pixels, "Pixels to plot, 'column,row;column,row' (default: spread over the grid)");
+  sub->add_option("--pixels", o->pixels, "Pixels to plot, 'column,row;column,row' (or 'column row;...'; default: spread over the grid)");
   sub->add_option("--samples", r.samples, "Pixels spread over the grid when --pixels is not given")->capture_default_str();
   sub->add_option("--map-size", r.map_size, "Longest side of each quicklook map (pixels)")->capture_default_str();
   sub->add_option("--title", r.title, "Title of the page (default: the folder)");
@@ -26,11 +26,7 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
     std::string rest = o->pixels;
     while (!rest.empty()) {
       const auto semicolon = rest.find(';');
-      const std::string pair = rest.substr(0, semicolon);
-      const auto comma = pair.find(',');
-      if (comma == std::string::npos) throw UsageError("--pixels '" + o->pixels + "'", "write column,row;column,row");
-      const double c = parse_number(pair.substr(0, comma), "--pixels"), row = parse_number(pair.substr(comma + 1), "--pixels");
-      r.pixels.emplace_back(static_cast<int>(c), static_cast<int>(row));
+      r.pixels.push_back(parse_pixel(rest.substr(0, semicolon), "--pixels"));
       rest = semicolon == std::string::npos ? "" : rest.substr(semicolon + 1);
     }
     if (r.map_size < 16 || r.map_size > 4096) throw UsageError("--map-size", "between 16 and 4096 pixels");

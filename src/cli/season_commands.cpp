@@ -75,7 +75,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   SeasonsRequest& r = o->request;
   sub->add_option("input", r.input, "Folder of `kalends fill` outputs, a quoted glob, or a multi-band raster")->required();
   sub->add_option("--out", r.out_dir, "Output folder")->required();
-  sub->add_option("--period", o->period, "Calendar: 1M (months), 16d or 8d")->capture_default_str();
+  sub->add_option("--period", o->period, "Calendar: 1M (months) or N days from 1 January, such as 16d or 8d")->capture_default_str();
   sub->add_option("--years", o->years, "Years to use, e.g. 2004-2009 or 2006");
   sub->add_option("--date-marks", o->marks, "What an input date marks in its composite: start, middle or end")
       ->check(CLI::IsMember({"start", "middle", "end"}))

@@ -176,7 +176,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--threshold", r.threshold,
                   "A period is suitable where its suitability is above this")
       ->capture_default_str();
-  sub->add_option("--period", o->period, "Calendar: 1M (months), 16d or 8d")->capture_default_str();
+  sub->add_option("--period", o->period, "Calendar: 1M (months) or N days from 1 January, such as 16d or 8d")->capture_default_str();
   sub->add_option("--years", o->years, "Years to use, e.g. 2021-2023 or 2022");
   sub->add_option("--parameters", r.parameters_file, "TOML file overriding the parameter table");
   sub->add_option("--name", r.name, "Output name prefix (default: the model)");

@@ -52,6 +52,22 @@ void require_reflectance(const Stack& stack, const std::string& option) {
                                  median));
 }
 
+// NDVI does not depend on a scale both bands share, but red and NIR on different scales (one
+// file's scale factor set, the other's not) give an index of nonsense without a word. Red and
+// NIR medians over a scene differ by less than about 30 times even over dense vegetation (red
+// 0.02-0.04, NIR 0.3-0.5; from memory); a factor over 100 is a scale mismatch (the usual ones
+// are 250 and 10000).
+void require_same_scale(const Stack& red, const Stack& nir) {
+  const double r = first_date_median(red, 512), n = first_date_median(nir, 512);
+  if (!(r > 0 && n > 0)) return;  // nothing to judge by
+  const double factor = std::max(r, n) / std::min(r, n);
+  if (factor > 100)
+    throw UsageError("--red/--nir", fmt::format("red (median {:g}, {}) and NIR (median {:g}, {}) differ {:.0f}-fold: "
+                                                "they are not on one scale (a scale factor set on one band's files "
+                                                "only?); NDVI needs both in the same units",
+                                                r, red.layers().front().path, n, nir.layers().front().path, factor));
+}
+
 }  // namespace
 
 void check_index_options(const IndexRequest& request) {
@@ -88,6 +104,7 @@ IndexSummary run_index(const IndexRequest& request) {
   const Stack red = Stack::open(request.red, rules_for(request.red_band));
   const Stack nir = Stack::open(request.nir, rules_for(request.nir_band));
   const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
+  require_same_scale(red, nir);
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {

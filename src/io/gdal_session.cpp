@@ -121,6 +121,19 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
       GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY | GDAL_OF_VERBOSE_ERROR));
   quiet.reset();
   if (!dataset) throw InputError(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
+  // A file GDAL opens with a warning that its structure is corrupt (a GeoTIFF cut short in its
+  // tags: "GeoTIFF tags apparently corrupt") would be read without its georeferencing, and
+  // then named as a grid or CRS that differs. The GeoTIFF driver reads those tags on first use.
+  double transform[6];
+  dataset->GetGeoTransform(transform);
+  dataset->GetSpatialRef();
+  if (CPLGetLastErrorType() != CE_None) {
+    std::string last = CPLGetLastErrorMsg();
+    std::string lower = last;
+    for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
+    if (lower.find("corrupt") != std::string::npos)
+      throw InputError(path, "is damaged (GDAL: " + last + "); an incomplete download or copy?");
+  }
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
   require_not_cut_short(file_in_connection(path));
   return dataset;

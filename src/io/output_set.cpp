@@ -203,8 +203,9 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
     std::error_code ec;
     if (!fs::exists(spec.path, ec)) continue;
     if (!raster_metadata(spec.path).count("KALENDS_VERSION"))
-      throw OutputError(spec.path, "exists and was not written by kalends; move it away or choose another output "
-                                   "folder (nothing was replaced)");
+      // The user's choice of folder, as an --out naming a file is: exit 2, not a failed write.
+      throw UsageError(spec.path, "exists and was not written by kalends; move it away or choose another output "
+                                  "folder (nothing was replaced)");
   }
   OGRSpatialReference srs;
   const bool has_crs = !grid.crs_wkt.empty() && srs.importFromWkt(grid.crs_wkt.c_str()) == OGRERR_NONE;

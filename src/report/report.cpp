@@ -194,6 +194,18 @@ struct Plots {
 // The pixels of a validation's series.csv (written by kalends validate beside its report.md):
 // one plot each of the truth, kept and withheld, and every scored curve, with the RMSE of each
 // on that pixel's withheld values. A file not in validate's layout is named, not drawn.
+}  // namespace
+
+std::pair<int, int> parse_pixel(const std::string& text, const std::string& where) {
+  static const std::regex column_row(R"(\s*(\d{1,9})\s*(?:,|\s)\s*(\d{1,9})\s*)");
+  std::smatch m;
+  if (!std::regex_match(text, m, column_row))
+    throw UsageError(where + " '" + text + "'", "expected COLUMN,ROW (or COLUMN ROW), two whole numbers");
+  return {std::stoi(m[1]), std::stoi(m[2])};
+}
+
+namespace {
+
 Plots validation_series_html(const fs::path& csv, const fs::path& root) {
   Plots plots;
   std::istringstream in(read_file(csv));
@@ -291,6 +303,9 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
           cycle[p].push_back(read_pixel(*ds, b, pixels[p].first, pixels[p].second));
     }
     int raw_missing = 0;
+    // Each raw source opened once (a GRIB of 744 hours is the source of 744 fill outputs), as
+    // the commands open it: quietly, where the GRIB driver would print its inventory warnings.
+    std::map<std::string, GDALDatasetUniquePtr> raw_sources;
     for (const SeriesFile& f : s.files) {
       GDALDatasetUniquePtr ds = open_raster(f.path);
       const char* source_item = ds->GetMetadataItem("KALENDS_SOURCE");
@@ -299,10 +314,17 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
       static const std::regex band_suffix(R"((.*) band (\d+))");
       std::smatch m;
       if (std::regex_match(source, m, band_suffix)) source = m[1], source_band = std::stoi(m[2]);
-      GDALDatasetUniquePtr raw;
+      GDALDataset* raw = nullptr;
       if (!source.empty()) {
-        CPLErrorReset();
-        raw.reset(GDALDataset::Open(source.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+        auto [it, added] = raw_sources.try_emplace(source);
+        if (added) {
+          try {
+            it->second = open_raster(source);
+          } catch (const InputError&) {
+            // gone or unreadable: the plot shows the fill without the observations
+          }
+        }
+        raw = it->second.get();
       }
       if (!raw) ++raw_missing;
       for (std::size_t p = 0; p < pixels.size(); ++p) {

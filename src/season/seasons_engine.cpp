@@ -112,6 +112,11 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   check_seasons_options(request);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   const std::vector<TimePoint> times = stack.times();
+  // The days a composite stands for come from the spacing of the dates; one date has none.
+  if (times.size() < 2)
+    throw InputError(request.input, "holds a single date (" + times.front().label() +
+                                        "): the days each composite stands for come from the spacing of the dates; "
+                                        "give two or more");
   int first_year = times.front().date().year, last_year = times.back().date().year;
   if (request.first_year) first_year = std::max(first_year, *request.first_year);
   if (request.last_year) last_year = std::min(last_year, *request.last_year);

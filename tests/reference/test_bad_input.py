@@ -275,14 +275,15 @@ class BadInput(kt.TempDirTestCase):
 
     def test_a_users_raster_under_an_output_name_is_not_replaced(self):
         # A raster of the user's that happens to carry an output's name (no KALENDS_VERSION):
-        # replacing it would lose it. Refused, exit 1 (an output problem), nothing written.
+        # replacing it would lose it. Refused, exit 2 (the choice of --out, as an --out naming a
+        # file; it had been 1, which is kept for failed writes), nothing written.
         out = os.path.join(self.tmp, "users-named")
         os.makedirs(out)
         mine = os.path.join(out, "ndvi_2020-01-01.tif")
         kt.write_raster(mine, np.full((3, 3), 7, np.uint8))
         before = snapshot(out)
         done = kt.run_kalends(["fill", os.path.join(self.good, "*.tif"), "--out", out])
-        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertEqual(done.returncode, 2, done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("ndvi_2020-01-01.tif: exists and was not written by kalends", done.stderr)
         self.assertEqual(snapshot(out), before)
@@ -350,6 +351,45 @@ class BadInput(kt.TempDirTestCase):
         # With a calendar its folder is made too, and removed with the output folder.
         self.check_fails([os.path.join(folder, "*.tif"), "--every", "1M"], ["ndvi_2020-02-02.tif"],
                          ["read", "truncat", "corrupt"], "truncated, with a calendar")
+
+    def test_geotiff_cut_in_its_georeferencing_tags(self):
+        # Cut inside the GeoTIFF keys' text (the CRS name): the file opens, GDAL warns that the
+        # tags are corrupt and ignores them, so the file has no CRS. It had been named as a CRS
+        # that differs from the rest of the stack; it is named as damaged.
+        folder = self.variant("cut-tags")
+        path = os.path.join(folder, "ndvi_2020-02-02.tif")
+        with open(path, "rb") as f:
+            at = f.read().find(b"WGS 84")
+        self.assertGreater(at, 0)
+        os.truncate(path, at + 3)
+        gdal = kt.gdal()
+        gdal.PushErrorHandler("CPLQuietErrorHandler")
+        try:
+            ds = gdal.Open(path)
+            self.assertEqual(ds.GetProjection(), "")            # the case intended: CRS lost
+            self.assertIn("corrupt", gdal.GetLastErrorMsg())
+            ds = None
+        finally:
+            gdal.PopErrorHandler()
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-02.tif"], ["is damaged"],
+                         "GeoTIFF tags cut")
+
+    def test_command_line_mistakes_are_named(self):
+        # A mistyped command or option: one line naming it, exit 2 (CLI11 had said "A
+        # subcommand is required" or "The following arguments were not expected: 3 --lamda").
+        for args, expected in ((["fil"], "kalends: unknown command 'fil'; the commands: inspect, fill"),
+                               ([], "kalends: give a command: inspect, fill"),
+                               (["fill", "x/*.tif", "--out", "o", "--lamda", "3"],
+                                "kalends: fill: unknown option '--lamda'"),
+                               (["fill", "--lamda", "3", "x/*.tif"], "kalends: fill: unknown option '--lamda'"),
+                               (["index", "--red", "r.tif", "--offset", "-0.1", "--out", "o"],
+                                "kalends: index: --nir is required")):
+            done = kt.run_kalends(args)
+            self.assertEqual(done.returncode, 2, (args, done.stderr))
+            self.assertEqual(done.stdout, "")
+            lines = done.stderr.strip().splitlines()
+            self.assertEqual(len(lines), 1, done.stderr)
+            self.assertTrue(lines[0].startswith(expected), (args, lines[0]))
 
     def test_truncated_geotiff_header(self):
         # Cut inside the header: the file no longer opens.

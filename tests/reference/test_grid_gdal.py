@@ -129,6 +129,18 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "degrees")))
 
 
+    def test_cells_too_large_for_the_data_are_named_as_such(self):
+        # No extent or clip: a cell of 0.1 degree holds too little of the scene for GDAL's
+        # average, and the layer comes out empty (as gdalwarp -r average gives it). The note had
+        # asked whether an extent or clip, given nowhere, lay beside the data.
+        source = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        done = kt.run_kalends(["grid", source, "--out", os.path.join(self.tmp, "coarse-cells"), "--crs",
+                               "EPSG:4326", "--resolution", "0.1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("have no value on the study grid", done.stderr)
+        self.assertIn("are the cells too large for the data", done.stderr)
+        self.assertNotIn("extent or clip", done.stderr)
+
     def test_two_inputs_under_one_output_name_are_refused(self):
         # layer.tif in two folders given to one run: the second had replaced the first's output,
         # and the run said it wrote both. Refused before anything is written; their parent

@@ -359,6 +359,17 @@ class ShortAndGappyStacks(kt.TempDirTestCase):
         self.assertIsNone(year["share_below_minus_1_sd"])    # no standardised anomaly is defined
         self.assertIsNone(year["share_above_1_sd"])
 
+    def test_a_single_date_is_refused(self):
+        # One date has no spacing to say how many days its composite stands for; it had been
+        # put into one period as if it covered an unstated span.
+        one = os.path.join(self.tmp, "single")
+        os.makedirs(one)
+        shutil.copy(sorted(glob.glob(os.path.join(self.folder, "ndvi_2020-*.tif")))[3], one)
+        done = kt.run_kalends(["seasons", one, "--out", os.path.join(self.tmp, "s-single")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("holds a single date (2020-02-18)", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "s-single")))
+
     def test_a_date_without_data_is_named_and_top_0_lists_none(self):
         out = os.path.join(self.tmp, "s-gap")
         done = kt.run_kalends(["seasons", self.folder, "--out", out, "--period", "16d"])
@@ -507,6 +518,14 @@ class RealData(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
         year = g.Open(os.path.join(again, "era5-2mt-2019-03-uk_year_2019.tif")).ReadAsArray().astype(np.float64)
         np.testing.assert_allclose(year[2], hours.mean(axis=0), atol=1e-3)
+        # A report of those fills reads the raw GRIB each names (KALENDS_SOURCE) as the commands
+        # do, quietly and once: it had printed the GRIB driver's inventory warnings ("ERROR: Ran
+        # out of file reading SECT0") once per fill output, 744 times. Given as "column row".
+        done = kt.run_kalends(["report", filled, "--html", os.path.join(self.tmp, "hourly.html"),
+                               "--pixels", "3 4;10,20"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.stderr, "")
+        self.assertIn("2 time series", done.stdout)
 
     def test_ndvi_and_evi_from_landsat_equal_numpy(self):
         path = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
@@ -560,6 +579,34 @@ class RealData(kt.TempDirTestCase):
         self.assertIn("no near-infrared layer", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
+
+    def test_ndvi_refuses_red_and_nir_on_different_scales(self):
+        # Landsat 7 bands 3 and 4 (shared data), red with a scale factor of 0.004 and NIR
+        # without: an NDVI of the two is nonsense (median 0.99 against -0.07 on one scale), and
+        # had been written without a word. Refused, naming both bands' medians.
+        g = kt.gdal()
+        source = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        folder = os.path.join(self.tmp, "scales")
+        os.makedirs(folder)
+        g.Translate(os.path.join(folder, "red_2021-01-10.tif"), source, bandList=[3], scaleParams=None)
+        ds = g.Open(os.path.join(folder, "red_2021-01-10.tif"), g.GA_Update)
+        ds.GetRasterBand(1).SetScale(0.004)
+        ds = None
+        g.Translate(os.path.join(folder, "nir_2021-01-10.tif"), source, bandList=[4])
+        out = os.path.join(self.tmp, "scales-out")
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("they are not on one scale", done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1)
+        self.assertFalse(os.path.exists(out))
+        # Both on one scale: accepted.
+        ds = g.Open(os.path.join(folder, "nir_2021-01-10.tif"), g.GA_Update)
+        ds.GetRasterBand(1).SetScale(0.004)
+        ds = None
+        done = kt.run_kalends(["-q", "index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
 
     def test_index_refuses_an_out_among_its_band_files(self):
         # The index written among the red files would be read back as a red layer of the same

@@ -21,12 +21,13 @@ ReportRequest report_request(const StepContext& c) {
   r.html = !c.has("html") ? (std::filesystem::path(c.folder) / "report.html").string()
            : html.is_absolute() ? html.string()
                                 : (std::filesystem::path(c.job_path).parent_path() / html).string();
-  static const std::regex column_row(R"(\s*(\d{1,9})\s+(\d{1,9})\s*)");
-  for (const std::string& pair : c.list("pixels")) {  // "column row" pairs, e.g. ["100 200", "40 80"]
-    std::smatch m;
-    if (!std::regex_match(pair, m, column_row))
-      throw UsageError("--pixels '" + pair + "'", "expected \"COLUMN ROW\", two whole numbers");
-    r.pixels.emplace_back(std::stoi(m[1]), std::stoi(m[2]));
+  // "COLUMN ROW" items: ["100 200", "40 80"]. A comma splits an item in two (list keys are
+  // comma lists), which is named rather than read as two half pixels.
+  for (const std::string& pair : c.list("pixels")) {
+    if (pair.find_first_of(" \t") == std::string::npos || pair.find_first_not_of(" \t0123456789") != std::string::npos)
+      throw UsageError("'pixels' '" + pair + "'", "expected \"COLUMN ROW\" per item, two whole numbers, as in "
+                                                 "pixels = [\"120 340\", \"400 80\"] (a comma inside an item splits it)");
+    r.pixels.push_back(parse_pixel(pair, "'pixels'"));
   }
   r.samples = c.integer("samples", r.samples);
   r.map_size = c.integer("map_size", r.map_size);
