@@ -409,7 +409,19 @@ ReportSummary run_report(const ReportRequest& request) {
       if (fs::is_directory(root / step, ec)) searched.push_back((root / step).string()), prefixes.push_back(step);
     if (searched.empty()) throw InputError(request.folder, "none of the steps shown has a folder here");
   }
-  const std::vector<CovariateSeries> all = find_covariates(searched, false, prefixes);
+  // A folder of validation reports alone (validate's OUT without --keep-work) still makes a page
+  // of its scores and plots; a folder with neither layers nor reports is refused.
+  std::vector<CovariateSeries> all;
+  try {
+    all = find_covariates(searched, false, prefixes);
+  } catch (const InputError&) {
+    bool has_report = false;
+    for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator() && !has_report;
+         ++it)
+      has_report = it->path().filename() == "report.json" && fs::exists(it->path().parent_path() / "report.md") &&
+                   read_file(it->path()).find("\"scores\"") != std::string::npos;
+    if (!has_report) throw;
+  }
   ReportSummary summary;
   const std::string title = request.title.empty() ? canonical_text(root) : request.title;
 
@@ -505,6 +517,7 @@ ReportSummary run_report(const ReportRequest& request) {
       "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
       "{3} layers.</p></header>\n",
       escape(title), style, KALENDS_VERSION, all.size());
+  if (maps.empty()) maps = "<p>No raster layer in this folder.</p>\n";
   html += "<section id=\"maps\"><h2>Layers</h2>\n<div class=\"maps\">\n" + maps + "</div></section>\n";
   html += "<section id=\"validation\"><h2>Validation</h2>\n" + validation + "</section>\n";
   html += "<section id=\"fill-statistics\"><h2>Fill statistics</h2>\n" + statistics + "</section>\n";

@@ -251,6 +251,23 @@ class ValidateOptions(kt.TempDirTestCase):
             self.assertIsNotNone(caption, (c, y))
             self.assertAlmostEqual(float(caption.group(1)), float(np.sqrt(np.mean(np.square(errors)))), places=4)
 
+    def test_report_of_a_validation_folder_alone(self):
+        # validate's OUT without --keep-work holds no raster: the page shows the scores and the
+        # pixels' plots (it had been refused: "no raster layers found"). A folder with neither
+        # layers nor reports is still refused.
+        out = os.path.join(self.tmp, "only-validation")
+        validate(self, os.path.join(self.premasked, "ndvi_*.tif"), out)
+        done = kt.run_kalends(["report", out, "--html", os.path.join(self.tmp, "only-validation.html")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("0 maps, 0 time series, 1 validation reports (3 pixel plots)", done.stdout)
+        with open(os.path.join(self.tmp, "only-validation.html")) as f:
+            self.assertIn("No raster layer in this folder.", f.read())
+        os.makedirs(os.path.join(self.tmp, "nothing"))
+        done = kt.run_kalends(["report", os.path.join(self.tmp, "nothing"), "--html",
+                               os.path.join(self.tmp, "nothing.html")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("no raster layers found", done.stderr)
+
     def test_report_places_hourly_dates_at_their_hour(self):
         # A stack of hourly layers labels its dates "YYYY-MM-DDTHHMM": the report places each at
         # its hour, not all at midnight. The series.csv of a daily validation, relabelled as
