@@ -61,6 +61,18 @@ class InspectRealData(kt.TempDirTestCase):
         self.assertEqual(report["time_grid"]["step_days"], float(np.median(np.diff([d.toordinal() for d in days]))))
         self.assertEqual(report["time_grid"]["slots_with_data"], len(files))
 
+    def test_a_share_short_of_all_is_not_shown_as_100_percent(self):
+        # alaska-ndvi/observed: its best-observed date has 9995 of 10000 pixels (numpy). The
+        # summary had rounded that to "100.0 %", which reads as every pixel.
+        folder = kt.shared_path("alaska-ndvi", "observed")
+        g = kt.gdal()
+        best = max(int(np.isfinite(g.Open(f).ReadAsArray()).sum()) for f in glob.glob(os.path.join(folder, "*.tif")))
+        self.assertLess(best, 10000)
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        line = [l for l in done.stdout.splitlines() if "most" in l][0]
+        self.assertRegex(line, r"most 99\.9 % on")
+
     def test_netcdf_time_axis_crs_and_fill_value(self):
         path = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
         source = 'NETCDF:"%s":tas' % path
