@@ -353,7 +353,13 @@ class Runner {
         s.state = "failed";
         s.detail = record->finished + " UTC: " + record->message;
       } else {
-        s.outputs = int(record->outputs.size());
+        // The files a user sees: not the hidden ones (a tiled fill's .mosaic views), which the
+        // run's "files written" does not count either.
+        s.outputs = int(std::count_if(record->outputs.begin(), record->outputs.end(), [&](const std::string& p) {
+          for (const auto& part : fs::path(p).lexically_relative(out_))
+            if (const std::string name = part.string(); name.size() > 1 && name[0] == '.' && name != "..") return false;
+          return true;
+        }));
         const bool complete = outputs_exist(*record);
         if (record->fingerprint == fingerprint && complete) {
           s.state = "done";

@@ -14,6 +14,7 @@ Run: /usr/bin/python3 -m unittest -v tests/integration/test_tiles.py
 
 import glob
 import os
+import re
 import shutil
 import sys
 import unittest
@@ -213,6 +214,12 @@ class TiledFill(kt.TempDirTestCase):
         done = run()
         self.assertEqual(done.returncode, 0, done.stderr)
         before = {p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(job_dir, "out", "fill", "h*", "*.tif"))}
+        # status counts the step's files a user sees, not the hidden ones below them.
+        seen = [p for p in glob.glob(os.path.join(job_dir, "out", "fill", "**", "*"), recursive=True)
+                if os.path.isfile(p)]
+        hidden = [p for p in glob.glob(os.path.join(job_dir, "out", "fill", "**", ".*"), recursive=True)]
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertIn("(%d files)" % len(seen), status.stdout, (len(hidden), status.stdout))
         # A reprocessed composite for one tile: same date, new values.
         g = kt.gdal()
         path = sorted(glob.glob(os.path.join(tiles, "h01v01", "ndvi_*.tif")))[5]

@@ -107,6 +107,10 @@ class ValidateOptions(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
             self.assertIn("--subset", done.stderr)
+        # One that starts inside and reaches past the edge is said to, not to lie outside.
+        done = kt.run_kalends(["validate", os.path.join(self.premasked, "ndvi_*.tif"), "--out",
+                               os.path.join(self.tmp, "v_bad_subset"), "--subset", "40,5,30,28"])
+        self.assertIn("region 40,5 30x28 reaches beyond the raster of 48x40 px", done.stderr)
 
     def test_a_rule_without_a_qa_stack_is_refused(self):
         done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--out",
