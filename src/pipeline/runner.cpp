@@ -823,6 +823,12 @@ class Runner {
     const std::string folder = step_folder(base_, step.id);
     remove_partials(folder);
     // With --skip-bad, a bad input file is left out and the step tried again.
+    // A failed step's time is reported too (the JSON log's step_finished had said 0).
+    struct Timer {
+      StepReport& report;
+      std::chrono::steady_clock::time_point started;
+      ~Timer() { report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count(); }
+    } timer{report, started};
     for (int attempt = 0;; ++attempt) {
       try {
         execute(step, folder, report);

@@ -1070,6 +1070,19 @@ class BadInput(kt.TempDirTestCase):
             kt.write_raster(path, np.zeros((10, 10), np.int16), geotransform=(0, 250, 0, 0, 0, -250), epsg=32736)
             return path
         self.check(regrid, ["grid is 10 x 10 px, that of the rest of the stack"])
+        # The JSON log reports how long the failed step took (its 24 files opened: over 0 ms).
+        stack = os.path.join(self.folder, "stack")
+        backup = os.path.join(self.tmp, "backup-json")
+        shutil.copytree(stack, backup)
+        try:
+            regrid(stack)
+            done = run(self.job, "--log", "json")
+            step = [json.loads(l) for l in done.stdout.splitlines() if '"step_finished"' in l][0]
+            self.assertEqual(step["action"], "failed")
+            self.assertGreater(step["seconds"], 0)
+        finally:
+            shutil.rmtree(stack)
+            shutil.copytree(backup, stack)
 
     def test_crs_differs(self):
         def reproject(stack):
