@@ -84,6 +84,24 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
   if (mosaic) {
     summary.mosaic_dir = (out / "mosaic").string();
     write_mosaics(folders, summary.mosaic_dir);
+  } else if (!only_tiles) {
+    // An earlier run's mosaic views, no longer made, would point at outputs this run removed:
+    // they go, as outputs of dates no longer in the stack do.
+    std::error_code ec;
+    const fs::path views = out / "mosaic";
+    if (fs::is_directory(views, ec)) {
+      for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)
+        if (it->is_regular_file() && it->path().extension() == ".vrt") fs::remove(it->path(), ec);
+      for (bool removed = true; removed;) {  // the folders left empty, deepest first
+        removed = false;
+        for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)
+          if (it->is_directory() && fs::is_empty(it->path(), ec) && fs::remove(it->path(), ec)) {
+            removed = true;
+            break;
+          }
+      }
+      if (fs::is_empty(views, ec)) fs::remove(views, ec);
+    }
   }
   return summary;
 }

@@ -218,22 +218,38 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   for (const std::string& path : files) {
     const std::string name = tile_name_in(path, tile_field);
     if (name.empty()) throw InputError(path, "does not match the tile pattern '" + tile_field + "'");
+    // Each tile's outputs go to OUT/<tile>/, beside OUT/mosaic/ and the hidden OUT/.mosaic/.
+    if (name == "mosaic" || name.front() == '.')
+      throw InputError(path, "is in a tile named '" + name + "', the name of the fill's own mosaic folder; rename "
+                                                           "the tile");
     by_name[name].name = name;
     by_name[name].files.push_back(connection ? connection->connection(path) : path);
   }
   TileSet set;
   std::vector<std::pair<std::string, Grid>> grids;
   for (auto& [name, tile] : by_name) {
-    const Grid g = header_of(tile.files.front());
-    for (const std::string& f : tile.files) {
-      const Grid other = header_of(f);
-      if (other.width != g.width || other.height != g.height || other.geotransform != g.geotransform)
-        throw InputError(f, "lies on a different grid from the other files of tile " + name + " (" +
-                                tile.files.front() + ")");
-      if (!same_crs(other.crs_wkt, g.crs_wkt))
-        throw InputError(f, "has a different CRS from the other files of tile " + name + " (" + tile.files.front() + ")");
+    // Each file against the grid most of the tile's files share (the first's without a
+    // majority), so that an odd first file is the one named.
+    std::vector<Grid> headers;
+    for (const std::string& f : tile.files) headers.push_back(header_of(f));
+    auto same_grid = [](const Grid& a, const Grid& b) {
+      return a.width == b.width && a.height == b.height && a.geotransform == b.geotransform;
+    };
+    std::size_t reference = 0, most = 0;
+    for (std::size_t i = 0; i < headers.size() && most * 2 <= headers.size(); ++i) {
+      const std::size_t count = std::size_t(std::count_if(headers.begin(), headers.end(),
+                                                          [&](const Grid& h) { return same_grid(h, headers[i]); }));
+      if (count > most) reference = i, most = count;
     }
-    grids.emplace_back(tile.files.front(), g);
+    const Grid& g = headers[reference];
+    const std::string& from = tile.files[reference];
+    for (std::size_t i = 0; i < headers.size(); ++i) {
+      if (!same_grid(headers[i], g))
+        throw InputError(tile.files[i], "lies on a different grid from the other files of tile " + name + " (" + from + ")");
+      if (!same_crs(headers[i].crs_wkt, g.crs_wkt))
+        throw InputError(tile.files[i], "has a different CRS from the other files of tile " + name + " (" + from + ")");
+    }
+    grids.emplace_back(from, g);
     set.tiles.push_back(tile);
   }
   if (set.tiles.empty()) throw InputError(pattern, "no file matches this pattern");

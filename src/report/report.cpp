@@ -8,10 +8,12 @@
 
 #include <fmt/format.h>
 
+#include <algorithm>
 #include <cmath>
 #include <filesystem>
 #include <fstream>
 #include <map>
+#include <optional>
 #include <regex>
 #include <sstream>
 
@@ -191,6 +193,24 @@ struct Plots {
   int count = 0;
 };
 
+// The pixel of a fill output's raw source that lies under the output's pixel (c, r): the same
+// where the two grids are one; else through both geotransforms (a tile's outputs name the
+// mosaic of all the tiles as their source). None where it falls outside the source.
+std::optional<std::pair<int, int>> source_pixel(GDALDataset& output, GDALDataset& source, int c, int r) {
+  double a[6], b[6];
+  const bool georeferenced = output.GetGeoTransform(a) == CE_None && source.GetGeoTransform(b) == CE_None;
+  const bool same = !georeferenced || (std::equal(a, a + 6, b) && output.GetRasterXSize() == source.GetRasterXSize() &&
+                                       output.GetRasterYSize() == source.GetRasterYSize());
+  if (same) return std::pair{c, r};
+  const double x = a[0] + (c + 0.5) * a[1] + (r + 0.5) * a[2], y = a[3] + (c + 0.5) * a[4] + (r + 0.5) * a[5];
+  const double det = b[1] * b[5] - b[2] * b[4];
+  if (det == 0) return std::nullopt;
+  const double dx = x - b[0], dy = y - b[3];
+  const int sc = int(std::floor((b[5] * dx - b[2] * dy) / det)), sr = int(std::floor((-b[4] * dx + b[1] * dy) / det));
+  if (sc < 0 || sr < 0 || sc >= source.GetRasterXSize() || sr >= source.GetRasterYSize()) return std::nullopt;
+  return std::pair{sc, sr};
+}
+
 // The pixels of a validation's series.csv (written by kalends validate beside its report.md):
 // one plot each of the truth, kept and withheld, and every scored curve, with the RMSE of each
 // on that pixel's withheld values. A file not in validate's layout is named, not drawn.
@@ -335,7 +355,9 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
         d.sd = read_pixel(*ds, 2, c, r);
         const double flag = read_pixel(*ds, 3, c, r);
         d.flag = std::isnan(flag) ? 3 : int(flag);
-        d.raw = raw && (d.flag == 0 || d.flag == 1) ? read_pixel(*raw, source_band, c, r) : NAN;
+        d.raw = NAN;
+        if (raw && (d.flag == 0 || d.flag == 1))
+          if (const auto at = source_pixel(*ds, *raw, c, r)) d.raw = read_pixel(*raw, source_band, at->first, at->second);
         d.synoptic = NAN;
         if (synoptic) {
           const int k = period_index(*synoptic->period, f.time.date());

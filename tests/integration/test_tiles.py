@@ -181,6 +181,68 @@ class TiledFill(kt.TempDirTestCase):
         self.assertIn(os.path.basename(last) + ": has a different CRS from the other files of tile h00v00",
                       done.stderr)
 
+    def test_a_tiles_report_draws_its_own_observations(self):
+        # A tile's outputs name the mosaic of all tiles as their raw source (KALENDS_SOURCE); the
+        # report must read it where the tile's pixel lies, so each observation kept (flag 0) sits
+        # on the filled curve, whose value there is that observation. It had read the mosaic at
+        # the tile's own column and row: another tile's observations.
+        out = os.path.join(self.tmp, "report-tiles")
+        kt.run_fill_ok(self, [os.path.join(self.tiles, "h*v*", "ndvi_*.tif"), "--tiles",
+                              os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", out, "--lambda", "10"])
+        html = os.path.join(self.tmp, "tile-report.html")
+        done = kt.run_kalends(["report", os.path.join(out, "h01v01"), "--html", html, "--pixels", "5,5"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            page = f.read().split('id="time-series"')[1]
+        dots = [(float(x), float(y)) for x, y in re.findall(r'class="observed" cx="([\d.]+)" cy="([\d.]+)"', page)]
+        curve = set()
+        for points in re.findall(r'class="filled"[^>]*points="([^"]+)"', page):
+            curve.update(tuple(map(float, p.split(","))) for p in points.split())
+        flags = [kt.read_output(p)["flag"][5, 5] for p in sorted(glob.glob(os.path.join(out, "h01v01", "ndvi_*.tif")))]
+        self.assertEqual(len(dots), sum(1 for f in flags if f == 0))
+        self.assertGreater(len(dots), 5)
+        for dot in dots:
+            self.assertIn(dot, curve)
+
+    def test_mosaic_views_and_tile_names(self):
+        # A rerun without --mosaic removes the earlier mosaic views (they pointed at outputs the
+        # rerun removed, and broke grid and extract); a tile named 'mosaic' is refused; a tile
+        # whose first file is the odd one names that file.
+        g = kt.gdal()
+        out = os.path.join(self.tmp, "views")
+        kt.run_fill_ok(self, [os.path.join(self.tiles, "h*v*", "ndvi_*.tif"), "--tiles",
+                              os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", out, "--lambda", "10"])
+        self.assertTrue(glob.glob(os.path.join(out, "mosaic", "*.vrt")))
+        fewer = os.path.join(self.tmp, "fewer-dates")
+        for tile in ("h00v00", "h01v00", "h00v01", "h01v01"):
+            os.makedirs(os.path.join(fewer, tile))
+            for path in sorted(glob.glob(os.path.join(self.tiles, tile, "ndvi_*.tif")))[:6]:
+                shutil.copy(path, os.path.join(fewer, tile))
+        kt.run_fill_ok(self, [os.path.join(fewer, "h*v*", "ndvi_*.tif"), "--tiles",
+                              os.path.join(fewer, "{tile}", ""), "--out", out, "--lambda", "10"])
+        self.assertFalse(os.path.exists(os.path.join(out, "mosaic")))
+        named = os.path.join(self.tmp, "named")
+        for tile, as_name in (("h00v00", "h00v00"), ("h01v00", "mosaic")):
+            os.makedirs(os.path.join(named, as_name))
+            for path in sorted(glob.glob(os.path.join(self.tiles, tile, "ndvi_*.tif")))[:3]:
+                shutil.copy(path, os.path.join(named, as_name))
+        done = kt.run_kalends(["fill", os.path.join(named, "*", "ndvi_*.tif"), "--tiles",
+                               os.path.join(named, "{tile}", ""), "--out", os.path.join(self.tmp, "named-out")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("is in a tile named 'mosaic'", done.stderr)
+        os.rename(os.path.join(named, "mosaic"), os.path.join(named, "h01v00"))
+        first = sorted(glob.glob(os.path.join(named, "h01v00", "*.tif")))[0]
+        ds = g.Open(first, g.GA_Update)
+        gt = list(ds.GetGeoTransform())
+        gt[0] += 10 * gt[1]
+        ds.SetGeoTransform(gt)
+        ds = None
+        done = kt.run_kalends(["fill", os.path.join(named, "*", "ndvi_*.tif"), "--tiles",
+                               os.path.join(named, "{tile}", ""), "--out", os.path.join(self.tmp, "named-out")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn(os.path.basename(first) + ": lies on a different grid from the other files of tile h01v00",
+                      done.stderr)
+
     def test_a_date_a_tile_lacks_is_named(self):
         # A date missing from one tile (a failed download) is a gap there, filled; the fill
         # now says which tile and date, on the console and in a job's notes.
