@@ -244,6 +244,17 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
   std::vector<DatasetPtr> datasets;
   for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
+  // An output replaces only an earlier kalends output (grid's carry KALENDS_GRID_SOURCE): a
+  // user's raster under an output's name would be lost.
+  for (const Source& s : sources) {
+    const fs::path target = fs::path(request.out_dir) / s.relative;
+    std::error_code ec;
+    if (!fs::exists(target, ec)) continue;
+    const auto items = detail::raster_metadata(target.string());
+    if (!items.count("KALENDS_GRID_SOURCE") && !items.count("KALENDS_VERSION"))
+      throw UsageError(target.string(), "exists and was not written by kalends; move it away or choose another "
+                                        "output folder (nothing was replaced)");
+  }
 
   // INIT_DEST: cells no source cell reaches are nodata, not the 0 a new MEM raster holds (an
   // extent beside the data had come out as a field of zeros).
@@ -303,18 +314,42 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       GDALDataset& out = warp_with(source, method);
       for (std::size_t k = 0; k < bands.size(); ++k) placed.emplace_back(bands[k], out.GetRasterBand(int(k) + 1));
     };
+    // Scaling after the warp is right for weighted means, nearest, the median and the like; a sum
+    // or root mean square of stored numbers with an offset, and a minimum or maximum with a
+    // negative scale, are not those of the values. Such bands are scaled first, one by one.
+    const bool scale_first_kind = request.resample == "sum" || request.resample == "rms" ||
+                                  request.resample == "min" || request.resample == "max";
+    std::vector<int> scaled_first;
+    if (scale_first_kind)
+      std::erase_if(continuous, [&](int b) {
+        const double scale = in.GetRasterBand(b)->GetScale(), offset = in.GetRasterBand(b)->GetOffset();
+        const bool first = (offset != 0 && (request.resample == "sum" || request.resample == "rms")) ||
+                           (scale < 0 && request.resample != "sum");
+        if (first) scaled_first.push_back(b);
+        return first;
+      });
     warp_bands(continuous, request.resample);
+    for (int b : scaled_first) {
+      keep.push_back(mapped_band(in, b, [](float v) { return v; }, where));  // the physical values
+      GDALDataset& warped = warp_with(*keep.back(), request.resample);
+      placed.emplace_back(b, warped.GetRasterBand(1));
+    }
     warp_bands(classes, "mode");
-    // A day of year as an angle: the mean of its sine and cosine, turned back into a day.
+    // A day of year as an angle: the mean of its sine and cosine, turned back into a day. The
+    // semi-annual harmonic's peak repeats every half year, so its circle is half as long (peaks
+    // on days 2 and 181 are nearly in phase, not opposite).
     for (int b : days) {
-      DatasetPtr sine = mapped_band(in, b, [](float d) { return float(std::sin(two_pi * (d - 1) / days_per_year)); }, where);
-      DatasetPtr cosine = mapped_band(in, b, [](float d) { return float(std::cos(two_pi * (d - 1) / days_per_year)); }, where);
+      const double cycle = std::string(in.GetRasterBand(b)->GetDescription()).starts_with("semiannual")
+                               ? days_per_year / 2
+                               : days_per_year;
+      DatasetPtr sine = mapped_band(in, b, [cycle](float d) { return float(std::sin(two_pi * (d - 1) / cycle)); }, where);
+      DatasetPtr cosine = mapped_band(in, b, [cycle](float d) { return float(std::cos(two_pi * (d - 1) / cycle)); }, where);
       GDALDataset& s = warp_with(*sine, "average");
       GDALDataset& c = warp_with(*cosine, "average");
-      keep.push_back(combined_band(s, *s.GetRasterBand(1), *c.GetRasterBand(1), [](float y, float x) {
+      keep.push_back(combined_band(s, *s.GetRasterBand(1), *c.GetRasterBand(1), [cycle](float y, float x) {
         if (std::isnan(y) || std::isnan(x)) return NAN;
         const double angle = std::atan2(double(y), double(x));
-        return float(1 + days_per_year * (angle < 0 ? angle + two_pi : angle) / two_pi);
+        return float(1 + cycle * (angle < 0 ? angle + two_pi : angle) / two_pi);
       }, where));
       placed.emplace_back(b, keep.back()->GetRasterBand(1));
     }
@@ -402,7 +437,30 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
         if (const char* text = src->GetMetadataItem(item)) result->GetRasterBand(to)->SetMetadataItem(item, text);
       ++to;
     }
+    const int share_band = share ? to : 0;
     if (share) copy_band(share, to++, "filled_share", "1", "average of (flag 1 or 2) over cells with a value");
+    if (flag_band) {
+      // A cell without a value says so in its flag (3) and has no filled share, whatever the
+      // value band's resampling (nearest can miss the cells with a value the flag counts).
+      int flag_out = 1;
+      while (placed[std::size_t(flag_out - 1)].first != flag_band) ++flag_out;
+      std::vector<float> value(std::size_t(width) * height), flag(value.size()), filled(share_band ? value.size() : 0);
+      auto io = [&](GDALRWFlag mode, int band, std::vector<float>& v) {
+        if (result->GetRasterBand(band)->RasterIO(mode, 0, 0, width, height, v.data(), width, height, GDT_Float32, 0,
+                                                  0) != CE_None)
+          throw OutputError(sources[i].relative, "cannot assemble the warped bands");
+      };
+      io(GF_Read, 1, value);
+      io(GF_Read, flag_out, flag);
+      if (share_band) io(GF_Read, share_band, filled);
+      for (std::size_t c = 0; c < value.size(); ++c)
+        if (std::isnan(value[c])) {
+          flag[c] = 3;
+          if (share_band) filled[c] = NAN;
+        }
+      io(GF_Write, flag_out, flag);
+      if (share_band) io(GF_Write, share_band, filled);
+    }
     {
       // Whether the study grid holds any value of the layer's first band.
       std::vector<float> first_band(std::size_t(width) * height);
@@ -411,6 +469,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
           std::none_of(first_band.begin(), first_band.end(), [](float v) { return std::isfinite(v); }))
         summary.without_value.push_back(sources[i].relative);
     }
+    result->SetMetadataItem("KALENDS_VERSION", KALENDS_VERSION);
     result->SetMetadataItem("KALENDS_GRID_CRS", request.crs.c_str());
     result->SetMetadataItem("KALENDS_GRID_SOURCE", where.c_str());
     if (!request.clip.empty()) result->SetMetadataItem("KALENDS_GRID_CLIP", request.clip.c_str());

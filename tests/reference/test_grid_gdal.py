@@ -141,6 +141,83 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         self.assertIn("are the cells too large for the data", done.stderr)
         self.assertNotIn("extent or clip", done.stderr)
 
+    def test_a_users_raster_under_an_output_name_is_not_replaced(self):
+        # grid had replaced it silently (fill, seasons and compare refuse it). Its own outputs
+        # (KALENDS_GRID_SOURCE) are replaced on a rerun.
+        layer = os.path.join(self.tmp, "mine-in", "layer.tif")
+        os.makedirs(os.path.dirname(layer))
+        write_named_bands(layer, (("value", np.full((10, 10), 0.5, np.float32)),))
+        out = os.path.join(self.tmp, "mine-out")
+        os.makedirs(out)
+        mine = os.path.join(out, "layer.tif")
+        write_named_bands(mine, (("value", np.full((3, 3), 7, np.float32)),))
+        with open(mine, "rb") as f:
+            before = f.read()
+        done = kt.run_kalends(["grid", layer, "--out", out, "--crs", "EPSG:32736", "--resolution", "200"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("layer.tif: exists and was not written by kalends", done.stderr)
+        with open(mine, "rb") as f:
+            self.assertEqual(f.read(), before)
+        os.remove(mine)
+        for _ in range(2):
+            run_grid_ok(self, [layer, "--out", out, "--crs", "EPSG:32736", "--resolution", "200"])
+
+    def test_sums_and_extremes_of_scaled_bands_are_those_of_the_values(self):
+        # Stored numbers with a scale and offset (as surface temperature is delivered): a sum or
+        # root mean square with an offset, and a minimum or maximum with a negative scale, must
+        # be those of the physical values (numpy on 2 x 2 blocks). Scaling after the warp had
+        # given, for the sum, the offset once instead of four times, and swapped min and max.
+        rng = np.random.default_rng(1)
+        stored = rng.integers(100, 200, (8, 8)).astype(np.int16)
+        stored[0, 0] = -999
+        g = kt.gdal()
+        from osgeo import osr
+        for name, (scale, offset) in (("pos", (0.02, -273.15)), ("neg", (-0.5, 100.0))):
+            path = os.path.join(self.tmp, "scaled-" + name, "lst.tif")
+            os.makedirs(os.path.dirname(path))
+            ds = g.GetDriverByName("GTiff").Create(path, 8, 8, 1, g.GDT_Int16)
+            ds.SetGeoTransform((300000.0, 100.0, 0, 8000000.0, 0, -100.0))
+            srs = osr.SpatialReference()
+            srs.ImportFromEPSG(32736)
+            ds.SetProjection(srs.ExportToWkt())
+            band = ds.GetRasterBand(1)
+            band.WriteArray(stored)
+            band.SetNoDataValue(-999)
+            band.SetScale(scale)
+            band.SetOffset(offset)
+            ds = None
+            physical = np.where(stored != -999, stored * scale + offset, np.nan)
+            blocks = physical.reshape(4, 2, 4, 2).transpose(0, 2, 1, 3).reshape(4, 4, 4)
+            for resample, reference in (("sum", np.nansum), ("max", np.nanmax), ("min", np.nanmin),
+                                        ("rms", lambda x, axis: np.sqrt(np.nanmean(x ** 2, axis=axis)))):
+                out = os.path.join(self.tmp, "scaled-%s-%s" % (name, resample))
+                run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "200", "--extent",
+                                   "300000,7999200,300800,8000000", "--resample", resample])
+                got = g.Open(os.path.join(out, "lst.tif")).ReadAsArray()
+                np.testing.assert_allclose(got, reference(blocks, axis=2), rtol=1e-5, err_msg=name + " " + resample)
+
+    def test_semiannual_peak_days_average_on_a_half_year_circle(self):
+        # The semi-annual harmonic peaks twice a year: days 2 and 181 are nearly in phase (the
+        # circular mean on a 182.6-day circle, numpy: about 0.2, i.e. 182.8), not opposite. It
+        # had been averaged on a 365.25-day circle: 91.5, the trough.
+        days = np.full((2, 2), 100, np.float32)
+        days[:, 0] = [2, 3]
+        days[:, 1] = [181, 180]
+        path = os.path.join(self.tmp, "semi", "ndvi_cycle_synoptic.tif")
+        os.makedirs(os.path.dirname(path))
+        write_named_bands(path, (("semiannual_peak_doy", days), ("annual_peak_doy", days)),
+                          {"KALENDS_LAYER": "cycle descriptors of the synoptic cycle", "KALENDS_PERIOD": "1M"})
+        out = os.path.join(self.tmp, "semi-out")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "200", "--extent",
+                           "300000,7999800,300200,8000000"])
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_cycle_synoptic.tif"))
+        cycle = 365.25 / 2
+        angle = np.angle(np.mean(np.exp(2j * np.pi * (days - 1) / cycle)))
+        expected = 1 + cycle * (angle % (2 * np.pi)) / (2 * np.pi)
+        got = float(ds.GetRasterBand(1).ReadAsArray()[0, 0])
+        self.assertAlmostEqual(got, float(expected), places=2)
+        self.assertTrue(got < 5 or got > 178, got)
+
     def test_two_inputs_under_one_output_name_are_refused(self):
         # layer.tif in two folders given to one run: the second had replaced the first's output,
         # and the run said it wrote both. Refused before anything is written; their parent
@@ -257,6 +334,27 @@ class AreaWeightedMeans(kt.TempDirTestCase):
                 self.assertAlmostEqual(float(got["ndvi"]), float(bands[0][row, col]), places=5)
                 self.assertAlmostEqual(float(got["ndvi.sd"]), float(bands[1][row, col]), places=6)
             self.assertEqual(float(got["ndvi.flag"]), float(bands[2][row, col]))
+
+    def test_a_cell_without_a_value_has_flag_3_whatever_the_resampling(self):
+        # Nearest takes the value of the one cell under the centre, which may have none while
+        # the flag counts the cells with a value: the cell had NaN with flag 0-2.
+        rng = np.random.default_rng(3)
+        value = (0.3 + 0.05 * rng.random((20, 20))).astype(np.float32)
+        value[rng.random((20, 20)) < 0.4] = np.nan
+        flags = np.where(np.isnan(value), 3, np.where(rng.random((20, 20)) < 0.5, 0, 2)).astype(np.float32)
+        value = np.where(flags == 3, np.nan, value).astype(np.float32)
+        path = os.path.join(self.tmp, "nearest-in", "ndvi_2020-01-01.tif")
+        os.makedirs(os.path.dirname(path))
+        write_named_bands(path, (("value", value), ("sd", np.where(np.isnan(value), np.nan, 0.01).astype(np.float32)),
+                                 ("flag", flags)), {"KALENDS_DATE": "2020-01-01"})
+        out = os.path.join(self.tmp, "nearest-out")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "250", "--extent",
+                           "300000,7998000,302000,8000000", "--resample", "nearest"])
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        v, f, share = (ds.GetRasterBand(b).ReadAsArray() for b in (1, 3, 4))
+        self.assertTrue(np.isnan(v).any())
+        np.testing.assert_array_equal(np.isnan(v), f == 3)
+        self.assertTrue(np.all(np.isnan(share[np.isnan(v)])))
 
     def test_a_sliver_of_a_cell_does_not_vote_for_the_flag(self):
         # An invented 8 x 8 fill output, 100 m cells: the study cell over the 3 x 3 cells at the
