@@ -147,6 +147,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const Window area = area_of(raster.width, raster.height, request.region, request.input);
   const std::string name = request.name.empty() ? stack.name() : request.name;
 
+  // Its text outputs, as its rasters, replace only their like (a user's notes under the name).
+  detail::require_own_text_file((fs::path(request.out_dir) / "fill-summary.json").string(), "\"pixel_dates\"");
+  detail::require_own_text_file((fs::path(request.out_dir) / "fill-years.tsv").string(), "# grid ");
   // Output names: one per input date, plus the regular calendar.
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
   std::vector<detail::PeriodMean> periods;

@@ -99,6 +99,18 @@ void publish_file(const std::string& temporary, const std::string& final_path) {
   sync_path(fs::path(final_path).parent_path().string(), true);
 }
 
+void require_own_text_file(const std::string& path, const std::string& mark) {
+  std::error_code ec;
+  if (!fs::exists(path, ec)) return;
+  std::ifstream in(path, std::ios::binary);
+  std::string head(4096, '\0');
+  in.read(head.data(), std::streamsize(head.size()));
+  head.resize(std::size_t(in.gcount()));
+  if (head.find(mark) == std::string::npos)
+    throw UsageError(path, "exists and was not written by kalends; move it away or choose another output folder "
+                           "(nothing was replaced)");
+}
+
 void write_text_atomically(const std::string& path, const std::string& text) {
   {
     std::ifstream existing(path, std::ios::binary);

@@ -9,4 +9,9 @@ namespace kalends::detail {
 /// `path` untouched when it already holds exactly `text`. OutputError when it cannot.
 void write_text_atomically(const std::string& path, const std::string& text);
 
+/// A text output replaces only an earlier one of kalends': UsageError naming `path` when a file
+/// there does not hold `mark` (text every such output of kalends carries) in its first 4 KiB, as
+/// for rasters without KALENDS_VERSION. Call before anything is written.
+void require_own_text_file(const std::string& path, const std::string& mark);
+
 }  // namespace kalends::detail

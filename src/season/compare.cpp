@@ -88,6 +88,10 @@ CompareSummary run_compare(const CompareRequest& request) {
   if (!fs::is_directory(request.seasons_dir))
     throw InputError(request.seasons_dir, "is not a folder of `kalends seasons` outputs");
   if (request.top < 0) throw UsageError("--top", "must be 0 or more");
+  // A seasons run stopped while publishing leaves a mix of two runs' layers.
+  require_not_half_published(request.seasons_dir);
+  detail::require_own_text_file((fs::path(request.out_dir) / "compare.json").string(), "\"synoptic_rmse\"");
+  detail::require_own_text_file((fs::path(request.out_dir) / "compare.md").string(), "# Where the synoptic layers");
   CompareSummary summary;
   std::string name = request.name;
   if (name.empty()) {
@@ -182,10 +186,27 @@ CompareSummary run_compare(const CompareRequest& request) {
   }
   std::sort(anomaly_files.begin(), anomaly_files.end());
   std::sort(summary.stale_years.begin(), summary.stale_years.end());
+  // Every anomaly layer on the synoptic's periods and grid: a folder holding the layers of two
+  // seasons runs with different --period (or areas) would be read band against wrong band.
+  const std::string mean_path = (fs::path(request.seasons_dir) / (name + "_synoptic_mean.tif")).string();
+  GDALDatasetUniquePtr mean = detail::open_raster(mean_path);
+  const std::string period = mean->GetMetadataItem("KALENDS_PERIOD") ? mean->GetMetadataItem("KALENDS_PERIOD") : "";
+  auto require_like_the_synoptic = [&](GDALDataset& layer, const std::string& path) {
+    const char* p = layer.GetMetadataItem("KALENDS_PERIOD");
+    if (layer.GetRasterCount() != mean->GetRasterCount() || (p ? p : "") != period ||
+        layer.GetRasterXSize() != width || layer.GetRasterYSize() != height)
+      throw InputError(path, fmt::format("holds {} periods ({}) of {} x {} px; the synoptic layers here hold {} ({}) of "
+                                         "{} x {}: layers of two `kalends seasons` runs in one folder; run seasons "
+                                         "into a folder of its own",
+                                         layer.GetRasterCount(), p ? p : "no period", layer.GetRasterXSize(),
+                                         layer.GetRasterYSize(), mean->GetRasterCount(), period, width, height));
+  };
   for (const auto& [year, path] : anomaly_files) {
     GDALDatasetUniquePtr ds = detail::open_raster(path);
     const std::string raw_path = (fs::path(request.seasons_dir) / fmt::format("{}_anomaly_{}.tif", name, year)).string();
     GDALDatasetUniquePtr raw = detail::open_raster(raw_path);
+    require_like_the_synoptic(*ds, path);
+    require_like_the_synoptic(*raw, raw_path);
     YearStats& ys = per_year[year];
     for (int b = 1; b <= ds->GetRasterCount(); ++b) {
       const std::vector<float> z = read_band(*ds, b, path);

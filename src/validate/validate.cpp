@@ -192,7 +192,7 @@ std::vector<std::size_t> series_pixels(const std::vector<std::uint8_t>& withheld
   }
   std::sort(ranked.begin(), ranked.end());
   std::vector<std::size_t> chosen;
-  const int apart = std::min(held.width, held.height) / 4;
+  const int apart = (std::min(held.width, held.height) + 3) / 4;  // at least a quarter
   for (int spacing : {apart, 0})
     for (const auto& [count, p] : ranked) {
       if (int(chosen.size()) >= wanted) return chosen;
@@ -230,6 +230,10 @@ ValidateReport run_validate(const ValidateRequest& request) {
       throw UsageError("--methods", e.reason());
     }
   }
+  // Its outputs replace only their like: a user's file under one of these names is kept.
+  detail::require_own_text_file((fs::path(request.out_dir) / "report.json").string(), "\"withheld\"");
+  detail::require_own_text_file((fs::path(request.out_dir) / "report.md").string(), "# kalends validate");
+  detail::require_own_text_file((fs::path(request.out_dir) / "series.csv").string(), "column,row,date,truth,withheld");
   const std::optional<QaRule> keep_rule = qa_rule_of(request.qa_input, request.qa_keep, request.qa_band);
   const Stack stack = Stack::open(request.input, request.rules);
   std::optional<QaPairing> qa;

@@ -226,6 +226,20 @@ class ValidateOptions(kt.TempDirTestCase):
         with open(os.path.join(out, "report.md")) as f:
             self.assertIn("at the pixels (column, row) %d, %d; %d, %d: those with the most withheld values"
                           % tuple(report["series_pixels"][0] + report["series_pixels"][1]), f.read())
+        # The choice is the documented rule, redone here: pixels with a withheld value and a
+        # kept one, most withheld first (ties in raster order), each at least a quarter of the
+        # shorter side (rounded up: 7 of 28) from those taken. The quarter had been rounded down.
+        order = sorted(((-int(counts[y, x]), y * 30 + x) for y in range(28) for x in range(30)
+                        if counts[y, x] > 0 and kept[y, x]))
+        taken = []
+        for spacing in (7, 0):
+            for _, p in order:
+                if len(taken) == 2:
+                    break
+                x, y = p % 30, p // 30
+                if p not in taken and all(max(abs(q % 30 - x), abs(q // 30 - y)) >= spacing for q in taken):
+                    taken.append(p)
+        self.assertEqual([[p % 30 + 7, p // 30 + 5] for p in taken], report["series_pixels"])
         # --series 0 writes none and removes the earlier run's.
         validate(self, os.path.join(self.premasked, "ndvi_*.tif"), out, "--series", "0")
         self.assertFalse(os.path.exists(os.path.join(out, "series.csv")))
@@ -254,6 +268,21 @@ class ValidateOptions(kt.TempDirTestCase):
                                 % (c, y, len(mine)), html)
             self.assertIsNotNone(caption, (c, y))
             self.assertAlmostEqual(float(caption.group(1)), float(np.sqrt(np.mean(np.square(errors)))), places=4)
+
+    def test_a_users_files_under_its_output_names_are_kept(self):
+        # report.md or series.csv of the user's in --out: refused, exit 2, kept (they had been
+        # replaced silently, as rasters never are).
+        for name in ("report.md", "series.csv"):
+            out = os.path.join(self.tmp, "users-" + name)
+            os.makedirs(out)
+            with open(os.path.join(out, name), "w") as f:
+                f.write("mine\n")
+            done = kt.run_kalends(["validate", os.path.join(self.premasked, "ndvi_*.tif"), "--out", out,
+                                   "--methods", "whittaker"])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn(name + ": exists and was not written by kalends", done.stderr)
+            with open(os.path.join(out, name)) as f:
+                self.assertEqual(f.read(), "mine\n")
 
     def test_report_of_a_validation_folder_alone(self):
         # validate's OUT without --keep-work holds no raster: the page shows the scores and the

@@ -374,6 +374,44 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-02.tif"], ["is damaged"],
                          "GeoTIFF tags cut")
 
+    def test_a_users_text_file_under_an_output_name_is_not_replaced(self):
+        # fill-summary.json of the user's in the output folder (notes, say): refused, exit 2,
+        # kept; it had been replaced silently. An earlier fill's is replaced.
+        out = os.path.join(self.tmp, "users-text")
+        os.makedirs(out)
+        with open(os.path.join(out, "fill-summary.json"), "w") as f:
+            f.write("my notes\n")
+        done = kt.run_kalends(["fill", os.path.join(self.good, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("fill-summary.json: exists and was not written by kalends", done.stderr)
+        with open(os.path.join(out, "fill-summary.json")) as f:
+            self.assertEqual(f.read(), "my notes\n")
+        done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--out", self.previous + "-again"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--out", self.previous + "-again"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_georeferencing_tags_cut_anywhere_are_never_a_grid_mismatch(self):
+        # A file cut inside its tags at any length: GDAL warns of corrupt tags or of an IO error
+        # reading one (GeoTiePoints, GeoKeyDirectory), or cannot open it. It must never be
+        # named as a grid or CRS that differs (which --skip-bad would act on); at some lengths
+        # it had been.
+        folder = self.variant("cut-anywhere")
+        path = os.path.join(folder, "ndvi_2020-02-02.tif")
+        with open(path, "rb") as f:
+            data = f.read()
+        checked = 0
+        for cut in range(150, min(len(data), 700), 10):
+            with open(path, "wb") as f:
+                f.write(data[:cut])
+            done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
+            if done.returncode == 0:
+                continue   # a cut GDAL reads past (the pixels come later)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertNotIn("differs from that of", done.stderr, cut)
+            checked += 1
+        self.assertGreater(checked, 5)
+
     def test_command_line_mistakes_are_named(self):
         # A mistyped command or option: one line naming it, exit 2 (CLI11 had said "A
         # subcommand is required" or "The following arguments were not expected: 3 --lamda").

@@ -359,6 +359,29 @@ class ShortAndGappyStacks(kt.TempDirTestCase):
         self.assertIsNone(year["share_below_minus_1_sd"])    # no standardised anomaly is defined
         self.assertIsNone(year["share_above_1_sd"])
 
+    def test_compare_refuses_layers_of_two_periods_and_a_users_report(self):
+        # A folder holding seasons layers of two --period runs (one year's anomalies monthly, the
+        # rest 16-day): compare had crashed (segfault) or read wrong bands. It names the file.
+        # And a compare.md of the user's in the output folder is kept, as rasters are.
+        out16 = os.path.join(self.tmp, "two-periods")
+        out1m = os.path.join(self.tmp, "two-periods-1M")
+        for out, period in ((out16, "16d"), (out1m, "1M")):
+            done = kt.run_kalends(["-q", "seasons", self.folder, "--out", out, "--period", period])
+            self.assertEqual(done.returncode, 0, done.stderr)
+        shutil.copy(os.path.join(out1m, "ndvi_anomaly_2020.tif"), out16)
+        done = kt.run_kalends(["compare", out16, "--out", os.path.join(self.tmp, "c-two")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("ndvi_anomaly_2020.tif: holds 12 periods (1M)", done.stderr)
+        mine = os.path.join(self.tmp, "c-mine")
+        os.makedirs(mine)
+        with open(os.path.join(mine, "compare.md"), "w") as f:
+            f.write("notes\n")
+        done = kt.run_kalends(["compare", out1m, "--out", mine])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("compare.md: exists and was not written by kalends", done.stderr)
+        with open(os.path.join(mine, "compare.md")) as f:
+            self.assertEqual(f.read(), "notes\n")
+
     def test_a_single_date_is_refused(self):
         # One date has no spacing to say how many days its composite stands for; it had been
         # put into one period as if it covered an unstated span.
@@ -600,6 +623,15 @@ class RealData(kt.TempDirTestCase):
         self.assertIn("they are not on one scale", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertFalse(os.path.exists(out))
+        # Water: red near 0.03 and NIR near 0 on one scale (reflectances): accepted, although the
+        # medians differ far more than 100-fold.
+        water = os.path.join(self.tmp, "water")
+        os.makedirs(water)
+        kt.write_raster(os.path.join(water, "red_2021-01-10.tif"), np.full((8, 8), 0.03, np.float32))
+        kt.write_raster(os.path.join(water, "nir_2021-01-10.tif"), np.full((8, 8), 0.0002, np.float32))
+        done = kt.run_kalends(["-q", "index", "--red", os.path.join(water, "red_*.tif"),
+                               "--nir", os.path.join(water, "nir_*.tif"), "--out", os.path.join(self.tmp, "water-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
         # Both on one scale: accepted.
         ds = g.Open(os.path.join(folder, "nir_2021-01-10.tif"), g.GA_Update)
         ds.GetRasterBand(1).SetScale(0.004)
