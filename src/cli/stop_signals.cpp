@@ -41,8 +41,8 @@ void install_stop_signals() {
   std::signal(SIGXFSZ, SIG_IGN);  // a write past the limit then fails with EFBIG, an error like a full disk
   for (int k = 0; k < 3; ++k) {
     std::snprintf(stop_lines[k], sizeof stop_lines[k],
-                  "kalends: stopped by %s; published outputs are intact, the next run removes the partial ones and "
-                  "redoes the step\n",
+                  "kalends: stopped by %s; no output is left half-written under its final name, but this run's "
+                  "outputs may stand beside the last run's until the command or job is run again\n",
                   stop_names[k]);
     std::snprintf(stop_json[k], sizeof stop_json[k],
                   "{\"event\": \"finished\", \"exit_code\": %d, \"error\": \"stopped by %s\"}\n", 128 + stop_signals[k],

@@ -61,7 +61,9 @@ void require_same_scale(const Stack& red, const Stack& nir) {
   const double r = first_date_median(red, 512), n = first_date_median(nir, 512);
   if (!(r > 0 && n > 0)) return;  // nothing to judge by
   const double factor = std::max(r, n) / std::min(r, n);
-  if (factor > 100)
+  // Only where one of them is not a reflectance (a median over 1.5, as EVI's check): water
+  // has red near 0.03 and NIR near 0, a large factor on one scale.
+  if (factor > 100 && std::max(r, n) > 1.5)
     throw UsageError("--red/--nir", fmt::format("red (median {:g}, {}) and NIR (median {:g}, {}) differ {:.0f}-fold: "
                                                 "they are not on one scale (a scale factor set on one band's files "
                                                 "only?); NDVI needs both in the same units",

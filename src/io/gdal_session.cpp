@@ -131,7 +131,7 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
     std::string last = CPLGetLastErrorMsg();
     std::string lower = last;
     for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
-    if (lower.find("corrupt") != std::string::npos)
+    if (lower.find("corrupt") != std::string::npos || lower.find("io error") != std::string::npos)
       throw InputError(path, "is damaged (GDAL: " + last + "); an incomplete download or copy?");
   }
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");

@@ -495,6 +495,15 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (count > best_count) best = i, best_count = count;
     }
     if (!file_grids.empty()) {
+      // Files on two or more grids, none shared by most of them: which is right cannot be told,
+      // so none is left out as bad (run --skip-bad would drop half the stack).
+      if (best_count * 2 <= file_grids.size() && best_count < file_grids.size()) {
+        const auto other = std::find_if(file_grids.begin(), file_grids.end(),
+                                        [&](const auto& fg) { return !matches(file_grids[best].second, fg.second); });
+        throw UsageError(input, fmt::format("its files lie on different grids and none is shared by most of them "
+                                            "({} of {} files on that of {}; {} on another): give the files of one grid",
+                                            best_count, file_grids.size(), file_grids[best].first, other->first));
+      }
       stack.grid_ = file_grids[best].second;
       const std::string rest = best_count * 2 > file_grids.size()
                                    ? fmt::format("the rest of the stack ({} of its {} files)", best_count,

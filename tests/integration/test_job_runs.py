@@ -1084,6 +1084,27 @@ class BadInput(kt.TempDirTestCase):
             shutil.rmtree(stack)
             shutil.copytree(backup, stack)
 
+    def test_two_grids_without_a_majority_are_refused_whole(self):
+        # Half the files on one grid, half on another: which is right cannot be told, so no file
+        # is named bad and --skip-bad skips none (it had dropped half the stack, exit 3).
+        stack = os.path.join(self.folder, "stack")
+        backup = os.path.join(self.tmp, "backup-tie")
+        shutil.copytree(stack, backup)
+        try:
+            files = sorted(glob.glob(os.path.join(stack, "ndvi", "ndvi_*.tif")))
+            if len(files) % 2:
+                os.remove(files.pop(0))
+            for path in files[len(files) // 2:]:
+                kt.write_raster(path, np.zeros((10, 10), np.int16), geotransform=(0, 250, 0, 0, 0, -250), epsg=32736)
+            done = run(self.job, "--skip-bad", "--out", os.path.join(self.tmp, "tie"))
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            self.assertIn("none is shared by most of them", done.stderr)
+            self.assertNotIn("skipped input", done.stdout)
+        finally:
+            shutil.rmtree(stack)
+            shutil.copytree(backup, stack)
+            shutil.rmtree(os.path.join(self.tmp, "tie"), ignore_errors=True)
+
     def test_crs_differs(self):
         def reproject(stack):
             path = self.ndvi(stack, 4)

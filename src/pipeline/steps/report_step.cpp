@@ -25,9 +25,9 @@ ReportRequest report_request(const StepContext& c) {
   // comma lists), which is named rather than read as two half pixels.
   for (const std::string& pair : c.list("pixels")) {
     if (pair.find_first_of(" \t") == std::string::npos || pair.find_first_not_of(" \t0123456789") != std::string::npos)
-      throw UsageError("'pixels' '" + pair + "'", "expected \"COLUMN ROW\" per item, two whole numbers, as in "
+      throw UsageError("--pixels '" + pair + "'", "expected \"COLUMN ROW\" per item, two whole numbers, as in "
                                                  "pixels = [\"120 340\", \"400 80\"] (a comma inside an item splits it)");
-    r.pixels.push_back(parse_pixel(pair, "'pixels'"));
+    r.pixels.push_back(parse_pixel(pair, "--pixels"));
   }
   r.samples = c.integer("samples", r.samples);
   r.map_size = c.integer("map_size", r.map_size);
