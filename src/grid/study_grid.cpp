@@ -60,6 +60,12 @@ std::vector<Source> sources_of(const std::vector<std::string>& inputs, const std
     } else if (detail::has_glob_characters(input)) {
       for (const std::string& path : detail::expand_glob(input))
         sources.push_back({path, fs::path(path).filename().replace_extension(".tif").string()});
+    } else if (const auto parts = detail::connection_parts(input); parts && !fs::exists(input)) {
+      // One variable of a container file, 'NETCDF:"f.nc":tas': written as f_tas.tif.
+      if (!fs::exists(parts->files)) throw InputError(parts->files, "no such file");
+      const std::string variable = parts->variable();
+      sources.push_back({input, fs::path(parts->files).stem().string() + (variable.empty() ? "" : "_" + variable) +
+                                    ".tif"});
     } else {
       if (!fs::exists(input)) throw InputError(input, "no such file or folder");
       sources.push_back({input, fs::path(input).filename().replace_extension(".tif").string()});
@@ -214,6 +220,13 @@ void check_study_grid_options(const StudyGridRequest& request) {
   if (request.extent && (request.extent->size() != 4 || !((*request.extent)[0] < (*request.extent)[2]) ||
                          !((*request.extent)[1] < (*request.extent)[3])))
     throw UsageError("--extent", "expected XMIN,YMIN,XMAX,YMAX with XMIN < XMAX and YMIN < YMAX");
+  // Degrees given for a projected CRS, say: an extent narrower than one cell.
+  if (request.extent && request.resolution &&
+      ((*request.extent)[2] - (*request.extent)[0] < *request.resolution ||
+       (*request.extent)[3] - (*request.extent)[1] < *request.resolution))
+    throw UsageError("--extent", fmt::format("is narrower than one cell of --resolution {:g}: are both in the units of "
+                                             "--crs '{}' (metres for a projected CRS, degrees for a geographic one)?",
+                                             *request.resolution, request.crs));
   const auto& names = study_grid_resampling_names();
   if (std::find(names.begin(), names.end(), request.resample) == names.end())
     throw UsageError("--resample '" + request.resample + "'", "expected one of " + fmt::format("{}", fmt::join(names, ", ")));
@@ -237,9 +250,11 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     std::map<std::string, std::string> by_name;
     for (const Source& s : sources)
       if (const auto [it, added] = by_name.emplace(s.relative, s.path); !added)
-        throw UsageError(s.path, fmt::format("would be written as '{}', as '{}' is: grid the two folders into "
-                                             "separate --out folders, or give their parent folder",
-                                             s.relative, it->second));
+        throw UsageError(s.path, it->second == s.path
+                                     ? std::string("is given twice")
+                                     : fmt::format("would be written as '{}', as '{}' is: grid the two folders into "
+                                                   "separate --out folders, or give their parent folder",
+                                                   s.relative, it->second));
   }
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
   std::vector<DatasetPtr> datasets;

@@ -218,6 +218,26 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         self.assertAlmostEqual(got, float(expected), places=2)
         self.assertTrue(got < 5 or got > 178, got)
 
+    def test_a_netcdf_variable_a_repeated_input_and_an_extent_in_degrees(self):
+        # One variable of a NetCDF file (the real Maurer temperature) is gridded as
+        # <file>_<variable>.tif; it had been refused as "no such file or folder". The same input
+        # twice is named so, and an extent narrower than one cell (degrees for a metric CRS)
+        # is refused as such, not with GDAL's "Attempt to create 0x0 dataset".
+        source = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        out = os.path.join(self.tmp, "netcdf-grid")
+        run_grid_ok(self, [source, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.25"])
+        ds = kt.gdal().Open(os.path.join(out, "bcsd_obs_1999_tas.tif"))
+        self.assertEqual(ds.RasterCount, 12)
+        landsat = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
+        done = kt.run_kalends(["grid", landsat, landsat, "--out", os.path.join(self.tmp, "twice"), "--crs",
+                               "EPSG:32725", "--resolution", "100"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("L7_ETMs.tif: is given twice", done.stderr)
+        done = kt.run_kalends(["grid", landsat, "--out", os.path.join(self.tmp, "degrees-utm"), "--crs", "EPSG:32725",
+                               "--resolution", "100", "--extent", "-34.9,-8.0,-34.8,-7.9"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--extent: is narrower than one cell of --resolution 100", done.stderr)
+
     def test_two_inputs_under_one_output_name_are_refused(self):
         # layer.tif in two folders given to one run: the second had replaced the first's output,
         # and the run said it wrote both. Refused before anything is written; their parent
