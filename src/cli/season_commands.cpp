@@ -117,7 +117,7 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
   return [r, &global] {
     const CompareSummary s = run_compare(*r);
     if (!s.stale_years.empty())
-      std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): an earlier "
+      std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): "
                            "they are not this synoptic's\n",
                    r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.stale_years, ", ")).c_str(),
                    s.synoptic_years.c_str());

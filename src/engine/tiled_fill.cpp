@@ -8,6 +8,7 @@
 
 #include "io/file_glob.hpp"
 #include "kalends/error.hpp"
+#include "kalends/time.hpp"
 #include "kalends/tiles.hpp"
 
 namespace kalends {
@@ -91,7 +92,9 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     const fs::path views = out / "mosaic";
     if (fs::is_directory(views, ec)) {
       for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)
-        if (it->is_regular_file() && it->path().extension() == ".vrt") fs::remove(it->path(), ec);
+        if (it->is_regular_file() && it->path().extension() == ".vrt" &&
+            find_date_in_name(it->path().filename().string()))  // dated views only, not a user's VRT
+          fs::remove(it->path(), ec);
       for (bool removed = true; removed;) {  // the folders left empty, deepest first
         removed = false;
         for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)

@@ -16,6 +16,7 @@
 #include <fmt/format.h>
 #include <fmt/ranges.h>
 #include <map>
+#include <set>
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
@@ -244,6 +245,17 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
   }
   const std::vector<Source> sources = sources_of(request.inputs, request.out_dir);
+  // An output under an input's own path (--out the input folder): it would replace the raster
+  // it is made from.
+  {
+    std::error_code ec;
+    std::set<fs::path> inputs;
+    for (const Source& s : sources) inputs.insert(fs::weakly_canonical(detail::file_in_connection(s.path), ec));
+    for (const Source& s : sources)
+      if (inputs.count(fs::weakly_canonical(fs::path(request.out_dir) / s.relative, ec)))
+        throw UsageError("--out '" + request.out_dir + "'", "would write " + s.relative + " over the input it is made "
+                                                                "from: give another folder");
+  }
   // Two inputs under one output name (the same file name in two folders given): the second
   // would replace the first's output. Refused before anything is written.
   {
@@ -455,8 +467,9 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     const int share_band = share ? to : 0;
     if (share) copy_band(share, to++, "filled_share", "1", "average of (flag 1 or 2) over cells with a value");
     if (flag_band) {
-      // A cell without a value says so in its flag (3) and has no filled share, whatever the
-      // value band's resampling (nearest can miss the cells with a value the flag counts).
+      // A cell without a value says so in its flag (3) and has no filled share, and a cell
+      // flagged 3 has no value or sd, whatever the value band's resampling (nearest can miss the
+      // cells with a value the flag counts; a sum picks up tiny weights of neighbouring cells).
       int flag_out = 1;
       while (placed[std::size_t(flag_out - 1)].first != flag_band) ++flag_out;
       std::vector<float> value(std::size_t(width) * height), flag(value.size()), filled(share_band ? value.size() : 0);
@@ -465,16 +478,25 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
                                                   0) != CE_None)
           throw OutputError(sources[i].relative, "cannot assemble the warped bands");
       };
+      int sd_out = 0;
+      for (int b = 1; b <= result->GetRasterCount(); ++b)
+        if (std::string(result->GetRasterBand(b)->GetDescription()) == "sd") sd_out = b;
+      std::vector<float> sd(sd_out ? value.size() : 0);
       io(GF_Read, 1, value);
       io(GF_Read, flag_out, flag);
       if (share_band) io(GF_Read, share_band, filled);
+      if (sd_out) io(GF_Read, sd_out, sd);
       for (std::size_t c = 0; c < value.size(); ++c)
-        if (std::isnan(value[c])) {
-          flag[c] = 3;
+        if (std::isnan(value[c]) || flag[c] == 3) {
+          value[c] = NAN;
+          if (!std::isnan(flag[c])) flag[c] = 3;
           if (share_band) filled[c] = NAN;
+          if (sd_out) sd[c] = NAN;
         }
+      io(GF_Write, 1, value);
       io(GF_Write, flag_out, flag);
       if (share_band) io(GF_Write, share_band, filled);
+      if (sd_out) io(GF_Write, sd_out, sd);
     }
     {
       // Whether the study grid holds any value of the layer's first band.

@@ -186,8 +186,10 @@ void publish_vrts(const std::string& folder, const std::map<std::string, std::st
   std::error_code ec;
   fs::create_directories(folder, ec);
   if (ec) throw OutputError(folder, "cannot create the folder: " + ec.message());
+  // Only dated views, as kalends names them: a VRT of the user's kept there is left alone.
   for (const auto& entry : fs::directory_iterator(folder, ec))
-    if (entry.path().extension() == ".vrt" && !wanted.count(entry.path().filename().string()))
+    if (entry.path().extension() == ".vrt" && !wanted.count(entry.path().filename().string()) &&
+        find_date_in_name(entry.path().filename().string()))
       fs::remove(entry.path(), ec);
   for (const auto& [name, text] : wanted) detail::write_text_atomically((fs::path(folder) / name).string(), text);
 }

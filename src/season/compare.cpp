@@ -201,6 +201,15 @@ CompareSummary run_compare(const CompareRequest& request) {
                                          layer.GetRasterCount(), p ? p : "no period", layer.GetRasterXSize(),
                                          layer.GetRasterYSize(), mean->GetRasterCount(), period, width, height));
   };
+  {
+    const char* p = miss->GetMetadataItem("KALENDS_PERIOD");
+    const char* y = miss->GetMetadataItem("KALENDS_YEARS");
+    const char* my = mean->GetMetadataItem("KALENDS_YEARS");
+    if ((p ? p : "") != period || std::string(y ? y : "") != std::string(my ? my : ""))
+      throw InputError(miss_path, fmt::format("is of period {} and years {}; the synoptic layers here are of {} and {}: "
+                                              "layers of two `kalends seasons` runs in one folder",
+                                              p ? p : "none", y ? y : "none", period, my ? my : "none"));
+  }
   for (const auto& [year, path] : anomaly_files) {
     GDALDatasetUniquePtr ds = detail::open_raster(path);
     const std::string raw_path = (fs::path(request.seasons_dir) / fmt::format("{}_anomaly_{}.tif", name, year)).string();

@@ -213,6 +213,14 @@ class TiledFill(kt.TempDirTestCase):
         kt.run_fill_ok(self, [os.path.join(self.tiles, "h*v*", "ndvi_*.tif"), "--tiles",
                               os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", out, "--lambda", "10"])
         self.assertTrue(glob.glob(os.path.join(out, "mosaic", "*.vrt")))
+        # A VRT of the user's kept beside the views (no date in its name) is never removed.
+        mine = os.path.join(out, "mosaic", "my_study_area.vrt")
+        with open(mine, "w") as f:
+            f.write("<VRTDataset/>\n")
+        kt.run_fill_ok(self, [os.path.join(self.tiles, "h*v*", "ndvi_*.tif"), "--tiles",
+                              os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", out, "--lambda", "10"])
+        self.assertTrue(os.path.exists(mine))
+        os.remove(mine)
         fewer = os.path.join(self.tmp, "fewer-dates")
         for tile in ("h00v00", "h01v00", "h00v01", "h01v01"):
             os.makedirs(os.path.join(fewer, tile))

@@ -228,6 +228,15 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         run_grid_ok(self, [source, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.25"])
         ds = kt.gdal().Open(os.path.join(out, "bcsd_obs_1999_tas.tif"))
         self.assertEqual(ds.RasterCount, 12)
+        # An --out that is the input folder: the outputs would replace their own inputs.
+        folder = os.path.join(self.tmp, "own-folder")
+        os.makedirs(folder)
+        write_named_bands(os.path.join(folder, "layer.tif"), (("value", np.full((10, 10), 0.5, np.float32)),),
+                          {"KALENDS_VERSION": "0.3.13"})
+        done = kt.run_kalends(["grid", folder, "--out", folder, "--crs", "EPSG:4326", "--resolution", "0.001"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("would write layer.tif over the input it is made from", done.stderr)
+        self.assertEqual(kt.gdal().Open(os.path.join(folder, "layer.tif")).RasterXSize, 10)
         landsat = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
         done = kt.run_kalends(["grid", landsat, landsat, "--out", os.path.join(self.tmp, "twice"), "--crs",
                                "EPSG:32725", "--resolution", "100"])
@@ -375,6 +384,22 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         self.assertTrue(np.isnan(v).any())
         np.testing.assert_array_equal(np.isnan(v), f == 3)
         self.assertTrue(np.all(np.isnan(share[np.isnan(v)])))
+        # A sum picks up tiny weights of neighbouring cells where a whole block has no value:
+        # such a cell (flag 3) has no value or sd either.
+        holes = value.copy()
+        holes[0:8, 0:8] = np.nan
+        hole_flags = np.where(np.isnan(holes), 3, flags).astype(np.float32)
+        path = os.path.join(self.tmp, "sum-in", "ndvi_2020-01-01.tif")
+        os.makedirs(os.path.dirname(path))
+        write_named_bands(path, (("value", holes), ("sd", np.where(np.isnan(holes), np.nan, 0.01).astype(np.float32)),
+                                 ("flag", hole_flags)), {"KALENDS_DATE": "2020-01-01"})
+        out = os.path.join(self.tmp, "sum-out")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "300", "--extent",
+                           "300000,7998200,301800,8000000", "--resample", "sum"])
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        v, sd, f = (ds.GetRasterBand(b).ReadAsArray() for b in (1, 2, 3))
+        self.assertTrue((f == 3).any())
+        self.assertTrue(np.all(np.isnan(v[f == 3])) and np.all(np.isnan(sd[f == 3])))
 
     def test_a_sliver_of_a_cell_does_not_vote_for_the_flag(self):
         # An invented 8 x 8 fill output, 100 m cells: the study cell over the 3 x 3 cells at the

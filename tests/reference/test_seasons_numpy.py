@@ -368,10 +368,17 @@ class ShortAndGappyStacks(kt.TempDirTestCase):
         for out, period in ((out16, "16d"), (out1m, "1M")):
             done = kt.run_kalends(["-q", "seasons", self.folder, "--out", out, "--period", period])
             self.assertEqual(done.returncode, 0, done.stderr)
+        mixed_miss = out1m + "-miss"
+        shutil.copytree(out1m, mixed_miss)
         shutil.copy(os.path.join(out1m, "ndvi_anomaly_2020.tif"), out16)
         done = kt.run_kalends(["compare", out16, "--out", os.path.join(self.tmp, "c-two")])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("ndvi_anomaly_2020.tif: holds 12 periods (1M)", done.stderr)
+        # The synoptic miss of the other run: its statistics would have been compare's.
+        shutil.copy(os.path.join(out16, "ndvi_synoptic_miss.tif"), mixed_miss)
+        done = kt.run_kalends(["compare", mixed_miss, "--out", os.path.join(self.tmp, "c-miss")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("ndvi_synoptic_miss.tif: is of period 16d", done.stderr)
         mine = os.path.join(self.tmp, "c-mine")
         os.makedirs(mine)
         with open(os.path.join(mine, "compare.md"), "w") as f:
