@@ -352,6 +352,10 @@ class Runner {
       } else if (record->status == "failed") {
         s.state = "failed";
         s.detail = record->finished + " UTC: " + record->message;
+      } else if (record->status == "running") {
+        // Marked when a run started it, and never done or failed: that run was stopped.
+        s.state = "interrupted";
+        s.detail = "a run stopped while running it (" + record->finished + " UTC); the next run redoes it";
       } else {
         // The files a user sees: not the hidden ones (a tiled fill's .mosaic views), which the
         // run's "files written" does not count either.
@@ -745,9 +749,11 @@ class Runner {
       years_redone_[step.id] = std::vector<int>{};
       return;
     }
-    report.reason = !record ? "never run" : record->status == "failed" ? "failed last time"
-                                                 : !complete ? "outputs missing"
-                                                             : why_changed(*record, step, fingerprint);
+    report.reason = !record                       ? "never run"
+                    : record->status == "failed"  ? "failed last time"
+                    : record->status == "running" ? "stopped while running last time"
+                    : !complete                   ? "outputs missing"
+                                                  : why_changed(*record, step, fingerprint);
     if (options_.dry_run) {
       report.action = StepReport::Action::would_run;
       return;
@@ -820,6 +826,7 @@ class Runner {
     }
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
+    db_->step_running(step.id, step.kind);
     const std::string folder = step_folder(base_, step.id);
     remove_partials(folder);
     // With --skip-bad, a bad input file is left out and the step tried again.

@@ -197,6 +197,14 @@ void StateDatabase::step_done(const StepRecord& record) {
   }
 }
 
+void StateDatabase::step_running(const std::string& id, const std::string& kind) {
+  Statement s(db_, "INSERT INTO steps (id, kind, fingerprint, status, finished, seconds, message)"
+                   " VALUES (?, ?, '', 'running', datetime('now'), 0, '')"
+                   " ON CONFLICT(id) DO UPDATE SET status = 'running', finished = datetime('now')", path_);
+  s.bind(1, id).bind(2, kind);
+  s.step();
+}
+
 void StateDatabase::step_failed(const std::string& id, const std::string& kind, const std::string& message) {
   Statement s(db_, "INSERT INTO steps (id, kind, fingerprint, status, finished, seconds, message)"
                    " VALUES (?, ?, '', 'failed', datetime('now'), 0, ?)"

@@ -40,6 +40,9 @@ class StateDatabase {
   /// Marks a step done with its outputs, or failed with a message (outputs kept from before).
   void step_done(const StepRecord& record);
   void step_failed(const std::string& id, const std::string& kind, const std::string& message);
+  /// Marks a step as being run (its last record kept otherwise): a run stopped inside it leaves
+  /// it so, and status then says the step was interrupted.
+  void step_running(const std::string& id, const std::string& kind);
   void remember_skipped(const std::vector<std::string>& skipped);
   /// The inputs the last run left out as bad (--skip-bad): path and reason.
   std::vector<std::pair<std::string, std::string>> skipped() const;

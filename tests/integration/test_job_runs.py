@@ -860,7 +860,13 @@ class Faults(kt.TempDirTestCase):
         with open(log) as f:
             events = [json.loads(line) for line in f.read().splitlines()]
         self.assertEqual(events[-1], {"event": "finished", "exit_code": 143, "error": "stopped by SIGTERM"})
+        # status says the fill was interrupted (a step is marked when a run starts it), whether or
+        # not the stop left .partial files; it had said "stale" and exited 0.
+        status = kt.run_kalends(["status", edited, "--out", out])
+        self.assertEqual(status.returncode, 1, status.stdout)
+        self.assertIn("interrupted", [l for l in status.stdout.splitlines() if l.startswith("fill")][0])
         done = run(edited, "--out", out)
+        self.assertIn("stopped while running last time", done.stdout)
         self.assertEqual(done.returncode, 0, done.stderr)
         scratch = os.path.join(self.tmp, "stopped-scratch")
         self.assertEqual(run(edited, "--out", scratch).returncode, 0)
