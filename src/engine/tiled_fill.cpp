@@ -91,19 +91,17 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     std::error_code ec;
     const fs::path views = out / "mosaic";
     if (fs::is_directory(views, ec)) {
+      std::vector<fs::path> folders{views};
       for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)
-        if (it->is_regular_file() && it->path().extension() == ".vrt" &&
-            find_date_in_name(it->path().filename().string()))  // dated views only, not a user's VRT
-          fs::remove(it->path(), ec);
-      for (bool removed = true; removed;) {  // the folders left empty, deepest first
-        removed = false;
-        for (auto it = fs::recursive_directory_iterator(views, ec); it != fs::recursive_directory_iterator(); ++it)
-          if (it->is_directory() && fs::is_empty(it->path(), ec) && fs::remove(it->path(), ec)) {
-            removed = true;
-            break;
-          }
-      }
-      if (fs::is_empty(views, ec)) fs::remove(views, ec);
+        if (it->is_directory()) folders.push_back(it->path());
+        else if (it->path().extension() == ".vrt" && find_date_in_name(it->path().filename().string()))
+          fs::remove(it->path(), ec);  // dated views only, not a user's VRT
+      // The folders left empty, deepest first (a folder's path is longer than its parent's).
+      std::sort(folders.begin(), folders.end(), [](const fs::path& a, const fs::path& b) {
+        return a.native().size() > b.native().size();
+      });
+      for (const fs::path& folder : folders)
+        if (fs::is_empty(folder, ec)) fs::remove(folder, ec);
     }
   }
   return summary;

@@ -273,15 +273,9 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
   // An output replaces only an earlier kalends output (grid's carry KALENDS_GRID_SOURCE): a
   // user's raster under an output's name would be lost.
-  for (const Source& s : sources) {
-    const fs::path target = fs::path(request.out_dir) / s.relative;
-    std::error_code ec;
-    if (!fs::exists(target, ec)) continue;
-    const auto items = detail::raster_metadata(target.string());
-    if (!items.count("KALENDS_GRID_SOURCE") && !items.count("KALENDS_VERSION"))
-      throw UsageError(target.string(), "exists and was not written by kalends; move it away or choose another "
-                                        "output folder (nothing was replaced)");
-  }
+  for (const Source& s : sources)
+    detail::require_own_raster((fs::path(request.out_dir) / s.relative).string(),
+                               {"KALENDS_VERSION", "KALENDS_GRID_SOURCE"});
 
   // INIT_DEST: cells no source cell reaches are nodata, not the 0 a new MEM raster holds (an
   // extent beside the data had come out as a field of zeros).

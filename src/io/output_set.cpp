@@ -99,6 +99,14 @@ void publish_file(const std::string& temporary, const std::string& final_path) {
   sync_path(fs::path(final_path).parent_path().string(), true);
 }
 
+namespace {
+// The user's choice of folder, as an --out naming a file is: exit 2, not a failed write.
+[[noreturn]] void refuse_foreign_file(const std::string& path) {
+  throw UsageError(path, "exists and was not written by kalends; move it away or choose another output folder "
+                         "(nothing was replaced)");
+}
+}  // namespace
+
 void require_own_text_file(const std::string& path, const std::string& mark) {
   std::error_code ec;
   if (!fs::exists(path, ec)) return;
@@ -106,9 +114,16 @@ void require_own_text_file(const std::string& path, const std::string& mark) {
   std::string head(4096, '\0');
   in.read(head.data(), std::streamsize(head.size()));
   head.resize(std::size_t(in.gcount()));
-  if (head.find(mark) == std::string::npos)
-    throw UsageError(path, "exists and was not written by kalends; move it away or choose another output folder "
-                           "(nothing was replaced)");
+  if (head.find(mark) == std::string::npos) refuse_foreign_file(path);
+}
+
+void require_own_raster(const std::string& path, std::initializer_list<const char*> marks) {
+  std::error_code ec;
+  if (!fs::exists(path, ec)) return;
+  const std::map<std::string, std::string> metadata = raster_metadata(path);
+  for (const char* mark : marks)
+    if (metadata.count(mark)) return;
+  refuse_foreign_file(path);
 }
 
 void write_text_atomically(const std::string& path, const std::string& text) {
@@ -211,14 +226,7 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
 
   // An output replaces only an earlier kalends output (all carry KALENDS_VERSION): a user's own
   // raster that happens to have an output's name would be lost.
-  for (const OutputSpec& spec : specs) {
-    std::error_code ec;
-    if (!fs::exists(spec.path, ec)) continue;
-    if (!raster_metadata(spec.path).count("KALENDS_VERSION"))
-      // The user's choice of folder, as an --out naming a file is: exit 2, not a failed write.
-      throw UsageError(spec.path, "exists and was not written by kalends; move it away or choose another output "
-                                  "folder (nothing was replaced)");
-  }
+  for (const OutputSpec& spec : specs) require_own_raster(spec.path, {"KALENDS_VERSION"});
   OGRSpatialReference srs;
   const bool has_crs = !grid.crs_wkt.empty() && srs.importFromWkt(grid.crs_wkt.c_str()) == OGRERR_NONE;
   files_.reserve(specs.size());

@@ -15,6 +15,7 @@
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
+#include "io/majority.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends {
@@ -476,7 +477,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       file_grids.emplace_back(file, grid);
       for (const auto& [band, band_date] : bands) stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
     }
-    // Every file on the grid most of them share (the first file's where none has a majority):
+    // Every file on the grid most of them share (the stack is refused where none has a majority):
     // judged by the first file, an oldest composite delivered on another grid had every good
     // file named as the odd one, and `kalends run --skip-bad` left out the good files.
     auto matches = [](const Grid& a, const Grid& b) {
@@ -487,13 +488,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         return false;
       }
     };
-    std::size_t best = 0, best_count = 0;
-    for (std::size_t i = 0; i < file_grids.size() && best_count * 2 <= file_grids.size(); ++i) {
-      if (i > 0 && matches(file_grids[i - 1].second, file_grids[i].second)) continue;  // counted with a neighbour
-      std::size_t count = 0;
-      for (const auto& [f, g] : file_grids) count += matches(file_grids[i].second, g);
-      if (count > best_count) best = i, best_count = count;
-    }
+    const auto [best, best_count] = detail::most_shared(
+        file_grids, [&](const auto& a, const auto& b) { return matches(a.second, b.second); });
     if (!file_grids.empty()) {
       // Files on two or more grids, none shared by most of them: which is right cannot be told,
       // so none is left out as bad (run --skip-bad would drop half the stack).
@@ -505,10 +501,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
                                             best_count, file_grids.size(), file_grids[best].first, other->first));
       }
       stack.grid_ = file_grids[best].second;
-      const std::string rest = best_count * 2 > file_grids.size()
-                                   ? fmt::format("the rest of the stack ({} of its {} files)", best_count,
-                                                 file_grids.size())
-                                   : file_grids[best].first;
+      const std::string rest =
+          fmt::format("the rest of the stack ({} of its {} files)", best_count, file_grids.size());
       for (const auto& [f, g] : file_grids)
         if (f != file_grids[best].first) require_same_grid(stack.grid_, g, f, rest);
     }

@@ -1,6 +1,7 @@
 // Writing small text files (summaries, reports, caches) so that readers never see half a file.
 #pragma once
 
+#include <initializer_list>
 #include <string>
 
 namespace kalends::detail {
@@ -13,5 +14,9 @@ void write_text_atomically(const std::string& path, const std::string& text);
 /// there does not hold `mark` (text every such output of kalends carries) in its first 4 KiB, as
 /// for rasters without KALENDS_VERSION. Call before anything is written.
 void require_own_text_file(const std::string& path, const std::string& mark);
+
+/// The same for a raster output: UsageError naming `path` when a file there carries none of the
+/// metadata items `marks` (KALENDS_VERSION; grid's outputs also KALENDS_GRID_SOURCE).
+void require_own_raster(const std::string& path, std::initializer_list<const char*> marks);
 
 }  // namespace kalends::detail

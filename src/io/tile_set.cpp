@@ -17,6 +17,7 @@
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
+#include "io/majority.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/time.hpp"
@@ -237,12 +238,7 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
     auto same_grid = [](const Grid& a, const Grid& b) {
       return a.width == b.width && a.height == b.height && a.geotransform == b.geotransform;
     };
-    std::size_t reference = 0, most = 0;
-    for (std::size_t i = 0; i < headers.size() && most * 2 <= headers.size(); ++i) {
-      const std::size_t count = std::size_t(std::count_if(headers.begin(), headers.end(),
-                                                          [&](const Grid& h) { return same_grid(h, headers[i]); }));
-      if (count > most) reference = i, most = count;
-    }
+    const std::size_t reference = detail::most_shared(headers, same_grid).first;
     const Grid& g = headers[reference];
     const std::string& from = tile.files[reference];
     for (std::size_t i = 0; i < headers.size(); ++i) {

@@ -189,22 +189,23 @@ CompareSummary run_compare(const CompareRequest& request) {
   // Every anomaly layer on the synoptic's periods and grid: a folder holding the layers of two
   // seasons runs with different --period (or areas) would be read band against wrong band.
   const std::string mean_path = (fs::path(request.seasons_dir) / (name + "_synoptic_mean.tif")).string();
-  GDALDatasetUniquePtr mean = detail::open_raster(mean_path);
-  const std::string period = mean->GetMetadataItem("KALENDS_PERIOD") ? mean->GetMetadataItem("KALENDS_PERIOD") : "";
+  GDALDatasetUniquePtr synoptic_mean = detail::open_raster(mean_path);
+  const char* synoptic_period = synoptic_mean->GetMetadataItem("KALENDS_PERIOD");
+  const std::string period = synoptic_period ? synoptic_period : "";
   auto require_like_the_synoptic = [&](GDALDataset& layer, const std::string& path) {
     const char* p = layer.GetMetadataItem("KALENDS_PERIOD");
-    if (layer.GetRasterCount() != mean->GetRasterCount() || (p ? p : "") != period ||
+    if (layer.GetRasterCount() != synoptic_mean->GetRasterCount() || (p ? p : "") != period ||
         layer.GetRasterXSize() != width || layer.GetRasterYSize() != height)
       throw InputError(path, fmt::format("holds {} periods ({}) of {} x {} px; the synoptic layers here hold {} ({}) of "
                                          "{} x {}: layers of two `kalends seasons` runs in one folder; run seasons "
                                          "into a folder of its own",
                                          layer.GetRasterCount(), p ? p : "no period", layer.GetRasterXSize(),
-                                         layer.GetRasterYSize(), mean->GetRasterCount(), period, width, height));
+                                         layer.GetRasterYSize(), synoptic_mean->GetRasterCount(), period, width, height));
   };
   {
     const char* p = miss->GetMetadataItem("KALENDS_PERIOD");
     const char* y = miss->GetMetadataItem("KALENDS_YEARS");
-    const char* my = mean->GetMetadataItem("KALENDS_YEARS");
+    const char* my = synoptic_mean->GetMetadataItem("KALENDS_YEARS");
     if ((p ? p : "") != period || std::string(y ? y : "") != std::string(my ? my : ""))
       throw InputError(miss_path, fmt::format("is of period {} and years {}; the synoptic layers here are of {} and {}: "
                                               "layers of two `kalends seasons` runs in one folder",
