@@ -372,14 +372,18 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         value[rng.random((20, 20)) < 0.4] = np.nan
         flags = np.where(np.isnan(value), 3, np.where(rng.random((20, 20)) < 0.5, 0, 2)).astype(np.float32)
         value = np.where(flags == 3, np.nan, value).astype(np.float32)
-        path = os.path.join(self.tmp, "nearest-in", "ndvi_2020-01-01.tif")
-        os.makedirs(os.path.dirname(path))
-        write_named_bands(path, (("value", value), ("sd", np.where(np.isnan(value), np.nan, 0.01).astype(np.float32)),
-                                 ("flag", flags)), {"KALENDS_DATE": "2020-01-01"})
-        out = os.path.join(self.tmp, "nearest-out")
-        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "250", "--extent",
-                           "300000,7998000,302000,8000000", "--resample", "nearest"])
-        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        def gridded(name, value, flags, resolution, extent, resample):
+            """An invented fill output (value, sd, flag) put on a study grid; the output dataset."""
+            path = os.path.join(self.tmp, name + "-in", "ndvi_2020-01-01.tif")
+            os.makedirs(os.path.dirname(path))
+            sd = np.where(np.isnan(value), np.nan, 0.01).astype(np.float32)
+            write_named_bands(path, (("value", value), ("sd", sd), ("flag", flags)), {"KALENDS_DATE": "2020-01-01"})
+            out = os.path.join(self.tmp, name + "-out")
+            run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", resolution, "--extent",
+                               extent, "--resample", resample])
+            return kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+
+        ds = gridded("nearest", value, flags, "250", "300000,7998000,302000,8000000", "nearest")
         v, f, share = (ds.GetRasterBand(b).ReadAsArray() for b in (1, 3, 4))
         self.assertTrue(np.isnan(v).any())
         np.testing.assert_array_equal(np.isnan(v), f == 3)
@@ -389,14 +393,7 @@ class AreaWeightedMeans(kt.TempDirTestCase):
         holes = value.copy()
         holes[0:8, 0:8] = np.nan
         hole_flags = np.where(np.isnan(holes), 3, flags).astype(np.float32)
-        path = os.path.join(self.tmp, "sum-in", "ndvi_2020-01-01.tif")
-        os.makedirs(os.path.dirname(path))
-        write_named_bands(path, (("value", holes), ("sd", np.where(np.isnan(holes), np.nan, 0.01).astype(np.float32)),
-                                 ("flag", hole_flags)), {"KALENDS_DATE": "2020-01-01"})
-        out = os.path.join(self.tmp, "sum-out")
-        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "300", "--extent",
-                           "300000,7998200,301800,8000000", "--resample", "sum"])
-        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        ds = gridded("sum", holes, hole_flags, "300", "300000,7998200,301800,8000000", "sum")
         v, sd, f = (ds.GetRasterBand(b).ReadAsArray() for b in (1, 2, 3))
         self.assertTrue((f == 3).any())
         self.assertTrue(np.all(np.isnan(v[f == 3])) and np.all(np.isnan(sd[f == 3])))
