@@ -36,6 +36,9 @@ struct SurveyPoints {
   std::vector<SurveyPoint> points;
   std::string crs_wkt;
   bool from_columns = true;  // CSV: coordinates from the x and y columns; else geometries
+  /// The columns as the file spells them (the options match them whatever their case).
+  std::string id_name, x_name, y_name, date_name;
+  std::vector<std::string> notes;  // what a user should know (a CRS assumed), a line each
 };
 
 /// Empty coordinates or dates are kept (the values get a reason); a column that is not there,

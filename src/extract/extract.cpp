@@ -15,6 +15,7 @@
 
 #include <algorithm>
 #include <filesystem>
+#include <fstream>
 #include <cmath>
 #include <map>
 #include <memory>
@@ -273,11 +274,10 @@ std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std:
 }
 
 std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
-  const PointsSource& src = request.points;
   const bool csv = r.points.from_columns;
-  const std::string xname = csv ? src.x_column : "x", yname = csv ? src.y_column : "y";
-  std::string text = fmt::format("{},{},{},{}", csv_field(src.id_column), csv_field(xname), csv_field(yname),
-                                 csv_field(src.date_column.empty() ? "date" : src.date_column));
+  const std::string xname = csv ? r.points.x_name : "x", yname = csv ? r.points.y_name : "y";
+  std::string text = fmt::format("{},{},{},{}", csv_field(r.points.id_name), csv_field(xname), csv_field(yname),
+                                 csv_field(r.points.date_name.empty() ? "date" : r.points.date_name));
   const bool buffer = request.buffer_metres > 0;
   auto lag_count = [&](const CovariateSeries& s) { return s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size()); };
   if (request.long_format) {
@@ -339,6 +339,22 @@ Sampling parse_sampling(const std::string& text) {
   throw UsageError("--sampling '" + text + "'", "expected nearest or bilinear");
 }
 
+namespace {
+
+// The header of a table this command writes: its last column is the reason ("reason" in the
+// long form, "<layer>.reason" in the wide one) and a "matched" column comes before it.
+bool is_extract_table(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  std::string header;
+  std::getline(in, header);
+  if (!header.empty() && header.back() == '\r') header.pop_back();
+  const bool ends_with_reason = header.size() >= 7 && (header.ends_with(",reason") || header.ends_with(".reason") ||
+                                                       header.ends_with(".reason\""));
+  return ends_with_reason && header.find("matched") != std::string::npos;
+}
+
+}  // namespace
+
 void check_extract_options(const ExtractRequest& request) {
   if (!request.points.crs.empty()) {
     OGRSpatialReference crs;
@@ -355,6 +371,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
   check_extract_options(request);
   ExtractResult r;
   r.points = read_survey_points(request.points);
+  r.notes = r.points.notes;
   {
     std::map<std::string, int> seen;
     for (const SurveyPoint& p : r.points.points)
@@ -373,6 +390,11 @@ ExtractResult run_extract(const ExtractRequest& request) {
       for (const auto& f : s.files)
         if (same(f.path))
           throw UsageError("--out '" + request.out + "'", "is a file of the layer " + s.name + "; give the table another name");
+    // Anything else there must be an earlier table of this command: a shapefile's .dbf, a
+    // descriptor layer left out of the search or a summary would be lost.
+    if (!is_extract_table(request.out))
+      throw UsageError("--out '" + request.out + "'", "exists and is not a table kalends extract wrote; move it away or "
+                                                     "give the table another name (nothing was replaced)");
   }
   r.series = select(std::move(found), request.layers);
   for (CovariateSeries& s : r.series) set_date_marks(s, request.marks);

@@ -7,6 +7,7 @@
 #include <filesystem>
 #include <fstream>
 #include <iterator>
+#include <optional>
 #include <regex>
 
 #include <fmt/format.h>
@@ -147,6 +148,53 @@ void read_date(SurveyPoint& p, const std::string& where) {
   p.date = CivilDate{year, month, day};
 }
 
+// Whether the text holds nothing but a byte-order mark and white space (a spreadsheet's export
+// of an empty sheet): "is empty" says more than "unknown format".
+bool only_blank(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  std::string head(65536, '\0');
+  in.read(head.data(), std::streamsize(head.size()));
+  head.resize(std::size_t(in.gcount()));
+  if (!in.eof()) return false;  // larger than what was read: not blank
+  if (head.starts_with("\xEF\xBB\xBF")) head.erase(0, 3);
+  return head.find_first_not_of(" \t\r\n") == std::string::npos;
+}
+
+// GDAL's CSV reader (3.6) tells comma, semicolon and tab apart but not '|': a pipe-separated
+// table is handed to it as a tab-separated copy in memory, the separators outside quotes
+// swapped. The copy lives as long as this object.
+class PipeTable {
+ public:
+  explicit PipeTable(const std::string& path) {
+    std::ifstream in(path, std::ios::binary);
+    std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    const std::string header = text.substr(0, text.find('\n'));
+    if (header.find('|') == std::string::npos || header.find_first_of(",;\t") != std::string::npos) return;
+    bool quoted = false;
+    for (char& c : text) {
+      if (c == '"') quoted = !quoted;
+      else if (c == '|' && !quoted) c = '\t';
+    }
+    name_ = fmt::format("/vsimem/kalends-points-{}.csv", static_cast<const void*>(this));
+    VSILFILE* f = VSIFOpenL(name_.c_str(), "wb");
+    if (!f) {
+      name_.clear();
+      return;
+    }
+    VSIFWriteL(text.data(), 1, text.size(), f);
+    VSIFCloseL(f);
+  }
+  ~PipeTable() {
+    if (!name_.empty()) VSIUnlink(name_.c_str());
+  }
+  PipeTable(const PipeTable&) = delete;
+  PipeTable& operator=(const PipeTable&) = delete;
+  const std::string& name() const { return name_; }
+
+ private:
+  std::string name_;
+};
+
 }  // namespace
 
 SurveyPoints read_survey_points(const PointsSource& source) {
@@ -154,7 +202,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   const std::string path = source.path;
   if (!std::filesystem::exists(path)) throw InputError(path, "no such file");
   std::error_code ec;
-  if (std::filesystem::is_regular_file(path, ec) && std::filesystem::file_size(path, ec) == 0)
+  if (std::filesystem::is_regular_file(path, ec) && (std::filesystem::file_size(path, ec) == 0 || only_blank(path)))
     throw InputError(path, "is empty");
   CPLErrorReset();
   GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
@@ -164,26 +212,44 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     CPLErrorReset();
     ds.reset(GDALDataset::Open(("CSV:" + path).c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
   }
+  std::optional<PipeTable> pipe_table;
+  if (!ds && (extension == ".csv" || extension == ".txt" || extension == ".tsv" || extension == ".tab" ||
+              extension == ".dat")) {
+    pipe_table.emplace(path);
+    if (!pipe_table->name().empty())
+      ds.reset(GDALDataset::Open(pipe_table->name().c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
+  }
   if (!ds || ds->GetLayerCount() < 1)
     throw InputError(path, "cannot open as a table of points (" + detail::gdal_message("unknown format") + ")");
   const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
   OGRLayer* layer = ds->GetLayer(0);
   OGRFeatureDefn& defn = *layer->GetLayerDefn();
   if (layer->GetFeatureCount() == 0) throw InputError(path, "holds no points");
-  const int id = field_index(defn, source.id_column, "--id-column", path);
+  // The id may be a GeoPackage's key column (FID=id), which OGR keeps apart from the fields.
+  const std::string key_column = layer->GetFIDColumn() ? layer->GetFIDColumn() : "";
+  const bool id_is_key = !key_column.empty() && lower(key_column) == lower(source.id_column) &&
+                         defn.GetFieldIndex(source.id_column.c_str()) < 0;
+  const int id = id_is_key ? -1 : field_index(defn, source.id_column, "--id-column", path);
   const int date = source.date_column.empty() ? -1 : field_index(defn, source.date_column, "--date-column", path);
   int x = -1, y = -1;
   SurveyPoints result;
   result.from_columns = csv;
+  result.id_name = id_is_key ? key_column : defn.GetFieldDefn(id)->GetNameRef();
+  if (date >= 0) result.date_name = defn.GetFieldDefn(date)->GetNameRef();
   OGRSpatialReference crs;
   if (csv) {
     x = field_index(defn, source.x_column, "--x-column", path);
     y = field_index(defn, source.y_column, "--y-column", path);
+    result.x_name = defn.GetFieldDefn(x)->GetNameRef();
+    result.y_name = defn.GetFieldDefn(y)->GetNameRef();
   }
   if (!csv && layer->GetSpatialRef()) {
     crs = *layer->GetSpatialRef();
   } else {
     detail::set_crs_from_user(crs, source.crs, "--crs");
+    if (!csv)
+      result.notes.push_back(path + ": states no CRS (a Shapefile without its .prj?); its coordinates were taken as " +
+                             source.crs + " (--crs)");
   }
   char* wkt = nullptr;
   crs.exportToWkt(&wkt);
@@ -195,7 +261,9 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   for (auto& feature : *layer) {
     const CsvRow raw = row < rows.size() ? rows[row] : CsvRow{int(row) + 2, defn.GetFieldCount(), false};
     ++row;
-    const std::string where = path + (csv ? ":" + std::to_string(raw.line) : " feature " + std::to_string(feature->GetFID()));
+    // A vector file's features by their place in the file, counted from 1 as a reader counts
+    // (OGR's ids start at 0 in some formats and need not be in order).
+    const std::string where = path + (csv ? ":" + std::to_string(raw.line) : " feature " + std::to_string(row));
     if (csv && raw.blank) continue;  // only separators or spaces: nothing was written there
     if (csv && raw.fields != defn.GetFieldCount())
       throw InputError(where, fmt::format("has {} fields where the header has {} ({})", raw.fields,
@@ -204,7 +272,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
                                               ? "a decimal comma or a separator inside an unquoted field?"
                                               : "a row cut short?"));
     SurveyPoint p;
-    p.id = feature->GetFieldAsString(id);
+    p.id = id_is_key ? std::to_string(feature->GetFID()) : feature->GetFieldAsString(id);
     if (csv) {
       const std::string xs = field_text(feature->GetFieldAsString(x)), ys = field_text(feature->GetFieldAsString(y));
       p.x_text = trim(feature->GetFieldAsString(x));  // echoed as written, NA included
@@ -227,6 +295,10 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       }
     } else {
       const OGRGeometry* g = feature->GetGeometryRef();
+      // A multipoint of one point is a point as some exports write it (Shapefiles).
+      if (g && !g->IsEmpty() && wkbFlatten(g->getGeometryType()) == wkbMultiPoint &&
+          g->toMultiPoint()->getNumGeometries() == 1)
+        g = g->toMultiPoint()->getGeometryRef(0);
       if (!g || g->IsEmpty()) p.has_coordinates = false;
       else if (wkbFlatten(g->getGeometryType()) != wkbPoint)
         throw InputError(where, std::string("a ") + g->getGeometryName() + ", not a point");

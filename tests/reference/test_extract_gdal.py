@@ -329,6 +329,112 @@ class ExtractLandsat(kt.TempDirTestCase):
             done = kt.run_kalends(["-q", "report", os.path.dirname(layer), "--html", page])
             self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_only_an_earlier_table_is_replaced(self):
+        # A shapefile's .dbf, a summary beside the layers, any user file: each would be lost if
+        # the table replaced it (they were, before 0.3.14). An earlier table, wide or long, is
+        # replaced.
+        keep = os.path.join(self.tmp, "notes.dbf")
+        with open(keep, "wb") as f:
+            f.write(b"\x03\x7d\x0c\x04 a user's attribute table")
+        with open(keep, "rb") as f:
+            before = f.read()
+        done = self.extract_site_table(self.csv, keep)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("notes.dbf': exists and is not a table kalends extract wrote", done.stderr)
+        with open(keep, "rb") as f:
+            self.assertEqual(f.read(), before)
+        for extra in ([], ["--long"]):
+            table = os.path.join(self.tmp, "again%s.csv" % len(extra))
+            for _ in range(2):
+                done = kt.run_kalends(["-q", "extract", self.raster, "--points", self.csv, "--out", table,
+                                       "--id-column", "site", "--x-column", "lon", "--y-column", "lat",
+                                       "--date-column", ""] + extra)
+                self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_pipe_separated_blank_and_capitalised_tables(self):
+        # extract.md: comma, semicolon, tab or pipe separated. GDAL 3.6 does not read '|' itself.
+        piped = os.path.join(self.tmp, "sites_pipe.csv")
+        with open(self.csv) as f, open(piped, "w") as g:
+            g.write(f.read().replace(",", "|").replace("site|lon|lat", "Site|Lon|Lat"))
+        out = os.path.join(self.tmp, "from_pipe.csv")
+        done = self.extract_site_table(piped, out, "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        from_csv = os.path.join(self.tmp, "from_csv_for_pipe.csv")
+        self.assertEqual(self.extract_site_table(self.csv, from_csv, "-q").returncode, 0)
+        with open(out) as f:
+            self.assertTrue(f.readline().startswith("Site,Lon,Lat,"))  # the file's own spelling
+        self.assertEqual([list(row.values()) for row in kt.read_table(out)],
+                         [list(row.values()) for row in kt.read_table(from_csv)])
+        # A file of nothing but a byte-order mark and blank lines is empty, not of an unknown format.
+        blank = os.path.join(self.tmp, "blank.csv")
+        with open(blank, "wb") as f:
+            f.write(b"\xef\xbb\xbf\n\r\n  \n")
+        done = self.extract_site_table(blank, os.path.join(self.tmp, "b.csv"))
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("blank.csv: is empty", done.stderr)
+
+    def test_vector_points_keyed_multipoint_and_without_crs(self):
+        from osgeo import ogr, osr
+        wgs84 = osr.SpatialReference()
+        wgs84.ImportFromEPSG(4326)
+        pid, lon, lat = self.points[0]
+        # A GeoPackage whose key column is the id (FID=id), a common export.
+        keyed = os.path.join(self.tmp, "keyed.gpkg")
+        ds = ogr.GetDriverByName("GPKG").CreateDataSource(keyed)
+        layer = ds.CreateLayer("pts", wgs84, ogr.wkbPoint, options=["FID=id"])
+        feature = ogr.Feature(layer.GetLayerDefn())
+        feature.SetFID(7)
+        feature.SetGeometry(ogr.CreateGeometryFromWkt("POINT (%.10f %.10f)" % (lon, lat)))
+        layer.CreateFeature(feature)
+        ds = None
+        out = os.path.join(self.tmp, "keyed.csv")
+        done = kt.run_kalends(["-q", "extract", self.raster, "--points", keyed, "--out", out, "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = kt.read_table(out)
+        self.assertEqual(rows[0]["id"], "7")
+        nearest = {r["site"]: r for r in self.tables["nearest"]}[pid]
+        self.assertEqual(rows[0]["L7_ETMs.b1"], nearest["L7_ETMs.b1"])
+        # A multipoint of one point is that point; a polygon is named by its place, from 1.
+        shapes = os.path.join(self.tmp, "shapes.geojson")
+        ds = ogr.GetDriverByName("GeoJSON").CreateDataSource(shapes)
+        layer = ds.CreateLayer("pts", wgs84, ogr.wkbUnknown)
+        layer.CreateField(ogr.FieldDefn("id", ogr.OFTString))
+        for i, wkt in enumerate(["MULTIPOINT (%.10f %.10f)" % (lon, lat), "POINT (%.10f %.10f)" % (lon, lat)]):
+            feature = ogr.Feature(layer.GetLayerDefn())
+            feature.SetField("id", "s%d" % i)
+            feature.SetGeometry(ogr.CreateGeometryFromWkt(wkt))
+            layer.CreateFeature(feature)
+        ds = None
+        out = os.path.join(self.tmp, "shapes.csv")
+        done = kt.run_kalends(["-q", "extract", self.raster, "--points", shapes, "--out", out, "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = kt.read_table(out)
+        self.assertEqual([r["L7_ETMs.b1"] for r in rows], [nearest["L7_ETMs.b1"]] * 2)
+        with open(shapes, "w") as f:
+            f.write('{"type": "FeatureCollection", "features": ['
+                    '{"type": "Feature", "properties": {"id": "s0"}, "geometry": {"type": "Point", "coordinates": [%.10f, %.10f]}}, '
+                    '{"type": "Feature", "properties": {"id": "s1"}, "geometry": {"type": "LineString", '
+                    '"coordinates": [[%.10f, %.10f], [0, 0]]}}]}' % (lon, lat, lon, lat))
+        done = kt.run_kalends(["extract", self.raster, "--points", shapes, "--out", out, "--date-column", ""])
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("shapes.geojson feature 2: a LINESTRING, not a point", done.stderr)
+        # A Shapefile without its .prj: the CRS taken is said.
+        bare = os.path.join(self.tmp, "bare.shp")
+        ds = ogr.GetDriverByName("ESRI Shapefile").CreateDataSource(bare)
+        layer = ds.CreateLayer("bare", None, ogr.wkbPoint)
+        layer.CreateField(ogr.FieldDefn("id", ogr.OFTString))
+        feature = ogr.Feature(layer.GetLayerDefn())
+        feature.SetField("id", "b1")
+        feature.SetGeometry(ogr.CreateGeometryFromWkt("POINT (%.10f %.10f)" % (lon, lat)))
+        layer.CreateFeature(feature)
+        ds = None
+        done = kt.run_kalends(["extract", self.raster, "--points", bare, "--out", os.path.join(self.tmp, "bare.csv"),
+                               "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("bare.shp: states no CRS", done.stderr)
+        self.assertIn("taken as EPSG:4326", done.stderr)
+
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
         base = ["extract", self.raster, "--points", self.csv, "--out", out, "--id-column", "site",
