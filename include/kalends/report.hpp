@@ -26,6 +26,7 @@ struct ReportRequest {
 struct ReportSummary {
   int maps = 0, plots = 0, validation_reports = 0, validation_plots = 0, fill_summaries = 0;
   std::size_t bytes = 0;
+  std::vector<std::string> notes;  // what a user should know, a line each (pixels not drawn)
 };
 
 /// A pixel as the command line and the job file give it: "COLUMN,ROW" or "COLUMN ROW", whole

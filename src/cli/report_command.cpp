@@ -1,4 +1,5 @@
 // kalends report FOLDER --html report.html [--pixels 'c,r;c,r'] [--samples N] [--map-size PX]
+#include <cstdio>
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
@@ -31,6 +32,7 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
     }
     if (r.map_size < 16 || r.map_size > 4096) throw UsageError("--map-size", "between 16 and 4096 pixels");
     const ReportSummary s = run_report(r);
+    for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
     if (!global.quiet)
       fmt::print("kalends report: {} maps, {} time series, {} validation reports ({} pixel plots), {} fill summaries "
                  "-> {} ({:.0f} kB)\n",

@@ -191,6 +191,7 @@ double read_pixel(GDALDataset& ds, int band, int col, int row) {
 struct Plots {
   std::string html;
   int count = 0;
+  std::vector<std::string> notes;
 };
 
 // The pixel of a fill output's raw source that lies under the output's pixel (c, r): the same
@@ -243,7 +244,7 @@ Plots validation_series_html(const fs::path& csv, const fs::path& root) {
   const std::string name = escape(fs::relative(csv, root).string());
   if (header.size() < 6 || header[0] != "column" || header[1] != "row" || header[2] != "date" || header[3] != "truth" ||
       header[4] != "withheld")
-    return {fmt::format("<p class=\"note\">{}: not the layout kalends validate writes; not drawn.</p>\n", name), 0};
+    return {fmt::format("<p class=\"note\">{}: not the layout kalends validate writes; not drawn.</p>\n", name), 0, {}};
   std::vector<std::size_t> curve_columns;  // values, not their sd
   for (std::size_t c = 5; c < header.size(); ++c)
     if (!header[c].ends_with("_sd")) curve_columns.push_back(c);
@@ -294,6 +295,7 @@ Plots validation_series_html(const fs::path& csv, const fs::path& root) {
 Plots time_series_html(const ReportRequest& request, const std::vector<CovariateSeries>& all) {
   Plots plots;
   int largest_width = 0, largest_height = 0;
+  std::vector<bool> on_some_grid(request.pixels.size(), false);
   for (const CovariateSeries& s : all) {
     if (s.kind != SeriesKind::dated || !s.has_sd_and_flag || s.period) continue;
     // Fill outputs on their own grid: a copy on a study grid (kalends grid) has other columns
@@ -305,13 +307,19 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
     const CovariateSeries* synoptic = nullptr;
     for (const CovariateSeries& other : all)
       if (other.kind == SeriesKind::synoptic_period && other.name.size() >= 13 &&
-          other.name.compare(other.name.size() - 13, 13, "synoptic_mean") == 0) {
+          other.name.compare(other.name.size() - 13, 13, "synoptic_mean") == 0 &&
+          // a study-grid copy keeps its source's KALENDS_INPUT but not its pixels
+          metadata_item(other.files.front().path, "KALENDS_GRID_CRS").empty()) {
         const std::string input = metadata_item(other.files.front().path, "KALENDS_INPUT");
         // the seasons input is the fill folder itself or a pattern inside it
         std::error_code ec;
         const fs::path read = fs::is_directory(input, ec) ? fs::path(input) : fs::path(input).parent_path();
         if (canonical_text(read) == folder) synoptic = &other;
       }
+    for (std::size_t i = 0; i < request.pixels.size(); ++i) {
+      const auto [c, r] = request.pixels[i];
+      on_some_grid[i] = on_some_grid[i] || (c >= 0 && r >= 0 && c < s.grid.width && r < s.grid.height);
+    }
     const auto pixels = sample_pixels(request, s.grid);
     if (pixels.empty()) continue;  // the user's pixels lie beyond this layer (another tile)
     std::vector<std::vector<PlotDate>> series(pixels.size());
@@ -388,6 +396,15 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
   if (plots.count == 0 && !request.pixels.empty() && largest_width > 0)
     throw UsageError(fmt::format("--pixels {},{}", request.pixels.front().first, request.pixels.front().second),
                      fmt::format("outside every fill output (the largest grid is {} x {})", largest_width, largest_height));
+  // Some of the user's pixels drawn, others beyond every grid: say which were left out.
+  std::string beyond;
+  for (std::size_t i = 0; i < request.pixels.size(); ++i)
+    if (!on_some_grid[i]) beyond += fmt::format("{}{},{}", beyond.empty() ? "" : "; ", request.pixels[i].first, request.pixels[i].second);
+  if (!beyond.empty()) {
+    plots.notes.push_back(fmt::format("--pixels {}: outside every fill output (the largest grid is {} x {}); not drawn",
+                                      beyond, largest_width, largest_height));
+    plots.html += "<p class=\"note\">" + escape(plots.notes.back()) + ".</p>\n";
+  }
   if (plots.count == 0) plots.html = "<p>No fill outputs (value, sd and flag bands with their source) in this folder.</p>\n";
   return plots;
 }
@@ -533,6 +550,7 @@ ReportSummary run_report(const ReportRequest& request) {
 
   const Plots plots = time_series_html(request, all);
   summary.plots = plots.count;
+  summary.notes = plots.notes;
 
   std::string html = std::string(page_start) + fmt::format(
       "{0}</title>\n"

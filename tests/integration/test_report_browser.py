@@ -161,6 +161,24 @@ class ReportBesideAStudyGrid(kt.TempDirTestCase):
         done = kt.run_kalends(["report", out, "--html", html, "--pixels", "160,70"])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("outside every fill output (the largest grid is 100 x 100)", done.stderr)
+        # The seasons of the fill and their copy on the study grid: the dashed synoptic curve
+        # is the seasons step's own layer, not the copy (which keeps the copied layer's
+        # KALENDS_INPUT, and had been read at the fill's pixel numbers: another place).
+        for step in (["seasons", os.path.join(out, "fill"), "--out", os.path.join(out, "seasons"), "--period", "1M"],
+                     ["grid", os.path.join(out, "seasons"), "--out", os.path.join(out, "study2"), "--crs",
+                      "EPSG:32606", "--resolution", "5000"]):
+            done = kt.run_kalends(["-q"] + step)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        # A pixel beyond every grid beside one on it: drawn is the one, and the other is named.
+        done = kt.run_kalends(["report", out, "--html", html, "--pixels", "60,70;160,70"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: --pixels 160,70: outside every fill output (the largest grid is 100 x 100); not drawn",
+                      done.stderr)
+        with open(html) as f:
+            page = f.read()
+        self.assertIn("synoptic cycle from seasons.ndvi_synoptic_mean", page)
+        self.assertNotIn("synoptic cycle from study2", page)
+        self.assertIn("--pixels 160,70: outside every fill output", page)
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)

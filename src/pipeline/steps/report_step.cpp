@@ -51,8 +51,8 @@ StepKind report_step_kind() {
   kind.run = [](const StepContext& c) {
     const ReportRequest r = report_request(c);
     std::filesystem::create_directories(c.folder);
-    run_report(r);
-    return StepOutcome{1, 0, "", {}};
+    const ReportSummary s = run_report(r);
+    return StepOutcome{1, 0, "", s.notes};
   };
   return kind;
 }
