@@ -83,6 +83,7 @@ struct FillSummary {
   int outputs_removed = 0;  // earlier outputs of dates (or a calendar) this fill no longer makes
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
+  std::string time_grid_note;     // a time grid on the smallest spacing (TimeGrid); "" where none
   std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
 };
 

@@ -12,6 +12,12 @@ namespace kalends {
 struct TimeGrid {
   TimePoint start;
   double step_days = 1.0;
+  /// The step is the smallest spacing, not the median: at the median, dates of mixed or
+  /// irregular spacing (8- and 16-day composites) would have moved a whole step or more.
+  bool from_smallest_spacing = false;
+  double median_spacing_days = 0;
+  /// The largest distance, in days, of a date from its slot's nominal time.
+  double largest_shift_days = 0;
   int size = 0;
   std::vector<int> slot_of_date;   // for each input date (sorted), its slot
   std::vector<double> slot_days;   // days since `start`: the true date where a slot holds one,
@@ -19,7 +25,9 @@ struct TimeGrid {
 
   /// `times` must be sorted and distinct. The step is the median spacing, in whole days where
   /// it is a day or more. A date is put in its nearest slot; a date whose nearest slot is
-  /// taken (a composite calendar restarting on 1 January) moves to the next free one.
+  /// taken (a composite calendar restarting on 1 January) moves to the next free one. Where a
+  /// date would then lie a whole step or more from its slot, the step is the smallest spacing
+  /// instead (whole days, rounded down), on which every date has a slot of its own.
   static TimeGrid build(const std::vector<TimePoint>& times);
   TimePoint slot_time(int slot) const;
 };

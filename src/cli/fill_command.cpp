@@ -163,6 +163,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    "note: %s states %s, which GDAL leaves unapplied: the values were filled as stored; "
                    "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
                    r.input.c_str(), s.unapplied_scaling.c_str());
+    if (!s.time_grid_note.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.time_grid_note.c_str());
     if (!s.mixed_value_rules.empty())
       std::fprintf(stderr, "note: %s: the inputs' value rules differ: %s (give --scale, --offset or --nodata for all "
                            "if one file's metadata is wrong; see kalends inspect --dates)\n",

@@ -51,8 +51,11 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
                "            --date-marks end to seasons, suitability and extract\n");
   const TimeGrid& t = r.time_grid;
   if (layers.size() > 1)
-    fmt::print("  time grid step {:g} days (the median spacing), {} slots, {} with a date\n", t.step_days, t.size,
-               r.slots_with_data);
+    fmt::print("  time grid step {:g} days ({}), {} slots, {} with a date\n", t.step_days,
+               t.from_smallest_spacing ? "the smallest spacing: on the median one, dates of mixed spacing would move "
+                                         "a whole step"
+                                       : "the median spacing",
+               t.size, r.slots_with_data);
   else
     fmt::print("  time grid none: a single date (filling in time needs several)\n");
   const auto nodata = [&](const Layer& l) { return l.nodata ? fmt::format("{:g}", *l.nodata) : std::string("none"); };

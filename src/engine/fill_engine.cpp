@@ -105,6 +105,7 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
     notes.push_back("the input states " + summary.unapplied_scaling +
                     ", which GDAL leaves unapplied: the values were filled as stored (set 'scale' and "
                     "'offset' if they are not in physical units)");
+  if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
@@ -601,6 +602,16 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   FillSummary summary;
   summary.unapplied_scaling = unapplied_scaling(stack);
   summary.mixed_value_rules = mixed_value_rules(stack);
+  if (grid.from_smallest_spacing)
+    summary.time_grid_note = fmt::format(
+        "dates of mixed spacing (median {:g} days, smallest {:g}): the time grid steps {:g} days so that every date "
+        "keeps its own day; a fixed lambda or time smoothing counts these steps",
+        grid.median_spacing_days, grid.step_days, grid.step_days);
+  else if (grid.largest_shift_days >= grid.step_days)
+    summary.time_grid_note = fmt::format(
+        "dates of mixed spacing: on the {:g}-day time grid (the median spacing) a date lies up to {:g} days from its "
+        "slot; the smallest spacing would need too many slots (see kalends inspect)",
+        grid.step_days, std::round(grid.largest_shift_days * 10) / 10);
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();

@@ -97,10 +97,38 @@ TEST_CASE("time grid keeps true spacing and resolves composite-calendar collisio
   CHECK(g.size == 8);
   CHECK(g.slot_days[2] == 29);   // true date kept for the slot
   CHECK(g.slot_days[5] == 80);   // empty slot on the grid
-  // Two dates nearest the same slot: the later moves to the next slot.
-  const TimeGrid c = TimeGrid::build({day(2020, 1, 1), day(2020, 1, 17), day(2020, 1, 26),
-                                      day(2020, 2, 2), day(2020, 2, 18)});
-  CHECK(c.slot_of_date == std::vector<int>{0, 1, 2, 3, 4});
+  CHECK_FALSE(g.from_smallest_spacing);
+  // Two dates nearest the same slot: the later moves to the next slot (12 days from its time).
+  const TimeGrid c = TimeGrid::build({day(2020, 1, 1), day(2020, 1, 17), day(2020, 1, 21), day(2020, 2, 6)});
+  CHECK(c.step_days == 16);
+  CHECK(c.slot_of_date == std::vector<int>{0, 1, 2, 3});
+  CHECK(c.largest_shift_days == 12);
+  CHECK_FALSE(c.from_smallest_spacing);
+}
+
+TEST_CASE("time grid of mixed spacing steps the smallest spacing, within a bound on its size", "[engine][grid]") {
+  auto day = [](int y, int m, int d) { return TimePoint::from_date({y, m, d}); };
+  // Spacings 16, 9, 7, 16: on the 16-day median grid 2 February (day 32) would be pushed to
+  // slot 3 (day 48), a whole step away; on the 7-day grid every date is within 3.5 days.
+  const TimeGrid mixed = TimeGrid::build({day(2020, 1, 1), day(2020, 1, 17), day(2020, 1, 26),
+                                          day(2020, 2, 2), day(2020, 2, 18)});
+  CHECK(mixed.from_smallest_spacing);
+  CHECK(mixed.median_spacing_days == 16);
+  CHECK(mixed.step_days == 7);
+  CHECK(mixed.slot_of_date == std::vector<int>{0, 2, 4, 5, 7});
+  CHECK(mixed.largest_shift_days <= 3.5);
+  CHECK(mixed.slot_days[4] == 25);  // the true day of 26 January is kept
+  // Two scenes ten minutes apart in a 16-day stack: a 10-minute grid would need ~2300 slots per
+  // date, so the median grid stays and the shift is reported.
+  std::vector<TimePoint> times;
+  for (int k = 0; k < 6; ++k) times.push_back(TimePoint{day(2020, 1, 1).seconds + k * 16 * 86400});
+  times.insert(times.begin() + 3, TimePoint{times[2].seconds + 600});
+  const TimeGrid scenes = TimeGrid::build(times);
+  CHECK_FALSE(scenes.from_smallest_spacing);
+  CHECK(scenes.step_days == 16);
+  CHECK(scenes.largest_shift_days >= 16);
+  CHECK(scenes.slot_of_date == std::vector<int>{0, 1, 2, 3, 4, 5, 6});  // each later date one slot on
+  CHECK(scenes.size == 7);
 }
 
 TEST_CASE("blocks capped at one tile row are the same for a strip of tile rows and the whole raster",

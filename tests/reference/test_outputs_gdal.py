@@ -393,5 +393,50 @@ class RejectedNearTheEnd(kt.TempDirTestCase):
                                      sorted(set(int(t) for t in np.argwhere(wrong)[:, 0]))))
 
 
+class MixedSpacing(kt.TempDirTestCase):
+    """8-day composites, then 16-day ones (two products, or one that changed its calendar)."""
+
+    def test_a_line_is_kept_on_its_true_days(self):
+        # The order-2 difference penalty leaves a straight line unpenalised (Eilers 2003), so on
+        # the dates' true days a line is reproduced whatever lambda. Before 0.3.14 the grid took
+        # the median step (16 days) and the 8-day dates pushed each other on, slot after slot:
+        # the fill at day 169 was 0.2596 against 0.248.
+        folder = os.path.join(self.tmp, "mixed")
+        os.makedirs(folder)
+        days = [145, 153, 161, 169, 177, 193, 209, 225, 241, 257]
+        gaps = (169, 225)
+        for doy in days:
+            values = np.full((4, 4), round((0.2 + 0.002 * (doy - 145)) / SCALE), np.int16)
+            if doy in gaps:
+                values[:] = NODATA
+            kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), values, geotransform=GEOTRANSFORM,
+                            epsg=EPSG, scale=SCALE, nodata=NODATA)
+        out = os.path.join(self.tmp, "out")
+        done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--out", out, "--lambda", "1e5"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("dates of mixed spacing (median 16 days, smallest 8)", done.stderr)
+        for doy in gaps:
+            date = datetime.date(2004, 1, 1) + datetime.timedelta(days=doy - 1)
+            filled = kt.read_output(os.path.join(out, "ndvi_%s.tif" % date.isoformat()))
+            self.assertTrue(np.all(filled["flag"] == 2))
+            np.testing.assert_allclose(filled["value"], 0.2 + 0.002 * (doy - 145), atol=2e-4)
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("time grid step 8 days (the smallest spacing", done.stdout)
+        self.assertIn("15 slots, 10 with a date", done.stdout)
+
+    def test_a_regular_stack_keeps_the_median_step(self):
+        # MODIS 16-day over three year ends (DOY 353 then 001, 13 days): the median step.
+        folder = os.path.join(self.tmp, "regular")
+        os.makedirs(folder)
+        for year in (2019, 2020, 2021):
+            for doy in range(1, 366, 16):
+                kt.write_raster(os.path.join(folder, "ndvi_A%d%03d.tif" % (year, doy)), np.full((2, 2), 5000, np.int16),
+                                scale=SCALE, nodata=NODATA)
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("time grid step 16 days (the median spacing)", done.stdout)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
