@@ -100,6 +100,8 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
 /// The median of the first date's physical values over a central window of at most side x side
 /// pixels; NaN where none is finite. A cheap look at what a stack holds (its unit, its scale).
 double first_date_median(const Stack& stack, int side);
+/// As first_date_median, for the date (layer) `index`.
+double date_median(const Stack& stack, std::size_t index, int side);
 
 /// For each layer of `base`, the index of the layer of `other` (a QA stack, a band partner) with
 /// the same time. InputError when the grids differ, or naming the base layer's file when it

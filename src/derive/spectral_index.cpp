@@ -41,33 +41,46 @@ constexpr int tile_size = 256;
 // EVI's constants (L = 1, C1 = 6, C2 = 7.5; Huete et al. 2002, Remote Sens. Environ. 83:195-213)
 // are for surface reflectance in 0..1: on digital numbers or unscaled integers (MODIS stores
 // reflectance x 10000) the formula gives meaningless values, most of them outside -1..1. The
-// median of the first date's values, over a window of at most 512 x 512 px at the centre,
-// tells them apart (reflectance of bright snow or cloud reaches about 1.2; from memory).
+// median of a date's values over a central window tells them apart (reflectance of bright snow
+// or cloud reaches about 1.2; from memory). The first date is judged over at most 512 x 512 px,
+// every later one over 128 x 128 (one file of a series may lack the scale factor the rest state).
+constexpr int first_date_side = 512, later_date_side = 128;
+
+double median_of(const Stack& stack, std::size_t date) {
+  return date_median(stack, date, date == 0 ? first_date_side : later_date_side);
+}
+
 void require_reflectance(const Stack& stack, const std::string& option) {
-  const double median = first_date_median(stack, 512);
-  if (median > 1.5)  // false for NaN: nothing finite to judge by
-    throw UsageError(option + " " + stack.layers().front().path,
-                     fmt::format("values (median {:g}) are not reflectances in 0..1, which EVI's constants "
-                                 "assume; give --scale (0.0001 for MODIS surface reflectance)",
-                                 median));
+  for (std::size_t date = 0; date < stack.layers().size(); ++date) {
+    const double median = median_of(stack, date);
+    if (median > 1.5)  // false for NaN: nothing finite to judge by
+      throw UsageError(option + " " + stack.layers()[date].path,
+                       fmt::format("values (median {:g}) are not reflectances in 0..1, which EVI's constants "
+                                   "assume; give --scale (0.0001 for MODIS surface reflectance)",
+                                   median));
+  }
 }
 
 // NDVI does not depend on a scale both bands share, but red and NIR on different scales (one
 // file's scale factor set, the other's not) give an index of nonsense without a word. Red and
 // NIR medians over a scene differ by less than about 30 times even over dense vegetation (red
 // 0.02-0.04, NIR 0.3-0.5; from memory); a factor over 100 is a scale mismatch (the usual ones
-// are 250 and 10000).
-void require_same_scale(const Stack& red, const Stack& nir) {
-  const double r = first_date_median(red, 512), n = first_date_median(nir, 512);
-  if (!(r > 0 && n > 0)) return;  // nothing to judge by
-  const double factor = std::max(r, n) / std::min(r, n);
-  // Only where one of them is not a reflectance (a median over 1.5, as EVI's check): water
-  // has red near 0.03 and NIR near 0, a large factor on one scale.
-  if (factor > 100 && std::max(r, n) > 1.5)
-    throw UsageError("--red/--nir", fmt::format("red (median {:g}, {}) and NIR (median {:g}, {}) differ {:.0f}-fold: "
-                                                "they are not on one scale (a scale factor set on one band's files "
-                                                "only?); NDVI needs both in the same units",
-                                                r, red.layers().front().path, n, nir.layers().front().path, factor));
+// are 250 and 10000). Each date is judged: the scale can differ on one date only.
+void require_same_scale(const Stack& red, const Stack& nir, const std::vector<std::size_t>& nir_of) {
+  for (std::size_t date = 0; date < red.layers().size(); ++date) {
+    const double r = median_of(red, date), n = date_median(nir, nir_of[date], date == 0 ? first_date_side
+                                                                                          : later_date_side);
+    if (!(r > 0 && n > 0)) continue;  // nothing to judge by
+    const double factor = std::max(r, n) / std::min(r, n);
+    // Only where one of them is not a reflectance (a median over 1.5, as EVI's check): water
+    // has red near 0.03 and NIR near 0, a large factor on one scale.
+    if (factor > 100 && std::max(r, n) > 1.5)
+      throw UsageError("--red/--nir",
+                       fmt::format("red (median {:g}, {}) and NIR (median {:g}, {}) differ {:.0f}-fold: "
+                                   "they are not on one scale (a scale factor set on one band's files "
+                                   "only?); NDVI needs both in the same units",
+                                   r, red.layers()[date].path, n, nir.layers()[nir_of[date]].path, factor));
+  }
 }
 
 }  // namespace
@@ -106,7 +119,7 @@ IndexSummary run_index(const IndexRequest& request) {
   const Stack red = Stack::open(request.red, rules_for(request.red_band));
   const Stack nir = Stack::open(request.nir, rules_for(request.nir_band));
   const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
-  require_same_scale(red, nir);
+  require_same_scale(red, nir, nir_of);
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {

@@ -298,12 +298,14 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
     throw InputError(where, "coordinate reference system differs from that of " + expected_from);
 }
 
-double first_date_median(const Stack& stack, int side) {
+double first_date_median(const Stack& stack, int side) { return date_median(stack, 0, side); }
+
+double date_median(const Stack& stack, std::size_t index, int side) {
   const Grid& g = stack.grid();
   const int w = std::min(g.width, side), h = std::min(g.height, side);
   const Window window{(g.width - w) / 2, (g.height - h) / 2, w, h};
   std::vector<float> values(window.pixels());
-  stack.reader()->read_values(0, window, values.data());
+  stack.reader()->read_values(int(index), window, values.data());
   values.erase(std::remove_if(values.begin(), values.end(), [](float v) { return !std::isfinite(v); }),
                values.end());
   if (values.empty()) return NAN;

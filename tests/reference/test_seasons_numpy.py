@@ -646,6 +646,22 @@ class RealData(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "index", "--red", os.path.join(folder, "red_*.tif"),
                                "--nir", os.path.join(folder, "nir_*.tif"), "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
+        # A later date whose NIR file lacks the scale factor the others state: only the first
+        # date had been judged, and that date's NDVI was written near 1 without a word.
+        for band in (3, 4):
+            name = "%s_2021-01-26.tif" % ("red" if band == 3 else "nir")
+            g.Translate(os.path.join(folder, name), source, bandList=[band])
+            if band == 3:
+                ds = g.Open(os.path.join(folder, name), g.GA_Update)
+                ds.GetRasterBand(1).SetScale(0.004)
+                ds = None
+        later_out = os.path.join(self.tmp, "scales-later-out")
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", later_out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("they are not on one scale", done.stderr)
+        self.assertIn("nir_2021-01-26.tif", done.stderr)
+        self.assertFalse(os.path.exists(later_out))
 
     def test_index_refuses_an_out_among_its_band_files(self):
         # The index written among the red files would be read back as a red layer of the same
