@@ -413,6 +413,13 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   detail::start_gdal();
   check_band(rules.band, "--band");
   if (rules.scale && *rules.scale == 0) throw UsageError("--scale 0", "a scale factor of 0 makes every value 0");
+  // NaN would empty every output, infinity fill them with inf: neither is a value rule.
+  // (An infinite end of --valid-range is an open end; NaN compares false with everything.)
+  for (const auto& [rule, name] : {std::pair{rules.scale, "--scale"}, std::pair{rules.offset, "--offset"}})
+    if (rule && !std::isfinite(*rule)) throw UsageError(fmt::format("{} {}", name, *rule), "must be a finite number");
+  for (const auto& [rule, name] : {std::pair{rules.valid_min, "--valid-range minimum"},
+                                   std::pair{rules.valid_max, "--valid-range maximum"}})
+    if (rule && std::isnan(*rule)) throw UsageError(fmt::format("{} nan", name), "must be a number");
   if (input.empty()) throw UsageError("the input", "is empty; give a quoted glob such as 'ndvi/*.tif' or a raster");
   Stack stack;
   stack.input_ = input;

@@ -471,6 +471,11 @@ class BadInput(kt.TempDirTestCase):
         cases = [(["--max-gap", "-1"], "--max-gap", "no limit"),
                  (["--reach", "-1"], "--reach", "whole series"),
                  (["--scale", "0"], "--scale", "every value 0"),
+                 # NaN had emptied every output (replacing earlier ones), inf filled them with inf.
+                 (["--scale", "nan"], "--scale", "finite number"),
+                 (["--scale", "inf"], "--scale", "finite number"),
+                 (["--offset", "nan"], "--offset", "finite number"),
+                 (["--valid-range", "nan,1"], "--valid-range minimum", "must be a number"),
                  (["--band", "0"], "--band", "numbered from 1"),
                  (["--qa", os.path.join(self.qa, "*.tif"), "--keep", "bits0-1 in 0,1", "--qa-band", "0"],
                   "--qa-band", "numbered from 1"),
