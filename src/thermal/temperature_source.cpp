@@ -99,6 +99,19 @@ TemperatureSource::Mode TemperatureSource::mode_of(const TemperatureInputs& in) 
     // Two samples at one hour cannot tell the day's minimum from its maximum.
     if (in.day_hour == in.night_hour)
       throw UsageError("--day-time/--night-time", "the two overpasses must be at different hours");
+    // The day overpass must sample the warm part of the Parton-Logan curve and the night one
+    // the cool part: swapped or both near noon, every pixel had taken the mean of the two as a
+    // flat day without a word. Judged at an equinox (sunrise 6 h, sunset 18 h) with the default
+    // parameters; a fifth of the daily range is common practice, not a published bound (Terra's
+    // 10:30 and 22:30 keep about half of it, Aqua's 13:30 and 01:30 nearly all).
+    const SunTimes equinox{};
+    const DiurnalParameters shape{};
+    const double apart = diurnal_shape(shape, equinox, in.day_hour) - diurnal_shape(shape, equinox, in.night_hour);
+    if (apart < 0.2)
+      throw UsageError(fmt::format("--day-time {:g} --night-time {:g}", in.day_hour, in.night_hour),
+                       fmt::format("the day overpass must be the warm one: at these hours it samples {:.0f} % of the "
+                                   "daily range above the night one (at least 20 % needed; Aqua is 13.5 and 1.5)",
+                                   100 * apart));
     return Mode::overpasses;
   }
   return Mode::constant;

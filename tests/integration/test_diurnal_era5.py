@@ -311,7 +311,16 @@ class DiurnalEra5(kt.TempDirTestCase):
                   "--fit-days", "2019-03-15,2019-03-01"], "the first day is after the last"),
                 (["--day", os.path.join(self.input, "tmax_*.tif"), "--night", os.path.join(self.input, "tmin_*.tif"),
                   "--day-time", "1.5", "--night-time", "1.5", "--out", os.path.join(self.tmp, "same")],
-                 "the two overpasses must be at different hours")):
+                 "the two overpasses must be at different hours"),
+                # Swapped, or both near noon: every pixel had become a flat day at the mean of the
+                # two samples, without a word. The Parton-Logan shape at an equinox puts 01:30 at
+                # the cool end and 13:30 near the warm one (Parton & Logan 1981).
+                (["--day", os.path.join(self.input, "tmax_*.tif"), "--night", os.path.join(self.input, "tmin_*.tif"),
+                  "--day-time", "1.5", "--night-time", "13.5", "--out", os.path.join(self.tmp, "swapped")],
+                 "the day overpass must be the warm one"),
+                (["--day", os.path.join(self.input, "tmax_*.tif"), "--night", os.path.join(self.input, "tmin_*.tif"),
+                  "--day-time", "12", "--night-time", "14", "--out", os.path.join(self.tmp, "noon")],
+                 "the day overpass must be the warm one")):
             done = kt.run_kalends(["diurnal"] + args)
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
