@@ -117,6 +117,21 @@ TemperatureSource::Mode TemperatureSource::mode_of(const TemperatureInputs& in) 
   return Mode::constant;
 }
 
+namespace {
+
+// A file of kalends diurnal holds one date's 24 hours as bands: read as a daily temperature,
+// band 1 (00 h UTC) alone had been taken for the whole day.
+void require_not_hourly(const Stack& stack, const std::string& option) {
+  const Layer& first = stack.layers().front();
+  GDALDatasetUniquePtr dataset = detail::open_raster(first.path);
+  if (dataset->GetMetadataItem("KALENDS_HOURS") != nullptr && dataset->GetRasterCount() == 24)
+    throw UsageError(option + " " + first.path,
+                     "holds 24 hourly bands (kalends diurnal output), not a daily temperature; give the daily "
+                     "inputs it was made from (--tmin/--tmax or --day/--night): the same diurnal curve is applied here");
+}
+
+}  // namespace
+
 TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   TemperatureSource s;
   s.mode = mode_of(in);
@@ -132,6 +147,7 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   }
   for (const auto& [option, input] : inputs) {
     s.stacks.push_back(Stack::open(stack_input(input), in.rules));
+    require_not_hourly(s.stacks.back(), option);
     const TemperatureUnit unit = unit_of(s.stacks.back(), in.unit, option);
     s.to_celsius.push_back(unit == TemperatureUnit::kelvin ? -273.15 : 0.0);
   }

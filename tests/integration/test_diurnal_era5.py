@@ -305,6 +305,17 @@ class DiurnalEra5(kt.TempDirTestCase):
               % (before, after, text), file=sys.stderr)
         self.assertLess(after, before)
 
+    def test_hourly_output_is_refused_as_a_daily_temperature(self):
+        # The diurnal output of the ERA5 March (24 hourly bands per date) given back as
+        # --temperature: its band 1 (00 h UTC) alone had been taken as each day's temperature.
+        out = os.path.join(self.tmp, "suitability-of-hours")
+        done = kt.run_kalends(["suitability", "--temperature", os.path.join(self.default_out, "*.tif"),
+                               "--units", "celsius", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("holds 24 hourly bands", done.stderr)
+        self.assertFalse(os.path.exists(out))
+
     def test_impossible_hours_and_day_ranges_are_refused(self):
         for args, expected in (
                 (["--calibrate", self.grib, "--save-parameters", os.path.join(self.tmp, "x.toml"),
