@@ -56,6 +56,7 @@ struct DiurnalSummary {
   DiurnalParameters parameters;
   double seconds = 0;
   std::vector<std::string> outputs;
+  int outputs_removed = 0;  // earlier runs' files of dates this run does not make
 };
 
 /// One GeoTIFF per input date, `<name>_YYYY-MM-DD.tif`, 24 float32 bands `hour 00` ..

@@ -146,9 +146,10 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
     if (!global.quiet) {
       fmt::print(
           "kalends diurnal: {} days of {} x {} px, 24 UTC hours each (a={:g} b={:g} c={:g}) in "
-          "{:.1f} s -> {}\n",
+          "{:.1f} s -> {}{}\n",
           s.days, s.width, s.height, s.parameters.a, s.parameters.b, s.parameters.c, s.seconds,
-          r.out_dir);
+          r.out_dir,
+          s.outputs_removed ? fmt::format(" ({} of earlier dates removed, no longer made)", s.outputs_removed) : "");
       for (const std::string& note : s.notes)
         fmt::print("  {}\n", note);
     }

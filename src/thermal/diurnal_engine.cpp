@@ -147,6 +147,21 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   detail::check_temperature_counts(source, counts);
   outputs.commit();
   DiurnalSummary summary;
+  // Files of dates an earlier run made and this one does not (an input date removed): left,
+  // a later step would read them as current. Only this command's own (24-hour) files go.
+  {
+    std::error_code ec;  // a file that cannot be removed stays; the new outputs are complete
+    std::set<std::string> current;
+    for (const std::string& path : output_paths) current.insert(fs::path(path).lexically_normal().string());
+    for (const auto& entry : fs::directory_iterator(request.out_dir, ec)) {
+      const std::string file = entry.path().filename().string();
+      if (!file.starts_with(name + "_") || entry.path().extension() != ".tif") continue;
+      const auto date = find_date_in_name(file.substr(name.size() + 1));
+      if (!date || date->position != 0 || current.count(entry.path().lexically_normal().string())) continue;
+      if (detail::raster_metadata(entry.path().string()).count("KALENDS_HOURS") && fs::remove(entry.path(), ec))
+        ++summary.outputs_removed;
+    }
+  }
   summary.days = int(dates);
   summary.width = grid.width;
   summary.height = grid.height;

@@ -305,6 +305,27 @@ class DiurnalEra5(kt.TempDirTestCase):
               % (before, after, text), file=sys.stderr)
         self.assertLess(after, before)
 
+    def test_a_date_no_longer_given_loses_its_earlier_output(self):
+        # Three dates, then two: the third date's 24-hour file of the first run had stayed
+        # beside the new ones. A user's own file named like an output stays.
+        few = os.path.join(self.tmp, "few")
+        os.makedirs(few)
+        for day in ("01", "02", "03"):
+            for name in ("tmin", "tmax"):
+                shutil.copy(os.path.join(self.input, "%s_2019-03-%s.tif" % (name, day)), few)
+        out = os.path.join(self.tmp, "few-out")
+        args = ["diurnal", "--tmin", os.path.join(few, "tmin_*.tif"), "--tmax", os.path.join(few, "tmax_*.tif"),
+                "--units", "celsius", "--out", out]
+        self.assertEqual(kt.run_kalends(args).returncode, 0)
+        kt.write_raster(os.path.join(out, "diurnal_2019-03-09.tif"), np.ones((2, 2), np.float32))  # the user's
+        os.remove(os.path.join(few, "tmin_2019-03-03.tif"))
+        os.remove(os.path.join(few, "tmax_2019-03-03.tif"))
+        done = kt.run_kalends(args)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("1 of earlier dates removed", done.stdout)
+        self.assertEqual(sorted(os.listdir(out)), ["diurnal_2019-03-01.tif", "diurnal_2019-03-02.tif",
+                                                   "diurnal_2019-03-09.tif"])
+
     def test_hourly_output_is_refused_as_a_daily_temperature(self):
         # The diurnal output of the ERA5 March (24 hourly bands per date) given back as
         # --temperature: its band 1 (00 h UTC) alone had been taken as each day's temperature.
