@@ -400,7 +400,12 @@ class Runner {
           s.id = fmt::format("{}/{}", k, plan_->shards);
           s.kind = "shard";
           s.detail = shard_lacks(k);
-          s.state = s.detail.empty() ? "done" : "not done";
+          // As a step's: a monitoring script reads "failed" and "interrupted" (exit 1).
+          s.state = s.detail.empty()                                   ? "done"
+                    : s.detail.starts_with("running")                  ? "running"
+                    : s.detail.find(" failed") != std::string::npos      ? "failed"
+                    : s.detail.find(" interrupted") != std::string::npos ? "interrupted"
+                                                                         : "not done";
           list.push_back(s);
         }
       } catch (const UsageError& e) {
@@ -459,6 +464,7 @@ class Runner {
       std::string why;
       if (!record) why = "never run";
       else if (record->status == "failed") why = "failed" + (record->message.empty() ? "" : ": " + record->message);
+      else if (record->status == "running") why = "interrupted (a run stopped while running it)";
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
       else if (!outputs_exist(*record)) why = "outputs missing";
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;

@@ -415,6 +415,27 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         # The stitched steps are recorded like a single-machine run's: a plain run does nothing.
         done = kalends("run", self.job, "--out", out)
         self.assertIn("nothing new, nothing done", done.stdout)
+        # A shard whose fill was stopped mid-run, then one whose fill failed: status names each
+        # state and exits 1 for a monitoring script (it had said "not done ... failed last time"
+        # for the stopped one, and exited 0 for both).
+        import sqlite3
+        shard_state = os.path.join(out, ".kalends", "shards", "2-of-2", ".kalends", "state.sqlite")
+        shutil.copy2(shard_state, shard_state + ".bak")
+        try:
+            for status_value, message, state, words in (("running", "", "interrupted", "fill interrupted"),
+                                                        ("failed", "disk full", "failed", "fill failed: disk full")):
+                db = sqlite3.connect(shard_state)
+                db.execute("UPDATE steps SET status = ?, message = ?, fingerprint = '' WHERE id = 'fill'",
+                           (status_value, message))
+                db.commit()
+                db.close()
+                done = kalends("status", self.job, "--out", out)
+                self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+                self.assertRegex(done.stdout, r"2/2\s+shard\s+%s\s+.*%s" % (state, words))
+                self.assertNotIn("failed last time", done.stdout)
+        finally:
+            shutil.move(shard_state + ".bak", shard_state)
+        self.assertEqual(kalends("status", self.job, "--out", out).returncode, 0)
         # A changed composite makes every shard stale; finalize says so.
         first = sorted(glob.glob(os.path.join(self.tmp, "stack", "ndvi", "ndvi_*.tif")))[3]
         backup = first + ".bak"
