@@ -61,6 +61,10 @@ struct FillRequest {
   /// With method.reach_days > 0: compute and write only the outputs of these years; the rest
   /// stay as an earlier run left them (fill-years.tsv keeps their counts).
   std::optional<std::vector<int>> only_years;
+  /// out_dir belongs to this fill alone (a job step's folder): an earlier fill output there of
+  /// a date no longer made is removed whatever input made it. Otherwise only outputs that this
+  /// input made go (a folder shared by the fills of two stacks keeps the other's).
+  bool out_dir_is_its_own = false;
 };
 
 struct FillSummary {

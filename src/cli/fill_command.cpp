@@ -170,8 +170,11 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    r.input.c_str(), s.mixed_value_rules.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;
-      fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}\n", s.dates, s.width,
-                 s.height, s.seconds, s.out_dir);
+      fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}{}\n", s.dates, s.width,
+                 s.height, s.seconds, s.out_dir,
+                 s.outputs_removed ? fmt::format(" ({} earlier outputs of dates no longer made removed)",
+                                                 s.outputs_removed)
+                                   : "");
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),
                  percent(s.rejected, pd));

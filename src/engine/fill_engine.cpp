@@ -116,7 +116,14 @@ namespace {
 
 // Whether `file` is a raster an earlier fill wrote (its metadata names the method): only such
 // files are ever removed as outputs the fill no longer makes, never a user's own.
-bool written_by_a_fill(const fs::path& file) { return detail::raster_metadata(file.string()).count("KALENDS_METHOD") > 0; }
+// A fill's output that this fill may replace: any fill's in a folder of its own, else one of
+// the same input (or one that records none).
+bool replaceable_fill_output(const fs::path& file, const FillRequest& request) {
+  const auto metadata = detail::raster_metadata(file.string());
+  if (!metadata.count("KALENDS_METHOD")) return false;
+  const auto input = metadata.find("KALENDS_INPUT");
+  return request.out_dir_is_its_own || input == metadata.end() || input->second == request.input;
+}
 
 }  // namespace
 
@@ -573,7 +580,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         if (file.rfind(name + "_", 0) != 0 || entry.path().extension() != ".tif") continue;
         const auto date = find_date_in_name(file.substr(name.size() + 1));
         if (!date || date->position != 0 || !written_year(date->time.date().year)) continue;
-        if (!current.count(entry.path().lexically_normal().string()) && written_by_a_fill(entry.path()) &&
+        if (!current.count(entry.path().lexically_normal().string()) && replaceable_fill_output(entry.path(), request) &&
             fs::remove(entry.path(), ec))
           ++removed;
       }
@@ -590,7 +597,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
           continue;
         for (const auto& file : fs::directory_iterator(entry.path(), ec)) {
           const std::string f = file.path().filename().string();
-          if (f.starts_with(name + "_") && file.path().extension() == ".tif" && written_by_a_fill(file.path()) &&
+          if (f.starts_with(name + "_") && file.path().extension() == ".tif" && replaceable_fill_output(file.path(), request) &&
               fs::remove(file.path(), ec))
             ++removed;
         }

@@ -15,6 +15,7 @@ Run: /usr/bin/python3 -m unittest -v tests/reference/test_outputs_gdal.py
 """
 
 import datetime
+import glob
 import os
 import sys
 import unittest
@@ -436,6 +437,37 @@ class MixedSpacing(kt.TempDirTestCase):
         done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("time grid step 16 days (the median spacing)", done.stdout)
+
+
+class TwoStacksOneFolder(kt.TempDirTestCase):
+    """Two stacks of one name (two areas, or a copy) filled into one --out folder."""
+
+    def write_stack(self, folder, doys):
+        os.makedirs(folder)
+        for doy in doys:
+            kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 5000, np.int16),
+                            geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
+
+    def test_the_other_stacks_outputs_stay_and_its_own_withdrawn_dates_go(self):
+        # The second fill had removed the first stack's outputs of dates it did not have, without
+        # a word. Now they stay; a date withdrawn from the same stack still goes, and is counted.
+        first, second = os.path.join(self.tmp, "east"), os.path.join(self.tmp, "west")
+        self.write_stack(first, [1, 17, 33, 49, 65])
+        self.write_stack(second, [97, 113, 129, 145])
+        out = os.path.join(self.tmp, "out")
+        for folder in (first, second):
+            done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--out", out])
+            self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("removed", done.stdout)
+        self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 9)
+        os.remove(os.path.join(second, "ndvi_A2004145.tif"))
+        done = kt.run_kalends(["fill", os.path.join(second, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
+        names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_2004-*.tif")))
+        self.assertEqual(len(names), 8)
+        self.assertNotIn("ndvi_2004-05-24.tif", names)  # DOY 145 of 2004 (a leap year)
+        self.assertIn("ndvi_2004-01-01.tif", names)
 
 
 if __name__ == "__main__":

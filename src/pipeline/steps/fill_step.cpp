@@ -175,6 +175,7 @@ void merge_summary(const std::vector<std::string>& files, const std::string& pat
 FillRequest fill_request(const StepContext& c) {
   const ResolvedInput in = c.resolve(c.text("input"));
   FillRequest r;
+  r.out_dir_is_its_own = true;
   r.input = in.pattern;
   r.rules = in.rules;
   r.qa_input = in.qa;
