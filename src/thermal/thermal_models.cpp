@@ -283,16 +283,23 @@ ThermalModel::ThermalModel(ThermalModelKind kind, Parasite parasite, const Therm
     throw UsageError(
         "--window",
         fmt::format("the low limit ({:g}) must be below the high limit ({:g})", low_, high_));
+  // A model the parameters leave at 0 everywhere: named with the file that set them, if any.
+  const auto model_of = [&table](const char* section) {
+    for (const ThermalParameter& entry : table.entries())
+      if (entry.section == section && entry.source.starts_with("overridden by "))
+        return fmt::format("{} (parameters {})", section, entry.source);
+    return std::string(section);
+  };
   if (kind_ == ThermalModelKind::r0_2013) {
     std::tie(optimum_, maximum_) =
         maximise([this](double t) { return r0_unscaled(t); }, -20.0, 60.0);
     if (!(maximum_ > 0))
-      throw UsageError("r0-2013", "the trait parameters give R0 = 0 at every temperature");
+      throw UsageError(model_of("r0-2013"), "the trait parameters give R0 = 0 at every temperature");
   } else if (kind_ == ThermalModelKind::degree_day) {
     std::tie(optimum_, maximum_) =
         maximise([this](double t) { return degree_day_unscaled(t); }, -20.0, 60.0);
     if (!(maximum_ > 0))
-      throw UsageError("degree-day", "the parameters give p^n = 0 at every temperature");
+      throw UsageError(model_of("degree-day"), "the parameters give p^n = 0 at every temperature");
   } else {
     optimum_ = (low_ + high_) / 2;
     maximum_ = 1;

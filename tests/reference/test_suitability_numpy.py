@@ -212,6 +212,18 @@ class BadInput(kt.TempDirTestCase):
                              "--parameters", params], "bad.toml")
         self.assertIn("biting_rate", line)
 
+    def test_parameters_that_leave_the_model_at_zero_name_their_file(self):
+        # A Briere c of 0 for the biting rate (Mordecai et al. 2013's form) makes R0 = 0 at
+        # every temperature: the error had named the model alone, not the file that did it.
+        folder = os.path.join(self.tmp, "zero")
+        make_stack(folder, np.random.default_rng(1))
+        params = os.path.join(self.tmp, "zero-biting.toml")
+        with open(params, "w") as f:
+            f.write("[r0-2013]\nbiting_rate = [0, 11.7, 42.3]\n")
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                             "--parameters", params], params)
+        self.assertIn("R0 = 0 at every temperature", line)
+
     def test_parameter_values_out_of_range(self):
         # Diurnal a, b, c outside the ranges --calibrate searches, or window limits out of
         # order, are refused naming the file and the key (not an option that was not given),
