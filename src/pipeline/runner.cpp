@@ -247,9 +247,11 @@ class Runner {
         else run_step(step, r);
       } catch (const Error& caught) {
         // The engines name the command's option; in a job the budget is the job file's.
-        const Error e = dynamic_cast<const UsageError*>(&caught) && caught.where() == "--memory"
+        const bool usage = dynamic_cast<const UsageError*>(&caught) != nullptr;
+        const Error e = usage && caught.where() == "--memory"
                             ? UsageError(job_.path + ": [job] memory", caught.reason())
-                            : caught;
+                        : usage ? UsageError(caught.where(), job_wording(caught.reason(), step))
+                                : caught;
         r.action = StepReport::Action::failed;
         r.reason = e.what();
         if (!options_.dry_run) {
@@ -281,6 +283,15 @@ class Runner {
     report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report_.peak_memory_bytes = detail::peak_resident_bytes();
     return report_;
+  }
+
+  // The engines' advice names a command's options; a job sets the step's keys instead.
+  static std::string job_wording(std::string reason, const JobStep& step) {
+    const std::string option_advice = "give --units kelvin or --units celsius";
+    if (const auto at = reason.find(option_advice); at != std::string::npos)
+      reason.replace(at, option_advice.size(),
+                     fmt::format("set units = \"kelvin\" or \"celsius\" in step '{}'", step.id));
+    return reason;
   }
 
   // Inputs the last run left out as bad and that have not changed since (same size and

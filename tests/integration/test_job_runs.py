@@ -462,6 +462,26 @@ night = "night_fill"
 """
 
 
+class JobWording(kt.TempDirTestCase):
+    def test_a_unit_error_names_the_steps_key_not_an_option(self):
+        # Temperatures without a unit label: the advice had been "give --units kelvin or --units
+        # celsius", an option a job file does not take.
+        folder = os.path.join(self.tmp, "job")
+        os.makedirs(os.path.join(folder, "temp"))
+        for day in (1, 9, 17):
+            kt.write_raster(os.path.join(folder, "temp", "t_2021-03-%02d.tif" % day), np.full((4, 4), 24.0, np.float32),
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.temp]\nstack = "temp/t_*.tif"\n\n'
+                    '[[step]]\nid = "warmth"\ndo = "suitability"\ntemperature = "temp"\nmodel = "window"\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("states no unit", done.stderr)
+        self.assertIn("set units = \"kelvin\" or \"celsius\" in step 'warmth'", done.stderr)
+        self.assertNotIn("--units", done.stderr)
+
+
 class EditedJob(kt.TempDirTestCase):
     def test_outputs_the_job_no_longer_makes_are_not_read(self):
         # A monthly calendar and a seasons step, then the job edited: no 'every', another
