@@ -192,6 +192,11 @@ void TemperatureCounts::add(const TemperatureCounts& other) {
   finite.resize(implausible.size(), 0);
   for (std::size_t k = 0; k < other.implausible.size(); ++k)
     implausible[k] += other.implausible[k], finite[k] += other.finite[k];
+  date_ranges.resize(std::max(date_ranges.size(), other.date_ranges.size()));
+  for (std::size_t k = 0; k < other.date_ranges.size(); ++k) {
+    date_ranges[k].resize(std::max(date_ranges[k].size(), other.date_ranges[k].size()), 0);
+    for (std::size_t i = 0; i < other.date_ranges[k].size(); ++i) date_ranges[k][i] |= other.date_ranges[k][i];
+  }
   pairs += other.pairs;
   inverted += other.inverted;
 }
@@ -207,6 +212,7 @@ TemperatureBlock::TemperatureBlock(const TemperatureSource& source) : source_(so
   planes_.resize(source.stacks.size());
   counts.implausible.assign(source.stacks.size(), 0);
   counts.finite.assign(source.stacks.size(), 0);
+  counts.date_ranges.assign(source.stacks.size(), std::vector<std::uint8_t>(source.dates(), 0));
 }
 
 void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t last) {
@@ -219,17 +225,21 @@ void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t
     for (std::size_t i = first; i < last; ++i) {
       float* out = plane.data() + (i - first) * pixels_;
       readers_[k]->read_values(i, window, out);
+      std::int64_t outside = 0, inside = 0;
       for (std::int64_t p = 0; p < pixels_; ++p) {
         if (!std::isfinite(out[p])) continue;
         const double c = double(out[p]) + offset;
         if (c < plausible_low_celsius || c > plausible_high_celsius) {
           out[p] = NAN;
-          ++counts.implausible[k];
+          ++outside;
         } else {
           out[p] = float(c);
-          ++counts.finite[k];
+          ++inside;
         }
       }
+      counts.implausible[k] += outside;
+      counts.finite[k] += inside;
+      counts.date_ranges[k][i] |= std::uint8_t((outside > 0 ? 1 : 0) | (inside > 0 ? 2 : 0));
     }
   }
   if (source_.mode == TemperatureSource::Mode::constant) return;
@@ -254,6 +264,15 @@ void check_temperature_counts(const TemperatureSource& source, const Temperature
                       "(--units) or scale factor (--scale) is probably wrong",
                       counts.implausible[k], counts.implausible[k] + counts.finite[k],
                       plausible_low_celsius, plausible_high_celsius));
+  // One date of a sound input with every value out of range (a file without the scale factor
+  // the others state) had gone missing among the counted values.
+  for (std::size_t k = 0; k < counts.date_ranges.size(); ++k)
+    for (std::size_t i = 0; i < counts.date_ranges[k].size(); ++i)
+      if (counts.date_ranges[k][i] == 1)
+        throw InputError(source.stacks[k].layers()[i].path,
+                         fmt::format("every value lies outside {:g}..{:g} deg C after unit conversion, unlike the "
+                                     "input's other dates: this file's unit or scale factor is probably wrong",
+                                     plausible_low_celsius, plausible_high_celsius));
   if (counts.pairs == 0 || double(counts.inverted) <= swapped_extremes_share * double(counts.pairs))
     return;
   const std::string inputs = fmt::format("{} {}, {} {}", options[mode][0], source.stacks[0].input(),

@@ -183,6 +183,19 @@ class BadInput(kt.TempDirTestCase):
         line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "noscale")
         self.assertIn("scale", line)
 
+    def test_one_date_without_its_scale_factor(self):
+        # 22 dates of kelvin x 50 with scale 0.02 and one date stored without it: that date's
+        # values (about 15000 "kelvin") were all taken as missing among the counted values, and
+        # the layers of that date written empty. Refused, naming the file.
+        folder = os.path.join(self.tmp, "onescale")
+        make_stack(folder, np.random.default_rng(1))
+        odd = os.path.join(folder, "day", "lst_day_%s.tif" % DATES[7].isoformat())
+        ds = kt.gdal().Open(odd, 1)
+        ds.GetRasterBand(1).SetScale(1.0)
+        ds = None
+        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], odd)
+        self.assertIn("every value lies outside -100..100 deg C", line)
+
     def test_unknown_unit(self):
         folder = os.path.join(self.tmp, "nounit")
         make_stack(folder, np.random.default_rng(1), unit=None)
