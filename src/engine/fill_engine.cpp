@@ -5,6 +5,8 @@
 #include <tbb/parallel_for.h>
 #include <tbb/task_arena.h>
 
+#include <cpl_json.h>
+
 #include <algorithm>
 #include <atomic>
 #include <chrono>
@@ -638,6 +640,24 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   std::int64_t masked_by_qa = 0;
   std::map<int, YearCounts> years;
   std::vector<BlockChoice> chosen;
+  // A run that redoes some years keeps what the earlier run chose for the others (its
+  // fill-summary.json, made on the same grid as fill-years.tsv says).
+  if (only) {
+    CPLJSONDocument earlier;
+    if (earlier.Load((fs::path(request.out_dir) / "fill-summary.json").string()))
+      for (const CPLJSONObject& entry : earlier.GetRoot().GetArray("chosen")) {
+        const int year = entry.GetInteger("year", 0);
+        const CPLJSONArray window = entry.GetArray("window");
+        if (year == 0 || written_year(year) || window.Size() != 4) continue;
+        BlockChoice c{entry.GetInteger("block", 0), year,
+                      Window{window[0].ToInteger(), window[1].ToInteger(), window[2].ToInteger(), window[3].ToInteger()},
+                      {}};
+        for (const CPLJSONObject& item : entry.GetChildren())
+          if (const std::string key = item.GetName(); key != "block" && key != "year" && key != "window")
+            c.values[key] = item.ToDouble();
+        chosen.push_back(std::move(c));
+      }
+  }
   for (const Worker& w : workers) {
     chosen.insert(chosen.end(), w.chosen.begin(), w.chosen.end());
     summary.pixels_never_observed += w.counters.never_observed;
