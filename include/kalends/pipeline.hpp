@@ -68,6 +68,7 @@ struct PlanReport {
   std::vector<std::pair<std::string, std::string>> whole_steps;  // id, why: run in --finalize
   std::vector<std::string> shard_rows;                            // "1: ndvi rows 0-256", ...
   std::string sbatch;                                             // the command line to submit
+  std::vector<std::string> skipped_inputs;  // --skip-bad: "path: reason" of files left out
 };
 PlanReport plan_job(const RunOptions& options, int shards);
 

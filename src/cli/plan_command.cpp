@@ -33,8 +33,11 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--out", o->run.out_dir, "Output folder (overrides the job file's)");
   sub->add_option("--threads", o->run.threads, "Threads per task (default: the job's; 4 where it says all cores)")
       ->check(CLI::Range(0, 4096));
+  sub->add_flag("--skip-bad", o->run.skip_bad,
+                "Leave out bad input files, list them, exit 3; the array tasks are given --skip-bad too");
   return [o, &global] {
-    const PlanReport plan = plan_job(o->run, o->shards);
+    PlanReport plan = plan_job(o->run, o->shards);
+    if (o->run.skip_bad) plan.sbatch += " --skip-bad";
     if (!global.quiet) {
       fmt::print("kalends plan: {} shard{}, {} threads and {} MiB per task -> {}\n", plan.shards, plan.shards == 1 ? "" : "s", plan.threads,
                  plan.memory_mib, plan.plan_file);
@@ -50,6 +53,9 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
     }
     fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + own_path()),
                plan.sbatch.substr(7));
+    // As kalends run --skip-bad: the files left out on standard error, exit 3 (done in part).
+    for (const std::string& skipped : plan.skipped_inputs) fmt::print(stderr, "kalends plan: skipped input: {}\n", skipped);
+    if (!plan.skipped_inputs.empty()) global.exit_code = 3;
   };
 }
 

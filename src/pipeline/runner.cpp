@@ -405,7 +405,13 @@ class Runner {
     // A cluster run's shards, after the steps: what each still lacks before --finalize.
     if (detail::planned_shard_count(out_) > 0) {
       try {
+        // Judged as the shards' --skip-bad runs see it: a bad input file gives no grid.
+        const std::size_t listed = report_.skipped_inputs.size();
+        options_.skip_bad = true;
         load_plan();
+        for (std::size_t k = listed; k < report_.skipped_inputs.size(); ++k)
+          list.push_back({"input", "bad", "left out",
+                          report_.skipped_inputs[k] + " (shards run with --skip-bad leave it out; without, they stop on it)"});
         for (int k = 1; k <= plan_->shards; ++k) {
           StepStatus s;
           s.id = fmt::format("{}/{}", k, plan_->shards);
@@ -448,7 +454,13 @@ class Runner {
     std::ifstream in(fs::path(out_) / ".kalends" / "plan.tsv");
     std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
     if (const auto at = text.find("\nthreads\t"); at != std::string::npos) threads = std::atoi(text.c_str() + at + 9);
-    plan_ = detail::make_shard_plan(job_, out_, shards, threads);
+    // The bad files a --skip-bad run leaves out give no grid; listed as the steps' are.
+    const std::size_t known_bad = excluded_.size();
+    plan_ = detail::make_shard_plan(job_, out_, shards, threads, &excluded_,
+                                    options_.skip_bad ? &report_.skipped_inputs : nullptr);
+    // Remembered as a step's scan remembers them: status and the next run then leave them out
+    // while they are unchanged.
+    for (std::size_t k = known_bad; k < excluded_.size(); ++k) checksum_of(excluded_[k], db_.get(), scan_);
     if (plan_->text() != text) {
       const auto planned_job = text.find("\njob\t");
       const std::string job_line = planned_job == std::string::npos ? "" : text.substr(planned_job + 5, text.find('\n', planned_job + 5) - planned_job - 5);
@@ -943,12 +955,14 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   const Job job = detail::read_job(options.job_file);
   const std::string out = options.out_dir.empty() ? job.out : options.out_dir;
   if (out.empty()) throw UsageError(options.job_file, "no output folder: set 'out' in [job] or give --out");
-  const detail::ShardPlan plan = detail::make_shard_plan(job, out, shards, options.threads);
+  std::vector<std::string> left_out;
+  PlanReport report;
+  const detail::ShardPlan plan =
+      detail::make_shard_plan(job, out, shards, options.threads, &left_out, options.skip_bad ? &report.skipped_inputs : nullptr);
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());
   detail::write_text_atomically(plan.file(), plan.text());
-  PlanReport report;
   report.plan_file = plan.file();
   report.out_dir = out;
   report.shards = plan.shards;

@@ -1,5 +1,6 @@
 #include "pipeline/shard_plan.hpp"
 
+#include <algorithm>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fstream>
@@ -48,7 +49,8 @@ std::string ShardPlan::text() const {
   return t;
 }
 
-ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, int threads) {
+ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, int threads,
+                          std::vector<std::string>* left_out, std::vector<std::string>* skipped) {
   if (shards < 1) throw UsageError("--shards", "must be at least 1");
   ShardPlan plan;
   plan.shards = shards;
@@ -85,7 +87,20 @@ ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, in
         const JobInput& input = job.inputs.at(this_root);
         ValueRules rules;
         rules.band = input.band;
-        plan.grids[this_root] = Stack::open(input.stack, rules).grid();
+        for (int attempt = 0;; ++attempt) {
+          if (left_out) rules.exclude = *left_out;
+          try {
+            plan.grids[this_root] = Stack::open(input.stack, rules).grid();
+            break;
+          } catch (const InputError& e) {
+            // As a run's --skip-bad: a damaged file is left out, the others give the grid.
+            if (!skipped || !left_out || attempt > 1000 || e.where().empty() || !fs::is_regular_file(e.where()) ||
+                std::find(left_out->begin(), left_out->end(), e.where()) != left_out->end())
+              throw;
+            left_out->push_back(e.where());
+            skipped->push_back(e.where() + ": " + e.reason());
+          }
+        }
       }
       if (!root.empty()) {
         const Grid &a = plan.grids.at(root), &b = plan.grids.at(this_root);

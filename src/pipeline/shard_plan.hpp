@@ -41,8 +41,11 @@ struct ShardPlan {
 };
 
 /// Plans `shards` shards of `job` writing into `out`. UsageError when a grid has fewer strips
-/// than shards. `threads`: per task (0: the job's, or 4 where the job says all cores).
-ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, int threads);
+/// than shards. `threads`: per task (0: the job's, or 4 where the job says all cores). Input
+/// files in `left_out` are not read; with `skipped` (--skip-bad), a bad input file (InputError
+/// naming it) is added to `left_out`, "path: reason" to `skipped`, and the grid read without it.
+ShardPlan make_shard_plan(const Job& job, const std::string& out, int shards, int threads,
+                          std::vector<std::string>* left_out = nullptr, std::vector<std::string>* skipped = nullptr);
 
 /// The number of shards in the plan file of `out`, or 0 where there is none.
 int planned_shard_count(const std::string& out);

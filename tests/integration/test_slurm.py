@@ -14,6 +14,7 @@ needs root to start slurmd, and is skipped, saying why, only where the cluster c
 import glob
 import json
 import os
+import re
 import shlex
 import shutil
 import signal
@@ -201,6 +202,41 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
 
     def out(self, name):
         return os.path.join(self.tmp, name)
+
+    def test_a_damaged_composite_is_left_out_by_plan_shards_and_finalize_with_skip_bad(self):
+        # A composite cut short by a failed download: plan had stopped on it (no --skip-bad),
+        # and the shards' --skip-bad could not help, as each made the plan again from every
+        # file. Now plan, shards and finalize leave it out and list it (exit 3), the sbatch line
+        # passes --skip-bad to the tasks, and the result equals one machine's --skip-bad run.
+        folder = self.out("damaged")
+        shutil.copytree(os.path.join(self.tmp, "stack"), os.path.join(folder, "stack"))
+        bad = sorted(glob.glob(os.path.join(folder, "stack", "ndvi", "ndvi_*.tif")))[7]
+        with open(bad, "rb") as f:
+            head = f.read(300)
+        with open(bad, "wb") as f:
+            f.write(head)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write(SMALL_JOB)
+        single, out = os.path.join(folder, "single"), os.path.join(folder, "sharded")
+        self.assertEqual(kalends("run", job, "--out", single, "--skip-bad", "-q").returncode, 3)
+        self.assertEqual(kalends("plan", job, "--out", out, "--shards", "2").returncode, 2)
+        plan = kalends("plan", job, "--out", out, "--shards", "2", "--skip-bad")
+        self.assertEqual(plan.returncode, 3, plan.stderr)
+        self.assertIn("skipped input: " + bad, plan.stderr)
+        self.assertTrue(plan.stdout.strip().splitlines()[-1].endswith(" --skip-bad"), plan.stdout)
+        status = kalends("status", job, "--out", out)
+        self.assertRegex(status.stdout, r"input\s+bad\s+left out\s+%s" % re.escape(bad))
+        for k in ("1", "2"):
+            done = kalends("run", job, "--out", out, "--shard", k, "--skip-bad")
+            self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+            self.assertIn("skipped input: " + bad, done.stdout)
+        done = kalends("run", job, "--out", out, "--finalize", "--skip-bad")
+        self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+        self.assert_same_outputs(single, out)
+        status = kalends("status", job, "--out", out)
+        self.assertEqual(status.returncode, 0, status.stdout + status.stderr)
+        self.assertRegex(status.stdout, r"2/2\s+shard\s+done")
 
     def test_plan_refuses_more_shards_than_strips(self):
         done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
