@@ -88,6 +88,8 @@ struct FillSummary {
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
   std::string time_grid_note;     // a time grid on the smallest spacing (TimeGrid); "" where none
+  /// The input of the fill-summary.json this fill replaced, where another input made it.
+  std::string replaced_summary_of;
   std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
 };
 

@@ -164,6 +164,11 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
                    r.input.c_str(), s.unapplied_scaling.c_str());
     if (!s.time_grid_note.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.time_grid_note.c_str());
+    if (!s.replaced_summary_of.empty())
+      std::fprintf(stderr,
+                   "note: %s/fill-summary.json of another input (%s) was replaced by this fill's; that input's "
+                   "outputs stay (give each stack its own --out to keep both summaries)\n",
+                   r.out_dir.c_str(), s.replaced_summary_of.c_str());
     if (!s.mixed_value_rules.empty())
       std::fprintf(stderr, "note: %s: the inputs' value rules differ: %s (give --scale, --offset or --nodata for all "
                            "if one file's metadata is wrong; see kalends inspect --dates)\n",

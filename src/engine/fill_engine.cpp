@@ -735,7 +735,16 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     json += "\n  ]";
   }
   json += "\n}\n";
-  detail::write_text_atomically((fs::path(request.out_dir) / "fill-summary.json").string(), json);
+  const std::string summary_file = (fs::path(request.out_dir) / "fill-summary.json").string();
+  {
+    // One summary per folder: a fill of another stack there had lost its summary silently.
+    CPLJSONDocument earlier;
+    if (fs::exists(summary_file) && earlier.Load(summary_file)) {
+      const std::string input = earlier.GetRoot().GetString("input", "");
+      if (!input.empty() && input != request.input) summary.replaced_summary_of = input;
+    }
+  }
+  detail::write_text_atomically(summary_file, json);
   // The two summaries are rewritten every run: counted, so that a run's file counts add up to
   // what `kalends status` lists.
   summary.outputs_written += 1 + (reach > 0 ? 1 : 0);

@@ -459,11 +459,14 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
             done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--out", out])
             self.assertEqual(done.returncode, 0, done.stderr)
         self.assertNotIn("removed", done.stdout)
+        self.assertIn("fill-summary.json of another input (%s) was replaced" % os.path.join(first, "*.tif"),
+                      done.stderr)
         self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 9)
         os.remove(os.path.join(second, "ndvi_A2004145.tif"))
         done = kt.run_kalends(["fill", os.path.join(second, "*.tif"), "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
+        self.assertNotIn("fill-summary.json of another input", done.stderr)  # its own
         names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_2004-*.tif")))
         self.assertEqual(len(names), 8)
         self.assertNotIn("ndvi_2004-05-24.tif", names)  # DOY 145 of 2004 (a leap year)
