@@ -471,7 +471,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
           throw InputError(file, "'" + *impossible + "' in the file name is not a calendar date");
         if (bands.empty())
           throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in "
-                                 "its bands' metadata; give --date for a file of one date");
+                                 "its bands' metadata; rename it to carry its date (or, for one file of one date, give --date to "
+                                 "inspect or index)");
       }
       if (bands.front().first > dataset->GetRasterCount())
         throw InputError(file, "has no band " + std::to_string(rules.band));

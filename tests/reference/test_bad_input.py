@@ -154,8 +154,11 @@ class BadInput(kt.TempDirTestCase):
     def test_unparsable_date(self):
         folder = self.variant("nodate")
         write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
-        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_latest.tif"], ["date"],
-                         "no date in name")
+        line = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_latest.tif"], ["date"],
+                                "no date in name")[0]
+        # fill has no --date: the advice had been "give --date" to a command that refuses it.
+        self.assertIn("rename it to carry its date", line)
+        self.assertNotIn("give --date for", line)
 
     def test_unreadable_file(self):
         folder = self.variant("garbage")
