@@ -437,6 +437,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     for (const std::string& file : detail::expand_glob(connection ? connection->files : input)) {
       if (std::find(rules.exclude.begin(), rules.exclude.end(), file) != rules.exclude.end()) continue;
       auto time = date_from_name(file);
+      // In a pattern the name's date wins: a --date that differs would be ignored without a word.
+      if (time && rules.date && !(*time == *rules.date))
+        throw UsageError("--date " + rules.date->label(),
+                         fmt::format("{} carries its own date ({}) in its name; --date is for files whose names "
+                                     "carry none",
+                                     file, time->label()));
       if (!time) time = rules.date;
       const std::string path = connection ? connection->connection(file) : file;
       GDALDatasetUniquePtr dataset;

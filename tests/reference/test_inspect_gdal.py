@@ -132,6 +132,14 @@ class InspectRealData(kt.TempDirTestCase):
         done = kt.run_kalends(["inspect", source, "--date", "1999-05-01"])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("its 12 bands carry their own dates; --date would read band 1 alone", done.stderr)
+        # --date on a pattern of dated names (the Alaska NDVI): each name's date had won, and
+        # the --date was ignored without a word.
+        alaska = os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif")
+        done = kt.run_kalends(["inspect", alaska, "--quick", "--date", "2001-01-01"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("--date 2001-01-01:", done.stderr)
+        self.assertIn("carries its own date", done.stderr)
 
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
