@@ -110,6 +110,12 @@ int main(int argc, char** argv) {
   } catch (const Error& e) {
     std::cerr << "kalends: " << e.what() << "\n";
     return 1;
+  } catch (const std::filesystem::filesystem_error& e) {
+    // A folder or file the user may not read (the library's own errors name theirs): the path
+    // first, as every other error line, and exit 2 for a path the user gave that cannot be used.
+    const std::string path = e.path1().empty() ? std::string("a path") : e.path1().string();
+    std::cerr << "kalends: " << path << ": " << e.code().message() << "\n";
+    return e.code() == std::errc::permission_denied ? 2 : 1;
   } catch (const std::exception& e) {
     std::cerr << "kalends: " << e.what() << "\n";
     return 1;

@@ -151,6 +151,25 @@ class BadInput(kt.TempDirTestCase):
                          ["ndvi_20200101.tif", "ndvi_2020-01-01.tif"], ["duplicate"],
                          "duplicate dates")
 
+    @unittest.skipUnless(hasattr(os, "geteuid") and os.geteuid() == 0 and shutil.which("setpriv"),
+                         "needs root to run kalends as another user")
+    def test_a_folder_the_user_may_not_read(self):
+        # Run as 'nobody' on a folder closed to it: the message had been "filesystem error:
+        # status: Permission denied [...]" with exit 1.
+        import subprocess
+        folder = os.path.join(self.tmp, "closed")
+        shutil.copytree(self.good, folder)
+        os.chmod(self.tmp, 0o755)
+        os.chmod(folder, 0)
+        try:
+            done = subprocess.run(["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN,
+                                   "fill", os.path.join(folder, "*.tif"), "--out", os.path.join(self.tmp, "o")],
+                                  capture_output=True, text=True, timeout=60)
+        finally:
+            os.chmod(folder, 0o755)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: Permission denied" % os.path.join(folder, "*.tif"))
+
     def test_unparsable_date(self):
         folder = self.variant("nodate")
         write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
