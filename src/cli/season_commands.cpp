@@ -53,8 +53,8 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
     r.command_line = global.command_line;
     const IndexSummary s = run_index(r);
     if (!global.quiet)
-      fmt::print("kalends index: {} dates -> {} ({:.1f} % of values missing: nodata, zero denominator or out of range)\n",
-                 s.dates, s.out_dir, s.pixels ? 100.0 * double(s.missing) / double(s.pixels) : 0.0);
+      fmt::print("kalends index: {} date{} -> {} ({:.1f} % of values missing: nodata, zero denominator or out of range)\n",
+                 s.dates, s.dates == 1 ? "" : "s", s.out_dir, s.pixels ? 100.0 * double(s.missing) / double(s.pixels) : 0.0);
   };
 }
 
