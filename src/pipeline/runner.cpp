@@ -962,6 +962,8 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());
+  // Not under a run of the folder (a --finalize reads the plan as it goes).
+  const FolderLock lock((fs::path(out) / ".kalends").string(), options.wait_for_lock);
   detail::write_text_atomically(plan.file(), plan.text());
   report.plan_file = plan.file();
   report.out_dir = out;

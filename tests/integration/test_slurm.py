@@ -434,6 +434,15 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("2/2 (running (pid %d)" % os.getpid(), done.stderr)
         self.assertIn("wait for them to end", done.stderr)
         self.assertNotIn("sbatch --array", done.stderr)
+        # A finalize (or any run) holding the folder: plan would rewrite plan.tsv under it.
+        main_lock = os.path.join(out, ".kalends", "lock")
+        plan_before = open(os.path.join(out, ".kalends", "plan.tsv")).read()
+        with open(main_lock, "a+") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            done = kalends("plan", self.job, "--out", out, "--shards", "1")
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        self.assertIn("another kalends run", done.stderr)
+        self.assertEqual(open(os.path.join(out, ".kalends", "plan.tsv")).read(), plan_before)
         status = kalends("status", self.job, "--out", out).stdout
         self.assertRegex(status, r"1/2\s+shard\s+done")
         self.assertRegex(status, r"2/2\s+shard\s+not done\s+never run")
