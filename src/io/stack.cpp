@@ -240,8 +240,15 @@ TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_inde
     }
   }
   if (auto t = time_from_text(band->GetDescription())) return *t;
-  for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"})
-    if (auto t = time_from_text(band->GetMetadataItem(key))) return *t;
+  std::string unreadable;  // a date item that is there but is no date: named, not "none found"
+  for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"}) {
+    const char* text = band->GetMetadataItem(key);
+    if (auto t = time_from_text(text)) return *t;
+    if (text && *text && unreadable.empty()) unreadable = fmt::format("{} '{}'", key, text);
+  }
+  if (!unreadable.empty())
+    throw InputError(band_where(path, band_index),
+                     "metadata " + unreadable + " is not a date (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD)");
   throw InputError(band_where(path, band_index),
                    "no date found (looked for a GRIB valid time, a CF time axis, a date in the "
                    "band description or in DATE/TIME metadata)");
@@ -468,13 +475,17 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (time) {
         bands.emplace_back(rules.band, *time);
       } else {
+        std::string metadata_problem;
         try {
           if (!rules.one_date_per_file) bands = band_dates(*dataset, path);
-        } catch (const InputError&) {
+        } catch (const InputError& e) {
           bands.clear();
+          if (e.reason().starts_with("metadata ") || e.reason().starts_with("time axis")) metadata_problem = e.reason();
         }
         if (const auto impossible = impossible_date_in_name(file); bands.empty() && impossible)
           throw InputError(file, "'" + *impossible + "' in the file name is not a calendar date");
+        if (bands.empty() && !metadata_problem.empty())
+          throw InputError(file, "no date in the file name, and its bands' " + metadata_problem);
         if (bands.empty())
           throw InputError(file, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in "
                                  "its bands' metadata; rename it to carry its date (or, for one file of one date, give --date to "

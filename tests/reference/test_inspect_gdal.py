@@ -141,6 +141,24 @@ class InspectRealData(kt.TempDirTestCase):
         self.assertIn("--date 2001-01-01:", done.stderr)
         self.assertIn("carries its own date", done.stderr)
 
+    def test_an_impossible_date_in_band_metadata_is_named(self):
+        # Scenes dated by a DATE item (no date in their names), one of them 30 February: the
+        # error had said "no date ... nor in its bands' metadata", as if the item were absent.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "dated-by-metadata")
+        os.makedirs(folder)
+        for name, date in (("a", "2021-01-01"), ("b", "2021-02-30")):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "scene_%s.tif" % name), 4, 4, 1, g.GDT_Float32)
+            ds.SetGeoTransform((0, 1, 0, 0, 0, -1))
+            ds.GetRasterBand(1).WriteArray(np.ones((4, 4), np.float32))
+            ds.GetRasterBand(1).SetMetadataItem("DATE", date)
+            ds = None
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("scene_b.tif", done.stderr)
+        self.assertIn("DATE '2021-02-30' is not a date", done.stderr)
+
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
         self.assertFalse(report["values_read"])
