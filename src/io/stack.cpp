@@ -31,8 +31,13 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   if (status == 0)
     for (std::size_t i = 0; i < result.gl_pathc; ++i) paths.emplace_back(result.gl_pathv[i]);
   globfree(&result);
-  if (status == GLOB_NOMATCH || (status == 0 && paths.empty()))
+  if (status == GLOB_NOMATCH || (status == 0 && paths.empty())) {
+    // "survey[2021]/*.tif": the brackets are a glob's character class, matching one character.
+    if (pattern.find('[') != std::string::npos && pattern.find(']') != std::string::npos)
+      throw InputError(pattern, "no file matches this pattern ([...] matches one character of a set; a folder "
+                                "or file name with brackets needs each written as [[] and []])");
     throw InputError(pattern, "no file matches this pattern");
+  }
   if (status != 0) {
     // GLOB_ERR stops at a folder it cannot read: say which, when the pattern's folder is missing.
     const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();

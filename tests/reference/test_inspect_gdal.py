@@ -18,6 +18,7 @@ import glob
 import json
 import os
 import re
+import shutil
 import sys
 import unittest
 
@@ -158,6 +159,21 @@ class InspectRealData(kt.TempDirTestCase):
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("scene_b.tif", done.stderr)
         self.assertIn("DATE '2021-02-30' is not a date", done.stderr)
+
+    def test_brackets_in_a_folder_name(self):
+        # A folder named "survey[2021]": glob reads the brackets as a set of one character, so the
+        # pattern matches nothing; the error says how to write them (glob(7)).
+        folder = os.path.join(self.tmp, "survey[2021]")
+        os.makedirs(folder)
+        for path in sorted(glob.glob(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif")))[:3]:
+            shutil.copy(path, folder)
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("written as [[] and []]", done.stderr)
+        escaped = os.path.join(self.tmp, "survey[[]2021[]]", "*.tif")
+        done = kt.run_kalends(["inspect", escaped, "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("3 dates", done.stdout)
 
     def test_quick_reads_no_value(self):
         report = inspect(os.path.join(kt.shared_path("alaska-ndvi", "masked20"), "*.tif"), "--quick")
