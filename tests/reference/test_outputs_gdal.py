@@ -473,5 +473,26 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
         self.assertIn("ndvi_2004-01-01.tif", names)
 
 
+class NodataOfTheType(kt.TempDirTestCase):
+    def test_a_nodata_no_stored_value_can_equal_is_refused(self):
+        # int16 NDVI x 10000: --nodata -40000 (or 0.5) marks nothing, and every fill value would
+        # have counted as an observation without a word. Refused naming the type's range.
+        folder = os.path.join(self.tmp, "int16")
+        os.makedirs(folder)
+        for doy in (1, 17, 33):
+            kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 5000, np.int16),
+                            geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
+        for value in ("-40000", "0.5"):
+            out = os.path.join(self.tmp, "out" + value)
+            done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--nodata", value, "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn("stores Int16 values (-32768 to 32767, whole numbers): no value can equal it", done.stderr)
+            self.assertFalse(os.path.exists(out))
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--nodata", "-3000",
+                               "--out", os.path.join(self.tmp, "fine")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
