@@ -374,6 +374,13 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2)
         self.assertIn("blank.csv: is empty", done.stderr)
 
+    def extracted_without_dates(self, points):
+        """The rows of `kalends extract` of the scene at the vector file `points` (no date column)."""
+        out = os.path.splitext(points)[0] + ".csv"
+        done = kt.run_kalends(["-q", "extract", self.raster, "--points", points, "--out", out, "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        return kt.read_table(out)
+
     def test_vector_points_keyed_multipoint_and_without_crs(self):
         from osgeo import ogr, osr
         wgs84 = osr.SpatialReference()
@@ -388,10 +395,7 @@ class ExtractLandsat(kt.TempDirTestCase):
         feature.SetGeometry(ogr.CreateGeometryFromWkt("POINT (%.10f %.10f)" % (lon, lat)))
         layer.CreateFeature(feature)
         ds = None
-        out = os.path.join(self.tmp, "keyed.csv")
-        done = kt.run_kalends(["-q", "extract", self.raster, "--points", keyed, "--out", out, "--date-column", ""])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        rows = kt.read_table(out)
+        rows = self.extracted_without_dates(keyed)
         self.assertEqual(rows[0]["id"], "7")
         nearest = {r["site"]: r for r in self.tables["nearest"]}[pid]
         self.assertEqual(rows[0]["L7_ETMs.b1"], nearest["L7_ETMs.b1"])
@@ -406,10 +410,7 @@ class ExtractLandsat(kt.TempDirTestCase):
             feature.SetGeometry(ogr.CreateGeometryFromWkt(wkt))
             layer.CreateFeature(feature)
         ds = None
-        out = os.path.join(self.tmp, "shapes.csv")
-        done = kt.run_kalends(["-q", "extract", self.raster, "--points", shapes, "--out", out, "--date-column", ""])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        rows = kt.read_table(out)
+        rows = self.extracted_without_dates(shapes)
         self.assertEqual([r["L7_ETMs.b1"] for r in rows], [nearest["L7_ETMs.b1"]] * 2)
         with open(shapes, "w") as f:
             f.write('{"type": "FeatureCollection", "features": ['

@@ -215,26 +215,24 @@ class BadInput(kt.TempDirTestCase):
         line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "nocrs")
         self.assertIn("latitude", line)
 
-    def test_bad_parameter_file(self):
-        folder = os.path.join(self.tmp, "params")
+    def run_with_parameters(self, name, text):
+        """A refused suitability run of an invented stack with the parameter file `text`; the
+        one error line, which must name the file."""
+        folder = os.path.join(self.tmp, "params-" + name)
         make_stack(folder, np.random.default_rng(1))
-        params = os.path.join(self.tmp, "bad.toml")
+        params = os.path.join(self.tmp, name)
         with open(params, "w") as f:
-            f.write("[r0-2013]\nbiting_rate = [1, 2]\n")
-        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
-                             "--parameters", params], "bad.toml")
-        self.assertIn("biting_rate", line)
+            f.write(text)
+        return self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                             "--parameters", params], params)
+
+    def test_bad_parameter_file(self):
+        self.assertIn("biting_rate", self.run_with_parameters("bad.toml", "[r0-2013]\nbiting_rate = [1, 2]\n"))
 
     def test_parameters_that_leave_the_model_at_zero_name_their_file(self):
         # A Briere c of 0 for the biting rate (Mordecai et al. 2013's form) makes R0 = 0 at
         # every temperature: the error had named the model alone, not the file that did it.
-        folder = os.path.join(self.tmp, "zero")
-        make_stack(folder, np.random.default_rng(1))
-        params = os.path.join(self.tmp, "zero-biting.toml")
-        with open(params, "w") as f:
-            f.write("[r0-2013]\nbiting_rate = [0, 11.7, 42.3]\n")
-        line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
-                             "--parameters", params], params)
+        line = self.run_with_parameters("zero-biting.toml", "[r0-2013]\nbiting_rate = [0, 11.7, 42.3]\n")
         self.assertIn("R0 = 0 at every temperature", line)
 
     def test_parameter_values_out_of_range(self):
