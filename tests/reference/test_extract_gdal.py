@@ -417,7 +417,8 @@ class ExtractLandsat(kt.TempDirTestCase):
                     '{"type": "Feature", "properties": {"id": "s0"}, "geometry": {"type": "Point", "coordinates": [%.10f, %.10f]}}, '
                     '{"type": "Feature", "properties": {"id": "s1"}, "geometry": {"type": "LineString", '
                     '"coordinates": [[%.10f, %.10f], [0, 0]]}}]}' % (lon, lat, lon, lat))
-        done = kt.run_kalends(["extract", self.raster, "--points", shapes, "--out", out, "--date-column", ""])
+        done = kt.run_kalends(["extract", self.raster, "--points", shapes, "--out", os.path.join(self.tmp, "lines.csv"),
+                               "--date-column", ""])
         self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
         self.assertIn("shapes.geojson feature 2: a LINESTRING, not a point", done.stderr)
         # A Shapefile without its .prj: the CRS taken is said.
