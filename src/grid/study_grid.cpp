@@ -493,12 +493,19 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       if (sd_out) io(GF_Write, sd_out, sd);
     }
     {
-      // Whether the study grid holds any value of the layer's first band.
-      std::vector<float> first_band(std::size_t(width) * height);
-      if (result->GetRasterBand(1)->RasterIO(GF_Read, 0, 0, width, height, first_band.data(), width, height,
-                                             GDT_Float32, 0, 0) == CE_None &&
-          std::none_of(first_band.begin(), first_band.end(), [](float v) { return std::isfinite(v); }))
-        summary.without_value.push_back(sources[i].relative);
+      // Whether the study grid holds any value of the layer: of any band but a fill's flag (3
+      // where there is no value), so that a layer whose first band alone is empty (a month
+      // without suitability, an undefined first season) is not called empty.
+      std::vector<float> plane(std::size_t(width) * height);
+      bool any_value = false;
+      for (int b = 1; b <= result->GetRasterCount() && !any_value; ++b) {
+        GDALRasterBand* band = result->GetRasterBand(b);
+        if (b > 1 && std::string(band->GetDescription()) == "flag") continue;
+        any_value = band->RasterIO(GF_Read, 0, 0, width, height, plane.data(), width, height, GDT_Float32, 0, 0) ==
+                        CE_None &&
+                    std::any_of(plane.begin(), plane.end(), [](float v) { return std::isfinite(v); });
+      }
+      if (!any_value) summary.without_value.push_back(sources[i].relative);
     }
     result->SetMetadataItem("KALENDS_VERSION", KALENDS_VERSION);
     result->SetMetadataItem("KALENDS_GRID_CRS", request.crs.c_str());

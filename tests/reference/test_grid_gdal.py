@@ -564,6 +564,20 @@ class Clipping(kt.TempDirTestCase):
                                "--resolution", "0.1"])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("1 of 1 layers have no value on the study grid", done.stderr)
+        # A layer whose first band alone is empty (a month without suitability): it has values,
+        # and had been counted among the layers without one.
+        months = os.path.join(self.tmp, "months.tif")
+        g = kt.gdal()
+        ds = g.GetDriverByName("GTiff").Create(months, 10, 10, 2, g.GDT_Float32)
+        ds.SetGeoTransform((0, 1, 0, 10, 0, -1))
+        ds.SetProjection(g.Open(path).GetProjection())
+        ds.GetRasterBand(1).WriteArray(np.full((10, 10), np.nan, np.float32))
+        ds.GetRasterBand(2).WriteArray(np.ones((10, 10), np.float32))
+        ds = None
+        done = kt.run_kalends(["grid", months, "--out", os.path.join(self.tmp, "months-out"), "--crs", "EPSG:32736",
+                               "--resolution", "2"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("no value on the study grid", done.stderr)
         # Not-a-number cell sizes and extents are refused by name (they passed the old checks).
         for extra, option in ((["--resolution", "nan"], "--resolution"),
                               (["--extent", "nan,0,10,10"], "--extent")):
