@@ -423,6 +423,9 @@ std::string mixed_value_rules(const Stack& stack) {
                               (std::isnan(*layer.nodata) && std::isnan(*first.nodata)));
     if (!rules.nodata && !same_nodata)
       differ.push_back(fmt::format("nodata {} (first date {})", nodata(layer.nodata), nodata(first.nodata)));
+    // Values are not converted between units: the outputs carry the first date's label.
+    if (!layer.unit.empty() && !first.unit.empty() && layer.unit != first.unit)
+      differ.push_back(fmt::format("unit '{}' (first date '{}', which the outputs carry)", layer.unit, first.unit));
     if (!differ.empty())
       return fmt::format("{} has {}; each file was read with its own", layer.time.label(), fmt::join(differ, ", "));
   }

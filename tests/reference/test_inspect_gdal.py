@@ -302,6 +302,18 @@ class InspectQa(kt.TempDirTestCase):
                                os.path.join(self.tmp, "mixed-given")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertNotIn("value rules differ", done.stderr)
+        # One date labelled in degrees Celsius among kelvin files: no value is converted, and the
+        # outputs carry the first label; it had passed without a word.
+        units = os.path.join(self.tmp, "units")
+        os.makedirs(units)
+        for k, date in enumerate(("2020-01-01", "2020-01-17", "2020-02-02")):
+            kt.write_raster(os.path.join(units, "lst_%s.tif" % date), np.full((4, 4), 290.0, np.float32))
+            ds = kt.gdal().Open(os.path.join(units, "lst_%s.tif" % date), 1)
+            ds.GetRasterBand(1).SetUnitType("C" if k == 1 else "K")
+            ds = None
+        done = kt.run_kalends(["-q", "fill", os.path.join(units, "*.tif"), "--out", os.path.join(self.tmp, "units-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2020-01-17 has unit 'C' (first date 'K', which the outputs carry)", done.stderr)
 
     def test_bad_input_is_one_line_and_exit_2(self):
         done = kt.run_kalends(["inspect", os.path.join(self.tmp, "nothing", "*.tif")])
