@@ -16,7 +16,8 @@ struct TimeGrid {
   /// irregular spacing (8- and 16-day composites) would have moved a whole step or more.
   bool from_smallest_spacing = false;
   double median_spacing_days = 0;
-  /// The largest distance, in days, of a date from its slot's nominal time.
+  /// How far, in days, the grid misstates the time between two dates at most a year (and 64
+  /// dates) apart: |slots apart x step - days apart|, the largest such.
   double largest_shift_days = 0;
   int size = 0;
   std::vector<int> slot_of_date;   // for each input date (sorted), its slot
@@ -25,9 +26,10 @@ struct TimeGrid {
 
   /// `times` must be sorted and distinct. The step is the median spacing, in whole days where
   /// it is a day or more. A date is put in its nearest slot; a date whose nearest slot is
-  /// taken (a composite calendar restarting on 1 January) moves to the next free one. Where a
-  /// date would then lie a whole step or more from its slot, the step is the smallest spacing
-  /// instead (whole days, rounded down), on which every date has a slot of its own.
+  /// taken (a composite calendar restarting on 1 January) moves to the next free one. Where the
+  /// grid would then misstate the time between two dates by a whole step or more
+  /// (largest_shift_days), the step is the smallest spacing instead (whole days, rounded down),
+  /// on which every date has a slot of its own, if that needs at most 16 slots per date.
   static TimeGrid build(const std::vector<TimePoint>& times);
   TimePoint slot_time(int slot) const;
 };

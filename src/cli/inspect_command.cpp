@@ -50,14 +50,19 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("            every date is the last day of its month: if they stamp monthly means, give\n"
                "            --date-marks end to seasons, suitability and extract\n");
   const TimeGrid& t = r.time_grid;
-  if (layers.size() > 1)
+  if (layers.size() > 1) {
     fmt::print("  time grid step {:g} days ({}), {} slots, {} with a date\n", t.step_days,
                t.from_smallest_spacing ? "the smallest spacing: on the median one, dates of mixed spacing would move "
                                          "a whole step"
                                        : "the median spacing",
                t.size, r.slots_with_data);
-  else
+    if (t.largest_shift_days >= t.step_days)
+      fmt::print("            the grid misstates the time between two dates by up to {:g} days (the smallest "
+                 "spacing would need too many slots)\n",
+                 std::round(t.largest_shift_days * 10) / 10);
+  } else {
     fmt::print("  time grid none: a single date (filling in time needs several)\n");
+  }
   const auto nodata = [&](const Layer& l) { return l.nodata ? fmt::format("{:g}", *l.nodata) : std::string("none"); };
   fmt::print("  values    {}, {}, nodata {}{}{}\n", rule_text("scale", rules.scale, first.scale),
              rule_text("offset", rules.offset, first.offset),

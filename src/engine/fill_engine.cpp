@@ -618,8 +618,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         grid.median_spacing_days, grid.step_days, grid.step_days);
   else if (grid.largest_shift_days >= grid.step_days)
     summary.time_grid_note = fmt::format(
-        "dates of mixed spacing: on the {:g}-day time grid (the median spacing) a date lies up to {:g} days from its "
-        "slot; the smallest spacing would need too many slots (see kalends inspect)",
+        "dates of mixed spacing: the {:g}-day time grid (the median spacing) misstates the time between two dates by "
+        "up to {:g} days; the smallest spacing would need too many slots",
         grid.step_days, std::round(grid.largest_shift_days * 10) / 10);
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();

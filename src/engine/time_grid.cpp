@@ -25,25 +25,35 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   if (step >= 1.0) step = std::round(step);
   grid.median_spacing_days = step;
 
-  // Nearest slots, a taken one moving the date on; the largest distance of a date from its slot.
+  // Nearest slots, a taken one moving the date on. Returns how far the grid misstates the time
+  // between two dates at most a year apart: |slots apart x step - days apart|, the largest.
+  // Measured between dates, not against the grid's nominal times: a composite calendar that
+  // restarts on 1 January (MODIS 16-day: 23 composites in 365 days, DOY 353 then DOY 1, 13 days
+  // later) drifts from nominal times by about 3 days a year, yet each composite keeps its place
+  // in the sequence, and the restart misstates one interval by 3-4 days. Dates 8 days apart in a
+  // 16-day stack push each other on, slot after slot: the misstatement grows a whole step.
   const auto place = [&](double step_days) {
     grid.slot_of_date.clear();
     grid.slot_of_date.reserve(times.size());
     int previous = -1;
-    double farthest = 0;
     for (const TimePoint& t : times) {
       const double offset = (t.seconds - grid.start.seconds) / 86400.0;
       int slot = int(std::lround(offset / step_days));
       if (slot <= previous) slot = previous + 1;
-      farthest = std::max(farthest, std::abs(slot * step_days - offset));
       grid.slot_of_date.push_back(slot);
       previous = slot;
     }
-    return farthest;
+    // Pairs up to a year or 64 dates apart, whichever is nearer (years of hourly records).
+    double largest = 0;
+    for (std::size_t i = 0; i < times.size(); ++i)
+      for (std::size_t j = i + 1; j < times.size() && j <= i + 64; ++j) {
+        const double apart = (times[j].seconds - times[i].seconds) / 86400.0;
+        if (apart > 366) break;
+        largest = std::max(largest, std::abs((grid.slot_of_date[j] - grid.slot_of_date[i]) * step_days - apart));
+      }
+    return largest;
   };
-  // A calendar restart moves a year's dates by less than a step (MODIS 16-day: up to 11 days);
-  // dates 8 days apart in a 16-day stack push each other on, slot after slot. On the smallest
-  // spacing no two dates share a nearest slot.
+  // On the smallest spacing no two dates share a nearest slot.
   // The finer grid is taken only while it stays within kFinestGridFactor slots per date: two
   // scenes minutes apart in a 16-day stack must not make a grid of thousands of empty slots per
   // year; there the median grid stays and the displacement is reported (largest_shift_days).
