@@ -175,12 +175,13 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   const double nodata = band->GetNoDataValue(&has);
   // A --nodata no stored value can equal (-3000 on bytes, 0.5 on integers) marks nothing.
   if (const GDALDataType type = band->GetRasterDataType();
-      rules.nodata && !std::isnan(*rules.nodata) && GDALDataTypeIsInteger(type) && !GDALDataTypeIsComplex(type)) {
+      rules.nodata && GDALDataTypeIsInteger(type) && !GDALDataTypeIsComplex(type)) {
     const int bits = GDALGetDataTypeSizeBits(type);
     const bool is_signed = GDALDataTypeIsSigned(type);
     const double low = is_signed ? -std::ldexp(1.0, bits - 1) : 0.0;
     const double high = is_signed ? std::ldexp(1.0, bits - 1) - 1 : std::ldexp(1.0, bits) - 1;
-    if (*rules.nodata < low || *rules.nodata > high || *rules.nodata != std::floor(*rules.nodata))
+    if (std::isnan(*rules.nodata) || *rules.nodata < low || *rules.nodata > high ||
+        *rules.nodata != std::floor(*rules.nodata))
       throw UsageError(fmt::format("--nodata {:g}", *rules.nodata),
                        fmt::format("{} stores {} values ({:g} to {:g}, whole numbers): no value can equal it",
                                    path, GDALGetDataTypeName(type), low, high));

@@ -482,7 +482,8 @@ class NodataOfTheType(kt.TempDirTestCase):
         for doy in (1, 17, 33):
             kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 5000, np.int16),
                             geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
-        for value in ("-40000", "0.5"):
+        # NaN too: no integer is NaN, and the files' own -3000 had then counted as an observation.
+        for value in ("-40000", "0.5", "nan"):
             out = os.path.join(self.tmp, "out" + value)
             done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--nodata", value, "--out", out])
             self.assertEqual(done.returncode, 2, done.stderr)
