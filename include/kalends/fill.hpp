@@ -90,6 +90,9 @@ struct FillSummary {
   std::string time_grid_note;     // a time grid on the smallest spacing (TimeGrid); "" where none
   /// The input of the fill-summary.json this fill replaced, where another input made it.
   std::string replaced_summary_of;
+  /// Outputs of another input (the first: another_input) that this fill replaced under its names.
+  int outputs_of_another_input = 0;
+  std::string another_input;
   std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
 };
 

@@ -164,6 +164,12 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
                    r.input.c_str(), s.unapplied_scaling.c_str());
     if (!s.time_grid_note.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.time_grid_note.c_str());
+    if (s.outputs_of_another_input > 0)
+      std::fprintf(stderr,
+                   "note: %d earlier output%s in %s made from another input (%s) had this fill's names and %s "
+                   "replaced (give each stack its own --out to keep both)\n",
+                   s.outputs_of_another_input, s.outputs_of_another_input == 1 ? "" : "s", r.out_dir.c_str(),
+                   s.another_input.c_str(), s.outputs_of_another_input == 1 ? "was" : "were");
     if (!s.replaced_summary_of.empty())
       std::fprintf(stderr,
                    "note: %s/fill-summary.json of another input (%s) was replaced by this fill's; that input's "

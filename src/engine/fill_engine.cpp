@@ -118,13 +118,18 @@ namespace {
 
 // Whether `file` is a raster an earlier fill wrote (its metadata names the method): only such
 // files are ever removed as outputs the fill no longer makes, never a user's own.
+// Inputs as typed: 'A/*.tif' and './A/*.tif' (or its absolute path, from cron) are one.
+bool same_input(const std::string& a, const std::string& b) {
+  return a == b || fs::absolute(a).lexically_normal() == fs::absolute(b).lexically_normal();
+}
+
 // A fill's output that this fill may replace: any fill's in a folder of its own, else one of
 // the same input (or one that records none).
 bool replaceable_fill_output(const fs::path& file, const FillRequest& request) {
   const auto metadata = detail::raster_metadata(file.string());
   if (!metadata.count("KALENDS_METHOD")) return false;
   const auto input = metadata.find("KALENDS_INPUT");
-  return request.out_dir_is_its_own || input == metadata.end() || input->second == request.input;
+  return request.out_dir_is_its_own || input == metadata.end() || same_input(input->second, request.input);
 }
 
 }  // namespace
@@ -566,6 +571,20 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       throw InputError(stack.layers()[i].path,
                        fmt::format("every value is outside the valid range {:g} to {:g} (wrong scale factor or range?)",
                                    request.rules.valid_min.value_or(-INFINITY), request.rules.valid_max.value_or(INFINITY)));
+  // Outputs of another input under this fill's names (two stacks of one name sharing a date in
+  // one folder) are replaced like any earlier output, and counted so that it is said.
+  int replaced_of_other_input = 0;
+  std::string other_input;
+  if (!request.out_dir_is_its_own)
+    for (const std::string& path : output_paths) {
+      std::error_code ec;
+      if (!fs::exists(path, ec)) continue;
+      const auto metadata = detail::raster_metadata(path);
+      const auto input = metadata.find("KALENDS_INPUT");
+      if (input != metadata.end() && !same_input(input->second, request.input)) {
+        if (replaced_of_other_input++ == 0) other_input = input->second;
+      }
+    }
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
   // Outputs of dates no longer in the stack (a composite removed or replaced) would otherwise
@@ -609,6 +628,8 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   }
 
   FillSummary summary;
+  summary.outputs_of_another_input = replaced_of_other_input;
+  summary.another_input = other_input;
   summary.unapplied_scaling = unapplied_scaling(stack);
   summary.mixed_value_rules = mixed_value_rules(stack);
   if (grid.from_smallest_spacing)
@@ -741,7 +762,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     CPLJSONDocument earlier;
     if (fs::exists(summary_file) && earlier.Load(summary_file)) {
       const std::string input = earlier.GetRoot().GetString("input", "");
-      if (!input.empty() && input != request.input) summary.replaced_summary_of = input;
+      if (!input.empty() && !same_input(input, request.input)) summary.replaced_summary_of = input;
     }
   }
   detail::write_text_atomically(summary_file, json);

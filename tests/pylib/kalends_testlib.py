@@ -99,11 +99,11 @@ def rel_diff(actual, expected):
 # CLI
 
 
-def run_kalends(args, timeout=300):
-    """Runs `kalends ARGS` (args without the program); returns the CompletedProcess."""
+def run_kalends(args, timeout=300, cwd=REPO_ROOT):
+    """Runs `kalends ARGS` (args without the program) in `cwd`; returns the CompletedProcess."""
     require_binary(KALENDS_BIN)
     return subprocess.run([KALENDS_BIN] + list(args), capture_output=True, text=True,
-                          timeout=timeout, cwd=REPO_ROOT)
+                          timeout=timeout, cwd=cwd)
 
 
 def run_fill_ok(testcase, args, timeout=300):

@@ -448,6 +448,19 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
             kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 5000, np.int16),
                             geotransform=GEOTRANSFORM, epsg=EPSG, scale=SCALE, nodata=NODATA)
 
+    def test_another_stacks_output_of_the_same_date_is_replaced_with_a_note(self):
+        # Both stacks have DOY 17: the second fill's output takes its name, which had gone unsaid.
+        first, second = os.path.join(self.tmp, "north"), os.path.join(self.tmp, "south")
+        self.write_stack(first, [1, 17, 33])
+        self.write_stack(second, [17, 49, 65])
+        out = os.path.join(self.tmp, "shared")
+        self.assertEqual(kt.run_kalends(["-q", "fill", os.path.join(first, "*.tif"), "--out", out]).returncode, 0)
+        done = kt.run_kalends(["-q", "fill", os.path.join(second, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: 1 earlier output in %s made from another input (%s) had this fill's names and was replaced"
+                      % (out, os.path.join(first, "*.tif")), done.stderr)
+        self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 5)
+
     def test_the_other_stacks_outputs_stay_and_its_own_withdrawn_dates_go(self):
         # The second fill had removed the first stack's outputs of dates it did not have, without
         # a word. Now they stay; a date withdrawn from the same stack still goes, and is counted.
@@ -463,7 +476,10 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
                       done.stderr)
         self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 9)
         os.remove(os.path.join(second, "ndvi_A2004145.tif"))
-        done = kt.run_kalends(["fill", os.path.join(second, "*.tif"), "--out", out])
+        # The same input spelled another way ("./west/*.tif" from the folder above, as a user
+        # would type it by hand where cron gives the absolute path) is still the same input.
+        done = kt.run_kalends(["fill", os.path.join(".", os.path.basename(second), "*.tif"), "--out", out],
+                              cwd=self.tmp)
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
         self.assertNotIn("fill-summary.json of another input", done.stderr)  # its own
