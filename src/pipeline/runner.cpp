@@ -458,6 +458,18 @@ class Runner {
     const std::size_t known_bad = excluded_.size();
     plan_ = detail::make_shard_plan(job_, out_, shards, threads, &excluded_,
                                     options_.skip_bad ? &report_.skipped_inputs : nullptr);
+    // A file the plan could open but a shard found bad (pixels cut short) is left out by every
+    // shard and the finalize alike: judged without it, the shards' steps are up to date.
+    if (options_.skip_bad)
+      for (int k = 1; k <= shards; ++k) {
+        const fs::path shard_state = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
+        if (!fs::exists(shard_state)) continue;
+        for (const auto& [path, reason] : detail::StateDatabase(shard_state.string(), true).skipped())
+          if (std::find(excluded_.begin(), excluded_.end(), path) == excluded_.end()) {
+            excluded_.push_back(path);
+            report_.skipped_inputs.push_back(path + ": " + reason);
+          }
+      }
     // Remembered as a step's scan remembers them: status and the next run then leave them out
     // while they are unchanged.
     for (std::size_t k = known_bad; k < excluded_.size(); ++k) checksum_of(excluded_[k], db_.get(), scan_);

@@ -11,6 +11,7 @@ work was cut into blocks (docs/cluster.md).
 The Slurm part installs Debian's slurm-wlm and munge when missing (tools/setup.sh does it too),
 needs root to start slurmd, and is skipped, saying why, only where the cluster cannot start.
 """
+import datetime
 import glob
 import json
 import os
@@ -227,6 +228,10 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertTrue(plan.stdout.strip().splitlines()[-1].endswith(" --skip-bad"), plan.stdout)
         status = kalends("status", job, "--out", out)
         self.assertRegex(status.stdout, r"input\s+bad\s+left out\s+%s" % re.escape(bad))
+        self.shards_and_finalize_skip(job, out, bad, single)
+
+    def shards_and_finalize_skip(self, job, out, bad, single):
+        """Both shards and the finalize with --skip-bad leave `bad` out; the result equals `single`."""
         for k in ("1", "2"):
             done = kalends("run", job, "--out", out, "--shard", k, "--skip-bad")
             self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
@@ -237,6 +242,39 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         status = kalends("status", job, "--out", out)
         self.assertEqual(status.returncode, 0, status.stdout + status.stderr)
         self.assertRegex(status.stdout, r"2/2\s+shard\s+done")
+
+    def test_a_composite_whose_pixels_are_cut_short_is_left_out_by_shards_and_finalize(self):
+        # Plain GeoTIFFs (tags first, then the strips) of invented NDVI, one cut after 600 bytes:
+        # plan opens it, each shard finds its pixels unreadable and leaves it out. Finalize had
+        # then judged every shard stale ("1 new file") however often they were rerun.
+        import numpy as np
+        g = kt.gdal()
+        folder = self.out("cut-pixels")
+        os.makedirs(os.path.join(folder, "in"))
+        rng = np.random.default_rng(5)
+        for k in range(23):
+            date = datetime.date(2021, 1, 1) + datetime.timedelta(16 * k)
+            values = (0.4 + 0.3 * np.sin(k / 3.7) + 0.02 * rng.standard_normal((600, 8))).astype(np.float32)
+            values[rng.random((600, 8)) < 0.2] = np.nan
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "in", "ndvi_%s.tif" % date), 8, 600, 1,
+                                                   g.GDT_Float32)
+            ds.SetGeoTransform([500000, 30, 0, 4000000, 0, -30])
+            ds.GetRasterBand(1).WriteArray(values)
+            ds = None
+        bad = os.path.join(folder, "in", "ndvi_2021-03-06.tif")
+        with open(bad, "rb") as f:
+            head = f.read(600)
+        with open(bad, "wb") as f:
+            f.write(head)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nthreads = 2\n[inputs.ndvi]\nstack = "in/*.tif"\n[[step]]\nid = "fill"\n'
+                    'do = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        single, out = os.path.join(folder, "single"), os.path.join(folder, "sharded")
+        self.assertEqual(kalends("run", job, "--out", single, "--skip-bad", "-q").returncode, 3)
+        plan = kalends("plan", job, "--out", out, "--shards", "2", "--skip-bad")
+        self.assertEqual(plan.returncode, 0, plan.stderr)  # the header reads
+        self.shards_and_finalize_skip(job, out, bad, single)
 
     def test_plan_refuses_more_shards_than_strips(self):
         done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
