@@ -64,8 +64,12 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
       const auto space = where.find(' ');
       std::string key = where.substr(2, space == std::string::npos ? std::string::npos : space - 2);
       std::replace(key.begin(), key.end(), '-', '_');
+      // Options whose job key has another name.
+      if (key == "day_time") key = "day_hour";
+      if (key == "night_time") key = "night_hour";
       if (const toml::node* value = table.get(key)) {
-        const std::string shown = space == std::string::npos ? "" : where.substr(space);
+        std::string shown = space == std::string::npos ? "" : where.substr(space);
+        if (const auto at = shown.find("--night-time"); at != std::string::npos) shown.replace(at, 12, "'night_hour'");
         fail(path, value->source(), "'" + key + "'" + shown + ": " + e.reason());
       }
     }

@@ -7,6 +7,7 @@
 #include <unistd.h>
 
 #include <chrono>
+#include <cstring>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fmt/ranges.h>
@@ -250,7 +251,7 @@ class Runner {
         const bool usage = dynamic_cast<const UsageError*>(&caught) != nullptr;
         const Error e = usage && caught.where() == "--memory"
                             ? UsageError(job_.path + ": [job] memory", caught.reason())
-                        : usage ? UsageError(caught.where(), job_wording(caught.reason(), step))
+                        : usage ? UsageError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                                 : caught;
         r.action = StepReport::Action::failed;
         r.reason = e.what();
@@ -292,6 +293,17 @@ class Runner {
       reason.replace(at, option_advice.size(),
                      fmt::format("set units = \"kelvin\" or \"celsius\" in step '{}'", step.id));
     return reason;
+  }
+
+  // An engine's error names the command's option; a job file has the key of that name.
+  static std::string job_option_names(std::string where) {
+    static const std::pair<const char*, const char*> keys[] = {
+        {"--day-time", "day_hour"}, {"--night-time", "night_hour"}, {"--scale", "scale"}, {"--offset", "offset"},
+        {"--nodata", "nodata"},     {"--valid-range", "valid_range"}};
+    for (const auto& [option, key] : keys)
+      for (auto at = where.find(option); at != std::string::npos; at = where.find(option, at))
+        where.replace(at, std::strlen(option), std::string("'") + key + "'");
+    return where;
   }
 
   // Inputs the last run left out as bad and that have not changed since (same size and

@@ -480,6 +480,16 @@ class JobWording(kt.TempDirTestCase):
         self.assertIn("states no unit", done.stderr)
         self.assertIn("set units = \"kelvin\" or \"celsius\" in step 'warmth'", done.stderr)
         self.assertNotIn("--units", done.stderr)
+        # Overpass hours the wrong way round: named by the step's keys, not --day-time/--night-time.
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.temp]\nstack = "temp/t_*.tif"\n\n'
+                    '[[step]]\nid = "warmth"\ndo = "suitability"\nday = "temp"\nnight = "temp"\nunits = "celsius"\n'
+                    'day_hour = 1.5\nnight_hour = 13.5\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("'day_hour' 1.5 'night_hour' 13.5", done.stderr)
+        self.assertIn("the day overpass must be the warm one", done.stderr)
+        self.assertNotIn("--day-time", done.stderr)
 
 
 class EditedJob(kt.TempDirTestCase):
