@@ -149,7 +149,9 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
           "{:.1f} s -> {}{}\n",
           s.days, s.width, s.height, s.parameters.a, s.parameters.b, s.parameters.c, s.seconds,
           r.out_dir,
-          s.outputs_removed ? fmt::format(" ({} of earlier dates removed, no longer made)", s.outputs_removed) : "");
+          s.outputs_removed ? fmt::format(" ({} earlier output{} of dates no longer given removed)", s.outputs_removed,
+                                           s.outputs_removed == 1 ? "" : "s")
+                            : "");
       for (const std::string& note : s.notes)
         fmt::print("  {}\n", note);
     }

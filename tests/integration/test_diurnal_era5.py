@@ -322,7 +322,7 @@ class DiurnalEra5(kt.TempDirTestCase):
         os.remove(os.path.join(few, "tmax_2019-03-03.tif"))
         done = kt.run_kalends(args)
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("1 of earlier dates removed", done.stdout)
+        self.assertIn("(1 earlier output of dates no longer given removed)", done.stdout)
         self.assertEqual(sorted(os.listdir(out)), ["diurnal_2019-03-01.tif", "diurnal_2019-03-02.tif",
                                                    "diurnal_2019-03-09.tif"])
 
