@@ -24,9 +24,18 @@ namespace detail {
 
 bool has_glob_characters(const std::string& text) { return text.find_first_of("*?[") != std::string::npos; }
 
+namespace {
+thread_local std::string glob_failure;  // the folder glob could not read, and why
+int note_glob_failure(const char* path, int error) {
+  glob_failure = std::string(path) + ": " + std::strerror(error);
+  return 1;  // stop, as GLOB_ERR does
+}
+}  // namespace
+
 std::vector<std::string> expand_glob(const std::string& pattern) {
   glob_t result{};
-  const int status = ::glob(pattern.c_str(), GLOB_ERR, nullptr, &result);
+  glob_failure.clear();
+  const int status = ::glob(pattern.c_str(), GLOB_ERR, note_glob_failure, &result);
   std::vector<std::string> paths;
   if (status == 0)
     for (std::size_t i = 0; i < result.gl_pathc; ++i) paths.emplace_back(result.gl_pathv[i]);
@@ -44,7 +53,8 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
     if (!folder.empty() && !has_glob_characters(folder.string()) &&
         !std::filesystem::exists(folder))
       throw InputError(pattern, "no file matches this pattern: the folder " + folder.string() + " does not exist");
-    throw InputError(pattern, "cannot list the files of this pattern");
+    throw InputError(pattern, "cannot list the files of this pattern" +
+                                  (glob_failure.empty() ? std::string() : " (" + glob_failure + ")"));
   }
   std::sort(paths.begin(), paths.end());
   return paths;

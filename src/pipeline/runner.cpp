@@ -668,7 +668,12 @@ class Runner {
       for (const std::string& pattern : {input.stack, input.qa}) {
         if (pattern.empty()) continue;
         const auto files = files_of(pattern);
-        if (files.empty()) throw InputError(pattern, "no file matches this pattern");
+        if (files.empty()) {
+          // The reason, as the commands give it: no match, a missing folder, one not readable.
+          const auto connection = detail::connection_pattern(pattern);
+          detail::expand_glob(connection ? connection->files : pattern);
+          throw InputError(pattern, "no file matches this pattern");
+        }
         for (const std::string& f : files) {
           if (std::find(excluded_.begin(), excluded_.end(), f) != excluded_.end()) continue;
           text += "|" + f + "=" + checksum_of(f, db_.get(), scan_);

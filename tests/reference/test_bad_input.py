@@ -161,14 +161,24 @@ class BadInput(kt.TempDirTestCase):
         shutil.copytree(self.good, folder)
         os.chmod(self.tmp, 0o755)
         os.chmod(folder, 0)
+        # The same stack in a job: it had said "no file matches this pattern".
+        job = os.path.join(self.tmp, "closed.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "%s"\n[inputs.n]\nstack = "%s"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "n"\n'
+                    % (os.path.join(self.tmp, "job-out"), os.path.join(folder, "*.tif")))
+        os.chmod(self.tmp, 0o777)
+        as_nobody = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN]
         try:
-            done = subprocess.run(["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN,
-                                   "fill", os.path.join(folder, "*.tif"), "--out", os.path.join(self.tmp, "o")],
+            done = subprocess.run(as_nobody + ["fill", os.path.join(folder, "*.tif"), "--out", os.path.join(self.tmp, "o")],
                                   capture_output=True, text=True, timeout=60)
+            in_job = subprocess.run(as_nobody + ["run", job], capture_output=True, text=True, timeout=60)
         finally:
             os.chmod(folder, 0o755)
+            os.chmod(self.tmp, 0o700)
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertEqual(done.stderr.strip(), "kalends: %s: Permission denied" % os.path.join(folder, "*.tif"))
+        self.assertEqual(in_job.returncode, 2, in_job.stdout + in_job.stderr)
+        self.assertIn("cannot list the files of this pattern (%s: Permission denied)" % folder, in_job.stderr)
 
     def test_unparsable_date(self):
         folder = self.variant("nodate")
