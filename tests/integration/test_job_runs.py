@@ -472,21 +472,22 @@ class JobWording(kt.TempDirTestCase):
             kt.write_raster(os.path.join(folder, "temp", "t_2021-03-%02d.tif" % day), np.full((4, 4), 24.0, np.float32),
                             geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
         job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n\n[inputs.temp]\nstack = "temp/t_*.tif"\n\n'
-                    '[[step]]\nid = "warmth"\ndo = "suitability"\ntemperature = "temp"\nmodel = "window"\n')
-        done = run(job)
-        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+
+        def refused(step):
+            """The job with a suitability step of `step`'s keys, run: refused, exit 2."""
+            with open(job, "w") as f:
+                f.write('[job]\nout = "out"\n\n[inputs.temp]\nstack = "temp/t_*.tif"\n\n'
+                        '[[step]]\nid = "warmth"\ndo = "suitability"\n' + step)
+            done = run(job)
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            return done
+
+        done = refused('temperature = "temp"\nmodel = "window"\n')
         self.assertIn("states no unit", done.stderr)
         self.assertIn("set units = \"kelvin\" or \"celsius\" in step 'warmth'", done.stderr)
         self.assertNotIn("--units", done.stderr)
         # Overpass hours the wrong way round: named by the step's keys, not --day-time/--night-time.
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n\n[inputs.temp]\nstack = "temp/t_*.tif"\n\n'
-                    '[[step]]\nid = "warmth"\ndo = "suitability"\nday = "temp"\nnight = "temp"\nunits = "celsius"\n'
-                    'day_hour = 1.5\nnight_hour = 13.5\n')
-        done = run(job)
-        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nday_hour = 1.5\nnight_hour = 13.5\n')
         self.assertIn("'day_hour' 1.5 'night_hour' 13.5", done.stderr)
         self.assertIn("the day overpass must be the warm one", done.stderr)
         self.assertNotIn("--day-time", done.stderr)

@@ -185,6 +185,14 @@ class Compare:
         return len(files)
 
 
+def cut_short(path, size):
+    """Keeps the first `size` bytes of `path`, as a failed download leaves a file."""
+    with open(path, "rb") as f:
+        head = f.read(size)
+    with open(path, "wb") as f:
+        f.write(head)
+
+
 # ---- without a workload manager ---------------------------------------------------------------
 
 class ShardsByHand(kt.TempDirTestCase, Compare):
@@ -212,10 +220,7 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         folder = self.out("damaged")
         shutil.copytree(os.path.join(self.tmp, "stack"), os.path.join(folder, "stack"))
         bad = sorted(glob.glob(os.path.join(folder, "stack", "ndvi", "ndvi_*.tif")))[7]
-        with open(bad, "rb") as f:
-            head = f.read(300)
-        with open(bad, "wb") as f:
-            f.write(head)
+        cut_short(bad, 300)
         job = os.path.join(folder, "job.toml")
         with open(job, "w") as f:
             f.write(SMALL_JOB)
@@ -262,10 +267,7 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
             ds.GetRasterBand(1).WriteArray(values)
             ds = None
         bad = os.path.join(folder, "in", "ndvi_2021-03-06.tif")
-        with open(bad, "rb") as f:
-            head = f.read(600)
-        with open(bad, "wb") as f:
-            f.write(head)
+        cut_short(bad, 600)
         job = os.path.join(folder, "job.toml")
         with open(job, "w") as f:
             f.write('[job]\nout = "out"\nthreads = 2\n[inputs.ndvi]\nstack = "in/*.tif"\n[[step]]\nid = "fill"\n'
