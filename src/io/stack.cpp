@@ -6,6 +6,7 @@
 #include <algorithm>
 #include <cmath>
 #include <cstring>
+#include <limits>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fmt/ranges.h>
@@ -196,6 +197,11 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
                        fmt::format("{} stores {} values ({:g} to {:g}, whole numbers): no value can equal it",
                                    path, GDALGetDataTypeName(type), low, high));
   }
+  if (rules.nodata && band->GetRasterDataType() == GDT_Float32 && std::isfinite(*rules.nodata) &&
+      std::abs(*rules.nodata) > double(std::numeric_limits<float>::max()))
+    throw UsageError(fmt::format("--nodata {:g}", *rules.nodata),
+                     fmt::format("{} stores Float32 values (at most {:g} in size): no value can equal it", path,
+                                 double(std::numeric_limits<float>::max())));
   if (rules.nodata)
     layer.nodata = rules.nodata;
   else if (has)

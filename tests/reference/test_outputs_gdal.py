@@ -510,6 +510,23 @@ class NodataOfTheType(kt.TempDirTestCase):
                                "--out", os.path.join(self.tmp, "fine")])
         self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_a_nodata_beyond_float32_is_refused(self):
+        # 1e40 is no float32 (3.4e38 at most): on a float32 stack it marks nothing either.
+        folder = os.path.join(self.tmp, "float32")
+        os.makedirs(folder)
+        for doy in (1, 17, 33):
+            kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 0.5, np.float32),
+                            geotransform=GEOTRANSFORM, epsg=EPSG)
+        out = os.path.join(self.tmp, "out")
+        done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--nodata", "-1e40", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("stores Float32 values (at most 3.40282e+38 in size): no value can equal it", done.stderr)
+        self.assertFalse(os.path.exists(out))
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--nodata", "-3e38",
+                               "--out", os.path.join(self.tmp, "fine")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
