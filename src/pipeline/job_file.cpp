@@ -146,11 +146,14 @@ Job read_job(const std::string& path) {
   job.path = path;
   job.folder = fs::absolute(path).parent_path().string();
   if (!fs::exists(path)) throw UsageError(path, "no such job file");
+  if (fs::is_directory(path)) throw UsageError(path, "is a folder, not a job file");
   toml::table root;
   try {
     root = toml::parse_file(path);
   } catch (const toml::parse_error& e) {
-    throw UsageError(fmt::format("{}:{}", path, e.source().begin.line), std::string(e.description()));
+    // Line 0: the file could not be opened at all (no permission), which has no line to name.
+    const auto line = e.source().begin.line;
+    throw UsageError(line > 0 ? fmt::format("{}:{}", path, line) : path, std::string(e.description()));
   }
   for (auto&& [key, node] : root) {
     const std::string k(key.str());

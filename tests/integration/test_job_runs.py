@@ -463,6 +463,16 @@ night = "night_fill"
 
 
 class JobWording(kt.TempDirTestCase):
+    def test_a_folder_given_as_the_job_file_is_named_as_a_folder(self):
+        # A folder (job.toml made by mkdir by mistake) had been read as an empty job: "no
+        # [[step]]: nothing to do", which sends the user looking inside a file that is not there.
+        folder = os.path.join(self.tmp, "job.toml")
+        os.makedirs(folder)
+        for command in (["run", folder], ["status", folder], ["plan", folder, "--shards", "2"]):
+            done = subprocess.run([kt.KALENDS_BIN] + command, capture_output=True, text=True, timeout=60)
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder, not a job file" % folder)
+
     def test_a_unit_error_names_the_steps_key_not_an_option(self):
         # Temperatures without a unit label: the advice had been "give --units kelvin or --units
         # celsius", an option a job file does not take.
