@@ -611,7 +611,14 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (!time) time = date_from_name(file);
       if (const auto impossible = impossible_date_in_name(file); !time && impossible)
         throw InputError(input, "'" + *impossible + "' in the file name is not a calendar date");
-      const TimePoint t = time ? *time : band_time(*dataset, input, rules.band);
+      TimePoint t;
+      try {
+        t = time ? *time : band_time(*dataset, input, rules.band);
+      } catch (const InputError& e) {
+        if (!e.reason().starts_with("no date found")) throw;
+        throw InputError(input, "no date in the file name (expected YYYY-MM-DD, YYYYMMDD or YYYYDDD) nor in its "
+                                "metadata; rename it to carry its date (or give --date to inspect or index)");
+      }
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {
       for (const auto& [band, date] : band_dates(*dataset, input))

@@ -473,6 +473,23 @@ class JobWording(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
             self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder, not a job file" % folder)
 
+    @unittest.skipUnless(hasattr(os, "geteuid") and os.geteuid() == 0 and shutil.which("setpriv"),
+                         "needs root to run kalends as another user")
+    def test_a_job_file_the_user_may_not_read_is_named_without_a_line(self):
+        # It had said "job.toml:0: File could not be opened for reading": a line 0 to look for.
+        job = os.path.join(self.tmp, "closed.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n')
+        os.chmod(job, 0)
+        os.chmod(self.tmp, 0o755)
+        try:
+            done = subprocess.run(["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN,
+                                   "run", job], capture_output=True, text=True, timeout=60)
+        finally:
+            os.chmod(self.tmp, 0o700)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: File could not be opened for reading" % job)
+
     def test_a_unit_error_names_the_steps_key_not_an_option(self):
         # Temperatures without a unit label: the advice had been "give --units kelvin or --units
         # celsius", an option a job file does not take.

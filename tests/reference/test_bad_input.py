@@ -189,6 +189,17 @@ class BadInput(kt.TempDirTestCase):
         self.assertIn("rename it to carry its date", line)
         self.assertNotIn("give --date for", line)
 
+    def test_a_single_undated_file(self):
+        # One file is read as a stack of its bands, dated by their metadata; with one band and no
+        # date anywhere the message had listed the metadata it looked for, not what to do.
+        folder = os.path.join(self.tmp, "single")
+        os.makedirs(folder)
+        write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
+        line = self.check_fails([os.path.join(folder, "ndvi_latest.tif")], ["ndvi_latest.tif"], ["date"],
+                                "single undated file")[0]
+        self.assertIn("no date in the file name", line)
+        self.assertIn("rename it to carry its date", line)
+
     def test_unreadable_file(self):
         folder = self.variant("garbage")
         with open(os.path.join(folder, "ndvi_2020-03-21.tif"), "wb") as f:
