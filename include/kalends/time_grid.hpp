@@ -29,7 +29,8 @@ struct TimeGrid {
   /// taken (a composite calendar restarting on 1 January) moves to the next free one. Where the
   /// grid would then misstate the time between two dates by a whole step or more
   /// (largest_shift_days), the step is the smallest spacing instead (whole days, rounded down),
-  /// on which every date has a slot of its own, if that needs at most 16 slots per date.
+  /// on which every date has a slot of its own, if that needs at most 16 slots per date. A
+  /// calendar of a few fixed days of every month (dekads: 1st, 11th, 21st) keeps its median step.
   static TimeGrid build(const std::vector<TimePoint>& times);
   TimePoint slot_time(int slot) const;
 };

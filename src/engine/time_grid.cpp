@@ -2,10 +2,31 @@
 
 #include <algorithm>
 #include <cmath>
+#include <cstdint>
+#include <set>
 
 #include "kalends/error.hpp"
 
 namespace kalends {
+
+namespace {
+
+// Dates on a few fixed days of every month (dekads on the 1st, 11th and 21st; pentads;
+// semi-monthly and monthly products): each day of the month taken in at least two months.
+// Such a calendar's short intervals (21 February to 1 March, 8 days in a 10-day calendar) are
+// the months' lengths, not dates denser than its step, and over years its drift from the grid
+// moves an odd date on by one slot: it keeps its median step.
+bool on_fixed_days_of_month(const std::vector<TimePoint>& times) {
+  std::set<int> days;
+  std::set<std::int64_t> times_of_day;
+  for (const TimePoint& t : times) {
+    days.insert(t.date().day);
+    times_of_day.insert(((t.seconds % 86400) + 86400) % 86400);
+  }
+  return days.size() <= 6 && times_of_day.size() == 1 && times.size() >= 2 * days.size();
+}
+
+}  // namespace
 
 TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   TimeGrid grid;
@@ -59,7 +80,7 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   // year; there the median grid stays and the displacement is reported (largest_shift_days).
   constexpr double kFinestGridFactor = 16;  // common practice: a bound on memory, not a published value
   grid.largest_shift_days = place(step);
-  if (grid.largest_shift_days >= step) {
+  if (grid.largest_shift_days >= step && !on_fixed_days_of_month(times)) {
     const double finer = smallest >= 1.0 ? std::floor(smallest) : smallest;
     const double span = (times.back().seconds - times.front().seconds) / 86400.0;
     if (span / finer + 1 <= kFinestGridFactor * double(times.size())) {

@@ -125,6 +125,30 @@ TEST_CASE("time grid of a composite calendar keeps its step over many years", "[
   }
 }
 
+TEST_CASE("time grid of a calendar of fixed days of the month keeps its step", "[engine][grid]") {
+  // Dekads (1st, 11th, 21st: 8-11 days apart), pentads (1st, 6th, ..., 26th: 3-6 days) and
+  // semi-monthly dates (1st, 16th) over 10-30 years: their drift from the grid pushes an odd date
+  // on by one slot, a whole step; the smallest-spacing rule had sent dekads to an 8-day grid
+  // (456 slots for 360 dates), a fixed lambda then smoothing differently.
+  const std::vector<std::pair<std::vector<int>, int>> calendars{
+      {{1, 11, 21}, 10}, {{1, 6, 11, 16, 21, 26}, 5}, {{1, 16}, 15}};
+  for (const auto& [days, step] : calendars)
+    for (const int years : {10, 27, 30}) {
+      std::vector<TimePoint> times;
+      for (int year = 1990; year < 1990 + years; ++year)
+        for (int month = 1; month <= 12; ++month)
+          for (const int day : days) times.push_back(TimePoint::from_date({year, month, day}));
+      const TimeGrid g = TimeGrid::build(times);
+      INFO(days.size() << " days a month, " << years << " years");
+      CHECK_FALSE(g.from_smallest_spacing);
+      CHECK(g.step_days == step);
+      CHECK(g.largest_shift_days <= step + 1);
+      // The span on the step, no finer (a 10-day grid runs 36.5 slots a year for 36 dekads).
+      CHECK(g.size <= (times.back().seconds - times.front().seconds) / 86400 / step + 2);
+    }
+  // Five dates on five different days of the month are no such calendar (the mixed case below).
+}
+
 TEST_CASE("time grid of mixed spacing steps the smallest spacing, within a bound on its size", "[engine][grid]") {
   auto day = [](int y, int m, int d) { return TimePoint::from_date({y, m, d}); };
   // Spacings 16, 9, 7, 16: on the 16-day median grid 2 February (day 32) would be pushed to
