@@ -16,6 +16,8 @@ struct TimeGrid {
   /// irregular spacing (8- and 16-day composites) would have moved a whole step or more.
   bool from_smallest_spacing = false;
   double median_spacing_days = 0;
+  /// The dates lie on a few fixed days of every month (dekads): the median step is kept.
+  bool fixed_days_of_month = false;
   /// How far, in days, the grid misstates the time between two dates at most a year (and 64
   /// dates) apart: |slots apart x step - days apart|, the largest such.
   double largest_shift_days = 0;

@@ -57,9 +57,10 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
                                        : "the median spacing",
                t.size, r.slots_with_data);
     if (t.largest_shift_days >= t.step_days)
-      fmt::print("            the grid misstates the time between two dates by up to {:g} days (the smallest "
-                 "spacing would need too many slots)\n",
-                 std::round(t.largest_shift_days * 10) / 10);
+      fmt::print("            the grid misstates the time between two dates by up to {:g} days ({})\n",
+                 std::round(t.largest_shift_days * 10) / 10,
+                 t.fixed_days_of_month ? "dates on fixed days of every month, whose lengths differ: kept"
+                                       : "the smallest spacing would need too many slots");
   } else {
     fmt::print("  time grid none: a single date (filling in time needs several)\n");
   }

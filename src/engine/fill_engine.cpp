@@ -637,7 +637,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
         "dates of mixed spacing (median {:g} days, smallest {:g}): the time grid steps {:g} days so that every date "
         "keeps its own day; a fixed lambda or time smoothing counts these steps",
         grid.median_spacing_days, grid.step_days, grid.step_days);
-  else if (grid.largest_shift_days >= grid.step_days)
+  else if (grid.largest_shift_days >= grid.step_days && !grid.fixed_days_of_month)
     summary.time_grid_note = fmt::format(
         "dates of mixed spacing: the {:g}-day time grid (the median spacing) misstates the time between two dates by "
         "up to {:g} days; the smallest spacing would need too many slots",

@@ -80,7 +80,8 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   // year; there the median grid stays and the displacement is reported (largest_shift_days).
   constexpr double kFinestGridFactor = 16;  // common practice: a bound on memory, not a published value
   grid.largest_shift_days = place(step);
-  if (grid.largest_shift_days >= step && !on_fixed_days_of_month(times)) {
+  grid.fixed_days_of_month = on_fixed_days_of_month(times);
+  if (grid.largest_shift_days >= step && !grid.fixed_days_of_month) {
     const double finer = smallest >= 1.0 ? std::floor(smallest) : smallest;
     const double span = (times.back().seconds - times.front().seconds) / 86400.0;
     if (span / finer + 1 <= kFinestGridFactor * double(times.size())) {

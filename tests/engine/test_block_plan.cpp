@@ -141,6 +141,7 @@ TEST_CASE("time grid of a calendar of fixed days of the month keeps its step", "
       const TimeGrid g = TimeGrid::build(times);
       INFO(days.size() << " days a month, " << years << " years");
       CHECK_FALSE(g.from_smallest_spacing);
+      CHECK(g.fixed_days_of_month);
       CHECK(g.step_days == step);
       CHECK(g.largest_shift_days <= step + 1);
       // The span on the step, no finer (a 10-day grid runs 36.5 slots a year for 36 dekads).
@@ -156,6 +157,7 @@ TEST_CASE("time grid of mixed spacing steps the smallest spacing, within a bound
   const TimeGrid mixed = TimeGrid::build({day(2020, 1, 1), day(2020, 1, 17), day(2020, 1, 26),
                                           day(2020, 2, 2), day(2020, 2, 18)});
   CHECK(mixed.from_smallest_spacing);
+  CHECK_FALSE(mixed.fixed_days_of_month);
   CHECK(mixed.median_spacing_days == 16);
   CHECK(mixed.step_days == 7);
   CHECK(mixed.slot_of_date == std::vector<int>{0, 2, 4, 5, 7});
