@@ -2,6 +2,7 @@
 #pragma once
 
 #include <optional>
+#include <map>
 #include <string>
 
 #include "kalends/fill.hpp"
@@ -22,6 +23,8 @@ struct IndexRequest {
   int red_band = 1, nir_band = 1, blue_band = 1;
   SpectralIndex kind = SpectralIndex::ndvi;
   ValueRules rules;       // scale, offset, nodata overrides for all bands
+  /// An input's own rules where they differ (a job's inputs each carry theirs): "red", "nir", "blue".
+  std::map<std::string, ValueRules> rules_of;
   std::string qa;         // QA stack to pass through to out_dir/qa/
   std::string out_dir;
   std::string name;       // default "ndvi" / "evi"

@@ -8,6 +8,7 @@
 #pragma once
 
 #include <optional>
+#include <map>
 #include <string>
 #include <vector>
 
@@ -31,6 +32,9 @@ TemperatureUnit parse_temperature_unit(const std::string& text);  // UsageError 
 struct TemperatureInputs {
   std::string tmin, tmax, day, night, temperature;
   ValueRules rules;
+  /// An input's own rules where they differ from `rules` (a job's inputs each carry theirs),
+  /// by role: "tmin", "tmax", "day", "night", "temperature".
+  std::map<std::string, ValueRules> rules_of;
   TemperatureUnit unit = TemperatureUnit::automatic;
   double day_hour = 13.5, night_hour = 1.5;  // local solar time of the overpasses
   DateMarks marks = DateMarks::start;        // what a composite's date marks

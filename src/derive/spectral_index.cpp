@@ -110,20 +110,21 @@ IndexSummary run_index(const IndexRequest& request) {
   detail::start_gdal();
   check_index_options(request);
   const bool evi = request.kind == SpectralIndex::evi;
-  auto rules_for = [&](int band) {
-    ValueRules r = request.rules;
+  auto rules_for = [&](int band, const char* role) {
+    const auto own = request.rules_of.find(role);
+    ValueRules r = own != request.rules_of.end() ? own->second : request.rules;
     r.band = band;
     r.one_date_per_file = true;
     return r;
   };
-  const Stack red = Stack::open(request.red, rules_for(request.red_band));
-  const Stack nir = Stack::open(request.nir, rules_for(request.nir_band));
+  const Stack red = Stack::open(request.red, rules_for(request.red_band, "red"));
+  const Stack nir = Stack::open(request.nir, rules_for(request.nir_band, "nir"));
   const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
   require_same_scale(red, nir, nir_of);
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {
-    blue = Stack::open(request.blue, rules_for(request.blue_band));
+    blue = Stack::open(request.blue, rules_for(request.blue_band, "blue"));
     blue_of = partners_by_date(red, *blue, "blue");
     require_reflectance(red, "--red");
     require_reflectance(nir, "--nir");

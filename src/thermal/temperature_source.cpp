@@ -146,7 +146,8 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
     inputs = {{"--temperature", in.temperature}};
   }
   for (const auto& [option, input] : inputs) {
-    s.stacks.push_back(Stack::open(stack_input(input), in.rules));
+    const auto own = in.rules_of.find(option.substr(2));  // "--day" -> "day"
+    s.stacks.push_back(Stack::open(stack_input(input), own != in.rules_of.end() ? own->second : in.rules));
     require_not_hourly(s.stacks.back(), option);
     const TemperatureUnit unit = unit_of(s.stacks.back(), in.unit, option);
     s.to_celsius.push_back(unit == TemperatureUnit::kelvin ? -273.15 : 0.0);
@@ -224,7 +225,7 @@ void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t
     const double offset = source_.to_celsius[k];
     for (std::size_t i = first; i < last; ++i) {
       float* out = plane.data() + (i - first) * pixels_;
-      readers_[k]->read_values(i, window, out);
+      const std::int64_t outside_valid_range = readers_[k]->read_values(i, window, out);
       std::int64_t outside = 0, inside = 0;
       for (std::int64_t p = 0; p < pixels_; ++p) {
         if (!std::isfinite(out[p])) continue;
@@ -239,7 +240,8 @@ void TemperatureBlock::read(const Window& window, std::size_t first, std::size_t
       }
       counts.implausible[k] += outside;
       counts.finite[k] += inside;
-      counts.date_ranges[k][i] |= std::uint8_t((outside > 0 ? 1 : 0) | (inside > 0 ? 2 : 0));
+      counts.date_ranges[k][i] |=
+          std::uint8_t((outside > 0 ? 1 : 0) | (inside > 0 ? 2 : 0) | (outside_valid_range > 0 ? 4 : 0));
     }
   }
   if (source_.mode == TemperatureSource::Mode::constant) return;
@@ -266,9 +268,18 @@ void check_temperature_counts(const TemperatureSource& source, const Temperature
                       plausible_low_celsius, plausible_high_celsius));
   // One date of a sound input with every value out of range (a file without the scale factor
   // the others state) had gone missing among the counted values.
+  // As for a fill: a date whose every value the valid range took out (a wrong range or scale).
   for (std::size_t k = 0; k < counts.date_ranges.size(); ++k)
     for (std::size_t i = 0; i < counts.date_ranges[k].size(); ++i)
-      if (counts.date_ranges[k][i] == 1)
+      if (counts.date_ranges[k][i] == 4) {
+        const ValueRules& rules = source.stacks[k].rules();
+        throw InputError(source.stacks[k].layers()[i].path,
+                         fmt::format("every value is outside the valid range {:g} to {:g} (wrong scale factor or range?)",
+                                     rules.valid_min.value_or(-INFINITY), rules.valid_max.value_or(INFINITY)));
+      }
+  for (std::size_t k = 0; k < counts.date_ranges.size(); ++k)
+    for (std::size_t i = 0; i < counts.date_ranges[k].size(); ++i)
+      if ((counts.date_ranges[k][i] & 3) == 1)
         throw InputError(source.stacks[k].layers()[i].path,
                          fmt::format("every value lies outside {:g}..{:g} deg C after unit conversion, unlike the "
                                      "input's other dates: this file's unit or scale factor is probably wrong",

@@ -64,7 +64,8 @@ struct TemperatureSource {
 /// What the reading of temperatures found, summed over blocks and checked once at the end.
 struct TemperatureCounts {
   std::vector<std::int64_t> implausible, finite;  // per stack: values outside / inside the range
-  /// Per stack and date: 1 where a value lay outside the range, 2 inside, 3 both.
+  /// Per stack and date: 1 where a value lay outside the range, 2 inside, 3 both; 4 where the
+  /// input's valid range took a value out.
   std::vector<std::vector<std::uint8_t>> date_ranges;
   /// Pixel-dates with both values of a pair (tmin and tmax, or day and night), and those whose
   /// order is wrong: tmin above tmax, or a day sample not warmer than the night sample.

@@ -6,6 +6,7 @@ Invented data (tools/synth_stack.py, the fictional demo district at a small size
 checks of the mechanics, not of accuracy. "Identical" compares what a user reads: every band's
 pixels bit for bit, band descriptions and dataset metadata.
 """
+import datetime
 import glob
 import json
 import os
@@ -767,6 +768,76 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             mine = g.Open(os.path.join(self.tmp, "out", "seasons", name)).ReadAsArray()
             fresh = g.Open(os.path.join(self.tmp, "scratch", "seasons", name)).ReadAsArray()
             np.testing.assert_array_equal(mine, fresh, name)
+
+
+class EachInputItsOwnRules(kt.TempDirTestCase):
+    """A step of two inputs (day and night, red and NIR) reads each with its own [inputs.NAME]
+    keys. Before, the last input's scale, offset and nodata were applied to both, and the other's
+    were ignored without a word."""
+
+    def lst(self, folder, base, seed, offset=None):
+        rng = np.random.default_rng(seed)
+        os.makedirs(os.path.join(self.tmp, folder))
+        for doy in range(1, 366, 16):
+            day = datetime.date(2018, 1, 1) + datetime.timedelta(days=doy - 1)
+            kelvin = base + 8 * np.sin(2 * np.pi * (doy - 100) / 365) + rng.standard_normal((4, 4))
+            # MODIS LST's convention: kelvin / 0.02 as uint16 (MOD11 user guide, from memory).
+            kt.write_raster(os.path.join(self.tmp, folder, "lst_%s.tif" % day.isoformat()),
+                            np.round(kelvin / 0.02).astype(np.uint16), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01),
+                            epsg=4326, scale=0.02, offset=offset, nodata=0)
+
+    def suitability(self, name, day, day_keys="", night_keys=""):
+        job = os.path.join(self.tmp, name + ".toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "%s"\nthreads = 1\n[inputs.day]\nstack = "%s/*.tif"\n%s\n'
+                    '[inputs.night]\nstack = "night/*.tif"\n%s\n[[step]]\nid = "s"\ndo = "suitability"\n'
+                    'day = "day"\nnight = "night"\nunits = "kelvin"\n' % (name, day, day_keys, night_keys))
+        return run(job)
+
+    def summary(self, name):
+        return kt.gdal().Open(os.path.join(self.tmp, name, "s", "r0-2013_summary_2018.tif")).ReadAsArray()
+
+    def test_day_and_night_each_with_their_own_offset(self):
+        self.lst("day", 300.0, 2)
+        self.lst("night", 288.0, 3)
+        self.lst("day_offset", 300.0, 2, offset=-5.0)  # the same counts, the files' own offset
+        for name, day, day_keys, night_keys in (("files", "day_offset", "", ""), ("day_key", "day", "offset = -5", ""),
+                                                ("night_key", "day", "", "offset = -5")):
+            done = self.suitability(name, day, day_keys, night_keys)
+            self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        np.testing.assert_array_equal(self.summary("day_key"), self.summary("files"))
+        # The night's offset moves the night alone: not what the day's would give.
+        self.assertGreater(np.nanmax(np.abs(self.summary("night_key") - self.summary("files"))), 0.01)
+        # A valid range that takes out every night value (kelvin given as deg C bounds): refused
+        # naming a file, where it had been applied to neither input.
+        done = self.suitability("range", "day", "", "valid_range = [1000, 2000]")
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("night/lst_2018-01-01.tif: every value is outside the valid range 1000 to 2000", done.stderr)
+
+    def test_red_and_nir_each_with_their_own_scale(self):
+        rng = np.random.default_rng(5)
+        for band in ("red", "nir"):
+            os.makedirs(os.path.join(self.tmp, band))
+        expected = {}
+        for k in range(3):
+            day = "2020-0%d-01" % (1 + k)
+            red = rng.integers(300, 900, (4, 4)).astype(np.int16)
+            nir = rng.integers(1500, 2500, (4, 4)).astype(np.int16)
+            for band, counts in (("red", red), ("nir", nir)):
+                kt.write_raster(os.path.join(self.tmp, band, "%s_%s.tif" % (band, day)), counts,
+                                geotransform=(500000.0, 30, 0, 100000.0, 0, -30), epsg=32636)
+            r, n = red * 0.0001, nir * 0.0002 + 0.01  # each band's own rule
+            expected[day] = (n - r) / (n + r)  # NDVI (Rouse et al. 1974)
+        job = os.path.join(self.tmp, "index.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.red]\nstack = "red/*.tif"\nscale = 0.0001\n'
+                    '[inputs.nir]\nstack = "nir/*.tif"\nscale = 0.0002\noffset = 0.01\n'
+                    '[[step]]\nid = "ndvi"\ndo = "index"\nred = "red"\nnir = "nir"\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        for day, ndvi in expected.items():
+            values = kt.gdal().Open(os.path.join(self.tmp, "out", "ndvi", "ndvi_%s.tif" % day)).ReadAsArray()
+            np.testing.assert_allclose(values, ndvi, atol=1e-6)
 
 
 class RemovedOutputs(kt.TempDirTestCase):

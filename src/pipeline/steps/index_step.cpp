@@ -21,7 +21,12 @@ IndexRequest index_request(const StepContext& c) {
   r.red = red.pattern;
   r.nir = nir.pattern;
   r.rules = red.rules;
-  if (c.has("blue")) r.blue = c.resolve(c.text("blue")).pattern;
+  r.rules_of = {{"red", red.rules}, {"nir", nir.rules}};  // each input read with its own keys
+  if (c.has("blue")) {
+    const ResolvedInput blue = c.resolve(c.text("blue"));
+    r.blue = blue.pattern;
+    r.rules_of["blue"] = blue.rules;
+  }
   r.red_band = c.integer("red_band", 1);
   r.nir_band = c.integer("nir_band", 1);
   r.blue_band = c.integer("blue_band", 1);

@@ -18,6 +18,7 @@ SuitabilityRequest suitability_request(const StepContext& c) {
       const ResolvedInput in = c.resolve(c.text(names[k]));
       *fields[k] = in.pattern;
       t.rules = in.rules;
+      t.rules_of[names[k]] = in.rules;  // each input read with its own keys
     }
   t.unit = parse_temperature_unit(c.text("units", "auto"));
   t.day_hour = c.number("day_hour", t.day_hour);
