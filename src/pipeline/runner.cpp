@@ -882,6 +882,10 @@ class Runner {
         }
       }
     }
+    // The input files as this run found them, before the step reads them: recorded as what it
+    // read, so that a composite arriving (or withdrawn) while it runs is new (or removed) to the
+    // next run. Listed at the end, it had been taken for read, and its years never redone.
+    const std::map<std::string, std::string> inputs_at_start = compared ? now : inputs_of(step);
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
     db_->step_running(step.id, step.kind);
@@ -910,8 +914,10 @@ class Runner {
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
     years_redone_[step.id] = only_years_;
+    std::map<std::string, std::string> inputs_read = inputs_at_start;
+    for (const std::string& left_out : excluded_) inputs_read.erase(left_out);
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
-                            detail::files_below(folder), inputs_of(step)};
+                            detail::files_below(folder), inputs_read};
     db_->step_done(done);
   }
 

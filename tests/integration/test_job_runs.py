@@ -901,6 +901,56 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
                 np.testing.assert_array_equal(mine, fresh, "%s (reach %d)" % (path, reach))
 
 
+class ArrivalsDuringARun(kt.TempDirTestCase):
+    def test_a_composite_that_arrives_while_a_step_runs_is_new_to_the_next_run(self):
+        # Real MODIS NDVI (alaska-ndvi/masked30). The last composite lands while the fill step
+        # runs. The step recorded the files it read as listed at its end, the late one among
+        # them, so the next run took it for read: its year was never redone, its output never
+        # made, and status said done.
+        source = kt.shared_path("alaska-ndvi", "masked30")
+        folder = os.path.join(self.tmp, "late")
+        inputs = os.path.join(folder, "inputs")
+        os.makedirs(inputs)
+        late = "ndvi_2009-09-14.tif"
+        for path in sorted(glob.glob(os.path.join(source, "ndvi_*.tif"))):
+            if os.path.basename(path) != late:
+                shutil.copy(path, inputs)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nthreads = 1\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\n'
+                    'id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\nreach = 183\n')
+        log = os.path.join(folder, "run.jsonl")
+        with open(log, "w") as f:
+            process = subprocess.Popen([kt.KALENDS_BIN, "run", job, "--log", "json"], stdout=f,
+                                       stderr=subprocess.PIPE, text=True)
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and process.poll() is None:
+            with open(log) as f:
+                if '"step_started"' in f.read():
+                    break
+            time.sleep(0.005)
+        shutil.copy(os.path.join(source, late), inputs)
+        with open(log) as f:
+            if '"step_finished"' in f.read():
+                process.communicate(timeout=300)
+                self.skipTest("the step ended before the composite arrived")
+        _, stderr = process.communicate(timeout=300)
+        self.assertEqual(process.returncode, 0, stderr)
+        status = kt.run_kalends(["status", job])
+        fill = [l for l in status.stdout.splitlines() if l.startswith("fill")][0]
+        self.assertIn("stale", fill)
+        self.assertIn("1 new", fill)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("recomputing the years it reaches: 2009", done.stdout)
+        self.assertTrue(os.path.exists(os.path.join(folder, "out", "fill", late)))
+        self.assertEqual(run(job, "--out", os.path.join(folder, "scratch")).returncode, 0)
+        g = kt.gdal()
+        for path in sorted(glob.glob(os.path.join(folder, "scratch", "fill", "ndvi_*.tif"))):
+            mine = g.Open(path.replace(os.path.join(folder, "scratch"), os.path.join(folder, "out"))).ReadAsArray()
+            np.testing.assert_array_equal(mine, g.Open(path).ReadAsArray(), path)
+
+
 class Faults(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
