@@ -118,9 +118,17 @@ namespace {
 
 // Whether `file` is a raster an earlier fill wrote (its metadata names the method): only such
 // files are ever removed as outputs the fill no longer makes, never a user's own.
-// Inputs as typed: 'A/*.tif' and './A/*.tif' (or its absolute path, from cron) are one.
+// Inputs as typed: 'A/*.tif' and './A/*.tif' (or its absolute path, from cron) are one, and so
+// is 'L/*.tif' where L is a link to A: the folder is compared with its links resolved.
+fs::path resolved_pattern(const std::string& pattern) {
+  const fs::path path = fs::absolute(pattern).lexically_normal();
+  std::error_code ec;
+  const fs::path folder = fs::weakly_canonical(path.parent_path(), ec);
+  return ec ? path : folder / path.filename();
+}
+
 bool same_input(const std::string& a, const std::string& b) {
-  return a == b || fs::absolute(a).lexically_normal() == fs::absolute(b).lexically_normal();
+  return a == b || resolved_pattern(a) == resolved_pattern(b);
 }
 
 // A fill's output that this fill may replace: any fill's in a folder of its own, else one of

@@ -487,6 +487,16 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
         self.assertEqual(len(names), 8)
         self.assertNotIn("ndvi_2004-05-24.tif", names)  # DOY 145 of 2004 (a leap year)
         self.assertIn("ndvi_2004-01-01.tif", names)
+        # Through a link to the folder (a mount point, a 'current' link): the same files, so the
+        # same input; it had counted as another and kept the withdrawn date's output.
+        os.symlink(second, os.path.join(self.tmp, "west-link"))
+        os.remove(os.path.join(second, "ndvi_A2004129.tif"))
+        done = kt.run_kalends(["fill", os.path.join("west-link", "*.tif"), "--out", out], cwd=self.tmp)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
+        self.assertNotIn("another input", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "ndvi_2004-05-08.tif")))  # DOY 129
+        self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 7)
 
 
 class NodataOfTheType(kt.TempDirTestCase):
