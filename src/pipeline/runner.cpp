@@ -63,12 +63,17 @@ struct Scan {
   std::map<std::string, std::string> checksum;
 };
 
-// A file's modification time in nanoseconds, as the state database records it.
+// When a file last changed, in nanoseconds, as the state database records it (its column
+// 'mtime_ns'): the later of the modification and the status-change time. The modification time
+// alone can be set back (cp -p, rsync -t, unzip, touch -r): a file replaced by one of the same
+// size had then kept its cached checksum. The status-change time cannot be set by a user.
 std::int64_t mtime_ns(const struct stat& st) {
-  return std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec;
+  const std::int64_t modified = std::int64_t(st.st_mtim.tv_sec) * 1000000000 + st.st_mtim.tv_nsec;
+  const std::int64_t changed = std::int64_t(st.st_ctim.tv_sec) * 1000000000 + st.st_ctim.tv_nsec;
+  return std::max(modified, changed);
 }
 
-// Checksums, reused from the database while size and modification time are unchanged.
+// Checksums, reused from the database while size and change time are unchanged.
 std::string checksum_of(const std::string& path, const detail::StateDatabase* db, Scan& scan) {
   if (auto it = scan.checksum.find(path); it != scan.checksum.end()) return it->second;
   struct stat st {};

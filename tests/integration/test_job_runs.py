@@ -318,6 +318,20 @@ class Incremental(kt.TempDirTestCase):
         os.utime(first_input, None)
         third = run(job)
         self.assertIn("nothing new, nothing done", third.stdout)
+        # A file replaced by one of the same size whose modification time was set back (cp -p,
+        # rsync -t, touch -r): the cached checksum had been kept, and the change never seen.
+        replaced = sorted(glob.glob(os.path.join(self.tmp, "a", "stack", "ndvi", "*.tif")))[1]
+        stamp = os.stat(replaced)
+        dataset = kt.gdal().Open(replaced, 1)
+        band = dataset.GetRasterBand(1)
+        band.WriteArray(band.ReadAsArray()[::-1].copy())   # the same values, rows upside down
+        dataset = band = None
+        self.assertEqual(os.stat(replaced).st_size, stamp.st_size)
+        os.utime(replaced, ns=(stamp.st_atime_ns, stamp.st_mtime_ns))
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertIn("1 changed", [l for l in status.stdout.splitlines() if l.startswith("fill")][0])
+        self.assertRegex(run(job).stdout, r"fill\s+ran")
+        before = mtimes(out)
         # A changed parameter reruns the steps it reaches; dry run says so first.
         make_job(os.path.join(self.tmp, "a"), lam="100")
         dry = run(job, "--dry-run")
