@@ -380,6 +380,15 @@ class Runner {
       } else if (record->status == "failed") {
         s.state = "failed";
         s.detail = record->finished + " UTC: " + record->message;
+      } else if (record->status == "running" && !running.empty()) {
+        // Marked by the run going now: what it was before (the mark keeps the last fingerprint,
+        // empty for a step never done or failed last time).
+        if (record->fingerprint.empty()) {
+          s.state = "never run";
+        } else {
+          s.state = "stale";
+          s.detail = !outputs_exist(*record) ? "outputs missing" : why_changed(*record, step, fingerprint);
+        }
       } else if (record->status == "running") {
         // Marked when a run started it, and never done or failed: that run was stopped.
         s.state = "interrupted";

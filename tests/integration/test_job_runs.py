@@ -181,6 +181,27 @@ class JobFile(kt.TempDirTestCase):
         for line in done.stdout.splitlines():
             self.assertRegex(line, r"^\w+ +\w+ +running +a run \(pid 4242\) is going now; before it: never done")
         self.assertEqual(run(job).returncode, 0)
+        # A run redoing the fill after a parameter change (its step marked running, as a run marks
+        # it when it starts it): "before it" is that change. It had said "never done".
+        with open(job) as f:
+            text = f.read()
+        self.assertIn('lambda = "auto"', text)
+        with open(job, "w") as f:
+            f.write(text.replace('lambda = "auto"', "lambda = 50", 1))
+        database = sqlite3.connect(os.path.join(folder, "out", ".kalends", "state.sqlite"))
+        database.execute("UPDATE steps SET status = 'running' WHERE id = 'fill'")
+        database.commit()
+        database.close()
+        with open(os.path.join(folder, "out", ".kalends", "lock"), "w") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            lock.write("4243")
+            lock.flush()
+            done = kt.run_kalends(["status", job])
+        fill = [l for l in done.stdout.splitlines() if l.startswith("fill ")][0]
+        self.assertRegex(fill, r"running +a run \(pid 4243\) is going now; before it: stale \(parameters")
+        with open(job, "w") as f:
+            f.write(text)
+        self.assertEqual(run(job).returncode, 0)
         self.assertEqual(glob.glob(os.path.join(folder, "out", "**", ".*.partial"), recursive=True), [])
 
     def test_mistakes_are_named_with_their_line(self):
