@@ -461,6 +461,9 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   // (An infinite end of --valid-range is an open end; NaN compares false with everything.)
   for (const auto& [rule, name] : {std::pair{rules.scale, "--scale"}, std::pair{rules.offset, "--offset"}})
     if (rule && !std::isfinite(*rule)) throw UsageError(fmt::format("{} {}", name, *rule), "must be a finite number");
+    else if (rule && std::abs(*rule) > double(std::numeric_limits<float>::max()))
+      throw UsageError(fmt::format("{} {:g}", name, *rule),
+                       "is beyond the 32-bit floating-point values the outputs hold (3.4e38 at most in size)");
   for (const auto& [rule, name] : {std::pair{rules.valid_min, "--valid-range minimum"},
                                    std::pair{rules.valid_max, "--valid-range maximum"}})
     if (rule && std::isnan(*rule)) throw UsageError(fmt::format("{} nan", name), "must be a number");

@@ -520,7 +520,7 @@ class NodataOfTheType(kt.TempDirTestCase):
                                "--out", os.path.join(self.tmp, "fine")])
         self.assertEqual(done.returncode, 0, done.stderr)
 
-    def test_a_nodata_beyond_float32_is_refused(self):
+    def test_a_nodata_offset_or_scale_beyond_float32_is_refused(self):
         # 1e40 is no float32 (3.4e38 at most): on a float32 stack it marks nothing either.
         folder = os.path.join(self.tmp, "float32")
         os.makedirs(folder)
@@ -533,6 +533,12 @@ class NodataOfTheType(kt.TempDirTestCase):
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("stores Float32 values (at most 3.40282e+38 in size): no value can equal it", done.stderr)
         self.assertFalse(os.path.exists(out))
+        # An offset or scale of that size makes every value inf (flag 0, "observed").
+        for option in ("--offset", "--scale"):
+            done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), option, "1e40", "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("%s 1e+40: is beyond the 32-bit floating-point values" % option, done.stderr)
+            self.assertFalse(os.path.exists(out))
         done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--nodata", "-3e38",
                                "--out", os.path.join(self.tmp, "fine")])
         self.assertEqual(done.returncode, 0, done.stderr)
