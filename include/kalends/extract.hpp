@@ -82,6 +82,7 @@ struct ExtractResult {
   std::vector<std::string> repeated_ids;  // ids given to more than one point (kept, each its row)
   std::vector<std::string> notes;         // what a user should know, a line each (repeated ids)
   std::vector<std::string> cautions;      // the selected layers' KALENDS_CAUTION, each once
+  bool table_written = false;             // false where request.out already held this table
 };
 
 /// The checks that need no file (buffer, lags); UsageError naming the option. run_extract calls

@@ -26,6 +26,7 @@ struct ReportRequest {
 struct ReportSummary {
   int maps = 0, plots = 0, validation_reports = 0, validation_plots = 0, fill_summaries = 0;
   std::size_t bytes = 0;
+  bool written = false;  // false where request.html already held this page
   std::vector<std::string> notes;  // what a user should know, a line each (pixels not drawn)
 };
 

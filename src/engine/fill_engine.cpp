@@ -618,7 +618,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     // (an earlier --every) and the per-year counts of a run by years. Later steps would read
     // them as current.
     if (!only) {
-      if (!(reach > 0)) fs::remove(years_file, ec);
+      if (!(reach > 0) && fs::remove(years_file, ec)) ++removed;
       for (const auto& entry : fs::directory_iterator(request.out_dir, ec)) {
         const std::string folder = entry.path().filename().string();
         if (!entry.is_directory() || !folder.starts_with("calendar-") ||
@@ -719,7 +719,10 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // Whether a pixel has a value on some date spans all years: not known after a partial run
   // (null in every run with a reach, so that a partial run writes what a whole one would).
   if (reach > 0) summary.pixels_without_value = -1;
-  if (reach > 0) detail::write_text_atomically(years_file, table);
+  // Written or left as it was: counted either way, so that a run's file counts add up to
+  // what `kalends status` lists.
+  int texts_written = 0, texts_unchanged = 0;
+  if (reach > 0) ++(detail::write_text_atomically(years_file, table) ? texts_written : texts_unchanged);
   summary.missing = summary.pixel_dates - summary.observed;
   summary.out_dir = request.out_dir;
   summary.seconds =
@@ -773,10 +776,9 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
       if (!input.empty() && !same_input(input, request.input)) summary.replaced_summary_of = input;
     }
   }
-  detail::write_text_atomically(summary_file, json);
-  // The two summaries are rewritten every run: counted, so that a run's file counts add up to
-  // what `kalends status` lists.
-  summary.outputs_written += 1 + (reach > 0 ? 1 : 0);
+  ++(detail::write_text_atomically(summary_file, json) ? texts_written : texts_unchanged);
+  summary.outputs_written += texts_written;
+  summary.outputs_unchanged += texts_unchanged;
   return summary;
 }
 

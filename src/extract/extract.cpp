@@ -448,7 +448,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
   for (const CovariateSeries& s : r.series)
     if (!s.caution.empty() && std::find(r.cautions.begin(), r.cautions.end(), s.caution) == r.cautions.end())
       r.cautions.push_back(s.caution);
-  if (!request.out.empty()) detail::write_text_atomically(request.out, write_table(request, r));
+  if (!request.out.empty()) r.table_written = detail::write_text_atomically(request.out, write_table(request, r));
   return r;
 }
 

@@ -126,12 +126,12 @@ void require_own_raster(const std::string& path, std::initializer_list<const cha
   refuse_foreign_file(path);
 }
 
-void write_text_atomically(const std::string& path, const std::string& text) {
+bool write_text_atomically(const std::string& path, const std::string& text) {
   {
     std::ifstream existing(path, std::ios::binary);
     if (existing) {
       const std::string old((std::istreambuf_iterator<char>(existing)), std::istreambuf_iterator<char>());
-      if (old == text) return;
+      if (old == text) return false;
     }
   }
   // One temporary per process: runs in parallel (a test suite, array jobs, caches shared
@@ -149,6 +149,7 @@ void write_text_atomically(const std::string& path, const std::string& text) {
   }
   publish(temporary, path);
   sync_path(fs::path(path).parent_path().string(), true);
+  return true;
 }
 
 OutputFolder::OutputFolder(const std::string& path) {

@@ -7,8 +7,9 @@
 namespace kalends::detail {
 
 /// Writes `text` to `path` atomically (a temporary of this process, fsync, rename); leaves
-/// `path` untouched when it already holds exactly `text`. OutputError when it cannot.
-void write_text_atomically(const std::string& path, const std::string& text);
+/// `path` untouched when it already holds exactly `text`, and returns whether it wrote.
+/// OutputError when it cannot.
+bool write_text_atomically(const std::string& path, const std::string& text);
 
 /// A text output replaces only an earlier one of kalends': UsageError naming `path` when a file
 /// there does not hold `mark` (text every such output of kalends carries) in its first 4 KiB, as

@@ -567,7 +567,7 @@ ReportSummary run_report(const ReportRequest& request) {
           "mean of each date's period. Observations removed by the QA rule are not shown.</p>\n" +
           plots.html + "</section>\n";
   html += "</body>\n</html>\n";
-  write_text_atomically(request.html, html);
+  summary.written = write_text_atomically(request.html, html);
   summary.bytes = html.size();
   return summary;
 }

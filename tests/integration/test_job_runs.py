@@ -586,12 +586,28 @@ class EditedJob(kt.TempDirTestCase):
             self.assertIn("fill.calendar-1M.ndvi", f.readline())
         with open(os.path.join(out, "report", "report.html")) as f:
             self.assertIn("seasons.ndvi_synoptic_mean", f.read())
+        # The points file renamed, its content the same: extract runs again and leaves its table
+        # as it was, which it had counted as written.
+        os.rename(points, os.path.join(folder, "sites.csv"))
+        with open(job, "w") as f:
+            f.write(text + extra.replace('"points.csv"', '"sites.csv"'))
+        table = os.stat(os.path.join(out, "extract", "table.csv")).st_mtime_ns
+        done = run(job, "--log", "json")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        finished = {e["step"]: e for e in map(json.loads, done.stdout.splitlines()) if e["event"] == "step_finished"}
+        self.assertEqual(finished["extract"]["action"], "ran")
+        self.assertEqual((finished["extract"]["written"], finished["extract"]["unchanged"]), (0, 1))
+        self.assertEqual(os.stat(os.path.join(out, "extract", "table.csv")).st_mtime_ns, table)
+        os.rename(os.path.join(folder, "sites.csv"), points)
         edited = text.replace('every = "1M"\n', "").replace('lambda = "100"', 'lambda = "1000"')
         edited = edited[:edited.index("[[step]]\ndo = \"seasons\"")]
         with open(job, "w") as f:
             f.write(edited + extra.replace('["fill", "seasons"]', '["fill"]'))
-        done = run(job)
+        done = run(job, "--log", "json")
         self.assertEqual(done.returncode, 0, done.stderr)
+        # The fill no longer makes its calendar's files: each counted as removed.
+        finished = {e["step"]: e for e in map(json.loads, done.stdout.splitlines()) if e["event"] == "step_finished"}
+        self.assertGreater(finished["fill"]["removed"], 0)
         self.assertFalse(os.path.exists(os.path.join(out, "fill", "calendar-1M")))
         with open(os.path.join(out, "extract", "table.csv")) as f:
             self.assertNotIn("calendar", f.readline())

@@ -68,7 +68,7 @@ StepKind extract_step_kind() {
     const ExtractResult result = run_extract(r);
     std::string caution;
     for (const std::string& text : result.cautions) caution += (caution.empty() ? "" : "\n  ") + text;
-    return StepOutcome{1, 0, caution, result.notes};
+    return StepOutcome{result.table_written ? 1 : 0, result.table_written ? 0 : 1, caution, result.notes};
   };
   return kind;
 }

@@ -52,7 +52,7 @@ StepKind report_step_kind() {
     const ReportRequest r = report_request(c);
     std::filesystem::create_directories(c.folder);
     const ReportSummary s = run_report(r);
-    return StepOutcome{1, 0, "", s.notes};
+    return StepOutcome{s.written ? 1 : 0, s.written ? 0 : 1, "", s.notes};
   };
   return kind;
 }
