@@ -364,8 +364,11 @@ class Runner {
       try {
         fingerprint = fingerprint_of(step);
       } catch (const Error& e) {
-        s.state = "stale";
-        s.detail = std::string("an input cannot be read: ") + e.what();
+        // A run that failed on it (a missing input folder) had been listed stale, status exit 0.
+        const auto record = db_ ? db_->step(step.id) : std::nullopt;
+        s.state = !record ? "never run" : record->status == "failed" ? "failed" : "stale";
+        s.detail = s.state == "failed" ? record->finished + " UTC: " + record->message
+                                       : std::string("an input cannot be read: ") + e.what();
         list.push_back(s);
         continue;
       }

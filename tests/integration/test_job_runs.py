@@ -499,6 +499,20 @@ night = "night_fill"
 
 
 class JobWording(kt.TempDirTestCase):
+    def test_a_step_that_failed_on_a_missing_input_folder_is_failed_to_status(self):
+        # status had listed it 'stale' and exited 0, which a monitoring script reads as fine.
+        job = os.path.join(self.tmp, "missing.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.u]\nstack = "missing/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "u"\n')
+        done = kt.run_kalends(["status", job])
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertRegex(done.stdout, r"^fill +fill +never run +an input cannot be read: .*missing")
+        self.assertEqual(run(job).returncode, 2)
+        done = kt.run_kalends(["status", job])
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        self.assertRegex(done.stdout, r"^fill +fill +failed +.* UTC: .*missing/\*\.tif: no file matches this pattern")
+
     def test_a_folder_given_as_the_job_file_is_named_as_a_folder(self):
         # A folder (job.toml made by mkdir by mistake) had been read as an empty job: "no
         # [[step]]: nothing to do", which sends the user looking inside a file that is not there.
