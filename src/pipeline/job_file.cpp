@@ -6,6 +6,7 @@
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
+#include <limits>
 #include <fmt/format.h>
 #include <set>
 
@@ -61,7 +62,8 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
   } catch (const UsageError& e) {
     const std::string& where = e.where();
     if (where.rfind("--", 0) == 0) {
-      const auto space = where.find(' ');
+      // "--day-time 30", or a pair of options "--day-time/--night-time": the first one's key.
+      const auto space = where.find_first_of(" /");
       std::string key = where.substr(2, space == std::string::npos ? std::string::npos : space - 2);
       std::replace(key.begin(), key.end(), '-', '_');
       // Options whose job key has another name.
@@ -194,8 +196,15 @@ Job read_job(const std::string& path) {
         if (k == "stack") input.stack = resolve(job.folder, checked_text(path, k, value, Type::text));
         else if (k == "qa") input.qa = resolve(job.folder, checked_text(path, k, value, Type::text));
         else if (k == "keep") input.keep = checked_text(path, k, value, Type::text);
-        else if (k == "scale") input.scale = std::stod(checked_text(path, k, value, Type::number));
-        else if (k == "offset") input.offset = std::stod(checked_text(path, k, value, Type::number));
+        else if (k == "scale" || k == "offset") {
+          const double number = std::stod(checked_text(path, k, value, Type::number));
+          // As the command's --scale and --offset (Stack::open), here with the line.
+          if (!std::isfinite(number) || std::abs(number) > double(std::numeric_limits<float>::max()))
+            fail(path, value.source(), fmt::format("'{}' = {:g}: must be a finite number within float32's range", k, number));
+          if (k == "scale" && number == 0)
+            fail(path, value.source(), "'scale' = 0: a scale factor of 0 makes every value 0");
+          (k == "scale" ? input.scale : input.offset) = number;
+        }
         else if (k == "nodata") input.nodata = std::stod(checked_text(path, k, value, Type::number));
         else if (k == "band") input.band = std::stoi(checked_text(path, k, value, Type::integer));
         else if (k == "qa_band") input.qa_band = std::stoi(checked_text(path, k, value, Type::integer));

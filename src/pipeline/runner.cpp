@@ -254,9 +254,11 @@ class Runner {
       } catch (const Error& caught) {
         // The engines name the command's option; in a job the budget is the job file's.
         const bool usage = dynamic_cast<const UsageError*>(&caught) != nullptr;
+        const bool input = dynamic_cast<const InputError*>(&caught) != nullptr;
         const Error e = usage && caught.where() == "--memory"
                             ? UsageError(job_.path + ": [job] memory", caught.reason())
                         : usage ? UsageError(job_option_names(caught.where()), job_wording(caught.reason(), step))
+                        : input ? InputError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                                 : caught;
         r.action = StepReport::Action::failed;
         r.reason = e.what();
@@ -297,6 +299,10 @@ class Runner {
     if (const auto at = reason.find(option_advice); at != std::string::npos)
       reason.replace(at, option_advice.size(),
                      fmt::format("set units = \"kelvin\" or \"celsius\" in step '{}'", step.id));
+    const std::string options_named = "the unit (--units) or scale factor (--scale)";
+    if (const auto at = reason.find(options_named); at != std::string::npos)
+      reason.replace(at, options_named.size(),
+                     fmt::format("the unit ('units' of step '{}') or scale factor ('scale' of its input)", step.id));
     return reason;
   }
 
@@ -304,7 +310,10 @@ class Runner {
   static std::string job_option_names(std::string where) {
     static const std::pair<const char*, const char*> keys[] = {
         {"--day-time", "day_hour"}, {"--night-time", "night_hour"}, {"--scale", "scale"}, {"--offset", "offset"},
-        {"--nodata", "nodata"},     {"--valid-range", "valid_range"}};
+        {"--nodata", "nodata"},     {"--valid-range", "valid_range"},
+        // The inputs a step names by key (after --day-time and --night-time, which they begin).
+        {"--temperature", "temperature"}, {"--tmin", "tmin"}, {"--tmax", "tmax"}, {"--day", "day"},
+        {"--night", "night"}};
     for (const auto& [option, key] : keys)
       for (auto at = where.find(option); at != std::string::npos; at = where.find(option, at))
         where.replace(at, std::strlen(option), std::string("'") + key + "'");

@@ -568,6 +568,22 @@ class JobWording(kt.TempDirTestCase):
         self.assertIn("'day_hour' 1.5 'night_hour' 13.5", done.stderr)
         self.assertIn("the day overpass must be the warm one", done.stderr)
         self.assertNotIn("--day-time", done.stderr)
+        # An hour outside the day: named at its key's line (it had been the [[step]] line, with
+        # the command's --day-time/--night-time).
+        done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nday_hour = 30\n')
+        self.assertIn("job.toml:13: 'day_hour'/'night_hour': local solar hours must lie in [0, 24)", done.stderr)
+        # Temperatures a hundred times too large: the advice names the step's and input's keys.
+        done = refused('temperature = "temp"\nunits = "kelvin"\n')
+        self.assertIn("'temperature' %s" % os.path.join(folder, "temp", "t_*.tif"), done.stderr)
+        self.assertIn("the unit ('units' of step 'warmth') or scale factor ('scale' of its input)", done.stderr)
+        self.assertNotIn("--", done.stderr)
+        # A scale of 0 under an input: refused at its line (it had named neither file nor line).
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.temp]\nstack = "temp/t_*.tif"\nscale = 0\n'
+                    '[[step]]\nid = "warmth"\ndo = "suitability"\ntemperature = "temp"\nunits = "celsius"\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("job.toml:5: 'scale' = 0: a scale factor of 0 makes every value 0", done.stderr)
 
 
 class EditedJob(kt.TempDirTestCase):
