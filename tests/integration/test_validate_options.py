@@ -150,6 +150,23 @@ class ValidateOptions(kt.TempDirTestCase):
             self.assertEqual(f.read(), "keep me\n")
 
 
+    def test_a_budget_too_small_is_refused_and_leaves_no_work_behind(self):
+        # A --memory below what validate holds whole (the truth, the withheld stack and the
+        # baselines: 48 x 40 px x 46 dates, about 3 MiB) had been exceeded without a word.
+        pattern = os.path.join(self.stack, "ndvi_*.tif")
+        out = os.path.join(self.tmp, "small-budget")
+        done = kt.run_kalends(["validate", pattern, "--methods", "whittaker", "--memory", "2M", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--memory: budget of 2 MiB is too small: validate holds the whole stack in memory "
+                      "(about 4 MiB for 46 dates of 48 x 40 px)", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "work")))
+        # Enough for that, too little for a fill's blocks and fixed overheads (about 100 MiB):
+        # refused when the fill starts, and the withheld stack already written is removed.
+        done = kt.run_kalends(["validate", pattern, "--methods", "whittaker", "--memory", "20M", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("too small for one block", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "work")), os.listdir(out))
+
     def test_a_work_folder_of_the_users_is_left_alone(self):
         # validate works in OUT/work and removes it; a 'work' folder the user already keeps in
         # OUT (not marked as validate's) is refused and left as it was. It had been removed.
