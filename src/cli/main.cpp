@@ -69,7 +69,7 @@ int main(int argc, char** argv) {
   cli::GlobalOptions global;
   for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + detail::shell_word(argv[i]);
   app.add_flag("-q,--quiet", global.quiet, "Print only errors");
-  app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory");
+  app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory (kalends fill)");
   std::map<CLI::App*, cli::Action> actions;
   for (auto add : {&cli::add_inspect_command, &cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,
                    &cli::add_compare_command, &cli::add_grid_command, &cli::add_validate_command, &cli::add_run_command,
