@@ -498,15 +498,28 @@ class Runner {
                                     options_.skip_bad ? &report_.skipped_inputs : nullptr);
     // A file the plan could open but a shard found bad (pixels cut short) is left out by every
     // shard and the finalize alike: judged without it, the shards' steps are up to date.
-    if (options_.skip_bad)
+    // A finalize without --skip-bad is told of such a file, while it is as the shard found it
+    // (it had said only that the shards' inputs changed, and resubmitting them changed nothing).
+    if (options_.skip_bad || options_.finalize)
       for (int k = 1; k <= shards; ++k) {
         const fs::path shard_state = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
         if (!fs::exists(shard_state)) continue;
-        for (const auto& [path, reason] : detail::StateDatabase(shard_state.string(), true).skipped())
+        const detail::StateDatabase shard_db(shard_state.string(), true);
+        for (const auto& [path, reason] : shard_db.skipped()) {
+          if (!options_.skip_bad) {
+            struct stat st {};
+            const auto known = shard_db.input(path);
+            if (known && ::stat(path.c_str(), &st) == 0 && known->size == st.st_size && known->mtime_ns == mtime_ns(st))
+              throw InputError(path, reason + "; shard " + std::to_string(k) +
+                                         " left it out (--skip-bad): give --finalize --skip-bad too, or repair the "
+                                         "file and run the shards again");
+            continue;
+          }
           if (std::find(excluded_.begin(), excluded_.end(), path) == excluded_.end()) {
             excluded_.push_back(path);
             report_.skipped_inputs.push_back(path + ": " + reason);
           }
+        }
       }
     // Remembered as a step's scan remembers them: status and the next run then leave them out
     // while they are unchanged.

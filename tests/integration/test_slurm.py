@@ -233,14 +233,21 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertTrue(plan.stdout.strip().splitlines()[-1].endswith(" --skip-bad"), plan.stdout)
         status = kalends("status", job, "--out", out)
         self.assertRegex(status.stdout, r"input\s+bad\s+left out\s+%s" % re.escape(bad))
-        self.shards_and_finalize_skip(job, out, bad, single)
+        self.shards_and_finalize_skip(job, out, bad, single, "is damaged")  # plan finds it too
 
-    def shards_and_finalize_skip(self, job, out, bad, single):
-        """Both shards and the finalize with --skip-bad leave `bad` out; the result equals `single`."""
+    def shards_and_finalize_skip(self, job, out, bad, single, finalize_says):
+        """Both shards and the finalize with --skip-bad leave `bad` out; the result equals `single`.
+        A finalize without --skip-bad refuses naming `bad` and saying `finalize_says`."""
         for k in ("1", "2"):
             done = kalends("run", job, "--out", out, "--shard", k, "--skip-bad")
             self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
             self.assertIn("skipped input: " + bad, done.stdout)
+        # Without --skip-bad: the file named, and what to do (it had said only that the shards'
+        # inputs changed and to run them again, which changed nothing).
+        done = kalends("run", job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn(bad + ": ", done.stderr)
+        self.assertIn(finalize_says, done.stderr)
         done = kalends("run", job, "--out", out, "--finalize", "--skip-bad")
         self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
         self.assert_same_outputs(single, out)
@@ -276,7 +283,8 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(kalends("run", job, "--out", single, "--skip-bad", "-q").returncode, 3)
         plan = kalends("plan", job, "--out", out, "--shards", "2", "--skip-bad")
         self.assertEqual(plan.returncode, 0, plan.stderr)  # the header reads
-        self.shards_and_finalize_skip(job, out, bad, single)
+        self.shards_and_finalize_skip(job, out, bad, single,
+                                      "left it out (--skip-bad): give --finalize --skip-bad too, or repair the file")
 
     def test_plan_refuses_more_shards_than_strips(self):
         done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
