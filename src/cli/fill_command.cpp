@@ -177,7 +177,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    r.out_dir.c_str(), s.replaced_summary_of.c_str());
     if (!s.mixed_value_rules.empty())
       std::fprintf(stderr, "note: %s: the inputs' value rules differ: %s (give --scale, --offset or --nodata for all "
-                           "if one file's metadata is wrong; see kalends inspect --dates)\n",
+                           "if one file's metadata is wrong; a unit label is not converted; see kalends inspect "
+                           "--dates)\n",
                    r.input.c_str(), s.mixed_value_rules.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;

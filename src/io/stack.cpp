@@ -429,6 +429,7 @@ std::string mixed_value_rules(const Stack& stack) {
   const ValueRules& rules = stack.rules();
   const Layer& first = stack.layers().front();
   const auto nodata = [](const std::optional<double>& v) { return v ? fmt::format("{:g}", *v) : std::string("none"); };
+  std::vector<std::string> dates;
   for (const Layer& layer : stack.layers()) {
     std::vector<std::string> differ;
     if (!rules.scale && layer.scale != first.scale)
@@ -443,10 +444,14 @@ std::string mixed_value_rules(const Stack& stack) {
     // Values are not converted between units: the outputs carry the first date's label.
     if (!layer.unit.empty() && !first.unit.empty() && layer.unit != first.unit)
       differ.push_back(fmt::format("unit '{}' (first date '{}', which the outputs carry)", layer.unit, first.unit));
-    if (!differ.empty())
-      return fmt::format("{} has {}; each file was read with its own", layer.time.label(), fmt::join(differ, ", "));
+    if (!differ.empty()) dates.push_back(fmt::format("{} has {}", layer.time.label(), fmt::join(differ, ", ")));
   }
-  return "";
+  if (dates.empty()) return "";
+  // Every such date, up to a few (the first alone had hidden a second wrong scale).
+  constexpr std::size_t shown = 4;
+  std::string text = fmt::format("{}", fmt::join(dates.begin(), dates.begin() + std::min(dates.size(), shown), "; "));
+  if (dates.size() > shown) text += fmt::format("; and {} more dates", dates.size() - shown);
+  return text + "; each file was read with its own";
 }
 
 void check_band(int band, const std::string& option) {

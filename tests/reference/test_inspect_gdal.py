@@ -314,6 +314,18 @@ class InspectQa(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "fill", os.path.join(units, "*.tif"), "--out", os.path.join(self.tmp, "units-out")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("2020-01-17 has unit 'C' (first date 'K', which the outputs carry)", done.stderr)
+        # Every differing date is named, up to four, then counted: the first alone had hidden a
+        # second file's wrong scale.
+        scales = os.path.join(self.tmp, "scales")
+        os.makedirs(scales)
+        for k in range(8):
+            kt.write_raster(os.path.join(scales, "ndvi_2020-%02d-01.tif" % (k + 1)), np.full((4, 4), 5000, np.int16),
+                            scale=0.001 if k in (2, 3, 4, 5, 6, 7) else 0.0001)
+        done = kt.run_kalends(["-q", "fill", os.path.join(scales, "*.tif"), "--out", os.path.join(self.tmp, "scales-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2020-03-01 has scale 0.001 (first date 0.0001); 2020-04-01 has scale 0.001", done.stderr)
+        self.assertIn("2020-06-01 has scale 0.001 (first date 0.0001); and 2 more dates; each file was read with its own",
+                      done.stderr)
 
     def test_bad_input_is_one_line_and_exit_2(self):
         done = kt.run_kalends(["inspect", os.path.join(self.tmp, "nothing", "*.tif")])
