@@ -20,6 +20,7 @@
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/pipeline.hpp"
+#include "kalends/season.hpp"
 #include "io/file_glob.hpp"
 #include "io/output_set.hpp"
 #include "io/shell_word.hpp"
@@ -914,6 +915,13 @@ class Runner {
           for (const std::string& f : detail::files_below(step_folder(base_, name)))
             if (const auto date = date_from_name(f)) last = std::max(last, date->date().year);
         years.erase(years.upper_bound(last), years.end());
+        // A step limited to some years ('years' of seasons and suitability) redoes only those;
+        // the message had named the others too.
+        if (const auto limit = step.options.find("years"); limit != step.options.end()) {
+          const auto [first, final] = parse_years(limit->second);
+          years.erase(years.begin(), years.lower_bound(first));
+          years.erase(years.upper_bound(final), years.end());
+        }
         if (!years.empty()) {
           only_years_ = std::vector<int>(years.begin(), years.end());
           report.reason += fmt::format("; redoing the year layers of {} and the synoptic layers",

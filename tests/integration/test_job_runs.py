@@ -417,6 +417,24 @@ class Incremental(kt.TempDirTestCase):
         now = mtimes(out)
         self.assertEqual({p: now[p] for p in first_year}, first_year)   # 2021 untouched
         self.assert_same_as_from_scratch(job, os.path.join(folder, "out"), os.path.join(folder, "scratch"))
+        # Seasons limited to 2022: a composite of 2021 replaced redoes the fill's 2021 (and 2022,
+        # within its reach), and the seasons step names only its own year; it had named 2021.
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nyears = "2022-2022"'))
+        self.assertEqual(run(job).returncode, 0)
+        replaced = os.path.join(live, "ndvi", os.path.basename(files[15]))
+        self.assertIn("2021-", replaced)
+        dataset = kt.gdal().Open(replaced, 1)
+        band = dataset.GetRasterBand(1)
+        band.WriteArray(band.ReadAsArray()[::-1].copy())
+        dataset = band = None
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("recomputing the years it reaches: 2021", done.stdout)
+        self.assertIn("redoing the year layers of 2022 and the synoptic layers", done.stdout)
+        self.assertNotIn("year layers of 2021", done.stdout)
 
     def test_spacetime_by_year_adding_composites_equals_a_run_from_scratch(self):
         # spacetime with a reach of 400 days: each year learns its seasons from its slice of
