@@ -46,6 +46,11 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
     if (pattern.find('[') != std::string::npos && pattern.find(']') != std::string::npos)
       throw InputError(pattern, "no file matches this pattern ([...] matches one character of a set; a folder "
                                 "or file name with brackets needs each written as [[] and []])");
+    // "ndvi.tif/*.tif": the folder part is a file.
+    const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
+    std::error_code ec;
+    if (!folder.empty() && !has_glob_characters(folder.string()) && std::filesystem::is_regular_file(folder, ec))
+      throw InputError(pattern, "no file matches this pattern: " + folder.string() + " is a file, not a folder");
     throw InputError(pattern, "no file matches this pattern");
   }
   if (status != 0) {

@@ -127,7 +127,7 @@ void require_not_hourly(const Stack& stack, const std::string& option) {
   if (dataset->GetMetadataItem("KALENDS_HOURS") != nullptr && dataset->GetRasterCount() == 24)
     throw UsageError(option + " " + first.path,
                      "holds 24 hourly bands (kalends diurnal output), not a daily temperature; give the daily "
-                     "inputs it was made from (--tmin/--tmax or --day/--night), from which suitability makes the same hours");
+                     "inputs it was made from (--tmin/--tmax or --day/--night), from which the same hours are made");
 }
 
 }  // namespace

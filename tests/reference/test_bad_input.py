@@ -189,6 +189,13 @@ class BadInput(kt.TempDirTestCase):
         self.assertIn("rename it to carry its date", line)
         self.assertNotIn("give --date for", line)
 
+    def test_a_pattern_whose_folder_is_a_file(self):
+        # 'ndvi_2020-01-01.tif/*.tif' (a file's name typed as the folder): it had said only that
+        # no file matches.
+        line = self.check_fails([os.path.join(self.good, "ndvi_2020-01-01.tif", "*.tif")], ["ndvi_2020-01-01.tif"],
+                                ["no file matches"], "folder is a file")[0]
+        self.assertIn("ndvi_2020-01-01.tif is a file, not a folder", line)
+
     def test_a_single_undated_file(self):
         # One file is read as a stack of its bands, dated by their metadata; with one band and no
         # date anywhere the message had listed the metadata it looked for, not what to do.
