@@ -80,7 +80,10 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   // year; there the median grid stays and the displacement is reported (largest_shift_days).
   constexpr double kFinestGridFactor = 16;  // common practice: a bound on memory, not a published value
   grid.largest_shift_days = place(step);
-  grid.fixed_days_of_month = on_fixed_days_of_month(times);
+  // A calendar of fixed days of the month is kept while its misstatement stays near a step
+  // (the months' lengths: 10-11 days for dekads over 10-30 years); monthly files followed by
+  // dekads, or dekads with extra scenes, misstate by months and take the finer grid.
+  grid.fixed_days_of_month = on_fixed_days_of_month(times) && grid.largest_shift_days <= 1.5 * step;
   if (grid.largest_shift_days >= step && !grid.fixed_days_of_month) {
     const double finer = smallest >= 1.0 ? std::floor(smallest) : smallest;
     const double span = (times.back().seconds - times.front().seconds) / 86400.0;

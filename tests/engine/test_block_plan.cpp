@@ -148,6 +148,17 @@ TEST_CASE("time grid of a calendar of fixed days of the month keeps its step", "
       CHECK(g.size <= (times.back().seconds - times.front().seconds) / 86400 / step + 2);
     }
   // Five dates on five different days of the month are no such calendar (the mixed case below).
+  // Monthly files on the 1st, then dekads: fixed days of the month too, but the monthly step
+  // misstates the dekads by months. They take the finer grid, as any mixed stack.
+  std::vector<TimePoint> mixed;
+  for (int year = 2010; year <= 2016; ++year)
+    for (int month = 1; month <= 12; ++month) mixed.push_back(TimePoint::from_date({year, month, 1}));
+  for (int month = 1; month <= 12; ++month)
+    for (const int day : {1, 11, 21}) mixed.push_back(TimePoint::from_date({2017, month, day}));
+  const TimeGrid m = TimeGrid::build(mixed);
+  CHECK_FALSE(m.fixed_days_of_month);
+  CHECK(m.from_smallest_spacing);
+  CHECK(m.step_days == 8);
 }
 
 TEST_CASE("time grid of mixed spacing steps the smallest spacing, within a bound on its size", "[engine][grid]") {
