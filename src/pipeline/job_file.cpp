@@ -61,20 +61,20 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
     kind.check_values(context);
   } catch (const UsageError& e) {
     const std::string& where = e.where();
-    if (where.rfind("--", 0) == 0) {
-      // "--day-time 30", or a pair of options "--day-time/--night-time": the first one's key.
-      const auto space = where.find_first_of(" /");
-      std::string key = where.substr(2, space == std::string::npos ? std::string::npos : space - 2);
+    // The options the error names ("--every '2W'", "--day-time/--night-time", "--day-time 13.5
+    // --night-time 12"), each as its job key; named at the line of the first key the step gives.
+    std::string shown = where;
+    const toml::node* given = nullptr;
+    for (std::size_t at = shown.find("--"); at != std::string::npos; at = shown.find("--", at)) {
+      const std::size_t end = shown.find_first_of(" /", at);
+      std::string key = shown.substr(at + 2, end == std::string::npos ? std::string::npos : end - at - 2);
       std::replace(key.begin(), key.end(), '-', '_');
-      // Options whose job key has another name.
-      if (key == "day_time") key = "day_hour";
+      if (key == "day_time") key = "day_hour";  // options whose job key has another name
       if (key == "night_time") key = "night_hour";
-      if (const toml::node* value = table.get(key)) {
-        std::string shown = space == std::string::npos ? "" : where.substr(space);
-        if (const auto at = shown.find("--night-time"); at != std::string::npos) shown.replace(at, 12, "'night_hour'");
-        fail(path, value->source(), "'" + key + "'" + shown + ": " + e.reason());
-      }
+      if (!given) given = table.get(key);
+      shown.replace(at, (end == std::string::npos ? shown.size() : end) - at, "'" + key + "'");
     }
+    if (given) fail(path, given->source(), shown + ": " + e.reason());
     fail(path, table.source(), "step '" + step.id + "': " + e.what());
   } catch (const InputError& e) {
     // A file the step reads at check time (the survey points): named, at the step's line.

@@ -590,6 +590,12 @@ class JobWording(kt.TempDirTestCase):
         # the command's --day-time/--night-time).
         done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nday_hour = 30\n')
         self.assertIn("job.toml:13: 'day_hour'/'night_hour': local solar hours must lie in [0, 24)", done.stderr)
+        # The night hour alone: named at its own line too (it had been the [[step]] line).
+        done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nnight_hour = 25\n')
+        self.assertIn("job.toml:13: 'day_hour'/'night_hour': local solar hours must lie in [0, 24)", done.stderr)
+        done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nnight_hour = 12.0\n')
+        self.assertIn("job.toml:13: 'day_hour' 13.5 'night_hour' 12: the day overpass must be the warm one",
+                      done.stderr)
         # Temperatures a hundred times too large: the advice names the step's and input's keys.
         done = refused('temperature = "temp"\nunits = "kelvin"\n')
         self.assertIn("'temperature' %s" % os.path.join(folder, "temp", "t_*.tif"), done.stderr)
