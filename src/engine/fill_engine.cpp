@@ -577,8 +577,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   for (std::size_t i = 0; i < std::size_t(layers); ++i)
     if (in_range[i] == 0 && out_of_range[i] > 0)
       throw InputError(stack.layers()[i].path,
-                       fmt::format("every value is outside the valid range {:g} to {:g} (wrong scale factor or range?)",
-                                   request.rules.valid_min.value_or(-INFINITY), request.rules.valid_max.value_or(INFINITY)));
+                       request.rules.valid_min || request.rules.valid_max
+                           ? fmt::format("every value is outside the valid range {:g} to {:g} (wrong scale factor or range?)",
+                                         request.rules.valid_min.value_or(-INFINITY),
+                                         request.rules.valid_max.value_or(INFINITY))
+                           : std::string("every value is beyond the 32-bit values the outputs hold after scale and "
+                                         "offset (wrong scale factor?)"));
   // Outputs of another input under this fill's names (two stacks of one name sharing a date in
   // one folder) are replaced like any earlier output, and counted so that it is said.
   int replaced_of_other_input = 0;

@@ -4,6 +4,7 @@
 #include <ogr_spatialref.h>
 
 #include <algorithm>
+#include <cfloat>
 #include <cmath>
 #include <cstring>
 #include <limits>
@@ -474,6 +475,10 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     else if (rule && std::abs(*rule) > double(std::numeric_limits<float>::max()))
       throw UsageError(fmt::format("{} {:g}", name, *rule),
                        "is beyond the 32-bit floating-point values the outputs hold (3.4e38 at most in size)");
+  // A scale below float32's smallest normal number makes every value 0 or nearly, as 0 would.
+  if (rules.scale && *rules.scale != 0 && std::abs(*rules.scale) < double(std::numeric_limits<float>::min()))
+    throw UsageError(fmt::format("--scale {:g}", *rules.scale),
+                     "is below the 32-bit floating-point values the outputs hold (1.2e-38 at least in size)");
   for (const auto& [rule, name] : {std::pair{rules.valid_min, "--valid-range minimum"},
                                    std::pair{rules.valid_max, "--valid-range maximum"}})
     if (rule && std::isnan(*rule)) throw UsageError(fmt::format("{} nan", name), "must be a number");
@@ -713,7 +718,9 @@ std::int64_t StackReader::read_values(std::size_t index, const Window& w, float*
     // integers (raw * 0.0001f).
     const double v = double(raw) * layer.scale + layer.offset;
     const bool nodata_value = (has_nodata && !nodata_is_nan && raw == nodata) || !std::isfinite(v);
-    const bool outside = !nodata_value && !(v >= low && v <= high);
+    // Beyond float32 after scale and offset (a scale of 1e37): outside, so that a date of only
+    // such values is an error, not a date of inf flagged observed.
+    const bool outside = !nodata_value && (!(v >= low && v <= high) || std::abs(v) > double(FLT_MAX));
     out_of_range += outside;
     out[i] = nodata_value || outside ? NAN : float(v);
   }

@@ -203,6 +203,9 @@ Job read_job(const std::string& path) {
             fail(path, value.source(), fmt::format("'{}' = {:g}: must be a finite number within float32's range", k, number));
           if (k == "scale" && number == 0)
             fail(path, value.source(), "'scale' = 0: a scale factor of 0 makes every value 0");
+          if (k == "scale" && std::abs(number) < double(std::numeric_limits<float>::min()))
+            fail(path, value.source(), fmt::format("'scale' = {:g}: below float32's smallest normal number, it makes "
+                                                   "every value 0 or nearly", number));
           (k == "scale" ? input.scale : input.offset) = number;
         }
         else if (k == "nodata") input.nodata = std::stod(checked_text(path, k, value, Type::number));

@@ -520,6 +520,25 @@ class NodataOfTheType(kt.TempDirTestCase):
                                "--out", os.path.join(self.tmp, "fine")])
         self.assertEqual(done.returncode, 0, done.stderr)
 
+    def test_values_beyond_float32_after_the_scale_are_refused(self):
+        # int16 counts of 5000 x 1e37 = 5e40, no float32: every value had become inf, flagged
+        # observed. A scale below float32's smallest normal number had made every value 0.
+        folder = os.path.join(self.tmp, "counts")
+        os.makedirs(folder)
+        for doy in (1, 17, 33):
+            kt.write_raster(os.path.join(folder, "ndvi_A2004%03d.tif" % doy), np.full((3, 3), 5000, np.int16),
+                            geotransform=GEOTRANSFORM, epsg=EPSG, nodata=NODATA)
+        out = os.path.join(self.tmp, "out-scaled")
+        done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--scale", "1e37", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("ndvi_A2004001.tif: every value is beyond the 32-bit values the outputs hold after scale and "
+                      "offset", done.stderr)
+        self.assertFalse(os.path.exists(out))
+        done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--scale", "1e-46", "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--scale 1e-46: is below the 32-bit floating-point values", done.stderr)
+        self.assertFalse(os.path.exists(out))
+
     def test_a_nodata_offset_or_scale_beyond_float32_is_refused(self):
         # 1e40 is no float32 (3.4e38 at most): on a float32 stack it marks nothing either.
         folder = os.path.join(self.tmp, "float32")
