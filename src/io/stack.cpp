@@ -448,8 +448,10 @@ std::string mixed_value_rules(const Stack& stack) {
     if (!rules.nodata && !same_nodata)
       differ.push_back(fmt::format("nodata {} (first date {})", nodata(layer.nodata), nodata(first.nodata)));
     // Values are not converted between units: the outputs carry the first date's label.
-    if (!layer.unit.empty() && !first.unit.empty() && layer.unit != first.unit)
-      differ.push_back(fmt::format("unit '{}' (first date '{}', which the outputs carry)", layer.unit, first.unit));
+    // A label on one side only counts too (a file of the series without its 'K').
+    const auto label = [](const std::string& unit) { return unit.empty() ? std::string("none") : "'" + unit + "'"; };
+    if (layer.unit != first.unit)
+      differ.push_back(fmt::format("unit {} (first date {}, which the outputs carry)", label(layer.unit), label(first.unit)));
     if (!differ.empty()) dates.push_back(fmt::format("{} has {}", layer.time.label(), fmt::join(differ, ", ")));
   }
   if (dates.empty()) return "";

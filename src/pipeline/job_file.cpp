@@ -6,6 +6,9 @@
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
+#include <cerrno>
+#include <cstring>
+#include <fstream>
 #include <limits>
 #include <fmt/format.h>
 #include <set>
@@ -149,6 +152,8 @@ Job read_job(const std::string& path) {
   job.folder = fs::absolute(path).parent_path().string();
   if (!fs::exists(path)) throw UsageError(path, "no such job file");
   if (fs::is_directory(path)) throw UsageError(path, "is a folder, not a job file");
+  if (std::ifstream probe(path); !probe)
+    throw UsageError(path, std::string("cannot read the job file: ") + std::strerror(errno));
   toml::table root;
   try {
     root = toml::parse_file(path);

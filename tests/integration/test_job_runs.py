@@ -556,7 +556,7 @@ class JobWording(kt.TempDirTestCase):
         finally:
             os.chmod(self.tmp, 0o700)
         self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
-        self.assertEqual(done.stderr.strip(), "kalends: %s: File could not be opened for reading" % job)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: cannot read the job file: Permission denied" % job)
 
     def test_a_unit_error_names_the_steps_key_not_an_option(self):
         # Temperatures without a unit label: the advice had been "give --units kelvin or --units

@@ -314,6 +314,13 @@ class InspectQa(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "fill", os.path.join(units, "*.tif"), "--out", os.path.join(self.tmp, "units-out")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("2020-01-17 has unit 'C' (first date 'K', which the outputs carry)", done.stderr)
+        # A label on one side only: a file of the series saved without its unit.
+        ds = kt.gdal().Open(os.path.join(units, "lst_2020-01-17.tif"), 1)
+        ds.GetRasterBand(1).SetUnitType("")
+        ds = None
+        done = kt.run_kalends(["-q", "fill", os.path.join(units, "*.tif"), "--out", os.path.join(self.tmp, "units-out2")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2020-01-17 has unit none (first date 'K', which the outputs carry)", done.stderr)
         # Every differing date is named, up to four, then counted: the first alone had hidden a
         # second file's wrong scale.
         scales = os.path.join(self.tmp, "scales")
