@@ -51,6 +51,9 @@ struct FillRequest {
   /// Where memory_bytes holds no block, use what one block needs if that is at most this (0:
   /// refuse instead). For a budget the user did not choose; FillSummary says when it was used.
   std::int64_t memory_ceiling = 0;
+  /// Only check the options, the input and the memory budget, then return an empty summary:
+  /// nothing is written (validate checks every method before it runs the first).
+  bool check_only = false;
   int threads = 0;  // 0 = all cores
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata

@@ -353,6 +353,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     budget = one_block;
     share = detail::share_memory(budget, 1, bytes_per_pixel, int(read_files.size()), int(specs.size()));
   }
+  if (request.check_only) return FillSummary{};  // the folders made above are empty, and go
   detail::set_gdal_cache(share.gdal_cache);
   // A method with a halo works block by block on single tiles (or full-width strips of one tile
   // row where the raster is narrower than a tile and its halo), however large the budget: its

@@ -344,6 +344,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   const fs::path work = fs::path(request.out_dir) / "work";
   const fs::path marker = work / ".made-by-kalends-validate";
   std::error_code ec;
+  const bool out_existed = fs::exists(request.out_dir, ec);
   if (fs::exists(work, ec) && !fs::exists(marker, ec) && !fs::is_empty(work, ec))
     throw UsageError("--out", "'" + work.string() + "' exists and was not made by kalends validate, which works "
                               "there: move it, or give another --out");
@@ -351,16 +352,19 @@ ValidateReport run_validate(const ValidateRequest& request) {
   fs::create_directories(work / "input", ec);
   if (ec) throw OutputError(work.string(), "cannot create: " + ec.message());
   detail::write_text_atomically(marker.string(), "kalends validate works in this folder and removes it\n");
-  // A run that fails from here on (a fill's budget too small) leaves no withheld stack behind.
+  // A run that fails from here on (a fill's budget too small) leaves no withheld stack behind,
+  // nor the --out folder it made.
   struct RemoveWorkOnFailure {
-    fs::path work;
-    bool keep;
+    fs::path work, out;
+    bool keep, out_existed;
     int failures_at_start = std::uncaught_exceptions();
     ~RemoveWorkOnFailure() {
+      if (keep || std::uncaught_exceptions() <= failures_at_start) return;
       std::error_code ignored;
-      if (!keep && std::uncaught_exceptions() > failures_at_start) fs::remove_all(work, ignored);
+      fs::remove_all(work, ignored);
+      if (!out_existed && fs::is_empty(out, ignored)) fs::remove(out, ignored);
     }
-  } remove_work_on_failure{work, request.keep_work};
+  } remove_work_on_failure{work, request.out_dir, request.keep_work, out_existed};
   const std::string name = stack.name().empty() ? "layer" : stack.name();
   for (int t = 0; t < dates; ++t) {
     const std::string label = stack.layers()[t].time.label();
@@ -447,7 +451,10 @@ ValidateReport run_validate(const ValidateRequest& request) {
   report.height = grid.height;
   report.transplanted_masks = masks;
 
-  for (const std::string& method : request.methods) {
+  // Each method's fill as `kalends fill` would run it on the withheld stack. Every one is checked
+  // (options, memory for one block) before the first runs: a budget too small for spacetime had
+  // been found after the others had run.
+  auto fill_request = [&](const std::string& method) {
     FillRequest fill;
     fill.input = (work / "input" / "*.tif").string();
     fill.method = request.method;
@@ -459,6 +466,15 @@ ValidateReport run_validate(const ValidateRequest& request) {
     fill.memory_ceiling = request.memory_ceiling;
     fill.threads = request.threads;
     fill.compression = Compression::none;
+    return fill;
+  };
+  for (const std::string& method : request.methods) {
+    FillRequest check = fill_request(method);
+    check.check_only = true;
+    run_fill(check);
+  }
+  for (const std::string& method : request.methods) {
+    const FillRequest fill = fill_request(method);
     const FillSummary filled = run_fill(fill);
     report.memory_raised_to = std::max(report.memory_raised_to, filled.memory_raised_to);
     std::vector<std::string> paths;

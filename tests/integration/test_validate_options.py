@@ -161,11 +161,19 @@ class ValidateOptions(kt.TempDirTestCase):
                       "(about 4 MiB for 46 dates of 48 x 40 px)", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, "work")))
         # Enough for that, too little for a fill's blocks and fixed overheads (about 100 MiB):
-        # refused when the fill starts, and the withheld stack already written is removed.
+        # refused, and the withheld stack already written is removed, and the --out it made.
         done = kt.run_kalends(["validate", pattern, "--methods", "whittaker", "--memory", "20M", "--out", out])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("too small for one block", done.stderr)
-        self.assertFalse(os.path.exists(os.path.join(out, "work")), os.listdir(out))
+        self.assertFalse(os.path.exists(out))
+        # Enough for whittaker's blocks, too little for spacetime's (its halo and scratch): refused
+        # before whittaker runs, where it had been refused after it.
+        done = kt.run_kalends(["validate", pattern, "--methods", "whittaker,spacetime", "--memory", "105M",
+                               "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("too small for one block (it reads 48 x 40 px with its halo)", done.stderr)
+        self.assertNotIn("whittaker", done.stdout)
+        self.assertFalse(os.path.exists(out))
 
     def test_a_work_folder_of_the_users_is_left_alone(self):
         # validate works in OUT/work and removes it; a 'work' folder the user already keeps in
