@@ -75,6 +75,21 @@ def run(job, *args, env=None, preexec=None, timeout=300):
                           timeout=timeout, env=env, preexec_fn=preexec)
 
 
+def run_until_a_step_starts(args, log):
+    """Starts `kalends ARGS --log json` writing to `log`; returns the process once a step has
+    started (or the run ended, or two minutes passed)."""
+    with open(log, "w") as f:
+        process = subprocess.Popen([kt.KALENDS_BIN] + args + ["--log", "json"], stdout=f, stderr=subprocess.PIPE,
+                                   text=True)
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and process.poll() is None:
+        with open(log) as f:
+            if '"step_started"' in f.read():
+                break
+        time.sleep(0.005)
+    return process
+
+
 def content(out):
     """Everything a user reads from the outputs: {relative path: (metadata, descriptions, pixels)}.
     Provenance metadata names files inside the output folder; those names are written relative
@@ -1025,15 +1040,7 @@ class ArrivalsDuringARun(kt.TempDirTestCase):
             f.write('[job]\nout = "out"\nthreads = 1\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\n'
                     'id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\nreach = 183\n')
         log = os.path.join(folder, "run.jsonl")
-        with open(log, "w") as f:
-            process = subprocess.Popen([kt.KALENDS_BIN, "run", job, "--log", "json"], stdout=f,
-                                       stderr=subprocess.PIPE, text=True)
-        deadline = time.monotonic() + 120
-        while time.monotonic() < deadline and process.poll() is None:
-            with open(log) as f:
-                if '"step_started"' in f.read():
-                    break
-            time.sleep(0.005)
+        process = run_until_a_step_starts(["run", job], log)
         shutil.copy(os.path.join(source, late), inputs)
         with open(log) as f:
             if '"step_finished"' in f.read():
@@ -1133,15 +1140,7 @@ class Faults(kt.TempDirTestCase):
         with open(edited, "w") as f:   # another lambda, so that the fill is redone
             f.write(text.replace('"auto"', "2.5", 1))
         log = os.path.join(self.tmp, "stopped.jsonl")
-        with open(log, "w") as f:
-            process = subprocess.Popen([kt.KALENDS_BIN, "run", edited, "--out", out, "--log", "json"],
-                                       stdout=f, stderr=subprocess.PIPE, text=True)
-        deadline = time.monotonic() + 120
-        while time.monotonic() < deadline and process.poll() is None:
-            with open(log) as f:
-                if '"step_started"' in f.read():
-                    break
-            time.sleep(0.005)
+        process = run_until_a_step_starts(["run", edited, "--out", out], log)
         time.sleep(min(0.3, self.duration / 10))
         if process.poll() is not None:
             self.skipTest("the run ended before it could be stopped")
