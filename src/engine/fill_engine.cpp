@@ -658,6 +658,19 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
+  // A run that redoes some years leaves the others' outputs as they were: counted unchanged, so
+  // that a run's counts add up to the files the step has (they had been in neither count).
+  if (only) {
+    std::error_code ec;
+    for (const Layer& layer : stack.layers())
+      if (!written_year(layer.time.date().year) &&
+          fs::exists(fs::path(request.out_dir) / (name + "_" + layer.time.label() + ".tif"), ec))
+        ++summary.outputs_unchanged;
+    for (const detail::PeriodMean& period : periods)
+      if (!written_year(period.start.date().year) &&
+          fs::exists(fs::path(calendar_dir) / (name + "_" + period.start.label() + ".tif"), ec))
+        ++summary.outputs_unchanged;
+  }
   summary.outputs_removed = removed;
   summary.dates = int(layers);
   summary.width = area.width;

@@ -1010,9 +1010,15 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
                         'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nreach = %d\n' % reach)
             self.assertEqual(run(job).returncode, 0)
             shutil.copy(os.path.join(source, "ndvi_2007-05-25.tif"), inputs)
-            done = run(job)
+            done = run(job, "--log", "json")
             self.assertEqual(done.returncode, 0, done.stderr)
-            self.assertIn("recomputing the years it reaches: %s" % redone, done.stdout)
+            fill = [e for e in map(json.loads, done.stdout.splitlines()) if e["event"] == "step_finished"][0]
+            self.assertIn("recomputing the years it reaches: %s" % redone, fill["reason"])
+            # The years not redone are left as they were and counted so: the counts add up to the
+            # step's files (they had been in neither).
+            files = [p for p in glob.glob(os.path.join(folder, "out", "fill", "**", "*"), recursive=True)
+                     if os.path.isfile(p)]
+            self.assertEqual(fill["written"] + fill["unchanged"], len(files))
             done = run(job, "--out", os.path.join(folder, "scratch"))
             self.assertEqual(done.returncode, 0, done.stderr)
             for path in sorted(glob.glob(os.path.join(folder, "out", "fill", "ndvi_*.tif"))):
