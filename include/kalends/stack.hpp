@@ -23,6 +23,11 @@ struct ValueRules {
   std::vector<std::string> exclude;  // files of a pattern to leave out (skipped bad inputs)
 };
 
+/// Why a scale factor (`is_scale`) or an offset cannot be a value rule, or "" where it can: not
+/// finite, beyond float32's range, or a scale of 0 or below float32's smallest normal number
+/// (every value 0). The command line and the job file name the option or key around it.
+std::string scale_or_offset_problem(bool is_scale, double value);
+
 struct Grid {
   int width = 0, height = 0;
   std::array<double, 6> geotransform{0, 1, 0, 0, 0, 1};

@@ -4,7 +4,6 @@
 #include <ogr_spatialref.h>
 
 #include <algorithm>
-#include <cfloat>
 #include <cmath>
 #include <cstring>
 #include <limits>
@@ -466,21 +465,26 @@ void check_band(int band, const std::string& option) {
   if (band < 1) throw UsageError(option + " " + std::to_string(band), "bands are numbered from 1");
 }
 
+std::string scale_or_offset_problem(bool is_scale, double value) {
+  // NaN would empty every output, infinity fill them with inf: neither is a value rule.
+  if (!std::isfinite(value)) return "must be a finite number";
+  if (std::abs(value) > double(std::numeric_limits<float>::max()))
+    return "is beyond the 32-bit floating-point values the outputs hold (3.4e38 at most in size)";
+  if (is_scale && value == 0) return "a scale factor of 0 makes every value 0";
+  // Below float32's smallest normal number, every value becomes 0 or nearly, as with 0.
+  if (is_scale && std::abs(value) < double(std::numeric_limits<float>::min()))
+    return "is below the 32-bit floating-point values the outputs hold (1.2e-38 at least in size)";
+  return "";
+}
+
 Stack Stack::open(const std::string& input, const ValueRules& rules) {
   detail::start_gdal();
   check_band(rules.band, "--band");
-  if (rules.scale && *rules.scale == 0) throw UsageError("--scale 0", "a scale factor of 0 makes every value 0");
-  // NaN would empty every output, infinity fill them with inf: neither is a value rule.
+  for (const bool is_scale : {true, false})
+    if (const std::optional<double>& rule = is_scale ? rules.scale : rules.offset; rule)
+      if (const std::string problem = scale_or_offset_problem(is_scale, *rule); !problem.empty())
+        throw UsageError(fmt::format("{} {:g}", is_scale ? "--scale" : "--offset", *rule), problem);
   // (An infinite end of --valid-range is an open end; NaN compares false with everything.)
-  for (const auto& [rule, name] : {std::pair{rules.scale, "--scale"}, std::pair{rules.offset, "--offset"}})
-    if (rule && !std::isfinite(*rule)) throw UsageError(fmt::format("{} {}", name, *rule), "must be a finite number");
-    else if (rule && std::abs(*rule) > double(std::numeric_limits<float>::max()))
-      throw UsageError(fmt::format("{} {:g}", name, *rule),
-                       "is beyond the 32-bit floating-point values the outputs hold (3.4e38 at most in size)");
-  // A scale below float32's smallest normal number makes every value 0 or nearly, as 0 would.
-  if (rules.scale && *rules.scale != 0 && std::abs(*rules.scale) < double(std::numeric_limits<float>::min()))
-    throw UsageError(fmt::format("--scale {:g}", *rules.scale),
-                     "is below the 32-bit floating-point values the outputs hold (1.2e-38 at least in size)");
   for (const auto& [rule, name] : {std::pair{rules.valid_min, "--valid-range minimum"},
                                    std::pair{rules.valid_max, "--valid-range maximum"}})
     if (rule && std::isnan(*rule)) throw UsageError(fmt::format("{} nan", name), "must be a number");
@@ -722,7 +726,8 @@ std::int64_t StackReader::read_values(std::size_t index, const Window& w, float*
     const bool nodata_value = (has_nodata && !nodata_is_nan && raw == nodata) || !std::isfinite(v);
     // Beyond float32 after scale and offset (a scale of 1e37): outside, so that a date of only
     // such values is an error, not a date of inf flagged observed.
-    const bool outside = !nodata_value && (!(v >= low && v <= high) || std::abs(v) > double(FLT_MAX));
+    const bool outside =
+        !nodata_value && (!(v >= low && v <= high) || std::abs(v) > double(std::numeric_limits<float>::max()));
     out_of_range += outside;
     out[i] = nodata_value || outside ? NAN : float(v);
   }

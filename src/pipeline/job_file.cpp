@@ -9,7 +9,6 @@
 #include <cerrno>
 #include <cstring>
 #include <fstream>
-#include <limits>
 #include <fmt/format.h>
 #include <set>
 
@@ -204,13 +203,8 @@ Job read_job(const std::string& path) {
         else if (k == "scale" || k == "offset") {
           const double number = std::stod(checked_text(path, k, value, Type::number));
           // As the command's --scale and --offset (Stack::open), here with the line.
-          if (!std::isfinite(number) || std::abs(number) > double(std::numeric_limits<float>::max()))
-            fail(path, value.source(), fmt::format("'{}' = {:g}: must be a finite number within float32's range", k, number));
-          if (k == "scale" && number == 0)
-            fail(path, value.source(), "'scale' = 0: a scale factor of 0 makes every value 0");
-          if (k == "scale" && std::abs(number) < double(std::numeric_limits<float>::min()))
-            fail(path, value.source(), fmt::format("'scale' = {:g}: below float32's smallest normal number, it makes "
-                                                   "every value 0 or nearly", number));
+          if (const std::string problem = scale_or_offset_problem(k == "scale", number); !problem.empty())
+            fail(path, value.source(), fmt::format("'{}' = {:g}: {}", k, number, problem));
           (k == "scale" ? input.scale : input.offset) = number;
         }
         else if (k == "nodata") input.nodata = std::stod(checked_text(path, k, value, Type::number));
