@@ -41,23 +41,23 @@ std::vector<std::string> expand_glob(const std::string& pattern) {
   if (status == 0)
     for (std::size_t i = 0; i < result.gl_pathc; ++i) paths.emplace_back(result.gl_pathv[i]);
   globfree(&result);
+  // The pattern's folder where it is a plain path (no glob characters), for the messages below.
+  std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
+  if (has_glob_characters(folder.string())) folder.clear();
+  std::error_code ec;
   if (status == GLOB_NOMATCH || (status == 0 && paths.empty())) {
     // "survey[2021]/*.tif": the brackets are a glob's character class, matching one character.
     if (pattern.find('[') != std::string::npos && pattern.find(']') != std::string::npos)
       throw InputError(pattern, "no file matches this pattern ([...] matches one character of a set; a folder "
                                 "or file name with brackets needs each written as [[] and []])");
     // "ndvi.tif/*.tif": the folder part is a file.
-    const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
-    std::error_code ec;
-    if (!folder.empty() && !has_glob_characters(folder.string()) && std::filesystem::is_regular_file(folder, ec))
+    if (!folder.empty() && std::filesystem::is_regular_file(folder, ec))
       throw InputError(pattern, "no file matches this pattern: " + folder.string() + " is a file, not a folder");
     throw InputError(pattern, "no file matches this pattern");
   }
   if (status != 0) {
     // GLOB_ERR stops at a folder it cannot read: say which, when the pattern's folder is missing.
-    const std::filesystem::path folder = std::filesystem::path(pattern).parent_path();
-    if (!folder.empty() && !has_glob_characters(folder.string()) &&
-        !std::filesystem::exists(folder))
+    if (!folder.empty() && !std::filesystem::exists(folder, ec))
       throw InputError(pattern, "no file matches this pattern: the folder " + folder.string() + " does not exist");
     throw InputError(pattern, "cannot list the files of this pattern" +
                                   (glob_failure.empty() ? std::string() : " (" + glob_failure + ")"));

@@ -74,6 +74,13 @@ std::int64_t mtime_ns(const struct stat& st) {
   return std::max(modified, changed);
 }
 
+// Whether `path` is as the database last saw it (same size and change time), so that its
+// recorded checksum, or its recorded fault, still holds.
+bool unchanged_since(const std::string& path, const std::optional<detail::InputRecord>& known) {
+  struct stat st {};
+  return known && ::stat(path.c_str(), &st) == 0 && known->size == st.st_size && known->mtime_ns == mtime_ns(st);
+}
+
 // Checksums, reused from the database while size and change time are unchanged.
 std::string checksum_of(const std::string& path, const detail::StateDatabase* db, Scan& scan) {
   if (auto it = scan.checksum.find(path); it != scan.checksum.end()) return it->second;
@@ -329,10 +336,7 @@ class Runner {
     std::vector<std::string> left_out;
     if (!db_) return left_out;
     for (const auto& [path, reason] : db_->skipped()) {
-      struct stat st {};
-      const auto known = db_->input(path);
-      if (!known || ::stat(path.c_str(), &st) != 0 || known->size != st.st_size || known->mtime_ns != mtime_ns(st))
-        continue;
+      if (!unchanged_since(path, db_->input(path))) continue;
       excluded_.push_back(path);
       left_out.push_back(path + ": " + reason);
       report_.skipped_inputs.push_back(left_out.back());
@@ -508,9 +512,7 @@ class Runner {
         const detail::StateDatabase shard_db(shard_state.string(), true);
         for (const auto& [path, reason] : shard_db.skipped()) {
           if (!options_.skip_bad) {
-            struct stat st {};
-            const auto known = shard_db.input(path);
-            if (known && ::stat(path.c_str(), &st) == 0 && known->size == st.st_size && known->mtime_ns == mtime_ns(st))
+            if (unchanged_since(path, shard_db.input(path)))
               throw InputError(path, reason + "; shard " + std::to_string(k) +
                                          " left it out (--skip-bad): give --finalize --skip-bad too, or repair the "
                                          "file and run the shards again");
