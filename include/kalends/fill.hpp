@@ -52,7 +52,8 @@ struct FillRequest {
   /// refuse instead). For a budget the user did not choose; FillSummary says when it was used.
   std::int64_t memory_ceiling = 0;
   /// Only check the options, the input and the memory budget, then return an empty summary:
-  /// nothing is written (validate checks every method before it runs the first).
+  /// no folder is made and nothing is written (validate checks every method before it runs the
+  /// first; a job run, --dry-run and `kalends plan` check every fill step before the first step).
   bool check_only = false;
   int threads = 0;  // 0 = all cores
   Compression compression = Compression::deflate;

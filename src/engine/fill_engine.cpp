@@ -174,14 +174,16 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   detail::require_own_text_file((fs::path(request.out_dir) / "fill-summary.json").string(), "\"pixel_dates\"");
   detail::require_own_text_file((fs::path(request.out_dir) / "fill-years.tsv").string(), "# grid ");
   // Output names: one per input date, plus the regular calendar.
-  const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
+  // Removed again if the run fails before writing; a check alone makes nothing.
+  std::optional<detail::OutputFolder> output_folder;
+  if (!request.check_only) output_folder.emplace(request.out_dir);
   std::vector<detail::PeriodMean> periods;
   std::string calendar_dir;
   std::optional<detail::OutputFolder> calendar_folder;  // inside output_folder, so removed before it
   if (request.every) {
     periods = detail::period_means(grid, *request.every, request.marks);
     calendar_dir = (fs::path(request.out_dir) / ("calendar-" + request.every->label())).string();
-    calendar_folder.emplace(calendar_dir);
+    if (!request.check_only) calendar_folder.emplace(calendar_dir);
   }
   // Years: with a reach, each is filled from its own slice of the grid, and a run may redo
   // only some of them.
@@ -353,7 +355,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     budget = one_block;
     share = detail::share_memory(budget, 1, bytes_per_pixel, int(read_files.size()), int(specs.size()));
   }
-  if (request.check_only) return FillSummary{};  // the folders made above are empty, and go
+  if (request.check_only) return FillSummary{};
   detail::set_gdal_cache(share.gdal_cache);
   // A method with a halo works block by block on single tiles (or full-width strips of one tile
   // row where the raster is narrower than a tile and its halo), however large the budget: its

@@ -177,6 +177,7 @@ Job read_job(const std::string& path) {
       }
       else if (k == "memory") {
         job.memory = checked_text(path, k, node, Type::text);
+        job.memory_line = int(node.source().begin.line);
         // Checked here, so that --dry-run and `kalends plan` catch it, naming the line.
         try {
           parse_memory_size(job.memory);

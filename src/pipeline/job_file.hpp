@@ -32,6 +32,7 @@ struct Job {
   std::string name, out;
   int threads = 0;
   std::string memory = "1G";
+  int memory_line = 0;  // where the job file sets it; 0: the default
   std::map<std::string, JobInput> inputs;
   std::vector<JobStep> steps;
 };

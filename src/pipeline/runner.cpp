@@ -159,6 +159,54 @@ ValueRules rules_of(const JobInput& input) {
 
 std::string step_folder(const std::string& out, const std::string& id) { return (fs::path(out) / id).string(); }
 
+detail::ResolvedInput resolve_job_input(const JobInput& input, const std::vector<std::string>& excluded) {
+  detail::ResolvedInput r;
+  r.pattern = input.stack;
+  r.qa = input.qa;
+  r.keep = input.keep;
+  r.qa_band = input.qa_band;
+  r.rules = rules_of(input);
+  r.rules.exclude = excluded;
+  return r;
+}
+
+// Where a budget error points: the job file's line, or the default it fell back to.
+std::string memory_key(const Job& job) {
+  return job.memory_line > 0 ? fmt::format("{}:{}: [job] memory", job.path, job.memory_line)
+                             : fmt::format("{}: [job] memory (not set: {})", job.path, job.memory);
+}
+
+// Every step that reads job inputs alone and whose kind can check its budget, checked before
+// the first step runs: a job whose third fill cannot hold one block fails at once, not after
+// hours of the first two (nor in every task of a cluster array). `wanted` says whether a step
+// is to be checked and for which rows. Input errors are left to the step itself (--skip-bad).
+void check_budgets(const Job& job, const std::string& base, std::int64_t memory, int threads,
+                   const std::vector<std::string>& excluded,
+                   const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted) {
+  for (const JobStep& step : job.steps) {
+    const detail::StepKind* kind = detail::find_step_kind(step.kind);
+    if (!kind || !kind->check_memory || step.inputs.empty() ||
+        !std::all_of(step.inputs.begin(), step.inputs.end(), [&](const std::string& n) { return job.inputs.count(n) > 0; }))
+      continue;
+    std::optional<Window> region;
+    if (!wanted(step, region)) continue;
+    detail::StepContext context{step.options};
+    context.job_path = job.path;
+    context.folder = step_folder(base, step.id);
+    context.memory_bytes = memory;
+    context.threads = threads;
+    context.region = region;
+    context.resolve = [&](const std::string& name) { return resolve_job_input(job.inputs.at(name), excluded); };
+    try {
+      kind->check_memory(context);
+    } catch (const UsageError& e) {
+      if (e.where() == "--memory") throw UsageError(memory_key(job), fmt::format("step '{}': {}", step.id, e.reason()));
+    } catch (const Error&) {
+      // reported by the step when it runs, in the job's words
+    }
+  }
+}
+
 // The hidden .partial files a run writes before renaming them into place; a killed run
 // leaves them behind.
 std::vector<fs::path> partials(const std::string& folder) {
@@ -240,6 +288,16 @@ class Runner {
     for (const JobStep& step : job_.steps)
       if (const auto record = db_->step(step.id); record && record->status == "done")
         recorded_at_start_[step.id] = record->fingerprint;
+    // The budgets of the steps that will run, before the first of them (--finalize only stitches
+    // the split steps, whose budgets `kalends plan` checked).
+    check_budgets(job_, base_, cli_memory(), options_.threads > 0 ? options_.threads : job_.threads, excluded_,
+                  [&](const JobStep& step, std::optional<Window>& region) {
+                    const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
+                    if (planned && (shard_ ? !planned->split : planned->split)) return false;
+                    if (up_to_date(step)) return false;
+                    if (shard_) region = plan_->window(planned->root, shard_);
+                    return true;
+                  });
     for (const JobStep& step : job_.steps) {
       StepReport r;
       r.id = step.id;
@@ -264,7 +322,7 @@ class Runner {
         const bool usage = dynamic_cast<const UsageError*>(&caught) != nullptr;
         const bool input = dynamic_cast<const InputError*>(&caught) != nullptr;
         const Error e = usage && caught.where() == "--memory"
-                            ? UsageError(job_.path + ": [job] memory", caught.reason())
+                            ? UsageError(memory_key(job_), caught.reason())
                         : usage ? UsageError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                         : input ? InputError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                                 : caught;
@@ -819,14 +877,9 @@ class Runner {
   }
 
   detail::ResolvedInput resolve(const std::string& name) {
+    if (auto in = job_.inputs.find(name); in != job_.inputs.end()) return resolve_job_input(in->second, excluded_);
     detail::ResolvedInput r;
-    if (auto in = job_.inputs.find(name); in != job_.inputs.end()) {
-      r.pattern = in->second.stack;
-      r.qa = in->second.qa;
-      r.keep = in->second.keep;
-      r.qa_band = in->second.qa_band;
-      r.rules = rules_of(in->second);
-    } else {
+    {
       std::string folder = step_folder(base_, name);
       // A tiled fill is read through its mosaic: one VRT per date over the tiles.
       for (const JobStep& s : job_.steps)
@@ -837,6 +890,11 @@ class Runner {
     }
     r.rules.exclude = excluded_;
     return r;
+  }
+
+  bool up_to_date(const JobStep& step) {
+    const auto record = db_->step(step.id);
+    return record && record->status == "done" && record->fingerprint == fingerprint_of(step) && outputs_exist(*record);
   }
 
   void run_step(const JobStep& step, StepReport& report) {
@@ -1043,6 +1101,14 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   PlanReport report;
   const detail::ShardPlan plan =
       detail::make_shard_plan(job, out, shards, options.threads, &left_out, options.skip_bad ? &report.skipped_inputs : nullptr);
+  // A budget too small for one block of a split step: found here, not by every array task.
+  check_budgets(job, plan.shard_folder(1), parse_memory_size(job.memory), plan.threads, left_out,
+                [&](const JobStep& step, std::optional<Window>& region) {
+                  const detail::PlannedStep* planned = plan.step(step.id);
+                  if (!planned || !planned->split) return false;
+                  region = plan.window(planned->root, 1);
+                  return true;
+                });
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());

@@ -98,6 +98,12 @@ struct StepKind {
   /// it is read (and `--dry-run`), not hours into an unattended run.
   std::function<void(const StepContext&)> check_values;
   std::function<StepOutcome(const StepContext&)> run;
+  /// Opens the step's inputs and throws UsageError("--memory") where the run's budget cannot
+  /// hold one block, writing nothing; nullptr where a kind has no such check. A job run,
+  /// --dry-run and `kalends plan` call it for every step that reads job inputs alone, before
+  /// the first step runs, so that an unattended job or a cluster array fails at once rather
+  /// than hours in.
+  std::function<void(const StepContext&)> check_memory;
   /// A reminder shown with the step's outputs however they were made (run, or stitched from
   /// shards): suitability's; nullptr for most kinds.
   const char* caution = nullptr;

@@ -146,12 +146,45 @@ class JobFile(kt.TempDirTestCase):
             done = run(job)
             self.assertEqual(done.returncode, 2, done.stderr)
             line = done.stderr.strip().splitlines()[-1]
-            self.assertIn("small.toml: [job] memory: budget of 8 MiB is too small", line)
+            # The key's line: a job file may be long.
+            self.assertRegex(line, r"small\.toml:3: \[job\] memory: (step 'fill': )?budget of 8 MiB is too small")
             need = re.search(r"(\d+) MiB would do", line).group(1)
             with open(job, "w") as f:
                 f.write(text.format(need + "M"))
             done = run(job)
             self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_a_later_steps_budget_is_checked_before_the_first_step_runs(self):
+        # A budget that holds a Whittaker fill's block but not a spacetime fill's, whose halo
+        # makes its block larger (110 MiB; 101 would do for Whittaker and 132 for spacetime at
+        # 0.3.15): the run, --dry-run and `kalends plan` all refuse at once,
+        # naming the later step; the first step had run for its whole time before the run
+        # reached the second (and every array task of a plan failed the same way).
+        folder = os.path.join(self.tmp, "later")
+        make_job(folder, size=64)
+        job = os.path.join(folder, "later.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\nthreads = 1\nmemory = "110M"\n\n[inputs.ndvi]\n'
+                    'stack = "stack/ndvi/ndvi_*.tif"\n\n'
+                    '[[step]]\nid = "smooth"\ndo = "fill"\ninput = "ndvi"\nmethod = "whittaker"\n\n'
+                    '[[step]]\nid = "joint"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n')
+        out = os.path.join(folder, "out")
+        for args in (["run", job, "--dry-run"], ["plan", job, "--shards", "1"], ["run", job]):
+            done = subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300)
+            self.assertEqual(done.returncode, 2, (args, done.stdout, done.stderr))
+            line = done.stderr.strip().splitlines()[-1]
+            self.assertRegex(line, r"later\.toml:4: \[job\] memory: step 'joint': budget of 110 MiB is too small "
+                                   r"for one block .*; \d+ MiB would do", args)
+            self.assertFalse(glob.glob(os.path.join(out, "smooth", "*.tif")), args)
+            self.assertFalse(os.path.exists(os.path.join(out, ".kalends", "plan.tsv")), args)
+        self.assertFalse(os.path.exists(os.path.join(out, "joint")))
+        # The default budget is named as such when the file sets none.
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace('memory = "110M"', 'name = "later"'))
+        # 1G holds the spacetime block of 64 x 64 px: both steps run.
+        self.assertEqual(run(job).returncode, 0)
 
     def test_a_compare_step_takes_the_layer_set_by_name(self):
         # 'name' as compare's --name (it had been an unknown key): the set the seasons step

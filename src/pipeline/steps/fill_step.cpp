@@ -255,6 +255,12 @@ StepKind fill_step_kind() {
     check_options_apply({r.method.method}, given);
     make_fill_method(r.method);  // each method checks its own options
   };
+  kind.check_memory = [](const StepContext& c) {
+    if (c.has("tiles")) return;  // each tile is its own stack, checked as it runs
+    FillRequest r = fill_request(c);
+    r.check_only = true;
+    run_fill(r);
+  };
   kind.run = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
     if (c.has("tiles")) {
