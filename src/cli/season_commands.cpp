@@ -99,8 +99,9 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
     r.command_line = global.command_line;
     const SeasonsSummary s = run_seasons(r);
     if (!global.quiet)
-      fmt::print("kalends seasons: {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
-                 s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds, r.out_dir, s.files);
+      fmt::print("kalends seasons: {} year{} ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
+                 s.years, s.years == 1 ? "" : "s", s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
+                 r.out_dir, s.files);
     for (const std::string& note : seasons_notes(r, s)) std::fprintf(stderr, "note: %s\n", note.c_str());
     note_month_end_dates(s.dates_at_month_ends, r.marks);
   };

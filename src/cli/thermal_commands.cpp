@@ -211,9 +211,9 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
     const SuitabilitySummary s = run_suitability(r);
     if (!global.quiet) {
       fmt::print(
-          "kalends suitability: {}\n  {} years ({}-{}) x {} periods of {} x {} px in {:.1f} s -> "
+          "kalends suitability: {}\n  {} year{} ({}-{}) x {} periods of {} x {} px in {:.1f} s -> "
           "{} ({} files)\n",
-          s.model, s.years, s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
+          s.model, s.years, s.years == 1 ? "" : "s", s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
           r.out_dir, s.files);
       const char* periods = r.period.kind == CalendarPeriod::Kind::month ? "months" : "periods";
       if (std::isfinite(s.mean_suitable_periods))

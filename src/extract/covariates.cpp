@@ -53,20 +53,6 @@ std::string trim_separators(std::string s) {
   return s;
 }
 
-Grid grid_of(GDALDataset& ds) {
-  Grid g;
-  g.width = ds.GetRasterXSize();
-  g.height = ds.GetRasterYSize();
-  g.has_geotransform = ds.GetGeoTransform(g.geotransform.data()) == CE_None;
-  if (const OGRSpatialReference* srs = ds.GetSpatialRef()) {
-    char* wkt = nullptr;
-    srs->exportToWkt(&wkt);
-    g.crs_wkt = wkt ? wkt : "";
-    CPLFree(wkt);
-  }
-  return g;
-}
-
 void collect(const fs::path& root, const std::string& prefix, std::vector<Scanned>& out) {
   std::error_code ec;
   if (fs::is_regular_file(root, ec)) {
@@ -136,7 +122,7 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     std::vector<std::string> descriptions;
     for (int b = 1; b <= bands; ++b) descriptions.push_back(ds->GetRasterBand(b)->GetDescription());
     auto fill_common = [&](CovariateSeries& c) {
-      c.grid = grid_of(*ds);
+      c.grid = detail::raster_grid(*ds);
       c.unit = ds->GetRasterBand(c.band)->GetUnitType();
       c.caution = item(*ds, "KALENDS_CAUTION");
       c.description = item(*ds, "KALENDS_LAYER");
@@ -164,7 +150,7 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       }
       c.files.push_back({s.path, *time, 0, item(*ds, "KALENDS_PERIOD_DAYS_COVERED") == "0"});
       if (c.files.size() == 1) fill_common(c);
-      else require_same_grid(c.grid, grid_of(*ds), s.path);
+      else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
     } else if (periodic) {
       const CalendarPeriod period = period_of_file();
       std::string stem = s.stem;
@@ -180,7 +166,7 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       if (c.kind == SeriesKind::synoptic_period && c.files.size() > 1)
         throw InputError(s.path, "a second synoptic file for the series '" + c.name + "'");
       if (c.files.size() == 1) fill_common(c);
-      else require_same_grid(c.grid, grid_of(*ds), s.path);
+      else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
     } else if ((period_text.empty() && year_text.empty()) || include_descriptors) {
       for (int b = 1; b <= bands; ++b) {
         std::string name = prefix + s.stem;

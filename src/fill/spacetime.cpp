@@ -95,7 +95,7 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
   if (options.spacetime_halo < 0 || options.spacetime_halo > 1024)
     throw UsageError("--halo", "must be 0..1024 pixels");
   if (!(options.spacetime_tolerance > 0 && options.spacetime_tolerance < 1))
-    throw UsageError("--tolerance", "must be between 0 and 1");
+    throw UsageError("--tolerance", "must lie strictly between 0 and 1");
   if (options.robust && options.iterations < 1) throw UsageError("--iterations", "must be >= 1");
 }
 

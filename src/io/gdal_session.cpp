@@ -139,6 +139,19 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   return dataset;
 }
 
+std::string band_label(const std::string& path, int band) {
+  std::string label;
+  const GDALDatasetUniquePtr dataset = open_raster(path);
+  if (band >= 1 && band <= dataset->GetRasterCount())
+    for (char c : std::string(dataset->GetRasterBand(band)->GetDescription())) {
+      const unsigned char u = static_cast<unsigned char>(c);
+      if (std::isalnum(u)) label += char(std::tolower(u));
+      else if (!label.empty() && label.back() != '_') label += '_';
+    }
+  while (!label.empty() && label.back() == '_') label.pop_back();
+  return label.empty() ? "band" + std::to_string(band) : label;
+}
+
 std::string crs_name_of(const std::string& wkt) {
   if (wkt.empty()) return "";
   OGRSpatialReference srs;

@@ -9,6 +9,8 @@
 #include <map>
 #include <string>
 
+#include "kalends/stack.hpp"
+
 namespace kalends::detail {
 
 /// Registers drivers once and routes GDAL's messages into its per-thread last-error slot
@@ -40,5 +42,12 @@ void require_not_cut_short(const std::string& file);
 
 /// Opens a raster read-only; InputError naming `path` if it cannot.
 GDALDatasetUniquePtr open_raster(const std::string& path);
+
+/// A raster's grid as a stack reads it: size, geotransform (identity where it has none; see
+/// has_geotransform) and CRS (WGS 84 for a NetCDF with CF longitude/latitude axes and no CRS).
+Grid raster_grid(GDALDataset& dataset);
+
+/// A band's description made fit for a file name ("sd", "flag"), else "band<N>".
+std::string band_label(const std::string& path, int band);
 
 }  // namespace kalends::detail

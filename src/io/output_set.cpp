@@ -188,7 +188,7 @@ void require_out_apart_from(const Stack& stack, const std::string& out_dir, cons
     const fs::path folder = fs::weakly_canonical(fs::absolute(file, ec).parent_path(), ec);
     if (!ec && folder == out)
       throw UsageError("--out", "'" + out_dir + "' holds the " + option + " files themselves (" + file.filename().string() +
-                                    "): the outputs would replace them; give another folder");
+                                    "): the outputs would lie among them, or replace them; give another folder");
   }
 }
 

@@ -320,6 +320,10 @@ bool same_crs(const std::string& a, const std::string& b) {
 
 }  // namespace
 
+namespace detail {
+Grid raster_grid(GDALDataset& dataset) { return grid_of(dataset); }
+}  // namespace detail
+
 Grid window_grid(const Grid& grid, const Window& window) {
   Grid g = grid;
   g.width = window.width;

@@ -148,8 +148,16 @@ CompareSummary run_compare(const CompareRequest& request) {
   std::map<long, std::pair<std::vector<float>, std::vector<float>>> zones;
   if (!request.zones.empty()) {
     GDALDatasetUniquePtr z = detail::open_raster(request.zones);
-    if (z->GetRasterXSize() != width || z->GetRasterYSize() != height)
-      throw InputError(request.zones, "zone raster is not on the grid of " + miss_path);
+    // The same size is not enough: zones of another place or CRS would be summarised silently.
+    const Grid layers = detail::raster_grid(*miss), zone_grid = detail::raster_grid(*z);
+    if (layers.has_geotransform != zone_grid.has_geotransform)
+      throw InputError(request.zones, std::string("zone raster ") + (zone_grid.has_geotransform ? "is" : "is not") +
+                                          " georeferenced, " + miss_path + (layers.has_geotransform ? " is" : " is not"));
+    try {
+      require_same_grid(layers, zone_grid, request.zones, miss_path);
+    } catch (const InputError& e) {
+      throw InputError(request.zones, "zone raster is not on the grid of the layers: " + e.reason());
+    }
     const std::vector<float> zone = read_band(*z, 1, request.zones);
     int has_nodata = 0;
     const double nodata = z->GetRasterBand(1)->GetNoDataValue(&has_nodata);
@@ -318,9 +326,16 @@ CompareSummary run_compare(const CompareRequest& request) {
   for (const auto& [label, d] : {std::pair{"synoptic RMSE", r}, std::pair{"explained share", e}})
     md += fmt::format("| {} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} | {:.4g} |\n", label, d.mean, d.quantiles[0],
                       d.quantiles[1], d.quantiles[2], d.quantiles[3], d.quantiles[4]);
+  md += fmt::format("\nHistogram of the synoptic RMSE (bins of {:.4g}; the last also holds everything above the 99th "
+                    "percentile):\n\n| from | to | pixels |\n|---|---|---|\n",
+                    top_edge / bins);
+  for (int b = 0; b < bins; ++b)
+    md += fmt::format("| {:.4g} | {} | {} |\n", top_edge * b / bins,
+                      b + 1 < bins ? fmt::format("{:.4g}", top_edge * (b + 1) / bins) : std::string("and above"),
+                      histogram[std::size_t(b)]);
   if (!summary.stale_years.empty())
-    md += fmt::format("\nLeft out: the anomaly files of {}, outside the synoptic's years ({}), left in the folder by "
-                      "an earlier `kalends seasons` run.\n",
+    md += fmt::format("\nLeft out: the anomaly files of {}, outside the synoptic's years ({}): found in the folder "
+                      "(an earlier `kalends seasons` run's, or copied in), they are not this synoptic's.\n",
                       fmt::join(summary.stale_years, ", "), summary.synoptic_years);
   md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
   for (const auto& [year, s] : per_year)

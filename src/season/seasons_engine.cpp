@@ -68,9 +68,9 @@ struct Worker {
 void check_seasons_options(const SeasonsRequest& request) {
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!(request.cycle.prominence_share > 0 && request.cycle.prominence_share < 1))
-    throw UsageError("--prominence", "must be between 0 and 1");
+    throw UsageError("--prominence", "must lie strictly between 0 and 1");
   if (!(request.cycle.threshold_share > 0 && request.cycle.threshold_share < 1))
-    throw UsageError("--threshold", "must be between 0 and 1");
+    throw UsageError("--threshold", "must lie strictly between 0 and 1");
 }
 
 std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary) {
@@ -111,6 +111,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const auto started = std::chrono::steady_clock::now();
   check_seasons_options(request);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
+  detail::require_out_apart_from(stack, request.out_dir, "input");
   const std::vector<TimePoint> times = stack.times();
   // The days a composite stands for come from the spacing of the dates; one date has none.
   if (times.size() < 2)
@@ -135,7 +136,11 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
 
   const Grid& grid = stack.grid();
   const Window area = area_of(grid.width, grid.height, request.region, request.input);
-  const std::string name = request.name.empty() ? stack.name() : request.name;
+  // Another band than the first (a fill's sd or flag) is named after the band, so that its
+  // layers do not replace the values' under the same names.
+  const std::string name = !request.name.empty()    ? request.name
+                           : request.rules.band == 1 ? stack.name()
+                                                     : stack.name() + "_" + detail::band_label(stack.layers().front().path, request.rules.band);
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 
   // Output layout: index of each file, its bands.
@@ -152,9 +157,12 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                      {"KALENDS_THRESHOLD_SHARE", fmt::format("{:g}", request.cycle.threshold_share)}};
     if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
     for (const auto& [k, v] : extra) spec.metadata[k] = v;
-    // The span of years only where a layer depends on every year, so that a year's own layers
-    // stay valid when another year is added.
-    if (!spec.metadata.count("KALENDS_YEAR")) spec.metadata["KALENDS_YEARS"] = fmt::format("{}-{}", first_year, last_year);
+    // The span of years only where a layer depends on every year (anomalies do: they are
+    // measured from the synoptic), so that a year's own layers stay valid when another year is
+    // added.
+    if (!spec.metadata.count("KALENDS_YEAR") || suffix.starts_with("anomaly_"))
+      spec.metadata["KALENDS_YEARS"] = fmt::format("{}-{}", first_year, last_year);
+    if (request.rules.band != 1) spec.metadata["KALENDS_BAND"] = std::to_string(request.rules.band);
     for (const std::string& b : band_names) spec.bands.push_back({b, "", {}});
     specs.push_back(std::move(spec));
     return specs.size() - 1;
@@ -192,6 +200,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     if (f != not_written)
       for (auto& b : specs[f].bands) b.unit = unit;
   for (std::size_t f : {synoptic_mean, synoptic_sd}) for (auto& b : specs[f].bands) b.unit = unit;
+  for (std::size_t f : anomaly_file) for (auto& b : specs[f].bands) b.unit = unit;
+  specs[miss].bands[0].unit = unit;  // the RMSE; the shares have none
   // Cycle bands: values in the input's unit, days of year, lengths in days, integrals in
   // unit x days; the season count has none.
   std::vector<std::size_t> cycles{cycle_synoptic};

@@ -52,6 +52,7 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
     throw UsageError("--temperature",
                      "kalends diurnal rebuilds hours from --tmin/--tmax or --day/--night");
   const detail::TemperatureSource source = detail::TemperatureSource::open(request.inputs);
+  for (const Stack& input : source.stacks) detail::require_out_apart_from(input, request.out_dir, "input");
   if (source.sub_daily)
     throw UsageError("inputs",
                      "kalends diurnal needs one layer per day or composite, not sub-daily layers");

@@ -104,6 +104,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const auto [table, model] = checked_options(request);
   const DiurnalParameters diurnal = DiurnalParameters::from(table);
   const detail::TemperatureSource source = detail::TemperatureSource::open(request.inputs);
+  for (const Stack& input : source.stacks) detail::require_out_apart_from(input, request.out_dir, "input");
   using Mode = detail::TemperatureSource::Mode;
 
   const std::vector<TimePoint>& times = source.times;

@@ -212,7 +212,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   detail::start_gdal();
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
   if (!(request.withhold > 0 && request.withhold < 1))
-    throw UsageError("--withhold", "must be between 0 and 1");
+    throw UsageError("--withhold", "must lie strictly between 0 and 1");
   if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
   if (request.series_pixels < 0) throw UsageError("--series", "must be 0 or more");
   std::map<std::string, MethodParameters> parameters;

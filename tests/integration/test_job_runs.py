@@ -322,7 +322,7 @@ class JobFile(kt.TempDirTestCase):
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
              ["'pixels' 'ten 20'", "COLUMN ROW"]),
             (good.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nprominence = 1.5'),
-             lines.index('do = "seasons"') + 3, ["'prominence'", "between 0 and 1"]),
+             lines.index('do = "seasons"') + 3, ["'prominence'", "strictly between 0 and 1"]),
             (good + '\n[[step]]\ndo = "suitability"\ntemperature = "fill"\nmodel = "window"\nwindow = [30.0, 20.0]\n',
              n + 5, ["'window'", "must be below"]),
             # Files a step reads and a points CRS: they had failed only when the step ran, after

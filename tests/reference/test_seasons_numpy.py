@@ -244,6 +244,21 @@ class SeasonsCommand(kt.TempDirTestCase):
             values = miss[0][(zones == zone) & np.isfinite(miss[0])]
             self.assertAlmostEqual(by_zone[zone]["synoptic_rmse"]["p50"], float(np.median(values)), places=5)
             self.assertEqual(by_zone[zone]["synoptic_rmse"]["count"], values.size)
+        # Zones of the same size elsewhere, in another CRS, or without georeferencing are refused,
+        # naming the file (they had been summarised as if they lay on the layers' pixels).
+        for name, geotransform, epsg in (("shifted", (700000, 250, 0, 9000000, 0, -250), 32736),
+                                         ("other-crs", (500000, 250, 0, 9000000, 0, -250), 32636),
+                                         ("plain", None, None)):
+            path = os.path.join(self.tmp, name + ".tif")
+            kt.write_raster(path, zones, geotransform=geotransform, epsg=epsg)
+            done = kt.run_kalends(["-q", "compare", self.out, "--out", out + "-" + name, "--zones", path])
+            self.assertEqual(done.returncode, 2, (name, done.stderr))
+            self.assertRegex(done.stderr.strip(), r"^kalends: .*%s\.tif: zone raster is (not on the grid|not georef)" % name)
+            self.assertFalse(os.path.exists(out + "-" + name))
+        # The report's table holds the histogram too (docs/outputs.md), its counts as in the JSON.
+        with open(os.path.join(out, "compare.md")) as f:
+            rows = [line for line in f if line.startswith("| ") and line.count("|") == 4 and "from" not in line]
+        self.assertEqual([int(r.split("|")[3]) for r in rows], report["rmse_histogram"]["counts"])
         # A zone raster of fractions (a share, not zones) is refused, not rounded into zones.
         fractions = os.path.join(self.tmp, "fractions.tif")
         kt.write_raster(fractions, np.full(miss.shape[1:], 0.37, np.float32),
@@ -256,6 +271,56 @@ class SeasonsCommand(kt.TempDirTestCase):
         expected = np.where(share < 0.25, 0, np.where(share < 0.5, 1, np.where(share < 0.75, 2, 3)))
         ok = np.isfinite(share)
         np.testing.assert_array_equal(classes[ok], expected[ok])
+
+    def test_anomalies_name_their_synoptic_years(self):
+        # An anomaly depends on every year through the synoptic: its file says which years.
+        g = kt.gdal()
+        for name in ("ndvi_anomaly_2011.tif", "ndvi_anomaly_standardised_2011.tif"):
+            ds = g.Open(os.path.join(self.out, name))
+            self.assertEqual(ds.GetMetadataItem("KALENDS_YEARS"), "2010-2012", name)
+            self.assertEqual(ds.GetMetadataItem("KALENDS_YEAR"), "2011", name)
+        year = g.Open(os.path.join(self.out, "ndvi_year_2011.tif"))
+        self.assertIsNone(year.GetMetadataItem("KALENDS_YEARS"))
+
+
+    def test_another_band_gets_its_own_names_and_the_input_folder_is_not_an_output(self):
+        # Two bands as a fill writes them (value, sd): --band 2 had written its layers under the
+        # values' names, replacing them without a word.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "two-bands")
+        os.makedirs(folder)
+        for d, v in zip(self.dates, self.values):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "ndvi_%s.tif" % d.isoformat()),
+                                                   v.shape[1], v.shape[0], 2, g.GDT_Float32)
+            ds.SetGeoTransform((500000, 250, 0, 9000000, 0, -250))
+            for b, (data, description) in enumerate(((v, "value"), (0.1 * v, "sd")), start=1):
+                band = ds.GetRasterBand(b)
+                band.SetDescription(description)
+                band.SetUnitType("NDVI")
+                band.SetNoDataValue(float("nan"))
+                band.WriteArray(data.astype(np.float32))
+            ds = None
+        out = os.path.join(self.tmp, "two-bands-seasons")
+        for extra in ([], ["--band", "2"]):
+            done = kt.run_kalends(["-q", "seasons", folder, "--out", out] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+        values = g.Open(os.path.join(out, "ndvi_synoptic_mean.tif"))
+        sds = g.Open(os.path.join(out, "ndvi_sd_synoptic_mean.tif"))
+        self.assertIsNone(values.GetMetadataItem("KALENDS_BAND"))
+        self.assertEqual(sds.GetMetadataItem("KALENDS_BAND"), "2")
+        np.testing.assert_allclose(values.ReadAsArray(), self.read("ndvi_synoptic_mean.tif"), rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(sds.ReadAsArray(), 0.1 * values.ReadAsArray(), rtol=1e-4, atol=1e-6)
+        # Anomalies and the synoptic RMSE are in the input's unit (they had none); shares have none.
+        anomaly = g.Open(os.path.join(out, "ndvi_anomaly_2011.tif"))
+        miss = g.Open(os.path.join(out, "ndvi_synoptic_miss.tif"))
+        self.assertEqual([anomaly.GetRasterBand(1).GetUnitType(), miss.GetRasterBand(1).GetUnitType(),
+                          miss.GetRasterBand(2).GetUnitType()], ["NDVI", "NDVI", ""])
+        # The stack's own folder as --out: refused before anything is written there.
+        before = sorted(os.listdir(folder))
+        done = kt.run_kalends(["-q", "seasons", folder, "--out", folder])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("holds the input files themselves", done.stderr)
+        self.assertEqual(sorted(os.listdir(folder)), before)
 
     def test_outputs_keep_the_grid(self):
         g = kt.gdal()
