@@ -80,6 +80,8 @@ struct FillSummary {
                unfilled = 0;
   std::int64_t pixels_never_observed = 0;
   std::int64_t pixels_without_value = 0;  // flag 3 on every date (nothing within reach)
+  bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
+  std::int64_t memory_for_one_block = 0;  // check_only: the smallest budget that holds one block
   /// Pixels (pixel-years with a reach) with observations that the method could not fit, by
   /// the method's reason.
   std::map<std::string, std::int64_t> series_not_fitted;

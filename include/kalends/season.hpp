@@ -20,6 +20,10 @@ namespace kalends {
 /// month's own. Commands say so when they read such dates as starts.
 bool dates_at_month_ends(const std::vector<TimePoint>& dates);
 
+/// The note commands give on such dates read as starts; `option` is how to ask for ends
+/// ("--date-marks end", or a job file's key).
+std::string month_end_note(const std::string& option);
+
 /// "2004-2009" or "2006" -> first and last year; UsageError otherwise.
 std::pair<int, int> parse_years(const std::string& text);
 

@@ -1,10 +1,12 @@
 // The gap-filling method's options and the value rules, shared by `kalends fill` and
 // `kalends validate` (a method is scored with the settings it would fill with).
 #include <algorithm>
+#include <cstdio>
 
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
+#include "kalends/season.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends::cli {
@@ -137,6 +139,11 @@ void apply_value_rule_options(ValueRules& rules, const ValueRuleTexts& t) {
     rules.valid_min = low;
     rules.valid_max = high;
   }
+}
+
+void note_month_end_dates(bool dates_at_month_ends, DateMarks marks) {
+  if (!dates_at_month_ends || marks != DateMarks::start) return;
+  std::fprintf(stderr, "Note: %s.\n", month_end_note("--date-marks end").c_str());
 }
 
 }  // namespace kalends::cli

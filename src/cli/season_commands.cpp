@@ -58,13 +58,6 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   };
 }
 
-void note_month_end_dates(bool dates_at_month_ends, DateMarks marks) {
-  if (!dates_at_month_ends || marks != DateMarks::start) return;
-  std::fprintf(stderr,
-               "Note: every input date is the last day of its month. If they stamp monthly means (as CF "
-               "files often do), give --date-marks end: read as starts, each stands for the month after.\n");
-}
-
 Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("seasons", "Synoptic and year-specific layers, anomalies, cycle descriptors");
   struct Options {

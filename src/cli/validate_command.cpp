@@ -1,6 +1,8 @@
 // kalends validate PATTERN --out DIR [--methods a,b,c] [--seed N] [--withhold SHARE]
 //                  [--qa QA --keep RULE] [--subset C,R,W,H] [method options]
 #include <algorithm>
+#include <cstdio>
+#include <filesystem>
 
 #include <fmt/format.h>
 
@@ -28,7 +30,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md, series.csv)")->required();
   sub->add_option("--methods", o->methods, "Comma-separated methods to score")->capture_default_str();
   sub->add_option("--seed", r.seed, "Seed of the mask transplant (same seed, same cells)")
-      ->capture_default_str();
+      ->capture_default_str()->check(CLI::NonNegativeNumber);
   sub->add_option("--withhold", r.withhold, "Share of the observed values to withhold")
       ->capture_default_str();
   sub->add_option("--radius", r.neighbourhood_radius,
@@ -62,6 +64,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     r.subset = parse_subset(o->subset);
     const ValidateReport report = run_validate(r);
     if (report.memory_raised_to > 0) print_memory_note(r.memory_bytes, report.memory_raised_to);
+    if (const std::string note = withhold_shortfall(report, r.withhold); !note.empty())
+      std::fprintf(stderr, "note: %s\n", note.c_str());
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);
@@ -83,8 +87,9 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
                      label(s), width, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
         }
       }
-      fmt::print("  -> {0}/report.json, {0}/report.md{1}\n", r.out_dir,
-                 report.series_pixels.empty() ? "" : fmt::format(", {}/series.csv", r.out_dir));
+      const std::string out = (std::filesystem::path(r.out_dir) / "").string();  // one slash, however given
+      fmt::print("  -> {0}report.json, {0}report.md{1}\n", out,
+                 report.series_pixels.empty() ? "" : fmt::format(", {}series.csv", out));
     }
   };
 }

@@ -29,6 +29,7 @@
 #include "io/output_set.hpp"
 #include "io/qa_pairing.hpp"
 #include "kalends/error.hpp"
+#include "kalends/season.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/qa_rule.hpp"
 
@@ -108,6 +109,8 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
                     ", which GDAL leaves unapplied: the values were filled as stored (set 'scale' and "
                     "'offset' if they are not in physical units)");
   if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
+  if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::start)
+    notes.push_back(month_end_note("date_marks = \"end\""));
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
@@ -355,7 +358,11 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     budget = one_block;
     share = detail::share_memory(budget, 1, bytes_per_pixel, int(read_files.size()), int(specs.size()));
   }
-  if (request.check_only) return FillSummary{};
+  if (request.check_only) {
+    FillSummary checked;
+    checked.memory_for_one_block = one_block;
+    return checked;
+  }
   detail::set_gdal_cache(share.gdal_cache);
   // A method with a halo works block by block on single tiles (or full-width strips of one tile
   // row where the raster is narrower than a tile and its halo), however large the budget: its
@@ -675,6 +682,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   }
   summary.outputs_removed = removed;
   summary.dates = int(layers);
+  summary.dates_at_month_ends = dates_at_month_ends(stack.times());
   summary.width = area.width;
   summary.height = area.height;
   summary.blocks = int(plan.blocks.size());

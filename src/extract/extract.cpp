@@ -23,6 +23,7 @@
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
+#include "kalends/season.hpp"
 #include "kalends/extract.hpp"
 
 namespace kalends {
@@ -397,7 +398,15 @@ ExtractResult run_extract(const ExtractRequest& request) {
                                                      "give the table another name (nothing was replaced)");
   }
   r.series = select(std::move(found), request.layers);
-  for (CovariateSeries& s : r.series) set_date_marks(s, request.marks);
+  for (CovariateSeries& s : r.series) {
+    set_date_marks(s, request.marks);
+    // Monthly means stamped on the month's last day, read as starts, are matched to the month
+    // after: said, as `seasons` and `fill --every` say it (a survey in June had taken May's).
+    if (s.kind != SeriesKind::dated || request.marks != DateMarks::start) continue;
+    std::vector<TimePoint> times;
+    for (const SeriesFile& f : s.files) times.push_back(f.time);
+    if (dates_at_month_ends(times)) r.notes.push_back(s.name + ": " + month_end_note("--date-marks end"));
+  }
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());
   points_crs.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);

@@ -170,6 +170,14 @@ OutputFolder::OutputFolder(const std::string& path) {
     // A file system without locks (some network mounts) runs unguarded, as before.
     if (held) throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
   }
+  // Holding the folder, the hidden temporaries a killed run left here (".<name>.partial", its
+  // rasters' and text files') are nobody's: removed, as they would otherwise stay for good.
+  if (lock_ >= 0)
+    for (const auto& entry : fs::directory_iterator(path, ec)) {
+      const std::string name = entry.path().filename().string();
+      if (name.size() > 9 && name.front() == '.' && name.ends_with(".partial") && entry.is_regular_file(ec))
+        fs::remove(entry.path(), ec);
+    }
 }
 
 OutputFolder::~OutputFolder() {

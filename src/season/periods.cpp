@@ -9,6 +9,11 @@
 
 namespace kalends {
 
+std::string month_end_note(const std::string& option) {
+  return "every input date is the last day of its month. If they stamp monthly means (as CF files often do), "
+         "give " + option + ": read as starts, each stands for the month after";
+}
+
 bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
   if (dates.size() < 2) return false;
   for (std::size_t i = 0; i < dates.size(); ++i) {

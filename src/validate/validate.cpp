@@ -9,6 +9,7 @@
 #include <filesystem>
 #include <fstream>
 #include <fmt/format.h>
+#include <limits>
 #include <map>
 #include <numeric>
 #include <random>
@@ -106,7 +107,7 @@ struct Accumulator {
     if (std::isfinite(sd) && sd > 0) {
       ++with_sd;
       within += std::abs(err) <= sd;
-      within_95 += std::abs(err) <= 1.959964 * sd;  // the normal distribution's 97.5 % quantile
+      within_95 += std::abs(err) <= 1.96 * sd;  // the normal's 97.5 % quantile, as documented (1.959964)
       z2 += (err / sd) * (err / sd);
     }
   }
@@ -146,11 +147,11 @@ std::string score_json(const Score& s, const std::string& indent) {
       "\"rmse\": {}, \"mae\": {}, \"bias\": {}, \"r2\": {}",
       detail::json_escape(s.name), s.baseline ? "true" : "false", s.cells, s.covered, detail::json_number(s.coverage),
       detail::json_number(s.rmse), detail::json_number(s.mae), detail::json_number(s.bias), detail::json_number(s.r2));
-  if (s.within_one_sd >= 0) j += fmt::format(", \"within_one_sd\": {}", detail::json_number(s.within_one_sd));
-  if (s.within_95_interval >= 0)
-    j += fmt::format(", \"within_95_interval\": {}", detail::json_number(s.within_95_interval));
-  if (s.rms_error_over_sd >= 0)
-    j += fmt::format(", \"rms_error_over_sd\": {}", detail::json_number(s.rms_error_over_sd));
+  // A method's sd scores are always there (null where no withheld cell got an sd); baselines have none.
+  const auto sd_score = [](double v) { return v >= 0 ? detail::json_number(v) : std::string("null"); };
+  if (!s.baseline)
+    j += fmt::format(", \"within_one_sd\": {}, \"within_95_interval\": {}, \"rms_error_over_sd\": {}",
+                     sd_score(s.within_one_sd), sd_score(s.within_95_interval), sd_score(s.rms_error_over_sd));
   if (!s.parameters.empty()) {
     j += ", \"parameters\": {";
     bool first = true;
@@ -208,6 +209,15 @@ std::vector<std::size_t> series_pixels(const std::vector<std::uint8_t>& withheld
 
 }  // namespace
 
+std::string withhold_shortfall(const ValidateReport& report, double asked) {
+  // Within 1 % of the goal is the goal: the last mask is cut where the goal is met.
+  if (report.withheld >= report.withhold_goal * 99 / 100) return "";
+  return fmt::format("{:.1f} % of the observed values were withheld, not the {:g} % asked for: the other dates' "
+                     "cloud masks cover no more of the observed cells (scores rest on fewer cells, and on "
+                     "shorter gaps, than asked)",
+                     100.0 * double(report.withheld) / double(std::max<std::int64_t>(1, report.observed)), 100 * asked);
+}
+
 ValidateReport run_validate(const ValidateRequest& request) {
   detail::start_gdal();
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
@@ -215,6 +225,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
     throw UsageError("--withhold", "must lie strictly between 0 and 1");
   if (request.methods.empty()) throw UsageError("--methods", "name at least one method");
   if (request.series_pixels < 0) throw UsageError("--series", "must be 0 or more");
+  if (request.neighbourhood_radius < 1 || request.neighbourhood_radius > 1000)
+    throw UsageError("--radius", fmt::format("{}: must be 1 to 1000 pixels", request.neighbourhood_radius));
   std::map<std::string, MethodParameters> parameters;
   for (const std::string& m : request.methods) {
     if (parameters.count(m)) throw UsageError("--methods", "'" + m + "' is named twice");
@@ -239,6 +251,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
   const Stack stack = Stack::open(request.input, request.rules);
   std::optional<QaPairing> qa;
   if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
+  detail::require_out_apart_from(stack, request.out_dir, "input");
+  if (qa) detail::require_out_apart_from(qa->stack, request.out_dir, "QA");
   const int dates = int(stack.layers().size());
   if (dates < 3) throw InputError(request.input, "validation needs at least 3 dates");
   const Window area = area_of(stack.grid().width, stack.grid().height, request.subset, "--subset");
@@ -345,6 +359,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
   const fs::path marker = work / ".made-by-kalends-validate";
   std::error_code ec;
   const bool out_existed = fs::exists(request.out_dir, ec);
+  // Held until the reports are written: a second validate (or any command) into the same
+  // folder had rebuilt work/ under this one, and both failed.
+  const detail::OutputFolder output_folder(request.out_dir);
   if (fs::exists(work, ec) && !fs::exists(marker, ec) && !fs::is_empty(work, ec))
     throw UsageError("--out", "'" + work.string() + "' exists and was not made by kalends validate, which works "
                               "there: move it, or give another --out");
@@ -450,6 +467,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   report.width = grid.width;
   report.height = grid.height;
   report.transplanted_masks = masks;
+  report.withhold_goal = goal;
 
   // Each method's fill as `kalends fill` would run it on the withheld stack. Every one is checked
   // (options, memory for one block) before the first runs: a budget too small for spacetime had
@@ -468,11 +486,21 @@ ValidateReport run_validate(const ValidateRequest& request) {
     fill.compression = Compression::none;
     return fill;
   };
+  // The budget named is the largest any of them needs: naming the first one refused had led
+  // to a second refusal for the next method.
+  std::int64_t needed = 0;
+  std::string neediest;
   for (const std::string& method : request.methods) {
     FillRequest check = fill_request(method);
     check.check_only = true;
-    run_fill(check);
+    check.memory_ceiling = std::numeric_limits<std::int64_t>::max();  // report the need, refuse below
+    const std::int64_t one_block = run_fill(check).memory_for_one_block;
+    if (one_block > needed) needed = one_block, neediest = method;
   }
+  if (needed > request.memory_bytes && needed > request.memory_ceiling)
+    throw UsageError("--memory", fmt::format("budget of {} MiB is too small for one block of {}; {} MiB would do "
+                                             "(the most any of the methods needs)",
+                                             request.memory_bytes >> 20, neediest, needed >> 20));
   for (const std::string& method : request.methods) {
     const FillRequest fill = fill_request(method);
     const FillSummary filled = run_fill(fill);
@@ -577,6 +605,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
       request.subset ? fmt::format(" (the pixels from column {}, row {})", area.x, area.y) : std::string(),
       dates, grid.width, grid.height, observed, count,
       100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
+  if (const std::string short_of = withhold_shortfall(report, request.withhold); !short_of.empty())
+    md += "Note: " + short_of + "\n\n";
   if (qa)
     md += fmt::format("QA: `{}`{}, keep `{}`: {} values rejected before any was withheld (they count as "
                       "missing, as in a fill with the same rule).\n\n",

@@ -48,6 +48,7 @@ struct Score {
 
 struct ValidateReport {
   std::int64_t observed = 0, withheld = 0, cells = 0;
+  std::int64_t withhold_goal = 0;  // --withhold x observed: more than `withheld` where the masks ran out
   std::int64_t masked_by_qa = 0;  // values the QA rule removed before anything was withheld
   std::int64_t memory_raised_to = 0;  // the largest budget a fill took beyond memory_bytes; 0 if none
   int dates = 0, width = 0, height = 0, transplanted_masks = 0;
@@ -58,5 +59,8 @@ struct ValidateReport {
 /// Runs the validation and writes OUT/report.json, OUT/report.md and, for a few pixels with many
 /// withheld values, OUT/series.csv (atomically).
 ValidateReport run_validate(const ValidateRequest& request);
+
+/// A note where fewer values were withheld than --withhold asked for (the masks ran out), or "".
+std::string withhold_shortfall(const ValidateReport& report, double asked);
 
 }  // namespace kalends

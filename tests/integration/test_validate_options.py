@@ -133,6 +133,12 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertIn("no value on any withheld cell", lines["harmonic"])
         self.assertIn("for 25 coefficients", lines["harmonic"])
         self.assertIn("RMSE", lines["whittaker"])
+        # Its sd scores are null in report.json, not missing (a script reading them had failed).
+        with open(os.path.join(self.tmp, "v_nothing", "report.json")) as f:
+            harmonic = [s for s in json.load(f)["scores"] if s["name"] == "harmonic"][0]
+        for key in ("within_one_sd", "within_95_interval", "rms_error_over_sd"):
+            self.assertIn(key, harmonic)
+            self.assertIsNone(harmonic[key])
         # The figures start in the same column on every row.
         columns = {line.find(" RMSE ") for line in done.stdout.splitlines() if " RMSE " in line}
         self.assertEqual(len(columns), 1, done.stdout)
@@ -168,12 +174,89 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertFalse(os.path.exists(out))
         # Enough for whittaker's blocks, too little for spacetime's (its halo and scratch): refused
         # before whittaker runs, where it had been refused after it.
-        done = kt.run_kalends(["validate", pattern, "--methods", "whittaker,spacetime", "--memory", "105M",
+        # The budget named is the largest need, in either order: naming the first refused method's
+        # had led to a second refusal for the next.
+        needs = set()
+        for methods in ("whittaker,spacetime", "spacetime,whittaker"):
+            done = kt.run_kalends(["validate", pattern, "--methods", methods, "--memory", "105M", "--out", out])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("too small for one block of spacetime", done.stderr)
+            needs.add(re.search(r"(\d+) MiB would do", done.stderr).group(1))
+            self.assertNotIn("whittaker", done.stdout)
+            self.assertFalse(os.path.exists(out))
+        self.assertEqual(len(needs), 1)
+        done = kt.run_kalends(["-q", "validate", pattern, "--methods", "whittaker,spacetime", "--memory",
+                               needs.pop() + "M", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_a_folder_another_command_holds_is_refused_and_stale_temporaries_go(self):
+        # Two validates into one folder had rebuilt work/ under each other and both failed.
+        import fcntl
+        out = os.path.join(self.tmp, "held")
+        os.makedirs(out)
+        stale = os.path.join(out, ".report.md.4242.partial")     # what a killed run leaves
+        with open(stale, "w") as f:
+            f.write("half a report")
+        fd = os.open(out, os.O_RDONLY)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)          # as a running kalends holds it
+            done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
+                                   "--out", out])
+            self.assertEqual(done.returncode, 1, done.stderr)
+            self.assertIn("another kalends command is writing into this folder", done.stderr)
+            self.assertEqual(os.listdir(out), [os.path.basename(stale)])
+        finally:
+            os.close(fd)
+        done = kt.run_kalends(["-q", "validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
                                "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(stale))
+
+    def test_options_that_make_no_sense_are_refused(self):
+        pattern = os.path.join(self.stack, "ndvi_*.tif")
+        out = os.path.join(self.tmp, "nonsense")
+        for extra, words in ((["--radius", "0"], "--radius"), (["--radius", "-1"], "--radius"),
+                             (["--seed", "-1"], "--seed")):
+            done = kt.run_kalends(["validate", pattern, "--methods", "whittaker", "--out", out] + extra)
+            self.assertEqual(done.returncode, 2, (extra, done.stderr))
+            self.assertIn(words, done.stderr)
+            self.assertFalse(os.path.exists(out))
+        # The stack's own folder as --out: its reports would lie among the dates (a later
+        # 'folder/*' then read report.json as a raster).
+        done = kt.run_kalends(["validate", pattern, "--methods", "whittaker", "--out", self.stack])
         self.assertEqual(done.returncode, 2, done.stderr)
-        self.assertIn("too small for one block (it reads 48 x 40 px with its halo)", done.stderr)
-        self.assertNotIn("whittaker", done.stdout)
-        self.assertFalse(os.path.exists(out))
+        self.assertIn("holds the input files themselves", done.stderr)
+
+    def test_a_share_the_masks_cannot_reach_is_said(self):
+        # A fictional district's stack with one small cloud on two dates: the masks of other
+        # dates cover far fewer observed cells than --withhold 0.2 asks for. The run had said
+        # nothing and its report still read 0.2.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "one-cloud")
+        os.makedirs(folder)
+        rng = np.random.default_rng(1)
+        for i in range(46):
+            a = (0.4 + 0.3 * np.sin(2 * np.pi * i / 23) + 0.05 * rng.standard_normal((30, 30))).astype(np.float32)
+            if i in (5, 20):
+                a[10:16, 10:16] = np.nan
+            day = np.datetime64("2021-01-01") + np.timedelta64(16 * i, "D")
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % day), a, nodata=float("nan"))
+        out = os.path.join(self.tmp, "one-cloud-validation")
+        done = kt.run_kalends(["validate", os.path.join(folder, "*.tif"), "--methods", "whittaker", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            report = json.load(f)
+        share = 100.0 * report["withheld"] / report["observed"]
+        self.assertLess(share, 5)
+        note = "%.1f %% of the observed values were withheld, not the 20 %% asked for" % share
+        self.assertIn("note: " + note, done.stderr)
+        with open(os.path.join(out, "report.md")) as f:
+            self.assertIn(note, f.read())
+        # A share that is reached says nothing (this stack's masks reach 18 % of its values).
+        done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
+                               "--withhold", "0.1", "--out", os.path.join(self.tmp, "reached")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("were withheld, not the", done.stderr)
 
     def test_a_work_folder_of_the_users_is_left_alone(self):
         # validate works in OUT/work and removes it; a 'work' folder the user already keeps in

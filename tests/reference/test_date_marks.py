@@ -86,6 +86,15 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
     def test_end_marks_read_the_survey_month(self):
         self.check(self.extract("--date-marks", "end"), lambda day: day.month)
 
+    def test_start_marks_on_month_ends_are_said(self):
+        # Read as starts, each month's mean is matched to the month after: said, as seasons says
+        # it (extract had said nothing); with end marks, nothing to say.
+        for options, said in (([], True), (["--date-marks", "end"], False)):
+            done = kt.run_kalends(["extract", self.filled, "--points", self.csv, "--out",
+                                   os.path.join(self.tmp, "said.csv")] + options)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertEqual("every input date is the last day of its month" in done.stderr, said, done.stderr)
+
     def test_start_marks_read_the_month_before(self):
         # The file dated on or before the survey day: the previous month's mean (its stamp is the
         # previous month's last day), unless the survey is on the last day of a month.
@@ -159,6 +168,9 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
             done = kt.run_kalends(["-q", "fill", source, "--out", out, "--method", "whittaker", "--lambda", "0.01",
                                    "--every", "1M", "--date-marks", marks])
             self.assertEqual(done.returncode, 0, done.stderr)
+            # Read as starts, a note says what they likely are (it had said nothing).
+            self.assertEqual("every input date is the last day of its month" in done.stderr, marks == "start",
+                             done.stderr)
             calendar = os.path.join(out, "calendar-1M")
             names = sorted(os.listdir(calendar))
             months[marks] = [n[4:11] for n in names]
