@@ -159,6 +159,19 @@ ValueRules rules_of(const JobInput& input) {
 
 std::string step_folder(const std::string& out, const std::string& id) { return (fs::path(out) / id).string(); }
 
+// The array script `plan` names: an installed kalends's (PREFIX/share/kalends beside
+// PREFIX/bin), else the source tree's it was built from, else the tree's relative path.
+std::string cluster_template() {
+  std::error_code ec;
+  const fs::path self = fs::read_symlink("/proc/self/exe", ec);
+  if (!ec) {
+    const fs::path installed = self.parent_path().parent_path() / "share" / "kalends" / "kalends-array.sbatch";
+    if (fs::exists(installed, ec)) return installed.string();
+  }
+  if (fs::exists(KALENDS_CLUSTER_TEMPLATE, ec)) return KALENDS_CLUSTER_TEMPLATE;
+  return "tools/cluster/kalends-array.sbatch";
+}
+
 detail::ResolvedInput resolve_job_input(const JobInput& input, const std::vector<std::string>& excluded) {
   detail::ResolvedInput r;
   r.pattern = input.stack;
@@ -1138,8 +1151,7 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   std::string name;
   for (char c : job.name.empty() ? fs::path(job.path).stem().string() : job.name)
     name += std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '_' ? c : '-';
-  const std::string sbatch_template = fs::exists(KALENDS_CLUSTER_TEMPLATE) ? KALENDS_CLUSTER_TEMPLATE
-                                                                           : "tools/cluster/kalends-array.sbatch";
+  const std::string sbatch_template = cluster_template();
   report.sbatch = fmt::format("sbatch --array=1-{} --cpus-per-task={} --mem={}M --job-name=kalends-{} {} {}",
                               plan.shards, plan.threads, report.memory_mib, name, detail::shell_word(sbatch_template),
                               detail::shell_word(fs::absolute(job.path).string()));

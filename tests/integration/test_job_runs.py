@@ -186,6 +186,29 @@ class JobFile(kt.TempDirTestCase):
         # 1G holds the spacetime block of 64 x 64 px: both steps run.
         self.assertEqual(run(job).returncode, 0)
 
+    def test_an_installed_plan_names_the_installed_array_script(self):
+        # `cmake --install` puts the script in PREFIX/share/kalends: an installed kalends names
+        # that one, not the build tree's (which a cluster node may never see).
+        folder = os.path.join(self.tmp, "installed")
+        job = make_job(folder, size=32)
+        prefix = os.path.join(self.tmp, "prefix")
+        os.makedirs(os.path.join(prefix, "bin"))
+        os.makedirs(os.path.join(prefix, "share", "kalends"))
+        program = os.path.join(prefix, "bin", "kalends")
+        shutil.copy(kt.KALENDS_BIN, program)
+        script = os.path.join(prefix, "share", "kalends", "kalends-array.sbatch")
+        shutil.copy(os.path.join(kt.REPO_ROOT, "tools", "cluster", "kalends-array.sbatch"), script)
+        done = subprocess.run([program, "plan", job, "--shards", "1", "-q"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(" %s " % script, done.stdout)
+        self.assertIn("KALENDS_BIN=%s" % program, done.stdout)
+        # Without it, the source tree's script, which exists.
+        os.remove(script)
+        done = subprocess.run([program, "plan", job, "--shards", "1", "-q"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        named = done.stdout.split()[-2]
+        self.assertTrue(named.endswith("kalends-array.sbatch") and os.path.isfile(named), done.stdout)
+
     def test_a_compare_step_takes_the_layer_set_by_name(self):
         # 'name' as compare's --name (it had been an unknown key): the set the seasons step
         # made is compared; another name is looked for, and missing.

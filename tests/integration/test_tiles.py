@@ -289,7 +289,7 @@ class TiledFill(kt.TempDirTestCase):
                 if os.path.isfile(p)]
         hidden = [p for p in glob.glob(os.path.join(job_dir, "out", "fill", "**", ".*"), recursive=True)]
         status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
-        self.assertIn("(%d files)" % len(seen), status.stdout, (len(hidden), status.stdout))
+        self.assertIn("(%d files in its folder)" % len(seen), status.stdout, (len(hidden), status.stdout))
         # A reprocessed composite for one tile: same date, new values.
         g = kt.gdal()
         path = sorted(glob.glob(os.path.join(tiles, "h01v01", "ndvi_*.tif")))[5]
