@@ -4,6 +4,7 @@
 
 #include <optional>
 #include <string>
+#include <tuple>
 #include <vector>
 
 #include "kalends/fill.hpp"
@@ -50,6 +51,12 @@ struct SeasonsSummary {
   std::vector<int> stale_years_removed;  // an earlier run's year layers outside this run's years
   /// Years whose cycle layer is empty at some pixels that have a synoptic cycle, and how many.
   std::vector<std::pair<int, std::int64_t>> years_with_cycle_gaps;
+  /// Whether the input is a fill's (a flag band): then the observed_YYYY and
+  /// synoptic_observed_years layers say what each value rests on.
+  bool from_fill = false;
+  /// Year-specific periods that the composites cover only in part (label "2004 month 05",
+  /// days covered, days of the period), in order; their means rest on those days alone.
+  std::vector<std::tuple<std::string, double, int>> partly_covered;
 };
 
 /// What a user should know about a seasons run's outputs (cycle layers left empty because

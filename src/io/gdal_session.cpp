@@ -139,6 +139,12 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   return dataset;
 }
 
+bool is_fill_output(const std::string& path) {
+  const GDALDatasetUniquePtr dataset = open_raster(path);
+  return dataset->GetRasterCount() >= 3 && std::string(dataset->GetRasterBand(3)->GetDescription()) == "flag" &&
+         dataset->GetMetadataItem("KALENDS_METHOD") != nullptr && dataset->GetMetadataItem("KALENDS_PERIOD") == nullptr;
+}
+
 std::string band_label(const std::string& path, int band) {
   std::string label;
   const GDALDatasetUniquePtr dataset = open_raster(path);

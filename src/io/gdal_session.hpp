@@ -47,6 +47,10 @@ GDALDatasetUniquePtr open_raster(const std::string& path);
 /// has_geotransform) and CRS (WGS 84 for a NetCDF with CF longitude/latitude axes and no CRS).
 Grid raster_grid(GDALDataset& dataset);
 
+/// Whether `path` is one of `kalends fill`'s dated outputs (value, sd and flag bands; not a
+/// calendar period mean, whose flag means something else).
+bool is_fill_output(const std::string& path);
+
 /// A band's description made fit for a file name ("sd", "flag"), else "band<N>".
 std::string band_label(const std::string& path, int band);
 

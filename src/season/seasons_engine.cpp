@@ -54,7 +54,8 @@ std::vector<std::string> period_labels(int year, const CalendarPeriod& calendar)
 }
 
 struct Worker {
-  std::unique_ptr<StackReader> reader;
+  std::unique_ptr<StackReader> reader, flag_reader;
+  std::vector<float> flags;   // [layer][pixel], a fill's flag band
   std::vector<float> plane;
   std::vector<float> layers;  // [layer][pixel]
   std::vector<std::vector<float>> bands;  // one plane per output band
@@ -87,6 +88,14 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
                                 "lacks a value in some period there (a stack that starts or ends within the year, or "
                                 "dates without data); fill the gaps first with kalends fill",
                                 year, pixels, summary.pixels_with_cycle, year));
+  if (!summary.partly_covered.empty()) {
+    const auto& [label, covered, days] = summary.partly_covered.front();
+    const std::size_t count = summary.partly_covered.size();
+    notes.push_back(fmt::format("{} year-specific period{} rest{} on only part of {} days (first: {}, {:g} of {} days: "
+                                "no composite stands for the others); each band's KALENDS_DAYS_COVERED says how many",
+                                count, count == 1 ? "" : "s", count == 1 ? "s" : "", count == 1 ? "its" : "their", label,
+                                covered, days));
+  }
   if (summary.pixels_with_values == 0 || summary.pixels_with_cycle == summary.pixels_with_values) return notes;
   if (summary.pixels_with_cycle == 0 && !summary.periods_without_value.empty()) {
     static const char* const months[] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
@@ -112,6 +121,15 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   check_seasons_options(request);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   detail::require_out_apart_from(stack, request.out_dir, "input");
+  // A fill's outputs carry a flag band: what each period's value rests on is then known, and
+  // written beside it (a year of gap-filled values had counted as a year like any other).
+  std::optional<Stack> flags;
+  if (request.rules.band == 1 && detail::is_fill_output(stack.layers().front().path)) {
+    ValueRules flag_rules;
+    flag_rules.band = 3;
+    flag_rules.exclude = request.rules.exclude;
+    flags = Stack::open(stack_input(request.input), flag_rules);
+  }
   const std::vector<TimePoint> times = stack.times();
   // The days a composite stands for come from the spacing of the dates; one date has none.
   if (times.size() < 2)
@@ -176,9 +194,19 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const std::size_t synoptic_mean = add("synoptic_mean", labels, {{"KALENDS_LAYER", "long-term mean per period"}});
   const std::size_t synoptic_sd = add("synoptic_sd", labels, {{"KALENDS_LAYER", "standard deviation over years (ddof 1)"}});
   const std::size_t synoptic_years = add("synoptic_years", labels, {{"KALENDS_LAYER", "number of years with a value"}});
-  std::vector<std::size_t> year_file, anomaly_file, standardised_file, cycle_file;
+  const std::size_t synoptic_observed =
+      flags ? add("synoptic_observed_years", labels,
+                  {{"KALENDS_LAYER", "number of years with an observation (fill flag 0) in the period"}})
+            : not_written;
+  std::vector<std::size_t> year_file, anomaly_file, standardised_file, cycle_file, observed_file;
   for (int y = first_year; y <= last_year; ++y) {
     const std::string ys = std::to_string(y);
+    observed_file.push_back(
+        flags && redo(y) ? add("observed_" + ys, labels,
+                               {{"KALENDS_LAYER", "share of the period's covered days resting on an observation (fill "
+                                                  "flag 0)"},
+                                {"KALENDS_YEAR", ys}})
+                         : not_written);
     year_file.push_back(redo(y) ? add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}})
                                 : not_written);
     anomaly_file.push_back(add("anomaly_" + ys, labels, {{"KALENDS_LAYER", "year-specific minus synoptic"}, {"KALENDS_YEAR", ys}}));
@@ -199,6 +227,22 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   for (std::size_t f : year_file)
     if (f != not_written)
       for (auto& b : specs[f].bands) b.unit = unit;
+  // The days each year's period rests on: a month the composites cover in part (the first of
+  // a stack that starts on 25 May) is the mean of those days alone.
+  std::vector<std::tuple<std::string, double, int>> partly_covered;
+  for (int y = 0; y < years; ++y)
+    for (int q = 0; q < P; ++q) {
+      const std::size_t k = std::size_t(y) * P + q;
+      double covered = 0;
+      for (double d : sources[k].days) covered += d;
+      for (std::size_t f : {year_file[y], observed_file[y]}) {
+        if (f == not_written) continue;
+        specs[f].bands[q].metadata["KALENDS_DAYS_COVERED"] = fmt::format("{:g}", covered);
+        specs[f].bands[q].metadata["KALENDS_PERIOD_DAYS"] = std::to_string(periods[k].days);
+      }
+      if (covered > 0 && covered < periods[k].days)
+        partly_covered.emplace_back(fmt::format("{} {}", first_year + y, labels[q]), covered, periods[k].days);
+    }
   for (std::size_t f : {synoptic_mean, synoptic_sd}) for (auto& b : specs[f].bands) b.unit = unit;
   for (std::size_t f : anomaly_file) for (auto& b : specs[f].bands) b.unit = unit;
   specs[miss].bands[0].unit = unit;  // the RMSE; the shares have none
@@ -218,7 +262,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     }
 
   const int threads = request.threads > 0 ? request.threads : tbb::this_task_arena::max_concurrency();
-  const std::int64_t bytes_per_pixel = std::int64_t(times.size()) * 4 + 4 + std::int64_t(total_bands) * 4;
+  const std::int64_t bytes_per_pixel =
+      std::int64_t(times.size()) * (flags ? 8 : 4) + 4 + std::int64_t(total_bands) * 4;
   std::set<std::string> files;
   for (const Layer& l : stack.layers()) files.insert(l.path);
   const auto [share, at_once] = detail::share_for_blocks(
@@ -236,6 +281,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   tbb::enumerable_thread_specific<Worker> workers([&] {
     Worker w;
     w.reader = stack.reader();
+    if (flags) w.flag_reader = flags->reader();
     return w;
   });
   // Pixels with any synoptic value, pixels with synoptic cycle descriptors, and the periods that
@@ -256,10 +302,18 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       w.reader->read_values(i, core, w.plane.data());
       std::copy(w.plane.begin(), w.plane.end(), w.layers.begin() + i * n);
     }
+    if (flags) {
+      w.flags.assign(times.size() * n, NAN);
+      for (std::size_t i = 0; i < times.size(); ++i) {
+        if (!used[i]) continue;
+        w.flag_reader->read_values(i, core, w.plane.data());
+        std::copy(w.plane.begin(), w.plane.end(), w.flags.begin() + i * n);
+      }
+    }
     w.bands.resize(total_bands);
     for (auto& b : w.bands) b.assign(n, NAN);
     auto band = [&](std::size_t file, std::size_t b) -> std::vector<float>& { return w.bands[first_band[file] + b]; };
-    std::vector<double> value(std::size_t(years) * P), mean(P);
+    std::vector<double> value(std::size_t(years) * P), mean(P), observed(std::size_t(years) * P);
     w.padded.resize(3 * P);
     auto put_cycle = [&](std::size_t file, std::int64_t p, const CycleDescriptors& d) {
       const double v[] = {d.mean, d.min, d.max, d.amplitude, d.annual.amplitude, d.annual.peak_doy,
@@ -271,12 +325,16 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     };
     for (std::int64_t p = 0; p < n; ++p) {
       for (std::size_t k = 0; k < periods.size(); ++k) {
-        double sum = 0, days = 0;
+        double sum = 0, days = 0, observed_days = 0;
         for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
-          const float v = w.layers[std::size_t(sources[k].composite[j]) * n + p];
-          if (std::isfinite(v)) sum += sources[k].days[j] * v, days += sources[k].days[j];
+          const std::size_t at = std::size_t(sources[k].composite[j]) * n + p;
+          const float v = w.layers[at];
+          if (!std::isfinite(v)) continue;
+          sum += sources[k].days[j] * v, days += sources[k].days[j];
+          if (flags && w.flags[at] == 0) observed_days += sources[k].days[j];
         }
         value[k] = days > 0 ? sum / days : NAN;
+        observed[k] = days > 0 ? observed_days / days : NAN;
       }
       double all_sum = 0;
       int all_count = 0;
@@ -296,6 +354,15 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         band(synoptic_mean, q)[p] = float(mean[q]);
         band(synoptic_sd, q)[p] = float(sd);
         band(synoptic_years, q)[p] = float(count);
+        if (flags) {
+          int with_observation = 0;
+          for (int y = 0; y < years; ++y) {
+            const double o = observed[std::size_t(y) * P + q];
+            with_observation += o > 0;
+            if (observed_file[y] != not_written) band(observed_file[y], q)[p] = float(o);
+          }
+          band(synoptic_observed, q)[p] = float(with_observation);
+        }
         for (int y = 0; y < years; ++y) {
           const double v = value[std::size_t(y) * P + q];
           if (year_file[y] != not_written) band(year_file[y], q)[p] = float(v);
@@ -373,6 +440,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   for (int y = 0; y < years; ++y)
     if (year_cycle_missing[y] > 0) summary.years_with_cycle_gaps.emplace_back(first_year + y, year_cycle_missing[y]);
   summary.pixels_with_cycle = pixels_with_cycle;
+  summary.from_fill = flags.has_value();
+  summary.partly_covered = std::move(partly_covered);
   for (int q = 0; q < P; ++q)
     if (!period_has_value[q]) summary.periods_without_value.push_back(q);
   summary.outputs = output_paths;

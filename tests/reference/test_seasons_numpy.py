@@ -272,6 +272,50 @@ class SeasonsCommand(kt.TempDirTestCase):
         ok = np.isfinite(share)
         np.testing.assert_array_equal(classes[ok], expected[ok])
 
+    def test_a_fills_layers_say_what_each_value_rests_on(self):
+        # A fill's flag band says which composites were observed: the observed_YYYY layers give
+        # the share of each period's covered days that rests on one, synoptic_observed_years how
+        # many years have one (a year filled from nothing had counted as a year like any other).
+        # The stack starts on 17 January 2010: January 2010 rests on 15 of its 31 days.
+        g = kt.gdal()
+        rng = np.random.default_rng(11)
+        raw = os.path.join(self.tmp, "gappy")
+        os.makedirs(raw)
+        dates, values = self.dates[1:], self.values[1:].copy()
+        values[rng.uniform(size=values.shape) < 0.4] = np.nan
+        for d, v in zip(dates, values):
+            kt.write_raster(os.path.join(raw, "ndvi_%s.tif" % d.isoformat()), v.astype(np.float32),
+                            geotransform=(500000, 250, 0, 9000000, 0, -250), epsg=32736, nodata=float("nan"))
+        filled = os.path.join(self.tmp, "gappy-filled")
+        out = os.path.join(self.tmp, "gappy-seasons")
+        self.assertEqual(kt.run_kalends(["-q", "fill", os.path.join(raw, "*.tif"), "--out", filled]).returncode, 0)
+        done = kt.run_kalends(["seasons", filled, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        value, flag = [], []
+        for d in dates:
+            ds = g.Open(os.path.join(filled, "ndvi_%s.tif" % d.isoformat()))
+            value.append(ds.GetRasterBand(1).ReadAsArray().astype(np.float64))
+            flag.append(ds.GetRasterBand(3).ReadAsArray())
+            ds = None
+        value, flag = np.array(value), np.array(flag)
+        # The same day weights as the year layers, on 1 where the value was observed, else 0.
+        share = month_means(dates, np.where(np.isfinite(value), (flag == 0).astype(np.float64), np.nan))
+        years = [2010, 2011, 2012]
+        expected = np.array([[share[(y, m)] for m in range(1, 13)] for y in years])
+        for i, y in enumerate(years):
+            np.testing.assert_allclose(kt.gdal().Open(os.path.join(out, "ndvi_observed_%d.tif" % y)).ReadAsArray(),
+                                       expected[i], atol=1e-6, equal_nan=True)
+        observed_years = g.Open(os.path.join(out, "ndvi_synoptic_observed_years.tif")).ReadAsArray()
+        np.testing.assert_array_equal(observed_years, (expected > 0).sum(0))
+        # The days each period rests on, per band; and a note.
+        year = g.Open(os.path.join(out, "ndvi_year_2010.tif"))
+        self.assertEqual(year.GetRasterBand(1).GetMetadata(), {"KALENDS_DAYS_COVERED": "15", "KALENDS_PERIOD_DAYS": "31"})
+        self.assertEqual(year.GetRasterBand(2).GetMetadataItem("KALENDS_DAYS_COVERED"), "28")
+        year = None
+        self.assertIn("rests on only part of its days (first: 2010 month 01, 15 of 31 days", done.stderr)
+        # Layers not made by a fill have no flags: no such layers.
+        self.assertFalse(glob.glob(os.path.join(self.out, "ndvi_*observed*")))
+
     def test_anomalies_name_their_synoptic_years(self):
         # An anomaly depends on every year through the synoptic: its file says which years.
         g = kt.gdal()
