@@ -117,6 +117,7 @@ class HarmonicAnalysis {
 struct CycleOptions {
   double prominence_share = 0.2;  // peaks count as seasons above this share of the amplitude
   double threshold_share = 0.5;   // season start/end where the curve crosses base + share (peak - base)
+  double min_amplitude = 0;       // no season where max - min is not above this (input units): noise
 };
 
 struct SeasonTiming {

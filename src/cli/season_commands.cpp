@@ -77,6 +77,9 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
       ->capture_default_str();
   sub->add_option("--threshold", r.cycle.threshold_share, "Season start/end at this share between base and peak")
       ->capture_default_str();
+  sub->add_option("--min-amplitude", r.cycle.min_amplitude,
+                  "No season in a cycle whose range (max - min) is not above this, in the input's unit (noise)")
+      ->capture_default_str();
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--band", r.rules.band, "Band of each input file (1 = value of fill outputs)")->capture_default_str();
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();

@@ -136,7 +136,8 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
   const auto h = harmonics.analyse(year, days, real, spectrum);
   d.annual = h[0];
   d.semiannual = h[1];
-  if (!(d.amplitude > 0)) return d;
+  // A flat cycle, or one whose whole range is within what the user calls noise, has no season.
+  if (!(d.amplitude > std::max(0.0, options.min_amplitude))) return d;
 
   // Neighbouring cycles fill in where they are missing, so edges behave as in the cyclic case.
   std::vector<double> x(padded.begin(), padded.end());

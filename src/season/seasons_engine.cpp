@@ -72,6 +72,8 @@ void check_seasons_options(const SeasonsRequest& request) {
     throw UsageError("--prominence", "must lie strictly between 0 and 1");
   if (!(request.cycle.threshold_share > 0 && request.cycle.threshold_share < 1))
     throw UsageError("--threshold", "must lie strictly between 0 and 1");
+  if (!(request.cycle.min_amplitude >= 0) || !std::isfinite(request.cycle.min_amplitude))
+    throw UsageError("--min-amplitude", "must be 0 or more, in the input's unit");
 }
 
 std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary) {
@@ -172,7 +174,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                      {"KALENDS_INPUT", request.input},
                      {"KALENDS_PERIOD", request.period.label()},
                      {"KALENDS_PROMINENCE_SHARE", fmt::format("{:g}", request.cycle.prominence_share)},
-                     {"KALENDS_THRESHOLD_SHARE", fmt::format("{:g}", request.cycle.threshold_share)}};
+                     {"KALENDS_THRESHOLD_SHARE", fmt::format("{:g}", request.cycle.threshold_share)},
+                     {"KALENDS_MIN_AMPLITUDE", fmt::format("{:g}", request.cycle.min_amplitude)}};
     if (!request.command_line.empty()) spec.metadata["KALENDS_COMMAND"] = request.command_line;
     for (const auto& [k, v] : extra) spec.metadata[k] = v;
     // The span of years only where a layer depends on every year (anomalies do: they are

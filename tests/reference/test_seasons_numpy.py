@@ -316,6 +316,38 @@ class SeasonsCommand(kt.TempDirTestCase):
         # Layers not made by a fill have no flags: no such layers.
         self.assertFalse(glob.glob(os.path.join(self.out, "ndvi_*observed*")))
 
+    def test_noise_is_no_season_below_the_minimum_amplitude(self):
+        # A fictional district's bare-rock pixel (NDVI 0.05 with sd 0.001 noise) beside one with
+        # a real season (amplitude 0.6): by the share-of-amplitude rule alone the noise makes
+        # seasons; with --min-amplitude 0.01 it has none, and the real one keeps its own.
+        rng = np.random.default_rng(1)
+        folder = os.path.join(self.tmp, "rock")
+        os.makedirs(folder)
+        for d in self.dates:
+            day = d.timetuple().tm_yday + 7.5
+            v = np.array([[0.05 + 0.001 * rng.standard_normal(),
+                           0.2 + 0.6 * np.exp(-0.5 * ((day - 200) / 35) ** 2)]], np.float32)
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % d.isoformat()), v)
+        seasons = {}
+        for extra in ([], ["--min-amplitude", "0.01"]):
+            out = os.path.join(self.tmp, "rock-" + "-".join(extra or ["default"]))
+            done = kt.run_kalends(["-q", "seasons", folder, "--out", out, "--period", "16d"] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            ds = kt.gdal().Open(os.path.join(out, "ndvi_cycle_2011.tif"))
+            names = [ds.GetRasterBand(b).GetDescription() for b in range(1, ds.RasterCount + 1)]
+            data = ds.ReadAsArray()[:, 0, :]
+            seasons[bool(extra)] = (data[names.index("seasons")], data[names.index("season1_start_doy")])
+            self.assertEqual(ds.GetMetadataItem("KALENDS_MIN_AMPLITUDE"), extra[1] if extra else "0")
+            ds = None
+        self.assertGreaterEqual(seasons[False][0][0], 1)          # noise taken for seasons
+        self.assertEqual(seasons[True][0][0], 0)
+        self.assertTrue(np.isnan(seasons[True][1][0]))
+        self.assertEqual(seasons[True][0][1], 1)
+        self.assertEqual(seasons[True][1][1], seasons[False][1][1])
+        done = kt.run_kalends(["seasons", folder, "--out", os.path.join(self.tmp, "rock-bad"), "--min-amplitude", "-1"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--min-amplitude", done.stderr)
+
     def test_anomalies_name_their_synoptic_years(self):
         # An anomaly depends on every year through the synoptic: its file says which years.
         g = kt.gdal()

@@ -18,6 +18,7 @@ SeasonsRequest seasons_request(const StepContext& c) {
   r.marks = parse_date_marks(c.text("date_marks", "start"));
   r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
   r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
+  r.cycle.min_amplitude = c.number("min_amplitude", r.cycle.min_amplitude);
   take_run_settings(r, c);
   return r;
 }
@@ -32,7 +33,7 @@ StepKind seasons_step_kind() {
   kind.years_from_inputs = true;
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"period", T::text}, {"years", T::text}, {"date_marks", T::text},
-               {"prominence", T::number}, {"threshold", T::number}, {"name", T::text},
+               {"prominence", T::number}, {"threshold", T::number}, {"min_amplitude", T::number}, {"name", T::text},
                {"compress", T::text}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'seasons' step needs 'input'");
