@@ -37,7 +37,7 @@ const char* type_name(Type t) {
     case Type::boolean: return "true or false";
     case Type::number_or_auto: return "a number or \"auto\"";
     case Type::pair: return "an array of two numbers";
-    case Type::texts: return "an array of strings";
+    case Type::texts: return "an array of strings (or numbers)";
   }
   return "?";
 }
@@ -120,10 +120,13 @@ std::string checked_text(const std::string& path, const std::string& key, const 
       const toml::array* a = node.as_array();
       if (!a) wrong();
       std::string text;
+      // Numbers too, as their text: `extent = [-5, 4, 3, 12]` as other number lists are written.
       for (const toml::node& e : *a) {
-        if (!e.is_string()) wrong();
         if (!text.empty()) text += ',';
-        text += *e.value<std::string>();
+        if (e.is_string()) text += *e.value<std::string>();
+        else if (e.is_integer()) text += std::to_string(*e.value<std::int64_t>());
+        else if (e.is_floating_point()) text += fmt::format("{}", *e.value<double>());
+        else wrong();
       }
       return text;
     }

@@ -340,6 +340,10 @@ class JobFile(kt.TempDirTestCase):
         grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'
         cases += [
             (good + grid + 'extent = ["1", "2", "three", "4"]\n', n + 5, ["'extent' 'three'", "expected a number"]),
+            # Numbers are read as numbers are in other lists (they had been refused as 'an array of
+            # strings'): the step's own check then sees them.
+            (good + grid + 'extent = [5, 2, 1.5, 4]\n', n + 5, ["'extent'", "5"]),
+            (good + grid + 'extent = [1, 2, true, 4]\n', n + 5, ["'extent'", "an array of strings (or numbers)"]),
             (good + grid + 'resample = "avg"\n', n + 5, ["'resample' 'avg'", "average"]),
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
