@@ -56,7 +56,8 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
                    s.without_value.size(), s.outputs.size(), s.without_value.front().c_str(), why.c_str());
     }
     if (!global.quiet)
-      fmt::print("kalends grid: {} layers on a {} x {} grid -> {} ({} written, {} unchanged)\n", s.outputs.size(),
+      fmt::print("kalends grid: {} layer{} on a {} x {} grid -> {} ({} written, {} unchanged)\n", s.outputs.size(),
+                 s.outputs.size() == 1 ? "" : "s",
                  s.width, s.height, r.out_dir, s.outputs_written, s.outputs_unchanged);
   };
 }

@@ -145,7 +145,8 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const StepReport& r : report.steps) {
         fmt::print("  {:<12} {:<10} {}", r.id, action_name(r.action), r.reason);
         if (r.action == StepReport::Action::ran)
-          fmt::print(" — {:.1f} s, {} files written, {} unchanged{}", r.seconds, r.outputs_written, r.outputs_unchanged,
+          fmt::print(" — {:.1f} s, {} file{} written, {} unchanged{}", r.seconds, r.outputs_written,
+                     r.outputs_written == 1 ? "" : "s", r.outputs_unchanged,
                      r.outputs_removed ? fmt::format(", {} removed (no longer made)", r.outputs_removed) : "");
         fmt::print("\n");
         for (const std::string& note : r.notes) fmt::print("  note: {}\n", note);
