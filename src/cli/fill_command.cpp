@@ -186,8 +186,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
       const std::int64_t pd = s.pixel_dates;
       fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}{}\n", s.dates, s.width,
                  s.height, s.seconds, s.out_dir,
-                 s.outputs_removed ? fmt::format(" ({} earlier outputs no longer made removed)",
-                                                 s.outputs_removed)
+                 s.outputs_removed ? fmt::format(" ({} earlier output{} no longer made removed)",
+                                                 s.outputs_removed, s.outputs_removed == 1 ? "" : "s")
                                    : "");
       fmt::print("  missing {} of pixel-dates; filled {}, could not fill {}, rejected as outliers {}\n",
                  percent(s.missing, pd), percent(s.filled, pd), percent(s.unfilled, pd),

@@ -481,7 +481,7 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
         done = kt.run_kalends(["fill", os.path.join(".", os.path.basename(second), "*.tif"), "--out", out],
                               cwd=self.tmp)
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
+        self.assertIn("(1 earlier output no longer made removed)", done.stdout)
         self.assertNotIn("fill-summary.json of another input", done.stderr)  # its own
         names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_2004-*.tif")))
         self.assertEqual(len(names), 8)
@@ -493,7 +493,7 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
         os.remove(os.path.join(second, "ndvi_A2004129.tif"))
         done = kt.run_kalends(["fill", os.path.join("west-link", "*.tif"), "--out", out], cwd=self.tmp)
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("(1 earlier outputs of dates no longer made removed)", done.stdout)
+        self.assertIn("(1 earlier output no longer made removed)", done.stdout)
         self.assertNotIn("another input", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, "ndvi_2004-05-08.tif")))  # DOY 129
         self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 7)
