@@ -27,6 +27,8 @@ struct StudyGridSummary {
   /// Layers with no value anywhere on the study grid: an extent or clip beside the data, or a
   /// layer empty there. Written all the same (a nightly set keeps its dates).
   std::vector<std::string> without_value;
+  /// A caution the layers carry (KALENDS_CAUTION: suitability's), to be shown with them.
+  std::string caution;
 };
 
 /// The resampling methods a continuous band may take (GDAL's warper names).

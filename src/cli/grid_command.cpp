@@ -36,7 +36,7 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--clip", r.clip, "Study area: any vector source GDAL reads; cells outside are nodata");
   sub->add_option("--resample", r.resample,
                   "For continuous bands: average (area-weighted mean), nearest, bilinear, cubic, min, max, med; "
-                  "flag bands always take the mode")
+                  "a fill's flag takes the flag covering most of the cell among cells with a value")
       ->check(CLI::IsMember(study_grid_resampling_names()))
       ->capture_default_str();
   return [o, &global] {
@@ -55,6 +55,8 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
       std::fprintf(stderr, "note: %zu of %zu layers have no value on the study grid (first: %s): %s\n",
                    s.without_value.size(), s.outputs.size(), s.without_value.front().c_str(), why.c_str());
     }
+    // Suitability's caution goes with its layers wherever they are handed on (also with -q).
+    if (!s.caution.empty()) std::fprintf(stderr, "%s\n", s.caution.c_str());
     if (!global.quiet)
       fmt::print("kalends grid: {} layer{} on a {} x {} grid -> {} ({} written, {} unchanged)\n", s.outputs.size(),
                  s.outputs.size() == 1 ? "" : "s",

@@ -68,7 +68,7 @@ int main(int argc, char** argv) {
   app.set_version_flag("--version", KALENDS_VERSION);
   cli::GlobalOptions global;
   for (int i = 0; i < argc; ++i) global.command_line += (i ? " " : "") + detail::shell_word(argv[i]);
-  app.add_flag("-q,--quiet", global.quiet, "Print only errors");
+  app.add_flag("-q,--quiet", global.quiet, "Print only errors, notes on the data and cautions (no summaries or progress)");
   app.add_flag("-v,--verbose", global.verbose, "Print block sizes, kernel throughput and memory (kalends fill)");
   std::map<CLI::App*, cli::Action> actions;
   for (auto add : {&cli::add_inspect_command, &cli::add_fill_command, &cli::add_index_command, &cli::add_seasons_command,

@@ -175,7 +175,7 @@ Action add_status_command(CLI::App& app, GlobalOptions& global) {
     for (const StepStatus& s : job_status(*o)) {
       if (!global.quiet || s.state != "done")
         fmt::print("{:<12} {:<11} {:<11} {}{}\n", s.id, s.kind, s.state, s.detail,
-                   s.outputs ? fmt::format(" ({} files in its folder)", s.outputs) : "");
+                   s.outputs ? fmt::format(" ({} file{} in its folder)", s.outputs, s.outputs == 1 ? "" : "s") : "");
       // For a monitoring script: 1 where the last run failed a step or was stopped in one.
       if (s.state == "failed" || s.state == "interrupted") global.exit_code = 1;
     }

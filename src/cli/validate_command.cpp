@@ -30,7 +30,9 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--out", r.out_dir, "Output folder (report.json, report.md, series.csv)")->required();
   sub->add_option("--methods", o->methods, "Comma-separated methods to score")->capture_default_str();
   sub->add_option("--seed", r.seed, "Seed of the mask transplant (same seed, same cells)")
-      ->capture_default_str()->check(CLI::NonNegativeNumber);
+      ->capture_default_str()
+      ->check(CLI::Validator([](std::string& text) { return text.starts_with("-") ? std::string("must be 0 or more") : ""; },
+                             "", "SEED"));
   sub->add_option("--withhold", r.withhold, "Share of the observed values to withhold")
       ->capture_default_str();
   sub->add_option("--radius", r.neighbourhood_radius,

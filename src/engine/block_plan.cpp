@@ -9,7 +9,10 @@ namespace kalends {
 Window area_of(int width, int height, const std::optional<Window>& region, const std::string& where) {
   if (!region) return Window{0, 0, width, height};
   const Window& r = *region;
-  if (r.width <= 0 || r.height <= 0 || r.x < 0 || r.y < 0 || r.x + r.width > width || r.y + r.height > height) {
+  if (r.width <= 0 || r.height <= 0)
+    throw UsageError(where, "region " + std::to_string(r.x) + "," + std::to_string(r.y) + " " + std::to_string(r.width) +
+                                "x" + std::to_string(r.height) + ": its width and height must be at least 1 px");
+  if (r.x < 0 || r.y < 0 || r.x + r.width > width || r.y + r.height > height) {
     // Entirely outside, or starting inside and reaching past an edge: say which.
     const bool starts_inside = r.x >= 0 && r.y >= 0 && r.x < width && r.y < height && r.width > 0 && r.height > 0;
     throw UsageError(where, "region " + std::to_string(r.x) + "," + std::to_string(r.y) + " " +

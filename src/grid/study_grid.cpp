@@ -7,6 +7,7 @@
 #include <cpl_string.h>
 #include <gdal_utils.h>
 #include <gdal_priv.h>
+#include <ogr_spatialref.h>
 #include <ogrsf_frmts.h>
 
 #include <algorithm>
@@ -16,6 +17,7 @@
 #include <fmt/format.h>
 #include <fmt/ranges.h>
 #include <map>
+#include <memory>
 #include <set>
 
 #include "io/file_glob.hpp"
@@ -187,6 +189,48 @@ DatasetPtr combined_band(GDALDataset& like, GDALRasterBand& a, GDALRasterBand& b
 constexpr double days_per_year = 365.25;
 constexpr double two_pi = 6.283185307179586;
 
+// A layer that crosses the antimeridian in a geographic study CRS, gridded to the extent GDAL
+// suggests, came out as one row around the whole globe (35879 x 1 cells, 22 with a value) and
+// was reported as written. Its edges are sampled into the study CRS: longitudes spanning more
+// than 180 degrees that would span less once shifted by 360 cross the line. A global layer
+// spans 360 either way and is not refused.
+void require_not_across_antimeridian(const Grid& grid, const std::string& crs, const std::string& where) {
+  OGRSpatialReference target, source;
+  if (target.SetFromUserInput(crs.c_str()) != OGRERR_NONE || !target.IsGeographic() ||
+      source.importFromWkt(grid.crs_wkt.c_str()) != OGRERR_NONE)
+    return;
+  target.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+  source.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+  const std::unique_ptr<OGRCoordinateTransformation> to(OGRCreateCoordinateTransformation(&source, &target));
+  if (!to) return;
+  std::vector<double> x, y;
+  const auto& g = grid.geotransform;
+  constexpr int steps = 32;
+  for (int k = 0; k <= steps; ++k) {
+    const double f = double(k) / steps;
+    for (const auto& [column, row] : {std::pair{f * grid.width, 0.0}, std::pair{f * grid.width, double(grid.height)},
+                                      std::pair{0.0, f * grid.height}, std::pair{double(grid.width), f * grid.height}}) {
+      x.push_back(g[0] + column * g[1] + row * g[2]);
+      y.push_back(g[3] + column * g[4] + row * g[5]);
+    }
+  }
+  std::vector<int> ok(x.size());
+  to->Transform(int(x.size()), x.data(), y.data(), nullptr, ok.data());
+  double low = 1e9, high = -1e9, shifted_low = 1e9, shifted_high = -1e9;
+  for (std::size_t k = 0; k < x.size(); ++k) {
+    if (!ok[k] || !std::isfinite(x[k])) continue;
+    const double shifted = x[k] < 0 ? x[k] + 360 : x[k];
+    low = std::min(low, x[k]), high = std::max(high, x[k]);
+    shifted_low = std::min(shifted_low, shifted), shifted_high = std::max(shifted_high, shifted);
+  }
+  if (high - low > 180 && shifted_high - shifted_low < 180)
+    throw InputError(where, fmt::format("crosses the antimeridian (longitudes {:.2f} to {:.2f} across 180): give "
+                                        "--extent, whose longitudes may run past 180 (e.g. {:.1f},...,{:.1f},...)",
+                                        shifted_low > 180 ? shifted_low - 360 : shifted_low,
+                                        shifted_high > 180 ? shifted_high - 360 : shifted_high,
+                                        std::floor(shifted_low), std::ceil(shifted_high)));
+}
+
 }  // namespace
 
 const std::vector<std::string>& study_grid_resampling_names() {
@@ -243,6 +287,11 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       throw InputError(request.clip, "cannot be read as a vector source with a layer (" +
                                          detail::gdal_message("no layer") + ")");
     if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
+    // The warper's own message named the first layer, not the clip ("Cutline not of polygon type").
+    const OGRwkbGeometryType type = wkbFlatten(vector->GetLayer(0)->GetGeomType());
+    if (type != wkbPolygon && type != wkbMultiPolygon && type != wkbUnknown && type != wkbGeometryCollection)
+      throw InputError(request.clip, fmt::format("holds {} geometries, not polygons: a clip needs the study area's outline",
+                                                 OGRGeometryTypeToName(type)));
   }
   const std::vector<Source> sources = sources_of(request.inputs, request.out_dir);
   // An output under an input's own path (--out the input folder): it would replace the raster
@@ -269,8 +318,27 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
                                                    s.relative, it->second));
   }
   // Every input is opened before anything is written: a bad one leaves the outputs as they were.
+  StudyGridSummary summary;
   std::vector<DatasetPtr> datasets;
-  for (const Source& s : sources) datasets.push_back(detail::open_raster(s.path));
+  std::vector<std::string> source_crs;  // "" where the file states its own; a CRS kalends reads otherwise
+  std::set<std::string> cautions;
+  for (const Source& s : sources) {
+    datasets.push_back(detail::open_raster(s.path));
+    GDALDataset& d = *datasets.back();
+    const Grid grid = detail::raster_grid(d);
+    // Without a place, the warper had put the layer wherever the numbers fell in the study CRS
+    // (any UTM zone took it), or failed with an allocation message.
+    if (!grid.has_geotransform)
+      throw InputError(s.path, "has no georeferencing (no geotransform): it cannot be placed on a study grid");
+    if (grid.crs_wkt.empty())
+      throw InputError(s.path, "states no CRS: it cannot be placed on a study grid (give the file its CRS, e.g. "
+                               "gdal_edit.py -a_srs EPSG:32736)");
+    if (!request.extent) require_not_across_antimeridian(grid, request.crs, s.path);
+    // A CF NetCDF with longitude/latitude axes and no CRS: WGS 84, as every command reads it.
+    source_crs.push_back(d.GetSpatialRef() ? std::string() : grid.crs_wkt);
+    if (const char* caution = d.GetMetadataItem("KALENDS_CAUTION")) cautions.insert(caution);
+  }
+  for (const std::string& c : cautions) summary.caution += (summary.caution.empty() ? "" : "\n") + c;
   // An output replaces only an earlier kalends output (grid's carry KALENDS_GRID_SOURCE): a
   // user's raster under an output's name would be lost.
   for (const Source& s : sources)
@@ -298,8 +366,20 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (!request.extent) common.push_back("-crop_to_cutline");
   }
 
-  StudyGridSummary summary;
   std::error_code ec;
+  // Every layer is written under a temporary name first, and all are published together at the
+  // end: a layer that fails half-way had left the earlier ones replaced and the rest not.
+  struct Staged {
+    std::string temporary, target;
+  };
+  std::vector<Staged> staged;
+  struct RemoveStaged {
+    std::vector<Staged>& staged;
+    ~RemoveStaged() {
+      std::error_code ignored;
+      for (const Staged& s : staged) fs::remove(s.temporary, ignored);
+    }
+  } remove_staged{staged};
   for (std::size_t i = 0; i < sources.size(); ++i) {
     GDALDataset& in = *datasets[i];
     const std::string& where = sources[i].path;
@@ -323,6 +403,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     auto warp_with = [&](GDALDataset& source, const std::string& method) -> GDALDataset& {
       std::vector<std::string> args = common;
       args.insert(args.end(), {"-r", method});
+      if (!source_crs[i].empty()) args.insert(args.end(), {"-s_srs", source_crs[i]});
       keep.push_back(warp(source, args, where));
       warped_grid = keep.back().get();
       return *keep.back();
@@ -453,6 +534,16 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
                              std::count(classes.begin(), classes.end(), from_band) > 0;
       copy_band(warped, to, src->GetDescription(), src->GetUnitType() ? src->GetUnitType() : "", how[from_band],
                 as_stored ? src->GetScale() : 1.0, as_stored ? src->GetOffset() : 0.0);
+      // The band's own metadata (a NetCDF band's time, a seasons band's days covered) travels
+      // with it; the band had kept only its resampling, and a gridded NetCDF had lost its dates.
+      if (char** items = src->GetMetadata())
+        for (int k = 0; items[k]; ++k) {
+          char* key = nullptr;
+          const char* value = CPLParseNameValue(items[k], &key);
+          if (key && value && std::string(key) != "KALENDS_RESAMPLING")
+            result->GetRasterBand(to)->SetMetadataItem(key, value);
+          CPLFree(key);
+        }
       // What the band's classes mean (CLASS_MEANINGS, FLAG_MEANINGS) travels with it.
       for (const char* item : {"CLASS_MEANINGS", "FLAG_MEANINGS"})
         if (const char* text = src->GetMetadataItem(item)) result->GetRasterBand(to)->SetMetadataItem(item, text);
@@ -487,6 +578,9 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
           if (share_band) filled[c] = NAN;
           if (sd_out) sd[c] = NAN;
         }
+      // An interpolating kernel (cubic, lanczos) overshoots: a standard error is never negative.
+      for (float& v : sd)
+        if (v < 0) v = 0;
       io(GF_Write, 1, value);
       io(GF_Write, flag_out, flag);
       if (share_band) io(GF_Write, share_band, filled);
@@ -536,13 +630,15 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       fs::remove(temporary, ec);
       ++summary.outputs_unchanged;
     } else {
-      detail::publish_file(temporary, target.string());
+      staged.push_back({temporary, target.string()});
       ++summary.outputs_written;
     }
     summary.outputs.push_back(target.string());
     summary.width = width;
     summary.height = height;
   }
+  for (const Staged& s : staged) detail::publish_file(s.temporary, s.target);
+  staged.clear();
   return summary;
 }
 

@@ -7,6 +7,8 @@
 #include <sys/statvfs.h>
 #include <unistd.h>
 
+#include <algorithm>
+#include <cctype>
 #include <cerrno>
 #include <cmath>
 #include <cstdio>
@@ -14,6 +16,7 @@
 #include <filesystem>
 #include <fstream>
 #include <iterator>
+#include <regex>
 #include <set>
 #include <stdexcept>
 
@@ -170,13 +173,14 @@ OutputFolder::OutputFolder(const std::string& path) {
     // A file system without locks (some network mounts) runs unguarded, as before.
     if (held) throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
   }
-  // Holding the folder, the hidden temporaries a killed run left here (".<name>.partial", its
-  // rasters' and text files') are nobody's: removed, as they would otherwise stay for good.
+  // Holding the folder, the hidden temporaries a killed run left here are nobody's: removed, as
+  // they would otherwise stay for good. Only names of the forms kalends writes (".<output>.partial"
+  // and ".<output>.<tag>.partial" of its rasters, tables and summaries); a user's own stay.
+  static const std::regex temporary(R"(^\..+\.(tif|vrt|json|md|csv|tsv|html)(\.[A-Za-z0-9_-]+)?\.partial$)");
   if (lock_ >= 0)
     for (const auto& entry : fs::directory_iterator(path, ec)) {
       const std::string name = entry.path().filename().string();
-      if (name.size() > 9 && name.front() == '.' && name.ends_with(".partial") && entry.is_regular_file(ec))
-        fs::remove(entry.path(), ec);
+      if (std::regex_match(name, temporary) && entry.is_regular_file(ec)) fs::remove(entry.path(), ec);
     }
 }
 
@@ -200,13 +204,25 @@ void require_out_apart_from(const Stack& stack, const std::string& out_dir, cons
   }
 }
 
-std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name, int first_year,
-                                            int last_year) {
+std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name,
+                                            const std::vector<std::string>& kinds, int first_year, int last_year) {
   std::set<int> removed;
   std::error_code ec;
+  // "<name>_<kind>_YYYY.tif" exactly: another set whose name begins with this one's ("ndvi_sd",
+  // a --band 2 run beside "ndvi") is not this set's.
+  const auto ours = [&](const std::string& file) {
+    for (const std::string& kind : kinds) {
+      const std::string prefix = name + "_" + kind + "_";
+      if (file.size() == prefix.size() + 8 && file.starts_with(prefix) && file.ends_with(".tif") &&
+          std::all_of(file.begin() + std::ptrdiff_t(prefix.size()), file.end() - 4,
+                      [](char c) { return std::isdigit(static_cast<unsigned char>(c)) != 0; }))
+        return true;
+    }
+    return false;
+  };
   for (const auto& entry : fs::directory_iterator(folder, ec)) {
     const std::string file = entry.path().filename().string();
-    if (!entry.is_regular_file() || !file.starts_with(name + "_") || entry.path().extension() != ".tif") continue;
+    if (!entry.is_regular_file() || !ours(file)) continue;
     const std::map<std::string, std::string> metadata = raster_metadata(entry.path().string());
     const auto text = metadata.find("KALENDS_YEAR");
     if (text == metadata.end() || !metadata.count("KALENDS_VERSION")) continue;

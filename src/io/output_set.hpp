@@ -62,12 +62,12 @@ class OutputFolder {
 void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option);
 
 /// After a run that wrote the year-specific layers of [first_year, last_year] into `folder`:
-/// removes the rasters `<name>_*.tif` there whose KALENDS_YEAR lies outside that span, an
+/// removes the rasters `<name>_<kind>_YYYY.tif` there whose KALENDS_YEAR lies outside that span, an
 /// earlier run's years that are no longer in the input (or in --years). Later steps would read
 /// them with the new layers as one set. Only kalends outputs carry KALENDS_YEAR. Returns the
 /// years removed.
-std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name, int first_year,
-                                            int last_year);
+std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name,
+                                            const std::vector<std::string>& kinds, int first_year, int last_year);
 
 class OutputSet {
  public:

@@ -192,17 +192,23 @@ std::string memory_key(const Job& job) {
 // Every step that reads job inputs alone and whose kind can check its budget, checked before
 // the first step runs: a job whose third fill cannot hold one block fails at once, not after
 // hours of the first two (nor in every task of a cluster array). `wanted` says whether a step
-// is to be checked and for which rows. Input errors are left to the step itself (--skip-bad).
-void check_budgets(const Job& job, const std::string& base, std::int64_t memory, int threads,
-                   const std::vector<std::string>& excluded,
-                   const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted) {
+// is to be checked and for which rows. Returns the first step refused and the error naming the
+// job file's key. Anything else wrong (an input missing) is left to the step itself, in the
+// job's words; a damaged file is left out of the check, as --skip-bad would leave it out.
+std::optional<std::pair<std::string, UsageError>> check_budgets(
+    const Job& job, const std::string& base, std::int64_t memory, int threads, std::vector<std::string> excluded,
+    const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted) {
   for (const JobStep& step : job.steps) {
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
     if (!kind || !kind->check_memory || step.inputs.empty() ||
         !std::all_of(step.inputs.begin(), step.inputs.end(), [&](const std::string& n) { return job.inputs.count(n) > 0; }))
       continue;
     std::optional<Window> region;
-    if (!wanted(step, region)) continue;
+    try {
+      if (!wanted(step, region)) continue;
+    } catch (const std::exception&) {
+      continue;
+    }
     detail::StepContext context{step.options};
     context.job_path = job.path;
     context.folder = step_folder(base, step.id);
@@ -210,14 +216,26 @@ void check_budgets(const Job& job, const std::string& base, std::int64_t memory,
     context.threads = threads;
     context.region = region;
     context.resolve = [&](const std::string& name) { return resolve_job_input(job.inputs.at(name), excluded); };
-    try {
-      kind->check_memory(context);
-    } catch (const UsageError& e) {
-      if (e.where() == "--memory") throw UsageError(memory_key(job), fmt::format("step '{}': {}", step.id, e.reason()));
-    } catch (const Error&) {
-      // reported by the step when it runs, in the job's words
+    for (int attempt = 0; attempt < 1000; ++attempt) {
+      try {
+        kind->check_memory(context);
+      } catch (const UsageError& e) {
+        if (e.where() == "--memory")
+          return std::pair{step.id, UsageError(memory_key(job), fmt::format("step '{}': {}", step.id, e.reason()))};
+      } catch (const InputError& e) {
+        std::error_code ec;
+        if (!e.where().empty() && fs::is_regular_file(e.where(), ec) &&
+            std::find(excluded.begin(), excluded.end(), e.where()) == excluded.end()) {
+          excluded.push_back(e.where());
+          continue;
+        }
+      } catch (const std::exception&) {
+        // a folder that cannot be listed, say: the step says so in the job's words when it runs
+      }
+      break;
     }
   }
+  return std::nullopt;
 }
 
 // The hidden .partial files a run writes before renaming them into place; a killed run
@@ -303,14 +321,41 @@ class Runner {
         recorded_at_start_[step.id] = record->fingerprint;
     // The budgets of the steps that will run, before the first of them (--finalize only stitches
     // the split steps, whose budgets `kalends plan` checked).
-    check_budgets(job_, base_, cli_memory(), options_.threads > 0 ? options_.threads : job_.threads, excluded_,
-                  [&](const JobStep& step, std::optional<Window>& region) {
-                    const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
-                    if (planned && (shard_ ? !planned->split : planned->split)) return false;
-                    if (up_to_date(step)) return false;
-                    if (shard_) region = plan_->window(planned->root, shard_);
-                    return true;
-                  });
+    const int threads = options_.threads > 0 ? options_.threads : job_.threads;
+    const auto refused =
+        check_budgets(job_, base_, cli_memory(), threads, excluded_, [&](const JobStep& step, std::optional<Window>& region) {
+          const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
+          if (planned && (shard_ ? !planned->split : planned->split)) return false;
+          if (up_to_date(step)) return false;
+          if (shard_) region = plan_->window(planned->root, shard_);
+          return true;
+        });
+    if (refused) {
+      // Recorded as that step's failure, as if the run had reached it: `status` says so and
+      // exits 1 for a monitoring script; the steps before it did not run.
+      for (const JobStep& step : job_.steps) {
+        StepReport r;
+        r.id = step.id;
+        r.kind = step.kind;
+        r.action = step.id == refused->first ? StepReport::Action::failed : StepReport::Action::not_reached;
+        if (step.id == refused->first) {
+          r.reason = refused->second.what();
+          if (!options_.dry_run) {
+            try {
+              db_->step_failed(step.id, step.kind, r.reason);
+            } catch (const Error&) {
+            }
+          }
+          if (events_.step_finished) events_.step_finished(r);
+        }
+        report_.steps.push_back(r);
+      }
+      report_.error = refused->second.what();
+      report_.exit_code = 2;
+      report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+      report_.peak_memory_bytes = detail::peak_resident_bytes();
+      return report_;
+    }
     for (const JobStep& step : job_.steps) {
       StepReport r;
       r.id = step.id;
@@ -1115,13 +1160,14 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   const detail::ShardPlan plan =
       detail::make_shard_plan(job, out, shards, options.threads, &left_out, options.skip_bad ? &report.skipped_inputs : nullptr);
   // A budget too small for one block of a split step: found here, not by every array task.
-  check_budgets(job, plan.shard_folder(1), parse_memory_size(job.memory), plan.threads, left_out,
-                [&](const JobStep& step, std::optional<Window>& region) {
-                  const detail::PlannedStep* planned = plan.step(step.id);
-                  if (!planned || !planned->split) return false;
-                  region = plan.window(planned->root, 1);
-                  return true;
-                });
+  if (const auto refused = check_budgets(job, plan.shard_folder(1), parse_memory_size(job.memory), plan.threads,
+                                         left_out, [&](const JobStep& step, std::optional<Window>& region) {
+                                           const detail::PlannedStep* planned = plan.step(step.id);
+                                           if (!planned || !planned->split) return false;
+                                           region = plan.window(planned->root, 1);
+                                           return true;
+                                         }))
+    throw refused->second;
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());

@@ -336,7 +336,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   detail::check_temperature_counts(source, counts);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
-  const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, first_year, last_year);
+  const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, {"year", "summary"}, first_year, last_year);
 
   SuitabilitySummary summary;
   summary.dates_at_month_ends = dates_at_month_ends(times);

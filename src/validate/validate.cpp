@@ -212,9 +212,9 @@ std::vector<std::size_t> series_pixels(const std::vector<std::uint8_t>& withheld
 std::string withhold_shortfall(const ValidateReport& report, double asked) {
   // Within 1 % of the goal is the goal: the last mask is cut where the goal is met.
   if (report.withheld >= report.withhold_goal * 99 / 100) return "";
-  return fmt::format("{:.1f} % of the observed values were withheld, not the {:g} % asked for: the other dates' "
-                     "cloud masks cover no more of the observed cells (scores rest on fewer cells, and on "
-                     "shorter gaps, than asked)",
+  return fmt::format("{:.1f} % of the observed values were withheld, not the {:g} % asked for: the transplant "
+                     "stops after 50 rounds of a mask laid over each date, and the other dates' masks covered no "
+                     "more in them (scores rest on fewer cells, and on shorter gaps, than asked)",
                      100.0 * double(report.withheld) / double(std::max<std::int64_t>(1, report.observed)), 100 * asked);
 }
 

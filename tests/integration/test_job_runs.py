@@ -178,6 +178,22 @@ class JobFile(kt.TempDirTestCase):
             self.assertFalse(glob.glob(os.path.join(out, "smooth", "*.tif")), args)
             self.assertFalse(os.path.exists(os.path.join(out, ".kalends", "plan.tsv")), args)
         self.assertFalse(os.path.exists(os.path.join(out, "joint")))
+        # The refusal is the step's failure to `status` (exit 1 for a monitoring script), as it
+        # was when the run reached the step.
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertEqual(status.returncode, 1, status.stdout)
+        self.assertRegex(status.stdout, r"joint +fill +failed")
+        # A damaged composite does not switch the check off: it is left out of it, as --skip-bad
+        # leaves it out of the run.
+        stack = os.path.join(folder, "stack", "ndvi")
+        with open(os.path.join(stack, "ndvi_2099-01-01.tif"), "w") as f:
+            f.write("not a raster")
+        for args in (["run", job, "--dry-run"], ["run", job, "--skip-bad"]):
+            done = subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300)
+            self.assertEqual(done.returncode, 2, (args, done.stdout, done.stderr))
+            self.assertIn("step 'joint': budget of 110 MiB is too small", done.stderr.strip().splitlines()[-1])
+            self.assertFalse(glob.glob(os.path.join(out, "smooth", "*.tif")), args)
+        os.remove(os.path.join(stack, "ndvi_2099-01-01.tif"))
         # The default budget is named as such when the file sets none.
         with open(job) as f:
             text = f.read()
@@ -342,7 +358,7 @@ class JobFile(kt.TempDirTestCase):
             (good + grid + 'extent = ["1", "2", "three", "4"]\n', n + 5, ["'extent' 'three'", "expected a number"]),
             # Numbers are read as numbers are in other lists (they had been refused as 'an array of
             # strings'): the step's own check then sees them.
-            (good + grid + 'extent = [5, 2, 1.5, 4]\n', n + 5, ["'extent'", "5"]),
+            (good + grid + 'extent = [5, 2, 1.5, 4]\n', n + 5, ["'extent'", "with XMIN < XMAX"]),
             (good + grid + 'extent = [1, 2, true, 4]\n', n + 5, ["'extent'", "an array of strings (or numbers)"]),
             (good + grid + 'resample = "avg"\n', n + 5, ["'resample' 'avg'", "average"]),
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),

@@ -111,6 +111,11 @@ class ValidateOptions(kt.TempDirTestCase):
         done = kt.run_kalends(["validate", os.path.join(self.premasked, "ndvi_*.tif"), "--out",
                                os.path.join(self.tmp, "v_bad_subset"), "--subset", "40,5,30,28"])
         self.assertIn("region 40,5 30x28 reaches beyond the raster of 48x40 px", done.stderr)
+        # An empty one is said to be empty (it had been said to lie outside the raster).
+        done = kt.run_kalends(["validate", os.path.join(self.premasked, "ndvi_*.tif"), "--out",
+                               os.path.join(self.tmp, "v_bad_subset"), "--subset", "0,0,0,5"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("region 0,0 0x5: its width and height must be at least 1 px", done.stderr)
 
     def test_a_rule_without_a_qa_stack_is_refused(self):
         done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--out",
@@ -197,6 +202,9 @@ class ValidateOptions(kt.TempDirTestCase):
         stale = os.path.join(out, ".report.md.4242.partial")     # what a killed run leaves
         with open(stale, "w") as f:
             f.write("half a report")
+        users = os.path.join(out, ".notes.partial")              # a user's, not of kalends' forms
+        with open(users, "w") as f:
+            f.write("mine")
         fd = os.open(out, os.O_RDONLY)
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)          # as a running kalends holds it
@@ -204,13 +212,14 @@ class ValidateOptions(kt.TempDirTestCase):
                                    "--out", out])
             self.assertEqual(done.returncode, 1, done.stderr)
             self.assertIn("another kalends command is writing into this folder", done.stderr)
-            self.assertEqual(os.listdir(out), [os.path.basename(stale)])
+            self.assertEqual(sorted(os.listdir(out)), sorted([os.path.basename(stale), os.path.basename(users)]))
         finally:
             os.close(fd)
         done = kt.run_kalends(["-q", "validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
                                "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertFalse(os.path.exists(stale))
+        self.assertTrue(os.path.exists(users))
 
     def test_options_that_make_no_sense_are_refused(self):
         pattern = os.path.join(self.stack, "ndvi_*.tif")

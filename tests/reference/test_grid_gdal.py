@@ -228,6 +228,16 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         run_grid_ok(self, [source, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.25"])
         ds = kt.gdal().Open(os.path.join(out, "bcsd_obs_1999_tas.tif"))
         self.assertEqual(ds.RasterCount, 12)
+        # Each band keeps its own metadata: the gridded file still says its dates (it had lost
+        # them, and kalends could no longer read it as a stack).
+        source_ds = kt.gdal().Open(source)
+        for b in (1, 12):
+            self.assertEqual(ds.GetRasterBand(b).GetMetadataItem("NETCDF_DIM_time"),
+                             source_ds.GetRasterBand(b).GetMetadataItem("NETCDF_DIM_time"))
+        source_ds = None
+        ds = None
+        done = kt.run_kalends(["inspect", os.path.join(out, "bcsd_obs_1999_tas.tif"), "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
         # An --out that is the input folder: the outputs would replace their own inputs.
         folder = os.path.join(self.tmp, "own-folder")
         os.makedirs(folder)
@@ -465,6 +475,100 @@ class AreaWeightedMeans(kt.TempDirTestCase):
             self.assertEqual(ds.GetRasterBand(b).GetMetadataItem("KALENDS_RESAMPLING"), "mode")
 
 
+class Refusals(kt.TempDirTestCase):
+    """Inputs the warper would place wrongly, refused before anything is written."""
+
+    def layer(self, folder, name, geotransform=(300000.0, 100.0, 0, 8000000.0, 0, -100.0), epsg=32736, size=10):
+        os.makedirs(folder, exist_ok=True)
+        path = os.path.join(folder, name)
+        kt.write_raster(path, np.full((size, size), 0.5, np.float32), geotransform=geotransform, epsg=epsg)
+        return path
+
+    def test_a_failing_layer_leaves_every_earlier_output_as_it_was(self):
+        # The second run fails on a layer without georeferencing: the first run's outputs had
+        # already been replaced by the second's (nearest instead of average) when it stopped.
+        folder = os.path.join(self.tmp, "in")
+        for name in ("a.tif", "b.tif"):
+            self.layer(folder, name)
+        out = os.path.join(self.tmp, "out")
+        run_grid_ok(self, [folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "200"])
+        before = {n: open(os.path.join(out, n), "rb").read() for n in ("a.tif", "b.tif")}
+        kt.write_raster(os.path.join(folder, "z.tif"), np.ones((10, 10), np.float32))
+        done = kt.run_kalends(["grid", folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "200",
+                               "--resample", "nearest"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("z.tif: has no georeferencing", done.stderr)
+        self.assertEqual({n: open(os.path.join(out, n), "rb").read() for n in ("a.tif", "b.tif")}, before)
+        self.assertEqual(sorted(os.listdir(out)), ["a.tif", "b.tif"])
+
+    def test_a_layer_without_a_crs_is_refused(self):
+        # It had been put wherever its numbers fell in any projected study CRS.
+        path = self.layer(os.path.join(self.tmp, "nocrs"), "n.tif", epsg=None)
+        done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "o"), "--crs", "EPSG:32737",
+                               "--resolution", "200"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("n.tif: states no CRS", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "o")))
+
+    def test_a_layer_across_the_antimeridian_needs_an_extent(self):
+        # An invented island district in UTM 60S astride 180 degrees: GDAL's extent for it in
+        # EPSG:4326 had been one row around the globe, written without a word.
+        path = self.layer(os.path.join(self.tmp, "am"), "lst.tif", (797750, 250, 0, 8146250, 0, -250), 32760, 180)
+        done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "am-out"), "--crs", "EPSG:4326",
+                               "--resolution", "0.01"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("lst.tif: crosses the antimeridian", done.stderr)
+        out = os.path.join(self.tmp, "am-extent")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.01", "--extent",
+                           "179.7,-17.3,180.3,-16.7"])
+        warped = kt.gdal().Warp("", path, format="MEM", dstSRS="EPSG:4326", xRes=0.01, yRes=0.01,
+                                outputBounds=(179.7, -17.3, 180.3, -16.7), resampleAlg="average",
+                                outputType=kt.gdal().GDT_Float32, dstNodata=float("nan"))
+        expected = warped.ReadAsArray()
+        warped = None
+        ds = kt.gdal().Open(os.path.join(out, "lst.tif"))
+        got = ds.ReadAsArray()
+        ds = None
+        self.assertEqual(got.shape, (60, 60))
+        np.testing.assert_array_equal(np.isnan(got), np.isnan(expected))
+        self.assertGreater(np.isfinite(got).sum(), 1000)
+        # A layer far from the line is not refused.
+        run_grid_ok(self, [self.layer(os.path.join(self.tmp, "mainland"), "m.tif"), "--out",
+                           os.path.join(self.tmp, "m-out"), "--crs", "EPSG:4326", "--resolution", "0.01"])
+
+    def test_a_clip_of_points_is_refused_naming_it(self):
+        path = self.layer(os.path.join(self.tmp, "clip-in"), "c.tif")
+        points = os.path.join(self.tmp, "points.geojson")
+        with open(points, "w") as f:
+            json.dump({"type": "FeatureCollection", "features": [{"type": "Feature", "properties": {},
+                       "geometry": {"type": "Point", "coordinates": [33.0, -18.0]}}]}, f)
+        done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "clip-out"), "--crs", "EPSG:4326",
+                               "--resolution", "0.01", "--clip", points])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("points.geojson: holds Point geometries, not polygons", done.stderr)
+
+    def test_an_sd_never_goes_negative_and_a_caution_is_shown(self):
+        # Lanczos overshoots: an invented fill output whose sd jumps from 0 to 0.2 had come out
+        # with sds below 0. Suitability's caution, kept in the files, is shown on the console.
+        value = np.full((20, 20), 0.4, np.float32)
+        sd = np.where(np.arange(20)[None, :] % 4 < 2, 0.0, 0.2).repeat(20, 0).reshape(20, 20).astype(np.float32)
+        flags = np.where(sd > 0, 2, 0).astype(np.float32)
+        path = os.path.join(self.tmp, "lanczos-in", "ndvi_2020-01-01.tif")
+        os.makedirs(os.path.dirname(path))
+        write_named_bands(path, (("value", value), ("sd", sd), ("flag", flags)),
+                          {"KALENDS_DATE": "2020-01-01", "KALENDS_CAUTION": "Caution: invented for this test."})
+        out = os.path.join(self.tmp, "lanczos-out")
+        done = kt.run_kalends(["-q", "grid", path, "--out", out, "--crs", "EPSG:32736", "--resolution", "30",
+                               "--resample", "lanczos"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("Caution: invented for this test.", done.stderr)
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        gridded = ds.GetRasterBand(2).ReadAsArray()
+        ds = None
+        self.assertGreaterEqual(np.nanmin(gridded), 0.0)
+        self.assertGreater(np.nanmax(gridded), 0.15)
+
+
 class Clipping(kt.TempDirTestCase):
     def test_cells_outside_the_study_area_are_nodata(self):
         g = kt.gdal()
@@ -527,7 +631,7 @@ class Clipping(kt.TempDirTestCase):
         for _ in range(2):
             done = kt.run_kalends(["grid", folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "400"])
             self.assertEqual(done.returncode, 0, done.stderr)
-            self.assertIn("1 layers", done.stdout)
+            self.assertIn("1 layer on a", done.stdout)
         self.assertEqual(sorted(os.listdir(out)), ["ndvi_2021-03-01.tif"])
         g = kt.gdal()
         once = g.Open(os.path.join(out, "ndvi_2021-03-01.tif"))

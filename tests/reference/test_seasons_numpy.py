@@ -391,6 +391,13 @@ class SeasonsCommand(kt.TempDirTestCase):
         miss = g.Open(os.path.join(out, "ndvi_synoptic_miss.tif"))
         self.assertEqual([anomaly.GetRasterBand(1).GetUnitType(), miss.GetRasterBand(1).GetUnitType(),
                           miss.GetRasterBand(2).GetUnitType()], ["NDVI", "NDVI", ""])
+        # A run of the values over fewer years removes its own year layers outside them, not the
+        # sd set's (whose names begin with the values' name): they had gone too.
+        done = kt.run_kalends(["-q", "seasons", folder, "--out", out, "--years", "2011-2012"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "ndvi_year_2010.tif")))
+        for kind in ("year", "anomaly", "anomaly_standardised", "cycle"):
+            self.assertTrue(os.path.exists(os.path.join(out, "ndvi_sd_%s_2010.tif" % kind)), kind)
         # The stack's own folder as --out: refused before anything is written there.
         before = sorted(os.listdir(folder))
         done = kt.run_kalends(["-q", "seasons", folder, "--out", folder])

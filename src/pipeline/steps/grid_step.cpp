@@ -45,6 +45,7 @@ StepKind grid_step_kind() {
       const StudyGridSummary s = run_study_grid(grid_request(c, name));
       outcome.outputs_written += s.outputs_written;
       outcome.outputs_unchanged += s.outputs_unchanged;
+      if (!s.caution.empty()) outcome.caution = s.caution;  // suitability's, shown with the step
     }
     return outcome;
   };
