@@ -69,6 +69,7 @@ struct PlanReport {
   std::vector<std::string> shard_rows;                            // "1: ndvi rows 0-256", ...
   std::string sbatch;                                             // the command line to submit
   std::vector<std::string> skipped_inputs;  // --skip-bad: "path: reason" of files left out
+  std::string script_note;  // where the array script named may not be where the tasks run, or ""
 };
 PlanReport plan_job(const RunOptions& options, int shards);
 

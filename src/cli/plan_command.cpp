@@ -53,6 +53,7 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
     }
     fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + own_path()),
                plan.sbatch.substr(7));
+    if (!plan.script_note.empty()) fmt::print(stderr, "note: {}\n", plan.script_note);
     // As kalends run --skip-bad: the files left out on standard error, exit 3 (done in part).
     for (const std::string& skipped : plan.skipped_inputs) fmt::print(stderr, "kalends plan: skipped input: {}\n", skipped);
     if (!plan.skipped_inputs.empty()) global.exit_code = 3;

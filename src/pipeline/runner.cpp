@@ -1198,6 +1198,19 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   for (char c : job.name.empty() ? fs::path(job.path).stem().string() : job.name)
     name += std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '_' ? c : '-';
   const std::string sbatch_template = cluster_template();
+  // A program outside the tree it was built from that names that tree's script (a copy with no
+  // PREFIX/share/kalends beside it): the nodes may not see it.
+  {
+    std::error_code ec;
+    const fs::path self = fs::read_symlink("/proc/self/exe", ec);
+    const fs::path tree = fs::path(KALENDS_CLUSTER_TEMPLATE).parent_path().parent_path().parent_path();
+    const auto [mismatch, rest] = std::mismatch(tree.begin(), tree.end(), self.begin(), self.end());
+    if (sbatch_template == KALENDS_CLUSTER_TEMPLATE && !ec && mismatch != tree.end())
+      report.script_note = fmt::format("the array script named is the source tree's ({}), as {} has none at "
+                                       "PREFIX/share/kalends/kalends-array.sbatch beside it: every node must see "
+                                       "that path",
+                                       sbatch_template, self.string());
+  }
   report.sbatch = fmt::format("sbatch --array=1-{} --cpus-per-task={} --mem={}M --job-name=kalends-{} {} {}",
                               plan.shards, plan.threads, report.memory_mib, name, detail::shell_word(sbatch_template),
                               detail::shell_word(fs::absolute(job.path).string()));

@@ -224,6 +224,10 @@ class JobFile(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
         named = done.stdout.split()[-2]
         self.assertTrue(named.endswith("kalends-array.sbatch") and os.path.isfile(named), done.stdout)
+        # ... and says so: a copy of the program outside its tree names a path nodes may not see.
+        self.assertIn("note: the array script named is the source tree's", done.stderr)
+        done = subprocess.run([kt.KALENDS_BIN, "plan", job, "--shards", "1", "-q"], capture_output=True, text=True)
+        self.assertNotIn("note:", done.stderr)
 
     def test_a_compare_step_takes_the_layer_set_by_name(self):
         # 'name' as compare's --name (it had been an unknown key): the set the seasons step
