@@ -87,9 +87,12 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
                                 summary.first_year));
   for (const auto& [year, pixels] : summary.years_with_cycle_gaps)
     notes.push_back(fmt::format("the {} cycle layer is empty at {} of the {} pixels whose synoptic cycle has one: {} "
-                                "lacks a value in some period there (a stack that starts or ends within the year, or "
-                                "dates without data); fill the gaps first with kalends fill",
-                                year, pixels, summary.pixels_with_cycle, year));
+                                "lacks a value in some period there ({})",
+                                year, pixels, summary.pixels_with_cycle, year,
+                                summary.from_fill ? "the stack starts or ends within the year, or the fill left "
+                                                    "values out: flag 3"
+                                                  : "a stack that starts or ends within the year, or dates without "
+                                                    "data; fill the gaps first with kalends fill"));
   if (!summary.partly_covered.empty()) {
     const auto& [label, covered, days] = summary.partly_covered.front();
     const std::size_t count = summary.partly_covered.size();

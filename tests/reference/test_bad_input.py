@@ -534,7 +534,7 @@ class BadInput(kt.TempDirTestCase):
                  (["--method", "spacetime", "--season-smoothing", "-1"], "--season-smoothing", "0 or more"),
                  (["--subset", "0,0,5"], "--subset", "COLUMN,ROW,WIDTH,HEIGHT"),
                  (["--subset", "0,0,5,5", "--tiles", "x/{tile}/"], "--subset", "tile set"),
-                 (["--subset", "2,2,0,5"], "region", "outside"),
+                 (["--subset", "2,2,0,5"], "region", "at least 1 px"),
                  # An option of another method would do nothing (the default method is whittaker).
                  (["--harmonics", "2"], "--harmonics", "applies to the harmonic method only"),
                  (["--method", "harmonic", "--lambda", "10"], "--lambda", "applies to the whittaker method only"),
