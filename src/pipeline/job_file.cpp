@@ -263,7 +263,18 @@ Job read_job(const std::string& path) {
       if (found == spec->keys.end()) {
         std::string allowed;
         for (const StepKey& key_spec : spec->keys) allowed += std::string(allowed.empty() ? "" : ", ") + key_spec.name;
-        fail(path, key.source(), "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")");
+        // Where a key is not the command line's option with '_' for '-', say which it is.
+        static const std::map<std::string, std::string> named_otherwise{{"day_time", "day_hour"},
+                                                                          {"night_time", "night_hour"}};
+        const auto other = named_otherwise.find(k);
+        const bool has_other = other != named_otherwise.end() &&
+                               std::any_of(spec->keys.begin(), spec->keys.end(),
+                                           [&](const StepKey& key_spec) { return other->second == key_spec.name; });
+        fail(path, key.source(),
+             "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")" +
+                 (has_other ? "; the command line's --" + std::string(k).replace(k.find('_'), 1, "-") + " is '" +
+                                  other->second + "' here"
+                            : ""));
       }
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {

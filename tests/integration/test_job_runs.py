@@ -691,6 +691,10 @@ class JobWording(kt.TempDirTestCase):
         done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nnight_hour = 12.0\n')
         self.assertIn("job.toml:13: 'day_hour' 13.5 'night_hour' 12: the day overpass must be the warm one",
                       done.stderr)
+        # The command line's name for the key: refused, saying what it is called here.
+        done = refused('day = "temp"\nnight = "temp"\nunits = "celsius"\nday_time = 13.5\n')
+        self.assertIn("unknown key 'day_time'", done.stderr)
+        self.assertIn("the command line's --day-time is 'day_hour' here", done.stderr)
         # Temperatures a hundred times too large: the advice names the step's and input's keys.
         done = refused('temperature = "temp"\nunits = "kelvin"\n')
         self.assertIn("'temperature' %s" % os.path.join(folder, "temp", "t_*.tif"), done.stderr)
