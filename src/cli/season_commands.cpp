@@ -123,10 +123,14 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
                            "more (a synoptic of one year is that year)\n",
                    r->seasons_dir.c_str());
     if (!global.quiet)
-      fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; most pixel-periods "
-                 "below -1 sd in {}, above +1 sd in {}\n  {}\n  {}\n  {}\n",
-                 s.median_rmse, s.median_explained, s.year_most_below.empty() ? "n/a" : s.year_most_below,
-                 s.year_most_above.empty() ? "n/a" : s.year_most_above, s.markdown_path, s.json_path, s.class_path);
+      fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; {}\n  {}\n  {}\n  {}\n",
+                 s.median_rmse, s.median_explained,
+                 s.year_most_below.empty() && s.year_most_above.empty()
+                     ? std::string("no year has a pixel-period beyond 1 sd")
+                     : fmt::format("most pixel-periods below -1 sd in {}, above +1 sd in {}",
+                                   s.year_most_below.empty() ? "no year" : s.year_most_below,
+                                   s.year_most_above.empty() ? "no year" : s.year_most_above),
+                 s.markdown_path, s.json_path, s.class_path);
   };
 }
 

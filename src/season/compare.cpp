@@ -103,7 +103,10 @@ CompareSummary run_compare(const CompareRequest& request) {
         names.push_back(f.substr(0, f.size() - suffix.size()));
     }
     if (names.empty()) throw InputError(request.seasons_dir, "holds no *_synoptic_miss.tif (run `kalends seasons` first)");
-    if (names.size() > 1) throw UsageError("--name", "the folder holds several layer sets; choose one with --name");
+    std::sort(names.begin(), names.end());
+    if (names.size() > 1)
+      throw UsageError("--name", fmt::format("the folder holds several layer sets ({}); choose one with --name",
+                                             fmt::join(names, ", ")));
     name = names.front();
   }
   const std::string miss_path = (fs::path(request.seasons_dir) / (name + "_synoptic_miss.tif")).string();

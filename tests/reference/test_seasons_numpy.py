@@ -391,6 +391,10 @@ class SeasonsCommand(kt.TempDirTestCase):
         miss = g.Open(os.path.join(out, "ndvi_synoptic_miss.tif"))
         self.assertEqual([anomaly.GetRasterBand(1).GetUnitType(), miss.GetRasterBand(1).GetUnitType(),
                           miss.GetRasterBand(2).GetUnitType()], ["NDVI", "NDVI", ""])
+        # compare on a folder of two sets names them (it had said only "several").
+        done = kt.run_kalends(["compare", out, "--out", os.path.join(self.tmp, "two-sets-compare")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("the folder holds several layer sets (ndvi, ndvi_sd); choose one with --name", done.stderr)
         # A run of the values over fewer years removes its own year layers outside them, not the
         # sd set's (whose names begin with the values' name): they had gone too.
         done = kt.run_kalends(["-q", "seasons", folder, "--out", out, "--years", "2011-2012"])
