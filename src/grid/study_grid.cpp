@@ -5,6 +5,7 @@
 #include "kalends/study_grid.hpp"
 
 #include <cpl_string.h>
+#include <gdal_alg.h>
 #include <gdal_utils.h>
 #include <gdal_priv.h>
 #include <ogr_spatialref.h>
@@ -231,6 +232,22 @@ void require_not_across_antimeridian(const Grid& grid, const std::string& crs, c
                                         std::floor(shifted_low), std::ceil(shifted_high)));
 }
 
+// Whether every band of the file at `path` reads back without error (its overviews too).
+bool readable_whole(const std::string& path) {
+  CPLErrorReset();
+  GDALDatasetUniquePtr d(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (!d) return false;
+  for (int b = 1; b <= d->GetRasterCount(); ++b) {
+    GDALRasterBand* band = d->GetRasterBand(b);
+    GDALChecksumImage(band, 0, 0, band->GetXSize(), band->GetYSize());
+    for (int o = 0; o < band->GetOverviewCount(); ++o) {
+      GDALRasterBand* overview = band->GetOverview(o);
+      GDALChecksumImage(overview, 0, 0, overview->GetXSize(), overview->GetYSize());
+    }
+  }
+  return CPLGetLastErrorType() != CE_Failure;
+}
+
 }  // namespace
 
 const std::vector<std::string>& study_grid_resampling_names() {
@@ -287,11 +304,20 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       throw InputError(request.clip, "cannot be read as a vector source with a layer (" +
                                          detail::gdal_message("no layer") + ")");
     if (vector->GetLayer(0)->GetFeatureCount() == 0) throw InputError(request.clip, "holds no feature to clip to");
-    // The warper's own message named the first layer, not the clip ("Cutline not of polygon type").
-    const OGRwkbGeometryType type = wkbFlatten(vector->GetLayer(0)->GetGeomType());
-    if (type != wkbPolygon && type != wkbMultiPolygon && type != wkbUnknown && type != wkbGeometryCollection)
-      throw InputError(request.clip, fmt::format("holds {} geometries, not polygons: a clip needs the study area's outline",
-                                                 OGRGeometryTypeToName(type)));
+    // The warper takes polygons only, and its own message named the first layer, not the clip
+    // ("Cutline not of polygon type"): every feature is looked at here.
+    OGRLayer* layer = vector->GetLayer(0);
+    layer->ResetReading();
+    for (OGRFeatureUniquePtr feature(layer->GetNextFeature()); feature; feature.reset(layer->GetNextFeature())) {
+      const OGRGeometry* geometry = feature->GetGeometryRef();
+      const OGRwkbGeometryType type = geometry ? wkbFlatten(geometry->getGeometryType()) : wkbNone;
+      if (type != wkbPolygon && type != wkbMultiPolygon)
+        throw InputError(request.clip, fmt::format("feature {} holds {}, not a polygon: a clip needs the study area's "
+                                                   "outline, as polygons only",
+                                                   feature->GetFID(),
+                                                   geometry ? std::string("a ") + OGRGeometryTypeToName(type) + " geometry"
+                                                            : std::string("no geometry")));
+    }
   }
   const std::vector<Source> sources = sources_of(request.inputs, request.out_dir);
   // An output under an input's own path (--out the input folder): it would replace the raster
@@ -328,14 +354,16 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     const Grid grid = detail::raster_grid(d);
     // Without a place, the warper had put the layer wherever the numbers fell in the study CRS
     // (any UTM zone took it), or failed with an allocation message.
-    if (!grid.has_geotransform)
+    // Ground control points place a raster too (the warper fits a transform to them).
+    const bool by_points = d.GetGCPCount() > 0 && d.GetGCPSpatialRef() != nullptr;
+    if (!grid.has_geotransform && !by_points)
       throw InputError(s.path, "has no georeferencing (no geotransform): it cannot be placed on a study grid");
-    if (grid.crs_wkt.empty())
+    if (grid.crs_wkt.empty() && !by_points)
       throw InputError(s.path, "states no CRS: it cannot be placed on a study grid (give the file its CRS, e.g. "
                                "gdal_edit.py -a_srs EPSG:32736)");
-    if (!request.extent) require_not_across_antimeridian(grid, request.crs, s.path);
+    if (!request.extent && grid.has_geotransform) require_not_across_antimeridian(grid, request.crs, s.path);
     // A CF NetCDF with longitude/latitude axes and no CRS: WGS 84, as every command reads it.
-    source_crs.push_back(d.GetSpatialRef() ? std::string() : grid.crs_wkt);
+    source_crs.push_back(d.GetSpatialRef() || by_points ? std::string() : grid.crs_wkt);
     if (const char* caution = d.GetMetadataItem("KALENDS_CAUTION")) cautions.insert(caution);
   }
   for (const std::string& c : cautions) summary.caution += (summary.caution.empty() ? "" : "\n") + c;
@@ -367,6 +395,9 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   }
 
   std::error_code ec;
+  // Held while the layers are written (a second command into it is refused); its hidden
+  // temporaries from a killed run go; removed again if this run made it and fails.
+  const detail::OutputFolder output_folder(request.out_dir);
   // Every layer is written under a temporary name first, and all are published together at the
   // end: a layer that fails half-way had left the earlier ones replaced and the rest not.
   struct Staged {
@@ -540,7 +571,11 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
         for (int k = 0; items[k]; ++k) {
           char* key = nullptr;
           const char* value = CPLParseNameValue(items[k], &key);
-          if (key && value && std::string(key) != "KALENDS_RESAMPLING")
+          // Not the packing of the source (the values leave unpacked) nor its fill value (NaN now).
+          static const std::set<std::string> packing{"KALENDS_RESAMPLING", "scale_factor", "add_offset", "_FillValue",
+                                                     "missing_value", "_Unsigned", "valid_range", "valid_min",
+                                                     "valid_max"};
+          if (key && value && !packing.count(key))
             result->GetRasterBand(to)->SetMetadataItem(key, value);
           CPLFree(key);
         }
@@ -578,13 +613,24 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
           if (share_band) filled[c] = NAN;
           if (sd_out) sd[c] = NAN;
         }
-      // An interpolating kernel (cubic, lanczos) overshoots: a standard error is never negative.
-      for (float& v : sd)
-        if (v < 0) v = 0;
       io(GF_Write, 1, value);
       io(GF_Write, flag_out, flag);
       if (share_band) io(GF_Write, share_band, filled);
       if (sd_out) io(GF_Write, sd_out, sd);
+    }
+    // An interpolating kernel (cubic, lanczos) overshoots: a standard error is never negative and
+    // a share lies in [0, 1] (also a filled_share gridded again, averaged like the values).
+    for (int b = 1; b <= result->GetRasterCount(); ++b) {
+      GDALRasterBand* band = result->GetRasterBand(b);
+      const std::string description = band->GetDescription();
+      if (description != "sd" && description != "filled_share") continue;
+      std::vector<float> v(std::size_t(width) * height);
+      if (band->RasterIO(GF_Read, 0, 0, width, height, v.data(), width, height, GDT_Float32, 0, 0) != CE_None)
+        throw OutputError(sources[i].relative, "cannot assemble the warped bands");
+      for (float& x : v)
+        if (!std::isnan(x)) x = description == "sd" ? std::max(x, 0.0f) : std::clamp(x, 0.0f, 1.0f);
+      if (band->RasterIO(GF_Write, 0, 0, width, height, v.data(), width, height, GDT_Float32, 0, 0) != CE_None)
+        throw OutputError(sources[i].relative, "cannot assemble the warped bands");
     }
     {
       // Whether the study grid holds any value of the layer: of any band but a fill's flag (3
@@ -611,6 +657,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     fs::create_directories(target.parent_path(), ec);
     if (ec) throw OutputError(target.parent_path().string(), "cannot create the folder: " + ec.message());
     const std::string temporary = detail::temporary_name(target.string());
+    fs::remove(temporary + ".ovr.tmp", ec);  // GDAL's, beside a COG in the making, left by a killed run
     CPLStringList cog;
     cog.SetNameValue("COMPRESS", "DEFLATE");
     cog.SetNameValue("PREDICTOR", "YES");
@@ -626,6 +673,15 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       throw detail::write_failure(target.string(), "cannot write (" + detail::gdal_message("unknown reason") + ")");
     }
     written.reset();
+    // A write past a file-size limit or on a full disk shows only as an error while the copy is
+    // flushed and closed: the file had been published truncated, with exit 0. Every band is read
+    // back, so a file that cannot be read whole is never published.
+    if (CPLGetLastErrorType() == CE_Failure || !readable_whole(temporary)) {
+      const std::string why = detail::gdal_message("it cannot be read back whole");
+      fs::remove(temporary, ec);
+      fs::remove(temporary + ".ovr.tmp", ec);
+      throw detail::write_failure(target.string(), "cannot write (" + why + ")");
+    }
     if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
       fs::remove(temporary, ec);
       ++summary.outputs_unchanged;

@@ -176,7 +176,9 @@ OutputFolder::OutputFolder(const std::string& path) {
   // Holding the folder, the hidden temporaries a killed run left here are nobody's: removed, as
   // they would otherwise stay for good. Only names of the forms kalends writes (".<output>.partial"
   // and ".<output>.<tag>.partial" of its rasters, tables and summaries); a user's own stay.
-  static const std::regex temporary(R"(^\..+\.(tif|vrt|json|md|csv|tsv|html)(\.[A-Za-z0-9_-]+)?\.partial$)");
+  // (GDAL's ".<name>.partial.ovr.tmp" beside a Cloud Optimized GeoTIFF in the making too.)
+  static const std::regex temporary(
+      R"(^\..+\.(tif|vrt|json|md|csv|tsv|html)(\.[A-Za-z0-9_-]+)?\.partial(\.ovr\.tmp)?$)");
   if (lock_ >= 0)
     for (const auto& entry : fs::directory_iterator(path, ec)) {
       const std::string name = entry.path().filename().string();

@@ -491,7 +491,13 @@ class Refusals(kt.TempDirTestCase):
         for name in ("a.tif", "b.tif"):
             self.layer(folder, name)
         out = os.path.join(self.tmp, "out")
+        # What a killed run leaves: its COG and GDAL's overview file beside it, both swept.
+        os.makedirs(out)
+        for left in (".a.tif.partial", ".a.tif.partial.ovr.tmp"):
+            with open(os.path.join(out, left), "w") as f:
+                f.write("left by a killed run")
         run_grid_ok(self, [folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "200"])
+        self.assertEqual(sorted(os.listdir(out)), ["a.tif", "b.tif"])
         before = {n: open(os.path.join(out, n), "rb").read() for n in ("a.tif", "b.tif")}
         kt.write_raster(os.path.join(folder, "z.tif"), np.ones((10, 10), np.float32))
         done = kt.run_kalends(["grid", folder, "--out", out, "--crs", "EPSG:32736", "--resolution", "200",
@@ -500,6 +506,49 @@ class Refusals(kt.TempDirTestCase):
         self.assertIn("z.tif: has no georeferencing", done.stderr)
         self.assertEqual({n: open(os.path.join(out, n), "rb").read() for n in ("a.tif", "b.tif")}, before)
         self.assertEqual(sorted(os.listdir(out)), ["a.tif", "b.tif"])
+
+    def test_a_write_cut_short_is_never_published(self):
+        # Under a file-size limit (as a full disk), the COG copy fails only while it is flushed:
+        # the truncated file had been published with exit 0, and a job step recorded as done.
+        import resource
+        import subprocess
+        rng = np.random.default_rng(0)
+        folder = os.path.join(self.tmp, "big-in")
+        os.makedirs(folder)
+        kt.write_raster(os.path.join(folder, "big.tif"), rng.random((200, 200)).astype(np.float32),
+                        geotransform=(500000, 10, 0, 4000000, 0, -10), epsg=32630)
+        out = os.path.join(self.tmp, "big-out")
+        limit = lambda: resource.setrlimit(resource.RLIMIT_FSIZE, (150 * 1024, 150 * 1024))
+        done = subprocess.run([kt.KALENDS_BIN, "grid", folder, "--out", out, "--crs", "EPSG:32630", "--resolution", "5",
+                               "--resample", "nearest"], capture_output=True, text=True, preexec_fn=limit)
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertIn("big.tif: cannot write", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(out, "big.tif")))
+        self.assertEqual([n for n in os.listdir(out) if "partial" in n] if os.path.exists(out) else [], [])
+
+    def test_ground_control_points_place_a_layer(self):
+        # A raster placed by GCPs with their CRS (no geotransform) is gridded as gdal.Warp grids
+        # it; the first version of the georeferencing check had refused it.
+        g = kt.gdal()
+        from osgeo import osr
+        srs = osr.SpatialReference()
+        srs.ImportFromEPSG(32630)
+        path = os.path.join(self.tmp, "gcp.tif")
+        ds = g.GetDriverByName("GTiff").Create(path, 20, 20, 1, g.GDT_Float32)
+        ds.GetRasterBand(1).WriteArray(np.random.default_rng(0).random((20, 20)).astype(np.float32))
+        ds.SetGCPs([g.GCP(500000, 4000000, 0, 0, 0), g.GCP(502000, 4000000, 0, 20, 0), g.GCP(500000, 3998000, 0, 0, 20),
+                    g.GCP(502000, 3998000, 0, 20, 20)], srs.ExportToWkt())
+        ds = None
+        out = os.path.join(self.tmp, "gcp-out")
+        run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.005"])
+        warped = g.Warp("", path, format="MEM", dstSRS="EPSG:4326", xRes=0.005, yRes=0.005, resampleAlg="average",
+                        outputType=g.GDT_Float32, dstNodata=float("nan"), targetAlignedPixels=True)
+        expected = warped.ReadAsArray()
+        warped = None
+        ds = g.Open(os.path.join(out, "gcp.tif"))
+        got = ds.ReadAsArray()
+        ds = None
+        np.testing.assert_array_equal(got, expected)
 
     def test_a_layer_without_a_crs_is_refused(self):
         # It had been put wherever its numbers fell in any projected study CRS.
@@ -545,7 +594,20 @@ class Refusals(kt.TempDirTestCase):
         done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "clip-out"), "--crs", "EPSG:4326",
                                "--resolution", "0.01", "--clip", points])
         self.assertEqual(done.returncode, 2, done.stderr)
-        self.assertIn("points.geojson: holds Point geometries, not polygons", done.stderr)
+        self.assertIn("points.geojson: feature 0 holds a Point geometry, not a polygon", done.stderr)
+        # A collection (even of a polygon) and a feature without geometry: the warper's message
+        # had named the layer.
+        for name, geometry in (("collection", {"type": "GeometryCollection", "geometries": [
+                                   {"type": "Polygon", "coordinates": [[[32, -19], [34, -19], [34, -17], [32, -19]]]}]}),
+                               ("empty", None)):
+            clip = os.path.join(self.tmp, name + ".geojson")
+            with open(clip, "w") as f:
+                json.dump({"type": "FeatureCollection", "features": [{"type": "Feature", "properties": {},
+                           "geometry": geometry}]}, f)
+            done = kt.run_kalends(["grid", path, "--out", os.path.join(self.tmp, "clip-out"), "--crs", "EPSG:4326",
+                                   "--resolution", "0.01", "--clip", clip])
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("%s.geojson: feature 0 holds" % name, done.stderr)
 
     def test_an_sd_never_goes_negative_and_a_caution_is_shown(self):
         # Lanczos overshoots: an invented fill output whose sd jumps from 0 to 0.2 had come out
@@ -567,6 +629,17 @@ class Refusals(kt.TempDirTestCase):
         ds = None
         self.assertGreaterEqual(np.nanmin(gridded), 0.0)
         self.assertGreater(np.nanmax(gridded), 0.15)
+        # Gridded again with cubic, its filled_share (averaged like the values) stays a share.
+        again = os.path.join(self.tmp, "lanczos-again")
+        done = kt.run_kalends(["-q", "grid", out, "--out", again, "--crs", "EPSG:32736", "--resolution", "10",
+                               "--resample", "cubic"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        ds = kt.gdal().Open(os.path.join(again, "ndvi_2020-01-01.tif"))
+        names = [ds.GetRasterBand(b).GetDescription() for b in range(1, ds.RasterCount + 1)]
+        share = ds.GetRasterBand(names.index("filled_share") + 1).ReadAsArray()
+        ds = None
+        self.assertGreaterEqual(np.nanmin(share), 0.0)
+        self.assertLessEqual(np.nanmax(share), 1.0)
 
 
 class Clipping(kt.TempDirTestCase):
