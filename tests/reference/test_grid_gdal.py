@@ -234,6 +234,11 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         for b in (1, 12):
             self.assertEqual(ds.GetRasterBand(b).GetMetadataItem("NETCDF_DIM_time"),
                              source_ds.GetRasterBand(b).GetMetadataItem("NETCDF_DIM_time"))
+        # ... but not the source's fill value: the output's nodata is NaN, and a reader that
+        # applies _FillValue or missing_value tags would take 1e20 for it.
+        self.assertIsNotNone(source_ds.GetRasterBand(1).GetMetadataItem("_FillValue"))
+        for key in ("_FillValue", "missing_value", "scale_factor", "add_offset"):
+            self.assertIsNone(ds.GetRasterBand(1).GetMetadataItem(key), key)
         source_ds = None
         ds = None
         done = kt.run_kalends(["inspect", os.path.join(out, "bcsd_obs_1999_tas.tif"), "--quick"])
