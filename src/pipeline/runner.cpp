@@ -936,16 +936,14 @@ class Runner {
 
   detail::ResolvedInput resolve(const std::string& name) {
     if (auto in = job_.inputs.find(name); in != job_.inputs.end()) return resolve_job_input(in->second, excluded_);
+    // An earlier step's folder; a tiled fill is read through its mosaic: one VRT per date.
     detail::ResolvedInput r;
-    {
-      std::string folder = step_folder(base_, name);
-      // A tiled fill is read through its mosaic: one VRT per date over the tiles.
-      for (const JobStep& s : job_.steps)
-        if (s.id == name && s.options.count("tiles")) folder = (fs::path(folder) / "mosaic").string();
-      r.folder = folder;
-      r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
-      if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
-    }
+    std::string folder = step_folder(base_, name);
+    for (const JobStep& s : job_.steps)
+      if (s.id == name && s.options.count("tiles")) folder = (fs::path(folder) / "mosaic").string();
+    r.folder = folder;
+    r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
+    if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
     r.rules.exclude = excluded_;
     return r;
   }
