@@ -209,8 +209,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     const std::string ys = std::to_string(y);
     observed_file.push_back(
         flags && redo(y) ? add("observed_" + ys, labels,
-                               {{"KALENDS_LAYER", "share of the period's covered days resting on an observation (fill "
-                                                  "flag 0)"},
+                               {{"KALENDS_LAYER", "share of the period's days with a value resting on an "
+                                                  "observation (fill flag 0)"},
                                 {"KALENDS_YEAR", ys}})
                          : not_written);
     year_file.push_back(redo(y) ? add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}})
