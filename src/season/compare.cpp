@@ -126,16 +126,7 @@ CompareSummary run_compare(const CompareRequest& request) {
       throw InputError(miss_path, fmt::format("KALENDS_YEARS '{}' is not YYYY-YYYY", years));
     }
   }
-  Grid grid;
-  grid.width = width;
-  grid.height = height;
-  grid.has_geotransform = miss->GetGeoTransform(grid.geotransform.data()) == CE_None;
-  if (const OGRSpatialReference* srs = miss->GetSpatialRef()) {
-    char* wkt = nullptr;
-    srs->exportToWkt(&wkt);
-    if (wkt) grid.crs_wkt = wkt;
-    CPLFree(wkt);
-  }
+  const Grid grid = detail::raster_grid(*miss);  // the class raster's, and what zones must match
 
   // Histogram of RMSE over 20 equal bins up to the 99th percentile (the rest in the last bin).
   std::vector<float> finite_rmse;
@@ -152,12 +143,12 @@ CompareSummary run_compare(const CompareRequest& request) {
   if (!request.zones.empty()) {
     GDALDatasetUniquePtr z = detail::open_raster(request.zones);
     // The same size is not enough: zones of another place or CRS would be summarised silently.
-    const Grid layers = detail::raster_grid(*miss), zone_grid = detail::raster_grid(*z);
-    if (layers.has_geotransform != zone_grid.has_geotransform)
+    const Grid zone_grid = detail::raster_grid(*z);
+    if (grid.has_geotransform != zone_grid.has_geotransform)
       throw InputError(request.zones, std::string("zone raster ") + (zone_grid.has_geotransform ? "is" : "is not") +
-                                          " georeferenced, " + miss_path + (layers.has_geotransform ? " is" : " is not"));
+                                          " georeferenced, " + miss_path + (grid.has_geotransform ? " is" : " is not"));
     try {
-      require_same_grid(layers, zone_grid, request.zones, miss_path);
+      require_same_grid(grid, zone_grid, request.zones, miss_path);
     } catch (const InputError& e) {
       throw InputError(request.zones, "zone raster is not on the grid of the layers: " + e.reason());
     }
