@@ -110,7 +110,7 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
                     "'offset' if they are not in physical units)");
   if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
   if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::start)
-    notes.push_back(month_end_note("date_marks = \"end\""));
+    notes.push_back(month_end_note("--date-marks end"));
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");

@@ -263,18 +263,16 @@ Job read_job(const std::string& path) {
       if (found == spec->keys.end()) {
         std::string allowed;
         for (const StepKey& key_spec : spec->keys) allowed += std::string(allowed.empty() ? "" : ", ") + key_spec.name;
-        // Where a key is not the command line's option with '_' for '-', say which it is.
-        static const std::map<std::string, std::string> named_otherwise{{"day_time", "day_hour"},
-                                                                          {"night_time", "night_hour"}};
-        const auto other = named_otherwise.find(k);
-        const bool has_other = other != named_otherwise.end() &&
-                               std::any_of(spec->keys.begin(), spec->keys.end(),
-                                           [&](const StepKey& key_spec) { return other->second == key_spec.name; });
-        fail(path, key.source(),
-             "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")" +
-                 (has_other ? "; the command line's --" + std::string(k).replace(k.find('_'), 1, "-") + " is '" +
-                                  other->second + "' here"
-                            : ""));
+        // The command line's name for a key of this step ('day_time' for --day-time): say which.
+        std::string option = "--" + k;
+        std::replace(option.begin(), option.end(), '_', '-');
+        std::string hint;
+        for (const OptionKey& pair : option_keys())
+          if (option == pair.option && k != pair.key &&
+              std::any_of(spec->keys.begin(), spec->keys.end(),
+                          [&](const StepKey& key_spec) { return std::string(pair.key) == key_spec.name; }))
+            hint = fmt::format("; the command line's {} is '{}' here", pair.option, pair.key);
+        fail(path, key.source(), "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")" + hint);
       }
       step.options[k] = checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {

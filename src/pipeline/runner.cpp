@@ -159,12 +159,12 @@ ValueRules rules_of(const JobInput& input) {
 
 std::string step_folder(const std::string& out, const std::string& id) { return (fs::path(out) / id).string(); }
 
-// The array script `plan` names: an installed kalends's (PREFIX/share/kalends beside
-// PREFIX/bin), else the source tree's it was built from, else the tree's relative path.
-std::string cluster_template() {
+// The array script `plan` names for the program at `self`: an installed kalends's
+// (PREFIX/share/kalends beside PREFIX/bin), else the source tree's it was built from, else the
+// tree's relative path.
+std::string cluster_template(const fs::path& self) {
   std::error_code ec;
-  const fs::path self = fs::read_symlink("/proc/self/exe", ec);
-  if (!ec) {
+  if (!self.empty()) {
     const fs::path installed = self.parent_path().parent_path() / "share" / "kalends" / "kalends-array.sbatch";
     if (fs::exists(installed, ec)) return installed.string();
   }
@@ -423,6 +423,9 @@ class Runner {
     if (const auto at = reason.find(option_advice); at != std::string::npos)
       reason.replace(at, option_advice.size(),
                      fmt::format("set units = \"kelvin\" or \"celsius\" in step '{}'", step.id));
+    const std::string marks_advice = "give --date-marks end";
+    if (const auto at = reason.find(marks_advice); at != std::string::npos)
+      reason.replace(at, marks_advice.size(), "give date_marks = \"end\"");
     const std::string options_named = "the unit (--units) or scale factor (--scale)";
     if (const auto at = reason.find(options_named); at != std::string::npos)
       reason.replace(at, options_named.size(),
@@ -432,13 +435,7 @@ class Runner {
 
   // An engine's error names the command's option; a job file has the key of that name.
   static std::string job_option_names(std::string where) {
-    static const std::pair<const char*, const char*> keys[] = {
-        {"--day-time", "day_hour"}, {"--night-time", "night_hour"}, {"--scale", "scale"}, {"--offset", "offset"},
-        {"--nodata", "nodata"},     {"--valid-range", "valid_range"},
-        // The inputs a step names by key (after --day-time and --night-time, which they begin).
-        {"--temperature", "temperature"}, {"--tmin", "tmin"}, {"--tmax", "tmax"}, {"--day", "day"},
-        {"--night", "night"}};
-    for (const auto& [option, key] : keys)
+    for (const auto& [option, key] : detail::option_keys())
       for (auto at = where.find(option); at != std::string::npos; at = where.find(option, at))
         where.replace(at, std::strlen(option), std::string("'") + key + "'");
     return where;
@@ -1110,7 +1107,9 @@ class Runner {
     report.outputs_unchanged = outcome.outputs_unchanged;
     report.outputs_removed = outcome.outputs_removed;
     report.caution = outcome.caution;
-    report.notes = outcome.notes;
+    // A step's notes in the job's words, as its errors (the command's advice names options).
+    report.notes.clear();
+    for (const std::string& note : outcome.notes) report.notes.push_back(job_wording(note, step));
     // A shard keeps its step's notes beside its strip (hidden: not an output), for --finalize
     // to show; the shard's own log is seldom read.
     if (shard_ && fs::is_directory(context.folder)) {
@@ -1195,15 +1194,16 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   std::string name;
   for (char c : job.name.empty() ? fs::path(job.path).stem().string() : job.name)
     name += std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '_' ? c : '-';
-  const std::string sbatch_template = cluster_template();
+  // This program, which the array tasks run too (KALENDS_BIN), and the script it names.
+  const fs::path self = fs::read_symlink("/proc/self/exe", ec);
+  report.program = self.empty() ? "kalends" : self.string();
+  const std::string sbatch_template = cluster_template(self);
   // A program outside the tree it was built from that names that tree's script (a copy with no
   // PREFIX/share/kalends beside it): the nodes may not see it.
   {
-    std::error_code ec;
-    const fs::path self = fs::read_symlink("/proc/self/exe", ec);
     const fs::path tree = fs::path(KALENDS_CLUSTER_TEMPLATE).parent_path().parent_path().parent_path();
     const auto [mismatch, rest] = std::mismatch(tree.begin(), tree.end(), self.begin(), self.end());
-    if (sbatch_template == KALENDS_CLUSTER_TEMPLATE && !ec && mismatch != tree.end())
+    if (sbatch_template == KALENDS_CLUSTER_TEMPLATE && !self.empty() && mismatch != tree.end())
       report.script_note = fmt::format("the array script named is the source tree's ({}), as {} has none at "
                                        "PREFIX/share/kalends/kalends-array.sbatch beside it: every node must see "
                                        "that path",

@@ -124,6 +124,15 @@ struct StepKind {
       merge_file;
 };
 
+/// Command-line options and the job-file keys that stand for them (engines name the option in
+/// their errors), where a key is not simply the option's name: the runner rewrites errors and
+/// notes with them, and the job reader names the key when given the option's name.
+struct OptionKey {
+  const char* option;  // "--day-time"
+  const char* key;     // "day_hour"
+};
+const std::vector<OptionKey>& option_keys();
+
 /// The items of a texts value as the job reader stores it ("a,b,c"); none for "".
 std::vector<std::string> split_list(const std::string& text);
 

@@ -101,6 +101,30 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
         self.check(self.extract(), lambda day: day.month if day == self.stamps[day.month - 1] else day.month - 1)
 
 
+class JobNotesOnMonthEnds(kt.TempDirTestCase):
+    """The month-end note in a job names the step's key, in the fill and the extract step alike."""
+
+    def test_a_jobs_notes_name_date_marks(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        source = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\np1,-80.0,35.0,1999-06-15\n")
+        job = os.path.join(self.tmp, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.tas]\nstack = \'%s\'\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "tas"\nmethod = "whittaker"\nlambda = 0.01\n'
+                    'every = "1M"\n[[step]]\nid = "extract"\ndo = "extract"\ninput = ["fill"]\npoints = "points.csv"\n'
+                    % source)
+        done = kt.run_kalends(["run", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        notes = [line for line in done.stdout.splitlines() if "last day of its month" in line]
+        self.assertEqual(len(notes), 2, done.stdout)      # the fill's and the extract's
+        for note in notes:
+            self.assertIn('give date_marks = "end"', note)
+            self.assertNotIn("--date-marks", note)
+
+
 class ExtractBetweenSeasons(kt.TempDirTestCase):
     """A winter survey day is covered by no 16-day composite of the Alaska summers."""
 

@@ -68,12 +68,7 @@ StepKind extract_step_kind() {
     const ExtractResult result = run_extract(r);
     std::string caution;
     for (const std::string& text : result.cautions) caution += (caution.empty() ? "" : "\n  ") + text;
-    // Notes in the job's words: the step's key, not the command's option.
-    std::vector<std::string> notes = result.notes;
-    for (std::string& note : notes)
-      if (const auto at = note.find("--date-marks end"); at != std::string::npos)
-        note.replace(at, 16, "date_marks = \"end\"");
-    return StepOutcome{result.table_written ? 1 : 0, result.table_written ? 0 : 1, caution, notes};
+    return StepOutcome{result.table_written ? 1 : 0, result.table_written ? 0 : 1, caution, result.notes};
   };
   return kind;
 }

@@ -8,6 +8,16 @@
 
 namespace kalends::detail {
 
+const std::vector<OptionKey>& option_keys() {
+  static const std::vector<OptionKey> keys{
+      {"--day-time", "day_hour"}, {"--night-time", "night_hour"}, {"--scale", "scale"}, {"--offset", "offset"},
+      {"--nodata", "nodata"},     {"--valid-range", "valid_range"},
+      // The inputs a step names by key (after --day-time and --night-time, which they begin).
+      {"--temperature", "temperature"}, {"--tmin", "tmin"}, {"--tmax", "tmax"}, {"--day", "day"},
+      {"--night", "night"}};
+  return keys;
+}
+
 const std::vector<StepKind>& step_kinds() {
   static const std::vector<StepKind> kinds{
       index_step_kind(),
