@@ -70,6 +70,7 @@ struct PlanReport {
   std::string sbatch;                                             // the command line to submit
   std::vector<std::string> skipped_inputs;  // --skip-bad: "path: reason" of files left out
   std::string script_note;  // where the array script named may not be where the tasks run, or ""
+  std::string program;      // this kalends's own path, which the array tasks run (KALENDS_BIN)
 };
 PlanReport plan_job(const RunOptions& options, int shards);
 

@@ -1,7 +1,4 @@
 // kalends plan JOB --shards N: the job split for a Slurm job array, and the command to submit it.
-#include <unistd.h>
-
-#include <climits>
 #include <fmt/format.h>
 
 #include "io/shell_word.hpp"
@@ -9,17 +6,6 @@
 #include "kalends/pipeline.hpp"
 
 namespace kalends::cli {
-
-namespace {
-
-// This program's own path, so that the array tasks run the same binary.
-std::string own_path() {
-  char buffer[PATH_MAX];
-  const ssize_t n = ::readlink("/proc/self/exe", buffer, sizeof buffer - 1);
-  return n > 0 ? std::string(buffer, std::size_t(n)) : std::string("kalends");
-}
-
-}  // namespace
 
 Action add_plan_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("plan", "Split a job into shards for a cluster (a Slurm job array)");
@@ -51,7 +37,7 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
         for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
       fmt::print("submit with:\n");
     }
-    fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + own_path()),
+    fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + plan.program),
                plan.sbatch.substr(7));
     if (!plan.script_note.empty()) fmt::print(stderr, "note: {}\n", plan.script_note);
     // As kalends run --skip-bad: the files left out on standard error, exit 3 (done in part).
