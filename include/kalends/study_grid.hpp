@@ -29,6 +29,9 @@ struct StudyGridSummary {
   std::vector<std::string> without_value;
   /// A caution the layers carry (KALENDS_CAUTION: suitability's), to be shown with them.
   std::string caution;
+  /// What the command should say about the grid it made (one line each): layers without a
+  /// value, an --extent moved to whole cells.
+  std::vector<std::string> notes;
 };
 
 /// The resampling methods a continuous band may take (GDAL's warper names).

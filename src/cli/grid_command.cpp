@@ -44,17 +44,7 @@ Action add_grid_command(CLI::App& app, GlobalOptions& global) {
     if (!o->extent.empty()) r.extent = parse_extent(o->extent);
     r.command_line = global.command_line;
     const StudyGridSummary s = run_study_grid(r);
-    if (!s.without_value.empty()) {
-      // The likely causes of what was given: an extent or clip beside the data, or, with
-      // neither, cells so large that the data covers too little of any (GDAL's average then
-      // leaves it empty).
-      const std::string why = r.extent || !r.clip.empty()
-                                  ? "does the extent or clip lie beside the data, or --crs differ from the extent's?"
-                                  : "are the cells too large for the data (--resolution in the units of --crs)? A "
-                                    "layer covering too little of each cell gets no average";
-      std::fprintf(stderr, "note: %zu of %zu layers have no value on the study grid (first: %s): %s\n",
-                   s.without_value.size(), s.outputs.size(), s.without_value.front().c_str(), why.c_str());
-    }
+    for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
     // Suitability's caution goes with its layers wherever they are handed on (also with -q).
     if (!s.caution.empty()) std::fprintf(stderr, "%s\n", s.caution.c_str());
     if (!global.quiet)

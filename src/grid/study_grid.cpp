@@ -20,6 +20,7 @@
 #include <map>
 #include <memory>
 #include <set>
+#include <tuple>
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
@@ -384,11 +385,29 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     // another clip (or none) stack cell on cell; an --extent is taken as given.
     if (!request.extent) common.push_back("-tap");
   }
-  if (request.extent)
+  if (request.extent) {
+    // GDAL makes a grid of whole cells from the west and north edges and moves the east and
+    // south ones, without a word: the study grid then ends elsewhere than the user wrote.
+    if (request.resolution) {
+      const auto& e = *request.extent;
+      const double resolution = *request.resolution;
+      std::vector<std::string> moved;
+      for (const auto& [name, from, to, low] : {std::tuple{"XMAX", e[0], e[2], false}, std::tuple{"YMIN", e[3], e[1], true}}) {
+        const double cells = std::abs(to - from) / resolution;
+        const double whole = std::floor(cells + 0.5);  // GDAL's rounding (gdalwarp -te with -tr)
+        if (std::abs(cells - whole) > 1e-6)
+          moved.push_back(fmt::format("{} {:.10g} to {:.10g} ({:.6g} cells rounded to {:.0f})", name, to,
+                                      low ? from - whole * resolution : from + whole * resolution, cells, whole));
+      }
+      if (!moved.empty())
+        summary.notes.push_back(fmt::format("--extent is not a whole number of {:g} cells: the grid's edge moves, {}",
+                                            resolution, fmt::join(moved, "; ")));
+    }
     for (const std::string& v : {std::string("-te"), fmt::format("{:.17g}", (*request.extent)[0]),
                                  fmt::format("{:.17g}", (*request.extent)[1]), fmt::format("{:.17g}", (*request.extent)[2]),
                                  fmt::format("{:.17g}", (*request.extent)[3])})
       common.push_back(v);
+  }
   if (!request.clip.empty()) {
     common.insert(common.end(), {"-cutline", request.clip});
     if (!request.extent) common.push_back("-crop_to_cutline");
@@ -695,6 +714,17 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
   }
   for (const Staged& s : staged) detail::publish_file(s.temporary, s.target);
   staged.clear();
+  if (!summary.without_value.empty()) {
+    // The likely causes of what was given: an extent or clip beside the data, or, with neither,
+    // cells so large that the data covers too little of any (GDAL's average then leaves it empty).
+    const std::string why = request.extent || !request.clip.empty()
+                                ? "does the extent or clip lie beside the data, or --crs differ from the extent's?"
+                                : "are the cells too large for the data (--resolution in the units of --crs)? A "
+                                  "layer covering too little of each cell gets no average";
+    summary.notes.push_back(fmt::format("{} of {} layers have no value on the study grid (first: {}): {}",
+                                        summary.without_value.size(), summary.outputs.size(),
+                                        summary.without_value.front(), why));
+  }
   return summary;
 }
 

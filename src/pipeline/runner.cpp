@@ -6,6 +6,8 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
+#include <algorithm>
+#include <cctype>
 #include <chrono>
 #include <cstring>
 #include <filesystem>
@@ -430,6 +432,19 @@ class Runner {
     if (const auto at = reason.find(options_named); at != std::string::npos)
       reason.replace(at, options_named.size(),
                      fmt::format("the unit ('units' of step '{}') or scale factor ('scale' of its input)", step.id));
+    // An option that is a key of this step under its own name ("--extent" of a grid step): the
+    // key, as the job file writes it (a grid step's note had named --extent).
+    if (const detail::StepKind* kind = detail::find_step_kind(step.kind))
+      for (const detail::StepKey& key : kind->keys) {
+        std::string option = std::string("--") + key.name;
+        std::replace(option.begin(), option.end(), '_', '-');
+        for (auto at = reason.find(option); at != std::string::npos; at = reason.find(option, at + 1)) {
+          const std::size_t end = at + option.size();
+          if (end < reason.size() && (std::isalnum(static_cast<unsigned char>(reason[end])) || reason[end] == '-'))
+            continue;  // a longer option (--day in --day-time)
+          reason.replace(at, option.size(), std::string("'") + key.name + "'");
+        }
+      }
     return reason;
   }
 

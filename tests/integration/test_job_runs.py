@@ -709,6 +709,30 @@ class JobWording(kt.TempDirTestCase):
         self.assertIn("job.toml:5: 'scale' = 0: a scale factor of 0 makes every value 0", done.stderr)
 
 
+    def test_a_grid_steps_notes_are_shown_with_the_jobs_keys(self):
+        # A grid step had dropped what `kalends grid` says: a layer without a value on the study
+        # grid, and an extent moved to whole cells.
+        folder = os.path.join(self.tmp, "gridjob")
+        os.makedirs(os.path.join(folder, "layers"))
+        kt.write_raster(os.path.join(folder, "layers", "ndvi_2021-03-01.tif"), np.full((10, 10), 0.5, np.float32),
+                        geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.layers]\nstack = "layers/*.tif"\n[[step]]\nid = "study"\n'
+                    'do = "grid"\nlayers = ["layers"]\ncrs = "EPSG:4326"\nresolution = 0.03\n'
+                    'extent = [30.0, -1.1, 30.1, -1.0]\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertIn("note: 'extent' is not a whole number of 0.03 cells", done.stdout)
+        self.assertIn("XMAX 30.1 to 30.09", done.stdout)
+        self.assertNotIn("--extent", done.stdout + done.stderr)
+        with open(job, "a") as f:
+            f.write('[[step]]\nid = "beside"\ndo = "grid"\nlayers = ["layers"]\ncrs = "EPSG:4326"\n'
+                    'resolution = 0.01\nextent = [40.0, -1.1, 40.1, -1.0]\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertIn("note: 1 of 1 layers have no value on the study grid", done.stdout)
+
 class EditedJob(kt.TempDirTestCase):
     def test_outputs_the_job_no_longer_makes_are_not_read(self):
         # A monthly calendar and a seasons step, then the job edited: no 'every', another

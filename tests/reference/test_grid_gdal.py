@@ -86,6 +86,34 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         self.assertEqual(mine.GetMetadata("IMAGE_STRUCTURE").get("LAYOUT"), "COG")
 
 
+    def test_an_extent_of_part_cells_is_moved_as_gdal_warp_moves_it_and_said(self):
+        # gdalwarp -te with -tr makes whole cells from the west and north edges and moves the
+        # east and south ones; kalends had done the same without a word, so the study grid ended
+        # elsewhere than the user wrote.
+        g = kt.gdal()
+        layer = os.path.join(self.tmp, "part-cells", "layer.tif")
+        os.makedirs(os.path.dirname(layer))
+        write_named_bands(layer, (("value", np.arange(40 * 50, dtype=np.float32).reshape(40, 50)),))
+        extent = [300000, 7996000, 304500, 8000000]  # 4500 m across (15 cells), 4000 m down (13.33)
+        out = os.path.join(self.tmp, "part-cells-out")
+        done = kt.run_kalends(["grid", layer, "--out", out, "--crs", "EPSG:32736", "--resolution", "300",
+                               "--extent", ",".join(str(v) for v in extent)])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("--extent is not a whole number of 300 cells", done.stderr)
+        self.assertIn("YMIN 7996000 to 7996100 (13.3333 cells rounded to 13)", done.stderr)
+        self.assertNotIn("XMAX", done.stderr)
+        mine = g.Open(os.path.join(out, "layer.tif"))
+        ref = g.Warp("", layer, format="MEM", dstSRS="EPSG:32736", xRes=300, yRes=300, outputBounds=extent,
+                     resampleAlg="average", outputType=g.GDT_Float32, dstNodata=float("nan"))
+        self.assertEqual((mine.RasterXSize, mine.RasterYSize), (ref.RasterXSize, ref.RasterYSize))
+        np.testing.assert_allclose(mine.GetGeoTransform(), ref.GetGeoTransform(), rtol=0, atol=1e-9)
+        np.testing.assert_array_equal(mine.GetRasterBand(1).ReadAsArray(), ref.GetRasterBand(1).ReadAsArray())
+        # Whole cells: no note.
+        done = kt.run_kalends(["grid", layer, "--out", out + "-whole", "--crs", "EPSG:32736", "--resolution", "300",
+                               "--extent", "300000,7996100,304500,8000000"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("whole number", done.stderr)
+
     def test_scaled_digital_numbers_leave_as_physical_values(self):
         # A band stored as digital numbers with a scale (0.004, as many reflectance products) is
         # written as physical values: gdalwarp's average of the raw numbers, times the scale.

@@ -46,6 +46,7 @@ StepKind grid_step_kind() {
       outcome.outputs_written += s.outputs_written;
       outcome.outputs_unchanged += s.outputs_unchanged;
       if (!s.caution.empty()) outcome.caution = s.caution;  // suitability's, shown with the step
+      outcome.notes.insert(outcome.notes.end(), s.notes.begin(), s.notes.end());
     }
     return outcome;
   };
