@@ -39,8 +39,10 @@ struct BlockPlan {
                         int max_tile_rows = 0);
 
   /// The read window of the smallest block `make` can plan: one tile plus halo, clipped to the
-  /// raster (its size; x and y 0).
-  static Window smallest_read_window(int width, int height, int halo, int tile = 256);
+  /// raster (its size; x and y 0). Of a `region` narrower or lower than a tile, its width or
+  /// height plus halo: a subset's blocks are no larger than the subset.
+  static Window smallest_read_window(int width, int height, int halo, int tile = 256,
+                                     const std::optional<Window>& region = std::nullopt);
   /// Its pixels.
   static std::int64_t smallest_read_pixels(int width, int height, int halo, int tile = 256) {
     return smallest_read_window(width, height, halo, tile).pixels();

@@ -32,8 +32,10 @@ Window clipped_read_window(int raster_width, int raster_height, int halo, int bw
 
 }  // namespace
 
-Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile) {
-  return clipped_read_window(width, height, halo, tile, tile);
+Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile, const std::optional<Window>& region) {
+  if (!region) return clipped_read_window(width, height, halo, tile, tile);
+  return clipped_read_window(width, height, halo, std::min(tile, std::max(region->width, 1)),
+                             std::min(tile, std::max(region->height, 1)));
 }
 
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
@@ -47,7 +49,7 @@ BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::in
     return clipped_read_window(raster_width, raster_height, halo, bw, bh).pixels();
   };
   const int tiles_x = (width + tile - 1) / tile, tiles_y = (height + tile - 1) / tile;
-  const Window smallest = smallest_read_window(raster_width, raster_height, halo, tile);
+  const Window smallest = smallest_read_window(raster_width, raster_height, halo, tile, area);
   if (smallest.pixels() > max_read_pixels)
     throw UsageError("--memory", "too small for one block: it reads " + std::to_string(smallest.width) +
                                      " x " + std::to_string(smallest.height) + " px (a " +

@@ -333,7 +333,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   // fewer, down to one, whose parallel loops the other threads then share (a method with a
   // large halo and many dates, such as spacetime, on a machine with many cores).
   const Window smallest_read =
-      BlockPlan::smallest_read_window(raster.width, raster.height, method->halo(), tile_size);
+      BlockPlan::smallest_read_window(raster.width, raster.height, method->halo(), tile_size, area);
   const std::int64_t smallest_block = smallest_read.pixels();
   // Too little for one block, or not even for the fixed overheads: say what would do, or take
   // it where the caller allows (a budget the user did not choose).

@@ -160,6 +160,34 @@ class SubsetIsAWindowOfTheWhole(kt.TempDirTestCase):
                                                  gt_whole[3] + row * gt_whole[5], 0, gt_whole[5]])
 
 
+    def test_a_subsets_budget_is_that_of_its_own_window(self):
+        # A subset's blocks are no larger than the subset and its halo; the budget named for it
+        # had been that of a whole tile of the raster (414 MiB against the 199 that run, for
+        # 80 x 100 px of a 600 x 200 stack). It is now that of the same window cut out as a
+        # stack of its own (gdal_translate -srcwin), and enough.
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 600, 200)
+        column, row, width, height, halo = 300, 50, 80, 100, 32
+        cut = os.path.join(self.tmp, "cut")
+        os.makedirs(cut)
+        g = kt.gdal()
+        for path in sorted(glob.glob(os.path.join(stack, "ndvi_*.tif"))):
+            g.Translate(os.path.join(cut, os.path.basename(path)), path,
+                        srcWin=[column - halo, row - halo, width + 2 * halo, height + 2 * halo])
+
+        def named(pattern, *extra):
+            done = kt.run_kalends(["fill", pattern, "--method", "spacetime", "--threads", "1", "--memory", "16M",
+                                   "--out", os.path.join(self.tmp, "refused")] + list(extra))
+            self.assertEqual(done.returncode, 2, done.stderr)
+            return int(re.search(r"(\d+) MiB would do", done.stderr).group(1))
+
+        subset = ["--subset", "%d,%d,%d,%d" % (column, row, width, height)]
+        need = named(os.path.join(stack, "ndvi_*.tif"), *subset)
+        self.assertEqual(need, named(os.path.join(cut, "ndvi_*.tif")))
+        self.assertLess(need, named(os.path.join(stack, "ndvi_*.tif")))
+        kt.run_fill_ok(self, [os.path.join(stack, "ndvi_*.tif"), "--method", "spacetime", "--threads", "1",
+                              "--memory", "%dM" % need, "--out", os.path.join(self.tmp, "part")] + subset)
+
 class DefaultBudgetGrowsToOneBlock(kt.TempDirTestCase):
     """Without --memory, a stack whose one block needs more than the default 1 GiB (here 80
     dates of 320 x 320 px) is filled with what one block needs, up to half the machine's memory,
