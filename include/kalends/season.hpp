@@ -38,12 +38,20 @@ std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar);
 /// `fallback` for fewer than two times.
 std::int64_t median_spacing(const std::vector<std::int64_t>& at, std::int64_t fallback);
 
-/// The [first, last) each composite dated `at` (sorted, in any unit) stands for, by what its
-/// date marks (DateMarks, fill.hpp): `step` from its date (start), up to and including its date's
-/// unit (end), or around it (middle); never past its neighbours' dates. One rule for seasons,
-/// extract and the rest.
+/// The [first, last) each composite dated `at` (sorted, in units since 1970 of which a day has
+/// `units_per_day`: 1 for days, 86400 for seconds) stands for, by what its date marks
+/// (DateMarks, fill.hpp): `step` from its date (start), up to and including its date's unit
+/// (end), or around it (middle); never past its neighbours' dates, and, for start dates on a
+/// calendar that restarts every 1 January (restarts_each_year), never past 31 December. One
+/// rule for seasons, extract and the rest.
 std::vector<std::pair<std::int64_t, std::int64_t>> composite_spans(const std::vector<std::int64_t>& at,
-                                                                   std::int64_t step, DateMarks marks);
+                                                                   std::int64_t step, DateMarks marks,
+                                                                   std::int64_t units_per_day);
+
+/// Whether midnight dates `at` (units as composite_spans) all fall on days of year 1, 1 + s,
+/// 1 + 2s, ... for a `step` of s whole days (2 to 183): composites that restart every 1 January,
+/// as MODIS 8- and 16-day ones, whose last of a year is shorter.
+bool restarts_each_year(const std::vector<std::int64_t>& at, std::int64_t step, std::int64_t units_per_day);
 
 /// For each period of `periods`, the composites that overlap it and by how many days. Each
 /// composite covers `step_days` from where its date marks (a shorter span when the next

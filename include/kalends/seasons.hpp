@@ -57,6 +57,9 @@ struct SeasonsSummary {
   /// Year-specific periods that the composites cover only in part (label "2004 month 05",
   /// days covered, days of the period), in order; their means rest on those days alone.
   std::vector<std::tuple<std::string, double, int>> partly_covered;
+  /// Years of the range that no composite stands for on any day (a year missing from the
+  /// stack): their layers are empty.
+  std::vector<int> years_without_composite;
 };
 
 /// What a user should know about a seasons run's outputs (cycle layers left empty because

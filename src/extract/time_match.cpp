@@ -35,7 +35,7 @@ void set_date_marks(CovariateSeries& s, DateMarks marks) {
   for (const SeriesFile& f : s.files) at.push_back(f.time.seconds);
   const std::int64_t step =
       s.step_days > 0 ? std::max<std::int64_t>(1, std::llround(s.step_days * 86400)) : median_spacing(at, 86400);
-  for (const auto& [first, last] : composite_spans(at, step, marks)) s.spans.push_back({TimePoint{first}, TimePoint{last}});
+  for (const auto& [first, last] : composite_spans(at, step, marks, 86400)) s.spans.push_back({TimePoint{first}, TimePoint{last}});
 }
 
 TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, int lag) {

@@ -59,15 +59,36 @@ std::int64_t median_spacing(const std::vector<std::int64_t>& at, std::int64_t fa
   return std::max<std::int64_t>(1, gaps[gaps.size() / 2]);
 }
 
+bool restarts_each_year(const std::vector<std::int64_t>& at, std::int64_t step, std::int64_t units_per_day) {
+  if (at.size() < 2 || units_per_day <= 0 || step % units_per_day != 0) return false;
+  const std::int64_t step_days = step / units_per_day;
+  if (step_days < 2 || step_days > 183) return false;
+  for (std::int64_t t : at) {
+    if (t % units_per_day != 0) return false;  // a time of day: not a composite's date
+    const std::int64_t day = t / units_per_day;
+    if ((day_of_year(civil_from_days(day)) - 1) % step_days != 0) return false;
+  }
+  return true;
+}
+
 std::vector<std::pair<std::int64_t, std::int64_t>> composite_spans(const std::vector<std::int64_t>& at,
-                                                                   std::int64_t step, DateMarks marks) {
+                                                                   std::int64_t step, DateMarks marks,
+                                                                   std::int64_t units_per_day) {
   const std::size_t n = at.size();
   std::vector<std::pair<std::int64_t, std::int64_t>> spans(n);
+  // Composites whose calendar restarts every 1 January (MODIS: days of year 1, 9, 17, ... or 1,
+  // 17, 33, ...): the last of a year ends on 31 December. Without the next year's first
+  // composite (a year missing, the stack's end) it had stood for the next year's first days.
+  const bool yearly = marks == DateMarks::start && restarts_each_year(at, step, units_per_day);
   for (std::size_t i = 0; i < n; ++i) {
     std::int64_t first, last;
     if (marks == DateMarks::start) {
       first = at[i];
       last = first + (i + 1 < n ? std::min(step, at[i + 1] - at[i]) : step);
+      if (yearly) {
+        const CivilDate date = civil_from_days(first / units_per_day);
+        last = std::min(last, days_from_civil(date.year + 1, 1, 1) * units_per_day);
+      }
     } else if (marks == DateMarks::end) {
       last = at[i] + 1;
       first = last - (i > 0 ? std::min(step, at[i] - at[i - 1]) : step);
@@ -102,7 +123,7 @@ std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
         }
     return sources;
   }
-  const auto spans = composite_spans(day, median_spacing(day, 1), marks);
+  const auto spans = composite_spans(day, median_spacing(day, 1), marks, 1);
   for (std::size_t i = 0; i < n; ++i) {
     const auto [first, last] = spans[i];  // the days [first, last) the composite stands for
     for (std::size_t p = 0; p < periods.size(); ++p) {

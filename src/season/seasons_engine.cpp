@@ -85,6 +85,10 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
     notes.push_back(fmt::format("one year ({}): the synoptic layers are that year's own values, so synoptic_sd, the "
                                 "standardised anomalies and synoptic_miss are empty; a synoptic needs two years or more",
                                 summary.first_year));
+  if (!summary.years_without_composite.empty())
+    notes.push_back(fmt::format("no composite stands for any day of {}: the layers of {} are empty",
+                                fmt::join(summary.years_without_composite, ", "),
+                                summary.years_without_composite.size() == 1 ? "that year" : "those years"));
   for (const auto& [year, pixels] : summary.years_with_cycle_gaps)
     notes.push_back(fmt::format("the {} cycle layer is empty at {} of the {} pixels whose synoptic cycle has one: {} "
                                 "lacks a value in some period there ({})",
@@ -236,6 +240,12 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   // The days each year's period rests on: a month the composites cover in part (the first of
   // a stack that starts on 25 May) is the mean of those days alone.
   std::vector<std::tuple<std::string, double, int>> partly_covered;
+  std::vector<int> years_without_composite;
+  for (int y = 0; y < years; ++y) {
+    bool any = false;
+    for (int q = 0; q < P; ++q) any = any || !sources[std::size_t(y) * P + q].days.empty();
+    if (!any) years_without_composite.push_back(first_year + y);
+  }
   for (int y = 0; y < years; ++y)
     for (int q = 0; q < P; ++q) {
       const std::size_t k = std::size_t(y) * P + q;
@@ -444,8 +454,11 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.last_year = last_year;
   summary.dates_at_month_ends = dates_at_month_ends(times);
   summary.pixels_with_values = pixels_with_values;
+  summary.years_without_composite = years_without_composite;
   for (int y = 0; y < years; ++y)
-    if (year_cycle_missing[y] > 0) summary.years_with_cycle_gaps.emplace_back(first_year + y, year_cycle_missing[y]);
+    if (year_cycle_missing[y] > 0 && !std::count(years_without_composite.begin(), years_without_composite.end(),
+                                                 first_year + y))
+      summary.years_with_cycle_gaps.emplace_back(first_year + y, year_cycle_missing[y]);
   summary.pixels_with_cycle = pixels_with_cycle;
   summary.from_fill = flags.has_value();
   summary.partly_covered = std::move(partly_covered);

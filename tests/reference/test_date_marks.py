@@ -170,6 +170,72 @@ class ExtractBetweenSeasons(kt.TempDirTestCase):
         self.assertEqual(rows["summer"]["ndvi.lag1.matched"], dates_2004[-1])
 
 
+class CompositesRestartEachFirstOfJanuary(kt.TempDirTestCase):
+    """MODIS 8- and 16-day composites restart on 1 January (days of year 1, 9, ..., 361, or 1,
+    17, ..., 353): the last composite of a year covers only the days to 31 December (5 or 6 of
+    an 8-day step). That is the products' published calendar (MOD13/MOD11 user guides; from
+    memory). Without the next year's 1 January composite (a year missing, or the stack's end)
+    the last composite of 2019 had stood for 1-3 January 2020: seasons wrote a 2020 layer of
+    that December value, the January synoptic counted it as a fourth year, and extract gave it to
+    surveys of early January 2020."""
+
+    def test_the_last_composite_of_a_year_stops_at_its_end(self):
+        kt.require_binary(kt.KALENDS_BIN)
+        stack = os.path.join(self.tmp, "stack")
+        os.makedirs(stack)
+        rng = np.random.default_rng(7)
+        values = {}
+        for year in (2018, 2019, 2021):  # 2020 missing entirely
+            for doy in range(1, 366, 8):
+                date = datetime.date(year, 1, 1) + datetime.timedelta(days=doy - 1)
+                values[date] = float(rng.uniform(0.1, 0.9))
+                kt.write_raster(os.path.join(stack, "evi_%s.tif" % date.isoformat()),
+                                np.full((2, 2), values[date], np.float32),
+                                geotransform=(10.0, 0.01, 0, 5.0, 0, -0.01), epsg=4326)
+        seasons = os.path.join(self.tmp, "seasons")
+        done = kt.run_kalends(["seasons", os.path.join(stack, "*.tif"), "--out", seasons])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("no composite stands for any day of 2020", done.stderr)
+        g = kt.gdal()
+        year_2020 = g.Open(os.path.join(seasons, "evi_year_2020.tif")).ReadAsArray()
+        self.assertTrue(np.all(np.isnan(year_2020)), "2020 has no composite: %s" % year_2020[:, 0, 0])
+        # January: the day-weighted mean of the composites of days 1-25 and 6 of day 25's
+        # (January has 31 days), in each of the three years; the synoptic mean over those three.
+        januaries = []
+        for year in (2018, 2019, 2021):
+            weights = {datetime.date(year, 1, d): 8 for d in (1, 9, 17)}
+            weights[datetime.date(year, 1, 25)] = 7
+            januaries.append(sum(values[d] * w for d, w in weights.items()) / 31)
+        synoptic_years = g.Open(os.path.join(seasons, "evi_synoptic_years.tif")).ReadAsArray()[0]
+        self.assertEqual(float(synoptic_years[0, 0]), 3.0)
+        synoptic = g.Open(os.path.join(seasons, "evi_synoptic_mean.tif")).ReadAsArray()[0]
+        self.assertAlmostEqual(float(synoptic[0, 0]), float(np.mean(januaries)), delta=1e-6)
+        # December 2019: the composites of days 329 ... 361, the last one for 5 days only.
+        dec_2019 = g.Open(os.path.join(seasons, "evi_year_2019.tif")).ReadAsArray()[11]
+        weights = {datetime.date(2019, 11, 25): 2, datetime.date(2019, 12, 3): 8, datetime.date(2019, 12, 11): 8,
+                   datetime.date(2019, 12, 19): 8, datetime.date(2019, 12, 27): 5}
+        self.assertAlmostEqual(float(dec_2019[0, 0]), sum(values[d] * w for d, w in weights.items()) / 31,
+                               delta=1e-6)
+        # extract: 31 December reads the last composite of 2019; 1 and 3 January 2020 read none.
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\ndec31,10.005,4.995,2019-12-31\njan1,10.005,4.995,2020-01-01\n"
+                    "jan3,10.005,4.995,2020-01-03\nlast,10.005,4.995,2021-12-31\nafter,10.005,4.995,2022-01-02\n")
+        filled = os.path.join(self.tmp, "filled")  # nothing to fill: the values pass through
+        kt.run_fill_ok(self, [os.path.join(stack, "*.tif"), "--out", filled])
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["extract", filled, "--points", points, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {row["id"]: row for row in kt.read_table(out)}
+        self.assertEqual(rows["dec31"]["evi.matched"], "2019-12-27")
+        self.assertAlmostEqual(float(rows["dec31"]["evi"]), values[datetime.date(2019, 12, 27)], delta=1e-6)
+        for day in ("jan1", "jan3"):
+            self.assertEqual(rows[day]["evi"], "")
+            self.assertIn("no layer stands for the survey date (between 2019-12-27 and 2021-01-01)",
+                          rows[day]["evi.reason"])
+        self.assertEqual(rows["last"]["evi.matched"], "2021-12-27")
+        self.assertIn("survey date after the layers", rows["after"]["evi.reason"])
+
 class FillCalendarMonthEnds(kt.TempDirTestCase):
     """kalends fill --every 1M on monthly means stamped at their month's end (Maurer 1999).
 
