@@ -50,7 +50,8 @@ struct DateInName {
   std::size_t position = 0, length = 0;
 };
 std::optional<DateInName> find_date_in_name(std::string_view name);
-/// A YYYY-MM-DD in a file name that is no calendar date ("2004-02-30"), for the error that
+/// A YYYY-MM-DD, YYYYMMDD or YYYYDDD in a file name that is no calendar date ("2004-02-30",
+/// "20200230", "2019366"), for the error that
 /// would otherwise say the name has no date.
 std::optional<std::string> impossible_date_in_name(std::string_view name);
 

@@ -165,6 +165,28 @@ std::optional<std::string> impossible_date_in_name(std::string_view name) {
                                 digits_to_int(t.substr(8, 2))))
       return std::string(t);
   }
+  // YYYYMMDD and YYYYDDD runs of a plausible year whose day does not exist (20200230, 2019366,
+  // 2020000) had been "no date in the file name". Other numbers (versions, tile ids) are left.
+  for (std::size_t i = 0; i < name.size();) {
+    if (!is_digit(name[i])) {
+      ++i;
+      continue;
+    }
+    std::size_t j = i;
+    while (j < name.size() && is_digit(name[j])) ++j;
+    const std::string_view run = name.substr(i, j - i);
+    i = j;
+    if (run.size() != 7 && run.size() != 8) continue;
+    const int year = digits_to_int(run.substr(0, 4));
+    if (year < 1900 || year > 2100) continue;
+    if (run.size() == 8) {
+      const int month = digits_to_int(run.substr(4, 2)), day = digits_to_int(run.substr(6, 2));
+      if (month >= 1 && month <= 12 && day <= 31 && !is_valid_date(year, month, day)) return std::string(run);
+    } else {
+      const int day = digits_to_int(run.substr(4, 3));
+      if (day == 0 || (day == 366 && !is_leap_year(year))) return std::string(run);
+    }
+  }
   return std::nullopt;
 }
 

@@ -63,6 +63,15 @@ TEST_CASE("a YYYY-MM-DD in a name that is no calendar date is found for the erro
   CHECK_FALSE(impossible_date_in_name("/data/2004-02-30/ndvi.tif"));  // folders are not searched
   CHECK_FALSE(impossible_date_in_name("ndvi_12004-02-30.tif"));     // part of a longer number
   CHECK_FALSE(impossible_date_in_name("ndvi.tif"));
+  // Day-of-year and YYYYMMDD runs of a plausible year whose day does not exist.
+  CHECK(impossible_date_in_name("x_2019366.tif") == "2019366");  // 2019 is no leap year
+  CHECK(impossible_date_in_name("MOD13Q1.A2020000.h21v08.tif") == "2020000");
+  CHECK(impossible_date_in_name("x_20200230.tif") == "20200230");
+  CHECK(impossible_date_in_name("x_20190229.tif") == "20190229");
+  CHECK_FALSE(impossible_date_in_name("x_2020366.tif"));          // day 366 of a leap year
+  CHECK_FALSE(impossible_date_in_name("r1234567_v2.tif"));        // a version, no plausible year
+  CHECK_FALSE(impossible_date_in_name("tile_20201340.tif"));      // month 13: not a date's shape
+  CHECK_FALSE(impossible_date_in_name("x_2019400.tif"));          // day 400: another number
 }
 
 TEST_CASE("ISO and CF times", "[io][dates]") {
