@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <fmt/format.h>
 #include <map>
 
 #include "kalends/error.hpp"
@@ -52,16 +53,8 @@ std::pair<std::int64_t, std::int64_t> period_of(std::int64_t day, const Calendar
 
 }  // namespace
 
-std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period, DateMarks marks) {
-  std::vector<PeriodMean> periods;
-  if (grid.size == 0) return periods;
-  // Calendar day d reads the curve at d - shift: slot times are moved to their composites' middles.
-  const double shift = marks == DateMarks::start ? grid.step_days / 2 : marks == DateMarks::end ? -grid.step_days / 2 : 0.0;
-  const double start_day = grid.start.seconds / 86400.0 + shift;
-  const double first_day = start_day + grid.slot_days.front();
-  const double last_day = start_day + grid.slot_days.back();
-  // The days of the year (0..365) some composite stands for: from its date on (start marks),
-  // up to it (end) or around it (middle), one step long.
+std::vector<char> season_days(const TimeGrid& grid, DateMarks marks) {
+  // From its date on (start marks), up to it (end) or around it (middle), one step long.
   std::vector<char> season(366, 0);
   const double span_from = marks == DateMarks::start ? 0.0 : marks == DateMarks::end ? 1.0 - grid.step_days
                                                                                       : -grid.step_days / 2;
@@ -70,6 +63,34 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
     for (double d = std::floor(date + span_from); d < std::floor(date + span_from) + std::max(1.0, grid.step_days); ++d)
       season[std::size_t(day_of_year(civil_from_days(std::int64_t(d))) - 1)] = 1;
   }
+  return season;
+}
+
+std::string season_label(const TimeGrid& grid, DateMarks marks) {
+  const std::vector<char> season = season_days(grid, marks);
+  std::string label;
+  for (std::size_t d = 0; d < season.size();) {
+    if (!season[d]) {
+      ++d;
+      continue;
+    }
+    std::size_t e = d;
+    while (e + 1 < season.size() && season[e + 1]) ++e;
+    label += fmt::format("{}{}-{}", label.empty() ? "" : ",", d + 1, e + 1);
+    d = e + 1;
+  }
+  return label;
+}
+
+std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod& period, DateMarks marks) {
+  std::vector<PeriodMean> periods;
+  if (grid.size == 0) return periods;
+  // Calendar day d reads the curve at d - shift: slot times are moved to their composites' middles.
+  const double shift = marks == DateMarks::start ? grid.step_days / 2 : marks == DateMarks::end ? -grid.step_days / 2 : 0.0;
+  const double start_day = grid.start.seconds / 86400.0 + shift;
+  const double first_day = start_day + grid.slot_days.front();
+  const double last_day = start_day + grid.slot_days.back();
+  const std::vector<char> season = season_days(grid, marks);
   std::int64_t day = std::int64_t(std::floor(first_day));
   while (day <= std::int64_t(std::floor(last_day))) {
     const auto [begin, end] = period_of(day, period);

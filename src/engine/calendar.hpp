@@ -2,6 +2,7 @@
 // means.
 #pragma once
 
+#include <string>
 #include <vector>
 
 #include "kalends/fill.hpp"
@@ -20,6 +21,13 @@ struct PeriodMean {
   /// the curve across the gap.
   bool in_season = true;
 };
+
+/// The days of the year (index 0 = day 1, 366 entries) that some composite, of any year,
+/// stands for: the stack's season, on which every year's calendar periods depend.
+std::vector<char> season_days(const TimeGrid& grid, DateMarks marks);
+/// The same as day-of-year ranges ("145-272"), to tell whether a run's season differs from an
+/// earlier run's.
+std::string season_label(const TimeGrid& grid, DateMarks marks);
 
 /// Periods from the one holding the first composite to the one holding the last. Each
 /// period's value is the day-weighted mean of the curve interpolated linearly between slots,

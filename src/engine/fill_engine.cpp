@@ -62,7 +62,7 @@ struct YearCounts {
   std::map<std::string, std::int64_t> not_fitted;  // pixel-years, by the method's reason
 };
 
-// fill-years.tsv: "# grid START STEP", then per year "YEAR PIXEL_DATES OBSERVED REJECTED FILLED
+// fill-years.tsv: "# grid START STEP [season DAYS]", then per year "YEAR PIXEL_DATES OBSERVED REJECTED FILLED
 // UNFILLED", then per year and reason "not-fitted<TAB>YEAR<TAB>COUNT<TAB>REASON".
 constexpr const char* not_fitted_tag = "not-fitted\t";
 
@@ -195,7 +195,12 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
     throw UsageError("--reach", fmt::format("must be at least two time steps ({:g} days)", 2 * grid.step_days));
   if (request.only_years && !(reach > 0)) throw UsageError("--reach", "recomputing some years needs a reach");
   const std::string years_file = (fs::path(request.out_dir) / "fill-years.tsv").string();
-  const std::string grid_label = fmt::format("{} {:g}", grid.start.iso(), grid.step_days);
+  // With a calendar, every year's periods depend on the season of the whole stack (the days of
+  // the year some composite stands for): a composite that moves the season's end changes the
+  // calendar of every year, so earlier years are reusable only under the same season.
+  const std::string grid_label =
+      fmt::format("{} {:g}", grid.start.iso(), grid.step_days) +
+      (request.every ? " season " + detail::season_label(grid, request.marks) : std::string());
   std::map<int, YearCounts> earlier_years;
   std::optional<std::set<int>> only;
   if (request.only_years) {

@@ -18,6 +18,7 @@
 #include <limits>
 #include <set>
 
+#include "engine/calendar.hpp"
 #include "engine/memory_budget.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
@@ -1000,8 +1001,28 @@ class Runner {
       changed = changed_files(record->inputs, now);
     }
     if (reach > 0 && compared) {
-      only_years_ = years_reached(changed, reach, record->inputs, now);
-      if (only_years_) report.reason += fmt::format("; recomputing the years it reaches: {}", fmt::join(*only_years_, ", "));
+      const std::optional<DateMarks> calendar =
+          step.options.count("every")
+              ? std::optional<DateMarks>(parse_date_marks(step.options.count("date_marks") ? step.options.at("date_marks")
+                                                                                           : "start"))
+              : std::nullopt;
+      // A calendar's periods, in every year, depend on the stack's season (the days of the
+      // year some composite stands for): a composite that moves it changes every year's
+      // calendar (only its own year had been redone).
+      auto season = [&](const std::map<std::string, std::string>& files) {
+        std::set<TimePoint> dates;
+        for (const auto& [f, sum] : files)
+          if (const auto date = date_from_name(f)) dates.insert(*date);
+        return detail::season_label(TimeGrid::build(std::vector<TimePoint>(dates.begin(), dates.end())), *calendar);
+      };
+      if (calendar && season(record->inputs) != season(now)) {
+        report.reason += "; recomputing every year: the days of the year the composites stand for changed, and "
+                         "with them every year's calendar";
+      } else {
+        only_years_ = years_reached(changed, reach, record->inputs, now);
+        if (only_years_)
+          report.reason += fmt::format("; recomputing the years it reaches: {}", fmt::join(*only_years_, ", "));
+      }
     }
     only_tiles_.reset();
     if (tiled && compared) {

@@ -1135,6 +1135,50 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
                 np.testing.assert_array_equal(mine, fresh, "%s (reach %d)" % (path, reach))
 
 
+    def test_a_composite_that_moves_the_seasons_end_redoes_every_years_calendar(self):
+        # A calendar's periods depend on the days of the year some composite, of any year,
+        # stands for (methods.md, "Regular calendar"). A composite of day 273 in 2006, later in
+        # the season than any before, makes October a month of the season in every year and
+        # lengthens every September; only 2006 had been redone, so the other years' September
+        # and October files differed from a run from scratch (and never healed). Its withdrawal
+        # the next night must undo it as well.
+        g = kt.gdal()
+        source = kt.shared_path("alaska-ndvi", "observed")
+        folder = os.path.join(self.tmp, "season-end")
+        inputs = os.path.join(folder, "inputs")
+        os.makedirs(inputs)
+        for path in sorted(glob.glob(os.path.join(source, "ndvi_200[456]-*.tif"))):
+            shutil.copy(path, inputs)
+        late = os.path.join(inputs, "ndvi_2006-09-30.tif")  # day 273: the 16-day phase of the stack
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                    'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nlambda = 100\nevery = "1M"\nreach = 183\n')
+        self.assertEqual(run(job).returncode, 0)
+        for night in ("arrives", "withdrawn"):
+            if night == "arrives":
+                g.Translate(late, os.path.join(source, "ndvi_2006-09-14.tif"))
+            else:
+                os.remove(late)
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertIn("recomputing every year", done.stdout)
+            scratch = os.path.join(folder, "scratch-" + night)
+            done = run(job, "--out", scratch)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            mine_files = sorted(os.path.relpath(p, os.path.join(folder, "out", "fill"))
+                                for p in glob.glob(os.path.join(folder, "out", "fill", "**", "*.tif"), recursive=True))
+            fresh_files = sorted(os.path.relpath(p, os.path.join(scratch, "fill"))
+                                 for p in glob.glob(os.path.join(scratch, "fill", "**", "*.tif"), recursive=True))
+            self.assertEqual(mine_files, fresh_files, night)
+            self.assertIn(os.path.join("calendar-1M", "ndvi_2004-10-01.tif"), mine_files)
+            for name in mine_files:
+                mine = g.Open(os.path.join(folder, "out", "fill", name))
+                fresh = g.Open(os.path.join(scratch, "fill", name))
+                np.testing.assert_array_equal(mine.ReadAsArray(), fresh.ReadAsArray(), "%s (%s)" % (name, night))
+                self.assertEqual(mine.GetMetadataItem("KALENDS_PERIOD_DAYS_COVERED"),
+                                 fresh.GetMetadataItem("KALENDS_PERIOD_DAYS_COVERED"), name)
+
 class ArrivalsDuringARun(kt.TempDirTestCase):
     def test_a_composite_that_arrives_while_a_step_runs_is_new_to_the_next_run(self):
         # Real MODIS NDVI (alaska-ndvi/masked30). The last composite lands while the fill step
