@@ -365,20 +365,28 @@ bool same_raster_content(const std::string& a, const std::string& b) {
   if (!x || !y) return false;
   const int w = x->GetRasterXSize(), h = x->GetRasterYSize(), n = x->GetRasterCount();
   if (w != y->GetRasterXSize() || h != y->GetRasterYSize() || n != y->GetRasterCount()) return false;
-  {
+  auto same_metadata = [](char** a, char** b) {
     // Copies: CPLStringList takes ownership of what it is given.
-    CPLStringList mx(CSLDuplicate(x->GetMetadata())), my(CSLDuplicate(y->GetMetadata()));
-    mx.Sort();
-    my.Sort();
-    if (mx.size() != my.size()) return false;
-    for (int i = 0; i < mx.size(); ++i)
-      if (std::string(mx[i]) != my[i]) return false;
-  }
+    CPLStringList ma(CSLDuplicate(a)), mb(CSLDuplicate(b));
+    ma.Sort();
+    mb.Sort();
+    if (ma.size() != mb.size()) return false;
+    for (int i = 0; i < ma.size(); ++i)
+      if (std::string(ma[i]) != mb[i]) return false;
+    return true;
+  };
+  if (!same_metadata(x->GetMetadata(), y->GetMetadata())) return false;
   std::vector<float> row_x(std::size_t(w) * 64), row_y(std::size_t(w) * 64);
   for (int b = 1; b <= n; ++b) {
     GDALRasterBand* bx = x->GetRasterBand(b);
     GDALRasterBand* by = y->GetRasterBand(b);
     if (std::string(bx->GetDescription()) != by->GetDescription()) return false;
+    // A band's own items (a period's KALENDS_DAYS_COVERED) and how its numbers read: a file
+    // whose pixels stayed while its band metadata moved had been kept with the old items.
+    if (!same_metadata(bx->GetMetadata(), by->GetMetadata())) return false;
+    if (std::string(bx->GetUnitType()) != by->GetUnitType() || bx->GetScale() != by->GetScale() ||
+        bx->GetOffset() != by->GetOffset())
+      return false;
     for (int r = 0; r < h; r += 64) {
       const int rows = std::min(64, h - r);
       if (bx->RasterIO(GF_Read, 0, r, w, rows, row_x.data(), w, rows, GDT_Float32, 0, 0, nullptr) != CE_None ||

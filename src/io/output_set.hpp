@@ -126,8 +126,8 @@ class OutputSet {
   int written_ = 0, unchanged_ = 0;
 };
 
-/// True when two rasters hold the same size, bands (pixels bit for bit, descriptions) and
-/// dataset metadata.
+/// True when two rasters hold the same size, bands (pixels bit for bit, descriptions, band
+/// metadata, unit, scale and offset) and dataset metadata.
 bool same_raster_content(const std::string& a, const std::string& b);
 
 /// Writes `window` of raster `source` (all bands, types kept) to GeoTIFF `path`, which the

@@ -1179,6 +1179,45 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
                 self.assertEqual(mine.GetMetadataItem("KALENDS_PERIOD_DAYS_COVERED"),
                                  fresh.GetMetadataItem("KALENDS_PERIOD_DAYS_COVERED"), name)
 
+class UnchangedMeansTheSameMetadata(kt.TempDirTestCase):
+    def test_a_file_whose_band_metadata_moved_is_rewritten(self):
+        # A composite of 30 September after one of 22 September (16-day median step) cuts the
+        # earlier one to 8 days and gives the period of day 273 16 covered days instead of 8. A
+        # seasons layer whose pixels stay the same (observed_2021: every value observed) had
+        # been kept as "unchanged" with KALENDS_DAYS_COVERED 8: only pixels were compared.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "metadata")
+        inputs = os.path.join(folder, "inputs")
+        os.makedirs(inputs)
+        dates = ["2021-05-01", "2021-05-17", "2021-06-02", "2021-06-18", "2021-07-04", "2021-07-20", "2021-08-05",
+                 "2021-08-21", "2021-09-06", "2021-09-22"]
+        rng = np.random.default_rng(3)
+        for date in dates + ["2021-09-30"]:
+            path = os.path.join(folder, date + ".tif")
+            kt.write_raster(path, rng.uniform(0.2, 0.8, (6, 6)).astype(np.float32),
+                            geotransform=(20.0, 0.01, 0, 1.0, 0, -0.01), epsg=4326)
+        for date in dates:
+            shutil.move(os.path.join(folder, date + ".tif"), os.path.join(inputs, "ndvi_%s.tif" % date))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                    'do = "fill"\ninput = "ndvi"\n[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n'
+                    'period = "16d"\n')
+        self.assertEqual(run(job).returncode, 0)
+        shutil.move(os.path.join(folder, "2021-09-30.tif"), os.path.join(inputs, "ndvi_2021-09-30.tif"))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        scratch = os.path.join(folder, "scratch")
+        self.assertEqual(run(job, "--out", scratch).returncode, 0)
+        names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(folder, "out", "seasons", "*.tif")))
+        self.assertIn("ndvi_observed_2021.tif", names)
+        for name in names:
+            mine = g.Open(os.path.join(folder, "out", "seasons", name))
+            fresh = g.Open(os.path.join(scratch, "seasons", name))
+            for b in range(1, mine.RasterCount + 1):
+                self.assertEqual(mine.GetRasterBand(b).GetMetadata(), fresh.GetRasterBand(b).GetMetadata(),
+                                 "%s band %d" % (name, b))
+
 class ArrivalsDuringARun(kt.TempDirTestCase):
     def test_a_composite_that_arrives_while_a_step_runs_is_new_to_the_next_run(self):
         # Real MODIS NDVI (alaska-ndvi/masked30). The last composite lands while the fill step
