@@ -39,6 +39,15 @@ namespace kalends {
 
 namespace {
 
+// The job's output folder: --out, made absolute as the job file's `out` is (outputs record
+// their inputs' paths, which a relative --out left depending on where the run was started).
+std::string output_folder(const RunOptions& options, const detail::Job& job) {
+  if (options.out_dir.empty()) return job.out;
+  std::filesystem::path out = std::filesystem::absolute(options.out_dir).lexically_normal();
+  if (!out.has_filename() && out.has_parent_path()) out = out.parent_path();
+  return out.string();
+}
+
 namespace fs = std::filesystem;
 using detail::Job;
 using detail::JobInput;
@@ -284,7 +293,7 @@ class Runner {
   RunReport run() {
     const auto started = std::chrono::steady_clock::now();
     job_ = detail::read_job(options_.job_file);
-    out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
+    out_ = output_folder(options_, job_);
     if (out_.empty()) throw UsageError(options_.job_file, "no output folder: set 'out' in [job] or give --out");
     report_.out_dir = out_;
     base_ = out_;
@@ -475,7 +484,7 @@ class Runner {
 
   std::vector<StepStatus> status() {
     job_ = detail::read_job(options_.job_file);
-    out_ = options_.out_dir.empty() ? job_.out : options_.out_dir;
+    out_ = output_folder(options_, job_);
     base_ = out_;
     const fs::path state = fs::path(out_) / ".kalends" / "state.sqlite";
     // A run going now: the steps it has not finished are being (re)made, not merely stale.
@@ -1186,7 +1195,7 @@ RunReport run_job(const RunOptions& options, const RunEvents& events) {
 
 PlanReport plan_job(const RunOptions& options, int shards) {
   const Job job = detail::read_job(options.job_file);
-  const std::string out = options.out_dir.empty() ? job.out : options.out_dir;
+  const std::string out = output_folder(options, job);
   if (out.empty()) throw UsageError(options.job_file, "no output folder: set 'out' in [job] or give --out");
   std::vector<std::string> left_out;
   PlanReport report;

@@ -733,6 +733,29 @@ class JobWording(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         self.assertIn("note: 1 of 1 layers have no value on the study grid", done.stdout)
 
+    def test_a_relative_out_is_recorded_as_the_folder_it_names(self):
+        # Outputs record the files they were made from. A relative --out had been recorded as
+        # typed ("relout/fill/*.tif"), so the same run gave other bytes for another spelling of
+        # the folder, and the path could not be followed from elsewhere; the job file's `out`
+        # was already made absolute.
+        folder = os.path.join(self.tmp, "relative")
+        os.makedirs(os.path.join(folder, "layers"))
+        for day in (1, 17, 33):
+            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
+            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
+                            np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "ndvi"\n[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n')
+        done = subprocess.run([kt.KALENDS_BIN, "run", "job.toml", "--out", "relout/", "-q"], cwd=folder,
+                              capture_output=True, text=True, timeout=300)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        g = kt.gdal()
+        recorded = g.Open(os.path.join(folder, "relout", "seasons", "ndvi_synoptic_mean.tif")).GetMetadataItem(
+            "KALENDS_INPUT")
+        self.assertEqual(recorded, os.path.join(folder, "relout", "fill", "*.tif"))
+
 class EditedJob(kt.TempDirTestCase):
     def test_outputs_the_job_no_longer_makes_are_not_read(self):
         # A monthly calendar and a seasons step, then the job edited: no 'every', another
