@@ -76,6 +76,10 @@ struct FillSummary {
   int calendar_outputs = 0;
   int calendar_outside_season = 0;  // periods no composite of any year stands for: left empty
   CivilDate first_outside_season{};
+  /// In-season periods no composite of their own year stands for (a year or months with no
+  /// file at all): their values are the curve across that gap.
+  int calendar_without_composite = 0;
+  CivilDate first_without_composite{};
   std::int64_t pixel_dates = 0, observed = 0, missing = 0, rejected = 0, filled = 0,
                unfilled = 0;
   std::int64_t pixels_never_observed = 0;
@@ -107,6 +111,10 @@ using ProgressCallback = std::function<void(int blocks_done, int blocks_total)>;
 /// Runs the fill. Inputs are all checked before anything is written; outputs appear under
 /// their final names only when every one of them is complete.
 FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress = {});
+
+/// The note on calendar layers in the season where the stack has no composite that year
+/// (FillSummary::calendar_without_composite), or "".
+std::string calendar_gap_note(const FillSummary& summary);
 
 /// The lines a job's fill step shows about its input (pixels the method could not fit, a
 /// scale factor left unapplied); `kalends fill` says the same in its own words.

@@ -164,6 +164,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                    "give --scale/--offset if they are not in physical units (see kalends inspect)\n",
                    r.input.c_str(), s.unapplied_scaling.c_str());
     if (!s.time_grid_note.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.time_grid_note.c_str());
+    if (const std::string note = calendar_gap_note(s); !note.empty()) std::fprintf(stderr, "note: %s\n", note.c_str());
     // Only the calendar layers read the marks; the dated outputs keep the input's dates.
     if (r.every) note_month_end_dates(s.dates_at_month_ends, r.marks);
     if (s.outputs_of_another_input > 0)

@@ -96,6 +96,7 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
     const auto [begin, end] = period_of(day, period);
     PeriodMean mean;
     mean.start = TimePoint{begin * 86400};
+    mean.end = TimePoint{end * 86400};
     mean.in_season = false;
     for (std::int64_t d = begin; d < end && !mean.in_season; ++d)
       mean.in_season = season[std::size_t(day_of_year(civil_from_days(d)) - 1)] != 0;

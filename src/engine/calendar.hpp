@@ -12,6 +12,7 @@ namespace kalends::detail {
 
 struct PeriodMean {
   TimePoint start;           // first day of the period
+  TimePoint end;             // first day after it
   int days = 0;              // days of the period the mean is over (covered by the grid, in season)
   std::vector<int> slots;    // slots the mean draws on
   std::vector<double> weights;  // summing to 1

@@ -99,6 +99,17 @@ struct Worker {
 
 }  // namespace
 
+std::string calendar_gap_note(const FillSummary& summary) {
+  const int n = summary.calendar_without_composite;
+  if (n == 0) return "";
+  const CivilDate& first = summary.first_without_composite;
+  return fmt::format("{} calendar layer{} (from {}-{:02d}-{:02d}) lie{} in the season but where the stack has no "
+                     "composite that year: {} the curve across that gap (flag 2), not a period with data, unless "
+                     "--max-gap leaves the gap empty",
+                     n, n == 1 ? "" : "s", first.year, first.month, first.day, n == 1 ? "s" : "",
+                     n == 1 ? "its value is" : "their values are");
+}
+
 std::vector<std::string> fill_notes(const FillRequest& request, const FillSummary& summary) {
   std::vector<std::string> notes;
   for (const auto& [reason, n] : summary.series_not_fitted)
@@ -109,6 +120,7 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
                     ", which GDAL leaves unapplied: the values were filled as stored (set 'scale' and "
                     "'offset' if they are not in physical units)");
   if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
+  if (const std::string note = calendar_gap_note(summary); !note.empty()) notes.push_back(note);
   if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::start)
     notes.push_back(month_end_note("--date-marks end"));
   if (!summary.mixed_value_rules.empty())
@@ -695,10 +707,24 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.block_height = plan.block_height;
   summary.blocks_at_once = std::min(at_once, int(plan.blocks.size()));
   summary.calendar_outputs = int(periods.size());
-  for (const detail::PeriodMean& period : periods)
-    if (!period.in_season) {
-      if (summary.calendar_outside_season++ == 0) summary.first_outside_season = period.start.date();
+  {
+    // The days each composite stands for (seasons' rule), against each in-season period.
+    std::vector<std::int64_t> days;
+    for (const TimePoint& t : stack.times()) days.push_back(std::int64_t(std::floor(t.days())));
+    const auto spans = composite_spans(days, std::max<std::int64_t>(1, std::llround(grid.step_days)), request.marks, 1);
+    for (const detail::PeriodMean& period : periods) {
+      if (!period.in_season) {
+        if (summary.calendar_outside_season++ == 0) summary.first_outside_season = period.start.date();
+        continue;
+      }
+      const std::int64_t begin = std::int64_t(std::floor(period.start.days()));
+      const std::int64_t end = std::int64_t(std::floor(period.end.days()));
+      const bool stood_for = std::any_of(spans.begin(), spans.end(),
+                                         [&](const auto& span) { return span.first < end && begin < span.second; });
+      if (!stood_for && summary.calendar_without_composite++ == 0)
+        summary.first_without_composite = period.start.date();
     }
+  }
   std::int64_t masked_by_qa = 0;
   std::map<int, YearCounts> years;
   std::vector<BlockChoice> chosen;

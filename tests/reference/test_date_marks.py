@@ -222,7 +222,13 @@ class CompositesRestartEachFirstOfJanuary(kt.TempDirTestCase):
             f.write("id,longitude,latitude,date\ndec31,10.005,4.995,2019-12-31\njan1,10.005,4.995,2020-01-01\n"
                     "jan3,10.005,4.995,2020-01-03\nlast,10.005,4.995,2021-12-31\nafter,10.005,4.995,2022-01-02\n")
         filled = os.path.join(self.tmp, "filled")  # nothing to fill: the values pass through
-        kt.run_fill_ok(self, [os.path.join(stack, "*.tif"), "--out", filled])
+        done = kt.run_kalends(["fill", os.path.join(stack, "*.tif"), "--out", filled, "--every", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        # The calendar's twelve months of 2020 rest on the curve across the missing year: said
+        # (they had been written as any other month, June 2020 at -0.57 with sd 1.96, without a
+        # word). January 2020 counts among them now that December's composite stops on the 31st.
+        self.assertIn("12 calendar layers (from 2020-01-01) lie in the season but where the stack has no composite "
+                      "that year", done.stderr)
         out = os.path.join(self.tmp, "table.csv")
         done = kt.run_kalends(["extract", filled, "--points", points, "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
