@@ -275,6 +275,17 @@ bool outputs_exist(const detail::StepRecord& record) {
   return std::all_of(record.outputs.begin(), record.outputs.end(), [](const std::string& p) { return fs::exists(p); });
 }
 
+// "outputs missing", with how many of the step's recorded outputs are gone and the first of
+// them (relative to `out`), so that the user can tell a deleted file from a lost folder.
+std::string outputs_missing(const detail::StepRecord& record, const std::string& out) {
+  std::size_t missing = 0;
+  std::string first;
+  for (const std::string& p : record.outputs)
+    if (!fs::exists(p) && missing++ == 0) first = fs::path(p).lexically_relative(out).string();
+  if (missing == 0) return "outputs missing";
+  return fmt::format("outputs missing: {} of {} (first: {})", missing, record.outputs.size(), first);
+}
+
 // Input files added, changed or removed between two runs (path -> checksum).
 std::set<std::string> changed_files(const std::map<std::string, std::string>& before,
                                     const std::map<std::string, std::string>& now) {
@@ -542,7 +553,7 @@ class Runner {
           s.state = "never run";
         } else {
           s.state = "stale";
-          s.detail = !outputs_exist(*record) ? "outputs missing" : why_changed(*record, step, fingerprint);
+          s.detail = !outputs_exist(*record) ? outputs_missing(*record, out_) : why_changed(*record, step, fingerprint);
         }
       } else if (record->status == "running") {
         // Marked when a run started it, and never done or failed: that run was stopped.
@@ -552,6 +563,7 @@ class Runner {
         // The files a user sees: not the hidden ones (a tiled fill's .mosaic views), which the
         // run's "files written" does not count either.
         s.outputs = int(std::count_if(record->outputs.begin(), record->outputs.end(), [&](const std::string& p) {
+          if (!fs::exists(p)) return false;  // counted as missing
           for (const auto& part : fs::path(p).lexically_relative(out_))
             if (const std::string name = part.string(); name.size() > 1 && name[0] == '.' && name != "..") return false;
           return true;
@@ -562,7 +574,7 @@ class Runner {
           s.detail = fmt::format("{} UTC, {:.1f} s", record->finished, record->seconds);
         } else {
           s.state = "stale";
-          s.detail = !complete ? "outputs missing" : why_changed(*record, step, fingerprint);
+          s.detail = !complete ? outputs_missing(*record, out_) : why_changed(*record, step, fingerprint);
         }
         // Stopped while redoing it (not new inputs since a finished run): say so first.
         if (interrupted && s.state != "done") {
@@ -988,7 +1000,7 @@ class Runner {
     report.reason = !record                       ? "never run"
                     : record->status == "failed"  ? "failed last time"
                     : record->status == "running" ? "stopped while running last time"
-                    : !complete                   ? "outputs missing"
+                    : !complete                   ? outputs_missing(*record, out_)
                                                   : why_changed(*record, step, fingerprint);
     if (options_.dry_run) {
       report.action = StepReport::Action::would_run;

@@ -756,6 +756,30 @@ class JobWording(kt.TempDirTestCase):
             "KALENDS_INPUT")
         self.assertEqual(recorded, os.path.join(folder, "relout", "fill", "*.tif"))
 
+    def test_a_deleted_output_is_named_and_not_counted(self):
+        # status had said "outputs missing (3 files in its folder)" with 2 left, and named none.
+        folder = os.path.join(self.tmp, "deleted")
+        os.makedirs(os.path.join(folder, "layers"))
+        for day in (1, 17, 33):
+            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
+            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
+                            np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "ndvi"\n')
+        self.assertEqual(run(job).returncode, 0)
+        outputs = sorted(glob.glob(os.path.join(folder, "out", "fill", "*")))
+        os.remove(os.path.join(folder, "out", "fill", "ndvi_2021-01-17.tif"))
+        done = kt.run_kalends(["status", job])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("stale       outputs missing: 1 of %d (first: fill/ndvi_2021-01-17.tif) (%d files in its folder)"
+                      % (len(outputs), len(outputs) - 1), done.stdout)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("outputs missing: 1 of %d (first: fill/ndvi_2021-01-17.tif)" % len(outputs), done.stdout)
+        self.assertTrue(os.path.exists(os.path.join(folder, "out", "fill", "ndvi_2021-01-17.tif")))
+
 class EditedJob(kt.TempDirTestCase):
     def test_outputs_the_job_no_longer_makes_are_not_read(self):
         # A monthly calendar and a seasons step, then the job edited: no 'every', another
