@@ -1,5 +1,7 @@
 // Filling a tile set: each tile is one region of the tiles' mosaic, so a block at a tile edge
 // reads its halo from the neighbouring tile and the values equal those of a run on the mosaic.
+#include <unistd.h>
+
 #include <algorithm>
 #include <filesystem>
 
@@ -32,6 +34,33 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
                                 const ProgressCallback& progress,
                                 const std::optional<std::vector<std::string>>& only_tiles) {
   const fs::path out(request.out_dir);
+  if (request.check_only) {
+    // The memory check of a job: the largest tile's block, on mosaic views made in a
+    // temporary folder (a check writes nothing beside the outputs), removed again.
+    std::error_code ec;
+    const fs::path views = fs::temp_directory_path(ec) / fmt::format("kalends-tile-check-{}", ::getpid());
+    struct Remove {
+      fs::path path;
+      ~Remove() {
+        std::error_code ignored;
+        fs::remove_all(path, ignored);
+      }
+    } remove{views};
+    const TileSet data = TileSet::open(request.input, tile_field, (views / "input").string());
+    FillRequest r = request;
+    r.input = data.pattern;
+    if (!request.qa_input.empty()) r.qa_input = TileSet::open(request.qa_input, tile_field, (views / "qa").string()).pattern;
+    TiledFillSummary summary;
+    const auto largest = std::max_element(data.tiles.begin(), data.tiles.end(), [](const Tile& a, const Tile& b) {
+      return a.window.pixels() < b.window.pixels();
+    });
+    if (largest == data.tiles.end()) return summary;
+    r.region = largest->window;
+    r.out_dir = (out / largest->name).string();
+    if (r.name.empty()) r.name = "check";
+    summary.tiles.push_back(run_fill(r));
+    return summary;
+  }
   // The per-date mosaics of the inputs live beside the outputs, hidden: they are only a view.
   const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string());
   std::optional<TileSet> qa;

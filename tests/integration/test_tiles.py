@@ -267,6 +267,37 @@ class TiledFill(kt.TempDirTestCase):
                       done.stderr)
 
 
+    def test_in_a_job_a_tiled_fills_budget_is_checked_before_the_first_step(self):
+        # A tile set's fill had been checked only as each tile ran: a nightly job ran its first
+        # steps and then failed on the tiles. The largest tile with its halo is now checked
+        # with the job's other fill steps before any step runs; the budget it names runs.
+        import shutil
+        import subprocess
+        job_dir = os.path.join(self.tmp, "budget-job")
+        tiles = os.path.join(job_dir, "tiles")
+        shutil.copytree(self.tiles, tiles)
+        shutil.copytree(self.stack, os.path.join(job_dir, "whole"))
+        job = os.path.join(job_dir, "job.toml")
+        text = ('[job]\nout = "out"\nthreads = 1\nmemory = "{}"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
+                '[inputs.whole]\nstack = "whole/ndvi_*.tif"\n\n'
+                '[[step]]\nid = "first"\ndo = "fill"\ninput = "whole"\nmethod = "whittaker"\n\n'
+                '[[step]]\nid = "tiled"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\ntiles = "tiles/{{tile}}/"\n')
+        with open(job, "w") as f:
+            f.write(text.format("110M"))
+        for args in (["--dry-run"], []):
+            done = subprocess.run([kt.KALENDS_BIN, "run", job] + args, capture_output=True, text=True, timeout=300)
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            line = done.stderr.strip().splitlines()[-1]
+            self.assertRegex(line, r"job\.toml:4: \[job\] memory: step 'tiled': budget of 110 MiB is too small")
+            self.assertFalse(glob.glob(os.path.join(job_dir, "out", "first", "*.tif")), args)
+        self.assertFalse(glob.glob("/tmp/kalends-tile-check-*"))
+        need = int(re.search(r"(\d+) MiB would do", line).group(1))
+        with open(job, "w") as f:
+            f.write(text.format("%dM" % need))
+        done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=600)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertTrue(glob.glob(os.path.join(job_dir, "out", "tiled", "h01v01", "*.tif")))
+
     def test_in_a_job_only_the_changed_tile_is_refilled(self):
         # A tile whose files changed is refilled alone (Whittaker: no halo); equal to scratch.
         import shutil

@@ -256,10 +256,12 @@ StepKind fill_step_kind() {
     make_fill_method(r.method);  // each method checks its own options
   };
   kind.check_memory = [](const StepContext& c) {
-    if (c.has("tiles")) return;  // each tile is its own stack, checked as it runs
     FillRequest r = fill_request(c);
     r.check_only = true;
-    run_fill(r);
+    // A tile set: the largest tile with its halo across the neighbours (tiles had been checked
+    // only as they ran, so a later tile could fail a nightly run hours in).
+    if (c.has("tiles")) run_tiled_fill(r, c.text("tiles"), false);
+    else run_fill(r);
   };
   kind.run = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
