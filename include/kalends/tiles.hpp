@@ -3,6 +3,7 @@
 #pragma once
 
 #include <string>
+#include <utility>
 #include <vector>
 
 #include "kalends/block_plan.hpp"
@@ -40,6 +41,7 @@ struct TiledFillSummary {
   std::vector<FillSummary> tiles;  // one per tile, in the tile set's order
   int tiles_skipped = 0;           // left as they were: nothing they depend on changed
   std::string mosaic_dir;          // VRT mosaics of the per-tile outputs, when asked for
+  int mosaic_written = 0, mosaic_unchanged = 0;  // those views
   std::vector<std::string> missing;  // "TILE DATE" of the input (TileSet::missing)
 };
 
@@ -57,6 +59,7 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
                                 const std::optional<std::vector<std::string>>& only_tiles = std::nullopt);
 
 /// Writes one VRT per output date in `mosaic_dir` over the same-named files in `folders`.
-void write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir);
+/// Returns the views {written, unchanged} (one whose text would not change is left as it is).
+std::pair<int, int> write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir);
 
 }  // namespace kalends

@@ -4,6 +4,7 @@
 
 #include <algorithm>
 #include <filesystem>
+#include <tuple>
 
 #include <fmt/format.h>
 #include <fmt/ranges.h>
@@ -113,7 +114,7 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
   }
   if (mosaic) {
     summary.mosaic_dir = (out / "mosaic").string();
-    write_mosaics(folders, summary.mosaic_dir);
+    std::tie(summary.mosaic_written, summary.mosaic_unchanged) = write_mosaics(folders, summary.mosaic_dir);
   } else if (!only_tiles) {
     // An earlier run's mosaic views, no longer made, would point at outputs this run removed:
     // they go, as outputs of dates no longer in the stack do.

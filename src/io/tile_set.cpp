@@ -10,6 +10,8 @@
 #include <cstring>
 #include <cmath>
 #include <filesystem>
+#include <fstream>
+#include <iterator>
 #include <fmt/format.h>
 #include <map>
 #include <regex>
@@ -183,7 +185,9 @@ bool overlap_agrees(const std::string& a, const Window& wa, const std::string& b
 
 // Replaces the VRTs in `folder` by `wanted` (name -> text): writes new and changed ones,
 // removes those no longer wanted.
-void publish_vrts(const std::string& folder, const std::map<std::string, std::string>& wanted) {
+// Writes the views `wanted` (name -> text) into `folder`, leaving one of the same text as it
+// is; returns {written, unchanged}.
+std::pair<int, int> publish_vrts(const std::string& folder, const std::map<std::string, std::string>& wanted) {
   std::error_code ec;
   fs::create_directories(folder, ec);
   if (ec) throw OutputError(folder, "cannot create the folder: " + ec.message());
@@ -192,7 +196,20 @@ void publish_vrts(const std::string& folder, const std::map<std::string, std::st
     if (entry.path().extension() == ".vrt" && !wanted.count(entry.path().filename().string()) &&
         find_date_in_name(entry.path().filename().string()))
       fs::remove(entry.path(), ec);
-  for (const auto& [name, text] : wanted) detail::write_text_atomically((fs::path(folder) / name).string(), text);
+  std::pair<int, int> counts{0, 0};
+  for (const auto& [name, text] : wanted) {
+    const fs::path path = fs::path(folder) / name;
+    if (std::ifstream in(path, std::ios::binary); in) {
+      const std::string before((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+      if (before == text) {
+        ++counts.second;
+        continue;
+      }
+    }
+    detail::write_text_atomically(path.string(), text);
+    ++counts.first;
+  }
+  return counts;
 }
 
 }  // namespace
@@ -310,9 +327,9 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   return set;
 }
 
-void write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir) {
+std::pair<int, int> write_mosaics(const std::vector<std::string>& folders, const std::string& mosaic_dir) {
   detail::start_gdal();
-  if (folders.empty()) return;
+  if (folders.empty()) return {0, 0};
   // Every raster below the first folder (calendar subfolders too), matched by relative path.
   std::map<std::string, std::map<std::string, std::string>> wanted;  // subfolder -> name -> text
   std::error_code ec;
@@ -334,7 +351,13 @@ void write_mosaics(const std::vector<std::string>& folders, const std::string& m
     const std::string vrt = (fs::path(relative.stem().string() + ".vrt")).string();
     wanted[target_dir.string()][vrt] = vrt_text(mosaic, sources, (target_dir / vrt).string());
   }
-  for (const auto& [folder, vrts] : wanted) publish_vrts(folder, vrts);
+  std::pair<int, int> counts{0, 0};
+  for (const auto& [folder, vrts] : wanted) {
+    const auto [written, unchanged] = publish_vrts(folder, vrts);
+    counts.first += written;
+    counts.second += unchanged;
+  }
+  return counts;
 }
 
 }  // namespace kalends

@@ -321,6 +321,10 @@ class TiledFill(kt.TempDirTestCase):
         hidden = [p for p in glob.glob(os.path.join(job_dir, "out", "fill", "**", ".*"), recursive=True)]
         status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
         self.assertIn("(%d files in its folder)" % len(seen), status.stdout, (len(hidden), status.stdout))
+        # The run's counts are those files too, the mosaic views included (they had been left out).
+        counts = re.search(r"(\d+) files? written, (\d+) unchanged", done.stdout)
+        self.assertEqual(int(counts.group(1)) + int(counts.group(2)), len(seen), done.stdout)
+        self.assertTrue(glob.glob(os.path.join(job_dir, "out", "fill", "mosaic", "*.vrt")))
         # A reprocessed composite for one tile: same date, new values.
         g = kt.gdal()
         path = sorted(glob.glob(os.path.join(tiles, "h01v01", "ndvi_*.tif")))[5]

@@ -274,6 +274,9 @@ StepKind fill_step_kind() {
         outcome.outputs_unchanged += s.outputs_unchanged;
         outcome.outputs_removed += s.outputs_removed;
       }
+      // The mosaic views later steps read are the step's files too.
+      outcome.outputs_written += tiled.mosaic_written;
+      outcome.outputs_unchanged += tiled.mosaic_unchanged;
       outcome.notes = tiled_fill_notes(r, tiled);
       return outcome;
     }
