@@ -1,7 +1,8 @@
 // kalends extract: covariate values at survey points. Coordinates go into each layer's CRS with
 // OGRCoordinateTransformation (PROJ), in longitude-latitude / easting-northing order
 // (OAMS_TRADITIONAL_GIS_ORDER). Pixel positions come from the inverse geotransform; cell (c, r)
-// covers [c, c+1) x [r, r+1) in pixel coordinates and its centre is at (c + 0.5, r + 0.5).
+// covers [c, c+1) x [r, r+1) in pixel coordinates and its centre is at (c + 0.5, r + 0.5); a
+// point within 1e-6 px of an edge or centre is taken as on it.
 //   nearest:  the cell holding the point.
 //   bilinear: the four cell centres around the point, weights (1-fx)(1-fy) ... (the usual
 //             bilinear interpolation); beyond the outermost centres the edge cells are repeated.
@@ -115,8 +116,16 @@ class SeriesGeometry {
     out.located = true;
     out.x = x;
     out.y = y;
-    out.px = inverse_[0] + x * inverse_[1] + y * inverse_[2];
-    out.py = inverse_[3] + x * inverse_[4] + y * inverse_[5];
+    // A point on a cell edge or centre as written (survey coordinates rounded to the grid's
+    // step) comes out of the inverse geotransform a few 1e-12 px to either side: snapped, so
+    // that every edge goes the same way (the cell to its east or south) and a centre needs only
+    // its own cell's row or column. A millionth of a pixel is far below any survey's precision.
+    auto snapped = [](double pixel) {
+      const double half = std::round(2 * pixel) / 2;
+      return std::abs(pixel - half) < 1e-6 ? half : pixel;
+    };
+    out.px = snapped(inverse_[0] + x * inverse_[1] + y * inverse_[2]);
+    out.py = snapped(inverse_[3] + x * inverse_[4] + y * inverse_[5]);
     if (!(out.px >= 0 && out.px < series_.grid.width && out.py >= 0 && out.py < series_.grid.height)) {
       out.reason = "outside the layer";
       return out;

@@ -460,6 +460,52 @@ class ExtractLandsat(kt.TempDirTestCase):
 
 
 
+class PointsOnEdgesAndCentres(kt.TempDirTestCase):
+    def test_every_edge_goes_east_or_south_and_a_centre_needs_its_own_cells(self):
+        # A 0.01 x 0.005 degree grid from -148, 65 (invented), each cell holding column * 1000 +
+        # row. Survey coordinates rounded to the grid's step lie on edges; the inverse
+        # geotransform puts some a few 1e-12 px to the west or north, so 16 of 100 west edges
+        # had read the cell to the west. The rule (docs/extract.md): a cell holds its west and
+        # north edges. The expected cells come from exact decimal arithmetic (fractions), not
+        # from kalends.
+        from fractions import Fraction
+        cols, rows = 100, 60
+        values = (np.arange(cols)[None, :] * 1000 + np.arange(rows)[:, None]).astype(np.float32)
+        missing = values.copy()
+        missing[0, 52] = np.nan  # north of the centre of (52, 1)
+        layer = os.path.join(self.tmp, "cells", "index.tif")
+        os.makedirs(os.path.dirname(layer))
+        kt.write_raster(layer, missing, geotransform=(-148.0, 0.01, 0, 65.0, 0, -0.005), epsg=4326, nodata=float("nan"))
+        points = os.path.join(self.tmp, "edges.csv")
+        expected = {}
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\n")
+            for c in range(1, cols):
+                lon = "%.2f" % (-148 + c * 0.01)
+                f.write("w%d,%s,64.7525,2021-06-01\n" % (c, lon))  # mid-row of row 49
+                column = int((Fraction(lon) + 148) / Fraction("0.01"))
+                expected["w%d" % c] = column * 1000 + 49
+            for r in range(1, rows):
+                lat = "%.3f" % (65 - r * 0.005)
+                f.write("n%d,-147.455,%s,2021-06-01\n" % (r, lat))  # mid-column of column 54
+                row = int((65 - Fraction(lat)) / Fraction("0.005"))
+                expected["n%d" % r] = 54 * 1000 + row
+            f.write("centre,-147.475,64.9925,2021-06-01\n")
+        out = os.path.join(self.tmp, "nearest.csv")
+        done = kt.run_kalends(["extract", layer, "--points", points, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        got = {row["id"]: row for row in kt.read_table(out)}
+        wrong = [k for k, v in expected.items() if got[k]["index"] == "" or float(got[k]["index"]) != v]
+        self.assertEqual(wrong, [], [(k, got[k]["index"], expected[k]) for k in wrong[:5]])
+        # Bilinear at a cell centre needs only that cell (weights 1, 0, 0, 0): the missing cell
+        # to the north takes no part (it had a weight of about 1e-12, and the value was dropped).
+        out = os.path.join(self.tmp, "bilinear.csv")
+        done = kt.run_kalends(["extract", layer, "--points", points, "--out", out, "--sampling", "bilinear"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        got = {row["id"]: row for row in kt.read_table(out)}
+        self.assertEqual(got["centre"]["index.reason"], "")
+        self.assertEqual(float(got["centre"]["index"]), 52001.0)
+
 class SummersOnly(kt.TempDirTestCase):
     def test_an_empty_cell_says_nodata(self):
         # A point on a cell without a value, and one beside it on a cell with one (invented
