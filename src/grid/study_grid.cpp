@@ -395,7 +395,9 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       for (const auto& [name, from, to, low] : {std::tuple{"XMAX", e[0], e[2], false}, std::tuple{"YMIN", e[3], e[1], true}}) {
         const double cells = std::abs(to - from) / resolution;
         const double whole = std::floor(cells + 0.5);  // GDAL's rounding (gdalwarp -te with -tr)
-        if (std::abs(cells - whole) > 1e-6)
+        // A thousandth of a cell is rounding in how the resolution was written (0.0083333 for
+        // 30 arc seconds moves a 0.4 degree edge by 0.2 m), not a grid the user did not mean.
+        if (std::abs(cells - whole) > 1e-3)
           moved.push_back(fmt::format("{} {:.10g} to {:.10g} ({:.6g} cells rounded to {:.0f})", name, to,
                                       low ? from - whole * resolution : from + whole * resolution, cells, whole));
       }

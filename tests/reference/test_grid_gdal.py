@@ -113,6 +113,12 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
                                "--extent", "300000,7996100,304500,8000000"])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertNotIn("whole number", done.stderr)
+        # 30 arc seconds written as 0.0083333 over 0.4 degrees is 48.0002 cells: the edge moves
+        # by 0.2 m, which is how the resolution was written, not a grid the user did not mean.
+        done = kt.run_kalends(["grid", layer, "--out", out + "-arcsec", "--crs", "EPSG:4326", "--resolution",
+                               "0.0083333", "--extent", "33.0,-18.2,33.4,-17.8"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("whole number", done.stderr)
 
     def test_scaled_digital_numbers_leave_as_physical_values(self):
         # A band stored as digital numbers with a scale (0.004, as many reflectance products) is
