@@ -63,6 +63,14 @@ struct PeriodSources {
 std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
                                           const std::vector<Period>& periods, DateMarks marks);
 
+/// The years first_year, first_year + 1, ... (each `periods_per_year` entries of `sources`) on
+/// no day of which any composite stands: a year missing from the stack. UsageError("--years")
+/// when that is every year of the range (a --years that asks for missing years only).
+std::vector<int> years_without_composite(const std::vector<PeriodSources>& sources, int first_year,
+                                         int periods_per_year);
+/// The note on such years: their layers are empty.
+std::string years_without_composite_note(const std::vector<int>& years);
+
 /// A local maximum with its prominence, as scipy.signal.find_peaks / peak_prominences define
 /// them (flat tops: the middle sample, rounded down; no window length).
 struct Peak {

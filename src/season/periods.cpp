@@ -3,6 +3,9 @@
 #include <cmath>
 #include <cstdio>
 
+#include <fmt/format.h>
+#include <fmt/ranges.h>
+
 #include "kalends/error.hpp"
 
 #include "kalends/season.hpp"
@@ -136,6 +139,28 @@ std::vector<PeriodSources> period_sources(const std::vector<TimePoint>& dates,
     }
   }
   return sources;
+}
+
+std::vector<int> years_without_composite(const std::vector<PeriodSources>& sources, int first_year,
+                                         int periods_per_year) {
+  std::vector<int> years;
+  const int count = periods_per_year > 0 ? int(sources.size()) / periods_per_year : 0;
+  for (int y = 0; y < count; ++y) {
+    bool any = false;
+    for (int q = 0; q < periods_per_year; ++q) any = any || !sources[std::size_t(y) * periods_per_year + q].days.empty();
+    if (!any) years.push_back(first_year + y);
+  }
+  if (count > 0 && int(years.size()) == count)
+    throw UsageError("--years", count == 1 ? fmt::format("no composite stands for any day of {}", first_year)
+                                           : fmt::format("no composite stands for any day of {}-{}", first_year,
+                                                         first_year + count - 1));
+  return years;
+}
+
+std::string years_without_composite_note(const std::vector<int>& years) {
+  if (years.empty()) return "";
+  return fmt::format("no composite stands for any day of {}: the layers of {} are empty", fmt::join(years, ", "),
+                     years.size() == 1 ? "that year" : "those years");
 }
 
 }  // namespace kalends

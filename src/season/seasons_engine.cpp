@@ -86,9 +86,7 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
                                 "standardised anomalies and synoptic_miss are empty; a synoptic needs two years or more",
                                 summary.first_year));
   if (!summary.years_without_composite.empty())
-    notes.push_back(fmt::format("no composite stands for any day of {}: the layers of {} are empty",
-                                fmt::join(summary.years_without_composite, ", "),
-                                summary.years_without_composite.size() == 1 ? "that year" : "those years"));
+    notes.push_back(years_without_composite_note(summary.years_without_composite));
   for (const auto& [year, pixels] : summary.years_with_cycle_gaps)
     notes.push_back(fmt::format("the {} cycle layer is empty at {} of the {} pixels whose synoptic cycle has one: {} "
                                 "lacks a value in some period there ({})",
@@ -157,6 +155,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   for (int y = first_year; y <= last_year; ++y)
     for (const Period& p : periods_of_year(y, request.period)) periods.push_back(p);
   const std::vector<PeriodSources> sources = period_sources(times, periods, request.marks);
+  // Before anything is written: a --years of missing years only is refused.
+  const std::vector<int> years_without_composite = kalends::years_without_composite(sources, first_year, P);
   std::vector<char> used(times.size(), 0);
   for (const PeriodSources& s : sources)
     for (int c : s.composite) used[c] = 1;
@@ -240,12 +240,6 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   // The days each year's period rests on: a month the composites cover in part (the first of
   // a stack that starts on 25 May) is the mean of those days alone.
   std::vector<std::tuple<std::string, double, int>> partly_covered;
-  std::vector<int> years_without_composite;
-  for (int y = 0; y < years; ++y) {
-    bool any = false;
-    for (int q = 0; q < P; ++q) any = any || !sources[std::size_t(y) * P + q].days.empty();
-    if (!any) years_without_composite.push_back(first_year + y);
-  }
   for (int y = 0; y < years; ++y)
     for (int q = 0; q < P; ++q) {
       const std::size_t k = std::size_t(y) * P + q;

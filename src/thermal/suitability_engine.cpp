@@ -123,6 +123,8 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   // days, sub-daily records once each in the period holding them (period_sources, as `kalends
   // seasons`).
   const std::vector<PeriodSources> sources = period_sources(times, periods, request.inputs.marks);
+  // Before anything is written: a --years of missing years only is refused; others are noted.
+  const std::vector<int> missing_years = years_without_composite(sources, first_year, P);
   std::vector<char> used(times.size(), 0);
   for (const PeriodSources& s : sources)
     for (int c : s.composite) used[c] = 1;
@@ -354,6 +356,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.implausible = counts.total_implausible();
   summary.inverted = counts.inverted;
   summary.notes = detail::temperature_notes(source, counts);
+  if (!missing_years.empty()) summary.notes.push_back(years_without_composite_note(missing_years));
   if (!stale.empty())
     summary.notes.push_back(fmt::format("removed the layers of {} from an earlier run: outside this run's years",
                                         fmt::join(stale, ", ")));

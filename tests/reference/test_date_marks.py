@@ -199,6 +199,19 @@ class CompositesRestartEachFirstOfJanuary(kt.TempDirTestCase):
         g = kt.gdal()
         year_2020 = g.Open(os.path.join(seasons, "evi_year_2020.tif")).ReadAsArray()
         self.assertTrue(np.all(np.isnan(year_2020)), "2020 has no composite: %s" % year_2020[:, 0, 0])
+        # Asking for the missing year alone is refused, as a year outside the stack is (it had
+        # written empty layers with exit 0); suitability, on the same period weights, says what
+        # seasons says.
+        done = kt.run_kalends(["seasons", os.path.join(stack, "*.tif"), "--out", seasons + "-2020", "--years", "2020"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--years: no composite stands for any day of 2020", done.stderr)
+        self.assertFalse(os.path.exists(seasons + "-2020"))
+        for years, code in ((None, 0), ("2020", 2)):
+            args = ["suitability", "--temperature", os.path.join(stack, "*.tif"), "--units", "celsius", "--model",
+                    "window", "--out", os.path.join(self.tmp, "suitability-%s" % years)]
+            done = kt.run_kalends(args + (["--years", years] if years else []))
+            self.assertEqual(done.returncode, code, done.stderr)
+            self.assertIn("no composite stands for any day of 2020", done.stdout + done.stderr)
         # January: the day-weighted mean of the composites of days 1-25 and 6 of day 25's
         # (January has 31 days), in each of the three years; the synoptic mean over those three.
         januaries = []
