@@ -6,6 +6,7 @@
 #include <cctype>
 #include <cstdio>
 #include <iostream>
+#include <new>
 #include <filesystem>
 #include <map>
 #include <set>
@@ -116,6 +117,11 @@ int main(int argc, char** argv) {
     const std::string path = e.path1().empty() ? std::string("a path") : e.path1().string();
     std::cerr << "kalends: " << path << ": " << e.code().message() << "\n";
     return e.code() == std::errc::permission_denied ? 2 : 1;
+  } catch (const std::bad_alloc&) {
+    // It had said only "std::bad_alloc".
+    std::cerr << "kalends: out of memory: give a smaller --memory budget (or job memory), or run where more memory "
+                 "is free\n";
+    return 1;
   } catch (const std::exception& e) {
     std::cerr << "kalends: " << e.what() << "\n";
     return 1;

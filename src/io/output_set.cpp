@@ -176,9 +176,10 @@ OutputFolder::OutputFolder(const std::string& path) {
   // Holding the folder, the hidden temporaries a killed run left here are nobody's: removed, as
   // they would otherwise stay for good. Only names of the forms kalends writes (".<output>.partial"
   // and ".<output>.<tag>.partial" of its rasters, tables and summaries); a user's own stay.
-  // (GDAL's ".<name>.partial.ovr.tmp" beside a Cloud Optimized GeoTIFF in the making too.)
+  // (GDAL's ".<name>.partial.ovr.tmp" beside a Cloud Optimized GeoTIFF in the making too, and
+  // the ".<name>.partial.aux.xml" it writes where the header did not fit, under a memory limit.)
   static const std::regex temporary(
-      R"(^\..+\.(tif|vrt|json|md|csv|tsv|html)(\.[A-Za-z0-9_-]+)?\.partial(\.ovr\.tmp)?$)");
+      R"(^\..+\.(tif|vrt|json|md|csv|tsv|html)(\.[A-Za-z0-9_-]+)?\.partial(\.ovr\.tmp|\.aux\.xml)?$)");
   if (lock_ >= 0)
     for (const auto& entry : fs::directory_iterator(path, ec)) {
       const std::string name = entry.path().filename().string();
@@ -256,6 +257,8 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
   for (const OutputSpec& spec : specs) require_own_raster(spec.path, {"KALENDS_VERSION"});
   OGRSpatialReference srs;
   const bool has_crs = !grid.crs_wkt.empty() && srs.importFromWkt(grid.crs_wkt.c_str()) == OGRERR_NONE;
+  has_crs_ = has_crs;
+  has_geotransform_ = grid.has_geotransform;
   files_.reserve(specs.size());
   for (OutputSpec& spec : specs) {
     auto file = std::make_unique<File>();
@@ -292,6 +295,7 @@ OutputSet::~OutputSet() {
     file->dataset.reset();
     std::error_code ec;
     fs::remove(file->temporary, ec);
+    fs::remove(file->temporary + ".aux.xml", ec);
   }
 }
 
@@ -404,6 +408,26 @@ void OutputSet::commit() {
     file->dataset.reset();  // closing writes the remaining directory entries
     if (CPLGetLastErrorType() == CE_Failure)
       throw write_failure(file->spec.path, "closing failed (" + gdal_message("unknown reason") + ")");
+    // The GeoTIFF keys are written at the close. Where that fails (a memory limit), GDAL puts
+    // the CRS in a side file (.aux.xml) named after the temporary, which the rename leaves
+    // behind: the outputs had been published without their CRS, with exit 0.
+    if (const std::string side = file->temporary + ".aux.xml"; fs::exists(side)) {
+      std::error_code ec;
+      fs::remove(side, ec);
+      throw write_failure(file->spec.path, "GDAL could not write the whole header into the file (out of memory?)");
+    }
+    if (has_crs_ || has_geotransform_) {
+      CPLErrorReset();
+      GDALDatasetUniquePtr check(GDALDataset::Open(file->temporary.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+      double gt[6];
+      const char* lost = !check                                                  ? "it cannot be read back"
+                         : has_geotransform_ && check->GetGeoTransform(gt) != CE_None ? "its georeferencing was not written"
+                         : has_crs_ && !check->GetSpatialRef()                   ? "its CRS was not written"
+                                                                                 : nullptr;
+      if (lost)
+        throw write_failure(file->spec.path, std::string(lost) + " (" +
+                                                 gdal_message("out of memory, or the disk failed?") + ")");
+    }
   }
   // The renames below are one at a time: a run killed among them would leave some outputs new
   // and some old under their final names. A marker in each folder says so until the last

@@ -123,6 +123,7 @@ class OutputSet {
   int origin_x_ = 0, origin_y_ = 0;
   bool committed_ = false;
   bool keep_unchanged_ = false;
+  bool has_geotransform_ = false, has_crs_ = false;  // what every file must read back with
   int written_ = 0, unchanged_ = 0;
 };
 

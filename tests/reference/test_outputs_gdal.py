@@ -563,5 +563,47 @@ class NodataOfTheType(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
 
 
+class UnderAMemoryLimit(kt.TempDirTestCase):
+    def test_every_published_output_reads_back_with_its_crs(self):
+        # Under an address-space limit GDAL could not write a GeoTIFF's CRS keys at the close and
+        # put the CRS in a side file named after the temporary, which the rename left behind: the
+        # outputs were published without a CRS, exit 0, and a job's next step refused them for
+        # good. Over a range of limits, each run either succeeds with every output readable with
+        # its CRS (read by GDAL without side files) or fails with one line and publishes nothing.
+        import resource
+        import subprocess
+        g = kt.gdal()
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 60, 60)
+        inputs = os.path.join(stack, "ndvi_*.tif")
+        names = sorted(os.path.basename(p) for p in glob.glob(inputs))
+        outcomes = {"ok": 0, "refused": 0}
+        g.SetConfigOption("GDAL_PAM_ENABLED", "NO")
+        try:
+            for mib in range(150, 601, 10):
+                out = os.path.join(self.tmp, "out-%d" % mib)
+
+                def limit(mib=mib):
+                    resource.setrlimit(resource.RLIMIT_AS, (mib << 20, mib << 20))
+
+                done = subprocess.run([kt.KALENDS_BIN, "fill", inputs, "--out", out, "--lambda", "100"],
+                                      capture_output=True, text=True, timeout=120, preexec_fn=limit)
+                published = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "*.tif")))
+                if done.returncode == 0:
+                    outcomes["ok"] += 1
+                    self.assertEqual(published, names, mib)
+                    for name in published:
+                        ds = g.Open(os.path.join(out, name))
+                        self.assertIsNotNone(ds.GetSpatialRef(), "%s at %d MiB has no CRS" % (name, mib))
+                        ds = None
+                    self.assertEqual(glob.glob(os.path.join(out, ".*")), [], mib)
+                else:
+                    outcomes["refused"] += 1
+                    self.assertEqual(published, [], (mib, done.stderr))
+        finally:
+            g.SetConfigOption("GDAL_PAM_ENABLED", None)
+        print("\n  limits 150-600 MiB: %(ok)d runs succeeded, %(refused)d refused" % outcomes)
+        self.assertGreater(outcomes["ok"], 0)
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
