@@ -60,9 +60,10 @@ void write_plane(const std::string& path, const float* plane, const Grid& grid, 
   GDALDriver* gtiff = GetGDALDriverManager()->GetDriverByName("GTiff");
   char** options = nullptr;
   options = CSLSetNameValue(options, "COMPRESS", "DEFLATE");
+  CPLErrorReset();
   GDALDatasetUniquePtr ds(gtiff->Create(path.c_str(), grid.width, grid.height, 1, GDT_Float32, options));
   CSLDestroy(options);
-  if (!ds) throw OutputError(path, detail::gdal_message("cannot create"));
+  if (!ds) throw detail::write_failure(path, detail::gdal_message("cannot create"));
   if (grid.has_geotransform) {
     double gt[6];
     std::copy(grid.geotransform.begin(), grid.geotransform.end(), gt);
@@ -74,7 +75,17 @@ void write_plane(const std::string& path, const float* plane, const Grid& grid, 
   band->SetNoDataValue(NAN);
   if (band->RasterIO(GF_Write, 0, 0, grid.width, grid.height, const_cast<float*>(plane), grid.width,
                      grid.height, GDT_Float32, 0, 0, nullptr) != CE_None)
-    throw OutputError(path, detail::gdal_message("cannot write"));
+    throw detail::write_failure(path, detail::gdal_message("cannot write"));
+  // The data and header go out at the close: a file-size limit or a full disk shows there
+  // (the fill had then read the cut file and called it damaged input, exit 2), and a header
+  // that did not fit goes to a side file (under a memory limit).
+  ds.reset();
+  if (CPLGetLastErrorType() == CE_Failure || std::filesystem::exists(path + ".aux.xml")) {
+    std::error_code ec;
+    std::filesystem::remove(path + ".aux.xml", ec);
+    throw detail::write_failure(path, "cannot write (" + detail::gdal_message("the header did not fit: out of memory?") +
+                                          ")");
+  }
 }
 
 Cube read_band(const std::vector<std::string>& paths, int band, int width, int height) {
@@ -366,11 +377,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
     throw UsageError("--out", "'" + work.string() + "' exists and was not made by kalends validate, which works "
                               "there: move it, or give another --out");
   fs::remove_all(work, ec);
-  fs::create_directories(work / "input", ec);
-  if (ec) throw OutputError(work.string(), "cannot create: " + ec.message());
-  detail::write_text_atomically(marker.string(), "kalends validate works in this folder and removes it\n");
-  // A run that fails from here on (a fill's budget too small) leaves no withheld stack behind,
-  // nor the --out folder it made.
+  // A run that fails from here on (a fill's budget too small, a full disk before the marker is
+  // written) leaves no withheld stack behind, nor the --out folder it made: an unmarked work/
+  // had been refused by every later run.
   struct RemoveWorkOnFailure {
     fs::path work, out;
     bool keep, out_existed;
@@ -382,6 +391,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
       if (!out_existed && fs::is_empty(out, ignored)) fs::remove(out, ignored);
     }
   } remove_work_on_failure{work, request.out_dir, request.keep_work, out_existed};
+  fs::create_directories(work / "input", ec);
+  if (ec) throw detail::write_failure(work.string(), "cannot create: " + ec.message());
+  detail::write_text_atomically(marker.string(), "kalends validate works in this folder and removes it\n");
   const std::string name = stack.name().empty() ? "layer" : stack.name();
   for (int t = 0; t < dates; ++t) {
     const std::string label = stack.layers()[t].time.label();

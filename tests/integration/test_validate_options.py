@@ -221,6 +221,25 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertFalse(os.path.exists(stale))
         self.assertTrue(os.path.exists(users))
 
+    def test_a_write_cut_short_is_a_write_error_and_the_next_run_works(self):
+        # Under a file-size limit the withheld stack's files were cut at their close, unchecked:
+        # the fill then read them and called them damaged input (exit 2, "cannot open as a
+        # raster"). A write error is exit 1 naming the file; nothing stays for the next run.
+        import resource
+        import subprocess
+        out = os.path.join(self.tmp, "cut-short")
+
+        def small_files():
+            resource.setrlimit(resource.RLIMIT_FSIZE, (2048, 2048))
+
+        done = subprocess.run([kt.KALENDS_BIN, "validate", os.path.join(self.stack, "ndvi_*.tif"), "--out", out,
+                               "--methods", "whittaker", "--seed", "7"], capture_output=True, text=True,
+                              timeout=300, preexec_fn=small_files)
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertRegex(done.stderr.strip(), r"^kalends: .*/work/input/ndvi_[-0-9]+\.tif: .*(too large|cannot write)")
+        self.assertFalse(os.path.exists(os.path.join(out, "work")))
+        validate(self, os.path.join(self.stack, "ndvi_*.tif"), out)
+
     def test_options_that_make_no_sense_are_refused(self):
         pattern = os.path.join(self.stack, "ndvi_*.tif")
         out = os.path.join(self.tmp, "nonsense")
