@@ -12,6 +12,7 @@
 #include <cctype>
 #include <cstdio>
 #include <filesystem>
+#include <cstdlib>
 #include <mutex>
 #include <optional>
 #include <string>
@@ -112,6 +113,19 @@ void require_not_cut_short(const std::string& file) {
                                " (an incomplete download or copy?)");
 }
 
+bool memory_is_short() {
+  void* probe = std::malloc(std::size_t(32) << 20);
+  std::free(probe);
+  return probe == nullptr;
+}
+
+void throw_unreadable(const std::string& path, const std::string& reason) {
+  if (memory_is_short())
+    throw Error(path, "cannot be read: out of memory (GDAL said: " + gdal_message("nothing") +
+                          "); give a smaller --memory budget or run where more memory is free");
+  throw InputError(path, reason);
+}
+
 GDALDatasetUniquePtr open_raster(const std::string& path) {
   start_gdal();
   CPLErrorReset();
@@ -120,7 +134,7 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   GDALDatasetUniquePtr dataset(
       GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY | GDAL_OF_VERBOSE_ERROR));
   quiet.reset();
-  if (!dataset) throw InputError(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
+  if (!dataset) throw_unreadable(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
   // A file GDAL opens with a warning that its structure is corrupt (a GeoTIFF cut short in its
   // tags: "GeoTIFF tags apparently corrupt") would be read without its georeferencing, and
   // then named as a grid or CRS that differs. The GeoTIFF driver reads those tags on first use.
@@ -132,7 +146,7 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
     std::string lower = last;
     for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
     if (lower.find("corrupt") != std::string::npos || lower.find("io error") != std::string::npos)
-      throw InputError(path, "is damaged (GDAL: " + last + "); an incomplete download or copy?");
+      throw_unreadable(path, "is damaged (GDAL: " + last + "); an incomplete download or copy?");
   }
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
   require_not_cut_short(file_in_connection(path));

@@ -23,6 +23,15 @@ void set_gdal_cache(std::int64_t bytes);
 /// The last GDAL error message of this thread, or `fallback`.
 std::string gdal_message(const std::string& fallback);
 
+/// Whether the process is short of memory (32 MiB cannot be had now): GDAL and libtiff report a
+/// failed allocation as a corrupt or unreadable file, which must not make a good input "bad"
+/// (--skip-bad would leave it out for good).
+bool memory_is_short();
+
+/// The error for a file that GDAL could not open or read, `reason` naming what it saw: a plain
+/// Error (exit 1, not skipped as bad input) where memory is short, else InputError.
+[[noreturn]] void throw_unreadable(const std::string& path, const std::string& reason);
+
 /// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
 /// zone 25S (EPSG:31985)"); "" without a CRS.
 std::string crs_name_of(const std::string& wkt);

@@ -707,7 +707,7 @@ static void read_window(GDALRasterBand& band, const Layer& layer, const Window& 
     // GDAL's message often starts with the file's name, which the error names already.
     std::string message = detail::gdal_message("read failed");
     if (message.rfind(layer.path + ", ", 0) == 0) message.erase(0, layer.path.size() + 2);
-    throw InputError(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
+    detail::throw_unreadable(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
   }
 }
 

@@ -605,5 +605,28 @@ class UnderAMemoryLimit(kt.TempDirTestCase):
         print("\n  limits 150-600 MiB: %(ok)d runs succeeded, %(refused)d refused" % outcomes)
         self.assertGreater(outcomes["ok"], 0)
 
+    def test_good_inputs_are_not_called_damaged_when_memory_runs_short(self):
+        # libtiff reports a failed allocation as "GeoTIFF tags apparently corrupt": intact fill
+        # outputs had been called damaged input (exit 2, "an incomplete download or copy?"),
+        # which --skip-bad would have left out for good. Short of memory, the run now fails
+        # with exit 1 and says so.
+        import resource
+        import subprocess
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 60, 60)
+        filled = os.path.join(self.tmp, "filled")
+        kt.run_fill_ok(self, [os.path.join(stack, "ndvi_*.tif"), "--out", filled])
+        said = set()
+        for mib in range(150, 401, 10):
+            def limit(mib=mib):
+                resource.setrlimit(resource.RLIMIT_AS, (mib << 20, mib << 20))
+
+            done = subprocess.run([kt.KALENDS_BIN, "seasons", filled, "--out", os.path.join(self.tmp, "s-%d" % mib)],
+                                  capture_output=True, text=True, timeout=120, preexec_fn=limit)
+            self.assertNotEqual(done.returncode, 2, (mib, done.stderr))
+            if "out of memory" in done.stderr:
+                said.add(mib)
+        print("\n  seasons said 'out of memory' at %s MiB" % sorted(said))
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
