@@ -131,6 +131,9 @@ void require_own_raster(const std::string& path, std::initializer_list<const cha
 
 bool write_text_atomically(const std::string& path, const std::string& text) {
   {
+    std::error_code ec;
+    // Read as a file, a folder had given "basic_filebuf::underflow error reading the file".
+    if (fs::is_directory(path, ec)) throw UsageError(path, "is a folder; give a file name");
     std::ifstream existing(path, std::ios::binary);
     if (existing) {
       const std::string old((std::istreambuf_iterator<char>(existing)), std::istreambuf_iterator<char>());
@@ -141,16 +144,26 @@ bool write_text_atomically(const std::string& path, const std::string& text) {
   // between runs) may write the same file at once, and the last rename wins with a whole file.
   const std::string temporary = temporary_name(path, std::to_string(::getpid()));
   {
+    errno = 0;
     std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
     out << text;
     out.flush();
     if (!out) {
+      // The system's reason (a missing folder, a file-size limit): "cannot write" alone had
+      // named none.
+      const int error = errno;
       std::error_code ec;
       fs::remove(temporary, ec);
-      throw write_failure(path, "cannot write");
+      throw write_failure(path, error ? std::string("cannot write (") + std::strerror(error) + ")" : "cannot write");
     }
   }
-  publish(temporary, path);
+  try {
+    publish(temporary, path);
+  } catch (const Error&) {
+    std::error_code ec;
+    fs::remove(temporary, ec);  // left behind, it had stayed for good beside a table
+    throw;
+  }
   sync_path(fs::path(path).parent_path().string(), true);
   return true;
 }

@@ -323,6 +323,19 @@ class ExtractLandsat(kt.TempDirTestCase):
         for path, content in before.items():
             with open(path, "rb") as f:
                 self.assertEqual(f.read(), content, path)
+        # A folder as the page, or a page in a folder that does not exist: one line naming the
+        # path and the reason (they had been "basic_filebuf::underflow error reading the file:
+        # Is a directory", without a path, and "cannot write" without a reason).
+        folder = os.path.join(self.tmp, "a-folder.html")
+        os.makedirs(folder)
+        done = kt.run_kalends(["report", os.path.dirname(layer), "--html", folder])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder; give a file name" % folder)
+        missing = os.path.join(self.tmp, "no-such-folder", "table.csv")
+        done = kt.run_kalends(["extract", os.path.dirname(layer), "--points", points, "--out", missing,
+                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: cannot write (No such file or directory)" % missing)
         # An earlier page is replaced.
         page = os.path.join(self.tmp, "page.html")
         for _ in range(2):
