@@ -25,7 +25,16 @@
 namespace kalends::detail {
 
 namespace {
-void quiet_handler(CPLErr, CPLErrorNum, const char*) {}
+void quiet_handler(CPLErr type, CPLErrorNum, const char* message) {
+  // GDAL aborts the program after a fatal error (an allocation CPLRealloc could not make):
+  // one line first, as for every other failure, rather than a bare "Aborted".
+  if (type != CE_Fatal) return;
+  const std::string line = std::string("kalends: GDAL stopped the program: ") + (message ? message : "fatal error") +
+                           " (out of memory? give a smaller --memory budget, or run where more memory is free); "
+                           "this run's unfinished outputs stay hidden and the next run removes them\n";
+  const ssize_t ignored = ::write(2, line.data(), line.size());
+  (void)ignored;
+}
 }  // namespace
 
 void start_gdal() {
@@ -208,8 +217,13 @@ void set_crs_from_user(OGRSpatialReference& srs, const std::string& text, const 
   for (char c : text) upper += char(std::toupper(static_cast<unsigned char>(c)));
   const bool epsg = upper.rfind("EPSG:", 0) == 0;
   const bool digits = text.size() > 5 && std::all_of(text.begin() + 5, text.end(), [](char c) { return c >= '0' && c <= '9'; });
-  if ((epsg && !digits) || srs.SetFromUserInput(text.c_str()) != OGRERR_NONE)
+  if (epsg && !digits) throw UsageError(option + " '" + text + "'", "not a CRS PROJ knows");
+  if (srs.SetFromUserInput(text.c_str()) != OGRERR_NONE) {
+    // PROJ cannot open its database short of memory: not the user's CRS at fault.
+    if (memory_is_short())
+      throw Error(option + " '" + text + "'", "PROJ could not read it: out of memory; run where more memory is free");
     throw UsageError(option + " '" + text + "'", "not a CRS PROJ knows");
+  }
 }
 
 }  // namespace kalends::detail

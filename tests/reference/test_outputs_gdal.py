@@ -627,6 +627,18 @@ class UnderAMemoryLimit(kt.TempDirTestCase):
             if "out of memory" in done.stderr:
                 said.add(mib)
         print("\n  seasons said 'out of memory' at %s MiB" % sorted(said))
+        # grid: PROJ short of memory had made --crs 'EPSG:4326' "not a CRS PROJ knows" (exit 2),
+        # and GDAL's abort after a failed CPLRealloc left no word at all.
+        for mib in range(150, 401, 10):
+            def limit(mib=mib):
+                resource.setrlimit(resource.RLIMIT_AS, (mib << 20, mib << 20))
+
+            done = subprocess.run([kt.KALENDS_BIN, "grid", filled, "--out", os.path.join(self.tmp, "g-%d" % mib),
+                                   "--crs", "EPSG:4326", "--resolution", "0.01"],
+                                  capture_output=True, text=True, timeout=120, preexec_fn=limit)
+            self.assertNotEqual(done.returncode, 2, (mib, done.stderr))
+            if done.returncode == -6:  # SIGABRT: GDAL's own, after a fatal error
+                self.assertIn("kalends: GDAL stopped the program:", done.stderr, mib)
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
