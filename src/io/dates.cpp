@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <cctype>
 #include <charconv>
+#include <vector>
 #include <cmath>
 #include <stdexcept>
 #include <string>
@@ -107,6 +108,22 @@ std::optional<TimePoint> date_from_digits(std::string_view run) {
 
 bool is_digit(char c) { return std::isdigit(static_cast<unsigned char>(c)) != 0; }
 
+// The runs of digits in a name, each with where it starts.
+std::vector<std::pair<std::size_t, std::string_view>> digit_runs(std::string_view name) {
+  std::vector<std::pair<std::size_t, std::string_view>> runs;
+  for (std::size_t i = 0; i < name.size();) {
+    if (!is_digit(name[i])) {
+      ++i;
+      continue;
+    }
+    std::size_t j = i;
+    while (j < name.size() && is_digit(name[j])) ++j;
+    runs.emplace_back(i, name.substr(i, j - i));
+    i = j;
+  }
+  return runs;
+}
+
 }  // namespace
 
 std::optional<TimePoint> date_from_name(std::string_view name) {
@@ -118,15 +135,8 @@ std::optional<DateInName> find_date_in_name(std::string_view name) {
   // Only the last path component: folder names often carry other numbers.
   if (const auto slash = name.find_last_of('/'); slash != std::string_view::npos)
     name = name.substr(slash + 1);
-  std::size_t i = 0;
-  while (i < name.size()) {
-    if (!is_digit(name[i])) {
-      ++i;
-      continue;
-    }
-    std::size_t j = i;
-    while (j < name.size() && is_digit(name[j])) ++j;
-    const std::string_view run = name.substr(i, j - i);
+  for (const auto& [i, run] : digit_runs(name)) {
+    const std::size_t j = i + run.size();
     // YYYY-MM-DD: a run of 4, '-', 2 digits, '-', 2 digits, then no further digit.
     if (run.size() == 4 && j + 6 <= name.size() && name[j] == '-' && is_digit(name[j + 1]) &&
         is_digit(name[j + 2]) && name[j + 3] == '-' && is_digit(name[j + 4]) &&
@@ -149,7 +159,6 @@ std::optional<DateInName> find_date_in_name(std::string_view name) {
       }
     }
     if (auto t = date_from_digits(run)) return DateInName{*t, i, run.size()};
-    i = j;
   }
   return std::nullopt;
 }
@@ -167,15 +176,7 @@ std::optional<std::string> impossible_date_in_name(std::string_view name) {
   }
   // YYYYMMDD and YYYYDDD runs of a plausible year whose day does not exist (20200230, 2019366,
   // 2020000) had been "no date in the file name". Other numbers (versions, tile ids) are left.
-  for (std::size_t i = 0; i < name.size();) {
-    if (!is_digit(name[i])) {
-      ++i;
-      continue;
-    }
-    std::size_t j = i;
-    while (j < name.size() && is_digit(name[j])) ++j;
-    const std::string_view run = name.substr(i, j - i);
-    i = j;
+  for (const auto& [at, run] : digit_runs(name)) {
     if (run.size() != 7 && run.size() != 8) continue;
     const int year = digits_to_int(run.substr(0, 4));
     if (year < 1900 || year > 2100) continue;

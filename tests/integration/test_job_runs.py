@@ -70,6 +70,21 @@ def make_job(folder, lam="auto", years=2, size=96, extra=""):
     return path
 
 
+def small_dated_job(folder, more_steps=""):
+    """A job in `folder` filling three invented 4 x 4 px composites of January-February 2021
+    (step 'fill'), then `more_steps`; returns the job file's path."""
+    os.makedirs(os.path.join(folder, "layers"))
+    for day in (1, 17, 33):
+        date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
+        kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
+                        np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+    job = os.path.join(folder, "job.toml")
+    with open(job, "w") as f:
+        f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                'input = "ndvi"\n' + more_steps)
+    return job
+
+
 def run(job, *args, env=None, preexec=None, timeout=300):
     return subprocess.run([kt.KALENDS_BIN, "run", job] + list(args), capture_output=True, text=True,
                           timeout=timeout, env=env, preexec_fn=preexec)
@@ -739,15 +754,7 @@ class JobWording(kt.TempDirTestCase):
         # the folder, and the path could not be followed from elsewhere; the job file's `out`
         # was already made absolute.
         folder = os.path.join(self.tmp, "relative")
-        os.makedirs(os.path.join(folder, "layers"))
-        for day in (1, 17, 33):
-            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
-            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
-                            np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
-                    'input = "ndvi"\n[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n')
+        small_dated_job(folder, '[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n')
         done = subprocess.run([kt.KALENDS_BIN, "run", "job.toml", "--out", "relout/", "-q"], cwd=folder,
                               capture_output=True, text=True, timeout=300)
         self.assertEqual(done.returncode, 0, done.stderr)
@@ -759,15 +766,7 @@ class JobWording(kt.TempDirTestCase):
     def test_a_deleted_output_is_named_and_not_counted(self):
         # status had said "outputs missing (3 files in its folder)" with 2 left, and named none.
         folder = os.path.join(self.tmp, "deleted")
-        os.makedirs(os.path.join(folder, "layers"))
-        for day in (1, 17, 33):
-            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
-            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
-                            np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
-                    'input = "ndvi"\n')
+        job = small_dated_job(folder)
         self.assertEqual(run(job).returncode, 0)
         outputs = sorted(glob.glob(os.path.join(folder, "out", "fill", "*")))
         os.remove(os.path.join(folder, "out", "fill", "ndvi_2021-01-17.tif"))
