@@ -39,7 +39,11 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     // The memory check of a job: the largest tile's block, on mosaic views made in a
     // temporary folder (a check writes nothing beside the outputs), removed again.
     std::error_code ec;
-    const fs::path views = fs::temp_directory_path(ec) / fmt::format("kalends-tile-check-{}", ::getpid());
+    // Never a relative folder where the system names no usable one (TMPDIR gone): a check
+    // writes nothing where it runs.
+    fs::path temporary = fs::temp_directory_path(ec);
+    if (ec || temporary.empty()) temporary = "/tmp";
+    const fs::path views = temporary / fmt::format("kalends-tile-check-{}", ::getpid());
     struct Remove {
       fs::path path;
       ~Remove() {

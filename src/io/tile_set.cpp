@@ -199,6 +199,8 @@ std::pair<int, int> publish_vrts(const std::string& folder, const std::map<std::
   std::pair<int, int> counts{0, 0};
   for (const auto& [name, text] : wanted) {
     const fs::path path = fs::path(folder) / name;
+    if (fs::is_directory(path, ec))
+      throw UsageError(path.string(), "is a folder where a mosaic view goes; move it away");
     if (std::ifstream in(path, std::ios::binary); in) {
       const std::string before((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
       if (before == text) {

@@ -395,6 +395,20 @@ class Runner {
         report_.steps.push_back(r);
         continue;
       }
+      auto fail_step = [&](const Error& e, int exit_code) {
+        r.action = StepReport::Action::failed;
+        r.reason = e.what();
+        if (!options_.dry_run) {
+          try {
+            db_->step_failed(step.id, step.kind, e.what());
+          } catch (const Error&) {
+            // A full disk can refuse this too; the step then simply has no 'done' record.
+          }
+        }
+        report_.error = e.what();
+        report_.exit_code = exit_code;
+        failed = true;
+      };
       try {
         if (options_.finalize && planned->split) stitch_step(step, *planned, r);
         else run_step(step, r);
@@ -407,19 +421,17 @@ class Runner {
                         : usage ? UsageError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                         : input ? InputError(job_option_names(caught.where()), job_wording(caught.reason(), step))
                                 : caught;
-        r.action = StepReport::Action::failed;
-        r.reason = e.what();
-        if (!options_.dry_run) {
-          try {
-            db_->step_failed(step.id, step.kind, e.what());
-          } catch (const Error&) {
-            // A full disk can refuse this too; the step then simply has no 'done' record.
-          }
-        }
-        report_.error = e.what();
         // 2 for bad input or options (a job's memory too small for one block), as the commands.
-        report_.exit_code = dynamic_cast<const InputError*>(&caught) || dynamic_cast<const UsageError*>(&caught) ? 2 : 1;
-        failed = true;
+        fail_step(e, usage || input ? 2 : 1);
+      } catch (const std::filesystem::filesystem_error& caught) {
+        // A library's own failure had passed the step by: no record, so `status` called it
+        // interrupted, and the run printed no table.
+        fail_step(Error(caught.path1().string(), caught.code().message()), 1);
+      } catch (const std::bad_alloc&) {
+        fail_step(Error("step '" + step.id + "'", "out of memory: give a smaller [job] memory, or run where more "
+                                                  "memory is free"), 1);
+      } catch (const std::exception& caught) {
+        fail_step(Error("step '" + step.id + "'", caught.what()), 1);
       }
       if (events_.step_finished) events_.step_finished(r);
       report_.steps.push_back(r);
@@ -1213,12 +1225,14 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   PlanReport report;
   const detail::ShardPlan plan =
       detail::make_shard_plan(job, out, shards, options.threads, &left_out, options.skip_bad ? &report.skipped_inputs : nullptr);
-  // A budget too small for one block of a split step: found here, not by every array task.
+  // A budget too small for one block of a split step (its first shard's rows), or of a step
+  // left whole for --finalize (a tile set's fill): found here, not by every array task nor at
+  // the finalize after them.
   if (const auto refused = check_budgets(job, plan.shard_folder(1), parse_memory_size(job.memory), plan.threads,
                                          left_out, [&](const JobStep& step, std::optional<Window>& region) {
                                            const detail::PlannedStep* planned = plan.step(step.id);
-                                           if (!planned || !planned->split) return false;
-                                           region = plan.window(planned->root, 1);
+                                           if (!planned) return false;
+                                           if (planned->split) region = plan.window(planned->root, 1);
                                            return true;
                                          }))
     throw refused->second;

@@ -284,8 +284,9 @@ class TiledFill(kt.TempDirTestCase):
                 '[[step]]\nid = "tiled"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\ntiles = "tiles/{{tile}}/"\n')
         with open(job, "w") as f:
             f.write(text.format("110M"))
-        for args in (["--dry-run"], []):
-            done = subprocess.run([kt.KALENDS_BIN, "run", job] + args, capture_output=True, text=True, timeout=300)
+        # `plan` too: the tiled step runs whole at --finalize, after every array task.
+        for args in (["run", job, "--dry-run"], ["plan", job, "--shards", "2"], ["run", job]):
+            done = subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300)
             self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
             line = done.stderr.strip().splitlines()[-1]
             self.assertRegex(line, r"job\.toml:4: \[job\] memory: step 'tiled': budget of 110 MiB is too small")
@@ -297,6 +298,17 @@ class TiledFill(kt.TempDirTestCase):
         done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=600)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         self.assertTrue(glob.glob(os.path.join(job_dir, "out", "tiled", "h01v01", "*.tif")))
+        # A folder where a mosaic view goes: the step fails naming it, and status says failed
+        # (a raw "basic_filebuf::underflow" had left the step unrecorded, read as interrupted).
+        view = sorted(glob.glob(os.path.join(job_dir, "out", "tiled", "mosaic", "*.vrt")))[0]
+        os.remove(view)
+        os.makedirs(view)
+        os.remove(sorted(glob.glob(os.path.join(job_dir, "out", "tiled", "h00v00", "ndvi_*.tif")))[0])
+        done = subprocess.run([kt.KALENDS_BIN, "run", job], capture_output=True, text=True, timeout=600)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder where a mosaic view goes; move it away" % view)
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertRegex(status.stdout, r"tiled +fill +failed")
 
     def test_in_a_job_only_the_changed_tile_is_refilled(self):
         # A tile whose files changed is refilled alone (Whittaker: no halo); equal to scratch.
