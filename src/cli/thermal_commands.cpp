@@ -152,9 +152,11 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
           s.outputs_removed ? fmt::format(" ({} earlier output{} of dates no longer given removed)", s.outputs_removed,
                                            s.outputs_removed == 1 ? "" : "s")
                             : "");
-      for (const std::string& note : s.notes)
-        fmt::print("  {}\n", note);
+      std::fflush(stdout);
     }
+    // Notes on the data print with -q too, on stderr, as every command's do (they had been on
+    // stdout, hidden by -q).
+    for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
   };
 }
 
@@ -221,10 +223,9 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
                    s.mean_suitable_periods, periods, r.threshold);
       else
         fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
-      for (const std::string& note : s.notes)
-        fmt::print("  {}\n", note);
       std::fflush(stdout);
     }
+    for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
     note_month_end_dates(s.dates_at_month_ends, r.inputs.marks);
     std::fprintf(stderr, "%s\n", suitability_caution);
   };

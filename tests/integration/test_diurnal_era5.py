@@ -260,14 +260,14 @@ class DiurnalEra5(kt.TempDirTestCase):
         out = os.path.join(self.tmp, "few-inverted-hours")
         done = kt.run_kalends(["diurnal"] + args + ["--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn(message, done.stdout)
+        self.assertIn(message, done.stderr)
         hours = self.read_hours(out)  # (31, 24, rows, cols)
         np.testing.assert_array_equal(np.all(np.isnan(hours), axis=1), inverted)
         self.assertFalse(np.any(np.isnan(hours[:, :, ~inverted.any(axis=0)])))
         done = kt.run_kalends(["suitability", "--model", "window", "--window", "5,10"] + args
                               + ["--out", os.path.join(self.tmp, "few-inverted-window")])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn(message, done.stdout)
+        self.assertIn(message, done.stderr)
         # The same step in a job says the same, in its summary and in the JSON log.
         job = os.path.join(folder, "job.toml")
         with open(job, "w") as f:

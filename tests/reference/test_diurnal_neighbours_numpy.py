@@ -157,7 +157,7 @@ class InvertedExtremes(kt.TempDirTestCase):
             # 2 of 5: 40 %, below the line.
             done, out = self.run_with_inverted_dates(2, command)
             self.assertEqual(done.returncode, 0, done.stderr)
-            self.assertIn("8 pixel-day(s) with tmin above tmax were taken as missing", done.stdout)
+            self.assertIn("8 pixel-day(s) with tmin above tmax were taken as missing", done.stderr)
 
 
 if __name__ == "__main__":

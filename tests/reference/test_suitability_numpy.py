@@ -315,7 +315,7 @@ class BadInput(kt.TempDirTestCase):
                                "--out", os.path.join(self.tmp, "few-out")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("%d pixel-day(s) with the day sample not warmer than the night sample were taken as flat "
-                      "at their mean" % expected, done.stdout)
+                      "at their mean" % expected, done.stderr)
 
     def test_one_stack_without_its_scale_factor(self):
         # The night stack alone lost its scale (raw kelvin x 50 read as kelvin): half of all
@@ -401,7 +401,7 @@ class MonthlySummariesAndReruns(kt.TempDirTestCase):
         kt.write_raster(own, np.zeros((3, 4), np.float32))
         done = kt.run_kalends(args + ["--years", "2032-2033"])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("removed the layers of 2031 from an earlier run: outside this run's years", done.stdout)
+        self.assertIn("removed the layers of 2031 from an earlier run: outside this run's years", done.stderr)
         names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "*.tif")))
         self.assertEqual(names, ["r0-2013_summary_2032.tif", "r0-2013_summary_2033.tif",
                                  "r0-2013_summary_synoptic.tif", "r0-2013_synoptic.tif", "r0-2013_year_2030.tif",
