@@ -275,15 +275,26 @@ bool outputs_exist(const detail::StepRecord& record) {
   return std::all_of(record.outputs.begin(), record.outputs.end(), [](const std::string& p) { return fs::exists(p); });
 }
 
-// "outputs missing", with how many of the step's recorded outputs are gone and the first of
-// them (relative to `out`), so that the user can tell a deleted file from a lost folder.
+// Whether an output is one the user does not see (a tiled fill's .mosaic views): below a
+// hidden folder of `out`, or hidden itself.
+bool hidden_output(const std::string& path, const std::string& out) {
+  for (const auto& part : fs::path(path).lexically_relative(out))
+    if (const std::string name = part.string(); name.size() > 1 && name[0] == '.' && name != "..") return true;
+  return false;
+}
+
+// "outputs missing", with how many of the step's recorded outputs a user sees are gone and the
+// first of them (relative to `out`), so that the user can tell a deleted file from a lost folder.
 std::string outputs_missing(const detail::StepRecord& record, const std::string& out) {
-  std::size_t missing = 0;
+  std::size_t missing = 0, seen = 0;
   std::string first;
-  for (const std::string& p : record.outputs)
+  for (const std::string& p : record.outputs) {
+    if (hidden_output(p, out)) continue;
+    ++seen;
     if (!fs::exists(p) && missing++ == 0) first = fs::path(p).lexically_relative(out).string();
+  }
   if (missing == 0) return "outputs missing";
-  return fmt::format("outputs missing: {} of {} (first: {})", missing, record.outputs.size(), first);
+  return fmt::format("outputs missing: {} of {} (first: {})", missing, seen, first);
 }
 
 // Input files added, changed or removed between two runs (path -> checksum).
@@ -575,10 +586,7 @@ class Runner {
         // The files a user sees: not the hidden ones (a tiled fill's .mosaic views), which the
         // run's "files written" does not count either.
         s.outputs = int(std::count_if(record->outputs.begin(), record->outputs.end(), [&](const std::string& p) {
-          if (!fs::exists(p)) return false;  // counted as missing
-          for (const auto& part : fs::path(p).lexically_relative(out_))
-            if (const std::string name = part.string(); name.size() > 1 && name[0] == '.' && name != "..") return false;
-          return true;
+          return fs::exists(p) && !hidden_output(p, out_);  // a missing one is counted as missing
         }));
         const bool complete = outputs_exist(*record);
         if (record->fingerprint == fingerprint && complete) {

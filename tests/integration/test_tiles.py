@@ -361,6 +361,13 @@ class TiledFill(kt.TempDirTestCase):
             a, b = kt.read_output(p), kt.read_output(q)
             for k in ("value", "sd", "flag"):
                 np.testing.assert_array_equal(a[k], b[k], err_msg=p)
+        # A deleted tile output is counted among the files a user sees, not the hidden views
+        # (it had said "1 of 297" beside "248 files in its folder").
+        gone = sorted(before)[0]
+        os.remove(gone)
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertIn("outputs missing: 1 of %d (first: %s) (%d files in its folder)"
+                      % (len(seen), os.path.relpath(gone, os.path.join(job_dir, "out")), len(seen) - 1), status.stdout)
 
 
 class TiledAlaska(kt.TempDirTestCase):
