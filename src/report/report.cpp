@@ -221,7 +221,8 @@ std::pair<int, int> parse_pixel(const std::string& text, const std::string& wher
   static const std::regex column_row(R"(\s*(\d{1,9})\s*(?:,|\s)\s*(\d{1,9})\s*)");
   std::smatch m;
   if (!std::regex_match(text, m, column_row))
-    throw UsageError(where + " '" + text + "'", "expected COLUMN,ROW (or COLUMN ROW), two whole numbers");
+    throw UsageError(where + " '" + text + "'",
+                     "expected COLUMN,ROW (or COLUMN ROW), two whole numbers of 0 or more (pixels from the top left)");
   return {std::stoi(m[1]), std::stoi(m[2])};
 }
 
@@ -474,11 +475,14 @@ ReportSummary run_report(const ReportRequest& request) {
       case SeriesKind::dated: bands = {1}; shown = "map of " + file.time.label() + " (the last date)"; break;
       case SeriesKind::year_period:
         for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
-        shown = fmt::format("mean of the {} periods of {} (the last year)", s.period_count, file.year);
+        // Per cell, over its periods with a value: "the mean of the 12 periods" had been read
+        // as a year's mean where only the summer months have data.
+        shown = fmt::format("each cell's mean over those of the {} periods of {} (the last year) with a value",
+                            s.period_count, file.year);
         break;
       case SeriesKind::synoptic_period:
         for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
-        shown = fmt::format("mean of the {} periods", s.period_count);
+        shown = fmt::format("each cell's mean over those of the {} periods with a value", s.period_count);
         break;
       case SeriesKind::fixed: bands = {s.band}; shown = "band " + std::to_string(s.band); break;
     }
@@ -563,7 +567,7 @@ ReportSummary run_report(const ReportRequest& request) {
   html += "<section id=\"fill-statistics\"><h2>Fill statistics</h2>\n" + statistics + "</section>\n";
   html += "<section id=\"time-series\"><h2>Time series of sample pixels</h2>\n"
           "<p class=\"note\">Observations kept (flag 0) and rejected as outliers (flag 1) are the raw input values; "
-          "the curve is the filled value with a band of &#177;1 standard error; the dashed line is the synoptic "
+          "the curve is the filled value with a band of &#177;1 sd; the dashed line is the synoptic "
           "mean of each date's period. Observations removed by the QA rule are not shown.</p>\n" +
           plots.html + "</section>\n";
   html += "</body>\n</html>\n";

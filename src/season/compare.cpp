@@ -188,6 +188,15 @@ CompareSummary run_compare(const CompareRequest& request) {
   }
   std::sort(anomaly_files.begin(), anomaly_files.end());
   std::sort(summary.stale_years.begin(), summary.stale_years.end());
+  // Every year the synoptic covers: a year whose layer is gone had been left out of the Years
+  // table and the largest anomalies without a word.
+  if (synoptic_years)
+    for (int year = synoptic_years->first; year <= synoptic_years->second; ++year)
+      if (std::none_of(anomaly_files.begin(), anomaly_files.end(), [&](const auto& f) { return f.first == year; }))
+        throw InputError((fs::path(request.seasons_dir) / fmt::format("{}_anomaly_standardised_{}.tif", name, year)).string(),
+                         fmt::format("missing: the synoptic layers cover {}-{}; run kalends seasons into this folder "
+                                     "again",
+                                     synoptic_years->first, synoptic_years->second));
   // Every anomaly layer on the synoptic's periods and grid: a folder holding the layers of two
   // seasons runs with different --period (or areas) would be read band against wrong band.
   const std::string mean_path = (fs::path(request.seasons_dir) / (name + "_synoptic_mean.tif")).string();

@@ -663,6 +663,14 @@ class RealData(kt.TempDirTestCase):
             self.assertAlmostEqual(entry["mean_anomaly"], float(np.nanmean(raw)), places=6)
             self.assertEqual(entry["share_below_minus_1_sd"], 0)
         self.assertIsNone(report["year_most_below"])
+        # A year of the synoptic whose standardised layer is gone: refused naming it (the year
+        # had been left out of the Years table and the largest anomalies without a word).
+        os.remove(os.path.join(out, "ndvi_anomaly_standardised_2007.tif"))
+        done = kt.run_kalends(["compare", out, "--out", compare])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip().splitlines()[-1],
+                         "kalends: %s: missing: the synoptic layers cover 2006-2007; run kalends seasons into this "
+                         "folder again" % os.path.join(out, "ndvi_anomaly_standardised_2007.tif"))
         self.assertIsNone(report["year_most_above"])
         # A negative --top is refused.
         done = kt.run_kalends(["compare", out, "--out", compare, "--top", "-3"])

@@ -25,7 +25,7 @@ ReportRequest report_request(const StepContext& c) {
   // comma lists), which is named rather than read as two half pixels.
   for (const std::string& pair : c.list("pixels")) {
     if (pair.find_first_of(" \t") == std::string::npos || pair.find_first_not_of(" \t0123456789") != std::string::npos)
-      throw UsageError("--pixels '" + pair + "'", "expected \"COLUMN ROW\" per item, two whole numbers, as in "
+      throw UsageError("--pixels '" + pair + "'", "expected \"COLUMN ROW\" per item, two whole numbers of 0 or more, as in "
                                                  "pixels = [\"120 340\", \"400 80\"] (a comma inside an item splits it)");
     r.pixels.push_back(parse_pixel(pair, "--pixels"));
   }
