@@ -94,20 +94,24 @@ CompareSummary run_compare(const CompareRequest& request) {
   detail::require_own_text_file((fs::path(request.out_dir) / "compare.md").string(), "# Where the synoptic layers");
   CompareSummary summary;
   std::string name = request.name;
+  std::vector<std::string> names;  // the layer sets the folder holds
+  for (const auto& entry : fs::directory_iterator(request.seasons_dir)) {
+    const std::string f = entry.path().filename().string();
+    const std::string suffix = "_synoptic_miss.tif";
+    if (f.size() > suffix.size() && f.compare(f.size() - suffix.size(), suffix.size(), suffix) == 0)
+      names.push_back(f.substr(0, f.size() - suffix.size()));
+  }
+  if (names.empty()) throw InputError(request.seasons_dir, "holds no *_synoptic_miss.tif (run `kalends seasons` first)");
+  std::sort(names.begin(), names.end());
   if (name.empty()) {
-    std::vector<std::string> names;
-    for (const auto& entry : fs::directory_iterator(request.seasons_dir)) {
-      const std::string f = entry.path().filename().string();
-      const std::string suffix = "_synoptic_miss.tif";
-      if (f.size() > suffix.size() && f.compare(f.size() - suffix.size(), suffix.size(), suffix) == 0)
-        names.push_back(f.substr(0, f.size() - suffix.size()));
-    }
-    if (names.empty()) throw InputError(request.seasons_dir, "holds no *_synoptic_miss.tif (run `kalends seasons` first)");
-    std::sort(names.begin(), names.end());
     if (names.size() > 1)
       throw UsageError("--name", fmt::format("the folder holds several layer sets ({}); choose one with --name",
                                              fmt::join(names, ", ")));
     name = names.front();
+  } else if (std::find(names.begin(), names.end(), name) == names.end()) {
+    // It had named a missing file of that set.
+    throw UsageError("--name '" + name + "'", fmt::format("the folder holds no such layer set; it holds {}",
+                                                          fmt::join(names, ", ")));
   }
   const std::string miss_path = (fs::path(request.seasons_dir) / (name + "_synoptic_miss.tif")).string();
   GDALDatasetUniquePtr miss = detail::open_raster(miss_path);

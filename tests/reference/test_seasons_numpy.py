@@ -671,6 +671,11 @@ class RealData(kt.TempDirTestCase):
         self.assertEqual(done.stderr.strip().splitlines()[-1],
                          "kalends: %s: missing: the synoptic layers cover 2006-2007; run kalends seasons into this "
                          "folder again" % os.path.join(out, "ndvi_anomaly_standardised_2007.tif"))
+        # A --name the folder does not hold: the sets it holds are named (it had named a missing
+        # file of the asked-for set).
+        done = kt.run_kalends(["compare", out, "--out", compare, "--name", "evi"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: --name 'evi': the folder holds no such layer set; it holds ndvi")
         self.assertIsNone(report["year_most_above"])
         # A negative --top is refused.
         done = kt.run_kalends(["compare", out, "--out", compare, "--top", "-3"])
