@@ -364,7 +364,8 @@ double date_median(const Stack& stack, std::size_t index, int side) {
 }
 
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {
-  require_same_grid(base.grid(), other.grid(), other.layers().front().path, base.input());
+  // A file on each side (a stack's files share its grid): the glob alone had named none.
+  require_same_grid(base.grid(), other.grid(), other.layers().front().path, base.layers().front().path);
   std::vector<std::size_t> index;
   const auto& layers = other.layers();
   for (const Layer& layer : base.layers()) {

@@ -777,6 +777,19 @@ class RealData(kt.TempDirTestCase):
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
 
+    def test_index_names_both_files_of_a_grid_mismatch(self):
+        # The red side had been named by its glob ("that of bands/red_*.tif"): a file on each
+        # side now, as for any other pair.
+        folder = os.path.join(self.tmp, "mismatch")
+        os.makedirs(folder)
+        kt.write_raster(os.path.join(folder, "red_2020-01-01.tif"), np.ones((4, 4), np.float32))
+        kt.write_raster(os.path.join(folder, "nir_2020-01-01.tif"), np.ones((5, 4), np.float32))
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", os.path.join(self.tmp, "mm-out")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: %s: grid is 4 x 5 px, that of %s is 4 x 4" % (
+            os.path.join(folder, "nir_2020-01-01.tif"), os.path.join(folder, "red_2020-01-01.tif")))
+
     def test_ndvi_refuses_red_and_nir_on_different_scales(self):
         # Landsat 7 bands 3 and 4 (shared data), red with a scale factor of 0.004 and NIR
         # without: an NDVI of the two is nonsense (median 0.99 against -0.07 on one scale), and
