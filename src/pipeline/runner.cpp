@@ -429,8 +429,10 @@ class Runner {
         const bool input = dynamic_cast<const InputError*>(&caught) != nullptr;
         const Error e = usage && caught.where() == "--memory"
                             ? UsageError(memory_key(job_), caught.reason())
-                        : usage ? UsageError(job_option_names(caught.where()), job_wording(caught.reason(), step))
-                        : input ? InputError(job_option_names(caught.where()), job_wording(caught.reason(), step))
+                        : usage ? UsageError(job_option_names(job_wording(caught.where(), step)),
+                                             job_wording(caught.reason(), step))
+                        : input ? InputError(job_option_names(job_wording(caught.where(), step)),
+                                             job_wording(caught.reason(), step))
                                 : caught;
         // 2 for bad input or options (a job's memory too small for one block), as the commands.
         fail_step(e, usage || input ? 2 : 1);

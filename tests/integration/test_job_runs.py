@@ -246,7 +246,7 @@ class JobFile(kt.TempDirTestCase):
 
     def test_a_compare_step_takes_the_layer_set_by_name(self):
         # 'name' as compare's --name (it had been an unknown key): the set the seasons step
-        # made is compared; another name is looked for, and missing.
+        # made is compared; another name is refused, naming the key and the sets the folder holds.
         folder = os.path.join(self.tmp, "compare-name")
         job = make_job(folder, years=2, size=32)
         with open(job) as f:
@@ -257,7 +257,8 @@ class JobFile(kt.TempDirTestCase):
             done = run(job)
             self.assertEqual(done.returncode, code, done.stdout + done.stderr)
             if code:
-                self.assertIn("evi_synoptic_miss.tif", done.stderr)
+                self.assertIn("'name' 'evi': the folder holds no such layer set; it holds ndvi", done.stderr)
+                self.assertNotIn("--name", done.stderr)
 
     def test_status_tells_an_interrupted_step_from_one_never_run(self):
         # A run killed while writing a step's first outputs leaves only hidden .partial files
