@@ -39,6 +39,14 @@ OutputError write_failure(const std::string& path, const std::string& what) {
   return OutputError(path, what);
 }
 
+void require_header_in_file(const std::string& written, const std::string& target) {
+  const std::string side = written + ".aux.xml";
+  std::error_code ec;
+  if (!fs::exists(side, ec)) return;
+  fs::remove(side, ec);
+  throw write_failure(target, "GDAL could not write the whole header into the file (out of memory?)");
+}
+
 std::string temporary_name(const std::string& final_path, const std::string& tag) {
   const fs::path p(final_path);
   std::string name = ".";
@@ -421,14 +429,9 @@ void OutputSet::commit() {
     file->dataset.reset();  // closing writes the remaining directory entries
     if (CPLGetLastErrorType() == CE_Failure)
       throw write_failure(file->spec.path, "closing failed (" + gdal_message("unknown reason") + ")");
-    // The GeoTIFF keys are written at the close. Where that fails (a memory limit), GDAL puts
-    // the CRS in a side file (.aux.xml) named after the temporary, which the rename leaves
-    // behind: the outputs had been published without their CRS, with exit 0.
-    if (const std::string side = file->temporary + ".aux.xml"; fs::exists(side)) {
-      std::error_code ec;
-      fs::remove(side, ec);
-      throw write_failure(file->spec.path, "GDAL could not write the whole header into the file (out of memory?)");
-    }
+    // The GeoTIFF keys are written at the close; under a memory limit they had gone to a side
+    // file the rename left behind, and the outputs were published without their CRS, exit 0.
+    require_header_in_file(file->temporary, file->spec.path);
     if (has_crs_ || has_geotransform_) {
       CPLErrorReset();
       GDALDatasetUniquePtr check(GDALDataset::Open(file->temporary.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));

@@ -24,6 +24,11 @@ namespace kalends::detail {
 /// fetching directory count") does not say; `what` follows.
 OutputError write_failure(const std::string& path, const std::string& what);
 
+/// Throws write_failure(target) where GDAL, closing the raster `written`, put part of its header
+/// (the CRS) in a side file `written`.aux.xml because it did not fit (a memory limit): a rename
+/// would leave that file behind and publish the raster without it. The side file is removed.
+void require_header_in_file(const std::string& written, const std::string& target);
+
 struct BandSpec {
   std::string description;
   std::string unit;

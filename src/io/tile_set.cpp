@@ -10,8 +10,6 @@
 #include <cstring>
 #include <cmath>
 #include <filesystem>
-#include <fstream>
-#include <iterator>
 #include <fmt/format.h>
 #include <map>
 #include <regex>
@@ -201,15 +199,8 @@ std::pair<int, int> publish_vrts(const std::string& folder, const std::map<std::
     const fs::path path = fs::path(folder) / name;
     if (fs::is_directory(path, ec))
       throw UsageError(path.string(), "is a folder where a mosaic view goes; move it away");
-    if (std::ifstream in(path, std::ios::binary); in) {
-      const std::string before((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
-      if (before == text) {
-        ++counts.second;
-        continue;
-      }
-    }
-    detail::write_text_atomically(path.string(), text);
-    ++counts.first;
+    // It leaves a file of the same text as it is, and says so.
+    ++(detail::write_text_atomically(path.string(), text) ? counts.first : counts.second);
   }
   return counts;
 }

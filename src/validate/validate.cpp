@@ -80,12 +80,9 @@ void write_plane(const std::string& path, const float* plane, const Grid& grid, 
   // (the fill had then read the cut file and called it damaged input, exit 2), and a header
   // that did not fit goes to a side file (under a memory limit).
   ds.reset();
-  if (CPLGetLastErrorType() == CE_Failure || std::filesystem::exists(path + ".aux.xml")) {
-    std::error_code ec;
-    std::filesystem::remove(path + ".aux.xml", ec);
-    throw detail::write_failure(path, "cannot write (" + detail::gdal_message("the header did not fit: out of memory?") +
-                                          ")");
-  }
+  if (CPLGetLastErrorType() == CE_Failure)
+    throw detail::write_failure(path, "cannot write (" + detail::gdal_message("unknown reason") + ")");
+  detail::require_header_in_file(path, path);
 }
 
 Cube read_band(const std::vector<std::string>& paths, int band, int width, int height) {
