@@ -15,7 +15,7 @@
 namespace kalends {
 
 enum class SeriesKind {
-  dated,            // one file per date (fill outputs, calendar period means): the date's file
+  dated,            // one file (or band) per date: fill outputs, calendar period means, stacks
   year_period,      // one file per year, one band per period (seasons, suitability year layers)
   synoptic_period,  // one file, one band per period of the calendar year (synoptic layers)
   fixed,            // one band with no time (any other raster band)
@@ -28,6 +28,8 @@ struct SeriesFile {
   /// A calendar period of a fill that no composite of any year stands for (the stack's
   /// off-season: KALENDS_PERIOD_DAYS_COVERED 0); its values are empty by design.
   bool outside_season = false;
+  /// dated: the band of the file that holds the date (a multi-band stack: a band per date).
+  int band = 1;
 };
 
 struct CovariateSeries {
@@ -53,7 +55,10 @@ struct CovariateSeries {
 };
 
 /// Every series under `paths` (folders searched recursively, hidden entries skipped, or single
-/// raster files). Rasters that are summaries with no single value per time (cycle
+/// raster files). A raster that kalends did not write and whose bands carry dates (a CF time
+/// axis, GRIB valid times, dates as band descriptions), one variable of a NetCDF file
+/// (NETCDF:"f.nc":tas; a file of several variables gives a series each) or a pattern of files
+/// dated by their names is read as `kalends fill` reads a stack: a dated series. Rasters that are summaries with no single value per time (cycle
 /// descriptors) are kept as fixed bands only when `include_descriptors`. InputError naming the
 /// path when a path does not exist or holds no raster.
 /// `prefixes`, when given, one per path, start the names of that path's series ("fill" makes

@@ -58,9 +58,11 @@ std::optional<std::string> impossible_date_in_name(std::string_view name);
 /// Parses "YYYY-MM-DD" optionally followed by "[T ]hh:mm[:ss][Z]".
 std::optional<TimePoint> parse_iso_time(std::string_view text);
 
-/// A CF-conventions time value: `value` in `units` ("days since 1950-01-01 00:00:00"). Only
-/// the standard, gregorian and proleptic_gregorian calendars are accepted (they agree after
-/// 1582); throws std::invalid_argument with the reason otherwise.
+/// A CF-conventions time value: `value` in `units` ("days since 1950-01-01 00:00:00", an
+/// origin with a time-zone offset such as " -06:00" taken as local time). Only the standard
+/// (gregorian) and proleptic_gregorian calendars are accepted, in any case; the standard one is
+/// Julian before 1582-10-15, so an earlier origin is a Julian date and an earlier time is
+/// refused. Throws std::invalid_argument with the reason otherwise.
 TimePoint cf_time(double value, std::string_view units, std::string_view calendar = "standard");
 
 }  // namespace kalends

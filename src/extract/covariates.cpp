@@ -1,14 +1,19 @@
 // Finding covariate series in folders: the metadata kalends writes (KALENDS_DATE,
 // KALENDS_PERIOD, KALENDS_YEAR, band descriptions "month 01" / "doy 001") says how each file is
-// matched to a date; a raster without it is a set of fixed bands.
+// matched to a date. Other rasters are read as `kalends fill` reads a stack where they carry
+// dates (bands dated by a CF time axis or GRIB valid times, a pattern of dated files), else as
+// fixed bands.
 #include "kalends/covariates.hpp"
 
 #include <algorithm>
 #include <cstdlib>
 #include <filesystem>
+#include <functional>
 #include <map>
+#include <optional>
 #include <regex>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
 
@@ -46,6 +51,7 @@ bool is_period_label(const std::string& d) {
 struct Scanned {
   std::string path, group;  // group: the folder part of the name
   std::string stem;
+  bool stack = false;  // a pattern of files or a GDAL connection string, opened as a stack
 };
 
 std::string trim_separators(std::string s) {
@@ -59,7 +65,14 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
     out.push_back({root.string(), prefix, root.stem().string()});
     return;
   }
-  if (!fs::is_directory(root, ec)) throw InputError(root.string(), "no such file or folder");
+  if (!fs::is_directory(root, ec)) {
+    const std::string input = root.string();
+    if (detail::has_glob_characters(input) || detail::connection_parts(input)) {
+      out.push_back({input, prefix, "", true});
+      return;
+    }
+    throw InputError(input, "no such file or folder");
+  }
   std::vector<fs::path> files;
   for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
     const std::string name = it->path().filename().string();
@@ -86,6 +99,16 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
   }
 }
 
+// Whether every band of a multi-band raster carries a date that a stack reads (a CF time axis,
+// GRIB valid times, dates as band descriptions): such a file is a time series, not fixed bands.
+bool dated_bands(const std::string& path) {
+  try {
+    return Stack::open(path).layers().size() > 1;
+  } catch (const InputError&) {
+    return false;
+  }
+}
+
 }  // namespace
 
 std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
@@ -104,9 +127,47 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     }
     return it->second;
   };
-  for (const Scanned& s : scanned) {
-    GDALDatasetUniquePtr ds = detail::open_raster(s.path);
+  // A stack as `kalends fill` reads it: a dated series, an entry per date (a file or a band).
+  auto add_stack = [&](const Stack& stack, const std::string& name) {
+    CovariateSeries& c = series_for(name);
+    if (!c.files.empty())
+      throw InputError(stack.input(), "would be the series '" + name + "', as " + c.files.front().path +
+                                          " is: give the folders' parent folder, or rename one of the files");
+    c.kind = SeriesKind::dated;
+    for (const Layer& layer : stack.layers()) c.files.push_back({layer.path, layer.time, 0, false, layer.band});
+    c.grid = stack.grid();
+    c.unit = stack.layers().front().unit;
+    c.description = stack.input();
+  };
+  // One raster file (or variable) named `stem`, its series named after `prefix` + stem.
+  std::function<void(const Scanned&)> scan = [&](const Scanned& s) {
     const std::string prefix = s.group.empty() ? "" : s.group + ".";
+    if (s.stack) {
+      // A pattern is a stack whatever it holds; a variable is one where its bands carry dates.
+      std::optional<Stack> stack;
+      try {
+        stack = Stack::open(s.path);
+      } catch (const InputError&) {
+        if (detail::has_glob_characters(s.path)) throw;
+      }
+      if (stack && (stack->layers().size() > 1 || detail::has_glob_characters(s.path))) {
+        add_stack(*stack, prefix + stack->name());
+        return;
+      }
+      scan({s.path, s.group, detail::connection_parts(s.path)->variable()});
+      return;
+    }
+    GDALDatasetUniquePtr ds;
+    try {
+      ds = detail::open_raster(s.path);
+    } catch (const InputError&) {
+      // A file of several variables (NetCDF, HDF5): each as if given by its name.
+      const std::vector<std::string> variables = detail::subdatasets_of(s.path);
+      if (variables.empty()) throw;
+      for (const std::string& variable : variables)
+        scan({variable, prefix + s.stem, "", true});
+      return;
+    }
     const std::string date_text = item(*ds, "KALENDS_DATE");
     const std::string period_text = item(*ds, "KALENDS_PERIOD");
     const std::string year_text = item(*ds, "KALENDS_YEAR");
@@ -167,6 +228,9 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         throw InputError(s.path, "a second synoptic file for the series '" + c.name + "'");
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
+    } else if (bands > 1 && period_text.empty() && year_text.empty() && item(*ds, "KALENDS_VERSION").empty() &&
+               dated_bands(s.path)) {
+      add_stack(Stack::open(s.path), prefix + s.stem);
     } else if ((period_text.empty() && year_text.empty()) || include_descriptors) {
       for (int b = 1; b <= bands; ++b) {
         std::string name = prefix + s.stem;
@@ -184,7 +248,8 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         fill_common(c);
       }
     }
-  }
+  };
+  for (const Scanned& s : scanned) scan(s);
   std::vector<CovariateSeries> result;
   for (const std::string& name : order) {
     CovariateSeries c = std::move(by_name[name]);

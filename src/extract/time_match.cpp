@@ -81,7 +81,7 @@ TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, in
       return m;
     }
     m.file = own - lag;
-    m.band = 1;
+    m.band = series.files[m.file].band;
     m.label = series.files[m.file].time.label();
     return m;
   }

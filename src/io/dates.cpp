@@ -252,10 +252,56 @@ std::optional<TimePoint> parse_iso_time(std::string_view text) {
   return TimePoint{seconds};
 }
 
-TimePoint cf_time(double value, std::string_view units, std::string_view calendar) {
-  if (!(calendar.empty() || calendar == "standard" || calendar == "gregorian" ||
-        calendar == "proleptic_gregorian"))
-    throw std::invalid_argument("calendar '" + std::string(calendar) +
+namespace {
+
+// Julian-calendar day number minus the Gregorian one for the same written date (the two day-
+// number formulas of the Julian and Gregorian calendars differ by -38 + Y/100 - Y/400, Y the
+// year counted from March of -4800; Meeus 1998, Astronomical Algorithms, ch. 7, from memory).
+// For 0001-01-01 it is -2: Julian day 1721424 against 1721426.
+std::int64_t julian_minus_gregorian_days(int y, int m) {
+  const int a = (14 - m) / 12;
+  const std::int64_t shifted = std::int64_t(y) + 4800 - a;
+  return -38 + shifted / 100 - shifted / 400;
+}
+
+// A trailing time-zone offset of CF (UDUNITS) units' origin: " -06:00", " +0530", " -6".
+// Returns the offset in seconds east of UTC and cuts it off `origin`; 0 where there is none.
+std::int64_t cut_zone_offset(std::string_view& origin) {
+  const auto space = origin.find_last_of(' ');
+  if (space == std::string_view::npos) return 0;
+  std::string_view zone = origin.substr(space + 1);
+  if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return 0;
+  const int sign = zone[0] == '-' ? -1 : 1;
+  zone.remove_prefix(1);
+  int hours = 0, minutes = 0;
+  const auto colon = zone.find(':');
+  auto digits = [](std::string_view d, int& out) {
+    if (d.empty() || d.size() > 2) return false;
+    for (char c : d)
+      if (c < '0' || c > '9') return false;
+    out = digits_to_int(d);
+    return true;
+  };
+  if (colon != std::string_view::npos) {
+    if (!digits(zone.substr(0, colon), hours) || !digits(zone.substr(colon + 1), minutes)) return 0;
+  } else if (zone.size() == 4) {
+    if (!digits(zone.substr(0, 2), hours) || !digits(zone.substr(2), minutes)) return 0;
+  } else if (!digits(zone, hours)) {
+    return 0;
+  }
+  if (hours > 14 || minutes > 59) return 0;
+  origin = origin.substr(0, space);
+  return sign * (hours * 3600 + minutes * 60);
+}
+
+}  // namespace
+
+TimePoint cf_time(double value, std::string_view units, std::string_view calendar_name) {
+  std::string calendar(calendar_name);
+  for (char& c : calendar) c = char(std::tolower(static_cast<unsigned char>(c)));
+  const bool mixed = calendar.empty() || calendar == "standard" || calendar == "gregorian";
+  if (!mixed && calendar != "proleptic_gregorian")
+    throw std::invalid_argument("calendar '" + std::string(calendar_name) +
                                 "' is not supported (standard, gregorian, proleptic_gregorian)");
   const auto since = units.find(" since ");
   if (since == std::string_view::npos)
@@ -273,9 +319,28 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
     seconds_per_unit = 1;
   else
     throw std::invalid_argument("time unit '" + unit + "' is not supported");
-  const auto origin = parse_iso_time(units.substr(since + 7));
+  std::string_view origin_text = units.substr(since + 7);
+  while (!origin_text.empty() && origin_text.back() == ' ') origin_text.remove_suffix(1);
+  // "days since 2001-01-01 00:00:00 -06:00": the origin is local time, 6 hours behind UTC.
+  const std::int64_t zone = cut_zone_offset(origin_text);
+  const auto origin = parse_iso_time(origin_text);
   if (!origin) throw std::invalid_argument("time origin in '" + std::string(units) + "' unreadable");
-  return TimePoint{origin->seconds + std::int64_t(std::llround(value * seconds_per_unit))};
+  std::int64_t origin_seconds = origin->seconds - zone;
+  // The standard (mixed) calendar is Julian before 1582-10-15 (CF conventions, section 4.4.1):
+  // an origin such as "hours since 1-1-1" is a Julian date, two days before the proleptic
+  // Gregorian one of the same name.
+  const std::int64_t reform = days_from_civil(1582, 10, 15) * 86400;
+  if (mixed && origin->seconds < reform) {
+    const CivilDate d = origin->date();
+    if (origin->seconds >= days_from_civil(1582, 10, 5) * 86400)
+      throw std::invalid_argument("time origin in '" + std::string(units) +
+                                  "' is one of the days the standard calendar skips (1582-10-05 to 14)");
+    origin_seconds += julian_minus_gregorian_days(d.year, d.month) * 86400;
+  }
+  const TimePoint t{origin_seconds + std::int64_t(std::llround(value * seconds_per_unit))};
+  if (mixed && t.seconds < reform)
+    throw std::invalid_argument("a time before 1582-10-15 in the standard calendar (Julian there) is not supported");
+  return t;
 }
 
 }  // namespace kalends

@@ -56,6 +56,10 @@ GDALDatasetUniquePtr open_raster(const std::string& path);
 /// has_geotransform) and CRS (WGS 84 for a NetCDF with CF longitude/latitude axes and no CRS).
 Grid raster_grid(GDALDataset& dataset);
 
+/// The subdatasets of a container file with several variables (NetCDF, HDF4, HDF5), which opens
+/// with no band of its own (NETCDF:"f.nc":tas, ...); none for any other file.
+std::vector<std::string> subdatasets_of(const std::string& path);
+
 /// Whether `path` is one of `kalends fill`'s dated outputs (value, sd and flag bands; not a
 /// calendar period mean, whose flag means something else).
 bool is_fill_output(const std::string& path);

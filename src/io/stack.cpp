@@ -228,20 +228,6 @@ std::string name_from_file(const std::string& path) {
   return prefix.empty() ? "filled" : prefix;
 }
 
-// The subdatasets of a container file with several variables (NetCDF, HDF4, HDF5), which opens
-// with no band of its own; none for any other file.
-std::vector<std::string> subdatasets_of(const std::string& path) {
-  detail::start_gdal();
-  std::vector<std::string> names;
-  GDALDatasetUniquePtr any(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
-  if (char** items = any ? any->GetMetadata("SUBDATASETS") : nullptr)
-    for (int i = 0; items[i]; ++i) {
-      const std::string item = items[i];
-      if (item.find("_NAME=") != std::string::npos) names.push_back(item.substr(item.find('=') + 1));
-    }
-  return names;
-}
-
 std::string band_where(const std::string& path, int band) {
   return path + " band " + std::to_string(band);
 }
@@ -322,6 +308,21 @@ bool same_crs(const std::string& a, const std::string& b) {
 
 namespace detail {
 Grid raster_grid(GDALDataset& dataset) { return grid_of(dataset); }
+
+// The subdatasets of a container file with several variables (NetCDF, HDF4, HDF5), which opens
+// with no band of its own; none for any other file.
+std::vector<std::string> subdatasets_of(const std::string& path) {
+  detail::start_gdal();
+  std::vector<std::string> names;
+  GDALDatasetUniquePtr any(GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  if (char** items = any ? any->GetMetadata("SUBDATASETS") : nullptr)
+    for (int i = 0; items[i]; ++i) {
+      const std::string item = items[i];
+      if (item.find("_NAME=") != std::string::npos) names.push_back(item.substr(item.find('=') + 1));
+    }
+  return names;
+}
+
 }  // namespace detail
 
 Grid window_grid(const Grid& grid, const Window& window) {
@@ -527,7 +528,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         if (connection)
           throw InputError(file, (e.reason().find(path) != std::string::npos ? e.reason() : e.reason() + " as " + path) +
                                      "; the file may be damaged or lack this variable");
-        const std::vector<std::string> variables = subdatasets_of(file);
+        const std::vector<std::string> variables = detail::subdatasets_of(file);
         if (variables.empty()) throw;
         std::string example = variables.front();
         if (const auto at = example.find(file); at != std::string::npos) example.replace(at, file.size(), input);
@@ -608,14 +609,14 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     } catch (const InputError&) {
       // A damaged file is named so, not read as "no such variable" below.
       detail::require_not_cut_short(detail::file_in_connection(input));
-      if (const std::vector<std::string> variables = subdatasets_of(input); !variables.empty())
+      if (const std::vector<std::string> variables = detail::subdatasets_of(input); !variables.empty())
         throw InputError(input, "holds several variables; choose one of: " + fmt::format("{}", fmt::join(variables, ", ")));
       if (!fs::exists(input) && !detail::has_glob_characters(input) && input.find(':') == std::string::npos)
         throw InputError(input, "no such file");
       // NETCDF:"file.nc":var and the like: say which part is wrong, the file or the variable.
       if (const auto parts = detail::connection_parts(input)) {
         if (!fs::exists(parts->files)) throw InputError(parts->files, "no such file");
-        const std::vector<std::string> variables = subdatasets_of(parts->files);
+        const std::vector<std::string> variables = detail::subdatasets_of(parts->files);
         if (!variables.empty())
           throw InputError(input, "the file has no such variable; its variables: " +
                                       fmt::format("{}", fmt::join(variables, ", ")));

@@ -472,7 +472,7 @@ ReportSummary run_report(const ReportRequest& request) {
     std::vector<int> bands;
     std::string shown;
     switch (s.kind) {
-      case SeriesKind::dated: bands = {1}; shown = "map of " + file.time.label() + " (the last date)"; break;
+      case SeriesKind::dated: bands = {file.band}; shown = "map of " + file.time.label() + " (the last date)"; break;
       case SeriesKind::year_period:
         for (int b = 1; b <= s.period_count; ++b) bands.push_back(b);
         // Per cell, over its periods with a value: "the mean of the 12 periods" had been read
@@ -500,8 +500,11 @@ ReportSummary run_report(const ReportRequest& request) {
       where += fmt::format("; {} to {}", s.files.front().time.label(), s.files.back().time.label());
     if (s.kind == SeriesKind::year_period)
       where += fmt::format("; years {} to {}", s.files.front().year, s.files.back().year);
-    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {} files; ramp from the 2nd to the 98th percentile<br><span class=\"note\">{}</span></figcaption>{}",
-                        image(q, s.name), escape(s.name), escape(s.description), escape(shown), s.files.size(),
+    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {}; ramp from the 2nd to the 98th percentile<br><span class=\"note\">{}</span></figcaption>{}",
+                        image(q, s.name), escape(s.name), escape(s.description), escape(shown),
+                        // A stack's dates may be bands of one file.
+                        s.kind == SeriesKind::dated ? fmt::format("{} dates", s.files.size())
+                                                    : fmt::format("{} files", s.files.size()),
                         escape(where), legend_svg(q, s.unit, summary.maps));
     if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
     maps += "</figure>\n";

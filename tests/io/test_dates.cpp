@@ -88,3 +88,29 @@ TEST_CASE("ISO and CF times", "[io][dates]") {
   CHECK_THROWS_AS(cf_time(1, "fortnights since 2000-01-01"), std::invalid_argument);
   CHECK_THROWS_AS(cf_time(1, "days"), std::invalid_argument);
 }
+
+TEST_CASE("the standard calendar is Julian before 1582-10-15; zones and capitals", "[io][dates]") {
+  // CF conventions 4.4.1: "standard" and "gregorian" are the mixed Julian/Gregorian calendar.
+  // Julian 0001-01-01 is Julian day 1721424, Gregorian 0001-01-01 is 1721426 (Meeus,
+  // Astronomical Algorithms, ch. 7, from memory): an origin of "1-1-1" in the standard calendar
+  // lies two days before the proleptic Gregorian one. 730485 = date(2001,1,1).toordinal() - 1
+  // in Python (proleptic Gregorian days since 0001-01-01); 2 more days from the Julian origin.
+  const double hours = (730485 + 2) * 24.0;
+  CHECK(cf_time(hours, "hours since 1-1-1 00:00:0.0", "standard").label() == "2001-01-01");
+  CHECK(cf_time(hours, "hours since 1-1-1 00:00:0.0", "gregorian").label() == "2001-01-01");
+  CHECK(cf_time(hours, "hours since 1-1-1 00:00:0.0", "").label() == "2001-01-01");
+  CHECK(cf_time(hours, "hours since 1-1-1 00:00:0.0", "proleptic_gregorian").label() == "2001-01-03");
+  // Origins after the reform are the same in both.
+  CHECK(cf_time(1, "days since 1582-10-15", "standard").label() == "1582-10-16");
+  // Julian 1582-10-04 was followed by Gregorian 1582-10-15.
+  CHECK(cf_time(1, "days since 1582-10-04", "standard").label() == "1582-10-15");
+  CHECK_THROWS_AS(cf_time(0, "days since 1582-10-10", "standard"), std::invalid_argument);
+  CHECK_THROWS_AS(cf_time(0, "days since 1500-01-01", "standard"), std::invalid_argument);
+  // Calendar names in any case (CF attribute values are case-insensitive in practice; from memory).
+  CHECK(cf_time(17927, "days since 1950-01-01", "Gregorian").label() == "1999-01-31");
+  CHECK(cf_time(17927, "days since 1950-01-01", "PROLEPTIC_GREGORIAN").label() == "1999-01-31");
+  // A UDUNITS origin with a time-zone offset is local time: 00:00 at -06:00 is 06:00 UTC.
+  CHECK(cf_time(0, "days since 2001-01-01 00:00:00 -06:00").label() == "2001-01-01T0600");
+  CHECK(cf_time(0, "hours since 2001-01-01 12:00 +0530").label() == "2001-01-01T0630");
+  CHECK(cf_time(1, "days since 2001-01-01 00:00:00 +00:00").label() == "2001-01-02");
+}

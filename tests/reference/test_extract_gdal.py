@@ -573,5 +573,125 @@ class SummersOnly(kt.TempDirTestCase):
         self.assertEqual(rows["summer"]["fill.calendar-1M.ndvi.reason"], "")
         self.assertEqual(rows["undated"]["fill.calendar-1M.ndvi.reason"], "no survey date")
 
+class RawStacks(kt.TempDirTestCase):
+    """Stacks that kalends did not write, read at survey dates as `kalends fill` reads them.
+
+    Data: ../shared/data/monthly-temperature/bcsd_obs_1999.nc, the gridded observations of Maurer
+    et al. (2002), J. Climate 15:3237-3251: 12 monthly means of 1999 whose CF time axis (days since
+    1950-01-01) stamps each month on its last day. The expected values are read here with Python
+    GDAL and numpy: the band whose date is the last one on or before the survey day (dates as
+    starts), or the first one on or after it (--date-marks end), at the cell holding the point
+    (gdal.InvGeoTransform), nodata (1e20) as missing.
+    """
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        import datetime as dt
+        g = kt.gdal()
+        cls.nc = kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        cls.tas = 'NETCDF:"%s":tas' % cls.nc
+        ds = g.Open(cls.tas)
+        cls.cube = {}
+        for variable in ("tas", "pr"):
+            v = g.Open('NETCDF:"%s":%s' % (cls.nc, variable))
+            band = v.GetRasterBand(1)
+            cube = v.ReadAsArray().astype(np.float64)
+            cube[cube == band.GetNoDataValue()] = np.nan
+            cls.cube[variable] = cube
+        days = ds.GetMetadataItem("NETCDF_DIM_time_VALUES").strip("{}").split(",")
+        cls.dates = [dt.date(1950, 1, 1) + dt.timedelta(days=int(float(d))) for d in days]
+        cls.inv = g.InvGeoTransform(ds.GetGeoTransform())
+        sea = np.argwhere(np.isnan(cls.cube["tas"][5]))[0]
+        gt = ds.GetGeoTransform()
+        sea_lon, sea_lat = gt[0] + (sea[1] + 0.5) * gt[1], gt[3] + (sea[0] + 0.5) * gt[5]
+        cls.points = os.path.join(cls.tmp, "surveys.csv")
+        with open(cls.points, "w") as f:
+            f.write("id,longitude,latitude,date\n")
+            f.write("a,-80.0,35.0,1999-06-15\nb,-78.3,36.1,1999-03-02\nc,-83.2,33.9,1999-11-20\n")
+            f.write("sea,%.4f,%.4f,1999-06-15\nearly,-80.0,35.0,1999-01-10\n" % (sea_lon, sea_lat))
+
+    def expected(self, variable, row, marks, lag=0):
+        import datetime as dt
+        day = dt.date.fromisoformat(row["date"])
+        if marks == "start":
+            index = max([i for i, d in enumerate(self.dates) if d <= day], default=None)
+        else:
+            index = min([i for i, d in enumerate(self.dates) if d >= day], default=None)
+        if index is None or index - lag < 0:
+            return None, None
+        lon, lat = float(row["longitude"]), float(row["latitude"])
+        c = int(np.floor(self.inv[0] + lon * self.inv[1] + lat * self.inv[2]))
+        r = int(np.floor(self.inv[3] + lon * self.inv[4] + lat * self.inv[5]))
+        return self.cube[variable][index - lag, r, c], self.dates[index - lag].isoformat()
+
+    def check(self, table, column, variable, marks, lag=0):
+        for row in table:
+            want, date = self.expected(variable, row, marks, lag)
+            got = row[column]
+            if want is None:
+                self.assertEqual(got, "", row)
+                self.assertNotEqual(row[column + ".reason"], "", row)
+            elif np.isnan(want):
+                self.assertEqual((got, row[column + ".reason"]), ("", "nodata"), row)
+            else:
+                self.assertEqual(row[column + ".matched"], date, row)
+                self.assertAlmostEqual(float(got), want, places=4, msg=row)
+
+    def test_a_netcdf_variable_is_read_at_the_survey_dates(self):
+        # It had been refused as "no such file or folder"; a folder's fill of it was the only way.
+        out = os.path.join(self.tmp, "tas.csv")
+        done = kt.run_kalends(["extract", self.tas, "--points", self.points, "--out", out, "--lags", "1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("every input date is the last day of its month", done.stderr)
+        table = kt.read_table(out)
+        self.check(table, "tas", "tas", "start")
+        self.check(table, "tas.lag1", "tas", "start", lag=1)
+        out = os.path.join(self.tmp, "tas-end.csv")
+        done = kt.run_kalends(["-q", "extract", self.tas, "--points", self.points, "--out", out,
+                               "--date-marks", "end"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.check(kt.read_table(out), "tas", "tas", "end")
+
+    def test_a_file_of_several_variables_gives_a_series_each(self):
+        # It had been refused as "has no raster band".
+        out = os.path.join(self.tmp, "both.csv")
+        done = kt.run_kalends(["-q", "extract", self.nc, "--points", self.points, "--out", out,
+                               "--date-marks", "end"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        table = kt.read_table(out)
+        self.check(table, "bcsd_obs_1999.tas", "tas", "end")
+        self.check(table, "bcsd_obs_1999.pr", "pr", "end")
+
+    def test_a_pattern_of_dated_files_is_one_series(self):
+        # Invented int16 composites of a fictional district (mechanics): a scale factor in the
+        # band metadata, nodata -3000, dates in the names. Each file had been a fixed layer.
+        import datetime as dt
+        folder = os.path.join(self.tmp, "raw")
+        os.makedirs(folder)
+        rng = np.random.default_rng(7)
+        cube = {}
+        for k in range(6):
+            day = dt.date(2031, 1, 1) + dt.timedelta(days=16 * k)
+            raw = rng.integers(-2000, 9000, size=(5, 6)).astype(np.int16)
+            raw[2, 3] = -3000
+            cube[day] = raw
+            kt.write_raster(os.path.join(folder, "evi_%s.tif" % day.isoformat()), raw,
+                            geotransform=(500000, 250, 0, 9100000, 0, -250), epsg=32736, scale=0.0001,
+                            nodata=-3000)
+        points = os.path.join(self.tmp, "plots.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\nq,500875,9099625,2031-02-10\nhole,500875,9099375,2031-02-10\n")
+        out = os.path.join(self.tmp, "evi.csv")
+        done = kt.run_kalends(["-q", "extract", os.path.join(folder, "evi_*.tif"), "--points", points,
+                               "--crs", "EPSG:32736", "--x-column", "x", "--y-column", "y", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {r["id"]: r for r in kt.read_table(out)}
+        # 2031-02-10 lies in the composite of 2031-02-02 (day 33, 16 days).
+        self.assertEqual(rows["q"]["evi.matched"], "2031-02-02")
+        self.assertAlmostEqual(float(rows["q"]["evi"]), cube[dt.date(2031, 2, 2)][1, 3] * 0.0001, places=6)
+        self.assertEqual((rows["hole"]["evi"], rows["hole"]["evi.reason"]), ("", "nodata"))
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
