@@ -13,8 +13,10 @@ tools/setup.sh
 tools/build.sh
 [ -x build/kalends ] || { echo "demo: build/kalends was not built" >&2; exit 1; }
 
-# synth.json is written last, so its presence means a complete stack from an earlier run.
-if ! grep -q '"drought_year": 2022' "$out/input/ndvi/synth.json" 2>/dev/null; then
+# synth.json is written last, so its presence means a complete stack from an earlier run (of
+# this version's place: the stack moved to EPSG:32727 in 0.3.18).
+if ! grep -q '"drought_year": 2022' "$out/input/ndvi/synth.json" 2>/dev/null ||
+   ! grep -q '"epsg": 32727' "$out/input/ndvi/synth.json" 2>/dev/null; then
   rm -rf "$out/input"
   echo "demo: generating the synthetic stack in $out/input" >&2
   "$py" tools/synth_stack.py --scenario demo --out "$out/input/ndvi" --qa --qa-out "$out/input/qa" \

@@ -44,7 +44,10 @@ gdal.UseExceptions()
 
 SCALE = 0.0001
 NODATA = -3000
-EPSG = 32736          # a real projected CRS (UTM 36S); the district on it is invented
+# A real projected CRS (UTM 27S). The district is invented, and so is its place: open ocean in
+# the equatorial Atlantic (about 21 W, 3-4 S), so that the demo's maps and survey coordinates
+# name no real place (it lay on land in East Africa before version 0.3.18).
+EPSG = 32727
 PIXEL = 250.0         # metres
 ORIGIN = (420000.0, 9650000.0)  # arbitrary upper-left corner
 QA_CLEAR, QA_MARGINAL, QA_CLOUDY, QA_OTHER = 0, 1, 2, 3

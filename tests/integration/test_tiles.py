@@ -171,7 +171,7 @@ class TiledFill(kt.TempDirTestCase):
         last = sorted(glob.glob(os.path.join(odd, "h00v00", "*.tif")))[-1]
         from osgeo import osr
         other = osr.SpatialReference()
-        other.ImportFromEPSG(32735)  # the neighbouring UTM zone
+        other.ImportFromEPSG(32735)  # another UTM zone than the demo's
         ds = g.Open(last, g.GA_Update)
         ds.SetProjection(other.ExportToWkt())
         ds = None
