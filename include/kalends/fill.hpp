@@ -14,12 +14,16 @@
 namespace kalends {
 
 /// A regular calendar for extra outputs: every N days from 1 January, or every calendar month.
+/// Every year has as many periods (those of a 365-day year); the last N-day period of a year
+/// runs to 31 December (shorter, or in a leap year one day longer where 365 is a multiple of N).
 struct CalendarPeriod {
   enum class Kind { days, month } kind = Kind::month;
   int days = 0;
   /// "8d", "16d", "1M"; UsageError naming `option` otherwise.
   static CalendarPeriod parse(const std::string& text, const std::string& option = "--every");
   std::string label() const;
+  /// 12, or ceil(365 / N).
+  int per_year() const { return kind == Kind::month ? 12 : (365 + days - 1) / days; }
 };
 
 /// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.

@@ -32,6 +32,7 @@ struct Period {
   std::int64_t first_day = 0;
   int days = 0;
 };
+/// calendar.per_year() of them, the last N-day one ending on 31 December.
 std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar);
 
 /// The median spacing of sorted times `at` (in their own unit: days, seconds), at least 1;

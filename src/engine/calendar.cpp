@@ -45,10 +45,13 @@ std::pair<std::int64_t, std::int64_t> period_of(std::int64_t day, const Calendar
     const std::int64_t first = days_from_civil(d.year, d.month, 1);
     return {first, first + days_in_month(d.year, d.month)};
   }
+  // The year's last period runs to 31 December: day 366 of a leap year is not a period of its
+  // own where 365 is a multiple of N (as periods_of_year, which `seasons` uses).
   const std::int64_t jan1 = days_from_civil(d.year, 1, 1);
   const std::int64_t next_jan1 = days_from_civil(d.year + 1, 1, 1);
-  const std::int64_t first = jan1 + (day - jan1) / p.days * p.days;
-  return {first, std::min(first + p.days, next_jan1)};
+  const std::int64_t index = std::min<std::int64_t>((day - jan1) / p.days, p.per_year() - 1);
+  const std::int64_t first = jan1 + index * p.days;
+  return {first, index == p.per_year() - 1 ? next_jan1 : first + p.days};
 }
 
 }  // namespace

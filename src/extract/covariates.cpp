@@ -23,17 +23,19 @@ namespace fs = std::filesystem;
 
 int period_index(const CalendarPeriod& period, const CivilDate& date) {
   if (period.kind == CalendarPeriod::Kind::month) return date.month - 1;
-  return (day_of_year(date) - 1) / period.days;
+  // Day 366 belongs to the year's last period (periods_of_year).
+  return std::min((day_of_year(date) - 1) / period.days, period.per_year() - 1);
 }
 
 TimePoint next_period_start(const CalendarPeriod& period, TimePoint start) {
   const CivilDate d = start.date();
   if (period.kind == CalendarPeriod::Kind::month)
     return TimePoint::from_date(d.month == 12 ? CivilDate{d.year + 1, 1, 1} : CivilDate{d.year, d.month + 1, 1});
-  // N-day periods restart on 1 January; the last one of a year is shorter.
+  // N-day periods restart on 1 January; the last one of a year runs to 31 December.
   const std::int64_t next = days_from_civil(d.year, d.month, d.day) + period.days;
   const std::int64_t new_year = days_from_civil(d.year + 1, 1, 1);
-  return TimePoint{std::min(next, new_year) * 86400};
+  const bool last = period_index(period, d) == period.per_year() - 1;
+  return TimePoint{(last ? new_year : std::min(next, new_year)) * 86400};
 }
 
 namespace {

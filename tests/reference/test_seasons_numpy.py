@@ -869,5 +869,59 @@ class RealData(kt.TempDirTestCase):
             self.assertFalse(os.path.exists(out))
 
 
+class LeapYears(kt.TempDirTestCase):
+    def test_day_366_joins_the_last_period_of_its_year(self):
+        # Daily values (invented, one pixel; each value its own day's) from 2015-12-22 to
+        # 2017-01-09, across the leap year 2016. The reference here: N-day periods start on day of
+        # year 1, 1 + N, ... (docs/methods.md), as many every year as a 365-day year has, the last
+        # running to 31 December; a period's value is the mean of its days' values. With 5, 73 and
+        # 1 days (365 a multiple of N) 31 December 2016 had been a period of its own, dropped from
+        # the 2016 layer, and every period of 2017 had read the one before it.
+        folder = os.path.join(self.tmp, "daily")
+        os.makedirs(folder)
+        first = dt.date(2015, 12, 22)
+        days = [first + dt.timedelta(days=k) for k in range(385)]
+        values = {d: 0.1 + 0.001 * k for k, d in enumerate(days)}
+        for d in days:
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % d.isoformat()),
+                            np.full((1, 1), values[d], np.float32), geotransform=(500000, 250, 0, 9000000, 0, -250),
+                            epsg=32736, nodata=float("nan"))
+        g = kt.gdal()
+        for n in (5, 73, 1, 8):
+            out = os.path.join(self.tmp, "seasons-%dd" % n)
+            done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", out, "--period", "%dd" % n])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            count = -(-365 // n)
+            for year in (2016, 2017):
+                layer = g.Open(os.path.join(out, "ndvi_year_%d.tif" % year)).ReadAsArray().reshape(-1)
+                self.assertEqual(layer.size, count, (n, year))
+                jan1 = dt.date(year, 1, 1)
+                end = dt.date(year + 1, 1, 1)
+                for k in range(count):
+                    start = jan1 + dt.timedelta(days=k * n)
+                    stop = end if k == count - 1 else start + dt.timedelta(days=n)
+                    inside = [values[d] for d in days if start <= d < stop]
+                    if not inside:
+                        self.assertTrue(np.isnan(layer[k]), (n, year, k))
+                    else:
+                        self.assertAlmostEqual(float(layer[k]), float(np.mean(np.float32(inside))), places=5,
+                                               msg=(n, year, k, start, stop))
+        # fill --every: the last 5-day calendar output of 2016 stands for 26-31 December, and there
+        # is none for 31 December alone.
+        out = os.path.join(self.tmp, "fill-5d")
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--every", "5d",
+                               "--method", "whittaker", "--lambda", "1e-6"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        names = sorted(os.listdir(os.path.join(out, "calendar-5d")))
+        self.assertIn("ndvi_2016-12-26.tif", names)
+        self.assertNotIn("ndvi_2016-12-31.tif", names)
+        ds = g.Open(os.path.join(out, "calendar-5d", "ndvi_2016-12-26.tif"))
+        # Calendar means read the curve at each day less half a step (a composite's value stands
+        # for its middle; docs/methods.md): here each day's value less 0.0005 (half a day of the
+        # 0.001 a day rise). The 5 days to 30 December alone would give 0.0005 less again.
+        inside = [values[d] - 0.0005 for d in days if dt.date(2016, 12, 26) <= d <= dt.date(2016, 12, 31)]
+        self.assertAlmostEqual(float(ds.GetRasterBand(1).ReadAsArray()[0, 0]), float(np.mean(inside)), places=4)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
