@@ -115,8 +115,8 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("  pixels never observed: {} of {}{}\n", r.pixels_never_observed,
                std::int64_t(r.grid.width) * r.grid.height,
                r.pixels_never_observed > 0
-                   ? " (spacetime fills them from their neighbours; if they are sea or outside a "
-                     "boundary, --never-observed leave keeps them empty)"
+                   ? " (the other methods leave them empty; spacetime fills them from their "
+                     "neighbours unless given --never-observed leave, for sea or outside a boundary)"
                    : "");
   }
   if (!dates) return;

@@ -74,6 +74,10 @@ void check_seasons_options(const SeasonsRequest& request) {
     throw UsageError("--threshold", "must lie strictly between 0 and 1");
   if (!(request.cycle.min_amplitude >= 0) || !std::isfinite(request.cycle.min_amplitude))
     throw UsageError("--min-amplitude", "must be 0 or more, in the input's unit");
+  // The cycle's harmonics need 4 periods a year or more: ceil(365 / N) >= 4.
+  if (request.period.per_year() < 4)
+    throw UsageError("--period '" + request.period.label() + "'",
+                     "at most 121 days: the cycle descriptors need at least 4 periods a year");
 }
 
 std::vector<std::string> seasons_notes(const SeasonsRequest& request, const SeasonsSummary& summary) {
@@ -128,6 +132,10 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   check_seasons_options(request);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   detail::require_out_apart_from(stack, request.out_dir, "input");
+  // Means of flag codes would be numbers that mean nothing.
+  if (request.rules.band == 3 && detail::is_fill_output(stack.layers().front().path))
+    throw UsageError("--band 3", "is the flag band of the fill outputs in '" + request.input +
+                                     "' (codes 0-3, not values): band 1 holds the values, band 2 their sd");
   // A fill's outputs carry a flag band: what each period's value rests on is then known, and
   // written beside it (a year of gap-filled values had counted as a year like any other).
   std::optional<Stack> flags;

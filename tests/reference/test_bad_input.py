@@ -550,6 +550,33 @@ class BadInput(kt.TempDirTestCase):
                 self.check_fails([stack] + extra, [name], [keyword], name)
 
 
+class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
+    def test_a_period_too_long_and_the_flag_band_are_named(self):
+        # --period 365d had failed with "harmonic analysis needs at least 4 periods a year" and
+        # exit 1; --band 3 of a fill's outputs (the flag codes) had been averaged into layers.
+        good = os.path.join(self.tmp, "good")
+        write_stack(good)
+        filled = os.path.join(self.tmp, "filled")
+        kt.run_fill_ok(self, [os.path.join(good, "*.tif"), "--out", filled])
+        for command, extra, name, keyword in (
+                ("seasons", ["--period", "365d"], "--period '365d'", "at most 121 days"),
+                ("seasons", ["--period", "122d"], "--period '122d'", "at least 4 periods a year"),
+                ("seasons", ["--band", "3"], "--band 3", "flag band"),
+                ("suitability", ["--band", "3", "--model", "r0-2013"], "--band 3", "flag band")):
+            with self.subTest(command=command, option=name):
+                option = "--temperature" if command == "suitability" else None
+                args = [command] + ([option] if option else []) + [filled, "--out", os.path.join(self.tmp, "out")]
+                done = kt.run_kalends(args + extra)
+                self.assertEqual(done.returncode, 2, done.stderr)
+                lines = done.stderr.strip().splitlines()
+                self.assertEqual(len(lines), 1, done.stderr)
+                self.assertIn(name, lines[0])
+                self.assertIn(keyword, lines[0])
+                self.assertFalse(os.path.exists(os.path.join(self.tmp, "out")))
+        done = kt.run_kalends(["-q", "seasons", filled, "--out", os.path.join(self.tmp, "s121"), "--period", "121d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+
 class ValidateWithNothingToWithhold(kt.TempDirTestCase):
     """kalends validate transplants one date's missing cells onto another: a stack whose dates
     all miss the same cells (sea, the outside of a boundary) or none gives it nothing to score."""
