@@ -125,6 +125,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
 
   return [o, memory, sub, &global] {
     FillRequest& r = o->request;
+    // "filled/" as typed: messages join names to it ("filled//calendar-1M").
+    while (r.out_dir.size() > 1 && r.out_dir.back() == '/') r.out_dir.pop_back();
     apply_method_options(r.method, o->method_texts);
     check_options_apply({r.method.method}, options_given(*sub));
     apply_value_rule_options(r.rules, o->rule_texts);

@@ -7,6 +7,7 @@
 #include <atomic>
 #include <chrono>
 #include <cmath>
+#include <cstring>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fmt/ranges.h>
@@ -34,8 +35,24 @@ const std::vector<std::string>& cycle_band_names() {
 }
 
 std::string stack_input(const std::string& input) {
-  if (fs::is_directory(input)) return (fs::path(input) / "*.tif").string();
-  return input;
+  if (!fs::is_directory(input)) return input;
+  // A folder that holds the outputs of two fills (ndvi_... and evi_...): named as such, where the
+  // stack read from it had said "duplicate date" or "grid ... differs".
+  std::set<std::string> names;
+  std::error_code ec;
+  for (const auto& entry : fs::directory_iterator(input, ec)) {
+    const std::string file = entry.path().filename().string();
+    if (!entry.is_regular_file(ec) || entry.path().extension() != ".tif" || file.front() == '.') continue;
+    const auto date = find_date_in_name(file);
+    std::string name = date ? file.substr(0, date->position) : entry.path().stem().string();
+    while (!name.empty() && std::strchr("_-. ", name.back())) name.pop_back();
+    names.insert(name);
+  }
+  if (names.size() > 1)
+    throw UsageError(input, fmt::format("holds the files of {} stacks ({}); give one as a pattern, such as '{}'",
+                                        names.size(), fmt::join(names, ", "),
+                                        (fs::path(input) / (*names.begin() + "_*.tif")).string()));
+  return (fs::path(input) / "*.tif").string();
 }
 
 namespace {

@@ -443,6 +443,9 @@ class Incremental(kt.TempDirTestCase):
         elapsed = time.monotonic() - t0
         self.assertEqual(second.returncode, 0, second.stderr)
         self.assertIn("nothing new, nothing done", second.stdout)
+        # Said once per step (it had read "fill  up to date up to date").
+        self.assertRegex(second.stdout, r"\n  fill\s+up to date\n")
+        self.assertNotIn("up to date up to date", second.stdout)
         self.assertEqual(mtimes(out), before)
         print("\n  second run with nothing new: %.2f s" % elapsed)
         # A file touched but not changed is recognised by its checksum.

@@ -550,6 +550,18 @@ class BadInput(kt.TempDirTestCase):
                 self.check_fails([stack] + extra, [name], [keyword], name)
 
 
+class Wording(kt.TempDirTestCase):
+    def test_an_out_typed_with_a_slash_is_not_doubled(self):
+        # "filled/" as typed had given "filled//calendar-1M" and "filled//fill-summary.json".
+        good = os.path.join(self.tmp, "good")
+        write_stack(good)
+        done = kt.run_kalends(["fill", os.path.join(good, "*.tif"), "--out", os.path.join(self.tmp, "filled") + "/",
+                               "--every", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(os.path.join(self.tmp, "filled", "calendar-1M"), done.stdout + done.stderr)
+        self.assertNotIn("//", done.stdout + done.stderr)
+
+
 class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
     def test_a_period_too_long_and_the_flag_band_are_named(self):
         # --period 365d had failed with "harmonic analysis needs at least 4 periods a year" and
@@ -575,6 +587,21 @@ class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
                 self.assertFalse(os.path.exists(os.path.join(self.tmp, "out")))
         done = kt.run_kalends(["-q", "seasons", filled, "--out", os.path.join(self.tmp, "s121"), "--period", "121d"])
         self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_a_folder_of_two_stacks_names_them(self):
+        # Two fills into one folder (docs/outputs.md allows it): seasons and suitability of the
+        # folder had said "duplicate date ... (also evi_...)" or "grid ... of the rest of the stack".
+        mixed = os.path.join(self.tmp, "mixed")
+        write_stack(mixed)
+        write_stack(mixed, prefix="evi_")
+        for args in (["seasons", mixed], ["suitability", "--temperature", mixed, "--model", "r0-2013"]):
+            with self.subTest(command=args[0]):
+                done = kt.run_kalends(args + ["--out", os.path.join(self.tmp, "out")])
+                self.assertEqual(done.returncode, 2, done.stderr)
+                lines = done.stderr.strip().splitlines()
+                self.assertEqual(len(lines), 1, done.stderr)
+                self.assertIn("holds the files of 2 stacks (evi, ndvi)", lines[0])
+                self.assertIn(os.path.join(mixed, "evi_*.tif"), lines[0])
 
 
 class ValidateWithNothingToWithhold(kt.TempDirTestCase):
