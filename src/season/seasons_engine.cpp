@@ -236,12 +236,17 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   std::vector<std::size_t> year_file, anomaly_file, standardised_file, cycle_file, observed_file;
   for (int y = first_year; y <= last_year; ++y) {
     const std::string ys = std::to_string(y);
+    // What each year value rests on. A fill's: its observed composites (flag 0). Unfilled input's:
+    // its days with a value (February from the one composite of 17 January that reaches into it
+    // had looked like a whole month).
     observed_file.push_back(
-        flags && redo(y) ? add("observed_" + ys, labels,
-                               {{"KALENDS_LAYER", "share of the period's days with a value resting on an "
-                                                  "observation (fill flag 0)"},
-                                {"KALENDS_YEAR", ys}})
-                         : not_written);
+        redo(y) ? add("observed_" + ys, labels,
+                      {{"KALENDS_LAYER", flags ? "share of the period's days with a value resting on an "
+                                                 "observation (fill flag 0)"
+                                               : "share of the period's days, of those the composites stand for, "
+                                                 "with a value (unfilled input)"},
+                       {"KALENDS_YEAR", ys}})
+                : not_written);
     year_file.push_back(redo(y) ? add("year_" + ys, labels, {{"KALENDS_LAYER", "year-specific period mean"}, {"KALENDS_YEAR", ys}})
                                 : not_written);
     anomaly_file.push_back(add("anomaly_" + ys, labels, {{"KALENDS_LAYER", "year-specific minus synoptic"}, {"KALENDS_YEAR", ys}}));
@@ -360,16 +365,18 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     };
     for (std::int64_t p = 0; p < n; ++p) {
       for (std::size_t k = 0; k < periods.size(); ++k) {
-        double sum = 0, days = 0, observed_days = 0;
+        double sum = 0, days = 0, observed_days = 0, covered_days = 0;
         for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
           const std::size_t at = std::size_t(sources[k].composite[j]) * n + p;
           const float v = w.layers[at];
+          covered_days += sources[k].days[j];
           if (!std::isfinite(v)) continue;
           sum += sources[k].days[j] * v, days += sources[k].days[j];
           if (flags && w.flags[at] == 0) observed_days += sources[k].days[j];
         }
         value[k] = days > 0 ? sum / days : NAN;
-        observed[k] = days > 0 ? observed_days / days : NAN;
+        if (flags) observed[k] = days > 0 ? observed_days / days : NAN;
+        else observed[k] = covered_days > 0 ? days / covered_days : NAN;
       }
       double all_sum = 0;
       int all_count = 0;
@@ -389,15 +396,13 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         band(synoptic_mean, q)[p] = float(mean[q]);
         band(synoptic_sd, q)[p] = float(sd);
         band(synoptic_years, q)[p] = float(count);
-        if (flags) {
-          int with_observation = 0;
-          for (int y = 0; y < years; ++y) {
-            const double o = observed[std::size_t(y) * P + q];
-            with_observation += o > 0;
-            if (observed_file[y] != not_written) band(observed_file[y], q)[p] = float(o);
-          }
-          band(synoptic_observed, q)[p] = float(with_observation);
+        int with_observation = 0;
+        for (int y = 0; y < years; ++y) {
+          const double o = observed[std::size_t(y) * P + q];
+          with_observation += o > 0;
+          if (observed_file[y] != not_written) band(observed_file[y], q)[p] = float(o);
         }
+        if (flags) band(synoptic_observed, q)[p] = float(with_observation);
         for (int y = 0; y < years; ++y) {
           const double v = value[std::size_t(y) * P + q];
           if (year_file[y] != not_written) band(year_file[y], q)[p] = float(v);

@@ -313,8 +313,19 @@ class SeasonsCommand(kt.TempDirTestCase):
         self.assertEqual(year.GetRasterBand(2).GetMetadataItem("KALENDS_DAYS_COVERED"), "28")
         year = None
         self.assertIn("rests on only part of its days (first: 2010 month 01, 15 of 31 days", done.stderr)
-        # Layers not made by a fill have no flags: no such layers.
-        self.assertFalse(glob.glob(os.path.join(self.out, "ndvi_*observed*")))
+        # Layers not made by a fill have no flags: observed_YYYY is the share of the period's days
+        # that have a value (of those the composites stand for), and there is no count of years.
+        self.assertFalse(glob.glob(os.path.join(self.out, "ndvi_synoptic_observed_years.tif")))
+        out = os.path.join(self.tmp, "gappy-raw-seasons")
+        done = kt.run_kalends(["-q", "seasons", raw, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        share = month_means(dates, np.isfinite(values).astype(np.float64))
+        for y in years:
+            layer = g.Open(os.path.join(out, "ndvi_observed_%d.tif" % y))
+            self.assertIn("with a value (unfilled input)", layer.GetMetadataItem("KALENDS_LAYER"))
+            np.testing.assert_allclose(layer.ReadAsArray(), np.array([share[(y, m)] for m in range(1, 13)]),
+                                       atol=1e-6, equal_nan=True)
+        self.assertFalse(glob.glob(os.path.join(out, "ndvi_synoptic_observed_years.tif")))
 
     def test_noise_is_no_season_below_the_minimum_amplitude(self):
         # A fictional district's bare-rock pixel (NDVI 0.05 with sd 0.001 noise) beside one with
