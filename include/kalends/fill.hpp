@@ -101,6 +101,7 @@ struct FillSummary {
   int outputs_removed = 0;  // earlier outputs of dates (or a calendar) this fill no longer makes
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
+  std::string date_conflict;      // see date_conflict_note (stack.hpp); "" where none
   std::string time_grid_note;     // a time grid on the smallest spacing (TimeGrid); "" where none
   /// The input of the fill-summary.json this fill replaced, where another input made it.
   std::string replaced_summary_of;

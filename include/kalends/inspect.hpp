@@ -44,6 +44,7 @@ struct InspectReport {
   /// "scale_factor=10000, add_offset=0" where the first date's metadata states a scaling that
   /// GDAL does not apply (HDF-EOS grids, for one) and none is given; "" otherwise.
   std::string unapplied_scaling;
+  std::string date_conflict;  // date_conflict_note (stack.hpp)
 };
 
 /// Opens the stack (and QA stack) as `kalends fill` does, with the same errors, and reads every

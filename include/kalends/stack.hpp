@@ -71,7 +71,15 @@ class Stack {
   /// A reader owns its GDAL handles; use one per thread.
   std::unique_ptr<StackReader> reader() const;
 
+  /// Dates whose sources disagree (a name's date and the band's CF time axis; a band
+  /// description and its DATE item): how many, and the first, described for a note ("" for
+  /// none). The name, else the first source in the order of docs/inputs.md, was used.
+  int date_conflicts() const noexcept { return date_conflicts_; }
+  const std::string& first_date_conflict() const noexcept { return first_date_conflict_; }
+
  private:
+  int date_conflicts_ = 0;
+  std::string first_date_conflict_;
   std::string input_;
   Grid grid_;
   std::vector<Layer> layers_;
@@ -123,6 +131,10 @@ std::string unapplied_scaling(const Stack& stack);
 /// metadata is a slip): the first date that differs from the first date, described for a
 /// note; "" where all agree or the rules override them.
 std::string mixed_value_rules(const Stack& stack);
+
+/// "dates disagree in 3 bands (first: f.nc band 1: its name says 2020-01-01, its CF time axis
+/// 2020-01-02); the name's date, else the first source, was used (docs/inputs.md)", or "".
+std::string date_conflict_note(const Stack& stack);
 
 /// The hidden file a run keeps in each folder while it renames its outputs into place.
 inline constexpr const char* half_published_marker = ".kalends-publishing";

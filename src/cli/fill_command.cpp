@@ -185,6 +185,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                            "if one file's metadata is wrong; a unit label is not converted; see kalends inspect "
                            "--dates)\n",
                    r.input.c_str(), s.mixed_value_rules.c_str());
+    if (!s.date_conflict.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.date_conflict.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;
       fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}{}\n", s.dates, s.width,

@@ -44,6 +44,7 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
   const std::int64_t span_days = (layers.back().layer.time.seconds - first.time.seconds) / 86400;
   fmt::print("  dates     {} .. {} ({} days), from {}\n", first.time.label(), layers.back().layer.time.label(),
              span_days, from);
+  if (!r.date_conflict.empty()) fmt::print("            {}\n", r.date_conflict);
   std::vector<TimePoint> times;
   for (const InspectedLayer& l : layers) times.push_back(l.layer.time);
   if (dates_at_month_ends(times))
@@ -148,6 +149,8 @@ void print_json(const InspectReport& r) {
              detail::json_number(r.time_grid.step_days), r.time_grid.size, r.slots_with_data);
   fmt::print("  \"unapplied_scaling\": {},\n",
              r.unapplied_scaling.empty() ? "null" : "\"" + json_escape(r.unapplied_scaling) + "\"");
+  fmt::print("  \"date_conflict\": {},\n",
+             r.date_conflict.empty() ? "null" : "\"" + json_escape(r.date_conflict) + "\"");
   fmt::print("  \"values_read\": {},\n  \"pixels_never_observed\": {},\n  \"dates\": [\n", r.values_read,
              r.values_read ? std::to_string(r.pixels_never_observed) : "null");
   for (std::size_t i = 0; i < r.layers.size(); ++i) {

@@ -126,6 +126,7 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
+  if (!summary.date_conflict.empty()) notes.push_back(summary.date_conflict);
   return notes;
 }
 
@@ -671,6 +672,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   summary.another_input = other_input;
   summary.unapplied_scaling = unapplied_scaling(stack);
   summary.mixed_value_rules = mixed_value_rules(stack);
+  summary.date_conflict = date_conflict_note(stack);
   if (grid.from_smallest_spacing)
     summary.time_grid_note = fmt::format(
         "dates of mixed spacing (median {:g} days, smallest {:g}): the time grid steps {:g} days so that every date "

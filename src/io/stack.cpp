@@ -238,32 +238,44 @@ std::optional<TimePoint> time_from_text(const char* text) {
   return date_from_name(text);
 }
 
-// The date of one band of a multi-band raster: GRIB valid time, CF time axis, band
-// description, or a date item in the band's metadata.
-TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_index) {
-  GDALRasterBand* band = dataset.GetRasterBand(band_index);
-  if (const char* valid = band->GetMetadataItem("GRIB_VALID_TIME")) {
+// A band's GRIB valid time, if it has one.
+std::optional<TimePoint> grib_band_time(GDALRasterBand& band) {
+  if (const char* valid = band.GetMetadataItem("GRIB_VALID_TIME")) {
     char* end = nullptr;
     const long long seconds = std::strtoll(valid, &end, 10);
     if (end != valid) return TimePoint{seconds};
   }
-  if (char** items = band->GetMetadata()) {
-    for (int i = 0; items[i]; ++i) {
-      const std::string item = items[i];
-      if (item.rfind("NETCDF_DIM_", 0) != 0) continue;
-      const auto eq = item.find('=');
-      if (eq == std::string::npos) continue;
-      const std::string dim = item.substr(11, eq - 11);
-      const char* units = dataset.GetMetadataItem((dim + "#units").c_str());
-      if (units == nullptr || std::strstr(units, " since ") == nullptr) continue;
-      const char* calendar = dataset.GetMetadataItem((dim + "#calendar").c_str());
-      try {
-        return cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");
-      } catch (const std::invalid_argument& e) {
-        throw InputError(band_where(path, band_index), std::string("time axis: ") + e.what());
-      }
+  return std::nullopt;
+}
+
+// A band's time on a CF time axis (NETCDF_DIM_<dim> with "<dim>#units" of the form "... since
+// ..."), if it has one; InputError naming the band where the axis cannot be read.
+std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& path, int band_index) {
+  char** items = dataset.GetRasterBand(band_index)->GetMetadata();
+  for (int i = 0; items && items[i]; ++i) {
+    const std::string item = items[i];
+    if (item.rfind("NETCDF_DIM_", 0) != 0) continue;
+    const auto eq = item.find('=');
+    if (eq == std::string::npos) continue;
+    const std::string dim = item.substr(11, eq - 11);
+    const char* units = dataset.GetMetadataItem((dim + "#units").c_str());
+    if (units == nullptr || std::strstr(units, " since ") == nullptr) continue;
+    const char* calendar = dataset.GetMetadataItem((dim + "#calendar").c_str());
+    try {
+      return cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");
+    } catch (const std::invalid_argument& e) {
+      throw InputError(band_where(path, band_index), std::string("time axis: ") + e.what());
     }
   }
+  return std::nullopt;
+}
+
+// The date of one band of a multi-band raster: GRIB valid time, CF time axis, band
+// description, or a date item in the band's metadata.
+TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_index) {
+  GDALRasterBand* band = dataset.GetRasterBand(band_index);
+  if (const auto t = grib_band_time(*band)) return *t;
+  if (const auto t = cf_band_time(dataset, path, band_index)) return *t;
   if (auto t = time_from_text(band->GetDescription())) return *t;
   std::string unreadable;  // a date item that is there but is no date: named, not "none found"
   for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"}) {
@@ -284,6 +296,37 @@ std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const st
   std::vector<std::pair<int, TimePoint>> dates;
   for (int b = 1; b <= dataset.GetRasterCount(); ++b) dates.emplace_back(b, band_time(dataset, path, b));
   return dates;
+}
+
+// Every date a band's metadata states, in the order band_time takes them, with where it was
+// found; what cannot be read is left out (band_time names it).
+std::vector<std::pair<std::string, TimePoint>> band_date_sources(GDALDataset& dataset, int band_index) {
+  std::vector<std::pair<std::string, TimePoint>> found;
+  GDALRasterBand* band = dataset.GetRasterBand(band_index);
+  if (const auto t = grib_band_time(*band)) found.emplace_back("GRIB valid time", *t);
+  try {
+    if (const auto t = cf_band_time(dataset, "", band_index)) found.emplace_back("CF time axis", *t);
+  } catch (const InputError&) {
+  }
+  if (auto t = time_from_text(band->GetDescription())) found.emplace_back("band description", *t);
+  for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"})
+    if (auto t = time_from_text(band->GetMetadataItem(key))) found.emplace_back(std::string(key) + " item", *t);
+  return found;
+}
+
+// "its name says 2020-01-01, its CF time axis 2020-01-02", or "" where every source of the band's
+// date gives the day of `name_date` (a date in the file's name), else of its first source.
+std::string date_conflict(GDALDataset& dataset, int band_index, std::optional<TimePoint> name_date) {
+  const auto sources = band_date_sources(dataset, band_index);
+  if (sources.empty() || (!name_date && sources.size() < 2)) return "";
+  const TimePoint used = name_date ? *name_date : sources.front().second;
+  const std::string used_from = name_date ? "its name" : "its " + sources.front().first;
+  for (const auto& [from, t] : sources) {
+    const CivilDate a = used.date(), b = t.date();
+    if (a.year != b.year || a.month != b.month || a.day != b.day)
+      return fmt::format("{} says {}, its {} {}", used_from, used.label(), from, t.label());
+  }
+  return "";
 }
 
 // "tmax_2019" -> "tmax": a file of several dates is named by the period it holds.
@@ -436,6 +479,13 @@ void require_not_half_published(const std::string& folder) {
                      "old; run the command (or the job) that writes this folder again");
 }
 
+std::string date_conflict_note(const Stack& stack) {
+  if (stack.date_conflicts() == 0) return "";
+  return fmt::format("dates disagree in {} band{} (first: {}); a file name's date is used, else the first of GRIB "
+                     "valid time, CF time axis, band description, DATE/TIME items (docs/inputs.md)",
+                     stack.date_conflicts(), stack.date_conflicts() == 1 ? "" : "s", stack.first_date_conflict());
+}
+
 std::string mixed_value_rules(const Stack& stack) {
   const ValueRules& rules = stack.rules();
   const Layer& first = stack.layers().front();
@@ -569,7 +619,15 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         first = false;
       }
       file_grids.emplace_back(file, grid);
-      for (const auto& [band, band_date] : bands) stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
+      for (const auto& [band, band_date] : bands) {
+        stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
+        // The name's date or the first source of the band's metadata wins (docs/inputs.md); a
+        // second source that says another day is noted.
+        const std::string conflict =
+            date_conflict(*dataset, band, time && date_from_name(file) ? time : std::nullopt);
+        if (!conflict.empty() && stack.date_conflicts_++ == 0)
+          stack.first_date_conflict_ = band_where(file, band) + ": " + conflict;
+      }
     }
     // Every file on the grid most of them share (the stack is refused where none has a majority):
     // judged by the first file, an oldest composite delivered on another grid had every good
@@ -651,8 +709,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       }
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {
-      for (const auto& [band, date] : band_dates(*dataset, input))
+      for (const auto& [band, date] : band_dates(*dataset, input)) {
         stack.layers_.push_back(layer_of(*dataset, input, band, date, rules));
+        const std::string conflict = date_conflict(*dataset, band, std::nullopt);
+        if (!conflict.empty() && stack.date_conflicts_++ == 0)
+          stack.first_date_conflict_ = band_where(input, band) + ": " + conflict;
+      }
     }
     // NETCDF:"file.nc":tas -> "tas"; HDF5:"f.h5"://ndvi -> "ndvi"; file.grib -> "file".
     const auto parts = detail::connection_parts(input);

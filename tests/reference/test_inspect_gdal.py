@@ -160,6 +160,41 @@ class InspectRealData(kt.TempDirTestCase):
         self.assertIn("scene_b.tif", done.stderr)
         self.assertIn("DATE '2021-02-30' is not a date", done.stderr)
 
+    def test_dates_that_disagree_are_noted(self):
+        # A band's description and its DATE item a day apart, and a file whose name says one day
+        # and whose band description another (invented files): one source wins by the documented
+        # order (docs/inputs.md) and a note names the first disagreement; there had been none.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "disagree")
+        os.makedirs(folder)
+        multi = os.path.join(folder, "scenes.tif")
+        ds = g.GetDriverByName("GTiff").Create(multi, 4, 4, 3, g.GDT_Float32)
+        ds.SetGeoTransform((0, 1, 0, 0, 0, -1))
+        for b in range(3):
+            band = ds.GetRasterBand(b + 1)
+            band.WriteArray(np.ones((4, 4), np.float32))
+            band.SetDescription(("2021-01-01", "2021-01-17", "2021-02-02")[b])
+            band.SetMetadataItem("DATE", ("2021-01-02", "2021-01-18", "2021-02-03")[b])
+        ds = None
+        done = kt.run_kalends(["inspect", multi, "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2021-01-01 .. 2021-02-02", done.stdout)
+        self.assertIn("dates disagree in 3 bands (first: %s band 1: its band description says 2021-01-01, "
+                      "its DATE item 2021-01-02)" % multi, done.stdout)
+        named = os.path.join(folder, "named")
+        os.makedirs(named)
+        for day, described in (("2021-01-01", "2021-01-01"), ("2021-01-17", "2021-01-19")):
+            kt.write_raster(os.path.join(named, "ndvi_%s.tif" % day), np.ones((4, 4), np.float32),
+                            geotransform=(0, 1, 0, 0, 0, -1), description=described)
+        done = kt.run_kalends(["inspect", os.path.join(named, "*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("2021-01-01 .. 2021-01-17", done.stdout)
+        self.assertIn("dates disagree in 1 band (first: %s band 1: its name says 2021-01-17, its band "
+                      "description 2021-01-19)" % os.path.join(named, "ndvi_2021-01-17.tif"), done.stdout)
+        # Agreeing sources: no note.
+        done = kt.run_kalends(["inspect", os.path.join(named, "ndvi_2021-01-01.tif"), "--quick"])
+        self.assertNotIn("dates disagree", done.stdout + done.stderr)
+
     def test_brackets_in_a_folder_name(self):
         # A folder named "survey[2021]": glob reads the brackets as a set of one character, so the
         # pattern matches nothing; the error says how to write them (glob(7)).
