@@ -51,6 +51,7 @@ struct CovariateSeries {
   int period_count = 0;  // periodic kinds: bands per year
   std::string unit, description;
   std::string caution;  // KALENDS_CAUTION where the layers carry one (suitability)
+  std::string note;     // how it was read, where a user may have expected otherwise (for a note)
   Grid grid;
 };
 

@@ -12,6 +12,7 @@
 #include <map>
 #include <optional>
 #include <regex>
+#include <set>
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
@@ -89,7 +90,8 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
       continue;
     }
     const std::string ext = it->path().extension().string();
-    if (it->is_regular_file() && (ext == ".tif" || ext == ".tiff" || ext == ".TIF" || ext == ".vrt" || ext == ".nc"))
+    if (it->is_regular_file() && (ext == ".tif" || ext == ".tiff" || ext == ".TIF" || ext == ".vrt" || ext == ".nc" ||
+                                    ext == ".grib" || ext == ".grb" || ext == ".grib2" || ext == ".grb2"))
       files.push_back(it->path());
   }
   std::sort(files.begin(), files.end());
@@ -101,14 +103,28 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
   }
 }
 
-// Whether every band of a multi-band raster carries a date that a stack reads (a CF time axis,
-// GRIB valid times, dates as band descriptions): such a file is a time series, not fixed bands.
-bool dated_bands(const std::string& path) {
+// A raster kalends did not write, opened as a stack: every band dated (a CF time axis, GRIB
+// valid times, dates as band descriptions or items, or the file name's date). Nothing where its
+// bands carry no date; the stack's error where a date is there and cannot be read (a calendar
+// other than the standard ones, a time before 1582, an impossible DATE item): read as undated
+// bands, such a file had matched every survey date to every band.
+std::optional<Stack> dated_stack(const std::string& path) {
   try {
-    return Stack::open(path).layers().size() > 1;
-  } catch (const InputError&) {
-    return false;
+    return Stack::open(path);
+  } catch (const InputError& e) {
+    if (e.reason().starts_with("time axis") || e.reason().starts_with("metadata ") ||
+        e.reason().find("is not a calendar date") != std::string::npos)
+      throw;
+    return std::nullopt;
   }
+}
+
+// Whether `variable` (a subdataset of a container file) lies on a georeferenced grid: CF bounds
+// (time_bnds, lat_bnds) and other tables are variables too, but no maps.
+bool georeferenced(const std::string& variable) {
+  GDALDatasetUniquePtr ds(GDALDataset::Open(variable.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
+  double gt[6];
+  return ds && ds->GetGeoTransform(gt) == CE_None;
 }
 
 }  // namespace
@@ -130,11 +146,13 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     return it->second;
   };
   // A stack as `kalends fill` reads it: a dated series, an entry per date (a file or a band).
+  std::set<std::string> stack_series;
   auto add_stack = [&](const Stack& stack, const std::string& name) {
     CovariateSeries& c = series_for(name);
     if (!c.files.empty())
       throw InputError(stack.input(), "would be the series '" + name + "', as " + c.files.front().path +
-                                          " is: give the folders' parent folder, or rename one of the files");
+                                          " is: give the files or folders apart, in two runs, or rename one");
+    stack_series.insert(name);
     c.kind = SeriesKind::dated;
     for (const Layer& layer : stack.layers()) c.files.push_back({layer.path, layer.time, 0, false, layer.band});
     c.grid = stack.grid();
@@ -144,32 +162,30 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
   // One raster file (or variable) named `stem`, its series named after `prefix` + stem.
   std::function<void(const Scanned&)> scan = [&](const Scanned& s) {
     const std::string prefix = s.group.empty() ? "" : s.group + ".";
-    if (s.stack) {
-      // A pattern is a stack whatever it holds; a variable is one where its bands carry dates.
-      std::optional<Stack> stack;
-      try {
-        stack = Stack::open(s.path);
-      } catch (const InputError&) {
-        if (detail::has_glob_characters(s.path)) throw;
-      }
-      if (stack && (stack->layers().size() > 1 || detail::has_glob_characters(s.path))) {
-        add_stack(*stack, prefix + stack->name());
-        return;
-      }
-      scan({s.path, s.group, detail::connection_parts(s.path)->variable()});
+    if (s.stack && detail::has_glob_characters(s.path)) {  // a pattern is a stack whatever it holds
+      const Stack stack = Stack::open(s.path);
+      add_stack(stack, prefix + stack.name());
       return;
     }
     GDALDatasetUniquePtr ds;
     try {
       ds = detail::open_raster(s.path);
     } catch (const InputError&) {
-      // A file of several variables (NetCDF, HDF5): each as if given by its name.
-      const std::vector<std::string> variables = detail::subdatasets_of(s.path);
+      // A file of several variables (NetCDF, HDF5): each as if given by its name, but for those
+      // on no georeferenced grid (CF bounds) where some are.
+      std::vector<std::string> variables = detail::subdatasets_of(s.path);
       if (variables.empty()) throw;
+      std::vector<std::string> maps;
       for (const std::string& variable : variables)
-        scan({variable, prefix + s.stem, "", true});
+        if (georeferenced(variable)) maps.push_back(variable);
+      if (!maps.empty()) variables = maps;
+      for (const std::string& variable : variables)
+        scan({variable, prefix + s.stem, detail::connection_parts(variable) ? detail::connection_parts(variable)->variable() : "", true});
       return;
     }
+    // A variable given by its connection string (NETCDF:"f.nc":tas) is named after the variable.
+    const std::string stem = s.stack && detail::connection_parts(s.path) ? detail::connection_parts(s.path)->variable()
+                                                                         : s.stem;
     const std::string date_text = item(*ds, "KALENDS_DATE");
     const std::string period_text = item(*ds, "KALENDS_PERIOD");
     const std::string year_text = item(*ds, "KALENDS_YEAR");
@@ -191,6 +207,9 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       c.description = item(*ds, "KALENDS_LAYER");
       if (c.description.empty()) c.description = descriptions[c.band - 1];
     };
+    // A raster kalends did not write: a time series where its bands carry dates.
+    const bool raw = date_text.empty() && period_text.empty() && year_text.empty() && item(*ds, "KALENDS_VERSION").empty();
+    const std::optional<Stack> raw_stack = raw ? dated_stack(s.path) : std::nullopt;
     // A fill output, or one carried to a study grid by `kalends grid` (which adds filled_share).
     const bool fill_bands = bands >= 3 && descriptions[0] == "value" && descriptions[1] == "sd" &&
                             descriptions[2] == "flag";
@@ -201,6 +220,11 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       if (!time) throw InputError(s.path, "KALENDS_DATE '" + date_text + "' is not a date");
       std::string stem = in_name ? trim_separators(s.stem.substr(0, in_name->position)) : s.stem;
       CovariateSeries& c = series_for(prefix + (stem.empty() ? "layer" : stem));
+      // Beside a raw stack of that name (evi.nc beside fill outputs evi_*.tif): both would be one
+      // series, whose dates would clash or interleave.
+      if (stack_series.count(c.name))
+        throw InputError(s.path, "would be the series '" + c.name + "', as " + c.files.front().path +
+                                     " is: give the files or folders apart, in two runs, or rename one");
       c.kind = SeriesKind::dated;
       c.has_sd_and_flag = fill_bands;
       if (!period_text.empty()) c.period = period_of_file();
@@ -230,12 +254,13 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         throw InputError(s.path, "a second synoptic file for the series '" + c.name + "'");
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
-    } else if (bands > 1 && period_text.empty() && year_text.empty() && item(*ds, "KALENDS_VERSION").empty() &&
-               dated_bands(s.path)) {
-      add_stack(Stack::open(s.path), prefix + s.stem);
+    } else if (raw_stack && raw_stack->layers().size() > 1) {
+      // A NetCDF file of one variable is named as a file of several is: file.variable.
+      const char* variable = ds->GetRasterBand(1)->GetMetadataItem("NETCDF_VARNAME");
+      add_stack(*raw_stack, prefix + (variable && !s.stack ? stem + "." + variable : stem));
     } else if ((period_text.empty() && year_text.empty()) || include_descriptors) {
       for (int b = 1; b <= bands; ++b) {
-        std::string name = prefix + s.stem;
+        std::string name = prefix + stem;
         // Plain rasters: bands by number; kalends descriptors by their description.
         const bool by_description = !(period_text.empty() && year_text.empty()) && !descriptions[b - 1].empty();
         if (bands > 1) name += "." + (by_description ? descriptions[b - 1] : "b" + std::to_string(b));
@@ -248,6 +273,11 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         c.band = b;
         c.files = {{s.path, {}, 0}};
         fill_common(c);
+        // One date is no series (its value would stand for a day alone): read for every survey
+        // date, and said.
+        if (raw_stack && bands == 1)
+          c.note = "its one band, dated " + raw_stack->layers().front().time.label() +
+                   ", is read as a fixed layer for every survey date";
       }
     }
   };

@@ -409,6 +409,15 @@ ExtractResult run_extract(const ExtractRequest& request) {
   r.series = select(std::move(found), request.layers);
   for (CovariateSeries& s : r.series) {
     set_date_marks(s, request.marks);
+    if (!s.note.empty()) r.notes.push_back(s.name + ": " + s.note);
+    // Hourly records: a survey day has many; which one it reads, and what a lag is, is said.
+    if (s.kind == SeriesKind::dated)
+      for (std::size_t i = 1; i < s.files.size(); ++i)
+        if (s.files[i].time.seconds / 86400 == s.files[i - 1].time.seconds / 86400) {
+          r.notes.push_back(s.name + ": several dates a day; a survey day reads the record that stands for its "
+                            "first moment (00:00 UTC), and each lag steps back one record, not one day");
+          break;
+        }
     // Monthly means stamped on the month's last day, read as starts, are matched to the month
     // after: said, as `seasons` and `fill --every` say it (a survey in June had taken May's).
     if (s.kind != SeriesKind::dated || request.marks != DateMarks::start) continue;

@@ -168,6 +168,13 @@ bool is_fill_output(const std::string& path) {
          dataset->GetMetadataItem("KALENDS_METHOD") != nullptr && dataset->GetMetadataItem("KALENDS_PERIOD") == nullptr;
 }
 
+bool is_flag_band(const std::string& path, int band) {
+  const GDALDatasetUniquePtr dataset = open_raster(path);
+  return band >= 1 && band <= dataset->GetRasterCount() &&
+         std::string(dataset->GetRasterBand(band)->GetDescription()) == "flag" &&
+         dataset->GetMetadataItem("KALENDS_METHOD") != nullptr;
+}
+
 std::string band_label(const std::string& path, int band) {
   std::string label;
   const GDALDatasetUniquePtr dataset = open_raster(path);

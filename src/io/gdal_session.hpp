@@ -64,6 +64,10 @@ std::vector<std::string> subdatasets_of(const std::string& path);
 /// calendar period mean, whose flag means something else).
 bool is_fill_output(const std::string& path);
 
+/// Whether band `band` of `path` is the flag band of a kalends fill output (its dated outputs and
+/// its calendar means alike): codes, not values.
+bool is_flag_band(const std::string& path, int band);
+
 /// A band's description made fit for a file name ("sd", "flag"), else "band<N>".
 std::string band_label(const std::string& path, int band);
 

@@ -150,8 +150,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   detail::require_out_apart_from(stack, request.out_dir, "input");
   // Means of flag codes would be numbers that mean nothing.
-  if (request.rules.band == 3 && detail::is_fill_output(stack.layers().front().path))
-    throw UsageError("--band 3", "is the flag band of the fill outputs in '" + request.input +
+  if (detail::is_flag_band(stack.layers().front().path, stack.layers().front().band))
+    throw UsageError("--band " + std::to_string(request.rules.band), "is the flag band of the fill outputs in '" + request.input +
                                      "' (codes 0-3, not values): band 1 holds the values, band 2 their sd");
   // A fill's outputs carry a flag band: what each period's value rests on is then known, and
   // written beside it (a year of gap-filled values had counted as a year like any other).

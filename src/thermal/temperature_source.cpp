@@ -148,8 +148,8 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
   for (const auto& [option, input] : inputs) {
     const auto own = in.rules_of.find(option.substr(2));  // "--day" -> "day"
     s.stacks.push_back(Stack::open(stack_input(input), own != in.rules_of.end() ? own->second : in.rules));
-    if (s.stacks.back().rules().band == 3 && detail::is_fill_output(s.stacks.back().layers().front().path))
-      throw UsageError("--band 3", "is the flag band of the fill outputs in '" + input +
+    if (detail::is_flag_band(s.stacks.back().layers().front().path, s.stacks.back().layers().front().band))
+      throw UsageError("--band " + std::to_string(s.stacks.back().rules().band), "is the flag band of the fill outputs in '" + input +
                                        "' (codes 0-3, not temperatures): band 1 holds the values");
     require_not_hourly(s.stacks.back(), option);
     const TemperatureUnit unit = unit_of(s.stacks.back(), in.unit, option);

@@ -569,7 +569,12 @@ class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
         good = os.path.join(self.tmp, "good")
         write_stack(good)
         filled = os.path.join(self.tmp, "filled")
-        kt.run_fill_ok(self, [os.path.join(good, "*.tif"), "--out", filled])
+        kt.run_fill_ok(self, [os.path.join(good, "*.tif"), "--out", filled, "--every", "1M"])
+        # The calendar means' flag band too (their flags mean something else, but are codes).
+        calendar = os.path.join(filled, "calendar-1M")
+        done = kt.run_kalends(["seasons", calendar, "--out", os.path.join(self.tmp, "out"), "--band", "3"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--band 3: is the flag band", done.stderr)
         for command, extra, name, keyword in (
                 ("seasons", ["--period", "365d"], "--period '365d'", "at most 121 days"),
                 ("seasons", ["--period", "122d"], "--period '122d'", "at least 4 periods a year"),

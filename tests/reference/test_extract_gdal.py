@@ -693,5 +693,119 @@ class RawStacks(kt.TempDirTestCase):
         self.assertEqual((rows["hole"]["evi"], rows["hole"]["evi.reason"]), ("", "nodata"))
 
 
+def write_cf(path, times, units, calendar="standard", variables=("tas",), bounds=False, nx=5, ny=4):
+    """A small CF NetCDF (invented values of a fictional district) by GDAL's multidimensional API:
+    time, lat, lon axes, one float32 variable per name holding 10 * band + row, and optionally a
+    time_bnds variable as CF section 7.1 has it (from memory)."""
+    g = kt.gdal()
+    ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path)
+    root = ds.GetRootGroup()
+    text = g.ExtendedDataType.CreateString()
+    f64 = g.ExtendedDataType.Create(g.GDT_Float64)
+    t_dim = root.CreateDimension("time", "TEMPORAL", None, len(times))
+    y_dim = root.CreateDimension("lat", "HORIZONTAL_Y", None, ny)
+    x_dim = root.CreateDimension("lon", "HORIZONTAL_X", None, nx)
+    t = root.CreateMDArray("time", [t_dim], f64)
+    t.Write(np.array(times, "f8"))
+    for key, value in (("units", units), ("calendar", calendar), ("axis", "T"), ("standard_name", "time")):
+        t.CreateAttribute(key, [], text).Write(value)
+    y = root.CreateMDArray("lat", [y_dim], f64)
+    y.Write(np.array([10.0 - 0.1 * i for i in range(ny)]))
+    y.CreateAttribute("units", [], text).Write("degrees_north")
+    x = root.CreateMDArray("lon", [x_dim], f64)
+    x.Write(np.array([20.0 + 0.1 * i for i in range(nx)]))
+    x.CreateAttribute("units", [], text).Write("degrees_east")
+    if bounds:
+        t.CreateAttribute("bounds", [], text).Write("time_bnds")
+        nv = root.CreateDimension("nv", None, None, 2)
+        b = root.CreateMDArray("time_bnds", [t_dim, nv], f64)
+        b.Write(np.array([[v - 0.5, v + 0.5] for v in times], "f8"))
+    for name in variables:
+        v = root.CreateMDArray(name, [t_dim, y_dim, x_dim], g.ExtendedDataType.Create(g.GDT_Float32))
+        v.Write(np.array([[[10.0 * k + r for _ in range(nx)] for r in range(ny)] for k in range(len(times))], "f4"))
+    ds = None
+
+
+class RawStacksAtTheEdges(kt.TempDirTestCase):
+    """Raw stacks whose time axis is unusual (invented CF files of a fictional district)."""
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        cls.points = os.path.join(cls.tmp, "points.csv")
+        with open(cls.points, "w") as f:
+            f.write("id,longitude,latitude,date\na,20.12,9.86,2001-01-20\nb,20.12,9.86,1990-05-01\n")
+
+    def extract(self, *inputs, expect=0):
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["extract"] + list(inputs) + ["--points", self.points, "--out", out])
+        self.assertEqual(done.returncode, expect, done.stderr)
+        return done, (kt.read_table(out) if expect == 0 else None)
+
+    def test_an_unsupported_calendar_is_refused_not_read_as_undated_bands(self):
+        # noleap: every survey had got every band as a "fixed" layer, exit 0.
+        path = os.path.join(self.tmp, "noleap.nc")
+        write_cf(path, [0, 16, 32], "days since 2001-01-01", calendar="noleap")
+        for given in (path, 'NETCDF:"%s":tas' % path):
+            done, _ = self.extract(given, expect=2)
+            self.assertIn("calendar 'noleap' is not supported", done.stderr)
+
+    def test_one_date_is_a_fixed_layer_and_said_so(self):
+        path = os.path.join(self.tmp, "one.nc")
+        write_cf(path, [10], "days since 2001-01-01")
+        done, table = self.extract('NETCDF:"%s":tas' % path)
+        self.assertIn("tas: its one band, dated 2001-01-11, is read as a fixed layer for every survey date",
+                      done.stderr)
+        self.assertEqual([r["tas.matched"] for r in table], ["fixed", "fixed"])
+
+    def test_bounds_are_no_layer_and_one_variable_is_named_as_many(self):
+        # time_bnds (no grid) had stopped the whole extract: "has no georeferencing".
+        both = os.path.join(self.tmp, "both.nc")
+        write_cf(both, [0, 16, 32], "days since 2001-01-01", variables=("tas", "pr"), bounds=True)
+        single = os.path.join(self.tmp, "single.nc")
+        write_cf(single, [0, 16, 32], "days since 2001-01-01")
+        done, table = self.extract(both, single)
+        columns = [c for c in table[0] if not c.endswith((".matched", ".reason"))][4:]
+        self.assertEqual(sorted(columns), ["both.pr", "both.tas", "single.tas"])
+        # 2001-01-20 lies in the composite of 2001-01-17 (band 2): 10 * 1 + row 1.
+        self.assertEqual(table[0]["single.tas.matched"], "2001-01-17")
+        self.assertEqual(float(table[0]["both.pr"]), 11.0)
+
+    def test_a_raw_stack_beside_fill_outputs_of_its_name_is_named(self):
+        # A raw evi.tif whose two bands carry dates beside a fill output evi_2001-01-01.tif: both
+        # would be the series 'evi'; it had said "the same date or year as".
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "clash")
+        os.makedirs(folder)
+        for name, bands, metadata in (("evi.tif", 2, {}),
+                                      ("evi_2001-01-01.tif", 1, {"KALENDS_DATE": "2001-01-01", "KALENDS_VERSION": "0"})):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, name), 5, 4, bands, g.GDT_Float32)
+            ds.SetGeoTransform((20.0, 0.1, 0, 10.0, 0, -0.1))
+            ds.SetProjection('GEOGCS["WGS 84",DATUM["WGS_1984",SPHEROID["WGS 84",6378137,298.257223563]],'
+                             'PRIMEM["Greenwich",0],UNIT["degree",0.0174532925199433]]')
+            for b in range(bands):
+                ds.GetRasterBand(b + 1).WriteArray(np.full((4, 5), b, np.float32))
+                if bands > 1:
+                    ds.GetRasterBand(b + 1).SetDescription(("2001-01-01", "2001-01-17")[b])
+            for key, value in metadata.items():
+                ds.SetMetadataItem(key, value)
+            ds = None
+        done, _ = self.extract(folder, expect=2)
+        self.assertIn("would be the series 'evi'", done.stderr)
+
+    def test_hourly_records_are_said_to_be_read_at_midnight(self):
+        grib = kt.shared_path("hourly-temperature", "era5-2mt-2019-03-uk.grib")
+        folder = os.path.join(self.tmp, "hourly")
+        os.makedirs(folder)
+        os.symlink(grib, os.path.join(folder, os.path.basename(grib)))
+        points = os.path.join(self.tmp, "uk.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\nm,-1.5,52.5,2019-03-10\n")
+        out = os.path.join(self.tmp, "uk.csv.out")
+        done = kt.run_kalends(["extract", folder, "--points", points, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("several dates a day; a survey day reads the record that stands for its first moment", done.stderr)
+        self.assertEqual(kt.read_table(out)[0]["era5-2mt-2019-03-uk.matched"], "2019-03-10")
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
