@@ -270,9 +270,24 @@ void remove_partials(const std::string& folder) {
   for (const fs::path& p : partials(folder)) fs::remove(p, ec);
 }
 
-// Whether every output a step recorded is still there.
-bool outputs_exist(const detail::StepRecord& record) {
-  return std::all_of(record.outputs.begin(), record.outputs.end(), [](const std::string& p) { return fs::exists(p); });
+// Whether `path` lies inside `folder` (lexically; both absolute).
+bool inside(const std::string& path, const std::string& folder) {
+  const fs::path relative = fs::path(path).lexically_relative(folder);
+  return !relative.empty() && *relative.begin() != "..";
+}
+
+// Whether a step's recorded outputs lie under another folder than `out`, none of them here: the
+// output folder was copied (`cp -a out copy`, the job's out changed to the copy). The originals
+// still exist, so without this the copy's steps had counted as done whatever it lacked.
+bool recorded_elsewhere(const detail::StepRecord& record, const std::string& out) {
+  return !record.outputs.empty() &&
+         std::none_of(record.outputs.begin(), record.outputs.end(), [&](const std::string& p) { return inside(p, out); });
+}
+
+// Whether every output a step recorded is still there, under `out`.
+bool outputs_exist(const detail::StepRecord& record, const std::string& out) {
+  return !recorded_elsewhere(record, out) &&
+         std::all_of(record.outputs.begin(), record.outputs.end(), [](const std::string& p) { return fs::exists(p); });
 }
 
 // Whether an output is one the user does not see (a tiled fill's .mosaic views): below a
@@ -286,6 +301,9 @@ bool hidden_output(const std::string& path, const std::string& out) {
 // "outputs missing", with how many of the step's recorded outputs a user sees are gone and the
 // first of them (relative to `out`), so that the user can tell a deleted file from a lost folder.
 std::string outputs_missing(const detail::StepRecord& record, const std::string& out) {
+  if (recorded_elsewhere(record, out))
+    return "outputs recorded in another folder (first: " + record.outputs.front() +
+           "): a copied output folder is redone, once";
   std::size_t missing = 0, seen = 0;
   std::string first;
   for (const std::string& p : record.outputs) {
@@ -578,7 +596,7 @@ class Runner {
           s.state = "never run";
         } else {
           s.state = "stale";
-          s.detail = !outputs_exist(*record) ? outputs_missing(*record, out_) : why_changed(*record, step, fingerprint);
+          s.detail = !outputs_exist(*record, out_) ? outputs_missing(*record, out_) : why_changed(*record, step, fingerprint);
         }
       } else if (record->status == "running") {
         // Marked when a run started it, and never done or failed: that run was stopped.
@@ -590,7 +608,7 @@ class Runner {
         s.outputs = int(std::count_if(record->outputs.begin(), record->outputs.end(), [&](const std::string& p) {
           return fs::exists(p) && !hidden_output(p, out_);  // a missing one is counted as missing
         }));
-        const bool complete = outputs_exist(*record);
+        const bool complete = outputs_exist(*record, out_);
         if (record->fingerprint == fingerprint && complete) {
           s.state = "done";
           s.detail = fmt::format("{} UTC, {:.1f} s", record->finished, record->seconds);
@@ -727,7 +745,7 @@ class Runner {
       else if (record->status == "failed") why = "failed" + (record->message.empty() ? "" : ": " + record->message);
       else if (record->status == "running") why = "interrupted (a run stopped while running it)";
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
-      else if (!outputs_exist(*record)) why = "outputs missing";
+      else if (!outputs_exist(*record, out_)) why = "outputs missing";
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
       reasons.insert(why);
     }
@@ -792,7 +810,7 @@ class Runner {
   void stitch_step(const JobStep& step, const detail::PlannedStep& planned, StepReport& report) {
     const std::string fingerprint = fingerprint_of(step);
     const auto record = db_->step(step.id);
-    const bool complete = record && outputs_exist(*record);
+    const bool complete = record && outputs_exist(*record, out_);
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";
@@ -1006,13 +1024,13 @@ class Runner {
 
   bool up_to_date(const JobStep& step) {
     const auto record = db_->step(step.id);
-    return record && record->status == "done" && record->fingerprint == fingerprint_of(step) && outputs_exist(*record);
+    return record && record->status == "done" && record->fingerprint == fingerprint_of(step) && outputs_exist(*record, out_);
   }
 
   void run_step(const JobStep& step, StepReport& report) {
     const std::string fingerprint = fingerprint_of(step);
     const auto record = db_->step(step.id);
-    const bool complete = record && outputs_exist(*record);
+    const bool complete = record && outputs_exist(*record, out_);
     if (record && record->status == "done" && record->fingerprint == fingerprint && complete) {
       report.action = StepReport::Action::up_to_date;
       report.reason = "up to date";

@@ -425,6 +425,29 @@ class JobFile(kt.TempDirTestCase):
         self.assertNotIn("lambda", done.stderr)
 
 
+class CopiedOutputFolder(kt.TempDirTestCase):
+    def test_a_copy_checks_its_own_files(self):
+        # `cp -a out copy` and the job run into the copy: the state database recorded the first
+        # folder's paths, so the copy's steps had counted as done while its own files were gone.
+        job = small_dated_job(os.path.join(self.tmp, "j"), '[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n')
+        out = os.path.join(self.tmp, "j", "out")
+        first = run(job)
+        self.assertEqual(first.returncode, 0, first.stdout + first.stderr)
+        copy = os.path.join(self.tmp, "j", "copy")
+        shutil.copytree(out, copy, symlinks=True)
+        lost = sorted(glob.glob(os.path.join(copy, "seasons", "*_year_2021.tif")))[0]
+        os.remove(lost)
+        status = subprocess.run([kt.KALENDS_BIN, "status", job, "--out", copy], capture_output=True, text=True)
+        self.assertIn("outputs recorded in another folder", status.stdout + status.stderr)
+        again = run(job, "--out", copy)
+        self.assertEqual(again.returncode, 0, again.stdout + again.stderr)
+        self.assertRegex(again.stdout, r"seasons\s+ran")
+        self.assertTrue(os.path.exists(lost))
+        # Now the copy's own: nothing more to do.
+        third = run(job, "--out", copy)
+        self.assertIn("nothing new, nothing done", third.stdout)
+
+
 class Incremental(kt.TempDirTestCase):
     def test_second_run_does_nothing_and_keeps_every_file(self):
         job = make_job(os.path.join(self.tmp, "a"))
