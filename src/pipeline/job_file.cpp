@@ -10,6 +10,8 @@
 #include <cstring>
 #include <fstream>
 #include <fmt/format.h>
+
+#include "kalends/qa_rule.hpp"
 #include <set>
 
 #include "io/file_glob.hpp"
@@ -203,7 +205,16 @@ Job read_job(const std::string& path) {
         const std::string k(key.str());
         if (k == "stack") input.stack = resolve(job.folder, checked_text(path, k, value, Type::text));
         else if (k == "qa") input.qa = resolve(job.folder, checked_text(path, k, value, Type::text));
-        else if (k == "keep") input.keep = checked_text(path, k, value, Type::text);
+        else if (k == "keep") {
+          input.keep = checked_text(path, k, value, Type::text);
+          // Parsed here, as the file is read: a typo had stopped the run at the step that reads
+          // the input, after the steps before it, and every later step with it.
+          try {
+            QaRule::parse(input.keep);
+          } catch (const UsageError& e) {
+            fail(path, value.source(), "'keep' '" + input.keep + "': " + e.reason());
+          }
+        }
         else if (k == "scale" || k == "offset") {
           const double number = std::stod(checked_text(path, k, value, Type::number));
           // As the command's --scale and --offset (Stack::open), here with the line.

@@ -371,6 +371,9 @@ class JobFile(kt.TempDirTestCase):
              ["'harmonics'", "applies to the harmonic method only"]),
             (good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [1.0, -0.2]'),
              lines.index('valid_range = [-0.2, 1.0]') + 1, ["'valid_range' = [1, -0.2]", "below the maximum"]),
+            # A QA rule that cannot be parsed: it had stopped the run at the step reading the input.
+            (good.replace('keep = "bits0-1 in 0,1"', 'keep = "bits0-1 on 0,1"'),
+             lines.index('keep = "bits0-1 in 0,1"') + 1, ["'keep' 'bits0-1 on 0,1'", "expected 'in'"]),
         ]
         n = len(lines)
         grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'
