@@ -39,6 +39,7 @@ struct SeasonsRequest {
 
 struct SeasonsSummary {
   int outputs_written = 0, outputs_unchanged = 0;
+  int outputs_removed = 0;  // an earlier run's year layers of years outside this run's
   int years = 0, periods = 0, files = 0, width = 0, height = 0;
   int first_year = 0, last_year = 0;
   double seconds = 0;

@@ -121,6 +121,7 @@ struct SuitabilityRequest {
 
 struct SuitabilitySummary {
   int outputs_written = 0, outputs_unchanged = 0;
+  int outputs_removed = 0;  // an earlier run's year layers of years outside this run's
   int years = 0, periods = 0, files = 0, width = 0, height = 0, first_year = 0, last_year = 0;
   std::string model;
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value

@@ -229,7 +229,8 @@ void require_out_apart_from(const Stack& stack, const std::string& out_dir, cons
 }
 
 std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name,
-                                            const std::vector<std::string>& kinds, int first_year, int last_year) {
+                                            const std::vector<std::string>& kinds, int first_year, int last_year,
+                                            int* files_removed) {
   std::set<int> removed;
   std::error_code ec;
   // "<name>_<kind>_YYYY.tif" exactly: another set whose name begins with this one's ("ndvi_sd",
@@ -252,7 +253,10 @@ std::vector<int> remove_year_layers_outside(const std::string& folder, const std
     if (text == metadata.end() || !metadata.count("KALENDS_VERSION")) continue;
     const int year = std::atoi(text->second.c_str());
     if (year >= first_year && year <= last_year) continue;
-    if (fs::remove(entry.path(), ec)) removed.insert(year);
+    if (fs::remove(entry.path(), ec)) {
+      removed.insert(year);
+      if (files_removed) ++*files_removed;
+    }
   }
   return {removed.begin(), removed.end()};
 }

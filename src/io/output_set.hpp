@@ -70,9 +70,10 @@ void require_out_apart_from(const Stack& stack, const std::string& out_dir, cons
 /// removes the rasters `<name>_<kind>_YYYY.tif` there whose KALENDS_YEAR lies outside that span, an
 /// earlier run's years that are no longer in the input (or in --years). Later steps would read
 /// them with the new layers as one set. Only kalends outputs carry KALENDS_YEAR. Returns the
-/// years removed.
+/// years removed; `files_removed`, where given, counts the files.
 std::vector<int> remove_year_layers_outside(const std::string& folder, const std::string& name,
-                                            const std::vector<std::string>& kinds, int first_year, int last_year);
+                                            const std::vector<std::string>& kinds, int first_year, int last_year,
+                                            int* files_removed = nullptr);
 
 class OutputSet {
  public:

@@ -466,7 +466,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
 
   SeasonsSummary summary;
   summary.stale_years_removed = detail::remove_year_layers_outside(
-      request.out_dir, name, {"year", "anomaly", "anomaly_standardised", "cycle", "observed"}, first_year, last_year);
+      request.out_dir, name, {"year", "anomaly", "anomaly_standardised", "cycle", "observed"}, first_year, last_year,
+      &summary.outputs_removed);
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;

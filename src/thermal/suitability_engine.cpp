@@ -338,9 +338,9 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   detail::check_temperature_counts(source, counts);
   outputs.set_keep_unchanged(request.keep_unchanged);
   outputs.commit();
-  const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, {"year", "summary"}, first_year, last_year);
-
   SuitabilitySummary summary;
+  const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, {"year", "summary"}, first_year,
+                                                                    last_year, &summary.outputs_removed);
   summary.dates_at_month_ends = dates_at_month_ends(times);
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();

@@ -451,6 +451,35 @@ class CopiedOutputFolder(kt.TempDirTestCase):
         self.assertIn("nothing new, nothing done", third.stdout)
 
 
+class YearsDropped(kt.TempDirTestCase):
+    def test_a_seasons_step_counts_the_year_layers_it_removes(self):
+        # years = "2021-2022" then "2022": the 2021 layers went with only a note; the step said
+        # "0 removed" in its JSON (operations.md: removed files are counted).
+        folder = os.path.join(self.tmp, "j")
+        os.makedirs(os.path.join(folder, "layers"))
+        for year in (2021, 2022):
+            for day in range(1, 366, 16):
+                date = datetime.date(year, 1, 1) + datetime.timedelta(days=day - 1)
+                kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
+                                np.full((4, 4), 0.3 + 0.001 * day, np.float32),
+                                geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        text = ('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "seasons"\n'
+                'do = "seasons"\ninput = "ndvi"\nyears = "2021-2022"\n')
+        with open(job, "w") as f:
+            f.write(text)
+        self.assertEqual(run(job).returncode, 0)
+        before = set(os.listdir(os.path.join(folder, "out", "seasons")))
+        with open(job, "w") as f:
+            f.write(text.replace('"2021-2022"', '"2022"'))
+        done = run(job, "--log", "json")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        gone = before - set(os.listdir(os.path.join(folder, "out", "seasons")))
+        self.assertTrue(gone and all("2021" in name for name in gone), gone)
+        finished = [e for e in map(json.loads, done.stdout.splitlines()) if e["event"] == "step_finished"]
+        self.assertEqual(finished[0]["removed"], len(gone))
+
+
 class Incremental(kt.TempDirTestCase):
     def test_second_run_does_nothing_and_keeps_every_file(self):
         job = make_job(os.path.join(self.tmp, "a"))

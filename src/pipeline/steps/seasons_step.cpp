@@ -42,7 +42,7 @@ StepKind seasons_step_kind() {
   kind.run = [](const StepContext& c) {
     const SeasonsRequest r = seasons_request(c);
     const SeasonsSummary s = run_seasons(r);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", seasons_notes(r, s)};
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", seasons_notes(r, s), s.outputs_removed};
   };
   return kind;
 }

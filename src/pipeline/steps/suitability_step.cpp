@@ -63,8 +63,7 @@ StepKind suitability_step_kind() {
   kind.run = [](const StepContext& c) {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution,
-                       s.notes};
+    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution, s.notes, s.outputs_removed};
   };
   return kind;
 }
