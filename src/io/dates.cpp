@@ -267,7 +267,17 @@ std::int64_t julian_minus_gregorian_days(int y, int m) {
 // A trailing time-zone offset of CF (UDUNITS) units' origin: " -06:00", " +0530", " -6".
 // Returns the offset in seconds east of UTC and cuts it off `origin`; 0 where there is none.
 std::int64_t cut_zone_offset(std::string_view& origin) {
-  const auto space = origin.find_last_of(' ');
+  for (std::string_view name : {" GMT", "GMT", " UTC", "UTC", "Z"})
+    if (origin.size() > name.size() + 10 && origin.ends_with(name)) {
+      origin.remove_suffix(name.size());
+      return 0;
+    }
+  // "2001-01-01T00:00:00-06:00": the offset follows the time without a space (ISO 8601).
+  auto space = origin.find_last_of(' ');
+  if (const auto t = origin.find('T', 10); t != std::string_view::npos) {
+    const auto sign = origin.find_last_of("+-");
+    if (sign != std::string_view::npos && sign > t) space = sign - 1;
+  }
   if (space == std::string_view::npos) return 0;
   std::string_view zone = origin.substr(space + 1);
   if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return 0;
@@ -290,7 +300,7 @@ std::int64_t cut_zone_offset(std::string_view& origin) {
     return 0;
   }
   if (hours > 14 || minutes > 59) return 0;
-  origin = origin.substr(0, space);
+  origin = origin.substr(0, origin[space] == ' ' ? space : space + 1);
   return sign * (hours * 3600 + minutes * 60);
 }
 
@@ -303,8 +313,11 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
   if (!mixed && calendar != "proleptic_gregorian")
     throw std::invalid_argument("calendar '" + std::string(calendar_name) +
                                 "' is not supported (standard, gregorian, proleptic_gregorian)");
-  const auto since = units.find(" since ");
-  if (since == std::string_view::npos)
+  // UDUNITS reads units in any case ("HOURS SINCE ..."; from memory).
+  std::string lower(units);
+  for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
+  const auto since = lower.find(" since ");
+  if (since == std::string::npos)
     throw std::invalid_argument("time units '" + std::string(units) + "' lack 'since'");
   std::string unit(units.substr(0, since));
   for (char& c : unit) c = char(std::tolower(static_cast<unsigned char>(c)));

@@ -259,7 +259,7 @@ std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& p
     if (eq == std::string::npos) continue;
     const std::string dim = item.substr(11, eq - 11);
     const char* units = dataset.GetMetadataItem((dim + "#units").c_str());
-    if (units == nullptr || std::strstr(units, " since ") == nullptr) continue;
+    if (units == nullptr || strcasestr(units, " since ") == nullptr) continue;
     const char* calendar = dataset.GetMetadataItem((dim + "#calendar").c_str());
     try {
       return cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");

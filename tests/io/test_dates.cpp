@@ -113,4 +113,10 @@ TEST_CASE("the standard calendar is Julian before 1582-10-15; zones and capitals
   CHECK(cf_time(0, "days since 2001-01-01 00:00:00 -06:00").label() == "2001-01-01T0600");
   CHECK(cf_time(0, "hours since 2001-01-01 12:00 +0530").label() == "2001-01-01T0630");
   CHECK(cf_time(1, "days since 2001-01-01 00:00:00 +00:00").label() == "2001-01-02");
+  // ISO 8601's offset right after the time, GMT, and units in capitals (UDUNITS; from memory).
+  CHECK(cf_time(0, "hours since 2001-01-01T00:00:00-06:00").label() == "2001-01-01T0600");
+  CHECK(cf_time(0, "hours since 2001-01-01T12:00+05:30").label() == "2001-01-01T0630");
+  CHECK(cf_time(1, "days since 2001-01-01 00:00:00 GMT").label() == "2001-01-02");
+  CHECK(cf_time(36, "HOURS SINCE 2000-01-01").label() == "2000-01-02T1200");
+  CHECK(cf_time(1, "Days Since 2000-01-01T00:00:00").label() == "2000-01-02");
 }
