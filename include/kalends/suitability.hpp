@@ -83,6 +83,9 @@ struct CalibrationSummary {
   double rmse_initial = NAN, rmse_fitted = NAN, rmse_mid_range = NAN;
   std::int64_t hours = 0;
   int pixel_days = 0, iterations = 0;
+  /// "b = 0.01 (the lowest the fit allows)" for each parameter the fit left on a bound of its
+  /// search range: the data would have it further out, and it may not carry to another site.
+  std::vector<std::string> at_bounds;
 };
 
 /// Fits a, b and c by least squares to every complete local solar day of the reference (each

@@ -133,6 +133,11 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
             "the constant (min + max) / 2 -> {}\n",
             s.fitted.a, s.fitted.b, s.fitted.c, s.pixel_days, s.hours, s.iterations, s.rmse_fitted,
             s.rmse_initial, s.initial.a, s.initial.b, s.initial.c, s.rmse_mid_range, c.out_file);
+      for (const std::string& bound : s.at_bounds)
+        std::fprintf(stderr,
+                     "note: %s: on a bound of the search range; the data would have it further out, so check "
+                     "the fit before carrying it to another site\n",
+                     bound.c_str());
       return;
     }
     DiurnalRequest& r = o->request;

@@ -358,6 +358,11 @@ CalibrationSummary run_calibration(const CalibrationRequest& request) {
   }
   summary.iterations = iteration;
   summary.fitted = as_parameters(x);
+  const ParameterRange ranges[] = {diurnal_a_range, diurnal_b_range, diurnal_c_range};
+  for (int k = 0; k < 3; ++k)
+    if (x[k] <= ranges[k].low || x[k] >= ranges[k].high)
+      summary.at_bounds.push_back(fmt::format("{} = {:g} (the {} the fit allows)", "abc"[k], x[k],
+                                              x[k] <= ranges[k].low ? "lowest" : "highest"));
   summary.rmse_fitted = std::sqrt(cost / double(r.size()));
   summary.rmse_mid_range = std::sqrt(naive_squares / double(r.size()));
   summary.hours = std::int64_t(r.size());
@@ -374,6 +379,8 @@ CalibrationSummary run_calibration(const CalibrationRequest& request) {
       "{:.4f} K for the constant (min + max) / 2\n",
       request.reference, summary.hours, summary.rmse_fitted, summary.rmse_initial,
       summary.rmse_mid_range);
+  for (const std::string& bound : summary.at_bounds)
+    text += "# on a bound of the search: " + bound + "; the data would have it further out\n";
   if (!request.command_line.empty()) text += "# command: " + request.command_line + "\n";
   text += table.to_toml("diurnal");
   detail::write_text_atomically(request.out_file, text);

@@ -292,6 +292,11 @@ class DiurnalEra5(kt.TempDirTestCase):
         with open(params) as f:
             text = f.read()
         self.assertIn("[diurnal]", text)
+        # b ends on the lowest value the search allows (methods.md): said on the console and in the
+        # file, where it had passed unremarked.
+        self.assertEqual(float(text.split("\nb = ")[1].split()[0]), 0.01)
+        self.assertIn("note: b = 0.01 (the lowest the fit allows): on a bound", done.stderr)
+        self.assertIn("# on a bound of the search: b = 0.01", text)
         fitted_out = os.path.join(self.tmp, "fitted")
         done = kt.run_kalends(["-q", "diurnal", "--tmin", os.path.join(self.input, "tmin_*.tif"),
                                "--tmax", os.path.join(self.input, "tmax_*.tif"), "--units", "celsius",
