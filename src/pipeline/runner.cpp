@@ -270,6 +270,38 @@ void remove_partials(const std::string& folder) {
   for (const fs::path& p : partials(folder)) fs::remove(p, ec);
 }
 
+// "lambda 10 -> 20; reach 183 (new); every 1M (gone)" between two parameter descriptions
+// ("key<TAB>value" lines); "" where the earlier one is unknown (a state of an earlier version)
+// or they agree.
+std::string changed_parameters(const std::string& before, const std::string& now) {
+  if (before.empty()) return "";
+  const auto parse = [](const std::string& text) {
+    std::map<std::string, std::string> pairs;
+    std::size_t at = 0;
+    while (at < text.size()) {
+      const std::size_t end = std::min(text.find('\n', at), text.size());
+      const std::string line = text.substr(at, end - at);
+      if (const auto tab = line.find('\t'); tab != std::string::npos) pairs[line.substr(0, tab)] = line.substr(tab + 1);
+      at = end + 1;
+    }
+    return pairs;
+  };
+  const auto old_pairs = parse(before), new_pairs = parse(now);
+  const auto shown = [](const std::string& v) { return v.empty() ? std::string("(none)") : v; };
+  std::vector<std::string> changes;
+  for (const auto& [key, value] : new_pairs) {
+    const auto it = old_pairs.find(key);
+    if (it == old_pairs.end()) changes.push_back(key + " " + shown(value) + " (new)");
+    else if (it->second != value) changes.push_back(key + " " + shown(it->second) + " -> " + shown(value));
+  }
+  for (const auto& [key, value] : old_pairs)
+    if (!new_pairs.count(key)) changes.push_back(key + " " + shown(value) + " (gone)");
+  std::string text;
+  for (std::size_t i = 0; i < changes.size() && i < 4; ++i) text += (text.empty() ? "" : "; ") + changes[i];
+  if (changes.size() > 4) text += fmt::format("; {} more", changes.size() - 4);
+  return text;
+}
+
 // Whether `path` lies inside `folder` (lexically; both absolute).
 bool inside(const std::string& path, const std::string& folder) {
   const fs::path relative = fs::path(path).lexically_relative(folder);
@@ -840,7 +872,8 @@ class Runner {
     if (const char* caution = detail::find_step_kind(step.kind)->caution) report.caution = caution;
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
-    db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, detail::files_below(folder), inputs_of(step)});
+    db_->step_done({step.id, step.kind, fingerprint, "done", "", "", report.seconds, detail::files_below(folder),
+                    inputs_of(step), parameters_described(step)});
   }
 
   // Fingerprints: "<parameters>:<what it reads>", so a change can be explained. A shard's
@@ -887,6 +920,25 @@ class Runner {
             reads += "|" + std::string(key.name) + "=" + checksum_of(file, db_.get(), scan_);
         }
     return detail::text_checksum(params) + ":" + detail::text_checksum(reads);
+  }
+
+  // The parameters as "key<TAB>value" lines, kept beside the fingerprint to say which changed:
+  // the program version, the step's keys, and the rules of the job inputs it reads.
+  std::string parameters_described(const JobStep& step) {
+    std::string text = std::string("program version\t") + KALENDS_VERSION + "\n";
+    for (const auto& [k, v] : step.options) text += k + "\t" + v + "\n";
+    for (const std::string& name : step.inputs)
+      if (auto in = job_.inputs.find(name); in != job_.inputs.end()) {
+        const JobInput& input = in->second;
+        const std::string key = "inputs." + name + ".";
+        text += key + "stack\t" + input.stack + "\n" + key + "qa\t" + input.qa + "\n" + key + "keep\t" + input.keep + "\n";
+        const std::pair<const char*, std::optional<double>> numbers[] = {
+            {"scale", input.scale}, {"offset", input.offset}, {"nodata", input.nodata},
+            {"valid_range minimum", input.valid_min}, {"valid_range maximum", input.valid_max}};
+        for (const auto& [what, v] : numbers) text += key + what + "\t" + (v ? fmt::format("{:g}", *v) : "") + "\n";
+        text += key + "band\t" + std::to_string(input.band) + "\n" + key + "qa_band\t" + std::to_string(input.qa_band) + "\n";
+      }
+    return text;
   }
 
   std::string source_fingerprint(const std::string& name) {
@@ -988,10 +1040,12 @@ class Runner {
     if (before.empty()) return "failed last time";
     const bool params = before.substr(0, 16) != now.substr(0, 16);
     const bool reads = before.substr(17) != now.substr(17);
-    std::string why;
-    if (params) why = "parameters or program version changed";
+    // Which parameters, where the last run kept them: "lambda 10 -> 20; every 1M -> 16d" (a job
+    // input's rules among them: inputs.ndvi.keep).
+    std::string why = changed_parameters(record.parameters, parameters_described(step));
+    if (why.empty() && params) why = "parameters or program version changed";
     if (reads) {
-      std::string what = "its inputs changed";
+      std::string what;
       if (!record.inputs.empty()) {
         const std::map<std::string, std::string> files = inputs_of(step);
         int added = 0, changed = 0, removed = 0;
@@ -1003,7 +1057,9 @@ class Runner {
           what = fmt::format("its inputs changed ({} new, {} changed{} files)", added, changed,
                              removed ? fmt::format(", {} removed", removed) : "");
       }
-      why += (why.empty() ? "" : "; ") + what;
+      // Files unchanged and a rule named: the rule is the change.
+      if (what.empty() && why.find("inputs.") == std::string::npos) what = "its inputs changed";
+      if (!what.empty()) why += (why.empty() ? "" : "; ") + what;
     }
     return why.empty() ? "outputs missing" : why;
   }
@@ -1174,7 +1230,7 @@ class Runner {
     std::map<std::string, std::string> inputs_read = inputs_at_start;
     for (const std::string& left_out : excluded_) inputs_read.erase(left_out);
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
-                            detail::files_below(folder), inputs_read};
+                            detail::files_below(folder), inputs_read, parameters_described(step)};
     db_->step_done(done);
   }
 

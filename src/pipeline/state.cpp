@@ -109,6 +109,7 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     exec("CREATE TABLE IF NOT EXISTS outputs (path TEXT PRIMARY KEY, step TEXT)");
     exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
     exec("CREATE TABLE IF NOT EXISTS step_inputs (step TEXT, path TEXT, checksum TEXT, PRIMARY KEY (step, path))");
+    exec("CREATE TABLE IF NOT EXISTS step_parameters (step TEXT PRIMARY KEY, parameters TEXT)");
   }
 }
 
@@ -164,6 +165,11 @@ std::optional<StepRecord> StateDatabase::step(const std::string& id) const {
     i.bind(1, id);
     while (i.step()) r.inputs[i.text(0)] = i.text(1);
   }
+  if (sqlite3_exec(db_, "SELECT 1 FROM step_parameters LIMIT 0", nullptr, nullptr, nullptr) == SQLITE_OK) {
+    Statement p(db_, "SELECT parameters FROM step_parameters WHERE step = ?", path_);
+    p.bind(1, id);
+    if (p.step()) r.parameters = p.text(0);
+  }
   return r;
 }
 
@@ -190,6 +196,9 @@ void StateDatabase::step_done(const StepRecord& record) {
       in.bind(1, record.id).bind(2, file).bind(3, checksum);
       in.step();
     }
+    Statement p(db_, "INSERT OR REPLACE INTO step_parameters (step, parameters) VALUES (?, ?)", path_);
+    p.bind(1, record.id).bind(2, record.parameters);
+    p.step();
     exec("COMMIT");
   } catch (...) {
     rollback();

@@ -23,6 +23,9 @@ struct StepRecord {
   double seconds = 0;
   std::vector<std::string> outputs{};
   std::map<std::string, std::string> inputs{};  // input files read directly -> checksum
+  /// What the parameters were ("key<TAB>value" lines: the program version, the step's keys and
+  /// its job inputs' rules), to name what changed; empty in databases of earlier versions.
+  std::string parameters{};
 };
 
 class StateDatabase {

@@ -305,7 +305,7 @@ class JobFile(kt.TempDirTestCase):
             lock.flush()
             done = kt.run_kalends(["status", job])
         fill = [l for l in done.stdout.splitlines() if l.startswith("fill ")][0]
-        self.assertRegex(fill, r"running +a run \(pid 4243\) is going now; before it: stale \(parameters")
+        self.assertRegex(fill, r"running +a run \(pid 4243\) is going now; before it: stale \(lambda auto -> 50\)")
         with open(job, "w") as f:
             f.write(text)
         self.assertEqual(run(job).returncode, 0)
@@ -480,6 +480,29 @@ class YearsDropped(kt.TempDirTestCase):
         self.assertEqual(finished[0]["removed"], len(gone))
 
 
+class ReasonsNameTheChange(kt.TempDirTestCase):
+    def test_a_changed_key_is_named_with_its_values(self):
+        # The reason had been "parameters or program version changed" for any key, and "its
+        # inputs changed" for an input's rule, whatever was edited.
+        job = small_dated_job(os.path.join(self.tmp, "j"))
+        with open(job) as f:
+            text = f.read()
+        self.assertEqual(run(job).returncode, 0)
+        with open(job, "w") as f:
+            f.write(text + 'lambda = "10"\n')
+        done = run(job, "--dry-run")
+        self.assertRegex(done.stdout, r"fill\s+would run\s+lambda 10 \(new\)")
+        self.assertEqual(run(job).returncode, 0)
+        with open(job, "w") as f:
+            f.write(text.replace('stack = "layers/*.tif"', 'stack = "layers/*.tif"\nvalid_range = [-1, 1]')
+                    + 'lambda = "20"\n')
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        for words in ("inputs.ndvi.valid_range maximum (none) -> 1", "inputs.ndvi.valid_range minimum (none) -> -1",
+                      "lambda 10 -> 20"):
+            self.assertIn(words, status.stdout)
+        self.assertNotIn("its inputs changed", status.stdout)
+
+
 class Incremental(kt.TempDirTestCase):
     def test_second_run_does_nothing_and_keeps_every_file(self):
         job = make_job(os.path.join(self.tmp, "a"))
@@ -526,7 +549,7 @@ class Incremental(kt.TempDirTestCase):
         make_job(os.path.join(self.tmp, "a"), lam="100")
         dry = run(job, "--dry-run")
         self.assertIn("would run", dry.stdout)
-        self.assertIn("parameters", dry.stdout)
+        self.assertIn("lambda auto -> 100", dry.stdout)  # the key and its values, named
         self.assertEqual(mtimes(out), before)
         fourth = run(job)
         self.assertEqual(fourth.returncode, 0, fourth.stderr)
@@ -1471,7 +1494,7 @@ class Faults(kt.TempDirTestCase):
         status = kt.run_kalends(["status", self.job, "--out", out])
         line = [l for l in status.stdout.splitlines() if l.startswith("fill")][0]
         self.assertIn("interrupted", line)
-        self.assertIn("before that: parameters or program version changed", line)
+        self.assertIn("before that: lambda 2.5 -> auto", line)
 
     def test_status_reads_a_state_left_mid_transaction(self):
         # A process killed inside a transaction of the state database leaves a hot journal,
