@@ -58,8 +58,8 @@ std::optional<std::string> impossible_date_in_name(std::string_view name);
 /// Parses "YYYY-MM-DD" optionally followed by "[T ]hh:mm[:ss][Z]".
 std::optional<TimePoint> parse_iso_time(std::string_view text);
 
-/// A CF-conventions time value: `value` in `units` ("days since 1950-01-01 00:00:00", an
-/// origin with a time-zone offset such as " -06:00" taken as local time). Only the standard
+/// A CF-conventions time value: `value` in `units` ("days since 1950-01-01 00:00:00"; an
+/// origin's time-zone offset, " -06:00", is read and the times kept on that zone's clock). Only the standard
 /// (gregorian) and proleptic_gregorian calendars are accepted, in any case; the standard one is
 /// Julian before 1582-10-15, so an earlier origin is a Julian date and an earlier time is
 /// refused. Throws std::invalid_argument with the reason otherwise.

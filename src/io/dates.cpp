@@ -267,11 +267,15 @@ std::int64_t julian_minus_gregorian_days(int y, int m) {
 // A trailing time-zone offset of CF (UDUNITS) units' origin: " -06:00", " +0530", " -6".
 // Returns the offset in seconds east of UTC and cuts it off `origin`; 0 where there is none.
 std::int64_t cut_zone_offset(std::string_view& origin) {
-  for (std::string_view name : {" GMT", "GMT", " UTC", "UTC", "Z"})
-    if (origin.size() > name.size() + 10 && origin.ends_with(name)) {
+  for (std::string_view name : {" GMT", "GMT", " UTC", "UTC", "Z"}) {
+    if (origin.size() < name.size() + 5) continue;
+    const std::string_view tail = origin.substr(origin.size() - name.size());
+    if (std::equal(tail.begin(), tail.end(), name.begin(), name.end(),
+                   [](char a, char b) { return std::toupper(static_cast<unsigned char>(a)) == b; })) {
       origin.remove_suffix(name.size());
       return 0;
     }
+  }
   // "2001-01-01T00:00:00-06:00": the offset follows the time without a space (ISO 8601).
   auto space = origin.find_last_of(' ');
   if (const auto t = origin.find('T', 10); t != std::string_view::npos) {
@@ -334,11 +338,13 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
     throw std::invalid_argument("time unit '" + unit + "' is not supported");
   std::string_view origin_text = units.substr(since + 7);
   while (!origin_text.empty() && origin_text.back() == ' ') origin_text.remove_suffix(1);
-  // "days since 2001-01-01 00:00:00 -06:00": the origin is local time, 6 hours behind UTC.
-  const std::int64_t zone = cut_zone_offset(origin_text);
+  // "days since 2001-01-01 00:00:00 -06:00": times on the zone's own clock. They are kept so,
+  // not moved to UTC: a daily or monthly stamp at local midnight keeps its day (at +05:00 it had
+  // become the day before, and each month's value the month before's).
+  cut_zone_offset(origin_text);
   const auto origin = parse_iso_time(origin_text);
   if (!origin) throw std::invalid_argument("time origin in '" + std::string(units) + "' unreadable");
-  std::int64_t origin_seconds = origin->seconds - zone;
+  std::int64_t origin_seconds = origin->seconds;
   // The standard (mixed) calendar is Julian before 1582-10-15 (CF conventions, section 4.4.1):
   // an origin such as "hours since 1-1-1" is a Julian date, two days before the proleptic
   // Gregorian one of the same name.

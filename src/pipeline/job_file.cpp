@@ -44,7 +44,8 @@ const char* type_name(Type t) {
   return "?";
 }
 
-std::string number_text(double v) { return fmt::format("{:.17g}", v); }
+// The shortest text that reads back as the same number (0.003, not 0.0030000000000000001).
+std::string number_text(double v) { return fmt::format("{}", v); }
 
 // Reads the step's values as it would run them, with every input resolved to its own name, so
 // that a value it cannot use fails here, naming the key and its line. The kinds name options
@@ -243,6 +244,8 @@ Job read_job(const std::string& path) {
         fail(path, node.source(), "[inputs." + input.name + "]: bands are numbered from 1");
       if (!input.qa.empty() && input.keep.empty())
         fail(path, node.source(), "[inputs." + input.name + "] has 'qa' but no 'keep' rule");
+      if (input.qa.empty() && !input.keep.empty())
+        fail(path, node.source(), "[inputs." + input.name + "] has a 'keep' rule but no 'qa' stack to apply it to");
       job.inputs[input.name] = input;
     }
   }

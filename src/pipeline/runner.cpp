@@ -302,9 +302,14 @@ std::string changed_parameters(const std::string& before, const std::string& now
   return text;
 }
 
-// Whether `path` lies inside `folder` (lexically; both absolute).
+// Whether `path` lies inside `folder`, both with their links resolved: a folder reached through
+// a symbolic link is the same folder (compared as typed, it had counted as a copy, redone whole
+// whenever the path changed).
 bool inside(const std::string& path, const std::string& folder) {
-  const fs::path relative = fs::path(path).lexically_relative(folder);
+  std::error_code ec;
+  const fs::path real_folder = fs::weakly_canonical(folder, ec);
+  const fs::path real_path = fs::weakly_canonical(path, ec);
+  const fs::path relative = real_path.lexically_relative(real_folder);
   return !relative.empty() && *relative.begin() != "..";
 }
 

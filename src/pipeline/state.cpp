@@ -109,7 +109,7 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     exec("CREATE TABLE IF NOT EXISTS outputs (path TEXT PRIMARY KEY, step TEXT)");
     exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
     exec("CREATE TABLE IF NOT EXISTS step_inputs (step TEXT, path TEXT, checksum TEXT, PRIMARY KEY (step, path))");
-    exec("CREATE TABLE IF NOT EXISTS step_parameters (step TEXT PRIMARY KEY, parameters TEXT)");
+    exec("CREATE TABLE IF NOT EXISTS step_parameters (step TEXT PRIMARY KEY, fingerprint TEXT, parameters TEXT)");
   }
 }
 
@@ -166,9 +166,11 @@ std::optional<StepRecord> StateDatabase::step(const std::string& id) const {
     while (i.step()) r.inputs[i.text(0)] = i.text(1);
   }
   if (sqlite3_exec(db_, "SELECT 1 FROM step_parameters LIMIT 0", nullptr, nullptr, nullptr) == SQLITE_OK) {
-    Statement p(db_, "SELECT parameters FROM step_parameters WHERE step = ?", path_);
+    // Only those written with the fingerprint recorded now: an earlier version of kalends may
+    // have run the step since, and left them behind.
+    Statement p(db_, "SELECT fingerprint, parameters FROM step_parameters WHERE step = ?", path_);
     p.bind(1, id);
-    if (p.step()) r.parameters = p.text(0);
+    if (p.step() && p.text(0) == r.fingerprint) r.parameters = p.text(1);
   }
   return r;
 }
@@ -196,8 +198,8 @@ void StateDatabase::step_done(const StepRecord& record) {
       in.bind(1, record.id).bind(2, file).bind(3, checksum);
       in.step();
     }
-    Statement p(db_, "INSERT OR REPLACE INTO step_parameters (step, parameters) VALUES (?, ?)", path_);
-    p.bind(1, record.id).bind(2, record.parameters);
+    Statement p(db_, "INSERT OR REPLACE INTO step_parameters (step, fingerprint, parameters) VALUES (?, ?, ?)", path_);
+    p.bind(1, record.id).bind(2, record.fingerprint).bind(3, record.parameters);
     p.step();
     exec("COMMIT");
   } catch (...) {

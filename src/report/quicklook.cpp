@@ -129,4 +129,28 @@ Quicklook flag_quicklook(const std::string& path, int band, int max_size) {
   return q;
 }
 
+std::array<unsigned char, 3> class_colour(int k, int n) {
+  const Rgb c = viridis(n > 1 ? double(k) / (n - 1) : 0.5);
+  return {c[0], c[1], c[2]};
+}
+
+Quicklook class_quicklook(const std::string& path, int band, int classes, int max_size) {
+  const Reduced r = read_reduced(path, {band}, max_size);
+  Quicklook q;
+  q.width = r.width;
+  q.height = r.height;
+  q.low = 0;
+  q.high = classes - 1;
+  std::vector<unsigned char> rgba(r.values.size() * 4, 0);
+  for (std::size_t i = 0; i < r.values.size(); ++i) {
+    const double v = r.values[i];
+    if (!std::isfinite(v) || v != std::floor(v) || v < 0 || v >= classes) continue;
+    ++q.cells_with_value;
+    const auto c = class_colour(int(v), classes);
+    rgba[4 * i] = c[0], rgba[4 * i + 1] = c[1], rgba[4 * i + 2] = c[2], rgba[4 * i + 3] = 255;
+  }
+  q.png_base64 = png_base64(rgba, r.width, r.height);
+  return q;
+}
+
 }  // namespace kalends::detail

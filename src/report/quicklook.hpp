@@ -2,6 +2,7 @@
 // coloured and encoded as a PNG through GDAL's MEM and PNG drivers.
 #pragma once
 
+#include <array>
 #include <string>
 #include <vector>
 
@@ -20,6 +21,13 @@ Quicklook continuous_quicklook(const std::string& path, const std::vector<int>& 
 
 /// A fill flag band coloured by category (colour_ramp.hpp).
 Quicklook flag_quicklook(const std::string& path, int band, int max_size);
+
+/// A band of classes 0 .. classes - 1 (a compare class raster), each its own colour
+/// (class_colour); a value outside them is transparent.
+Quicklook class_quicklook(const std::string& path, int band, int classes, int max_size);
+
+/// The colour of class k of n: evenly along viridis.
+std::array<unsigned char, 3> class_colour(int k, int n);
 
 /// Base64 of a PNG of RGBA pixels (row-major, 4 bytes a pixel).
 std::string png_base64(const std::vector<unsigned char>& rgba, int width, int height);

@@ -90,6 +90,37 @@ std::string flag_legend() {
   return out + "</div>";
 }
 
+// A band's classes from its CLASS_MEANINGS item ("0: under 25 % ..., 1: 25-50 %, 2: ..."), in
+// order from 0; empty where it has none or they are not 0, 1, 2, ...
+std::vector<std::string> class_meanings(const std::string& path, int band) {
+  std::vector<std::string> classes;
+  GDALDatasetUniquePtr ds = open_raster(path);
+  if (band < 1 || band > ds->GetRasterCount()) return classes;
+  const char* text = ds->GetRasterBand(band)->GetMetadataItem("CLASS_MEANINGS");
+  if (!text) return classes;
+  const std::string all = text;
+  // Each class starts with "<k>: " at the start or after ", ".
+  std::size_t at = 0;
+  while (at < all.size()) {
+    const std::string label = std::to_string(classes.size()) + ": ";
+    if (all.compare(at, label.size(), label) != 0) return {};
+    const std::size_t from = at + label.size();
+    const std::string next = ", " + std::to_string(classes.size() + 1) + ": ";
+    const std::size_t end = all.find(next, from);
+    classes.push_back(all.substr(from, end == std::string::npos ? std::string::npos : end - from));
+    at = end == std::string::npos ? all.size() : end + 2;
+  }
+  return classes;
+}
+
+std::string class_legend(const std::vector<std::string>& classes) {
+  std::string out = "<div class=\"flag-legend\">";
+  for (std::size_t k = 0; k < classes.size(); ++k)
+    out += fmt::format("<span><i style=\"background:{}\"></i>{} {}</span>",
+                       hex(class_colour(int(k), int(classes.size()))), k, escape(classes[k]));
+  return out + "</div>";
+}
+
 std::string image(const Quicklook& q, const std::string& alt) {
   return fmt::format("<img class=\"map\" width=\"{}\" height=\"{}\" alt=\"{}\" src=\"data:image/png;base64,{}\">",
                      q.width, q.height, escape(alt), q.png_base64);
@@ -486,7 +517,12 @@ ReportSummary run_report(const ReportRequest& request) {
         break;
       case SeriesKind::fixed: bands = {s.band}; shown = "band " + std::to_string(s.band); break;
     }
-    const Quicklook q = continuous_quicklook(file.path, bands, request.map_size);
+    // A class raster (compare's year-specific classes) by class, with its meanings; it had been
+    // drawn on a continuous ramp as if 1.5 meant something.
+    const std::vector<std::string> classes =
+        s.kind == SeriesKind::fixed ? class_meanings(file.path, s.band) : std::vector<std::string>{};
+    const Quicklook q = classes.empty() ? continuous_quicklook(file.path, bands, request.map_size)
+                                        : class_quicklook(file.path, s.band, int(classes.size()), request.map_size);
     // Where and when the layer is: what a reader needs before reading values off it.
     std::string where = fmt::format("{} x {} px", s.grid.width, s.grid.height);
     if (s.grid.has_geotransform) {
@@ -500,12 +536,13 @@ ReportSummary run_report(const ReportRequest& request) {
       where += fmt::format("; {} to {}", s.files.front().time.label(), s.files.back().time.label());
     if (s.kind == SeriesKind::year_period)
       where += fmt::format("; years {} to {}", s.files.front().year, s.files.back().year);
-    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {}; ramp from the 2nd to the 98th percentile<br><span class=\"note\">{}</span></figcaption>{}",
+    maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {}; {}<br><span class=\"note\">{}</span></figcaption>{}",
                         image(q, s.name), escape(s.name), escape(s.description), escape(shown),
                         // A stack's dates may be bands of one file.
                         s.kind == SeriesKind::dated ? fmt::format("{} dates", s.files.size())
                                                     : fmt::format("{} files", s.files.size()),
-                        escape(where), legend_svg(q, s.unit, summary.maps));
+                        classes.empty() ? "ramp from the 2nd to the 98th percentile" : "a colour per class",
+                        escape(where), classes.empty() ? legend_svg(q, s.unit, summary.maps) : class_legend(classes));
     if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
     maps += "</figure>\n";
     ++summary.maps;

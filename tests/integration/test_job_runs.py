@@ -374,6 +374,11 @@ class JobFile(kt.TempDirTestCase):
             # A QA rule that cannot be parsed: it had stopped the run at the step reading the input.
             (good.replace('keep = "bits0-1 in 0,1"', 'keep = "bits0-1 on 0,1"'),
              lines.index('keep = "bits0-1 in 0,1"') + 1, ["'keep' 'bits0-1 on 0,1'", "expected 'in'"]),
+            # A fill step's own rule too, and a rule with no QA stack to apply it to.
+            (good.replace('every = "1M"', 'every = "1M"\nkeep = "bitz0-1 in 0"'), lines.index('every = "1M"') + 2,
+             ["'keep' 'bitz0-1 in 0'"]),
+            (good.replace('qa = "stack/qa/qa_*.tif"\n', ''), lines.index('[inputs.ndvi]') + 1,
+             ["'keep' rule but no 'qa' stack"]),
         ]
         n = len(lines)
         grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'
@@ -449,6 +454,13 @@ class CopiedOutputFolder(kt.TempDirTestCase):
         # Now the copy's own: nothing more to do.
         third = run(job, "--out", copy)
         self.assertIn("nothing new, nothing done", third.stdout)
+        # The same folder through a symbolic link is no copy (it had been redone whole each time
+        # the path changed between the link and the folder).
+        link = os.path.join(self.tmp, "j", "link")
+        os.symlink(copy, link)
+        for out_dir in (link, copy, link):
+            again = run(job, "--out", out_dir)
+            self.assertIn("nothing new, nothing done", again.stdout, out_dir)
 
 
 class YearsDropped(kt.TempDirTestCase):
@@ -501,6 +513,21 @@ class ReasonsNameTheChange(kt.TempDirTestCase):
                       "lambda 10 -> 20"):
             self.assertIn(words, status.stdout)
         self.assertNotIn("its inputs changed", status.stdout)
+        # Numbers as written (0.003 had read 0.0030000000000000001).
+        self.assertEqual(run(job).returncode, 0)
+        with open(job, "w") as f:
+            f.write(text + "lambda = 0.003\n")
+        self.assertIn("lambda 20 -> 0.003", run(job, "--dry-run").stdout)
+        # Parameters left by a run whose fingerprint is not the one recorded (an earlier version
+        # ran the step since): not used; the reason stays general rather than naming a wrong key.
+        import sqlite3
+        state = sqlite3.connect(os.path.join(self.tmp, "j", "out", ".kalends", "state.sqlite"))
+        state.execute("UPDATE steps SET fingerprint = '0123456789abcdef:0123456789abcdef' WHERE id = 'fill'")
+        state.commit()
+        state.close()
+        dry = run(job, "--dry-run").stdout
+        self.assertIn("parameters or program version changed", dry)
+        self.assertNotIn("lambda", dry)
 
 
 class Incremental(kt.TempDirTestCase):

@@ -109,14 +109,19 @@ TEST_CASE("the standard calendar is Julian before 1582-10-15; zones and capitals
   // Calendar names in any case (CF attribute values are case-insensitive in practice; from memory).
   CHECK(cf_time(17927, "days since 1950-01-01", "Gregorian").label() == "1999-01-31");
   CHECK(cf_time(17927, "days since 1950-01-01", "PROLEPTIC_GREGORIAN").label() == "1999-01-31");
-  // A UDUNITS origin with a time-zone offset is local time: 00:00 at -06:00 is 06:00 UTC.
-  CHECK(cf_time(0, "days since 2001-01-01 00:00:00 -06:00").label() == "2001-01-01T0600");
-  CHECK(cf_time(0, "hours since 2001-01-01 12:00 +0530").label() == "2001-01-01T0630");
+  // A UDUNITS origin with a time-zone offset: read, and the times kept on that zone's clock (a
+  // daily stamp at local midnight keeps its day; at +05:00 UTC would make it the day before).
+  CHECK(cf_time(0, "days since 2001-01-01 00:00:00 -06:00").label() == "2001-01-01");
+  CHECK(cf_time(0, "days since 2000-01-01 00:00:00 +05:00").label() == "2000-01-01");
+  CHECK(cf_time(0, "hours since 2001-01-01 12:00 +0530").label() == "2001-01-01T1200");
   CHECK(cf_time(1, "days since 2001-01-01 00:00:00 +00:00").label() == "2001-01-02");
   // ISO 8601's offset right after the time, GMT, and units in capitals (UDUNITS; from memory).
-  CHECK(cf_time(0, "hours since 2001-01-01T00:00:00-06:00").label() == "2001-01-01T0600");
-  CHECK(cf_time(0, "hours since 2001-01-01T12:00+05:30").label() == "2001-01-01T0630");
+  CHECK(cf_time(0, "hours since 2001-01-01T00:00:00-06:00").label() == "2001-01-01");
+  CHECK(cf_time(2, "hours since 2001-01-01T12:00+05:30").label() == "2001-01-01T1400");
   CHECK(cf_time(1, "days since 2001-01-01 00:00:00 GMT").label() == "2001-01-02");
+  CHECK(cf_time(1, "days since 2000-01-01 00:00:00 utc").label() == "2000-01-02");
+  CHECK(cf_time(1, "days since 2000-1-1 GMT").label() == "2000-01-02");
+  CHECK(cf_time(1, "days since 2000-01-01Z").label() == "2000-01-02");
   CHECK(cf_time(36, "HOURS SINCE 2000-01-01").label() == "2000-01-02T1200");
   CHECK(cf_time(1, "Days Since 2000-01-01T00:00:00").label() == "2000-01-02");
 }

@@ -271,6 +271,30 @@ class SeasonsCommand(kt.TempDirTestCase):
         expected = np.where(share < 0.25, 0, np.where(share < 0.5, 1, np.where(share < 0.75, 2, 3)))
         ok = np.isfinite(share)
         np.testing.assert_array_equal(classes[ok], expected[ok])
+        # The report draws the class raster a colour per class, with the classes' meanings: one
+        # colour for each class present, the same for all its cells (it had been a continuous
+        # ramp between percentiles, whose in-between colours are no class).
+        page = os.path.join(self.tmp, "compare-report.html")
+        done = kt.run_kalends(["-q", "report", out, "--html", page])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page) as f:
+            html = f.read()
+        card = html[html.index("<b>ndvi_year_specific_class</b>"):]
+        card = html[html.rindex("<figure", 0, html.index("<b>ndvi_year_specific_class</b>")):][:len(card) + 2000]
+        self.assertIn("a colour per class", card)
+        self.assertIn("0 under 25 % of the variance is year-specific", card)
+        self.assertIn("3 75 % or more", card)
+        import base64
+        png = base64.b64decode(card.split('src="data:image/png;base64,')[1].split('"')[0])
+        g.FileFromMemBuffer("/vsimem/classes.png", png)
+        rgba = g.Open("/vsimem/classes.png").ReadAsArray()
+        g.Unlink("/vsimem/classes.png")
+        colours = {}
+        for cls in np.unique(classes[ok]):
+            cells = rgba[:3, (classes == cls) & ok].T
+            self.assertEqual(len({tuple(c) for c in cells}), 1, cls)
+            colours[int(cls)] = tuple(cells[0])
+        self.assertEqual(len(set(colours.values())), len(colours))
 
     def test_a_fills_layers_say_what_each_value_rests_on(self):
         # A fill's flag band says which composites were observed: the observed_YYYY layers give

@@ -11,6 +11,7 @@
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
+#include "kalends/qa_rule.hpp"
 #include "kalends/tiles.hpp"
 #include "pipeline/step_kind.hpp"
 
@@ -250,6 +251,7 @@ StepKind fill_step_kind() {
   };
   kind.check_values = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
+    if (c.has("keep")) QaRule::parse(c.text("keep"));  // a typo named at its line, before any step runs
     std::vector<std::string> given;
     for (const auto& [key, value] : c.options) given.push_back(key);
     check_options_apply({r.method.method}, given);
