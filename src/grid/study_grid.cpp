@@ -703,6 +703,14 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
       fs::remove(temporary + ".ovr.tmp", ec);
       throw detail::write_failure(target.string(), "cannot write (" + why + ")");
     }
+    // GDAL's side file of a header that did not fit (out of memory at the close): the CRS would
+    // be in it, not in the file, once renamed; as the fill's outputs are checked.
+    try {
+      detail::require_header_in_file(temporary, target.string());
+    } catch (const Error&) {
+      fs::remove(temporary, ec);
+      throw;
+    }
     if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
       fs::remove(temporary, ec);
       ++summary.outputs_unchanged;
