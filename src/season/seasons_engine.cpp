@@ -154,9 +154,10 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     throw UsageError("--band " + std::to_string(request.rules.band), "is the flag band of the fill outputs in '" + request.input +
                                      "' (codes 0-3, not values): band 1 holds the values, band 2 their sd");
   // A fill's outputs carry a flag band: what each period's value rests on is then known, and
-  // written beside it (a year of gap-filled values had counted as a year like any other).
+  // written beside it (a year of gap-filled values had counted as a year like any other). The
+  // flags are those of its sd band (--band 2) too, which had been taken for unfilled input.
   std::optional<Stack> flags;
-  if (request.rules.band == 1 && detail::is_fill_output(stack.layers().front().path)) {
+  if (detail::is_fill_output(stack.layers().front().path)) {
     ValueRules flag_rules;
     flag_rules.band = 3;
     flag_rules.exclude = request.rules.exclude;

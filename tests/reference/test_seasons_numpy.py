@@ -331,6 +331,15 @@ class SeasonsCommand(kt.TempDirTestCase):
                                        expected[i], atol=1e-6, equal_nan=True)
         observed_years = g.Open(os.path.join(out, "ndvi_synoptic_observed_years.tif")).ReadAsArray()
         np.testing.assert_array_equal(observed_years, (expected > 0).sum(0))
+        # The sd band (--band 2) rests on the same composites: the same layers (they had been
+        # taken for unfilled input, 1 everywhere).
+        sd_out = os.path.join(self.tmp, "gappy-sd-seasons")
+        done_sd = kt.run_kalends(["-q", "seasons", filled, "--out", sd_out, "--band", "2"])
+        self.assertEqual(done_sd.returncode, 0, done_sd.stderr)
+        for i, y in enumerate(years):
+            layer = g.Open(os.path.join(sd_out, "ndvi_sd_observed_%d.tif" % y))
+            self.assertIn("fill flag 0", layer.GetMetadataItem("KALENDS_LAYER"))
+            np.testing.assert_allclose(layer.ReadAsArray(), expected[i], atol=1e-6, equal_nan=True)
         # The days each period rests on, per band; and a note.
         year = g.Open(os.path.join(out, "ndvi_year_2010.tif"))
         self.assertEqual(year.GetRasterBand(1).GetMetadata(), {"KALENDS_DAYS_COVERED": "15", "KALENDS_PERIOD_DAYS": "31"})
