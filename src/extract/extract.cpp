@@ -379,6 +379,13 @@ void check_extract_options(const ExtractRequest& request) {
 
 ExtractResult run_extract(const ExtractRequest& request) {
   check_extract_options(request);
+  // Said before the work, not after it ("cannot write (No such file or directory)").
+  if (!request.out.empty()) {
+    const std::filesystem::path folder = std::filesystem::path(request.out).parent_path();
+    std::error_code ec;
+    if (!folder.empty() && !std::filesystem::is_directory(folder, ec))
+      throw UsageError("--out '" + request.out + "'", "the folder '" + folder.string() + "' does not exist");
+  }
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.notes = r.points.notes;

@@ -334,8 +334,10 @@ class ExtractLandsat(kt.TempDirTestCase):
         missing = os.path.join(self.tmp, "no-such-folder", "table.csv")
         done = kt.run_kalends(["extract", os.path.dirname(layer), "--points", points, "--out", missing,
                                "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
-        self.assertEqual(done.returncode, 1, done.stderr)
-        self.assertEqual(done.stderr.strip(), "kalends: %s: cannot write (No such file or directory)" % missing)
+        # Said before the work (version 0.3.18; it had been "cannot write", exit 1, after it).
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: --out '%s': the folder '%s' does not exist"
+                         % (missing, os.path.dirname(missing)))
         # An earlier page is replaced.
         page = os.path.join(self.tmp, "page.html")
         for _ in range(2):
