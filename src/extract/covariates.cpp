@@ -105,16 +105,15 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
 
 // A raster kalends did not write, opened as a stack: every band dated (a CF time axis, GRIB
 // valid times, dates as band descriptions or items, or the file name's date). Nothing where its
-// bands carry no date; the stack's error where a date is there and cannot be read (a calendar
-// other than the standard ones, a time before 1582, an impossible DATE item): read as undated
-// bands, such a file had matched every survey date to every band.
+// bands carry no date, or a date item or name kalends cannot read (it stays a set of fixed
+// bands, as before); the stack's error where its CF time axis cannot be read (a calendar other
+// than the standard ones, a time before 1582): read as undated bands, such a file had matched
+// every survey date to every band.
 std::optional<Stack> dated_stack(const std::string& path) {
   try {
     return Stack::open(path);
   } catch (const InputError& e) {
-    if (e.reason().starts_with("time axis") || e.reason().starts_with("metadata ") ||
-        e.reason().find("is not a calendar date") != std::string::npos)
-      throw;
+    if (e.reason().starts_with("time axis")) throw;
     return std::nullopt;
   }
 }
