@@ -732,7 +732,9 @@ class Runner {
     // shard and the finalize alike: judged without it, the shards' steps are up to date.
     // A finalize without --skip-bad is told of such a file, while it is as the shard found it
     // (it had said only that the shards' inputs changed, and resubmitting them changed nothing).
-    if (options_.skip_bad || options_.finalize)
+    // A shard run without --skip-bad is told too: it had read the file's rows that still read,
+    // said done, and stayed stale for the finalize, however often it was run again.
+    if (options_.skip_bad || options_.finalize || options_.shard)
       for (int k = 1; k <= shards; ++k) {
         const fs::path shard_state = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
         if (!fs::exists(shard_state)) continue;
@@ -740,9 +742,10 @@ class Runner {
         for (const auto& [path, reason] : shard_db.skipped()) {
           if (!options_.skip_bad) {
             if (unchanged_since(path, shard_db.input(path)))
-              throw InputError(path, reason + "; shard " + std::to_string(k) +
-                                         " left it out (--skip-bad): give --finalize --skip-bad too, or repair the "
-                                         "file and run the shards again");
+              throw InputError(path, reason + "; shard " + std::to_string(k) + " left it out (--skip-bad): " +
+                                         (options_.finalize ? "give --finalize --skip-bad too"
+                                                            : "give this shard --skip-bad too, as the plan's sbatch line does") +
+                                         ", or repair the file and run the shards again");
             continue;
           }
           if (std::find(excluded_.begin(), excluded_.end(), path) == excluded_.end()) {
@@ -814,8 +817,9 @@ class Runner {
             ? fmt::format("finalize refused: {} of {} shards not done: {}; wait for them to end, then --finalize",
                           missing, plan_->shards, problems)
             : fmt::format("finalize refused: {} of {} shards not done: {}; run them again (sbatch --array={} ..., "
-                          "or kalends run {}{} --shard K), then --finalize",
-                          missing, plan_->shards, problems, list, options_.job_file, out_option());
+                          "or kalends run {}{} --shard K{}), then --finalize",
+                          missing, plan_->shards, problems, list, options_.job_file, out_option(),
+                          options_.skip_bad ? " --skip-bad" : "");
     return false;
   }
 

@@ -285,6 +285,12 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(plan.returncode, 0, plan.stderr)  # the header reads
         self.shards_and_finalize_skip(job, out, bad, single,
                                       "left it out (--skip-bad): give --finalize --skip-bad too, or repair the file")
+        # A shard run again without --skip-bad, as an operator might: told, not run on the
+        # file's rows that still read (it had said done, and stayed stale for the finalize).
+        done = kalends("run", job, "--out", out, "--shard", "1")
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn(bad + ": ", done.stderr)
+        self.assertIn("give this shard --skip-bad too, as the plan's sbatch line does", done.stderr)
 
     def test_plan_refuses_more_shards_than_strips(self):
         done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
