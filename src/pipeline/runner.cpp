@@ -777,23 +777,25 @@ class Runner {
     std::set<std::string> reasons;  // one per split step, "" where it is done
     std::unique_ptr<detail::StateDatabase> db;
     if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
+    // A shard still at work: the step it marked as running is being run, not interrupted (an
+    // operator told "interrupted" may kill or resubmit a live task).
+    const std::string pid = running_pid((fs::path(plan_->shard_folder(k)) / ".kalends").string());
     for (const JobStep& step : job_.steps) {
       if (!plan_->step(step.id)->split) continue;
       const auto record = db ? db->step(step.id) : std::nullopt;
       std::string why;
       if (!record) why = "never run";
       else if (record->status == "failed") why = "failed" + (record->message.empty() ? "" : ": " + record->message);
-      else if (record->status == "running") why = "interrupted (a run stopped while running it)";
+      else if (record->status == "running") why = pid.empty() ? "interrupted (a run stopped while running it)" : "being run";
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
-      else if (!outputs_exist(*record, out_)) why = "outputs missing";
+      else if (!outputs_exist(*record, out_)) why = outputs_missing(*record, out_);
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
       reasons.insert(why);
     }
     if (!db) what = "never run";
     else if (reasons.size() == 1 && !what.empty()) what = "every step " + *reasons.begin();
     // A shard still at work is not to be submitted again.
-    if (const std::string pid = running_pid((fs::path(plan_->shard_folder(k)) / ".kalends").string()); !pid.empty())
-      what = "running (pid " + pid + ")" + (what.empty() ? "" : ": " + what);
+    if (!pid.empty()) what = "running (pid " + pid + ")" + (what.empty() ? "" : ": " + what);
     shard_ = 0;
     fingerprints_.clear();
     return what;

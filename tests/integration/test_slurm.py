@@ -488,6 +488,24 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn("2/2 (running (pid %d)" % os.getpid(), done.stderr)
         self.assertIn("wait for them to end", done.stderr)
         self.assertNotIn("sbatch --array", done.stderr)
+        # Shard 1 at work on its fill (the step marked running, as a run marks it): "being run",
+        # not "interrupted", which had been said of a live task.
+        import sqlite3
+        state = sqlite3.connect(os.path.join(out, ".kalends", "shards", "1-of-2", ".kalends", "state.sqlite"))
+        state.execute("UPDATE steps SET status = 'running' WHERE id = 'fill'")
+        state.commit()
+        with open(os.path.join(out, ".kalends", "shards", "1-of-2", ".kalends", "lock"), "a+") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            lock.truncate(0)
+            lock.write(str(os.getpid()))
+            lock.flush()
+            status = kalends("status", self.job, "--out", out).stdout
+        line = [l for l in status.splitlines() if l.startswith("1/2")][0]
+        self.assertIn("running (pid %d): fill being run" % os.getpid(), line)
+        self.assertNotIn("interrupted", line)
+        state.execute("UPDATE steps SET status = 'done' WHERE id = 'fill'")
+        state.commit()
+        state.close()
         # A finalize (or any run) holding the folder: plan would rewrite plan.tsv under it.
         main_lock = os.path.join(out, ".kalends", "lock")
         plan_before = open(os.path.join(out, ".kalends", "plan.tsv")).read()
