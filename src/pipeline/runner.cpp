@@ -844,7 +844,12 @@ class Runner {
           return std::find(other.begin(), other.end(), line) != other.end();
         });
         if (!everywhere) notes.push_back(fmt::format("shard {}/{}: {}", k + 1, by_shard.size(), line));
-        else if (shown.insert(line).second) notes.push_back(line);
+        // The same words from every shard: once, but a count in them is each shard's, not the
+        // whole area's ("16384 of the 16384 pixels" of one strip of three had read as the total).
+        else if (shown.insert(line).second)
+          notes.push_back(by_shard.size() > 1 && std::any_of(line.begin(), line.end(), [](char c) { return c >= '0' && c <= '9'; })
+                              ? fmt::format("each of the {} shards: {}", by_shard.size(), line)
+                              : line);
       }
     return notes;
   }

@@ -292,6 +292,34 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertIn(bad + ": ", done.stderr)
         self.assertIn("give this shard --skip-bad too, as the plan's sbatch line does", done.stderr)
 
+    def test_a_note_every_shard_gives_says_its_counts_are_each_shards(self):
+        # A stack ending in June: every shard notes the last year's empty cycle layer with its own
+        # strip's count. The finalize had shown that line once, as if the count were the whole
+        # area's (half of the single run's here).
+        import re
+        folder = self.out("half-year")
+        shutil.copytree(os.path.join(self.tmp, "stack"), os.path.join(folder, "stack"))
+        for path in glob.glob(os.path.join(folder, "stack", "*", "*_2022-0[7-9]-*.tif")) + \
+                glob.glob(os.path.join(folder, "stack", "*", "*_2022-1*.tif")):
+            os.remove(path)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write(SMALL_JOB)
+        single = kalends("run", job, "--out", os.path.join(folder, "single"))
+        self.assertEqual(single.returncode, 0, single.stderr)
+        out = os.path.join(folder, "sharded")
+        self.assertEqual(kalends("plan", job, "--out", out, "--shards", "2", "-q").returncode, 0)
+        for shard in ("1/2", "2/2"):
+            self.assertEqual(kalends("run", job, "--out", out, "--shard", shard, "-q").returncode, 0)
+        done = kalends("run", job, "--out", out, "--finalize")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        pattern = r"the 2022 cycle layer is empty at (\d+) of the (\d+) pixels"
+        whole = re.search(pattern, single.stdout + single.stderr)
+        each = re.search(r"each of the 2 shards: " + pattern, done.stdout + done.stderr)
+        self.assertIsNotNone(whole, single.stdout + single.stderr)
+        self.assertIsNotNone(each, done.stdout + done.stderr)
+        self.assertEqual(2 * int(each.group(2)), int(whole.group(2)))
+
     def test_plan_refuses_more_shards_than_strips(self):
         done = kalends("plan", self.job, "--out", self.out("too-many"), "--shards", "3")
         self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
