@@ -5,6 +5,7 @@
 #include <functional>
 #include <map>
 #include <optional>
+#include <utility>
 #include <vector>
 #include <string>
 
@@ -24,6 +25,9 @@ struct CalendarPeriod {
   std::string label() const;
   /// 12, or ceil(365 / N).
   int per_year() const { return kind == Kind::month ? 12 : (365 + days - 1) / days; }
+  /// The period holding `day` (days since 1970): its first day and the first day after it. The
+  /// one rule every command's periods follow (fill --every, seasons, suitability, extract).
+  std::pair<std::int64_t, std::int64_t> span_of_day(std::int64_t day) const;
 };
 
 /// "1G", "512M", "1.5GiB", "2048MB" or plain bytes; UsageError otherwise.

@@ -30,31 +30,26 @@ CalendarPeriod CalendarPeriod::parse(const std::string& text, const std::string&
   throw UsageError(option + " '" + text + "'", "expected 1M or a number of days such as 8d or 16d");
 }
 
+std::pair<std::int64_t, std::int64_t> CalendarPeriod::span_of_day(std::int64_t day) const {
+  const CivilDate d = civil_from_days(day);
+  if (kind == Kind::month) {
+    const std::int64_t first = days_from_civil(d.year, d.month, 1);
+    return {first, first + days_in_month(d.year, d.month)};
+  }
+  // N days from 1 January, as many every year; the year's last period runs to 31 December, so
+  // day 366 of a leap year is not a period of its own where 365 is a multiple of N.
+  const std::int64_t jan1 = days_from_civil(d.year, 1, 1);
+  const std::int64_t next_jan1 = days_from_civil(d.year + 1, 1, 1);
+  const std::int64_t index = std::min<std::int64_t>((day - jan1) / days, per_year() - 1);
+  const std::int64_t first = jan1 + index * days;
+  return {first, index == per_year() - 1 ? next_jan1 : first + days};
+}
+
 std::string CalendarPeriod::label() const {
   return kind == Kind::month ? "1M" : std::to_string(days) + "d";
 }
 
 namespace detail {
-
-namespace {
-
-// The period holding day `day` (days since 1970): its first day and its first day after.
-std::pair<std::int64_t, std::int64_t> period_of(std::int64_t day, const CalendarPeriod& p) {
-  const CivilDate d = civil_from_days(day);
-  if (p.kind == CalendarPeriod::Kind::month) {
-    const std::int64_t first = days_from_civil(d.year, d.month, 1);
-    return {first, first + days_in_month(d.year, d.month)};
-  }
-  // The year's last period runs to 31 December: day 366 of a leap year is not a period of its
-  // own where 365 is a multiple of N (as periods_of_year, which `seasons` uses).
-  const std::int64_t jan1 = days_from_civil(d.year, 1, 1);
-  const std::int64_t next_jan1 = days_from_civil(d.year + 1, 1, 1);
-  const std::int64_t index = std::min<std::int64_t>((day - jan1) / p.days, p.per_year() - 1);
-  const std::int64_t first = jan1 + index * p.days;
-  return {first, index == p.per_year() - 1 ? next_jan1 : first + p.days};
-}
-
-}  // namespace
 
 std::vector<char> season_days(const TimeGrid& grid, DateMarks marks) {
   // From its date on (start marks), up to it (end) or around it (middle), one step long.
@@ -96,7 +91,7 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
   const std::vector<char> season = season_days(grid, marks);
   std::int64_t day = std::int64_t(std::floor(first_day));
   while (day <= std::int64_t(std::floor(last_day))) {
-    const auto [begin, end] = period_of(day, period);
+    const auto [begin, end] = period.span_of_day(day);
     PeriodMean mean;
     mean.start = TimePoint{begin * 86400};
     mean.end = TimePoint{end * 86400};

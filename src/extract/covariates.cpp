@@ -30,13 +30,7 @@ int period_index(const CalendarPeriod& period, const CivilDate& date) {
 
 TimePoint next_period_start(const CalendarPeriod& period, TimePoint start) {
   const CivilDate d = start.date();
-  if (period.kind == CalendarPeriod::Kind::month)
-    return TimePoint::from_date(d.month == 12 ? CivilDate{d.year + 1, 1, 1} : CivilDate{d.year, d.month + 1, 1});
-  // N-day periods restart on 1 January; the last one of a year runs to 31 December.
-  const std::int64_t next = days_from_civil(d.year, d.month, d.day) + period.days;
-  const std::int64_t new_year = days_from_civil(d.year + 1, 1, 1);
-  const bool last = period_index(period, d) == period.per_year() - 1;
-  return TimePoint{(last ? new_year : std::min(next, new_year)) * 86400};
+  return TimePoint{period.span_of_day(days_from_civil(d.year, d.month, d.day)).second * 86400};
 }
 
 namespace {

@@ -264,16 +264,17 @@ std::int64_t julian_minus_gregorian_days(int y, int m) {
   return -38 + shifted / 100 - shifted / 400;
 }
 
-// A trailing time-zone offset of CF (UDUNITS) units' origin: " -06:00", " +0530", " -6".
-// Returns the offset in seconds east of UTC and cuts it off `origin`; 0 where there is none.
-std::int64_t cut_zone_offset(std::string_view& origin) {
+// Cuts a trailing time zone off a CF (UDUNITS) units' origin: " -06:00", " +0530", " -6",
+// "T00:00-06:00", " GMT", "UTC", "Z". The times are kept on that zone's clock (cf_time), so only
+// its form is checked: what is not a zone is left for the date parser to refuse.
+void cut_zone(std::string_view& origin) {
   for (std::string_view name : {" GMT", "GMT", " UTC", "UTC", "Z"}) {
     if (origin.size() < name.size() + 5) continue;
     const std::string_view tail = origin.substr(origin.size() - name.size());
     if (std::equal(tail.begin(), tail.end(), name.begin(), name.end(),
                    [](char a, char b) { return std::toupper(static_cast<unsigned char>(a)) == b; })) {
       origin.remove_suffix(name.size());
-      return 0;
+      return;
     }
   }
   // "2001-01-01T00:00:00-06:00": the offset follows the time without a space (ISO 8601).
@@ -282,10 +283,9 @@ std::int64_t cut_zone_offset(std::string_view& origin) {
     const auto sign = origin.find_last_of("+-");
     if (sign != std::string_view::npos && sign > t) space = sign - 1;
   }
-  if (space == std::string_view::npos) return 0;
+  if (space == std::string_view::npos) return;
   std::string_view zone = origin.substr(space + 1);
-  if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return 0;
-  const int sign = zone[0] == '-' ? -1 : 1;
+  if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return;
   zone.remove_prefix(1);
   int hours = 0, minutes = 0;
   const auto colon = zone.find(':');
@@ -297,15 +297,14 @@ std::int64_t cut_zone_offset(std::string_view& origin) {
     return true;
   };
   if (colon != std::string_view::npos) {
-    if (!digits(zone.substr(0, colon), hours) || !digits(zone.substr(colon + 1), minutes)) return 0;
+    if (!digits(zone.substr(0, colon), hours) || !digits(zone.substr(colon + 1), minutes)) return;
   } else if (zone.size() == 4) {
-    if (!digits(zone.substr(0, 2), hours) || !digits(zone.substr(2), minutes)) return 0;
+    if (!digits(zone.substr(0, 2), hours) || !digits(zone.substr(2), minutes)) return;
   } else if (!digits(zone, hours)) {
-    return 0;
+    return;
   }
-  if (hours > 14 || minutes > 59) return 0;
+  if (hours > 14 || minutes > 59) return;
   origin = origin.substr(0, origin[space] == ' ' ? space : space + 1);
-  return sign * (hours * 3600 + minutes * 60);
 }
 
 }  // namespace
@@ -341,7 +340,7 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
   // "days since 2001-01-01 00:00:00 -06:00": times on the zone's own clock. They are kept so,
   // not moved to UTC: a daily or monthly stamp at local midnight keeps its day (at +05:00 it had
   // become the day before, and each month's value the month before's).
-  cut_zone_offset(origin_text);
+  cut_zone(origin_text);
   const auto origin = parse_iso_time(origin_text);
   if (!origin) throw std::invalid_argument("time origin in '" + std::string(units) + "' unreadable");
   std::int64_t origin_seconds = origin->seconds;

@@ -60,6 +60,11 @@ Grid raster_grid(GDALDataset& dataset);
 /// with no band of its own (NETCDF:"f.nc":tas, ...); none for any other file.
 std::vector<std::string> subdatasets_of(const std::string& path);
 
+/// What a file's name shares with the rest of its stack: the part before its date, separators
+/// trimmed ("ndvi_2004-05-24.tif" -> "ndvi", "MOD13A1.A2004145.h12v04.hdf" -> "MOD13A1"), the stem
+/// where it has no date, "filled" where that is empty. A stack is named so.
+std::string name_from_file(const std::string& path);
+
 /// Whether `path` is one of `kalends fill`'s dated outputs (value, sd and flag bands; not a
 /// calendar period mean, whose flag means something else).
 bool is_fill_output(const std::string& path);

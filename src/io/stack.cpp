@@ -215,18 +215,6 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   return layer;
 }
 
-// What the file names share before their date: "ndvi_2004-05-24.tif" -> "ndvi",
-// "MOD13A1.A2004145.h12v04.hdf" -> "MOD13A1".
-std::string name_from_file(const std::string& path) {
-  const std::string base = fs::path(path).filename().string();
-  const auto date = find_date_in_name(base);
-  std::string prefix = date ? base.substr(0, date->position) : fs::path(base).stem().string();
-  if (date && prefix.size() >= 2 && std::isalpha(static_cast<unsigned char>(prefix.back())) &&
-      std::strchr("_-. ", prefix[prefix.size() - 2]))
-    prefix.pop_back();  // the "A" of "A2004145"
-  while (!prefix.empty() && std::strchr("_-. ", prefix.back())) prefix.pop_back();
-  return prefix.empty() ? "filled" : prefix;
-}
 
 std::string band_where(const std::string& path, int band) {
   return path + " band " + std::to_string(band);
@@ -351,6 +339,19 @@ bool same_crs(const std::string& a, const std::string& b) {
 
 namespace detail {
 Grid raster_grid(GDALDataset& dataset) { return grid_of(dataset); }
+
+// What the file names share before their date: "ndvi_2004-05-24.tif" -> "ndvi",
+// "MOD13A1.A2004145.h12v04.hdf" -> "MOD13A1".
+std::string name_from_file(const std::string& path) {
+  const std::string base = fs::path(path).filename().string();
+  const auto date = find_date_in_name(base);
+  std::string prefix = date ? base.substr(0, date->position) : fs::path(base).stem().string();
+  if (date && prefix.size() >= 2 && std::isalpha(static_cast<unsigned char>(prefix.back())) &&
+      std::strchr("_-. ", prefix[prefix.size() - 2]))
+    prefix.pop_back();  // the "A" of "A2004145"
+  while (!prefix.empty() && std::strchr("_-. ", prefix.back())) prefix.pop_back();
+  return prefix.empty() ? "filled" : prefix;
+}
 
 // The subdatasets of a container file with several variables (NetCDF, HDF4, HDF5), which opens
 // with no band of its own; none for any other file.
@@ -614,8 +615,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (first) {
         stack.grid_ = grid;
         stack.name_ = !variable.empty() ? variable
-                      : time            ? name_from_file(file)
-                                        : without_trailing_number(name_from_file(file));
+                      : time            ? detail::name_from_file(file)
+                                        : without_trailing_number(detail::name_from_file(file));
         first = false;
       }
       file_grids.emplace_back(file, grid);
@@ -718,7 +719,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     }
     // NETCDF:"file.nc":tas -> "tas"; HDF5:"f.h5"://ndvi -> "ndvi"; file.grib -> "file".
     const auto parts = detail::connection_parts(input);
-    stack.name_ = parts && !parts->variable().empty() ? parts->variable() : name_from_file(input);
+    stack.name_ = parts && !parts->variable().empty() ? parts->variable() : detail::name_from_file(input);
   }
 
   if (stack.layers_.empty()) throw InputError(input, "every file of this pattern was left out");

@@ -10,13 +10,12 @@
 #include <cstring>
 #include <fstream>
 #include <fmt/format.h>
-
-#include "kalends/qa_rule.hpp"
 #include <set>
 
 #include "io/file_glob.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
+#include "kalends/qa_rule.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {

@@ -45,18 +45,13 @@ std::pair<int, int> parse_years(const std::string& text) {
 std::vector<Period> periods_of_year(int year, const CalendarPeriod& calendar) {
   std::vector<Period> periods;
   const std::int64_t jan1 = days_from_civil(year, 1, 1), next = days_from_civil(year + 1, 1, 1);
-  if (calendar.kind == CalendarPeriod::Kind::month) {
-    for (int m = 1; m <= 12; ++m) periods.push_back({days_from_civil(year, m, 1), days_in_month(year, m)});
-  } else {
-    // As many periods every year (a layer has a band each): those of a 365-day year. The last
-    // runs to 31 December, so day 366 of a leap year joins it; where 365 is a multiple of the
-    // period (1, 5, 73 days) a leap year's 31 December had been a period of its own, which
-    // moved every later year's periods along by one.
-    const int count = calendar.per_year();
-    for (int k = 0; k < count; ++k) {
-      const std::int64_t d = jan1 + std::int64_t(k) * calendar.days;
-      periods.push_back({d, int(k + 1 < count ? calendar.days : next - d)});
-    }
+  // As many every year (a layer has a band each), by the rule of span_of_day: where 365 is a
+  // multiple of N (1, 5, 73 days) a leap year's 31 December had been a period of its own, which
+  // moved every later year's periods along by one.
+  for (std::int64_t day = jan1; day < next;) {
+    const auto [first, after] = calendar.span_of_day(day);
+    periods.push_back({first, int(after - first)});
+    day = after;
   }
   return periods;
 }

@@ -7,7 +7,6 @@
 #include <atomic>
 #include <chrono>
 #include <cmath>
-#include <cstring>
 #include <filesystem>
 #include <fmt/format.h>
 #include <fmt/ranges.h>
@@ -43,10 +42,7 @@ std::string stack_input(const std::string& input) {
   for (const auto& entry : fs::directory_iterator(input, ec)) {
     const std::string file = entry.path().filename().string();
     if (!entry.is_regular_file(ec) || entry.path().extension() != ".tif" || file.front() == '.') continue;
-    const auto date = find_date_in_name(file);
-    std::string name = date ? file.substr(0, date->position) : entry.path().stem().string();
-    while (!name.empty() && std::strchr("_-. ", name.back())) name.pop_back();
-    names.insert(name);
+    names.insert(detail::name_from_file(file));
   }
   if (names.size() > 1)
     throw UsageError(input, fmt::format("holds the files of {} stacks ({}); give one as a pattern, such as '{}'",
