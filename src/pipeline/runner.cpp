@@ -16,6 +16,7 @@
 #include <fstream>
 #include <iterator>
 #include <limits>
+#include <map>
 #include <set>
 
 #include "engine/calendar.hpp"
@@ -404,7 +405,6 @@ class Runner {
       report_.peak_memory_bytes = detail::peak_resident_bytes();
       return report_;
     }
-    bool failed = false;
     for (const JobStep& step : job_.steps)
       if (const auto record = db_->step(step.id); record && record->status == "done")
         recorded_at_start_[step.id] = record->fingerprint;
@@ -445,12 +445,23 @@ class Runner {
       report_.peak_memory_bytes = detail::peak_resident_bytes();
       return report_;
     }
+    // A failed step stops only the steps that read it, directly or through others: a bad points
+    // file for one extract step had left every later step of the night undone ("not reached").
+    std::map<std::string, std::string> stopped_by;  // step id -> the failed step it waits for
+    int failures = 0;
     for (const JobStep& step : job_.steps) {
       StepReport r;
       r.id = step.id;
       r.kind = step.kind;
-      if (failed) {
+      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
+                                      [&](const std::string& name) { return stopped_by.count(name) != 0; });
+      if (waits != step.inputs.end()) {
+        const std::string& root = stopped_by.at(*waits);
+        stopped_by[step.id] = root;
         r.action = StepReport::Action::not_reached;
+        r.reason = *waits == root ? fmt::format("reads step '{}', which failed", root)
+                                  : fmt::format("reads step '{}', not run: step '{}' failed", *waits, root);
+        if (events_.step_finished) events_.step_finished(r);
         report_.steps.push_back(r);
         continue;
       }
@@ -471,9 +482,12 @@ class Runner {
             // A full disk can refuse this too; the step then simply has no 'done' record.
           }
         }
-        report_.error = e.what();
-        report_.exit_code = exit_code;
-        failed = true;
+        // The first failure is the run's error and exit code; the table lists every one.
+        if (failures++ == 0) {
+          report_.error = e.what();
+          report_.exit_code = exit_code;
+        }
+        stopped_by[step.id] = step.id;
       };
       try {
         if (options_.finalize && planned->split) stitch_step(step, *planned, r);
@@ -504,6 +518,7 @@ class Runner {
       if (events_.step_finished) events_.step_finished(r);
       report_.steps.push_back(r);
     }
+    if (failures > 1) report_.error += fmt::format(" ({} steps failed; the table names each)", failures);
     if (!options_.dry_run) {
       try {
         db_->remember_inputs(scan_.records);
@@ -599,6 +614,7 @@ class Runner {
     // Steps are judged as the nightly --skip-bad run will see them: without the bad files it
     // left out, while those are unchanged. Each is listed after the steps.
     const std::vector<std::string> left_out = leave_out_known_bad_inputs();
+    std::map<std::string, std::string> failed_root;  // step id -> the failed step it waits for
     for (const JobStep& step : job_.steps) {
       StepStatus s;
       s.id = step.id;
@@ -612,6 +628,7 @@ class Runner {
         s.state = !record ? "never run" : record->status == "failed" ? "failed" : "stale";
         s.detail = s.state == "failed" ? record->finished + " UTC: " + record->message
                                        : std::string("an input cannot be read: ") + e.what();
+        if (s.state == "failed") failed_root[step.id] = step.id;
         list.push_back(s);
         continue;
       }
@@ -658,6 +675,22 @@ class Runner {
           s.state = "interrupted";
           s.detail = "a run stopped while rewriting it (hidden .partial files); the next run redoes it; before that: " +
                      s.detail;
+        }
+      }
+      // A step left undone because a step it reads failed: the next run does it only once that
+      // one is fixed, which "never run" alone did not say.
+      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
+                                      [&](const std::string& name) { return failed_root.count(name) != 0; });
+      if (s.state == "failed") {
+        failed_root[step.id] = step.id;
+      } else if (waits != step.inputs.end()) {
+        const std::string& root = failed_root.at(*waits);
+        failed_root[step.id] = root;
+        if (s.state == "never run" || s.state == "stale") {
+          const std::string why = *waits == root ? fmt::format("reads step '{}', which failed", root)
+                                                 : fmt::format("reads step '{}', which waits for failed step '{}'",
+                                                               *waits, root);
+          s.detail = s.detail.empty() ? why : why + "; " + s.detail;
         }
       }
       if (!running.empty() && s.state != "done") {

@@ -750,6 +750,45 @@ class JobWording(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
         self.assertRegex(done.stdout, r"^fill +fill +failed +.* UTC: .*missing/\*\.tif: no file matches this pattern")
 
+    def test_a_failed_step_stops_only_the_steps_that_read_it(self):
+        # One step's bad input had left every later step of the night "not reached", the
+        # independent ones too.
+        job = small_dated_job(self.tmp, '[[step]]\nid = "broken"\ndo = "fill"\ninput = "bad"\n'
+                                        '[[step]]\nid = "again"\ndo = "fill"\ninput = "broken"\n'
+                                        '[[step]]\nid = "other"\ndo = "fill"\ninput = "ndvi"\nmethod = "harmonic"\n'
+                                        '[[step]]\ndo = "report"\nafter = ["again", "other"]\n')
+        with open(job, "a") as f:
+            f.write('[inputs.bad]\nstack = "broken/*.tif"\n')
+        os.makedirs(os.path.join(self.tmp, "broken"))
+        with open(os.path.join(self.tmp, "broken", "ndvi_2021-01-01.tif"), "wb") as f:
+            f.write(b"not a raster")
+        done = run(job)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        rows = {line.split()[0]: line for line in done.stdout.splitlines() if line.startswith("  ") and
+                not line.startswith("  note")}
+        self.assertRegex(rows["fill"], r"^  fill +ran ")
+        self.assertRegex(rows["other"], r"^  other +ran ")
+        self.assertRegex(rows["broken"], r"^  broken +failed +.*ndvi_2021-01-01.tif: cannot open")
+        self.assertRegex(rows["again"], r"not reached +reads step 'broken', which failed")
+        self.assertRegex(rows["report"], r"not reached +reads step 'again', not run: step 'broken' failed")
+        self.assertTrue(glob.glob(os.path.join(self.tmp, "out", "other", "*.tif")))
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("ndvi_2021-01-01.tif: cannot open", done.stderr)
+        status = kt.run_kalends(["status", job])
+        self.assertEqual(status.returncode, 1, status.stdout)
+        self.assertRegex(status.stdout, r"(?m)^other +fill +done ")
+        self.assertRegex(status.stdout, r"(?m)^again +fill +never run +reads step 'broken', which failed")
+        self.assertRegex(status.stdout, r"(?m)^report +report +never run +reads step 'again', which waits for "
+                                        r"failed step 'broken'")
+        # Fixed, the next run does what waited and leaves the rest.
+        for path in glob.glob(os.path.join(self.tmp, "layers", "*.tif")):
+            shutil.copy(path, os.path.join(self.tmp, "broken"))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        for step, action in (("fill", "up to date"), ("other", "up to date"), ("broken", "ran"), ("again", "ran"),
+                             ("report", "ran")):
+            self.assertRegex(done.stdout, r"(?m)^  %s +%s" % (step, action))
+
     def test_a_folder_given_as_the_job_file_is_named_as_a_folder(self):
         # A folder (job.toml made by mkdir by mistake) had been read as an empty job: "no
         # [[step]]: nothing to do", which sends the user looking inside a file that is not there.
