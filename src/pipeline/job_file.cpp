@@ -203,8 +203,13 @@ Job read_job(const std::string& path) {
       input.name = std::string(name_key.str());
       for (auto&& [key, value] : *t) {
         const std::string k(key.str());
-        if (k == "stack") input.stack = resolve(job.folder, checked_text(path, k, value, Type::text));
-        else if (k == "qa") input.qa = resolve(job.folder, checked_text(path, k, value, Type::text));
+        if (k == "stack") {
+          input.stack = resolve(job.folder, checked_text(path, k, value, Type::text));
+          input.stack_line = int(value.source().begin.line);
+        } else if (k == "qa") {
+          input.qa = resolve(job.folder, checked_text(path, k, value, Type::text));
+          input.qa_line = int(value.source().begin.line);
+        }
         else if (k == "keep") {
           input.keep = checked_text(path, k, value, Type::text);
           // Parsed here, as the file is read: a typo had stopped the run at the step that reads

@@ -18,6 +18,7 @@ struct JobInput {
   std::string qa, keep;
   std::optional<double> scale, offset, nodata, valid_min, valid_max;
   int band = 1, qa_band = 1;
+  int stack_line = 0, qa_line = 0;  // where the job file sets them
 };
 
 struct JobStep {

@@ -998,14 +998,22 @@ class Runner {
         text += "|" + (v ? fmt::format("{:.17g}", *v) : std::string("-"));
       text += "|" + std::to_string(input.band);
       if (input.qa_band != 1) text += "|qa band " + std::to_string(input.qa_band);  // older states stay valid
-      for (const std::string& pattern : {input.stack, input.qa}) {
+      for (const bool is_qa : {false, true}) {
+        const std::string& pattern = is_qa ? input.qa : input.stack;
         if (pattern.empty()) continue;
         const auto files = files_of(pattern);
         if (files.empty()) {
-          // The reason, as the commands give it: no match, a missing folder, one not readable.
-          const auto connection = detail::connection_pattern(pattern);
-          detail::expand_glob(connection ? connection->files : pattern);
-          throw InputError(pattern, "no file matches this pattern");
+          // The reason, as the commands give it: no match, a missing folder, one not readable;
+          // and the job file's line, where a job has several inputs.
+          const std::string line = fmt::format(" ({}:{}, [inputs.{}] {})", options_.job_file,
+                                               is_qa ? input.qa_line : input.stack_line, name, is_qa ? "qa" : "stack");
+          try {
+            const auto connection = detail::connection_pattern(pattern);
+            detail::expand_glob(connection ? connection->files : pattern);
+          } catch (const InputError& e) {
+            throw InputError(e.where(), e.reason() + line);
+          }
+          throw InputError(pattern, "no file matches this pattern" + line);
         }
         for (const std::string& f : files) {
           if (std::find(excluded_.begin(), excluded_.end(), f) != excluded_.end()) continue;

@@ -749,6 +749,8 @@ class JobWording(kt.TempDirTestCase):
         done = kt.run_kalends(["status", job])
         self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
         self.assertRegex(done.stdout, r"^fill +fill +failed +.* UTC: .*missing/\*\.tif: no file matches this pattern")
+        # Which input of the job file: its line and key.
+        self.assertIn("(%s:4, [inputs.u] stack)" % job, done.stdout)
 
     def test_a_failed_step_stops_only_the_steps_that_read_it(self):
         # One step's bad input had left every later step of the night "not reached", the
