@@ -57,7 +57,7 @@ struct ExtractRequest {
   Sampling sampling = Sampling::nearest;
   double buffer_metres = 0;  // 0 = no buffer mean
   std::vector<int> lags;     // periods before the survey's period (1 = the one before)
-  DateMarks marks = DateMarks::start;  // what the dates of dated layers mark in their composites
+  DateMarks marks = DateMarks::automatic;  // what the dates of dated layers mark in their composites
   std::vector<std::string> layers;  // series names or globs ("fill.*"); empty = all
   bool long_format = false;
   bool include_descriptors = false;

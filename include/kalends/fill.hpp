@@ -37,9 +37,11 @@ enum class Compression { deflate, zstd, lzw, none };
 Compression parse_compression(const std::string& text);
 
 /// What a date marks in the composite it names: its first day (MODIS), its middle, or its
-/// last day (monthly means stamped at the month's end, as CF files often do).
-enum class DateMarks { start, middle, end };
-DateMarks parse_date_marks(const std::string& text);  // "start", "middle", "end"; UsageError
+/// last day (monthly means stamped at the month's end, as CF files often do). `automatic`, the
+/// default, is `end` where every date is the last day of its month (dates_at_month_ends) and
+/// `start` otherwise; engines resolve it with resolve_date_marks once they know the dates.
+enum class DateMarks { start, middle, end, automatic };
+DateMarks parse_date_marks(const std::string& text);  // "auto", "start", "middle", "end"; UsageError
 
 struct FillRequest {
   std::string input;
@@ -54,7 +56,7 @@ struct FillRequest {
   std::optional<CalendarPeriod> every;
   /// For the calendar (`every`): a date's value stands for the middle of its composite, half a
   /// step after a start mark and before an end mark.
-  DateMarks marks = DateMarks::start;
+  DateMarks marks = DateMarks::automatic;
   std::int64_t memory_bytes = std::int64_t(1) << 30;
   /// Where memory_bytes holds no block, use what one block needs if that is at most this (0:
   /// refuse instead). For a budget the user did not choose; FillSummary says when it was used.
@@ -103,6 +105,7 @@ struct FillSummary {
   std::string out_dir;
   int outputs_written = 0, outputs_unchanged = 0;
   int outputs_removed = 0;  // earlier outputs of dates (or a calendar) this fill no longer makes
+  std::vector<std::string> outputs;  // every raster this run wrote or left unchanged
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
   std::string date_conflict;      // see date_conflict_note (stack.hpp); "" where none

@@ -20,8 +20,12 @@ namespace kalends {
 /// month's own. Commands say so when they read such dates as starts.
 bool dates_at_month_ends(const std::vector<TimePoint>& dates);
 
-/// The note commands give on such dates read as starts; `option` is how to ask for ends
-/// ("--date-marks end", or a job file's key).
+/// `given`, or for DateMarks::automatic: `end` on dates at month ends, else `start`. Read as
+/// starts, monthly means stamped on the month's last day had each stood for the month after.
+DateMarks resolve_date_marks(DateMarks given, const std::vector<TimePoint>& dates);
+
+/// The note commands give when the automatic rule reads such dates as ends; `option` is how to
+/// ask for starts ("--date-marks start", or a job file's key).
 std::string month_end_note(const std::string& option);
 
 /// "2004-2009" or "2006" -> first and last year; UsageError otherwise.

@@ -20,7 +20,7 @@ struct SeasonsRequest {
   std::string name;  // empty = from the input
   CalendarPeriod period;  // default: calendar months
   std::optional<int> first_year, last_year;
-  DateMarks marks = DateMarks::start;
+  DateMarks marks = DateMarks::automatic;
   CycleOptions cycle;
   std::int64_t memory_bytes = std::int64_t(1) << 30;
   int threads = 0;

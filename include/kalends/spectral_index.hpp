@@ -39,6 +39,7 @@ struct IndexRequest {
 
 struct IndexSummary {
   int outputs_written = 0, outputs_unchanged = 0;
+  std::vector<std::string> outputs;  // every raster this run wrote or left unchanged
   int dates = 0;
   std::int64_t pixels = 0, missing = 0;
   std::string out_dir;

@@ -37,7 +37,7 @@ struct TemperatureInputs {
   std::map<std::string, ValueRules> rules_of;
   TemperatureUnit unit = TemperatureUnit::automatic;
   double day_hour = 13.5, night_hour = 1.5;  // local solar time of the overpasses
-  DateMarks marks = DateMarks::start;        // what a composite's date marks
+  DateMarks marks = DateMarks::automatic;        // what a composite's date marks
 };
 
 struct DiurnalRequest {

@@ -15,7 +15,7 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
       "extract", "Covariate values at survey points and dates, with flags, errors and reasons");
   struct Options {
     ExtractRequest request;
-    std::string sampling = "nearest", lags, layers, buffer, marks = "start";
+    std::string sampling = "nearest", lags, layers, buffer, marks = "auto";
   };
   auto o = std::make_shared<Options>();
   ExtractRequest& r = o->request;
@@ -38,8 +38,8 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--crs", r.points.crs, "CRS of CSV coordinates (EPSG code, WKT or PROJ string)")
       ->capture_default_str();
   sub->add_option("--date-marks", o->marks,
-                  "What a dated layer's date marks in its composite: start, middle or end (e.g. end for "
-                  "monthly means stamped on the month's last day)")
+                  "What a dated layer's date marks in its composite: start, middle or end; auto: end where every "
+                  "date is the last day of its month (monthly means as CF files stamp them), else start")
       ->capture_default_str();
   return [o, &global] {
     ExtractRequest& r = o->request;

@@ -88,7 +88,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     bool mosaic = false;
     MethodOptionTexts method_texts;
     ValueRuleTexts rule_texts;
-    std::string memory = "1G", every, compression = "deflate", marks = "start", subset;
+    std::string memory = "1G", every, compression = "deflate", marks = "auto", subset;
   };
   auto o = std::make_shared<Options>();
   FillRequest& r = o->request;
@@ -102,8 +102,9 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--smooth", r.smooth, "Write the fitted curve everywhere, not only in gaps");
   sub->add_option("--every", o->every, "Also write a regular calendar: 1M (months) or N days from 1 January, such as 16d or 8d");
   sub->add_option("--date-marks", o->marks,
-                  "For --every: what an input date marks in its composite: start (MODIS), middle or end")
-      ->check(CLI::IsMember({"start", "middle", "end"}))
+                  "For --every: what an input date marks in its composite: start (MODIS), middle or end; auto: end "
+                  "where every date is the last day of its month, else start")
+      ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
       ->capture_default_str();
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--qa", r.qa_input, "Quoted glob or raster of QA layers, paired by date");

@@ -48,8 +48,8 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
   std::vector<TimePoint> times;
   for (const InspectedLayer& l : layers) times.push_back(l.layer.time);
   if (dates_at_month_ends(times))
-    fmt::print("            every date is the last day of its month: if they stamp monthly means, give\n"
-               "            --date-marks end to seasons, suitability and extract\n");
+    fmt::print("            every date is the last day of its month: seasons, suitability, fill --every and\n"
+               "            extract read each as the end of the month it closes (--date-marks start: the month after)\n");
   const TimeGrid& t = r.time_grid;
   if (layers.size() > 1) {
     fmt::print("  time grid step {:g} days ({}), {} slots, {} with a date\n", t.step_days,

@@ -145,7 +145,9 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const StepReport& r : report.steps) {
         // "up to date" says it all; it had been printed twice, as the action and the reason.
         const bool said = r.reason == action_name(r.action);
-        fmt::print("  {:<12} {:<11}{}{}", r.id, action_name(r.action), said ? "" : " ", said ? "" : r.reason);
+        // No padding after the action when nothing follows it (a log line with trailing blanks).
+        if (said || r.reason.empty()) fmt::print("  {:<12} {}", r.id, action_name(r.action));
+        else fmt::print("  {:<12} {:<11} {}", r.id, action_name(r.action), r.reason);
         if (r.action == StepReport::Action::ran)
           fmt::print(" — {:.1f} s, {} file{} written, {} unchanged{}", r.seconds, r.outputs_written,
                      r.outputs_written == 1 ? "" : "s", r.outputs_unchanged,

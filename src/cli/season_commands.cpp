@@ -62,7 +62,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("seasons", "Synoptic and year-specific layers, anomalies, cycle descriptors");
   struct Options {
     SeasonsRequest request;
-    std::string period = "1M", years, marks = "start", memory = "1G", compression = "deflate";
+    std::string period = "1M", years, marks = "auto", memory = "1G", compression = "deflate";
   };
   auto o = std::make_shared<Options>();
   SeasonsRequest& r = o->request;
@@ -70,8 +70,10 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--out", r.out_dir, "Output folder")->required();
   sub->add_option("--period", o->period, "Calendar: 1M (months) or N days from 1 January, such as 16d or 8d")->capture_default_str();
   sub->add_option("--years", o->years, "Years to use, e.g. 2004-2009 or 2006");
-  sub->add_option("--date-marks", o->marks, "What an input date marks in its composite: start, middle or end")
-      ->check(CLI::IsMember({"start", "middle", "end"}))
+  sub->add_option("--date-marks", o->marks,
+                  "What an input date marks in its composite: start, middle or end; auto: end where every date is "
+                  "the last day of its month, else start")
+      ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
       ->capture_default_str();
   sub->add_option("--prominence", r.cycle.prominence_share, "A peak is a season above this share of the amplitude")
       ->capture_default_str();

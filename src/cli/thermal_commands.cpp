@@ -25,7 +25,7 @@ std::pair<std::string, std::string> split_pair(const std::string& text, const st
 // read them.
 struct InputOptions {
   TemperatureInputs inputs;
-  std::string units = "auto", scale, offset, nodata, marks = "start";
+  std::string units = "auto", scale, offset, nodata, marks = "auto";
 
   void add(CLI::App* sub, bool with_temperature) {
     sub->add_option("--tmin", inputs.tmin,
@@ -55,8 +55,9 @@ struct InputOptions {
                     "Band of each single-date file (1 = value of fill outputs)")
         ->capture_default_str();
     sub->add_option("--date-marks", marks,
-                    "What an input date marks in its composite: start, middle or end")
-        ->check(CLI::IsMember({"start", "middle", "end"}))
+                    "What an input date marks in its composite: start, middle or end; auto: end where every date "
+                    "is the last day of its month, else start")
+        ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
         ->capture_default_str();
   }
 

@@ -196,6 +196,7 @@ IndexSummary run_index(const IndexRequest& request) {
   // QA layers travel with the index so that `kalends fill --qa` finds them by date; they count
   // among the outputs written or unchanged.
   int qa_written = 0, qa_unchanged = 0;
+  std::vector<std::string> made = outputs.paths();
   if (qa) {
     const fs::path qa_dir = fs::path(request.out_dir) / "qa";
     fs::create_directories(qa_dir, ec);
@@ -204,6 +205,7 @@ IndexSummary run_index(const IndexRequest& request) {
       const Layer& q = qa->layers()[qa_of[i]];
       const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + fs::path(q.path).extension().string());
       const std::string temporary = detail::temporary_name(target.string());
+      made.push_back(target.string());
       if (request.region) {
         // A region's QA is the same window of the QA layer, so that it lines up with the index.
         detail::crop_raster(q.path, area, temporary);
@@ -229,6 +231,7 @@ IndexSummary run_index(const IndexRequest& request) {
   IndexSummary summary;
   summary.outputs_written = outputs.written() + qa_written;
   summary.outputs_unchanged = outputs.unchanged() + qa_unchanged;
+  summary.outputs = made;
   summary.dates = int(red.layers().size());
   summary.pixels = area.pixels() * summary.dates;
   summary.missing = missing;

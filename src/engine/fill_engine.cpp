@@ -121,8 +121,8 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
                     "'offset' if they are not in physical units)");
   if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
   if (const std::string note = calendar_gap_note(summary); !note.empty()) notes.push_back(note);
-  if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::start)
-    notes.push_back(month_end_note("--date-marks end"));
+  if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::automatic)
+    notes.push_back(month_end_note("--date-marks start"));
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
@@ -158,7 +158,8 @@ bool replaceable_fill_output(const fs::path& file, const FillRequest& request) {
 
 }  // namespace
 
-FillSummary run_fill(const FillRequest& request, const ProgressCallback& progress) {
+FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress) {
+  FillRequest request = given;  // its date marks resolved once the dates are known
   const auto started = std::chrono::steady_clock::now();
   detail::start_gdal();
 
@@ -175,6 +176,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   const Stack stack = Stack::open(request.input, request.rules);
   if (stack.layers().size() < 2)
     throw InputError(request.input, "holds a single date; filling in time needs several");
+  request.marks = resolve_date_marks(given.marks, stack.times());
   std::optional<QaPairing> qa;
   if (keep_rule) qa = pair_qa(stack, *keep_rule, request.qa_input, request.qa_band);
   const QaRule* keep = qa ? &qa->rule : nullptr;
@@ -686,6 +688,7 @@ FillSummary run_fill(const FillRequest& request, const ProgressCallback& progres
   if (budget != request.memory_bytes) summary.memory_raised_to = budget;
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
+  summary.outputs = outputs.paths();
   // A run that redoes some years leaves the others' outputs as they were: counted unchanged, so
   // that a run's counts add up to the files the step has (they had been in neither count).
   if (only) {

@@ -415,7 +415,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
   }
   r.series = select(std::move(found), request.layers);
   for (CovariateSeries& s : r.series) {
-    set_date_marks(s, request.marks);
+    std::vector<TimePoint> times;
+    for (const SeriesFile& f : s.files) times.push_back(f.time);
+    set_date_marks(s, resolve_date_marks(request.marks, times));
     if (!s.note.empty()) r.notes.push_back(s.name + ": " + s.note);
     // Hourly records: a survey day has many; which one it reads, and what a lag is, is said.
     if (s.kind == SeriesKind::dated)
@@ -427,10 +429,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
         }
     // Monthly means stamped on the month's last day, read as starts, are matched to the month
     // after: said, as `seasons` and `fill --every` say it (a survey in June had taken May's).
-    if (s.kind != SeriesKind::dated || request.marks != DateMarks::start) continue;
-    std::vector<TimePoint> times;
-    for (const SeriesFile& f : s.files) times.push_back(f.time);
-    if (dates_at_month_ends(times)) r.notes.push_back(s.name + ": " + month_end_note("--date-marks end"));
+    if (s.kind == SeriesKind::dated && !s.period && request.marks == DateMarks::automatic && dates_at_month_ends(times))
+      r.notes.push_back(s.name + ": " + month_end_note("--date-marks start"));
   }
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());

@@ -85,6 +85,12 @@ class OutputSet {
   OutputSet& operator=(const OutputSet&) = delete;
 
   std::size_t size() const noexcept { return files_.size(); }
+  /// The final names of every file, in order.
+  std::vector<std::string> paths() const {
+    std::vector<std::string> names;
+    for (const auto& file : files_) names.push_back(file->spec.path);
+    return names;
+  }
 
   /// Where the outputs' corner lies in the pixel grid that write() is given windows of (a
   /// region of a larger input raster); 0,0 by default.

@@ -541,9 +541,9 @@ class Runner {
     if (const auto at = reason.find(option_advice); at != std::string::npos)
       reason.replace(at, option_advice.size(),
                      fmt::format("set units = \"kelvin\" or \"celsius\" in step '{}'", step.id));
-    const std::string marks_advice = "give --date-marks end";
+    const std::string marks_advice = "give --date-marks start";
     if (const auto at = reason.find(marks_advice); at != std::string::npos)
-      reason.replace(at, marks_advice.size(), "give date_marks = \"end\"");
+      reason.replace(at, marks_advice.size(), "give date_marks = \"start\"");
     const std::string options_named = "the unit (--units) or scale factor (--scale)";
     if (const auto at = reason.find(options_named); at != std::string::npos)
       reason.replace(at, options_named.size(),
@@ -1178,7 +1178,7 @@ class Runner {
       const std::optional<DateMarks> calendar =
           step.options.count("every")
               ? std::optional<DateMarks>(parse_date_marks(step.options.count("date_marks") ? step.options.at("date_marks")
-                                                                                           : "start"))
+                                                                                           : "auto"))
               : std::nullopt;
       // A calendar's periods, in every year, depend on the stack's season (the days of the
       // year some composite stands for): a composite that moves it changes every year's
@@ -1187,7 +1187,8 @@ class Runner {
         std::set<TimePoint> dates;
         for (const auto& [f, sum] : files)
           if (const auto date = date_from_name(f)) dates.insert(*date);
-        return detail::season_label(TimeGrid::build(std::vector<TimePoint>(dates.begin(), dates.end())), *calendar);
+        const std::vector<TimePoint> times(dates.begin(), dates.end());
+        return detail::season_label(TimeGrid::build(times), resolve_date_marks(*calendar, times));
       };
       if (calendar && season(record->inputs) != season(now)) {
         report.reason += "; recomputing every year: the days of the year the composites stand for changed, and "
@@ -1258,6 +1259,7 @@ class Runner {
     const std::map<std::string, std::string> inputs_at_start = compared ? now : inputs_of(step);
     if (events_.step_started) events_.step_started(step.id, step.kind, report.reason);
     const auto started = std::chrono::steady_clock::now();
+    const auto earlier = db_->step(step.id);
     db_->step_running(step.id, step.kind);
     const std::string folder = step_folder(base_, step.id);
     remove_partials(folder);
@@ -1268,9 +1270,10 @@ class Runner {
       std::chrono::steady_clock::time_point started;
       ~Timer() { report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count(); }
     } timer{report, started};
+    std::optional<std::vector<std::string>> rasters;
     for (int attempt = 0;; ++attempt) {
       try {
-        execute(step, folder, report);
+        rasters = execute(step, folder, report);
         break;
       } catch (const InputError& e) {
         if (!options_.skip_bad || attempt > 1000 || e.where().empty() || !fs::is_regular_file(e.where()) ||
@@ -1279,6 +1282,22 @@ class Runner {
         excluded_.push_back(e.where());
         report_.skipped_inputs.push_back(e.where() + ": " + e.reason());
         fingerprints_.clear();
+      }
+    }
+    // Run whole, the step owns its folder: its earlier rasters that it no longer makes (the
+    // files of its old name after 'name' or 'index' changed) go, or later steps read them with
+    // the new ones as one stack ("duplicate date"), or as current.
+    if (rasters && earlier && !only_years_ && !only_tiles_) {
+      std::set<std::string> made;
+      for (const std::string& path : *rasters) made.insert(fs::path(path).lexically_normal().string());
+      const fs::path own = fs::path(folder).lexically_normal();
+      for (const std::string& path : earlier->outputs) {
+        const fs::path file = fs::path(path).lexically_normal();
+        const auto [inside, rest] = std::mismatch(own.begin(), own.end(), file.begin(), file.end());
+        std::error_code ec;
+        if (inside == own.end() && file.extension() == ".tif" && !made.count(file.string()) &&
+            fs::is_regular_file(file, ec) && fs::remove(file, ec))
+          ++report.outputs_removed;
       }
     }
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
@@ -1291,7 +1310,7 @@ class Runner {
     db_->step_done(done);
   }
 
-  void execute(const JobStep& step, const std::string& folder, StepReport& report) {
+  std::optional<std::vector<std::string>> execute(const JobStep& step, const std::string& folder, StepReport& report) {
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
     if (!kind) throw UsageError(job_.path, "unknown step '" + step.kind + "'");
     detail::StepContext context{step.options};
@@ -1327,6 +1346,7 @@ class Runner {
       for (const std::string& note : outcome.notes) text += note + "\n";
       detail::write_text_atomically((fs::path(context.folder) / shard_notes_file).string(), text);
     }
+    return outcome.rasters;
   }
 
   std::int64_t cli_memory() const;

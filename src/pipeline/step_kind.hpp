@@ -85,6 +85,10 @@ struct StepOutcome {
   std::string caution;  // shown with the step's outputs
   std::vector<std::string> notes;  // what the step's command would print about its input data
   int outputs_removed = 0;  // earlier outputs the step no longer makes, removed
+  /// Every raster the step made or kept, where it knows them all: after a whole run the runner
+  /// removes the step's earlier rasters not among them (a renamed step's old names, which later
+  /// steps would read with the new ones as one stack).
+  std::optional<std::vector<std::string>> rasters{};
 };
 
 struct StepKind {

@@ -13,8 +13,13 @@
 namespace kalends {
 
 std::string month_end_note(const std::string& option) {
-  return "every input date is the last day of its month. If they stamp monthly means (as CF files often do), "
-         "give " + option + ": read as starts, each stands for the month after";
+  return "every input date is the last day of its month: read as month ends, each standing for the month it "
+         "closes (as CF files stamp monthly means); give " + option + " if each stands for the month after";
+}
+
+DateMarks resolve_date_marks(DateMarks given, const std::vector<TimePoint>& dates) {
+  if (given != DateMarks::automatic) return given;
+  return dates_at_month_ends(dates) ? DateMarks::end : DateMarks::start;
 }
 
 bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
@@ -28,10 +33,11 @@ bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
 }
 
 DateMarks parse_date_marks(const std::string& text) {
+  if (text == "auto") return DateMarks::automatic;
   if (text == "start") return DateMarks::start;
   if (text == "middle") return DateMarks::middle;
   if (text == "end") return DateMarks::end;
-  throw UsageError("--date-marks '" + text + "'", "expected start, middle or end");
+  throw UsageError("--date-marks '" + text + "'", "expected auto, start, middle or end");
 }
 
 std::pair<int, int> parse_years(const std::string& text) {

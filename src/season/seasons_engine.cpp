@@ -176,7 +176,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   std::vector<Period> periods;
   for (int y = first_year; y <= last_year; ++y)
     for (const Period& p : periods_of_year(y, request.period)) periods.push_back(p);
-  const std::vector<PeriodSources> sources = period_sources(times, periods, request.marks);
+  const std::vector<PeriodSources> sources =
+      period_sources(times, periods, resolve_date_marks(request.marks, times));
   // Before anything is written: a --years of missing years only is refused.
   const std::vector<int> years_without_composite = kalends::years_without_composite(sources, first_year, P);
   std::vector<char> used(times.size(), 0);

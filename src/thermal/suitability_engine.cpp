@@ -122,7 +122,8 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   // Which dates feed each period, with their weights: composites and days by their overlap in
   // days, sub-daily records once each in the period holding them (period_sources, as `kalends
   // seasons`).
-  const std::vector<PeriodSources> sources = period_sources(times, periods, request.inputs.marks);
+  const std::vector<PeriodSources> sources =
+      period_sources(times, periods, resolve_date_marks(request.inputs.marks, times));
   // Before anything is written: a --years of missing years only is refused; others are noted.
   const std::vector<int> missing_years = years_without_composite(sources, first_year, P);
   std::vector<char> used(times.size(), 0);

@@ -179,8 +179,9 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
     if (s.days[i] == s.days[i - 1]) s.sub_daily = true;
   const std::int64_t step = s.sub_daily ? 1 : median_spacing(s.days, 1);
   // The sun of a composite is that of the middle of the days it stands for.
-  const std::int64_t shift = in.marks == DateMarks::start ? step / 2
-                             : in.marks == DateMarks::end ? -(step / 2)
+  const DateMarks marks = resolve_date_marks(in.marks, s.times);
+  const std::int64_t shift = marks == DateMarks::start ? step / 2
+                             : marks == DateMarks::end ? -(step / 2)
                                                           : 0;
   s.day_of_year.resize(n);
   s.adjacent_before.assign(n, 0);

@@ -755,14 +755,15 @@ class JobWording(kt.TempDirTestCase):
     def test_a_failed_step_stops_only_the_steps_that_read_it(self):
         # One step's bad input had left every later step of the night "not reached", the
         # independent ones too.
-        job = small_dated_job(self.tmp, '[[step]]\nid = "broken"\ndo = "fill"\ninput = "bad"\n'
+        folder = os.path.join(self.tmp, "independent")
+        job = small_dated_job(folder, '[[step]]\nid = "broken"\ndo = "fill"\ninput = "bad"\n'
                                         '[[step]]\nid = "again"\ndo = "fill"\ninput = "broken"\n'
                                         '[[step]]\nid = "other"\ndo = "fill"\ninput = "ndvi"\nmethod = "harmonic"\n'
                                         '[[step]]\ndo = "report"\nafter = ["again", "other"]\n')
         with open(job, "a") as f:
             f.write('[inputs.bad]\nstack = "broken/*.tif"\n')
-        os.makedirs(os.path.join(self.tmp, "broken"))
-        with open(os.path.join(self.tmp, "broken", "ndvi_2021-01-01.tif"), "wb") as f:
+        os.makedirs(os.path.join(folder, "broken"))
+        with open(os.path.join(folder, "broken", "ndvi_2021-01-01.tif"), "wb") as f:
             f.write(b"not a raster")
         done = run(job)
         self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
@@ -773,7 +774,7 @@ class JobWording(kt.TempDirTestCase):
         self.assertRegex(rows["broken"], r"^  broken +failed +.*ndvi_2021-01-01.tif: cannot open")
         self.assertRegex(rows["again"], r"not reached +reads step 'broken', which failed")
         self.assertRegex(rows["report"], r"not reached +reads step 'again', not run: step 'broken' failed")
-        self.assertTrue(glob.glob(os.path.join(self.tmp, "out", "other", "*.tif")))
+        self.assertTrue(glob.glob(os.path.join(folder, "out", "other", "*.tif")))
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("ndvi_2021-01-01.tif: cannot open", done.stderr)
         status = kt.run_kalends(["status", job])
@@ -783,8 +784,8 @@ class JobWording(kt.TempDirTestCase):
         self.assertRegex(status.stdout, r"(?m)^report +report +never run +reads step 'again', which waits for "
                                         r"failed step 'broken'")
         # Fixed, the next run does what waited and leaves the rest.
-        for path in glob.glob(os.path.join(self.tmp, "layers", "*.tif")):
-            shutil.copy(path, os.path.join(self.tmp, "broken"))
+        for path in glob.glob(os.path.join(folder, "layers", "*.tif")):
+            shutil.copy(path, os.path.join(folder, "broken"))
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         for step, action in (("fill", "up to date"), ("other", "up to date"), ("broken", "ran"), ("again", "ran"),
@@ -1291,6 +1292,40 @@ class RemovedOutputs(kt.TempDirTestCase):
         os.remove(sorted(glob.glob(os.path.join(inputs, "*.tif")))[0])
         done = run(job)
         self.assertIn("1 removed (no longer made)", done.stdout)
+
+
+    def test_a_renamed_steps_old_files_are_removed_and_not_read(self):
+        # An index step changed from NDVI to EVI (and a fill renamed) had left the old name's
+        # files beside the new: the fill reading it then failed on "duplicate date", and a
+        # renamed fill's old files stayed as if current. Invented bands, mechanics only.
+        folder = os.path.join(self.tmp, "renamed")
+        os.makedirs(os.path.join(folder, "bands"))
+        rng = np.random.default_rng(3)
+        for day in (1, 17, 33, 49):
+            date = (datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)).isoformat()
+            for band, level in (("red", 0.05), ("nir", 0.3), ("blue", 0.03)):
+                kt.write_raster(os.path.join(folder, "bands", "%s_%s.tif" % (band, date)),
+                                (level + 0.02 * rng.random((6, 6))).astype(np.float32),
+                                geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        text = ('[job]\nout = "{out}"\n[inputs.red]\nstack = "bands/red_*.tif"\n[inputs.nir]\nstack = "bands/nir_*.tif"\n'
+                '[inputs.blue]\nstack = "bands/blue_*.tif"\n[[step]]\nid = "vi"\ndo = "index"\nred = "red"\n'
+                'nir = "nir"\nblue = "blue"\nindex = "{index}"\n[[step]]\ndo = "fill"\ninput = "vi"\n{name}')
+        job = os.path.join(folder, "job.toml")
+        for index, name in (("ndvi", ""), ("evi", ""), ("evi", 'name = "greenness"\n')):
+            with open(job, "w") as f:
+                f.write(text.format(out="out", index=index, name=name))
+            done = run(job)
+            self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertIn("4 removed (no longer made)", done.stdout)
+        self.assertEqual(sorted(os.listdir(os.path.join(folder, "out", "vi"))),
+                         ["evi_2021-01-01.tif", "evi_2021-01-17.tif", "evi_2021-02-02.tif", "evi_2021-02-18.tif"])
+        self.assertEqual(sorted(glob.glob(os.path.join(folder, "out", "fill", "*.tif"))),
+                         sorted(glob.glob(os.path.join(folder, "out", "fill", "greenness_*.tif"))))
+        # The same as a run of the last job file from scratch.
+        with open(job, "w") as f:
+            f.write(text.format(out="scratch", index="evi", name='name = "greenness"\n'))
+        self.assertEqual(run(job).returncode, 0)
+        self.assertEqual(content(os.path.join(folder, "out")), content(os.path.join(folder, "scratch")))
 
 
 class ReachAcrossTheWinter(kt.TempDirTestCase):

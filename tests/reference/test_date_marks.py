@@ -86,19 +86,27 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
     def test_end_marks_read_the_survey_month(self):
         self.check(self.extract("--date-marks", "end"), lambda day: day.month)
 
-    def test_start_marks_on_month_ends_are_said(self):
-        # Read as starts, each month's mean is matched to the month after: said, as seasons says
-        # it (extract had said nothing); with end marks, nothing to say.
-        for options, said in (([], True), (["--date-marks", "end"], False)):
+    def test_the_default_reads_month_ends_as_ends(self):
+        # Read as starts (the default before version 0.3.19), each month's mean had been matched
+        # to the month after, with a note the user could miss.
+        self.check(self.extract(), lambda day: day.month)
+
+    def test_month_ends_read_as_ends_are_said(self):
+        # The automatic reading says what it did and how to read them as starts; given marks,
+        # nothing to say.
+        for options, said in (([], True), (["--date-marks", "end"], False), (["--date-marks", "start"], False)):
             done = kt.run_kalends(["extract", self.filled, "--points", self.csv, "--out",
                                    os.path.join(self.tmp, "said.csv")] + options)
             self.assertEqual(done.returncode, 0, done.stderr)
             self.assertEqual("every input date is the last day of its month" in done.stderr, said, done.stderr)
+            if said:
+                self.assertIn("read as month ends", done.stderr)
+                self.assertIn("give --date-marks start", done.stderr)
 
     def test_start_marks_read_the_month_before(self):
         # The file dated on or before the survey day: the previous month's mean (its stamp is the
         # previous month's last day), unless the survey is on the last day of a month.
-        self.check(self.extract(), lambda day: day.month if day == self.stamps[day.month - 1] else day.month - 1)
+        self.check(self.extract("--date-marks", "start"), lambda day: day.month if day == self.stamps[day.month - 1] else day.month - 1)
 
 
 class JobNotesOnMonthEnds(kt.TempDirTestCase):
@@ -121,7 +129,7 @@ class JobNotesOnMonthEnds(kt.TempDirTestCase):
         notes = [line for line in done.stdout.splitlines() if "last day of its month" in line]
         self.assertEqual(len(notes), 2, done.stdout)      # the fill's and the extract's
         for note in notes:
-            self.assertIn('give date_marks = "end"', note)
+            self.assertIn('give date_marks = "start"', note)
             self.assertNotIn("--date-marks", note)
 
 
@@ -274,13 +282,13 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
         ds = None
         tas[tas > 1e19] = np.nan  # _FillValue over the sea
         rms, months = {}, {}
-        for marks in ("start", "end"):
+        for marks in ("start", "end", "auto"):
             out = os.path.join(self.tmp, marks)
             done = kt.run_kalends(["-q", "fill", source, "--out", out, "--method", "whittaker", "--lambda", "0.01",
                                    "--every", "1M", "--date-marks", marks])
             self.assertEqual(done.returncode, 0, done.stderr)
-            # Read as starts, a note says what they likely are (it had said nothing).
-            self.assertEqual("every input date is the last day of its month" in done.stderr, marks == "start",
+            # Read as ends by the automatic rule (the default), a note says so.
+            self.assertEqual("every input date is the last day of its month" in done.stderr, marks == "auto",
                              done.stderr)
             calendar = os.path.join(out, "calendar-1M")
             names = sorted(os.listdir(calendar))
@@ -291,7 +299,7 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
                 if year != 1999:
                     continue
                 cal = g.Open(os.path.join(calendar, n))
-                self.assertEqual(cal.GetMetadataItem("KALENDS_DATE_MARKS"), marks)
+                self.assertEqual(cal.GetMetadataItem("KALENDS_DATE_MARKS"), "end" if marks == "auto" else marks)
                 value = cal.ReadAsArray()[0].astype(np.float64)
                 cal = None
                 errors.append(np.nanmean((value - tas[month - 1]) ** 2))
@@ -302,6 +310,8 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
         self.assertEqual(months["start"], ["1999-%02d" % m for m in range(2, 13)] + ["2000-01"])
         self.assertLess(rms["end"], 1.0)
         self.assertLess(rms["end"], 0.25 * rms["start"])
+        self.assertEqual(months["auto"], months["end"])
+        self.assertEqual(rms["auto"], rms["end"])
 
 
 if __name__ == "__main__":

@@ -645,10 +645,17 @@ class RawStacks(kt.TempDirTestCase):
         out = os.path.join(self.tmp, "tas.csv")
         done = kt.run_kalends(["extract", self.tas, "--points", self.points, "--out", out, "--lags", "1"])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("every input date is the last day of its month", done.stderr)
+        # Month-end stamps are read as the ends of their months by default (version 0.3.19).
+        self.assertIn("every input date is the last day of its month: read as month ends", done.stderr)
         table = kt.read_table(out)
-        self.check(table, "tas", "tas", "start")
-        self.check(table, "tas.lag1", "tas", "start", lag=1)
+        self.check(table, "tas", "tas", "end")
+        self.check(table, "tas.lag1", "tas", "end", lag=1)
+        out = os.path.join(self.tmp, "tas-start.csv")
+        done = kt.run_kalends(["-q", "extract", self.tas, "--points", self.points, "--out", out, "--lags", "1",
+                               "--date-marks", "start"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.check(kt.read_table(out), "tas", "tas", "start")
+        self.check(kt.read_table(out), "tas.lag1", "tas", "start", lag=1)
         out = os.path.join(self.tmp, "tas-end.csv")
         done = kt.run_kalends(["-q", "extract", self.tas, "--points", self.points, "--out", out,
                                "--date-marks", "end"])

@@ -92,10 +92,11 @@ class InspectRealData(kt.TempDirTestCase):
             self.assertEqual(d["observed"], int((tas[k] < 1e19).sum()))
             self.assertEqual(d["band"], k + 1)
         ds = None
-        # Month-end stamps: the text report points to --date-marks end.
+        # Month-end stamps: the text report says they are read as month ends, and how not to.
         done = kt.run_kalends(["inspect", source])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertIn("--date-marks end", done.stdout)
+        self.assertIn("read each as the end of the month it closes", done.stdout)
+        self.assertIn("--date-marks start", done.stdout)
         # The range of the observed physical values, where a forgotten scale factor would show.
         land = tas[tas < 1e19].astype(np.float64)
         self.assertIn("range     %.4g .. %.4g," % (land.min(), land.max()), done.stdout)

@@ -632,16 +632,25 @@ class RealData(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "seasons", source, "--out", out, "--date-marks", "end"])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertNotIn("last day of its month", done.stderr)
-        # Read as starts (the default), the same dates draw a note suggesting --date-marks end,
-        # and the year layer is then about a month late: 'end' gives June's own mean, 'start'
+        # The default reads them as ends too, and says so (version 0.3.19; read as starts, the
+        # year layers had been a month late, with a note the user could miss).
+        default = os.path.join(self.tmp, "tas-default")
+        as_default = kt.run_kalends(["-q", "seasons", source, "--out", default])
+        self.assertEqual(as_default.returncode, 0, as_default.stderr)
+        self.assertIn("every input date is the last day of its month: read as month ends", as_default.stderr)
+        self.assertIn("--date-marks start", as_default.stderr)
+        for name in os.listdir(out):
+            if name.endswith(".tif"):
+                np.testing.assert_array_equal(g.Open(os.path.join(out, name)).ReadAsArray(),
+                                              g.Open(os.path.join(default, name)).ReadAsArray(), err_msg=name)
+        # Read as starts, the year layer is about a month late: 'end' gives June's own mean, 'start'
         # lets the mean stamped 31 May stand for 31 May - 29 June (30 days, its gap to the next
         # date) and the one stamped 30 June for 30 June on, so June is 29 days of May's mean and
         # one of June's.
         starts = os.path.join(self.tmp, "tas-starts")
-        as_starts = kt.run_kalends(["-q", "seasons", source, "--out", starts])
+        as_starts = kt.run_kalends(["-q", "seasons", source, "--out", starts, "--date-marks", "start"])
         self.assertEqual(as_starts.returncode, 0, as_starts.stderr)
-        self.assertIn("every input date is the last day of its month", as_starts.stderr)
-        self.assertIn("--date-marks end", as_starts.stderr)
+        self.assertNotIn("last day of its month", as_starts.stderr)
         year_end = g.Open(os.path.join(out, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
         year_start = g.Open(os.path.join(starts, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
         land_cells = np.all(np.isfinite(tas), axis=0)

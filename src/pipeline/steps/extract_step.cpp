@@ -29,7 +29,7 @@ ExtractRequest extract_request(const StepContext& c) {
   r.sampling = parse_sampling(c.text("sampling", "nearest"));
   r.buffer_metres = c.number("buffer", 0);
   r.lags = c.integers("lags");
-  r.marks = parse_date_marks(c.text("date_marks", "start"));
+  r.marks = parse_date_marks(c.text("date_marks", "auto"));
   r.layers = c.list("layers");
   r.long_format = c.flag("long");
   r.include_descriptors = c.flag("descriptors");

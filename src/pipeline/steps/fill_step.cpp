@@ -214,7 +214,7 @@ FillRequest fill_request(const StepContext& c) {
   m.spacetime_neighbour_radius = c.integer("neighbour_radius", m.spacetime_neighbour_radius);
   r.smooth = c.flag("smooth");
   if (c.has("every")) r.every = CalendarPeriod::parse(c.text("every"));
-  r.marks = parse_date_marks(c.text("date_marks", "start"));
+  r.marks = parse_date_marks(c.text("date_marks", "auto"));
   take_run_settings(r, c);
   return r;
 }
@@ -283,7 +283,9 @@ StepKind fill_step_kind() {
       return outcome;
     }
     const FillSummary s = run_fill(r, c.progress);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", fill_notes(r, s), s.outputs_removed};
+    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", fill_notes(r, s), s.outputs_removed};
+    outcome.rasters = s.outputs;
+    return outcome;
   };
   return kind;
 }

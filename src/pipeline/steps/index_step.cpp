@@ -53,7 +53,9 @@ StepKind index_step_kind() {
   kind.check_values = [](const StepContext& c) { check_index_options(index_request(c)); };
   kind.run = [](const StepContext& c) {
     const IndexSummary s = run_index(index_request(c));
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", {}};
+    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", {}};
+    outcome.rasters = s.outputs;
+    return outcome;
   };
   return kind;
 }

@@ -15,7 +15,7 @@ SeasonsRequest seasons_request(const StepContext& c) {
   r.rules = in.rules;
   r.period = CalendarPeriod::parse(c.text("period", "1M"), "--period");
   if (c.has("years")) std::tie(r.first_year, r.last_year) = parse_years(c.text("years"));
-  r.marks = parse_date_marks(c.text("date_marks", "start"));
+  r.marks = parse_date_marks(c.text("date_marks", "auto"));
   r.cycle.prominence_share = c.number("prominence", r.cycle.prominence_share);
   r.cycle.threshold_share = c.number("threshold", r.cycle.threshold_share);
   r.cycle.min_amplitude = c.number("min_amplitude", r.cycle.min_amplitude);
@@ -42,7 +42,9 @@ StepKind seasons_step_kind() {
   kind.run = [](const StepContext& c) {
     const SeasonsRequest r = seasons_request(c);
     const SeasonsSummary s = run_seasons(r);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, "", seasons_notes(r, s), s.outputs_removed};
+    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", seasons_notes(r, s), s.outputs_removed};
+    outcome.rasters = s.outputs;
+    return outcome;
   };
   return kind;
 }

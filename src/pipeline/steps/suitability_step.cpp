@@ -23,7 +23,7 @@ SuitabilityRequest suitability_request(const StepContext& c) {
   t.unit = parse_temperature_unit(c.text("units", "auto"));
   t.day_hour = c.number("day_hour", t.day_hour);
   t.night_hour = c.number("night_hour", t.night_hour);
-  t.marks = parse_date_marks(c.text("date_marks", "start"));
+  t.marks = parse_date_marks(c.text("date_marks", "auto"));
   r.model = parse_model_kind(c.text("model", "r0-2013"));
   r.parasite = parse_parasite(c.text("parasite", "falciparum"));
   if (c.has("window")) {
@@ -63,7 +63,9 @@ StepKind suitability_step_kind() {
   kind.run = [](const StepContext& c) {
     const SuitabilityRequest r = suitability_request(c);
     const SuitabilitySummary s = run_suitability(r);
-    return StepOutcome{s.outputs_written, s.outputs_unchanged, suitability_caution, s.notes, s.outputs_removed};
+    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, suitability_caution, s.notes, s.outputs_removed};
+    outcome.rasters = s.outputs;
+    return outcome;
   };
   return kind;
 }
