@@ -628,7 +628,17 @@ class Runner {
         s.state = !record ? "never run" : record->status == "failed" ? "failed" : "stale";
         s.detail = s.state == "failed" ? record->finished + " UTC: " + record->message
                                        : std::string("an input cannot be read: ") + e.what();
-        if (s.state == "failed") failed_root[step.id] = step.id;
+        // A step reading one that failed on this input: that step named first, as below.
+        const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
+                                        [&](const std::string& name) { return failed_root.count(name) != 0; });
+        if (s.state == "failed") {
+          failed_root[step.id] = step.id;
+        } else if (waits != step.inputs.end()) {
+          const std::string& root = failed_root.at(*waits);
+          failed_root[step.id] = root;
+          s.detail = *waits == root ? fmt::format("reads step '{}', which failed", root)
+                                    : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
+        }
         list.push_back(s);
         continue;
       }

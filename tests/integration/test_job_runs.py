@@ -783,6 +783,15 @@ class JobWording(kt.TempDirTestCase):
         self.assertRegex(status.stdout, r"(?m)^again +fill +never run +reads step 'broken', which failed")
         self.assertRegex(status.stdout, r"(?m)^report +report +never run +reads step 'again', which waits for "
                                         r"failed step 'broken'")
+        # The same when the failed step's input folder is missing (the steps reading it cannot
+        # be fingerprinted either: they had been "stale: an input cannot be read").
+        os.rename(os.path.join(folder, "broken"), os.path.join(folder, "gone"))
+        self.assertEqual(run(job).returncode, 2)
+        status = kt.run_kalends(["status", job])
+        self.assertRegex(status.stdout, r"(?m)^again +fill +never run +reads step 'broken', which failed$")
+        self.assertRegex(status.stdout, r"(?m)^report +report +never run +reads step 'again', which waits for "
+                                        r"failed step 'broken'$")
+        os.rename(os.path.join(folder, "gone"), os.path.join(folder, "broken"))
         # Fixed, the next run does what waited and leaves the rest.
         for path in glob.glob(os.path.join(folder, "layers", "*.tif")):
             shutil.copy(path, os.path.join(folder, "broken"))
