@@ -38,7 +38,8 @@ struct Cube {
 };
 
 // GDALFillNodata (inverse-distance interpolation from the edges of each hole, then no
-// smoothing) of one plane, search distance the whole raster: GDAL's spatial-only fill.
+// smoothing) of one plane, search distance the whole raster (its diagonal: max(width, height)
+// had left cells unfilled where a date's only data sat in a corner): GDAL's spatial-only fill.
 std::vector<float> gdal_fill_nodata(const float* plane, int width, int height) {
   GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
   GDALDatasetUniquePtr ds(mem->Create("", width, height, 1, GDT_Float32, nullptr));
@@ -49,7 +50,8 @@ std::vector<float> gdal_fill_nodata(const float* plane, int width, int height) {
                      nullptr) != CE_None)
     throw Error("validate", "GDAL could not write a memory raster");
   if (std::none_of(out.begin(), out.end(), [](float x) { return std::isfinite(x); })) return out;
-  GDALFillNodata(band, nullptr, double(std::max(width, height)), 0, 0, nullptr, nullptr, nullptr);
+  GDALFillNodata(band, nullptr, std::ceil(std::hypot(double(width), double(height))) + 1, 0, 0, nullptr, nullptr,
+                 nullptr);
   if (band->RasterIO(GF_Read, 0, 0, width, height, out.data(), width, height, GDT_Float32, 0, 0,
                      nullptr) != CE_None)
     throw Error("validate", "GDAL could not read a memory raster");
@@ -331,13 +333,14 @@ ValidateReport run_validate(const ValidateRequest& request) {
       int j = pick(rng);
       if (j >= k) ++j;
       if (missing_of[j] == 0) continue;
-      ++masks;
+      const std::int64_t before = count;
       for (std::size_t i = 0; i < plane && count < goal; ++i)
         if (!std::isfinite(truth.at(j)[i]) && std::isfinite(held.at(k)[i])) {
           held.at(k)[i] = NAN;
           withheld[std::size_t(k) * plane + i] = 1;
           ++count;
         }
+      masks += count > before;  // a mask that withheld nothing is not counted as transplanted
     }
   }
 
@@ -565,10 +568,16 @@ ValidateReport run_validate(const ValidateRequest& request) {
       }
       int next = t + 1;
       while (next < dates && !std::isfinite(held.at(next)[p])) ++next;
+      // As numpy.interp: the first and last observed values held beyond the ends (the issue's
+      // baseline figures were computed so); a pixel never observed gets none.
       float v = NAN;
       if (previous >= 0 && next < dates) {
         const double f = (days[t] - days[previous]) / (days[next] - days[previous]);
         v = float(held.at(previous)[p] + f * (held.at(next)[p] - held.at(previous)[p]));
+      } else if (previous >= 0) {
+        v = held.at(previous)[p];
+      } else if (next < dates) {
+        v = held.at(next)[p];
       }
       linear.at(t)[p] = v;
     }
