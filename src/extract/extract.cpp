@@ -7,9 +7,12 @@
 //   bilinear: the four cell centres around the point, weights (1-fx)(1-fy) ... (the usual
 //             bilinear interpolation); beyond the outermost centres the edge cells are repeated.
 //             Missing when a cell with a non-zero weight has no value.
-//   buffer:   mean of the cells with a value whose centre lies within the radius (projected CRS:
-//             distance on the grid, in metres through the CRS's linear unit; geographic CRS:
-//             great-circle distance on a sphere of radius 6 371 008.8 m, the IUGG mean radius).
+//   buffer:   mean of the cells with a value whose centre lies within the radius: great-circle
+//             distance on a sphere of radius 6 371 008.8 m (the IUGG mean radius) between the
+//             point and each cell centre in longitude-latitude (a projected CRS's centres taken
+//             to its own geographic CRS by PROJ). Distance on the grid of a projected CRS had
+//             sheared the circle on a sinusoidal grid (MODIS) away from its central meridian.
+//             A CRS with no geographic CRS (a local engineering one): distance on the grid.
 #include <fmt/format.h>
 #include <fnmatch.h>
 #include <ogr_spatialref.h>
@@ -100,6 +103,17 @@ class SeriesGeometry {
       throw InputError(where, "its geotransform cannot be inverted");
     geographic_ = layer_crs_.IsGeographic();
     metres_per_unit_ = geographic_ ? 1.0 : layer_crs_.GetLinearUnits();
+    if (!geographic_ && buffer_m > 0) {
+      OGRSpatialReference geographic;
+      CPLPushErrorHandler(CPLQuietErrorHandler);
+      if (geographic.CopyGeogCSFrom(&layer_crs_) == OGRERR_NONE) {
+        geographic.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
+        to_geographic_.reset(OGRCreateCoordinateTransformation(&layer_crs_, &geographic));
+        from_geographic_.reset(OGRCreateCoordinateTransformation(&geographic, &layer_crs_));
+      }
+      CPLPopErrorHandler();
+      if (!to_geographic_ || !from_geographic_) to_geographic_.reset(), from_geographic_.reset();
+    }
   }
 
   Placement place(const SurveyPoint& p) const {
@@ -142,26 +156,55 @@ class SeriesGeometry {
       half_y = buffer_m_ / (earth_radius_m * pi / 180) * 1.01;
       half_x = half_y / std::max(1e-6, std::cos(at.y * pi / 180));
     } else {
-      half_x = half_y = buffer_m_ / metres_per_unit_;
+      half_x = half_y = buffer_m_ / metres_per_unit_ * 1.01;
     }
     double cmin = 1e300, cmax = -1e300, rmin = 1e300, rmax = -1e300;
+    auto extend = [&](double x, double y) {
+      const double c = inverse_[0] + x * inverse_[1] + y * inverse_[2];
+      const double r = inverse_[3] + x * inverse_[4] + y * inverse_[5];
+      cmin = std::min(cmin, c), cmax = std::max(cmax, c), rmin = std::min(rmin, r), rmax = std::max(rmax, r);
+    };
     for (double dx : {-half_x, half_x})
-      for (double dy : {-half_y, half_y}) {
-        const double c = inverse_[0] + (at.x + dx) * inverse_[1] + (at.y + dy) * inverse_[2];
-        const double r = inverse_[3] + (at.x + dx) * inverse_[4] + (at.y + dy) * inverse_[5];
-        cmin = std::min(cmin, c), cmax = std::max(cmax, c), rmin = std::min(rmin, r), rmax = std::max(rmax, r);
+      for (double dy : {-half_y, half_y}) extend(at.x + dx, at.y + dy);
+    // A projected CRS: the point in longitude-latitude, and the box widened to hold the circle
+    // on the ground, traced at every 5 degrees of bearing (a sheared grid holds it off the
+    // grid's own circle).
+    double lon = at.x, lat = at.y;
+    const bool on_ground = !geographic_ && to_geographic_ && to_geographic_->Transform(1, &lon, &lat) &&
+                           std::isfinite(lon) && std::isfinite(lat);
+    if (on_ground) {
+      const double angle = buffer_m_ / earth_radius_m, phi = lat * pi / 180;
+      for (int k = 0; k < 72; ++k) {
+        const double bearing = k * 5 * pi / 180;
+        const double phi2 = std::asin(std::sin(phi) * std::cos(angle) + std::cos(phi) * std::sin(angle) * std::cos(bearing));
+        const double lambda2 = lon * pi / 180 + std::atan2(std::sin(bearing) * std::sin(angle) * std::cos(phi),
+                                                           std::cos(angle) - std::sin(phi) * std::sin(phi2));
+        double x = lambda2 * 180 / pi, y = phi2 * 180 / pi;
+        if (from_geographic_->Transform(1, &x, &y) && std::isfinite(x) && std::isfinite(y)) extend(x, y);
       }
+    }
     std::vector<std::pair<int, int>> cells;
-    const int c0 = std::max(0, static_cast<int>(std::floor(cmin)) - 1);
-    const int c1 = std::min(series_.grid.width - 1, static_cast<int>(std::floor(cmax)) + 1);
-    const int r0 = std::max(0, static_cast<int>(std::floor(rmin)) - 1);
-    const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(rmax)) + 1);
+    // Two cells of margin: the traced circle's chords cut inside it by under 0.4 % of the radius.
+    const int c0 = std::max(0, static_cast<int>(std::floor(cmin)) - 2);
+    const int c1 = std::min(series_.grid.width - 1, static_cast<int>(std::floor(cmax)) + 2);
+    const int r0 = std::max(0, static_cast<int>(std::floor(rmin)) - 2);
+    const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(rmax)) + 2);
+    if (c0 > c1 || r0 > r1) return cells;
+    std::vector<double> xs, ys;
     for (int r = r0; r <= r1; ++r)
       for (int c = c0; c <= c1; ++c) {
-        const double cx = gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2];
-        const double cy = gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5];
-        const double d = geographic_ ? haversine_m(at.x, at.y, cx, cy)
-                                     : std::hypot(cx - at.x, cy - at.y) * metres_per_unit_;
+        xs.push_back(gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2]);
+        ys.push_back(gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5]);
+      }
+    std::vector<int> ok(xs.size(), 1);
+    std::vector<double> lons = xs, lats = ys;
+    if (on_ground) to_geographic_->Transform(int(lons.size()), lons.data(), lats.data(), nullptr, ok.data());
+    std::size_t i = 0;
+    for (int r = r0; r <= r1; ++r)
+      for (int c = c0; c <= c1; ++c, ++i) {
+        const double d = geographic_ ? haversine_m(at.x, at.y, xs[i], ys[i])
+                         : on_ground ? (ok[i] ? haversine_m(lon, lat, lons[i], lats[i]) : HUGE_VAL)
+                                     : std::hypot(xs[i] - at.x, ys[i] - at.y) * metres_per_unit_;
         if (d <= buffer_m_) cells.emplace_back(c, r);
       }
     return cells;
@@ -172,6 +215,8 @@ class SeriesGeometry {
   double buffer_m_;
   OGRSpatialReference layer_crs_;
   std::unique_ptr<OGRCoordinateTransformation> transform_;
+  // A projected layer: to and from its own geographic CRS, for distances on the ground.
+  std::unique_ptr<OGRCoordinateTransformation> to_geographic_, from_geographic_;
   double inverse_[6]{};
   bool geographic_ = false;
   double metres_per_unit_ = 1;

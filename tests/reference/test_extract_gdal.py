@@ -10,9 +10,15 @@ For WGS 84 points, the expected values are computed here, independently of kalen
 - pixel positions with gdal.InvGeoTransform; nearest = the cell holding the point; bilinear =
   the textbook weights of the four surrounding cell centres (edge cells repeated beyond the
   outermost centres), missing when a cell with a non-zero weight is missing;
-- buffer mean = numpy mean of the cells whose centre is within the radius (grid distance in
-  metres, the CRS's unit).
+- buffer mean = numpy mean of the cells whose centre is within the radius: great-circle distance
+  (haversine on a sphere of radius 6 371 008.8 m, the IUGG mean radius, from memory) between the
+  point and each cell centre, both taken to the layer's own geographic CRS by osr.
+
+A second class does the same on an invented raster on the MODIS sinusoidal grid at 65 N, 150 W,
+where distance on the grid and on the ground differ most (sinusoidal: x = R lambda cos phi,
+y = R phi; Snyder 1987, USGS Professional Paper 1395, from memory).
 """
+import math
 import os
 import shutil
 import sys
@@ -22,6 +28,30 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
 import kalends_testlib as kt  # noqa: E402
+
+
+def haversine_m(lon1, lat1, lon2, lat2):
+    p1, p2 = np.radians(lat1), np.radians(lat2)
+    a = np.sin((p2 - p1) / 2) ** 2 + np.cos(p1) * np.cos(p2) * np.sin(np.radians(lon2 - lon1) / 2) ** 2
+    return 2 * 6371008.8 * np.arcsin(np.minimum(1.0, np.sqrt(a)))
+
+
+def ground_distances(srs_wkt, gt, shape, x, y):
+    """Great-circle distance (m) from (x, y) to every cell centre of a grid in a projected CRS."""
+    kt.gdal()
+    from osgeo import osr
+    layer = osr.SpatialReference(wkt=srs_wkt)
+    layer.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+    geographic = layer.CloneGeogCS()
+    geographic.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+    to_geographic = osr.CoordinateTransformation(layer, geographic)
+    rows, cols = shape
+    cc, rr = np.meshgrid(np.arange(cols) + 0.5, np.arange(rows) + 0.5)
+    cx = gt[0] + cc * gt[1] + rr * gt[2]
+    cy = gt[3] + cc * gt[4] + rr * gt[5]
+    centres = np.array(to_geographic.TransformPoints(np.column_stack([cx.ravel(), cy.ravel()])))
+    lon, lat, _ = to_geographic.TransformPoint(x, y)
+    return haversine_m(lon, lat, centres[:, 0], centres[:, 1]).reshape(shape), (cx, cy)
 
 
 def value(text):
@@ -38,6 +68,7 @@ class ExtractLandsat(kt.TempDirTestCase):
         ds = g.Open(cls.raster)
         cls.bands = ds.ReadAsArray().astype(np.float64)  # (6, rows, cols)
         cls.gt = ds.GetGeoTransform()
+        cls.wkt = ds.GetProjection()
         cls.inv = g.InvGeoTransform(cls.gt)
         layer_srs = osr.SpatialReference(wkt=ds.GetProjection())
         layer_srs.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
@@ -119,14 +150,10 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertGreaterEqual(checked, 6 * 40)
 
     def test_buffer_mean_equals_numpy(self):
-        rows, cols = self.bands.shape[1:]
-        cc, rr = np.meshgrid(np.arange(cols) + 0.5, np.arange(rows) + 0.5)
-        cx = self.gt[0] + cc * self.gt[1] + rr * self.gt[2]
-        cy = self.gt[3] + cc * self.gt[4] + rr * self.gt[5]
         checked = outside_with_cells = 0
         for row, (pid, lon, lat) in zip(self.tables["nearest"], self.points):
             x, y, c, r = self.pixel(lon, lat)
-            within = np.hypot(cx - x, cy - y) <= 100.0
+            within = ground_distances(self.wkt, self.gt, self.bands.shape[1:], x, y)[0] <= 100.0
             self.assertEqual(int(row["L7_ETMs.b1.buffer_cells"]), int(within.sum()), pid)
             if not self.inside(c, r):
                 # Outside the layer: no value of its own, but the buffer's cells inside it count
@@ -473,6 +500,48 @@ class ExtractLandsat(kt.TempDirTestCase):
             self.assertIn(expected, done.stderr)
             self.assertFalse(os.path.exists(out))
 
+
+
+class BufferOnASinusoidalGrid(kt.TempDirTestCase):
+    def test_the_buffer_is_a_circle_on_the_ground(self):
+        # An invented 80 x 80 raster on the MODIS sinusoidal grid (463.3127 m cells, sphere of
+        # 6 371 007.181 m, as MODIS tiles are defined; from memory) around 150 W, 65 N, where a
+        # grid step north also moves 2.4 steps east on the ground: the grid's 2 km circle had
+        # held 58 cells of which 26 lie within 2 km.
+        g = kt.gdal()
+        from osgeo import osr
+        sinusoidal = osr.SpatialReference()
+        sinusoidal.ImportFromProj4("+proj=sinu +lon_0=0 +x_0=0 +y_0=0 +R=6371007.181 +units=m +no_defs")
+        sinusoidal.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+        geographic = sinusoidal.CloneGeogCS()
+        geographic.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
+        x0, y0, _ = osr.CoordinateTransformation(geographic, sinusoidal).TransformPoint(-150.0, 65.0)
+        size = 463.3127
+        gt = (x0 - 40 * size, size, 0, y0 + 40 * size, 0, -size)
+        values = np.random.default_rng(65).random((80, 80)).astype(np.float32)
+        raster = os.path.join(self.tmp, "sinusoidal.tif")
+        ds = g.GetDriverByName("GTiff").Create(raster, 80, 80, 1, g.GDT_Float32)
+        ds.SetGeoTransform(gt)
+        ds.SetProjection(sinusoidal.ExportToWkt())
+        ds.GetRasterBand(1).WriteArray(values)
+        ds = None
+        points = os.path.join(self.tmp, "points.csv")
+        sites = [("a", -150.0, 65.0), ("b", -150.013, 65.004), ("c", -149.98, 64.995)]
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\n" + "".join("%s,%r,%r,\n" % s for s in sites))
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["-q", "extract", raster, "--points", points, "--out", out, "--buffer", "2000"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        to_layer = osr.CoordinateTransformation(geographic, sinusoidal)
+        for row, (pid, lon, lat) in zip(kt.read_table(out), sites):
+            x, y, _ = to_layer.TransformPoint(lon, lat)
+            distance, (cx, cy) = ground_distances(sinusoidal.ExportToWkt(), gt, values.shape, x, y)
+            within = distance <= 2000
+            grid_circle = np.hypot(cx - x, cy - y) <= 2000
+            self.assertGreater(int((within != grid_circle).sum()), 20, pid)   # the premise: they differ
+            self.assertEqual(int(row["sinusoidal.buffer_cells"]), int(within.sum()), pid)
+            self.assertAlmostEqual(float(row["sinusoidal.buffer_mean"]), float(values[within].astype(np.float64).mean()),
+                                   delta=1e-6, msg=pid)
 
 
 class PointsOnEdgesAndCentres(kt.TempDirTestCase):
