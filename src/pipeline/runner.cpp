@@ -445,6 +445,30 @@ class Runner {
       report_.peak_memory_bytes = detail::peak_resident_bytes();
       return report_;
     }
+    // The small files of the user's that steps read (survey tables), before any step runs: a
+    // bad one fails its step at once, and that step alone.
+    std::map<std::string, Error> unusable_file;
+    for (const JobStep& step : job_.steps) {
+      const detail::StepKind* kind = detail::find_step_kind(step.kind);
+      if (!kind || !kind->check_files) continue;
+      const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
+      if (planned && (shard_ ? !planned->split : options_.finalize && planned->split)) continue;
+      try {
+        if (up_to_date(step)) continue;
+      } catch (const Error&) {
+        // An input it cannot read: the step fails on that when it is reached.
+      }
+      detail::StepContext context{step.options};
+      context.job_path = job_.path;
+      context.folder = step_folder(base_, step.id);
+      context.out = out_;
+      context.resolve = [this](const std::string& name) { return resolve(name); };
+      try {
+        kind->check_files(context);
+      } catch (const Error& e) {
+        unusable_file.emplace(step.id, e);
+      }
+    }
     // A failed step stops only the steps that read it, directly or through others: a bad points
     // file for one extract step had left every later step of the night undone ("not reached").
     std::map<std::string, std::string> stopped_by;  // step id -> the failed step it waits for
@@ -489,6 +513,13 @@ class Runner {
         }
         stopped_by[step.id] = step.id;
       };
+      if (const auto bad = unusable_file.find(step.id); bad != unusable_file.end()) {
+        const Error& e = bad->second;  // in the job's words, as the errors of a step that runs
+        fail_step(InputError(job_option_names(job_wording(e.where(), step)), job_wording(e.reason(), step)), 2);
+        if (events_.step_finished) events_.step_finished(r);
+        report_.steps.push_back(r);
+        continue;
+      }
       try {
         if (options_.finalize && planned->split) stitch_step(step, *planned, r);
         else run_step(step, r);

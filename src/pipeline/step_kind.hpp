@@ -101,6 +101,11 @@ struct StepKind {
   /// it with each input resolved to its own name, so that a bad value fails the job file when
   /// it is read (and `--dry-run`), not hours into an unattended run.
   std::function<void(const StepContext&)> check_values;
+  /// Reads the small files of the user's that the step depends on (a survey table) and throws
+  /// InputError for one it cannot use; nullptr where a kind has none. A run calls it before the
+  /// first step, for each step it will run: a failure is that step's alone (the steps reading
+  /// it wait, the others run), where a bad row had refused the whole job and `status` with it.
+  std::function<void(const StepContext&)> check_files;
   std::function<StepOutcome(const StepContext&)> run;
   /// Opens the step's inputs and throws UsageError("--memory") where the run's budget cannot
   /// hold one block, writing nothing; nullptr where a kind has no such check. A job run,

@@ -403,9 +403,6 @@ class JobFile(kt.TempDirTestCase):
              ["'points': no such file", "no-such-points.csv"]),
             (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "bad.toml"\ncrs = "EPSG:999999"\n',
              n + 5, ["'crs' 'EPSG:999999'", "not a CRS"]),
-            # The survey table's columns are read at read time too.
-            (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "sites.csv"\n', n + 1,
-             ["step 'extract'", "sites.csv: no column 'id' (--id-column); the columns are: site, lon, lat"]),
         ]
         with open(os.path.join(self.tmp, "sites.csv"), "w") as f:
             f.write("site,lon,lat\ns1,10,20\n")
@@ -800,6 +797,35 @@ class JobWording(kt.TempDirTestCase):
         for step, action in (("fill", "up to date"), ("other", "up to date"), ("broken", "ran"), ("again", "ran"),
                              ("report", "ran")):
             self.assertRegex(done.stdout, r"(?m)^  %s +%s" % (step, action))
+
+    def test_a_bad_survey_table_fails_its_step_alone_before_any_step_runs(self):
+        # A bad row or column in the survey table had refused the whole job when the file was
+        # read (every branch of the night undone) and `status` with it.
+        folder = os.path.join(self.tmp, "survey")
+        job = small_dated_job(folder, '[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "sites.csv"\n'
+                                      '[[step]]\ndo = "report"\nafter = ["fill", "extract"]\n')
+        with open(os.path.join(folder, "sites.csv"), "w") as f:
+            f.write("site,lon,lat\ns1,30.015,-1.015\n")
+        for extra in (["--dry-run"], []):
+            done = run(job, *extra)
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            self.assertRegex(done.stdout, r"(?m)^  extract +failed +.*sites.csv: no column 'id' \('id_column'\); "
+                                          r"the columns are: site, lon, lat$")
+            self.assertRegex(done.stdout, r"(?m)^  report +not reached +reads step 'extract', which failed$")
+            self.assertRegex(done.stdout, r"(?m)^  fill +%s " % ("would run" if extra else "ran"))
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertTrue(glob.glob(os.path.join(folder, "out", "fill", "*.tif")))
+        status = kt.run_kalends(["status", job])
+        self.assertEqual(status.returncode, 1, status.stdout + status.stderr)
+        self.assertRegex(status.stdout, r"(?m)^extract +extract +failed +.*no column 'id'")
+        self.assertRegex(status.stdout, r"(?m)^fill +fill +done ")
+        # Fixed: the extract step and the report run, the fill is up to date.
+        with open(os.path.join(folder, "sites.csv"), "w") as f:
+            f.write("id,longitude,latitude,date\ns1,30.015,-1.015,2021-01-20\n")
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertRegex(done.stdout, r"(?m)^  fill +up to date$")
+        self.assertRegex(done.stdout, r"(?m)^  extract +ran ")
 
     def test_a_folder_given_as_the_job_file_is_named_as_a_folder(self):
         # A folder (job.toml made by mkdir by mistake) had been read as an empty job: "no

@@ -57,11 +57,11 @@ StepKind extract_step_kind() {
   kind.check_values = [](const StepContext& c) {
     const ExtractRequest r = extract_request(c);
     check_extract_options(r);
-    // The survey table is small and the user's own: its columns, coordinates and dates are
-    // read now, so that a wrong column name fails at read time (and in --dry-run), not after
-    // the steps before it.
-    read_survey_points(r.points);
   };
+  // The survey table is small and the user's own: its columns, coordinates and dates are read
+  // before the first step runs, so that a wrong column fails at once (and in --dry-run), yet
+  // fails this step alone.
+  kind.check_files = [](const StepContext& c) { read_survey_points(extract_request(c).points); };
   kind.run = [](const StepContext& c) {
     const ExtractRequest r = extract_request(c);
     std::filesystem::create_directories(c.folder);
