@@ -64,6 +64,8 @@ class Stack {
   const Grid& grid() const noexcept { return grid_; }
   const std::vector<Layer>& layers() const noexcept { return layers_; }
   std::vector<TimePoint> times() const;
+  /// The same stack with only the layers whose time is in `keep` (sorted).
+  Stack only_times(const std::vector<TimePoint>& keep) const;
   /// A name for outputs: what file names share before their date ("ndvi"), or the variable.
   const std::string& name() const noexcept { return name_; }
   const ValueRules& rules() const noexcept { return rules_; }

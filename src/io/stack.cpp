@@ -742,6 +742,12 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   return stack;
 }
 
+Stack Stack::only_times(const std::vector<TimePoint>& keep) const {
+  Stack kept = *this;
+  std::erase_if(kept.layers_, [&](const Layer& l) { return !std::binary_search(keep.begin(), keep.end(), l.time); });
+  return kept;
+}
+
 std::vector<TimePoint> Stack::times() const {
   std::vector<TimePoint> t;
   t.reserve(layers_.size());

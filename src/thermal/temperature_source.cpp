@@ -5,6 +5,8 @@
 #include <algorithm>
 #include <cctype>
 #include <cmath>
+#include <iterator>
+#include <tuple>
 
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
@@ -161,15 +163,35 @@ TemperatureSource TemperatureSource::open(const TemperatureInputs& in) {
     const Stack& other = s.stacks[k];
     require_same_grid(s.grid, other.grid(), inputs[k].first + " " + other.input(),
                       inputs.front().first + " " + s.stacks.front().input());
+    // Dates of one input without the other's (a composite that arrived before its partner, or
+    // one a --skip-bad run left out) are left out with a note; a pairing that matches under half
+    // of either input's dates is taken for a mistake (inputs of different calendars).
     const std::vector<TimePoint> times = other.times();
-    for (const TimePoint& t : s.times)
-      if (!std::binary_search(times.begin(), times.end(), t))
-        throw InputError(other.input(), "has no layer for " + t.label() + ", which " +
-                                            s.stacks.front().input() + " has");
-    for (const TimePoint& t : times)
-      if (!std::binary_search(s.times.begin(), s.times.end(), t))
-        throw InputError(s.stacks.front().input(),
-                         "has no layer for " + t.label() + ", which " + other.input() + " has");
+    std::vector<TimePoint> common;
+    std::set_intersection(s.times.begin(), s.times.end(), times.begin(), times.end(), std::back_inserter(common));
+    auto refuse = [&](const Stack& lacking, const std::vector<TimePoint>& having, const Stack& has) {
+      for (const TimePoint& t : having)
+        if (!std::binary_search(common.begin(), common.end(), t))
+          throw InputError(lacking.input(), "has no layer for " + t.label() + ", which " + has.input() +
+                                                " has (" + std::to_string(common.size()) + " of their dates pair)");
+    };
+    if (2 * common.size() < s.times.size()) refuse(other, s.times, s.stacks.front());
+    if (2 * common.size() < times.size()) refuse(s.stacks.front(), times, other);
+    for (const auto& [having, option, lacking_option] :
+         {std::tuple{static_cast<const std::vector<TimePoint>*>(&s.times), inputs.front().first, inputs[k].first},
+          std::tuple{&times, inputs[k].first, inputs.front().first}}) {
+      std::vector<std::string> alone;
+      for (const TimePoint& t : *having)
+        if (!std::binary_search(common.begin(), common.end(), t)) alone.push_back(t.label());
+      if (!alone.empty())
+        s.unpaired.push_back(fmt::format("{} date{} of {} without {} left out: {}{}", alone.size(),
+                                         alone.size() == 1 ? "" : "s", option, lacking_option, alone.front(),
+                                         alone.size() > 1 ? fmt::format(" (and {} more)", alone.size() - 1) : ""));
+    }
+    if (common.size() < s.times.size() || common.size() < times.size()) {
+      for (Stack& stack : s.stacks) stack = stack.only_times(common);
+      s.times = common;
+    }
   }
   s.name = s.stacks.front().name();
   const std::size_t n = s.times.size();
@@ -303,7 +325,7 @@ void check_temperature_counts(const TemperatureSource& source, const Temperature
 }
 
 std::vector<std::string> temperature_notes(const TemperatureSource& source, const TemperatureCounts& counts) {
-  std::vector<std::string> notes;
+  std::vector<std::string> notes = source.unpaired;
   if (const std::int64_t implausible = counts.total_implausible(); implausible > 0)
     notes.push_back(fmt::format("{} values outside {:g}..{:g} deg C were taken as missing", implausible,
                                 plausible_low_celsius, plausible_high_celsius));

@@ -51,6 +51,7 @@ struct TemperatureSource {
   double day_hour = 13.5, night_hour = 1.5;  // overpass local solar times
   Grid grid;
   std::string name;
+  std::vector<std::string> unpaired;  // notes: dates of one input of a pair without the other's, left out
 
   /// Opens and checks everything: exactly one kind of input, stacks on one grid with the same
   /// dates (InputError naming the file and the date otherwise), known units.

@@ -202,12 +202,39 @@ class BadInput(kt.TempDirTestCase):
         line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "nounit")
         self.assertIn("--units", line)
 
-    def test_unpaired_dates(self):
+    def test_a_date_without_its_partner_is_left_out_with_a_note(self):
+        # A night composite not yet arrived (or left out by a --skip-bad run) had refused the
+        # whole run: the day's date is left out instead, as if it had not arrived either.
         folder = os.path.join(self.tmp, "unpaired")
         make_stack(folder, np.random.default_rng(1))
         os.remove(os.path.join(folder, "night", "lst_night_%s.tif" % DATES[5].isoformat()))
+        out = os.path.join(self.tmp, "unpaired-out")
+        done = kt.run_kalends(["suitability", "--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif",
+                               "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("1 date of --day without --night left out: %s" % DATES[5].isoformat(), done.stderr)
+        # The same as the day's date removed too.
+        os.remove(os.path.join(folder, "day", "lst_day_%s.tif" % DATES[5].isoformat()))
+        both = os.path.join(self.tmp, "unpaired-both")
+        done = kt.run_kalends(["-q", "suitability", "--day", folder + "/day/*.tif", "--night",
+                               folder + "/night/*.tif", "--out", both])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        names = sorted(os.listdir(both))
+        self.assertEqual(sorted(os.listdir(out)), names)
+        for name in names:
+            if name.endswith(".tif"):
+                np.testing.assert_array_equal(kt.gdal().Open(os.path.join(out, name)).ReadAsArray(),
+                                              kt.gdal().Open(os.path.join(both, name)).ReadAsArray(), err_msg=name)
+
+    def test_inputs_that_mostly_do_not_pair_are_refused(self):
+        # Under half of one input's dates with a partner: a mistake (another calendar), named.
+        folder = os.path.join(self.tmp, "mostly-unpaired")
+        make_stack(folder, np.random.default_rng(1))
+        for d in DATES[10:]:
+            os.remove(os.path.join(folder, "night", "lst_night_%s.tif" % d.isoformat()))
         line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "night")
-        self.assertIn(DATES[5].isoformat(), line)
+        self.assertIn("has no layer for %s" % DATES[10].isoformat(), line)
+        self.assertIn("10 of their dates pair", line)
 
     def test_no_georeferencing(self):
         folder = os.path.join(self.tmp, "nocrs")
