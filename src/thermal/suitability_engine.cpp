@@ -23,10 +23,14 @@
 
 namespace kalends {
 
+// The wording, with what a reader of the layers also needs: that the index is relative
+// and model-based, what it leaves out, and which way land-surface temperature errs.
 const char* const suitability_caution =
-    "Caution: temperature suitability describes temperature alone - not malaria risk, incidence "
-    "or a case forecast; land-surface temperature is not air temperature; decisions belong with "
-    "national programme data, entomological surveillance and local expertise.";
+    "Caution: temperature suitability describes temperature alone (a relative index from laboratory "
+    "thermal-response fits, 1 at the model's optimum) - not malaria risk, incidence or a case forecast; "
+    "vectors, rainfall, humidity, interventions and immunity are not in it; land-surface temperature is "
+    "not air temperature (by day it can be far hotter, above all in dry, bare areas); decisions belong "
+    "with national programme data, entomological surveillance and local expertise.";
 
 namespace {
 

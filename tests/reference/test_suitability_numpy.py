@@ -164,6 +164,11 @@ class SuitabilityOverpasses(kt.TempDirTestCase):
         lines = [l for l in self.done.stderr.splitlines() if "not malaria risk" in l]
         self.assertEqual(len(lines), 1)
         self.assertIn("land-surface temperature is not air temperature", lines[0])
+        # What the issue asks the reminder to say, and what else a reader of the layers needs.
+        for words in ("by day it can be far hotter, above all in dry, bare areas", "a relative index",
+                      "vectors, rainfall, humidity, interventions and immunity are not in it",
+                      "decisions belong with national programme data"):
+            self.assertIn(words, lines[0])
 
 
 class BadInput(kt.TempDirTestCase):
