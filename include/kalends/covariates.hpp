@@ -60,12 +60,14 @@ struct CovariateSeries {
 /// axis, GRIB valid times, dates as band descriptions), one variable of a NetCDF file
 /// (NETCDF:"f.nc":tas; a file of several variables gives a series each) or a pattern of files
 /// dated by their names is read as `kalends fill` reads a stack: a dated series. Rasters that are summaries with no single value per time (cycle
-/// descriptors) are kept as fixed bands only when `include_descriptors`. InputError naming the
-/// path when a path does not exist or holds no raster.
+/// descriptors, suitable-month counts) are kept as fixed bands as `descriptors` says: none, those
+/// of the synoptic cycle alone (a page of maps), or all. InputError naming the path when a path
+/// does not exist or holds no raster.
 /// `prefixes`, when given, one per path, start the names of that path's series ("fill" makes
 /// "fill.ndvi" of a fill step's folder, as if its parent had been searched).
+enum class Descriptors { none, synoptic, all };
 std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
-                                             bool include_descriptors = false,
+                                             Descriptors descriptors = Descriptors::none,
                                              const std::vector<std::string>& prefixes = {});
 
 /// Sets the spans of a dated series from what its dates mark in each composite. A file stands

@@ -122,8 +122,7 @@ bool georeferenced(const std::string& variable) {
 
 }  // namespace
 
-std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths,
-                                             bool include_descriptors,
+std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& paths, Descriptors descriptors,
                                              const std::vector<std::string>& prefixes) {
   std::vector<Scanned> scanned;
   for (std::size_t i = 0; i < paths.size(); ++i)
@@ -251,7 +250,8 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       // A NetCDF file of one variable is named as a file of several is: file.variable.
       const char* variable = ds->GetRasterBand(1)->GetMetadataItem("NETCDF_VARNAME");
       add_stack(*raw_stack, prefix + (variable && !s.stack ? stem + "." + variable : stem));
-    } else if ((period_text.empty() && year_text.empty()) || include_descriptors) {
+    } else if ((period_text.empty() && year_text.empty()) || descriptors == Descriptors::all ||
+               (descriptors == Descriptors::synoptic && year_text.empty())) {
       for (int b = 1; b <= bands; ++b) {
         std::string name = prefix + stem;
         // Plain rasters: bands by number; kalends descriptors by their description.

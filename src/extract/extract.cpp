@@ -308,7 +308,8 @@ std::string csv_field(const std::string& s) {
 
 std::string number(const std::optional<double>& v) { return v ? fmt::format("{:.9g}", *v) : ""; }
 
-std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std::vector<std::string>& patterns) {
+std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std::vector<std::string>& patterns,
+                                   bool descriptors) {
   if (patterns.empty()) return all;
   std::vector<CovariateSeries> chosen;
   for (const std::string& p : patterns) {
@@ -322,7 +323,11 @@ std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std:
     if (!any) {
       std::string names;
       for (const CovariateSeries& s : all) names += (names.empty() ? "" : ", ") + s.name;
-      throw UsageError("--layers '" + p + "'", "matches no layer; the layers are: " + names);
+      // Cycle descriptors and suitable-month counts are layers only with --descriptors, which the
+      // list had not said.
+      throw UsageError("--layers '" + p + "'", "matches no layer; the layers are: " + names +
+                                                   (descriptors ? "" : " (descriptors such as amplitude, peak day or "
+                                                                       "suitable months: give --descriptors)"));
     }
   }
   return chosen;
@@ -439,7 +444,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
     for (const SurveyPoint& p : r.points.points)
       if (++seen[p.id] == 2) r.repeated_ids.push_back(p.id);
   }
-  std::vector<CovariateSeries> found = find_covariates(request.covariates, request.include_descriptors, request.name_prefixes);
+  std::vector<CovariateSeries> found = find_covariates(
+      request.covariates, request.include_descriptors ? Descriptors::all : Descriptors::none, request.name_prefixes);
   // The table replaces neither the points it reads nor a layer: both would be lost.
   if (!request.out.empty() && std::filesystem::exists(request.out)) {
     auto same = [&](const std::string& path) {
@@ -458,7 +464,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
       throw UsageError("--out '" + request.out + "'", "exists and is not a table kalends extract wrote; move it away or "
                                                      "give the table another name (nothing was replaced)");
   }
-  r.series = select(std::move(found), request.layers);
+  r.series = select(std::move(found), request.layers, request.include_descriptors);
   for (CovariateSeries& s : r.series) {
     std::vector<TimePoint> times;
     for (const SeriesFile& f : s.files) times.push_back(f.time);

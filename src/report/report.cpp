@@ -484,7 +484,9 @@ ReportSummary run_report(const ReportRequest& request) {
   // of its scores and plots; a folder with neither layers nor reports is refused.
   std::vector<CovariateSeries> all;
   try {
-    all = find_covariates(searched, false, prefixes);
+    // The synoptic cycle's descriptors and suitable-month counts are maps people read; the
+    // years' own are as many again and left to `extract --descriptors`.
+    all = find_covariates(searched, Descriptors::synoptic, prefixes);
   } catch (const InputError&) {
     bool has_report = false;
     for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator() && !has_report;

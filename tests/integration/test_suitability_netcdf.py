@@ -82,6 +82,29 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
               % (months.min(), months.max(), months.mean()), file=sys.stderr)
         self.assertGreater(months.max(), months.min())  # the data spans more than one answer
 
+    def test_the_suitable_months_are_mapped_and_named_for_extract(self):
+        # The report had drawn the monthly layers and left out the synoptic suitable months, the
+        # usual risk-map covariate; extract had listed layers without saying --descriptors.
+        out, _ = self.run_model("r0-report")
+        html = os.path.join(self.tmp, "r0-report.html")
+        done = kt.run_kalends(["report", out, "--html", html])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            page = f.read()
+        for band in ("suitable_months", "longest_suitable_run", "mean_suitability"):
+            self.assertIn("<b>r0-2013_summary_synoptic.%s</b>" % band, page)
+        self.assertNotIn("r0-2013_summary_1999", page)   # the years' own: extract --descriptors
+        points = os.path.join(self.tmp, "one-point.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\np1,-80,35,1999-06-15\n")
+        done = kt.run_kalends(["extract", out, "--points", points, "--layers", "r0-2013_summary*", "--out",
+                               os.path.join(self.tmp, "summary.csv")])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("give --descriptors", done.stderr)
+        done = kt.run_kalends(["-q", "extract", out, "--points", points, "--layers", "r0-2013_summary*",
+                               "--descriptors", "--out", os.path.join(self.tmp, "summary.csv")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+
     def test_degree_day_vivax_threshold(self):
         out, _ = self.run_model("dd", "--model", "degree-day", "--parasite", "vivax", "--threshold", "0.5")
         expected = tn.relative("degree-day", self.tas.ravel(), "vivax").reshape(self.tas.shape)
