@@ -102,6 +102,7 @@ class SeriesGeometry {
     if (!GDALInvGeoTransform(const_cast<double*>(s.grid.geotransform.data()), inverse_))
       throw InputError(where, "its geotransform cannot be inverted");
     geographic_ = layer_crs_.IsGeographic();
+    points_geographic_ = points_crs.IsGeographic();
     metres_per_unit_ = geographic_ ? 1.0 : layer_crs_.GetLinearUnits();
     if (!geographic_ && buffer_m > 0) {
       OGRSpatialReference geographic;
@@ -122,30 +123,46 @@ class SeriesGeometry {
       out.reason = "no coordinates";
       return out;
     }
-    double x = p.x, y = p.y;
-    if (!transform_->Transform(1, &x, &y) || !std::isfinite(x) || !std::isfinite(y)) {
-      out.reason = "the point cannot be transformed into the layer's CRS";
-      return out;
+    // Longitudes of 0..360 against a layer of -180..180, or the other way round: the same
+    // place a turn of the globe away, tried where the point as written falls outside.
+    for (const double turn : {0.0, -360.0, 360.0}) {
+      if (turn != 0 && !points_geographic_) break;
+      double x = p.x + turn, y = p.y;
+      if (!transform_->Transform(1, &x, &y) || !std::isfinite(x) || !std::isfinite(y)) {
+        if (turn == 0) out.reason = "the point cannot be transformed into the layer's CRS";
+        continue;
+      }
+      Placement at;
+      at.located = true;
+      at.x = x;
+      at.y = y;
+      at.px = pixel_column(x, y);
+      at.py = pixel_row(x, y);
+      at.inside = at.px >= 0 && at.px < series_.grid.width && at.py >= 0 && at.py < series_.grid.height;
+      if (!at.inside) at.reason = "outside the layer";
+      if (turn == 0 || at.inside) out = at;
+      if (at.inside) break;
     }
-    out.located = true;
-    out.x = x;
-    out.y = y;
-    // A point on a cell edge or centre as written (survey coordinates rounded to the grid's
-    // step) comes out of the inverse geotransform a few 1e-12 px to either side: snapped, so
-    // that every edge goes the same way (the cell to its east or south) and a centre needs only
-    // its own cell's row or column. A millionth of a pixel is far below any survey's precision.
-    auto snapped = [](double pixel) {
-      const double half = std::round(2 * pixel) / 2;
-      return std::abs(pixel - half) < 1e-6 ? half : pixel;
-    };
-    out.px = snapped(inverse_[0] + x * inverse_[1] + y * inverse_[2]);
-    out.py = snapped(inverse_[3] + x * inverse_[4] + y * inverse_[5]);
-    if (!(out.px >= 0 && out.px < series_.grid.width && out.py >= 0 && out.py < series_.grid.height)) {
-      out.reason = "outside the layer";
-      return out;
-    }
-    out.inside = true;
     return out;
+  }
+
+  // Pixel coordinates of a point in the layer's CRS. A point on a cell edge or centre as written
+  // (survey coordinates rounded to the grid's step) comes out of the inverse geotransform a few
+  // 1e-12 px to either side: snapped, so that a centre needs only its own cell's row or column,
+  // and an edge goes to the cell whose west or north edge it is (docs/extract.md). On a grid
+  // stored south-up or east-to-west that cell lies before the edge in pixel order: moved just
+  // below the edge (it had gone to the cell past it, one row or column off). A millionth of a
+  // pixel is far below any survey's precision.
+  double pixel_column(double x, double y) const {
+    return snapped(inverse_[0] + x * inverse_[1] + y * inverse_[2], series_.grid.geotransform[1] < 0);
+  }
+  double pixel_row(double x, double y) const {
+    return snapped(inverse_[3] + x * inverse_[4] + y * inverse_[5], series_.grid.geotransform[5] > 0);
+  }
+  static double snapped(double pixel, bool reversed) {
+    const double half = std::round(2 * pixel) / 2;
+    if (std::abs(pixel - half) >= 1e-6) return pixel;
+    return reversed && half == std::floor(half) ? std::nextafter(half, -HUGE_VAL) : half;
   }
 
   // The cells whose centre lies within the buffer: a bounding window, then the distance test.
@@ -218,7 +235,7 @@ class SeriesGeometry {
   // A projected layer: to and from its own geographic CRS, for distances on the ground.
   std::unique_ptr<OGRCoordinateTransformation> to_geographic_, from_geographic_;
   double inverse_[6]{};
-  bool geographic_ = false;
+  bool geographic_ = false, points_geographic_ = false;
   double metres_per_unit_ = 1;
 };
 

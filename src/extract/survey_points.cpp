@@ -58,7 +58,8 @@ std::string field_text(const std::string& raw) {
 double coordinate(const std::string& text, const std::string& where) {
   char* end = nullptr;
   const double v = std::strtod(text.c_str(), &end);
-  if (end == text.c_str() || *end != '\0' || !std::isfinite(v))
+  // strtod also reads hexadecimal ("0x10" as 16), which no survey table means.
+  if (end == text.c_str() || *end != '\0' || !std::isfinite(v) || text.find_first_of("xXpP") != std::string::npos)
     throw InputError(where, "'" + text + "' is not a coordinate");
   return v;
 }
@@ -136,7 +137,10 @@ std::vector<CsvRow> csv_rows(const std::string& path, int fields) {
 
 // YYYY-MM-DD or YYYY-MM (also with '/', as OGR prints date fields), optionally a time after.
 void read_date(SurveyPoint& p, const std::string& where) {
-  static const std::regex pattern(R"((\d{4})[-/](\d{1,2})(?:[-/](\d{1,2}))?(?:[T ].*)?)");
+  // A time of day after the date (and a zone) is allowed and ignored; other text is not a date
+  // ("1999-06-30 garbage" had been read as 30 June).
+  static const std::regex pattern(
+      R"((\d{4})[-/](\d{1,2})(?:[-/](\d{1,2}))?(?:[T ]\d{1,2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?\s*(?:Z|UTC|[+-]\d{2}(?::?\d{2})?)?)?)");
   std::smatch m;
   if (!std::regex_match(p.date_text, m, pattern))
     throw InputError(where, "'" + p.date_text + "' is not a date (YYYY-MM-DD or YYYY-MM)");
@@ -198,6 +202,17 @@ class PipeTable {
 }  // namespace
 
 SurveyPoints read_survey_points(const PointsSource& source) {
+  OGRSpatialReference crs;
+  // In degrees, a latitude beyond the poles is a typing slip, swapped columns or projected
+  // coordinates in a file that states no CRS.
+  const auto in_degrees = [&crs](const SurveyPoint& p, const std::string& xs, const std::string& ys,
+                                 const std::string& where, const std::string& x_name, const std::string& y_name) {
+    if (!crs.IsGeographic()) return;
+    if (std::abs(p.y) > 90)
+      throw InputError(where, fmt::format("{} {} is beyond ±90 degrees (a slip, {} and {} swapped, or coordinates "
+                                          "of another CRS?)", y_name, ys, x_name, y_name));
+    if (std::abs(p.x) > 360) throw InputError(where, fmt::format("{} {} is beyond ±360 degrees", x_name, xs));
+  };
   detail::start_gdal();
   const std::string path = source.path;
   if (!std::filesystem::exists(path)) throw InputError(path, "no such file");
@@ -236,12 +251,14 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   result.from_columns = csv;
   result.id_name = id_is_key ? key_column : defn.GetFieldDefn(id)->GetNameRef();
   if (date >= 0) result.date_name = defn.GetFieldDefn(date)->GetNameRef();
-  OGRSpatialReference crs;
   if (csv) {
     x = field_index(defn, source.x_column, "--x-column", path);
     y = field_index(defn, source.y_column, "--y-column", path);
     result.x_name = defn.GetFieldDefn(x)->GetNameRef();
     result.y_name = defn.GetFieldDefn(y)->GetNameRef();
+    if (x == y)
+      throw UsageError("--x-column '" + source.x_column + "' and --y-column '" + source.y_column + "'",
+                       "name the same column of " + path);
   }
   if (!csv && layer->GetSpatialRef()) {
     crs = *layer->GetSpatialRef();
@@ -286,12 +303,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       else {
         p.x = coordinate(xs, where);
         p.y = coordinate(ys, where);
-        // In degrees, a latitude beyond the poles is a typing slip or swapped columns.
-        if (crs.IsGeographic() && std::abs(p.y) > 90)
-          throw InputError(where, fmt::format("{} {} is beyond ±90 degrees (a slip, or {} and {} swapped?)",
-                                              source.y_column, ys, source.x_column, source.y_column));
-        if (crs.IsGeographic() && std::abs(p.x) > 360)
-          throw InputError(where, fmt::format("{} {} is beyond ±360 degrees", source.x_column, xs));
+        in_degrees(p, xs, ys, where, source.x_column, source.y_column);
       }
     } else {
       const OGRGeometry* g = feature->GetGeometryRef();
@@ -305,6 +317,9 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       else {
         p.x = g->toPoint()->getX();
         p.y = g->toPoint()->getY();
+        // A Shapefile without its .prj holding projected coordinates, taken as degrees: every
+        // point had been "cannot be transformed", exit 0.
+        in_degrees(p, fmt::format("{}", p.x), fmt::format("{}", p.y), where, "x", "y");
       }
     }
     if (date >= 0 && feature->IsFieldSetAndNotNull(date)) {

@@ -804,6 +804,103 @@ def write_cf(path, times, units, calendar="standard", variables=("tas",), bounds
     ds = None
 
 
+class PointsTheLayerHolds(kt.TempDirTestCase):
+    """Points a layer holds however its grid or the table is written. Real values: June of the
+    Maurer 1999 monthly NetCDF (tas, 0.125 degree cells; see ../shared/data/README.md)."""
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        g = kt.gdal()
+        ds = g.Open('NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc"))
+        cls.gt = ds.GetGeoTransform()
+        cls.tas = ds.GetRasterBand(6).ReadAsArray().astype(np.float32)
+        ds = None
+        cls.tas[cls.tas > 1e19] = np.nan
+        rows = cls.tas.shape[0]
+        # North-up as GDAL reads the file, and the same cells stored south-up (rows reversed,
+        # positive pixel height from the southern edge).
+        cls.north_up = os.path.join(cls.tmp, "north_up.tif")
+        kt.write_raster(cls.north_up, cls.tas, geotransform=cls.gt, epsg=4326)
+        cls.south_up = os.path.join(cls.tmp, "south_up.tif")
+        gt = cls.gt
+        kt.write_raster(cls.south_up, cls.tas[::-1].copy(),
+                        geotransform=(gt[0], gt[1], 0, gt[3] + rows * gt[5], 0, -gt[5]), epsg=4326)
+
+    def extract(self, raster, rows, *extra, header="id,longitude,latitude,date"):
+        points = os.path.join(self.tmp, "points-%d.csv" % len(os.listdir(self.tmp)))
+        with open(points, "w") as f:
+            f.write(header + "\n" + "".join(r + "\n" for r in rows))
+        out = points.replace(".csv", "-table.csv")
+        return kt.run_kalends(["-q", "extract", raster, "--points", points, "--out", out] + list(extra)), out
+
+    def test_a_south_up_grid_gives_each_edge_to_the_cell_north_of_it_too(self):
+        # docs/extract.md: a cell holds its west and north edges. On the south-up copy every
+        # point on a row edge had read the cell one row further north.
+        rows = []
+        for r in range(1, self.tas.shape[0], 3):
+            for c in range(0, self.tas.shape[1], 7):
+                lon = self.gt[0] + (c + 0.5) * self.gt[1]
+                lat = self.gt[3] + r * self.gt[5]           # the edge between rows r-1 and r
+                rows.append("e%d_%d,%r,%r," % (r, c, lon, lat))
+        tables = []
+        for raster in (self.north_up, self.south_up):
+            done, out = self.extract(raster, rows)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            tables.append(kt.read_table(out))
+        for a, b in zip(*tables):
+            r, c = map(int, a["id"][1:].split("_"))
+            expected = self.tas[r, c]                         # the cell south of the edge
+            column = [k for k in a if k not in ("id", "longitude", "latitude", "date") and "." not in k][0]
+            self.assertEqual(a[column] == "", bool(np.isnan(expected)), a)
+            if a[column]:
+                self.assertAlmostEqual(float(a[column]), float(expected), places=4, msg=a)
+            self.assertEqual(a[column], b[column.replace("north_up", "south_up")], (a, b))
+
+    def test_longitudes_of_0_to_360_find_the_layer(self):
+        # A point at 280 E is at 80 W: it had been "outside the layer".
+        done, out = self.extract(self.north_up, ["w,-80.0,35.0,", "e,280.0,35.0,"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        west, east = kt.read_table(out)
+        self.assertNotEqual(west["north_up"], "")
+        self.assertEqual(west["north_up"], east["north_up"])
+
+    def test_what_is_no_date_or_coordinate_is_refused(self):
+        cases = [(["a,-80,35,1999-06-30 garbage"], "is not a date"),
+                 (["a,0x10,35,1999-06-30"], "'0x10' is not a coordinate")]
+        for rows, words in cases:
+            done, out = self.extract(self.north_up, rows)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn(words, done.stderr)
+            self.assertFalse(os.path.exists(out))
+        # A time of day (and a zone) after the date is allowed and ignored.
+        done, out = self.extract(self.north_up, ["a,-80,35,1999-06-30 12:00", "b,-80,35,1999-06-30T12:00:00Z"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        done, _ = self.extract(self.north_up, ["a,-80,35,1999-06-30"], "--y-column", "longitude")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("name the same column", done.stderr)
+
+    def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
+        # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
+        # missing ("cannot be transformed"), exit 0.
+        g = kt.gdal()
+        from osgeo import ogr
+        path = os.path.join(self.tmp, "sites.shp")
+        ds = ogr.GetDriverByName("ESRI Shapefile").CreateDataSource(path)
+        layer = ds.CreateLayer("sites", None, ogr.wkbPoint)
+        for name in ("id", "date"):
+            layer.CreateField(ogr.FieldDefn(name, ogr.OFTString))
+        feature = ogr.Feature(layer.GetLayerDefn())
+        feature.SetField("id", "s1")
+        feature.SetGeometry(ogr.CreateGeometryFromWkt("POINT (512345.0 1788422.6)"))
+        layer.CreateFeature(feature)
+        ds = None
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "sites.prj")))
+        done = kt.run_kalends(["extract", self.north_up, "--points", path, "--out", os.path.join(self.tmp, "shp.csv")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("1788422.6 is beyond ±90 degrees", done.stderr)
+
+
 class RawStacksAtTheEdges(kt.TempDirTestCase):
     """Raw stacks whose time axis is unusual (invented CF files of a fictional district)."""
 
