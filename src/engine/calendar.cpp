@@ -6,6 +6,7 @@
 #include <map>
 
 #include "kalends/error.hpp"
+#include "kalends/season.hpp"
 
 namespace kalends {
 
@@ -89,8 +90,24 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
   const double first_day = start_day + grid.slot_days.front();
   const double last_day = start_day + grid.slot_days.back();
   const std::vector<char> season = season_days(grid, marks);
-  std::int64_t day = std::int64_t(std::floor(first_day));
-  while (day <= std::int64_t(std::floor(last_day))) {
+  // The calendar covers the days the first and the last composites stand for, by the rule of
+  // seasons and extract (composite_spans: from the first's date with start marks, to the end of
+  // the last's step or 31 December), not only from the first one's middle to the last one's:
+  // beyond those middles the curve is held at the end slot's value. Sub-daily records are
+  // instants: their calendar stays between the first and the last.
+  std::int64_t first_covered = std::int64_t(std::floor(first_day));
+  std::int64_t last_covered = std::int64_t(std::floor(last_day));
+  const bool whole_spans = grid.step_days >= 1.0;
+  if (whole_spans) {
+    std::vector<std::int64_t> dates;
+    for (int slot : grid.slot_of_date)
+      dates.push_back(std::int64_t(std::floor(grid.start.seconds / 86400.0 + grid.slot_days[slot])));
+    const auto spans = composite_spans(dates, std::max<std::int64_t>(1, std::llround(grid.step_days)), marks, 1);
+    first_covered = std::min(first_covered, spans.front().first);
+    last_covered = std::max(last_covered, spans.back().second - 1);
+  }
+  std::int64_t day = first_covered;
+  while (day <= last_covered) {
     const auto [begin, end] = period.span_of_day(day);
     PeriodMean mean;
     mean.start = TimePoint{begin * 86400};
@@ -100,8 +117,10 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
       mean.in_season = season[std::size_t(day_of_year(civil_from_days(d)) - 1)] != 0;
     std::map<int, double> weight;
     for (std::int64_t d = begin; d < end; ++d) {
-      const double t = double(d) - start_day;  // days since grid start
-      if (t < grid.slot_days.front() || t > grid.slot_days.back()) continue;
+      double t = double(d) - start_day;  // days since grid start
+      if (whole_spans ? d < first_covered || d > last_covered : t < grid.slot_days.front() || t > grid.slot_days.back())
+        continue;
+      t = std::clamp(t, grid.slot_days.front(), grid.slot_days.back());  // held at the stack's ends
       // A month at the edge of the season: only its days that some composite stands for, not
       // the curve across the gap between seasons.
       if (mean.in_season && !season[std::size_t(day_of_year(civil_from_days(d)) - 1)]) continue;

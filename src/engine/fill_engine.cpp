@@ -276,6 +276,16 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
         if (periods[k].start.date().year == year) seg.periods.push_back(k);
       segments.push_back(std::move(seg));
     }
+    // A period of a year the grid has no slot in (December 2020 before composites from 1 January
+    // 2021 that stand for days before their dates) comes from the nearest year's curve: its
+    // slots are that year's first (or last). It had been written empty, flag band NaN.
+    const int first_year = grid.start.date().year, last_year = grid.slot_time(grid.size - 1).date().year;
+    for (std::size_t k = 0; k < periods.size(); ++k) {
+      const int year = periods[k].start.date().year;
+      if ((year >= first_year && year <= last_year) || !written_year(year)) continue;
+      for (Segment& seg : segments)
+        if (seg.year == (year < first_year ? first_year : last_year)) seg.periods.push_back(k);
+    }
   }
   const std::string parameters = join_parameters(method->parameters());
   const std::string unit = stack.layers().front().unit;

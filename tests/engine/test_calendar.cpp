@@ -11,11 +11,16 @@ TEST_CASE("monthly period means are day-weighted and cover the grid", "[engine][
   for (int i = 0; i < 10; ++i) times.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * i) * 86400});
   const TimeGrid grid = TimeGrid::build(times);  // 2021-01-01 .. 2021-05-25
   const auto periods = detail::period_means(grid, CalendarPeriod::parse("1M"));
-  REQUIRE(periods.size() == 5);
-  CHECK(periods[0].start.label() == "2021-01-01");
-  CHECK(periods[0].days == 31);
-  CHECK(periods[1].days == 28);
-  CHECK(periods[4].days == 25);  // May covered to the 25th
+  // Dated at their middles, the first composite stands for 24 December to 8 January and the
+  // last for 17 May to 1 June (composite_spans): December 2020 and June 2021 are covered too.
+  REQUIRE(periods.size() == 7);
+  CHECK(periods[0].start.label() == "2020-12-01");
+  CHECK(periods[0].days == 8);
+  CHECK(periods[1].start.label() == "2021-01-01");
+  CHECK(periods[1].days == 31);
+  CHECK(periods[2].days == 28);
+  CHECK(periods[5].days == 31);  // May, the curve held at the last composite's value after the 25th
+  CHECK(periods[6].days == 1);   // 1 June
   for (const auto& p : periods) {
     double sum = 0;
     for (double w : p.weights) sum += w;
@@ -24,31 +29,35 @@ TEST_CASE("monthly period means are day-weighted and cover the grid", "[engine][
   // A linear curve z = slot: the period mean is the curve at the mean day of the period.
   // January: days 0 .. 30 -> mean day 15 = 15/16 slots.
   double mean = 0;
-  for (std::size_t j = 0; j < periods[0].slots.size(); ++j) mean += periods[0].weights[j] * periods[0].slots[j];
+  for (std::size_t j = 0; j < periods[1].slots.size(); ++j) mean += periods[1].weights[j] * periods[1].slots[j];
   CHECK(mean == Approx(15.0 / 16));
 }
 
 TEST_CASE("a date marking a composite's start stands for its middle", "[engine][calendar]") {
   // 16-day composites dated at their first day from 2021-01-01: each value stands for the
-  // composite's middle, 8 days later. The calendar then starts on 9 January (23 days of
-  // January) and calendar day d reads the curve at d - 8: January's mean of z = slot is the
-  // curve's mean over days 0 .. 22, slot 11 / 16 (worked by hand).
+  // composite's middle, 8 days later, and calendar day d reads the curve at d - 8. The first
+  // composite stands for 1 to 16 January (seasons' rule), so January has its 31 days: 1 to 8
+  // January hold the first composite's value (slot 0), 9 to 31 January read days 0 .. 22 of
+  // the curve. January's mean of z = slot: (0 + 1 + ... + 22) / 16 / 31 = 253 / 496 slots
+  // (worked by hand).
   std::vector<TimePoint> times;
   for (int i = 0; i < 10; ++i) times.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * i) * 86400});
   const TimeGrid grid = TimeGrid::build(times);
   const auto starts = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::start);
   REQUIRE(starts.size() == 6);
-  CHECK(starts[0].days == 23);
+  CHECK(starts[0].days == 31);
   double mean = 0;
   for (std::size_t j = 0; j < starts[0].slots.size(); ++j) mean += starts[0].weights[j] * starts[0].slots[j];
-  CHECK(mean == Approx(11.0 / 16));
-  // The last composite (2021-05-25) stands for 2 June: June is covered to the 2nd.
+  CHECK(mean == Approx(253.0 / 496));
+  // The last composite (2021-05-25) stands for 25 May to 9 June: June is covered to the 9th,
+  // as extract and seasons give it those days.
   CHECK(starts[5].start.label() == "2021-06-01");
-  CHECK(starts[5].days == 2);
+  CHECK(starts[5].days == 9);
   const auto ends = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::end);
-  // Dated at their last day: each stands for 8 days earlier, so December 2020 comes first.
+  // Dated at their last day: the first stands for 17 December to 1 January, so December 2020
+  // comes first.
   CHECK(ends.front().start.label() == "2020-12-01");
-  CHECK(ends.front().days == 8);  // 24 .. 31 December
+  CHECK(ends.front().days == 15);  // 17 .. 31 December
 }
 
 TEST_CASE("N-day periods restart on 1 January", "[engine][calendar]") {
@@ -57,8 +66,11 @@ TEST_CASE("N-day periods restart on 1 January", "[engine][calendar]") {
   const auto periods = detail::period_means(TimeGrid::build(times), CalendarPeriod::parse("16d"));
   std::vector<std::string> starts;
   for (const auto& p : periods) starts.push_back(p.start.label());
-  // DOY 321 (Nov 17), 337 (Dec 3), 353 (Dec 19, 13 days), then 2022 DOY 1, 17.
-  CHECK(starts == std::vector<std::string>{"2021-11-17", "2021-12-03", "2021-12-19", "2022-01-01", "2022-01-17"});
+  // Dated at their middles, 50 days apart (the step): the first stands for 6 November on, the
+  // last up to 13 February (composite_spans). DOY 305 (Nov 1), 321 (Nov 17), 337 (Dec 3), 353
+  // (Dec 19, 13 days), then 2022 DOY 1, 17, 33.
+  CHECK(starts == std::vector<std::string>{"2021-11-01", "2021-11-17", "2021-12-03", "2021-12-19", "2022-01-01",
+                                           "2022-01-17", "2022-02-02"});
   CHECK_THROWS_AS(CalendarPeriod::parse("2w"), UsageError);
   CHECK_THROWS_AS(CalendarPeriod::parse("0d"), UsageError);
 }
@@ -85,8 +97,10 @@ TEST_CASE("calendar periods of a season no composite covers are out of season", 
   }
   // The edge months average only their days in season (start marks): May 2005 from the first
   // composite's date, 25 May (day 145 of 2005), to the 31st, 7 days; September 2004 from the
-  // 1st to day 257 + 15 = 272, the 28th in a leap year; September 2005 to the 22nd, where the
-  // grid ends (the last composite's middle). Their weights still sum to one.
+  // 1st to day 257 + 15 = 272, the 28th in a leap year; September 2005 to the 29th, the last
+  // composite's last day (not the 22nd, its middle, where the grid ends); May 2004 from the
+  // first composite's date, 24 May, 8 days (it had been left out: the grid starts on 1 June).
+  // Their weights still sum to one.
   const auto starts = detail::period_means(grid, CalendarPeriod::parse("1M"), DateMarks::start);
   for (const auto& p : starts) {
     double sum = 0;
@@ -94,9 +108,18 @@ TEST_CASE("calendar periods of a season no composite covers are out of season", 
     if (p.in_season) CHECK(sum == Approx(1.0));
     if (p.start.label() == "2005-05-01") CHECK(p.days == 7);
     if (p.start.label() == "2004-09-01") CHECK(p.days == 28);
-    if (p.start.label() == "2005-09-01") CHECK(p.days == 22);
+    if (p.start.label() == "2005-09-01") CHECK(p.days == 29);
+    if (p.start.label() == "2004-05-01") CHECK(p.days == 8);
     if (p.start.label() == "2005-07-01") CHECK(p.days == 31);
   }
+  CHECK(starts.front().start.label() == "2004-05-01");
+  // 16-day periods: the first (day 145 of 2004) and the last (day 257 of 2005) have 16 days, as
+  // every year's, not 8 and 9.
+  const auto sixteen = detail::period_means(grid, CalendarPeriod::parse("16d"), DateMarks::start);
+  CHECK(sixteen.front().start.label() == "2004-05-24");
+  CHECK(sixteen.front().days == 16);
+  CHECK(sixteen.back().start.label() == "2005-09-14");
+  CHECK(sixteen.back().days == 16);
   // A stack covering the whole year leaves every period in season, 8-day ones included.
   std::vector<TimePoint> all_year;
   for (int k = 0; k < 46; ++k) all_year.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * (k % 23) + 365 * (k / 23)) * 86400});

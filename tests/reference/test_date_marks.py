@@ -307,7 +307,9 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
         print("\nMaurer 1999, fill --every 1M against the file's monthly means: RMS %.2f C with "
               "--date-marks end, %.2f C read as starts" % (rms["end"], rms["start"]), file=sys.stderr)
         self.assertEqual(months["end"], ["1999-%02d" % m for m in range(1, 13)])
-        self.assertEqual(months["start"], ["1999-%02d" % m for m in range(2, 13)] + ["2000-01"])
+        # Read as starts, 31 January stands for 31 January to 27 February (seasons' rule): the
+        # calendar runs from January 1999 (its 31st alone) to January 2000.
+        self.assertEqual(months["start"], ["1999-%02d" % m for m in range(1, 13)] + ["2000-01"])
         self.assertLess(rms["end"], 1.0)
         self.assertLess(rms["end"], 0.25 * rms["start"])
         self.assertEqual(months["auto"], months["end"])
