@@ -9,6 +9,7 @@
 #include <fmt/format.h>
 
 #include <algorithm>
+#include <chrono>
 #include <cmath>
 #include <filesystem>
 #include <fstream>
@@ -598,11 +599,25 @@ ReportSummary run_report(const ReportRequest& request) {
   summary.plots = plots.count;
   summary.notes = plots.notes;
 
+  // How current the page is: the newest of the files it shows, by modification time (a rerun
+  // leaves unchanged files untouched, so the same outputs still give the same page). A page
+  // left from an earlier night, when a job's step failed and the report waited, shows its age.
+  std::optional<fs::file_time_type> newest;
+  for (const CovariateSeries& s : all)
+    for (const SeriesFile& f : s.files)
+      if (const auto time = fs::last_write_time(f.path, ec); !ec && (!newest || time > *newest)) newest = time;
+  std::string as_of;
+  if (newest) {
+    const auto seconds = std::chrono::duration_cast<std::chrono::seconds>(
+        std::chrono::file_clock::to_sys(*newest).time_since_epoch()).count();
+    const std::string iso = TimePoint{seconds}.iso();  // YYYY-MM-DDTHH:MM:SSZ
+    as_of = fmt::format(" Outputs as of {} {} UTC (the newest file shown).", iso.substr(0, 10), iso.substr(11, 5));
+  }
   std::string html = std::string(page_start) + fmt::format(
       "{0}</title>\n"
       "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
-      "{3} layers.</p></header>\n",
-      escape(title), style, KALENDS_VERSION, all.size());
+      "{3} layers.{4}</p></header>\n",
+      escape(title), style, KALENDS_VERSION, all.size(), as_of);
   if (maps.empty()) maps = "<p>No raster layer in this folder.</p>\n";
   html += "<section id=\"maps\"><h2>Layers</h2>\n<div class=\"maps\">\n" + maps + "</div></section>\n";
   html += "<section id=\"validation\"><h2>Validation</h2>\n" + validation + "</section>\n";

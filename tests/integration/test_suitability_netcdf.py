@@ -8,6 +8,8 @@ of every month and the number of suitable months per cell must equal an independ
 computation from the published trait table (tests/pylib/thermal_numpy.py; Mordecai et al.
 2013 for r0-2013, Detinova 1962 / Martens 1997 for degree-day, Bayoh & Lindsay 2003 for window).
 """
+import datetime
+import glob
 import os
 import sys
 import unittest
@@ -94,6 +96,11 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         for band in ("suitable_months", "longest_suitable_run", "mean_suitability"):
             self.assertIn("<b>r0-2013_summary_synoptic.%s</b>" % band, page)
         self.assertNotIn("r0-2013_summary_1999", page)   # the years' own: extract --descriptors
+        # How current the page is: the newest file shown, to the minute (a page left from an
+        # earlier night, its report step waiting on a failed step, had not shown its age).
+        newest = max(os.stat(p).st_mtime for p in glob.glob(os.path.join(out, "*.tif")))
+        stamp = datetime.datetime.fromtimestamp(int(newest), datetime.timezone.utc).strftime("%Y-%m-%d %H:%M")
+        self.assertIn("Outputs as of %s UTC (the newest file shown)." % stamp, page)
         points = os.path.join(self.tmp, "one-point.csv")
         with open(points, "w") as f:
             f.write("id,longitude,latitude,date\np1,-80,35,1999-06-15\n")
