@@ -226,10 +226,15 @@ class OutputsAgainstGdal(kt.TempDirTestCase):
 
     def test_monthly_calendar(self):
         cal = os.path.join(self.out_a, "calendar-1M")
-        # Dates mark their composites' first days (--date-marks start, the default): a value
-        # stands for its composite's middle, half the 16-day step on (docs/methods.md).
-        half_step = datetime.timedelta(days=8)
-        first, last = self.dates[0] + half_step, self.dates[-1] + half_step
+        # Dates mark their composites' first days (--date-marks start, the default here): the
+        # calendar covers the days the first and last composites stand for, from the first's
+        # date to the last's plus the 16-day step, less a day, cut at 31 December where the
+        # composites restart every 1 January (docs/methods.md, Regular calendar and Seasonal
+        # layers; before version 0.3.19 it ran from the first composite's middle to the last's).
+        step = datetime.timedelta(days=16)
+        first, last = self.dates[0], self.dates[-1] + step - datetime.timedelta(days=1)
+        if all((d.timetuple().tm_yday - 1) % 16 == 0 for d in self.dates):
+            last = min(last, datetime.date(self.dates[-1].year, 12, 31))
         months = []
         y, m = first.year, first.month
         while (y, m) <= (last.year, last.month):
