@@ -3,6 +3,7 @@
 #include <fcntl.h>
 #include <glob.h>
 #include <sys/file.h>
+#include <sys/resource.h>
 #include <sys/stat.h>
 #include <unistd.h>
 
@@ -395,6 +396,7 @@ class Runner {
       fs::create_directories(state_dir, ec);
       if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
       lock.emplace(state_dir.string(), options_.wait_for_lock);
+      require_room_for_state((state_dir / "state.sqlite").string());
       db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
     }
     memory_ = job_.memory;
@@ -564,6 +566,23 @@ class Runner {
     report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report_.peak_memory_bytes = detail::peak_resident_bytes();
     return report_;
+  }
+
+  // A file-size limit (ulimit -f) below what the state database needs had let every step do its
+  // work, publish its files and then fail to record it ("disk I/O error"): refused before any
+  // step, naming the limit. Room to grow: 64 KiB (a limit between that and what the outputs
+  // need fails at the first output, as a full disk does).
+  static void require_room_for_state(const std::string& path) {
+    rlimit limit{};
+    if (getrlimit(RLIMIT_FSIZE, &limit) != 0 || limit.rlim_cur == RLIM_INFINITY) return;
+    std::error_code ec;
+    const std::uintmax_t size = fs::exists(path, ec) ? fs::file_size(path, ec) : 0;
+    const std::uintmax_t needed = size + (64 << 10);
+    if (std::uintmax_t(limit.rlim_cur) < needed)
+      throw OutputError(path, fmt::format("the file-size limit (ulimit -f) of {} KiB is below what the state "
+                                          "database needs ({} KiB: its size and room to grow); raise it "
+                                          "(ulimit -f unlimited) and run again",
+                                          std::uintmax_t(limit.rlim_cur) >> 10, needed >> 10));
   }
 
   // The engines' advice names a command's options; a job sets the step's keys instead.
@@ -1058,7 +1077,19 @@ class Runner {
         }
         for (const std::string& f : files) {
           if (std::find(excluded_.begin(), excluded_.end(), f) != excluded_.end()) continue;
-          text += "|" + f + "=" + checksum_of(f, db_.get(), scan_);
+          std::string sum;
+          try {
+            sum = checksum_of(f, db_.get(), scan_);
+          } catch (const InputError& e) {
+            // A file it cannot read (no permission): with --skip-bad left out as a damaged one
+            // is (it had stopped the step), named with the reason.
+            if (!options_.skip_bad || e.where() != f) throw;
+            excluded_.push_back(f);
+            report_.skipped_inputs.push_back(f + ": " + e.reason());
+            fingerprints_.clear();
+            continue;
+          }
+          text += "|" + f + "=" + sum;
         }
       }
       return detail::text_checksum(text);

@@ -1,6 +1,9 @@
 #include "pipeline/state.hpp"
 
 #include <fcntl.h>
+
+#include <cerrno>
+#include <cstring>
 #include <unistd.h>
 
 #include <fmt/format.h>
@@ -68,14 +71,15 @@ std::string text_checksum(const std::string& text) {
 
 std::string file_checksum(const std::string& path) {
   const int fd = ::open(path.c_str(), O_RDONLY);
-  if (fd < 0) throw InputError(path, "cannot read the file");
+  if (fd < 0) throw InputError(path, std::string("cannot read the file: ") + std::strerror(errno));
   std::uint64_t h = fnv_offset;
   std::vector<unsigned char> buffer(1 << 20);
   for (;;) {
     const ssize_t n = ::read(fd, buffer.data(), buffer.size());
     if (n < 0) {
+      const int error = errno;
       ::close(fd);
-      throw InputError(path, "read failed while computing its checksum");
+      throw InputError(path, std::string("read failed while computing its checksum: ") + std::strerror(error));
     }
     if (n == 0) break;
     h = fnv(h, buffer.data(), std::size_t(n));

@@ -854,6 +854,31 @@ class JobWording(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
         self.assertEqual(done.stderr.strip(), "kalends: %s: cannot read the job file: Permission denied" % job)
 
+    def test_an_unreadable_composite_is_named_with_the_reason_and_skipped_with_skip_bad(self):
+        # "cannot read the file" had given no reason, and --skip-bad had not left it out.
+        folder = os.path.join(self.tmp, "unreadable")
+        job = small_dated_job(folder)
+        for day in ("2021-01-01", "2021-01-17", "2021-02-02", "2021-02-18"):
+            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % day), np.full((4, 4), 0.5, np.float32),
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        closed = os.path.join(folder, "layers", "ndvi_2021-02-18.tif")
+        os.chmod(closed, 0)
+        for path in (self.tmp, folder, os.path.join(folder, "layers")):
+            os.chmod(path, 0o777)
+
+        def as_nobody(*extra):
+            return subprocess.run(["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN,
+                                   "run", job] + list(extra), capture_output=True, text=True, timeout=120)
+        try:
+            done = as_nobody()
+            self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+            self.assertIn("%s: cannot read the file: Permission denied" % closed, done.stderr)
+            done = as_nobody("--skip-bad")
+            self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+            self.assertIn("skipped input: %s: cannot read the file: Permission denied" % closed, done.stdout)
+        finally:
+            os.chmod(self.tmp, 0o700)
+
     def test_a_unit_error_names_the_steps_key_not_an_option(self):
         # Temperatures without a unit label: the advice had been "give --units kelvin or --units
         # celsius", an option a job file does not take.
@@ -1707,6 +1732,26 @@ class Faults(kt.TempDirTestCase):
         self.assertEqual(second.returncode, 1, second.stderr)
         self.assertIn("another kalends run", second.stderr)
         self.assertEqual(len(second.stderr.strip().splitlines()), 1)
+
+    def test_a_file_size_limit_below_the_state_database_is_refused_before_any_step(self):
+        # A limit below the state database's size had let every step work and publish, then fail
+        # to record it ("state database: disk I/O error"), later steps not reached.
+        out = os.path.join(self.tmp, "limited")
+        shutil.copytree(os.path.join(self.tmp, "reference"), out, symlinks=True)
+        database = os.path.join(out, ".kalends", "state.sqlite")
+        limit = os.path.getsize(database) // 2
+        before = os.path.getmtime(database)
+
+        def small_limit():
+            resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
+
+        done = run(self.job, "--out", out, preexec=small_limit)
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        lines = done.stderr.strip().splitlines()
+        self.assertEqual(len(lines), 1, done.stderr)
+        self.assertIn("state.sqlite: the file-size limit (ulimit -f) of %d KiB" % (limit >> 10), lines[0])
+        self.assertNotIn("ran", done.stdout)
+        self.assertEqual(os.path.getmtime(database), before)
 
     def test_a_failing_disk_stops_cleanly_and_the_next_run_resumes(self):
         out = os.path.join(self.tmp, "full")
