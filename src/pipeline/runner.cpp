@@ -665,6 +665,21 @@ class Runner {
     // left out, while those are unchanged. Each is listed after the steps.
     const std::vector<std::string> left_out = leave_out_known_bad_inputs();
     std::map<std::string, std::string> failed_root;  // step id -> the failed step it waits for
+    // Records a failed step, or names the failed step that `step` waits for ("" if none): the
+    // next run does it only once that one is fixed, which "never run" alone did not say.
+    auto waiting_on = [&](const JobStep& step, const StepStatus& s) -> std::string {
+      if (s.state == "failed") {
+        failed_root[step.id] = step.id;
+        return "";
+      }
+      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
+                                      [&](const std::string& name) { return failed_root.count(name) != 0; });
+      if (waits == step.inputs.end()) return "";
+      const std::string& root = failed_root.at(*waits);
+      failed_root[step.id] = root;
+      return *waits == root ? fmt::format("reads step '{}', which failed", root)
+                            : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
+    };
     for (const JobStep& step : job_.steps) {
       StepStatus s;
       s.id = step.id;
@@ -678,17 +693,8 @@ class Runner {
         s.state = !record ? "never run" : record->status == "failed" ? "failed" : "stale";
         s.detail = s.state == "failed" ? record->finished + " UTC: " + record->message
                                        : std::string("an input cannot be read: ") + e.what();
-        // A step reading one that failed on this input: that step named first, as below.
-        const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
-                                        [&](const std::string& name) { return failed_root.count(name) != 0; });
-        if (s.state == "failed") {
-          failed_root[step.id] = step.id;
-        } else if (waits != step.inputs.end()) {
-          const std::string& root = failed_root.at(*waits);
-          failed_root[step.id] = root;
-          s.detail = *waits == root ? fmt::format("reads step '{}', which failed", root)
-                                    : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
-        }
+        // A step reading one that failed on this input: that failed step, not the input.
+        if (const std::string why = waiting_on(step, s); !why.empty()) s.detail = why;
         list.push_back(s);
         continue;
       }
@@ -737,22 +743,8 @@ class Runner {
                      s.detail;
         }
       }
-      // A step left undone because a step it reads failed: the next run does it only once that
-      // one is fixed, which "never run" alone did not say.
-      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
-                                      [&](const std::string& name) { return failed_root.count(name) != 0; });
-      if (s.state == "failed") {
-        failed_root[step.id] = step.id;
-      } else if (waits != step.inputs.end()) {
-        const std::string& root = failed_root.at(*waits);
-        failed_root[step.id] = root;
-        if (s.state == "never run" || s.state == "stale") {
-          const std::string why = *waits == root ? fmt::format("reads step '{}', which failed", root)
-                                                 : fmt::format("reads step '{}', which waits for failed step '{}'",
-                                                               *waits, root);
-          s.detail = s.detail.empty() ? why : why + "; " + s.detail;
-        }
-      }
+      if (const std::string why = waiting_on(step, s); !why.empty() && (s.state == "never run" || s.state == "stale"))
+        s.detail = s.detail.empty() ? why : why + "; " + s.detail;
       if (!running.empty() && s.state != "done") {
         // Its hidden .partial files are the running run's own, so "interrupted" is not said.
         const bool had_record = s.state == "stale" || s.state == "failed";
