@@ -49,11 +49,14 @@ std::vector<std::string> period_labels(const CalendarPeriod& calendar) {
   return labels;
 }
 
-std::string parameter_text(const ThermalParameters& table,
-                           const std::vector<std::string>& sections) {
+// The table entries the run used ("section.key=v,v;..."): those of `sections`, less `unused`
+// ("degree-day.vivax" in a falciparum run; outputs.md promises the entries used).
+std::string parameter_text(const ThermalParameters& table, const std::vector<std::string>& sections,
+                           const std::string& unused = "") {
   std::string out;
   for (const ThermalParameter& e : table.entries()) {
     if (std::find(sections.begin(), sections.end(), e.section) == sections.end()) continue;
+    if (e.section + "." + e.key == unused) continue;
     out += fmt::format("{}{}.{}=", out.empty() ? "" : ";", e.section, e.key);
     for (std::size_t i = 0; i < e.values.size(); ++i)
       out += fmt::format("{}{:g}", i ? "," : "", e.values[i]);
@@ -152,11 +155,17 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
         source.day_hour, source.night_hour, diurnal.a, diurnal.b, diurnal.c);
   else
     temperature_text = "temperatures as given (no diurnal cycle)";
-  const std::vector<std::string> sections = request.model == ThermalModelKind::r0_2013
-                                                ? std::vector<std::string>{"diurnal", "r0-2013"}
-                                            : request.model == ThermalModelKind::degree_day
-                                                ? std::vector<std::string>{"diurnal", "degree-day"}
-                                                : std::vector<std::string>{"diurnal", "window"};
+  // Temperatures as given have no diurnal cycle: its parameters are not among those used.
+  std::vector<std::string> sections = request.model == ThermalModelKind::r0_2013
+                                          ? std::vector<std::string>{"diurnal", "r0-2013"}
+                                      : request.model == ThermalModelKind::degree_day
+                                          ? std::vector<std::string>{"diurnal", "degree-day"}
+                                          : std::vector<std::string>{"diurnal", "window"};
+  if (source.mode == Mode::constant) sections.erase(sections.begin());
+  const std::string unused_parasite =
+      request.model != ThermalModelKind::degree_day ? ""
+      : request.parasite == Parasite::vivax          ? "degree-day.falciparum"
+                                                     : "degree-day.vivax";
 
   std::vector<detail::OutputSpec> specs;
   auto add = [&](const std::string& suffix, const std::vector<std::string>& band_names,
@@ -166,7 +175,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
                      {"KALENDS_LAYER", layer},
                      {"KALENDS_MODEL", model.description()},
-                     {"KALENDS_PARAMETERS", parameter_text(table, sections)},
+                     {"KALENDS_PARAMETERS", parameter_text(table, sections, unused_parasite)},
                      {"KALENDS_TEMPERATURE", temperature_text},
                      {"KALENDS_THRESHOLD", fmt::format("{:g}", request.threshold)},
                      {"KALENDS_PERIOD", request.period.label()},

@@ -116,6 +116,13 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         out, _ = self.run_model("dd", "--model", "degree-day", "--parasite", "vivax", "--threshold", "0.5")
         expected = tn.relative("degree-day", self.tas.ravel(), "vivax").reshape(self.tas.shape)
         self.check(out, "degree-day-vivax", expected, 0.5)
+        # The table entries used (docs/outputs.md): not falciparum's, and no diurnal cycle for
+        # temperatures as given (both had been listed).
+        used = kt.gdal().Open(os.path.join(out, "degree-day-vivax_synoptic.tif")).GetMetadataItem("KALENDS_PARAMETERS")
+        self.assertIn("degree-day.vivax=105,14.5", used)
+        self.assertIn("degree-day.lifespan=", used)
+        self.assertNotIn("degree-day.falciparum", used)
+        self.assertNotIn("diurnal.", used)
 
     def test_window(self):
         out, _ = self.run_model("window", "--model", "window", "--window", "20,30")
