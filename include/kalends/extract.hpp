@@ -19,6 +19,9 @@ struct PointsSource {
   std::string id_column = "id";
   std::string x_column = "longitude", y_column = "latitude";  // CSV only
   std::string date_column = "date";  // YYYY-MM-DD or YYYY-MM; "" = no dates
+  /// Whether the user named the date column: a file without the default one has no dates (fixed
+  /// layers need none; dated layers then fail naming the column).
+  bool date_column_given = false;
   std::string crs = "EPSG:4326";     // CSV coordinates (OGR vector files: their own CRS)
 };
 

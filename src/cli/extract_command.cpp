@@ -33,16 +33,18 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--id-column", r.points.id_column, "Column of the point identifier")->capture_default_str();
   sub->add_option("--x-column", r.points.x_column, "CSV column of the longitude or easting")->capture_default_str();
   sub->add_option("--y-column", r.points.y_column, "CSV column of the latitude or northing")->capture_default_str();
-  sub->add_option("--date-column", r.points.date_column, "Column of the survey date (YYYY-MM-DD or YYYY-MM)")
-      ->capture_default_str();
+  CLI::Option* date_column =
+      sub->add_option("--date-column", r.points.date_column, "Column of the survey date (YYYY-MM-DD or YYYY-MM)")
+          ->capture_default_str();
   sub->add_option("--crs", r.points.crs, "CRS of CSV coordinates (EPSG code, WKT or PROJ string)")
       ->capture_default_str();
   sub->add_option("--date-marks", o->marks,
                   "What a dated layer's date marks in its composite: start, middle or end; auto: end where every "
                   "date is the last day of its month (monthly means as CF files stamp them), else start")
       ->capture_default_str();
-  return [o, &global] {
+  return [o, date_column, &global] {
     ExtractRequest& r = o->request;
+    r.points.date_column_given = date_column->count() > 0;
     r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
     if (!o->buffer.empty() && !(r.buffer_metres > 0)) throw UsageError("--buffer", "the radius must be positive (metres)");

@@ -509,6 +509,14 @@ ExtractResult run_extract(const ExtractRequest& request) {
                                                      "give the table another name (nothing was replaced)");
   }
   r.series = select(std::move(found), request.layers, request.include_descriptors);
+  // A points file without the default date column: fine for fixed layers, not for dated ones.
+  if (r.points.date_name.empty() && !request.points.date_column.empty())
+    for (const CovariateSeries& s : r.series)
+      if (s.kind != SeriesKind::fixed)
+        throw InputError(request.points.path,
+                         fmt::format("no column '{}' (--date-column): the layer {} is dated and needs each survey's "
+                                     "date (fixed layers alone need none)",
+                                     request.points.date_column, s.name));
   for (CovariateSeries& s : r.series) {
     std::vector<TimePoint> times;
     for (const SeriesFile& f : s.files) times.push_back(f.time);

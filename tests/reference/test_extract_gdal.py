@@ -880,6 +880,20 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("name the same column", done.stderr)
 
+    def test_fixed_layers_need_no_date_column(self):
+        # A table of sites without dates had been refused for a fixed layer ("no column 'date'").
+        done, out = self.extract(self.north_up, ["a,-80.0,35.0"], header="id,longitude,latitude")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotEqual(kt.read_table(out)[0]["north_up"], "")
+        # A dated layer needs them, and says so; a date column the user names must be there.
+        tas = 'NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc")
+        done, _ = self.extract(tas, ["a,-80.0,35.0"], header="id,longitude,latitude")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("no column 'date' (--date-column): the layer tas is dated", done.stderr)
+        done, _ = self.extract(self.north_up, ["a,-80.0,35.0"], "--date-column", "date", header="id,longitude,latitude")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("no column 'date' (--date-column); the columns are", done.stderr)
+
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
         # missing ("cannot be transformed"), exit 0.

@@ -25,6 +25,7 @@ ExtractRequest extract_request(const StepContext& c) {
   r.points.x_column = c.text("x_column", r.points.x_column);
   r.points.y_column = c.text("y_column", r.points.y_column);
   r.points.date_column = c.text("date_column", r.points.date_column);
+  r.points.date_column_given = c.has("date_column");
   r.points.crs = c.text("crs", r.points.crs);
   r.sampling = parse_sampling(c.text("sampling", "nearest"));
   r.buffer_metres = c.number("buffer", 0);
