@@ -284,7 +284,8 @@ void sample(Files& files, const CovariateSeries& s, const std::string& path, int
     const Cell c = read_cells(static_cast<int>(at.px), static_cast<int>(at.py), 1, 1)[0];
     if (s.has_sd_and_flag && !std::isnan(c.flag)) out.flag = c.flag;
     if (std::isnan(c.value)) {
-      out.reason = "nodata";
+      // A fill's flag 3 says why: the method could not fill it (it had read as plain nodata).
+      out.reason = s.has_sd_and_flag && c.flag == 3 ? "not filled (flag 3)" : "nodata";
       return;
     }
     out.value = c.value;

@@ -18,6 +18,7 @@ A second class does the same on an invented raster on the MODIS sinusoidal grid 
 where distance on the grid and on the ground differ most (sinusoidal: x = R lambda cos phi,
 y = R phi; Snyder 1987, USGS Professional Paper 1395, from memory).
 """
+import datetime
 import math
 import os
 import shutil
@@ -893,6 +894,27 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         done, _ = self.extract(self.north_up, ["a,-80.0,35.0"], "--date-column", "date", header="id,longitude,latitude")
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("no column 'date' (--date-column); the columns are", done.stderr)
+
+    def test_a_cell_the_fill_could_not_fill_says_so(self):
+        # Invented 4 x 4 px dates with one pixel never observed: whittaker leaves it empty with
+        # flag 3, which the table had given as plain "nodata".
+        stack = os.path.join(self.tmp, "never")
+        os.makedirs(stack)
+        for k in range(6):
+            values = np.full((4, 4), 0.3 + 0.05 * k, np.float32)
+            values[1, 1] = np.nan
+            date = datetime.date(2021, 5, 1) + datetime.timedelta(days=16 * k)
+            kt.write_raster(os.path.join(stack, "ndvi_%s.tif" % date.isoformat()), values,
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        filled = os.path.join(self.tmp, "never-filled")
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "*.tif"), "--out", filled, "--method", "whittaker"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        done, out = self.extract(filled, ["hole,30.015,-1.015,2021-05-20", "full,30.005,-1.005,2021-05-20"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {r["id"]: r for r in kt.read_table(out)}
+        self.assertEqual((rows["hole"]["ndvi"], rows["hole"]["ndvi.reason"], rows["hole"]["ndvi.flag"]),
+                         ("", "not filled (flag 3)", "3"))
+        self.assertNotEqual(rows["full"]["ndvi"], "")
 
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
