@@ -484,6 +484,25 @@ ExtractResult run_extract(const ExtractRequest& request) {
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.notes = r.points.notes;
+  // The long table's own columns beside the points' (a points column 'layer' or 'value'): two
+  // columns of one name, which R and pandas rename without a word.
+  if (request.long_format) {
+    const std::pair<const char*, const std::string*> given[] = {{"--id-column", &r.points.id_name},
+                                                                {"--x-column", &r.points.x_name},
+                                                                {"--y-column", &r.points.y_name},
+                                                                {"--date-column", &r.points.date_name}};
+    for (const auto& [option, name] : given) {
+      std::string lower_name = *name;
+      std::transform(lower_name.begin(), lower_name.end(), lower_name.begin(),
+                     [](unsigned char ch) { return char(std::tolower(ch)); });
+      for (const char* own : {"layer", "lag", "matched", "value", "sd", "flag", "buffer_mean", "buffer_cells",
+                              "buffer_filled", "reason"})
+        if (lower_name == own)
+          throw UsageError(std::string(option) + " '" + *name + "'",
+                           "is a column the long table (--long) writes itself; rename that column of " +
+                               request.points.path + " and give its new name");
+    }
+  }
   {
     std::map<std::string, int> seen;
     for (const SurveyPoint& p : r.points.points)

@@ -916,6 +916,14 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
                          ("", "not filled (flag 3)", "3"))
         self.assertNotEqual(rows["full"]["ndvi"], "")
 
+    def test_points_columns_named_as_the_long_tables_own_are_refused(self):
+        # A header "layer,...,layer,..." had been written, which R and pandas rename unseen.
+        done, out = self.extract(self.north_up, ["p1,-80.0,35.0,"], "--long", "--id-column", "layer",
+                                 header="layer,longitude,latitude,date")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--id-column 'layer': is a column the long table (--long) writes itself", done.stderr)
+        self.assertFalse(os.path.exists(out))
+
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
         # missing ("cannot be transformed"), exit 0.
