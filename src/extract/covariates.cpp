@@ -151,6 +151,21 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     c.unit = stack.layers().front().unit;
     c.description = stack.input();
   };
+  // How many files of a folder share `s`'s folder and name before a date (ndvi_ of
+  // ndvi_2021-01-17.tif): two or more make a dated series.
+  std::map<std::string, int> dated_names;
+  auto dated_key = [](const Scanned& s) -> std::optional<std::string> {
+    if (s.stack) return std::nullopt;
+    const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
+    if (!in_name) return std::nullopt;
+    return s.group + "|" + trim_separators(s.stem.substr(0, in_name->position));
+  };
+  for (const Scanned& s : scanned)
+    if (const auto key = dated_key(s)) ++dated_names[*key];
+  auto files_dated_as = [&](const Scanned& s) {
+    const auto key = dated_key(s);
+    return key ? dated_names[*key] : 0;
+  };
   // One raster file (or variable) named `stem`, its series named after `prefix` + stem.
   std::function<void(const Scanned&)> scan = [&](const Scanned& s) {
     const std::string prefix = s.group.empty() ? "" : s.group + ".";
@@ -246,6 +261,27 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         throw InputError(s.path, "a second synoptic file for the series '" + c.name + "'");
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
+    } else if (raw_stack && raw_stack->layers().size() == 1 && bands == 1 && !s.stack &&
+               files_dated_as(s) >= 2) {
+      // A folder of dated files kalends did not write (ndvi_2021-01-17.tif, ...): one dated
+      // series, as the pattern 'ndvi_*.tif' gives; each had been a fixed layer, read for every
+      // survey date, with a note per file.
+      const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
+      const std::string name = prefix + (in_name ? trim_separators(s.stem.substr(0, in_name->position)) : s.stem);
+      CovariateSeries& c = series_for(name.empty() ? "layer" : name);
+      if (stack_series.count(c.name) || (!c.files.empty() && c.kind != SeriesKind::dated))
+        throw InputError(s.path, "would be the series '" + c.name + "', as " + c.files.front().path +
+                                     " is: give the files or folders apart, in two runs, or rename one");
+      const Layer& layer = raw_stack->layers().front();
+      c.kind = SeriesKind::dated;
+      c.files.push_back({layer.path, layer.time, 0, false, layer.band});
+      if (c.files.size() == 1) {
+        c.grid = raw_stack->grid();
+        c.unit = layer.unit;
+        c.description = fs::path(s.path).parent_path().string();
+      } else {
+        require_same_grid(c.grid, raw_stack->grid(), s.path);
+      }
     } else if (raw_stack && raw_stack->layers().size() > 1) {
       // A NetCDF file of one variable is named as a file of several is: file.variable.
       const char* variable = ds->GetRasterBand(1)->GetMetadataItem("NETCDF_VARNAME");

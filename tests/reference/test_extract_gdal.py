@@ -924,6 +924,26 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         self.assertIn("--id-column 'layer': is a column the long table (--long) writes itself", done.stderr)
         self.assertFalse(os.path.exists(out))
 
+    def test_a_folder_of_dated_files_is_one_dated_series(self):
+        # Five invented 16-day composites dated by their names: the folder had given five fixed
+        # layers, each read for every survey date (and a note each); it is the series the quoted
+        # pattern gives.
+        folder = os.path.join(self.tmp, "dated-files")
+        os.makedirs(folder)
+        for k in range(5):
+            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=16 * k)
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), np.full((4, 4), 0.1 * k, np.float32),
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        rows = ["p1,30.015,-1.015,2021-01-20", "p2,30.015,-1.015,2021-03-10"]
+        done, by_folder = self.extract(folder, rows, "--lags", "1")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("fixed layer", done.stderr)
+        done, by_pattern = self.extract(os.path.join(folder, "*.tif"), rows, "--lags", "1")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        a, b = kt.read_table(by_folder), kt.read_table(by_pattern)
+        self.assertEqual(a, b)
+        self.assertEqual((a[0]["ndvi"], a[0]["ndvi.matched"]), ("0.100000001", "2021-01-17"))
+
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
         # missing ("cannot be transformed"), exit 0.
