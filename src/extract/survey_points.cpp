@@ -72,6 +72,7 @@ double coordinate(const std::string& text, const std::string& where) {
 struct CsvRow {
   int line = 0, fields = 0;
   bool blank = false;  // every field empty or spaces (a spreadsheet's leftover separators)
+  bool open_quote = false;  // the file ends inside a quote opened in this row
 };
 
 // Reads the record that starts at `pos` (a quoted field may span lines) and moves `pos` past
@@ -97,6 +98,7 @@ CsvRow read_record(const std::string& text, std::size_t& pos, char separator, in
       row.blank = false;
     }
   }
+  row.open_quote = quoted;
   return row;
 }
 
@@ -290,6 +292,9 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     // (OGR's ids start at 0 in some formats and need not be in order).
     const std::string where = path + (csv ? ":" + std::to_string(raw.line) : " feature " + std::to_string(row));
     if (csv && raw.blank) continue;  // only separators or spaces: nothing was written there
+    // A quote never closed swallows the rest of the file: said, not "a row cut short".
+    if (csv && raw.open_quote)
+      throw InputError(where, "a quote (\") opened in this row is never closed");
     if (csv && raw.fields != defn.GetFieldCount())
       throw InputError(where, fmt::format("has {} fields where the header has {} ({})", raw.fields,
                                           defn.GetFieldCount(),

@@ -944,6 +944,13 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         self.assertEqual(a, b)
         self.assertEqual((a[0]["ndvi"], a[0]["ndvi.matched"]), ("0.100000001", "2021-01-17"))
 
+    def test_a_quote_never_closed_is_named(self):
+        # It had been "has 1 fields where the header has 4 (a row cut short?)".
+        done, out = self.extract(self.north_up, ["p1,-80,35,1999-06-15", '"p2,-80,35,1999-06-15', "p3,-80,35,1999-06-15"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn(":3: a quote (\") opened in this row is never closed", done.stderr)
+        self.assertFalse(os.path.exists(out))
+
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
         # missing ("cannot be transformed"), exit 0.
