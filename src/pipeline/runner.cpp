@@ -27,6 +27,7 @@
 #include "kalends/pipeline.hpp"
 #include "kalends/season.hpp"
 #include "io/file_glob.hpp"
+#include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "io/shell_word.hpp"
 #include "pipeline/job_file.hpp"
@@ -486,7 +487,7 @@ class Runner {
         stopped_by[step.id] = root;
         r.action = StepReport::Action::not_reached;
         r.reason = *waits == root ? fmt::format("reads step '{}', which failed", root)
-                                  : fmt::format("reads step '{}', not run: step '{}' failed", *waits, root);
+                                  : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
         if (events_.step_finished) events_.step_finished(r);
         report_.steps.push_back(r);
         continue;
@@ -1079,6 +1080,10 @@ class Runner {
             excluded_.push_back(f);
             report_.skipped_inputs.push_back(f + ": " + e.reason());
             fingerprints_.clear();
+            // Its size and time, so that `status` and the next runs know it unchanged (a
+            // damaged file has them with its checksum; this one has no checksum to give).
+            struct stat st {};
+            if (::stat(f.c_str(), &st) == 0) scan_.records.push_back({f, std::int64_t(st.st_size), mtime_ns(st), ""});
             continue;
           }
           text += "|" + f + "=" + sum;
@@ -1348,20 +1353,29 @@ class Runner {
         fingerprints_.clear();
       }
     }
-    // Run whole, the step owns its folder: its earlier rasters that it no longer makes (the
-    // files of its old name after 'name' or 'index' changed) go, or later steps read them with
-    // the new ones as one stack ("duplicate date"), or as current.
+    // Run whole, the step's earlier rasters that it no longer makes (the files of its old name
+    // after 'name' or 'index' changed) go, or later steps read them with the new ones as one
+    // stack ("duplicate date"), or as current. Only rasters this step wrote, as their metadata
+    // says, in its folder or its calendar: a raster of the user's kept there (a mask, a backup
+    // in a subfolder) is recorded among the folder's files too, and had been removed.
     if (rasters && earlier && !only_years_ && !only_tiles_) {
       std::set<std::string> made;
       for (const std::string& path : *rasters) made.insert(fs::path(path).lexically_normal().string());
       const fs::path own = fs::path(folder).lexically_normal();
+      const std::string written_by = "(step " + step.id + ")";
       for (const std::string& path : earlier->outputs) {
         const fs::path file = fs::path(path).lexically_normal();
-        const auto [inside, rest] = std::mismatch(own.begin(), own.end(), file.begin(), file.end());
+        const fs::path parent = file.parent_path();
+        const bool placed = parent == own || (parent.parent_path() == own &&
+                                              parent.filename().string().starts_with("calendar-"));
         std::error_code ec;
-        if (inside == own.end() && file.extension() == ".tif" && !made.count(file.string()) &&
-            fs::is_regular_file(file, ec) && fs::remove(file, ec))
-          ++report.outputs_removed;
+        if (!placed || file.extension() != ".tif" || made.count(file.string()) || !fs::is_regular_file(file, ec))
+          continue;
+        const auto metadata = detail::raster_metadata(file.string());
+        const auto command = metadata.find("KALENDS_COMMAND");
+        if (!metadata.count("KALENDS_VERSION") || command == metadata.end() || !command->second.ends_with(written_by))
+          continue;
+        if (fs::remove(file, ec)) ++report.outputs_removed;
       }
     }
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();

@@ -1,6 +1,7 @@
 #include "pipeline/state.hpp"
 
 #include <fcntl.h>
+#include <sys/resource.h>
 
 #include <cerrno>
 #include <cstring>
@@ -26,11 +27,20 @@ std::uint64_t fnv(std::uint64_t h, const unsigned char* data, std::size_t n) {
   return h;
 }
 
+// A database error under a file-size limit (ulimit -f) says so: SQLite's "disk I/O error" had
+// sent the user looking at the disk.
+std::string database_error(const std::string& message) {
+  rlimit limit{};
+  if (getrlimit(RLIMIT_FSIZE, &limit) != 0 || limit.rlim_cur == RLIM_INFINITY) return "state database: " + message;
+  return fmt::format("state database: {} (a file-size limit, ulimit -f, of {} KiB is set: raise it)", message,
+                     std::uintmax_t(limit.rlim_cur) >> 10);
+}
+
 class Statement {
  public:
   Statement(sqlite3* db, const char* sql, const std::string& where) : where_(where) {
     if (sqlite3_prepare_v2(db, sql, -1, &stmt_, nullptr) != SQLITE_OK)
-      throw OutputError(where, std::string("state database: ") + sqlite3_errmsg(db));
+      throw OutputError(where, database_error(sqlite3_errmsg(db)));
   }
   ~Statement() { sqlite3_finalize(stmt_); }
   Statement& bind(int i, const std::string& v) {
@@ -49,7 +59,7 @@ class Statement {
     const int rc = sqlite3_step(stmt_);
     if (rc == SQLITE_ROW) return true;
     if (rc == SQLITE_DONE) return false;
-    throw OutputError(where_, std::string("state database: ") + sqlite3_errmsg(sqlite3_db_handle(stmt_)));
+    throw OutputError(where_, database_error(sqlite3_errmsg(sqlite3_db_handle(stmt_))));
   }
   std::string text(int c) const {
     const unsigned char* t = sqlite3_column_text(stmt_, c);
@@ -94,7 +104,7 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     const std::string message = db_ ? sqlite3_errmsg(db_) : "cannot open";
     sqlite3_close(db_);
     db_ = nullptr;
-    throw OutputError(path, "state database: " + message);
+    throw OutputError(path, database_error(message));
   }
   sqlite3_busy_timeout(db_, 10000);
   // SQLite opens a write-protected file read-only without a word; the run would then replace
@@ -129,7 +139,7 @@ void StateDatabase::exec(const std::string& sql) const {
   if (sqlite3_exec(db_, sql.c_str(), nullptr, nullptr, &error) != SQLITE_OK) {
     const std::string message = error ? error : "error";
     sqlite3_free(error);
-    throw OutputError(path_, "state database: " + message);
+    throw OutputError(path_, database_error(message));
   }
 }
 

@@ -770,7 +770,7 @@ class JobWording(kt.TempDirTestCase):
         self.assertRegex(rows["other"], r"^  other +ran ")
         self.assertRegex(rows["broken"], r"^  broken +failed +.*ndvi_2021-01-01.tif: cannot open")
         self.assertRegex(rows["again"], r"not reached +reads step 'broken', which failed")
-        self.assertRegex(rows["report"], r"not reached +reads step 'again', not run: step 'broken' failed")
+        self.assertRegex(rows["report"], r"not reached +reads step 'again', which waits for failed step 'broken'")
         self.assertTrue(glob.glob(os.path.join(folder, "out", "other", "*.tif")))
         self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertIn("ndvi_2021-01-01.tif: cannot open", done.stderr)
@@ -876,6 +876,16 @@ class JobWording(kt.TempDirTestCase):
             done = as_nobody("--skip-bad")
             self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
             self.assertIn("skipped input: %s: cannot read the file: Permission denied" % closed, done.stdout)
+            # status and the next --skip-bad run know it left out and unchanged (status had said
+            # "stale: an input cannot be read", and not listed it).
+            status = subprocess.run(["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN,
+                                     "status", job], capture_output=True, text=True, timeout=60)
+            self.assertEqual(status.returncode, 0, status.stdout + status.stderr)
+            self.assertRegex(status.stdout, r"(?m)^fill +fill +done ")
+            self.assertRegex(status.stdout, r"(?m)^input +bad +left out +%s: cannot read" % re.escape(closed))
+            done = as_nobody("--skip-bad")
+            self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+            self.assertRegex(done.stdout, r"(?m)^  fill +up to date$")
         finally:
             os.chmod(self.tmp, 0o700)
 
@@ -1377,6 +1387,21 @@ class RemovedOutputs(kt.TempDirTestCase):
             done = run(job)
             self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         self.assertIn("4 removed (no longer made)", done.stdout)
+        # Rasters of the user's in a step's folder stay: a mask of its own, and a backup copy of
+        # an output in a subfolder (both had been removed as outputs no longer made).
+        fill_folder = os.path.join(folder, "out", "fill")
+        os.makedirs(os.path.join(fill_folder, "backup"))
+        shutil.copy(sorted(glob.glob(os.path.join(fill_folder, "greenness_*.tif")))[0], os.path.join(fill_folder, "backup"))
+        kt.write_raster(os.path.join(fill_folder, "my_mask.tif"), np.ones((6, 6), np.float32),
+                        geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        for name in ('name = "other"\n', 'name = "greenness"\n'):
+            with open(job, "w") as f:
+                f.write(text.format(out="out", index="evi", name=name))
+            self.assertEqual(run(job).returncode, 0)
+        self.assertTrue(os.path.exists(os.path.join(fill_folder, "my_mask.tif")))
+        self.assertEqual(len(glob.glob(os.path.join(fill_folder, "backup", "*.tif"))), 1)
+        for extra in ("my_mask.tif", "backup"):
+            shutil.move(os.path.join(fill_folder, extra), os.path.join(folder, extra))
         self.assertEqual(sorted(os.listdir(os.path.join(folder, "out", "vi"))),
                          ["evi_2021-01-01.tif", "evi_2021-01-17.tif", "evi_2021-02-02.tif", "evi_2021-02-18.tif"])
         self.assertEqual(sorted(glob.glob(os.path.join(folder, "out", "fill", "*.tif"))),
@@ -1752,6 +1777,30 @@ class Faults(kt.TempDirTestCase):
         self.assertIn("state.sqlite: the file-size limit (ulimit -f) of %d KiB" % (limit >> 10), lines[0])
         self.assertNotIn("ran", done.stdout)
         self.assertEqual(os.path.getmtime(database), before)
+
+    def test_a_state_database_outgrowing_a_file_size_limit_names_the_limit(self):
+        # A first run under a limit the database outgrows (guarded only below its size) had
+        # failed with "state database: disk I/O error", which sent the user to the disk.
+        folder = os.path.join(self.tmp, "outgrown")
+        os.makedirs(os.path.join(folder, "layers"))
+        for k in range(60):
+            date = datetime.date(2021, 1, 1) + datetime.timedelta(days=8 * k)
+            kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
+                            np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "ndvi"\nevery = "1M"\n[[step]]\ndo = "seasons"\ninput = "fill"\n')
+
+        def limit():
+            resource.setrlimit(resource.RLIMIT_FSIZE, (70 << 10, 70 << 10))
+
+        done = run(job, preexec=limit)
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        self.assertIn("state database: disk I/O error (a file-size limit, ulimit -f, of 70 KiB is set: raise it)",
+                      done.stderr)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
 
     def test_a_failing_disk_stops_cleanly_and_the_next_run_resumes(self):
         out = os.path.join(self.tmp, "full")
