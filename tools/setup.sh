@@ -5,7 +5,7 @@ set -euo pipefail
 
 packages=(
   build-essential cmake pkg-config
-  libgdal-dev gdal-bin libeigen3-dev libfftw3-dev libtbb-dev
+  libgdal-dev gdal-bin libproj-dev libeigen3-dev libfftw3-dev libtbb-dev
   catch2 libcli11-dev libfmt-dev libtomlplusplus-dev libsqlite3-dev
   python3-numpy python3-scipy python3-gdal
   time

@@ -15,9 +15,9 @@
 
 namespace kalends {
 
-/// Whether the dates (two or more) all fall on the last day of their month, a month apart or
-/// more: the way CF files commonly stamp monthly means, which `DateMarks::end` reads as each
-/// month's own. Commands say so when they read such dates as starts.
+/// Whether the dates (two or more, a month apart or more) fall on the last day of their month,
+/// nine in ten of them at least: the way CF files commonly stamp monthly means, which
+/// `DateMarks::end` reads as each month's own (the default, DateMarks::automatic, does).
 bool dates_at_month_ends(const std::vector<TimePoint>& dates);
 
 /// `given`, or for DateMarks::automatic: `end` on dates at month ends, else `start`. Read as

@@ -48,7 +48,7 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
   std::vector<TimePoint> times;
   for (const InspectedLayer& l : layers) times.push_back(l.layer.time);
   if (dates_at_month_ends(times))
-    fmt::print("            every date is the last day of its month: seasons, suitability, fill --every and\n"
+    fmt::print("            the dates are the last days of their months: seasons, suitability, fill --every and\n"
                "            extract read each as the end of the month it closes (--date-marks start: the month after)\n");
   const TimeGrid& t = r.time_grid;
   if (layers.size() > 1) {

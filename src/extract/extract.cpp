@@ -7,14 +7,16 @@
 //   bilinear: the four cell centres around the point, weights (1-fx)(1-fy) ... (the usual
 //             bilinear interpolation); beyond the outermost centres the edge cells are repeated.
 //             Missing when a cell with a non-zero weight has no value.
-//   buffer:   mean of the cells with a value whose centre lies within the radius: great-circle
-//             distance on a sphere of radius 6 371 008.8 m (the IUGG mean radius) between the
-//             point and each cell centre in longitude-latitude (a projected CRS's centres taken
-//             to its own geographic CRS by PROJ). Distance on the grid of a projected CRS had
-//             sheared the circle on a sinusoidal grid (MODIS) away from its central meridian.
-//             A CRS with no geographic CRS (a local engineering one): distance on the grid.
+//   buffer:   mean of the cells with a value whose centre lies within the radius: geodesic
+//             distance on the layer's ellipsoid (Karney 2013, J. Geodesy 87:43-55, as PROJ's
+//             geodesic.h computes it) between the point and each cell centre in longitude-
+//             latitude (a projected CRS's centres taken to its own geographic CRS by PROJ).
+//             Distance on the grid of a projected CRS had sheared the circle on a sinusoidal grid
+//             (MODIS) away from its central meridian; a sphere is off by up to about 0.6 %. A
+//             CRS with no geographic CRS (a local engineering one): distance on the grid.
 #include <fmt/format.h>
 #include <fnmatch.h>
+#include <geodesic.h>
 #include <ogr_spatialref.h>
 
 #include <algorithm>
@@ -103,6 +105,13 @@ class SeriesGeometry {
       throw InputError(where, "its geotransform cannot be inverted");
     geographic_ = layer_crs_.IsGeographic();
     points_geographic_ = points_crs.IsGeographic();
+    {
+      OGRErr error = OGRERR_NONE;
+      const double semi_major = layer_crs_.GetSemiMajor(&error);
+      const double inverse_flattening = layer_crs_.GetInvFlattening();
+      geod_init(&ellipsoid_, error == OGRERR_NONE && semi_major > 0 ? semi_major : earth_radius_m,
+                error == OGRERR_NONE && inverse_flattening > 0 ? 1 / inverse_flattening : 0);
+    }
     metres_per_unit_ = geographic_ ? 1.0 : layer_crs_.GetLinearUnits();
     if (!geographic_ && buffer_m > 0) {
       OGRSpatialReference geographic;
@@ -201,27 +210,55 @@ class SeriesGeometry {
       }
     }
     std::vector<std::pair<int, int>> cells;
+    const int width = series_.grid.width;
     // Two cells of margin: the traced circle's chords cut inside it by under 0.4 % of the radius.
-    const int c0 = std::max(0, static_cast<int>(std::floor(cmin)) - 2);
-    const int c1 = std::min(series_.grid.width - 1, static_cast<int>(std::floor(cmax)) + 2);
+    int c0 = std::max(0, static_cast<int>(std::floor(std::max(cmin, -1e9))) - 2);
+    int c1 = std::min(width - 1, static_cast<int>(std::floor(std::min(cmax, 1e9))) + 2);
     const int r0 = std::max(0, static_cast<int>(std::floor(rmin)) - 2);
     const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(rmax)) + 2);
+    // A geographic grid round the globe: the circle goes on across its seam (the antimeridian,
+    // or longitude 0 of a 0..360 grid), and one over a pole takes every longitude; the cells
+    // beyond the seam or the pole had been left out of the mean.
+    if (geographic_) {
+      const bool plain = gt[2] == 0 && gt[4] == 0;
+      const bool global = plain && std::abs(std::abs(gt[1]) * width - 360.0) < 0.5 * std::abs(gt[1]);
+      const bool over_pole = std::abs(at.y) + half_y >= 90;
+      if (over_pole) {
+        c0 = 0, c1 = width - 1;
+      } else if (global && cmax - cmin + 5 < width) {
+        c0 = static_cast<int>(std::floor(cmin)) - 2, c1 = static_cast<int>(std::floor(cmax)) + 2;
+      } else if (global) {
+        c0 = 0, c1 = width - 1;
+      }
+    }
     for (int r = r0; r <= r1; ++r)
-      for (int c = c0; c <= c1; ++c) {
+      for (int unwrapped = c0; unwrapped <= c1; ++unwrapped) {
+        const int c = ((unwrapped % width) + width) % width;
         const double x = gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2];
         const double y = gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5];
         double d;
         if (geographic_) {
-          d = haversine_m(at.x, at.y, x, y);
+          d = ground_m(at.x, at.y, x, y);
         } else if (on_ground) {
           const auto [centre_lon, centre_lat] = centre_on_ground(c, r);
-          d = std::isfinite(centre_lon) ? haversine_m(lon, lat, centre_lon, centre_lat) : HUGE_VAL;
+          d = std::isfinite(centre_lon) ? ground_m(lon, lat, centre_lon, centre_lat) : HUGE_VAL;
         } else {
           d = std::hypot(x - at.x, y - at.y) * metres_per_unit_;
         }
         if (d <= buffer_m_) cells.emplace_back(c, r);
       }
     return cells;
+  }
+
+  // Geodesic distance on the layer's ellipsoid, where it decides: the sphere is within 1 % of
+  // it (flattening 1/298), so a cell clearly in or out by the haversine keeps that answer and
+  // only those near the circle pay for the geodesic (about twenty times the cost).
+  double ground_m(double lon1, double lat1, double lon2, double lat2) const {
+    const double sphere = haversine_m(lon1, lat1, lon2, lat2);
+    if (sphere < 0.98 * buffer_m_ || sphere > 1.02 * buffer_m_) return sphere;
+    double metres = 0;
+    geod_inverse(&ellipsoid_, lat1, lon1, lat2, lon2, &metres, nullptr, nullptr);
+    return metres;
   }
 
   // The longitude and latitude of cell (c, r)'s centre (NaN where PROJ cannot say), transformed
@@ -263,6 +300,7 @@ class SeriesGeometry {
   mutable std::map<std::pair<int, int>, std::vector<std::pair<double, double>>> centres_;  // by tile
   double inverse_[6]{};
   bool geographic_ = false, points_geographic_ = false;
+  geod_geodesic ellipsoid_{};  // the layer's, for buffer distances
   double metres_per_unit_ = 1;
 };
 

@@ -169,6 +169,9 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   summary.implausible = counts.total_implausible();
   summary.inverted = counts.inverted;
   summary.notes = detail::temperature_notes(source, counts);
+  // As seasons and suitability say it: month-end dates read as month ends by the default.
+  if (request.inputs.marks == DateMarks::automatic && dates_at_month_ends(source.times))
+    summary.notes.push_back(month_end_note("--date-marks start"));
   summary.parameters = parameters;
   summary.outputs = output_paths;
   summary.seconds =

@@ -35,9 +35,10 @@ def period_of(day, every):
         return dt.date(d.year, d.month, 1).toordinal(), nxt.toordinal()
     n = int(every[:-1])
     jan1, next_jan1 = dt.date(d.year, 1, 1).toordinal(), dt.date(d.year + 1, 1, 1).toordinal()
-    index = min((day - jan1) // n, 365 // n - 1)
+    per_year = -(-365 // n)  # the last period of a year is the shorter remainder (day 366 joins it)
+    index = min((day - jan1) // n, per_year - 1)
     first = jan1 + index * n
-    return first, next_jan1 if index == 365 // n - 1 else first + n
+    return first, next_jan1 if index == per_year - 1 else first + n
 
 
 class CalendarEnds(kt.TempDirTestCase):

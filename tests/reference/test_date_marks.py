@@ -98,7 +98,7 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
             done = kt.run_kalends(["extract", self.filled, "--points", self.csv, "--out",
                                    os.path.join(self.tmp, "said.csv")] + options)
             self.assertEqual(done.returncode, 0, done.stderr)
-            self.assertEqual("every input date is the last day of its month" in done.stderr, said, done.stderr)
+            self.assertEqual("the input dates are the last days of their months" in done.stderr, said, done.stderr)
             if said:
                 self.assertIn("read as month ends", done.stderr)
                 self.assertIn("give --date-marks start", done.stderr)
@@ -107,6 +107,43 @@ class ExtractMonthEndDates(kt.TempDirTestCase):
         # The file dated on or before the survey day: the previous month's mean (its stamp is the
         # previous month's last day), unless the survey is on the last day of a month.
         self.check(self.extract("--date-marks", "start"), lambda day: day.month if day == self.stamps[day.month - 1] else day.month - 1)
+
+
+class MonthEndsAllButOne(kt.TempDirTestCase):
+    """The Maurer 1999 monthly means (real, ../shared/data/monthly-temperature) as twelve GeoTIFFs
+    stamped at their months' ends, but June stamped on the 29th: still month ends by default (one
+    such date had turned the whole stack to starts, every month taken for the month after, without
+    a note). diurnal says so too."""
+
+    def test_one_stamp_a_day_early_keeps_the_month_ends(self):
+        g = kt.gdal()
+        ds = g.Open('NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc"))
+        gt, wkt = ds.GetGeoTransform(), ds.GetProjection() or None
+        tas = ds.ReadAsArray().astype(np.float32)
+        ds = None
+        folder = os.path.join(self.tmp, "months")
+        os.makedirs(folder)
+        for m in range(12):
+            last = (datetime.date(1999 + (m == 11), (m + 1) % 12 + 1, 1) - datetime.timedelta(days=1))
+            if m == 5:
+                last -= datetime.timedelta(days=1)  # 29 June
+            plane = np.where(tas[m] > 1e19, np.nan, tas[m]).astype(np.float32)
+            kt.write_raster(os.path.join(folder, "tas_%s.tif" % last.isoformat()), plane, geotransform=gt, epsg=4326)
+        outs = {}
+        for marks in ([], ["--date-marks", "end"]):
+            out = os.path.join(self.tmp, "seasons-" + ("-".join(marks) or "default"))
+            done = kt.run_kalends(["seasons", os.path.join(folder, "*.tif"), "--out", out] + marks)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertEqual("the input dates are the last days of their months" in done.stderr, not marks, done.stderr)
+            outs[bool(marks)] = g.Open(os.path.join(out, "tas_year_1999.tif")).ReadAsArray()
+        np.testing.assert_array_equal(outs[False], outs[True])
+        land = np.isfinite(outs[False][0])
+        # July is July's own mean, not June's (read as starts it would be).
+        np.testing.assert_allclose(outs[False][6][land], tas[6][land], rtol=1e-6)
+        # diurnal reads the dates by the same rule, and says so.
+        done = kt.run_kalends(["diurnal", "--tmin", os.path.join(folder, "*.tif"), "--tmax", os.path.join(folder, "*.tif"),
+                               "--units", "celsius", "--out", os.path.join(self.tmp, "hours")])
+        self.assertIn("the input dates are the last days of their months", done.stdout + done.stderr)
 
 
 class JobNotesOnMonthEnds(kt.TempDirTestCase):
@@ -126,7 +163,7 @@ class JobNotesOnMonthEnds(kt.TempDirTestCase):
                     % source)
         done = kt.run_kalends(["run", job])
         self.assertEqual(done.returncode, 0, done.stderr)
-        notes = [line for line in done.stdout.splitlines() if "last day of its month" in line]
+        notes = [line for line in done.stdout.splitlines() if "last days of their months" in line]
         self.assertEqual(len(notes), 2, done.stdout)      # the fill's and the extract's
         for note in notes:
             self.assertIn('give date_marks = "start"', note)
@@ -288,7 +325,7 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
                                    "--every", "1M", "--date-marks", marks])
             self.assertEqual(done.returncode, 0, done.stderr)
             # Read as ends by the automatic rule (the default), a note says so.
-            self.assertEqual("every input date is the last day of its month" in done.stderr, marks == "auto",
+            self.assertEqual("the input dates are the last days of their months" in done.stderr, marks == "auto",
                              done.stderr)
             calendar = os.path.join(out, "calendar-1M")
             names = sorted(os.listdir(calendar))

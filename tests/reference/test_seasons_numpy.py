@@ -631,13 +631,13 @@ class RealData(kt.TempDirTestCase):
         # The file's time values fall on the last day of each month.
         done = kt.run_kalends(["-q", "seasons", source, "--out", out, "--date-marks", "end"])
         self.assertEqual(done.returncode, 0, done.stderr)
-        self.assertNotIn("last day of its month", done.stderr)
+        self.assertNotIn("last days of their months", done.stderr)
         # The default reads them as ends too, and says so (version 0.3.19; read as starts, the
         # year layers had been a month late, with a note the user could miss).
         default = os.path.join(self.tmp, "tas-default")
         as_default = kt.run_kalends(["-q", "seasons", source, "--out", default])
         self.assertEqual(as_default.returncode, 0, as_default.stderr)
-        self.assertIn("every input date is the last day of its month: read as month ends", as_default.stderr)
+        self.assertIn("the input dates are the last days of their months: read as month ends", as_default.stderr)
         self.assertIn("--date-marks start", as_default.stderr)
         for name in os.listdir(out):
             if name.endswith(".tif"):
@@ -650,7 +650,7 @@ class RealData(kt.TempDirTestCase):
         starts = os.path.join(self.tmp, "tas-starts")
         as_starts = kt.run_kalends(["-q", "seasons", source, "--out", starts, "--date-marks", "start"])
         self.assertEqual(as_starts.returncode, 0, as_starts.stderr)
-        self.assertNotIn("last day of its month", as_starts.stderr)
+        self.assertNotIn("last days of their months", as_starts.stderr)
         year_end = g.Open(os.path.join(out, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
         year_start = g.Open(os.path.join(starts, "tas_year_1999.tif")).ReadAsArray().astype(np.float64)
         land_cells = np.all(np.isfinite(tas), axis=0)
