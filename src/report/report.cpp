@@ -501,6 +501,7 @@ ReportSummary run_report(const ReportRequest& request) {
 
   // Maps
   std::string maps;
+  std::vector<std::string> without_value;  // layers with no value anywhere: named, not drawn
   for (const CovariateSeries& s : all) {
     const SeriesFile& file = s.files.back();
     std::vector<int> bands;
@@ -526,6 +527,12 @@ ReportSummary run_report(const ReportRequest& request) {
         s.kind == SeriesKind::fixed ? class_meanings(file.path, s.band) : std::vector<std::string>{};
     const Quicklook q = classes.empty() ? continuous_quicklook(file.path, bands, request.map_size)
                                         : class_quicklook(file.path, s.band, int(classes.size()), request.map_size);
+    // A layer with no value anywhere (the cycle descriptors of a summers-only stack) had been
+    // drawn as a blank image with a 0 to 0 legend, as if it had been read.
+    if (q.cells_with_value == 0 && s.kind == SeriesKind::fixed) {
+      without_value.push_back(s.name);
+      continue;
+    }
     // Where and when the layer is: what a reader needs before reading values off it.
     std::string where = fmt::format("{} x {} px", s.grid.width, s.grid.height);
     if (s.grid.has_geotransform) {
@@ -618,8 +625,17 @@ ReportSummary run_report(const ReportRequest& request) {
       "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
       "{3} layers.{4}</p></header>\n",
       escape(title), style, KALENDS_VERSION, all.size(), as_of);
-  if (maps.empty()) maps = "<p>No raster layer in this folder.</p>\n";
-  html += "<section id=\"maps\"><h2>Layers</h2>\n<div class=\"maps\">\n" + maps + "</div></section>\n";
+  if (maps.empty() && without_value.empty()) maps = "<p>No raster layer in this folder.</p>\n";
+  std::string empty_note;
+  if (!without_value.empty()) {
+    std::string names;
+    for (const std::string& name : without_value) names += (names.empty() ? "" : ", ") + escape(name);
+    empty_note = fmt::format("<p class=\"note\">No value anywhere, so not drawn ({} layer{}): {}.</p>\n",
+                             without_value.size(), without_value.size() == 1 ? "" : "s", names);
+    summary.notes.push_back(fmt::format("{} layer{} with no value anywhere not drawn (first: {})", without_value.size(),
+                                        without_value.size() == 1 ? "" : "s", without_value.front()));
+  }
+  html += "<section id=\"maps\"><h2>Layers</h2>\n<div class=\"maps\">\n" + maps + "</div>" + empty_note + "</section>\n";
   html += "<section id=\"validation\"><h2>Validation</h2>\n" + validation + "</section>\n";
   html += "<section id=\"fill-statistics\"><h2>Fill statistics</h2>\n" + statistics + "</section>\n";
   html += "<section id=\"time-series\"><h2>Time series of sample pixels</h2>\n"

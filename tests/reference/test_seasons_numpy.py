@@ -680,6 +680,26 @@ class RealData(kt.TempDirTestCase):
         np.testing.assert_array_equal(peak_doy, middles[np.argmax(tas[:, land], axis=0)])
         self.assertTrue(np.all(np.isnan(data[names.index("amplitude")][~land])))
 
+    def test_the_report_names_the_empty_descriptor_layers_instead_of_drawing_them(self):
+        # Summers alone (alaska-ndvi/observed, real MODIS NDVI) have no whole synoptic cycle: its
+        # 18 descriptor layers hold no value anywhere (numpy below), and the report had drawn
+        # each as a blank map with a 0 to 0 legend.
+        g = kt.gdal()
+        stack = os.path.join(kt.shared_path("alaska-ndvi", "observed"), "*.tif")
+        out = os.path.join(self.tmp, "summers", "seasons")
+        done = kt.run_kalends(["-q", "seasons", stack, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        cycle = g.Open(os.path.join(out, "ndvi_cycle_synoptic.tif")).ReadAsArray()
+        self.assertFalse(np.isfinite(cycle).any())
+        html = os.path.join(self.tmp, "summers", "report.html")
+        done = kt.run_kalends(["report", os.path.dirname(out), "--html", html])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            page = f.read()
+        self.assertIn("No value anywhere, so not drawn (%d layers): seasons.ndvi_cycle_synoptic." % cycle.shape[0], page)
+        self.assertNotIn("<b>seasons.ndvi_cycle_synoptic.", page)
+        self.assertIn("<b>seasons.ndvi_year</b>", page)
+
     def test_compare_leaves_out_year_files_of_an_earlier_run(self):
         # Real MODIS NDVI (alaska-ndvi/observed, 2004-2009). A second `seasons` run into the same
         # folder with --years 2006-2007 removes the first run's 2004, 2005, 2008 and 2009 year
