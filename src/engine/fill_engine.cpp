@@ -668,6 +668,13 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
         if (!entry.is_directory() || !folder.starts_with("calendar-") ||
             (request.every && folder == "calendar-" + request.every->label()))
           continue;
+        // A calendar of a period this fill can make (calendar-16d), not a user's copy of one
+        // (calendar-1M.bak, which had been emptied).
+        try {
+          if (CalendarPeriod::parse(folder.substr(9)).label() != folder.substr(9)) continue;
+        } catch (const UsageError&) {
+          continue;
+        }
         for (const auto& file : fs::directory_iterator(entry.path(), ec)) {
           const std::string f = file.path().filename().string();
           if (f.starts_with(name + "_") && file.path().extension() == ".tif" && replaceable_fill_output(file.path(), request) &&

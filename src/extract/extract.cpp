@@ -133,7 +133,10 @@ class SeriesGeometry {
       return out;
     }
     // Longitudes of 0..360 against a layer of -180..180, or the other way round: the same
-    // place a turn of the globe away, tried where the point as written falls outside.
+    // place a turn of the globe away, tried where the point as written falls outside; outside
+    // every way, the place nearest the layer, so that a buffer reaches across 180 degrees into
+    // a layer that ends there (a point at -179.95 beside a grid of 160..180 had found none).
+    double nearest = HUGE_VAL;
     for (const double turn : {0.0, -360.0, 360.0}) {
       if (turn != 0 && !points_geographic_) break;
       double x = p.x + turn, y = p.y;
@@ -149,7 +152,9 @@ class SeriesGeometry {
       at.py = pixel_row(x, y);
       at.inside = at.px >= 0 && at.px < series_.grid.width && at.py >= 0 && at.py < series_.grid.height;
       if (!at.inside) at.reason = "outside the layer";
-      if (turn == 0 || at.inside) out = at;
+      const double gap = std::hypot(std::max({0.0, -at.px, at.px - series_.grid.width}),
+                                    std::max({0.0, -at.py, at.py - series_.grid.height}));
+      if (at.inside || gap < nearest) out = at, nearest = gap;
       if (at.inside) break;
     }
     return out;

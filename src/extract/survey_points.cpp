@@ -142,7 +142,7 @@ void read_date(SurveyPoint& p, const std::string& where) {
   // A time of day after the date (and a zone) is allowed and ignored; other text is not a date
   // ("1999-06-30 garbage" had been read as 30 June).
   static const std::regex pattern(
-      R"((\d{4})[-/](\d{1,2})(?:[-/](\d{1,2}))?(?:[Tt ](?:[01]?\d|2[0-3]):[0-5]\d(?::(?:[0-5]\d|60)(?:[.,]\d+)?)?\s*(?:[Zz]|UTC|[+-]\d{2}(?::?\d{2})?)?)?)");
+      R"((\d{4})[-/](\d{1,2})(?:[-/](\d{1,2}))?(?:[Tt ](?:[01]?\d|2[0-3]):[0-5]\d(?::(?:[0-5]\d|60)(?:[.,]\d+)?)?\s*(?:[Zz]|UTC|[+-](?:[01]\d|2[0-3])(?::?[0-5]\d)?)?)?)");
   std::smatch m;
   if (!std::regex_match(p.date_text, m, pattern))
     throw InputError(where, "'" + p.date_text + "' is not a date (YYYY-MM-DD or YYYY-MM)");

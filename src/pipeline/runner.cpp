@@ -1359,15 +1359,19 @@ class Runner {
     // says, in its folder or its calendar: a raster of the user's kept there (a mask, a backup
     // in a subfolder) is recorded among the folder's files too, and had been removed.
     if (rasters && earlier && !only_years_ && !only_tiles_) {
-      std::set<std::string> made;
-      for (const std::string& path : *rasters) made.insert(fs::path(path).lexically_normal().string());
+      std::set<std::string> made, made_in;
+      for (const std::string& path : *rasters) {
+        made.insert(fs::path(path).lexically_normal().string());
+        made_in.insert(fs::path(path).lexically_normal().parent_path().string());
+      }
       const fs::path own = fs::path(folder).lexically_normal();
       const std::string written_by = "(step " + step.id + ")";
       for (const std::string& path : earlier->outputs) {
         const fs::path file = fs::path(path).lexically_normal();
         const fs::path parent = file.parent_path();
-        const bool placed = parent == own || (parent.parent_path() == own &&
-                                              parent.filename().string().starts_with("calendar-"));
+        // The step's folder, or a subfolder it writes into now (its calendar): not a copy of that
+        // calendar the user made beside it (calendar-1M.bak had been emptied).
+        const bool placed = parent == own || (parent.parent_path() == own && made_in.count(parent.string()));
         std::error_code ec;
         if (!placed || file.extension() != ".tif" || made.count(file.string()) || !fs::is_regular_file(file, ec))
           continue;

@@ -31,7 +31,9 @@ std::uint64_t fnv(std::uint64_t h, const unsigned char* data, std::size_t n) {
 // sent the user looking at the disk.
 std::string database_error(const std::string& message) {
   rlimit limit{};
-  if (getrlimit(RLIMIT_FSIZE, &limit) != 0 || limit.rlim_cur == RLIM_INFINITY) return "state database: " + message;
+  const bool written_short = message.find("I/O error") != std::string::npos || message.find("full") != std::string::npos;
+  if (!written_short || getrlimit(RLIMIT_FSIZE, &limit) != 0 || limit.rlim_cur == RLIM_INFINITY)
+    return "state database: " + message;
   return fmt::format("state database: {} (a file-size limit, ulimit -f, of {} KiB is set: raise it)", message,
                      std::uintmax_t(limit.rlim_cur) >> 10);
 }

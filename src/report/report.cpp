@@ -529,8 +529,8 @@ ReportSummary run_report(const ReportRequest& request) {
                                         : class_quicklook(file.path, s.band, int(classes.size()), request.map_size);
     // A layer with no value anywhere (the cycle descriptors of a summers-only stack) had been
     // drawn as a blank image with a 0 to 0 legend, as if it had been read.
-    if (q.cells_with_value == 0 && s.kind == SeriesKind::fixed) {
-      without_value.push_back(s.name);
+    if (q.cells_with_value == 0) {
+      without_value.push_back(s.name + (s.kind == SeriesKind::dated ? " (its last date, " + file.time.label() + ")" : ""));
       continue;
     }
     // Where and when the layer is: what a reader needs before reading values off it.
@@ -630,7 +630,7 @@ ReportSummary run_report(const ReportRequest& request) {
   if (!without_value.empty()) {
     std::string names;
     for (const std::string& name : without_value) names += (names.empty() ? "" : ", ") + escape(name);
-    empty_note = fmt::format("<p class=\"note\">No value anywhere, so not drawn ({} layer{}): {}.</p>\n",
+    empty_note = fmt::format("<p class=\"note\">No value anywhere in what the map would show, so not drawn ({} layer{}): {}.</p>\n",
                              without_value.size(), without_value.size() == 1 ? "" : "s", names);
     summary.notes.push_back(fmt::format("{} layer{} with no value anywhere not drawn (first: {})", without_value.size(),
                                         without_value.size() == 1 ? "" : "s", without_value.front()));

@@ -28,7 +28,9 @@ bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
   for (std::size_t i = 0; i < dates.size(); ++i) {
     const CivilDate d = dates[i].date();
     at_end += d.day == days_in_month(d.year, d.month);
-    if (i > 0 && dates[i].days() - dates[i - 1].days() < 28) return false;
+    // Months apart: 26 days or more, so that a February stamped a day early (27 days after 31
+    // January) still counts.
+    if (i > 0 && dates[i].days() - dates[i - 1].days() < 26) return false;
   }
   // Nine in ten: a monthly stack with one stamp a day early (29 June, or 28 February of a leap
   // year) is still one of month ends; all or nothing, it had been read as starts, every month

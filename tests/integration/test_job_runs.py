@@ -1364,6 +1364,26 @@ class RemovedOutputs(kt.TempDirTestCase):
         self.assertIn("1 removed (no longer made)", done.stdout)
 
 
+    def test_a_copy_of_the_calendar_beside_it_is_kept(self):
+        # calendar-1M.bak, the user's copy of the fill's calendar, had been emptied by the next
+        # whole rerun (its files carry the step's name in their metadata).
+        folder = os.path.join(self.tmp, "calendar-copy")
+        job = small_dated_job(folder)
+        with open(job, "a") as f:
+            f.write('every = "1M"\nmethod = "whittaker"\nlambda = 1\n')
+        self.assertEqual(run(job).returncode, 0)
+        calendar = os.path.join(folder, "out", "fill", "calendar-1M")
+        shutil.copytree(calendar, calendar + ".bak")
+        kept = sorted(os.listdir(calendar + ".bak"))
+        self.assertTrue(kept)
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace("lambda = 1", "lambda = 2"))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertEqual(sorted(os.listdir(calendar + ".bak")), kept)
+
     def test_a_renamed_steps_old_files_are_removed_and_not_read(self):
         # An index step changed from NDVI to EVI (and a fill renamed) had left the old name's
         # files beside the new: the fill reading it then failed on "duplicate date", and a
@@ -1801,6 +1821,18 @@ class Faults(kt.TempDirTestCase):
                       done.stderr)
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        # Another database error under a large limit does not blame the limit.
+        database = os.path.join(folder, "out", ".kalends", "state.sqlite")
+        with open(database, "r+b") as f:
+            f.write(b"not a database at all" * 10)
+
+        def large_limit():
+            resource.setrlimit(resource.RLIMIT_FSIZE, (1 << 40, 1 << 40))
+
+        done = run(job, preexec=large_limit)
+        self.assertNotEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertIn("state database", done.stderr)
+        self.assertNotIn("ulimit", done.stderr)
 
     def test_a_failing_disk_stops_cleanly_and_the_next_run_resumes(self):
         out = os.path.join(self.tmp, "full")

@@ -116,22 +116,29 @@ class MonthEndsAllButOne(kt.TempDirTestCase):
     a note). diurnal says so too."""
 
     def test_one_stamp_a_day_early_keeps_the_month_ends(self):
+        self.check_one_early(5)   # 29 June
+
+    def test_a_february_stamped_a_day_early_keeps_the_month_ends(self):
+        # 27 February is 27 days after 31 January: the months-apart test had asked 28.
+        self.check_one_early(1)
+
+    def check_one_early(self, early):
         g = kt.gdal()
         ds = g.Open('NETCDF:"%s":tas' % kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc"))
         gt, wkt = ds.GetGeoTransform(), ds.GetProjection() or None
         tas = ds.ReadAsArray().astype(np.float32)
         ds = None
-        folder = os.path.join(self.tmp, "months")
+        folder = os.path.join(self.tmp, "months-%d" % early)
         os.makedirs(folder)
         for m in range(12):
             last = (datetime.date(1999 + (m == 11), (m + 1) % 12 + 1, 1) - datetime.timedelta(days=1))
-            if m == 5:
-                last -= datetime.timedelta(days=1)  # 29 June
+            if m == early:
+                last -= datetime.timedelta(days=1)
             plane = np.where(tas[m] > 1e19, np.nan, tas[m]).astype(np.float32)
             kt.write_raster(os.path.join(folder, "tas_%s.tif" % last.isoformat()), plane, geotransform=gt, epsg=4326)
         outs = {}
         for marks in ([], ["--date-marks", "end"]):
-            out = os.path.join(self.tmp, "seasons-" + ("-".join(marks) or "default"))
+            out = os.path.join(self.tmp, "seasons-%d-" % early + ("-".join(marks) or "default"))
             done = kt.run_kalends(["seasons", os.path.join(folder, "*.tif"), "--out", out] + marks)
             self.assertEqual(done.returncode, 0, done.stderr)
             self.assertEqual("the input dates are the last days of their months" in done.stderr, not marks, done.stderr)
@@ -142,7 +149,7 @@ class MonthEndsAllButOne(kt.TempDirTestCase):
         np.testing.assert_allclose(outs[False][6][land], tas[6][land], rtol=1e-6)
         # diurnal reads the dates by the same rule, and says so.
         done = kt.run_kalends(["diurnal", "--tmin", os.path.join(folder, "*.tif"), "--tmax", os.path.join(folder, "*.tif"),
-                               "--units", "celsius", "--out", os.path.join(self.tmp, "hours")])
+                               "--units", "celsius", "--out", os.path.join(self.tmp, "hours-%d" % early)])
         self.assertIn("the input dates are the last days of their months", done.stdout + done.stderr)
 
 

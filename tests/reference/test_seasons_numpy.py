@@ -696,8 +696,20 @@ class RealData(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
         with open(html) as f:
             page = f.read()
-        self.assertIn("No value anywhere, so not drawn (%d layers): seasons.ndvi_cycle_synoptic." % cycle.shape[0], page)
+        self.assertIn("No value anywhere in what the map would show, so not drawn (%d layers): seasons.ndvi_cycle_synoptic." % cycle.shape[0], page)
         self.assertNotIn("<b>seasons.ndvi_cycle_synoptic.", page)
+        # A dated series whose last date has no value is named too, not drawn blank.
+        blank = os.path.join(self.tmp, "blank-last", "layers")
+        os.makedirs(blank)
+        for k, day in enumerate(("2020-01-01", "2020-02-01", "2020-03-01")):
+            kt.write_raster(os.path.join(blank, "v_%s.tif" % day),
+                            np.full((4, 4), np.nan if k == 2 else 0.5, np.float32),
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        html = os.path.join(self.tmp, "blank-last", "report.html")
+        done = kt.run_kalends(["report", os.path.dirname(blank), "--html", html])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            self.assertIn("so not drawn (1 layer): layers.v (its last date, 2020-03-01)", f.read())
         self.assertIn("<b>seasons.ndvi_year</b>", page)
 
     def test_compare_leaves_out_year_files_of_an_earlier_run(self):
