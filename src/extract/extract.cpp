@@ -424,28 +424,48 @@ std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std:
 std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
   const bool csv = r.points.from_columns;
   const std::string xname = csv ? r.points.x_name : "x", yname = csv ? r.points.y_name : "y";
-  std::string text = fmt::format("{},{},{},{}", csv_field(r.points.id_name), csv_field(xname), csv_field(yname),
-                                 csv_field(r.points.date_name.empty() ? "date" : r.points.date_name));
   const bool buffer = request.buffer_metres > 0;
   auto lag_count = [&](const CovariateSeries& s) { return s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size()); };
+  std::vector<std::string> columns = {r.points.id_name, xname, yname,
+                                      r.points.date_name.empty() ? "date" : r.points.date_name};
   if (request.long_format) {
-    text += ",layer,lag,matched,value,sd,flag";
-    if (buffer) text += ",buffer_mean,buffer_cells,buffer_filled";
-    text += ",reason\n";
+    for (const char* c : {"layer", "lag", "matched", "value", "sd", "flag"}) columns.push_back(c);
+    if (buffer)
+      for (const char* c : {"buffer_mean", "buffer_cells", "buffer_filled"}) columns.push_back(c);
+    columns.push_back("reason");
   } else {
     for (const CovariateSeries& s : r.series)
       for (int l = 0; l <= lag_count(s); ++l) {
         const std::string base = s.name + (l ? ".lag" + std::to_string(request.lags[l - 1]) : "");
-        text += "," + csv_field(base) + "," + csv_field(base + ".matched");
-        if (s.has_sd_and_flag) text += "," + csv_field(base + ".sd") + "," + csv_field(base + ".flag");
+        columns.push_back(base);
+        columns.push_back(base + ".matched");
+        if (s.has_sd_and_flag) columns.push_back(base + ".sd"), columns.push_back(base + ".flag");
         if (buffer) {
-          text += "," + csv_field(base + ".buffer_mean") + "," + csv_field(base + ".buffer_cells");
-          if (s.has_sd_and_flag) text += "," + csv_field(base + ".buffer_filled");
+          columns.push_back(base + ".buffer_mean");
+          columns.push_back(base + ".buffer_cells");
+          if (s.has_sd_and_flag) columns.push_back(base + ".buffer_filled");
         }
-        text += "," + csv_field(base + ".reason");
+        columns.push_back(base + ".reason");
       }
-    text += "\n";
   }
+  // Two columns of one name (a points column named like a layer's, 'v' or 'v.matched'): R and
+  // pandas rename one without a word. Refused, nothing written.
+  std::map<std::string, std::size_t> seen;
+  for (std::size_t k = 0; k < columns.size(); ++k) {
+    std::string key = columns[k];
+    std::transform(key.begin(), key.end(), key.begin(), [](unsigned char ch) { return char(std::tolower(ch)); });
+    if (const auto [it, added] = seen.emplace(key, k); !added) {
+      if (it->second < 4)  // a column of the points file (id, x, y, date) against one the table adds
+        throw InputError(request.points.path,
+                         fmt::format("its column '{}' has the name of a column the table writes ({}); rename it, or "
+                                     "leave that layer out with --layers",
+                                     columns[it->second], request.long_format ? "--long" : "for a layer"));
+      throw InputError(request.points.path, fmt::format("the table would have two columns named '{}'", columns[k]));
+    }
+  }
+  std::string text;
+  for (std::size_t k = 0; k < columns.size(); ++k) text += (k ? "," : "") + csv_field(columns[k]);
+  text += "\n";
   auto point_fields = [&](const SurveyPoint& p) {
     if (csv) return fmt::format("{},{},{},{}", csv_field(p.id), csv_field(p.x_text), csv_field(p.y_text), csv_field(p.date_text));
     return fmt::format("{},{},{},{}", csv_field(p.id), p.has_coordinates ? fmt::format("{:.10g}", p.x) : "",

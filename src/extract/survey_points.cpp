@@ -241,7 +241,18 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
   OGRLayer* layer = ds->GetLayer(0);
   OGRFeatureDefn& defn = *layer->GetLayerDefn();
-  if (layer->GetFeatureCount() == 0) throw InputError(path, "holds no points");
+  if (layer->GetFeatureCount() == 0) {
+    // A quote opened in the header and never closed makes the whole file one header line.
+    if (csv) {
+      std::ifstream in(path, std::ios::binary);
+      const std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+      std::size_t pos = 0;
+      int lines = 0;
+      if (read_record(text, pos, ',', lines).open_quote)
+        throw InputError(path + ":1", "a quote (\") opened in the header is never closed");
+    }
+    throw InputError(path, "holds no points");
+  }
   // The id may be a GeoPackage's key column (FID=id), which OGR keeps apart from the fields.
   const std::string key_column = layer->GetFIDColumn() ? layer->GetFIDColumn() : "";
   const bool id_is_key = !key_column.empty() && lower(key_column) == lower(source.id_column) &&

@@ -999,6 +999,12 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("--id-column 'layer': is a column the long table (--long) writes itself", done.stderr)
         self.assertFalse(os.path.exists(out))
+        # The wide table too: a date column named as the layer's own column.
+        done, out = self.extract(self.north_up, ["p1,-80.0,35.0,"], "--date-column", "north_up",
+                                 header="id,longitude,latitude,north_up")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("its column 'north_up' has the name of a column the table writes (for a layer)", done.stderr)
+        self.assertFalse(os.path.exists(out))
 
     def test_a_folder_of_dated_files_is_one_dated_series(self):
         # Five invented 16-day composites dated by their names: the folder had given five fixed
@@ -1026,6 +1032,10 @@ class PointsTheLayerHolds(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn(":3: a quote (\") opened in this row is never closed", done.stderr)
         self.assertFalse(os.path.exists(out))
+        # In the header: it had read "holds no points".
+        done, out = self.extract(self.north_up, ["p1,-80,35,1999-06-15"], header='id,"longitude,latitude,date')
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn(":1: a quote (\") opened in the header is never closed", done.stderr)
 
     def test_projected_coordinates_in_a_file_without_a_crs_are_refused(self):
         # A Shapefile without its .prj, in UTM metres, read as degrees: every value had been
