@@ -56,6 +56,14 @@ std::string trim_separators(std::string s) {
   return s;
 }
 
+// What a dated file's name says before its date ("ndvi" of ndvi_2021-01-17.tif); nothing where
+// the name holds no date.
+std::optional<std::string> name_before_date(const Scanned& s) {
+  const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
+  if (!in_name) return std::nullopt;
+  return trim_separators(s.stem.substr(0, in_name->position));
+}
+
 void collect(const fs::path& root, const std::string& prefix, std::vector<Scanned>& out) {
   std::error_code ec;
   if (fs::is_regular_file(root, ec)) {
@@ -155,10 +163,9 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
   // ndvi_2021-01-17.tif): two or more make a dated series.
   std::map<std::string, int> dated_names;
   auto dated_key = [](const Scanned& s) -> std::optional<std::string> {
-    if (s.stack) return std::nullopt;
-    const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
-    if (!in_name) return std::nullopt;
-    return s.group + "|" + trim_separators(s.stem.substr(0, in_name->position));
+    const auto name = s.stack ? std::nullopt : name_before_date(s);
+    if (!name) return std::nullopt;
+    return s.group + "|" + *name;
   };
   for (const Scanned& s : scanned)
     if (const auto key = dated_key(s)) ++dated_names[*key];
@@ -223,9 +230,8 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
     const bool periodic = !period_text.empty() && std::all_of(descriptions.begin(), descriptions.end(), is_period_label);
     if (!date_text.empty()) {
       const auto time = parse_iso_time(date_text);
-      const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
       if (!time) throw InputError(s.path, "KALENDS_DATE '" + date_text + "' is not a date");
-      std::string stem = in_name ? trim_separators(s.stem.substr(0, in_name->position)) : s.stem;
+      const std::string stem = name_before_date(s).value_or(s.stem);
       CovariateSeries& c = series_for(prefix + (stem.empty() ? "layer" : stem));
       // Beside a raw stack of that name (evi.nc beside fill outputs evi_*.tif): both would be one
       // series, whose dates would clash or interleave.
@@ -266,9 +272,8 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       // A folder of dated files kalends did not write (ndvi_2021-01-17.tif, ...): one dated
       // series, as the pattern 'ndvi_*.tif' gives; each had been a fixed layer, read for every
       // survey date, with a note per file.
-      const auto in_name = find_date_in_name(fs::path(s.path).filename().string());
-      const std::string name = prefix + (in_name ? trim_separators(s.stem.substr(0, in_name->position)) : s.stem);
-      CovariateSeries& c = series_for(name.empty() ? "layer" : name);
+      const std::string stem = name_before_date(s).value_or(s.stem);
+      CovariateSeries& c = series_for(prefix + (stem.empty() ? "layer" : stem));
       if (stack_series.count(c.name) || (!c.files.empty() && c.kind != SeriesKind::dated))
         throw InputError(s.path, "would be the series '" + c.name + "', as " + c.files.front().path +
                                      " is: give the files or folders apart, in two runs, or rename one");

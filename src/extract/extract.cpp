@@ -168,10 +168,17 @@ class SeriesGeometry {
   // below the edge (it had gone to the cell past it, one row or column off). A millionth of a
   // pixel is far below any survey's precision.
   double pixel_column(double x, double y) const {
-    return snapped(inverse_[0] + x * inverse_[1] + y * inverse_[2], series_.grid.geotransform[1] < 0);
+    return snapped(to_pixel(x, y).first, series_.grid.geotransform[1] < 0);
   }
-  double pixel_row(double x, double y) const {
-    return snapped(inverse_[3] + x * inverse_[4] + y * inverse_[5], series_.grid.geotransform[5] > 0);
+  double pixel_row(double x, double y) const { return snapped(to_pixel(x, y).second, series_.grid.geotransform[5] > 0); }
+  // (column, row) of a point in the layer's CRS, by the inverse geotransform; not snapped.
+  std::pair<double, double> to_pixel(double x, double y) const {
+    return {inverse_[0] + x * inverse_[1] + y * inverse_[2], inverse_[3] + x * inverse_[4] + y * inverse_[5]};
+  }
+  // The centre of cell (c, r) in the layer's CRS.
+  std::pair<double, double> cell_centre(int c, int r) const {
+    const auto& gt = series_.grid.geotransform;
+    return {gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2], gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5]};
   }
   static double snapped(double pixel, bool reversed) {
     const double half = std::round(2 * pixel) / 2;
@@ -191,8 +198,7 @@ class SeriesGeometry {
     }
     double cmin = 1e300, cmax = -1e300, rmin = 1e300, rmax = -1e300;
     auto extend = [&](double x, double y) {
-      const double c = inverse_[0] + x * inverse_[1] + y * inverse_[2];
-      const double r = inverse_[3] + x * inverse_[4] + y * inverse_[5];
+      const auto [c, r] = to_pixel(x, y);
       cmin = std::min(cmin, c), cmax = std::max(cmax, c), rmin = std::min(rmin, r), rmax = std::max(rmax, r);
     };
     for (double dx : {-half_x, half_x})
@@ -239,8 +245,7 @@ class SeriesGeometry {
     for (int r = r0; r <= r1; ++r)
       for (int unwrapped = c0; unwrapped <= c1; ++unwrapped) {
         const int c = ((unwrapped % width) + width) % width;
-        const double x = gt[0] + (c + 0.5) * gt[1] + (r + 0.5) * gt[2];
-        const double y = gt[3] + (c + 0.5) * gt[4] + (r + 0.5) * gt[5];
+        const auto [x, y] = cell_centre(c, r);
         double d;
         if (geographic_) {
           d = ground_m(at.x, at.y, x, y);
@@ -274,14 +279,14 @@ class SeriesGeometry {
     const std::pair<int, int> key{r / tile, c / tile};
     auto it = centres_.find(key);
     if (it == centres_.end()) {
-      const auto& gt = series_.grid.geotransform;
       const int tr0 = key.first * tile, tc0 = key.second * tile;
       const int rows = std::min(tile, series_.grid.height - tr0), cols = std::min(tile, series_.grid.width - tc0);
       std::vector<double> lons, lats;
       for (int rr = tr0; rr < tr0 + rows; ++rr)
         for (int cc = tc0; cc < tc0 + cols; ++cc) {
-          lons.push_back(gt[0] + (cc + 0.5) * gt[1] + (rr + 0.5) * gt[2]);
-          lats.push_back(gt[3] + (cc + 0.5) * gt[4] + (rr + 0.5) * gt[5]);
+          const auto [x, y] = cell_centre(cc, rr);
+          lons.push_back(x);
+          lats.push_back(y);
         }
       std::vector<int> ok(lons.size(), 1);
       to_geographic_->Transform(int(lons.size()), lons.data(), lats.data(), nullptr, ok.data());
@@ -421,12 +426,17 @@ std::vector<CovariateSeries> select(std::vector<CovariateSeries> all, const std:
   return chosen;
 }
 
-std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
+// The lags a layer is read at besides the survey's own period: none for a fixed layer.
+int lag_count(const ExtractRequest& request, const CovariateSeries& s) {
+  return s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size());
+}
+
+// The table's header: the points' id, coordinate and date columns (the first four), then the
+// long table's own columns or each layer's.
+std::vector<std::string> table_columns(const ExtractRequest& request, const ExtractResult& r) {
   const bool csv = r.points.from_columns;
-  const std::string xname = csv ? r.points.x_name : "x", yname = csv ? r.points.y_name : "y";
   const bool buffer = request.buffer_metres > 0;
-  auto lag_count = [&](const CovariateSeries& s) { return s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size()); };
-  std::vector<std::string> columns = {r.points.id_name, xname, yname,
+  std::vector<std::string> columns = {r.points.id_name, csv ? r.points.x_name : "x", csv ? r.points.y_name : "y",
                                       r.points.date_name.empty() ? "date" : r.points.date_name};
   if (request.long_format) {
     for (const char* c : {"layer", "lag", "matched", "value", "sd", "flag"}) columns.push_back(c);
@@ -435,7 +445,7 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
     columns.push_back("reason");
   } else {
     for (const CovariateSeries& s : r.series)
-      for (int l = 0; l <= lag_count(s); ++l) {
+      for (int l = 0; l <= lag_count(request, s); ++l) {
         const std::string base = s.name + (l ? ".lag" + std::to_string(request.lags[l - 1]) : "");
         columns.push_back(base);
         columns.push_back(base + ".matched");
@@ -448,21 +458,39 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
         columns.push_back(base + ".reason");
       }
   }
-  // Two columns of one name (a points column named like a layer's, 'v' or 'v.matched'): R and
-  // pandas rename one without a word. Refused, nothing written.
+  return columns;
+}
+
+// Two columns of one name (a points column named 'layer' or 'value' beside the long table's
+// own, or like a layer's, 'v' or 'v.matched'): R and pandas rename one without a word. Refused
+// before any work, naming the option of a points column.
+void require_distinct_columns(const ExtractRequest& request, const ExtractResult& r) {
+  const std::vector<std::string> columns = table_columns(request, r);
+  static const char* const options[] = {"--id-column", "--x-column", "--y-column", "--date-column"};
   std::map<std::string, std::size_t> seen;
   for (std::size_t k = 0; k < columns.size(); ++k) {
     std::string key = columns[k];
     std::transform(key.begin(), key.end(), key.begin(), [](unsigned char ch) { return char(std::tolower(ch)); });
-    if (const auto [it, added] = seen.emplace(key, k); !added) {
-      if (it->second < 4)  // a column of the points file (id, x, y, date) against one the table adds
-        throw InputError(request.points.path,
-                         fmt::format("its column '{}' has the name of a column the table writes ({}); rename it, or "
-                                     "leave that layer out with --layers",
-                                     columns[it->second], request.long_format ? "--long" : "for a layer"));
-      throw InputError(request.points.path, fmt::format("the table would have two columns named '{}'", columns[k]));
-    }
+    const auto [it, added] = seen.emplace(key, k);
+    if (added) continue;
+    const std::size_t first = it->second;
+    if (first < 4 && request.long_format)
+      throw UsageError(std::string(options[first]) + " '" + columns[first] + "'",
+                       "is a column the long table (--long) writes itself; rename that column of " +
+                           request.points.path + " and give its new name");
+    if (first < 4)
+      throw InputError(request.points.path,
+                       fmt::format("its column '{}' has the name of a column the table writes (for a layer); rename "
+                                   "it, or leave that layer out with --layers",
+                                   columns[first]));
+    throw InputError(request.points.path, fmt::format("the table would have two columns named '{}'", columns[k]));
   }
+}
+
+std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
+  const bool csv = r.points.from_columns;
+  const bool buffer = request.buffer_metres > 0;
+  const std::vector<std::string> columns = table_columns(request, r);
   std::string text;
   for (std::size_t k = 0; k < columns.size(); ++k) text += (k ? "," : "") + csv_field(columns[k]);
   text += "\n";
@@ -476,7 +504,7 @@ std::string write_table(const ExtractRequest& request, const ExtractResult& r) {
     const std::string pf = point_fields(r.points.points[i]);
     if (!request.long_format) text += pf;
     for (const CovariateSeries& s : r.series)
-      for (int l = 0; l <= lag_count(s); ++l) {
+      for (int l = 0; l <= lag_count(request, s); ++l) {
         const ExtractedValue& v = r.values[k++];
         const std::string cells = std::to_string(v.buffer_cells), filled = std::to_string(v.buffer_filled);
         if (request.long_format) {
@@ -547,25 +575,6 @@ ExtractResult run_extract(const ExtractRequest& request) {
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.notes = r.points.notes;
-  // The long table's own columns beside the points' (a points column 'layer' or 'value'): two
-  // columns of one name, which R and pandas rename without a word.
-  if (request.long_format) {
-    const std::pair<const char*, const std::string*> given[] = {{"--id-column", &r.points.id_name},
-                                                                {"--x-column", &r.points.x_name},
-                                                                {"--y-column", &r.points.y_name},
-                                                                {"--date-column", &r.points.date_name}};
-    for (const auto& [option, name] : given) {
-      std::string lower_name = *name;
-      std::transform(lower_name.begin(), lower_name.end(), lower_name.begin(),
-                     [](unsigned char ch) { return char(std::tolower(ch)); });
-      for (const char* own : {"layer", "lag", "matched", "value", "sd", "flag", "buffer_mean", "buffer_cells",
-                              "buffer_filled", "reason"})
-        if (lower_name == own)
-          throw UsageError(std::string(option) + " '" + *name + "'",
-                           "is a column the long table (--long) writes itself; rename that column of " +
-                               request.points.path + " and give its new name");
-    }
-  }
   {
     std::map<std::string, int> seen;
     for (const SurveyPoint& p : r.points.points)
@@ -600,6 +609,7 @@ ExtractResult run_extract(const ExtractRequest& request) {
                          fmt::format("no column '{}' (--date-column): the layer {} is dated and needs each survey's "
                                      "date (fixed layers alone need none)",
                                      request.points.date_column, s.name));
+  require_distinct_columns(request, r);
   for (CovariateSeries& s : r.series) {
     std::vector<TimePoint> times;
     for (const SeriesFile& f : s.files) times.push_back(f.time);

@@ -258,14 +258,10 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   const bool id_is_key = !key_column.empty() && lower(key_column) == lower(source.id_column) &&
                          defn.GetFieldIndex(source.id_column.c_str()) < 0;
   const int id = id_is_key ? -1 : field_index(defn, source.id_column, "--id-column", path);
-  // The default date column may be absent (fixed layers need no date); one the user named may not.
+  // The default date column may be absent (fixed layers need no date); one the user named may
+  // not. OGR finds a field whatever its case.
   const bool no_dates = source.date_column.empty() ||
-                        (!source.date_column_given && defn.GetFieldIndex(source.date_column.c_str()) < 0 &&
-                         [&] {
-                           for (int f = 0; f < defn.GetFieldCount(); ++f)
-                             if (lower(defn.GetFieldDefn(f)->GetNameRef()) == lower(source.date_column)) return false;
-                           return true;
-                         }());
+                        (!source.date_column_given && defn.GetFieldIndex(source.date_column.c_str()) < 0);
   const int date = no_dates ? -1 : field_index(defn, source.date_column, "--date-column", path);
   int x = -1, y = -1;
   SurveyPoints result;

@@ -366,6 +366,31 @@ std::set<std::string> changed_files(const std::map<std::string, std::string>& be
   return changed;
 }
 
+// The failed steps of a run (or of the last runs, for status), and the steps that wait for them
+// through what they read, directly or through other steps.
+class FailedSteps {
+ public:
+  void failed(const std::string& id) { root_[id] = id; }
+  /// The failed step `step` waits for, as a reason ("reads step 'fill', which failed"), and
+  /// `step` recorded as waiting for it too; "" where it reads no failed or waiting step.
+  std::string waiting(const JobStep& step) {
+    const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
+                                    [&](const std::string& name) { return root_.count(name) != 0; });
+    if (waits == step.inputs.end()) return "";
+    const std::string root = root_.at(*waits);
+    root_[step.id] = root;
+    return *waits == root ? fmt::format("reads step '{}', which failed", root)
+                          : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
+  }
+
+ private:
+  std::map<std::string, std::string> root_;  // step id -> the failed step it waits for
+};
+
+// The end of the command line a job's step writes into its rasters' KALENDS_COMMAND: how the
+// runner knows a raster in a step's folder for one that step wrote.
+std::string written_by_step(const std::string& id) { return "(step " + id + ")"; }
+
 class Runner {
  public:
   Runner(const RunOptions& options, const RunEvents& events) : options_(options), events_(events) {}
@@ -461,33 +486,23 @@ class Runner {
       } catch (const Error&) {
         // An input it cannot read: the step fails on that when it is reached.
       }
-      detail::StepContext context{step.options};
-      context.job_path = job_.path;
-      context.folder = step_folder(base_, step.id);
-      context.out = out_;
-      context.resolve = [this](const std::string& name) { return resolve(name); };
       try {
-        kind->check_files(context);
+        kind->check_files(context_for(step, step_folder(base_, step.id)));
       } catch (const Error& e) {
         unusable_file.emplace(step.id, e);
       }
     }
     // A failed step stops only the steps that read it, directly or through others: a bad points
     // file for one extract step had left every later step of the night undone ("not reached").
-    std::map<std::string, std::string> stopped_by;  // step id -> the failed step it waits for
+    FailedSteps stopped;
     int failures = 0;
     for (const JobStep& step : job_.steps) {
       StepReport r;
       r.id = step.id;
       r.kind = step.kind;
-      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
-                                      [&](const std::string& name) { return stopped_by.count(name) != 0; });
-      if (waits != step.inputs.end()) {
-        const std::string& root = stopped_by.at(*waits);
-        stopped_by[step.id] = root;
+      if (std::string why = stopped.waiting(step); !why.empty()) {
         r.action = StepReport::Action::not_reached;
-        r.reason = *waits == root ? fmt::format("reads step '{}', which failed", root)
-                                  : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
+        r.reason = std::move(why);
         if (events_.step_finished) events_.step_finished(r);
         report_.steps.push_back(r);
         continue;
@@ -514,7 +529,7 @@ class Runner {
           report_.error = e.what();
           report_.exit_code = exit_code;
         }
-        stopped_by[step.id] = step.id;
+        stopped.failed(step.id);
       };
       if (const auto bad = unusable_file.find(step.id); bad != unusable_file.end()) {
         const Error& e = bad->second;  // in the job's words, as the errors of a step that runs
@@ -665,21 +680,13 @@ class Runner {
     // Steps are judged as the nightly --skip-bad run will see them: without the bad files it
     // left out, while those are unchanged. Each is listed after the steps.
     const std::vector<std::string> left_out = leave_out_known_bad_inputs();
-    std::map<std::string, std::string> failed_root;  // step id -> the failed step it waits for
-    // Records a failed step, or names the failed step that `step` waits for ("" if none): the
-    // next run does it only once that one is fixed, which "never run" alone did not say.
+    // A failed step recorded, or the failed step `step` waits for named ("" if none): the next
+    // run does it only once that one is fixed, which "never run" alone did not say.
+    FailedSteps failed;
     auto waiting_on = [&](const JobStep& step, const StepStatus& s) -> std::string {
-      if (s.state == "failed") {
-        failed_root[step.id] = step.id;
-        return "";
-      }
-      const auto waits = std::find_if(step.inputs.begin(), step.inputs.end(),
-                                      [&](const std::string& name) { return failed_root.count(name) != 0; });
-      if (waits == step.inputs.end()) return "";
-      const std::string& root = failed_root.at(*waits);
-      failed_root[step.id] = root;
-      return *waits == root ? fmt::format("reads step '{}', which failed", root)
-                            : fmt::format("reads step '{}', which waits for failed step '{}'", *waits, root);
+      if (s.state != "failed") return failed.waiting(step);
+      failed.failed(step.id);
+      return "";
     };
     for (const JobStep& step : job_.steps) {
       StepStatus s;
@@ -1353,35 +1360,8 @@ class Runner {
         fingerprints_.clear();
       }
     }
-    // Run whole, the step's earlier rasters that it no longer makes (the files of its old name
-    // after 'name' or 'index' changed) go, or later steps read them with the new ones as one
-    // stack ("duplicate date"), or as current. Only rasters this step wrote, as their metadata
-    // says, in its folder or its calendar: a raster of the user's kept there (a mask, a backup
-    // in a subfolder) is recorded among the folder's files too, and had been removed.
-    if (rasters && earlier && !only_years_ && !only_tiles_) {
-      std::set<std::string> made, made_in;
-      for (const std::string& path : *rasters) {
-        made.insert(fs::path(path).lexically_normal().string());
-        made_in.insert(fs::path(path).lexically_normal().parent_path().string());
-      }
-      const fs::path own = fs::path(folder).lexically_normal();
-      const std::string written_by = "(step " + step.id + ")";
-      for (const std::string& path : earlier->outputs) {
-        const fs::path file = fs::path(path).lexically_normal();
-        const fs::path parent = file.parent_path();
-        // The step's folder, or a subfolder it writes into now (its calendar): not a copy of that
-        // calendar the user made beside it (calendar-1M.bak had been emptied).
-        const bool placed = parent == own || (parent.parent_path() == own && made_in.count(parent.string()));
-        std::error_code ec;
-        if (!placed || file.extension() != ".tif" || made.count(file.string()) || !fs::is_regular_file(file, ec))
-          continue;
-        const auto metadata = detail::raster_metadata(file.string());
-        const auto command = metadata.find("KALENDS_COMMAND");
-        if (!metadata.count("KALENDS_VERSION") || command == metadata.end() || !command->second.ends_with(written_by))
-          continue;
-        if (fs::remove(file, ec)) ++report.outputs_removed;
-      }
-    }
+    if (rasters && earlier && !only_years_ && !only_tiles_)
+      report.outputs_removed += remove_rasters_no_longer_made(step, folder, earlier->outputs, *rasters);
     report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
     report.action = StepReport::Action::ran;
     years_redone_[step.id] = only_years_;
@@ -1392,14 +1372,55 @@ class Runner {
     db_->step_done(done);
   }
 
-  std::optional<std::vector<std::string>> execute(const JobStep& step, const std::string& folder, StepReport& report) {
-    const detail::StepKind* kind = detail::find_step_kind(step.kind);
-    if (!kind) throw UsageError(job_.path, "unknown step '" + step.kind + "'");
+  // Run whole, the step's earlier rasters that it no longer makes (the files of its old name
+  // after 'name' or 'index' changed) go, or later steps read them with the new ones as one stack
+  // ("duplicate date"), or as current. Only rasters this step wrote, as their metadata says, in
+  // its folder or a subfolder it writes into now (its calendar): a raster of the user's kept
+  // there (a mask, a backup in a subfolder, a copy such as calendar-1M.bak) is recorded among
+  // the folder's files too, and had been removed. Returns how many went.
+  static int remove_rasters_no_longer_made(const JobStep& step, const std::string& folder,
+                                           const std::vector<std::string>& earlier,
+                                           const std::vector<std::string>& rasters) {
+    std::set<std::string> made, made_in;
+    for (const std::string& path : rasters) {
+      made.insert(fs::path(path).lexically_normal().string());
+      made_in.insert(fs::path(path).lexically_normal().parent_path().string());
+    }
+    const fs::path own = fs::path(folder).lexically_normal();
+    int removed = 0;
+    for (const std::string& path : earlier) {
+      const fs::path file = fs::path(path).lexically_normal();
+      const fs::path parent = file.parent_path();
+      const bool placed = parent == own || (parent.parent_path() == own && made_in.count(parent.string()));
+      std::error_code ec;
+      if (!placed || file.extension() != ".tif" || made.count(file.string()) || !fs::is_regular_file(file, ec))
+        continue;
+      const auto metadata = detail::raster_metadata(file.string());
+      const auto command = metadata.find("KALENDS_COMMAND");
+      if (!metadata.count("KALENDS_VERSION") || command == metadata.end() ||
+          !command->second.ends_with(written_by_step(step.id)))
+        continue;
+      if (fs::remove(file, ec)) ++removed;
+    }
+    return removed;
+  }
+
+  // What every step's work is given: its keys, the job file, its folder, the job's output folder,
+  // and the inputs and earlier steps it reads by name.
+  detail::StepContext context_for(const JobStep& step, const std::string& folder) {
     detail::StepContext context{step.options};
     context.job_path = job_.path;
     context.folder = folder;
     context.out = out_;
-    context.command_line = "kalends run " + fs::path(job_.path).filename().string() + " (step " + step.id + ")";
+    context.resolve = [this](const std::string& name) { return resolve(name); };
+    return context;
+  }
+
+  std::optional<std::vector<std::string>> execute(const JobStep& step, const std::string& folder, StepReport& report) {
+    const detail::StepKind* kind = detail::find_step_kind(step.kind);
+    if (!kind) throw UsageError(job_.path, "unknown step '" + step.kind + "'");
+    detail::StepContext context = context_for(step, folder);
+    context.command_line = "kalends run " + fs::path(job_.path).filename().string() + " " + written_by_step(step.id);
     context.memory_bytes = cli_memory();
     context.threads = options_.threads > 0 ? options_.threads : job_.threads;
     if (shard_) {
@@ -1409,7 +1430,6 @@ class Runner {
     }
     context.only_years = only_years_;
     context.only_tiles = only_tiles_;
-    context.resolve = [this](const std::string& name) { return resolve(name); };
     context.progress = [&](int done, int total) {
       if (events_.progress) events_.progress(step.id, done, total);
     };
