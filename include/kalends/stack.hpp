@@ -48,6 +48,9 @@ struct Layer {
   double scale = 1.0, offset = 0.0;
   std::optional<double> nodata;
   std::string unit;
+  // The band's own mask, read with its values: "alpha band" or "mask" (internal or .msk, per
+  // band or per file); "" where it has none (or GDAL derives it from nodata).
+  std::string own_mask;
 };
 
 class StackReader;

@@ -66,9 +66,10 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("  time grid none: a single date (filling in time needs several)\n");
   }
   const auto nodata = [&](const Layer& l) { return l.nodata ? fmt::format("{:g}", *l.nodata) : std::string("none"); };
-  fmt::print("  values    {}, {}, nodata {}{}{}\n", rule_text("scale", rules.scale, first.scale),
+  fmt::print("  values    {}, {}, nodata {}{}{}{}\n", rule_text("scale", rules.scale, first.scale),
              rule_text("offset", rules.offset, first.offset),
              rules.nodata ? fmt::format("{:g} (given)", *rules.nodata) : nodata(first),
+             first.own_mask.empty() ? "" : ", cells its " + first.own_mask + " marks 0 are missing",
              first.unit.empty() ? "" : ", unit " + first.unit,
              rules.valid_min ? fmt::format(", valid range {:g}..{:g}", *rules.valid_min, *rules.valid_max) : "");
   const auto same_nodata = [](const std::optional<double>& a, const std::optional<double>& b) {
@@ -157,11 +158,11 @@ void print_json(const InspectReport& r) {
     const InspectedLayer& l = r.layers[i];
     const auto count = [&](std::int64_t v) { return r.values_read ? std::to_string(v) : std::string("null"); };
     fmt::print("    {{\"date\": \"{}\", \"from\": \"{}\", \"path\": \"{}\", \"band\": {}, \"scale\": {}, \"offset\": {}, "
-               "\"nodata\": {}, \"unit\": \"{}\", \"pixels\": {}, \"observed\": {}, \"rejected_by_qa\": {}, "
+               "\"nodata\": {}, \"mask\": {}, \"unit\": \"{}\", \"pixels\": {}, \"observed\": {}, \"rejected_by_qa\": {}, "
                "\"outside_valid_range\": {}, \"min\": {}, \"mean\": {}, \"max\": {}}}{}\n",
                l.layer.time.iso(), l.date_source, json_escape(l.layer.path), l.layer.band,
                detail::json_number(l.layer.scale), detail::json_number(l.layer.offset), nodata(l.layer.nodata),
-               json_escape(l.layer.unit), std::int64_t(g.width) * g.height, count(l.observed), count(l.rejected_by_qa),
+               l.layer.own_mask.empty() ? "null" : "\"" + l.layer.own_mask + "\"", json_escape(l.layer.unit), std::int64_t(g.width) * g.height, count(l.observed), count(l.rejected_by_qa),
                count(l.outside_valid_range), number(l.minimum), number(l.mean), number(l.maximum),
                i + 1 < r.layers.size() ? "," : "");
   }

@@ -3,6 +3,7 @@
 #include <sys/resource.h>
 
 #include <CLI/CLI.hpp>
+#include <fmt/format.h>
 #include <cctype>
 #include <cstdio>
 #include <iostream>
@@ -54,6 +55,17 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
   std::string text = e.what();
   for (char& c : text)
     if (c == '\n') c = ' ';
+  // A pattern the shell expanded: its files arrive as extra arguments.
+  if (dynamic_cast<const CLI::ExtrasError*>(&e) != nullptr) {
+    std::vector<std::string> extras = command->remaining();
+    for (const std::string& extra : app.remaining()) extras.push_back(extra);
+    const auto files = std::count_if(extras.begin(), extras.end(),
+                                     [](const std::string& extra) { return std::filesystem::is_regular_file(extra); });
+    if (files > 0)
+      return fmt::format("{}: {} more files than the command takes (the first: {}); a pattern such as "
+                         "'ndvi/*.tif' needs quotes, or the shell expands it into its files",
+                         name, files, extras.front());
+  }
   return name + ": " + text;
 }
 

@@ -65,7 +65,9 @@ class Files {
     if (band > ds.GetRasterCount()) throw InputError(path, fmt::format("has no band {}", band));
     GDALRasterBand* b = ds.GetRasterBand(band);
     std::vector<double> v(static_cast<std::size_t>(cols) * rows);
-    if (b->RasterIO(GF_Read, col, row, cols, rows, v.data(), cols, rows, GDT_Float64, 0, 0) != CE_None)
+    CPLErrorReset();
+    // Signed bytes as signed; cells the band's own mask marks invalid are NaN.
+    if (!detail::read_stored_values(*b, col, row, cols, rows, v.data(), GDT_Float64))
       throw InputError(path, detail::gdal_message("cannot read"));
     int has_nodata = 0;
     const double nodata = b->GetNoDataValue(&has_nodata);

@@ -147,7 +147,7 @@ DatasetPtr mapped_band(GDALDataset& in, int band, Map map, const std::string& wh
   const double scale = from->GetScale(), offset = from->GetOffset();  // to the physical value
   std::vector<float> row(std::size_t(in.GetRasterXSize()));
   for (int y = 0; y < in.GetRasterYSize(); ++y) {
-    if (from->RasterIO(GF_Read, 0, y, int(row.size()), 1, row.data(), int(row.size()), 1, GDT_Float32, 0, 0) != CE_None)
+    if (!detail::read_stored_values(*from, 0, y, int(row.size()), 1, row.data(), GDT_Float32))
       throw InputError(where, fmt::format("cannot read band {} ({})", band, detail::gdal_message("?")));
     for (float& v : row)
       v = (has_nodata && v == float(nodata)) || std::isnan(v) ? NAN : map(float(v * scale + offset));
@@ -471,17 +471,19 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     // Scaling after the warp is right for weighted means, nearest, the median and the like; a sum
     // or root mean square of stored numbers with an offset, and a minimum or maximum with a
     // negative scale, are not those of the values. Such bands are scaled first, one by one.
+    // So are signed bytes (PIXELTYPE=SIGNEDBYTE), which the warp would read as 0..255.
     const bool scale_first_kind = request.resample == "sum" || request.resample == "rms" ||
                                   request.resample == "min" || request.resample == "max";
     std::vector<int> scaled_first;
-    if (scale_first_kind)
-      std::erase_if(continuous, [&](int b) {
-        const double scale = in.GetRasterBand(b)->GetScale(), offset = in.GetRasterBand(b)->GetOffset();
-        const bool first = (offset != 0 && (request.resample == "sum" || request.resample == "rms")) ||
-                           (scale < 0 && request.resample != "sum");
-        if (first) scaled_first.push_back(b);
-        return first;
-      });
+    std::erase_if(continuous, [&](int b) {
+      GDALRasterBand& band = *in.GetRasterBand(b);
+      const double scale = band.GetScale(), offset = band.GetOffset();
+      const bool first = detail::holds_signed_bytes(band) ||
+                         (scale_first_kind && ((offset != 0 && (request.resample == "sum" || request.resample == "rms")) ||
+                                               (scale < 0 && request.resample != "sum")));
+      if (first) scaled_first.push_back(b);
+      return first;
+    });
     warp_bands(continuous, request.resample);
     for (int b : scaled_first) {
       keep.push_back(mapped_band(in, b, [](float v) { return v; }, where));  // the physical values

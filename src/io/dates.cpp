@@ -334,7 +334,9 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
   else if (unit == "seconds" || unit == "second" || unit == "s" || unit == "sec")
     seconds_per_unit = 1;
   else
-    throw std::invalid_argument("time unit '" + unit + "' is not supported");
+    throw std::invalid_argument("time unit '" + unit +
+                                "' is not supported (days, hours, minutes or seconds; months and years are not fixed "
+                                "lengths of time)");
   std::string_view origin_text = units.substr(since + 7);
   while (!origin_text.empty() && origin_text.back() == ' ') origin_text.remove_suffix(1);
   // "days since 2001-01-01 00:00:00 -06:00": times on the zone's own clock. They are kept so,

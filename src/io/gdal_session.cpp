@@ -12,11 +12,13 @@
 #include <cctype>
 #include <cstdio>
 #include <filesystem>
+#include <limits>
 #include <cstdlib>
 #include <mutex>
 #include <optional>
 #include <string>
 #include <string_view>
+#include <vector>
 
 #include "io/file_glob.hpp"
 #include "io/netcdf_header.hpp"
@@ -160,6 +162,49 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   if (dataset->GetRasterCount() < 1) throw InputError(path, "has no raster band");
   require_not_cut_short(file_in_connection(path));
   return dataset;
+}
+
+bool holds_signed_bytes(GDALRasterBand& band) {
+  if (band.GetRasterDataType() != GDT_Byte) return false;
+  const char* pixel_type = band.GetMetadataItem("PIXELTYPE", "IMAGE_STRUCTURE");
+  return pixel_type != nullptr && std::string_view(pixel_type) == "SIGNEDBYTE";
+}
+
+bool has_own_mask(GDALRasterBand& band) {
+  const int flags = band.GetMaskFlags();
+  return !(flags & GMF_ALL_VALID) && !(flags & GMF_NODATA);
+}
+
+namespace {
+template <typename Value>
+void apply_signed_bytes_and_mask(GDALRasterBand& band, int x, int y, int width, int height, Value* values,
+                                 bool& ok) {
+  const std::size_t n = std::size_t(width) * std::size_t(height);
+  if (holds_signed_bytes(band))
+    for (std::size_t i = 0; i < n; ++i)
+      if (values[i] > Value(127)) values[i] -= Value(256);
+  if (!has_own_mask(band)) return;
+  GDALRasterBand* mask = band.GetMaskBand();
+  std::vector<std::uint8_t> valid(n);
+  if (mask == nullptr ||
+      mask->RasterIO(GF_Read, x, y, width, height, valid.data(), width, height, GDT_Byte, 0, 0, nullptr) != CE_None) {
+    ok = false;
+    return;
+  }
+  for (std::size_t i = 0; i < n; ++i)
+    if (valid[i] == 0) values[i] = std::numeric_limits<Value>::quiet_NaN();
+}
+}  // namespace
+
+bool read_stored_values(GDALRasterBand& band, int x, int y, int width, int height, void* out,
+                        GDALDataType type) {
+  if (band.RasterIO(GF_Read, x, y, width, height, out, width, height, type, 0, 0, nullptr) != CE_None) return false;
+  bool ok = true;
+  if (type == GDT_Float32)
+    apply_signed_bytes_and_mask(band, x, y, width, height, static_cast<float*>(out), ok);
+  else
+    apply_signed_bytes_and_mask(band, x, y, width, height, static_cast<double*>(out), ok);
+  return ok;
 }
 
 bool is_fill_output(const std::string& path) {

@@ -52,6 +52,22 @@ void require_not_cut_short(const std::string& file);
 /// Opens a raster read-only; InputError naming `path` if it cannot.
 GDALDatasetUniquePtr open_raster(const std::string& path);
 
+/// Whether a Byte band holds signed bytes (PIXELTYPE=SIGNEDBYTE: GDAL before 3.7 has no Int8
+/// type and stores int8 so). Read into a float buffer they come out as 0..255.
+bool holds_signed_bytes(GDALRasterBand& band);
+
+/// Whether the band has a mask GDAL does not derive from its nodata value: an internal or
+/// sidecar mask (.msk), an alpha band, a mask of its own. Cells it marks 0 hold no value.
+bool has_own_mask(GDALRasterBand& band);
+
+/// Reads a window of `band` as stored values into `out` (`type` GDT_Float32 or GDT_Float64),
+/// with what RasterIO into a float buffer leaves out: signed bytes read as signed, and the
+/// cells the band's own mask marks invalid set to NaN (a nodata value is left to the caller,
+/// which may replace it with --nodata). False where GDAL cannot read; its message is the
+/// thread's last error.
+bool read_stored_values(GDALRasterBand& band, int x, int y, int width, int height, void* out,
+                        GDALDataType type);
+
 /// A raster's grid as a stack reads it: size, geotransform (identity where it has none; see
 /// has_geotransform) and CRS (WGS 84 for a NetCDF with CF longitude/latitude axes and no CRS).
 Grid raster_grid(GDALDataset& dataset);

@@ -112,6 +112,7 @@ QaRule QaRule::parse(std::string_view text) {
     } while (list && c.symbol(","));
     rule.clauses_.push_back(std::move(clause));
   } while (c.word("and"));
+  if (c.word("or")) c.fail("clauses are joined by 'and' only; for either of two values list both ('in 0,1')");
   if (!c.done()) c.fail("unexpected text");
   return rule;
 }

@@ -193,14 +193,15 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   if (const GDALDataType type = band->GetRasterDataType();
       rules.nodata && GDALDataTypeIsInteger(type) && !GDALDataTypeIsComplex(type)) {
     const int bits = GDALGetDataTypeSizeBits(type);
-    const bool is_signed = GDALDataTypeIsSigned(type);
+    const bool is_signed = GDALDataTypeIsSigned(type) || detail::holds_signed_bytes(*band);
     const double low = is_signed ? -std::ldexp(1.0, bits - 1) : 0.0;
     const double high = is_signed ? std::ldexp(1.0, bits - 1) - 1 : std::ldexp(1.0, bits) - 1;
     if (std::isnan(*rules.nodata) || *rules.nodata < low || *rules.nodata > high ||
         *rules.nodata != std::floor(*rules.nodata))
       throw UsageError(fmt::format("--nodata {:g}", *rules.nodata),
                        fmt::format("{} stores {} values ({:g} to {:g}, whole numbers): no value can equal it",
-                                   path, GDALGetDataTypeName(type), low, high));
+                                   path, detail::holds_signed_bytes(*band) ? "signed Byte" : GDALGetDataTypeName(type),
+                                   low, high));
   }
   if (rules.nodata && band->GetRasterDataType() == GDT_Float32 && std::isfinite(*rules.nodata) &&
       std::abs(*rules.nodata) > double(std::numeric_limits<float>::max()))
@@ -212,6 +213,7 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   else if (has)
     layer.nodata = nodata;
   if (const char* unit = band->GetUnitType()) layer.unit = unit;
+  if (detail::has_own_mask(*band)) layer.own_mask = band->GetMaskFlags() & GMF_ALPHA ? "alpha band" : "mask";
   return layer;
 }
 
@@ -769,22 +771,27 @@ struct StackReader::Handles {
 StackReader::StackReader(const Stack& stack) : stack_(stack), handles_(std::make_unique<Handles>()) {}
 StackReader::~StackReader() = default;
 
+[[noreturn]] static void throw_read_failed(const Layer& layer) {
+  // GDAL's message often starts with the file's name, which the error names already.
+  std::string message = detail::gdal_message("read failed");
+  if (message.rfind(layer.path + ", ", 0) == 0) message.erase(0, layer.path.size() + 2);
+  detail::throw_unreadable(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
+}
+
+// QA bits, as stored.
 static void read_window(GDALRasterBand& band, const Layer& layer, const Window& w, void* out,
                         GDALDataType type) {
   CPLErrorReset();
-  if (band.RasterIO(GF_Read, w.x, w.y, w.width, w.height, out, w.width, w.height, type, 0, 0,
-                    nullptr) != CE_None)
-  {
-    // GDAL's message often starts with the file's name, which the error names already.
-    std::string message = detail::gdal_message("read failed");
-    if (message.rfind(layer.path + ", ", 0) == 0) message.erase(0, layer.path.size() + 2);
-    detail::throw_unreadable(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
-  }
+  if (band.RasterIO(GF_Read, w.x, w.y, w.width, w.height, out, w.width, w.height, type, 0, 0, nullptr) != CE_None)
+    throw_read_failed(layer);
 }
 
 std::int64_t StackReader::read_values(std::size_t index, const Window& w, float* out) {
   const Layer& layer = stack_.layers()[index];
-  read_window(handles_->band(layer), layer, w, out, GDT_Float32);
+  // Signed bytes as signed, and the cells the band's own mask marks invalid as NaN.
+  CPLErrorReset();
+  if (!detail::read_stored_values(handles_->band(layer), w.x, w.y, w.width, w.height, out, GDT_Float32))
+    throw_read_failed(layer);
   const ValueRules& rules = stack_.rules();
   const bool has_nodata = layer.nodata.has_value();
   const float nodata = has_nodata ? float(*layer.nodata) : 0.0f;

@@ -86,6 +86,8 @@ TEST_CASE("ISO and CF times", "[io][dates]") {
   CHECK(cf_time(90, "minutes since 2000-01-01 00:00").label() == "2000-01-01T0130");
   CHECK_THROWS_AS(cf_time(1, "days since 2000-01-01", "360_day"), std::invalid_argument);
   CHECK_THROWS_AS(cf_time(1, "fortnights since 2000-01-01"), std::invalid_argument);
+  // The units that are read are named (the message had named only the refused one).
+  CHECK_THROWS_WITH(cf_time(1, "months since 2000-01-01"), Catch::Contains("days, hours, minutes or seconds"));
   CHECK_THROWS_AS(cf_time(1, "days"), std::invalid_argument);
 }
 

@@ -40,4 +40,6 @@ TEST_CASE("QA rules with mistakes are refused", "[io][qa]") {
     INFO(bad);
     CHECK_THROWS_AS(QaRule::parse(bad), UsageError);
   }
+  // 'or' is named, not "unexpected text".
+  CHECK_THROWS_WITH(QaRule::parse("bits0-1 in 0 or bit 2 == 0"), Catch::Contains("'and' only"));
 }

@@ -481,6 +481,18 @@ class BadInput(kt.TempDirTestCase):
             self.assertEqual(len(lines), 1, done.stderr)
             self.assertTrue(lines[0].startswith(expected), (args, lines[0]))
 
+    def test_a_pattern_the_shell_expanded_is_named(self):
+        # `kalends fill ndvi/*.tif` unquoted: the shell passes every file. CLI11 listed them as
+        # "arguments not expected", without saying why; the pattern needs quotes.
+        files = sorted(glob.glob(os.path.join(self.good, "*.tif")))
+        done = kt.run_kalends(["fill"] + files + ["--out", os.path.join(self.tmp, "expanded")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        lines = done.stderr.strip().splitlines()
+        self.assertEqual(len(lines), 1, done.stderr)
+        self.assertIn("%d more files than the command takes" % (len(files) - 1), lines[0])
+        self.assertIn("needs quotes", lines[0])
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "expanded")))
+
     def test_truncated_geotiff_header(self):
         # Cut inside the header: the file no longer opens.
         folder = self.variant("truncated-header")
