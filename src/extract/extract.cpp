@@ -24,6 +24,7 @@
 #include <fstream>
 #include <cmath>
 #include <map>
+#include <tuple>
 #include <memory>
 
 #include "io/gdal_session.hpp"
@@ -635,7 +636,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
   points_crs.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
   // One geometry per grid: the bands of one raster (Landsat's six) share their placements and
   // the cell centres the buffers transform.
-  std::vector<std::shared_ptr<SeriesGeometry>> geometry;
+  std::vector<std::unique_ptr<SeriesGeometry>> geometries;
+  std::vector<std::size_t> geometry_of(r.series.size());
   for (std::size_t si = 0; si < r.series.size(); ++si) {
     const Grid& grid = r.series[si].grid;
     std::size_t same = 0;
@@ -643,18 +645,76 @@ ExtractResult run_extract(const ExtractRequest& request) {
                           r.series[same].grid.geotransform == grid.geotransform &&
                           r.series[same].grid.crs_wkt == grid.crs_wkt))
       ++same;
-    geometry.push_back(same < si ? geometry[same]
-                                 : std::make_shared<SeriesGeometry>(r.series[si], points_crs, request.buffer_metres));
+    if (same == si) {
+      geometry_of[si] = geometries.size();
+      geometries.push_back(std::make_unique<SeriesGeometry>(r.series[si], points_crs, request.buffer_metres));
+    } else {
+      geometry_of[si] = geometry_of[same];
+    }
   }
+  // Matched first, read after: the reads go file by file, and in each file row by row, whatever
+  // the order of the points. A survey table ordered by household has its dates at random; read
+  // in that order, every point decompressed its own blocks again once the layers outgrew GDAL's
+  // block cache (10k points: 12.6 s against 1.2 s sorted, with a 64 MB cache). Points are taken
+  // in batches whose buffers' cells stay below `batch_cells` (a 5 km buffer on 30 m cells holds
+  // 87 000 of them a point) and whose reads stay below `batch_reads`.
+  constexpr std::size_t batch_cells = std::size_t(1) << 23;  // 64 MiB of cell pairs
+  constexpr std::size_t batch_reads = std::size_t(1) << 22;  // 160 MiB of reads
+  struct Read {
+    std::size_t value;     // in r.values
+    std::size_t si, file;  // series and its file
+    int band;
+    std::size_t site;      // in `placements` and `buffers`: the point on this series' grid
+  };
+  std::vector<Read> reads;
+  std::vector<Placement> placements;
+  std::vector<std::vector<std::pair<int, int>>> buffers;
+  std::size_t cells_held = 0;
   Files files;
+  const auto read_batch = [&] {
+    std::stable_sort(reads.begin(), reads.end(), [&](const Read& a, const Read& b) {
+      return std::tie(a.si, a.file, a.band, placements[a.site].py) <
+             std::tie(b.si, b.file, b.band, placements[b.site].py);
+    });
+    for (const Read& read : reads) {
+      const CovariateSeries& s = r.series[read.si];
+      const SeriesFile& file = s.files[read.file];
+      ExtractedValue& v = r.values[read.value];
+      const Placement& at = placements[read.site];
+      if (at.inside) {
+        sample(files, s, file.path, read.band, at, request.sampling, v);
+        if (!v.value && file.outside_season) v.reason = "outside the stack's season (no composite stands for these days)";
+      } else {
+        v.reason = at.reason;
+      }
+      if (request.buffer_metres > 0) {
+        buffer_mean(files, s, file.path, read.band, buffers[read.site], v);
+        if (!v.value && !v.buffer_mean) v.reason += " (and no cell with a value in the buffer)";
+      }
+    }
+    reads.clear();
+    placements.clear();
+    buffers.clear();
+    cells_held = 0;
+  };
   for (std::size_t i = 0; i < r.points.points.size(); ++i) {
     const SurveyPoint& p = r.points.points[i];
+    // The point on each grid, once (not once per layer on it: the geodesic distances of a
+    // buffer's cells cost most).
+    const std::size_t first_site = placements.size();
+    for (const auto& geometry : geometries) {
+      placements.push_back(geometry->place(p));
+      const Placement& at = placements.back();
+      // A point just outside the layer still has the cells of its buffer inside it.
+      buffers.push_back(at.located && request.buffer_metres > 0 ? geometry->buffer_cells(at)
+                                                                 : std::vector<std::pair<int, int>>{});
+      cells_held += buffers.back().size();
+    }
     for (std::size_t si = 0; si < r.series.size(); ++si) {
       const CovariateSeries& s = r.series[si];
-      const Placement at = geometry[si]->place(p);
-      std::vector<std::pair<int, int>> cells;
-      // A point just outside the layer still has the cells of its buffer inside it.
-      if (at.located && request.buffer_metres > 0) cells = geometry[si]->buffer_cells(at);
+      const std::size_t site = first_site + geometry_of[si];
+      const Placement& at = placements[site];
+      const bool no_cells = buffers[site].empty();
       const int lags = s.kind == SeriesKind::fixed ? 0 : static_cast<int>(request.lags.size());
       for (int l = 0; l <= lags; ++l) {
         ExtractedValue v;
@@ -663,27 +723,17 @@ ExtractResult run_extract(const ExtractRequest& request) {
         v.lag = l ? request.lags[l - 1] : 0;
         const TimeMatch m = match_time(s, p, v.lag);
         v.matched = m.label;
-        if (!at.located || (!at.inside && (m.file < 0 || cells.empty()))) v.reason = at.reason;
+        if (!at.located || (!at.inside && (m.file < 0 || no_cells))) v.reason = at.reason;
         else if (m.file < 0) v.reason = m.reason;
-        else {
-          const std::string& path = s.files[m.file].path;
-          if (at.inside) {
-            sample(files, s, path, m.band, at, request.sampling, v);
-            if (!v.value && s.files[m.file].outside_season)
-              v.reason = "outside the stack's season (no composite stands for these days)";
-          } else {
-            v.reason = at.reason;
-          }
-          if (request.buffer_metres > 0) {
-            buffer_mean(files, s, path, m.band, cells, v);
-            if (!v.value && !v.buffer_mean) v.reason += " (and no cell with a value in the buffer)";
-          }
-        }
-        if (!v.value) ++r.missing;
+        else reads.push_back({r.values.size(), si, std::size_t(m.file), m.band, site});
         r.values.push_back(std::move(v));
       }
     }
+    if (cells_held >= batch_cells || reads.size() >= batch_reads) read_batch();
   }
+  read_batch();
+  for (const ExtractedValue& v : r.values)
+    if (!v.value) ++r.missing;
   if (!r.repeated_ids.empty())
     r.notes.push_back(fmt::format("{}: {} ids name more than one point (first: '{}'); each point keeps its own row",
                                   request.points.path, r.repeated_ids.size(), r.repeated_ids.front()));
