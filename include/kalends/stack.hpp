@@ -126,6 +126,11 @@ double date_median(const Stack& stack, std::size_t index, int side);
 /// has no partner ("no QA layer for 2004-05-24 in 'qa/*.tif'"; `what` is "QA").
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what);
 
+/// Whether the partner that `reason` (partners_by_date's error) found missing has come since: a
+/// file of its pattern whose name holds the date. A run that left the file out as bad reads it
+/// again then, although the file itself is unchanged.
+bool partner_now_present(const std::string& reason);
+
 /// "scale_factor=10000, add_offset=0" where the stack's first file states a scaling in its
 /// metadata that GDAL leaves unapplied (HDF-EOS grids, for one) and no --scale or --offset is
 /// given; "" otherwise. Conventions differ (CF multiplies, MODIS HDF divides), so it is only named.

@@ -410,6 +410,26 @@ double date_median(const Stack& stack, std::size_t index, int side) {
   return values[values.size() / 2];
 }
 
+// "no QA layer for 2004-05-24 in 'qa/*.tif'": made here, read back by partner_now_present.
+constexpr std::string_view partner_for = " layer for ", partner_in = " in '";
+
+bool partner_now_present(const std::string& reason) {
+  if (reason.rfind("no ", 0) != 0 || reason.empty() || reason.back() != '\'') return false;
+  const auto for_at = reason.find(partner_for);
+  const auto in_at = for_at == std::string::npos ? std::string::npos : reason.find(partner_in, for_at);
+  if (in_at == std::string::npos) return false;
+  const std::string label = reason.substr(for_at + partner_for.size(), in_at - for_at - partner_for.size());
+  const std::string pattern = reason.substr(in_at + partner_in.size(), reason.size() - 1 - in_at - partner_in.size());
+  try {
+    for (const std::string& file : detail::expand_glob(pattern))
+      if (const auto time = date_from_name(std::filesystem::path(file).filename().string()); time && time->label() == label)
+        return true;
+  } catch (const Error&) {
+    // A pattern that no longer matches anything: the partner has not come.
+  }
+  return false;
+}
+
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {
   // A file on each side (a stack's files share its grid): the glob alone had named none.
   require_same_grid(base.grid(), other.grid(), other.layers().front().path, base.layers().front().path);
@@ -418,7 +438,8 @@ std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other,
   for (const Layer& layer : base.layers()) {
     const auto it = std::find_if(layers.begin(), layers.end(), [&](const Layer& l) { return l.time == layer.time; });
     if (it == layers.end())
-      throw InputError(layer.path, "no " + what + " layer for " + layer.time.label() + " in '" + other.input() + "'");
+      throw InputError(layer.path, "no " + what + std::string(partner_for) + layer.time.label() +
+                                       std::string(partner_in) + other.input() + "'");
     index.push_back(std::size_t(it - layers.begin()));
   }
   return index;

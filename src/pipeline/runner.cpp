@@ -639,14 +639,16 @@ class Runner {
   }
 
   // Inputs the last run left out as bad and that have not changed since (same size and
-  // modification time as then) are left out again without being read: otherwise every run
-  // and status would find "inputs changed" in the file that is not used. Returns them as
+  // modification time as then) and still lack what they lacked are left out again without being
+  // read: otherwise every run and status would find "inputs changed" in the file that is not
+  // used. Returns them as
   // "path: reason".
   std::vector<std::string> leave_out_known_bad_inputs() {
     std::vector<std::string> left_out;
     if (!db_) return left_out;
     for (const auto& [path, reason] : db_->skipped()) {
-      if (!unchanged_since(path, db_->input(path))) continue;
+      // A value file refused for want of its QA partner is read again once the partner comes.
+      if (!unchanged_since(path, db_->input(path)) || partner_now_present(reason)) continue;
       excluded_.push_back(path);
       left_out.push_back(path + ": " + reason);
       report_.skipped_inputs.push_back(left_out.back());

@@ -1126,6 +1126,44 @@ class IndexStepCopiesQA(kt.TempDirTestCase):
         self.assertTrue(np.all(kt.gdal().Open(copy).ReadAsArray() == 1))
 
 
+class LateQAPartner(kt.TempDirTestCase):
+    def test_a_composite_left_out_for_its_missing_qa_is_read_once_the_qa_comes(self):
+        # A value file arrives a night before its QA file. --skip-bad leaves it out (exit 3). The
+        # next night the QA came, but the run left the value file out again, "unchanged since the
+        # run that found it", every night after; a run from scratch reads it. Invented data.
+        folder = os.path.join(self.tmp, "late-qa")
+        dates = ["2031-03-06", "2031-03-22", "2031-04-07", "2031-04-23"]
+        rng = np.random.default_rng(3)
+        for sub in ("ndvi", "qa"):
+            os.makedirs(os.path.join(folder, sub))
+        for date in dates:
+            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_%s.tif" % date),
+                            rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
+            if date != dates[-1]:
+                kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % date), np.zeros((6, 6), np.uint16))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa/qa_*.tif"\n'
+                    'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        last = os.path.join(folder, "out", "fill", "ndvi_%s.tif" % dates[-1])
+        done = run(job, "--skip-bad")
+        self.assertEqual(done.returncode, 3, done.stderr)
+        self.assertIn("no QA layer for %s" % dates[-1], done.stdout + done.stderr)
+        self.assertFalse(os.path.exists(last))
+        # Still missing: left out again, without a word of new inputs.
+        done = run(job, "--skip-bad")
+        self.assertEqual(done.returncode, 3, done.stderr)
+        self.assertIn("up to date", done.stdout)
+        # The QA file comes: status and the run take the date.
+        kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % dates[-1]), np.zeros((6, 6), np.uint16))
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True, timeout=120)
+        self.assertNotIn("left out", status.stdout)
+        done = run(job, "--skip-bad")
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertNotIn("skipped input", done.stdout)
+        self.assertTrue(os.path.exists(last))
+
+
 class IncrementalCountsOfRealGaps(kt.TempDirTestCase):
     def test_pixels_not_fitted_are_counted_for_every_year_after_a_partial_run(self):
         # The Alaska masked30 NDVI (real cloud patterns; data README): whittaker by year leaves
