@@ -207,12 +207,13 @@ std::string memory_key(const Job& job) {
 // Every step that reads job inputs alone and whose kind can check its budget, checked before
 // the first step runs: a job whose third fill cannot hold one block fails at once, not after
 // hours of the first two (nor in every task of a cluster array). `wanted` says whether a step
-// is to be checked and for which rows. Returns the first step refused and the error naming the
+// is to be checked and for which rows. Returns the steps refused, each with the error naming the
 // job file's key. Anything else wrong (an input missing) is left to the step itself, in the
 // job's words; a damaged file is left out of the check, as --skip-bad would leave it out.
-std::optional<std::pair<std::string, UsageError>> check_budgets(
+std::vector<std::pair<std::string, UsageError>> check_budgets(
     const Job& job, const std::string& base, std::int64_t memory, int threads, std::vector<std::string> excluded,
     const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted) {
+  std::vector<std::pair<std::string, UsageError>> refused;
   for (const JobStep& step : job.steps) {
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
     if (!kind || !kind->check_memory || step.inputs.empty() ||
@@ -236,7 +237,7 @@ std::optional<std::pair<std::string, UsageError>> check_budgets(
         kind->check_memory(context);
       } catch (const UsageError& e) {
         if (e.where() == "--memory")
-          return std::pair{step.id, UsageError(memory_key(job), fmt::format("step '{}': {}", step.id, e.reason()))};
+          refused.emplace_back(step.id, UsageError(memory_key(job), fmt::format("step '{}': {}", step.id, e.reason())));
       } catch (const InputError& e) {
         std::error_code ec;
         if (!e.where().empty() && fs::is_regular_file(e.where(), ec) &&
@@ -250,7 +251,7 @@ std::optional<std::pair<std::string, UsageError>> check_budgets(
       break;
     }
   }
-  return std::nullopt;
+  return refused;
 }
 
 // The hidden .partial files a run writes before renaming them into place; a killed run
@@ -439,6 +440,8 @@ class Runner {
     // The budgets of the steps that will run, before the first of them (--finalize only stitches
     // the split steps, whose budgets `kalends plan` checked).
     const int threads = options_.threads > 0 ? options_.threads : job_.threads;
+    // A step refused fails at once, before any step runs, and stops only the steps that read it
+    // (it had stopped the whole job, independent steps too, with no reason given for them).
     const auto refused =
         check_budgets(job_, base_, cli_memory(), threads, excluded_, [&](const JobStep& step, std::optional<Window>& region) {
           const detail::PlannedStep* planned = plan_ ? plan_->step(step.id) : nullptr;
@@ -447,32 +450,6 @@ class Runner {
           if (shard_) region = plan_->window(planned->root, shard_);
           return true;
         });
-    if (refused) {
-      // Recorded as that step's failure, as if the run had reached it: `status` says so and
-      // exits 1 for a monitoring script; the steps before it did not run.
-      for (const JobStep& step : job_.steps) {
-        StepReport r;
-        r.id = step.id;
-        r.kind = step.kind;
-        r.action = step.id == refused->first ? StepReport::Action::failed : StepReport::Action::not_reached;
-        if (step.id == refused->first) {
-          r.reason = refused->second.what();
-          if (!options_.dry_run) {
-            try {
-              db_->step_failed(step.id, step.kind, r.reason);
-            } catch (const Error&) {
-            }
-          }
-          if (events_.step_finished) events_.step_finished(r);
-        }
-        report_.steps.push_back(r);
-      }
-      report_.error = refused->second.what();
-      report_.exit_code = 2;
-      report_.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
-      report_.peak_memory_bytes = detail::peak_resident_bytes();
-      return report_;
-    }
     // The small files of the user's that steps read (survey tables), before any step runs: a
     // bad one fails its step at once, and that step alone.
     std::map<std::string, Error> unusable_file;
@@ -531,6 +508,13 @@ class Runner {
         }
         stopped.failed(step.id);
       };
+      if (const auto over = std::find_if(refused.begin(), refused.end(), [&](const auto& r) { return r.first == step.id; });
+          over != refused.end()) {
+        fail_step(over->second, 2);
+        if (events_.step_finished) events_.step_finished(r);
+        report_.steps.push_back(r);
+        continue;
+      }
       if (const auto bad = unusable_file.find(step.id); bad != unusable_file.end()) {
         const Error& e = bad->second;  // in the job's words, as the errors of a step that runs
         fail_step(InputError(job_option_names(job_wording(e.where(), step)), job_wording(e.reason(), step)), 2);
@@ -1499,8 +1483,9 @@ PlanReport plan_job(const RunOptions& options, int shards) {
                                            if (!planned) return false;
                                            if (planned->split) region = plan.window(planned->root, 1);
                                            return true;
-                                         }))
-    throw refused->second;
+                                         });
+      !refused.empty())
+    throw refused.front().second;
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());

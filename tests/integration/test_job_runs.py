@@ -172,9 +172,11 @@ class JobFile(kt.TempDirTestCase):
     def test_a_later_steps_budget_is_checked_before_the_first_step_runs(self):
         # A budget that holds a Whittaker fill's block but not a spacetime fill's, whose halo
         # makes its block larger (110 MiB; 101 would do for Whittaker and 132 for spacetime at
-        # 0.3.15): the run, --dry-run and `kalends plan` all refuse at once,
-        # naming the later step; the first step had run for its whole time before the run
-        # reached the second (and every array task of a plan failed the same way).
+        # 0.3.15): the run, --dry-run and `kalends plan` all refuse the later step at once, naming
+        # it; the first step had run for its whole time before the run reached the second (and
+        # every array task of a plan failed the same way). The refused step fails alone: a step
+        # that does not read it still runs (since 0.3.20; the refusal had stopped the whole job,
+        # and the independent steps were "not reached" with no reason).
         folder = os.path.join(self.tmp, "later")
         make_job(folder, size=64)
         job = os.path.join(folder, "later.toml")
@@ -190,9 +192,11 @@ class JobFile(kt.TempDirTestCase):
             line = done.stderr.strip().splitlines()[-1]
             self.assertRegex(line, r"later\.toml:4: \[job\] memory: step 'joint': budget of 110 MiB is too small "
                                    r"for one block .*; \d+ MiB would do", args)
-            self.assertFalse(glob.glob(os.path.join(out, "smooth", "*.tif")), args)
+            self.assertEqual(bool(glob.glob(os.path.join(out, "smooth", "*.tif"))), args[-1] == job, args)
             self.assertFalse(os.path.exists(os.path.join(out, ".kalends", "plan.tsv")), args)
-        self.assertFalse(os.path.exists(os.path.join(out, "joint")))
+            if args[0] == "run":
+                self.assertRegex(done.stdout, r"joint +failed", args)
+        self.assertFalse(glob.glob(os.path.join(out, "joint", "*.tif")))
         # The refusal is the step's failure to `status` (exit 1 for a monitoring script), as it
         # was when the run reached the step.
         status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
@@ -207,7 +211,7 @@ class JobFile(kt.TempDirTestCase):
             done = subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300)
             self.assertEqual(done.returncode, 2, (args, done.stdout, done.stderr))
             self.assertIn("step 'joint': budget of 110 MiB is too small", done.stderr.strip().splitlines()[-1])
-            self.assertFalse(glob.glob(os.path.join(out, "smooth", "*.tif")), args)
+            self.assertFalse(glob.glob(os.path.join(out, "joint", "*.tif")), args)
         os.remove(os.path.join(stack, "ndvi_2099-01-01.tif"))
         # The default budget is named as such when the file sets none.
         with open(job) as f:
