@@ -62,11 +62,24 @@ TimeMatch match_time(const CovariateSeries& series, const SurveyPoint& point, in
       return m;
     }
     int own = static_cast<int>(after - spans.begin()) - 1;
-    if (!(t < spans[own].second)) {
-      if (after == spans.end()) {
+    if (!(t < spans[own].second) && after == spans.end()) {
+      // A calendar's periods go on past its last file: the survey's own period is not written
+      // yet, and its lags read those that are (lag 1 of a survey in January reads December), as
+      // a year layer's lags do. A composite's successor cannot be counted so.
+      int period_of_survey = own;
+      if (series.period && lag > 0)
+        for (TimePoint start = spans.back().second;;) {
+          ++period_of_survey;
+          const TimePoint next = next_period_start(*series.period, start);
+          if (t < next || !(start < next)) break;
+          start = next;
+        }
+      if (period_of_survey == own || period_of_survey - lag >= static_cast<int>(spans.size())) {
         m.reason = "survey date after the layers (last " + series.files.back().time.label() + ")";
         return m;
       }
+      own = period_of_survey;
+    } else if (!(t < spans[own].second)) {
       // Between two seasons of composites: the day itself reads nothing, and its lags read the
       // composites before the gap, lag 1 the last of them.
       if (lag == 0) {

@@ -719,6 +719,54 @@ class SummersOnly(kt.TempDirTestCase):
         self.assertEqual(rows["summer"]["fill.calendar-1M.ndvi.reason"], "")
         self.assertEqual(rows["undated"]["fill.calendar-1M.ndvi.reason"], "no survey date")
 
+
+class CalendarLagsAfterTheLastPeriod(kt.TempDirTestCase):
+    def test_lags_of_a_survey_after_the_last_month_read_the_months_written(self):
+        # A survey in the month after a monthly calendar's last one: its own month is not
+        # written yet, but lag 1 is the last month, as a year layer's lag 1 reads it. It had
+        # been "survey date after the layers" at every lag. Invented 16-day composites of 2031
+        # (mechanics only); the expected values are read from the calendar files with GDAL.
+        import datetime as dt
+        stack = os.path.join(self.tmp, "stack")
+        os.makedirs(stack)
+        rng = np.random.default_rng(2)
+        for k in range(23):
+            day = dt.date(2031, 1, 1) + dt.timedelta(days=16 * k)
+            kt.write_raster(os.path.join(stack, "ndvi_%s.tif" % day.isoformat()),
+                            rng.uniform(0.2, 0.7, (4, 5)).astype(np.float32),
+                            geotransform=(400000, 250, 0, 7200000, 0, -250), epsg=32606)
+        job = os.path.join(self.tmp, "job")
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "*.tif"), "--out", os.path.join(job, "fill"),
+                               "--every", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        months = sorted(os.listdir(os.path.join(job, "fill", "calendar-1M")))
+        last = months[-1]  # the calendar's last month, from its file name
+        self.assertTrue(last.startswith("ndvi_2031-12"), months)
+        g = kt.gdal()
+
+        def mean_of(name):
+            ds = g.Open(os.path.join(job, "fill", "calendar-1M", name))
+            return float(ds.GetRasterBand(1).ReadAsArray()[1, 2])  # the point's cell: row 1, column 2
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\njanuary,400600,7199650,2032-01-20\nfebruary,400600,7199650,2032-02-10\n")
+        out = os.path.join(self.tmp, "table.csv")
+        done = kt.run_kalends(["-q", "extract", job, "--points", points, "--crs", "EPSG:32606", "--x-column", "x",
+                               "--y-column", "y", "--layers", "fill.calendar-1M.ndvi", "--lags", "1,2",
+                               "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = {r["id"]: r for r in kt.read_table(out)}
+        name = "fill.calendar-1M.ndvi"
+        for row in rows.values():
+            self.assertEqual(row[name], "")
+            self.assertTrue(row[name + ".reason"].startswith("survey date after the layers"), row)
+        self.assertAlmostEqual(float(rows["january"][name + ".lag1"]), mean_of(months[-1]), places=6)
+        self.assertAlmostEqual(float(rows["january"][name + ".lag2"]), mean_of(months[-2]), places=6)
+        self.assertEqual(rows["february"][name + ".lag1"], "")
+        self.assertTrue(rows["february"][name + ".lag1.reason"].startswith("survey date after the layers"))
+        self.assertAlmostEqual(float(rows["february"][name + ".lag2"]), mean_of(months[-1]), places=6)
+
+
 class RawStacks(kt.TempDirTestCase):
     """Stacks that kalends did not write, read at survey dates as `kalends fill` reads them.
 
