@@ -449,7 +449,7 @@ h3{font-size:1.05em;margin:18px 0 6px}
 .maps{display:flex;flex-wrap:wrap;gap:18px}
 figure{margin:0}figure.map-card{width:340px}
 img.map{background:#d9d9d9;border:1px solid #999;image-rendering:pixelated;max-width:100%;height:auto}
-figcaption{font-size:.85em;margin:3px 0}
+figcaption{font-size:.85em;margin:3px 0;overflow-wrap:anywhere}
 .caution{border-left:4px solid #d55e00;background:#fff3e8;padding:6px 9px;font-size:.85em}
 .flag-legend span{display:inline-block;margin-right:10px;font-size:.8em}
 .flag-legend i{display:inline-block;width:11px;height:11px;margin-right:4px;vertical-align:middle;border:1px solid #666}
@@ -549,8 +549,8 @@ ReportSummary run_report(const ReportRequest& request) {
     maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{}</b>: {}<br>{}; {}; {}<br><span class=\"note\">{}</span></figcaption>{}",
                         image(q, s.name), escape(s.name), escape(s.description), escape(shown),
                         // A stack's dates may be bands of one file.
-                        s.kind == SeriesKind::dated ? fmt::format("{} dates", s.files.size())
-                                                    : fmt::format("{} files", s.files.size()),
+                        fmt::format("{} {}{}", s.files.size(), s.kind == SeriesKind::dated ? "date" : "file",
+                                    s.files.size() == 1 ? "" : "s"),
                         classes.empty() ? "ramp from the 2nd to the 98th percentile" : "a colour per class",
                         escape(where), classes.empty() ? legend_svg(q, s.unit, summary.maps) : class_legend(classes));
     if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";

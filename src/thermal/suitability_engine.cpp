@@ -196,9 +196,16 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
       "longest_suitable_run", "mean_suitability"};
   const std::size_t synoptic =
       add("synoptic", labels, "relative suitability 0-1, mean over years", "");
+  // The counts' unit, for legends and GIS tools (the report had said "no unit").
+  const std::string counted = request.period.kind == CalendarPeriod::Kind::month ? "months" : "periods";
+  const auto count_units = [&](std::size_t file) {
+    specs[file].bands[0].unit = counted;
+    specs[file].bands[1].unit = counted;
+    return file;
+  };
   const std::size_t synoptic_summary =
-      add("summary_synoptic", summary_bands,
-          "suitable periods of the synoptic cycle (runs wrap over the year)", "");
+      count_units(add("summary_synoptic", summary_bands,
+                      "suitable periods of the synoptic cycle (runs wrap over the year)", ""));
   std::vector<std::size_t> year_file, summary_file;
   constexpr std::size_t kept = std::size_t(-1);
   std::vector<std::string> kept_year_path(static_cast<std::size_t>(years));  // years read back, not computed
@@ -209,7 +216,8 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                       std::find(request.only_years->begin(), request.only_years->end(), y) != request.only_years->end();
     if (!redo) kept_year_path[std::size_t(y - first_year)] = path;
     year_file.push_back(redo ? add("year_" + ys, labels, "relative suitability 0-1 of the year", ys) : kept);
-    summary_file.push_back(redo ? add("summary_" + ys, summary_bands, "suitable periods of the year", ys) : kept);
+    summary_file.push_back(redo ? count_units(add("summary_" + ys, summary_bands, "suitable periods of the year", ys))
+                                : kept);
   }
   // The dates the computed years need (and two more each side: a day's cycle reads its
   // neighbours); the kept years' values come from their files.

@@ -219,6 +219,11 @@ class SeasonsCommand(kt.TempDirTestCase):
         np.testing.assert_allclose(data[names.index("amplitude")], year.max(0) - year.min(0), rtol=1e-4, atol=1e-6)
         spectrum = np.fft.rfft(year, axis=0)
         np.testing.assert_allclose(data[names.index("annual_amplitude")], 2 * np.abs(spectrum[1]) / 12, rtol=1e-4)
+        # An integral of a stack without a unit is a sum of values over days, not a duration:
+        # its unit had read "days", like the season lengths beside it.
+        units = {n: ds.GetRasterBand(b + 1).GetUnitType() for b, n in enumerate(names)}
+        if ds.GetRasterBand(names.index("mean") + 1).GetUnitType() == "":
+            self.assertEqual(units["season1_integral"], "value-days")
         # One cosine a year: one season per pixel.
         self.assertGreater(np.mean(data[names.index("seasons")] == 1), 0.95)
 

@@ -408,6 +408,9 @@ class MonthlySummariesAndReruns(kt.TempDirTestCase):
             bands, _ = read_bands(os.path.join(out, "degree-day-falciparum_%s.tif" % layer))
             self.assertTrue(np.all(bands[0] == 0), layer)   # suitable months
             self.assertTrue(np.all(bands[1] == 0), layer)   # longest run
+            # The counts are months; the report's legend had said "(no unit)".
+            ds = kt.gdal().Open(os.path.join(out, "degree-day-falciparum_%s.tif" % layer))
+            self.assertEqual([ds.GetRasterBand(b).GetUnitType() for b in (1, 2, 3)], ["months", "months", ""], layer)
 
     def test_extracting_suitability_shows_the_caution(self):
         # A survey table is where a suitability value is most easily read as a risk.
