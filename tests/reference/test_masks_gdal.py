@@ -45,15 +45,16 @@ def inspect(pattern):
     return json.loads(done.stdout)
 
 
-def observed_fill_values(testcase, pattern, out):
-    """The fill's flag-0 cells: {day: (mask of flag 0, values)}."""
+def check_fill_keeps(testcase, pattern, out, truth):
+    """Fills `pattern` and checks that the observed cells (flag 0) are those of `truth`, {day:
+    (valid, physical values)}, with their values."""
     kt.run_fill_ok(testcase, [pattern, "--out", out, "--lambda", "10", "--threads", "1"])
-    result = {}
     for f in sorted(glob.glob(os.path.join(out, "*.tif"))):
         o = kt.read_output(f)
         day = os.path.basename(f).split("_")[-1][:10]
-        result[day] = (o["flag"] == 0, o["value"])
-    return result
+        valid, values = truth[day]
+        np.testing.assert_array_equal(o["flag"] == 0, valid, err_msg=day)
+        np.testing.assert_allclose(o["value"][valid], values[valid], atol=1e-6, err_msg=day)
 
 
 class MaskBands(kt.TempDirTestCase):
@@ -107,12 +108,7 @@ class MaskBands(kt.TempDirTestCase):
             valid, _ = truth[d["date"][:10]]
             self.assertEqual(d["observed"], int(valid.sum()), d["date"])
             self.assertEqual(d["mask"], mask_name)
-        filled = observed_fill_values(self, os.path.join(folder, "*.tif"), os.path.join(self.tmp, "out-" + mask_name))
-        for day in DAYS:
-            valid, values = truth[day]
-            flag0, value = filled[day]
-            np.testing.assert_array_equal(flag0, valid, err_msg=day)
-            np.testing.assert_allclose(value[valid], values[valid], atol=1e-6, err_msg=day)
+        check_fill_keeps(self, os.path.join(folder, "*.tif"), os.path.join(self.tmp, "out-" + mask_name), truth)
 
     def test_an_internal_mask_marks_cells_missing(self):
         self.check_stack(self.internal, "mask")
@@ -194,12 +190,7 @@ class SignedBytes(kt.TempDirTestCase):
             self.assertAlmostEqual(d["min"], values[valid].min(), places=6)
             self.assertAlmostEqual(d["max"], values[valid].max(), places=6)
         self.assertLess(min(d["min"] for d in report["dates"]), 0)
-        filled = observed_fill_values(self, os.path.join(self.folder, "*.tif"), os.path.join(self.tmp, "out"))
-        for day in DAYS:
-            valid, values = truth[day]
-            flag0, value = filled[day]
-            np.testing.assert_array_equal(flag0, valid, err_msg=day)
-            np.testing.assert_allclose(value[valid], values[valid], atol=1e-6, err_msg=day)
+        check_fill_keeps(self, os.path.join(self.folder, "*.tif"), os.path.join(self.tmp, "out"), truth)
 
     def test_grid_reads_signed_bytes(self):
         valid, values = self.truth()[DAYS[0]]
