@@ -471,14 +471,16 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     // Scaling after the warp is right for weighted means, nearest, the median and the like; a sum
     // or root mean square of stored numbers with an offset, and a minimum or maximum with a
     // negative scale, are not those of the values. Such bands are scaled first, one by one.
-    // So are signed bytes (PIXELTYPE=SIGNEDBYTE), which the warp would read as 0..255.
+    // So are signed bytes (PIXELTYPE=SIGNEDBYTE), which the warp would read as 0..255, and bands
+    // with a mask of their own, which the warp leaves unused where the band also has a nodata
+    // value (or where it is an alpha band beside Float32 data).
     const bool scale_first_kind = request.resample == "sum" || request.resample == "rms" ||
                                   request.resample == "min" || request.resample == "max";
     std::vector<int> scaled_first;
     std::erase_if(continuous, [&](int b) {
       GDALRasterBand& band = *in.GetRasterBand(b);
       const double scale = band.GetScale(), offset = band.GetOffset();
-      const bool first = detail::holds_signed_bytes(band) ||
+      const bool first = detail::holds_signed_bytes(band) || detail::has_own_mask(band) ||
                          (scale_first_kind && ((offset != 0 && (request.resample == "sum" || request.resample == "rms")) ||
                                                (scale < 0 && request.resample != "sum")));
       if (first) scaled_first.push_back(b);

@@ -170,9 +170,32 @@ bool holds_signed_bytes(GDALRasterBand& band) {
   return pixel_type != nullptr && std::string_view(pixel_type) == "SIGNEDBYTE";
 }
 
-bool has_own_mask(GDALRasterBand& band) {
+namespace {
+// Another band of the dataset marked as alpha. GDAL takes one as the mask of Byte and UInt16
+// bands only; `gdalwarp -dstalpha` writes one beside Float32 and Int16 data too.
+GDALRasterBand* alpha_band_beside(GDALRasterBand& band) {
+  GDALDataset* dataset = band.GetDataset();
+  if (dataset == nullptr || band.GetColorInterpretation() == GCI_AlphaBand) return nullptr;
+  for (int k = 1; k <= dataset->GetRasterCount(); ++k)
+    if (GDALRasterBand* other = dataset->GetRasterBand(k);
+        other != &band && other->GetColorInterpretation() == GCI_AlphaBand)
+      return other;
+  return nullptr;
+}
+
+// The band holding `band`'s validity (0 = no value), or null.
+GDALRasterBand* own_mask_of(GDALRasterBand& band) {
   const int flags = band.GetMaskFlags();
-  return !(flags & GMF_ALL_VALID) && !(flags & GMF_NODATA);
+  if (!(flags & GMF_ALL_VALID) && !(flags & GMF_NODATA)) return band.GetMaskBand();
+  return alpha_band_beside(band);
+}
+}  // namespace
+
+bool has_own_mask(GDALRasterBand& band) { return own_mask_of(band) != nullptr; }
+
+bool own_mask_is_alpha(GDALRasterBand& band) {
+  return (band.GetMaskFlags() & GMF_ALPHA) || ((band.GetMaskFlags() & (GMF_ALL_VALID | GMF_NODATA)) &&
+                                               alpha_band_beside(band) != nullptr);
 }
 
 namespace {
@@ -183,16 +206,16 @@ void apply_signed_bytes_and_mask(GDALRasterBand& band, int x, int y, int width, 
   if (holds_signed_bytes(band))
     for (std::size_t i = 0; i < n; ++i)
       if (values[i] > Value(127)) values[i] -= Value(256);
-  if (!has_own_mask(band)) return;
-  GDALRasterBand* mask = band.GetMaskBand();
-  std::vector<std::uint8_t> valid(n);
-  if (mask == nullptr ||
-      mask->RasterIO(GF_Read, x, y, width, height, valid.data(), width, height, GDT_Byte, 0, 0, nullptr) != CE_None) {
+  GDALRasterBand* mask = own_mask_of(band);
+  if (mask == nullptr) return;
+  // As float: an alpha band of UInt16 or Float32 holds more than a byte's 0..255.
+  std::vector<float> valid(n);
+  if (mask->RasterIO(GF_Read, x, y, width, height, valid.data(), width, height, GDT_Float32, 0, 0, nullptr) != CE_None) {
     ok = false;
     return;
   }
   for (std::size_t i = 0; i < n; ++i)
-    if (valid[i] == 0) values[i] = std::numeric_limits<Value>::quiet_NaN();
+    if (!(valid[i] > 0)) values[i] = std::numeric_limits<Value>::quiet_NaN();
 }
 }  // namespace
 

@@ -57,8 +57,11 @@ GDALDatasetUniquePtr open_raster(const std::string& path);
 bool holds_signed_bytes(GDALRasterBand& band);
 
 /// Whether the band has a mask GDAL does not derive from its nodata value: an internal or
-/// sidecar mask (.msk), an alpha band, a mask of its own. Cells it marks 0 hold no value.
+/// sidecar mask (.msk), a mask of its own, or an alpha band (also beside Float32 and Int16
+/// bands, which GDAL leaves unmasked). Cells it marks 0 hold no value.
 bool has_own_mask(GDALRasterBand& band);
+/// Whether that mask is an alpha band.
+bool own_mask_is_alpha(GDALRasterBand& band);
 
 /// Reads a window of `band` as stored values into `out` (`type` GDT_Float32 or GDT_Float64),
 /// with what RasterIO into a float buffer leaves out: signed bytes read as signed, and the

@@ -213,7 +213,7 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   else if (has)
     layer.nodata = nodata;
   if (const char* unit = band->GetUnitType()) layer.unit = unit;
-  if (detail::has_own_mask(*band)) layer.own_mask = band->GetMaskFlags() & GMF_ALPHA ? "alpha band" : "mask";
+  if (detail::has_own_mask(*band)) layer.own_mask = detail::own_mask_is_alpha(*band) ? "alpha band" : "mask";
   return layer;
 }
 
@@ -421,13 +421,21 @@ bool partner_now_present(const std::string& reason) {
   const std::string label = reason.substr(for_at + partner_for.size(), in_at - for_at - partner_for.size());
   const std::string pattern = reason.substr(in_at + partner_in.size(), reason.size() - 1 - in_at - partner_in.size());
   try {
+    // Dates in the file names: found without opening a file.
     for (const std::string& file : detail::expand_glob(pattern))
       if (const auto time = date_from_name(std::filesystem::path(file).filename().string()); time && time->label() == label)
         return true;
   } catch (const Error&) {
-    // A pattern that no longer matches anything: the partner has not come.
+    // Not a plain pattern (NETCDF:"qa.nc":qa), or one that matches nothing now.
   }
-  return false;
+  try {
+    // Dates in the bands (a NetCDF time axis, band descriptions): the stack's headers.
+    const Stack partner = Stack::open(pattern);
+    return std::any_of(partner.layers().begin(), partner.layers().end(),
+                       [&](const Layer& layer) { return layer.time.label() == label; });
+  } catch (const Error&) {
+    return false;  // the partner stack does not open: the run says why
+  }
 }
 
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what) {

@@ -285,7 +285,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   for (std::size_t f : anomaly_file) for (auto& b : specs[f].bands) b.unit = unit;
   specs[miss].bands[0].unit = unit;  // the RMSE; the shares have none
   // Cycle bands: values in the input's unit, days of year, lengths in days, integrals in
-  // unit x days; the season count has none.
+  // unit x days ("value-days" without a unit, or CF's dimensionless "1"); the season count has none.
   std::vector<std::size_t> cycles{cycle_synoptic};
   for (std::size_t f : cycle_file)
     if (f != not_written) cycles.push_back(f);
@@ -294,7 +294,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       const std::string& n = b.description;
       b.unit = n.ends_with("_doy")     ? "day of year"
                : n.ends_with("_days")  ? "days"
-               : n.ends_with("integral") ? (unit.empty() ? "value-days" : unit + " days")
+               : n.ends_with("integral") ? (unit.empty() || unit == "1" ? "value-days" : unit + " days")
                : n == "seasons"        ? ""
                                        : unit;
     }

@@ -1168,6 +1168,38 @@ class LateQAPartner(kt.TempDirTestCase):
         self.assertTrue(os.path.exists(last))
 
 
+    def test_a_qa_partner_dated_by_its_band_is_found_when_it_comes(self):
+        # The QA stack one multi-band file dated by band descriptions (a NetCDF time axis is
+        # the same case): no date in a file name, so the check for the partner had found none,
+        # and the value file stayed out after the QA file gained its band. Invented data.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "band-qa")
+        dates = ["2031-03-06", "2031-03-22", "2031-04-07", "2031-04-23"]
+        os.makedirs(os.path.join(folder, "ndvi"))
+        rng = np.random.default_rng(4)
+        for date in dates:
+            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_%s.tif" % date),
+                            rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
+
+        def write_qa(days):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "qa.tif"), 6, 6, len(days), g.GDT_UInt16)
+            for k, day in enumerate(days):
+                ds.GetRasterBand(k + 1).SetDescription(day)
+                ds.GetRasterBand(k + 1).WriteArray(np.zeros((6, 6), np.uint16))
+            ds = None
+        write_qa(dates[:-1])
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa.tif"\n'
+                    'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        done = run(job, "--skip-bad")
+        self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+        write_qa(dates)
+        done = run(job, "--skip-bad")
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertTrue(os.path.exists(os.path.join(folder, "out", "fill", "ndvi_%s.tif" % dates[-1])))
+
+
 class IncrementalCountsOfRealGaps(kt.TempDirTestCase):
     def test_pixels_not_fitted_are_counted_for_every_year_after_a_partial_run(self):
         # The Alaska masked30 NDVI (real cloud patterns; data README): whittaker by year leaves

@@ -152,6 +152,65 @@ class MaskBands(kt.TempDirTestCase):
         self.assertAlmostEqual(float(rows_out["clear"]["ndvi"]), float(values[r, c]), places=6)
 
 
+class MaskWithNodataAndFloatAlpha(kt.TempDirTestCase):
+    def test_grid_applies_a_mask_beside_a_nodata_value(self):
+        # int16 NDVI with nodata -3000 and an internal mask: GDAL's warper takes the nodata and
+        # leaves the mask unused, so `grid` had carried the masked cells (NDVI 0) into its output.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "both")
+        os.makedirs(folder)
+        rng = np.random.default_rng(8)
+        raw = rng.integers(2000, 8000, (ROWS, COLS)).astype("int16")
+        raw[rng.random((ROWS, COLS)) < 0.1] = -3000
+        cloud = rng.random((ROWS, COLS)) < 0.3
+        raw[cloud] = 0
+        path = os.path.join(folder, "ndvi_%s.tif" % DAYS[0])
+        ds = create(path, g.GDT_Int16)
+        band = ds.GetRasterBand(1)
+        band.WriteArray(raw)
+        band.SetNoDataValue(-3000)
+        band.SetScale(1e-4)
+        ds.CreateMaskBand(g.GMF_PER_DATASET)
+        ds.GetRasterBand(1).GetMaskBand().WriteArray(np.where(cloud, 0, 255).astype("uint8"))
+        ds = None
+        ds = g.Open(path)
+        valid = (ds.GetRasterBand(1).GetMaskBand().ReadAsArray() > 0) & (raw != -3000)
+        out = os.path.join(self.tmp, "grid-both")
+        done = kt.run_kalends(["-q", "grid", path, "--out", out, "--crs", "EPSG:32733", "--resample", "nearest"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        placed_ds = g.Open(os.path.join(out, os.path.basename(path)))
+        placed = placed_ds.GetRasterBand(1).ReadAsArray()
+        np.testing.assert_array_equal(np.isfinite(placed), valid)
+        np.testing.assert_allclose(placed[valid], raw[valid] * 1e-4, atol=1e-6)
+
+    def test_an_alpha_band_beside_float_values_marks_cells_missing(self):
+        # `gdalwarp -dstalpha` writes an alpha band beside Float32 data too; GDAL takes it as the
+        # mask of Byte and UInt16 bands only (mask flags 1 here), so its zeros had been read as
+        # NDVI 0. Expected: alpha 0 is no value.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "float-alpha")
+        os.makedirs(folder)
+        rng = np.random.default_rng(9)
+        truth = {}
+        for day in DAYS:
+            v = rng.uniform(0.2, 0.8, (ROWS, COLS)).astype("float32")
+            cloud = rng.random((ROWS, COLS)) < 0.25
+            v[cloud] = 0.0
+            ds = create(os.path.join(folder, "ndvi_%s.tif" % day), g.GDT_Float32, bands=2)
+            ds.GetRasterBand(1).WriteArray(v)
+            ds.GetRasterBand(2).SetColorInterpretation(g.GCI_AlphaBand)
+            ds.GetRasterBand(2).WriteArray(np.where(cloud, 0, 255).astype("float32"))
+            ds = None
+            truth[day] = (~cloud, v.astype(np.float64))
+        ds = g.Open(os.path.join(folder, "ndvi_%s.tif" % DAYS[0]))
+        self.assertTrue(ds.GetRasterBand(1).GetMaskFlags() & g.GMF_ALL_VALID)  # GDAL does not mask it
+        report = inspect(os.path.join(folder, "*.tif"))
+        for d in report["dates"]:
+            self.assertEqual(d["observed"], int(truth[d["date"][:10]][0].sum()))
+            self.assertEqual(d["mask"], "alpha band")
+        check_fill_keeps(self, os.path.join(folder, "*.tif"), os.path.join(self.tmp, "out-float-alpha"), truth)
+
+
 class SignedBytes(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):

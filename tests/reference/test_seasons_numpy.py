@@ -1013,5 +1013,33 @@ class LeapYears(kt.TempDirTestCase):
         self.assertAlmostEqual(float(ds.GetRasterBand(1).ReadAsArray()[0, 0]), float(np.mean(inside)), places=4)
 
 
+class DimensionlessUnit(kt.TempDirTestCase):
+    def test_an_integral_of_a_stack_in_unit_1_is_value_days(self):
+        # CF writes "1" for a dimensionless quantity; "1 days" reads as plain days in UDUNITS
+        # (from memory), a duration. Invented NDVI-like cycle of two years, mechanics only.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "unit1")
+        os.makedirs(folder)
+        dates = modis_dates(2)
+        for d in dates:
+            t = (d - dates[0]).days
+            path = os.path.join(folder, "ndvi_%s.tif" % d.isoformat())
+            kt.write_raster(path, np.full((3, 3), 0.4 + 0.3 * np.cos(2 * np.pi * t / YEAR), np.float32),
+                            geotransform=(400000, 250, 0, 7200000, 0, -250), epsg=32606)
+            ds = g.Open(path, 1)
+            ds.GetRasterBand(1).SetUnitType("1")
+            ds = None
+        filled = os.path.join(self.tmp, "unit1-fill")
+        kt.run_fill_ok(self, [os.path.join(folder, "*.tif"), "--out", filled, "--lambda", "5"])
+        out = os.path.join(self.tmp, "unit1-seasons")
+        done = kt.run_kalends(["-q", "seasons", filled, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        cycle = g.Open(sorted(glob.glob(os.path.join(out, "*_cycle_*.tif")))[0])
+        units = {cycle.GetRasterBand(b).GetDescription(): cycle.GetRasterBand(b).GetUnitType()
+                 for b in range(1, cycle.RasterCount + 1)}
+        self.assertEqual(units["mean"], "1")
+        self.assertEqual(units["season1_integral"], "value-days")
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
