@@ -270,7 +270,8 @@ class TiledFill(kt.TempDirTestCase):
     def test_in_a_job_a_tiled_fills_budget_is_checked_before_the_first_step(self):
         # A tile set's fill had been checked only as each tile ran: a nightly job ran its first
         # steps and then failed on the tiles. The largest tile with its halo is now checked
-        # with the job's other fill steps before any step runs; the budget it names runs.
+        # with the job's other fill steps before any step runs, and fails that step alone (a step
+        # that does not read it runs, since 0.3.20); the budget it names runs.
         import shutil
         import subprocess
         job_dir = os.path.join(self.tmp, "budget-job")
@@ -290,7 +291,8 @@ class TiledFill(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
             line = done.stderr.strip().splitlines()[-1]
             self.assertRegex(line, r"job\.toml:4: \[job\] memory: step 'tiled': budget of 110 MiB is too small")
-            self.assertFalse(glob.glob(os.path.join(job_dir, "out", "first", "*.tif")), args)
+            self.assertEqual(bool(glob.glob(os.path.join(job_dir, "out", "first", "*.tif"))), args[-1] == job, args)
+            self.assertFalse(glob.glob(os.path.join(job_dir, "out", "tiled", "*", "*.tif")), args)
         self.assertFalse(glob.glob("/tmp/kalends-tile-check-*"))
         need = int(re.search(r"(\d+) MiB would do", line).group(1))
         with open(job, "w") as f:
