@@ -68,6 +68,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     if (report.memory_raised_to > 0) print_memory_note(r.memory_bytes, report.memory_raised_to);
     if (const std::string note = withhold_shortfall(report, r.withhold); !note.empty())
       std::fprintf(stderr, "note: %s\n", note.c_str());
+    if (const std::string note = gaps_unlike_the_stacks(report); !note.empty())
+      std::fprintf(stderr, "note: %s\n", note.c_str());
     if (!global.quiet) {
       fmt::print("kalends validate: {} of {} observed values withheld along {} transplanted masks\n",
                  report.withheld, report.observed, report.transplanted_masks);

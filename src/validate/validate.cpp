@@ -228,6 +228,22 @@ std::string withhold_shortfall(const ValidateReport& report, double asked) {
                      100.0 * double(report.withheld) / double(std::max<std::int64_t>(1, report.observed)), 100 * asked);
 }
 
+std::string gaps_unlike_the_stacks(const ValidateReport& report) {
+  const auto share_long = [](const std::array<std::int64_t, 5>& cells) {
+    std::int64_t all = 0;
+    for (std::int64_t n : cells) all += n;
+    return all > 0 ? double(cells[1] + cells[2]) / double(all) : 0.0;
+  };
+  const double own = share_long(report.own_gap_cells), withheld = share_long(report.withheld_gap_cells);
+  // Common practice, no source: a difference of two to one in a share of a fifth or more.
+  if (own < 0.2 || own < 2 * withheld) return "";
+  return fmt::format("the stack's own gaps are longer than those withheld: {:.0f} % of its missing cells lie in gaps "
+                     "of 49-365 days, against {:.0f} % of the withheld cells (a transplanted mask can withhold only "
+                     "what was observed, and a season cloudy every year has little); the scores describe shorter "
+                     "gaps than most of the stack's, so read the rows by gap length",
+                     100 * own, 100 * withheld);
+}
+
 ValidateReport run_validate(const ValidateRequest& request) {
   detail::start_gdal();
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
@@ -405,6 +421,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   std::vector<double> days(dates);
   for (int t = 0; t < dates; ++t) days[t] = stack.layers()[t].time.days();
   std::vector<std::uint8_t> gap_class(truth.v.size(), 0), hood_class(truth.v.size(), 0);
+  std::array<std::int64_t, 5> own_gap_cells{}, withheld_gap_cells{};
   {
     const int r = request.neighbourhood_radius;
     for (int t = 0; t < dates; ++t) {
@@ -426,30 +443,42 @@ ValidateReport run_validate(const ValidateRequest& request) {
           hood_class[i] = share >= 1.0 ? 4 : share >= 0.75 ? 3 : share >= 0.5 ? 2 : share >= 0.25 ? 1 : 0;
         }
     }
-    for (std::size_t p = 0; p < plane; ++p) {
-      int previous = -1;
-      std::vector<int> next(dates, -1);
-      for (int t = dates - 1, n = -1; t >= 0; --t) {
-        next[t] = n;
-        if (std::isfinite(held.at(t)[p])) n = t;
-      }
-      bool any = false;
-      for (int t = 0; t < dates; ++t) any |= std::isfinite(held.at(t)[p]) != 0;
-      for (int t = 0; t < dates; ++t) {
-        const std::size_t i = std::size_t(t) * plane + p;
-        if (withheld[i]) {
-          if (!any) {
-            gap_class[i] = 4;
-          } else if (previous < 0 || next[t] < 0) {
-            gap_class[i] = 3;
-          } else {
-            const double g = days[next[t]] - days[previous];
-            gap_class[i] = g <= 48 ? 0 : g <= 96 ? 1 : g <= 365 ? 2 : 3;
-          }
+    // The class of each `wanted` cell by the gap it lies in on `stack`: the days between the
+    // pixel's observations before and after it.
+    const auto classify_gaps = [&](const Cube& stack, const auto& wanted, const auto& assign) {
+      for (std::size_t p = 0; p < plane; ++p) {
+        int previous = -1;
+        std::vector<int> next(dates, -1);
+        for (int t = dates - 1, n = -1; t >= 0; --t) {
+          next[t] = n;
+          if (std::isfinite(stack.at(t)[p])) n = t;
         }
-        if (std::isfinite(held.at(t)[p])) previous = t;
+        bool any = false;
+        for (int t = 0; t < dates; ++t) any |= std::isfinite(stack.at(t)[p]) != 0;
+        for (int t = 0; t < dates; ++t) {
+          const std::size_t i = std::size_t(t) * plane + p;
+          if (wanted(i)) {
+            if (!any) {
+              assign(i, 4);
+            } else if (previous < 0 || next[t] < 0) {
+              assign(i, 3);
+            } else {
+              const double g = days[next[t]] - days[previous];
+              assign(i, g <= 48 ? 0 : g <= 96 ? 1 : g <= 365 ? 2 : 3);
+            }
+          }
+          if (std::isfinite(stack.at(t)[p])) previous = t;
+        }
       }
-    }
+    };
+    classify_gaps(held, [&](std::size_t i) { return withheld[i] != 0; },
+                  [&](std::size_t i, int c) { gap_class[i] = std::uint8_t(c); });
+    // The stack's own gaps, to say where the withheld ones are not like them: a mask can only
+    // withhold what was observed, so a season that is cloudy every year is scored little.
+    classify_gaps(truth, [&](std::size_t i) { return !std::isfinite(truth.v[i]); },
+                  [&](std::size_t, int c) { ++own_gap_cells[std::size_t(c)]; });
+    for (std::size_t i = 0; i < truth.v.size(); ++i)
+      if (withheld[i]) ++withheld_gap_cells[gap_class[i]];
   }
 
   auto score_cube = [&](const std::string& label, const Cube& estimate, const Cube* sd, bool baseline) {
@@ -480,6 +509,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
   report.height = grid.height;
   report.transplanted_masks = masks;
   report.withhold_goal = goal;
+  report.own_gap_cells = own_gap_cells;
+  report.withheld_gap_cells = withheld_gap_cells;
 
   // Each method's fill as `kalends fill` would run it on the withheld stack. Every one is checked
   // (options, memory for one block) before the first runs: a budget too small for spacetime had
@@ -604,6 +635,13 @@ ValidateReport run_validate(const ValidateRequest& request) {
       "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"observed\": {},\n"
       "  \"withheld\": {},\n  \"transplanted_masks\": {},\n  \"neighbourhood_radius\": {},\n",
       dates, grid.width, grid.height, observed, count, masks, request.neighbourhood_radius);
+  const auto counts = [](const std::array<std::int64_t, 5>& cells) {
+    return fmt::format("[{}, {}, {}, {}, {}]", cells[0], cells[1], cells[2], cells[3], cells[4]);
+  };
+  json += fmt::format("  \"gap_length_cells\": {{\"classes\": [\"{}\", \"{}\", \"{}\", \"{}\", \"{}\"], "
+                      "\"missing_in_input\": {}, \"withheld\": {}}},\n",
+                      gap_classes[0], gap_classes[1], gap_classes[2], gap_classes[3], gap_classes[4],
+                      counts(report.own_gap_cells), counts(report.withheld_gap_cells));
   json += "  \"series_pixels\": [";
   for (std::size_t i = 0; i < shown.size(); ++i) {
     const int column = area.x + int(shown[i] % grid.width), row = area.y + int(shown[i] / grid.width);
@@ -625,6 +663,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
       100.0 * double(count) / double(std::max<std::int64_t>(1, observed)), masks, request.seed);
   if (const std::string short_of = withhold_shortfall(report, request.withhold); !short_of.empty())
     md += "Note: " + short_of + "\n\n";
+  if (const std::string unlike = gaps_unlike_the_stacks(report); !unlike.empty()) md += "Note: " + unlike + "\n\n";
   if (qa)
     md += fmt::format("QA: `{}`{}, keep `{}`: {} values rejected before any was withheld (they count as "
                       "missing, as in a fill with the same rule).\n\n",

@@ -3,6 +3,7 @@
 // baselines computed in the same run.
 #pragma once
 
+#include <array>
 #include <cstdint>
 #include <map>
 #include <optional>
@@ -54,6 +55,8 @@ struct ValidateReport {
   int dates = 0, width = 0, height = 0, transplanted_masks = 0;
   std::vector<Score> scores;
   std::vector<std::pair<int, int>> series_pixels;  // column, row of the input grid, in OUT/series.csv
+  // Cells by the gap-length classes of the breakdown: the input's missing cells, the withheld.
+  std::array<std::int64_t, 5> own_gap_cells{}, withheld_gap_cells{};
 };
 
 /// Runs the validation and writes OUT/report.json, OUT/report.md and, for a few pixels with many
@@ -62,5 +65,9 @@ ValidateReport run_validate(const ValidateRequest& request);
 
 /// A note where fewer values were withheld than --withhold asked for (the masks ran out), or "".
 std::string withhold_shortfall(const ValidateReport& report, double asked);
+
+/// A note where the stack's own gaps are much longer than the withheld ones (at least a fifth of
+/// its missing cells in gaps of 49-365 days, and twice the withheld cells' share), or "".
+std::string gaps_unlike_the_stacks(const ValidateReport& report);
 
 }  // namespace kalends

@@ -466,5 +466,57 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertEqual(len(xs), shown)
         self.assertEqual(len(set(xs)), shown, xs)
 
+class ASeasonCloudyEveryYear(kt.TempDirTestCase):
+    def test_the_report_says_the_withheld_gaps_are_shorter_than_the_stacks(self):
+        # A rainy season hides almost every cell for ten weeks each year: its cells are the
+        # stack's missing ones, but a transplanted mask can withhold only observed cells, so
+        # nearly all withheld cells lie in the dry season's short gaps. The report had given the
+        # short gaps' scores without a word (invented stack, mechanics only). The gap classes
+        # of the input's missing cells are counted here with numpy.
+        import datetime as dt
+        folder = os.path.join(self.tmp, "rainy")
+        os.makedirs(folder)
+        rng = np.random.default_rng(6)
+        dates = [dt.date(y, 1, 1) + dt.timedelta(days=d) for y in (2031, 2032, 2033) for d in range(0, 365, 8)]
+        cube = np.empty((len(dates), 12, 12), np.float32)
+        for k, day in enumerate(dates):
+            doy = day.timetuple().tm_yday
+            v = (0.4 + 0.2 * np.sin(2 * np.pi * doy / 365) + 0.02 * rng.standard_normal((12, 12))).astype(np.float32)
+            cloudy = rng.random((12, 12)) < (0.97 if 90 <= doy <= 160 else 0.05)
+            v[cloudy] = np.nan
+            cube[k] = v
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % day.isoformat()), v,
+                            geotransform=(400000, 250, 0, 7200000, 0, -250), epsg=32606, nodata=float("nan"))
+        out = os.path.join(self.tmp, "rainy-validation")
+        done = kt.run_kalends(["validate", os.path.join(folder, "*.tif"), "--out", out, "--methods", "whittaker",
+                               "--seed", "3"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            report = json.load(f)
+        days = np.array([d.toordinal() for d in dates], float)
+        expected = [0] * 5
+        for r in range(12):
+            for c in range(12):
+                seen = np.nonzero(np.isfinite(cube[:, r, c]))[0]
+                for t in np.nonzero(~np.isfinite(cube[:, r, c]))[0]:
+                    before, after = seen[seen < t], seen[seen > t]
+                    if seen.size == 0:
+                        expected[4] += 1
+                    elif before.size == 0 or after.size == 0:
+                        expected[3] += 1
+                    else:
+                        g = days[after[0]] - days[before[-1]]
+                        expected[0 if g <= 48 else 1 if g <= 96 else 2 if g <= 365 else 3] += 1
+        cells = report["gap_length_cells"]
+        self.assertEqual(cells["missing_in_input"], expected)
+        self.assertEqual(sum(cells["withheld"]), report["withheld"])
+        long_share = (expected[1] + expected[2]) / sum(expected)
+        withheld_share = (cells["withheld"][1] + cells["withheld"][2]) / sum(cells["withheld"])
+        self.assertGreater(long_share, 2 * withheld_share)
+        self.assertIn("the stack's own gaps are longer than those withheld", done.stderr)
+        with open(os.path.join(out, "report.md")) as f:
+            self.assertIn("the stack's own gaps are longer than those withheld", f.read())
+
+
 if __name__ == "__main__":
     unittest.main()
