@@ -294,7 +294,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       const std::string& n = b.description;
       b.unit = n.ends_with("_doy")     ? "day of year"
                : n.ends_with("_days")  ? "days"
-               : n.ends_with("integral") ? (unit.empty() || unit == "1" ? "value-days" : unit + " days")
+               : n.ends_with("integral") ? (unit.empty() || unit == "1" || unit == "dimensionless" ? "value-days" : unit + " days")
                : n == "seasons"        ? ""
                                        : unit;
     }

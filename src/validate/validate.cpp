@@ -229,15 +229,17 @@ std::string withhold_shortfall(const ValidateReport& report, double asked) {
 }
 
 std::string gaps_unlike_the_stacks(const ValidateReport& report) {
+  // Of the cells in pixels observed at least once: a pixel never observed (sea, outside a
+  // boundary) has nothing to withhold, and its cells had hidden the note on a coast.
   const auto share_long = [](const std::array<std::int64_t, 5>& cells) {
-    std::int64_t all = 0;
-    for (std::int64_t n : cells) all += n;
+    const std::int64_t all = cells[0] + cells[1] + cells[2] + cells[3];
     return all > 0 ? double(cells[1] + cells[2]) / double(all) : 0.0;
   };
   const double own = share_long(report.own_gap_cells), withheld = share_long(report.withheld_gap_cells);
   // Common practice, no source: a difference of two to one in a share of a fifth or more.
   if (own < 0.2 || own < 2 * withheld) return "";
-  return fmt::format("the stack's own gaps are longer than those withheld: {:.0f} % of its missing cells lie in gaps "
+  return fmt::format("the stack's own gaps are longer than those withheld: {:.0f} % of its missing cells (in pixels "
+                     "observed at least once) lie in gaps "
                      "of 49-365 days, against {:.0f} % of the withheld cells (a transplanted mask can withhold only "
                      "what was observed, and a season cloudy every year has little); the scores describe shorter "
                      "gaps than most of the stack's, so read the rows by gap length",

@@ -67,7 +67,8 @@ ValidateReport run_validate(const ValidateRequest& request);
 std::string withhold_shortfall(const ValidateReport& report, double asked);
 
 /// A note where the stack's own gaps are much longer than the withheld ones (at least a fifth of
-/// its missing cells in gaps of 49-365 days, and twice the withheld cells' share), or "".
+/// its missing cells in pixels observed at least once lie in gaps of 49-365 days, and twice the
+/// withheld cells' share), or "".
 std::string gaps_unlike_the_stacks(const ValidateReport& report);
 
 }  // namespace kalends

@@ -468,13 +468,21 @@ class ValidateOptions(kt.TempDirTestCase):
 
 class ASeasonCloudyEveryYear(kt.TempDirTestCase):
     def test_the_report_says_the_withheld_gaps_are_shorter_than_the_stacks(self):
+        self.check_rainy_stack("rainy", sea_columns=0)
+
+    def test_pixels_never_observed_do_not_hide_the_note(self):
+        # Sea over most of the area: its cells are missing on every date but can never be
+        # withheld; counted among the stack's missing cells, they had kept the note silent.
+        self.check_rainy_stack("rainy-coast", sea_columns=8)
+
+    def check_rainy_stack(self, name, sea_columns):
         # A rainy season hides almost every cell for ten weeks each year: its cells are the
         # stack's missing ones, but a transplanted mask can withhold only observed cells, so
         # nearly all withheld cells lie in the dry season's short gaps. The report had given the
         # short gaps' scores without a word (invented stack, mechanics only). The gap classes
         # of the input's missing cells are counted here with numpy.
         import datetime as dt
-        folder = os.path.join(self.tmp, "rainy")
+        folder = os.path.join(self.tmp, name)
         os.makedirs(folder)
         rng = np.random.default_rng(6)
         dates = [dt.date(y, 1, 1) + dt.timedelta(days=d) for y in (2031, 2032, 2033) for d in range(0, 365, 8)]
@@ -484,10 +492,11 @@ class ASeasonCloudyEveryYear(kt.TempDirTestCase):
             v = (0.4 + 0.2 * np.sin(2 * np.pi * doy / 365) + 0.02 * rng.standard_normal((12, 12))).astype(np.float32)
             cloudy = rng.random((12, 12)) < (0.97 if 90 <= doy <= 160 else 0.05)
             v[cloudy] = np.nan
+            v[:, 12 - sea_columns:] = np.nan
             cube[k] = v
             kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % day.isoformat()), v,
                             geotransform=(400000, 250, 0, 7200000, 0, -250), epsg=32606, nodata=float("nan"))
-        out = os.path.join(self.tmp, "rainy-validation")
+        out = os.path.join(self.tmp, name + "-validation")
         done = kt.run_kalends(["validate", os.path.join(folder, "*.tif"), "--out", out, "--methods", "whittaker",
                                "--seed", "3"])
         self.assertEqual(done.returncode, 0, done.stderr)
@@ -510,7 +519,8 @@ class ASeasonCloudyEveryYear(kt.TempDirTestCase):
         cells = report["gap_length_cells"]
         self.assertEqual(cells["missing_in_input"], expected)
         self.assertEqual(sum(cells["withheld"]), report["withheld"])
-        long_share = (expected[1] + expected[2]) / sum(expected)
+        self.assertEqual(expected[4], 12 * sea_columns * len(dates))
+        long_share = (expected[1] + expected[2]) / sum(expected[:4])
         withheld_share = (cells["withheld"][1] + cells["withheld"][2]) / sum(cells["withheld"])
         self.assertGreater(long_share, 2 * withheld_share)
         self.assertIn("the stack's own gaps are longer than those withheld", done.stderr)

@@ -211,6 +211,37 @@ class MaskWithNodataAndFloatAlpha(kt.TempDirTestCase):
         check_fill_keeps(self, os.path.join(folder, "*.tif"), os.path.join(self.tmp, "out-float-alpha"), truth)
 
 
+class AlphaBandIsNoDate(kt.TempDirTestCase):
+    def test_an_alpha_band_beside_dated_bands_or_a_dated_name_is_their_mask(self):
+        # A multi-band file dated by band descriptions with an alpha band, and a file named
+        # with its date holding one value band and an alpha band: both had failed, "band 6: no
+        # date found" and "band 1: no date found", the alpha band taken for a date.
+        g = kt.gdal()
+        rng = np.random.default_rng(12)
+        values = rng.uniform(0.2, 0.8, (5, ROWS, COLS)).astype("float32")
+        alpha = np.where(rng.random((ROWS, COLS)) < 0.3, 0, 255).astype("float32")
+        dated = os.path.join(self.tmp, "bands.tif")
+        ds = create(dated, g.GDT_Float32, bands=6)
+        for k in range(5):
+            ds.GetRasterBand(k + 1).SetDescription(DAYS[k])
+            ds.GetRasterBand(k + 1).WriteArray(values[k])
+        ds.GetRasterBand(6).SetColorInterpretation(g.GCI_AlphaBand)
+        ds.GetRasterBand(6).WriteArray(alpha)
+        ds = None
+        report = inspect(dated)
+        self.assertEqual([d["date"][:10] for d in report["dates"]], DAYS[:5])
+        self.assertEqual([d["observed"] for d in report["dates"]], [int((alpha > 0).sum())] * 5)
+        named = os.path.join(self.tmp, "ndvi_%s.tif" % DAYS[0])
+        ds = create(named, g.GDT_Float32, bands=2)
+        ds.GetRasterBand(1).WriteArray(values[0])
+        ds.GetRasterBand(2).SetColorInterpretation(g.GCI_AlphaBand)
+        ds.GetRasterBand(2).WriteArray(alpha)
+        ds = None
+        report = inspect(named)
+        self.assertEqual([d["date"][:10] for d in report["dates"]], [DAYS[0]])
+        self.assertEqual(report["dates"][0]["observed"], int((alpha > 0).sum()))
+
+
 class SignedBytes(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
