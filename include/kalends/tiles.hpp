@@ -31,7 +31,9 @@ struct TileSet {
   /// tiles fit one grid (same CRS, pixel size, aligned pixels; overlaps only with equal values)
   /// and writes one VRT mosaic per date into `mosaic_dir`. InputError names the tile that does
   /// not fit.
-  static TileSet open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir);
+  /// Files in `exclude` (inputs left out as bad, --skip-bad) are left out.
+  static TileSet open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir,
+                      const std::vector<std::string>& exclude = {});
 };
 
 /// The tile name a path holds according to `tile_field`, or "" when it does not match.

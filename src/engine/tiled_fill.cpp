@@ -4,6 +4,7 @@
 
 #include <algorithm>
 #include <filesystem>
+#include <set>
 #include <tuple>
 
 #include <fmt/format.h>
@@ -51,10 +52,10 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
         fs::remove_all(path, ignored);
       }
     } remove{views};
-    const TileSet data = TileSet::open(request.input, tile_field, (views / "input").string());
+    const TileSet data = TileSet::open(request.input, tile_field, (views / "input").string(), request.rules.exclude);
     FillRequest r = request;
     r.input = data.pattern;
-    if (!request.qa_input.empty()) r.qa_input = TileSet::open(request.qa_input, tile_field, (views / "qa").string()).pattern;
+    if (!request.qa_input.empty()) r.qa_input = TileSet::open(request.qa_input, tile_field, (views / "qa").string(), request.rules.exclude).pattern;
     TiledFillSummary summary;
     const auto largest = std::max_element(data.tiles.begin(), data.tiles.end(), [](const Tile& a, const Tile& b) {
       return a.window.pixels() < b.window.pixels();
@@ -67,13 +68,30 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     return summary;
   }
   // The per-date mosaics of the inputs live beside the outputs, hidden: they are only a view.
-  const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string());
+  const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string(), request.rules.exclude);
   std::optional<TileSet> qa;
   if (!request.qa_input.empty()) {
-    qa = TileSet::open(request.qa_input, tile_field, (out / ".mosaic" / "qa").string());
+    qa = TileSet::open(request.qa_input, tile_field, (out / ".mosaic" / "qa").string(), request.rules.exclude);
     if (qa->mosaic.width != data.mosaic.width || qa->mosaic.height != data.mosaic.height ||
         qa->mosaic.geotransform != data.mosaic.geotransform)
       throw InputError(request.qa_input, "the QA tiles do not cover the same grid as the data tiles");
+    // Every date of a tile needs its QA partner in that tile. The QA mosaic of the date has no
+    // source there otherwise, and its cells had read as QA 0: kept by most rules, so a tile's
+    // clouds were filled in as observed values without a word.
+    for (const Tile& tile : data.tiles) {
+      const auto partner = std::find_if(qa->tiles.begin(), qa->tiles.end(),
+                                        [&](const Tile& t) { return t.window == tile.window; });
+      std::set<std::string> qa_dates;
+      if (partner != qa->tiles.end())
+        for (const std::string& f : partner->files)
+          if (const auto time = date_from_name(fs::path(detail::file_in_connection(f)).filename().string()))
+            qa_dates.insert(time->label());
+      for (const std::string& f : tile.files)
+        if (const auto time = date_from_name(fs::path(detail::file_in_connection(f)).filename().string());
+            time && !qa_dates.count(time->label()))
+          throw InputError(f, fmt::format("no QA layer for {} in tile {} (its QA files: '{}')", time->label(),
+                                          tile.name, request.qa_input));
+    }
   }
   // Tiles to fill: all, or those with new data and those whose halo reaches one of them.
   const int halo = make_fill_method(request.method)->halo();

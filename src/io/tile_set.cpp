@@ -220,7 +220,8 @@ std::string tile_name_in(const std::string& path, const std::string& tile_field)
   return m[1].str();
 }
 
-TileSet TileSet::open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir) {
+TileSet TileSet::open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir,
+                      const std::vector<std::string>& exclude) {
   detail::start_gdal();
   if (tile_field.find("{tile}") == std::string::npos)
     throw UsageError("--tiles '" + tile_field + "'", "needs a {tile} field, e.g. 'tiles/{tile}/'");
@@ -229,6 +230,7 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
   const std::vector<std::string> files = detail::expand_glob(connection ? connection->files : pattern);
   std::map<std::string, Tile> by_name;
   for (const std::string& path : files) {
+    if (std::find(exclude.begin(), exclude.end(), path) != exclude.end()) continue;  // left out as bad
     const std::string name = tile_name_in(path, tile_field);
     if (name.empty()) throw InputError(path, "does not match the tile pattern '" + tile_field + "'");
     // Each tile's outputs go to OUT/<tile>/, beside OUT/mosaic/ and the hidden OUT/.mosaic/.

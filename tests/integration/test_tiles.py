@@ -312,6 +312,41 @@ class TiledFill(kt.TempDirTestCase):
         status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
         self.assertRegex(status.stdout, r"tiled +fill +failed")
 
+    def test_a_tile_without_the_qa_file_of_one_date_is_refused_or_left_out(self):
+        # One tile lacks the QA file of one date, the other tiles have it. The date's QA mosaic
+        # then had no source over that tile, its cells read as QA 0 ("good" under this rule),
+        # and the tile's clouds were written as observed values, exit 0 and no word. The same
+        # tile filled alone is refused, naming the date: so is the tile set now, and in a job
+        # --skip-bad leaves the value file out (exit 3) as for any file without its partner.
+        import shutil
+        import subprocess
+        job_dir = os.path.join(self.tmp, "qa-gap")
+        tiles = os.path.join(job_dir, "tiles")
+        shutil.copytree(self.tiles, tiles)
+        held = sorted(glob.glob(os.path.join(tiles, "h00v00", "qa_*.tif")))[3]
+        os.remove(held)
+        value = os.path.join(tiles, "h00v00", os.path.basename(held).replace("qa_", "ndvi_"))
+        self.assertTrue(os.path.exists(value))
+        done = kt.run_kalends(["fill", os.path.join(tiles, "h*v*", "ndvi_*.tif"), "--qa",
+                               os.path.join(tiles, "h*v*", "qa_*.tif"), "--keep", "bits0-1 in 0,1",
+                               "--tiles", os.path.join(tiles, "{tile}", ""), "--out", os.path.join(job_dir, "direct")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn(value, done.stderr)
+        self.assertIn("no QA layer for", done.stderr)
+        job = os.path.join(job_dir, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
+                    'qa = "tiles/h*v*/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
+                    'tiles = "tiles/{tile}/"\n')
+        done = subprocess.run([kt.KALENDS_BIN, "run", job, "--skip-bad"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+        self.assertIn("skipped input: " + value, done.stdout)
+        # The other tiles have the date, so the tile's cells on it are filled as gaps (flag 2),
+        # none taken as observed.
+        written = kt.read_output(os.path.join(job_dir, "out", "fill", "h00v00", os.path.basename(value)))
+        self.assertFalse((written["flag"] == 0).any())
+
     def test_in_a_job_only_the_changed_tile_is_refilled(self):
         # A tile whose files changed is refilled alone (Whittaker: no halo); equal to scratch.
         import shutil
