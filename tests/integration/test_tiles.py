@@ -58,6 +58,12 @@ def tile_values(out_dir, tile, mosaic_window):
     return np.stack(tiled), np.stack(whole)
 
 
+# A job filling the tile set in tiles/ with its QA tiles (Whittaker, no halo).
+TILED_JOB = ('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
+             'qa = "tiles/h*v*/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n\n'
+             '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\ntiles = "tiles/{tile}/"\n')
+
+
 class TiledFill(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
@@ -335,10 +341,7 @@ class TiledFill(kt.TempDirTestCase):
         self.assertIn("no QA layer for", done.stderr)
         job = os.path.join(job_dir, "job.toml")
         with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
-                    'qa = "tiles/h*v*/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
-                    'tiles = "tiles/{tile}/"\n')
+            f.write(TILED_JOB)
         done = subprocess.run([kt.KALENDS_BIN, "run", job, "--skip-bad"], capture_output=True, text=True)
         self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
         self.assertIn("skipped input: " + value, done.stdout)
@@ -356,10 +359,7 @@ class TiledFill(kt.TempDirTestCase):
         shutil.copytree(self.tiles, tiles)
         job = os.path.join(job_dir, "job.toml")
         with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n\n[inputs.ndvi]\nstack = "tiles/h*v*/ndvi_*.tif"\n'
-                    'qa = "tiles/h*v*/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
-                    'tiles = "tiles/{tile}/"\n')
+            f.write(TILED_JOB)
         run = lambda *a: subprocess.run([kt.KALENDS_BIN, "run", job] + list(a), capture_output=True, text=True)
         done = run()
         self.assertEqual(done.returncode, 0, done.stderr)
