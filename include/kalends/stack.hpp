@@ -127,8 +127,9 @@ double date_median(const Stack& stack, std::size_t index, int side);
 std::vector<std::size_t> partners_by_date(const Stack& base, const Stack& other, const std::string& what);
 
 /// Whether the partner that `reason` (partners_by_date's error) found missing has come since: a
-/// file of its pattern whose name holds the date. A run that left the file out as bad reads it
-/// again then, although the file itself is unchanged.
+/// file of its pattern whose name holds the date, or, where no name holds a date, a band of the
+/// partner stack dated so. A run that left the file out as bad reads it again then, although the
+/// file itself is unchanged.
 bool partner_now_present(const std::string& reason);
 
 /// "scale_factor=10000, add_offset=0" where the stack's first file states a scaling in its
