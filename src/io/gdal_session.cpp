@@ -193,9 +193,10 @@ GDALRasterBand* own_mask_of(GDALRasterBand& band) {
 
 bool has_own_mask(GDALRasterBand& band) { return own_mask_of(band) != nullptr; }
 
-bool own_mask_is_alpha(GDALRasterBand& band) {
-  return (band.GetMaskFlags() & GMF_ALPHA) || ((band.GetMaskFlags() & (GMF_ALL_VALID | GMF_NODATA)) &&
-                                               alpha_band_beside(band) != nullptr);
+std::string own_mask_name(GDALRasterBand& band) {
+  GDALRasterBand* mask = own_mask_of(band);
+  if (mask == nullptr) return "";
+  return (band.GetMaskFlags() & GMF_ALPHA) || mask->GetColorInterpretation() == GCI_AlphaBand ? "alpha band" : "mask";
 }
 
 namespace {

@@ -60,8 +60,8 @@ bool holds_signed_bytes(GDALRasterBand& band);
 /// sidecar mask (.msk), a mask of its own, or an alpha band (also beside Float32 and Int16
 /// bands, which GDAL leaves unmasked). Cells it marks 0 hold no value.
 bool has_own_mask(GDALRasterBand& band);
-/// Whether that mask is an alpha band.
-bool own_mask_is_alpha(GDALRasterBand& band);
+/// That mask as a user reads it: "alpha band" or "mask"; "" where the band has none.
+std::string own_mask_name(GDALRasterBand& band);
 
 /// Reads a window of `band` as stored values into `out` (`type` GDT_Float32 or GDT_Float64),
 /// with what RasterIO into a float buffer leaves out: signed bytes read as signed, and the

@@ -213,7 +213,7 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   else if (has)
     layer.nodata = nodata;
   if (const char* unit = band->GetUnitType()) layer.unit = unit;
-  if (detail::has_own_mask(*band)) layer.own_mask = detail::own_mask_is_alpha(*band) ? "alpha band" : "mask";
+  layer.own_mask = detail::own_mask_name(*band);
   return layer;
 }
 
@@ -425,7 +425,7 @@ double date_median(const Stack& stack, std::size_t index, int side) {
 constexpr std::string_view partner_for = " layer for ", partner_in = " in '";
 
 bool partner_now_present(const std::string& reason) {
-  if (reason.rfind("no ", 0) != 0 || reason.empty() || reason.back() != '\'') return false;
+  if (reason.rfind("no ", 0) != 0 || reason.back() != '\'') return false;
   const auto for_at = reason.find(partner_for);
   const auto in_at = for_at == std::string::npos ? std::string::npos : reason.find(partner_in, for_at);
   if (in_at == std::string::npos) return false;
