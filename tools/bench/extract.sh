@@ -37,49 +37,14 @@ if [ ! -f "$stack/synth.json" ]; then
 fi
 [ -d "$layers/fill" ] || "$kalends" -q fill "$stack/*.tif" --out "$layers/fill" --every 1M --threads 2
 table=$workdir/points-$points.csv sorted=$workdir/points-$points-by-date.csv
-"$py" - "$stack" "$points" "$table" "$sorted" <<'PY'
-import csv, datetime, glob, sys
-import numpy as np
-from osgeo import gdal, osr
-stack, count, table, sorted_table = sys.argv[1], int(sys.argv[2]), sys.argv[3], sys.argv[4]
-files = sorted(glob.glob(stack + "/*.tif"))
-ds = gdal.Open(files[0])
-gt = ds.GetGeoTransform()
-layer = osr.SpatialReference(wkt=ds.GetProjection())
-layer.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
-wgs84 = osr.SpatialReference()
-wgs84.ImportFromEPSG(4326)
-wgs84.SetAxisMappingStrategy(osr.OAMS_TRADITIONAL_GIS_ORDER)
-to_wgs84 = osr.CoordinateTransformation(layer, wgs84)
-rng = np.random.default_rng(11)
-cols = rng.uniform(0, ds.RasterXSize, count)
-rows = rng.uniform(0, ds.RasterYSize, count)
-xy = np.c_[gt[0] + cols * gt[1], gt[3] + rows * gt[5]]
-lonlat = np.array(to_wgs84.TransformPoints(xy))
-first = datetime.date(2019, 2, 1)
-days = rng.integers(0, (datetime.date(2019 + 0, 12, 31) - first).days + 365 * 2, count)
-out = [("hh%06d" % i, "%.7f" % lonlat[i, 0], "%.7f" % lonlat[i, 1], (first + datetime.timedelta(int(days[i]))).isoformat())
-       for i in range(count)]
-for path, rows_out in ((table, out), (sorted_table, sorted(out, key=lambda r: r[3]))):
-    with open(path, "w", newline="") as f:
-        w = csv.writer(f)
-        w.writerow(["id", "longitude", "latitude", "date"])
-        w.writerows(rows_out)
-PY
+"$py" "$root/tools/synth_surveys.py" --grid "$stack/*.tif" --out "$table" --count "$points" --seed 11 \
+  --uniform 2019-02-01,2021-12-30 > /dev/null
+{ head -n 1 "$table"; tail -n +2 "$table" | sort -t, -k4,4 -s; } > "$sorted"
 extra=()
 [ "$buffer" != 0 ] && extra=(--buffer "$buffer")
 runs=$workdir/runs.tsv
 : > "$runs"
-timed() {
-  local name=$1; shift
-  local t0 t1
-  rm -f "$workdir/table.csv"
-  t0=$(date +%s.%N)
-  /usr/bin/time -v -o "$workdir/$name.time" "$@" > "$workdir/$name.out" 2>&1
-  t1=$(date +%s.%N)
-  printf '%s\t%s\t%s\n' "$name" "$(awk -v a="$t0" -v b="$t1" 'BEGIN {printf "%.3f", b - a}')" \
-    "$(awk -F': ' '/Maximum resident set size/ {print $2}' "$workdir/$name.time")" >> "$runs"
-}
+source "$root/tools/bench/timed.sh"
 for r in $(seq 1 "$repeats"); do
   timed floor "$py" "$root/tools/bench/extract_floor.py" "$layers/fill" "$table"
   timed kalends "$kalends" -q extract "$layers/fill" --points "$table" --out "$workdir/table.csv" "${extra[@]}"

@@ -28,15 +28,7 @@ if [ ! -f "$stack/synth.json" ]; then
 fi
 runs=$workdir/runs.tsv
 : > "$runs"
-timed() {
-  local name=$1; shift
-  local t0 t1
-  t0=$(date +%s.%N)
-  /usr/bin/time -v -o "$workdir/$name.time" "$@" > "$workdir/$name.out" 2>&1
-  t1=$(date +%s.%N)
-  printf '%s\t%s\t%s\n' "${name%.r*}" "$(awk -v a="$t0" -v b="$t1" 'BEGIN {printf "%.3f", b - a}')" \
-    "$(awk -F': ' '/Maximum resident set size/ {print $2}' "$workdir/$name.time")" >> "$runs"
-}
+source "$root/tools/bench/timed.sh"
 for r in $(seq 1 "$repeats"); do
   echo "bench: repeat $r/$repeats" >&2
   rm -rf "$workdir/out-kalends"
