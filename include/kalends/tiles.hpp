@@ -39,6 +39,16 @@ struct TileSet {
 /// The tile name a path holds according to `tile_field`, or "" when it does not match.
 std::string tile_name_in(const std::string& path, const std::string& tile_field);
 
+/// Why a tile's value file of date `label` is refused: no QA file of that date in the tile.
+/// The reason names the QA pattern and the tile field, so that tile_partner_now_present can
+/// look for the partner again on a later night.
+std::string no_tile_partner(const std::string& label, const std::string& tile, const std::string& qa_pattern,
+                            const std::string& tile_field);
+
+/// For a reason made by no_tile_partner: whether the QA pattern now matches a file of that date
+/// in that tile. False for any other reason.
+bool tile_partner_now_present(const std::string& reason);
+
 struct TiledFillSummary {
   std::vector<FillSummary> tiles;  // one per tile, in the tile set's order
   int tiles_skipped = 0;           // left as they were: nothing they depend on changed

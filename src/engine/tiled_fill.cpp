@@ -89,8 +89,7 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
       for (const std::string& f : tile.files)
         if (const auto time = date_from_name(fs::path(detail::file_in_connection(f)).filename().string());
             time && !qa_dates.count(time->label()))
-          throw InputError(f, fmt::format("no QA layer for {} in tile {} (its QA files: '{}')", time->label(),
-                                          tile.name, request.qa_input));
+          throw InputError(f, no_tile_partner(time->label(), tile.name, request.qa_input, tile_field));
     }
   }
   // Tiles to fill: all, or those with new data and those whose halo reaches one of them.

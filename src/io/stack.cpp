@@ -18,6 +18,7 @@
 #include "io/gdal_session.hpp"
 #include "io/majority.hpp"
 #include "kalends/error.hpp"
+#include "kalends/tiles.hpp"
 
 namespace kalends {
 
@@ -425,6 +426,7 @@ double date_median(const Stack& stack, std::size_t index, int side) {
 constexpr std::string_view partner_for = " layer for ", partner_in = " in '";
 
 bool partner_now_present(const std::string& reason) {
+  if (tile_partner_now_present(reason)) return true;
   if (reason.rfind("no ", 0) != 0 || reason.back() != '\'') return false;
   const auto for_at = reason.find(partner_for);
   const auto in_at = for_at == std::string::npos ? std::string::npos : reason.find(partner_in, for_at);

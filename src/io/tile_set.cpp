@@ -220,6 +220,42 @@ std::string tile_name_in(const std::string& path, const std::string& tile_field)
   return m[1].str();
 }
 
+// "no QA layer for 2031-03-22 in tile h00v00 (its QA files: 'tiles/*/qa_*.tif', tiles 'tiles/{tile}/')"
+constexpr std::string_view tile_reason_start = "no QA layer for ", tile_reason_tile = " in tile ",
+                           tile_reason_pattern = " (its QA files: '", tile_reason_field = "', tiles '",
+                           tile_reason_end = "')";
+
+std::string no_tile_partner(const std::string& label, const std::string& tile, const std::string& qa_pattern,
+                            const std::string& tile_field) {
+  return fmt::format("{}{}{}{}{}{}{}{}{}", tile_reason_start, label, tile_reason_tile, tile, tile_reason_pattern,
+                     qa_pattern, tile_reason_field, tile_field, tile_reason_end);
+}
+
+bool tile_partner_now_present(const std::string& reason) {
+  if (reason.rfind(tile_reason_start, 0) != 0 || !reason.ends_with(tile_reason_end)) return false;
+  const auto tile_at = reason.find(tile_reason_tile);
+  const auto pattern_at = tile_at == std::string::npos ? tile_at : reason.find(tile_reason_pattern, tile_at);
+  const auto field_at = pattern_at == std::string::npos ? pattern_at : reason.rfind(tile_reason_field);
+  if (field_at == std::string::npos || field_at < pattern_at) return false;
+  const std::string label = reason.substr(tile_reason_start.size(), tile_at - tile_reason_start.size());
+  const std::string tile =
+      reason.substr(tile_at + tile_reason_tile.size(), pattern_at - tile_at - tile_reason_tile.size());
+  const std::string pattern =
+      reason.substr(pattern_at + tile_reason_pattern.size(), field_at - pattern_at - tile_reason_pattern.size());
+  const std::string field = reason.substr(field_at + tile_reason_field.size(),
+                                          reason.size() - tile_reason_end.size() - field_at - tile_reason_field.size());
+  try {
+    const auto connection = detail::connection_pattern(pattern);
+    for (const std::string& file : detail::expand_glob(connection ? connection->files : pattern)) {
+      const auto time = date_from_name(fs::path(file).filename().string());
+      if (time && time->label() == label && tile_name_in(file, field) == tile) return true;
+    }
+  } catch (const Error&) {
+    // The pattern matches nothing now: still missing.
+  }
+  return false;
+}
+
 TileSet TileSet::open(const std::string& pattern, const std::string& tile_field, const std::string& mosaic_dir,
                       const std::vector<std::string>& exclude) {
   detail::start_gdal();

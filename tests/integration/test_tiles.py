@@ -349,6 +349,17 @@ class TiledFill(kt.TempDirTestCase):
         # none taken as observed.
         written = kt.read_output(os.path.join(job_dir, "out", "fill", "h00v00", os.path.basename(value)))
         self.assertFalse((written["flag"] == 0).any())
+        # Still missing the next night: left out again. Then the QA file comes and the value
+        # file is read (it had stayed out every night after, the tiled reason not being one the
+        # runner looked for the partner of).
+        done = subprocess.run([kt.KALENDS_BIN, "run", job, "--skip-bad"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
+        shutil.copy(os.path.join(self.tiles, "h00v00", os.path.basename(held)), held)
+        done = subprocess.run([kt.KALENDS_BIN, "run", job, "--skip-bad"], capture_output=True, text=True)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertNotIn("skipped input", done.stdout)
+        written = kt.read_output(os.path.join(job_dir, "out", "fill", "h00v00", os.path.basename(value)))
+        self.assertTrue((written["flag"] == 0).any())
 
     def test_in_a_job_only_the_changed_tile_is_refilled(self):
         # A tile whose files changed is refilled alone (Whittaker: no halo); equal to scratch.
