@@ -62,6 +62,8 @@ std::string join_parameters(const MethodParameters& parameters) {
 std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
   // Options every method shares; each method checks its own.
   if (!(options.max_gap_days >= 0)) throw UsageError("--max-gap", "must be 0 (no limit) or a number of days");
+  if (!(options.max_extrapolation_days >= 0 || options.max_extrapolation_days == -1))
+    throw UsageError("--max-extrapolation", "must be -1 (no limit) or a number of days");
   if (!(options.reach_days >= 0)) throw UsageError("--reach", "must be 0 (the whole series at once) or a number of days");
   for (const Entry& entry : registry)
     if (options.method == entry.name) return entry.make(options);

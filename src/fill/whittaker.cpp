@@ -24,6 +24,7 @@ std::string number(double v) {
 
 // An observation whose final robustness weight is below this is reported as rejected.
 constexpr double rejection_weight = 0.5;
+constexpr double largest_lambda = 1e10;  // the messages below say so
 
 }  // namespace
 
@@ -43,10 +44,14 @@ double WhittakerMethod::noise_for_sd(const SeriesFit& fit, std::span<const float
 WhittakerMethod::WhittakerMethod(const MethodOptions& options) : options_(options) {
   if (options.order < 1 || options.order > 3)
     throw UsageError("--order", "difference order must be 1, 2 or 3");
-  if (options.lambda && !(*options.lambda > 0))
-    throw UsageError("--lambda", "must be positive or 'auto'");
-  if (!(options.lambda_min > 0) || !(options.lambda_max >= options.lambda_min))
-    throw UsageError("--lambda-range", "needs 0 < min <= max");
+  // Above about 1e10 the penalised system loses more than 1e-5 of the weights' scale to
+  // rounding in double precision (eps * lambda * |D'D|, |D'D| <= 4^order): a lambda of 1e16 had
+  // crashed and one of 1e25 filled every gap with about 0.
+  if (options.lambda && !(*options.lambda > 0 && *options.lambda <= largest_lambda))
+    throw UsageError("--lambda", "must be positive and at most 1e10, or 'auto'");
+  if (!(options.lambda_min > 0) || !(options.lambda_max >= options.lambda_min) ||
+      !(options.lambda_max <= largest_lambda))
+    throw UsageError("--lambda-range", "needs 0 < min <= max <= 1e10");
   if (options.iterations < 0 || options.iterations > 50)
     throw UsageError("--iterations", "must be 0..50");
 }
@@ -101,7 +106,9 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
   std::copy(ws.base_weight.begin(), ws.base_weight.end(), ws.weight.begin());
 
   // One penalised solve with the current weights; returns GCV, leaves z and the inverse band.
+  bool factored = false;
   auto solve = [&](double lambda) {
+    factored = false;
     for (int k = 0; k <= B; ++k)
       for (int i = 0; i < n; ++i) ws.system.at(k, i) = lambda * ws.penalty.at(k, i);
     for (int i = 0; i < n; ++i) {
@@ -109,6 +116,7 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
       ws.rhs[i] = ws.weight[i] > 0 ? ws.weight[i] * double(y[i]) : 0.0;
     }
     if (!detail::factorize_ldlt<B>(ws.system)) return std::numeric_limits<double>::infinity();
+    factored = true;
     std::copy(ws.rhs.begin(), ws.rhs.end(), ws.z.begin());
     detail::solve_ldlt<B>(ws.system, ws.z);
     detail::band_of_inverse<B>(ws.system, ws.inverse);
@@ -147,7 +155,15 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
     }
     lambda = std::pow(10.0, best_log);
   }
+  // Not positive definite in double precision: no curve rather than garbage.
+  auto singular = [&] {
+    std::fill(fitted.begin(), fitted.end(), NAN);
+    std::fill(sd.begin(), sd.end(), NAN);
+    fit.singular = true;
+    return fit;
+  };
   solve(lambda);
+  if (!factored) return singular();
 
   const bool reweight = options_.robust || options_.envelope_upper;
   if (reweight) {
@@ -174,6 +190,7 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
       }
       solve(lambda);
     }
+    if (!factored) return singular();
     for (int i = 0; i < n; ++i)
       rejected[i] = ws.observed[i] > 0 && ws.robust[i] < rejection_weight ? 1 : 0;
   }
@@ -211,7 +228,8 @@ void WhittakerMethod::fill(const BlockInput& in, BlockOutput& out) const {
     const auto [fitted, sd, rejected] = out.series(core_pixel, n);
     const SeriesFit f =
         smooth(in.series(read_pixel), in.series_weights(read_pixel), fitted, sd, rejected, ws);
-    if (!f.fitted && f.observations > 0) ++out.not_fitted[too_few];
+    if (f.singular) ++out.not_fitted["the smoothing system is singular in double precision"];
+    else if (!f.fitted && f.observations > 0) ++out.not_fitted[too_few];
     detail::limit_gaps(*in.grid, in.series_weights(read_pixel), rejected,
                        options_.max_gap_days, options_.max_extrapolation_days, fitted, sd);
   }

@@ -48,6 +48,7 @@ class WhittakerMethod final : public FillMethod {
     double lambda = 0, trace = 0, gcv = 0, sigma = 0;
     int observations = 0;
     bool fitted = false;
+    bool singular = false;  // enough observations, but the system did not factorise
   };
   /// Smooths one series (NaN or zero weight = missing). `fitted`, `sd`, `rejected` have the
   /// series' length.

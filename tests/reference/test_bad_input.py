@@ -556,7 +556,16 @@ class BadInput(kt.TempDirTestCase):
                   "applies to the whittaker and harmonic methods only"),
                  (["--method", "spacetime", "--max-extrapolation", "0"], "--max-extrapolation",
                   "applies to the whittaker and harmonic methods only"),
-                 (["--memory", "1K"], "--memory", "below 1 MiB")]
+                 (["--memory", "1K"], "--memory", "below 1 MiB"),
+                 # A lambda of 1e16 or inf had crashed, 1e25 filled every gap with about 0, and
+                 # an infinite range searched for ever.
+                 (["--lambda", "1e16"], "--lambda", "at most 1e10"),
+                 (["--lambda", "inf"], "--lambda", "at most 1e10"),
+                 (["--lambda-range", "1,inf"], "--lambda-range", "<= 1e10"),
+                 (["--lambda-range", "1e20,1e30"], "--lambda-range", "<= 1e10"),
+                 # NaN and -2 had been taken as no limit.
+                 (["--max-extrapolation", "nan"], "--max-extrapolation", "-1 (no limit)"),
+                 (["--max-extrapolation", "-2"], "--max-extrapolation", "-1 (no limit)")]
         for extra, name, keyword in cases:
             with self.subTest(option=name):
                 self.check_fails([stack] + extra, [name], [keyword], name)
