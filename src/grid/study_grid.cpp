@@ -376,8 +376,10 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
 
   // INIT_DEST: cells no source cell reaches are nodata, not the 0 a new MEM raster holds (an
   // extent beside the data had come out as a field of zeros).
+  // -ovr NONE: by default a warp to coarser cells reads the source's overviews, and those
+  // built by nearest neighbour (gdaladdo's default) are a thinned sample, not the cells to average.
   std::vector<std::string> common{"-of", "MEM", "-t_srs", request.crs, "-ot", "Float32", "-dstnodata", "nan",
-                                  "-wo", "INIT_DEST=NO_DATA"};
+                                  "-wo", "INIT_DEST=NO_DATA", "-ovr", "NONE"};
   if (request.resolution) {
     const std::string r = fmt::format("{:.17g}", *request.resolution);
     common.insert(common.end(), {"-tr", r, r});

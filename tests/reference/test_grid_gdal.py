@@ -62,6 +62,31 @@ def write_study_area(path, epsg, ring):
 
 
 class GridAgainstGdalWarp(kt.TempDirTestCase):
+    def test_a_layer_with_overviews_is_averaged_from_its_own_cells(self):
+        # A downloaded COG, or a kalends output gridded again, has overviews; built by nearest
+        # neighbour (gdaladdo's default) they are a thinned sample. The warp had read them for a
+        # coarser grid: the "average" of 4 x 4 cells was one cell of the 1/4 overview (up to
+        # 0.45 off here). Checked against numpy block means. Invented data.
+        g = kt.gdal()
+        rng = np.random.default_rng(11)
+        values = rng.uniform(0.0, 0.9, size=(64, 64)).astype(np.float32)
+        path = os.path.join(self.tmp, "overviews", "layer.tif")
+        os.makedirs(os.path.dirname(path))
+        kt.write_raster(path, values, geotransform=(500000.0, 30.0, 0, 9000000.0, 0, -30.0), epsg=32736,
+                        nodata=float("nan"), description="value")
+        ds = g.Open(path, g.GA_Update)
+        ds.BuildOverviews("NEAREST", [2, 4])
+        ds = None
+        for resample, reduce in (("average", np.mean), ("max", np.max)):
+            out = os.path.join(self.tmp, "overviews", resample)
+            run_grid_ok(self, [path, "--out", out, "--crs", "EPSG:32736", "--resolution", "120",
+                               "--extent", "500000,8998080,501920,9000000", "--resample", resample])
+            written = g.Open(os.path.join(out, "layer.tif"))
+            mine = written.GetRasterBand(1).ReadAsArray()
+            expected = reduce(values.reshape(16, 4, 16, 4), axis=(1, 3))
+            np.testing.assert_allclose(mine, expected, rtol=1e-6, err_msg=resample)
+
+
     def test_landsat_to_geographic_equals_gdal_warp(self):
         g = kt.gdal()
         source = kt.shared_path("landsat7-bands", "L7_ETMs.tif")
@@ -71,9 +96,11 @@ class GridAgainstGdalWarp(kt.TempDirTestCase):
         run_grid_ok(self, [source, "--out", out, "--crs", "EPSG:4326", "--resolution", str(resolution),
                            "--extent", ",".join(str(v) for v in extent)])
         mine = g.Open(os.path.join(out, "L7_ETMs.tif"))
+        # overviewLevel NONE (gdalwarp -ovr NONE): the scene has overviews, and a warp that reads
+        # them averages their cells, not the scene's (kalends did before version 0.3.21).
         ref = g.Warp("", source, format="MEM", dstSRS="EPSG:4326", xRes=resolution, yRes=resolution,
                      outputBounds=extent, resampleAlg="average", outputType=g.GDT_Float32,
-                     dstNodata=float("nan"))
+                     dstNodata=float("nan"), overviewLevel="NONE")
         self.assertEqual((mine.RasterXSize, mine.RasterYSize, mine.RasterCount),
                          (ref.RasterXSize, ref.RasterYSize, ref.RasterCount))
         np.testing.assert_allclose(mine.GetGeoTransform(), ref.GetGeoTransform(), rtol=0, atol=1e-12)
