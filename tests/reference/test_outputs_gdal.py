@@ -610,6 +610,29 @@ class UnderAMemoryLimit(kt.TempDirTestCase):
         print("\n  limits 150-600 MiB: %(ok)d runs succeeded, %(refused)d refused" % outcomes)
         self.assertGreater(outcomes["ok"], 0)
 
+    def test_a_zstd_fill_keeps_within_its_budget(self):
+        # GDAL's default ZSTD level held a compressor of about 12 MiB per output file, and a fill
+        # writes every date's file at once: 46 dates had peaked at several times --memory. The
+        # limit is the documented peak <= --memory + 15 % (docs/performance.md). Invented data.
+        import subprocess
+        stack = os.path.join(self.tmp, "zstd-ndvi")
+        kt.make_synthetic_stack(stack, 60, 60, years=2)
+        dates = len(glob.glob(os.path.join(stack, "ndvi_*.tif")))
+        self.assertGreaterEqual(dates, 40)
+        # The child's peak resident size, measured by a Python of its own (RUSAGE_CHILDREN
+        # holds the largest of all the children a process waited for).
+        measure = ("import resource, subprocess, sys; done = subprocess.run(sys.argv[1:]); "
+                   "print(done.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)")
+        for compression in ("deflate", "zstd"):
+            out = os.path.join(self.tmp, "zstd-out-" + compression)
+            done = subprocess.run([sys.executable, "-c", measure, kt.KALENDS_BIN, "-q", "fill",
+                                   os.path.join(stack, "ndvi_*.tif"), "--out", out, "--lambda", "100",
+                                   "--memory", "150M", "--threads", "1", "--compress", compression],
+                                  capture_output=True, text=True, timeout=300)
+            code, peak_kib = (int(v) for v in done.stdout.split())
+            self.assertEqual(code, 0, done.stderr)
+            self.assertLessEqual(peak_kib / 1024, 150 * 1.15, compression)
+
     def test_good_inputs_are_not_called_damaged_when_memory_runs_short(self):
         # libtiff reports a failed allocation as "GeoTIFF tags apparently corrupt": intact fill
         # outputs had been called damaged input (exit 2, "an incomplete download or copy?"),
