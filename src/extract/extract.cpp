@@ -15,6 +15,7 @@
 //             (MODIS) away from its central meridian; a sphere is off by up to about 0.6 %. A
 //             CRS with no geographic CRS (a local engineering one): distance on the grid.
 #include <fmt/format.h>
+#include <cpl_conv.h>
 #include <fnmatch.h>
 #include <geodesic.h>
 #include <ogr_spatialref.h>
@@ -575,6 +576,11 @@ ExtractResult run_extract(const ExtractRequest& request) {
     if (!folder.empty() && !std::filesystem::is_directory(folder, ec))
       throw UsageError("--out '" + request.out + "'", "the folder '" + folder.string() + "' does not exist");
   }
+  // Reads go file by file in batches, so a small block cache does: GDAL's default (5 % of the
+  // machine's memory) had made 2 000 points take 564 MiB, against 121 MiB at 32 MiB and the
+  // same table. A GDAL_CACHEMAX the user set is kept.
+  detail::start_gdal();
+  if (!CPLGetConfigOption("GDAL_CACHEMAX", nullptr)) detail::set_gdal_cache(std::int64_t(64) << 20);
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.notes = r.points.notes;

@@ -528,7 +528,9 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--buffer", "nan"], "--buffer: the radius must be positive"),
                                 # PROJ alone reads this as EPSG:4326: a slip would go unseen.
                                 (["--crs", "EPSG:4326x"], "--crs 'EPSG:4326x': not a CRS PROJ knows"),
-                                (["--out", self.tmp], "is a folder; give the table's file name")):
+                                (["--out", self.tmp], "is a folder; give the table's file name"),
+                                # An empty name had run, written nothing and exited 0.
+                                (["--out", ""], "--out: needs the table's file name")):
             command = base + extra
             if extra[0] == "--out":  # the folder replaces the table's name
                 command = [a for i, a in enumerate(base) if a != "--out" and (i == 0 or base[i - 1] != "--out")] + extra
