@@ -18,6 +18,7 @@
 #include <toml++/toml.h>
 
 #include <algorithm>
+#include <filesystem>
 #include <cmath>
 #include <utility>
 
@@ -184,6 +185,11 @@ void check_range(const std::string& path, const ThermalParameter& entry,
 }  // namespace
 
 void ThermalParameters::override_from_file(const std::string& path) {
+  // A folder had read as an empty table: the published values were used without a word.
+  std::error_code ec;
+  if (std::filesystem::is_directory(path, ec))
+    throw InputError(path, "is a folder; give the TOML parameter file");
+  if (!std::filesystem::exists(path, ec)) throw InputError(path, "does not exist");
   toml::table file;
   try {
     file = toml::parse_file(path);
@@ -191,6 +197,8 @@ void ThermalParameters::override_from_file(const std::string& path) {
     throw InputError(path, fmt::format("not a readable TOML parameter file: {} (line {})",
                                        std::string(e.description()), e.source().begin.line));
   }
+  if (file.empty())
+    throw InputError(path, "holds no parameters; leave the parameter file out to use the published values");
   std::vector<ThermalParameter> updated = entries_;
   for (auto&& [section_name, node] : file) {
     const std::string section(section_name.str());

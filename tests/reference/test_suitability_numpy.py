@@ -261,6 +261,21 @@ class BadInput(kt.TempDirTestCase):
     def test_bad_parameter_file(self):
         self.assertIn("biting_rate", self.run_with_parameters("bad.toml", "[r0-2013]\nbiting_rate = [1, 2]\n"))
 
+    def test_an_empty_missing_or_folder_parameter_file_is_refused(self):
+        # A folder had read as an empty table and an empty file had been taken: the published
+        # values were used, exit 0, without a word. Diurnal reads the same files.
+        self.assertIn("holds no parameters", self.run_with_parameters("empty.toml", ""))
+        folder = os.path.join(self.tmp, "params-folder")
+        make_stack(folder, np.random.default_rng(1))
+        inputs = ["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"]
+        self.assertIn("is a folder", self.run_bad(inputs + ["--parameters", folder], folder))
+        missing = os.path.join(self.tmp, "nothing.toml")
+        self.assertIn("does not exist", self.run_bad(inputs + ["--parameters", missing], missing))
+        done = kt.run_kalends(["diurnal"] + inputs + ["--parameters", folder, "--out",
+                                                      os.path.join(self.tmp, "diurnal-folder")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("is a folder", done.stderr)
+
     def test_parameters_that_leave_the_model_at_zero_name_their_file(self):
         # A Briere c of 0 for the biting rate (Mordecai et al. 2013's form) makes R0 = 0 at
         # every temperature: the error had named the model alone, not the file that did it.
