@@ -127,7 +127,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (std::size_t i = 0; i < report.skipped_inputs.size(); ++i)
         fmt::print("{}\"{}\"", i ? ", " : "", detail::json_escape(report.skipped_inputs[i]));
       fmt::print("], \"error\": \"{}\"}}\n", detail::json_escape(report.error));
-    } else if (!global.quiet || report.exit_code != 0) {
+    } else if (!global.quiet) {
       int ran = 0;
       for (const StepReport& r : report.steps) ran += r.action == StepReport::Action::ran;
       const bool nothing = ran == 0 && report.exit_code == 0 && !o->run.dry_run;
@@ -160,11 +160,16 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("  {:.1f} s, peak memory {:.0f} MiB\n", report.seconds, report.peak_memory_bytes / 1048576.0);
       if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
     } else {
-      // Quiet still shows each caution once, as `kalends suitability -q` does: the outputs could
-      // be misread without it.
+      // Quiet: on stderr the notes on the data, each caution once (as `kalends suitability -q`
+      // shows it: the outputs could be misread without it), the inputs left out and the error;
+      // no summary, whatever the exit code (a failed or partial run had printed it all).
       std::set<std::string> shown;
-      for (const StepReport& r : report.steps)
+      for (const StepReport& r : report.steps) {
+        for (const std::string& note : r.notes) fmt::print(stderr, "note: {}: {}\n", r.id, note);
         if (!r.caution.empty() && shown.insert(r.caution).second) fmt::print(stderr, "{}\n", r.caution);
+      }
+      for (const std::string& s : report.skipped_inputs) fmt::print(stderr, "skipped input: {}\n", s);
+      if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
     }
     global.exit_code = report.exit_code;
   };

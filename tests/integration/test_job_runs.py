@@ -1130,6 +1130,43 @@ class IndexStepCopiesQA(kt.TempDirTestCase):
         self.assertTrue(np.all(kt.gdal().Open(copy).ReadAsArray() == 1))
 
 
+class QuietRuns(kt.TempDirTestCase):
+    def test_quiet_keeps_notes_and_errors_on_stderr_and_prints_no_summary(self):
+        # -q is "only errors, notes on the data and cautions". A quiet run had dropped its
+        # steps' notes, and a failed or partial one had printed the whole summary on stdout.
+        # Invented data.
+        folder = os.path.join(self.tmp, "quiet")
+        os.makedirs(os.path.join(folder, "ndvi"))
+        rng = np.random.default_rng(5)
+        for k in range(8):
+            values = rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32)
+            if k > 0:
+                values[0, 0] = np.nan  # one pixel seen once: not fitted, and a note says so
+            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_2031-%02d-01.tif" % (k + 1)), values)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        done = run(job, "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.stdout, "")
+        self.assertIn("note: fill: 1 pixels not fitted", done.stderr)
+        # A damaged input: the error alone, on stderr.
+        bad = os.path.join(folder, "ndvi", "ndvi_2031-09-01.tif")
+        with open(bad, "wb") as f:
+            f.write(b"II*\x00" + b"\x00" * 40)
+        done = run(job, "-q")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stdout, "")
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn(bad, done.stderr)
+        # Left out with --skip-bad: named on stderr, no summary.
+        done = run(job, "-q", "--skip-bad")
+        self.assertEqual(done.returncode, 3, done.stderr)
+        self.assertEqual(done.stdout, "")
+        self.assertIn("skipped input: " + bad, done.stderr)
+
+
 class LateQAPartner(kt.TempDirTestCase):
     def test_a_composite_left_out_for_its_missing_qa_is_read_once_the_qa_comes(self):
         # A value file arrives a night before its QA file. --skip-bad leaves it out (exit 3). The
