@@ -24,6 +24,8 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--title", r.title, "Title of the page (default: the folder)");
   return [o, &global] {
     ReportRequest& r = o->request;
+    // Before the work, exit 2 (a missing folder had failed at the rename, exit 1, naming no file).
+    require_file_destination(r.html, "--html", "report.html");
     std::string rest = o->pixels;
     while (!rest.empty()) {
       const auto semicolon = rest.find(';');

@@ -346,6 +346,10 @@ class DiurnalEra5(kt.TempDirTestCase):
         for args, expected in (
                 (["--calibrate", self.grib, "--save-parameters", os.path.join(self.tmp, "x.toml"),
                   "--fit-days", "2019-03-15,2019-03-01"], "the first day is after the last"),
+                # Refused before the fit, which had run to the end and then failed to write (exit 1).
+                (["--calibrate", self.grib, "--save-parameters", os.path.join(self.tmp, "no-such", "x.toml")],
+                 "--save-parameters '%s': the folder '%s' does not exist"
+                 % (os.path.join(self.tmp, "no-such", "x.toml"), os.path.join(self.tmp, "no-such"))),
                 (["--day", os.path.join(self.input, "tmax_*.tif"), "--night", os.path.join(self.input, "tmin_*.tif"),
                   "--day-time", "1.5", "--night-time", "1.5", "--out", os.path.join(self.tmp, "same")],
                  "the two overpasses must be at different hours"),

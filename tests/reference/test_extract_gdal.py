@@ -396,6 +396,16 @@ class ExtractLandsat(kt.TempDirTestCase):
         done = kt.run_kalends(["report", os.path.dirname(layer), "--html", folder])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder; give a file name" % folder)
+        # The same for the page (it had failed at the rename, exit 1, naming no file), and an
+        # empty name.
+        page = os.path.join(self.tmp, "no-such-folder", "report.html")
+        done = kt.run_kalends(["report", os.path.dirname(layer), "--html", page])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: --html '%s': the folder '%s' does not exist"
+                         % (page, os.path.dirname(page)))
+        done = kt.run_kalends(["report", os.path.dirname(layer), "--html", ""])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(done.stderr.strip(), "kalends: --html: needs a file name, e.g. report.html")
         missing = os.path.join(self.tmp, "no-such-folder", "table.csv")
         done = kt.run_kalends(["extract", os.path.dirname(layer), "--points", points, "--out", missing,
                                "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
@@ -530,7 +540,7 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--crs", "EPSG:4326x"], "--crs 'EPSG:4326x': not a CRS PROJ knows"),
                                 (["--out", self.tmp], "is a folder; give the table's file name"),
                                 # An empty name had run, written nothing and exited 0.
-                                (["--out", ""], "--out: needs the table's file name")):
+                                (["--out", ""], "--out: needs a file name, e.g. table.csv")):
             command = base + extra
             if extra[0] == "--out":  # the folder replaces the table's name
                 command = [a for i, a in enumerate(base) if a != "--out" and (i == 0 or base[i - 1] != "--out")] + extra
