@@ -130,7 +130,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G; "
                                         "without it, more where one block needs more, up to half the machine's memory")
                             ->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
 
   return [o, memory, sub, &global] {

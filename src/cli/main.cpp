@@ -4,6 +4,7 @@
 
 #include <CLI/CLI.hpp>
 #include <fmt/format.h>
+#include <regex>
 #include <cctype>
 #include <cstdio>
 #include <iostream>
@@ -55,6 +56,25 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
   std::string text = e.what();
   for (char& c : text)
     if (c == '\n') c = ' ';
+  // CLI11's wording of a bad value ("Could not convert: --seed = abc", "Value 2.5 not in range
+  // 0 to 4096") as the option, the value and what it takes.
+  auto kind_of = [&](const std::string& option) {
+    const CLI::Option* o = command->get_option_no_throw(option);
+    const std::string type = o ? o->get_type_name() : "";
+    // "INT", or "INT:INT in [0 - 4096]" with a range check.
+    const bool whole = type.rfind("INT", 0) == 0 || type.rfind("UINT", 0) == 0;
+    return whole ? std::string("a whole number") : std::string("a number");
+  };
+  std::smatch m;
+  static const std::regex conversion(R"(Could not convert: (--?[\w-]+) = (.*))");
+  static const std::regex range(R"((--?[\w-]+): Value (.*) not in range (\S+) to (\S+))");
+  static const std::regex missing(R"((--?[\w-]+): \d+ required \S+ missing)");
+  if (std::regex_match(text, m, missing)) return fmt::format("{}: {}: needs a value", name, m[1].str());
+  if (std::regex_match(text, m, conversion))
+    return fmt::format("{}: {}: '{}' is not {}", name, m[1].str(), m[2].str(), kind_of(m[1].str()));
+  if (std::regex_match(text, m, range))
+    return fmt::format("{}: {}: '{}' is not {} from {} to {}", name, m[1].str(), m[2].str(), kind_of(m[1].str()),
+                       m[3].str(), m[4].str());
   // A pattern the shell expanded: its files arrive as extra arguments.
   if (dynamic_cast<const CLI::ExtrasError*>(&e) != nullptr) {
     std::vector<std::string> extras = command->remaining();
@@ -65,6 +85,13 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
       return fmt::format("{}: {} more files than the command takes (the first: {}); a pattern such as "
                          "'ndvi/*.tif' needs quotes, or the shell expands it into its files",
                          name, files, extras.front());
+  }
+  if (dynamic_cast<const CLI::ExtrasError*>(&e) != nullptr) {
+    std::vector<std::string> extras = command->remaining();
+    for (const std::string& extra : app.remaining()) extras.push_back(extra);
+    if (!extras.empty())
+      return fmt::format("{}: unexpected argument '{}' (kalends {} --help says what it takes)", name, extras.front(),
+                         name);
   }
   return name + ": " + text;
 }

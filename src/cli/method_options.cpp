@@ -143,7 +143,7 @@ void apply_value_rule_options(ValueRules& rules, const ValueRuleTexts& t) {
 
 void note_month_end_dates(bool dates_at_month_ends, DateMarks marks) {
   if (!dates_at_month_ends || marks != DateMarks::automatic) return;
-  std::fprintf(stderr, "Note: %s.\n", month_end_note("--date-marks start").c_str());
+  std::fprintf(stderr, "note: %s.\n", month_end_note("--date-marks start").c_str());
 }
 
 }  // namespace kalends::cli

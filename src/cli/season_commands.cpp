@@ -37,7 +37,7 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--offset", o->offset, "Override the files' offset");
   sub->add_option("--nodata", o->nodata, "Override the files' nodata value");
   sub->add_option("--date", o->date, "Date of files whose names carry none (YYYY-MM-DD)");
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
   return [o, &global] {
     IndexRequest& r = o->request;
@@ -85,7 +85,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--band", r.rules.band, "Band of each input file (1 = value of fill outputs)")->capture_default_str();
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
   return [o, &global] {
     SeasonsRequest& r = o->request;

@@ -97,7 +97,7 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
                   "With --calibrate: FIRST,LAST local solar days to fit on (YYYY-MM-DD)");
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")
       ->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")
       ->capture_default_str();
   return [o, &global] {
@@ -195,7 +195,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--name", r.name, "Output name prefix (default: the model)");
   sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")
       ->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")
       ->capture_default_str();
   return [o, parasite, &global] {

@@ -41,7 +41,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget of each fill; without it, "
                                         "more where one block needs more, up to half the machine's memory")
                             ->capture_default_str();
-  sub->add_option("--threads", r.threads, "Worker threads (default: all cores)")->check(CLI::Range(0, 4096));
+  sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--series", r.series_pixels, "Pixels (those with the most withheld values) whose truth and "
                   "fills go to OUT/series.csv, for the report's plots")
       ->capture_default_str()->check(CLI::Range(0, 1000));

@@ -473,7 +473,16 @@ class BadInput(kt.TempDirTestCase):
                                 "kalends: fill: unknown option '--lamda'"),
                                (["fill", "--lamda", "3", "x/*.tif"], "kalends: fill: unknown option '--lamda'"),
                                (["index", "--red", "r.tif", "--offset", "-0.1", "--out", "o"],
-                                "kalends: index: --nir is required")):
+                                "kalends: index: --nir is required"),
+                               # CLI11's own wording had shown through: "Could not convert: --seed =
+                               # abc", "Value 2.5 not in range 0 to 4096", "The following argument was
+                               # not expected: y".
+                               (["validate", "x/*.tif", "--out", "o", "--seed", "abc"],
+                                "kalends: validate: --seed: 'abc' is not a whole number"),
+                               (["fill", "x/*.tif", "--out", "o", "--threads", "2.5"],
+                                "kalends: fill: --threads: '2.5' is not a whole number from 0 to 4096"),
+                               (["fill", "x/*.tif", "y", "--out", "o"],
+                                "kalends: fill: unexpected argument 'y' (kalends fill --help says what it takes)")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")
