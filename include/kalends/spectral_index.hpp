@@ -43,6 +43,7 @@ struct IndexSummary {
   int dates = 0;
   std::int64_t pixels = 0, missing = 0;
   std::string out_dir;
+  std::vector<std::string> notes;  // on the data (values that look like digital numbers)
 };
 
 /// The checks that need no file (an output folder, red and near-infrared, blue for EVI);

@@ -19,7 +19,7 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   CLI::App* sub = app.add_subcommand("index", "Compute NDVI or EVI from red, near-infrared (and blue) stacks");
   struct Options {
     IndexRequest request;
-    std::string kind = "ndvi", scale, offset, nodata, date, compression = "deflate";
+    std::string kind = "ndvi", scale, offset, nodata, valid_range, date, compression = "deflate";
   };
   auto o = std::make_shared<Options>();
   IndexRequest& r = o->request;
@@ -36,6 +36,7 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--scale", o->scale, "Override the files' scale factor");
   sub->add_option("--offset", o->offset, "Override the files' offset");
   sub->add_option("--nodata", o->nodata, "Override the files' nodata value");
+  sub->add_option("--valid-range", o->valid_range, "MIN,MAX of each band in physical units; outside = missing");
   sub->add_option("--date", o->date, "Date of files whose names carry none (YYYY-MM-DD)");
   sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
@@ -45,6 +46,12 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
     r.rules.scale = optional_number(o->scale, "--scale");
     r.rules.offset = optional_number(o->offset, "--offset");
     r.rules.nodata = optional_number(o->nodata, "--nodata");
+    // A job's index step took valid_range; the command had no such option.
+    if (!o->valid_range.empty()) {
+      const auto [low, high] = parse_range(o->valid_range, "--valid-range");
+      r.rules.valid_min = low;
+      r.rules.valid_max = high;
+    }
     if (!o->date.empty()) {
       r.rules.date = parse_iso_time(o->date);
       if (!r.rules.date) throw UsageError("--date '" + o->date + "'", "expected YYYY-MM-DD");
@@ -52,6 +59,7 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;
     const IndexSummary s = run_index(r);
+    for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
     if (!global.quiet)
       fmt::print("kalends index: {} date{} -> {} ({:.1f} % of values missing: nodata, zero denominator or out of range)\n",
                  s.dates, s.dates == 1 ? "" : "s", s.out_dir, s.pixels ? 100.0 * double(s.missing) / double(s.pixels) : 0.0);

@@ -8,6 +8,7 @@
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
+#include <set>
 
 #include "engine/block_runner.hpp"
 #include "io/gdal_session.hpp"
@@ -56,7 +57,9 @@ void require_reflectance(const Stack& stack, const std::string& option) {
     if (median > 1.5)  // false for NaN: nothing finite to judge by
       throw UsageError(option + " " + stack.layers()[date].path,
                        fmt::format("values (median {:g}) are not reflectances in 0..1, which EVI's constants "
-                                   "assume; give --scale (0.0001 for MODIS surface reflectance)",
+                                   "assume; give --scale and the product's --offset (MODIS surface reflectance: "
+                                   "--scale 0.0001; Landsat Collection 2 Level-2: --scale 0.0000275 --offset -0.2); "
+                                   "digital numbers need a radiometric calibration first",
                                    median));
   }
 }
@@ -120,15 +123,33 @@ IndexSummary run_index(const IndexRequest& request) {
   const Stack red = Stack::open(request.red, rules_for(request.red_band, "red"));
   const Stack nir = Stack::open(request.nir, rules_for(request.nir_band, "nir"));
   const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
+  // And the other way round: a near-infrared (or blue) date without its red had been left out
+  // without a word.
+  partners_by_date(nir, red, "red");
   require_same_scale(red, nir, nir_of);
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {
     blue = Stack::open(request.blue, rules_for(request.blue_band, "blue"));
     blue_of = partners_by_date(red, *blue, "blue");
+    partners_by_date(*blue, red, "red");
     require_reflectance(red, "--red");
     require_reflectance(nir, "--nir");
     require_reflectance(*blue, "--blue");
+  }
+  std::vector<std::string> notes;
+  if (!evi) {
+    // NDVI ignores a scale both bands share, but not an offset or a gain of each band's own
+    // (digital numbers, or Landsat Collection 2's x 0.0000275 - 0.2): on such values it is
+    // another number (a helper measured NDVI 0.20 on Collection-2-style stored values against
+    // 0.39 on their reflectance). Values above 1.5 are no reflectances (as EVI's check).
+    const double r = median_of(red, 0), n = median_of(nir, 0);
+    if (r > 1.5 && n > 1.5)
+      notes.push_back(fmt::format(
+          "the red and near-infrared values (medians {:g} and {:g} on the first date) are not reflectances: "
+          "NDVI is right only where they are proportional to reflectance; give --scale and the product's "
+          "--offset where it has one (Landsat Collection 2 Level-2: --scale 0.0000275 --offset -0.2)",
+          r, n));
   }
   std::optional<Stack> qa;
   std::vector<std::size_t> qa_of;
@@ -201,14 +222,24 @@ IndexSummary run_index(const IndexRequest& request) {
     const fs::path qa_dir = fs::path(request.out_dir) / "qa";
     fs::create_directories(qa_dir, ec);
     if (ec) throw OutputError(qa_dir.string(), "cannot create the folder: " + ec.message());
+    // A QA file of one band is copied as it is; a date's band of a multi-band file or container
+    // (a band per date) is written alone: the whole file had been copied for each date, and
+    // `fill --qa` then read its first band as the QA of every date.
+    std::set<std::string> paths;
+    bool plain_files = true;
+    for (const Layer& q : qa->layers()) {
+      std::error_code ignored;
+      plain_files = plain_files && q.band == 1 && paths.insert(q.path).second && fs::is_regular_file(q.path, ignored);
+    }
     for (std::size_t i = 0; i < red.layers().size(); ++i) {
       const Layer& q = qa->layers()[qa_of[i]];
-      const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + fs::path(q.path).extension().string());
+      const std::string extension = plain_files ? fs::path(q.path).extension().string() : std::string(".tif");
+      const fs::path target = qa_dir / ("qa_" + red.layers()[i].time.label() + extension);
       const std::string temporary = detail::temporary_name(target.string());
       made.push_back(target.string());
-      if (request.region) {
+      if (request.region || !plain_files) {
         // A region's QA is the same window of the QA layer, so that it lines up with the index.
-        detail::crop_raster(q.path, area, temporary);
+        detail::crop_raster(q.path, area, temporary, plain_files ? 0 : q.band);
         if (fs::exists(target) && detail::same_raster_content(target.string(), temporary)) {
           fs::remove(temporary, ec);
           ++qa_unchanged;
@@ -236,6 +267,7 @@ IndexSummary run_index(const IndexRequest& request) {
   summary.pixels = area.pixels() * summary.dates;
   summary.missing = missing;
   summary.out_dir = request.out_dir;
+  summary.notes = notes;
   return summary;
 }
 

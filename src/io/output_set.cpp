@@ -368,7 +368,7 @@ void OutputSet::write_all(const Window& core, const std::vector<std::vector<floa
   }
 }
 
-void crop_raster(const std::string& source, const Window& window, const std::string& path) {
+void crop_raster(const std::string& source, const Window& window, const std::string& path, int band) {
   start_gdal();
   GDALDatasetUniquePtr in(GDALDataset::Open(source.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY));
   if (!in) throw InputError(source, "cannot open (" + gdal_message("unknown reason") + ")");
@@ -378,6 +378,10 @@ void crop_raster(const std::string& source, const Window& window, const std::str
         std::to_string(window.height), std::string("-of"), std::string("GTiff"), std::string("-co"),
         std::string("COMPRESS=DEFLATE"), std::string("-co"), std::string("TILED=YES")})
     args.AddString(a.c_str());
+  if (band > 0) {
+    args.AddString("-b");
+    args.AddString(std::to_string(band).c_str());
+  }
   GDALTranslateOptions* options = GDALTranslateOptionsNew(args.List(), nullptr);
   int failed = 0;
   CPLErrorReset();

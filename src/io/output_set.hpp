@@ -143,9 +143,9 @@ class OutputSet {
 /// metadata, unit, scale and offset) and dataset metadata.
 bool same_raster_content(const std::string& a, const std::string& b);
 
-/// Writes `window` of raster `source` (all bands, types kept) to GeoTIFF `path`, which the
-/// caller then renames into place.
-void crop_raster(const std::string& source, const Window& window, const std::string& path);
+/// Writes `window` of raster `source` (all bands, or band `band` alone when it is above 0;
+/// types kept) to GeoTIFF `path`, which the caller then renames into place.
+void crop_raster(const std::string& source, const Window& window, const std::string& path, int band = 0);
 
 /// Publishes a finished temporary file under its final name (fsync, rename, fsync the folder).
 void publish_file(const std::string& temporary, const std::string& final_path);

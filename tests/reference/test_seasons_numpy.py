@@ -841,11 +841,16 @@ class RealData(kt.TempDirTestCase):
                 self.assertEqual(refused.returncode, 2, refused.stderr)
                 self.assertIn("not reflectances", refused.stderr)
                 self.assertIn("L7_ETMs.tif", refused.stderr)
+                # The offset too: a scale alone had been the advice, half a fix for Collection 2.
+                self.assertIn("--offset -0.2", refused.stderr)
                 args += ["--scale", str(scale)]
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 0, done.stderr)
             if kind == "ndvi":
                 self.assertIn("kalends index: 1 date -> ", done.stdout)  # had said "1 dates"
+                # Digital numbers: NDVI is computed (a common scale cancels) but a note says that
+                # an offset or a gain per band does not (it had said nothing).
+                self.assertIn("note: the red and near-infrared values (medians 63 and", done.stderr)
             ds = g.Open(os.path.join(out, "%s_2000-01-01.tif" % kind))
             got = ds.ReadAsArray().astype(np.float64)
             np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
@@ -867,6 +872,71 @@ class RealData(kt.TempDirTestCase):
         self.assertIn("no near-infrared layer", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
         self.assertEqual(kt.final_outputs(out) if os.path.isdir(out) else [], [])
+
+    def test_index_refuses_a_near_infrared_date_without_its_red(self):
+        # The reverse of the case above had written the dates red has and dropped the other,
+        # exit 0 and no word (methods.md: a date lacking a partner is an error naming the file).
+        folder = os.path.join(self.tmp, "bands-extra-nir")
+        os.makedirs(folder)
+        for band, dates in (("red", ["2020-01-01"]), ("nir", ["2020-01-01", "2020-01-17"])):
+            for d in dates:
+                kt.write_raster(os.path.join(folder, "%s_%s.tif" % (band, d)), np.ones((4, 4), np.float32))
+        out = os.path.join(self.tmp, "index-extra-nir")
+        done = kt.run_kalends(["index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("nir_2020-01-17.tif: no red layer for 2020-01-17", done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1)
+
+    def test_index_takes_a_valid_range(self):
+        # A job's index step took valid_range; the command had no --valid-range. A saturated
+        # reflectance (1.45) is missing, and so is the index there. Invented data.
+        folder = os.path.join(self.tmp, "bands-range")
+        os.makedirs(folder)
+        red = np.full((3, 3), 0.1, np.float32)
+        red[1, 1] = 1.45
+        kt.write_raster(os.path.join(folder, "red_2020-01-01.tif"), red)
+        kt.write_raster(os.path.join(folder, "nir_2020-01-01.tif"), np.full((3, 3), 0.5, np.float32))
+        out = os.path.join(self.tmp, "index-range")
+        done = kt.run_kalends(["-q", "index", "--red", os.path.join(folder, "red_*.tif"), "--nir",
+                               os.path.join(folder, "nir_*.tif"), "--valid-range", "0,1", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        ds = kt.gdal().Open(os.path.join(out, "ndvi_2020-01-01.tif"))
+        got = ds.ReadAsArray()
+        self.assertTrue(np.isnan(got[1, 1]))
+        self.assertEqual(int(np.isnan(got).sum()), 1)
+        np.testing.assert_allclose(got[0, 0], (0.5 - 0.1) / (0.5 + 0.1), rtol=1e-6)
+
+    def test_index_passes_each_dates_own_qa_band_on(self):
+        # A QA raster with a band per date (dated by band descriptions): the whole file had been
+        # copied as each date's QA, and `fill --qa` then read its first band for every date, so
+        # the later dates' clouds were kept as observed. Invented data.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "bands-qa")
+        os.makedirs(folder)
+        dates = ["2020-01-01", "2020-01-17", "2020-02-02"]
+        for band in ("red", "nir"):
+            for d in dates:
+                kt.write_raster(os.path.join(folder, "%s_%s.tif" % (band, d)),
+                                np.full((4, 6), 0.1 if band == "red" else 0.4, np.float32))
+        qa = np.zeros((3, 4, 6), np.uint16)
+        for k in range(3):
+            qa[k, :, : 2 * (k + 1)] = 8  # bit 3: a cloud strip 2, 4 and 6 px wide
+        qa_path = os.path.join(folder, "qa_all.tif")
+        ds = g.GetDriverByName("GTiff").Create(qa_path, 6, 4, 3, g.GDT_UInt16)
+        for k in range(3):
+            ds.GetRasterBand(k + 1).WriteArray(qa[k])
+            ds.GetRasterBand(k + 1).SetDescription(dates[k])
+        ds = None
+        out = os.path.join(self.tmp, "index-qa-bands")
+        done = kt.run_kalends(["-q", "index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--qa", qa_path, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for k, d in enumerate(dates):
+            copy = g.Open(os.path.join(out, "qa", "qa_%s.tif" % d))
+            self.assertEqual(copy.RasterCount, 1, d)
+            np.testing.assert_array_equal(copy.GetRasterBand(1).ReadAsArray(), qa[k], d)
+            copy = None
 
     def test_index_names_both_files_of_a_grid_mismatch(self):
         # The red side had been named by its glob ("that of bands/red_*.tif"): a file on each

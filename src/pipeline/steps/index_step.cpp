@@ -53,7 +53,7 @@ StepKind index_step_kind() {
   kind.check_values = [](const StepContext& c) { check_index_options(index_request(c)); };
   kind.run = [](const StepContext& c) {
     const IndexSummary s = run_index(index_request(c));
-    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", {}};
+    StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", s.notes};
     outcome.rasters = s.outputs;
     return outcome;
   };
