@@ -6,7 +6,7 @@ set -euo pipefail
 packages=(
   build-essential cmake pkg-config
   libgdal-dev gdal-bin libproj-dev libeigen3-dev libfftw3-dev libtbb-dev
-  catch2 libcli11-dev libfmt-dev libtomlplusplus-dev libsqlite3-dev
+  catch2 libcli11-dev libfmt-dev libtomlplusplus-dev libsqlite3-dev nlohmann-json3-dev
   python3-numpy python3-scipy python3-gdal
   time
   slurm-wlm munge   # the cluster test starts a one-node Slurm on localhost

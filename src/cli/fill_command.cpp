@@ -9,6 +9,7 @@
 #include <optional>
 
 #include "cli/commands.hpp"
+#include "kalends/percent.hpp"
 #include "engine/memory_budget.hpp"
 #include "pipeline/step_kind.hpp"
 #include "kalends/error.hpp"
@@ -83,10 +84,7 @@ void print_memory_note(std::int64_t default_bytes, std::int64_t used_bytes) {
 
 std::string percent(std::int64_t part, std::int64_t whole) {
   if (whole <= 0) return "n/a";
-  // Never "100.0 %" or "0.0 %" for a share that is not whole or nothing (99.95 % had read as all).
-  const double share = 100.0 * double(part) / double(whole);
-  const double shown = part == whole ? 100.0 : part == 0 ? 0.0 : std::clamp(share, 0.1, 99.9);
-  return fmt::format("{:.1f} %", shown);
+  return percent_text(double(part) / double(whole));
 }
 
 Action add_fill_command(CLI::App& app, GlobalOptions& global) {

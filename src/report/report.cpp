@@ -7,6 +7,7 @@
 #include "kalends/report.hpp"
 
 #include <fmt/format.h>
+#include <nlohmann/json.hpp>
 
 #include <algorithm>
 #include <chrono>
@@ -22,6 +23,7 @@
 #include "io/output_set.hpp"
 #include "kalends/covariates.hpp"
 #include "kalends/error.hpp"
+#include "kalends/percent.hpp"
 #include "report/colour_ramp.hpp"
 #include "report/quicklook.hpp"
 #include "report/time_series_plot.hpp"
@@ -168,25 +170,41 @@ std::string markdown_to_html(const std::string& md) {
 }
 
 std::string fill_statistics_html(const fs::path& summary, const fs::path& root) {
-  const std::string text = read_file(summary);
-  static const std::regex pair(R"re("([a-z_]+)":\s*("[^"]*"|-?[0-9.eE+-]+|null))re");
-  std::map<std::string, std::string> v;
-  std::vector<std::string> order;
-  for (auto it = std::sregex_iterator(text.begin(), text.end(), pair); it != std::sregex_iterator(); ++it) {
-    std::string value = (*it)[2];
-    if (!value.empty() && value.front() == '"') value = value.substr(1, value.size() - 2);
-    if (!v.count((*it)[1])) order.push_back((*it)[1]);
-    v[(*it)[1]] = value;
+  // Read as JSON (a regular expression had cut strings at an escaped quote, the NetCDF input
+  // 'NETCDF:"x.nc":tas' shown as 'NETCDF:\', and skipped the nested series_not_fitted).
+  nlohmann::ordered_json v;
+  try {
+    v = nlohmann::ordered_json::parse(read_file(summary));
+  } catch (const nlohmann::json::exception& e) {
+    throw InputError(summary.string(), std::string("not a readable fill summary (") + e.what() + ")");
   }
-  const double total = v.count("pixel_dates") ? std::atof(v["pixel_dates"].c_str()) : 0;
+  if (!v.is_object()) throw InputError(summary.string(), "not a readable fill summary (not a JSON object)");
+  const double total = v.contains("pixel_dates") && v["pixel_dates"].is_number() ? v["pixel_dates"].get<double>() : 0;
+  auto text_of = [](const nlohmann::ordered_json& value) -> std::string {
+    if (value.is_string()) return value.get<std::string>();
+    if (value.is_array()) {
+      std::string joined;
+      for (const auto& item : value) joined += (joined.empty() ? "" : " x ") + (item.is_string() ? item.get<std::string>() : item.dump());
+      return joined;
+    }
+    return value.dump();
+  };
   std::string out = fmt::format("<h3>{}</h3>\n<table class=\"stats\"><tr><th>item</th><th>value</th><th>share of pixel-dates</th></tr>\n",
                                 escape(fs::relative(summary, root).string()));
-  for (const std::string& key : order) {
+  for (const auto& [key, value] : v.items()) {
+    if (value.is_object()) {
+      // series_not_fitted (reason: pixels), spacetime's chosen smoothing (name: value): a row each.
+      for (const auto& [inner, item] : value.items())
+        out += fmt::format("<tr><td>{}: {}</td><td>{}</td><td></td></tr>\n", escape(key), escape(inner), escape(text_of(item)));
+      if (value.empty()) out += fmt::format("<tr><td>{}</td><td>none</td><td></td></tr>\n", escape(key));
+      continue;
+    }
     std::string share;
-    if (total > 0 && (key == "observed" || key == "missing" || key == "masked_by_qa" || key == "rejected" ||
-                      key == "filled" || key == "unfilled"))
-      share = fmt::format("{:.1f} %", 100 * std::atof(v[key].c_str()) / total);
-    out += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td></tr>\n", escape(key), escape(v[key]), share);
+    if (total > 0 && value.is_number() &&
+        (key == "observed" || key == "missing" || key == "masked_by_qa" || key == "rejected" || key == "filled" ||
+         key == "unfilled"))
+      share = percent_text(value.get<double>() / total);
+    out += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td></tr>\n", escape(key), escape(text_of(value)), share);
   }
   return out + "</table>\n";
 }

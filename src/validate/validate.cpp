@@ -19,6 +19,7 @@
 #include "io/output_set.hpp"
 #include "io/qa_pairing.hpp"
 #include "kalends/error.hpp"
+#include "kalends/percent.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/time_grid.hpp"
 
@@ -676,9 +677,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
   auto row = [&](const Score& s) {
     if (s.covered == 0)  // nothing to score: the method gave no value on any withheld cell
       return fmt::format("| {}{} | - | - | - | - | 0.0 % | - | - | - |\n", s.name, s.baseline ? " (baseline)" : "");
-    const auto share = [](double v) { return v >= 0 ? fmt::format("{:.1f} %", 100 * v) : std::string("-"); };
-    return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {:.1f} % | {} | {} | {} |\n", s.name,
-                       s.baseline ? " (baseline)" : "", s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage,
+    const auto share = [](double v) { return v >= 0 ? percent_text(v) : std::string("-"); };
+    return fmt::format("| {}{} | {:.4f} | {:.4f} | {:+.4f} | {:.3f} | {} | {} | {} | {} |\n", s.name,
+                       s.baseline ? " (baseline)" : "", s.rmse, s.mae, s.bias, s.r2, percent_text(s.coverage),
                        share(s.within_one_sd), share(s.within_95_interval),
                        s.rms_error_over_sd >= 0 ? fmt::format("{:.2f}", s.rms_error_over_sd) : "-");
   };
@@ -715,7 +716,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
       for (const auto& [label, sub] : part == 0 ? s.by_gap : s.by_neighbourhood)
         md += sub.cells == 0     ? std::string(" - |")
               : sub.covered == 0 ? fmt::format(" - (0 %, n={}) |", sub.cells)
-                                 : fmt::format(" {:.4f} ({:.0f} %, n={}) |", sub.rmse, 100 * sub.coverage, sub.cells);
+                                 : fmt::format(" {:.4f} ({}, n={}) |", sub.rmse, percent_text(sub.coverage, 0), sub.cells);
       md += "\n";
     }
   }

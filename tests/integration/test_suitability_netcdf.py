@@ -84,6 +84,30 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
               % (months.min(), months.max(), months.mean()), file=sys.stderr)
         self.assertGreater(months.max(), months.min())  # the data spans more than one answer
 
+    def test_a_fill_summary_of_a_netcdf_input_is_shown_whole(self):
+        # The fill statistics had been read with a regular expression: the input
+        # 'NETCDF:"...":tas' was shown as 'NETCDF:\' (cut at the escaped quote), and the reasons
+        # of series_not_fitted were left out. Checked against Python's json module.
+        import html as html_module
+        import json
+        out = os.path.join(self.tmp, "fill-netcdf")
+        done = kt.run_kalends(["-q", "fill", self.input, "--out", os.path.join(out, "fill"), "--method", "harmonic",
+                               "--harmonics", "6"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "fill", "fill-summary.json")) as f:
+            summary = json.load(f)
+        self.assertTrue(summary["series_not_fitted"], "the test needs pixels not fitted")
+        page_path = os.path.join(self.tmp, "fill-netcdf.html")
+        done = kt.run_kalends(["report", out, "--html", page_path])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page_path) as f:
+            page = f.read()
+        stats = page.split('id="fill-statistics"')[1].split("</section>")[0]
+        self.assertIn("<td>input</td><td>%s</td>" % html_module.escape(summary["input"]), stats)
+        for reason, pixels in summary["series_not_fitted"].items():
+            self.assertIn("<td>series_not_fitted: %s</td><td>%d</td>" % (html_module.escape(reason), pixels),
+                          stats)
+
     def test_the_suitable_months_are_mapped_and_named_for_extract(self):
         # The report had drawn the monthly layers and left out the synoptic suitable months, the
         # usual risk-map covariate; extract had listed layers without saying --descriptors.
