@@ -6,6 +6,7 @@
 #include <map>
 
 #include "cli/commands.hpp"
+#include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "kalends/error.hpp"
 #include "kalends/inspect.hpp"
@@ -21,8 +22,7 @@ std::string grid_text(const InspectReport& r) {
   std::string text = fmt::format("{} x {} px", g.width, g.height);
   if (!g.has_geotransform) return text + ", no georeferencing (a pixel grid only)";
   const auto& t = g.geotransform;
-  text += fmt::format(", cells {:.6g} x {:.6g}, origin ({:.9g}, {:.9g})", t[1], -t[5], t[0], t[3]);
-  if (t[2] != 0 || t[4] != 0) text += ", rotated";
+  text += fmt::format(", cells {}, origin ({:.9g}, {:.9g})", detail::cell_size_text(t, g.crs_wkt), t[0], t[3]);
   return text + ", " + (r.crs_name.empty() ? std::string("no CRS") : r.crs_name);
 }
 

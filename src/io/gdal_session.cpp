@@ -4,12 +4,14 @@
 #include <cpl_error.h>
 #include <cpl_vsi.h>
 #include <ogr_spatialref.h>
+#include <fmt/format.h>
 
 #include <fcntl.h>
 #include <unistd.h>
 
 #include <algorithm>
 #include <cctype>
+#include <cmath>
 #include <cstdio>
 #include <filesystem>
 #include <limits>
@@ -255,6 +257,25 @@ std::string band_label(const std::string& path, int band) {
     }
   while (!label.empty() && label.back() == '_') label.pop_back();
   return label.empty() ? "band" + std::to_string(band) : label;
+}
+
+std::string cell_size_text(const std::array<double, 6>& t, const std::string& crs_wkt) {
+  std::string unit;
+  OGRSpatialReference srs;
+  if (!crs_wkt.empty() && srs.importFromWkt(crs_wkt.c_str()) == OGRERR_NONE) {
+    if (srs.IsGeographic()) {
+      unit = " degrees";
+    } else {
+      const char* name = nullptr;
+      const double metres = srs.GetLinearUnits(&name);
+      unit = metres == 1.0 ? std::string(" m") : name ? std::string(" ") + name : std::string();
+    }
+  }
+  std::string text = fmt::format("{:.6g} x {:.6g}{}", std::hypot(t[1], t[4]), std::hypot(t[2], t[5]), unit);
+  if (t[2] != 0 || t[4] != 0) return text + ", rotated";
+  if (t[5] > 0) text += ", south-up";
+  if (t[1] < 0) text += ", east to west";
+  return text;
 }
 
 std::string crs_name_of(const std::string& wkt) {

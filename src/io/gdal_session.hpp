@@ -6,6 +6,7 @@
 #include <gdal_priv.h>
 
 #include <cstdint>
+#include <array>
 #include <map>
 #include <string>
 
@@ -35,6 +36,11 @@ bool memory_is_short();
 /// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
 /// zone 25S (EPSG:31985)"); "" without a CRS.
 std::string crs_name_of(const std::string& wkt);
+
+/// A grid's cells as people read them: their size on the ground in the CRS's unit
+/// ("250 x 250 m", "0.125 x 0.125 degrees"), and ", south-up" / ", east to west" / ", rotated"
+/// where the geotransform is not north-up (inspect and the report had shown "250 x -250").
+std::string cell_size_text(const std::array<double, 6>& geotransform, const std::string& crs_wkt);
 
 /// The dataset-level metadata of the raster at `path`, key -> value; empty when GDAL cannot
 /// open it as a raster. Tells kalends' own outputs (KALENDS_VERSION, KALENDS_METHOD,

@@ -47,6 +47,19 @@ Reduced read_reduced(const std::string& path, const std::vector<int>& bands, int
   }
   r.values.resize(n);
   for (std::size_t i = 0; i < n; ++i) r.values[i] = count[i] ? sum[i] / count[i] : NAN;
+  // North up and west left, as GIS tools draw a layer: a south-up raster (positive pixel
+  // height, as GeoTIFFs from ascending-latitude NetCDF often are) had been drawn upside down.
+  // A rotated grid is drawn as stored.
+  double t[6];
+  if (ds->GetGeoTransform(t) == CE_None && t[2] == 0 && t[4] == 0) {
+    if (t[5] > 0)
+      for (int row = 0; row < r.height / 2; ++row)
+        std::swap_ranges(r.values.begin() + std::ptrdiff_t(row) * r.width, r.values.begin() + std::ptrdiff_t(row + 1) * r.width,
+                         r.values.begin() + std::ptrdiff_t(r.height - 1 - row) * r.width);
+    if (t[1] < 0)
+      for (int row = 0; row < r.height; ++row)
+        std::reverse(r.values.begin() + std::ptrdiff_t(row) * r.width, r.values.begin() + std::ptrdiff_t(row + 1) * r.width);
+  }
   return r;
 }
 

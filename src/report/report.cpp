@@ -555,7 +555,7 @@ ReportSummary run_report(const ReportRequest& request) {
     std::string where = fmt::format("{} x {} px", s.grid.width, s.grid.height);
     if (s.grid.has_geotransform) {
       const std::string crs = crs_name_of(s.grid.crs_wkt);
-      where += fmt::format(", cells {:.6g} x {:.6g}, {}", s.grid.geotransform[1], -s.grid.geotransform[5],
+      where += fmt::format(", cells {}, {}", cell_size_text(s.grid.geotransform, s.grid.crs_wkt),
                            crs.empty() ? "no CRS" : crs);
     } else {
       where += ", no georeferencing";

@@ -180,5 +180,46 @@ class ReportBesideAStudyGrid(kt.TempDirTestCase):
         self.assertNotIn("synoptic cycle from study2", page)
         self.assertIn("--pixels 160,70: outside every fill output", page)
 
+
+class ReportMapsNorthUp(kt.TempDirTestCase):
+    def test_a_south_up_layer_is_drawn_north_up(self):
+        # The same invented layer stored north-up and south-up (positive pixel height, rows
+        # from the south, as GeoTIFFs from ascending-latitude NetCDF often are): the south-up
+        # one had been drawn upside down. Both maps must be the same picture.
+        import base64
+        g = kt.gdal()
+        rng = np.random.default_rng(4)
+        values = rng.uniform(0.1, 0.5, (30, 40)).astype(np.float32)
+        values[:6, :8] = 0.9          # a bright block in the north-west
+        values[-2:, -3:] = np.nan     # a hole in the south-east
+        folder = os.path.join(self.tmp, "north-south")
+        for name, array, transform in (
+                ("north_up", values, (500000.0, 250.0, 0, 9100000.0, 0, -250.0)),
+                ("south_up", values[::-1].copy(), (500000.0, 250.0, 0, 9100000.0 - 30 * 250.0, 0, 250.0))):
+            os.makedirs(os.path.join(folder, name))
+            kt.write_raster(os.path.join(folder, name, "elevation.tif"), array, geotransform=transform, epsg=32736,
+                            nodata=float("nan"))
+        page_path = os.path.join(self.tmp, "north-south.html")
+        done = kt.run_kalends(["report", folder, "--html", page_path])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page_path) as f:
+            page = f.read()
+        images = re.findall(r'<img [^>]*src="data:image/png;base64,([^"]+)"', page)
+        self.assertEqual(len(images), 2)
+        pictures = []
+        for k, data in enumerate(images):
+            name = "/vsimem/north-south-%d.png" % k
+            g.FileFromMemBuffer(name, base64.b64decode(data))
+            ds = g.Open(name)
+            pictures.append(ds.ReadAsArray())
+            ds = None
+            g.Unlink(name)
+        np.testing.assert_array_equal(pictures[0], pictures[1])
+        # The south-east hole is transparent at the bottom right of the picture.
+        alpha = pictures[0][3]
+        self.assertEqual(int(alpha[-1, -1]), 0)
+        self.assertGreater(int(alpha[0, 0]), 0)
+        self.assertIn("cells 250 x 250 m, south-up", page)
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
