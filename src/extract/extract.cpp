@@ -99,8 +99,12 @@ class SeriesGeometry {
   SeriesGeometry(const CovariateSeries& s, const OGRSpatialReference& points_crs, double buffer_m)
       : series_(s), buffer_m_(buffer_m) {
     const std::string& where = s.files.front().path;
-    if (!s.grid.has_geotransform || s.grid.crs_wkt.empty())
-      throw InputError(where, "has no georeferencing (geotransform and CRS); points cannot be placed on it");
+    // Which part is missing: a file with a geotransform and no CRS has georeferencing, half of it.
+    if (!s.grid.has_geotransform)
+      throw InputError(where, s.grid.crs_wkt.empty() ? "has no georeferencing (geotransform and CRS); points cannot be placed on it"
+                                                     : "has no geotransform; points cannot be placed on it");
+    if (s.grid.crs_wkt.empty())
+      throw InputError(where, "states no CRS; points cannot be placed on it (set one with gdal_edit.py -a_srs)");
     layer_crs_.importFromWkt(s.grid.crs_wkt.c_str());
     layer_crs_.SetAxisMappingStrategy(OAMS_TRADITIONAL_GIS_ORDER);
     transform_.reset(OGRCreateCoordinateTransformation(&points_crs, &layer_crs_));

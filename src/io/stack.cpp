@@ -162,6 +162,16 @@ bool has_cf_longitude_latitude_axes(GDALDataset& dataset, const Grid& grid) {
          within(y1, -90.5, 90.5);
 }
 
+// A raster placed by ground control points alone: a fill or seasons would write its outputs as
+// a bare pixel grid (outputs carry a geotransform, not GCPs) and would not see dates whose points
+// differ. `kalends grid` warps such a file itself.
+void require_no_control_points(GDALDataset& dataset, const std::string& where) {
+  double unused[6];
+  if (dataset.GetGCPCount() > 0 && dataset.GetGeoTransform(unused) != CE_None)
+    throw InputError(where, "is placed by ground control points (GCPs), not a geotransform: kalends would write its "
+                            "outputs without georeferencing; put it on a grid first (kalends grid, or gdalwarp)");
+}
+
 Grid grid_of(GDALDataset& dataset) {
   Grid grid;
   grid.width = dataset.GetRasterXSize();
@@ -661,6 +671,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       }
       if (bands.front().first > dataset->GetRasterCount())
         throw InputError(file, "has no band " + std::to_string(rules.band));
+      require_no_control_points(*dataset, file);
       const Grid grid = grid_of(*dataset);
       if (first) {
         stack.grid_ = grid;
@@ -737,6 +748,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       }
       throw;
     }
+    require_no_control_points(*dataset, input);
     stack.grid_ = grid_of(*dataset);
     const int bands = dataset->GetRasterCount();
     // One band of a multi-band raster where the user names it (--band) or gives the file one

@@ -144,6 +144,25 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
                          ["coordinate reference", "crs", "projection", "spatial reference"], "crs")
 
+    def test_a_stack_placed_by_ground_control_points_is_refused(self):
+        # GCPs without a geotransform had been read as a bare pixel grid: the fill wrote its
+        # outputs without georeferencing and did not see dates whose points differ.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "gcps")
+        os.makedirs(folder)
+        srs = g.osr.SpatialReference()
+        srs.ImportFromEPSG(EPSG)
+        for i, date in enumerate(DATES):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "ndvi_%s.tif" % date), WIDTH, HEIGHT, 1,
+                                                   g.GDT_Float32)
+            ds.GetRasterBand(1).WriteArray(np.full((HEIGHT, WIDTH), 0.3 + 0.01 * i, np.float32))
+            x0, y0 = GEOTRANSFORM[0], GEOTRANSFORM[3]
+            gcps = [g.GCP(x0, y0, 0, 0, 0), g.GCP(x0 + 30 * WIDTH, y0, 0, WIDTH, 0),
+                    g.GCP(x0, y0 - 30 * HEIGHT, 0, 0, HEIGHT)]
+            ds.SetGCPs(gcps, srs.ExportToWkt())
+            ds = None
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_"], ["ground control points"], "gcps")
+
     def test_duplicate_dates(self):
         folder = self.variant("duplicate")
         write_layer(os.path.join(folder, "ndvi_20200101.tif"), 7)  # also 2020-01-01

@@ -527,6 +527,17 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertIn("bare.shp: states no CRS", done.stderr)
         self.assertIn("taken as EPSG:4326", done.stderr)
 
+    def test_a_layer_without_a_crs_is_named_as_such(self):
+        # It had been "has no georeferencing (geotransform and CRS)" for a file with a
+        # geotransform. Invented data.
+        layer = os.path.join(self.tmp, "no-crs", "elevation.tif")
+        os.makedirs(os.path.dirname(layer))
+        kt.write_raster(layer, np.ones((5, 5), np.float32), geotransform=(500000.0, 30.0, 0, 9000000.0, 0, -30.0))
+        done = kt.run_kalends(["extract", layer, "--points", self.csv, "--out", os.path.join(self.tmp, "no-crs.csv"),
+                               "--id-column", "site", "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("elevation.tif: states no CRS; points cannot be placed on it", done.stderr)
+
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
         base = ["extract", self.raster, "--points", self.csv, "--out", out, "--id-column", "site",
