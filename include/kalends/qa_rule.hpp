@@ -23,6 +23,9 @@ class QaRule {
   /// The highest bit a `bit` or `bits` clause reads (-1 when only `value` clauses), so that a
   /// rule can be checked against the QA layers' width.
   int highest_bit() const noexcept;
+  /// The largest number a `value` clause names (the start of a range), 0 without one: a value
+  /// beyond the QA layers' width never occurs.
+  std::uint32_t largest_value() const noexcept;
 
  private:
   struct Range {

@@ -31,6 +31,11 @@ QaPairing pair_qa(const Stack& values, QaRule rule, const std::string& qa_input,
     throw UsageError("--keep '" + rule.text() + "'",
                      fmt::format("reads bit {}, beyond the {}-bit QA values of {} (bits 0-{})", rule.highest_bit(),
                                  bits, first.path, bits - 1));
+  // The same for a value (value == 70000 on 16-bit QA had dropped every observation, exit 0).
+  if (!GDALDataTypeIsFloating(type) && bits < 32 && rule.largest_value() >= (std::uint64_t(1) << bits))
+    throw UsageError("--keep '" + rule.text() + "'",
+                     fmt::format("names the value {}, beyond the {}-bit QA values of {} (0-{})", rule.largest_value(),
+                                 bits, first.path, (std::uint64_t(1) << bits) - 1));
   return QaPairing{std::move(rule), std::move(stack), std::move(layer_of)};
 }
 

@@ -46,6 +46,9 @@ class Cursor {
       base = text_[pos_ + 1] == 'x' ? 16 : 2;
       begin += 2;
     }
+    if (begin < text_.data() + text_.size() && *begin == '-')
+      fail("a QA value is read as its unsigned bits: write a negative stored value as such (-1 is 65535 in 16-bit "
+           "QA, 255 in 8-bit)");
     auto [ptr, ec] = std::from_chars(begin, text_.data() + text_.size(), v, base);
     if (ec != std::errc() || v > 0xffffffffull) fail("expected " + std::string(what));
     pos_ = std::size_t(ptr - text_.data());
@@ -127,6 +130,14 @@ int QaRule::highest_bit() const noexcept {
           break;
         }
   return highest;
+}
+
+std::uint32_t QaRule::largest_value() const noexcept {
+  std::uint32_t largest = 0;
+  for (const Clause& clause : clauses_)
+    if (clause.mask == 0xffffffffu && clause.shift == 0)
+      for (const Range& r : clause.accepted) largest = std::max(largest, r.low);
+  return largest;
 }
 
 bool QaRule::keep(std::uint32_t qa) const noexcept {

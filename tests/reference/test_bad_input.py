@@ -546,6 +546,18 @@ class BadInput(kt.TempDirTestCase):
                           "--keep", "bits0-1 between 0,1"], ["--keep"],
                          ["expected", "rule", "keep"], "bad keep rule")
 
+    def test_a_keep_rule_beyond_the_qa_width_is_refused(self):
+        # The QA here is 8-bit. A value no 8-bit QA can hold had been taken: 'value == 300'
+        # dropped every observation (exit 0), 'value != 300' kept all. A negative number (a
+        # stored -1 of signed QA) is written as its unsigned bits, and the message says so.
+        for rule, keyword in (("value == 300", "beyond the 8-bit QA values"),
+                              ("value != 300", "beyond the 8-bit QA values"),
+                              ("bit 8 == 0", "beyond the 8-bit QA values"),
+                              ("value != -1", "-1 is 65535 in 16-bit QA, 255 in 8-bit")):
+            with self.subTest(rule=rule):
+                self.check_fails([os.path.join(self.good, "*.tif"), "--qa", os.path.join(self.qa, "*.tif"),
+                                  "--keep", rule], ["--keep"], [keyword], rule)
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
