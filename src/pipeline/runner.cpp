@@ -1293,6 +1293,10 @@ class Runner {
           break;
         }
         for (int y : *it->second) years.insert({y, y + 1});
+        // A seasons step's cycle_YYYY searches peaks on [year before | year | year after]: the
+        // year before a redone one reads it too (it had been left as it was).
+        if (step.kind == "seasons")
+          for (int y : *it->second) years.insert(y - 1);
       }
       if (known && !years.empty()) {
         // The year after the last one with data has nothing to redo.

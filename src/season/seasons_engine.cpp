@@ -180,9 +180,19 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       period_sources(times, periods, resolve_date_marks(request.marks, times));
   // Before anything is written: a --years of missing years only is refused.
   const std::vector<int> years_without_composite = kalends::years_without_composite(sources, first_year, P);
+  // The year before the first and the year after the last, read for the peak search alone
+  // (cycle_YYYY looks at its neighbours): with --years they may lie in the stack, and a year's
+  // cycle layer had depended on which years the run took (2016's season count changed on 46 px
+  // of a helper's stack between a run over all years and one with --years 2016-2019).
+  std::vector<Period> edge_periods;
+  for (int y : {first_year - 1, last_year + 1})
+    for (const Period& p : periods_of_year(y, request.period)) edge_periods.push_back(p);
+  const std::vector<PeriodSources> edge_sources =
+      period_sources(times, edge_periods, resolve_date_marks(request.marks, times));
   std::vector<char> used(times.size(), 0);
-  for (const PeriodSources& s : sources)
-    for (int c : s.composite) used[c] = 1;
+  for (const auto* list : {&sources, &edge_sources})
+    for (const PeriodSources& s : *list)
+      for (int c : s.composite) used[c] = 1;
 
   const Grid& grid = stack.grid();
   const Window area = area_of(grid.width, grid.height, request.region, request.input);
@@ -351,7 +361,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     w.bands.resize(total_bands);
     for (auto& b : w.bands) b.assign(n, NAN);
     auto band = [&](std::size_t file, std::size_t b) -> std::vector<float>& { return w.bands[first_band[file] + b]; };
-    std::vector<double> value(std::size_t(years) * P), mean(P), observed(std::size_t(years) * P);
+    std::vector<double> value(std::size_t(years) * P), mean(P), observed(std::size_t(years) * P), edge(2 * std::size_t(P));
     w.padded.resize(3 * P);
     auto put_cycle = [&](std::size_t file, std::int64_t p, const CycleDescriptors& d) {
       const double v[] = {d.mean, d.min, d.max, d.amplitude, d.annual.amplitude, d.annual.peak_doy,
@@ -375,6 +385,14 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         value[k] = days > 0 ? sum / days : NAN;
         if (flags) observed[k] = days > 0 ? observed_days / days : NAN;
         else observed[k] = covered_days > 0 ? days / covered_days : NAN;
+      }
+      for (std::size_t k = 0; k < edge_sources.size(); ++k) {
+        double sum = 0, days = 0;
+        for (std::size_t j = 0; j < edge_sources[k].composite.size(); ++j) {
+          const float v = w.layers[std::size_t(edge_sources[k].composite[j]) * n + p];
+          if (std::isfinite(v)) sum += edge_sources[k].days[j] * v, days += edge_sources[k].days[j];
+        }
+        edge[k] = days > 0 ? sum / days : NAN;
       }
       double all_sum = 0;
       int all_count = 0;
@@ -415,7 +433,9 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         if (cycle_file[y] == not_written) continue;
         for (int q = 0; q < 3 * P; ++q) {
           const int yy = y + q / P - 1;
-          w.padded[q] = yy >= 0 && yy < years ? value[std::size_t(yy) * P + q % P] : NAN;
+          w.padded[q] = yy < 0        ? edge[std::size_t(q % P)]
+                        : yy >= years ? edge[std::size_t(P + q % P)]
+                                      : value[std::size_t(yy) * P + q % P];
         }
         const CycleDescriptors d = describe_cycle(w.padded, period_days, request.cycle, harmonics);
         w.year_cycle_empty[y] = !std::isfinite(d.mean);

@@ -521,6 +521,35 @@ class PeakDays(kt.TempDirTestCase):
         self.assertEqual(data[names.index("main_peak_doy")][3], 200.5)
 
 
+class CycleYearsAlone(kt.TempDirTestCase):
+    def test_a_years_cycle_layer_does_not_depend_on_the_years_asked_for(self):
+        # cycle_YYYY searches its peaks on [year before | year | year after]. With --years the
+        # neighbours outside the range had not been read: the first and last years' cycles then
+        # differed from a run over all years (a helper's 2016 season count on 46 px), under the
+        # same name and metadata. Invented data: a peak near 1 January, noise, four years.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "years-alone")
+        os.makedirs(folder)
+        rng = np.random.default_rng(12)
+        for date in modis_dates(4, start=2019):
+            doy = date.timetuple().tm_yday
+            shift = rng.normal(0, 12, (6, 8))   # each pixel's peak a little off 1 January
+            values = 0.45 + 0.25 * np.cos(2 * np.pi * (doy - 3 - shift) / 365) + rng.normal(0, 0.03, (6, 8))
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
+        runs = {}
+        for label, extra in (("all", []), ("some", ["--years", "2020-2021"])):
+            out = os.path.join(self.tmp, "years-alone-" + label)
+            done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", out, "--period", "16d"] + extra)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            runs[label] = out
+        for year in (2020, 2021):
+            name = "ndvi_cycle_%d.tif" % year
+            a = g.Open(os.path.join(runs["all"], name))
+            b = g.Open(os.path.join(runs["some"], name))
+            np.testing.assert_array_equal(a.ReadAsArray(), b.ReadAsArray(), name)
+            a = b = None
+
+
 class ShortAndGappyStacks(kt.TempDirTestCase):
     """What seasons and compare say where the data cannot give a synoptic miss or a year's cycle:
     one year (a synoptic of one year is that year), and a date without data inside a year."""
