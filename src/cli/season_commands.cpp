@@ -132,15 +132,28 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
       std::fprintf(stderr, "note: %s: no pixel has a synoptic miss: it needs values of one period in two years or "
                            "more (a synoptic of one year is that year)\n",
                    r->seasons_dir.c_str());
+    if (!s.partial_periods.empty())
+      std::fprintf(stderr, "note: %s: left out %zu year-period(s) resting on part of their days (first: %s): their "
+                           "anomalies compare those days with the whole period's synoptic\n",
+                   r->seasons_dir.c_str(), s.partial_periods.size(), s.partial_periods.front().c_str());
+    // With two years every standardised anomaly is +-0.71 ((n - 1) / sqrt(n)): "no year beyond
+    // 1 sd" had read as "no unusual year".
+    std::string years_line;
+    if (s.years == 2)
+      years_line = "with 2 years no standardised anomaly can pass 1 sd; read the mean anomaly per year (compare.md)";
+    else if (s.year_most_below.empty() && s.year_most_above.empty())
+      years_line = "no year has a pixel-period beyond 1 sd";
+    else if (s.year_most_below == s.year_most_above)
+      years_line = fmt::format("most pixel-periods below -1 sd and above +1 sd both in {}: a year that swings both ways "
+                               "(a season earlier or later than usual, say), not one higher or lower throughout",
+                               s.year_most_below);
+    else
+      years_line = fmt::format("most pixel-periods below -1 sd in {}, above +1 sd in {}",
+                               s.year_most_below.empty() ? "no year" : s.year_most_below,
+                               s.year_most_above.empty() ? "no year" : s.year_most_above);
     if (!global.quiet)
       fmt::print("kalends compare: median synoptic RMSE {:.4g}, median explained share {:.3f}; {}\n  {}\n  {}\n  {}\n",
-                 s.median_rmse, s.median_explained,
-                 s.year_most_below.empty() && s.year_most_above.empty()
-                     ? std::string("no year has a pixel-period beyond 1 sd")
-                     : fmt::format("most pixel-periods below -1 sd in {}, above +1 sd in {}",
-                                   s.year_most_below.empty() ? "no year" : s.year_most_below,
-                                   s.year_most_above.empty() ? "no year" : s.year_most_above),
-                 s.markdown_path, s.json_path, s.class_path);
+                 s.median_rmse, s.median_explained, years_line, s.markdown_path, s.json_path, s.class_path);
   };
 }
 

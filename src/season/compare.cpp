@@ -78,7 +78,27 @@ struct Anomaly {
   double standardised = 0, raw = 0;
   int x = 0, y = 0, year = 0;
   std::string period;
+  double observed = NAN;  // the share of the period's value resting on observations (fill outputs)
 };
+
+// The periods of a year layer that rest on part of their days (a stack that starts or ends
+// within them, a composite missing): band -> "2015 Jun (21 of 30 days)". Empty where the layer
+// is missing or says nothing of its days.
+std::map<int, std::string> partly_covered_periods(const std::string& path, int year) {
+  std::map<int, std::string> partial;
+  std::error_code ec;
+  if (!fs::exists(path, ec)) return partial;
+  GDALDatasetUniquePtr ds = detail::open_raster(path);
+  for (int b = 1; b <= ds->GetRasterCount(); ++b) {
+    GDALRasterBand* band = ds->GetRasterBand(b);
+    const char* covered = band->GetMetadataItem("KALENDS_DAYS_COVERED");
+    const char* days = band->GetMetadataItem("KALENDS_PERIOD_DAYS");
+    if (!covered || !days) continue;
+    const double c = std::atof(covered), d = std::atof(days);
+    if (c > 0 && c < d) partial[b] = fmt::format("{} {} ({:g} of {:g} days)", year, band->GetDescription(), c, d);
+  }
+  return partial;
+}
 
 }  // namespace
 
@@ -233,9 +253,22 @@ CompareSummary run_compare(const CompareRequest& request) {
     require_like_the_synoptic(*ds, path);
     require_like_the_synoptic(*raw, raw_path);
     YearStats& ys = per_year[year];
+    // A period resting on part of its days compares those days with the whole period's
+    // synoptic: in a cycle identical every year its anomaly is the seasonal change within the
+    // period (a helper measured standardised anomalies of +1.9 there). Left out of the years'
+    // shares and the largest anomalies, and said.
+    const std::map<int, std::string> partial =
+        partly_covered_periods((fs::path(request.seasons_dir) / fmt::format("{}_year_{}.tif", name, year)).string(), year);
+    for (const auto& [band, label] : partial) summary.partial_periods.push_back(label);
+    const std::string observed_path = (fs::path(request.seasons_dir) / fmt::format("{}_observed_{}.tif", name, year)).string();
+    std::error_code ec;
+    GDALDatasetUniquePtr observed = fs::exists(observed_path, ec) ? detail::open_raster(observed_path) : nullptr;
+    if (observed && observed->GetRasterCount() != ds->GetRasterCount()) observed.reset();
     for (int b = 1; b <= ds->GetRasterCount(); ++b) {
+      if (partial.count(b)) continue;
       const std::vector<float> z = read_band(*ds, b, path);
       const std::vector<float> a = read_band(*raw, b, raw_path);
+      const std::vector<float> o = observed ? read_band(*observed, b, observed_path) : std::vector<float>();
       const std::string period = ds->GetRasterBand(b)->GetDescription();
       for (std::size_t i = 0; i < z.size(); ++i) {
         if (std::isfinite(a[i])) ys.sum += a[i], ys.count++;
@@ -244,7 +277,7 @@ CompareSummary run_compare(const CompareRequest& request) {
         ys.below += z[i] < -1.0f;
         ys.above += z[i] > 1.0f;
         if (request.top > 0 && (top.size() < std::size_t(request.top) || std::abs(a[i]) > std::abs(top.back().raw))) {
-          top.push_back({z[i], a[i], int(i % width), int(i / width), year, period});
+          top.push_back({z[i], a[i], int(i % width), int(i / width), year, period, o.empty() ? NAN : double(o[i])});
           std::sort(top.begin(), top.end(), [](const Anomaly& l, const Anomaly& r) {
             return std::abs(l.raw) > std::abs(r.raw);
           });
@@ -290,7 +323,8 @@ CompareSummary run_compare(const CompareRequest& request) {
                       fmt::join(summary.stale_years, ", "));
   json += "  \"synoptic_rmse\": " + distribution_json(r) + ",\n";
   json += "  \"explained_share\": " + distribution_json(e) + ",\n";
-  json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [", detail::json_number(top_edge / bins));
+  json += fmt::format("  \"rmse_histogram\": {{\"bin_width\": {}, \"counts\": [",
+                      detail::json_number(finite_rmse.empty() ? NAN : top_edge / bins));
   for (int b = 0; b < bins; ++b) json += (b ? ", " : "") + std::to_string(histogram[b]);
   json += "]},\n  \"zones\": [";
   bool first = true;
@@ -302,8 +336,11 @@ CompareSummary run_compare(const CompareRequest& request) {
   json += "],\n  \"years\": [";
   first = true;
   double most_below = -1, most_above = -1;
+  // One year: its anomalies are 0 by construction (the synoptic is that year), not a finding.
+  const bool one_year = per_year.size() < 2;
+  summary.years = int(per_year.size());
   for (const auto& [year, s] : per_year) {
-    const double mean = s.count ? s.sum / double(s.count) : NAN;
+    const double mean = s.count && !one_year ? s.sum / double(s.count) : NAN;
     json += fmt::format("{}\n    {{\"year\": {}, \"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
                         first ? "" : ",", year, detail::json_number(mean), detail::json_number(s.defined ? double(s.below) / s.defined : NAN),
                         detail::json_number(s.defined ? double(s.above) / s.defined : NAN));
@@ -315,9 +352,14 @@ CompareSummary run_compare(const CompareRequest& request) {
   }
   json += "],\n  \"largest_anomalies\": [";
   for (std::size_t i = 0; i < top.size(); ++i)
-    json += fmt::format("{}\n    {{\"x\": {}, \"y\": {}, \"year\": {}, \"period\": \"{}\", \"standardised\": {}, \"anomaly\": {}}}",
+    json += fmt::format("{}\n    {{\"x\": {}, \"y\": {}, \"year\": {}, \"period\": \"{}\", \"standardised\": {}, \"anomaly\": {}, "
+                        "\"observed_share\": {}}}",
                         i ? "," : "", top[i].x, top[i].y, top[i].year, top[i].period,
-                        detail::json_number(top[i].standardised), detail::json_number(top[i].raw));
+                        detail::json_number(top[i].standardised), detail::json_number(top[i].raw),
+                        detail::json_number(top[i].observed));
+  json += "],\n  \"partial_periods_left_out\": [";
+  for (std::size_t i = 0; i < summary.partial_periods.size(); ++i)
+    json += (i ? ", \"" : "\"") + detail::json_escape(summary.partial_periods[i]) + "\"";
   json += fmt::format("],\n  \"year_most_below\": {},\n  \"year_most_above\": {},\n",
                       summary.year_most_below.empty() ? "null" : summary.year_most_below,
                       summary.year_most_above.empty() ? "null" : summary.year_most_above);
@@ -344,20 +386,46 @@ CompareSummary run_compare(const CompareRequest& request) {
     md += fmt::format("\nLeft out: the anomaly files of {}, outside the synoptic's years ({}): found in the folder "
                       "(an earlier `kalends seasons` run's, or copied in), they are not this synoptic's.\n",
                       fmt::join(summary.stale_years, ", "), summary.synoptic_years);
+  if (!summary.partial_periods.empty())
+    md += fmt::format("\nLeft out of the years' shares and the largest anomalies: {} year-period{} resting on part of "
+                      "{} days ({}{}): {} anomal{} compare those days with the whole period's synoptic.\n",
+                      summary.partial_periods.size(), summary.partial_periods.size() == 1 ? "" : "s",
+                      summary.partial_periods.size() == 1 ? "its" : "their",
+                      fmt::join(summary.partial_periods.begin(),
+                                summary.partial_periods.begin() + std::ptrdiff_t(std::min<std::size_t>(5, summary.partial_periods.size())), ", "),
+                      summary.partial_periods.size() > 5 ? ", ..." : "",
+                      summary.partial_periods.size() == 1 ? "its" : "their",
+                      summary.partial_periods.size() == 1 ? "y would" : "ies would");
   md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
+  auto number_or_dash = [](double v, const char* format) {
+    return std::isfinite(v) ? fmt::format(fmt::runtime(format), v) : std::string("-");
+  };
   for (const auto& [year, s] : per_year)
-    md += fmt::format("| {} | {:+.4f} | {:.1f} % | {:.1f} % |\n", year, s.count ? s.sum / double(s.count) : NAN,
-                      s.defined ? 100.0 * double(s.below) / s.defined : NAN, s.defined ? 100.0 * double(s.above) / s.defined : NAN);
+    md += fmt::format("| {} | {} | {} | {} |\n", year,
+                      number_or_dash(s.count && !one_year ? s.sum / double(s.count) : NAN, "{:+.4f}"),
+                      number_or_dash(s.defined ? 100.0 * double(s.below) / s.defined : NAN, "{:.1f} %"),
+                      number_or_dash(s.defined ? 100.0 * double(s.above) / s.defined : NAN, "{:.1f} %"));
+  if (per_year.size() >= 2 && per_year.size() <= 3) {
+    const double n = double(per_year.size());
+    md += fmt::format("\nWith {} years a standardised anomaly cannot exceed (n - 1) / sqrt(n) = {:.2f} in size{}: read "
+                      "the mean anomaly and the synoptic RMSE.\n",
+                      per_year.size(), (n - 1) / std::sqrt(n), per_year.size() == 2 ? ", so none passes 1 sd" : "");
+  }
   if (!zones.empty()) {
-    md += "\n## Zones\n\n| zone | pixels | median synoptic RMSE | median explained share |\n|---|---|---|---|\n";
+    md += "\n## Zones\n\n| zone | pixels with a value | median synoptic RMSE | median explained share |\n|---|---|---|---|\n";
     for (auto& [zone, values] : zones) {
       const Distribution zr = describe(values.first), ze = describe(values.second);
       md += fmt::format("| {} | {} | {:.4g} | {:.4g} |\n", zone, zr.count, zr.quantiles[2], ze.quantiles[2]);
     }
   }
-  md += "\n## Largest anomalies\n\n| x | y | year | period | standardised | anomaly |\n|---|---|---|---|---|---|\n";
+  md += "\n## Largest anomalies\n\n| x | y | year | period | standardised | anomaly | observed share |\n"
+        "|---|---|---|---|---|---|---|\n";
   for (const Anomaly& a : top)
-    md += fmt::format("| {} | {} | {} | {} | {:+.2f} | {:+.4f} |\n", a.x, a.y, a.year, a.period, a.standardised, a.raw);
+    md += fmt::format("| {} | {} | {} | {} | {:+.2f} | {:+.4f} | {} |\n", a.x, a.y, a.year, a.period, a.standardised, a.raw,
+                      number_or_dash(a.observed, "{:.2f}"));
+  if (std::any_of(top.begin(), top.end(), [](const Anomaly& a) { return std::isfinite(a.observed); }))
+    md += "\nObserved share: of the days behind the period's value, those with an observation (fill flag 0); a "
+          "large anomaly on a small share rests on a few composites (or on filled values).\n";
   md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more).\n",
                     fs::path(summary.class_path).filename().string());
   summary.markdown_path = (fs::path(request.out_dir) / "compare.md").string();

@@ -550,6 +550,56 @@ class CycleYearsAlone(kt.TempDirTestCase):
             a = b = None
 
 
+class CompareOnPartOfAPeriod(kt.TempDirTestCase):
+    def test_periods_on_part_of_their_days_are_left_out_and_said(self):
+        # A cycle identical every year, the stack starting on 10 June 2015: June 2015 rests on 21
+        # of its 30 days, and its anomaly is the seasonal change within June (standardised +1.9
+        # on a helper's stack), which compare had counted as an unusual year. Checked against
+        # numpy on the seasons layers. Invented data.
+        import datetime as dt
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "part")
+        os.makedirs(folder)
+        rng = np.random.default_rng(3)
+        dates = [d for d in modis_dates(3, start=2015) if d >= dt.date(2015, 6, 10)]
+        for date in dates:
+            doy = date.timetuple().tm_yday
+            values = 0.4 + 0.3 * np.sin(2 * np.pi * (doy - 80) / 365) + rng.normal(0, 0.005, (4, 5))
+            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
+        seasons = os.path.join(self.tmp, "part-seasons")
+        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        out = os.path.join(self.tmp, "part-compare")
+        done = kt.run_kalends(["compare", seasons, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("left out 1 year-period(s) resting on part of their days (first: 2015 ", done.stderr)
+        with open(os.path.join(out, "compare.json")) as f:
+            report = json.load(f)
+        self.assertEqual(len(report["partial_periods_left_out"]), 1)
+        self.assertIn("(21 of 30 days)", report["partial_periods_left_out"][0])
+        # The shares of 2015 over its whole periods alone, from the layers with numpy.
+        year = g.Open(os.path.join(seasons, "ndvi_year_2015.tif"))
+        whole = [b for b in range(1, year.RasterCount + 1)
+                 if year.GetRasterBand(b).GetMetadataItem("KALENDS_DAYS_COVERED")
+                 == year.GetRasterBand(b).GetMetadataItem("KALENDS_PERIOD_DAYS")]
+        year = None
+        z = g.Open(os.path.join(seasons, "ndvi_anomaly_standardised_2015.tif")).ReadAsArray()[np.array(whole) - 1]
+        z = z[np.isfinite(z)]
+        got = [y for y in report["years"] if y["year"] == 2015][0]
+        self.assertAlmostEqual(got["share_above_1_sd"], float(np.mean(z > 1)), places=9)
+        self.assertAlmostEqual(got["share_below_minus_1_sd"], float(np.mean(z < -1)), places=9)
+        for anomaly in report["largest_anomalies"]:
+            self.assertFalse(anomaly["year"] == 2015 and anomaly["period"] == "month 06", anomaly)
+        # Two years: no standardised anomaly can pass 1 sd, and the console says why rather than
+        # "no year has a pixel-period beyond 1 sd".
+        two = os.path.join(self.tmp, "part-two")
+        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", two, "--years", "2016-2017"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        done = kt.run_kalends(["compare", two, "--out", two + "-compare"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("with 2 years no standardised anomaly can pass 1 sd", done.stdout)
+
+
 class ShortAndGappyStacks(kt.TempDirTestCase):
     """What seasons and compare say where the data cannot give a synoptic miss or a year's cycle:
     one year (a synoptic of one year is that year), and a date without data inside a year."""
@@ -588,6 +638,9 @@ class ShortAndGappyStacks(kt.TempDirTestCase):
         year = report["years"][0]
         self.assertIsNone(year["share_below_minus_1_sd"])    # no standardised anomaly is defined
         self.assertIsNone(year["share_above_1_sd"])
+        # Nor a mean anomaly (0 by construction: the synoptic is the year), nor an invented bin width.
+        self.assertIsNone(year["mean_anomaly"])
+        self.assertIsNone(report["rmse_histogram"]["bin_width"])
 
     def test_compare_refuses_layers_of_two_periods_and_a_users_report(self):
         # A folder holding seasons layers of two --period runs (one year's anomalies monthly, the
