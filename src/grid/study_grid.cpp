@@ -360,8 +360,8 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (!grid.has_geotransform && !by_points)
       throw InputError(s.path, "has no georeferencing (no geotransform): it cannot be placed on a study grid");
     if (grid.crs_wkt.empty() && !by_points)
-      throw InputError(s.path, "states no CRS: it cannot be placed on a study grid (give the file its CRS, e.g. "
-                               "gdal_edit.py -a_srs EPSG:32736)");
+      throw InputError(s.path, "states no CRS: it cannot be placed on a study grid (give the file its CRS with "
+                               "gdal_edit.py -a_srs, the EPSG code of the CRS it was made in)");
     if (!request.extent && grid.has_geotransform) require_not_across_antimeridian(grid, request.crs, s.path);
     // A CF NetCDF with longitude/latitude axes and no CRS: WGS 84, as every command reads it.
     source_crs.push_back(d.GetSpatialRef() || by_points ? std::string() : grid.crs_wkt);

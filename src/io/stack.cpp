@@ -409,10 +409,24 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
     throw InputError(where, "grid is " + std::to_string(actual.width) + " x " + std::to_string(actual.height) +
                                 " px, that of " + expected_from + " is " + std::to_string(expected.width) + " x " +
                                 std::to_string(expected.height));
+  // Which side lacks a geotransform, or where the two differ and by how much in pixels: a
+  // shift of 1e-5 px is refused, and the bare "differs" had not said why.
+  if (expected.has_geotransform != actual.has_geotransform)
+    throw InputError(where, actual.has_geotransform ? "has a geotransform, " + expected_from + " has none"
+                                                    : "has no georeferencing, " + expected_from + " has");
   const double pixel = std::max(std::abs(expected.geotransform[1]), std::abs(expected.geotransform[5]));
+  const auto& e = expected.geotransform;
+  const auto& a = actual.geotransform;
   for (int i = 0; i < 6; ++i)
-    if (std::abs(expected.geotransform[i] - actual.geotransform[i]) > 1e-6 * std::max(pixel, 1e-12))
-      throw InputError(where, "georeferencing (origin or pixel size) differs from that of " + expected_from);
+    if (std::abs(e[i] - a[i]) > 1e-6 * std::max(pixel, 1e-12)) {
+      if (i == 0 || i == 3)
+        throw InputError(where, fmt::format("origin ({:.10g}, {:.10g}) differs from that of {} ({:.10g}, {:.10g}) by "
+                                            "{:.3g} px", a[0], a[3], expected_from, e[0], e[3],
+                                            std::hypot(a[0] - e[0], a[3] - e[3]) / std::max(pixel, 1e-12)));
+      throw InputError(where, fmt::format("pixel size or rotation ({:.10g}, {:.10g}, {:.10g}, {:.10g}) differs from that "
+                                          "of {} ({:.10g}, {:.10g}, {:.10g}, {:.10g})",
+                                          a[1], a[2], a[4], a[5], expected_from, e[1], e[2], e[4], e[5]));
+    }
   if (!same_crs(expected.crs_wkt, actual.crs_wkt))
     throw InputError(where, "coordinate reference system differs from that of " + expected_from);
 }

@@ -135,8 +135,19 @@ class BadInput(kt.TempDirTestCase):
         folder = self.variant("geotransform")
         shifted = (GEOTRANSFORM[0] + 30.0,) + GEOTRANSFORM[1:]
         write_layer(os.path.join(folder, "ndvi_2020-02-18.tif"), 7, geotransform=shifted)
-        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-18.tif"],
-                         ["georeferenc", "geotransform", "origin", "pixel size"], "geotransform")
+        messages = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-18.tif"],
+                                    ["georeferenc", "geotransform", "origin", "pixel size"], "geotransform")
+        # Where and by how much (a bare "differs" had not said why a file 1e-5 px off is refused).
+        self.assertIn("origin (500030, 7000000) differs from that of", messages[0])
+        self.assertIn("(500000, 7000000) by 1 px", messages[0])
+
+    def test_a_date_without_georeferencing_is_named_as_such(self):
+        folder = self.variant("no-georeferencing")
+        values = np.full((HEIGHT, WIDTH), 0.3, np.float32)
+        kt.write_raster(os.path.join(folder, "ndvi_2020-02-18.tif"), values)
+        messages = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-02-18.tif"],
+                                    ["no georeferencing"], "no georeferencing")
+        self.assertIn("has no georeferencing, ", messages[0])
 
     def test_crs_mismatch(self):
         folder = self.variant("crs")
