@@ -112,6 +112,9 @@ Quicklook continuous_quicklook(const std::string& path, const std::vector<int>& 
     };
     q.low = at(0.02);
     q.high = at(0.98);
+    const auto [smallest, largest] = std::minmax_element(finite.begin(), finite.end());
+    q.minimum = *smallest;
+    q.maximum = *largest;
   }
   std::vector<unsigned char> rgba(r.values.size() * 4, 0);
   const double span = q.high > q.low ? q.high - q.low : 1.0;

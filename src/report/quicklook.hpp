@@ -12,6 +12,7 @@ struct Quicklook {
   std::string png_base64;
   int width = 0, height = 0;
   double low = 0, high = 0;  // the values at the ends of the ramp
+  double minimum = 0, maximum = 0;  // of the cells drawn: beyond the ends, they take the end colours
   long cells_with_value = 0;
 };
 

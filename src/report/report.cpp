@@ -75,14 +75,22 @@ std::string legend_svg(const Quicklook& q, const std::string& unit, int number) 
   for (int i = 0; i <= 10; ++i)
     stops += fmt::format("<stop offset=\"{}%\" stop-color=\"{}\"/>", i * 10, hex(viridis(i / 10.0)));
   const std::string id = fmt::format("ramp{}", number);
+  // Cells beyond the stretch take the end colours: the ends say so, and the range is given
+  // (a count layer of 3 years almost everywhere and 0 at six pixels had read "3 .. 3").
+  const bool below = q.minimum < q.low, above = q.maximum > q.high;
+  const std::string range =
+      below || above ? fmt::format("<text x=\"130\" y=\"42\" text-anchor=\"middle\">cells range {:.4g} to {:.4g}</text>",
+                                   q.minimum, q.maximum)
+                     : std::string();
   return fmt::format(
-      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"34\" class=\"legend\" role=\"img\">"
+      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"{5}\" class=\"legend\" role=\"img\">"
       "<defs><linearGradient id=\"{0}\">{1}</linearGradient></defs>"
       "<rect x=\"5\" y=\"2\" width=\"250\" height=\"12\" fill=\"url(#{0})\" stroke=\"#999\"/>"
-      "<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\"><text x=\"5\" y=\"28\">{2:.4g}</text>"
+      "<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\"><text x=\"5\" y=\"28\">{6}{2:.4g}</text>"
       "<text x=\"130\" y=\"28\" text-anchor=\"middle\">{4}</text>"
-      "<text x=\"255\" y=\"28\" text-anchor=\"end\">{3:.4g}</text></g></svg>",
-      id, stops, q.low, q.high, escape(unit.empty() ? "(no unit)" : unit));
+      "<text x=\"255\" y=\"28\" text-anchor=\"end\">{7}{3:.4g}</text>{8}</g></svg>",
+      id, stops, q.low, q.high, escape(unit.empty() ? "(no unit)" : unit), range.empty() ? 34 : 46,
+      below ? "&#8804; " : "", above ? "&#8805; " : "", range);
 }
 
 std::string flag_legend() {
@@ -131,6 +139,11 @@ std::string image(const Quicklook& q, const std::string& alt) {
 
 // Markdown tables, headings and paragraphs of a validate report, as HTML.
 std::string markdown_to_html(const std::string& md) {
+  // Escaped text with `code` spans as <code> (the backticks had been shown as they are).
+  auto inline_html = [](const std::string& text) {
+    static const std::regex code("`([^`]*)`");
+    return std::regex_replace(escape(text), code, "<code>$1</code>");
+  };
   std::string out, line;
   std::istringstream in(md);
   bool in_table = false, header_row = false;
@@ -153,7 +166,7 @@ std::string markdown_to_html(const std::string& md) {
       if (!in_table) out += "<table>\n", in_table = true, header_row = true;
       if (line.find("---") != std::string::npos) continue;
       out += "<tr>";
-      for (const std::string& c : cells(line)) out += (header_row ? "<th>" : "<td>") + escape(c) + (header_row ? "</th>" : "</td>");
+      for (const std::string& c : cells(line)) out += (header_row ? "<th>" : "<td>") + inline_html(c) + (header_row ? "</th>" : "</td>");
       out += "</tr>\n";
       header_row = false;
       continue;
@@ -162,8 +175,8 @@ std::string markdown_to_html(const std::string& md) {
     if (line.empty()) continue;
     int level = 0;
     while (level < int(line.size()) && line[level] == '#') ++level;
-    if (level > 0) out += fmt::format("<h4>{}</h4>\n", escape(line.substr(level + (line.size() > std::size_t(level) ? 1 : 0))));
-    else out += "<p>" + escape(line) + "</p>\n";
+    if (level > 0) out += fmt::format("<h4>{}</h4>\n", inline_html(line.substr(level + (line.size() > std::size_t(level) ? 1 : 0))));
+    else out += "<p>" + inline_html(line) + "</p>\n";
   }
   if (in_table) out += "</table>\n";
   return out;
@@ -631,6 +644,10 @@ ReportSummary run_report(const ReportRequest& request) {
   for (const CovariateSeries& s : all)
     for (const SeriesFile& f : s.files)
       if (const auto time = fs::last_write_time(f.path, ec); !ec && (!newest || time > *newest)) newest = time;
+  // And the validation reports and fill summaries shown (a page of validation alone had no date).
+  for (const fs::path& p : found)
+    if (p.filename() == "report.md" || p.filename() == "fill-summary.json")
+      if (const auto time = fs::last_write_time(p, ec); !ec && (!newest || time > *newest)) newest = time;
   std::string as_of;
   if (newest) {
     const auto seconds = std::chrono::duration_cast<std::chrono::seconds>(

@@ -44,13 +44,27 @@ struct Frame {
       svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\" text-anchor=\"end\">{:g}</text>\n", left - 4, y(v) + 4,
                          std::abs(v) < step * 1e-6 ? 0.0 : v);
     }
+    // Years; under two years, every month's first day (a series within one year had shown no
+    // date on its axis at all), labelled with its month and, in January or first, its year.
+    static constexpr const char* months[12] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
+                                               "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"};
+    const bool monthly = t1 - t0 < 2 * 365.25;
+    bool labelled = false;
     for (int year = civil_from_days(std::int64_t(t0)).year;; ++year) {
-      const double t = double(days_from_civil(year, 1, 1));
-      if (t > t1) break;
-      if (t < t0) continue;
-      svg += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.1f}\" y2=\"{2:.1f}\" stroke=\"#bbbbbb\"/>", x(t),
-                         top, height - bottom);
-      svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\">{}</text>\n", x(t) + 3, height - bottom + 14, year);
+      if (double(days_from_civil(year, 1, 1)) > t1) break;
+      for (int month = 1; month <= (monthly ? 12 : 1); ++month) {
+        const double t = double(days_from_civil(year, month, 1));
+        if (t > t1) break;
+        if (t < t0) continue;
+        const bool year_line = month == 1;
+        svg += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.1f}\" y2=\"{2:.1f}\" stroke=\"{3}\"/>", x(t),
+                           top, height - bottom, year_line ? "#bbbbbb" : "#eeeeee");
+        const std::string label = !monthly                        ? std::to_string(year)
+                                  : year_line || !labelled        ? fmt::format("{} {}", months[month - 1], year)
+                                                                  : std::string(months[month - 1]);
+        svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\">{}</text>\n", x(t) + 3, height - bottom + 14, label);
+        labelled = true;
+      }
     }
     svg += fmt::format("<text x=\"12\" y=\"{:.1f}\" transform=\"rotate(-90 12 {:.1f})\" text-anchor=\"middle\">{}</text>\n",
                        (top + height - bottom) / 2, (top + height - bottom) / 2, unit.empty() ? "value" : unit);

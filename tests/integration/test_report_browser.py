@@ -76,7 +76,11 @@ class ReportInBrowser(kt.TempDirTestCase):
         for section in SECTIONS:
             self.assertIn('<section id="%s">' % section, self.page)
         self.assertTrue("validate/report.md" in self.page, "no validation report")
-        self.assertIn("whittaker", self.page.split('id="validation"')[1].split("</section>")[0])
+        validation = self.page.split('id="validation"')[1].split("</section>")[0]
+        self.assertIn("whittaker", validation)
+        # report.md's `code` spans as code, not backticks shown as they are.
+        self.assertIn("<code>", validation)
+        self.assertNotIn("`", validation)
         self.assertTrue("fill/fill-summary.json" in self.page, "no fill statistics")
         # Three pixels' time series, and the three pixels of the validation's series.csv.
         svg = '<svg xmlns="http://www.w3.org/2000/svg" width="760"'
@@ -220,6 +224,11 @@ class ReportMapsNorthUp(kt.TempDirTestCase):
         self.assertEqual(int(alpha[-1, -1]), 0)
         self.assertGreater(int(alpha[0, 0]), 0)
         self.assertIn("cells 250 x 250 m, south-up", page)
+        # The stretch runs from the 2nd percentile: the cells below it take its colour, so the
+        # legend marks that end and gives the range (a layer of 3 almost everywhere and 0 at a
+        # few cells had read "3 .. 3").
+        self.assertIn("&#8804; ", page)
+        self.assertIn("cells range %.4g to %.4g" % (np.nanmin(values), np.nanmax(values)), page)
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)

@@ -104,6 +104,10 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
             page = f.read()
         stats = page.split('id="fill-statistics"')[1].split("</section>")[0]
         self.assertIn("<td>input</td><td>%s</td>" % html_module.escape(summary["input"]), stats)
+        # A series within one year: its axis names the months (it had shown no date at all).
+        series = page.split('id="time-series"')[1]
+        self.assertIn(">Feb 1999</text>", series)   # the first month start after 31 January
+        self.assertIn(">Jul</text>", series)
         for reason, pixels in summary["series_not_fitted"].items():
             self.assertIn("<td>series_not_fitted: %s</td><td>%d</td>" % (html_module.escape(reason), pixels),
                           stats)

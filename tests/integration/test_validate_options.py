@@ -430,7 +430,13 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("0 maps, 0 time series, 1 validation reports (3 pixel plots)", done.stdout)
         with open(os.path.join(self.tmp, "only-validation.html")) as f:
-            self.assertIn("No raster layer in this folder.", f.read())
+            page = f.read()
+        self.assertIn("No raster layer in this folder.", page)
+        # How current the page is, from the report it shows (a page of validation alone had none).
+        import datetime
+        stamp = datetime.datetime.fromtimestamp(int(os.stat(os.path.join(out, "report.md")).st_mtime),
+                                                datetime.timezone.utc).strftime("%Y-%m-%d %H:%M")
+        self.assertIn("Outputs as of %s UTC" % stamp, page)
         os.makedirs(os.path.join(self.tmp, "nothing"))
         done = kt.run_kalends(["report", os.path.join(self.tmp, "nothing"), "--html",
                                os.path.join(self.tmp, "nothing.html")])
