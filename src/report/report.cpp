@@ -584,7 +584,17 @@ ReportSummary run_report(const ReportRequest& request) {
                                     s.files.size() == 1 ? "" : "s"),
                         classes.empty() ? "ramp from the 2nd to the 98th percentile" : "a colour per class",
                         escape(where), classes.empty() ? legend_svg(q, s.unit, summary.maps) : class_legend(classes));
-    if (!s.caution.empty()) maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
+    if (!s.caution.empty()) {
+      // What a suitability layer rests on: its model and what counts as a suitable period (the
+      // maps had given neither; with the default threshold 0 a period of index 0.001 counts).
+      const std::string model = metadata_item(file.path, "KALENDS_MODEL");
+      const std::string threshold = metadata_item(file.path, "KALENDS_THRESHOLD");
+      if (!model.empty())
+        maps += "<p class=\"note\">" + escape("Model: " + model +
+                                              (threshold.empty() ? "" : "; a period counts as suitable where its index is above " + threshold) +
+                                              ".") + "</p>";
+      maps += "<p class=\"caution\">" + escape(s.caution) + "</p>";
+    }
     maps += "</figure>\n";
     ++summary.maps;
     if (s.has_sd_and_flag) {

@@ -124,6 +124,9 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         for band in ("suitable_months", "longest_suitable_run", "mean_suitability"):
             self.assertIn("<b>r0-2013_summary_synoptic.%s</b>" % band, page)
         self.assertNotIn("r0-2013_summary_1999", page)   # the years' own: extract --descriptors
+        # Each suitability map says its model and what counts as suitable (it had said neither).
+        self.assertIn("a period counts as suitable where its index is above 0.", page)
+        self.assertIn("Model: ", page)
         # How current the page is: the newest file shown, to the minute (a page left from an
         # earlier night, its report step waiting on a failed step, had not shown its age).
         newest = max(os.stat(p).st_mtime for p in glob.glob(os.path.join(out, "*.tif")))
