@@ -125,8 +125,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--mosaic", o->mosaic, "With --tiles: also write OUT/mosaic/, one VRT per date over all tiles");
   sub->add_option("--subset", o->subset, "Fill these pixels only: COLUMN,ROW,WIDTH,HEIGHT (as "
                   "gdal_translate -srcwin); a method with a halo still reads the pixels around them");
-  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G; "
-                                        "without it, more where one block needs more, up to half the machine's memory")
+  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G; when not given, 1G, "
+                                        "or more where one block needs more, up to half the machine's memory")
                             ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();

@@ -38,8 +38,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--radius", r.neighbourhood_radius,
                   "Neighbourhood radius (pixels) for the breakdown by missing neighbours")
       ->capture_default_str();
-  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget of each fill; without it, "
-                                        "more where one block needs more, up to half the machine's memory")
+  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget of each fill; when not given, 1G, "
+                                        "or more where one block needs more, up to half the machine's memory")
                             ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--series", r.series_pixels, "Pixels (those with the most withheld values) whose truth and "
