@@ -298,9 +298,9 @@ ValidateReport run_validate(const ValidateRequest& request) {
       request.memory_ceiling == 0 && whole > request.memory_bytes)
     throw UsageError("--memory", fmt::format("budget of {} MiB is too small: validate holds the whole stack in memory "
                                              "(about {} MiB for {} dates of {} x {} px) beside each fill's blocks; "
-                                             "give more, or validate a part of the area with --subset",
+                                             "give more than {}M, or validate a part of the area with --subset",
                                              request.memory_bytes >> 20, (whole >> 20) + 1, dates, grid.width,
-                                             grid.height));
+                                             grid.height, (whole >> 20) + 1));
   truth.v.resize(std::size_t(dates) * truth.plane());
   const std::size_t plane = truth.plane();
   // A value the QA rule rejects is missing, as in a fill with the same rule: never scored, and
