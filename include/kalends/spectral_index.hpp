@@ -21,11 +21,15 @@ float spectral_index(SpectralIndex kind, float red, float nir, float blue);
 struct IndexRequest {
   std::string red, nir, blue;  // stacks (globs or files); blue only for EVI
   int red_band = 1, nir_band = 1, blue_band = 1;
+  /// Where a role's band was not given, an input that is one file with a dated band per date (a
+  /// NetCDF time axis) is read date by date; otherwise band 1 of each file.
+  bool red_band_given = false, nir_band_given = false, blue_band_given = false;
   SpectralIndex kind = SpectralIndex::ndvi;
   ValueRules rules;       // scale, offset, nodata overrides for all bands
   /// An input's own rules where they differ (a job's inputs each carry theirs): "red", "nir", "blue".
   std::map<std::string, ValueRules> rules_of;
   std::string qa;         // QA stack to pass through to out_dir/qa/
+  int qa_band = 1;        // its band in each file (a job input's qa_band)
   std::string out_dir;
   std::string name;       // default "ndvi" / "evi"
   int threads = 0;

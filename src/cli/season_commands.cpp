@@ -26,11 +26,14 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--red", r.red, "Red band: quoted glob of single-date rasters, or one file")->required();
   sub->add_option("--nir", r.nir, "Near-infrared band, paired with red by date")->required();
   sub->add_option("--blue", r.blue, "Blue band (EVI)");
-  sub->add_option("--red-band", r.red_band, "Band of each red file")->capture_default_str();
-  sub->add_option("--nir-band", r.nir_band, "Band of each near-infrared file")->capture_default_str();
-  sub->add_option("--blue-band", r.blue_band, "Band of each blue file")->capture_default_str();
+  CLI::Option* red_band = sub->add_option("--red-band", r.red_band,
+                                          "Band of each red file (default 1; one file with a band per date, such "
+                                          "as a NetCDF time axis, is read date by date)");
+  CLI::Option* nir_band = sub->add_option("--nir-band", r.nir_band, "Band of each near-infrared file (as --red-band)");
+  CLI::Option* blue_band = sub->add_option("--blue-band", r.blue_band, "Band of each blue file (as --red-band)");
   sub->add_option("--kind", o->kind, "ndvi or evi")->check(CLI::IsMember({"ndvi", "evi"}))->capture_default_str();
   sub->add_option("--qa", r.qa, "QA stack to pass through (copied to OUT/qa/, named by date)");
+  sub->add_option("--qa-band", r.qa_band, "Band of the QA in each QA file")->capture_default_str();
   sub->add_option("--out", r.out_dir, "Output folder")->required();
   sub->add_option("--name", r.name, "Output name prefix (default: the kind)");
   sub->add_option("--scale", o->scale, "Override the files' scale factor");
@@ -40,8 +43,11 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--date", o->date, "Date of files whose names carry none (YYYY-MM-DD)");
   sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
-  return [o, &global] {
+  return [o, &global, red_band, nir_band, blue_band] {
     IndexRequest& r = o->request;
+    r.red_band_given = red_band->count() > 0;
+    r.nir_band_given = nir_band->count() > 0;
+    r.blue_band_given = blue_band->count() > 0;
     r.kind = o->kind == "evi" ? SpectralIndex::evi : SpectralIndex::ndvi;
     r.rules.scale = optional_number(o->scale, "--scale");
     r.rules.offset = optional_number(o->offset, "--offset");

@@ -5,6 +5,7 @@
 
 #include <algorithm>
 #include <atomic>
+#include <cctype>
 #include <cmath>
 #include <filesystem>
 #include <fmt/format.h>
@@ -95,6 +96,7 @@ void check_index_options(const IndexRequest& request) {
   check_band(request.red_band, "--red-band");
   check_band(request.nir_band, "--nir-band");
   check_band(request.blue_band, "--blue-band");
+  check_band(request.qa_band, "--qa-band");
   // The same band twice gives an index of 0 (or a ratio of a band with itself) everywhere.
   auto same = [](const std::string& a, int band_a, const std::string& b, int band_b) {
     return a == b && band_a == band_b;
@@ -120,8 +122,24 @@ IndexSummary run_index(const IndexRequest& request) {
     r.one_date_per_file = true;
     return r;
   };
-  const Stack red = Stack::open(request.red, rules_for(request.red_band, "red"));
-  const Stack nir = Stack::open(request.nir, rules_for(request.nir_band, "nir"));
+  // One file holding a band per date (a NetCDF time axis) had been read as one scene, band 1:
+  // the other dates were dropped without a word. Where the band was not given and the input is
+  // one name, it is read date by date when its bands carry dates.
+  auto open_role = [&](const std::string& input, int band, bool given, const char* role) {
+    if (!given && input.find_first_of("*?[") == std::string::npos) {
+      ValueRules by_date = rules_for(band, role);
+      by_date.one_date_per_file = false;
+      try {
+        Stack dated = Stack::open(input, by_date);
+        if (dated.layers().size() > 1) return dated;
+      } catch (const Error&) {
+        // No dated bands (a multi-band scene with its date in the name): one date, band 1.
+      }
+    }
+    return Stack::open(input, rules_for(band, role));
+  };
+  const Stack red = open_role(request.red, request.red_band, request.red_band_given, "red");
+  const Stack nir = open_role(request.nir, request.nir_band, request.nir_band_given, "nir");
   const std::vector<std::size_t> nir_of = partners_by_date(red, nir, "near-infrared");
   // And the other way round: a near-infrared (or blue) date without its red had been left out
   // without a word.
@@ -130,7 +148,7 @@ IndexSummary run_index(const IndexRequest& request) {
   std::optional<Stack> blue;
   std::vector<std::size_t> blue_of;
   if (evi) {
-    blue = Stack::open(request.blue, rules_for(request.blue_band, "blue"));
+    blue = open_role(request.blue, request.blue_band, request.blue_band_given, "blue");
     blue_of = partners_by_date(red, *blue, "blue");
     partners_by_date(*blue, red, "red");
     require_reflectance(red, "--red");
@@ -154,7 +172,9 @@ IndexSummary run_index(const IndexRequest& request) {
   std::optional<Stack> qa;
   std::vector<std::size_t> qa_of;
   if (!request.qa.empty()) {
-    qa = Stack::open(request.qa, ValueRules{});
+    ValueRules qa_rules;
+    qa_rules.band = request.qa_band;  // a job input's qa_band had been ignored: band 1 taken as QA
+    qa = Stack::open(request.qa, qa_rules);
     qa_of = partners_by_date(red, *qa, "QA");
   }
   const std::string name = request.name.empty() ? (evi ? "evi" : "ndvi") : request.name;
@@ -229,7 +249,11 @@ IndexSummary run_index(const IndexRequest& request) {
     bool plain_files = true;
     for (const Layer& q : qa->layers()) {
       std::error_code ignored;
-      plain_files = plain_files && q.band == 1 && paths.insert(q.path).second && fs::is_regular_file(q.path, ignored);
+      // A GeoTIFF alone: a VRT copied elsewhere loses its relative sources.
+      std::string extension = fs::path(q.path).extension().string();
+      std::transform(extension.begin(), extension.end(), extension.begin(), [](unsigned char c) { return std::tolower(c); });
+      plain_files = plain_files && q.band == 1 && paths.insert(q.path).second && fs::is_regular_file(q.path, ignored) &&
+                    (extension == ".tif" || extension == ".tiff");
     }
     for (std::size_t i = 0; i < red.layers().size(); ++i) {
       const Layer& q = qa->layers()[qa_of[i]];

@@ -9,16 +9,34 @@
 
 namespace kalends::detail {
 
-/// `text` with quotes, backslashes and control characters escaped, for use inside "...".
+/// `text` with quotes, backslashes and control characters escaped, for use inside "...". A
+/// byte that is not part of valid UTF-8 (a file name in Latin-1) is written as the code point
+/// of that byte (\u00e9): JSON is UTF-8, and the raw byte had made a summary no reader takes.
 inline std::string json_escape(const std::string& text) {
   std::string out;
-  for (char c : text) {
-    if (c == '"' || c == '\\') out += '\\';
-    if (static_cast<unsigned char>(c) < 0x20) {
+  const std::size_t n = text.size();
+  for (std::size_t i = 0; i < n; ++i) {
+    const unsigned char c = static_cast<unsigned char>(text[i]);
+    if (c == '"' || c == '\\') {
+      out += '\\';
+      out += char(c);
+    } else if (c < 0x20) {
       out += fmt::format("\\u{:04x}", int(c));
-      continue;
+    } else if (c < 0x80) {
+      out += char(c);
+    } else {
+      // The length of the sequence this lead byte starts, and whether its continuation bytes
+      // follow (overlong forms and surrogates are rare enough in paths to pass).
+      const std::size_t length = c >= 0xc2 && c <= 0xdf ? 2 : c >= 0xe0 && c <= 0xef ? 3 : c >= 0xf0 && c <= 0xf4 ? 4 : 0;
+      bool valid = length > 0 && i + length <= n;
+      for (std::size_t k = 1; valid && k < length; ++k) valid = (static_cast<unsigned char>(text[i + k]) & 0xc0) == 0x80;
+      if (valid) {
+        out.append(text, i, length);
+        i += length - 1;
+      } else {
+        out += fmt::format("\\u{:04x}", int(c));
+      }
     }
-    out += c;
   }
   return out;
 }

@@ -1419,6 +1419,37 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             np.testing.assert_array_equal(mine, fresh, name)
 
 
+class IndexStepQaBand(kt.TempDirTestCase):
+    def test_the_red_inputs_qa_band_is_passed_through(self):
+        # Red files holding reflectance in band 1 and QA in band 2 (qa_band = 2): the index step
+        # had passed band 1 through as the QA, so the fill masked every observation (exit 0).
+        # Invented data: one cloudy row per date.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "qa-band")
+        os.makedirs(os.path.join(folder, "r"))
+        os.makedirs(os.path.join(folder, "n"))
+        dates = ["2021-01-01", "2021-01-17", "2021-02-02", "2021-02-18"]
+        for k, d in enumerate(dates):
+            ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, "r", "red_%s.tif" % d), 8, 6, 2, g.GDT_Float32)
+            ds.GetRasterBand(1).WriteArray(np.full((6, 8), 0.1, np.float32))
+            qa = np.zeros((6, 8), np.float32)
+            qa[k, :] = 1
+            ds.GetRasterBand(2).WriteArray(qa)
+            ds = None
+            kt.write_raster(os.path.join(folder, "n", "nir_%s.tif" % d), np.full((6, 8), 0.4, np.float32))
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.red]\nstack = "r/red_*.tif"\nqa = "r/red_*.tif"\nqa_band = 2\n'
+                    'keep = "value == 0"\n[inputs.nir]\nstack = "n/nir_*.tif"\n'
+                    '[[step]]\nid = "index"\ndo = "index"\nred = "red"\nnir = "nir"\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "index"\nkeep = "value == 0"\nlambda = 10\n')
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        summary = kt.read_summary(os.path.join(folder, "out", "fill"))
+        self.assertEqual(summary["masked_by_qa"], 4 * 8)
+        self.assertEqual(summary["observed"], 4 * 48 - 4 * 8)
+
+
 class EachInputItsOwnRules(kt.TempDirTestCase):
     """A step of two inputs (day and night, red and NIR) reads each with its own [inputs.NAME]
     keys. Before, the last input's scale, offset and nodata were applied to both, and the other's

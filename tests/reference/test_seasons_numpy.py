@@ -970,6 +970,49 @@ class RealData(kt.TempDirTestCase):
         self.assertIn("nir_2020-01-17.tif: no red layer for 2020-01-17", done.stderr)
         self.assertEqual(len(done.stderr.strip().splitlines()), 1)
 
+    def test_index_reads_a_netcdf_time_axis_date_by_date(self):
+        # One NetCDF file per band, a time axis of four dates: index had read band 1 as one
+        # scene, written the first date and dropped three without a word. Checked against numpy
+        # (NDVI = (NIR - red) / (NIR + red)). Invented data, written with scipy's netcdf_file.
+        from scipy.io import netcdf_file
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "bands-netcdf")
+        os.makedirs(folder)
+        rng = np.random.default_rng(7)
+        frames = {"red": (0.05 + 0.1 * rng.random((4, 6, 8))).astype("f4"),
+                  "nir": (0.2 + 0.3 * rng.random((4, 6, 8))).astype("f4")}
+        for name, data in frames.items():
+            f = netcdf_file(os.path.join(folder, name + ".nc"), "w")
+            f.createDimension("time", 4)
+            f.createDimension("y", 6)
+            f.createDimension("x", 8)
+            t = f.createVariable("time", "d", ("time",))
+            t[:] = [0, 16, 32, 48]
+            t.units = "days since 2021-01-01"
+            t.calendar = "standard"
+            t.standard_name = "time"
+            x = f.createVariable("x", "d", ("x",))
+            x[:] = 500000 + 30 * np.arange(8) + 15
+            x.standard_name = "projection_x_coordinate"
+            x.units = "m"
+            y = f.createVariable("y", "d", ("y",))
+            y[:] = 4000000 - 30 * np.arange(6) - 15
+            y.standard_name = "projection_y_coordinate"
+            y.units = "m"
+            v = f.createVariable(name, "f4", ("time", "y", "x"))
+            v[:] = data
+            f.close()
+        out = os.path.join(self.tmp, "index-netcdf")
+        done = kt.run_kalends(["index", "--red", 'NETCDF:"%s":red' % os.path.join(folder, "red.nc"),
+                               "--nir", 'NETCDF:"%s":nir' % os.path.join(folder, "nir.nc"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("kalends index: 4 dates", done.stdout)
+        for k, date in enumerate(["2021-01-01", "2021-01-17", "2021-02-02", "2021-02-18"]):
+            ds = g.Open(os.path.join(out, "ndvi_%s.tif" % date))
+            red, nir = frames["red"][k].astype(np.float64), frames["nir"][k].astype(np.float64)
+            np.testing.assert_allclose(ds.ReadAsArray(), (nir - red) / (nir + red), rtol=1e-6, err_msg=date)
+            ds = None
+
     def test_index_takes_a_valid_range(self):
         # A job's index step took valid_range; the command had no --valid-range. A saturated
         # reflectance (1.45) is missing, and so is the index there. Invented data.
@@ -1017,6 +1060,22 @@ class RealData(kt.TempDirTestCase):
         for k, d in enumerate(dates):
             copy = g.Open(os.path.join(out, "qa", "qa_%s.tif" % d))
             self.assertEqual(copy.RasterCount, 1, d)
+            np.testing.assert_array_equal(copy.GetRasterBand(1).ReadAsArray(), qa[k], d)
+            copy = None
+        # QA files that are VRTs pointing at their sources by relative path are written as
+        # GeoTIFFs (a copy elsewhere had lost its sources, and fill then called it corrupt).
+        vrts = os.path.join(folder, "vrt")
+        os.makedirs(vrts)
+        for k, d in enumerate(dates):
+            kt.write_raster(os.path.join(vrts, "src_%s.tif" % d), qa[k])
+            g.Translate(os.path.join(vrts, "qa_%s.vrt" % d), os.path.join(vrts, "src_%s.tif" % d), format="VRT")
+        out = os.path.join(self.tmp, "index-qa-vrt")
+        done = kt.run_kalends(["-q", "index", "--red", os.path.join(folder, "red_*.tif"),
+                               "--nir", os.path.join(folder, "nir_*.tif"), "--qa", os.path.join(vrts, "qa_*.vrt"),
+                               "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for k, d in enumerate(dates):
+            copy = g.Open(os.path.join(out, "qa", "qa_%s.tif" % d))
             np.testing.assert_array_equal(copy.GetRasterBand(1).ReadAsArray(), qa[k], d)
             copy = None
 

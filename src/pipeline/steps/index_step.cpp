@@ -30,8 +30,12 @@ IndexRequest index_request(const StepContext& c) {
   r.red_band = c.integer("red_band", 1);
   r.nir_band = c.integer("nir_band", 1);
   r.blue_band = c.integer("blue_band", 1);
+  r.red_band_given = c.has("red_band");
+  r.nir_band_given = c.has("nir_band");
+  r.blue_band_given = c.has("blue_band");
   r.kind = index_kind(c);
   r.qa = red.qa;
+  r.qa_band = red.qa_band;
   take_run_settings(r, c);
   return r;
 }
