@@ -139,8 +139,8 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
                            "more (a synoptic of one year is that year)\n",
                    r->seasons_dir.c_str());
     if (!s.partial_periods.empty())
-      std::fprintf(stderr, "note: %s: left out %zu year-period(s) resting on part of their days (first: %s): their "
-                           "anomalies compare those days with the whole period's synoptic\n",
+      std::fprintf(stderr, "note: %s: left out %zu year-period(s) resting on fewer days than in other years (first: "
+                           "%s): their anomalies would compare those days with a synoptic of more\n",
                    r->seasons_dir.c_str(), s.partial_periods.size(), s.partial_periods.front().c_str());
     // With two years every standardised anomaly is +-0.71 ((n - 1) / sqrt(n)): "no year beyond
     // 1 sd" had read as "no unusual year".

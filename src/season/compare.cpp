@@ -15,6 +15,7 @@
 #include <map>
 #include <optional>
 #include <regex>
+#include <set>
 
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
@@ -81,23 +82,17 @@ struct Anomaly {
   double observed = NAN;  // the share of the period's value resting on observations (fill outputs)
 };
 
-// The periods of a year layer that rest on part of their days (a stack that starts or ends
-// within them, a composite missing): band -> "2015 Jun (21 of 30 days)". Empty where the layer
-// is missing or says nothing of its days.
-std::map<int, std::string> partly_covered_periods(const std::string& path, int year) {
-  std::map<int, std::string> partial;
+// The days each period of a year layer rests on (KALENDS_DAYS_COVERED), band -> days and the
+// band's name; empty where the layer is missing or says nothing of its days.
+std::map<int, std::pair<double, std::string>> covered_days(const std::string& path) {
+  std::map<int, std::pair<double, std::string>> covered;
   std::error_code ec;
-  if (!fs::exists(path, ec)) return partial;
+  if (!fs::exists(path, ec)) return covered;
   GDALDatasetUniquePtr ds = detail::open_raster(path);
-  for (int b = 1; b <= ds->GetRasterCount(); ++b) {
-    GDALRasterBand* band = ds->GetRasterBand(b);
-    const char* covered = band->GetMetadataItem("KALENDS_DAYS_COVERED");
-    const char* days = band->GetMetadataItem("KALENDS_PERIOD_DAYS");
-    if (!covered || !days) continue;
-    const double c = std::atof(covered), d = std::atof(days);
-    if (c > 0 && c < d) partial[b] = fmt::format("{} {} ({:g} of {:g} days)", year, band->GetDescription(), c, d);
-  }
-  return partial;
+  for (int b = 1; b <= ds->GetRasterCount(); ++b)
+    if (const char* days = ds->GetRasterBand(b)->GetMetadataItem("KALENDS_DAYS_COVERED"))
+      covered[b] = {std::atof(days), ds->GetRasterBand(b)->GetDescription()};
+  return covered;
 }
 
 }  // namespace
@@ -246,6 +241,16 @@ CompareSummary run_compare(const CompareRequest& request) {
                                               "layers of two `kalends seasons` runs in one folder",
                                               p ? p : "none", y ? y : "none", period, my ? my : "none"));
   }
+  // Year-periods resting on fewer days than the same period does in other years (a stack that
+  // starts or ends within it, a composite missing): their anomaly compares those days with a
+  // synoptic of whole periods. A period every year covers alike (a summers-only stack's May) is
+  // compared like with like; a day's difference is the leap year's.
+  std::map<int, std::map<int, std::pair<double, std::string>>> coverage;  // year -> band -> days
+  std::map<int, double> most_covered;                                     // band -> days
+  for (const auto& [year, path] : anomaly_files) {
+    coverage[year] = covered_days((fs::path(request.seasons_dir) / fmt::format("{}_year_{}.tif", name, year)).string());
+    for (const auto& [band, days] : coverage[year]) most_covered[band] = std::max(most_covered[band], days.first);
+  }
   for (const auto& [year, path] : anomaly_files) {
     GDALDatasetUniquePtr ds = detail::open_raster(path);
     const std::string raw_path = (fs::path(request.seasons_dir) / fmt::format("{}_anomaly_{}.tif", name, year)).string();
@@ -257,9 +262,15 @@ CompareSummary run_compare(const CompareRequest& request) {
     // synoptic: in a cycle identical every year its anomaly is the seasonal change within the
     // period (a helper measured standardised anomalies of +1.9 there). Left out of the years'
     // shares and the largest anomalies, and said.
-    const std::map<int, std::string> partial =
-        partly_covered_periods((fs::path(request.seasons_dir) / fmt::format("{}_year_{}.tif", name, year)).string(), year);
-    for (const auto& [band, label] : partial) summary.partial_periods.push_back(label);
+    std::set<int> partial;
+    for (const auto& [band, days] : coverage[year]) {
+      const double most = most_covered[band];
+      if (days.first > 0 && days.first < most - std::max(1.0, 0.1 * most)) {
+        partial.insert(band);
+        summary.partial_periods.push_back(
+            fmt::format("{} {} ({:g} days, against {:g} in other years)", year, days.second, days.first, most));
+      }
+    }
     const std::string observed_path = (fs::path(request.seasons_dir) / fmt::format("{}_observed_{}.tif", name, year)).string();
     std::error_code ec;
     GDALDatasetUniquePtr observed = fs::exists(observed_path, ec) ? detail::open_raster(observed_path) : nullptr;
@@ -387,10 +398,9 @@ CompareSummary run_compare(const CompareRequest& request) {
                       "(an earlier `kalends seasons` run's, or copied in), they are not this synoptic's.\n",
                       fmt::join(summary.stale_years, ", "), summary.synoptic_years);
   if (!summary.partial_periods.empty())
-    md += fmt::format("\nLeft out of the years' shares and the largest anomalies: {} year-period{} resting on part of "
-                      "{} days ({}{}): {} anomal{} compare those days with the whole period's synoptic.\n",
-                      summary.partial_periods.size(), summary.partial_periods.size() == 1 ? "" : "s",
-                      summary.partial_periods.size() == 1 ? "its" : "their",
+    md += fmt::format("\nLeft out of the years' shares and the largest anomalies: {} year-period{} resting on fewer "
+                      "days than in other years{} ({}{}): {} anomal{} compare those days with a synoptic of more.\n",
+                      summary.partial_periods.size(), summary.partial_periods.size() == 1 ? "" : "s", "",
                       fmt::join(summary.partial_periods.begin(),
                                 summary.partial_periods.begin() + std::ptrdiff_t(std::min<std::size_t>(5, summary.partial_periods.size())), ", "),
                       summary.partial_periods.size() > 5 ? ", ..." : "",
