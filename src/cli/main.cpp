@@ -68,10 +68,23 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
   std::smatch m;
   static const std::regex conversion(R"(Could not convert: (--?[\w-]+) = (.*))");
   static const std::regex range(R"((--?[\w-]+): Value (.*) not in range (\S+) to (\S+))");
-  static const std::regex missing(R"((--?[\w-]+): \d+ required \S+ missing)");
+  static const std::regex missing(R"((--?[\w-]+): \d+ required .* missing)");
+  static const std::regex repeated(R"((--?[\w-]+): At Most \d+ required but received \d+)");
+  static const std::regex not_in(R"((--?[\w-]+): (.*) not in \{(.*)\})");
+  if (std::regex_match(text, m, repeated)) return fmt::format("{}: {}: given more than once", name, m[1].str());
+  if (std::regex_match(text, m, not_in)) {
+    std::string choices = m[3].str();
+    for (std::size_t at = choices.find(','); at != std::string::npos; at = choices.find(',', at + 2))
+      choices.replace(at, 1, ", ");
+    return fmt::format("{}: {}: '{}' is not one of {}", name, m[1].str(), m[2].str(), choices);
+  }
   if (std::regex_match(text, m, missing)) return fmt::format("{}: {}: needs a value", name, m[1].str());
-  if (std::regex_match(text, m, conversion))
+  if (std::regex_match(text, m, conversion)) {
+    // A switch has no type name (CLI11 would read --smooth=true as one).
+    if (const CLI::Option* o = command->get_option_no_throw(m[1].str()); o && o->get_type_name().empty())
+      return fmt::format("{}: {}: is a switch and takes no value ('{}' given)", name, m[1].str(), m[2].str());
     return fmt::format("{}: {}: '{}' is not {}", name, m[1].str(), m[2].str(), kind_of(m[1].str()));
+  }
   if (std::regex_match(text, m, range))
     return fmt::format("{}: {}: '{}' is not {} from {} to {}", name, m[1].str(), m[2].str(), kind_of(m[1].str()),
                        m[3].str(), m[4].str());

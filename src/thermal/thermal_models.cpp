@@ -200,11 +200,20 @@ void ThermalParameters::override_from_file(const std::string& path) {
   if (file.empty())
     throw InputError(path, "holds no parameters; leave the parameter file out to use the published values");
   std::vector<ThermalParameter> updated = entries_;
+  std::size_t keys = 0;
   for (auto&& [section_name, node] : file) {
     const std::string section(section_name.str());
     const toml::table* table = node.as_table();
     if (table == nullptr)
       throw InputError(path, "'" + section + "' is not a [section] of parameters");
+    // A section of no known model, even an empty one, is a slip (it had been taken silently).
+    if (std::none_of(updated.begin(), updated.end(), [&](const ThermalParameter& e) { return e.section == section; })) {
+      std::string known;
+      for (const ThermalParameter& e : updated)
+        if (known.find("[" + e.section + "]") == std::string::npos) known += (known.empty() ? "" : ", ") + ("[" + e.section + "]");
+      throw InputError(path, "unknown section [" + section + "] (known: " + known + ")");
+    }
+    keys += table->size();
     for (auto&& [key_name, value] : *table) {
       const std::string key(key_name.str()), where = section + "." + key;
       auto entry = std::find_if(updated.begin(), updated.end(), [&](const ThermalParameter& e) {
@@ -230,6 +239,9 @@ void ThermalParameters::override_from_file(const std::string& path) {
       entry->source = "overridden by " + path;
     }
   }
+  if (keys == 0)
+    throw InputError(path, "holds no parameters, only empty sections; leave the parameter file out to use the published "
+                           "values");
   entries_ = std::move(updated);
 }
 

@@ -512,7 +512,13 @@ class BadInput(kt.TempDirTestCase):
                                (["fill", "x/*.tif", "--out", "o", "--threads", "2.5"],
                                 "kalends: fill: --threads: '2.5' is not a whole number from 0 to 4096"),
                                (["fill", "x/*.tif", "y", "--out", "o"],
-                                "kalends: fill: unexpected argument 'y' (kalends fill --help says what it takes)")):
+                                "kalends: fill: unexpected argument 'y' (kalends fill --help says what it takes)"),
+                               (["fill", "x/*.tif", "--out", "o", "--threads"], "kalends: fill: --threads: needs a value"),
+                               (["fill", "x/*.tif", "--out", "o", "--out", "p"], "kalends: fill: --out: given more than once"),
+                               (["fill", "x/*.tif", "--out", "o", "--envelope", "lower"],
+                                "kalends: fill: --envelope: 'lower' is not one of none, upper"),
+                               (["fill", "x/*.tif", "--out", "o", "--smooth=abc"],
+                                "kalends: fill: --smooth: is a switch and takes no value ('abc' given)")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")

@@ -265,6 +265,9 @@ class BadInput(kt.TempDirTestCase):
         # A folder had read as an empty table and an empty file had been taken: the published
         # values were used, exit 0, without a word. Diurnal reads the same files.
         self.assertIn("holds no parameters", self.run_with_parameters("empty.toml", ""))
+        # An empty section, or one of no model, had been taken the same way.
+        self.assertIn("holds no parameters", self.run_with_parameters("empty-section.toml", "[r0-2013]\n"))
+        self.assertIn("unknown section [no-such-model]", self.run_with_parameters("unknown.toml", "[no-such-model]\n"))
         folder = os.path.join(self.tmp, "params-folder")
         make_stack(folder, np.random.default_rng(1))
         inputs = ["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"]
