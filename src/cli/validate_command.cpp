@@ -7,6 +7,7 @@
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
+#include "kalends/percent.hpp"
 #include "engine/memory_budget.hpp"
 #include "kalends/error.hpp"
 #include "validate/validate.hpp"
@@ -87,8 +88,8 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
             why = fmt::format(" ({} pixels not fitted: {})", commonest->second, commonest->first);
           fmt::print("  {:<{}} no value on any withheld cell{}\n", label(s), width, why);
         } else {
-          fmt::print("  {:<{}} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {:.1f} %\n",
-                     label(s), width, s.rmse, s.mae, s.bias, s.r2, 100 * s.coverage);
+          fmt::print("  {:<{}} RMSE {:.4f}  MAE {:.4f}  bias {:+.4f}  R2 {:.3f}  coverage {}\n",
+                     label(s), width, s.rmse, s.mae, s.bias, s.r2, percent_text(s.coverage));
         }
       }
       const std::string out = (std::filesystem::path(r.out_dir) / "").string();  // one slash, however given
