@@ -7,6 +7,8 @@
 #include <fmt/format.h>
 
 #include <fcntl.h>
+#include <sys/resource.h>
+#include <cerrno>
 #include <unistd.h>
 
 #include <algorithm>
@@ -136,7 +138,19 @@ void throw_unreadable(const std::string& path, const std::string& reason) {
   if (memory_is_short())
     throw Error(path, "cannot be read: out of memory (GDAL said: " + gdal_message("nothing") +
                           "); give a smaller --memory budget or run where more memory is free");
+  // Out of file descriptors is the machine's limit, not a damaged file: it had been exit 2, and
+  // --skip-bad left good composites out (or went on reopening them without end).
+  if (reason.find("Too many open files") != std::string::npos) throw Error(path, "cannot be opened: " + open_files_limit_text());
   throw InputError(path, reason);
+}
+
+std::string open_files_limit_text() {
+  rlimit limit{};
+  getrlimit(RLIMIT_NOFILE, &limit);
+  return fmt::format("too many files open at once (the limit, ulimit -n, is {}); a fill keeps each date's input and "
+                     "output file open, so it needs about twice as many as the stack has dates: raise the limit "
+                     "(ulimit -n, or LimitNOFILE= in a systemd unit)",
+                     static_cast<long long>(limit.rlim_cur));
 }
 
 GDALDatasetUniquePtr open_raster(const std::string& path) {

@@ -33,6 +33,10 @@ bool memory_is_short();
 /// Error (exit 1, not skipped as bad input) where memory is short, else InputError.
 [[noreturn]] void throw_unreadable(const std::string& path, const std::string& reason);
 
+/// What to say where a file cannot be opened or created for want of file descriptors (EMFILE):
+/// the limit, and that a fill keeps every date's files open.
+std::string open_files_limit_text();
+
 /// A CRS as people name it, with its EPSG code where the database knows it ("SIRGAS 2000 / UTM
 /// zone 25S (EPSG:31985)"); "" without a CRS.
 std::string crs_name_of(const std::string& wkt);

@@ -29,6 +29,7 @@ namespace kalends::detail {
 namespace fs = std::filesystem;
 
 OutputError write_failure(const std::string& path, const std::string& what) {
+  if (what.find("Too many open files") != std::string::npos) return OutputError(path, "cannot create: " + open_files_limit_text());
   struct statvfs device{};
   const std::string folder = fs::path(path).parent_path().string();
   if (::statvfs(folder.empty() ? "." : folder.c_str(), &device) == 0) {

@@ -1419,6 +1419,33 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             np.testing.assert_array_equal(mine, fresh, name)
 
 
+class OpenFilesLimit(kt.TempDirTestCase):
+    def test_too_few_file_descriptors_is_no_bad_input(self):
+        # A fill keeps each date's input and output open. Under a small open-files limit the
+        # first file past it had been called damaged (exit 2), and --skip-bad left good
+        # composites out for good. It is the machine's limit: exit 1, nothing left out, and the
+        # message names the limit. Invented data, 60 dates.
+        import resource
+        folder = os.path.join(self.tmp, "descriptors")
+        synth_stack.make_stack(os.path.join(folder, "stack", "ndvi"), width=8, height=8, start_year=2021, dates=60)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "stack/ndvi/ndvi_*.tif"\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+
+        def limit():
+            resource.setrlimit(resource.RLIMIT_NOFILE, (64, 64))
+
+        for args in ([], ["--skip-bad"]):
+            done = run(job, *args, preexec=limit)
+            self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+            self.assertIn("too many files open at once (the limit, ulimit -n, is 64)", done.stdout + done.stderr)
+            self.assertNotIn("skipped input", done.stdout)
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        self.assertEqual(len(glob.glob(os.path.join(folder, "out", "fill", "ndvi_*.tif"))), 60)
+
+
 class IndexStepQaBand(kt.TempDirTestCase):
     def test_the_red_inputs_qa_band_is_passed_through(self):
         # Red files holding reflectance in band 1 and QA in band 2 (qa_band = 2): the index step
