@@ -23,6 +23,9 @@ struct SeasonsRequest {
   DateMarks marks = DateMarks::automatic;
   CycleOptions cycle;
   std::int64_t memory_bytes = std::int64_t(1) << 30;
+  /// Where one block needs more than memory_bytes, the budget may rise to this (the user gave no
+  /// --memory); 0 = refuse instead.
+  std::int64_t memory_ceiling = 0;
   int threads = 0;
   Compression compression = Compression::deflate;
   std::string command_line;
@@ -39,6 +42,7 @@ struct SeasonsRequest {
 
 struct SeasonsSummary {
   int outputs_written = 0, outputs_unchanged = 0;
+  std::int64_t memory_raised_to = 0;  // the budget used instead of memory_bytes (memory_ceiling); 0 if none
   int outputs_removed = 0;  // an earlier run's year layers of years outside this run's
   int years = 0, periods = 0, files = 0, width = 0, height = 0;
   int first_year = 0, last_year = 0;

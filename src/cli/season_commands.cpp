@@ -7,6 +7,7 @@
 #include <cstdio>
 
 #include "cli/commands.hpp"
+#include "engine/memory_budget.hpp"
 #include "kalends/compare.hpp"
 #include "kalends/error.hpp"
 #include "kalends/seasons.hpp"
@@ -98,15 +99,18 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
       ->capture_default_str();
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");
   sub->add_option("--band", r.rules.band, "Band of each input file (1 = value of fill outputs)")->capture_default_str();
-  sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G")->capture_default_str();
+  CLI::Option* memory = sub->add_option("--memory", o->memory, "Working-set budget, e.g. 512M or 4G; when not given, "
+                                        "1G, or more where one block needs more, up to half the machine's memory")
+                            ->capture_default_str();
   sub->add_option("--threads", r.threads, "Worker threads; 0 = all cores (the default)")->check(CLI::Range(0, 4096));
   sub->add_option("--compress", o->compression, "deflate, zstd, lzw or none")->capture_default_str();
-  return [o, &global] {
+  return [o, &global, memory] {
     SeasonsRequest& r = o->request;
     r.period = CalendarPeriod::parse(o->period, "--period");
     if (!o->years.empty()) std::tie(r.first_year, r.last_year) = parse_years(o->years);
     r.marks = parse_date_marks(o->marks);
     r.memory_bytes = parse_memory(o->memory);
+    if (memory->count() == 0) r.memory_ceiling = detail::usable_memory_bytes() / 2;
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;
     const SeasonsSummary s = run_seasons(r);
@@ -114,6 +118,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
       fmt::print("kalends seasons: {} year{} ({}-{}) x {} periods of {} x {} px in {:.1f} s -> {} ({} files)\n",
                  s.years, s.years == 1 ? "" : "s", s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
                  r.out_dir, s.files);
+    if (s.memory_raised_to > 0) print_memory_note(r.memory_bytes, s.memory_raised_to);
     for (const std::string& note : seasons_notes(r, s)) std::fprintf(stderr, "note: %s\n", note.c_str());
     note_month_end_dates(s.dates_at_month_ends, r.marks);
   };

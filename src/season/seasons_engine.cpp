@@ -314,9 +314,22 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
       std::int64_t(times.size()) * (flags ? 8 : 4) + 4 + std::int64_t(total_bands) * 4;
   std::set<std::string> files;
   for (const Layer& l : stack.layers()) files.insert(l.path);
-  const auto [share, at_once] = detail::share_for_blocks(
-      request.memory_bytes, threads, BlockPlan::smallest_read_window(grid.width, grid.height, 0, tile_size),
-      bytes_per_pixel, int(files.size()), int(specs.size()));
+  // As fill: without a --memory given, a budget too small for one block rises to what one block
+  // needs, up to the ceiling (a long record's 8-day seasons had been refused after its fill ran).
+  const Window smallest = BlockPlan::smallest_read_window(grid.width, grid.height, 0, tile_size);
+  detail::BlockShare fitted;
+  std::int64_t raised_to = 0;
+  try {
+    fitted = detail::share_for_blocks(request.memory_bytes, threads, smallest, bytes_per_pixel, int(files.size()),
+                                      int(specs.size()));
+  } catch (const UsageError&) {
+    const std::int64_t one_block =
+        detail::budget_for_read_pixels(smallest.pixels(), 1, bytes_per_pixel, int(files.size()), int(specs.size()));
+    if (request.memory_ceiling == 0 || one_block > request.memory_ceiling) throw;
+    fitted = detail::share_for_blocks(one_block, 1, smallest, bytes_per_pixel, int(files.size()), int(specs.size()));
+    raised_to = one_block;
+  }
+  const auto [share, at_once] = fitted;
   detail::set_gdal_cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
   std::vector<std::string> output_paths;
@@ -509,6 +522,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     if (!period_has_value[q]) summary.periods_without_value.push_back(q);
   summary.outputs = output_paths;
   summary.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+  summary.memory_raised_to = raised_to;
   return summary;
 }
 
