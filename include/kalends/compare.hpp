@@ -20,7 +20,9 @@ struct CompareSummary {
   std::string year_most_below, year_most_above;  // most pixel-periods beyond -1 / +1 sd; "" if none
   std::string synoptic_years;                    // the synoptic's KALENDS_YEARS, e.g. 2004-2009
   std::vector<int> stale_years;  // anomaly files outside the synoptic's years, left out
-  std::vector<std::string> partial_periods;  // year-periods on part of their days, left out: "2015 Jun (21 of 30 days)"
+  /// Year-periods on fewer days than the same period in other years, left out of the years'
+  /// shares and the largest anomalies: "2015 month 06 (21 days, against 30 in other years)".
+  std::vector<std::string> partial_periods;
   int years = 0;  // years with anomaly layers
 };
 

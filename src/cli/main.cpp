@@ -98,10 +98,6 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
       return fmt::format("{}: {} more files than the command takes (the first: {}); a pattern such as "
                          "'ndvi/*.tif' needs quotes, or the shell expands it into its files",
                          name, files, extras.front());
-  }
-  if (dynamic_cast<const CLI::ExtrasError*>(&e) != nullptr) {
-    std::vector<std::string> extras = command->remaining();
-    for (const std::string& extra : app.remaining()) extras.push_back(extra);
     if (!extras.empty())
       return fmt::format("{}: unexpected argument '{}' (kalends {} --help says what it takes)", name, extras.front(),
                          name);

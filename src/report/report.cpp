@@ -185,13 +185,19 @@ std::string markdown_to_html(const std::string& md) {
 std::string fill_statistics_html(const fs::path& summary, const fs::path& root) {
   // Read as JSON (a regular expression had cut strings at an escaped quote, the NetCDF input
   // 'NETCDF:"x.nc":tas' shown as 'NETCDF:\', and skipped the nested series_not_fitted).
+  // One summary kalends cannot read (an older version wrote a file name's Latin-1 bytes raw)
+  // is said in its place; the page is still made.
   nlohmann::ordered_json v;
+  std::string problem;
   try {
     v = nlohmann::ordered_json::parse(read_file(summary));
+    if (!v.is_object()) problem = "not a JSON object";
   } catch (const nlohmann::json::exception& e) {
-    throw InputError(summary.string(), std::string("not a readable fill summary (") + e.what() + ")");
+    problem = e.what();
   }
-  if (!v.is_object()) throw InputError(summary.string(), "not a readable fill summary (not a JSON object)");
+  if (!problem.empty())
+    return fmt::format("<h3>{}</h3>\n<p class=\"note\">Not a readable fill summary ({}).</p>\n",
+                       escape(fs::relative(summary, root).string()), escape(problem));
   const double total = v.contains("pixel_dates") && v["pixel_dates"].is_number() ? v["pixel_dates"].get<double>() : 0;
   auto text_of = [](const nlohmann::ordered_json& value) -> std::string {
     if (value.is_string()) return value.get<std::string>();

@@ -104,6 +104,14 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
             page = f.read()
         stats = page.split('id="fill-statistics"')[1].split("</section>")[0]
         self.assertIn("<td>input</td><td>%s</td>" % html_module.escape(summary["input"]), stats)
+        # A summary no JSON reader takes (an older version wrote a Latin-1 file name's byte raw)
+        # is named on the page, which is still made.
+        with open(os.path.join(out, "fill", "fill-summary.json"), "wb") as f:
+            f.write(b'{"input": "lat\xe9in/*.tif", "pixel_dates": 5}')
+        done = kt.run_kalends(["report", out, "--html", page_path + ".2.html"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page_path + ".2.html") as f:
+            self.assertIn("Not a readable fill summary (", f.read())
         # A series within one year: its axis names the months (it had shown no date at all).
         series = page.split('id="time-series"')[1]
         self.assertIn(">Feb 1999</text>", series)   # the first month start after 31 January
