@@ -195,6 +195,9 @@ std::string fill_statistics_html(const fs::path& summary, const fs::path& root) 
   } catch (const nlohmann::json::exception& e) {
     problem = e.what();
   }
+  // The parser quotes what it last read, raw: bytes beyond ASCII out, since the page is UTF-8.
+  for (char& c : problem)
+    if (static_cast<unsigned char>(c) >= 0x80) c = '?';
   if (!problem.empty())
     return fmt::format("<h3>{}</h3>\n<p class=\"note\">Not a readable fill summary ({}).</p>\n",
                        escape(fs::relative(summary, root).string()), escape(problem));
