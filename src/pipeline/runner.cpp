@@ -321,7 +321,9 @@ bool inside(const std::string& path, const std::string& folder) {
 // output folder was copied (`cp -a out copy`, the job's out changed to the copy). The originals
 // still exist, so without this the copy's steps had counted as done whatever it lacked.
 bool recorded_elsewhere(const detail::StepRecord& record, const std::string& out) {
-  return !record.outputs.empty() &&
+  // A report's page may lie outside the output folder by design ('html'), where a copied
+  // folder leaves it.
+  return !record.outputs.empty() && record.kind != "report" &&
          std::none_of(record.outputs.begin(), record.outputs.end(), [&](const std::string& p) { return inside(p, out); });
 }
 
@@ -1337,6 +1339,7 @@ class Runner {
       ~Timer() { report.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count(); }
     } timer{report, started};
     std::optional<std::vector<std::string>> rasters;
+    written_elsewhere_.clear();
     for (int attempt = 0;; ++attempt) {
       try {
         rasters = execute(step, folder, report);
@@ -1357,8 +1360,10 @@ class Runner {
     years_redone_[step.id] = only_years_;
     std::map<std::string, std::string> inputs_read = inputs_at_start;
     for (const std::string& left_out : excluded_) inputs_read.erase(left_out);
-    detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds,
-                            detail::files_below(folder), inputs_read, parameters_described(step)};
+    std::vector<std::string> outputs = detail::files_below(folder);
+    outputs.insert(outputs.end(), written_elsewhere_.begin(), written_elsewhere_.end());
+    detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds, outputs,
+                            inputs_read, parameters_described(step)};
     db_->step_done(done);
   }
 
@@ -1424,6 +1429,7 @@ class Runner {
       if (events_.progress) events_.progress(step.id, done, total);
     };
     const detail::StepOutcome outcome = kind->run(context);
+    written_elsewhere_ = outcome.written_elsewhere;
     report.outputs_written = outcome.outputs_written;
     report.outputs_unchanged = outcome.outputs_unchanged;
     report.outputs_removed = outcome.outputs_removed;
@@ -1454,6 +1460,7 @@ class Runner {
   Scan scan_;
   std::map<std::string, std::string> fingerprints_;
   std::vector<std::string> excluded_;
+  std::vector<std::string> written_elsewhere_;  // the last step's files outside its folder
   std::optional<std::vector<int>> only_years_;  // for the step being run
   std::optional<std::vector<std::string>> only_tiles_;  // for a tiled fill being run
   std::map<std::string, std::optional<std::vector<int>>> years_redone_;  // by steps of this run; nullopt: all

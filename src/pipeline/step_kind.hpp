@@ -89,6 +89,9 @@ struct StepOutcome {
   /// removes the step's earlier rasters not among them (a renamed step's old names, which later
   /// steps would read with the new ones as one stack).
   std::optional<std::vector<std::string>> rasters{};
+  /// Files the step wrote outside its folder (a report's 'html' elsewhere): recorded with its
+  /// outputs, so that a deleted one makes the step stale.
+  std::vector<std::string> written_elsewhere{};
 };
 
 struct StepKind {

@@ -1419,6 +1419,42 @@ class StoppedBetweenSteps(kt.TempDirTestCase):
             np.testing.assert_array_equal(mine, fresh, name)
 
 
+class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
+    def test_a_page_written_elsewhere_is_made_again_and_a_table_path_is_refused(self):
+        # A report step's 'html' outside its folder was never recorded: deleted, the step stayed
+        # "done" and the page never came back. An extract 'table' with a path ("../x.csv") was
+        # written where the runner never looked; it is a file name in the step folder.
+        folder = os.path.join(self.tmp, "elsewhere")
+        os.makedirs(os.path.join(folder, "ndvi"))
+        rng = np.random.default_rng(2)
+        for k in range(6):
+            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_2031-%02d-01.tif" % (k + 1)),
+                            rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
+        head = ('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write(head + '[[step]]\nid = "page"\ndo = "report"\nafter = ["fill"]\nhtml = "page.html"\n')
+        self.assertEqual(run(job).returncode, 0)
+        page = os.path.join(folder, "page.html")
+        self.assertTrue(os.path.exists(page))
+        os.remove(page)
+        status = subprocess.run([kt.KALENDS_BIN, "status", job], capture_output=True, text=True)
+        self.assertRegex(status.stdout, r"page +report +stale +outputs missing")
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertTrue(os.path.exists(page))
+        self.assertIn("nothing new", run(job).stdout)
+        with open(job, "w") as f:
+            f.write(head + '[[step]]\nid = "x"\ndo = "extract"\ninput = ["fill"]\npoints = "p.csv"\n'
+                           'table = "../x.csv"\n')
+        with open(os.path.join(folder, "p.csv"), "w") as f:
+            f.write("id,x,y\na,1,1\n")
+        done = run(job)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("'table' '../x.csv': is a file name in the step's folder", done.stderr)
+
+
 class OpenFilesLimit(kt.TempDirTestCase):
     def test_too_few_file_descriptors_is_no_bad_input(self):
         # A fill keeps each date's input and output open. Under a small open-files limit the

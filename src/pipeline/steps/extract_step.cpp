@@ -34,7 +34,12 @@ ExtractRequest extract_request(const StepContext& c) {
   r.layers = c.list("layers");
   r.long_format = c.flag("long");
   r.include_descriptors = c.flag("descriptors");
-  r.out = (std::filesystem::path(c.folder) / c.text("table", "table.csv")).string();
+  // A file name in the step folder, as the docs say: a path elsewhere ("../x.csv") was written
+  // where the runner never looked, and a deleted table was never made again.
+  const std::string table = c.text("table", "table.csv");
+  if (table.empty() || table.find('/') != std::string::npos || table == "." || table == "..")
+    throw UsageError("--table '" + table + "'", "is a file name in the step's folder (e.g. \"table.csv\"), not a path");
+  r.out = (std::filesystem::path(c.folder) / table).string();
   return r;
 }
 

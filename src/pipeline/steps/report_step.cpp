@@ -52,7 +52,13 @@ StepKind report_step_kind() {
     const ReportRequest r = report_request(c);
     std::filesystem::create_directories(c.folder);
     const ReportSummary s = run_report(r);
-    return StepOutcome{s.written ? 1 : 0, s.written ? 0 : 1, "", s.notes};
+    StepOutcome outcome{s.written ? 1 : 0, s.written ? 0 : 1, "", s.notes};
+    // A page outside the step folder is recorded too: deleted, it is made again (it had stayed
+    // "done" for good).
+    if (std::filesystem::path(r.html).parent_path().lexically_normal() !=
+        std::filesystem::path(c.folder).lexically_normal())
+      outcome.written_elsewhere.push_back(std::filesystem::absolute(r.html).lexically_normal().string());
+    return outcome;
   };
   return kind;
 }
