@@ -8,7 +8,7 @@
 namespace kalends {
 
 std::optional<QaRule> qa_rule_of(const std::string& qa_input, const std::string& keep, int qa_band) {
-  if (!qa_input.empty() && keep.empty()) throw UsageError("--keep", "a keep rule is required with --qa");
+  if (!qa_input.empty() && keep.empty()) throw UsageError("--keep", "a keep rule is required with a QA stack (" + qa_input + ")");
   if (qa_input.empty() && !keep.empty()) throw UsageError("--keep", "given without a QA stack (--qa)");
   check_band(qa_band, "--qa-band");
   if (keep.empty()) return std::nullopt;

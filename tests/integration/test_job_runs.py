@@ -383,6 +383,10 @@ class JobFile(kt.TempDirTestCase):
              ["'keep' 'bitz0-1 in 0'"]),
             (good.replace('qa = "stack/qa/qa_*.tif"\n', ''), lines.index('[inputs.ndvi]') + 1,
              ["'keep' rule but no 'qa' stack"]),
+            # A step's rule for an input without QA had been ignored (exit 0; the command refuses it).
+            (good.replace('qa = "stack/qa/qa_*.tif"\nkeep = "bits0-1 in 0,1"\n', '')
+                 .replace('every = "1M"', 'every = "1M"\nkeep = "bits0-1 in 0"'),
+             lines.index('every = "1M"'), ["'keep': given, but the input 'ndvi' has no QA stack"]),
         ]
         n = len(lines)
         grid = '\n[[step]]\ndo = "grid"\nlayers = ["fill"]\ncrs = "EPSG:4326"\n'

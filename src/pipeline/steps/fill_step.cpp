@@ -252,6 +252,11 @@ StepKind fill_step_kind() {
   kind.check_values = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
     if (c.has("keep")) QaRule::parse(c.text("keep"));  // a typo named at its line, before any step runs
+    // A rule with no QA to apply it to had been ignored (the command refuses it). A job input's
+    // QA is known now; an index step's only once it ran (see kind.run).
+    if (c.has("keep") && r.qa_input.empty() && c.resolve(c.text("input")).folder.empty())
+      throw UsageError("--keep", "given, but the input '" + c.text("input") + "' has no QA stack ('qa' in its [inputs." +
+                                     c.text("input") + "])");
     std::vector<std::string> given;
     for (const auto& [key, value] : c.options) given.push_back(key);
     check_options_apply({r.method.method}, given);
@@ -267,6 +272,9 @@ StepKind fill_step_kind() {
   };
   kind.run = [](const StepContext& c) {
     const FillRequest r = fill_request(c);
+    if (c.has("keep") && r.qa_input.empty())
+      throw UsageError("--keep", "given, but the step '" + c.text("input") + "' passes no QA stack through (its red "
+                                     "input has no 'qa')");
     if (c.has("tiles")) {
       // Outputs per tile, and the mosaic VRTs later steps read (see the runner's resolve).
       const TiledFillSummary tiled = run_tiled_fill(r, c.text("tiles"), true, c.progress, c.only_tiles);
