@@ -82,7 +82,8 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
   if (std::regex_match(text, m, conversion)) {
     // A switch has no type name (CLI11 would read --smooth=true as one).
     if (const CLI::Option* o = command->get_option_no_throw(m[1].str()); o && o->get_type_name().empty())
-      return fmt::format("{}: {}: is a switch and takes no value ('{}' given)", name, m[1].str(), m[2].str());
+      return fmt::format("{}: {}: is a switch and takes no value, or true or false ('{}' given)", name, m[1].str(),
+                         m[2].str());
     return fmt::format("{}: {}: '{}' is not {}", name, m[1].str(), m[2].str(), kind_of(m[1].str()));
   }
   if (std::regex_match(text, m, range))

@@ -278,8 +278,8 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
   if (compression != Compression::none) options.SetNameValue("PREDICTOR", "3");
   // GDAL's default ZSTD level, 9, holds a compressor of about 12 MiB per open file (measured
   // 14.6 MiB against 2.3 at level 1 and 1.7 for DEFLATE, 600 x 600 px, 3 bands): a fill writing
-  // 92 dates at once had peaked at 4.5 times its --memory. Level 1 files were 1 % larger than
-  // level 9's and 1 % smaller than DEFLATE's (the Alaska masked50 fill).
+  // 92 dates at once had peaked at 4.5 times its --memory. Level 1 files were 1-6 % larger than
+  // level 9's and about 1 % smaller than DEFLATE's (the Alaska fill; a helper's release check).
   if (compression == Compression::zstd) options.SetNameValue("ZSTD_LEVEL", "1");
   options.SetNameValue("BIGTIFF", "IF_SAFER");
 

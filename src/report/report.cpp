@@ -226,7 +226,7 @@ std::string fill_statistics_html(const fs::path& summary, const fs::path& root) 
         (key == "observed" || key == "missing" || key == "masked_by_qa" || key == "rejected" || key == "filled" ||
          key == "unfilled"))
       share = percent_text(value.get<double>() / total);
-    out += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td></tr>\n", escape(key), escape(text_of(value)), share);
+    out += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td></tr>\n", escape(key), escape(text_of(value)), escape(share));
   }
   return out + "</table>\n";
 }

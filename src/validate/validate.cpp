@@ -298,7 +298,8 @@ ValidateReport run_validate(const ValidateRequest& request) {
       request.memory_ceiling == 0 && whole > request.memory_bytes)
     throw UsageError("--memory", fmt::format("budget of {} MiB is too small: validate holds the whole stack in memory "
                                              "(about {} MiB for {} dates of {} x {} px) beside each fill's blocks; "
-                                             "give more than {}M, or validate a part of the area with --subset",
+                                             "give well over {} MiB (each fill's blocks come on top), or validate a "
+                                             "part of the area with --subset",
                                              request.memory_bytes >> 20, (whole >> 20) + 1, dates, grid.width,
                                              grid.height, (whole >> 20) + 1));
   truth.v.resize(std::size_t(dates) * truth.plane());

@@ -170,7 +170,7 @@ class ValidateOptions(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("--memory: budget of 2 MiB is too small: validate holds the whole stack in memory "
                       "(about 4 MiB for 46 dates of 48 x 40 px)", done.stderr)
-        self.assertIn("give more than 4M", done.stderr)   # what would do, as the other refusals say
+        self.assertIn("give well over 4 MiB (each fill's blocks come on top)", done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, "work")))
         # Enough for that, too little for a fill's blocks and fixed overheads (about 100 MiB):
         # refused, and the withheld stack already written is removed, and the --out it made.

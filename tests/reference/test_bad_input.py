@@ -518,7 +518,7 @@ class BadInput(kt.TempDirTestCase):
                                (["fill", "x/*.tif", "--out", "o", "--envelope", "lower"],
                                 "kalends: fill: --envelope: 'lower' is not one of none, upper"),
                                (["fill", "x/*.tif", "--out", "o", "--smooth=abc"],
-                                "kalends: fill: --smooth: is a switch and takes no value ('abc' given)")):
+                                "kalends: fill: --smooth: is a switch and takes no value, or true or false ('abc' given)")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")
