@@ -3,6 +3,7 @@
 #include <toml++/toml.h>
 
 #include <algorithm>
+#include <cctype>
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
@@ -78,8 +79,19 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
       if (!given) given = table.get(key);
       shown.replace(at, (end == std::string::npos ? shown.size() : end) - at, "'" + key + "'");
     }
-    if (given) fail(path, given->source(), shown + ": " + e.reason());
-    fail(path, table.source(), "step '" + step.id + "': " + e.what());
+    // The reason may name options too ("--nir-band: reads the same band as --red"): as keys.
+    std::string reason = e.reason();
+    for (std::size_t at = reason.find("--"); at != std::string::npos; at = reason.find("--", at)) {
+      std::size_t end = at + 2;
+      while (end < reason.size() && (std::isalnum(static_cast<unsigned char>(reason[end])) || reason[end] == '-')) ++end;
+      std::string key = reason.substr(at + 2, end - at - 2);
+      std::replace(key.begin(), key.end(), '-', '_');
+      if (key == "day_time") key = "day_hour";
+      if (key == "night_time") key = "night_hour";
+      reason.replace(at, end - at, "'" + key + "'");
+    }
+    if (given) fail(path, given->source(), shown + ": " + reason);
+    fail(path, table.source(), "step '" + step.id + "': " + shown + ": " + reason);
   } catch (const InputError& e) {
     // A file the step reads at check time (the survey points): named, at the step's line.
     fail(path, table.source(), "step '" + step.id + "': " + e.what());

@@ -334,6 +334,11 @@ class JobFile(kt.TempDirTestCase):
                            ["[inputs.ndvi]: bands are numbered from 1"])
         self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
                            good.split("\n").index('lambda = "auto"') + 1, ["'lambda' must be a number or \"auto\""])
+        # Keys, not the command's options, where the step's check names several (it had said
+        # "--nir-band: reads the same band as --red").
+        index = good + '\n[[step]]\nid = "i"\ndo = "index"\nred = "ndvi"\nnir = "ndvi"\n'
+        self.check_refused(index, len(good.split("\n")) + 1,
+                           ["step 'i': 'nir_band': reads the same band as 'red'"])
 
     def test_a_refused_job_file_and_a_held_folder_leave_json_in_a_json_log(self):
         # With --log json (the documented cron line sends stdout and stderr to one .jsonl file),

@@ -12,9 +12,11 @@ const std::vector<OptionKey>& option_keys() {
   static const std::vector<OptionKey> keys{
       {"--day-time", "day_hour"}, {"--night-time", "night_hour"}, {"--scale", "scale"}, {"--offset", "offset"},
       {"--nodata", "nodata"},     {"--valid-range", "valid_range"},
-      // The inputs a step names by key (after --day-time and --night-time, which they begin).
+      {"--red-band", "red_band"}, {"--nir-band", "nir_band"}, {"--blue-band", "blue_band"},
+      {"--table", "table"},       {"--html", "html"},
+      // The inputs a step names by key (after the options they begin: --day-time, --red-band).
       {"--temperature", "temperature"}, {"--tmin", "tmin"}, {"--tmax", "tmax"}, {"--day", "day"},
-      {"--night", "night"}};
+      {"--night", "night"}, {"--red", "red"}, {"--nir", "nir"}, {"--blue", "blue"}};
   return keys;
 }
 
