@@ -77,7 +77,7 @@ TemperatureUnit parse_temperature_unit(const std::string& text) {
   if (text == "auto") return TemperatureUnit::automatic;
   if (text == "kelvin" || text == "K") return TemperatureUnit::kelvin;
   if (text == "celsius" || text == "C") return TemperatureUnit::celsius;
-  throw UsageError("--units '" + text + "'", "expected auto, kelvin or celsius");
+  throw UsageError("--units '" + text + "'", "expected auto, kelvin (K) or celsius (C)");
 }
 }  // namespace kalends
 

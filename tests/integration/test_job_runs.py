@@ -402,6 +402,13 @@ class JobFile(kt.TempDirTestCase):
             (good + grid + 'extent = [5, 2, 1.5, 4]\n', n + 5, ["'extent'", "with XMIN < XMAX"]),
             (good + grid + 'extent = [1, 2, true, 4]\n', n + 5, ["'extent'", "an array of strings (or numbers)"]),
             (good + grid + 'resample = "avg"\n', n + 5, ["'resample' 'avg'", "average"]),
+            # The command refuses each; the job file had taken them (or waited for the run).
+            (good.replace('grid', '') + '\n[[step]]\ndo = "grid"\nlayers = []\ncrs = "EPSG:4326"\n', n + 3,
+             ["'layers': names no step"]),
+            (good.replace('input = "seasons"', 'input = "seasons"\ntop = -1'),
+             lines.index('input = "seasons"') + 2, ["'top': must be 0 or more"]),
+            (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\nmap_size = 0\n', n + 4,
+             ["'map_size': between 16 and 4096"]),
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
              ["'pixels' 'ten 20'", "COLUMN ROW"]),

@@ -2,6 +2,7 @@
 #include <filesystem>
 
 #include "kalends/compare.hpp"
+#include "kalends/error.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
@@ -15,6 +16,9 @@ StepKind compare_step_kind() {
                {"top", T::integer}, {"name", T::text}};
   kind.check = [](const StepOptions& o) {
     return o.count("input") ? std::string() : std::string("a 'compare' step needs 'input'");
+  };
+  kind.check_values = [](const StepContext& c) {
+    if (c.integer("top", 0) < 0) throw UsageError("--top", "must be 0 or more");  // had waited for the run
   };
   kind.run = [](const StepContext& c) {
     CompareRequest r;

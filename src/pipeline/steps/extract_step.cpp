@@ -29,6 +29,8 @@ ExtractRequest extract_request(const StepContext& c) {
   r.points.crs = c.text("crs", r.points.crs);
   r.sampling = parse_sampling(c.text("sampling", "nearest"));
   r.buffer_metres = c.number("buffer", 0);
+  if (c.has("buffer") && !(r.buffer_metres > 0))  // 0 had meant no buffer, without a word
+    throw UsageError("--buffer", "the radius must be positive (metres); leave the key out for no buffer");
   r.lags = c.integers("lags");
   r.marks = parse_date_marks(c.text("date_marks", "auto"));
   r.layers = c.list("layers");

@@ -259,8 +259,10 @@ StepKind fill_step_kind() {
                                      c.text("input") + "])");
     std::vector<std::string> given;
     for (const auto& [key, value] : c.options) given.push_back(key);
-    check_options_apply({r.method.method}, given);
+    // The method's name first: a misspelt one with 'lambda' had been told that lambda applies
+    // to whittaker only.
     make_fill_method(r.method);  // each method checks its own options
+    check_options_apply({r.method.method}, given);
   };
   kind.check_memory = [](const StepContext& c) {
     FillRequest r = fill_request(c);

@@ -1,6 +1,7 @@
 // Step 'grid': earlier steps' layers delivered on a study grid (kalends grid).
 #include <filesystem>
 
+#include "kalends/error.hpp"
 #include "kalends/study_grid.hpp"
 #include "pipeline/step_kind.hpp"
 
@@ -37,6 +38,8 @@ StepKind grid_step_kind() {
     return std::string();
   };
   kind.check_values = [](const StepContext& c) {
+    // An empty list had run as "done" and written nothing.
+    if (c.list("layers").empty()) throw UsageError("--layers", "names no step; give at least one");
     for (const std::string& name : c.list("layers")) check_study_grid_options(grid_request(c, name));
   };
   kind.run = [](const StepContext& c) {

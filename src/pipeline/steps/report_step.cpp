@@ -31,6 +31,10 @@ ReportRequest report_request(const StepContext& c) {
   }
   r.samples = c.integer("samples", r.samples);
   r.map_size = c.integer("map_size", r.map_size);
+  // The command's limits, at the job file's line (map_size = 0 had drawn 1 x 1 px maps).
+  if (r.map_size < 16 || r.map_size > 4096) throw UsageError("--map-size", "between 16 and 4096 pixels");
+  if (r.samples < 1 || r.samples > 64) throw UsageError("--samples", "between 1 and 64 pixels");
+
   r.title = c.text("title");
   return r;
 }

@@ -1,6 +1,7 @@
 // Step 'suitability': temperature suitability for malaria transmission (kalends suitability).
 #include "kalends/fill.hpp"
 #include "kalends/suitability.hpp"
+#include "kalends/error.hpp"
 #include "pipeline/step_kind.hpp"
 
 namespace kalends::detail {
@@ -26,6 +27,12 @@ SuitabilityRequest suitability_request(const StepContext& c) {
   t.marks = parse_date_marks(c.text("date_marks", "auto"));
   r.model = parse_model_kind(c.text("model", "r0-2013"));
   r.parasite = parse_parasite(c.text("parasite", "falciparum"));
+  // As the command: a key of another model would do nothing (it had been taken silently).
+  const std::string model = c.text("model", "r0-2013");
+  if (c.has("parasite") && model != "degree-day")
+    throw UsageError("--parasite", "applies to model = \"degree-day\" only (the model here: " + model + ")");
+  if (c.has("window") && model != "window")
+    throw UsageError("--window", "applies to model = \"window\" only (the model here: " + model + ")");
   if (c.has("window")) {
     const auto [low, high] = c.pair("window");
     set_window(r, low, high);
