@@ -148,6 +148,16 @@ std::string checked_text(const std::string& path, const std::string& key, const 
   return {};
 }
 
+// A path key's text: "~" is no home folder in a job file (no shell expands it), and it had
+// made a folder named "~" beside the job file.
+std::string path_text(const std::string& path, const std::string& key, const toml::node& node) {
+  std::string text = checked_text(path, key, node, Type::text);
+  if (text == "~" || text.rfind("~/", 0) == 0)
+    fail(path, node.source(), "'" + key + "' '" + text + "': '~' is not expanded in a job file; give the full path or "
+                                                           "one relative to the job file");
+  return text;
+}
+
 std::string resolve(const std::string& folder, const std::string& path) {
   if (path.empty() || fs::path(path).is_absolute() || path.find(':') != std::string::npos) {
     // NETCDF:"file":var keeps its form; resolve the file inside it.
@@ -187,7 +197,7 @@ Job read_job(const std::string& path) {
     for (auto&& [key, node] : *t) {
       const std::string k(key.str());
       if (k == "name") job.name = checked_text(path, k, node, Type::text);
-      else if (k == "out") job.out = resolve(job.folder, checked_text(path, k, node, Type::text));
+      else if (k == "out") job.out = resolve(job.folder, path_text(path, k, node));
       else if (k == "threads") {
         job.threads = std::stoi(checked_text(path, k, node, Type::integer));
         if (job.threads < 0) fail(path, node.source(), "'threads' must be 0 (all cores) or more");
@@ -216,10 +226,10 @@ Job read_job(const std::string& path) {
       for (auto&& [key, value] : *t) {
         const std::string k(key.str());
         if (k == "stack") {
-          input.stack = resolve(job.folder, checked_text(path, k, value, Type::text));
+          input.stack = resolve(job.folder, path_text(path, k, value));
           input.stack_line = int(value.source().begin.line);
         } else if (k == "qa") {
-          input.qa = resolve(job.folder, checked_text(path, k, value, Type::text));
+          input.qa = resolve(job.folder, path_text(path, k, value));
           input.qa_line = int(value.source().begin.line);
         }
         else if (k == "keep") {
@@ -304,7 +314,8 @@ Job read_job(const std::string& path) {
             hint = fmt::format("; the command line's {} is '{}' here", pair.option, pair.key);
         fail(path, key.source(), "unknown key '" + k + "' in a '" + step.kind + "' step (" + allowed + ")" + hint);
       }
-      step.options[k] = checked_text(path, k, value, found->type);
+      step.options[k] = found->role == StepKey::Role::path ? path_text(path, k, value)
+                                                           : checked_text(path, k, value, found->type);
       if (found->role == StepKey::Role::reads) {
         // a texts key names several inputs or steps (joined by ',' above)
         const std::vector<std::string> names =

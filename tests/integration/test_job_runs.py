@@ -328,6 +328,10 @@ class JobFile(kt.TempDirTestCase):
                            good.split("\n").index('do = "compare"') + 2,
                            ["'input' must name a 'seasons' step; 'fill' is a 'fill' step"])
         self.check_refused(good.replace("[job]", "[job"), 2, [])
+        # No shell expands '~' in a job file: it had made a folder named '~' beside it.
+        self.check_refused(good.replace('out = "out"', 'out = "~/nightly"'), 4,
+                           ["'out' '~/nightly': '~' is not expanded in a job file"])
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "~")))
         self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = -2'), 6,
                            ["'threads' must be 0 (all cores) or more"])
         self.check_refused(good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [-0.2, 1.0]\nband = 0'), 7,
