@@ -24,6 +24,7 @@ struct CompareSummary {
   /// shares and the largest anomalies: "2015 month 06 (21 days, against 30 in other years)".
   std::vector<std::string> partial_periods;
   int years = 0;  // years with anomaly layers
+  int files_written = 0, files_unchanged = 0;  // the class raster, compare.json and compare.md
 };
 
 CompareSummary run_compare(const CompareRequest& request);

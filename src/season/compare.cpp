@@ -310,6 +310,7 @@ CompareSummary run_compare(const CompareRequest& request) {
                                        "2: 50-75 %, 3: 75 % or more"}}}};
     std::vector<detail::OutputSpec> specs{spec};
     detail::OutputSet out(std::move(specs), grid, Compression::deflate, 256);
+    out.set_keep_unchanged(true);  // the same classes keep their file and its time
     std::vector<float> plane, scratch;
     for (int y = 0; y < height; y += 256) {
       const Window core{0, y, width, std::min(256, height - y)};
@@ -322,6 +323,8 @@ CompareSummary run_compare(const CompareRequest& request) {
       out.write(0, core, planes, scratch);
     }
     out.commit();
+    summary.files_written += out.written();
+    summary.files_unchanged += out.unchanged();
   }
 
   const Distribution r = describe(rmse), e = describe(explained);
@@ -377,7 +380,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   // The file name alone, so the folder can be moved.
   json += fmt::format("  \"class_raster\": \"{}\"\n}}\n", fs::path(summary.class_path).filename().string());
   summary.json_path = (fs::path(request.out_dir) / "compare.json").string();
-  detail::write_text_atomically(summary.json_path, json);
+  ++(detail::write_text_atomically(summary.json_path, json) ? summary.files_written : summary.files_unchanged);
 
   std::string md = fmt::format("# Where the synoptic layers of `{}` mislead\n\n", name);
   md += "Synoptic miss per pixel: RMSE between the year-specific and the synoptic values, and the share of the "
@@ -439,7 +442,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more).\n",
                     fs::path(summary.class_path).filename().string());
   summary.markdown_path = (fs::path(request.out_dir) / "compare.md").string();
-  detail::write_text_atomically(summary.markdown_path, md);
+  ++(detail::write_text_atomically(summary.markdown_path, md) ? summary.files_written : summary.files_unchanged);
   return summary;
 }
 

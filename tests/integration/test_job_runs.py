@@ -579,6 +579,27 @@ class Incremental(kt.TempDirTestCase):
         os.utime(first_input, None)
         third = run(job)
         self.assertIn("nothing new, nothing done", third.stdout)
+        # A rerun of compare counts as written the files it changed and as unchanged those it kept
+        # with their time (it had counted every file as written, and rewritten its class raster
+        # with the same bytes).
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace("valid_range = [-0.2, 1.0]", "valid_range = [-0.2, 1.5]"))
+        compare_files = [p for p in glob.glob(os.path.join(out, "compare", "*")) if os.path.isfile(p)]
+        self.assertEqual(len(compare_files), 3)
+        times = {p: os.stat(p).st_mtime_ns for p in compare_files}
+        ranged = run(job)
+        self.assertEqual(ranged.returncode, 0, ranged.stdout + ranged.stderr)
+        counts = re.search(r"compare\s+ran\s.* (\d+) files? written, (\d+) unchanged", ranged.stdout)
+        self.assertIsNotNone(counts, ranged.stdout)
+        changed = sum(os.stat(p).st_mtime_ns != t for p, t in times.items())
+        self.assertEqual((int(counts.group(1)), int(counts.group(2))), (changed, 3 - changed))
+        self.assertEqual(os.stat(os.path.join(out, "compare", "ndvi_year_specific_class.tif")).st_mtime_ns,
+                         times[os.path.join(out, "compare", "ndvi_year_specific_class.tif")])
+        with open(job, "w") as f:
+            f.write(text)
+        self.assertEqual(run(job).returncode, 0)
         # A file replaced by one of the same size whose modification time was set back (cp -p,
         # rsync -t, touch -r): the cached checksum had been kept, and the change never seen.
         replaced = sorted(glob.glob(os.path.join(self.tmp, "a", "stack", "ndvi", "*.tif")))[1]
