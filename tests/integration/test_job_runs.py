@@ -1173,19 +1173,25 @@ class IndexStepCopiesQA(kt.TempDirTestCase):
         self.assertTrue(np.all(kt.gdal().Open(copy).ReadAsArray() == 1))
 
 
+def write_monthly_ndvi(folder, count, seed, seen_once=False):
+    """`count` invented monthly NDVI rasters of 6 x 6 px in folder/ndvi (2031-01 on); with
+    `seen_once`, pixel (0, 0) is observed on the first date alone."""
+    os.makedirs(os.path.join(folder, "ndvi"))
+    rng = np.random.default_rng(seed)
+    for k in range(count):
+        values = rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32)
+        if seen_once and k > 0:
+            values[0, 0] = np.nan
+        kt.write_raster(os.path.join(folder, "ndvi", "ndvi_2031-%02d-01.tif" % (k + 1)), values)
+
+
 class QuietRuns(kt.TempDirTestCase):
     def test_quiet_keeps_notes_and_errors_on_stderr_and_prints_no_summary(self):
         # -q is "only errors, notes on the data and cautions". A quiet run had dropped its
         # steps' notes, and a failed or partial one had printed the whole summary on stdout.
         # Invented data.
         folder = os.path.join(self.tmp, "quiet")
-        os.makedirs(os.path.join(folder, "ndvi"))
-        rng = np.random.default_rng(5)
-        for k in range(8):
-            values = rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32)
-            if k > 0:
-                values[0, 0] = np.nan  # one pixel seen once: not fitted, and a note says so
-            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_2031-%02d-01.tif" % (k + 1)), values)
+        write_monthly_ndvi(folder, 8, 5, seen_once=True)  # one pixel seen once: not fitted, and a note says so
         job = os.path.join(folder, "job.toml")
         with open(job, "w") as f:
             f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
@@ -1466,11 +1472,7 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         # "done" and the page never came back. An extract 'table' with a path ("../x.csv") was
         # written where the runner never looked; it is a file name in the step folder.
         folder = os.path.join(self.tmp, "elsewhere")
-        os.makedirs(os.path.join(folder, "ndvi"))
-        rng = np.random.default_rng(2)
-        for k in range(6):
-            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_2031-%02d-01.tif" % (k + 1)),
-                            rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
+        write_monthly_ndvi(folder, 6, 2)
         head = ('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
                 '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
         job = os.path.join(folder, "job.toml")
