@@ -384,29 +384,26 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                           d.season[1].start_doy, d.season[1].end_doy, d.season[1].length_days, d.season[1].integral};
       for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = float(v[b]);
     };
+    // A period's day-weighted mean at pixel p, and in `share` what it rests on: of its days with
+    // a value, those observed (a fill's flag 0); without flags, of its covered days, those with one.
+    auto period_mean = [&](const PeriodSources& source, std::int64_t p, double& share) {
+      double sum = 0, days = 0, observed_days = 0, covered_days = 0;
+      for (std::size_t j = 0; j < source.composite.size(); ++j) {
+        const std::size_t at = std::size_t(source.composite[j]) * n + p;
+        const float v = w.layers[at];
+        covered_days += source.days[j];
+        if (!std::isfinite(v)) continue;
+        sum += source.days[j] * v, days += source.days[j];
+        if (flags && w.flags[at] == 0) observed_days += source.days[j];
+      }
+      if (flags) share = days > 0 ? observed_days / days : NAN;
+      else share = covered_days > 0 ? days / covered_days : NAN;
+      return days > 0 ? sum / days : NAN;
+    };
     for (std::int64_t p = 0; p < n; ++p) {
-      for (std::size_t k = 0; k < periods.size(); ++k) {
-        double sum = 0, days = 0, observed_days = 0, covered_days = 0;
-        for (std::size_t j = 0; j < sources[k].composite.size(); ++j) {
-          const std::size_t at = std::size_t(sources[k].composite[j]) * n + p;
-          const float v = w.layers[at];
-          covered_days += sources[k].days[j];
-          if (!std::isfinite(v)) continue;
-          sum += sources[k].days[j] * v, days += sources[k].days[j];
-          if (flags && w.flags[at] == 0) observed_days += sources[k].days[j];
-        }
-        value[k] = days > 0 ? sum / days : NAN;
-        if (flags) observed[k] = days > 0 ? observed_days / days : NAN;
-        else observed[k] = covered_days > 0 ? days / covered_days : NAN;
-      }
-      for (std::size_t k = 0; k < edge_sources.size(); ++k) {
-        double sum = 0, days = 0;
-        for (std::size_t j = 0; j < edge_sources[k].composite.size(); ++j) {
-          const float v = w.layers[std::size_t(edge_sources[k].composite[j]) * n + p];
-          if (std::isfinite(v)) sum += edge_sources[k].days[j] * v, days += edge_sources[k].days[j];
-        }
-        edge[k] = days > 0 ? sum / days : NAN;
-      }
+      for (std::size_t k = 0; k < periods.size(); ++k) value[k] = period_mean(sources[k], p, observed[k]);
+      double unused;
+      for (std::size_t k = 0; k < edge_sources.size(); ++k) edge[k] = period_mean(edge_sources[k], p, unused);
       double all_sum = 0;
       int all_count = 0;
       for (int q = 0; q < P; ++q) {
