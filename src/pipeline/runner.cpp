@@ -321,9 +321,9 @@ bool inside(const std::string& path, const std::string& folder) {
 // output folder was copied (`cp -a out copy`, the job's out changed to the copy). The originals
 // still exist, so without this the copy's steps had counted as done whatever it lacked.
 bool recorded_elsewhere(const detail::StepRecord& record, const std::string& out) {
-  // A report's page may lie outside the output folder by design ('html'), where a copied
-  // folder leaves it.
-  return !record.outputs.empty() && record.kind != "report" &&
+  // A kind that writes outside its folder by design (a report's 'html') says nothing of a copy.
+  const detail::StepKind* kind = detail::find_step_kind(record.kind);
+  return !record.outputs.empty() && !(kind && kind->writes_outside_folder) &&
          std::none_of(record.outputs.begin(), record.outputs.end(), [&](const std::string& p) { return inside(p, out); });
 }
 
@@ -1295,9 +1295,9 @@ class Runner {
           break;
         }
         for (int y : *it->second) years.insert({y, y + 1});
-        // A seasons step's cycle_YYYY searches peaks on [year before | year | year after]: the
-        // year before a redone one reads it too (it had been left as it was).
-        if (step.kind == "seasons")
+        // The year before a redone one reads it too where a year's layers read their neighbours
+        // (seasons' cycle layers; they had been left as they were).
+        if (kind->years_read_beside)
           for (int y : *it->second) years.insert(y - 1);
       }
       if (known && !years.empty()) {

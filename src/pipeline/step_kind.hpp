@@ -125,6 +125,12 @@ struct StepKind {
   /// Whether the step can redo only the years its input steps redid (seasons: a year's own
   /// layers depend on that year's values alone).
   bool years_from_inputs = false;
+  /// Whether a year's layers also read the year before and the year after (seasons' cycle
+  /// layers, whose peak search spans them): those are redone with it.
+  bool years_read_beside = false;
+  /// Whether the step may write outside its folder by design (a report's 'html'): its outputs
+  /// all lying outside the output folder then do not mean a copied folder.
+  bool writes_outside_folder = false;
   /// Per-pixel work (each output pixel from the same pixel of the inputs, or from a halo the
   /// engine reads itself, on tiles fixed by the grid, so that a strip of whole tile rows gives
   /// what the whole grid gives): a shard of a cluster run may compute its strip alone.

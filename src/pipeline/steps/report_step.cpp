@@ -45,6 +45,7 @@ StepKind report_step_kind() {
   using T = KeyType;
   StepKind kind;
   kind.name = "report";
+  kind.writes_outside_folder = true;  // its 'html'
   // 'after' names the steps the page shows, so that it is redone when they change.
   kind.keys = {{"after", T::texts, StepKey::Role::reads}, {"html", T::text},
                {"pixels", T::texts}, {"samples", T::integer}, {"map_size", T::integer}, {"title", T::text}};

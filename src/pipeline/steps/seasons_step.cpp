@@ -31,6 +31,7 @@ StepKind seasons_step_kind() {
   kind.name = "seasons";
   kind.splits_by_area = true;
   kind.years_from_inputs = true;
+  kind.years_read_beside = true;  // cycle_YYYY's peak search
   kind.keys = {{"input", T::text, StepKey::Role::reads},
                {"period", T::text}, {"years", T::text}, {"date_marks", T::text},
                {"prominence", T::number}, {"threshold", T::number}, {"min_amplitude", T::number}, {"name", T::text},
