@@ -31,6 +31,23 @@ using Type = KeyType;
   throw UsageError(fmt::format("{}:{}", path, where.begin.line), reason);
 }
 
+// Each "--option" a message names as its job key in quotes ("--every" as 'every',
+// "--day-time" as 'day_hour'), the keys in order into `keys`.
+std::string options_as_keys(std::string text, std::vector<std::string>* keys = nullptr) {
+  for (std::size_t at = text.find("--"); at != std::string::npos; at = text.find("--", at)) {
+    std::size_t end = at + 2;
+    while (end < text.size() && (std::isalnum(static_cast<unsigned char>(text[end])) || text[end] == '-')) ++end;
+    const std::string option = text.substr(at, end - at);
+    std::string key = option.substr(2);
+    std::replace(key.begin(), key.end(), '-', '_');
+    for (const OptionKey& pair : option_keys())  // options whose key has another name
+      if (option == pair.option) key = pair.key;
+    if (keys) keys->push_back(key);
+    text.replace(at, end - at, "'" + key + "'");
+  }
+  return text;
+}
+
 const char* type_name(Type t) {
   switch (t) {
     case Type::text: return "a string";
@@ -65,31 +82,15 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
   try {
     kind.check_values(context);
   } catch (const UsageError& e) {
-    const std::string& where = e.where();
-    // The options the error names ("--every '2W'", "--day-time/--night-time", "--day-time 13.5
-    // --night-time 12"), each as its job key; named at the line of the first key the step gives.
-    std::string shown = where;
+    // The options the error names, in its subject ("--every '2W'", "--day-time/--night-time")
+    // and its reason ("reads the same band as --red"), each as its job key; named at the line of
+    // the first key the step gives.
+    std::vector<std::string> keys;
+    const std::string shown = options_as_keys(e.where(), &keys);
+    const std::string reason = options_as_keys(e.reason());
     const toml::node* given = nullptr;
-    for (std::size_t at = shown.find("--"); at != std::string::npos; at = shown.find("--", at)) {
-      const std::size_t end = shown.find_first_of(" /", at);
-      std::string key = shown.substr(at + 2, end == std::string::npos ? std::string::npos : end - at - 2);
-      std::replace(key.begin(), key.end(), '-', '_');
-      if (key == "day_time") key = "day_hour";  // options whose job key has another name
-      if (key == "night_time") key = "night_hour";
+    for (const std::string& key : keys)
       if (!given) given = table.get(key);
-      shown.replace(at, (end == std::string::npos ? shown.size() : end) - at, "'" + key + "'");
-    }
-    // The reason may name options too ("--nir-band: reads the same band as --red"): as keys.
-    std::string reason = e.reason();
-    for (std::size_t at = reason.find("--"); at != std::string::npos; at = reason.find("--", at)) {
-      std::size_t end = at + 2;
-      while (end < reason.size() && (std::isalnum(static_cast<unsigned char>(reason[end])) || reason[end] == '-')) ++end;
-      std::string key = reason.substr(at + 2, end - at - 2);
-      std::replace(key.begin(), key.end(), '-', '_');
-      if (key == "day_time") key = "day_hour";
-      if (key == "night_time") key = "night_hour";
-      reason.replace(at, end - at, "'" + key + "'");
-    }
     if (given) fail(path, given->source(), shown + ": " + reason);
     fail(path, table.source(), "step '" + step.id + "': " + shown + ": " + reason);
   } catch (const InputError& e) {
