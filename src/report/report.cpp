@@ -596,8 +596,12 @@ ReportSummary run_report(const ReportRequest& request) {
     if (!s.caution.empty()) {
       // What a suitability layer rests on: its model and what counts as a suitable period (the
       // maps had given neither; with the default threshold 0 a period of index 0.001 counts).
-      const std::string model = metadata_item(file.path, "KALENDS_MODEL");
-      const std::string threshold = metadata_item(file.path, "KALENDS_THRESHOLD");
+      const std::map<std::string, std::string> items = raster_metadata(file.path);  // both from one open
+      auto item = [&](const char* key) {
+        const auto it = items.find(key);
+        return it == items.end() ? std::string() : it->second;
+      };
+      const std::string model = item("KALENDS_MODEL"), threshold = item("KALENDS_THRESHOLD");
       if (!model.empty())
         maps += "<p class=\"note\">" + escape("Model: " + model +
                                               (threshold.empty() ? "" : "; a period counts as suitable where its index is above " + threshold) +
