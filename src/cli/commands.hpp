@@ -59,11 +59,6 @@ std::vector<int> parse_whole_numbers(const std::string& text, const std::string&
 /// The note on standard error when a fill took more than the default --memory (memory_ceiling).
 void print_memory_note(std::int64_t default_bytes, std::int64_t used_bytes);
 
-/// A file the command will write (`option` names it): UsageError, before any work, when the
-/// name is empty or lies in a folder that does not exist. `example` is a name to
-/// suggest ("table.csv").
-void require_file_destination(const std::string& path, const std::string& option, const std::string& example);
-
 /// "--subset COLUMN,ROW,WIDTH,HEIGHT" (pixels, as gdal_translate -srcwin); nothing when empty.
 std::optional<Window> parse_subset(const std::string& text);
 

@@ -5,6 +5,7 @@
 #include <cstdio>
 
 #include "cli/commands.hpp"
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/extract.hpp"
 
@@ -46,7 +47,7 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     ExtractRequest& r = o->request;
     // The library takes an empty name as "keep the table in memory"; here it had run, written
     // nothing and exited 0.
-    require_file_destination(r.out, "--out", "table.csv");
+    detail::require_file_destination(r.out, "--out", "table.csv");
     r.points.date_column_given = date_column->count() > 0;
     r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);

@@ -4,7 +4,6 @@
 #include <algorithm>
 #include <cmath>
 #include <cstdio>
-#include <filesystem>
 #include <fmt/format.h>
 #include <optional>
 
@@ -34,14 +33,6 @@ std::optional<double> optional_number(const std::string& text, const std::string
 double parse_number(const std::string& text, const std::string& option) {
   if (text.empty()) throw UsageError(option, "expected a number");
   return *optional_number(text, option);
-}
-
-void require_file_destination(const std::string& path, const std::string& option, const std::string& example) {
-  if (path.empty()) throw UsageError(option, "needs a file name, e.g. " + example);
-  std::error_code ec;
-  const std::filesystem::path folder = std::filesystem::path(path).parent_path();
-  if (!folder.empty() && !std::filesystem::is_directory(folder, ec))
-    throw UsageError(option + " '" + path + "'", "the folder '" + folder.string() + "' does not exist");
 }
 
 std::optional<double> number_or_auto(const std::string& text, const std::string& option) {

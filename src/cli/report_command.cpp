@@ -3,6 +3,7 @@
 #include <fmt/format.h>
 
 #include "cli/commands.hpp"
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/report.hpp"
 
@@ -25,7 +26,7 @@ Action add_report_command(CLI::App& app, GlobalOptions& global) {
   return [o, &global] {
     ReportRequest& r = o->request;
     // Before the work, exit 2 (a missing folder had failed at the rename, exit 1, naming no file).
-    require_file_destination(r.html, "--html", "report.html");
+    detail::require_file_destination(r.html, "--html", "report.html");
     std::string rest = o->pixels;
     while (!rest.empty()) {
       const auto semicolon = rest.find(';');

@@ -5,6 +5,7 @@
 #include <cstdio>
 
 #include "cli/commands.hpp"
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/season.hpp"
 #include "kalends/suitability.hpp"
@@ -109,7 +110,7 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
                                       "--parameters and the file --save-parameters wrote");
     if (!o->calibrate.empty()) {
       // Before the fit, which had run to the end and then failed to write (exit 1).
-      if (!o->save_parameters.empty()) require_file_destination(o->save_parameters, "--save-parameters", "diurnal.toml");
+      if (!o->save_parameters.empty()) detail::require_file_destination(o->save_parameters, "--save-parameters", "diurnal.toml");
       CalibrationRequest c;
       c.reference = o->calibrate;
       c.rules = o->in.inputs.rules;

@@ -30,6 +30,7 @@
 
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/season.hpp"
 #include "kalends/extract.hpp"
@@ -573,13 +574,9 @@ void check_extract_options(const ExtractRequest& request) {
 
 ExtractResult run_extract(const ExtractRequest& request) {
   check_extract_options(request);
-  // Said before the work, not after it ("cannot write (No such file or directory)").
-  if (!request.out.empty()) {
-    const std::filesystem::path folder = std::filesystem::path(request.out).parent_path();
-    std::error_code ec;
-    if (!folder.empty() && !std::filesystem::is_directory(folder, ec))
-      throw UsageError("--out '" + request.out + "'", "the folder '" + folder.string() + "' does not exist");
-  }
+  // Said before the work, not after it ("cannot write (No such file or directory)"). An empty
+  // name keeps the table in memory.
+  if (!request.out.empty()) detail::require_file_destination(request.out, "--out", "table.csv");
   // Reads go file by file in batches, so a small block cache does: GDAL's default (5 % of the
   // machine's memory) had made 2 000 points take 564 MiB, against 121 MiB at 32 MiB and the
   // same table. A GDAL_CACHEMAX the user set is kept.

@@ -119,6 +119,14 @@ namespace {
 }
 }  // namespace
 
+void require_file_destination(const std::string& path, const std::string& option, const std::string& example) {
+  if (path.empty()) throw UsageError(option, "needs a file name, e.g. " + example);
+  std::error_code ec;
+  const fs::path folder = fs::path(path).parent_path();
+  if (!folder.empty() && !fs::is_directory(folder, ec))
+    throw UsageError(option + " '" + path + "'", "the folder '" + folder.string() + "' does not exist");
+}
+
 void require_own_text_file(const std::string& path, const std::string& mark) {
   std::error_code ec;
   if (!fs::exists(path, ec)) return;

@@ -20,4 +20,9 @@ void require_own_text_file(const std::string& path, const std::string& mark);
 /// metadata items `marks` (KALENDS_VERSION; grid's outputs also KALENDS_GRID_SOURCE).
 void require_own_raster(const std::string& path, std::initializer_list<const char*> marks);
 
+/// A file a command will write where `option` named it: UsageError, before any work, when the
+/// name is empty or lies in a folder that does not exist. `example` is a name to suggest
+/// ("table.csv").
+void require_file_destination(const std::string& path, const std::string& option, const std::string& example);
+
 }  // namespace kalends::detail
