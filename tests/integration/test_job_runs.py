@@ -78,11 +78,18 @@ def small_dated_job(folder, more_steps=""):
         date = datetime.date(2021, 1, 1) + datetime.timedelta(days=day - 1)
         kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
                         np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
-    job = os.path.join(folder, "job.toml")
-    with open(job, "w") as f:
-        f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
-                'input = "ndvi"\n' + more_steps)
+    job = write_job(folder,
+                    '[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "ndvi"\n' + more_steps)
     return job
+
+
+def write_job(folder, text):
+    """Writes `text` to folder/job.toml; returns its path."""
+    path = os.path.join(folder, "job.toml")
+    with open(path, "w") as f:
+        f.write(text)
+    return path
 
 
 def run(job, *args, env=None, preexec=None, timeout=300):
@@ -710,11 +717,9 @@ class Incremental(kt.TempDirTestCase):
         self.assertIn("2023-01", os.path.basename(files[-1]))
         live = os.path.join(folder, "live")
         os.makedirs(live)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\nmemory = "256M"\n\n[inputs.ndvi]\nstack = "live/ndvi_*.tif"\n\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n'
-                    'halo = 8\nreach = 400\n')
+        job = write_job(folder, '[job]\nout = "out"\nmemory = "256M"\n\n[inputs.ndvi]\nstack = "live/ndvi_*.tif"\n\n'
+                        '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n'
+                        'halo = 8\nreach = 400\n')
         for path in files[:-1]:
             shutil.copy(path, live)
         first = run(job)
@@ -999,11 +1004,9 @@ class JobWording(kt.TempDirTestCase):
         os.makedirs(os.path.join(folder, "layers"))
         kt.write_raster(os.path.join(folder, "layers", "ndvi_2021-03-01.tif"), np.full((10, 10), 0.5, np.float32),
                         geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.layers]\nstack = "layers/*.tif"\n[[step]]\nid = "study"\n'
-                    'do = "grid"\nlayers = ["layers"]\ncrs = "EPSG:4326"\nresolution = 0.03\n'
-                    'extent = [30.0, -1.1, 30.1, -1.0]\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.layers]\nstack = "layers/*.tif"\n[[step]]\nid = "study"\n'
+                        'do = "grid"\nlayers = ["layers"]\ncrs = "EPSG:4326"\nresolution = 0.03\n'
+                        'extent = [30.0, -1.1, 30.1, -1.0]\n')
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         self.assertIn("note: 'extent' is not a whole number of 0.03 cells", done.stdout)
@@ -1120,11 +1123,10 @@ class StaleReasons(kt.TempDirTestCase):
             os.makedirs(os.path.join(folder, name))
             for path in sorted(glob.glob(os.path.join(source, "ndvi_200[45]*.tif"))):
                 shutil.copy(path, os.path.join(folder, name))
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.a]\nstack = "a/ndvi_*.tif"\n[inputs.b]\nstack = "b/ndvi_*.tif"\n'
-                    '[[step]]\nid = "fill_a"\ndo = "fill"\ninput = "a"\n'
-                    '[[step]]\nid = "fill_b"\ndo = "fill"\ninput = "b"\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\n[inputs.a]\nstack = "a/ndvi_*.tif"\n[inputs.b]\nstack = "b/ndvi_*.tif"\n'
+                        '[[step]]\nid = "fill_a"\ndo = "fill"\ninput = "a"\n'
+                        '[[step]]\nid = "fill_b"\ndo = "fill"\ninput = "b"\n')
         self.assertEqual(run(job, "-q").returncode, 0)
         for name in ("a", "b"):
             shutil.copy(os.path.join(source, "ndvi_2006-05-25.tif"), os.path.join(folder, name))
@@ -1151,11 +1153,9 @@ class IndexStepCopiesQA(kt.TempDirTestCase):
             kt.write_raster(os.path.join(folder, "red", "red_%s.tif" % date), rng.uniform(0.02, 0.1, (8, 8)).astype(np.float32))
             kt.write_raster(os.path.join(folder, "nir", "nir_%s.tif" % date), rng.uniform(0.2, 0.5, (8, 8)).astype(np.float32))
             kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % date), np.zeros((8, 8), np.uint16))
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.red]\nstack = "red/red_*.tif"\nqa = "qa/qa_*.tif"\n'
-                    'keep = "bit 0 == 0"\n[inputs.nir]\nstack = "nir/nir_*.tif"\n'
-                    '[[step]]\ndo = "index"\nred = "red"\nnir = "nir"\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.red]\nstack = "red/red_*.tif"\nqa = "qa/qa_*.tif"\n'
+                        'keep = "bit 0 == 0"\n[inputs.nir]\nstack = "nir/nir_*.tif"\n'
+                        '[[step]]\ndo = "index"\nred = "red"\nnir = "nir"\n')
 
         def finished(done):
             self.assertEqual(done.returncode, 0, done.stderr)
@@ -1192,10 +1192,8 @@ class QuietRuns(kt.TempDirTestCase):
         # Invented data.
         folder = os.path.join(self.tmp, "quiet")
         write_monthly_ndvi(folder, 8, 5, seen_once=True)  # one pixel seen once: not fitted, and a note says so
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                        '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
         done = run(job, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertEqual(done.stdout, "")
@@ -1231,10 +1229,8 @@ class LateQAPartner(kt.TempDirTestCase):
                             rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
             if date != dates[-1]:
                 kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % date), np.zeros((6, 6), np.uint16))
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa/qa_*.tif"\n'
-                    'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa/qa_*.tif"\n'
+                        'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
         last = os.path.join(folder, "out", "fill", "ndvi_%s.tif" % dates[-1])
         done = run(job, "--skip-bad")
         self.assertEqual(done.returncode, 3, done.stderr)
@@ -1274,10 +1270,8 @@ class LateQAPartner(kt.TempDirTestCase):
                 ds.GetRasterBand(k + 1).WriteArray(np.zeros((6, 6), np.uint16))
             ds = None
         write_qa(dates[:-1])
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa.tif"\n'
-                    'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa.tif"\n'
+                        'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
         done = run(job, "--skip-bad")
         self.assertEqual(done.returncode, 3, done.stdout + done.stderr)
         write_qa(dates)
@@ -1348,9 +1342,7 @@ class IncrementalSuitability(kt.TempDirTestCase):
         for kind in ("day", "night"):
             os.makedirs(os.path.join(folder, "live", kind))
         files = {kind: sorted(glob.glob(os.path.join(folder, "source", kind, "*.tif"))) for kind in ("day", "night")}
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write(LST_JOB)
+        job = write_job(folder, LST_JOB)
         def arrive(k):
             for kind in ("day", "night"):
                 shutil.copy(files[kind][k], os.path.join(folder, "live", kind))
@@ -1404,11 +1396,9 @@ class CycleOfTheYearBefore(kt.TempDirTestCase):
                       + rng.normal(0, 0.04, (6, 6))).astype(np.float32) for d in dates}
         for d in dates[:-3]:
             kt.write_raster(os.path.join(live, "ndvi_%s.tif" % d.isoformat()), arrays[d])
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 30\nreach = 120\n'
-                    '[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\nperiod = "16d"\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                        '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 30\nreach = 120\n'
+                        '[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\nperiod = "16d"\n')
         self.assertEqual(run(job).returncode, 0)
         for d in dates[-3:]:
             kt.write_raster(os.path.join(live, "ndvi_%s.tif" % d.isoformat()), arrays[d])
@@ -1475,9 +1465,7 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         write_monthly_ndvi(folder, 6, 2)
         head = ('[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
                 '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write(head + '[[step]]\nid = "page"\ndo = "report"\nafter = ["fill"]\nhtml = "page.html"\n')
+        job = write_job(folder, head + '[[step]]\nid = "page"\ndo = "report"\nafter = ["fill"]\nhtml = "page.html"\n')
         self.assertEqual(run(job).returncode, 0)
         page = os.path.join(folder, "page.html")
         self.assertTrue(os.path.exists(page))
@@ -1507,10 +1495,8 @@ class OpenFilesLimit(kt.TempDirTestCase):
         import resource
         folder = os.path.join(self.tmp, "descriptors")
         synth_stack.make_stack(os.path.join(folder, "stack", "ndvi"), width=8, height=8, start_year=2021, dates=60)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "stack/ndvi/ndvi_*.tif"\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "stack/ndvi/ndvi_*.tif"\n'
+                        '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
 
         def limit():
             resource.setrlimit(resource.RLIMIT_NOFILE, (64, 64))
@@ -1543,12 +1529,11 @@ class IndexStepQaBand(kt.TempDirTestCase):
             ds.GetRasterBand(2).WriteArray(qa)
             ds = None
             kt.write_raster(os.path.join(folder, "n", "nir_%s.tif" % d), np.full((6, 8), 0.4, np.float32))
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.red]\nstack = "r/red_*.tif"\nqa = "r/red_*.tif"\nqa_band = 2\n'
-                    'keep = "value == 0"\n[inputs.nir]\nstack = "n/nir_*.tif"\n'
-                    '[[step]]\nid = "index"\ndo = "index"\nred = "red"\nnir = "nir"\n'
-                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "index"\nkeep = "value == 0"\nlambda = 10\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\n[inputs.red]\nstack = "r/red_*.tif"\nqa = "r/red_*.tif"\nqa_band = 2\n'
+                        'keep = "value == 0"\n[inputs.nir]\nstack = "n/nir_*.tif"\n'
+                        '[[step]]\nid = "index"\ndo = "index"\nred = "red"\nnir = "nir"\n'
+                        '[[step]]\nid = "fill"\ndo = "fill"\ninput = "index"\nkeep = "value == 0"\nlambda = 10\n')
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         summary = kt.read_summary(os.path.join(folder, "out", "fill"))
@@ -1739,10 +1724,9 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
             os.makedirs(inputs)
             for path in sorted(glob.glob(os.path.join(source, "ndvi_200[456]-*.tif"))):
                 shutil.copy(path, inputs)
-            job = os.path.join(folder, "job.toml")
-            with open(job, "w") as f:
-                f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
-                        'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nreach = %d\n' % reach)
+            job = write_job(folder,
+                            '[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                            'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nreach = %d\n' % reach)
             self.assertEqual(run(job).returncode, 0)
             shutil.copy(os.path.join(source, "ndvi_2007-05-25.tif"), inputs)
             done = run(job, "--log", "json")
@@ -1777,10 +1761,9 @@ class ReachAcrossTheWinter(kt.TempDirTestCase):
         for path in sorted(glob.glob(os.path.join(source, "ndvi_200[456]-*.tif"))):
             shutil.copy(path, inputs)
         late = os.path.join(inputs, "ndvi_2006-09-30.tif")  # day 273: the 16-day phase of the stack
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
-                    'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nlambda = 100\nevery = "1M"\nreach = 183\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                        'do = "fill"\ninput = "ndvi"\nmethod = "whittaker"\nlambda = 100\nevery = "1M"\nreach = 183\n')
         self.assertEqual(run(job).returncode, 0)
         for night in ("arrives", "withdrawn"):
             if night == "arrives":
@@ -1825,11 +1808,10 @@ class UnchangedMeansTheSameMetadata(kt.TempDirTestCase):
                             geotransform=(20.0, 0.01, 0, 1.0, 0, -0.01), epsg=4326)
         for date in dates:
             shutil.move(os.path.join(folder, date + ".tif"), os.path.join(inputs, "ndvi_%s.tif" % date))
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
-                    'do = "fill"\ninput = "ndvi"\n[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n'
-                    'period = "16d"\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\nid = "fill"\n'
+                        'do = "fill"\ninput = "ndvi"\n[[step]]\nid = "seasons"\ndo = "seasons"\ninput = "fill"\n'
+                        'period = "16d"\n')
         self.assertEqual(run(job).returncode, 0)
         shutil.move(os.path.join(folder, "2021-09-30.tif"), os.path.join(inputs, "ndvi_2021-09-30.tif"))
         done = run(job)
@@ -1859,10 +1841,9 @@ class ArrivalsDuringARun(kt.TempDirTestCase):
         for path in sorted(glob.glob(os.path.join(source, "ndvi_*.tif"))):
             if os.path.basename(path) != late:
                 shutil.copy(path, inputs)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\nthreads = 1\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\n'
-                    'id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\nreach = 183\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\nthreads = 1\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\n'
+                        'id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\nreach = 183\n')
         log = os.path.join(folder, "run.jsonl")
         process = run_until_a_step_starts(["run", job], log)
         shutil.copy(os.path.join(source, late), inputs)
@@ -2098,10 +2079,9 @@ class Faults(kt.TempDirTestCase):
             date = datetime.date(2021, 1, 1) + datetime.timedelta(days=8 * k)
             kt.write_raster(os.path.join(folder, "layers", "ndvi_%s.tif" % date.isoformat()),
                             np.full((4, 4), 0.5, np.float32), geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
-                    'input = "ndvi"\nevery = "1M"\n[[step]]\ndo = "seasons"\ninput = "fill"\n')
+        job = write_job(folder,
+                        '[job]\nout = "out"\n[inputs.ndvi]\nstack = "layers/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                        'input = "ndvi"\nevery = "1M"\n[[step]]\ndo = "seasons"\ninput = "fill"\n')
 
         def limit():
             resource.setrlimit(resource.RLIMIT_FSIZE, (70 << 10, 70 << 10))

@@ -139,6 +139,16 @@ def modis_dates(years, start=2010):
             for d in range(0, 365, 16)]
 
 
+def write_dated_ndvi(folder, dates, seed, values_on):
+    """One invented float32 raster per date, ndvi_YYYY-MM-DD.tif in `folder`: values_on(day of
+    year, rng) with one generator seeded `seed` for the whole stack."""
+    os.makedirs(folder)
+    rng = np.random.default_rng(seed)
+    for date in dates:
+        values = values_on(date.timetuple().tm_yday, rng)
+        kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
+
+
 def month_means(dates, values):
     """Numpy reference: day-weighted mean of the composites overlapping each month.
     values: (dates, ...) -> dict (year, month) -> array."""
@@ -529,13 +539,12 @@ class CycleYearsAlone(kt.TempDirTestCase):
         # same name and metadata. Invented data: a peak near 1 January, noise, four years.
         g = kt.gdal()
         folder = os.path.join(self.tmp, "years-alone")
-        os.makedirs(folder)
-        rng = np.random.default_rng(12)
-        for date in modis_dates(4, start=2019):
-            doy = date.timetuple().tm_yday
+
+        def near_new_year(doy, rng):
             shift = rng.normal(0, 12, (6, 8))   # each pixel's peak a little off 1 January
-            values = 0.45 + 0.25 * np.cos(2 * np.pi * (doy - 3 - shift) / 365) + rng.normal(0, 0.03, (6, 8))
-            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
+            return 0.45 + 0.25 * np.cos(2 * np.pi * (doy - 3 - shift) / 365) + rng.normal(0, 0.03, (6, 8))
+
+        write_dated_ndvi(folder, modis_dates(4, start=2019), 12, near_new_year)
         runs = {}
         for label, extra in (("all", []), ("some", ["--years", "2020-2021"])):
             out = os.path.join(self.tmp, "years-alone-" + label)
@@ -559,13 +568,9 @@ class CompareOnPartOfAPeriod(kt.TempDirTestCase):
         import datetime as dt
         g = kt.gdal()
         folder = os.path.join(self.tmp, "part")
-        os.makedirs(folder)
-        rng = np.random.default_rng(3)
         dates = [d for d in modis_dates(3, start=2015) if d >= dt.date(2015, 6, 10)]
-        for date in dates:
-            doy = date.timetuple().tm_yday
-            values = 0.4 + 0.3 * np.sin(2 * np.pi * (doy - 80) / 365) + rng.normal(0, 0.005, (4, 5))
-            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
+        write_dated_ndvi(folder, dates, 3,
+                         lambda doy, rng: 0.4 + 0.3 * np.sin(2 * np.pi * (doy - 80) / 365) + rng.normal(0, 0.005, (4, 5)))
         seasons = os.path.join(self.tmp, "part-seasons")
         done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
         self.assertEqual(done.returncode, 0, done.stderr)
