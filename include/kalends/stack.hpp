@@ -51,6 +51,8 @@ struct Layer {
   // The band's own mask, read with its values: "alpha band" or "mask" (internal or .msk, per
   // band or per file); "" where it has none (or GDAL derives it from nodata).
   std::string own_mask;
+  // As stored (GDALDataType); a keep rule is checked against every QA layer's width.
+  int data_type = 0;
 };
 
 class StackReader;

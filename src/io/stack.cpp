@@ -225,6 +225,7 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
     layer.nodata = nodata;
   if (const char* unit = band->GetUnitType()) layer.unit = unit;
   layer.own_mask = detail::own_mask_name(*band);
+  layer.data_type = int(band->GetRasterDataType());
   return layer;
 }
 

@@ -575,6 +575,22 @@ class BadInput(kt.TempDirTestCase):
                 self.check_fails([os.path.join(self.good, "*.tif"), "--qa", os.path.join(self.qa, "*.tif"),
                                   "--keep", rule], ["--keep"], [keyword], rule)
 
+    def test_a_keep_rule_is_checked_against_every_qa_file(self):
+        # A QA stack that mixes 16-bit files and one 8-bit file: the width check had read the
+        # first file only, so 'bit 8 == 0' passed and the 8-bit date, whose bit 8 is always 0,
+        # kept every observation, clouds included (exit 0).
+        qa = os.path.join(self.tmp, "qa_mixed_width")
+        os.makedirs(qa, exist_ok=True)
+        for i, date in enumerate(DATES):
+            values = np.random.default_rng(100 + i).integers(0, 4, (HEIGHT, WIDTH))
+            last = i == len(DATES) - 1
+            kt.write_raster(os.path.join(qa, "qa_%s.tif" % date),
+                            values.astype(np.uint8 if last else np.uint16),
+                            geotransform=GEOTRANSFORM, epsg=EPSG)
+        self.check_fails([os.path.join(self.good, "*.tif"), "--qa", os.path.join(qa, "*.tif"),
+                          "--keep", "bit 8 == 0"], ["--keep", "qa_%s.tif" % DATES[-1]],
+                         ["beyond the 8-bit QA values"], "mixed QA widths")
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
