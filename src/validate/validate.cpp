@@ -685,12 +685,6 @@ ValidateReport run_validate(const ValidateRequest& request) {
                        s.rms_error_over_sd >= 0 ? fmt::format("{:.2f}", s.rms_error_over_sd) : "-");
   };
   for (const Score& s : report.scores) md += row(s);
-  // Whittaker's sd of a filled value is the curve's, without the noise of an observation, and
-  // the withheld truth is an observation: its sd scores look too small here (RMS of error / sd
-  // 1.6-1.7 against noisy truth, 1.04 against the noise-free one, on a helper's invented stack).
-  if (std::any_of(report.scores.begin(), report.scores.end(), [](const Score& s) { return s.name == "whittaker"; }))
-    md += "\nwhittaker: its sd of a filled value is that of the curve, not of an observation there; the withheld "
-          "values are observations, with their noise, so its sd columns read low (docs/outputs.md).\n";
   if (!shown.empty()) {
     md += "\nseries.csv holds every date's truth and each fill at the pixels (column, row)";
     for (std::size_t i = 0; i < report.series_pixels.size(); ++i)

@@ -138,6 +138,26 @@ class AlaskaNdvi(kt.TempDirTestCase):
         self.assertLess(m["rmse"], 0.15)
         self.assertGreater(m["coverage"], 0.8)
 
+    def test_whittaker_sd_of_a_filled_value_holds_its_error_at_a_fixed_lambda(self):
+        # The withheld values are real observations: a filled value stands in for one, so its sd
+        # must count an observation's noise as well as the curve's uncertainty (least squares'
+        # prediction interval; Draper & Smith, Applied Regression Analysis, from memory). With
+        # the curve's sd alone the RMS of error / sd was far above 1 at a stiff lambda (measured
+        # here with version 0.3.21: 2.48, 57 % of errors beyond 1.96 sd; with the noise 1.32 and
+        # 9.6 %: a curve this stiff misses the summer peaks that most withheld cells lie in, a
+        # bias the residual noise does not wholly carry).
+        value, sd, flag = self.fill("whittaker-lambda100", ["--method", "whittaker", "--lambda", "100"])
+        cells = self.holdout & np.isfinite(value) & np.isfinite(sd)
+        ratio = (value[cells] - self.observed[cells]) / sd[cells]
+        rms = float(np.sqrt(np.mean(ratio ** 2)))
+        within = float(np.mean(np.abs(ratio) <= 1.96))
+        print("\nwhittaker --lambda 100 on masked20: RMS of error / sd %.3f, %.1f %% within 1.96 sd "
+              "(%d cells)" % (rms, 100 * within, cells.sum()))
+        self.assertGreater(cells.sum(), 0.8 * self.holdout.sum())
+        self.assertLess(rms, 1.5)
+        self.assertGreater(rms, 0.7)
+        self.assertGreater(within, 0.85)
+
     def test_harmonic_two(self):
         value, sd, flag = self.fill("harmonic", ["--method", "harmonic", "--harmonics", "2"])
         m = self.check_and_report("harmonic --harmonics 2", value, sd, flag)

@@ -8,6 +8,9 @@ Model, as documented for kalends:
     [the diagonal of the inverse: Hutchinson, M.F. & de Hoog, F.R. (1985), Numer. Math.
     47:99-106; here checked against a dense numpy inverse];
   sd_i = s sqrt((W + lambda P)^-1_ii) sqrt(nu / (nu - 2)), s = max(sigma, s_GSJ), nu = m - 2,
+    where y_i was observed; at a gap the prediction's sd, sqrt(sd_i^2 + sigma^2) (the curve's
+    variance plus one observation's noise about it, as least squares' prediction interval:
+    Draper & Smith, Applied Regression Analysis, from memory),
   s_GSJ^2 = mean over interior observations of (a y_{i-1} + b y_{i+1} - y_i)^2 / (a^2 + b^2 + 1)
     [Gasser, T., Sroka, L. & Jennen-Steinmetz, C. (1986), Biometrika 73:625-633, from memory;
     the t factor is the sd of Student's t with nu degrees of freedom].
@@ -62,6 +65,7 @@ def reference_fit(y, w, lam, order):
     gsj = np.mean((a * obs[:-2] + b * obs[2:] - obs[1:-1]) ** 2 / (a * a + b * b + 1))
     nu = m - 2
     sd = max(sigma, np.sqrt(gsj)) * np.sqrt(nu / (nu - 2)) * np.sqrt(np.diag(inv))
+    sd = np.where(w > 0, sd, np.sqrt(sd ** 2 + sigma ** 2))
     gcv = m * rss / (m - trace) ** 2
     return {"z": z, "trace": trace, "sigma": sigma, "sd": sd, "gcv": gcv}
 
