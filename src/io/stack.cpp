@@ -224,6 +224,13 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   else if (has)
     layer.nodata = nodata;
   if (const char* unit = band->GetUnitType()) layer.unit = unit;
+  // GRIB states its unit in metadata ("[K]"), not as the band's unit type: a fill of an ERA5
+  // GRIB had written kelvin with no unit, and `suitability` then could not read its own input.
+  if (const char* grib = band->GetMetadataItem("GRIB_UNIT"); layer.unit.empty() && grib != nullptr) {
+    std::string text = grib;
+    if (text.size() >= 2 && text.front() == '[' && text.back() == ']') text = text.substr(1, text.size() - 2);
+    layer.unit = text;
+  }
   layer.own_mask = detail::own_mask_name(*band);
   layer.data_type = int(band->GetRasterDataType());
   return layer;

@@ -145,6 +145,15 @@ class RealFormats(kt.TempDirTestCase):
             self.check_values(out, ds.GetRasterBand(b), out_name)
         s = kt.read_summary(out_dir)
         self.assertEqual(s["dates"], 744)
+        # GRIB states its unit in band metadata (GRIB_UNIT "[K]" with GRIB_NORMALIZE_UNITS=NO,
+        # as kalends reads it; GDAL 3.6's default says "[C]" of the same kelvin values), not as
+        # GDAL's unit type: the outputs had carried no unit, and `suitability` refused the fill
+        # of this very file.
+        written = gdal.Open(os.path.join(out_dir, expected[0]))
+        self.assertEqual(written.GetRasterBand(1).GetUnitType(), "K")
+        self.assertEqual(written.GetRasterBand(2).GetUnitType(), "K")
+        self.assertGreater(float(np.nanmedian(written.GetRasterBand(1).ReadAsArray())), 250.0)
+        written = None
         ds = None
 
 
