@@ -35,6 +35,9 @@ struct Grid {
   // Empty where the source has none; WGS 84 (EPSG:4326) for a NetCDF grid whose axes CF declares
   // longitude and latitude but that names no grid mapping.
   std::string crs_wkt;
+  // AREA_OR_POINT=Point: the values are samples at the cells' centres. GDAL already reports the
+  // geotransform of the cells' corners either way; the outputs keep the statement.
+  bool pixel_is_point = false;
 };
 
 /// The grid of a window of `grid`: its size, and the geotransform moved to its corner.

@@ -308,6 +308,10 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
     if (!file->dataset)
       throw write_failure(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
     GDALDataset& ds = *file->dataset;
+    // Before the geotransform: GeoTIFF writes a point grid's tie point at the first cell's centre
+    // (a fill had turned an input's Point into Area: half a cell apart for a reader that takes
+    // the tie point literally).
+    if (grid.pixel_is_point) ds.SetMetadataItem(GDALMD_AREA_OR_POINT, GDALMD_AOP_POINT);
     if (grid.has_geotransform) {
       std::array<double, 6> gt = grid.geotransform;
       ds.SetGeoTransform(gt.data());

@@ -178,6 +178,8 @@ Grid grid_of(GDALDataset& dataset) {
   grid.height = dataset.GetRasterYSize();
   grid.has_geotransform = dataset.GetGeoTransform(grid.geotransform.data()) == CE_None;
   if (!grid.has_geotransform) grid.geotransform = {0, 1, 0, 0, 0, 1};
+  if (const char* area_or_point = dataset.GetMetadataItem(GDALMD_AREA_OR_POINT))
+    grid.pixel_is_point = EQUAL(area_or_point, GDALMD_AOP_POINT);
   if (const OGRSpatialReference* srs = dataset.GetSpatialRef()) {
     grid.crs_wkt = wkt_of(*srs);
   } else if (has_cf_longitude_latitude_axes(dataset, grid)) {

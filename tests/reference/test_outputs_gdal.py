@@ -504,6 +504,40 @@ class TwoStacksOneFolder(kt.TempDirTestCase):
         self.assertEqual(len(glob.glob(os.path.join(out, "ndvi_2004-*.tif"))), 7)
 
 
+class PointSamples(kt.TempDirTestCase):
+    def test_a_point_grid_stays_a_point_grid(self):
+        # AREA_OR_POINT=Point (GeoTIFF's RasterPixelIsPoint): GDAL reports the cells' corners
+        # either way, but the file's tie point is the first cell's centre. Fill outputs had said
+        # Area with the same corner: a reader that takes tie points literally
+        # (GTIFF_POINT_GEO_IGNORE=YES) then put input and output half a cell apart.
+        gdal = kt.gdal()
+        folder = os.path.join(self.tmp, "point")
+        os.makedirs(folder)
+        rng = np.random.default_rng(5)
+        for doy in range(1, 200, 16):
+            path = os.path.join(folder, "ndvi_A2004%03d.tif" % doy)
+            values = kt.f32(0.5 + 0.1 * rng.random((10, 12)))
+            values[rng.random((10, 12)) < 0.3] = np.nan
+            kt.write_raster(path, values, geotransform=GEOTRANSFORM, epsg=EPSG)
+            ds = gdal.Open(path, gdal.GA_Update)
+            ds.SetMetadataItem("AREA_OR_POINT", "Point")
+            ds = None
+        out = os.path.join(self.tmp, "point_out")
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        source = os.path.join(folder, "ndvi_A2004001.tif")
+        written = os.path.join(out, "ndvi_2004-01-01.tif")
+        try:
+            for ignore in ("NO", "YES"):
+                gdal.SetConfigOption("GTIFF_POINT_GEO_IGNORE", ignore)
+                a, b = gdal.Open(source), gdal.Open(written)
+                self.assertEqual(b.GetMetadataItem("AREA_OR_POINT"), "Point")
+                np.testing.assert_allclose(b.GetGeoTransform(), a.GetGeoTransform(), rtol=0, atol=1e-6)
+                a = b = None
+        finally:
+            gdal.SetConfigOption("GTIFF_POINT_GEO_IGNORE", None)
+
+
 class NodataOfTheType(kt.TempDirTestCase):
     def test_a_nodata_no_stored_value_can_equal_is_refused(self):
         # int16 NDVI x 10000: --nodata -40000 (or 0.5) marks nothing, and every fill value would
