@@ -417,6 +417,26 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     if (!request.extent) common.push_back("-crop_to_cutline");
   }
 
+  // The study grid is held in memory, band by band and once more assembled: one far larger than
+  // the machine (a clip far from the data, an extent in the wrong units) had crashed the warp
+  // (SIGSEGV) or been killed by the kernel. Its size is known from a virtual warp, before any.
+  const std::uint64_t usable = std::uint64_t(CPLGetUsablePhysicalRAM());
+  for (std::size_t i = 0; i < sources.size(); ++i) {
+    std::vector<std::string> args = common;
+    args[1] = "VRT";  // "-of MEM" -> "-of VRT": the grid's size without its cells
+    if (!source_crs[i].empty()) args.insert(args.end(), {"-s_srs", source_crs[i]});
+    const DatasetPtr sized = warp(*datasets[i], args, sources[i].path);
+    const std::uint64_t cells = std::uint64_t(sized->GetRasterXSize()) * std::uint64_t(sized->GetRasterYSize());
+    const std::uint64_t bytes = cells * 4u * (2u * std::uint64_t(datasets[i]->GetRasterCount()) + 2u);
+    if (usable > 0 && bytes > usable / 2)
+      throw UsageError(sources[i].path,
+                       fmt::format("its study grid would be {} x {} cells, about {:.1f} GiB in memory, more than half of "
+                                   "this machine's {:.1f} GiB: give an --extent, a coarser --resolution or a clip nearer "
+                                   "the data (a clip's whole bounding box is gridded)",
+                                   sized->GetRasterXSize(), sized->GetRasterYSize(), double(bytes) / (1u << 30),
+                                   double(usable) / (1u << 30)));
+  }
+
   std::error_code ec;
   // Held while the layers are written (a second command into it is refused); its hidden
   // temporaries from a killed run go; removed again if this run made it and fails.
@@ -562,6 +582,7 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     const int bands = int(placed.size()) + (share ? 1 : 0);
     GDALDriver* mem = GetGDALDriverManager()->GetDriverByName("MEM");
     DatasetPtr result(mem->Create("", width, height, bands, GDT_Float32, nullptr));
+    if (!result) throw OutputError(sources[i].relative, "out of memory for the study grid's layer");
     double gt[6];
     first.GetGeoTransform(gt);
     result->SetGeoTransform(gt);

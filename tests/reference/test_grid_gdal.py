@@ -675,6 +675,33 @@ class Refusals(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertIn("%s.geojson: feature 0 holds" % name, done.stderr)
 
+    def test_a_study_grid_larger_than_the_machine_is_refused_before_it_is_made(self):
+        # A clip far from the data (the whole bounding box is gridded): 22661 x 22547 cells of
+        # UTM 33N at 30 m. The warp had crashed (SIGSEGV) under a memory limit, or grown to the
+        # machine's whole memory without one. Run here under an address-space limit of 3 GiB
+        # (resource.setrlimit, as `ulimit -v`), which GDAL's usable-memory figure honours.
+        import resource
+        import subprocess
+        path = self.layer(os.path.join(self.tmp, "far-in"), "f.tif", geotransform=(500000.0, 30.0, 0, 4000000.0, 0, -30.0),
+                          epsg=32633)
+        clip = os.path.join(self.tmp, "far.geojson")
+        with open(clip, "w") as f:
+            json.dump({"type": "FeatureCollection", "features": [{"type": "Feature", "properties": {},
+                       "geometry": {"type": "Polygon", "coordinates": [[[100, 10], [101, 10], [101, 11],
+                                                                         [100, 11], [100, 10]]]}}]}, f)
+        out = os.path.join(self.tmp, "far-out")
+
+        def limit():
+            resource.setrlimit(resource.RLIMIT_AS, (3 << 30, 3 << 30))
+
+        done = subprocess.run([kt.KALENDS_BIN, "grid", path, "--out", out, "--crs", "EPSG:32633", "--clip", clip], capture_output=True, text=True,
+                              timeout=120, preexec_fn=limit)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("f.tif: its study grid would be", done.stderr)
+        self.assertIn("give an --extent, a coarser --resolution or a clip nearer the data", done.stderr)
+        self.assertFalse(os.path.exists(out) and os.listdir(out), out)
+
     def test_an_sd_never_goes_negative_and_a_caution_is_shown(self):
         # Lanczos overshoots: an invented fill output whose sd jumps from 0 to 0.2 had come out
         # with sds below 0. Suitability's caution, kept in the files, is shown on the console.
