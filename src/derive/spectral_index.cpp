@@ -114,6 +114,7 @@ void check_index_options(const IndexRequest& request) {
 IndexSummary run_index(const IndexRequest& request) {
   detail::start_gdal();
   check_index_options(request);
+  detail::require_plain_name(request.name);
   const bool evi = request.kind == SpectralIndex::evi;
   auto rules_for = [&](int band, const char* role) {
     const auto own = request.rules_of.find(role);

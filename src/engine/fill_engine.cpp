@@ -165,7 +165,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
 
   // Options first, then every input, before anything is created.
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
-  if (request.name.find('/') != std::string::npos) throw UsageError("--name", "must not contain '/'");
+  detail::require_plain_name(request.name);
   check_band(request.rules.band, "--band");
   std::optional<QaRule> keep_rule = qa_rule_of(request.qa_input, request.qa_keep, request.qa_band);
   MethodOptions method_options = request.method;

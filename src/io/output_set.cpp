@@ -40,6 +40,14 @@ OutputError write_failure(const std::string& path, const std::string& what) {
   return OutputError(path, what);
 }
 
+void require_plain_name(const std::string& name, const std::string& option) {
+  const bool control = std::any_of(name.begin(), name.end(), [](char c) { return (unsigned char)c < 0x20; });
+  if (name.find_first_of("/\\") != std::string::npos || (!name.empty() && name.front() == '.') || control)
+    throw UsageError(option + " '" + name + "'",
+                     "must be a plain name (no '/', '\\', control characters or leading '.'): the outputs are "
+                     "<name>_<layer>.tif inside the output folder");
+}
+
 void require_header_in_file(const std::string& written, const std::string& target) {
   const std::string side = written + ".aux.xml";
   std::error_code ec;

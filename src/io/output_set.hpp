@@ -29,6 +29,10 @@ OutputError write_failure(const std::string& path, const std::string& what);
 /// would leave that file behind and publish the raster without it. The side file is removed.
 void require_header_in_file(const std::string& written, const std::string& target);
 
+/// Refuses an output name (`--name`, a job step's `name`) that is not a plain file-name part:
+/// with '/' or '\\', or a leading '.', a name of '../x' had written outside the output folder.
+void require_plain_name(const std::string& name, const std::string& option = "--name");
+
 struct BandSpec {
   std::string description;
   std::string unit;

@@ -14,6 +14,7 @@
 #include <set>
 
 #include "io/file_glob.hpp"
+#include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/fill.hpp"
 #include "kalends/qa_rule.hpp"
@@ -317,6 +318,15 @@ Job read_job(const std::string& path) {
       }
       step.options[k] = found->role == StepKey::Role::path ? path_text(path, k, value)
                                                            : checked_text(path, k, value, found->type);
+      // A step's outputs are named after it inside the step's folder: '../x' had written its
+      // layers outside (seasons) or failed only when the step ran (fill).
+      if (k == "name") {
+        try {
+          detail::require_plain_name(step.options[k], "name");
+        } catch (const UsageError& e) {
+          fail(path, value.source(), std::string(e.what()));
+        }
+      }
       if (found->role == StepKey::Role::reads) {
         // a texts key names several inputs or steps (joined by ',' above)
         const std::vector<std::string> names =

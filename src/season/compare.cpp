@@ -107,6 +107,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   require_not_half_published(request.seasons_dir);
   detail::require_own_text_file((fs::path(request.out_dir) / "compare.json").string(), "\"synoptic_rmse\"");
   detail::require_own_text_file((fs::path(request.out_dir) / "compare.md").string(), "# Where the synoptic layers");
+  detail::require_plain_name(request.name);
   CompareSummary summary;
   std::string name = request.name;
   std::vector<std::string> names;  // the layer sets the folder holds

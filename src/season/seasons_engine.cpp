@@ -143,6 +143,7 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
 SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const auto started = std::chrono::steady_clock::now();
   check_seasons_options(request);
+  detail::require_plain_name(request.name);
   const Stack stack = Stack::open(stack_input(request.input), request.rules);
   detail::require_out_apart_from(stack, request.out_dir, "input");
   // Means of flag codes would be numbers that mean nothing.

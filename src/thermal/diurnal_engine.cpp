@@ -45,6 +45,7 @@ struct DiurnalWorker {
 DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   const auto started = std::chrono::steady_clock::now();
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");
+  detail::require_plain_name(request.name);
   ThermalParameters table = ThermalParameters::defaults();
   if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
   const DiurnalParameters parameters = DiurnalParameters::from(table);

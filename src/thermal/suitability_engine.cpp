@@ -109,6 +109,7 @@ void set_window(SuitabilityRequest& request, double low, double high) {
 SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const auto started = std::chrono::steady_clock::now();
   const auto [table, model] = checked_options(request);
+  detail::require_plain_name(request.name);
   const DiurnalParameters diurnal = DiurnalParameters::from(table);
   const detail::TemperatureSource source = detail::TemperatureSource::open(request.inputs);
   for (const Stack& input : source.stacks) detail::require_out_apart_from(input, request.out_dir, "input");

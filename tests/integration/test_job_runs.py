@@ -434,6 +434,12 @@ class JobFile(kt.TempDirTestCase):
              ["'points': no such file", "no-such-points.csv"]),
             (good + '\n[[step]]\ndo = "extract"\ninput = ["fill"]\npoints = "bad.toml"\ncrs = "EPSG:999999"\n',
              n + 5, ["'crs' 'EPSG:999999'", "not a CRS"]),
+            # A name with '../': a seasons step had written its layers outside its folder, a
+            # fill step had passed --dry-run and failed when it ran.
+            (good.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nname = "../../away"'),
+             lines.index('do = "seasons"') + 3, ["name '../../away'", "must be a plain name"]),
+            (good.replace('every = "1M"', 'every = "1M"\nname = "../x"'), lines.index('every = "1M"') + 2,
+             ["name '../x'", "must be a plain name"]),
         ]
         with open(os.path.join(self.tmp, "sites.csv"), "w") as f:
             f.write("site,lon,lat\ns1,10,20\n")

@@ -591,6 +591,34 @@ class BadInput(kt.TempDirTestCase):
                           "--keep", "bit 8 == 0"], ["--keep", "qa_%s.tif" % DATES[-1]],
                          ["beyond the 8-bit QA values"], "mixed QA widths")
 
+    def test_a_name_that_leaves_the_output_folder_is_refused_by_every_command(self):
+        # '--name ../x' had written seasons', index's, diurnal's and suitability's layers into
+        # the folder above --out (exit 0); fill refused it already.
+        folder = os.path.join(self.tmp, "names")
+        for band, value in (("red", 0.1), ("nir", 0.4), ("tmin", 18.0), ("tmax", 30.0)):
+            for date in DATES[:3]:
+                os.makedirs(os.path.join(folder, band), exist_ok=True)
+                kt.write_raster(os.path.join(folder, band, "%s_%s.tif" % (band, date)),
+                                np.full((HEIGHT, WIDTH), value, np.float32), geotransform=GEOTRANSFORM, epsg=EPSG)
+        inputs = {b: os.path.join(folder, b, "*.tif") for b in ("red", "nir", "tmin", "tmax")}
+        commands = {
+            "fill": ["fill", os.path.join(self.good, "*.tif")],
+            "seasons": ["seasons", self.previous],
+            "index": ["index", "--red", inputs["red"], "--nir", inputs["nir"]],
+            "diurnal": ["diurnal", "--tmin", inputs["tmin"], "--tmax", inputs["tmax"], "--units", "celsius"],
+            "suitability": ["suitability", "--tmin", inputs["tmin"], "--tmax", inputs["tmax"], "--units", "celsius"],
+        }
+        for command, args in commands.items():
+            for name in ("../away", "a/b", ".hidden"):
+                with self.subTest(command=command, name=name):
+                    out = os.path.join(folder, "out_" + command)
+                    done = kt.run_kalends(args + ["--out", out, "--name", name])
+                    self.assertEqual(done.returncode, 2, done.stderr)
+                    self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+                    self.assertIn("--name '%s': must be a plain name" % name, done.stderr)
+                    self.assertEqual([f for f in os.listdir(folder) if f.startswith("away")], [])
+                    self.assertFalse(os.path.exists(out))
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
