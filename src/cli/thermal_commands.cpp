@@ -108,6 +108,8 @@ Action add_diurnal_command(CLI::App& app, GlobalOptions& global) {
                                     o->in.inputs.night.empty()))
       throw UsageError("--calibrate", "fits a, b and c alone; write the hourly layers in a second run with "
                                       "--parameters and the file --save-parameters wrote");
+    if (o->calibrate.empty() && !o->save_parameters.empty())
+      throw UsageError("--save-parameters", "writes what --calibrate fits; without --calibrate there is nothing to save");
     if (!o->calibrate.empty()) {
       // Before the fit, which had run to the end and then failed to write (exit 1).
       if (!o->save_parameters.empty()) detail::require_file_destination(o->save_parameters, "--save-parameters", "diurnal.toml");

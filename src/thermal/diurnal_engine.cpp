@@ -18,6 +18,7 @@
 #include "engine/memory_budget.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/seasons.hpp"
 #include "kalends/suitability.hpp"
@@ -80,7 +81,7 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
                     .string();
     spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
                      {"KALENDS_METHOD", "Parton & Logan (1981) diurnal cycle " + how},
-                     {"KALENDS_PARAMETERS", fmt::format("a={:g};b={:g};c={:g}", parameters.a,
+                     {"KALENDS_PARAMETERS", fmt::format("a={};b={};c={}", parameters.a,
                                                         parameters.b, parameters.c)},
                      {"KALENDS_DATE", source.times[i].iso()},
                      {"KALENDS_HOURS", "UTC; local mean solar time = UTC + longitude / 15 h"},
@@ -229,6 +230,9 @@ DiurnalParameters as_parameters(const Eigen::Vector3d& x) { return {x[0], x[1], 
 CalibrationSummary run_calibration(const CalibrationRequest& request) {
   if (request.out_file.empty())
     throw UsageError("--save-parameters", "a file to write the fitted parameters to is required");
+  // It replaces only parameters kalends wrote before: a user's notes under that name had been
+  // overwritten without a word.
+  detail::require_own_text_file(request.out_file, "# kalends diurnal parameters");
   ThermalParameters table = ThermalParameters::defaults();
   if (!request.parameters_file.empty()) table.override_from_file(request.parameters_file);
   const Stack stack = Stack::open(stack_input(request.reference), request.rules);

@@ -59,7 +59,7 @@ std::string parameter_text(const ThermalParameters& table, const std::vector<std
     if (e.section + "." + e.key == unused) continue;
     out += fmt::format("{}{}.{}=", out.empty() ? "" : ";", e.section, e.key);
     for (std::size_t i = 0; i < e.values.size(); ++i)
-      out += fmt::format("{}{:g}", i ? "," : "", e.values[i]);
+      out += fmt::format("{}{}", i ? "," : "", e.values[i]);  // reads back as the same double
   }
   return out;
 }
@@ -147,12 +147,12 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   for (const Stack& s : source.stacks) inputs_text += (inputs_text.empty() ? "" : " ") + s.input();
   if (source.mode == Mode::extremes)
     temperature_text =
-        fmt::format("hours from daily minimum and maximum, Parton-Logan a={:g} b={:g} c={:g}",
+        fmt::format("hours from daily minimum and maximum, Parton-Logan a={} b={} c={}",
                     diurnal.a, diurnal.b, diurnal.c);
   else if (source.mode == Mode::overpasses)
     temperature_text = fmt::format(
         "hours from day and night overpasses at {:g} h and {:g} h local solar time, Parton-Logan "
-        "a={:g} b={:g} c={:g}",
+        "a={} b={} c={}",
         source.day_hour, source.night_hour, diurnal.a, diurnal.b, diurnal.c);
   else
     temperature_text = "temperatures as given (no diurnal cycle)";

@@ -302,6 +302,13 @@ class DiurnalEra5(kt.TempDirTestCase):
                                "--tmax", os.path.join(self.input, "tmax_*.tif"), "--units", "celsius",
                                "--parameters", params, "--out", fitted_out])
         self.assertEqual(done.returncode, 0, done.stderr)
+        # The outputs record the parameters as the file gives them (they had been rounded to six
+        # digits, c=0.437921 for c = 0.4379213176): the layers can be made again from them.
+        recorded = dict(item.split("=") for item in kt.gdal().Open(
+            os.path.join(fitted_out, sorted(os.listdir(fitted_out))[0])).GetMetadataItem("KALENDS_PARAMETERS").split(";"))
+        for key in ("a", "b", "c"):
+            given = text.split("\n%s = " % key)[1].split()[0]
+            self.assertEqual(float(recorded[key]), float(given), key)
         fitted = self.read_hours(fitted_out)
         second = slice(15, 31)  # 16 to 31 March: not used by the fit
         before = np.sqrt(np.mean((self.default[second] - self.days[second]) ** 2))
@@ -366,6 +373,26 @@ class DiurnalEra5(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
             self.assertIn(expected, done.stderr)
+
+    def test_saved_parameters_replace_only_a_file_kalends_wrote(self):
+        # A user's notes under the name given had been replaced by the fitted TOML (exit 0); and
+        # --save-parameters without --calibrate had been ignored without a word.
+        notes = os.path.join(self.tmp, "notes.txt")
+        with open(notes, "w") as f:
+            f.write("field notes of the Orvane ridge station\n")
+        done = kt.run_kalends(["diurnal", "--calibrate", self.grib, "--units", "kelvin", "--fit-days",
+                               "2019-03-01,2019-03-02", "--save-parameters", notes])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertIn("notes.txt", done.stderr)
+        with open(notes) as f:
+            self.assertEqual(f.read(), "field notes of the Orvane ridge station\n")
+        done = kt.run_kalends(["diurnal", "--tmin", os.path.join(self.input, "tmin_*.tif"), "--tmax",
+                               os.path.join(self.input, "tmax_*.tif"), "--out", os.path.join(self.tmp, "unsaved"),
+                               "--save-parameters", os.path.join(self.tmp, "unsaved.toml")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--save-parameters: writes what --calibrate fits", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "unsaved")))
 
 
 if __name__ == "__main__":
