@@ -2,6 +2,8 @@
 //   [--buffer METRES] [--lags 1,2,3] [--layers 'fill.*,seasons.ndvi_synoptic_mean'] [--long]
 #include <fmt/format.h>
 
+#include <cmath>
+
 #include <cstdio>
 
 #include "cli/commands.hpp"
@@ -51,7 +53,8 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
     r.points.date_column_given = date_column->count() > 0;
     r.sampling = parse_sampling(o->sampling);
     r.buffer_metres = optional_number(o->buffer, "--buffer").value_or(0);
-    if (!o->buffer.empty() && !(r.buffer_metres > 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
+    if (!o->buffer.empty() && !(r.buffer_metres > 0 && std::isfinite(r.buffer_metres)))
+      throw UsageError("--buffer", "the radius must be a positive, finite number of metres");
     r.lags = parse_whole_numbers(o->lags, "--lags");
     r.layers = split_list(o->layers, "--layers");
     r.marks = parse_date_marks(o->marks);

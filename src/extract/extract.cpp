@@ -565,7 +565,9 @@ void check_extract_options(const ExtractRequest& request) {
     OGRSpatialReference crs;
     detail::set_crs_from_user(crs, request.points.crs, "--crs");
   }
-  if (!(request.buffer_metres >= 0)) throw UsageError("--buffer", "the radius must be positive (metres)");
+  // inf had been taken: an empty buffer mean for every point, with no reason given.
+  if (!(request.buffer_metres >= 0 && std::isfinite(request.buffer_metres)))
+    throw UsageError("--buffer", "the radius must be a positive, finite number of metres");
   for (int lag : request.lags)
     if (lag < 1) throw UsageError("--lags", "lags count periods before the survey's: 1, 2, ...");
   if (!request.out.empty() && std::filesystem::is_directory(request.out))

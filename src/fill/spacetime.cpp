@@ -82,14 +82,17 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
     : options_(options), plans_(planning_of(options.spacetime_fft_wisdom)) {
   if (options.spacetime_fft_wisdom.empty())
     throw UsageError("--fft-wisdom", "must be auto, none or a file");
-  if (options.spacetime_space_smoothing && !(*options.spacetime_space_smoothing > 0))
-    throw UsageError("--space-smoothing", "must be positive or auto");
-  if (options.spacetime_time_smoothing && !(*options.spacetime_time_smoothing > 0))
-    throw UsageError("--time-smoothing", "must be positive or auto");
-  if (!(options.spacetime_climate_smoothing > 0))
-    throw UsageError("--climate-smoothing", "must be positive");
-  if (!(options.spacetime_season_smoothing >= 0))
-    throw UsageError("--season-smoothing", "must be 0 or more");
+  // Infinite smoothing had been taken and left every filled value without an sd (NaN).
+  if (options.spacetime_space_smoothing &&
+      !(*options.spacetime_space_smoothing > 0 && std::isfinite(*options.spacetime_space_smoothing)))
+    throw UsageError("--space-smoothing", "must be a positive (finite) number or auto");
+  if (options.spacetime_time_smoothing &&
+      !(*options.spacetime_time_smoothing > 0 && std::isfinite(*options.spacetime_time_smoothing)))
+    throw UsageError("--time-smoothing", "must be a positive (finite) number or auto");
+  if (!(options.spacetime_climate_smoothing > 0 && std::isfinite(options.spacetime_climate_smoothing)))
+    throw UsageError("--climate-smoothing", "must be a positive (finite) number");
+  if (!(options.spacetime_season_smoothing >= 0 && std::isfinite(options.spacetime_season_smoothing)))
+    throw UsageError("--season-smoothing", "must be a finite number, 0 or more");
   if (options.spacetime_neighbour_radius < 0 || options.spacetime_neighbour_radius > 32)
     throw UsageError("--neighbour-radius", "must be 0..32 pixels");
   if (options.spacetime_halo < 0 || options.spacetime_halo > 1024)

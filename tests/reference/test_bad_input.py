@@ -645,6 +645,10 @@ class BadInput(kt.TempDirTestCase):
                  (["--qa", os.path.join(self.qa, "*.tif"), "--keep", "bits0-1 in 0,1", "--qa-band", "0"],
                   "--qa-band", "numbered from 1"),
                  (["--method", "spacetime", "--season-smoothing", "-1"], "--season-smoothing", "0 or more"),
+                 # inf had been taken, and every filled value came out without an sd (NaN).
+                 (["--method", "spacetime", "--space-smoothing", "inf"], "--space-smoothing", "positive (finite)"),
+                 (["--method", "spacetime", "--time-smoothing", "inf"], "--time-smoothing", "positive (finite)"),
+                 (["--method", "spacetime", "--climate-smoothing", "inf"], "--climate-smoothing", "positive (finite)"),
                  (["--subset", "0,0,5"], "--subset", "COLUMN,ROW,WIDTH,HEIGHT"),
                  (["--subset", "0,0,5,5", "--tiles", "x/{tile}/"], "--subset", "tile set"),
                  (["--subset", "2,2,0,5"], "region", "at least 1 px"),

@@ -546,7 +546,9 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--lags", "1.5"], "--lags '1.5': expected a whole number"),
                                 (["--lags", "0"], "--lags"),
                                 (["--layers", "b1,"], "--layers 'b1,': an empty item"),
-                                (["--buffer", "nan"], "--buffer: the radius must be positive"),
+                                (["--buffer", "nan"], "--buffer: the radius must be a positive, finite number"),
+                                # inf had given every point an empty buffer mean, with no reason.
+                                (["--buffer", "inf"], "--buffer: the radius must be a positive, finite number"),
                                 # PROJ alone reads this as EPSG:4326: a slip would go unseen.
                                 (["--crs", "EPSG:4326x"], "--crs 'EPSG:4326x': not a CRS PROJ knows"),
                                 (["--out", self.tmp], "is a folder; give the table's file name"),

@@ -1,5 +1,6 @@
 // Step 'extract': covariates at survey points (kalends extract). `input` names the steps (or
 // inputs) whose layers are sampled; the table is `<step folder>/<table>` (default table.csv).
+#include <cmath>
 #include <filesystem>
 
 #include "kalends/error.hpp"
@@ -29,7 +30,7 @@ ExtractRequest extract_request(const StepContext& c) {
   r.points.crs = c.text("crs", r.points.crs);
   r.sampling = parse_sampling(c.text("sampling", "nearest"));
   r.buffer_metres = c.number("buffer", 0);
-  if (c.has("buffer") && !(r.buffer_metres > 0))  // 0 had meant no buffer, without a word
+  if (c.has("buffer") && !(r.buffer_metres > 0 && std::isfinite(r.buffer_metres)))  // 0 had meant no buffer
     throw UsageError("--buffer", "the radius must be positive (metres); leave the key out for no buffer");
   r.lags = c.integers("lags");
   r.marks = parse_date_marks(c.text("date_marks", "auto"));
