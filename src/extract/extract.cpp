@@ -70,8 +70,7 @@ class Files {
     std::vector<double> v(static_cast<std::size_t>(cols) * rows);
     CPLErrorReset();
     // Signed bytes as signed; cells the band's own mask marks invalid are NaN.
-    if (!detail::read_stored_values(*b, col, row, cols, rows, v.data(), GDT_Float64))
-      throw InputError(path, detail::gdal_message("cannot read"));
+    if (!detail::read_stored_values(*b, col, row, cols, rows, v.data(), GDT_Float64)) detail::throw_read_failed(path);
     int has_nodata = 0;
     const double nodata = b->GetNoDataValue(&has_nodata);
     const double scale = b->GetScale(), offset = b->GetOffset();

@@ -143,6 +143,12 @@ void throw_unreadable(const std::string& path, const std::string& reason) {
   throw InputError(path, reason);
 }
 
+void throw_read_failed(const std::string& path) {
+  std::string message = gdal_message("read failed");
+  if (message.rfind(path + ", ", 0) == 0) message.erase(0, path.size() + 2);
+  throw_unreadable(path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
+}
+
 std::string open_files_limit_text() {
   rlimit limit{};
   getrlimit(RLIMIT_NOFILE, &limit);

@@ -33,6 +33,11 @@ bool memory_is_short();
 /// Error (exit 1, not skipped as bad input) where memory is short, else InputError.
 [[noreturn]] void throw_unreadable(const std::string& path, const std::string& reason);
 
+/// throw_unreadable for pixels of `path` that GDAL failed to read (call right after the failed
+/// read, with CPLErrorReset before it): "cannot read pixels (...); the file may be truncated or
+/// corrupt", GDAL's message without the file name it repeats.
+[[noreturn]] void throw_read_failed(const std::string& path);
+
 /// What to say where a file cannot be opened or created for want of file descriptors (EMFILE):
 /// the limit, and that a fill keeps every date's files open.
 std::string open_files_limit_text();

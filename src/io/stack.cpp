@@ -856,12 +856,7 @@ struct StackReader::Handles {
 StackReader::StackReader(const Stack& stack) : stack_(stack), handles_(std::make_unique<Handles>()) {}
 StackReader::~StackReader() = default;
 
-[[noreturn]] static void throw_read_failed(const Layer& layer) {
-  // GDAL's message often starts with the file's name, which the error names already.
-  std::string message = detail::gdal_message("read failed");
-  if (message.rfind(layer.path + ", ", 0) == 0) message.erase(0, layer.path.size() + 2);
-  detail::throw_unreadable(layer.path, "cannot read pixels (" + message + "); the file may be truncated or corrupt");
-}
+[[noreturn]] static void throw_read_failed(const Layer& layer) { detail::throw_read_failed(layer.path); }
 
 // QA bits, as stored.
 static void read_window(GDALRasterBand& band, const Layer& layer, const Window& w, void* out,

@@ -33,8 +33,9 @@ Reduced read_reduced(const std::string& path, const std::vector<int>& bands, int
   for (int b : bands) {
     GDALRasterBand* band = ds->GetRasterBand(b);
     if (!band) throw InputError(path, "has no band " + std::to_string(b));
+    CPLErrorReset();
     if (band->RasterIO(GF_Read, 0, 0, w, h, band_values.data(), r.width, r.height, GDT_Float64, 0, 0) != CE_None)
-      throw InputError(path, gdal_message("cannot read"));
+      throw_read_failed(path);
     int has_nodata = 0;
     const double nodata = band->GetNoDataValue(&has_nodata);
     const double scale = band->GetScale(), offset = band->GetOffset();

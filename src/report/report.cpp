@@ -253,7 +253,11 @@ double read_pixel(GDALDataset& ds, int band, int col, int row) {
   GDALRasterBand* b = ds.GetRasterBand(band);
   if (!b) return NAN;
   double v = NAN;
-  if (b->RasterIO(GF_Read, col, row, 1, 1, &v, 1, 1, GDT_Float64, 0, 0) != CE_None) return NAN;
+  // A file that opens but cannot be read (cut short) had been drawn and counted as a cell
+  // without a value (exit 0), as a real gap is; every other command refuses it.
+  CPLErrorReset();
+  if (b->RasterIO(GF_Read, col, row, 1, 1, &v, 1, 1, GDT_Float64, 0, 0) != CE_None)
+    detail::throw_read_failed(ds.GetDescription());
   int has_nodata = 0;
   const double nodata = b->GetNoDataValue(&has_nodata);
   if (std::isnan(v) || (has_nodata && v == nodata)) return NAN;

@@ -619,6 +619,34 @@ class BadInput(kt.TempDirTestCase):
                     self.assertEqual([f for f in os.listdir(folder) if f.startswith("away")], [])
                     self.assertFalse(os.path.exists(out))
 
+    def test_a_fill_output_cut_short_is_refused_by_report_and_extract(self):
+        # report had drawn the unreadable date as a gap and counted it "without a value" (exit 0);
+        # extract had named the file twice, in GDAL's words. Both now say what seasons says.
+        filled = os.path.join(self.tmp, "cut-short")
+        shutil.copytree(self.previous, filled)
+        cut = os.path.join(filled, "ndvi_%s.tif" % DATES[2])
+        with open(cut, "rb") as f:
+            head = f.read(3000)
+        with open(cut, "wb") as f:
+            f.write(head)
+        points = os.path.join(self.tmp, "cut-short-points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\nA,%f,%f,%s\n" % (GEOTRANSFORM[0] + 300, GEOTRANSFORM[3] - 300, DATES[2]))
+        page = os.path.join(self.tmp, "cut-short.html")
+        table = os.path.join(self.tmp, "cut-short.csv")
+        for args, written in ((["report", filled, "--html", page, "--pixels", "10,10"], page),
+                              (["extract", filled, "--points", points, "--x-column", "x", "--y-column", "y",
+                                "--crs", "EPSG:%d" % EPSG, "--out", table], table)):
+            with self.subTest(command=args[0]):
+                done = kt.run_kalends(args)
+                self.assertEqual(done.returncode, 2, done.stderr)
+                lines = done.stderr.strip().splitlines()
+                self.assertEqual(len(lines), 1, done.stderr)
+                self.assertIn("ndvi_%s.tif: cannot read pixels" % DATES[2], lines[0])
+                self.assertIn("the file may be truncated or corrupt", lines[0])
+                self.assertEqual(lines[0].count("ndvi_%s.tif" % DATES[2]), 1, lines[0])
+                self.assertFalse(os.path.exists(written))
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
