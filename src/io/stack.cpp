@@ -592,6 +592,11 @@ std::string mixed_value_rules(const Stack& stack) {
     const auto label = [](const std::string& unit) { return unit.empty() ? std::string("none") : "'" + unit + "'"; };
     if (layer.unit != first.unit)
       differ.push_back(fmt::format("unit {} (first date {}, which the outputs carry)", label(layer.unit), label(first.unit)));
+    // Unscaled Int16 counts (5000) among Float32 NDVI (0.5), the rules otherwise the same, had
+    // been taken without a word, and the fill carried 3000s into the neighbouring dates.
+    if (layer.data_type != first.data_type)
+      differ.push_back(fmt::format("data type {} (first date {})", GDALGetDataTypeName(GDALDataType(layer.data_type)),
+                                   GDALGetDataTypeName(GDALDataType(first.data_type))));
     if (!differ.empty()) dates.push_back(fmt::format("{} has {}", layer.time.label(), fmt::join(differ, ", ")));
   }
   if (dates.empty()) return "";

@@ -338,6 +338,17 @@ class InspectQa(kt.TempDirTestCase):
                                os.path.join(self.tmp, "mixed-given")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertNotIn("value rules differ", done.stderr)
+        # One date of unscaled Int16 counts (5000) among Float32 NDVI (0.5), the rules otherwise
+        # the same: taken without a word, and the fill had carried thousands into the dates
+        # beside it.
+        types = os.path.join(self.tmp, "types")
+        os.makedirs(types)
+        for k, date in enumerate(("2020-01-01", "2020-01-17", "2020-02-02", "2020-02-18")):
+            values = np.full((4, 4), 5000, np.int16) if k == 2 else np.full((4, 4), 0.5, np.float32)
+            kt.write_raster(os.path.join(types, "ndvi_%s.tif" % date), values)
+        done = kt.run_kalends(["-q", "fill", os.path.join(types, "*.tif"), "--out", os.path.join(self.tmp, "types-out")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("the inputs' value rules differ: 2020-02-02 has data type Int16 (first date Float32)", done.stderr)
         # One date labelled in degrees Celsius among kelvin files: no value is converted, and the
         # outputs carry the first label; it had passed without a word.
         units = os.path.join(self.tmp, "units")
