@@ -831,6 +831,22 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       const std::string where_a = b.path == a.path ? "band " + std::to_string(a.band) : a.path;
       throw InputError(where_b, "duplicate date " + b.time.label() + " (also " + where_a + ")");
     }
+  // One file dated 9999-12-31 among 2021's had made a time grid of 180,000 steps (1.3 GB for
+  // 20 x 20 px) and left pixels unfitted, without a word. No stack kalends reads has a real gap
+  // of a century (a baseline and a projection decades apart, yes).
+  constexpr double longest_gap_years = 100;
+  for (std::size_t i = 1; i < stack.layers_.size(); ++i) {
+    const Layer& a = stack.layers_[i - 1];
+    const Layer& b = stack.layers_[i];
+    const double years = double(b.time.seconds - a.time.seconds) / (365.25 * 86400.0);
+    if (years > longest_gap_years)
+      throw InputError(b.path == a.path ? band_where(b.path, b.band) : b.path,
+                       fmt::format("is dated {}, {:.0f} years after the date before it ({}, {}): a gap of more than "
+                                   "{:.0f} years in one stack is taken for a wrong date; check both dates "
+                                   "(kalends inspect --dates)",
+                                   b.time.label(), years, a.time.label(),
+                                   b.path == a.path ? "band " + std::to_string(a.band) : a.path, longest_gap_years));
+  }
   return stack;
 }
 

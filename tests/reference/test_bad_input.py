@@ -647,6 +647,15 @@ class BadInput(kt.TempDirTestCase):
                 self.assertEqual(lines[0].count("ndvi_%s.tif" % DATES[2]), 1, lines[0])
                 self.assertFalse(os.path.exists(written))
 
+    def test_a_date_a_century_from_the_rest_is_refused(self):
+        # ndvi_9999-12-31.tif among 2020's dates had made a time grid of about 180,000 steps
+        # (1.3 GB for a tiny stack) and left pixels unfitted, exit 0.
+        folder = os.path.join(self.tmp, "far-date")
+        shutil.copytree(self.good, folder)
+        shutil.copy(os.path.join(folder, "ndvi_%s.tif" % DATES[0]), os.path.join(folder, "ndvi_9999-12-31.tif"))
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_9999-12-31.tif", "ndvi_%s.tif" % DATES[-1]],
+                         ["years after the date before it", "taken for a wrong date"], "a date far from the rest")
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
