@@ -144,7 +144,9 @@ struct MethodOptions {
 std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options);
 std::vector<std::string> fill_method_names();
 /// UsageError naming the option (as --option) when one of `given` (job keys: "harmonics",
-/// "space_smoothing") is read by none of `methods`: it would be silently ignored.
-void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& given);
+/// "space_smoothing") is read by none of `methods`: it would be silently ignored. A name among
+/// `methods` that is no method is refused first, naming `methods_option`.
+void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& given,
+                         const std::string& methods_option = "--method");
 
 }  // namespace kalends

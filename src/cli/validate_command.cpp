@@ -61,7 +61,7 @@ Action add_validate_command(CLI::App& app, GlobalOptions& global) {
     apply_method_options(r.method, o->method_texts);
     apply_value_rule_options(r.rules, o->rule_texts);
     r.methods = split_list(o->methods, "--methods");
-    check_options_apply(r.methods, options_given(*sub));
+    check_options_apply(r.methods, options_given(*sub), "--methods");
     r.memory_bytes = parse_memory(o->memory);
     if (memory->count() == 0) r.memory_ceiling = detail::usable_memory_bytes() / 2;
     r.subset = parse_subset(o->subset);

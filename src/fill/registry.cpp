@@ -72,7 +72,14 @@ std::unique_ptr<FillMethod> make_fill_method(const MethodOptions& options) {
   throw UsageError("--method", "unknown method '" + options.method + "' (known: " + known + ")");
 }
 
-void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& options) {
+void check_options_apply(const std::vector<std::string>& methods, const std::vector<std::string>& options,
+                         const std::string& methods_option) {
+  // An unknown name first: 'whitaker' had been reported as --lambda not applying to it.
+  std::string known;
+  for (const Entry& entry : registry) known += std::string(known.empty() ? "" : ", ") + entry.name;
+  for (const std::string& method : methods)
+    if (std::none_of(std::begin(registry), std::end(registry), [&](const Entry& e) { return method == e.name; }))
+      throw UsageError(methods_option, "unknown method '" + method + "' (known: " + known + ")");
   for (const Entry& entry : registry)
     for (const char* option : entry.own_options) {
       if (!given(options, option) || std::find(methods.begin(), methods.end(), entry.name) != methods.end()) continue;

@@ -666,6 +666,14 @@ class BadInput(kt.TempDirTestCase):
     def test_unknown_method(self):
         self.check_fails([os.path.join(self.good, "*.tif"), "--method", "kriging"],
                          ["--method", "kriging"], ["unknown", "method"], "unknown method")
+        # With an option of a known method, the misspelt name had been reported as that option
+        # not applying ("--lambda: applies to the whittaker method only; the methods here: whitaker").
+        self.check_fails([os.path.join(self.good, "*.tif"), "--method", "whitaker", "--lambda", "10"],
+                         ["--method", "'whitaker'"], ["unknown method"], "misspelt method")
+        done = kt.run_kalends(["validate", os.path.join(self.good, "*.tif"), "--out", os.path.join(self.tmp, "v-typo"),
+                               "--methods", "whitaker,harmonic", "--lambda", "10"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--methods: unknown method 'whitaker' (known: whittaker, harmonic, spacetime)", done.stderr)
 
     def test_option_values_out_of_range(self):
         # Each was once taken silently (or, --band 0, crashed): now refused by the option's name.
