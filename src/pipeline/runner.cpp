@@ -1407,6 +1407,9 @@ class Runner {
     context.job_path = job_.path;
     context.folder = folder;
     context.out = out_;
+    if (!options_.out_dir.empty() && !job_.out.empty() &&
+        fs::path(job_.out).lexically_normal() != fs::path(out_).lexically_normal())
+      context.replaced_out = job_.out;
     context.resolve = [this](const std::string& name) { return resolve(name); };
     return context;
   }

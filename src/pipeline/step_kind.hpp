@@ -41,6 +41,7 @@ struct StepContext {
   std::string job_path{};
   std::string folder{};        // this step's output folder
   std::string out{};           // the job's output folder
+  std::string replaced_out{};  // the job file's own 'out', where --out gave another folder
   std::string command_line{};  // recorded in the outputs' metadata
   std::int64_t memory_bytes = 0;
   int threads = 0;

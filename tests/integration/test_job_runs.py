@@ -1491,6 +1491,30 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("'table' '../x.csv': is a file name in the step's folder", done.stderr)
 
+    def test_a_run_into_another_folder_leaves_the_jobs_own_page_alone(self):
+        # `run --out OTHER` (a trial, a cluster's shards) had replaced the page 'html' names
+        # beside the job's own folder, whose state still said "done": the page showed OTHER's
+        # outputs for good. The page of such a run goes in its own step folder, with a note.
+        folder = os.path.join(self.tmp, "other-out")
+        write_monthly_ndvi(folder, 6, 2)
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                                '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
+                                '[[step]]\nid = "page"\ndo = "report"\nafter = ["fill"]\nhtml = "page.html"\n')
+        self.assertEqual(run(job).returncode, 0)
+        page = os.path.join(folder, "page.html")
+        with open(page, "rb") as f:
+            before = f.read()
+        other = os.path.join(self.tmp, "other-out-trial")
+        done = run(job, "--out", other)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page, "rb") as f:
+            self.assertEqual(f.read(), before)
+        moved = os.path.join(other, "page", "page.html")
+        self.assertTrue(os.path.exists(moved), done.stderr)
+        self.assertIn("lies outside the output folder --out gave", done.stdout + done.stderr)
+        self.assertIn("nothing new", run(job).stdout)
+        self.assertIn("nothing new", run(job, "--out", other).stdout)
+
 
 class OpenFilesLimit(kt.TempDirTestCase):
     def test_too_few_file_descriptors_is_no_bad_input(self):

@@ -54,10 +54,25 @@ StepKind report_step_kind() {
   };
   kind.check_values = [](const StepContext& c) { report_request(c); };
   kind.run = [](const StepContext& c) {
-    const ReportRequest r = report_request(c);
+    ReportRequest r = report_request(c);
+    std::vector<std::string> notes;
+    // A run into another folder (--out: a trial, a cluster's shards) had replaced the page of the
+    // job's own folder, whose state still said it was done. Its page goes in this run's folder.
+    const auto inside = [](const std::filesystem::path& file, const std::filesystem::path& folder) {
+      const std::string relative = std::filesystem::absolute(file).lexically_normal().lexically_relative(
+                                       std::filesystem::absolute(folder).lexically_normal()).string();
+      return !relative.empty() && relative.rfind("..", 0) != 0;
+    };
+    if (!c.replaced_out.empty() && c.has("html") && !inside(r.html, c.out)) {
+      const std::string moved = (std::filesystem::path(c.folder) / std::filesystem::path(r.html).filename()).string();
+      notes.push_back("'html' " + r.html + " lies outside the output folder --out gave (" + c.out + "); the page is " +
+                      moved + ", and the one beside the job's own folder stays as it was");
+      r.html = moved;
+    }
     std::filesystem::create_directories(c.folder);
     const ReportSummary s = run_report(r);
-    StepOutcome outcome{s.written ? 1 : 0, s.written ? 0 : 1, "", s.notes};
+    notes.insert(notes.end(), s.notes.begin(), s.notes.end());
+    StepOutcome outcome{s.written ? 1 : 0, s.written ? 0 : 1, "", notes};
     // A page outside the step folder is recorded too: deleted, it is made again (it had stayed
     // "done" for good).
     if (std::filesystem::path(r.html).parent_path().lexically_normal() !=
