@@ -41,15 +41,30 @@ def gaps_total(s):
     return s.get("filled", 0) + s.get("unfilled", 0)
 
 
-def print_counts(path):
-    if not os.path.exists(path):
-        print(f"  (no {path})")
+def summary_files(filled):
+    """FILLED/fill-summary.json; for a tile set's mosaic folder, each tile's beside it."""
+    own = os.path.join(filled, "fill-summary.json")
+    if os.path.exists(own):
+        return [own]
+    return sorted(glob.glob(os.path.join(os.path.dirname(os.path.abspath(filled)), "*", "fill-summary.json")))
+
+
+def print_counts(paths):
+    if not paths:
+        print("  (no fill-summary.json)")
         return
-    s = json.load(open(path))
+    parts = [json.load(open(p)) for p in paths]
+    s = dict(parts[0])
+    for key in ("pixel_dates", "observed", "missing", "rejected", "filled", "unfilled"):
+        if all(key in part for part in parts):
+            s[key] = sum(part[key] for part in parts)
     pdates = s.get("pixel_dates")
     dates = s.get("dates")
     ndates = len(dates) if isinstance(dates, list) else dates
-    print(f"  {ndates} dates x {s.get('width')} x {s.get('height')} pixels = {pdates:,} pixel-dates")
+    if len(parts) > 1:
+        print(f"  {len(parts)} tiles, {ndates} dates, {pdates:,} pixel-dates")
+    else:
+        print(f"  {ndates} dates x {s.get('width')} x {s.get('height')} pixels = {pdates:,} pixel-dates")
     for key, base, what in (("observed", pdates, "of pixel-dates"),
                             ("missing", pdates, "of pixel-dates (nodata or removed by the QA rule)"),
                             ("rejected", s.get("observed"), "of observations (outliers, e.g. unmasked cloud)"),
@@ -77,7 +92,8 @@ def main(argv=None):
 
     print("kalends demo: Lower Tamsin district (fictional), synthetic NDVI")
     print("counts from fill-summary.json:")
-    print_counts(os.path.join(a.filled, "fill-summary.json"))
+    summaries = summary_files(a.filled)
+    print_counts(summaries)
 
     manifest = os.path.join(a.input, "synth.json")
     m = json.load(open(manifest))
@@ -107,7 +123,8 @@ def main(argv=None):
         # Values in raw int16 units (no scale in the metadata) would show as |NDVI| >> 1.
         if kept.any() and np.nanmedian(np.abs(value[kept])) > 2.0:
             value, sd, unscaled_note = value * synth_stack.SCALE, sd * synth_stack.SCALE, True
-        tpath = os.path.join(a.truth, os.path.basename(path)) if a.truth else None
+        # The truth is written as GeoTIFFs; a tile set's mosaic names the same dates .vrt.
+        tpath = os.path.join(a.truth, os.path.splitext(os.path.basename(path))[0] + ".tif") if a.truth else None
         if tpath and os.path.exists(tpath):
             truth = gdal.Open(tpath).ReadAsArray().astype(np.float64)
             read_truth += 1
@@ -140,8 +157,9 @@ def main(argv=None):
     print("  (NDVI units; invented data: a check of the mechanics, not an accuracy claim)")
     if unscaled_note:
         print("  note: output values looked unscaled (raw int16 units) and were multiplied by 0.0001")
-    print(f"\noutputs: {os.path.abspath(a.filled)}/ndvi_YYYY-MM-DD.tif (bands: value, sd, flag)")
-    print(f"summary: {os.path.abspath(os.path.join(a.filled, 'fill-summary.json'))}")
+    print(f"\noutputs: {os.path.abspath(a.filled)}/ndvi_YYYY-MM-DD{os.path.splitext(outs[0])[1]} (bands: value, sd, flag)")
+    for path in summaries:
+        print(f"summary: {os.path.abspath(path)}")
     return 0
 
 
