@@ -340,7 +340,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
     spec.metadata["KALENDS_DATE_MARKS"] = request.marks == DateMarks::start ? "start"
                                           : request.marks == DateMarks::end ? "end"
                                                                               : "middle";
-    spec.bands = detail::fill_bands(unit);
+    spec.bands = detail::fill_bands(unit, true);
     specs.push_back(std::move(spec));
   }
 

@@ -93,12 +93,14 @@ const char* compression_name(Compression c) {
 
 }  // namespace
 
-std::vector<BandSpec> fill_bands(const std::string& unit) {
-  return {{"value", unit, {}},
-          {"sd", unit, {}},
-          {"flag", "",
-           {{"FLAG_MEANINGS", "0=observed and kept, 1=observed but rejected as an outlier, "
-                              "2=filled, 3=could not be filled"}}}};
+std::vector<BandSpec> fill_bands(const std::string& unit, bool calendar_period) {
+  // A calendar period's flag says whether an observation was kept inside it: the date's
+  // meanings, which the calendar files had carried too, name a 1 that never occurs there.
+  const char* meanings = calendar_period ? "0=an observation was kept inside the period, 2=none was (the period mean "
+                                           "of the fitted curve), 3=no value"
+                                         : "0=observed and kept, 1=observed but rejected as an outlier, "
+                                           "2=filled, 3=could not be filled";
+  return {{"value", unit, {}}, {"sd", unit, {}}, {"flag", "", {{"FLAG_MEANINGS", meanings}}}};
 }
 
 bool file_checksum_equal(const std::string& a, const std::string& b) {

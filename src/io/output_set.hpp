@@ -39,8 +39,8 @@ struct BandSpec {
   std::map<std::string, std::string> metadata;
 };
 
-/// The bands `kalends fill` writes: value, sd, flag.
-std::vector<BandSpec> fill_bands(const std::string& unit);
+/// The bands `kalends fill` writes: value, sd, flag; a calendar period's flags mean other things.
+std::vector<BandSpec> fill_bands(const std::string& unit, bool calendar_period = false);
 
 struct OutputSpec {
   std::string path;  // final name

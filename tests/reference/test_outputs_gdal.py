@@ -245,6 +245,14 @@ class OutputsAgainstGdal(kt.TempDirTestCase):
         self.assertEqual(out["size"], (WIDTH, HEIGHT, 3))
         np.testing.assert_array_equal(np.isnan(out["value"]), out["flag"] == 3)
         self.assertEqual(kt.read_summary(self.out_a)["calendar_outputs"], len(months))
+        # A period's flags: 0, 2 or 3, never 1; the band's FLAG_MEANINGS had been the dates'
+        # (naming "1=observed but rejected as an outlier").
+        self.assertTrue(set(np.unique(out["flag"])) <= {0.0, 2.0, 3.0})
+        ds = kt.gdal().Open(os.path.join(cal, months[3]))
+        meanings = ds.GetRasterBand(3).GetMetadataItem("FLAG_MEANINGS")
+        ds = None
+        self.assertIn("0=an observation was kept inside the period", meanings)
+        self.assertNotIn("1=", meanings)
 
     def test_block_size_and_threads_do_not_change_results(self):
         # The same fill in small blocks on one thread. kalends refuses a budget below its fixed
