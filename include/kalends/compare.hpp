@@ -12,6 +12,7 @@ struct CompareRequest {
   std::string name;   // empty = the one name found in seasons_dir
   std::string zones;  // optional integer raster on the same grid
   int top = 10;       // largest anomalies listed
+  std::string command_line;  // recorded in the class raster (KALENDS_COMMAND)
 };
 
 struct CompareSummary {

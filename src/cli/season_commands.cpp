@@ -133,6 +133,7 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--name", r->name, "Layer set, where the folder holds several");
   sub->add_option("--top", r->top, "How many of the largest anomalies to list")->capture_default_str();
   return [r, &global] {
+    r->command_line = global.command_line;
     const CompareSummary s = run_compare(*r);
     if (!s.stale_years.empty())
       std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): "

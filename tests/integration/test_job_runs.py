@@ -417,7 +417,7 @@ class JobFile(kt.TempDirTestCase):
             (good.replace('grid', '') + '\n[[step]]\ndo = "grid"\nlayers = []\ncrs = "EPSG:4326"\n', n + 3,
              ["'layers': names no step"]),
             (good.replace('input = "seasons"', 'input = "seasons"\ntop = -1'),
-             lines.index('input = "seasons"') + 2, ["'top': must be 0 or more"]),
+             lines.index('input = "seasons"') + 2, ["'top': must be 0..10000"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\nmap_size = 0\n', n + 4,
              ["'map_size': between 16 and 4096"]),
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),

@@ -253,6 +253,16 @@ class SeasonsCommand(kt.TempDirTestCase):
         for key, q in (("p05", 0.05), ("p50", 0.5), ("p95", 0.95)):
             self.assertAlmostEqual(report["synoptic_rmse"][key], float(np.quantile(rmse, q)), places=5)
         self.assertEqual(sum(report["rmse_histogram"]["counts"]), rmse.size)
+        # The class raster records its command line, as every other raster does (it had none).
+        ds = g.Open(os.path.join(out, "ndvi_year_specific_class.tif"))
+        command = ds.GetMetadataItem("KALENDS_COMMAND")
+        ds = None
+        self.assertIsNotNone(command)
+        self.assertIn("compare", command)
+        # --top beyond what anyone reads (2e9 had taken 10 s on a tiny layer) is refused.
+        done = kt.run_kalends(["compare", self.out, "--out", os.path.join(self.tmp, "compare-top"), "--top", "2000000000"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--top: must be 0..10000", done.stderr)
         by_zone = {z["zone"]: z for z in report["zones"]}
         self.assertEqual(sorted(by_zone), [0, 2])
         for zone in (0, 2):

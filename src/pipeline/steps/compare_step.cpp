@@ -18,7 +18,8 @@ StepKind compare_step_kind() {
     return o.count("input") ? std::string() : std::string("a 'compare' step needs 'input'");
   };
   kind.check_values = [](const StepContext& c) {
-    if (c.integer("top", 0) < 0) throw UsageError("--top", "must be 0 or more");  // had waited for the run
+    const int top = c.integer("top", 0);  // had waited for the run
+    if (top < 0 || top > 10000) throw UsageError("--top", "must be 0..10000");
   };
   kind.run = [](const StepContext& c) {
     CompareRequest r;
@@ -26,6 +27,7 @@ StepKind compare_step_kind() {
     r.out_dir = c.folder;
     r.zones = c.text("zones");
     r.top = c.integer("top", r.top);
+    r.command_line = c.command_line;
     r.name = c.text("name");  // the layer set, where the seasons folder holds several
     // Written and unchanged as the files say (every file had been counted as written).
     const CompareSummary s = run_compare(r);
