@@ -427,6 +427,12 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
   const double pixel = std::max(std::abs(expected.geotransform[1]), std::abs(expected.geotransform[5]));
   const auto& e = expected.geotransform;
   const auto& a = actual.geotransform;
+  // A file stored bottom-up (or mirrored) had been reported as an origin some pixels away.
+  if (expected.has_geotransform && ((a[5] > 0) != (e[5] > 0) || (a[1] > 0) != (e[1] > 0)))
+    throw InputError(where, fmt::format("is stored {} while {} is stored {} (geotransform pixel sizes {:.10g}, {:.10g} "
+                                        "against {:.10g}, {:.10g}): put it the same way up first (gdalwarp)",
+                                        a[5] > 0 ? "south-up" : "north-up", expected_from,
+                                        e[5] > 0 ? "south-up" : "north-up", a[1], a[5], e[1], e[5]));
   for (int i = 0; i < 6; ++i)
     if (std::abs(e[i] - a[i]) > 1e-6 * std::max(pixel, 1e-12)) {
       if (i == 0 || i == 3)
@@ -437,6 +443,11 @@ void require_same_grid(const Grid& expected, const Grid& actual, const std::stri
                                           "of {} ({:.10g}, {:.10g}, {:.10g}, {:.10g})",
                                           a[1], a[2], a[4], a[5], expected_from, e[1], e[2], e[4], e[5]));
     }
+  // One side without a CRS had been reported as a CRS that differs.
+  if (actual.crs_wkt.empty() != expected.crs_wkt.empty())
+    throw InputError(where, actual.crs_wkt.empty() ? "states no coordinate reference system, " + expected_from + " does"
+                                                   : "states a coordinate reference system, " + expected_from +
+                                                         " states none");
   if (!same_crs(expected.crs_wkt, actual.crs_wkt))
     throw InputError(where, "coordinate reference system differs from that of " + expected_from);
 }

@@ -155,6 +155,21 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
                          ["coordinate reference", "crs", "projection", "spatial reference"], "crs")
 
+    def test_a_date_without_a_crs_or_stored_south_up_is_named_as_such(self):
+        # Both had been reported as something else: "coordinate reference system differs", and
+        # an origin some pixels away.
+        folder = self.variant("no-crs")
+        write_layer(os.path.join(folder, "ndvi_2020-01-17.tif"), 7, epsg=None)
+        messages = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
+                                    ["coordinate reference"], "no crs")
+        self.assertIn("states no coordinate reference system, ", messages[0])
+        folder = self.variant("south-up")
+        south_up = (GEOTRANSFORM[0], 30.0, 0.0, GEOTRANSFORM[3] - HEIGHT * 30.0, 0.0, 30.0)
+        write_layer(os.path.join(folder, "ndvi_2020-01-17.tif"), 7, geotransform=south_up)
+        messages = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
+                                    ["south-up"], "south-up")
+        self.assertIn("is stored south-up while ", messages[0])
+
     def test_a_stack_placed_by_ground_control_points_is_refused(self):
         # GCPs without a geotransform had been read as a bare pixel grid: the fill wrote its
         # outputs without georeferencing and did not see dates whose points differ.
