@@ -48,6 +48,9 @@ std::int64_t parse_memory(const std::string& text);
 /// The whole of `text` as a number; UsageError naming `option` otherwise. Empty text is no
 /// value (std::nullopt), for options that override something only when given.
 std::optional<double> optional_number(const std::string& text, const std::string& option);
+/// The time of a --date-like option's YYYY-MM-DD; UsageError naming `option` otherwise, which
+/// says a well-formed day that does not exist (2000-02-30) is no calendar date.
+TimePoint parse_date_option(const std::string& text, const std::string& option);
 double parse_number(const std::string& text, const std::string& option);
 /// "auto" is no value (std::nullopt); anything else must be a number.
 std::optional<double> number_or_auto(const std::string& text, const std::string& option);

@@ -6,6 +6,7 @@
 #include <cstdio>
 #include <fmt/format.h>
 #include <optional>
+#include <regex>
 
 #include "cli/commands.hpp"
 #include "kalends/percent.hpp"
@@ -18,6 +19,15 @@
 namespace kalends::cli {
 
 std::int64_t parse_memory(const std::string& text) { return parse_memory_size(text); }
+
+TimePoint parse_date_option(const std::string& text, const std::string& option) {
+  if (const std::optional<TimePoint> t = parse_iso_time(text)) return *t;
+  // "expected YYYY-MM-DD" of a text in that form had left the user looking for the slip.
+  static const std::regex shape(R"(\d{4}-\d{2}-\d{2})");
+  if (std::regex_match(text, shape))
+    throw UsageError(option + " '" + text + "'", "is not a calendar date (no such day)");
+  throw UsageError(option + " '" + text + "'", "expected YYYY-MM-DD");
+}
 
 std::optional<double> optional_number(const std::string& text, const std::string& option) {
   if (text.empty()) return std::nullopt;

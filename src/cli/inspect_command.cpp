@@ -197,8 +197,7 @@ Action add_inspect_command(CLI::App& app, GlobalOptions& global) {
     InspectRequest& r = o->request;
     apply_value_rule_options(r.rules, o->rule_texts);
     if (!o->date.empty()) {
-      r.rules.date = parse_iso_time(o->date);
-      if (!r.rules.date) throw UsageError("--date '" + o->date + "'", "expected YYYY-MM-DD");
+      r.rules.date = parse_date_option(o->date, "--date");
     }
     r.read_values = !o->quick;
     const InspectReport report = inspect_stack(r);

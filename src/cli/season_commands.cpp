@@ -60,8 +60,7 @@ Action add_index_command(CLI::App& app, GlobalOptions& global) {
       r.rules.valid_max = high;
     }
     if (!o->date.empty()) {
-      r.rules.date = parse_iso_time(o->date);
-      if (!r.rules.date) throw UsageError("--date '" + o->date + "'", "expected YYYY-MM-DD");
+      r.rules.date = parse_date_option(o->date, "--date");
     }
     r.compression = parse_compression(o->compression);
     r.command_line = global.command_line;

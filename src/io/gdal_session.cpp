@@ -166,7 +166,14 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
   GDALDatasetUniquePtr dataset(
       GDALDataset::Open(path.c_str(), GDAL_OF_RASTER | GDAL_OF_READONLY | GDAL_OF_VERBOSE_ERROR));
   quiet.reset();
-  if (!dataset) throw_unreadable(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
+  if (!dataset) {
+    // An empty file (a download or copy that never wrote) had been "not recognized as a
+    // supported file format".
+    std::error_code ec;
+    if (std::filesystem::is_regular_file(path, ec) && std::filesystem::file_size(path, ec) == 0 && !ec)
+      throw InputError(path, "is empty (0 bytes): a download or copy that wrote nothing?");
+    throw_unreadable(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
+  }
   // A file GDAL opens with a warning that its structure is corrupt (a GeoTIFF cut short in its
   // tags: "GeoTIFF tags apparently corrupt") would be read without its georeferencing, and
   // then named as a grid or CRS that differs. The GeoTIFF driver reads those tags on first use.

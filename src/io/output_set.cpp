@@ -32,7 +32,8 @@ OutputError write_failure(const std::string& path, const std::string& what) {
   if (what.find("Too many open files") != std::string::npos) return OutputError(path, "cannot create: " + open_files_limit_text());
   struct statvfs device{};
   const std::string folder = fs::path(path).parent_path().string();
-  if (::statvfs(folder.empty() ? "." : folder.c_str(), &device) == 0) {
+  // A file system of no blocks (/proc, /sys) is not full: it holds no files of ours at all.
+  if (::statvfs(folder.empty() ? "." : folder.c_str(), &device) == 0 && device.f_blocks > 0) {
     const unsigned long long free_bytes = static_cast<unsigned long long>(device.f_bavail) * device.f_frsize;
     if (free_bytes < (4ull << 20))
       return OutputError(path, "no space left on the device (" + std::to_string(free_bytes >> 10) + " KiB free); " + what);

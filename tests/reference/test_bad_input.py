@@ -671,6 +671,26 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_9999-12-31.tif", "ndvi_%s.tif" % DATES[-1]],
                          ["years after the date before it", "taken for a wrong date"], "a date far from the rest")
 
+    def test_an_empty_file_an_impossible_day_and_a_place_that_is_no_disk_are_named_as_such(self):
+        # Each had a message about something else: "not recognized as a supported file format",
+        # "expected YYYY-MM-DD" (of a text in that form), "no space left on the device".
+        folder = self.variant("empty-file")
+        open(os.path.join(folder, "ndvi_2020-01-17.tif"), "w").close()
+        messages = self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-01-17.tif"],
+                                    ["is empty"], "empty file")
+        self.assertIn("is empty (0 bytes)", messages[0])
+        done = kt.run_kalends(["inspect", os.path.join(self.good, "ndvi_%s.tif" % DATES[0]), "--date", "2000-02-30"])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("--date '2000-02-30': is not a calendar date (no such day)", done.stderr)
+        points = os.path.join(self.tmp, "proc-points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y\nA,%f,%f\n" % (GEOTRANSFORM[0] + 300, GEOTRANSFORM[3] - 300))
+        done = kt.run_kalends(["extract", os.path.join(self.good, "ndvi_%s.tif" % DATES[0]), "--points", points,
+                               "--x-column", "x", "--y-column", "y", "--crs", "EPSG:%d" % EPSG,
+                               "--date-column", "", "--out", "/proc/kalends-test.csv"])
+        self.assertNotEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("no space left", done.stderr)
+
     def test_pattern_matches_nothing(self):
         self.check_fails([os.path.join(self.good, "*.nope")], ["*.nope"],
                          ["no file", "match"], "empty pattern")
