@@ -45,10 +45,19 @@ namespace {
 // The job's output folder: --out, made absolute as the job file's `out` is (outputs record
 // their inputs' paths, which a relative --out left depending on where the run was started).
 std::string output_folder(const RunOptions& options, const detail::Job& job) {
-  if (options.out_dir.empty()) return job.out;
-  std::filesystem::path out = std::filesystem::absolute(options.out_dir).lexically_normal();
-  if (!out.has_filename() && out.has_parent_path()) out = out.parent_path();
-  return out.string();
+  std::string folder = job.out;
+  if (!options.out_dir.empty()) {
+    std::filesystem::path out = std::filesystem::absolute(options.out_dir).lexically_normal();
+    if (!out.has_filename() && out.has_parent_path()) out = out.parent_path();
+    folder = out.string();
+  }
+  // A file there had failed at the lock file (exit 1), after a dry run that said every step
+  // would run; fill refuses the same as bad usage.
+  std::error_code ec;
+  if (!folder.empty() && std::filesystem::exists(folder, ec) && !std::filesystem::is_directory(folder, ec))
+    throw UsageError(options.out_dir.empty() ? options.job_file + ": 'out' '" + folder + "'" : "--out '" + options.out_dir + "'",
+                     "is a file, not a folder: give the folder the job's outputs go in");
+  return folder;
 }
 
 namespace fs = std::filesystem;

@@ -1491,6 +1491,22 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("'table' '../x.csv': is a file name in the step's folder", done.stderr)
 
+    def test_an_output_folder_that_is_a_file_is_refused_before_anything(self):
+        # It had failed at the lock file (exit 1), after a dry run that said every step would run.
+        folder = os.path.join(self.tmp, "out-is-a-file")
+        write_monthly_ndvi(folder, 6, 2)
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\n'
+                                '[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
+        afile = os.path.join(folder, "afile.txt")
+        with open(afile, "w") as f:
+            f.write("mine\n")
+        for extra in ([], ["--dry-run"]):
+            done = run(job, "--out", afile, *extra)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("--out '%s': is a file, not a folder" % afile, done.stderr)
+        with open(afile) as f:
+            self.assertEqual(f.read(), "mine\n")
+
     def test_a_run_into_another_folder_leaves_the_jobs_own_page_alone(self):
         # `run --out OTHER` (a trial, a cluster's shards) had replaced the page 'html' names
         # beside the job's own folder, whose state still said "done": the page showed OTHER's
