@@ -292,6 +292,8 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   layer->ResetReading();
   const std::vector<CsvRow> rows = csv ? csv_rows(path, defn.GetFieldCount()) : std::vector<CsvRow>{};
   std::size_t row = 0;
+  int legacy_ids = 0;
+  std::string first_legacy;
   for (auto& feature : *layer) {
     const CsvRow raw = row < rows.size() ? rows[row] : CsvRow{int(row) + 2, defn.GetFieldCount(), false};
     ++row;
@@ -310,6 +312,14 @@ SurveyPoints read_survey_points(const PointsSource& source) {
                                               : "a row cut short?"));
     SurveyPoint p;
     p.id = id_is_key ? std::to_string(feature->GetFID()) : feature->GetFieldAsString(id);
+    // A spreadsheet saved in a legacy encoding: its raw bytes had gone into the UTF-8 table
+    // without a word. Read as Latin-1 (ISO-8859-1), the likeliest, and said once.
+    if (!CPLIsUTF8(p.id.c_str(), -1)) {
+      char* recoded = CPLRecode(p.id.c_str(), CPL_ENC_ISO8859_1, CPL_ENC_UTF8);
+      p.id = recoded;
+      CPLFree(recoded);
+      if (legacy_ids++ == 0) first_legacy = where;
+    }
     if (csv) {
       const std::string xs = field_text(feature->GetFieldAsString(x)), ys = field_text(feature->GetFieldAsString(y));
       p.x_text = trim(feature->GetFieldAsString(x));  // echoed as written, NA included
@@ -349,6 +359,10 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     result.points.push_back(std::move(p));
   }
   if (result.points.empty()) throw InputError(path, "holds no points");
+  if (legacy_ids > 0)
+    result.notes.push_back(fmt::format("{}: {} id{} not UTF-8 text (first at {}), read as Latin-1 (ISO-8859-1); save the "
+                                       "file as UTF-8 if another encoding was meant",
+                                       path, legacy_ids, legacy_ids == 1 ? " is" : "s are", first_legacy));
   return result;
 }
 

@@ -538,6 +538,20 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("elevation.tif: states no CRS; points cannot be placed on it", done.stderr)
 
+    def test_ids_in_a_legacy_encoding_are_read_as_latin_1_and_said(self):
+        # A spreadsheet saved as Latin-1: its raw bytes had gone into the UTF-8 table unsaid.
+        points = os.path.join(self.tmp, "latin1.csv")
+        _, lon, lat = self.points[0]
+        with open(points, "wb") as f:
+            f.write(b"site,lon,lat\n" + ("Sant\xe9 Orvane,%.10f,%.10f\n" % (lon, lat)).encode("latin-1"))
+        out = os.path.join(self.tmp, "latin1-table.csv")
+        done = kt.run_kalends(["extract", self.raster, "--points", points, "--id-column", "site", "--x-column", "lon",
+                               "--y-column", "lat", "--date-column", "", "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("1 id is not UTF-8 text (first at ", done.stderr)
+        with open(out, encoding="utf-8") as f:
+            self.assertIn("Sant\u00e9 Orvane", f.read())
+
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
         base = ["extract", self.raster, "--points", self.csv, "--out", out, "--id-column", "site",
