@@ -72,7 +72,10 @@ def print_counts(paths):
                             ("unfilled", gaps_total(s), "of the cells to fill")):
         if key in s:
             print(f"  {key:<9} {s[key]:>12,}  {pct(s[key], base):>8} {what}")
-    print(f"  method: {s.get('method')}  parameters: {json.dumps(s.get('parameters'))}")
+    parameters = s.get("parameters")
+    if isinstance(parameters, dict):  # an object since version 0.3.22, one text before
+        parameters = " ".join(f"{k}={v}" for k, v in parameters.items())
+    print(f"  method: {s.get('method')}  parameters: {parameters}")
 
 
 def read_physical(band):

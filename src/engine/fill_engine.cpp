@@ -810,8 +810,8 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
       std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
 
   std::string json = "{\n";
-  json += fmt::format("  \"method\": \"{}\",\n  \"parameters\": \"{}\",\n", method->name(),
-                      detail::json_escape(parameters));
+  json += fmt::format("  \"method\": \"{}\",\n  \"parameters\": {},\n", method->name(),
+                      detail::json_parameters(method->parameters()));
   json += fmt::format("  \"input\": \"{}\",\n", detail::json_escape(request.input));
   json += fmt::format(
       "  \"dates\": {},\n  \"width\": {},\n  \"height\": {},\n  \"pixel_dates\": {},\n"

@@ -3,6 +3,7 @@
 
 #include <cmath>
 #include <cstdint>
+#include <cstdlib>
 #include <fmt/format.h>
 #include <map>
 #include <string>
@@ -44,6 +45,25 @@ inline std::string json_escape(const std::string& text) {
 /// A number, or null where it is not finite (JSON has no NaN). The shortest text that reads back
 /// as the same double: scores can be checked to any tolerance, and a choice given back exactly.
 inline std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{}", v) : "null"; }
+
+/// {"key": value, ...} of a method's parameters: a value that is a number as a JSON number (it
+/// had been text, "0.05"), any other ("auto", "0.01,1e+06", "upper") as a string.
+inline std::string json_parameters(const std::map<std::string, std::string>& parameters) {
+  std::string text = "{";
+  bool first = true;
+  for (const auto& [key, value] : parameters) {
+    char* end = nullptr;
+    const double number = value.empty() ? NAN : std::strtod(value.c_str(), &end);
+    const bool is_number = !value.empty() && end == value.c_str() + value.size() && std::isfinite(number) &&
+                           value.find_first_of("xXpP") == std::string::npos;  // no hexadecimal forms
+    if (is_number)
+      text += fmt::format("{}\"{}\": {}", first ? "" : ", ", json_escape(key), json_number(number));
+    else
+      text += fmt::format("{}\"{}\": \"{}\"", first ? "" : ", ", json_escape(key), json_escape(value));
+    first = false;
+  }
+  return text + "}";
+}
 
 /// {"name": count, ...}. With an `indent`, one entry per line, indented two more than the
 /// closing brace; without, all on one line.

@@ -163,15 +163,7 @@ std::string score_json(const Score& s, const std::string& indent) {
   if (!s.baseline)
     j += fmt::format(", \"within_one_sd\": {}, \"within_95_interval\": {}, \"rms_error_over_sd\": {}",
                      sd_score(s.within_one_sd), sd_score(s.within_95_interval), sd_score(s.rms_error_over_sd));
-  if (!s.parameters.empty()) {
-    j += ", \"parameters\": {";
-    bool first = true;
-    for (const auto& [key, value] : s.parameters) {
-      j += fmt::format("{}\"{}\": \"{}\"", first ? "" : ", ", detail::json_escape(key), detail::json_escape(value));
-      first = false;
-    }
-    j += "}";
-  }
+  if (!s.parameters.empty()) j += ", \"parameters\": " + detail::json_parameters(s.parameters);
   if (!s.baseline) j += ", \"series_not_fitted\": " + detail::json_counts(s.not_fitted);
   for (const auto* part : {&s.by_gap, &s.by_neighbourhood}) {
     if (part->empty()) continue;

@@ -72,7 +72,9 @@ class NeverObserved(kt.TempDirTestCase):
         summary = kt.read_summary(os.path.join(self.tmp, "leave"))
         self.assertEqual(summary["pixels_never_observed"], int(self.sea.sum()))
         self.assertEqual(summary["pixels_without_value"], int(self.sea.sum()))
-        self.assertIn("never_observed=leave", summary["parameters"])
+        # Parameters are an object, numbers as numbers (they had been one "key=value ..." text).
+        self.assertEqual(summary["parameters"]["never_observed"], "leave")
+        self.assertEqual(summary["parameters"]["halo"], 32)
         self.assertEqual(kt.read_summary(os.path.join(self.tmp, "fill"))["pixels_without_value"], 0)
 
     def test_year_by_year_on_alaska(self):

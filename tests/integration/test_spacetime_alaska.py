@@ -153,9 +153,10 @@ class AlaskaSpacetime(kt.TempDirTestCase):
         options = ["--neighbour-radius", "0", "--time-smoothing", "0.05", "--reach", "400"]
         _, report = self.validate_observed(out, "spacetime", 7, 0.1, "--keep-work", *options)
         score = {s["name"]: s for s in report["scores"]}["spacetime"]
-        self.assertEqual(score["parameters"]["neighbour_radius"], "0")
-        self.assertEqual(score["parameters"]["time_smoothing"], "0.05")
-        self.assertEqual(score["parameters"]["reach"], "400")
+        # Numbers as JSON numbers (they had been text, "0.05").
+        self.assertEqual(score["parameters"]["neighbour_radius"], 0)
+        self.assertEqual(score["parameters"]["time_smoothing"], 0.05)
+        self.assertEqual(score["parameters"]["reach"], 400)
         refill = os.path.join(self.tmp, "refill")
         kt.run_fill_ok(self, [os.path.join(out, "work", "input", "*.tif"), "--out", refill,
                               "--method", "spacetime", "--threads", "2"] + options)
