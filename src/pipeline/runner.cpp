@@ -1204,6 +1204,12 @@ class Runner {
     r.folder = folder;
     r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
     if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
+    // An index step passes its red input's QA through, one band per date: its rule comes along,
+    // so that the fill reading it need not say it again (it had to, or stopped for want of it).
+    for (const JobStep& s : job_.steps)
+      if (s.id == name && s.kind == "index")
+        if (const auto red = s.options.find("red"); red != s.options.end())
+          if (const auto in = job_.inputs.find(red->second); in != job_.inputs.end()) r.keep = in->second.keep;
     r.rules.exclude = excluded_;
     return r;
   }

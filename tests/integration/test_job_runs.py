@@ -1585,6 +1585,16 @@ class IndexStepQaBand(kt.TempDirTestCase):
         summary = kt.read_summary(os.path.join(folder, "out", "fill"))
         self.assertEqual(summary["masked_by_qa"], 4 * 8)
         self.assertEqual(summary["observed"], 4 * 48 - 4 * 8)
+        # Without its own 'keep', the fill takes the red input's rule with the QA the index passes
+        # through: it had stopped for want of a rule written once already.
+        with open(job) as f:
+            text = f.read()
+        with open(job, "w") as f:
+            f.write(text.replace('input = "index"\nkeep = "value == 0"\n', 'input = "index"\n'))
+        done = run(job)
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        summary = kt.read_summary(os.path.join(folder, "out", "fill"))
+        self.assertEqual(summary["masked_by_qa"], 4 * 8)
 
 
 class EachInputItsOwnRules(kt.TempDirTestCase):
