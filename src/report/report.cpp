@@ -133,8 +133,12 @@ std::string class_legend(const std::vector<std::string>& classes) {
 }
 
 std::string image(const Quicklook& q, const std::string& alt) {
+  // A small layer (a 20 x 20 px trial) had been drawn as a speck: shown a whole number of times
+  // larger, up to about 256 px, its cells kept sharp (image-rendering: pixelated).
+  const int largest = std::max(q.width, q.height);
+  const int times = largest > 0 && largest < 128 ? std::max(1, 256 / largest) : 1;
   return fmt::format("<img class=\"map\" width=\"{}\" height=\"{}\" alt=\"{}\" src=\"data:image/png;base64,{}\">",
-                     q.width, q.height, escape(alt), q.png_base64);
+                     q.width * times, q.height * times, escape(alt), q.png_base64);
 }
 
 // Markdown tables, headings and paragraphs of a validate report, as HTML.

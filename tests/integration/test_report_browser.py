@@ -229,6 +229,11 @@ class ReportMapsNorthUp(kt.TempDirTestCase):
         # few cells had read "3 .. 3").
         self.assertIn("&#8804; ", page)
         self.assertIn("cells range %.4g to %.4g" % (np.nanmin(values), np.nanmax(values)), page)
+        # A 40 x 30 px layer is shown a whole number of times larger (it had been a 40 px speck),
+        # the picture itself kept at one pixel per cell.
+        sizes = re.findall(r'<img class="map" width="(\d+)" height="(\d+)"', page)
+        self.assertEqual(sizes[0], ("240", "180"))
+        self.assertEqual(pictures[0].shape[1:], (30, 40))
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
