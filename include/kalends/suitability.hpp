@@ -128,6 +128,7 @@ struct SuitabilitySummary {
   int years = 0, periods = 0, files = 0, width = 0, height = 0, first_year = 0, last_year = 0;
   std::string model;
   double mean_suitable_periods = NAN;  // synoptic count, averaged over pixels with a value
+  std::int64_t pixels_counted = 0;     // those pixels: a value in every period of the synoptic cycle
   std::int64_t implausible = 0;        // values outside -100..100 deg C, taken as missing
   std::int64_t inverted = 0;           // as in DiurnalSummary
   std::vector<std::string> notes;      // as in DiurnalSummary

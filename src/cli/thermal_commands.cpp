@@ -229,9 +229,15 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
           s.model, s.years, s.years == 1 ? "" : "s", s.first_year, s.last_year, s.periods, s.width, s.height, s.seconds,
           r.out_dir, s.files);
       const char* periods = r.period.kind == CalendarPeriod::Kind::month ? "months" : "periods";
+      // Over the pixels with a value in every period only: said when those are not all (two
+      // thirds of a cloudy district had no count, and the average had read as the district's).
+      const std::int64_t pixels = std::int64_t(s.width) * s.height;
       if (std::isfinite(s.mean_suitable_periods))
-        fmt::print("  synoptic cycle: {:.2f} suitable {} per pixel on average (suitability above {:g})\n",
-                   s.mean_suitable_periods, periods, r.threshold);
+        fmt::print("  synoptic cycle: {:.2f} suitable {} per pixel on average (suitability above {:g}){}\n",
+                   s.mean_suitable_periods, periods, r.threshold,
+                   s.pixels_counted < pixels
+                       ? fmt::format(", over the {} of {} pixels with a value in every period", s.pixels_counted, pixels)
+                       : std::string());
       else
         fmt::print("  synoptic cycle: no pixel has data in every period, so suitable {} are not counted\n", periods);
       std::fflush(stdout);

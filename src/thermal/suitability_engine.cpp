@@ -376,6 +376,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.last_year = last_year;
   summary.model = model.description();
   summary.mean_suitable_periods = count_pixels > 0 ? count_sum / double(count_pixels) : NAN;
+  summary.pixels_counted = count_pixels;
   summary.implausible = counts.total_implausible();
   summary.inverted = counts.inverted;
   summary.notes = detail::temperature_notes(source, counts);

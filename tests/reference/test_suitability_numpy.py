@@ -139,6 +139,11 @@ class SuitabilityOverpasses(kt.TempDirTestCase):
         full = np.all(ok, axis=0)
         np.testing.assert_array_equal(summary[0][full], (expected > 0).sum(axis=0)[full])
         self.assertTrue(np.all(np.isnan(summary[0][~full])))
+        # The average count is over the pixels with a value in every month, and says so where
+        # those are not all: it had read as the whole area's.
+        self.assertGreater(int((~full).sum()), 0)
+        self.assertIn("per pixel on average (suitability above 0), over the %d of %d pixels with a value in every "
+                      "period" % (full.sum(), full.size), self.done.stdout)
 
     def test_diurnal_hours_from_overpasses_equal_numpy(self):
         out = os.path.join(self.tmp, "hours")
