@@ -163,6 +163,11 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                                           ? std::vector<std::string>{"diurnal", "degree-day"}
                                           : std::vector<std::string>{"diurnal", "window"};
   if (source.mode == Mode::constant) sections.erase(sections.begin());
+  // Temperatures as given (monthly means, hourly records) have no hours made from them: the
+  // window model is the share of those values in the range, not of hours.
+  std::string model_text = model.description();
+  if (const auto at = model_text.find("share of hours"); source.mode == Mode::constant && at != std::string::npos)
+    model_text.replace(at, std::string("share of hours").size(), "share of the values given");
   const std::string unused_parasite =
       request.model != ThermalModelKind::degree_day ? ""
       : request.parasite == Parasite::vivax          ? "degree-day.falciparum"
@@ -175,7 +180,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
     spec.path = (fs::path(request.out_dir) / (name + "_" + suffix + ".tif")).string();
     spec.metadata = {{"KALENDS_VERSION", KALENDS_VERSION},
                      {"KALENDS_LAYER", layer},
-                     {"KALENDS_MODEL", model.description()},
+                     {"KALENDS_MODEL", model_text},
                      {"KALENDS_PARAMETERS", parameter_text(table, sections, unused_parasite)},
                      {"KALENDS_TEMPERATURE", temperature_text},
                      {"KALENDS_THRESHOLD", fmt::format("{:g}", request.threshold)},
@@ -374,7 +379,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   summary.height = area.height;
   summary.first_year = first_year;
   summary.last_year = last_year;
-  summary.model = model.description();
+  summary.model = model_text;
   summary.mean_suitable_periods = count_pixels > 0 ? count_sum / double(count_pixels) : NAN;
   summary.pixels_counted = count_pixels;
   summary.implausible = counts.total_implausible();

@@ -164,9 +164,15 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         self.assertNotIn("diurnal.", used)
 
     def test_window(self):
-        out, _ = self.run_model("window", "--model", "window", "--window", "20,30")
+        out, done = self.run_model("window", "--model", "window", "--window", "20,30")
         expected = tn.relative("window", self.tas.ravel(), window=(20.0, 30.0)).reshape(self.tas.shape)
         self.check(out, "window", expected, 0.0)
+        # Monthly means given as they are: no hours are made from them, and the model says so
+        # (it had said "share of hours between 20 and 30 C").
+        self.assertIn("share of the values given between 20 and 30 C", done.stdout)
+        ds = kt.gdal().Open(os.path.join(out, "window_year_1999.tif"))
+        self.assertIn("share of the values given", ds.GetMetadataItem("KALENDS_MODEL"))
+        ds = None
 
     def test_a_pattern_over_files_of_several_dates(self):
         # Daily or monthly data often comes as one file per year or season, each band dated by
