@@ -67,7 +67,8 @@ TemperatureUnit unit_of(const Stack& stack, TemperatureUnit unit, const std::str
   throw UsageError(option + " " + layer.path,
                    (stated.empty() ? std::string("the file states no unit")
                                    : "unit '" + stated + "' is not kelvin or degrees Celsius") +
-                       "; give --units kelvin or --units celsius");
+                       "; give --units kelvin or --units celsius (for every input: inputs in two units need "
+                       "their files labelled, gdal_edit.py -units K or -units C)");
 }
 
 }  // namespace kalends::detail

@@ -211,6 +211,9 @@ class BadInput(kt.TempDirTestCase):
         make_stack(folder, np.random.default_rng(1), unit=None)
         line = self.run_bad(["--day", folder + "/day/*.tif", "--night", folder + "/night/*.tif"], "nounit")
         self.assertIn("--units", line)
+        # --units is for every input: a day and a night in two units need their files labelled,
+        # which the message had not said (following it left a user refused either way).
+        self.assertIn("inputs in two units need their files labelled, gdal_edit.py -units K or -units C", line)
 
     def test_a_date_without_its_partner_is_left_out_with_a_note(self):
         # A night composite not yet arrived (or left out by a --skip-bad run) had refused the
