@@ -168,8 +168,9 @@ int main(int argc, char** argv) {
     return e.code() == std::errc::permission_denied ? 2 : 1;
   } catch (const std::bad_alloc&) {
     // It had said only "std::bad_alloc".
-    std::cerr << "kalends: out of memory: give a smaller --memory budget (or job memory), or run where more memory "
-                 "is free\n";
+    // grid has no --memory: it holds each layer whole, so a smaller grid is its way out.
+    std::cerr << "kalends: out of memory: give a smaller --memory budget (or job memory; for grid, a smaller extent or "
+                 "a coarser resolution), or run where more memory is free\n";
     return 1;
   } catch (const std::exception& e) {
     std::cerr << "kalends: " << e.what() << "\n";

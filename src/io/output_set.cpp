@@ -125,14 +125,17 @@ void publish_file(const std::string& temporary, const std::string& final_path) {
 namespace {
 // The user's choice of folder, as an --out naming a file is: exit 2, not a failed write.
 [[noreturn]] void refuse_foreign_file(const std::string& path) {
-  throw UsageError(path, "exists and was not written by kalends; move it away or choose another output folder "
-                         "(nothing was replaced)");
+  // A single output file (--save-parameters, --html) is chosen by name, not by folder.
+  throw UsageError(path, "exists and was not written by kalends; move it away or write elsewhere (another name or "
+                         "output folder; nothing was replaced)");
 }
 }  // namespace
 
 void require_file_destination(const std::string& path, const std::string& option, const std::string& example) {
   if (path.empty()) throw UsageError(option, "needs a file name, e.g. " + example);
   std::error_code ec;
+  if (fs::is_directory(path, ec))
+    throw UsageError(option + " '" + path + "'", "is a folder; give a file name, e.g. " + example);
   const fs::path folder = fs::path(path).parent_path();
   if (!folder.empty() && !fs::is_directory(folder, ec))
     throw UsageError(option + " '" + path + "'", "the folder '" + folder.string() + "' does not exist");

@@ -605,7 +605,10 @@ std::string mixed_value_rules(const Stack& stack) {
       differ.push_back(fmt::format("unit {} (first date {}, which the outputs carry)", label(layer.unit), label(first.unit)));
     // Unscaled Int16 counts (5000) among Float32 NDVI (0.5), the rules otherwise the same, had
     // been taken without a word, and the fill carried 3000s into the neighbouring dates.
-    if (layer.data_type != first.data_type)
+    // Float32 beside Float64 holds the same values: only integers against floats, or integers
+    // of another width or sign, are named.
+    const auto integer = [](int type) { return GDALDataTypeIsInteger(GDALDataType(type)) != 0; };
+    if (layer.data_type != first.data_type && (integer(layer.data_type) || integer(first.data_type)))
       differ.push_back(fmt::format("data type {} (first date {})", GDALGetDataTypeName(GDALDataType(layer.data_type)),
                                    GDALGetDataTypeName(GDALDataType(first.data_type))));
     if (!differ.empty()) dates.push_back(fmt::format("{} has {}", layer.time.label(), fmt::join(differ, ", ")));

@@ -51,12 +51,23 @@ std::string output_folder(const RunOptions& options, const detail::Job& job) {
     if (!out.has_filename() && out.has_parent_path()) out = out.parent_path();
     folder = out.string();
   }
-  // A file there had failed at the lock file (exit 1), after a dry run that said every step
-  // would run; fill refuses the same as bad usage.
+  // A file there (or above it), or a link to nothing, had failed at the lock file (exit 1),
+  // after a dry run that said every step would run; fill refuses the same as bad usage.
+  const std::string option =
+      options.out_dir.empty() ? options.job_file + ": 'out' '" + folder + "'" : "--out '" + options.out_dir + "'";
   std::error_code ec;
-  if (!folder.empty() && std::filesystem::exists(folder, ec) && !std::filesystem::is_directory(folder, ec))
-    throw UsageError(options.out_dir.empty() ? options.job_file + ": 'out' '" + folder + "'" : "--out '" + options.out_dir + "'",
-                     "is a file, not a folder: give the folder the job's outputs go in");
+  for (std::filesystem::path p = folder; !p.empty(); p = p.parent_path()) {
+    if (std::filesystem::is_symlink(p, ec) && !std::filesystem::exists(p, ec))
+      throw UsageError(option, p.string() + " is a symbolic link to a place that does not exist");
+    if (std::filesystem::exists(p, ec)) {
+      if (!std::filesystem::is_directory(p, ec))
+        throw UsageError(option, p == std::filesystem::path(folder)
+                                     ? "is a file, not a folder: give the folder the job's outputs go in"
+                                     : "lies under " + p.string() + ", a file, not a folder");
+      break;
+    }
+    if (p == p.parent_path()) break;
+  }
   return folder;
 }
 
@@ -1422,8 +1433,11 @@ class Runner {
     context.job_path = job_.path;
     context.folder = folder;
     context.out = out_;
+    // The same folder by another spelling (a symbolic link, a mount) shares the job's state: its
+    // page stays where the job says (a link to the job's own folder had moved it, "done").
+    std::error_code ec;
     if (!options_.out_dir.empty() && !job_.out.empty() &&
-        fs::path(job_.out).lexically_normal() != fs::path(out_).lexically_normal())
+        fs::weakly_canonical(job_.out, ec).lexically_normal() != fs::weakly_canonical(out_, ec).lexically_normal())
       context.replaced_out = job_.out;
     context.resolve = [this](const std::string& name) { return resolve(name); };
     return context;

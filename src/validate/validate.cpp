@@ -67,6 +67,7 @@ void write_plane(const std::string& path, const float* plane, const Grid& grid, 
   GDALDatasetUniquePtr ds(gtiff->Create(path.c_str(), grid.width, grid.height, 1, GDT_Float32, options));
   CSLDestroy(options);
   if (!ds) throw detail::write_failure(path, detail::gdal_message("cannot create"));
+  if (grid.pixel_is_point) ds->SetMetadataItem(GDALMD_AREA_OR_POINT, GDALMD_AOP_POINT);  // as the input
   if (grid.has_geotransform) {
     double gt[6];
     std::copy(grid.geotransform.begin(), grid.geotransform.end(), gt);

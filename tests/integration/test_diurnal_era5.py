@@ -387,6 +387,11 @@ class DiurnalEra5(kt.TempDirTestCase):
         self.assertIn("notes.txt", done.stderr)
         with open(notes) as f:
             self.assertEqual(f.read(), "field notes of the Orvane ridge station\n")
+        # A folder given as the file: named as such (it had been "not written by kalends").
+        done = kt.run_kalends(["diurnal", "--calibrate", self.grib, "--units", "kelvin", "--fit-days",
+                               "2019-03-01,2019-03-02", "--save-parameters", self.tmp])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("is a folder; give a file name, e.g. diurnal.toml", done.stderr)
         done = kt.run_kalends(["diurnal", "--tmin", os.path.join(self.input, "tmin_*.tif"), "--tmax",
                                os.path.join(self.input, "tmax_*.tif"), "--out", os.path.join(self.tmp, "unsaved"),
                                "--save-parameters", os.path.join(self.tmp, "unsaved.toml")])

@@ -92,6 +92,15 @@ def write_job(folder, text):
     return path
 
 
+def edit_job(job, old, new):
+    """Replaces `old` by `new` in the job file (a user editing it between runs)."""
+    with open(job) as f:
+        text = f.read()
+    assert old in text, old
+    with open(job, "w") as f:
+        f.write(text.replace(old, new))
+
+
 def run(job, *args, env=None, preexec=None, timeout=300):
     return subprocess.run([kt.KALENDS_BIN, "run", job] + list(args), capture_output=True, text=True,
                           timeout=timeout, env=env, preexec_fn=preexec)
@@ -221,10 +230,7 @@ class JobFile(kt.TempDirTestCase):
             self.assertFalse(glob.glob(os.path.join(out, "joint", "*.tif")), args)
         os.remove(os.path.join(stack, "ndvi_2099-01-01.tif"))
         # The default budget is named as such when the file sets none.
-        with open(job) as f:
-            text = f.read()
-        with open(job, "w") as f:
-            f.write(text.replace('memory = "110M"', 'name = "later"'))
+        edit_job(job, 'memory = "110M"', 'name = "later"')
         # 1G holds the spacetime block of 64 x 64 px: both steps run.
         self.assertEqual(run(job).returncode, 0)
 
@@ -595,10 +601,7 @@ class Incremental(kt.TempDirTestCase):
         # A rerun of compare counts as written the files it changed and as unchanged those it kept
         # with their time (it had counted every file as written, and rewritten its class raster
         # with the same bytes).
-        with open(job) as f:
-            text = f.read()
-        with open(job, "w") as f:
-            f.write(text.replace("valid_range = [-0.2, 1.0]", "valid_range = [-0.2, 1.5]"))
+        edit_job(job, "valid_range = [-0.2, 1.0]", "valid_range = [-0.2, 1.5]")
         compare_files = [p for p in glob.glob(os.path.join(out, "compare", "*")) if os.path.isfile(p)]
         self.assertEqual(len(compare_files), 3)
         times = {p: os.stat(p).st_mtime_ns for p in compare_files}
@@ -695,10 +698,7 @@ class Incremental(kt.TempDirTestCase):
         self.assert_same_as_from_scratch(job, os.path.join(folder, "out"), os.path.join(folder, "scratch"))
         # Seasons limited to 2022: a composite of 2021 replaced redoes the fill's 2021 (and 2022,
         # within its reach), and the seasons step names only its own year; it had named 2021.
-        with open(job) as f:
-            text = f.read()
-        with open(job, "w") as f:
-            f.write(text.replace('do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nyears = "2022-2022"'))
+        edit_job(job, 'do = "seasons"\ninput = "fill"', 'do = "seasons"\ninput = "fill"\nyears = "2022-2022"')
         self.assertEqual(run(job).returncode, 0)
         replaced = os.path.join(live, "ndvi", os.path.basename(files[15]))
         self.assertIn("2021-", replaced)
@@ -1500,10 +1500,20 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         afile = os.path.join(folder, "afile.txt")
         with open(afile, "w") as f:
             f.write("mine\n")
+        dangling = os.path.join(folder, "dangling")
+        os.symlink(os.path.join(folder, "nowhere"), dangling)
         for extra in ([], ["--dry-run"]):
             done = run(job, "--out", afile, *extra)
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertIn("--out '%s': is a file, not a folder" % afile, done.stderr)
+            # A folder under a file, and a link to nothing: the same, where the lock file had
+            # failed ("Not a directory", "File exists", exit 1) after a dry run that passed.
+            done = run(job, "--out", os.path.join(afile, "sub"), *extra)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("lies under %s, a file, not a folder" % afile, done.stderr)
+            done = run(job, "--out", dangling, *extra)
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn("is a symbolic link to a place that does not exist", done.stderr)
         with open(afile) as f:
             self.assertEqual(f.read(), "mine\n")
 
@@ -1530,6 +1540,15 @@ class OutputsOutsideTheStepFolder(kt.TempDirTestCase):
         self.assertIn("lies outside the output folder --out gave", done.stdout + done.stderr)
         self.assertIn("nothing new", run(job).stdout)
         self.assertIn("nothing new", run(job, "--out", other).stdout)
+        # The job's own folder by another name (a symbolic link) shares its state: the page
+        # stays where the job says (it had gone into the link's folder, the job's state "done").
+        link = os.path.join(self.tmp, "other-out-link")
+        os.symlink(os.path.join(folder, "out"), link)
+        os.remove(page)
+        done = run(job, "--out", link)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertTrue(os.path.exists(page), done.stdout + done.stderr)
+        self.assertNotIn("lies outside the output folder", done.stdout + done.stderr)
 
 
 class OpenFilesLimit(kt.TempDirTestCase):
@@ -1587,10 +1606,7 @@ class IndexStepQaBand(kt.TempDirTestCase):
         self.assertEqual(summary["observed"], 4 * 48 - 4 * 8)
         # Without its own 'keep', the fill takes the red input's rule with the QA the index passes
         # through: it had stopped for want of a rule written once already.
-        with open(job) as f:
-            text = f.read()
-        with open(job, "w") as f:
-            f.write(text.replace('input = "index"\nkeep = "value == 0"\n', 'input = "index"\n'))
+        edit_job(job, 'input = "index"\nkeep = "value == 0"\n', 'input = "index"\n')
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         summary = kt.read_summary(os.path.join(folder, "out", "fill"))
@@ -1708,10 +1724,7 @@ class RemovedOutputs(kt.TempDirTestCase):
         shutil.copytree(calendar, calendar + ".bak")
         kept = sorted(os.listdir(calendar + ".bak"))
         self.assertTrue(kept)
-        with open(job) as f:
-            text = f.read()
-        with open(job, "w") as f:
-            f.write(text.replace("lambda = 1", "lambda = 2"))
+        edit_job(job, "lambda = 1", "lambda = 2")
         done = run(job)
         self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
         self.assertEqual(sorted(os.listdir(calendar + ".bak")), kept)

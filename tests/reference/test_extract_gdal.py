@@ -565,7 +565,7 @@ class ExtractLandsat(kt.TempDirTestCase):
                                 (["--buffer", "inf"], "--buffer: the radius must be a positive, finite number"),
                                 # PROJ alone reads this as EPSG:4326: a slip would go unseen.
                                 (["--crs", "EPSG:4326x"], "--crs 'EPSG:4326x': not a CRS PROJ knows"),
-                                (["--out", self.tmp], "is a folder; give the table's file name"),
+                                (["--out", self.tmp], "is a folder; give a file name, e.g. table.csv"),
                                 # An empty name had run, written nothing and exited 0.
                                 (["--out", ""], "--out: needs a file name, e.g. table.csv")):
             command = base + extra

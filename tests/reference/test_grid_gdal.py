@@ -701,6 +701,26 @@ class Refusals(kt.TempDirTestCase):
         self.assertIn("f.tif: its study grid would be", done.stderr)
         self.assertIn("give an --extent, a coarser --resolution or a clip nearer the data", done.stderr)
         self.assertFalse(os.path.exists(out) and os.listdir(out), out)
+        # With an --extent given, a smaller one (it had advised giving one).
+        done = subprocess.run([kt.KALENDS_BIN, "grid", path, "--out", out, "--crs", "EPSG:32633", "--resolution", "1",
+                               "--extent", "400000,3000000,700000,4100000"], capture_output=True, text=True,
+                              timeout=120, preexec_fn=limit)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("give a smaller --extent", done.stderr)
+
+    def test_a_study_grid_is_of_areas_whatever_its_input_says(self):
+        # An input marked AREA_OR_POINT=Point (a fill of a point-sampled stack) had carried Point
+        # onto the new grid, whose cells are means over areas.
+        path = self.layer(os.path.join(self.tmp, "point-in"), "p.tif")
+        ds = kt.gdal().Open(path, 1)
+        ds.SetMetadataItem("AREA_OR_POINT", "Point")
+        ds = None
+        out = os.path.join(self.tmp, "point-out")
+        done = kt.run_kalends(["-q", "grid", path, "--out", out, "--crs", "EPSG:4326", "--resolution", "0.01"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        ds = kt.gdal().Open(os.path.join(out, "p.tif"))
+        self.assertEqual(ds.GetMetadataItem("AREA_OR_POINT"), "Area")
+        ds = None
 
     def test_an_sd_never_goes_negative_and_a_caution_is_shown(self):
         # Lanczos overshoots: an invented fill output whose sd jumps from 0 to 0.2 had come out

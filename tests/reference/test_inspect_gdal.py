@@ -349,6 +349,12 @@ class InspectQa(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "fill", os.path.join(types, "*.tif"), "--out", os.path.join(self.tmp, "types-out")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertIn("the inputs' value rules differ: 2020-02-02 has data type Int16 (first date Float32)", done.stderr)
+        # Float64 beside Float32 holds the same values: no note (it had advised --scale for nothing).
+        os.remove(os.path.join(types, "ndvi_2020-02-02.tif"))
+        kt.write_raster(os.path.join(types, "ndvi_2020-02-02.tif"), np.full((4, 4), 0.5, np.float64))
+        done = kt.run_kalends(["-q", "fill", os.path.join(types, "*.tif"), "--out", os.path.join(self.tmp, "types-out2")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("value rules differ", done.stderr)
         # One date labelled in degrees Celsius among kelvin files: no value is converted, and the
         # outputs carry the first label; it had passed without a word.
         units = os.path.join(self.tmp, "units")

@@ -533,15 +533,22 @@ class PointSamples(kt.TempDirTestCase):
         out = os.path.join(self.tmp, "point_out")
         done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--lambda", "10"])
         self.assertEqual(done.returncode, 0, done.stderr)
+        # validate's kept work files too (they had said Area).
+        checked = os.path.join(self.tmp, "point_validate")
+        done = kt.run_kalends(["-q", "validate", os.path.join(folder, "*.tif"), "--out", checked, "--methods",
+                               "whittaker", "--lambda", "10", "--keep-work"])
+        self.assertEqual(done.returncode, 0, done.stderr)
         source = os.path.join(folder, "ndvi_A2004001.tif")
-        written = os.path.join(out, "ndvi_2004-01-01.tif")
+        work = sorted(glob.glob(os.path.join(checked, "work", "*", "*.tif")))
+        self.assertTrue(work)
         try:
             for ignore in ("NO", "YES"):
                 gdal.SetConfigOption("GTIFF_POINT_GEO_IGNORE", ignore)
-                a, b = gdal.Open(source), gdal.Open(written)
-                self.assertEqual(b.GetMetadataItem("AREA_OR_POINT"), "Point")
-                np.testing.assert_allclose(b.GetGeoTransform(), a.GetGeoTransform(), rtol=0, atol=1e-6)
-                a = b = None
+                for written in [os.path.join(out, "ndvi_2004-01-01.tif")] + work:
+                    a, b = gdal.Open(source), gdal.Open(written)
+                    self.assertEqual(b.GetMetadataItem("AREA_OR_POINT"), "Point", written)
+                    np.testing.assert_allclose(b.GetGeoTransform(), a.GetGeoTransform(), rtol=0, atol=1e-6)
+                    a = b = None
         finally:
             gdal.SetConfigOption("GTIFF_POINT_GEO_IGNORE", None)
 
