@@ -426,6 +426,9 @@ class JobFile(kt.TempDirTestCase):
              lines.index('input = "seasons"') + 2, ["'top': must be 0..10000"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\nmap_size = 0\n', n + 4,
              ["'map_size': between 16 and 4096"]),
+            # A page in a folder that does not exist had failed only when the step ran.
+            (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\nhtml = "no-such-folder/page.html"\n', n + 4,
+             ["'html' ", "no-such-folder/page.html", "does not exist"]),
             (good + grid.replace("EPSG:4326", "EPSG:99999"), n + 4, ["'crs' 'EPSG:99999'", "not a CRS"]),
             (good + '\n[[step]]\ndo = "report"\nafter = ["fill"]\npixels = ["10 20", "ten 20"]\n', n + 4,
              ["'pixels' 'ten 20'", "COLUMN ROW"]),

@@ -3,6 +3,7 @@
 #include <filesystem>
 #include <regex>
 
+#include "io/text_file.hpp"
 #include "kalends/error.hpp"
 #include "kalends/report.hpp"
 #include "pipeline/step_kind.hpp"
@@ -52,7 +53,12 @@ StepKind report_step_kind() {
   kind.check = [](const StepOptions& o) {
     return o.count("after") ? std::string() : std::string("a 'report' step needs 'after' (the steps it shows)");
   };
-  kind.check_values = [](const StepContext& c) { report_request(c); };
+  kind.check_values = [](const StepContext& c) {
+    const ReportRequest r = report_request(c);
+    // An 'html' in a folder that does not exist had failed only when the step ran, after the
+    // steps before it; named at its line when the job file is read.
+    if (c.has("html")) require_file_destination(r.html, "--html", "report.html");
+  };
   kind.run = [](const StepContext& c) {
     ReportRequest r = report_request(c);
     std::vector<std::string> notes;
