@@ -51,8 +51,15 @@ std::vector<float> gdal_fill_nodata(const float* plane, int width, int height) {
                      nullptr) != CE_None)
     throw Error("validate", "GDAL could not write a memory raster");
   if (std::none_of(out.begin(), out.end(), [](float x) { return std::isfinite(x); })) return out;
-  GDALFillNodata(band, nullptr, std::ceil(std::hypot(double(width), double(height))) + 1, 0, 0, nullptr, nullptr,
-                 nullptr);
+  // Its work rasters in memory: by default GDAL writes them as GeoTIFFs in the current folder
+  // (CPL_TMPDIR), where a killed run left them, and where it cannot write the baseline had come
+  // out empty (coverage 0, exit 0).
+  char** options = CSLSetNameValue(nullptr, "TEMP_FILE_DRIVER", "MEM");
+  CPLErrorReset();
+  const CPLErr filled = GDALFillNodata(band, nullptr, std::ceil(std::hypot(double(width), double(height))) + 1, 0, 0,
+                                       options, nullptr, nullptr);
+  CSLDestroy(options);
+  if (filled != CE_None) throw Error("validate", detail::gdal_message("GDAL's FillNodata baseline failed"));
   if (band->RasterIO(GF_Read, 0, 0, width, height, out.data(), width, height, GDT_Float32, 0, 0,
                      nullptr) != CE_None)
     throw Error("validate", "GDAL could not read a memory raster");

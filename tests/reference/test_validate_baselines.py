@@ -25,6 +25,7 @@ import glob
 import json
 import math
 import os
+import subprocess
 import sys
 import unittest
 import warnings
@@ -150,6 +151,20 @@ class BaselineMechanics(kt.TempDirTestCase):
             reported = {s["name"]: s for s in json.load(f)["scores"]}
         self.assertEqual(reported["GDAL FillNodata, date by date"]["coverage"], 1.0)
         self.assertEqual(reported["combined baseline"]["coverage"], 1.0)
+        # GDAL's work rasters are kept in memory: where GDAL could not write them as files (its
+        # temporary folder, by default the current one, not writable) the baseline had come out
+        # empty, coverage 0, exit 0; and a killed run had left them in the current folder.
+        out = os.path.join(self.tmp, "corner-no-temporary-folder")
+        env = dict(os.environ, CPL_TMPDIR=os.path.join(self.tmp, "no-such-folder"))
+        done = subprocess.run([kt.KALENDS_BIN, "-q", "validate", os.path.join(stack, "*.tif"), "--methods", "whittaker",
+                               "--out", out, "--seed", "5", "--withhold", "0.5"], capture_output=True, text=True, env=env,
+                              cwd=self.tmp, timeout=300)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "report.json")) as f:
+            again = {s["name"]: s for s in json.load(f)["scores"]}
+        for name in ("GDAL FillNodata, date by date", "combined baseline"):
+            self.assertEqual(again[name]["coverage"], 1.0, name)
+            self.assertEqual(again[name]["rmse"], reported[name]["rmse"], name)
 
     def test_masks_that_withheld_nothing_are_not_counted(self):
         # One date has a 16 px cloud; laid over the five others it withholds something at most
