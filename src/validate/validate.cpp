@@ -393,7 +393,16 @@ ValidateReport run_validate(const ValidateRequest& request) {
   // Held until the reports are written: a second validate (or any command) into the same
   // folder had rebuilt work/ under this one, and both failed.
   const detail::OutputFolder output_folder(request.out_dir);
-  if (fs::exists(work, ec) && !fs::exists(marker, ec) && !fs::is_empty(work, ec))
+  // A run stopped while it made work/ leaves folders and its marker's temporary file alone:
+  // that is ours too (every later run had been refused).
+  const auto only_our_start = [&] {
+    for (auto it = fs::recursive_directory_iterator(work, ec); !ec && it != fs::recursive_directory_iterator();
+         it.increment(ec))
+      if (!it->is_directory() && it->path().filename().string().find("made-by-kalends-validate") == std::string::npos)
+        return false;
+    return !ec;
+  };
+  if (fs::exists(work, ec) && !fs::exists(marker, ec) && !fs::is_empty(work, ec) && !only_our_start())
     throw UsageError("--out", "'" + work.string() + "' exists and was not made by kalends validate, which works "
                               "there: move it, or give another --out");
   fs::remove_all(work, ec);
@@ -411,9 +420,11 @@ ValidateReport run_validate(const ValidateRequest& request) {
       if (!out_existed && fs::is_empty(out, ignored)) fs::remove(out, ignored);
     }
   } remove_work_on_failure{work, request.out_dir, request.keep_work, out_existed};
-  fs::create_directories(work / "input", ec);
+  fs::create_directories(work, ec);
   if (ec) throw detail::write_failure(work.string(), "cannot create: " + ec.message());
   detail::write_text_atomically(marker.string(), "kalends validate works in this folder and removes it\n");
+  fs::create_directories(work / "input", ec);
+  if (ec) throw detail::write_failure(work.string(), "cannot create: " + ec.message());
   const std::string name = stack.name().empty() ? "layer" : stack.name();
   for (int t = 0; t < dates; ++t) {
     const std::string label = stack.layers()[t].time.label();

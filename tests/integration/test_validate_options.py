@@ -307,6 +307,16 @@ class ValidateOptions(kt.TempDirTestCase):
                                    "--out", own] + extra)
             self.assertEqual(done.returncode, 0, done.stderr)
         self.assertFalse(os.path.exists(os.path.join(own, "work")))
+        # What a run stopped while it made work/ leaves: folders and its marker's temporary file.
+        # Every later run into the folder had been refused as "not made by kalends validate".
+        stopped = os.path.join(self.tmp, "stopped-work")
+        os.makedirs(os.path.join(stopped, "work", "input"))
+        with open(os.path.join(stopped, "work", "..made-by-kalends-validate.4242.partial"), "w") as f:
+            f.write("kalends validate works in this folder and removes it\n")
+        done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
+                               "--out", stopped])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(stopped, "work")))
 
     def test_series_csv_holds_the_truth_and_each_fill_at_the_most_withheld_pixels(self):
         # OUT/series.csv: for the pixels with the most withheld values, every date's input value
