@@ -756,7 +756,13 @@ StudyGridSummary run_study_grid(const StudyGridRequest& request) {
     summary.width = width;
     summary.height = height;
   }
+  // Marked while the layers are renamed one by one: a grid killed among the renames had left a
+  // folder of part old, part new layers that extract and report read without a word.
+  std::set<std::string> folders;
+  for (const Staged& s : staged) folders.insert(fs::path(s.target).parent_path().string());
+  detail::mark_publishing(folders);
   for (const Staged& s : staged) detail::publish_file(s.temporary, s.target);
+  detail::unmark_publishing(folders);
   staged.clear();
   if (!summary.without_value.empty()) {
     // The likely causes of what was given: an extent or clip beside the data, or, with neither,

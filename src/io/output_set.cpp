@@ -122,6 +122,25 @@ void publish_file(const std::string& temporary, const std::string& final_path) {
   sync_path(fs::path(final_path).parent_path().string(), true);
 }
 
+void mark_publishing(const std::set<std::string>& folders) {
+  for (const std::string& folder : folders) {
+    const std::string marker = (fs::path(folder) / half_published_marker).string();
+    if (FILE* f = std::fopen(marker.c_str(), "w")) {
+      std::fputs("kalends: outputs of this folder are being replaced; a run killed meanwhile left them mixed\n", f);
+      std::fclose(f);
+    }
+    sync_path(folder, true);
+  }
+}
+
+void unmark_publishing(const std::set<std::string>& folders) {
+  for (const std::string& folder : folders) {
+    std::error_code ec;
+    fs::remove(fs::path(folder) / half_published_marker, ec);
+    sync_path(folder, true);
+  }
+}
+
 namespace {
 // The user's choice of folder, as an --out naming a file is: exit 2, not a failed write.
 [[noreturn]] void refuse_foreign_file(const std::string& path) {
@@ -486,18 +505,10 @@ void OutputSet::commit() {
     }
   }
   // The renames below are one at a time: a run killed among them would leave some outputs new
-  // and some old under their final names. A marker in each folder says so until the last
-  // rename, and readers refuse a folder that holds one (require_not_half_published).
+  // and some old under their final names (mark_publishing).
   std::set<std::string> marked;
   for (auto& file : files_) marked.insert(fs::path(file->spec.path).parent_path().string());
-  for (const std::string& folder : marked) {
-    const std::string marker = (fs::path(folder) / half_published_marker).string();
-    if (FILE* f = std::fopen(marker.c_str(), "w")) {
-      std::fputs("kalends: outputs of this folder are being replaced; a run killed meanwhile left them mixed\n", f);
-      std::fclose(f);
-    }
-    sync_path(folder, true);
-  }
+  mark_publishing(marked);
   std::set<std::string> folders;
   for (auto& file : files_) {
     if (keep_unchanged_ && fs::exists(file->spec.path) &&
@@ -512,11 +523,7 @@ void OutputSet::commit() {
     folders.insert(fs::path(file->spec.path).parent_path().string());
   }
   for (const std::string& folder : folders) sync_path(folder, true);
-  for (const std::string& folder : marked) {
-    std::error_code ec;
-    fs::remove(fs::path(folder) / half_published_marker, ec);
-    sync_path(folder, true);
-  }
+  unmark_publishing(marked);
   committed_ = true;
 }
 

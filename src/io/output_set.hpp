@@ -7,6 +7,7 @@
 #include <gdal_priv.h>
 
 #include <map>
+#include <set>
 #include <memory>
 #include <mutex>
 #include <span>
@@ -153,6 +154,12 @@ void crop_raster(const std::string& source, const Window& window, const std::str
 
 /// Publishes a finished temporary file under its final name (fsync, rename, fsync the folder).
 void publish_file(const std::string& temporary, const std::string& final_path);
+
+/// Marks `folders` as being published into (half_published_marker) until unmark_publishing: renames
+/// are one at a time, so a run killed among them leaves some outputs new and some old under their
+/// final names, and readers refuse a folder with the mark (require_not_half_published).
+void mark_publishing(const std::set<std::string>& folders);
+void unmark_publishing(const std::set<std::string>& folders);
 
 /// The hidden name a file is written under before it is published.
 std::string temporary_name(const std::string& final_path, const std::string& tag = "");
