@@ -55,7 +55,9 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
     fmt::print("  time grid step {:g} days ({}), {} slots, {} with a date\n", t.step_days,
                t.from_smallest_spacing ? "the smallest spacing: on the median one, dates of mixed spacing would move "
                                          "a whole step"
-                                       : "the median spacing",
+                                       : t.placed_by_intervals ? "the median spacing; dates placed by their intervals, as "
+                                                                 "the calendar drifts from the grid over the years"
+                                                               : "the median spacing",
                t.size, r.slots_with_data);
     if (t.largest_shift_days >= t.step_days)
       fmt::print("            the grid misstates the time between two dates by up to {:g} days ({})\n",

@@ -214,7 +214,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
   // the year some composite stands for): a composite that moves the season's end changes the
   // calendar of every year, so earlier years are reusable only under the same season.
   const std::string grid_label =
-      fmt::format("{} {:g}", grid.start.iso(), grid.step_days) +
+      fmt::format("{} {:g}", grid.start.iso(), grid.step_days) + (grid.placed_by_intervals ? " by intervals" : "") +
       (request.every ? " season " + detail::season_label(grid, request.marks) : std::string());
   std::map<int, YearCounts> earlier_years;
   std::optional<std::set<int>> only;

@@ -84,6 +84,36 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   // (the months' lengths: 10-11 days for dekads over 10-30 years); monthly files followed by
   // dekads, or dekads with extra scenes, misstate by months and take the finer grid.
   grid.fixed_days_of_month = on_fixed_days_of_month(times) && grid.largest_shift_days <= 1.5 * step;
+  // A composite calendar that restarts on 1 January runs ahead of the grid by about 3 days a
+  // year; where a date is missing (withdrawn, late), the next one's nearest slot after a few
+  // years is the missing one's, and the grid misstates that interval by a step: one missing
+  // composite had switched a 10-year 8-day record to a 5-day grid, every year's values moved
+  // and a --reach run redid every year. Placed from interval to interval instead (each date
+  // the number of steps after the one before that its interval is worth), the drift does not
+  // add up; taken only where the nearest slots fail, so stacks that fit them keep their grid.
+  if (grid.largest_shift_days >= step && !grid.fixed_days_of_month) {
+    const std::vector<int> nearest = grid.slot_of_date;
+    const double nearest_shift = grid.largest_shift_days;
+    grid.slot_of_date.assign(1, 0);
+    for (std::size_t i = 1; i < times.size(); ++i) {
+      const double apart = (times[i].seconds - times[i - 1].seconds) / 86400.0;
+      grid.slot_of_date.push_back(grid.slot_of_date.back() + std::max(1, int(std::lround(apart / step))));
+    }
+    double largest = 0;
+    for (std::size_t i = 0; i < times.size(); ++i)
+      for (std::size_t j = i + 1; j < times.size() && j <= i + 64; ++j) {
+        const double apart = (times[j].seconds - times[i].seconds) / 86400.0;
+        if (apart > 366) break;
+        largest = std::max(largest, std::abs((grid.slot_of_date[j] - grid.slot_of_date[i]) * step - apart));
+      }
+    if (largest < step) {
+      grid.placed_by_intervals = true;
+      grid.largest_shift_days = largest;
+    } else {
+      grid.slot_of_date = nearest;
+      grid.largest_shift_days = nearest_shift;
+    }
+  }
   if (grid.largest_shift_days >= step && !grid.fixed_days_of_month) {
     const double finer = smallest >= 1.0 ? std::floor(smallest) : smallest;
     const double span = (times.back().seconds - times.front().seconds) / 86400.0;
@@ -99,6 +129,14 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   for (int s = 0; s < grid.size; ++s) grid.slot_days[s] = s * step;
   for (std::size_t i = 0; i < times.size(); ++i)
     grid.slot_days[grid.slot_of_date[i]] = (times[i].seconds - grid.start.seconds) / 86400.0;
+  // Placed by intervals, a slot between two dates lies evenly between them: start + slot x step
+  // may be days or months off after years of drift, out of order with the dates beside it.
+  if (grid.placed_by_intervals)
+    for (std::size_t i = 1; i < times.size(); ++i) {
+      const int a = grid.slot_of_date[i - 1], b = grid.slot_of_date[i];
+      for (int s = a + 1; s < b; ++s)
+        grid.slot_days[s] = grid.slot_days[a] + (grid.slot_days[b] - grid.slot_days[a]) * (s - a) / (b - a);
+    }
   return grid;
 }
 

@@ -122,7 +122,33 @@ TEST_CASE("time grid of a composite calendar keeps its step over many years", "[
     CHECK(g.step_days == step);
     CHECK(g.largest_shift_days <= 4);
     CHECK(g.size == int(times.size()));  // each composite its own slot, in sequence
+    CHECK_FALSE(g.placed_by_intervals);  // nearest slots serve a whole calendar
   }
+}
+
+TEST_CASE("time grid of a composite calendar keeps its step with a composite missing", "[engine][grid]") {
+  // The MODIS 8-day calendar of ten years (as above) without one composite of 2015: after a
+  // few years' drift the next composite's nearest slot was the missing one's, the grid misstated
+  // that interval by a step, and the record went onto a 5-day grid (a helper's nightly job: a
+  // withdrawn composite redid every year and moved values years away).
+  std::vector<TimePoint> times;
+  for (int year = 2010; year <= 2019; ++year)
+    for (int doy = 1; doy <= 365; doy += 8)
+      if (!(year == 2015 && doy == 129))
+        times.push_back(TimePoint{TimePoint::from_date({year, 1, 1}).seconds + std::int64_t(doy - 1) * 86400});
+  const TimeGrid g = TimeGrid::build(times);
+  CHECK_FALSE(g.from_smallest_spacing);
+  CHECK(g.step_days == 8);
+  CHECK(g.placed_by_intervals);
+  CHECK(g.largest_shift_days <= 4);
+  CHECK(g.size == int(times.size()) + 1);  // one empty slot, where the missing composite was
+  // The empty slot lies midway between the dates beside it, and slot times increase.
+  for (std::size_t i = 1; i < times.size(); ++i) {
+    const int a = g.slot_of_date[i - 1], b = g.slot_of_date[i];
+    CHECK(b - a == (i == 5 * 46 + 16 ? 2 : 1));
+    if (b - a == 2) CHECK(g.slot_days[a + 1] == Approx((g.slot_days[a] + g.slot_days[b]) / 2));
+  }
+  for (int s = 1; s < g.size; ++s) CHECK(g.slot_days[s] > g.slot_days[s - 1]);
 }
 
 TEST_CASE("time grid of a calendar of fixed days of the month keeps its step", "[engine][grid]") {
