@@ -196,6 +196,18 @@ class InspectRealData(kt.TempDirTestCase):
         done = kt.run_kalends(["inspect", os.path.join(named, "ndvi_2021-01-01.tif"), "--quick"])
         self.assertNotIn("dates disagree", done.stdout + done.stderr)
 
+    def test_a_composite_missing_from_a_long_8_day_record_keeps_its_grid(self):
+        # An invented ten-year 8-day record (tools/synth_stack.py) without one composite of
+        # 2015: the record had gone onto a 5-day grid (every year's values moved; a --reach job
+        # redid every year). The dates are placed by their intervals instead.
+        stack = os.path.join(self.tmp, "ten-years")
+        kt.make_synthetic_stack(stack, 4, 4, "--start-year", "2010", "--step", "8", years=10)
+        os.remove(os.path.join(stack, "ndvi_2015-05-09.tif"))
+        done = kt.run_kalends(["inspect", os.path.join(stack, "ndvi_*.tif"), "--quick"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("time grid step 8 days (the median spacing; dates placed by their intervals", done.stdout)
+        self.assertIn("460 slots, 459 with a date", done.stdout)
+
     def test_brackets_in_a_folder_name(self):
         # A folder named "survey[2021]": glob reads the brackets as a set of one character, so the
         # pattern matches nothing; the error says how to write them (glob(7)).
