@@ -87,7 +87,21 @@ class Stack {
   int date_conflicts() const noexcept { return date_conflicts_; }
   const std::string& first_date_conflict() const noexcept { return first_date_conflict_; }
 
+  /// InputError naming a file of the stack that was replaced or changed since open: another
+  /// command wrote into its folder while this one read it, so what was read may be part old,
+  /// part new. Call once everything is read, before the outputs are published.
+  void require_unchanged() const;
+
  private:
+  struct FileStamp {
+    std::string path;
+    std::uint64_t inode = 0;
+    std::int64_t size = 0, modified_ns = 0, changed_ns = 0;
+  };
+  void stamp(const std::vector<std::string>& files);
+  std::vector<FileStamp> stamps_;
+  std::string pattern_;                      // the files' pattern, where the input is one
+  std::vector<std::string> pattern_files_;  // what it matched
   int date_conflicts_ = 0;
   std::string first_date_conflict_;
   std::string input_;

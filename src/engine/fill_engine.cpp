@@ -638,6 +638,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
       }
     }
   outputs.set_keep_unchanged(request.keep_unchanged);
+  stack.require_unchanged();  // read whole, not part before and part after another's publishing
   outputs.commit();
   // Outputs of dates no longer in the stack (a composite removed or replaced) would otherwise
   // linger beside the new ones; only this run's years are cleaned.

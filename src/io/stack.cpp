@@ -1,6 +1,10 @@
 #include "kalends/stack.hpp"
 
 #include <glob.h>
+#include <fcntl.h>
+#include <sys/file.h>
+#include <sys/stat.h>
+#include <unistd.h>
 #include <ogr_spatialref.h>
 
 #include <algorithm>
@@ -569,10 +573,20 @@ static void require_undated_bands(GDALDataset& dataset, const std::string& path,
 
 void require_not_half_published(const std::string& folder) {
   std::error_code ec;
-  if (fs::exists(fs::path(folder.empty() ? "." : folder) / half_published_marker, ec))
-    throw InputError(folder.empty() ? "." : folder,
-                     "a kalends run was stopped while replacing its outputs here, so they are part new and part "
-                     "old; run the command (or the job) that writes this folder again");
+  const std::string where = folder.empty() ? "." : folder;
+  if (!fs::exists(fs::path(where) / half_published_marker, ec)) return;
+  // The writer holds the folder (OutputFolder's lock) while it publishes: then it is at work
+  // now, not stopped (a reader had been told to run the writer again while it was running).
+  bool writing_now = false;
+  const int fd = ::open(where.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+  if (fd >= 0) {
+    writing_now = ::flock(fd, LOCK_SH | LOCK_NB) != 0 && errno == EWOULDBLOCK;
+    ::close(fd);
+  }
+  if (writing_now)
+    throw InputError(where, "another kalends command is replacing its outputs here now; run again when it ends");
+  throw InputError(where, "a kalends run was stopped while replacing its outputs here, so they are part new and part "
+                          "old; run the command (or the job) that writes this folder again");
 }
 
 std::string date_conflict_note(const Stack& stack) {
@@ -662,7 +676,10 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   if (pattern) {
     bool first = true;
     std::vector<std::pair<std::string, Grid>> file_grids;  // each file and its grid, checked at the end
-    for (const std::string& file : detail::expand_glob(connection ? connection->files : input)) {
+    stack.pattern_ = connection ? connection->files : input;
+    stack.pattern_files_ = detail::expand_glob(stack.pattern_);
+    stack.stamp(stack.pattern_files_);  // before any is read: a file renamed in meanwhile differs
+    for (const std::string& file : stack.pattern_files_) {
       if (std::find(rules.exclude.begin(), rules.exclude.end(), file) != rules.exclude.end()) continue;
       auto time = date_from_name(file);
       // In a pattern the name's date wins: a --date that differs would be ignored without a word.
@@ -845,6 +862,11 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       const std::string where_a = b.path == a.path ? "band " + std::to_string(a.band) : a.path;
       throw InputError(where_b, "duplicate date " + b.time.label() + " (also " + where_a + ")");
     }
+  if (!pattern) {
+    std::set<std::string> files;
+    for (const Layer& layer : stack.layers_) files.insert(detail::file_in_connection(layer.path));
+    stack.stamp({files.begin(), files.end()});
+  }
   // One file dated 9999-12-31 among 2021's had made a time grid of 180,000 steps (1.3 GB for
   // 20 x 20 px) and left pixels unfitted, without a word. No stack kalends reads has a real gap
   // of a century (a baseline and a projection decades apart, yes).
@@ -862,6 +884,39 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
                                    b.path == a.path ? "band " + std::to_string(a.band) : a.path, longest_gap_years));
   }
   return stack;
+}
+
+namespace {
+std::int64_t nanoseconds(const timespec& t) { return std::int64_t(t.tv_sec) * 1000000000 + t.tv_nsec; }
+}  // namespace
+
+void Stack::stamp(const std::vector<std::string>& files) {
+  for (const std::string& file : files) {
+    struct stat st {};
+    if (::stat(file.c_str(), &st) == 0)
+      stamps_.push_back({file, std::uint64_t(st.st_ino), std::int64_t(st.st_size), nanoseconds(st.st_mtim),
+                         nanoseconds(st.st_ctim)});
+  }
+}
+
+void Stack::require_unchanged() const {
+  // A fill publishing into the folder while seasons read it had given seasons layers equal to
+  // neither the old fill nor the new (exit 0): the publishing mark is looked for at the start.
+  // Each file as it was before any was read (its inode, size and times: a rename or a rewrite
+  // changes one), and the pattern's matches (files added or removed).
+  for (const FileStamp& stamp : stamps_) {
+    struct stat st {};
+    const bool same = ::stat(stamp.path.c_str(), &st) == 0 && std::uint64_t(st.st_ino) == stamp.inode &&
+                      std::int64_t(st.st_size) == stamp.size && nanoseconds(st.st_mtim) == stamp.modified_ns &&
+                      nanoseconds(st.st_ctim) == stamp.changed_ns;
+    if (!same)
+      throw InputError(stamp.path, "was replaced while kalends read it (another command writing into its folder?), so "
+                                   "what was read may be part old, part new; nothing was written: run again when that "
+                                   "command ends");
+  }
+  if (!pattern_.empty() && detail::expand_glob(pattern_) != pattern_files_)
+    throw InputError(pattern_, "files were added or removed while kalends read them (another command writing into "
+                               "their folder?); nothing was written: run again when that command ends");
 }
 
 Stack Stack::only_times(const std::vector<TimePoint>& keep) const {

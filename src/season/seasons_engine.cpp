@@ -491,6 +491,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   };
   detail::run_blocks(plan, threads, workers, process, at_once);
   outputs.set_keep_unchanged(request.keep_unchanged);
+  stack.require_unchanged();  // read whole, not part before and part after another's publishing
   outputs.commit();
 
   SeasonsSummary summary;

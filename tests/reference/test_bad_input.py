@@ -422,6 +422,18 @@ class BadInput(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
             self.assertIn("%s: a kalends run was stopped while replacing its outputs here" % out, done.stderr)
+        # While the writer is at work (it holds the folder, as every kalends writer does with
+        # flock), the reader is told so: it had been told to run the writer again.
+        import fcntl
+        held = os.open(out, os.O_RDONLY)
+        try:
+            fcntl.flock(held, fcntl.LOCK_EX)
+            done = kt.run_kalends(["seasons", out, "--out", os.path.join(self.tmp, "half-seasons")])
+        finally:
+            os.close(held)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("%s: another kalends command is replacing its outputs here now; run again when it ends" % out,
+                      done.stderr)
         done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--out", out, "--lambda", "10"])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertFalse(os.path.exists(os.path.join(out, ".kalends-publishing")))

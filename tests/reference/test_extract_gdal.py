@@ -395,7 +395,8 @@ class ExtractLandsat(kt.TempDirTestCase):
         os.makedirs(folder)
         done = kt.run_kalends(["report", os.path.dirname(layer), "--html", folder])
         self.assertEqual(done.returncode, 2, done.stderr)
-        self.assertEqual(done.stderr.strip(), "kalends: %s: is a folder; give a file name" % folder)
+        self.assertEqual(done.stderr.strip(), "kalends: --html '%s': is a folder; give a file name, e.g. report.html"
+                         % folder)
         # The same for the page (it had failed at the rename, exit 1, naming no file), and an
         # empty name.
         page = os.path.join(self.tmp, "no-such-folder", "report.html")
