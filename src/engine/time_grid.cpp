@@ -53,6 +53,17 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   // later) drifts from nominal times by about 3 days a year, yet each composite keeps its place
   // in the sequence, and the restart misstates one interval by 3-4 days. Dates 8 days apart in a
   // 16-day stack push each other on, slot after slot: the misstatement grows a whole step.
+  // Pairs up to a year or 64 dates apart, whichever is nearer (years of hourly records).
+  const auto misstatement = [&](double step_days) {
+    double largest = 0;
+    for (std::size_t i = 0; i < times.size(); ++i)
+      for (std::size_t j = i + 1; j < times.size() && j <= i + 64; ++j) {
+        const double apart = (times[j].seconds - times[i].seconds) / 86400.0;
+        if (apart > 366) break;
+        largest = std::max(largest, std::abs((grid.slot_of_date[j] - grid.slot_of_date[i]) * step_days - apart));
+      }
+    return largest;
+  };
   const auto place = [&](double step_days) {
     grid.slot_of_date.clear();
     grid.slot_of_date.reserve(times.size());
@@ -64,15 +75,7 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
       grid.slot_of_date.push_back(slot);
       previous = slot;
     }
-    // Pairs up to a year or 64 dates apart, whichever is nearer (years of hourly records).
-    double largest = 0;
-    for (std::size_t i = 0; i < times.size(); ++i)
-      for (std::size_t j = i + 1; j < times.size() && j <= i + 64; ++j) {
-        const double apart = (times[j].seconds - times[i].seconds) / 86400.0;
-        if (apart > 366) break;
-        largest = std::max(largest, std::abs((grid.slot_of_date[j] - grid.slot_of_date[i]) * step_days - apart));
-      }
-    return largest;
+    return misstatement(step_days);
   };
   // On the smallest spacing no two dates share a nearest slot.
   // The finer grid is taken only while it stays within kFinestGridFactor slots per date: two
@@ -99,13 +102,7 @@ TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
       const double apart = (times[i].seconds - times[i - 1].seconds) / 86400.0;
       grid.slot_of_date.push_back(grid.slot_of_date.back() + std::max(1, int(std::lround(apart / step))));
     }
-    double largest = 0;
-    for (std::size_t i = 0; i < times.size(); ++i)
-      for (std::size_t j = i + 1; j < times.size() && j <= i + 64; ++j) {
-        const double apart = (times[j].seconds - times[i].seconds) / 86400.0;
-        if (apart > 366) break;
-        largest = std::max(largest, std::abs((grid.slot_of_date[j] - grid.slot_of_date[i]) * step - apart));
-      }
+    const double largest = misstatement(step);
     if (largest < step) {
       grid.placed_by_intervals = true;
       grid.largest_shift_days = largest;
