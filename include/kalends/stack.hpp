@@ -100,8 +100,6 @@ class Stack {
   };
   void stamp(const std::vector<std::string>& files);
   std::vector<FileStamp> stamps_;
-  std::string pattern_;                      // the files' pattern, where the input is one
-  std::vector<std::string> pattern_files_;  // what it matched
   int date_conflicts_ = 0;
   std::string first_date_conflict_;
   std::string input_;
