@@ -134,8 +134,9 @@ class ThermalModel {
   double optimum() const noexcept { return optimum_; }
   /// A short name for outputs: "r0-2013", "degree-day-falciparum", "window".
   std::string tag() const;
-  /// One line describing the model and its parameters (for metadata).
-  std::string description() const;
+  /// One line describing the model and its parameters (for metadata). `of_hours`: the model is
+  /// applied to hours made from daily extremes or overpasses, else to temperatures as given.
+  std::string description(bool of_hours = true) const;
 
   // Pieces, for the reference checks.
   /// Unscaled R0 of Mordecai et al. (2013) (0 where any trait is 0).

@@ -163,11 +163,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
                                           ? std::vector<std::string>{"diurnal", "degree-day"}
                                           : std::vector<std::string>{"diurnal", "window"};
   if (source.mode == Mode::constant) sections.erase(sections.begin());
-  // Temperatures as given (monthly means, hourly records) have no hours made from them: the
-  // window model is the share of those values in the range, not of hours.
-  std::string model_text = model.description();
-  if (const auto at = model_text.find("share of hours"); source.mode == Mode::constant && at != std::string::npos)
-    model_text.replace(at, std::string("share of hours").size(), "share of the values given");
+  const std::string model_text = model.description(source.mode != Mode::constant);
   const std::string unused_parasite =
       request.model != ThermalModelKind::degree_day ? ""
       : request.parasite == Parasite::vivax          ? "degree-day.falciparum"

@@ -376,7 +376,7 @@ std::string ThermalModel::tag() const {
   return "";
 }
 
-std::string ThermalModel::description() const {
+std::string ThermalModel::description(bool of_hours) const {
   switch (kind_) {
     case ThermalModelKind::r0_2013:
       return fmt::format(
@@ -387,7 +387,8 @@ std::string ThermalModel::description() const {
           "degree-day p^n, {} degree-days above {:g} C, Martens survival; scaled to 1 at {:.2f} C",
           degree_days_, threshold_, optimum_);
     case ThermalModelKind::window:
-      return fmt::format("share of hours between {:g} and {:g} C", low_, high_);
+      // Temperatures as given (monthly means, hourly records) have no hours made from them.
+      return fmt::format("share of {} between {:g} and {:g} C", of_hours ? "hours" : "the values given", low_, high_);
   }
   return "";
 }
