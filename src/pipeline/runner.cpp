@@ -326,17 +326,6 @@ std::string changed_parameters(const std::string& before, const std::string& now
   return text;
 }
 
-// Whether `path` lies inside `folder`, both with their links resolved: a folder reached through
-// a symbolic link is the same folder (compared as typed, it had counted as a copy, redone whole
-// whenever the path changed).
-bool inside(const std::string& path, const std::string& folder) {
-  std::error_code ec;
-  const fs::path real_folder = fs::weakly_canonical(folder, ec);
-  const fs::path real_path = fs::weakly_canonical(path, ec);
-  const fs::path relative = real_path.lexically_relative(real_folder);
-  return !relative.empty() && *relative.begin() != "..";
-}
-
 // Whether a step's recorded outputs lie under another folder than `out`, none of them here: the
 // output folder was copied (`cp -a out copy`, the job's out changed to the copy). The originals
 // still exist, so without this the copy's steps had counted as done whatever it lacked.
@@ -344,7 +333,11 @@ bool recorded_elsewhere(const detail::StepRecord& record, const std::string& out
   // A kind that writes outside its folder by design (a report's 'html') says nothing of a copy.
   const detail::StepKind* kind = detail::find_step_kind(record.kind);
   return !record.outputs.empty() && !(kind && kind->writes_outside_folder) &&
-         std::none_of(record.outputs.begin(), record.outputs.end(), [&](const std::string& p) { return inside(p, out); });
+         std::none_of(record.outputs.begin(), record.outputs.end(), [&](const std::string& p) {
+           // Links resolved: compared as typed, a folder reached through a link had counted as a
+           // copy, redone whole whenever the path changed.
+           return detail::path_inside(p, out);
+         });
 }
 
 // Whether every output a step recorded is still there, under `out`.

@@ -155,6 +155,10 @@ const std::vector<OptionKey>& option_keys();
 /// The items of a texts value as the job reader stores it ("a,b,c"); none for "".
 std::vector<std::string> split_list(const std::string& text);
 
+/// Whether `path` lies inside `folder` (or is it), both with their links resolved: a folder
+/// reached through a symbolic link is the same folder.
+bool path_inside(const std::string& path, const std::string& folder);
+
 const std::vector<StepKind>& step_kinds();
 const StepKind* find_step_kind(const std::string& name);
 std::string step_kind_names();  // "index, fill, ..." for messages

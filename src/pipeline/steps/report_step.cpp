@@ -64,12 +64,7 @@ StepKind report_step_kind() {
     std::vector<std::string> notes;
     // A run into another folder (--out: a trial, a cluster's shards) had replaced the page of the
     // job's own folder, whose state still said it was done. Its page goes in this run's folder.
-    const auto inside = [](const std::filesystem::path& file, const std::filesystem::path& folder) {
-      const std::string relative = std::filesystem::absolute(file).lexically_normal().lexically_relative(
-                                       std::filesystem::absolute(folder).lexically_normal()).string();
-      return !relative.empty() && relative.rfind("..", 0) != 0;
-    };
-    if (!c.replaced_out.empty() && c.has("html") && !inside(r.html, c.out)) {
+    if (!c.replaced_out.empty() && c.has("html") && !path_inside(r.html, c.out)) {
       const std::string moved = (std::filesystem::path(c.folder) / std::filesystem::path(r.html).filename()).string();
       notes.push_back("'html' " + r.html + " lies outside the output folder --out gave (" + c.out + "); the page is " +
                       moved + ", and the one beside the job's own folder stays as it was");

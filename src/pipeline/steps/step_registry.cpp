@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <filesystem>
 
 #include "kalends/error.hpp"
 #include "pipeline/step_kind.hpp"
@@ -64,6 +65,14 @@ std::optional<double> StepContext::number_or_auto(const char* key,
 
 int StepContext::integer(const char* key, int fallback) const {
   return has(key) ? std::stoi(options.at(key)) : fallback;
+}
+
+bool path_inside(const std::string& path, const std::string& folder) {
+  std::error_code ec;
+  const std::filesystem::path real_folder = std::filesystem::weakly_canonical(folder, ec);
+  const std::filesystem::path real_path = std::filesystem::weakly_canonical(path, ec);
+  const std::filesystem::path relative = real_path.lexically_relative(real_folder);
+  return !relative.empty() && *relative.begin() != "..";
 }
 
 std::vector<std::string> split_list(const std::string& text) {
