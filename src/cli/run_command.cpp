@@ -145,9 +145,12 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const StepReport& r : report.steps) {
         // "up to date" says it all; it had been printed twice, as the action and the reason.
         const bool said = r.reason == action_name(r.action);
+        // A dry run fails nothing: it says what the run would do.
+        const char* action =
+            o->run.dry_run && r.action == StepReport::Action::failed ? "would fail" : action_name(r.action);
         // No padding after the action when nothing follows it (a log line with trailing blanks).
-        if (said || r.reason.empty()) fmt::print("  {:<12} {}", r.id, action_name(r.action));
-        else fmt::print("  {:<12} {:<11} {}", r.id, action_name(r.action), r.reason);
+        if (said || r.reason.empty()) fmt::print("  {:<12} {}", r.id, action);
+        else fmt::print("  {:<12} {:<11} {}", r.id, action, r.reason);
         if (r.action == StepReport::Action::ran)
           fmt::print(" — {:.1f} s, {} file{} written, {} unchanged{}", r.seconds, r.outputs_written,
                      r.outputs_written == 1 ? "" : "s", r.outputs_unchanged,

@@ -232,7 +232,8 @@ std::string memory_key(const Job& job) {
 // job's words; a damaged file is left out of the check, as --skip-bad would leave it out.
 std::vector<std::pair<std::string, UsageError>> check_budgets(
     const Job& job, const std::string& base, std::int64_t memory, int threads, std::vector<std::string> excluded,
-    const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted) {
+    const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted,
+    std::map<std::string, InputError>* bad_inputs = nullptr) {
   std::vector<std::pair<std::string, UsageError>> refused;
   for (const JobStep& step : job.steps) {
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
@@ -262,6 +263,8 @@ std::vector<std::pair<std::string, UsageError>> check_budgets(
         std::error_code ec;
         if (!e.where().empty() && fs::is_regular_file(e.where(), ec) &&
             std::find(excluded.begin(), excluded.end(), e.where()) == excluded.end()) {
+          // The step itself fails on it (or, with --skip-bad, leaves it out): a dry run says so.
+          if (bad_inputs) bad_inputs->try_emplace(step.id, e);
           excluded.push_back(e.where());
           continue;
         }
@@ -455,6 +458,7 @@ class Runner {
     // The budgets of the steps that will run, before the first of them (--finalize only stitches
     // the split steps, whose budgets `kalends plan` checked).
     const int threads = options_.threads > 0 ? options_.threads : job_.threads;
+    std::map<std::string, InputError> bad_inputs;
     // A step refused fails at once, before any step runs, and stops only the steps that read it
     // (it had stopped the whole job, independent steps too, with no reason given for them).
     const auto refused =
@@ -464,7 +468,8 @@ class Runner {
           if (up_to_date(step)) return false;
           if (shard_) region = plan_->window(planned->root, shard_);
           return true;
-        });
+        },
+        &bad_inputs);
     // The small files of the user's that steps read (survey tables), before any step runs: a
     // bad one fails its step at once, and that step alone.
     std::map<std::string, Error> unusable_file;
@@ -526,6 +531,15 @@ class Runner {
       if (const auto over = std::find_if(refused.begin(), refused.end(), [&](const auto& r) { return r.first == step.id; });
           over != refused.end()) {
         fail_step(over->second, 2);
+        if (events_.step_finished) events_.step_finished(r);
+        report_.steps.push_back(r);
+        continue;
+      }
+      // A composite the step cannot read (no QA layer for its date, a damaged file): the run
+      // fails the step on it, unless --skip-bad; a dry run had said "would run".
+      if (const auto bad = bad_inputs.find(step.id); options_.dry_run && !options_.skip_bad && bad != bad_inputs.end()) {
+        const Error& e = bad->second;
+        fail_step(InputError(job_option_names(job_wording(e.where(), step)), job_wording(e.reason(), step)), 2);
         if (events_.step_finished) events_.step_finished(r);
         report_.steps.push_back(r);
         continue;

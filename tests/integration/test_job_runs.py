@@ -211,7 +211,7 @@ class JobFile(kt.TempDirTestCase):
             self.assertEqual(bool(glob.glob(os.path.join(out, "smooth", "*.tif"))), args[-1] == job, args)
             self.assertFalse(os.path.exists(os.path.join(out, ".kalends", "plan.tsv")), args)
             if args[0] == "run":
-                self.assertRegex(done.stdout, r"joint +failed", args)
+                self.assertRegex(done.stdout, r"joint +%s" % ("would fail" if "--dry-run" in args else "failed"), args)
         self.assertFalse(glob.glob(os.path.join(out, "joint", "*.tif")))
         # The refusal is the step's failure to `status` (exit 1 for a monitoring script), as it
         # was when the run reached the step.
@@ -223,11 +223,18 @@ class JobFile(kt.TempDirTestCase):
         stack = os.path.join(folder, "stack", "ndvi")
         with open(os.path.join(stack, "ndvi_2099-01-01.tif"), "w") as f:
             f.write("not a raster")
-        for args in (["run", job, "--dry-run"], ["run", job, "--skip-bad"]):
+        for args in (["run", job, "--dry-run", "--skip-bad"], ["run", job, "--skip-bad"]):
             done = subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300)
             self.assertEqual(done.returncode, 2, (args, done.stdout, done.stderr))
             self.assertIn("step 'joint': budget of 110 MiB is too small", done.stderr.strip().splitlines()[-1])
             self.assertFalse(glob.glob(os.path.join(out, "joint", "*.tif")), args)
+        # Without --skip-bad the run would fail both steps, each on its own reason, and the dry
+        # run says so (it had named the budget alone, and the first step "would run").
+        done = subprocess.run([kt.KALENDS_BIN, "run", job, "--dry-run"], capture_output=True, text=True, timeout=300)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertRegex(done.stdout, r"smooth +would fail +.*ndvi_2099-01-01\.tif")
+        self.assertRegex(done.stdout, r"joint +would fail +.*budget of 110 MiB is too small")
+        self.assertIn("2 steps failed", done.stderr)
         os.remove(os.path.join(stack, "ndvi_2099-01-01.tif"))
         # The default budget is named as such when the file sets none.
         edit_job(job, 'memory = "110M"', 'name = "later"')
@@ -869,8 +876,8 @@ class JobWording(kt.TempDirTestCase):
         for extra in (["--dry-run"], []):
             done = run(job, *extra)
             self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
-            self.assertRegex(done.stdout, r"(?m)^  extract +failed +.*sites.csv: no column 'id' \('id_column'\); "
-                                          r"the columns are: site, lon, lat$")
+            self.assertRegex(done.stdout, r"(?m)^  extract +%s +.*sites.csv: no column 'id' \('id_column'\); "
+                                          r"the columns are: site, lon, lat$" % ("would fail" if extra else "failed"))
             self.assertRegex(done.stdout, r"(?m)^  report +not reached +reads step 'extract', which failed$")
             self.assertRegex(done.stdout, r"(?m)^  fill +%s " % ("would run" if extra else "ran"))
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
@@ -1240,6 +1247,14 @@ class LateQAPartner(kt.TempDirTestCase):
         job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa/qa_*.tif"\n'
                         'keep = "bit 0 == 0"\n[[step]]\nid = "fill"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n')
         last = os.path.join(folder, "out", "fill", "ndvi_%s.tif" % dates[-1])
+        # Without --skip-bad the run fails the step on it, and a dry run says so first (it had
+        # said "would run": version 0.3.22), changing nothing.
+        for extra in (["--dry-run"], []):
+            done = run(job, *extra)
+            self.assertEqual(done.returncode, 2, (extra, done.stdout, done.stderr))
+            self.assertRegex(done.stdout, r"fill +%s +.*ndvi_%s\.tif: no QA layer for %s"
+                             % ("would fail" if extra else "failed", dates[-1], dates[-1]))
+            self.assertFalse(os.path.exists(last))
         done = run(job, "--skip-bad")
         self.assertEqual(done.returncode, 3, done.stderr)
         self.assertIn("no QA layer for %s" % dates[-1], done.stdout + done.stderr)
