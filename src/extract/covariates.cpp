@@ -248,7 +248,10 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
         if (end == step.c_str() || *end != '\0' || !(c.step_days > 0))
           throw InputError(s.path, "KALENDS_TIME_STEP_DAYS '" + step + "' is not a number of days");
       }
-      c.files.push_back({s.path, *time, 0, item(*ds, "KALENDS_PERIOD_DAYS_COVERED") == "0"});
+      const std::string covered = item(*ds, "KALENDS_PERIOD_DAYS_COVERED");
+      c.files.push_back({s.path, *time, 0, covered == "0"});
+      if (!covered.empty() && std::all_of(covered.begin(), covered.end(), [](char ch) { return ch >= '0' && ch <= '9'; }))
+        c.files.back().days_covered = std::stoi(covered);
       if (c.files.size() == 1) fill_common(c);
       else require_same_grid(c.grid, detail::raster_grid(*ds), s.path);
     } else if (periodic) {

@@ -679,6 +679,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
   std::vector<std::vector<std::pair<int, int>>> buffers;
   std::size_t cells_held = 0;
   Files files;
+  // Per series: the values read from calendar periods that composites cover only in part (the
+  // stack's first or last weeks, the edges of its season), and the first such period.
+  std::map<std::size_t, std::pair<std::size_t, std::string>> partial_periods;
   const auto read_batch = [&] {
     std::stable_sort(reads.begin(), reads.end(), [&](const Read& a, const Read& b) {
       return std::tie(a.si, a.file, a.band, placements[a.site].py) <
@@ -692,6 +695,13 @@ ExtractResult run_extract(const ExtractRequest& request) {
       if (at.inside) {
         sample(files, s, file.path, read.band, at, request.sampling, v);
         if (!v.value && file.outside_season) v.reason = "outside the stack's season (no composite stands for these days)";
+        if (v.value && s.period && file.days_covered > 0) {
+          const auto [first, end] = s.period->span_of_day(file.time.seconds / 86400);
+          if (file.days_covered < end - first) {
+            auto& [count, example] = partial_periods[read.si];
+            if (count++ == 0) example = fmt::format("{}: {} of {} days", file.time.label(), file.days_covered, end - first);
+          }
+        }
       } else {
         v.reason = at.reason;
       }
@@ -742,6 +752,12 @@ ExtractResult run_extract(const ExtractRequest& request) {
   read_batch();
   for (const ExtractedValue& v : r.values)
     if (!v.value) ++r.missing;
+  // A period mean over a few covered days is not the period's mean (a month the stack's last
+  // composite reaches by a day): said, as the files' KALENDS_PERIOD_DAYS_COVERED says it.
+  for (const auto& [si, part] : partial_periods)
+    r.notes.push_back(fmt::format("{}: {} value{} read from calendar periods that the composites cover only in part "
+                                  "(first: {}); each file's KALENDS_PERIOD_DAYS_COVERED says how many days",
+                                  r.series[si].name, part.first, part.first == 1 ? "" : "s", part.second));
   if (!r.repeated_ids.empty())
     r.notes.push_back(fmt::format("{}: {} ids name more than one point (first: '{}'); each point keeps its own row",
                                   request.points.path, r.repeated_ids.size(), r.repeated_ids.front()));

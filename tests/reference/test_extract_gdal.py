@@ -746,11 +746,17 @@ class SummersOnly(kt.TempDirTestCase):
         points = os.path.join(self.tmp, "points.csv")
         with open(points, "w") as f:
             f.write("id,x,y,date\nwinter,400600,7199400,2032-01-15\nsummer,400600,7199400,2031-07-15\n"
-                    "undated,400600,7199400,NA\n")
+                    "undated,400600,7199400,NA\nmay,400600,7199400,2031-05-28\n")
         out = os.path.join(self.tmp, "table.csv")
         done = kt.run_kalends(["-q", "extract", job, "--points", points, "--crs", "EPSG:32606", "--x-column", "x",
                                "--y-column", "y", "--layers", "fill.calendar-1M.ndvi", "--out", out])
         self.assertEqual(done.returncode, 0, done.stderr)
+        # May rests on the days from the first composite's (its start, 25 May) to the month's
+        # end: a mean of a week, not of the month, which a note says (it had said nothing). July
+        # is covered whole and is not counted.
+        first = dt.date(2031, 1, 1) + dt.timedelta(days=144)
+        self.assertIn("fill.calendar-1M.ndvi: 1 value read from calendar periods that the composites cover only in "
+                      "part (first: 2031-05-01: %d of 31 days)" % (31 - first.day + 1), done.stderr)
         rows = {r["id"]: r for r in kt.read_table(out)}
         self.assertEqual(rows["winter"]["fill.calendar-1M.ndvi"], "")
         self.assertTrue(rows["winter"]["fill.calendar-1M.ndvi.reason"].startswith("outside the stack's season"),
