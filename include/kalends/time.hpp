@@ -59,10 +59,15 @@ std::optional<std::string> impossible_date_in_name(std::string_view name);
 std::optional<TimePoint> parse_iso_time(std::string_view text);
 
 /// A CF-conventions time value: `value` in `units` ("days since 1950-01-01 00:00:00"; an
-/// origin's time-zone offset, " -06:00", is read and the times kept on that zone's clock). Only the standard
+/// origin's time-zone offset, " -06:00", is read and the time returned on that zone's clock: the
+/// caller moves an axis with times of day to UTC by cf_zone_offset_seconds). Only the standard
 /// (gregorian) and proleptic_gregorian calendars are accepted, in any case; the standard one is
 /// Julian before 1582-10-15, so an earlier origin is a Julian date and an earlier time is
 /// refused. Throws std::invalid_argument with the reason otherwise.
 TimePoint cf_time(double value, std::string_view units, std::string_view calendar = "standard");
+
+/// The offset from UTC, in seconds, of a CF time origin's zone ("hours since 2019-03-01 00:00
+/// -06:00": -21600); 0 where it names none or UTC.
+int cf_zone_offset_seconds(std::string_view units);
 
 }  // namespace kalends

@@ -267,14 +267,15 @@ std::int64_t julian_minus_gregorian_days(int y, int m) {
 // Cuts a trailing time zone off a CF (UDUNITS) units' origin: " -06:00", " +0530", " -6",
 // "T00:00-06:00", " GMT", "UTC", "Z". The times are kept on that zone's clock (cf_time), so only
 // its form is checked: what is not a zone is left for the date parser to refuse.
-void cut_zone(std::string_view& origin) {
+// Returns the zone's offset from UTC in seconds (0 for none, UTC, GMT, Z).
+int cut_zone(std::string_view& origin) {
   for (std::string_view name : {" GMT", "GMT", " UTC", "UTC", "Z"}) {
     if (origin.size() < name.size() + 5) continue;
     const std::string_view tail = origin.substr(origin.size() - name.size());
     if (std::equal(tail.begin(), tail.end(), name.begin(), name.end(),
                    [](char a, char b) { return std::toupper(static_cast<unsigned char>(a)) == b; })) {
       origin.remove_suffix(name.size());
-      return;
+      return 0;
     }
   }
   // "2001-01-01T00:00:00-06:00": the offset follows the time without a space (ISO 8601).
@@ -283,9 +284,10 @@ void cut_zone(std::string_view& origin) {
     const auto sign = origin.find_last_of("+-");
     if (sign != std::string_view::npos && sign > t) space = sign - 1;
   }
-  if (space == std::string_view::npos) return;
+  if (space == std::string_view::npos) return 0;
   std::string_view zone = origin.substr(space + 1);
-  if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return;
+  if (zone.size() < 2 || (zone[0] != '+' && zone[0] != '-')) return 0;
+  const int sign = zone[0] == '-' ? -1 : 1;
   zone.remove_prefix(1);
   int hours = 0, minutes = 0;
   const auto colon = zone.find(':');
@@ -297,17 +299,28 @@ void cut_zone(std::string_view& origin) {
     return true;
   };
   if (colon != std::string_view::npos) {
-    if (!digits(zone.substr(0, colon), hours) || !digits(zone.substr(colon + 1), minutes)) return;
+    if (!digits(zone.substr(0, colon), hours) || !digits(zone.substr(colon + 1), minutes)) return 0;
   } else if (zone.size() == 4) {
-    if (!digits(zone.substr(0, 2), hours) || !digits(zone.substr(2), minutes)) return;
+    if (!digits(zone.substr(0, 2), hours) || !digits(zone.substr(2), minutes)) return 0;
   } else if (!digits(zone, hours)) {
-    return;
+    return 0;
   }
-  if (hours > 14 || minutes > 59) return;
+  if (hours > 14 || minutes > 59) return 0;
   origin = origin.substr(0, origin[space] == ' ' ? space : space + 1);
+  return sign * (hours * 3600 + minutes * 60);
 }
 
 }  // namespace
+
+int cf_zone_offset_seconds(std::string_view units) {
+  std::string lower(units);
+  for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
+  const auto since = lower.find(" since ");
+  if (since == std::string::npos) return 0;
+  std::string_view origin = units.substr(since + 7);
+  while (!origin.empty() && origin.back() == ' ') origin.remove_suffix(1);
+  return cut_zone(origin);
+}
 
 TimePoint cf_time(double value, std::string_view units, std::string_view calendar_name) {
   std::string calendar(calendar_name);

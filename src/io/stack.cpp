@@ -277,7 +277,23 @@ std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& p
     if (units == nullptr || strcasestr(units, " since ") == nullptr) continue;
     const char* calendar = dataset.GetMetadataItem((dim + "#calendar").c_str());
     try {
-      return cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");
+      const TimePoint local = cf_time(std::stod(item.substr(eq + 1)), units, calendar ? calendar : "standard");
+      // An origin with a zone: dates on it keep their local day (a month stamped at local
+      // midnight stays in its month), but an axis with times of day is moved to UTC, as every
+      // time kalends writes is (hourly records had kept the zone's clock, labelled UTC).
+      const int offset = cf_zone_offset_seconds(units);
+      if (offset == 0) return local;
+      const char* values = dataset.GetMetadataItem(("NETCDF_DIM_" + dim + "_VALUES").c_str());
+      bool times_of_day = !local.is_midnight();
+      for (const char* at = values; at && *at && !times_of_day;) {
+        while (*at == '{' || *at == ',' || *at == ' ') ++at;
+        char* end = nullptr;
+        const double value = std::strtod(at, &end);
+        if (end == at) break;
+        times_of_day = !cf_time(value, units, calendar ? calendar : "standard").is_midnight();
+        at = end;
+      }
+      return times_of_day ? TimePoint{local.seconds - offset} : local;
     } catch (const std::invalid_argument& e) {
       throw InputError(band_where(path, band_index), std::string("time axis: ") + e.what());
     }

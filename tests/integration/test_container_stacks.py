@@ -248,5 +248,61 @@ class ContainerStacks(kt.TempDirTestCase):
         self.assertFalse(os.path.exists(out))
 
 
+def write_time_axis_netcdf(path, times, units, values):
+    """One NetCDF file with a CF time axis (`times` in `units`) and a float32 variable 'ndvi' of
+    shape (time, lat, lon), by GDAL's multidimensional API."""
+    g = kt.gdal()
+    ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path, [], [])
+    root = ds.GetRootGroup()
+    dims = [root.CreateDimension("time", "TEMPORAL", None, len(times))]
+    axis = root.CreateMDArray("time", dims, g.ExtendedDataType.Create(g.GDT_Float64))
+    axis.Write(np.array(times, float))
+    axis.CreateAttribute("units", [], g.ExtendedDataType.CreateString()).Write(units)
+    for name, size, first, step, unit in (("lat", values.shape[1], 64.995, -0.01, "degrees_north"),
+                                          ("lon", values.shape[2], -147.995, 0.01, "degrees_east")):
+        dim = root.CreateDimension(name, None, None, size)
+        a = root.CreateMDArray(name, [dim], g.ExtendedDataType.Create(g.GDT_Float64))
+        a.Write(np.array([first + step * k for k in range(size)]))
+        a.CreateAttribute("units", [], g.ExtendedDataType.CreateString()).Write(unit)
+        dims.append(dim)
+    root.CreateMDArray("ndvi", dims, g.ExtendedDataType.Create(g.GDT_Float32)).Write(values.astype(np.float32))
+    ds = None
+
+
+class TimeZones(kt.TempDirTestCase):
+    def test_hourly_records_on_a_zones_clock_are_written_in_utc_and_days_keep_their_day(self):
+        # A CF origin with a zone (UDUNITS allows "hours since 2019-03-01 00:00:00 -06:00"):
+        # hourly records are instants, and every time kalends writes is UTC (outputs.md), so they
+        # move to UTC (value 1 is 07:00 UTC, as Python's datetime converts it); they had kept the
+        # zone's clock, labelled UTC, six hours off. Daily stamps at local midnight keep their
+        # day (inputs.md). Invented values.
+        import datetime as dt
+        rng = np.random.default_rng(8)
+        hourly = os.path.join(self.tmp, "hourly.nc")
+        write_time_axis_netcdf(hourly, range(6), "hours since 2019-03-01 00:00:00 -06:00",
+                               rng.uniform(0.2, 0.6, (6, 3, 4)))
+        zone = dt.timezone(dt.timedelta(hours=-6))
+        expected = [(dt.datetime(2019, 3, 1, tzinfo=zone) + dt.timedelta(hours=k)).astimezone(dt.timezone.utc)
+                    for k in range(6)]
+        out = os.path.join(self.tmp, "hourly-fill")
+        done = kt.run_kalends(["-q", "fill", 'NETCDF:"%s":ndvi' % hourly, "--out", out, "--lambda", "1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_*.tif"))),
+                         ["ndvi_%s.tif" % t.strftime("%Y-%m-%dT%H%M") for t in expected])
+        g = kt.gdal()
+        first = g.Open(os.path.join(out, "ndvi_%s.tif" % expected[0].strftime("%Y-%m-%dT%H%M")))
+        self.assertEqual(first.GetMetadataItem("KALENDS_DATE"), expected[0].strftime("%Y-%m-%dT%H:%M:%SZ"))
+        first = None
+        daily = os.path.join(self.tmp, "daily.nc")
+        write_time_axis_netcdf(daily, [0, 16, 32, 48], "days since 2000-01-01 00:00:00 +05:00",
+                               rng.uniform(0.2, 0.6, (4, 3, 4)))
+        out = os.path.join(self.tmp, "daily-fill")
+        done = kt.run_kalends(["-q", "fill", 'NETCDF:"%s":ndvi' % daily, "--out", out, "--lambda", "1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_*.tif"))),
+                         ["ndvi_%s.tif" % (dt.date(2000, 1, 1) + dt.timedelta(days=d)).isoformat()
+                          for d in (0, 16, 32, 48)])
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
