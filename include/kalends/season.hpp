@@ -151,10 +151,14 @@ struct CycleDescriptors {
   int seasons = 0;
   double main_peak_doy = NAN;
   std::array<SeasonTiming, 2> season;  // the first two seasons of the year, by peak date
+  /// 1: a season's start, 2: its end is unknown (NaN, with its length and integral): it lies
+  /// where `padded` had no value and the year's own values stood in.
+  int edges_unknown = 0;
 };
 
 /// Describes one year given `padded` = [previous cycle | the year | next cycle], each of
-/// `days.count()` values (use the year itself cyclically where a neighbouring year is missing).
+/// `days.count()` values (NaN where a neighbouring year has none: the year's own values stand
+/// in for the peak search, but a season edge among them is left unknown).
 /// Peaks and season edges are searched on the padded series, so a season that spans
 /// 1 January is not cut; a season belongs to the year that holds its peak.
 CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays& days,

@@ -56,6 +56,9 @@ struct SeasonsSummary {
   std::vector<int> stale_years_removed;  // an earlier run's year layers outside this run's years
   /// Years whose cycle layer is empty at some pixels that have a synoptic cycle, and how many.
   std::vector<std::pair<int, std::int64_t>> years_with_cycle_gaps;
+  /// Years whose cycle layer leaves season starts or ends empty (year, pixels with a start
+  /// unknown, pixels with an end unknown): the record has no value where they lie.
+  std::vector<std::tuple<int, std::int64_t, std::int64_t>> years_with_unknown_edges;
   /// Whether the input is a fill's (a flag band): then the observed_YYYY and
   /// synoptic_observed_years layers say what each value rests on.
   bool from_fill = false;

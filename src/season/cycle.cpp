@@ -139,10 +139,17 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
   // A flat cycle, or one whose whole range is within what the user calls noise, has no season.
   if (!(d.amplitude > std::max(0.0, options.min_amplitude))) return d;
 
-  // Neighbouring cycles fill in where they are missing, so edges behave as in the cyclic case.
+  // Neighbouring cycles fill in where they are missing, so edges behave as in the cyclic case;
+  // but a season edge found among those stand-ins is the year's own shape, not the record's.
   std::vector<double> x(padded.begin(), padded.end());
+  std::vector<char> stand_in(std::size_t(3 * P), 0);
   for (int i = 0; i < 3 * P; ++i)
-    if (!std::isfinite(x[i])) x[i] = year[i % P];
+    if (!std::isfinite(x[i])) x[i] = year[i % P], stand_in[std::size_t(i)] = 1;
+  const auto any_stand_in = [&](int from, int to) {
+    for (int j = std::max(0, from); j <= std::min(3 * P - 1, to); ++j)
+      if (stand_in[std::size_t(j)]) return true;
+    return false;
+  };
   const std::vector<Peak> all = find_peaks(x, options.prominence_share * d.amplitude);
   std::vector<std::size_t> in_year;
   for (std::size_t k = 0; k < all.size(); ++k)
@@ -160,8 +167,11 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
     const int previous = k > 0 ? all[k - 1].index : std::max(0, peak - P);
     const int next = k + 1 < all.size() ? all[k + 1].index : std::min(3 * P - 1, peak + P);
     double left_base = x[peak], right_base = x[peak];
-    for (int j = previous; j < peak; ++j) left_base = std::min(left_base, x[j]);
-    for (int j = peak + 1; j <= next; ++j) right_base = std::min(right_base, x[j]);
+    int left_low = peak, right_low = peak;
+    for (int j = previous; j < peak; ++j)
+      if (x[j] < left_base) left_base = x[j], left_low = j;
+    for (int j = peak + 1; j <= next; ++j)
+      if (x[j] < right_base) right_base = x[j], right_low = j;
     const double left_threshold = left_base + options.threshold_share * (x[peak] - left_base);
     const double right_threshold = right_base + options.threshold_share * (x[peak] - right_base);
     double start = previous, end = next;
@@ -179,11 +189,18 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
     double integral = 0;
     for (int j = int(std::ceil(start)); j <= int(std::floor(end)); ++j)
       integral += std::max(0.0, x[j] - base) * days.length(j);
+    // An edge whose crossing or base lies among the stand-ins (the record starts or ends
+    // within the season, or a neighbouring year has no data) is unknown: left empty, and
+    // counted, rather than taken from another season's values.
+    const bool start_known = !stand_in[std::size_t(left_low)] && !any_stand_in(int(std::floor(start)), peak);
+    const bool end_known = !stand_in[std::size_t(right_low)] && !any_stand_in(peak, int(std::ceil(end)));
     SeasonTiming& t = d.season[s];
-    t.start_doy = days.day_of_year(start - P);
-    t.end_doy = days.day_of_year(end - P);
-    t.length_days = days.day(end - P) - days.day(start - P);
-    t.integral = integral;
+    t.start_doy = start_known ? days.day_of_year(start - P) : NAN;
+    t.end_doy = end_known ? days.day_of_year(end - P) : NAN;
+    t.length_days = start_known && end_known ? days.day(end - P) - days.day(start - P) : NAN;
+    t.integral = start_known && end_known ? integral : NAN;
+    if (!start_known) d.edges_unknown |= 1;
+    if (!end_known) d.edges_unknown |= 2;
   }
   return d;
 }

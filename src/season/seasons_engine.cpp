@@ -112,6 +112,17 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
                                                     "values out: flag 3"
                                                   : "a stack that starts or ends within the year, or dates without "
                                                     "data; fill the gaps first with kalends fill"));
+  const auto pixels_text = [](std::int64_t n) { return fmt::format("{} pixel{}", n, n == 1 ? "" : "s"); };
+  for (const auto& [year, starts, ends] : summary.years_with_unknown_edges)
+    notes.push_back(fmt::format("the {} cycle layer leaves {} empty (with the season's length and integral): the "
+                                "record has no value where {} (before its first composite, after its last, or in "
+                                "a year without data), and the year's own values do not tell",
+                                year,
+                                starts && ends ? fmt::format("the season start of {} and the season end of {}",
+                                                             pixels_text(starts), pixels_text(ends))
+                                : starts       ? fmt::format("the season start of {}", pixels_text(starts))
+                                               : fmt::format("the season end of {}", pixels_text(ends)),
+                                starts && ends ? "they lie" : "it lies"));
   if (!summary.partly_covered.empty()) {
     const auto& [label, covered, days] = summary.partly_covered.front();
     const std::size_t count = summary.partly_covered.size();
@@ -352,6 +363,9 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   std::vector<std::atomic<bool>> period_has_value(P);
   // Per year, pixels whose synoptic cycle has descriptors but whose year's has none.
   std::vector<std::atomic<std::int64_t>> year_cycle_missing(years);
+  // Per year, pixels with a season start (1) or end (2) left unknown: it lies where the record
+  // has no value (before the first composite, after the last, in a year without data).
+  std::vector<std::atomic<std::int64_t>> year_starts_unknown(years), year_ends_unknown(years);
   auto process = [&](const Block& block, Worker& w) {
     const Window& core = block.core;
     std::int64_t with_values = 0, with_cycle = 0;
@@ -450,6 +464,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
         }
         const CycleDescriptors d = describe_cycle(w.padded, period_days, request.cycle, harmonics);
         w.year_cycle_empty[y] = !std::isfinite(d.mean);
+        if (d.edges_unknown & 1) ++year_starts_unknown[y];
+        if (d.edges_unknown & 2) ++year_ends_unknown[y];
         put_cycle(cycle_file[y], p, d);
       }
       for (int q = 0; q < 3 * P; ++q) w.padded[q] = mean[q % P];
@@ -514,6 +530,9 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     if (year_cycle_missing[y] > 0 && !std::count(years_without_composite.begin(), years_without_composite.end(),
                                                  first_year + y))
       summary.years_with_cycle_gaps.emplace_back(first_year + y, year_cycle_missing[y]);
+  for (int y = 0; y < years; ++y)
+    if (year_starts_unknown[y] > 0 || year_ends_unknown[y] > 0)
+      summary.years_with_unknown_edges.push_back({first_year + y, year_starts_unknown[y], year_ends_unknown[y]});
   summary.pixels_with_cycle = pixels_with_cycle;
   summary.from_fill = flags.has_value();
   summary.partly_covered = std::move(partly_covered);
