@@ -1,4 +1,5 @@
 #include "fill/dct_pls.hpp"
+#include "engine/fftw_planner.hpp"
 
 #include <fftw3.h>
 
@@ -94,7 +95,7 @@ std::string default_wisdom_file() {
 DctPlanCache::DctPlanCache(DctPlanning planning) : planning_(std::move(planning)) {}
 
 DctPlanCache::~DctPlanCache() {
-  std::lock_guard lock(mutex_);
+  std::lock_guard lock(fftw_planner_mutex());
   for (auto& [key, plan] : plans_) {
     if (!plan) continue;
     if (std::get<5>(key)) fftwf_destroy_plan(static_cast<fftwf_plan>(plan));
@@ -103,14 +104,14 @@ DctPlanCache::~DctPlanCache() {
 }
 
 std::size_t DctPlanCache::plans() const {
-  std::lock_guard lock(mutex_);
+  std::lock_guard lock(fftw_planner_mutex());
   return plans_.size();
 }
 
 const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, bool aligned,
                                int batch_slots, bool single) const {
   if (pass == Pass::whole || batch_slots <= 0) batch_slots = shape[2];
-  std::lock_guard lock(mutex_);
+  std::lock_guard lock(fftw_planner_mutex());
   const auto key = std::make_tuple(shape, inverse, int(pass), aligned, batch_slots, single);
   auto it = plans_.find(key);
   if (it != plans_.end()) return it->second;

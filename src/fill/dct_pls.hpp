@@ -88,9 +88,10 @@ struct SlotRun {
 };
 
 /// FFTW plans for the DCT-II and DCT-III of each array shape, made once and shared. The FFTW
-/// planner is not thread-safe, so plans are made and destroyed under one mutex; executing a
-/// plan on other (equally aligned) arrays is thread-safe (fftw_execute_r2r). One instance per
-/// method object; arrays passed to it must come from `DctBuffer` (FFTW's alignment).
+/// planner is not thread-safe, so plans are made and destroyed under the process's one planner
+/// lock (engine/fftw_planner.hpp); executing a plan on other (equally aligned) arrays is
+/// thread-safe (fftw_execute_r2r). One instance per method object; arrays passed to it must come
+/// from `DctBuffer` (FFTW's alignment).
 class DctPlanCache {
  public:
   explicit DctPlanCache(DctPlanning planning = {});
@@ -129,7 +130,6 @@ class DctPlanCache {
                     std::span<const SlotRun> runs) const;
   DctPlanning planning_;
   mutable bool wisdom_read_[2] = {false, false};  // double, single
-  mutable std::mutex mutex_;
   // (shape, inverse, pass, aligned, batch, single)
   mutable std::map<std::tuple<Shape3, bool, int, bool, int, bool>, void*> plans_;
 };

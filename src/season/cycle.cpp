@@ -24,16 +24,13 @@
 #include <numbers>
 #include <stdexcept>
 
+#include "engine/fftw_planner.hpp"
 #include "kalends/season.hpp"
 
 namespace kalends {
 
 namespace {
 // FFTW's planner is not thread-safe; execution of an existing plan on new arrays is.
-std::mutex& planner_mutex() {
-  static std::mutex mutex;
-  return mutex;
-}
 constexpr double year_days = 365;  // the year PeriodDays places periods in
 }  // namespace
 
@@ -84,12 +81,12 @@ HarmonicAnalysis::HarmonicAnalysis(int length) : length_(length) {
   if (length < 4) throw std::invalid_argument("harmonic analysis needs at least 4 periods a year");
   std::vector<double> in(length);
   std::vector<fftw_complex> out(length / 2 + 1);
-  std::lock_guard lock(planner_mutex());
+  std::lock_guard lock(detail::fftw_planner_mutex());
   plan_ = fftw_plan_dft_r2c_1d(length, in.data(), out.data(), FFTW_ESTIMATE | FFTW_UNALIGNED);
 }
 
 HarmonicAnalysis::~HarmonicAnalysis() {
-  std::lock_guard lock(planner_mutex());
+  std::lock_guard lock(detail::fftw_planner_mutex());
   fftw_destroy_plan(static_cast<fftw_plan>(plan_));
 }
 
