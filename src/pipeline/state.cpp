@@ -126,6 +126,47 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
     exec("CREATE TABLE IF NOT EXISTS step_inputs (step TEXT, path TEXT, checksum TEXT, PRIMARY KEY (step, path))");
     exec("CREATE TABLE IF NOT EXISTS step_parameters (step TEXT PRIMARY KEY, fingerprint TEXT, parameters TEXT)");
+    require_not_newer_program();
+  }
+}
+
+namespace {
+
+// "0.3.23" -> {0, 3, 23}; what is not a number counts as 0.
+std::vector<int> version_numbers(const std::string& text) {
+  std::vector<int> numbers;
+  std::size_t at = 0;
+  while (at <= text.size()) {
+    const std::size_t dot = text.find('.', at);
+    const std::string part = text.substr(at, dot == std::string::npos ? std::string::npos : dot - at);
+    numbers.push_back(!part.empty() && part.find_first_not_of("0123456789") == std::string::npos && part.size() < 9
+                          ? std::stoi(part)
+                          : 0);
+    if (dot == std::string::npos) break;
+    at = dot + 1;
+  }
+  return numbers;
+}
+
+}  // namespace
+
+// The newest kalends that has written this state. An older one would take every step for
+// changed ("program version changed"), rewrite the outputs with its older formulas and leave
+// the newer one's extra files beside them: refused, with the way out.
+void StateDatabase::require_not_newer_program() const {
+  exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
+  Statement read(db_, "SELECT value FROM program WHERE key = 'newest_version'", path_);
+  const std::string newest = read.step() ? read.text(0) : "";
+  if (!newest.empty() && version_numbers(newest) > version_numbers(KALENDS_VERSION))
+    throw OutputError(path_, fmt::format("written by kalends {}, which is newer than this one ({}): an older kalends "
+                                         "would redo every step with its older methods; run kalends {} or later, or "
+                                         "give another output folder (to go back to {} here anyway, remove this "
+                                         "file: every step then runs whole)",
+                                         newest, KALENDS_VERSION, newest, KALENDS_VERSION));
+  if (newest != KALENDS_VERSION) {
+    Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES ('newest_version', ?)", path_);
+    write.bind(1, std::string(KALENDS_VERSION));
+    write.step();
   }
 }
 

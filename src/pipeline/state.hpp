@@ -53,6 +53,7 @@ class StateDatabase {
  private:
   void exec(const std::string& sql) const;
   void rollback() const;
+  void require_not_newer_program() const;
   sqlite3* db_ = nullptr;
   std::string path_;
 };

@@ -2121,6 +2121,35 @@ class Faults(kt.TempDirTestCase):
         print("\n  " + line)
         self.assertIn("no space left on the device", line)
 
+    def test_an_older_kalends_is_refused_a_state_a_newer_one_wrote(self):
+        # A downgrade had rerun every step with the older methods ("program version changed"),
+        # and left the newer version's extra files beside the older outputs. The state keeps
+        # the newest version that wrote it; an older one is refused before it changes anything.
+        import sqlite3
+        folder = os.path.join(self.tmp, "downgrade")
+        job = small_dated_job(folder)
+        self.assertEqual(run(job).returncode, 0)
+        version = subprocess.run([kt.KALENDS_BIN, "--version"], capture_output=True, text=True).stdout.split()[-1]
+        state = os.path.join(folder, "out", ".kalends", "state.sqlite")
+        with sqlite3.connect(state) as db:
+            self.assertEqual(db.execute("SELECT value FROM program WHERE key = 'newest_version'").fetchall(),
+                             [(version,)])
+            # As a later release would leave it.
+            major, minor, patch = (int(v) for v in version.split("."))
+            newer = "%d.%d.%d" % (major, minor + 1, 0)
+            db.execute("UPDATE program SET value = ? WHERE key = 'newest_version'", (newer,))
+        outputs = {p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(folder, "out", "fill", "*"))}
+        for extra in ([], ["--dry-run"]):
+            done = run(job, *extra)
+            self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+            self.assertIn("%s: written by kalends %s, which is newer than this one (%s)" % (state, newer, version),
+                          done.stderr)
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+        self.assertEqual({p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(folder, "out", "fill", "*"))},
+                         outputs)
+        # status still reads it.
+        self.assertEqual(kt.run_kalends(["status", job]).returncode, 0)
+
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
         first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],
