@@ -24,6 +24,9 @@ struct CompareSummary {
   /// Year-periods on fewer days than the same period in other years, left out of the years'
   /// shares and the largest anomalies: "2015 month 06 (21 days, against 30 in other years)".
   std::vector<std::string> partial_periods;
+  /// Years with values in fewer than half the periods of the fullest year, left out of
+  /// year_most_below/above: "2020 (1 of 12 periods)".
+  std::vector<std::string> years_not_ranked;
   int years = 0;  // years with anomaly layers
   int files_written = 0, files_unchanged = 0;  // the class raster, compare.json and compare.md
 };

@@ -147,6 +147,10 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
       std::fprintf(stderr, "note: %s: left out %zu year-period(s) resting on fewer days than in other years (first: "
                            "%s): their anomalies would compare those days with a synoptic of more\n",
                    r->seasons_dir.c_str(), s.partial_periods.size(), s.partial_periods.front().c_str());
+    if (!s.years_not_ranked.empty())
+      std::fprintf(stderr, "note: %s: not ranked for the year most beyond 1 sd: %s, with values in fewer than half the "
+                           "periods of the fullest year\n",
+                   r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.years_not_ranked, ", ")).c_str());
     // With two years every standardised anomaly is +-0.71 ((n - 1) / sqrt(n)): "no year beyond
     // 1 sd" had read as "no unusual year".
     std::string years_line;

@@ -192,6 +192,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   struct YearStats {
     double sum = 0;
     std::size_t count = 0, defined = 0, below = 0, above = 0;  // defined: a standardised anomaly
+    int periods = 0;  // periods with a standardised anomaly at some pixel
   };
   std::map<int, YearStats> per_year;
   const std::regex year_file(std::regex_replace(name, std::regex(R"([.^$|()\[\]{}*+?\\])"), R"(\$&)") +
@@ -283,6 +284,7 @@ CompareSummary run_compare(const CompareRequest& request) {
       const std::vector<float> a = read_band(*raw, b, raw_path);
       const std::vector<float> o = observed ? read_band(*observed, b, observed_path) : std::vector<float>();
       const std::string period = ds->GetRasterBand(b)->GetDescription();
+      ys.periods += std::any_of(z.begin(), z.end(), [](float v) { return std::isfinite(v); });
       for (std::size_t i = 0; i < z.size(); ++i) {
         if (std::isfinite(a[i])) ys.sum += a[i], ys.count++;
         if (!std::isfinite(z[i])) continue;
@@ -356,12 +358,24 @@ CompareSummary run_compare(const CompareRequest& request) {
   // One year: its anomalies are 0 by construction (the synoptic is that year), not a finding.
   const bool one_year = per_year.size() < 2;
   summary.years = int(per_year.size());
+  // A year with values in fewer than half the periods the fullest year has (a stack that ends
+  // in January) is not ranked: its shares rest on those periods alone, whose anomalies are the
+  // season's, not the year's (a helper's one January had "most above +1 sd").
+  int most_periods = 0;
+  for (const auto& [year, s] : per_year) most_periods = std::max(most_periods, s.periods);
   for (const auto& [year, s] : per_year) {
     const double mean = s.count && !one_year ? s.sum / double(s.count) : NAN;
-    json += fmt::format("{}\n    {{\"year\": {}, \"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
-                        first ? "" : ",", year, detail::json_number(mean), detail::json_number(s.defined ? double(s.below) / s.defined : NAN),
+    const bool ranked = 2 * s.periods >= most_periods;
+    json += fmt::format("{}\n    {{\"year\": {}, \"periods\": {}, \"pixel_periods\": {}, \"ranked\": {}, "
+                        "\"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
+                        first ? "" : ",", year, s.periods, s.defined, ranked ? "true" : "false", detail::json_number(mean),
+                        detail::json_number(s.defined ? double(s.below) / s.defined : NAN),
                         detail::json_number(s.defined ? double(s.above) / s.defined : NAN));
     first = false;
+    if (!ranked) {
+      summary.years_not_ranked.push_back(fmt::format("{} ({} of {} periods)", year, s.periods, most_periods));
+      continue;
+    }
     const double below = s.defined ? double(s.below) / s.defined : 0, above = s.defined ? double(s.above) / s.defined : 0;
     // A year is named only where some pixel-period lies beyond 1 sd (none can with two years).
     if (below > std::max(most_below, 0.0)) most_below = below, summary.year_most_below = std::to_string(year);
@@ -412,15 +426,19 @@ CompareSummary run_compare(const CompareRequest& request) {
                       summary.partial_periods.size() > 5 ? ", ..." : "",
                       summary.partial_periods.size() == 1 ? "its" : "their",
                       summary.partial_periods.size() == 1 ? "y would" : "ies would");
-  md += "\n## Years\n\n| year | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|\n";
+  md += "\n## Years\n\n| year | periods | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|---|\n";
   auto number_or_dash = [](double v, const char* format) {
     return std::isfinite(v) ? fmt::format(fmt::runtime(format), v) : std::string("-");
   };
   for (const auto& [year, s] : per_year)
-    md += fmt::format("| {} | {} | {} | {} |\n", year,
+    md += fmt::format("| {} | {} | {} | {} | {} |\n", year, s.periods,
                       number_or_dash(s.count && !one_year ? s.sum / double(s.count) : NAN, "{:+.4f}"),
                       number_or_dash(s.defined ? 100.0 * double(s.below) / s.defined : NAN, "{:.1f} %"),
                       number_or_dash(s.defined ? 100.0 * double(s.above) / s.defined : NAN, "{:.1f} %"));
+  if (!summary.years_not_ranked.empty())
+    md += fmt::format("\nNot ranked for the year with most pixel-periods beyond 1 sd: {}, with values in fewer than "
+                      "half the periods of the fullest year: their shares rest on those periods alone.\n",
+                      fmt::join(summary.years_not_ranked, ", "));
   if (per_year.size() >= 2 && per_year.size() <= 3) {
     const double n = double(per_year.size());
     md += fmt::format("\nWith {} years a standardised anomaly cannot exceed (n - 1) / sqrt(n) = {:.2f} in size{}: read "

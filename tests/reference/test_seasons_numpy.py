@@ -632,6 +632,47 @@ class SeasonsAcrossTheRecordsEdges(kt.TempDirTestCase):
         self.assertNotIn("2016 cycle layer", done.stderr)
 
 
+class CompareYearsOnFewPeriods(kt.TempDirTestCase):
+    def test_a_year_of_one_month_is_listed_but_not_ranked(self):
+        # Three whole years (2019-2021) of 16-day composites and the January of 2022, higher than
+        # every other January: 2022's one month had made it the year with most pixel-periods
+        # above +1 sd, which nothing in compare.md or compare.json let the reader see. Its count
+        # of periods is now listed, and a year with values in fewer than half the fullest year's
+        # periods is not ranked. The shares are checked with numpy on the seasons layers.
+        # Invented data.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "few")
+        dates = modis_dates(3, start=2019) + [dt.date(2022, 1, 1), dt.date(2022, 1, 17)]
+
+        def values_on(doy, rng, dates=iter(dates)):
+            date = next(dates)
+            bump = 0.15 if date.year == 2022 else 0.0
+            return 0.45 + 0.2 * np.cos(2 * np.pi * (doy - 200) / 365) + bump + rng.normal(0, 0.02, (5, 6))
+
+        write_dated_ndvi(folder, dates, 21, values_on)
+        seasons = os.path.join(self.tmp, "few-seasons")
+        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        out = os.path.join(self.tmp, "few-compare")
+        done = kt.run_kalends(["compare", seasons, "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(out, "compare.json")) as f:
+            report = json.load(f)
+        years = {y["year"]: y for y in report["years"]}
+        # January 2022 alone has a standardised anomaly in 2022 (February rests on 1 day).
+        z = g.Open(os.path.join(seasons, "ndvi_anomaly_standardised_2022.tif")).ReadAsArray()
+        self.assertEqual(years[2022]["periods"], 1)
+        self.assertEqual(int(np.isfinite(z[0]).sum()), years[2022]["pixel_periods"])
+        self.assertAlmostEqual(years[2022]["share_above_1_sd"], float((z[0] > 1).mean()), places=6)
+        self.assertGreater(years[2022]["share_above_1_sd"], max(years[y]["share_above_1_sd"] for y in (2019, 2020, 2021)))
+        self.assertFalse(years[2022]["ranked"])
+        self.assertTrue(all(years[y]["ranked"] and years[y]["periods"] == 12 for y in (2019, 2020, 2021)))
+        self.assertNotEqual(report["year_most_above"], 2022)
+        self.assertIn("not ranked for the year most beyond 1 sd: 2022 (1 of 12 periods)", done.stderr)
+        with open(os.path.join(out, "compare.md")) as f:
+            self.assertIn("| 2022 | 1 |", f.read())
+
+
 class CompareOnPartOfAPeriod(kt.TempDirTestCase):
     def test_periods_on_part_of_their_days_are_left_out_and_said(self):
         # A cycle identical every year, the stack starting on 10 June 2015: June 2015 rests on 21
