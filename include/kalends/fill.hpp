@@ -23,8 +23,9 @@ struct CalendarPeriod {
   /// "8d", "16d", "1M"; UsageError naming `option` otherwise.
   static CalendarPeriod parse(const std::string& text, const std::string& option = "--every");
   std::string label() const;
-  /// 12, or ceil(365 / N).
-  int per_year() const { return kind == Kind::month ? 12 : (365 + days - 1) / days; }
+  /// 12, or ceil(365 / N). A period of N days outside 1..366 (a struct filled by hand) is a
+  /// UsageError here and in span_of_day.
+  int per_year() const;
   /// The period holding `day` (days since 1970): its first day and the first day after it. The
   /// one rule every command's periods follow (fill --every, seasons, suitability, extract).
   std::pair<std::int64_t, std::int64_t> span_of_day(std::int64_t day) const;
@@ -65,7 +66,7 @@ struct FillRequest {
   /// no folder is made and nothing is written (validate checks every method before it runs the
   /// first; a job run, --dry-run and `kalends plan` check every fill step before the first step).
   bool check_only = false;
-  int threads = 0;  // 0 = all cores
+  int threads = 0;  // 0 (or less) = all cores
   Compression compression = Compression::deflate;
   std::string command_line;  // recorded in metadata
   bool keep_unchanged = false;  // leave outputs that would not change as they are

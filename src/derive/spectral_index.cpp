@@ -202,7 +202,7 @@ IndexSummary run_index(const IndexRequest& request) {
   }
   const Grid& grid = red.grid();
   const Window area = area_of(grid.width, grid.height, request.region, request.red);
-  detail::set_gdal_cache(64 << 20);
+  const detail::GdalCacheScope cache(64 << 20);
   detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);
   outputs.set_origin(area.x, area.y);
   std::atomic<std::int64_t> missing{0};

@@ -2,6 +2,8 @@
 
 #include <algorithm>
 
+#include <fmt/format.h>
+
 #include "kalends/error.hpp"
 
 namespace kalends {
@@ -40,6 +42,7 @@ Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile
 
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
                           const std::optional<Window>& region, int max_tile_rows) {
+  if (tile <= 0) throw UsageError("tile", fmt::format("{} px: a block's side must be at least 1 px", tile));
   BlockPlan plan;
   plan.tile = tile;
   if (raster_width <= 0 || raster_height <= 0) return plan;

@@ -31,7 +31,16 @@ CalendarPeriod CalendarPeriod::parse(const std::string& text, const std::string&
   throw UsageError(option + " '" + text + "'", "expected 1M or a number of days such as 8d or 16d");
 }
 
+int CalendarPeriod::per_year() const {
+  if (kind == Kind::month) return 12;
+  // A struct filled by hand, not parsed: 0 days had divided by zero.
+  if (days < 1 || days > 366)
+    throw UsageError("--every '" + std::to_string(days) + "d'", "a period of days must be 1 to 366 days");
+  return (365 + days - 1) / days;
+}
+
 std::pair<std::int64_t, std::int64_t> CalendarPeriod::span_of_day(std::int64_t day) const {
+  const int per = per_year();  // checks the period
   const CivilDate d = civil_from_days(day);
   if (kind == Kind::month) {
     const std::int64_t first = days_from_civil(d.year, d.month, 1);
@@ -41,9 +50,9 @@ std::pair<std::int64_t, std::int64_t> CalendarPeriod::span_of_day(std::int64_t d
   // day 366 of a leap year is not a period of its own where 365 is a multiple of N.
   const std::int64_t jan1 = days_from_civil(d.year, 1, 1);
   const std::int64_t next_jan1 = days_from_civil(d.year + 1, 1, 1);
-  const std::int64_t index = std::min<std::int64_t>((day - jan1) / days, per_year() - 1);
+  const std::int64_t index = std::min<std::int64_t>((day - jan1) / days, per - 1);
   const std::int64_t first = jan1 + index * days;
-  return {first, index == per_year() - 1 ? next_jan1 : first + days};
+  return {first, index == per - 1 ? next_jan1 : first + days};
 }
 
 std::string CalendarPeriod::label() const {

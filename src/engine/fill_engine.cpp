@@ -393,7 +393,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
     checked.memory_for_one_block = one_block;
     return checked;
   }
-  detail::set_gdal_cache(share.gdal_cache);
+  const detail::GdalCacheScope cache(share.gdal_cache);
   // A method with a halo works block by block on single tiles (or full-width strips of one tile
   // row where the raster is narrower than a tile and its halo), however large the budget: its
   // values then depend on neither --memory nor the threads nor the rows a cluster shard takes.

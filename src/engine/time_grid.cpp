@@ -1,6 +1,8 @@
 #include "kalends/time_grid.hpp"
 
 #include <algorithm>
+
+#include <fmt/format.h>
 #include <cmath>
 #include <cstdint>
 #include <set>
@@ -31,6 +33,11 @@ bool on_fixed_days_of_month(const std::vector<TimePoint>& times) {
 TimeGrid TimeGrid::build(const std::vector<TimePoint>& times) {
   TimeGrid grid;
   if (times.empty()) return grid;
+  // A stack's dates always are; a list made by hand may not be (a negative step had followed).
+  for (std::size_t i = 1; i < times.size(); ++i)
+    if (!(times[i - 1] < times[i]))
+      throw UsageError("dates", fmt::format("must be in increasing order without repeats ({} follows {})",
+                                            times[i].label(), times[i - 1].label()));
   grid.start = times.front();
   if (times.size() == 1) {
     grid.size = 1;

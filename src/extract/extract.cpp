@@ -582,7 +582,8 @@ ExtractResult run_extract(const ExtractRequest& request) {
   // machine's memory) had made 2 000 points take 564 MiB, against 121 MiB at 32 MiB and the
   // same table. A GDAL_CACHEMAX the user set is kept.
   detail::start_gdal();
-  if (!CPLGetConfigOption("GDAL_CACHEMAX", nullptr)) detail::set_gdal_cache(std::int64_t(64) << 20);
+  std::optional<detail::GdalCacheScope> cache;
+  if (!CPLGetConfigOption("GDAL_CACHEMAX", nullptr)) cache.emplace(std::int64_t(64) << 20);
   ExtractResult r;
   r.points = read_survey_points(request.points);
   r.notes = r.points.notes;

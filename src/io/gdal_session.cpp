@@ -50,11 +50,16 @@ void start_gdal() {
     // while still returning kelvin when it "normalises" them. A user's own setting wins.
     if (!CPLGetConfigOption("GRIB_NORMALIZE_UNITS", nullptr)) CPLSetConfigOption("GRIB_NORMALIZE_UNITS", "NO");
     // The last error is still recorded per thread (CPLGetLastErrorMsg) with a quiet handler.
-    CPLSetErrorHandler(quiet_handler);
+    // A program using the library that set a handler of its own keeps it (it had been
+    // replaced, and the program's own GDAL errors went unseen).
+    const CPLErrorHandler previous = CPLSetErrorHandler(quiet_handler);
+    if (previous != nullptr && previous != CPLDefaultErrorHandler) CPLSetErrorHandler(previous);
   });
 }
 
-void set_gdal_cache(std::int64_t bytes) { GDALSetCacheMax64(bytes); }
+GdalCacheScope::GdalCacheScope(std::int64_t bytes) : previous_(GDALGetCacheMax64()) { GDALSetCacheMax64(bytes); }
+
+GdalCacheScope::~GdalCacheScope() { GDALSetCacheMax64(previous_); }
 
 std::string gdal_message(const std::string& fallback) {
   const char* message = CPLGetLastErrorMsg();

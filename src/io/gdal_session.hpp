@@ -19,7 +19,18 @@ namespace kalends::detail {
 void start_gdal();
 
 /// Sets GDAL's block cache size (bytes); part of the memory budget.
-void set_gdal_cache(std::int64_t bytes);
+/// GDAL's block cache for one run: set to `bytes` (a share of the memory budget) while it
+/// lives, then back to what it was, so that a program using the library keeps its own setting.
+class GdalCacheScope {
+ public:
+  explicit GdalCacheScope(std::int64_t bytes);
+  ~GdalCacheScope();
+  GdalCacheScope(const GdalCacheScope&) = delete;
+  GdalCacheScope& operator=(const GdalCacheScope&) = delete;
+
+ private:
+  std::int64_t previous_;
+};
 
 /// The last GDAL error message of this thread, or `fallback`.
 std::string gdal_message(const std::string& fallback);

@@ -263,9 +263,17 @@ std::optional<TimePoint> grib_band_time(GDALRasterBand& band) {
   return std::nullopt;
 }
 
+// A CF time read on an origin with a zone: its offset, and whether the time was kept on the
+// zone's clock (an axis of dates at local midnight) rather than moved to UTC.
+struct CfZone {
+  int offset = 0;
+  bool kept_local = false;
+};
+
 // A band's time on a CF time axis (NETCDF_DIM_<dim> with "<dim>#units" of the form "... since
 // ..."), if it has one; InputError naming the band where the axis cannot be read.
-std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& path, int band_index) {
+std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& path, int band_index,
+                                      CfZone* zone = nullptr) {
   char** items = dataset.GetRasterBand(band_index)->GetMetadata();
   for (int i = 0; items && items[i]; ++i) {
     const std::string item = items[i];
@@ -293,6 +301,7 @@ std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& p
         times_of_day = !cf_time(value, units, calendar ? calendar : "standard").is_midnight();
         at = end;
       }
+      if (zone) *zone = {offset, !times_of_day};
       return times_of_day ? TimePoint{local.seconds - offset} : local;
     } catch (const std::invalid_argument& e) {
       throw InputError(band_where(path, band_index), std::string("time axis: ") + e.what());
@@ -303,10 +312,10 @@ std::optional<TimePoint> cf_band_time(GDALDataset& dataset, const std::string& p
 
 // The date of one band of a multi-band raster: GRIB valid time, CF time axis, band
 // description, or a date item in the band's metadata.
-TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_index) {
+TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_index, CfZone* zone = nullptr) {
   GDALRasterBand* band = dataset.GetRasterBand(band_index);
   if (const auto t = grib_band_time(*band)) return *t;
-  if (const auto t = cf_band_time(dataset, path, band_index)) return *t;
+  if (const auto t = cf_band_time(dataset, path, band_index, zone)) return *t;
   if (auto t = time_from_text(band->GetDescription())) return *t;
   std::string unreadable;  // a date item that is there but is no date: named, not "none found"
   for (const char* key : {"DATE", "ACQUISITION_DATE", "TIME", "date", "time", "acquisition_date"}) {
@@ -324,11 +333,15 @@ TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_inde
 
 // Every band of a multi-band raster with the date its own metadata gives (band_time's errors).
 // An alpha band is no date: it is the others' mask (gdal_session.hpp, has_own_mask).
-std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const std::string& path) {
+std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const std::string& path,
+                                                  std::vector<CfZone>* zones = nullptr) {
   std::vector<std::pair<int, TimePoint>> dates;
   for (int b = 1; b <= dataset.GetRasterCount(); ++b)
-    if (dataset.GetRasterBand(b)->GetColorInterpretation() != GCI_AlphaBand)
-      dates.emplace_back(b, band_time(dataset, path, b));
+    if (dataset.GetRasterBand(b)->GetColorInterpretation() != GCI_AlphaBand) {
+      CfZone zone;
+      dates.emplace_back(b, band_time(dataset, path, b, &zone));
+      if (zones) zones->push_back(zone);
+    }
   return dates;
 }
 
@@ -692,6 +705,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   if (pattern) {
     bool first = true;
     std::vector<std::pair<std::string, Grid>> file_grids;  // each file and its grid, checked at the end
+    std::vector<CfZone> layer_zones;                       // with stack.layers_
     std::vector<std::string> files = detail::expand_glob(connection ? connection->files : input);
     std::erase_if(files, [&](const std::string& f) {
       return std::find(rules.exclude.begin(), rules.exclude.end(), f) != rules.exclude.end();
@@ -726,15 +740,17 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       // A file without a date in its name may hold several dates, each band dated by its own
       // metadata (a year of daily bands in one NetCDF or GRIB file): all its bands are read.
       std::vector<std::pair<int, TimePoint>> bands;
+      std::vector<CfZone> band_zones;
       if (time && !date_from_name(file)) require_undated_bands(*dataset, path, file, rules);
       if (time) {
         bands.emplace_back(rules.band, *time);
       } else {
         std::string metadata_problem;
         try {
-          if (!rules.one_date_per_file) bands = band_dates(*dataset, path);
+          if (!rules.one_date_per_file) bands = band_dates(*dataset, path, &band_zones);
         } catch (const InputError& e) {
           bands.clear();
+          band_zones.clear();
           if (e.reason().starts_with("metadata ") || e.reason().starts_with("time axis")) metadata_problem = e.reason();
         }
         if (const auto impossible = impossible_date_in_name(file); bands.empty() && impossible)
@@ -758,8 +774,10 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         first = false;
       }
       file_grids.emplace_back(file, grid);
-      for (const auto& [band, band_date] : bands) {
+      for (std::size_t k = 0; k < bands.size(); ++k) {
+        const auto& [band, band_date] = bands[k];
         stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
+        layer_zones.push_back(k < band_zones.size() ? band_zones[k] : CfZone{});
         // The name's date or the first source of the band's metadata wins (docs/inputs.md); a
         // second source that says another day is noted.
         const std::string conflict =
@@ -768,6 +786,14 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
           stack.first_date_conflict_ = band_where(file, band) + ": " + conflict;
       }
     }
+    // One record per file on a zoned CF axis: each file judged alone keeps a record at local
+    // midnight on the zone's clock while the other hours move to UTC (hour 24 had come before
+    // hour 22). Where any of the stack's records moved, all of them do.
+    const bool any_moved = std::any_of(layer_zones.begin(), layer_zones.end(),
+                                       [](const CfZone& z) { return z.offset != 0 && !z.kept_local; });
+    if (any_moved)
+      for (std::size_t k = 0; k < layer_zones.size(); ++k)
+        if (layer_zones[k].kept_local) stack.layers_[k].time.seconds -= layer_zones[k].offset;
     // Every file on the grid most of them share (the stack is refused where none has a majority):
     // judged by the first file, an oldest composite delivered on another grid had every good
     // file named as the odd one, and `kalends run --skip-bad` left out the good files.
@@ -972,6 +998,8 @@ static void read_window(GDALRasterBand& band, const Layer& layer, const Window& 
 }
 
 std::int64_t StackReader::read_values(std::size_t index, const Window& w, float* out) {
+  if (index >= stack_.layers().size())
+    throw UsageError("layer " + std::to_string(index), fmt::format("the stack has layers 0 to {}", stack_.layers().size() - 1));
   const Layer& layer = stack_.layers()[index];
   // Signed bytes as signed, and the cells the band's own mask marks invalid as NaN.
   CPLErrorReset();

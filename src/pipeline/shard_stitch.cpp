@@ -135,7 +135,7 @@ StitchOutcome stitch_parts(const std::vector<ShardPart>& parts, int width, int h
   start_gdal();
   // Every strip is read once, a row of tiles at a time: the cache needs little, and GDAL's
   // default (a share of the machine's memory) would let it grow with the area.
-  set_gdal_cache(std::clamp<std::int64_t>(memory_bytes / 16, std::int64_t(8) << 20, std::int64_t(128) << 20));
+  const GdalCacheScope cache(std::clamp<std::int64_t>(memory_bytes / 16, std::int64_t(8) << 20, std::int64_t(128) << 20));
   const std::set<std::string> names = files_in(parts.front().folder);
   for (std::size_t p = 1; p < parts.size(); ++p) {
     const std::set<std::string> other = files_in(parts[p].folder);

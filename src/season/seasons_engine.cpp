@@ -342,7 +342,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
     raised_to = one_block;
   }
   const auto [share, at_once] = fitted;
-  detail::set_gdal_cache(share.gdal_cache);
+  const detail::GdalCacheScope cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
   std::vector<std::string> output_paths;
   for (const auto& s : specs) output_paths.push_back(s.path);

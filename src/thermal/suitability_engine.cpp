@@ -253,7 +253,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const auto [share, at_once] = detail::share_for_blocks(
       request.memory_bytes, threads, BlockPlan::smallest_read_window(grid.width, grid.height, 0, tile_size),
       bytes_per_pixel, int(files.size()), int(specs.size()));
-  detail::set_gdal_cache(share.gdal_cache);
+  const detail::GdalCacheScope cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(
       grid.width, grid.height, 0, detail::parallel_block_pixels(window_grid(grid, area), share, threads), tile_size,
       request.region);

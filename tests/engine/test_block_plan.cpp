@@ -10,6 +10,7 @@
 #include "engine/parallel.hpp"
 #include "kalends/block_plan.hpp"
 #include "kalends/error.hpp"
+#include "kalends/fill.hpp"
 #include "kalends/time_grid.hpp"
 
 using namespace kalends;
@@ -234,4 +235,23 @@ TEST_CASE("blocks capped at one tile row are the same for a strip of tile rows a
     CHECK(part.blocks[0].core == same.core);
     CHECK(part.blocks[0].read == same.read);
   }
+}
+
+TEST_CASE("values a program using the library sets by hand are checked, not divided by", "[engine][blocks]") {
+  // A library user fills the structs without the command line's checks: a block side of 0 and
+  // an N-day period of 0 days had stopped the process (division by zero), unsorted dates had
+  // made a time grid with a negative step, and a layer index past the stack read out of bounds.
+  REQUIRE_THROWS_AS(BlockPlan::make(100, 100, 0, 1 << 20, 0), kalends::UsageError);
+  kalends::CalendarPeriod zero;
+  zero.kind = kalends::CalendarPeriod::Kind::days;
+  zero.days = 0;
+  REQUIRE_THROWS_AS(zero.per_year(), kalends::UsageError);
+  REQUIRE_THROWS_AS(zero.span_of_day(100), kalends::UsageError);
+  zero.days = -7;
+  REQUIRE_THROWS_AS(zero.span_of_day(100), kalends::UsageError);
+  zero.days = 16;
+  REQUIRE(zero.per_year() == 23);
+  const auto day = [](int y, int m, int d) { return kalends::TimePoint::from_date({y, m, d}); };
+  REQUIRE_THROWS_AS(kalends::TimeGrid::build({day(2020, 2, 1), day(2020, 1, 1)}), kalends::UsageError);
+  REQUIRE_THROWS_AS(kalends::TimeGrid::build({day(2020, 1, 1), day(2020, 1, 1)}), kalends::UsageError);
 }

@@ -293,6 +293,25 @@ class TimeZones(kt.TempDirTestCase):
         first = g.Open(os.path.join(out, "ndvi_%s.tif" % expected[0].strftime("%Y-%m-%dT%H%M")))
         self.assertEqual(first.GetMetadataItem("KALENDS_DATE"), expected[0].strftime("%Y-%m-%dT%H:%M:%SZ"))
         first = None
+        # The same hours one record per file: the file at local midnight has no time of day of its
+        # own, but moves with the others (it had kept the zone's clock: hour 24 before hour 22).
+        hours = [0, 1, 2, 22, 23, 24, 25]
+        folder = os.path.join(self.tmp, "hourly-files")
+        os.makedirs(folder)
+        for h in hours:
+            write_time_axis_netcdf(os.path.join(folder, "tas_h%03d.nc" % h), [h],
+                                   "hours since 2019-03-01 00:00:00 -06:00", rng.uniform(0.2, 0.6, (1, 3, 4)))
+        out = os.path.join(self.tmp, "hourly-files-fill")
+        done = kt.run_kalends(["-q", "fill", 'NETCDF:"%s":ndvi' % os.path.join(folder, "*.nc"), "--out", out,
+                               "--lambda", "1"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        utc = [(dt.datetime(2019, 3, 1, tzinfo=zone) + dt.timedelta(hours=h)).astimezone(dt.timezone.utc) for h in hours]
+        self.assertEqual(sorted(os.path.basename(p) for p in glob.glob(os.path.join(out, "ndvi_*.tif"))),
+                         sorted("ndvi_%s.tif" % t.strftime("%Y-%m-%dT%H%M") for t in utc))
+        for h, t in zip(hours, utc):
+            ds = g.Open(os.path.join(out, "ndvi_%s.tif" % t.strftime("%Y-%m-%dT%H%M")))
+            self.assertIn("tas_h%03d.nc" % h, ds.GetMetadataItem("KALENDS_SOURCE"))
+            ds = None
         daily = os.path.join(self.tmp, "daily.nc")
         write_time_axis_netcdf(daily, [0, 16, 32, 48], "days since 2000-01-01 00:00:00 +05:00",
                                rng.uniform(0.2, 0.6, (4, 3, 4)))
