@@ -164,11 +164,8 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
     const int previous = k > 0 ? all[k - 1].index : std::max(0, peak - P);
     const int next = k + 1 < all.size() ? all[k + 1].index : std::min(3 * P - 1, peak + P);
     double left_base = x[peak], right_base = x[peak];
-    int left_low = peak, right_low = peak;
-    for (int j = previous; j < peak; ++j)
-      if (x[j] < left_base) left_base = x[j], left_low = j;
-    for (int j = peak + 1; j <= next; ++j)
-      if (x[j] < right_base) right_base = x[j], right_low = j;
+    for (int j = previous; j < peak; ++j) left_base = std::min(left_base, x[j]);
+    for (int j = peak + 1; j <= next; ++j) right_base = std::min(right_base, x[j]);
     const double left_threshold = left_base + options.threshold_share * (x[peak] - left_base);
     const double right_threshold = right_base + options.threshold_share * (x[peak] - right_base);
     double start = previous, end = next;
@@ -186,11 +183,14 @@ CycleDescriptors describe_cycle(std::span<const double> padded, const PeriodDays
     double integral = 0;
     for (int j = int(std::ceil(start)); j <= int(std::floor(end)); ++j)
       integral += std::max(0.0, x[j] - base) * days.length(j);
-    // An edge whose crossing or base lies among the stand-ins (the record starts or ends
-    // within the season, or a neighbouring year has no data) is unknown: left empty, and
-    // counted, rather than taken from another season's values.
-    const bool start_known = !stand_in[std::size_t(left_low)] && !any_stand_in(int(std::floor(start)), peak);
-    const bool end_known = !stand_in[std::size_t(right_low)] && !any_stand_in(peak, int(std::ceil(end)));
+    // An edge whose crossing lies among the stand-ins (the record starts or ends within the
+    // season, or a neighbouring year has no data) is unknown: left empty, and counted, rather
+    // than taken from another season's values. A base among them is kept: the lowest value
+    // beyond the record's end moves the crossing little (a helper: the same late-October end
+    // whether a February stand-in dipped 0.01 below the last January or not), and leaving it
+    // out had emptied every last year's end.
+    const bool start_known = !any_stand_in(int(std::floor(start)), peak);
+    const bool end_known = !any_stand_in(peak, int(std::ceil(end)));
     SeasonTiming& t = d.season[s];
     t.start_doy = start_known ? days.day_of_year(start - P) : NAN;
     t.end_doy = end_known ? days.day_of_year(end - P) : NAN;
