@@ -631,6 +631,33 @@ class SeasonsAcrossTheRecordsEdges(kt.TempDirTestCase):
         self.assertIn("the 2015 cycle layer leaves the season start of 2 pixels empty", done.stderr)
         self.assertNotIn("2016 cycle layer", done.stderr)
 
+    def test_a_season_inside_the_record_keeps_its_edges_whatever_lies_beyond(self):
+        # A July season on a stack of whole years (ending on 31 December): its end in October is
+        # inside the record, though the lowest value after it (the base) lies in the January
+        # after the last composite. A first version of the rule above had emptied every last
+        # year's end for that (a helper's 100 of 100 pixels). Invented 8-day composites with
+        # noise; each year's start and end against the numpy crossing of the noise-free curve.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "inside")
+
+        def july(doy, rng):
+            return 0.45 + 0.25 * np.cos(2 * np.pi * (doy - 190) / 365) + rng.normal(0, 0.003, (3, 4))
+
+        dates = [dt.date(y, 1, 1) + dt.timedelta(days=d) for y in (2019, 2020, 2021) for d in range(0, 365, 8)]
+        write_dated_ndvi(folder, dates, 5, july)
+        out = os.path.join(self.tmp, "inside-out")
+        done = kt.run_kalends(["seasons", os.path.join(folder, "*.tif"), "--out", out, "--period", "8d"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("leaves the season", done.stderr)
+        # cos crosses its half-amplitude a quarter year either side of day 190.
+        for year in (2019, 2020, 2021):
+            ds = g.Open(os.path.join(out, "ndvi_cycle_%d.tif" % year))
+            bands = {ds.GetRasterBand(b).GetDescription(): ds.GetRasterBand(b).ReadAsArray() for b in range(1, 19)}
+            ds = None
+            self.assertLess(np.abs(bands["season1_start_doy"] - (190 - 365 / 4)).max(), 6, year)
+            self.assertLess(np.abs(bands["season1_end_doy"] - (190 + 365 / 4)).max(), 6, year)
+            self.assertTrue(np.isfinite(bands["season1_integral"]).all(), year)
+
 
 class CompareYearsOnFewPeriods(kt.TempDirTestCase):
     def test_a_year_of_one_month_is_listed_but_not_ranked(self):
