@@ -76,7 +76,8 @@ PlanReport plan_job(const RunOptions& options, int shards);
 
 /// What is done, stale or failed, from the state database, without running anything.
 struct StepStatus {
-  std::string id, kind, state;  // done, stale, failed, never run, interrupted, running
+  std::string id, kind, state;  // done, stale, failed, never run, interrupted, running; refused
+                                // (id "program": a newer kalends wrote the state)
   std::string detail;           // when it finished, or the failure, or what changed
   int outputs = 0;
 };

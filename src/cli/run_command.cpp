@@ -189,7 +189,7 @@ Action add_status_command(CLI::App& app, GlobalOptions& global) {
         fmt::print("{:<12} {:<11} {:<11} {}{}\n", s.id, s.kind, s.state, s.detail,
                    s.outputs ? fmt::format(" ({} file{} in its folder)", s.outputs, s.outputs == 1 ? "" : "s") : "");
       // For a monitoring script: 1 where the last run failed a step or was stopped in one.
-      if (s.state == "failed" || s.state == "interrupted") global.exit_code = 1;
+      if (s.state == "failed" || s.state == "interrupted" || s.state == "refused") global.exit_code = 1;
     }
   };
 }

@@ -430,6 +430,9 @@ class Runner {
       shard_ = options_.shard;
       base_ = plan_->shard_folder(shard_);
       report_.out_dir = base_;
+      // A shard keeps a state of its own: the job's, which a newer kalends may have written, is
+      // the main folder's (an older kalends had run every shard and was refused at --finalize).
+      detail::require_state_not_newer((fs::path(out_) / ".kalends" / "state.sqlite").string());
     }
     const fs::path state_dir = fs::path(base_) / ".kalends";
     std::optional<FolderLock> lock;
@@ -442,7 +445,7 @@ class Runner {
       if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
       lock.emplace(state_dir.string(), options_.wait_for_lock);
       require_room_for_state((state_dir / "state.sqlite").string());
-      db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string());
+      db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string(), false, !options_.dry_run);
     }
     memory_ = job_.memory;
     if (options_.skip_bad) leave_out_known_bad_inputs();
@@ -780,6 +783,13 @@ class Runner {
     for (const std::string& input : left_out)
       list.push_back({"input", "bad", "left out",
                       input + " (unchanged since the run that found it; a run without --skip-bad stops on it)"});
+    // A state a newer kalends wrote: this one's runs are refused, which "done" alone hid.
+    if (db_)
+      if (const std::string newest = db_->newest_program(); detail::newer_than_this_program(newest))
+        list.push_back({"program", "kalends", "refused",
+                        fmt::format("the state was written by kalends {}; this one ({}) refuses to run here: use {} "
+                                    "or later",
+                                    newest, KALENDS_VERSION, newest)});
     // A cluster run's shards, after the steps: what each still lacks before --finalize.
     if (detail::planned_shard_count(out_) > 0) {
       try {
@@ -1520,6 +1530,7 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   const Job job = detail::read_job(options.job_file);
   const std::string out = output_folder(options, job);
   if (out.empty()) throw UsageError(options.job_file, "no output folder: set 'out' in [job] or give --out");
+  detail::require_state_not_newer((fs::path(out) / ".kalends" / "state.sqlite").string());
   std::vector<std::string> left_out;
   PlanReport report;
   const detail::ShardPlan plan =

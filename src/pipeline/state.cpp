@@ -5,6 +5,7 @@
 
 #include <cerrno>
 #include <cstring>
+#include <filesystem>
 #include <unistd.h>
 
 #include <fmt/format.h>
@@ -100,7 +101,7 @@ std::string file_checksum(const std::string& path) {
   return fmt::format("{:016x}", h);
 }
 
-StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(path) {
+StateDatabase::StateDatabase(const std::string& path, bool read_only, bool record_program) : path_(path) {
   const int flags = read_only ? SQLITE_OPEN_READONLY : SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE;
   if (sqlite3_open_v2(path.c_str(), &db_, flags, nullptr) != SQLITE_OK) {
     const std::string message = db_ ? sqlite3_errmsg(db_) : "cannot open";
@@ -126,7 +127,7 @@ StateDatabase::StateDatabase(const std::string& path, bool read_only) : path_(pa
     exec("CREATE TABLE IF NOT EXISTS skipped (path TEXT PRIMARY KEY, reason TEXT, seen TEXT)");
     exec("CREATE TABLE IF NOT EXISTS step_inputs (step TEXT, path TEXT, checksum TEXT, PRIMARY KEY (step, path))");
     exec("CREATE TABLE IF NOT EXISTS step_parameters (step TEXT PRIMARY KEY, fingerprint TEXT, parameters TEXT)");
-    require_not_newer_program();
+    require_not_newer_program(record_program);
   }
 }
 
@@ -139,9 +140,9 @@ std::vector<int> version_numbers(const std::string& text) {
   while (at <= text.size()) {
     const std::size_t dot = text.find('.', at);
     const std::string part = text.substr(at, dot == std::string::npos ? std::string::npos : dot - at);
-    numbers.push_back(!part.empty() && part.find_first_not_of("0123456789") == std::string::npos && part.size() < 9
-                          ? std::stoi(part)
-                          : 0);
+    // The leading digits: "23-rc1" is 23.
+    const std::size_t digits = std::min<std::size_t>(part.find_first_not_of("0123456789"), part.size());
+    numbers.push_back(digits > 0 && digits < 9 ? std::stoi(part.substr(0, digits)) : 0);
     if (dot == std::string::npos) break;
     at = dot + 1;
   }
@@ -153,16 +154,38 @@ std::vector<int> version_numbers(const std::string& text) {
 // The newest kalends that has written this state. An older one would take every step for
 // changed ("program version changed"), rewrite the outputs with its older formulas and leave
 // the newer one's extra files beside them: refused, with the way out.
-void StateDatabase::require_not_newer_program() const {
-  exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
+std::string StateDatabase::newest_program() const {
+  Statement table(db_, "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'program'", path_);
+  if (!table.step()) return "";
   Statement read(db_, "SELECT value FROM program WHERE key = 'newest_version'", path_);
-  const std::string newest = read.step() ? read.text(0) : "";
-  if (!newest.empty() && version_numbers(newest) > version_numbers(KALENDS_VERSION))
-    throw OutputError(path_, fmt::format("written by kalends {}, which is newer than this one ({}): an older kalends "
-                                         "would redo every step with its older methods; run kalends {} or later, or "
-                                         "give another output folder (to go back to {} here anyway, remove this "
-                                         "file: every step then runs whole)",
-                                         newest, KALENDS_VERSION, newest, KALENDS_VERSION));
+  return read.step() ? read.text(0) : "";
+}
+
+bool newer_than_this_program(const std::string& version) {
+  return !version.empty() && version_numbers(version) > version_numbers(KALENDS_VERSION);
+}
+
+void require_not_newer(const std::string& state_path, const std::string& newest) {
+  if (newer_than_this_program(newest))
+    throw OutputError(state_path, fmt::format("written by kalends {}, which is newer than this one ({}): an older "
+                                              "kalends would redo every step with its older methods; run kalends {} or "
+                                              "later, or give another output folder (to go back to {} here anyway, "
+                                              "remove this file: every step then runs whole)",
+                                              newest, KALENDS_VERSION, newest, KALENDS_VERSION));
+}
+
+void require_state_not_newer(const std::string& state_path) {
+  std::error_code ec;
+  if (!std::filesystem::exists(state_path, ec)) return;
+  const StateDatabase db(state_path, true);
+  require_not_newer(state_path, db.newest_program());
+}
+
+void StateDatabase::require_not_newer_program(bool record) const {
+  const std::string newest = newest_program();
+  require_not_newer(path_, newest);
+  if (!record) return;
+  exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
   if (newest != KALENDS_VERSION) {
     Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES ('newest_version', ?)", path_);
     write.bind(1, std::string(KALENDS_VERSION));

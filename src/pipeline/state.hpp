@@ -32,7 +32,9 @@ class StateDatabase {
  public:
   /// Opens (creating) `path`. Every change is a transaction: a run killed at any moment leaves
   /// the database as it was before the change.
-  explicit StateDatabase(const std::string& path, bool read_only = false);
+  /// A writable one is refused (OutputError) where a newer kalends wrote it, and records this
+  /// program's version as the newest unless `record_program` is false (a dry run).
+  explicit StateDatabase(const std::string& path, bool read_only = false, bool record_program = true);
   ~StateDatabase();
   StateDatabase(const StateDatabase&) = delete;
   StateDatabase& operator=(const StateDatabase&) = delete;
@@ -49,14 +51,23 @@ class StateDatabase {
   void remember_skipped(const std::vector<std::string>& skipped);
   /// The inputs the last run left out as bad (--skip-bad): path and reason.
   std::vector<std::pair<std::string, std::string>> skipped() const;
+  /// The newest kalends version that has written this state ("" where none says).
+  std::string newest_program() const;
 
  private:
   void exec(const std::string& sql) const;
   void rollback() const;
-  void require_not_newer_program() const;
+  void require_not_newer_program(bool record) const;
+
   sqlite3* db_ = nullptr;
   std::string path_;
 };
+
+/// Whether `version` ("0.3.23") is newer than this program's.
+bool newer_than_this_program(const std::string& version);
+/// OutputError where the state at `state_path` (if there is one) was written by a newer kalends:
+/// an older one must not run on it (a shard's or a plan's run checks the main folder's).
+void require_state_not_newer(const std::string& state_path);
 
 /// FNV-1a 64-bit over a file's bytes, as 16 hex digits (a change detector, not a security hash).
 std::string file_checksum(const std::string& path);

@@ -2147,8 +2147,22 @@ class Faults(kt.TempDirTestCase):
             self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
         self.assertEqual({p: os.stat(p).st_mtime_ns for p in glob.glob(os.path.join(folder, "out", "fill", "*"))},
                          outputs)
-        # status still reads it.
-        self.assertEqual(kt.run_kalends(["status", job]).returncode, 0)
+        # A plan and a shard's run are refused too (a shard keeps a state of its own, which had
+        # let an older kalends run every shard, refused only at --finalize).
+        done = kt.run_kalends(["plan", job, "--shards", "1"])
+        self.assertEqual(done.returncode, 1, done.stdout + done.stderr)
+        self.assertIn("which is newer than this one", done.stderr)
+        # status still reads it, and says why runs are refused (exit 1, as for a failed step).
+        status = kt.run_kalends(["status", job])
+        self.assertEqual(status.returncode, 1, status.stdout + status.stderr)
+        self.assertRegex(status.stdout, r"(?m)^program +kalends +refused +the state was written by kalends %s"
+                         % re.escape(newer))
+        # A dry run on a state without the mark changes nothing, not even the mark.
+        with sqlite3.connect(state) as db:
+            db.execute("DROP TABLE program")
+        self.assertEqual(run(job, "--dry-run").returncode, 0)
+        with sqlite3.connect(state) as db:
+            self.assertEqual(db.execute("SELECT name FROM sqlite_master WHERE name = 'program'").fetchall(), [])
 
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
