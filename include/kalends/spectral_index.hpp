@@ -33,6 +33,10 @@ struct IndexRequest {
   std::string out_dir;
   std::string name;       // default "ndvi" / "evi"
   int threads = 0;
+  /// Only read the inputs' headers and pair their dates (red, near-infrared, blue, QA), then
+  /// return an empty summary; nothing is made (a job run checks its index steps so before the
+  /// first step, and --dry-run says which would fail).
+  bool check_only = false;
   Compression compression = Compression::deflate;
   std::string command_line;
   bool keep_unchanged = false;

@@ -31,6 +31,11 @@ const char* action_name(StepReport::Action a) {
   return "?";
 }
 
+// A dry run fails nothing: it says what the run would do.
+const char* action_name(StepReport::Action a, bool dry_run) {
+  return dry_run && a == StepReport::Action::failed ? "would fail" : action_name(a);
+}
+
 }  // namespace
 
 Action add_run_command(CLI::App& app, GlobalOptions& global) {
@@ -72,6 +77,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
         throw UsageError("--shard", "'" + o->shard + "': give K or K/N with 1 <= K <= N");
     }
     const bool json = o->log == "json";
+    const bool dry_run = o->run.dry_run;
     const bool terminal = !json && !global.quiet && isatty(STDERR_FILENO);
     RunEvents events;
     auto started = std::make_shared<std::chrono::steady_clock::time_point>();
@@ -101,7 +107,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const std::string& note : r.notes) notes += (notes.empty() ? "\"" : ", \"") + detail::json_escape(note) + "\"";
       fmt::print("{{\"event\": \"step_finished\", \"step\": \"{}\", \"action\": \"{}\", \"reason\": \"{}\", "
                  "\"seconds\": {:.3f}, \"written\": {}, \"unchanged\": {}, \"removed\": {}, \"notes\": [{}]{}}}\n",
-                 detail::json_escape(r.id), action_name(r.action), detail::json_escape(r.reason), r.seconds,
+                 detail::json_escape(r.id), action_name(r.action, dry_run), detail::json_escape(r.reason), r.seconds,
                  r.outputs_written, r.outputs_unchanged, r.outputs_removed, notes,
                  r.caution.empty() ? "" : ", \"caution\": \"" + detail::json_escape(r.caution) + "\"");
       std::fflush(stdout);
@@ -145,9 +151,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       for (const StepReport& r : report.steps) {
         // "up to date" says it all; it had been printed twice, as the action and the reason.
         const bool said = r.reason == action_name(r.action);
-        // A dry run fails nothing: it says what the run would do.
-        const char* action =
-            o->run.dry_run && r.action == StepReport::Action::failed ? "would fail" : action_name(r.action);
+        const char* action = action_name(r.action, o->run.dry_run);
         // No padding after the action when nothing follows it (a log line with trailing blanks).
         if (said || r.reason.empty()) fmt::print("  {:<12} {}", r.id, action);
         else fmt::print("  {:<12} {:<11} {}", r.id, action, r.reason);

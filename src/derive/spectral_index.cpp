@@ -184,6 +184,7 @@ IndexSummary run_index(const IndexRequest& request) {
   detail::require_out_apart_from(nir, request.out_dir, "near-infrared");
   if (blue) detail::require_out_apart_from(*blue, request.out_dir, "blue");
   if (qa) detail::require_out_apart_from(*qa, request.out_dir, "QA");
+  if (request.check_only) return {};
   std::error_code ec;
   const detail::OutputFolder output_folder(request.out_dir);  // removed again if the run fails before writing
 

@@ -231,11 +231,15 @@ std::string memory_key(const Job& job) {
 // job file's key. Anything else wrong (an input missing) is left to the step itself, in the
 // job's words; a damaged file is left out of the check, as --skip-bad would leave it out.
 std::vector<std::pair<std::string, UsageError>> check_budgets(
-    const Job& job, const std::string& base, std::int64_t memory, int threads, std::vector<std::string> excluded,
+    const Job& job, const std::string& base, std::int64_t memory, int threads,
+    const std::vector<std::string>& excluded_before,
     const std::function<bool(const JobStep&, std::optional<Window>& region)>& wanted,
     std::map<std::string, InputError>* bad_inputs = nullptr) {
   std::vector<std::pair<std::string, UsageError>> refused;
   for (const JobStep& step : job.steps) {
+    // Each step finds the bad files it reads itself: shared, only the first step that read one
+    // had been said to fail on it.
+    std::vector<std::string> excluded = excluded_before;
     const detail::StepKind* kind = detail::find_step_kind(step.kind);
     if (!kind || !kind->check_memory || step.inputs.empty() ||
         !std::all_of(step.inputs.begin(), step.inputs.end(), [&](const std::string& n) { return job.inputs.count(n) > 0; }))

@@ -1273,6 +1273,36 @@ class LateQAPartner(kt.TempDirTestCase):
         self.assertTrue(os.path.exists(last))
 
 
+    def test_a_dry_run_names_every_step_that_would_fail_on_a_missing_qa_file(self):
+        # Two fill steps read one input, and an index step reads red and near-infrared bands
+        # with their QA; one date's QA file is missing. The run fails all three; the dry run had
+        # said so of the first fill step alone (the second was checked without the file), and of
+        # no index step. Invented data.
+        folder = os.path.join(self.tmp, "dry-qa")
+        dates = ["2031-03-06", "2031-03-22", "2031-04-07", "2031-04-23"]
+        rng = np.random.default_rng(4)
+        for sub in ("ndvi", "qa", "bands"):
+            os.makedirs(os.path.join(folder, sub))
+        for date in dates:
+            kt.write_raster(os.path.join(folder, "ndvi", "ndvi_%s.tif" % date), rng.uniform(0.2, 0.6, (6, 6)).astype(np.float32))
+            kt.write_raster(os.path.join(folder, "bands", "red_%s.tif" % date), rng.uniform(0.02, 0.1, (6, 6)).astype(np.float32))
+            kt.write_raster(os.path.join(folder, "bands", "nir_%s.tif" % date), rng.uniform(0.2, 0.4, (6, 6)).astype(np.float32))
+            if date != dates[1]:
+                kt.write_raster(os.path.join(folder, "qa", "qa_%s.tif" % date), np.zeros((6, 6), np.uint16))
+        job = write_job(folder, '[job]\nout = "out"\n[inputs.ndvi]\nstack = "ndvi/ndvi_*.tif"\nqa = "qa/qa_*.tif"\n'
+                        'keep = "bit 0 == 0"\n[inputs.red]\nstack = "bands/red_*.tif"\nqa = "qa/qa_*.tif"\n'
+                        'keep = "bit 0 == 0"\n[inputs.nir]\nstack = "bands/nir_*.tif"\n'
+                        '[[step]]\nid = "one"\ndo = "fill"\ninput = "ndvi"\nlambda = 10\n'
+                        '[[step]]\nid = "two"\ndo = "fill"\ninput = "ndvi"\nmethod = "harmonic"\n'
+                        '[[step]]\nid = "index"\ndo = "index"\nred = "red"\nnir = "nir"\n')
+        for extra in (["--dry-run"], []):
+            done = run(job, *extra)
+            self.assertEqual(done.returncode, 2, (extra, done.stdout, done.stderr))
+            for step, file in (("one", "ndvi"), ("two", "ndvi"), ("index", "red")):
+                self.assertRegex(done.stdout, r"(?m)^  %s +%s +.*%s_%s\.tif: no QA layer for %s"
+                                 % (step, "would fail" if extra else "failed", file, dates[1], dates[1]))
+        self.assertFalse(glob.glob(os.path.join(folder, "out", "*", "*.tif")))
+
     def test_a_qa_partner_dated_by_its_band_is_found_when_it_comes(self):
         # The QA stack one multi-band file dated by band descriptions (a NetCDF time axis is
         # the same case): no date in a file name, so the check for the partner had found none,

@@ -55,6 +55,14 @@ StepKind index_step_kind() {
     return o.count("red") && o.count("nir") ? std::string() : std::string("an 'index' step needs 'red' and 'nir'");
   };
   kind.check_values = [](const StepContext& c) { check_index_options(index_request(c)); };
+  // Before the first step runs (and in --dry-run): a band file without its partner or its QA
+  // fails the step then, not hours into the night (a dry run had said "would run").
+  kind.check_memory = [](const StepContext& c) {
+    IndexRequest r = index_request(c);
+    r.out_dir = c.folder;
+    r.check_only = true;
+    run_index(r);
+  };
   kind.run = [](const StepContext& c) {
     const IndexSummary s = run_index(index_request(c));
     StepOutcome outcome{s.outputs_written, s.outputs_unchanged, "", s.notes};
