@@ -1542,15 +1542,24 @@ PlanReport plan_job(const RunOptions& options, int shards) {
   // A budget too small for one block of a split step (its first shard's rows), or of a step
   // left whole for --finalize (a tile set's fill): found here, not by every array task nor at
   // the finalize after them.
+  std::map<std::string, InputError> bad_inputs;
   if (const auto refused = check_budgets(job, plan.shard_folder(1), parse_memory_size(job.memory), plan.threads,
                                          left_out, [&](const JobStep& step, std::optional<Window>& region) {
                                            const detail::PlannedStep* planned = plan.step(step.id);
                                            if (!planned) return false;
                                            if (planned->split) region = plan.window(planned->root, 1);
                                            return true;
-                                         });
+                                         }, &bad_inputs);
       !refused.empty())
     throw refused.front().second;
+  // A composite a step cannot use (no QA file for its date): every shard would fail on it, as
+  // `run --dry-run` says; --skip-bad plans without it (the plan had been written, and each
+  // array task failed).
+  if (!options.skip_bad)
+    for (const JobStep& step : job.steps)  // the first in the job's order
+      if (const auto bad = bad_inputs.find(step.id); bad != bad_inputs.end())
+        throw InputError(bad->second.where(), bad->second.reason() +
+                                                  fmt::format(" (step '{}'; give --skip-bad to plan without it)", step.id));
   std::error_code ec;
   fs::create_directories(fs::path(out) / ".kalends", ec);
   if (ec) throw OutputError(out, "cannot create: " + ec.message());

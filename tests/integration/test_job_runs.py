@@ -1302,6 +1302,14 @@ class LateQAPartner(kt.TempDirTestCase):
                 self.assertRegex(done.stdout, r"(?m)^  %s +%s +.*%s_%s\.tif: no QA layer for %s"
                                  % (step, "would fail" if extra else "failed", file, dates[1], dates[1]))
         self.assertFalse(glob.glob(os.path.join(folder, "out", "*", "*.tif")))
+        # A cluster plan refuses it too (every array task would fail on it), and plans without it
+        # with --skip-bad.
+        done = kt.run_kalends(["plan", job, "--shards", "1"])
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn("ndvi_%s.tif: no QA layer for %s" % (dates[1], dates[1]), done.stderr)
+        self.assertIn("give --skip-bad to plan without it", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(folder, "out", ".kalends", "plan.tsv")))
+        self.assertEqual(kt.run_kalends(["plan", job, "--shards", "1", "--skip-bad"]).returncode, 0)
 
     def test_a_qa_partner_dated_by_its_band_is_found_when_it_comes(self):
         # The QA stack one multi-band file dated by band descriptions (a NetCDF time axis is
