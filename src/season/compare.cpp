@@ -426,12 +426,14 @@ CompareSummary run_compare(const CompareRequest& request) {
                       summary.partial_periods.size() > 5 ? ", ..." : "",
                       summary.partial_periods.size() == 1 ? "its" : "their",
                       summary.partial_periods.size() == 1 ? "y would" : "ies would");
-  md += "\n## Years\n\n| year | periods | mean anomaly | share below -1 sd | share above +1 sd |\n|---|---|---|---|---|\n";
+  md += "\n## Years\n\n| year | periods | pixel-periods | mean anomaly | share below -1 sd | share above +1 sd |\n"
+        "|---|---|---|---|---|---|\n";
   auto number_or_dash = [](double v, const char* format) {
     return std::isfinite(v) ? fmt::format(fmt::runtime(format), v) : std::string("-");
   };
   for (const auto& [year, s] : per_year)
-    md += fmt::format("| {} | {} | {} | {} | {} |\n", year, s.periods,
+    md += fmt::format("| {}{} | {} | {} | {} | {} | {} |\n", year, 2 * s.periods >= most_periods ? "" : " (not ranked)",
+                      s.periods, s.defined,
                       number_or_dash(s.count && !one_year ? s.sum / double(s.count) : NAN, "{:+.4f}"),
                       number_or_dash(s.defined ? 100.0 * double(s.below) / s.defined : NAN, "{:.1f} %"),
                       number_or_dash(s.defined ? 100.0 * double(s.above) / s.defined : NAN, "{:.1f} %"));

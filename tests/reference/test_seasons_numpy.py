@@ -697,7 +697,7 @@ class CompareYearsOnFewPeriods(kt.TempDirTestCase):
         self.assertNotEqual(report["year_most_above"], 2022)
         self.assertIn("not ranked for the year most beyond 1 sd: 2022 (1 of 12 periods)", done.stderr)
         with open(os.path.join(out, "compare.md")) as f:
-            self.assertIn("| 2022 | 1 |", f.read())
+            self.assertIn("| 2022 (not ranked) | 1 | %d |" % years[2022]["pixel_periods"], f.read())
 
 
 class CompareOnPartOfAPeriod(kt.TempDirTestCase):
