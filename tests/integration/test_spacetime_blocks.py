@@ -160,6 +160,23 @@ class SubsetIsAWindowOfTheWhole(kt.TempDirTestCase):
                                                  gt_whole[3] + row * gt_whole[5], 0, gt_whole[5]])
 
 
+    def test_a_shards_short_last_strip_equals_the_whole_run_exactly(self):
+        # A cluster shard takes full-width strips of 256 rows; the last may be shorter (24 rows of
+        # a 280-row grid). Its blocks had been judged as if a tile high, and the strip cut into
+        # tile-wide columns where the whole run takes one full-width strip: the sd differed by
+        # up to 0.02 (a helper's 300 x 300 job, plan --shards 2). The same block, the same values.
+        stack = os.path.join(self.tmp, "strip")
+        kt.make_synthetic_stack(stack, 300, 280, "--dates", "12")
+        pattern = os.path.join(stack, "ndvi_*.tif")
+        whole, part = os.path.join(self.tmp, "strip-whole"), os.path.join(self.tmp, "strip-part")
+        kt.run_fill_ok(self, [pattern, "--out", whole, "--method", "spacetime", "--fft-wisdom", "none"])
+        kt.run_fill_ok(self, [pattern, "--out", part, "--method", "spacetime", "--fft-wisdom", "none",
+                              "--subset", "0,256,300,24"])
+        for name in kt.final_outputs(part):
+            a, b = kt.read_output(os.path.join(whole, name)), kt.read_output(os.path.join(part, name))
+            for band in ("value", "sd", "flag"):
+                np.testing.assert_array_equal(a[band][256:280], b[band], err_msg=name + " " + band)
+
     def test_a_subsets_budget_is_that_of_its_own_window(self):
         # A subset's blocks are no larger than the subset and its halo; the budget named for it
         # had been that of a whole tile of the raster (414 MiB against the 199 that run, for
