@@ -1,4 +1,5 @@
 #include "fill/harmonic.hpp"
+#include "io/json_text.hpp"
 
 #include <Eigen/Dense>
 #include <fmt/format.h>
@@ -22,14 +23,13 @@ HarmonicMethod::HarmonicMethod(const MethodOptions& options) : options_(options)
 }
 
 MethodParameters HarmonicMethod::parameters() const {
-  char reject[32];
-  std::snprintf(reject, sizeof reject, "%g", options_.reject_below);
+  // The numbers as given, whole: the gaps had been cut to whole days (40.7 recorded as 40).
   return {{"harmonics", std::to_string(options_.harmonics)},
           {"trend", options_.trend ? "yes" : "no"},
-          {"reject_below", reject},
+          {"reject_below", detail::shortest_number(options_.reject_below)},
           {"period_days", "365.25"},
-          {"max_gap_days", std::to_string(int(options_.max_gap_days))},
-          {"max_extrapolation_days", std::to_string(int(options_.max_extrapolation_days))}};
+          {"max_gap_days", detail::shortest_number(options_.max_gap_days)},
+          {"max_extrapolation_days", detail::shortest_number(options_.max_extrapolation_days)}};
 }
 
 std::vector<double> HarmonicMethod::design(std::span<const double> days) const {

@@ -1,4 +1,5 @@
 #include "fill/spacetime.hpp"
+#include "io/json_text.hpp"
 
 #include "engine/parallel.hpp"
 #include "fill/analogue.hpp"
@@ -58,7 +59,7 @@ class WindowSums {
   std::vector<double> table_;
 };
 
-std::string number(double v) { return fmt::format("{:g}", v); }
+std::string number(double v) { return detail::shortest_number(v); }
 std::string number_or_auto(const std::optional<double>& v) { return v ? number(*v) : "auto (GCV)"; }
 
 

@@ -1,4 +1,5 @@
 #include "fill/whittaker.hpp"
+#include "io/json_text.hpp"
 
 #include <fmt/format.h>
 
@@ -16,11 +17,7 @@ namespace kalends {
 
 namespace {
 
-std::string number(double v) {
-  char text[32];
-  std::snprintf(text, sizeof text, "%g", v);
-  return text;
-}
+std::string number(double v) { return detail::shortest_number(v); }
 
 // An observation whose final robustness weight is below this is reported as rejected.
 constexpr double rejection_weight = 0.5;

@@ -45,6 +45,9 @@ inline std::string json_escape(const std::string& text) {
 /// A number, or null where it is not finite (JSON has no NaN). The shortest text that reads back
 /// as the same double: scores can be checked to any tolerance, and a choice given back exactly.
 inline std::string json_number(double v) { return std::isfinite(v) ? fmt::format("{}", v) : "null"; }
+/// The shortest text that reads back as the same double, for the parameters a file records:
+/// six digits (%g) had recorded --lambda 123.456789012 as 123.457, which did not reproduce it.
+inline std::string shortest_number(double v) { return fmt::format("{}", v); }
 
 /// {"key": value, ...} of a method's parameters: a value that is a number as a JSON number (it
 /// had been text, "0.05"), any other ("auto", "0.01,1e+06", "upper") as a string.

@@ -325,6 +325,32 @@ class OutputsAgainstGdal(kt.TempDirTestCase):
             self.assertLess(kt.rel_diff(smooth["value"][finite, row, col], z[finite]), 1e-5)
 
 
+class RecordedParameters(kt.TempDirTestCase):
+    def test_parameters_are_recorded_whole(self):
+        # Six digits (%g) had recorded --lambda 123.456789012 as 123.457, and harmonic had cut
+        # its gap limits to whole days (40.7 as 40): a fill re-run from its record was another
+        # fill. Each number now reads back (Python's float) as the one given. Invented stack.
+        stack = os.path.join(self.tmp, "stack")
+        kt.make_synthetic_stack(stack, 12, 10)
+        pattern = os.path.join(stack, "ndvi_*.tif")
+        cases = (("whittaker", {"lambda": "123.456789012", "max_gap_days": "20.5"}, ["--max-gap", "20.5"]),
+                 ("harmonic", {"reject_below": "2.123456789", "max_gap_days": "20.5",
+                               "max_extrapolation_days": "40.7"},
+                  ["--reject-below", "2.123456789", "--max-gap", "20.5", "--max-extrapolation", "40.7"]),
+                 ("spacetime", {"space_smoothing": "1.6870239755710472"}, ["--space-smoothing", "1.6870239755710472"]))
+        for method, want, extra in cases:
+            out = os.path.join(self.tmp, method)
+            args = [pattern, "--out", out, "--method", method] + extra
+            if method == "whittaker":
+                args += ["--lambda", "123.456789012"]
+            kt.run_fill_ok(self, args)
+            first = sorted(glob.glob(os.path.join(out, "ndvi_*.tif")))[0]
+            recorded = dict(item.split("=", 1) for item in
+                            kt.gdal().Open(first).GetMetadataItem("KALENDS_PARAMETERS").split())
+            for key, given in want.items():
+                self.assertEqual(float(recorded[key]), float(given), (method, key, recorded[key]))
+
+
 class QaMask(kt.TempDirTestCase):
     """A QA stack with bit fields; --keep 'bits0-1 in 0,1' removes QA 2 and 3."""
 
