@@ -811,6 +811,8 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
       std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
 
   std::string json = "{\n";
+  // The version that made it (its rasters also record the command line).
+  json += fmt::format("  \"kalends_version\": \"{}\",\n", KALENDS_VERSION);
   json += fmt::format("  \"method\": \"{}\",\n  \"parameters\": {},\n", method->name(),
                       detail::json_parameters(method->parameters()));
   json += fmt::format("  \"input\": \"{}\",\n", detail::json_escape(request.input));

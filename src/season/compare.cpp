@@ -336,6 +336,7 @@ CompareSummary run_compare(const CompareRequest& request) {
   summary.median_rmse = r.quantiles[2];
   summary.median_explained = e.quantiles[2];
   std::string json = "{\n";
+  json += fmt::format("  \"kalends_version\": \"{}\",\n", KALENDS_VERSION);
   json += fmt::format("  \"layers\": \"{}\",\n  \"width\": {},\n  \"height\": {},\n", name, width, height);
   json += fmt::format("  \"synoptic_years\": {},\n  \"stale_years_left_out\": [{}],\n",
                       summary.synoptic_years.empty() ? "null" : "\"" + summary.synoptic_years + "\"",

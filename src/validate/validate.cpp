@@ -638,6 +638,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
 
   // Reports.
   std::string json = "{\n";
+  json += fmt::format("  \"kalends_version\": \"{}\",\n", KALENDS_VERSION);
   json += fmt::format("  \"input\": \"{}\",\n  \"seed\": {},\n  \"withhold\": {},\n", detail::json_escape(request.input),
                       request.seed, detail::json_number(request.withhold));
   if (request.subset)

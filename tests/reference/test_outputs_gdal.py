@@ -16,6 +16,7 @@ Run: /usr/bin/python3 -m unittest -v tests/reference/test_outputs_gdal.py
 
 import datetime
 import glob
+import json
 import os
 import sys
 import unittest
@@ -349,6 +350,10 @@ class RecordedParameters(kt.TempDirTestCase):
                             kt.gdal().Open(first).GetMetadataItem("KALENDS_PARAMETERS").split())
             for key, given in want.items():
                 self.assertEqual(float(recorded[key]), float(given), (method, key, recorded[key]))
+            # The summary names the version that made it (it had named none).
+            version = kt.run_kalends(["--version"]).stdout.split()[-1]
+            with open(os.path.join(out, "fill-summary.json")) as f:
+                self.assertEqual(json.load(f)["kalends_version"], version)
 
 
 class QaMask(kt.TempDirTestCase):
