@@ -85,10 +85,12 @@ void add_method_options(CLI::App* sub, MethodOptions& m, MethodOptionTexts& t) {
                   "without timing")
       ->capture_default_str();
   sub->add_option("--max-gap", m.max_gap_days,
-                  "Leave gaps between observations longer than this many days unfilled; 0 = no limit")
+                  "Whittaker and harmonic methods: leave gaps between observations longer than this many "
+                  "days unfilled; 0 = no limit")
       ->capture_default_str();
   sub->add_option("--max-extrapolation", m.max_extrapolation_days,
-                  "Fill at most this many days before the first or after the last observation; -1 = no limit")
+                  "Whittaker and harmonic methods: fill at most this many days before the first or after "
+                  "the last observation; -1 = no limit")
       ->capture_default_str();
   sub->add_option("--never-observed", t.never_observed,
                   "Pixels with no observation on any date: fill (spacetime fills them from their "
