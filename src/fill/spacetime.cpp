@@ -543,7 +543,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
         variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));
-      out.sd[o] = float(std::sqrt(variance));
+      // A variance of exactly 0 claims a certainty no fill has: it comes only from a block with
+      // nothing to estimate a spread from (one observed cell in all: a helper's every filled
+      // value had sd 0). Unknown, as whittaker says of a series too short.
+      out.sd[o] = variance > 0 || weight[i] > 0 ? float(std::sqrt(variance)) : NAN;
     }
   }
 }

@@ -59,5 +59,29 @@ class RobustSpacetime(kt.TempDirTestCase):
         self.assertLess(wrongly, 0.001, (wrongly, rejected[clean].sum(), clean.sum()))
 
 
+class NothingToEstimateASpreadFrom(kt.TempDirTestCase):
+    def test_one_observed_cell_gives_values_without_an_sd(self):
+        # One observed cell in the whole stack: every other cell is filled with its value, and
+        # no spread can be estimated. The sd had been 0 everywhere, a certainty no fill has; it
+        # is NaN (unknown), with flag 2, as whittaker gives a series too short. Invented data.
+        folder = os.path.join(self.tmp, "one-cell")
+        os.makedirs(folder)
+        for k in range(6):
+            values = np.full((8, 9), np.nan, np.float32)
+            if k == 2:
+                values[4, 5] = 0.42
+            kt.write_raster(os.path.join(folder, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
+                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
+        out = os.path.join(self.tmp, "one-cell-out")
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--method", "spacetime"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for path in sorted(glob.glob(os.path.join(out, "ndvi_*.tif"))):
+            value, sd, flag = kt.gdal().Open(path).ReadAsArray()
+            filled = flag == 2
+            self.assertTrue(filled.any())
+            np.testing.assert_allclose(value[filled], 0.42, atol=1e-6)
+            self.assertTrue(np.isnan(sd[filled]).all(), path)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
