@@ -1,10 +1,13 @@
 #include "kalends/stack.hpp"
 
+#include <fnmatch.h>
 #include <glob.h>
 #include <fcntl.h>
 #include <sys/file.h>
 #include <sys/stat.h>
 #include <unistd.h>
+#include <cpl_string.h>
+#include <cpl_vsi.h>
 #include <ogr_spatialref.h>
 
 #include <algorithm>
@@ -38,7 +41,29 @@ int note_glob_failure(const char* path, int error) {
 }
 }  // namespace
 
+// A pattern inside GDAL's virtual file systems (/vsizip/z.zip/ndvi_*.tif, /vsitar/...): its
+// last part matched against the entries GDAL lists there (the shell's glob sees no such folder
+// and had said it did not exist). The folder part must be a plain path.
+std::optional<std::vector<std::string>> expand_virtual_glob(const std::string& pattern) {
+  if (pattern.rfind("/vsi", 0) != 0) return std::nullopt;
+  const auto slash = pattern.find_last_of('/');
+  const std::string folder = pattern.substr(0, slash), name = pattern.substr(slash + 1);
+  if (has_glob_characters(folder))
+    throw InputError(pattern, "inside " + folder.substr(0, folder.find('/', 1) + 1) +
+                                  " only the file name may hold a pattern; give the folder without wildcards");
+  start_gdal();
+  char** entries = VSIReadDir(folder.c_str());
+  std::vector<std::string> paths;
+  for (int i = 0; entries && entries[i]; ++i)
+    if (::fnmatch(name.c_str(), entries[i], FNM_PERIOD) == 0) paths.push_back(folder + "/" + entries[i]);
+  CSLDestroy(entries);
+  if (paths.empty()) throw InputError(pattern, "no file matches this pattern (listed inside " + folder + ")");
+  std::sort(paths.begin(), paths.end());
+  return paths;
+}
+
 std::vector<std::string> expand_glob(const std::string& pattern) {
+  if (auto virtual_paths = expand_virtual_glob(pattern)) return *virtual_paths;
   glob_t result{};
   glob_failure.clear();
   const int status = ::glob(pattern.c_str(), GLOB_ERR, note_glob_failure, &result);

@@ -227,6 +227,15 @@ Job read_job(const std::string& path) {
       input.name = std::string(name_key.str());
       for (auto&& [key, value] : *t) {
         const std::string k(key.str());
+        // A job reads each input file to know what changed since the last run; GDAL's virtual
+        // file systems (a stack inside a zip) have no files it can read so.
+        if (k == "stack" || k == "qa") {
+          const std::string file = detail::file_in_connection(path_text(path, k, value));
+          if (file.rfind("/vsi", 0) == 0)
+            fail(path, value.source(), "'" + k + "' inside " + file.substr(0, file.find('/', 1) + 1) +
+                                           ": a job checks each input file for changes, which it cannot do there; "
+                                           "unpack the files into a folder (the commands read such patterns)");
+        }
         if (k == "stack") {
           input.stack = resolve(job.folder, path_text(path, k, value));
           input.stack_line = int(value.source().begin.line);

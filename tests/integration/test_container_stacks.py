@@ -323,5 +323,48 @@ class TimeZones(kt.TempDirTestCase):
                           for d in (0, 16, 32, 48)])
 
 
+class ZippedStack(kt.TempDirTestCase):
+    def test_a_pattern_inside_a_zip_reads_as_the_files_unpacked(self):
+        # '/vsizip/stack.zip/ndvi_*.tif': the pattern had been matched against local folders
+        # ("the folder /vsizip/stack.zip does not exist"). Its entries are now listed through
+        # GDAL, and the fill equals that of the same files unpacked. A job refuses such an input
+        # at its line (it checks each input file for changes). Invented data.
+        import zipfile
+        rng = np.random.default_rng(6)
+        plain = os.path.join(self.tmp, "plain")
+        os.makedirs(plain)
+        archive = os.path.join(self.tmp, "stack.zip")
+        with zipfile.ZipFile(archive, "w") as z:
+            for k in range(6):
+                name = "ndvi_2031-%02d-01.tif" % (k + 1)
+                values = rng.uniform(0.2, 0.6, (5, 7)).astype(np.float32)
+                values[rng.random(values.shape) < 0.3] = np.nan
+                kt.write_raster(os.path.join(plain, name), values)
+                z.write(os.path.join(plain, name), name)
+            z.writestr("readme.txt", "not a raster")
+        outs = {}
+        for label, pattern in (("plain", os.path.join(plain, "ndvi_*.tif")), ("zip", "/vsizip/%s/ndvi_*.tif" % archive)):
+            outs[label] = os.path.join(self.tmp, "out-" + label)
+            done = kt.run_kalends(["-q", "fill", pattern, "--out", outs[label], "--lambda", "10"])
+            self.assertEqual(done.returncode, 0, done.stderr)
+        names = sorted(os.path.basename(p) for p in glob.glob(os.path.join(outs["plain"], "ndvi_*.tif")))
+        self.assertEqual(len(names), 6)
+        self.assertEqual(names, sorted(os.path.basename(p) for p in glob.glob(os.path.join(outs["zip"], "ndvi_*.tif"))))
+        for name in names:
+            a = kt.gdal().Open(os.path.join(outs["plain"], name)).ReadAsArray()
+            b = kt.gdal().Open(os.path.join(outs["zip"], name)).ReadAsArray()
+            np.testing.assert_array_equal(a, b)
+        done = kt.run_kalends(["inspect", "/vsizip/%s/evi_*.tif" % archive])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("no file matches this pattern (listed inside /vsizip/%s)" % archive, done.stderr)
+        job = os.path.join(self.tmp, "zip.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "/vsizip/%s/ndvi_*.tif"\n'
+                    '[[step]]\ndo = "fill"\ninput = "ndvi"\n' % archive)
+        done = kt.run_kalends(["run", job])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("zip.toml:4: 'stack' inside /vsizip/: a job checks each input file", done.stderr)
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
