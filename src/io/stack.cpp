@@ -360,6 +360,17 @@ TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_inde
 // An alpha band is no date: it is the others' mask (gdal_session.hpp, has_own_mask).
 std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const std::string& path,
                                                   std::vector<CfZone>* zones = nullptr) {
+  // A NetCDF variable with a dimension besides time and the grid (depth, ensemble member):
+  // GDAL gives a band per combination, and their dates repeat ("duplicate date" had been all
+  // that was said).
+  if (const char* extra = dataset.GetMetadataItem("NETCDF_DIM_EXTRA"); extra && std::strchr(extra, ',')) {
+    std::string dims;
+    for (const char* c = extra; *c; ++c)
+      if (*c == ',') dims += ", ";
+      else if (*c != '{' && *c != '}') dims += *c;
+    throw InputError(path, "has the dimensions " + dims + " besides its grid: kalends reads one (time); take one "
+                           "value of the others first (gdal_translate with -b, or a NetCDF subset)");
+  }
   std::vector<std::pair<int, TimePoint>> dates;
   for (int b = 1; b <= dataset.GetRasterCount(); ++b)
     if (dataset.GetRasterBand(b)->GetColorInterpretation() != GCI_AlphaBand) {
@@ -776,6 +787,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         } catch (const InputError& e) {
           bands.clear();
           band_zones.clear();
+          if (e.reason().starts_with("has the dimensions")) throw;
           if (e.reason().starts_with("metadata ") || e.reason().starts_with("time axis")) metadata_problem = e.reason();
         }
         if (const auto impossible = impossible_date_in_name(file); bands.empty() && impossible)
@@ -854,7 +866,7 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
     GDALDatasetUniquePtr dataset;
     try {
       dataset = detail::open_raster(input);
-    } catch (const InputError&) {
+    } catch (const InputError& opening) {
       // A damaged file is named so, not read as "no such variable" below.
       detail::require_not_cut_short(detail::file_in_connection(input));
       if (const std::vector<std::string> variables = detail::subdatasets_of(input); !variables.empty())
@@ -865,6 +877,11 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       if (const auto parts = detail::connection_parts(input)) {
         if (!fs::exists(parts->files)) throw InputError(parts->files, "no such file");
         const std::vector<std::string> variables = detail::subdatasets_of(parts->files);
+        // The variable is there, but GDAL cannot read it as a raster (a Zarr array of three or
+        // more dimensions): GDAL's reason, not "no such variable" above a list that names it.
+        if (std::find(variables.begin(), variables.end(), input) != variables.end())
+          throw InputError(input, "GDAL cannot read this variable as a raster (" + opening.reason() +
+                                      "); write it out one date per file, or as NetCDF with a time axis");
         if (!variables.empty())
           throw InputError(input, "the file has no such variable; its variables: " +
                                       fmt::format("{}", fmt::join(variables, ", ")));

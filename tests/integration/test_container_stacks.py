@@ -323,6 +323,43 @@ class TimeZones(kt.TempDirTestCase):
                           for d in (0, 16, 32, 48)])
 
 
+class VariablesOfMoreDimensions(kt.TempDirTestCase):
+    def test_a_fourth_dimension_and_a_zarr_array_are_named_for_what_they_are(self):
+        # A NetCDF variable of (time, depth, lat, lon) had been refused as "duplicate date" (GDAL
+        # gives a band per time and depth), and a 3-D Zarr array, which GDAL opens only with the
+        # extra dimension's index, as "no such variable" above a list naming it. Invented data.
+        g = kt.gdal()
+        path = os.path.join(self.tmp, "depths.nc")
+        ds = g.GetDriverByName("netCDF").CreateMultiDimensional(path, [], ["FORMAT=NC4"])
+        root = ds.GetRootGroup()
+        dims = []
+        for name, size, values, units in (("time", 3, [0, 16, 32], "days since 2031-01-01"),
+                                          ("depth", 2, [1, 2], "m"),
+                                          ("lat", 4, [64.995 - 0.01 * k for k in range(4)], "degrees_north"),
+                                          ("lon", 5, [-147.995 + 0.01 * k for k in range(5)], "degrees_east")):
+            dim = root.CreateDimension(name, "TEMPORAL" if name == "time" else None, None, size)
+            axis = root.CreateMDArray(name, [dim], g.ExtendedDataType.Create(g.GDT_Float64))
+            axis.Write(np.array(values, float))
+            axis.CreateAttribute("units", [], g.ExtendedDataType.CreateString()).Write(units)
+            dims.append(dim)
+        root.CreateMDArray("ndvi", dims, g.ExtendedDataType.Create(g.GDT_Float32)).Write(
+            np.full((3, 2, 4, 5), 0.5, np.float32))
+        del ds, root, dims, dim, axis  # the file is written once nothing holds it
+        done = kt.run_kalends(["inspect", 'NETCDF:"%s":ndvi' % path])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("has the dimensions time, depth besides its grid", done.stderr)
+        if g.GetDriverByName("Zarr") is None:
+            self.skipTest("no Zarr driver in this GDAL")
+        three = os.path.join(self.tmp, "three.nc")
+        write_time_axis_netcdf(three, [0, 16, 32], "days since 2031-01-01", np.full((3, 4, 5), 0.5))
+        store = os.path.join(self.tmp, "three.zarr")
+        g.MultiDimTranslate(store, three, format="Zarr")
+        done = kt.run_kalends(["inspect", 'ZARR:"%s":/ndvi' % store])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("GDAL cannot read this variable as a raster", done.stderr)
+        self.assertNotIn("no such variable", done.stderr)
+
+
 class ZippedStack(kt.TempDirTestCase):
     def test_a_pattern_inside_a_zip_reads_as_the_files_unpacked(self):
         # '/vsizip/stack.zip/ndvi_*.tif': the pattern had been matched against local folders
