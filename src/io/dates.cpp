@@ -325,10 +325,16 @@ int cf_zone_offset_seconds(std::string_view units) {
 TimePoint cf_time(double value, std::string_view units, std::string_view calendar_name) {
   std::string calendar(calendar_name);
   for (char& c : calendar) c = char(std::tolower(static_cast<unsigned char>(c)));
+  // "gregorian " as some writers leave it.
+  while (!calendar.empty() && calendar.back() == ' ') calendar.pop_back();
+  while (!calendar.empty() && calendar.front() == ' ') calendar.erase(calendar.begin());
   const bool mixed = calendar.empty() || calendar == "standard" || calendar == "gregorian";
   if (!mixed && calendar != "proleptic_gregorian")
     throw std::invalid_argument("calendar '" + std::string(calendar_name) +
-                                "' is not supported (standard, gregorian, proleptic_gregorian)");
+                                "' is not supported (standard, gregorian, proleptic_gregorian): its days are not "
+                                "the civil calendar's that survey dates are written in; give each date a file "
+                                "named with its date (the name's date is read first), or convert the time axis "
+                                "to the standard calendar");
   // UDUNITS reads units in any case ("HOURS SINCE ..."; from memory).
   std::string lower(units);
   for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
