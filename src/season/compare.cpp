@@ -463,7 +463,11 @@ CompareSummary run_compare(const CompareRequest& request) {
   if (std::any_of(top.begin(), top.end(), [](const Anomaly& a) { return std::isfinite(a.observed); }))
     md += "\nObserved share: of the days behind the period's value, those with an observation (fill flag 0); a "
           "large anomaly on a small share rests on a few composites (or on filled values).\n";
-  md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more).\n",
+  md += fmt::format("\nClass raster: `{}` (0: under 25 % of the variance is year-specific, 1: 25-50 %, 2: 50-75 %, 3: 75 % or more). "
+                    "It is a share of each pixel's own variance: a season that comes weeks earlier or later from year to "
+                    "year can still be class 0, where the seasonal swing dwarfs the shift, and a flat pixel of noise is "
+                    "class 3, where there is nothing but year-to-year change; read it with the synoptic RMSE above, in "
+                    "the input's unit.\n",
                     fs::path(summary.class_path).filename().string());
   summary.markdown_path = (fs::path(request.out_dir) / "compare.md").string();
   ++(detail::write_text_atomically(summary.markdown_path, md) ? summary.files_written : summary.files_unchanged);
