@@ -119,6 +119,7 @@ struct Harmonic {
 /// plan is made once, for one series length; `analyse` may then be called from any thread.
 class HarmonicAnalysis {
  public:
+  /// std::invalid_argument where `length` is below 4 (a calendar has at least 12 periods).
   explicit HarmonicAnalysis(int length);
   ~HarmonicAnalysis();
   HarmonicAnalysis(const HarmonicAnalysis&) = delete;

@@ -65,7 +65,8 @@ class Stack {
   /// `input` is a glob of single-date files (dates from their names), or one multi-band
   /// raster (dates from band descriptions, CF time metadata or GRIB valid times).
   /// Every file is opened and checked here, before any work: unreadable files, mismatched
-  /// grids, unparsable or duplicate dates raise InputError naming the file.
+  /// grids, unparsable or duplicate dates raise InputError naming the file (UsageError naming
+  /// the pattern where its files lie on grids none of which most of them share).
   static Stack open(const std::string& input, const ValueRules& rules = {});
 
   const std::string& input() const noexcept { return input_; }
