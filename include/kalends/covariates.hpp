@@ -28,11 +28,11 @@ struct SeriesFile {
   /// A calendar period of a fill that no composite of any year stands for (the stack's
   /// off-season: KALENDS_PERIOD_DAYS_COVERED 0); its values are empty by design.
   bool outside_season = false;
+  /// dated: the band of the file that holds the date (a multi-band stack: a band per date).
+  int band = 1;
   /// A calendar period of a fill: the days of it some composite stands for
   /// (KALENDS_PERIOD_DAYS_COVERED; -1 where the file does not say).
   int days_covered = -1;
-  /// dated: the band of the file that holds the date (a multi-band stack: a band per date).
-  int band = 1;
 };
 
 struct CovariateSeries {
