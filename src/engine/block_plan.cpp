@@ -43,6 +43,7 @@ Window BlockPlan::smallest_read_window(int width, int height, int halo, int tile
 BlockPlan BlockPlan::make(int raster_width, int raster_height, int halo, std::int64_t max_read_pixels, int tile,
                           const std::optional<Window>& region, int max_tile_rows) {
   if (tile <= 0) throw UsageError("tile", fmt::format("{} px: a block's side must be at least 1 px", tile));
+  if (halo < 0) throw UsageError("--halo", fmt::format("{} px: a halo cannot be negative", halo));
   BlockPlan plan;
   plan.tile = tile;
   if (raster_width <= 0 || raster_height <= 0) return plan;

@@ -169,6 +169,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     }
   }
 
+  std::int64_t observed_cells = 0;
+  for (const int count : observations) observed_cells += count;
+  const bool spread_known = observed_cells >= 2;
+
   // Pixels with no observation within the halo on any date: nothing to fill them from. A
   // summed-area table of observation counts makes the window test O(1) per pixel.
   const int radius = options_.spacetime_halo;
@@ -551,10 +555,10 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       else if (wanted[i] && !spatial_variance.empty() && !std::isnan(spatial_variance[i]))
         variance = std::max(variance, spatial_variance[i]);
       out.fitted[o] = float(std::clamp(fit, lo, hi));
-      // A variance of exactly 0 claims a certainty no fill has: it comes only from a block with
-      // nothing to estimate a spread from (one observed cell in all: a helper's every filled
-      // value had sd 0). Unknown, as whittaker says of a series too short.
-      out.sd[o] = variance > 0 || weight[i] > 0 ? float(std::sqrt(variance)) : NAN;
+      // A block with one observed cell in all has nothing to estimate a spread from: its
+      // filled values had sd 0, a certainty no fill has. Unknown, as whittaker says of a series
+      // too short. (A variance of 0 where the block's values are all equal stays 0.)
+      out.sd[o] = spread_known || weight[i] > 0 ? float(std::sqrt(variance)) : NAN;
     }
   }
 }

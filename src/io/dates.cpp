@@ -325,9 +325,9 @@ int cf_zone_offset_seconds(std::string_view units) {
 TimePoint cf_time(double value, std::string_view units, std::string_view calendar_name) {
   std::string calendar(calendar_name);
   for (char& c : calendar) c = char(std::tolower(static_cast<unsigned char>(c)));
-  // "gregorian " as some writers leave it.
-  while (!calendar.empty() && calendar.back() == ' ') calendar.pop_back();
-  while (!calendar.empty() && calendar.front() == ' ') calendar.erase(calendar.begin());
+  // "gregorian " as some writers leave it (blanks, tabs, line ends).
+  while (!calendar.empty() && std::isspace(static_cast<unsigned char>(calendar.back()))) calendar.pop_back();
+  while (!calendar.empty() && std::isspace(static_cast<unsigned char>(calendar.front()))) calendar.erase(calendar.begin());
   const bool mixed = calendar.empty() || calendar == "standard" || calendar == "gregorian";
   if (!mixed && calendar != "proleptic_gregorian")
     throw std::invalid_argument("calendar '" + std::string(calendar_name) +

@@ -46,12 +46,22 @@ int note_glob_failure(const char* path, int error) {
 // and had said it did not exist). The folder part must be a plain path.
 std::optional<std::vector<std::string>> expand_virtual_glob(const std::string& pattern) {
   if (pattern.rfind("/vsi", 0) != 0) return std::nullopt;
+  // /vsigzip/ wraps one local file: the pattern is the local files'.
+  if (pattern.rfind("/vsigzip/", 0) == 0) {
+    std::vector<std::string> paths = expand_glob(pattern.substr(9));
+    for (std::string& path : paths) path = "/vsigzip/" + path;
+    return paths;
+  }
   const auto slash = pattern.find_last_of('/');
   const std::string folder = pattern.substr(0, slash), name = pattern.substr(slash + 1);
   if (has_glob_characters(folder))
     throw InputError(pattern, "inside " + folder.substr(0, folder.find('/', 1) + 1) +
                                   " only the file name may hold a pattern; give the folder without wildcards");
   start_gdal();
+  VSIStatBufL status;
+  if (VSIStatL(folder.c_str(), &status) != 0)
+    throw InputError(pattern, "no file matches this pattern: " + folder + " cannot be read (no such archive, or not one "
+                              "GDAL opens?)");
   char** entries = VSIReadDir(folder.c_str());
   std::vector<std::string> paths;
   for (int i = 0; entries && entries[i]; ++i)

@@ -899,6 +899,10 @@ class Runner {
     std::set<std::string> reasons;  // one per split step, "" where it is done
     std::unique_ptr<detail::StateDatabase> db;
     if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
+    // A strip a newer kalends computed is not this one's to stitch (or to call done).
+    if (db)
+      if (const std::string newest = db->newest_program(); detail::newer_than_this_program(newest))
+        return fmt::format("written by kalends {}, newer than this one ({})", newest, KALENDS_VERSION);
     // A shard still at work: the step it marked as running is being run, not interrupted (an
     // operator told "interrupted" may kill or resubmit a live task).
     const std::string pid = running_pid((fs::path(plan_->shard_folder(k)) / ".kalends").string());

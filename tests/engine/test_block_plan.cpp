@@ -242,6 +242,7 @@ TEST_CASE("values a program using the library sets by hand are checked, not divi
   // an N-day period of 0 days had stopped the process (division by zero), unsorted dates had
   // made a time grid with a negative step, and a layer index past the stack read out of bounds.
   REQUIRE_THROWS_AS(BlockPlan::make(100, 100, 0, 1 << 20, 0), kalends::UsageError);
+  REQUIRE_THROWS_AS(BlockPlan::make(100, 100, -40, 1 << 30, 64), kalends::UsageError);
   kalends::CalendarPeriod zero;
   zero.kind = kalends::CalendarPeriod::Kind::days;
   zero.days = 0;

@@ -391,6 +391,19 @@ class ZippedStack(kt.TempDirTestCase):
             a = kt.gdal().Open(os.path.join(outs["plain"], name)).ReadAsArray()
             b = kt.gdal().Open(os.path.join(outs["zip"], name)).ReadAsArray()
             np.testing.assert_array_equal(a, b)
+        # Gzipped files one by one: /vsigzip/ wraps each, so the pattern is the local files'.
+        import gzip
+        zipped = os.path.join(self.tmp, "gz")
+        os.makedirs(zipped)
+        for name in names:
+            with open(os.path.join(plain, name), "rb") as f, gzip.open(os.path.join(zipped, name + ".gz"), "wb") as g:
+                g.write(f.read())
+        done = kt.run_kalends(["inspect", "/vsigzip/%s/ndvi_*.tif.gz" % zipped])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("6 dates of 'ndvi'", done.stdout)
+        done = kt.run_kalends(["inspect", "/vsizip/%s/ndvi_*.tif" % os.path.join(self.tmp, "none.zip")])
+        self.assertEqual(done.returncode, 2)
+        self.assertIn("cannot be read (no such archive", done.stderr)
         done = kt.run_kalends(["inspect", "/vsizip/%s/evi_*.tif" % archive])
         self.assertEqual(done.returncode, 2)
         self.assertIn("no file matches this pattern (listed inside /vsizip/%s)" % archive, done.stderr)

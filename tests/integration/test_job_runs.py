@@ -2202,6 +2202,25 @@ class Faults(kt.TempDirTestCase):
         with sqlite3.connect(state) as db:
             self.assertEqual(db.execute("SELECT name FROM sqlite_master WHERE name = 'program'").fetchall(), [])
 
+    def test_a_shard_a_newer_kalends_ran_is_not_stitched(self):
+        # A shard keeps a state of its own: one a newer kalends wrote had been called done by
+        # status and stitched by --finalize, mixing the versions' strips.
+        import sqlite3
+        folder = os.path.join(self.tmp, "newer-shard")
+        job = small_dated_job(folder)
+        self.assertEqual(kt.run_kalends(["plan", job, "--shards", "1"]).returncode, 0)
+        self.assertEqual(run(job, "--shard", "1").returncode, 0)
+        shard_state = glob.glob(os.path.join(folder, "out", ".kalends", "shards", "*", ".kalends", "state.sqlite"))
+        self.assertEqual(len(shard_state), 1)
+        with sqlite3.connect(shard_state[0]) as db:
+            db.execute("UPDATE program SET value = '99.0.0' WHERE key = 'newest_version'")
+        status = kt.run_kalends(["status", job])
+        self.assertIn("written by kalends 99.0.0, newer than this one", status.stdout)
+        done = run(job, "--finalize")
+        self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
+        self.assertIn("written by kalends 99.0.0", done.stderr)
+        self.assertFalse(glob.glob(os.path.join(folder, "out", "fill", "*.tif")))
+
     def test_a_second_run_on_the_same_folder_is_refused(self):
         out = os.path.join(self.tmp, "locked")
         first = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out],

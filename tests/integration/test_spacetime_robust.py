@@ -140,6 +140,22 @@ class NothingToEstimateASpreadFrom(kt.TempDirTestCase):
             self.assertTrue(filled.any())
             np.testing.assert_allclose(value[filled], 0.42, atol=1e-6)
             self.assertTrue(np.isnan(sd[filled]).all(), path)
+        # With more to go on, every filled value keeps an sd, also where the field is constant
+        # (a first version of the rule had left 241 of 1457 filled cells of such a stack NaN).
+        constant = os.path.join(self.tmp, "constant")
+        os.makedirs(constant)
+        rng = np.random.default_rng(9)
+        for k in range(8):
+            values = np.full((12, 12), 0.5, np.float32)
+            values[rng.random(values.shape) < 0.3] = np.nan
+            kt.write_raster(os.path.join(constant, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
+                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
+        out = os.path.join(self.tmp, "constant-out")
+        done = kt.run_kalends(["-q", "fill", os.path.join(constant, "*.tif"), "--out", out, "--method", "spacetime"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        for path in sorted(glob.glob(os.path.join(out, "ndvi_*.tif"))):
+            value, sd, flag = kt.gdal().Open(path).ReadAsArray()
+            self.assertTrue(np.isfinite(sd[flag == 2]).all(), path)
 
 
 if __name__ == "__main__":

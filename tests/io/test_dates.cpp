@@ -128,6 +128,7 @@ TEST_CASE("the standard calendar is Julian before 1582-10-15; zones and capitals
   CHECK(cf_time(1, "Days Since 2000-01-01T00:00:00").label() == "2000-01-02");
   // A calendar name with blanks around it, as some writers leave it.
   CHECK(cf_time(1, "days since 2000-01-01", "gregorian ").label() == "2000-01-02");
+  CHECK(cf_time(1, "days since 2000-01-01", "\tstandard\n").label() == "2000-01-02");
   // The zone's offset, for an axis with times of day, which is moved to UTC.
   CHECK(cf_zone_offset_seconds("hours since 2019-03-01 00:00:00 -06:00") == -6 * 3600);
   CHECK(cf_zone_offset_seconds("hours since 2001-01-01 12:00 +0530") == 5 * 3600 + 30 * 60);
