@@ -1,5 +1,4 @@
 #include "fill/harmonic.hpp"
-#include "io/json_text.hpp"
 
 #include <Eigen/Dense>
 #include <fmt/format.h>
@@ -7,6 +6,7 @@
 #include <numbers>
 
 #include "fill/gap_limit.hpp"
+#include "io/json_text.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends {

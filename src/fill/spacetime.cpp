@@ -1,9 +1,9 @@
 #include "fill/spacetime.hpp"
-#include "io/json_text.hpp"
 
 #include "engine/parallel.hpp"
 #include "fill/analogue.hpp"
 #include "fill/pls_gcv.hpp"
+#include "io/json_text.hpp"
 
 #include <algorithm>
 #include <cmath>

@@ -1,5 +1,4 @@
 #include "fill/whittaker.hpp"
-#include "io/json_text.hpp"
 
 #include <fmt/format.h>
 
@@ -11,6 +10,7 @@
 #include "fill/difference_noise.hpp"
 #include "fill/gap_limit.hpp"
 #include "fill/robust_weights.hpp"
+#include "io/json_text.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends {
