@@ -366,13 +366,15 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   };
   auto residual_at = [&](std::size_t p, int s) { return y[p * n_slots + s] - model_at(p, s); };
   if (options_.robust) {
-    // Each residual against the median of its pixel's two nearest residuals on either side (a
-    // running median: one drop beside a value does not make that value stand out; on residuals,
-    // not values, so that a season's curvature is not taken for noise). A value its own series
-    // does not single out is no outlier, however far the smooth model misses it: at a sharp edge
-    // between fields the model misses a pixel by about as much on every date, and clean values
-    // had been rejected and rewritten (a helper: values equal to all their pixel's others moved
-    // by up to 0.14).
+    // Each residual against the median of its pixel's three nearest residuals on either side (a
+    // running median: a run of up to three cloudy composites does not move it; on residuals, not
+    // values, so that a season's curvature is not taken for noise). A value within three of its
+    // sd (1.4826 MAD, common practice) of that median is usual for its pixel and no outlier,
+    // however far the smooth model misses it: at a sharp edge between fields the model misses a
+    // pixel by about as much on every date, and clean values had been rejected and rewritten (a
+    // helper: values equal to all their pixel's others moved by up to 0.14). Beyond that reach
+    // the bisquare on the model's residual decides, as before.
+    constexpr double usual_reach = bisquare_c;
     std::vector<double> own_deviation(cells, NAN);
     std::vector<double> deviations;
     std::vector<int> seen;
@@ -390,12 +392,12 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
         for (int s = 0; s < n_slots; ++s)
           if (base_weight[p * n_slots + s] > 0) seen.push_back(s);
         for (std::size_t k = 0; k < seen.size(); ++k) {
-          double around[4];
+          double around[6];
           int count = 0;
-          for (std::size_t j = k >= 2 ? k - 2 : 0; j < std::min(seen.size(), k + 3); ++j)
+          for (std::size_t j = k >= 3 ? k - 3 : 0; j < std::min(seen.size(), k + 4); ++j)
             if (j != k) around[count++] = residual_at(p, seen[j]);
           if (count < 2) continue;
-          for (int i = 1; i < count; ++i)  // at most four: insertion
+          for (int i = 1; i < count; ++i)  // at most six: insertion
             for (int j = i; j > 0 && around[j] < around[j - 1]; --j) std::swap(around[j], around[j - 1]);
           const double middle = count % 2 ? around[count / 2] : 0.5 * (around[count / 2 - 1] + around[count / 2]);
           const double e = residual_at(p, seen[k]) - middle;
@@ -416,7 +418,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
           if (!(base_weight[i] > 0)) continue;
           const double u = residual_at(p, s) / (bisquare_c * scale);
           const double e = own_deviation[i];
-          const bool usual_for_its_pixel = std::isfinite(e) && std::abs(e) <= bisquare_c * own_scale;
+          const bool usual_for_its_pixel = std::isfinite(e) && std::abs(e) <= usual_reach * own_scale;
           const double bw = usual_for_its_pixel ? 1.0 : std::abs(u) < 1 ? (1 - u * u) * (1 - u * u) : 0.0;
           weight[i] = base_weight[i] * bw;
           rejected[i] = bw == 0.0;

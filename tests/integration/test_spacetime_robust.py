@@ -2,14 +2,14 @@
 """`--method spacetime --robust`: bisquare reweighting rejects values that stand out (flag 1),
 not clean values the smooth model happens to miss.
 A value is rejected only where its residual stands out from its pixel's nearest residuals too
-(a running median), so that a season's curvature is not taken for noise.
+(a running median of three on either side), so that a season's curvature is not taken for noise.
 
 Invented fields of a fictional district (mechanics only): 6 x 6 px fields, each with its own
 level, steady through a year of 16-day composites, so that the field edges are sharp in space,
 with noise of sd 0.005 and, on 1 % of the observed cells, a drop of 0.4 (an undetected cloud).
 The smooth model misses the field edges; its residual scale is set by the many cells it fits
 well, so clean edge cells had been rejected and rewritten. Now a value is rejected only where its
-own series singles it out as well (its residual against the median of its pixel's two nearest
+own series singles it out as well (its residual against the median of its pixel's three nearest
 residuals on either side, scaled by 1.4826 MAD over the block). With Gaussian noise a bisquare
 with c = 4.685 on 1.4826 MAD leaves a clean value out with probability 2 P(Z > 4.685) = 2.8e-6
 (scipy.stats.norm), so almost none should go.
@@ -62,24 +62,32 @@ class RobustSpacetime(kt.TempDirTestCase):
 
     def test_outliers_on_a_strong_season_are_still_rejected(self):
         # The same fields with a season of half-amplitude 0.25, monthly for three years, and
-        # outliers of four kinds: single drops of 0.4, two cloudy composites in a row, drops on a
-        # series' first or last date, spikes of +0.3. A first version of the rule above compared
-        # the values, not the residuals, with their neighbours: the season's curvature then passed
-        # for noise, and it kept 43 % of two-in-a-row drops and half the spikes (a verifier).
+        # outliers of five kinds: single drops of 0.4, two and three cloudy composites in a row,
+        # drops on a series' first or last date, spikes of +0.3. A first version of the rule above
+        # compared the values, not the residuals, with their neighbours: the season's curvature
+        # then passed for noise, and it kept 43 % of two-in-a-row drops and half the spikes (a
+        # verifier); a second took the median of two neighbours on either side, which a run of
+        # three moves, and kept half of such runs.
         rng = np.random.default_rng(21)
         height, width = 36, 36
         level = np.kron(rng.uniform(0.2, 0.5, (6, 6)), np.ones((6, 6)))
         amplitude = np.kron(rng.uniform(0.15, 0.25, (6, 6)), np.ones((6, 6)))
         dates = [dt.date(2031 + k // 12, k % 12 + 1, 1) for k in range(36)]
         truth = np.array([level + amplitude * np.cos(2 * np.pi * (d.timetuple().tm_yday - 200) / 365)
-                          for d in dates]) + rng.normal(0, 0.01, (len(dates), height, width))
+                          for d in dates]) + rng.normal(0, 0.03, (len(dates), height, width))
         observed = rng.random(truth.shape) > 0.2
-        kinds = {name: np.zeros(truth.shape, bool) for name in ("drop", "pair", "end", "spike")}
+        kinds = {name: np.zeros(truth.shape, bool) for name in ("drop", "pair", "triple", "end", "spike")}
         values = truth.copy()
         for r in range(height):
             for c in range(width):
                 roll = rng.random()
-                if roll > 0.16:
+                if roll > 0.2:
+                    continue
+                if roll > 0.16:  # three cloudy composites in a row (a wet season)
+                    k = rng.integers(4, len(dates) - 6)
+                    observed[k:k + 3, r, c] = True
+                    kinds["triple"][k:k + 3, r, c] = True
+                    values[k:k + 3, r, c] -= 0.4
                     continue
                 seen = np.nonzero(observed[:, r, c])[0]
                 if roll < 0.04:
