@@ -936,10 +936,17 @@ class Runner {
       const std::string what = shard_lacks(k);
       if (what.empty()) continue;
       problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
-      if (!what.starts_with("running")) list += (list.empty() ? "" : ",") + std::to_string(k);
+      if (!what.starts_with("running") && !what.starts_with("written by")) list += (list.empty() ? "" : ",") + std::to_string(k);
       ++missing;
     }
     if (problems.empty()) return true;
+    // A shard a newer kalends ran: running it again with this one is refused too.
+    if (list.empty() && problems.find("written by kalends") != std::string::npos) {
+      report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; finalize with that kalends, or "
+                                  "remove the shard's .kalends/state.sqlite and run it again with this one",
+                                  missing, plan_->shards, problems);
+      return false;
+    }
     report_.error =
         list.empty()
             ? fmt::format("finalize refused: {} of {} shards not done: {}; wait for them to end, then --finalize",

@@ -2219,6 +2219,8 @@ class Faults(kt.TempDirTestCase):
         done = run(job, "--finalize")
         self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
         self.assertIn("written by kalends 99.0.0", done.stderr)
+        # Not "run them again": this kalends would refuse that too.
+        self.assertIn("finalize with that kalends, or remove the shard's .kalends/state.sqlite", done.stderr)
         self.assertFalse(glob.glob(os.path.join(folder, "out", "fill", "*.tif")))
 
     def test_a_second_run_on_the_same_folder_is_refused(self):
