@@ -28,6 +28,20 @@ sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."
 import kalends_testlib as kt  # noqa: E402
 
 
+def fill_spacetime(test, folder, dates, planes, *options):
+    """Writes `planes` (NaN: no observation) as composites of `dates` in `folder`, fills them
+    with spacetime and `options`; returns the (date, band, row, column) array of the outputs."""
+    os.makedirs(folder)
+    for date, values in zip(dates, planes):
+        kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), np.asarray(values, np.float32),
+                        geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
+    out = folder + "-out"
+    done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--method", "spacetime"]
+                          + list(options))
+    test.assertEqual(done.returncode, 0, done.stderr)
+    return np.array([kt.gdal().Open(path).ReadAsArray() for path in sorted(glob.glob(os.path.join(out, "ndvi_*.tif")))])
+
+
 class RobustSpacetime(kt.TempDirTestCase):
     def test_drops_are_rejected_and_clean_edges_are_not(self):
         from scipy.stats import norm
@@ -38,20 +52,10 @@ class RobustSpacetime(kt.TempDirTestCase):
         dates = [dt.date(2031, 1, 1) + dt.timedelta(days=16 * k) for k in range(23)]
         observed = rng.random((len(dates), height, width)) > 0.25
         cloud = observed & (rng.random(observed.shape) < 0.01)
-        folder = os.path.join(self.tmp, "fields")
-        os.makedirs(folder)
-        for k, date in enumerate(dates):
-            values = level + rng.normal(0, 0.005, (height, width)) - 0.4 * cloud[k]
-            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()),
-                            np.where(observed[k], values, np.nan).astype(np.float32),
-                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
-        out = os.path.join(self.tmp, "robust")
-        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--method", "spacetime",
-                               "--robust", "--threads", "2"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        flags = np.array([kt.gdal().Open(path).ReadAsArray()[2] for path in
-                          sorted(glob.glob(os.path.join(out, "ndvi_*.tif")))])
-        rejected = flags == 1
+        planes = [np.where(observed[k], level + rng.normal(0, 0.005, (height, width)) - 0.4 * cloud[k], np.nan)
+                  for k in range(len(dates))]
+        rejected = fill_spacetime(self, os.path.join(self.tmp, "fields"), dates, planes, "--robust",
+                                  "--threads", "2")[:, 2] == 1
         clean = observed & ~cloud
         caught = rejected[cloud].mean()
         wrongly = rejected[clean].mean()
@@ -107,18 +111,8 @@ class RobustSpacetime(kt.TempDirTestCase):
                     k = rng.choice(seen[2:-2])
                     kinds["spike"][k, r, c] = True
                     values[k, r, c] += 0.3
-        folder = os.path.join(self.tmp, "season")
-        os.makedirs(folder)
-        for k, date in enumerate(dates):
-            kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()),
-                            np.where(observed[k], values[k], np.nan).astype(np.float32),
-                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
-        out = os.path.join(self.tmp, "season-robust")
-        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--method", "spacetime",
-                               "--robust", "--threads", "2"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        rejected = np.array([kt.gdal().Open(path).ReadAsArray()[2] for path in
-                             sorted(glob.glob(os.path.join(out, "ndvi_*.tif")))]) == 1
+        rejected = fill_spacetime(self, os.path.join(self.tmp, "season"), dates, np.where(observed, values, np.nan),
+                                  "--robust", "--threads", "2")[:, 2] == 1
         for name, cells in kinds.items():
             self.assertGreater(cells.sum(), 20, name)
             self.assertGreater(rejected[cells].mean(), 0.9, (name, int(rejected[cells].sum()), int(cells.sum())))
@@ -131,39 +125,20 @@ class NothingToEstimateASpreadFrom(kt.TempDirTestCase):
         # One observed cell in the whole stack: every other cell is filled with its value, and
         # no spread can be estimated. The sd had been 0 everywhere, a certainty no fill has; it
         # is NaN (unknown), with flag 2, as whittaker gives a series too short. Invented data.
-        folder = os.path.join(self.tmp, "one-cell")
-        os.makedirs(folder)
-        for k in range(6):
-            values = np.full((8, 9), np.nan, np.float32)
-            if k == 2:
-                values[4, 5] = 0.42
-            kt.write_raster(os.path.join(folder, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
-                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
-        out = os.path.join(self.tmp, "one-cell-out")
-        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--method", "spacetime"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        for path in sorted(glob.glob(os.path.join(out, "ndvi_*.tif"))):
-            value, sd, flag = kt.gdal().Open(path).ReadAsArray()
+        months = [dt.date(2031, k + 1, 1) for k in range(8)]
+        planes = [np.full((8, 9), np.nan) for _ in range(6)]
+        planes[2][4, 5] = 0.42
+        for value, sd, flag in fill_spacetime(self, os.path.join(self.tmp, "one-cell"), months, planes):
             filled = flag == 2
             self.assertTrue(filled.any())
             np.testing.assert_allclose(value[filled], 0.42, atol=1e-6)
-            self.assertTrue(np.isnan(sd[filled]).all(), path)
+            self.assertTrue(np.isnan(sd[filled]).all())
         # With more to go on, every filled value keeps an sd, also where the field is constant
         # (a first version of the rule had left 241 of 1457 filled cells of such a stack NaN).
-        constant = os.path.join(self.tmp, "constant")
-        os.makedirs(constant)
         rng = np.random.default_rng(9)
-        for k in range(8):
-            values = np.full((12, 12), 0.5, np.float32)
-            values[rng.random(values.shape) < 0.3] = np.nan
-            kt.write_raster(os.path.join(constant, "ndvi_2031-%02d-01.tif" % (k + 1)), values,
-                            geotransform=(500000, 250, 0, 4000000, 0, -250), epsg=32736)
-        out = os.path.join(self.tmp, "constant-out")
-        done = kt.run_kalends(["-q", "fill", os.path.join(constant, "*.tif"), "--out", out, "--method", "spacetime"])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        for path in sorted(glob.glob(os.path.join(out, "ndvi_*.tif"))):
-            value, sd, flag = kt.gdal().Open(path).ReadAsArray()
-            self.assertTrue(np.isfinite(sd[flag == 2]).all(), path)
+        planes = [np.where(rng.random((12, 12)) < 0.3, np.nan, 0.5) for _ in range(8)]
+        for value, sd, flag in fill_spacetime(self, os.path.join(self.tmp, "constant"), months, planes):
+            self.assertTrue(np.isfinite(sd[flag == 2]).all())
 
 
 if __name__ == "__main__":
