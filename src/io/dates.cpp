@@ -310,15 +310,27 @@ int cut_zone(std::string_view& origin) {
   return sign * (hours * 3600 + minutes * 60);
 }
 
+// Where " since " stands in CF time units, in any case: UDUNITS reads units so ("HOURS SINCE
+// ..."; from memory).
+std::size_t since_in(std::string_view units) {
+  std::string lower(units);
+  for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
+  return lower.find(" since ");
+}
+
+// The origin after " since ", trailing blanks cut.
+std::string_view origin_after(std::string_view units, std::size_t since) {
+  std::string_view origin = units.substr(since + 7);
+  while (!origin.empty() && origin.back() == ' ') origin.remove_suffix(1);
+  return origin;
+}
+
 }  // namespace
 
 int cf_zone_offset_seconds(std::string_view units) {
-  std::string lower(units);
-  for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
-  const auto since = lower.find(" since ");
+  const std::size_t since = since_in(units);
   if (since == std::string::npos) return 0;
-  std::string_view origin = units.substr(since + 7);
-  while (!origin.empty() && origin.back() == ' ') origin.remove_suffix(1);
+  std::string_view origin = origin_after(units, since);
   return cut_zone(origin);
 }
 
@@ -335,10 +347,7 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
                                 "the civil calendar's that survey dates are written in; give each date a file "
                                 "named with its date (the name's date is read first), or convert the time axis "
                                 "to the standard calendar");
-  // UDUNITS reads units in any case ("HOURS SINCE ..."; from memory).
-  std::string lower(units);
-  for (char& c : lower) c = char(std::tolower(static_cast<unsigned char>(c)));
-  const auto since = lower.find(" since ");
+  const std::size_t since = since_in(units);
   if (since == std::string::npos)
     throw std::invalid_argument("time units '" + std::string(units) + "' lack 'since'");
   std::string unit(units.substr(0, since));
@@ -356,11 +365,11 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
     throw std::invalid_argument("time unit '" + unit +
                                 "' is not supported (days, hours, minutes or seconds; months and years are not fixed "
                                 "lengths of time)");
-  std::string_view origin_text = units.substr(since + 7);
-  while (!origin_text.empty() && origin_text.back() == ' ') origin_text.remove_suffix(1);
-  // "days since 2001-01-01 00:00:00 -06:00": times on the zone's own clock. They are kept so,
-  // not moved to UTC: a daily or monthly stamp at local midnight keeps its day (at +05:00 it had
-  // become the day before, and each month's value the month before's).
+  std::string_view origin_text = origin_after(units, since);
+  // "days since 2001-01-01 00:00:00 -06:00": the time on the zone's own clock. A daily or
+  // monthly stamp at local midnight keeps its day so (at +05:00 it had become the day before,
+  // and each month's value the month before's); the reader moves an axis with times of day to
+  // UTC (cf_zone_offset_seconds).
   cut_zone(origin_text);
   const auto origin = parse_iso_time(origin_text);
   if (!origin) throw std::invalid_argument("time origin in '" + std::string(units) + "' unreadable");
