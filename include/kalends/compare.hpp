@@ -33,4 +33,9 @@ struct CompareSummary {
 
 CompareSummary run_compare(const CompareRequest& request);
 
+/// What a user should know about a compare run's summaries (years left out or not ranked, a
+/// synoptic miss that cannot be had), one line each, as `kalends compare` and a job's compare
+/// step print them.
+std::vector<std::string> compare_notes(const CompareSummary& summary);
+
 }  // namespace kalends

@@ -1,9 +1,6 @@
 // kalends index, kalends seasons, kalends compare
 #include <fmt/format.h>
 
-#include <cmath>
-#include <fmt/ranges.h>
-
 #include <cstdio>
 
 #include "cli/commands.hpp"
@@ -134,23 +131,8 @@ Action add_compare_command(CLI::App& app, GlobalOptions& global) {
   return [r, &global] {
     r->command_line = global.command_line;
     const CompareSummary s = run_compare(*r);
-    if (!s.stale_years.empty())
-      std::fprintf(stderr, "note: %s: left out the anomaly files of %s, outside the synoptic's years (%s): "
-                           "they are not this synoptic's\n",
-                   r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.stale_years, ", ")).c_str(),
-                   s.synoptic_years.c_str());
-    if (std::isnan(s.median_rmse))
-      std::fprintf(stderr, "note: %s: no pixel has a synoptic miss: it needs values of one period in two years or "
-                           "more (a synoptic of one year is that year)\n",
-                   r->seasons_dir.c_str());
-    if (!s.partial_periods.empty())
-      std::fprintf(stderr, "note: %s: left out %zu year-period(s) resting on fewer days than in other years (first: "
-                           "%s): their anomalies would compare those days with a synoptic of more\n",
-                   r->seasons_dir.c_str(), s.partial_periods.size(), s.partial_periods.front().c_str());
-    if (!s.years_not_ranked.empty())
-      std::fprintf(stderr, "note: %s: not ranked for the year most beyond 1 sd: %s, with values in fewer than half the "
-                           "periods of the fullest year\n",
-                   r->seasons_dir.c_str(), fmt::format("{}", fmt::join(s.years_not_ranked, ", ")).c_str());
+    for (const std::string& note : compare_notes(s))
+      std::fprintf(stderr, "note: %s: %s\n", r->seasons_dir.c_str(), note.c_str());
     // With two years every standardised anomaly is +-0.71 ((n - 1) / sqrt(n)): "no year beyond
     // 1 sd" had read as "no unusual year".
     std::string years_line;

@@ -97,6 +97,26 @@ std::map<int, std::pair<double, std::string>> covered_days(const std::string& pa
 
 }  // namespace
 
+std::vector<std::string> compare_notes(const CompareSummary& s) {
+  std::vector<std::string> notes;
+  if (!s.stale_years.empty())
+    notes.push_back(fmt::format("left out the anomaly files of {}, outside the synoptic's years ({}): they are not "
+                                "this synoptic's",
+                                fmt::join(s.stale_years, ", "), s.synoptic_years));
+  if (std::isnan(s.median_rmse))
+    notes.push_back("no pixel has a synoptic miss: it needs values of one period in two years or more (a synoptic "
+                    "of one year is that year)");
+  if (!s.partial_periods.empty())
+    notes.push_back(fmt::format("left out {} year-period(s) resting on fewer days than in other years (first: {}): "
+                                "their anomalies would compare those days with a synoptic of more",
+                                s.partial_periods.size(), s.partial_periods.front()));
+  if (!s.years_not_ranked.empty())
+    notes.push_back(fmt::format("not ranked for the year most beyond 1 sd: {}, with values in fewer than half the "
+                                "periods of the fullest year",
+                                fmt::join(s.years_not_ranked, ", ")));
+  return notes;
+}
+
 CompareSummary run_compare(const CompareRequest& request) {
   detail::start_gdal();
   if (request.out_dir.empty()) throw UsageError("--out", "an output folder is required");

@@ -1,9 +1,6 @@
 // Step 'compare': where a synoptic layer misleads (kalends compare).
 #include <filesystem>
 
-#include <fmt/format.h>
-#include <fmt/ranges.h>
-
 #include "kalends/compare.hpp"
 #include "kalends/error.hpp"
 #include "pipeline/step_kind.hpp"
@@ -34,14 +31,7 @@ StepKind compare_step_kind() {
     r.name = c.text("name");  // the layer set, where the seasons folder holds several
     // Written and unchanged as the files say (every file had been counted as written).
     const CompareSummary s = run_compare(r);
-    std::vector<std::string> notes;
-    if (!s.years_not_ranked.empty())
-      notes.push_back("not ranked for the year most beyond 1 sd: " + fmt::format("{}", fmt::join(s.years_not_ranked, ", ")) +
-                      ", with values in fewer than half the periods of the fullest year");
-    if (!s.partial_periods.empty())
-      notes.push_back(fmt::format("left out {} year-period(s) resting on fewer days than in other years (first: {})",
-                                  s.partial_periods.size(), s.partial_periods.front()));
-    return StepOutcome{s.files_written, s.files_unchanged, "", notes};
+    return StepOutcome{s.files_written, s.files_unchanged, "", compare_notes(s)};
   };
   return kind;
 }
