@@ -149,6 +149,17 @@ def write_dated_ndvi(folder, dates, seed, values_on):
         kt.write_raster(os.path.join(folder, "ndvi_%s.tif" % date.isoformat()), values.astype(np.float32))
 
 
+def seasons_then_compare(test, folder):
+    """`kalends seasons` of the stack in `folder` (monthly), then `kalends compare` of its layers;
+    returns the two output folders and compare's completed process."""
+    seasons, out = folder + "-seasons", folder + "-compare"
+    done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
+    test.assertEqual(done.returncode, 0, done.stderr)
+    done = kt.run_kalends(["compare", seasons, "--out", out])
+    test.assertEqual(done.returncode, 0, done.stderr)
+    return seasons, out, done
+
+
 def month_means(dates, values):
     """Numpy reference: day-weighted mean of the composites overlapping each month.
     values: (dates, ...) -> dict (year, month) -> array."""
@@ -677,12 +688,7 @@ class CompareYearsOnFewPeriods(kt.TempDirTestCase):
             return 0.45 + 0.2 * np.cos(2 * np.pi * (doy - 200) / 365) + bump + rng.normal(0, 0.02, (5, 6))
 
         write_dated_ndvi(folder, dates, 21, values_on)
-        seasons = os.path.join(self.tmp, "few-seasons")
-        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        out = os.path.join(self.tmp, "few-compare")
-        done = kt.run_kalends(["compare", seasons, "--out", out])
-        self.assertEqual(done.returncode, 0, done.stderr)
+        seasons, out, done = seasons_then_compare(self, folder)
         with open(os.path.join(out, "compare.json")) as f:
             report = json.load(f)
         years = {y["year"]: y for y in report["years"]}
@@ -712,12 +718,7 @@ class CompareOnPartOfAPeriod(kt.TempDirTestCase):
         dates = [d for d in modis_dates(3, start=2015) if d >= dt.date(2015, 6, 10)]
         write_dated_ndvi(folder, dates, 3,
                          lambda doy, rng: 0.4 + 0.3 * np.sin(2 * np.pi * (doy - 80) / 365) + rng.normal(0, 0.005, (4, 5)))
-        seasons = os.path.join(self.tmp, "part-seasons")
-        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", seasons])
-        self.assertEqual(done.returncode, 0, done.stderr)
-        out = os.path.join(self.tmp, "part-compare")
-        done = kt.run_kalends(["compare", seasons, "--out", out])
-        self.assertEqual(done.returncode, 0, done.stderr)
+        seasons, out, done = seasons_then_compare(self, folder)
         self.assertIn("left out 1 year-period(s) resting on fewer days than in other years (first: 2015 ", done.stderr)
         with open(os.path.join(out, "compare.json")) as f:
             report = json.load(f)
