@@ -384,9 +384,10 @@ CompareSummary run_compare(const CompareRequest& request) {
   // season's, not the year's (a helper's one January had "most above +1 sd").
   int most_periods = 0;
   for (const auto& [year, s] : per_year) most_periods = std::max(most_periods, s.periods);
+  const auto ranked_year = [&](const YearStats& s) { return 2 * s.periods >= most_periods; };
   for (const auto& [year, s] : per_year) {
     const double mean = s.count && !one_year ? s.sum / double(s.count) : NAN;
-    const bool ranked = 2 * s.periods >= most_periods;
+    const bool ranked = ranked_year(s);
     json += fmt::format("{}\n    {{\"year\": {}, \"periods\": {}, \"pixel_periods\": {}, \"ranked\": {}, "
                         "\"mean_anomaly\": {}, \"share_below_minus_1_sd\": {}, \"share_above_1_sd\": {}}}",
                         first ? "" : ",", year, s.periods, s.defined, ranked ? "true" : "false", detail::json_number(mean),
@@ -453,7 +454,7 @@ CompareSummary run_compare(const CompareRequest& request) {
     return std::isfinite(v) ? fmt::format(fmt::runtime(format), v) : std::string("-");
   };
   for (const auto& [year, s] : per_year)
-    md += fmt::format("| {}{} | {} | {} | {} | {} | {} |\n", year, 2 * s.periods >= most_periods ? "" : " (not ranked)",
+    md += fmt::format("| {}{} | {} | {} | {} | {} | {} |\n", year, ranked_year(s) ? "" : " (not ranked)",
                       s.periods, s.defined,
                       number_or_dash(s.count && !one_year ? s.sum / double(s.count) : NAN, "{:+.4f}"),
                       number_or_dash(s.defined ? 100.0 * double(s.below) / s.defined : NAN, "{:.1f} %"),
