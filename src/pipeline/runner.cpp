@@ -808,13 +808,10 @@ class Runner {
           StepStatus s;
           s.id = fmt::format("{}/{}", k, plan_->shards);
           s.kind = "shard";
-          s.detail = shard_lacks(k);
-          // As a step's: a monitoring script reads "failed" and "interrupted" (exit 1).
-          s.state = s.detail.empty()                                   ? "done"
-                    : s.detail.starts_with("running")                  ? "running"
-                    : s.detail.find(" failed") != std::string::npos      ? "failed"
-                    : s.detail.find(" interrupted") != std::string::npos ? "interrupted"
-                                                                         : "not done";
+          const ShardCheck check = shard_lacks(k);
+          s.detail = check.detail;
+          // As a step's: a monitoring script reads "failed", "interrupted" and "refused" (exit 1).
+          s.state = check.state;
           list.push_back(s);
         }
       } catch (const UsageError& e) {
@@ -890,19 +887,25 @@ class Runner {
     }
   }
 
-  // What shard `k` lacks ("" when every split step is done and up to date).
-  std::string shard_lacks(int k) {
+  // What shard `k` lacks (detail "" and state "done" when every split step is done and up to
+  // date), with the state `kalends status` lists and finalize acts on.
+  struct ShardCheck {
+    std::string detail;
+    std::string state;  // done, running, refused (a newer kalends ran it), failed, interrupted, not done
+  };
+  ShardCheck shard_lacks(int k) {
     shard_ = k;
     fingerprints_.clear();
     const fs::path path = fs::path(plan_->shard_folder(k)) / ".kalends" / "state.sqlite";
     std::string what;
     std::set<std::string> reasons;  // one per split step, "" where it is done
+    bool failed = false, interrupted = false;
     std::unique_ptr<detail::StateDatabase> db;
     if (fs::exists(path)) db = std::make_unique<detail::StateDatabase>(path.string(), true);
     // A strip a newer kalends computed is not this one's to stitch (or to call done).
     if (db)
       if (const std::string newest = db->newest_program(); detail::newer_than_this_program(newest))
-        return fmt::format("written by kalends {}, newer than this one ({})", newest, KALENDS_VERSION);
+        return {fmt::format("written by kalends {}, newer than this one ({})", newest, KALENDS_VERSION), "refused"};
     // A shard still at work: the step it marked as running is being run, not interrupted (an
     // operator told "interrupted" may kill or resubmit a live task).
     const std::string pid = running_pid((fs::path(plan_->shard_folder(k)) / ".kalends").string());
@@ -911,8 +914,13 @@ class Runner {
       const auto record = db ? db->step(step.id) : std::nullopt;
       std::string why;
       if (!record) why = "never run";
-      else if (record->status == "failed") why = "failed" + (record->message.empty() ? "" : ": " + record->message);
-      else if (record->status == "running") why = pid.empty() ? "interrupted (a run stopped while running it)" : "being run";
+      else if (record->status == "failed") {
+        why = "failed" + (record->message.empty() ? "" : ": " + record->message);
+        failed = true;
+      } else if (record->status == "running") {
+        why = pid.empty() ? "interrupted (a run stopped while running it)" : "being run";
+        interrupted = interrupted || pid.empty();
+      }
       else if (record->fingerprint != fingerprint_of(step)) why = "stale: " + why_changed(*record, step, fingerprint_of(step));
       else if (!outputs_exist(*record, out_)) why = outputs_missing(*record, out_);
       if (!why.empty()) what += (what.empty() ? "" : ", ") + step.id + " " + why;
@@ -924,7 +932,8 @@ class Runner {
     if (!pid.empty()) what = "running (pid " + pid + ")" + (what.empty() ? "" : ": " + what);
     shard_ = 0;
     fingerprints_.clear();
-    return what;
+    const char* state = !pid.empty() ? "running" : failed ? "failed" : interrupted ? "interrupted" : what.empty() ? "done" : "not done";
+    return {what, state};
   }
 
   // Whether every shard holds every split step done and up to date; otherwise the error names
@@ -932,16 +941,18 @@ class Runner {
   bool shards_ready() {
     std::string problems, list;
     int missing = 0;
+    bool newer = false;
     for (int k = 1; k <= plan_->shards; ++k) {
-      const std::string what = shard_lacks(k);
-      if (what.empty()) continue;
-      problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, what);
-      if (!what.starts_with("running") && !what.starts_with("written by")) list += (list.empty() ? "" : ",") + std::to_string(k);
+      const ShardCheck check = shard_lacks(k);
+      if (check.state == "done") continue;
+      problems += fmt::format("{}{}/{} ({})", problems.empty() ? "" : "; ", k, plan_->shards, check.detail);
+      if (check.state != "running" && check.state != "refused") list += (list.empty() ? "" : ",") + std::to_string(k);
+      newer = newer || check.state == "refused";
       ++missing;
     }
     if (problems.empty()) return true;
     // A shard a newer kalends ran: running it again with this one is refused too.
-    if (list.empty() && problems.find("written by kalends") != std::string::npos) {
+    if (list.empty() && newer) {
       report_.error = fmt::format("finalize refused: {} of {} shards not done: {}; finalize with that kalends, or "
                                   "remove the shard's .kalends/state.sqlite and run it again with this one",
                                   missing, plan_->shards, problems);

@@ -2216,6 +2216,11 @@ class Faults(kt.TempDirTestCase):
             db.execute("UPDATE program SET value = '99.0.0' WHERE key = 'newest_version'")
         status = kt.run_kalends(["status", job])
         self.assertIn("written by kalends 99.0.0, newer than this one", status.stdout)
+        # Listed as refused, like a newer state of the job's own, and a monitoring script sees exit 1.
+        shard_line = [line for line in status.stdout.splitlines() if "99.0.0" in line]
+        self.assertEqual(len(shard_line), 1, status.stdout)
+        self.assertIn("refused", shard_line[0])
+        self.assertEqual(status.returncode, 1, status.stdout + status.stderr)
         done = run(job, "--finalize")
         self.assertEqual(done.returncode, 4, done.stdout + done.stderr)
         self.assertIn("written by kalends 99.0.0", done.stderr)
