@@ -683,6 +683,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
   // Per series: the values read from calendar periods that composites cover only in part (the
   // stack's first or last weeks, the edges of its season), and the first such period.
   std::map<std::size_t, std::pair<std::size_t, std::string>> partial_periods;
+  // Per grid: the points placed on it, and those inside it. A survey whose every point falls
+  // outside (x and y swapped, eastings as longitudes) had given an empty table, exit 0, with no hint.
+  std::vector<std::pair<std::size_t, std::size_t>> placed_inside(geometries.size());
   const auto read_batch = [&] {
     std::stable_sort(reads.begin(), reads.end(), [&](const Read& a, const Read& b) {
       return std::tie(a.si, a.file, a.band, placements[a.site].py) <
@@ -724,6 +727,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
     for (const auto& geometry : geometries) {
       placements.push_back(geometry->place(p));
       const Placement& at = placements.back();
+      auto& [placed, inside] = placed_inside[placements.size() - 1 - first_site];
+      placed += p.has_coordinates;
+      inside += at.inside;
       // A point just outside the layer still has the cells of its buffer inside it.
       buffers.push_back(at.located && request.buffer_metres > 0 ? geometry->buffer_cells(at)
                                                                  : std::vector<std::pair<int, int>>{});
@@ -759,9 +765,21 @@ ExtractResult run_extract(const ExtractRequest& request) {
     r.notes.push_back(fmt::format("{}: {} value{} read from calendar periods that the composites cover only in part "
                                   "(first: {}); each file's KALENDS_PERIOD_DAYS_COVERED says how many days",
                                   r.series[si].name, part.first, part.first == 1 ? "" : "s", part.second));
+  for (std::size_t g = 0; g < geometries.size(); ++g)
+    if (placed_inside[g].first > 0 && placed_inside[g].second == 0) {
+      std::size_t si = 0;
+      while (geometry_of[si] != g) ++si;
+      r.notes.push_back(fmt::format("{}: none of the {} located point{} of {} falls inside its grid ({} and {} "
+                                    "swapped, or coordinates of another CRS than {}?)",
+                                    r.series[si].name, placed_inside[g].first, placed_inside[g].first == 1 ? "" : "s",
+                                    request.points.path, r.points.from_columns ? r.points.x_name : "x",
+                                    r.points.from_columns ? r.points.y_name : "y",
+                                    r.points.from_columns ? "--crs " + request.points.crs : "the file states"));
+    }
   if (!r.repeated_ids.empty())
-    r.notes.push_back(fmt::format("{}: {} ids name more than one point (first: '{}'); each point keeps its own row",
-                                  request.points.path, r.repeated_ids.size(), r.repeated_ids.front()));
+    r.notes.push_back(fmt::format("{}: {} id{} name{} more than one point (first: '{}'); each point keeps its own row",
+                                  request.points.path, r.repeated_ids.size(), r.repeated_ids.size() == 1 ? "" : "s",
+                                  r.repeated_ids.size() == 1 ? "s" : "", r.repeated_ids.front()));
   for (const CovariateSeries& s : r.series)
     if (!s.caution.empty() && std::find(r.cautions.begin(), r.cautions.end(), s.caution) == r.cautions.end())
       r.cautions.push_back(s.caution);

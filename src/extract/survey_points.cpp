@@ -2,6 +2,7 @@
 // WGS 84 by default) or from any OGR vector source with point geometries (its own CRS).
 #include <ogrsf_frmts.h>
 
+#include <algorithm>
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
@@ -25,6 +26,8 @@ std::string lower(std::string s) {
   return s;
 }
 
+std::string extension_of(const std::string& path) { return lower(std::filesystem::path(path).extension().string()); }
+
 std::string trim(const std::string& s) {
   const auto a = s.find_first_not_of(" \t\r\n");
   if (a == std::string::npos) return "";
@@ -33,14 +36,25 @@ std::string trim(const std::string& s) {
 
 int field_index(OGRFeatureDefn& defn, const std::string& column, const std::string& option,
                 const std::string& path) {
-  const int i = defn.GetFieldIndex(column.c_str());
-  // Two columns of one name (a table pasted together): which one is meant cannot be told.
-  if (i >= 0)
-    for (int k = i + 1; k < defn.GetFieldCount(); ++k)
-      if (lower(defn.GetFieldDefn(k)->GetNameRef()) == lower(column))
-        throw InputError(path, fmt::format("has two columns named '{}' (columns {} and {}); rename one ({})", column,
-                                           i + 1, k + 1, option));
-  if (i >= 0) return i;
+  // A name as written wins; else one that differs only in case ("Latitude" for the default
+  // "latitude"). Two that match equally cannot be told apart.
+  std::vector<int> exact, folded;
+  for (int k = 0; k < defn.GetFieldCount(); ++k) {
+    const std::string name = defn.GetFieldDefn(k)->GetNameRef();
+    if (name == column) exact.push_back(k);
+    else if (lower(name) == lower(column)) folded.push_back(k);
+  }
+  if (exact.size() == 1) return exact[0];
+  if (exact.size() > 1)
+    throw InputError(path, fmt::format("has two columns named '{}' (columns {} and {}); rename one", column,
+                                       exact[0] + 1, exact[1] + 1));
+  if (folded.size() == 1) return folded[0];
+  if (folded.size() > 1)
+    throw InputError(path, fmt::format("has columns '{}' and '{}' (columns {} and {}), neither written as '{}' ({}); "
+                                       "give the one meant as it is written",
+                                       defn.GetFieldDefn(folded[0])->GetNameRef(),
+                                       defn.GetFieldDefn(folded[1])->GetNameRef(), folded[0] + 1, folded[1] + 1,
+                                       column, option));
   std::string names;
   for (int k = 0; k < defn.GetFieldCount(); ++k) names += (k ? ", " : "") + std::string(defn.GetFieldDefn(k)->GetNameRef());
   throw InputError(path, "no column '" + column + "' (" + option + "); the columns are: " + names);
@@ -59,8 +73,15 @@ double coordinate(const std::string& text, const std::string& where) {
   char* end = nullptr;
   const double v = std::strtod(text.c_str(), &end);
   // strtod also reads hexadecimal ("0x10" as 16), which no survey table means.
-  if (end == text.c_str() || *end != '\0' || !std::isfinite(v) || text.find_first_of("xXpP") != std::string::npos)
+  if (end == text.c_str() || *end != '\0' || !std::isfinite(v) || text.find_first_of("xXpP") != std::string::npos) {
+    // A spreadsheet's export in a locale that writes decimal commas (in a ';' table).
+    std::string dotted = text;
+    if (std::count(text.begin(), text.end(), ',') == 1) dotted[text.find(',')] = '.';
+    char* dotted_end = nullptr;
+    if (dotted != text && (std::strtod(dotted.c_str(), &dotted_end), dotted_end != dotted.c_str() && *dotted_end == '\0'))
+      throw InputError(where, "'" + text + "' is not a coordinate (a decimal comma? write " + dotted + ")");
     throw InputError(where, "'" + text + "' is not a coordinate");
+  }
   return v;
 }
 
@@ -73,6 +94,7 @@ struct CsvRow {
   int line = 0, fields = 0;
   bool blank = false;  // every field empty or spaces (a spreadsheet's leftover separators)
   bool open_quote = false;  // the file ends inside a quote opened in this row
+  bool stray_quote = false;  // a quote inside an unquoted field, or text after a closing quote
 };
 
 // Reads the record that starts at `pos` (a quoted field may span lines) and moves `pos` past
@@ -80,22 +102,30 @@ struct CsvRow {
 CsvRow read_record(const std::string& text, std::size_t& pos, char separator, int& extra_lines) {
   CsvRow row{0, 1, true};
   bool quoted = false;
+  // Where the field stands: nothing but spaces yet, text, or a quoted part just closed. A quote
+  // is a field's quote only at its start (RFC 4180, section 2): an inch mark in `well 3" deep`
+  // had opened a quote that ran on to the next one, rows later, joining the rows between.
+  enum { empty, text_seen, closed } field = empty;
   for (; pos < text.size(); ++pos) {
     const char c = text[pos];
     const bool space = std::isspace(static_cast<unsigned char>(c));
     if (quoted) {
       if (c == '"' && pos + 1 < text.size() && text[pos + 1] == '"') ++pos, row.blank = false;
-      else if (c == '"') quoted = false;
+      else if (c == '"') quoted = false, field = closed;
       else extra_lines += c == '\n', row.blank = row.blank && space;
     } else if (c == '"') {
+      if (field != empty) row.stray_quote = true;
       quoted = true;
     } else if (c == separator) {
       ++row.fields;
+      field = empty;
     } else if (c == '\n') {
       ++pos;
       break;
     } else if (!space) {
       row.blank = false;
+      if (field == closed) row.stray_quote = true;
+      field = text_seen;
     }
   }
   row.open_quote = quoted;
@@ -221,9 +251,22 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   std::error_code ec;
   if (std::filesystem::is_regular_file(path, ec) && (std::filesystem::file_size(path, ec) == 0 || only_blank(path)))
     throw InputError(path, "is empty");
+  {
+    // A spreadsheet's "Unicode text" or an Excel CSV with its "sep=" line: GDAL reads neither
+    // ("unknown format", "no column 'id' ... the columns are: sep=").
+    std::ifstream in(path, std::ios::binary);
+    std::string head(8, '\0');
+    in.read(head.data(), std::streamsize(head.size()));
+    head.resize(std::size_t(in.gcount()));
+    if (head.starts_with("\xFF\xFE") || head.starts_with("\xFE\xFF"))
+      throw InputError(path, "is UTF-16 text (a spreadsheet's \"Unicode text\"?); save it as UTF-8 CSV");
+    if (head.starts_with("\xEF\xBB\xBF")) head.erase(0, 3);
+    if (lower(head).starts_with("sep=") && extension_of(path) != ".gpkg")
+      throw InputError(path + ":1", "starts with a spreadsheet's \"sep=\" line; remove that line");
+  }
   CPLErrorReset();
   GDALDatasetUniquePtr ds(GDALDataset::Open(path.c_str(), GDAL_OF_VECTOR | GDAL_OF_READONLY));
-  const std::string extension = lower(std::filesystem::path(path).extension().string());
+  const std::string extension = extension_of(path);
   if (!ds && (extension == ".txt" || extension == ".tsv" || extension == ".tab" || extension == ".dat")) {
     // A delimited text file by another name: GDAL's CSV reader takes it when asked by name.
     CPLErrorReset();
@@ -241,6 +284,10 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
   OGRLayer* layer = ds->GetLayer(0);
   OGRFeatureDefn& defn = *layer->GetLayerDefn();
+  // A table without geometries (a spreadsheet, a .dbf alone, a GeoPackage's attribute table)
+  // holds its coordinates in columns, as a CSV does: read as geometries, every point had been
+  // "no coordinates", exit 0.
+  const bool columns = csv || defn.GetGeomFieldCount() == 0;
   if (layer->GetFeatureCount() == 0) {
     // A quote opened in the header and never closed makes the whole file one header line.
     if (csv) {
@@ -265,10 +312,18 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   const int date = no_dates ? -1 : field_index(defn, source.date_column, "--date-column", path);
   int x = -1, y = -1;
   SurveyPoints result;
-  result.from_columns = csv;
+  result.from_columns = columns;
+  // A GeoPackage of two survey rounds, a workbook of several sheets: only the first is read.
+  if (ds->GetLayerCount() > 1) {
+    std::string others;
+    for (int k = 1; k < ds->GetLayerCount() && k < 6; ++k) others += fmt::format("{}'{}'", k > 1 ? ", " : "", ds->GetLayer(k)->GetName());
+    if (ds->GetLayerCount() > 6) others += ", …";
+    result.notes.push_back(fmt::format("{}: holds {} layers; the points were read from the first, '{}', not from {}",
+                                       path, ds->GetLayerCount(), layer->GetName(), others));
+  }
   result.id_name = id_is_key ? key_column : defn.GetFieldDefn(id)->GetNameRef();
   if (date >= 0) result.date_name = defn.GetFieldDefn(date)->GetNameRef();
-  if (csv) {
+  if (columns) {
     x = field_index(defn, source.x_column, "--x-column", path);
     y = field_index(defn, source.y_column, "--y-column", path);
     result.x_name = defn.GetFieldDefn(x)->GetNameRef();
@@ -277,11 +332,11 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       throw UsageError("--x-column '" + source.x_column + "' and --y-column '" + source.y_column + "'",
                        "name the same column of " + path);
   }
-  if (!csv && layer->GetSpatialRef()) {
+  if (!columns && layer->GetSpatialRef()) {
     crs = *layer->GetSpatialRef();
   } else {
     detail::set_crs_from_user(crs, source.crs, "--crs");
-    if (!csv)
+    if (!columns)
       result.notes.push_back(path + ": states no CRS (a Shapefile without its .prj?); its coordinates were taken as " +
                              source.crs + " (--crs)");
   }
@@ -299,9 +354,14 @@ SurveyPoints read_survey_points(const PointsSource& source) {
     ++row;
     // A vector file's features by their place in the file, counted from 1 as a reader counts
     // (OGR's ids start at 0 in some formats and need not be in order).
-    const std::string where = path + (csv ? ":" + std::to_string(raw.line) : " feature " + std::to_string(row));
+    const std::string where = path + (csv       ? ":" + std::to_string(raw.line)
+                                      : columns ? " data row " + std::to_string(row)
+                                                : " feature " + std::to_string(row));
     if (csv && raw.blank) continue;  // only separators or spaces: nothing was written there
     // A quote never closed swallows the rest of the file: said, not "a row cut short".
+    if (csv && raw.stray_quote)
+      throw InputError(where, "has a quote (\") inside a field that does not start with one (an inch or seconds "
+                              "mark?); put the field in quotes and double the quote: \"12\"\" pipe\"");
     if (csv && raw.open_quote)
       throw InputError(where, "a quote (\") opened in this row is never closed");
     if (csv && raw.fields != defn.GetFieldCount())
@@ -320,7 +380,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
       CPLFree(recoded);
       if (legacy_ids++ == 0) first_legacy = where;
     }
-    if (csv) {
+    if (columns) {
       const std::string xs = field_text(feature->GetFieldAsString(x)), ys = field_text(feature->GetFieldAsString(y));
       p.x_text = trim(feature->GetFieldAsString(x));  // echoed as written, NA included
       p.y_text = trim(feature->GetFieldAsString(y));

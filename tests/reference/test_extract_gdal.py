@@ -21,6 +21,7 @@ y = R phi; Snyder 1987, USGS Professional Paper 1395, from memory).
 """
 import datetime
 import math
+import csv
 import os
 import shutil
 import sys
@@ -273,7 +274,7 @@ class ExtractLandsat(kt.TempDirTestCase):
         done = self.extract_site_table(points, out, "-q")
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertEqual([r["site"] for r in kt.read_table(out)], ["p1", "p2", "p3", "p1"])
-        self.assertIn("1 ids name more than one point (first: 'p1')", done.stderr)
+        self.assertIn("1 id names more than one point (first: 'p1')", done.stderr)
 
     def test_rows_whose_fields_do_not_match_the_header_are_refused(self):
         bad = os.path.join(self.tmp, "fields.csv")
@@ -552,6 +553,158 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertIn("1 id is not UTF-8 text (first at ", done.stderr)
         with open(out, encoding="utf-8") as f:
             self.assertIn("Sant\u00e9 Orvane", f.read())
+
+    def test_a_quote_inside_an_unquoted_field_is_refused_and_a_quoted_one_read(self):
+        # An inch mark in `well 3" deep` had opened a quote that ran on to the next one, rows
+        # later: the rows between were joined into one id, which took the last one's value, exit
+        # 0. RFC 4180, section 2: a quote belongs at the start of a quoted field, doubled inside it.
+        (_, lon1, lat1), (_, lon2, lat2), (_, lon3, lat3) = self.points[:3]
+        stray = os.path.join(self.tmp, "stray.csv")
+        with open(stray, "w") as f:
+            f.write('site,lon,lat\nwell 3" deep,%.10f,%.10f\nq2,%.10f,%.10f\nwell 5" deep,%.10f,%.10f\n'
+                    % (lon1, lat1, lon2, lat2, lon3, lat3))
+        out = os.path.join(self.tmp, "stray-table.csv")
+        done = self.extract_site_table(stray, out)
+        self.assertEqual(done.returncode, 2, done.stdout + done.stderr)
+        self.assertIn('stray.csv:2: has a quote (") inside a field that does not start with one', done.stderr)
+        self.assertEqual(len(done.stderr.strip().splitlines()), 1)
+        self.assertFalse(os.path.exists(out))
+        # Text after a closing quote is the same mistake.
+        with open(stray, "w") as f:
+            f.write('site,lon,lat\n"well" 3,%.10f,%.10f\n' % (lon1, lat1))
+        done = self.extract_site_table(stray, out)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("stray.csv:2: has a quote", done.stderr)
+        # Quoted as RFC 4180 says, the three rows are read, each at its own pixel (Python's csv
+        # module reads the same ids).
+        quoted = os.path.join(self.tmp, "quoted.csv")
+        with open(quoted, "w", newline="") as f:
+            w = csv.writer(f)
+            w.writerow(["site", "lon", "lat"])
+            for pid, (_, lon, lat) in zip(['well 3" deep', "q2", 'well 5" deep'], self.points[:3]):
+                w.writerow([pid, "%.10f" % lon, "%.10f" % lat])
+        done = self.extract_site_table(quoted, out, "-q")
+        self.assertEqual(done.returncode, 0, done.stderr)
+        rows = kt.read_table(out)
+        self.assertEqual([r["site"] for r in rows], ['well 3" deep', "q2", 'well 5" deep'])
+        for row, (_, lon, lat) in zip(rows, self.points[:3]):
+            _, _, c, r = self.pixel(lon, lat)
+            self.assertEqual(float(row["L7_ETMs.b1"]), self.bands[0, int(np.floor(r)), int(np.floor(c))])
+
+    def test_tables_without_geometries_read_their_coordinate_columns(self):
+        # A workbook, a GeoPackage's attribute table, a .dbf alone: every point had been "no
+        # coordinates", exit 0, with a note blaming a missing .prj.
+        from osgeo import ogr
+        ogr.UseExceptions()
+        chosen = self.points[:5]
+        for driver, name in (("XLSX", "sites.xlsx"), ("GPKG", "sites.gpkg"), ("ESRI Shapefile", "sites.dbf")):
+            path = os.path.join(self.tmp, name)
+            ds = ogr.GetDriverByName(driver).CreateDataSource(path)
+            layer = ds.CreateLayer("sites", geom_type=ogr.wkbNone)
+            for field, kind in (("site", ogr.OFTString), ("lon", ogr.OFTReal), ("lat", ogr.OFTReal)):
+                layer.CreateField(ogr.FieldDefn(field, kind))
+            for pid, lon, lat in chosen:
+                feature = ogr.Feature(layer.GetLayerDefn())
+                feature.SetField("site", pid)
+                feature.SetField("lon", lon)
+                feature.SetField("lat", lat)
+                layer.CreateFeature(feature)
+                feature = None
+            layer = ds = None
+            out = os.path.join(self.tmp, name + "-table.csv")
+            done = self.extract_site_table(path, out)
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertNotIn("states no CRS", done.stderr)
+            rows = kt.read_table(out)
+            self.assertEqual([r["site"] for r in rows], [p[0] for p in chosen], name)
+            checked = 0
+            for row, (pid, lon, lat) in zip(rows, chosen):
+                _, _, c, r = self.pixel(lon, lat)
+                if not self.inside(c, r):
+                    self.assertEqual(row["L7_ETMs.b4.reason"], "outside the layer")
+                    continue
+                self.assertEqual(float(row["L7_ETMs.b4"]), self.bands[3, int(np.floor(r)), int(np.floor(c))], name)
+                checked += 1
+            self.assertGreaterEqual(checked, 4, name)
+
+    def test_a_column_named_as_written_wins_over_one_differing_in_case(self):
+        (_, lon, lat) = self.points[0]
+        two = os.path.join(self.tmp, "two-ids.csv")
+        with open(two, "w") as f:
+            f.write("site,SITE,lon,lat\nlower,UPPER,%.10f,%.10f\n" % (lon, lat))
+        out = os.path.join(self.tmp, "two-ids-table.csv")
+        for column, expected in (("site", "lower"), ("SITE", "UPPER")):
+            done = kt.run_kalends(["-q", "extract", self.raster, "--points", two, "--out", out, "--id-column", column,
+                                   "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            self.assertEqual(kt.read_table(out)[0][column], expected)
+        # Neither written as given: which is meant cannot be told.
+        done = kt.run_kalends(["extract", self.raster, "--points", two, "--out", out, "--id-column", "Site",
+                               "--x-column", "lon", "--y-column", "lat", "--date-column", ""])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("has columns 'site' and 'SITE' (columns 1 and 2), neither written as 'Site' (--id-column)",
+                      done.stderr)
+
+    def test_spreadsheet_exports_get_a_hint(self):
+        (_, lon, lat) = self.points[0]
+        cases = {
+            # A locale that writes decimal commas, in a semicolon table.
+            "decimal.csv": ("site;lon;lat\np1;%s;%s\n" % (("%.6f" % lon).replace(".", ","),
+                                                         ("%.6f" % lat).replace(".", ",")),
+                            "is not a coordinate (a decimal comma? write %.6f)" % lon),
+            # Excel's first line naming the separator.
+            "sep.csv": ("sep=,\nsite,lon,lat\np1,%.6f,%.6f\n" % (lon, lat),
+                        "sep.csv:1: starts with a spreadsheet's \"sep=\" line; remove that line"),
+        }
+        for name, (text, message) in cases.items():
+            path = os.path.join(self.tmp, name)
+            with open(path, "w") as f:
+                f.write(text)
+            done = self.extract_site_table(path, os.path.join(self.tmp, "hint-table.csv"))
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertIn(message, done.stderr)
+        utf16 = os.path.join(self.tmp, "unicode.csv")
+        with open(utf16, "wb") as f:
+            f.write(("site,lon,lat\np1,%.6f,%.6f\n" % (lon, lat)).encode("utf-16"))
+        done = self.extract_site_table(utf16, os.path.join(self.tmp, "hint-table.csv"))
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("unicode.csv: is UTF-16 text", done.stderr)
+
+    def test_a_survey_wholly_outside_the_grid_and_a_second_layer_are_said(self):
+        # Longitudes and latitudes swapped: every value empty, exit 0, and nothing said.
+        swapped = os.path.join(self.tmp, "swapped.csv")
+        with open(swapped, "w") as f:
+            f.write("site,lon,lat\n")
+            for pid, lon, lat in self.points[:10]:
+                f.write("%s,%.10f,%.10f\n" % (pid, lat, lon))
+        done = self.extract_site_table(swapped, os.path.join(self.tmp, "swapped-table.csv"))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("none of the 10 located points of", done.stderr)
+        self.assertIn("(lon and lat swapped, or coordinates of another CRS than --crs EPSG:4326?)", done.stderr)
+        # The original table says nothing of the kind.
+        done = self.extract_site_table(self.csv, os.path.join(self.tmp, "plain-table.csv"))
+        self.assertNotIn("falls inside", done.stderr)
+        # A GeoPackage of two survey rounds: the second had been left out unsaid.
+        from osgeo import ogr, osr
+        ogr.UseExceptions()
+        path = os.path.join(self.tmp, "rounds.gpkg")
+        ds = ogr.GetDriverByName("GPKG").CreateDataSource(path)
+        wgs84 = osr.SpatialReference()
+        wgs84.ImportFromEPSG(4326)
+        for name in ("first_round", "second_round"):
+            layer = ds.CreateLayer(name, wgs84, ogr.wkbPoint)
+            layer.CreateField(ogr.FieldDefn("id", ogr.OFTString))
+            feature = ogr.Feature(layer.GetLayerDefn())
+            feature.SetField("id", name)
+            feature.SetGeometry(ogr.CreateGeometryFromWkt("POINT (%.10f %.10f)" % (self.points[0][1], self.points[0][2])))
+            layer.CreateFeature(feature)
+            feature = layer = None
+        ds = None
+        done = kt.run_kalends(["extract", self.raster, "--points", path, "--out", os.path.join(self.tmp, "rounds.csv"),
+                               "--date-column", ""])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("rounds.gpkg: holds 2 layers; the points were read from the first, 'first_round', not from "
+                      "'second_round'", done.stderr)
 
     def test_bad_lists_name_the_option_and_the_item(self):
         out = os.path.join(self.tmp, "lists.csv")
