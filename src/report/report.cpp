@@ -82,22 +82,34 @@ std::string legend_svg(const Quicklook& q, const std::string& unit, int number) 
       below || above ? fmt::format("<text x=\"130\" y=\"42\" text-anchor=\"middle\">cells range {:.4g} to {:.4g}</text>",
                                    q.minimum, q.maximum)
                      : std::string();
+  // Its name is what a screen reader reads of it (role="img" hides the text inside).
+  const std::string name = fmt::format("colour scale from {}{:.4g} to {}{:.4g} {}{}", below ? "at most " : "", q.low,
+                                       above ? "at least " : "", q.high, unit.empty() ? "(no unit)" : unit,
+                                       below || above ? fmt::format("; cells range {:.4g} to {:.4g}", q.minimum, q.maximum)
+                                                      : std::string());
   return fmt::format(
-      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"{5}\" class=\"legend\" role=\"img\">"
+      "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"260\" height=\"{5}\" class=\"legend\" role=\"img\" "
+      "aria-label=\"{9}\">"
       "<defs><linearGradient id=\"{0}\">{1}</linearGradient></defs>"
       "<rect x=\"5\" y=\"2\" width=\"250\" height=\"12\" fill=\"url(#{0})\" stroke=\"#999\"/>"
       "<g font-family=\"sans-serif\" font-size=\"11\" fill=\"#333\"><text x=\"5\" y=\"28\">{6}{2:.4g}</text>"
       "<text x=\"130\" y=\"28\" text-anchor=\"middle\">{4}</text>"
       "<text x=\"255\" y=\"28\" text-anchor=\"end\">{7}{3:.4g}</text>{8}</g></svg>",
       id, stops, q.low, q.high, escape(unit.empty() ? "(no unit)" : unit), range.empty() ? 34 : 46,
-      below ? "&#8804; " : "", above ? "&#8805; " : "", range);
+      below ? "&#8804; " : "", above ? "&#8805; " : "", range, escape(name));
 }
 
-std::string flag_legend() {
-  const char* names[4] = {"observed, kept", "observed, rejected", "filled", "not filled"};
+// A calendar period's flags mean other things than a date's, and 1 never occurs there
+// (outputs.md): its legend had read "0 observed, kept" for a period mean of the fitted curve.
+std::string flag_legend(bool calendar_period) {
+  const char* date_names[4] = {"observed, kept", "observed, rejected", "filled", "not filled"};
+  const char* period_names[4] = {"an observation kept inside the period", "", "none (the period mean of the curve)",
+                                 "no value"};
   std::string out = "<div class=\"flag-legend\">";
   for (int f = 0; f < 4; ++f)
-    out += fmt::format("<span><i style=\"background:{}\"></i>{} {}</span>", hex(flag_colour(f)), f, names[f]);
+    if (!calendar_period || f != 1)
+      out += fmt::format("<span><i style=\"background:{}\"></i>{} {}</span>", hex(flag_colour(f)), f,
+                         calendar_period ? period_names[f] : date_names[f]);
   return out + "</div>";
 }
 
@@ -302,7 +314,8 @@ std::pair<int, int> parse_pixel(const std::string& text, const std::string& wher
   std::smatch m;
   if (!std::regex_match(text, m, column_row))
     throw UsageError(where + " '" + text + "'",
-                     "expected COLUMN,ROW (or COLUMN ROW), two whole numbers of 0 or more (pixels from the top left)");
+                     "expected COLUMN,ROW (or COLUMN ROW), two whole numbers of 0 or more (pixels from the first row and "
+                     "column of the file: the top left of a north-up grid)");
   return {std::stoi(m[1]), std::stoi(m[2])};
 }
 
@@ -367,7 +380,8 @@ Plots validation_series_html(const fs::path& csv, const fs::path& root) {
     plots.html += fmt::format("<figure class=\"series\"><figcaption>{}, pixel column {}, row {}: {} value{} "
                               "withheld; RMSE on them: {}</figcaption>\n{}</figure>\n",
                               name, at.first, at.second, withheld, withheld == 1 ? "" : "s", scores,
-                              validation_svg(plot, ""));
+                              validation_svg(plot, "", fmt::format("{}: the truth and each method's values at pixel column {}, row {}",
+                                                                   name, at.first, at.second)));
     ++plots.count;
   }
   return plots;
@@ -470,7 +484,10 @@ Plots time_series_html(const ReportRequest& request, const std::vector<Covariate
                              : " (never observed, and nothing filled it)";
       plots.html += fmt::format(
           "<figure class=\"series\"><figcaption>pixel column {}, row {}: {}</figcaption>\n{}</figure>\n",
-          pixels[p].first, pixels[p].second, counts, time_series_svg(series[p], s.unit));
+          pixels[p].first, pixels[p].second, counts,
+          time_series_svg(series[p], s.unit,
+                          escape(fmt::format("time series of {} at pixel column {}, row {}: {}", s.name, pixels[p].first,
+                                             pixels[p].second, counts))));
       ++plots.count;
     }
   }
@@ -621,7 +638,8 @@ ReportSummary run_report(const ReportRequest& request) {
     if (s.has_sd_and_flag) {
       const Quicklook f = flag_quicklook(file.path, 3, request.map_size);
       maps += fmt::format("<figure class=\"map-card\">{}<figcaption><b>{} flag</b>: {}</figcaption>{}</figure>\n",
-                          image(f, s.name + " flag"), escape(s.name), escape("flags of " + file.time.label()), flag_legend());
+                          image(f, s.name + " flag"), escape(s.name), escape("flags of " + file.time.label()),
+                          flag_legend(s.period.has_value()));
       ++summary.maps;
     }
   }
@@ -688,9 +706,11 @@ ReportSummary run_report(const ReportRequest& request) {
   }
   std::string html = std::string(page_start) + fmt::format(
       "{0}</title>\n"
-      "<style>{1}</style></head>\n<body>\n<header><h1>kalends report</h1><p class=\"note\">{0}<br>kalends {2}; "
+      "<style>{1}</style></head>\n<body>\n<header><h1>{5}</h1><p class=\"note\">{0}<br>kalends {2}; "
       "{3} layers.{4}</p></header>\n",
-      escape(title), style, KALENDS_VERSION, all.size(), as_of);
+      escape(title), style, KALENDS_VERSION, all.size(), as_of,
+      // --title names the page; without it the folder is the note and the heading stays generic.
+      request.title.empty() ? std::string("kalends report") : escape(request.title));
   if (maps.empty() && without_value.empty()) maps = "<p>No raster layer in this folder.</p>\n";
   std::string empty_note;
   if (!without_value.empty()) {

@@ -48,7 +48,16 @@ struct Frame {
     // date on its axis at all), labelled with its month and, in January or first, its year.
     static constexpr const char* months[12] = {"Jan", "Feb", "Mar", "Apr", "May", "Jun",
                                                "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"};
+    // Labels are 11 px text, about 6.2 px a character (common practice for sans-serif at this
+    // size); a month's label every `every` months so that "Jan 2022" (8 characters, with room)
+    // never runs into the next one, as it had at 30 px a month.
     const bool monthly = t1 - t0 < 2 * 365.25;
+    const double month_px = 30.44 / (t1 - t0) * (width - left - right);
+    int every = 1;
+    for (int k : {1, 2, 3, 6, 12}) {
+      every = k;
+      if (k * month_px >= 56) break;
+    }
     bool labelled = false;
     for (int year = civil_from_days(std::int64_t(t0)).year;; ++year) {
       if (double(days_from_civil(year, 1, 1)) > t1) break;
@@ -59,6 +68,7 @@ struct Frame {
         const bool year_line = month == 1;
         svg += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.1f}\" y2=\"{2:.1f}\" stroke=\"{3}\"/>", x(t),
                            top, height - bottom, year_line ? "#bbbbbb" : "#eeeeee");
+        if (monthly && (month - 1) % every != 0) continue;
         const std::string label = !monthly                        ? std::to_string(year)
                                   : year_line || !labelled        ? fmt::format("{} {}", months[month - 1], year)
                                                                   : std::string(months[month - 1]);
@@ -66,22 +76,33 @@ struct Frame {
         labelled = true;
       }
     }
+    // A series starting after 1 January (summers only, from May) had no label for its first
+    // year: given at the left edge where it fits before the next one.
+    if (!monthly) {
+      const CivilDate first = civil_from_days(std::int64_t(t0));
+      const double next = x(double(days_from_civil(first.year + 1, 1, 1)));
+      if (double(days_from_civil(first.year, 1, 1)) < t0 && next - (left + 3) >= 6.2 * 4 + 6)
+        svg += fmt::format("<text x=\"{:.1f}\" y=\"{:.1f}\">{}</text>\n", left + 3, height - bottom + 14, first.year);
+    }
     svg += fmt::format("<text x=\"12\" y=\"{:.1f}\" transform=\"rotate(-90 12 {:.1f})\" text-anchor=\"middle\">{}</text>\n",
                        (top + height - bottom) / 2, (top + height - bottom) / 2, unit.empty() ? "value" : unit);
     return svg + "</g>\n";
   }
 };
 
-std::string svg_start(int width, int height) {
+// An element role="img" hides its children from screen readers: its name (aria-label) is all
+// they read (WAI-ARIA 1.2, role img).
+std::string svg_start(int width, int height, const std::string& description) {
   return fmt::format(
       "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{0}\" height=\"{1}\" viewBox=\"0 0 {0} {1}\" "
-      "role=\"img\" class=\"plot\">\n<rect width=\"{0}\" height=\"{1}\" fill=\"#ffffff\"/>\n",
-      width, height);
+      "role=\"img\" aria-label=\"{2}\" class=\"plot\">\n<rect width=\"{0}\" height=\"{1}\" fill=\"#ffffff\"/>\n",
+      width, height, description);
 }
 
-// Polylines through the finite values of one curve, broken where it has none.
+// Polylines through the finite values of one curve, broken where it has none and where the
+// dates leave a season without composites (`breaks`).
 template <typename Get>
-std::string broken_line(std::size_t count, Get point, const std::string& attributes) {
+std::string broken_line(std::size_t count, Get point, const std::vector<bool>& breaks, const std::string& attributes) {
   std::string out, points;
   auto flush = [&] {
     if (!points.empty()) out += "<polyline fill=\"none\" stroke-width=\"1.6\" " + attributes + " points=\"" + points + "\"/>\n";
@@ -89,6 +110,7 @@ std::string broken_line(std::size_t count, Get point, const std::string& attribu
   };
   for (std::size_t i = 0; i < count; ++i) {
     const auto [px, py] = point(i);
+    if (i < breaks.size() && breaks[i]) flush();
     if (std::isfinite(py)) points += fmt::format("{:.1f},{:.1f} ", px, py);
     else flush();
   }
@@ -98,22 +120,42 @@ std::string broken_line(std::size_t count, Get point, const std::string& attribu
 
 }  // namespace
 
-std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit, int width, int height) {
+std::vector<bool> breaks_before(const std::vector<double>& days) {
+  std::vector<bool> breaks(days.size(), false);
+  if (days.size() < 3) return breaks;
+  std::vector<double> steps;
+  for (std::size_t i = 1; i < days.size(); ++i) steps.push_back(days[i] - days[i - 1]);
+  std::vector<double> sorted = steps;
+  std::nth_element(sorted.begin(), sorted.begin() + long(sorted.size() / 2), sorted.end());
+  const double median = sorted[sorted.size() / 2];
+  // A composite or two not delivered is a gap the curve spans (its fill is drawn); a season
+  // without any is not: an Alaska winter between 16-day summers had been a straight line.
+  for (std::size_t i = 1; i < days.size(); ++i) breaks[i] = steps[i - 1] > 2.5 * median;
+  return breaks;
+}
+
+std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit,
+                            const std::string& description, int width, int height) {
   double lo = INFINITY, hi = -INFINITY;
   for (const PlotDate& d : dates) {
     for (double v : {d.value - d.sd, d.value + d.sd, d.raw, d.synoptic, d.value})
       if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
   }
-  std::string svg = svg_start(width, height);
+  std::string svg = svg_start(width, height, description);
   if (dates.empty() || !std::isfinite(lo)) return svg + "<text x=\"10\" y=\"20\">no values at this pixel</text></svg>\n";
   const Frame frame(width, height, dates.front().day, dates.back().day, lo, hi);
+  std::vector<double> days;
+  for (const PlotDate& d : dates) days.push_back(d.day);
+  const std::vector<bool> breaks = breaks_before(days);
   const double left = frame.left;
   auto sx = [&](double t) { return frame.x(t); };
   auto sy = [&](double v) { return frame.y(v); };
   svg += frame.axes(unit);
   // +-1 sd band: upper edge forward, lower edge back, over each run of dates with a curve
   std::vector<std::vector<const PlotDate*>> runs(1);
-  for (const PlotDate& d : dates) {
+  for (std::size_t i = 0; i < dates.size(); ++i) {
+    const PlotDate& d = dates[i];
+    if (breaks[i] && !runs.back().empty()) runs.emplace_back();
     if (std::isfinite(d.value) && std::isfinite(d.sd)) runs.back().push_back(&d);
     else if (!runs.back().empty()) runs.emplace_back();
   }
@@ -126,7 +168,7 @@ std::string time_series_svg(const std::vector<PlotDate>& dates, const std::strin
     svg += "<polygon class=\"sd-band\" fill=\"#56b4e9\" fill-opacity=\"0.3\" stroke=\"none\" points=\"" + points + "\"/>\n";
   }
   auto polyline = [&](auto get, const char* cls, const char* colour, const char* dash) {
-    return broken_line(dates.size(), [&](std::size_t i) { return std::pair(sx(dates[i].day), sy(get(dates[i]))); },
+    return broken_line(dates.size(), [&](std::size_t i) { return std::pair(sx(dates[i].day), sy(get(dates[i]))); }, breaks,
                        fmt::format("class=\"{}\" stroke=\"{}\" {}", cls, colour, dash));
   };
   svg += polyline([](const PlotDate& d) { return d.synoptic; }, "synoptic", "#666666", "stroke-dasharray=\"5 3\"");
@@ -155,14 +197,16 @@ std::string time_series_svg(const std::vector<PlotDate>& dates, const std::strin
   return svg + "</svg>\n";
 }
 
-std::string validation_svg(const ValidationPlot& plot, const std::string& unit, int width, int height) {
+std::string validation_svg(const ValidationPlot& plot, const std::string& unit, const std::string& description,
+                           int width, int height) {
   double lo = INFINITY, hi = -INFINITY;
   for (double v : plot.truth)
     if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
   for (const auto& [label, values] : plot.curves)
     for (double v : values)
       if (std::isfinite(v)) lo = std::min(lo, v), hi = std::max(hi, v);
-  std::string svg = svg_start(width, height + 16);
+  std::string svg = svg_start(width, height + 16, description);
+  const std::vector<bool> breaks = breaks_before(plot.days);
   if (plot.days.empty() || !std::isfinite(lo)) return svg + "<text x=\"10\" y=\"20\">no values at this pixel</text></svg>\n";
   Frame frame(width, height + 16, plot.days.front(), plot.days.back(), lo, hi);
   frame.top += 16;  // two legend rows
@@ -193,7 +237,7 @@ std::string validation_svg(const ValidationPlot& plot, const std::string& unit, 
     if (!baseline) ++method;
     const std::string attributes = fmt::format("class=\"curve\" stroke=\"{}\" {}", colour, dash);
     svg += broken_line(values.size(), [&](std::size_t i) { return std::pair(frame.x(plot.days[i]), frame.y(values[i])); },
-                       attributes);
+                       breaks, attributes);
     legend_item(fmt::format("<line x1=\"0\" x2=\"16\" y1=\"12\" y2=\"12\" stroke-width=\"2\" {}/>", attributes), label);
   }
   for (std::size_t i = 0; i < plot.days.size(); ++i) {

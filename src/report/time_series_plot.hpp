@@ -16,9 +16,10 @@ struct PlotDate {
   double synoptic = 0;      // the synoptic mean of the date's period (NaN where none)
 };
 
-/// An SVG element (width x height px) with axes, year ticks and a legend.
-std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit, int width = 760,
-                            int height = 240);
+/// An SVG element (width x height px) with axes, year ticks and a legend; `description` is its
+/// accessible name (aria-label). Curves break where the dates leave a season without composites.
+std::string time_series_svg(const std::vector<PlotDate>& dates, const std::string& unit,
+                            const std::string& description = "", int width = 760, int height = 240);
 
 /// One pixel of a validation: what the input held on each date, and the curves scored on it.
 struct ValidationPlot {
@@ -30,6 +31,11 @@ struct ValidationPlot {
 
 /// An SVG element with the kept observations as dots, the withheld ones as rings, one line per
 /// curve (methods solid, a label ending in "baseline" dashed grey) and a legend.
-std::string validation_svg(const ValidationPlot& plot, const std::string& unit, int width = 760, int height = 240);
+std::string validation_svg(const ValidationPlot& plot, const std::string& unit, const std::string& description = "",
+                           int width = 760, int height = 240);
+
+/// Per date, whether the curve breaks before it: the step from the date before is more than
+/// 2.5 times the median step (a winter without composites, a season's break).
+std::vector<bool> breaks_before(const std::vector<double>& days);
 
 }  // namespace kalends::detail

@@ -380,15 +380,15 @@ std::string ThermalModel::description(bool of_hours) const {
   switch (kind_) {
     case ThermalModelKind::r0_2013:
       return fmt::format(
-          "relative R0(T), Mordecai et al. 2013, An. gambiae / P. falciparum; maximum at {:.2f} C",
+          "relative R0(T), Mordecai et al. 2013, An. gambiae / P. falciparum; maximum at {:.2f} °C",
           optimum_);
     case ThermalModelKind::degree_day:
       return fmt::format(
-          "degree-day p^n, {} degree-days above {:g} C, Martens survival; scaled to 1 at {:.2f} C",
+          "degree-day p^n, {} degree-days above {:g} °C, Martens survival; scaled to 1 at {:.2f} °C",
           degree_days_, threshold_, optimum_);
     case ThermalModelKind::window:
       // Temperatures as given (monthly means, hourly records) have no hours made from them.
-      return fmt::format("share of {} between {:g} and {:g} C", of_hours ? "hours" : "the values given", low_, high_);
+      return fmt::format("share of {} between {:g} and {:g} °C", of_hours ? "hours" : "the values given", low_, high_);
   }
   return "";
 }

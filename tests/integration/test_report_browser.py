@@ -93,6 +93,40 @@ class ReportInBrowser(kt.TempDirTestCase):
         self.assertIn("100 x 100 px, no georeferencing; %s to %s" % (dates[0], dates[-1]), self.page)
         self.assertIn("100 x 100 px, no georeferencing; years %s to %s" % (dates[0][:4], dates[-1][:4]), self.page)
 
+    def test_curves_break_across_winters_and_plots_have_names(self):
+        # The stack holds 8 summer composites a year (data README): the filled curve, its sd
+        # band and the validation's curves had been drawn straight across each winter, as if
+        # there were values there. A curve now stops where the dates leave a season empty.
+        plots = re.findall(r'<svg [^>]*class="plot">.*?</svg>', self.page, re.S)
+        self.assertEqual(len(plots), 6)
+        years = 6
+        for plot in plots:
+            pieces = re.findall(r'<(?:polyline|polygon) [^>]*points="([^"]+)"', plot)
+            self.assertTrue(pieces)
+            steps = []
+            for piece in pieces:
+                xs = [float(p.split(",")[0]) for p in piece.split()]
+                if "polygon" not in piece:
+                    steps += [abs(b - a) for a, b in zip(xs, xs[1:])]
+                # No piece spans more than one summer: the plot is 700 px wide for 6 years.
+                self.assertLess(max(xs) - min(xs), 700 / years * 0.6, piece[:200])
+            # An accessible name (role="img" hides the plot's own text from screen readers).
+            name = re.search(r'aria-label="([^"]*)"', plot)
+            self.assertIsNotNone(name)
+            self.assertRegex(name[1], r"pixel column \d+, row \d+")
+            # The first summer's year is labelled although the axis starts after 1 January.
+            self.assertRegex(plot, r'<text x="6\d\.\d" y="[0-9.]+">2004</text>')
+        filled = [p for p in plots if 'class="filled"' in p]
+        self.assertEqual(len(filled), 3)
+        for plot in filled:
+            self.assertGreaterEqual(plot.count('class="filled"'), years)
+            self.assertGreaterEqual(plot.count('class="sd-band"'), years)
+        # Each colour scale is named with its range.
+        legends = re.findall(r'<svg [^>]*class="legend"[^>]*>', self.page)
+        self.assertTrue(legends)
+        for legend in legends:
+            self.assertRegex(legend, r'aria-label="colour scale from [^"]+ to [^"]+"')
+
     def test_the_same_outputs_give_the_same_page(self):
         # Every id in the page is unique (HTML), and a second report of the same outputs is the
         # same file byte for byte, so that a nightly job leaves it unchanged. Ids had been memory
@@ -161,7 +195,7 @@ class ReportBesideAStudyGrid(kt.TempDirTestCase):
             page = f.read()
         series = page.split('id="time-series"')[1]
         self.assertEqual(re.findall(r"<h3>([^<]*)</h3>", series), ["fill.ndvi"])
-        self.assertEqual(series.count("pixel column 60, row 70"), 1)
+        self.assertEqual(series.count("<figcaption>pixel column 60, row 70"), 1)
         done = kt.run_kalends(["report", out, "--html", html, "--pixels", "160,70"])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("outside every fill output (the largest grid is 100 x 100)", done.stderr)
@@ -237,3 +271,38 @@ class ReportMapsNorthUp(kt.TempDirTestCase):
 
 if __name__ == "__main__":
     unittest.main(verbosity=2)
+
+
+class ReportOfCalendarMeans(kt.TempDirTestCase):
+    def test_calendar_flags_get_their_own_legend_and_month_labels_do_not_collide(self):
+        # Invented data (tools/synth_stack.py): mechanics only.
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 24, 20, "--step", "16", years=1)
+        out = os.path.join(self.tmp, "out")
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "ndvi_*.tif"), "--out", os.path.join(out, "fill"),
+                               "--every", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        html = os.path.join(self.tmp, "report.html")
+        done = kt.run_kalends(["-q", "report", out, "--html", html, "--title", "Vale <of> Orrin, nightly"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(html) as f:
+            page = f.read()
+        # --title is the page's heading (it had stayed "kalends report"), escaped.
+        self.assertIn("<h1>Vale &lt;of&gt; Orrin, nightly</h1>", page)
+        # outputs.md: a calendar period's flag 0 is "an observation was kept inside the period",
+        # 2 "none was", and 1 never occurs; the legend had given a date's meanings.
+        start = page.index("<b>fill.calendar-1M.ndvi flag</b>")
+        card = page[start:page.index("</figure>", start)]
+        self.assertIn("0 an observation kept inside the period", card)
+        self.assertIn("2 none (the period mean of the curve)", card)
+        self.assertNotIn("observed, rejected", card)
+        start = page.index("<b>fill.ndvi flag</b>")
+        card = page[start:page.index("</figure>", start)]
+        self.assertIn("1 observed, rejected", card)
+        # Month labels on a one-year axis: at 11 px text (about 6.2 px a character) none runs
+        # into the next; "Jan 2022" had overprinted "Feb".
+        for plot in re.findall(r'<svg [^>]*class="plot">.*?</svg>', page, re.S):
+            labels = [(float(x), text) for x, text in re.findall(r'<text x="([0-9.]+)" y="2[0-9][0-9]\.0">([A-Z][a-z]{2}(?: \d{4})?)</text>', plot)]
+            self.assertGreater(len(labels), 3)
+            for (x0, t0), (x1, _) in zip(labels, labels[1:]):
+                self.assertGreater(x1 - x0, 6.2 * len(t0), labels)

@@ -169,7 +169,7 @@ class SuitabilityMonthlyNetcdf(kt.TempDirTestCase):
         self.check(out, "window", expected, 0.0)
         # Monthly means given as they are: no hours are made from them, and the model says so
         # (it had said "share of hours between 20 and 30 C").
-        self.assertIn("share of the values given between 20 and 30 C", done.stdout)
+        self.assertIn("share of the values given between 20 and 30 °C", done.stdout)
         ds = kt.gdal().Open(os.path.join(out, "window_year_1999.tif"))
         self.assertIn("share of the values given", ds.GetMetadataItem("KALENDS_MODEL"))
         ds = None
