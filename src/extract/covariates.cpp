@@ -17,6 +17,7 @@
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "kalends/error.hpp"
+#include "kalends/suitability.hpp"
 
 namespace kalends {
 
@@ -218,6 +219,9 @@ std::vector<CovariateSeries> find_covariates(const std::vector<std::string>& pat
       c.grid = detail::raster_grid(*ds);
       c.unit = ds->GetRasterBand(c.band)->GetUnitType();
       c.caution = item(*ds, "KALENDS_CAUTION");
+      // A suitability layer another tool saved again without its caution keeps it here: the
+      // caution goes with the model, not with one metadata item.
+      if (c.caution.empty() && !item(*ds, "KALENDS_MODEL").empty()) c.caution = suitability_caution;
       c.description = item(*ds, "KALENDS_LAYER");
       if (c.description.empty()) c.description = descriptions[c.band - 1];
     };

@@ -450,6 +450,22 @@ class MonthlySummariesAndReruns(kt.TempDirTestCase):
         done = kt.run_kalends(["-q", "extract", out, "--points", points, "--out", os.path.join(self.tmp, "t.csv")])
         self.assertEqual(done.returncode, 0, done.stderr)
         self.assertEqual(done.stderr.count("not malaria risk"), 1, done.stderr)
+        # Saved again by another tool without KALENDS_CAUTION (its model still named): the
+        # caution stays, in extract and on the report's maps.
+        g = kt.gdal()
+        for path in glob.glob(os.path.join(out, "**", "*.tif"), recursive=True):
+            ds = g.Open(path, g.GA_Update)
+            if ds.GetMetadataItem("KALENDS_MODEL"):
+                ds.SetMetadataItem("KALENDS_CAUTION", None)
+            ds = None
+        done = kt.run_kalends(["-q", "extract", out, "--points", points, "--out", os.path.join(self.tmp, "t.csv")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertEqual(done.stderr.count("not malaria risk"), 1, done.stderr)
+        page = os.path.join(self.tmp, "stripped.html")
+        done = kt.run_kalends(["-q", "report", out, "--html", page])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page) as f:
+            self.assertIn('<p class="caution">Caution: temperature suitability', f.read())
 
     def test_a_narrower_span_of_years_removes_the_others(self):
         folder = os.path.join(self.tmp, "warm")
