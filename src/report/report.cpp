@@ -670,6 +670,12 @@ ReportSummary run_report(const ReportRequest& request) {
         const Plots series = validation_series_html(p.parent_path() / "series.csv", root);
         validation += "<h4>The withheld values at a few pixels</h4>\n" + series.html;
         summary.validation_plots += series.count;
+      } else if (const std::string json = read_file(p.parent_path() / "report.json");
+                 nlohmann::json::accept(json) && !nlohmann::json::parse(json).value("series_pixels", nlohmann::json::array()).empty()) {
+        // report.md names the pixels of its series.csv: without it the page would promise plots
+        // it does not show.
+        validation += fmt::format("<p class=\"note\">{}: not found, so the pixels named above are not drawn.</p>\n",
+                                  escape(fs::relative(p.parent_path() / "series.csv", root).string()));
       }
     }
     if (p.filename() == "fill-summary.json") {

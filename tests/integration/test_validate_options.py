@@ -415,6 +415,12 @@ class ValidateOptions(kt.TempDirTestCase):
                                 % (c, y, len(mine)), html)
             self.assertIsNotNone(caption, (c, y))
             self.assertAlmostEqual(float(caption.group(1)), float(np.sqrt(np.mean(np.square(errors)))), places=4)
+        # Without its series.csv the pixels report.md names are said not to be drawn.
+        os.rename(os.path.join(site, "validation", "series.csv"), os.path.join(self.tmp, "series-away.csv"))
+        done = kt.run_kalends(["-q", "report", site, "--html", os.path.join(site, "report.html")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(os.path.join(site, "report.html")) as f:
+            self.assertIn("validation/series.csv: not found, so the pixels named above are not drawn", f.read())
 
     def test_a_users_files_under_its_output_names_are_kept(self):
         # report.md or series.csv of the user's in --out: refused, exit 2, kept (they had been
