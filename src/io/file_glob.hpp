@@ -10,6 +10,11 @@ namespace kalends::detail {
 /// Whether `text` holds a shell pattern's wildcards (*, ?, [).
 bool has_glob_characters(const std::string& text);
 
+/// `literal` as a pattern that matches only itself: each *, ?, [ and \ escaped with a backslash
+/// (POSIX glob and fnmatch). For a folder kalends adds a pattern to: 'run[1]/' + '*.tif' had
+/// matched the files of 'run1/'.
+std::string glob_escape(const std::string& literal);
+
 /// The files matching a shell pattern, sorted; InputError naming the pattern when none does.
 std::vector<std::string> expand_glob(const std::string& pattern);
 

@@ -33,6 +33,15 @@ namespace detail {
 
 bool has_glob_characters(const std::string& text) { return text.find_first_of("*?[") != std::string::npos; }
 
+std::string glob_escape(const std::string& literal) {
+  std::string out;
+  for (char c : literal) {
+    if (c == '*' || c == '?' || c == '[' || c == '\\') out += '\\';
+    out += c;
+  }
+  return out;
+}
+
 namespace {
 thread_local std::string glob_failure;  // the folder glob could not read, and why
 int note_glob_failure(const char* path, int error) {

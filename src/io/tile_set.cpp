@@ -354,7 +354,7 @@ TileSet TileSet::open(const std::string& pattern, const std::string& tile_field,
     wanted[vrt_name[label]] = vrt_text(set.mosaic, sources, path);
   }
   publish_vrts(mosaic_dir, wanted);
-  set.pattern = (fs::path(mosaic_dir) / "*.vrt").string();
+  set.pattern = (fs::path(detail::glob_escape(mosaic_dir)) / "*.vrt").string();
   return set;
 }
 

@@ -160,16 +160,18 @@ std::string path_text(const std::string& path, const std::string& key, const tom
   return text;
 }
 
-std::string resolve(const std::string& folder, const std::string& path) {
-  if (path.empty() || fs::path(path).is_absolute() || path.find(':') != std::string::npos) {
-    // NETCDF:"file":var keeps its form; resolve the file inside it.
-    const auto q1 = path.find('"'), q2 = path.rfind('"');
-    if (q1 != std::string::npos && q2 > q1 && !fs::path(path.substr(q1 + 1, q2 - q1 - 1)).is_absolute())
-      return path.substr(0, q1 + 1) + (fs::path(folder) / path.substr(q1 + 1, q2 - q1 - 1)).string() +
-             path.substr(q2);
-    return path;
+// A path of the job file, relative to its folder. A pattern's folder part is written as a
+// literal (a job in 'proj [2023]' had read 'proj 2/ndvi/*.tif').
+std::string resolve(const std::string& folder, const std::string& path, bool pattern = false) {
+  const std::string base = pattern ? detail::glob_escape(folder) : folder;
+  // NETCDF:"file":var keeps its form; resolve the file inside it. Only a quote after a colon
+  // opens one: a folder named 'say "hi"' is a folder.
+  if (const auto parts = detail::connection_parts(path)) {
+    if (fs::path(parts->files).is_absolute()) return path;
+    return parts->prefix + (fs::path(base) / parts->files).string() + parts->suffix;
   }
-  return (fs::path(folder) / path).lexically_normal().string();
+  if (path.empty() || fs::path(path).is_absolute() || path.find(':') != std::string::npos) return path;
+  return (fs::path(base) / path).lexically_normal().string();
 }
 
 }  // namespace
@@ -237,10 +239,10 @@ Job read_job(const std::string& path) {
                                            "unpack the files into a folder (the commands read such patterns)");
         }
         if (k == "stack") {
-          input.stack = resolve(job.folder, path_text(path, k, value));
+          input.stack = resolve(job.folder, path_text(path, k, value), true);
           input.stack_line = int(value.source().begin.line);
         } else if (k == "qa") {
-          input.qa = resolve(job.folder, path_text(path, k, value));
+          input.qa = resolve(job.folder, path_text(path, k, value), true);
           input.qa_line = int(value.source().begin.line);
         }
         else if (k == "keep") {

@@ -1256,8 +1256,9 @@ class Runner {
     for (const JobStep& s : job_.steps)
       if (s.id == name && s.options.count("tiles")) folder = (fs::path(folder) / "mosaic").string();
     r.folder = folder;
-    r.pattern = (fs::path(folder) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
-    if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(folder) / "qa" / "qa_*").string();
+    // The folder as a literal ('proj [2023]/out/fill' had read 'proj 2/out/fill').
+    r.pattern = (fs::path(detail::glob_escape(folder)) / (folder.ends_with("mosaic") ? "*.vrt" : "*.tif")).string();
+    if (fs::exists(fs::path(folder) / "qa")) r.qa = (fs::path(detail::glob_escape(folder)) / "qa" / "qa_*").string();
     // An index step passes its red input's QA through, one band per date: its rule comes along,
     // so that the fill reading it need not say it again (it had to, or stopped for want of it).
     for (const JobStep& s : job_.steps)

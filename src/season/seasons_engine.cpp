@@ -14,6 +14,7 @@
 
 #include "engine/block_runner.hpp"
 #include "engine/memory_budget.hpp"
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
@@ -48,7 +49,8 @@ std::string stack_input(const std::string& input) {
     throw UsageError(input, fmt::format("holds the files of {} stacks ({}); give one as a pattern, such as '{}'",
                                         names.size(), fmt::join(names, ", "),
                                         (fs::path(input) / (*names.begin() + "_*.tif")).string()));
-  return (fs::path(input) / "*.tif").string();
+  // The folder as a literal: 'run[1]' had read the files of 'run1'.
+  return (fs::path(detail::glob_escape(input)) / "*.tif").string();
 }
 
 namespace {

@@ -14,6 +14,7 @@
 #include <numeric>
 #include <random>
 
+#include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
 #include "io/json_text.hpp"
 #include "io/output_set.hpp"
@@ -532,7 +533,7 @@ ValidateReport run_validate(const ValidateRequest& request) {
   // been found after the others had run.
   auto fill_request = [&](const std::string& method) {
     FillRequest fill;
-    fill.input = (work / "input" / "*.tif").string();
+    fill.input = (fs::path(detail::glob_escape((work / "input").string())) / "*.tif").string();
     fill.method = request.method;
     fill.method.method = method;
     fill.rules.valid_min = request.rules.valid_min;
