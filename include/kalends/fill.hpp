@@ -110,6 +110,7 @@ struct FillSummary {
   std::string unapplied_scaling;  // see unapplied_scaling (stack.hpp); "" where none
   std::string mixed_value_rules;  // see mixed_value_rules (stack.hpp); "" where none
   std::string date_conflict;      // see date_conflict_note (stack.hpp); "" where none
+  std::string mixed_names;        // see mixed_names_note (stack.hpp); "" where none
   std::string time_grid_note;     // a time grid on the smallest spacing (TimeGrid); "" where none
   /// The input of the fill-summary.json this fill replaced, where another input made it.
   std::string replaced_summary_of;

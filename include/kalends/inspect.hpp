@@ -45,6 +45,7 @@ struct InspectReport {
   /// GDAL does not apply (HDF-EOS grids, for one) and none is given; "" otherwise.
   std::string unapplied_scaling;
   std::string date_conflict;  // date_conflict_note (stack.hpp)
+  std::string mixed_names;    // mixed_names_note (stack.hpp)
 };
 
 /// Opens the stack (and QA stack) as `kalends fill` does, with the same errors, and reads every

@@ -165,6 +165,11 @@ std::string mixed_value_rules(const Stack& stack);
 /// 2020-01-02); the name's date, else the first source, was used (docs/inputs.md)", or "".
 std::string date_conflict_note(const Stack& stack);
 
+/// "its files have 2 names before their dates (evi: 6 files, ndvi: 12): read as one stack named
+/// 'evi', after the first ...", or "" where they share one. A pattern such as 'm/*.tif' over
+/// two products had merged them unsaid, and named every output after the first.
+std::string mixed_names_note(const Stack& stack);
+
 /// The hidden file a run keeps in each folder while it renames its outputs into place.
 inline constexpr const char* half_published_marker = ".kalends-publishing";
 

@@ -195,6 +195,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
                            "--dates)\n",
                    r.input.c_str(), s.mixed_value_rules.c_str());
     if (!s.date_conflict.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.date_conflict.c_str());
+    if (!s.mixed_names.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.mixed_names.c_str());
     if (!global.quiet) {
       const std::int64_t pd = s.pixel_dates;
       fmt::print("kalends fill: {} dates of {} x {} px in {:.1f} s -> {}{}\n", s.dates, s.width,

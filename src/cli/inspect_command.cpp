@@ -45,6 +45,7 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
   fmt::print("  dates     {} .. {} ({} days), from {}\n", first.time.label(), layers.back().layer.time.label(),
              span_days, from);
   if (!r.date_conflict.empty()) fmt::print("            {}\n", r.date_conflict);
+  if (!r.mixed_names.empty()) fmt::print("            {}\n", r.mixed_names);
   std::vector<TimePoint> times;
   for (const InspectedLayer& l : layers) times.push_back(l.layer.time);
   if (dates_at_month_ends(times))
@@ -154,6 +155,7 @@ void print_json(const InspectReport& r) {
              r.unapplied_scaling.empty() ? "null" : "\"" + json_escape(r.unapplied_scaling) + "\"");
   fmt::print("  \"date_conflict\": {},\n",
              r.date_conflict.empty() ? "null" : "\"" + json_escape(r.date_conflict) + "\"");
+  fmt::print("  \"mixed_names\": {},\n", r.mixed_names.empty() ? "null" : "\"" + json_escape(r.mixed_names) + "\"");
   fmt::print("  \"values_read\": {},\n  \"pixels_never_observed\": {},\n  \"dates\": [\n", r.values_read,
              r.values_read ? std::to_string(r.pixels_never_observed) : "null");
   for (std::size_t i = 0; i < r.layers.size(); ++i) {

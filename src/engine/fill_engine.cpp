@@ -127,6 +127,7 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
   if (!summary.date_conflict.empty()) notes.push_back(summary.date_conflict);
+  if (!summary.mixed_names.empty()) notes.push_back(summary.mixed_names);
   return notes;
 }
 
@@ -693,6 +694,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
   summary.unapplied_scaling = unapplied_scaling(stack);
   summary.mixed_value_rules = mixed_value_rules(stack);
   summary.date_conflict = date_conflict_note(stack);
+  summary.mixed_names = mixed_names_note(stack);
   if (grid.from_smallest_spacing)
     summary.time_grid_note = fmt::format(
         "dates of mixed spacing (median {:g} days, smallest {:g}): the time grid steps {:g} days so that every date "

@@ -51,6 +51,7 @@ InspectReport inspect_stack(const InspectRequest& request) {
     report.layers.push_back({layer, date_source_of(layer, request.rules, layers_in_file[layer.path])});
   report.unapplied_scaling = unapplied_scaling(stack);
   report.date_conflict = date_conflict_note(stack);
+  report.mixed_names = mixed_names_note(stack);
   if (!request.read_values) return report;
 
   // Strips of rows, date by date: the working set is one strip and a byte per pixel.

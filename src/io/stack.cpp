@@ -700,6 +700,23 @@ std::string date_conflict_note(const Stack& stack) {
                      stack.date_conflicts(), stack.date_conflicts() == 1 ? "" : "s", stack.first_date_conflict());
 }
 
+std::string mixed_names_note(const Stack& stack) {
+  // A variable of container files is named by the variable, whatever the files' names.
+  if (const auto parts = detail::connection_parts(stack.input()); parts && !parts->variable().empty()) return "";
+  std::map<std::string, std::set<std::string>> files_of;
+  for (const Layer& layer : stack.layers()) {
+    const std::string file = detail::file_in_connection(layer.path);
+    files_of[detail::name_from_file(file)].insert(file);
+  }
+  if (files_of.size() < 2) return "";
+  std::string counts;
+  for (const auto& [name, files] : files_of)
+    counts += fmt::format("{}{}: {} file{}", counts.empty() ? "" : ", ", name, files.size(), files.size() == 1 ? "" : "s");
+  return fmt::format("its files have {} names before their dates ({}): read as one stack, named '{}' after the "
+                     "first; give --name to name it, or a pattern of one name to read that one alone",
+                     files_of.size(), counts, stack.name());
+}
+
 std::string mixed_value_rules(const Stack& stack) {
   const ValueRules& rules = stack.rules();
   const Layer& first = stack.layers().front();

@@ -865,5 +865,28 @@ class ValidateWithNothingToWithhold(kt.TempDirTestCase):
         self.refused(np.zeros((HEIGHT, WIDTH), dtype=bool), ["no date has missing values"])
 
 
+
+class StacksOfTwoNames(kt.TempDirTestCase):
+    def test_a_pattern_over_files_of_two_names_says_so(self):
+        # 'm/*.tif' over ndvi_ and evi_ files had been read as one stack named after the first
+        # file, every output renamed, with no word (inputs.md: a stack is named after what its
+        # files share before their date).
+        folder = os.path.join(self.tmp, "mixed")
+        write_stack(folder, DATES[:2], prefix="ndvi_")
+        write_stack(folder, DATES[2:], prefix="evi_")
+        pattern = os.path.join(folder, "*.tif")
+        message = "its files have 2 names before their dates (evi: 3 files, ndvi: 2 files): read as one stack, named 'evi'"
+        done = kt.run_kalends(["inspect", pattern])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(message, done.stdout)
+        done = kt.run_kalends(["fill", pattern, "--out", os.path.join(self.tmp, "mixed-out"), "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn(message, done.stderr)
+        # One name: nothing said.
+        done = kt.run_kalends(["fill", os.path.join(folder, "evi_*.tif"), "--out", os.path.join(self.tmp, "evi-out"),
+                               "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("names before their dates", done.stderr)
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
