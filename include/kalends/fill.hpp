@@ -96,6 +96,7 @@ struct FillSummary {
   std::int64_t pixels_never_observed = 0;
   std::int64_t pixels_without_value = 0;  // flag 3 on every date (nothing within reach)
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
+  std::string monthly_marks_note;    // see monthly_marks_note (season.hpp); "" where none
   std::int64_t memory_for_one_block = 0;  // check_only: the smallest budget that holds one block
   /// Pixels (pixel-years with a reach) with observations that the method could not fit, by
   /// the method's reason.

@@ -20,8 +20,18 @@ namespace kalends {
 /// `DateMarks::end` reads as each month's own (the default, DateMarks::automatic, does).
 bool dates_at_month_ends(const std::vector<TimePoint>& dates);
 
-/// `given`, or for DateMarks::automatic: `end` on dates at month ends, else `start`. Read as
-/// starts, monthly means stamped on the month's last day had each stood for the month after.
+/// Whether the dates (two or more, a month apart or more) fall in the middle of their month (its
+/// 14th to 16th), nine in ten at least: monthly means stamped at the middle of their time bounds,
+/// as CF files also do. Read as starts, each had stood for half of its month and half the next.
+bool dates_at_month_middles(const std::vector<TimePoint>& dates);
+
+/// The note for dates the default reads as month ends or middles ("" for neither); `option`
+/// names what reads them otherwise.
+std::string monthly_marks_note(const std::vector<TimePoint>& dates, const std::string& option);
+
+/// `given`, or for DateMarks::automatic: `end` on dates at month ends, `middle` at month middles,
+/// else `start`. Read as starts, monthly means stamped on the month's last day had each stood
+/// for the month after.
 DateMarks resolve_date_marks(DateMarks given, const std::vector<TimePoint>& dates);
 
 /// The note commands give when the automatic rule reads such dates as ends; `option` is how to

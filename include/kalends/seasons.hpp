@@ -48,6 +48,7 @@ struct SeasonsSummary {
   int first_year = 0, last_year = 0;
   double seconds = 0;
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
+  std::string monthly_marks_note;    // see monthly_marks_note (season.hpp); "" where none
   std::vector<std::string> outputs;
   /// Pixels with a synoptic value in some period, and those whose synoptic cycle has
   /// descriptors (a value in every period); the periods (0-based) with no value anywhere.

@@ -134,6 +134,7 @@ struct SuitabilitySummary {
   std::vector<std::string> notes;      // as in DiurnalSummary
   double seconds = 0;
   bool dates_at_month_ends = false;  // see dates_at_month_ends (season.hpp)
+  std::string monthly_marks_note;    // see monthly_marks_note (season.hpp); "" where none
   std::vector<std::string> outputs;
 };
 

@@ -73,7 +73,7 @@ std::string percent(std::int64_t part, std::int64_t whole);
 
 /// A note on stderr where the inputs' dates all fall on month ends but are read as starts:
 /// monthly means stamped at their end then stand for the month after.
-void note_month_end_dates(bool dates_at_month_ends, DateMarks marks);
+void note_monthly_marks(const std::string& note, DateMarks marks);
 
 /// The gap-filling method's options (all but --method), shared by fill and validate. The texts
 /// hold what is parsed after the command line is read (numbers or "auto", ranges).

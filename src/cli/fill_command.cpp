@@ -177,7 +177,7 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
     if (!s.time_grid_note.empty()) std::fprintf(stderr, "note: %s: %s\n", r.input.c_str(), s.time_grid_note.c_str());
     if (const std::string note = calendar_gap_note(s); !note.empty()) std::fprintf(stderr, "note: %s\n", note.c_str());
     // Only the calendar layers read the marks; the dated outputs keep the input's dates.
-    if (r.every) note_month_end_dates(s.dates_at_month_ends, r.marks);
+    if (r.every) note_monthly_marks(s.monthly_marks_note, r.marks);
     if (s.outputs_of_another_input > 0)
       std::fprintf(stderr,
                    "note: %d earlier output%s in %s made from another input (%s) had this fill's names and %s "

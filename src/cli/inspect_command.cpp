@@ -51,6 +51,9 @@ void print_text(const InspectReport& r, const ValueRules& rules, const std::stri
   if (dates_at_month_ends(times))
     fmt::print("            the dates are the last days of their months: seasons, suitability, fill --every and\n"
                "            extract read each as the end of the month it closes (--date-marks start: the month after)\n");
+  else if (dates_at_month_middles(times))
+    fmt::print("            the dates are the middles of their months: seasons, suitability, fill --every and\n"
+               "            extract read each as the middle of the days it stands for (--date-marks start: the days after)\n");
   const TimeGrid& t = r.time_grid;
   if (layers.size() > 1) {
     fmt::print("  time grid step {:g} days ({}), {} slots, {} with a date\n", t.step_days,

@@ -143,9 +143,9 @@ void apply_value_rule_options(ValueRules& rules, const ValueRuleTexts& t) {
   }
 }
 
-void note_month_end_dates(bool dates_at_month_ends, DateMarks marks) {
-  if (!dates_at_month_ends || marks != DateMarks::automatic) return;
-  std::fprintf(stderr, "note: %s.\n", month_end_note("--date-marks start").c_str());
+void note_monthly_marks(const std::string& note, DateMarks marks) {
+  if (note.empty() || marks != DateMarks::automatic) return;
+  std::fprintf(stderr, "note: %s.\n", note.c_str());
 }
 
 }  // namespace kalends::cli

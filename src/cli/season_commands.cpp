@@ -116,7 +116,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
                  r.out_dir, s.files);
     if (s.memory_raised_to > 0) print_memory_note(r.memory_bytes, s.memory_raised_to);
     for (const std::string& note : seasons_notes(r, s)) std::fprintf(stderr, "note: %s\n", note.c_str());
-    note_month_end_dates(s.dates_at_month_ends, r.marks);
+    note_monthly_marks(s.monthly_marks_note, r.marks);
   };
 }
 

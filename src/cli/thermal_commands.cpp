@@ -243,7 +243,7 @@ Action add_suitability_command(CLI::App& app, GlobalOptions& global) {
       std::fflush(stdout);
     }
     for (const std::string& note : s.notes) std::fprintf(stderr, "note: %s\n", note.c_str());
-    note_month_end_dates(s.dates_at_month_ends, r.inputs.marks);
+    note_monthly_marks(s.monthly_marks_note, r.inputs.marks);
     std::fprintf(stderr, "%s\n", suitability_caution);
   };
 }

@@ -126,7 +126,11 @@ std::vector<PeriodMean> period_means(const TimeGrid& grid, const CalendarPeriod&
       mean.in_season = season[std::size_t(day_of_year(civil_from_days(d)) - 1)] != 0;
     std::map<int, double> weight;
     for (std::int64_t d = begin; d < end; ++d) {
-      double t = double(d) - start_day;  // days since grid start
+      // A whole day is read at its middle, as a composite stands at the middle of its days: read
+      // at 00:00, every period had taken half a day of the period before and left half of its
+      // own last day (a daily stack's February read 1.98 where each month held its number).
+      // Sub-daily records are instants, and their days are read at 00:00 as before.
+      double t = double(d) + (whole_spans ? 0.5 : 0.0) - start_day;  // days since grid start
       if (whole_spans ? d < first_covered || d > last_covered : t < grid.slot_days.front() || t > grid.slot_days.back())
         continue;
       t = std::clamp(t, grid.slot_days.front(), grid.slot_days.back());  // held at the stack's ends

@@ -121,8 +121,8 @@ std::vector<std::string> fill_notes(const FillRequest& request, const FillSummar
                     "'offset' if they are not in physical units)");
   if (!summary.time_grid_note.empty()) notes.push_back(summary.time_grid_note);
   if (const std::string note = calendar_gap_note(summary); !note.empty()) notes.push_back(note);
-  if (summary.dates_at_month_ends && request.every && request.marks == DateMarks::automatic)
-    notes.push_back(month_end_note("--date-marks start"));
+  if (!summary.monthly_marks_note.empty() && request.every && request.marks == DateMarks::automatic)
+    notes.push_back(summary.monthly_marks_note);
   if (!summary.mixed_value_rules.empty())
     notes.push_back("the inputs' value rules differ: " + summary.mixed_value_rules +
                     " (set 'scale', 'offset' or 'nodata' for all if one file's metadata is wrong)");
@@ -725,6 +725,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
   summary.outputs_removed = removed;
   summary.dates = int(layers);
   summary.dates_at_month_ends = dates_at_month_ends(stack.times());
+  summary.monthly_marks_note = monthly_marks_note(stack.times(), "--date-marks start");
   summary.width = area.width;
   summary.height = area.height;
   summary.blocks = int(plan.blocks.size());

@@ -637,8 +637,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
         }
     // Monthly means stamped on the month's last day, read as starts, are matched to the month
     // after: said, as `seasons` and `fill --every` say it (a survey in June had taken May's).
-    if (s.kind == SeriesKind::dated && !s.period && request.marks == DateMarks::automatic && dates_at_month_ends(times))
-      r.notes.push_back(s.name + ": " + month_end_note("--date-marks start"));
+    if (s.kind == SeriesKind::dated && !s.period && request.marks == DateMarks::automatic)
+      if (const std::string note = monthly_marks_note(times, "--date-marks start"); !note.empty())
+        r.notes.push_back(s.name + ": " + note);
   }
   OGRSpatialReference points_crs;
   points_crs.importFromWkt(r.points.crs_wkt.c_str());

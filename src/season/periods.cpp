@@ -19,15 +19,19 @@ std::string month_end_note(const std::string& option) {
 
 DateMarks resolve_date_marks(DateMarks given, const std::vector<TimePoint>& dates) {
   if (given != DateMarks::automatic) return given;
-  return dates_at_month_ends(dates) ? DateMarks::end : DateMarks::start;
+  return dates_at_month_ends(dates) ? DateMarks::end : dates_at_month_middles(dates) ? DateMarks::middle : DateMarks::start;
 }
 
-bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
+namespace {
+
+// Whether the dates are a month apart or more and nine in ten of them at least are `at` their
+// month's day.
+template <typename At>
+bool monthly_dates(const std::vector<TimePoint>& dates, At at) {
   if (dates.size() < 2) return false;
-  std::size_t at_end = 0;
+  std::size_t count = 0;
   for (std::size_t i = 0; i < dates.size(); ++i) {
-    const CivilDate d = dates[i].date();
-    at_end += d.day == days_in_month(d.year, d.month);
+    count += at(dates[i].date());
     // Months apart: 26 days or more, so that a February stamped a day early (27 days after 31
     // January) still counts.
     if (i > 0 && dates[i].days() - dates[i - 1].days() < 26) return false;
@@ -35,7 +39,28 @@ bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
   // Nine in ten: a monthly stack with one stamp a day early (29 June, or 28 February of a leap
   // year) is still one of month ends; all or nothing, it had been read as starts, every month
   // taken for the month after, without a note.
-  return 10 * at_end >= 9 * dates.size();
+  return 10 * count >= 9 * dates.size();
+}
+
+}  // namespace
+
+bool dates_at_month_ends(const std::vector<TimePoint>& dates) {
+  return monthly_dates(dates, [](const CivilDate& d) { return d.day == days_in_month(d.year, d.month); });
+}
+
+bool dates_at_month_middles(const std::vector<TimePoint>& dates) {
+  // The middle of a month's time bounds falls on its 15th or 16th (the 14th or 15th in
+  // February); a day either side is allowed as for month ends.
+  return monthly_dates(dates, [](const CivilDate& d) { return d.day >= 14 && d.day <= 16; });
+}
+
+std::string monthly_marks_note(const std::vector<TimePoint>& dates, const std::string& option) {
+  if (dates_at_month_ends(dates)) return month_end_note(option);
+  if (dates_at_month_middles(dates))
+    return "the input dates are the middles of their months: read as middles, each standing for the days around "
+           "it (as CF files stamp monthly means at the middle of their time bounds); give " + option +
+           " if each stands for the days after it";
+  return "";
 }
 
 DateMarks parse_date_marks(const std::string& text) {

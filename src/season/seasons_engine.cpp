@@ -526,6 +526,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   summary.first_year = first_year;
   summary.last_year = last_year;
   summary.dates_at_month_ends = dates_at_month_ends(times);
+  summary.monthly_marks_note = monthly_marks_note(times, "--date-marks start");
   summary.pixels_with_values = pixels_with_values;
   summary.years_without_composite = years_without_composite;
   for (int y = 0; y < years; ++y)

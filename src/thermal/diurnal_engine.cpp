@@ -172,8 +172,9 @@ DiurnalSummary run_diurnal(const DiurnalRequest& request) {
   summary.inverted = counts.inverted;
   summary.notes = detail::temperature_notes(source, counts);
   // As seasons and suitability say it: month-end dates read as month ends by the default.
-  if (request.inputs.marks == DateMarks::automatic && dates_at_month_ends(source.times))
-    summary.notes.push_back(month_end_note("--date-marks start"));
+  if (request.inputs.marks == DateMarks::automatic)
+    if (const std::string note = monthly_marks_note(source.times, "--date-marks start"); !note.empty())
+      summary.notes.push_back(note);
   summary.parameters = parameters;
   summary.outputs = output_paths;
   summary.seconds =

@@ -366,6 +366,7 @@ SuitabilitySummary run_suitability(const SuitabilityRequest& request) {
   const std::vector<int> stale = detail::remove_year_layers_outside(request.out_dir, name, {"year", "summary"}, first_year,
                                                                     last_year, &summary.outputs_removed);
   summary.dates_at_month_ends = dates_at_month_ends(times);
+  summary.monthly_marks_note = monthly_marks_note(times, "--date-marks start");
   summary.outputs_written = outputs.written();
   summary.outputs_unchanged = outputs.unchanged();
   summary.years = years;

@@ -26,20 +26,21 @@ TEST_CASE("monthly period means are day-weighted and cover the grid", "[engine][
     for (double w : p.weights) sum += w;
     CHECK(sum == Approx(1.0));
   }
-  // A linear curve z = slot: the period mean is the curve at the mean day of the period.
-  // January: days 0 .. 30 -> mean day 15 = 15/16 slots.
+  // A linear curve z = slot: the period mean is the curve at the mean day of the period, each
+  // day read at its middle. January: days 0.5 .. 30.5 -> mean day 15.5 = 15.5/16 slots (15/16
+  // before version 0.3.24, when days were read at 00:00).
   double mean = 0;
   for (std::size_t j = 0; j < periods[1].slots.size(); ++j) mean += periods[1].weights[j] * periods[1].slots[j];
-  CHECK(mean == Approx(15.0 / 16));
+  CHECK(mean == Approx(15.5 / 16));
 }
 
 TEST_CASE("a date marking a composite's start stands for its middle", "[engine][calendar]") {
   // 16-day composites dated at their first day from 2021-01-01: each value stands for the
-  // composite's middle, 8 days later, and calendar day d reads the curve at d - 8. The first
-  // composite stands for 1 to 16 January (seasons' rule), so January has its 31 days: 1 to 8
-  // January hold the first composite's value (slot 0), 9 to 31 January read days 0 .. 22 of
-  // the curve. January's mean of z = slot: (0 + 1 + ... + 22) / 16 / 31 = 253 / 496 slots
-  // (worked by hand).
+  // composite's middle, 8 days later, and calendar day d reads the curve at its middle less 8,
+  // d + 0.5 - 8. The first composite stands for 1 to 16 January (seasons' rule), so January has
+  // its 31 days: 1 to 8 January hold the first composite's value (slot 0), 9 to 31 January read
+  // days 0.5 .. 22.5 of the curve. January's mean of z = slot: (0.5 + 1.5 + ... + 22.5) / 16 /
+  // 31 = 264.5 / 496 slots (worked by hand; 253 / 496 before version 0.3.24, days read at 00:00).
   std::vector<TimePoint> times;
   for (int i = 0; i < 10; ++i) times.push_back(TimePoint{(days_from_civil(2021, 1, 1) + 16 * i) * 86400});
   const TimeGrid grid = TimeGrid::build(times);
@@ -48,7 +49,7 @@ TEST_CASE("a date marking a composite's start stands for its middle", "[engine][
   CHECK(starts[0].days == 31);
   double mean = 0;
   for (std::size_t j = 0; j < starts[0].slots.size(); ++j) mean += starts[0].weights[j] * starts[0].slots[j];
-  CHECK(mean == Approx(253.0 / 496));
+  CHECK(mean == Approx(264.5 / 496));
   // The last composite (2021-05-25) stands for 25 May to 9 June: June is covered to the 9th,
   // as extract and seasons give it those days.
   CHECK(starts[5].start.label() == "2021-06-01");

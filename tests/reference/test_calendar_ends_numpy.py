@@ -86,7 +86,8 @@ class CalendarEnds(kt.TempDirTestCase):
                 a, b = period_of(day, every)
                 days = [x for x in range(a, b) if first <= x <= last and dt.date.fromordinal(x).timetuple().tm_yday in season]
                 if days:
-                    t = np.array(days, float) - (at[0] + step / 2)
+                    # Each day at its middle (noon), each composite at the middle of its days.
+                    t = np.array(days, float) + 0.5 - (at[0] + step / 2)
                     expected[dt.date.fromordinal(a).isoformat()] = (
                         len(days), np.array([np.interp(t, grid, c).mean() for c in curve]))
                 day = b

@@ -360,5 +360,77 @@ class FillCalendarMonthEnds(kt.TempDirTestCase):
         self.assertEqual(rms["auto"], rms["end"])
 
 
+
+class CalendarDaysAtTheirMiddles(kt.TempDirTestCase):
+    """A calendar period is the day-weighted mean of the curve over its days (methods.md), each
+    day standing at its middle as each composite does. Read at 00:00, a daily stack whose every
+    day holds its month's number gave February 1.98 (half of 31 January in, half of 28 February
+    out), and 8-day composites holding k gave k - 0.0625 for their own 8 days. The expected
+    values are the stacks' own (each period covers exactly what it should): the linear curve's
+    mean over symmetric days."""
+
+    def fill_calendar(self, folder, every, dates, values, extra=()):
+        os.makedirs(folder)
+        for date, value in zip(dates, values):
+            kt.write_raster(os.path.join(folder, "lst_%s.tif" % date.isoformat()), np.full((3, 2), value, np.float32),
+                            geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        out = folder + "-out"
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--every", every,
+                               "--method", "whittaker", "--lambda", "1e-6", "--order", "1"] + list(extra))
+        self.assertEqual(done.returncode, 0, done.stderr)
+        folder_out = os.path.join(out, "calendar-" + every)
+        means = {}
+        for name in sorted(os.listdir(folder_out)):
+            if name.endswith(".tif"):
+                ds = kt.gdal().Open(os.path.join(folder_out, name))  # held while its band is read
+                means[name[4:14]] = float(ds.GetRasterBand(1).ReadAsArray().mean())
+                ds = None
+        return means
+
+    def test_a_daily_stack_gives_each_month_its_own_days(self):
+        days = [datetime.date(2021, 1, 1) + datetime.timedelta(days=k) for k in range(365)]
+        means = self.fill_calendar(os.path.join(self.tmp, "daily"), "1M", days, [d.month for d in days])
+        self.assertEqual(len(means), 12)
+        for label, value in means.items():
+            self.assertAlmostEqual(value, int(label[5:7]), delta=2e-4, msg=label)
+
+    def test_eight_day_composites_give_each_period_its_composite(self):
+        dates = [datetime.date(2021, 1, 1) + datetime.timedelta(days=8 * k) for k in range(30)]
+        means = self.fill_calendar(os.path.join(self.tmp, "eight"), "8d", dates, [k + 1.0 for k in range(30)])
+        # The first and last periods hold the curve at the end composites' values before and after
+        # their middles (methods.md), so only the periods between are the linear curve's means.
+        for k, (label, value) in enumerate(sorted(means.items())[:30]):
+            self.assertEqual(label, dates[k].isoformat())
+            if 0 < k < 29:
+                self.assertAlmostEqual(value, k + 1.0, delta=2e-4, msg=label)
+
+
+class MonthMiddleStamps(kt.TempDirTestCase):
+    def test_monthly_means_stamped_mid_month_stand_for_their_months(self):
+        # CF monthly means are often stamped at the middle of their time bounds (the 15th or
+        # 16th). Read as starts by default, each had stood for half its month and half the next:
+        # a stack whose months hold their numbers gave January 4.42 (December's 12 in it).
+        folder = os.path.join(self.tmp, "mid")
+        os.makedirs(folder)
+        for year in (2019, 2020, 2021):
+            for month in range(1, 13):
+                day = 15 if month == 2 else 16
+                kt.write_raster(os.path.join(folder, "tas_%04d-%02d-%02d.tif" % (year, month, day)),
+                                np.full((3, 2), float(month), np.float32),
+                                geotransform=(30.0, 0.01, 0, -1.0, 0, -0.01), epsg=4326)
+        out = os.path.join(self.tmp, "mid-seasons")
+        done = kt.run_kalends(["seasons", os.path.join(folder, "*.tif"), "--out", out, "--period", "1M"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("the input dates are the middles of their months: read as middles", done.stderr)
+        ds = kt.gdal().Open(os.path.join(out, "tas_synoptic_mean.tif"))
+        means = [float(ds.GetRasterBand(b).ReadAsArray().mean()) for b in range(1, 13)]
+        ds = None
+        # Each month mostly its own: a fixed step of 30 days gives a day or two of a month to its
+        # neighbour (January 31 to February), so within 0.1 of the month's number, not 0.5 or more.
+        for month, value in enumerate(means, start=1):
+            self.assertAlmostEqual(value, month, delta=0.1, msg=month)
+        done = kt.run_kalends(["inspect", os.path.join(folder, "*.tif")])
+        self.assertIn("the dates are the middles of their months", done.stdout)
+
 if __name__ == "__main__":
     unittest.main()
