@@ -2,6 +2,7 @@
 // grid with weights and returns values, sd and flags; it knows nothing of files.
 #pragma once
 
+#include <cmath>
 #include <cstdint>
 #include <map>
 #include <memory>
@@ -64,14 +65,22 @@ struct BlockOutput {
     return {std::span(fitted).subspan(at, n), std::span(sd).subspan(at, n),
             std::span(rejected).subspan(at, n)};
   }
+  // NaN until the method writes them: a pixel a method leaves alone is not filled (flag 3),
+  // where zeros had been written as filled values of 0 with sd 0.
   void resize(std::size_t n) {
-    fitted.assign(n, 0.0f);
-    sd.assign(n, 0.0f);
+    fitted.assign(n, NAN);
+    sd.assign(n, NAN);
     rejected.assign(n, 0);
     chosen.clear();
     not_fitted.clear();
   }
 };
+
+/// The engine's check of a method's output for a block of `cells` cells (core pixels x slots):
+/// std::logic_error naming the method where an array has another size or an sd is negative or
+/// infinite. A method's own tests can call it too.
+class FillMethod;
+void check_block_output(const FillMethod& method, const BlockOutput& out, std::size_t cells);
 
 /// Parameters as text, written into output metadata.
 using MethodParameters = std::map<std::string, std::string>;

@@ -12,6 +12,7 @@
 #include <chrono>
 #include <cmath>
 #include <filesystem>
+#include <stdexcept>
 #include <fmt/format.h>
 #include <mutex>
 #include <fstream>
@@ -98,6 +99,20 @@ struct Worker {
 };
 
 }  // namespace
+
+// The method's side of the contract (fill_method.hpp), checked after each block: arrays of
+// another size had been read past their end (garbage values, exit 0), and a negative sd written
+// as it was. A method's defect, not the user's: std::logic_error, one line at the CLI.
+void check_block_output(const FillMethod& method, const BlockOutput& out, std::size_t cells) {
+  if (out.fitted.size() != cells || out.sd.size() != cells || out.rejected.size() != cells)
+    throw std::logic_error(fmt::format("fill method '{}' returned {} values, {} sd and {} rejection marks for a block of "
+                                       "{} cells (its fill() must keep the sizes BlockOutput was given)",
+                                       method.name(), out.fitted.size(), out.sd.size(), out.rejected.size(), cells));
+  for (std::size_t i = 0; i < cells; ++i)
+    if (out.sd[i] < 0 || std::isinf(out.sd[i]))
+      throw std::logic_error(fmt::format("fill method '{}' returned an sd of {} (an sd is finite and 0 or more, or "
+                                         "NaN where unknown)", method.name(), out.sd[i]));
+}
 
 std::string calendar_gap_note(const FillSummary& summary) {
   const int n = summary.calendar_without_composite;
@@ -492,6 +507,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
     const auto kernel_start = std::chrono::steady_clock::now();
     if (!(reach > 0)) {
       method->fill(BlockInput{&grid, read, core, w.values, w.weights}, w.out);
+      check_block_output(*method, w.out, std::size_t(core_pixels) * n_slots);
       leave_unobserved(w.out, n_slots);
       if (!w.out.chosen.empty()) w.chosen.push_back({block.index, 0, core, w.out.chosen});
       for (const auto& [reason, n] : w.out.not_fitted) w.counters.not_fitted[reason] += n;
@@ -508,6 +524,7 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
         }
         w.segment_out.resize(std::size_t(core_pixels) * n);
         method->fill(BlockInput{&seg.grid, read, core, w.segment_values, w.segment_weights}, w.segment_out);
+        check_block_output(*method, w.segment_out, std::size_t(core_pixels) * n);
         leave_unobserved(w.segment_out, n);
         if (!w.segment_out.chosen.empty())
           w.chosen.push_back({block.index, seg.year, core, w.segment_out.chosen});
@@ -584,7 +601,8 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
         for (std::int64_t cp = 0; cp < core_pixels; ++cp) {
           Flag flag;
           cell(cp, slot, value_plane[cp], flag);
-          sd_plane[cp] = w.out.sd[std::size_t(cp) * n_slots + slot];
+          // No value, no sd (outputs.md): a method's sd beside a value it did not give is not written.
+          sd_plane[cp] = flag == Flag::unfilled ? NAN : w.out.sd[std::size_t(cp) * n_slots + slot];
           flag_plane[cp] = float(flag);
         }
         outputs.write(std::size_t(layer_output[i]), core, value_plane.data(), sd_plane.data(),

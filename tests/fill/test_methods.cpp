@@ -214,3 +214,28 @@ TEST_CASE("spacetime's sd does not fall deeper into a cloud than its rings reach
     }
   CHECK(beyond >= deepest_reached);
 }
+
+TEST_CASE("the engine checks what a method returns", "[fill][contract]") {
+  // A method that leaves a pixel alone leaves NaN (not filled), where zeros had been written as
+  // filled values of 0 with sd 0; a wrong size or a negative sd is the method's defect, named.
+  BlockOutput out;
+  out.resize(6);
+  for (std::size_t i = 0; i < 6; ++i) {
+    CHECK(std::isnan(out.fitted[i]));
+    CHECK(std::isnan(out.sd[i]));
+  }
+  MethodOptions options;
+  options.lambda = 10.0;
+  const WhittakerMethod whittaker(options);
+  CHECK_NOTHROW(check_block_output(whittaker, out, 6));
+  out.sd[2] = 0.5f;
+  CHECK_NOTHROW(check_block_output(whittaker, out, 6));
+  out.sd[3] = -1.0f;
+  CHECK_THROWS_WITH(check_block_output(whittaker, out, 6), Catch::Contains("returned an sd of -1"));
+  out.sd[3] = INFINITY;
+  CHECK_THROWS_AS(check_block_output(whittaker, out, 6), std::logic_error);
+  out.sd[3] = NAN;
+  out.fitted.resize(4);
+  CHECK_THROWS_WITH(check_block_output(whittaker, out, 6),
+                    Catch::Contains("fill method 'whittaker' returned 4 values, 6 sd and 6 rejection marks for a block of 6 cells"));
+}
