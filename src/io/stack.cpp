@@ -793,7 +793,10 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
   // 'ndvi/*.tif', or one variable of many container files: 'NETCDF:"daily/*.nc":tas'.
   const auto connection = detail::connection_pattern(input);
   const std::string variable = connection ? connection->variable() : "";
-  const bool pattern = connection || (detail::has_glob_characters(input) && !fs::exists(input));
+  // A connection string naming one existing file is no pattern, whatever its folder's name
+  // holds ('NETCDF:"nc [1]/tas.nc":tas' had been globbed whole).
+  const bool pattern = connection || (!detail::connection_parts(input) && detail::has_glob_characters(input) &&
+                                      !fs::exists(input));
   if (pattern) {
     bool first = true;
     std::vector<std::pair<std::string, Grid>> file_grids;  // each file and its grid, checked at the end

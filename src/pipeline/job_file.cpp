@@ -163,15 +163,18 @@ std::string path_text(const std::string& path, const std::string& key, const tom
 // A path of the job file, relative to its folder. A pattern's folder part is written as a
 // literal (a job in 'proj [2023]' had read 'proj 2/ndvi/*.tif').
 std::string resolve(const std::string& folder, const std::string& path, bool pattern = false) {
-  const std::string base = pattern ? detail::glob_escape(folder) : folder;
+  // Escaped only where the rest is a pattern: a plain file's path stays a path GDAL opens.
+  auto base = [&](const std::string& rest) {
+    return pattern && detail::has_glob_characters(rest) ? detail::glob_escape(folder) : folder;
+  };
   // NETCDF:"file":var keeps its form; resolve the file inside it. Only a quote after a colon
   // opens one: a folder named 'say "hi"' is a folder.
   if (const auto parts = detail::connection_parts(path)) {
     if (fs::path(parts->files).is_absolute()) return path;
-    return parts->prefix + (fs::path(base) / parts->files).string() + parts->suffix;
+    return parts->prefix + (fs::path(base(parts->files)) / parts->files).string() + parts->suffix;
   }
   if (path.empty() || fs::path(path).is_absolute() || path.find(':') != std::string::npos) return path;
-  return (fs::path(base) / path).lexically_normal().string();
+  return (fs::path(base(path)) / path).lexically_normal().string();
 }
 
 }  // namespace

@@ -125,5 +125,30 @@ class LiteralFolderNames(kt.TempDirTestCase):
         self.assertAlmostEqual(value, 0.4, places=4)
 
 
+    def test_a_job_reads_a_netcdf_variable_in_a_folder_with_brackets(self):
+        # 'NETCDF:"nc [1]/f.nc":tas' names one file: it had been globbed whole ("cannot list the
+        # files of this pattern"). The Maurer et al. (2002) monthly file of the shared data
+        # (README), copied to the test's own folder; the values are checked against GDAL's.
+        import shutil
+        folder = os.path.join(self.tmp, "nc [1]")
+        os.makedirs(folder)
+        shutil.copy(kt.shared_path("monthly-temperature", "bcsd_obs_1999.nc"), folder)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.tas]\nstack = "NETCDF:\\"bcsd_obs_1999.nc\\":tas"\n'
+                    '[[step]]\nid = "fill"\ndo = "fill"\ninput = "tas"\nlambda = 10\n')
+        done = kt.run_kalends(["-q", "run", job])
+        self.assertEqual(done.returncode, 0, done.stdout + done.stderr)
+        source = kt.gdal().Open('NETCDF:"%s":tas' % os.path.join(folder, "bcsd_obs_1999.nc"))
+        truth = source.GetRasterBand(7).ReadAsArray().astype(float)
+        truth[truth > 1e19] = np.nan
+        source = None
+        ds = kt.gdal().Open(os.path.join(folder, "out", "fill", "tas_1999-07-31.tif"))
+        value, flag = ds.GetRasterBand(1).ReadAsArray(), ds.GetRasterBand(3).ReadAsArray()
+        ds = None
+        kept = (flag == 0) & np.isfinite(truth)
+        self.assertGreater(kept.sum(), 1000)
+        np.testing.assert_allclose(value[kept], truth[kept], atol=1e-4)
+
 if __name__ == "__main__":
     unittest.main()
