@@ -303,13 +303,18 @@ std::vector<int> remove_year_layers_outside(const std::string& folder, const std
   return {removed.begin(), removed.end()};
 }
 
+int output_tile(const Grid& grid, int tile) {
+  if (grid.width > tile || grid.height > tile) return tile;
+  return std::min(tile, (std::max({grid.width, grid.height, 1}) + 15) / 16 * 16);
+}
+
 OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression,
                      int tile)
-    : tile_(tile) {
+    : tile_(output_tile(grid, tile)) {
   start_gdal();
   GDALDriver* driver = GetGDALDriverManager()->GetDriverByName("GTiff");
   if (!driver) throw OutputError("GTiff", "GDAL has no GeoTIFF driver");
-  const std::string block = std::to_string(tile);
+  const std::string block = std::to_string(tile_);
   CPLStringList options;
   options.SetNameValue("TILED", "YES");
   options.SetNameValue("BLOCKXSIZE", block.c_str());

@@ -80,10 +80,16 @@ std::vector<int> remove_year_layers_outside(const std::string& folder, const std
                                             const std::vector<std::string>& kinds, int first_year, int last_year,
                                             int* files_removed = nullptr);
 
+/// The side of an output's tiles: `tile`, or for a grid that fits in one tile, its larger side
+/// rounded up to 16 px (TIFF tiles are multiples of 16). A 6 x 6 px grid of 1826 daily dates
+/// had written 256 x 256 px tiles of 3 bands: its fill took 26.0 s and 1.14 GB against 19.9 s
+/// and 0.98 GB now (2 threads; most of the rest is GDAL's objects of 5 000 open files).
+int output_tile(const Grid& grid, int tile);
+
 class OutputSet {
  public:
   /// Creates every file (under its temporary name) with its float32 bands (nodata NaN):
-  /// tiled `tile` x `tile`, band-interleaved, compressed, georeferenced as `grid`.
+  /// tiled output_tile(grid, tile) px, band-interleaved, compressed, georeferenced as `grid`.
   OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compression compression, int tile);
   ~OutputSet();  // removes the temporaries unless commit() succeeded
   OutputSet(const OutputSet&) = delete;

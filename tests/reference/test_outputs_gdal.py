@@ -748,5 +748,36 @@ class UnderAMemoryLimit(kt.TempDirTestCase):
             if done.returncode == -6:  # SIGABRT: GDAL's own, after a fatal error
                 self.assertIn("kalends: GDAL stopped the program:", done.stderr, mib)
 
+class SmallGrids(kt.TempDirTestCase):
+    def test_a_grid_within_one_tile_gets_tiles_of_its_size(self):
+        # A 20 x 18 px grid had been written in 256 x 256 px tiles, each open output holding one
+        # (a daily record of a few pixels: 1.14 GB for 65 000 values). TIFF tiles are multiples
+        # of 16 px (TIFF 6.0, section 15): 32 x 32 here. Values pass through as before.
+        folder = os.path.join(self.tmp, "small")
+        os.makedirs(folder)
+        rng = np.random.default_rng(11)
+        for k in range(6):
+            values = (0.3 + 0.1 * rng.random((18, 20))).astype(np.float32)
+            values[rng.random((18, 20)) < 0.2] = np.nan
+            kt.write_raster(os.path.join(folder, "ndvi_2021-%02d-01.tif" % (k + 1)), values,
+                            geotransform=GEOTRANSFORM, epsg=EPSG, nodata=float("nan"))
+        out = os.path.join(self.tmp, "small-out")
+        done = kt.run_kalends(["-q", "fill", os.path.join(folder, "*.tif"), "--out", out, "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        g = kt.gdal()
+        for k in range(6):
+            name = "ndvi_2021-%02d-01.tif" % (k + 1)
+            ds = g.Open(os.path.join(out, name))
+            self.assertEqual(ds.GetRasterBand(1).GetBlockSize(), [32, 32])
+            value, flag = ds.GetRasterBand(1).ReadAsArray(), ds.GetRasterBand(3).ReadAsArray()
+            ds = None
+            source = g.Open(os.path.join(folder, name))
+            raw = source.ReadAsArray()
+            source = None
+            observed = np.isfinite(raw)
+            np.testing.assert_array_equal(flag[observed], 0)
+            np.testing.assert_array_equal(value[observed], raw[observed])
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
