@@ -337,14 +337,29 @@ OutputSet::OutputSet(std::vector<OutputSpec> specs, const Grid& grid, Compressio
   has_crs_ = has_crs;
   has_geotransform_ = grid.has_geotransform;
   files_.reserve(specs.size());
+  // A constructor that throws runs no destructor: the temporaries made before the one that
+  // failed (the descriptor limit reached at the 27th date) had stayed, hidden, in the folder.
+  auto discard_made = [this](const std::string& failed) {
+    for (auto& made : files_) {
+      made->dataset.reset();
+      std::error_code ec;
+      fs::remove(made->temporary, ec);
+      fs::remove(made->temporary + ".aux.xml", ec);
+    }
+    std::error_code ec;
+    fs::remove(failed, ec);
+  };
   for (OutputSpec& spec : specs) {
     auto file = std::make_unique<File>();
     file->temporary = temporary_name(spec.path);
     CPLErrorReset();
     file->dataset.reset(driver->Create(file->temporary.c_str(), grid.width, grid.height,
                                        int(spec.bands.size()), GDT_Float32, options.List()));
-    if (!file->dataset)
-      throw write_failure(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
+    if (!file->dataset) {
+      const auto failure = write_failure(spec.path, "cannot create (" + gdal_message("unknown reason") + ")");
+      discard_made(file->temporary);
+      throw failure;
+    }
     GDALDataset& ds = *file->dataset;
     // Before the geotransform: GeoTIFF writes a point grid's tie point at the first cell's centre
     // (a fill had turned an input's Point into Area: half a cell apart for a reader that takes

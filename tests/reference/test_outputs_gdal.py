@@ -779,5 +779,30 @@ class SmallGrids(kt.TempDirTestCase):
             np.testing.assert_array_equal(value[observed], raw[observed])
 
 
+class UnderADescriptorLimit(kt.TempDirTestCase):
+    def test_a_fill_stopped_by_the_limit_leaves_no_temporaries(self):
+        # The limit reached while the outputs were being created: the temporaries made before
+        # the one that failed had stayed, hidden, in the output folder (26 of them at 32).
+        import resource
+        import subprocess
+        folder = os.path.join(self.tmp, "stack")
+        os.makedirs(folder)
+        for k in range(40):
+            kt.write_raster(os.path.join(folder, "ndvi_2021-%02d-%02d.tif" % (1 + k // 4, 1 + 7 * (k % 4))),
+                            np.full((8, 9), 0.3 + 0.01 * k, np.float32), geotransform=GEOTRANSFORM, epsg=EPSG)
+        out = os.path.join(self.tmp, "out")
+        os.makedirs(out)
+        with open(os.path.join(out, "keep.txt"), "w") as f:
+            f.write("a file of the user's\n")
+
+        def limit():
+            resource.setrlimit(resource.RLIMIT_NOFILE, (32, 32))
+        done = subprocess.run([kt.KALENDS_BIN, "fill", os.path.join(folder, "*.tif"), "--out", out, "--lambda", "10"],
+                              capture_output=True, text=True, timeout=120, preexec_fn=limit)
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertIn("too many files open at once", done.stderr)
+        self.assertEqual(sorted(os.listdir(out)), ["keep.txt"])
+
+
 if __name__ == "__main__":
     unittest.main(verbosity=2)
