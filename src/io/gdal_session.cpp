@@ -157,9 +157,11 @@ void throw_read_failed(const std::string& path) {
 std::string open_files_limit_text() {
   rlimit limit{};
   getrlimit(RLIMIT_NOFILE, &limit);
-  return fmt::format("too many files open at once (the limit, ulimit -n, is {}); a fill keeps each date's input and "
-                     "output file open, so it needs about twice as many as the stack has dates: raise the limit "
-                     "(ulimit -n, or LimitNOFILE= in a systemd unit)",
+  // Said for every command (seasons, extract, report and validate reach it too), with what a
+  // fill, the usual one, needs.
+  return fmt::format("too many files open at once (the limit, ulimit -n, is {}); kalends keeps a stack's files open "
+                     "while it reads them (a fill: each date's input and output, about twice as many as the stack "
+                     "has dates): raise the limit (ulimit -n, or LimitNOFILE= in a systemd unit)",
                      static_cast<long long>(limit.rlim_cur));
 }
 
