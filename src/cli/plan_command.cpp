@@ -37,8 +37,14 @@ Action add_plan_command(CLI::App& app, GlobalOptions& global) {
         for (const std::string& rows : plan.shard_rows) fmt::print("  shard {}\n", rows);
       fmt::print("submit with:\n");
     }
-    fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + plan.program),
-               plan.sbatch.substr(7));
+    // sbatch --export splits its list at commas: a program path with one would arrive cut short,
+    // so it goes in the shell's environment instead, which --export=ALL passes on.
+    if (plan.program.find(',') != std::string::npos)
+      fmt::print("KALENDS_BIN={} {}--export=ALL {}\n", detail::shell_word(plan.program), plan.sbatch.substr(0, 7),
+                 plan.sbatch.substr(7));
+    else
+      fmt::print("{}{} {}\n", plan.sbatch.substr(0, 7), detail::shell_word("--export=ALL,KALENDS_BIN=" + plan.program),
+                 plan.sbatch.substr(7));
     if (!plan.script_note.empty()) fmt::print(stderr, "note: {}\n", plan.script_note);
     // As kalends run --skip-bad: the files left out on standard error, exit 3 (done in part).
     for (const std::string& skipped : plan.skipped_inputs) fmt::print(stderr, "kalends plan: skipped input: {}\n", skipped);

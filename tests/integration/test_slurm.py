@@ -460,6 +460,22 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         self.assertEqual(words[-3:], [os.path.abspath(job), "--out", os.path.abspath(out)])
         self.assertTrue(any(w.startswith("--export=ALL,KALENDS_BIN=") for w in words))
 
+    def test_a_program_path_with_a_comma_is_passed_in_the_environment(self):
+        # sbatch --export splits its list at commas (sbatch(1), --export): KALENDS_BIN=/a/b,c
+        # would have arrived as /a/b.
+        import shlex
+        folder = os.path.join(self.tmp, "bin in,x=y")
+        os.makedirs(folder)
+        program = os.path.join(folder, "kalends")
+        shutil.copy(kt.KALENDS_BIN, program)
+        done = subprocess.run([program, "plan", self.job, "--out", self.out("comma"), "--shards", "2", "-q"],
+                              capture_output=True, text=True, timeout=300)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        words = shlex.split(done.stdout.strip())
+        self.assertEqual(words[0], "KALENDS_BIN=" + program)
+        self.assertEqual(words[1:3], ["sbatch", "--export=ALL"])
+        self.assertFalse(any("," in w for w in words[1:] if w.startswith("--export")))
+
     def test_shard_needs_a_plan_and_a_shard_of_it(self):
         done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", "1/2")
         self.assertEqual(done.returncode, 2)
