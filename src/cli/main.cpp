@@ -108,6 +108,21 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
 
 }  // namespace
 
+// An error is one line: a newline, tab or terminal escape in a file name (ESC [31m) had split
+// it or reached the terminal as a command. Control characters are shown as \n, \t, \xHH.
+static std::string one_line(const std::string& text) {
+  std::string out;
+  for (const char c : text) {
+    const auto byte = static_cast<unsigned char>(c);
+    if (c == '\n') out += "\\n";
+    else if (c == '\t') out += "\\t";
+    else if (c == '\r') out += "\\r";
+    else if (byte < 0x20 || byte == 0x7f) out += fmt::format("\\x{:02x}", byte);
+    else out += c;
+  }
+  return out;
+}
+
 int main(int argc, char** argv) {
   using namespace kalends;
   cli::install_stop_signals();
@@ -133,7 +148,7 @@ int main(int argc, char** argv) {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
     if (e.get_exit_code() == 0) return app.exit(e);  // --help, --version
-    std::cerr << "kalends: " << parse_error_line(app, e, argc, argv) << "\n";
+    std::cerr << "kalends: " << one_line(parse_error_line(app, e, argc, argv)) << "\n";
     return 2;
   }
   try {
@@ -152,19 +167,19 @@ int main(int argc, char** argv) {
     }
     return global.exit_code;
   } catch (const InputError& e) {
-    std::cerr << "kalends: " << e.what() << "\n";
+    std::cerr << "kalends: " << one_line(e.what()) << "\n";
     return 2;
   } catch (const UsageError& e) {
-    std::cerr << "kalends: " << e.what() << "\n";
+    std::cerr << "kalends: " << one_line(e.what()) << "\n";
     return 2;
   } catch (const Error& e) {
-    std::cerr << "kalends: " << e.what() << "\n";
+    std::cerr << "kalends: " << one_line(e.what()) << "\n";
     return 1;
   } catch (const std::filesystem::filesystem_error& e) {
     // A folder or file the user may not read (the library's own errors name theirs): the path
     // first, as every other error line, and exit 2 for a path the user gave that cannot be used.
     const std::string path = e.path1().empty() ? std::string("a path") : e.path1().string();
-    std::cerr << "kalends: " << path << ": " << e.code().message() << "\n";
+    std::cerr << "kalends: " << one_line(path) << ": " << e.code().message() << "\n";
     return e.code() == std::errc::permission_denied ? 2 : 1;
   } catch (const std::bad_alloc&) {
     // It had said only "std::bad_alloc".
@@ -173,7 +188,7 @@ int main(int argc, char** argv) {
                  "a coarser resolution), or run where more memory is free\n";
     return 1;
   } catch (const std::exception& e) {
-    std::cerr << "kalends: " << e.what() << "\n";
+    std::cerr << "kalends: " << one_line(e.what()) << "\n";
     return 1;
   }
 }

@@ -35,7 +35,29 @@ using namespace detail;
 
 namespace {
 
-std::string escape(const std::string& s) {
+// Text in the page, which says it is UTF-8: a byte that is not part of a valid UTF-8 sequence
+// (a folder named in Latin-1) becomes U+FFFD, and control characters other than white space go.
+std::string valid_utf8(const std::string& s) {
+  std::string out;
+  for (std::size_t i = 0; i < s.size();) {
+    const auto b = static_cast<unsigned char>(s[i]);
+    const int length = b < 0x80 ? 1 : (b >> 5) == 0x6 ? 2 : (b >> 4) == 0xe ? 3 : (b >> 3) == 0x1e ? 4 : 0;
+    bool ok = length > 0 && i + length <= s.size();
+    for (int k = 1; ok && k < length; ++k) ok = (static_cast<unsigned char>(s[i + k]) >> 6) == 0x2;
+    if (!ok) {
+      out += "\xEF\xBF\xBD";
+      ++i;
+      continue;
+    }
+    if (length == 1 && (b < 0x20 || b == 0x7f) && b != '\n' && b != '\t' && b != '\r') out += "\xEF\xBF\xBD";
+    else out.append(s, i, std::size_t(length));
+    i += std::size_t(length);
+  }
+  return out;
+}
+
+std::string escape(const std::string& raw) {
+  const std::string s = valid_utf8(raw);
   std::string out;
   for (char c : s) {
     switch (c) {

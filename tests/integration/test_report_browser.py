@@ -306,3 +306,21 @@ class ReportOfCalendarMeans(kt.TempDirTestCase):
             self.assertGreater(len(labels), 3)
             for (x0, t0), (x1, _) in zip(labels, labels[1:]):
                 self.assertGreater(x1 - x0, 6.2 * len(t0), labels)
+
+
+class ReportOfOddNames(kt.TempDirTestCase):
+    def test_the_page_is_valid_utf8_whatever_the_folder_names(self):
+        # The page says charset utf-8: a folder named in Latin-1 (caf\xe9) and a control byte had
+        # gone into it raw, and a strict UTF-8 reader failed on it. Invented data.
+        root = os.fsencode(self.tmp) + b"/caf\xe9_\x01ctl"
+        stack = os.path.join(self.tmp, "ndvi")
+        kt.make_synthetic_stack(stack, 16, 12, "--step", "16", years=1)
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "ndvi_*.tif"), "--out",
+                               os.fsdecode(root + b"/fill"), "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        page = os.path.join(self.tmp, "odd.html")
+        done = subprocess.run([kt.KALENDS_BIN, "-q", "report", root, "--html", page], capture_output=True, timeout=300)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        with open(page, "rb") as f:
+            text = f.read().decode("utf-8")  # strict: raises on a byte that is not UTF-8
+        self.assertIn("caf\ufffd_\ufffdctl", text)

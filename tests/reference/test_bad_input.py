@@ -779,6 +779,17 @@ class Wording(kt.TempDirTestCase):
         self.assertIn(os.path.join(self.tmp, "filled", "calendar-1M"), done.stdout + done.stderr)
         self.assertNotIn("//", done.stdout + done.stderr)
 
+    def test_an_error_naming_a_file_with_control_characters_is_one_line(self):
+        # A newline in a name had split the one-line error, and a terminal escape (ESC [31m)
+        # reached the terminal as a command.
+        folder = os.path.join(self.tmp, "odd\nname \x1b[31mred")
+        os.makedirs(folder)
+        done = kt.run_kalends(["fill", os.path.join(folder, "*.tif"), "--out", os.path.join(self.tmp, "o")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertEqual(len(done.stderr.splitlines()), 1, done.stderr)
+        self.assertNotIn("\x1b", done.stderr)
+        self.assertIn("odd\\nname \\x1b[31mred", done.stderr)
+
 
 class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
     def test_a_period_too_long_and_the_flag_band_are_named(self):
