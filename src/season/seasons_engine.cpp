@@ -129,7 +129,8 @@ std::vector<std::string> seasons_notes(const SeasonsRequest& request, const Seas
     const auto& [label, covered, days] = summary.partly_covered.front();
     const std::size_t count = summary.partly_covered.size();
     notes.push_back(fmt::format("{} year-specific period{} rest{} on only part of {} days (first: {}, {:g} of {} days: "
-                                "no composite stands for the others); each band's KALENDS_DAYS_COVERED says how many",
+                                "no composite stands for the others, each standing for the step, the median spacing "
+                                "of the dates, from its date mark); each band's KALENDS_DAYS_COVERED says how many",
                                 count, count == 1 ? "" : "s", count == 1 ? "s" : "", count == 1 ? "its" : "their", label,
                                 covered, days));
   }
