@@ -324,3 +324,22 @@ class ReportOfOddNames(kt.TempDirTestCase):
         with open(page, "rb") as f:
             text = f.read().decode("utf-8")  # strict: raises on a byte that is not UTF-8
         self.assertIn("caf\ufffd_\ufffdctl", text)
+
+    def test_links_in_a_loop_are_passed_over(self):
+        # Two links naming each other inside the folder had stopped report and extract ("Too
+        # many levels of symbolic links"). Invented data.
+        root = os.path.join(self.tmp, "looped")
+        stack = os.path.join(self.tmp, "ndvi-loop")
+        kt.make_synthetic_stack(stack, 16, 12, "--step", "16", years=1)
+        done = kt.run_kalends(["-q", "fill", os.path.join(stack, "ndvi_*.tif"), "--out", os.path.join(root, "fill"),
+                               "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        os.symlink("loopB", os.path.join(root, "loopA"))
+        os.symlink("loopA", os.path.join(root, "loopB"))
+        done = kt.run_kalends(["-q", "report", root, "--html", os.path.join(self.tmp, "looped.html")])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        points = os.path.join(self.tmp, "loop-points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude\np1,0,0\n")
+        done = kt.run_kalends(["-q", "extract", root, "--points", points, "--out", os.path.join(self.tmp, "loop.csv")])
+        self.assertNotIn("symbolic links", done.stderr)
