@@ -36,7 +36,7 @@ using namespace detail;
 namespace {
 
 // Text in the page, which says it is UTF-8: a byte that is not part of a valid UTF-8 sequence
-// (a folder named in Latin-1) becomes U+FFFD, and control characters other than white space go.
+// (a folder named in Latin-1) becomes U+FFFD, as do control characters other than white space.
 std::string valid_utf8(const std::string& s) {
   std::string out;
   for (std::size_t i = 0; i < s.size();) {
