@@ -394,7 +394,8 @@ TimePoint band_time(GDALDataset& dataset, const std::string& path, int band_inde
 // Every band of a multi-band raster with the date its own metadata gives (band_time's errors).
 // An alpha band is no date: it is the others' mask (gdal_session.hpp, has_own_mask).
 std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const std::string& path,
-                                                  std::vector<CfZone>* zones = nullptr) {
+                                                  std::vector<CfZone>* zones = nullptr,
+                                                  std::map<std::string, bool>* axes = nullptr) {
   // A NetCDF variable with a dimension besides time and the grid (depth, ensemble member):
   // GDAL gives a band per combination, and their dates repeat ("duplicate date" had been all
   // that was said).
@@ -407,11 +408,11 @@ std::vector<std::pair<int, TimePoint>> band_dates(GDALDataset& dataset, const st
                            "value of the others first (gdal_translate with -b, or a NetCDF subset)");
   }
   std::vector<std::pair<int, TimePoint>> dates;
-  std::map<std::string, bool> axes;
+  std::map<std::string, bool> own_axes;  // where the caller keeps none
   for (int b = 1; b <= dataset.GetRasterCount(); ++b)
     if (dataset.GetRasterBand(b)->GetColorInterpretation() != GCI_AlphaBand) {
       CfZone zone;
-      dates.emplace_back(b, band_time(dataset, path, b, &zone, &axes));
+      dates.emplace_back(b, band_time(dataset, path, b, &zone, axes ? axes : &own_axes));
       if (zones) zones->push_back(zone);
     }
   return dates;
@@ -836,13 +837,14 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       // metadata (a year of daily bands in one NetCDF or GRIB file): all its bands are read.
       std::vector<std::pair<int, TimePoint>> bands;
       std::vector<CfZone> band_zones;
+      std::map<std::string, bool> axes;  // this file's, read once for its dates and their conflicts
       if (time && !date_from_name(file)) require_undated_bands(*dataset, path, file, rules);
       if (time) {
         bands.emplace_back(rules.band, *time);
       } else {
         std::string metadata_problem;
         try {
-          if (!rules.one_date_per_file) bands = band_dates(*dataset, path, &band_zones);
+          if (!rules.one_date_per_file) bands = band_dates(*dataset, path, &band_zones, &axes);
         } catch (const InputError& e) {
           bands.clear();
           band_zones.clear();
@@ -870,7 +872,6 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
         first = false;
       }
       file_grids.emplace_back(file, grid);
-      std::map<std::string, bool> axes;  // this file's, read once for all its bands
       for (std::size_t k = 0; k < bands.size(); ++k) {
         const auto& [band, band_date] = bands[k];
         stack.layers_.push_back(layer_of(*dataset, path, band, band_date, rules));
@@ -978,8 +979,8 @@ Stack Stack::open(const std::string& input, const ValueRules& rules) {
       }
       stack.layers_.push_back(layer_of(*dataset, input, rules.band, t, rules));
     } else {
-      std::map<std::string, bool> axes;  // the file's, read once for all its bands
-      for (const auto& [band, date] : band_dates(*dataset, input)) {
+      std::map<std::string, bool> axes;  // the file's, read once for its dates and their conflicts
+      for (const auto& [band, date] : band_dates(*dataset, input, nullptr, &axes)) {
         stack.layers_.push_back(layer_of(*dataset, input, band, date, rules));
         const std::string conflict = date_conflict(*dataset, band, std::nullopt, &axes);
         if (!conflict.empty() && stack.date_conflicts_++ == 0)
