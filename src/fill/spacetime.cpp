@@ -377,7 +377,16 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     constexpr double usual_reach = bisquare_c;
     std::vector<double> own_deviation(cells, NAN);
     std::vector<double> deviations;
-    std::vector<int> seen;
+    // Each pixel's observed slots, found once: they do not change between rounds (each round
+    // had listed them again for every pixel).
+    std::vector<int> seen_slots;
+    std::vector<std::size_t> seen_from(pixels + 1, 0);
+    for (std::size_t p = 0; p < pixels; ++p) {
+      seen_from[p] = seen_slots.size();
+      for (int s = 0; s < n_slots; ++s)
+        if (base_weight[p * n_slots + s] > 0) seen_slots.push_back(s);
+    }
+    seen_from[pixels] = seen_slots.size();
     std::vector<double> scratch;
     // Deviations within the solver's own precision (its tolerance relative to the values' size)
     // are no evidence: on a field constant everywhere they had set the scale, and 0.8 % of the
@@ -388,9 +397,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
     for (int it = 0; it < options_.iterations; ++it) {
       deviations.clear();
       for (std::size_t p = 0; p < pixels; ++p) {
-        seen.clear();
-        for (int s = 0; s < n_slots; ++s)
-          if (base_weight[p * n_slots + s] > 0) seen.push_back(s);
+        const std::span<const int> seen(seen_slots.data() + seen_from[p], seen_from[p + 1] - seen_from[p]);
         for (std::size_t k = 0; k < seen.size(); ++k) {
           double around[6];
           int count = 0;
