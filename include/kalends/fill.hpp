@@ -39,8 +39,9 @@ Compression parse_compression(const std::string& text);
 
 /// What a date marks in the composite it names: its first day (MODIS), its middle, or its
 /// last day (monthly means stamped at the month's end, as CF files often do). `automatic`, the
-/// default, is `end` where every date is the last day of its month (dates_at_month_ends) and
-/// `start` otherwise; engines resolve it with resolve_date_marks once they know the dates.
+/// default, is `end` where the dates are the last days of their months (dates_at_month_ends),
+/// `middle` where they are their months' middles (dates_at_month_middles) and `start`
+/// otherwise; engines resolve it with resolve_date_marks once they know the dates.
 enum class DateMarks { start, middle, end, automatic };
 DateMarks parse_date_marks(const std::string& text);  // "auto", "start", "middle", "end"; UsageError
 

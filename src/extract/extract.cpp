@@ -725,14 +725,13 @@ ExtractResult run_extract(const ExtractRequest& request) {
     // The point on each grid, once (not once per layer on it: the geodesic distances of a
     // buffer's cells cost most).
     const std::size_t first_site = placements.size();
-    for (const auto& geometry : geometries) {
-      placements.push_back(geometry->place(p));
+    for (std::size_t g = 0; g < geometries.size(); ++g) {
+      placements.push_back(geometries[g]->place(p));
       const Placement& at = placements.back();
-      auto& [placed, inside] = placed_inside[placements.size() - 1 - first_site];
-      placed += p.has_coordinates;
-      inside += at.inside;
+      placed_inside[g].first += p.has_coordinates;
+      placed_inside[g].second += at.inside;
       // A point just outside the layer still has the cells of its buffer inside it.
-      buffers.push_back(at.located && request.buffer_metres > 0 ? geometry->buffer_cells(at)
+      buffers.push_back(at.located && request.buffer_metres > 0 ? geometries[g]->buffer_cells(at)
                                                                  : std::vector<std::pair<int, int>>{});
       cells_held += buffers.back().size();
     }

@@ -358,10 +358,10 @@ SurveyPoints read_survey_points(const PointsSource& source) {
                                       : columns ? " data row " + std::to_string(row)
                                                 : " feature " + std::to_string(row));
     if (csv && raw.blank) continue;  // only separators or spaces: nothing was written there
-    // A quote never closed swallows the rest of the file: said, not "a row cut short".
     if (csv && raw.stray_quote)
       throw InputError(where, "has a quote (\") inside a field that does not start with one (an inch or seconds "
                               "mark?); put the field in quotes and double the quote: \"12\"\" pipe\"");
+    // A quote never closed swallows the rest of the file: said, not "a row cut short".
     if (csv && raw.open_quote)
       throw InputError(where, "a quote (\") opened in this row is never closed");
     if (csv && raw.fields != defn.GetFieldCount())
