@@ -33,18 +33,37 @@ std::string ShardPlan::shard_folder(int k) const {
 
 std::string ShardPlan::file() const { return (fs::path(out) / ".kalends" / "plan.tsv").string(); }
 
+namespace {
+// A field with a tab or a line break would split the plan's lines; escaped as in the text
+// format of PostgreSQL's COPY (common practice for tab-separated files).
+std::string tsv_field(const std::string& text) {
+  std::string out;
+  out.reserve(text.size());
+  for (const char c : text) {
+    switch (c) {
+      case '\\': out += "\\\\"; break;
+      case '\t': out += "\\t"; break;
+      case '\n': out += "\\n"; break;
+      case '\r': out += "\\r"; break;
+      default: out += c;
+    }
+  }
+  return out;
+}
+}  // namespace
+
 std::string ShardPlan::text() const {
   std::string t = "# kalends shard plan: shard K of N computes its rows of every split step (kalends run JOB --shard K);\n"
                   "# the other steps run in kalends run JOB --finalize. Written by kalends plan.\n";
-  t += fmt::format("job\t{}\nout\t{}\nshards\t{}\ntile\t{}\nmemory_mib\t{}\nthreads\t{}\n", job_path, out, shards, tile,
+  t += fmt::format("job\t{}\nout\t{}\nshards\t{}\ntile\t{}\nmemory_mib\t{}\nthreads\t{}\n", tsv_field(job_path), tsv_field(out), shards, tile,
                    (memory_bytes + 1048575) / 1048576, threads);
   for (const PlannedStep& s : steps)
-    t += s.split ? fmt::format("step\t{}\t{}\tsplit\t{}\n", s.id, s.kind, s.root)
-                 : fmt::format("step\t{}\t{}\tfinalize\t{}\n", s.id, s.kind, s.why_whole);
+    t += fmt::format("step\t{}\t{}\t{}\t{}\n", tsv_field(s.id), tsv_field(s.kind), s.split ? "split" : "finalize",
+                     tsv_field(s.split ? s.root : s.why_whole));
   for (const auto& [root, g] : grids)
     for (int k = 1; k <= shards; ++k) {
       const Window w = window(root, k);
-      t += fmt::format("shard\t{}\t{}\trows\t{}\t{}\tcolumns\t{}\t{}\n", k, root, w.y, w.y + w.height, w.x, w.x + w.width);
+      t += fmt::format("shard\t{}\t{}\trows\t{}\t{}\tcolumns\t{}\t{}\n", k, tsv_field(root), w.y, w.y + w.height, w.x, w.x + w.width);
     }
   return t;
 }

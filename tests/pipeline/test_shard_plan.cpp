@@ -48,3 +48,34 @@ TEST_CASE("the same job and shard count give the same shards", "[pipeline][shard
   CHECK(a.shard_folder(3) == "/data/out/.kalends/shards/3-of-5");
   CHECK(a.file() == "/data/out/.kalends/plan.tsv");
 }
+
+TEST_CASE("a path with a tab or a line break stays one field of one line of the plan", "[pipeline][shards]") {
+  detail::ShardPlan plan;
+  plan.shards = 2;
+  Grid grid;
+  grid.width = 10;
+  grid.height = 600;
+  plan.grids["ndvi\tmain"] = grid;
+  plan.job_path = "/data/night\\ly/job.toml";
+  plan.out = "/data/out\nshards\t99\r";
+  detail::PlannedStep step;
+  step.id = "filled";
+  step.kind = "fill";
+  step.split = true;
+  step.root = "ndvi\tmain";
+  plan.steps.push_back(step);
+  const std::string text = plan.text();
+  std::vector<std::string> lines;
+  for (std::size_t at = 0, next; at < text.size(); at = next + 1) {
+    next = text.find('\n', at);
+    lines.push_back(text.substr(at, next - at));
+  }
+  // 2 comments, job, out, shards, tile, memory, threads, 1 step, 2 shard rows.
+  REQUIRE(lines.size() == 11);
+  CHECK(lines[2] == "job\t/data/night\\\\ly/job.toml");
+  CHECK(lines[3] == "out\t/data/out\\nshards\\t99\\r");
+  CHECK(lines[4] == "shards\t2");
+  CHECK(lines[8] == "step\tfilled\tfill\tsplit\tndvi\\tmain");
+  CHECK(lines[9].rfind("shard\t1\tndvi\\tmain\trows\t0\t", 0) == 0);
+  CHECK(text.find('\r') == std::string::npos);
+}
