@@ -4,6 +4,7 @@
 
 #include <fcntl.h>
 #include <sys/file.h>
+#include <sys/resource.h>
 #include <sys/statvfs.h>
 #include <unistd.h>
 
@@ -38,6 +39,19 @@ OutputError write_failure(const std::string& path, const std::string& what) {
     if (free_bytes < (4ull << 20))
       return OutputError(path, "no space left on the device (" + std::to_string(free_bytes >> 10) + " KiB free); " + what);
   }
+  // GDAL's words for a write past a file-size limit (EFBIG) or an allocation that failed name
+  // neither cause: the user had been left looking at the disk.
+  std::string lower = what;
+  std::transform(lower.begin(), lower.end(), lower.begin(), [](unsigned char c) { return char(std::tolower(c)); });
+  rlimit limit{};
+  if ((lower.find("write error") != std::string::npos || lower.find("too large") != std::string::npos ||
+       lower.find("cannot write") != std::string::npos || lower.find("write failed") != std::string::npos) &&
+      getrlimit(RLIMIT_FSIZE, &limit) == 0 && limit.rlim_cur != RLIM_INFINITY)
+    return OutputError(path, what + " (a file-size limit, ulimit -f, of " +
+                                 std::to_string(std::uintmax_t(limit.rlim_cur) >> 10) + " KiB is set: raise it)");
+  if (lower.find("memory") != std::string::npos && lower.find("out of memory?") == std::string::npos)
+    return OutputError(path, what + " (out of memory: give a smaller --memory budget or fewer --threads, or run where "
+                                    "more memory is free)");
   return OutputError(path, what);
 }
 

@@ -790,6 +790,25 @@ class Wording(kt.TempDirTestCase):
         self.assertNotIn("\x1b", done.stderr)
         self.assertIn("odd\\nname \\x1b[31mred", done.stderr)
 
+    def test_a_write_past_a_file_size_limit_names_the_limit(self):
+        # GDAL's "TIFFAppendToStrip:Write error at scanline 0" alone had sent the user to the
+        # disk; the limit (EFBIG, as SIGXFSZ is ignored) is named. Nothing is left behind.
+        import resource
+        import subprocess
+        good = os.path.join(self.tmp, "good-limit")
+        write_stack(good)
+        out = os.path.join(self.tmp, "limited")
+
+        def small_files():
+            resource.setrlimit(resource.RLIMIT_FSIZE, (4096, 4096))
+
+        done = subprocess.run([kt.KALENDS_BIN, "fill", os.path.join(good, "*.tif"), "--out", out, "--compress", "none"],
+                              capture_output=True, text=True, timeout=120, preexec_fn=small_files)
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertEqual(len(done.stderr.splitlines()), 1, done.stderr)
+        self.assertIn("(a file-size limit, ulimit -f, of 4 KiB is set: raise it)", done.stderr)
+        self.assertFalse(os.path.exists(out) and glob.glob(os.path.join(out, "*.tif")), os.listdir(out) if os.path.exists(out) else [])
+
 
 class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
     def test_a_period_too_long_and_the_flag_band_are_named(self):
