@@ -24,6 +24,11 @@ struct GlobalOptions {
 
 using Action = std::function<void()>;
 
+/// The `auto` rule of every --date-marks option (season/periods.cpp), for their help texts.
+inline constexpr const char* date_marks_auto_help =
+    "auto: end where nine in ten dates or more are the last days of their months, middle where they are their "
+    "14th to 16th, else start";
+
 /// `kalends fill`.
 Action add_fill_command(CLI::App& app, GlobalOptions& global);
 /// `kalends index`, `kalends seasons`, `kalends compare`.

@@ -41,8 +41,8 @@ Action add_extract_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--crs", r.points.crs, "CRS of CSV coordinates (EPSG code, WKT or PROJ string)")
       ->capture_default_str();
   sub->add_option("--date-marks", o->marks,
-                  "What a dated layer's date marks in its composite: start, middle or end; auto: end where nine in ten "
-                  "dates or more are the last days of their months (monthly means as CF files stamp them), else start")
+                  std::string("What a dated layer's date marks in its composite: start, middle or end; ") +
+                      date_marks_auto_help)
       ->capture_default_str();
   return [o, date_column, &global] {
     ExtractRequest& r = o->request;

@@ -110,8 +110,8 @@ Action add_fill_command(CLI::App& app, GlobalOptions& global) {
   sub->add_flag("--smooth", r.smooth, "Write the fitted curve everywhere, not only in gaps");
   sub->add_option("--every", o->every, "Also write a regular calendar: 1M (months) or N days from 1 January, such as 16d or 8d");
   sub->add_option("--date-marks", o->marks,
-                  "For --every: what an input date marks in its composite: start (MODIS), middle or end; auto: end "
-                  "where nine in ten dates or more are the last days of their months, else start")
+                  std::string("For --every: what an input date marks in its composite: start (MODIS), middle or end; ") +
+                      date_marks_auto_help)
       ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
       ->capture_default_str();
   sub->add_option("--name", r.name, "Output name prefix (default: from the input)");

@@ -82,8 +82,7 @@ Action add_seasons_command(CLI::App& app, GlobalOptions& global) {
   sub->add_option("--period", o->period, "Calendar: 1M (months) or N days from 1 January, such as 16d or 8d")->capture_default_str();
   sub->add_option("--years", o->years, "Years to use, e.g. 2004-2009 or 2006");
   sub->add_option("--date-marks", o->marks,
-                  "What an input date marks in its composite: start, middle or end; auto: end where nine in ten "
-                  "dates or more are the last days of their months, else start")
+                  std::string("What an input date marks in its composite: start, middle or end; ") + date_marks_auto_help)
       ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
       ->capture_default_str();
   sub->add_option("--prominence", r.cycle.prominence_share, "A peak is a season above this share of the amplitude")

@@ -56,8 +56,8 @@ struct InputOptions {
                     "Band of each single-date file (1 = value of fill outputs)")
         ->capture_default_str();
     sub->add_option("--date-marks", marks,
-                    "What an input date marks in its composite: start, middle or end; auto: end where nine in ten "
-                    "dates or more are the last days of their months, else start")
+                    std::string("What an input date marks in its composite: start, middle or end; ") +
+                        date_marks_auto_help)
         ->check(CLI::IsMember({"auto", "start", "middle", "end"}))
         ->capture_default_str();
   }

@@ -809,6 +809,15 @@ class Wording(kt.TempDirTestCase):
         self.assertIn("(a file-size limit, ulimit -f, of 4 KiB is set: raise it)", done.stderr)
         self.assertFalse(os.path.exists(out) and glob.glob(os.path.join(out, "*.tif")), os.listdir(out) if os.path.exists(out) else [])
 
+    def test_every_date_marks_help_gives_the_mid_month_rule(self):
+        # Version 0.3.24 reads dates on their months' 14th to 16th as middles; the help of all
+        # five commands had still said "else start".
+        for command in ("fill", "seasons", "suitability", "diurnal", "extract"):
+            done = kt.run_kalends([command, "--help"])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            text = " ".join(done.stdout.split())
+            self.assertIn("middle where they are their 14th to 16th, else start", text, command)
+
 
 class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
     def test_a_period_too_long_and_the_flag_band_are_named(self):
