@@ -127,7 +127,7 @@ HarmonicMethod::SeriesFit HarmonicMethod::fit(std::span<const double> x, std::sp
     // Where the value stands in for an observation (a gap, a rejected one), its error is the
     // curve's plus the scatter of observations about it.
     const double scatter = use[i] ? 0.0 : 1.0;
-    sd[i] = float(result.sigma * std::sqrt(std::max(0.0, row.dot(covariance * row)) + scatter));
+    sd[i] = BlockOutput::sd_value(result.sigma * std::sqrt(std::max(0.0, row.dot(covariance * row)) + scatter));
   }
   result.coefficients.assign(beta.data(), beta.data() + p);
   result.fitted = true;

@@ -567,7 +567,7 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       // A block with one observed cell in all has nothing to estimate a spread from: its
       // filled values had sd 0, a certainty no fill has. Unknown, as whittaker says of a series
       // too short. (A variance of 0 where the block's values are all equal stays 0.)
-      out.sd[o] = spread_known || weight[i] > 0 ? float(std::sqrt(variance)) : NAN;
+      out.sd[o] = spread_known || weight[i] > 0 ? BlockOutput::sd_value(std::sqrt(variance)) : NAN;
     }
   }
 }

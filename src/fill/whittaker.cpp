@@ -21,7 +21,8 @@ std::string number(double v) { return detail::shortest_number(v); }
 
 // An observation whose final robustness weight is below this is reported as rejected.
 constexpr double rejection_weight = 0.5;
-constexpr double largest_lambda = 1e10;  // the messages below say so
+constexpr double largest_lambda = 1e10;   // the messages below say so
+constexpr double smallest_lambda = 1e-6;  // likewise
 
 }  // namespace
 
@@ -44,11 +45,13 @@ WhittakerMethod::WhittakerMethod(const MethodOptions& options) : options_(option
   // Above about 1e10 the penalised system loses more than 1e-5 of the weights' scale to
   // rounding in double precision (eps * lambda * |D'D|, |D'D| <= 4^order): a lambda of 1e16 had
   // crashed and one of 1e25 filled every gap with about 0.
-  if (options.lambda && !(*options.lambda > 0 && *options.lambda <= largest_lambda))
-    throw UsageError("--lambda", "must be positive and at most 1e10, or 'auto'");
-  if (!(options.lambda_min > 0) || !(options.lambda_max >= options.lambda_min) ||
+  // Below about 1e-6 the curve only interpolates, as at 1e-6, while a gap's variance grows as
+  // 1 / lambda: 1e-100 had overflowed the sd of plain NDVI and stopped the whole fill.
+  if (options.lambda && !(*options.lambda >= smallest_lambda && *options.lambda <= largest_lambda))
+    throw UsageError("--lambda", "must be between 1e-6 and 1e10, or 'auto'");
+  if (!(options.lambda_min >= smallest_lambda) || !(options.lambda_max >= options.lambda_min) ||
       !(options.lambda_max <= largest_lambda))
-    throw UsageError("--lambda-range", "needs 0 < min <= max <= 1e10");
+    throw UsageError("--lambda-range", "needs 1e-6 <= min <= max <= 1e10");
   if (options.iterations < 0 || options.iterations > 50)
     throw UsageError("--iterations", "must be 0..50");
 }
@@ -207,7 +210,7 @@ WhittakerMethod::SeriesFit WhittakerMethod::smooth_banded(std::span<const float>
     fitted[i] = float(std::clamp(ws.z[i], low, high));
     const bool stands_in = !(ws.observed[i] > 0) || rejected[i];
     const double curve = sigma * sigma * std::max(0.0, ws.inverse.at(0, i));
-    sd[i] = float(std::sqrt(curve + (stands_in ? noise : 0.0)));
+    sd[i] = BlockOutput::sd_value(std::sqrt(curve + (stands_in ? noise : 0.0)));
   }
   fit.fitted = true;
   return fit;

@@ -59,6 +59,35 @@ TEST_CASE("Whittaker marks too-short series unfillable and envelope rejects low 
   CHECK(others <= 3 + 2);  // common practice: a handful of false alarms at most
 }
 
+TEST_CASE("Whittaker's sd past float's range is unknown, not infinite", "[fill][whittaker]") {
+  // Values near 1e37 with the smallest lambda taken: a gap's variance passes 3.4e38, which had
+  // been written inf and stopped the whole fill at the engine's check of the output.
+  MethodOptions options;
+  options.lambda = 1e-6;
+  WhittakerMethod method(options);
+  WhittakerMethod::Workspace ws;
+  const int n = 40;
+  std::vector<float> y(n), w(n, 1.0f), z(n), sd(n);
+  std::vector<std::uint8_t> rejected(n);
+  for (int i = 0; i < n; ++i) y[i] = float(3e37 * (1.0 + std::sin(i * 0.7)));
+  for (int i = 10; i < 30; ++i) w[i] = 0, y[i] = NAN;
+  REQUIRE(method.smooth(y, w, z, sd, rejected, ws).fitted);
+  int unknown = 0;
+  for (int i = 0; i < n; ++i) {
+    CHECK_FALSE(std::isinf(sd[i]));
+    unknown += std::isnan(sd[i]);
+  }
+  CHECK(unknown > 0);  // the gap's middle
+  CHECK(BlockOutput::sd_value(1e39) != BlockOutput::sd_value(1e39));
+  CHECK(BlockOutput::sd_value(3e38) == 3e38f);
+  CHECK_THROWS_AS(WhittakerMethod([] {
+                    MethodOptions o;
+                    o.lambda = 1e-7;
+                    return o;
+                  }()),
+                  UsageError);
+}
+
 TEST_CASE("gap limit leaves long gaps and far ends unfilled", "[fill][gaps]") {
   const std::vector<TimePoint> times = [] {
     std::vector<TimePoint> t;

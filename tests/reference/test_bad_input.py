@@ -756,10 +756,15 @@ class BadInput(kt.TempDirTestCase):
                  (["--memory", "1K"], "--memory", "below 1 MiB"),
                  # A lambda of 1e16 or inf had crashed, 1e25 filled every gap with about 0, and
                  # an infinite range searched for ever.
-                 (["--lambda", "1e16"], "--lambda", "at most 1e10"),
-                 (["--lambda", "inf"], "--lambda", "at most 1e10"),
+                 (["--lambda", "1e16"], "--lambda", "and 1e10"),
+                 (["--lambda", "inf"], "--lambda", "and 1e10"),
                  (["--lambda-range", "1,inf"], "--lambda-range", "<= 1e10"),
                  (["--lambda-range", "1e20,1e30"], "--lambda-range", "<= 1e10"),
+                 # 1e-100 had overflowed the sd of plain NDVI and stopped the fill with exit 1 and
+                 # "fill method 'whittaker' returned an sd of inf".
+                 (["--lambda", "1e-100"], "--lambda", "between 1e-6 and 1e10"),
+                 (["--lambda", "1e-7"], "--lambda", "between 1e-6 and 1e10"),
+                 (["--lambda-range", "1e-9,1"], "--lambda-range", "1e-6 <= min"),
                  # NaN and -2 had been taken as no limit.
                  (["--max-extrapolation", "nan"], "--max-extrapolation", "-1 (no limit)"),
                  (["--max-extrapolation", "-2"], "--max-extrapolation", "-1 (no limit)")]
