@@ -28,6 +28,7 @@
 #include <tuple>
 #include <memory>
 
+#include "io/folder_read_lock.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "io/text_file.hpp"
@@ -592,6 +593,9 @@ ExtractResult run_extract(const ExtractRequest& request) {
     for (const SurveyPoint& p : r.points.points)
       if (++seen[p.id] == 2) r.repeated_ids.push_back(p.id);
   }
+  // Held until the table is written: no fill may replace what is read meanwhile.
+  detail::FolderReadLocks reading;
+  for (const std::string& path : request.covariates) reading.hold(path);
   std::vector<CovariateSeries> found = find_covariates(
       request.covariates, request.include_descriptors ? Descriptors::all : Descriptors::none, request.name_prefixes);
   // The table replaces neither the points it reads nor a layer: both would be lost.

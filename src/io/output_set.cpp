@@ -248,7 +248,7 @@ OutputFolder::OutputFolder(const std::string& path) {
     ::close(lock_);
     lock_ = -1;
     // A file system without locks (some network mounts) runs unguarded, as before.
-    if (held) throw OutputError(path, "another kalends command is writing into this folder; try again when it ends");
+    if (held) throw OutputError(path, "another kalends command is writing into or reading this folder; try again when it ends");
   }
   // Holding the folder, the hidden temporaries a killed run left here are nobody's: removed, as
   // they would otherwise stay for good. Only names of the forms kalends writes (".<output>.partial"

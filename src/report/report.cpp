@@ -19,6 +19,7 @@
 #include <regex>
 #include <sstream>
 
+#include "io/folder_read_lock.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
 #include "kalends/covariates.hpp"
@@ -561,6 +562,9 @@ ReportSummary run_report(const ReportRequest& request) {
   if (fs::is_regular_file(request.html, ec) && !read_file(request.html).starts_with(page_start))
     throw UsageError("--html '" + request.html + "'",
                      "the file exists and is not a kalends report; give a new name or remove it first");
+  // Held until the page is written: no command may replace what is read meanwhile.
+  detail::FolderReadLocks reading;
+  reading.hold(request.folder);
   std::vector<std::string> searched{request.folder}, prefixes;
   if (!request.steps.empty()) {
     searched.clear();

@@ -212,7 +212,7 @@ class ValidateOptions(kt.TempDirTestCase):
             done = kt.run_kalends(["validate", os.path.join(self.stack, "ndvi_*.tif"), "--methods", "whittaker",
                                    "--out", out])
             self.assertEqual(done.returncode, 1, done.stderr)
-            self.assertIn("another kalends command is writing into this folder", done.stderr)
+            self.assertIn("another kalends command is writing into or reading this folder", done.stderr)
             self.assertEqual(sorted(os.listdir(out)), sorted([os.path.basename(stale), os.path.basename(users)]))
         finally:
             os.close(fd)

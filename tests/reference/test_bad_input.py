@@ -398,7 +398,7 @@ class BadInput(kt.TempDirTestCase):
                             ["seasons", self.previous]):
                 done = kt.run_kalends(command + ["--out", out])
                 self.assertEqual(done.returncode, 1, done.stderr)
-                self.assertIn("another kalends command is writing into this folder", done.stderr)
+                self.assertIn("another kalends command is writing into or reading this folder", done.stderr)
                 self.assertEqual(snapshot(out), self.previous_files)
         finally:
             os.close(holder)

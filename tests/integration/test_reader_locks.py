@@ -1,0 +1,118 @@
+"""extract and report hold a shared lock on the folders they read; writers an exclusive one.
+
+A fill replacing a folder while `extract` or `report` read it had given a table (or a page) that
+mixed the two fills' files, exit 0. Now a reader started while a command writes there, or while
+another process's job run works on the output folder, is refused (exit 2, one line naming the
+folder), and a writer started while a reader reads is refused (exit 1). The other process is
+simulated here by this test holding the locks with flock(2), so nothing depends on timing.
+
+The stack is a small invented one (mechanics only).
+
+Run: /usr/bin/python3 -m unittest -v tests/integration/test_reader_locks.py
+"""
+
+import fcntl
+import os
+import shutil
+import sys
+import unittest
+
+import numpy as np
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "pylib"))
+import kalends_testlib as kt  # noqa: E402
+
+GEOTRANSFORM = (500000.0, 30.0, 0.0, 7000000.0, 0.0, -30.0)
+EPSG = 32736
+
+
+class ReaderLocks(kt.TempDirTestCase):
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        stack = os.path.join(cls.tmp, "stack")
+        os.makedirs(stack)
+        rng = np.random.default_rng(5)
+        for k in range(6):
+            values = (0.4 + 0.1 * rng.random((20, 24))).astype(np.float32)
+            kt.write_raster(os.path.join(stack, "ndvi_2021-%02d-01.tif" % (k + 1)), values,
+                            geotransform=GEOTRANSFORM, epsg=EPSG, nodata=float("nan"))
+        cls.filled = os.path.join(cls.tmp, "filled")
+        cls.done = kt.run_kalends(["-q", "fill", os.path.join(stack, "*.tif"), "--out", cls.filled, "--threads", "1"])
+        cls.points = os.path.join(cls.tmp, "points.csv")
+        with open(cls.points, "w") as f:
+            f.write("id,x,y,date\nA,%f,%f,2021-03-10\n" % (GEOTRANSFORM[0] + 100, GEOTRANSFORM[3] - 100))
+
+    def setUp(self):
+        self.assertEqual(self.done.returncode, 0, self.done.stderr)
+
+    def extract(self, source, out_name):
+        return kt.run_kalends(["extract", source, "--points", self.points, "--x-column", "x", "--y-column", "y",
+                               "--crs", "EPSG:%d" % EPSG, "--out", os.path.join(self.tmp, out_name)])
+
+    def hold(self, path, mode):
+        fd = os.open(path, os.O_RDONLY)
+        fcntl.flock(fd, mode | fcntl.LOCK_NB)
+        self.addCleanup(os.close, fd)
+        return fd
+
+    def test_a_folder_being_written_is_not_read(self):
+        fd = self.hold(self.filled, fcntl.LOCK_EX)  # a fill writing into it
+        for source in (self.filled, os.path.join(self.filled, "*.tif")):
+            done = self.extract(source, "table.csv")
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(len(done.stderr.splitlines()), 1, done.stderr)
+            self.assertIn("filled: another kalends command is writing into this folder now", done.stderr)
+            self.assertFalse(os.path.exists(os.path.join(self.tmp, "table.csv")))
+        done = kt.run_kalends(["report", self.filled, "--html", os.path.join(self.tmp, "page.html")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("another kalends command is writing into this folder now", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "page.html")))
+        os.close(fd)
+        self._cleanups.clear()
+        done = self.extract(self.filled, "table.csv")
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+    def test_a_subfolder_being_written_is_not_read(self):
+        # A job's output folder: the fill step's folder inside it is what a writer holds.
+        top = os.path.join(self.tmp, "job-out")
+        os.makedirs(top, exist_ok=True)
+        inner = os.path.join(top, "fill")
+        if not os.path.exists(inner):
+            shutil.copytree(self.filled, inner)
+        self.hold(inner, fcntl.LOCK_EX)
+        done = kt.run_kalends(["report", top, "--html", os.path.join(self.tmp, "page2.html")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("fill: another kalends command is writing into this folder now", done.stderr)
+
+    def test_a_job_run_of_another_process_is_waited_for(self):
+        top = os.path.join(self.tmp, "job-running")
+        shutil.copytree(self.filled, os.path.join(top, "fill"))
+        os.makedirs(os.path.join(top, ".kalends"))
+        lock = os.path.join(top, ".kalends", "lock")
+        with open(lock, "w") as f:
+            f.write("424242")
+        self.hold(lock, fcntl.LOCK_EX)
+        done = kt.run_kalends(["report", top, "--html", os.path.join(self.tmp, "page3.html")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("a kalends run (pid 424242) is working on this output folder now", done.stderr)
+        done = self.extract(top, "table3.csv")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("job-running: a kalends run (pid 424242)", done.stderr)
+
+    def test_a_folder_being_read_is_not_written(self):
+        self.hold(self.filled, fcntl.LOCK_SH)  # an extract reading it
+        before = sorted(os.listdir(self.filled))
+        done = kt.run_kalends(["fill", os.path.join(self.tmp, "stack", "*.tif"), "--out", self.filled,
+                               "--lambda", "3", "--threads", "1"])
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertIn("another kalends command is writing into or reading this folder", done.stderr)
+        self.assertEqual(sorted(os.listdir(self.filled)), before)
+        # Readers share: a second reader goes on.
+        done = self.extract(self.filled, "table4.csv")
+        self.assertEqual(done.returncode, 0, done.stderr)
+
+
+if __name__ == "__main__":
+    unittest.main()
