@@ -51,6 +51,8 @@ struct RunEvents {
   std::function<void(const std::string& step, const std::string& kind, const std::string& reason)> step_started;
   std::function<void(const std::string& step, int done, int total)> progress;
   std::function<void(const StepReport&)> step_finished;
+  /// With wait_for_lock: another run holds the output folder; called once, before waiting.
+  std::function<void(const std::string& folder, const std::string& pid)> waiting;
 };
 
 /// Runs (or with dry_run, plans) the job. Job-file errors throw UsageError with the file and

@@ -91,6 +91,14 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
       // Each line reaches a log file as it happens: a run killed later leaves what it did.
       std::fflush(stdout);
     };
+    events.waiting = [=](const std::string& folder, const std::string& pid) {
+      if (json)
+        fmt::print("{{\"event\": \"waiting\", \"out\": \"{}\", \"pid\": \"{}\"}}\n", detail::json_escape(folder),
+                   detail::json_escape(pid));
+      else
+        fmt::print(stderr, "note: waiting for the run (pid {}) that holds {} to end\n", pid, folder);
+      std::fflush(stdout);
+    };
     events.progress = [=](const std::string& step, int done, int total) {
       if (!terminal) return;
       const double seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - *started).count();

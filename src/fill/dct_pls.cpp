@@ -87,7 +87,9 @@ std::string default_wisdom_file() {
     return v && *v ? v : "";
   };
   std::string folder = set("KALENDS_CACHE_DIR");
-  if (folder.empty() && !set("XDG_CACHE_HOME").empty()) folder = set("XDG_CACHE_HOME") + "/kalends";
+  // The XDG Base Directory specification: a relative path in XDG_CACHE_HOME is invalid and
+  // ignored (it had put the cache under whatever folder a cron job started in).
+  if (folder.empty() && set("XDG_CACHE_HOME").starts_with('/')) folder = set("XDG_CACHE_HOME") + "/kalends";
   if (folder.empty() && !set("HOME").empty()) folder = set("HOME") + "/.cache/kalends";
   return folder.empty() ? "" : folder + "/fftw-wisdom";
 }
@@ -180,9 +182,13 @@ const void* DctPlanCache::plan(const Shape3& shape, bool inverse, Pass pass, boo
       const bool keep = !planning_.wisdom_file.empty();
       const std::string file = planning_.wisdom_file + (single ? ".single" : "");
       if (keep && !wisdom_read_[single]) {
-        // A missing or unreadable file is an empty cache, not an error.
-        if (single) fftwf_import_wisdom_from_filename(file.c_str());
-        else fftw_import_wisdom_from_filename(file.c_str());
+        // A missing or unreadable file is an empty cache, not an error; only a plain file is
+        // read (a FIFO of that name had made the fill wait for ever).
+        std::error_code ec;
+        if (std::filesystem::is_regular_file(file, ec)) {
+          if (single) fftwf_import_wisdom_from_filename(file.c_str());
+          else fftw_import_wisdom_from_filename(file.c_str());
+        }
         wisdom_read_[single] = true;
       }
       made = plan_r2r(FFTW_MEASURE | FFTW_WISDOM_ONLY);

@@ -78,7 +78,7 @@ struct DctPlanning {
   std::string wisdom_file;
 };
 
-/// The default wisdom file: $KALENDS_CACHE_DIR, else $XDG_CACHE_HOME/kalends, else
+/// The default wisdom file: $KALENDS_CACHE_DIR, else $XDG_CACHE_HOME/kalends (absolute), else
 /// $HOME/.cache/kalends, then /fftw-wisdom; empty when none of them is set.
 std::string default_wisdom_file();
 

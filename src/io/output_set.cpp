@@ -198,8 +198,11 @@ bool write_text_atomically(const std::string& path, const std::string& text) {
     std::error_code ec;
     // Read as a file, a folder had given "basic_filebuf::underflow error reading the file".
     if (fs::is_directory(path, ec)) throw UsageError(path, "is a folder; give a file name");
-    std::ifstream existing(path, std::ios::binary);
-    if (existing) {
+    // Only a plain file is read for the comparison: a FIFO there had made the write wait for
+    // ever (a wisdom cache, a table).
+    std::ifstream existing;
+    if (fs::is_regular_file(path, ec)) existing.open(path, std::ios::binary);
+    if (existing.is_open() && existing) {
       const std::string old((std::istreambuf_iterator<char>(existing)), std::istreambuf_iterator<char>());
       if (old == text) return false;
     }

@@ -148,11 +148,18 @@ constexpr const char* shard_notes_file = ".kalends-notes";
 
 class FolderLock {
  public:
-  FolderLock(const std::string& folder, bool wait) {
+  FolderLock(const std::string& folder, bool wait,
+             const std::function<void(const std::string&, const std::string&)>& waiting = {}) {
     const std::string path = (fs::path(folder) / "lock").string();
     fd_ = ::open(path.c_str(), O_RDWR | O_CREAT, 0644);
     if (fd_ < 0) throw OutputError(path, "cannot create the lock file");
-    if (::flock(fd_, LOCK_EX | (wait ? 0 : LOCK_NB)) != 0) {
+    // Said before waiting: a --wait run had waited in silence, and a cron log did not say why.
+    bool held = ::flock(fd_, LOCK_EX | LOCK_NB) != 0;
+    if (held && wait) {
+      if (waiting) waiting(fs::path(folder).parent_path().string(), pid_in_lock(fd_));
+      held = ::flock(fd_, LOCK_EX) != 0;
+    }
+    if (held) {
       const std::string pid = pid_in_lock(fd_);
       ::close(fd_);
       fd_ = -1;
@@ -447,7 +454,7 @@ class Runner {
       std::error_code ec;
       fs::create_directories(state_dir, ec);
       if (ec) throw OutputError(state_dir.string(), "cannot create: " + ec.message());
-      lock.emplace(state_dir.string(), options_.wait_for_lock);
+      lock.emplace(state_dir.string(), options_.wait_for_lock, events_.waiting);
       require_room_for_state((state_dir / "state.sqlite").string());
       db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string(), false, !options_.dry_run);
     }

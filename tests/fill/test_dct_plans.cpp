@@ -7,7 +7,9 @@
 #include <tbb/task_arena.h>
 
 #include <cmath>
+#include <cstdlib>
 #include <cstring>
+#include <optional>
 #include <filesystem>
 #include <fstream>
 #include <random>
@@ -319,4 +321,27 @@ TEST_CASE("the coarse-grid start changes where the solve starts, not its solutio
   // Measured: 0.0090 against 0.0157, after 15 iterations against 37.
   REQUIRE(error_with < error_without);
   REQUIRE(2 * with.iterations < without.iterations);
+}
+
+TEST_CASE("the wisdom cache ignores a relative XDG_CACHE_HOME", "[fill][dct]") {
+  // The XDG Base Directory specification: such a path is invalid. It had put the cache under
+  // whatever folder a cron job started in.
+  auto saved = [](const char* name) -> std::optional<std::string> {
+    const char* v = std::getenv(name);
+    return v ? std::optional<std::string>(v) : std::nullopt;
+  };
+  const auto kalends = saved("KALENDS_CACHE_DIR"), xdg = saved("XDG_CACHE_HOME"), home = saved("HOME");
+  ::unsetenv("KALENDS_CACHE_DIR");
+  ::setenv("HOME", "/home/someone", 1);
+  ::setenv("XDG_CACHE_HOME", "relative/dir", 1);
+  CHECK(default_wisdom_file() == "/home/someone/.cache/kalends/fftw-wisdom");
+  ::setenv("XDG_CACHE_HOME", "/var/cache/user", 1);
+  CHECK(default_wisdom_file() == "/var/cache/user/kalends/fftw-wisdom");
+  auto restore = [](const char* name, const std::optional<std::string>& v) {
+    if (v) ::setenv(name, v->c_str(), 1);
+    else ::unsetenv(name);
+  };
+  restore("KALENDS_CACHE_DIR", kalends);
+  restore("XDG_CACHE_HOME", xdg);
+  restore("HOME", home);
 }

@@ -2247,6 +2247,32 @@ class Faults(kt.TempDirTestCase):
         self.assertIn("another kalends run", second.stderr)
         self.assertEqual(len(second.stderr.strip().splitlines()), 1)
 
+    def test_a_waiting_run_says_what_it_waits_for(self):
+        # --wait had waited in silence: a cron log showed nothing for as long as it waited.
+        import fcntl
+        out = os.path.join(self.tmp, "waited")
+        os.makedirs(os.path.join(out, ".kalends"))
+        lock = os.path.join(out, ".kalends", "lock")
+        with open(lock, "w") as f:
+            f.write("4242")
+        fd = os.open(lock, os.O_RDWR)
+        fcntl.flock(fd, fcntl.LOCK_EX)  # another run holds the folder
+        errors = os.path.join(self.tmp, "waited.err")
+        with open(errors, "w") as f:
+            waiting = subprocess.Popen([kt.KALENDS_BIN, "-q", "run", self.job, "--out", out, "--wait"],
+                                       stdout=subprocess.DEVNULL, stderr=f)
+        said = ""
+        for _ in range(300):
+            with open(errors) as f:
+                said = f.read()
+            if said or waiting.poll() is not None:
+                break
+            time.sleep(0.05)
+        self.assertIsNone(waiting.poll(), said)
+        os.close(fd)
+        self.assertEqual(waiting.wait(timeout=300), 0)
+        self.assertIn("note: waiting for the run (pid 4242) that holds %s to end" % out, said)
+
     def test_a_file_size_limit_below_the_state_database_is_refused_before_any_step(self):
         # A limit below the state database's size had let every step work and publish, then fail
         # to record it ("state database: disk I/O error"), later steps not reached.

@@ -823,6 +823,21 @@ class Wording(kt.TempDirTestCase):
             text = " ".join(done.stdout.split())
             self.assertIn("middle where they are their 14th to 16th, else start", text, command)
 
+    def test_a_wisdom_cache_that_is_no_plain_file_is_passed_over(self):
+        # A FIFO named fftw-wisdom in the cache had made a spacetime fill wait for ever.
+        import subprocess
+        good = os.path.join(self.tmp, "good-fifo")
+        write_stack(good)
+        cache = os.path.join(self.tmp, "fifo-cache")
+        os.makedirs(cache)
+        for name in ("fftw-wisdom", "fftw-wisdom.single"):
+            os.mkfifo(os.path.join(cache, name))
+        env = dict(os.environ, KALENDS_CACHE_DIR=cache)
+        done = subprocess.run([kt.KALENDS_BIN, "-q", "fill", os.path.join(good, "*.tif"), "--out",
+                               os.path.join(self.tmp, "fifo-out"), "--method", "spacetime", "--threads", "1"],
+                              capture_output=True, text=True, timeout=120, env=env)
+        self.assertEqual(done.returncode, 0, done.stderr)
+
 
 class SeasonsOptionsOutOfRange(kt.TempDirTestCase):
     def test_a_period_too_long_and_the_flag_band_are_named(self):
