@@ -172,6 +172,16 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
   std::int64_t observed_cells = 0;
   for (const int count : observations) observed_cells += count;
   const bool spread_known = observed_cells >= 2;
+  // Observations on one date alone tell nothing of how values change in time: the sd of the
+  // other dates' values is unknown, where it had been 0 (one value everywhere) up to 640 days away.
+  int observed_slot = -1;
+  bool one_slot = true;
+  for (std::size_t i = 0; i < cells && one_slot; ++i)
+    if (weight[i] > 0) {
+      const int slot = int(i % n_slots);
+      one_slot = observed_slot < 0 || observed_slot == slot;
+      observed_slot = slot;
+    }
 
   // Pixels with no observation within the halo on any date: nothing to fill them from. A
   // summed-area table of observation counts makes the window test O(1) per pixel.
@@ -567,7 +577,8 @@ void SpacetimeMethod::fill(const BlockInput& in, BlockOutput& out) const {
       // A block with one observed cell in all has nothing to estimate a spread from: its
       // filled values had sd 0, a certainty no fill has. Unknown, as whittaker says of a series
       // too short. (A variance of 0 where the block's values are all equal stays 0.)
-      out.sd[o] = spread_known || weight[i] > 0 ? BlockOutput::sd_value(std::sqrt(variance)) : NAN;
+      const bool spread = weight[i] > 0 || (spread_known && (!one_slot || s == observed_slot));
+      out.sd[o] = spread ? BlockOutput::sd_value(std::sqrt(variance)) : NAN;
     }
   }
 }

@@ -196,6 +196,36 @@ TEST_CASE("spacetime gives the same values whatever the number of threads", "[fi
   CHECK(filled > cells / 4);  // the gaps were filled, not left NaN on both
 }
 
+TEST_CASE("spacetime knows no sd for other dates where every observation is of one date", "[fill][spacetime]") {
+  // Every pixel observed once, on the same date, with the same value: the filled values of the
+  // other 22 dates had sd 0 (certainty) up to 350 days away. Mechanics only: invented data.
+  std::vector<TimePoint> times;
+  for (int i = 0; i < 23; ++i) times.push_back(TimePoint{std::int64_t(i) * 16 * 86400});
+  const TimeGrid grid = TimeGrid::build(times);
+  const int rows = 12, cols = 10, observed_slot = 7;
+  const std::size_t cells = std::size_t(rows) * cols * grid.size;
+  std::vector<float> values(cells, NAN), weights(cells, 0.0f);
+  for (std::size_t p = 0; p < std::size_t(rows) * cols; ++p) {
+    values[p * grid.size + observed_slot] = 0.5f;
+    weights[p * grid.size + observed_slot] = 1.0f;
+  }
+  MethodOptions options;
+  options.spacetime_fft_wisdom = "none";
+  const auto method = make_spacetime(options);
+  const Window all{0, 0, cols, rows};
+  const BlockInput in{&grid, all, all, values, weights};
+  BlockOutput out;
+  out.resize(cells);
+  method->fill(in, out);
+  check_block_output(*method, out, cells);
+  for (std::size_t i = 0; i < cells; ++i) {
+    CAPTURE(i);
+    REQUIRE(std::isfinite(out.fitted[i]));
+    if (int(i % grid.size) == observed_slot) CHECK(std::isfinite(out.sd[i]));
+    else CHECK(std::isnan(out.sd[i]));
+  }
+}
+
 TEST_CASE("spacetime's sd does not fall deeper into a cloud than its rings reach", "[fill][spacetime]") {
   // One date lies under a 40 x 40 px cloud; the rings of analogues reach halo / radius = 2
   // rounds of 6 px into it, the model alone fills the rest. A value there is no better known
