@@ -1425,6 +1425,11 @@ class Runner {
         if (!options_.skip_bad || attempt > 1000 || e.where().empty() || !fs::is_regular_file(e.where()) ||
             std::find(excluded_.begin(), excluded_.end(), e.where()) != excluded_.end())
           throw;
+        // A file rewritten since the run listed it is on its way, not damaged: left out, its old
+        // outputs had stayed (its years not redone) and the file was recorded as bad.
+        if (changed_since_scan(e.where()))
+          throw InputError(e.where(), "changed while this run read it (a delivery in progress?), so it was not left "
+                                      "out as damaged; nothing of this step was written: run again when it is complete");
         excluded_.push_back(e.where());
         report_.skipped_inputs.push_back(e.where() + ": " + e.reason());
         fingerprints_.clear();
@@ -1442,6 +1447,14 @@ class Runner {
     detail::StepRecord done{step.id, step.kind, fingerprint_of(step), "done", "", "", report.seconds, outputs,
                             inputs_read, parameters_described(step)};
     db_->step_done(done);
+  }
+
+  // Whether `path` changed (size, or modification or status-change time) since this run listed
+  // and checksummed it.
+  bool changed_since_scan(const std::string& path) const {
+    for (const detail::InputRecord& record : scan_.records)
+      if (record.path == path) return !unchanged_since(path, record);
+    return false;
   }
 
   // Run whole, the step's earlier rasters that it no longer makes (the files of its old name

@@ -1995,6 +1995,39 @@ class ArrivalsDuringARun(kt.TempDirTestCase):
             mine = g.Open(path.replace(os.path.join(folder, "scratch"), os.path.join(folder, "out"))).ReadAsArray()
             np.testing.assert_array_equal(mine, g.Open(path).ReadAsArray(), path)
 
+    def test_a_composite_rewritten_while_a_step_reads_it_is_not_left_out_as_damaged(self):
+        # With --skip-bad, a composite re-delivered in place during the run had been read half
+        # written (or found replaced), called damaged and left out: its old outputs stayed, its
+        # year was not redone, and the file was recorded as bad. It is a failure of the step now,
+        # as without --skip-bad: nothing written, nothing recorded as skipped.
+        source = kt.shared_path("alaska-ndvi", "masked30")
+        folder = os.path.join(self.tmp, "redelivered")
+        inputs = os.path.join(folder, "inputs")
+        os.makedirs(inputs)
+        for path in sorted(glob.glob(os.path.join(source, "ndvi_*.tif"))):
+            shutil.copy(path, inputs)
+        job = write_job(folder,
+                        '[job]\nout = "out"\nthreads = 1\n[inputs.ndvi]\nstack = "inputs/ndvi_*.tif"\n[[step]]\n'
+                        'id = "fill"\ndo = "fill"\ninput = "ndvi"\nmethod = "spacetime"\n')
+        log = os.path.join(folder, "run.jsonl")
+        process = run_until_a_step_starts(["run", job, "--skip-bad"], log)
+        target = os.path.join(inputs, "ndvi_2008-07-11.tif")
+        with open(target, "r+b") as f:  # the first part of a slow copy over it
+            f.truncate(os.path.getsize(target) // 3)
+        with open(log) as f:
+            if '"step_finished"' in f.read():
+                process.communicate(timeout=300)
+                self.skipTest("the step ended before the composite was rewritten")
+        _, stderr = process.communicate(timeout=300)
+        with open(log) as f:
+            said = stderr + f.read()
+        self.assertEqual(process.returncode, 2, said)
+        self.assertIn("ndvi_2008-07-11.tif: changed while this run read it", said)
+        db = sqlite3.connect(os.path.join(folder, "out", ".kalends", "state.sqlite"))
+        self.assertEqual(db.execute("SELECT COUNT(*) FROM skipped").fetchone()[0], 0)
+        db.close()
+        self.assertFalse(glob.glob(os.path.join(folder, "out", "fill", "*.tif")))
+
 
 class Faults(kt.TempDirTestCase):
     @classmethod
