@@ -8,6 +8,7 @@
 #include <filesystem>
 
 #include "io/file_glob.hpp"
+#include "io/output_set.hpp"
 #include "kalends/error.hpp"
 
 namespace kalends::detail {
@@ -69,15 +70,18 @@ void FolderReadLocks::hold_folder(const std::string& folder) {
       throw InputError(folder, "a kalends run" + (pid.empty() ? std::string() : " (pid " + pid + ")") +
                                    " is working on this output folder now; run again when it ends");
   }
-  const int fd = ::open(folder.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-  if (fd < 0) return;
-  if (::flock(fd, LOCK_SH | LOCK_NB) != 0) {
+  // As writers lock (OutputFolder): the folder, else its lock file where there is one.
+  for (const std::string& what : {folder, (fs::path(folder) / folder_lock_file).string()}) {
+    const int fd = ::open(what.c_str(), O_RDONLY | O_CLOEXEC);
+    if (fd < 0) return;
+    if (::flock(fd, LOCK_SH | LOCK_NB) == 0) {
+      descriptors_.push_back(fd);
+      return;
+    }
     const bool writing = errno == EWOULDBLOCK;
     ::close(fd);
     if (writing) throw InputError(folder, "another kalends command is writing into this folder now; run again when it ends");
-    return;  // no locks on this file system
   }
-  descriptors_.push_back(fd);
 }
 
 }  // namespace kalends::detail

@@ -245,14 +245,19 @@ OutputFolder::OutputFolder(const std::string& path) {
   if (ec) throw OutputError(path, "cannot create the output folder: " + ec.message());
   // flock on the folder itself leaves no lock file behind; it is released when the process
   // ends, however it ends.
-  lock_ = ::open(path.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-  if (lock_ >= 0 && ::flock(lock_, LOCK_EX | LOCK_NB) != 0) {
+  auto take = [&](const std::string& what, int flags) {
+    lock_ = ::open(what.c_str(), flags | O_CLOEXEC, 0644);
+    if (lock_ < 0) return false;
+    if (::flock(lock_, LOCK_EX | LOCK_NB) == 0) return true;
     const bool held = errno == EWOULDBLOCK;
     ::close(lock_);
     lock_ = -1;
-    // A file system without locks (some network mounts) runs unguarded, as before.
     if (held) throw OutputError(path, "another kalends command is writing into or reading this folder; try again when it ends");
-  }
+    return false;
+  };
+  // Where a folder cannot be locked (NFS locks only files open for writing), a hidden lock
+  // file in it is; a file system with no locks at all runs unguarded, as before.
+  if (!take(path, O_RDONLY | O_DIRECTORY)) take((fs::path(path) / folder_lock_file).string(), O_RDWR | O_CREAT);
   // Holding the folder, the hidden temporaries a killed run left here are nobody's: removed, as
   // they would otherwise stay for good. Only names of the forms kalends writes (".<output>.partial"
   // and ".<output>.<tag>.partial" of its rasters, tables and summaries); a user's own stay.
@@ -270,8 +275,13 @@ OutputFolder::OutputFolder(const std::string& path) {
 OutputFolder::~OutputFolder() {
   if (lock_ >= 0) ::close(lock_);
   std::error_code ec;
-  for (auto it = created_.rbegin(); it != created_.rend(); ++it)
+  for (auto it = created_.rbegin(); it != created_.rend(); ++it) {
+    // A folder this run made and left with nothing but its lock file goes, lock file and all.
+    const fs::path lock_file = fs::path(*it) / folder_lock_file;
+    if (fs::exists(lock_file, ec) && std::distance(fs::directory_iterator(*it, ec), fs::directory_iterator()) == 1)
+      fs::remove(lock_file, ec);
     if (!fs::is_empty(*it, ec) || ec || !fs::remove(*it, ec)) break;
+  }
 }
 
 void require_out_apart_from(const Stack& stack, const std::string& out_dir, const std::string& option) {

@@ -54,6 +54,10 @@ struct OutputSpec {
 /// writing into the same folder is refused (OutputError), since both would publish the same
 /// names. On destruction the folders it created are removed again if the run left them empty
 /// (a run that failed before writing), so that a failed run leaves the disk as it found it.
+/// The lock file of an output folder on a file system where the folder itself cannot be
+/// locked (NFS), hidden in it.
+inline constexpr const char* folder_lock_file = ".kalends-lock";
+
 class OutputFolder {
  public:
   explicit OutputFolder(const std::string& path);

@@ -155,9 +155,20 @@ class FolderLock {
     if (fd_ < 0) throw OutputError(path, "cannot create the lock file");
     // Said before waiting: a --wait run had waited in silence, and a cron log did not say why.
     bool held = ::flock(fd_, LOCK_EX | LOCK_NB) != 0;
-    if (held && wait) {
+    int error = held ? errno : 0;
+    if (held && error == EWOULDBLOCK && wait) {
       if (waiting) waiting(fs::path(folder).parent_path().string(), pid_in_lock(fd_));
       held = ::flock(fd_, LOCK_EX) != 0;
+      error = held ? errno : 0;
+    }
+    if (held && error != EWOULDBLOCK) {
+      // Not held by another run: this file system has no locks (it had named the pid of a run
+      // long ended). Its state database could not be kept whole either (SQLite locks it).
+      ::close(fd_);
+      fd_ = -1;
+      throw OutputError(path, fmt::format("cannot be locked ({}): on a file system without locks two runs could "
+                                          "write at once; give the job an output folder on one with locks",
+                                          std::strerror(error)));
     }
     if (held) {
       const std::string pid = pid_in_lock(fd_);

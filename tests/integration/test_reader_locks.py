@@ -114,5 +114,105 @@ class ReaderLocks(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 0, done.stderr)
 
 
+SHIM = r"""
+#define _GNU_SOURCE
+#include <dlfcn.h>
+#include <errno.h>
+#include <stdlib.h>
+#include <sys/file.h>
+#include <sys/stat.h>
+/* flock(2) as on NFS: a folder (open read-only) cannot be locked; with SHIM_NO_LOCKS nothing can. */
+int flock(int fd, int operation) {
+  static int (*real)(int, int);
+  if (!real) real = (int (*)(int, int))dlsym(RTLD_NEXT, "flock");
+  struct stat st;
+  if (getenv("SHIM_NO_LOCKS")) { errno = ENOLCK; return -1; }
+  if (fstat(fd, &st) == 0 && S_ISDIR(st.st_mode)) { errno = EBADF; return -1; }
+  return real(fd, operation);
+}
+"""
+
+
+class FileSystemsWithoutFolderLocks(kt.TempDirTestCase):
+    """On NFS flock(2) locks only files open for writing, so a folder cannot be locked: writers
+    had then run unguarded, and two fills into one folder wrote the same temporaries. A shim
+    (LD_PRELOAD, compiled here) gives kalends NFS's answers; this test's own locks are real."""
+
+    @classmethod
+    def setUpClass(cls):
+        super().setUpClass()
+        kt.require_binary(kt.KALENDS_BIN)
+        source = os.path.join(cls.tmp, "shim.c")
+        with open(source, "w") as f:
+            f.write(SHIM)
+        cls.shim = os.path.join(cls.tmp, "shim.so")
+        import subprocess
+        built = subprocess.run(["cc", "-shared", "-fPIC", "-o", cls.shim, source, "-ldl"], capture_output=True, text=True)
+        cls.built = built.returncode == 0 and os.path.exists(cls.shim)
+        cls.stack = os.path.join(cls.tmp, "stack")
+        os.makedirs(cls.stack)
+        rng = np.random.default_rng(9)
+        for k in range(6):
+            kt.write_raster(os.path.join(cls.stack, "ndvi_2021-%02d-01.tif" % (k + 1)),
+                            (0.4 + 0.1 * rng.random((16, 16))).astype(np.float32),
+                            geotransform=GEOTRANSFORM, epsg=EPSG, nodata=float("nan"))
+
+    def setUp(self):
+        if not self.built:
+            self.skipTest("no C compiler for the flock shim")
+
+    def kalends(self, args, **extra):
+        import subprocess
+        env = dict(os.environ, LD_PRELOAD=self.shim, **extra)
+        return subprocess.run([kt.KALENDS_BIN] + args, capture_output=True, text=True, timeout=300, env=env)
+
+    def test_a_lock_file_stands_in_for_the_folder(self):
+        out = os.path.join(self.tmp, "filled")
+        fill = ["fill", os.path.join(self.stack, "*.tif"), "--out", out, "--threads", "1"]
+        done = self.kalends(fill)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        lock = os.path.join(out, ".kalends-lock")
+        self.assertTrue(os.path.exists(lock))
+        fd = os.open(lock, os.O_RDWR)
+        self.addCleanup(os.close, fd)
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # another fill at work there
+        before = {n: os.path.getmtime(os.path.join(out, n)) for n in os.listdir(out)}
+        done = self.kalends(fill + ["--lambda", "3"])
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertIn("another kalends command is writing into or reading this folder", done.stderr)
+        self.assertEqual({n: os.path.getmtime(os.path.join(out, n)) for n in os.listdir(out)}, before)
+        points = os.path.join(self.tmp, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,x,y,date\nA,%f,%f,2021-03-10\n" % (GEOTRANSFORM[0] + 100, GEOTRANSFORM[3] - 100))
+        done = self.kalends(["extract", out, "--points", points, "--x-column", "x", "--y-column", "y",
+                             "--crs", "EPSG:%d" % EPSG, "--out", os.path.join(self.tmp, "t.csv")])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("another kalends command is writing into this folder now", done.stderr)
+        # A fill that fails leaves no folder of its own behind, lock file or not: a composite
+        # whose pixels cannot be read fails it once its outputs are begun.
+        damaged = os.path.join(self.tmp, "damaged")
+        shutil.copytree(self.stack, damaged)
+        path = os.path.join(damaged, "ndvi_2021-04-01.tif")
+        with open(path, "r+b") as f:
+            f.truncate(os.path.getsize(path) - 200)
+        fresh = os.path.join(self.tmp, "never", "made")
+        done = self.kalends(["fill", os.path.join(damaged, "*.tif"), "--out", fresh])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("ndvi_2021-04-01.tif", done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "never")), done.stderr)
+
+    def test_a_job_run_refuses_a_file_system_without_locks(self):
+        folder = os.path.join(self.tmp, "job")
+        os.makedirs(folder)
+        job = os.path.join(folder, "job.toml")
+        with open(job, "w") as f:
+            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "%s/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
+                    'input = "ndvi"\n' % self.stack)
+        done = self.kalends(["run", job], SHIM_NO_LOCKS="1")
+        self.assertEqual(done.returncode, 1, done.stderr)
+        self.assertEqual(len(done.stderr.splitlines()), 1, done.stderr)
+        self.assertIn("lock: cannot be locked (No locks available)", done.stderr)
+        self.assertNotIn("another kalends run", done.stderr)
+
 if __name__ == "__main__":
     unittest.main()
