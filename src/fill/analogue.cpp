@@ -245,10 +245,16 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
           const std::size_t first = first_observed[p], observed_count = first_observed[p + 1] - first;
           own_weight.resize(observed_count);
           own_value.resize(observed_count);
+          double own_square = 0;
           for (std::size_t k = 0; k < observed_count; ++k) {
             own_weight[k] = weight[p * slots + observed_slot[first + k]];
             own_value[k] = y[p * slots + observed_slot[first + k]];
+            own_square += own_value[k] * own_value[k];
           }
+          // The least prior spread of a pair, in the data's own units: 1e-12 at p's level 0.5 (as
+          // fixed before), so an sd no longer has a floor near 1e-6 whatever the units (a series in
+          // units of 1e-6 had sd 15 times its own). Above 1e-250, as a pair of zeros needs one.
+          const double least_prior = std::max(4e-12 * own_square / double(observed_count), 1e-250);
           for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
             for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
               const std::size_t q = std::size_t(rr) * cols + cc;
@@ -274,7 +280,7 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
               // The prior of the seasonal spread: the pair's spread over all its dates.
               const double t0 = all.lanes[0], t1 = all.lanes[1], t2 = all.lanes[2];
               if (t0 < settings.min_pairs_in_all) continue;
-              const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), 1e-12);
+              const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), least_prior);
               kernel_sums(sums.data(), usable_bin.data(), int(usable.size()), taps4.data(), taps,
                           around.data());
               for (std::size_t u = 0; u < usable.size(); ++u) {

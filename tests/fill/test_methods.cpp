@@ -196,6 +196,50 @@ TEST_CASE("spacetime gives the same values whatever the number of threads", "[fi
   CHECK(filled > cells / 4);  // the gaps were filled, not left NaN on both
 }
 
+TEST_CASE("spacetime's values and sd follow the data's units", "[fill][spacetime]") {
+  // A variable in units that make its values about 1e-6 (a precipitation rate in kg m-2 s-1):
+  // a fixed floor of a pair's spread had held its sd near 5e-7, 15 times its own at scale 1.
+  // Mechanics only: invented data.
+  std::vector<TimePoint> times;
+  for (int i = 0; i < 23; ++i) times.push_back(TimePoint{std::int64_t(i) * 16 * 86400});
+  const TimeGrid grid = TimeGrid::build(times);
+  const int rows = 24, cols = 20;
+  const std::size_t cells = std::size_t(rows) * cols * grid.size;
+  std::mt19937 random(11);
+  std::normal_distribution<double> noise(0.0, 0.01);
+  std::uniform_real_distribution<double> uniform(0.0, 1.0);
+  std::vector<float> values(cells), weights(cells), small(cells);
+  for (int r = 0; r < rows; ++r)
+    for (int c = 0; c < cols; ++c)
+      for (int s = 0; s < grid.size; ++s) {
+        const std::size_t i = (std::size_t(r) * cols + c) * grid.size + s;
+        const bool cloud = uniform(random) < 0.3 || (std::abs(r - 12) < 4 && std::abs(c - 10) < 4 && s % 3 == 0);
+        values[i] = cloud ? NAN : float(0.3 + 0.01 * c + 0.2 * std::sin(2 * M_PI * s / 23.0) + noise(random));
+        weights[i] = cloud ? 0.0f : 1.0f;
+        small[i] = values[i] * 1e-6f;
+      }
+  MethodOptions options;
+  options.spacetime_fft_wisdom = "none";
+  const auto method = make_spacetime(options);
+  const Window all{0, 0, cols, rows};
+  auto run = [&](const std::vector<float>& v) {
+    const BlockInput in{&grid, all, all, v, weights};
+    BlockOutput out;
+    out.resize(cells);
+    method->fill(in, out);
+    return out;
+  };
+  const BlockOutput one = run(values), scaled = run(small);
+  double worst_value = 0, worst_sd = 0;
+  for (std::size_t i = 0; i < cells; ++i) {
+    if (weights[i] > 0 || !std::isfinite(one.fitted[i])) continue;
+    worst_value = std::max(worst_value, std::abs(scaled.fitted[i] * 1e6 - one.fitted[i]));
+    worst_sd = std::max(worst_sd, std::abs(scaled.sd[i] * 1e6 / one.sd[i] - 1));
+  }
+  CHECK(worst_value < 1e-4);
+  CHECK(worst_sd < 1e-3);
+}
+
 TEST_CASE("spacetime knows no sd for other dates where every observation is of one date", "[fill][spacetime]") {
   // Every pixel observed once, on the same date, with the same value: the filled values of the
   // other 22 dates had sd 0 (certainty) up to 350 days away. Mechanics only: invented data.
