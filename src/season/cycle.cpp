@@ -103,8 +103,10 @@ std::array<Harmonic, 2> HarmonicAnalysis::analyse(std::span<const double> series
   for (int k = 1; k <= 2; ++k) {
     const std::complex<double> x = spectrum[k];
     result[k - 1].amplitude = 2.0 * std::abs(x) / n;
-    // A harmonic lost in the rounding of the values (a flat series) has no peak.
-    if (!(result[k - 1].amplitude > 1e-12 * std::max(1.0, largest))) {
+    // A harmonic lost in the rounding of the values (a flat series) has no peak. Relative to
+    // the values alone: with a floor of 1e-12 a cycle of amplitude 1e-15 (a variable in small
+    // units) had none either.
+    if (!(result[k - 1].amplitude > 1e-12 * largest)) {
       result[k - 1].peak_doy = NAN;
       continue;
     }

@@ -400,7 +400,8 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                           std::isfinite(d.mean) ? double(d.seasons) : NAN, d.main_peak_doy,
                           d.season[0].start_doy, d.season[0].end_doy, d.season[0].length_days, d.season[0].integral,
                           d.season[1].start_doy, d.season[1].end_doy, d.season[1].length_days, d.season[1].integral};
-      for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = float(v[b]);
+      // A value past float's range (an integral of values near 1e38) is none, not infinite.
+      for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = std::abs(v[b]) <= 3.4028234663852886e38 ? float(v[b]) : NAN;
     };
     // A period's day-weighted mean at pixel p, and in `share` what it rests on: of its days with
     // a value, those observed (a fill's flag 0); without flags, of its covered days, those with one.

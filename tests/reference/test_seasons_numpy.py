@@ -132,6 +132,14 @@ class Harmonics(unittest.TestCase):
         # A flat series has no harmonic peak (its phase would be rounding noise).
         ours = season_probe("harmonics %d\n%s\n" % (n, series_text(np.full(n, 0.3))))
         self.assertTrue(np.isnan(ours["annual_peak_doy"]) and np.isnan(ours["semiannual_peak_doy"]), ours)
+        for level in (0.0, 1e-15):
+            ours = season_probe("harmonics %d\n%s\n" % (n, series_text(np.full(n, level))))
+            self.assertTrue(np.isnan(ours["annual_peak_doy"]), (level, ours))
+        # A cycle in small units peaks where it peaks in large ones (below amplitude 1e-12 it
+        # had no peak day).
+        x = 3e-15 * np.cos(2 * np.pi * (np.arange(n) - 5) / n)
+        ours = season_probe("harmonics %d\n%s\n" % (n, series_text(x)))
+        self.assertAlmostEqual(ours["annual_peak_doy"], 0.5 + 5.5 * 365 / 12, places=6)
 
 
 def modis_dates(years, start=2010):
@@ -578,6 +586,29 @@ class CycleYearsAlone(kt.TempDirTestCase):
             b = g.Open(os.path.join(runs["some"], name))
             np.testing.assert_array_equal(a.ReadAsArray(), b.ReadAsArray(), name)
             a = b = None
+
+
+class ValuesNearFloatsLimit(kt.TempDirTestCase):
+    def test_a_layer_past_floats_range_is_empty_not_infinite(self):
+        # A season's integral (value x days) of values near 3e38 had been written +inf; the
+        # other layers are values of the input's own range. Invented data, one peak a year.
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "near-limit")
+
+        def peak(doy, rng):
+            return np.full((4, 5), 3e38 * np.exp(-0.5 * ((doy - 200) / 30.0) ** 2))
+
+        write_dated_ndvi(folder, modis_dates(3), 1, peak)
+        out = os.path.join(self.tmp, "near-limit-seasons")
+        done = kt.run_kalends(["-q", "seasons", os.path.join(folder, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        ds = g.Open(os.path.join(out, "ndvi_cycle_synoptic.tif"))
+        values = ds.ReadAsArray()
+        names = [ds.GetRasterBand(b + 1).GetDescription() for b in range(ds.RasterCount)]
+        ds = None
+        self.assertFalse(np.isinf(values).any(), [n for n, v in zip(names, values) if np.isinf(v).any()])
+        self.assertTrue(np.isnan(values[names.index("season1_integral")]).all())
+        self.assertTrue(np.isfinite(values[names.index("max")]).all())
 
 
 class SeasonsAcrossTheRecordsEdges(kt.TempDirTestCase):
