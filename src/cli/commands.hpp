@@ -24,6 +24,14 @@ struct GlobalOptions {
 
 using Action = std::function<void()>;
 
+/// For the options that take two numbers, A,B: where the text has more commas than that, the
+/// likely cause (a decimal comma, as German or French settings write numbers), else "".
+inline std::string decimal_comma_hint(const std::string& text) {
+  int commas = 0;
+  for (const char c : text) commas += c == ',';
+  return commas > 1 ? " (write decimals with a point, 18.5,34.5: the comma separates the two numbers)" : "";
+}
+
 /// The `auto` rule of every --date-marks option (season/periods.cpp), for their help texts.
 inline constexpr const char* date_marks_auto_help =
     "auto: end where nine in ten dates or more are the last days of their months, middle where they are their "

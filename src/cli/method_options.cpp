@@ -31,7 +31,7 @@ std::pair<double, double> parse_range(const std::string& text, const std::string
     }
   } catch (const std::exception&) {
   }
-  throw UsageError(option + " '" + text + "'", "expected MIN,MAX");
+  throw UsageError(option + " '" + text + "'", "expected MIN,MAX" + decimal_comma_hint(text));
 }
 
 MethodOptionTexts::MethodOptionTexts()

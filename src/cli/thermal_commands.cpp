@@ -17,8 +17,8 @@ namespace {
 std::pair<std::string, std::string> split_pair(const std::string& text, const std::string& option,
                                                const std::string& expected) {
   const auto comma = text.find(',');
-  if (comma == std::string::npos || comma == 0 || comma + 1 == text.size())
-    throw UsageError(option + " '" + text + "'", "expected " + expected);
+  if (comma == std::string::npos || comma == 0 || comma + 1 == text.size() || !decimal_comma_hint(text).empty())
+    throw UsageError(option + " '" + text + "'", "expected " + expected + decimal_comma_hint(text));
   return {text.substr(0, comma), text.substr(comma + 1)};
 }
 

@@ -765,6 +765,8 @@ class BadInput(kt.TempDirTestCase):
                  (["--lambda", "1e-100"], "--lambda", "between 1e-6 and 1e10"),
                  (["--lambda", "1e-7"], "--lambda", "between 1e-6 and 1e10"),
                  (["--lambda-range", "1e-9,1"], "--lambda-range", "1e-6 <= min"),
+                 # A decimal comma (German or French settings) is named as the likely cause.
+                 (["--valid-range", "-0,2,1,0"], "--valid-range", "write decimals with a point"),
                  # NaN and -2 had been taken as no limit.
                  (["--max-extrapolation", "nan"], "--max-extrapolation", "-1 (no limit)"),
                  (["--max-extrapolation", "-2"], "--max-extrapolation", "-1 (no limit)")]
