@@ -16,7 +16,7 @@ CalendarPeriod CalendarPeriod::parse(const std::string& text, const std::string&
     p.kind = Kind::month;
     return p;
   }
-  if (text.size() >= 2 && text.back() == 'd') {
+  if (text.size() >= 2 && (text.back() == 'd' || text.back() == 'D')) {
     try {
       std::size_t used = 0;
       const int days = std::stoi(text.substr(0, text.size() - 1), &used);

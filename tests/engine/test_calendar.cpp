@@ -74,6 +74,9 @@ TEST_CASE("N-day periods restart on 1 January", "[engine][calendar]") {
                                            "2022-01-17", "2022-02-02"});
   CHECK_THROWS_AS(CalendarPeriod::parse("2w"), UsageError);
   CHECK_THROWS_AS(CalendarPeriod::parse("0d"), UsageError);
+  // Either case, as 1m and 1M are: 16D had been refused while 1m was taken.
+  CHECK(CalendarPeriod::parse("16D").label() == "16d");
+  CHECK(CalendarPeriod::parse("1m").label() == "1M");
 }
 
 TEST_CASE("calendar periods of a season no composite covers are out of season", "[engine][calendar]") {
