@@ -1,6 +1,7 @@
 #include "fill/analogue.hpp"
 
 #include <algorithm>
+#include <array>
 #include <cmath>
 #include <cstdint>
 #include <mutex>
@@ -115,40 +116,73 @@ struct alignas(32) Sums4 {
 #define KALENDS_VECTOR_CLONES
 #endif
 
-// out[u] = sum_j taps4[j] * sums[at[u] + j], j in order (the same sums as one lane at a time).
-// The listed bins are independent, so the processor overlaps their additions.
+// The day-of-year kernel's sums at the listed bins for four pairs at once (pair_sums4's layout):
+// lane i of out[4 b + j] = sum_j' kernel[j'] * soa[3 tap_bin[b, j'] + j] (j < 3), and with the
+// kernel's squares on lane 0 for j = 3 (for n_eff), j' in order: the same products, added in the
+// same order, as one pair at a time with the year's wrapped margins copied (versions up to
+// 0.3.24). The listed bins are independent, so the processor overlaps their additions.
 KALENDS_VECTOR_CLONES
-void kernel_sums(const Sums4* sums, const int* at, int n, const Sums4* taps4, int taps, Sums4* out) {
-  for (int u = 0; u < n; ++u) {
-    const Sums4* around = sums + at[u];
-    Lanes total = {0, 0, 0, 0};
-    for (int j = 0; j < taps; ++j) total += taps4[j].lanes * around[j].lanes;
-    out[u].lanes = total;
+void smooth_bins(const Sums4* soa, const int* tap_bin, const int* listed, std::size_t n,
+                 const double* kernel, const double* kernel_squared, int taps, Sums4* out) {
+  for (std::size_t u = 0; u < n; ++u) {
+    const int b = listed[u];
+    Lanes k0 = {0, 0, 0, 0}, k1 = k0, k2 = k0, k3 = k0;
+    const int* tb = tap_bin + std::size_t(b) * taps;
+    for (int j = 0; j < taps; ++j) {
+      const Sums4* at = soa + 3 * std::size_t(tb[j]);
+      k0 += kernel[j] * at[0].lanes;
+      k1 += kernel[j] * at[1].lanes;
+      k2 += kernel[j] * at[2].lanes;
+      k3 += kernel_squared[j] * at[0].lanes;
+    }
+    Sums4* o = out + 4 * std::size_t(b);
+    o[0].lanes = k0;
+    o[1].lanes = k1;
+    o[2].lanes = k2;
+    o[3].lanes = k3;
   }
 }
 
-// Adds each co-observed date's {m, m d, m d^2, m} to its bin, over p's observed slots `slot`
-// (bins `bin`; p's weights and values there, in the same order, `wp` and `yp`), and to `all`.
-// Without branches: a third of q's dates or more may be missing, at random. Returns whether any
-// date was co-observed.
+// A pair's sums over p's observed slots `slot` (bins `bin`; p's weights and values there, in the
+// same order, `wp` and `yp`): per season bin, of m, m d and m d^2 over the co-observed dates, m
+// the product of the two weights and d the difference, and the same over all dates. Four
+// neighbours at once, one in each lane: lane i of soa[3 b + j] is what the one-pair version of
+// versions up to 0.3.24 put in lane j of its core[b] for neighbour i (lane 3 there equals lane 0),
+// lane i of total[j] what it put in `all`; `shared[i]`: whether any date was co-observed.
+// Without branches (a third of q's dates or more may be missing, at random): the terms are
+// computed for every date and masked to 0 where q has no weight, whatever yq holds there.
+// Each neighbour's sums are added in the same order with the same operations, so the values
+// are the same bits; four pairs share each pass over p's dates, and the running totals, one
+// dependent chain per pair before, carry four pairs each.
 KALENDS_VECTOR_CLONES
-bool pair_sums(const double* wp, const double* yp, const double* wq, const double* yq,
-               const int* slot, const int* bin, std::size_t n, Sums4* core, Sums4& all) {
-  bool shared = false;
-  Lanes total = {0, 0, 0, 0};
+void pair_sums4(const double* wp, const double* yp, const double* const* wq,
+                const double* const* yq, const int* slot, const int* bin, std::size_t n,
+                Sums4* soa, Lanes* total, bool* shared) {
+  const Lanes zero = {0, 0, 0, 0};
+  Lanes t0 = zero, t1 = zero, t2 = zero;
+  Lanes seen = zero;
   for (std::size_t k = 0; k < n; ++k) {
     const int s = slot[k];
-    const bool both = wq[s] > 0;
-    const double m = both ? wp[k] * wq[s] : 0.0;
-    const double d = both ? yp[k] - yq[s] : 0.0;
-    const double md = m * d;
-    const Lanes add = {m, md, md * d, m};
-    core[bin[k]].lanes += add;
-    total += add;
-    shared |= both;
+    const Lanes w = {wq[0][s], wq[1][s], wq[2][s], wq[3][s]};
+    const Lanes v = {yq[0][s], yq[1][s], yq[2][s], yq[3][s]};
+    const auto both = w > zero;
+    const Lanes m0 = wp[k] * w;
+    const Lanes d = yp[k] - v;
+    const Lanes md0 = m0 * d;
+    const Lanes m = both ? m0 : zero, md = both ? md0 : zero, md2 = both ? md0 * d : zero;
+    Sums4* at = soa + 3 * std::size_t(bin[k]);
+    at[0].lanes += m;
+    at[1].lanes += md;
+    at[2].lanes += md2;
+    t0 += m;
+    t1 += md;
+    t2 += md2;
+    seen = both ? w : seen;
   }
-  all.lanes = total;
-  return shared;
+  total[0] = t0;
+  total[1] = t1;
+  total[2] = t2;
+  for (int i = 0; i < 4; ++i) shared[i] = seen[i] > 0;
 }
 
 }  // namespace
@@ -163,17 +197,14 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   int half = 0;
   const std::vector<double> kernel = season_kernel(grid, settings.season_days, half);
   const int radius = settings.radius;
-  // A pair's sums per bin are kept with `half` wrapped copies on each side (the year wraps
-  // around), so the kernel centred on bin b reads entries b .. b + 2 half in a row.
   const int taps = 2 * half + 1;
-  const int padded = bins + 2 * half;
-  // Each margin entry and the core entry it copies.
-  std::vector<std::pair<int, int>> margin;
-  for (int k = 0; k < padded; ++k)
-    if (k < half || k >= half + bins) margin.emplace_back(k, half + ((k - half) % bins + bins) % bins);
-  std::vector<Sums4> taps4(kernel.size());
-  for (std::size_t j = 0; j < kernel.size(); ++j)
-    taps4[j].lanes = Lanes{kernel[j], kernel[j], kernel[j], kernel[j] * kernel[j]};
+  // The core bin of each bin's kernel taps (the year wraps around), and the taps' squares (for
+  // n_eff).
+  std::vector<int> tap_bin(std::size_t(bins) * taps);
+  for (int b = 0; b < bins; ++b)
+    for (int j = 0; j < taps; ++j) tap_bin[std::size_t(b) * taps + j] = ((b - half + j) % bins + bins) % bins;
+  std::vector<double> kernel_squared(kernel.size());
+  for (std::size_t j = 0; j < kernel.size(); ++j) kernel_squared[j] = kernel[j] * kernel[j];
 
   // Known values: observed cells (variance 0), then each round's predictions. A round writes
   // its predictions to `estimate` and their propagation variance to `known_variance` (read only
@@ -204,6 +235,14 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
         observed_bin[k++] = grid.bin_of_slot[std::size_t(s)];
       }
 
+  // Per pixel, one bit per slot, in words of 64: the slots a neighbour can lend a value on in
+  // this round (round 0: its known values; later rounds: those predicted in the round before).
+  // A pending gap's usable neighbours are then one AND per word, not a test per slot and
+  // neighbour.
+  const std::size_t words = (std::size_t(slots) + 63) / 64;
+  std::vector<std::uint64_t> lend_bits(pixels * words, 0);
+  for (std::size_t i = 0; i < cells; ++i)
+    if (!std::isnan(value[i])) lend_bits[(i / slots) * words + (i % slots) / 64] |= std::uint64_t(1) << ((i % slots) % 64);
   std::vector<std::size_t> predicted;
   std::mutex predicted_mutex;
   // After the first round a gap can gain a prediction only from a neighbour predicted in the
@@ -212,21 +251,34 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   std::vector<std::uint16_t> near_new;
   // For the same reason a pending gap (p, s) of a later round needs only the neighbours whose
   // value at s is new (predicted last round): every pair with an older value there was tried
-  // before and failed. `fresh` marks last round's predictions.
-  std::vector<std::uint8_t> fresh;
+  // before and failed. `lend_bits` marks last round's predictions then.
   for (int round = 0; round < settings.rounds; ++round) {
     if (round > 0) {
       count_in_windows(rows, cols, slots, radius, predicted, near_new);
-      fresh.assign(cells, 0);
-      for (std::size_t i : predicted) fresh[i] = 1;
+      std::fill(lend_bits.begin(), lend_bits.end(), 0);
+      for (std::size_t i : predicted)
+        lend_bits[(i / slots) * words + (i % slots) / 64] |= std::uint64_t(1) << ((i % slots) % 64);
     }
     predicted.clear();
     // Rows in parallel: a round reads only cells known before it and writes only p's own
     // unknown cells, so the rows are independent.
     parallel_ranges(std::size_t(rows), 2, [&](std::size_t row_begin, std::size_t row_end) {
       std::vector<double> sum_w(slots), sum_wx(slots), count(slots);
-      std::vector<Sums4> sums(static_cast<std::size_t>(padded)), around(static_cast<std::size_t>(slots));
       std::vector<int> pending, usable, usable_bin;
+      std::vector<std::uint64_t> pending_bits(words);
+      // Up to four neighbours with usable dates, summed together (pair_sums4), then each
+      // finished in the window's order, as one at a time.
+      struct Candidate {
+        std::size_t q;
+        std::size_t from, count;  // its usable slots in `usable` / `usable_bin`
+      };
+      std::array<Candidate, 4> batch;
+      int batched = 0;
+      std::vector<Sums4> soa(3 * std::size_t(bins)), smoothed(4 * std::size_t(bins));
+      std::vector<std::uint8_t> bin_needed(std::size_t(bins), 0);
+      std::vector<int> needed_bins;
+      Lanes totals[3];
+      bool shared[4];
       std::vector<double> own_weight, own_value;  // p's, on its observed slots
       std::vector<std::size_t> mine;
       for (int r = int(row_begin); r < int(row_end); ++r)
@@ -234,10 +286,13 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
           const std::size_t p = std::size_t(r) * cols + c;
           if (observations[p] == 0) continue;
           pending.clear();
+          std::fill(pending_bits.begin(), pending_bits.end(), 0);
           for (int s = 0; s < slots; ++s)
             if (slot_observed[s] && std::isnan(value[p * slots + s]) &&
-                (round == 0 || near_new[p * slots + s] > 0))
+                (round == 0 || near_new[p * slots + s] > 0)) {
               pending.push_back(s);
+              pending_bits[std::size_t(s) / 64] |= std::uint64_t(1) << (s % 64);
+            }
           if (pending.empty()) continue;
           std::fill(sum_w.begin(), sum_w.end(), 0.0);
           std::fill(sum_wx.begin(), sum_wx.end(), 0.0);
@@ -255,38 +310,51 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
           // fixed before), so an sd no longer has a floor near 1e-6 whatever the units (a series in
           // units of 1e-6 had sd 15 times its own). Above 1e-250, as a pair of zeros needs one.
           const double least_prior = std::max(4e-12 * own_square / double(observed_count), 1e-250);
-          for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
-            for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
-              const std::size_t q = std::size_t(rr) * cols + cc;
-              if (q == p || observations[q] == 0) continue;
-              const double* vq = &value[q * slots];
-              const std::uint8_t* new_at_q = round > 0 ? &fresh[q * slots] : nullptr;
-              usable.clear();
-              usable_bin.clear();
-              for (int s : pending)
-                if (new_at_q ? new_at_q[s] != 0 : !std::isnan(vq[s])) {
-                  usable.push_back(s);
-                  usable_bin.push_back(grid.bin_of_slot[std::size_t(s)]);
+          // Finishes the batch's neighbours in the order they were listed.
+          auto finish_batch = [&] {
+            if (batched == 0) return;
+            const double* wq[4];
+            const double* yq[4];
+            for (int i = 0; i < 4; ++i) {
+              const std::size_t q = batch[std::size_t(i < batched ? i : 0)].q;
+              wq[i] = &weight[q * slots];
+              yq[i] = &y[q * slots];
+            }
+            std::fill(soa.begin(), soa.end(), Sums4{});
+            pair_sums4(own_weight.data(), own_value.data(), wq, yq, &observed_slot[first],
+                       &observed_bin[first], observed_count, soa.data(), totals, shared);
+            // The day-of-year kernel's sums at the bins the batch lists, for the four pairs at
+            // once: lane i of smoothed[4 b + j] is lane j of what kernel_sums gave for pair i
+            // at bin b (the same products added in the same order; the year wraps around
+            // through `tap_bin` instead of copied margins).
+            needed_bins.clear();
+            for (int i = 0; i < batched; ++i)
+              for (std::size_t u = 0; u < batch[std::size_t(i)].count; ++u) {
+                const int b = usable_bin[batch[std::size_t(i)].from + u];
+                if (!bin_needed[std::size_t(b)]) {
+                  bin_needed[std::size_t(b)] = 1;
+                  needed_bins.push_back(b);
                 }
-              if (usable.empty()) continue;
-              // Differences on co-observed dates, summed per season bin, over p's observed slots.
-              Sums4* core = sums.data() + half;
-              std::fill(core, core + bins, Sums4{});
-              Sums4 all;
-              if (!pair_sums(own_weight.data(), own_value.data(), &weight[q * slots], &y[q * slots],
-                             &observed_slot[first], &observed_bin[first], observed_count, core, all))
-                continue;
-              for (const auto& [to, from] : margin) sums[std::size_t(to)] = sums[std::size_t(from)];
+              }
+            for (const int b : needed_bins) bin_needed[std::size_t(b)] = 0;
+            smooth_bins(soa.data(), tap_bin.data(), needed_bins.data(), needed_bins.size(),
+                        kernel.data(), kernel_squared.data(), taps, smoothed.data());
+            for (int i = 0; i < batched; ++i) {
+              if (!shared[i]) continue;
+              const Candidate& cand = batch[std::size_t(i)];
+              const std::size_t q = cand.q;
+              const double* vq = &value[q * slots];
               // The prior of the seasonal spread: the pair's spread over all its dates.
-              const double t0 = all.lanes[0], t1 = all.lanes[1], t2 = all.lanes[2];
+              const double t0 = totals[0][i], t1 = totals[1][i], t2 = totals[2][i];
               if (t0 < settings.min_pairs_in_all) continue;
               const double prior = std::max(t2 / t0 - (t1 / t0) * (t1 / t0), least_prior);
-              kernel_sums(sums.data(), usable_bin.data(), int(usable.size()), taps4.data(), taps,
-                          around.data());
-              for (std::size_t u = 0; u < usable.size(); ++u) {
-                const int s = usable[u];
-                const Lanes& sum = around[u].lanes;
-                const double s0 = sum[0], s1 = sum[1], s2 = sum[2], k2 = sum[3];
+              const int* listed = usable.data() + cand.from;
+              const int* listed_bin = usable_bin.data() + cand.from;
+              for (std::size_t u = 0; u < cand.count; ++u) {
+                const int s = listed[u];
+                const Sums4* sum = &smoothed[4 * std::size_t(listed_bin[u])];
+                const double s0 = sum[0].lanes[i], s1 = sum[1].lanes[i], s2 = sum[2].lanes[i],
+                             k2 = sum[3].lanes[i];
                 // n_eff = s0^2 / k2 must reach min_pairs.
                 if (!(s0 > 0) || !(k2 > 0) || !(s0 * s0 >= settings.min_pairs * k2)) continue;
                 // The variance (spread n_eff + 2 prior) / (n_eff + 2) (1 + 1 / n_eff) + the
@@ -304,6 +372,30 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
                 count[s] += 1.0;
               }
             }
+            batched = 0;
+            usable.clear();
+            usable_bin.clear();
+          };
+          usable.clear();
+          usable_bin.clear();
+          batched = 0;
+          for (int rr = std::max(0, r - radius); rr <= std::min(rows - 1, r + radius); ++rr)
+            for (int cc = std::max(0, c - radius); cc <= std::min(cols - 1, c + radius); ++cc) {
+              const std::size_t q = std::size_t(rr) * cols + cc;
+              if (q == p || observations[q] == 0) continue;
+              const std::uint64_t* lends = &lend_bits[q * words];
+              const std::size_t from = usable.size();
+              for (std::size_t word = 0; word < words; ++word)
+                for (std::uint64_t both = pending_bits[word] & lends[word]; both; both &= both - 1) {
+                  const int s = int(word * 64) + __builtin_ctzll(both);
+                  usable.push_back(s);
+                  usable_bin.push_back(grid.bin_of_slot[std::size_t(s)]);
+                }
+              if (usable.size() == from) continue;
+              batch[std::size_t(batched++)] = {q, from, usable.size() - from};
+              if (batched == 4) finish_batch();
+            }
+          finish_batch();
           for (int s : pending) {
             if (!(sum_w[s] > 0)) continue;
             const std::size_t i = p * slots + s;
