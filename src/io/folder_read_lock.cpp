@@ -58,17 +58,22 @@ void FolderReadLocks::hold_folder(const std::string& folder) {
   const std::string key = fs::weakly_canonical(folder, ec).string();
   if (!held_.insert(ec ? folder : key).second) return;
   // A job run holds OUT/.kalends/lock through all its steps: between them no folder is locked.
-  // Its own report and extract steps read while it holds it.
-  const fs::path job_lock = fs::path(folder) / ".kalends" / "lock";
-  if (const int fd = ::open(job_lock.c_str(), O_RDONLY | O_CLOEXEC); fd >= 0) {
-    const bool held = ::flock(fd, LOCK_SH | LOCK_NB) != 0 && errno == EWOULDBLOCK;
-    char text[32] = {0};
-    (void)!::pread(fd, text, sizeof text - 1, 0);
-    ::close(fd);
-    const std::string pid(text);
-    if (held && pid != std::to_string(::getpid()))
-      throw InputError(folder, "a kalends run" + (pid.empty() ? std::string() : " (pid " + pid + ")") +
-                                   " is working on this output folder now; run again when it ends");
+  // Its own report and extract steps read while it holds it. A step's folder lies inside OUT,
+  // so the folders above are looked at too (a step folder read between two steps had mixed
+  // the new fill with the old seasons, exit 0).
+  for (fs::path at = fs::absolute(folder, ec).lexically_normal(); !at.empty(); at = at.parent_path()) {
+    const fs::path job_lock = at / ".kalends" / "lock";
+    if (const int fd = ::open(job_lock.c_str(), O_RDONLY | O_CLOEXEC); fd >= 0) {
+      const bool held = ::flock(fd, LOCK_SH | LOCK_NB) != 0 && errno == EWOULDBLOCK;
+      char text[32] = {0};
+      (void)!::pread(fd, text, sizeof text - 1, 0);
+      ::close(fd);
+      const std::string pid(text);
+      if (held && pid != std::to_string(::getpid()))
+        throw InputError(folder, "a kalends run" + (pid.empty() ? std::string() : " (pid " + pid + ")") +
+                                     " is working on the output folder " + at.string() + " now; run again when it ends");
+    }
+    if (at == at.parent_path()) break;
   }
   // As writers lock (OutputFolder): the folder, else its lock file where there is one.
   for (const std::string& what : {folder, (fs::path(folder) / folder_lock_file).string()}) {

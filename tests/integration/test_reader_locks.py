@@ -96,10 +96,15 @@ class ReaderLocks(kt.TempDirTestCase):
         self.hold(lock, fcntl.LOCK_EX)
         done = kt.run_kalends(["report", top, "--html", os.path.join(self.tmp, "page3.html")])
         self.assertEqual(done.returncode, 2, done.stderr)
-        self.assertIn("a kalends run (pid 424242) is working on this output folder now", done.stderr)
+        self.assertIn("a kalends run (pid 424242) is working on the output folder %s now" % top, done.stderr)
         done = self.extract(top, "table3.csv")
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("job-running: a kalends run (pid 424242)", done.stderr)
+        # A step's folder inside it: between two steps no folder is locked but the run's own.
+        done = self.extract(os.path.join(top, "fill"), "table3b.csv")
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("fill: a kalends run (pid 424242) is working on the output folder %s now" % top, done.stderr)
+        self.assertFalse(os.path.exists(os.path.join(self.tmp, "table3b.csv")))
 
     def test_a_folder_being_read_is_not_written(self):
         self.hold(self.filled, fcntl.LOCK_SH)  # an extract reading it
