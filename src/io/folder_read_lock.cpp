@@ -8,6 +8,7 @@
 #include <filesystem>
 
 #include "io/file_glob.hpp"
+#include "io/lock_probe.hpp"
 #include "io/output_set.hpp"
 #include "kalends/error.hpp"
 
@@ -62,17 +63,9 @@ void FolderReadLocks::hold_folder(const std::string& folder) {
   // so the folders above are looked at too (a step folder read between two steps had mixed
   // the new fill with the old seasons, exit 0).
   for (fs::path at = fs::absolute(folder, ec).lexically_normal(); !at.empty(); at = at.parent_path()) {
-    const fs::path job_lock = at / ".kalends" / "lock";
-    if (const int fd = ::open(job_lock.c_str(), O_RDONLY | O_CLOEXEC); fd >= 0) {
-      const bool held = ::flock(fd, LOCK_SH | LOCK_NB) != 0 && errno == EWOULDBLOCK;
-      char text[32] = {0};
-      (void)!::pread(fd, text, sizeof text - 1, 0);
-      ::close(fd);
-      const std::string pid(text);
-      if (held && pid != std::to_string(::getpid()))
-        throw InputError(folder, "a kalends run" + (pid.empty() ? std::string() : " (pid " + pid + ")") +
-                                     " is working on the output folder " + at.string() + " now; run again when it ends");
-    }
+    if (const auto pid = job_run_holding((at / ".kalends").string()); pid && *pid != std::to_string(::getpid()))
+      throw InputError(folder, "a kalends run" + (*pid == "?" ? std::string() : " (pid " + *pid + ")") +
+                                   " is working on the output folder " + at.string() + " now; run again when it ends");
     if (at == at.parent_path()) break;
   }
   // As writers lock (OutputFolder): the folder, else its lock file where there is one.

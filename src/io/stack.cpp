@@ -23,6 +23,7 @@
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
+#include "io/lock_probe.hpp"
 #include "io/majority.hpp"
 #include "kalends/error.hpp"
 #include "kalends/tiles.hpp"
@@ -682,12 +683,7 @@ void require_not_half_published(const std::string& folder) {
   if (!fs::exists(fs::path(where) / half_published_marker, ec)) return;
   // The writer holds the folder (OutputFolder's lock) while it publishes: then it is at work
   // now, not stopped (a reader had been told to run the writer again while it was running).
-  bool writing_now = false;
-  const int fd = ::open(where.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-  if (fd >= 0) {
-    writing_now = ::flock(fd, LOCK_SH | LOCK_NB) != 0 && errno == EWOULDBLOCK;
-    ::close(fd);
-  }
+  const bool writing_now = detail::folder_being_written(where);
   if (writing_now)
     throw InputError(where, "another kalends command is replacing its outputs here now; run again when it ends");
   throw InputError(where, "a kalends run was stopped while replacing its outputs here, so they are part new and part "

@@ -28,6 +28,7 @@
 #include "kalends/season.hpp"
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
+#include "io/lock_probe.hpp"
 #include "io/output_set.hpp"
 #include "io/shell_word.hpp"
 #include "pipeline/job_file.hpp"
@@ -136,13 +137,6 @@ std::string checksum_of(const std::string& path, const detail::StateDatabase* db
 
 // ---- the lock ----------------------------------------------------------------------------
 
-// The pid a run wrote into the lock file open as `fd`, or "?".
-std::string pid_in_lock(int fd) {
-  char text[32] = {0};
-  (void)!::pread(fd, text, sizeof text - 1, 0);
-  return std::string(text).empty() ? "?" : std::string(text);
-}
-
 // Where a shard's step keeps the notes it printed, for --finalize (hidden: no output).
 constexpr const char* shard_notes_file = ".kalends-notes";
 
@@ -157,7 +151,7 @@ class FolderLock {
     bool held = ::flock(fd_, LOCK_EX | LOCK_NB) != 0;
     int error = held ? errno : 0;
     if (held && error == EWOULDBLOCK && wait) {
-      if (waiting) waiting(fs::path(folder).parent_path().string(), pid_in_lock(fd_));
+      if (waiting) waiting(fs::path(folder).parent_path().string(), detail::pid_in_lock(fd_));
       held = ::flock(fd_, LOCK_EX) != 0;
       error = held ? errno : 0;
     }
@@ -171,7 +165,7 @@ class FolderLock {
                                           std::strerror(error)));
     }
     if (held) {
-      const std::string pid = pid_in_lock(fd_);
+      const std::string pid = detail::pid_in_lock(fd_);
       ::close(fd_);
       fd_ = -1;
       throw OutputError(folder, fmt::format("another kalends run (pid {}) is working on this output folder; "
@@ -191,13 +185,7 @@ class FolderLock {
 };
 
 // The pid of the run that holds `folder`'s lock now, or "" when none does.
-std::string running_pid(const std::string& folder) {
-  const int fd = ::open((fs::path(folder) / "lock").c_str(), O_RDONLY);
-  if (fd < 0) return "";
-  const std::string pid = ::flock(fd, LOCK_SH | LOCK_NB) != 0 ? pid_in_lock(fd) : "";
-  ::close(fd);
-  return pid;
-}
+std::string running_pid(const std::string& folder) { return detail::job_run_holding(folder).value_or(""); }
 
 ValueRules rules_of(const JobInput& input) {
   ValueRules r;
