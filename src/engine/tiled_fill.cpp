@@ -4,6 +4,7 @@
 
 #include <algorithm>
 #include <filesystem>
+#include <optional>
 #include <set>
 #include <tuple>
 
@@ -11,6 +12,7 @@
 #include <fmt/ranges.h>
 
 #include "io/file_glob.hpp"
+#include "io/output_set.hpp"
 #include "kalends/error.hpp"
 #include "kalends/time.hpp"
 #include "kalends/tiles.hpp"
@@ -67,6 +69,12 @@ TiledFillSummary run_tiled_fill(const FillRequest& request, const std::string& t
     summary.tiles.push_back(run_fill(r));
     return summary;
   }
+  // The whole set is one output, held from the start: a second tiled fill into OUT had
+  // published a tile before it was refused at the one the first was writing, and readers of the
+  // mosaic views, which point into every tile, were not refused while the tiles changed.
+  const detail::OutputFolder whole_set(request.out_dir);
+  std::optional<detail::OutputFolder> views_folder;
+  if (std::error_code ec; mosaic || fs::is_directory(out / "mosaic", ec)) views_folder.emplace((out / "mosaic").string());
   // The per-date mosaics of the inputs live beside the outputs, hidden: they are only a view.
   const TileSet data = TileSet::open(request.input, tile_field, (out / ".mosaic" / "input").string(), request.rules.exclude);
   std::optional<TileSet> qa;

@@ -257,6 +257,33 @@ class TiledFill(kt.TempDirTestCase):
         self.assertIn(os.path.basename(first) + ": lies on a different grid from the other files of tile h01v00",
                       done.stderr)
 
+    def test_a_tiled_fill_holds_the_whole_set_from_the_start(self):
+        # Another tiled fill at work (simulated by this test's flock, as every kalends writer
+        # locks its folder): a second one had published the tiles the first was not writing
+        # before it was refused at the one it was, and readers of the mosaic were not refused.
+        import fcntl
+        out = os.path.join(self.tmp, "held")
+        fill = ["fill", os.path.join(self.tiles, "h*v*", "ndvi_*.tif"), "--tiles",
+                os.path.join(self.tiles, "{tile}", ""), "--mosaic", "--out", out, "--lambda", "10"]
+        kt.run_fill_ok(self, fill[1:])
+
+        def stamps():
+            return {os.path.relpath(os.path.join(d, n), out): os.path.getmtime(os.path.join(d, n))
+                    for d, _, names in os.walk(out) for n in names}
+
+        before = stamps()
+        for held_folder in (out, os.path.join(out, "mosaic")):
+            fd = os.open(held_folder, os.O_RDONLY)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                done = kt.run_kalends(fill[:-1] + ["30"])
+            finally:
+                os.close(fd)
+            self.assertEqual(done.returncode, 1, done.stderr)
+            self.assertIn("%s: another kalends command is writing into or reading this folder" % held_folder,
+                          done.stderr)
+            self.assertEqual(stamps(), before, held_folder)
+
     def test_a_date_a_tile_lacks_is_named(self):
         # A date missing from one tile (a failed download) is a gap there, filled; the fill
         # now says which tile and date, on the console and in a job's notes.
