@@ -4,6 +4,7 @@
 
 #include <cmath>
 #include <cstdint>
+#include <limits>
 #include <map>
 #include <memory>
 #include <optional>
@@ -67,7 +68,7 @@ struct BlockOutput {
   }
   /// An sd as stored: one past float's range (a tiny smoothing, values near 1e38) is not known
   /// to any use, so NaN ("unknown") rather than infinite, which no reader could use either.
-  static float sd_value(double sd) { return sd <= 3.4028234663852886e38 ? float(sd) : NAN; }
+  static float sd_value(double sd) { return sd <= double(std::numeric_limits<float>::max()) ? float(sd) : NAN; }
   // NaN until the method writes them: a pixel a method leaves alone is not filled (flag 3),
   // where zeros had been written as filled values of 0 with sd 0.
   void resize(std::size_t n) {

@@ -93,8 +93,10 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
     };
     events.waiting = [=](const std::string& folder, const std::string& pid) {
       if (json)
-        fmt::print("{{\"event\": \"waiting\", \"out\": \"{}\", \"pid\": \"{}\"}}\n", detail::json_escape(folder),
-                   detail::json_escape(pid));
+        // A number, as pids are; null where the other run wrote none (it had been a string).
+        fmt::print("{{\"event\": \"waiting\", \"out\": \"{}\", \"pid\": {}}}\n", detail::json_escape(folder),
+                   !pid.empty() && pid.size() < 10 && pid.find_first_not_of("0123456789") == std::string::npos ? pid
+                                                                                                              : "null");
       else
         fmt::print(stderr, "note: waiting for the run (pid {}) that holds {} to end\n", pid, folder);
       std::fflush(stdout);

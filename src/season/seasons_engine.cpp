@@ -10,6 +10,7 @@
 #include <filesystem>
 #include <fmt/format.h>
 #include <fmt/ranges.h>
+#include <limits>
 #include <set>
 
 #include "engine/block_runner.hpp"
@@ -401,7 +402,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
                           d.season[0].start_doy, d.season[0].end_doy, d.season[0].length_days, d.season[0].integral,
                           d.season[1].start_doy, d.season[1].end_doy, d.season[1].length_days, d.season[1].integral};
       // A value past float's range (an integral of values near 1e38) is none, not infinite.
-      for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = std::abs(v[b]) <= 3.4028234663852886e38 ? float(v[b]) : NAN;
+      for (std::size_t b = 0; b < 18; ++b) band(file, b)[p] = std::abs(v[b]) <= std::numeric_limits<float>::max() ? float(v[b]) : NAN;
     };
     // A period's day-weighted mean at pixel p, and in `share` what it rests on: of its days with
     // a value, those observed (a fill's flag 0); without flags, of its covered days, those with one.

@@ -2305,6 +2305,26 @@ class Faults(kt.TempDirTestCase):
         os.close(fd)
         self.assertEqual(waiting.wait(timeout=300), 0)
         self.assertIn("note: waiting for the run (pid 4242) that holds %s to end" % out, said)
+        # The log collectors' event gives the pid as a number (it had been a string).
+        with open(lock, "w") as f:
+            f.write("4242")  # the run above wrote its own
+        fd = os.open(lock, os.O_RDWR)
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        logged = os.path.join(self.tmp, "waited.json")
+        with open(logged, "w") as f:
+            waiting = subprocess.Popen([kt.KALENDS_BIN, "run", self.job, "--out", out, "--wait", "--log", "json"],
+                                       stdout=f, stderr=subprocess.DEVNULL)
+        first = None
+        for _ in range(300):
+            with open(logged) as f:
+                lines = f.read().splitlines()
+            if lines or waiting.poll() is not None:
+                first = json.loads(lines[0]) if lines else None
+                break
+            time.sleep(0.05)
+        os.close(fd)
+        self.assertEqual(waiting.wait(timeout=300), 0)
+        self.assertEqual(first, {"event": "waiting", "out": out, "pid": 4242})
 
     def test_a_file_size_limit_below_the_state_database_is_refused_before_any_step(self):
         # A limit below the state database's size had let every step work and publish, then fail
