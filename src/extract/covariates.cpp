@@ -80,7 +80,7 @@ void collect(const fs::path& root, const std::string& prefix, std::vector<Scanne
     throw InputError(input, "no such file or folder");
   }
   std::vector<fs::path> files;
-  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
+  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); detail::walk_on(it)) {
     const std::string name = it->path().filename().string();
     if (name == half_published_marker) require_not_half_published(it->path().parent_path().string());
     // The non-throwing tests: a link in a loop (ELOOP) is passed over, where it had stopped

@@ -48,7 +48,7 @@ std::vector<Source> sources_of(const std::vector<std::string>& inputs, const std
   for (const std::string& input : inputs) {
     if (fs::is_directory(input)) {
       std::vector<Source> found;
-      for (auto it = fs::recursive_directory_iterator(input); it != fs::recursive_directory_iterator(); ++it) {
+      for (auto it = fs::recursive_directory_iterator(input); it != fs::recursive_directory_iterator(); detail::walk_on(it)) {
         const std::string name = it->path().filename().string();
         if (name == half_published_marker) require_not_half_published(it->path().parent_path().string());
         if (name.front() == '.' || (it->is_directory() && fs::weakly_canonical(it->path(), ec) == out)) {

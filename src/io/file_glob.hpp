@@ -1,6 +1,7 @@
 // Expanding a file pattern, the one way every reader does it; listing a folder's files.
 #pragma once
 
+#include <filesystem>
 #include <optional>
 #include <string>
 #include <vector>
@@ -41,5 +42,9 @@ std::optional<ConnectionPattern> connection_pattern(const std::string& input);
 /// Every regular file below `folder` whose name does not start with '.' (partial writes and
 /// state files), sorted; empty when the folder does not exist.
 std::vector<std::string> files_below(const std::string& folder);
+
+/// A folder walk's next step. InputError naming a folder below that cannot be read: the
+/// iterator's own error names no path (the message had been "a path: Permission denied").
+void walk_on(std::filesystem::recursive_directory_iterator& it);
 
 }  // namespace kalends::detail

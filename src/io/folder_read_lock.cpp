@@ -42,7 +42,7 @@ void FolderReadLocks::hold(const std::string& input) {
   hold_folder(path.string());
   if (!recursive) return;
   for (auto it = fs::recursive_directory_iterator(path, ec); !ec && it != fs::recursive_directory_iterator();
-       it.increment(ec)) {
+       walk_on(it)) {
     std::error_code entry;
     if (!it->is_directory(entry)) continue;
     const std::string name = it->path().filename().string();

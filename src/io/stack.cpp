@@ -149,13 +149,21 @@ std::string ConnectionPattern::variable() const {
   return name;
 }
 
+void walk_on(std::filesystem::recursive_directory_iterator& it) {
+  const std::filesystem::path at = it->path();
+  std::error_code ec;
+  const bool into = it->is_directory(ec) && it.recursion_pending();
+  it.increment(ec);
+  if (ec) throw InputError((into ? at : at.parent_path()).string(), "cannot read this folder: " + ec.message());
+}
+
 std::vector<std::string> files_below(const std::string& folder) {
   std::vector<std::string> files;
   std::error_code ec;
   if (!std::filesystem::exists(folder)) return files;
-  for (const auto& entry : std::filesystem::recursive_directory_iterator(folder, ec))
-    if (entry.is_regular_file() && entry.path().filename().string().front() != '.')
-      files.push_back(entry.path().string());
+  for (auto it = std::filesystem::recursive_directory_iterator(folder, ec); it != std::filesystem::recursive_directory_iterator();
+       walk_on(it))
+    if (it->is_regular_file() && it->path().filename().string().front() != '.') files.push_back(it->path().string());
   std::sort(files.begin(), files.end());
   return files;
 }

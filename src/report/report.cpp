@@ -19,6 +19,7 @@
 #include <regex>
 #include <sstream>
 
+#include "io/file_glob.hpp"
 #include "io/folder_read_lock.hpp"
 #include "io/gdal_session.hpp"
 #include "io/output_set.hpp"
@@ -582,7 +583,7 @@ ReportSummary run_report(const ReportRequest& request) {
   } catch (const InputError&) {
     bool has_report = false;
     for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator() && !has_report;
-         ++it)
+         detail::walk_on(it))
       has_report = it->path().filename() == "report.json" && fs::exists(it->path().parent_path() / "report.md") &&
                    read_file(it->path()).find("\"scores\"") != std::string::npos;
     if (!has_report) throw;
@@ -673,7 +674,7 @@ ReportSummary run_report(const ReportRequest& request) {
   // Validation reports and fill statistics
   std::string validation, statistics;
   std::vector<fs::path> found;
-  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); ++it) {
+  for (auto it = fs::recursive_directory_iterator(root, ec); it != fs::recursive_directory_iterator(); detail::walk_on(it)) {
     const std::string name = it->path().filename().string();
     // The non-throwing tests: a link in a loop (ELOOP) is passed over, not the end of the page.
     std::error_code entry_ec;

@@ -225,6 +225,34 @@ class BadInput(kt.TempDirTestCase):
         self.assertEqual(in_job.returncode, 2, in_job.stdout + in_job.stderr)
         self.assertIn("cannot list the files of this pattern (%s: Permission denied)" % folder, in_job.stderr)
 
+    @unittest.skipUnless(hasattr(os, "geteuid") and os.geteuid() == 0 and shutil.which("setpriv"),
+                         "needs root to run kalends as another user")
+    def test_a_subfolder_the_user_may_not_read_is_named(self):
+        # extract and report walk a folder of outputs: a subfolder closed to the user had given
+        # "a path: Permission denied", naming nothing.
+        import subprocess
+        out = os.path.join(self.tmp, "walked")
+        done = kt.run_kalends(["-q", "fill", os.path.join(self.good, "*.tif"), "--out", out, "--lambda", "10"])
+        self.assertEqual(done.returncode, 0, done.stderr)
+        closed = os.path.join(out, "closed")
+        os.makedirs(closed)
+        points = os.path.join(out, "points.csv")
+        with open(points, "w") as f:
+            f.write("id,longitude,latitude,date\nA,0,0,2020-03-01\n")
+        os.chmod(self.tmp, 0o777)
+        os.chmod(closed, 0)
+        as_nobody = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", kt.KALENDS_BIN]
+        try:
+            runs = [subprocess.run(as_nobody + command, capture_output=True, text=True, timeout=60)
+                    for command in (["extract", out, "--points", points, "--out", os.path.join(self.tmp, "w.csv")],
+                                    ["report", out, "--html", os.path.join(self.tmp, "w.html")])]
+        finally:
+            os.chmod(closed, 0o755)
+            os.chmod(self.tmp, 0o700)
+        for done in runs:
+            self.assertEqual(done.returncode, 2, done.stderr)
+            self.assertEqual(done.stderr.strip(), "kalends: %s: cannot read this folder: Permission denied" % closed)
+
     def test_unparsable_date(self):
         folder = self.variant("nodate")
         write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
