@@ -56,6 +56,10 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
   std::string text = e.what();
   for (char& c : text)
     if (c == '\n') c = ' ';
+  // std::regex recurses once per character: a value of 26,000 characters had overflowed the
+  // stack (a crash). The middle of so long a text says nothing anyway.
+  constexpr std::size_t longest = 600;
+  if (text.size() > longest) text = text.substr(0, longest / 2) + "..." + text.substr(text.size() - longest / 4);
   // CLI11's wording of a bad value ("Could not convert: --seed = abc", "Value 2.5 not in range
   // 0 to 4096") as the option, the value and what it takes.
   auto kind_of = [&](const std::string& option) {
@@ -94,7 +98,10 @@ std::string parse_error_line(CLI::App& app, const CLI::ParseError& e, int argc, 
     std::vector<std::string> extras = command->remaining();
     for (const std::string& extra : app.remaining()) extras.push_back(extra);
     const auto files = std::count_if(extras.begin(), extras.end(),
-                                     [](const std::string& extra) { return std::filesystem::is_regular_file(extra); });
+                                     [](const std::string& extra) {
+                                       std::error_code ec;  // a name too long for a file is no file
+                                       return std::filesystem::is_regular_file(extra, ec);
+                                     });
     if (files > 0)
       return fmt::format("{}: {} more files than the command takes (the first: {}); a pattern such as "
                          "'ndvi/*.tif' needs quotes, or the shell expands it into its files",

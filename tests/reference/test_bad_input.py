@@ -573,7 +573,14 @@ class BadInput(kt.TempDirTestCase):
                                (["fill", "x/*.tif", "--out", "o", "--envelope", "lower"],
                                 "kalends: fill: --envelope: 'lower' is not one of none, upper"),
                                (["fill", "x/*.tif", "--out", "o", "--smooth=abc"],
-                                "kalends: fill: --smooth: is a switch and takes no value, or true or false ('abc' given)")):
+                                "kalends: fill: --smooth: is a switch and takes no value, or true or false ('abc' given)"),
+                               # Found by fuzzing: an argument longer than a file name can be (255
+                               # bytes) had ended in "terminate called ... File name too long", and
+                               # a whole-number option of 30,000 digits in a crash (the stack).
+                               (["fill", "x/*.tif", "--out", "o", "a" * 256],
+                                "kalends: fill: unexpected argument 'aaaa"),
+                               (["fill", "x/*.tif", "--out", "o", "--order", "1" * 30000],
+                                "kalends: fill: --order: '1111")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")
