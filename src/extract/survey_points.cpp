@@ -282,6 +282,15 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   if (!ds || ds->GetLayerCount() < 1)
     throw InputError(path, "cannot open as a table of points (" + detail::gdal_message("unknown format") + ")");
   const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
+  if (csv) {
+    // GDAL's reader ends a field at a NUL byte and drops what follows it: a point had lost its
+    // coordinates and date ("no coordinates", exit 0). No text table holds one unless damaged.
+    std::ifstream in(path, std::ios::binary);
+    const std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    if (const std::size_t at = text.find('\0'); at != std::string::npos)
+      throw InputError(fmt::format("{}:{}", path, 1 + std::count(text.begin(), text.begin() + std::ptrdiff_t(at), '\n')),
+                       "holds a NUL byte (a file damaged on disk or on its way?); mend or remove that line");
+  }
   OGRLayer* layer = ds->GetLayer(0);
   OGRFeatureDefn& defn = *layer->GetLayerDefn();
   // A table without geometries (a spreadsheet, a .dbf alone, a GeoPackage's attribute table)

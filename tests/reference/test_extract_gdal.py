@@ -669,6 +669,16 @@ class ExtractLandsat(kt.TempDirTestCase):
         done = self.extract_site_table(utf16, os.path.join(self.tmp, "hint-table.csv"))
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("unicode.csv: is UTF-16 text", done.stderr)
+        # A NUL byte (found by fuzzing): GDAL's reader ended the field there and dropped the
+        # row's coordinates, and the point came out "no coordinates", exit 0.
+        damaged = os.path.join(self.tmp, "damaged.csv")
+        with open(damaged, "wb") as f:
+            f.write(("site,lon,lat\np1,%.6f,%.6f\np2\0,%.6f,%.6f\n" % (lon, lat, lon, lat)).encode())
+        table = os.path.join(self.tmp, "damaged-table.csv")
+        done = self.extract_site_table(damaged, table)
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("damaged.csv:3: holds a NUL byte", done.stderr)
+        self.assertFalse(os.path.exists(table))
 
     def test_a_survey_wholly_outside_the_grid_and_a_second_layer_are_said(self):
         # Longitudes and latitudes swapped: every value empty, exit 0, and nothing said.
