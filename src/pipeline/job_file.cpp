@@ -7,6 +7,7 @@
 #include <cmath>
 #include <cstdlib>
 #include <filesystem>
+#include <limits>
 #include <cerrno>
 #include <cstring>
 #include <fstream>
@@ -65,6 +66,13 @@ const char* type_name(Type t) {
 // The shortest text that reads back as the same number (0.003, not 0.0030000000000000001).
 std::string number_text(double v) { return fmt::format("{}", v); }
 
+// A number node's value. toml++ gives no double for an integer that a double cannot hold
+// exactly (99999999999999999): dereferenced, that empty value had been read as garbage.
+double number_of(const toml::node& node) {
+  if (node.is_integer()) return double(*node.value<std::int64_t>());
+  return *node.value<double>();
+}
+
 // Reads the step's values as it would run them, with every input resolved to its own name, so
 // that a value it cannot use fails here, naming the key and its line. The kinds name options
 // as the command line does ("--date-marks 'x'"); the key is the same with '_' for '-'.
@@ -109,10 +117,15 @@ std::string checked_text(const std::string& path, const std::string& key, const 
       return *node.value<std::string>();
     case Type::number:
       if (!node.is_number()) wrong();
-      return number_text(*node.value<double>());
-    case Type::integer:
+      return number_text(number_of(node));
+    case Type::integer: {
       if (!node.is_integer()) wrong();
-      return std::to_string(*node.value<std::int64_t>());
+      // Every whole-number key is an int: 2^31 had ended in "kalends: stoi", exit 1.
+      const std::int64_t v = *node.value<std::int64_t>();
+      if (v < std::numeric_limits<int>::min() || v > std::numeric_limits<int>::max())
+        fail(path, node.source(), fmt::format("'{}' = {} is out of range", key, v));
+      return std::to_string(v);
+    }
     case Type::boolean:
       if (!node.is_boolean()) wrong();
       return *node.value<bool>() ? "true" : "false";
@@ -126,11 +139,11 @@ std::string checked_text(const std::string& path, const std::string& key, const 
         return number_text(v);
       }
       if (!node.is_number()) wrong();
-      return number_text(*node.value<double>());
+      return number_text(number_of(node));
     case Type::pair: {
       const toml::array* a = node.as_array();
       if (!a || a->size() != 2 || !(*a)[0].is_number() || !(*a)[1].is_number()) wrong();
-      return number_text(*(*a)[0].value<double>()) + "," + number_text(*(*a)[1].value<double>());
+      return number_text(number_of((*a)[0])) + "," + number_text(number_of((*a)[1]));
     }
     case Type::texts: {
       const toml::array* a = node.as_array();
@@ -307,8 +320,11 @@ Job read_job(const std::string& path) {
     const StepKind* spec = find_step_kind(step.kind);
     if (!spec) fail(path, kind->source(), "unknown step '" + step.kind + "' (" + step_kind_names() + ")");
     const toml::node* id = t->get("id");
-    step.id = id && id->is_string() ? *id->value<std::string>() : step.kind;
-    if (step.id.empty() || step.id.find_first_of("/\\. ") != std::string::npos)
+    // Any other type had been taken as no id at all (id = 1.5 named the step after its kind).
+    if (id && !id->is_string()) fail(path, id->source(), "'id' must be text");
+    step.id = id ? *id->value<std::string>() : step.kind;
+    if (step.id.empty() || step.id.find_first_of("/\\. ") != std::string::npos ||
+        std::any_of(step.id.begin(), step.id.end(), [](char c) { return static_cast<unsigned char>(c) < 0x20; }))
       fail(path, node.source(), "step id '" + step.id + "' must be a plain name (it names a folder)");
     if (known.count(step.id)) fail(path, node.source(), "step id '" + step.id + "' is already used");
     for (auto&& [key, value] : *t) {

@@ -340,6 +340,15 @@ class JobFile(kt.TempDirTestCase):
         self.check_refused(good.replace("envelope =", "envelop ="), good.split("\n").index('envelope = "upper"') + 1,
                            ["unknown key 'envelop'"])
         self.check_refused(good.replace('memory = "256M"', "memory = 256"), 5, ["'memory' must be a string"])
+        # Found by fuzzing: a whole number beyond an int had said only "kalends: stoi" (exit 1);
+        # an integer that a double cannot hold exactly had been read as garbage ("stod"); an id
+        # of another type had been taken as none (the step named after its kind).
+        self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = 2147483648'), 6,
+                           ["'threads' = 2147483648 is out of range"])
+        self.check_refused(good.replace('lambda = "{lam}"'.format(lam="auto"), "lambda = 99999999999999999"),
+                           good.split("\n").index('lambda = "auto"') + 1, ["'lambda': must be between"])
+        self.check_refused(good.replace('id = "fill"', "id = 1.5"), good.split("\n").index('id = "fill"') + 1,
+                           ["'id' must be text"])
         self.check_refused(good.replace('do = "compare"', 'do = "compere"'),
                            good.split("\n").index('do = "compare"') + 1, ["unknown step 'compere'"])
         self.check_refused(good.replace('input = "fill"', 'input = "fil"'),

@@ -47,13 +47,29 @@ std::string step_kind_names() {
   return names;
 }
 
+namespace {
+
+// "--date-marks" for the key date_marks: the job reader turns it back into the key.
+std::string option_of(const char* key) {
+  std::string option = std::string("--") + key;
+  std::replace(option.begin(), option.end(), '_', '-');
+  return option;
+}
+
+}  // namespace
+
 std::string StepContext::text(const char* key, const std::string& fallback) const {
   const auto it = options.find(key);
   return it == options.end() ? fallback : it->second;
 }
 
 double StepContext::number(const char* key, double fallback) const {
-  return has(key) ? std::stod(options.at(key)) : fallback;
+  if (!has(key)) return fallback;
+  try {
+    return std::stod(options.at(key));
+  } catch (const std::exception&) {  // it had said only "stod"
+    throw UsageError(option_of(key) + " '" + options.at(key) + "'", "expected a number");
+  }
 }
 
 std::optional<double> StepContext::number_or_auto(const char* key,
@@ -64,7 +80,12 @@ std::optional<double> StepContext::number_or_auto(const char* key,
 }
 
 int StepContext::integer(const char* key, int fallback) const {
-  return has(key) ? std::stoi(options.at(key)) : fallback;
+  if (!has(key)) return fallback;
+  try {
+    return std::stoi(options.at(key));
+  } catch (const std::exception&) {  // it had said only "stoi"
+    throw UsageError(option_of(key) + " '" + options.at(key) + "'", "expected a whole number");
+  }
 }
 
 bool path_inside(const std::string& path, const std::string& folder) {
@@ -88,13 +109,6 @@ std::vector<std::string> split_list(const std::string& text) {
 std::vector<std::string> StepContext::list(const char* key) const { return split_list(text(key)); }
 
 namespace {
-
-// "--date-marks" for the key date_marks: the job reader turns it back into the key.
-std::string option_of(const char* key) {
-  std::string option = std::string("--") + key;
-  std::replace(option.begin(), option.end(), '_', '-');
-  return option;
-}
 
 // Each item of a texts key read whole by `read` (std::stod, std::stoi), or UsageError.
 template <class Value, class Read>
