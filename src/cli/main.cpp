@@ -170,6 +170,17 @@ int main(int argc, char** argv) {
         if (std::filesystem::exists(out) && !std::filesystem::is_directory(out))
           throw UsageError("--out '" + out + "'", "is a file; give a folder for the outputs");
       }
+      // An empty value ('--every ""', or "$VAR" unset in a script) had been taken as the option
+      // not given, exit 0. Where empty means something, the command says what (--date-column:
+      // no dates; --out and --html: which name it needs).
+      static const std::set<std::string> empty_allowed{"--date-column", "--out", "--html"};
+      for (const CLI::Option* option : command->get_options()) {
+        if (!option->nonpositional() || option->get_expected_min() == 0 || option->count() == 0) continue;
+        const std::string name = option->get_name();
+        if (empty_allowed.count(name)) continue;
+        for (const std::string& value : option->results())
+          if (value.empty()) throw UsageError(name, "needs a value ('' given)");
+      }
       action();
     }
     return global.exit_code;

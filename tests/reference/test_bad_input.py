@@ -580,7 +580,13 @@ class BadInput(kt.TempDirTestCase):
                                (["fill", "x/*.tif", "--out", "o", "a" * 256],
                                 "kalends: fill: unexpected argument 'aaaa"),
                                (["fill", "x/*.tif", "--out", "o", "--order", "1" * 30000],
-                                "kalends: fill: --order: '1111")):
+                                "kalends: fill: --order: '1111"),
+                               # An empty value ("$EVERY" unset in a script) had been taken as the
+                               # option not given: no calendar written, exit 0.
+                               (["fill", "x/*.tif", "--out", "o", "--every", ""],
+                                "kalends: --every: needs a value ('' given)"),
+                               (["seasons", "x/*.tif", "--out", "o", "--scale", ""],
+                                "kalends: --scale: needs a value ('' given)")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")
