@@ -585,8 +585,8 @@ class BadInput(kt.TempDirTestCase):
                                # option not given: no calendar written, exit 0.
                                (["fill", "x/*.tif", "--out", "o", "--every", ""],
                                 "kalends: --every: needs a value ('' given)"),
-                               (["seasons", "x/*.tif", "--out", "o", "--scale", ""],
-                                "kalends: --scale: needs a value ('' given)")):
+                               (["fill", "x/*.tif", "--out", "o", "--nodata", ""],
+                                "kalends: --nodata: needs a value ('' given)")):
             done = kt.run_kalends(args)
             self.assertEqual(done.returncode, 2, (args, done.stderr))
             self.assertEqual(done.stdout, "")
