@@ -108,6 +108,9 @@ std::int64_t parse_memory_size(const std::string& text) {
   else
     throw UsageError("--memory '" + text + "'", "unknown unit '" + unit + "' (use K, M, G or T)");
   if (!(value > 0)) throw UsageError("--memory '" + text + "'", "must be positive");
+  // inf and 2^64 had been taken (a cast out of range: any number at all).
+  if (!(value * factor <= 1024.0 * 1024 * 1024 * 1024 * 1024))
+    throw UsageError("--memory '" + text + "'", "is more than any machine has (1 PiB at most); give a size such as 512M or 2G");
   if (value * factor < 1024.0 * 1024)
     throw UsageError("--memory '" + text + "'", "below 1 MiB, which holds no block; give a size such as 512M or 2G");
   return std::int64_t(value * factor);

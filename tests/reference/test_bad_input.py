@@ -795,6 +795,9 @@ class BadInput(kt.TempDirTestCase):
                  (["--method", "spacetime", "--max-extrapolation", "0"], "--max-extrapolation",
                   "applies to the whittaker and harmonic methods only"),
                  (["--memory", "1K"], "--memory", "below 1 MiB"),
+                 # Found by fuzzing: inf and 2^64 had been taken (a cast out of range).
+                 (["--memory", "inf"], "--memory", "more than any machine has"),
+                 (["--memory", "18446744073709551616"], "--memory", "more than any machine has"),
                  # A lambda of 1e16 or inf had crashed, 1e25 filled every gap with about 0, and
                  # an infinite range searched for ever.
                  (["--lambda", "1e16"], "--lambda", "and 1e10"),
