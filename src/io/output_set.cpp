@@ -57,10 +57,13 @@ OutputError write_failure(const std::string& path, const std::string& what) {
 
 void require_plain_name(const std::string& name, const std::string& option) {
   const bool control = std::any_of(name.begin(), name.end(), [](char c) { return (unsigned char)c < 0x20; });
-  if (name.find_first_of("/\\") != std::string::npos || (!name.empty() && name.front() == '.') || control)
+  // Wildcards and a blank name too (found by fuzzing): '*_2021-01-01.tif' reads back as a
+  // pattern of every output, and ' _2021-01-01.tif' looks nameless in a listing.
+  const bool blank = name.find_first_not_of(" ") == std::string::npos && !name.empty();
+  if (name.find_first_of("/\\*?[]") != std::string::npos || (!name.empty() && name.front() == '.') || control || blank)
     throw UsageError(option + " '" + name + "'",
-                     "must be a plain name (no '/', '\\', control characters or leading '.'): the outputs are "
-                     "<name>_<layer>.tif inside the output folder");
+                     "must be a plain name (no '/', '\\', wildcards, control characters, leading '.' or only "
+                     "spaces): the outputs are <name>_<layer>.tif inside the output folder");
 }
 
 void require_header_in_file(const std::string& written, const std::string& target) {

@@ -677,7 +677,8 @@ class BadInput(kt.TempDirTestCase):
             "suitability": ["suitability", "--tmin", inputs["tmin"], "--tmax", inputs["tmax"], "--units", "celsius"],
         }
         for command, args in commands.items():
-            for name in ("../away", "a/b", ".hidden"):
+            # "*" and " " found by fuzzing: outputs named "*_2021-01-01.tif" read back as a pattern.
+            for name in ("../away", "a/b", ".hidden", "*", " "):
                 with self.subTest(command=command, name=name):
                     out = os.path.join(folder, "out_" + command)
                     done = kt.run_kalends(args + ["--out", out, "--name", name])
