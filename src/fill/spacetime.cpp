@@ -4,6 +4,7 @@
 #include "fill/analogue.hpp"
 #include "fill/pls_gcv.hpp"
 #include "io/json_text.hpp"
+#include "io/text_file.hpp"
 
 #include <algorithm>
 #include <cmath>
@@ -83,6 +84,10 @@ SpacetimeMethod::SpacetimeMethod(const MethodOptions& options)
     : options_(options), plans_(planning_of(options.spacetime_fft_wisdom)) {
   if (options.spacetime_fft_wisdom.empty())
     throw UsageError("--fft-wisdom", "must be auto, none or a file");
+  // A folder, or a file in a folder that does not exist, had been taken and the timings
+  // silently not kept (found by fuzzing).
+  if (options.spacetime_fft_wisdom != "auto" && options.spacetime_fft_wisdom != "none")
+    detail::require_file_destination(options.spacetime_fft_wisdom, "--fft-wisdom", "fftw-wisdom");
   // Infinite smoothing had been taken and left every filled value without an sd (NaN).
   if (options.spacetime_space_smoothing &&
       !(*options.spacetime_space_smoothing > 0 && std::isfinite(*options.spacetime_space_smoothing)))

@@ -798,6 +798,9 @@ class BadInput(kt.TempDirTestCase):
                  (["--memory", "1K"], "--memory", "below 1 MiB"),
                  # Found by fuzzing: inf and 2^64 had been taken (a cast out of range).
                  (["--memory", "inf"], "--memory", "more than any machine has"),
+                 # A wisdom file no run can write had been taken, the timings silently not kept.
+                 (["--method", "spacetime", "--fft-wisdom", "/nonexistent-kalends/w"], "--fft-wisdom",
+                  "the folder '/nonexistent-kalends' does not exist"),
                  (["--memory", "18446744073709551616"], "--memory", "more than any machine has"),
                  # A lambda of 1e16 or inf had crashed, 1e25 filled every gap with about 0, and
                  # an infinite range searched for ever.
