@@ -349,6 +349,8 @@ class JobFile(kt.TempDirTestCase):
                            good.split("\n").index('lambda = "auto"') + 1, ["'lambda': must be between"])
         self.check_refused(good.replace('id = "fill"', "id = 1.5"), good.split("\n").index('id = "fill"') + 1,
                            ["'id' must be text"])
+        self.check_refused(good.replace('stack = "stack/ndvi/ndvi_*.tif"', 'stack = "stack/ndvi\\u0000/x/ndvi_*.tif"'),
+                           good.split("\n").index('stack = "stack/ndvi/ndvi_*.tif"') + 1, ["'stack' holds a NUL character"])
         empty = good + '\n[[step]]\ndo = "extract"\ninput = []\npoints = "points.csv"\n'
         self.check_refused(empty, empty.split("\n").index("input = []") + 1, ["'input' names no input or step"])
         self.check_refused(good.replace('do = "compare"', 'do = "compere"'),
