@@ -38,6 +38,7 @@ struct StepReport {
 struct RunReport {
   std::vector<StepReport> steps;
   std::vector<std::string> skipped_inputs;  // "path: reason"
+  std::vector<std::string> notes;           // on the run as a whole (another job file's folder)
   double seconds = 0;
   long long peak_memory_bytes = 0;
   std::string out_dir;

@@ -142,6 +142,9 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
                  report.exit_code, report.seconds, report.peak_memory_bytes / 1048576.0);
       for (std::size_t i = 0; i < report.skipped_inputs.size(); ++i)
         fmt::print("{}\"{}\"", i ? ", " : "", detail::json_escape(report.skipped_inputs[i]));
+      fmt::print("], \"notes\": [");
+      for (std::size_t i = 0; i < report.notes.size(); ++i)
+        fmt::print("{}\"{}\"", i ? ", " : "", detail::json_escape(report.notes[i]));
       fmt::print("], \"error\": \"{}\"}}\n", detail::json_escape(report.error));
     } else if (!global.quiet) {
       int ran = 0;
@@ -174,6 +177,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
         if (!r.caution.empty()) fmt::print("  {}\n", r.caution);
       }
       for (const std::string& s : report.skipped_inputs) fmt::print("  skipped input: {}\n", s);
+      for (const std::string& note : report.notes) fmt::print("  note: {}\n", note);
       fmt::print("  {:.1f} s, peak memory {:.0f} MiB\n", report.seconds, report.peak_memory_bytes / 1048576.0);
       if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
     } else {
@@ -186,6 +190,7 @@ Action add_run_command(CLI::App& app, GlobalOptions& global) {
         if (!r.caution.empty() && shown.insert(r.caution).second) fmt::print(stderr, "{}\n", r.caution);
       }
       for (const std::string& s : report.skipped_inputs) fmt::print(stderr, "skipped input: {}\n", s);
+      for (const std::string& note : report.notes) fmt::print(stderr, "note: {}\n", note);
       if (!report.error.empty()) fmt::print(stderr, "kalends: {}\n", report.error);
     }
     global.exit_code = report.exit_code;

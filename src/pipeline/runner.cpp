@@ -456,6 +456,7 @@ class Runner {
       lock.emplace(state_dir.string(), options_.wait_for_lock, events_.waiting);
       require_room_for_state((state_dir / "state.sqlite").string());
       db_ = std::make_unique<detail::StateDatabase>((state_dir / "state.sqlite").string(), false, !options_.dry_run);
+      note_another_job_file();
     }
     memory_ = job_.memory;
     if (options_.skip_bad) leave_out_known_bad_inputs();
@@ -1454,6 +1455,27 @@ class Runner {
     for (const detail::InputRecord& record : scan_.records)
       if (record.path == path) return !unchanged_since(path, record);
     return false;
+  }
+
+  // Two job files writing one output folder take each other's steps as their own: `status` of
+  // one lists only its steps, and steps of one id rewrite each other's outputs, night after
+  // night. Said, not refused: a job file moved or renamed is the same job (its old path is
+  // gone), and a copy with the same text does the same.
+  void note_another_job_file() {
+    std::error_code ec;
+    const std::string mine = fs::weakly_canonical(fs::absolute(options_.job_file, ec), ec).string();
+    const std::string last = db_->last_job_file();
+    auto text_of = [](const std::string& path) {
+      std::ifstream in(path, std::ios::binary);
+      return std::string((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    };
+    if (!last.empty() && last != mine && fs::is_regular_file(last, ec) && text_of(last) != text_of(mine))
+      report_.notes.push_back(fmt::format(
+          "this output folder was last run by another job file, {}: two job files sharing one output folder take "
+          "each other's steps as their own (status lists only its own; steps of one id rewrite each other's "
+          "outputs); give each job its own 'out'",
+          last));
+    if (!options_.dry_run && last != mine) db_->remember_job_file(mine);
   }
 
   // Run whole, the step's earlier rasters that it no longer makes (the files of its old name

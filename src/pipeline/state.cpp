@@ -161,6 +161,20 @@ std::string StateDatabase::newest_program() const {
   return read.step() ? read.text(0) : "";
 }
 
+std::string StateDatabase::last_job_file() const {
+  Statement table(db_, "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'program'", path_);
+  if (!table.step()) return "";
+  Statement read(db_, "SELECT value FROM program WHERE key = 'job_file'", path_);
+  return read.step() ? read.text(0) : "";
+}
+
+void StateDatabase::remember_job_file(const std::string& path) {
+  exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
+  Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES ('job_file', ?)", path_);
+  write.bind(1, path);
+  write.step();
+}
+
 bool newer_than_this_program(const std::string& version) {
   return !version.empty() && version_numbers(version) > version_numbers(KALENDS_VERSION);
 }

@@ -53,6 +53,9 @@ class StateDatabase {
   std::vector<std::pair<std::string, std::string>> skipped() const;
   /// The newest kalends version that has written this state ("" where none says).
   std::string newest_program() const;
+  /// The job file (absolute path) of the last run that recorded one, "" where none did.
+  std::string last_job_file() const;
+  void remember_job_file(const std::string& path);
 
  private:
   void exec(const std::string& sql) const;

@@ -2042,6 +2042,40 @@ class ArrivalsDuringARun(kt.TempDirTestCase):
         self.assertFalse(glob.glob(os.path.join(folder, "out", "fill", "*.tif")))
 
 
+class TwoJobFilesOneFolder(kt.TempDirTestCase):
+    def test_a_second_job_file_writing_the_same_folder_is_told(self):
+        # Two job files with one 'out' take each other's steps as their own (status of one lists
+        # only its steps; a step id in both is redone by each, night after night): nothing had
+        # been said. A renamed job file, or a copy of the same text, is the same job.
+        folder = os.path.join(self.tmp, "shared")
+        first = small_dated_job(folder)
+        second = os.path.join(folder, "other.toml")
+        with open(first) as f:
+            text = f.read()
+        with open(second, "w") as f:
+            f.write(text.replace('id = "fill"', 'id = "smooth"') + "lambda = 100\n")
+        done = run(first)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertNotIn("another job file", done.stdout + done.stderr)
+        done = run(second)
+        self.assertEqual(done.returncode, 0, done.stderr)
+        self.assertIn("note: this output folder was last run by another job file, %s" % os.path.realpath(first),
+                      done.stdout)
+        done = run(first, "--log", "json")
+        finished = json.loads(done.stdout.strip().splitlines()[-1])
+        self.assertEqual(len(finished["notes"]), 1, done.stdout)
+        self.assertIn("last run by another job file, %s" % os.path.realpath(second), finished["notes"][0])
+        done = run(first)
+        self.assertNotIn("another job file", done.stdout + done.stderr)
+        copy = os.path.join(folder, "copy.toml")
+        shutil.copy(first, copy)
+        renamed = os.path.join(folder, "renamed.toml")
+        self.assertNotIn("another job file", run(copy).stdout)
+        os.rename(first, renamed)
+        os.remove(copy)
+        self.assertNotIn("another job file", run(renamed).stdout)
+
+
 class Faults(kt.TempDirTestCase):
     @classmethod
     def setUpClass(cls):
