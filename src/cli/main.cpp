@@ -198,7 +198,8 @@ int main(int argc, char** argv) {
     // first, as every other error line, and exit 2 for a path the user gave that cannot be used.
     const std::string path = e.path1().empty() ? std::string("a path") : e.path1().string();
     std::cerr << "kalends: " << one_line(path) << ": " << e.code().message() << "\n";
-    return e.code() == std::errc::permission_denied ? 2 : 1;
+    // A name longer than a file name can be is a path the user gave, too (it had exited 1).
+    return e.code() == std::errc::permission_denied || e.code() == std::errc::filename_too_long ? 2 : 1;
   } catch (const std::bad_alloc&) {
     // It had said only "std::bad_alloc".
     // grid has no --memory: it holds each layer whole, so a smaller grid is its way out.

@@ -583,6 +583,7 @@ class BadInput(kt.TempDirTestCase):
                                 "kalends: fill: --order: '1111"),
                                # An empty value ("$EVERY" unset in a script) had been taken as the
                                # option not given: no calendar written, exit 0.
+                               (["fill", "a" * 300 + "/*.tif", "--out", "o"], "kalends: " + "a" * 300),
                                (["fill", "x/*.tif", "--out", "o", "--every", ""],
                                 "kalends: --every: needs a value ('' given)"),
                                (["fill", "x/*.tif", "--out", "o", "--nodata", ""],
