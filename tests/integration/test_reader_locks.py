@@ -218,6 +218,13 @@ class FileSystemsWithoutFolderLocks(kt.TempDirTestCase):
         self.assertEqual(len(done.stderr.splitlines()), 1, done.stderr)
         self.assertIn("lock: cannot be locked (No locks available)", done.stderr)
         self.assertNotIn("another kalends run", done.stderr)
+        # The refused run leaves its lock file (it cannot know whether another holds it):
+        # `status` had shown the job as "running (pid ?)".
+        self.assertTrue(os.path.exists(os.path.join(folder, "out", ".kalends", "lock")))
+        done = self.kalends(["status", job], SHIM_NO_LOCKS="1")
+        self.assertNotIn("running", done.stdout + done.stderr)
+        self.assertIn("never run", done.stdout)
+
 
     def test_a_writer_at_work_is_not_called_stopped(self):
         # On NFS a writer holds the folder's lock file, not the folder: a reader that probed the
@@ -236,22 +243,6 @@ class FileSystemsWithoutFolderLocks(kt.TempDirTestCase):
         done = self.kalends(["seasons", out, "--out", os.path.join(self.tmp, "publishing-seasons")])
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("%s: a kalends run was stopped while replacing its outputs here" % out, done.stderr)
-
-    def test_a_refused_run_is_not_shown_as_running(self):
-        # Without locks a refused run leaves its lock file (it cannot know whether another holds
-        # it): `status` had shown the job as "running (pid ?)".
-        folder = os.path.join(self.tmp, "job-status")
-        os.makedirs(folder)
-        job = os.path.join(folder, "job.toml")
-        with open(job, "w") as f:
-            f.write('[job]\nout = "out"\n[inputs.ndvi]\nstack = "%s/*.tif"\n[[step]]\nid = "fill"\ndo = "fill"\n'
-                    'input = "ndvi"\n' % self.stack)
-        done = self.kalends(["run", job], SHIM_NO_LOCKS="1")
-        self.assertEqual(done.returncode, 1, done.stderr)
-        self.assertTrue(os.path.exists(os.path.join(folder, "out", ".kalends", "lock")))
-        done = self.kalends(["status", job], SHIM_NO_LOCKS="1")
-        self.assertNotIn("running", done.stdout + done.stderr)
-        self.assertIn("never run", done.stdout)
 
 if __name__ == "__main__":
     unittest.main()
