@@ -244,5 +244,6 @@ class FileSystemsWithoutFolderLocks(kt.TempDirTestCase):
         self.assertEqual(done.returncode, 2, done.stderr)
         self.assertIn("%s: a kalends run was stopped while replacing its outputs here" % out, done.stderr)
 
+
 if __name__ == "__main__":
     unittest.main()
