@@ -235,6 +235,15 @@ Grid grid_of(GDALDataset& dataset) {
   grid.height = dataset.GetRasterYSize();
   grid.has_geotransform = dataset.GetGeoTransform(grid.geotransform.data()) == CE_None;
   if (!grid.has_geotransform) grid.geotransform = {0, 1, 0, 0, 0, 1};
+  // Found by fuzzing the inputs: a pixel size of 0 or a NaN origin had been written into the
+  // outputs, and extract then put every point outside the layer with a hint of swapped axes.
+  const auto& g = grid.geotransform;
+  if (grid.has_geotransform &&
+      (!std::all_of(g.begin(), g.end(), [](double v) { return std::isfinite(v); }) || g[1] * g[5] - g[2] * g[4] == 0))
+    throw InputError(dataset.GetDescription(),
+                     fmt::format("has a geotransform that places no pixel ({:g}, {:g}, {:g}, {:g}, {:g}, {:g}): a "
+                                 "damaged header? Mend it (gdal_edit.py -a_ullr) or remove the file",
+                                 g[0], g[1], g[2], g[3], g[4], g[5]));
   if (const char* area_or_point = dataset.GetMetadataItem(GDALMD_AREA_OR_POINT))
     grid.pixel_is_point = EQUAL(area_or_point, GDALMD_AOP_POINT);
   if (const OGRSpatialReference* srs = dataset.GetSpatialRef()) {
@@ -245,6 +254,8 @@ Grid grid_of(GDALDataset& dataset) {
   }
   return grid;
 }
+
+std::string band_where(const std::string& path, int band);
 
 Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, TimePoint time,
                const ValueRules& rules) {
@@ -258,6 +269,22 @@ Layer layer_of(GDALDataset& dataset, const std::string& path, int band_index, Ti
   layer.scale = rules.scale.value_or(has ? scale : 1.0);
   const double offset = band->GetOffset(&has);
   layer.offset = rules.offset.value_or(has ? offset : 0.0);
+  // Found by fuzzing the inputs: a stored scale of NaN or inf, or 0, had made the date wholly
+  // missing (or wholly 0) with exit 0 and only a note that the files' rules differ.
+  if (!rules.scale && !(std::isfinite(layer.scale) && layer.scale != 0))
+    throw InputError(band_where(path, band_index),
+                     fmt::format("stores a scale factor of {:g}, which gives no values; give --scale to override it",
+                                 layer.scale));
+  if (!rules.offset && !std::isfinite(layer.offset))
+    throw InputError(band_where(path, band_index),
+                     fmt::format("stores an offset of {:g}, which gives no values; give --offset to override it",
+                                 layer.offset));
+  // Complex pixels had been read as their real part, without a word: no index or temperature
+  // has an imaginary part, so the file is not what it was taken for.
+  if (GDALDataTypeIsComplex(band->GetRasterDataType()))
+    throw InputError(band_where(path, band_index),
+                     fmt::format("holds complex numbers ({}); kalends reads real values only",
+                                 GDALGetDataTypeName(band->GetRasterDataType())));
   const double nodata = band->GetNoDataValue(&has);
   // A --nodata no stored value can equal (-3000 on bytes, 0.5 on integers) marks nothing.
   if (const GDALDataType type = band->GetRasterDataType();

@@ -253,6 +253,75 @@ class BadInput(kt.TempDirTestCase):
             self.assertEqual(done.returncode, 2, done.stderr)
             self.assertEqual(done.stderr.strip(), "kalends: %s: cannot read this folder: Permission denied" % closed)
 
+    def test_damaged_headers_are_refused_before_any_output(self):
+        # Found by fuzzing the inputs (one file of a copy of the good stack each): a stored scale
+        # of NaN made its date wholly missing, exit 0; a pixel size of 0 or a NaN origin went
+        # into the outputs; complex pixels were read as their real part; all with exit 0.
+        g = kt.gdal()
+        spoiled = "ndvi_%s.tif" % DATES[1]
+
+        def spoil(name, edit):
+            folder = self.variant(name)
+            ds = g.Open(os.path.join(folder, spoiled), g.GA_Update)
+            edit(ds)
+            ds = None
+            return folder
+
+        folder = spoil("scale-nan", lambda ds: ds.GetRasterBand(1).SetScale(float("nan")))
+        self.check_fails([os.path.join(folder, "*.tif")], [spoiled], ["a scale factor of nan"], "scale NaN")
+        folder = spoil("pixel-size-0", lambda ds: ds.SetGeoTransform((GEOTRANSFORM[0], 0, 0, GEOTRANSFORM[3], 0, 0)))
+        self.check_fails([os.path.join(folder, "*.tif")], [spoiled], ["places no pixel"], "pixel size 0")
+        folder = spoil("origin-nan", lambda ds: ds.SetGeoTransform((float("nan"),) + GEOTRANSFORM[1:]))
+        self.check_fails([os.path.join(folder, "*.tif")], [spoiled], ["places no pixel"], "origin NaN")
+        folder = self.variant("complex")
+        ds = g.GetDriverByName("GTiff").Create(os.path.join(folder, spoiled), WIDTH, HEIGHT, 1, g.GDT_CFloat32)
+        ds.SetGeoTransform(GEOTRANSFORM)
+        ds.SetProjection(g.Open(os.path.join(folder, "ndvi_%s.tif" % DATES[0])).GetProjection())
+        ds.GetRasterBand(1).WriteArray(np.full((HEIGHT, WIDTH), 0.4 + 5j, np.complex64))
+        ds = None
+        self.check_fails([os.path.join(folder, "*.tif")], [spoiled], ["complex numbers"], "complex")
+
+    def test_a_tiny_file_declaring_a_huge_raster_is_refused_before_any_output(self):
+        # Found by fuzzing: 2 KB files whose header says 200,000 px a side open in GDAL, and a
+        # fill made outputs of that size before its first read failed; giving up, it wrote
+        # gigabytes of empty tiles (half a minute). One pixel of each file is read first now, so
+        # no output is begun (watched while it runs: the old outputs lived for seconds).
+        import struct
+        import subprocess
+        g = kt.gdal()
+        folder = os.path.join(self.tmp, "declares-huge")
+        os.makedirs(folder)
+        srs = g.Open(os.path.join(self.good, "ndvi_%s.tif" % DATES[0])).GetProjection()
+        for date in DATES:
+            path = os.path.join(folder, "ndvi_%s.tif" % date)
+            ds = g.GetDriverByName("GTiff").Create(path, WIDTH, HEIGHT, 1, g.GDT_Float32)
+            ds.SetGeoTransform(GEOTRANSFORM)
+            ds.SetProjection(srs)
+            ds.GetRasterBand(1).Fill(0.4)
+            ds = None
+            data = bytearray(open(path, "rb").read())
+            self.assertEqual(bytes(data[:4]), b"II*\x00")  # classic little-endian TIFF, as GDAL writes
+            ifd = struct.unpack("<I", data[4:8])[0]
+            for i in range(struct.unpack("<H", data[ifd:ifd + 2])[0]):
+                entry = ifd + 2 + 12 * i
+                if struct.unpack("<H", data[entry:entry + 2])[0] in (256, 257):  # ImageWidth, ImageLength
+                    data[entry + 2:entry + 4] = struct.pack("<H", 4)  # LONG
+                    data[entry + 8:entry + 12] = struct.pack("<I", 200000)
+            with open(path, "wb") as f:
+                f.write(data)
+        self.assertEqual(g.Open(path).RasterXSize, 200000)
+        out = os.path.join(self.tmp, "declares-huge-out")
+        process = subprocess.Popen([kt.KALENDS_BIN, "fill", os.path.join(folder, "*.tif"), "--out", out,
+                                    "--threads", "1"], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+        begun = []
+        while process.poll() is None:
+            begun += glob.glob(os.path.join(out, ".*.partial"))
+        stderr = process.communicate(timeout=300)[1]
+        self.assertEqual(process.returncode, 2, stderr)
+        self.assertIn("ndvi_%s.tif: cannot read pixels" % DATES[0], stderr)
+        self.assertEqual(begun, [])
+        self.assertFalse(os.path.exists(out))
+
     def test_unparsable_date(self):
         folder = self.variant("nodate")
         write_layer(os.path.join(folder, "ndvi_latest.tif"), 7)
