@@ -5,6 +5,7 @@
 #include <charconv>
 #include <vector>
 #include <cmath>
+#include <fmt/format.h>
 #include <stdexcept>
 #include <string>
 
@@ -89,7 +90,9 @@ namespace {
 
 int digits_to_int(std::string_view s) {
   int v = 0;
-  std::from_chars(s.data(), s.data() + s.size(), v);
+  // Too many digits for an int: -1, which no range check passes (it had been 0: 99999999999
+  // hours read as midnight).
+  if (std::from_chars(s.data(), s.data() + s.size(), v).ec != std::errc()) return -1;
   return v;
 }
 
@@ -236,7 +239,13 @@ std::optional<TimePoint> parse_iso_time(std::string_view text) {
       if (k2 < rest.size() && rest[k2] == ':') {
         std::size_t s1 = k2 + 1, s2 = s1;
         while (s2 < rest.size() && (is_digit(rest[s2]) || rest[s2] == '.')) ++s2;
-        ss = int(std::floor(std::stod(std::string(rest.substr(s1, s2 - s1)))));
+        // Only a number of seconds a minute can hold: "…:99999999999" had overflowed the int
+        // (a silent date 68 years off), and "…:." ended in "stod".
+        const std::string field(rest.substr(s1, s2 - s1));
+        char* end = nullptr;
+        const double seconds = std::strtod(field.c_str(), &end);
+        if (field.empty() || end != field.c_str() + field.size() || !(seconds >= 0 && seconds < 61)) return std::nullopt;
+        ss = int(std::floor(seconds));
         k2 = s2;
       }
       rest = rest.substr(k2);
@@ -385,6 +394,13 @@ TimePoint cf_time(double value, std::string_view units, std::string_view calenda
                                   "' is one of the days the standard calendar skips (1582-10-05 to 14)");
     origin_seconds += julian_minus_gregorian_days(d.year, d.month) * 86400;
   }
+  // NaN, or a variable's fill value (9.97e36 for doubles: a record never written): no date. A
+  // cast of either had overflowed (undefined) and named a date 292 billion years off.
+  constexpr double longest_offset_seconds = 1e15;  // about 32 million years
+  if (!(std::abs(value * seconds_per_unit) < longest_offset_seconds))
+    throw std::invalid_argument(fmt::format("time value {:g} is no date (NaN, or the variable's fill value: a record "
+                                            "never written?)",
+                                            value));
   const TimePoint t{origin_seconds + std::int64_t(std::llround(value * seconds_per_unit))};
   if (mixed && t.seconds < reform)
     throw std::invalid_argument("a time before 1582-10-15 in the standard calendar (Julian there) is not supported");

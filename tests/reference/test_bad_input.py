@@ -373,6 +373,37 @@ class BadInput(kt.TempDirTestCase):
         self.check_fails(['NETCDF:"%s":tas' % garbage], ["garbage.nc"], ["cannot be read as NETCDF"],
                          "netcdf: not a NetCDF file")
 
+    def test_netcdf_times_that_are_no_dates(self):
+        # Found with UndefinedBehaviorSanitizer: a time that is NaN or the variable's fill value
+        # (9.97e36 for doubles, a record never written) overflowed a cast and was named a date
+        # 292 billion years off; an origin whose seconds overflowed an int moved every date 68
+        # years back, exit 0; an origin of "00:00:." said only "stod".
+        import scipy.io
+        folder = os.path.join(self.tmp, "netcdf-times")
+        os.makedirs(folder)
+        cases = {"fill": ([18000, 9.969209968386869e36, 18060], "days since 1950-01-01",
+                          "time value 9.96921e+36 is no date"),
+                 "nan": ([18000, float("nan"), 18060], "days since 1950-01-01", "time value nan is no date"),
+                 "seconds": ([18000, 18030, 18060], "days since 1950-01-01 00:00:99999999999", "unreadable"),
+                 "dot": ([18000, 18030, 18060], "days since 1950-01-01 00:00:.", "unreadable")}
+        for name, (times, units, expected) in cases.items():
+            path = os.path.join(folder, name + ".nc")
+            nc = scipy.io.netcdf_file(path, "w")
+            nc.createDimension("time", len(times))
+            nc.createDimension("y", 4)
+            nc.createDimension("x", 5)
+            t = nc.createVariable("time", "f8", ("time",))
+            t[:] = times
+            t.units = units
+            t.calendar = "standard"
+            nc.createVariable("tas", "f4", ("time", "y", "x"))[:] = np.full((len(times), 4, 5), 20, np.float32)
+            nc.close()
+            done = kt.run_kalends(["inspect", 'NETCDF:"%s":tas' % path])
+            self.assertEqual(done.returncode, 2, (name, done.stdout, done.stderr))
+            self.assertEqual(len(done.stderr.strip().splitlines()), 1, done.stderr)
+            self.assertIn(path, done.stderr)
+            self.assertIn(expected, done.stderr)
+
     def test_truncated_netcdf(self):
         # The netCDF library reads the missing end of a cut classic file as zeros and says
         # nothing: GDAL then gives band times of 0 (the time origin) and pixels of 0. Files
