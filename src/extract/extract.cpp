@@ -234,8 +234,10 @@ class SeriesGeometry {
     // Two cells of margin: the traced circle's chords cut inside it by under 0.4 % of the radius.
     int c0 = std::max(0, static_cast<int>(std::floor(std::max(cmin, -1e9))) - 2);
     int c1 = std::min(width - 1, static_cast<int>(std::floor(std::min(cmax, 1e9))) + 2);
-    const int r0 = std::max(0, static_cast<int>(std::floor(rmin)) - 2);
-    const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(rmax)) + 2);
+    // Clamped as the columns are: a radius of 1e12 m had overflowed the cast (undefined; an
+    // empty mean, exit 0).
+    const int r0 = std::max(0, static_cast<int>(std::floor(std::max(rmin, -1e9))) - 2);
+    const int r1 = std::min(series_.grid.height - 1, static_cast<int>(std::floor(std::min(rmax, 1e9))) + 2);
     // A geographic grid round the globe: the circle goes on across its seam (the antimeridian,
     // or longitude 0 of a 0..360 grid), and one over a pole takes every longitude; the cells
     // beyond the seam or the pole had been left out of the mean.

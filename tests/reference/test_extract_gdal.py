@@ -212,6 +212,22 @@ class ExtractLandsat(kt.TempDirTestCase):
         self.assertGreaterEqual(checked, 6 * 40)
         self.assertGreaterEqual(outside_with_cells, 1)   # the last point, 1 px (28.5 m) west of the scene
 
+    def test_a_buffer_wider_than_the_layer_takes_every_cell(self):
+        # Found with UBSan: a radius of 1e12 m overflowed the rows' cast; the mean came out empty
+        # with 0 cells, exit 0. Any radius reaching past the layer takes all its cells.
+        g = kt.gdal()
+        cells = g.Open(self.raster).RasterXSize * g.Open(self.raster).RasterYSize
+        for radius in ("1e7", "1e12"):
+            out = os.path.join(self.tmp, "wide-%s.csv" % radius)
+            done = kt.run_kalends(["-q", "extract", self.raster, "--points", self.csv, "--out", out, "--buffer", radius,
+                                   "--id-column", "site", "--x-column", "lon", "--y-column", "lat",
+                                   "--date-column", ""])
+            self.assertEqual(done.returncode, 0, done.stderr)
+            row = kt.read_table(out)[0]
+            self.assertEqual(int(row["L7_ETMs.b1.buffer_cells"]), cells, radius)
+            self.assertAlmostEqual(float(row["L7_ETMs.b1.buffer_mean"]), float(self.bands[0].mean()),
+                                   delta=1e-5 * float(self.bands[0].mean()))
+
     def extract_site_table(self, points, out, *extra):
         """`kalends extract` of the Landsat scene at a table with columns site, lon, lat and no date."""
         return kt.run_kalends(list(extra) + ["extract", self.raster, "--points", points, "--out", out,
