@@ -228,7 +228,9 @@ Job read_job(const std::string& path) {
       else if (k == "out") job.out = resolve(job.folder, path_text(path, k, node));
       else if (k == "threads") {
         job.threads = std::stoi(checked_text(path, k, node, Type::integer));
-        if (job.threads < 0) fail(path, node.source(), "'threads' must be 0 (all cores) or more");
+        // As --threads (0 to 4096): 5000 had been taken here.
+        if (job.threads < 0 || job.threads > 4096)
+          fail(path, node.source(), "'threads' must be 0 (all cores) to 4096");
       }
       else if (k == "memory") {
         job.memory = checked_text(path, k, node, Type::text);

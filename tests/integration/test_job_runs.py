@@ -366,7 +366,10 @@ class JobFile(kt.TempDirTestCase):
                            ["'out' '~/nightly': '~' is not expanded in a job file"])
         self.assertFalse(os.path.exists(os.path.join(self.tmp, "~")))
         self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = -2'), 6,
-                           ["'threads' must be 0 (all cores) or more"])
+                           ["'threads' must be 0 (all cores) to 4096"])
+        # As --threads: 5000 had been taken in a job file.
+        self.check_refused(good.replace('memory = "256M"', 'memory = "256M"\nthreads = 5000'), 6,
+                           ["'threads' must be 0 (all cores) to 4096"])
         self.check_refused(good.replace('valid_range = [-0.2, 1.0]', 'valid_range = [-0.2, 1.0]\nband = 0'), 7,
                            ["[inputs.ndvi]: bands are numbered from 1"])
         self.check_refused(good.replace("lambda = \"auto\"", "lambda = true"),
