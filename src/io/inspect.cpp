@@ -4,7 +4,9 @@
 
 #include <algorithm>
 #include <cmath>
+#include <fmt/format.h>
 #include <map>
+#include <new>
 
 #include "io/file_glob.hpp"
 #include "io/gdal_session.hpp"
@@ -57,7 +59,21 @@ InspectReport inspect_stack(const InspectRequest& request) {
   // Strips of rows, date by date: the working set is one strip and a byte per pixel.
   const Grid& grid = stack.grid();
   const int strip_rows = std::max(1, int(std::min<std::int64_t>(grid.height, (1 << 22) / std::max(1, grid.width))));
-  std::vector<std::uint8_t> ever_observed(std::size_t(grid.width) * grid.height, 0);
+  // A damaged file declaring a huge raster (2 KB of 200,000 px a side) is named first: it had
+  // been "out of memory: give a smaller --memory budget", which inspect does not have.
+  {
+    std::map<std::string, std::vector<int>> bands_of;
+    for (const Layer& l : stack.layers()) bands_of[l.path].push_back(l.band);
+    for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, 0, 0);
+  }
+  std::vector<std::uint8_t> ever_observed;
+  try {
+    ever_observed.assign(std::size_t(grid.width) * grid.height, 0);
+  } catch (const std::bad_alloc&) {
+    throw Error(request.input, fmt::format("is {} x {} px: too large to count its pixels in this memory; give --quick "
+                                           "for its dates and grid alone",
+                                           grid.width, grid.height));
+  }
   std::vector<float> values;
   std::vector<std::uint32_t> qa_values;
   auto reader = stack.reader();

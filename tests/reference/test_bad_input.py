@@ -321,6 +321,10 @@ class BadInput(kt.TempDirTestCase):
         self.assertIn("ndvi_%s.tif: cannot read pixels" % DATES[0], stderr)
         self.assertEqual(begun, [])
         self.assertFalse(os.path.exists(out))
+        # inspect had said "out of memory: give a smaller --memory budget" (it has none).
+        done = kt.run_kalends(["inspect", path])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("%s: cannot read pixels" % path, done.stderr)
 
     def test_unparsable_date(self):
         folder = self.variant("nodate")
