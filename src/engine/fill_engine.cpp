@@ -419,13 +419,8 @@ FillSummary run_fill(const FillRequest& given, const ProgressCallback& progress)
                                          by_tile ? smallest_block : share.max_read_pixels, tile_size,
                                          request.region, by_tile ? 1 : 0);
 
-  {
-    std::map<std::string, std::vector<int>> bands_of;
-    for (const Layer& l : stack.layers()) bands_of[l.path].push_back(l.band);
-    if (qa)
-      for (const Layer& l : qa->stack.layers()) bands_of[l.path].push_back(l.band);
-    for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, area.x, area.y);
-  }
+  require_readable(stack, area.x, area.y);
+  if (qa) require_readable(qa->stack, area.x, area.y);
   std::vector<std::string> output_paths;
   for (const auto& spec : specs) output_paths.push_back(spec.path);
   detail::OutputSet outputs(std::move(specs), window_grid(raster, area), request.compression, tile_size);

@@ -190,6 +190,8 @@ GDALDatasetUniquePtr open_raster(const std::string& path) {
     std::error_code ec;
     if (std::filesystem::is_regular_file(path, ec) && std::filesystem::file_size(path, ec) == 0 && !ec)
       throw InputError(path, "is empty (0 bytes): a download or copy that wrote nothing?");
+    // A folder named like a raster had been "not recognized as a supported file format".
+    if (std::filesystem::is_directory(path, ec)) throw InputError(path, "is a folder, not a raster");
     throw_unreadable(path, "cannot open as a raster (" + gdal_message("unknown format") + ")");
   }
   // A file GDAL opens with a warning that its structure is corrupt (a GeoTIFF cut short in its

@@ -61,11 +61,7 @@ InspectReport inspect_stack(const InspectRequest& request) {
   const int strip_rows = std::max(1, int(std::min<std::int64_t>(grid.height, (1 << 22) / std::max(1, grid.width))));
   // A damaged file declaring a huge raster (2 KB of 200,000 px a side) is named first: it had
   // been "out of memory: give a smaller --memory budget", which inspect does not have.
-  {
-    std::map<std::string, std::vector<int>> bands_of;
-    for (const Layer& l : stack.layers()) bands_of[l.path].push_back(l.band);
-    for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, 0, 0);
-  }
+  require_readable(stack, 0, 0);
   std::vector<std::uint8_t> ever_observed;
   try {
     ever_observed.assign(std::size_t(grid.width) * grid.height, 0);

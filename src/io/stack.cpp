@@ -712,6 +712,12 @@ static void require_undated_bands(GDALDataset& dataset, const std::string& path,
                                        dated, rules.band, rules.date->label()));
 }
 
+void require_readable(const Stack& stack, int x, int y) {
+  std::map<std::string, std::vector<int>> bands_of;
+  for (const Layer& l : stack.layers()) bands_of[l.path].push_back(l.band);
+  for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, x, y);
+}
+
 void require_not_half_published(const std::string& folder) {
   std::error_code ec;
   const std::string where = folder.empty() ? "." : folder;

@@ -348,6 +348,7 @@ SeasonsSummary run_seasons(const SeasonsRequest& request) {
   const auto [share, at_once] = fitted;
   const detail::GdalCacheScope cache(share.gdal_cache);
   const BlockPlan plan = BlockPlan::make(grid.width, grid.height, 0, share.max_read_pixels, tile_size, request.region);
+  require_readable(stack, area.x, area.y);
   std::vector<std::string> output_paths;
   for (const auto& s : specs) output_paths.push_back(s.path);
   detail::OutputSet outputs(std::move(specs), window_grid(grid, area), request.compression, tile_size);

@@ -280,6 +280,11 @@ class BadInput(kt.TempDirTestCase):
         ds.GetRasterBand(1).WriteArray(np.full((HEIGHT, WIDTH), 0.4 + 5j, np.complex64))
         ds = None
         self.check_fails([os.path.join(folder, "*.tif")], [spoiled], ["complex numbers"], "complex")
+        # A folder named like a raster had been "not recognized as a supported file format".
+        folder = self.variant("folder-named-tif")
+        os.makedirs(os.path.join(folder, "ndvi_2020-04-01.tif"))
+        self.check_fails([os.path.join(folder, "*.tif")], ["ndvi_2020-04-01.tif"], ["is a folder, not a raster"],
+                         "folder")
 
     def test_a_tiny_file_declaring_a_huge_raster_is_refused_before_any_output(self):
         # Found by fuzzing: 2 KB files whose header says 200,000 px a side open in GDAL, and a
@@ -321,6 +326,9 @@ class BadInput(kt.TempDirTestCase):
         self.assertIn("ndvi_%s.tif: cannot read pixels" % DATES[0], stderr)
         self.assertEqual(begun, [])
         self.assertFalse(os.path.exists(out))
+        done = kt.run_kalends(["seasons", os.path.join(folder, "*.tif"), "--out", out])
+        self.assertEqual(done.returncode, 2, done.stderr)
+        self.assertIn("ndvi_%s.tif: cannot read pixels" % DATES[0], done.stderr)
         # inspect had said "out of memory: give a smaller --memory budget" (it has none).
         done = kt.run_kalends(["inspect", path])
         self.assertEqual(done.returncode, 2, done.stderr)
