@@ -372,7 +372,8 @@ Job read_job(const std::string& path) {
         const std::vector<std::string> names =
             found->type == Type::texts ? split_list(step.options[k]) : std::vector<std::string>{step.options[k]};
         // input = [] had passed --dry-run; the run then failed with "no raster layers found".
-        if (names.empty()) fail(path, value.source(), "'" + k + "' names no input or step");
+        // (A report's empty 'layers' is named by the step's own check.)
+        if (names.empty() && k == "input") fail(path, value.source(), "'input' names no input or step");
         for (const std::string& name : names) {
           if (!known.count(name))
             fail(path, value.source(), "'" + name + "' is neither an input nor an earlier step");

@@ -485,7 +485,7 @@ class ShardsByHand(kt.TempDirTestCase, Compare):
         # An empty value (an unset $SLURM_ARRAY_TASK_ID) or a fraction must not run anything,
         # least of all the whole job.
         for wrong, words in (("3", "the plan has shards 1 to 2"), ("1/4", "the plan has 2 shards"),
-                             ("0/2", "1 <= K <= N"), ("", "1 <= K <= N"), ("1.9", "1 <= K <= N"),
+                             ("0/2", "1 <= K <= N"), ("", "needs a value ('' given)"), ("1.9", "1 <= K <= N"),
                              ("1/2.5", "1 <= K <= N")):
             done = kalends("run", self.job, "--out", self.out("no-plan"), "--shard", wrong)
             self.assertEqual(done.returncode, 2, wrong)
