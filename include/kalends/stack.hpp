@@ -178,7 +178,7 @@ inline constexpr const char* half_published_marker = ".kalends-publishing";
 /// which no step should read as one set until the run is done again.
 void require_not_half_published(const std::string& folder);
 
-/// Reads the pixel (x, y) of every layer's band once, before a command begins its outputs:
+/// Reads the pixel (x, y) of each file's first band once, before a command begins its outputs:
 /// InputError naming a file GDAL opens but cannot read (a tiny damaged file declaring 200,000 px
 /// a side had made a refused fill write gigabytes of empty tiles as it gave up).
 void require_readable(const Stack& stack, int x, int y);

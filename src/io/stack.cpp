@@ -713,8 +713,11 @@ static void require_undated_bands(GDALDataset& dataset, const std::string& path,
 }
 
 void require_readable(const Stack& stack, int x, int y) {
+  // The first band of each file only: the header is the file's, and a container of thousands
+  // of dated bands (GRIB decodes a whole field per band read) would pay a read per band.
   std::map<std::string, std::vector<int>> bands_of;
-  for (const Layer& l : stack.layers()) bands_of[l.path].push_back(l.band);
+  for (const Layer& l : stack.layers())
+    if (auto& bands = bands_of[l.path]; bands.empty()) bands.push_back(l.band);
   for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, x, y);
 }
 
