@@ -132,10 +132,8 @@ CsvRow read_record(const std::string& text, std::size_t& pos, char separator, in
   return row;
 }
 
-std::vector<CsvRow> csv_rows(const std::string& path, int fields) {
-  std::ifstream in(path, std::ios::binary);
-  std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
-  if (text.starts_with("\xEF\xBB\xBF")) text.erase(0, 3);
+// `text`: the CSV's text without its byte-order mark.
+std::vector<CsvRow> csv_rows(const std::string& text, int fields) {
   std::size_t data = 0;
   int lines = 0;
   char separator = ',';
@@ -282,11 +280,14 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   if (!ds || ds->GetLayerCount() < 1)
     throw InputError(path, "cannot open as a table of points (" + detail::gdal_message("unknown format") + ")");
   const bool csv = std::string(ds->GetDriver()->GetDescription()) == "CSV";
+  // A CSV's text, read once: for the checks below and its rows' line numbers (csv_rows).
+  std::string text;
   if (csv) {
+    std::ifstream in(path, std::ios::binary);
+    text.assign(std::istreambuf_iterator<char>(in), std::istreambuf_iterator<char>());
+    if (text.starts_with("\xEF\xBB\xBF")) text.erase(0, 3);
     // GDAL's reader ends a field at a NUL byte and drops what follows it: a point had lost its
     // coordinates and date ("no coordinates", exit 0). No text table holds one unless damaged.
-    std::ifstream in(path, std::ios::binary);
-    const std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
     if (const std::size_t at = text.find('\0'); at != std::string::npos)
       throw InputError(fmt::format("{}:{}", path, 1 + std::count(text.begin(), text.begin() + std::ptrdiff_t(at), '\n')),
                        "holds a NUL byte (a file damaged on disk or on its way?); mend or remove that line");
@@ -300,8 +301,6 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   if (layer->GetFeatureCount() == 0) {
     // A quote opened in the header and never closed makes the whole file one header line.
     if (csv) {
-      std::ifstream in(path, std::ios::binary);
-      const std::string text((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
       std::size_t pos = 0;
       int lines = 0;
       if (read_record(text, pos, ',', lines).open_quote)
@@ -354,7 +353,7 @@ SurveyPoints read_survey_points(const PointsSource& source) {
   result.crs_wkt = wkt ? wkt : "";
   CPLFree(wkt);
   layer->ResetReading();
-  const std::vector<CsvRow> rows = csv ? csv_rows(path, defn.GetFieldCount()) : std::vector<CsvRow>{};
+  const std::vector<CsvRow> rows = csv ? csv_rows(text, defn.GetFieldCount()) : std::vector<CsvRow>{};
   std::size_t row = 0;
   int legacy_ids = 0;
   std::string first_legacy;

@@ -241,8 +241,11 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
   // neighbour.
   const std::size_t words = (std::size_t(slots) + 63) / 64;
   std::vector<std::uint64_t> lend_bits(pixels * words, 0);
+  auto may_lend = [&](std::size_t i) {  // cell i = pixel i / slots, slot i % slots
+    lend_bits[(i / slots) * words + (i % slots) / 64] |= std::uint64_t(1) << ((i % slots) % 64);
+  };
   for (std::size_t i = 0; i < cells; ++i)
-    if (!std::isnan(value[i])) lend_bits[(i / slots) * words + (i % slots) / 64] |= std::uint64_t(1) << ((i % slots) % 64);
+    if (!std::isnan(value[i])) may_lend(i);
   std::vector<std::size_t> predicted;
   std::mutex predicted_mutex;
   // After the first round a gap can gain a prediction only from a neighbour predicted in the
@@ -256,8 +259,7 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
     if (round > 0) {
       count_in_windows(rows, cols, slots, radius, predicted, near_new);
       std::fill(lend_bits.begin(), lend_bits.end(), 0);
-      for (std::size_t i : predicted)
-        lend_bits[(i / slots) * words + (i % slots) / 64] |= std::uint64_t(1) << ((i % slots) % 64);
+      for (std::size_t i : predicted) may_lend(i);
     }
     predicted.clear();
     // Rows in parallel: a round reads only cells known before it and writes only p's own
@@ -324,9 +326,9 @@ void predict_by_analogues(const CellGrid& grid, std::span<const double> y,
             pair_sums4(own_weight.data(), own_value.data(), wq, yq, &observed_slot[first],
                        &observed_bin[first], observed_count, soa.data(), totals, shared);
             // The day-of-year kernel's sums at the bins the batch lists, for the four pairs at
-            // once: lane i of smoothed[4 b + j] is lane j of what kernel_sums gave for pair i
-            // at bin b (the same products added in the same order; the year wraps around
-            // through `tap_bin` instead of copied margins).
+            // once: lane i of smoothed[4 b + j] is lane j of what the one-pair version (up to
+            // 0.3.24) gave for pair i at bin b (the same products added in the same order; the
+            // year wraps around through `tap_bin` instead of copied margins).
             needed_bins.clear();
             for (int i = 0; i < batched; ++i)
               for (std::size_t u = 0; u < batch[std::size_t(i)].count; ++u) {

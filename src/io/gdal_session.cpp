@@ -165,15 +165,13 @@ std::string open_files_limit_text() {
                      static_cast<long long>(limit.rlim_cur));
 }
 
-void require_readable_pixel(const std::string& path, const std::vector<int>& bands, int x, int y) {
+void require_readable_pixel(const std::string& path, int band_index, int x, int y) {
   const GDALDatasetUniquePtr dataset = open_raster(path);
-  for (const int b : bands) {
-    GDALRasterBand* band = dataset->GetRasterBand(b);
-    if (!band || x < 0 || y < 0 || x >= band->GetXSize() || y >= band->GetYSize()) continue;
-    double value = 0;
-    CPLErrorReset();
-    if (band->RasterIO(GF_Read, x, y, 1, 1, &value, 1, 1, GDT_Float64, 0, 0) != CE_None) throw_read_failed(path);
-  }
+  GDALRasterBand* band = dataset->GetRasterBand(band_index);
+  if (!band || x < 0 || y < 0 || x >= band->GetXSize() || y >= band->GetYSize()) return;
+  double value = 0;
+  CPLErrorReset();
+  if (band->RasterIO(GF_Read, x, y, 1, 1, &value, 1, 1, GDT_Float64, 0, 0) != CE_None) throw_read_failed(path);
 }
 
 GDALDatasetUniquePtr open_raster(const std::string& path) {

@@ -79,10 +79,8 @@ void require_not_cut_short(const std::string& file);
 /// Opens a raster read-only; InputError naming `path` if it cannot.
 GDALDatasetUniquePtr open_raster(const std::string& path);
 
-/// Reads the one pixel (x, y) of each band named, before any output is made: a damaged file
-/// that GDAL opens (2 KB declaring 200,000 px a side) had made a refused fill first create
-/// outputs of that size, and write gigabytes of empty tiles as it gave up. throw_read_failed.
-void require_readable_pixel(const std::string& path, const std::vector<int>& bands, int x, int y);
+/// Reads the one pixel (x, y) of `band` (require_readable, stack.hpp); throw_read_failed.
+void require_readable_pixel(const std::string& path, int band, int x, int y);
 
 /// Whether a Byte band holds signed bytes (PIXELTYPE=SIGNEDBYTE: GDAL before 3.7 has no Int8
 /// type and stores int8 so). Read into a float buffer they come out as 0..255.

@@ -715,10 +715,9 @@ static void require_undated_bands(GDALDataset& dataset, const std::string& path,
 void require_readable(const Stack& stack, int x, int y) {
   // The first band of each file only: the header is the file's, and a container of thousands
   // of dated bands (GRIB decodes a whole field per band read) would pay a read per band.
-  std::map<std::string, std::vector<int>> bands_of;
+  std::set<std::string> seen;
   for (const Layer& l : stack.layers())
-    if (auto& bands = bands_of[l.path]; bands.empty()) bands.push_back(l.band);
-  for (const auto& [path, bands] : bands_of) detail::require_readable_pixel(path, bands, x, y);
+    if (seen.insert(l.path).second) detail::require_readable_pixel(l.path, l.band, x, y);
 }
 
 void require_not_half_published(const std::string& folder) {

@@ -109,16 +109,20 @@ void check_values(const std::string& path, const StepKind& kind, const JobStep& 
 }
 
 // The value as canonical text, after checking its type.
+// A string node's text. TOML allows "\u0000"; a path cut there had named a different file
+// (found by fuzzing).
+std::string text_of(const std::string& path, const std::string& key, const toml::node& node) {
+  std::string text = *node.value<std::string>();
+  if (text.find('\0') != std::string::npos) fail(path, node.source(), fmt::format("'{}' holds a NUL character", key));
+  return text;
+}
+
 std::string checked_text(const std::string& path, const std::string& key, const toml::node& node, Type type) {
   auto wrong = [&] { fail(path, node.source(), fmt::format("'{}' must be {}", key, type_name(type))); };
   switch (type) {
-    case Type::text: {
+    case Type::text:
       if (!node.is_string()) wrong();
-      // TOML allows "\u0000"; a path cut there had named a different file (found by fuzzing).
-      std::string text = *node.value<std::string>();
-      if (text.find('\0') != std::string::npos) fail(path, node.source(), fmt::format("'{}' holds a NUL character", key));
-      return text;
-    }
+      return text_of(path, key, node);
     case Type::number:
       if (!node.is_number()) wrong();
       return number_text(number_of(node));
@@ -156,11 +160,7 @@ std::string checked_text(const std::string& path, const std::string& key, const 
       // Numbers too, as their text: `extent = [-5, 4, 3, 12]` as other number lists are written.
       for (const toml::node& e : *a) {
         if (!text.empty()) text += ',';
-        if (e.is_string()) {
-          const std::string item = *e.value<std::string>();
-          if (item.find('\0') != std::string::npos) fail(path, e.source(), fmt::format("'{}' holds a NUL character", key));
-          text += item;
-        }
+        if (e.is_string()) text += text_of(path, key, e);
         else if (e.is_integer()) text += std::to_string(*e.value<std::int64_t>());
         else if (e.is_floating_point()) text += fmt::format("{}", *e.value<double>());
         else wrong();

@@ -154,26 +154,26 @@ std::vector<int> version_numbers(const std::string& text) {
 // The newest kalends that has written this state. An older one would take every step for
 // changed ("program version changed"), rewrite the outputs with its older formulas and leave
 // the newer one's extra files beside them: refused, with the way out.
-std::string StateDatabase::newest_program() const {
+std::string StateDatabase::program_value(const char* key) const {
   Statement table(db_, "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'program'", path_);
   if (!table.step()) return "";
-  Statement read(db_, "SELECT value FROM program WHERE key = 'newest_version'", path_);
+  Statement read(db_, "SELECT value FROM program WHERE key = ?", path_);
+  read.bind(1, std::string(key));
   return read.step() ? read.text(0) : "";
 }
 
-std::string StateDatabase::last_job_file() const {
-  Statement table(db_, "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'program'", path_);
-  if (!table.step()) return "";
-  Statement read(db_, "SELECT value FROM program WHERE key = 'job_file'", path_);
-  return read.step() ? read.text(0) : "";
-}
-
-void StateDatabase::remember_job_file(const std::string& path) {
+void StateDatabase::set_program_value(const char* key, const std::string& value) const {
   exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
-  Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES ('job_file', ?)", path_);
-  write.bind(1, path);
+  Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES (?, ?)", path_);
+  write.bind(1, std::string(key)).bind(2, value);
   write.step();
 }
+
+std::string StateDatabase::newest_program() const { return program_value("newest_version"); }
+
+std::string StateDatabase::last_job_file() const { return program_value("job_file"); }
+
+void StateDatabase::remember_job_file(const std::string& path) { set_program_value("job_file", path); }
 
 bool newer_than_this_program(const std::string& version) {
   return !version.empty() && version_numbers(version) > version_numbers(KALENDS_VERSION);
@@ -199,12 +199,7 @@ void StateDatabase::require_not_newer_program(bool record) const {
   const std::string newest = newest_program();
   require_not_newer(path_, newest);
   if (!record) return;
-  exec("CREATE TABLE IF NOT EXISTS program (key TEXT PRIMARY KEY, value TEXT)");
-  if (newest != KALENDS_VERSION) {
-    Statement write(db_, "INSERT OR REPLACE INTO program (key, value) VALUES ('newest_version', ?)", path_);
-    write.bind(1, std::string(KALENDS_VERSION));
-    write.step();
-  }
+  if (newest != KALENDS_VERSION) set_program_value("newest_version", KALENDS_VERSION);
 }
 
 StateDatabase::~StateDatabase() { sqlite3_close(db_); }

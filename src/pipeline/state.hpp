@@ -58,6 +58,9 @@ class StateDatabase {
   void remember_job_file(const std::string& path);
 
  private:
+  /// The `program` table's value of `key`, "" where it has none (or there is no such table yet).
+  std::string program_value(const char* key) const;
+  void set_program_value(const char* key, const std::string& value) const;
   void exec(const std::string& sql) const;
   void rollback() const;
   void require_not_newer_program(bool record) const;
